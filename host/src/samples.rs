@@ -1,0 +1,589 @@
+//! Reference-sample tables (CSV).
+//!
+//! A reference sample is a portion of product measured by the sensor and by
+//! the lab's reference method (oven-dry, wet basis). The table has a header
+//! row; columns may come in any order and unknown columns are kept in the
+//! file but ignored here:
+//!
+//! | column | unit | meaning |
+//! | --- | --- | --- |
+//! | `sample_id` | text | unique, non-empty |
+//! | `moisture_pct` | % wet basis | lab reference value (may be empty for `cal predict`) |
+//! | `temperature_c` | C | product temperature at the sensor |
+//! | `freq1_hz`, `freq2_hz` | Hz | the two excitation frequencies, the same on every row, `freq1_hz < freq2_hz` |
+//! | `eps1_re`, `eps1_im`, `eps2_re`, `eps2_im` | - | permittivity eps* = eps' - j eps'' at each frequency, `eps*_im` = eps'' >= 0 |
+//!
+//! Every error names the file and, where it has one, the line (1-based,
+//! counting the header as line 1), the column (1-based) and the field.
+
+use std::fmt;
+use std::path::{Path, PathBuf};
+
+/// Column names, in the order [`write_samples`] writes them.
+pub const COLUMNS: [&str; 9] = [
+    "sample_id",
+    "moisture_pct",
+    "temperature_c",
+    "freq1_hz",
+    "eps1_re",
+    "eps1_im",
+    "freq2_hz",
+    "eps2_re",
+    "eps2_im",
+];
+
+/// One reference sample.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RefSample {
+    /// Sample id.
+    pub sample_id: String,
+    /// Lab moisture, % wet basis (`None` when the cell was empty).
+    pub moisture_pct: Option<f64>,
+    /// Product temperature, C.
+    pub temperature_c: f64,
+    /// Excitation frequencies, Hz, lower first.
+    pub freqs_hz: [f64; 2],
+    /// eps' at each frequency.
+    pub eps_re: [f64; 2],
+    /// eps'' (>= 0) at each frequency.
+    pub eps_im: [f64; 2],
+    /// Line in the file (header is line 1).
+    pub line: u64,
+}
+
+/// A validated table.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SampleSet {
+    /// Where it came from.
+    pub path: PathBuf,
+    /// The samples, in file order.
+    pub samples: Vec<RefSample>,
+    /// The common excitation frequencies, Hz.
+    pub freqs_hz: [f64; 2],
+    /// Whether every sample has a lab moisture.
+    pub all_have_moisture: bool,
+}
+
+/// Whether the lab moisture must be present on every row.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum MoistureColumn {
+    /// Needed on every row (fitting).
+    Required,
+    /// The column may be missing or cells empty (prediction).
+    Optional,
+}
+
+/// What is wrong with a reference-sample table.
+#[derive(Debug, Clone, PartialEq)]
+#[non_exhaustive]
+pub enum SampleError {
+    /// The file could not be read.
+    Io {
+        /// File.
+        file: PathBuf,
+        /// The system's reason.
+        reason: String,
+    },
+    /// No header, or a header and no rows.
+    Empty {
+        /// File.
+        file: PathBuf,
+    },
+    /// A required column is not in the header.
+    MissingColumn {
+        /// File.
+        file: PathBuf,
+        /// Column name.
+        column: &'static str,
+    },
+    /// A column appears twice in the header.
+    DuplicateColumn {
+        /// File.
+        file: PathBuf,
+        /// Column name.
+        column: String,
+    },
+    /// The CSV itself is malformed (e.g. a row with the wrong number of fields).
+    Malformed {
+        /// File.
+        file: PathBuf,
+        /// Line.
+        line: u64,
+        /// The parser's reason.
+        reason: String,
+    },
+    /// A field is not a number, not finite or outside its allowed range.
+    BadValue {
+        /// File.
+        file: PathBuf,
+        /// Line.
+        line: u64,
+        /// Column number, 1-based.
+        column: usize,
+        /// Column name.
+        field: &'static str,
+        /// The text found.
+        value: String,
+        /// What was expected.
+        expected: &'static str,
+    },
+    /// A frequency differs from the first row's.
+    MixedFrequency {
+        /// File.
+        file: PathBuf,
+        /// Line.
+        line: u64,
+        /// Column number, 1-based.
+        column: usize,
+        /// Column name.
+        field: &'static str,
+        /// Value found, Hz.
+        value_hz: f64,
+        /// Value on the first row, Hz.
+        first_hz: f64,
+        /// Line of the first row.
+        first_line: u64,
+    },
+    /// A sample id appears twice.
+    DuplicateId {
+        /// File.
+        file: PathBuf,
+        /// Line of the repeat.
+        line: u64,
+        /// Line of the first occurrence.
+        first_line: u64,
+        /// The id.
+        id: String,
+    },
+    /// Fewer samples than the model needs.
+    TooFew {
+        /// File.
+        file: PathBuf,
+        /// Samples found.
+        n: usize,
+        /// Samples needed (model parameters + 3).
+        needed: usize,
+        /// Model name.
+        model: String,
+    },
+}
+
+impl fmt::Display for SampleError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        use SampleError::*;
+        match self {
+            Io { file, reason } => write!(f, "{}: cannot read: {reason}", file.display()),
+            Empty { file } => write!(f, "{}: no samples (the file needs a header row and at least one data row)", file.display()),
+            MissingColumn { file, column } => write!(
+                f,
+                "{}: line 1: missing column `{column}` (needed: {})",
+                file.display(),
+                COLUMNS.join(", ")
+            ),
+            DuplicateColumn { file, column } => {
+                write!(f, "{}: line 1: column `{column}` appears twice", file.display())
+            }
+            Malformed { file, line, reason } => write!(f, "{}: line {line}: {reason}", file.display()),
+            BadValue { file, line, column, field, value, expected } => write!(
+                f,
+                "{}: line {line}, column {column} ({field}): `{value}` is not {expected}",
+                file.display()
+            ),
+            MixedFrequency { file, line, column, field, value_hz, first_hz, first_line } => write!(
+                f,
+                "{}: line {line}, column {column} ({field}): {value_hz} Hz differs from {first_hz} Hz on line {first_line}; all samples must be measured at the same two frequencies",
+                file.display()
+            ),
+            DuplicateId { file, line, first_line, id } => write!(
+                f,
+                "{}: line {line}, column sample_id: sample id `{id}` already used on line {first_line}",
+                file.display()
+            ),
+            TooFew { file, n, needed, model } => write!(
+                f,
+                "{}: {n} samples, but the {model} model needs at least {needed} (its parameters + 3)",
+                file.display()
+            ),
+        }
+    }
+}
+
+impl std::error::Error for SampleError {}
+
+struct Cols {
+    idx: [Option<usize>; 9],
+}
+
+/// Reads and validates a reference-sample table.
+///
+/// # Errors
+/// Any [`SampleError`] except `TooFew` (see [`SampleSet::require`]): the
+/// first problem found, in file order.
+pub fn read_samples(path: &Path, moisture: MoistureColumn) -> Result<SampleSet, SampleError> {
+    let file = path.to_path_buf();
+    let text = std::fs::read(path).map_err(|e| SampleError::Io {
+        file: file.clone(),
+        reason: e.to_string(),
+    })?;
+    parse_samples(&file, &text, moisture)
+}
+
+/// Parses a table already in memory (`file` names it in errors).
+///
+/// # Errors
+/// As [`read_samples`].
+pub fn parse_samples(
+    file: &Path,
+    text: &[u8],
+    moisture: MoistureColumn,
+) -> Result<SampleSet, SampleError> {
+    let file = file.to_path_buf();
+    let mut rdr = csv::ReaderBuilder::new()
+        .trim(csv::Trim::All)
+        .flexible(false)
+        .from_reader(text);
+    let malformed = |e: csv::Error, file: &PathBuf| {
+        let line = e.position().map(|p| p.line()).unwrap_or(1);
+        SampleError::Malformed {
+            file: file.clone(),
+            line,
+            reason: e.to_string(),
+        }
+    };
+    let header = rdr.headers().map_err(|e| malformed(e, &file))?.clone();
+    if header.is_empty() || header.iter().all(|h| h.is_empty()) {
+        return Err(SampleError::Empty { file });
+    }
+    let mut cols = Cols { idx: [None; 9] };
+    for (i, h) in header.iter().enumerate() {
+        if header.iter().take(i).any(|p| p == h) && !h.is_empty() {
+            return Err(SampleError::DuplicateColumn {
+                file,
+                column: h.to_string(),
+            });
+        }
+        if let Some(c) = COLUMNS.iter().position(|c| c.eq_ignore_ascii_case(h)) {
+            cols.idx[c] = Some(i);
+        }
+    }
+    for (c, name) in COLUMNS.iter().enumerate() {
+        if cols.idx[c].is_none() && !(c == 1 && moisture == MoistureColumn::Optional) {
+            return Err(SampleError::MissingColumn { file, column: name });
+        }
+    }
+    let mut samples: Vec<RefSample> = Vec::new();
+    let mut first_freq: Option<([f64; 2], u64)> = None;
+    for rec in rdr.records() {
+        let rec = rec.map_err(|e| malformed(e, &file))?;
+        let line = rec.position().map(|p| p.line()).unwrap_or(0);
+        if rec.iter().all(|f| f.is_empty()) {
+            continue; // a blank line
+        }
+        let field = |c: usize| -> (usize, &str) {
+            // Columns 0 and 2.. are present (checked above); 1 may be absent.
+            cols.idx[c].map_or((0, ""), |i| (i + 1, rec.get(i).unwrap_or("")))
+        };
+        let bad = |c: usize, value: &str, expected: &'static str| SampleError::BadValue {
+            file: file.clone(),
+            line,
+            column: field(c).0,
+            field: COLUMNS[c],
+            value: value.to_string(),
+            expected,
+        };
+        let num = |c: usize| -> Result<f64, SampleError> {
+            let (_, s) = field(c);
+            let v: f64 = s.parse().map_err(|_| bad(c, s, "a number"))?;
+            if !v.is_finite() {
+                return Err(bad(c, s, "a finite number"));
+            }
+            Ok(v)
+        };
+        let (_, id) = field(0);
+        if id.is_empty() {
+            return Err(bad(0, id, "a sample id (empty)"));
+        }
+        if let Some(prev) = samples.iter().find(|s| s.sample_id == id) {
+            return Err(SampleError::DuplicateId {
+                file,
+                line,
+                first_line: prev.line,
+                id: id.to_string(),
+            });
+        }
+        let moisture_pct = match (field(1).1, moisture) {
+            ("", MoistureColumn::Optional) => None,
+            ("", MoistureColumn::Required) => {
+                return Err(bad(1, "", "a lab moisture (empty)"));
+            }
+            (s, _) => {
+                let v = num(1)?;
+                if !(0.0..100.0).contains(&v) {
+                    return Err(bad(1, s, "a moisture in % wet basis, 0 <= m < 100"));
+                }
+                Some(v)
+            }
+        };
+        let temperature_c = num(2)?;
+        if !(-60.0..=250.0).contains(&temperature_c) {
+            return Err(bad(2, field(2).1, "a temperature in C between -60 and 250"));
+        }
+        let mut freqs_hz = [0.0; 2];
+        let mut eps_re = [0.0; 2];
+        let mut eps_im = [0.0; 2];
+        for k in 0..2 {
+            let (cf, cr, ci) = (3 + 3 * k, 4 + 3 * k, 5 + 3 * k);
+            freqs_hz[k] = num(cf)?;
+            if freqs_hz[k] <= 0.0 {
+                return Err(bad(cf, field(cf).1, "a positive frequency in Hz"));
+            }
+            eps_re[k] = num(cr)?;
+            if eps_re[k] < 1.0 {
+                return Err(bad(cr, field(cr).1, "a real permittivity >= 1"));
+            }
+            eps_im[k] = num(ci)?;
+            if eps_im[k] < 0.0 {
+                return Err(bad(
+                    ci,
+                    field(ci).1,
+                    "a loss factor eps'' >= 0 (sign convention eps* = eps' - j eps'')",
+                ));
+            }
+        }
+        if freqs_hz[0] >= freqs_hz[1] {
+            return Err(bad(6, field(6).1, "a frequency above freq1_hz"));
+        }
+        match first_freq {
+            None => first_freq = Some((freqs_hz, line)),
+            Some((f0, first_line)) => {
+                for k in 0..2 {
+                    if (freqs_hz[k] - f0[k]).abs() > 1e-6 * f0[k] {
+                        let c = 3 + 3 * k;
+                        return Err(SampleError::MixedFrequency {
+                            file,
+                            line,
+                            column: field(c).0,
+                            field: COLUMNS[c],
+                            value_hz: freqs_hz[k],
+                            first_hz: f0[k],
+                            first_line,
+                        });
+                    }
+                }
+            }
+        }
+        samples.push(RefSample {
+            sample_id: id.to_string(),
+            moisture_pct,
+            temperature_c,
+            freqs_hz,
+            eps_re,
+            eps_im,
+            line,
+        });
+    }
+    let Some((freqs_hz, _)) = first_freq else {
+        return Err(SampleError::Empty { file });
+    };
+    let all_have_moisture = samples.iter().all(|s| s.moisture_pct.is_some());
+    Ok(SampleSet {
+        path: file,
+        samples,
+        freqs_hz,
+        all_have_moisture,
+    })
+}
+
+impl SampleSet {
+    /// Refuses fewer than `n_params + 3` samples for `model`.
+    ///
+    /// # Errors
+    /// [`SampleError::TooFew`].
+    pub fn require(&self, n_params: usize, model: &str) -> Result<(), SampleError> {
+        let needed = n_params + 3;
+        if self.samples.len() < needed {
+            return Err(SampleError::TooFew {
+                file: self.path.clone(),
+                n: self.samples.len(),
+                needed,
+                model: model.to_string(),
+            });
+        }
+        Ok(())
+    }
+}
+
+/// Writes samples as CSV with the columns in [`COLUMNS`] order (an empty
+/// `moisture_pct` where unknown).
+///
+/// # Errors
+/// I/O errors from `out`.
+pub fn write_samples<W: std::io::Write>(out: W, samples: &[RefSample]) -> std::io::Result<()> {
+    let mut w = csv::Writer::from_writer(out);
+    w.write_record(COLUMNS)?;
+    for s in samples {
+        let m = s.moisture_pct.map(|m| format!("{m}")).unwrap_or_default();
+        w.write_record([
+            s.sample_id.clone(),
+            m,
+            format!("{}", s.temperature_c),
+            format!("{}", s.freqs_hz[0]),
+            format!("{}", s.eps_re[0]),
+            format!("{}", s.eps_im[0]),
+            format!("{}", s.freqs_hz[1]),
+            format!("{}", s.eps_re[1]),
+            format!("{}", s.eps_im[1]),
+        ])?;
+    }
+    w.flush()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const GOOD: &str = "\
+note,eps2_im,sample_id,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,temperature_c,moisture_pct
+first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
+,0.9,S2,1e6,6.4,13.0,2e7,5.0,22.0,13.1
+";
+
+    fn parse(text: &str) -> Result<SampleSet, SampleError> {
+        parse_samples(
+            Path::new("lab.csv"),
+            text.as_bytes(),
+            MoistureColumn::Required,
+        )
+    }
+
+    #[test]
+    fn columns_in_any_order_and_unknown_ones_ignored() {
+        let s = parse(GOOD).expect("valid table");
+        assert_eq!(s.samples.len(), 2);
+        assert_eq!(s.freqs_hz, [1e6, 2e7]);
+        let a = &s.samples[0];
+        assert_eq!(a.sample_id, "S1");
+        assert_eq!(a.moisture_pct, Some(12.3));
+        assert_eq!((a.eps_re, a.eps_im), ([6.1, 4.9], [12.5, 0.8]));
+        assert_eq!(a.line, 2);
+        assert_eq!(s.samples[1].line, 3);
+    }
+
+    #[test]
+    fn round_trip_through_writer() {
+        let s = parse(GOOD).expect("valid table");
+        let mut buf = Vec::new();
+        write_samples(&mut buf, &s.samples).expect("write");
+        let back =
+            parse_samples(Path::new("lab.csv"), &buf, MoistureColumn::Required).expect("reparse");
+        for (a, b) in s.samples.iter().zip(&back.samples) {
+            assert_eq!(
+                (a.sample_id.as_str(), a.eps_re, a.eps_im),
+                (b.sample_id.as_str(), b.eps_re, b.eps_im)
+            );
+        }
+    }
+
+    fn err(text: &str) -> String {
+        parse(text).expect_err("must be refused").to_string()
+    }
+
+    #[test]
+    fn missing_column_is_named() {
+        let e = err("sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re\nS1,1,2,3,4,5,6,7\n");
+        assert_eq!(
+            e,
+            format!(
+                "lab.csv: line 1: missing column `eps2_im` (needed: {})",
+                COLUMNS.join(", ")
+            )
+        );
+    }
+
+    #[test]
+    fn bad_number_names_line_column_and_field() {
+        let e = err(&GOOD.replace("6.4,13.0", "6.4,13,0x"));
+        // Row now has 11 fields: malformed.
+        assert!(e.starts_with("lab.csv: line 3"), "{e}");
+        let e = err(&GOOD.replace("6.4,13.0", "6.4,thirteen"));
+        assert_eq!(
+            e,
+            "lab.csv: line 3, column 6 (eps1_im): `thirteen` is not a number"
+        );
+    }
+
+    #[test]
+    fn nan_and_negative_loss_are_refused() {
+        let e = err(&GOOD.replace("0.9,S2", "NaN,S2"));
+        assert_eq!(
+            e,
+            "lab.csv: line 3, column 2 (eps2_im): `NaN` is not a finite number"
+        );
+        let e = err(&GOOD.replace("0.9,S2", "-0.2,S2"));
+        assert!(
+            e.starts_with(
+                "lab.csv: line 3, column 2 (eps2_im): `-0.2` is not a loss factor eps'' >= 0"
+            ),
+            "{e}"
+        );
+    }
+
+    #[test]
+    fn mixed_frequencies_are_refused() {
+        let e = err(&GOOD.replace("1e6,6.4", "1.1e6,6.4"));
+        assert_eq!(e, "lab.csv: line 3, column 4 (freq1_hz): 1100000 Hz differs from 1000000 Hz on line 2; all samples must be measured at the same two frequencies");
+    }
+
+    #[test]
+    fn duplicate_ids_are_refused() {
+        let e = err(&GOOD.replace(",S2,", ",S1,"));
+        assert_eq!(
+            e,
+            "lab.csv: line 3, column sample_id: sample id `S1` already used on line 2"
+        );
+    }
+
+    #[test]
+    fn empty_files_are_refused() {
+        assert_eq!(
+            err(""),
+            "lab.csv: no samples (the file needs a header row and at least one data row)"
+        );
+        assert_eq!(
+            err(GOOD.lines().next().expect("header")),
+            "lab.csv: no samples (the file needs a header row and at least one data row)"
+        );
+    }
+
+    #[test]
+    fn moisture_optional_for_prediction_but_not_for_fitting() {
+        let t = GOOD.replace(",12.3\n", ",\n");
+        assert!(err(&t).contains("column 10 (moisture_pct): `` is not a lab moisture (empty)"));
+        let s =
+            parse_samples(Path::new("in.csv"), t.as_bytes(), MoistureColumn::Optional).expect("ok");
+        assert!(!s.all_have_moisture);
+        assert_eq!(s.samples[0].moisture_pct, None);
+    }
+
+    #[test]
+    fn too_few_samples_for_the_model() {
+        let s = parse(GOOD).expect("valid");
+        let e = s
+            .require(3, "single-frequency")
+            .expect_err("2 < 6")
+            .to_string();
+        assert_eq!(e, "lab.csv: 2 samples, but the single-frequency model needs at least 6 (its parameters + 3)");
+        assert!(s.require(0, "x").is_err(), "2 samples < 0 + 3");
+    }
+
+    #[test]
+    fn unreadable_file_is_named() {
+        let e = read_samples(Path::new("/nonexistent/lab.csv"), MoistureColumn::Required)
+            .expect_err("missing");
+        assert!(
+            e.to_string()
+                .starts_with("/nonexistent/lab.csv: cannot read"),
+            "{e}"
+        );
+    }
+}
