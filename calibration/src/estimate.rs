@@ -1,0 +1,494 @@
+//! The device-side chain, shared by the firmware and `fringe cal predict`:
+//! per-frequency permittivity (with its noise standard deviation) +
+//! temperature + product calibration -> moisture, uncertainty, flags.
+//!
+//! - Single-frequency model: moisture from eps' at the model's frequency;
+//!   u^2 = (d moisture/d eps' * sd)^2 + SEC^2.
+//! - Relaxation model: [`invert`] -> (eps_hf, d_eps, sigma) with covariance
+//!   C; u^2 = g^T C g + SEC^2 with g the moisture gradient
+//!   ([`RelaxationModel::gradient`]).
+//!
+//! No calibration, non-finite permittivity (an uncalibrated cell reports
+//! NaN) or a failed inversion give `moisture_pct: None` and say why in
+//! [`Estimate::flags`] and [`Estimate::failure`]; a number is never invented.
+//! A temperature, input or moisture outside the calibration's valid ranges
+//! still gives the moisture, flagged.
+//!
+//! [`RelaxationModel::gradient`]: crate::product::RelaxationModel::gradient
+
+use crate::cell::{admittance_to_permittivity, CellConstants, CellError};
+use crate::invert::{invert, Inversion, InvertError, InvertOptions, Observation};
+use crate::product::{ProductCalibration, ProductModel};
+use crate::real::{Cx, Real};
+use bitflags::bitflags;
+
+bitflags! {
+    /// Quality flags of an estimate. The bit values equal those of
+    /// `fringe_protocol::Flags`, so `Flags::from_bits_truncate(f.bits())` maps them.
+    #[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+    pub struct EstimateFlags: u16 {
+        /// Moisture or a model input outside the calibration's valid range.
+        const OUT_OF_RANGE = 1 << 2;
+        /// Temperature outside the calibrated range (or not finite).
+        const TEMP_OUT_OF_RANGE = 1 << 3;
+        /// The relaxation inversion failed (not converged, singular, bad input).
+        const FIT_NOT_CONVERGED = 1 << 4;
+        /// No product calibration, or the permittivity is not available.
+        const NOT_CALIBRATED = 1 << 7;
+    }
+}
+
+/// One frequency's permittivity and its noise.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Channel<T> {
+    /// Excitation frequency, Hz.
+    pub freq_hz: T,
+    /// eps'.
+    pub eps_re: T,
+    /// eps'' (>= 0 for a lossy material).
+    pub eps_loss: T,
+    /// Standard deviation of the noise on eps' and on eps''.
+    pub sd: T,
+}
+
+/// Input of [`estimate`]: both frequencies (lower first) and the temperature.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct EstimateInput<T> {
+    /// Channels, lower frequency first.
+    pub channels: [Channel<T>; 2],
+    /// Product temperature, C.
+    pub temperature_c: T,
+}
+
+/// Why an estimate carries no moisture.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum Failure {
+    /// No product calibration.
+    NotCalibrated,
+    /// Permittivity, frequency or temperature not finite (e.g. uncalibrated cell).
+    InvalidInput,
+    /// The inversion failed.
+    Inversion(InvertError),
+    /// The model produced a non-finite moisture (inputs far outside the model).
+    NonFinite,
+}
+
+impl core::fmt::Display for Failure {
+    fn fmt(&self, f: &mut core::fmt::Formatter<'_>) -> core::fmt::Result {
+        match self {
+            Failure::NotCalibrated => f.write_str("no product calibration"),
+            Failure::InvalidInput => {
+                f.write_str("permittivity, frequency or temperature not finite")
+            }
+            Failure::Inversion(e) => write!(f, "{e}"),
+            Failure::NonFinite => f.write_str("model gave a non-finite moisture"),
+        }
+    }
+}
+
+/// Result of [`estimate`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Estimate<T> {
+    /// Moisture on the calibration's basis, %; `None` when there is none.
+    pub moisture_pct: Option<T>,
+    /// Standard uncertainty (1 sigma), % moisture; NaN without moisture.
+    pub uncertainty_pct: T,
+    /// Quality flags.
+    pub flags: EstimateFlags,
+    /// The inversion (relaxation model only).
+    pub inversion: Option<Inversion<T>>,
+    /// Why there is no moisture.
+    pub failure: Option<Failure>,
+}
+
+impl<T: Real> Estimate<T> {
+    fn none(flags: EstimateFlags, failure: Failure, inversion: Option<Inversion<T>>) -> Self {
+        Estimate {
+            moisture_pct: None,
+            uncertainty_pct: T::c(f64::NAN),
+            flags,
+            inversion,
+            failure: Some(failure),
+        }
+    }
+}
+
+/// Runs the chain for one reading (see the module docs). Never panics.
+pub fn estimate<T: Real>(
+    input: &EstimateInput<T>,
+    cal: Option<&ProductCalibration<T>>,
+) -> Estimate<T> {
+    let Some(cal) = cal else {
+        return Estimate::none(EstimateFlags::NOT_CALIBRATED, Failure::NotCalibrated, None);
+    };
+    let t = input.temperature_c;
+    let mut flags = EstimateFlags::empty();
+    if !t.is_finite() {
+        return Estimate::none(
+            EstimateFlags::TEMP_OUT_OF_RANGE,
+            Failure::InvalidInput,
+            None,
+        );
+    }
+    if !cal.temperature_c.contains(t) {
+        flags |= EstimateFlags::TEMP_OUT_OF_RANGE;
+    }
+    let ranges = cal.input_ranges();
+    let (m, var_model, inversion) = match &cal.model {
+        ProductModel::SingleFrequency(sf) => {
+            let Some(ch) = input.channels.get(sf.freq_index) else {
+                return Estimate::none(EstimateFlags::NOT_CALIBRATED, Failure::InvalidInput, None);
+            };
+            if !(ch.eps_re.is_finite() && ch.freq_hz.is_finite()) {
+                return Estimate::none(EstimateFlags::NOT_CALIBRATED, Failure::InvalidInput, None);
+            }
+            if ranges.first().is_some_and(|r| !r.contains(ch.eps_re)) {
+                flags |= EstimateFlags::OUT_OF_RANGE;
+            }
+            let d = sf.d_moisture_d_eps(ch.eps_re) * ch.sd;
+            (sf.moisture_pct(ch.eps_re, t), d * d, None)
+        }
+        ProductModel::Relaxation(rm) => {
+            for ch in input.channels.iter() {
+                if !(ch.eps_re.is_finite() && ch.eps_loss.is_finite() && ch.freq_hz.is_finite()) {
+                    return Estimate::none(
+                        EstimateFlags::NOT_CALIBRATED,
+                        Failure::InvalidInput,
+                        None,
+                    );
+                }
+            }
+            let obs = input.channels.map(|c| Observation {
+                freq_hz: c.freq_hz,
+                eps: Cx::new(c.eps_re, -c.eps_loss),
+                sd: c.sd,
+            });
+            let inv = match invert(&obs, &rm.law, t, &InvertOptions::default()) {
+                Ok(inv) => inv,
+                Err(e) => {
+                    let f = match e {
+                        InvertError::OutOfBounds(_) => EstimateFlags::OUT_OF_RANGE,
+                        _ => EstimateFlags::FIT_NOT_CONVERGED,
+                    };
+                    return Estimate::none(flags | f, Failure::Inversion(e), None);
+                }
+            };
+            let p = inv.params;
+            let mix = rm.mixing_moisture_pct(p.eps_hf, t);
+            for (r, x) in ranges.iter().zip([p.eps_hf, p.d_eps, p.sigma_s_m, mix]) {
+                if !r.contains(x) {
+                    flags |= EstimateFlags::OUT_OF_RANGE;
+                }
+            }
+            let g = rm.gradient(&p, t);
+            let mut var = T::zero();
+            for i in 0..3 {
+                for j in 0..3 {
+                    var += g[i] * inv.covariance[i][j] * g[j];
+                }
+            }
+            (rm.moisture_pct(&p, t), var, Some(inv))
+        }
+    };
+    if !m.is_finite() {
+        return Estimate::none(
+            flags | EstimateFlags::OUT_OF_RANGE,
+            Failure::NonFinite,
+            inversion,
+        );
+    }
+    if !cal.moisture_pct.contains(m) {
+        flags |= EstimateFlags::OUT_OF_RANGE;
+    }
+    let u = T::sqrt(T::max(var_model, T::zero()) + cal.sec_pct * cal.sec_pct);
+    Estimate {
+        moisture_pct: Some(m),
+        uncertainty_pct: u,
+        flags,
+        inversion,
+        failure: None,
+    }
+}
+
+/// Standard deviation of eps' (and eps'') from the standard deviation of the
+/// admittance noise (same on G and B, S): sd / (w C0).
+pub fn permittivity_sd<T: Real>(freq_hz: T, admittance_sd_s: T, cell: &CellConstants<T>) -> T {
+    admittance_sd_s / (crate::dielectric::omega(freq_hz) * cell.cell_pf * T::c(1e-12))
+}
+
+/// The whole chain from admittances: cell -> inversion -> moisture.
+///
+/// `y_s[k]` is G + jB at `freqs_hz[k]`, `y_sd_s[k]` its noise standard deviation.
+///
+/// # Errors
+/// A [`CellError`] when a cell constant or frequency is unusable (then there
+/// is no permittivity to estimate from).
+pub fn estimate_from_admittance<T: Real>(
+    freqs_hz: [T; 2],
+    y_s: [Cx<T>; 2],
+    y_sd_s: [T; 2],
+    cells: &[CellConstants<T>; 2],
+    temperature_c: T,
+    cal: Option<&ProductCalibration<T>>,
+) -> Result<Estimate<T>, CellError> {
+    let mut ch = [Channel {
+        freq_hz: T::zero(),
+        eps_re: T::zero(),
+        eps_loss: T::zero(),
+        sd: T::zero(),
+    }; 2];
+    for k in 0..2 {
+        let e = admittance_to_permittivity(freqs_hz[k], y_s[k], &cells[k])?;
+        ch[k] = Channel {
+            freq_hz: freqs_hz[k],
+            eps_re: e.re,
+            eps_loss: -e.im,
+            sd: permittivity_sd(freqs_hz[k], y_sd_s[k], &cells[k]),
+        };
+    }
+    Ok(estimate(
+        &EstimateInput {
+            channels: ch,
+            temperature_c,
+        },
+        cal,
+    ))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::cell::permittivity_to_admittance;
+    use crate::dielectric::loss_factor;
+    use crate::moisture::Basis;
+    use crate::product::{ModelKind, Range, RelaxationModel, SingleFrequencyModel};
+    use crate::synth::{SynthProduct, SynthSample};
+
+    /// Relaxation calibration whose polynomial is the identity: the synthetic
+    /// product's own mixture and law, so the chain must return the synthetic moisture.
+    fn identity_cal<T: Real>() -> ProductCalibration<T> {
+        let sp = SynthProduct::<f64>::grain();
+        let m = ProductModel::Relaxation(RelaxationModel {
+            law: sp.law(),
+            mixture: sp.mixture,
+            t_ref_c: 25.0,
+            coeffs: [0.0, 1.0, 0.0, 0.0],
+            c_t: 0.0,
+            c_sigma: 0.0,
+        });
+        let (p, n) = m.to_params();
+        let r = Range::new;
+        ProductCalibration::from_parts(
+            ModelKind::Relaxation,
+            &p[..n],
+            Basis::Wet,
+            r(5.0, 30.0),
+            r(0.0, 50.0),
+            &[r(1.5, 40.0), r(0.0, 500.0), r(1e-6, 1.0), r(0.0, 40.0)],
+            0.25,
+        )
+        .unwrap()
+    }
+
+    fn input<T: Real>(s: &SynthSample<f64>, sd: f64) -> EstimateInput<T> {
+        let sp = SynthProduct::<f64>::grain();
+        let ch = [1e6, 20e6].map(|f| {
+            let e = sp.permittivity(f, s);
+            Channel {
+                freq_hz: T::c(f),
+                eps_re: T::c(e.re),
+                eps_loss: T::c(loss_factor(e)),
+                sd: T::c(sd),
+            }
+        });
+        EstimateInput {
+            channels: ch,
+            temperature_c: T::c(s.temperature_c),
+        }
+    }
+
+    fn grid() -> impl Iterator<Item = SynthSample<f64>> {
+        [8.0, 12.0, 16.0, 20.0, 25.0].into_iter().flat_map(|m| {
+            [5.0, 20.0, 40.0].into_iter().flat_map(move |t| {
+                [0.02, 0.08, 0.3].into_iter().map(move |salt| SynthSample {
+                    moisture_pct: m,
+                    temperature_c: t,
+                    water_sigma25_s_m: salt,
+                })
+            })
+        })
+    }
+
+    #[test]
+    fn uncalibrated_gives_no_moisture() {
+        let s = SynthSample {
+            moisture_pct: 15.0,
+            temperature_c: 20.0,
+            water_sigma25_s_m: 0.05,
+        };
+        let e = estimate::<f32>(&input(&s, 0.01), None);
+        assert_eq!(e.moisture_pct, None);
+        assert!(e.flags.contains(EstimateFlags::NOT_CALIBRATED));
+        assert!(e.uncertainty_pct.is_nan());
+        // An uncalibrated cell reports NaN permittivity (fringe_protocol::ChannelValue).
+        let mut i = input::<f32>(&s, 0.01);
+        i.channels[0].eps_re = f32::NAN;
+        let e = estimate(&i, Some(&identity_cal()));
+        assert_eq!(
+            (e.moisture_pct, e.failure),
+            (None, Some(Failure::InvalidInput))
+        );
+        assert!(e.flags.contains(EstimateFlags::NOT_CALIBRATED));
+        // Zero noise sd is refused by the inversion, not turned into a number.
+        let mut i = input::<f32>(&s, 0.01);
+        i.channels[1].sd = 0.0;
+        let e = estimate(&i, Some(&identity_cal()));
+        assert_eq!(e.moisture_pct, None);
+        assert!(e.flags.contains(EstimateFlags::FIT_NOT_CONVERGED));
+    }
+
+    #[test]
+    fn relaxation_chain_recovers_synthetic_moisture_through_salt_and_temperature() {
+        let cal = identity_cal::<f64>();
+        for s in grid() {
+            let e = estimate(&input::<f64>(&s, 1e-3), Some(&cal));
+            let m = e
+                .moisture_pct
+                .unwrap_or_else(|| panic!("{s:?}: {:?}", e.failure));
+            assert!((m - s.moisture_pct).abs() < 1e-3, "{s:?}: {m}");
+            assert!(
+                e.uncertainty_pct >= 0.25 && e.uncertainty_pct < 0.3,
+                "{}",
+                e.uncertainty_pct
+            );
+            assert!(e.flags.is_empty(), "{s:?}: {:?}", e.flags);
+        }
+    }
+
+    #[test]
+    fn f32_path_agrees_with_f64_within_0_01_pct() {
+        // Issue 3: the firmware path (f32, libm) agrees with the host path (f64)
+        // within 0.01 % moisture on the same inputs (f32-rounded inputs for both).
+        let c32 = identity_cal::<f32>();
+        let c64 = c32.cast::<f64>();
+        let mut worst = 0.0f64;
+        for s in grid() {
+            let i32_ = input::<f32>(&s, 1e-3);
+            let i64_ = EstimateInput {
+                channels: i32_.channels.map(|c| Channel {
+                    freq_hz: c.freq_hz as f64,
+                    eps_re: c.eps_re as f64,
+                    eps_loss: c.eps_loss as f64,
+                    sd: c.sd as f64,
+                }),
+                temperature_c: i32_.temperature_c as f64,
+            };
+            let a = estimate(&i32_, Some(&c32));
+            let a = a
+                .moisture_pct
+                .unwrap_or_else(|| panic!("{s:?} {:?}", a.failure)) as f64;
+            let b = estimate(&i64_, Some(&c64)).moisture_pct.unwrap();
+            worst = worst.max((a - b).abs());
+        }
+        assert!(
+            worst < 0.01,
+            "worst f32 - f64 difference {worst} % moisture"
+        );
+    }
+
+    #[test]
+    fn single_frequency_model_and_flags() {
+        // A straight line through two synthetic points at 25 C, low salt.
+        let sp = SynthProduct::<f64>::grain();
+        let e_at = |m: f64, t: f64, salt: f64| {
+            sp.permittivity(
+                20e6,
+                &SynthSample {
+                    moisture_pct: m,
+                    temperature_c: t,
+                    water_sigma25_s_m: salt,
+                },
+            )
+            .re
+        };
+        let (e1, e2) = (e_at(10.0, 25.0, 0.02), e_at(20.0, 25.0, 0.02));
+        let c1 = 10.0 / (e2 - e1);
+        let model = ProductModel::SingleFrequency(SingleFrequencyModel {
+            freq_index: 1,
+            t_ref_c: 25.0,
+            coeffs: [10.0 - c1 * e1, c1, 0.0, 0.0],
+            c_t: 0.0,
+        });
+        let (p, n) = model.to_params();
+        let r = Range::new;
+        let cal = ProductCalibration::<f64>::from_parts(
+            ModelKind::SingleFrequency,
+            &p[..n],
+            Basis::Wet,
+            r(5.0, 30.0),
+            r(10.0, 40.0),
+            &[r(2.0, 30.0)],
+            0.3,
+        )
+        .unwrap();
+        let run = |m, t, salt| {
+            estimate(
+                &input::<f64>(
+                    &SynthSample {
+                        moisture_pct: m,
+                        temperature_c: t,
+                        water_sigma25_s_m: salt,
+                    },
+                    0.01,
+                ),
+                Some(&cal),
+            )
+        };
+        let base = run(15.0, 25.0, 0.02);
+        assert!(base.flags.is_empty() && base.inversion.is_none());
+        let u = (c1 * 0.01f64).hypot(0.3);
+        assert!(
+            (base.uncertainty_pct - u).abs() < 1e-6,
+            "{} {u}",
+            base.uncertainty_pct
+        );
+        // Salt biases the single-frequency reading upward (the synth's purpose).
+        let salty = run(15.0, 25.0, 0.3).moisture_pct.unwrap();
+        assert!(salty - base.moisture_pct.unwrap() > 0.5, "{salty}");
+        // Temperature outside 10-40 C is flagged but still reported.
+        let cold = run(15.0, 2.0, 0.02);
+        assert!(
+            cold.moisture_pct.is_some() && cold.flags.contains(EstimateFlags::TEMP_OUT_OF_RANGE)
+        );
+        // Moisture outside 5-30 % is flagged.
+        let wet = run(34.0, 25.0, 0.02);
+        assert!(wet.flags.contains(EstimateFlags::OUT_OF_RANGE));
+    }
+
+    #[test]
+    fn chain_from_admittance_matches_permittivity_chain() {
+        let cal = identity_cal::<f32>();
+        let sp = SynthProduct::<f32>::grain();
+        let s = SynthSample {
+            moisture_pct: 14.0f32,
+            temperature_c: 18.0,
+            water_sigma25_s_m: 0.1,
+        };
+        let cells = [CellConstants {
+            stray_pf: 2.7f32,
+            cell_pf: 3.44,
+            g_offset_s: 1e-7,
+        }; 2];
+        let f = [1e6f32, 20e6];
+        let y =
+            f.map(|fk| permittivity_to_admittance(fk, sp.permittivity(fk, &s), &cells[0]).unwrap());
+        let e = estimate_from_admittance(f, y, [2e-10, 4e-9], &cells, 18.0, Some(&cal)).unwrap();
+        let m = e.moisture_pct.unwrap();
+        assert!((m - 14.0).abs() < 0.01, "{m}");
+        assert!(
+            (permittivity_sd(1e6f32, 2e-10, &cells[0]) - 2e-10 / (6.283_185e6 * 3.44e-12)).abs()
+                < 1e-6
+        );
+    }
+}

@@ -1,0 +1,760 @@
+//! Product calibration models, evaluated identically on device and host.
+//!
+//! Two models (`fringe_protocol::ModelKind` carries which one):
+//!
+//! - **Single frequency** (what a one-frequency instrument can do):
+//!   `moisture = c0 + c1 e + c2 e^2 + c3 e^3 + c_t (t - t_ref)`, e = eps' at
+//!   one of the two frequencies (the higher by default).
+//! - **Relaxation**: the two-frequency inversion gives (eps_hf, d_eps, sigma);
+//!   the product mixture (solid + water + air, [`ProductMixture`]) turns eps_hf
+//!   into a mixing-model moisture m (% wet basis, the water mass fraction)
+//!   with water's permittivity at the product temperature (Malmberg and
+//!   Maryott 1956); then
+//!   `moisture = p0 + p1 m + p2 m^2 + p3 m^3 + c_t (t - t_ref) + c_s ln(sigma / sigma_ref)`.
+//!
+//! Both are linear in their coefficients over the features returned by
+//! [`SingleFrequencyModel::features`] and [`RelaxationModel::features`]; the
+//! host fit regresses on exactly those features, so device and host agree.
+//!
+//! # Flat parameter layout (`fringe_protocol::ProductCal::params`, f32)
+//!
+//! ```text
+//! SingleFrequency, 8 values:
+//!  [0] layout version (1)      [1] frequency index (0 lower, 1 higher)
+//!  [2] t_ref_c                 [3] c0  [4] c1  [5] c2  [6] c3   (% per eps'^k)
+//!  [7] c_t (% per K)
+//!
+//! Relaxation, 17 values:
+//!  [0] layout version (1)      [1] alpha (0 <= alpha < 1)
+//!  [2] fr_ref_hz (> 0)         [3] sigma_ref_s_m (> 0)
+//!  [4] fr_exponent p           [5] fr_temp_coeff_per_c
+//!  [6] mixing exponent a (0..=1; 0 logarithmic, 0.5 CRIM)
+//!  [7] eps_dry (>= 1)          [8] particle_density_kg_m3 (> 0)
+//!  [9] bulk_density_kg_m3 (> 0, below the particle density and 1000)
+//!  [10] t_ref_c                [11] p0 [12] p1 [13] p2 [14] p3  (% per m^k)
+//!  [15] c_t (% per K)          [16] c_s (% per unit ln(sigma/sigma_ref))
+//! ```
+//!
+//! Valid ranges and the SEC travel beside the params (as in
+//! `fringe_protocol::ProductCal`): moisture, temperature and each model
+//! input in the order of [`ProductModel::input_names`].
+
+use crate::invert::{MaterialParams, RelaxationLaw};
+use crate::mixing::ProductMixture;
+use crate::moisture::Basis;
+use crate::real::Real;
+use crate::water::static_permittivity_mm;
+use core::fmt;
+
+/// Most parameters in the flat layout (`fringe_protocol::MAX_CAL_PARAMS`).
+pub const MAX_PARAMS: usize = 24;
+/// Most model inputs with a valid range (`fringe_protocol::MAX_CAL_INPUTS`).
+pub const MAX_INPUTS: usize = 6;
+/// Current layout version (params[0]).
+pub const LAYOUT_VERSION: f32 = 1.0;
+/// Length of the single-frequency layout.
+pub const SINGLE_LEN: usize = 8;
+/// Length of the relaxation layout.
+pub const RELAXATION_LEN: usize = 17;
+
+/// Which model (mirrors `fringe_protocol::ModelKind`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ModelKind {
+    /// [`SingleFrequencyModel`].
+    SingleFrequency,
+    /// [`RelaxationModel`].
+    Relaxation,
+}
+
+/// Valid range of one quantity (inclusive).
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct Range<T> {
+    /// Lower bound.
+    pub min: T,
+    /// Upper bound.
+    pub max: T,
+}
+
+impl<T: Real> Range<T> {
+    /// A range.
+    pub fn new(min: T, max: T) -> Self {
+        Range { min, max }
+    }
+    /// Whether `x` lies in the range (NaN never does).
+    pub fn contains(&self, x: T) -> bool {
+        x >= self.min && x <= self.max
+    }
+    fn valid(&self) -> bool {
+        !(self.min.to_f64().is_nan() || self.max.to_f64().is_nan()) && self.min <= self.max
+    }
+    fn cast<U: Real>(&self) -> Range<U> {
+        Range {
+            min: U::cast(self.min),
+            max: U::cast(self.max),
+        }
+    }
+}
+
+/// Why a calibration was refused.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum ParamsError {
+    /// The params slice has the wrong length for the model.
+    WrongLength {
+        /// Expected length.
+        expected: usize,
+        /// Length given.
+        got: usize,
+    },
+    /// params[0] names a layout this build does not know.
+    UnknownVersion,
+    /// A value is NaN or infinite.
+    NonFinite {
+        /// Index in the flat layout.
+        index: usize,
+    },
+    /// A value is outside what the model allows.
+    Invalid {
+        /// Index in the flat layout.
+        index: usize,
+        /// What is required.
+        reason: &'static str,
+    },
+    /// A valid range is NaN or has min > max (`index` 0 moisture, 1
+    /// temperature, 2.. the inputs).
+    BadRange {
+        /// Which range.
+        index: usize,
+    },
+    /// The number of input ranges differs from the model's inputs.
+    WrongInputCount {
+        /// Expected count.
+        expected: usize,
+        /// Count given.
+        got: usize,
+    },
+    /// The SEC is negative or not finite.
+    BadSec,
+}
+
+impl fmt::Display for ParamsError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            ParamsError::WrongLength { expected, got } => {
+                write!(
+                    f,
+                    "calibration params: expected {expected} values, got {got}"
+                )
+            }
+            ParamsError::UnknownVersion => {
+                f.write_str("calibration params[0]: unknown layout version (expected 1)")
+            }
+            ParamsError::NonFinite { index } => {
+                write!(f, "calibration params[{index}] is not finite")
+            }
+            ParamsError::Invalid { index, reason } => {
+                write!(f, "calibration params[{index}]: {reason}")
+            }
+            ParamsError::BadRange { index } => {
+                write!(f, "valid range {index} (0 moisture, 1 temperature, 2.. inputs) is NaN or min > max")
+            }
+            ParamsError::WrongInputCount { expected, got } => {
+                write!(
+                    f,
+                    "calibration has {got} input ranges, model needs {expected}"
+                )
+            }
+            ParamsError::BadSec => f.write_str("SEC must be a finite, non-negative % moisture"),
+        }
+    }
+}
+
+impl core::error::Error for ParamsError {}
+
+#[inline]
+fn poly3<T: Real>(c: &[T; 4], x: T) -> T {
+    c[0] + x * (c[1] + x * (c[2] + x * c[3]))
+}
+
+#[inline]
+fn dpoly3<T: Real>(c: &[T; 4], x: T) -> T {
+    c[1] + x * (T::c(2.0) * c[2] + x * T::c(3.0) * c[3])
+}
+
+/// Single-frequency baseline model.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SingleFrequencyModel<T> {
+    /// Which frequency's eps' (0 lower, 1 higher).
+    pub freq_index: usize,
+    /// Reference temperature of the temperature term, C.
+    pub t_ref_c: T,
+    /// c0..c3, % moisture per eps'^k.
+    pub coeffs: [T; 4],
+    /// Temperature coefficient, % per K.
+    pub c_t: T,
+}
+
+impl<T: Real> SingleFrequencyModel<T> {
+    /// Number of features (and coefficients).
+    pub const N_FEATURES: usize = 5;
+
+    /// Features `[1, e, e^2, e^3, t - t_ref]` the moisture is linear in.
+    pub fn features(&self, eps_re: T, t_c: T) -> [T; 5] {
+        [
+            T::one(),
+            eps_re,
+            eps_re * eps_re,
+            eps_re * eps_re * eps_re,
+            t_c - self.t_ref_c,
+        ]
+    }
+
+    /// Moisture, %.
+    pub fn moisture_pct(&self, eps_re: T, t_c: T) -> T {
+        poly3(&self.coeffs, eps_re) + self.c_t * (t_c - self.t_ref_c)
+    }
+
+    /// d moisture / d eps', % per unit.
+    pub fn d_moisture_d_eps(&self, eps_re: T) -> T {
+        dpoly3(&self.coeffs, eps_re)
+    }
+}
+
+/// Relaxation model.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RelaxationModel<T> {
+    /// Cole-Cole alpha and relaxation-frequency law used by the inversion.
+    pub law: RelaxationLaw<T>,
+    /// Solid + water + air mixture of the product.
+    pub mixture: ProductMixture<T>,
+    /// Reference temperature of the temperature term, C.
+    pub t_ref_c: T,
+    /// p0..p3, % moisture per m^k (m: mixing-model moisture, % wet basis).
+    pub coeffs: [T; 4],
+    /// Temperature coefficient, % per K.
+    pub c_t: T,
+    /// Conductivity coefficient, % per unit ln(sigma / sigma_ref).
+    pub c_sigma: T,
+}
+
+impl<T: Real> RelaxationModel<T> {
+    /// Number of features (and coefficients).
+    pub const N_FEATURES: usize = 6;
+
+    /// Mixing-model moisture m (% wet basis) from eps_hf at `t_c`.
+    pub fn mixing_moisture_pct(&self, eps_hf: T, t_c: T) -> T {
+        self.mixture
+            .moisture_wb_pct(eps_hf, static_permittivity_mm(t_c))
+    }
+
+    /// Features `[1, m, m^2, m^3, t - t_ref, ln(sigma/sigma_ref)]`.
+    pub fn features(&self, p: &MaterialParams<T>, t_c: T) -> [T; 6] {
+        let m = self.mixing_moisture_pct(p.eps_hf, t_c);
+        [
+            T::one(),
+            m,
+            m * m,
+            m * m * m,
+            t_c - self.t_ref_c,
+            T::ln(p.sigma_s_m / self.law.sigma_ref_s_m),
+        ]
+    }
+
+    /// Moisture, %.
+    pub fn moisture_pct(&self, p: &MaterialParams<T>, t_c: T) -> T {
+        let m = self.mixing_moisture_pct(p.eps_hf, t_c);
+        poly3(&self.coeffs, m)
+            + self.c_t * (t_c - self.t_ref_c)
+            + self.c_sigma * T::ln(p.sigma_s_m / self.law.sigma_ref_s_m)
+    }
+
+    /// Gradient of the moisture w.r.t. (eps_hf, d_eps, sigma_s_m).
+    pub fn gradient(&self, p: &MaterialParams<T>, t_c: T) -> [T; 3] {
+        let ew = static_permittivity_mm(t_c);
+        let m = self.mixture.moisture_wb_pct(p.eps_hf, ew);
+        let dm = self.mixture.d_moisture_d_eps(p.eps_hf, ew);
+        [
+            dpoly3(&self.coeffs, m) * dm,
+            T::zero(),
+            self.c_sigma / p.sigma_s_m,
+        ]
+    }
+}
+
+/// A product model of either kind.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum ProductModel<T> {
+    /// Single-frequency baseline.
+    SingleFrequency(SingleFrequencyModel<T>),
+    /// Relaxation model.
+    Relaxation(RelaxationModel<T>),
+}
+
+impl<T: Real> ProductModel<T> {
+    /// The model's kind.
+    pub fn kind(&self) -> ModelKind {
+        match self {
+            ProductModel::SingleFrequency(_) => ModelKind::SingleFrequency,
+            ProductModel::Relaxation(_) => ModelKind::Relaxation,
+        }
+    }
+
+    /// Names (with units) of the inputs whose valid ranges a calibration carries.
+    pub fn input_names(&self) -> &'static [&'static str] {
+        match self {
+            ProductModel::SingleFrequency(_) => &["eps_re"],
+            ProductModel::Relaxation(_) => &["eps_hf", "d_eps", "sigma_s_m", "mixing_moisture_pct"],
+        }
+    }
+
+    /// Flat `f32` parameter layout (see the module docs); returns the array
+    /// and the number of values used.
+    pub fn to_params(&self) -> ([f32; MAX_PARAMS], usize) {
+        let mut out = [0.0f32; MAX_PARAMS];
+        let f = |x: T| x.to_f64() as f32;
+        out[0] = LAYOUT_VERSION;
+        match self {
+            ProductModel::SingleFrequency(m) => {
+                out[1] = m.freq_index as f32;
+                out[2] = f(m.t_ref_c);
+                for k in 0..4 {
+                    out[3 + k] = f(m.coeffs[k]);
+                }
+                out[7] = f(m.c_t);
+                (out, SINGLE_LEN)
+            }
+            ProductModel::Relaxation(m) => {
+                let v = [
+                    m.law.alpha,
+                    m.law.fr_ref_hz,
+                    m.law.sigma_ref_s_m,
+                    m.law.fr_exponent,
+                    m.law.fr_temp_coeff_per_c,
+                    m.mixture.exponent,
+                    m.mixture.eps_dry,
+                    m.mixture.particle_density_kg_m3,
+                    m.mixture.bulk_density_kg_m3,
+                    m.t_ref_c,
+                    m.coeffs[0],
+                    m.coeffs[1],
+                    m.coeffs[2],
+                    m.coeffs[3],
+                    m.c_t,
+                    m.c_sigma,
+                ];
+                for (i, x) in v.iter().enumerate() {
+                    out[1 + i] = f(*x);
+                }
+                (out, RELAXATION_LEN)
+            }
+        }
+    }
+
+    /// Parses and validates the flat layout.
+    ///
+    /// # Errors
+    /// [`ParamsError`] naming the offending index.
+    pub fn from_params(kind: ModelKind, params: &[f32]) -> Result<Self, ParamsError> {
+        let expected = match kind {
+            ModelKind::SingleFrequency => SINGLE_LEN,
+            ModelKind::Relaxation => RELAXATION_LEN,
+        };
+        if params.len() != expected {
+            return Err(ParamsError::WrongLength {
+                expected,
+                got: params.len(),
+            });
+        }
+        if let Some(index) = params.iter().position(|x| !x.is_finite()) {
+            return Err(ParamsError::NonFinite { index });
+        }
+        if params[0] != LAYOUT_VERSION {
+            return Err(ParamsError::UnknownVersion);
+        }
+        let g = |i: usize| T::c(params[i] as f64);
+        let bad = |index, reason| Err(ParamsError::Invalid { index, reason });
+        match kind {
+            ModelKind::SingleFrequency => {
+                let idx = params[1];
+                if idx != 0.0 && idx != 1.0 {
+                    return bad(1, "frequency index must be 0 or 1");
+                }
+                Ok(ProductModel::SingleFrequency(SingleFrequencyModel {
+                    freq_index: idx as usize,
+                    t_ref_c: g(2),
+                    coeffs: [g(3), g(4), g(5), g(6)],
+                    c_t: g(7),
+                }))
+            }
+            ModelKind::Relaxation => {
+                let p = params;
+                if !(p[1] >= 0.0 && p[1] < 1.0) {
+                    return bad(1, "alpha must be in [0, 1)");
+                }
+                if !(p[2] > 0.0) {
+                    return bad(2, "fr_ref_hz must be > 0");
+                }
+                if !(p[3] > 0.0) {
+                    return bad(3, "sigma_ref_s_m must be > 0");
+                }
+                if !(p[4] >= 0.0 && p[4] <= 3.0) {
+                    return bad(4, "fr_exponent must be in [0, 3]");
+                }
+                if !(p[6] >= 0.0 && p[6] <= 1.0) {
+                    return bad(6, "mixing exponent must be in [0, 1]");
+                }
+                if !(p[7] >= 1.0) {
+                    return bad(7, "eps_dry must be >= 1");
+                }
+                if !(p[8] > 0.0) {
+                    return bad(8, "particle density must be > 0 kg/m^3");
+                }
+                if !(p[9] > 0.0 && p[9] < p[8] && p[9] < 1000.0) {
+                    return bad(
+                        9,
+                        "bulk density must be > 0 and below the particle density and 1000 kg/m^3",
+                    );
+                }
+                Ok(ProductModel::Relaxation(RelaxationModel {
+                    law: RelaxationLaw {
+                        alpha: g(1),
+                        fr_ref_hz: g(2),
+                        sigma_ref_s_m: g(3),
+                        fr_exponent: g(4),
+                        fr_temp_coeff_per_c: g(5),
+                        t_ref_c: g(10),
+                    },
+                    mixture: ProductMixture {
+                        exponent: g(6),
+                        eps_dry: g(7),
+                        particle_density_kg_m3: g(8),
+                        bulk_density_kg_m3: g(9),
+                    },
+                    t_ref_c: g(10),
+                    coeffs: [g(11), g(12), g(13), g(14)],
+                    c_t: g(15),
+                    c_sigma: g(16),
+                }))
+            }
+        }
+    }
+
+    /// The same model in another scalar type.
+    pub fn cast<U: Real>(&self) -> ProductModel<U> {
+        match self {
+            ProductModel::SingleFrequency(m) => {
+                ProductModel::SingleFrequency(SingleFrequencyModel {
+                    freq_index: m.freq_index,
+                    t_ref_c: U::cast(m.t_ref_c),
+                    coeffs: m.coeffs.map(U::cast),
+                    c_t: U::cast(m.c_t),
+                })
+            }
+            ProductModel::Relaxation(m) => ProductModel::Relaxation(RelaxationModel {
+                law: RelaxationLaw {
+                    alpha: U::cast(m.law.alpha),
+                    fr_ref_hz: U::cast(m.law.fr_ref_hz),
+                    sigma_ref_s_m: U::cast(m.law.sigma_ref_s_m),
+                    fr_exponent: U::cast(m.law.fr_exponent),
+                    fr_temp_coeff_per_c: U::cast(m.law.fr_temp_coeff_per_c),
+                    t_ref_c: U::cast(m.law.t_ref_c),
+                },
+                mixture: ProductMixture {
+                    exponent: U::cast(m.mixture.exponent),
+                    eps_dry: U::cast(m.mixture.eps_dry),
+                    particle_density_kg_m3: U::cast(m.mixture.particle_density_kg_m3),
+                    bulk_density_kg_m3: U::cast(m.mixture.bulk_density_kg_m3),
+                },
+                t_ref_c: U::cast(m.t_ref_c),
+                coeffs: m.coeffs.map(U::cast),
+                c_t: U::cast(m.c_t),
+                c_sigma: U::cast(m.c_sigma),
+            }),
+        }
+    }
+}
+
+/// A product calibration: model, valid ranges, SEC and basis.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ProductCalibration<T> {
+    /// The model.
+    pub model: ProductModel<T>,
+    /// Basis of the moisture the model returns.
+    pub basis: Basis,
+    /// Valid moisture range, %.
+    pub moisture_pct: Range<T>,
+    /// Valid temperature range, C.
+    pub temperature_c: Range<T>,
+    /// Valid range of each input in [`ProductModel::input_names`] order
+    /// (entries past the model's input count are unused).
+    pub inputs: [Range<T>; MAX_INPUTS],
+    /// Standard error of calibration, % moisture.
+    pub sec_pct: T,
+}
+
+impl<T: Real> ProductCalibration<T> {
+    /// Builds and validates a calibration from its wire parts
+    /// (`fringe_protocol::ProductCal` fields).
+    ///
+    /// # Errors
+    /// [`ParamsError`].
+    pub fn from_parts(
+        kind: ModelKind,
+        params: &[f32],
+        basis: Basis,
+        moisture_pct: Range<f32>,
+        temperature_c: Range<f32>,
+        inputs: &[Range<f32>],
+        sec_pct: f32,
+    ) -> Result<Self, ParamsError> {
+        let model = ProductModel::<T>::from_params(kind, params)?;
+        let n = model.input_names().len();
+        if inputs.len() != n {
+            return Err(ParamsError::WrongInputCount {
+                expected: n,
+                got: inputs.len(),
+            });
+        }
+        for (index, r) in [moisture_pct, temperature_c]
+            .iter()
+            .chain(inputs.iter())
+            .enumerate()
+        {
+            if !r.valid() {
+                return Err(ParamsError::BadRange { index });
+            }
+        }
+        if !(sec_pct.is_finite() && sec_pct >= 0.0) {
+            return Err(ParamsError::BadSec);
+        }
+        let mut ins = [Range::new(T::zero(), T::zero()); MAX_INPUTS];
+        for (d, s) in ins.iter_mut().zip(inputs) {
+            *d = s.cast();
+        }
+        Ok(ProductCalibration {
+            model,
+            basis,
+            moisture_pct: moisture_pct.cast(),
+            temperature_c: temperature_c.cast(),
+            inputs: ins,
+            sec_pct: T::cast(sec_pct),
+        })
+    }
+
+    /// The valid input ranges in use.
+    pub fn input_ranges(&self) -> &[Range<T>] {
+        let n = self.model.input_names().len();
+        &self.inputs[..n]
+    }
+
+    /// The same calibration in another scalar type.
+    pub fn cast<U: Real>(&self) -> ProductCalibration<U> {
+        ProductCalibration {
+            model: self.model.cast(),
+            basis: self.basis,
+            moisture_pct: self.moisture_pct.cast(),
+            temperature_c: self.temperature_c.cast(),
+            inputs: self.inputs.map(|r| r.cast()),
+            sec_pct: U::cast(self.sec_pct),
+        }
+    }
+}
+
+#[cfg(test)]
+pub(crate) mod tests {
+    use super::*;
+
+    pub(crate) fn relaxation_model() -> RelaxationModel<f64> {
+        RelaxationModel {
+            law: RelaxationLaw {
+                alpha: 0.2,
+                fr_ref_hz: 5e6,
+                sigma_ref_s_m: 1e-3,
+                fr_exponent: 1.0,
+                fr_temp_coeff_per_c: 0.0,
+                t_ref_c: 25.0,
+            },
+            mixture: ProductMixture {
+                exponent: 0.5,
+                eps_dry: 3.0,
+                particle_density_kg_m3: 1400.0,
+                bulk_density_kg_m3: 760.0,
+            },
+            t_ref_c: 25.0,
+            coeffs: [0.2, 0.98, 0.001, 0.0],
+            c_t: 0.01,
+            c_sigma: -0.05,
+        }
+    }
+
+    #[test]
+    fn params_round_trip_both_kinds() {
+        let s = ProductModel::SingleFrequency(SingleFrequencyModel {
+            freq_index: 1,
+            t_ref_c: 20.0f64,
+            coeffs: [-3.0, 2.5, -0.04, 0.0005],
+            c_t: 0.02,
+        });
+        let r = ProductModel::Relaxation(relaxation_model());
+        for m in [s, r] {
+            let (p, n) = m.to_params();
+            assert!(n <= MAX_PARAMS);
+            let back = ProductModel::<f64>::from_params(m.kind(), &p[..n]).unwrap();
+            let (p2, n2) = back.to_params();
+            assert_eq!(&p[..n], &p2[..n2]);
+            // f32 rounding only.
+            let (q, _) = back.cast::<f32>().to_params();
+            assert_eq!(&p[..n], &q[..n]);
+        }
+    }
+
+    #[test]
+    fn params_validation_names_the_index() {
+        let (mut p, n) = ProductModel::Relaxation(relaxation_model()).to_params();
+        assert_eq!(
+            ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n - 1]),
+            Err(ParamsError::WrongLength {
+                expected: 17,
+                got: 16
+            })
+        );
+        p[5] = f32::NAN;
+        assert_eq!(
+            ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+            Err(ParamsError::NonFinite { index: 5 })
+        );
+        p[5] = 0.0;
+        p[9] = 2000.0;
+        assert!(matches!(
+            ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+            Err(ParamsError::Invalid { index: 9, .. })
+        ));
+        p[9] = 760.0;
+        p[0] = 2.0;
+        assert_eq!(
+            ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+            Err(ParamsError::UnknownVersion)
+        );
+        p[0] = 1.0;
+        p[1] = 1.0;
+        assert!(matches!(
+            ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+            Err(ParamsError::Invalid { index: 1, .. })
+        ));
+        let e = ParamsError::Invalid {
+            index: 1,
+            reason: "alpha must be in [0, 1)",
+        };
+        assert_eq!(
+            e.to_string(),
+            "calibration params[1]: alpha must be in [0, 1)"
+        );
+    }
+
+    #[test]
+    fn from_parts_checks_ranges_and_sec() {
+        let (p, n) = ProductModel::Relaxation(relaxation_model()).to_params();
+        let r = |a, b| Range::new(a, b);
+        let ins = [r(1.5, 40.0), r(0.0, 500.0), r(1e-5, 0.5), r(0.0, 40.0)];
+        let ok = ProductCalibration::<f32>::from_parts(
+            ModelKind::Relaxation,
+            &p[..n],
+            Basis::Wet,
+            r(5.0, 30.0),
+            r(0.0, 50.0),
+            &ins,
+            0.3,
+        )
+        .unwrap();
+        assert_eq!(ok.input_ranges().len(), 4);
+        let e = ProductCalibration::<f32>::from_parts(
+            ModelKind::Relaxation,
+            &p[..n],
+            Basis::Wet,
+            r(5.0, 30.0),
+            r(0.0, 50.0),
+            &ins[..3],
+            0.3,
+        );
+        assert_eq!(
+            e,
+            Err(ParamsError::WrongInputCount {
+                expected: 4,
+                got: 3
+            })
+        );
+        let e = ProductCalibration::<f32>::from_parts(
+            ModelKind::Relaxation,
+            &p[..n],
+            Basis::Wet,
+            r(30.0, 5.0),
+            r(0.0, 50.0),
+            &ins,
+            0.3,
+        );
+        assert_eq!(e, Err(ParamsError::BadRange { index: 0 }));
+        let e = ProductCalibration::<f32>::from_parts(
+            ModelKind::Relaxation,
+            &p[..n],
+            Basis::Wet,
+            r(5.0, 30.0),
+            r(0.0, 50.0),
+            &ins,
+            -1.0,
+        );
+        assert_eq!(e, Err(ParamsError::BadSec));
+    }
+
+    #[test]
+    fn relaxation_gradient_matches_finite_differences() {
+        let m = relaxation_model();
+        let p = MaterialParams {
+            eps_hf: 5.5,
+            d_eps: 20.0,
+            sigma_s_m: 2e-3,
+        };
+        let g = m.gradient(&p, 22.0);
+        let h = 1e-6;
+        let fd0 = (m.moisture_pct(
+            &MaterialParams {
+                eps_hf: 5.5 + h,
+                ..p
+            },
+            22.0,
+        ) - m.moisture_pct(
+            &MaterialParams {
+                eps_hf: 5.5 - h,
+                ..p
+            },
+            22.0,
+        )) / (2.0 * h);
+        let hs = 1e-9;
+        let fd2 = (m.moisture_pct(
+            &MaterialParams {
+                sigma_s_m: 2e-3 + hs,
+                ..p
+            },
+            22.0,
+        ) - m.moisture_pct(
+            &MaterialParams {
+                sigma_s_m: 2e-3 - hs,
+                ..p
+            },
+            22.0,
+        )) / (2.0 * hs);
+        assert!((g[0] - fd0).abs() < 1e-5 * fd0.abs());
+        assert!((g[2] - fd2).abs() < 1e-4 * fd2.abs());
+        // Linear in the features.
+        let f = m.features(&p, 22.0);
+        let c = [
+            m.coeffs[0],
+            m.coeffs[1],
+            m.coeffs[2],
+            m.coeffs[3],
+            m.c_t,
+            m.c_sigma,
+        ];
+        let dot: f64 = f.iter().zip(c).map(|(a, b)| a * b).sum();
+        assert!((dot - m.moisture_pct(&p, 22.0)).abs() < 1e-12);
+    }
+}
