@@ -13,10 +13,12 @@
 //! | [`mixing`] | power-law mixing (CRIM, Looyenga, Lichtenecker), Maxwell Garnett, Topp, Roth, product mixture |
 //! | [`moisture`] | wet/dry basis, volumetric/gravimetric (the one place for conversions) |
 //! | [`cell`] | admittance <-> permittivity, two-point calibration, verification |
+//! | [`ide`] | interdigital electrodes: cell constant, penetration depth, window cost |
 //! | [`invert`] | two-frequency relaxation inversion |
 //! | [`product`] | product calibration models and their flat parameter layout |
 //! | [`estimate`] | the device-side chain: permittivity -> moisture, uncertainty, flags |
 //! | [`synth`] | a synthetic product for the simulator, tests and demo |
+//! | [`temperature`] | Pt RTD (IEC 60751), NTC beta and Steinhart-Hart |
 #![cfg_attr(not(any(test, feature = "std")), no_std)]
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
@@ -28,12 +30,14 @@
 pub mod cell;
 pub mod dielectric;
 pub mod estimate;
+pub mod ide;
 pub mod invert;
 pub mod mixing;
 pub mod moisture;
 pub mod product;
 pub mod real;
 pub mod synth;
+pub mod temperature;
 pub mod water;
 
 pub use real::{Cx, Real};

@@ -60,6 +60,10 @@ pub trait Real:
     fn cosh(x: Self) -> Self;
     /// Four-quadrant arctangent of y/x (`libm::atan2[f]`).
     fn atan2(y: Self, x: Self) -> Self;
+    /// Arcsine (`libm::asin[f]`).
+    fn asin(x: Self) -> Self;
+    /// e^x - 1 (`libm::expm1[f]`), exact near 0.
+    fn exp_m1(x: Self) -> Self;
     /// Absolute value (`libm::fabs[f]`).
     fn abs(x: Self) -> Self;
     /// Whether the value is neither infinite nor NaN.
@@ -101,7 +105,7 @@ pub trait Real:
 }
 
 macro_rules! impl_real {
-    ($t:ty, $sqrt:path, $exp:path, $ln:path, $log10:path, $pow:path, $sin:path, $cos:path, $cosh:path, $atan2:path, $abs:path) => {
+    ($t:ty, $sqrt:path, $exp:path, $ln:path, $log10:path, $pow:path, $sin:path, $cos:path, $cosh:path, $atan2:path, $asin:path, $expm1:path, $abs:path) => {
         impl Real for $t {
             const EPSILON: Self = <$t>::EPSILON;
             const PI: Self = core::f64::consts::PI as $t;
@@ -151,6 +155,14 @@ macro_rules! impl_real {
                 $atan2(y, x)
             }
             #[inline]
+            fn asin(x: Self) -> Self {
+                $asin(x)
+            }
+            #[inline]
+            fn exp_m1(x: Self) -> Self {
+                $expm1(x)
+            }
+            #[inline]
             fn abs(x: Self) -> Self {
                 $abs(x)
             }
@@ -173,6 +185,8 @@ impl_real!(
     libm::cosf,
     libm::coshf,
     libm::atan2f,
+    libm::asinf,
+    libm::expm1f,
     libm::fabsf
 );
 impl_real!(
@@ -186,6 +200,8 @@ impl_real!(
     libm::cos,
     libm::cosh,
     libm::atan2,
+    libm::asin,
+    libm::expm1,
     libm::fabs
 );
 
