@@ -6,4 +6,7 @@
 
 pub mod cli;
 pub mod drift;
+pub mod plots;
+pub mod product_file;
+pub mod report;
 pub mod samples;

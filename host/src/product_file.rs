@@ -1,0 +1,432 @@
+//! `PRODUCT.toml`: a product calibration as a file a person can read.
+//!
+//! The file is our own format. What the device evaluates is exactly the
+//! wire form [`fringe_protocol::ProductCal`] built from it (name, model,
+//! basis, the flat `params` layout documented in
+//! `fringe_calibration::product`, valid ranges, SEC); `id` is that wire
+//! form's content id, checked on loading so a hand edit cannot go unnoticed.
+//! `[statistics]` and `[source]` are kept for people and the audit trail
+//! and do not change the id.
+//!
+//! ```toml
+//! format = "fringe-product/1"
+//! name = "HM wheat L2"          # at most 16 bytes, as the plant calls it
+//! model = "relaxation"          # or "single_frequency"
+//! basis = "wet"                 # or "dry"
+//! id = "1a2b3c4d"               # content id (first 4 bytes of SHA-256 of the wire form)
+//! made_unix_s = 1796000000
+//! sec_pct = 0.21
+//! params = [1.0, 0.05, ...]     # flat f32 layout, see fringe_calibration::product
+//! moisture_pct = [8.1, 21.7]    # valid ranges
+//! temperature_c = [5.2, 39.8]
+//!
+//! [[inputs]]                    # valid range of each model input
+//! name = "eps_hf"
+//! min = 3.1
+//! max = 9.4
+//!
+//! [statistics]                  # % moisture; cross-validated unless named sec
+//! n = 40
+//! ...
+//! ```
+
+use std::path::{Path, PathBuf};
+
+use fringe_protocol::{
+    short_string, Basis, CalId, ModelKind, ProductCal, Range, MAX_CAL_INPUTS, MAX_CAL_PARAMS,
+};
+use serde::{Deserialize, Serialize};
+
+/// Format name.
+pub const FORMAT: &str = "fringe-product/1";
+
+/// Statistics kept with a calibration (% moisture).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+pub struct Statistics {
+    /// Samples.
+    pub n: usize,
+    /// Standard error of calibration.
+    pub sec: f64,
+    /// Cross-validated standard error of prediction.
+    pub sep: f64,
+    /// Cross-validated bias (predicted - lab).
+    pub bias: f64,
+    /// Slope of lab on cross-validated predicted.
+    pub slope: f64,
+    /// Cross-validated R^2.
+    pub r2: f64,
+    /// SD(lab) / SEP.
+    pub rpd: f64,
+    /// Cross-validation split, in words.
+    pub cross_validation: String,
+}
+
+/// Where the calibration came from.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+pub struct Source {
+    /// Reference-sample file.
+    pub samples: String,
+    /// Its SHA-256 (hex).
+    pub samples_sha256: String,
+    /// Sample ids flagged as outliers (kept in the fit, listed for review).
+    pub outliers: Vec<String>,
+}
+
+/// One input range.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct InputRange {
+    /// Input name (with unit) as `fringe_calibration` names it.
+    pub name: String,
+    /// Lower bound.
+    pub min: f32,
+    /// Upper bound.
+    pub max: f32,
+}
+
+/// The file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ProductFile {
+    /// [`FORMAT`].
+    pub format: String,
+    /// Product name (at most 16 bytes).
+    pub name: String,
+    /// `single_frequency` or `relaxation`.
+    pub model: String,
+    /// `wet` or `dry`.
+    pub basis: String,
+    /// Content id of the wire form, 8 hex digits.
+    pub id: String,
+    /// When it was fitted, Unix seconds.
+    pub made_unix_s: u64,
+    /// Standard error of calibration, %.
+    pub sec_pct: f32,
+    /// Flat parameters.
+    pub params: Vec<f32>,
+    /// Valid moisture range, %.
+    pub moisture_pct: [f32; 2],
+    /// Valid temperature range, C.
+    pub temperature_c: [f32; 2],
+    /// Valid input ranges.
+    pub inputs: Vec<InputRange>,
+    /// Fit statistics.
+    pub statistics: Statistics,
+    /// Provenance.
+    pub source: Source,
+}
+
+/// A product file could not be used.
+#[derive(Debug, Clone, PartialEq)]
+#[non_exhaustive]
+pub enum ProductFileError {
+    /// Cannot read or write.
+    Io {
+        /// File.
+        path: PathBuf,
+        /// Reason.
+        reason: String,
+    },
+    /// Not valid TOML for this format (line and column from the parser).
+    Parse {
+        /// File.
+        path: PathBuf,
+        /// Line, 1-based.
+        line: usize,
+        /// Column, 1-based.
+        column: usize,
+        /// Reason.
+        reason: String,
+    },
+    /// A field has a value this format does not allow.
+    Invalid {
+        /// File.
+        path: PathBuf,
+        /// Field.
+        field: &'static str,
+        /// What is wrong.
+        reason: String,
+    },
+}
+
+impl std::fmt::Display for ProductFileError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            ProductFileError::Io { path, reason } => write!(f, "{}: {reason}", path.display()),
+            ProductFileError::Parse {
+                path,
+                line,
+                column,
+                reason,
+            } => {
+                write!(f, "{}:{line}:{column}: {reason}", path.display())
+            }
+            ProductFileError::Invalid {
+                path,
+                field,
+                reason,
+            } => {
+                write!(f, "{}: field `{field}`: {reason}", path.display())
+            }
+        }
+    }
+}
+
+impl std::error::Error for ProductFileError {}
+
+fn model_name(m: ModelKind) -> &'static str {
+    match m {
+        ModelKind::SingleFrequency => "single_frequency",
+        ModelKind::Relaxation => "relaxation",
+    }
+}
+
+impl ProductFile {
+    /// The file for a wire calibration plus its statistics and source.
+    pub fn from_wire(
+        cal: &ProductCal,
+        input_names: &[&str],
+        statistics: Statistics,
+        source: Source,
+    ) -> Self {
+        ProductFile {
+            format: FORMAT.into(),
+            name: cal.name.to_string(),
+            model: model_name(cal.model).into(),
+            basis: match cal.basis {
+                Basis::Wet => "wet".into(),
+                Basis::Dry => "dry".into(),
+            },
+            id: cal.content_id().to_string(),
+            made_unix_s: cal.made_s,
+            sec_pct: cal.sec_pct,
+            params: cal.params.to_vec(),
+            moisture_pct: [cal.moisture_pct.min, cal.moisture_pct.max],
+            temperature_c: [cal.temperature_c.min, cal.temperature_c.max],
+            inputs: cal
+                .inputs
+                .iter()
+                .enumerate()
+                .map(|(i, r)| InputRange {
+                    name: input_names
+                        .get(i)
+                        .map_or(format!("input{i}"), |s| s.to_string()),
+                    min: r.min,
+                    max: r.max,
+                })
+                .collect(),
+            statistics,
+            source,
+        }
+    }
+
+    /// The wire form the device stores and evaluates.
+    ///
+    /// # Errors
+    /// [`ProductFileError::Invalid`] naming the field (name too long, unknown
+    /// model or basis, too many params or inputs, id not matching).
+    pub fn to_wire(&self, path: &Path) -> Result<ProductCal, ProductFileError> {
+        let bad = |field: &'static str, reason: String| ProductFileError::Invalid {
+            path: path.to_path_buf(),
+            field,
+            reason,
+        };
+        if self.format != FORMAT {
+            return Err(bad(
+                "format",
+                format!("`{}` is not `{FORMAT}`", self.format),
+            ));
+        }
+        if self.name.is_empty() || self.name.len() > fringe_protocol::NAME_LEN {
+            return Err(bad(
+                "name",
+                format!("must be 1 to {} bytes", fringe_protocol::NAME_LEN),
+            ));
+        }
+        let model = match self.model.as_str() {
+            "single_frequency" => ModelKind::SingleFrequency,
+            "relaxation" => ModelKind::Relaxation,
+            m => {
+                return Err(bad(
+                    "model",
+                    format!("`{m}` is not single_frequency or relaxation"),
+                ))
+            }
+        };
+        let basis = match self.basis.as_str() {
+            "wet" => Basis::Wet,
+            "dry" => Basis::Dry,
+            b => return Err(bad("basis", format!("`{b}` is not wet or dry"))),
+        };
+        let params = heapless::Vec::<f32, MAX_CAL_PARAMS>::from_slice(&self.params)
+            .map_err(|_| bad("params", format!("at most {MAX_CAL_PARAMS} values")))?;
+        let ranges: Vec<Range> = self
+            .inputs
+            .iter()
+            .map(|r| Range {
+                min: r.min,
+                max: r.max,
+            })
+            .collect();
+        let inputs = heapless::Vec::<Range, MAX_CAL_INPUTS>::from_slice(&ranges)
+            .map_err(|_| bad("inputs", format!("at most {MAX_CAL_INPUTS} ranges")))?;
+        let cal = ProductCal {
+            name: short_string(&self.name),
+            model,
+            basis,
+            params,
+            moisture_pct: Range {
+                min: self.moisture_pct[0],
+                max: self.moisture_pct[1],
+            },
+            temperature_c: Range {
+                min: self.temperature_c[0],
+                max: self.temperature_c[1],
+            },
+            inputs,
+            sec_pct: self.sec_pct,
+            made_s: self.made_unix_s,
+        };
+        let id = cal.content_id().to_string();
+        if id != self.id {
+            return Err(bad(
+                "id",
+                format!(
+                    "the file says {} but its contents give {id}: the calibration was edited by hand; refit it (or correct `id` only if you mean this change)",
+                    self.id
+                ),
+            ));
+        }
+        Ok(cal)
+    }
+
+    /// The calibration's content id.
+    pub fn cal_id(&self) -> String {
+        self.id.clone()
+    }
+
+    /// Reads and checks a file (the wire form must build and its id match).
+    ///
+    /// # Errors
+    /// [`ProductFileError`].
+    pub fn load(path: &Path) -> Result<(ProductFile, ProductCal), ProductFileError> {
+        let text = std::fs::read_to_string(path).map_err(|e| ProductFileError::Io {
+            path: path.to_path_buf(),
+            reason: e.to_string(),
+        })?;
+        let f: ProductFile = toml::from_str(&text).map_err(|e| {
+            let (line, column) = e.span().map_or((1, 1), |s| line_col(&text, s.start));
+            ProductFileError::Parse {
+                path: path.to_path_buf(),
+                line,
+                column,
+                reason: e.message().to_string(),
+            }
+        })?;
+        let wire = f.to_wire(path)?;
+        Ok((f, wire))
+    }
+
+    /// Writes the file (to a temporary name first, then renamed, so a failed
+    /// write leaves no half file).
+    ///
+    /// # Errors
+    /// [`ProductFileError::Io`].
+    pub fn save(&self, path: &Path) -> Result<(), ProductFileError> {
+        let io = |e: std::io::Error| ProductFileError::Io {
+            path: path.to_path_buf(),
+            reason: e.to_string(),
+        };
+        let body = toml::to_string(self).map_err(|e| ProductFileError::Io {
+            path: path.to_path_buf(),
+            reason: e.to_string(),
+        })?;
+        let text = format!(
+            "# Fringe product calibration ({FORMAT}). The device evaluates exactly the fields above\n\
+             # [statistics]; `id` is their content id. Parameter layout: fringe_calibration::product.\n{body}"
+        );
+        let tmp = path.with_extension("toml.part");
+        std::fs::write(&tmp, text).map_err(io)?;
+        std::fs::rename(&tmp, path).map_err(io)
+    }
+}
+
+fn line_col(text: &str, at: usize) -> (usize, usize) {
+    let before = text.get(..at.min(text.len())).unwrap_or(text);
+    (
+        before.matches('\n').count() + 1,
+        before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1,
+    )
+}
+
+/// Parses an 8-hex-digit calibration id.
+pub fn parse_cal_id(s: &str) -> Option<CalId> {
+    u32::from_str_radix(s, 16)
+        .ok()
+        .filter(|_| s.len() == 8)
+        .map(|v| CalId(v.to_be_bytes()))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn wire() -> ProductCal {
+        ProductCal {
+            name: short_string("HM wheat L2"),
+            model: ModelKind::SingleFrequency,
+            basis: Basis::Wet,
+            params: heapless::Vec::from_slice(&[1.0, 1.0, 20.0, 1.5, 2.0, 0.01, 0.0, -0.05])
+                .expect("fits"),
+            moisture_pct: Range {
+                min: 8.0,
+                max: 22.0,
+            },
+            temperature_c: Range {
+                min: 5.0,
+                max: 40.0,
+            },
+            inputs: heapless::Vec::from_slice(&[Range { min: 2.0, max: 9.0 }]).expect("fits"),
+            sec_pct: 0.3,
+            made_s: 1_796_000_000,
+        }
+    }
+
+    #[test]
+    fn round_trip_keeps_the_id() {
+        let dir = std::env::temp_dir().join(format!("fringe-pf-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).expect("dir");
+        let p = dir.join("p.toml");
+        let f = ProductFile::from_wire(
+            &wire(),
+            &["eps_re"],
+            Statistics {
+                n: 12,
+                ..Default::default()
+            },
+            Source::default(),
+        );
+        f.save(&p).expect("save");
+        let (g, w) = ProductFile::load(&p).expect("load");
+        assert_eq!(w, wire());
+        assert_eq!(g.id, wire().content_id().to_string());
+        // A hand edit of a parameter is caught by the id.
+        let text = std::fs::read_to_string(&p)
+            .expect("read")
+            .replace("sec_pct = 0.3", "sec_pct = 0.2");
+        std::fs::write(&p, text).expect("write");
+        let e = ProductFile::load(&p).expect_err("edited").to_string();
+        assert!(
+            e.contains("field `id`") && e.contains("edited by hand"),
+            "{e}"
+        );
+        std::fs::write(&p, "format = 1\n").expect("write");
+        let e = ProductFile::load(&p).expect_err("bad").to_string();
+        assert!(e.contains("p.toml:1:"), "{e}");
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    #[test]
+    fn cal_id_parsing() {
+        assert_eq!(parse_cal_id("0000002a"), Some(CalId([0, 0, 0, 42])));
+        assert_eq!(parse_cal_id("2a"), None);
+    }
+}
