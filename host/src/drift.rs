@@ -36,6 +36,8 @@
 
 use serde::Serialize;
 
+pub use crate::timefmt::fmt_time;
+
 /// What a monitor watches.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
@@ -371,29 +373,6 @@ impl Alarm {
             self.action.advice()
         )
     }
-}
-
-/// Formats ms since the Unix epoch as `YYYY-MM-DDTHH:MM:SSZ` (UTC).
-pub fn fmt_time(ms: i64) -> String {
-    let secs = ms.div_euclid(1000);
-    let days = secs.div_euclid(86_400);
-    let tod = secs.rem_euclid(86_400);
-    // Civil date from days since 1970-01-01 (Hinnant's algorithm).
-    let z = days + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z - era * 146_097;
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let d = doy - (153 * mp + 2) / 5 + 1;
-    let m = if mp < 10 { mp + 3 } else { mp - 9 };
-    let y = yoe + era * 400 + i64::from(m <= 2);
-    format!(
-        "{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z",
-        tod / 3600,
-        tod / 60 % 60,
-        tod % 60
-    )
 }
 
 /// The charts' statistics at every observation (for plots) and the alarms.
@@ -938,13 +917,6 @@ mod tests {
         let s = sigma_moving_range(&v).expect("enough values");
         assert!((s / 2.0 - 1.0).abs() < 0.03, "seed {seed}: {s}");
         assert_eq!(sigma_moving_range(&[1.0]), None);
-    }
-
-    #[test]
-    fn time_formatting() {
-        assert_eq!(fmt_time(0), "1970-01-01T00:00:00Z");
-        // 2000-03-01T12:34:56Z = 951914096 s (leap-year boundary).
-        assert_eq!(fmt_time(951_914_096_000), "2000-03-01T12:34:56Z");
     }
 
     #[test]

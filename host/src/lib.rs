@@ -10,3 +10,4 @@ pub mod plots;
 pub mod product_file;
 pub mod report;
 pub mod samples;
+pub mod timefmt;
