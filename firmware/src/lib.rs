@@ -1,10 +1,49 @@
 //! # fringe-firmware: the sensor's core
 //!
-//! Front-end seam, demodulation, measurement schedule, estimation, flash
-//! storage, command handling, current output and the device loop. Runs
-//! unchanged on the host (simulated front end) and on a Cortex-M4F.
+//! The firmware stages of DESIGN.md, top to bottom, each a module:
+//!
+//! - [`hal`]: the hardware seam (front end, 4-20 mA DAC, watchdog, clock);
+//! - [`demod`]: Goertzel demodulation of sensor and reference channels,
+//!   complex ratio, noise and SNR, robust averaging;
+//! - [`measure`]: the measurement schedule (two frequencies, temperature,
+//!   reference check, empty-line and electrode checks) and the estimation
+//!   through `fringe-calibration`;
+//! - [`storage`] on [`flash`]: settings, calibrations, counters, reading and
+//!   event logs on a NOR flash through `sequential-storage`;
+//! - [`output`]: moisture to 4-20 mA with NAMUR NE 43 signalling;
+//! - [`device`]: the [`Device`] that owns all of it, answers the protocol
+//!   and runs the schedule from `poll`;
+//! - `sim` (feature `sim`): a simulated front end, physically honest.
+//!
+//! No heap, no globals, no panics reachable from input; the only clock is the
+//! `now_ms` argument of [`Device::poll`].
 #![cfg_attr(not(any(test, feature = "std")), no_std)]
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
+#![cfg_attr(
+    not(test),
+    deny(
+        clippy::unwrap_used,
+        clippy::expect_used,
+        clippy::indexing_slicing,
+        clippy::panic
+    )
+)]
 
+pub mod demod;
+pub mod device;
+pub mod flash;
+pub mod hal;
+pub mod measure;
+pub mod output;
+#[cfg(feature = "sim")]
+pub mod sim;
+pub mod storage;
+pub mod temp;
+
+pub use device::{BootError, Device, DeviceConfig};
+pub use flash::RamFlash;
+pub use hal::{CurrentOutput, Frontend, Watchdog};
+#[cfg(feature = "sim")]
+pub use sim::{Scenario, SimFrontend};
 pub use fringe_protocol as protocol;

@@ -1,0 +1,982 @@
+//! The device: owns the front end, the flash, the current output and all
+//! state; [`Device::poll`] decodes requests, runs a few measurement steps
+//! and emits frames. No globals, no clock but `now_ms`.
+//!
+//! ## Writes
+//! A request that changes the device ([`Request::needs_auth`]) is carried
+//! out only if its HMAC tag verifies ([`fringe_protocol::auth::verify`]) and
+//! its counter exceeds the stored write counter; otherwise it is answered
+//! with [`ErrorCode::AuthFailed`] and an [`EventKind::AuthFailed`] event is
+//! stored. An accepted counter is stored before the write is carried out,
+//! so a request can never be replayed, even after a power cut. Values are
+//! then checked (finite, in range) and refused with
+//! [`ErrorCode::NotFinite`], [`ErrorCode::OutOfRange`],
+//! [`ErrorCode::NoSuchSlot`] or [`ErrorCode::BadCalibration`] without
+//! touching the stored state.
+
+use fringe_calibration::product::{self as cal_product, ProductCalibration};
+use fringe_protocol::auth::{verify, Key};
+use fringe_protocol::frame::{encode, encode_with_version};
+use fringe_protocol::{
+    short_string, AuthFailure, Basis, CalId, Capabilities, CellCal, DeviceFrame, ErrorCode, Event,
+    EventKind, FaultCode, Flags, FrameDecoder, FrameError, HostFrame, Identity, ModelKind, OutputConfig,
+    ProductCal, Reading, RefCheck, Request, ResetCause, Response, SelfTest, Seq, Serial, SlotInfo,
+    Status, EVENT_CHUNK, LOG_CHUNK, MAX_FRAME_LEN, N_FREQ, N_PRODUCT_SLOTS, PROTOCOL_VERSION,
+};
+use heapless::Vec;
+
+use embedded_storage::nor_flash::NorFlash;
+
+use crate::hal::{CurrentOutput, Frontend, NoWatchdog, Watchdog};
+use crate::measure::{self, ChainState, Job, MeasureConfig, Runner, TempSensor, DEFAULT_MEASURE};
+use crate::output::{self, DEFAULT_OUTPUT};
+use crate::storage::{key, Storage, StorageError, StoredIdentity};
+
+/// Firmware version, `[major, minor, patch]`.
+pub const FIRMWARE_VERSION: [u8; 3] = [0, 1, 0];
+/// Shortest streaming period accepted, ms.
+pub const MIN_PERIOD_MS: u32 = 100;
+/// Longest streaming period accepted, ms (one day).
+pub const MAX_PERIOD_MS: u32 = 86_400_000;
+/// Earliest clock accepted by `SetClock` (2000-01-01), Unix ms.
+pub const MIN_UNIX_MS: u64 = 946_684_800_000;
+/// Latest clock accepted by `SetClock` (2200-01-01), Unix ms.
+pub const MAX_UNIX_MS: u64 = 7_258_118_400_000;
+
+const SCRATCH_KEY: u8 = 6;
+
+/// Configuration given at build or commissioning time.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DeviceConfig {
+    /// Serial used on a blank flash (a stored serial wins).
+    pub serial: Serial,
+    /// Write key used on a blank flash (a stored key wins).
+    pub key: Key,
+    /// Excitation frequencies, Hz, lower first.
+    pub freqs_hz: [f32; N_FREQ],
+    /// Excitation amplitude, V peak.
+    pub amplitude_v: f32,
+    /// Records averaged per frequency, 1..=16.
+    pub records: u8,
+    /// Reference check every this many readings.
+    pub reference_every: u32,
+    /// Relative tolerance of the reference check.
+    pub reference_tolerance: f32,
+    /// SNR threshold for `LOW_SNR`, dB per record.
+    pub min_snr_db: f32,
+    /// eps' at the upper frequency below which the line counts as empty.
+    pub empty_eps_max: f32,
+    /// Open-electrode threshold, pF.
+    pub open_pf: f32,
+    /// Temperature sensor.
+    pub temp_sensor: TempSensor,
+    /// Measurement steps (one record each) per `poll`, >= 1.
+    pub steps_per_poll: u8,
+    /// Store every reading in the flash log.
+    pub log_readings: bool,
+    /// Announce [`Capabilities::SIMULATED`].
+    pub simulated: bool,
+}
+
+impl DeviceConfig {
+    /// Defaults (1 MHz and 20 MHz, 8 records, reference every 10 readings)
+    /// with this serial and key.
+    pub fn new(serial: &str, key: Key) -> Self {
+        let m = DEFAULT_MEASURE;
+        Self {
+            serial: short_string(serial),
+            key,
+            freqs_hz: m.freqs_hz,
+            amplitude_v: m.amplitude_v,
+            records: m.records,
+            reference_every: m.reference_every,
+            reference_tolerance: m.reference_tolerance,
+            min_snr_db: m.min_snr_db,
+            empty_eps_max: m.empty_eps_max,
+            open_pf: m.open_pf,
+            temp_sensor: m.temp_sensor,
+            steps_per_poll: 4,
+            log_readings: true,
+            simulated: false,
+        }
+    }
+
+    fn measure(&self) -> MeasureConfig {
+        MeasureConfig {
+            freqs_hz: self.freqs_hz,
+            amplitude_v: self.amplitude_v,
+            records: self.records,
+            reference_every: self.reference_every.max(1),
+            reference_tolerance: self.reference_tolerance,
+            min_snr_db: self.min_snr_db,
+            empty_eps_max: self.empty_eps_max,
+            open_pf: self.open_pf,
+            temp_sensor: self.temp_sensor,
+        }
+    }
+
+    fn check(&self) -> Result<(), BootError> {
+        let [lo, hi] = self.freqs_hz;
+        let ok = lo.is_finite()
+            && hi.is_finite()
+            && lo > 0.0
+            && hi > lo
+            && self.amplitude_v.is_finite()
+            && self.amplitude_v > 0.0
+            && (1..=16).contains(&self.records)
+            && self.reference_tolerance.is_finite()
+            && self.reference_tolerance > 0.0
+            && self.min_snr_db.is_finite()
+            && self.empty_eps_max.is_finite()
+            && self.open_pf.is_finite();
+        if ok {
+            Ok(())
+        } else {
+            Err(BootError::BadConfig)
+        }
+    }
+}
+
+/// Why the device could not start.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum BootError {
+    /// The flash could not be mounted.
+    Storage(StorageError),
+    /// A configuration value is out of range (frequencies, amplitude, records).
+    BadConfig,
+}
+
+impl core::fmt::Display for BootError {
+    fn fmt(&self, f: &mut core::fmt::Formatter<'_>) -> core::fmt::Result {
+        match self {
+            BootError::Storage(e) => write!(f, "boot: {e}"),
+            BootError::BadConfig => write!(
+                f,
+                "boot: configuration out of range (need 0 < freqs_hz[0] < freqs_hz[1], amplitude_v > 0, records 1..=16)"
+            ),
+        }
+    }
+}
+
+impl core::error::Error for BootError {}
+
+impl From<StorageError> for BootError {
+    fn from(e: StorageError) -> Self {
+        BootError::Storage(e)
+    }
+}
+
+/// A request waiting for a measurement.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+struct Pending {
+    measure: Option<u16>,
+    refcheck: Option<u16>,
+    selftest: Option<u16>,
+}
+
+/// The active product calibration, parsed.
+#[derive(Debug, Clone, Copy)]
+struct Active {
+    slot: u8,
+    id: CalId,
+    cal: ProductCalibration<f32>,
+}
+
+/// The sensor's core (see the module doc).
+pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
+    fe: F,
+    storage: Storage<S>,
+    out: O,
+    cfg: DeviceConfig,
+    mcfg: MeasureConfig,
+    serial: Serial,
+    key: Key,
+    boot: u32,
+    counter: u32,
+    write_counter: u32,
+    next_event: u32,
+    boot_ms: u64,
+    clock_offset_ms: Option<i64>,
+    cell: Option<CellCal>,
+    cell_id: CalId,
+    active: Option<Active>,
+    active_slot: Option<u8>,
+    output_cfg: OutputConfig,
+    output_ma: f32,
+    output_fault: bool,
+    chain: ChainState,
+    chain_valid: bool,
+    reference_ok: bool,
+    last_ref: [f32; N_FREQ],
+    since_ref: u32,
+    runner: Runner,
+    stream_ms: Option<u32>,
+    next_due_ms: u64,
+    pending: Pending,
+    last_flags: Flags,
+    saturated_run: u8,
+    decoder: FrameDecoder<HostFrame>,
+    txbuf: [u8; MAX_FRAME_LEN],
+    reboot: bool,
+}
+
+impl<F: Frontend, S: NorFlash, O: CurrentOutput> core::fmt::Debug for Device<F, S, O> {
+    fn fmt(&self, f: &mut core::fmt::Formatter<'_>) -> core::fmt::Result {
+        f.debug_struct("Device")
+            .field("serial", &self.serial)
+            .field("boot", &self.boot)
+            .field("counter", &self.counter)
+            .field("storage", &self.storage)
+            .finish_non_exhaustive()
+    }
+}
+
+fn to_cal_range(r: fringe_protocol::Range) -> cal_product::Range<f32> {
+    cal_product::Range::new(r.min, r.max)
+}
+
+/// Parses a wire product calibration into the calibration crate's form.
+///
+/// # Errors
+/// The calibration crate's reason, as [`ErrorCode::BadCalibration`].
+pub fn parse_product(cal: &ProductCal) -> Result<ProductCalibration<f32>, ErrorCode> {
+    let kind = match cal.model {
+        ModelKind::SingleFrequency => cal_product::ModelKind::SingleFrequency,
+        ModelKind::Relaxation => cal_product::ModelKind::Relaxation,
+    };
+    let basis = match cal.basis {
+        Basis::Wet => fringe_calibration::moisture::Basis::Wet,
+        Basis::Dry => fringe_calibration::moisture::Basis::Dry,
+    };
+    let mut inputs: Vec<cal_product::Range<f32>, { fringe_protocol::MAX_CAL_INPUTS }> = Vec::new();
+    for r in cal.inputs.iter() {
+        if inputs.push(to_cal_range(*r)).is_err() {
+            return Err(ErrorCode::BadCalibration);
+        }
+    }
+    ProductCalibration::<f32>::from_parts(
+        kind,
+        &cal.params,
+        basis,
+        to_cal_range(cal.moisture_pct),
+        to_cal_range(cal.temperature_c),
+        &inputs,
+        cal.sec_pct,
+    )
+    .map_err(|_| ErrorCode::BadCalibration)
+}
+
+type Refusal = (ErrorCode, &'static str);
+
+fn finite(ok: bool, what: &'static str) -> Result<(), Refusal> {
+    if ok {
+        Ok(())
+    } else {
+        Err((ErrorCode::NotFinite, what))
+    }
+}
+
+fn in_range(ok: bool, what: &'static str) -> Result<(), Refusal> {
+    if ok {
+        Ok(())
+    } else {
+        Err((ErrorCode::OutOfRange, what))
+    }
+}
+
+/// Checks a cell calibration against the device's frequencies.
+fn check_cell(c: &CellCal, freqs: &[f32; N_FREQ]) -> Result<(), Refusal> {
+    for (p, &f) in c.points.iter().zip(freqs.iter()) {
+        finite(p.freq_hz.is_finite(), "cell freq_hz not finite")?;
+        finite(p.stray_pf.is_finite(), "cell stray_pf not finite")?;
+        finite(p.cell_pf.is_finite(), "cell cell_pf not finite")?;
+        finite(p.g_offset_s.is_finite(), "cell g_offset_s not finite")?;
+        in_range((p.freq_hz / f - 1.0).abs() <= 0.005, "cell freq_hz != device freq")?;
+        in_range((-100.0..=1000.0).contains(&p.stray_pf), "cell stray_pf not -100..1000")?;
+        in_range(p.cell_pf > 0.0 && p.cell_pf <= 1000.0, "cell cell_pf not 0..1000")?;
+        in_range(p.g_offset_s.abs() <= 1.0, "cell g_offset_s not -1..1 S")?;
+    }
+    finite(c.reference_ratio.is_finite(), "cell reference_ratio not finite")?;
+    in_range((0.0..=10.0).contains(&c.reference_ratio), "cell reference_ratio not 0..10")?;
+    Ok(())
+}
+
+fn check_product(c: &ProductCal) -> Result<ProductCalibration<f32>, Refusal> {
+    let ranges = [c.moisture_pct, c.temperature_c].into_iter().chain(c.inputs.iter().copied());
+    for r in ranges {
+        finite(r.min.is_finite() && r.max.is_finite(), "product range not finite")?;
+        in_range(r.min <= r.max, "product range min > max")?;
+    }
+    finite(c.params.iter().all(|p| p.is_finite()), "product params not finite")?;
+    finite(c.sec_pct.is_finite(), "product sec_pct not finite")?;
+    in_range(c.sec_pct >= 0.0, "product sec_pct < 0")?;
+    in_range(
+        (-100.0..=1000.0).contains(&c.moisture_pct.min) && c.moisture_pct.max <= 1000.0,
+        "product moisture range",
+    )?;
+    parse_product(c).map_err(|e| (e, "product params rejected by model"))
+}
+
+impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
+    /// Boot: mount storage (repairing if needed), raise the boot counter,
+    /// load calibrations and settings, log a Boot event.
+    ///
+    /// # Errors
+    /// [`BootError::Storage`] when the flash cannot be used at all,
+    /// [`BootError::BadConfig`] for a configuration out of range.
+    pub fn new(
+        frontend: F,
+        flash: S,
+        output: O,
+        config: DeviceConfig,
+        reset_cause: ResetCause,
+        now_ms: u64,
+    ) -> Result<Self, BootError> {
+        config.check()?;
+        let (mut storage, report) = Storage::mount(flash)?;
+        let ident = match storage.get::<StoredIdentity>(key::IDENTITY)? {
+            Some(id) => id,
+            None => {
+                let id = StoredIdentity {
+                    serial: config.serial.clone(),
+                    key: config.key,
+                };
+                storage.put(key::IDENTITY, &id)?;
+                id
+            }
+        };
+        let boot = storage.get::<u32>(key::BOOT)?.unwrap_or(0).wrapping_add(1);
+        storage.put(key::BOOT, &boot)?;
+        let write_counter = storage.get::<u32>(key::WRITE_COUNTER)?.unwrap_or(0);
+        let cell = storage.cell_cal()?.filter(|c| check_cell(c, &config.freqs_hz).is_ok());
+        let output_cfg = storage
+            .get::<OutputConfig>(key::OUTPUT)?
+            .filter(|o| output::validate(o).is_ok())
+            .unwrap_or(DEFAULT_OUTPUT);
+        let active_slot = storage.get::<Option<u8>>(key::ACTIVE_SLOT)?.flatten();
+        let next_event = storage.last_event().map_or(0, |n| n.wrapping_add(1));
+        let mcfg = config.measure();
+        let mut dev = Self {
+            fe: frontend,
+            storage,
+            out: output,
+            mcfg,
+            serial: ident.serial,
+            key: ident.key,
+            cfg: config,
+            boot,
+            counter: 0,
+            write_counter,
+            next_event,
+            boot_ms: now_ms,
+            clock_offset_ms: None,
+            cell_id: cell.as_ref().map_or(CalId::NONE, CellCal::content_id),
+            cell,
+            active: None,
+            active_slot,
+            output_cfg,
+            output_ma: output::MA_FAIL_LOW,
+            output_fault: false,
+            chain: ChainState::default(),
+            chain_valid: false,
+            reference_ok: true,
+            last_ref: [f32::NAN; N_FREQ],
+            since_ref: 0,
+            runner: Runner::new(),
+            stream_ms: None,
+            next_due_ms: now_ms,
+            pending: Pending::default(),
+            last_flags: Flags::NOT_CALIBRATED,
+            saturated_run: 0,
+            decoder: FrameDecoder::new(),
+            txbuf: [0; MAX_FRAME_LEN],
+            reboot: false,
+        };
+        dev.load_active()?;
+        dev.drive_output(None);
+        if report.repaired {
+            dev.log_event(now_ms, EventKind::StorageRepaired);
+        }
+        dev.log_event(now_ms, EventKind::Boot { reset_cause });
+        Ok(dev)
+    }
+
+    fn load_active(&mut self) -> Result<(), StorageError> {
+        self.active = None;
+        if let Some(slot) = self.active_slot {
+            if let Some(pc) = self.storage.product(slot)? {
+                if let Ok(cal) = parse_product(&pc) {
+                    self.active = Some(Active {
+                        slot,
+                        id: pc.content_id(),
+                        cal,
+                    });
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// One step: take received serial bytes, run the schedule and commands,
+    /// emit frames through `tx`. Never blocks for long (at most
+    /// [`DeviceConfig::steps_per_poll`] records); `now_ms` (monotonic, ms
+    /// since the board started) is the only clock.
+    pub fn poll(&mut self, now_ms: u64, rx: &[u8], tx: &mut dyn FnMut(&[u8])) {
+        self.poll_watched(now_ms, rx, tx, &mut NoWatchdog::default());
+    }
+
+    /// [`Device::poll`], kicking `watchdog` first.
+    pub fn poll_watched(&mut self, now_ms: u64, rx: &[u8], tx: &mut dyn FnMut(&[u8]), watchdog: &mut dyn Watchdog) {
+        watchdog.kick();
+        for &b in rx {
+            if let Some(r) = self.decoder.feed(b) {
+                self.on_frame(now_ms, r, tx);
+            }
+        }
+        self.schedule(now_ms);
+        for _ in 0..self.cfg.steps_per_poll.max(1) {
+            if let Some(raw) = self.runner.step(&mut self.fe, &self.mcfg) {
+                self.finish(now_ms, &raw, tx);
+                break;
+            }
+        }
+    }
+
+    /// The front end (the simulator's scenario is changed through it).
+    pub fn frontend_mut(&mut self) -> &mut F {
+        &mut self.fe
+    }
+
+    /// The flash (tests arm power cuts through it).
+    pub fn flash_mut(&mut self) -> &mut S {
+        self.storage.flash_mut()
+    }
+
+    /// The storage (dumps and tests).
+    pub fn storage_mut(&mut self) -> &mut Storage<S> {
+        &mut self.storage
+    }
+
+    /// The current output.
+    pub fn output(&self) -> &O {
+        &self.out
+    }
+
+    /// A reboot request was accepted: the board/sim should reset (rebuild
+    /// the Device from the same flash).
+    pub fn reboot_requested(&self) -> bool {
+        self.reboot
+    }
+
+    /// Takes the device apart (to reboot on the same flash).
+    pub fn into_parts(self) -> (F, S, O) {
+        (self.fe, self.storage.into_inner(), self.out)
+    }
+
+    /// Boot counter of this run.
+    pub fn boot_count(&self) -> u32 {
+        self.boot
+    }
+
+    /// Readings the flash log holds at least.
+    pub fn log_capacity(&self) -> u32 {
+        self.storage.log_capacity()
+    }
+
+    /// Present loop current, mA.
+    pub fn output_ma(&self) -> f32 {
+        self.output_ma
+    }
+
+    fn send(&mut self, tx: &mut dyn FnMut(&[u8]), frame: &DeviceFrame) {
+        if let Ok(n) = encode(frame, &mut self.txbuf) {
+            if let Some(b) = self.txbuf.get(..n) {
+                tx(b);
+            }
+        }
+    }
+
+    fn respond(&mut self, tx: &mut dyn FnMut(&[u8]), id: u16, response: Response) {
+        self.send(tx, &DeviceFrame::Response { id, response });
+    }
+
+    fn refuse(&mut self, tx: &mut dyn FnMut(&[u8]), id: u16, (code, why): Refusal) {
+        self.send(
+            tx,
+            &DeviceFrame::Error {
+                id,
+                code,
+                reason: short_string(why),
+            },
+        );
+    }
+
+    fn time_ms(&self, now_ms: u64) -> (u64, bool) {
+        match self.clock_offset_ms {
+            Some(off) => ((now_ms as i64).saturating_add(off).max(0) as u64, true),
+            None => (now_ms.saturating_sub(self.boot_ms), false),
+        }
+    }
+
+    /// Stores an event; a storage failure is not fatal (the event is still
+    /// returned for sending).
+    fn log_event(&mut self, now_ms: u64, kind: EventKind) -> Event {
+        let ev = Event {
+            number: self.next_event,
+            boot: self.boot,
+            time_ms: self.time_ms(now_ms).0,
+            kind,
+        };
+        self.next_event = self.next_event.wrapping_add(1);
+        let _ = self.storage.append_event(&ev);
+        ev
+    }
+
+    fn event(&mut self, now_ms: u64, kind: EventKind, tx: &mut dyn FnMut(&[u8])) {
+        let ev = self.log_event(now_ms, kind);
+        self.send(tx, &DeviceFrame::Event(ev));
+    }
+
+    fn on_frame(&mut self, now_ms: u64, r: Result<HostFrame, FrameError>, tx: &mut dyn FnMut(&[u8])) {
+        match r {
+            Ok(frame) => self.handle(now_ms, frame, tx),
+            Err(FrameError::UnsupportedVersion(v)) => {
+                let frame = DeviceFrame::Error {
+                    id: 0,
+                    code: ErrorCode::UnsupportedVersion,
+                    reason: short_string("protocol major version differs"),
+                };
+                // Answer in the peer's header version so it can read the refusal.
+                let v = if v.header_byte().is_some() { v } else { PROTOCOL_VERSION };
+                if let Ok(n) = encode_with_version(&frame, v, &mut self.txbuf) {
+                    if let Some(b) = self.txbuf.get(..n) {
+                        tx(b);
+                    }
+                }
+            }
+            Err(FrameError::Undecodable) => {
+                self.refuse(tx, 0, (ErrorCode::UnknownRequest, "request not decodable"));
+            }
+            // Damaged frames: counted by the decoder, not answered (the id is unknown).
+            Err(_) => {}
+        }
+    }
+
+    fn authorize(&mut self, now_ms: u64, frame: &HostFrame, tx: &mut dyn FnMut(&[u8])) -> bool {
+        let carried = frame.auth.map_or(0, |a| a.counter);
+        let reason = match verify(&self.key, &self.serial, frame.auth.as_ref(), &frame.request) {
+            Err(reason) => Some(reason),
+            Ok(c) if c <= self.write_counter => Some(AuthFailure::Replay),
+            Ok(c) => {
+                if self.storage.put(key::WRITE_COUNTER, &c).is_err() {
+                    self.refuse(tx, frame.id, (ErrorCode::Storage, "write counter not stored"));
+                    return false;
+                }
+                self.write_counter = c;
+                None
+            }
+        };
+        match reason {
+            None => true,
+            Some(reason) => {
+                self.event(now_ms, EventKind::AuthFailed { reason, counter: carried }, tx);
+                let why = match reason {
+                    AuthFailure::Missing => "write needs an auth tag",
+                    AuthFailure::BadTag => "auth tag does not verify",
+                    AuthFailure::Replay => "auth counter not above stored",
+                };
+                self.refuse(tx, frame.id, (ErrorCode::AuthFailed, why));
+                false
+            }
+        }
+    }
+
+    fn handle(&mut self, now_ms: u64, frame: HostFrame, tx: &mut dyn FnMut(&[u8])) {
+        let id = frame.id;
+        if frame.request.needs_auth() && !self.authorize(now_ms, &frame, tx) {
+            return;
+        }
+        let result = self.handle_request(now_ms, id, frame.request, tx);
+        match result {
+            Ok(Some(resp)) => self.respond(tx, id, resp),
+            Ok(None) => {}
+            Err(refusal) => self.refuse(tx, id, refusal),
+        }
+    }
+
+    fn storage_refusal(_: StorageError) -> Refusal {
+        (ErrorCode::Storage, "flash storage failed")
+    }
+
+    /// Answers a request; `Ok(None)` when the answer comes later (measurements).
+    fn handle_request(
+        &mut self,
+        now_ms: u64,
+        id: u16,
+        request: Request,
+        tx: &mut dyn FnMut(&[u8]),
+    ) -> Result<Option<Response>, Refusal> {
+        let st = Self::storage_refusal;
+        Ok(Some(match request {
+            Request::Identify { host } => {
+                if PROTOCOL_VERSION.check_compatible(host).is_err() {
+                    return Err((ErrorCode::UnsupportedVersion, "protocol major version differs"));
+                }
+                Response::Identity(self.identity())
+            }
+            Request::Status => Response::Status(self.status(now_ms)),
+            Request::Measure => {
+                if self.pending.measure.is_some() {
+                    return Err((ErrorCode::Busy, "a measurement is pending"));
+                }
+                self.pending.measure = Some(id);
+                return Ok(None);
+            }
+            Request::StartStream { period_ms } => {
+                in_range(
+                    (MIN_PERIOD_MS..=MAX_PERIOD_MS).contains(&period_ms),
+                    "period_ms not 100..86400000",
+                )?;
+                self.stream_ms = Some(period_ms);
+                self.next_due_ms = now_ms;
+                Response::Ack
+            }
+            Request::StopStream => {
+                self.stream_ms = None;
+                Response::Ack
+            }
+            Request::ReadCellCal => Response::CellCal(self.cell),
+            Request::WriteCellCal(c) => {
+                check_cell(&c, &self.cfg.freqs_hz)?;
+                let old = self.cell_id;
+                self.storage.put(key::CELL_CAL, &c).map_err(st)?;
+                self.cell_id = c.content_id();
+                self.cell = Some(c);
+                self.chain_valid = false;
+                let new = self.cell_id;
+                self.event(now_ms, EventKind::CellCalChanged { old, new }, tx);
+                Response::Ack
+            }
+            Request::ReadProductCal { slot } => {
+                in_slot(slot)?;
+                let cal = self.storage.product(slot).map_err(st)?;
+                Response::ProductCal { slot, cal }
+            }
+            Request::WriteProductCal { slot, cal } => {
+                in_slot(slot)?;
+                let parsed = check_product(&cal)?;
+                let old = self.storage.product(slot).map_err(st)?.map_or(CalId::NONE, |c| c.content_id());
+                self.storage.put_product(slot, &cal).map_err(st)?;
+                let new = cal.content_id();
+                if self.active_slot == Some(slot) {
+                    self.active = Some(Active { slot, id: new, cal: parsed });
+                }
+                self.event(now_ms, EventKind::ProductCalChanged { slot, old, new }, tx);
+                Response::Ack
+            }
+            Request::SelectProduct { slot } => {
+                in_slot(slot)?;
+                let pc = self
+                    .storage
+                    .product(slot)
+                    .map_err(st)?
+                    .ok_or((ErrorCode::NoSuchSlot, "product slot is empty"))?;
+                let cal = parse_product(&pc).map_err(|e| (e, "stored calibration invalid"))?;
+                self.storage.put(key::ACTIVE_SLOT, &Some(slot)).map_err(st)?;
+                let old_slot = self.active_slot;
+                let idc = pc.content_id();
+                self.active_slot = Some(slot);
+                self.active = Some(Active { slot, id: idc, cal });
+                self.event(
+                    now_ms,
+                    EventKind::ProductSelected {
+                        old_slot,
+                        new_slot: slot,
+                        id: idc,
+                    },
+                    tx,
+                );
+                Response::Ack
+            }
+            Request::ListProducts => {
+                let mut slots: Vec<SlotInfo, N_PRODUCT_SLOTS> = Vec::new();
+                for slot in 0..N_PRODUCT_SLOTS as u8 {
+                    if let Some(pc) = self.storage.product(slot).map_err(st)? {
+                        let _ = slots.push(SlotInfo {
+                            slot,
+                            name: pc.name.clone(),
+                            id: pc.content_id(),
+                            model: pc.model,
+                        });
+                    }
+                }
+                Response::Products {
+                    slots,
+                    active: self.active_slot,
+                }
+            }
+            Request::ReferenceCheck => {
+                if self.pending.refcheck.is_some() {
+                    return Err((ErrorCode::Busy, "a reference check is pending"));
+                }
+                self.pending.refcheck = Some(id);
+                return Ok(None);
+            }
+            Request::ReadLog { from, max } => {
+                in_range((1..=LOG_CHUNK as u8).contains(&max), "max not 1..=4")?;
+                let (readings, next, end) = self.storage.read_log(from, usize::from(max)).map_err(st)?;
+                Response::Log { readings, next, end }
+            }
+            Request::ReadEvents { from, max } => {
+                in_range((1..=EVENT_CHUNK as u8).contains(&max), "max not 1..=6")?;
+                let (events, next, end) = self.storage.read_events(from, usize::from(max)).map_err(st)?;
+                Response::Events { events, next, end }
+            }
+            Request::SetClock { unix_ms } => {
+                in_range((MIN_UNIX_MS..=MAX_UNIX_MS).contains(&unix_ms), "unix_ms not 2000..2200")?;
+                let old_ms = self.time_ms(now_ms).0;
+                self.clock_offset_ms = Some(unix_ms as i64 - now_ms as i64);
+                self.event(now_ms, EventKind::ClockSet { old_ms, new_ms: unix_ms }, tx);
+                Response::Ack
+            }
+            Request::SelfTest => {
+                if self.pending.selftest.is_some() {
+                    return Err((ErrorCode::Busy, "a self-test is pending"));
+                }
+                self.pending.selftest = Some(id);
+                return Ok(None);
+            }
+            Request::Reboot => {
+                self.reboot = true;
+                Response::Ack
+            }
+            Request::SetOutput(o) => {
+                output::validate(&o).map_err(|e| match e {
+                    output::SpanError::NotFinite => (ErrorCode::NotFinite, "span not finite"),
+                    _ => (ErrorCode::OutOfRange, "span: need 0<=low<high<=100"),
+                })?;
+                self.storage.put(key::OUTPUT, &o).map_err(st)?;
+                self.output_cfg = o;
+                Response::Ack
+            }
+        }))
+    }
+
+    fn identity(&self) -> Identity {
+        let mut caps = Capabilities::RELAXATION | Capabilities::CURRENT_OUTPUT | Capabilities::LOG;
+        if self.cfg.simulated {
+            caps |= Capabilities::SIMULATED;
+        }
+        Identity {
+            serial: self.serial.clone(),
+            firmware: FIRMWARE_VERSION,
+            protocol: PROTOCOL_VERSION,
+            capabilities: caps,
+            boot: self.boot,
+            freqs_hz: self.cfg.freqs_hz,
+        }
+    }
+
+    fn status(&self, now_ms: u64) -> Status {
+        let (log_first, log_len) = self.storage.log_span().unwrap_or((Seq { boot: self.boot, counter: 0 }, 0));
+        Status {
+            time_ms: self.time_ms(now_ms).0,
+            uptime_ms: now_ms.saturating_sub(self.boot_ms),
+            boot: self.boot,
+            next_seq: Seq {
+                boot: self.boot,
+                counter: self.counter,
+            },
+            log_first,
+            log_len,
+            next_event: self.next_event,
+            stream_period_ms: self.stream_ms,
+            active_slot: self.active.map(|a| a.slot),
+            cell_cal: self.cell_id,
+            product_cal: self.active.map_or(CalId::NONE, |a| a.id),
+            last_flags: self.last_flags,
+            write_counter: self.write_counter,
+            link_errors: self.decoder.stats().errors(),
+            reference_ratio: mean(&self.last_ref),
+            output_ma: self.output_ma,
+            stack_free_bytes: None,
+            reading_cost: None,
+        }
+    }
+
+    fn schedule(&mut self, now_ms: u64) {
+        if self.runner.busy() {
+            return;
+        }
+        let due = self.stream_ms.is_some() && now_ms >= self.next_due_ms;
+        let reading = due || self.pending.measure.is_some() || self.pending.selftest.is_some();
+        let reference = self.pending.refcheck.is_some()
+            || self.pending.selftest.is_some()
+            || !self.chain_valid
+            || self.since_ref >= self.mcfg.reference_every;
+        if !(reading || self.pending.refcheck.is_some()) {
+            return;
+        }
+        if let (true, Some(p)) = (due, self.stream_ms) {
+            self.next_due_ms = self.next_due_ms.saturating_add(u64::from(p));
+            if self.next_due_ms <= now_ms {
+                self.next_due_ms = now_ms.saturating_add(u64::from(p));
+            }
+        }
+        self.runner.start(Job {
+            electrodes: reading,
+            reference,
+        });
+    }
+
+    fn finish(&mut self, now_ms: u64, raw: &measure::Raw, tx: &mut dyn FnMut(&[u8])) {
+        let job = self.runner.job();
+        let info = self.fe.info();
+        let mut ref_check = None;
+        if let Some(r) = raw.reference.as_ref() {
+            self.since_ref = 0;
+            match measure::chain_from_reference(&self.fe, &info, &self.mcfg, r) {
+                Some(c) => {
+                    self.chain = c;
+                    self.chain_valid = true;
+                    self.last_ref = c.ratios();
+                }
+                None => self.last_ref = [f32::NAN; N_FREQ],
+            }
+            let baseline = self.cell.map_or(0.0, |c| c.reference_ratio);
+            let ok = if baseline > 0.0 {
+                self.last_ref
+                    .iter()
+                    .all(|r| (r / baseline - 1.0).abs() <= self.mcfg.reference_tolerance)
+            } else {
+                self.last_ref.iter().all(|r| r.is_finite())
+            };
+            if self.reference_ok && !ok {
+                let ratio = mean(&self.last_ref);
+                self.event(now_ms, EventKind::ReferenceDrift { ratio, baseline }, tx);
+            }
+            self.reference_ok = ok;
+            ref_check = Some(RefCheck {
+                ratio: self.last_ref,
+                baseline,
+                ok,
+            });
+            if let (Some(id), Some(rc)) = (self.pending.refcheck.take(), ref_check) {
+                self.respond(tx, id, Response::RefCheck(rc));
+            }
+        }
+        if !job.electrodes {
+            return;
+        }
+        self.since_ref = self.since_ref.saturating_add(1);
+        let o = measure::evaluate(
+            &self.fe,
+            &self.mcfg,
+            raw,
+            &self.chain,
+            self.cell.as_ref(),
+            self.active.as_ref().map(|a| &a.cal),
+        );
+        let (time_ms, clock_set) = self.time_ms(now_ms);
+        let mut flags = o.flags;
+        if !clock_set {
+            flags |= Flags::CLOCK_UNSET;
+        }
+        if !self.reference_ok {
+            flags |= Flags::REFERENCE_DRIFT;
+        }
+        if self.active.is_none() {
+            flags |= Flags::NOT_CALIBRATED;
+        }
+        let reading = Reading {
+            seq: Seq {
+                boot: self.boot,
+                counter: self.counter,
+            },
+            time_ms,
+            channels: o.channels,
+            temperature_c: o.temperature_c,
+            moisture_pct: o.moisture_pct,
+            uncertainty_pct: o.uncertainty_pct,
+            flags,
+            cell_cal: self.cell_id,
+            product_cal: self.active.map_or(CalId::NONE, |a| a.id),
+        };
+        self.counter = self.counter.wrapping_add(1);
+        self.fault_events(now_ms, flags, tx);
+        self.last_flags = flags;
+        if self.cfg.log_readings && self.storage.append_reading(&reading).is_err() {
+            self.event(now_ms, EventKind::Fault { code: FaultCode::Storage }, tx);
+        }
+        let was_fault = self.output_fault;
+        self.drive_output(reading.moisture_pct);
+        if self.output_fault && !was_fault {
+            self.event(now_ms, EventKind::Fault { code: FaultCode::CurrentLoop }, tx);
+        }
+        if self.stream_ms.is_some() {
+            self.send(tx, &DeviceFrame::Reading(reading));
+        }
+        if let Some(id) = self.pending.measure.take() {
+            self.respond(tx, id, Response::Reading(reading));
+        }
+        if let Some(id) = self.pending.selftest.take() {
+            let storage_ok = self.scratch_test();
+            let frontend_ok = !raw.frontend_error
+                && raw
+                    .reference
+                    .is_some_and(|r| r.iter().all(|a| a.kept > 0 && a.min_reference_amplitude > 100.0));
+            let st = SelfTest {
+                storage_ok,
+                frontend_ok,
+                temperature_ok: !flags.contains(Flags::TEMP_SENSOR_FAULT),
+                reference_ok: ref_check.is_some_and(|r| r.ok),
+                flags,
+            };
+            self.respond(tx, id, Response::SelfTest(st));
+        }
+    }
+
+    fn scratch_test(&mut self) -> bool {
+        let v = self.next_event ^ 0xA5A5_5A5A;
+        self.storage.put(SCRATCH_KEY, &v).is_ok() && self.storage.get::<u32>(SCRATCH_KEY).ok().flatten() == Some(v)
+    }
+
+    fn fault_events(&mut self, now_ms: u64, flags: Flags, tx: &mut dyn FnMut(&[u8])) {
+        let rising = |f: Flags| flags.contains(f) && !self.last_flags.contains(f);
+        let electrode = rising(Flags::ELECTRODE_FAULT);
+        let temp = rising(Flags::TEMP_SENSOR_FAULT);
+        if flags.contains(Flags::SATURATED) {
+            self.saturated_run = self.saturated_run.saturating_add(1);
+        } else {
+            self.saturated_run = 0;
+        }
+        if electrode {
+            self.event(now_ms, EventKind::Fault { code: FaultCode::Electrode }, tx);
+        }
+        if temp {
+            self.event(now_ms, EventKind::Fault { code: FaultCode::TemperatureSensor }, tx);
+        }
+        if self.saturated_run == 3 {
+            self.event(now_ms, EventKind::Fault { code: FaultCode::Saturation }, tx);
+        }
+    }
+
+    fn drive_output(&mut self, moisture_pct: Option<f32>) {
+        let (ma, _) = output::current_ma(&self.output_cfg, moisture_pct);
+        self.output_ma = ma;
+        self.output_fault = self.out.set_ma(ma).is_err();
+    }
+}
+
+fn in_slot(slot: u8) -> Result<(), Refusal> {
+    if usize::from(slot) < N_PRODUCT_SLOTS {
+        Ok(())
+    } else {
+        Err((ErrorCode::NoSuchSlot, "slot not 0..=7"))
+    }
+}
+
+fn mean(v: &[f32; N_FREQ]) -> f32 {
+    v.iter().sum::<f32>() / N_FREQ as f32
+}

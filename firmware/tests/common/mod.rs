@@ -1,0 +1,164 @@
+//! Shared test bench: a simulated device on a RAM flash, driven tick by tick.
+#![allow(dead_code)]
+
+use fringe_firmware::hal::NullOutput;
+use fringe_firmware::protocol::auth::sign;
+use fringe_firmware::protocol::frame::encode_vec;
+use fringe_firmware::protocol::*;
+use fringe_firmware::{Device, DeviceConfig, RamFlash, Scenario, SimFrontend};
+
+pub const FLASH: usize = 64 * 1024;
+pub type Flash = RamFlash<FLASH>;
+pub type Dev = Device<SimFrontend, Flash, NullOutput>;
+
+pub const KEY: [u8; 32] = [0x42; 32];
+pub const SERIAL: &str = "HGM-L2-0007";
+
+pub fn config() -> DeviceConfig {
+    let mut c = DeviceConfig::new(SERIAL, KEY);
+    c.simulated = true;
+    c
+}
+
+pub struct Bench {
+    pub dev: Dev,
+    pub now: u64,
+    dec: FrameDecoder<DeviceFrame>,
+    pub seen: Vec<DeviceFrame>,
+    next_id: u16,
+    pub counter: u32,
+}
+
+impl Bench {
+    pub fn new(seed: u64, scenario: Scenario) -> Self {
+        Self::on_flash(seed, scenario, Flash::new())
+    }
+
+    pub fn on_flash(seed: u64, scenario: Scenario, flash: Flash) -> Self {
+        Self::with_config(seed, scenario, flash, config())
+    }
+
+    pub fn with_config(seed: u64, scenario: Scenario, flash: Flash, cfg: DeviceConfig) -> Self {
+        let dev = Device::new(
+            SimFrontend::new(seed, scenario),
+            flash,
+            NullOutput::default(),
+            cfg,
+            ResetCause::PowerOn,
+            0,
+        )
+        .expect("boot");
+        Self {
+            dev,
+            now: 0,
+            dec: FrameDecoder::new(),
+            seen: Vec::new(),
+            next_id: 1,
+            counter: 100,
+        }
+    }
+
+    /// Reboots on the same flash.
+    pub fn reboot(self, seed: u64) -> Self {
+        let (fe, flash, _) = self.dev.into_parts();
+        let sc = *fe.scenario();
+        let mut b = Self::on_flash(seed, sc, flash);
+        b.counter = self.counter;
+        b
+    }
+
+    pub fn poll_bytes(&mut self, rx: &[u8]) {
+        let mut got: Vec<u8> = Vec::new();
+        self.dev.poll(self.now, rx, &mut |b: &[u8]| got.extend_from_slice(b));
+        for r in self.dec.push(&got) {
+            self.seen.push(r.expect("device frame decodes"));
+        }
+    }
+
+    pub fn tick(&mut self, ms: u64) {
+        self.now += ms;
+        self.dev.frontend_mut().advance_ms(ms);
+        self.poll_bytes(&[]);
+    }
+
+    pub fn send_frame(&mut self, frame: &HostFrame) {
+        let bytes = encode_vec(frame).expect("encode");
+        self.poll_bytes(&bytes);
+    }
+
+    /// Sends a request (signed when it needs it) and polls until it is answered.
+    pub fn ask(&mut self, request: Request) -> DeviceFrame {
+        let auth = if request.needs_auth() {
+            self.counter += 1;
+            sign(&KEY, SERIAL, self.counter, &request)
+        } else {
+            None
+        };
+        self.ask_with(request, auth)
+    }
+
+    pub fn ask_with(&mut self, request: Request, auth: Option<Auth>) -> DeviceFrame {
+        let id = self.next_id;
+        self.next_id = self.next_id.wrapping_add(1);
+        self.send_frame(&HostFrame { id, auth, request });
+        for _ in 0..10_000 {
+            if let Some(pos) = self.seen.iter().position(|f| match f {
+                DeviceFrame::Response { id: i, .. } | DeviceFrame::Error { id: i, .. } => *i == id,
+                _ => false,
+            }) {
+                return self.seen.remove(pos);
+            }
+            self.tick(1);
+        }
+        panic!("no answer to request {id}");
+    }
+
+    pub fn ok(&mut self, request: Request) -> Response {
+        match self.ask(request.clone()) {
+            DeviceFrame::Response { response, .. } => response,
+            other => panic!("{request:?} answered {other:?}"),
+        }
+    }
+
+    pub fn measure(&mut self) -> Reading {
+        match self.ok(Request::Measure) {
+            Response::Reading(r) => r,
+            other => panic!("Measure answered {other:?}"),
+        }
+    }
+
+    pub fn events(&mut self) -> Vec<Event> {
+        let mut out = Vec::new();
+        let mut from = 0;
+        loop {
+            match self.ok(Request::ReadEvents { from, max: 6 }) {
+                Response::Events { events, next, end } => {
+                    out.extend(events);
+                    from = next;
+                    if end {
+                        return out;
+                    }
+                }
+                other => panic!("{other:?}"),
+            }
+        }
+    }
+
+    pub fn error_code(frame: &DeviceFrame) -> Option<ErrorCode> {
+        match frame {
+            DeviceFrame::Error { code, .. } => Some(*code),
+            _ => None,
+        }
+    }
+}
+
+/// Runs `f` on a thread with a large stack: a `Device` that owns its RAM
+/// flash by value is moved around whole in unoptimised builds.
+pub fn big_stack(f: impl FnOnce() + Send + 'static) {
+    std::thread::Builder::new()
+        .stack_size(256 << 20)
+        .spawn(f)
+        .expect("spawn")
+        .join()
+        .expect("test thread");
+}

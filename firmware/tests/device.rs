@@ -1,0 +1,139 @@
+//! The device loop against the simulated front end: handshake, status,
+//! readings, streaming, version refusal.
+
+mod common;
+
+use common::*;
+use fringe_firmware::protocol::frame::encode_with_version;
+use fringe_firmware::protocol::*;
+use fringe_firmware::sim::Material;
+use fringe_firmware::Scenario;
+
+#[test]
+fn boots_and_identifies() {
+    let mut b = Bench::new(1, Scenario::default());
+    match b.ok(Request::Identify {
+        host: PROTOCOL_VERSION,
+    }) {
+        Response::Identity(id) => {
+            assert_eq!(id.serial.as_str(), SERIAL);
+            assert_eq!(id.boot, 1);
+            assert_eq!(id.freqs_hz, [1.0e6, 20.0e6]);
+            assert!(id.capabilities.contains(Capabilities::SIMULATED));
+        }
+        other => panic!("{other:?}"),
+    }
+    match b.ok(Request::Status) {
+        Response::Status(s) => {
+            assert_eq!(s.boot, 1);
+            assert_eq!(s.next_seq, Seq { boot: 1, counter: 0 });
+            assert_eq!(s.stream_period_ms, None);
+            assert_eq!(s.cell_cal, CalId::NONE);
+        }
+        other => panic!("{other:?}"),
+    }
+    // A Boot event was stored.
+    let ev = b.events();
+    assert!(matches!(ev[0].kind, EventKind::Boot { reset_cause: ResetCause::PowerOn }), "{ev:?}");
+}
+
+#[test]
+fn uncalibrated_reading_says_so_and_invents_nothing() {
+    let mut b = Bench::new(2, Scenario::default());
+    let r = b.measure();
+    assert_eq!(r.seq, Seq { boot: 1, counter: 0 });
+    assert!(r.flags.contains(Flags::NOT_CALIBRATED | Flags::CLOCK_UNSET), "{:?}", r.flags);
+    assert_eq!(r.moisture_pct, None);
+    assert!(r.channels[0].eps_re.is_nan());
+    // The admittance is measured all the same: air in front of 2.1 + 1.5 pF.
+    let w = 2.0 * std::f32::consts::PI * 1.0e6;
+    let c_pf = r.channels[0].b_s / w * 1e12;
+    assert!((c_pf - 3.6).abs() < 0.15, "apparent capacitance {c_pf} pF (board gain errors included)");
+    assert!((r.temperature_c - 20.0).abs() < 0.1, "{}", r.temperature_c);
+    let r2 = b.measure();
+    assert_eq!(r2.seq.counter, 1);
+}
+
+#[test]
+fn streams_at_the_configured_period() {
+    let mut b = Bench::new(3, Scenario::default());
+    assert_eq!(b.ok(Request::StartStream { period_ms: 500 }), Response::Ack);
+    b.seen.clear();
+    for _ in 0..5000 {
+        b.tick(1);
+    }
+    let readings: Vec<Reading> = b
+        .seen
+        .iter()
+        .filter_map(|f| match f {
+            DeviceFrame::Reading(r) => Some(*r),
+            _ => None,
+        })
+        .collect();
+    assert!((9..=11).contains(&readings.len()), "{} readings in 5 s", readings.len());
+    for w in readings.windows(2) {
+        assert_eq!(w[1].seq.counter, w[0].seq.counter + 1);
+        let dt = w[1].time_ms - w[0].time_ms;
+        assert!((490..=510).contains(&dt), "period {dt} ms");
+    }
+    assert_eq!(b.ok(Request::StopStream), Response::Ack);
+    b.seen.clear();
+    for _ in 0..1000 {
+        b.tick(1);
+    }
+    assert!(!b.seen.iter().any(|f| matches!(f, DeviceFrame::Reading(_))));
+    let too_fast = b.ask(Request::StartStream { period_ms: 10 });
+    assert_eq!(Bench::error_code(&too_fast), Some(ErrorCode::OutOfRange));
+}
+
+#[test]
+fn major_version_mismatch_is_refused() {
+    let mut b = Bench::new(4, Scenario::default());
+    let f = b.ask(Request::Identify {
+        host: Version { major: 2, minor: 0 },
+    });
+    assert_eq!(Bench::error_code(&f), Some(ErrorCode::UnsupportedVersion));
+    // A frame whose header carries another major: refused in that version.
+    let mut buf = [0u8; MAX_FRAME_LEN];
+    let frame = HostFrame {
+        id: 9,
+        auth: None,
+        request: Request::Status,
+    };
+    let n = encode_with_version(&frame, Version { major: 3, minor: 1 }, &mut buf).unwrap();
+    let mut out = Vec::new();
+    b.dev.poll(0, &buf[..n], &mut |x: &[u8]| out.extend_from_slice(x));
+    let mut dec = FrameDecoder::<DeviceFrame>::new();
+    let got: Vec<_> = dec.push(&out).collect();
+    assert_eq!(got.len(), 1);
+    assert!(matches!(got[0], Err(FrameError::UnsupportedVersion(Version { major: 3, .. }))));
+}
+
+#[test]
+fn empty_line_and_electrode_faults_are_flagged() {
+    let mut b = Bench::new(5, Scenario::default());
+    let sc = Scenario {
+        electrodes: fringe_firmware::sim::Electrodes::Open,
+        ..Scenario::default()
+    };
+    b.dev.frontend_mut().set_scenario(sc);
+    let r = b.measure();
+    assert!(r.flags.contains(Flags::ELECTRODE_FAULT), "{:?}", r.flags);
+    b.dev.frontend_mut().set_scenario(Scenario {
+        electrodes: fringe_firmware::sim::Electrodes::Short,
+        ..Scenario::default()
+    });
+    let r = b.measure();
+    assert!(r.flags.contains(Flags::ELECTRODE_FAULT | Flags::SATURATED), "{:?}", r.flags);
+    b.dev.frontend_mut().set_scenario(Scenario {
+        material: Material::Liquid {
+            eps_re: 24.4,
+            eps_im: 0.5,
+        },
+        ..Scenario::default()
+    });
+    let r = b.measure();
+    assert!(!r.flags.contains(Flags::ELECTRODE_FAULT), "{:?}", r.flags);
+    let ev = b.events();
+    assert!(ev.iter().any(|e| e.kind == EventKind::Fault { code: FaultCode::Electrode }), "{ev:?}");
+}
