@@ -343,10 +343,7 @@ impl Averager {
         let mad = median(sd.get_mut(..n).unwrap_or(&mut []));
         // The per-record noise sets a floor, so that identical records (MAD 0)
         // do not reject a record one noise sigma away.
-        let floor = items
-            .iter()
-            .map(|r| r.ratio_sd)
-            .fold(0.0f32, f32::max);
+        let floor = items.iter().map(|r| r.ratio_sd).fold(0.0f32, f32::max);
         let limit = OUTLIER_K * (1.4826 * mad).max(floor) + f32::EPSILON * med.abs();
         let (mut sum, mut kept) = (C32::default(), 0u32);
         let mut var_sum = 0.0f32;
@@ -399,8 +396,10 @@ mod tests {
                             + 40.0) as f32
                     })
                     .collect();
-                let mut buf: Vec<Complex64> =
-                    x.iter().map(|&v| Complex64::new(f64::from(v), 0.0)).collect();
+                let mut buf: Vec<Complex64> = x
+                    .iter()
+                    .map(|&v| Complex64::new(f64::from(v), 0.0))
+                    .collect();
                 FftPlanner::new()
                     .plan_fft_forward(RECORD_LEN)
                     .process(&mut buf);
@@ -470,7 +469,13 @@ mod tests {
         }
     }
 
-    fn synth_record(amp: f64, phase: f64, k: u16, noise: f64, rng: &mut XorShiftRng) -> [i16; RECORD_LEN] {
+    fn synth_record(
+        amp: f64,
+        phase: f64,
+        k: u16,
+        noise: f64,
+        rng: &mut XorShiftRng,
+    ) -> [i16; RECORD_LEN] {
         let mut out = [0i16; RECORD_LEN];
         for (i, o) in out.iter_mut().enumerate() {
             let w = 2.0 * std::f64::consts::PI * f64::from(k) * i as f64 / RECORD_LEN as f64;
@@ -491,7 +496,10 @@ mod tests {
         assert!((rr.ratio.arg() - 0.5).abs() < 4e-3, "seed {seed}: {rr:?}");
         // noise sd 20 codes plus quantisation (1/sqrt(12) LSB) in quadrature.
         let want = (20.0f32 * 20.0 + 1.0 / 12.0).sqrt();
-        assert!((rr.sensor.noise_sd / want - 1.0).abs() < 0.15, "seed {seed}: {rr:?}");
+        assert!(
+            (rr.sensor.noise_sd / want - 1.0).abs() < 0.15,
+            "seed {seed}: {rr:?}"
+        );
         assert_eq!(rr.sensor.clipped, 0);
     }
 

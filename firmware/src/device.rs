@@ -19,9 +19,10 @@ use fringe_protocol::auth::{verify, Key};
 use fringe_protocol::frame::{encode, encode_with_version};
 use fringe_protocol::{
     short_string, AuthFailure, Basis, CalId, Capabilities, CellCal, DeviceFrame, ErrorCode, Event,
-    EventKind, FaultCode, Flags, FrameDecoder, FrameError, HostFrame, Identity, ModelKind, OutputConfig,
-    ProductCal, Reading, RefCheck, Request, ResetCause, Response, SelfTest, Seq, Serial, SlotInfo,
-    Status, EVENT_CHUNK, LOG_CHUNK, MAX_FRAME_LEN, N_FREQ, N_PRODUCT_SLOTS, PROTOCOL_VERSION,
+    EventKind, FaultCode, Flags, FrameDecoder, FrameError, HostFrame, Identity, ModelKind,
+    OutputConfig, ProductCal, Reading, RefCheck, Request, ResetCause, Response, SelfTest, Seq,
+    Serial, SlotInfo, Status, EVENT_CHUNK, LOG_CHUNK, MAX_FRAME_LEN, N_FREQ, N_PRODUCT_SLOTS,
+    PROTOCOL_VERSION,
 };
 use heapless::Vec;
 
@@ -292,23 +293,46 @@ fn check_cell(c: &CellCal, freqs: &[f32; N_FREQ]) -> Result<(), Refusal> {
         finite(p.stray_pf.is_finite(), "cell stray_pf not finite")?;
         finite(p.cell_pf.is_finite(), "cell cell_pf not finite")?;
         finite(p.g_offset_s.is_finite(), "cell g_offset_s not finite")?;
-        in_range((p.freq_hz / f - 1.0).abs() <= 0.005, "cell freq_hz != device freq")?;
-        in_range((-100.0..=1000.0).contains(&p.stray_pf), "cell stray_pf not -100..1000")?;
-        in_range(p.cell_pf > 0.0 && p.cell_pf <= 1000.0, "cell cell_pf not 0..1000")?;
+        in_range(
+            (p.freq_hz / f - 1.0).abs() <= 0.005,
+            "cell freq_hz != device freq",
+        )?;
+        in_range(
+            (-100.0..=1000.0).contains(&p.stray_pf),
+            "cell stray_pf not -100..1000",
+        )?;
+        in_range(
+            p.cell_pf > 0.0 && p.cell_pf <= 1000.0,
+            "cell cell_pf not 0..1000",
+        )?;
         in_range(p.g_offset_s.abs() <= 1.0, "cell g_offset_s not -1..1 S")?;
     }
-    finite(c.reference_ratio.is_finite(), "cell reference_ratio not finite")?;
-    in_range((0.0..=10.0).contains(&c.reference_ratio), "cell reference_ratio not 0..10")?;
+    finite(
+        c.reference_ratio.is_finite(),
+        "cell reference_ratio not finite",
+    )?;
+    in_range(
+        (0.0..=10.0).contains(&c.reference_ratio),
+        "cell reference_ratio not 0..10",
+    )?;
     Ok(())
 }
 
 fn check_product(c: &ProductCal) -> Result<ProductCalibration<f32>, Refusal> {
-    let ranges = [c.moisture_pct, c.temperature_c].into_iter().chain(c.inputs.iter().copied());
+    let ranges = [c.moisture_pct, c.temperature_c]
+        .into_iter()
+        .chain(c.inputs.iter().copied());
     for r in ranges {
-        finite(r.min.is_finite() && r.max.is_finite(), "product range not finite")?;
+        finite(
+            r.min.is_finite() && r.max.is_finite(),
+            "product range not finite",
+        )?;
         in_range(r.min <= r.max, "product range min > max")?;
     }
-    finite(c.params.iter().all(|p| p.is_finite()), "product params not finite")?;
+    finite(
+        c.params.iter().all(|p| p.is_finite()),
+        "product params not finite",
+    )?;
     finite(c.sec_pct.is_finite(), "product sec_pct not finite")?;
     in_range(c.sec_pct >= 0.0, "product sec_pct < 0")?;
     in_range(
@@ -349,7 +373,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         let boot = storage.get::<u32>(key::BOOT)?.unwrap_or(0).wrapping_add(1);
         storage.put(key::BOOT, &boot)?;
         let write_counter = storage.get::<u32>(key::WRITE_COUNTER)?.unwrap_or(0);
-        let cell = storage.cell_cal()?.filter(|c| check_cell(c, &config.freqs_hz).is_ok());
+        let cell = storage
+            .cell_cal()?
+            .filter(|c| check_cell(c, &config.freqs_hz).is_ok());
         let output_cfg = storage
             .get::<OutputConfig>(key::OUTPUT)?
             .filter(|o| output::validate(o).is_ok())
@@ -427,7 +453,13 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
     }
 
     /// [`Device::poll`], kicking `watchdog` first.
-    pub fn poll_watched(&mut self, now_ms: u64, rx: &[u8], tx: &mut dyn FnMut(&[u8]), watchdog: &mut dyn Watchdog) {
+    pub fn poll_watched(
+        &mut self,
+        now_ms: u64,
+        rx: &[u8],
+        tx: &mut dyn FnMut(&[u8]),
+        watchdog: &mut dyn Watchdog,
+    ) {
         watchdog.kick();
         for &b in rx {
             if let Some(r) = self.decoder.feed(b) {
@@ -538,7 +570,12 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         self.send(tx, &DeviceFrame::Event(ev));
     }
 
-    fn on_frame(&mut self, now_ms: u64, r: Result<HostFrame, FrameError>, tx: &mut dyn FnMut(&[u8])) {
+    fn on_frame(
+        &mut self,
+        now_ms: u64,
+        r: Result<HostFrame, FrameError>,
+        tx: &mut dyn FnMut(&[u8]),
+    ) {
         match r {
             Ok(frame) => self.handle(now_ms, frame, tx),
             Err(FrameError::UnsupportedVersion(v)) => {
@@ -548,7 +585,11 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                     reason: short_string("protocol major version differs"),
                 };
                 // Answer in the peer's header version so it can read the refusal.
-                let v = if v.header_byte().is_some() { v } else { PROTOCOL_VERSION };
+                let v = if v.header_byte().is_some() {
+                    v
+                } else {
+                    PROTOCOL_VERSION
+                };
                 if let Ok(n) = encode_with_version(&frame, v, &mut self.txbuf) {
                     if let Some(b) = self.txbuf.get(..n) {
                         tx(b);
@@ -570,7 +611,11 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             Ok(c) if c <= self.write_counter => Some(AuthFailure::Replay),
             Ok(c) => {
                 if self.storage.put(key::WRITE_COUNTER, &c).is_err() {
-                    self.refuse(tx, frame.id, (ErrorCode::Storage, "write counter not stored"));
+                    self.refuse(
+                        tx,
+                        frame.id,
+                        (ErrorCode::Storage, "write counter not stored"),
+                    );
                     return false;
                 }
                 self.write_counter = c;
@@ -580,7 +625,14 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         match reason {
             None => true,
             Some(reason) => {
-                self.event(now_ms, EventKind::AuthFailed { reason, counter: carried }, tx);
+                self.event(
+                    now_ms,
+                    EventKind::AuthFailed {
+                        reason,
+                        counter: carried,
+                    },
+                    tx,
+                );
                 let why = match reason {
                     AuthFailure::Missing => "write needs an auth tag",
                     AuthFailure::BadTag => "auth tag does not verify",
@@ -621,7 +673,10 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         Ok(Some(match request {
             Request::Identify { host } => {
                 if PROTOCOL_VERSION.check_compatible(host).is_err() {
-                    return Err((ErrorCode::UnsupportedVersion, "protocol major version differs"));
+                    return Err((
+                        ErrorCode::UnsupportedVersion,
+                        "protocol major version differs",
+                    ));
                 }
                 Response::Identity(self.identity())
             }
@@ -666,11 +721,19 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             Request::WriteProductCal { slot, cal } => {
                 in_slot(slot)?;
                 let parsed = check_product(&cal)?;
-                let old = self.storage.product(slot).map_err(st)?.map_or(CalId::NONE, |c| c.content_id());
+                let old = self
+                    .storage
+                    .product(slot)
+                    .map_err(st)?
+                    .map_or(CalId::NONE, |c| c.content_id());
                 self.storage.put_product(slot, &cal).map_err(st)?;
                 let new = cal.content_id();
                 if self.active_slot == Some(slot) {
-                    self.active = Some(Active { slot, id: new, cal: parsed });
+                    self.active = Some(Active {
+                        slot,
+                        id: new,
+                        cal: parsed,
+                    });
                 }
                 self.event(now_ms, EventKind::ProductCalChanged { slot, old, new }, tx);
                 Response::Ack
@@ -683,7 +746,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                     .map_err(st)?
                     .ok_or((ErrorCode::NoSuchSlot, "product slot is empty"))?;
                 let cal = parse_product(&pc).map_err(|e| (e, "stored calibration invalid"))?;
-                self.storage.put(key::ACTIVE_SLOT, &Some(slot)).map_err(st)?;
+                self.storage
+                    .put(key::ACTIVE_SLOT, &Some(slot))
+                    .map_err(st)?;
                 let old_slot = self.active_slot;
                 let idc = pc.content_id();
                 self.active_slot = Some(slot);
@@ -725,19 +790,37 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             }
             Request::ReadLog { from, max } => {
                 in_range((1..=LOG_CHUNK as u8).contains(&max), "max not 1..=4")?;
-                let (readings, next, end) = self.storage.read_log(from, usize::from(max)).map_err(st)?;
-                Response::Log { readings, next, end }
+                let (readings, next, end) =
+                    self.storage.read_log(from, usize::from(max)).map_err(st)?;
+                Response::Log {
+                    readings,
+                    next,
+                    end,
+                }
             }
             Request::ReadEvents { from, max } => {
                 in_range((1..=EVENT_CHUNK as u8).contains(&max), "max not 1..=6")?;
-                let (events, next, end) = self.storage.read_events(from, usize::from(max)).map_err(st)?;
+                let (events, next, end) = self
+                    .storage
+                    .read_events(from, usize::from(max))
+                    .map_err(st)?;
                 Response::Events { events, next, end }
             }
             Request::SetClock { unix_ms } => {
-                in_range((MIN_UNIX_MS..=MAX_UNIX_MS).contains(&unix_ms), "unix_ms not 2000..2200")?;
+                in_range(
+                    (MIN_UNIX_MS..=MAX_UNIX_MS).contains(&unix_ms),
+                    "unix_ms not 2000..2200",
+                )?;
                 let old_ms = self.time_ms(now_ms).0;
                 self.clock_offset_ms = Some(unix_ms as i64 - now_ms as i64);
-                self.event(now_ms, EventKind::ClockSet { old_ms, new_ms: unix_ms }, tx);
+                self.event(
+                    now_ms,
+                    EventKind::ClockSet {
+                        old_ms,
+                        new_ms: unix_ms,
+                    },
+                    tx,
+                );
                 Response::Ack
             }
             Request::SelfTest => {
@@ -779,7 +862,13 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
     }
 
     fn status(&self, now_ms: u64) -> Status {
-        let (log_first, log_len) = self.storage.log_span().unwrap_or((Seq { boot: self.boot, counter: 0 }, 0));
+        let (log_first, log_len) = self.storage.log_span().unwrap_or((
+            Seq {
+                boot: self.boot,
+                counter: 0,
+            },
+            0,
+        ));
         Status {
             time_ms: self.time_ms(now_ms).0,
             uptime_ms: now_ms.saturating_sub(self.boot_ms),
@@ -907,12 +996,24 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         self.fault_events(now_ms, flags, tx);
         self.last_flags = flags;
         if self.cfg.log_readings && self.storage.append_reading(&reading).is_err() {
-            self.event(now_ms, EventKind::Fault { code: FaultCode::Storage }, tx);
+            self.event(
+                now_ms,
+                EventKind::Fault {
+                    code: FaultCode::Storage,
+                },
+                tx,
+            );
         }
         let was_fault = self.output_fault;
         self.drive_output(reading.moisture_pct);
         if self.output_fault && !was_fault {
-            self.event(now_ms, EventKind::Fault { code: FaultCode::CurrentLoop }, tx);
+            self.event(
+                now_ms,
+                EventKind::Fault {
+                    code: FaultCode::CurrentLoop,
+                },
+                tx,
+            );
         }
         if self.stream_ms.is_some() {
             self.send(tx, &DeviceFrame::Reading(reading));
@@ -923,9 +1024,10 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         if let Some(id) = self.pending.selftest.take() {
             let storage_ok = self.scratch_test();
             let frontend_ok = !raw.frontend_error
-                && raw
-                    .reference
-                    .is_some_and(|r| r.iter().all(|a| a.kept > 0 && a.min_reference_amplitude > 100.0));
+                && raw.reference.is_some_and(|r| {
+                    r.iter()
+                        .all(|a| a.kept > 0 && a.min_reference_amplitude > 100.0)
+                });
             let st = SelfTest {
                 storage_ok,
                 frontend_ok,
@@ -939,7 +1041,8 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
 
     fn scratch_test(&mut self) -> bool {
         let v = self.next_event ^ 0xA5A5_5A5A;
-        self.storage.put(SCRATCH_KEY, &v).is_ok() && self.storage.get::<u32>(SCRATCH_KEY).ok().flatten() == Some(v)
+        self.storage.put(SCRATCH_KEY, &v).is_ok()
+            && self.storage.get::<u32>(SCRATCH_KEY).ok().flatten() == Some(v)
     }
 
     fn fault_events(&mut self, now_ms: u64, flags: Flags, tx: &mut dyn FnMut(&[u8])) {
@@ -952,13 +1055,31 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             self.saturated_run = 0;
         }
         if electrode {
-            self.event(now_ms, EventKind::Fault { code: FaultCode::Electrode }, tx);
+            self.event(
+                now_ms,
+                EventKind::Fault {
+                    code: FaultCode::Electrode,
+                },
+                tx,
+            );
         }
         if temp {
-            self.event(now_ms, EventKind::Fault { code: FaultCode::TemperatureSensor }, tx);
+            self.event(
+                now_ms,
+                EventKind::Fault {
+                    code: FaultCode::TemperatureSensor,
+                },
+                tx,
+            );
         }
         if self.saturated_run == 3 {
-            self.event(now_ms, EventKind::Fault { code: FaultCode::Saturation }, tx);
+            self.event(
+                now_ms,
+                EventKind::Fault {
+                    code: FaultCode::Saturation,
+                },
+                tx,
+            );
         }
     }
 

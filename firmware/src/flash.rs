@@ -151,7 +151,12 @@ impl<const N: usize> RamFlash<N> {
         }
     }
 
-    fn range(&self, offset: u32, len: usize, align: usize) -> Result<core::ops::Range<usize>, RamFlashError> {
+    fn range(
+        &self,
+        offset: u32,
+        len: usize,
+        align: usize,
+    ) -> Result<core::ops::Range<usize>, RamFlashError> {
         let start = offset as usize;
         let end = start.checked_add(len).ok_or(RamFlashError::Bounds)?;
         if !start.is_multiple_of(align) || !len.is_multiple_of(align) || end > N {
@@ -209,7 +214,11 @@ impl<const N: usize> NorFlash for RamFlash<N> {
         let cut = self.strike()?;
         self.writes = self.writes.wrapping_add(1);
         let words = bytes.len() / RAM_WRITE_SIZE;
-        let upto = if cut { (words / 2) * RAM_WRITE_SIZE } else { bytes.len() };
+        let upto = if cut {
+            (words / 2) * RAM_WRITE_SIZE
+        } else {
+            bytes.len()
+        };
         let mem = self.mem.get_mut(r).ok_or(RamFlashError::Bounds)?;
         for (m, &b) in mem.iter_mut().zip(bytes).take(upto) {
             *m &= b;
@@ -279,7 +288,10 @@ mod tests {
         f.write(0, &[0x0F, 0xF0, 0xFF, 0x00]).unwrap();
         // Clearing more bits is fine, setting one is not.
         f.write(0, &[0x0E, 0xF0, 0xFF, 0x00]).unwrap();
-        assert_eq!(f.write(0, &[0x1F, 0xF0, 0xFF, 0x00]), Err(RamFlashError::NotErased));
+        assert_eq!(
+            f.write(0, &[0x1F, 0xF0, 0xFF, 0x00]),
+            Err(RamFlashError::NotErased)
+        );
         assert_eq!(f.write(2, &[0; 4]), Err(RamFlashError::Bounds));
         assert_eq!(f.erase(0, 100), Err(RamFlashError::Bounds));
         f.erase(0, 4096).unwrap();
@@ -296,7 +308,10 @@ mod tests {
         assert_eq!(f.write(8, &[0; 16]), Err(RamFlashError::PowerCut));
         assert!(f.power_cut_happened());
         assert_eq!(f.write(64, &[0; 4]), Err(RamFlashError::PowerCut));
-        assert_eq!(&f.bytes()[8..24], &[0, 0, 0, 0, 0, 0, 0, 0, 255, 255, 255, 255, 255, 255, 255, 255]);
+        assert_eq!(
+            &f.bytes()[8..24],
+            &[0, 0, 0, 0, 0, 0, 0, 0, 255, 255, 255, 255, 255, 255, 255, 255]
+        );
         f.restart();
         f.write(64, &[0; 4]).unwrap();
     }

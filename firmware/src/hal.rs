@@ -53,7 +53,9 @@ pub enum FrontendError {
 impl fmt::Display for FrontendError {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
-            FrontendError::Unsupported => write!(f, "front end: frequency or amplitude not supported"),
+            FrontendError::Unsupported => {
+                write!(f, "front end: frequency or amplitude not supported")
+            }
             FrontendError::Bus => write!(f, "front end: no answer on the bus"),
             FrontendError::NotLocked => write!(f, "front end: synthesiser not locked"),
         }

@@ -43,7 +43,7 @@ pub mod temp;
 
 pub use device::{BootError, Device, DeviceConfig};
 pub use flash::RamFlash;
+pub use fringe_protocol as protocol;
 pub use hal::{CurrentOutput, Frontend, Watchdog};
 #[cfg(feature = "sim")]
 pub use sim::{Scenario, SimFrontend};
-pub use fringe_protocol as protocol;

@@ -180,13 +180,18 @@ impl Runner {
         match self.step {
             Step::Done => return None,
             Step::Setup { pass, freq } => {
-                let f = cfg.freqs_hz.get(usize::from(freq)).copied().unwrap_or(f32::NAN);
+                let f = cfg
+                    .freqs_hz
+                    .get(usize::from(freq))
+                    .copied()
+                    .unwrap_or(f32::NAN);
                 let input = if pass == PASS_REFERENCE {
                     Input::Reference
                 } else {
                     Input::Electrodes
                 };
-                let ok = fe.select_input(input).is_ok() && fe.set_excitation(f, cfg.amplitude_v).is_ok();
+                let ok =
+                    fe.select_input(input).is_ok() && fe.set_excitation(f, cfg.amplitude_v).is_ok();
                 self.raw.frontend_error |= !ok;
                 self.avg.clear();
                 self.step = Step::Record { pass, freq, n: 0 };
@@ -201,7 +206,9 @@ impl Runner {
                             info.adc_full_scale,
                         ));
                     }
-                    Err(FrontendError::Bus | FrontendError::NotLocked | FrontendError::Unsupported) => {
+                    Err(
+                        FrontendError::Bus | FrontendError::NotLocked | FrontendError::Unsupported,
+                    ) => {
                         self.raw.frontend_error = true;
                     }
                 }
@@ -221,7 +228,10 @@ impl Runner {
                         }
                     }
                     self.step = if usize::from(freq) + 1 < N_FREQ {
-                        Step::Setup { pass, freq: freq + 1 }
+                        Step::Setup {
+                            pass,
+                            freq: freq + 1,
+                        }
                     } else if pass == PASS_ELECTRODES && self.job.reference {
                         Step::Setup {
                             pass: PASS_REFERENCE,
@@ -279,7 +289,12 @@ impl ChainState {
 }
 
 /// Updates the chain state from a reference measurement; `None` if it is unusable.
-pub fn chain_from_reference<F: Frontend>(fe: &F, info: &FrontendInfo, cfg: &MeasureConfig, r: &[Averaged; N_FREQ]) -> Option<ChainState> {
+pub fn chain_from_reference<F: Frontend>(
+    fe: &F,
+    info: &FrontendInfo,
+    cfg: &MeasureConfig,
+    r: &[Averaged; N_FREQ],
+) -> Option<ChainState> {
     let mut out = ChainState::default();
     for ((g, a), &f) in out.gain.iter_mut().zip(r.iter()).zip(cfg.freqs_hz.iter()) {
         let w = 2.0 * core::f32::consts::PI * f;
@@ -345,7 +360,13 @@ pub fn evaluate<F: Frontend>(
     }; N_FREQ];
     let min_snr = libm::powf(10.0, cfg.min_snr_db / 10.0);
     let mut ys = [C32::default(); N_FREQ];
-    for (i, ((a, &f), g)) in raw.electrodes.iter().zip(cfg.freqs_hz.iter()).zip(chain.gain.iter()).enumerate() {
+    for (i, ((a, &f), g)) in raw
+        .electrodes
+        .iter()
+        .zip(cfg.freqs_hz.iter())
+        .zip(chain.gain.iter())
+        .enumerate()
+    {
         let rt = fe.transimpedance_ohm(f);
         // Phase correction only: the magnitude is the cell calibration's business,
         // and its drift is what the reference check reports.
@@ -392,12 +413,20 @@ pub fn evaluate<F: Frontend>(
     }
     // Electrodes: open when even the stray capacitance is missing; short when
     // the sensor channel saturates and conduction dominates at the upper frequency.
-    let (lo, hi) = (ys.first().copied().unwrap_or_default(), ys.get(1).copied().unwrap_or_default());
+    let (lo, hi) = (
+        ys.first().copied().unwrap_or_default(),
+        ys.get(1).copied().unwrap_or_default(),
+    );
     let w_lo = 2.0 * core::f32::consts::PI * cfg.freqs_hz.first().copied().unwrap_or(1.0);
-    if lo.im < w_lo * cfg.open_pf * 1e-12 || (flags.contains(Flags::SATURATED) && hi.re > 3.0 * hi.im.abs()) {
+    if lo.im < w_lo * cfg.open_pf * 1e-12
+        || (flags.contains(Flags::SATURATED) && hi.re > 3.0 * hi.im.abs())
+    {
         flags |= Flags::ELECTRODE_FAULT;
     }
-    if raw.reference.is_some_and(|r| r.iter().any(|a| a.clipped > 0)) {
+    if raw
+        .reference
+        .is_some_and(|r| r.iter().any(|a| a.clipped > 0))
+    {
         flags |= Flags::SATURATED;
     }
     let t = temperature_c(raw.temperature_raw, &info, cfg.temp_sensor);
@@ -413,7 +442,8 @@ pub fn evaluate<F: Frontend>(
     }
     let mut moisture = None;
     let mut u = f32::NAN;
-    let blocked = Flags::NO_PRODUCT | Flags::ELECTRODE_FAULT | Flags::SATURATED | Flags::TEMP_SENSOR_FAULT;
+    let blocked =
+        Flags::NO_PRODUCT | Flags::ELECTRODE_FAULT | Flags::SATURATED | Flags::TEMP_SENSOR_FAULT;
     if !flags.intersects(blocked) {
         let e = estimate(
             &EstimateInput {

@@ -55,7 +55,10 @@ impl core::fmt::Display for SpanError {
         match self {
             SpanError::NotFinite => write!(f, "output span: value not finite"),
             SpanError::OutOfRange => {
-                write!(f, "output span: need 0 <= span_low_pct < span_high_pct <= 100")
+                write!(
+                    f,
+                    "output span: need 0 <= span_low_pct < span_high_pct <= 100"
+                )
             }
         }
     }
@@ -93,7 +96,8 @@ pub fn current_ma(cfg: &OutputConfig, moisture_pct: Option<f32>) -> (f32, LoopSt
         Some(m) if m.is_finite() && validate(cfg).is_ok() => m,
         _ => return (fail, LoopState::Fault),
     };
-    let ma = MA_LOW + (m - cfg.span_low_pct) / (cfg.span_high_pct - cfg.span_low_pct) * (MA_HIGH - MA_LOW);
+    let ma = MA_LOW
+        + (m - cfg.span_low_pct) / (cfg.span_high_pct - cfg.span_low_pct) * (MA_HIGH - MA_LOW);
     if ma < MA_LOW {
         (ma.max(MA_UNDER), LoopState::UnderRange)
     } else if ma > MA_HIGH {
@@ -132,11 +136,20 @@ mod tests {
     fn under_and_over_range_stay_in_ne43_measuring_band() {
         // NAMUR NE 43: measuring band 3.8-20.5 mA.
         let (ma, s) = current_ma(&CFG, Some(9.0));
-        assert!((ma - 3.8).abs() < 1e-5 && s == LoopState::UnderRange, "{ma}");
+        assert!(
+            (ma - 3.8).abs() < 1e-5 && s == LoopState::UnderRange,
+            "{ma}"
+        );
         let (ma, s) = current_ma(&CFG, Some(9.9));
-        assert!((ma - 3.84).abs() < 1e-4 && s == LoopState::UnderRange, "{ma}");
+        assert!(
+            (ma - 3.84).abs() < 1e-4 && s == LoopState::UnderRange,
+            "{ma}"
+        );
         let (ma, s) = current_ma(&CFG, Some(25.0));
-        assert!((ma - 20.5).abs() < 1e-5 && s == LoopState::OverRange, "{ma}");
+        assert!(
+            (ma - 20.5).abs() < 1e-5 && s == LoopState::OverRange,
+            "{ma}"
+        );
         let (ma, _) = current_ma(&CFG, Some(20.2));
         assert!((ma - 20.32).abs() < 1e-4);
     }

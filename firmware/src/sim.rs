@@ -206,7 +206,10 @@ impl SimFrontend {
         let h = 1.0 - (freq_hz / SIM_CELL.f_res_hz) * (freq_hz / SIM_CELL.f_res_hz);
         match self.input {
             Input::Reference => {
-                let drift = 1.0 + self.scenario.reference_drift_pct_per_h * 0.01 * (self.time_s / 3600.0) as f32;
+                let drift = 1.0
+                    + self.scenario.reference_drift_pct_per_h
+                        * 0.01
+                        * (self.time_s / 3600.0) as f32;
                 C32::new(0.0, w * SIM_REFERENCE_PF * 1e-12 * drift)
             }
             Input::Electrodes => match self.scenario.electrodes {
@@ -285,10 +288,13 @@ impl Frontend for SimFrontend {
         let (g_s, g_r, off_s, off_r) = (1.012f32, 0.994f32, 14.0f32, -9.0f32);
         let a_s = a_ref * ratio.abs() * g_s;
         let ph_s = ratio.arg();
-        let phase0 = 2.0 * core::f32::consts::PI * ((self.rng.next_u32() >> 8) as f32 / (1u32 << 24) as f32);
+        let phase0 =
+            2.0 * core::f32::consts::PI * ((self.rng.next_u32() >> 8) as f32 / (1u32 << 24) as f32);
         let noise = self.scenario.noise_codes.max(0.0);
         for (n, (s, r)) in sensor.iter_mut().zip(reference.iter_mut()).enumerate() {
-            let th = phase0 + 2.0 * core::f32::consts::PI * f32::from(SIM_IF_BIN) * n as f32 / RECORD_LEN as f32;
+            let th = phase0
+                + 2.0 * core::f32::consts::PI * f32::from(SIM_IF_BIN) * n as f32
+                    / RECORD_LEN as f32;
             let vs = a_s * libm::cosf(th + ph_s) + off_s + noise * gauss(&mut self.rng);
             let vr = a_ref * g_r * libm::cosf(th) + off_r + noise * gauss(&mut self.rng);
             *s = libm::roundf(vs).clamp(-32768.0, 32767.0) as i16;
@@ -329,7 +335,10 @@ mod tests {
             let (mut s, mut r) = ([0i16; RECORD_LEN], [0i16; RECORD_LEN]);
             fe.acquire(&mut s, &mut r).unwrap();
             let rr = demod::record(&s, &r, SIM_IF_BIN, i16::MAX);
-            let want = fe.admittance(f).scale(r_t(f) * 1.012 / 0.994).times(fe.chain_gain());
+            let want = fe
+                .admittance(f)
+                .scale(r_t(f) * 1.012 / 0.994)
+                .times(fe.chain_gain());
             let got = rr.ratio;
             assert!(
                 got.over(want).abs() - 1.0 < 1e-3 && (got.over(want).arg()).abs() < 1e-3,
@@ -341,10 +350,13 @@ mod tests {
 
     #[test]
     fn short_saturates_and_open_is_tiny() {
-        let mut fe = SimFrontend::new(1, Scenario {
-            electrodes: Electrodes::Short,
-            ..Scenario::default()
-        });
+        let mut fe = SimFrontend::new(
+            1,
+            Scenario {
+                electrodes: Electrodes::Short,
+                ..Scenario::default()
+            },
+        );
         fe.set_excitation(1.0e6, 1.0).unwrap();
         let (mut s, mut r) = ([0i16; RECORD_LEN], [0i16; RECORD_LEN]);
         fe.acquire(&mut s, &mut r).unwrap();
@@ -358,13 +370,16 @@ mod tests {
 
     #[test]
     fn buildup_lowers_the_apparent_permittivity_of_a_wet_material() {
-        let mut fe = SimFrontend::new(1, Scenario {
-            material: Material::Liquid {
-                eps_re: 20.0,
-                eps_im: 1.0,
+        let mut fe = SimFrontend::new(
+            1,
+            Scenario {
+                material: Material::Liquid {
+                    eps_re: 20.0,
+                    eps_im: 1.0,
+                },
+                ..Scenario::default()
             },
-            ..Scenario::default()
-        });
+        );
         let clean = fe.material_eps(1.0e6);
         fe.set_scenario(Scenario {
             buildup_mm: 1.0,

@@ -120,8 +120,8 @@ impl<'a, T: Serialize + DeserializeOwned> Value<'a> for Pc<T> {
             .map_err(|_| SerializationError::BufferTooSmall)
     }
     fn deserialize_from(buffer: &'a [u8]) -> Result<(Self, usize), SerializationError> {
-        let (v, rest) =
-            postcard::take_from_bytes::<T>(buffer).map_err(|_| SerializationError::InvalidFormat)?;
+        let (v, rest) = postcard::take_from_bytes::<T>(buffer)
+            .map_err(|_| SerializationError::InvalidFormat)?;
         Ok((Pc(v), buffer.len() - rest.len()))
     }
 }
@@ -215,7 +215,8 @@ macro_rules! queue {
     ($self:ident, $range:ident) => {
         QueueStorage::new(
             Blocking(&mut $self.flash),
-            QueueConfig::try_new($self.layout.$range.clone()).map_err(|_| StorageError::TooSmall)?,
+            QueueConfig::try_new($self.layout.$range.clone())
+                .map_err(|_| StorageError::TooSmall)?,
             Cache::new_uncached(),
         )
     };
@@ -296,7 +297,10 @@ impl<S: NorFlash> Storage<S> {
     ///
     /// # Errors
     /// [`StorageError`] on flash failure.
-    pub fn get<T: Serialize + DeserializeOwned>(&mut self, k: u8) -> Result<Option<T>, StorageError> {
+    pub fn get<T: Serialize + DeserializeOwned>(
+        &mut self,
+        k: u8,
+    ) -> Result<Option<T>, StorageError> {
         let mut map = map!(self);
         match block_on(map.fetch_item::<Pc<T>>(&mut self.buf, &k)).ok_or(StorageError::LogicBug)? {
             Ok(v) => Ok(v.map(|p| p.0)),
@@ -309,7 +313,11 @@ impl<S: NorFlash> Storage<S> {
     ///
     /// # Errors
     /// [`StorageError`] on flash failure or when the value does not fit [`ITEM_BUF`].
-    pub fn put<T: Serialize + DeserializeOwned + Clone>(&mut self, k: u8, v: &T) -> Result<(), StorageError> {
+    pub fn put<T: Serialize + DeserializeOwned + Clone>(
+        &mut self,
+        k: u8,
+        v: &T,
+    ) -> Result<(), StorageError> {
         let mut map = map!(self);
         run(map.store_item(&mut self.buf, &k, &Pc(v.clone())))
     }
@@ -322,7 +330,9 @@ impl<S: NorFlash> Storage<S> {
         if usize::from(slot) >= N_PRODUCT_SLOTS {
             return Ok(None);
         }
-        Ok(self.get::<Option<ProductCal>>(key::PRODUCT_BASE + slot)?.flatten())
+        Ok(self
+            .get::<Option<ProductCal>>(key::PRODUCT_BASE + slot)?
+            .flatten())
     }
 
     /// Writes product slot `slot`.
@@ -347,7 +357,11 @@ impl<S: NorFlash> Storage<S> {
     /// Scans a ring: first and last key and count; `log` picks the reading log.
     fn scan(&mut self, log: bool) -> Result<RingState, StorageError> {
         let mut st = RingState::default();
-        let mut q = if log { queue!(self, log) } else { queue!(self, events) };
+        let mut q = if log {
+            queue!(self, log)
+        } else {
+            queue!(self, events)
+        };
         let mut it = run(q.iter())?;
         while let Some(e) = run(it.next(&mut self.buf))? {
             let Some(k) = decode_key(&e, log) else {
@@ -362,11 +376,19 @@ impl<S: NorFlash> Storage<S> {
         Ok(st)
     }
 
-    fn push(&mut self, log: bool, bytes_of: impl FnOnce(&mut [u8]) -> Option<usize>) -> Result<(), StorageError> {
+    fn push(
+        &mut self,
+        log: bool,
+        bytes_of: impl FnOnce(&mut [u8]) -> Option<usize>,
+    ) -> Result<(), StorageError> {
         let mut tmp = [0u8; ITEM_BUF];
         let n = bytes_of(&mut tmp).ok_or(StorageError::Encoding)?;
         let data = tmp.get(..n).ok_or(StorageError::Encoding)?;
-        let mut q = if log { queue!(self, log) } else { queue!(self, events) };
+        let mut q = if log {
+            queue!(self, log)
+        } else {
+            queue!(self, events)
+        };
         run(q.push(data, true))
     }
 
@@ -397,7 +419,11 @@ impl<S: NorFlash> Storage<S> {
         }
         st.last = k;
         st.len = st.len.saturating_add(1);
-        let cap = if log { self.log_capacity() } else { self.event_capacity() };
+        let cap = if log {
+            self.log_capacity()
+        } else {
+            self.event_capacity()
+        };
         if (if log { self.log.len } else { self.events.len }) > cap {
             let fresh = self.scan(log)?;
             if log {
@@ -412,12 +438,22 @@ impl<S: NorFlash> Storage<S> {
     /// Readings the log is guaranteed to hold (all pages but one, at the
     /// largest reading size).
     pub fn log_capacity(&self) -> u32 {
-        ring_capacity(&self.layout.log, S::ERASE_SIZE, S::WRITE_SIZE, MAX_READING_BYTES)
+        ring_capacity(
+            &self.layout.log,
+            S::ERASE_SIZE,
+            S::WRITE_SIZE,
+            MAX_READING_BYTES,
+        )
     }
 
     /// Events the event ring is guaranteed to hold.
     pub fn event_capacity(&self) -> u32 {
-        ring_capacity(&self.layout.events, S::ERASE_SIZE, S::WRITE_SIZE, MAX_EVENT_BYTES)
+        ring_capacity(
+            &self.layout.events,
+            S::ERASE_SIZE,
+            S::WRITE_SIZE,
+            MAX_EVENT_BYTES,
+        )
     }
 
     /// `(first seq, readings)` in the log; `None` when empty.
@@ -436,7 +472,11 @@ impl<S: NorFlash> Storage<S> {
     ///
     /// # Errors
     /// [`StorageError`] on flash failure.
-    pub fn read_log(&mut self, from: Seq, max: usize) -> Result<(Vec<Reading, LOG_CHUNK>, Seq, bool), StorageError> {
+    pub fn read_log(
+        &mut self,
+        from: Seq,
+        max: usize,
+    ) -> Result<(Vec<Reading, LOG_CHUNK>, Seq, bool), StorageError> {
         let mut out: Vec<Reading, LOG_CHUNK> = Vec::new();
         let max = max.min(LOG_CHUNK);
         let mut next = from;
@@ -484,7 +524,11 @@ impl<S: NorFlash> Storage<S> {
     ///
     /// # Errors
     /// [`StorageError`] on flash failure.
-    pub fn read_events(&mut self, from: u32, max: usize) -> Result<(Vec<Event, EVENT_CHUNK>, u32, bool), StorageError> {
+    pub fn read_events(
+        &mut self,
+        from: u32,
+        max: usize,
+    ) -> Result<(Vec<Event, EVENT_CHUNK>, u32, bool), StorageError> {
         let mut out: Vec<Event, EVENT_CHUNK> = Vec::new();
         let max = max.min(EVENT_CHUNK);
         let mut next = from;
@@ -531,9 +575,13 @@ fn ring_capacity(r: &Range<u32>, page: usize, word: usize, item: usize) -> u32 {
 fn decode_key(bytes: &[u8], log: bool) -> Option<u64> {
     // Both records start with their key (postcard writes fields in order).
     if log {
-        postcard::take_from_bytes::<Seq>(bytes).ok().map(|(s, _)| s.as_u64())
+        postcard::take_from_bytes::<Seq>(bytes)
+            .ok()
+            .map(|(s, _)| s.as_u64())
     } else {
-        postcard::take_from_bytes::<u32>(bytes).ok().map(|(n, _)| u64::from(n))
+        postcard::take_from_bytes::<u32>(bytes)
+            .ok()
+            .map(|(n, _)| u64::from(n))
     }
 }
 
@@ -578,11 +626,25 @@ mod tests {
         let (first, len) = s.log_span().unwrap();
         assert!(len >= cap, "{len} < {cap}");
         assert_eq!(first.counter + len, total);
-        let (rs, next, end) = s.read_log(Seq { boot: 1, counter: total - 3 }, 4).unwrap();
+        let (rs, next, end) = s
+            .read_log(
+                Seq {
+                    boot: 1,
+                    counter: total - 3,
+                },
+                4,
+            )
+            .unwrap();
         assert_eq!(rs.len(), 3);
         assert_eq!(rs[0].seq.counter, total - 3);
         assert!(end);
-        assert_eq!(next, Seq { boot: 1, counter: total });
+        assert_eq!(
+            next,
+            Seq {
+                boot: 1,
+                counter: total
+            }
+        );
         let (rs, _, end) = s.read_log(Seq::default(), 4).unwrap();
         assert_eq!(rs[0].seq, first);
         assert!(!end);

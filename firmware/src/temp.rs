@@ -45,7 +45,13 @@ mod tests {
     #[test]
     fn pt100_table_values() {
         // IEC 60751 Pt100 (REFERENCES.md section 6, matches the published table to 2 dp).
-        for (t, r) in [(-100.0f32, 60.2558f32), (0.0, 100.0), (50.0, 119.3971), (100.0, 138.5055), (200.0, 175.856)] {
+        for (t, r) in [
+            (-100.0f32, 60.2558f32),
+            (0.0, 100.0),
+            (50.0, 119.3971),
+            (100.0, 138.5055),
+            (200.0, 175.856),
+        ] {
             assert!((rtd_resistance_ohm(t, 100.0) - r).abs() < 2e-3, "{t}");
             let back = rtd_temperature_c(r, 100.0).unwrap();
             assert!((back - t).abs() < 5e-3, "{t} -> {back}");

@@ -26,7 +26,13 @@ fn boots_and_identifies() {
     match b.ok(Request::Status) {
         Response::Status(s) => {
             assert_eq!(s.boot, 1);
-            assert_eq!(s.next_seq, Seq { boot: 1, counter: 0 });
+            assert_eq!(
+                s.next_seq,
+                Seq {
+                    boot: 1,
+                    counter: 0
+                }
+            );
             assert_eq!(s.stream_period_ms, None);
             assert_eq!(s.cell_cal, CalId::NONE);
         }
@@ -34,21 +40,42 @@ fn boots_and_identifies() {
     }
     // A Boot event was stored.
     let ev = b.events();
-    assert!(matches!(ev[0].kind, EventKind::Boot { reset_cause: ResetCause::PowerOn }), "{ev:?}");
+    assert!(
+        matches!(
+            ev[0].kind,
+            EventKind::Boot {
+                reset_cause: ResetCause::PowerOn
+            }
+        ),
+        "{ev:?}"
+    );
 }
 
 #[test]
 fn uncalibrated_reading_says_so_and_invents_nothing() {
     let mut b = Bench::new(2, Scenario::default());
     let r = b.measure();
-    assert_eq!(r.seq, Seq { boot: 1, counter: 0 });
-    assert!(r.flags.contains(Flags::NOT_CALIBRATED | Flags::CLOCK_UNSET), "{:?}", r.flags);
+    assert_eq!(
+        r.seq,
+        Seq {
+            boot: 1,
+            counter: 0
+        }
+    );
+    assert!(
+        r.flags.contains(Flags::NOT_CALIBRATED | Flags::CLOCK_UNSET),
+        "{:?}",
+        r.flags
+    );
     assert_eq!(r.moisture_pct, None);
     assert!(r.channels[0].eps_re.is_nan());
     // The admittance is measured all the same: air in front of 2.1 + 1.5 pF.
     let w = 2.0 * std::f32::consts::PI * 1.0e6;
     let c_pf = r.channels[0].b_s / w * 1e12;
-    assert!((c_pf - 3.6).abs() < 0.15, "apparent capacitance {c_pf} pF (board gain errors included)");
+    assert!(
+        (c_pf - 3.6).abs() < 0.15,
+        "apparent capacitance {c_pf} pF (board gain errors included)"
+    );
     assert!((r.temperature_c - 20.0).abs() < 0.1, "{}", r.temperature_c);
     let r2 = b.measure();
     assert_eq!(r2.seq.counter, 1);
@@ -70,7 +97,11 @@ fn streams_at_the_configured_period() {
             _ => None,
         })
         .collect();
-    assert!((9..=11).contains(&readings.len()), "{} readings in 5 s", readings.len());
+    assert!(
+        (9..=11).contains(&readings.len()),
+        "{} readings in 5 s",
+        readings.len()
+    );
     for w in readings.windows(2) {
         assert_eq!(w[1].seq.counter, w[0].seq.counter + 1);
         let dt = w[1].time_ms - w[0].time_ms;
@@ -102,11 +133,15 @@ fn major_version_mismatch_is_refused() {
     };
     let n = encode_with_version(&frame, Version { major: 3, minor: 1 }, &mut buf).unwrap();
     let mut out = Vec::new();
-    b.dev.poll(0, &buf[..n], &mut |x: &[u8]| out.extend_from_slice(x));
+    b.dev
+        .poll(0, &buf[..n], &mut |x: &[u8]| out.extend_from_slice(x));
     let mut dec = FrameDecoder::<DeviceFrame>::new();
     let got: Vec<_> = dec.push(&out).collect();
     assert_eq!(got.len(), 1);
-    assert!(matches!(got[0], Err(FrameError::UnsupportedVersion(Version { major: 3, .. }))));
+    assert!(matches!(
+        got[0],
+        Err(FrameError::UnsupportedVersion(Version { major: 3, .. }))
+    ));
 }
 
 #[test]
@@ -124,7 +159,11 @@ fn empty_line_and_electrode_faults_are_flagged() {
         ..Scenario::default()
     });
     let r = b.measure();
-    assert!(r.flags.contains(Flags::ELECTRODE_FAULT | Flags::SATURATED), "{:?}", r.flags);
+    assert!(
+        r.flags.contains(Flags::ELECTRODE_FAULT | Flags::SATURATED),
+        "{:?}",
+        r.flags
+    );
     b.dev.frontend_mut().set_scenario(Scenario {
         material: Material::Liquid {
             eps_re: 24.4,
@@ -135,5 +174,11 @@ fn empty_line_and_electrode_faults_are_flagged() {
     let r = b.measure();
     assert!(!r.flags.contains(Flags::ELECTRODE_FAULT), "{:?}", r.flags);
     let ev = b.events();
-    assert!(ev.iter().any(|e| e.kind == EventKind::Fault { code: FaultCode::Electrode }), "{ev:?}");
+    assert!(
+        ev.iter().any(|e| e.kind
+            == EventKind::Fault {
+                code: FaultCode::Electrode
+            }),
+        "{ev:?}"
+    );
 }

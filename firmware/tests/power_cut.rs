@@ -34,7 +34,11 @@ fn read_log(b: &mut Bench) -> Vec<Reading> {
     let mut from = Seq::default();
     loop {
         match b.ok(Request::ReadLog { from, max: 4 }) {
-            Response::Log { readings, next, end } => {
+            Response::Log {
+                readings,
+                next,
+                end,
+            } => {
                 out.extend(readings);
                 from = next;
                 if end {
@@ -63,7 +67,10 @@ fn ops(b: &mut Bench) -> u32 {
 fn prepared(extra: u32) -> (Flash, u32) {
     let mut b = Bench::new(20, Scenario::default());
     for i in 0..extra {
-        assert_eq!(b.ok(Request::WriteCellCal(cell(1.0 + i as f32 * 0.01))), Response::Ack);
+        assert_eq!(
+            b.ok(Request::WriteCellCal(cell(1.0 + i as f32 * 0.01))),
+            Response::Ack
+        );
     }
     assert_eq!(b.ok(Request::WriteCellCal(cell(2.1))), Response::Ack);
     for _ in 0..5 {
@@ -105,7 +112,10 @@ fn calibration_update_body() {
             let _ = b.events();
             b.dev.flash_mut().cut_power_after(k);
             let _ = b.ask(Request::WriteCellCal(new));
-            assert!(b.dev.flash_mut().power_cut_happened(), "extra {extra} step {k}: no cut");
+            assert!(
+                b.dev.flash_mut().power_cut_happened(),
+                "extra {extra} step {k}: no cut"
+            );
             let (fe, mut fl, _) = b.dev.into_parts();
             fl.restart();
             let mut b = Bench::on_flash(22, *fe.scenario(), fl);
@@ -117,7 +127,11 @@ fn calibration_update_body() {
             );
             // Logs intact up to the cut: everything stored before is still there, in order.
             let log = read_log(&mut b);
-            assert_eq!(bytes(&log), bytes(&log_before), "extra {extra} step {k}: reading log changed");
+            assert_eq!(
+                bytes(&log),
+                bytes(&log_before),
+                "extra {extra} step {k}: reading log changed"
+            );
             let ev = b.events();
             assert!(
                 ev.len() >= events_before.len() && ev[..events_before.len()] == events_before[..],
@@ -125,7 +139,11 @@ fn calibration_update_body() {
             );
             // And the device goes on working: a later update lands.
             b.counter += 10;
-            assert_eq!(b.ok(Request::WriteCellCal(cell(2.5))), Response::Ack, "extra {extra} step {k}");
+            assert_eq!(
+                b.ok(Request::WriteCellCal(cell(2.5))),
+                Response::Ack,
+                "extra {extra} step {k}"
+            );
             assert_eq!(read_cell(&mut b), Some(cell(2.5)));
         }
     }
@@ -202,19 +220,34 @@ fn log_append_body() {
         fl.restart();
         let mut b = fast(fl, 32);
         let mut log = Vec::new();
-        b.dev.storage_mut().visit_log(|r| log.push(r.to_vec())).expect("log readable");
+        b.dev
+            .storage_mut()
+            .visit_log(|r| log.push(r.to_vec()))
+            .expect("log readable");
         // The log must be one contiguous window of (old log, then the readings
         // taken), ending at the last reading taken or the one before (the
         // append the cut struck), and at least `cap` long: nothing but the
         // oldest page may go.
         let mut all = bytes(&log_before);
         all.extend(bytes(&taken));
-        let end_ok = |end: usize| end <= all.len() && end >= log.len() && all[end - log.len()..end] == log[..];
-        assert!(end_ok(all.len()) || end_ok(all.len() - 1), "step {k}: log is not a window ending at the cut");
-        assert!(log.len() >= cap, "step {k}: {} readings left, capacity {cap}", log.len());
+        let end_ok = |end: usize| {
+            end <= all.len() && end >= log.len() && all[end - log.len()..end] == log[..]
+        };
+        assert!(
+            end_ok(all.len()) || end_ok(all.len() - 1),
+            "step {k}: log is not a window ending at the cut"
+        );
+        assert!(
+            log.len() >= cap,
+            "step {k}: {} readings left, capacity {cap}",
+            log.len()
+        );
         // Appends go on after the restart.
         let r = b.measure();
-        match b.ok(Request::ReadLog { from: r.seq, max: 1 }) {
+        match b.ok(Request::ReadLog {
+            from: r.seq,
+            max: 1,
+        }) {
             Response::Log { readings, .. } => assert_eq!(bytes(&readings), bytes(&[r]), "step {k}"),
             other => panic!("{other:?}"),
         }

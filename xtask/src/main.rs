@@ -67,6 +67,17 @@ fn test() -> Result<()> {
             "--no-default-features",
         ]))?;
     }
+    // The simulated front end must build for the target too (still no_std).
+    run(cargo().args([
+        "build",
+        "-p",
+        "fringe-firmware",
+        "--target",
+        TARGET,
+        "--no-default-features",
+        "--features",
+        "sim",
+    ]))?;
     eprintln!("xtask: all tests passed");
     Ok(())
 }

@@ -69,7 +69,8 @@ impl Bench {
 
     pub fn poll_bytes(&mut self, rx: &[u8]) {
         let mut got: Vec<u8> = Vec::new();
-        self.dev.poll(self.now, rx, &mut |b: &[u8]| got.extend_from_slice(b));
+        self.dev
+            .poll(self.now, rx, &mut |b: &[u8]| got.extend_from_slice(b));
         for r in self.dec.push(&got) {
             self.seen.push(r.expect("device frame decodes"));
         }
