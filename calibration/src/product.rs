@@ -50,7 +50,7 @@ use core::fmt;
 pub const MAX_PARAMS: usize = 24;
 /// Most model inputs with a valid range (`fringe_protocol::MAX_CAL_INPUTS`).
 pub const MAX_INPUTS: usize = 6;
-/// Current layout version (params[0]).
+/// Current layout version (`params[0]`).
 pub const LAYOUT_VERSION: f32 = 1.0;
 /// Length of the single-frequency layout.
 pub const SINGLE_LEN: usize = 8;
@@ -106,7 +106,7 @@ pub enum ParamsError {
         /// Length given.
         got: usize,
     },
-    /// params[0] names a layout this build does not know.
+    /// `params[0]` names a layout this build does not know.
     UnknownVersion,
     /// A value is NaN or infinite.
     NonFinite {
