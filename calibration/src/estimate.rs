@@ -309,15 +309,7 @@ mod tests {
     }
 
     fn grid() -> impl Iterator<Item = SynthSample<f64>> {
-        [8.0, 12.0, 16.0, 20.0, 25.0].into_iter().flat_map(|m| {
-            [5.0, 20.0, 40.0].into_iter().flat_map(move |t| {
-                [0.02, 0.08, 0.3].into_iter().map(move |salt| SynthSample {
-                    moisture_pct: m,
-                    temperature_c: t,
-                    water_sigma25_s_m: salt,
-                })
-            })
-        })
+        crate::synth::span_grid()
     }
 
     #[test]
@@ -395,6 +387,57 @@ mod tests {
             worst < 0.01,
             "worst f32 - f64 difference {worst} % moisture"
         );
+    }
+
+    #[test]
+    fn uncertainty_matches_scatter_of_noisy_estimates() {
+        // The propagated uncertainty (without the SEC) against the scatter of
+        // repeated noisy estimates of one reading: within 20 %. Seeded.
+        use rand::SeedableRng;
+        use rand_distr::{Distribution, Normal};
+        let seed = 99_173u64;
+        let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
+        let mut cal = identity_cal::<f64>();
+        cal.sec_pct = 0.0;
+        for s in [
+            SynthSample {
+                moisture_pct: 12.0,
+                temperature_c: 15.0,
+                water_sigma25_s_m: 0.05,
+            },
+            SynthSample {
+                moisture_pct: 22.0,
+                temperature_c: 35.0,
+                water_sigma25_s_m: 0.2,
+            },
+        ] {
+            let sd = 0.01;
+            let clean = input::<f64>(&s, sd);
+            let noise = Normal::new(0.0, sd).unwrap();
+            let (mut sum, mut sum2, mut u_mean) = (0.0, 0.0, 0.0);
+            let n = 300;
+            for _ in 0..n {
+                let mut i = clean;
+                for c in i.channels.iter_mut() {
+                    c.eps_re += noise.sample(&mut rng);
+                    c.eps_loss += noise.sample(&mut rng);
+                }
+                let e = estimate(&i, Some(&cal));
+                let m = e
+                    .moisture_pct
+                    .unwrap_or_else(|| panic!("seed {seed}: {:?}", e.failure));
+                sum += m;
+                sum2 += m * m;
+                u_mean += e.uncertainty_pct / n as f64;
+            }
+            let mean = sum / n as f64;
+            let scatter = (sum2 / n as f64 - mean * mean).sqrt();
+            println!("scatter {scatter} predicted {u_mean}");
+            assert!(
+                (scatter / u_mean - 1.0).abs() < 0.2,
+                "seed {seed} {s:?}: scatter {scatter} vs {u_mean}"
+            );
+        }
     }
 
     #[test]

@@ -135,6 +135,21 @@ impl<T: Real> SynthProduct<T> {
     }
 }
 
+/// A span of readings over the grain product's range, as the tests and
+/// benchmarks use it: moisture 8, 12, 16, 20, 25 % wet basis x temperature
+/// 5, 20, 40 C x water conductivity 0.02, 0.08, 0.3 S/m (45 samples).
+pub fn span_grid<T: Real>() -> impl Iterator<Item = SynthSample<T>> {
+    [8.0, 12.0, 16.0, 20.0, 25.0].into_iter().flat_map(|m| {
+        [5.0, 20.0, 40.0].into_iter().flat_map(move |t| {
+            [0.02, 0.08, 0.3].into_iter().map(move |salt| SynthSample {
+                moisture_pct: T::c(m),
+                temperature_c: T::c(t),
+                water_sigma25_s_m: T::c(salt),
+            })
+        })
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

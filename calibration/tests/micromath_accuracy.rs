@@ -21,7 +21,7 @@ use fringe_calibration::moisture::Basis;
 use fringe_calibration::product::{
     ModelKind, ProductCalibration, ProductModel, Range, RelaxationModel,
 };
-use fringe_calibration::synth::{SynthProduct, SynthSample};
+use fringe_calibration::synth::SynthProduct;
 use fringe_calibration::Real;
 use micromath::F32Ext;
 
@@ -353,50 +353,42 @@ fn worst_moisture_error<T: Real>() -> (f64, usize) {
     let c_64 = calibration::<f64>();
     let mut worst = 0.0f64;
     let mut failed = 0;
-    for m in [8.0, 12.0, 16.0, 20.0, 25.0] {
-        for t in [5.0, 20.0, 40.0] {
-            for salt in [0.02, 0.08, 0.3] {
-                let s = SynthSample {
-                    moisture_pct: m,
-                    temperature_c: t,
-                    water_sigma25_s_m: salt,
-                };
-                let ch = [1e6, 20e6].map(|f| {
-                    let e = sp.permittivity(f, &s);
-                    // Inputs rounded to f32 for both paths.
-                    (
-                        f as f32 as f64,
-                        e.re as f32 as f64,
-                        loss_factor(e) as f32 as f64,
-                    )
-                });
-                let mk = |c: (f64, f64, f64)| Channel {
-                    freq_hz: c.0,
-                    eps_re: c.1,
-                    eps_loss: c.2,
-                    sd: 1e-3,
-                };
-                let i64_ = EstimateInput {
-                    channels: ch.map(mk),
-                    temperature_c: t,
-                };
-                let it = EstimateInput {
-                    channels: ch.map(|c| Channel {
-                        freq_hz: T::from_f64(c.0),
-                        eps_re: T::from_f64(c.1),
-                        eps_loss: T::from_f64(c.2),
-                        sd: T::from_f64(1e-3),
-                    }),
-                    temperature_c: T::from_f64(t),
-                };
-                let b = estimate(&i64_, Some(&c_64))
-                    .moisture_pct
-                    .expect("f64 chain gives a moisture");
-                match estimate(&it, Some(&c_t)).moisture_pct {
-                    Some(a) => worst = worst.max((a.to_f64() - b).abs()),
-                    None => failed += 1,
-                }
-            }
+    for s in fringe_calibration::synth::span_grid::<f64>() {
+        let t = s.temperature_c;
+        let ch = [1e6, 20e6].map(|f| {
+            let e = sp.permittivity(f, &s);
+            // Inputs rounded to f32 for both paths.
+            (
+                f as f32 as f64,
+                e.re as f32 as f64,
+                loss_factor(e) as f32 as f64,
+            )
+        });
+        let mk = |c: (f64, f64, f64)| Channel {
+            freq_hz: c.0,
+            eps_re: c.1,
+            eps_loss: c.2,
+            sd: 1e-3,
+        };
+        let i64_ = EstimateInput {
+            channels: ch.map(mk),
+            temperature_c: t,
+        };
+        let it = EstimateInput {
+            channels: ch.map(|c| Channel {
+                freq_hz: T::from_f64(c.0),
+                eps_re: T::from_f64(c.1),
+                eps_loss: T::from_f64(c.2),
+                sd: T::from_f64(1e-3),
+            }),
+            temperature_c: T::from_f64(t),
+        };
+        let b = estimate(&i64_, Some(&c_64))
+            .moisture_pct
+            .expect("f64 chain gives a moisture");
+        match estimate(&it, Some(&c_t)).moisture_pct {
+            Some(a) => worst = worst.max((a.to_f64() - b).abs()),
+            None => failed += 1,
         }
     }
     (worst, failed)
