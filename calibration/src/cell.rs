@@ -14,6 +14,7 @@
 
 use crate::dielectric::omega;
 use crate::real::{Cx, Real};
+use crate::water::ReferenceLiquid;
 use core::fmt;
 
 const PF: f64 = 1e-12;
@@ -42,6 +43,8 @@ pub enum CellError {
     /// The two calibration media have (nearly) the same permittivity, or the
     /// liquid's susceptance is not above the air's: C0 cannot be solved.
     DegenerateCalibration,
+    /// The reference liquid's temperature is outside its table's range.
+    LiquidTemperature,
 }
 
 impl fmt::Display for CellError {
@@ -50,6 +53,7 @@ impl fmt::Display for CellError {
             CellError::BadCellConstant => "cell constant C0 must be a positive finite capacitance (pF)",
             CellError::BadFrequency => "frequency must be positive and finite (Hz)",
             CellError::NonFinite => "admittance or permittivity is not finite",
+            CellError::LiquidTemperature => "reference liquid temperature outside the range of its table (C)",
             CellError::DegenerateCalibration => {
                 "calibration media too close in permittivity (or liquid susceptance not above air): C0 undetermined"
             }
@@ -151,6 +155,35 @@ pub fn two_point_calibration<T: Real>(
     })
 }
 
+/// Two-point calibration with air at `t_air_c` and a tabulated reference
+/// liquid at its measured temperature `t_liquid_c` (their permittivities from
+/// [`ReferenceLiquid::permittivity`]; air's loss and the liquid's loss at these
+/// frequencies are not used).
+///
+/// # Errors
+/// As [`two_point_calibration`]; [`CellError::LiquidTemperature`] when
+/// `t_liquid_c` is outside the range the liquid's table holds for.
+pub fn two_point_with_liquid<T: Real>(
+    freq_hz: T,
+    y_air_s: Cx<T>,
+    t_air_c: T,
+    y_liquid_s: Cx<T>,
+    liquid: &ReferenceLiquid,
+    t_liquid_c: T,
+) -> Result<CellConstants<T>, CellError> {
+    if !liquid.valid_at(t_liquid_c.to_f64()) {
+        return Err(CellError::LiquidTemperature);
+    }
+    let air = ReferenceLiquid::by_name("air").map_or(T::c(1.000537), |a| a.permittivity(t_air_c));
+    two_point_calibration(
+        freq_hz,
+        y_air_s,
+        air,
+        y_liquid_s,
+        liquid.permittivity(t_liquid_c),
+    )
+}
+
 /// Result of checking a calibrated cell against a third liquid.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Verification<T> {
@@ -192,7 +225,7 @@ pub fn verify<T: Real>(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::water::{ReferenceLiquid, REFERENCE_LIQUIDS};
+    use crate::water::REFERENCE_LIQUIDS;
 
     const CELL: CellConstants<f64> = CellConstants {
         stray_pf: 2.7,
@@ -258,6 +291,14 @@ mod tests {
         assert!(v.within_tolerance);
         let v2 = verify(f, y_met, &cal, met.permittivity(t) * 0.98, met.tolerance).unwrap();
         assert!(!v2.within_tolerance);
+        // The same through the table lookup; and a liquid outside its table's range.
+        let eth_row = ReferenceLiquid::by_name("ethanol").unwrap();
+        let cal2 = two_point_with_liquid(f, y_air, t, y_eth, eth_row, t).unwrap();
+        assert!((cal2.cell_pf - CELL.cell_pf).abs() < 1e-9);
+        assert_eq!(
+            two_point_with_liquid(f, y_air, t, y_eth, eth_row, 70.0),
+            Err(CellError::LiquidTemperature)
+        );
         // Degenerate: air against air.
         assert_eq!(
             two_point_calibration(f, y_air, air, y_air, air),

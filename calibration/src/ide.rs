@@ -26,7 +26,7 @@
 //! (Abramowitz and Stegun 17.6 and 16.4). Lengths in metres, capacitance in F.
 
 use crate::dielectric::eps0;
-use crate::real::Real;
+use crate::real::{Cx, Real};
 
 /// Arithmetic-geometric mean of `a` and `b` (> 0).
 pub fn agm<T: Real>(a: T, b: T) -> T {
@@ -277,6 +277,34 @@ impl<T: Real> IdeGeometry<T> {
         (lo + hi) / T::c(2.0)
     }
 
+    /// The permittivity a sensor calibrated bare (on `substrate_eps`) reports
+    /// when `layers` (thickness m, complex eps*; nearest the electrodes
+    /// first, at most 4) lie between it and a product of eps* `product`:
+    /// the eps that gives the bare electrode the same (complex) capacitance.
+    /// Partial capacitances as in [`IdeGeometry::capacitance_f`], complex.
+    pub fn apparent_permittivity(
+        &self,
+        substrate_eps: T,
+        layers: &[(T, Cx<T>)],
+        product: Cx<T>,
+    ) -> Cx<T> {
+        let (ci_inf, ce_inf) = self.unit_cells_semi_infinite();
+        let sub = Cx::new(substrate_eps, T::zero());
+        let mut ci = (sub + product) * ci_inf;
+        let mut ce = (sub + product) * ce_inf;
+        let mut depth = T::zero();
+        for (i, &(h, eps)) in layers.iter().take(4).enumerate() {
+            depth += h;
+            let next = layers.get(i + 1).map_or(product, |l| l.1);
+            let (cil, cel) = self.unit_cells_layer(depth);
+            ci = ci + (eps - next) * cil;
+            ce = ce + (eps - next) * cel;
+        }
+        let n = T::c(self.n_electrodes as f64);
+        let total = ci * ((n - T::c(3.0)) / T::c(2.0)) + ci * ce * T::c(2.0) / (ci + ce);
+        total / self.combine(ci_inf, ce_inf) - sub
+    }
+
     /// Sensitivity to the product behind `layers` (window, build-up), relative
     /// to the bare electrode on the same substrate: (dC/d eps_product with the
     /// layers) / (dC/d eps_product without), at `product_eps`.
@@ -420,6 +448,40 @@ mod tests {
             let b = g.depth_fraction_total(r as f64 * 1e-3 * 2.0);
             let tol = if r < 0.012 { 0.03 * b } else { 1e-4 };
             assert!((a - b).abs() < tol, "{r}: {a} {b}");
+        }
+    }
+
+    #[test]
+    fn apparent_permittivity_through_build_up() {
+        let g = IdeGeometry {
+            width_m: 0.5e-3f64,
+            gap_m: 0.5e-3,
+            length_m: 20e-3,
+            n_electrodes: 20,
+        };
+        let wet = Cx::new(25.0, -40.0);
+        let dry = Cx::new(3.0, -0.05);
+        // No layer, or a layer of the product itself: the product.
+        assert!((g.apparent_permittivity(4.4, &[], wet) - wet).norm() < 1e-9);
+        assert!((g.apparent_permittivity(4.4, &[(0.2e-3, wet)], wet) - wet).norm() < 1e-9);
+        // Thick build-up: the build-up's own permittivity (to 1 % at 4 lambda).
+        let thick = g.apparent_permittivity(4.4, &[(8e-3, dry)], wet);
+        assert!((thick - dry).norm() < 0.01 * dry.norm() + 0.05, "{thick}");
+        // Real parts agree with the real capacitance formula.
+        let a = g.apparent_permittivity(4.4, &[(0.3e-3, Cx::new(3.0, 0.0))], Cx::new(25.0, 0.0));
+        let c = g.capacitance_f(4.4, &[(0.3e-3, 3.0)], 25.0)
+            / g.combine(
+                g.unit_cells_semi_infinite().0,
+                g.unit_cells_semi_infinite().1,
+            )
+            - 4.4;
+        assert!((a.re - c).abs() < 1e-9 && a.im.abs() < 1e-12);
+        // Thin build-up lowers both parts of a wet product's reading, monotonically.
+        let mut last = wet;
+        for h_mm in [0.1, 0.3, 1.0] {
+            let e = g.apparent_permittivity(4.4, &[(h_mm * 1e-3, dry)], wet);
+            assert!(e.re < last.re && -e.im < -last.im, "{h_mm}: {e}");
+            last = e;
         }
     }
 

@@ -50,7 +50,17 @@ pub fn saline_water_permittivity<T: Real>(freq_hz: T, t_c: T, sigma_s_m: T) -> C
     water_permittivity(freq_hz, t_c) + conductivity_term(freq_hz, sigma_s_m)
 }
 
-/// One reference liquid: eps'(t) = `eps_ref + d_eps_dt * (t - t_ref_c)`.
+/// How a reference liquid's permittivity varies with temperature.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum TemperatureLaw {
+    /// `eps_ref + d_eps_dt * (t - t_ref_c)`.
+    Linear,
+    /// The Malmberg-Maryott cubic of water ([`static_permittivity_mm`]).
+    MalmbergMaryott,
+}
+
+/// One reference liquid: eps'(t) = `eps_ref + d_eps_dt * (t - t_ref_c)`
+/// (or water's cubic, see [`TemperatureLaw`]).
 ///
 /// Values are static (low-frequency) permittivities; below about 20 MHz the
 /// real part of the listed liquids equals the static value to within their
@@ -71,15 +81,24 @@ pub struct ReferenceLiquid {
     pub tolerance: f64,
     /// Source of the values.
     pub source: &'static str,
+    /// Temperature dependence used by [`ReferenceLiquid::permittivity`].
+    pub law: TemperatureLaw,
 }
 
 impl ReferenceLiquid {
-    /// Static permittivity at `t_c` (water uses the full Malmberg-Maryott cubic).
+    /// Static permittivity at `t_c`.
     pub fn permittivity<T: Real>(&self, t_c: T) -> T {
-        if self.name == "water" {
-            return static_permittivity_mm(t_c);
+        match self.law {
+            TemperatureLaw::MalmbergMaryott => static_permittivity_mm(t_c),
+            TemperatureLaw::Linear => {
+                T::c(self.eps_ref) + T::c(self.d_eps_dt) * (t_c - T::c(self.t_ref_c))
+            }
         }
-        T::c(self.eps_ref) + T::c(self.d_eps_dt) * (t_c - T::c(self.t_ref_c))
+    }
+
+    /// Whether `t_c` lies in the range where the temperature law holds.
+    pub fn valid_at(&self, t_c: f64) -> bool {
+        t_c >= self.valid_c.0 && t_c <= self.valid_c.1
     }
 
     /// Looks a liquid up by name (case-sensitive, as in [`REFERENCE_LIQUIDS`]).
@@ -102,6 +121,7 @@ pub const REFERENCE_LIQUIDS: &[ReferenceLiquid] = &[
         valid_c: (-20.0, 60.0),
         tolerance: 1e-4,
         source: "ITU-R P.453 refractivity, dry air at 1013 hPa (about +1.2e-4 at 25 C, 50 % RH)",
+        law: TemperatureLaw::Linear,
     },
     ReferenceLiquid {
         name: "cyclohexane",
@@ -112,6 +132,7 @@ pub const REFERENCE_LIQUIDS: &[ReferenceLiquid] = &[
         valid_c: (10.0, 40.0),
         tolerance: 0.01,
         source: "Minnesota Solvent Descriptor Database via public solvent tables; slope from CRC Handbook 20 C value (from memory)",
+        law: TemperatureLaw::Linear,
     },
     ReferenceLiquid {
         name: "n-hexane",
@@ -121,6 +142,7 @@ pub const REFERENCE_LIQUIDS: &[ReferenceLiquid] = &[
         valid_c: (10.0, 40.0),
         tolerance: 0.01,
         source: "Minnesota Solvent Descriptor Database via public solvent tables; slope from memory",
+        law: TemperatureLaw::Linear,
     },
     ReferenceLiquid {
         name: "propan-2-ol",
@@ -130,6 +152,7 @@ pub const REFERENCE_LIQUIDS: &[ReferenceLiquid] = &[
         valid_c: (10.0, 40.0),
         tolerance: 0.193,
         source: "Gregory and Clarke, NPL Report MAT 23 (2012)",
+        law: TemperatureLaw::Linear,
     },
     ReferenceLiquid {
         name: "ethanol",
@@ -139,6 +162,7 @@ pub const REFERENCE_LIQUIDS: &[ReferenceLiquid] = &[
         valid_c: (10.0, 40.0),
         tolerance: 0.244,
         source: "Gregory and Clarke, NPL Report MAT 23 (2012)",
+        law: TemperatureLaw::Linear,
     },
     ReferenceLiquid {
         name: "methanol",
@@ -148,6 +172,7 @@ pub const REFERENCE_LIQUIDS: &[ReferenceLiquid] = &[
         valid_c: (10.0, 40.0),
         tolerance: 0.327,
         source: "Gregory and Clarke, NPL Report MAT 23 (2012)",
+        law: TemperatureLaw::Linear,
     },
     ReferenceLiquid {
         name: "water",
@@ -157,6 +182,7 @@ pub const REFERENCE_LIQUIDS: &[ReferenceLiquid] = &[
         valid_c: (0.0, 100.0),
         tolerance: 0.1,
         source: "Malmberg and Maryott, J. Res. NBS 56(1):1-8 (1956), full cubic",
+        law: TemperatureLaw::MalmbergMaryott,
     },
 ];
 
