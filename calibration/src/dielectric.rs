@@ -132,6 +132,14 @@ mod tests {
             let b = cole_cole(f, 4.0, 20.0, 3e6, 0.2);
             assert!((a - b).norm() < 1e-9);
         }
+        // Cole-Davidson (alpha 0, Davidson and Cole 1951): the loss peak sits at
+        // omega tau = tan(pi / (2 (beta + 1))).
+        let beta = 0.5f64;
+        let tau = 1.0 / (2.0 * core::f64::consts::PI * 3e6);
+        let w_peak = (core::f64::consts::PI / (2.0 * (beta + 1.0))).tan() / tau;
+        let f_peak = w_peak / (2.0 * core::f64::consts::PI);
+        let loss = |f: f64| loss_factor(havriliak_negami(f, 4.0, 20.0, 3e6, 0.0, beta));
+        assert!(loss(f_peak) > loss(f_peak * 1.01) && loss(f_peak) > loss(f_peak / 1.01));
         // Cole-Davidson (alpha 0) is asymmetric: beta < 1 lowers the loss peak.
         let hn = havriliak_negami(3e6, 4.0, 20.0, 3e6, 0.0, 0.5f64);
         let cc = cole_cole(3e6, 4.0, 20.0, 3e6, 0.0);

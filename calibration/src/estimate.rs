@@ -312,6 +312,31 @@ mod tests {
         crate::synth::span_grid()
     }
 
+    proptest::proptest! {
+        // Any input, however wild, gives either no moisture (with a reason) or
+        // a finite one, and never panics (DESIGN.md: no panics on any input).
+        #[test]
+        fn estimate_never_panics_or_invents(
+            e0 in proptest::num::f32::ANY, l0 in proptest::num::f32::ANY,
+            e1 in proptest::num::f32::ANY, l1 in proptest::num::f32::ANY,
+            sd in proptest::num::f32::ANY, t in proptest::num::f32::ANY,
+        ) {
+            let ch = |f: f32, e, l| Channel { freq_hz: f, eps_re: e, eps_loss: l, sd };
+            let i = EstimateInput { channels: [ch(1e6, e0, l0), ch(20e6, e1, l1)], temperature_c: t };
+            let e = estimate(&i, Some(&identity_cal::<f32>()));
+            match e.moisture_pct {
+                Some(m) => proptest::prop_assert!(m.is_finite() && e.failure.is_none()),
+                None => proptest::prop_assert!(e.failure.is_some() && !e.flags.is_empty()),
+            }
+        }
+
+        #[test]
+        fn from_params_never_panics(v in proptest::collection::vec(proptest::num::f32::ANY, 0..30), relax: bool) {
+            let kind = if relax { ModelKind::Relaxation } else { ModelKind::SingleFrequency };
+            let _ = ProductModel::<f32>::from_params(kind, &v);
+        }
+    }
+
     #[test]
     fn uncalibrated_gives_no_moisture() {
         let s = SynthSample {
