@@ -539,7 +539,7 @@ pub fn column_ranges(rows: &[Vec<f64>]) -> Vec<(f64, f64)> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::fit::{fit_linear, polynomial_design};
+    use crate::fit::{fit_linear, polynomial_design, SeededRng};
 
     /// REFERENCES.md section 8 worked set (values computed from the
     /// definitions of the IUPAC vocabulary, Pure Appl. Chem. 88:407, 2016).
@@ -565,10 +565,10 @@ mod tests {
     #[test]
     fn rmsep_bias_sep_identity() {
         for seed in 1..200u64 {
-            let mut rng = XorShift(seed);
-            let n = 3 + (rng.next() * 40.0) as usize;
-            let r: Vec<f64> = (0..n).map(|_| 5.0 + 20.0 * rng.next()).collect();
-            let p: Vec<f64> = r.iter().map(|v| v + rng.next() - 0.3).collect();
+            let mut rng = SeededRng::new(seed);
+            let n = 3 + (rng.uniform() * 40.0) as usize;
+            let r: Vec<f64> = (0..n).map(|_| 5.0 + 20.0 * rng.uniform()).collect();
+            let p: Vec<f64> = r.iter().map(|v| v + rng.uniform() - 0.3).collect();
             let s = PredictionStats::new(&r, &p).unwrap();
             let lhs = s.rmsep * s.rmsep;
             let rhs = s.bias * s.bias + s.sep * s.sep * (n as f64 - 1.0) / n as f64;
@@ -608,8 +608,8 @@ mod tests {
     }
 
     fn line_data(seed: u64, n: usize) -> (Vec<f64>, Vec<f64>) {
-        let mut rng = XorShift(seed);
-        let x: Vec<f64> = (0..n).map(|_| 10.0 * rng.next()).collect();
+        let mut rng = SeededRng::new(seed);
+        let x: Vec<f64> = (0..n).map(|_| 10.0 * rng.uniform()).collect();
         let y: Vec<f64> = x
             .iter()
             .map(|v| 1.0 + 0.5 * v + 0.05 * v * v + rng.normal() * 0.3)
@@ -687,7 +687,7 @@ mod tests {
     #[test]
     fn prediction_interval_coverage() {
         let seed = 3;
-        let mut rng = XorShift(seed);
+        let mut rng = SeededRng::new(seed);
         let mut covered = 0;
         let trials = 2000;
         for _ in 0..trials {
@@ -695,7 +695,7 @@ mod tests {
             let y: Vec<f64> = x.iter().map(|v| 2.0 + 0.3 * v + rng.normal()).collect();
             let design = polynomial_design(&x, 1);
             let fit = fit_linear(&design, &y, None).unwrap();
-            let x0 = 10.0 * rng.next();
+            let x0 = 10.0 * rng.uniform();
             let pi = prediction_interval(&fit, &[1.0, x0], 0.95, 1.0).unwrap();
             let y0 = 2.0 + 0.3 * x0 + rng.normal();
             if y0 >= pi.lower && y0 <= pi.upper {
@@ -735,24 +735,5 @@ mod tests {
             PredictionStats::new(&[1.0, 2.0], &[1.0, 2.0]),
             Err(StatsError::TooFew { needed: 3, got: 2 })
         ));
-    }
-
-    /// Small seeded generator for the tests (xorshift64*).
-    struct XorShift(u64);
-    impl XorShift {
-        fn next(&mut self) -> f64 {
-            let mut x = self.0.max(1);
-            x ^= x >> 12;
-            x ^= x << 25;
-            x ^= x >> 27;
-            self.0 = x;
-            (x.wrapping_mul(0x2545_F491_4F6C_DD1D) >> 11) as f64 / (1u64 << 53) as f64
-        }
-        /// Standard normal by Box-Muller.
-        fn normal(&mut self) -> f64 {
-            let u = self.next().max(1e-300);
-            let v = self.next();
-            (-2.0 * u.ln()).sqrt() * (2.0 * std::f64::consts::PI * v).cos()
-        }
     }
 }

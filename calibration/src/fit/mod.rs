@@ -5,18 +5,31 @@
 //! - [`nonlinear`]: Levenberg-Marquardt, weighted, with parameter standard
 //!   errors from the Jacobian at the solution.
 //!
-//! Both are checked against the NIST Statistical Reference Datasets
+//! - [`product`]: product-model fitting from lab samples (`fit_single`,
+//!   `fit_relaxation`, `compare`), statistics through the device's own
+//!   estimate.
+//!
+//! The solvers are checked against the NIST Statistical Reference Datasets
 //! (`calibration/tests/nist_strd.rs`). Calibration statistics and
 //! cross-validation live in [`crate::stats`].
 
+mod law;
 pub mod linear;
 pub mod nonlinear;
+pub mod product;
+pub mod rng;
 
 pub use linear::{fit_linear, polynomial_design, LinearFit};
 pub use nonlinear::{
     central_differences, covariance_from_jacobian, fit_curve, levenberg_marquardt, LmOptions,
     NoGradient, NonlinearFit, Problem, Termination,
 };
+pub use product::{
+    compare, fit_relaxation, fit_single, synthetic_samples, ChannelReading, Comparison,
+    FitStatistics, MixingFit, ProductFit, ProductFitError, RelaxationOptions, Sample, SampleResult,
+    SingleOptions, SynthSpec,
+};
+pub use rng::SeededRng;
 
 /// Why a least-squares fit was refused or failed.
 #[derive(Debug, Clone, Copy, PartialEq)]

@@ -1,0 +1,445 @@
+//! Stage 1 of the relaxation fit: the product's relaxation law (Cole-Cole
+//! alpha and the relaxation-frequency law) from the spectra of all samples
+//! jointly.
+//!
+//! Unknowns: the law `theta = (alpha, ln f_r_ref, p, c_T)` shared by all
+//! samples, and each sample's `(eps_hf, d_eps, ln sigma)`. Each sample gives
+//! 4 residuals (re and im of eps* at two frequencies, weighted by the noise
+//! SD), so the law is fitted on the one degree of freedom every sample has
+//! left after its own three parameters. Levenberg-Marquardt on all unknowns
+//! at once, the normal equations reduced by the Schur complement of the
+//! block-diagonal per-sample part (as in bundle adjustment: Triggs et al.,
+//! "Bundle adjustment - a modern synthesis", LNCS 1883, 2000, section 6.1),
+//! so one iteration costs O(n). Marquardt's diagonal damping.
+//!
+//! The model is that of [`crate::invert`]:
+//! `eps* = eps_hf + d_eps / (1 + (j f / f_r)^(1 - alpha)) - j sigma / (2 pi f eps0)`,
+//! `ln f_r = ln f_r_ref + p (ln sigma - ln sigma_ref) + c_T (t - t_ref)`;
+//! its analytic derivatives are written here and the value is checked
+//! against [`crate::invert::product_permittivity`] in the tests.
+
+use nalgebra::{Matrix3, Matrix4, SMatrix, Vector3, Vector4};
+
+use crate::invert::{Observation, RelaxationLaw};
+use crate::Cx;
+
+/// Law parameters `theta = (alpha, ln f_r_ref, p, c_T)`.
+pub(crate) type Theta = [f64; 4];
+
+/// The law for `theta` with the fixed references.
+pub(crate) fn law_of(theta: &Theta, sigma_ref_s_m: f64, t_ref_c: f64) -> RelaxationLaw<f64> {
+    RelaxationLaw {
+        alpha: theta[0],
+        fr_ref_hz: theta[1].exp(),
+        sigma_ref_s_m,
+        fr_exponent: theta[2],
+        fr_temp_coeff_per_c: theta[3],
+        t_ref_c,
+    }
+}
+
+/// The values [`crate::product::ProductModel::from_params`] accepts.
+pub(crate) fn theta_is_valid(theta: &Theta) -> bool {
+    theta.iter().all(|v| v.is_finite())
+        && theta[0] >= 0.0
+        && theta[0] < 0.95
+        && theta[2] >= 0.0
+        && theta[2] <= 3.0
+}
+
+/// eps* and its derivatives w.r.t. (eps_hf, d_eps, q = ln sigma) and theta.
+fn model(
+    freq_hz: f64,
+    p: &[f64; 3],
+    theta: &Theta,
+    ln_sigma_ref: f64,
+    dt_c: f64,
+) -> (Cx<f64>, [Cx<f64>; 3], [Cx<f64>; 4]) {
+    let beta = 1.0 - theta[0];
+    let ln_fr = theta[1] + theta[2] * (p[2] - ln_sigma_ref) + theta[3] * dt_c;
+    let x = freq_hz.ln() - ln_fr;
+    let half_pi = std::f64::consts::FRAC_PI_2;
+    // u = (j f / f_r)^beta = exp(beta x + j beta pi/2); clamp as the device does.
+    let mag = (beta * x).clamp(-30.0, 30.0).exp();
+    let u = Cx::new(mag * (beta * half_pi).cos(), mag * (beta * half_pi).sin());
+    let inv_d = Cx::new(1.0, 0.0) / (Cx::new(1.0, 0.0) + u);
+    let relax = inv_d * p[1];
+    let cond = p[2].exp() / (2.0 * std::f64::consts::PI * freq_hz * crate::EPS0);
+    let eps = Cx::new(p[0] + relax.re, relax.im - cond);
+    // d relax / dz with u = e^z.
+    let dz = -(relax * inv_d * u);
+    let d_ln_fr = dz * (-beta);
+    let dp = [
+        Cx::new(1.0, 0.0),
+        inv_d,
+        d_ln_fr * theta[2] - Cx::new(0.0, cond),
+    ];
+    let dtheta = [
+        dz * Cx::new(-x, -half_pi),
+        d_ln_fr,
+        d_ln_fr * (p[2] - ln_sigma_ref),
+        d_ln_fr * dt_c,
+    ];
+    (eps, dp, dtheta)
+}
+
+/// Why the law could not be fitted.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) enum LawError {
+    /// The normal equations are singular (the law is not determined).
+    Singular,
+    /// The iteration budget ran out.
+    NotConverged,
+}
+
+/// The fitted law.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct LawFit {
+    pub theta: Theta,
+    /// Weighted residual sum of squares at the solution.
+    pub cost: f64,
+    /// Each sample's (eps_hf, d_eps, ln sigma) at the solution.
+    pub params: Vec<[f64; 3]>,
+    /// Standard errors of theta (0 for a parameter held fixed).
+    pub std_err: Theta,
+}
+
+struct Data<'a> {
+    obs: &'a [[Observation<f64>; 2]],
+    temps: &'a [f64],
+    ln_sigma_ref: f64,
+    t_ref_c: f64,
+}
+
+type J4x3 = SMatrix<f64, 4, 3>;
+
+impl Data<'_> {
+    /// Weighted residuals (model - measured)/sd of sample i and Jacobians.
+    fn sample(&self, i: usize, p: &[f64; 3], theta: &Theta) -> (Vector4<f64>, J4x3, Matrix4<f64>) {
+        let mut r = Vector4::zeros();
+        let mut jp = J4x3::zeros();
+        let mut jt = Matrix4::zeros();
+        let dt = self.temps[i] - self.t_ref_c;
+        for (k, o) in self.obs[i].iter().enumerate() {
+            let (e, dp, dth) = model(o.freq_hz, p, theta, self.ln_sigma_ref, dt);
+            let w = 1.0 / o.sd;
+            r[2 * k] = (e.re - o.eps.re) * w;
+            r[2 * k + 1] = (e.im - o.eps.im) * w;
+            for j in 0..3 {
+                jp[(2 * k, j)] = dp[j].re * w;
+                jp[(2 * k + 1, j)] = dp[j].im * w;
+            }
+            for j in 0..4 {
+                jt[(2 * k, j)] = dth[j].re * w;
+                jt[(2 * k + 1, j)] = dth[j].im * w;
+            }
+        }
+        (r, jp, jt)
+    }
+
+    /// Levenberg-Marquardt on one sample's three parameters with the law
+    /// held fixed (a start for the joint fit; at most 30 steps).
+    fn refine_sample(&self, i: usize, p: &mut [f64; 3], theta: &Theta) {
+        let mut lambda = 1e-3;
+        let (r0, _, _) = self.sample(i, p, theta);
+        let mut cost = r0.norm_squared();
+        for _ in 0..30 {
+            let (r, jp, _) = self.sample(i, p, theta);
+            let mut v: Matrix3<f64> = jp.transpose() * jp;
+            for j in 0..3 {
+                v[(j, j)] *= 1.0 + lambda;
+                v[(j, j)] += 1e-12;
+            }
+            let Some(dp) = v.lu().solve(&(-(jp.transpose() * r))) else {
+                return;
+            };
+            let trial = [p[0] + dp[0], p[1] + dp[1], p[2] + dp[2]];
+            let (rt, _, _) = self.sample(i, &trial, theta);
+            let c = rt.norm_squared();
+            if c.is_finite() && c < cost {
+                let done = cost - c <= 1e-10 * cost;
+                *p = trial;
+                cost = c;
+                lambda = (lambda / 3.0).max(1e-12);
+                if done {
+                    return;
+                }
+            } else {
+                lambda *= 4.0;
+                if lambda > 1e10 {
+                    return;
+                }
+            }
+        }
+    }
+
+    fn cost(&self, ps: &[[f64; 3]], theta: &Theta) -> f64 {
+        let mut c = 0.0;
+        let dt0 = self.t_ref_c;
+        for (i, p) in ps.iter().enumerate() {
+            let dt = self.temps[i] - dt0;
+            for o in self.obs[i].iter() {
+                let (e, _, _) = model(o.freq_hz, p, theta, self.ln_sigma_ref, dt);
+                let w = 1.0 / o.sd;
+                let (a, b) = ((e.re - o.eps.re) * w, (e.im - o.eps.im) * w);
+                c += a * a + b * b;
+            }
+        }
+        if c.is_finite() {
+            c
+        } else {
+            f64::INFINITY
+        }
+    }
+}
+
+/// Fits the law from `theta0`; `fit_temperature` false keeps c_T fixed.
+pub(crate) fn fit_law(
+    obs: &[[Observation<f64>; 2]],
+    temps: &[f64],
+    sigma_ref_s_m: f64,
+    t_ref_c: f64,
+    theta0: Theta,
+    fit_temperature: bool,
+) -> Result<LawFit, LawError> {
+    let data = Data {
+        obs,
+        temps,
+        ln_sigma_ref: sigma_ref_s_m.ln(),
+        t_ref_c,
+    };
+    let n = obs.len();
+    let mask = [true, true, true, fit_temperature];
+    let k = mask.iter().filter(|m| **m).count();
+    // Per-sample start, from the readings alone: sigma from the loss at the
+    // lower frequency (where conduction dominates eps''), eps_hf from eps'
+    // at the higher one, d_eps from the drop of eps' between the two.
+    let mut ps: Vec<[f64; 3]> = obs
+        .iter()
+        .map(|o| {
+            let (lo, hi) = (o[0], o[1]);
+            let omega_eps0 = 2.0 * std::f64::consts::PI * lo.freq_hz * crate::EPS0;
+            let sigma = (omega_eps0 * (-lo.eps.im)).max(1e-7);
+            let d_eps = (lo.eps.re - hi.eps.re).max(0.1);
+            [hi.eps.re, d_eps, sigma.ln()]
+        })
+        .collect();
+    let mut theta = theta0;
+    for (i, p) in ps.iter_mut().enumerate() {
+        data.refine_sample(i, p, &theta);
+    }
+    let mut cost = data.cost(&ps, &theta);
+    let mut lambda = 1e-3;
+    let mut nu = 2.0;
+    let max_iter = 200;
+    let mut converged = false;
+    let mut trial_ps = ps.clone();
+    let mut cache: Vec<(Vector4<f64>, J4x3, Matrix4<f64>)> = Vec::with_capacity(n);
+    let mut fresh = true;
+    for _ in 0..max_iter {
+        if fresh {
+            cache.clear();
+            for (i, p) in ps.iter().enumerate() {
+                let (r, jp, mut jt) = data.sample(i, p, &theta);
+                for (j, m) in mask.iter().enumerate() {
+                    if !m {
+                        jt.column_mut(j).fill(0.0);
+                    }
+                }
+                cache.push((r, jp, jt));
+            }
+            fresh = false;
+        }
+        // Reduced system S dtheta = rhs.
+        let mut u = Matrix4::zeros();
+        let mut g_t = Vector4::zeros();
+        for (r, _, jt) in &cache {
+            u += jt.transpose() * jt;
+            g_t += jt.transpose() * r;
+        }
+        let mut s = u;
+        for j in 0..4 {
+            s[(j, j)] += lambda * u[(j, j)].max(1e-12);
+            if !mask[j] {
+                s[(j, j)] = 1.0;
+            }
+        }
+        let mut rhs = -g_t;
+        let mut vinv = Vec::with_capacity(n);
+        let mut ok = true;
+        for (r, jp, jt) in &cache {
+            let mut v: Matrix3<f64> = jp.transpose() * jp;
+            for j in 0..3 {
+                v[(j, j)] += lambda * v[(j, j)].max(1e-12) + 1e-12;
+            }
+            let Some(vi) = v.try_inverse() else {
+                ok = false;
+                break;
+            };
+            let w = jt.transpose() * jp; // 4x3
+            let g_p: Vector3<f64> = jp.transpose() * r;
+            s -= w * vi * w.transpose();
+            rhs += w * (vi * g_p);
+            vinv.push((vi, w, g_p));
+        }
+        for j in 0..4 {
+            if !mask[j] {
+                s.row_mut(j).fill(0.0);
+                s.column_mut(j).fill(0.0);
+                s[(j, j)] = 1.0;
+                rhs[j] = 0.0;
+            }
+        }
+        let dtheta = if ok { s.lu().solve(&rhs) } else { None };
+        let Some(dtheta) = dtheta.filter(|d| d.iter().all(|v| v.is_finite())) else {
+            lambda *= nu;
+            nu *= 2.0;
+            if lambda > 1e16 {
+                return Err(LawError::Singular);
+            }
+            continue;
+        };
+        let mut pred = 0.0;
+        for (i, ((vi, w, g_p), (r, jp, jt))) in vinv.iter().zip(&cache).enumerate() {
+            let dp = -(vi * (g_p + w.transpose() * dtheta));
+            let lin = r + jp * dp + jt * dtheta;
+            pred += lin.norm_squared();
+            for j in 0..3 {
+                trial_ps[i][j] = ps[i][j] + dp[j];
+            }
+        }
+        let mut trial = theta;
+        for j in 0..4 {
+            trial[j] += dtheta[j];
+        }
+        let new_cost = if theta_is_valid(&trial) {
+            data.cost(&trial_ps, &trial)
+        } else {
+            f64::INFINITY
+        };
+        let predicted = cost - pred;
+        let actual = cost - new_cost;
+        let rho = if predicted > 0.0 {
+            actual / predicted
+        } else {
+            -1.0
+        };
+        if rho > 1e-4 {
+            let small = actual <= 1e-12 * cost;
+            let step_small = (0..4).all(|j| dtheta[j].abs() <= 1e-10 * (theta[j].abs() + 1e-6));
+            std::mem::swap(&mut ps, &mut trial_ps);
+            theta = trial;
+            cost = new_cost;
+            fresh = true;
+            lambda *= (1.0f64 / 3.0).max(1.0 - (2.0 * rho - 1.0).powi(3));
+            nu = 2.0;
+            if small || step_small {
+                converged = true;
+                break;
+            }
+        } else {
+            lambda *= nu;
+            nu *= 2.0;
+            if lambda > 1e16 {
+                // No step reduces the cost: at the minimum to working precision.
+                converged = true;
+                break;
+            }
+        }
+    }
+    if !converged {
+        return Err(LawError::NotConverged);
+    }
+    // Covariance of theta: s^2 S^-1 (undamped reduced system) at the solution.
+    let mut u = Matrix4::zeros();
+    let mut s = Matrix4::zeros();
+    for (i, p) in ps.iter().enumerate() {
+        let (_, jp, jt) = data.sample(i, p, &theta);
+        u += jt.transpose() * jt;
+        let v: Matrix3<f64> = jp.transpose() * jp;
+        if let Some(vi) = v.try_inverse() {
+            let w = jt.transpose() * jp;
+            s -= w * vi * w.transpose();
+        }
+    }
+    s += u;
+    for j in 0..4 {
+        if !mask[j] {
+            s.row_mut(j).fill(0.0);
+            s.column_mut(j).fill(0.0);
+            s[(j, j)] = 1.0;
+        }
+    }
+    let dof = (3 * n + n).saturating_sub(3 * n + k).max(1) as f64;
+    let s2 = cost / dof;
+    let mut std_err = [0.0; 4];
+    if let Some(c) = s.try_inverse() {
+        for j in 0..4 {
+            if mask[j] {
+                std_err[j] = (s2 * c[(j, j)]).max(0.0).sqrt();
+            }
+        }
+    } else {
+        return Err(LawError::Singular);
+    }
+    Ok(LawFit {
+        theta,
+        cost,
+        params: ps,
+        std_err,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::invert::{product_permittivity, MaterialParams};
+
+    /// The model written here equals the inversion's own model
+    /// (crate::invert::product_permittivity), and its analytic derivatives
+    /// equal central differences.
+    #[test]
+    fn model_matches_the_inversion_and_its_derivatives() {
+        let theta = [0.2, 16.0, 0.9, 0.01];
+        let p = [5.5, 20.0, (3e-3f64).ln()];
+        let (ln_sref, t_ref, t) = ((1e-3f64).ln(), 25.0, 31.0);
+        for f in [1e6, 20e6] {
+            let (e, dp, dth) = model(f, &p, &theta, ln_sref, t - t_ref);
+            let law = law_of(&theta, ln_sref.exp(), t_ref);
+            let mp = MaterialParams {
+                eps_hf: p[0],
+                d_eps: p[1],
+                sigma_s_m: p[2].exp(),
+            };
+            let want = product_permittivity(f, &mp, &law, t);
+            assert!((e - want).norm() < 1e-10 * want.norm(), "{e} vs {want}");
+            let h = 1e-6;
+            for j in 0..3 {
+                let (mut a, mut b) = (p, p);
+                a[j] += h;
+                b[j] -= h;
+                let fd = (model(f, &a, &theta, ln_sref, t - t_ref).0
+                    - model(f, &b, &theta, ln_sref, t - t_ref).0)
+                    / (2.0 * h);
+                assert!(
+                    (fd - dp[j]).norm() < 1e-5 * (1.0 + fd.norm()),
+                    "p{j}: {fd} vs {}",
+                    dp[j]
+                );
+            }
+            for j in 0..4 {
+                let (mut a, mut b) = (theta, theta);
+                a[j] += h;
+                b[j] -= h;
+                let fd = (model(f, &p, &a, ln_sref, t - t_ref).0
+                    - model(f, &p, &b, ln_sref, t - t_ref).0)
+                    / (2.0 * h);
+                assert!(
+                    (fd - dth[j]).norm() < 1e-5 * (1.0 + fd.norm()),
+                    "theta{j}: {fd} vs {}",
+                    dth[j]
+                );
+            }
+        }
+    }
+}

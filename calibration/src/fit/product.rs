@@ -1,0 +1,1284 @@
+//! Product-model fitting from lab reference samples (feature `fit`).
+//!
+//! A [`Sample`] is one grab sample: its id, the lab moisture (% wet basis,
+//! e.g. by oven drying), the product temperature and the sensor's eps' and
+//! eps'' at each excitation frequency.
+//!
+//! - [`fit_single`]: the single-frequency baseline,
+//!   `moisture = c0 + c1 e + ... + c_d e^d + c_t (t - t_ref)`,
+//!   e = eps' at one frequency (the higher by default), by linear least squares.
+//! - [`fit_relaxation`]: the relaxation model in two stages, so that
+//!   nothing about a product is hard-coded:
+//!   1. **Relaxation law from the spectra** (no lab values used): Cole-Cole
+//!      `alpha`, `f_r` at the reference conductivity, the exponent of `f_r`
+//!      in sigma and its temperature coefficient, by Levenberg-Marquardt on
+//!      the stacked residuals of every sample's two-frequency inversion
+//!      ([`crate::invert::invert`], the device's own inversion, 1 degree of
+//!      freedom per sample).
+//!   2. **Mixing and regression** (lab values): the dry-matter permittivity
+//!      (or, by option, the mixing exponent) by a bounded golden-section
+//!      search, each trial solving the coefficients of
+//!      `moisture = p0 + p1 m + ... + p_d m^d + c_t (t - t_ref) + c_s ln(sigma/sigma_ref)`
+//!      by linear least squares (m the mixing-model moisture from eps_hf).
+//!
+//! Every prediction behind the statistics (fitted values for SEC, the
+//! out-of-fold predictions for SEP) is made by [`crate::estimate::estimate`]
+//! in `f32` on the calibration as the device receives it (the flat `f32`
+//! params rebuilt by [`ProductCalibration::from_parts`]), so the figures are
+//! those of the firmware's arithmetic.
+//!
+//! Cross-validation refits the regression coefficients on each fold's
+//! training samples. The nonlinear product parameters (relaxation law,
+//! dry-matter permittivity) are fitted once on all samples unless
+//! [`RelaxationOptions::refit_nonlinear_in_cv`] is set (slower; then the
+//! whole two-stage fit is repeated per fold).
+
+use nalgebra::DMatrix;
+
+use super::law;
+use super::linear::{fit_linear, LinearFit};
+use super::FitError;
+use crate::estimate::{estimate, Channel, EstimateInput, Failure};
+use crate::invert::{InvertError, MaterialParams, Observation, RelaxationLaw};
+use crate::mixing::ProductMixture;
+use crate::moisture::Basis;
+use crate::product::{
+    ModelKind, ParamsError, ProductCalibration, ProductModel, Range, RelaxationModel,
+    SingleFrequencyModel,
+};
+use crate::stats::{diagnostics, Folds, OutlierRule, PredictionStats, StatsError};
+use crate::Cx;
+
+/// One frequency of a sample: the sensor's complex permittivity.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ChannelReading {
+    /// Excitation frequency, Hz.
+    pub freq_hz: f64,
+    /// eps'.
+    pub eps_re: f64,
+    /// eps'' (loss factor, >= 0).
+    pub eps_loss: f64,
+}
+
+/// A lab reference sample.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Sample {
+    /// Sample id as the lab wrote it (unique within a fit).
+    pub id: String,
+    /// Lab moisture, % wet basis (0-100).
+    pub moisture_pct: f64,
+    /// Product temperature at the sensor, C.
+    pub temperature_c: f64,
+    /// The sensor's reading at each excitation frequency (two, the same two
+    /// for every sample).
+    pub channels: Vec<ChannelReading>,
+}
+
+/// Why a product fit was refused or failed. Every variant names the sample
+/// (by id) or the stage at fault.
+#[derive(Debug, Clone, PartialEq)]
+#[non_exhaustive]
+pub enum ProductFitError {
+    /// Fewer samples than the model's coefficients plus three.
+    TooFewSamples {
+        /// Samples needed.
+        needed: usize,
+        /// Samples given.
+        got: usize,
+    },
+    /// A sample id is empty.
+    EmptyId {
+        /// Position of the sample in the input.
+        index: usize,
+    },
+    /// Two samples share an id.
+    DuplicateId {
+        /// The id.
+        id: String,
+    },
+    /// A value is NaN or infinite.
+    NonFinite {
+        /// Sample id.
+        id: String,
+        /// Field name (with unit).
+        field: &'static str,
+    },
+    /// The lab moisture is outside 0-100 %.
+    MoistureOutOfRange {
+        /// Sample id.
+        id: String,
+        /// The value, %.
+        moisture_pct: f64,
+    },
+    /// eps'' is negative (a loss factor is >= 0 with eps* = eps' - j eps'').
+    NegativeLoss {
+        /// Sample id.
+        id: String,
+        /// Frequency of the bad channel, Hz.
+        freq_hz: f64,
+        /// The value.
+        eps_loss: f64,
+    },
+    /// A frequency is not positive.
+    BadFrequency {
+        /// Sample id.
+        id: String,
+        /// The value, Hz.
+        freq_hz: f64,
+    },
+    /// A sample does not have exactly two channels.
+    WrongChannelCount {
+        /// Sample id.
+        id: String,
+        /// Channels given.
+        got: usize,
+    },
+    /// A sample's frequencies differ from the first sample's.
+    MixedFrequencies {
+        /// Sample id.
+        id: String,
+        /// Frequency expected (from the first sample), Hz.
+        expected_hz: f64,
+        /// Frequency found, Hz.
+        got_hz: f64,
+    },
+    /// An option is out of range.
+    BadOption {
+        /// Option name.
+        name: &'static str,
+        /// What is required.
+        reason: &'static str,
+    },
+    /// A sample's inversion fails at the fitted relaxation law.
+    Inversion {
+        /// Sample id.
+        id: String,
+        /// The inversion's error.
+        error: InvertError,
+    },
+    /// The device-side estimate gives no moisture for a sample.
+    Estimate {
+        /// Sample id.
+        id: String,
+        /// Why.
+        failure: Failure,
+    },
+    /// A least-squares stage failed.
+    LeastSquares {
+        /// Which stage.
+        stage: &'static str,
+        /// The solver's error.
+        error: FitError,
+    },
+    /// The fitted model does not pass the device's parameter validation.
+    Params(ParamsError),
+    /// A statistic could not be computed.
+    Stats(StatsError),
+}
+
+impl core::fmt::Display for ProductFitError {
+    fn fmt(&self, f: &mut core::fmt::Formatter<'_>) -> core::fmt::Result {
+        use ProductFitError as E;
+        match self {
+            E::TooFewSamples { needed, got } => write!(
+                f,
+                "{got} samples given; this model needs at least {needed} (its coefficients plus three)"
+            ),
+            E::EmptyId { index } => write!(f, "sample {} has an empty id", index + 1),
+            E::DuplicateId { id } => write!(f, "sample id {id:?} appears more than once"),
+            E::NonFinite { id, field } => {
+                write!(f, "sample {id:?}: {field} is missing, NaN or infinite")
+            }
+            E::MoistureOutOfRange { id, moisture_pct } => write!(
+                f,
+                "sample {id:?}: lab moisture {moisture_pct} % is outside 0-100 % (wet basis)"
+            ),
+            E::NegativeLoss {
+                id,
+                freq_hz,
+                eps_loss,
+            } => write!(
+                f,
+                "sample {id:?}: eps'' = {eps_loss} at {freq_hz} Hz is negative (loss factor must be >= 0)"
+            ),
+            E::BadFrequency { id, freq_hz } => {
+                write!(f, "sample {id:?}: frequency {freq_hz} Hz must be positive")
+            }
+            E::WrongChannelCount { id, got } => write!(
+                f,
+                "sample {id:?}: {got} frequencies given, exactly 2 needed"
+            ),
+            E::MixedFrequencies {
+                id,
+                expected_hz,
+                got_hz,
+            } => write!(
+                f,
+                "sample {id:?}: frequency {got_hz} Hz differs from the first sample's {expected_hz} Hz (all samples must use the same two frequencies)"
+            ),
+            E::BadOption { name, reason } => write!(f, "option {name}: {reason}"),
+            E::Inversion { id, error } => write!(
+                f,
+                "sample {id:?}: relaxation inversion failed at the fitted law: {error}"
+            ),
+            E::Estimate { id, failure } => {
+                write!(f, "sample {id:?}: the device estimate gives no moisture: {failure}")
+            }
+            E::LeastSquares { stage, error } => write!(f, "{stage}: {error}"),
+            E::Params(e) => write!(f, "fitted model rejected: {e}"),
+            E::Stats(e) => write!(f, "statistics: {e}"),
+        }
+    }
+}
+
+impl std::error::Error for ProductFitError {}
+
+/// Options of [`fit_single`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SingleOptions {
+    /// Polynomial degree in eps', 1-3 (default 2).
+    pub degree: usize,
+    /// Which frequency (0 lower, 1 higher; default 1).
+    pub freq_index: usize,
+    /// Noise standard deviation of eps' (for the device's uncertainty), default 0.02.
+    pub eps_sd: f64,
+    /// Cross-validation split (default leave-one-out).
+    pub folds: Folds,
+}
+
+impl Default for SingleOptions {
+    fn default() -> Self {
+        SingleOptions {
+            degree: 2,
+            freq_index: 1,
+            eps_sd: 0.02,
+            folds: Folds::LeaveOneOut,
+        }
+    }
+}
+
+/// What stage 2 of [`fit_relaxation`] fits of the mixing model.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum MixingFit {
+    /// Fit the dry-matter permittivity, mixing exponent fixed (0.5 CRIM).
+    DryPermittivity {
+        /// Mixing exponent a (0..=1).
+        exponent: f64,
+    },
+    /// Fit the mixing exponent (0..=1), dry-matter permittivity fixed.
+    Exponent {
+        /// Dry-matter permittivity (>= 1).
+        eps_dry: f64,
+    },
+}
+
+/// Options of [`fit_relaxation`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RelaxationOptions {
+    /// Polynomial degree in the mixing-model moisture, 1-3 (default 2).
+    pub degree: usize,
+    /// Wet bulk density of the product at the sensor, kg/m^3 (measured).
+    pub bulk_density_kg_m3: f64,
+    /// Particle density of the dry matter, kg/m^3 (measured or handbook).
+    pub particle_density_kg_m3: f64,
+    /// Which mixing parameter to fit.
+    pub mixing: MixingFit,
+    /// Noise standard deviation of eps' and eps'' (inversion weights and the
+    /// device's uncertainty), default 0.02.
+    pub eps_sd: f64,
+    /// Fit the temperature coefficient of the relaxation frequency (default
+    /// true); false keeps it at 0.
+    pub fit_fr_temperature: bool,
+    /// Cross-validation split (default leave-one-out).
+    pub folds: Folds,
+    /// Repeat the whole fit (relaxation law and mixing too) on every fold
+    /// (default false: only the regression coefficients are refitted).
+    pub refit_nonlinear_in_cv: bool,
+}
+
+impl RelaxationOptions {
+    /// Defaults for a product of the given densities.
+    pub fn new(bulk_density_kg_m3: f64, particle_density_kg_m3: f64) -> Self {
+        RelaxationOptions {
+            degree: 2,
+            bulk_density_kg_m3,
+            particle_density_kg_m3,
+            mixing: MixingFit::DryPermittivity { exponent: 0.5 },
+            eps_sd: 0.02,
+            fit_fr_temperature: true,
+            folds: Folds::LeaveOneOut,
+            refit_nonlinear_in_cv: false,
+        }
+    }
+}
+
+/// Per-sample results of a fit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SampleResult {
+    /// Sample id.
+    pub id: String,
+    /// Lab moisture, %.
+    pub reference_pct: f64,
+    /// Moisture from the fitted calibration (device path, f32), %.
+    pub fitted_pct: f64,
+    /// Out-of-fold prediction (device path, f32), %.
+    pub cv_predicted_pct: f64,
+    /// Leverage (hat value) in the regression stage.
+    pub leverage: f64,
+    /// Externally studentized residual of the regression stage.
+    pub studentized: f64,
+    /// Flagged as an outlier (|studentized| > 3).
+    pub outlier: bool,
+    /// Flagged for high leverage (> 3 p / n).
+    pub high_leverage: bool,
+}
+
+/// Statistics of a fitted calibration (% moisture).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FitStatistics {
+    /// Number of samples.
+    pub n: usize,
+    /// Regression coefficients fitted (including the constant).
+    pub n_coef: usize,
+    /// Standard error of calibration, `sqrt(sum e^2 / (n - n_coef))`, from
+    /// the device-path fitted values.
+    pub sec_pct: f64,
+    /// Fitted values against the lab values.
+    pub calibration: PredictionStats,
+    /// Out-of-fold predictions against the lab values (SEP, RMSEP, bias,
+    /// slope, R^2, RPD of the cross-validation).
+    pub cross_validation: PredictionStats,
+    /// The split used.
+    pub folds: Folds,
+}
+
+/// A fitted product calibration with its statistics.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ProductFit {
+    /// The calibration as the device evaluates it (f32, rebuilt from its
+    /// flat params, with valid ranges and SEC).
+    pub calibration: ProductCalibration<f32>,
+    /// The flat `f32` params (`fringe_protocol::ProductCal::params`).
+    pub params: Vec<f32>,
+    /// The fitted model in f64 (before rounding to the device's f32).
+    pub model: ProductModel<f64>,
+    /// Statistics.
+    pub stats: FitStatistics,
+    /// Per-sample results, in input order.
+    pub samples: Vec<SampleResult>,
+    /// Standard errors of the regression coefficients (same order as the
+    /// model's features in use).
+    pub coef_std_err: Vec<f64>,
+    /// Standard errors of the relaxation law parameters (alpha,
+    /// ln f_r_ref, exponent, temperature coefficient; relaxation only).
+    pub law_std_err: Option<[f64; 4]>,
+}
+
+/// Both models fitted on the same samples (see [`compare`]).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Comparison {
+    /// Single-frequency fit.
+    pub single: ProductFit,
+    /// Relaxation fit.
+    pub relaxation: ProductFit,
+    /// Cross-validated SEP of the single-frequency model over that of the
+    /// relaxation model (> 1: the relaxation model predicts better).
+    pub sep_ratio: f64,
+    /// The model with the smaller cross-validated SEP.
+    pub better: ModelKind,
+}
+
+/// Validated samples: the two frequencies, lower first.
+struct Checked {
+    freqs_hz: [f64; 2],
+    /// Per sample: (eps_re, eps_loss) at freqs_hz order.
+    eps: Vec<[(f64, f64); 2]>,
+}
+
+fn check_samples(samples: &[Sample], needed: usize) -> Result<Checked, ProductFitError> {
+    use ProductFitError as E;
+    if samples.len() < needed {
+        return Err(E::TooFewSamples {
+            needed,
+            got: samples.len(),
+        });
+    }
+    let mut seen = std::collections::HashSet::new();
+    let mut freqs: Option<[f64; 2]> = None;
+    let mut eps = Vec::with_capacity(samples.len());
+    for (index, s) in samples.iter().enumerate() {
+        if s.id.trim().is_empty() {
+            return Err(E::EmptyId { index });
+        }
+        if !seen.insert(s.id.as_str()) {
+            return Err(E::DuplicateId { id: s.id.clone() });
+        }
+        let nf = |field| E::NonFinite {
+            id: s.id.clone(),
+            field,
+        };
+        if !s.moisture_pct.is_finite() {
+            return Err(nf("moisture_pct"));
+        }
+        if !(0.0..=100.0).contains(&s.moisture_pct) {
+            return Err(E::MoistureOutOfRange {
+                id: s.id.clone(),
+                moisture_pct: s.moisture_pct,
+            });
+        }
+        if !s.temperature_c.is_finite() {
+            return Err(nf("temperature_c"));
+        }
+        if s.channels.len() != 2 {
+            return Err(E::WrongChannelCount {
+                id: s.id.clone(),
+                got: s.channels.len(),
+            });
+        }
+        for c in &s.channels {
+            if !c.freq_hz.is_finite() {
+                return Err(nf("freq_hz"));
+            }
+            if c.freq_hz <= 0.0 {
+                return Err(E::BadFrequency {
+                    id: s.id.clone(),
+                    freq_hz: c.freq_hz,
+                });
+            }
+            if !c.eps_re.is_finite() {
+                return Err(nf("eps_re"));
+            }
+            if !c.eps_loss.is_finite() {
+                return Err(nf("eps_loss"));
+            }
+            if c.eps_loss < 0.0 {
+                return Err(E::NegativeLoss {
+                    id: s.id.clone(),
+                    freq_hz: c.freq_hz,
+                    eps_loss: c.eps_loss,
+                });
+            }
+        }
+        let mut ch = [s.channels[0], s.channels[1]];
+        if ch[1].freq_hz < ch[0].freq_hz {
+            ch.swap(0, 1);
+        }
+        let this = [ch[0].freq_hz, ch[1].freq_hz];
+        match freqs {
+            None => {
+                if this[0] == this[1] {
+                    return Err(E::MixedFrequencies {
+                        id: s.id.clone(),
+                        expected_hz: this[0],
+                        got_hz: this[1],
+                    });
+                }
+                freqs = Some(this);
+            }
+            Some(f) => {
+                for k in 0..2 {
+                    if (this[k] - f[k]).abs() > 1e-6 * f[k] {
+                        return Err(E::MixedFrequencies {
+                            id: s.id.clone(),
+                            expected_hz: f[k],
+                            got_hz: this[k],
+                        });
+                    }
+                }
+            }
+        }
+        eps.push([
+            (ch[0].eps_re, ch[0].eps_loss),
+            (ch[1].eps_re, ch[1].eps_loss),
+        ]);
+    }
+    Ok(Checked {
+        freqs_hz: freqs.unwrap_or([0.0; 2]),
+        eps,
+    })
+}
+
+fn check_degree(degree: usize) -> Result<(), ProductFitError> {
+    if (1..=3).contains(&degree) {
+        Ok(())
+    } else {
+        Err(ProductFitError::BadOption {
+            name: "degree",
+            reason: "polynomial degree must be 1, 2 or 3",
+        })
+    }
+}
+
+fn check_sd(sd: f64) -> Result<(), ProductFitError> {
+    if sd.is_finite() && sd > 0.0 {
+        Ok(())
+    } else {
+        Err(ProductFitError::BadOption {
+            name: "eps_sd",
+            reason: "noise standard deviation must be positive",
+        })
+    }
+}
+
+/// Feature columns in use: polynomial terms 0..=degree, then the extra
+/// terms (indices into the model's full feature array).
+fn columns(degree: usize, extra: &[usize]) -> Vec<usize> {
+    (0..=degree).chain(extra.iter().copied()).collect()
+}
+
+fn design_from(features: &[Vec<f64>], rows: &[usize]) -> DMatrix<f64> {
+    let p = features.first().map_or(0, Vec::len);
+    DMatrix::from_fn(rows.len(), p, |i, j| features[rows[i]][j])
+}
+
+fn lin_fit(
+    features: &[Vec<f64>],
+    y: &[f64],
+    rows: &[usize],
+    stage: &'static str,
+) -> Result<LinearFit, ProductFitError> {
+    let yr: Vec<f64> = rows.iter().map(|i| y[*i]).collect();
+    fit_linear(&design_from(features, rows), &yr, None)
+        .map_err(|error| ProductFitError::LeastSquares { stage, error })
+}
+
+/// Polynomial + extra coefficients into the model's fixed slots.
+fn spread(coef: &[f64], degree: usize) -> ([f64; 4], Vec<f64>) {
+    let mut c = [0.0; 4];
+    c[..=degree].copy_from_slice(&coef[..=degree]);
+    (c, coef[degree + 1..].to_vec())
+}
+
+fn range_of(v: impl Iterator<Item = f64>) -> Range<f32> {
+    let (lo, hi) = v.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), x| {
+        (a.min(x), b.max(x))
+    });
+    // Widen by f32 rounding so the calibration samples themselves are inside.
+    let pad = |x: f64| 1e-6 * x.abs().max(1e-6);
+    Range::new((lo - pad(lo)) as f32, (hi + pad(hi)) as f32)
+}
+
+/// Builds the device's calibration (f32, validated) from a model.
+fn device_cal(
+    model: &ProductModel<f64>,
+    moisture: Range<f32>,
+    temperature: Range<f32>,
+    inputs: &[Range<f32>],
+    sec_pct: f64,
+) -> Result<(ProductCalibration<f32>, Vec<f32>), ProductFitError> {
+    let (p, n) = model.to_params();
+    let cal = ProductCalibration::<f32>::from_parts(
+        model.kind(),
+        &p[..n],
+        Basis::Wet,
+        moisture,
+        temperature,
+        inputs,
+        sec_pct as f32,
+    )
+    .map_err(ProductFitError::Params)?;
+    Ok((cal, p[..n].to_vec()))
+}
+
+/// The device's estimate of one sample, f32.
+fn device_predict(
+    cal: &ProductCalibration<f32>,
+    freqs_hz: [f64; 2],
+    eps: &[(f64, f64); 2],
+    s: &Sample,
+    eps_sd: f64,
+) -> Result<f64, ProductFitError> {
+    let ch = |k: usize| Channel {
+        freq_hz: freqs_hz[k] as f32,
+        eps_re: eps[k].0 as f32,
+        eps_loss: eps[k].1 as f32,
+        sd: eps_sd as f32,
+    };
+    let input = EstimateInput {
+        channels: [ch(0), ch(1)],
+        temperature_c: s.temperature_c as f32,
+    };
+    let e = estimate(&input, Some(cal));
+    match e.moisture_pct {
+        Some(m) => Ok(f64::from(m)),
+        None => Err(ProductFitError::Estimate {
+            id: s.id.clone(),
+            failure: e.failure.unwrap_or(Failure::NonFinite),
+        }),
+    }
+}
+
+/// What a model family supplies to the common fit-and-validate path.
+struct Fitted {
+    model: ProductModel<f64>,
+    /// Features of every sample (columns in use).
+    features: Vec<Vec<f64>>,
+    lin: LinearFit,
+    inputs: Vec<Range<f32>>,
+    law_std_err: Option<[f64; 4]>,
+}
+
+/// Leave-one-out coefficients without refitting: for least squares,
+/// `b_(i) = b - (A'A)^-1 a_i e_i / (1 - h_ii)` exactly (Belsley, Kuh and
+/// Welsch, Regression Diagnostics, 1980, eq. 2.1), used for
+/// [`Folds::LeaveOneOut`] (`Folds::KFold(n)` refits, the same numbers).
+/// `None` for a fold of more than one sample or a leverage too close to 1
+/// (then refit).
+fn downdated(fitted: &Fitted, test: &[usize]) -> Option<Vec<f64>> {
+    let [i] = test else { return None };
+    let a = &fitted.features[*i];
+    let c = &fitted.lin.unscaled_covariance;
+    let p = a.len();
+    let ca: Vec<f64> = (0..p)
+        .map(|r| (0..p).map(|k| c[(r, k)] * a[k]).sum())
+        .collect();
+    let h: f64 = a.iter().zip(&ca).map(|(x, y)| x * y).sum();
+    if 1.0 - h < 1e-8 {
+        return None;
+    }
+    let f = fitted.lin.residuals[*i] / (1.0 - h);
+    Some(
+        fitted
+            .lin
+            .coef
+            .iter()
+            .zip(&ca)
+            .map(|(b, v)| b - v * f)
+            .collect(),
+    )
+}
+
+/// Shared second half: device calibration, SEC, cross-validation, flags.
+fn finish<F>(
+    samples: &[Sample],
+    checked: &Checked,
+    eps_sd: f64,
+    folds: Folds,
+    fitted: Fitted,
+    mut refit: F,
+) -> Result<ProductFit, ProductFitError>
+where
+    F: FnMut(&Fitted, &[usize], Option<Vec<f64>>) -> Result<ProductModel<f64>, ProductFitError>,
+{
+    let n = samples.len();
+    let y: Vec<f64> = samples.iter().map(|s| s.moisture_pct).collect();
+    let moisture = range_of(y.iter().copied());
+    let temperature = range_of(samples.iter().map(|s| s.temperature_c));
+    let predict_all =
+        |cal: &ProductCalibration<f32>, rows: &[usize]| -> Result<Vec<f64>, ProductFitError> {
+            rows.iter()
+                .map(|i| {
+                    device_predict(
+                        cal,
+                        checked.freqs_hz,
+                        &checked.eps[*i],
+                        &samples[*i],
+                        eps_sd,
+                    )
+                })
+                .collect()
+        };
+    let all: Vec<usize> = (0..n).collect();
+    // SEC from the device path (the SEC only sets the uncertainty, not the
+    // moisture, so a first pass with the f64 SEC gives the fitted values).
+    let (cal0, _) = device_cal(
+        &fitted.model,
+        moisture,
+        temperature,
+        &fitted.inputs,
+        fitted.lin.residual_sd,
+    )?;
+    let fitted_pct = predict_all(&cal0, &all)?;
+    let n_coef = fitted.lin.coef.len();
+    let sec_pct = crate::stats::sec(&y, &fitted_pct, n_coef).map_err(ProductFitError::Stats)?;
+    let (calibration, params) = device_cal(
+        &fitted.model,
+        moisture,
+        temperature,
+        &fitted.inputs,
+        sec_pct,
+    )?;
+
+    let split = folds.split(n).map_err(ProductFitError::Stats)?;
+    let mut cv = vec![f64::NAN; n];
+    for test in &split {
+        let train: Vec<usize> = all.iter().copied().filter(|i| !test.contains(i)).collect();
+        let loo = if folds == Folds::LeaveOneOut {
+            downdated(&fitted, test)
+        } else {
+            None
+        };
+        let model = refit(&fitted, &train, loo)?;
+        // Ranges are irrelevant to the moisture value; use the full set's.
+        let (cal, _) = device_cal(&model, moisture, temperature, &fitted.inputs, sec_pct)?;
+        for (i, p) in test.iter().zip(predict_all(&cal, test)?) {
+            cv[*i] = p;
+        }
+    }
+
+    let design = design_from(&fitted.features, &all);
+    let diag = diagnostics(&design, &fitted.lin, None, &OutlierRule::default())
+        .map_err(ProductFitError::Stats)?;
+    let per_sample = samples
+        .iter()
+        .enumerate()
+        .map(|(i, s)| SampleResult {
+            id: s.id.clone(),
+            reference_pct: s.moisture_pct,
+            fitted_pct: fitted_pct[i],
+            cv_predicted_pct: cv[i],
+            leverage: diag.leverage[i],
+            studentized: diag.externally_studentized[i],
+            outlier: diag.outliers.contains(&i),
+            high_leverage: diag.high_leverage.contains(&i),
+        })
+        .collect();
+    let stats = FitStatistics {
+        n,
+        n_coef,
+        sec_pct,
+        calibration: PredictionStats::new(&y, &fitted_pct).map_err(ProductFitError::Stats)?,
+        cross_validation: PredictionStats::new(&y, &cv).map_err(ProductFitError::Stats)?,
+        folds,
+    };
+    Ok(ProductFit {
+        calibration,
+        params,
+        model: fitted.model,
+        stats,
+        samples: per_sample,
+        coef_std_err: fitted.lin.std_err.clone(),
+        law_std_err: fitted.law_std_err,
+    })
+}
+
+// ---------------------------------------------------------------------------
+// Single-frequency model
+
+fn single_model(degree: usize, freq_index: usize, t_ref_c: f64, coef: &[f64]) -> ProductModel<f64> {
+    let (coeffs, extra) = spread(coef, degree);
+    ProductModel::SingleFrequency(SingleFrequencyModel {
+        freq_index,
+        t_ref_c,
+        coeffs,
+        c_t: extra[0],
+    })
+}
+
+/// Fits the single-frequency baseline (see the module docs).
+///
+/// Needs at least `degree + 2 + 3` samples.
+///
+/// # Errors
+/// [`ProductFitError`]: refused samples (named by id and field), bad
+/// options, a failed least-squares stage, or a sample the device estimate
+/// cannot evaluate.
+pub fn fit_single(samples: &[Sample], opts: &SingleOptions) -> Result<ProductFit, ProductFitError> {
+    check_degree(opts.degree)?;
+    check_sd(opts.eps_sd)?;
+    if opts.freq_index > 1 {
+        return Err(ProductFitError::BadOption {
+            name: "freq_index",
+            reason: "frequency index must be 0 (lower) or 1 (higher)",
+        });
+    }
+    let cols = columns(opts.degree, &[4]);
+    let checked = check_samples(samples, cols.len() + 3)?;
+    let t_ref_c = mean_temperature(samples);
+    let proto = SingleFrequencyModel {
+        freq_index: opts.freq_index,
+        t_ref_c,
+        coeffs: [0.0; 4],
+        c_t: 0.0,
+    };
+    let features: Vec<Vec<f64>> = samples
+        .iter()
+        .zip(&checked.eps)
+        .map(|(s, e)| {
+            let f = proto.features(e[opts.freq_index].0, s.temperature_c);
+            cols.iter().map(|j| f[*j]).collect()
+        })
+        .collect();
+    let y: Vec<f64> = samples.iter().map(|s| s.moisture_pct).collect();
+    let all: Vec<usize> = (0..samples.len()).collect();
+    let lin = lin_fit(&features, &y, &all, "single-frequency regression")?;
+    let model = single_model(opts.degree, opts.freq_index, t_ref_c, &lin.coef);
+    let inputs = vec![range_of(checked.eps.iter().map(|e| e[opts.freq_index].0))];
+    let fitted = Fitted {
+        model,
+        features,
+        lin,
+        inputs,
+        law_std_err: None,
+    };
+    finish(
+        samples,
+        &checked,
+        opts.eps_sd,
+        opts.folds,
+        fitted,
+        |f, train, loo| {
+            let coef = match loo {
+                Some(c) => c,
+                None => {
+                    lin_fit(
+                        &f.features,
+                        &y,
+                        train,
+                        "single-frequency regression (cross-validation)",
+                    )?
+                    .coef
+                }
+            };
+            Ok(single_model(opts.degree, opts.freq_index, t_ref_c, &coef))
+        },
+    )
+}
+
+fn mean_temperature(samples: &[Sample]) -> f64 {
+    let t = samples.iter().map(|s| s.temperature_c).sum::<f64>() / samples.len() as f64;
+    // Rounded to 0.1 C so the reference reads well in a report.
+    (t * 10.0).round() / 10.0
+}
+
+// ---------------------------------------------------------------------------
+// Relaxation model
+
+/// Golden-section minimisation of `f` on `[lo, hi]` (unimodal assumed).
+fn golden<F: FnMut(f64) -> f64>(mut f: F, mut lo: f64, mut hi: f64, tol: f64) -> f64 {
+    let g = (5f64.sqrt() - 1.0) / 2.0;
+    let mut x1 = hi - g * (hi - lo);
+    let mut x2 = lo + g * (hi - lo);
+    let (mut f1, mut f2) = (f(x1), f(x2));
+    while hi - lo > tol {
+        if f1 <= f2 {
+            hi = x2;
+            x2 = x1;
+            f2 = f1;
+            x1 = hi - g * (hi - lo);
+            f1 = f(x1);
+        } else {
+            lo = x1;
+            x1 = x2;
+            f1 = f2;
+            x2 = lo + g * (hi - lo);
+            f2 = f(x2);
+        }
+    }
+    if f1 <= f2 {
+        x1
+    } else {
+        x2
+    }
+}
+
+/// The nonlinear (product-level) part of a relaxation fit.
+struct RelaxationCore {
+    law: RelaxationLaw<f64>,
+    law_std_err: [f64; 4],
+    mixture: ProductMixture<f64>,
+    params: Vec<MaterialParams<f64>>,
+}
+
+const RELAX_EXTRA: [usize; 2] = [4, 5];
+
+fn relax_model(core: &RelaxationCore, degree: usize, coef: &[f64]) -> ProductModel<f64> {
+    let (coeffs, extra) = spread(coef, degree);
+    ProductModel::Relaxation(RelaxationModel {
+        law: core.law,
+        mixture: core.mixture,
+        t_ref_c: core.law.t_ref_c,
+        coeffs,
+        c_t: extra[0],
+        c_sigma: extra[1],
+    })
+}
+
+fn relax_features(
+    core: &RelaxationCore,
+    mixture: ProductMixture<f64>,
+    degree: usize,
+    samples: &[Sample],
+) -> Vec<Vec<f64>> {
+    let proto = RelaxationModel {
+        law: core.law,
+        mixture,
+        t_ref_c: core.law.t_ref_c,
+        coeffs: [0.0; 4],
+        c_t: 0.0,
+        c_sigma: 0.0,
+    };
+    let cols = columns(degree, &RELAX_EXTRA);
+    samples
+        .iter()
+        .zip(&core.params)
+        .map(|(s, p)| {
+            let f = proto.features(p, s.temperature_c);
+            cols.iter().map(|j| f[*j]).collect()
+        })
+        .collect()
+}
+
+/// Both stages on the samples `rows`.
+fn relaxation_core(
+    samples: &[Sample],
+    checked: &Checked,
+    rows: &[usize],
+    opts: &RelaxationOptions,
+) -> Result<RelaxationCore, ProductFitError> {
+    let sub: Vec<&Sample> = rows.iter().map(|i| &samples[*i]).collect();
+    let temps: Vec<f64> = sub.iter().map(|s| s.temperature_c).collect();
+    let f = checked.freqs_hz;
+    let obs: Vec<[Observation<f64>; 2]> = rows
+        .iter()
+        .map(|i| {
+            let e = &checked.eps[*i];
+            [0, 1].map(|k| Observation {
+                freq_hz: f[k],
+                eps: Cx::new(e[k].0, -e[k].1),
+                sd: opts.eps_sd,
+            })
+        })
+        .collect();
+    // Reference conductivity: geometric mean of a rough per-sample sigma
+    // from the low-frequency loss (sigma ~ 2 pi f1 eps0 eps''(f1), an upper
+    // bound); it only fixes where fr_ref is quoted.
+    let ln_sigma: f64 = obs
+        .iter()
+        .map(|o| (2.0 * std::f64::consts::PI * f[0] * crate::EPS0 * (-o[0].eps.im).max(1e-9)).ln())
+        .sum::<f64>()
+        / obs.len() as f64;
+    let t_ref_c = {
+        let t = temps.iter().sum::<f64>() / temps.len() as f64;
+        (t * 10.0).round() / 10.0
+    };
+    let sigma_ref_s_m = ln_sigma.exp();
+    // Start: a small grid of laws (alpha; f_r from a decade below the lower
+    // to a decade above the higher frequency), each fitted on about 8
+    // evenly spread samples; the best of those starts the fit on all.
+    let stride = (obs.len() / 8).max(1);
+    let probe_obs: Vec<[Observation<f64>; 2]> = obs.iter().step_by(stride).copied().collect();
+    let probe_t: Vec<f64> = temps.iter().step_by(stride).copied().collect();
+    let (lf0, lf1) = (f[0].ln(), f[1].ln());
+    let mut best: Option<(f64, law::Theta)> = None;
+    for alpha in [0.05, 0.2, 0.4] {
+        for k in 0..5 {
+            let lfr = lf0 - 2.3 + (lf1 - lf0 + 4.6) * k as f64 / 4.0;
+            let start = [alpha, lfr, 1.0, 0.0];
+            let Ok(fit) = law::fit_law(
+                &probe_obs,
+                &probe_t,
+                sigma_ref_s_m,
+                t_ref_c,
+                start,
+                opts.fit_fr_temperature,
+            ) else {
+                continue;
+            };
+            if best.as_ref().is_none_or(|(c, _)| fit.cost < *c) {
+                best = Some((fit.cost, fit.theta));
+            }
+        }
+    }
+    let theta0 = best.map_or([0.2, (lf0 + lf1) / 2.0, 1.0, 0.0], |b| b.1);
+    let law_fit = law::fit_law(
+        &obs,
+        &temps,
+        sigma_ref_s_m,
+        t_ref_c,
+        theta0,
+        opts.fit_fr_temperature,
+    )
+    .map_err(|e| match e {
+        law::LawError::Singular => ProductFitError::LeastSquares {
+            stage: "relaxation law (stage 1)",
+            error: FitError::RankDeficient { rank: 0, params: 4 },
+        },
+        law::LawError::NotConverged => ProductFitError::LeastSquares {
+            stage: "relaxation law (stage 1)",
+            error: FitError::NotConverged {
+                iterations: 200,
+                rss: f64::NAN,
+            },
+        },
+    })?;
+    let law = law::law_of(&law_fit.theta, sigma_ref_s_m, t_ref_c);
+    let law_std_err = law_fit.std_err;
+    // Each sample's parameters at the fitted law (the least-squares solution
+    // the device's inversion also converges to; a sample the device cannot
+    // invert is reported by the estimate pass, by id).
+    let params: Vec<MaterialParams<f64>> = law_fit
+        .params
+        .iter()
+        .map(|p| MaterialParams {
+            eps_hf: p[0],
+            d_eps: p[1],
+            sigma_s_m: p[2].exp(),
+        })
+        .collect();
+    // Stage 2: the mixing parameter by golden section on the regression RSS.
+    let mut core = RelaxationCore {
+        law,
+        law_std_err,
+        mixture: ProductMixture {
+            exponent: 0.5,
+            eps_dry: 3.0,
+            particle_density_kg_m3: opts.particle_density_kg_m3,
+            bulk_density_kg_m3: opts.bulk_density_kg_m3,
+        },
+        params,
+    };
+    let y: Vec<f64> = sub.iter().map(|s| s.moisture_pct).collect();
+    let sub_samples: Vec<Sample> = sub.iter().map(|s| (*s).clone()).collect();
+    let local: Vec<usize> = (0..sub.len()).collect();
+    let mix_at = |x: f64| -> ProductMixture<f64> {
+        let mut mx = core.mixture;
+        match opts.mixing {
+            MixingFit::DryPermittivity { exponent } => {
+                mx.exponent = exponent;
+                mx.eps_dry = x;
+            }
+            MixingFit::Exponent { eps_dry } => {
+                mx.exponent = x;
+                mx.eps_dry = eps_dry;
+            }
+        }
+        mx
+    };
+    let rss = |x: f64| -> f64 {
+        let feats = relax_features(&core, mix_at(x), opts.degree, &sub_samples);
+        if feats.iter().flatten().any(|v| !v.is_finite()) {
+            return f64::INFINITY;
+        }
+        match fit_linear(&design_from(&feats, &local), &y, None) {
+            Ok(l) => l.rss,
+            Err(_) => f64::INFINITY,
+        }
+    };
+    let (lo, hi) = match opts.mixing {
+        MixingFit::DryPermittivity { .. } => (1.0, 20.0),
+        MixingFit::Exponent { .. } => (0.0, 1.0),
+    };
+    let x = golden(rss, lo, hi, 1e-4 * (hi - lo));
+    core.mixture = mix_at(x);
+    Ok(core)
+}
+
+fn check_relaxation_options(opts: &RelaxationOptions) -> Result<(), ProductFitError> {
+    check_degree(opts.degree)?;
+    check_sd(opts.eps_sd)?;
+    let bad = |name, reason| Err(ProductFitError::BadOption { name, reason });
+    if !(opts.particle_density_kg_m3.is_finite() && opts.particle_density_kg_m3 > 0.0) {
+        return bad(
+            "particle_density_kg_m3",
+            "must be a positive density, kg/m^3",
+        );
+    }
+    if !(opts.bulk_density_kg_m3 > 0.0
+        && opts.bulk_density_kg_m3 < opts.particle_density_kg_m3
+        && opts.bulk_density_kg_m3 < 1000.0)
+    {
+        return bad(
+            "bulk_density_kg_m3",
+            "must be positive and below the particle density and 1000 kg/m^3",
+        );
+    }
+    match opts.mixing {
+        MixingFit::DryPermittivity { exponent } if !(0.0..=1.0).contains(&exponent) => {
+            bad("mixing exponent", "must lie in 0..=1")
+        }
+        MixingFit::Exponent { eps_dry } if !(eps_dry >= 1.0 && eps_dry.is_finite()) => {
+            bad("eps_dry", "dry-matter permittivity must be >= 1")
+        }
+        _ => Ok(()),
+    }
+}
+
+/// Fits the relaxation model (see the module docs).
+///
+/// Needs at least `degree + 3 + 3` samples (polynomial, temperature and
+/// conductivity terms, plus three).
+///
+/// # Errors
+/// [`ProductFitError`]: refused samples (named by id and field), bad
+/// options, a failed fitting stage, a sample whose inversion fails at the
+/// fitted law, or a sample the device estimate cannot evaluate.
+pub fn fit_relaxation(
+    samples: &[Sample],
+    opts: &RelaxationOptions,
+) -> Result<ProductFit, ProductFitError> {
+    check_relaxation_options(opts)?;
+    let cols = columns(opts.degree, &RELAX_EXTRA);
+    let checked = check_samples(samples, cols.len() + 3)?;
+    let all: Vec<usize> = (0..samples.len()).collect();
+    let core = relaxation_core(samples, &checked, &all, opts)?;
+    let features = relax_features(&core, core.mixture, opts.degree, samples);
+    let y: Vec<f64> = samples.iter().map(|s| s.moisture_pct).collect();
+    let lin = lin_fit(&features, &y, &all, "relaxation regression (stage 2)")?;
+    let model = relax_model(&core, opts.degree, &lin.coef);
+    let ProductModel::Relaxation(rm) = &model else {
+        unreachable!("relax_model builds a relaxation model")
+    };
+    let mix: Vec<f64> = core
+        .params
+        .iter()
+        .zip(samples)
+        .map(|(p, s)| rm.mixing_moisture_pct(p.eps_hf, s.temperature_c))
+        .collect();
+    let inputs = vec![
+        range_of(core.params.iter().map(|p| p.eps_hf)),
+        range_of(core.params.iter().map(|p| p.d_eps)),
+        range_of(core.params.iter().map(|p| p.sigma_s_m)),
+        range_of(mix.iter().copied()),
+    ];
+    let fitted = Fitted {
+        model,
+        features,
+        lin,
+        inputs,
+        law_std_err: Some(core.law_std_err),
+    };
+    finish(
+        samples,
+        &checked,
+        opts.eps_sd,
+        opts.folds,
+        fitted,
+        |f, train, loo| {
+            if opts.refit_nonlinear_in_cv {
+                let c = relaxation_core(samples, &checked, train, opts)?;
+                // c.params follow `train`: features and lab values of those rows.
+                let ts: Vec<Sample> = train.iter().map(|i| samples[*i].clone()).collect();
+                let yt: Vec<f64> = ts.iter().map(|s| s.moisture_pct).collect();
+                let feats = relax_features(&c, c.mixture, opts.degree, &ts);
+                let rows: Vec<usize> = (0..ts.len()).collect();
+                let lin = lin_fit(
+                    &feats,
+                    &yt,
+                    &rows,
+                    "relaxation regression (cross-validation)",
+                )?;
+                Ok(relax_model(&c, opts.degree, &lin.coef))
+            } else {
+                let coef = match loo {
+                    Some(c) => c,
+                    None => {
+                        lin_fit(
+                            &f.features,
+                            &y,
+                            train,
+                            "relaxation regression (cross-validation)",
+                        )?
+                        .coef
+                    }
+                };
+                Ok(relax_model(&core, opts.degree, &coef))
+            }
+        },
+    )
+}
+
+/// Fits both models on the same samples with the same cross-validation
+/// split (`relaxation.folds` is used for both) and puts their
+/// cross-validated SEP side by side.
+///
+/// # Errors
+/// The first error of either fit.
+pub fn compare(
+    samples: &[Sample],
+    single: &SingleOptions,
+    relaxation: &RelaxationOptions,
+) -> Result<Comparison, ProductFitError> {
+    let single = fit_single(
+        samples,
+        &SingleOptions {
+            folds: relaxation.folds,
+            ..*single
+        },
+    )?;
+    let relaxation = fit_relaxation(samples, relaxation)?;
+    let a = single.stats.cross_validation.sep;
+    let b = relaxation.stats.cross_validation.sep;
+    Ok(Comparison {
+        sep_ratio: a / b,
+        better: if b < a {
+            ModelKind::Relaxation
+        } else {
+            ModelKind::SingleFrequency
+        },
+        single,
+        relaxation,
+    })
+}
+
+/// What [`synthetic_samples`] draws (uniformly; the salt log-uniformly).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SynthSpec {
+    /// Number of samples.
+    pub n: usize,
+    /// Moisture range, % wet basis.
+    pub moisture_pct: (f64, f64),
+    /// Temperature range, C.
+    pub temperature_c: (f64, f64),
+    /// Range of the water's conductivity at 25 C (salt), S/m.
+    pub water_sigma25_s_m: (f64, f64),
+    /// Standard deviation of the Gaussian noise added to eps' and eps''.
+    pub noise_sd: f64,
+    /// Excitation frequencies, Hz.
+    pub freqs_hz: [f64; 2],
+}
+
+impl Default for SynthSpec {
+    /// 60 samples, 8-22 % moisture, 5-40 C, salt 0.02-0.3 S/m, noise 0.02,
+    /// the default frequencies 1 and 20 MHz (CONTRACTS.md).
+    fn default() -> Self {
+        SynthSpec {
+            n: 60,
+            moisture_pct: (8.0, 22.0),
+            temperature_c: (5.0, 40.0),
+            water_sigma25_s_m: (0.02, 0.3),
+            noise_sd: 0.02,
+            freqs_hz: [1.0e6, 20.0e6],
+        }
+    }
+}
+
+/// Reference samples of a synthetic product ([`crate::synth`], published
+/// physics) for demos, tests and benchmarks: the "lab" moisture is the true
+/// moisture, the readings are the forward model plus seeded Gaussian noise.
+/// Ids are `"synth-001"`, ... (invented data).
+pub fn synthetic_samples(
+    product: &crate::synth::SynthProduct<f64>,
+    spec: &SynthSpec,
+    seed: u64,
+) -> Vec<Sample> {
+    let mut rng = super::SeededRng::new(seed);
+    let (s_lo, s_hi) = (spec.water_sigma25_s_m.0.ln(), spec.water_sigma25_s_m.1.ln());
+    (0..spec.n)
+        .map(|i| {
+            let state = crate::synth::SynthSample {
+                moisture_pct: rng.range(spec.moisture_pct.0, spec.moisture_pct.1),
+                temperature_c: rng.range(spec.temperature_c.0, spec.temperature_c.1),
+                water_sigma25_s_m: rng.range(s_lo, s_hi).exp(),
+            };
+            let channels = spec
+                .freqs_hz
+                .iter()
+                .map(|f| {
+                    let e = product.permittivity(*f, &state);
+                    ChannelReading {
+                        freq_hz: *f,
+                        eps_re: e.re + spec.noise_sd * rng.normal(),
+                        eps_loss: (-e.im + spec.noise_sd * rng.normal()).max(0.0),
+                    }
+                })
+                .collect();
+            Sample {
+                id: format!("synth-{:03}", i + 1),
+                moisture_pct: state.moisture_pct,
+                temperature_c: state.temperature_c,
+                channels,
+            }
+        })
+        .collect()
+}
