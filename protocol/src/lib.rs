@@ -10,6 +10,8 @@
 //! - [`frame`]: framing (header + postcard payload + CRC-32, COBS, `0x00`
 //!   delimiter) and the streaming [`frame::FrameDecoder`] that resynchronises
 //!   after garbage and counts every kind of error;
+//! - [`quant`]: the compact (2-byte) wire forms of a few reading fields that
+//!   keep a streamed reading within 64 bytes;
 //! - [`auth`]: HMAC-SHA256 tags over device serial, a monotonic counter and
 //!   the encoded request, for every request that changes the device.
 //!
@@ -23,6 +25,7 @@
 pub mod auth;
 pub mod frame;
 pub mod msg;
+pub mod quant;
 pub mod version;
 
 pub use frame::{FrameDecoder, FrameError, MAX_FRAME_LEN, MAX_PAYLOAD_LEN};

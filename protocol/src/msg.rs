@@ -161,8 +161,12 @@ pub struct ChannelValue {
     /// Susceptance B of the sensor cell, siemens.
     pub b_s: f32,
     /// Real permittivity eps' after the cell calibration (NaN if uncalibrated).
+    /// Carried as binary16 (about 3 significant digits, see [`crate::quant`]).
+    #[serde(with = "crate::quant::f16_le")]
     pub eps_re: f32,
     /// Loss factor eps'' >= 0 after the cell calibration (NaN if uncalibrated).
+    /// Carried as binary16 (see [`crate::quant`]).
+    #[serde(with = "crate::quant::f16_le")]
     pub eps_im: f32,
 }
 
@@ -178,12 +182,16 @@ pub struct Reading {
     pub time_ms: u64,
     /// Per-frequency admittance and permittivity.
     pub channels: [ChannelValue; N_FREQ],
-    /// Product temperature, degrees Celsius.
+    /// Product temperature, degrees Celsius (wire step 0.01 C, +/-327.67 C, see [`crate::quant`]).
+    #[serde(with = "crate::quant::centi_c")]
     pub temperature_c: f32,
     /// Moisture in % on the active calibration's basis; `None` when not calibrated
-    /// or the estimate failed (the flags say why).
+    /// or the estimate failed (the flags say why). Wire step 0.01 %, +/-327.67 %.
+    #[serde(with = "crate::quant::opt_centi_pct")]
     pub moisture_pct: Option<f32>,
-    /// Standard uncertainty (1 sigma) of `moisture_pct`, % moisture.
+    /// Standard uncertainty (1 sigma) of `moisture_pct`, % moisture (wire step
+    /// 0.001 %, 0..=65.534 %).
+    #[serde(with = "crate::quant::milli_pct")]
     pub uncertainty_pct: f32,
     /// Quality flags.
     pub flags: Flags,
@@ -191,6 +199,33 @@ pub struct Reading {
     pub cell_cal: CalId,
     /// Product calibration in force ([`CalId::NONE`] if none).
     pub product_cal: CalId,
+}
+
+impl ChannelValue {
+    /// The values the peer decodes (see [`crate::quant`]).
+    pub fn on_wire(self) -> Self {
+        Self {
+            eps_re: crate::quant::f16_round(self.eps_re),
+            eps_im: crate::quant::f16_round(self.eps_im),
+            ..self
+        }
+    }
+}
+
+impl Reading {
+    /// The reading the peer decodes from this one: the compact fields
+    /// rounded as [`crate::quant`] describes, everything else unchanged.
+    /// Compare against this when checking a reading that crossed the wire.
+    pub fn on_wire(self) -> Self {
+        use crate::quant::{moisture_round, temperature_round, uncertainty_round};
+        Self {
+            channels: self.channels.map(ChannelValue::on_wire),
+            temperature_c: temperature_round(self.temperature_c),
+            moisture_pct: self.moisture_pct.map(moisture_round),
+            uncertainty_pct: uncertainty_round(self.uncertainty_pct),
+            ..self
+        }
+    }
 }
 
 /// Moisture basis of a product calibration.

@@ -1,0 +1,199 @@
+//! Golden frames: complete encoded frames kept as bytes, so that any change
+//! of the wire format (field order, a variant's position, the header, the CRC,
+//! COBS, the quantisation of a reading, the auth tag input) fails here first.
+//! The same bytes are shown in `protocol/WIRE.md`; if a change is intended,
+//! raise the protocol version and update both.
+
+use fringe_protocol::frame::encode_vec;
+use fringe_protocol::*;
+
+/// `HostFrame { id: 1, auth: None, request: Identify { host: 1.0 } }`.
+pub const IDENTIFY: &[u8] = &[
+    0x03, 0x10, 0x01, 0x01, 0x02, 0x01, 0x05, 0xc9, 0xbb, 0x6f, 0x96, 0x00,
+];
+/// `DeviceFrame::Reading(streamed_reading())`.
+pub const READING: &[u8] = &[
+    0x22, 0x10, 0x02, 0x03, 0xd2, 0x09, 0x80, 0xe0, 0x9a, 0xf7, 0xa2, 0x34, 0xac, 0xc5, 0x27, 0x36,
+    0x7f, 0x87, 0xa2, 0x39, 0x20, 0x4b, 0x80, 0x41, 0x6a, 0xf7, 0x2b, 0x38, 0xa6, 0x9b, 0xc4, 0x3b,
+    0xc0, 0x49, 0x09, 0x3b, 0xf1, 0x0e, 0x01, 0xb6, 0x05, 0x9a, 0x01, 0x0d, 0x1c, 0xa7, 0x40, 0x0e,
+    0x9b, 0x03, 0x5d, 0x21, 0x57, 0x69, 0x4e, 0x54, 0x00,
+];
+/// `DeviceFrame::Error { id: 42, NoSuchSlot, "product slot 5 is empty" }`.
+pub const ERROR: &[u8] = &[
+    0x21, 0x10, 0x01, 0x2a, 0x04, 0x17, 0x70, 0x72, 0x6f, 0x64, 0x75, 0x63, 0x74, 0x20, 0x73, 0x6c,
+    0x6f, 0x74, 0x20, 0x35, 0x20, 0x69, 0x73, 0x20, 0x65, 0x6d, 0x70, 0x74, 0x79, 0x46, 0x7e, 0xb3,
+    0xc7, 0x00,
+];
+/// A signed `WriteProductCal` of slot 2 (see the test).
+pub const WRITE_PRODUCT_CAL: &[u8] = &[
+    0x35, 0x10, 0x09, 0x01, 0x11, 0x9e, 0x76, 0xed, 0x54, 0x59, 0x34, 0xdc, 0x5d, 0x37, 0x70, 0x49,
+    0xcb, 0x13, 0x8f, 0x2b, 0x92, 0xb7, 0x9a, 0x75, 0x79, 0xd4, 0x65, 0x2f, 0xe9, 0x9a, 0x3f, 0xd6,
+    0x0c, 0xcd, 0x8f, 0x13, 0x6e, 0x08, 0x02, 0x0d, 0x57, 0x68, 0x65, 0x61, 0x74, 0x2c, 0x20, 0x6c,
+    0x69, 0x6e, 0x65, 0x20, 0x32, 0x01, 0x02, 0x03, 0x01, 0x03, 0xa0, 0x3f, 0x01, 0x01, 0x02, 0x3f,
+    0x01, 0x03, 0x80, 0xbd, 0x01, 0x03, 0x10, 0x41, 0x01, 0x03, 0xb0, 0x41, 0x01, 0x03, 0xa0, 0x40,
+    0x01, 0x04, 0x34, 0x42, 0x01, 0x01, 0x03, 0x40, 0x40, 0x01, 0x03, 0xf0, 0x41, 0x01, 0x0c, 0x80,
+    0x3e, 0x80, 0x92, 0xb3, 0xd8, 0x06, 0xf8, 0x72, 0xc4, 0x61, 0x00,
+];
+
+fn hex(b: &[u8]) -> String {
+    b.iter()
+        .map(|x| format!("{x:02x}"))
+        .collect::<Vec<_>>()
+        .join(" ")
+}
+
+fn check_golden<T>(what: &str, msg: &T, golden: &[u8])
+where
+    T: serde::Serialize + serde::de::DeserializeOwned + PartialEq + Clone + std::fmt::Debug,
+{
+    let wire = encode_vec(msg).unwrap();
+    assert_eq!(
+        wire.as_slice(),
+        golden,
+        "{what}: wire format changed.\n  now:    {}\n  golden: {}",
+        hex(&wire),
+        hex(golden)
+    );
+    let mut dec = FrameDecoder::<T>::new();
+    let out: Vec<_> = dec.push(golden).collect();
+    assert_eq!(out, vec![Ok(msg.clone())], "{what}: golden bytes decode");
+}
+
+/// Harrowgate Mill, line 2 dryer outlet: the demo device of these examples.
+const SERIAL: &str = "HM-L2-0007";
+const KEY: auth::Key = *b"harrowgate-mill-line-2-demo-key!";
+
+/// A reading whose values binary16 and the fixed-point steps carry exactly,
+/// so that decoding gives it back equal.
+fn streamed_reading() -> Reading {
+    Reading {
+        seq: Seq {
+            boot: 3,
+            counter: 1234,
+        },
+        time_ms: 1_796_083_200_000, // 2026-12-01T00:00:00Z
+        channels: [
+            ChannelValue {
+                g_s: 2.5e-6,
+                b_s: 3.1e-4,
+                eps_re: 14.25,
+                eps_im: 2.75,
+            },
+            ChannelValue {
+                g_s: 4.1e-5,
+                b_s: 6.0e-3,
+                eps_re: 11.5,
+                eps_im: 0.875,
+            },
+        ],
+        temperature_c: 38.25,
+        moisture_pct: Some(14.62),
+        uncertainty_pct: 0.41,
+        flags: Flags::empty(),
+        cell_cal: CalId([0x1c, 0xa7, 0x40, 0x0e]),
+        product_cal: CalId([0x9b, 0x03, 0x5d, 0x21]),
+    }
+}
+
+#[test]
+fn golden_identify() {
+    let msg = HostFrame {
+        id: 1,
+        auth: None,
+        request: Request::Identify {
+            host: PROTOCOL_VERSION,
+        },
+    };
+    check_golden("HostFrame Identify", &msg, IDENTIFY);
+}
+
+#[test]
+fn golden_streamed_reading() {
+    let r = streamed_reading();
+    assert_eq!(
+        r.on_wire(),
+        r,
+        "golden reading must be exactly representable"
+    );
+    let msg = DeviceFrame::Reading(r);
+    let golden = READING;
+    check_golden("DeviceFrame Reading", &msg, golden);
+    assert!(
+        golden.len() <= 64,
+        "a streamed reading is {} bytes",
+        golden.len()
+    );
+}
+
+#[test]
+fn golden_error() {
+    let msg = DeviceFrame::Error {
+        id: 42,
+        code: ErrorCode::NoSuchSlot,
+        reason: short_string("product slot 5 is empty"),
+    };
+    check_golden("DeviceFrame Error", &msg, ERROR);
+}
+
+#[test]
+fn golden_signed_write_product_cal() {
+    let cal = ProductCal {
+        name: short_string("Wheat, line 2"),
+        model: ModelKind::SingleFrequency,
+        basis: Basis::Wet,
+        params: [1.25f32, 0.5, -0.0625].into_iter().collect(),
+        moisture_pct: Range {
+            min: 9.0,
+            max: 22.0,
+        },
+        temperature_c: Range {
+            min: 5.0,
+            max: 45.0,
+        },
+        inputs: [Range {
+            min: 3.0,
+            max: 30.0,
+        }]
+        .into_iter()
+        .collect(),
+        sec_pct: 0.25,
+        made_s: 1_796_000_000,
+    };
+    let request = Request::WriteProductCal { slot: 2, cal };
+    let auth = auth::sign(&KEY, SERIAL, 17, &request).unwrap();
+    assert_eq!(auth::verify(&KEY, SERIAL, Some(&auth), &request), Ok(17));
+    let msg = HostFrame {
+        id: 9,
+        auth: Some(auth),
+        request,
+    };
+    check_golden(
+        "HostFrame WriteProductCal (signed)",
+        &msg,
+        WRITE_PRODUCT_CAL,
+    );
+}
+
+/// The fuzz seed corpus holds these same frames (after the chunk-size byte
+/// the decoder target reads first; payload-only for the payload target), so
+/// it cannot drift from the wire format.
+#[test]
+fn fuzz_seeds_are_the_golden_frames() {
+    let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("fuzz/seeds");
+    for (name, golden) in [
+        ("identify", IDENTIFY),
+        ("reading", READING),
+        ("error", ERROR),
+        ("write-product-cal", WRITE_PRODUCT_CAL),
+    ] {
+        let seed = std::fs::read(dir.join("decoder").join(name)).unwrap();
+        assert_eq!(&seed[1..], golden, "fuzz/seeds/decoder/{name}");
+        // The payload seed is the frame's raw bytes without header and CRC.
+        let mut raw = [0u8; frame::MAX_RAW_LEN];
+        let n = cobs::decode(&golden[..golden.len() - 1], &mut raw)
+            .unwrap()
+            .frame_size();
+        let payload = std::fs::read(dir.join("payload").join(name)).unwrap();
+        assert_eq!(payload, &raw[1..n - 4], "fuzz/seeds/payload/{name}");
+    }
+}
