@@ -39,7 +39,9 @@ use super::law;
 use super::linear::{fit_linear, LinearFit};
 use super::FitError;
 use crate::estimate::{estimate, Channel, EstimateInput, Failure};
-use crate::invert::{InvertError, MaterialParams, Observation, RelaxationLaw};
+use crate::invert::{
+    invert, InvertError, InvertOptions, MaterialParams, Observation, RelaxationLaw,
+};
 use crate::mixing::ProductMixture;
 use crate::moisture::Basis;
 use crate::product::{
@@ -372,6 +374,37 @@ pub struct ProductFit {
     /// Standard errors of the relaxation law parameters (alpha,
     /// ln f_r_ref, exponent, temperature coefficient; relaxation only).
     pub law_std_err: Option<[f64; 4]>,
+    /// The regression stage (features in use -> lab moisture), for
+    /// leverages and prediction intervals of new readings.
+    pub regression: LinearFit,
+    /// Which of the model's features the regression uses (indices into
+    /// `SingleFrequencyModel::features` / `RelaxationModel::features`).
+    pub feature_columns: Vec<usize>,
+    /// Largest leverage in the calibration set.
+    pub max_leverage: f64,
+    /// The two excitation frequencies, Hz, lower first.
+    pub freqs_hz: [f64; 2],
+    /// Noise SD of eps' and eps'' the fit assumed.
+    pub eps_sd: f64,
+}
+
+/// A new reading evaluated against a fitted calibration
+/// ([`ProductFit::predict`]).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ReadingPrediction {
+    /// The device's estimate (f32, exactly what the firmware reports).
+    pub estimate: crate::estimate::Estimate<f32>,
+    /// Prediction interval for the lab value of this reading,
+    /// `moisture +/- t(1 - a/2, n - k) s sqrt(1 + h0)` (Draper and Smith,
+    /// Applied Regression Analysis, 3rd ed., 1998, section 3.2), %; `None`
+    /// without a moisture.
+    pub interval_pct: Option<(f64, f64)>,
+    /// Leverage `h0` of the reading in the regression (NaN when its
+    /// features cannot be formed, e.g. a failed inversion).
+    pub leverage: f64,
+    /// The leverage exceeds the calibration set's largest: the reading lies
+    /// outside the calibration data even if every input is within range.
+    pub extrapolation: bool,
 }
 
 /// Both models fitted on the same samples (see [`compare`]).
@@ -580,6 +613,25 @@ fn device_cal(
     Ok((cal, p[..n].to_vec()))
 }
 
+/// The device's input for one reading, f32 (lower frequency first).
+fn device_input(
+    freqs_hz: [f64; 2],
+    eps: &[(f64, f64); 2],
+    temperature_c: f64,
+    eps_sd: f64,
+) -> EstimateInput<f32> {
+    let ch = |k: usize| Channel {
+        freq_hz: freqs_hz[k] as f32,
+        eps_re: eps[k].0 as f32,
+        eps_loss: eps[k].1 as f32,
+        sd: eps_sd as f32,
+    };
+    EstimateInput {
+        channels: [ch(0), ch(1)],
+        temperature_c: temperature_c as f32,
+    }
+}
+
 /// The device's estimate of one sample, f32.
 fn device_predict(
     cal: &ProductCalibration<f32>,
@@ -588,16 +640,7 @@ fn device_predict(
     s: &Sample,
     eps_sd: f64,
 ) -> Result<f64, ProductFitError> {
-    let ch = |k: usize| Channel {
-        freq_hz: freqs_hz[k] as f32,
-        eps_re: eps[k].0 as f32,
-        eps_loss: eps[k].1 as f32,
-        sd: eps_sd as f32,
-    };
-    let input = EstimateInput {
-        channels: [ch(0), ch(1)],
-        temperature_c: s.temperature_c as f32,
-    };
+    let input = device_input(freqs_hz, eps, s.temperature_c, eps_sd);
     let e = estimate(&input, Some(cal));
     match e.moisture_pct {
         Some(m) => Ok(f64::from(m)),
@@ -616,6 +659,7 @@ struct Fitted {
     lin: LinearFit,
     inputs: Vec<Range<f32>>,
     law_std_err: Option<[f64; 4]>,
+    columns: Vec<usize>,
 }
 
 /// Leave-one-out coefficients without refitting: for least squares,
@@ -749,7 +793,83 @@ where
         samples: per_sample,
         coef_std_err: fitted.lin.std_err.clone(),
         law_std_err: fitted.law_std_err,
+        regression: fitted.lin,
+        feature_columns: fitted.columns,
+        max_leverage: diag.max_leverage,
+        freqs_hz: checked.freqs_hz,
+        eps_sd,
     })
+}
+
+impl ProductFit {
+    /// Evaluates a new reading (two channels at the calibration's
+    /// frequencies, in either order, and the temperature): the device's
+    /// estimate, a prediction interval at `confidence` (e.g. 0.95), its
+    /// leverage and an extrapolation flag.
+    ///
+    /// # Errors
+    /// [`ProductFitError`] naming the field for a reading that does not fit
+    /// the calibration (wrong channel count or frequencies, NaN, negative
+    /// loss; the id in the error is `"reading"`), or
+    /// [`ProductFitError::Stats`] for a bad confidence level.
+    pub fn predict(
+        &self,
+        channels: &[ChannelReading],
+        temperature_c: f64,
+        confidence: f64,
+    ) -> Result<ReadingPrediction, ProductFitError> {
+        let reading = Sample {
+            id: "reading".into(),
+            moisture_pct: 0.0,
+            temperature_c,
+            channels: channels.to_vec(),
+        };
+        let checked = check_samples(std::slice::from_ref(&reading), 1)?;
+        for k in 0..2 {
+            let (want, got) = (self.freqs_hz[k], checked.freqs_hz[k]);
+            if (got - want).abs() > 1e-6 * want {
+                return Err(ProductFitError::MixedFrequencies {
+                    id: reading.id,
+                    expected_hz: want,
+                    got_hz: got,
+                });
+            }
+        }
+        let t = crate::stats::t_quantile(0.5 + confidence / 2.0, self.regression.dof as f64)
+            .map_err(ProductFitError::Stats)?;
+        let eps = checked.eps[0];
+        let input = device_input(self.freqs_hz, &eps, temperature_c, self.eps_sd);
+        let estimate = estimate(&input, Some(&self.calibration));
+        let features: Option<Vec<f64>> = match &self.model {
+            ProductModel::SingleFrequency(m) => {
+                Some(m.features(eps[m.freq_index].0, temperature_c).to_vec())
+            }
+            ProductModel::Relaxation(m) => {
+                let obs = [0, 1].map(|k| Observation {
+                    freq_hz: self.freqs_hz[k],
+                    eps: Cx::new(eps[k].0, -eps[k].1),
+                    sd: self.eps_sd,
+                });
+                invert(&obs, &m.law, temperature_c, &InvertOptions::default())
+                    .ok()
+                    .map(|inv| m.features(&inv.params, temperature_c).to_vec())
+            }
+        };
+        let leverage = features.map_or(f64::NAN, |f| {
+            let row: Vec<f64> = self.feature_columns.iter().map(|j| f[*j]).collect();
+            self.regression.leverage(&row)
+        });
+        let interval_pct = estimate.moisture_pct.map(|m| {
+            let half = t * self.regression.residual_sd * (1.0 + leverage).sqrt();
+            (f64::from(m) - half, f64::from(m) + half)
+        });
+        Ok(ReadingPrediction {
+            estimate,
+            interval_pct,
+            leverage,
+            extrapolation: !(leverage <= self.max_leverage),
+        })
+    }
 }
 
 // ---------------------------------------------------------------------------
@@ -810,6 +930,7 @@ pub fn fit_single(samples: &[Sample], opts: &SingleOptions) -> Result<ProductFit
         lin,
         inputs,
         law_std_err: None,
+        columns: cols,
     };
     finish(
         samples,
@@ -1137,6 +1258,7 @@ pub fn fit_relaxation(
         lin,
         inputs,
         law_std_err: Some(core.law_std_err),
+        columns: cols,
     };
     finish(
         samples,
