@@ -6,8 +6,8 @@
 
 use fringe_calibration::estimate::{estimate, Channel, EstimateInput};
 use fringe_calibration::fit::{
-    compare, fit_relaxation, fit_single, synthetic_samples, ChannelReading, ProductFitError,
-    RelaxationOptions, Sample, SingleOptions, SynthSpec,
+    compare, fit_relaxation, fit_single, synthetic_samples, ChannelReading, MixingFit,
+    ProductFitError, RelaxationOptions, Sample, SingleOptions, SynthSpec,
 };
 use fringe_calibration::product::{ModelKind, ProductModel};
 use fringe_calibration::stats::Folds;
@@ -418,4 +418,32 @@ fn relaxation_prediction_interval_coverage() {
         (0.90..=0.99).contains(&rate),
         "seed {seed}: coverage {rate}"
     );
+}
+
+/// With the dry-matter permittivity given (3.0, the synthetic product's),
+/// fitting the mixing exponent instead recovers CRIM's 0.5 from noise-free
+/// samples.
+#[test]
+fn mixing_exponent_fit_recovers_crim() {
+    let seed = 55;
+    let spec = SynthSpec {
+        n: 40,
+        noise_sd: 0.0,
+        ..SynthSpec::default()
+    };
+    let samples = synthetic_samples(&grain(), &spec, seed);
+    let opts = RelaxationOptions {
+        mixing: MixingFit::Exponent { eps_dry: 3.0 },
+        ..relax_opts()
+    };
+    let fit = fit_relaxation(&samples, &opts).unwrap_or_else(|e| panic!("seed {seed}: {e}"));
+    let ProductModel::Relaxation(m) = fit.model else {
+        panic!("seed {seed}: not a relaxation model")
+    };
+    assert!(
+        (m.mixture.exponent - 0.5).abs() < 0.005,
+        "seed {seed}: exponent {}",
+        m.mixture.exponent
+    );
+    assert!(fit.stats.cross_validation.sep < 0.05, "seed {seed}");
 }

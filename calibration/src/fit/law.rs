@@ -20,6 +20,7 @@
 
 use nalgebra::{Matrix3, Matrix4, SMatrix, Vector3, Vector4};
 
+use super::nonlinear::Damping;
 use crate::invert::{Observation, RelaxationLaw};
 use crate::Cx;
 
@@ -229,8 +230,7 @@ pub(crate) fn fit_law(
         data.refine_sample(i, p, &theta);
     }
     let mut cost = data.cost(&ps, &theta);
-    let mut lambda = 1e-3;
-    let mut nu = 2.0;
+    let mut damping = Damping::new(1e-3);
     let max_iter = 200;
     let mut converged = false;
     let mut trial_ps = ps.clone();
@@ -259,7 +259,7 @@ pub(crate) fn fit_law(
         }
         let mut s = u;
         for j in 0..4 {
-            s[(j, j)] += lambda * u[(j, j)].max(1e-12);
+            s[(j, j)] += damping.lambda * u[(j, j)].max(1e-12);
             if !mask[j] {
                 s[(j, j)] = 1.0;
             }
@@ -270,7 +270,7 @@ pub(crate) fn fit_law(
         for (r, jp, jt) in &cache {
             let mut v: Matrix3<f64> = jp.transpose() * jp;
             for j in 0..3 {
-                v[(j, j)] += lambda * v[(j, j)].max(1e-12) + 1e-12;
+                v[(j, j)] += damping.lambda * v[(j, j)].max(1e-12) + 1e-12;
             }
             let Some(vi) = v.try_inverse() else {
                 ok = false;
@@ -292,9 +292,8 @@ pub(crate) fn fit_law(
         }
         let dtheta = if ok { s.lu().solve(&rhs) } else { None };
         let Some(dtheta) = dtheta.filter(|d| d.iter().all(|v| v.is_finite())) else {
-            lambda *= nu;
-            nu *= 2.0;
-            if lambda > 1e16 {
+            damping.reject();
+            if damping.lambda > 1e16 {
                 return Err(LawError::Singular);
             }
             continue;
@@ -319,11 +318,7 @@ pub(crate) fn fit_law(
         };
         let predicted = cost - pred;
         let actual = cost - new_cost;
-        let rho = if predicted > 0.0 {
-            actual / predicted
-        } else {
-            -1.0
-        };
+        let rho = Damping::gain(actual, predicted);
         if rho > 1e-4 {
             let small = actual <= 1e-12 * cost;
             let step_small = (0..4).all(|j| dtheta[j].abs() <= 1e-10 * (theta[j].abs() + 1e-6));
@@ -331,16 +326,14 @@ pub(crate) fn fit_law(
             theta = trial;
             cost = new_cost;
             fresh = true;
-            lambda *= (1.0f64 / 3.0).max(1.0 - (2.0 * rho - 1.0).powi(3));
-            nu = 2.0;
+            damping.accept(rho);
             if small || step_small {
                 converged = true;
                 break;
             }
         } else {
-            lambda *= nu;
-            nu *= 2.0;
-            if lambda > 1e16 {
+            damping.reject();
+            if damping.lambda > 1e16 {
                 // No step reduces the cost: at the minimum to working precision.
                 converged = true;
                 break;

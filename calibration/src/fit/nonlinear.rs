@@ -168,8 +168,7 @@ pub fn levenberg_marquardt<P: Problem + ?Sized>(
     problem.jacobian(&p, &mut jac);
     let mut d = vec![0.0; m];
     update_scale(&jac, &mut d);
-    let mut lambda: f64 = opts.initial_damping;
-    let mut nu: f64 = 2.0;
+    let mut damping = Damping::new(opts.initial_damping);
     let mut trial = vec![0.0; m];
     let mut r_trial = vec![0.0; n];
     let mut aug = DMatrix::zeros(n + m, m);
@@ -212,7 +211,7 @@ pub fn levenberg_marquardt<P: Problem + ?Sized>(
         aug.fill(0.0);
         aug.view_mut((0, 0), (n, m)).copy_from(&jac);
         for j in 0..m {
-            aug[(n + j, j)] = lambda.sqrt() * d[j];
+            aug[(n + j, j)] = damping.lambda.sqrt() * d[j];
         }
         rhs.fill(0.0);
         for i in 0..n {
@@ -224,8 +223,7 @@ pub fn levenberg_marquardt<P: Problem + ?Sized>(
         let dp = match qr.r().solve_upper_triangular(&top) {
             Some(dp) if dp.iter().all(|v| v.is_finite()) => dp,
             _ => {
-                lambda *= nu;
-                nu *= 2.0;
+                damping.reject();
                 continue;
             }
         };
@@ -246,11 +244,7 @@ pub fn levenberg_marquardt<P: Problem + ?Sized>(
             .sum();
         let predicted = cost - predicted_cost;
         let actual = cost - cost_trial;
-        let rho = if predicted > 0.0 {
-            actual / predicted
-        } else {
-            -1.0
-        };
+        let rho = Damping::gain(actual, predicted);
 
         let step_norm = (0..m).map(|j| (d[j] * dp[j]).powi(2)).sum::<f64>().sqrt();
         let p_norm = (0..m).map(|j| (d[j] * p[j]).powi(2)).sum::<f64>().sqrt();
@@ -263,16 +257,14 @@ pub fn levenberg_marquardt<P: Problem + ?Sized>(
             cost = cost_trial;
             problem.jacobian(&p, &mut jac);
             update_scale(&jac, &mut d);
-            lambda *= (1.0f64 / 3.0).max(1.0 - (2.0 * rho - 1.0).powi(3));
-            nu = 2.0;
+            damping.accept(rho);
             if small_reduction {
                 return Ok(finish(problem, p, cost, iter, Termination::SmallReduction));
             }
         } else {
-            lambda *= nu;
-            nu *= 2.0;
+            damping.reject();
         }
-        if small_step || lambda > 1e300 {
+        if small_step || damping.lambda > 1e300 {
             return Ok(finish(problem, p, cost, iter, Termination::SmallStep));
         }
     }
@@ -280,6 +272,42 @@ pub fn levenberg_marquardt<P: Problem + ?Sized>(
         iterations: opts.max_iterations,
         rss: cost,
     })
+}
+
+/// Levenberg-Marquardt damping with Nielsen's (1999) update.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct Damping {
+    /// Current damping.
+    pub lambda: f64,
+    nu: f64,
+}
+
+impl Damping {
+    pub(crate) fn new(lambda: f64) -> Self {
+        Damping { lambda, nu: 2.0 }
+    }
+
+    /// Gain ratio of a step: actual over predicted reduction (-1 when the
+    /// model predicts none).
+    pub(crate) fn gain(actual: f64, predicted: f64) -> f64 {
+        if predicted > 0.0 {
+            actual / predicted
+        } else {
+            -1.0
+        }
+    }
+
+    /// After an accepted step of gain ratio `rho`.
+    pub(crate) fn accept(&mut self, rho: f64) {
+        self.lambda *= (1.0f64 / 3.0).max(1.0 - (2.0 * rho - 1.0).powi(3));
+        self.nu = 2.0;
+    }
+
+    /// After a rejected step.
+    pub(crate) fn reject(&mut self) {
+        self.lambda *= self.nu;
+        self.nu *= 2.0;
+    }
 }
 
 fn sum_sq(r: &[f64]) -> f64 {
