@@ -1,13 +1,48 @@
 //! # fringe-host: the `fringe` command-line tool
 //!
-//! Library half of the host tool; `main.rs` only parses, runs and maps the
-//! result to an exit code.
+//! Library half of the host tool (DESIGN.md stages `link`, `store`, `watch`,
+//! `audit`); `main.rs` only parses, runs and maps the result to an exit code.
+//!
+//! - [`cli`]: the command line (clap derive, no I/O);
+//! - [`config`]: the line configuration file and TOML loading;
+//! - [`link`]: a connection to a device (handshake, requests, reconnect);
+//! - [`store`]: the durable log (SQLite, append-only, hash chain);
+//! - [`drift`]: drift monitors; [`samples`]: reference-sample files;
+//! - [`cmd`]: the command bodies; [`exit`]: the exit codes.
 #![forbid(unsafe_code)]
+#![warn(missing_docs)]
 
 pub mod cli;
+pub mod cmd;
+pub mod config;
 pub mod drift;
+pub mod exit;
+pub mod link;
+pub mod out;
 pub mod plots;
 pub mod product_file;
 pub mod report;
 pub mod samples;
+pub mod store;
 pub mod timefmt;
+
+use cli::{Cli, Command};
+use config::LineConfig;
+
+/// Runs one parsed command line.
+///
+/// # Errors
+/// The command's error; [`exit::ExitCode::for_error`] maps it to an exit code.
+pub fn run(cli: Cli) -> anyhow::Result<()> {
+    let cfg = match &cli.config {
+        Some(p) => LineConfig::load(p)?,
+        None => LineConfig::default(),
+    };
+    match &cli.command {
+        Command::Identify(a) => cmd::device::identify(a, &cfg),
+        Command::Status(a) => cmd::device::status(a, &cfg),
+        Command::Demo => anyhow::bail!(
+            "fringe demo: placeholder. The simulated device and the calibration workflow are not built yet; see the open issues."
+        ),
+    }
+}

@@ -1,0 +1,240 @@
+//! The line configuration file (TOML) and TOML loading with located errors.
+//!
+//! A line file saves repeating flags; every key is optional and a flag given
+//! on the command line wins:
+//!
+//! ```toml
+//! # Harrowgate Mill, line 2 dryer outlet
+//! port = "/dev/ttyUSB0"   # serial port of the sensor
+//! baud = 115200           # baud rate
+//! db = "line2.db"         # database file (relative to this file's folder)
+//!
+//! [alarm]                 # limits shown in `fringe monitor`
+//! moisture_low_pct = 12.0
+//! moisture_high_pct = 15.5
+//! uncertainty_max_pct = 1.0
+//! ```
+
+use std::path::{Path, PathBuf};
+
+use serde::de::DeserializeOwned;
+use serde::Deserialize;
+
+/// Default baud rate.
+pub const DEFAULT_BAUD: u32 = 115_200;
+
+/// A configuration or scenario file could not be used.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum ConfigError {
+    /// The file could not be read.
+    #[error("cannot read {path}: {source}")]
+    Read {
+        /// File.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+    /// The file is not valid TOML for its schema.
+    #[error("{path}:{line}:{column}: {message}")]
+    Parse {
+        /// File.
+        path: PathBuf,
+        /// 1-based line.
+        line: usize,
+        /// 1-based column.
+        column: usize,
+        /// What is wrong (names the key).
+        message: String,
+    },
+    /// A value is out of its allowed range.
+    #[error("{path}: {field} = {value}: {rule}")]
+    Invalid {
+        /// File.
+        path: PathBuf,
+        /// Key, dotted (`alarm.moisture_high_pct`).
+        field: String,
+        /// The value given.
+        value: String,
+        /// What is allowed.
+        rule: String,
+    },
+    /// A required value is given neither by flag nor by the line file.
+    #[error("no {what} given: pass {flag} or set `{key}` in a line file given with --config")]
+    Missing {
+        /// What is missing.
+        what: &'static str,
+        /// The flag.
+        flag: &'static str,
+        /// The line-file key.
+        key: &'static str,
+    },
+}
+
+/// 1-based line and column of byte offset `at` in `text`.
+pub fn line_column(text: &str, at: usize) -> (usize, usize) {
+    let before = text.get(..at.min(text.len())).unwrap_or(text);
+    let line = before.matches('\n').count() + 1;
+    let column = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
+    (line, column)
+}
+
+/// Reads and parses a TOML file into `T`, with errors that name the file,
+/// line, column and key.
+///
+/// # Errors
+/// [`ConfigError::Read`] or [`ConfigError::Parse`].
+pub fn load_toml<T: DeserializeOwned>(path: &Path) -> Result<T, ConfigError> {
+    let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    parse_toml(path, &text)
+}
+
+/// Parses TOML `text` (read from `path`) into `T`.
+///
+/// # Errors
+/// [`ConfigError::Parse`].
+pub fn parse_toml<T: DeserializeOwned>(path: &Path, text: &str) -> Result<T, ConfigError> {
+    toml::from_str(text).map_err(|e| {
+        let (line, column) = e.span().map_or((1, 1), |s| line_column(text, s.start));
+        ConfigError::Parse {
+            path: path.to_path_buf(),
+            line,
+            column,
+            message: e.message().trim().to_string(),
+        }
+    })
+}
+
+/// Alarm limits shown by `fringe monitor` (a reading outside is marked).
+#[derive(Debug, Clone, Copy, PartialEq, Default, Deserialize, serde::Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct AlarmLimits {
+    /// Low moisture limit, %.
+    pub moisture_low_pct: Option<f32>,
+    /// High moisture limit, %.
+    pub moisture_high_pct: Option<f32>,
+    /// Largest acceptable uncertainty, %.
+    pub uncertainty_max_pct: Option<f32>,
+}
+
+impl AlarmLimits {
+    /// Which limits `moisture_pct` +- `uncertainty_pct` breaks, as words.
+    pub fn check(&self, moisture_pct: Option<f32>, uncertainty_pct: f32) -> Vec<&'static str> {
+        let mut out = Vec::new();
+        if let Some(m) = moisture_pct {
+            if self.moisture_low_pct.is_some_and(|l| m < l) {
+                out.push("LOW");
+            }
+            if self.moisture_high_pct.is_some_and(|h| m > h) {
+                out.push("HIGH");
+            }
+        }
+        if self
+            .uncertainty_max_pct
+            .is_some_and(|u| uncertainty_pct.is_nan() || uncertainty_pct > u)
+        {
+            out.push("UNCERTAIN");
+        }
+        out
+    }
+}
+
+/// The line configuration file.
+#[derive(Debug, Clone, PartialEq, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LineConfig {
+    /// Serial port.
+    pub port: Option<String>,
+    /// Baud rate.
+    pub baud: Option<u32>,
+    /// Database file; relative paths are taken from the file's folder.
+    pub db: Option<PathBuf>,
+    /// Alarm limits.
+    #[serde(default)]
+    pub alarm: AlarmLimits,
+}
+
+impl LineConfig {
+    /// Loads and checks a line file.
+    ///
+    /// # Errors
+    /// [`ConfigError`] naming the file, position or field.
+    pub fn load(path: &Path) -> Result<Self, ConfigError> {
+        let mut c: LineConfig = load_toml(path)?;
+        let invalid = |field: &str, value: String, rule: &str| ConfigError::Invalid {
+            path: path.to_path_buf(),
+            field: field.into(),
+            value,
+            rule: rule.into(),
+        };
+        if let Some(b) = c.baud {
+            if !(300..=4_000_000).contains(&b) {
+                return Err(invalid("baud", b.to_string(), "must be 300..=4000000"));
+            }
+        }
+        let a = c.alarm;
+        for (field, v) in [
+            ("alarm.moisture_low_pct", a.moisture_low_pct),
+            ("alarm.moisture_high_pct", a.moisture_high_pct),
+            ("alarm.uncertainty_max_pct", a.uncertainty_max_pct),
+        ] {
+            if let Some(x) = v {
+                if !(0.0..=100.0).contains(&x) {
+                    return Err(invalid(field, x.to_string(), "must be 0..=100 %"));
+                }
+            }
+        }
+        if let (Some(l), Some(h)) = (a.moisture_low_pct, a.moisture_high_pct) {
+            if l >= h {
+                return Err(invalid(
+                    "alarm.moisture_low_pct",
+                    l.to_string(),
+                    "must be below alarm.moisture_high_pct",
+                ));
+            }
+        }
+        if let Some(db) = &c.db {
+            if db.is_relative() {
+                if let Some(dir) = path.parent() {
+                    c.db = Some(dir.join(db));
+                }
+            }
+        }
+        Ok(c)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn line_column_counts_from_one() {
+        assert_eq!(line_column("ab\ncd", 0), (1, 1));
+        assert_eq!(line_column("ab\ncd", 4), (2, 2));
+    }
+
+    #[test]
+    fn line_file_errors_name_the_place() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("line2.toml");
+        std::fs::write(&p, "port = \"/dev/ttyUSB0\"\nbaud = 9600\nbad_key = 1\n").unwrap();
+        let e = LineConfig::load(&p).unwrap_err().to_string();
+        assert!(e.contains("line2.toml:3:1") && e.contains("bad_key"), "{e}");
+        std::fs::write(&p, "baud = 12\n").unwrap();
+        let e = LineConfig::load(&p).unwrap_err().to_string();
+        assert!(e.contains("baud = 12"), "{e}");
+        std::fs::write(
+            &p,
+            "db = \"l2.db\"\n[alarm]\nmoisture_low_pct = 12.0\nmoisture_high_pct = 15.5\n",
+        )
+        .unwrap();
+        let c = LineConfig::load(&p).unwrap();
+        assert_eq!(c.db, Some(dir.path().join("l2.db")));
+        assert_eq!(c.alarm.check(Some(16.0), 0.5), vec!["HIGH"]);
+        assert!(c.alarm.check(Some(13.0), 0.5).is_empty());
+    }
+}

@@ -1,0 +1,151 @@
+//! Exit codes: one documented enum, and the mapping from an error chain.
+//!
+//! Scripts and plant supervisors branch on these numbers; they never change
+//! meaning (codes are only added). The same table is in the README.
+
+use std::io;
+
+use crate::config::ConfigError;
+use crate::link::LinkError;
+use crate::store::StoreError;
+
+/// Every exit status `fringe` returns.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+#[non_exhaustive]
+pub enum ExitCode {
+    /// 0: done (also: stopped with Ctrl-C, or output pipe closed by the reader).
+    Success = 0,
+    /// 1: an error not listed below (the message says what).
+    Failure = 1,
+    /// 2: bad command-line arguments (clap's usage error).
+    Usage = 2,
+    /// 3: a configuration or scenario file is missing or invalid (file, line, column and field named).
+    BadFile = 3,
+    /// 4: the requested work finished but found problems (e.g. a broken audit chain).
+    Problems = 4,
+    /// 10: the serial port does not exist (adapter unplugged, wrong name).
+    PortMissing = 10,
+    /// 11: the serial port is in use by another program.
+    PortBusy = 11,
+    /// 12: no permission to open the serial port (join the `dialout` group).
+    PortPermission = 12,
+    /// 13: the device did not answer (wrong port, device off, cable).
+    NoAnswer = 13,
+    /// 14: only garbled frames arrived (wrong baud rate, or line noise).
+    Garbled = 14,
+    /// 15: the device speaks an incompatible protocol major version.
+    Incompatible = 15,
+    /// 16: the device refused a request (its error code and reason are printed).
+    DeviceRefused = 16,
+    /// 20: the database is locked by another process.
+    DbLocked = 20,
+    /// 21: the database or its folder is read-only.
+    DbReadOnly = 21,
+    /// 22: the disk holding the database is full.
+    DiskFull = 22,
+    /// 23: the database cannot be used (cannot be created, not a fringe database, newer schema, damaged).
+    DbUnusable = 23,
+    /// 101: an internal error (a bug); the message asks for a report.
+    Internal = 101,
+}
+
+impl ExitCode {
+    /// The numeric status.
+    pub const fn code(self) -> u8 {
+        self as u8
+    }
+
+    /// The exit code for an error: the first cause in the chain that has one.
+    pub fn for_error(err: &anyhow::Error) -> ExitCode {
+        for cause in err.chain() {
+            if let Some(e) = cause.downcast_ref::<StoreError>() {
+                return match e {
+                    StoreError::Locked { .. } => ExitCode::DbLocked,
+                    StoreError::ReadOnly { .. } => ExitCode::DbReadOnly,
+                    StoreError::DiskFull { .. } => ExitCode::DiskFull,
+                    StoreError::CannotOpen { .. }
+                    | StoreError::NotADatabase { .. }
+                    | StoreError::Corrupt { .. }
+                    | StoreError::NewerSchema { .. }
+                    | StoreError::Foreign { .. } => ExitCode::DbUnusable,
+                    _ => ExitCode::Failure,
+                };
+            }
+            if let Some(e) = cause.downcast_ref::<LinkError>() {
+                return e.exit_code();
+            }
+            if cause.downcast_ref::<ConfigError>().is_some() {
+                return ExitCode::BadFile;
+            }
+            if let Some(e) = cause.downcast_ref::<io::Error>() {
+                if e.kind() == io::ErrorKind::StorageFull {
+                    return ExitCode::DiskFull;
+                }
+            }
+        }
+        ExitCode::Failure
+    }
+}
+
+impl From<ExitCode> for std::process::ExitCode {
+    fn from(c: ExitCode) -> Self {
+        std::process::ExitCode::from(c.code())
+    }
+}
+
+/// Whether the error is a closed output pipe (`fringe status | head -1`),
+/// which counts as success.
+pub fn is_broken_pipe(err: &anyhow::Error) -> bool {
+    err.chain().any(|c| {
+        c.downcast_ref::<io::Error>()
+            .is_some_and(|e| e.kind() == io::ErrorKind::BrokenPipe)
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::path::PathBuf;
+
+    #[test]
+    fn codes_are_distinct() {
+        let all = [
+            ExitCode::Success,
+            ExitCode::Failure,
+            ExitCode::Usage,
+            ExitCode::BadFile,
+            ExitCode::Problems,
+            ExitCode::PortMissing,
+            ExitCode::PortBusy,
+            ExitCode::PortPermission,
+            ExitCode::NoAnswer,
+            ExitCode::Garbled,
+            ExitCode::Incompatible,
+            ExitCode::DeviceRefused,
+            ExitCode::DbLocked,
+            ExitCode::DbReadOnly,
+            ExitCode::DiskFull,
+            ExitCode::DbUnusable,
+            ExitCode::Internal,
+        ];
+        let mut codes: Vec<u8> = all.iter().map(|c| c.code()).collect();
+        codes.sort_unstable();
+        codes.dedup();
+        assert_eq!(codes.len(), all.len());
+    }
+
+    #[test]
+    fn mapping_looks_through_context() {
+        let e = anyhow::Error::new(StoreError::DiskFull {
+            path: PathBuf::from("x.db"),
+        })
+        .context("storing readings");
+        assert_eq!(ExitCode::for_error(&e), ExitCode::DiskFull);
+        let e = anyhow::Error::new(io::Error::from(io::ErrorKind::BrokenPipe)).context("writing");
+        assert!(is_broken_pipe(&e));
+        assert_eq!(
+            ExitCode::for_error(&anyhow::anyhow!("x")),
+            ExitCode::Failure
+        );
+    }
+}

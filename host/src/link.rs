@@ -1,0 +1,979 @@
+//! The host's `link` stage: a connection to one device over a serial port.
+//!
+//! [`Link`] opens a port, runs the handshake (Identify, protocol major
+//! version check), sends requests with ids and waits for the matching
+//! answer with a timeout and retries, hands streamed readings and events to
+//! the caller, and reconnects with backoff when the port vanishes. Frames use
+//! `fringe_protocol::frame` (COBS, CRC-32); the decoder resynchronises after
+//! garbage and its counters are the link-error figures shown to the user.
+//!
+//! The port is behind the small [`Port`] trait so the logic can be driven by
+//! an in-memory device in tests; [`SerialOpener`] opens real (or pseudo)
+//! serial ports with `serialport`.
+
+use std::collections::VecDeque;
+use std::io;
+use std::path::Path;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::{Duration, Instant};
+
+use fringe_protocol::auth::Key;
+use fringe_protocol::frame::{self, DecoderStats, FrameError};
+use fringe_protocol::{
+    DeviceFrame, ErrorCode, FrameDecoder, HostFrame, Identity, Request, Response, Version,
+    MAX_FRAME_LEN, PROTOCOL_VERSION,
+};
+
+use crate::exit::ExitCode;
+
+/// A link failure a user can act on. Each names the port.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[non_exhaustive]
+pub enum LinkError {
+    /// No such port.
+    #[error("serial port {port} does not exist{}", available_hint(.available))]
+    PortMissing {
+        /// Port path.
+        port: String,
+        /// Ports the system lists.
+        available: Vec<String>,
+    },
+    /// Another program holds the port.
+    #[error("serial port {port} is busy: another program (another fringe, a terminal program, ModemManager) has it open; close it and try again")]
+    PortBusy {
+        /// Port path.
+        port: String,
+    },
+    /// No permission to open the port.
+    #[error("permission denied opening serial port {port}{}", group_hint(.group))]
+    PortPermission {
+        /// Port path.
+        port: String,
+        /// Group owning the device file, if known.
+        group: Option<String>,
+    },
+    /// The path is not a serial port, or it could not be set up.
+    #[error("cannot use {port} as a serial port: {reason}")]
+    NotASerialPort {
+        /// Port path.
+        port: String,
+        /// What failed.
+        reason: String,
+    },
+    /// The port vanished (adapter unplugged, simulator stopped).
+    #[error("serial port {port} went away: {reason}")]
+    Disconnected {
+        /// Port path.
+        port: String,
+        /// What the system said.
+        reason: String,
+    },
+    /// Nothing came back.
+    #[error("no answer from the device on {port} to {request} after {tries} tries of {timeout_ms} ms: check the port name, that the device is powered, and the cable")]
+    NoAnswer {
+        /// Port path.
+        port: String,
+        /// Request name.
+        request: &'static str,
+        /// Tries made.
+        tries: u32,
+        /// Timeout of each try, ms.
+        timeout_ms: u64,
+    },
+    /// Only damaged frames came back.
+    #[error("only garbled data from {port} at {baud} baud ({errors} damaged frames, none valid): the baud rate is probably wrong (the device's is on its label and in `fringe identify` at the right rate), or the line is noisy")]
+    Garbled {
+        /// Port path.
+        port: String,
+        /// Baud rate used.
+        baud: u32,
+        /// Damaged frames seen.
+        errors: u32,
+    },
+    /// The device speaks another protocol major version.
+    #[error("the device on {port} speaks protocol {theirs}; this fringe speaks {ours} (major versions must match): update {}", if .theirs.major > .ours.major { "fringe" } else { "the device firmware" })]
+    Incompatible {
+        /// Port path.
+        port: String,
+        /// Our version.
+        ours: Version,
+        /// The device's version.
+        theirs: Version,
+    },
+    /// The device refused a request.
+    #[error("the device refused {request}: {reason} (error code {code})")]
+    Refused {
+        /// Request name.
+        request: &'static str,
+        /// Numeric error code.
+        code: u16,
+        /// The device's reason.
+        reason: String,
+    },
+    /// The device answered with something else than the request calls for.
+    #[error("unexpected answer to {request}: {got}")]
+    Unexpected {
+        /// Request name.
+        request: &'static str,
+        /// What came.
+        got: String,
+    },
+    /// Other I/O failure on the port.
+    #[error("serial port {port}: {reason}")]
+    Io {
+        /// Port path.
+        port: String,
+        /// What failed.
+        reason: String,
+    },
+    /// Stopped by the user while waiting (Ctrl-C).
+    #[error("stopped")]
+    Stopped,
+}
+
+fn available_hint(ports: &[String]) -> String {
+    if ports.is_empty() {
+        " (no serial ports found: is the adapter plugged in?)".into()
+    } else {
+        format!(" (ports found: {})", ports.join(", "))
+    }
+}
+
+fn group_hint(group: &Option<String>) -> String {
+    match group {
+        Some(g) => format!(
+            ": the device file belongs to group `{g}`; add yourself with `sudo usermod -aG {g} $USER` and log in again"
+        ),
+        None => ": add yourself to the group owning it (often `dialout`) and log in again".into(),
+    }
+}
+
+impl LinkError {
+    /// The documented exit code for this error.
+    pub fn exit_code(&self) -> ExitCode {
+        match self {
+            LinkError::PortMissing { .. } => ExitCode::PortMissing,
+            LinkError::PortBusy { .. } => ExitCode::PortBusy,
+            LinkError::PortPermission { .. } => ExitCode::PortPermission,
+            LinkError::NoAnswer { .. } => ExitCode::NoAnswer,
+            LinkError::Garbled { .. } => ExitCode::Garbled,
+            LinkError::Incompatible { .. } => ExitCode::Incompatible,
+            LinkError::Refused { .. } => ExitCode::DeviceRefused,
+            LinkError::Stopped => ExitCode::Success,
+            LinkError::NotASerialPort { .. }
+            | LinkError::Disconnected { .. }
+            | LinkError::Unexpected { .. }
+            | LinkError::Io { .. } => ExitCode::Failure,
+        }
+    }
+
+    /// Whether a reconnect may cure it (the port vanished or is not back yet).
+    pub fn is_transient(&self) -> bool {
+        matches!(
+            self,
+            LinkError::Disconnected { .. }
+                | LinkError::PortMissing { .. }
+                | LinkError::PortBusy { .. }
+                | LinkError::NoAnswer { .. }
+                | LinkError::Io { .. }
+        )
+    }
+}
+
+/// A byte pipe to a device.
+pub trait Port: Send {
+    /// Reads what is there, waiting at most `timeout`; `Ok(0)` on timeout.
+    ///
+    /// # Errors
+    /// An error means the port is gone or broken.
+    fn read_some(&mut self, buf: &mut [u8], timeout: Duration) -> io::Result<usize>;
+    /// Writes all of `bytes`.
+    ///
+    /// # Errors
+    /// An error means the port is gone or broken.
+    fn write_all(&mut self, bytes: &[u8]) -> io::Result<()>;
+    /// Drops bytes received but not read (stale data after a reconnect).
+    ///
+    /// # Errors
+    /// As [`Port::read_some`].
+    fn discard_input(&mut self) -> io::Result<()>;
+}
+
+/// Opens the port, again on every reconnect.
+pub trait Opener: Send {
+    /// Opens the port.
+    ///
+    /// # Errors
+    /// A [`LinkError`] saying why not.
+    fn open(&mut self) -> Result<Box<dyn Port>, LinkError>;
+    /// The port's name for messages.
+    fn name(&self) -> &str;
+    /// Baud rate, for messages.
+    fn baud(&self) -> u32;
+}
+
+/// A serial port opened with `serialport` (real adapter or pseudo-terminal).
+pub struct SerialPortPipe(Box<dyn serialport::SerialPort>);
+
+impl Port for SerialPortPipe {
+    fn read_some(&mut self, buf: &mut [u8], timeout: Duration) -> io::Result<usize> {
+        self.0
+            .set_timeout(timeout.max(Duration::from_millis(1)))
+            .map_err(io::Error::from)?;
+        match self.0.read(buf) {
+            Ok(0) => Err(io::Error::new(io::ErrorKind::BrokenPipe, "end of file")),
+            Ok(n) => Ok(n),
+            Err(e)
+                if matches!(
+                    e.kind(),
+                    io::ErrorKind::TimedOut
+                        | io::ErrorKind::Interrupted
+                        | io::ErrorKind::WouldBlock
+                ) =>
+            {
+                Ok(0)
+            }
+            Err(e) => Err(e),
+        }
+    }
+    fn write_all(&mut self, bytes: &[u8]) -> io::Result<()> {
+        self.0
+            .set_timeout(Duration::from_millis(500))
+            .map_err(io::Error::from)?;
+        io::Write::write_all(&mut self.0, bytes)?;
+        io::Write::flush(&mut self.0)
+    }
+    fn discard_input(&mut self) -> io::Result<()> {
+        self.0
+            .clear(serialport::ClearBuffer::Input)
+            .map_err(io::Error::from)
+    }
+}
+
+/// Opens a serial port by path at a baud rate.
+#[derive(Debug, Clone)]
+pub struct SerialOpener {
+    /// Port path (`/dev/ttyUSB0`, `/dev/pts/4`, a symlink to one).
+    pub path: String,
+    /// Baud rate.
+    pub baud: u32,
+}
+
+impl Opener for SerialOpener {
+    fn open(&mut self) -> Result<Box<dyn Port>, LinkError> {
+        open_serial(&self.path, self.baud).map(|p| Box::new(SerialPortPipe(p)) as Box<dyn Port>)
+    }
+    fn name(&self) -> &str {
+        &self.path
+    }
+    fn baud(&self) -> u32 {
+        self.baud
+    }
+}
+
+/// Opens `path` as a serial port (8N1, no flow control, exclusive).
+///
+/// # Errors
+/// [`LinkError::PortMissing`], [`LinkError::PortBusy`],
+/// [`LinkError::PortPermission`] (naming the device file's group) or
+/// [`LinkError::NotASerialPort`].
+pub fn open_serial(path: &str, baud: u32) -> Result<Box<dyn serialport::SerialPort>, LinkError> {
+    let port = path.to_string();
+    if !Path::new(path).exists() {
+        let available = serialport::available_ports()
+            .map(|v| v.into_iter().map(|p| p.port_name).collect())
+            .unwrap_or_default();
+        return Err(LinkError::PortMissing { port, available });
+    }
+    match serialport::new(path, baud)
+        .timeout(Duration::from_millis(20))
+        .open()
+    {
+        Ok(p) => Ok(p),
+        Err(e) => Err(match e.kind() {
+            serialport::ErrorKind::NoDevice => LinkError::PortBusy { port },
+            serialport::ErrorKind::Io(io::ErrorKind::NotFound) => LinkError::PortMissing {
+                port,
+                available: Vec::new(),
+            },
+            serialport::ErrorKind::Io(io::ErrorKind::PermissionDenied) => {
+                LinkError::PortPermission {
+                    group: owning_group(Path::new(path)),
+                    port,
+                }
+            }
+            _ => LinkError::NotASerialPort {
+                port,
+                reason: e.to_string(),
+            },
+        }),
+    }
+}
+
+/// Name of the group owning `path` (read from /etc/group).
+fn owning_group(path: &Path) -> Option<String> {
+    use std::os::unix::fs::MetadataExt;
+    let gid = std::fs::metadata(path).ok()?.gid();
+    let groups = std::fs::read_to_string("/etc/group").ok()?;
+    groups.lines().find_map(|l| {
+        let mut f = l.split(':');
+        let name = f.next()?;
+        let _pw = f.next()?;
+        let id: u32 = f.next()?.parse().ok()?;
+        (id == gid).then(|| name.to_string())
+    })
+}
+
+/// Timeouts, retries and reconnect backoff.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct LinkOptions {
+    /// Wait for each answer, per try.
+    pub timeout: Duration,
+    /// Tries per request (at least 1).
+    pub tries: u32,
+    /// First reconnect delay; doubles up to `backoff_max`.
+    pub backoff_min: Duration,
+    /// Longest reconnect delay.
+    pub backoff_max: Duration,
+}
+
+impl Default for LinkOptions {
+    fn default() -> Self {
+        Self {
+            timeout: Duration::from_millis(400),
+            tries: 3,
+            backoff_min: Duration::from_millis(100),
+            backoff_max: Duration::from_secs(5),
+        }
+    }
+}
+
+/// Counters a user sees as "link errors".
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize)]
+pub struct LinkStats {
+    /// Frames decoded.
+    pub frames: u32,
+    /// Damaged frames (all kinds: COBS, CRC, length, version, undecodable).
+    pub damaged: u32,
+    /// Requests retried after a timeout.
+    pub retries: u32,
+    /// Reconnects after the port vanished.
+    pub reconnects: u32,
+}
+
+/// A short name of a request for messages.
+pub fn request_name(r: &Request) -> &'static str {
+    match r {
+        Request::Identify { .. } => "Identify",
+        Request::Status => "Status",
+        Request::Measure => "Measure",
+        Request::StartStream { .. } => "StartStream",
+        Request::StopStream => "StopStream",
+        Request::ReadCellCal => "ReadCellCal",
+        Request::WriteCellCal(_) => "WriteCellCal",
+        Request::ReadProductCal { .. } => "ReadProductCal",
+        Request::WriteProductCal { .. } => "WriteProductCal",
+        Request::SelectProduct { .. } => "SelectProduct",
+        Request::ListProducts => "ListProducts",
+        Request::ReferenceCheck => "ReferenceCheck",
+        Request::ReadLog { .. } => "ReadLog",
+        Request::ReadEvents { .. } => "ReadEvents",
+        Request::SetClock { .. } => "SetClock",
+        Request::SelfTest => "SelfTest",
+        Request::Reboot => "Reboot",
+        Request::SetOutput(_) => "SetOutput",
+    }
+}
+
+/// One connection to one device.
+pub struct Link {
+    opener: Box<dyn Opener>,
+    port: Option<Box<dyn Port>>,
+    decoder: FrameDecoder<DeviceFrame>,
+    frames: VecDeque<DeviceFrame>,
+    next_id: u16,
+    opts: LinkOptions,
+    identity: Option<Identity>,
+    bad_version: Option<Version>,
+    stats: LinkStats,
+    base: DecoderStats,
+}
+
+impl std::fmt::Debug for Link {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Link")
+            .field("port", &self.opener.name())
+            .field("connected", &self.port.is_some())
+            .field("stats", &self.stats)
+            .finish()
+    }
+}
+
+impl Link {
+    /// Opens the port and runs the handshake.
+    ///
+    /// # Errors
+    /// Any [`LinkError`] of opening or the handshake.
+    pub fn connect(opener: Box<dyn Opener>, opts: LinkOptions) -> Result<Self, LinkError> {
+        let mut link = Link {
+            opener,
+            port: None,
+            decoder: FrameDecoder::new(),
+            frames: VecDeque::new(),
+            next_id: 1,
+            opts,
+            identity: None,
+            bad_version: None,
+            stats: LinkStats::default(),
+            base: DecoderStats::default(),
+        };
+        link.open_and_handshake()?;
+        Ok(link)
+    }
+
+    /// Opens a serial port at `baud` and runs the handshake.
+    ///
+    /// # Errors
+    /// As [`Link::connect`].
+    pub fn serial(path: &str, baud: u32, opts: LinkOptions) -> Result<Self, LinkError> {
+        Self::connect(
+            Box::new(SerialOpener {
+                path: path.into(),
+                baud,
+            }),
+            opts,
+        )
+    }
+
+    /// The device's identity from the last handshake.
+    pub fn identity(&self) -> Option<&Identity> {
+        self.identity.as_ref()
+    }
+
+    /// The device serial from the last handshake ("" before one).
+    pub fn serial_number(&self) -> &str {
+        self.identity.as_ref().map_or("", |i| i.serial.as_str())
+    }
+
+    /// The port's name.
+    pub fn port_name(&self) -> &str {
+        self.opener.name()
+    }
+
+    /// Link counters so far (decoder counters summed over reconnects).
+    pub fn stats(&self) -> LinkStats {
+        let d = self.decoder.stats();
+        LinkStats {
+            frames: self.base.frames + d.frames,
+            damaged: self.base.errors() + d.errors(),
+            ..self.stats
+        }
+    }
+
+    /// Whether the port is open.
+    pub fn is_connected(&self) -> bool {
+        self.port.is_some()
+    }
+
+    fn open_and_handshake(&mut self) -> Result<Identity, LinkError> {
+        let mut port = self.opener.open()?;
+        // Drop stale bytes, then lead with a delimiter so the device drops
+        // any partial frame it holds.
+        let name = self.opener.name().to_string();
+        let io_err = |e: io::Error| LinkError::Disconnected {
+            port: name.clone(),
+            reason: e.to_string(),
+        };
+        port.discard_input().map_err(io_err)?;
+        port.write_all(&[0]).map_err(io_err)?;
+        let d = self.decoder.stats();
+        self.base = DecoderStats {
+            frames: self.base.frames + d.frames,
+            bad_cobs: self.base.bad_cobs + d.bad_cobs,
+            truncated: self.base.truncated + d.truncated,
+            too_long: self.base.too_long + d.too_long,
+            bad_crc: self.base.bad_crc + d.bad_crc,
+            bad_version: self.base.bad_version + d.bad_version,
+            undecodable: self.base.undecodable + d.undecodable,
+            dropped_bytes: self.base.dropped_bytes + d.dropped_bytes,
+        };
+        self.decoder = FrameDecoder::new();
+        self.frames.clear();
+        self.port = Some(port);
+        self.bad_version = None;
+        let resp = self.request_inner(
+            Request::Identify {
+                host: PROTOCOL_VERSION,
+            },
+            None,
+        );
+        let resp = match resp {
+            Err(LinkError::Refused { code, .. })
+                if code == ErrorCode::UnsupportedVersion.code() =>
+            {
+                return Err(LinkError::Incompatible {
+                    port: self.opener.name().into(),
+                    ours: PROTOCOL_VERSION,
+                    theirs: self.bad_version.unwrap_or(Version { major: 0, minor: 0 }),
+                })
+            }
+            r => r?,
+        };
+        match resp {
+            Response::Identity(id) => {
+                PROTOCOL_VERSION
+                    .check_compatible(id.protocol)
+                    .map_err(|m| LinkError::Incompatible {
+                        port: self.opener.name().into(),
+                        ours: m.ours,
+                        theirs: m.theirs,
+                    })?;
+                self.identity = Some(id.clone());
+                Ok(id)
+            }
+            other => Err(LinkError::Unexpected {
+                request: "Identify",
+                got: format!("{other:?}"),
+            }),
+        }
+    }
+
+    /// Closes the port and opens it again (with backoff) until the
+    /// handshake succeeds or `stop` is set. The device must keep its serial.
+    ///
+    /// # Errors
+    /// [`LinkError::Stopped`], or a non-transient error (permission, version).
+    pub fn reconnect(&mut self, stop: &AtomicBool) -> Result<Identity, LinkError> {
+        self.port = None;
+        let mut delay = self.opts.backoff_min;
+        loop {
+            if stop.load(Ordering::Relaxed) {
+                return Err(LinkError::Stopped);
+            }
+            match self.open_and_handshake() {
+                Ok(id) => {
+                    self.stats.reconnects += 1;
+                    return Ok(id);
+                }
+                Err(e) if e.is_transient() || matches!(e, LinkError::Garbled { .. }) => {
+                    self.port = None;
+                }
+                Err(e) => return Err(e),
+            }
+            let until = Instant::now() + delay;
+            while Instant::now() < until {
+                if stop.load(Ordering::Relaxed) {
+                    return Err(LinkError::Stopped);
+                }
+                std::thread::sleep(Duration::from_millis(20));
+            }
+            delay = (delay * 2).min(self.opts.backoff_max);
+        }
+    }
+
+    fn send(&mut self, frame: &HostFrame) -> Result<(), LinkError> {
+        let mut buf = [0u8; MAX_FRAME_LEN];
+        let n = frame::encode(frame, &mut buf).map_err(|e| LinkError::Unexpected {
+            request: request_name(&frame.request),
+            got: format!("cannot encode: {e}"),
+        })?;
+        let name = self.opener.name().to_string();
+        let port = self.port.as_mut().ok_or_else(|| LinkError::Disconnected {
+            port: name.clone(),
+            reason: "not connected".into(),
+        })?;
+        if let Err(e) = port.write_all(&buf[..n]) {
+            self.port = None;
+            return Err(LinkError::Disconnected {
+                port: name,
+                reason: e.to_string(),
+            });
+        }
+        Ok(())
+    }
+
+    /// Reads one chunk (waiting at most `timeout`) and decodes it.
+    fn fill(&mut self, timeout: Duration) -> Result<(), LinkError> {
+        let name = self.opener.name().to_string();
+        let port = self.port.as_mut().ok_or_else(|| LinkError::Disconnected {
+            port: name.clone(),
+            reason: "not connected".into(),
+        })?;
+        let mut buf = [0u8; 4096];
+        let n = match port.read_some(&mut buf, timeout) {
+            Ok(n) => n,
+            Err(e) => {
+                self.port = None;
+                return Err(LinkError::Disconnected {
+                    port: name,
+                    reason: e.to_string(),
+                });
+            }
+        };
+        for r in self.decoder.push(&buf[..n]) {
+            match r {
+                Ok(f) => self.frames.push_back(f),
+                Err(FrameError::UnsupportedVersion(v)) => self.bad_version = Some(v),
+                Err(_) => {}
+            }
+        }
+        Ok(())
+    }
+
+    fn take_answer(&mut self, id: u16) -> Option<Result<Response, (u16, String)>> {
+        let i = self.frames.iter().position(|f| match f {
+            DeviceFrame::Response { id: r, .. } | DeviceFrame::Error { id: r, .. } => *r == id,
+            _ => false,
+        })?;
+        match self.frames.remove(i)? {
+            DeviceFrame::Response { response, .. } => Some(Ok(response)),
+            DeviceFrame::Error { code, reason, .. } => Some(Err((code.code(), reason.to_string()))),
+            _ => None,
+        }
+    }
+
+    /// Sends `request` and waits for its answer, retrying after a timeout.
+    /// Streamed readings and events that arrive meanwhile are kept for
+    /// [`Link::next_frame`].
+    ///
+    /// # Errors
+    /// [`LinkError::NoAnswer`], [`LinkError::Garbled`] (only damaged frames
+    /// came), [`LinkError::Refused`], [`LinkError::Disconnected`].
+    pub fn request(&mut self, request: Request) -> Result<Response, LinkError> {
+        self.request_inner(request, None)
+    }
+
+    /// Sends a request that changes the device, signed with the device key
+    /// (HMAC, `fringe_protocol::auth`); the counter is one above the
+    /// device's stored one (read with a Status request first).
+    ///
+    /// # Errors
+    /// As [`Link::request`].
+    pub fn request_signed(&mut self, request: Request, key: &Key) -> Result<Response, LinkError> {
+        let counter = match self.request(Request::Status)? {
+            Response::Status(s) => s.write_counter.wrapping_add(1),
+            other => {
+                return Err(LinkError::Unexpected {
+                    request: "Status",
+                    got: format!("{other:?}"),
+                })
+            }
+        };
+        let serial = self.serial_number().to_string();
+        let auth = fringe_protocol::auth::sign(key, &serial, counter, &request);
+        self.request_inner(request, auth)
+    }
+
+    fn request_inner(
+        &mut self,
+        request: Request,
+        auth: Option<fringe_protocol::Auth>,
+    ) -> Result<Response, LinkError> {
+        let name = request_name(&request);
+        let tries = self.opts.tries.max(1);
+        let errors_before = self.stats().damaged;
+        let frames_before = self.stats().frames;
+        for attempt in 0..tries {
+            let id = self.next_id;
+            self.next_id = self.next_id.wrapping_add(1).max(1);
+            self.send(&HostFrame {
+                id,
+                auth,
+                request: request.clone(),
+            })?;
+            let deadline = Instant::now() + self.opts.timeout;
+            loop {
+                match self.take_answer(id) {
+                    Some(Ok(r)) => return Ok(r),
+                    Some(Err((code, reason))) => {
+                        if code == ErrorCode::Busy.code() && attempt + 1 < tries {
+                            std::thread::sleep(Duration::from_millis(20));
+                            break;
+                        }
+                        return Err(LinkError::Refused {
+                            request: name,
+                            code,
+                            reason,
+                        });
+                    }
+                    None => {}
+                }
+                let now = Instant::now();
+                if now >= deadline {
+                    break;
+                }
+                self.fill((deadline - now).min(Duration::from_millis(50)))?;
+            }
+            if attempt + 1 < tries {
+                self.stats.retries += 1;
+            }
+        }
+        let s = self.stats();
+        if let Some(theirs) = self.bad_version {
+            return Err(LinkError::Incompatible {
+                port: self.opener.name().into(),
+                ours: PROTOCOL_VERSION,
+                theirs,
+            });
+        }
+        if s.frames == frames_before && s.damaged > errors_before {
+            return Err(LinkError::Garbled {
+                port: self.opener.name().into(),
+                baud: self.opener.baud(),
+                errors: s.damaged - errors_before,
+            });
+        }
+        Err(LinkError::NoAnswer {
+            port: self.opener.name().into(),
+            request: name,
+            tries,
+            timeout_ms: self.opts.timeout.as_millis() as u64,
+        })
+    }
+
+    /// The next streamed reading or event, waiting at most `timeout`
+    /// (`Ok(None)` when nothing came). Stale answers are dropped.
+    ///
+    /// # Errors
+    /// [`LinkError::Disconnected`] when the port vanished.
+    pub fn next_frame(&mut self, timeout: Duration) -> Result<Option<DeviceFrame>, LinkError> {
+        let deadline = Instant::now() + timeout;
+        loop {
+            while let Some(f) = self.frames.pop_front() {
+                if matches!(f, DeviceFrame::Reading(_) | DeviceFrame::Event(_)) {
+                    return Ok(Some(f));
+                }
+            }
+            let now = Instant::now();
+            if now >= deadline {
+                return Ok(None);
+            }
+            self.fill(deadline - now)?;
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::sync::mpsc;
+
+    /// An in-memory port whose far end is a closure answering host frames.
+    struct FakePort {
+        rx: mpsc::Receiver<Vec<u8>>,
+        tx: mpsc::Sender<Vec<u8>>,
+    }
+
+    impl Port for FakePort {
+        fn read_some(&mut self, buf: &mut [u8], timeout: Duration) -> io::Result<usize> {
+            match self.rx.recv_timeout(timeout) {
+                Ok(b) => {
+                    let n = b.len().min(buf.len());
+                    buf[..n].copy_from_slice(&b[..n]);
+                    Ok(n)
+                }
+                Err(mpsc::RecvTimeoutError::Timeout) => Ok(0),
+                Err(mpsc::RecvTimeoutError::Disconnected) => {
+                    Err(io::Error::new(io::ErrorKind::BrokenPipe, "gone"))
+                }
+            }
+        }
+        fn write_all(&mut self, bytes: &[u8]) -> io::Result<()> {
+            self.tx
+                .send(bytes.to_vec())
+                .map_err(|_| io::Error::new(io::ErrorKind::BrokenPipe, "gone"))
+        }
+        fn discard_input(&mut self) -> io::Result<()> {
+            while self.rx.try_recv().is_ok() {}
+            Ok(())
+        }
+    }
+
+    type Answer = Box<dyn FnMut(&HostFrame) -> Vec<u8> + Send>;
+
+    /// Opens fake ports served by a thread running `answer`.
+    struct FakeOpener(std::sync::Arc<std::sync::Mutex<Answer>>);
+
+    impl Opener for FakeOpener {
+        fn open(&mut self) -> Result<Box<dyn Port>, LinkError> {
+            let (to_dev, dev_rx) = mpsc::channel::<Vec<u8>>();
+            let (dev_tx, from_dev) = mpsc::channel::<Vec<u8>>();
+            let answer = self.0.clone();
+            std::thread::spawn(move || {
+                let mut dec = FrameDecoder::<HostFrame>::new();
+                while let Ok(bytes) = dev_rx.recv() {
+                    let frames: Vec<_> = dec.push(&bytes).collect();
+                    for f in frames.into_iter().flatten() {
+                        let out = (answer.lock().unwrap())(&f);
+                        if !out.is_empty() && dev_tx.send(out).is_err() {
+                            return;
+                        }
+                    }
+                }
+            });
+            Ok(Box::new(FakePort {
+                rx: from_dev,
+                tx: to_dev,
+            }))
+        }
+        fn name(&self) -> &str {
+            "fake0"
+        }
+        fn baud(&self) -> u32 {
+            115_200
+        }
+    }
+
+    fn identity(protocol: Version) -> Identity {
+        Identity {
+            serial: fringe_protocol::short_string("HGM-L2-0001"),
+            firmware: [0, 1, 0],
+            protocol,
+            capabilities: Default::default(),
+            boot: 1,
+            freqs_hz: [1e6, 20e6],
+        }
+    }
+
+    fn enc(f: &DeviceFrame) -> Vec<u8> {
+        frame::encode_vec(f).unwrap().to_vec()
+    }
+
+    fn fake(answer: impl FnMut(&HostFrame) -> Vec<u8> + Send + 'static) -> Box<dyn Opener> {
+        Box::new(FakeOpener(std::sync::Arc::new(std::sync::Mutex::new(
+            Box::new(answer),
+        ))))
+    }
+
+    fn quick() -> LinkOptions {
+        LinkOptions {
+            timeout: Duration::from_millis(60),
+            tries: 3,
+            backoff_min: Duration::from_millis(5),
+            backoff_max: Duration::from_millis(20),
+        }
+    }
+
+    #[test]
+    fn handshake_then_request_with_retry_after_a_lost_answer() {
+        let mut status_seen = 0;
+        let link = Link::connect(
+            fake(move |f| match &f.request {
+                Request::Identify { .. } => enc(&DeviceFrame::Response {
+                    id: f.id,
+                    response: Response::Identity(identity(PROTOCOL_VERSION)),
+                }),
+                Request::StopStream => {
+                    status_seen += 1;
+                    // The first answer is lost on the line.
+                    if status_seen == 1 {
+                        Vec::new()
+                    } else {
+                        enc(&DeviceFrame::Response {
+                            id: f.id,
+                            response: Response::Ack,
+                        })
+                    }
+                }
+                _ => Vec::new(),
+            }),
+            quick(),
+        );
+        let mut link = link.unwrap();
+        assert_eq!(link.serial_number(), "HGM-L2-0001");
+        assert_eq!(link.request(Request::StopStream).unwrap(), Response::Ack);
+        assert_eq!(link.stats().retries, 1);
+    }
+
+    #[test]
+    fn major_mismatch_is_refused_with_both_versions() {
+        let e = Link::connect(
+            fake(|f| {
+                enc(&DeviceFrame::Response {
+                    id: f.id,
+                    response: Response::Identity(identity(Version { major: 2, minor: 1 })),
+                })
+            }),
+            quick(),
+        )
+        .unwrap_err();
+        assert!(matches!(e, LinkError::Incompatible { .. }), "{e:?}");
+        assert!(e.to_string().contains("2.1") && e.to_string().contains("update fringe"));
+        assert_eq!(e.exit_code(), ExitCode::Incompatible);
+    }
+
+    #[test]
+    fn a_frame_header_of_another_major_is_reported_as_incompatible() {
+        let e = Link::connect(
+            fake(|f| {
+                let mut buf = [0u8; MAX_FRAME_LEN];
+                let n = frame::encode_with_version(
+                    &DeviceFrame::Response {
+                        id: f.id,
+                        response: Response::Ack,
+                    },
+                    Version { major: 3, minor: 0 },
+                    &mut buf,
+                )
+                .unwrap();
+                buf[..n].to_vec()
+            }),
+            quick(),
+        )
+        .unwrap_err();
+        assert!(
+            matches!(
+                e,
+                LinkError::Incompatible {
+                    theirs: Version { major: 3, .. },
+                    ..
+                }
+            ),
+            "{e:?}"
+        );
+    }
+
+    #[test]
+    fn only_garbage_means_wrong_baud_and_silence_means_no_answer() {
+        let e = Link::connect(fake(|_| vec![0x55, 0x13, 0x99, 0x00]), quick()).unwrap_err();
+        assert!(matches!(e, LinkError::Garbled { errors: 3, .. }), "{e:?}");
+        assert_eq!(e.exit_code(), ExitCode::Garbled);
+        let e = Link::connect(fake(|_| Vec::new()), quick()).unwrap_err();
+        assert!(matches!(e, LinkError::NoAnswer { tries: 3, .. }), "{e:?}");
+    }
+
+    #[test]
+    fn refusal_carries_code_and_reason() {
+        let mut link = Link::connect(
+            fake(|f| match &f.request {
+                Request::Identify { .. } => enc(&DeviceFrame::Response {
+                    id: f.id,
+                    response: Response::Identity(identity(PROTOCOL_VERSION)),
+                }),
+                _ => enc(&DeviceFrame::Error {
+                    id: f.id,
+                    code: ErrorCode::OutOfRange,
+                    reason: fringe_protocol::short_string("period below 10 ms"),
+                }),
+            }),
+            quick(),
+        )
+        .unwrap();
+        let e = link
+            .request(Request::StartStream { period_ms: 1 })
+            .unwrap_err();
+        assert_eq!(
+            e.to_string(),
+            "the device refused StartStream: period below 10 ms (error code 2)"
+        );
+    }
+
+    #[test]
+    fn missing_port_lists_what_exists() {
+        let e = open_serial("/dev/fringe-no-such-port", 115_200).unwrap_err();
+        assert!(matches!(e, LinkError::PortMissing { .. }));
+        assert_eq!(e.exit_code(), ExitCode::PortMissing);
+        let e = open_serial("/etc/hostname", 115_200).unwrap_err();
+        assert!(matches!(e, LinkError::NotASerialPort { .. }), "{e:?}");
+    }
+}
