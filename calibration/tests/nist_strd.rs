@@ -365,3 +365,61 @@ fn boxbod_both_starts() {
 fn rat43_both_starts() {
     check("Rat43", rat43, rat43_grad, &[1, 2]);
 }
+
+/// Longley (NIST StRD linear regression, higher difficulty: six nearly
+/// collinear regressors; Longley, "An appraisal of least squares programs
+/// for the electronic computer from the viewpoint of the user", JASA 62,
+/// 819-841, 1967). The file is not among the StRD copies in
+/// `tests/data/nist-strd/`; the 16 observations and the certified values
+/// below are transcribed from public copies of NIST's `Longley.dat` (several
+/// independent ones agree). A single wrong datum would move the fit far from
+/// the certified values, so reaching them checks the transcription too.
+#[test]
+fn longley_linear_ill_conditioned() {
+    // y, x1 .. x6
+    const DATA: [[f64; 7]; 16] = [
+        [60323.0, 83.0, 234289.0, 2356.0, 1590.0, 107608.0, 1947.0],
+        [61122.0, 88.5, 259426.0, 2325.0, 1456.0, 108632.0, 1948.0],
+        [60171.0, 88.2, 258054.0, 3682.0, 1616.0, 109773.0, 1949.0],
+        [61187.0, 89.5, 284599.0, 3351.0, 1650.0, 110929.0, 1950.0],
+        [63221.0, 96.2, 328975.0, 2099.0, 3099.0, 112075.0, 1951.0],
+        [63639.0, 98.1, 346999.0, 1932.0, 3594.0, 113270.0, 1952.0],
+        [64989.0, 99.0, 365385.0, 1870.0, 3547.0, 115094.0, 1953.0],
+        [63761.0, 100.0, 363112.0, 3578.0, 3350.0, 116219.0, 1954.0],
+        [66019.0, 101.2, 397469.0, 2904.0, 3048.0, 117388.0, 1955.0],
+        [67857.0, 104.6, 419180.0, 2822.0, 2857.0, 118734.0, 1956.0],
+        [68169.0, 108.4, 442769.0, 2936.0, 2798.0, 120445.0, 1957.0],
+        [66513.0, 110.8, 444546.0, 4681.0, 2637.0, 121950.0, 1958.0],
+        [68655.0, 112.6, 482704.0, 3813.0, 2552.0, 123366.0, 1959.0],
+        [69564.0, 114.2, 502601.0, 3931.0, 2514.0, 125368.0, 1960.0],
+        [69331.0, 115.7, 518173.0, 4806.0, 2572.0, 127852.0, 1961.0],
+        [70551.0, 116.9, 554894.0, 4007.0, 2827.0, 130081.0, 1962.0],
+    ];
+    // Certified estimate and standard deviation of B0 .. B6.
+    const CERT: [[f64; 2]; 7] = [
+        [-3482258.63459582, 890420.383607373],
+        [15.0618722713733, 84.9149257747669],
+        [-0.358191792925910e-01, 0.334910077722432e-01],
+        [-2.02022980381683, 0.488399681651699],
+        [-1.03322686717359, 0.214274163161675],
+        [-0.511041056535807e-01, 0.226073200069370],
+        [1829.15146461355, 455.478499142212],
+    ];
+    let design = nalgebra::DMatrix::from_fn(16, 7, |i, j| if j == 0 { 1.0 } else { DATA[i][j] });
+    let y: Vec<f64> = DATA.iter().map(|r| r[0]).collect();
+    let fit = fit_linear(&design, &y, None).unwrap();
+    let mut worst = f64::INFINITY;
+    for (j, c) in CERT.iter().enumerate() {
+        let (a, b) = (lre(fit.coef[j], c[0]), lre(fit.std_err[j], c[1]));
+        println!("Longley B{j}: LRE estimate {a:.1}, standard deviation {b:.1}");
+        worst = worst.min(a).min(b);
+    }
+    let sd = lre(fit.residual_sd, 304.854073561965);
+    let r2 = lre(fit.r_squared, 0.995479004577296);
+    println!(
+        "Longley residual SD LRE {sd:.1}, R^2 LRE {r2:.1}, condition {:.3e}",
+        fit.condition
+    );
+    worst = worst.min(sd).min(r2);
+    assert!(worst >= 10.0, "Longley: worst LRE {worst:.1} < 10");
+}
