@@ -39,9 +39,7 @@ use super::law;
 use super::linear::{fit_linear, LinearFit};
 use super::FitError;
 use crate::estimate::{estimate, Channel, EstimateInput, Failure};
-use crate::invert::{
-    invert, InvertError, InvertOptions, MaterialParams, Observation, RelaxationLaw,
-};
+use crate::invert::{invert, InvertOptions, MaterialParams, Observation, RelaxationLaw};
 use crate::mixing::ProductMixture;
 use crate::moisture::Basis;
 use crate::product::{
@@ -151,13 +149,6 @@ pub enum ProductFitError {
         /// What is required.
         reason: &'static str,
     },
-    /// A sample's inversion fails at the fitted relaxation law.
-    Inversion {
-        /// Sample id.
-        id: String,
-        /// The inversion's error.
-        error: InvertError,
-    },
     /// The device-side estimate gives no moisture for a sample.
     Estimate {
         /// Sample id.
@@ -219,10 +210,6 @@ impl core::fmt::Display for ProductFitError {
                 "sample {id:?}: frequency {got_hz} Hz differs from the first sample's {expected_hz} Hz (all samples must use the same two frequencies)"
             ),
             E::BadOption { name, reason } => write!(f, "option {name}: {reason}"),
-            E::Inversion { id, error } => write!(
-                f,
-                "sample {id:?}: relaxation inversion failed at the fitted law: {error}"
-            ),
             E::Estimate { id, failure } => {
                 write!(f, "sample {id:?}: the device estimate gives no moisture: {failure}")
             }
@@ -1222,8 +1209,8 @@ fn check_relaxation_options(opts: &RelaxationOptions) -> Result<(), ProductFitEr
 ///
 /// # Errors
 /// [`ProductFitError`]: refused samples (named by id and field), bad
-/// options, a failed fitting stage, a sample whose inversion fails at the
-/// fitted law, or a sample the device estimate cannot evaluate.
+/// options, a failed fitting stage, or a sample the device estimate cannot
+/// evaluate (its inversion failing at the fitted law included).
 pub fn fit_relaxation(
     samples: &[Sample],
     opts: &RelaxationOptions,
