@@ -39,6 +39,19 @@ pub enum Command {
         after_help = "Example:\n  fringe status --port /dev/ttyUSB0\n  fringe --config line2.toml status --json"
     )]
     Status(StatusArgs),
+    /// Run a simulated device (firmware core, simulated front end) on a pseudo-terminal until stopped.
+    #[command(
+        after_help = "Example:\n  fringe sim --scenario scenarios/harrowgate-line2-wheat.toml --link /tmp/fringe-line2\n  (then, in another terminal: fringe monitor --port /tmp/fringe-line2 --db line2.db)"
+    )]
+    Sim(SimArgs),
+    /// Stream readings, show them live and store every one (gaps are backfilled from the device log).
+    #[command(
+        after_help = "Example:\n  fringe monitor --port /dev/ttyUSB0 --db line2.db\n  fringe --config line2.toml monitor\nCtrl-C stops and commits what arrived."
+    )]
+    Monitor(MonitorArgs),
+    /// Read the device's stored log and events from the last stored ones on (idempotent).
+    #[command(after_help = "Example:\n  fringe pull --port /dev/ttyUSB0 --db line2.db")]
+    Pull(PullArgs),
     /// Run the whole job on simulated devices (not built yet: prints what is missing).
     Demo,
 }
@@ -75,6 +88,63 @@ pub struct StatusArgs {
     #[command(flatten)]
     pub port: PortArgs,
     /// Print JSON instead of text.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// `fringe sim`.
+#[derive(Debug, Clone, Args)]
+pub struct SimArgs {
+    /// Scenario file (TOML; see host/src/sim/scenario.rs and scenarios/).
+    #[arg(long, short = 's', value_name = "FILE")]
+    pub scenario: PathBuf,
+    /// Keep a symlink to the current pseudo-terminal here (it follows reconnects).
+    #[arg(long, value_name = "PATH")]
+    pub link: Option<PathBuf>,
+    /// Append every reading the device sends (before line faults) to this JSON-lines file.
+    #[arg(long, value_name = "FILE")]
+    pub record: Option<PathBuf>,
+    /// Stop after this many seconds (default: run until Ctrl-C).
+    #[arg(long, value_name = "S")]
+    pub duration_s: Option<f64>,
+}
+
+/// `fringe monitor`.
+#[derive(Debug, Clone, Args)]
+pub struct MonitorArgs {
+    /// The device.
+    #[command(flatten)]
+    pub port: PortArgs,
+    /// Database file (created if missing) [default: `db` in the line file].
+    #[arg(long, short = 'd', value_name = "FILE")]
+    pub db: Option<PathBuf>,
+    /// Streaming period, ms of device time (the device refuses < 100).
+    #[arg(long, value_name = "MS", default_value_t = 1000, value_parser = clap::value_parser!(u32).range(1..=86_400_000))]
+    pub period_ms: u32,
+    /// Stop after this many streamed readings.
+    #[arg(long, value_name = "N")]
+    pub count: Option<u64>,
+    /// Stop after this many seconds.
+    #[arg(long, value_name = "S")]
+    pub duration_s: Option<f64>,
+    /// No live view and no per-reading lines (errors and notices still go to stderr).
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+    /// Print the end-of-run summary as JSON on stdout.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// `fringe pull`.
+#[derive(Debug, Clone, Args)]
+pub struct PullArgs {
+    /// The device.
+    #[command(flatten)]
+    pub port: PortArgs,
+    /// Database file (created if missing) [default: `db` in the line file].
+    #[arg(long, short = 'd', value_name = "FILE")]
+    pub db: Option<PathBuf>,
+    /// Print the summary as JSON.
     #[arg(long)]
     pub json: bool,
 }

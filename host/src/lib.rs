@@ -6,6 +6,7 @@
 //! - [`cli`]: the command line (clap derive, no I/O);
 //! - [`config`]: the line configuration file and TOML loading;
 //! - [`link`]: a connection to a device (handshake, requests, reconnect);
+//! - [`sim`]: the simulated device on a pseudo-terminal, scenario files;
 //! - [`store`]: the durable log (SQLite, append-only, hash chain);
 //! - [`drift`]: drift monitors; [`samples`]: reference-sample files;
 //! - [`cmd`]: the command bodies; [`exit`]: the exit codes.
@@ -23,11 +24,26 @@ pub mod plots;
 pub mod product_file;
 pub mod report;
 pub mod samples;
+pub mod sim;
 pub mod store;
 pub mod timefmt;
 
 use cli::{Cli, Command};
 use config::LineConfig;
+
+/// A flag set by Ctrl-C (SIGINT) or SIGTERM, for commands that stop cleanly.
+///
+/// # Errors
+/// If the handler cannot be installed.
+pub fn stop_flag() -> anyhow::Result<std::sync::Arc<std::sync::atomic::AtomicBool>> {
+    use std::sync::atomic::{AtomicBool, Ordering};
+    use std::sync::Arc;
+    let flag = Arc::new(AtomicBool::new(false));
+    let f = flag.clone();
+    ctrlc::set_handler(move || f.store(true, Ordering::Relaxed))
+        .map_err(|e| anyhow::anyhow!("cannot install the Ctrl-C handler: {e}"))?;
+    Ok(flag)
+}
 
 /// Runs one parsed command line.
 ///
@@ -41,6 +57,9 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
     match &cli.command {
         Command::Identify(a) => cmd::device::identify(a, &cfg),
         Command::Status(a) => cmd::device::status(a, &cfg),
+        Command::Sim(a) => cmd::sim::sim(a, &*stop_flag()?),
+        Command::Monitor(a) => cmd::monitor::monitor(a, &cfg, &*stop_flag()?),
+        Command::Pull(a) => cmd::pull::pull(a, &cfg),
         Command::Demo => anyhow::bail!(
             "fringe demo: placeholder. The simulated device and the calibration workflow are not built yet; see the open issues."
         ),

@@ -69,7 +69,7 @@ pub enum LinkError {
         reason: String,
     },
     /// Nothing came back.
-    #[error("no answer from the device on {port} to {request} after {tries} tries of {timeout_ms} ms: check the port name, that the device is powered, and the cable")]
+    #[error("no answer from the device on {port} to {request} after {tries} tries of {timeout_ms} ms: check the port name, the baud rate (--baud), that the device is powered, and the cable")]
     NoAnswer {
         /// Port path.
         port: String,

@@ -76,12 +76,15 @@ pub fn identify(args: &IdentifyArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     Ok(())
 }
 
+/// 2000-01-01 in Unix ms: a device time below it counts from boot.
+const CLOCK_SET_AFTER_MS: u64 = 946_684_800_000;
+
 /// The status as JSON.
 pub fn status_json(id: &Identity, s: &Status, host_link_errors: u32) -> serde_json::Value {
     json!({
         "serial": id.serial.as_str(),
         "time_ms": s.time_ms,
-        "clock_set": !s.last_flags.contains(Flags::CLOCK_UNSET),
+        "clock_set": !s.last_flags.contains(Flags::CLOCK_UNSET) && s.time_ms >= CLOCK_SET_AFTER_MS,
         "uptime_ms": s.uptime_ms,
         "boot": s.boot,
         "next_seq": s.next_seq.to_string(),
@@ -125,7 +128,9 @@ pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         out::json(&status_json(id, &s, host_errors))?;
         return Ok(());
     }
-    let clock = if s.last_flags.contains(Flags::CLOCK_UNSET) {
+    // Before its clock is set a device counts from boot (no flag tells
+    // until the first reading): anything before 2000 is such a count.
+    let clock = if s.last_flags.contains(Flags::CLOCK_UNSET) || s.time_ms < CLOCK_SET_AFTER_MS {
         format!("{} since boot (clock not set)", out::duration_ms(s.time_ms))
     } else {
         crate::timefmt::fmt_time(s.time_ms as i64)

@@ -3,6 +3,10 @@
 //! printed and mapped to an exit code by `main`).
 
 pub mod device;
+pub mod ingest;
+pub mod monitor;
+pub mod pull;
+pub mod sim;
 
 use std::time::Duration;
 

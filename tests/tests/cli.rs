@@ -1,0 +1,198 @@
+//! The command line: help for every command, and bad input of every kind
+//! gives its documented message and exit code (README "Exit codes").
+
+use std::time::Duration;
+
+use clap::CommandFactory;
+use fringe_tests::*;
+
+const LIMIT: Duration = Duration::from_secs(60);
+
+#[test]
+fn every_command_has_help() {
+    let cmd = fringe_host::cli::Cli::command();
+    let names: Vec<String> = cmd
+        .get_subcommands()
+        .map(|c| c.get_name().to_string())
+        .collect();
+    assert!(names.len() >= 5, "{names:?}");
+    for name in names {
+        let o = run(&mut fringe(&[&name, "--help"]), LIMIT);
+        assert_eq!(o.code, 0, "{name} --help: {}", o.stderr);
+        assert!(
+            o.stdout.contains(&format!("Usage: fringe {name}")),
+            "{name} --help:\n{}",
+            o.stdout
+        );
+    }
+    let o = run(&mut fringe(&["--help"]), LIMIT);
+    assert!(
+        o.code == 0 && o.stdout.contains("Exit codes"),
+        "{}",
+        o.stdout
+    );
+}
+
+#[test]
+fn bad_arguments_are_usage_errors() {
+    let o = run(&mut fringe(&["monitor", "--baud", "12"]), LIMIT);
+    assert_fails(&o, 2, &["--baud", "12"]);
+    let o = run(&mut fringe(&["frobnicate"]), LIMIT);
+    assert_fails(&o, 2, &["frobnicate"]);
+    // No port anywhere: a file/config problem, named with the flag and key.
+    let o = run(&mut fringe(&["identify"]), LIMIT);
+    assert_fails(&o, 3, &["--port", "`port`"]);
+}
+
+#[test]
+fn bad_files_name_file_line_and_field() {
+    let dir = tempfile::tempdir().unwrap();
+    let line = dir.path().join("line2.toml");
+    std::fs::write(
+        &line,
+        "port = \"/dev/ttyUSB0\"\nbaud = 115200\nalarm_high = 15\n",
+    )
+    .unwrap();
+    let o = run(
+        &mut fringe(&["--config", line.to_str().unwrap(), "status"]),
+        LIMIT,
+    );
+    assert_fails(&o, 3, &["line2.toml:3:1", "alarm_high"]);
+    let o = run(
+        &mut fringe(&["--config", "/nonexistent/line.toml", "status"]),
+        LIMIT,
+    );
+    assert_fails(&o, 3, &["cannot read", "/nonexistent/line.toml"]);
+
+    let mut spec = ScenarioSpec::clean("HGM-L2-0201", 1);
+    spec.drop_per_byte = 1.5;
+    let sc = dir.path().join("bad.toml");
+    std::fs::write(&sc, spec.toml()).unwrap();
+    let o = run(
+        &mut fringe(&["sim", "--scenario", sc.to_str().unwrap()]),
+        LIMIT,
+    );
+    assert_fails(
+        &o,
+        3,
+        &["bad.toml", "link.drop_per_byte", "1.5", "probability"],
+    );
+}
+
+#[test]
+fn missing_port_is_code_10() {
+    let o = run(
+        &mut fringe(&["identify", "--port", "/dev/fringe-nowhere"]),
+        LIMIT,
+    );
+    assert_fails(&o, 10, &["/dev/fringe-nowhere", "does not exist"]);
+}
+
+#[test]
+fn busy_port_is_code_11_and_wrong_baud_is_code_14() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0202", 2));
+    let db = sim.path("l.db");
+    let mut holder = fringe(&[
+        "monitor",
+        "--port",
+        sim.port_str(),
+        "--db",
+        db.to_str().unwrap(),
+        "--period-ms",
+        "100",
+        "--quiet",
+    ])
+    .stdout(std::process::Stdio::null())
+    .stderr(std::process::Stdio::null())
+    .spawn()
+    .unwrap();
+    // Wait until it streams (readings in the database).
+    let t0 = std::time::Instant::now();
+    while fringe_host::store::Store::open_read_only(&db)
+        .and_then(|s| s.reading_count("HGM-L2-0202"))
+        .unwrap_or(0)
+        == 0
+    {
+        assert!(
+            t0.elapsed() < Duration::from_secs(30),
+            "monitor never stored"
+        );
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    let o = run(&mut fringe(&["identify", "--port", sim.port_str()]), LIMIT);
+    assert_fails(&o, 11, &["busy"]);
+    // Killed, the monitor leaves the device streaming: at the wrong baud
+    // rate only garbage arrives.
+    holder.kill().unwrap();
+    let _ = holder.wait();
+    let o = run(
+        &mut fringe(&["identify", "--port", sim.port_str(), "--baud", "9600"]),
+        LIMIT,
+    );
+    assert_fails(&o, 14, &["garbled", "9600 baud", "baud rate"]);
+}
+
+#[test]
+fn database_problems_have_their_codes() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0203", 3));
+    let text = sim.path("notes.txt");
+    std::fs::write(
+        &text,
+        "shift notes, line 2: dryer trimmed at 06:40, nothing else",
+    )
+    .unwrap();
+    let o = run(
+        &mut fringe(&[
+            "pull",
+            "--port",
+            sim.port_str(),
+            "--db",
+            text.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 23, &["notes.txt", "not a fringe database"]);
+
+    let db = sim.path("line2.db");
+    drop(fringe_host::store::Store::open(&db).unwrap());
+    let other = rusqlite::Connection::open(&db).unwrap();
+    other.execute_batch("BEGIN IMMEDIATE").unwrap();
+    let o = run(
+        &mut fringe(&[
+            "pull",
+            "--port",
+            sim.port_str(),
+            "--db",
+            db.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 20, &["line2.db", "locked"]);
+    other.execute_batch("ROLLBACK").unwrap();
+    let o = run(
+        &mut fringe(&[
+            "pull",
+            "--port",
+            sim.port_str(),
+            "--db",
+            db.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+}
+
+#[test]
+fn a_closed_pipe_is_not_an_error() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0204", 4));
+    let mut child = fringe(&["status", "--port", sim.port_str()])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    drop(child.stdout.take());
+    let out = child.wait_with_output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(0), "{err}");
+    assert!(!err.contains("panicked"), "{err}");
+}

@@ -1,0 +1,174 @@
+//! `fringe` against `fringe sim` over a pseudo-terminal: identify, stream
+//! into a database, link faults, crash safety.
+
+use std::time::{Duration, Instant};
+
+use fringe_tests::*;
+use rand::{RngExt, SeedableRng};
+
+const LIMIT: Duration = Duration::from_secs(120);
+
+#[test]
+fn identify_and_status_in_text_and_json() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0101", 1));
+    let o = run(&mut fringe(&["identify", "--port", sim.port_str()]), LIMIT);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        o.stdout.contains("HGM-L2-0101") && o.stdout.contains("simulated"),
+        "{}",
+        o.stdout
+    );
+    let o = run(
+        &mut fringe(&["identify", "--port", sim.port_str(), "--json"]),
+        LIMIT,
+    );
+    let v: serde_json::Value = serde_json::from_str(&o.stdout).expect("identify --json");
+    assert_eq!(v["serial"], "HGM-L2-0101");
+    assert_eq!(v["protocol"], "1.0");
+    let o = run(
+        &mut fringe(&["status", "--port", sim.port_str(), "--json"]),
+        LIMIT,
+    );
+    let v: serde_json::Value = serde_json::from_str(&o.stdout).expect("status --json");
+    assert_eq!(v["boot"], 1);
+    assert!(v["last_flags"].as_array().is_some());
+    // The device key never appears in anything the simulator prints.
+    assert!(!sim.log().contains(TEST_KEY_HEX));
+}
+
+#[test]
+fn a_thousand_readings_stored_exactly_as_sent() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0102", 2));
+    let db = sim.path("line2.db");
+    let o = run(
+        &mut fringe(&[
+            "monitor",
+            "--port",
+            sim.port_str(),
+            "--db",
+            db.to_str().unwrap(),
+            "--period-ms",
+            "100",
+            "--count",
+            "1000",
+            "--json",
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let summary: serde_json::Value = serde_json::from_str(&o.stdout).expect("summary json");
+    assert_eq!(summary["streamed"], 1000);
+    let stored = stored_readings(&db, "HGM-L2-0102");
+    let n = assert_gapless(&stored, &sim.recorded(), "clean line");
+    assert!(n >= 1000, "{n}");
+    let store = fringe_host::store::Store::open_read_only(&db).unwrap();
+    assert!(store.verify_chain().unwrap().ok());
+}
+
+fn faulty_run(spec: ScenarioSpec, count: &str, ctx: &str) {
+    let sim = Sim::start(&spec);
+    let db = sim.path("line2.db");
+    let o = run(
+        &mut fringe(&[
+            "monitor",
+            "--port",
+            sim.port_str(),
+            "--db",
+            db.to_str().unwrap(),
+            "--period-ms",
+            "100",
+            "--count",
+            count,
+            "--quiet",
+            "--timeout-ms",
+            "150",
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{ctx}: {}\nsim log:\n{}", o.stderr, sim.log());
+    // Whatever the stream lost, a pull from the device log completes.
+    let o = run(
+        &mut fringe(&[
+            "pull",
+            "--port",
+            sim.port_str(),
+            "--db",
+            db.to_str().unwrap(),
+            "--json",
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{ctx}: {}", o.stderr);
+    let stored = stored_readings(&db, &spec.serial);
+    assert_gapless(&stored, &sim.recorded(), ctx);
+}
+
+#[test]
+fn dropped_flipped_and_garbage_bytes_end_gapless() {
+    let seed = seed(31);
+    let mut spec = ScenarioSpec::clean("HGM-L2-0103", seed);
+    spec.drop_per_byte = 0.0005;
+    spec.flip_per_byte = 0.0005;
+    spec.garbage_per_frame = 0.02;
+    faulty_run(spec, "400", &format!("byte faults, seed {seed}"));
+}
+
+#[test]
+fn a_disconnect_mid_stream_ends_gapless() {
+    let seed = seed(32);
+    let mut spec = ScenarioSpec::clean("HGM-L2-0104", seed);
+    // At 10x, device second 15 is 1.5 s into the run; the port is away 1 s.
+    spec.disconnects = vec![(15.0, 1.0)];
+    faulty_run(spec, "400", &format!("disconnect, seed {seed}"));
+}
+
+#[test]
+fn killed_monitor_loses_nothing_over_twenty_kills() {
+    let seed = seed(33);
+    let ctx = format!("crash test, seed {seed}");
+    let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0105", seed));
+    let db = sim.path("line2.db");
+    let t0 = Instant::now();
+    for round in 0..20 {
+        assert!(
+            t0.elapsed() < Duration::from_secs(150),
+            "{ctx}: too slow at round {round}"
+        );
+        let mut child = fringe(&[
+            "monitor",
+            "--port",
+            sim.port_str(),
+            "--db",
+            db.to_str().unwrap(),
+            "--period-ms",
+            "100",
+            "--quiet",
+        ])
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .expect("start monitor");
+        let alive_ms = rng.random_range(150..900u64);
+        std::thread::sleep(Duration::from_millis(alive_ms));
+        // SIGKILL: no chance to commit.
+        child.kill().expect("kill");
+        let _ = child.wait();
+    }
+    let o = run(
+        &mut fringe(&[
+            "pull",
+            "--port",
+            sim.port_str(),
+            "--db",
+            db.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{ctx}: {}", o.stderr);
+    let stored = stored_readings(&db, "HGM-L2-0105");
+    let n = assert_gapless(&stored, &sim.recorded(), &ctx);
+    assert!(n > 50, "{ctx}: only {n} readings");
+    let store = fringe_host::store::Store::open_read_only(&db).unwrap();
+    assert!(store.verify_chain().unwrap().ok(), "{ctx}");
+}
