@@ -969,6 +969,20 @@ mod tests {
     }
 
     #[test]
+    fn permission_message_names_the_group() {
+        // Root opens any device file, so the denial itself cannot be staged
+        // in a test run as root; the message is checked here.
+        let e = LinkError::PortPermission {
+            port: "/dev/ttyUSB0".into(),
+            group: Some("dialout".into()),
+        };
+        assert_eq!(e.exit_code(), ExitCode::PortPermission);
+        assert!(e.to_string().contains("group `dialout`"));
+        assert!(e.to_string().contains("usermod -aG dialout"));
+        assert!(owning_group(Path::new("/")).is_some());
+    }
+
+    #[test]
     fn missing_port_lists_what_exists() {
         let e = open_serial("/dev/fringe-no-such-port", 115_200).unwrap_err();
         assert!(matches!(e, LinkError::PortMissing { .. }));

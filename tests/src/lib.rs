@@ -309,6 +309,47 @@ impl Drop for Sim {
     }
 }
 
+impl Sim {
+    /// `fringe monitor` on this simulator into `db` (period 100 ms), plus `extra` flags.
+    pub fn monitor(&self, db: &Path, extra: &[&str]) -> Command {
+        let mut args = vec![
+            "monitor",
+            "--port",
+            self.port_str(),
+            "--db",
+            db.to_str().unwrap_or_default(),
+            "--period-ms",
+            "100",
+        ];
+        args.extend_from_slice(extra);
+        fringe(&args)
+    }
+
+    /// `fringe pull` from this simulator into `db`, plus `extra` flags.
+    pub fn pull(&self, db: &Path, extra: &[&str]) -> Command {
+        let mut args = vec![
+            "pull",
+            "--port",
+            self.port_str(),
+            "--db",
+            db.to_str().unwrap_or_default(),
+        ];
+        args.extend_from_slice(extra);
+        fringe(&args)
+    }
+}
+
+/// Starts `cmd` in the background with its output discarded.
+///
+/// # Panics
+/// If it cannot start.
+pub fn spawn_silent(cmd: &mut Command) -> Child {
+    cmd.stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .expect("cannot start fringe")
+}
+
 /// Every reading stored for `serial` in the database at `db`, in sequence order.
 ///
 /// # Panics

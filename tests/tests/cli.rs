@@ -92,20 +92,7 @@ fn missing_port_is_code_10() {
 fn busy_port_is_code_11_and_wrong_baud_is_code_14() {
     let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0202", 2));
     let db = sim.path("l.db");
-    let mut holder = fringe(&[
-        "monitor",
-        "--port",
-        sim.port_str(),
-        "--db",
-        db.to_str().unwrap(),
-        "--period-ms",
-        "100",
-        "--quiet",
-    ])
-    .stdout(std::process::Stdio::null())
-    .stderr(std::process::Stdio::null())
-    .spawn()
-    .unwrap();
+    let mut holder = spawn_silent(&mut sim.monitor(&db, &["--quiet"]));
     // Wait until it streams (readings in the database).
     let t0 = std::time::Instant::now();
     while fringe_host::store::Store::open_read_only(&db)
@@ -141,44 +128,17 @@ fn database_problems_have_their_codes() {
         "shift notes, line 2: dryer trimmed at 06:40, nothing else",
     )
     .unwrap();
-    let o = run(
-        &mut fringe(&[
-            "pull",
-            "--port",
-            sim.port_str(),
-            "--db",
-            text.to_str().unwrap(),
-        ]),
-        LIMIT,
-    );
+    let o = run(&mut sim.pull(&text, &[]), LIMIT);
     assert_fails(&o, 23, &["notes.txt", "not a fringe database"]);
 
     let db = sim.path("line2.db");
     drop(fringe_host::store::Store::open(&db).unwrap());
     let other = rusqlite::Connection::open(&db).unwrap();
     other.execute_batch("BEGIN IMMEDIATE").unwrap();
-    let o = run(
-        &mut fringe(&[
-            "pull",
-            "--port",
-            sim.port_str(),
-            "--db",
-            db.to_str().unwrap(),
-        ]),
-        LIMIT,
-    );
+    let o = run(&mut sim.pull(&db, &[]), LIMIT);
     assert_fails(&o, 20, &["line2.db", "locked"]);
     other.execute_batch("ROLLBACK").unwrap();
-    let o = run(
-        &mut fringe(&[
-            "pull",
-            "--port",
-            sim.port_str(),
-            "--db",
-            db.to_str().unwrap(),
-        ]),
-        LIMIT,
-    );
+    let o = run(&mut sim.pull(&db, &[]), LIMIT);
     assert_eq!(o.code, 0, "{}", o.stderr);
 }
 

@@ -40,21 +40,7 @@ fn identify_and_status_in_text_and_json() {
 fn a_thousand_readings_stored_exactly_as_sent() {
     let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0102", 2));
     let db = sim.path("line2.db");
-    let o = run(
-        &mut fringe(&[
-            "monitor",
-            "--port",
-            sim.port_str(),
-            "--db",
-            db.to_str().unwrap(),
-            "--period-ms",
-            "100",
-            "--count",
-            "1000",
-            "--json",
-        ]),
-        LIMIT,
-    );
+    let o = run(&mut sim.monitor(&db, &["--count", "1000", "--json"]), LIMIT);
     assert_eq!(o.code, 0, "{}", o.stderr);
     let summary: serde_json::Value = serde_json::from_str(&o.stdout).expect("summary json");
     assert_eq!(summary["streamed"], 1000);
@@ -63,41 +49,59 @@ fn a_thousand_readings_stored_exactly_as_sent() {
     assert!(n >= 1000, "{n}");
     let store = fringe_host::store::Store::open_read_only(&db).unwrap();
     assert!(store.verify_chain().unwrap().ok());
+    // The device's boot event came along.
+    let events = store.events("HGM-L2-0102").unwrap();
+    assert!(
+        events
+            .iter()
+            .any(|e| matches!(e.event.kind, fringe_protocol::EventKind::Boot { .. })),
+        "{events:?}"
+    );
+}
+
+#[test]
+fn ctrl_c_commits_and_exits_zero() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0106", 6));
+    let db = sim.path("line2.db");
+    let child = sim
+        .monitor(&db, &["--json"])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .expect("start monitor");
+    std::thread::sleep(Duration::from_millis(2500));
+    let status = std::process::Command::new("kill")
+        .args(["-INT", &child.id().to_string()])
+        .status()
+        .expect("kill -INT");
+    assert!(status.success());
+    let out = child.wait_with_output().expect("monitor output");
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let summary: serde_json::Value = serde_json::from_slice(&out.stdout).expect("summary");
+    let streamed = summary["streamed"].as_u64().unwrap();
+    assert!(streamed > 0, "{summary}");
+    // Everything that arrived before the interrupt is committed.
+    let stored = stored_readings(&db, "HGM-L2-0106");
+    assert_eq!(stored.len() as u64, summary["stored"].as_u64().unwrap());
+    assert!(stored.len() as u64 >= streamed);
+    assert_gapless(&stored, &sim.recorded(), "ctrl-c");
 }
 
 fn faulty_run(spec: ScenarioSpec, count: &str, ctx: &str) {
     let sim = Sim::start(&spec);
     let db = sim.path("line2.db");
     let o = run(
-        &mut fringe(&[
-            "monitor",
-            "--port",
-            sim.port_str(),
-            "--db",
-            db.to_str().unwrap(),
-            "--period-ms",
-            "100",
-            "--count",
-            count,
-            "--quiet",
-            "--timeout-ms",
-            "150",
-        ]),
+        &mut sim.monitor(&db, &["--count", count, "--quiet", "--timeout-ms", "150"]),
         LIMIT,
     );
     assert_eq!(o.code, 0, "{ctx}: {}\nsim log:\n{}", o.stderr, sim.log());
     // Whatever the stream lost, a pull from the device log completes.
-    let o = run(
-        &mut fringe(&[
-            "pull",
-            "--port",
-            sim.port_str(),
-            "--db",
-            db.to_str().unwrap(),
-            "--json",
-        ]),
-        LIMIT,
-    );
+    let o = run(&mut sim.pull(&db, &["--json"]), LIMIT);
     assert_eq!(o.code, 0, "{ctx}: {}", o.stderr);
     let stored = stored_readings(&db, &spec.serial);
     assert_gapless(&stored, &sim.recorded(), ctx);
@@ -135,36 +139,14 @@ fn killed_monitor_loses_nothing_over_twenty_kills() {
             t0.elapsed() < Duration::from_secs(150),
             "{ctx}: too slow at round {round}"
         );
-        let mut child = fringe(&[
-            "monitor",
-            "--port",
-            sim.port_str(),
-            "--db",
-            db.to_str().unwrap(),
-            "--period-ms",
-            "100",
-            "--quiet",
-        ])
-        .stdout(std::process::Stdio::null())
-        .stderr(std::process::Stdio::null())
-        .spawn()
-        .expect("start monitor");
+        let mut child = spawn_silent(&mut sim.monitor(&db, &["--quiet"]));
         let alive_ms = rng.random_range(150..900u64);
         std::thread::sleep(Duration::from_millis(alive_ms));
         // SIGKILL: no chance to commit.
         child.kill().expect("kill");
         let _ = child.wait();
     }
-    let o = run(
-        &mut fringe(&[
-            "pull",
-            "--port",
-            sim.port_str(),
-            "--db",
-            db.to_str().unwrap(),
-        ]),
-        LIMIT,
-    );
+    let o = run(&mut sim.pull(&db, &[]), LIMIT);
     assert_eq!(o.code, 0, "{ctx}: {}", o.stderr);
     let stored = stored_readings(&db, "HGM-L2-0105");
     let n = assert_gapless(&stored, &sim.recorded(), &ctx);

@@ -1,12 +1,11 @@
 //! `fringe identify` and `fringe status`.
 
 use anyhow::Context;
-use fringe_protocol::{Capabilities, Flags, Identity, Request, Response, Status};
+use fringe_protocol::{Capabilities, Flags, Identity, Status};
 use serde_json::json;
 
 use crate::cli::{IdentifyArgs, StatusArgs};
 use crate::config::LineConfig;
-use crate::link::LinkError;
 use crate::out;
 
 fn capability_names(c: Capabilities) -> Vec<&'static str> {
@@ -112,16 +111,7 @@ pub fn status_json(id: &Identity, s: &Status, host_link_errors: u32) -> serde_js
 /// Port, link or output errors.
 pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let mut link = super::connect(&args.port, cfg)?;
-    let s = match link.request(Request::Status)? {
-        Response::Status(s) => s,
-        other => {
-            return Err(LinkError::Unexpected {
-                request: "Status",
-                got: format!("{other:?}"),
-            }
-            .into())
-        }
-    };
+    let s = super::request_status(&mut link)?;
     let id = link.identity().context("no identity after the handshake")?;
     let host_errors = link.stats().damaged;
     if args.json {

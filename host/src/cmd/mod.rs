@@ -8,11 +8,15 @@ pub mod monitor;
 pub mod pull;
 pub mod sim;
 
+use std::path::{Path, PathBuf};
 use std::time::Duration;
+
+use fringe_protocol::{Identity, Request, Response, Status};
 
 use crate::cli::PortArgs;
 use crate::config::{ConfigError, LineConfig, DEFAULT_BAUD};
 use crate::link::{Link, LinkError, LinkOptions};
+use crate::store::{DeviceInfo, Store};
 
 /// Port and baud from the flags, else the line file, else the default baud.
 ///
@@ -47,4 +51,53 @@ pub fn connect(args: &PortArgs, cfg: &LineConfig) -> anyhow::Result<Link> {
     let (port, baud) = resolve_port(args, cfg)?;
     let link: Result<Link, LinkError> = Link::serial(&port, baud, link_options(args));
     Ok(link?)
+}
+
+/// Opens the database named by `--db` or the line file.
+///
+/// # Errors
+/// [`ConfigError::Missing`] when neither names one; [`crate::store::StoreError`].
+pub fn open_db(db: Option<&Path>, cfg: &LineConfig) -> anyhow::Result<(PathBuf, Store)> {
+    let db = db
+        .map(Path::to_path_buf)
+        .or_else(|| cfg.db.clone())
+        .ok_or(ConfigError::Missing {
+            what: "database",
+            flag: "--db",
+            key: "db",
+        })?;
+    let store = Store::open(&db)?;
+    Ok((db, store))
+}
+
+/// Records the device of a handshake in the store; returns its serial.
+///
+/// # Errors
+/// [`crate::store::StoreError`].
+pub fn register(store: &mut Store, id: &Identity) -> anyhow::Result<String> {
+    let serial = id.serial.to_string();
+    store.ensure_device(&DeviceInfo {
+        serial: serial.clone(),
+        firmware: Some(format!(
+            "{}.{}.{}",
+            id.firmware[0], id.firmware[1], id.firmware[2]
+        )),
+        protocol: Some(id.protocol.to_string()),
+        freqs_hz: Some(id.freqs_hz),
+    })?;
+    Ok(serial)
+}
+
+/// Asks the device for its status.
+///
+/// # Errors
+/// [`LinkError`].
+pub fn request_status(link: &mut Link) -> Result<Status, LinkError> {
+    match link.request(Request::Status)? {
+        Response::Status(s) => Ok(s),
+        other => Err(LinkError::Unexpected {
+            request: "Status",
+            got: format!("{other:?}"),
+        }),
+    }
 }

@@ -16,10 +16,10 @@ use fringe_protocol::{DeviceFrame, Flags, Reading, Request, Seq};
 
 use super::ingest::{backfill, next_seq, pull_events};
 use crate::cli::MonitorArgs;
-use crate::config::{AlarmLimits, ConfigError, LineConfig};
+use crate::config::{AlarmLimits, LineConfig};
 use crate::link::{Link, LinkError};
 use crate::out::{self, Style};
-use crate::store::{Batcher, DeviceInfo, Source, Store};
+use crate::store::{Batcher, Source, Store};
 
 /// What a monitor run did (printed at the end, `--json` for scripts).
 #[derive(Debug, Clone, Copy, Default, serde::Serialize)]
@@ -232,9 +232,13 @@ impl Monitor<'_> {
                 } else {
                     s.paint("33", &flag_words(r.flags))
                 };
+                let u = if r.moisture_pct.is_some() && r.uncertainty_pct.is_finite() {
+                    format!("{:.2}", r.uncertainty_pct)
+                } else {
+                    "--".into()
+                };
                 format!(
-                    "{m} % ±{:.2}  {:6.2} °C  {flags}{}  seq {}",
-                    r.uncertainty_pct,
+                    "{m} % ±{u}  {:6.2} °C  {flags}{}  seq {}",
                     r.temperature_c,
                     if alarms.is_empty() {
                         String::new()
@@ -298,31 +302,13 @@ impl Monitor<'_> {
 /// # Errors
 /// Port, link, database and output errors, each with its exit code.
 pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyhow::Result<()> {
-    let db = args
-        .db
-        .clone()
-        .or_else(|| cfg.db.clone())
-        .ok_or(ConfigError::Missing {
-            what: "database",
-            flag: "--db",
-            key: "db",
-        })?;
-    let mut store = Store::open(&db)?;
+    let (db, mut store) = super::open_db(args.db.as_deref(), cfg)?;
     let link = super::connect(&args.port, cfg)?;
     let id = link
         .identity()
         .cloned()
         .context("no identity after the handshake")?;
-    let serial = id.serial.to_string();
-    store.ensure_device(&DeviceInfo {
-        serial: serial.clone(),
-        firmware: Some(format!(
-            "{}.{}.{}",
-            id.firmware[0], id.firmware[1], id.firmware[2]
-        )),
-        protocol: Some(id.protocol.to_string()),
-        freqs_hz: Some(id.freqs_hz),
-    })?;
+    let serial = super::register(&mut store, &id)?;
     let last = store.last_seq(&serial)?;
     let last_event = store.last_event(&serial)?;
     let style = Style::detect();

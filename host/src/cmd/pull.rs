@@ -4,15 +4,14 @@
 use std::time::Instant;
 
 use anyhow::Context;
-use fringe_protocol::{Request, Response, Seq};
+use fringe_protocol::Seq;
 use indicatif::{ProgressBar, ProgressStyle};
 
 use super::ingest::{backfill, next_seq, pull_events};
 use crate::cli::PullArgs;
-use crate::config::{ConfigError, LineConfig};
-use crate::link::LinkError;
+use crate::config::LineConfig;
 use crate::out;
-use crate::store::{Batcher, DeviceInfo, Store};
+use crate::store::Batcher;
 
 /// What a pull did.
 #[derive(Debug, Clone, Default, serde::Serialize)]
@@ -43,31 +42,13 @@ pub struct PullSummary {
 /// Port, link, database and output errors, each with its exit code.
 pub fn pull(args: &PullArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let t0 = Instant::now();
-    let db = args
-        .db
-        .clone()
-        .or_else(|| cfg.db.clone())
-        .ok_or(ConfigError::Missing {
-            what: "database",
-            flag: "--db",
-            key: "db",
-        })?;
-    let mut store = Store::open(&db)?;
+    let (_, mut store) = super::open_db(args.db.as_deref(), cfg)?;
     let mut link = super::connect(&args.port, cfg)?;
     let id = link
         .identity()
         .cloned()
         .context("no identity after the handshake")?;
-    let serial = id.serial.to_string();
-    store.ensure_device(&DeviceInfo {
-        serial: serial.clone(),
-        firmware: Some(format!(
-            "{}.{}.{}",
-            id.firmware[0], id.firmware[1], id.firmware[2]
-        )),
-        protocol: Some(id.protocol.to_string()),
-        freqs_hz: Some(id.freqs_hz),
-    })?;
+    let serial = super::register(&mut store, &id)?;
     let from = store.last_seq(&serial)?.map_or(
         Seq {
             boot: 0,
@@ -75,16 +56,7 @@ pub fn pull(args: &PullArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         },
         next_seq,
     );
-    let status = match link.request(Request::Status)? {
-        Response::Status(s) => s,
-        other => {
-            return Err(LinkError::Unexpected {
-                request: "Status",
-                got: format!("{other:?}"),
-            }
-            .into())
-        }
-    };
+    let status = super::request_status(&mut link)?;
     // Readings to expect: all of the log if we start before it, else the
     // part of this boot after `from`.
     let expected = if from <= status.log_first {

@@ -639,8 +639,8 @@ fn reading_from_values(v: &[Value]) -> (Reading, Source) {
     (r, Source::from_i64(int_at(v, 11)))
 }
 
-/// Values of a row without its last `skip_tail` columns, for comparing a
-/// candidate duplicate with what is stored.
+/// Whether two rows' values are equal except in the `ignore` columns (for
+/// comparing a candidate duplicate with what is stored).
 fn same_record(a: &[Value], b: &[Value], ignore: &[usize]) -> bool {
     a.len() == b.len()
         && a.iter()
@@ -850,70 +850,16 @@ impl Store {
         readings: &[Reading],
         source: Source,
     ) -> Result<InsertStats, StoreError> {
-        let path = self.path.clone();
-        let mut run = || -> rusqlite::Result<InsertStats> {
-            let tx = self
-                .conn
-                .transaction_with_behavior(TransactionBehavior::Immediate)?;
-            let mut w = ChainWriter::begin(&tx)?;
-            let device = w.device_id(&DeviceInfo {
-                serial: serial.into(),
-                ..Default::default()
-            })?;
-            let mut stats = InsertStats::default();
-            {
-                let mut ins = tx.prepare_cached(
-                    "INSERT INTO readings (position, device, boot, counter, time_ms, channels, \
-                     temperature_c, moisture_pct, uncertainty_pct, flags, cell_cal, product_cal, \
-                     source, hash) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14) \
-                     ON CONFLICT (device, boot, counter) DO NOTHING",
-                )?;
-                for r in readings {
-                    let values = reading_values(serial, r, source);
-                    let (pos, hash) = w.next(Table::Readings, &values);
-                    let n = ins.execute(params![
-                        pos as i64,
-                        device,
-                        values[1],
-                        values[2],
-                        values[3],
-                        values[4],
-                        values[5],
-                        values[6],
-                        values[7],
-                        values[8],
-                        values[9],
-                        values[10],
-                        values[11],
-                        &hash[..],
-                    ])?;
-                    if n == 1 {
-                        w.advance(pos, hash);
-                        stats.inserted += 1;
-                    } else {
-                        let stored = stored_values(
-                            &tx,
-                            Table::Readings,
-                            "t.device = ?1 AND t.boot = ?2 AND t.counter = ?3",
-                            params![device, values[1], values[2]],
-                        )?;
-                        // The source column (last) may differ: same reading, other path.
-                        if stored
-                            .as_ref()
-                            .is_some_and(|s| same_record(s, &values, &[11]))
-                        {
-                            stats.duplicates += 1;
-                        } else {
-                            stats.conflicts += 1;
-                        }
-                    }
-                }
-            }
-            w.finish()?;
-            tx.commit()?;
-            Ok(stats)
-        };
-        run().map_err(|e| StoreError::from_sqlite(&path, e))
+        // A reading stored earlier by the other path (stream or log) is the
+        // same reading: the source column (11) is left out of the comparison.
+        self.insert_keyed(
+            serial,
+            Table::Readings,
+            readings.iter().map(|r| reading_values(serial, r, source)),
+            "t.device = ?1 AND t.boot = ?2 AND t.counter = ?3",
+            &[1, 2],
+            &[11],
+        )
     }
 
     /// Stores events of device `serial` in one transaction, idempotently
@@ -926,50 +872,75 @@ impl Store {
         serial: &str,
         events: &[Event],
     ) -> Result<InsertStats, StoreError> {
+        self.insert_keyed(
+            serial,
+            Table::Events,
+            events.iter().map(|e| event_values(serial, e)),
+            "t.device = ?1 AND t.number = ?2",
+            &[1],
+            &[],
+        )
+    }
+
+    /// Shared body of the keyed batch inserts: each row (values serial
+    /// first, in [`columns`] order) is inserted unless its key (the unique
+    /// index of the table; `find` selects it by device and the `key` value
+    /// columns) is stored already, in which case it counts as a duplicate
+    /// (equal but for the `ignore` columns) or a conflict.
+    fn insert_keyed(
+        &mut self,
+        serial: &str,
+        table: Table,
+        rows: impl Iterator<Item = Vec<Value>>,
+        find: &str,
+        key: &[usize],
+        ignore: &[usize],
+    ) -> Result<InsertStats, StoreError> {
         let path = self.path.clone();
-        let mut run = || -> rusqlite::Result<InsertStats> {
+        let cols = &columns(table)[1..];
+        let conflict: Vec<&str> = key.iter().map(|&i| columns(table)[i]).collect();
+        let sql = format!(
+            "INSERT INTO {} (position, device, {}, hash) VALUES ({}) ON CONFLICT (device, {}) DO NOTHING",
+            table.name(),
+            cols.join(", "),
+            (1..=cols.len() + 3)
+                .map(|i| format!("?{i}"))
+                .collect::<Vec<_>>()
+                .join(", "),
+            conflict.join(", ")
+        );
+        let run = || -> rusqlite::Result<InsertStats> {
             let tx = self
                 .conn
                 .transaction_with_behavior(TransactionBehavior::Immediate)?;
             let mut w = ChainWriter::begin(&tx)?;
-            let device = w.device_id(&DeviceInfo {
+            let device = Value::Integer(w.device_id(&DeviceInfo {
                 serial: serial.into(),
                 ..Default::default()
-            })?;
+            })?);
             let mut stats = InsertStats::default();
             {
-                let mut ins = tx.prepare_cached(
-                    "INSERT INTO events (position, device, number, boot, time_ms, kind, detail, hash) \
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8) ON CONFLICT (device, number) DO NOTHING",
-                )?;
-                for e in events {
-                    let values = event_values(serial, e);
-                    let (pos, hash) = w.next(Table::Events, &values);
-                    let n = ins.execute(params![
-                        pos as i64,
-                        device,
-                        values[1],
-                        values[2],
-                        values[3],
-                        values[4],
-                        values[5],
-                        &hash[..],
-                    ])?;
-                    if n == 1 {
+                let mut ins = tx.prepare_cached(&sql)?;
+                for values in rows {
+                    let (pos, hash) = w.next(table, &values);
+                    let (pos_v, hash_v) = (Value::Integer(pos as i64), Value::Blob(hash.to_vec()));
+                    let bind = [&pos_v, &device]
+                        .into_iter()
+                        .chain(&values[1..])
+                        .chain(std::iter::once(&hash_v));
+                    if ins.execute(rusqlite::params_from_iter(bind))? == 1 {
                         w.advance(pos, hash);
                         stats.inserted += 1;
+                        continue;
+                    }
+                    let key_values =
+                        std::iter::once(&device).chain(key.iter().map(|&i| &values[i]));
+                    let stored =
+                        stored_values(&tx, table, find, rusqlite::params_from_iter(key_values))?;
+                    if stored.is_some_and(|s| same_record(&s, &values, ignore)) {
+                        stats.duplicates += 1;
                     } else {
-                        let stored = stored_values(
-                            &tx,
-                            Table::Events,
-                            "t.device = ?1 AND t.number = ?2",
-                            params![device, values[1]],
-                        )?;
-                        if stored.is_some_and(|s| same_record(&s, &values, &[])) {
-                            stats.duplicates += 1;
-                        } else {
-                            stats.conflicts += 1;
-                        }
+                        stats.conflicts += 1;
                     }
                 }
             }
