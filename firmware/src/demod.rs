@@ -27,7 +27,8 @@
 //! [`Averager`] keeps up to [`MAX_RECORDS`] complex ratios of one frequency,
 //! rejects outliers (distance from the component-wise median above
 //! [`OUTLIER_K`] scaled median absolute deviations, Hampel's rule) and returns
-//! the mean of the rest with its standard error.
+//! the mean of the rest with its standard error (from the scatter of the
+//! records kept, see [`Averager::finish`]).
 
 use crate::hal::RECORD_LEN;
 
@@ -359,9 +360,24 @@ impl Averager {
         }
         let k = kept.max(1) as f32;
         out.ratio = sum.scale(1.0 / k);
-        // Standard error from the records' own noise (the spread of so few
-        // records is itself too noisy to use alone).
-        out.ratio_se = libm::sqrtf(var_sum) / k;
+        // Standard error from the scatter of the kept records about their
+        // mean, pooled over both components (2 (k - 1) degrees of freedom).
+        // The per-record noise model (`ratio_sd`) is only the fallback for a
+        // single record: its residual energy is a difference of two large f32
+        // sums and overstates the noise of a near-full-scale record.
+        let mut ss = 0.0f32;
+        for (i, r) in items.iter().enumerate().take(n) {
+            let d = dist.get(i).copied().unwrap_or(f32::INFINITY);
+            if r.ratio.is_finite() && d <= limit {
+                let (dr, di) = (r.ratio.re - out.ratio.re, r.ratio.im - out.ratio.im);
+                ss += dr * dr + di * di;
+            }
+        }
+        out.ratio_se = if kept >= 2 {
+            libm::sqrtf(ss / (2.0 * (k - 1.0)) / k)
+        } else {
+            libm::sqrtf(var_sum) / k
+        };
         out.kept = kept as u8;
         out.rejected = (self.len as u32).saturating_sub(kept) as u8;
         out

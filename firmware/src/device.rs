@@ -208,6 +208,7 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     output_fault: bool,
     chain: ChainState,
     chain_valid: bool,
+    chain_n: u32,
     reference_ok: bool,
     last_ref: [f32; N_FREQ],
     since_ref: u32,
@@ -406,6 +407,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             output_fault: false,
             chain: ChainState::default(),
             chain_valid: false,
+            chain_n: 0,
             reference_ok: true,
             last_ref: [f32::NAN; N_FREQ],
             since_ref: 0,
@@ -927,9 +929,14 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             self.since_ref = 0;
             match measure::chain_from_reference(&self.fe, &info, &self.mcfg, r) {
                 Some(c) => {
-                    self.chain = c;
-                    self.chain_valid = true;
                     self.last_ref = c.ratios();
+                    self.chain = if self.chain_valid {
+                        self.chain.update(&c, &mut self.chain_n)
+                    } else {
+                        self.chain_n = 1;
+                        c
+                    };
+                    self.chain_valid = true;
                 }
                 None => self.last_ref = [f32::NAN; N_FREQ],
             }

@@ -39,7 +39,6 @@ pub mod output;
 #[cfg(feature = "sim")]
 pub mod sim;
 pub mod storage;
-pub mod temp;
 
 pub use device::{BootError, Device, DeviceConfig};
 pub use flash::RamFlash;

@@ -13,12 +13,13 @@
 //!   -> two ADC channels at the IF: per-channel gain and offset, white
 //!      Gaussian noise (seeded), quantisation, clipping at the rails
 //! internal reference capacitor: Y = j w C_ref (1 + drift t)
-//! temperature: sensor resistance from the calibration crate's RTD model,
+//! temperature: Pt100 resistance from the calibration crate's IEC 60751 model,
 //!   ratiometric 24-bit code with noise
 //! ```
 //! Time advances by the duration of each record and settling (and by
 //! [`SimFrontend::advance_ms`]), so drifts move as on a real line.
 
+use fringe_calibration::synth::{SynthProduct, SynthSample};
 use rand_core::{Rng, SeedableRng};
 use rand_xorshift::XorShiftRng;
 
@@ -30,7 +31,7 @@ pub const SIM_IF_BIN: u16 = 32;
 /// IF of the simulated board, Hz (sample rate 8x the IF).
 pub const SIM_IF_HZ: f32 = 10_000.0;
 /// Nominal internal reference capacitor, pF.
-pub const SIM_REFERENCE_PF: f32 = 4.7;
+pub const SIM_REFERENCE_PF: f32 = 33.0;
 /// Largest excitation amplitude, V.
 pub const SIM_MAX_AMPLITUDE_V: f32 = 1.0;
 /// Reference resistor of the temperature measurement, ohm.
@@ -47,6 +48,16 @@ pub enum Material {
         eps_re: f32,
         /// eps'' >= 0.
         eps_im: f32,
+    },
+    /// A moist product whose eps*(f) comes from [`fringe_calibration::synth`]
+    /// at the scenario's temperature.
+    Product {
+        /// The product (dry matter, bulk density, relaxation constants).
+        product: SynthProduct<f32>,
+        /// Moisture, % wet basis.
+        moisture_pct: f32,
+        /// Conductivity of the product's water at 25 C (its salt), S/m.
+        water_sigma25_s_m: f32,
     },
 }
 
@@ -177,7 +188,6 @@ impl SimFrontend {
     /// Complex permittivity in front of the electrodes at `freq_hz`
     /// (eps' + j im with im = -eps'').
     pub fn material_eps(&self, freq_hz: f32) -> C32 {
-        let _ = freq_hz;
         let sc = &self.scenario;
         let bulk = if !sc.product_present {
             C32::new(AIR_EPS, 0.0)
@@ -185,6 +195,21 @@ impl SimFrontend {
             match sc.material {
                 Material::Air => C32::new(AIR_EPS, 0.0),
                 Material::Liquid { eps_re, eps_im } => C32::new(eps_re, -eps_im),
+                Material::Product {
+                    product,
+                    moisture_pct,
+                    water_sigma25_s_m,
+                } => {
+                    let e = product.permittivity(
+                        freq_hz,
+                        &SynthSample {
+                            moisture_pct,
+                            temperature_c: sc.temperature_c,
+                            water_sigma25_s_m,
+                        },
+                    );
+                    C32::new(e.re, e.im)
+                }
             }
         };
         let w = (sc.buildup_mm / SIM_CELL.field_depth_mm).clamp(0.0, 1.0);
@@ -238,7 +263,7 @@ impl SimFrontend {
 
 fn r_t(freq_hz: f32) -> f32 {
     // Gain switched with frequency so both ranges use the ADC well.
-    200.0 * libm::powf(1.0e6 / freq_hz.max(1.0), 0.46)
+    120.0 * libm::powf(1.0e6 / freq_hz.max(1.0), 0.292)
 }
 
 impl Frontend for SimFrontend {
@@ -305,7 +330,7 @@ impl Frontend for SimFrontend {
     }
 
     fn read_temperature_raw(&mut self) -> Result<u32, FrontendError> {
-        let r = crate::temp::rtd_resistance_ohm(self.scenario.temperature_c, 100.0);
+        let r = crate::measure::TempSensor::Pt100.resistance_ohm(self.scenario.temperature_c);
         let code = r / SIM_TEMP_REF_OHM * (1u32 << 24) as f32 + 4.0 * gauss(&mut self.rng);
         Ok(code.clamp(0.0, ((1u32 << 24) - 1) as f32) as u32)
     }

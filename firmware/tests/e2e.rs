@@ -1,0 +1,216 @@
+//! End to end in-process: bench cell calibration through the simulated front
+//! end, a product calibration of the synthetic product, then many seeded
+//! readings of known moisture: the 95 % intervals must cover the truth in
+//! 90-99 % of them.
+
+mod common;
+
+use common::*;
+use fringe_calibration::cell::two_point_calibration;
+use fringe_calibration::invert::RelaxationLaw;
+use fringe_calibration::product::{ProductModel, RelaxationModel};
+use fringe_calibration::real::Cx;
+use fringe_calibration::synth::SynthProduct;
+use fringe_firmware::protocol::*;
+use fringe_firmware::sim::Material;
+use fringe_firmware::Scenario;
+use rand::{RngExt, SeedableRng};
+
+/// Air at 20 C, ITU-R P.453 refractivity (REFERENCES.md 2), as the simulator uses.
+const EPS_AIR: f32 = 1.000_54;
+/// Ethanol at 20 C, Gregory and Clarke, NPL Report MAT 23 (2012): 25.16.
+const EPS_ETHANOL_20C: f32 = 25.16;
+
+fn mean_admittance(b: &mut Bench, n: usize) -> [Cx<f32>; 2] {
+    let mut acc = [Cx::new(0.0f64, 0.0); 2];
+    for _ in 0..n {
+        let r = b.measure();
+        for (a, c) in acc.iter_mut().zip(r.channels.iter()) {
+            a.re += f64::from(c.g_s);
+            a.im += f64::from(c.b_s);
+        }
+    }
+    acc.map(|a| Cx::new((a.re / n as f64) as f32, (a.im / n as f64) as f32))
+}
+
+/// Calibrates the cell on the bench (air, then ethanol) and writes it.
+pub fn bench_calibrate(b: &mut Bench) -> CellCal {
+    let freqs = [1.0e6f32, 20.0e6];
+    b.dev.frontend_mut().set_scenario(Scenario {
+        material: Material::Air,
+        ..Scenario::default()
+    });
+    let y_air = mean_admittance(b, 64);
+    b.dev.frontend_mut().set_scenario(Scenario {
+        material: Material::Liquid {
+            eps_re: EPS_ETHANOL_20C,
+            eps_im: 0.4,
+        },
+        ..Scenario::default()
+    });
+    let y_liq = mean_admittance(b, 64);
+    let baseline = match b.ok(Request::ReferenceCheck) {
+        Response::RefCheck(r) => r.ratio.iter().sum::<f32>() / 2.0,
+        other => panic!("{other:?}"),
+    };
+    let mut points = [CellPoint::default(); 2];
+    for (k, p) in points.iter_mut().enumerate() {
+        let c = two_point_calibration(freqs[k], y_air[k], EPS_AIR, y_liq[k], EPS_ETHANOL_20C)
+            .expect("cell calibration");
+        *p = CellPoint {
+            freq_hz: freqs[k],
+            stray_pf: c.stray_pf,
+            cell_pf: c.cell_pf,
+            g_offset_s: c.g_offset_s,
+        };
+    }
+    let cal = CellCal {
+        points,
+        reference_ratio: baseline,
+        made_s: 1_764_000_000,
+    };
+    assert_eq!(b.ok(Request::WriteCellCal(cal)), Response::Ack);
+    cal
+}
+
+/// The synthetic product's own physics as a relaxation calibration:
+/// moisture = mixing-model moisture (exact for this product).
+pub fn grain_calibration() -> ProductCal {
+    let p = SynthProduct::<f32>::grain();
+    let law: RelaxationLaw<f32> = p.law();
+    let model = ProductModel::Relaxation(RelaxationModel {
+        law,
+        mixture: p.mixture,
+        t_ref_c: 25.0,
+        coeffs: [0.0, 1.0, 0.0, 0.0],
+        c_t: 0.0,
+        c_sigma: 0.0,
+    });
+    let (params, n) = model.to_params();
+    let r = |min, max| Range { min, max };
+    ProductCal {
+        name: short_string("Harrowgate wheat"),
+        model: ModelKind::Relaxation,
+        basis: Basis::Wet,
+        params: heapless::Vec::from_slice(&params[..n]).expect("params fit"),
+        moisture_pct: r(5.0, 30.0),
+        temperature_c: r(0.0, 50.0),
+        inputs: heapless::Vec::from_slice(&[
+            r(1.0, 60.0),
+            r(0.0, 500.0),
+            r(0.0, 1.0),
+            r(0.0, 40.0),
+        ])
+        .expect("ranges fit"),
+        sec_pct: 0.0,
+        made_s: 1_764_000_000,
+    }
+}
+
+fn product_scenario(m: f32, t: f32, salt: f32) -> Scenario {
+    Scenario {
+        material: Material::Product {
+            product: SynthProduct::grain(),
+            moisture_pct: m,
+            water_sigma25_s_m: salt,
+        },
+        temperature_c: t,
+        ..Scenario::default()
+    }
+}
+
+#[test]
+fn intervals_cover_the_truth_at_the_stated_rate() {
+    big_stack(|| {
+        let seed: u64 = std::env::var("FRINGE_E2E_SEED")
+            .ok()
+            .and_then(|s| s.parse().ok())
+            .unwrap_or(0xE2E_2026);
+        let mut b = Bench::new(seed, Scenario::default());
+        bench_calibrate(&mut b);
+        assert_eq!(
+            b.ok(Request::WriteProductCal {
+                slot: 0,
+                cal: grain_calibration()
+            }),
+            Response::Ack
+        );
+        assert_eq!(b.ok(Request::SelectProduct { slot: 0 }), Response::Ack);
+        let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
+        let runs = 400;
+        let (mut covered, mut sum_u) = (0, 0.0f64);
+        for i in 0..runs {
+            let m = rng.random_range(10.0f32..20.0);
+            let t = rng.random_range(10.0f32..35.0);
+            let salt = rng.random_range(0.05f32..0.8);
+            b.dev
+                .frontend_mut()
+                .set_scenario(product_scenario(m, t, salt));
+            let r = b.measure();
+            let est = r.moisture_pct.unwrap_or_else(|| {
+                panic!("seed {seed:#x} run {i}: no moisture, flags {:?}", r.flags)
+            });
+            assert!(
+                !r.flags.intersects(
+                    Flags::NOT_CALIBRATED | Flags::FIT_NOT_CONVERGED | Flags::NO_PRODUCT
+                ),
+                "seed {seed:#x} run {i}: {:?}",
+                r.flags
+            );
+            if (est - m).abs() <= 1.96 * r.uncertainty_pct {
+                covered += 1;
+            }
+            sum_u += f64::from(r.uncertainty_pct);
+        }
+        let rate = f64::from(covered) / f64::from(runs);
+        let mean_u = sum_u / f64::from(runs);
+        println!("seed {seed:#x}: 95 % coverage {rate:.3} over {runs} runs, mean u {mean_u:.4} %");
+        assert!(
+            (0.90..=0.99).contains(&rate),
+            "seed {seed:#x}: coverage {rate:.3} over {runs} runs (mean u {mean_u:.3} %)"
+        );
+        // The uncertainty is a useful size, not a blanket.
+        assert!(mean_u < 1.0, "seed {seed:#x}: mean u {mean_u} %");
+    });
+}
+
+#[test]
+fn a_calibrated_device_flags_an_empty_line_and_reports_no_moisture() {
+    big_stack(|| {
+        let mut b = Bench::new(7, Scenario::default());
+        bench_calibrate(&mut b);
+        assert_eq!(
+            b.ok(Request::WriteProductCal {
+                slot: 0,
+                cal: grain_calibration()
+            }),
+            Response::Ack
+        );
+        assert_eq!(b.ok(Request::SelectProduct { slot: 0 }), Response::Ack);
+        b.dev.frontend_mut().set_scenario(Scenario {
+            product_present: false,
+            ..product_scenario(15.0, 20.0, 0.2)
+        });
+        let r = b.measure();
+        assert!(r.flags.contains(Flags::NO_PRODUCT), "{:?}", r.flags);
+        assert_eq!(r.moisture_pct, None);
+        assert_eq!(r.product_cal, grain_calibration().content_id());
+        // Output signals the fault (NE 43 low).
+        assert!(b.dev.output_ma() <= 3.6);
+        b.dev
+            .frontend_mut()
+            .set_scenario(product_scenario(15.0, 20.0, 0.2));
+        let r = b.measure();
+        let m = r.moisture_pct.expect("moisture");
+        assert!(
+            (m - 15.0).abs() < 4.0 * r.uncertainty_pct.max(0.05),
+            "{m} +/- {}",
+            r.uncertainty_pct
+        );
+        let ma = b.dev.output_ma();
+        assert!(
+            (ma - (4.0 + 16.0 * m / 30.0)).abs() < 1e-3,
+            "{ma} mA for {m} %"
+        );
+    });
+}
