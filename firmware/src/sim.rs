@@ -19,7 +19,11 @@
 //! Time advances by the duration of each record and settling (and by
 //! [`SimFrontend::advance_ms`]), so drifts move as on a real line.
 
+use fringe_calibration::product::{ProductModel, RelaxationModel};
 use fringe_calibration::synth::{SynthProduct, SynthSample};
+use fringe_protocol::{
+    short_string, Basis, ModelKind, ProductCal, Range, MAX_CAL_INPUTS, MAX_CAL_PARAMS,
+};
 use rand_core::{Rng, SeedableRng};
 use rand_xorshift::XorShiftRng;
 
@@ -102,7 +106,7 @@ impl Default for Scenario {
             temperature_c: 20.0,
             buildup_mm: 0.0,
             electrodes: Electrodes::Intact,
-            noise_codes: 2.0,
+            noise_codes: 4.0,
             chain_drift_pct_per_h: 0.0,
             reference_drift_pct_per_h: 0.0,
         }
@@ -333,6 +337,43 @@ impl Frontend for SimFrontend {
         let r = crate::measure::TempSensor::Pt100.resistance_ohm(self.scenario.temperature_c);
         let code = r / SIM_TEMP_REF_OHM * (1u32 << 24) as f32 + 4.0 * gauss(&mut self.rng);
         Ok(code.clamp(0.0, ((1u32 << 24) - 1) as f32) as u32)
+    }
+}
+
+/// The exact product calibration of a synthetic product: its own relaxation
+/// law and mixture, moisture = the mixing-model moisture, SEC 0. What a
+/// perfect lab would fit; for tests, benchmarks and demos. Valid ranges:
+/// moisture 5-30 %, temperature 0-50 C, eps_hf 1-60, d_eps 0-500,
+/// sigma 0-1 S/m, mixing moisture 0-40 %.
+pub fn exact_calibration(product: &SynthProduct<f32>, name: &str) -> ProductCal {
+    let model = ProductModel::Relaxation(RelaxationModel {
+        law: product.law(),
+        mixture: product.mixture,
+        t_ref_c: 25.0,
+        coeffs: [0.0, 1.0, 0.0, 0.0],
+        c_t: 0.0,
+        c_sigma: 0.0,
+    });
+    let (params, n) = model.to_params();
+    let r = |min, max| Range { min, max };
+    let mut p: heapless::Vec<f32, MAX_CAL_PARAMS> = heapless::Vec::new();
+    for x in params.iter().take(n) {
+        let _ = p.push(*x);
+    }
+    let mut inputs: heapless::Vec<Range, MAX_CAL_INPUTS> = heapless::Vec::new();
+    for x in [r(1.0, 60.0), r(0.0, 500.0), r(0.0, 1.0), r(0.0, 40.0)] {
+        let _ = inputs.push(x);
+    }
+    ProductCal {
+        name: short_string(name),
+        model: ModelKind::Relaxation,
+        basis: Basis::Wet,
+        params: p,
+        moisture_pct: r(5.0, 30.0),
+        temperature_c: r(0.0, 50.0),
+        inputs,
+        sec_pct: 0.0,
+        made_s: 0,
     }
 }
 
