@@ -5,7 +5,8 @@
 //!
 //! ```text
 //! material eps*(f)  (air, a liquid, or a product from fringe_calibration::synth)
-//!   -> build-up layer on the window (series layers across the field)
+//!   -> build-up layer on the window (partial capacitances of the
+//!      interdigital electrodes, fringe_calibration::ide)
 //!   -> cell: Y = G0 + j w (Cp + C0 eps*), Cp and C0 raised near the lead
 //!      resonance: C_app = C / (1 - (f/f_res)^2)
 //!   -> electrode state (open: only a residual capacitance; short: 0.1 S)
@@ -19,7 +20,9 @@
 //! Time advances by the duration of each record and settling (and by
 //! [`SimFrontend::advance_ms`]), so drifts move as on a real line.
 
+use fringe_calibration::ide::IdeGeometry;
 use fringe_calibration::product::{ProductModel, RelaxationModel};
+use fringe_calibration::real::Cx;
 use fringe_calibration::synth::{SynthProduct, SynthSample};
 use fringe_protocol::{
     short_string, Basis, ModelKind, ProductCal, Range, MAX_CAL_INPUTS, MAX_CAL_PARAMS,
@@ -124,8 +127,10 @@ pub struct SimCell {
     pub g_offset_s: f32,
     /// Lead resonance, Hz.
     pub f_res_hz: f32,
-    /// Depth of the fringing field, mm (build-up weighting).
-    pub field_depth_mm: f32,
+    /// Electrode geometry (for what a build-up layer does to the reading).
+    pub ide: IdeGeometry<f32>,
+    /// Permittivity of the substrate behind the electrodes (FR-4, 4.4).
+    pub substrate_eps: f32,
 }
 
 /// Cell of the simulated sensor (invented values of a plausible size).
@@ -134,7 +139,15 @@ pub const SIM_CELL: SimCell = SimCell {
     cell_pf: 1.5,
     g_offset_s: 2.0e-8,
     f_res_hz: 150.0e6,
-    field_depth_mm: 10.0,
+    // 2 mm fingers, 3 mm gaps, 40 mm long, 10 fingers: about 97 % of the
+    // signal from within 3.2 mm of the window (0.32 lambda, REFERENCES.md 7).
+    ide: IdeGeometry {
+        width_m: 2.0e-3,
+        gap_m: 3.0e-3,
+        length_m: 40.0e-3,
+        n_electrodes: 10,
+    },
+    substrate_eps: 4.4,
 };
 
 const AIR_EPS: f32 = 1.000_54;
@@ -216,17 +229,21 @@ impl SimFrontend {
                 }
             }
         };
-        let w = (sc.buildup_mm / SIM_CELL.field_depth_mm).clamp(0.0, 1.0);
-        if w <= 0.0 {
+        if sc.buildup_mm.is_nan() || sc.buildup_mm <= 0.0 {
             return bulk;
         }
-        // Series layers: 1/eps = w/eps_layer + (1-w)/eps_bulk.
-        let one = C32::new(1.0, 0.0);
-        let inv = one
-            .over(BUILDUP_EPS)
-            .scale(w)
-            .plus(one.over(bulk).scale(1.0 - w));
-        one.over(inv)
+        // What the electrodes see through the layer: partial capacitances of
+        // the interdigital geometry (fringe_calibration::ide).
+        let layer = (
+            sc.buildup_mm * 1e-3,
+            Cx::new(BUILDUP_EPS.re, BUILDUP_EPS.im),
+        );
+        let e = SIM_CELL.ide.apparent_permittivity(
+            SIM_CELL.substrate_eps,
+            &[layer],
+            Cx::new(bulk.re, bulk.im),
+        );
+        C32::new(e.re, e.im)
     }
 
     /// True cell admittance at `freq_hz` (S), electrodes or reference.

@@ -182,3 +182,85 @@ fn empty_line_and_electrode_faults_are_flagged() {
         "{ev:?}"
     );
 }
+
+#[test]
+fn every_request_is_answered() {
+    let mut b = Bench::new(6, Scenario::default());
+    let out = OutputConfig {
+        span_low_pct: 5.0,
+        span_high_pct: 25.0,
+        fail_high: true,
+    };
+    let requests = [
+        Request::Identify {
+            host: PROTOCOL_VERSION,
+        },
+        Request::Status,
+        Request::Measure,
+        Request::StartStream { period_ms: 1000 },
+        Request::StopStream,
+        Request::ReadCellCal,
+        Request::ReadProductCal { slot: 0 },
+        Request::SelectProduct { slot: 0 },
+        Request::ListProducts,
+        Request::ReferenceCheck,
+        Request::ReadLog {
+            from: Seq::default(),
+            max: 4,
+        },
+        Request::ReadEvents { from: 0, max: 6 },
+        Request::SetClock {
+            unix_ms: 1_764_633_600_000,
+        },
+        Request::SelfTest,
+        Request::SetOutput(out),
+        Request::Reboot,
+    ];
+    for req in requests {
+        let f = b.ask(req.clone());
+        match (&req, &f) {
+            // An empty slot cannot be selected.
+            (Request::SelectProduct { .. }, f) => {
+                assert_eq!(Bench::error_code(f), Some(ErrorCode::NoSuchSlot))
+            }
+            (_, DeviceFrame::Response { .. }) => {}
+            (req, other) => panic!("{req:?} answered {other:?}"),
+        }
+        if let (
+            Request::SelfTest,
+            DeviceFrame::Response {
+                response: Response::SelfTest(t),
+                ..
+            },
+        ) = (&req, &f)
+        {
+            assert!(t.storage_ok && t.frontend_ok && t.temperature_ok, "{t:?}");
+        }
+        if let (
+            Request::ReferenceCheck,
+            DeviceFrame::Response {
+                response: Response::RefCheck(r),
+                ..
+            },
+        ) = (&req, &f)
+        {
+            // No baseline yet (no cell calibration): the chain gain itself, near 1.
+            assert!(r.ratio.iter().all(|x| (x - 1.0).abs() < 0.05), "{r:?}");
+        }
+    }
+    assert!(b.dev.reboot_requested());
+    // After the clock is set, readings carry Unix time and no CLOCK_UNSET.
+    let r = b.measure();
+    assert!(!r.flags.contains(Flags::CLOCK_UNSET));
+    assert!(r.time_ms >= 1_764_633_600_000);
+    // The output configuration survives a reboot; the boot counter rises.
+    let mut b = b.reboot(7);
+    match b.ok(Request::Status) {
+        Response::Status(s) => {
+            assert_eq!(s.boot, 2);
+            // Uncalibrated: NE 43 failure signalled high, as configured.
+            assert!(s.output_ma >= 21.0, "{}", s.output_ma);
+        }
+        other => panic!("{other:?}"),
+    }
+}
