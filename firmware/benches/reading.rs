@@ -18,7 +18,7 @@ use fringe_firmware::hal::{Frontend, FrontendError, FrontendInfo, Input, NullOut
 use fringe_firmware::measure::{self, ChainState, Job, Runner, DEFAULT_MEASURE};
 use fringe_firmware::protocol::{CellCal, CellPoint, FrameDecoder, HostFrame};
 use fringe_firmware::sim::{exact_calibration, Material, SimFrontend, SIM_CELL};
-use fringe_firmware::storage::{Storage, ITEM_BUF};
+use fringe_firmware::storage::{ring_capacity_readings, Layout, Storage, ITEM_BUF};
 use fringe_firmware::{Device, Scenario};
 
 type Rec = ([i16; RECORD_LEN], [i16; RECORD_LEN]);
@@ -108,7 +108,7 @@ fn cell() -> CellCal {
     }
 }
 
-/// A flash and a front end of no size, to weigh the Device alone.
+/// A flash of no size, to weigh the Device alone.
 #[derive(Debug)]
 struct NoFlash;
 impl ErrorType for NoFlash {
@@ -133,45 +133,13 @@ impl NorFlash for NoFlash {
         Ok(())
     }
 }
-struct NoFrontend;
-impl Frontend for NoFrontend {
-    fn info(&self) -> FrontendInfo {
-        FrontendInfo {
-            if_bin: 32,
-            adc_full_scale: i16::MAX,
-            reference_pf: 33.0,
-            temp_ref_ohm: 400.0,
-            max_amplitude_v: 1.0,
-        }
-    }
-    fn transimpedance_ohm(&self, _: f32) -> f32 {
-        100.0
-    }
-    fn set_excitation(&mut self, _: f32, _: f32) -> Result<(), FrontendError> {
-        Ok(())
-    }
-    fn select_input(&mut self, _: Input) -> Result<(), FrontendError> {
-        Ok(())
-    }
-    fn acquire(
-        &mut self,
-        _: &mut [i16; RECORD_LEN],
-        _: &mut [i16; RECORD_LEN],
-    ) -> Result<(), FrontendError> {
-        Ok(())
-    }
-    fn read_temperature_raw(&mut self) -> Result<u32, FrontendError> {
-        Ok(0)
-    }
-}
-
 fn ram_report() {
     use core::mem::size_of;
     eprintln!("RAM of the core (size_of, host build, x86_64):");
-    eprintln!(
-        "  Device<0-size front end, 0-size flash, NullOutput>: {} bytes",
-        size_of::<Device<NoFrontend, NoFlash, NullOutput>>()
-    );
+    // The front end is owned by value: weigh the Device with the replay
+    // front end and take that back off.
+    let core = size_of::<Device<Replay, NoFlash, NullOutput>>() - size_of::<Replay>();
+    eprintln!("  Device without front end and flash (0-size flash, NullOutput): {core} bytes");
     eprintln!(
         "    of which Runner (2 ADC records, averager): {} bytes",
         size_of::<Runner>()
@@ -186,9 +154,16 @@ fn ram_report() {
         size_of::<FrameDecoder<HostFrame>>()
     );
     eprintln!(
-        "  plus SimFrontend: {} bytes (simulator only)",
+        "  SimFrontend (simulator only): {} bytes",
         size_of::<SimFrontend>()
     );
+    for kib in [64usize, 256, 1024] {
+        let layout = Layout::new(kib * 1024, 4096).expect("layout");
+        let n = ring_capacity_readings(&layout, 4096, 4);
+        eprintln!(
+            "  reading log on {kib} KiB flash (4 KiB pages, 4-byte words): at least {n} readings"
+        );
+    }
 }
 
 fn bench(c: &mut Criterion) {

@@ -22,8 +22,12 @@
 //! One map item is written atomically (a power cut leaves the old value or
 //! the new one: the item's CRC decides), so a calibration is never a mix.
 //! The two queues are rings: when full, the oldest page is erased. The
-//! reading log holds [`Storage::log_capacity`] readings at least (about 45
-//! per 4 KiB page; 64 KiB flash: ~400, 256 KiB: ~2 300, 1 MiB: ~11 000).
+//! reading log holds [`Storage::log_capacity`] readings at least (48 per
+//! 4 KiB page at the largest reading size, one page kept free for the ring):
+//! 64 KiB flash 432, 256 KiB 2 736, 1 MiB 11 952 (printed by the `reading`
+//! bench). At one reading a second the 1 MiB log spans about 3.3 hours;
+//! set [`crate::DeviceConfig::log_readings`] and the streaming period to suit
+//! the flash's endurance.
 
 use core::ops::Range;
 
@@ -562,6 +566,12 @@ impl<S: NorFlash> Storage<S> {
 pub const MAX_READING_BYTES: usize = 5 + 5 + 10 + 32 + 4 + 5 + 4 + 3 + 8;
 /// Largest encoding of an [`Event`] as the firmware writes them, bytes.
 pub const MAX_EVENT_BYTES: usize = 5 + 5 + 10 + 1 + 1 + 10 + 10;
+
+/// Readings the log region of `layout` holds at least, for a flash of
+/// `page`-byte erase pages and `word`-byte writes.
+pub fn ring_capacity_readings(layout: &Layout, page: usize, word: usize) -> u32 {
+    ring_capacity(&layout.log, page, word, MAX_READING_BYTES)
+}
 
 fn ring_capacity(r: &Range<u32>, page: usize, word: usize, item: usize) -> u32 {
     let pages = (r.end - r.start) as usize / page.max(1);

@@ -76,6 +76,19 @@ pub fn grain_calibration() -> ProductCal {
     exact_calibration(&SynthProduct::grain(), "Harrowgate wheat")
 }
 
+/// A device with its cell calibrated on the bench and the grain selected.
+fn calibrated(seed: u64) -> Bench {
+    let mut b = Bench::new(seed, Scenario::default());
+    bench_calibrate(&mut b);
+    let cal = grain_calibration();
+    assert_eq!(
+        b.ok(Request::WriteProductCal { slot: 0, cal }),
+        Response::Ack
+    );
+    assert_eq!(b.ok(Request::SelectProduct { slot: 0 }), Response::Ack);
+    b
+}
+
 fn product_scenario(m: f32, t: f32, salt: f32) -> Scenario {
     Scenario {
         material: Material::Product {
@@ -95,16 +108,7 @@ fn intervals_cover_the_truth_at_the_stated_rate() {
             .ok()
             .and_then(|s| s.parse().ok())
             .unwrap_or(0xE2E_2026);
-        let mut b = Bench::new(seed, Scenario::default());
-        bench_calibrate(&mut b);
-        assert_eq!(
-            b.ok(Request::WriteProductCal {
-                slot: 0,
-                cal: grain_calibration()
-            }),
-            Response::Ack
-        );
-        assert_eq!(b.ok(Request::SelectProduct { slot: 0 }), Response::Ack);
+        let mut b = calibrated(seed);
         let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
         let runs = 400;
         let (mut covered, mut sum_u) = (0, 0.0f64);
@@ -146,16 +150,7 @@ fn intervals_cover_the_truth_at_the_stated_rate() {
 #[test]
 fn a_calibrated_device_flags_an_empty_line_and_reports_no_moisture() {
     big_stack(|| {
-        let mut b = Bench::new(7, Scenario::default());
-        bench_calibrate(&mut b);
-        assert_eq!(
-            b.ok(Request::WriteProductCal {
-                slot: 0,
-                cal: grain_calibration()
-            }),
-            Response::Ack
-        );
-        assert_eq!(b.ok(Request::SelectProduct { slot: 0 }), Response::Ack);
+        let mut b = calibrated(7);
         b.dev.frontend_mut().set_scenario(Scenario {
             product_present: false,
             ..product_scenario(15.0, 20.0, 0.2)
