@@ -52,7 +52,17 @@ pub enum Command {
     /// Read the device's stored log and events from the last stored ones on (idempotent).
     #[command(after_help = "Example:\n  fringe pull --port /dev/ttyUSB0 --db line2.db")]
     Pull(PullArgs),
-    /// Run the whole job on simulated devices (not built yet: prints what is missing).
+    /// Product and cell calibration: fit, predict, cell, capture, push, list, select, history.
+    Cal(crate::cmd::quality::CalArgs),
+    /// Lab grab samples.
+    Lab(crate::quality::LabArgs),
+    /// Drift monitors (EWMA, CUSUM) over a database.
+    Drift(crate::quality::DriftArgs),
+    /// Write an HTML report (trend, flags, drift charts, calibrations) that opens without a server.
+    Report(crate::quality::ReportArgs),
+    /// Tamper-evident audit bundles: export and verify.
+    Audit(crate::quality::AuditArgs),
+    /// Run the whole job on a simulated device of an invented plant (needs the simulated product: not yet).
     Demo,
 }
 

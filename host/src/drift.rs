@@ -97,7 +97,7 @@ impl Action {
                 "clean the sensor window (stop the line and lock it out first, per site procedure), then check the empty-line reading again"
             }
             Action::BiasAdjust => {
-                "bias-adjust the product calibration by the lab-minus-inline mean (confirm with further grab samples first)"
+                "bias-adjust the product calibration by the lab-minus-inline mean (confirm with further grab samples, and rule out window build-up first: see the empty-line baseline)"
             }
             Action::Recalibrate => {
                 "recalibrate the product against new reference samples (the error is not a steady offset)"
@@ -552,28 +552,29 @@ impl Trace {
     /// Alarms merged per episode: an alarm that follows another of the same
     /// quantity and direction with no gap between their excursions (its
     /// change point at or before the previous alarm + 1) is folded into it,
-    /// keeping the first alarm's change point and the latest size.
+    /// keeping the first alarm's change point and time and the latest size.
     pub fn episodes(&self) -> Vec<Alarm> {
-        let mut out: Vec<Alarm> = Vec::new();
+        // (episode, index of its latest alarm)
+        let mut out: Vec<(Alarm, usize)> = Vec::new();
         let mut sorted = self.alarms.clone();
         sorted.sort_by_key(|a| a.index);
         for a in sorted {
-            if let Some(last) = out
+            if let Some((first, latest)) = out
                 .iter_mut()
                 .rev()
-                .find(|l| l.quantity == a.quantity && l.direction == a.direction)
+                .find(|(l, _)| l.quantity == a.quantity && l.direction == a.direction)
             {
-                if a.since_index <= last.index + 1 {
-                    last.index = a.index;
-                    last.time_ms = a.time_ms;
-                    last.shift = a.shift;
-                    last.shift_sigma = a.shift_sigma;
+                if a.since_index <= *latest + 1 {
+                    *latest = a.index;
+                    first.shift = a.shift;
+                    first.shift_sigma = a.shift_sigma;
                     continue;
                 }
             }
-            out.push(a);
+            let i = a.index;
+            out.push((a, i));
         }
-        out
+        out.into_iter().map(|(a, _)| a).collect()
     }
 }
 

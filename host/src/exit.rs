@@ -19,7 +19,7 @@ pub enum ExitCode {
     Failure = 1,
     /// 2: bad command-line arguments (clap's usage error).
     Usage = 2,
-    /// 3: a configuration or scenario file is missing or invalid (file, line, column and field named).
+    /// 3: a configuration, scenario, reference-sample or product calibration file is missing or invalid (file, line, column and field named).
     BadFile = 3,
     /// 4: the requested work finished but found problems (e.g. a broken audit chain).
     Problems = 4,
@@ -74,8 +74,21 @@ impl ExitCode {
             if let Some(e) = cause.downcast_ref::<LinkError>() {
                 return e.exit_code();
             }
-            if cause.downcast_ref::<ConfigError>().is_some() {
+            if cause.downcast_ref::<ConfigError>().is_some()
+                || cause
+                    .downcast_ref::<crate::samples::SampleError>()
+                    .is_some()
+                || cause
+                    .downcast_ref::<crate::product_file::ProductFileError>()
+                    .is_some()
+            {
                 return ExitCode::BadFile;
+            }
+            if cause
+                .downcast_ref::<crate::quality::ProblemsFound>()
+                .is_some()
+            {
+                return ExitCode::Problems;
             }
             if let Some(e) = cause.downcast_ref::<io::Error>() {
                 if e.kind() == io::ErrorKind::StorageFull {

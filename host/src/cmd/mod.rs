@@ -6,6 +6,7 @@ pub mod device;
 pub mod ingest;
 pub mod monitor;
 pub mod pull;
+pub mod quality;
 pub mod sim;
 
 use std::path::{Path, PathBuf};

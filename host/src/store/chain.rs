@@ -52,16 +52,19 @@ pub enum Table {
     Calibrations = 4,
     /// `lab_samples`.
     LabSamples = 5,
+    /// `reference_checks` (schema version 2).
+    ReferenceChecks = 6,
 }
 
 impl Table {
     /// All chained tables.
-    pub const ALL: [Table; 5] = [
+    pub const ALL: [Table; 6] = [
         Table::Devices,
         Table::Readings,
         Table::Events,
         Table::Calibrations,
         Table::LabSamples,
+        Table::ReferenceChecks,
     ];
 
     /// The SQL table name.
@@ -72,6 +75,7 @@ impl Table {
             Table::Events => "events",
             Table::Calibrations => "calibrations",
             Table::LabSamples => "lab_samples",
+            Table::ReferenceChecks => "reference_checks",
         }
     }
 }

@@ -24,7 +24,7 @@ mod schema;
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
-use fringe_protocol::{CalId, ChannelValue, Event, Flags, Reading, Seq, N_FREQ};
+use fringe_protocol::{CalId, ChannelValue, Event, Flags, Reading, RefCheck, Seq, N_FREQ};
 use rusqlite::types::{Value, ValueRef};
 use rusqlite::{params, Connection, OpenFlags, OptionalExtension, TransactionBehavior};
 
@@ -347,6 +347,17 @@ pub struct StoredLabSample {
     pub sample: NewLabSample,
 }
 
+/// A stored internal reference check.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StoredRefCheck {
+    /// Chain position.
+    pub position: u64,
+    /// Device time of the check, ms.
+    pub time_ms: i64,
+    /// The check as the device reported it.
+    pub check: RefCheck,
+}
+
 /// Result of recording one calibration or lab sample.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
 pub struct Recorded {
@@ -405,6 +416,7 @@ impl ChainedRecord {
             Table::Events => format!("{serial} event {}", int(1)),
             Table::Calibrations => format!("{serial} calibration #{}", int(1)),
             Table::LabSamples => format!("{serial} lab sample #{}", int(1)),
+            Table::ReferenceChecks => format!("{serial} reference check #{}", int(1)),
         }
     }
 }
@@ -460,6 +472,17 @@ const LAB_COLS: &[&str] = &[
     "created_unix_ms",
 ];
 
+const REFCHECK_COLS: &[&str] = &[
+    "serial",
+    "seq",
+    "time_ms",
+    "ratio_low",
+    "ratio_high",
+    "baseline",
+    "ok",
+    "created_unix_ms",
+];
+
 fn columns(t: Table) -> &'static [&'static str] {
     match t {
         Table::Devices => DEVICE_COLS,
@@ -467,6 +490,7 @@ fn columns(t: Table) -> &'static [&'static str] {
         Table::Events => EVENT_COLS,
         Table::Calibrations => CAL_COLS,
         Table::LabSamples => LAB_COLS,
+        Table::ReferenceChecks => REFCHECK_COLS,
     }
 }
 
@@ -1387,6 +1411,65 @@ impl Store {
                     },
                     note: text_at(&v, 10),
                     supersedes: opt_int_at(&v, 11).map(|p| p as u64),
+                },
+            })
+            .collect())
+    }
+
+    /// Records an internal reference check of device `serial` made at
+    /// device time `time_ms`. An identical record already stored is
+    /// returned as a duplicate.
+    ///
+    /// # Errors
+    /// [`StoreError`] on a database failure.
+    pub fn insert_reference_check(
+        &mut self,
+        serial: &str,
+        time_ms: i64,
+        check: &RefCheck,
+    ) -> Result<Recorded, StoreError> {
+        let values = |seq: i64, created: i64| {
+            vec![
+                Value::Text(serial.to_owned()),
+                Value::Integer(seq),
+                Value::Integer(time_ms),
+                real(f64::from(check.ratio[0])),
+                real(f64::from(check.ratio[1])),
+                real(f64::from(check.baseline)),
+                Value::Integer(i64::from(check.ok)),
+                Value::Integer(created),
+            ]
+        };
+        self.insert_record(
+            serial,
+            Table::ReferenceChecks,
+            None,
+            &values,
+            "t.device = ?1 AND t.time_ms = ?2",
+            2,
+            None,
+        )
+    }
+
+    /// Stored reference checks of `serial` in record order.
+    ///
+    /// # Errors
+    /// [`StoreError`] on a database failure.
+    pub fn reference_checks(&self, serial: &str) -> Result<Vec<StoredRefCheck>, StoreError> {
+        let Some(dev) = self.device_key(serial)? else {
+            return Ok(Vec::new());
+        };
+        let recs = all_stored_values(&self.conn, Table::ReferenceChecks, "t.device = ?1", [dev])
+            .map_err(|e| self.err(e))?;
+        Ok(recs
+            .into_iter()
+            .map(|(position, v)| StoredRefCheck {
+                position,
+                time_ms: int_at(&v, 2),
+                check: RefCheck {
+                    ratio: [f32_at(&v, 3), f32_at(&v, 4)],
+                    baseline: f32_at(&v, 5),
+                    ok: int_at(&v, 6) != 0,
                 },
             })
             .collect())

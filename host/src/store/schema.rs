@@ -5,7 +5,7 @@
 //! than this build knows is refused (never downgraded).
 
 /// Migrations in order; migration `i` takes the schema from version `i` to `i + 1`.
-pub const MIGRATIONS: &[&str] = &[MIGRATION_1];
+pub const MIGRATIONS: &[&str] = &[MIGRATION_1, MIGRATION_2];
 
 /// The schema version this build writes.
 pub const SCHEMA_VERSION: u32 = MIGRATIONS.len() as u32;
@@ -121,4 +121,27 @@ BEGIN SELECT RAISE(ABORT, 'fringe store: the chain head cannot be removed'); END
 CREATE TRIGGER chain_head_forward_only BEFORE UPDATE ON chain_head
 WHEN NEW.position < OLD.position
 BEGIN SELECT RAISE(ABORT, 'fringe store: the chain head only moves forward'); END;
+"#;
+
+/// Migration 2: internal reference checks, chained like every other record
+/// (the drift monitor of the reference check reads them).
+const MIGRATION_2: &str = r#"
+CREATE TABLE reference_checks (
+    position        INTEGER PRIMARY KEY,
+    device          INTEGER NOT NULL REFERENCES devices(id),
+    seq             INTEGER NOT NULL,
+    time_ms         INTEGER NOT NULL,
+    ratio_low       REAL    NOT NULL,
+    ratio_high      REAL    NOT NULL,
+    baseline        REAL    NOT NULL,
+    ok              INTEGER NOT NULL,
+    created_unix_ms INTEGER NOT NULL,
+    hash            BLOB    NOT NULL
+);
+CREATE UNIQUE INDEX reference_checks_key ON reference_checks (device, seq);
+CREATE INDEX reference_checks_time ON reference_checks (device, time_ms);
+CREATE TRIGGER reference_checks_no_update BEFORE UPDATE ON reference_checks
+BEGIN SELECT RAISE(ABORT, 'fringe store: reference checks are append-only'); END;
+CREATE TRIGGER reference_checks_no_delete BEFORE DELETE ON reference_checks
+BEGIN SELECT RAISE(ABORT, 'fringe store: reference checks are append-only'); END;
 "#;

@@ -1,0 +1,271 @@
+//! What the drift monitors and the report read from a store, and how the
+//! four monitors of [`crate::drift`] are set up on it.
+//!
+//! Monitor set-up (stated; printed by `fringe drift`):
+//!
+//! | quantity | observation | target | sigma |
+//! | --- | --- | --- | --- |
+//! | reference check | `(mean ratio / baseline - 1) x 100`, % | 0 (the cell-calibration baseline) | moving range of the first 20 checks (at least 0.005 %) |
+//! | lab residual | lab - inline moisture at the matched reading, % | 0 | the SEP of the calibration in force (cross-validated); else the moving range of the residuals |
+//! | empty-line baseline | eps' at the upper frequency of readings flagged `no_product` | mean of the first 5 (one empty spell, clean window) | moving range of those 5 (at least 0.0005) |
+//! | temperature | product temperature of readings with product, C | the calibrated range | moving range of all (at least 0.1 C) |
+//!
+//! Each uses the default charts: tabular CUSUM k 0.5, h 5 (in-control ARL
+//! 465) and EWMA lambda 0.1, L 2.814 (about 500); temperature only the
+//! one-sided CUSUMs from the range edges.
+
+use fringe_protocol::{Flags, Reading};
+use serde::{Deserialize, Serialize};
+
+use crate::drift::{sigma_moving_range, Monitor, Obs, Quantity, Trace};
+use crate::store::{CalKind, Store};
+
+/// What `fringe cal push` / `cal cell` keep in a calibration record's body
+/// (beside the wire calibration), and the audit fields of a change.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+pub struct CalRecordBody {
+    /// The wire calibration as JSON (`fringe_protocol::ProductCal` or `CellCal`).
+    pub calibration: serde_json::Value,
+    /// Who made the change.
+    pub operator: String,
+    /// Why.
+    pub reason: String,
+    /// Calibration id before the change (8 hex digits, `00000000` for none).
+    pub old_id: String,
+    /// Calibration id after.
+    pub new_id: String,
+    /// What the change was: `push`, `select`, `cell`.
+    pub action: String,
+    /// Statistics at fit time (product calibrations), as in PRODUCT.toml.
+    pub statistics: Option<crate::product_file::Statistics>,
+    /// Verification result (cell calibrations): words.
+    pub verification: Option<String>,
+}
+
+/// A reading reduced to what the monitors and the report need.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Row {
+    /// Device time, ms.
+    pub time_ms: i64,
+    /// The reading.
+    pub reading: Reading,
+}
+
+/// A reference check as stored.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RefRow {
+    /// Time, ms.
+    pub time_ms: i64,
+    /// Mean ratio over both frequencies.
+    pub ratio: f64,
+    /// Baseline ratio at cell calibration.
+    pub baseline: f64,
+}
+
+/// A lab result with the inline value it is compared with.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LabRow {
+    /// Sample id.
+    pub sample_id: String,
+    /// When taken, ms.
+    pub time_ms: i64,
+    /// Lab moisture, %.
+    pub lab_pct: f64,
+    /// Inline moisture of the matched reading, %.
+    pub inline_pct: Option<f64>,
+}
+
+/// Everything read for one device.
+#[derive(Debug, Clone, Default)]
+pub struct LineData {
+    /// Device serial.
+    pub serial: String,
+    /// Readings in sequence order.
+    pub rows: Vec<Row>,
+    /// Reference checks in time order.
+    pub refs: Vec<RefRow>,
+    /// Lab results in record order.
+    pub lab: Vec<LabRow>,
+    /// Calibration records: (position, created ms, kind, body).
+    pub cals: Vec<(u64, i64, CalKind, CalRecordBody, Option<String>)>,
+}
+
+/// Reads a device's data (the first device if `serial` is `None`).
+///
+/// # Errors
+/// A store failure, or no such device.
+pub fn load(store: &Store, serial: Option<&str>) -> anyhow::Result<LineData> {
+    let devices = store.devices()?;
+    let serial = match serial {
+        Some(s) => {
+            if !devices.iter().any(|d| d.serial == s) {
+                anyhow::bail!("no device `{s}` in {}", store.path().display());
+            }
+            s.to_string()
+        }
+        None => match devices.first() {
+            Some(d) => d.serial.clone(),
+            None => anyhow::bail!(
+                "{}: the database holds no device yet",
+                store.path().display()
+            ),
+        },
+    };
+    let rows: Vec<Row> = store
+        .readings(&serial)?
+        .into_iter()
+        .map(|r| Row {
+            time_ms: r.reading.time_ms as i64,
+            reading: r.reading,
+        })
+        .collect();
+    let refs = store
+        .reference_checks(&serial)?
+        .into_iter()
+        .map(|c| RefRow {
+            time_ms: c.time_ms,
+            ratio: (f64::from(c.check.ratio[0]) + f64::from(c.check.ratio[1])) / 2.0,
+            baseline: f64::from(c.check.baseline),
+        })
+        .collect();
+    let lab = store
+        .lab_samples(&serial)?
+        .into_iter()
+        .map(|l| {
+            let inline_pct = l.sample.reading.and_then(|seq| {
+                rows.iter()
+                    .find(|r| r.reading.seq == seq)
+                    .and_then(|r| r.reading.moisture_pct)
+                    .map(f64::from)
+            });
+            LabRow {
+                sample_id: l.sample.sample_id.clone(),
+                time_ms: l.sample.taken_unix_ms,
+                lab_pct: l.sample.lab_moisture_pct,
+                inline_pct,
+            }
+        })
+        .collect();
+    let cals = store
+        .calibrations(&serial)?
+        .into_iter()
+        .map(|c| {
+            let body: CalRecordBody =
+                serde_json::from_value(c.cal.body.clone()).unwrap_or_default();
+            (
+                c.position,
+                c.created_unix_ms,
+                c.cal.kind,
+                body,
+                c.cal.name.clone(),
+            )
+        })
+        .collect();
+    Ok(LineData {
+        serial,
+        rows,
+        refs,
+        lab,
+        cals,
+    })
+}
+
+impl LineData {
+    /// The latest product calibration record (the one in force at the end).
+    pub fn product_in_force(&self) -> Option<&CalRecordBody> {
+        self.cals
+            .iter()
+            .rev()
+            .find(|c| c.2 == CalKind::Product)
+            .map(|c| &c.3)
+    }
+
+    /// The wire product calibration in force, if the record carries one.
+    pub fn product_cal(&self) -> Option<fringe_protocol::ProductCal> {
+        self.product_in_force()
+            .and_then(|b| serde_json::from_value(b.calibration.clone()).ok())
+    }
+
+    /// The four monitors, set up as the module doc states, and their traces.
+    pub fn traces(&self) -> Vec<Trace> {
+        let mut out = Vec::new();
+        // (a) reference check
+        let ref_obs: Vec<Obs> = self
+            .refs
+            .iter()
+            .filter(|r| r.baseline > 0.0)
+            .map(|r| Obs {
+                time_ms: r.time_ms,
+                value: (r.ratio / r.baseline - 1.0) * 100.0,
+            })
+            .collect();
+        let head: Vec<f64> = ref_obs.iter().take(20).map(|o| o.value).collect();
+        let sigma = sigma_moving_range(&head).unwrap_or(0.0).max(0.005);
+        out.push(Monitor::new(Quantity::ReferenceCheck, 0.0, sigma).run(&ref_obs));
+        // (b) lab residuals
+        let lab_obs: Vec<Obs> = self
+            .lab
+            .iter()
+            .filter_map(|l| {
+                l.inline_pct.map(|i| Obs {
+                    time_ms: l.time_ms,
+                    value: l.lab_pct - i,
+                })
+            })
+            .collect();
+        let sep = self
+            .product_in_force()
+            .and_then(|b| b.statistics.as_ref())
+            .map(|s| s.sep)
+            .filter(|s| *s > 0.0);
+        let sigma = sep
+            .or_else(|| sigma_moving_range(&lab_obs.iter().map(|o| o.value).collect::<Vec<_>>()))
+            .unwrap_or(0.0);
+        out.push(Monitor::new(Quantity::LabResidual, 0.0, sigma).run(&lab_obs));
+        // (c) empty-line baseline
+        let empty: Vec<Obs> = self
+            .rows
+            .iter()
+            .filter(|r| {
+                r.reading.flags.contains(Flags::NO_PRODUCT)
+                    && r.reading.channels[1].eps_re.is_finite()
+            })
+            .map(|r| Obs {
+                time_ms: r.time_ms,
+                value: f64::from(r.reading.channels[1].eps_re),
+            })
+            .collect();
+        let first: Vec<f64> = empty.iter().take(5).map(|o| o.value).collect();
+        let target = if first.is_empty() {
+            0.0
+        } else {
+            first.iter().sum::<f64>() / first.len() as f64
+        };
+        let sigma = sigma_moving_range(&first).unwrap_or(0.0).max(0.0005);
+        out.push(Monitor::new(Quantity::EmptyBaseline, target, sigma).run(&empty));
+        // (d) temperature against the calibrated range
+        if let Some(cal) = self.product_cal() {
+            let temps: Vec<Obs> = self
+                .rows
+                .iter()
+                .filter(|r| {
+                    !r.reading.flags.contains(Flags::NO_PRODUCT)
+                        && r.reading.temperature_c.is_finite()
+                })
+                .map(|r| Obs {
+                    time_ms: r.time_ms,
+                    value: f64::from(r.reading.temperature_c),
+                })
+                .collect();
+            let sigma = sigma_moving_range(&temps.iter().map(|o| o.value).collect::<Vec<_>>())
+                .unwrap_or(0.0)
+                .max(0.1);
+            let (lo, hi) = (
+                f64::from(cal.temperature_c.min),
+                f64::from(cal.temperature_c.max),
+            );
+            out.push(Monitor::temperature(lo, hi, sigma).run(&temps));
+        }
+        out
+    }
+}

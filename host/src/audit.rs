@@ -1,0 +1,1552 @@
+//! Tamper-evident audit bundles over the store's hash chain.
+//!
+//! `fringe audit export` writes a folder an auditor can take away:
+//!
+//! ```text
+//! BUNDLE/
+//!   manifest.json               what is inside: range, chain anchor and end, column lists,
+//!                               SHA-256 of every other file, the database's chain head
+//!   records.jsonl               every chained record of the exported position range, one JSON
+//!                               object a line, typed values (the hash input), in position order
+//!   calibrations_in_force.json  the calibration records that produced the exported readings,
+//!                               each with the hash before it so it verifies on its own
+//!   devices.csv readings.csv events.csv calibrations.csv lab_samples.csv
+//!                               the same records as CSV for a spreadsheet (readings with
+//!                               decoded permittivities, UTC times and flag words)
+//!   README.txt                  how to check the bundle
+//! ```
+//!
+//! The exported range is the contiguous chain slice from the first to the
+//! last record whose time lies in `[from, to]` (reading and event device
+//! time, calibration and lab-sample record time), so the slice links from
+//! its anchor (the hash before its first record) to its last hash with no
+//! gap. `fringe audit verify BUNDLE` recomputes every link and compares every
+//! CSV cell with the record it copies; every changed, removed, added or
+//! reordered record is reported with its file, line and chain position.
+//! `--db FILE` also walks the database's own chain and checks that the
+//! bundle's records are those the database holds at the same positions: a
+//! bundle rewritten end to end (hashes recomputed) still differs from the
+//! database there.
+
+use std::collections::{BTreeMap, HashMap};
+use std::fmt;
+use std::io::{BufRead, Write};
+use std::path::{Path, PathBuf};
+
+use rusqlite::types::Value;
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+
+use crate::drift::fmt_time;
+use crate::store::chain::{self, ChainProblem, Hash, Table, GENESIS};
+use crate::store::{ChainedRecord, Store, StoreError};
+
+/// Bundle format name in the manifest.
+pub const FORMAT: &str = "fringe-audit-bundle/1";
+/// File names.
+pub const MANIFEST: &str = "manifest.json";
+/// Chained records, JSON Lines.
+pub const RECORDS: &str = "records.jsonl";
+/// Calibrations in force.
+pub const CALS_IN_FORCE: &str = "calibrations_in_force.json";
+
+/// An audit export or verification could not be carried out (a found
+/// problem is not an error: it is in the [`VerifyReport`]).
+#[derive(Debug)]
+#[non_exhaustive]
+pub enum AuditError {
+    /// The store failed.
+    Store(StoreError),
+    /// A file could not be read or written.
+    Io {
+        /// File.
+        path: PathBuf,
+        /// The system's error.
+        source: std::io::Error,
+    },
+    /// The output folder exists and is not empty.
+    OutNotEmpty {
+        /// Folder.
+        path: PathBuf,
+    },
+    /// No record lies in the requested time range.
+    NothingInRange {
+        /// From, ms.
+        from_ms: i64,
+        /// To, ms.
+        to_ms: i64,
+    },
+    /// The manifest is missing or unreadable: nothing can be checked.
+    BadManifest {
+        /// File.
+        path: PathBuf,
+        /// Why.
+        reason: String,
+    },
+}
+
+impl fmt::Display for AuditError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            AuditError::Store(e) => write!(f, "{e}"),
+            AuditError::Io { path, source } => write!(f, "{}: {source}", path.display()),
+            AuditError::OutNotEmpty { path } => write!(
+                f,
+                "{}: folder exists and is not empty; choose a new folder (bundles are never overwritten)",
+                path.display()
+            ),
+            AuditError::NothingInRange { from_ms, to_ms } => write!(
+                f,
+                "no stored record lies between {} and {}",
+                fmt_time(*from_ms),
+                fmt_time(*to_ms)
+            ),
+            AuditError::BadManifest { path, reason } => {
+                write!(f, "{}: not a usable bundle manifest: {reason}", path.display())
+            }
+        }
+    }
+}
+
+impl std::error::Error for AuditError {
+    fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
+        match self {
+            AuditError::Store(e) => Some(e),
+            AuditError::Io { source, .. } => Some(source),
+            _ => None,
+        }
+    }
+}
+
+impl From<StoreError> for AuditError {
+    fn from(e: StoreError) -> Self {
+        AuditError::Store(e)
+    }
+}
+
+fn io(path: &Path) -> impl FnOnce(std::io::Error) -> AuditError + '_ {
+    move |source| AuditError::Io {
+        path: path.to_path_buf(),
+        source,
+    }
+}
+
+/// One file listed in the manifest.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct FileEntry {
+    /// File name inside the bundle.
+    pub name: String,
+    /// SHA-256, lower-case hex.
+    pub sha256: String,
+    /// Size, bytes.
+    pub bytes: u64,
+}
+
+/// The bundle manifest (`manifest.json`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Manifest {
+    /// [`FORMAT`].
+    pub format: String,
+    /// Version of the tool that wrote it.
+    pub tool: String,
+    /// When it was written, UTC.
+    pub created_utc: String,
+    /// The database it came from (as given).
+    pub database: String,
+    /// Requested range, ms since the Unix epoch, inclusive.
+    pub from_ms: i64,
+    /// End of the requested range, ms, inclusive.
+    pub to_ms: i64,
+    /// First chain position exported.
+    pub first_position: u64,
+    /// Last chain position exported.
+    pub last_position: u64,
+    /// Hash of the record before `first_position` (the anchor), hex.
+    pub anchor_hash: String,
+    /// Hash of the record at `last_position`, hex.
+    pub last_hash: String,
+    /// The database's chain head at export: position.
+    pub db_head_position: u64,
+    /// The database's chain head at export: hash, hex.
+    pub db_head_hash: String,
+    /// Records exported per table.
+    pub records: BTreeMap<String, u64>,
+    /// Hashed columns of each table, in hash order (serial first).
+    pub columns: BTreeMap<String, Vec<String>>,
+    /// Every other file with its SHA-256.
+    pub files: Vec<FileEntry>,
+}
+
+/// A record as written to `records.jsonl`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+struct JsonRecord {
+    position: u64,
+    table: String,
+    hash: String,
+    values: serde_json::Map<String, serde_json::Value>,
+}
+
+/// A calibration in force, with its anchor.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+struct InForce {
+    /// Hash of the record before it.
+    prev_hash: String,
+    /// The record.
+    record: JsonRecord,
+}
+
+/// Summary of an export.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ExportSummary {
+    /// Folder written.
+    pub out: PathBuf,
+    /// The manifest written.
+    pub manifest: Manifest,
+    /// Calibration records in force (positions).
+    pub calibrations_in_force: Vec<u64>,
+}
+
+// ---------------------------------------------------------------- values
+
+fn hex_of(b: &[u8]) -> String {
+    use std::fmt::Write as _;
+    b.iter()
+        .fold(String::with_capacity(b.len() * 2), |mut s, x| {
+            let _ = write!(s, "{x:02x}");
+            s
+        })
+}
+
+fn unhex(s: &str) -> Option<Vec<u8>> {
+    if !s.len().is_multiple_of(2) {
+        return None;
+    }
+    (0..s.len())
+        .step_by(2)
+        .map(|i| s.get(i..i + 2).and_then(|p| u8::from_str_radix(p, 16).ok()))
+        .collect()
+}
+
+fn hash_from_hex(s: &str) -> Option<Hash> {
+    let v = unhex(s)?;
+    v.try_into().ok()
+}
+
+/// SQLite value -> JSON, keeping the storage class: INTEGER a JSON integer,
+/// REAL a JSON number with a point or exponent (shortest round-trip form),
+/// TEXT a string, BLOB `{"hex": ...}`, NULL null.
+fn to_json(v: &Value) -> serde_json::Value {
+    match v {
+        Value::Null => serde_json::Value::Null,
+        Value::Integer(i) => serde_json::Value::from(*i),
+        Value::Real(x) => serde_json::Number::from_f64(*x)
+            .map_or(serde_json::Value::Null, serde_json::Value::Number),
+        Value::Text(s) => serde_json::Value::String(s.clone()),
+        Value::Blob(b) => serde_json::json!({ "hex": hex_of(b) }),
+    }
+}
+
+/// Inverse of [`to_json`]; `None` for a shape it never writes.
+fn from_json(v: &serde_json::Value) -> Option<Value> {
+    Some(match v {
+        serde_json::Value::Null => Value::Null,
+        serde_json::Value::Number(n) if n.is_f64() => Value::Real(n.as_f64()?),
+        serde_json::Value::Number(n) => Value::Integer(n.as_i64()?),
+        serde_json::Value::String(s) => Value::Text(s.clone()),
+        serde_json::Value::Object(m) if m.len() == 1 => {
+            Value::Blob(unhex(m.get("hex")?.as_str()?)?)
+        }
+        _ => return None,
+    })
+}
+
+fn table_named(s: &str) -> Option<Table> {
+    Table::ALL.into_iter().find(|t| t.name() == s)
+}
+
+fn json_record(r: &ChainedRecord) -> JsonRecord {
+    let values = r
+        .columns
+        .iter()
+        .zip(&r.values)
+        .map(|(c, v)| (c.to_string(), to_json(v)))
+        .collect();
+    JsonRecord {
+        position: r.position,
+        table: r.table.name().to_string(),
+        hash: chain::hex(&r.hash),
+        values,
+    }
+}
+
+/// The time a record is filed under for the range (see the module doc).
+fn record_time_ms(r: &ChainedRecord) -> Option<i64> {
+    let col = match r.table {
+        Table::Devices => "first_seen_unix_ms",
+        Table::Readings | Table::Events | Table::ReferenceChecks => "time_ms",
+        Table::Calibrations => "created_unix_ms",
+        Table::LabSamples => "taken_unix_ms",
+    };
+    value_of(r, col).and_then(|v| match v {
+        Value::Integer(i) => Some(*i),
+        _ => None,
+    })
+}
+
+fn value_of<'a>(r: &'a ChainedRecord, col: &str) -> Option<&'a Value> {
+    r.columns
+        .iter()
+        .position(|c| *c == col)
+        .and_then(|i| r.values.get(i))
+}
+
+// ---------------------------------------------------------------- CSV view
+
+/// The CSV header of a table: position, hash, the hashed columns, then the
+/// readable extras (readings only).
+fn csv_header(table: Table, columns: &[String]) -> Vec<String> {
+    let mut h = vec!["position".to_string(), "hash".to_string()];
+    h.extend(columns.iter().cloned());
+    if table == Table::Readings {
+        for x in READING_EXTRAS {
+            h.push(x.to_string());
+        }
+    }
+    h
+}
+
+const READING_EXTRAS: [&str; 11] = [
+    "time_utc",
+    "flag_words",
+    "g1_s",
+    "b1_s",
+    "eps1_re",
+    "eps1_im",
+    "g2_s",
+    "b2_s",
+    "eps2_re",
+    "eps2_im",
+    "product_cal_id",
+];
+
+fn csv_cell(v: &Value) -> String {
+    match v {
+        Value::Null => String::new(),
+        Value::Integer(i) => i.to_string(),
+        Value::Real(x) => format!("{x:?}"),
+        Value::Text(s) => s.clone(),
+        Value::Blob(b) => hex_of(b),
+    }
+}
+
+/// The CSV row of a record (same order as [`csv_header`]).
+fn csv_row(
+    position: u64,
+    table: Table,
+    hash: &str,
+    columns: &[String],
+    values: &[Value],
+) -> Vec<String> {
+    let mut row = vec![position.to_string(), hash.to_string()];
+    row.extend(values.iter().map(csv_cell));
+    if table == Table::Readings {
+        let get = |c: &str| {
+            columns
+                .iter()
+                .position(|x| x == c)
+                .and_then(|i| values.get(i))
+        };
+        let int = |c: &str| match get(c) {
+            Some(Value::Integer(i)) => Some(*i),
+            _ => None,
+        };
+        row.push(int("time_ms").map(fmt_time).unwrap_or_default());
+        row.push(
+            int("flags")
+                .map(|f| {
+                    fringe_protocol::Flags::from_bits_retain(f as u16)
+                        .names()
+                        .collect::<Vec<_>>()
+                        .join("|")
+                })
+                .unwrap_or_default(),
+        );
+        let ch: Vec<String> = match get("channels") {
+            Some(Value::Blob(b)) if b.len() == 32 => b
+                .chunks(4)
+                .map(|c| format!("{:?}", f32::from_le_bytes([c[0], c[1], c[2], c[3]])))
+                .collect(),
+            _ => vec![String::new(); 8],
+        };
+        row.extend(ch);
+        row.push(
+            int("product_cal")
+                .map(|i| format!("{:08x}", i as u32))
+                .unwrap_or_default(),
+        );
+    }
+    row
+}
+
+// ---------------------------------------------------------------- export
+
+fn sha256_file(path: &Path) -> Result<(String, u64), AuditError> {
+    let bytes = std::fs::read(path).map_err(io(path))?;
+    Ok((hex_of(&Sha256::digest(&bytes)), bytes.len() as u64))
+}
+
+/// Writes a bundle of every record in `[from_ms, to_ms]` into `out` (created;
+/// refused if it exists and is not empty).
+///
+/// # Errors
+/// [`AuditError`] on a store or file failure, an occupied folder, or an
+/// empty range. On error a partly written folder is removed.
+pub fn export(
+    store: &Store,
+    db_label: &str,
+    from_ms: i64,
+    to_ms: i64,
+    out: &Path,
+) -> Result<ExportSummary, AuditError> {
+    if out.exists() {
+        let empty = std::fs::read_dir(out).map_err(io(out))?.next().is_none();
+        if !empty {
+            return Err(AuditError::OutNotEmpty {
+                path: out.to_path_buf(),
+            });
+        }
+    }
+    // Pass 1: the slice, its anchor, the calibrations the readings used.
+    let mut first: Option<(u64, Hash)> = None;
+    let mut last: Option<u64> = None;
+    let mut prev = GENESIS;
+    let mut used_cals: Vec<i64> = Vec::new();
+    // Latest calibration record per (kind, cal id), with the hash before it.
+    let mut cal_records: Vec<(Hash, ChainedRecord)> = Vec::new();
+    let mut columns: BTreeMap<String, Vec<String>> = BTreeMap::new();
+    store.for_each_record(|r| {
+        columns
+            .entry(r.table.name().to_string())
+            .or_insert_with(|| r.columns.iter().map(|c| c.to_string()).collect());
+        let in_range = record_time_ms(&r).is_some_and(|t| t >= from_ms && t <= to_ms);
+        if in_range {
+            if first.is_none() {
+                first = Some((r.position, prev));
+            }
+            last = Some(r.position);
+            if r.table == Table::Readings {
+                for c in ["cell_cal", "product_cal"] {
+                    if let Some(Value::Integer(id)) = value_of(&r, c) {
+                        if *id != 0 && !used_cals.contains(id) {
+                            used_cals.push(*id);
+                        }
+                    }
+                }
+            }
+        }
+        if r.table == Table::Calibrations {
+            cal_records.push((prev, r.clone()));
+        }
+        prev = r.hash;
+        Ok(())
+    })?;
+    let (Some((first_position, anchor)), Some(last_position)) = (first, last) else {
+        return Err(AuditError::NothingInRange { from_ms, to_ms });
+    };
+    // Calibrations in force: for each id the readings carry, the latest
+    // record of it; and for each device and kind the latest record stored
+    // before the slice ends (by chain position: a record's own time is when
+    // it was recorded, which may differ from the device clock).
+    cal_records.retain(|(_, r)| r.position <= last_position);
+    let mut in_force: Vec<&(Hash, ChainedRecord)> = Vec::new();
+    for id in &used_cals {
+        if let Some(rec) = cal_records
+            .iter()
+            .rev()
+            .find(|(_, r)| value_of(r, "cal_id") == Some(&Value::Integer(*id)))
+        {
+            in_force.push(rec);
+        }
+    }
+    let mut seen_kind: Vec<(Value, Value)> = Vec::new();
+    for rec in cal_records.iter().rev() {
+        let key = (
+            value_of(&rec.1, "serial").cloned().unwrap_or(Value::Null),
+            value_of(&rec.1, "kind").cloned().unwrap_or(Value::Null),
+        );
+        if !seen_kind.contains(&key) {
+            seen_kind.push(key);
+            if !in_force.iter().any(|r| r.1.position == rec.1.position) {
+                in_force.push(rec);
+            }
+        }
+    }
+    in_force.sort_by_key(|r| r.1.position);
+
+    std::fs::create_dir_all(out).map_err(io(out))?;
+    let result = write_bundle(
+        store,
+        db_label,
+        out,
+        (from_ms, to_ms),
+        (first_position, anchor, last_position),
+        &columns,
+        &in_force,
+    );
+    if result.is_err() {
+        let _ = std::fs::remove_dir_all(out);
+    }
+    result
+}
+
+fn write_bundle(
+    store: &Store,
+    db_label: &str,
+    out: &Path,
+    (from_ms, to_ms): (i64, i64),
+    (first_position, anchor, last_position): (u64, Hash, u64),
+    columns: &BTreeMap<String, Vec<String>>,
+    in_force: &[&(Hash, ChainedRecord)],
+) -> Result<ExportSummary, AuditError> {
+    let rec_path = out.join(RECORDS);
+    let mut rec_out =
+        std::io::BufWriter::new(std::fs::File::create(&rec_path).map_err(io(&rec_path))?);
+    let mut csvs: HashMap<Table, csv::Writer<std::fs::File>> = HashMap::new();
+    for t in Table::ALL {
+        let p = out.join(format!("{}.csv", t.name()));
+        let mut w = csv::Writer::from_path(&p).map_err(|e| AuditError::Io {
+            path: p.clone(),
+            source: e.into(),
+        })?;
+        let cols = columns.get(t.name()).cloned().unwrap_or_default();
+        w.write_record(csv_header(t, &cols))
+            .map_err(|e| AuditError::Io {
+                path: p.clone(),
+                source: e.into(),
+            })?;
+        csvs.insert(t, w);
+    }
+    let mut counts: BTreeMap<String, u64> = BTreeMap::new();
+    let mut last_hash = anchor;
+    let mut write_err: Option<AuditError> = None;
+    store.for_each_record(|r| {
+        if r.position < first_position || r.position > last_position || write_err.is_some() {
+            return Ok(());
+        }
+        let j = json_record(&r);
+        let line = serde_json::to_string(&j).unwrap_or_default();
+        if let Err(e) = writeln!(rec_out, "{line}") {
+            write_err = Some(AuditError::Io {
+                path: rec_path.clone(),
+                source: e,
+            });
+        }
+        let cols: Vec<String> = r.columns.iter().map(|c| c.to_string()).collect();
+        if let Some(w) = csvs.get_mut(&r.table) {
+            if let Err(e) = w.write_record(csv_row(r.position, r.table, &j.hash, &cols, &r.values))
+            {
+                write_err = Some(AuditError::Io {
+                    path: out.join(format!("{}.csv", r.table.name())),
+                    source: e.into(),
+                });
+            }
+        }
+        *counts.entry(r.table.name().to_string()).or_default() += 1;
+        last_hash = r.hash;
+        Ok(())
+    })?;
+    if let Some(e) = write_err {
+        return Err(e);
+    }
+    rec_out.flush().map_err(io(&rec_path))?;
+    drop(rec_out);
+    for (t, mut w) in csvs {
+        let p = out.join(format!("{}.csv", t.name()));
+        w.flush().map_err(io(&p))?;
+    }
+    let cal_path = out.join(CALS_IN_FORCE);
+    let cals: Vec<InForce> = in_force
+        .iter()
+        .map(|(prev, r)| InForce {
+            prev_hash: chain::hex(prev),
+            record: json_record(r),
+        })
+        .collect();
+    std::fs::write(
+        &cal_path,
+        serde_json::to_string_pretty(&cals).unwrap_or_default(),
+    )
+    .map_err(io(&cal_path))?;
+    let readme = out.join("README.txt");
+    std::fs::write(&readme, bundle_readme(db_label, from_ms, to_ms)).map_err(io(&readme))?;
+
+    let mut files = Vec::new();
+    let mut names: Vec<String> = vec![RECORDS.into(), CALS_IN_FORCE.into(), "README.txt".into()];
+    names.extend(Table::ALL.iter().map(|t| format!("{}.csv", t.name())));
+    for name in names {
+        let (sha256, bytes) = sha256_file(&out.join(&name))?;
+        files.push(FileEntry {
+            name,
+            sha256,
+            bytes,
+        });
+    }
+    let (head_pos, head_hash) = store.chain_head()?;
+    let manifest = Manifest {
+        format: FORMAT.into(),
+        tool: format!("fringe {}", env!("CARGO_PKG_VERSION")),
+        created_utc: fmt_time(crate::store::now_unix_ms()),
+        database: db_label.into(),
+        from_ms,
+        to_ms,
+        first_position,
+        last_position,
+        anchor_hash: chain::hex(&anchor),
+        last_hash: chain::hex(&last_hash),
+        db_head_position: head_pos,
+        db_head_hash: chain::hex(&head_hash),
+        records: counts,
+        columns: columns.clone(),
+        files,
+    };
+    let mp = out.join(MANIFEST);
+    std::fs::write(
+        &mp,
+        serde_json::to_string_pretty(&manifest).unwrap_or_default(),
+    )
+    .map_err(io(&mp))?;
+    Ok(ExportSummary {
+        out: out.to_path_buf(),
+        manifest,
+        calibrations_in_force: in_force.iter().map(|r| r.1.position).collect(),
+    })
+}
+
+fn bundle_readme(db: &str, from_ms: i64, to_ms: i64) -> String {
+    format!(
+        "Fringe audit bundle\n\
+         ===================\n\
+         Records of {db} from {} to {} (UTC), linked by a SHA-256 hash chain.\n\n\
+         records.jsonl               the chained records (the hash input), one per line\n\
+         calibrations_in_force.json  the calibration records that produced the readings\n\
+         *.csv                       the same records for a spreadsheet\n\
+         manifest.json               SHA-256 of each file, the chain anchor, end and the database's head\n\n\
+         To check it:  fringe audit verify THIS_FOLDER            (the bundle on its own)\n\
+         \x20             fringe audit verify THIS_FOLDER --db FILE  (and against the database)\n\
+         Write down the manifest's last_hash and db_head_hash when you receive the bundle:\n\
+         a later copy with other values there is not this bundle.\n",
+        fmt_time(from_ms),
+        fmt_time(to_ms)
+    )
+}
+
+// ---------------------------------------------------------------- verify
+
+/// One problem found in a bundle or database.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(tag = "problem", rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum Problem {
+    /// A file's SHA-256 differs from the manifest's.
+    FileChanged {
+        /// File.
+        file: String,
+    },
+    /// A file listed in the manifest is missing.
+    FileMissing {
+        /// File.
+        file: String,
+    },
+    /// A line of a file cannot be read as a record.
+    Unreadable {
+        /// File.
+        file: String,
+        /// Line (1-based).
+        line: u64,
+        /// Why.
+        reason: String,
+    },
+    /// The record at `position` does not hash to its stored hash: changed.
+    Changed {
+        /// File.
+        file: String,
+        /// Line.
+        line: u64,
+        /// Chain position.
+        position: u64,
+        /// Table.
+        table: String,
+    },
+    /// Positions `first..=last` are absent: records removed.
+    Removed {
+        /// File.
+        file: String,
+        /// First missing position.
+        first: u64,
+        /// Last missing position.
+        last: u64,
+    },
+    /// A record appears out of position order: records reordered.
+    Reordered {
+        /// File.
+        file: String,
+        /// Line.
+        line: u64,
+        /// Its position.
+        position: u64,
+        /// The position of the line before it.
+        after: u64,
+    },
+    /// A CSV cell differs from the chained record it copies.
+    CellChanged {
+        /// File.
+        file: String,
+        /// Line.
+        line: u64,
+        /// Chain position of the row.
+        position: u64,
+        /// Column name.
+        column: String,
+        /// What the CSV says.
+        found: String,
+        /// What the record says.
+        expected: String,
+    },
+    /// A row whose position is not among the chained records.
+    Added {
+        /// File.
+        file: String,
+        /// Line.
+        line: u64,
+        /// The position it claims.
+        position: String,
+    },
+    /// The slice's ends differ from the manifest's.
+    EndsDiffer {
+        /// What differs.
+        what: String,
+    },
+    /// A bundle record differs from the database's record at that position.
+    DiffersFromDatabase {
+        /// Chain position.
+        position: u64,
+        /// What differs.
+        what: String,
+    },
+    /// The database's own chain is damaged.
+    Database(ChainProblem),
+}
+
+impl fmt::Display for Problem {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        use Problem::*;
+        match self {
+            FileChanged { file } => write!(f, "{file}: SHA-256 differs from the manifest (file changed)"),
+            FileMissing { file } => write!(f, "{file}: listed in the manifest but missing"),
+            Unreadable { file, line, reason } => write!(f, "{file}: line {line}: unreadable: {reason}"),
+            Changed { file, line, position, table } => write!(
+                f,
+                "{file}: line {line}: position {position} ({table}) does not match its hash (record changed)"
+            ),
+            Removed { file, first, last } if first == last => {
+                write!(f, "{file}: position {first}: record removed")
+            }
+            Removed { file, first, last } => write!(f, "{file}: positions {first}..={last}: records removed"),
+            Reordered { file, line, position, after } => write!(
+                f,
+                "{file}: line {line}: position {position} comes after position {after} (records reordered)"
+            ),
+            CellChanged { file, line, position, column, found, expected } => write!(
+                f,
+                "{file}: line {line}, column {column}: position {position} reads `{found}`, the chained record has `{expected}` (value changed)"
+            ),
+            Added { file, line, position } => write!(
+                f,
+                "{file}: line {line}: position `{position}` is not a chained record of this bundle (row added or its position changed)"
+            ),
+            EndsDiffer { what } => write!(f, "{MANIFEST}: {what}"),
+            DiffersFromDatabase { position, what } => {
+                write!(f, "position {position}: bundle and database differ: {what}")
+            }
+            Database(p) => write!(f, "database: {p}"),
+        }
+    }
+}
+
+/// What a verification found.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct VerifyReport {
+    /// Records checked (bundle records plus database records).
+    pub records_checked: u64,
+    /// Chain head of the bundle (position, hash) if a bundle was checked.
+    pub bundle_last: Option<(u64, String)>,
+    /// Problems, most basic first.
+    pub problems: Vec<Problem>,
+}
+
+impl VerifyReport {
+    /// Whether nothing was found.
+    pub fn ok(&self) -> bool {
+        self.problems.is_empty()
+    }
+}
+
+struct Parsed {
+    line: u64,
+    position: u64,
+    table: Table,
+    hash: Hash,
+    values: Vec<Value>,
+}
+
+fn parse_record(
+    j: &JsonRecord,
+    columns: &BTreeMap<String, Vec<String>>,
+) -> Result<(Table, Hash, Vec<Value>), String> {
+    let table = table_named(&j.table).ok_or_else(|| format!("unknown table `{}`", j.table))?;
+    let hash = hash_from_hex(&j.hash).ok_or("hash is not 64 hex digits")?;
+    let cols = columns
+        .get(&j.table)
+        .ok_or_else(|| format!("manifest lists no columns for `{}`", j.table))?;
+    let mut values = Vec::with_capacity(cols.len());
+    for c in cols {
+        let v = j
+            .values
+            .get(c)
+            .ok_or_else(|| format!("column `{c}` missing"))?;
+        values.push(
+            from_json(v)
+                .ok_or_else(|| format!("column `{c}` has a value of a kind never written"))?,
+        );
+    }
+    if j.values.len() != cols.len() {
+        return Err("columns not in the manifest".into());
+    }
+    Ok((table, hash, values))
+}
+
+/// Checks a bundle folder, and with `db` also against that database.
+///
+/// # Errors
+/// [`AuditError`] when the manifest cannot be read or the database fails;
+/// everything found wrong inside the bundle is in the report.
+pub fn verify(dir: Option<&Path>, db: Option<&Store>) -> Result<VerifyReport, AuditError> {
+    let mut report = VerifyReport {
+        records_checked: 0,
+        bundle_last: None,
+        problems: Vec::new(),
+    };
+    let mut bundle_records: Vec<Parsed> = Vec::new();
+    if let Some(dir) = dir {
+        bundle_records = verify_bundle(dir, &mut report)?;
+    }
+    if let Some(store) = db {
+        let chain = store.verify_chain()?;
+        report.records_checked += chain.records;
+        report
+            .problems
+            .extend(chain.problems.into_iter().map(Problem::Database));
+        if !bundle_records.is_empty() {
+            let by_pos: HashMap<u64, &Parsed> =
+                bundle_records.iter().map(|p| (p.position, p)).collect();
+            let (lo, hi) = (
+                bundle_records.iter().map(|p| p.position).min().unwrap_or(0),
+                bundle_records.iter().map(|p| p.position).max().unwrap_or(0),
+            );
+            let mut seen = 0usize;
+            store.for_each_record(|r| {
+                if r.position < lo || r.position > hi {
+                    return Ok(());
+                }
+                match by_pos.get(&r.position) {
+                    None => {}
+                    Some(b) => {
+                        seen += 1;
+                        if b.table != r.table || b.values != r.values || b.hash != r.hash {
+                            let what = if b.table != r.table {
+                                format!(
+                                    "bundle has a {} record, database a {} record",
+                                    b.table, r.table
+                                )
+                            } else if b.values != r.values {
+                                let col = r
+                                    .values
+                                    .iter()
+                                    .zip(&b.values)
+                                    .position(|(x, y)| x != y)
+                                    .and_then(|i| r.columns.get(i))
+                                    .copied()
+                                    .unwrap_or("?");
+                                format!("{} record {}: column {col} differs", r.table, r.key())
+                            } else {
+                                "stored hash differs".into()
+                            };
+                            report.problems.push(Problem::DiffersFromDatabase {
+                                position: r.position,
+                                what,
+                            });
+                        }
+                    }
+                }
+                Ok(())
+            })?;
+            if seen < bundle_records.len() {
+                let db_positions_missing = bundle_records.len() - seen;
+                report.problems.push(Problem::DiffersFromDatabase {
+                    position: lo,
+                    what: format!("{db_positions_missing} bundle record(s) in {lo}..={hi} are not in the database"),
+                });
+            }
+        }
+    }
+    Ok(report)
+}
+
+fn verify_bundle(dir: &Path, report: &mut VerifyReport) -> Result<Vec<Parsed>, AuditError> {
+    let mp = dir.join(MANIFEST);
+    let text = std::fs::read_to_string(&mp).map_err(|e| AuditError::BadManifest {
+        path: mp.clone(),
+        reason: e.to_string(),
+    })?;
+    let m: Manifest = serde_json::from_str(&text).map_err(|e| AuditError::BadManifest {
+        path: mp.clone(),
+        reason: e.to_string(),
+    })?;
+    if m.format != FORMAT {
+        return Err(AuditError::BadManifest {
+            path: mp,
+            reason: format!("format `{}`, this tool reads `{FORMAT}`", m.format),
+        });
+    }
+    // 1. Files against the manifest.
+    for f in &m.files {
+        let p = dir.join(&f.name);
+        if !p.exists() {
+            report.problems.push(Problem::FileMissing {
+                file: f.name.clone(),
+            });
+            continue;
+        }
+        let (sha, _) = sha256_file(&p)?;
+        if sha != f.sha256 {
+            report.problems.push(Problem::FileChanged {
+                file: f.name.clone(),
+            });
+        }
+    }
+    // 2. The chain slice in records.jsonl.
+    let mut recs: Vec<Parsed> = Vec::new();
+    let rp = dir.join(RECORDS);
+    if let Ok(file) = std::fs::File::open(&rp) {
+        for (i, line) in std::io::BufReader::new(file).lines().enumerate() {
+            let line_no = i as u64 + 1;
+            let line = line.map_err(io(&rp))?;
+            if line.trim().is_empty() {
+                continue;
+            }
+            let parsed = serde_json::from_str::<JsonRecord>(&line)
+                .map_err(|e| e.to_string())
+                .and_then(|j| parse_record(&j, &m.columns).map(|r| (j.position, r)));
+            match parsed {
+                Ok((position, (table, hash, values))) => recs.push(Parsed {
+                    line: line_no,
+                    position,
+                    table,
+                    hash,
+                    values,
+                }),
+                Err(reason) => report.problems.push(Problem::Unreadable {
+                    file: RECORDS.into(),
+                    line: line_no,
+                    reason,
+                }),
+            }
+        }
+    }
+    report.records_checked += recs.len() as u64;
+    for w in recs.windows(2) {
+        if w[1].position <= w[0].position {
+            report.problems.push(Problem::Reordered {
+                file: RECORDS.into(),
+                line: w[1].line,
+                position: w[1].position,
+                after: w[0].position,
+            });
+        }
+    }
+    let mut sorted: Vec<&Parsed> = recs.iter().collect();
+    sorted.sort_by_key(|p| p.position);
+    let stored: HashMap<u64, Hash> = sorted.iter().map(|p| (p.position, p.hash)).collect();
+    let anchor = hash_from_hex(&m.anchor_hash).unwrap_or(GENESIS);
+    let mut expected = m.first_position;
+    let mut prev = anchor;
+    for p in &sorted {
+        if p.position > expected {
+            report.problems.push(Problem::Removed {
+                file: RECORDS.into(),
+                first: expected,
+                last: p.position - 1,
+            });
+        }
+        let contiguous = p.position == expected;
+        if contiguous
+            && chain::link(&prev, p.position, p.table, &chain::canonical(&p.values)) != p.hash
+        {
+            report.problems.push(Problem::Changed {
+                file: RECORDS.into(),
+                line: p.line,
+                position: p.position,
+                table: p.table.name().into(),
+            });
+        }
+        prev = p.hash;
+        expected = p.position + 1;
+    }
+    let last = sorted.last().map(|p| (p.position, p.hash));
+    match last {
+        Some((pos, hash)) => {
+            if pos < m.last_position {
+                report.problems.push(Problem::Removed {
+                    file: RECORDS.into(),
+                    first: pos + 1,
+                    last: m.last_position,
+                });
+            } else if pos > m.last_position || chain::hex(&hash) != m.last_hash {
+                report.problems.push(Problem::EndsDiffer {
+                    what: format!("the records end at position {pos} with another hash than the manifest's last_hash"),
+                });
+            }
+            report.bundle_last = Some((pos, chain::hex(&hash)));
+        }
+        None => report.problems.push(Problem::Removed {
+            file: RECORDS.into(),
+            first: m.first_position,
+            last: m.last_position,
+        }),
+    }
+    if sorted
+        .first()
+        .is_some_and(|p| p.position < m.first_position)
+    {
+        report.problems.push(Problem::EndsDiffer {
+            what: format!("records start before first_position {}", m.first_position),
+        });
+    }
+    // 3. Calibrations in force: each links from its anchor.
+    let cp = dir.join(CALS_IN_FORCE);
+    if let Ok(text) = std::fs::read_to_string(&cp) {
+        match serde_json::from_str::<Vec<InForce>>(&text) {
+            Ok(list) => {
+                for (i, c) in list.iter().enumerate() {
+                    let ok = parse_record(&c.record, &m.columns)
+                        .ok()
+                        .and_then(|(t, h, v)| {
+                            let prev = hash_from_hex(&c.prev_hash)?;
+                            let inside_prev =
+                                stored.get(&(c.record.position.wrapping_sub(1))).copied();
+                            let linked =
+                                chain::link(&prev, c.record.position, t, &chain::canonical(&v))
+                                    == h;
+                            let same_as_slice =
+                                stored.get(&c.record.position).is_none_or(|s| *s == h);
+                            let anchor_agrees = inside_prev.is_none_or(|ip| ip == prev);
+                            Some(linked && same_as_slice && anchor_agrees)
+                        });
+                    report.records_checked += 1;
+                    if ok != Some(true) {
+                        report.problems.push(Problem::Changed {
+                            file: CALS_IN_FORCE.into(),
+                            line: i as u64 + 1,
+                            position: c.record.position,
+                            table: c.record.table.clone(),
+                        });
+                    }
+                }
+            }
+            Err(e) => report.problems.push(Problem::Unreadable {
+                file: CALS_IN_FORCE.into(),
+                line: e.line() as u64,
+                reason: e.to_string(),
+            }),
+        }
+    }
+    // 4. Every CSV row against the record it copies.
+    for t in Table::ALL {
+        let name = format!("{}.csv", t.name());
+        let path = dir.join(&name);
+        if !path.exists() {
+            continue;
+        }
+        let cols = m.columns.get(t.name()).cloned().unwrap_or_default();
+        let header = csv_header(t, &cols);
+        let expected_rows: BTreeMap<u64, Vec<String>> = recs
+            .iter()
+            .filter(|p| p.table == t)
+            .map(|p| {
+                (
+                    p.position,
+                    csv_row(p.position, t, &chain::hex(&p.hash), &cols, &p.values),
+                )
+            })
+            .collect();
+        check_csv(&path, &name, &header, &expected_rows, report);
+    }
+    Ok(recs)
+}
+
+fn check_csv(
+    path: &Path,
+    name: &str,
+    header: &[String],
+    expected: &BTreeMap<u64, Vec<String>>,
+    report: &mut VerifyReport,
+) {
+    let mut rdr = match csv::ReaderBuilder::new().flexible(true).from_path(path) {
+        Ok(r) => r,
+        Err(e) => {
+            report.problems.push(Problem::Unreadable {
+                file: name.into(),
+                line: 1,
+                reason: e.to_string(),
+            });
+            return;
+        }
+    };
+    match rdr.headers() {
+        Ok(h) if h.iter().eq(header.iter().map(String::as_str)) => {}
+        Ok(_) => report.problems.push(Problem::Unreadable {
+            file: name.into(),
+            line: 1,
+            reason: "header differs from the columns this bundle was written with".into(),
+        }),
+        Err(e) => report.problems.push(Problem::Unreadable {
+            file: name.into(),
+            line: 1,
+            reason: e.to_string(),
+        }),
+    }
+    let mut seen: Vec<u64> = Vec::new();
+    let mut last_pos: Option<u64> = None;
+    for rec in rdr.records() {
+        let rec = match rec {
+            Ok(r) => r,
+            Err(e) => {
+                let line = e.position().map_or(0, |p| p.line());
+                report.problems.push(Problem::Unreadable {
+                    file: name.into(),
+                    line,
+                    reason: e.to_string(),
+                });
+                continue;
+            }
+        };
+        let line = rec.position().map_or(0, |p| p.line());
+        let pos_text = rec.get(0).unwrap_or("");
+        let Some((pos, want)) = pos_text
+            .parse::<u64>()
+            .ok()
+            .and_then(|p| expected.get(&p).map(|w| (p, w)))
+        else {
+            report.problems.push(Problem::Added {
+                file: name.into(),
+                line,
+                position: pos_text.into(),
+            });
+            continue;
+        };
+        if let Some(prev) = last_pos {
+            if pos <= prev {
+                report.problems.push(Problem::Reordered {
+                    file: name.into(),
+                    line,
+                    position: pos,
+                    after: prev,
+                });
+            }
+        }
+        last_pos = Some(pos);
+        seen.push(pos);
+        for (i, w) in want.iter().enumerate() {
+            let found = rec.get(i).unwrap_or("");
+            if found != w {
+                report.problems.push(Problem::CellChanged {
+                    file: name.into(),
+                    line,
+                    position: pos,
+                    column: header.get(i).cloned().unwrap_or_default(),
+                    found: found.into(),
+                    expected: w.clone(),
+                });
+            }
+        }
+    }
+    seen.sort_unstable();
+    for &p in expected.keys() {
+        if seen.binary_search(&p).is_err() {
+            report.problems.push(Problem::Removed {
+                file: name.into(),
+                first: p,
+                last: p,
+            });
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::store::{CalKind, DeviceInfo, NewCalibration, NewLabSample, Source};
+    use fringe_protocol::{CalId, ChannelValue, Flags, Reading, Seq};
+
+    const T0: i64 = 1_796_104_800_000;
+
+    fn reading(i: u32) -> Reading {
+        Reading {
+            seq: Seq {
+                boot: 1,
+                counter: i,
+            },
+            time_ms: (T0 + i64::from(i) * 60_000) as u64,
+            channels: [
+                ChannelValue {
+                    g_s: 1e-6,
+                    b_s: 2e-5,
+                    eps_re: 6.0 + i as f32 * 0.01,
+                    eps_im: 1.2,
+                },
+                ChannelValue {
+                    g_s: 2e-6,
+                    b_s: 3e-4,
+                    eps_re: 5.0,
+                    eps_im: 0.3,
+                },
+            ],
+            temperature_c: 22.5,
+            moisture_pct: Some(14.0 + i as f32 * 0.05),
+            uncertainty_pct: 0.25,
+            flags: if i == 3 {
+                Flags::OUT_OF_RANGE
+            } else {
+                Flags::empty()
+            },
+            cell_cal: CalId([0, 0, 0, 1]),
+            product_cal: CalId([0xab, 0xcd, 0, 2]),
+        }
+    }
+
+    /// A store with a device, a calibration before the range, 12 readings
+    /// and a lab sample; returns (dir, db path).
+    fn fixture(name: &str) -> (tempfile::TempDir, PathBuf) {
+        let dir = tempfile::tempdir().expect("tempdir");
+        let db = dir.path().join(format!("{name}.db"));
+        let mut s = Store::open(&db).expect("open");
+        s.ensure_device(&DeviceInfo {
+            serial: "HGM-L2-0007".into(),
+            ..Default::default()
+        })
+        .expect("device");
+        s.insert_calibration(
+            "HGM-L2-0007",
+            &NewCalibration {
+                kind: CalKind::Product,
+                cal_id: CalId([0xab, 0xcd, 0, 2]),
+                slot: Some(0),
+                name: Some("HM wheat L2".into()),
+                body: serde_json::json!({"operator": "R. Okafor", "reason": "test"}),
+                note: None,
+                supersedes: None,
+            },
+        )
+        .expect("cal");
+        let rs: Vec<Reading> = (0..12).map(reading).collect();
+        s.insert_readings("HGM-L2-0007", &rs, Source::Stream)
+            .expect("readings");
+        s.insert_lab_sample(
+            "HGM-L2-0007",
+            &NewLabSample {
+                sample_id: "G-0411".into(),
+                taken_unix_ms: T0 + 5 * 60_000,
+                product: None,
+                lab_moisture_pct: 14.4,
+                basis: "wet".into(),
+                method: Some("oven".into()),
+                reading: Some(Seq {
+                    boot: 1,
+                    counter: 5,
+                }),
+                note: None,
+                supersedes: None,
+            },
+        )
+        .expect("lab");
+        (dir, db)
+    }
+
+    fn export_to(db: &Path, out: &Path) -> ExportSummary {
+        let s = Store::open_read_only(db).expect("ro");
+        export(&s, "test.db", T0, T0 + 3_600_000, out).expect("export")
+    }
+
+    fn check(dir: &Path) -> VerifyReport {
+        verify(Some(dir), None).expect("verify runs")
+    }
+
+    fn lines(p: &Path) -> Vec<String> {
+        std::fs::read_to_string(p)
+            .expect("read")
+            .lines()
+            .map(str::to_string)
+            .collect()
+    }
+
+    fn write_lines(p: &Path, l: &[String]) {
+        std::fs::write(p, l.join("\n") + "\n").expect("write");
+    }
+
+    #[test]
+    fn untouched_bundle_verifies_alone_and_against_the_database() {
+        let (dir, db) = fixture("a");
+        let out = dir.path().join("bundle");
+        let s = export_to(&db, &out);
+        assert_eq!(s.manifest.records.get("readings"), Some(&12));
+        assert_eq!(
+            s.calibrations_in_force.len(),
+            1,
+            "the product calibration before the range is in force"
+        );
+        let r = check(&out);
+        assert!(r.ok(), "{:?}", r.problems);
+        let store = Store::open_read_only(&db).expect("ro");
+        let r = verify(Some(&out), Some(&store)).expect("verify");
+        assert!(r.ok(), "{:?}", r.problems);
+        // Refuses to overwrite.
+        assert!(matches!(
+            export(&store, "x", T0, T0 + 1, &out),
+            Err(AuditError::OutNotEmpty { .. })
+        ));
+        assert!(matches!(
+            export(&store, "x", 0, 1, &dir.path().join("e")),
+            Err(AuditError::NothingInRange { .. })
+        ));
+    }
+
+    #[test]
+    fn edited_csv_value_is_located() {
+        let (dir, db) = fixture("b");
+        let out = dir.path().join("bundle");
+        export_to(&db, &out);
+        let p = out.join("readings.csv");
+        let mut l = lines(&p);
+        // Line 5 of the file (header is line 1): change its moisture cell.
+        let hdr: Vec<&str> = l[0].split(',').collect();
+        let col = hdr
+            .iter()
+            .position(|h| *h == "moisture_pct")
+            .expect("column");
+        let mut cells: Vec<String> = l[4].split(',').map(str::to_string).collect();
+        let pos: u64 = cells[0].parse().expect("position");
+        cells[col] = "12.0".into();
+        l[4] = cells.join(",");
+        write_lines(&p, &l);
+        let r = check(&out);
+        assert!(
+            r.problems.contains(&Problem::FileChanged {
+                file: "readings.csv".into()
+            }),
+            "{:?}",
+            r.problems
+        );
+        assert!(
+            r.problems.iter().any(|x| matches!(x, Problem::CellChanged { line: 5, position, column, .. } if *position == pos && column == "moisture_pct")),
+            "{:?}",
+            r.problems
+        );
+        let msg = r
+            .problems
+            .iter()
+            .map(|p| p.to_string())
+            .collect::<Vec<_>>()
+            .join("\n");
+        assert!(
+            msg.contains("readings.csv: line 5, column moisture_pct"),
+            "{msg}"
+        );
+    }
+
+    #[test]
+    fn edited_record_value_is_located_by_position() {
+        let (dir, db) = fixture("c");
+        let out = dir.path().join("bundle");
+        export_to(&db, &out);
+        let p = out.join(RECORDS);
+        let mut l = lines(&p);
+        let victim = l
+            .iter()
+            .position(|x| x.contains("\"readings\"") && x.contains("\"counter\":7"))
+            .expect("reading 7");
+        let pos: u64 = serde_json::from_str::<JsonRecord>(&l[victim])
+            .expect("json")
+            .position;
+        l[victim] = l[victim].replace("\"temperature_c\":22.5", "\"temperature_c\":21.5");
+        write_lines(&p, &l);
+        let r = check(&out);
+        assert!(
+            r.problems
+                .iter()
+                .any(|x| matches!(x, Problem::Changed { position, .. } if *position == pos)),
+            "{:?}",
+            r.problems
+        );
+    }
+
+    #[test]
+    fn deleted_rows_are_located() {
+        let (dir, db) = fixture("d");
+        let out = dir.path().join("bundle");
+        export_to(&db, &out);
+        let p = out.join(RECORDS);
+        let mut l = lines(&p);
+        let pos: u64 = serde_json::from_str::<JsonRecord>(&l[4])
+            .expect("json")
+            .position;
+        l.remove(4);
+        write_lines(&p, &l);
+        let c = out.join("readings.csv");
+        let mut lc = lines(&c);
+        let cpos: u64 = lc[3]
+            .split(',')
+            .next()
+            .and_then(|x| x.parse().ok())
+            .expect("pos");
+        lc.remove(3);
+        write_lines(&c, &lc);
+        let r = check(&out);
+        assert!(
+            r.problems.contains(&Problem::Removed {
+                file: RECORDS.into(),
+                first: pos,
+                last: pos
+            }),
+            "{:?}",
+            r.problems
+        );
+        assert!(
+            r.problems.contains(&Problem::Removed {
+                file: "readings.csv".into(),
+                first: cpos,
+                last: cpos
+            }),
+            "{:?}",
+            r.problems
+        );
+    }
+
+    #[test]
+    fn swapped_rows_are_located() {
+        let (dir, db) = fixture("e");
+        let out = dir.path().join("bundle");
+        export_to(&db, &out);
+        let p = out.join(RECORDS);
+        let mut l = lines(&p);
+        l.swap(3, 4);
+        write_lines(&p, &l);
+        let c = out.join("readings.csv");
+        let mut lc = lines(&c);
+        lc.swap(6, 7);
+        write_lines(&c, &lc);
+        let r = check(&out);
+        assert!(
+            r.problems
+                .iter()
+                .any(|x| matches!(x, Problem::Reordered { file, line: 5, .. } if file == RECORDS)),
+            "{:?}",
+            r.problems
+        );
+        assert!(
+            r.problems.iter().any(
+                |x| matches!(x, Problem::Reordered { file, line: 8, .. } if file == "readings.csv")
+            ),
+            "{:?}",
+            r.problems
+        );
+        assert!(
+            !r.problems
+                .iter()
+                .any(|x| matches!(x, Problem::Changed { .. })),
+            "a pure swap changes no record: {:?}",
+            r.problems
+        );
+    }
+
+    /// Tampering with the database itself (append-only triggers dropped, as
+    /// someone with file access could).
+    fn tamper(db: &Path, sql: &str) {
+        let c = rusqlite::Connection::open(db).expect("open");
+        for t in ["readings_no_update", "readings_no_delete"] {
+            c.execute_batch(&format!("DROP TRIGGER IF EXISTS {t};"))
+                .expect("drop trigger");
+        }
+        c.execute_batch(sql).expect("tamper");
+    }
+
+    fn reading_position(db: &Path, counter: u32) -> u64 {
+        let c = rusqlite::Connection::open(db).expect("open");
+        c.query_row(
+            "SELECT position FROM readings WHERE counter = ?1",
+            [counter],
+            |r| r.get::<_, i64>(0),
+        )
+        .expect("row") as u64
+    }
+
+    #[test]
+    fn database_edit_delete_and_swap_are_located() {
+        for case in ["edit", "delete", "swap"] {
+            let (dir, db) = fixture(case);
+            let out = dir.path().join("bundle");
+            export_to(&db, &out);
+            let p4 = reading_position(&db, 4);
+            let p5 = reading_position(&db, 5);
+            match case {
+                "edit" => tamper(
+                    &db,
+                    &format!("UPDATE readings SET moisture_pct = 11.0 WHERE position = {p4};"),
+                ),
+                "delete" => tamper(&db, &format!("DELETE FROM readings WHERE position = {p4};")),
+                _ => tamper(
+                    &db,
+                    &format!(
+                        "UPDATE readings SET position = -1 WHERE position = {p4};\
+                         UPDATE readings SET position = {p4} WHERE position = {p5};\
+                         UPDATE readings SET position = {p5} WHERE position = -1;"
+                    ),
+                ),
+            }
+            let store = Store::open_read_only(&db).expect("ro");
+            let r = verify(Some(&out), Some(&store)).expect("verify");
+            let found = r.problems.iter().any(|x| match (case, x) {
+                ("edit", Problem::Database(ChainProblem::Changed { position, .. })) => {
+                    *position == p4
+                }
+                ("delete", Problem::Database(ChainProblem::Missing { first, last })) => {
+                    *first == p4 && *last == p4
+                }
+                ("swap", Problem::Database(ChainProblem::Moved { position, .. })) => {
+                    *position == p4 || *position == p5
+                }
+                _ => false,
+            });
+            assert!(found, "{case}: {:?}", r.problems);
+            // The bundle taken before the change shows where the database differs.
+            assert!(
+                r.problems
+                    .iter()
+                    .any(|x| matches!(x, Problem::DiffersFromDatabase { .. })),
+                "{case}: {:?}",
+                r.problems
+            );
+            // The bundle on its own is still intact.
+            assert!(check(&out).ok(), "{case}");
+        }
+    }
+}

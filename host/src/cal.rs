@@ -1,0 +1,779 @@
+//! `fringe cal fit` and `fringe cal predict`: product calibration from
+//! reference samples, and the device's own evaluation applied to a table.
+//!
+//! The fitting and statistics are `fringe_calibration::fit` (`fit_single`,
+//! `fit_relaxation`, `compare`); the evaluation is
+//! `fringe_calibration::estimate::estimate` on the calibration parsed by the
+//! firmware's own `parse_product`, so a prediction here is the number the
+//! device would report for the same permittivities and temperature.
+
+use std::io::Write as _;
+use std::path::{Path, PathBuf};
+
+use anyhow::{bail, Context as _};
+use clap::{Args, ValueEnum};
+use fringe_calibration::estimate::{estimate, Channel, EstimateInput};
+use fringe_calibration::fit::product::{
+    compare, fit_relaxation, fit_single, ChannelReading, MixingFit, ProductFit, RelaxationOptions,
+    Sample, SingleOptions,
+};
+use fringe_calibration::stats::{Folds, PredictionStats};
+use fringe_protocol::{short_string, Basis, Flags, ModelKind, ProductCal, Range};
+use serde_json::json;
+use sha2::{Digest, Sha256};
+
+use crate::plots;
+use crate::product_file::{ProductFile, Source, Statistics};
+use crate::samples::{read_samples, MoistureColumn, RefSample, SampleSet};
+
+/// Which model `cal fit` fits.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum FitModel {
+    /// Polynomial in eps' at one frequency plus a temperature term.
+    Single,
+    /// Two-frequency relaxation inversion, mixing model, temperature and conductivity terms.
+    Relaxation,
+    /// Both, side by side; `--out` gets the one with the smaller cross-validated SEP.
+    Compare,
+}
+
+/// `fringe cal fit`.
+#[derive(Debug, Clone, Args)]
+#[command(
+    after_help = "Example:\n  fringe cal fit --samples lab-2026-11.csv --model compare --bulk-density-kg-m3 760 \\\n      --particle-density-kg-m3 1400 --out wheat-l2.toml --plot wheat-l2.svg"
+)]
+pub struct FitArgs {
+    /// Reference-sample table (CSV: sample_id, moisture_pct, temperature_c, freq1_hz, eps1_re, eps1_im, freq2_hz, eps2_re, eps2_im).
+    #[arg(long, value_name = "FILE.csv")]
+    pub samples: PathBuf,
+    /// Model to fit.
+    #[arg(long, value_enum, default_value_t = FitModel::Compare)]
+    pub model: FitModel,
+    /// Where to write the product calibration (TOML).
+    #[arg(long, value_name = "PRODUCT.toml")]
+    pub out: PathBuf,
+    /// Product name as the plant calls it (at most 16 bytes) [default: the output file's stem].
+    #[arg(long)]
+    pub name: Option<String>,
+    /// Wet bulk density of the product at the sensor, kg/m^3 (relaxation model; measure it).
+    #[arg(long, value_name = "KG_M3")]
+    pub bulk_density_kg_m3: Option<f64>,
+    /// Particle density of the dry matter, kg/m^3 (relaxation model; measured or handbook).
+    #[arg(long, value_name = "KG_M3")]
+    pub particle_density_kg_m3: Option<f64>,
+    /// Polynomial degree of the regression, 1-3.
+    #[arg(long, default_value_t = 2, value_parser = clap::value_parser!(u8).range(1..=3))]
+    pub degree: u8,
+    /// Cross-validation: 0 for leave-one-out, else the number of folds (venetian blinds).
+    #[arg(long, default_value_t = 0)]
+    pub folds: usize,
+    /// Noise standard deviation of eps' and eps'' (for the uncertainty the device reports).
+    #[arg(long, default_value_t = 0.02)]
+    pub eps_sd: f64,
+    /// Moisture basis of the lab values.
+    #[arg(long, value_parser = ["wet", "dry"], default_value = "wet")]
+    pub basis: String,
+    /// Print the result as one JSON object.
+    #[arg(long)]
+    pub json: bool,
+    /// Draw predicted vs lab and residuals vs each input to this SVG file.
+    #[arg(long, value_name = "FILE.svg")]
+    pub plot: Option<PathBuf>,
+}
+
+/// `fringe cal predict`.
+#[derive(Debug, Clone, Args)]
+#[command(
+    after_help = "Example:\n  fringe cal predict --cal wheat-l2.toml --input check-samples.csv --out predicted.csv"
+)]
+pub struct PredictArgs {
+    /// Product calibration (TOML written by `fringe cal fit`).
+    #[arg(long, value_name = "PRODUCT.toml")]
+    pub cal: PathBuf,
+    /// Table of samples (reference-sample columns; moisture_pct optional).
+    #[arg(long, value_name = "FILE.csv")]
+    pub input: PathBuf,
+    /// Output CSV [default: stdout].
+    #[arg(long, value_name = "FILE.csv")]
+    pub out: Option<PathBuf>,
+    /// Noise standard deviation of eps' and eps'' used for the uncertainty.
+    #[arg(long, default_value_t = 0.02)]
+    pub eps_sd: f32,
+}
+
+fn to_fit_samples(set: &SampleSet) -> Vec<Sample> {
+    set.samples
+        .iter()
+        .map(|s| Sample {
+            id: s.sample_id.clone(),
+            moisture_pct: s.moisture_pct.unwrap_or(f64::NAN),
+            temperature_c: s.temperature_c,
+            channels: (0..2)
+                .map(|k| ChannelReading {
+                    freq_hz: s.freqs_hz[k],
+                    eps_re: s.eps_re[k],
+                    eps_loss: s.eps_im[k],
+                })
+                .collect(),
+        })
+        .collect()
+}
+
+/// Coefficients each model fits (for the "+3" rule, stated before fitting).
+fn n_coef(model: FitModel, degree: usize) -> usize {
+    match model {
+        // c0..c_degree + temperature term
+        FitModel::Single => degree + 2,
+        // p0..p_degree + temperature + conductivity terms
+        FitModel::Relaxation | FitModel::Compare => degree + 3,
+    }
+}
+
+/// Result of a fit, for printing and files.
+#[derive(Debug, Clone)]
+pub struct FitOutcome {
+    /// The fit written to the file.
+    pub chosen: ProductFit,
+    /// The other fit (compare only).
+    pub other: Option<ProductFit>,
+    /// Cross-validated SEP single / relaxation (compare only).
+    pub sep_ratio: Option<f64>,
+    /// The file written.
+    pub file: ProductFile,
+    /// Its wire form.
+    pub wire: ProductCal,
+}
+
+fn statistics_of(f: &ProductFit) -> Statistics {
+    let cv = &f.stats.cross_validation;
+    Statistics {
+        n: f.stats.n,
+        sec: f.stats.sec_pct,
+        sep: cv.sep,
+        bias: cv.bias,
+        slope: cv.slope,
+        r2: cv.r_squared,
+        rpd: cv.rpd,
+        cross_validation: match f.stats.folds {
+            Folds::LeaveOneOut => "leave-one-out".into(),
+            Folds::KFold(k) => format!("{k}-fold venetian blinds"),
+        },
+    }
+}
+
+fn model_words(k: fringe_calibration::product::ModelKind) -> &'static str {
+    match k {
+        fringe_calibration::product::ModelKind::SingleFrequency => "single-frequency",
+        fringe_calibration::product::ModelKind::Relaxation => "relaxation",
+    }
+}
+
+/// Wire form of a fit.
+pub fn wire_of(
+    f: &ProductFit,
+    name: &str,
+    basis: Basis,
+    made_s: u64,
+) -> anyhow::Result<ProductCal> {
+    let c = &f.calibration;
+    let model = match c.model.kind() {
+        fringe_calibration::product::ModelKind::SingleFrequency => ModelKind::SingleFrequency,
+        fringe_calibration::product::ModelKind::Relaxation => ModelKind::Relaxation,
+    };
+    let inputs: Vec<Range> = c
+        .input_ranges()
+        .iter()
+        .map(|r| Range {
+            min: r.min,
+            max: r.max,
+        })
+        .collect();
+    Ok(ProductCal {
+        name: short_string(name),
+        model,
+        basis,
+        params: heapless::Vec::from_slice(&f.params)
+            .map_err(|_| anyhow::anyhow!("fit gave too many parameters"))?,
+        moisture_pct: Range {
+            min: c.moisture_pct.min,
+            max: c.moisture_pct.max,
+        },
+        temperature_c: Range {
+            min: c.temperature_c.min,
+            max: c.temperature_c.max,
+        },
+        inputs: heapless::Vec::from_slice(&inputs)
+            .map_err(|_| anyhow::anyhow!("fit gave too many input ranges"))?,
+        sec_pct: c.sec_pct,
+        made_s,
+    })
+}
+
+/// Fits as `args` says, without writing anything.
+///
+/// # Errors
+/// A bad sample table ([`crate::samples::SampleError`], naming file, line,
+/// column and field), too few samples, missing densities, or a failed fit.
+pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
+    let set = read_samples(&args.samples, MoistureColumn::Required)?;
+    let degree = usize::from(args.degree);
+    let words = match args.model {
+        FitModel::Single => "single-frequency",
+        FitModel::Relaxation => "relaxation",
+        FitModel::Compare => "relaxation (and single-frequency)",
+    };
+    set.require(n_coef(args.model, degree), words)?;
+    let samples = to_fit_samples(&set);
+    let folds = if args.folds == 0 {
+        Folds::LeaveOneOut
+    } else {
+        Folds::KFold(args.folds)
+    };
+    let single = SingleOptions {
+        degree,
+        eps_sd: args.eps_sd,
+        folds,
+        ..SingleOptions::default()
+    };
+    let relax = || -> anyhow::Result<RelaxationOptions> {
+        let (Some(b), Some(p)) = (args.bulk_density_kg_m3, args.particle_density_kg_m3) else {
+            bail!("the relaxation model needs --bulk-density-kg-m3 and --particle-density-kg-m3 (measured for this product)");
+        };
+        Ok(RelaxationOptions {
+            degree,
+            eps_sd: args.eps_sd,
+            folds,
+            mixing: MixingFit::DryPermittivity { exponent: 0.5 },
+            ..RelaxationOptions::new(b, p)
+        })
+    };
+    let ctx = || format!("{}: fitting the {words} model", args.samples.display());
+    let (chosen, other, sep_ratio) = match args.model {
+        FitModel::Single => (fit_single(&samples, &single).with_context(ctx)?, None, None),
+        FitModel::Relaxation => (
+            fit_relaxation(&samples, &relax()?).with_context(ctx)?,
+            None,
+            None,
+        ),
+        FitModel::Compare => {
+            let c = compare(&samples, &single, &relax()?).with_context(ctx)?;
+            if c.better == fringe_calibration::product::ModelKind::Relaxation {
+                (c.relaxation, Some(c.single), Some(c.sep_ratio))
+            } else {
+                (c.single, Some(c.relaxation), Some(c.sep_ratio))
+            }
+        }
+    };
+    let name = args
+        .name
+        .clone()
+        .or_else(|| {
+            args.out
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+        })
+        .unwrap_or_else(|| "product".into());
+    if name.is_empty() || name.len() > fringe_protocol::NAME_LEN {
+        bail!(
+            "product name `{name}` must be 1 to {} bytes (use --name)",
+            fringe_protocol::NAME_LEN
+        );
+    }
+    let basis = if args.basis == "dry" {
+        Basis::Dry
+    } else {
+        Basis::Wet
+    };
+    let bytes = std::fs::read(&args.samples)
+        .with_context(|| format!("reading {}", args.samples.display()))?;
+    let made_s = (crate::store::now_unix_ms() / 1000).max(0) as u64;
+    let wire = wire_of(&chosen, &name, basis, made_s)?;
+    let file = ProductFile::from_wire(
+        &wire,
+        chosen.calibration.model.input_names(),
+        statistics_of(&chosen),
+        Source {
+            samples: args.samples.display().to_string(),
+            samples_sha256: Sha256::digest(&bytes)
+                .iter()
+                .map(|b| format!("{b:02x}"))
+                .collect(),
+            outliers: chosen
+                .samples
+                .iter()
+                .filter(|s| s.outlier)
+                .map(|s| s.id.clone())
+                .collect(),
+        },
+    );
+    Ok(FitOutcome {
+        chosen,
+        other,
+        sep_ratio,
+        file,
+        wire,
+    })
+}
+
+fn stats_json(f: &ProductFit) -> serde_json::Value {
+    let s = statistics_of(f);
+    json!({
+        "model": model_words(f.calibration.model.kind()),
+        "n": s.n, "sec": s.sec, "sep": s.sep, "bias": s.bias, "slope": s.slope, "r2": s.r2, "rpd": s.rpd,
+        "rmsep": f.stats.cross_validation.rmsep,
+        "cross_validation": s.cross_validation,
+        "outliers": f.samples.iter().filter(|x| x.outlier).map(|x| x.id.clone()).collect::<Vec<_>>(),
+        "high_leverage": f.samples.iter().filter(|x| x.high_leverage).map(|x| x.id.clone()).collect::<Vec<_>>(),
+    })
+}
+
+/// The JSON object `--json` prints.
+pub fn outcome_json(o: &FitOutcome, out: &Path) -> serde_json::Value {
+    let mut v = stats_json(&o.chosen);
+    let c = &o.wire;
+    v["id"] = json!(c.content_id().to_string());
+    v["file"] = json!(out.display().to_string());
+    v["valid_ranges"] = json!({
+        "moisture_pct": [c.moisture_pct.min, c.moisture_pct.max],
+        "temperature_c": [c.temperature_c.min, c.temperature_c.max],
+        "inputs": o.file.inputs.iter().map(|r| json!({"name": r.name, "min": r.min, "max": r.max})).collect::<Vec<_>>(),
+    });
+    if let (Some(other), Some(ratio)) = (&o.other, o.sep_ratio) {
+        v["comparison"] = json!({
+            "sep_ratio_single_over_relaxation": ratio,
+            "chosen": stats_json(&o.chosen),
+            "other": stats_json(other),
+        });
+    }
+    v
+}
+
+fn print_fit(f: &ProductFit, w: &mut dyn std::io::Write) -> std::io::Result<()> {
+    let s = statistics_of(f);
+    writeln!(
+        w,
+        "{} model, {} samples ({} cross-validation):",
+        model_words(f.calibration.model.kind()),
+        s.n,
+        s.cross_validation
+    )?;
+    writeln!(w, "  SEC   {:.3} % moisture (fit)", s.sec)?;
+    writeln!(w, "  SEP   {:.3} % moisture (cross-validated)", s.sep)?;
+    writeln!(w, "  bias  {:+.3} % (predicted - lab)", s.bias)?;
+    writeln!(w, "  slope {:.4} (lab on predicted)", s.slope)?;
+    writeln!(w, "  R^2   {:.4}", s.r2)?;
+    writeln!(w, "  RPD   {:.2}", s.rpd)?;
+    let out: Vec<&str> = f
+        .samples
+        .iter()
+        .filter(|x| x.outlier)
+        .map(|x| x.id.as_str())
+        .collect();
+    let lev: Vec<&str> = f
+        .samples
+        .iter()
+        .filter(|x| x.high_leverage)
+        .map(|x| x.id.as_str())
+        .collect();
+    writeln!(
+        w,
+        "  outliers (|studentized residual| > 3): {}",
+        if out.is_empty() {
+            "none".into()
+        } else {
+            out.join(", ")
+        }
+    )?;
+    if !lev.is_empty() {
+        writeln!(w, "  high leverage: {}", lev.join(", "))?;
+    }
+    Ok(())
+}
+
+/// `fringe cal fit`: fit, then write the file (and plot) only when all went well.
+///
+/// # Errors
+/// As [`fit`], or a failed write.
+pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
+    let o = fit(args)?;
+    let plot = match &args.plot {
+        Some(_) => Some(fit_plot(&o, &args.samples)?),
+        None => None,
+    };
+    o.file.save(&args.out)?;
+    if let (Some(p), Some(svg)) = (&args.plot, plot) {
+        std::fs::write(p, svg).with_context(|| format!("writing {}", p.display()))?;
+    }
+    let stdout = std::io::stdout();
+    let mut w = stdout.lock();
+    if args.json {
+        writeln!(w, "{}", outcome_json(&o, &args.out))?;
+        return Ok(());
+    }
+    if let (Some(other), Some(ratio)) = (&o.other, o.sep_ratio) {
+        let (s, r) = if o.chosen.calibration.model.kind()
+            == fringe_calibration::product::ModelKind::Relaxation
+        {
+            (other, &o.chosen)
+        } else {
+            (&o.chosen, other)
+        };
+        writeln!(w, "model comparison (same samples, same cross-validation):")?;
+        writeln!(
+            w,
+            "  {:<18} {:>8} {:>8} {:>8} {:>7}",
+            "model", "SEC %", "SEP %", "bias %", "RPD"
+        )?;
+        for f in [s, r] {
+            let st = statistics_of(f);
+            writeln!(
+                w,
+                "  {:<18} {:>8.3} {:>8.3} {:>+8.3} {:>7.2}",
+                model_words(f.calibration.model.kind()),
+                st.sec,
+                st.sep,
+                st.bias,
+                st.rpd
+            )?;
+        }
+        writeln!(
+            w,
+            "  SEP single / SEP relaxation = {ratio:.2}; writing the {} model",
+            model_words(o.chosen.calibration.model.kind())
+        )?;
+        writeln!(w)?;
+    }
+    print_fit(&o.chosen, &mut w)?;
+    let c = &o.wire;
+    writeln!(
+        w,
+        "valid ranges: moisture {:.2}..{:.2} %, temperature {:.1}..{:.1} C",
+        c.moisture_pct.min, c.moisture_pct.max, c.temperature_c.min, c.temperature_c.max
+    )?;
+    for r in &o.file.inputs {
+        writeln!(w, "  {} {:.4}..{:.4}", r.name, r.min, r.max)?;
+    }
+    writeln!(
+        w,
+        "wrote {} (calibration id {})",
+        args.out.display(),
+        o.file.id
+    )?;
+    if let Some(p) = &args.plot {
+        writeln!(w, "plot  {}", p.display())?;
+    }
+    Ok(())
+}
+
+/// The `--plot` figure: cross-validated predicted vs lab, then the CV
+/// residual against temperature and each permittivity input.
+///
+/// # Errors
+/// A plotting failure.
+pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> anyhow::Result<String> {
+    let set = read_samples(samples_path, MoistureColumn::Required)?;
+    let f = &o.chosen;
+    let pv: Vec<(f64, f64)> = f
+        .samples
+        .iter()
+        .map(|s| (s.reference_pct, s.cv_predicted_pct))
+        .collect();
+    let res: Vec<f64> = f
+        .samples
+        .iter()
+        .map(|s| s.cv_predicted_pct - s.reference_pct)
+        .collect();
+    let mut parts = vec![plots::scatter_svg(
+        &format!(
+            "{} model: predicted (CV) vs lab",
+            model_words(f.calibration.model.kind())
+        ),
+        "lab moisture, %",
+        "predicted, %",
+        &pv,
+        true,
+        false,
+    )
+    .map_err(anyhow::Error::msg)?];
+    type Get = fn(&RefSample) -> f64;
+    let inputs: [(&str, Get); 5] = [
+        ("temperature, C", |s| s.temperature_c),
+        ("eps' at freq1", |s| s.eps_re[0]),
+        ("eps'' at freq1", |s| s.eps_im[0]),
+        ("eps' at freq2", |s| s.eps_re[1]),
+        ("eps'' at freq2", |s| s.eps_im[1]),
+    ];
+    for (label, get) in inputs {
+        let pts: Vec<(f64, f64)> = set
+            .samples
+            .iter()
+            .zip(&res)
+            .map(|(s, r)| (get(s), *r))
+            .collect();
+        parts.push(
+            plots::scatter_svg(
+                &format!("residual vs {label}"),
+                label,
+                "predicted - lab, %",
+                &pts,
+                false,
+                true,
+            )
+            .map_err(anyhow::Error::msg)?,
+        );
+    }
+    Ok(plots::combine_svgs(&parts, 3, (480, 380)))
+}
+
+/// One predicted row.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Predicted {
+    /// Sample id.
+    pub sample_id: String,
+    /// Moisture, % (None when the estimate failed; flags say why).
+    pub moisture_pct: Option<f32>,
+    /// Standard uncertainty, %.
+    pub uncertainty_pct: f32,
+    /// Flags.
+    pub flags: Flags,
+    /// Lab moisture if the input had one.
+    pub lab_pct: Option<f64>,
+}
+
+/// Evaluates every sample of `input` with the calibration, as the device does.
+///
+/// # Errors
+/// A bad calibration file or table.
+pub fn predict(cal_path: &Path, input: &Path, eps_sd: f32) -> anyhow::Result<Vec<Predicted>> {
+    let (_, wire) = ProductFile::load(cal_path)?;
+    let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| {
+        anyhow::anyhow!(
+            "{}: the device would refuse this calibration ({e:?})",
+            cal_path.display()
+        )
+    })?;
+    let set = read_samples(input, MoistureColumn::Optional)?;
+    Ok(set
+        .samples
+        .iter()
+        .map(|s| {
+            let ch = |k: usize| Channel {
+                freq_hz: s.freqs_hz[k] as f32,
+                eps_re: s.eps_re[k] as f32,
+                eps_loss: s.eps_im[k] as f32,
+                sd: eps_sd,
+            };
+            let e = estimate(
+                &EstimateInput {
+                    channels: [ch(0), ch(1)],
+                    temperature_c: s.temperature_c as f32,
+                },
+                Some(&cal),
+            );
+            Predicted {
+                sample_id: s.sample_id.clone(),
+                moisture_pct: e.moisture_pct,
+                uncertainty_pct: e.uncertainty_pct,
+                flags: Flags::from_bits_truncate(e.flags.bits()),
+                lab_pct: s.moisture_pct,
+            }
+        })
+        .collect())
+}
+
+/// Writes predictions as CSV `sample_id, moisture_pct, uncertainty_pct, flags`.
+///
+/// # Errors
+/// I/O errors.
+pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> anyhow::Result<()> {
+    let mut c = csv::Writer::from_writer(w);
+    c.write_record(["sample_id", "moisture_pct", "uncertainty_pct", "flags"])?;
+    for r in rows {
+        c.write_record([
+            r.sample_id.clone(),
+            r.moisture_pct
+                .map(|m| format!("{m:.3}"))
+                .unwrap_or_default(),
+            if r.uncertainty_pct.is_finite() {
+                format!("{:.3}", r.uncertainty_pct)
+            } else {
+                String::new()
+            },
+            r.flags.names().collect::<Vec<_>>().join("|"),
+        ])?;
+    }
+    c.flush()?;
+    Ok(())
+}
+
+/// `fringe cal predict`.
+///
+/// # Errors
+/// As [`predict`], or a failed write.
+pub fn run_predict(args: &PredictArgs) -> anyhow::Result<()> {
+    let rows = predict(&args.cal, &args.input, args.eps_sd)?;
+    match &args.out {
+        Some(p) => {
+            let tmp = p.with_extension("csv.part");
+            let f = std::fs::File::create(&tmp)
+                .with_context(|| format!("creating {}", tmp.display()))?;
+            write_predictions(f, &rows)?;
+            std::fs::rename(&tmp, p).with_context(|| format!("writing {}", p.display()))?;
+        }
+        None => write_predictions(std::io::stdout().lock(), &rows)?,
+    }
+    let pairs: Vec<(f64, f64)> = rows
+        .iter()
+        .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
+        .collect();
+    if !pairs.is_empty() {
+        let (lab, pred): (Vec<f64>, Vec<f64>) = pairs.into_iter().unzip();
+        match PredictionStats::new(&lab, &pred) {
+            Ok(s) => eprintln!(
+                "against moisture_pct of {} samples: SEP {:.3} %, bias {:+.3} % (predicted - lab)",
+                s.n, s.sep, s.bias
+            ),
+            Err(e) => eprintln!("against moisture_pct: no statistics ({e})"),
+        }
+    }
+    let failed = rows.iter().filter(|r| r.moisture_pct.is_none()).count();
+    if failed > 0 {
+        eprintln!("{failed} sample(s) gave no moisture (see their flags)");
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use fringe_calibration::fit::product::{synthetic_samples, SynthSpec};
+    use fringe_calibration::synth::SynthProduct;
+
+    /// Writes `n` synthetic reference samples (published physics in
+    /// `fringe_calibration::synth`: water permittivity vs temperature, a
+    /// mixing model, conductivity loss, interfacial relaxation), with
+    /// temperature and salt varying between samples.
+    fn synth_csv(dir: &Path, name: &str, n: usize, seed: u64) -> PathBuf {
+        let grain = SynthProduct::<f64>::grain();
+        let s = synthetic_samples(
+            &grain,
+            &SynthSpec {
+                n,
+                ..SynthSpec::default()
+            },
+            seed,
+        );
+        let rows: Vec<RefSample> = s
+            .iter()
+            .map(|x| RefSample {
+                sample_id: x.id.clone(),
+                moisture_pct: Some(x.moisture_pct),
+                temperature_c: x.temperature_c,
+                freqs_hz: [x.channels[0].freq_hz, x.channels[1].freq_hz],
+                eps_re: [x.channels[0].eps_re, x.channels[1].eps_re],
+                eps_im: [x.channels[0].eps_loss, x.channels[1].eps_loss],
+                line: 0,
+            })
+            .collect();
+        let p = dir.join(name);
+        crate::samples::write_samples(std::fs::File::create(&p).expect("create"), &rows)
+            .expect("write");
+        p
+    }
+
+    fn args(samples: PathBuf, out: PathBuf, model: FitModel) -> FitArgs {
+        let g = SynthProduct::<f64>::grain();
+        FitArgs {
+            samples,
+            model,
+            out,
+            name: Some("HM wheat L2".into()),
+            bulk_density_kg_m3: Some(g.mixture.bulk_density_kg_m3),
+            particle_density_kg_m3: Some(g.mixture.particle_density_kg_m3),
+            degree: 2,
+            folds: 0,
+            eps_sd: 0.02,
+            basis: "wet".into(),
+            json: true,
+            plot: None,
+        }
+    }
+
+    #[test]
+    fn relaxation_beats_single_frequency_through_the_csv_path() {
+        let seed = 77;
+        let dir = tempfile::tempdir().expect("dir");
+        let csv = synth_csv(dir.path(), "lab.csv", 40, seed);
+        let o = fit(&args(csv, dir.path().join("p.toml"), FitModel::Compare)).expect("fit");
+        let ratio = o.sep_ratio.expect("compare gives a ratio");
+        eprintln!("seed {seed}: SEP single / SEP relaxation = {ratio:.2}");
+        assert!(ratio > 3.0, "seed {seed}: ratio {ratio}");
+        assert_eq!(o.wire.model, ModelKind::Relaxation);
+        let j = outcome_json(&o, Path::new("p.toml"));
+        for k in ["n", "sec", "sep", "bias", "slope", "r2", "rpd"] {
+            assert!(j.get(k).is_some_and(|v| v.is_number()), "key {k} in {j}");
+        }
+        assert_eq!(j["n"], 40);
+    }
+
+    #[test]
+    fn predict_reproduces_the_fit_on_new_samples() {
+        let seed = 78;
+        let dir = tempfile::tempdir().expect("dir");
+        let csv = synth_csv(dir.path(), "lab.csv", 40, seed);
+        let toml = dir.path().join("p.toml");
+        let o = fit(&args(csv, toml.clone(), FitModel::Relaxation)).expect("fit");
+        o.file.save(&toml).expect("save");
+        // Fresh samples of the same product: the prediction error is of the
+        // size of the cross-validated SEP (within a factor of 2).
+        let check = synth_csv(dir.path(), "check.csv", 30, seed + 1);
+        let rows = predict(&toml, &check, 0.02).expect("predict");
+        let (lab, pred): (Vec<f64>, Vec<f64>) = rows
+            .iter()
+            .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
+            .unzip();
+        assert!(
+            lab.len() >= 28,
+            "seed {seed}: {} of 30 predicted",
+            lab.len()
+        );
+        let s = PredictionStats::new(&lab, &pred).expect("stats");
+        let sep_cv = o.file.statistics.sep;
+        eprintln!(
+            "seed {seed}: new-sample SEP {:.3}, cross-validated SEP {sep_cv:.3}",
+            s.sep
+        );
+        assert!(
+            s.sep < 2.0 * sep_cv + 0.05,
+            "seed {seed}: SEP {} vs {sep_cv}",
+            s.sep
+        );
+        let mut buf = Vec::new();
+        write_predictions(&mut buf, &rows).expect("csv");
+        let text = String::from_utf8(buf).expect("utf8");
+        assert!(
+            text.starts_with("sample_id,moisture_pct,uncertainty_pct,flags\n"),
+            "{text}"
+        );
+    }
+
+    #[test]
+    fn too_few_samples_and_missing_densities_are_refused() {
+        let dir = tempfile::tempdir().expect("dir");
+        let csv = synth_csv(dir.path(), "few.csv", 5, 1);
+        let e = fit(&args(
+            csv.clone(),
+            dir.path().join("p.toml"),
+            FitModel::Single,
+        ))
+        .expect_err("5 < 4 + 3")
+        .to_string();
+        assert!(e.contains("needs at least 7"), "{e}");
+        let csv = synth_csv(dir.path(), "ok.csv", 20, 2);
+        let mut a = args(csv, dir.path().join("p.toml"), FitModel::Relaxation);
+        a.bulk_density_kg_m3 = None;
+        let e = fit(&a).expect_err("no density").to_string();
+        assert!(e.contains("--bulk-density-kg-m3"), "{e}");
+        assert!(!dir.path().join("p.toml").exists(), "nothing written");
+    }
+}

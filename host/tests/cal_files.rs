@@ -1,0 +1,154 @@
+//! `fringe cal fit` and `fringe cal predict` on bad reference-sample files:
+//! each is refused with a non-zero exit status (3, bad file), a message that
+//! names the file, line, column and field, and nothing written.
+
+use std::path::Path;
+use std::process::Command;
+
+const HEADER: &str =
+    "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im";
+
+fn good_rows(n: usize) -> Vec<String> {
+    (0..n)
+        .map(|i| {
+            let m = 10.0 + i as f64 * 0.5;
+            format!(
+                "S{i},{m},{},1000000,{},{},20000000,{},{}",
+                15.0 + i as f64,
+                4.0 + 0.2 * m,
+                3.0 + 0.1 * i as f64,
+                3.5 + 0.15 * m,
+                0.4
+            )
+        })
+        .collect()
+}
+
+fn run(dir: &Path, csv: &str, extra: &[&str]) -> (i32, String) {
+    let p = dir.join("lab.csv");
+    std::fs::write(&p, csv).expect("write csv");
+    let out = dir.join("p.toml");
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "fit", "--samples"])
+        .arg(&p)
+        .arg("--out")
+        .arg(&out)
+        .args(extra)
+        .output()
+        .expect("run fringe");
+    assert!(
+        !out.exists(),
+        "nothing may be written on bad input: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    (
+        o.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&o.stderr).into_owned(),
+    )
+}
+
+fn table(rows: &[String]) -> String {
+    format!("{HEADER}\n{}\n", rows.join("\n"))
+}
+
+#[test]
+fn bad_reference_sample_files_are_refused_with_their_place() {
+    let dir = tempfile::tempdir().expect("dir");
+    let mut rows = good_rows(12);
+    let cases: Vec<(&str, String, &str)> = vec![
+        ("empty file", String::new(), "no samples"),
+        ("header only", format!("{HEADER}\n"), "no samples"),
+        (
+            "missing column",
+            table(&rows)
+                .replace(",eps2_im\n", "\n")
+                .replace(",0.4\n", "\n"),
+            "line 1: missing column `eps2_im`",
+        ),
+        (
+            "bad number",
+            table(&rows).replacen(",15,", ",fifteen,", 1),
+            "line 2, column 3 (temperature_c): `fifteen` is not a number",
+        ),
+        (
+            "NaN loss",
+            {
+                rows[3] = rows[3].replace(",0.4", ",NaN");
+                let t = table(&rows);
+                rows = good_rows(12);
+                t
+            },
+            "line 5, column 9 (eps2_im): `NaN` is not a finite number",
+        ),
+        (
+            "negative loss",
+            {
+                rows[4] = rows[4].replace(",0.4", ",-0.4");
+                let t = table(&rows);
+                rows = good_rows(12);
+                t
+            },
+            "line 6, column 9 (eps2_im): `-0.4` is not a loss factor",
+        ),
+        (
+            "mixed frequencies",
+            {
+                rows[5] = rows[5].replace(",20000000,", ",25000000,");
+                let t = table(&rows);
+                rows = good_rows(12);
+                t
+            },
+            "line 7, column 7 (freq2_hz): 25000000 Hz differs from 20000000 Hz on line 2",
+        ),
+        (
+            "duplicate id",
+            {
+                rows[6] = rows[6].replacen("S6,", "S2,", 1);
+                let t = table(&rows);
+                rows = good_rows(12);
+                t
+            },
+            "line 8, column sample_id: sample id `S2` already used on line 4",
+        ),
+        (
+            "too few samples",
+            table(&rows[..5]),
+            "5 samples, but the single-frequency model needs at least 7",
+        ),
+    ];
+    for (what, csv, expect) in cases {
+        let (code, err) = run(dir.path(), &csv, &["--model", "single"]);
+        assert_eq!(code, 3, "{what}: exit status 3 (bad file); stderr: {err}");
+        assert!(err.contains("lab.csv"), "{what}: names the file: {err}");
+        assert!(
+            err.contains(expect),
+            "{what}: expected `{expect}` in: {err}"
+        );
+    }
+}
+
+#[test]
+fn predict_refuses_a_bad_table_and_writes_nothing() {
+    let dir = tempfile::tempdir().expect("dir");
+    let cal = dir.path().join("missing.toml");
+    let input = dir.path().join("in.csv");
+    std::fs::write(&input, format!("{HEADER}\nS1,,20,1e6,5,1,2e7,4,0.3\n")).expect("write");
+    let out = dir.path().join("pred.csv");
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "predict", "--cal"])
+        .arg(&cal)
+        .arg("--input")
+        .arg(&input)
+        .arg("--out")
+        .arg(&out)
+        .output()
+        .expect("run");
+    assert_eq!(
+        o.status.code(),
+        Some(3),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert!(String::from_utf8_lossy(&o.stderr).contains("missing.toml"));
+    assert!(!out.exists());
+}
