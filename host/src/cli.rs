@@ -62,8 +62,8 @@ pub enum Command {
     Report(crate::quality::ReportArgs),
     /// Tamper-evident audit bundles: export and verify.
     Audit(crate::quality::AuditArgs),
-    /// Run the whole job on a simulated device of an invented plant (needs the simulated product: not yet).
-    Demo,
+    /// Run the whole job on a simulated device of an invented plant (the main demonstration).
+    Demo(crate::demo::DemoArgs),
 }
 
 /// Which port, at which speed.

@@ -425,7 +425,7 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
             batch.clear();
         }
         bar.inc(1);
-        if got % 30 == 0 {
+        if got.is_multiple_of(30) {
             if let Response::RefCheck(rc) = link.request(Request::ReferenceCheck)? {
                 store.insert_reference_check(SERIAL, r.time_ms as i64, &rc)?;
             }
@@ -538,4 +538,44 @@ fn print_outputs(o: &DemoOutputs) {
         o.bundle.display(),
         o.db.display()
     );
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn short_demo_runs_end_to_end_and_its_bundle_verifies() {
+        let dir = tempfile::tempdir().expect("dir");
+        let out = dir.path().join("demo");
+        let o = run(&DemoArgs {
+            out: out.clone(),
+            short: true,
+            seed: 2026,
+        })
+        .expect("demo runs");
+        assert!(o.bundle_ok, "the demo's own check passed");
+        for p in [
+            &o.db,
+            &o.samples,
+            &o.product,
+            &o.fit_plot,
+            &o.report,
+            &o.key,
+        ] {
+            assert!(p.exists(), "{} written", p.display());
+        }
+        // Checked again here, independently of the demo's own printout.
+        let store = Store::open_read_only(&o.db).expect("db");
+        let r = audit::verify(Some(&o.bundle), Some(&store)).expect("verify");
+        assert!(r.ok(), "{:?}", r.problems);
+        assert!(r.records_checked > 100, "{}", r.records_checked);
+        // The fouling window is flagged by at least one monitor.
+        assert!(o.alarms >= 1, "drift flagged");
+        let html = std::fs::read_to_string(&o.report).expect("report");
+        assert!(html.contains("<svg") && html.contains("Calibrations in force"));
+        // The calibration in the file is what the device holds.
+        let (f, wire) = ProductFile::load(&o.product).expect("product file");
+        assert_eq!(f.id, wire.content_id().to_string());
+    }
 }

@@ -12,7 +12,7 @@
 //! - [`cal`], [`device_cal`], [`product_file`]: product and cell calibration;
 //! - [`analysis`], [`quality`], [`report`], [`plots`], [`audit`]: drift, lab
 //!   checks, reports and audit bundles over a store;
-//! - [`simport`]: a simulated device in this process;
+//! - [`demo`] on [`simport`]: the whole job on a simulated device in this process;
 //! - [`cmd`]: the command bodies; [`exit`]: the exit codes.
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
@@ -23,6 +23,7 @@ pub mod cal;
 pub mod cli;
 pub mod cmd;
 pub mod config;
+pub mod demo;
 pub mod device_cal;
 pub mod drift;
 pub mod exit;
@@ -79,8 +80,6 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
             Ok(())
         }
         Command::Audit(a) => quality::audit_cmd(a),
-        Command::Demo => anyhow::bail!(
-            "fringe demo: waits for the simulated product in fringe-firmware's simulator; every other command works"
-        ),
+        Command::Demo(a) => demo::run(a).map(|_| ()),
     }
 }
