@@ -490,9 +490,9 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         end,
         &outs.bundle,
     )?;
-    quality::print_export(&s);
+    quality::print_export(&s)?;
     let rep = audit::verify(Some(&outs.bundle), Some(&ro))?;
-    quality::print_verify(&rep, Some(&outs.bundle), Some(&outs.db));
+    quality::print_verify(&rep, Some(&outs.bundle), Some(&outs.db))?;
 
     // 8. Report.
     stage(8, total, "writing the report");

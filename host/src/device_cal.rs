@@ -803,20 +803,24 @@ pub fn select(
 }
 
 /// Prints the slot list.
-pub fn print_slots(slots: &[fringe_protocol::SlotInfo], active: Option<u8>, as_json: bool) {
+pub fn print_slots(
+    slots: &[fringe_protocol::SlotInfo],
+    active: Option<u8>,
+    as_json: bool,
+) -> anyhow::Result<()> {
     if as_json {
         let v: Vec<_> = slots
             .iter()
             .map(|s| json!({"slot": s.slot, "name": s.name.as_str(), "id": s.id.to_string(), "model": format!("{:?}", s.model), "active": active == Some(s.slot)}))
             .collect();
-        println!("{}", json!({ "slots": v, "active": active }));
-        return;
+        crate::outln!("{}", json!({ "slots": v, "active": active }));
+        return Ok(());
     }
     if slots.is_empty() {
-        println!("no product calibration on the device");
+        crate::outln!("no product calibration on the device");
     }
     for s in slots {
-        println!(
+        crate::outln!(
             "{} slot {} {:<16} {} {:?}",
             if active == Some(s.slot) { "*" } else { " " },
             s.slot,
@@ -825,6 +829,7 @@ pub fn print_slots(slots: &[fringe_protocol::SlotInfo], active: Option<u8>, as_j
             s.model
         );
     }
+    Ok(())
 }
 
 /// Permittivity of an admittance with a cell, for the demo's checks.

@@ -17,6 +17,16 @@
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
 
+/// `println!` that returns the write error instead of panicking (a closed
+/// pipe, as in `fringe drift --json | head`, then ends the command quietly).
+#[macro_export]
+macro_rules! outln {
+    ($($t:tt)*) => {{
+        use std::io::Write as _;
+        writeln!(std::io::stdout().lock(), $($t)*)?;
+    }};
+}
+
 pub mod analysis;
 pub mod audit;
 pub mod cal;
@@ -76,7 +86,7 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Drift(a) => quality::drift(a),
         Command::Report(a) => {
             let page = quality::report(a)?;
-            println!("wrote {} (open it in a browser)", page.display());
+            outln!("wrote {} (open it in a browser)", page.display());
             Ok(())
         }
         Command::Audit(a) => quality::audit_cmd(a),

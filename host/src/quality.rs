@@ -263,7 +263,7 @@ pub fn lab_add(a: &LabAddArgs) -> anyhow::Result<()> {
     )?;
     let inline = matched.and_then(|r| r.reading.moisture_pct);
     if a.json {
-        println!(
+        crate::outln!(
             "{}",
             json!({
                 "sample_id": sample_id, "serial": serial, "time_utc": fmt_time(a.time), "lab_moisture_pct": a.moisture,
@@ -274,26 +274,29 @@ pub fn lab_add(a: &LabAddArgs) -> anyhow::Result<()> {
         );
         return Ok(());
     }
-    println!(
+    crate::outln!(
         "recorded lab sample {sample_id} ({} {:.2} %, {}) at chain position {}",
-        a.basis, a.moisture, a.method, rec.position
+        a.basis,
+        a.moisture,
+        a.method,
+        rec.position
     );
     match (matched, inline) {
-        (Some(r), Some(i)) => println!(
+        (Some(r), Some(i)) => crate::outln!(
             "  matched reading {} at {}: inline {:.2} %, lab - inline {:+.2} %",
             r.reading.seq,
             fmt_time(r.reading.time_ms as i64),
             i,
             a.moisture - f64::from(i)
         ),
-        _ => println!(
+        _ => crate::outln!(
             "  no inline reading within {} s of {}: stored unmatched",
             a.match_within_s,
             fmt_time(a.time)
         ),
     }
     if rec.duplicate {
-        println!("  (identical record already stored: nothing added)");
+        crate::outln!("  (identical record already stored: nothing added)");
     }
     Ok(())
 }
@@ -384,14 +387,14 @@ pub fn drift(a: &DriftArgs) -> anyhow::Result<()> {
             .with_context(|| format!("writing {}", p.display()))?;
     }
     if a.json {
-        println!(
+        crate::outln!(
             "{}",
             json!({ "serial": data.serial, "monitors": traces.iter().map(trace_json).collect::<Vec<_>>() })
         );
     } else {
         print_drift(&data, &traces, &mut std::io::stdout().lock())?;
         if let Some(p) = &a.plot {
-            println!("charts: {}", p.display());
+            crate::outln!("charts: {}", p.display());
         }
     }
     Ok(())
@@ -593,7 +596,7 @@ pub fn history(a: &HistoryArgs) -> anyhow::Result<()> {
                 })
             })
             .collect();
-        println!("{}", serde_json::Value::Array(v));
+        crate::outln!("{}", serde_json::Value::Array(v));
         return Ok(());
     }
     let mut w = std::io::stdout().lock();
@@ -631,9 +634,9 @@ pub fn audit_cmd(a: &AuditArgs) -> anyhow::Result<()> {
             let to = e.to.unwrap_or_else(crate::store::now_unix_ms);
             let s = audit::export(&store, &e.db.display().to_string(), from, to, &e.out)?;
             if e.json {
-                println!("{}", serde_json::to_string(&s.manifest)?);
+                crate::outln!("{}", serde_json::to_string(&s.manifest)?);
             } else {
-                print_export(&s);
+                print_export(&s)?;
             }
             Ok(())
         }
@@ -641,12 +644,12 @@ pub fn audit_cmd(a: &AuditArgs) -> anyhow::Result<()> {
             let store = v.db.as_ref().map(Store::open_read_only).transpose()?;
             let r = audit::verify(v.dir.as_deref(), store.as_ref())?;
             if v.json {
-                println!(
+                crate::outln!(
                     "{}",
                     json!({ "ok": r.ok(), "records_checked": r.records_checked, "problems": r.problems.iter().map(|p| json!({"detail": p, "message": p.to_string()})).collect::<Vec<_>>() })
                 );
             } else {
-                print_verify(&r, v.dir.as_deref(), v.db.as_deref());
+                print_verify(&r, v.dir.as_deref(), v.db.as_deref())?;
             }
             if r.ok() {
                 Ok(())
@@ -658,34 +661,42 @@ pub fn audit_cmd(a: &AuditArgs) -> anyhow::Result<()> {
 }
 
 /// Prints an export summary.
-pub fn print_export(s: &audit::ExportSummary) {
+pub fn print_export(s: &audit::ExportSummary) -> anyhow::Result<()> {
     let m = &s.manifest;
-    println!("wrote audit bundle {}", s.out.display());
-    println!(
+    crate::outln!("wrote audit bundle {}", s.out.display());
+    crate::outln!(
         "  range {} .. {} (UTC)",
         fmt_time(m.from_ms.max(0)),
         fmt_time(m.to_ms)
     );
-    println!(
+    crate::outln!(
         "  chain positions {}..={}, last hash {}",
-        m.first_position, m.last_position, m.last_hash
+        m.first_position,
+        m.last_position,
+        m.last_hash
     );
     for (t, n) in &m.records {
-        println!("  {t}: {n} records");
+        crate::outln!("  {t}: {n} records");
     }
-    println!(
+    crate::outln!(
         "  calibrations in force: {} record(s), positions {:?}",
         s.calibrations_in_force.len(),
         s.calibrations_in_force
     );
-    println!(
+    crate::outln!(
         "  database chain head at export: position {}, {}",
-        m.db_head_position, m.db_head_hash
+        m.db_head_position,
+        m.db_head_hash
     );
+    Ok(())
 }
 
 /// Prints a verification report.
-pub fn print_verify(r: &audit::VerifyReport, dir: Option<&Path>, db: Option<&Path>) {
+pub fn print_verify(
+    r: &audit::VerifyReport,
+    dir: Option<&Path>,
+    db: Option<&Path>,
+) -> anyhow::Result<()> {
     let what = match (dir, db) {
         (Some(d), Some(b)) => format!("bundle {} against {}", d.display(), b.display()),
         (Some(d), None) => format!("bundle {}", d.display()),
@@ -693,21 +704,22 @@ pub fn print_verify(r: &audit::VerifyReport, dir: Option<&Path>, db: Option<&Pat
         (None, None) => "nothing".into(),
     };
     if r.ok() {
-        println!(
+        crate::outln!(
             "verified {what}: {} records, no change, removal or reordering found",
             r.records_checked
         );
         if let Some((p, h)) = &r.bundle_last {
-            println!("  bundle ends at position {p}, hash {h}");
+            crate::outln!("  bundle ends at position {p}, hash {h}");
         }
     } else {
-        println!(
+        crate::outln!(
             "{what}: {} problem(s) in {} records checked:",
             r.problems.len(),
             r.records_checked
         );
         for p in &r.problems {
-            println!("  {p}");
+            crate::outln!("  {p}");
         }
     }
+    Ok(())
 }

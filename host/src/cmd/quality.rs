@@ -62,7 +62,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 now_s,
                 &mut |s| eprintln!("  {s}"),
             )?;
-            println!(
+            crate::outln!(
                 "cell calibration {} written to {} (was {}), recorded in {}",
                 o.cal.content_id(),
                 link.serial_number(),
@@ -74,7 +74,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         CalCommand::Capture(c) => {
             let mut link = super::connect(&c.port, cfg)?;
             let n = device_cal::capture(&mut link, c, &mut Terminal)?;
-            println!("{n} sample(s) written to {}", c.out.display());
+            crate::outln!("{n} sample(s) written to {}", c.out.display());
             Ok(())
         }
         CalCommand::Push(p) => {
@@ -95,7 +95,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 &p.reason,
                 p.yes,
             )?;
-            println!(
+            crate::outln!(
                 "slot {}: {} -> {} written, read back and verified; audit record at chain position {} of {}",
                 o.slot,
                 o.old,
@@ -108,7 +108,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         CalCommand::List(l) => {
             let mut link = super::connect(&l.port, cfg)?;
             let (slots, active) = device_cal::list_slots(&mut link)?;
-            device_cal::print_slots(&slots, active, l.json);
+            device_cal::print_slots(&slots, active, l.json)?;
             Ok(())
         }
         CalCommand::Select(s) => {
@@ -125,7 +125,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 &s.reason,
                 s.yes,
             )?;
-            println!(
+            crate::outln!(
                 "slot {slot} ({id}) is now active on {}; recorded in {}",
                 link.serial_number(),
                 s.db.display()
