@@ -76,19 +76,10 @@ impl SimDevice for FirmwareSim {
         if let Some(d) = self.device.as_mut() {
             let fe = d.frontend_mut();
             let mut s = *fe.scenario();
-            // TEMPORARY until the firmware's Material::Product lands on main:
-            // the product's permittivity at the upper frequency.
-            let eps = product.permittivity(
-                20.0e6,
-                &fringe_calibration::synth::SynthSample {
-                    moisture_pct: c.moisture_pct as f32,
-                    temperature_c: c.temperature_c as f32,
-                    water_sigma25_s_m: c.water_conductivity_s_m as f32,
-                },
-            );
-            s.material = Material::Liquid {
-                eps_re: eps.re,
-                eps_im: -eps.im,
+            s.material = Material::Product {
+                product,
+                moisture_pct: c.moisture_pct as f32,
+                water_sigma25_s_m: c.water_conductivity_s_m as f32,
             };
             s.product_present = c.product_present;
             s.temperature_c = c.temperature_c as f32;
