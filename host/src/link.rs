@@ -620,9 +620,13 @@ impl Link {
         Ok(())
     }
 
-    fn take_answer(&mut self, id: u16) -> Option<Result<Response, (u16, String)>> {
+    /// The answer to any of `ids` (the tries of one request: a late answer
+    /// to an earlier try is as good as the answer to the last).
+    fn take_answer(&mut self, ids: &[u16]) -> Option<Result<Response, (u16, String)>> {
         let i = self.frames.iter().position(|f| match f {
-            DeviceFrame::Response { id: r, .. } | DeviceFrame::Error { id: r, .. } => *r == id,
+            DeviceFrame::Response { id: r, .. } | DeviceFrame::Error { id: r, .. } => {
+                ids.contains(r)
+            }
             _ => false,
         })?;
         match self.frames.remove(i)? {
@@ -673,9 +677,11 @@ impl Link {
         let tries = self.opts.tries.max(1);
         let errors_before = self.stats().damaged;
         let frames_before = self.stats().frames;
+        let mut ids = Vec::with_capacity(tries as usize);
         for attempt in 0..tries {
             let id = self.next_id;
             self.next_id = self.next_id.wrapping_add(1).max(1);
+            ids.push(id);
             self.send(&HostFrame {
                 id,
                 auth,
@@ -683,7 +689,7 @@ impl Link {
             })?;
             let deadline = Instant::now() + self.opts.timeout;
             loop {
-                match self.take_answer(id) {
+                match self.take_answer(&ids) {
                     Some(Ok(r)) => return Ok(r),
                     Some(Err((code, reason))) => {
                         if code == ErrorCode::Busy.code() && attempt + 1 < tries {

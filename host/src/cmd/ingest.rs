@@ -32,7 +32,9 @@ pub struct Backfill {
 
 /// Reads the device log from `from` (inclusive) up to `until` (exclusive;
 /// `None` = to its end) into `batcher`, committing whenever a batch falls
-/// due. `progress` gets the count received so far.
+/// due. `progress` gets the count received so far and the last sequence
+/// queued, after every chunk (so a caller keeps the progress of a backfill
+/// that a link error cut short).
 ///
 /// # Errors
 /// Link errors (the readings already queued stay in the batcher) and store errors.
@@ -42,7 +44,7 @@ pub fn backfill(
     batcher: &mut Batcher,
     from: Seq,
     until: Option<Seq>,
-    progress: &mut dyn FnMut(u64),
+    progress: &mut dyn FnMut(u64, Option<Seq>),
 ) -> anyhow::Result<Backfill> {
     let mut out = Backfill::default();
     let mut at = from;
@@ -86,7 +88,7 @@ pub fn backfill(
             out.received += 1;
             out.last = Some(r.seq);
         }
-        progress(out.received);
+        progress(out.received, out.last);
         if batcher.due(Instant::now()) {
             batcher.flush(store)?;
         }

@@ -44,14 +44,31 @@ pub fn link_options(args: &PortArgs) -> LinkOptions {
     }
 }
 
-/// Opens the port named by flags or line file and runs the handshake.
+/// Handshakes tried before a garbled or silent line is reported.
+pub const HANDSHAKES: u32 = 3;
+
+/// Opens the port named by flags or line file and runs the handshake
+/// (up to [`HANDSHAKES`] times on a garbled or silent line).
 ///
 /// # Errors
 /// [`ConfigError`] or [`LinkError`].
 pub fn connect(args: &PortArgs, cfg: &LineConfig) -> anyhow::Result<Link> {
     let (port, baud) = resolve_port(args, cfg)?;
-    let link: Result<Link, LinkError> = Link::serial(&port, baud, link_options(args));
-    Ok(link?)
+    // A noisy line can spoil one handshake; a wrong baud rate or a silent
+    // device spoils every one.
+    let mut tries = 0;
+    loop {
+        tries += 1;
+        match Link::serial(&port, baud, link_options(args)) {
+            Ok(link) => return Ok(link),
+            Err(e @ (LinkError::Garbled { .. } | LinkError::NoAnswer { .. }))
+                if tries < HANDSHAKES =>
+            {
+                let _ = e;
+            }
+            Err(e) => return Err(e.into()),
+        }
+    }
 }
 
 /// Opens the database named by `--db` or the line file.

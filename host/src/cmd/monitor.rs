@@ -134,19 +134,22 @@ impl Monitor<'_> {
         if until.is_some_and(|u| u <= from) {
             return Ok(());
         }
+        let mut reached: Option<Seq> = None;
         let b = backfill(
             &mut self.link,
             &mut self.store,
             &mut self.batcher,
             from,
             until,
-            &mut |_| {},
-        )?;
-        self.sum.backfilled += b.received;
-        self.sum.lost += b.lost;
-        if let Some(l) = b.last {
+            &mut |_, last| reached = last,
+        );
+        // Keep what a cut-short backfill got: the next one starts after it.
+        if let Some(l) = reached {
             self.last = Some(self.last.map_or(l, |x| x.max(l)));
         }
+        let b = b?;
+        self.sum.backfilled += b.received;
+        self.sum.lost += b.lost;
         if b.lost > 0 {
             self.notice(&format!(
                 "{} readings after {} were no longer in the device log (lost)",
@@ -271,12 +274,9 @@ impl Monitor<'_> {
         Ok(())
     }
 
-    fn reconnect(&mut self) -> anyhow::Result<bool> {
+    fn reconnect(&mut self, why: &anyhow::Error) -> anyhow::Result<bool> {
         self.flush()?;
-        self.notice(&format!(
-            "lost the device on {}: reconnecting",
-            self.link.port_name()
-        ))?;
+        self.notice(&format!("{why}: reconnecting"))?;
         match self.link.reconnect(self.stop) {
             Ok(id) => {
                 if id.serial.as_str() != self.serial {
@@ -360,7 +360,7 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
         })();
         match run {
             Ok(()) => break Ok(()),
-            Err(e) if is_disconnect(&e) && !stop.load(Ordering::Relaxed) => match m.reconnect() {
+            Err(e) if is_disconnect(&e) && !stop.load(Ordering::Relaxed) => match m.reconnect(&e) {
                 Ok(true) => continue,
                 Ok(false) => break Ok(()),
                 Err(e) => break Err(e),
@@ -409,7 +409,11 @@ impl Monitor<'_> {
         deadline: Option<Instant>,
     ) -> anyhow::Result<()> {
         let stop_at = count.unwrap_or(u64::MAX);
-        self.fill_gap(None)?;
+        // Backfill up to where the device is now; what it takes from here on
+        // comes by the stream (a backfill chasing the log's moving end on a
+        // noisy line might never finish).
+        let now_at = super::request_status(&mut self.link)?.next_seq;
+        self.fill_gap(Some(now_at))?;
         self.flush()?;
         self.start_stream()?;
         let silence = Duration::from_millis(u64::from(self.period_ms) * 5 + 2000);

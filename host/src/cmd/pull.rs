@@ -80,9 +80,16 @@ pub fn pull(args: &PullArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     );
     bar.set_prefix(format!("pulling {serial}"));
     let mut batcher = Batcher::new(&serial);
-    let b = backfill(&mut link, &mut store, &mut batcher, from, None, &mut |n| {
-        bar.set_position(n);
-    });
+    let b = backfill(
+        &mut link,
+        &mut store,
+        &mut batcher,
+        from,
+        None,
+        &mut |n, _| {
+            bar.set_position(n);
+        },
+    );
     // Commit what came even if the link failed half way.
     let flushed = batcher.flush(&mut store);
     bar.finish_and_clear();
