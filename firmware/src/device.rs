@@ -184,6 +184,19 @@ struct Active {
     cal: ProductCalibration<f32>,
 }
 
+/// Figures a board measures about itself (stack painting, cost of a
+/// reading), reported in [`Status`] and announced with
+/// [`Capabilities::DIAGNOSTICS`]. The core cannot measure them: they need
+/// the board's stack bounds and cycle counter.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct Diagnostics {
+    /// Untouched stack bytes since boot.
+    pub stack_free_bytes: Option<u32>,
+    /// Cost of the last full reading, in the unit the board documents
+    /// (instructions under QEMU, core cycles on silicon).
+    pub reading_cost: Option<u32>,
+}
+
 /// The sensor's core (see the module doc).
 pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     fe: F,
@@ -221,6 +234,7 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     decoder: FrameDecoder<HostFrame>,
     txbuf: [u8; MAX_FRAME_LEN],
     reboot: bool,
+    diag: Diagnostics,
 }
 
 impl<F: Frontend, S: NorFlash, O: CurrentOutput> core::fmt::Debug for Device<F, S, O> {
@@ -420,6 +434,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             decoder: FrameDecoder::new(),
             txbuf: [0; MAX_FRAME_LEN],
             reboot: false,
+            diag: Diagnostics::default(),
         };
         dev.load_active()?;
         dev.drive_output(None);
@@ -521,6 +536,16 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
     /// Present loop current, mA.
     pub fn output_ma(&self) -> f32 {
         self.output_ma
+    }
+
+    /// Readings taken since this boot (the counter of the next sequence number).
+    pub fn readings_since_boot(&self) -> u32 {
+        self.counter
+    }
+
+    /// Sets what the board measured about itself (see [`Diagnostics`]).
+    pub fn set_diagnostics(&mut self, diag: Diagnostics) {
+        self.diag = diag;
     }
 
     fn send(&mut self, tx: &mut dyn FnMut(&[u8]), frame: &DeviceFrame) {
@@ -853,6 +878,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         if self.cfg.simulated {
             caps |= Capabilities::SIMULATED;
         }
+        if self.diag != Diagnostics::default() {
+            caps |= Capabilities::DIAGNOSTICS;
+        }
         Identity {
             serial: self.serial.clone(),
             firmware: FIRMWARE_VERSION,
@@ -891,8 +919,8 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             link_errors: self.decoder.stats().errors(),
             reference_ratio: mean(&self.last_ref),
             output_ma: self.output_ma,
-            stack_free_bytes: None,
-            reading_cost: None,
+            stack_free_bytes: self.diag.stack_free_bytes,
+            reading_cost: self.diag.reading_cost,
         }
     }
 

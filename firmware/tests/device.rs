@@ -52,6 +52,37 @@ fn boots_and_identifies() {
 }
 
 #[test]
+fn board_diagnostics_reach_status_and_identity() {
+    let mut b = Bench::new(1, Scenario::default());
+    match b.ok(Request::Status) {
+        Response::Status(s) => assert_eq!((s.stack_free_bytes, s.reading_cost), (None, None)),
+        other => panic!("{other:?}"),
+    }
+    assert_eq!(b.dev.readings_since_boot(), 0);
+    b.measure();
+    assert_eq!(b.dev.readings_since_boot(), 1);
+    b.dev.set_diagnostics(fringe_firmware::Diagnostics {
+        stack_free_bytes: Some(54_000),
+        reading_cost: Some(320_000),
+    });
+    match b.ok(Request::Status) {
+        Response::Status(s) => {
+            assert_eq!(
+                (s.stack_free_bytes, s.reading_cost),
+                (Some(54_000), Some(320_000))
+            )
+        }
+        other => panic!("{other:?}"),
+    }
+    match b.ok(Request::Identify {
+        host: PROTOCOL_VERSION,
+    }) {
+        Response::Identity(id) => assert!(id.capabilities.contains(Capabilities::DIAGNOSTICS)),
+        other => panic!("{other:?}"),
+    }
+}
+
+#[test]
 fn uncalibrated_reading_says_so_and_invents_nothing() {
     let mut b = Bench::new(2, Scenario::default());
     let r = b.measure();

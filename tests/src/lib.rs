@@ -6,9 +6,13 @@
 //! - [`ScenarioSpec`] and [`Sim`]: a `fringe sim` child on a pseudo-terminal
 //!   with a stable symlink path, and what it recorded;
 //! - [`stored_readings`], [`assert_gapless`]: what a database holds;
-//! - [`seed`]: the seed of a random test (`FRINGE_TEST_SEED` overrides).
+//! - [`seed`]: the seed of a random test (`FRINGE_TEST_SEED` overrides);
+//! - [`qemu`]: the firmware under QEMU on a pseudo-terminal (also used by
+//!   `cargo xtask size`).
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
+
+pub mod qemu;
 
 use std::collections::BTreeMap;
 use std::io::{BufRead, BufReader};

@@ -10,6 +10,8 @@ use anyhow::{bail, Context, Result};
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
+use fringe_tests::qemu;
+
 const TARGET: &str = "thumbv7em-none-eabihf";
 
 fn root() -> PathBuf {
@@ -81,6 +83,7 @@ fn test() -> Result<()> {
         "sim",
     ]))?;
     fuzz_smoke()?;
+    board_and_qemu()?;
     eprintln!("xtask: all tests passed");
     Ok(())
 }
@@ -162,12 +165,166 @@ fn fuzz_smoke() -> Result<()> {
     Ok(())
 }
 
+/// The board crate (fmt, clippy, release build) and, with QEMU installed,
+/// the end-to-end test against the firmware under QEMU.
+fn board_and_qemu() -> Result<()> {
+    let board_cargo = || {
+        let mut c = Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
+        c.current_dir(board_dir());
+        c
+    };
+    run(board_cargo().args(["fmt", "--check"]))?;
+    run(board_cargo().args(["clippy", "--release", "--", "-D", "warnings"]))?;
+    firmware()?;
+    if !qemu::qemu_available() {
+        skipped(
+            "the QEMU end-to-end test (tests/tests/qemu.rs)",
+            "qemu-system-arm is not installed",
+            "apt-get install -y qemu-system-arm (as .ci/run does)",
+        );
+        return Ok(());
+    }
+    run(cargo().args([
+        "test",
+        "-p",
+        "fringe-tests",
+        "--test",
+        "qemu",
+        "--",
+        "--ignored",
+        "--nocapture",
+    ]))
+}
+
+/// Folder of the QEMU board crate.
+fn board_dir() -> PathBuf {
+    root().join("firmware/boards/qemu-mps2")
+}
+
+/// `cargo xtask firmware`: release build of the QEMU board binary (run from
+/// its own folder, where its `.cargo/config.toml` applies).
+fn firmware() -> Result<PathBuf> {
+    ensure_target()?;
+    let mut c = Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
+    c.current_dir(board_dir()).args(["build", "--release"]);
+    run(&mut c)?;
+    let elf = qemu::board_elf(&root());
+    eprintln!("xtask: firmware at {}", elf.display());
+    Ok(elf)
+}
+
+/// `cargo xtask qemu`: boots the firmware with UART0 on a pty and waits
+/// until QEMU ends (Ctrl-C).
+fn qemu_run() -> Result<()> {
+    let elf = firmware()?;
+    let mut q = qemu::Qemu::boot(&elf).map_err(anyhow::Error::msg)?;
+    println!("{}", q.pty.display());
+    eprintln!(
+        "xtask: firmware running under QEMU (mps2-an386, -icount shift=0); UART0 is {}\n\
+         xtask: talk to it with:  fringe monitor --port {}\n\
+         xtask: Ctrl-C stops QEMU. The emulated flash lives in RAM: it keeps its\n\
+         xtask: contents across a reset of the board, not across quitting QEMU.",
+        q.pty.display(),
+        q.pty.display()
+    );
+    while q.running() {
+        std::thread::sleep(std::time::Duration::from_millis(200));
+    }
+    Ok(())
+}
+
+/// What the running firmware reports about itself.
+struct Report {
+    stack_high_water: u32,
+    reading_cost: Option<u32>,
+}
+
+fn report(elf: &Path) -> Result<Report> {
+    use fringe_protocol::{Request, Response};
+    use std::time::Duration;
+    let q = qemu::Qemu::boot(elf).map_err(anyhow::Error::msg)?;
+    let (mut link, _id) =
+        qemu::Link::connect(&q.pty, Duration::from_secs(20)).map_err(anyhow::Error::msg)?;
+    // Full readings (both frequencies; the first includes the reference check).
+    for _ in 0..3 {
+        match link
+            .request(Request::Measure, None, Duration::from_secs(30))
+            .map_err(anyhow::Error::msg)?
+        {
+            Ok(Response::Reading(_)) => {}
+            other => bail!("Measure answered {other:?}"),
+        }
+    }
+    match link
+        .request(Request::Status, None, Duration::from_secs(10))
+        .map_err(anyhow::Error::msg)?
+    {
+        Ok(Response::Status(s)) => {
+            let free = s
+                .stack_free_bytes
+                .context("the firmware reports no stack_free_bytes")?;
+            Ok(Report {
+                stack_high_water: qemu::BOARD_STACK_BYTES.saturating_sub(free),
+                reading_cost: s.reading_cost,
+            })
+        }
+        other => bail!("Status answered {other:?}"),
+    }
+}
+
+/// `cargo xtask size`: flash and RAM from the ELF, stack high-water mark and
+/// cost per reading from the running firmware.
+fn size() -> Result<()> {
+    let elf = firmware()?;
+    let f = qemu::footprint(&elf).map_err(anyhow::Error::msg)?;
+    println!("fringe-qemu-mps2 (thumbv7em-none-eabihf, release)");
+    println!(
+        "  flash  {:>7} bytes ({:.1} KiB)  vector table + text + rodata + data image",
+        f.flash,
+        f.flash as f64 / 1024.0
+    );
+    println!(
+        "  RAM    {:>7} bytes ({:.1} KiB)  data + bss (static; the stack is below)",
+        f.ram,
+        f.ram as f64 / 1024.0
+    );
+    if !qemu::qemu_available() {
+        skipped(
+            "the stack and cost report",
+            "qemu-system-arm is not installed",
+            "apt-get install -y qemu-system-arm",
+        );
+        return Ok(());
+    }
+    let r = report(&elf)?;
+    println!(
+        "  stack  {:>7} bytes ({:.1} KiB)  high-water mark after 3 full readings (painted {} KiB)",
+        r.stack_high_water,
+        r.stack_high_water as f64 / 1024.0,
+        qemu::BOARD_STACK_BYTES / 1024
+    );
+    match r.reading_cost {
+        Some(c) => println!(
+            "  cost   {c:>7} instructions per reading (QEMU -icount shift=0, front end excluded)"
+        ),
+        None => println!("  cost   not reported"),
+    }
+    Ok(())
+}
+
 fn main() -> Result<()> {
     let args: Vec<String> = std::env::args().skip(1).collect();
     match args.first().map(String::as_str) {
         Some("test") => test(),
+        Some("firmware") => firmware().map(|_| ()),
+        Some("qemu") => qemu_run(),
+        Some("size") => size(),
         _ => {
-            eprintln!("usage: cargo xtask test");
+            eprintln!("usage: cargo xtask <test | firmware | qemu | size>");
+            eprintln!("  test      everything this machine can test");
+            eprintln!("  firmware  build the QEMU board binary (firmware/boards/qemu-mps2)");
+            eprintln!("  qemu      boot it under QEMU with UART0 on a pty and print the path");
+            eprintln!("  size      flash/RAM of the ELF, stack high-water and cost per reading");
             bail!("unknown or missing xtask command")
         }
     }
