@@ -163,8 +163,10 @@ impl Drop for Qemu {
     }
 }
 
-/// A minimal protocol client over the board's pty: requests by id,
-/// streamed readings and events kept aside.
+/// A minimal protocol client over the board's pty (requests by id, streamed
+/// readings and events kept aside), for `cargo xtask size`, which should not
+/// need the host tool built. The end-to-end test uses the host tool's own
+/// `fringe_host::link::Link`.
 pub struct Link {
     port: serialport::TTYPort,
     dec: FrameDecoder<DeviceFrame>,

@@ -10,7 +10,11 @@ use anyhow::{bail, Context, Result};
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
-use fringe_tests::qemu;
+// Shared with the end-to-end tests (`fringe_tests::qemu`); included by path
+// so that `cargo xtask` does not build the host tool and its SQLite first.
+#[allow(dead_code)]
+#[path = "../../tests/src/qemu.rs"]
+mod qemu;
 
 const TARGET: &str = "thumbv7em-none-eabihf";
 
