@@ -9,24 +9,7 @@ use fringe_firmware::protocol::*;
 use fringe_firmware::Scenario;
 
 fn cell(stray: f32) -> CellCal {
-    let p = |f: f32| CellPoint {
-        freq_hz: f,
-        stray_pf: stray,
-        cell_pf: 1.5,
-        g_offset_s: 2e-8,
-    };
-    CellCal {
-        points: [p(1.0e6), p(20.0e6)],
-        reference_ratio: 1.0,
-        made_s: 1_764_000_000,
-    }
-}
-
-fn stored_cell(b: &mut Bench) -> Option<CellCal> {
-    match b.ok(Request::ReadCellCal) {
-        Response::CellCal(c) => c,
-        other => panic!("{other:?}"),
-    }
+    cell_cal(stray, 1.0)
 }
 
 fn auth_failures(b: &mut Bench) -> Vec<(AuthFailure, u32)> {

@@ -9,24 +9,7 @@ use fringe_firmware::protocol::*;
 use fringe_firmware::Scenario;
 
 fn cell(stray: f32) -> CellCal {
-    let p = |f: f32| CellPoint {
-        freq_hz: f,
-        stray_pf: stray,
-        cell_pf: 1.5,
-        g_offset_s: 2e-8,
-    };
-    CellCal {
-        points: [p(1.0e6), p(20.0e6)],
-        reference_ratio: 0.0,
-        made_s: 1_764_000_000,
-    }
-}
-
-fn read_cell(b: &mut Bench) -> Option<CellCal> {
-    match b.ok(Request::ReadCellCal) {
-        Response::CellCal(c) => c,
-        other => panic!("{other:?}"),
-    }
+    cell_cal(stray, 0.0)
 }
 
 fn read_log(b: &mut Bench) -> Vec<Reading> {
@@ -120,7 +103,7 @@ fn calibration_update_body() {
             fl.restart();
             let mut b = Bench::on_flash(22, *fe.scenario(), fl);
             b.counter = counter + 1;
-            let now = read_cell(&mut b);
+            let now = stored_cell(&mut b);
             assert!(
                 now == Some(old) || now == Some(new),
                 "extra {extra} step {k}: calibration after cut is {now:?}"
@@ -144,7 +127,7 @@ fn calibration_update_body() {
                 Response::Ack,
                 "extra {extra} step {k}"
             );
-            assert_eq!(read_cell(&mut b), Some(cell(2.5)));
+            assert_eq!(stored_cell(&mut b), Some(cell(2.5)));
         }
     }
     assert!(steps_total >= 9);

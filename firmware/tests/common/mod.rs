@@ -163,3 +163,26 @@ pub fn big_stack(f: impl FnOnce() + Send + 'static) {
         .join()
         .expect("test thread");
 }
+
+/// A cell calibration with stray capacitance `stray` pF at both frequencies.
+pub fn cell_cal(stray: f32, reference_ratio: f32) -> CellCal {
+    let p = |f: f32| CellPoint {
+        freq_hz: f,
+        stray_pf: stray,
+        cell_pf: 1.5,
+        g_offset_s: 2e-8,
+    };
+    CellCal {
+        points: [p(1.0e6), p(20.0e6)],
+        reference_ratio,
+        made_s: 1_764_000_000,
+    }
+}
+
+/// The cell calibration the device holds now.
+pub fn stored_cell(b: &mut Bench) -> Option<CellCal> {
+    match b.ok(Request::ReadCellCal) {
+        Response::CellCal(c) => c,
+        other => panic!("{other:?}"),
+    }
+}
