@@ -359,7 +359,8 @@ fn check_product(c: &ProductCal) -> Result<ProductCalibration<f32>, Refusal> {
 
 impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
     /// Boot: mount storage (repairing if needed), raise the boot counter,
-    /// load calibrations and settings, log a Boot event.
+    /// load calibrations and settings, log a Boot event. The same as
+    /// [`Booted::mount`] followed by [`Device::from_booted`].
     ///
     /// # Errors
     /// [`BootError::Storage`] when the flash cannot be used at all,
@@ -372,53 +373,45 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         reset_cause: ResetCause,
         now_ms: u64,
     ) -> Result<Self, BootError> {
-        config.check()?;
-        let (mut storage, report) = Storage::mount(flash)?;
-        let ident = match storage.get::<StoredIdentity>(key::IDENTITY)? {
-            Some(id) => id,
-            None => {
-                let id = StoredIdentity {
-                    serial: config.serial.clone(),
-                    key: config.key,
-                };
-                storage.put(key::IDENTITY, &id)?;
-                id
-            }
-        };
-        let boot = storage.get::<u32>(key::BOOT)?.unwrap_or(0).wrapping_add(1);
-        storage.put(key::BOOT, &boot)?;
-        let write_counter = storage.get::<u32>(key::WRITE_COUNTER)?.unwrap_or(0);
-        let cell = storage
-            .cell_cal()?
-            .filter(|c| check_cell(c, &config.freqs_hz).is_ok());
-        let output_cfg = storage
-            .get::<OutputConfig>(key::OUTPUT)?
-            .filter(|o| output::validate(o).is_ok())
-            .unwrap_or(DEFAULT_OUTPUT);
-        let active_slot = storage.get::<Option<u8>>(key::ACTIVE_SLOT)?.flatten();
-        let next_event = storage.last_event().map_or(0, |n| n.wrapping_add(1));
+        let booted = Booted::mount(flash, config, reset_cause)?;
+        Ok(Self::from_booted(booted, frontend, output, now_ms))
+    }
+
+    /// The second half of boot: builds the device from what
+    /// [`Booted::mount`] read and sets the current output. Does no storage
+    /// work, so a board that moves the device into a static holds the
+    /// device on its stack only here, with nothing deep below it.
+    pub fn from_booted(booted: Booted<S>, frontend: F, output: O, now_ms: u64) -> Self {
+        let Booted {
+            storage,
+            stored: st,
+            config,
+        } = booted;
+        let mut out = output;
+        let (output_ma, _) = output::current_ma(&st.output_cfg, None);
+        let output_fault = out.set_ma(output_ma).is_err();
         let mcfg = config.measure();
-        let mut dev = Self {
+        Self {
             fe: frontend,
             storage,
-            out: output,
+            out,
             mcfg,
-            serial: ident.serial,
-            key: ident.key,
+            serial: st.ident.serial,
+            key: st.ident.key,
             cfg: config,
-            boot,
+            boot: st.boot,
             counter: 0,
-            write_counter,
-            next_event,
+            write_counter: st.write_counter,
+            next_event: st.next_event,
             boot_ms: now_ms,
             clock_offset_ms: None,
-            cell_id: cell.as_ref().map_or(CalId::NONE, CellCal::content_id),
-            cell,
-            active: None,
-            active_slot,
-            output_cfg,
-            output_ma: output::MA_FAIL_LOW,
-            output_fault: false,
+            cell_id: st.cell.as_ref().map_or(CalId::NONE, CellCal::content_id),
+            cell: st.cell,
+            active: st.active,
+            active_slot: st.active_slot,
+            output_cfg: st.output_cfg,
+            output_ma,
+            output_fault,
             chain: ChainState::default(),
             chain_valid: false,
             chain_n: 0,
@@ -435,30 +428,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             txbuf: [0; MAX_FRAME_LEN],
             reboot: false,
             diag: Diagnostics::default(),
-        };
-        dev.load_active()?;
-        dev.drive_output(None);
-        if report.repaired {
-            dev.log_event(now_ms, EventKind::StorageRepaired);
         }
-        dev.log_event(now_ms, EventKind::Boot { reset_cause });
-        Ok(dev)
-    }
-
-    fn load_active(&mut self) -> Result<(), StorageError> {
-        self.active = None;
-        if let Some(slot) = self.active_slot {
-            if let Some(pc) = self.storage.product(slot)? {
-                if let Ok(cal) = parse_product(&pc) {
-                    self.active = Some(Active {
-                        slot,
-                        id: pc.content_id(),
-                        cal,
-                    });
-                }
-            }
-        }
-        Ok(())
     }
 
     /// One step: take received serial bytes, run the schedule and commands,
@@ -1123,6 +1093,145 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         self.output_ma = ma;
         self.output_fault = self.out.set_ma(ma).is_err();
     }
+}
+
+/// Storage mounted and read at boot, the device not yet built: the first
+/// half of [`Device::new`]. It holds the mounted storage, the identity,
+/// boot counter, calibrations and settings read from it, and the boot
+/// events are already logged.
+pub struct Booted<S: NorFlash> {
+    storage: Storage<S>,
+    stored: Stored,
+    config: DeviceConfig,
+}
+
+impl<S: NorFlash> core::fmt::Debug for Booted<S> {
+    fn fmt(&self, f: &mut core::fmt::Formatter<'_>) -> core::fmt::Result {
+        f.debug_struct("Booted")
+            .field("boot", &self.stored.boot)
+            .field("storage", &self.storage)
+            .finish_non_exhaustive()
+    }
+}
+
+impl<S: NorFlash> Booted<S> {
+    /// Checks the configuration, mounts storage (repairing if needed),
+    /// raises the boot counter, loads calibrations and settings and logs
+    /// the boot events.
+    ///
+    /// # Errors
+    /// As [`Device::new`].
+    pub fn mount(
+        flash: S,
+        config: DeviceConfig,
+        reset_cause: ResetCause,
+    ) -> Result<Self, BootError> {
+        config.check()?;
+        let (mut storage, report) = Storage::mount(flash)?;
+        let stored = Stored::load(&mut storage, &config, report.repaired, reset_cause)?;
+        Ok(Self {
+            storage,
+            stored,
+            config,
+        })
+    }
+
+    /// The boot counter this boot raised it to.
+    pub fn boot_count(&self) -> u32 {
+        self.stored.boot
+    }
+}
+
+/// What boot reads from (and writes to) storage before the device is built.
+struct Stored {
+    ident: StoredIdentity,
+    boot: u32,
+    write_counter: u32,
+    next_event: u32,
+    cell: Option<CellCal>,
+    active: Option<Active>,
+    active_slot: Option<u8>,
+    output_cfg: OutputConfig,
+}
+
+impl Stored {
+    /// Reads the identity (storing the configured one on first boot),
+    /// raises the boot counter, loads calibrations and settings, and logs
+    /// the boot events.
+    fn load<S: NorFlash>(
+        storage: &mut Storage<S>,
+        config: &DeviceConfig,
+        repaired: bool,
+        reset_cause: ResetCause,
+    ) -> Result<Self, StorageError> {
+        let ident = match storage.get::<StoredIdentity>(key::IDENTITY)? {
+            Some(id) => id,
+            None => {
+                let id = StoredIdentity {
+                    serial: config.serial.clone(),
+                    key: config.key,
+                };
+                storage.put(key::IDENTITY, &id)?;
+                id
+            }
+        };
+        let boot = storage.get::<u32>(key::BOOT)?.unwrap_or(0).wrapping_add(1);
+        storage.put(key::BOOT, &boot)?;
+        let write_counter = storage.get::<u32>(key::WRITE_COUNTER)?.unwrap_or(0);
+        let cell = storage
+            .cell_cal()?
+            .filter(|c| check_cell(c, &config.freqs_hz).is_ok());
+        let output_cfg = storage
+            .get::<OutputConfig>(key::OUTPUT)?
+            .filter(|o| output::validate(o).is_ok())
+            .unwrap_or(DEFAULT_OUTPUT);
+        let active_slot = storage.get::<Option<u8>>(key::ACTIVE_SLOT)?.flatten();
+        let active = load_active(storage, active_slot)?;
+        // Boot events, numbered on from the log; their time is 0 (ms since
+        // this boot: the host has not set the clock yet).
+        let mut next_event = storage.last_event().map_or(0, |n| n.wrapping_add(1));
+        let mut boot_event = |storage: &mut Storage<S>, kind| {
+            let ev = Event {
+                number: next_event,
+                boot,
+                time_ms: 0,
+                kind,
+            };
+            next_event = next_event.wrapping_add(1);
+            // Not fatal, as in `log_event`.
+            let _ = storage.append_event(&ev);
+        };
+        if repaired {
+            boot_event(storage, EventKind::StorageRepaired);
+        }
+        boot_event(storage, EventKind::Boot { reset_cause });
+        Ok(Self {
+            ident,
+            boot,
+            write_counter,
+            next_event,
+            cell,
+            active,
+            active_slot,
+            output_cfg,
+        })
+    }
+}
+
+/// The product calibration in `slot`, parsed; `None` when there is no
+/// slot, nothing stored there, or it no longer parses.
+fn load_active<S: NorFlash>(
+    storage: &mut Storage<S>,
+    slot: Option<u8>,
+) -> Result<Option<Active>, StorageError> {
+    let Some(slot) = slot else { return Ok(None) };
+    Ok(storage.product(slot)?.and_then(|pc| {
+        parse_product(&pc).ok().map(|cal| Active {
+            slot,
+            id: pc.content_id(),
+            cal,
+        })
+    }))
 }
 
 fn in_slot(slot: u8) -> Result<(), Refusal> {

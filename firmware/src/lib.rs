@@ -40,7 +40,7 @@ pub mod output;
 pub mod sim;
 pub mod storage;
 
-pub use device::{BootError, Device, DeviceConfig, Diagnostics};
+pub use device::{BootError, Booted, Device, DeviceConfig, Diagnostics};
 pub use flash::RamFlash;
 pub use fringe_protocol as protocol;
 pub use hal::{CurrentOutput, Frontend, Watchdog};
