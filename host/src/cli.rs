@@ -117,6 +117,13 @@ pub struct SimArgs {
     /// Stop after this many seconds (default: run until Ctrl-C).
     #[arg(long, value_name = "S")]
     pub duration_s: Option<f64>,
+    /// Bench fixture file, for simulating bench work (`fringe cal cell`):
+    /// while it exists, its first word says what is in front of the window,
+    /// `air` or a reference liquid of the table (at the scenario's
+    /// temperature, clean window); `line`, an empty file or no file means
+    /// the scenario's line. Read about every 100 ms of wall time.
+    #[arg(long, value_name = "FILE")]
+    pub bench: Option<PathBuf>,
 }
 
 /// `fringe monitor`.
@@ -143,6 +150,23 @@ pub struct MonitorArgs {
     /// Print the end-of-run summary as JSON on stdout.
     #[arg(long)]
     pub json: bool,
+    /// Re-run the drift monitors of `fringe drift` on the stored data every
+    /// S seconds while streaming and announce each new alarm; 0 turns them off.
+    #[arg(long, value_name = "S", default_value_t = 10.0, value_parser = seconds_0_to_day)]
+    pub drift_every_s: f64,
+}
+
+/// Seconds from 0 to a day.
+fn seconds_0_to_day(s: &str) -> Result<f64, String> {
+    let v: f64 = s
+        .trim()
+        .parse()
+        .map_err(|_| format!("`{s}` is not a number of seconds"))?;
+    if v.is_finite() && (0.0..=86_400.0).contains(&v) {
+        Ok(v)
+    } else {
+        Err(format!("{s} s is outside 0 (off) to 86400 s"))
+    }
 }
 
 /// `fringe pull`.

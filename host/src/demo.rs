@@ -259,6 +259,9 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         yes: true,
     };
     let mut say = |s: &str| println!("    {s}");
+    // Records carry the demo's own time (the bench day, the shift), not
+    // the wall clock of the machine running it.
+    store.set_record_clock(Some(BENCH_MS + 20 * 60_000));
     let cell = device_cal::cell_calibration(
         &mut link,
         &DEMO_KEY,
@@ -332,6 +335,7 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         "pushing the calibration to the device with an audit record",
     );
     let (file, wire) = ProductFile::load(&outs.product)?;
+    store.set_record_clock(Some(BENCH_MS + 4 * 3_600_000));
     let pushed = device_cal::push(
         &mut link,
         &DEMO_KEY,
@@ -436,6 +440,8 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
             store.insert_readings(SERIAL, &batch, Source::Stream)?;
             batch.clear();
             lab_count += 1;
+            // The lab's result is entered 40 min after the grab.
+            store.set_record_clock(Some(r.time_ms as i64 + 40 * 60_000));
             store.insert_lab_sample(
                 SERIAL,
                 &NewLabSample {
@@ -518,6 +524,7 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
 }
 
 fn print_outputs(o: &DemoOutputs) {
+    let drift = o.dir.join("drift.svg");
     let rows: [(&str, &Path); 8] = [
         ("database (hash-chained)", &o.db),
         ("reference samples", &o.samples),
@@ -525,7 +532,7 @@ fn print_outputs(o: &DemoOutputs) {
         ("fit plots", &o.fit_plot),
         ("audit bundle", &o.bundle),
         ("report (open in a browser)", &o.report),
-        ("drift charts", &o.dir),
+        ("drift charts", &drift),
         ("device key (demo only)", &o.key),
     ];
     println!("outputs:");

@@ -39,7 +39,7 @@ use serde::Serialize;
 pub use crate::timefmt::fmt_time;
 
 /// What a monitor watches.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Quantity {
     /// Internal reference check: ratio to its baseline, in % deviation.
@@ -271,7 +271,7 @@ pub enum ChartKind {
 }
 
 /// Direction of a shift.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Direction {
     /// Mean above target.

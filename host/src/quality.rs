@@ -314,14 +314,18 @@ fn trace_json(t: &Trace) -> serde_json::Value {
         "ewma": if m.range.is_none() {
             json!({ "lambda": m.ewma.lambda, "l": m.ewma.l, "arl0": m.ewma.arl(0.0, 120), "arl_1sigma": m.ewma.arl(1.0, 120) })
         } else { serde_json::Value::Null },
-        "alarms": t.episodes().iter().map(|a| {
-            let mut v = serde_json::to_value(a).unwrap_or_default();
-            v["message"] = json!(a.message());
-            v["since_utc"] = json!(fmt_time(a.since_ms));
-            v["time_utc"] = json!(fmt_time(a.time_ms));
-            v
-        }).collect::<Vec<_>>(),
+        "alarms": t.episodes().iter().map(alarm_json).collect::<Vec<_>>(),
     })
+}
+
+/// One alarm as `fringe drift --json` and `fringe monitor --json` print it:
+/// its fields, the message for a person and both times in UTC.
+pub fn alarm_json(a: &crate::drift::Alarm) -> serde_json::Value {
+    let mut v = serde_json::to_value(a).unwrap_or_default();
+    v["message"] = json!(a.message());
+    v["since_utc"] = json!(fmt_time(a.since_ms));
+    v["time_utc"] = json!(fmt_time(a.time_ms));
+    v
 }
 
 /// Prints a drift summary for `data` to `w`; returns the alarm count.

@@ -163,6 +163,9 @@ pub struct ScenarioSpec {
     pub garbage_per_frame: f64,
     /// Disconnects as (at device s, for wall s).
     pub disconnects: Vec<(f64, f64)>,
+    /// More scenario text (top-level keys, then `[[empty]]` tables),
+    /// placed before the `[device]` table.
+    pub extra: String,
 }
 
 impl ScenarioSpec {
@@ -177,6 +180,7 @@ impl ScenarioSpec {
             flip_per_byte: 0.0,
             garbage_per_frame: 0.0,
             disconnects: Vec::new(),
+            extra: String::new(),
         }
     }
 
@@ -186,10 +190,11 @@ impl ScenarioSpec {
             "name = \"Harrowgate Mill, line 2 dryer outlet (test)\"\n\
              moisture_pct = [[0, 14.0], [120, 16.0], [240, 13.5]]\n\
              temperature_c = [[0, 30.0], [240, 34.0]]\n\
-             water_conductivity_s_m = [[0, 0.1]]\n\n\
+             water_conductivity_s_m = [[0, 0.1]]\n{}\n\
              [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\n\n\
              [product]\nname = \"wheat\"\n\n\
              [link]\ndrop_per_byte = {}\nflip_per_byte = {}\ngarbage_per_frame = {}\n",
+            self.extra,
             self.serial,
             self.seed,
             self.time_scale,
@@ -240,6 +245,8 @@ impl Sim {
             port.to_str().unwrap_or_default(),
             "--record",
             record.to_str().unwrap_or_default(),
+            "--bench",
+            dir.path().join("bench").to_str().unwrap_or_default(),
         ])
         .stdout(log.try_clone().expect("log"))
         .stderr(log)
@@ -272,6 +279,14 @@ impl Sim {
     /// A path in the sim's folder.
     pub fn path(&self, name: &str) -> PathBuf {
         self.dir.path().join(name)
+    }
+
+    /// Puts `what` (`air`, a table liquid, or `line`) in front of the
+    /// simulated window through the bench fixture file, and waits until the
+    /// simulator has read it (it looks every 100 ms).
+    pub fn set_bench(&self, what: &str) {
+        std::fs::write(self.path("bench"), what).expect("write bench file");
+        std::thread::sleep(Duration::from_millis(400));
     }
 
     /// What the simulator printed.
@@ -423,4 +438,138 @@ pub fn assert_gapless(stored: &[Reading], recorded: &BTreeMap<Seq, Reading>, ctx
         stored.len()
     );
     stored.len()
+}
+
+/// A `fringe` command driven through its prompts: its stdin is a pipe, its
+/// stdout and stderr are collected as they come.
+pub struct Interactive {
+    child: Child,
+    stdin: Option<std::process::ChildStdin>,
+    out: std::sync::Arc<std::sync::Mutex<String>>,
+    err: std::sync::Arc<std::sync::Mutex<String>>,
+    readers: Vec<std::thread::JoinHandle<()>>,
+}
+
+impl Interactive {
+    /// Starts `cmd` with piped stdin, stdout and stderr.
+    ///
+    /// # Panics
+    /// If it cannot start.
+    pub fn spawn(cmd: &mut Command) -> Self {
+        let mut child = cmd
+            .stdin(Stdio::piped())
+            .stdout(Stdio::piped())
+            .stderr(Stdio::piped())
+            .spawn()
+            .expect("cannot start fringe");
+        let out = std::sync::Arc::new(std::sync::Mutex::new(String::new()));
+        let err = std::sync::Arc::new(std::sync::Mutex::new(String::new()));
+        let mut readers = Vec::new();
+        for (pipe, buf) in [
+            (
+                Box::new(child.stdout.take().expect("stdout")) as Box<dyn std::io::Read + Send>,
+                out.clone(),
+            ),
+            (
+                Box::new(child.stderr.take().expect("stderr")) as Box<dyn std::io::Read + Send>,
+                err.clone(),
+            ),
+        ] {
+            readers.push(std::thread::spawn(move || {
+                let mut pipe = pipe;
+                let mut chunk = [0u8; 1024];
+                while let Ok(n) = pipe.read(&mut chunk) {
+                    if n == 0 {
+                        break;
+                    }
+                    buf.lock()
+                        .expect("buffer")
+                        .push_str(&String::from_utf8_lossy(&chunk[..n]));
+                }
+            }));
+        }
+        Self {
+            stdin: child.stdin.take(),
+            child,
+            out,
+            err,
+            readers,
+        }
+    }
+
+    /// What it wrote to stderr so far.
+    pub fn stderr(&self) -> String {
+        self.err.lock().expect("buffer").clone()
+    }
+
+    /// Waits until stderr holds `needle` at least `nth` times.
+    ///
+    /// # Panics
+    /// After `limit`, or if the program ends first, with what it printed.
+    pub fn expect(&mut self, needle: &str, nth: usize, limit: Duration) {
+        let t0 = Instant::now();
+        loop {
+            let e = self.stderr();
+            if e.matches(needle).count() >= nth {
+                return;
+            }
+            let ended = self.child.try_wait().expect("wait").is_some();
+            assert!(
+                !ended && t0.elapsed() < limit,
+                "waiting for {needle:?} (#{nth}){}; stderr:\n{e}",
+                if ended {
+                    ": the program ended"
+                } else {
+                    ": timed out"
+                }
+            );
+            std::thread::sleep(Duration::from_millis(20));
+        }
+    }
+
+    /// Types `line` and Enter.
+    ///
+    /// # Panics
+    /// If stdin is closed.
+    pub fn send(&mut self, line: &str) {
+        use std::io::Write as _;
+        let stdin = self.stdin.as_mut().expect("stdin open");
+        writeln!(stdin, "{line}").expect("write to stdin");
+        stdin.flush().expect("flush stdin");
+    }
+
+    /// Closes stdin and waits for the end.
+    ///
+    /// # Panics
+    /// After `limit` (killed first).
+    pub fn finish(mut self, limit: Duration) -> Outcome {
+        drop(self.stdin.take());
+        let t0 = Instant::now();
+        let status = loop {
+            if let Some(s) = self.child.try_wait().expect("wait") {
+                break s;
+            }
+            if t0.elapsed() > limit {
+                let _ = self.child.kill();
+                let _ = self.child.wait();
+                panic!("ran longer than {limit:?}; stderr:\n{}", self.stderr());
+            }
+            std::thread::sleep(Duration::from_millis(10));
+        };
+        for r in self.readers.drain(..) {
+            let _ = r.join();
+        }
+        Outcome {
+            code: status.code().unwrap_or(-1),
+            stdout: self.out.lock().expect("buffer").clone(),
+            stderr: self.stderr(),
+        }
+    }
+}
+
+impl Drop for Interactive {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
 }

@@ -6,6 +6,13 @@
 //! monitor first backfills from the last stored reading, so a killed monitor
 //! loses nothing the device still holds. When the port vanishes the monitor
 //! commits what it has and reconnects with backoff.
+//!
+//! Drift: every `--drift-every-s` seconds (after a commit) the monitor runs
+//! the same four monitors as `fringe drift` ([`crate::analysis`]) over all
+//! that is stored for the device, and announces each alarm episode it has
+//! not announced before; those already in the record when it started are
+//! counted in one line. The episodes are those `fringe drift` prints, as
+//! both read the same store with the same code.
 
 use std::io::Write;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -17,12 +24,13 @@ use fringe_protocol::{DeviceFrame, Flags, Reading, Request, Seq};
 use super::ingest::{backfill, next_seq, pull_events};
 use crate::cli::MonitorArgs;
 use crate::config::{AlarmLimits, LineConfig};
+use crate::drift::{Direction, Quantity};
 use crate::link::{Link, LinkError};
 use crate::out::{self, Style};
 use crate::store::{Batcher, Source, Store};
 
 /// What a monitor run did (printed at the end, `--json` for scripts).
-#[derive(Debug, Clone, Copy, Default, serde::Serialize)]
+#[derive(Debug, Clone, Default, serde::Serialize)]
 pub struct MonitorSummary {
     /// Streamed readings received.
     pub streamed: u64,
@@ -40,6 +48,22 @@ pub struct MonitorSummary {
     pub reconnects: u32,
     /// Damaged frames seen by the host.
     pub link_errors: u32,
+    /// Drift alarm episodes already in the record when the monitor started.
+    pub drift_alarms_before: usize,
+    /// Drift alarm episodes raised while it ran, as `fringe drift --json`
+    /// prints them, each with `announced_after_streamed` (readings streamed
+    /// when it was announced).
+    pub drift_alarms: Vec<serde_json::Value>,
+}
+
+/// The live drift check (see the module doc).
+struct DriftWatch {
+    every: Option<Duration>,
+    last: Option<Instant>,
+    /// Episodes announced (or found at start): quantity, direction, time
+    /// of the episode's first alarm.
+    known: std::collections::HashSet<(Quantity, Direction, i64)>,
+    primed: bool,
 }
 
 struct Monitor<'a> {
@@ -59,6 +83,7 @@ struct Monitor<'a> {
     last_reading: Instant,
     rate: RateMeter,
     latest: Option<Reading>,
+    drift: DriftWatch,
 }
 
 /// Readings per second over a sliding window.
@@ -155,6 +180,60 @@ impl Monitor<'_> {
                 "{} readings after {} were no longer in the device log (lost)",
                 b.lost, last
             ))?;
+        }
+        Ok(())
+    }
+
+    /// Runs the drift monitors if due (or `force`d) and announces new alarms.
+    fn check_drift(&mut self, force: bool) -> anyhow::Result<()> {
+        let Some(every) = self.drift.every else {
+            return Ok(());
+        };
+        if !force && self.drift.last.is_some_and(|t| t.elapsed() < every) {
+            return Ok(());
+        }
+        self.drift.last = Some(Instant::now());
+        let data = match crate::analysis::load(&self.store, Some(&self.serial)) {
+            Ok(d) => d,
+            // Nothing stored for the device yet: nothing to watch.
+            Err(_) if self.store.last_seq(&self.serial)?.is_none() => return Ok(()),
+            Err(e) => return Err(e.context("reading the stored data for the drift monitors")),
+        };
+        let mut fresh = Vec::new();
+        for t in data.traces() {
+            for a in t.episodes() {
+                if self
+                    .drift
+                    .known
+                    .insert((a.quantity, a.direction, a.time_ms))
+                {
+                    fresh.push(a);
+                }
+            }
+        }
+        if !self.drift.primed {
+            self.drift.primed = true;
+            self.sum.drift_alarms_before = fresh.len();
+            if !fresh.is_empty() {
+                self.notice(&format!(
+                    "{} drift alarm(s) already in the record for {} (details: `fringe drift`)",
+                    fresh.len(),
+                    self.serial
+                ))?;
+            }
+            return Ok(());
+        }
+        for a in fresh {
+            let text = format!("DRIFT ALARM: {}", a.message());
+            let text = if self.style.tty {
+                self.style.paint("1;31", &text)
+            } else {
+                text
+            };
+            self.notice(&text)?;
+            let mut v = crate::quality::alarm_json(&a);
+            v["announced_after_streamed"] = self.sum.streamed.into();
+            self.sum.drift_alarms.push(v);
         }
         Ok(())
     }
@@ -332,6 +411,12 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
             times: Default::default(),
         },
         latest: None,
+        drift: DriftWatch {
+            every: (args.drift_every_s > 0.0).then(|| Duration::from_secs_f64(args.drift_every_s)),
+            last: None,
+            known: Default::default(),
+            primed: false,
+        },
     };
     if !args.quiet {
         m.notice(&format!(
@@ -370,6 +455,12 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
     };
     // Commit whatever arrived, whatever happened.
     let flushed = m.flush();
+    // The last batch's alarms (a drift failure must not hide the run's result).
+    let drift_checked = if flushed.is_ok() && result.is_ok() {
+        m.check_drift(true)
+    } else {
+        Ok(())
+    };
     if m.link.is_connected() {
         let _ = m.link.request(Request::StopStream);
     }
@@ -380,6 +471,7 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
     m.sum.link_errors = m.link.stats().damaged;
     result?;
     flushed?;
+    drift_checked?;
     let s = m.sum;
     if args.json {
         out::json(&serde_json::to_value(s)?)?;
@@ -415,6 +507,7 @@ impl Monitor<'_> {
         let now_at = super::request_status(&mut self.link)?.next_seq;
         self.fill_gap(Some(now_at))?;
         self.flush()?;
+        self.check_drift(!self.drift.primed)?;
         self.start_stream()?;
         let silence = Duration::from_millis(u64::from(self.period_ms) * 5 + 2000);
         loop {
@@ -440,6 +533,7 @@ impl Monitor<'_> {
             }
             if self.batcher.due(Instant::now()) {
                 self.flush()?;
+                self.check_drift(false)?;
             }
             if self.last_reading.elapsed() > silence {
                 // The stream went quiet: ask the device; no answer means reconnect.

@@ -12,7 +12,7 @@ use fringe_protocol::ResetCause;
 
 use crate::cli::SimArgs;
 use crate::sim::scenario::{Conditions, Scenario};
-use crate::sim::{SimDevice, SimOptions};
+use crate::sim::{Bench, SimDevice, SimOptions};
 
 /// Flash of the simulated device: 1 MiB holds some 20,000 readings.
 const FLASH_BYTES: usize = 1 << 20;
@@ -25,6 +25,7 @@ pub struct FirmwareSim {
     config: DeviceConfig,
     product: SynthProduct<f32>,
     last_ms: u64,
+    bench: Option<Bench>,
 }
 
 impl FirmwareSim {
@@ -54,6 +55,7 @@ impl FirmwareSim {
             config,
             product,
             last_ms: 0,
+            bench: None,
         };
         s.set_conditions(&scenario.at(0.0));
         Ok(s)
@@ -84,8 +86,24 @@ impl SimDevice for FirmwareSim {
             s.product_present = c.product_present;
             s.temperature_c = c.temperature_c as f32;
             s.buildup_mm = c.buildup_mm as f32;
+            if let Some(b) = self.bench {
+                // At the bench: the window cleaned, the material in the cell.
+                s.material = match b {
+                    Bench::Air => Material::Air,
+                    Bench::Liquid(l) => Material::Liquid {
+                        eps_re: l.permittivity(c.temperature_c) as f32,
+                        eps_im: 0.0,
+                    },
+                };
+                s.product_present = true;
+                s.buildup_mm = 0.0;
+            }
             fe.set_scenario(s);
         }
+    }
+
+    fn set_bench(&mut self, bench: Option<Bench>) {
+        self.bench = bench;
     }
 
     fn reboot_if_requested(&mut self, now_ms: u64) {
@@ -119,6 +137,7 @@ pub fn sim(args: &SimArgs, stop: &AtomicBool) -> anyhow::Result<()> {
         link: args.link.clone(),
         record: args.record.clone(),
         duration: args.duration_s.map(std::time::Duration::from_secs_f64),
+        bench: args.bench.clone(),
     };
     let serial = scenario.device.serial.clone();
     let title = scenario.name.clone();

@@ -32,6 +32,44 @@ pub trait SimDevice {
     fn set_conditions(&mut self, c: &Conditions);
     /// Reboots the device (same flash) if it asked for it.
     fn reboot_if_requested(&mut self, now_ms: u64);
+    /// Puts a bench material in front of the window instead of the line
+    /// (`None`: the line again). Applied with the next conditions.
+    fn set_bench(&mut self, bench: Option<Bench>);
+}
+
+/// What is in front of the window at the bench.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Bench {
+    /// Dry air.
+    Air,
+    /// A reference liquid of the calibration crate's table.
+    Liquid(&'static fringe_calibration::water::ReferenceLiquid),
+}
+
+impl Bench {
+    /// Parses a bench fixture file's text: its first word, `None` for
+    /// `line` or nothing.
+    ///
+    /// # Errors
+    /// A word that names neither air, a table liquid nor the line.
+    pub fn parse(text: &str) -> Result<Option<Bench>, String> {
+        match text.split_whitespace().next() {
+            None | Some("line") => Ok(None),
+            Some("air") => Ok(Some(Bench::Air)),
+            Some(w) => fringe_calibration::water::ReferenceLiquid::by_name(w)
+                .map(|l| Some(Bench::Liquid(l)))
+                .ok_or_else(|| {
+                    format!(
+                        "bench fixture `{w}`: not `line`, `air` or a table liquid ({})",
+                        fringe_calibration::water::REFERENCE_LIQUIDS
+                            .iter()
+                            .map(|l| l.name)
+                            .collect::<Vec<_>>()
+                            .join(", ")
+                    )
+                }),
+        }
+    }
 }
 
 /// Where the simulator is reachable and what it did.
@@ -58,6 +96,8 @@ pub struct SimOptions {
     pub record: Option<PathBuf>,
     /// Stop after this much wall time.
     pub duration: Option<Duration>,
+    /// Bench fixture file (see `fringe sim --bench`).
+    pub bench: Option<PathBuf>,
 }
 
 struct Pty {
@@ -139,6 +179,8 @@ pub fn run(
     let scale = scenario.device.time_scale;
     let mut reopen_at: Option<Instant> = None;
     let mut last_conditions = Instant::now() - Duration::from_secs(1);
+    let mut last_bench = Instant::now() - Duration::from_secs(1);
+    let mut bench_text = String::new();
     let mut baud_ok = true;
     let mut tx_blocked_until: Option<Instant> = None;
     let mut buf = [0u8; 2048];
@@ -170,6 +212,26 @@ pub fn run(
             reopen_at = None;
         }
 
+        if let Some(path) = opts.bench.as_deref() {
+            if last_bench.elapsed() >= Duration::from_millis(100) {
+                last_bench = Instant::now();
+                let text = std::fs::read_to_string(path).unwrap_or_default();
+                if text != bench_text {
+                    match Bench::parse(&text) {
+                        Ok(b) => {
+                            device.set_bench(b);
+                            eprintln!(
+                                "fringe sim: bench fixture: {}",
+                                text.split_whitespace().next().unwrap_or("line")
+                            );
+                        }
+                        // Keep what was there; say why once per change.
+                        Err(e) => eprintln!("fringe sim: {}: {e}", path.display()),
+                    }
+                    bench_text = text;
+                }
+            }
+        }
         if last_conditions.elapsed() >= Duration::from_millis(20) {
             device.set_conditions(&scenario.at(t_s));
             last_conditions = Instant::now();

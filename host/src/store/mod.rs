@@ -686,9 +686,20 @@ pub fn now_unix_ms() -> i64 {
 pub struct Store {
     conn: Connection,
     path: PathBuf,
+    /// Fixed time for new calibration and lab records (see
+    /// [`Store::set_record_clock`]); `None`: the system clock.
+    record_clock_ms: Option<i64>,
 }
 
 impl Store {
+    /// Stamps calibration and lab records inserted from now on with
+    /// `unix_ms` instead of the system clock (`None` restores it). For a
+    /// replay or simulation whose events happen at their own time, as in
+    /// `fringe demo`; the plant's commands never set it.
+    pub fn set_record_clock(&mut self, unix_ms: Option<i64>) {
+        self.record_clock_ms = unix_ms;
+    }
+
     /// Opens (creating if needed) the store at `path`, in WAL mode, and
     /// applies any pending migrations.
     ///
@@ -704,7 +715,11 @@ impl Store {
                 | OpenFlags::SQLITE_OPEN_NO_MUTEX,
         )
         .map_err(|e| StoreError::from_sqlite(&path, e))?;
-        let mut store = Store { conn, path };
+        let mut store = Store {
+            conn,
+            path,
+            record_clock_ms: None,
+        };
         store.configure(true)?;
         store.migrate()?;
         Ok(store)
@@ -727,7 +742,11 @@ impl Store {
             OpenFlags::SQLITE_OPEN_READ_ONLY | OpenFlags::SQLITE_OPEN_NO_MUTEX,
         )
         .map_err(|e| StoreError::from_sqlite(&path, e))?;
-        let store = Store { conn, path };
+        let store = Store {
+            conn,
+            path,
+            record_clock_ms: None,
+        };
         store.configure(false)?;
         let v = store.user_version()?;
         if v != SCHEMA_VERSION {
@@ -756,7 +775,11 @@ impl Store {
     pub fn open_in_memory() -> Result<Self, StoreError> {
         let path = PathBuf::from(":memory:");
         let conn = Connection::open_in_memory().map_err(|e| StoreError::from_sqlite(&path, e))?;
-        let mut store = Store { conn, path };
+        let mut store = Store {
+            conn,
+            path,
+            record_clock_ms: None,
+        };
         store.configure(false)?;
         store.migrate()?;
         Ok(store)
@@ -1100,7 +1123,7 @@ impl Store {
                 });
             }
         }
-        let created = now_unix_ms();
+        let created = self.record_clock_ms.unwrap_or_else(now_unix_ms);
         let probe = values(0, created);
         let candidates =
             all_stored_values(&tx, table, find, params![device, probe[find_col].clone()])

@@ -1,0 +1,413 @@
+//! Bench and calibration commands against `fringe sim` over a
+//! pseudo-terminal, driven through their prompts as a person would:
+//! `cal cell` (air, methanol, verified with ethanol; and a verification
+//! that fails and writes nothing), `cal capture`, `cal push`, `cal list`,
+//! `cal select`, `cal history`; and `fringe monitor` raising a drift alarm
+//! live on the calibrated device.
+//!
+//! The simulator's bench fixture file stands for the liquid in the cell
+//! (`Sim::set_bench`); the liquids' permittivities come from the
+//! calibration crate's reference-liquid table, and the check is the
+//! command's own verification against that table, as at a real bench.
+
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use fringe_tests::*;
+
+const LIMIT: Duration = Duration::from_secs(120);
+const PROMPT: Duration = Duration::from_secs(30);
+const ENTER: &str = "press Enter when done";
+
+fn key_file(sim: &Sim) -> PathBuf {
+    let p = sim.path("device.key");
+    std::fs::write(&p, format!("{TEST_KEY_HEX}\n")).expect("key file");
+    p
+}
+
+/// `fringe cal cell` through its four steps; `materials` are what is put
+/// in front of the window at each (air, liquid, verification liquid, air).
+fn cell_calibration(sim: &Sim, db: &Path, key: &Path, materials: [&str; 4]) -> Outcome {
+    sim.set_bench(materials[0]);
+    let mut c = Interactive::spawn(&mut fringe(&[
+        "cal",
+        "cell",
+        "--port",
+        sim.port_str(),
+        "--key-file",
+        key.to_str().unwrap(),
+        "--db",
+        db.to_str().unwrap(),
+        "--liquid",
+        "methanol",
+        "--verify-liquid",
+        "ethanol",
+        "--readings",
+        "4",
+        "--operator",
+        "T. Bench (test)",
+        "--yes",
+    ]));
+    for (i, m) in materials.iter().enumerate() {
+        c.expect(ENTER, i + 1, PROMPT);
+        sim.set_bench(m);
+        c.send("");
+        // A failed verification ends the procedure before the last step.
+        if i == 2 && materials[2] != "ethanol" {
+            break;
+        }
+    }
+    c.finish(LIMIT)
+}
+
+fn status_json(sim: &Sim) -> serde_json::Value {
+    let o = run(
+        &mut fringe(&["status", "--port", sim.port_str(), "--json"]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    serde_json::from_str(&o.stdout).expect("status json")
+}
+
+fn history(db: &Path) -> Vec<serde_json::Value> {
+    let o = run(
+        &mut fringe(&["cal", "history", "--db", db.to_str().unwrap(), "--json"]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let v: serde_json::Value = serde_json::from_str(&o.stdout).expect("history json");
+    v.as_array()
+        .cloned()
+        .or_else(|| v["records"].as_array().cloned())
+        .unwrap_or_else(|| panic!("history json shape: {v}"))
+}
+
+#[test]
+fn cell_calibration_at_the_bench_and_a_failed_verification_writes_nothing() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0201", seed(21)));
+    let db = sim.path("bench.db");
+    let key = key_file(&sim);
+    let before = status_json(&sim);
+
+    // Ethanol left out: methanol still in the cell at the verification.
+    let o = cell_calibration(&sim, &db, &key, ["air", "methanol", "methanol", "air"]);
+    assert_fails(&o, 1, &["OUT OF TOLERANCE", "nothing written"]);
+    assert_eq!(
+        status_json(&sim)["cell_cal"],
+        before["cell_cal"],
+        "a failed verification changed the device's cell calibration"
+    );
+    assert!(
+        !db.exists() || history(&db).is_empty(),
+        "a failed verification left a record"
+    );
+
+    // The real procedure.
+    let o = cell_calibration(&sim, &db, &key, ["air", "methanol", "ethanol", "air"]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        o.stderr.matches("within tolerance").count() == 2,
+        "both frequencies verified: {}",
+        o.stderr
+    );
+    assert!(
+        o.stderr.contains("CAUTION"),
+        "the line caution: {}",
+        o.stderr
+    );
+    let after = status_json(&sim);
+    assert_ne!(after["cell_cal"], before["cell_cal"], "{after}");
+    let h = history(&db);
+    assert_eq!(h.len(), 1, "{h:?}");
+    assert_eq!(h[0]["action"], "cell", "{h:?}");
+    assert_eq!(h[0]["operator"], "T. Bench (test)", "{h:?}");
+    assert_eq!(h[0]["new_id"], after["cell_cal"], "{h:?} / {after}");
+}
+
+#[test]
+fn capture_push_list_select_and_history() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0202", seed(22)));
+    let db = sim.path("bench.db");
+    let key = key_file(&sim);
+    let o = cell_calibration(&sim, &db, &key, ["air", "methanol", "ethanol", "air"]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    sim.set_bench("line");
+
+    // Capture: two samples, one lab value given, one left for later, and a
+    // repeated id refused.
+    let csv = sim.path("lab.csv");
+    let mut c = Interactive::spawn(&mut fringe(&[
+        "cal",
+        "capture",
+        "--port",
+        sim.port_str(),
+        "--out",
+        csv.to_str().unwrap(),
+        "--readings",
+        "2",
+    ]));
+    c.expect("sample id", 1, PROMPT);
+    c.send("HGM-T01");
+    c.expect("lab moisture", 1, PROMPT);
+    c.send("14.25");
+    c.expect(ENTER, 1, PROMPT);
+    c.send("");
+    c.expect("sample id", 2, PROMPT);
+    c.send("HGM-T01");
+    c.expect("already captured", 1, PROMPT);
+    c.expect("sample id", 3, PROMPT);
+    c.send("HGM-T02");
+    c.expect("lab moisture", 2, PROMPT);
+    c.send("");
+    c.expect(ENTER, 2, PROMPT);
+    c.send("");
+    c.expect("sample id", 4, PROMPT);
+    c.send("");
+    let o = c.finish(LIMIT);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(o.stdout.contains("2 sample(s)"), "{}", o.stdout);
+    let text = std::fs::read_to_string(&csv).expect("captured table");
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    for col in [
+        "sample_id",
+        "moisture_pct",
+        "temperature_c",
+        "freq1_hz",
+        "eps1_re",
+        "eps1_im",
+        "freq2_hz",
+        "eps2_re",
+        "eps2_im",
+    ] {
+        assert!(header.contains(&col), "{col} missing from {header:?}");
+    }
+    let rows: Vec<Vec<&str>> = lines.map(|l| l.split(',').collect()).collect();
+    assert_eq!(rows.len(), 2, "{text}");
+    let col = |name: &str| header.iter().position(|h| *h == name).unwrap();
+    assert_eq!(rows[0][col("sample_id")], "HGM-T01");
+    assert_eq!(rows[0][col("moisture_pct")].parse::<f64>().unwrap(), 14.25);
+    assert_eq!(rows[1][col("moisture_pct")], "", "{text}");
+    for r in &rows {
+        for c in ["eps1_re", "eps1_im", "eps2_re", "eps2_im", "temperature_c"] {
+            let v: f64 = r[col(c)].parse().unwrap_or(f64::NAN);
+            assert!(v.is_finite(), "{c} = {:?} in {text}", r[col(c)]);
+        }
+        assert!(r[col("eps1_re")].parse::<f64>().unwrap() > 1.5, "{text}");
+        assert!(r[col("eps1_im")].parse::<f64>().unwrap() >= 0.0, "{text}");
+    }
+
+    // Two product calibrations fitted from a reference table (values made
+    // up for the test; only their ids and names matter here).
+    let table = sim.path("ref.csv");
+    let mut t = String::from(
+        "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im\n",
+    );
+    for i in 0..14 {
+        let m = 10.0 + 0.6 * f64::from(i);
+        t.push_str(&format!(
+            "R{i},{m},{},1000000,{},{},20000000,{},{}\n",
+            18.0 + f64::from(i % 5),
+            2.0 + 0.25 * m + 0.01 * f64::from(i % 3),
+            0.5 + 0.02 * f64::from(i),
+            1.8 + 0.2 * m,
+            0.3
+        ));
+    }
+    std::fs::write(&table, t).unwrap();
+    let mut cals = Vec::new();
+    for name in ["HM wheat L2", "HM barley L2"] {
+        let out = sim.path(&format!("{}.toml", name.replace(' ', "-")));
+        let o = run(
+            &mut fringe(&[
+                "cal",
+                "fit",
+                "--samples",
+                table.to_str().unwrap(),
+                "--model",
+                "single",
+                "--degree",
+                if name.contains("wheat") { "1" } else { "2" },
+                "--name",
+                name,
+                "--out",
+                out.to_str().unwrap(),
+            ]),
+            LIMIT,
+        );
+        assert_eq!(o.code, 0, "{}", o.stderr);
+        cals.push(out);
+    }
+    let push = |cal: &Path, activate: &str| {
+        run(
+            &mut fringe(&[
+                "cal",
+                "push",
+                "--port",
+                sim.port_str(),
+                "--key-file",
+                key.to_str().unwrap(),
+                "--db",
+                db.to_str().unwrap(),
+                "--cal",
+                cal.to_str().unwrap(),
+                "--operator",
+                "T. Bench (test)",
+                "--reason",
+                "test calibration",
+                "--activate",
+                activate,
+                "--yes",
+            ]),
+            LIMIT,
+        )
+    };
+    let o = push(&cals[0], "true");
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(o.stderr.contains("CAUTION"), "{}", o.stderr);
+    let o = push(&cals[1], "false");
+    assert_eq!(o.code, 0, "{}", o.stderr);
+
+    let list = || -> serde_json::Value {
+        let o = run(
+            &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
+            LIMIT,
+        );
+        assert_eq!(o.code, 0, "{}", o.stderr);
+        serde_json::from_str(&o.stdout).expect("list json")
+    };
+    let l = list();
+    let text = l.to_string();
+    assert!(
+        text.contains("HM wheat L2") && text.contains("HM barley L2"),
+        "{text}"
+    );
+    let active_name = |l: &serde_json::Value| -> String {
+        let active = l["active"].as_u64().expect("an active slot");
+        l["slots"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|s| s["slot"].as_u64() == Some(active))
+            .map(|s| s["name"].as_str().unwrap_or_default().to_string())
+            .unwrap_or_default()
+    };
+    assert_eq!(active_name(&l), "HM wheat L2", "{text}");
+
+    // Select with a wrong key: refused, nothing changes, nothing recorded.
+    let bad_key = sim.path("wrong.key");
+    std::fs::write(&bad_key, "55".repeat(32)).unwrap();
+    let select = |k: &Path, product: &str| {
+        run(
+            &mut fringe(&[
+                "cal",
+                "select",
+                "--port",
+                sim.port_str(),
+                "--key-file",
+                k.to_str().unwrap(),
+                "--db",
+                db.to_str().unwrap(),
+                product,
+                "--operator",
+                "T. Bench (test)",
+                "--reason",
+                "product change to barley",
+                "--yes",
+            ]),
+            LIMIT,
+        )
+    };
+    let records_before = history(&db).len();
+    let o = select(&bad_key, "HM barley L2");
+    assert_fails(&o, 16, &[]);
+    assert_eq!(active_name(&list()), "HM wheat L2");
+    assert_eq!(history(&db).len(), records_before);
+    let o = select(&bad_key, "HM rye L2");
+    assert_ne!(o.code, 0, "an unknown product must be refused");
+    assert!(o.stderr.contains("HM rye L2"), "{}", o.stderr);
+
+    let o = select(&key, "HM barley L2");
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert_eq!(active_name(&list()), "HM barley L2");
+
+    // History: the cell calibration, two pushes and the select, in order.
+    let h = history(&db);
+    let actions: Vec<&str> = h
+        .iter()
+        .map(|r| r["action"].as_str().unwrap_or("?"))
+        .collect();
+    assert_eq!(actions, ["cell", "push", "push", "select"], "{h:?}");
+    assert_eq!(h[3]["reason"], "product change to barley", "{h:?}");
+}
+
+/// Build-up on the window during an empty spell: `fringe monitor` on the
+/// calibrated device announces the empty-line baseline alarm while it
+/// streams, and it is the alarm `fringe drift` finds afterwards in the same
+/// database.
+#[test]
+fn monitor_raises_the_drift_alarms_of_fringe_drift_live() {
+    let mut spec = ScenarioSpec::clean("HGM-L2-0203", seed(23));
+    // Empty line first (the clean baseline), product, then a long empty
+    // spell while a deposit grows on the window (invented amounts).
+    spec.extra = "buildup_mm = [[0, 0.0], [90, 0.0], [200, 0.4]]\n\
+                  [[empty]]\nfrom_s = 0\nto_s = 70\n\
+                  [[empty]]\nfrom_s = 90\nto_s = 400\n"
+        .into();
+    let sim = Sim::start(&spec);
+    let db = sim.path("line2.db");
+    let key = key_file(&sim);
+    let o = cell_calibration(&sim, &db, &key, ["air", "methanol", "ethanol", "air"]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    sim.set_bench("line");
+    let o = run(
+        &mut sim.monitor(
+            &db,
+            &[
+                "--duration-s",
+                "20",
+                "--drift-every-s",
+                "1",
+                "--quiet",
+                "--json",
+            ],
+        ),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let summary: serde_json::Value = serde_json::from_str(&o.stdout).expect("summary json");
+    let streamed = summary["streamed"].as_u64().unwrap();
+    let live = summary["drift_alarms"].as_array().unwrap();
+    let alarm = live
+        .iter()
+        .find(|a| a["quantity"] == "empty_baseline" && a["direction"] == "up")
+        .unwrap_or_else(|| panic!("no live build-up alarm in {summary}\n{}", o.stderr));
+    assert_eq!(alarm["action"], "clean_window");
+    // Raised while streaming, not only at the end.
+    let when = alarm["announced_after_streamed"].as_u64().unwrap();
+    assert!(when < streamed, "announced after {when} of {streamed}");
+    assert!(o.stderr.contains("DRIFT ALARM"), "{}", o.stderr);
+
+    // The same episodes from `fringe drift` over the database.
+    let d = run(
+        &mut fringe(&["drift", "--db", db.to_str().unwrap(), "--json"]),
+        LIMIT,
+    );
+    assert_eq!(d.code, 0, "{}", d.stderr);
+    let v: serde_json::Value = serde_json::from_str(&d.stdout).expect("drift json");
+    let batch: Vec<&serde_json::Value> = v["monitors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .flat_map(|m| m["alarms"].as_array().unwrap().iter())
+        .collect();
+    for a in live {
+        assert!(
+            batch.iter().any(|b| b["quantity"] == a["quantity"]
+                && b["direction"] == a["direction"]
+                && b["time_ms"] == a["time_ms"]
+                && b["since_ms"] == a["since_ms"]),
+            "live alarm {a} not among fringe drift's {batch:?}"
+        );
+    }
+}
