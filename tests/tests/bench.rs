@@ -262,6 +262,34 @@ fn capture_push_list_select_and_history() {
             LIMIT,
         )
     };
+    // Declined at the confirmation: nothing written, nothing recorded.
+    let mut c = Interactive::spawn(&mut fringe(&[
+        "cal",
+        "push",
+        "--port",
+        sim.port_str(),
+        "--key-file",
+        key.to_str().unwrap(),
+        "--db",
+        db.to_str().unwrap(),
+        "--cal",
+        cals[0].to_str().unwrap(),
+        "--operator",
+        "T. Bench (test)",
+        "--reason",
+        "test calibration",
+    ]));
+    c.expect("write this calibration?", 1, PROMPT);
+    let shown = c.stderr();
+    assert!(
+        shown.contains("old: (empty)") && shown.contains("new: HM wheat L2"),
+        "{shown}"
+    );
+    c.send("n");
+    let o = c.finish(LIMIT);
+    assert_fails(&o, 1, &["not written"]);
+    assert_eq!(history(&db).len(), 1, "only the cell calibration");
+
     let o = push(&cals[0], "true");
     assert_eq!(o.code, 0, "{}", o.stderr);
     assert!(o.stderr.contains("CAUTION"), "{}", o.stderr);
