@@ -113,17 +113,22 @@ impl Tone {
     }
 }
 
+/// The Goertzel constants of bin `k` of an `n`-point record: `cos w`,
+/// `sin w` and `2 cos w` with `w = 2 pi k / n`.
+fn goertzel_coeffs(k: u16, n: usize) -> (f32, f32, f32) {
+    let n = n.max(1) as f32;
+    let w = 2.0 * core::f32::consts::PI * f32::from(k) / n;
+    let c = libm::cosf(w);
+    (c, libm::sinf(w), 2.0 * c)
+}
+
 /// The DFT bin `k` of `x` by the Goertzel recursion, in `f32`.
 ///
 /// `k` is taken modulo the record length. Accumulation is in `f32`; for
 /// 16-bit codes and `N = 256` the error against a double-precision DFT is a
 /// few parts in 10^6 of the bin's size (tested against `rustfft`).
 pub fn goertzel(x: &[f32], k: u16) -> C32 {
-    let n = x.len().max(1) as f32;
-    let w = 2.0 * core::f32::consts::PI * f32::from(k) / n;
-    let c = libm::cosf(w);
-    let s = libm::sinf(w);
-    let coeff = 2.0 * c;
+    let (c, s, coeff) = goertzel_coeffs(k, x.len());
     let (mut s1, mut s2) = (0.0f32, 0.0f32);
     for &v in x {
         let s0 = v + coeff * s1 - s2;
@@ -134,27 +139,47 @@ pub fn goertzel(x: &[f32], k: u16) -> C32 {
     C32::new(c * s1 - s2, s * s1)
 }
 
-/// Demodulates one channel's record of ADC codes at bin `k`.
+/// Demodulates one channel's record of ADC codes at bin `k`: the bin of
+/// the record with its mean removed, the amplitude, the noise left when the
+/// tone is taken out, and the clipped samples.
+///
+/// Two passes over the codes and no buffer: integer sums first (the clip
+/// count, the mean and the AC power, exact: `N sum(x^2) - (sum x)^2 = N
+/// sum((x - mean)^2)`), then the Goertzel recursion on `x - mean`. (Run on
+/// the codes as they are, a large offset costs the `f32` recursion enough
+/// precision to bias the noise estimate by a few per cent.)
 pub fn tone(codes: &[i16; RECORD_LEN], k: u16, full_scale: i16) -> Tone {
-    let mut x = [0.0f32; RECORD_LEN];
+    const _: () = assert!(RECORD_LEN.is_multiple_of(2));
+    let hi = i32::from(full_scale);
+    let lo = -hi - 1;
     let mut clipped = 0u16;
-    let mut sum = 0.0f32;
-    let lo = -i32::from(full_scale) - 1;
-    for (d, &c) in x.iter_mut().zip(codes.iter()) {
-        if c >= full_scale || i32::from(c) <= lo {
-            clipped = clipped.saturating_add(1);
-        }
-        *d = f32::from(c);
-        sum += *d;
+    let mut sum = 0i32;
+    let mut sum_sq = 0i64;
+    // Two samples a turn (RECORD_LEN is even): half the loop overhead.
+    let clip = |v: i32| u16::from(v >= hi || v <= lo);
+    let (pairs, _) = codes.as_chunks::<2>();
+    for &[a, b] in pairs {
+        let (a, b) = (i32::from(a), i32::from(b));
+        clipped += clip(a) + clip(b);
+        sum += a + b;
+        sum_sq += i64::from(a) * i64::from(a) + i64::from(b) * i64::from(b);
     }
     let n = RECORD_LEN as f32;
-    let mean = sum / n;
-    let mut ac = 0.0f32;
-    for v in x.iter_mut() {
-        *v -= mean;
-        ac += *v * *v;
+    let mean = sum as f32 / n;
+    let (c, s, coeff) = goertzel_coeffs(k, RECORD_LEN);
+    // The recursion s[n] = x[n] + 2 cos(w) s[n-1] - s[n-2], two steps a
+    // turn so that the state needs no shuffling: `s2` takes s[n], `s1`
+    // s[n+1]; after the loop `s1` is s[N-1] and `s2` s[N-2].
+    let (mut s1, mut s2) = (0.0f32, 0.0f32);
+    for &[a, b] in pairs {
+        let (a, b) = (f32::from(a) - mean, f32::from(b) - mean);
+        s2 = a + coeff * s1 - s2;
+        s1 = b + coeff * s2 - s1;
     }
-    let bin = goertzel(&x, k);
+    let bin = C32::new(c * s1 - s2, s * s1);
+    // |sum| <= 2^23 and sum_sq <= 2^38 for 256 codes: no overflow in i64.
+    let n_ac = RECORD_LEN as i64 * sum_sq - i64::from(sum) * i64::from(sum);
+    let ac = n_ac as f32 / n;
     let mag2 = bin.re * bin.re + bin.im * bin.im;
     let resid = (ac - 2.0 * mag2 / n).max(0.0);
     Tone {
@@ -239,7 +264,20 @@ impl Default for Averager {
 }
 
 fn median(v: &mut [f32]) -> f32 {
-    v.sort_unstable_by(|a, b| a.total_cmp(b));
+    // Insertion sort: at most MAX_RECORDS items, and a fraction of the
+    // code of the library's sort (flash on the target).
+    for i in 1..v.len() {
+        let mut j = i;
+        while j > 0 {
+            match (v.get(j - 1), v.get(j)) {
+                (Some(a), Some(b)) if a.total_cmp(b).is_gt() => {
+                    v.swap(j - 1, j);
+                    j -= 1;
+                }
+                _ => break,
+            }
+        }
+    }
     let n = v.len();
     if n == 0 {
         return f32::NAN;
@@ -517,6 +555,57 @@ mod tests {
             "seed {seed}: {rr:?}"
         );
         assert_eq!(rr.sensor.clipped, 0);
+    }
+
+    /// A reference form of `tone`: mean removed in f64, the AC power summed
+    /// in f64, the Goertzel recursion on what is left.
+    fn tone_two_pass(codes: &[i16; RECORD_LEN], k: u16) -> (C32, f32) {
+        let x: Vec<f32> = codes.iter().map(|&c| f32::from(c)).collect();
+        let mean = x.iter().map(|&v| f64::from(v)).sum::<f64>() / RECORD_LEN as f64;
+        let x: Vec<f32> = x.iter().map(|&v| (f64::from(v) - mean) as f32).collect();
+        let ac: f64 = x.iter().map(|&v| f64::from(v) * f64::from(v)).sum();
+        let b = goertzel(&x, k);
+        let n = RECORD_LEN as f64;
+        let mag2 = f64::from(b.re) * f64::from(b.re) + f64::from(b.im) * f64::from(b.im);
+        let resid = (ac - 2.0 * mag2 / n).max(0.0);
+        (b, (resid / (n - 3.0)).sqrt() as f32)
+    }
+
+    #[test]
+    fn tone_matches_a_two_pass_f64_form_with_an_offset() {
+        let seed = 0x07_0e5u64;
+        let mut rng = XorShiftRng::seed_from_u64(seed);
+        for (amp, noise, offset) in [
+            (8000.0, 20.0, 0.0),
+            (8000.0, 20.0, 3000.0),
+            (20000.0, 60.0, -9000.0),
+            (300.0, 50.0, 12.0),
+        ] {
+            let mut s = synth_record(amp, 0.3, 32, noise, &mut rng);
+            for v in s.iter_mut() {
+                *v = (f64::from(*v) + offset).clamp(-32768.0, 32767.0) as i16;
+            }
+            let t = tone(&s, 32, i16::MAX);
+            let (b, sd) = tone_two_pass(&s, 32);
+            let err = C32::new(t.bin.re - b.re, t.bin.im - b.im).abs() / b.abs();
+            assert!(
+                err < 2e-5,
+                "seed {seed:#x} amp {amp} offset {offset}: {err}"
+            );
+            assert!(
+                (t.noise_sd / sd - 1.0).abs() < 0.02,
+                "seed {seed:#x} amp {amp} offset {offset}: noise {} vs {sd}",
+                t.noise_sd
+            );
+        }
+    }
+
+    #[test]
+    fn median_of_odd_even_and_empty() {
+        assert_eq!(median(&mut [3.0, -1.0, 2.0]), 2.0);
+        assert_eq!(median(&mut [4.0, 1.0, 3.0, 2.0]), 2.5);
+        assert_eq!(median(&mut [5.0, 5.0, 1.0, 9.0, 5.0, 0.0, 7.0]), 5.0);
+        assert!(median(&mut []).is_nan());
     }
 
     #[test]
