@@ -25,29 +25,50 @@ fn key_file(sim: &Sim) -> PathBuf {
     p
 }
 
-/// `fringe cal cell` through its four steps; `materials` are what is put
-/// in front of the window at each (air, liquid, verification liquid, air).
-fn cell_calibration(sim: &Sim, db: &Path, key: &Path, materials: [&str; 4]) -> Outcome {
-    sim.set_bench(materials[0]);
-    let mut c = Interactive::spawn(&mut fringe(&[
+/// `fringe cal <what> --port P --key-file K --db D <extra>`: a calibration
+/// command that writes to the simulated device and records in `db`.
+fn cal_write(
+    sim: &Sim,
+    key: &Path,
+    db: &Path,
+    what: &str,
+    extra: &[&str],
+) -> std::process::Command {
+    let mut args = vec![
         "cal",
-        "cell",
+        what,
         "--port",
         sim.port_str(),
         "--key-file",
         key.to_str().unwrap(),
         "--db",
         db.to_str().unwrap(),
-        "--liquid",
-        "methanol",
-        "--verify-liquid",
-        "ethanol",
-        "--readings",
-        "4",
         "--operator",
         "T. Bench (test)",
-        "--yes",
-    ]));
+    ];
+    args.extend_from_slice(extra);
+    fringe(&args)
+}
+
+/// `fringe cal cell` through its four steps; `materials` are what is put
+/// in front of the window at each (air, liquid, verification liquid, air).
+fn cell_calibration(sim: &Sim, db: &Path, key: &Path, materials: [&str; 4]) -> Outcome {
+    sim.set_bench(materials[0]);
+    let mut c = Interactive::spawn(&mut cal_write(
+        sim,
+        key,
+        db,
+        "cell",
+        &[
+            "--liquid",
+            "methanol",
+            "--verify-liquid",
+            "ethanol",
+            "--readings",
+            "4",
+            "--yes",
+        ],
+    ));
     for (i, m) in materials.iter().enumerate() {
         c.expect(ENTER, i + 1, PROMPT);
         sim.set_bench(m);
@@ -169,17 +190,7 @@ fn capture_push_list_select_and_history() {
     let text = std::fs::read_to_string(&csv).expect("captured table");
     let mut lines = text.lines();
     let header: Vec<&str> = lines.next().unwrap().split(',').collect();
-    for col in [
-        "sample_id",
-        "moisture_pct",
-        "temperature_c",
-        "freq1_hz",
-        "eps1_re",
-        "eps1_im",
-        "freq2_hz",
-        "eps2_re",
-        "eps2_im",
-    ] {
+    for col in fringe_host::samples::COLUMNS {
         assert!(header.contains(&col), "{col} missing from {header:?}");
     }
     let rows: Vec<Vec<&str>> = lines.map(|l| l.split(',').collect()).collect();
@@ -238,47 +249,24 @@ fn capture_push_list_select_and_history() {
         assert_eq!(o.code, 0, "{}", o.stderr);
         cals.push(out);
     }
+    let push_args = |cal: &Path, extra: &[&str]| -> std::process::Command {
+        let mut a = vec![
+            "--cal",
+            cal.to_str().unwrap(),
+            "--reason",
+            "test calibration",
+        ];
+        a.extend_from_slice(extra);
+        cal_write(&sim, &key, &db, "push", &a)
+    };
     let push = |cal: &Path, activate: &str| {
         run(
-            &mut fringe(&[
-                "cal",
-                "push",
-                "--port",
-                sim.port_str(),
-                "--key-file",
-                key.to_str().unwrap(),
-                "--db",
-                db.to_str().unwrap(),
-                "--cal",
-                cal.to_str().unwrap(),
-                "--operator",
-                "T. Bench (test)",
-                "--reason",
-                "test calibration",
-                "--activate",
-                activate,
-                "--yes",
-            ]),
+            &mut push_args(cal, &["--activate", activate, "--yes"]),
             LIMIT,
         )
     };
     // Declined at the confirmation: nothing written, nothing recorded.
-    let mut c = Interactive::spawn(&mut fringe(&[
-        "cal",
-        "push",
-        "--port",
-        sim.port_str(),
-        "--key-file",
-        key.to_str().unwrap(),
-        "--db",
-        db.to_str().unwrap(),
-        "--cal",
-        cals[0].to_str().unwrap(),
-        "--operator",
-        "T. Bench (test)",
-        "--reason",
-        "test calibration",
-    ]));
+    let mut c = Interactive::spawn(&mut push_args(&cals[0], &[]));
     c.expect("write this calibration?", 1, PROMPT);
     let shown = c.stderr();
     assert!(
@@ -327,22 +315,13 @@ fn capture_push_list_select_and_history() {
     std::fs::write(&bad_key, "55".repeat(32)).unwrap();
     let select = |k: &Path, product: &str| {
         run(
-            &mut fringe(&[
-                "cal",
+            &mut cal_write(
+                &sim,
+                k,
+                &db,
                 "select",
-                "--port",
-                sim.port_str(),
-                "--key-file",
-                k.to_str().unwrap(),
-                "--db",
-                db.to_str().unwrap(),
-                product,
-                "--operator",
-                "T. Bench (test)",
-                "--reason",
-                "product change to barley",
-                "--yes",
-            ]),
+                &[product, "--reason", "product change to barley", "--yes"],
+            ),
             LIMIT,
         )
     };
