@@ -29,7 +29,7 @@ use heapless::Vec;
 use embedded_storage::nor_flash::NorFlash;
 
 use crate::hal::{CurrentOutput, Frontend, NoWatchdog, Watchdog};
-use crate::measure::{self, ChainState, Job, MeasureConfig, Runner, TempSensor, DEFAULT_MEASURE};
+use crate::measure::{self, ChainState, Job, MeasureConfig, Runner, DEFAULT_MEASURE};
 use crate::output::{self, DEFAULT_OUTPUT};
 use crate::storage::{key, Storage, StorageError, StoredIdentity};
 
@@ -53,24 +53,9 @@ pub struct DeviceConfig {
     pub serial: Serial,
     /// Write key used on a blank flash (a stored key wins).
     pub key: Key,
-    /// Excitation frequencies, Hz, lower first.
-    pub freqs_hz: [f32; N_FREQ],
-    /// Excitation amplitude, V peak.
-    pub amplitude_v: f32,
-    /// Records averaged per frequency, 1..=16.
-    pub records: u8,
-    /// Reference check every this many readings.
-    pub reference_every: u32,
-    /// Relative tolerance of the reference check.
-    pub reference_tolerance: f32,
-    /// SNR threshold for `LOW_SNR`, dB per record.
-    pub min_snr_db: f32,
-    /// eps' at the upper frequency below which the line counts as empty.
-    pub empty_eps_max: f32,
-    /// Open-electrode threshold, pF.
-    pub open_pf: f32,
-    /// Temperature sensor.
-    pub temp_sensor: TempSensor,
+    /// Frequencies, amplitude, records, the reference check and the
+    /// thresholds of the flags.
+    pub measure: MeasureConfig,
     /// Measurement steps (one record each) per `poll`, >= 1.
     pub steps_per_poll: u8,
     /// Store every reading in the flash log.
@@ -83,19 +68,10 @@ impl DeviceConfig {
     /// Defaults (1 MHz and 20 MHz, 8 records, reference every 10 readings)
     /// with this serial and key.
     pub fn new(serial: &str, key: Key) -> Self {
-        let m = DEFAULT_MEASURE;
         Self {
             serial: short_string(serial),
             key,
-            freqs_hz: m.freqs_hz,
-            amplitude_v: m.amplitude_v,
-            records: m.records,
-            reference_every: m.reference_every,
-            reference_tolerance: m.reference_tolerance,
-            min_snr_db: m.min_snr_db,
-            empty_eps_max: m.empty_eps_max,
-            open_pf: m.open_pf,
-            temp_sensor: m.temp_sensor,
+            measure: DEFAULT_MEASURE,
             steps_per_poll: 4,
             log_readings: true,
             simulated: false,
@@ -104,32 +80,26 @@ impl DeviceConfig {
 
     fn measure(&self) -> MeasureConfig {
         MeasureConfig {
-            freqs_hz: self.freqs_hz,
-            amplitude_v: self.amplitude_v,
-            records: self.records,
-            reference_every: self.reference_every.max(1),
-            reference_tolerance: self.reference_tolerance,
-            min_snr_db: self.min_snr_db,
-            empty_eps_max: self.empty_eps_max,
-            open_pf: self.open_pf,
-            temp_sensor: self.temp_sensor,
+            reference_every: self.measure.reference_every.max(1),
+            ..self.measure
         }
     }
 
     fn check(&self) -> Result<(), BootError> {
-        let [lo, hi] = self.freqs_hz;
+        let m = &self.measure;
+        let [lo, hi] = m.freqs_hz;
         let ok = lo.is_finite()
             && hi.is_finite()
             && lo > 0.0
             && hi > lo
-            && self.amplitude_v.is_finite()
-            && self.amplitude_v > 0.0
-            && (1..=16).contains(&self.records)
-            && self.reference_tolerance.is_finite()
-            && self.reference_tolerance > 0.0
-            && self.min_snr_db.is_finite()
-            && self.empty_eps_max.is_finite()
-            && self.open_pf.is_finite();
+            && m.amplitude_v.is_finite()
+            && m.amplitude_v > 0.0
+            && (1..=16).contains(&m.records)
+            && m.reference_tolerance.is_finite()
+            && m.reference_tolerance > 0.0
+            && m.min_snr_db.is_finite()
+            && m.empty_eps_max.is_finite()
+            && m.open_pf.is_finite();
         if ok {
             Ok(())
         } else {
@@ -700,7 +670,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             }
             Request::ReadCellCal => Response::CellCal(self.cell),
             Request::WriteCellCal(c) => {
-                check_cell(&c, &self.cfg.freqs_hz)?;
+                check_cell(&c, &self.cfg.measure.freqs_hz)?;
                 let old = self.cell_id;
                 self.storage.put(key::CELL_CAL, &c).map_err(st)?;
                 self.cell_id = c.content_id();
@@ -857,7 +827,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             protocol: PROTOCOL_VERSION,
             capabilities: caps,
             boot: self.boot,
-            freqs_hz: self.cfg.freqs_hz,
+            freqs_hz: self.cfg.measure.freqs_hz,
         }
     }
 
@@ -1180,7 +1150,7 @@ impl Stored {
         let write_counter = storage.get::<u32>(key::WRITE_COUNTER)?.unwrap_or(0);
         let cell = storage
             .cell_cal()?
-            .filter(|c| check_cell(c, &config.freqs_hz).is_ok());
+            .filter(|c| check_cell(c, &config.measure.freqs_hz).is_ok());
         let output_cfg = storage
             .get::<OutputConfig>(key::OUTPUT)?
             .filter(|o| output::validate(o).is_ok())

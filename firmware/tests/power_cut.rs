@@ -136,7 +136,7 @@ fn calibration_update_body() {
 /// A device whose reading log ring is full (appends now erase the oldest page).
 fn full_ring() -> Flash {
     let mut cfg = config();
-    cfg.records = 1;
+    cfg.measure.records = 1;
     let mut b = Bench::with_config(30, Scenario::default(), Flash::new(), cfg);
     // Until the ring has dropped its oldest page once, then a page more.
     let mut wrapped_at = None;
@@ -162,7 +162,7 @@ fn full_ring() -> Flash {
 
 fn fast(flash: Flash, seed: u64) -> Bench {
     let mut cfg = config();
-    cfg.records = 1;
+    cfg.measure.records = 1;
     Bench::with_config(seed, Scenario::default(), flash, cfg)
 }
 
