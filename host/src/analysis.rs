@@ -14,7 +14,7 @@
 //! 465) and EWMA lambda 0.1, L 2.814 (about 500); temperature only the
 //! one-sided CUSUMs from the range edges.
 
-use fringe_protocol::{Flags, Reading};
+use fringe_protocol::{Flags, Reading, Seq};
 use serde::{Deserialize, Serialize};
 
 use crate::drift::{sigma_moving_range, Monitor, Obs, Quantity, Trace};
@@ -88,6 +88,8 @@ pub struct LineData {
     pub lab: Vec<LabRow>,
     /// Calibration records: (position, created ms, kind, body).
     pub cals: Vec<(u64, i64, CalKind, CalRecordBody, Option<String>)>,
+    /// Chain position of the last reference check read.
+    refs_position: Option<u64>,
 }
 
 /// Reads a device's data (the first device if `serial` is `None`).
@@ -111,66 +113,79 @@ pub fn load(store: &Store, serial: Option<&str>) -> anyhow::Result<LineData> {
             ),
         },
     };
-    let rows: Vec<Row> = store
-        .readings(&serial)?
-        .into_iter()
-        .map(|r| Row {
-            time_ms: r.reading.time_ms as i64,
-            reading: r.reading,
-        })
-        .collect();
-    let refs = store
-        .reference_checks(&serial)?
-        .into_iter()
-        .map(|c| RefRow {
-            time_ms: c.time_ms,
-            ratio: (f64::from(c.check.ratio[0]) + f64::from(c.check.ratio[1])) / 2.0,
-            baseline: f64::from(c.check.baseline),
-        })
-        .collect();
-    let lab = store
-        .lab_samples(&serial)?
-        .into_iter()
-        .map(|l| {
-            let inline_pct = l.sample.reading.and_then(|seq| {
-                rows.iter()
-                    .find(|r| r.reading.seq == seq)
-                    .and_then(|r| r.reading.moisture_pct)
-                    .map(f64::from)
-            });
-            LabRow {
-                sample_id: l.sample.sample_id.clone(),
-                time_ms: l.sample.taken_unix_ms,
-                lab_pct: l.sample.lab_moisture_pct,
-                inline_pct,
-            }
-        })
-        .collect();
-    let cals = store
-        .calibrations(&serial)?
-        .into_iter()
-        .map(|c| {
-            let body: CalRecordBody =
-                serde_json::from_value(c.cal.body.clone()).unwrap_or_default();
-            (
-                c.position,
-                c.created_unix_ms,
-                c.cal.kind,
-                body,
-                c.cal.name.clone(),
-            )
-        })
-        .collect();
-    Ok(LineData {
+    let mut data = LineData {
         serial,
-        rows,
-        refs,
-        lab,
-        cals,
-    })
+        ..LineData::default()
+    };
+    data.refresh(store)?;
+    Ok(data)
 }
 
 impl LineData {
+    /// Brings the data up to what `store` holds now: readings after the
+    /// last one held and reference checks after the last one are appended
+    /// (the long tables, read once); lab samples and calibration records
+    /// are read again whole (few, and a lab result may arrive late).
+    ///
+    /// # Errors
+    /// A store failure.
+    pub fn refresh(&mut self, store: &Store) -> anyhow::Result<()> {
+        let from = self.rows.last().map_or(Seq::from_u64(0), |r| {
+            Seq::from_u64(r.reading.seq.as_u64().saturating_add(1))
+        });
+        store.for_each_reading(&self.serial, from, Seq::from_u64(u64::MAX), |r| {
+            self.rows.push(Row {
+                time_ms: r.reading.time_ms as i64,
+                reading: r.reading,
+            });
+            Ok(())
+        })?;
+        for c in store.reference_checks_after(&self.serial, self.refs_position)? {
+            self.refs_position = Some(c.position);
+            self.refs.push(RefRow {
+                time_ms: c.time_ms,
+                ratio: (f64::from(c.check.ratio[0]) + f64::from(c.check.ratio[1])) / 2.0,
+                baseline: f64::from(c.check.baseline),
+            });
+        }
+        let rows = &self.rows;
+        self.lab = store
+            .lab_samples(&self.serial)?
+            .into_iter()
+            .map(|l| {
+                let inline_pct = l.sample.reading.and_then(|seq| {
+                    rows.binary_search_by_key(&seq, |r| r.reading.seq)
+                        .ok()
+                        .and_then(|i| rows.get(i))
+                        .and_then(|r| r.reading.moisture_pct)
+                        .map(f64::from)
+                });
+                LabRow {
+                    sample_id: l.sample.sample_id.clone(),
+                    time_ms: l.sample.taken_unix_ms,
+                    lab_pct: l.sample.lab_moisture_pct,
+                    inline_pct,
+                }
+            })
+            .collect();
+        self.cals = store
+            .calibrations(&self.serial)?
+            .into_iter()
+            .map(|c| {
+                let body: CalRecordBody =
+                    serde_json::from_value(c.cal.body.clone()).unwrap_or_default();
+                (
+                    c.position,
+                    c.created_unix_ms,
+                    c.cal.kind,
+                    body,
+                    c.cal.name.clone(),
+                )
+            })
+            .collect();
+        Ok(())
+    }
+
     /// The latest product calibration record (the one in force at the end).
     pub fn product_in_force(&self) -> Option<&CalRecordBody> {
         self.cals
@@ -267,5 +282,99 @@ impl LineData {
             out.push(Monitor::temperature(lo, hi, sigma).run(&temps));
         }
         out
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::store::{DeviceInfo, NewLabSample, Source};
+    use fringe_protocol::RefCheck;
+
+    fn reading(i: u32) -> Reading {
+        let mut r = Reading {
+            seq: Seq {
+                boot: 1 + i / 50,
+                counter: i % 50,
+            },
+            time_ms: 1_796_104_800_000 + u64::from(i) * 60_000,
+            temperature_c: 20.0 + (i % 7) as f32,
+            moisture_pct: Some(14.0 + (i % 5) as f32 * 0.1),
+            ..Reading::default()
+        };
+        r.channels[1].eps_re = 1.02 + (i % 3) as f32 * 0.001;
+        if i % 10 >= 8 {
+            r.flags = Flags::NO_PRODUCT;
+        }
+        r
+    }
+
+    fn add(store: &mut Store, from: u32, to: u32) {
+        let rs: Vec<Reading> = (from..to).map(reading).collect();
+        store.insert_readings("L2", &rs, Source::Stream).unwrap();
+        for i in (from..to).filter(|i| i % 10 == 0) {
+            let check = RefCheck {
+                ratio: [1.0 + i as f32 * 1e-5, 1.0],
+                baseline: 1.0,
+                ok: true,
+            };
+            store
+                .insert_reference_check("L2", reading(i).time_ms as i64, &check)
+                .unwrap();
+        }
+        let i = to - 1;
+        store
+            .insert_lab_sample(
+                "L2",
+                &NewLabSample {
+                    sample_id: format!("G-{i}"),
+                    taken_unix_ms: reading(i).time_ms as i64,
+                    product: None,
+                    lab_moisture_pct: 14.2,
+                    basis: "wet".into(),
+                    method: None,
+                    reading: Some(reading(i).seq),
+                    note: None,
+                    supersedes: None,
+                },
+            )
+            .unwrap();
+    }
+
+    fn same(a: &LineData, b: &LineData) {
+        assert_eq!(a.rows, b.rows);
+        assert_eq!(a.refs, b.refs);
+        assert_eq!(a.lab, b.lab);
+        assert_eq!(a.cals.len(), b.cals.len());
+        assert_eq!(a.traces(), b.traces());
+    }
+
+    /// What `fringe monitor` keeps and refreshes is what a fresh read
+    /// (`fringe drift`) sees, across boots and late lab results.
+    #[test]
+    fn refresh_reads_what_a_fresh_load_reads() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = Store::open(dir.path().join("a.db")).unwrap();
+        store
+            .ensure_device(&DeviceInfo {
+                serial: "L2".into(),
+                ..Default::default()
+            })
+            .unwrap();
+        add(&mut store, 0, 120);
+        let mut kept = load(&store, Some("L2")).unwrap();
+        same(&kept, &load(&store, Some("L2")).unwrap());
+        for (a, b) in [(120, 121), (121, 260), (260, 400)] {
+            add(&mut store, a, b);
+            kept.refresh(&store).unwrap();
+            same(&kept, &load(&store, Some("L2")).unwrap());
+        }
+        // Nothing new: nothing changes.
+        kept.refresh(&store).unwrap();
+        same(&kept, &load(&store, Some("L2")).unwrap());
+        assert_eq!(kept.rows.len(), 400);
+        assert_eq!(kept.refs.len(), 40);
+        assert_eq!(kept.lab.len(), 4);
+        assert!(kept.lab.iter().all(|l| l.inline_pct.is_some()));
     }
 }

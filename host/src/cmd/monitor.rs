@@ -64,6 +64,8 @@ struct DriftWatch {
     /// of the episode's first alarm.
     known: std::collections::HashSet<(Quantity, Direction, i64)>,
     primed: bool,
+    /// What was read from the store so far.
+    data: Option<crate::analysis::LineData>,
 }
 
 struct Monitor<'a> {
@@ -193,11 +195,19 @@ impl Monitor<'_> {
             return Ok(());
         }
         self.drift.last = Some(Instant::now());
-        let data = match crate::analysis::load(&self.store, Some(&self.serial)) {
-            Ok(d) => d,
-            // Nothing stored for the device yet: nothing to watch.
-            Err(_) if self.store.last_seq(&self.serial)?.is_none() => return Ok(()),
-            Err(e) => return Err(e.context("reading the stored data for the drift monitors")),
+        // Read once, then only what was added since (see `LineData::refresh`).
+        let data = match self.drift.data.as_mut() {
+            Some(d) => {
+                d.refresh(&self.store)
+                    .context("reading the stored data for the drift monitors")?;
+                d
+            }
+            None => match crate::analysis::load(&self.store, Some(&self.serial)) {
+                Ok(d) => self.drift.data.insert(d),
+                // Nothing stored for the device yet: nothing to watch.
+                Err(_) if self.store.last_seq(&self.serial)?.is_none() => return Ok(()),
+                Err(e) => return Err(e.context("reading the stored data for the drift monitors")),
+            },
         };
         let mut fresh = Vec::new();
         for t in data.traces() {
@@ -416,6 +426,7 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
             last: None,
             known: Default::default(),
             primed: false,
+            data: None,
         },
     };
     if !args.quiet {

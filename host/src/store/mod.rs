@@ -1479,11 +1479,31 @@ impl Store {
     /// # Errors
     /// [`StoreError`] on a database failure.
     pub fn reference_checks(&self, serial: &str) -> Result<Vec<StoredRefCheck>, StoreError> {
+        self.reference_checks_after(serial, None)
+    }
+
+    /// Stored reference checks of `serial` at chain positions after
+    /// `after` (all for `None`), in record order: for a reader that keeps
+    /// what it read before (`fringe monitor`'s drift check).
+    ///
+    /// # Errors
+    /// [`StoreError`] on a database failure.
+    pub fn reference_checks_after(
+        &self,
+        serial: &str,
+        after: Option<u64>,
+    ) -> Result<Vec<StoredRefCheck>, StoreError> {
         let Some(dev) = self.device_key(serial)? else {
             return Ok(Vec::new());
         };
-        let recs = all_stored_values(&self.conn, Table::ReferenceChecks, "t.device = ?1", [dev])
-            .map_err(|e| self.err(e))?;
+        let after = after.map_or(-1, |p| p as i64);
+        let recs = all_stored_values(
+            &self.conn,
+            Table::ReferenceChecks,
+            "t.device = ?1 AND t.position > ?2",
+            params![dev, after],
+        )
+        .map_err(|e| self.err(e))?;
         Ok(recs
             .into_iter()
             .map(|(position, v)| StoredRefCheck {
