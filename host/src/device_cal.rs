@@ -271,6 +271,20 @@ pub fn averaged_reading(link: &mut Link, n: u32) -> anyhow::Result<Averaged> {
     Ok((y.map(|v| v / n), eps.map(|v| v / n), t / n, last))
 }
 
+/// Refuses a liquid outside the temperatures where its table value holds.
+fn check_temperature(l: &ReferenceLiquid, t_c: f64, measured_by: &str) -> anyhow::Result<()> {
+    if l.valid_at(t_c) {
+        return Ok(());
+    }
+    bail!(
+        "{} at {t_c:.1} C ({measured_by}) is outside {:.0}..{:.0} C, where its table value holds; \
+         bring it to room temperature and repeat (nothing was written)",
+        l.name,
+        l.valid_c.0,
+        l.valid_c.1
+    )
+}
+
 fn liquid(name: &str) -> anyhow::Result<&'static ReferenceLiquid> {
     ReferenceLiquid::by_name(name).ok_or_else(|| {
         anyhow::anyhow!(
@@ -324,12 +338,19 @@ pub fn cell_calibration(
         a.readings, t_air
     ));
     let air = liquid("air")?;
+    check_temperature(air, t_air, "the device's temperature reading")?;
     guide.step(&format!(
         "Step 2/3: fill the bench cell with {} (fresh, dry; fume cupboard, no ignition sources, gloves and goggles per its safety data sheet).",
         liq.name
     ))?;
     let (y_liq, _, t_dev, _) = averaged_reading(link, a.readings)?;
     let t_liq = a.temperature_c.unwrap_or(t_dev);
+    let by = if a.temperature_c.is_some() {
+        "--temperature-c"
+    } else {
+        "the device's temperature reading"
+    };
+    check_temperature(liq, t_liq, by)?;
     let eps_liq = liq.permittivity(t_liq);
     progress(&format!(
         "{}: eps' {:.3} at {:.1} C ({})",
@@ -362,6 +383,7 @@ pub fn cell_calibration(
     ))?;
     let (y_ver, _, t_ver_dev, _) = averaged_reading(link, a.readings)?;
     let t_ver = a.temperature_c.unwrap_or(t_ver_dev);
+    check_temperature(ver, t_ver, by)?;
     let mut verification = Vec::new();
     for k in 0..N_FREQ {
         let f = f64::from(id.freqs_hz[k]);

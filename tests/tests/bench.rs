@@ -145,6 +145,37 @@ fn cell_calibration_at_the_bench_and_a_failed_verification_writes_nothing() {
     assert_eq!(h[0]["new_id"], after["cell_cal"], "{h:?} / {after}");
 }
 
+/// A liquid outside the temperatures of its table value is refused with
+/// that range named, before anything is written.
+#[test]
+fn a_liquid_outside_its_temperature_range_is_refused() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0204", seed(24)));
+    let db = sim.path("bench.db");
+    let key = key_file(&sim);
+    let before = status_json(&sim);
+    sim.set_bench("air");
+    let mut c = Interactive::spawn(&mut cal_write(
+        &sim,
+        &key,
+        &db,
+        "cell",
+        &["--temperature-c", "46", "--readings", "2", "--yes"],
+    ));
+    c.expect(ENTER, 1, PROMPT);
+    c.send("");
+    c.expect(ENTER, 2, PROMPT);
+    sim.set_bench("methanol");
+    c.send("");
+    let o = c.finish(LIMIT);
+    assert_fails(
+        &o,
+        1,
+        &["methanol at 46.0 C", "10..40 C", "nothing was written"],
+    );
+    assert_eq!(status_json(&sim)["cell_cal"], before["cell_cal"]);
+    assert!(!db.exists() || history(&db).is_empty());
+}
+
 #[test]
 fn capture_push_list_select_and_history() {
     let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0202", seed(22)));
