@@ -316,6 +316,7 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
                 .filter(|s| s.outlier)
                 .map(|s| s.id.clone())
                 .collect(),
+            freqs_hz: Some(chosen.freqs_hz),
         },
     );
     Ok(FitOutcome {
@@ -557,7 +558,7 @@ pub struct Predicted {
 /// # Errors
 /// A bad calibration file or table.
 pub fn predict(cal_path: &Path, input: &Path, eps_sd: f32) -> anyhow::Result<Vec<Predicted>> {
-    let (_, wire) = ProductFile::load(cal_path)?;
+    let (file, wire) = ProductFile::load(cal_path)?;
     let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| {
         anyhow::anyhow!(
             "{}: the device would refuse this calibration ({e:?})",
@@ -565,6 +566,24 @@ pub fn predict(cal_path: &Path, input: &Path, eps_sd: f32) -> anyhow::Result<Vec
         )
     })?;
     let set = read_samples(input, MoistureColumn::Optional)?;
+    if let Some(want) = file.source.freqs_hz {
+        if let Some(s) = set
+            .samples
+            .iter()
+            .find(|s| !crate::product_file::same_freqs(s.freqs_hz, want))
+        {
+            anyhow::bail!(
+                "{}: sample {} was measured at {} and {} Hz, but {} holds only at {} and {} Hz (its reference samples' frequencies); nothing written",
+                input.display(),
+                s.sample_id,
+                s.freqs_hz[0],
+                s.freqs_hz[1],
+                cal_path.display(),
+                want[0],
+                want[1]
+            );
+        }
+    }
     Ok(set
         .samples
         .iter()

@@ -661,6 +661,20 @@ pub fn push(
         bail!("--operator and --reason must not be empty (the audit record needs who and why)");
     }
     let serial = link.serial_number().to_string();
+    if let (Some(want), Some(id)) = (file.source.freqs_hz, link.identity()) {
+        let dev = id.freqs_hz.map(f64::from);
+        if !crate::product_file::same_freqs(dev, want) {
+            bail!(
+                "{} holds only at {} and {} Hz (its reference samples' frequencies), but {serial} measures at {} and {} Hz: \
+                 capture reference samples on this sensor and fit again; nothing written",
+                file.name,
+                want[0],
+                want[1],
+                dev[0],
+                dev[1]
+            );
+        }
+    }
     let (slots, active) = list_slots(link)?;
     let slot = slot
         .or_else(|| {

@@ -28,6 +28,12 @@
 //! [statistics]                  # % moisture; cross-validated unless named sec
 //! n = 40
 //! ...
+//!
+//! [source]                      # where it came from
+//! samples = "lab-2026-11.csv"
+//! samples_sha256 = "..."
+//! outliers = []
+//! freqs_hz = [1000000.0, 20000000.0]   # it holds only at these
 //! ```
 
 use std::path::{Path, PathBuf};
@@ -70,6 +76,19 @@ pub struct Source {
     pub samples_sha256: String,
     /// Sample ids flagged as outliers (kept in the fit, listed for review).
     pub outliers: Vec<String>,
+    /// The two excitation frequencies of the reference samples, Hz, lower
+    /// first: the calibration holds only at these (`cal push` and `cal
+    /// predict` check them). Absent in files written before it was kept.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub freqs_hz: Option<[f64; 2]>,
+}
+
+/// Whether two frequency pairs agree to 0.5 % (the device's own tolerance
+/// for a cell calibration's frequencies).
+pub fn same_freqs(a: [f64; 2], b: [f64; 2]) -> bool {
+    a.iter()
+        .zip(b.iter())
+        .all(|(x, y)| (x / y - 1.0).abs() <= 0.005)
 }
 
 /// One input range.

@@ -152,3 +152,71 @@ fn predict_refuses_a_bad_table_and_writes_nothing() {
     assert!(String::from_utf8_lossy(&o.stderr).contains("missing.toml"));
     assert!(!out.exists());
 }
+
+/// A calibration holds only at its reference samples' frequencies: predict
+/// refuses a table measured at others, names the sample, writes nothing;
+/// at the right frequencies it predicts every row.
+#[test]
+fn predict_refuses_samples_at_other_frequencies() {
+    let dir = tempfile::tempdir().expect("dir");
+    let lab = dir.path().join("lab.csv");
+    // Moisture and temperature varied independently (made-up values).
+    let rows: Vec<String> = (0..14)
+        .map(|i| {
+            let m = 10.0 + 0.6 * f64::from(i);
+            format!(
+                "S{i},{m},{},1000000,{},{},20000000,{},0.3",
+                18.0 + f64::from(i % 5),
+                2.0 + 0.25 * m + 0.01 * f64::from(i % 3),
+                0.5 + 0.02 * f64::from(i),
+                1.8 + 0.2 * m
+            )
+        })
+        .collect();
+    std::fs::write(&lab, table(&rows)).expect("write csv");
+    let cal = dir.path().join("p.toml");
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "fit", "--model", "single", "--samples"])
+        .arg(&lab)
+        .arg("--out")
+        .arg(&cal)
+        .output()
+        .expect("run fringe");
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let text = std::fs::read_to_string(&cal).expect("p.toml written");
+    assert!(text.contains("freqs_hz"), "{text}");
+    let predict = |rows: &[String]| {
+        let input = dir.path().join("in.csv");
+        std::fs::write(&input, table(rows)).expect("write");
+        let out = dir.path().join("pred.csv");
+        let _ = std::fs::remove_file(&out);
+        let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+            .args(["cal", "predict", "--cal"])
+            .arg(&cal)
+            .arg("--input")
+            .arg(&input)
+            .arg("--out")
+            .arg(&out)
+            .output()
+            .expect("run");
+        (
+            o.status.code(),
+            String::from_utf8_lossy(&o.stderr).into_owned(),
+            std::fs::read_to_string(&out).ok(),
+        )
+    };
+    let (code, err, out) = predict(&rows[..3]);
+    assert_eq!(code, Some(0), "{err}");
+    assert_eq!(out.expect("predictions").lines().count(), 4);
+    let shifted: Vec<String> = rows[..3]
+        .iter()
+        .map(|r| r.replace(",20000000,", ",10000000,"))
+        .collect();
+    let (code, err, out) = predict(&shifted);
+    assert_ne!(code, Some(0), "{err}");
+    assert!(
+        err.contains("sample S0") && err.contains("10000000"),
+        "{err}"
+    );
+    assert!(out.is_none(), "nothing may be written");
+}

@@ -315,6 +315,38 @@ fn capture_push_list_select_and_history() {
     let o = push(&cals[1], "false");
     assert_eq!(o.code, 0, "{}", o.stderr);
 
+    // A calibration from samples at other frequencies is refused.
+    let other = sim.path("other.csv");
+    std::fs::write(
+        &other,
+        std::fs::read_to_string(&table)
+            .unwrap()
+            .replace(",1000000,", ",500000,")
+            .replace(",20000000,", ",10000000,"),
+    )
+    .unwrap();
+    let other_cal = sim.path("other.toml");
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "fit",
+            "--samples",
+            other.to_str().unwrap(),
+            "--model",
+            "single",
+            "--name",
+            "HM oats L2",
+            "--out",
+            other_cal.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let records = history(&db).len();
+    let o = push(&other_cal, "true");
+    assert_fails(&o, 1, &["500000 and 10000000 Hz", "nothing written"]);
+    assert_eq!(history(&db).len(), records);
+
     let list = || -> serde_json::Value {
         let o = run(
             &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
