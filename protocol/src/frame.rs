@@ -374,7 +374,7 @@ impl<T: DeserializeOwned> Iterator for Push<'_, T> {
     fn next(&mut self) -> Option<Self::Item> {
         // Whole runs up to the next delimiter are copied at once.
         while let Some(rest) = self.chunk.get(self.pos..).filter(|r| !r.is_empty()) {
-            match rest.iter().position(|&b| b == 0) {
+            match memchr::memchr(0, rest) {
                 None => {
                     self.dec.absorb(rest);
                     self.pos = self.chunk.len();
