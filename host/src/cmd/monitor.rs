@@ -50,6 +50,8 @@ pub struct MonitorSummary {
     pub link_errors: u32,
     /// Drift alarm episodes already in the record when the monitor started.
     pub drift_alarms_before: usize,
+    /// Drift checks that failed (the readings were stored regardless).
+    pub drift_check_failures: u32,
     /// Drift alarm episodes raised while it ran, as `fringe drift --json`
     /// prints them, each with `announced_after_streamed` (readings streamed
     /// when it was announced).
@@ -181,6 +183,18 @@ impl Monitor<'_> {
             self.notice(&format!(
                 "{} readings after {} were no longer in the device log (lost)",
                 b.lost, last
+            ))?;
+        }
+        Ok(())
+    }
+
+    /// The drift check, never fatal: the readings keep being stored if it
+    /// fails (the failure is said, and counted in the summary).
+    fn watch_drift(&mut self, force: bool) -> anyhow::Result<()> {
+        if let Err(e) = self.check_drift(force) {
+            self.sum.drift_check_failures += 1;
+            self.notice(&format!(
+                "drift check failed ({e:#}); readings are still being stored, `fringe drift` can be run on the database"
             ))?;
         }
         Ok(())
@@ -466,9 +480,9 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
     };
     // Commit whatever arrived, whatever happened.
     let flushed = m.flush();
-    // The last batch's alarms (a drift failure must not hide the run's result).
+    // The last batch's alarms.
     let drift_checked = if flushed.is_ok() && result.is_ok() {
-        m.check_drift(true)
+        m.watch_drift(true)
     } else {
         Ok(())
     };
@@ -518,7 +532,7 @@ impl Monitor<'_> {
         let now_at = super::request_status(&mut self.link)?.next_seq;
         self.fill_gap(Some(now_at))?;
         self.flush()?;
-        self.check_drift(!self.drift.primed)?;
+        self.watch_drift(!self.drift.primed)?;
         self.start_stream()?;
         let silence = Duration::from_millis(u64::from(self.period_ms) * 5 + 2000);
         loop {
@@ -544,7 +558,7 @@ impl Monitor<'_> {
             }
             if self.batcher.due(Instant::now()) {
                 self.flush()?;
-                self.check_drift(false)?;
+                self.watch_drift(false)?;
             }
             if self.last_reading.elapsed() > silence {
                 // The stream went quiet: ask the device; no answer means reconnect.
