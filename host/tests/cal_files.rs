@@ -47,6 +47,19 @@ fn run(dir: &Path, csv: &str, extra: &[&str]) -> (i32, String) {
     )
 }
 
+/// `fringe cal predict --cal CAL --input INPUT --out OUT`, run to the end.
+fn predict_cmd(cal: &Path, input: &Path, out: &Path) -> std::process::Output {
+    Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "predict", "--cal"])
+        .arg(cal)
+        .arg("--input")
+        .arg(input)
+        .arg("--out")
+        .arg(out)
+        .output()
+        .expect("run fringe")
+}
+
 fn table(rows: &[String]) -> String {
     format!("{HEADER}\n{}\n", rows.join("\n"))
 }
@@ -134,15 +147,7 @@ fn predict_refuses_a_bad_table_and_writes_nothing() {
     let input = dir.path().join("in.csv");
     std::fs::write(&input, format!("{HEADER}\nS1,,20,1e6,5,1,2e7,4,0.3\n")).expect("write");
     let out = dir.path().join("pred.csv");
-    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
-        .args(["cal", "predict", "--cal"])
-        .arg(&cal)
-        .arg("--input")
-        .arg(&input)
-        .arg("--out")
-        .arg(&out)
-        .output()
-        .expect("run");
+    let o = predict_cmd(&cal, &input, &out);
     assert_eq!(
         o.status.code(),
         Some(3),
@@ -190,15 +195,7 @@ fn predict_refuses_samples_at_other_frequencies() {
         std::fs::write(&input, table(rows)).expect("write");
         let out = dir.path().join("pred.csv");
         let _ = std::fs::remove_file(&out);
-        let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
-            .args(["cal", "predict", "--cal"])
-            .arg(&cal)
-            .arg("--input")
-            .arg(&input)
-            .arg("--out")
-            .arg(&out)
-            .output()
-            .expect("run");
+        let o = predict_cmd(&cal, &input, &out);
         (
             o.status.code(),
             String::from_utf8_lossy(&o.stderr).into_owned(),
