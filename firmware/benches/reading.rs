@@ -173,49 +173,35 @@ fn bench(c: &mut Criterion) {
     let product = parse_product(&exact_calibration(&SynthProduct::grain(), "bench grain")).unwrap();
     let chain = ChainState::default();
     let mut runner = Runner::new();
-    // One check that the figure is for a real estimate.
-    runner.start(Job {
-        electrodes: true,
-        reference: false,
-    });
-    let raw = loop {
-        if let Some(r) = runner.step(&mut fe, &DEFAULT_MEASURE) {
-            break r;
-        }
+    // One full reading: acquisition (replayed), demodulation through the estimate.
+    let mut reading = || {
+        runner.start(Job {
+            electrodes: true,
+            reference: false,
+        });
+        let raw = loop {
+            if let Some(r) = runner.step(&mut fe, &DEFAULT_MEASURE) {
+                break r;
+            }
+        };
+        measure::evaluate(
+            &fe,
+            &DEFAULT_MEASURE,
+            &raw,
+            &chain,
+            Some(&cell),
+            Some(&product),
+        )
     };
-    let o = measure::evaluate(
-        &fe,
-        &DEFAULT_MEASURE,
-        &raw,
-        &chain,
-        Some(&cell),
-        Some(&product),
-    );
+    // One check that the figure is for a real estimate.
+    let o = reading();
     eprintln!(
         "reading: moisture {:?} +/- {} %, flags {:?}",
         o.moisture_pct, o.uncertainty_pct, o.flags
     );
     assert!(o.moisture_pct.is_some());
     c.bench_function("reading_two_freq_8_records_demod_through_estimate", |b| {
-        b.iter(|| {
-            runner.start(Job {
-                electrodes: true,
-                reference: false,
-            });
-            let raw = loop {
-                if let Some(r) = runner.step(&mut fe, &DEFAULT_MEASURE) {
-                    break r;
-                }
-            };
-            measure::evaluate(
-                &fe,
-                &DEFAULT_MEASURE,
-                &raw,
-                &chain,
-                Some(&cell),
-                Some(&product),
-            )
-        })
+        b.iter(&mut reading)
     });
 }
 

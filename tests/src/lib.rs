@@ -97,25 +97,33 @@ pub fn run(cmd: &mut Command, limit: Duration) -> Outcome {
         .stderr(err_path.reopen().expect("reopen"))
         .spawn()
         .expect("cannot start fringe");
-    let t0 = Instant::now();
-    let status = loop {
-        if let Some(s) = child.try_wait().expect("wait") {
-            break s;
-        }
-        if t0.elapsed() > limit {
-            let _ = child.kill();
-            let _ = child.wait();
-            panic!(
-                "{cmd:?} ran longer than {limit:?}; stderr so far:\n{}",
-                std::fs::read_to_string(err_path.path()).unwrap_or_default()
-            );
-        }
-        std::thread::sleep(Duration::from_millis(10));
+    let Some(status) = wait_within(&mut child, limit) else {
+        panic!(
+            "{cmd:?} ran longer than {limit:?}; stderr so far:\n{}",
+            std::fs::read_to_string(err_path.path()).unwrap_or_default()
+        );
     };
     Outcome {
         code: status.code().unwrap_or(-1),
         stdout: std::fs::read_to_string(out_path.path()).unwrap_or_default(),
         stderr: std::fs::read_to_string(err_path.path()).unwrap_or_default(),
+    }
+}
+
+/// Waits for `child` to end within `limit`; kills it and gives `None` if it
+/// does not.
+fn wait_within(child: &mut Child, limit: Duration) -> Option<std::process::ExitStatus> {
+    let t0 = Instant::now();
+    loop {
+        if let Some(s) = child.try_wait().expect("wait") {
+            return Some(s);
+        }
+        if t0.elapsed() > limit {
+            let _ = child.kill();
+            let _ = child.wait();
+            return None;
+        }
+        std::thread::sleep(Duration::from_millis(10));
     }
 }
 
@@ -544,17 +552,8 @@ impl Interactive {
     /// After `limit` (killed first).
     pub fn finish(mut self, limit: Duration) -> Outcome {
         drop(self.stdin.take());
-        let t0 = Instant::now();
-        let status = loop {
-            if let Some(s) = self.child.try_wait().expect("wait") {
-                break s;
-            }
-            if t0.elapsed() > limit {
-                let _ = self.child.kill();
-                let _ = self.child.wait();
-                panic!("ran longer than {limit:?}; stderr:\n{}", self.stderr());
-            }
-            std::thread::sleep(Duration::from_millis(10));
+        let Some(status) = wait_within(&mut self.child, limit) else {
+            panic!("ran longer than {limit:?}; stderr:\n{}", self.stderr());
         };
         for r in self.readers.drain(..) {
             let _ = r.join();

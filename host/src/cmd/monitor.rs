@@ -65,6 +65,7 @@ struct DriftWatch {
     /// Episodes announced (or found at start): quantity, direction, time
     /// of the episode's first alarm.
     known: std::collections::HashSet<(Quantity, Direction, i64)>,
+    /// The check at the start of the run has been made.
     primed: bool,
     /// What was read from the store so far.
     data: Option<crate::analysis::LineData>,
@@ -209,6 +210,11 @@ impl Monitor<'_> {
             return Ok(());
         }
         self.drift.last = Some(Instant::now());
+        // The first check is the one at the start of the run (before the
+        // stream), even when nothing is stored yet: what it finds was there
+        // before.
+        let at_start = !self.drift.primed;
+        self.drift.primed = true;
         // Read once, then only what was added since (see `LineData::refresh`).
         let data = match self.drift.data.as_mut() {
             Some(d) => {
@@ -235,8 +241,7 @@ impl Monitor<'_> {
                 }
             }
         }
-        if !self.drift.primed {
-            self.drift.primed = true;
+        if at_start {
             self.sum.drift_alarms_before = fresh.len();
             if !fresh.is_empty() {
                 self.notice(&format!(

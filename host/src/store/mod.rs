@@ -1319,6 +1319,28 @@ impl Store {
         Ok(())
     }
 
+    /// The records of `serial` in `table` at chain positions after `after`
+    /// (all for `None`), in position order, as (position, values); none for
+    /// an unknown device.
+    fn device_records(
+        &self,
+        serial: &str,
+        table: Table,
+        after: Option<u64>,
+    ) -> Result<Vec<(u64, Vec<Value>)>, StoreError> {
+        let Some(dev) = self.device_key(serial)? else {
+            return Ok(Vec::new());
+        };
+        let after = after.map_or(-1, |p| p as i64);
+        all_stored_values(
+            &self.conn,
+            table,
+            "t.device = ?1 AND t.position > ?2",
+            params![dev, after],
+        )
+        .map_err(|e| self.err(e))
+    }
+
     /// All stored readings of `serial` in sequence order (tests, small exports).
     ///
     /// # Errors
@@ -1337,11 +1359,7 @@ impl Store {
     /// # Errors
     /// [`StoreError`] on a database failure.
     pub fn events(&self, serial: &str) -> Result<Vec<StoredEvent>, StoreError> {
-        let Some(dev) = self.device_key(serial)? else {
-            return Ok(Vec::new());
-        };
-        let recs = all_stored_values(&self.conn, Table::Events, "t.device = ?1", [dev])
-            .map_err(|e| self.err(e))?;
+        let recs = self.device_records(serial, Table::Events, None)?;
         let mut out = Vec::new();
         for (position, v) in recs {
             let detail = text_at(&v, 5).unwrap_or_default();
@@ -1372,11 +1390,7 @@ impl Store {
     /// # Errors
     /// [`StoreError`] on a database failure.
     pub fn calibrations(&self, serial: &str) -> Result<Vec<StoredCalibration>, StoreError> {
-        let Some(dev) = self.device_key(serial)? else {
-            return Ok(Vec::new());
-        };
-        let recs = all_stored_values(&self.conn, Table::Calibrations, "t.device = ?1", [dev])
-            .map_err(|e| self.err(e))?;
+        let recs = self.device_records(serial, Table::Calibrations, None)?;
         Ok(recs
             .into_iter()
             .map(|(position, v)| StoredCalibration {
@@ -1403,11 +1417,7 @@ impl Store {
     /// # Errors
     /// [`StoreError`] on a database failure.
     pub fn lab_samples(&self, serial: &str) -> Result<Vec<StoredLabSample>, StoreError> {
-        let Some(dev) = self.device_key(serial)? else {
-            return Ok(Vec::new());
-        };
-        let recs = all_stored_values(&self.conn, Table::LabSamples, "t.device = ?1", [dev])
-            .map_err(|e| self.err(e))?;
+        let recs = self.device_records(serial, Table::LabSamples, None)?;
         Ok(recs
             .into_iter()
             .map(|(position, v)| StoredLabSample {
@@ -1493,17 +1503,7 @@ impl Store {
         serial: &str,
         after: Option<u64>,
     ) -> Result<Vec<StoredRefCheck>, StoreError> {
-        let Some(dev) = self.device_key(serial)? else {
-            return Ok(Vec::new());
-        };
-        let after = after.map_or(-1, |p| p as i64);
-        let recs = all_stored_values(
-            &self.conn,
-            Table::ReferenceChecks,
-            "t.device = ?1 AND t.position > ?2",
-            params![dev, after],
-        )
-        .map_err(|e| self.err(e))?;
+        let recs = self.device_records(serial, Table::ReferenceChecks, after)?;
         Ok(recs
             .into_iter()
             .map(|(position, v)| StoredRefCheck {
