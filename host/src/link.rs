@@ -851,9 +851,11 @@ mod tests {
         ))))
     }
 
+    /// Short enough that the tests that wait out a lost answer stay quick,
+    /// long enough that an answer on a busy machine is not taken for lost.
     fn quick() -> LinkOptions {
         LinkOptions {
-            timeout: Duration::from_millis(60),
+            timeout: Duration::from_millis(400),
             tries: 3,
             backoff_min: Duration::from_millis(5),
             backoff_max: Duration::from_millis(20),
@@ -888,7 +890,9 @@ mod tests {
         let mut link = link.unwrap();
         assert_eq!(link.serial_number(), "HGM-L2-0001");
         assert_eq!(link.request(Request::StopStream).unwrap(), Response::Ack);
-        assert_eq!(link.stats().retries, 1);
+        // At least the one retry the lost answer forces (a busy machine may
+        // add one more; timing decides that, not the link).
+        assert!(link.stats().retries >= 1, "{:?}", link.stats());
     }
 
     #[test]

@@ -6,7 +6,7 @@
 //! - [`ScenarioSpec`] and [`Sim`]: a `fringe sim` child on a pseudo-terminal
 //!   with a stable symlink path, and what it recorded;
 //! - [`stored_readings`], [`assert_gapless`]: what a database holds;
-//! - [`seed`]: the seed of a random test (`FRINGE_TEST_SEED` overrides);
+//! - [`seed`]: the seed of a random test (`FRINGE_SEED` overrides);
 //! - [`qemu`]: the firmware under QEMU on a pseudo-terminal (also used by
 //!   `cargo xtask size`).
 #![forbid(unsafe_code)]
@@ -143,13 +143,28 @@ pub fn assert_fails(o: &Outcome, code: i32, needles: &[&str]) {
     );
 }
 
-/// The seed of a random test: `FRINGE_TEST_SEED` if set, else `default`.
+/// How long a test waits for a condition before it fails: generous, since
+/// a test must not fail because the machine is busy (the condition is
+/// polled, so a quick machine does not wait for it).
+pub const DEADLINE: Duration = Duration::from_secs(60);
+
+/// Polls `cond` every 20 ms until it holds.
+///
+/// # Panics
+/// With `what()` if it does not hold within `limit`.
+pub fn poll_until(limit: Duration, what: impl Fn() -> String, mut cond: impl FnMut() -> bool) {
+    let t0 = Instant::now();
+    while !cond() {
+        assert!(t0.elapsed() < limit, "after {limit:?}: {}", what());
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+/// The seed of a random test: `FRINGE_SEED` if set, else `default`
+/// (`fringe_testkit::seed`, the one seed variable of every crate).
 /// Print it in every assertion message.
 pub fn seed(default: u64) -> u64 {
-    std::env::var("FRINGE_TEST_SEED")
-        .ok()
-        .and_then(|s| s.parse().ok())
-        .unwrap_or(default)
+    fringe_testkit::seed(default)
 }
 
 /// A simulated plant scenario for tests (Harrowgate Mill, line 2).
@@ -267,15 +282,11 @@ impl Sim {
             record,
             scenario,
         };
-        let t0 = Instant::now();
-        while !sim.port.exists() {
-            assert!(
-                t0.elapsed() < Duration::from_secs(20),
-                "fringe sim did not come up; its log:\n{}",
-                sim.log()
-            );
-            std::thread::sleep(Duration::from_millis(20));
-        }
+        poll_until(
+            DEADLINE,
+            || format!("fringe sim did not come up; its log:\n{}", sim.log()),
+            || sim.port.exists(),
+        );
         sim
     }
 
@@ -293,8 +304,30 @@ impl Sim {
     /// simulated window through the bench fixture file, and waits until the
     /// simulator has read it (it looks every 100 ms).
     pub fn set_bench(&self, what: &str) {
+        let word = what.split_whitespace().next().unwrap_or("line");
+        // The simulator says `fringe sim: bench fixture: WORD` each time it
+        // takes a new fixture; wait for that line rather than for a time.
+        let applied = || {
+            self.log()
+                .lines()
+                .rev()
+                .find_map(|l| l.strip_prefix("fringe sim: bench fixture: "))
+                .map(str::to_string)
+        };
+        if applied().as_deref() == Some(word) {
+            return;
+        }
         std::fs::write(self.path("bench"), what).expect("write bench file");
-        std::thread::sleep(Duration::from_millis(400));
+        poll_until(
+            DEADLINE,
+            || {
+                format!(
+                    "the simulator did not take bench fixture `{word}`; its log:\n{}",
+                    self.log()
+                )
+            },
+            || applied().as_deref() == Some(word),
+        );
     }
 
     /// What the simulator printed.
@@ -389,6 +422,16 @@ pub fn stored_readings(db: &Path, serial: &str) -> Vec<Reading> {
         .into_iter()
         .map(|r| r.reading)
         .collect()
+}
+
+/// How many readings of `serial` the database at `db` holds committed now;
+/// 0 while the file or its schema does not exist yet (for polling while a
+/// monitor runs).
+pub fn committed_readings(db: &Path, serial: &str) -> usize {
+    fringe_host::store::Store::open_read_only(db)
+        .and_then(|s| s.readings(serial))
+        .map(|r| r.len())
+        .unwrap_or(0)
 }
 
 /// Bitwise comparison of two readings (NaN-safe).

@@ -94,18 +94,11 @@ fn busy_port_is_code_11_and_wrong_baud_is_code_14() {
     let db = sim.path("l.db");
     let mut holder = spawn_silent(&mut sim.monitor(&db, &["--quiet"]));
     // Wait until it streams (readings in the database).
-    let t0 = std::time::Instant::now();
-    while fringe_host::store::Store::open_read_only(&db)
-        .and_then(|s| s.reading_count("HGM-L2-0202"))
-        .unwrap_or(0)
-        == 0
-    {
-        assert!(
-            t0.elapsed() < Duration::from_secs(30),
-            "monitor never stored"
-        );
-        std::thread::sleep(Duration::from_millis(50));
-    }
+    poll_until(
+        DEADLINE,
+        || "monitor never stored".to_string(),
+        || committed_readings(&db, "HGM-L2-0202") > 0,
+    );
     let o = run(&mut fringe(&["identify", "--port", sim.port_str()]), LIMIT);
     assert_fails(&o, 11, &["busy"]);
     // Killed, the monitor leaves the device streaming: at the wrong baud

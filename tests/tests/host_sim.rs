@@ -1,7 +1,7 @@
 //! `fringe` against `fringe sim` over a pseudo-terminal: identify, stream
 //! into a database, link faults, crash safety.
 
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 use fringe_tests::*;
 use rand::{RngExt, SeedableRng};
@@ -69,7 +69,12 @@ fn ctrl_c_commits_and_exits_zero() {
         .stderr(std::process::Stdio::piped())
         .spawn()
         .expect("start monitor");
-    std::thread::sleep(Duration::from_millis(2500));
+    // Interrupt once the monitor has committed readings (not after a fixed time).
+    poll_until(
+        DEADLINE,
+        || format!("monitor stored nothing; sim log:\n{}", sim.log()),
+        || db.exists() && committed_readings(&db, "HGM-L2-0106") >= 5,
+    );
     let status = std::process::Command::new("kill")
         .args(["-INT", &child.id().to_string()])
         .status()
@@ -130,14 +135,17 @@ fn killed_monitor_loses_nothing_over_twenty_kills() {
     let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
     let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0105", seed));
     let db = sim.path("line2.db");
-    let t0 = Instant::now();
     for round in 0..20 {
-        assert!(
-            t0.elapsed() < Duration::from_secs(150),
-            "{ctx}: too slow at round {round}"
-        );
+        let before = committed_readings(&db, "HGM-L2-0105");
         let mut child = spawn_silent(&mut sim.monitor(&db, &["--quiet"]));
-        let alive_ms = rng.random_range(150..900u64);
+        // Each round makes progress (a commit after this start), then the
+        // kill falls at a random moment after it.
+        poll_until(
+            DEADLINE,
+            || format!("{ctx}: round {round}: the monitor committed nothing"),
+            || committed_readings(&db, "HGM-L2-0105") > before,
+        );
+        let alive_ms = rng.random_range(0..600u64);
         std::thread::sleep(Duration::from_millis(alive_ms));
         // SIGKILL: no chance to commit.
         child.kill().expect("kill");
@@ -147,7 +155,8 @@ fn killed_monitor_loses_nothing_over_twenty_kills() {
     assert_eq!(o.code, 0, "{ctx}: {}", o.stderr);
     let stored = stored_readings(&db, "HGM-L2-0105");
     let n = assert_gapless(&stored, &sim.recorded(), &ctx);
-    assert!(n > 50, "{ctx}: only {n} readings");
+    // At least one commit per round (timing decides how many more).
+    assert!(n >= 20, "{ctx}: only {n} readings");
     let store = fringe_host::store::Store::open_read_only(&db).unwrap();
     assert!(store.verify_chain().unwrap().ok(), "{ctx}");
 }

@@ -220,6 +220,10 @@ pub fn run(
                     match Bench::parse(&text) {
                         Ok(b) => {
                             device.set_bench(b);
+                            // In effect before it is announced: a request
+                            // answered after the announcement sees it.
+                            device.set_conditions(&scenario.at(t_s));
+                            last_conditions = Instant::now();
                             eprintln!(
                                 "fringe sim: bench fixture: {}",
                                 text.split_whitespace().next().unwrap_or("line")

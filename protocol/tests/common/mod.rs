@@ -9,12 +9,10 @@ use proptest::strategy::ValueTree;
 use proptest::test_runner::{Config, RngAlgorithm, RngSeed, TestRng, TestRunner};
 
 /// Seed for a random test: `FRINGE_SEED` if set, else a fixed default so CI
-/// runs are reproducible. Every test prints it when it fails.
+/// runs are reproducible (`fringe_testkit::seed`). Every test prints it when
+/// it fails.
 pub fn seed() -> u64 {
-    std::env::var("FRINGE_SEED")
-        .ok()
-        .and_then(|s| s.parse().ok())
-        .unwrap_or(0x5EED_F1A6)
+    fringe_testkit::seed(0x5EED_F1A6)
 }
 
 /// A seeded generator for hand-written random tests.
@@ -32,12 +30,10 @@ pub fn check<S: Strategy>(
 ) where
     S::Value: std::fmt::Debug,
 {
-    let seed = seed();
-    let config = Config {
-        cases: 256,
-        rng_seed: RngSeed::Fixed(seed),
-        failure_persistence: None,
-        ..Config::default()
+    let config = fringe_testkit::proptest_config(256, 0x5EED_F1A6);
+    let seed = match config.rng_seed {
+        RngSeed::Fixed(s) => s,
+        RngSeed::Random => unreachable!("proptest_config always fixes the seed"),
     };
     let mut runner = TestRunner::new(config);
     let result = runner.run(&strategy, test);
