@@ -1,9 +1,19 @@
 //! `cargo xtask`: the project's runner.
 //!
-//! - `cargo xtask test`: everything this machine can test (fmt, clippy,
-//!   workspace tests, `no_std` cross-builds, firmware, QEMU, fuzz smoke run).
-//!   Parts that need a tool this machine lacks (nightly and cargo-fuzz for
-//!   the fuzz run) are skipped with a loud notice saying why.
+//! - `cargo xtask test`: every test. On a fresh machine it first installs
+//!   what the tests need (see [`setup`]): Debian packages when run as root,
+//!   the Cortex-M target, a nightly toolchain and cargo-fuzz, and a Python
+//!   virtual environment with the pinned reference libraries of
+//!   `tests/python/requirements.txt`. Then: fmt, clippy, workspace tests,
+//!   `no_std` cross-builds, the outside checks against those libraries, the
+//!   fuzz crate's build and smoke run, the board build and the QEMU
+//!   end-to-end test.
+//!
+//! Nothing is skipped in silence. A part that cannot run (a tool missing and
+//! not installable here) fails the run, and the closing line names it. To
+//! leave parts out on purpose, name them: `cargo xtask test --skip qemu,fuzz`
+//! or `FRINGE_SKIP=qemu,fuzz`; the closing line then says
+//! `passed, N parts skipped: ...` and the exit status is 0.
 #![forbid(unsafe_code)]
 
 use anyhow::{bail, Context, Result};
@@ -53,8 +63,209 @@ fn ensure_target() -> Result<()> {
     Ok(())
 }
 
-fn test() -> Result<()> {
+/// Parts of `cargo xtask test` that need more than the Rust toolchain, and
+/// so can be left out by name (`--skip` or `FRINGE_SKIP`).
+const OPTIONAL_PARTS: [(&str, &str); 3] = [
+    (
+        "python",
+        "outside checks against Python reference libraries (tests/tests/outside.rs)",
+    ),
+    ("fuzz", "fuzz crate build and smoke run (protocol/fuzz)"),
+    (
+        "qemu",
+        "QEMU end-to-end test of the firmware (tests/tests/qemu.rs)",
+    ),
+];
+
+/// What the run did with each optional part.
+#[derive(Default)]
+struct Ledger {
+    /// Left out because the user named them.
+    opted_out: Vec<String>,
+    /// Could not run: (part, why).
+    missing: Vec<(String, String)>,
+}
+
+/// The parts named by `--skip a,b` and `FRINGE_SKIP=a,b`.
+fn skip_list(args: &[String]) -> Result<Vec<String>> {
+    let mut names: Vec<String> = Vec::new();
+    let mut add = |text: &str, from: &str| -> Result<()> {
+        for n in text.split(',').map(str::trim).filter(|n| !n.is_empty()) {
+            if !OPTIONAL_PARTS.iter().any(|(p, _)| *p == n) {
+                let known: Vec<&str> = OPTIONAL_PARTS.iter().map(|(p, _)| *p).collect();
+                bail!(
+                    "{from}: `{n}` is not a part that can be skipped (known: {})",
+                    known.join(", ")
+                );
+            }
+            names.push(n.to_string());
+        }
+        Ok(())
+    };
+    if let Ok(v) = std::env::var("FRINGE_SKIP") {
+        add(&v, "FRINGE_SKIP")?;
+    }
+    let mut it = args.iter();
+    while let Some(a) = it.next() {
+        if let Some(v) = a.strip_prefix("--skip=") {
+            add(v, "--skip")?;
+        } else if a == "--skip" {
+            let v = it
+                .next()
+                .context("--skip needs a list of parts, e.g. --skip qemu,fuzz")?;
+            add(v, "--skip")?;
+        } else {
+            bail!("cargo xtask test: unknown argument `{a}` (only --skip PARTS)");
+        }
+    }
+    Ok(names)
+}
+
+fn is_root() -> bool {
+    Command::new("id")
+        .arg("-u")
+        .output()
+        .map(|o| String::from_utf8_lossy(&o.stdout).trim() == "0")
+        .unwrap_or(false)
+}
+
+fn on_path(tool: &str) -> bool {
+    Command::new("sh")
+        .args(["-c", &format!("command -v {tool}")])
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .status()
+        .map(|s| s.success())
+        .unwrap_or(false)
+}
+
+/// Installs the Debian packages whose commands are missing (as root), or
+/// says which are missing and how to install them.
+fn apt_install(packages: &[(&str, &str)]) -> Result<()> {
+    let missing: Vec<&str> = packages
+        .iter()
+        .filter(|(cmd, _)| !on_path(cmd))
+        .map(|(_, pkg)| *pkg)
+        .collect();
+    if missing.is_empty() {
+        return Ok(());
+    }
+    if !is_root() {
+        bail!(
+            "missing Debian packages {} and not root: run `sudo apt-get install -y {}`",
+            missing.join(", "),
+            missing.join(" ")
+        );
+    }
+    run(Command::new("apt-get")
+        .args(["update", "-qq"])
+        .env("DEBIAN_FRONTEND", "noninteractive"))?;
+    run(Command::new("apt-get")
+        .args(["install", "-y", "-qq", "--no-install-recommends"])
+        .args(&missing)
+        .env("DEBIAN_FRONTEND", "noninteractive"))
+}
+
+/// The Python virtual environment of the outside checks.
+fn venv_dir() -> PathBuf {
+    root().join("target/fringe-venv")
+}
+
+/// Its interpreter (what `FRINGE_PYTHON` points the tests at).
+fn venv_python() -> PathBuf {
+    venv_dir().join("bin/python")
+}
+
+/// Creates (or refreshes, when `tests/python/requirements.txt` changed) the
+/// virtual environment with the pinned reference libraries.
+fn ensure_venv() -> Result<()> {
+    let req = root().join("tests/python/requirements.txt");
+    let wanted =
+        std::fs::read_to_string(&req).with_context(|| format!("cannot read {}", req.display()))?;
+    let stamp = venv_dir().join("fringe-requirements.txt");
+    if venv_python().exists() && std::fs::read_to_string(&stamp).ok().as_deref() == Some(&wanted) {
+        return Ok(());
+    }
+    if !on_path("python3") {
+        apt_install(&[("python3", "python3")])?;
+    }
+    if !succeeds(Command::new("python3").args(["-c", "import venv, ensurepip"])) {
+        apt_install(&[("false", "python3-venv")])?;
+    }
+    run(Command::new("python3")
+        .arg("-m")
+        .arg("venv")
+        .arg(venv_dir()))?;
+    run(Command::new(venv_python())
+        .args([
+            "-m",
+            "pip",
+            "install",
+            "--quiet",
+            "--disable-pip-version-check",
+            "-r",
+        ])
+        .arg(&req))?;
+    std::fs::write(&stamp, wanted).with_context(|| format!("cannot write {}", stamp.display()))?;
+    Ok(())
+}
+
+/// Nightly and cargo-fuzz, installed if missing.
+fn ensure_fuzz_tools() -> Result<()> {
+    if !succeeds(nightly_cargo().arg("--version")) {
+        run(Command::new("rustup").args([
+            "toolchain",
+            "install",
+            "nightly",
+            "--profile",
+            "minimal",
+        ]))?;
+    }
+    if !succeeds(nightly_cargo().args(["fuzz", "--version"])) {
+        run(
+            Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into())).args([
+                "install",
+                "cargo-fuzz",
+                "--locked",
+            ]),
+        )?;
+    }
+    Ok(())
+}
+
+/// Runs optional part `name` unless it was left out by name; its set-up
+/// failing counts as "could not run", its test failing fails the run.
+fn optional(
+    ledger: &mut Ledger,
+    skip: &[String],
+    name: &str,
+    setup: impl FnOnce() -> Result<()>,
+    test: impl FnOnce() -> Result<()>,
+) -> Result<()> {
+    if skip.iter().any(|s| s == name) {
+        eprintln!("xtask: part `{name}` left out (--skip / FRINGE_SKIP)");
+        ledger.opted_out.push(name.to_string());
+        return Ok(());
+    }
+    if let Err(e) = setup() {
+        eprintln!();
+        eprintln!("xtask: ################################################################");
+        eprintln!("xtask: part `{name}` CANNOT RUN: {e:#}");
+        eprintln!("xtask: (to leave it out on purpose: --skip {name} or FRINGE_SKIP={name})");
+        eprintln!("xtask: ################################################################");
+        eprintln!();
+        ledger.missing.push((name.to_string(), format!("{e:#}")));
+        return Ok(());
+    }
+    test()
+}
+
+fn test(args: &[String]) -> Result<()> {
+    let skip = skip_list(args)?;
+    let mut ledger = Ledger::default();
     ensure_target()?;
+    // rustfmt and clippy are part of every run (they are no extra part).
+    run(Command::new("rustup").args(["component", "add", "rustfmt", "clippy"]))?;
     run(cargo().args(["fmt", "--all", "--check"]))?;
     run(cargo().args([
         "clippy",
@@ -86,24 +297,91 @@ fn test() -> Result<()> {
         "--features",
         "sim",
     ]))?;
-    fuzz_smoke()?;
-    board_and_qemu()?;
-    eprintln!("xtask: all tests passed");
+    optional(&mut ledger, &skip, "python", ensure_venv, || {
+        run(cargo()
+            .args([
+                "test",
+                "-p",
+                "fringe-tests",
+                "--test",
+                "outside",
+                "--",
+                "--ignored",
+            ])
+            .env("FRINGE_PYTHON", venv_python()))
+    })?;
+    optional(&mut ledger, &skip, "fuzz", ensure_fuzz_tools, fuzz_smoke)?;
+    // The board crate is built in every run; only its QEMU test is optional.
+    board()?;
+    optional(
+        &mut ledger,
+        &skip,
+        "qemu",
+        || {
+            apt_install(&[("qemu-system-arm", "qemu-system-arm")])?;
+            if qemu::qemu_available() {
+                Ok(())
+            } else {
+                bail!("qemu-system-arm does not run")
+            }
+        },
+        || {
+            run(cargo().args([
+                "test",
+                "-p",
+                "fringe-tests",
+                "--test",
+                "qemu",
+                "--",
+                "--ignored",
+                "--nocapture",
+            ]))
+        },
+    )?;
+    let line = verdict(&ledger).map_err(anyhow::Error::msg)?;
+    eprintln!("{line}");
     Ok(())
+}
+
+/// The closing line of a run: an error naming every part that could not
+/// run (whatever else was left out by request), else the pass line, which
+/// names the parts left out by request.
+fn verdict(ledger: &Ledger) -> Result<String, String> {
+    let parts = |v: &[String]| v.join(", ");
+    if !ledger.missing.is_empty() {
+        let names: Vec<String> = ledger
+            .missing
+            .iter()
+            .map(|(n, why)| format!("{n} ({why})"))
+            .collect();
+        return Err(format!(
+            "xtask: FAILED: {} part(s) could not run: {}{}",
+            ledger.missing.len(),
+            names.join("; "),
+            if ledger.opted_out.is_empty() {
+                String::new()
+            } else {
+                format!("; left out by request: {}", parts(&ledger.opted_out))
+            }
+        ));
+    }
+    if ledger.opted_out.is_empty() {
+        Ok(format!(
+            "xtask: all tests passed ({} of {} optional parts run)",
+            OPTIONAL_PARTS.len(),
+            OPTIONAL_PARTS.len()
+        ))
+    } else {
+        Ok(format!(
+            "xtask: passed, {} parts skipped: {} (left out by request)",
+            ledger.opted_out.len(),
+            parts(&ledger.opted_out)
+        ))
+    }
 }
 
 /// Fuzz targets of `protocol/fuzz` and their smoke-run length, seconds.
 const FUZZ_SMOKE: [(&str, u32); 2] = [("decoder", 20), ("payload", 10)];
-
-/// Says loudly that a part of the test run was skipped, and why.
-fn skipped(what: &str, why: &str, fix: &str) {
-    eprintln!();
-    eprintln!("xtask: ################################################################");
-    eprintln!("xtask: SKIPPED {what}: {why}");
-    eprintln!("xtask: to run it: {fix}");
-    eprintln!("xtask: ################################################################");
-    eprintln!();
-}
 
 /// A command that runs outside the stable toolchain `cargo xtask` runs in.
 fn nightly_cargo() -> Command {
@@ -129,26 +407,12 @@ fn succeeds(cmd: &mut Command) -> bool {
         .unwrap_or(false)
 }
 
-/// Short libFuzzer runs of every protocol fuzz target, from the committed
-/// seed corpus; new inputs go to a scratch folder, not into the tree.
+/// Builds every fuzz target (`cargo +nightly fuzz build`), then short
+/// libFuzzer runs of each from the committed seed corpus; new inputs go to a
+/// scratch folder, not into the tree.
 fn fuzz_smoke() -> Result<()> {
-    if !succeeds(nightly_cargo().arg("--version")) {
-        skipped(
-            "the fuzz smoke run",
-            "no nightly toolchain (cargo fuzz needs it)",
-            "rustup toolchain install nightly",
-        );
-        return Ok(());
-    }
-    if !succeeds(nightly_cargo().args(["fuzz", "--version"])) {
-        skipped(
-            "the fuzz smoke run",
-            "cargo-fuzz is not installed",
-            "cargo install cargo-fuzz --locked",
-        );
-        return Ok(());
-    }
     let dir = root().join("protocol");
+    run(nightly_cargo().current_dir(&dir).args(["fuzz", "build"]))?;
     for (target, secs) in FUZZ_SMOKE {
         let scratch =
             std::env::temp_dir().join(format!("fringe-fuzz-{target}-{}", std::process::id()));
@@ -169,9 +433,8 @@ fn fuzz_smoke() -> Result<()> {
     Ok(())
 }
 
-/// The board crate (fmt, clippy, release build) and, with QEMU installed,
-/// the end-to-end test against the firmware under QEMU.
-fn board_and_qemu() -> Result<()> {
+/// The board crate: fmt, clippy, release build.
+fn board() -> Result<()> {
     let board_cargo = || {
         let mut c = Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
         c.current_dir(board_dir());
@@ -180,24 +443,7 @@ fn board_and_qemu() -> Result<()> {
     run(board_cargo().args(["fmt", "--check"]))?;
     run(board_cargo().args(["clippy", "--release", "--", "-D", "warnings"]))?;
     firmware()?;
-    if !qemu::qemu_available() {
-        skipped(
-            "the QEMU end-to-end test (tests/tests/qemu.rs)",
-            "qemu-system-arm is not installed",
-            "apt-get install -y qemu-system-arm (as .ci/run does)",
-        );
-        return Ok(());
-    }
-    run(cargo().args([
-        "test",
-        "-p",
-        "fringe-tests",
-        "--test",
-        "qemu",
-        "--",
-        "--ignored",
-        "--nocapture",
-    ]))
+    Ok(())
 }
 
 /// Folder of the QEMU board crate.
@@ -303,12 +549,10 @@ fn size() -> Result<()> {
         f.ram as f64 / 1024.0
     );
     if !qemu::qemu_available() {
-        skipped(
-            "the stack and cost report",
-            "qemu-system-arm is not installed",
-            "apt-get install -y qemu-system-arm",
+        bail!(
+            "qemu-system-arm is not installed, so the stack and cost figures cannot be measured \
+             (flash and RAM above are from the ELF): apt-get install -y qemu-system-arm"
         );
-        return Ok(());
     }
     let r = report(&elf)?;
     println!(
@@ -334,17 +578,70 @@ fn size() -> Result<()> {
 fn main() -> Result<()> {
     let args: Vec<String> = std::env::args().skip(1).collect();
     match args.first().map(String::as_str) {
-        Some("test") => test(),
+        Some("test") => test(&args[1..]),
         Some("firmware") => firmware().map(|_| ()),
         Some("qemu") => qemu_run(),
         Some("size") => size(),
         _ => {
             eprintln!("usage: cargo xtask <test | firmware | qemu | size>");
-            eprintln!("  test      everything this machine can test");
+            eprintln!("  test      every test (installs what it needs; --skip qemu,fuzz,python leaves parts out)");
             eprintln!("  firmware  build the QEMU board binary (firmware/boards/qemu-mps2)");
             eprintln!("  qemu      boot it under QEMU with UART0 on a pty and print the path");
             eprintln!("  size      flash/RAM of the ELF, stack high-water and cost per reading");
             bail!("unknown or missing xtask command")
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_part_that_cannot_run_fails_the_run_even_beside_an_opt_out() {
+        let ledger = Ledger {
+            opted_out: vec!["fuzz".into()],
+            missing: vec![("qemu".into(), "qemu-system-arm is not installed".into())],
+        };
+        let e = verdict(&ledger).unwrap_err();
+        assert!(
+            e.contains("FAILED") && e.contains("qemu (qemu-system-arm"),
+            "{e}"
+        );
+        assert!(e.contains("left out by request: fuzz"), "{e}");
+    }
+
+    #[test]
+    fn parts_left_out_by_request_pass_and_are_named() {
+        let ledger = Ledger {
+            opted_out: vec!["qemu".into(), "python".into()],
+            missing: vec![],
+        };
+        assert_eq!(
+            verdict(&ledger).unwrap(),
+            "xtask: passed, 2 parts skipped: qemu, python (left out by request)"
+        );
+        assert!(verdict(&Ledger::default())
+            .unwrap()
+            .contains("all tests passed"));
+    }
+
+    #[test]
+    fn only_known_parts_can_be_skipped() {
+        std::env::remove_var("FRINGE_SKIP");
+        let args = |v: &[&str]| v.iter().map(|s| s.to_string()).collect::<Vec<_>>();
+        assert_eq!(
+            skip_list(&args(&["--skip", "qemu,fuzz"])).unwrap(),
+            vec!["qemu", "fuzz"]
+        );
+        assert_eq!(
+            skip_list(&args(&["--skip=python"])).unwrap(),
+            vec!["python"]
+        );
+        let e = skip_list(&args(&["--skip", "clippy"]))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("`clippy` is not a part"), "{e}");
+        assert!(skip_list(&args(&["--fast"])).is_err());
     }
 }
