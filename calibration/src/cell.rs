@@ -1,7 +1,7 @@
 //! Sensor cell: admittance <-> complex permittivity, the two-point bench
 //! calibration and the third-liquid verification.
 //!
-//! Cell model at one frequency (DESIGN.md, `fringe_protocol::CellPoint`):
+//! Cell model at one frequency (docs/DESIGN.md, `fringe_protocol::CellPoint`):
 //!
 //! ```text
 //! Y = j w Cp + j w C0 eps* + G0,   eps* = eps' - j eps''
@@ -240,7 +240,7 @@ mod tests {
             let y = permittivity_to_admittance(f, eps, &CELL).unwrap();
             let back = admittance_to_permittivity(f, y, &CELL).unwrap();
             assert!((back - eps).norm() < 1e-9);
-            // Y = j w Cp + j w C0 eps* + G0 written out (DESIGN.md cell model).
+            // Y = j w Cp + j w C0 eps* + G0 written out (docs/DESIGN.md cell model).
             let w = 2.0 * core::f64::consts::PI * f;
             let j = Cx::new(0.0, 1.0);
             let direct = j * w * 2.7e-12 + j * w * 3.4424e-12 * eps + Cx::new(1.5e-7, 0.0);

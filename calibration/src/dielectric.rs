@@ -1,6 +1,6 @@
 //! Relaxation models, conduction loss, loss tangent and dielectric heating.
 //!
-//! Sign convention (DESIGN.md): eps* = eps' - j eps'', eps'' >= 0 for a lossy
+//! Sign convention (docs/DESIGN.md): eps* = eps' - j eps'', eps'' >= 0 for a lossy
 //! material. A returned [`Cx`] holds `re = eps'` and `im = -eps''`; use
 //! [`loss_factor`] to read eps'' without a sign slip.
 //!
@@ -38,7 +38,7 @@ pub fn debye<T: Real>(freq_hz: T, eps_inf: T, d_eps: T, tau_s: T) -> Cx<T> {
     Cx::new(eps_inf, T::zero()) + Cx::new(d_eps, T::zero()) / den
 }
 
-/// Cole-Cole relaxation in the frequency form of DESIGN.md:
+/// Cole-Cole relaxation in the frequency form of docs/DESIGN.md:
 /// eps_inf + d_eps / (1 + (j f / f_r)^(1 - alpha)), `0 <= alpha < 1`.
 ///
 /// `alpha = 0` is Debye with tau = 1 / (2 pi f_r).
@@ -97,7 +97,7 @@ pub fn heating_power_density<T: Real>(freq_hz: T, eps_loss: T, e_rms_v_m: T) -> 
 mod tests {
     use super::*;
 
-    // Identities from REFERENCES.md section 1 ("Relaxation-model identities" [calc]).
+    // Identities from docs/REFERENCES.md section 1 ("Relaxation-model identities" [calc]).
     #[test]
     fn cole_cole_alpha_zero_is_debye() {
         let f_r = 19.245e9f64;
@@ -111,7 +111,7 @@ mod tests {
 
     #[test]
     fn real_part_at_relaxation_frequency_is_midpoint_for_any_alpha() {
-        // REFERENCES.md 1: at omega tau = 1 the real part is eps_inf + d_eps/2.
+        // docs/REFERENCES.md 1: at omega tau = 1 the real part is eps_inf + d_eps/2.
         for &alpha in &[0.0, 0.1, 0.3, 0.6] {
             let e = cole_cole(1e7f64, 3.0, 40.0, 1e7, alpha);
             assert!((e.re - 23.0).abs() < 1e-9, "alpha {alpha}: {}", e.re);
@@ -148,7 +148,7 @@ mod tests {
 
     #[test]
     fn conductivity_loss_values() {
-        // REFERENCES.md 1: sigma 0.01 S/m -> 179.75 at 1 MHz. Its 10 MHz value
+        // docs/REFERENCES.md 1: sigma 0.01 S/m -> 179.75 at 1 MHz. Its 10 MHz value
         // (18.013) is not a tenth of that; sigma/(2 pi f eps0) with CODATA eps0
         // gives 17.975, which is what is checked here.
         assert!((conductivity_loss(1e6f64, 0.01) - 179.75).abs() < 0.01);
@@ -159,7 +159,7 @@ mod tests {
 
     #[test]
     fn heating_of_water_at_2_45_ghz() {
-        // REFERENCES.md 10: water 25 C at 2.45 GHz and 1 kV/m: 1.253 W/cm^3 [calc],
+        // docs/REFERENCES.md 10: water 25 C at 2.45 GHz and 1 kV/m: 1.253 W/cm^3 [calc],
         // with eps'' from the Kaatze 1989 Debye model.
         let e = crate::water::water_permittivity(2.45e9f64, 25.0);
         let p_w_cm3 = heating_power_density(2.45e9, loss_factor(e), 1000.0) * 1e-6;

@@ -324,7 +324,7 @@ mod tests {
 
     #[test]
     fn elliptic_k_against_abramowitz_stegun() {
-        // Abramowitz and Stegun table 17.1 (argument m = k^2), REFERENCES.md 7,
+        // Abramowitz and Stegun table 17.1 (argument m = k^2), docs/REFERENCES.md 7,
         // to 1e-9 (f64).
         for &(m, k) in &[
             (0.1f64, 1.612441348720219f64),
@@ -365,10 +365,13 @@ mod tests {
     }
 
     #[test]
-    fn igreja_dias_worked_example() {
-        // REFERENCES.md 7 [calc]: W = G = 0.5 mm, L = 20 mm, N = 20, air both
-        // sides: C_I 0.3542 pF, C_E 0.5537 pF, total 3.4424 pF; FR-4 (4.4)
-        // substrate under air 9.2946 pF.
+    fn igreja_dias_regression_values() {
+        // docs/REFERENCES.md section 7 [calc]: an invented geometry, W = G =
+        // 0.5 mm, L = 20 mm, N = 20, air both sides: C_I 0.3542 pF, C_E
+        // 0.5537 pF, total 3.4424 pF; FR-4 (4.4) substrate under air 9.2946
+        // pF. A regression test of this implementation; the outside check
+        // is `interdigital_capacitance_agrees_with_scipy` in
+        // tests/tests/outside.rs (the published formula with scipy's K(m)).
         let g = IdeGeometry {
             width_m: 0.5e-3f64,
             gap_m: 0.5e-3,
@@ -430,7 +433,7 @@ mod tests {
             assert!(f > last && f <= 1.0 + 1e-12, "{i}: {f}");
             last = f;
         }
-        // REFERENCES.md 7: about 97 % of the signal from within 0.32-0.33 lambda
+        // docs/REFERENCES.md 7: about 97 % of the signal from within 0.32-0.33 lambda
         // (finite-layer formula; the lambda/3 rule of thumb).
         let d = g.penetration_depth_m(0.97) / lam;
         assert!((0.32..=0.33).contains(&d), "{d}");

@@ -1,6 +1,6 @@
 //! Two-frequency relaxation inversion.
 //!
-//! Material model of DESIGN.md at frequency f:
+//! Material model of docs/DESIGN.md at frequency f:
 //!
 //! ```text
 //! eps*(f) = eps_hf + d_eps / (1 + (j f / f_r)^(1 - alpha)) - j sigma / (2 pi f eps0)
@@ -703,7 +703,7 @@ pub(crate) mod tests {
 
     #[test]
     fn model_is_cole_cole_plus_conduction() {
-        // DESIGN.md model written out with the independent dielectric functions.
+        // docs/DESIGN.md model written out with the independent dielectric functions.
         let l = law();
         let p = MaterialParams {
             eps_hf: 6.0,

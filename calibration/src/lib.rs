@@ -1,6 +1,6 @@
 //! # fringe-calibration: the physics and statistics behind a Fringe reading
 //!
-//! The `cell`, `invert` and `estimate` stages of DESIGN.md live here as pure
+//! The `cell`, `invert` and `estimate` stages of docs/DESIGN.md live here as pure
 //! functions: the firmware evaluates them in `f32` without a heap; the host
 //! fits them in `f64` behind the `fit` feature. Every model is generic over
 //! [`Real`] (`f32`, `f64`), so device and host run the same code.

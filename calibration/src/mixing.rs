@@ -8,7 +8,7 @@
 //! - Maxwell Garnett (Phil. Trans. R. Soc. A 203:385, 1904): spheres in a host.
 //! - Topp, Davis and Annan, Water Resour. Res. 16(3):574-582 (1980), and its
 //!   numerical inverse (not the paper's separate back-regression, which does
-//!   not close with the forward equation: REFERENCES.md 4).
+//!   not close with the forward equation: docs/REFERENCES.md 4).
 //! - Roth et al. (1990) composite model: the power law with a = 0.5 over
 //!   solid, water and air with porosity n.
 //! - [`ProductMixture`]: solid + water + air from the product's wet bulk
@@ -199,7 +199,7 @@ mod tests {
 
     #[test]
     fn three_phase_table() {
-        // REFERENCES.md 4 [calc]: solid 0.6 (4.7), water theta (80), air 0.4 - theta;
+        // docs/REFERENCES.md 4 [calc]: solid 0.6 (4.7), water theta (80), air 0.4 - theta;
         // power-law family after Birchak et al. 1974 (CRIM) and Looyenga 1965.
         let table = [
             (0.1, 11.1200, 6.2260, 5.2311, 3.9225),
@@ -247,7 +247,7 @@ mod tests {
 
     #[test]
     fn topp_values_and_numerical_inverse() {
-        // Topp, Davis and Annan (1980), REFERENCES.md 4 [calc].
+        // Topp, Davis and Annan (1980), docs/REFERENCES.md 4 [calc].
         for &(ka, th) in &[
             (5.0f64, 0.07979f64),
             (10.0, 0.18830),
@@ -270,7 +270,7 @@ mod tests {
 
     #[test]
     fn roth_composite_and_back() {
-        // REFERENCES.md 4 [calc]: Roth et al. 1990, n 0.4, eps_s 4.7, eps_w 80,
+        // docs/REFERENCES.md 4 [calc]: Roth et al. 1990, n 0.4, eps_s 4.7, eps_w 80,
         // theta 0.25 -> 13.59277.
         let e = roth(0.4f64, 4.7, 80.0, 0.25);
         assert!((e - 13.59277).abs() < 1e-5, "{e}");

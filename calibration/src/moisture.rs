@@ -81,7 +81,7 @@ mod tests {
 
     #[test]
     fn basis_conversions() {
-        // REFERENCES.md 5 [calc]: 14 % wb = 16.2791 % db; 20 % wb = 25.0000 % db.
+        // docs/REFERENCES.md 5 [calc]: 14 % wb = 16.2791 % db; 20 % wb = 25.0000 % db.
         assert!((wet_to_dry(14.0f64) - 16.2791).abs() < 1e-4);
         assert!((wet_to_dry(20.0f64) - 25.0).abs() < 1e-12);
         assert!((dry_to_wet(25.0f64) - 20.0).abs() < 1e-12);

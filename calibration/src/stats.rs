@@ -11,7 +11,7 @@
 //!   number of fitted coefficients including the constant;
 //! - `slope`: the **reference regressed on the predicted** values (the
 //!   direction ISO 12099 uses for a slope correction; from memory, see
-//!   REFERENCES.md section 8); `R^2` the squared correlation of predicted
+//!   docs/REFERENCES.md section 8); `R^2` the squared correlation of predicted
 //!   and reference; `RPD = SD(reference) / SEP`.
 //!
 //! Cross-validation ([`cross_validate`]) takes any fit-and-predict closure;
@@ -541,13 +541,16 @@ mod tests {
     use super::*;
     use crate::fit::{fit_linear, polynomial_design, SeededRng};
 
-    /// REFERENCES.md section 8 worked set (values computed from the
-    /// definitions of the IUPAC vocabulary, Pure Appl. Chem. 88:407, 2016).
+    /// An invented set with values computed once from the definitions of
+    /// the IUPAC vocabulary (Pure Appl. Chem. 88:407, 2016), docs/REFERENCES.md
+    /// section 8 [calc]. A regression test of this implementation, not an
+    /// outside check: that is `prediction_statistics_agree_with_numpy_and_scipy`
+    /// in tests/tests/outside.rs, against numpy and scipy.stats.
     const REF: [f64; 10] = [10.2, 11.5, 12.1, 13.0, 13.8, 14.6, 15.3, 16.9, 18.2, 19.5];
     const PRED: [f64; 10] = [10.5, 11.3, 12.4, 13.2, 13.7, 15.0, 15.2, 17.3, 18.0, 19.9];
 
     #[test]
-    fn worked_set_of_references_section_8() {
+    fn regression_values_of_an_invented_set() {
         let s = PredictionStats::new(&REF, &PRED).unwrap();
         assert_eq!(s.n, 10);
         assert!((s.bias - 0.1400).abs() < 5e-5, "bias {}", s.bias);
@@ -560,8 +563,8 @@ mod tests {
         assert!((s.slope - 0.98634).abs() < 5e-6, "slope {}", s.slope);
     }
 
-    /// The identity RMSEP^2 = bias^2 + SEP^2 (n-1)/n (REFERENCES.md section
-    /// 8) on random sets; seeded, the seed is printed on failure.
+    /// The identity RMSEP^2 = bias^2 + SEP^2 (n-1)/n (docs/REFERENCES.md
+    /// section 8) on random sets; seeded, the seed is printed on failure.
     #[test]
     fn rmsep_bias_sep_identity() {
         for seed in 1..200u64 {

@@ -1,6 +1,6 @@
 //! A synthetic moist granular product from published physics: the one
 //! forward model behind the firmware's simulated front end, the host's
-//! tests and the demo (CONTRACTS.md). Nobody writes a second copy.
+//! tests and the demo. Nobody writes a second copy.
 //!
 //! Given wet-basis moisture M, temperature t and the salt content of the
 //! water (as its conductivity at 25 C, sigma_w25):
@@ -13,7 +13,7 @@
 //!    ([`ProductMixture`]).
 //! 3. Water conductivity sigma_w = sigma_w25 (1 + 0.0192 (t - 25)), the
 //!    linear compensation that reproduces the KCl standards of Wu, Koch and
-//!    Pratt (1991) to about 0.5 % over 15-35 C (REFERENCES.md 3). *Assumption:*
+//!    Pratt (1991) to about 0.5 % over 15-35 C (docs/REFERENCES.md 3). *Assumption:*
 //!    the product's salts follow KCl's temperature coefficient.
 //! 4. Bulk conductivity sigma = sigma_w theta^m + sigma_dry (the form of
 //!    Archie's law, Archie 1942). *Assumptions:* m = 1.5, sigma_dry = 1e-6 S/m.

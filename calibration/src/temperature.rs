@@ -165,7 +165,7 @@ mod tests {
 
     #[test]
     fn pt100_iec60751_table() {
-        // IEC 60751 Pt100 values (REFERENCES.md 6, [calc] matching the published
+        // IEC 60751 Pt100 values (docs/REFERENCES.md 6, [calc] matching the published
         // table to 2 dp): within 1e-4 ohm on the equation, inverse within 1e-4 C.
         let pt = PlatinumRtd::<f64>::pt100();
         for &(t, r) in &[
@@ -212,7 +212,7 @@ mod tests {
 
     #[test]
     fn ntc_beta_and_steinhart_hart() {
-        // REFERENCES.md 6 [calc]: 10 kohm, beta 3950: 0 C 33620.6 ohm, 50 C 3588.2 ohm.
+        // docs/REFERENCES.md 6 [calc]: 10 kohm, beta 3950: 0 C 33620.6 ohm, 50 C 3588.2 ohm.
         let n = NtcBeta {
             r25_ohm: 10_000.0f64,
             beta_k: 3950.0,

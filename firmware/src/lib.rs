@@ -1,6 +1,6 @@
 //! # fringe-firmware: the sensor's core
 //!
-//! The firmware stages of DESIGN.md, top to bottom, each a module:
+//! The firmware stages of docs/DESIGN.md, top to bottom, each a module:
 //!
 //! - [`hal`]: the hardware seam (front end, 4-20 mA DAC, watchdog, clock);
 //! - [`demod`]: Goertzel demodulation of sensor and reference channels,

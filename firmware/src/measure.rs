@@ -90,7 +90,7 @@ impl TempSensor {
     }
 }
 
-/// Defaults: 1 MHz and 20 MHz (CONTRACTS.md), 8 records, reference every 10
+/// Defaults: 1 MHz and 20 MHz (the project's defaults), 8 records, reference every 10
 /// readings within 2 %, SNR at least 10 dB per record (air at the lower
 /// frequency gives about 20 dB on the simulated board).
 pub const DEFAULT_MEASURE: MeasureConfig = MeasureConfig {

@@ -572,7 +572,10 @@ mod tests {
         ] {
             assert!(p.exists(), "{} written", p.display());
         }
-        // Checked again here, independently of the demo's own printout.
+        // Checked again here with the same verifier the demo uses (a
+        // consistency check of what the demo printed; the independent reader
+        // of the bundle is `demo_bundle_verifies_with_an_independent_reader`
+        // in tests/tests/outside.rs).
         let store = Store::open_read_only(&o.db).expect("db");
         let r = audit::verify(Some(&o.bundle), Some(&store)).expect("verify");
         assert!(r.ok(), "{:?}", r.problems);

@@ -1,6 +1,6 @@
 //! # fringe-host: the `fringe` command-line tool
 //!
-//! Library half of the host tool (DESIGN.md stages `link`, `store`, `watch`,
+//! Library half of the host tool (docs/DESIGN.md stages `link`, `store`, `watch`,
 //! `audit`); `main.rs` only parses, runs and maps the result to an exit code.
 //!
 //! - [`cli`]: the command line (clap derive, no I/O);

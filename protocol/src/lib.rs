@@ -1,7 +1,7 @@
 //! # fringe-protocol: the wire between a Fringe sensor and its host
 //!
 //! This crate is the `report` stage of the firmware and the `link` stage of
-//! the host (see DESIGN.md). It holds, with no heap and no panics:
+//! the host (see docs/DESIGN.md). It holds, with no heap and no panics:
 //!
 //! - [`version`]: the protocol version carried in every frame header, and the
 //!   handshake rule (a major mismatch is refused on both sides);

@@ -1,7 +1,7 @@
 //! Booting the `qemu-mps2` board under QEMU and talking to it over its
 //! UART (a pseudo-terminal), for the end-to-end tests and `cargo xtask`.
 //!
-//! QEMU facts this relies on (TOOLCHAIN.md): `-serial pty` prints the pty's
+//! QEMU facts this relies on (firmware/boards/qemu-mps2/README.md): `-serial pty` prints the pty's
 //! path; QEMU discards what the firmware sends until a client has the pty
 //! open and notices a new client only about once a second, so the host
 //! speaks first and repeats its handshake until answered;
@@ -339,6 +339,16 @@ pub fn sections(elf: &Path) -> Result<Vec<(String, u64)>> {
 /// As [`sections`].
 pub fn footprint(elf: &Path) -> Result<Footprint> {
     let s = sections(elf)?;
+    // A firmware without a vector table or code is not a firmware: refuse
+    // rather than report a flash size of 0 that every budget would pass.
+    for needed in [".vector_table", ".text"] {
+        if !s.iter().any(|(n, v)| n == needed && *v > 0) {
+            return Err(format!(
+                "{} has no {needed} section (or an empty one): not a board image",
+                elf.display()
+            ));
+        }
+    }
     let sum = |names: &[&str]| -> u64 {
         s.iter()
             .filter(|(n, _)| names.contains(&n.as_str()))

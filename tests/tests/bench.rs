@@ -6,9 +6,12 @@
 //! live on the calibrated device.
 //!
 //! The simulator's bench fixture file stands for the liquid in the cell
-//! (`Sim::set_bench`); the liquids' permittivities come from the
-//! calibration crate's reference-liquid table, and the check is the
-//! command's own verification against that table, as at a real bench.
+//! (`Sim::set_bench`). These are plumbing tests of the commands (prompts,
+//! writes, records, refusals), not outside checks: the simulated liquids'
+//! permittivities and the command's verification both come from the
+//! calibration crate's one reference-liquid table, so agreement between
+//! them is built in. The table itself is checked against the published
+//! values it was not built from in `calibration/src/water.rs`.
 
 use std::path::{Path, PathBuf};
 use std::time::Duration;

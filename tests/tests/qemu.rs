@@ -293,3 +293,13 @@ fn firmware_under_qemu_end_to_end() {
         chain.problems
     );
 }
+
+/// The footprint refuses an image that is not a board firmware (here the
+/// test's own host executable, which has no `.vector_table`), so a broken
+/// build can never pass the flash budget with a size of 0.
+#[test]
+fn footprint_refuses_an_image_without_a_vector_table() {
+    let me = std::env::current_exe().expect("test executable");
+    let err = footprint(&me).expect_err("a host executable is not a board image");
+    assert!(err.contains(".vector_table"), "{err}");
+}

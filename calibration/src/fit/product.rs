@@ -1339,7 +1339,7 @@ pub struct SynthSpec {
 
 impl Default for SynthSpec {
     /// 60 samples, 8-22 % moisture, 5-40 C, salt 0.02-0.3 S/m, noise 0.02,
-    /// the default frequencies 1 and 20 MHz (CONTRACTS.md).
+    /// the default frequencies 1 and 20 MHz.
     fn default() -> Self {
         SynthSpec {
             n: 60,

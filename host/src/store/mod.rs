@@ -1,6 +1,6 @@
 //! The durable log: SQLite (bundled), WAL, append-only, one hash chain.
 //!
-//! This is the host's `store` stage (DESIGN.md). Schema, canonical encoding
+//! This is the host's `store` stage (docs/DESIGN.md). Schema, canonical encoding
 //! and the rules are written down in `host/SCHEMA.md`; in short:
 //!
 //! - tables `devices`, `readings`, `events`, `calibrations`, `lab_samples`,

@@ -189,7 +189,7 @@ enum Irq {
     Uart0Rx = uart::UART0_RX_IRQ as isize,
 }
 
-// SAFETY: the numbers are the board's interrupt lines (TOOLCHAIN.md).
+// SAFETY: the numbers are the board's interrupt lines (README.md of this crate).
 unsafe impl cortex_m::interrupt::InterruptNumber for Irq {
     fn number(self) -> u16 {
         self as u16

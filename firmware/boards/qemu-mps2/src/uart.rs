@@ -2,7 +2,7 @@
 //! interrupt-filled receive ring.
 //!
 //! Registers (ARM CMSDK technical reference; as QEMU's `cmsdk-apb-uart`
-//! models them, see TOOLCHAIN.md):
+//! models them, see the board's README.md):
 //!
 //! ```text
 //! base + 0x00 DATA        byte in/out
