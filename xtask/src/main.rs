@@ -68,7 +68,7 @@ fn ensure_target() -> Result<()> {
 const OPTIONAL_PARTS: [(&str, &str); 3] = [
     (
         "python",
-        "outside checks against Python reference libraries (tests/tests/outside.rs)",
+        "outside checks against Python reference libraries and plant clients (tests/tests/outside.rs, plant.rs)",
     ),
     ("fuzz", "fuzz crate build and smoke run (protocol/fuzz)"),
     (
@@ -276,7 +276,12 @@ fn test(args: &[String]) -> Result<()> {
         "warnings",
     ]))?;
     run(cargo().args(["test", "--workspace"]))?;
-    for krate in ["fringe-protocol", "fringe-calibration", "fringe-firmware"] {
+    for krate in [
+        "fringe-protocol",
+        "fringe-registers",
+        "fringe-calibration",
+        "fringe-firmware",
+    ] {
         run(cargo().args([
             "build",
             "-p",
@@ -305,6 +310,8 @@ fn test(args: &[String]) -> Result<()> {
                 "fringe-tests",
                 "--test",
                 "outside",
+                "--test",
+                "plant",
                 "--",
                 "--ignored",
             ])

@@ -1,0 +1,15 @@
+//! Fringe's plant outputs, for many devices in one process: what the
+//! gateway serves to a plant's control and information systems.
+//!
+//! - [`live`]: the latest reading of every device, shared between the line
+//!   sessions that fill it and the servers that read it.
+//! - [`modbus`]: a read-only Modbus TCP server of [`live`] with the register
+//!   map of `fringe-registers` (one unit id per device).
+//!
+//! Time comes in as [`std::time::Instant`] arguments where ages matter, so
+//! tests drive it; nothing here prints.
+#![forbid(unsafe_code)]
+#![warn(missing_docs)]
+
+pub mod live;
+pub mod modbus;
