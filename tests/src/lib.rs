@@ -13,6 +13,7 @@
 #![warn(missing_docs)]
 
 pub mod qemu;
+pub mod servers;
 
 use std::collections::BTreeMap;
 use std::io::{BufRead, BufReader};

@@ -91,3 +91,282 @@ fn pymodbus_reads_the_register_map_of_every_unit() {
     assert_eq!(v["holding_exception"].as_u64(), Some(1), "{v}");
     server.stop();
 }
+
+/// A paho-mqtt subscriber in Python, its JSON lines collected.
+struct Collector {
+    child: std::process::Child,
+    lines: Arc<std::sync::Mutex<Vec<Value>>>,
+}
+
+impl Collector {
+    fn start(port: u16, topic: &str) -> Self {
+        use std::io::BufRead;
+        let mut child = Command::new(python())
+            .arg(workspace_root().join("tests/python/mqtt_collect.py"))
+            .args(["127.0.0.1", &port.to_string(), topic])
+            .stdout(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::inherit())
+            .spawn()
+            .expect("start mqtt_collect.py");
+        let out = child.stdout.take().expect("stdout");
+        let lines = Arc::new(std::sync::Mutex::new(Vec::new()));
+        let l = Arc::clone(&lines);
+        std::thread::spawn(move || {
+            for line in std::io::BufReader::new(out).lines().map_while(Result::ok) {
+                if let Ok(v) = serde_json::from_str::<Value>(&line) {
+                    l.lock().unwrap().push(v);
+                }
+            }
+        });
+        let c = Self { child, lines };
+        c.wait("the subscription", |v| {
+            v.iter().any(|x| x["event"] == "subscribed")
+        });
+        c
+    }
+
+    fn wait(&self, what: &str, cond: impl Fn(&[Value]) -> bool) {
+        fringe_tests::poll_until(
+            fringe_tests::DEADLINE,
+            || {
+                format!(
+                    "waiting for {what}; received: {:?}",
+                    self.lines.lock().unwrap().len()
+                )
+            },
+            || {
+                let snapshot = self.lines.lock().unwrap().clone();
+                cond(&snapshot)
+            },
+        );
+    }
+
+    fn messages(&self) -> Vec<Value> {
+        self.lines
+            .lock()
+            .unwrap()
+            .iter()
+            .filter(|v| v.get("topic").is_some())
+            .cloned()
+            .collect()
+    }
+}
+
+impl Drop for Collector {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+fn ddata_counters(msgs: &[Value], device: &str) -> Vec<u64> {
+    msgs.iter()
+        .filter(|m| m["topic"] == format!("spBv1.0/plant-a/DDATA/gw-1/{device}"))
+        .filter_map(|m| m["metrics"]["counter"]["value"].as_u64())
+        .collect()
+}
+
+/// The gateway's publisher against a real mosquitto (Debian package) and a
+/// paho-mqtt subscriber decoding with the Eclipse Tahu schema: births,
+/// every reading in order, the broker stopped for a while and restarted
+/// (the readings of that time buffered on disk, then delivered marked
+/// historical): nothing lost, nothing twice; NDEATH with the birth's bdSeq
+/// at a clean stop. (A message in flight when the broker goes away is sent
+/// again, as QoS 1 allows: `a_broker_lost_mid_stream_loses_nothing_and_repeats_only_what_was_in_flight`.)
+#[test]
+#[ignore = "needs FRINGE_PYTHON (the venv) and mosquitto: `cargo xtask test` runs it"]
+fn sparkplug_births_readings_in_order_and_nothing_lost_across_a_broker_restart() {
+    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_tests::servers::Mosquitto;
+
+    let mut broker = Mosquitto::start();
+    let collector = Collector::start(broker.port, "spBv1.0/#");
+    let dir = tempfile::tempdir().unwrap();
+    let devices = ["PLT-A-0001", "PLT-A-0002"];
+    let config = MqttConfig {
+        host: "127.0.0.1".into(),
+        port: broker.port,
+        client_id: "fringe-gw-1".into(),
+        credentials: None,
+        tls_ca_pem: None,
+        format: Format::Sparkplug {
+            group: "plant-a".into(),
+            edge_node: "gw-1".into(),
+        },
+        keep_alive: Duration::from_secs(5),
+    };
+    let publisher = Publisher::start(
+        config,
+        &dir.path().join("outbox.db"),
+        devices.iter().map(|s| s.to_string()).collect(),
+    )
+    .expect("publisher");
+    let send = |from: u32, to: u32| {
+        for n in from..=to {
+            for (i, d) in devices.iter().enumerate() {
+                let m = 10.0 + i as f32 + n as f32 / 100.0;
+                publisher
+                    .reading(d, &reading(1, n, Some(m), Flags::empty()))
+                    .unwrap();
+            }
+        }
+    };
+    send(1, 40);
+    collector.wait("the first 40 readings of both devices", |m| {
+        devices.iter().all(|d| ddata_counters(m, d).len() >= 40)
+    });
+    // The broker goes away once it has acknowledged what it received (a
+    // message in flight at that moment is sent again after the restart:
+    // QoS 1 is at least once; see the duplicate test below); readings go on
+    // and are buffered on disk.
+    fringe_tests::poll_until(
+        fringe_tests::DEADLINE,
+        || format!("acknowledgements: {:?}", publisher.queued()),
+        || publisher.queued().is_ok_and(|q| q == 0),
+    );
+    broker.stop();
+    send(41, 80);
+    fringe_tests::poll_until(
+        fringe_tests::DEADLINE,
+        || format!("publisher still connected: {:?}", publisher.stats()),
+        || !publisher.stats().connected,
+    );
+    assert!(
+        publisher.queued().unwrap() >= 2 * 40 - 2 * 32,
+        "{:?}",
+        publisher.queued()
+    );
+    broker.restart();
+    send(81, 100);
+    collector.wait("all 100 readings of both devices", |m| {
+        devices.iter().all(|d| ddata_counters(m, d).len() >= 100)
+    });
+    publisher.stop();
+    collector.wait("the NDEATH", |m| {
+        m.iter()
+            .any(|m| m["topic"] == "spBv1.0/plant-a/NDEATH/gw-1")
+    });
+
+    let msgs = collector.messages();
+    for d in devices {
+        let counters = ddata_counters(&msgs, d);
+        let want: Vec<u64> = (1..=100).collect();
+        assert_eq!(counters, want, "{d}: every reading once, in order");
+        assert!(
+            msgs.iter()
+                .any(|m| m["topic"] == format!("spBv1.0/plant-a/DBIRTH/gw-1/{d}")),
+            "{d}: DBIRTH"
+        );
+    }
+    // The values decode as sent.
+    let first = msgs
+        .iter()
+        .find(|m| m["topic"] == "spBv1.0/plant-a/DDATA/gw-1/PLT-A-0002")
+        .unwrap();
+    assert_eq!(
+        first["metrics"]["moisture_pct"]["value"].as_f64(),
+        Some(f64::from(11.01f32))
+    );
+    assert_eq!(first["metrics"]["moisture_pct"]["datatype"], 9, "Float");
+    // Readings buffered while the broker was down arrive marked historical.
+    let late = msgs.iter().find(|m| {
+        m["topic"] == "spBv1.0/plant-a/DDATA/gw-1/PLT-A-0001"
+            && m["metrics"]["counter"]["value"] == 60
+    });
+    assert_eq!(late.unwrap()["metrics"]["counter"]["historical"], true);
+    // Sequence numbers: NBIRTH 0, then +1 per message within a session.
+    let births: Vec<&Value> = msgs
+        .iter()
+        .filter(|m| m["topic"] == "spBv1.0/plant-a/NBIRTH/gw-1")
+        .collect();
+    assert!(
+        births.len() >= 2,
+        "one NBIRTH per session: {}",
+        births.len()
+    );
+    let mut last: Option<u64> = None;
+    for m in msgs.iter().filter(|m| m["seq"].is_u64()) {
+        let seq = m["seq"].as_u64().unwrap();
+        if m["topic"] == "spBv1.0/plant-a/NBIRTH/gw-1" {
+            assert_eq!(seq, 0);
+        } else if let Some(l) = last {
+            assert_eq!(seq, (l + 1) % 256, "sequence gap at {m}");
+        }
+        last = Some(seq);
+    }
+    // The NDEATH carries the bdSeq of the last NBIRTH.
+    let bd = |m: &Value| m["metrics"]["bdSeq"]["value"].as_u64();
+    let death = msgs
+        .iter()
+        .rev()
+        .find(|m| m["topic"] == "spBv1.0/plant-a/NDEATH/gw-1")
+        .unwrap();
+    assert_eq!(bd(death), bd(births.last().unwrap()));
+}
+
+/// The broker stopped while messages are in flight: nothing is lost, and
+/// what arrives twice is only what was sent but not acknowledged when the
+/// broker went away (at most the publisher's window of 32), each repeat the
+/// same reading (same counter) right after the outage. This is MQTT's QoS 1,
+/// "at least once"; a consumer that must not count a reading twice keys on
+/// the reading's boot and counter.
+#[test]
+#[ignore = "needs FRINGE_PYTHON (the venv) and mosquitto: `cargo xtask test` runs it"]
+fn a_broker_lost_mid_stream_loses_nothing_and_repeats_only_what_was_in_flight() {
+    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher, WINDOW};
+    use fringe_tests::servers::Mosquitto;
+
+    let mut broker = Mosquitto::start();
+    let collector = Collector::start(broker.port, "spBv1.0/#");
+    let dir = tempfile::tempdir().unwrap();
+    let device = "PLT-A-0003";
+    let publisher = Publisher::start(
+        MqttConfig {
+            host: "127.0.0.1".into(),
+            port: broker.port,
+            client_id: "fringe-gw-2".into(),
+            credentials: None,
+            tls_ca_pem: None,
+            format: Format::Sparkplug {
+                group: "plant-a".into(),
+                edge_node: "gw-1".into(),
+            },
+            keep_alive: Duration::from_secs(5),
+        },
+        &dir.path().join("outbox.db"),
+        vec![device.to_string()],
+    )
+    .expect("publisher");
+    for n in 1..=300u32 {
+        publisher
+            .reading(device, &reading(1, n, Some(12.0), Flags::empty()))
+            .unwrap();
+        if n == 150 {
+            // Mid-stream: whatever is in flight now is cut off.
+            broker.stop();
+            broker.restart();
+        }
+    }
+    collector.wait("all 300 readings", |m| {
+        let mut c = ddata_counters(m, device);
+        c.sort_unstable();
+        c.dedup();
+        c.len() >= 300
+    });
+    let counters = ddata_counters(&collector.messages(), device);
+    let mut unique = counters.clone();
+    unique.sort_unstable();
+    unique.dedup();
+    assert_eq!(unique, (1..=300).collect::<Vec<u64>>(), "nothing lost");
+    let repeats = counters.len() - unique.len();
+    println!("{repeats} readings delivered twice after the broker restart");
+    assert!(repeats <= WINDOW, "{repeats} repeats, more than the window");
+    // Each repeat goes back only as far as the window: the order is the
+    // sending order with one step back after the outage.
+    let backs = counters.windows(2).filter(|w| w[1] <= w[0]).count();
+    assert!(
+        backs <= 1,
+        "the order went back {backs} times: {counters:?}"
+    );
+    publisher.stop();
+}

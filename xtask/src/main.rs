@@ -68,7 +68,7 @@ fn ensure_target() -> Result<()> {
 const OPTIONAL_PARTS: [(&str, &str); 3] = [
     (
         "python",
-        "outside checks against Python reference libraries and plant clients (tests/tests/outside.rs, plant.rs)",
+        "outside checks against Python reference libraries, and plant clients against real servers (tests/tests/outside.rs, plant.rs; mosquitto)",
     ),
     ("fuzz", "fuzz crate build and smoke run (protocol/fuzz)"),
     (
@@ -144,17 +144,22 @@ fn on_path(tool: &str) -> bool {
 fn apt_install(packages: &[(&str, &str)]) -> Result<()> {
     let missing: Vec<&str> = packages
         .iter()
-        .filter(|(cmd, _)| !on_path(cmd))
+        .filter(|(cmd, _)| !on_path(cmd) && !Path::new("/usr/sbin").join(cmd).exists())
         .map(|(_, pkg)| *pkg)
         .collect();
-    if missing.is_empty() {
+    apt_get(&missing)
+}
+
+/// `apt-get install` of `packages` as root; otherwise an error naming them.
+fn apt_get(packages: &[&str]) -> Result<()> {
+    if packages.is_empty() {
         return Ok(());
     }
     if !is_root() {
         bail!(
             "missing Debian packages {} and not root: run `sudo apt-get install -y {}`",
-            missing.join(", "),
-            missing.join(" ")
+            packages.join(", "),
+            packages.join(" ")
         );
     }
     run(Command::new("apt-get")
@@ -162,7 +167,7 @@ fn apt_install(packages: &[(&str, &str)]) -> Result<()> {
         .env("DEBIAN_FRONTEND", "noninteractive"))?;
     run(Command::new("apt-get")
         .args(["install", "-y", "-qq", "--no-install-recommends"])
-        .args(&missing)
+        .args(packages)
         .env("DEBIAN_FRONTEND", "noninteractive"))
 }
 
@@ -190,7 +195,7 @@ fn ensure_venv() -> Result<()> {
         apt_install(&[("python3", "python3")])?;
     }
     if !succeeds(Command::new("python3").args(["-c", "import venv, ensurepip"])) {
-        apt_install(&[("false", "python3-venv")])?;
+        apt_get(&["python3-venv"])?;
     }
     run(Command::new("python3")
         .arg("-m")
@@ -302,7 +307,12 @@ fn test(args: &[String]) -> Result<()> {
         "--features",
         "sim",
     ]))?;
-    optional(&mut ledger, &skip, "python", ensure_venv, || {
+    let plant_servers = || -> Result<()> {
+        ensure_venv()?;
+        // Real servers the plant tests start on localhost.
+        apt_install(&[("mosquitto", "mosquitto")])
+    };
+    optional(&mut ledger, &skip, "python", plant_servers, || {
         run(cargo()
             .args([
                 "test",

@@ -5,6 +5,9 @@
 //!   sessions that fill it and the servers that read it.
 //! - [`modbus`]: a read-only Modbus TCP server of [`live`] with the register
 //!   map of `fringe-registers` (one unit id per device).
+//! - [`sparkplug`], [`outbox`], [`mqtt`]: readings and alarms to the plant's
+//!   MQTT broker as Sparkplug B (or plain JSON), QoS 1, with a
+//!   store-and-forward buffer on disk.
 //!
 //! Time comes in as [`std::time::Instant`] arguments where ages matter, so
 //! tests drive it; nothing here prints.
@@ -13,3 +16,6 @@
 
 pub mod live;
 pub mod modbus;
+pub mod mqtt;
+pub mod outbox;
+pub mod sparkplug;

@@ -1,0 +1,560 @@
+//! The MQTT publisher: every reading and alarm of the gateway's devices to
+//! the plant's broker, as Sparkplug B (the default) or plain JSON, QoS 1,
+//! through the store-and-forward [`Outbox`].
+//!
+//! One worker thread runs broker sessions one after another. A session
+//! connects (credentials and TLS from the site file; the will is the
+//! NDEATH of a new `bdSeq`), publishes NBIRTH and a DBIRTH per device, then
+//! sends the buffer in order with up to [`WINDOW`] messages awaiting their
+//! acknowledgement, deleting each row at its PUBACK. When the broker goes
+//! away the session ends; rows not acknowledged stay buffered, and the next
+//! session (after a back-off of 0.5 s doubling to 10 s) sends them first,
+//! marked historical when they were buffered before it began. A Sparkplug
+//! rebirth request (NCMD `Node Control/Rebirth`) is answered with births.
+
+use std::collections::{BTreeSet, HashMap, VecDeque};
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+
+use fringe_protocol::Reading;
+use rumqttc::{Client, Event, Incoming, LastWill, MqttOptions, Outgoing, QoS, RecvTimeoutError};
+
+use crate::outbox::{Item, Outbox, OutboxError, Row};
+use crate::sparkplug::{self, Payload};
+
+/// Messages in flight (sent, not yet acknowledged) per session.
+pub const WINDOW: usize = 32;
+
+/// How the gateway speaks MQTT.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Format {
+    /// Sparkplug B: `spBv1.0/{group}/.../{edge node}/{device}`.
+    Sparkplug {
+        /// Group id.
+        group: String,
+        /// Edge node id (this gateway).
+        edge_node: String,
+    },
+    /// Plain JSON on `{prefix}/{device}/reading` and `{prefix}/{device}/alarm`.
+    Json {
+        /// Topic prefix.
+        prefix: String,
+    },
+}
+
+/// Where and how to publish.
+#[derive(Debug, Clone)]
+pub struct MqttConfig {
+    /// Broker host.
+    pub host: String,
+    /// Broker port (1883 plain, 8883 TLS by convention).
+    pub port: u16,
+    /// Client id (unique per gateway).
+    pub client_id: String,
+    /// User name and password, if the broker wants them.
+    pub credentials: Option<(String, String)>,
+    /// PEM of the CA that signed the broker's certificate: TLS when set.
+    pub tls_ca_pem: Option<Vec<u8>>,
+    /// Topic layout and payloads.
+    pub format: Format,
+    /// MQTT keep-alive.
+    pub keep_alive: Duration,
+}
+
+/// What the publisher has done, for status lines.
+#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize)]
+pub struct MqttStats {
+    /// Connected to the broker now.
+    pub connected: bool,
+    /// Sessions started.
+    pub sessions: u64,
+    /// Messages acknowledged by the broker.
+    pub acknowledged: u64,
+    /// The last connection error, in words.
+    pub last_error: Option<String>,
+}
+
+/// The running publisher.
+#[derive(Debug)]
+pub struct Publisher {
+    outbox: Mutex<Outbox>,
+    stop: Arc<AtomicBool>,
+    stats: Arc<Mutex<MqttStats>>,
+    worker: Option<std::thread::JoinHandle<()>>,
+}
+
+fn now_ms() -> u64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map_or(0, |d| d.as_millis() as u64)
+}
+
+impl Publisher {
+    /// Starts publishing for `devices` (serials, born in every session),
+    /// buffering in the file `outbox_path`.
+    ///
+    /// # Errors
+    /// When the buffer file cannot be opened.
+    pub fn start(
+        config: MqttConfig,
+        outbox_path: &Path,
+        devices: Vec<String>,
+    ) -> Result<Self, OutboxError> {
+        let outbox = Outbox::open(outbox_path)?;
+        let worker_box = Outbox::open(outbox_path)?;
+        let stop = Arc::new(AtomicBool::new(false));
+        let stats = Arc::new(Mutex::new(MqttStats::default()));
+        let (s, st) = (Arc::clone(&stop), Arc::clone(&stats));
+        let worker = std::thread::Builder::new()
+            .name("mqtt".into())
+            .spawn(move || {
+                Worker {
+                    config,
+                    outbox: worker_box,
+                    devices: devices.into_iter().collect(),
+                    stop: s,
+                    stats: st,
+                }
+                .run();
+            })
+            .ok();
+        Ok(Self {
+            outbox: Mutex::new(outbox),
+            stop,
+            stats,
+            worker,
+        })
+    }
+
+    fn push(&self, item: &Item) -> Result<(), OutboxError> {
+        let o = self.outbox.lock().unwrap_or_else(|e| e.into_inner());
+        o.push(item, now_ms()).map(|_| ())
+    }
+
+    /// Buffers a reading of `device` for publishing.
+    ///
+    /// # Errors
+    /// When the buffer cannot be written (the reading is then only in the store).
+    pub fn reading(&self, device: &str, r: &Reading) -> Result<(), OutboxError> {
+        let json = serde_json::to_string(r).unwrap_or_default();
+        self.push(&Item::Reading {
+            device: device.to_string(),
+            json,
+        })
+    }
+
+    /// Buffers a drift alarm of `device`.
+    ///
+    /// # Errors
+    /// As [`Publisher::reading`].
+    pub fn alarm(&self, device: &str, text: &str, time_ms: u64) -> Result<(), OutboxError> {
+        self.push(&Item::Alarm {
+            device: device.to_string(),
+            text: text.to_string(),
+            time_ms,
+        })
+    }
+
+    /// Buffers a DDEATH: the link to `device` was lost.
+    ///
+    /// # Errors
+    /// As [`Publisher::reading`].
+    pub fn device_lost(&self, device: &str) -> Result<(), OutboxError> {
+        self.push(&Item::DeviceLost {
+            device: device.to_string(),
+        })
+    }
+
+    /// Messages waiting for the broker.
+    ///
+    /// # Errors
+    /// When the buffer cannot be read.
+    pub fn queued(&self) -> Result<u64, OutboxError> {
+        self.outbox.lock().unwrap_or_else(|e| e.into_inner()).len()
+    }
+
+    /// What it has done so far.
+    pub fn stats(&self) -> MqttStats {
+        self.stats.lock().unwrap_or_else(|e| e.into_inner()).clone()
+    }
+
+    /// Stops: a Sparkplug edge node publishes its NDEATH and disconnects;
+    /// what was not acknowledged stays buffered for the next start.
+    pub fn stop(mut self) {
+        self.shutdown();
+    }
+
+    fn shutdown(&mut self) {
+        self.stop.store(true, Ordering::Relaxed);
+        if let Some(w) = self.worker.take() {
+            let _ = w.join();
+        }
+    }
+}
+
+impl Drop for Publisher {
+    fn drop(&mut self) {
+        self.shutdown();
+    }
+}
+
+struct Worker {
+    config: MqttConfig,
+    outbox: Outbox,
+    devices: BTreeSet<String>,
+    stop: Arc<AtomicBool>,
+    stats: Arc<Mutex<MqttStats>>,
+}
+
+/// Why a session ended.
+enum End {
+    Stopped,
+    Lost(String),
+}
+
+impl Worker {
+    fn run(mut self) {
+        let mut backoff = Duration::from_millis(500);
+        while !self.stop.load(Ordering::Relaxed) {
+            let t0 = Instant::now();
+            let end = self.session();
+            self.stat(|s| s.connected = false);
+            match end {
+                End::Stopped => break,
+                End::Lost(why) => {
+                    self.stat(|s| s.last_error = Some(why));
+                    if t0.elapsed() > Duration::from_secs(30) {
+                        backoff = Duration::from_millis(500);
+                    }
+                    let until = Instant::now() + backoff;
+                    while Instant::now() < until && !self.stop.load(Ordering::Relaxed) {
+                        std::thread::sleep(Duration::from_millis(50));
+                    }
+                    backoff = (backoff * 2).min(Duration::from_secs(10));
+                }
+            }
+        }
+    }
+
+    fn stat(&self, f: impl FnOnce(&mut MqttStats)) {
+        f(&mut self.stats.lock().unwrap_or_else(|e| e.into_inner()));
+    }
+
+    fn options(&self, bd_seq: u64) -> MqttOptions {
+        let c = &self.config;
+        let mut o = MqttOptions::new(c.client_id.clone(), c.host.clone(), c.port);
+        o.set_keep_alive(c.keep_alive);
+        o.set_clean_session(true);
+        o.set_max_packet_size(1 << 20, 1 << 20);
+        if let Format::Sparkplug { group, edge_node } = &c.format {
+            let death = sparkplug::node_death(bd_seq, now_ms());
+            o.set_last_will(LastWill::new(
+                sparkplug::topic(group, "NDEATH", edge_node, None),
+                death.to_bytes(),
+                QoS::AtLeastOnce,
+                false,
+            ));
+        }
+        if let Some((u, p)) = &c.credentials {
+            o.set_credentials(u.clone(), p.clone());
+        }
+        if let Some(ca) = &c.tls_ca_pem {
+            let _ = rustls::crypto::ring::default_provider().install_default();
+            o.set_transport(rumqttc::Transport::tls(ca.clone(), None, None));
+        }
+        o
+    }
+
+    fn session(&mut self) -> End {
+        let bd_seq = match self.outbox.next_bd_seq() {
+            Ok(b) => b,
+            Err(e) => return End::Lost(e.to_string()),
+        };
+        let started_ms = now_ms();
+        let (client, mut conn) = Client::new(self.options(bd_seq), 2 * WINDOW);
+        // Wait for the broker's CONNACK.
+        let deadline = Instant::now() + Duration::from_secs(10);
+        loop {
+            if self.stop.load(Ordering::Relaxed) {
+                return End::Stopped;
+            }
+            if Instant::now() > deadline {
+                return End::Lost("no CONNACK within 10 s".into());
+            }
+            match conn.recv_timeout(Duration::from_millis(100)) {
+                Ok(Ok(Event::Incoming(Incoming::ConnAck(_)))) => break,
+                Ok(Ok(_)) | Err(RecvTimeoutError::Timeout) => {}
+                Ok(Err(e)) => {
+                    return End::Lost(format!(
+                        "connect to {}:{}: {e}",
+                        self.config.host, self.config.port
+                    ))
+                }
+                Err(RecvTimeoutError::Disconnected) => return End::Lost("client closed".into()),
+            }
+        }
+        self.stat(|s| {
+            s.connected = true;
+            s.sessions += 1;
+            s.last_error = None;
+        });
+        let mut s = Session {
+            client,
+            seq: 0,
+            born: BTreeSet::new(),
+            awaiting_pkid: VecDeque::new(),
+            in_flight: HashMap::new(),
+            last_sent: 0,
+            started_ms,
+        };
+        if let Format::Sparkplug { group, edge_node } = &self.config.format {
+            let ncmd = sparkplug::topic(group, "NCMD", edge_node, None);
+            let _ = s.client.subscribe(ncmd, QoS::AtLeastOnce);
+        }
+        if let Err(e) = self.births(&mut s, bd_seq) {
+            return End::Lost(e);
+        }
+        loop {
+            if self.stop.load(Ordering::Relaxed) {
+                self.goodbye(&mut s, &mut conn, bd_seq);
+                return End::Stopped;
+            }
+            if s.in_flight.len() + s.awaiting_pkid.len() < WINDOW {
+                let room = WINDOW - s.in_flight.len() - s.awaiting_pkid.len();
+                match self.outbox.next(s.last_sent, room) {
+                    Ok(rows) => {
+                        for row in rows {
+                            if let Err(e) = self.send_row(&mut s, &row) {
+                                return End::Lost(e);
+                            }
+                        }
+                    }
+                    Err(e) => return End::Lost(e.to_string()),
+                }
+            }
+            match conn.recv_timeout(Duration::from_millis(20)) {
+                Ok(Ok(Event::Outgoing(Outgoing::Publish(pkid)))) => {
+                    if let Some(row) = s.awaiting_pkid.pop_front() {
+                        s.in_flight.insert(pkid, row);
+                    }
+                }
+                Ok(Ok(Event::Incoming(Incoming::PubAck(ack)))) => {
+                    if let Some(row) = s.in_flight.remove(&ack.pkid) {
+                        if let Some(id) = row {
+                            if let Err(e) = self.outbox.done(id) {
+                                return End::Lost(e.to_string());
+                            }
+                        }
+                        self.stat(|st| st.acknowledged += 1);
+                    }
+                }
+                Ok(Ok(Event::Incoming(Incoming::Publish(p)))) => {
+                    if self.is_rebirth(&p.payload) {
+                        if let Err(e) = self.births(&mut s, bd_seq) {
+                            return End::Lost(e);
+                        }
+                    }
+                }
+                Ok(Ok(_)) | Err(RecvTimeoutError::Timeout) => {}
+                Ok(Err(e)) => return End::Lost(format!("broker connection: {e}")),
+                Err(RecvTimeoutError::Disconnected) => return End::Lost("client closed".into()),
+            }
+        }
+    }
+
+    fn is_rebirth(&self, payload: &[u8]) -> bool {
+        <Payload as prost::Message>::decode(payload).is_ok_and(|p| {
+            p.metrics.iter().any(|m| {
+                m.name.as_deref() == Some(sparkplug::metric::REBIRTH)
+                    && m.value == Some(sparkplug::Value::BooleanValue(true))
+            })
+        })
+    }
+
+    /// NBIRTH (sequence 0) and a DBIRTH for every known device.
+    fn births(&mut self, s: &mut Session, bd_seq: u64) -> Result<(), String> {
+        let Format::Sparkplug { group, edge_node } = self.config.format.clone() else {
+            return Ok(());
+        };
+        s.seq = 0;
+        s.born.clear();
+        let t = now_ms();
+        s.publish(
+            sparkplug::topic(&group, "NBIRTH", &edge_node, None),
+            sparkplug::node_birth(bd_seq, t).to_bytes(),
+            None,
+        )?;
+        for d in self.devices.clone() {
+            self.device_birth(s, &group, &edge_node, &d)?;
+        }
+        Ok(())
+    }
+
+    fn device_birth(
+        &mut self,
+        s: &mut Session,
+        group: &str,
+        node: &str,
+        device: &str,
+    ) -> Result<(), String> {
+        let seq = s.next_seq();
+        let p = sparkplug::empty_device_birth(seq, now_ms());
+        s.publish(
+            sparkplug::topic(group, "DBIRTH", node, Some(device)),
+            p.to_bytes(),
+            None,
+        )?;
+        s.born.insert(device.to_string());
+        self.devices.insert(device.to_string());
+        Ok(())
+    }
+
+    fn send_row(&mut self, s: &mut Session, row: &Row) -> Result<(), String> {
+        s.last_sent = row.id;
+        let historical = row.queued_ms < s.started_ms;
+        match self.config.format.clone() {
+            Format::Json { prefix } => {
+                let (topic, body) = match &row.item {
+                    Item::Reading { device, json } => {
+                        (format!("{prefix}/{device}/reading"), json.clone())
+                    }
+                    Item::Alarm {
+                        device,
+                        text,
+                        time_ms,
+                    } => (
+                        format!("{prefix}/{device}/alarm"),
+                        serde_json::json!({"time_ms": time_ms, "alarm": text}).to_string(),
+                    ),
+                    Item::DeviceLost { device } => (
+                        format!("{prefix}/{device}/status"),
+                        serde_json::json!({"connected": false}).to_string(),
+                    ),
+                };
+                s.publish(topic, body.into_bytes(), Some(row.id))
+            }
+            Format::Sparkplug { group, edge_node } => {
+                let device = match &row.item {
+                    Item::Reading { device, .. }
+                    | Item::Alarm { device, .. }
+                    | Item::DeviceLost { device } => device.clone(),
+                };
+                if let Item::DeviceLost { .. } = row.item {
+                    if !s.born.remove(&device) {
+                        // Nothing to declare dead in this session.
+                        return self.outbox.done(row.id).map_err(|e| e.to_string());
+                    }
+                    let seq = s.next_seq();
+                    let p = sparkplug::device_death(seq, now_ms());
+                    return s.publish(
+                        sparkplug::topic(&group, "DDEATH", &edge_node, Some(&device)),
+                        p.to_bytes(),
+                        Some(row.id),
+                    );
+                }
+                if !s.born.contains(&device) {
+                    self.device_birth(s, &group, &edge_node, &device)?;
+                }
+                let seq = s.next_seq();
+                let payload = match &row.item {
+                    Item::Reading { json, .. } => match serde_json::from_str::<Reading>(json) {
+                        Ok(r) => sparkplug::device_data(&r, r.time_ms, historical, seq, now_ms()),
+                        Err(_) => {
+                            // A row this version cannot read: drop it rather than block the buffer.
+                            return self.outbox.done(row.id).map_err(|e| e.to_string());
+                        }
+                    },
+                    Item::Alarm { text, time_ms, .. } => {
+                        sparkplug::alarm_data(text, *time_ms, historical, seq, now_ms())
+                    }
+                    Item::DeviceLost { .. } => unreachable!("handled above"),
+                };
+                s.publish(
+                    sparkplug::topic(&group, "DDATA", &edge_node, Some(&device)),
+                    payload.to_bytes(),
+                    Some(row.id),
+                )
+            }
+        }
+    }
+
+    /// A clean stop: NDEATH (Sparkplug), then DISCONNECT, waiting briefly.
+    fn goodbye(&mut self, s: &mut Session, conn: &mut rumqttc::Connection, bd_seq: u64) {
+        if let Format::Sparkplug { group, edge_node } = &self.config.format {
+            let p = sparkplug::node_death(bd_seq, now_ms());
+            let _ = s.publish(
+                sparkplug::topic(group, "NDEATH", edge_node, None),
+                p.to_bytes(),
+                None,
+            );
+        }
+        let deadline = Instant::now() + Duration::from_secs(2);
+        // Let the acknowledgements of what is in flight arrive first.
+        while Instant::now() < deadline && (!s.in_flight.is_empty() || !s.awaiting_pkid.is_empty())
+        {
+            match conn.recv_timeout(Duration::from_millis(50)) {
+                Ok(Ok(Event::Outgoing(Outgoing::Publish(pkid)))) => {
+                    if let Some(row) = s.awaiting_pkid.pop_front() {
+                        s.in_flight.insert(pkid, row);
+                    }
+                }
+                Ok(Ok(Event::Incoming(Incoming::PubAck(ack)))) => {
+                    if let Some(Some(id)) = s.in_flight.remove(&ack.pkid) {
+                        let _ = self.outbox.done(id);
+                    }
+                }
+                Ok(Ok(_)) | Err(RecvTimeoutError::Timeout) => {}
+                Ok(Err(_)) | Err(RecvTimeoutError::Disconnected) => return,
+            }
+        }
+        let _ = s.client.disconnect();
+        let deadline = Instant::now() + Duration::from_millis(500);
+        while Instant::now() < deadline {
+            match conn.recv_timeout(Duration::from_millis(50)) {
+                Ok(Ok(Event::Outgoing(Outgoing::Disconnect)))
+                | Ok(Err(_))
+                | Err(RecvTimeoutError::Disconnected) => return,
+                _ => {}
+            }
+        }
+    }
+}
+
+struct Session {
+    client: Client,
+    seq: u8,
+    born: BTreeSet<String>,
+    /// Publishes handed to the client whose packet id is not known yet, in order.
+    awaiting_pkid: VecDeque<Option<i64>>,
+    /// Packet id -> buffer row (None for births and deaths).
+    in_flight: HashMap<u16, Option<i64>>,
+    last_sent: i64,
+    started_ms: u64,
+}
+
+impl Session {
+    fn next_seq(&mut self) -> u8 {
+        self.seq = self.seq.wrapping_add(1);
+        self.seq
+    }
+
+    fn publish(&mut self, topic: String, payload: Vec<u8>, row: Option<i64>) -> Result<(), String> {
+        self.client
+            .publish(topic, QoS::AtLeastOnce, false, payload)
+            .map_err(|e| format!("publish: {e}"))?;
+        self.awaiting_pkid.push_back(row);
+        Ok(())
+    }
+}
+
+/// Where the buffer file of a gateway's publisher lives beside its store.
+pub fn outbox_path_beside(store: &Path) -> PathBuf {
+    let mut name = store
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "fringe".into());
+    name.push_str(".mqtt-outbox");
+    store.with_file_name(name)
+}

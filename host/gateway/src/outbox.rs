@@ -1,0 +1,247 @@
+//! The store-and-forward buffer of the MQTT publisher: a SQLite file that
+//! holds every message to publish until the broker has acknowledged it.
+//!
+//! Rows are taken in insertion order and deleted only after their PUBACK
+//! (QoS 1), so a broker that is away, a network that is down or a gateway
+//! that is killed loses nothing: the next session sends what is left, in
+//! order. A message whose acknowledgement was lost on the way back is sent
+//! again (MQTT's QoS 1 is "at least once"); the reading's `boot` and
+//! `counter` metrics identify such a repeat.
+
+use std::path::Path;
+
+use rusqlite::{params, Connection, OptionalExtension};
+
+/// What a buffered row asks the publisher to send.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Item {
+    /// A reading of a device (JSON of `fringe_protocol::Reading`).
+    Reading {
+        /// Device serial.
+        device: String,
+        /// The reading as JSON.
+        json: String,
+    },
+    /// A drift alarm of a device, in words.
+    Alarm {
+        /// Device serial.
+        device: String,
+        /// The alarm's text.
+        text: String,
+        /// When it was raised, ms since the Unix epoch.
+        time_ms: u64,
+    },
+    /// The device's link was lost (DDEATH).
+    DeviceLost {
+        /// Device serial.
+        device: String,
+    },
+}
+
+/// A buffered row.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Row {
+    /// Row id (insertion order).
+    pub id: i64,
+    /// When it was buffered, ms since the Unix epoch.
+    pub queued_ms: u64,
+    /// What to send.
+    pub item: Item,
+}
+
+/// Errors of the buffer (SQLite's, with what was being done).
+#[derive(Debug, thiserror::Error)]
+#[error("MQTT buffer {what}: {source}")]
+pub struct OutboxError {
+    what: &'static str,
+    #[source]
+    source: rusqlite::Error,
+}
+
+fn err(what: &'static str) -> impl FnOnce(rusqlite::Error) -> OutboxError {
+    move |source| OutboxError { what, source }
+}
+
+/// The buffer file.
+#[derive(Debug)]
+pub struct Outbox {
+    db: Connection,
+}
+
+const SCHEMA: &str = "
+PRAGMA journal_mode = WAL;
+PRAGMA synchronous = FULL;
+CREATE TABLE IF NOT EXISTS outbox (
+    id INTEGER PRIMARY KEY AUTOINCREMENT,
+    queued_ms INTEGER NOT NULL,
+    kind INTEGER NOT NULL,
+    device TEXT NOT NULL,
+    body TEXT NOT NULL,
+    time_ms INTEGER NOT NULL
+);
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value INTEGER NOT NULL);
+";
+
+impl Outbox {
+    /// Opens (or creates) the buffer at `path`.
+    ///
+    /// # Errors
+    /// When the file cannot be opened or is not a buffer of this format.
+    pub fn open(path: &Path) -> Result<Self, OutboxError> {
+        let db = Connection::open(path).map_err(err("open"))?;
+        db.execute_batch(SCHEMA).map_err(err("create"))?;
+        Ok(Self { db })
+    }
+
+    /// Appends `item`, buffered at `now_ms`.
+    ///
+    /// # Errors
+    /// When the row cannot be written (disk full, read-only).
+    pub fn push(&self, item: &Item, now_ms: u64) -> Result<i64, OutboxError> {
+        let (kind, device, body, time_ms) = match item {
+            Item::Reading { device, json } => (1, device, json.as_str(), 0u64),
+            Item::Alarm {
+                device,
+                text,
+                time_ms,
+            } => (2, device, text.as_str(), *time_ms),
+            Item::DeviceLost { device } => (3, device, "", 0),
+        };
+        self.db
+            .execute(
+                "INSERT INTO outbox (queued_ms, kind, device, body, time_ms) VALUES (?1, ?2, ?3, ?4, ?5)",
+                params![now_ms as i64, kind, device, body, time_ms as i64],
+            )
+            .map_err(err("append"))?;
+        Ok(self.db.last_insert_rowid())
+    }
+
+    /// Up to `n` rows after id `after`, oldest first.
+    ///
+    /// # Errors
+    /// When the file cannot be read.
+    pub fn next(&self, after: i64, n: usize) -> Result<Vec<Row>, OutboxError> {
+        let mut st = self
+            .db
+            .prepare_cached(
+                "SELECT id, queued_ms, kind, device, body, time_ms FROM outbox WHERE id > ?1 ORDER BY id LIMIT ?2",
+            )
+            .map_err(err("read"))?;
+        let rows = st
+            .query_map(params![after, n as i64], |r| {
+                let kind: i64 = r.get(2)?;
+                let device: String = r.get(3)?;
+                let body: String = r.get(4)?;
+                let item = match kind {
+                    1 => Item::Reading { device, json: body },
+                    2 => Item::Alarm {
+                        device,
+                        text: body,
+                        time_ms: r.get::<_, i64>(5)? as u64,
+                    },
+                    _ => Item::DeviceLost { device },
+                };
+                Ok(Row {
+                    id: r.get(0)?,
+                    queued_ms: r.get::<_, i64>(1)? as u64,
+                    item,
+                })
+            })
+            .map_err(err("read"))?;
+        rows.collect::<Result<_, _>>().map_err(err("read"))
+    }
+
+    /// Removes row `id` (acknowledged by the broker).
+    ///
+    /// # Errors
+    /// When the file cannot be written.
+    pub fn done(&self, id: i64) -> Result<(), OutboxError> {
+        self.db
+            .execute("DELETE FROM outbox WHERE id = ?1", params![id])
+            .map_err(err("delete"))?;
+        Ok(())
+    }
+
+    /// Rows waiting.
+    ///
+    /// # Errors
+    /// When the file cannot be read.
+    pub fn len(&self) -> Result<u64, OutboxError> {
+        self.db
+            .query_row("SELECT count(*) FROM outbox", [], |r| r.get::<_, i64>(0))
+            .map(|n| n as u64)
+            .map_err(err("count"))
+    }
+
+    /// Whether nothing waits.
+    ///
+    /// # Errors
+    /// When the file cannot be read.
+    pub fn is_empty(&self) -> Result<bool, OutboxError> {
+        Ok(self.len()? == 0)
+    }
+
+    /// The next birth/death sequence number (`bdSeq`, 0-255), counted up
+    /// and kept in the file so that it never repeats across restarts
+    /// within its 256 steps.
+    ///
+    /// # Errors
+    /// When the file cannot be written.
+    pub fn next_bd_seq(&self) -> Result<u64, OutboxError> {
+        let cur: Option<i64> = self
+            .db
+            .query_row("SELECT value FROM meta WHERE key = 'bd_seq'", [], |r| {
+                r.get(0)
+            })
+            .optional()
+            .map_err(err("read bdSeq"))?;
+        let next = cur.map_or(0, |v| (v + 1) % 256);
+        self.db
+            .execute(
+                "INSERT INTO meta (key, value) VALUES ('bd_seq', ?1) ON CONFLICT(key) DO UPDATE SET value = ?1",
+                params![next],
+            )
+            .map_err(err("write bdSeq"))?;
+        Ok(next as u64)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn rows_come_back_in_order_until_acknowledged_and_survive_a_reopen() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("outbox.db");
+        {
+            let o = Outbox::open(&path).unwrap();
+            for i in 0..5 {
+                o.push(
+                    &Item::Reading {
+                        device: "A".into(),
+                        json: format!("{{\"n\":{i}}}"),
+                    },
+                    i,
+                )
+                .unwrap();
+            }
+            let rows = o.next(0, 3).unwrap();
+            assert_eq!(rows.len(), 3);
+            o.done(rows[0].id).unwrap();
+            o.done(rows[1].id).unwrap();
+            assert_eq!(o.next_bd_seq().unwrap(), 0);
+        }
+        let o = Outbox::open(&path).unwrap();
+        assert_eq!(o.len().unwrap(), 3);
+        let rows = o.next(0, 10).unwrap();
+        assert_eq!(
+            rows[0].item,
+            Item::Reading {
+                device: "A".into(),
+                json: "{\"n\":2}".into()
+            }
+        );
+        assert_eq!(o.next_bd_seq().unwrap(), 1);
+    }
+}

@@ -1,0 +1,124 @@
+//! Real servers from Debian's packages, run by a test on localhost in a
+//! folder of its own and stopped when the test ends (`cargo xtask test`
+//! installs the packages).
+
+use std::net::{SocketAddr, TcpListener, TcpStream};
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+/// A free TCP port on 127.0.0.1 (bound and released; a server started
+/// right after takes it).
+pub fn free_port() -> u16 {
+    TcpListener::bind("127.0.0.1:0")
+        .and_then(|l| l.local_addr())
+        .map(|a| a.port())
+        .expect("a free port on localhost")
+}
+
+/// Waits until something accepts connections on `port`.
+///
+/// # Panics
+/// After `limit`, with `log`'s contents.
+pub fn wait_for_port(port: u16, limit: Duration, log: &Path) {
+    let addr = SocketAddr::from(([127, 0, 0, 1], port));
+    let t0 = Instant::now();
+    while TcpStream::connect_timeout(&addr, Duration::from_millis(200)).is_err() {
+        assert!(
+            t0.elapsed() < limit,
+            "nothing listens on port {port} after {limit:?}; log:\n{}",
+            std::fs::read_to_string(log).unwrap_or_default()
+        );
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+/// Finds a server binary of a Debian package (`/usr/sbin` is not on every
+/// user's PATH).
+pub fn sbin(name: &str) -> PathBuf {
+    for dir in ["/usr/sbin", "/usr/bin", "/usr/local/sbin", "/usr/local/bin"] {
+        let p = Path::new(dir).join(name);
+        if p.exists() {
+            return p;
+        }
+    }
+    panic!("{name} is not installed: `cargo xtask test` installs it (Debian package)")
+}
+
+/// A mosquitto broker (Debian package `mosquitto`) on a free localhost
+/// port, with persistence in its own folder, so that a restart keeps the
+/// subscriptions and queued messages of persistent sessions.
+pub struct Mosquitto {
+    dir: tempfile::TempDir,
+    /// Its port.
+    pub port: u16,
+    child: Option<Child>,
+}
+
+impl Mosquitto {
+    /// Starts the broker.
+    ///
+    /// # Panics
+    /// If mosquitto is missing or does not come up within a minute.
+    pub fn start() -> Self {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let port = free_port();
+        let conf = format!(
+            "listener {port} 127.0.0.1\nallow_anonymous true\npersistence true\npersistence_location {}/\nuser root\nlog_dest file {}/broker.log\nlog_type error\nlog_type warning\nlog_type notice\n",
+            dir.path().display(),
+            dir.path().display()
+        );
+        std::fs::write(dir.path().join("mosquitto.conf"), conf).expect("broker config");
+        let mut m = Self {
+            dir,
+            port,
+            child: None,
+        };
+        m.restart();
+        m
+    }
+
+    fn log(&self) -> PathBuf {
+        self.dir.path().join("broker.log")
+    }
+
+    /// Stops the broker as a service manager would (SIGTERM: it saves its
+    /// persistence file) and waits for it to end.
+    pub fn stop(&mut self) {
+        if let Some(mut c) = self.child.take() {
+            let _ = Command::new("kill")
+                .args(["-TERM", &c.id().to_string()])
+                .status();
+            let t0 = Instant::now();
+            while c.try_wait().ok().flatten().is_none() {
+                if t0.elapsed() > Duration::from_secs(20) {
+                    let _ = c.kill();
+                }
+                std::thread::sleep(Duration::from_millis(20));
+            }
+        }
+    }
+
+    /// Starts it (again) on the same port with the same persistence.
+    pub fn restart(&mut self) {
+        self.stop();
+        let child = Command::new(sbin("mosquitto"))
+            .arg("-c")
+            .arg(self.dir.path().join("mosquitto.conf"))
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .expect("start mosquitto");
+        self.child = Some(child);
+        wait_for_port(self.port, Duration::from_secs(60), &self.log());
+    }
+}
+
+impl Drop for Mosquitto {
+    fn drop(&mut self) {
+        if let Some(mut c) = self.child.take() {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
+}
