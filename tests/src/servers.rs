@@ -122,3 +122,155 @@ impl Drop for Mosquitto {
         }
     }
 }
+
+/// The `bin` folder of the installed PostgreSQL (Debian package
+/// `postgresql`), the newest version if several.
+pub fn postgres_bin() -> PathBuf {
+    let mut versions: Vec<PathBuf> = std::fs::read_dir("/usr/lib/postgresql")
+        .map(|d| {
+            d.filter_map(Result::ok)
+                .map(|e| e.path().join("bin"))
+                .collect()
+        })
+        .unwrap_or_default();
+    versions.retain(|p| p.join("initdb").exists());
+    versions.sort();
+    versions.pop().expect(
+        "PostgreSQL is not installed: `cargo xtask test` installs it (Debian package postgresql)",
+    )
+}
+
+/// A throwaway PostgreSQL cluster (Debian's binaries) on a free localhost
+/// port, trust authentication for user `fringe`, database `fringe`. As
+/// root the server runs as the `postgres` user (initdb refuses root).
+pub struct Postgres {
+    dir: tempfile::TempDir,
+    /// Its port.
+    pub port: u16,
+    running: bool,
+}
+
+fn as_postgres(cmd: &Path) -> Command {
+    let root = Command::new("id")
+        .arg("-u")
+        .output()
+        .map(|o| String::from_utf8_lossy(&o.stdout).trim() == "0")
+        .unwrap_or(false);
+    if root {
+        let mut c = Command::new("runuser");
+        c.args(["-u", "postgres", "--"]).arg(cmd);
+        c
+    } else {
+        Command::new(cmd)
+    }
+}
+
+impl Postgres {
+    /// Creates and starts the cluster.
+    ///
+    /// # Panics
+    /// If PostgreSQL is missing or does not start within a minute.
+    pub fn start() -> Self {
+        let dir = tempfile::Builder::new()
+            .prefix("fringe-pg")
+            .tempdir()
+            .expect("temp dir");
+        let _ = Command::new("chown")
+            .args(["-R", "postgres:postgres"])
+            .arg(dir.path())
+            .status();
+        let bin = postgres_bin();
+        let out = as_postgres(&bin.join("initdb"))
+            .arg("-D")
+            .arg(dir.path().join("data"))
+            .args(["-A", "trust", "-U", "fringe", "--no-sync", "-E", "UTF8"])
+            .output()
+            .expect("run initdb");
+        assert!(
+            out.status.success(),
+            "initdb failed: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let mut pg = Self {
+            dir,
+            port: free_port(),
+            running: false,
+        };
+        pg.restart();
+        let out = Command::new(bin.join("createdb"))
+            .args([
+                "-h",
+                "127.0.0.1",
+                "-p",
+                &pg.port.to_string(),
+                "-U",
+                "fringe",
+                "fringe",
+            ])
+            .output()
+            .expect("run createdb");
+        assert!(
+            out.status.success(),
+            "createdb failed: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        pg
+    }
+
+    /// The connection URL of database `fringe`.
+    pub fn url(&self) -> String {
+        format!("postgres://fringe@127.0.0.1:{}/fringe", self.port)
+    }
+
+    fn pg_ctl(&self, args: &[&str]) -> std::process::Output {
+        as_postgres(&postgres_bin().join("pg_ctl"))
+            .arg("-D")
+            .arg(self.dir.path().join("data"))
+            .args(args)
+            .output()
+            .expect("run pg_ctl")
+    }
+
+    /// Starts the server (again) on the same port and data.
+    pub fn restart(&mut self) {
+        self.stop();
+        let opts = format!(
+            "-p {} -k {} -c listen_addresses=127.0.0.1 -c fsync=off",
+            self.port,
+            self.dir.path().display()
+        );
+        let log = self.dir.path().join("server.log");
+        let out = self.pg_ctl(&[
+            "-w",
+            "-t",
+            "60",
+            "-l",
+            log.to_str().unwrap_or_default(),
+            "-o",
+            &opts,
+            "start",
+        ]);
+        assert!(
+            out.status.success(),
+            "pg_ctl start failed: {}{}",
+            String::from_utf8_lossy(&out.stderr),
+            std::fs::read_to_string(&log).unwrap_or_default()
+        );
+        self.running = true;
+        wait_for_port(self.port, Duration::from_secs(60), &log);
+    }
+
+    /// Stops the server (fast shutdown: clients disconnected).
+    pub fn stop(&mut self) {
+        if self.running {
+            let _ = self.pg_ctl(&["-m", "fast", "-w", "stop"]);
+            self.running = false;
+        }
+    }
+}
+
+impl Drop for Postgres {
+    fn drop(&mut self) {
+        self.stop();
+    }
+}

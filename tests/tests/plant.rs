@@ -370,3 +370,27 @@ fn a_broker_lost_mid_stream_loses_nothing_and_repeats_only_what_was_in_flight() 
     );
     publisher.stop();
 }
+
+/// The throwaway PostgreSQL of the tests starts, takes a connection and
+/// stops (the harness the store tests build on).
+#[test]
+#[ignore = "needs PostgreSQL (Debian package): `cargo xtask test` runs it"]
+fn a_throwaway_postgres_starts_and_answers() {
+    let mut pg = fringe_tests::servers::Postgres::start();
+    let out = Command::new(fringe_tests::servers::postgres_bin().join("psql"))
+        .args([&pg.url(), "-tAc", "select 40 + 2"])
+        .output()
+        .expect("psql");
+    assert_eq!(
+        String::from_utf8_lossy(&out.stdout).trim(),
+        "42",
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    pg.restart();
+    let out = Command::new(fringe_tests::servers::postgres_bin().join("psql"))
+        .args([&pg.url(), "-tAc", "select current_user"])
+        .output()
+        .expect("psql");
+    assert_eq!(String::from_utf8_lossy(&out.stdout).trim(), "fringe");
+}

@@ -310,7 +310,17 @@ fn test(args: &[String]) -> Result<()> {
     let plant_servers = || -> Result<()> {
         ensure_venv()?;
         // Real servers the plant tests start on localhost.
-        apt_install(&[("mosquitto", "mosquitto")])
+        apt_install(&[("mosquitto", "mosquitto")])?;
+        let has_postgres = std::fs::read_dir("/usr/lib/postgresql")
+            .map(|d| {
+                d.filter_map(Result::ok)
+                    .any(|e| e.path().join("bin/initdb").exists())
+            })
+            .unwrap_or(false);
+        if !has_postgres {
+            apt_get(&["postgresql"])?;
+        }
+        Ok(())
     };
     optional(&mut ledger, &skip, "python", plant_servers, || {
         run(cargo()
