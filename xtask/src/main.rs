@@ -286,6 +286,7 @@ fn test(args: &[String]) -> Result<()> {
         "fringe-registers",
         "fringe-calibration",
         "fringe-firmware",
+        "fringe-drivers",
     ] {
         run(cargo().args([
             "build",
@@ -460,16 +461,51 @@ fn fuzz_smoke() -> Result<()> {
     Ok(())
 }
 
-/// The board crate: fmt, clippy, release build.
+/// The board crates: fmt, clippy, release build of each (the QEMU board
+/// and the STM32G474 board, which builds but cannot run here).
 fn board() -> Result<()> {
-    let board_cargo = || {
-        let mut c = Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
-        c.current_dir(board_dir());
-        c
-    };
-    run(board_cargo().args(["fmt", "--check"]))?;
-    run(board_cargo().args(["clippy", "--release", "--", "-D", "warnings"]))?;
+    for dir in [board_dir(), stm32_dir()] {
+        let board_cargo = || {
+            let mut c = Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
+            c.current_dir(&dir);
+            c
+        };
+        run(board_cargo().args(["fmt", "--check"]))?;
+        run(board_cargo().args(["clippy", "--release", "--", "-D", "warnings"]))?;
+    }
     firmware()?;
+    stm32_firmware()?;
+    Ok(())
+}
+
+/// Folder of the STM32G474 board crate.
+fn stm32_dir() -> PathBuf {
+    root().join("firmware/boards/stm32g474")
+}
+
+/// Release build of the STM32G474 board (from its own folder); the ELF's path.
+fn stm32_firmware() -> Result<PathBuf> {
+    ensure_target()?;
+    let mut c = Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
+    c.current_dir(stm32_dir()).args(["build", "--release"]);
+    run(&mut c)?;
+    Ok(stm32_dir().join(format!("target/{TARGET}/release/fringe-stm32g474")))
+}
+
+/// Prints flash and static RAM of a board's ELF.
+fn print_footprint(name: &str, elf: &Path) -> Result<()> {
+    let f = qemu::footprint(elf).map_err(anyhow::Error::msg)?;
+    println!("{name} ({TARGET}, release)");
+    println!(
+        "  flash  {:>7} bytes ({:.1} KiB)  vector table + text + rodata + data image",
+        f.flash,
+        f.flash as f64 / 1024.0
+    );
+    println!(
+        "  RAM    {:>7} bytes ({:.1} KiB)  data + bss (static; the stack is below)",
+        f.ram,
+        f.ram as f64 / 1024.0
+    );
     Ok(())
 }
 
@@ -562,19 +598,13 @@ fn report(elf: &Path) -> Result<Report> {
 /// `cargo xtask size`: flash and RAM from the ELF, stack high-water mark and
 /// cost per reading from the running firmware.
 fn size() -> Result<()> {
+    // The STM32G474 board first: it cannot run here, so flash and static
+    // RAM from its ELF are all it reports.
+    let stm32 = stm32_firmware()?;
+    print_footprint("fringe-stm32g474", &stm32)?;
+    println!("  (not run: no hardware here; stack and cost per reading are QEMU-board figures)");
     let elf = firmware()?;
-    let f = qemu::footprint(&elf).map_err(anyhow::Error::msg)?;
-    println!("fringe-qemu-mps2 (thumbv7em-none-eabihf, release)");
-    println!(
-        "  flash  {:>7} bytes ({:.1} KiB)  vector table + text + rodata + data image",
-        f.flash,
-        f.flash as f64 / 1024.0
-    );
-    println!(
-        "  RAM    {:>7} bytes ({:.1} KiB)  data + bss (static; the stack is below)",
-        f.ram,
-        f.ram as f64 / 1024.0
-    );
+    print_footprint("fringe-qemu-mps2", &elf)?;
     if !qemu::qemu_available() {
         bail!(
             "qemu-system-arm is not installed, so the stack and cost figures cannot be measured \
@@ -614,7 +644,7 @@ fn main() -> Result<()> {
             eprintln!("  test      every test (installs what it needs; --skip qemu,fuzz,python leaves parts out)");
             eprintln!("  firmware  build the QEMU board binary (firmware/boards/qemu-mps2)");
             eprintln!("  qemu      boot it under QEMU with UART0 on a pty and print the path");
-            eprintln!("  size      flash/RAM of the ELF, stack high-water and cost per reading");
+            eprintln!("  size      flash/RAM of both boards' ELFs; stack high-water and cost per reading (QEMU)");
             bail!("unknown or missing xtask command")
         }
     }
