@@ -15,6 +15,7 @@ fn capability_names(c: Capabilities) -> Vec<&'static str> {
         (Capabilities::SIMULATED, "simulated"),
         (Capabilities::LOG, "log"),
         (Capabilities::DIAGNOSTICS, "diagnostics"),
+        (Capabilities::SETTINGS, "settings"),
     ]
     .into_iter()
     .filter(|(f, _)| c.contains(*f))

@@ -37,6 +37,12 @@ impl FirmwareSim {
         let key = scenario.key().context("scenario device.key")?;
         let mut config = DeviceConfig::new(&scenario.device.serial, key);
         config.simulated = true;
+        config.settings.interval_ms = scenario.device.interval_ms;
+        // The default stale timeout, or twice the interval if that is longer.
+        config.settings.stale_timeout_ms = config
+            .settings
+            .stale_timeout_ms
+            .max(scenario.device.interval_ms.saturating_mul(2));
         let mut product = SynthProduct::<f32>::grain();
         product.mixture.eps_dry = scenario.product.dry_permittivity as f32;
         let flash: Flash = Box::leak(Box::new(RamFlash::new()));

@@ -593,6 +593,7 @@ fn event_kind_name(k: &fringe_protocol::EventKind) -> &'static str {
         K::Fault { .. } => "fault",
         K::ReferenceDrift { .. } => "reference_drift",
         K::StorageRepaired => "storage_repaired",
+        K::SettingsChanged { .. } => "settings_changed",
     }
 }
 
