@@ -165,6 +165,8 @@ pub struct ScenarioSpec {
     pub baud: u32,
     /// The device's measurement interval, device ms.
     pub interval_ms: u32,
+    /// The device clock starts unset (counts from boot until a host sets it).
+    pub clock_unset: bool,
     /// Probability a byte is lost.
     pub drop_per_byte: f64,
     /// Probability a bit of a byte flips.
@@ -188,6 +190,7 @@ impl ScenarioSpec {
             time_scale: 10.0,
             baud: 115_200,
             interval_ms: 100,
+            clock_unset: false,
             drop_per_byte: 0.0,
             flip_per_byte: 0.0,
             garbage_per_frame: 0.0,
@@ -203,7 +206,7 @@ impl ScenarioSpec {
              moisture_pct = [[0, 14.0], [120, 16.0], [240, 13.5]]\n\
              temperature_c = [[0, 30.0], [240, 34.0]]\n\
              water_conductivity_s_m = [[0, 0.1]]\n{}\n\
-             [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\ninterval_ms = {}\n\n\
+             [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\ninterval_ms = {}\nclock = \"{}\"\n\n\
              [product]\nname = \"wheat\"\n\n\
              [link]\ndrop_per_byte = {}\nflip_per_byte = {}\ngarbage_per_frame = {}\n",
             self.extra,
@@ -212,6 +215,7 @@ impl ScenarioSpec {
             self.time_scale,
             self.baud,
             self.interval_ms,
+            if self.clock_unset { "unset" } else { "set" },
             self.drop_per_byte,
             self.flip_per_byte,
             self.garbage_per_frame

@@ -21,6 +21,9 @@
 //! time_scale = 1.0                  # device seconds per wall second (tests run faster)
 //! baud = 115200                     # the device's baud rate; a host at another rate gets garbage
 //! interval_ms = 1000                # measurement interval on a blank flash (device ms; 100..=3600000)
+//! clock = "set"                     # "set": the device clock starts at the wall clock (a battery-backed
+//!                                   # clock) and runs at time_scale; "unset": it counts from boot until a
+//!                                   # host sets it, as a device without one does
 //!
 //! [product]
 //! name = "wheat"
@@ -73,6 +76,21 @@ pub struct DeviceSection {
     /// flash), device ms.
     #[serde(default = "default_interval")]
     pub interval_ms: u32,
+    /// Whether the device clock starts set (`set`, the default) or counts
+    /// from boot until a host sets it (`unset`).
+    #[serde(default)]
+    pub clock: ClockStart,
+}
+
+/// How the simulated device's clock starts.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ClockStart {
+    /// At the wall-clock time the simulator starts (then at `time_scale`).
+    #[default]
+    Set,
+    /// Unset: times count from boot until a host sets the clock.
+    Unset,
 }
 
 fn default_interval() -> u32 {
