@@ -145,9 +145,11 @@ pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         ),
         ("next event", s.next_event.to_string()),
         (
-            "streaming",
-            s.stream_period_ms
-                .map_or("off".into(), |p| format!("every {p} ms")),
+            "subscribed",
+            s.stream_period_ms.map_or(
+                "no (the device measures and logs all the same)".into(),
+                |p| format!("yes, a reading every {p} ms"),
+            ),
         ),
         (
             "product",
