@@ -14,7 +14,7 @@ use fringe_firmware::protocol::*;
 use fringe_firmware::sim::{exact_calibration, Material};
 use fringe_firmware::Scenario;
 
-/// Air at 20 C, ITU-R P.453 refractivity (REFERENCES.md 2), as the simulator uses.
+/// Air at 20 C, ITU-R P.453 refractivity (docs/REFERENCES.md section 2), as the simulator uses.
 const EPS_AIR: f32 = 1.000_54;
 /// Ethanol at 20 C, Gregory and Clarke, NPL Report MAT 23 (2012): 25.16.
 const EPS_ETHANOL_20C: f32 = 25.16;
