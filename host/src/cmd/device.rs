@@ -171,6 +171,18 @@ pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     for (k, v) in rows {
         out::line(&format!("{k:<11}{v}"))?;
     }
+    if id.capabilities.contains(Capabilities::SETTINGS) {
+        let st = read_settings(&mut link)?;
+        out::line(&format!(
+            "{:<11}{}, a reading every {} ms, {:.2}-{:.2} % at 4-20 mA, fail {} (`fringe device config show`)",
+            "settings",
+            if st.tag.is_empty() { "no tag" } else { st.tag.as_str() },
+            st.interval_ms,
+            st.output.span_low_pct,
+            st.output.span_high_pct,
+            if st.output.fail_high { "high" } else { "low" }
+        ))?;
+    }
     if let Some(b) = s.stack_free_bytes {
         out::line(&format!("{:<11}{b} bytes", "stack free"))?;
     }
