@@ -2,6 +2,24 @@
 //! state; [`Device::poll`] decodes requests, runs a few measurement steps
 //! and emits frames. No globals, no clock but `now_ms`.
 //!
+//! ## The schedule
+//! The device measures on its own clock every [`Settings::interval_ms`]
+//! from boot on, whether or not a host is attached: each reading goes to
+//! the flash log, the 4-20 mA output and, while a host is subscribed
+//! ([`Request::StartStream`]), the link. A `Measure` request takes one extra
+//! reading, started after the request. When no valid reading (one with a
+//! moisture value) has come for [`Settings::stale_timeout_ms`] (a stalled
+//! front end produces none at all), the loop goes to its NAMUR NE 43
+//! failure level instead of holding the last value, and a
+//! [`FaultCode::StaleOutput`] event is logged. A reading without a valid
+//! value drives the failure level at once, as before.
+//!
+//! ## Time
+//! Until a host sets the clock, time counts from boot and readings carry
+//! [`Flags::CLOCK_UNSET`]. Setting it logs [`EventKind::ClockSet`] whose
+//! `old_ms` is then the time since boot, which is what a host needs to
+//! re-base the earlier readings of the boot (see `protocol/WIRE.md`).
+//!
 //! ## Writes
 //! A request that changes the device ([`Request::needs_auth`]) is carried
 //! out only if its HMAC tag verifies ([`fringe_protocol::auth::verify`]) and
@@ -21,8 +39,8 @@ use fringe_protocol::{
     short_string, AuthFailure, Basis, CalId, Capabilities, CellCal, DeviceFrame, ErrorCode, Event,
     EventKind, FaultCode, Flags, FrameDecoder, FrameError, HostFrame, Identity, ModelKind,
     OutputConfig, ProductCal, Reading, RefCheck, Request, ResetCause, Response, SelfTest, Seq,
-    Serial, SlotInfo, Status, EVENT_CHUNK, LOG_CHUNK, MAX_FRAME_LEN, N_FREQ, N_PRODUCT_SLOTS,
-    PROTOCOL_VERSION,
+    Serial, Settings, SlotInfo, Status, EVENT_CHUNK, LOG_CHUNK, MAX_FRAME_LEN, N_FREQ,
+    N_PRODUCT_SLOTS, PROTOCOL_VERSION,
 };
 use heapless::Vec;
 
@@ -30,14 +48,16 @@ use embedded_storage::nor_flash::NorFlash;
 
 use crate::hal::{CurrentOutput, Frontend, NoWatchdog, Watchdog};
 use crate::measure::{self, ChainState, Job, MeasureConfig, Runner, DEFAULT_MEASURE};
-use crate::output::{self, DEFAULT_OUTPUT};
+use crate::output::{self};
+use crate::settings::{self as device_settings, default_settings};
 use crate::storage::{key, Storage, StorageError, StoredIdentity};
 
 /// Firmware version, `[major, minor, patch]`.
 pub const FIRMWARE_VERSION: [u8; 3] = [0, 1, 0];
-/// Shortest streaming period accepted, ms.
+/// Shortest `StartStream` period accepted, ms (since protocol 1.1 the
+/// period is only checked; the device measures at its own interval).
 pub const MIN_PERIOD_MS: u32 = 100;
-/// Longest streaming period accepted, ms (one day).
+/// Longest `StartStream` period accepted, ms (one day).
 pub const MAX_PERIOD_MS: u32 = 86_400_000;
 /// Earliest clock accepted by `SetClock` (2000-01-01), Unix ms.
 pub const MIN_UNIX_MS: u64 = 946_684_800_000;
@@ -60,6 +80,9 @@ pub struct DeviceConfig {
     pub steps_per_poll: u8,
     /// Store every reading in the flash log.
     pub log_readings: bool,
+    /// Settings used on a blank flash (stored settings win; see
+    /// [`crate::settings`] for the defaults).
+    pub settings: Settings,
     /// Announce [`Capabilities::SIMULATED`].
     pub simulated: bool,
 }
@@ -74,6 +97,7 @@ impl DeviceConfig {
             measure: DEFAULT_MEASURE,
             steps_per_poll: 4,
             log_readings: true,
+            settings: default_settings(),
             simulated: false,
         }
     }
@@ -99,7 +123,8 @@ impl DeviceConfig {
             && m.reference_tolerance > 0.0
             && m.min_snr_db.is_finite()
             && m.empty_eps_max.is_finite()
-            && m.open_pf.is_finite();
+            && m.open_pf.is_finite()
+            && device_settings::validate(&self.settings).is_ok();
         if ok {
             Ok(())
         } else {
@@ -114,7 +139,8 @@ impl DeviceConfig {
 pub enum BootError {
     /// The flash could not be mounted.
     Storage(StorageError),
-    /// A configuration value is out of range (frequencies, amplitude, records).
+    /// A configuration value is out of range (frequencies, amplitude,
+    /// records, the blank-flash settings).
     BadConfig,
 }
 
@@ -124,7 +150,7 @@ impl core::fmt::Display for BootError {
             BootError::Storage(e) => write!(f, "boot: {e}"),
             BootError::BadConfig => write!(
                 f,
-                "boot: configuration out of range (need 0 < freqs_hz[0] < freqs_hz[1], amplitude_v > 0, records 1..=16)"
+                "boot: configuration out of range (need 0 < freqs_hz[0] < freqs_hz[1], amplitude_v > 0, records 1..=16, valid settings)"
             ),
         }
     }
@@ -186,9 +212,16 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     cell_id: CalId,
     active: Option<Active>,
     active_slot: Option<u8>,
-    output_cfg: OutputConfig,
+    settings: Settings,
     output_ma: f32,
     output_fault: bool,
+    /// Moisture of the last reading and when it was taken (for a span
+    /// change between readings); `None` when it had none.
+    last_moisture: Option<f32>,
+    /// When the last valid reading was taken (boot time before the first).
+    last_valid_ms: u64,
+    /// The loop was sent to its failure level by the stale-output timeout.
+    stale: bool,
     chain: ChainState,
     chain_valid: bool,
     chain_n: u32,
@@ -196,9 +229,11 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     last_ref: [f32; N_FREQ],
     since_ref: u32,
     runner: Runner,
-    stream_ms: Option<u32>,
+    subscribed: bool,
     next_due_ms: u64,
     pending: Pending,
+    /// The requests the running job answers (taken from `pending` when it started).
+    in_job: Pending,
     last_flags: Flags,
     saturated_run: u8,
     decoder: FrameDecoder<HostFrame>,
@@ -358,7 +393,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             config,
         } = booted;
         let mut out = output;
-        let (output_ma, _) = output::current_ma(&st.output_cfg, None);
+        let (output_ma, _) = output::current_ma(&st.settings.output, None);
         let output_fault = out.set_ma(output_ma).is_err();
         let mcfg = config.measure();
         Self {
@@ -379,9 +414,12 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             cell: st.cell,
             active: st.active,
             active_slot: st.active_slot,
-            output_cfg: st.output_cfg,
+            settings: st.settings,
             output_ma,
             output_fault,
+            last_moisture: None,
+            last_valid_ms: now_ms,
+            stale: false,
             chain: ChainState::default(),
             chain_valid: false,
             chain_n: 0,
@@ -389,9 +427,10 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             last_ref: [f32::NAN; N_FREQ],
             since_ref: 0,
             runner: Runner::new(),
-            stream_ms: None,
+            subscribed: false,
             next_due_ms: now_ms,
             pending: Pending::default(),
+            in_job: Pending::default(),
             last_flags: Flags::NOT_CALIBRATED,
             saturated_run: 0,
             decoder: FrameDecoder::new(),
@@ -429,6 +468,80 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                 self.finish(now_ms, &raw, tx);
                 break;
             }
+        }
+        self.check_stale(now_ms, tx);
+    }
+
+    /// Sets the clock from a source on the board (a battery-backed
+    /// real-time clock, or a simulator's wall clock), as `SetClock` does:
+    /// logs [`EventKind::ClockSet`] and sends it through `tx`. For boards
+    /// only; a host sets the clock with an authenticated `SetClock`.
+    ///
+    /// # Errors
+    /// [`ErrorCode::OutOfRange`] for a time before 2000 or after 2200
+    /// (nothing changes).
+    pub fn set_clock_from_board(
+        &mut self,
+        now_ms: u64,
+        unix_ms: u64,
+        tx: &mut dyn FnMut(&[u8]),
+    ) -> Result<(), ErrorCode> {
+        self.set_clock(now_ms, unix_ms, tx)
+            .map_err(|(code, _)| code)
+    }
+
+    fn set_clock(
+        &mut self,
+        now_ms: u64,
+        unix_ms: u64,
+        tx: &mut dyn FnMut(&[u8]),
+    ) -> Result<(), Refusal> {
+        in_range(
+            (MIN_UNIX_MS..=MAX_UNIX_MS).contains(&unix_ms),
+            "unix_ms not 2000..2200",
+        )?;
+        let old_ms = self.time_ms(now_ms).0;
+        self.clock_offset_ms = Some(unix_ms as i64 - now_ms as i64);
+        self.event(
+            now_ms,
+            EventKind::ClockSet {
+                old_ms,
+                new_ms: unix_ms,
+            },
+            tx,
+        );
+        Ok(())
+    }
+
+    /// The settings in force.
+    pub fn settings(&self) -> &Settings {
+        &self.settings
+    }
+
+    /// Whether a host is subscribed to the readings.
+    pub fn subscribed(&self) -> bool {
+        self.subscribed
+    }
+
+    /// The stale-output timeout: with no valid reading for that long, the
+    /// loop goes to its failure level (once per episode, with an event).
+    fn check_stale(&mut self, now_ms: u64, tx: &mut dyn FnMut(&[u8])) {
+        let late =
+            now_ms.saturating_sub(self.last_valid_ms) > u64::from(self.settings.stale_timeout_ms);
+        if !late || self.stale {
+            return;
+        }
+        self.stale = true;
+        let showed_value = self.last_moisture.is_some();
+        self.drive_output(None);
+        if showed_value {
+            self.event(
+                now_ms,
+                EventKind::Fault {
+                    code: FaultCode::StaleOutput,
+                },
+                tx,
+            );
         }
     }
 
@@ -660,12 +773,11 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                     (MIN_PERIOD_MS..=MAX_PERIOD_MS).contains(&period_ms),
                     "period_ms not 100..86400000",
                 )?;
-                self.stream_ms = Some(period_ms);
-                self.next_due_ms = now_ms;
+                self.subscribed = true;
                 Response::Ack
             }
             Request::StopStream => {
-                self.stream_ms = None;
+                self.subscribed = false;
                 Response::Ack
             }
             Request::ReadCellCal => Response::CellCal(self.cell),
@@ -774,20 +886,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                 Response::Events { events, next, end }
             }
             Request::SetClock { unix_ms } => {
-                in_range(
-                    (MIN_UNIX_MS..=MAX_UNIX_MS).contains(&unix_ms),
-                    "unix_ms not 2000..2200",
-                )?;
-                let old_ms = self.time_ms(now_ms).0;
-                self.clock_offset_ms = Some(unix_ms as i64 - now_ms as i64);
-                self.event(
-                    now_ms,
-                    EventKind::ClockSet {
-                        old_ms,
-                        new_ms: unix_ms,
-                    },
-                    tx,
-                );
+                self.set_clock(now_ms, unix_ms, tx)?;
                 Response::Ack
             }
             Request::SelfTest => {
@@ -802,19 +901,58 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                 Response::Ack
             }
             Request::SetOutput(o) => {
-                output::validate(&o).map_err(|e| match e {
-                    output::SpanError::NotFinite => (ErrorCode::NotFinite, "span not finite"),
-                    _ => (ErrorCode::OutOfRange, "span: need 0<=low<high<=100"),
-                })?;
-                self.storage.put(key::OUTPUT, &o).map_err(st)?;
-                self.output_cfg = o;
+                let new = device_settings::with_output(&self.settings, o);
+                self.write_settings(now_ms, new, tx)?;
+                Response::Ack
+            }
+            Request::ReadSettings => Response::Settings(self.settings.clone()),
+            Request::WriteSettings(new) => {
+                self.write_settings(now_ms, new, tx)?;
                 Response::Ack
             }
         }))
     }
 
+    /// Checks, stores (atomically) and applies new settings, logs
+    /// [`EventKind::SettingsChanged`]; the loop follows the new span at
+    /// once. Refused settings change nothing.
+    fn write_settings(
+        &mut self,
+        now_ms: u64,
+        new: Settings,
+        tx: &mut dyn FnMut(&[u8]),
+    ) -> Result<(), Refusal> {
+        device_settings::validate(&new).map_err(|e| {
+            let code = match e {
+                device_settings::SettingsError::Span(output::SpanError::NotFinite) => {
+                    ErrorCode::NotFinite
+                }
+                _ => ErrorCode::OutOfRange,
+            };
+            (code, e.reason())
+        })?;
+        self.storage
+            .put(key::SETTINGS, &new)
+            .map_err(Self::storage_refusal)?;
+        let old = self.settings.content_id();
+        let interval = u64::from(new.interval_ms);
+        self.settings = new;
+        self.next_due_ms = self.next_due_ms.min(now_ms.saturating_add(interval));
+        if !self.stale {
+            self.drive_output(self.last_moisture);
+        } else {
+            self.drive_output(None);
+        }
+        let new = self.settings.content_id();
+        self.event(now_ms, EventKind::SettingsChanged { old, new }, tx);
+        Ok(())
+    }
+
     fn identity(&self) -> Identity {
-        let mut caps = Capabilities::RELAXATION | Capabilities::CURRENT_OUTPUT | Capabilities::LOG;
+        let mut caps = Capabilities::RELAXATION
+            | Capabilities::CURRENT_OUTPUT
+            | Capabilities::LOG
+            | Capabilities::SETTINGS;
         if self.cfg.simulated {
             caps |= Capabilities::SIMULATED;
         }
@@ -850,7 +988,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             log_first,
             log_len,
             next_event: self.next_event,
-            stream_period_ms: self.stream_ms,
+            stream_period_ms: self.subscribed.then_some(self.settings.interval_ms),
             active_slot: self.active.map(|a| a.slot),
             cell_cal: self.cell_id,
             product_cal: self.active.map_or(CalId::NONE, |a| a.id),
@@ -868,7 +1006,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         if self.runner.busy() {
             return;
         }
-        let due = self.stream_ms.is_some() && now_ms >= self.next_due_ms;
+        let due = now_ms >= self.next_due_ms;
         let reading = due || self.pending.measure.is_some() || self.pending.selftest.is_some();
         let reference = self.pending.refcheck.is_some()
             || self.pending.selftest.is_some()
@@ -877,12 +1015,19 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         if !(reading || self.pending.refcheck.is_some()) {
             return;
         }
-        if let (true, Some(p)) = (due, self.stream_ms) {
-            self.next_due_ms = self.next_due_ms.saturating_add(u64::from(p));
+        if due {
+            // On the device's own clock; a reading missed (a long request,
+            // a stalled front end) is skipped, not caught up.
+            let p = u64::from(self.settings.interval_ms);
+            self.next_due_ms = self.next_due_ms.saturating_add(p);
             if self.next_due_ms <= now_ms {
-                self.next_due_ms = now_ms.saturating_add(u64::from(p));
+                self.next_due_ms = now_ms.saturating_add(p);
             }
         }
+        // The job answers the requests made before it started; later ones
+        // wait for the next job (so a `Measure` after a change of product
+        // never gets a reading acquired before it).
+        self.in_job = core::mem::take(&mut self.pending);
         self.runner.start(Job {
             electrodes: reading,
             reference,
@@ -926,7 +1071,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                 baseline,
                 ok,
             });
-            if let (Some(id), Some(rc)) = (self.pending.refcheck.take(), ref_check) {
+            if let (Some(id), Some(rc)) = (self.in_job.refcheck.take(), ref_check) {
                 self.respond(tx, id, Response::RefCheck(rc));
             }
         }
@@ -980,7 +1125,12 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             );
         }
         let was_fault = self.output_fault;
-        self.drive_output(reading.moisture_pct);
+        self.last_moisture = reading.moisture_pct.filter(|m| m.is_finite());
+        if self.last_moisture.is_some() {
+            self.last_valid_ms = now_ms;
+            self.stale = false;
+        }
+        self.drive_output(self.last_moisture);
         if self.output_fault && !was_fault {
             self.event(
                 now_ms,
@@ -990,13 +1140,13 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                 tx,
             );
         }
-        if self.stream_ms.is_some() {
+        if self.subscribed {
             self.send(tx, &DeviceFrame::Reading(reading));
         }
-        if let Some(id) = self.pending.measure.take() {
+        if let Some(id) = self.in_job.measure.take() {
             self.respond(tx, id, Response::Reading(reading));
         }
-        if let Some(id) = self.pending.selftest.take() {
+        if let Some(id) = self.in_job.selftest.take() {
             let storage_ok = self.scratch_test();
             let frontend_ok = !raw.frontend_error
                 && raw.reference.is_some_and(|r| {
@@ -1059,7 +1209,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
     }
 
     fn drive_output(&mut self, moisture_pct: Option<f32>) {
-        let (ma, _) = output::current_ma(&self.output_cfg, moisture_pct);
+        let (ma, _) = output::current_ma(&self.settings.output, moisture_pct);
         self.output_ma = ma;
         self.output_fault = self.out.set_ma(ma).is_err();
     }
@@ -1121,7 +1271,7 @@ struct Stored {
     cell: Option<CellCal>,
     active: Option<Active>,
     active_slot: Option<u8>,
-    output_cfg: OutputConfig,
+    settings: Settings,
 }
 
 impl Stored {
@@ -1151,10 +1301,21 @@ impl Stored {
         let cell = storage
             .cell_cal()?
             .filter(|c| check_cell(c, &config.measure.freqs_hz).is_ok());
-        let output_cfg = storage
-            .get::<OutputConfig>(key::OUTPUT)?
-            .filter(|o| output::validate(o).is_ok())
-            .unwrap_or(DEFAULT_OUTPUT);
+        // The settings; a device that only has the 1.0 output configuration
+        // keeps its span and failure level.
+        let settings = match storage.get::<Settings>(key::SETTINGS)? {
+            Some(s) if device_settings::validate(&s).is_ok() => s,
+            _ => {
+                let mut s = config.settings.clone();
+                if let Some(o) = storage
+                    .get::<OutputConfig>(key::OUTPUT)?
+                    .filter(|o| output::validate(o).is_ok())
+                {
+                    s.output = o;
+                }
+                s
+            }
+        };
         let active_slot = storage.get::<Option<u8>>(key::ACTIVE_SLOT)?.flatten();
         let active = load_active(storage, active_slot)?;
         // Boot events, numbered on from the log; their time is 0 (ms since
@@ -1183,7 +1344,7 @@ impl Stored {
             cell,
             active,
             active_slot,
-            output_cfg,
+            settings,
         })
     }
 }

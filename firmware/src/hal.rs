@@ -48,6 +48,11 @@ pub enum FrontendError {
     Bus,
     /// The synthesiser did not lock.
     NotLocked,
+    /// The converter has not finished the record yet: the core asks again
+    /// at its next step. A front end that stays here has stalled; the
+    /// device then produces no reading, and its loop goes to the failure
+    /// level after the stale-output timeout ([`fringe_protocol::Settings`]).
+    NotReady,
 }
 
 impl fmt::Display for FrontendError {
@@ -58,6 +63,7 @@ impl fmt::Display for FrontendError {
             }
             FrontendError::Bus => write!(f, "front end: no answer on the bus"),
             FrontendError::NotLocked => write!(f, "front end: synthesiser not locked"),
+            FrontendError::NotReady => write!(f, "front end: record not ready"),
         }
     }
 }
@@ -95,6 +101,8 @@ pub trait Frontend {
     /// Acquires one record of both channels (ADC codes).
     ///
     /// # Errors
+    /// [`FrontendError::NotReady`] while the record is not complete (the
+    /// core retries the same record at its next step); another
     /// [`FrontendError`] if the ADC does not deliver.
     fn acquire(
         &mut self,

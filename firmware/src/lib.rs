@@ -11,8 +11,10 @@
 //! - [`storage`] on [`flash`]: settings, calibrations, counters, reading and
 //!   event logs on a NOR flash through `sequential-storage`;
 //! - [`output`]: moisture to 4-20 mA with NAMUR NE 43 signalling;
-//! - [`device`]: the [`Device`] that owns all of it, answers the protocol
-//!   and runs the schedule from `poll`;
+//! - [`settings`]: the plant's device settings (tag, interval, span,
+//!   failure level, stale-output timeout), their defaults and checks;
+//! - [`device`]: the [`Device`] that owns all of it, measures on its own
+//!   schedule from `poll`, answers the protocol;
 //! - `sim` (feature `sim`): a simulated front end, physically honest.
 //!
 //! No heap, no globals, no panics reachable from input; the only clock is the
@@ -36,6 +38,7 @@ pub mod flash;
 pub mod hal;
 pub mod measure;
 pub mod output;
+pub mod settings;
 #[cfg(feature = "sim")]
 pub mod sim;
 pub mod storage;

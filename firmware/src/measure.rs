@@ -239,6 +239,8 @@ impl Runner {
             }
             Step::Record { pass, freq, n } => {
                 match fe.acquire(&mut self.sensor, &mut self.reference) {
+                    // Not finished: the same record again at the next step.
+                    Err(FrontendError::NotReady) => return None,
                     Ok(()) => {
                         self.avg.push(demod::record(
                             &self.sensor,

@@ -99,6 +99,9 @@ pub struct Scenario {
     pub chain_drift_pct_per_h: f32,
     /// Slow drift of the internal reference capacitor, % per hour.
     pub reference_drift_pct_per_h: f32,
+    /// The converter never finishes a record ([`FrontendError::NotReady`]):
+    /// a stalled front end.
+    pub stalled: bool,
 }
 
 impl Default for Scenario {
@@ -112,6 +115,7 @@ impl Default for Scenario {
             noise_codes: 4.0,
             chain_drift_pct_per_h: 0.0,
             reference_drift_pct_per_h: 0.0,
+            stalled: false,
         }
     }
 }
@@ -325,6 +329,9 @@ impl Frontend for SimFrontend {
         sensor: &mut [i16; RECORD_LEN],
         reference: &mut [i16; RECORD_LEN],
     ) -> Result<(), FrontendError> {
+        if self.scenario.stalled {
+            return Err(FrontendError::NotReady);
+        }
         let ratio = self
             .admittance(self.freq_hz)
             .scale(r_t(self.freq_hz))

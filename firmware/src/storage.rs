@@ -16,18 +16,22 @@
 //! | 2 | write counter (highest accepted), `u32` |
 //! | 3 | cell calibration [`CellCal`] |
 //! | 4 | active product slot, `Option<u8>` |
-//! | 5 | 4-20 mA configuration [`fringe_protocol::OutputConfig`] |
+//! | 5 | 4-20 mA configuration [`fringe_protocol::OutputConfig`] (protocol 1.0; read at boot when 7 is absent) |
+//! | 6 | self-test scratch value |
+//! | 7 | device settings [`fringe_protocol::Settings`] (tag, interval, span, failure level, stale timeout) |
 //! | 16..=23 | product calibration slot 0..=7, `Option<ProductCal>` |
 //!
 //! One map item is written atomically (a power cut leaves the old value or
 //! the new one: the item's CRC decides), so a calibration is never a mix.
 //! The two queues are rings: when full, the oldest page is erased. The
-//! reading log holds [`Storage::log_capacity`] readings at least (48 per
+//! reading log holds [`Storage::log_capacity`] readings at least (56 per
 //! 4 KiB page at the largest reading size, one page kept free for the ring):
-//! 64 KiB flash 432, 256 KiB 2 736, 1 MiB 11 952 (printed by the `reading`
-//! bench). At one reading a second the 1 MiB log spans about 3.3 hours;
-//! set [`crate::DeviceConfig::log_readings`] and the streaming period to suit
-//! the flash's endurance.
+//! 64 KiB flash 504, 256 KiB 3 192, 1 MiB 13 944 (printed by the `reading`
+//! bench). The device logs every reading of its schedule: at one reading a
+//! second the 256 KiB log spans about 53 minutes and each of its pages is
+//! erased about 0.9 times an hour (`flash_wear` bench, BENCHMARKS.md); set
+//! the interval ([`fringe_protocol::Settings`]) and
+//! [`crate::DeviceConfig::log_readings`] to suit the flash's endurance.
 
 use core::ops::Range;
 
@@ -55,8 +59,10 @@ pub mod key {
     pub const CELL_CAL: u8 = 3;
     /// Active product slot.
     pub const ACTIVE_SLOT: u8 = 4;
-    /// Output configuration.
+    /// Output configuration (protocol 1.0; superseded by [`SETTINGS`]).
     pub const OUTPUT: u8 = 5;
+    /// Device settings.
+    pub const SETTINGS: u8 = 7;
     /// First product slot.
     pub const PRODUCT_BASE: u8 = 16;
 }

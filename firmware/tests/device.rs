@@ -58,9 +58,11 @@ fn board_diagnostics_reach_status_and_identity() {
         Response::Status(s) => assert_eq!((s.stack_free_bytes, s.reading_cost), (None, None)),
         other => panic!("{other:?}"),
     }
-    assert_eq!(b.dev.readings_since_boot(), 0);
-    b.measure();
-    assert_eq!(b.dev.readings_since_boot(), 1);
+    // The device measures on its own from boot on; a Measure adds one.
+    let before = b.dev.readings_since_boot();
+    let r = b.measure();
+    assert_eq!(r.seq.counter + 1, b.dev.readings_since_boot());
+    assert!(b.dev.readings_since_boot() > before);
     b.dev.set_diagnostics(fringe_firmware::Diagnostics {
         stack_free_bytes: Some(54_000),
         reading_cost: Some(320_000),
@@ -112,38 +114,71 @@ fn uncalibrated_reading_says_so_and_invents_nothing() {
     assert_eq!(r2.seq.counter, 1);
 }
 
+fn streamed(seen: &[DeviceFrame]) -> Vec<Reading> {
+    seen.iter()
+        .filter_map(|f| match f {
+            DeviceFrame::Reading(r) => Some(*r),
+            _ => None,
+        })
+        .collect()
+}
+
+/// Since protocol 1.1 `StartStream` subscribes to the readings of the
+/// device's own schedule; its period no longer sets the rate, the
+/// `interval_ms` setting does.
 #[test]
-fn streams_at_the_configured_period() {
+fn a_subscription_streams_at_the_device_interval() {
     let mut b = Bench::new(3, Scenario::default());
     assert_eq!(b.ok(Request::StartStream { period_ms: 500 }), Response::Ack);
     b.seen.clear();
     for _ in 0..5000 {
         b.tick(1);
     }
-    let readings: Vec<Reading> = b
-        .seen
-        .iter()
-        .filter_map(|f| match f {
-            DeviceFrame::Reading(r) => Some(*r),
-            _ => None,
-        })
-        .collect();
+    let readings = streamed(&b.seen);
     assert!(
-        (9..=11).contains(&readings.len()),
-        "{} readings in 5 s",
+        (4..=6).contains(&readings.len()),
+        "{} readings in 5 s at the default 1 s interval",
         readings.len()
     );
     for w in readings.windows(2) {
         assert_eq!(w[1].seq.counter, w[0].seq.counter + 1);
         let dt = w[1].time_ms - w[0].time_ms;
-        assert!((490..=510).contains(&dt), "period {dt} ms");
+        assert!((990..=1010).contains(&dt), "interval {dt} ms");
     }
+    let mut fast = fringe_firmware::settings::default_settings();
+    fast.interval_ms = 500;
+    assert_eq!(b.ok(Request::WriteSettings(fast)), Response::Ack);
+    match b.ok(Request::Status) {
+        Response::Status(s) => assert_eq!(s.stream_period_ms, Some(500)),
+        other => panic!("{other:?}"),
+    }
+    b.seen.clear();
+    for _ in 0..5000 {
+        b.tick(1);
+    }
+    let readings = streamed(&b.seen);
+    assert!(
+        (9..=11).contains(&readings.len()),
+        "{} readings in 5 s at 500 ms",
+        readings.len()
+    );
+    for w in readings.windows(2) {
+        let dt = w[1].time_ms - w[0].time_ms;
+        assert!((490..=510).contains(&dt), "interval {dt} ms");
+    }
+    // Unsubscribed, nothing is sent, but the device goes on measuring.
     assert_eq!(b.ok(Request::StopStream), Response::Ack);
+    let counter = b.dev.readings_since_boot();
     b.seen.clear();
     for _ in 0..1000 {
         b.tick(1);
     }
-    assert!(!b.seen.iter().any(|f| matches!(f, DeviceFrame::Reading(_))));
+    assert!(streamed(&b.seen).is_empty());
+    assert!(b.dev.readings_since_boot() > counter);
+    match b.ok(Request::Status) {
+        Response::Status(s) => assert_eq!(s.stream_period_ms, None),
+        other => panic!("{other:?}"),
+    }
     let too_fast = b.ask(Request::StartStream { period_ms: 10 });
     assert_eq!(Bench::error_code(&too_fast), Some(ErrorCode::OutOfRange));
 }

@@ -45,8 +45,15 @@ pub struct CalRecordBody {
 /// A reading reduced to what the monitors and the report need.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Row {
-    /// Device time, ms.
+    /// Wall-clock time, ms since the Unix epoch: re-based for a reading
+    /// taken before the device clock was set (see
+    /// [`crate::store::StoredReading::wall_ms`]); the device's time since
+    /// boot when that is not known (`clock_known` false).
     pub time_ms: i64,
+    /// The time was re-based from a time since boot.
+    pub rebased: bool,
+    /// The wall-clock time is known.
+    pub clock_known: bool,
     /// The reading.
     pub reading: Reading,
 }
@@ -135,7 +142,9 @@ impl LineData {
         });
         store.for_each_reading(&self.serial, from, Seq::from_u64(u64::MAX), |r| {
             self.rows.push(Row {
-                time_ms: r.reading.time_ms as i64,
+                time_ms: r.wall_ms.unwrap_or(r.reading.time_ms as i64),
+                rebased: r.rebased,
+                clock_known: r.wall_ms.is_some(),
                 reading: r.reading,
             });
             Ok(())

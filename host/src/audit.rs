@@ -18,7 +18,8 @@
 //!
 //! The exported range is the contiguous chain slice from the first to the
 //! last record whose time lies in `[from, to]` (reading and event device
-//! time, calibration and lab-sample record time), so the slice links from
+//! time, re-based onto wall-clock time for those taken before the device
+//! clock was set; calibration and lab-sample record time), so the slice links from
 //! its anchor (the hash before its first record) to its last hash with no
 //! gap. `fringe audit verify BUNDLE` recomputes every link and compares every
 //! CSV cell with the record it copies; every changed, removed, added or
@@ -279,18 +280,53 @@ fn json_record(r: &ChainedRecord) -> JsonRecord {
     }
 }
 
-/// The time a record is filed under for the range (see the module doc).
-fn record_time_ms(r: &ChainedRecord) -> Option<i64> {
+/// When each device's boots had their clock first set (see
+/// [`crate::store::BootClock`]), by serial.
+type Clocks = std::collections::HashMap<String, BTreeMap<u32, crate::store::BootClock>>;
+
+/// The time a record is filed under for the range (see the module doc): a
+/// reading taken before its device's clock was set, and an event logged
+/// before, at its re-based wall-clock time; one whose boot never had its
+/// clock set is in no wall-clock range.
+fn record_time_ms(r: &ChainedRecord, clocks: &Clocks) -> Option<i64> {
     let col = match r.table {
         Table::Devices => "first_seen_unix_ms",
         Table::Readings | Table::Events | Table::ReferenceChecks => "time_ms",
         Table::Calibrations => "created_unix_ms",
         Table::LabSamples => "taken_unix_ms",
     };
-    value_of(r, col).and_then(|v| match v {
-        Value::Integer(i) => Some(*i),
-        _ => None,
-    })
+    let int = |c: &str| {
+        value_of(r, c).and_then(|v| match v {
+            Value::Integer(i) => Some(*i),
+            _ => None,
+        })
+    };
+    let t = int(col)?;
+    let clock = || {
+        let serial = match r.values.first() {
+            Some(Value::Text(s)) => s.as_str(),
+            _ => "",
+        };
+        let boot = u32::try_from(int("boot")?).ok()?;
+        clocks.get(serial)?.get(&boot).copied()
+    };
+    match r.table {
+        Table::Readings => {
+            let flags = int("flags").unwrap_or(0);
+            if flags & i64::from(fringe_protocol::Flags::CLOCK_UNSET.bits()) == 0 {
+                Some(t)
+            } else {
+                clock().map(|c| c.origin_ms + t)
+            }
+        }
+        Table::Events if (t as u64) < crate::session::CLOCK_SET_AFTER_MS => {
+            let number = int("number")?;
+            clock()
+                .filter(|c| number <= i64::from(c.event_number))
+                .map(|c| c.origin_ms + t)
+        }
+        _ => Some(t),
+    }
 }
 
 fn value_of<'a>(r: &'a ChainedRecord, col: &str) -> Option<&'a Value> {
@@ -416,6 +452,11 @@ pub fn export(
             });
         }
     }
+    let mut clocks = Clocks::new();
+    for d in store.devices()? {
+        let c = store.boot_clocks(&d.serial)?;
+        clocks.insert(d.serial, c);
+    }
     // Pass 1: the slice, its anchor, the calibrations the readings used.
     let mut first: Option<(u64, Hash)> = None;
     let mut last: Option<u64> = None;
@@ -428,7 +469,7 @@ pub fn export(
         columns
             .entry(r.table.name().to_string())
             .or_insert_with(|| r.columns.iter().map(|c| c.to_string()).collect());
-        let in_range = record_time_ms(&r).is_some_and(|t| t >= from_ms && t <= to_ms);
+        let in_range = record_time_ms(&r, &clocks).is_some_and(|t| t >= from_ms && t <= to_ms);
         if in_range {
             if first.is_none() {
                 first = Some((r.position, prev));

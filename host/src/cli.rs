@@ -17,9 +17,13 @@ use clap::{Args, Parser, Subcommand};
     after_help = "Exit codes are listed in the README (0 success, 2 usage, 3 bad file, 10-16 port and device, 20-23 database)."
 )]
 pub struct Cli {
-    /// Line configuration file (TOML: port, baud, db, alarm limits); flags override it.
+    /// Line configuration file (TOML: port, baud, db, key_file, alarm limits); flags override it.
     #[arg(long, global = true, value_name = "FILE")]
     pub config: Option<PathBuf>,
+
+    /// Show times in UTC instead of local time with its offset.
+    #[arg(long, global = true)]
+    pub utc: bool,
 
     /// What to do.
     #[command(subcommand)]
@@ -44,14 +48,18 @@ pub enum Command {
         after_help = "Example:\n  fringe sim --scenario scenarios/harrowgate-line2-wheat.toml --link /tmp/fringe-line2\n  (then, in another terminal: fringe monitor --port /tmp/fringe-line2 --db line2.db)"
     )]
     Sim(SimArgs),
-    /// Stream readings, show them live and store every one (gaps are backfilled from the device log).
+    /// Store what the device logged that the database lacks, then show the readings live and store every one.
     #[command(
-        after_help = "Example:\n  fringe monitor --port /dev/ttyUSB0 --db line2.db\n  fringe --config line2.toml monitor\nCtrl-C stops and commits what arrived."
+        after_help = "Example:\n  fringe monitor --port /dev/ttyUSB0 --db line2.db --key-file hgm-l2-0007.key\n  fringe --config line2.toml monitor\nWith the device key it sets the device clock when it is unset or off by more than a second.\nCtrl-C stops and commits what arrived."
     )]
     Monitor(MonitorArgs),
-    /// Read the device's stored log and events from the last stored ones on (idempotent).
-    #[command(after_help = "Example:\n  fringe pull --port /dev/ttyUSB0 --db line2.db")]
+    /// Store every reading and event the device still holds that the database lacks (idempotent).
+    #[command(
+        after_help = "Example:\n  fringe pull --port /dev/ttyUSB0 --db line2.db --key-file hgm-l2-0007.key\nReadings before, between and after those stored are fetched; none is stored twice.\nWith the device key it sets the device clock when it is unset or off by more than a second."
+    )]
     Pull(PullArgs),
+    /// The device itself: its clock, its settings (tag, interval, 4-20 mA span, failure level, stale timeout).
+    Device(DeviceArgs),
     /// Product and cell calibration: fit, predict, cell, capture, push, list, select, history.
     Cal(crate::cmd::quality::CalArgs),
     /// Lab grab samples.
@@ -135,9 +143,14 @@ pub struct MonitorArgs {
     /// Database file (created if missing) [default: `db` in the line file].
     #[arg(long, short = 'd', value_name = "FILE")]
     pub db: Option<PathBuf>,
-    /// Streaming period, ms of device time (the device refuses < 100).
-    #[arg(long, value_name = "MS", default_value_t = 1000, value_parser = clap::value_parser!(u32).range(1..=86_400_000))]
-    pub period_ms: u32,
+    /// No longer used: the device measures at its own interval (`fringe
+    /// device config set --interval-ms`); accepted for old scripts, with a notice.
+    #[arg(long, value_name = "MS", value_parser = clap::value_parser!(u32).range(1..=86_400_000))]
+    pub period_ms: Option<u32>,
+    /// Device key file (64 hex digits) [default: `key_file` in the line file]:
+    /// lets the monitor set the device clock.
+    #[arg(long, value_name = "FILE")]
+    pub key_file: Option<PathBuf>,
     /// Stop after this many streamed readings.
     #[arg(long, value_name = "N")]
     pub count: Option<u64>,
@@ -178,7 +191,141 @@ pub struct PullArgs {
     /// Database file (created if missing) [default: `db` in the line file].
     #[arg(long, short = 'd', value_name = "FILE")]
     pub db: Option<PathBuf>,
+    /// Device key file (64 hex digits) [default: `key_file` in the line file]:
+    /// lets the pull set the device clock.
+    #[arg(long, value_name = "FILE")]
+    pub key_file: Option<PathBuf>,
     /// Print the summary as JSON.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// `fringe device`.
+#[derive(Debug, Clone, Args)]
+pub struct DeviceArgs {
+    /// What to do.
+    #[command(subcommand)]
+    pub command: DeviceCommand,
+}
+
+/// `fringe device ...`.
+#[derive(Debug, Clone, Subcommand)]
+pub enum DeviceCommand {
+    /// Show the device clock against this computer's; set it (with the device key).
+    #[command(
+        after_help = "Examples:\n  fringe device clock --port /dev/ttyUSB0\n  fringe device clock --port /dev/ttyUSB0 --key-file hgm-l2-0007.key --set\n  fringe device clock --port /dev/ttyUSB0 --key-file hgm-l2-0007.key --set-to \"2026-12-01 07:30\"\nTimes are shown in local time with the offset (--utc for UTC)."
+    )]
+    Clock(ClockArgs),
+    /// Show or change the device settings.
+    Config(ConfigArgs),
+}
+
+/// `fringe device clock`.
+#[derive(Debug, Clone, Args)]
+pub struct ClockArgs {
+    /// The device.
+    #[command(flatten)]
+    pub port: PortArgs,
+    /// Set the device clock to this computer's time.
+    #[arg(long, conflicts_with = "set_to")]
+    pub set: bool,
+    /// Set the device clock to this time: RFC 3339 with an offset
+    /// (2026-12-01T07:29:00+01:00, ...Z); without an offset (2026-12-01
+    /// 07:29) it is local time.
+    #[arg(long, value_name = "TIME", value_parser = crate::timefmt::parse_time)]
+    pub set_to: Option<i64>,
+    /// Device key file (64 hex digits), needed to set [default: `key_file` in the line file].
+    #[arg(long, value_name = "FILE")]
+    pub key_file: Option<PathBuf>,
+    /// Print JSON instead of text.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// `fringe device config`.
+#[derive(Debug, Clone, Args)]
+pub struct ConfigArgs {
+    /// What to do.
+    #[command(subcommand)]
+    pub command: ConfigCommand,
+}
+
+/// `fringe device config ...`.
+#[derive(Debug, Clone, Subcommand)]
+pub enum ConfigCommand {
+    /// Show the settings the device holds.
+    #[command(
+        after_help = "Example:\n  fringe device config show --port /dev/ttyUSB0\n  fringe device config show --port /dev/ttyUSB0 --json"
+    )]
+    Show(ConfigShowArgs),
+    /// Change settings (authenticated with the device key, read back, recorded in the database with who and why).
+    #[command(
+        after_help = "Example:\n  fringe device config set --port /dev/ttyUSB0 --key-file hgm-l2-0007.key --db line2.db \\\n      --span-low-pct 8 --span-high-pct 22 --fail high --operator \"R. Okafor\" --reason \"dryer PLC rescaled\"\nSettings not given keep their value. The 4-20 mA output changes at once: tell the control room first\nand put dependent loops in manual."
+    )]
+    Set(ConfigSetArgs),
+}
+
+/// `fringe device config show`.
+#[derive(Debug, Clone, Args)]
+pub struct ConfigShowArgs {
+    /// The device.
+    #[command(flatten)]
+    pub port: PortArgs,
+    /// Print JSON instead of text.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// Which NAMUR NE 43 failure level the loop signals.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum FailLevel {
+    /// 3.5 mA (NE 43: at most 3.6 mA).
+    Low,
+    /// 21.5 mA (NE 43: at least 21 mA).
+    High,
+}
+
+/// `fringe device config set`.
+#[derive(Debug, Clone, Args)]
+pub struct ConfigSetArgs {
+    /// The device.
+    #[command(flatten)]
+    pub port: PortArgs,
+    /// Device key file (64 hex digits) [default: `key_file` in the line file].
+    #[arg(long, value_name = "FILE")]
+    pub key_file: Option<PathBuf>,
+    /// Database that records the change [default: `db` in the line file].
+    #[arg(long, short = 'd', value_name = "FILE")]
+    pub db: Option<PathBuf>,
+    /// Measuring-point tag (up to 24 bytes, no control characters; "" clears it).
+    #[arg(long, value_name = "TAG")]
+    pub tag: Option<String>,
+    /// Measurement interval, ms (100 to 3600000).
+    #[arg(long, value_name = "MS")]
+    pub interval_ms: Option<u32>,
+    /// Moisture at 4 mA, %.
+    #[arg(long, value_name = "PCT")]
+    pub span_low_pct: Option<f32>,
+    /// Moisture at 20 mA, %.
+    #[arg(long, value_name = "PCT")]
+    pub span_high_pct: Option<f32>,
+    /// Failure level of the loop (NAMUR NE 43).
+    #[arg(long, value_enum, value_name = "LEVEL")]
+    pub fail: Option<FailLevel>,
+    /// With no valid reading for this long the loop goes to its failure level, ms
+    /// (at least twice the interval, at most a day).
+    #[arg(long, value_name = "MS")]
+    pub stale_timeout_ms: Option<u32>,
+    /// Who makes the change.
+    #[arg(long)]
+    pub operator: String,
+    /// Why.
+    #[arg(long)]
+    pub reason: String,
+    /// Do not ask before writing.
+    #[arg(long)]
+    pub yes: bool,
+    /// Print the result as JSON.
     #[arg(long)]
     pub json: bool,
 }

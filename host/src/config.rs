@@ -8,6 +8,8 @@
 //! port = "/dev/ttyUSB0"   # serial port of the sensor
 //! baud = 115200           # baud rate
 //! db = "line2.db"         # database file (relative to this file's folder)
+//! key_file = "hgm-l2-0007.key"  # device key, 64 hex digits (relative to this file's
+//!                               # folder): lets monitor and pull set the device clock
 //!
 //! [alarm]                 # limits shown in `fringe monitor`
 //! moisture_low_pct = 12.0
@@ -152,6 +154,9 @@ pub struct LineConfig {
     pub baud: Option<u32>,
     /// Database file; relative paths are taken from the file's folder.
     pub db: Option<PathBuf>,
+    /// Device key file (64 hex digits); relative paths are taken from the
+    /// file's folder.
+    pub key_file: Option<PathBuf>,
     /// Alarm limits.
     #[serde(default)]
     pub alarm: AlarmLimits,
@@ -196,10 +201,11 @@ impl LineConfig {
                 ));
             }
         }
-        if let Some(db) = &c.db {
-            if db.is_relative() {
-                if let Some(dir) = path.parent() {
-                    c.db = Some(dir.join(db));
+        let dir = path.parent();
+        for p in [&mut c.db, &mut c.key_file] {
+            if let (Some(f), Some(dir)) = (p.as_ref(), dir) {
+                if f.is_relative() {
+                    *p = Some(dir.join(f));
                 }
             }
         }

@@ -195,6 +195,10 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
     };
     let mut cfg = DeviceConfig::new(SERIAL, DEMO_KEY);
     cfg.simulated = true;
+    // One reading a minute (the device measures on its own schedule; the
+    // shift below subscribes to it).
+    cfg.settings.interval_ms = 60_000;
+    cfg.settings.stale_timeout_ms = 300_000;
     let sim = SimHandle::boot(a.seed, air_bench, cfg).map_err(anyhow::Error::msg)?;
     let opts = LinkOptions {
         timeout: std::time::Duration::from_millis(2000),

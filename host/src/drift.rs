@@ -365,10 +365,10 @@ impl Alarm {
         };
         format!(
             "{what} since {} (observation {}), flagged by {:?} at {} (observation {}): {}",
-            fmt_time(self.since_ms),
+            crate::timefmt::fmt_person(self.since_ms),
             self.since_index,
             self.chart,
-            fmt_time(self.time_ms),
+            crate::timefmt::fmt_person(self.time_ms),
             self.index,
             self.action.advice()
         )

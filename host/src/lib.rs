@@ -6,6 +6,8 @@
 //! - [`cli`]: the command line (clap derive, no I/O);
 //! - [`config`]: the line configuration file and TOML loading;
 //! - [`link`]: a connection to a device (handshake, requests, reconnect);
+//! - [`session`]: the line session's logic without a terminal: the device
+//!   clock on each connection, which parts of the device log to read;
 //! - [`sim`]: the simulated device on a pseudo-terminal, scenario files;
 //! - [`store`]: the durable log (SQLite, append-only, hash chain);
 //! - [`drift`]: drift monitors; [`samples`]: reference-sample files;
@@ -44,6 +46,7 @@ pub mod product_file;
 pub mod quality;
 pub mod report;
 pub mod samples;
+pub mod session;
 pub mod sim;
 pub mod simport;
 pub mod store;
@@ -75,12 +78,14 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Some(p) => LineConfig::load(p)?,
         None => LineConfig::default(),
     };
+    timefmt::set_utc(cli.utc);
     match &cli.command {
         Command::Identify(a) => cmd::device::identify(a, &cfg),
         Command::Status(a) => cmd::device::status(a, &cfg),
         Command::Sim(a) => cmd::sim::sim(a, &*stop_flag()?),
         Command::Monitor(a) => cmd::monitor::monitor(a, &cfg, &*stop_flag()?),
         Command::Pull(a) => cmd::pull::pull(a, &cfg),
+        Command::Device(a) => cmd::device::device(a, &cfg),
         Command::Cal(a) => cmd::quality::cal(a, &cfg),
         Command::Lab(a) => cmd::quality::lab(a),
         Command::Drift(a) => quality::drift(a),

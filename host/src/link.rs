@@ -382,6 +382,8 @@ pub fn request_name(r: &Request) -> &'static str {
         Request::SelfTest => "SelfTest",
         Request::Reboot => "Reboot",
         Request::SetOutput(_) => "SetOutput",
+        Request::ReadSettings => "ReadSettings",
+        Request::WriteSettings(_) => "WriteSettings",
     }
 }
 

@@ -42,7 +42,9 @@ pub struct LabAddArgs {
     /// Database file.
     #[arg(long, value_name = "FILE")]
     pub db: PathBuf,
-    /// When the sample was taken (UTC, e.g. 2026-12-01T09:40Z).
+    /// When the sample was taken: RFC 3339 with an offset
+    /// (2026-12-01T09:40+01:00, 2026-12-01T08:40Z); without an offset
+    /// (2026-12-01 09:40) it is local time.
     #[arg(long, value_name = "T", value_parser = parse_time)]
     pub time: i64,
     /// Lab moisture, % (basis as --basis).
@@ -154,10 +156,13 @@ pub struct AuditExportArgs {
     /// Database file.
     #[arg(long, value_name = "FILE")]
     pub db: PathBuf,
-    /// Start of the range (UTC) [default: the beginning].
+    /// Start of the range [default: the beginning]: RFC 3339 with an
+    /// offset (2026-12-01T06:00+01:00, ...Z); without an offset it is local
+    /// time. Readings taken before the device clock was set count at their
+    /// re-based wall-clock time.
     #[arg(long, value_name = "T", value_parser = parse_time)]
     pub from: Option<i64>,
-    /// End of the range (UTC) [default: now].
+    /// End of the range [default: now]; as --from.
     #[arg(long, value_name = "T", value_parser = parse_time)]
     pub to: Option<i64>,
     /// Output folder (created; must not hold files).
@@ -237,12 +242,16 @@ pub fn lab_add(a: &LabAddArgs) -> anyhow::Result<()> {
     let mut store = Store::open(&a.db)?;
     let serial = only_device(&store, a.serial.as_deref())?;
     let readings = store.readings(&serial)?;
+    // By wall-clock time (re-based for readings taken before the clock was
+    // set); a reading whose wall-clock time is not known cannot match.
     let nearest = readings
         .iter()
         .filter(|r| r.reading.moisture_pct.is_some())
-        .min_by_key(|r| (r.reading.time_ms as i64 - a.time).abs());
-    let matched =
-        nearest.filter(|r| (r.reading.time_ms as i64 - a.time).abs() <= a.match_within_s * 1000);
+        .filter_map(|r| r.wall_ms.map(|t| (r, t)))
+        .min_by_key(|(_, t)| (t - a.time).abs());
+    let matched = nearest
+        .filter(|(_, t)| (t - a.time).abs() <= a.match_within_s * 1000)
+        .map(|(r, _)| r);
     let sample_id = a
         .sample_id
         .clone()
@@ -283,16 +292,21 @@ pub fn lab_add(a: &LabAddArgs) -> anyhow::Result<()> {
     );
     match (matched, inline) {
         (Some(r), Some(i)) => crate::outln!(
-            "  matched reading {} at {}: inline {:.2} %, lab - inline {:+.2} %",
+            "  matched reading {} at {}{}: inline {:.2} %, lab - inline {:+.2} %",
             r.reading.seq,
-            fmt_time(r.reading.time_ms as i64),
+            crate::timefmt::fmt_person(r.wall_ms.unwrap_or(r.reading.time_ms as i64)),
+            if r.rebased {
+                " (taken before the device clock was set; re-based)"
+            } else {
+                ""
+            },
             i,
             a.moisture - f64::from(i)
         ),
         _ => crate::outln!(
             "  no inline reading within {} s of {}: stored unmatched",
             a.match_within_s,
-            fmt_time(a.time)
+            crate::timefmt::fmt_person(a.time)
         ),
     }
     if rec.duplicate {
@@ -460,8 +474,29 @@ pub fn report_input(
             flag_counts.push((name.to_string(), n));
         }
     }
+    // Times: readings taken before the device clock was set are placed at
+    // their re-based wall-clock time; those of a boot whose clock was never
+    // set keep their time since boot.
+    let rebased = data.rows.iter().filter(|r| r.rebased).count() as u64;
+    if rebased > 0 {
+        flag_counts.push((
+            "clock_unset, re-based onto wall-clock time".to_string(),
+            rebased,
+        ));
+    }
+    let unknown = data.rows.iter().filter(|r| !r.clock_known).count() as u64;
+    if unknown > 0 {
+        flag_counts.push((
+            "clock_unset, wall-clock time unknown (time since boot)".to_string(),
+            unknown,
+        ));
+    }
     let mut calibrations = Vec::new();
-    for kind in [crate::store::CalKind::Cell, crate::store::CalKind::Product] {
+    for kind in [
+        crate::store::CalKind::Cell,
+        crate::store::CalKind::Product,
+        crate::store::CalKind::Settings,
+    ] {
         if let Some((pos, created, _, body, name)) = data.cals.iter().rev().find(|c| c.2 == kind) {
             let mut rows = vec![
                 ("calibration id".to_string(), body.new_id.clone()),
@@ -508,6 +543,9 @@ pub fn report_input(
                 crate::store::CalKind::Cell => "Cell calibration".to_string(),
                 crate::store::CalKind::Product => {
                     format!("Product calibration {}", name.clone().unwrap_or_default())
+                }
+                crate::store::CalKind::Settings => {
+                    format!("Device settings {}", name.clone().unwrap_or_default())
                 }
             };
             calibrations.push((head, rows));
@@ -610,8 +648,8 @@ pub fn history(a: &HistoryArgs) -> anyhow::Result<()> {
     for (s, c, b) in &all {
         writeln!(
             w,
-            "{} {s} #{:<3} {:<7} {:<6} {} -> {} slot {} {:<16} by {}: {}",
-            fmt_time(c.created_unix_ms),
+            "{} {s} #{:<3} {:<8} {:<8} {} -> {} slot {} {:<16} by {}: {}",
+            crate::timefmt::fmt_person(c.created_unix_ms),
             c.seq,
             c.cal.kind.as_str(),
             b.action,
@@ -669,9 +707,9 @@ pub fn print_export(s: &audit::ExportSummary) -> anyhow::Result<()> {
     let m = &s.manifest;
     crate::outln!("wrote audit bundle {}", s.out.display());
     crate::outln!(
-        "  range {} .. {} (UTC)",
-        fmt_time(m.from_ms.max(0)),
-        fmt_time(m.to_ms)
+        "  range {} .. {}",
+        crate::timefmt::fmt_person(m.from_ms.max(0)),
+        crate::timefmt::fmt_person(m.to_ms)
     );
     crate::outln!(
         "  chain positions {}..={}, last hash {}",

@@ -1,112 +1,213 @@
-//! UTC times as plant engineers type them, and back.
+//! Times as people read and type them, and as files keep them.
+//!
+//! - [`fmt_time`]: UTC, `YYYY-MM-DDTHH:MM:SSZ`, for files, JSON and audit
+//!   bundles (stable whatever the machine's time zone).
+//! - [`fmt_person`]: what a person reads on a terminal: the local time with
+//!   its offset (`2026-12-01T07:29:00+01:00`), or UTC when `--utc` was
+//!   given ([`set_utc`]). The local zone is the system's (`TZ` if set,
+//!   else `/etc/localtime`), through `jiff`.
+//! - [`parse_time`]: what a person types: RFC 3339 with an offset
+//!   (`2026-12-01T07:29:00+01:00`, `2026-12-01T06:29Z`), the same without
+//!   an offset or with a space for `T` (local time), a date alone (local
+//!   midnight), or milliseconds since the Unix epoch.
+
+use std::sync::atomic::{AtomicBool, Ordering};
+
+use jiff::civil::DateTime;
+use jiff::tz::TimeZone;
+use jiff::Timestamp;
+
+/// What every time flag accepts, for help texts.
+pub const TIME_HELP: &str =
+    "RFC 3339 with an offset (2026-12-01T07:29:00+01:00, 2026-12-01T06:29Z); \
+without an offset (2026-12-01 07:29) it is local time";
+
+static UTC: AtomicBool = AtomicBool::new(false);
+
+/// Shows times to people in UTC instead of local time (`--utc`); set once
+/// by the binary before a command runs.
+pub fn set_utc(utc: bool) {
+    UTC.store(utc, Ordering::Relaxed);
+}
+
+/// Whether times are shown in UTC.
+pub fn utc() -> bool {
+    UTC.load(Ordering::Relaxed)
+}
 
 /// Formats ms since the Unix epoch as `YYYY-MM-DDTHH:MM:SSZ` (UTC).
 pub fn fmt_time(ms: i64) -> String {
-    let secs = ms.div_euclid(1000);
-    let days = secs.div_euclid(86_400);
-    let tod = secs.rem_euclid(86_400);
-    // Civil date from days since 1970-01-01 (Hinnant's algorithm).
-    let z = days + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z - era * 146_097;
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let d = doy - (153 * mp + 2) / 5 + 1;
-    let m = if mp < 10 { mp + 3 } else { mp - 9 };
-    let y = yoe + era * 400 + i64::from(m <= 2);
-    format!(
-        "{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z",
-        tod / 3600,
-        tod / 60 % 60,
-        tod % 60
-    )
+    match Timestamp::from_millisecond(ms) {
+        Ok(t) => t.strftime("%Y-%m-%dT%H:%M:%SZ").to_string(),
+        Err(_) => format!("{ms} ms"),
+    }
 }
 
-/// Days since 1970-01-01 of a civil date (Hinnant's algorithm).
-fn days_from_civil(y: i64, m: i64, d: i64) -> i64 {
-    let y = if m <= 2 { y - 1 } else { y };
-    let era = y.div_euclid(400);
-    let yoe = y - era * 400;
-    let mp = (m + 9) % 12;
-    let doy = (153 * mp + 2) / 5 + d - 1;
-    let doe = yoe * 365 + yoe / 4 - yoe / 100 + doy;
-    era * 146_097 + doe - 719_468
+/// Formats ms since the Unix epoch for a person: local time with its
+/// offset, or UTC with `Z` after [`set_utc`].
+pub fn fmt_person(ms: i64) -> String {
+    if utc() {
+        return fmt_time(ms);
+    }
+    fmt_in(ms, &TimeZone::system())
 }
 
-/// Parses a UTC time: `2026-12-01T06:30:00Z`, `2026-12-01T06:30Z`,
-/// `2026-12-01 06:30:00` (UTC), `2026-12-01` (midnight), or plain
-/// milliseconds since the Unix epoch. Returns ms since the epoch.
+/// Formats ms since the Unix epoch in `tz`, with the offset.
+pub fn fmt_in(ms: i64, tz: &TimeZone) -> String {
+    match Timestamp::from_millisecond(ms) {
+        Ok(t) => t
+            .to_zoned_datetime(tz.clone())
+            .strftime("%Y-%m-%dT%H:%M:%S%:z")
+            .to_string(),
+        Err(_) => format!("{ms} ms"),
+    }
+}
+
+/// Parses a time a person typed (see the module doc) in the system's time
+/// zone; returns ms since the Unix epoch.
 ///
 /// # Errors
-/// A message naming the text and the accepted forms.
+/// A message naming the text and the accepted forms (clap adds the flag).
 pub fn parse_time(s: &str) -> Result<i64, String> {
+    parse_time_in(s, &TimeZone::system())
+}
+
+/// [`parse_time`] with times without an offset taken in `tz`.
+///
+/// # Errors
+/// As [`parse_time`].
+pub fn parse_time_in(s: &str, tz: &TimeZone) -> Result<i64, String> {
     let t = s.trim();
-    let bad = || {
-        format!("`{s}` is not a time: use UTC like 2026-12-01T06:30:00Z, 2026-12-01 06:30, 2026-12-01, or milliseconds since 1970")
-    };
+    let bad = |why: &str| format!("`{s}` is not a time ({why}): use {TIME_HELP}");
     if !t.is_empty() && t.chars().all(|c| c.is_ascii_digit()) {
-        return t.parse().map_err(|_| bad());
+        return t.parse().map_err(|_| bad("too many digits"));
     }
-    let t = t
-        .strip_suffix('Z')
-        .or_else(|| t.strip_suffix("+00:00"))
-        .unwrap_or(t);
-    let (date, time) = match t.split_once(['T', ' ']) {
-        Some((d, h)) => (d, Some(h)),
-        None => (t, None),
+    if t.is_empty() {
+        return Err(bad("empty"));
+    }
+    // With an offset or Z: an instant.
+    let with_t = t.replacen(' ', "T", 1);
+    let has_offset = with_t.ends_with(['Z', 'z'])
+        || with_t
+            .get(10..)
+            .is_some_and(|rest| rest.contains('+') || rest.contains('-'));
+    if has_offset {
+        let fixed = with_seconds(&with_t);
+        return fixed
+            .parse::<Timestamp>()
+            .map(|ts| ts.as_millisecond())
+            .map_err(|e| bad(&e.to_string()));
+    }
+    // A date alone: local midnight.
+    let civil = if with_t.len() == 10 {
+        format!("{with_t}T00:00:00")
+    } else {
+        with_t
     };
-    let num = |x: &str| x.parse::<i64>().map_err(|_| bad());
-    let dp: Vec<&str> = date.split('-').collect();
-    if dp.len() != 3 || dp[0].len() != 4 {
-        return Err(bad());
+    let dt: DateTime = civil
+        .parse()
+        .map_err(|e: jiff::Error| bad(&e.to_string()))?;
+    tz.to_ambiguous_timestamp(dt)
+        .compatible()
+        .map(|ts| ts.as_millisecond())
+        .map_err(|e| bad(&e.to_string()))
+}
+
+/// `2026-12-01T06:29Z` -> `2026-12-01T06:29:00Z` (RFC 3339 needs seconds).
+fn with_seconds(t: &str) -> String {
+    let Some(time) = t.get(11..) else {
+        return t.to_string();
+    };
+    let end = time.find(['Z', 'z', '+', '-']).unwrap_or(time.len());
+    if time[..end].matches(':').count() == 1 {
+        format!("{}{}:00{}", &t[..11], &time[..end], &time[end..])
+    } else {
+        t.to_string()
     }
-    let (y, mo, d) = (num(dp[0])?, num(dp[1])?, num(dp[2])?);
-    if !(1..=12).contains(&mo) || !(1..=31).contains(&d) {
-        return Err(bad());
-    }
-    let mut ms = 0i64;
-    if let Some(h) = time {
-        let hp: Vec<&str> = h.split(':').collect();
-        if !(2..=3).contains(&hp.len()) {
-            return Err(bad());
-        }
-        let (hh, mm) = (num(hp[0])?, num(hp[1])?);
-        let sec: f64 = match hp.get(2) {
-            Some(x) => x.parse().map_err(|_| bad())?,
-            None => 0.0,
-        };
-        if !(0..24).contains(&hh) || !(0..60).contains(&mm) || !(0.0..61.0).contains(&sec) {
-            return Err(bad());
-        }
-        ms = (hh * 3600 + mm * 60) * 1000 + (sec * 1000.0).round() as i64;
-    }
-    Ok(days_from_civil(y, mo, d) * 86_400_000 + ms)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
 
+    fn berlin() -> TimeZone {
+        TimeZone::get("Europe/Berlin").expect("tz database (Debian tzdata)")
+    }
+
     #[test]
     fn time_formatting() {
         assert_eq!(fmt_time(0), "1970-01-01T00:00:00Z");
         // 2000-03-01T12:34:56Z = 951914096 s (leap-year boundary).
         assert_eq!(fmt_time(951_914_096_000), "2000-03-01T12:34:56Z");
+        // Central European Time in winter is UTC+1, in summer UTC+2.
+        assert_eq!(
+            fmt_in(1_796_106_540_000, &berlin()),
+            "2026-12-01T07:29:00+01:00"
+        );
+        assert_eq!(
+            fmt_in(1_782_894_540_000, &berlin()),
+            "2026-07-01T10:29:00+02:00"
+        );
+        assert_eq!(fmt_in(0, &TimeZone::UTC), "1970-01-01T00:00:00+00:00");
     }
 
     #[test]
     fn time_parsing_round_trips() {
-        assert_eq!(parse_time("2000-03-01T12:34:56Z"), Ok(951_914_096_000));
-        assert_eq!(parse_time("2000-03-01 12:34:56"), Ok(951_914_096_000));
-        assert_eq!(parse_time("951914096000"), Ok(951_914_096_000));
-        assert_eq!(parse_time("1970-01-02"), Ok(86_400_000));
+        let tz = berlin();
+        let at = 1_796_106_540_000; // 2026-12-01T06:29:00Z
+        for s in [
+            "2026-12-01T06:29:00Z",
+            "2026-12-01T06:29Z",
+            "2026-12-01 06:29:00Z",
+            "2026-12-01T07:29:00+01:00",
+            "2026-12-01T07:29+01:00",
+            "2026-12-01T01:29:00-05:00",
+            "1796106540000",
+        ] {
+            assert_eq!(parse_time_in(s, &tz), Ok(at), "{s}");
+        }
         assert_eq!(
-            parse_time("2026-12-01T06:30Z").map(fmt_time),
-            Ok("2026-12-01T06:30:00Z".into())
+            parse_time_in("2000-03-01T12:34:56Z", &tz),
+            Ok(951_914_096_000)
         );
-        let e = parse_time("yesterday").expect_err("words");
-        assert!(e.contains("`yesterday`"), "{e}");
-        assert!(parse_time("2026-13-01").is_err());
+    }
+
+    #[test]
+    fn times_without_an_offset_are_local() {
+        let tz = berlin();
+        // 09:40 in Berlin on 1 December is 08:40 UTC; on 1 July 07:40 UTC.
+        assert_eq!(
+            parse_time_in("2026-12-01 09:40", &tz).map(fmt_time),
+            Ok("2026-12-01T08:40:00Z".into())
+        );
+        assert_eq!(
+            parse_time_in("2026-07-01T09:40:00", &tz).map(fmt_time),
+            Ok("2026-07-01T07:40:00Z".into())
+        );
+        assert_eq!(
+            parse_time_in("2026-12-01", &tz).map(fmt_time),
+            Ok("2026-11-30T23:00:00Z".into())
+        );
+        assert_eq!(
+            parse_time_in("2026-12-01 09:40", &TimeZone::UTC).map(fmt_time),
+            Ok("2026-12-01T09:40:00Z".into())
+        );
+    }
+
+    #[test]
+    fn bad_times_say_what_was_typed_and_what_works() {
+        let tz = berlin();
+        for s in [
+            "yesterday",
+            "2026-13-01",
+            "2026-12-01T25:00",
+            "2026-12-01T06:29+99:00",
+            "",
+            "99999999999999999999999",
+        ] {
+            let e = parse_time_in(s, &tz).expect_err(s);
+            assert!(e.contains(&format!("`{s}`")), "{e}");
+            assert!(e.contains("RFC 3339") && e.contains("local time"), "{e}");
+        }
     }
 }

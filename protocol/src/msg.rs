@@ -38,6 +38,8 @@ pub const MAX_CAL_INPUTS: usize = 6;
 pub const LOG_CHUNK: usize = 4;
 /// Most events in one [`Response::Events`] chunk.
 pub const EVENT_CHUNK: usize = 6;
+/// Longest measuring-point tag in [`Settings`], bytes.
+pub const TAG_LEN: usize = 24;
 
 /// Device serial number (ASCII).
 pub type Serial = String<SERIAL_LEN>;
@@ -346,6 +348,10 @@ bitflags! {
         const LOG = 1 << 3;
         /// Reports stack high-water mark and per-reading cost in [`Status`].
         const DIAGNOSTICS = 1 << 4;
+        /// Measures on its own schedule (whether or not a host listens) and
+        /// answers [`Request::ReadSettings`] / [`Request::WriteSettings`]
+        /// (protocol 1.1).
+        const SETTINGS = 1 << 5;
     }
 }
 
@@ -366,7 +372,8 @@ pub struct Status {
     pub log_len: u32,
     /// Number of the next event.
     pub next_event: u32,
-    /// Streaming period in ms, `None` when not streaming.
+    /// Streaming period in ms, `None` when not streaming. Since protocol
+    /// 1.1: the measurement interval while a host is subscribed.
     pub stream_period_ms: Option<u32>,
     /// Active product slot, `None` if none selected.
     pub active_slot: Option<u8>,
@@ -501,6 +508,13 @@ pub enum EventKind {
     },
     /// Stored data were found damaged and repaired (the damaged item is lost).
     StorageRepaired,
+    /// The device settings were written (protocol 1.1).
+    SettingsChanged {
+        /// Content id of the settings before ([`Settings::content_id`]).
+        old: CalId,
+        /// Content id of the settings now in force.
+        new: CalId,
+    },
 }
 
 /// Why the device last reset.
@@ -529,6 +543,10 @@ pub enum FaultCode {
     Storage,
     /// Current output loop fault.
     CurrentLoop,
+    /// No valid reading within the stale-output timeout
+    /// ([`Settings::stale_timeout_ms`]): the loop went to its failure level
+    /// (protocol 1.1).
+    StaleOutput,
 }
 
 /// An event record: a numbered entry of the device's event log.
@@ -555,6 +573,31 @@ pub struct OutputConfig {
     pub fail_high: bool,
 }
 
+/// The device settings a plant sets (protocol 1.1): what the loop means,
+/// how often the device measures, and when a missing reading counts as a
+/// failure. Kept in power-cut-safe flash; written only with an [`Auth`] tag
+/// ([`Request::WriteSettings`]).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Settings {
+    /// The measuring point's tag as the plant names it (e.g. `L2-DRYER-MT-201`); may be empty.
+    pub tag: String<TAG_LEN>,
+    /// Measurement interval on the device's own clock, ms.
+    pub interval_ms: u32,
+    /// 4-20 mA span and NAMUR NE 43 failure level.
+    pub output: OutputConfig,
+    /// With no valid reading for this long, the loop goes to its failure
+    /// level instead of holding the last value, ms.
+    pub stale_timeout_ms: u32,
+}
+
+impl Settings {
+    /// Content id: first four bytes of SHA-256 of the postcard encoding
+    /// (carried in [`EventKind::SettingsChanged`]).
+    pub fn content_id(&self) -> CalId {
+        content_id(self)
+    }
+}
+
 /// Requests from the host.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub enum Request {
@@ -567,12 +610,17 @@ pub enum Request {
     Status,
     /// One reading now.
     Measure,
-    /// Stream readings at a period.
+    /// Subscribe to the readings: the device sends each reading its own
+    /// schedule takes as a [`DeviceFrame::Reading`] until [`Request::StopStream`]
+    /// or a reboot. Since protocol 1.1 the device measures at its configured
+    /// [`Settings::interval_ms`] whether or not a host subscribes; `period_ms`
+    /// is checked against the accepted range (100 ms to one day) and not
+    /// otherwise used (a 1.0 device measured only while streaming, at this period).
     StartStream {
-        /// Period, ms (device enforces its minimum).
+        /// Period, ms (a 1.0 device measures at it; see above).
         period_ms: u32,
     },
-    /// Stop streaming.
+    /// End the subscription (the device keeps measuring and logging).
     StopStream,
     /// Read the cell calibration.
     ReadCellCal,
@@ -622,8 +670,13 @@ pub enum Request {
     SelfTest,
     /// Reboot (authenticated).
     Reboot,
-    /// Configure the 4-20 mA output (authenticated).
+    /// Configure the 4-20 mA output (authenticated); the rest of the
+    /// [`Settings`] stays as it is.
     SetOutput(OutputConfig),
+    /// Read the device settings (protocol 1.1).
+    ReadSettings,
+    /// Write the device settings, all at once (authenticated; protocol 1.1).
+    WriteSettings(Settings),
 }
 
 impl Request {
@@ -637,6 +690,7 @@ impl Request {
                 | Request::SetClock { .. }
                 | Request::Reboot
                 | Request::SetOutput(_)
+                | Request::WriteSettings(_)
         )
     }
 }
@@ -710,6 +764,8 @@ pub enum Response {
     },
     /// Answer to [`Request::SelfTest`].
     SelfTest(SelfTest),
+    /// Answer to [`Request::ReadSettings`] (protocol 1.1).
+    Settings(Settings),
 }
 
 /// Error codes a device answers with. Numeric values are stable.

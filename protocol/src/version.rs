@@ -20,7 +20,11 @@ pub struct Version {
 }
 
 /// The version this crate speaks.
-pub const PROTOCOL_VERSION: Version = Version { major: 1, minor: 0 };
+///
+/// 1.1 added [`crate::Settings`] with `ReadSettings`/`WriteSettings`, the
+/// `SettingsChanged` event, the `StaleOutput` fault and the `SETTINGS`
+/// capability (a device that measures on its own schedule).
+pub const PROTOCOL_VERSION: Version = Version { major: 1, minor: 1 };
 
 /// Why two versions cannot talk.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

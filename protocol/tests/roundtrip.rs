@@ -214,6 +214,22 @@ fn largest_messages_fit_a_frame() {
     };
     let n = encode(&host, &mut buf).expect("largest request fits");
     eprintln!("largest HostFrame: {n} bytes");
+    let settings = Settings {
+        tag: short_string::<TAG_LEN>(&"\u{10FFFF}".repeat(TAG_LEN)),
+        interval_ms: u32::MAX,
+        output: OutputConfig {
+            span_low_pct: f32::MAX,
+            span_high_pct: f32::MAX,
+            fail_high: true,
+        },
+        stale_timeout_ms: u32::MAX,
+    };
+    let write_settings = HostFrame {
+        request: Request::WriteSettings(settings.clone()),
+        ..host.clone()
+    };
+    let n = encode(&write_settings, &mut buf).expect("settings write fits");
+    eprintln!("largest WriteSettings: {n} bytes");
     let frames = [
         DeviceFrame::Response {
             id: u16::MAX,
@@ -245,6 +261,10 @@ fn largest_messages_fit_a_frame() {
                 active: Some(u8::MAX),
             },
         },
+        DeviceFrame::Response {
+            id: u16::MAX,
+            response: Response::Settings(settings),
+        },
         DeviceFrame::Error {
             id: u16::MAX,
             code: ErrorCode::Busy,
@@ -274,7 +294,7 @@ fn strategies_cover_every_variant() {
     };
     seen(
         sample(&request(), 600).iter().map(request_index).collect(),
-        18,
+        20,
         "Request",
     );
     seen(
@@ -282,7 +302,7 @@ fn strategies_cover_every_variant() {
             .iter()
             .map(response_index)
             .collect(),
-        11,
+        12,
         "Response",
     );
     seen(
@@ -298,7 +318,7 @@ fn strategies_cover_every_variant() {
             .iter()
             .map(event_kind_index)
             .collect(),
-        9,
+        10,
         "EventKind",
     );
 }

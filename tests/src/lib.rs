@@ -179,6 +179,10 @@ pub struct ScenarioSpec {
     pub time_scale: f64,
     /// Device baud rate.
     pub baud: u32,
+    /// The device's measurement interval, device ms.
+    pub interval_ms: u32,
+    /// The device clock starts unset (counts from boot until a host sets it).
+    pub clock_unset: bool,
     /// Probability a byte is lost.
     pub drop_per_byte: f64,
     /// Probability a bit of a byte flips.
@@ -193,13 +197,16 @@ pub struct ScenarioSpec {
 }
 
 impl ScenarioSpec {
-    /// A clean line: no faults, device time 10x wall time.
+    /// A clean line: no faults, device time 10x wall time, a reading
+    /// every 100 ms of device time (100 a second of wall time).
     pub fn clean(serial: &str, seed: u64) -> Self {
         Self {
             serial: serial.into(),
             seed,
             time_scale: 10.0,
             baud: 115_200,
+            interval_ms: 100,
+            clock_unset: false,
             drop_per_byte: 0.0,
             flip_per_byte: 0.0,
             garbage_per_frame: 0.0,
@@ -215,7 +222,7 @@ impl ScenarioSpec {
              moisture_pct = [[0, 14.0], [120, 16.0], [240, 13.5]]\n\
              temperature_c = [[0, 30.0], [240, 34.0]]\n\
              water_conductivity_s_m = [[0, 0.1]]\n{}\n\
-             [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\n\n\
+             [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\ninterval_ms = {}\nclock = \"{}\"\n\n\
              [product]\nname = \"wheat\"\n\n\
              [link]\ndrop_per_byte = {}\nflip_per_byte = {}\ngarbage_per_frame = {}\n",
             self.extra,
@@ -223,6 +230,8 @@ impl ScenarioSpec {
             self.seed,
             self.time_scale,
             self.baud,
+            self.interval_ms,
+            if self.clock_unset { "unset" } else { "set" },
             self.drop_per_byte,
             self.flip_per_byte,
             self.garbage_per_frame

@@ -1,11 +1,13 @@
 //! The firmware under QEMU (mps2-an386, Cortex-M4F), through the host tool's
 //! own connection code (`fringe_host::link`) and store (`fringe_host::store`)
-//! over the board's UART on a pseudo-terminal: handshake, 500 streamed
-//! readings stored gapless, an authenticated product calibration written and
-//! read back, a write refused for a wrong key (and logged on the device), a
-//! reboot request and a QEMU system reset after which the boot counter has
-//! risen and the host resumes without duplicates; and the size, stack and
-//! cost figures.
+//! over the board's UART on a pseudo-terminal: the device measures and logs
+//! from boot on, before any host speaks; the host sets its clock, writes
+//! its settings with the device key (read back; a wrong key refused and
+//! logged, nothing changed), stores 500 streamed readings, writes and reads
+//! back a product calibration; after a reboot request and a QEMU system
+//! reset the boot counter has risen and the settings and calibration are
+//! still there; the whole device log, pulled at the end, fills the store
+//! with every reading once; and the size, stack and cost figures.
 //!
 //! Needs `qemu-system-arm` and the board ELF (`cargo xtask firmware`), so it
 //! is ignored in a plain `cargo test`; `cargo xtask test` builds the board
@@ -42,6 +44,45 @@ fn status(link: &mut Link) -> Status {
         Ok(Response::Status(s)) => s,
         other => panic!("Status answered {other:?}"),
     }
+}
+
+fn read_settings(link: &mut Link) -> Settings {
+    match link.request(Request::ReadSettings) {
+        Ok(Response::Settings(s)) => s,
+        other => panic!("ReadSettings answered {other:?}"),
+    }
+}
+
+/// Every reading the device log holds, oldest first.
+fn device_log(link: &mut Link) -> Vec<Reading> {
+    let mut out = Vec::new();
+    let mut from = Seq::default();
+    loop {
+        match link.request(Request::ReadLog {
+            from,
+            max: LOG_CHUNK as u8,
+        }) {
+            Ok(Response::Log {
+                readings,
+                next,
+                end,
+            }) => {
+                out.extend(readings);
+                if end {
+                    return out;
+                }
+                from = next;
+            }
+            other => panic!("ReadLog answered {other:?}"),
+        }
+    }
+}
+
+fn now_unix_ms() -> u64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .expect("clock after 1970")
+        .as_millis() as u64
 }
 
 fn device_events(link: &mut Link) -> Vec<Event> {
@@ -108,8 +149,18 @@ fn stream_into(link: &mut Link, store: &mut Store, n: u64) -> u64 {
     );
     let deadline = Instant::now() + Duration::from_secs(300);
     let mut stored = 0;
-    let take = |f: Option<DeviceFrame>, store: &mut Store| {
+    let mut last: Option<Seq> = None;
+    let mut take = |f: Option<DeviceFrame>, store: &mut Store| {
         if let Some(DeviceFrame::Reading(r)) = f {
+            // The subscription sends every reading of the schedule.
+            if let Some(l) = last {
+                assert_eq!(
+                    (r.seq.boot, r.seq.counter),
+                    (l.boot, l.counter + 1),
+                    "streamed reading after {l}"
+                );
+            }
+            last = Some(r.seq);
             let s = store
                 .insert_readings(&serial, &[r], Source::Stream)
                 .expect("insert");
@@ -170,15 +221,89 @@ fn firmware_under_qemu_end_to_end() {
     let boot0 = id.boot;
     let mut store = Store::open_in_memory().expect("store");
 
+    // The device measures from boot on, on its own: with the host asking
+    // nothing but its status (no subscription, no Measure, no write), the
+    // log fills. (QEMU lets the handshake through some 15 ms after boot,
+    // while the first reading is still being acquired, so the test waits
+    // for the log here, polling.)
+    let deadline = Instant::now() + Duration::from_secs(60);
+    let logged = loop {
+        let s = status(&mut link);
+        assert_eq!(s.stream_period_ms, None, "nobody subscribed");
+        if s.log_len >= 5 {
+            break s.log_len;
+        }
+        assert!(
+            Instant::now() < deadline,
+            "only {} readings logged in 60 s",
+            s.log_len
+        );
+    };
+    eprintln!("{logged} readings logged with no host subscribed");
+
+    // The host's first write sets the clock. The readings taken before
+    // are timed from boot, and the ClockSet event says at what time since
+    // boot the clock was set.
+    assert_eq!(
+        link.request_signed(
+            Request::SetClock {
+                unix_ms: now_unix_ms()
+            },
+            &BOARD_KEY
+        ),
+        Ok(Response::Ack)
+    );
+    let set_at_ms = device_events(&mut link)
+        .iter()
+        .find_map(|e| match e.kind {
+            EventKind::ClockSet { old_ms, .. } if e.boot == boot0 => Some(old_ms),
+            _ => None,
+        })
+        .expect("ClockSet event of this boot");
+    let before_host: Vec<Reading> = device_log(&mut link)
+        .into_iter()
+        .filter(|r| r.seq.boot == boot0 && r.flags.contains(Flags::CLOCK_UNSET))
+        .collect();
+    assert!(
+        !before_host.is_empty() && before_host.iter().all(|r| r.time_ms < set_at_ms),
+        "no reading logged before the host set the clock at {set_at_ms} ms after boot: {before_host:?}"
+    );
+    assert!(before_host.len() >= 5, "{before_host:?}");
+    assert_eq!(before_host[0].seq.counter, 0, "measured from boot on");
+    eprintln!(
+        "{} readings logged before the host's first write ({set_at_ms} ms after boot)",
+        before_host.len()
+    );
+
+    // Settings: written with the device key, read back; a wrong key is
+    // refused and changes nothing.
+    let defaults = read_settings(&mut link);
+    assert_eq!(defaults.interval_ms, 1000, "default interval");
+    let settings = Settings {
+        tag: short_string("QEMU-L2-MT-1"),
+        interval_ms: 100,
+        output: OutputConfig {
+            span_low_pct: 5.0,
+            span_high_pct: 25.0,
+            fail_high: true,
+        },
+        stale_timeout_ms: 2000,
+    };
+    match link.request_signed(Request::WriteSettings(settings.clone()), &[0x55u8; 32]) {
+        Err(LinkError::Refused { code, .. }) => assert_eq!(code, ErrorCode::AuthFailed.code()),
+        other => panic!("settings with a wrong key answered {other:?}"),
+    }
+    assert_eq!(read_settings(&mut link), defaults, "nothing changed");
+    assert_eq!(
+        link.request_signed(Request::WriteSettings(settings.clone()), &BOARD_KEY),
+        Ok(Response::Ack)
+    );
+    assert_eq!(read_settings(&mut link), settings, "settings read back");
+
     // 500 streamed readings, stored without a gap.
     let n0 = stream_into(&mut link, &mut store, 500);
     assert!(n0 >= 500);
     assert_eq!(store.reading_count(BOARD_SERIAL).unwrap(), n0);
-    assert_eq!(
-        store.gaps(BOARD_SERIAL).unwrap(),
-        vec![],
-        "gaps in the stored readings"
-    );
 
     // Cost of a reading, from the device's own count.
     let cost = status(&mut link)
@@ -246,6 +371,11 @@ fn firmware_under_qemu_end_to_end() {
     let stop = AtomicBool::new(false);
     let id = link.reconnect(&stop).expect("reconnect after reboot");
     assert_eq!(id.boot, boot0 + 1, "boot counter after a reboot request");
+    assert_eq!(
+        read_settings(&mut link),
+        settings,
+        "settings after a reboot"
+    );
     let log = device_events(&mut link);
     assert!(
         log.iter().any(|e| e.boot == boot0 + 1
@@ -267,10 +397,32 @@ fn firmware_under_qemu_end_to_end() {
     qemu.monitor("system_reset").expect("monitor");
     let id = link.reconnect(&stop).expect("reconnect after system_reset");
     assert_eq!(id.boot, boot0 + 2, "boot counter after system_reset");
+    assert_eq!(
+        read_settings(&mut link),
+        settings,
+        "settings after system_reset"
+    );
     let n2 = stream_into(&mut link, &mut store, 20);
-
-    // Every reading stored once, each boot without gaps.
     assert_eq!(store.reading_count(BOARD_SERIAL).unwrap(), n0 + n1 + n2);
+
+    // The device measured between and around the streams: its log, pulled
+    // whole, fills the store, every reading once, each boot from its first
+    // reading on without gaps.
+    let log = device_log(&mut link);
+    let pulled = store
+        .insert_readings(BOARD_SERIAL, &log, Source::Log)
+        .expect("insert");
+    assert_eq!(pulled.conflicts, 0);
+    assert_eq!(
+        pulled.duplicates,
+        n0 + n1 + n2,
+        "streamed readings seen again"
+    );
+    assert_eq!(
+        store.reading_count(BOARD_SERIAL).unwrap(),
+        log.len() as u64,
+        "the store holds the device log"
+    );
     assert_eq!(
         store.gaps(BOARD_SERIAL).unwrap(),
         vec![],

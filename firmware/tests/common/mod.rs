@@ -20,6 +20,16 @@ pub fn config() -> DeviceConfig {
     c
 }
 
+/// The test configuration with the device's own schedule slowed to one
+/// reading an hour (it still takes one at boot; see [`Bench::settle`]), for
+/// tests that count flash operations or readings of their own requests.
+pub fn quiet_config() -> DeviceConfig {
+    let mut c = config();
+    c.settings.interval_ms = fringe_firmware::settings::MAX_INTERVAL_MS;
+    c.settings.stale_timeout_ms = fringe_firmware::settings::MAX_STALE_TIMEOUT_MS;
+    c
+}
+
 pub struct Bench {
     pub dev: Dev,
     pub now: u64,
@@ -65,6 +75,18 @@ impl Bench {
         let mut b = Self::on_flash(seed, sc, flash);
         b.counter = self.counter;
         b
+    }
+
+    /// Polls until the reading the schedule takes at boot is done (and
+    /// logged), so that what follows starts from a quiet device.
+    pub fn settle(&mut self) {
+        for _ in 0..10_000 {
+            if self.dev.readings_since_boot() > 0 {
+                return;
+            }
+            self.tick(1);
+        }
+        panic!("no reading within 10 s of boot");
     }
 
     pub fn poll_bytes(&mut self, rx: &[u8]) {

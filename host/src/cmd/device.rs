@@ -15,6 +15,7 @@ fn capability_names(c: Capabilities) -> Vec<&'static str> {
         (Capabilities::SIMULATED, "simulated"),
         (Capabilities::LOG, "log"),
         (Capabilities::DIAGNOSTICS, "diagnostics"),
+        (Capabilities::SETTINGS, "settings"),
     ]
     .into_iter()
     .filter(|(f, _)| c.contains(*f))
@@ -123,7 +124,7 @@ pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let clock = if s.last_flags.contains(Flags::CLOCK_UNSET) || s.time_ms < CLOCK_SET_AFTER_MS {
         format!("{} since boot (clock not set)", out::duration_ms(s.time_ms))
     } else {
-        crate::timefmt::fmt_time(s.time_ms as i64)
+        crate::timefmt::fmt_person(s.time_ms as i64)
     };
     let none = |id: fringe_protocol::CalId| {
         if id == fringe_protocol::CalId::NONE {
@@ -144,9 +145,11 @@ pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         ),
         ("next event", s.next_event.to_string()),
         (
-            "streaming",
-            s.stream_period_ms
-                .map_or("off".into(), |p| format!("every {p} ms")),
+            "subscribed",
+            s.stream_period_ms.map_or(
+                "no (the device measures and logs all the same)".into(),
+                |p| format!("yes, a reading every {p} ms"),
+            ),
         ),
         (
             "product",
@@ -168,8 +171,435 @@ pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     for (k, v) in rows {
         out::line(&format!("{k:<11}{v}"))?;
     }
+    if id.capabilities.contains(Capabilities::SETTINGS) {
+        let st = read_settings(&mut link)?;
+        out::line(&format!(
+            "{:<11}{}, a reading every {} ms, {:.2}-{:.2} % at 4-20 mA, fail {} (`fringe device config show`)",
+            "settings",
+            if st.tag.is_empty() { "no tag" } else { st.tag.as_str() },
+            st.interval_ms,
+            st.output.span_low_pct,
+            st.output.span_high_pct,
+            if st.output.fail_high { "high" } else { "low" }
+        ))?;
+    }
     if let Some(b) = s.stack_free_bytes {
         out::line(&format!("{:<11}{b} bytes", "stack free"))?;
+    }
+    Ok(())
+}
+
+/// `fringe device ...`.
+///
+/// # Errors
+/// The subcommand's error.
+pub fn device(a: &crate::cli::DeviceArgs, cfg: &LineConfig) -> anyhow::Result<()> {
+    use crate::cli::{ConfigCommand, DeviceCommand};
+    match &a.command {
+        DeviceCommand::Clock(c) => clock(c, cfg),
+        DeviceCommand::Config(c) => match &c.command {
+            ConfigCommand::Show(s) => config_show(s, cfg),
+            ConfigCommand::Set(s) => config_set(s, cfg),
+        },
+    }
+}
+
+fn clock_json(
+    port: &str,
+    serial: &str,
+    c: &crate::session::ClockCheck,
+    host_ms: i64,
+) -> serde_json::Value {
+    use crate::session::ClockCheck;
+    let mut v = json!({
+        "port": port,
+        "serial": serial,
+        "host_utc": crate::timefmt::fmt_time(host_ms),
+        "host_unix_ms": host_ms,
+    });
+    match *c {
+        ClockCheck::Unset { since_boot_ms } => {
+            v["clock_set"] = json!(false);
+            v["since_boot_ms"] = json!(since_boot_ms);
+        }
+        ClockCheck::Set { device_ms, off_ms } => {
+            v["clock_set"] = json!(true);
+            v["device_utc"] = json!(crate::timefmt::fmt_time(device_ms));
+            v["device_unix_ms"] = json!(device_ms);
+            v["off_ms"] = json!(off_ms);
+        }
+    }
+    v
+}
+
+fn clock_lines(c: &crate::session::ClockCheck, host_ms: i64) -> Vec<String> {
+    use crate::session::ClockCheck;
+    let p = crate::timefmt::fmt_person;
+    let mut out = Vec::new();
+    match *c {
+        ClockCheck::Unset { since_boot_ms } => out.push(format!(
+            "device     not set: {} since boot (its readings carry clock_unset)",
+            out::duration_ms(since_boot_ms)
+        )),
+        ClockCheck::Set { device_ms, off_ms } => {
+            out.push(format!("device     {}", p(device_ms)));
+            out.push(format!(
+                "off by     {:+.3} s against this computer{}",
+                off_ms as f64 / 1000.0,
+                if c.needs_setting() {
+                    " (more than 1 s: set it)"
+                } else {
+                    ""
+                }
+            ));
+        }
+    }
+    out.push(format!("computer   {}", p(host_ms)));
+    out
+}
+
+/// `fringe device clock`.
+///
+/// # Errors
+/// Port, link, key or output errors.
+pub fn clock(a: &crate::cli::ClockArgs, cfg: &LineConfig) -> anyhow::Result<()> {
+    use crate::store::now_unix_ms;
+    let mut link = super::connect(&a.port, cfg)?;
+    let serial = link.serial_number().to_string();
+    let host = now_unix_ms();
+    let before = crate::session::check_clock(&super::request_status(&mut link)?, host);
+    let target = if a.set { Some(now_unix_ms()) } else { a.set_to };
+    let Some(target) = target else {
+        if a.json {
+            out::json(&clock_json(link.port_name(), &serial, &before, host))?;
+        } else {
+            out::line(&format!("{:<11}{serial}", "serial"))?;
+            for l in clock_lines(&before, host) {
+                out::line(&l)?;
+            }
+        }
+        return Ok(());
+    };
+    let key = super::optional_key(a.key_file.as_deref(), cfg)?.ok_or_else(|| {
+        anyhow::anyhow!("setting the device clock needs the device key: pass --key-file or set key_file in the line file")
+    })?;
+    // Given a time, keep its distance to now (the write takes a moment).
+    let offset = target - host;
+    let t = now_unix_ms() + if a.set { 0 } else { offset };
+    crate::session::set_clock(&mut link, &key, t)?;
+    let host = now_unix_ms();
+    let after = crate::session::check_clock(&super::request_status(&mut link)?, host);
+    if a.json {
+        let mut v = clock_json(link.port_name(), &serial, &after, host);
+        v["before"] = clock_json(link.port_name(), &serial, &before, host);
+        v["set_to_utc"] = json!(crate::timefmt::fmt_time(t));
+        out::json(&v)?;
+    } else {
+        out::line(&format!("{:<11}{serial}", "serial"))?;
+        for l in clock_lines(&before, host) {
+            out::line(&format!("before: {l}"))?;
+        }
+        out::line(&format!(
+            "set to     {} (the device logged a clock_set event with the old and new time)",
+            crate::timefmt::fmt_person(t)
+        ))?;
+        for l in clock_lines(&after, host) {
+            out::line(&l)?;
+        }
+    }
+    Ok(())
+}
+
+/// The device settings, read.
+///
+/// # Errors
+/// Link errors; a device without settings (protocol 1.0).
+pub fn read_settings(link: &mut crate::link::Link) -> anyhow::Result<fringe_protocol::Settings> {
+    if let Some(id) = link.identity() {
+        if !id.capabilities.contains(Capabilities::SETTINGS) {
+            anyhow::bail!(
+                "{} speaks protocol {} and has no settings to read or write (it needs firmware with protocol 1.1 or later)",
+                id.serial,
+                id.protocol
+            );
+        }
+    }
+    match link.request(fringe_protocol::Request::ReadSettings)? {
+        fringe_protocol::Response::Settings(s) => Ok(s),
+        other => anyhow::bail!("ReadSettings answered {other:?}"),
+    }
+}
+
+/// The settings as JSON (stable keys, units in names).
+pub fn settings_json(s: &fringe_protocol::Settings) -> serde_json::Value {
+    json!({
+        "tag": s.tag.as_str(),
+        "interval_ms": s.interval_ms,
+        "span_low_pct": s.output.span_low_pct,
+        "span_high_pct": s.output.span_high_pct,
+        "fail": if s.output.fail_high { "high" } else { "low" },
+        "stale_timeout_ms": s.stale_timeout_ms,
+        "settings_id": s.content_id().to_string(),
+    })
+}
+
+/// The settings as lines for a person.
+pub fn settings_lines(s: &fringe_protocol::Settings) -> Vec<(String, String)> {
+    use fringe_firmware::output::{MA_FAIL_HIGH, MA_FAIL_LOW};
+    vec![
+        (
+            "tag".into(),
+            if s.tag.is_empty() {
+                "(none)".into()
+            } else {
+                s.tag.to_string()
+            },
+        ),
+        ("interval".into(), format!("{} ms", s.interval_ms)),
+        (
+            "4-20 mA span".into(),
+            format!(
+                "{:.2} % at 4 mA, {:.2} % at 20 mA",
+                s.output.span_low_pct, s.output.span_high_pct
+            ),
+        ),
+        (
+            "failure level".into(),
+            if s.output.fail_high {
+                format!("high ({MA_FAIL_HIGH} mA; NAMUR NE 43: >= 21 mA)")
+            } else {
+                format!("low ({MA_FAIL_LOW} mA; NAMUR NE 43: <= 3.6 mA)")
+            },
+        ),
+        (
+            "stale timeout".into(),
+            format!(
+                "{} ms (with no valid reading for this long the loop goes to its failure level)",
+                s.stale_timeout_ms
+            ),
+        ),
+        ("settings id".into(), s.content_id().to_string()),
+    ]
+}
+
+/// `fringe device config show`.
+///
+/// # Errors
+/// Port, link or output errors.
+pub fn config_show(a: &crate::cli::ConfigShowArgs, cfg: &LineConfig) -> anyhow::Result<()> {
+    let mut link = super::connect(&a.port, cfg)?;
+    let s = read_settings(&mut link)?;
+    if a.json {
+        let mut v = settings_json(&s);
+        v["serial"] = json!(link.serial_number());
+        out::json(&v)?;
+        return Ok(());
+    }
+    out::line(&format!("{:<15}{}", "device", link.serial_number()))?;
+    for (k, v) in settings_lines(&s) {
+        out::line(&format!("{k:<15}{v}"))?;
+    }
+    Ok(())
+}
+
+/// The caution shown before settings are written.
+pub const SETTINGS_CAUTION: &str = "CAUTION: new settings change the 4-20 mA output at once (a new span moves the current \
+for the same moisture; a new failure level changes what a fault looks like to the control system). If the sensor \
+is on a running line, tell the control room first and put dependent loops (dryer control, diversion) in manual; \
+check the receiving side's scaling matches the new span. Local codes and site rules come first.";
+
+/// Applies the flags of `config set` to `old`; checks the result as the
+/// device will, naming the flag of a refused value.
+///
+/// # Errors
+/// The flag and value refused, and why.
+pub fn apply_settings(
+    old: &fringe_protocol::Settings,
+    a: &crate::cli::ConfigSetArgs,
+) -> anyhow::Result<fringe_protocol::Settings> {
+    use fringe_firmware::settings::{validate, SettingsError};
+    let mut s = old.clone();
+    if let Some(t) = &a.tag {
+        if t.len() > fringe_protocol::TAG_LEN {
+            anyhow::bail!(
+                "--tag {t:?}: {} bytes, at most {} fit",
+                t.len(),
+                fringe_protocol::TAG_LEN
+            );
+        }
+        s.tag = fringe_protocol::short_string(t);
+    }
+    if let Some(v) = a.interval_ms {
+        s.interval_ms = v;
+    }
+    if let Some(v) = a.span_low_pct {
+        s.output.span_low_pct = v;
+    }
+    if let Some(v) = a.span_high_pct {
+        s.output.span_high_pct = v;
+    }
+    if let Some(f) = a.fail {
+        s.output.fail_high = f == crate::cli::FailLevel::High;
+    }
+    if let Some(v) = a.stale_timeout_ms {
+        s.stale_timeout_ms = v;
+    }
+    match validate(&s) {
+        Ok(()) => Ok(s),
+        Err(SettingsError::Tag) => {
+            anyhow::bail!("--tag {:?}: no control characters allowed", s.tag.as_str())
+        }
+        Err(SettingsError::Interval) => anyhow::bail!(
+            "--interval-ms {}: must be {}..={} ms",
+            s.interval_ms,
+            fringe_firmware::settings::MIN_INTERVAL_MS,
+            fringe_firmware::settings::MAX_INTERVAL_MS
+        ),
+        Err(SettingsError::StaleTimeout) => anyhow::bail!(
+            "--stale-timeout-ms {}: must be at least twice the interval ({} ms) and at most {} ms",
+            s.stale_timeout_ms,
+            s.interval_ms.saturating_mul(2),
+            fringe_firmware::settings::MAX_STALE_TIMEOUT_MS
+        ),
+        Err(SettingsError::Span(_)) => anyhow::bail!(
+            "--span-low-pct {} / --span-high-pct {}: need 0 <= low < high <= 100 %",
+            s.output.span_low_pct,
+            s.output.span_high_pct
+        ),
+        Err(e) => anyhow::bail!("{e}"),
+    }
+}
+
+/// What `config set` did.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct ConfigSetOutcome {
+    /// Device serial.
+    pub serial: String,
+    /// Settings before.
+    pub old: serde_json::Value,
+    /// Settings now (read back).
+    pub new: serde_json::Value,
+    /// Chain position of the audit record.
+    pub position: u64,
+}
+
+/// Writes `new` (authenticated), reads it back and records the change in
+/// `store` with who and why (a `settings` record in the calibrations
+/// table). Prints nothing.
+///
+/// # Errors
+/// Link errors (a wrong key: refused), a read-back that differs, store errors.
+pub fn write_settings(
+    link: &mut crate::link::Link,
+    key: &fringe_protocol::auth::Key,
+    store: &mut crate::store::Store,
+    old: &fringe_protocol::Settings,
+    new: &fringe_protocol::Settings,
+    operator: &str,
+    reason: &str,
+) -> anyhow::Result<ConfigSetOutcome> {
+    use crate::store::{CalKind, NewCalibration};
+    link.request_signed(fringe_protocol::Request::WriteSettings(new.clone()), key)
+        .context("writing the settings")?;
+    let back = read_settings(link)?;
+    if &back != new {
+        anyhow::bail!(
+            "the device holds other settings than were written (read back {}, wrote {}): nothing recorded",
+            back.content_id(),
+            new.content_id()
+        );
+    }
+    let serial = link.serial_number().to_string();
+    let body = crate::analysis::CalRecordBody {
+        calibration: serde_json::to_value(&back)?,
+        operator: operator.into(),
+        reason: reason.into(),
+        old_id: old.content_id().to_string(),
+        new_id: back.content_id().to_string(),
+        action: "settings".into(),
+        statistics: None,
+        verification: None,
+    };
+    let mut body = serde_json::to_value(body)?;
+    body["previous"] = serde_json::to_value(old)?;
+    let rec = store.insert_calibration(
+        &serial,
+        &NewCalibration {
+            kind: CalKind::Settings,
+            cal_id: back.content_id(),
+            slot: None,
+            name: Some(back.tag.to_string()),
+            body,
+            note: None,
+            supersedes: None,
+        },
+    )?;
+    Ok(ConfigSetOutcome {
+        serial,
+        old: settings_json(old),
+        new: settings_json(&back),
+        position: rec.position,
+    })
+}
+
+/// `fringe device config set`.
+///
+/// # Errors
+/// Port, link, key, database or output errors; a declined confirmation.
+pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Result<()> {
+    use crate::device_cal::Guide as _;
+    let key = super::optional_key(a.key_file.as_deref(), cfg)?.ok_or_else(|| {
+        anyhow::anyhow!("changing the settings needs the device key: pass --key-file or set key_file in the line file")
+    })?;
+    let (db, mut store) = super::open_db(a.db.as_deref(), cfg)?;
+    let mut link = super::connect(&a.port, cfg)?;
+    let id = link
+        .identity()
+        .cloned()
+        .context("no identity after the handshake")?;
+    super::register(&mut store, &id)?;
+    super::sync_clock(&mut link, Some(&key), "device config")?;
+    let old = read_settings(&mut link)?;
+    let new = apply_settings(&old, a)?;
+    if new == old {
+        out::line("nothing to change: the device holds these settings already")?;
+        return Ok(());
+    }
+    if !a.json {
+        eprintln!("{} on {}:", id.serial, link.port_name());
+        for ((k, o), (_, n)) in settings_lines(&old).into_iter().zip(settings_lines(&new)) {
+            if o != n {
+                eprintln!("  {k:<15}{o}\n  {:<15}-> {n}", "");
+            }
+        }
+        eprintln!("\n{SETTINGS_CAUTION}\n");
+    }
+    if !a.yes && !crate::device_cal::Terminal.confirm("write these settings to the device?")? {
+        anyhow::bail!(
+            "not written: declined (nothing changed on the device or in {})",
+            db.display()
+        );
+    }
+    let o = write_settings(
+        &mut link,
+        &key,
+        &mut store,
+        &old,
+        &new,
+        &a.operator,
+        &a.reason,
+    )?;
+    if a.json {
+        out::json(&serde_json::to_value(&o)?)?;
+    } else {
+        out::line(&format!(
+            "settings {} -> {} written to {}, read back and verified; audit record at chain position {} of {}",
+            old.content_id(),
+            new.content_id(),
+            o.serial,
+            o.position,
+            db.display()
+        ))?;
     }
     Ok(())
 }

@@ -1,5 +1,7 @@
 //! Reading the device's stored log and events into the store (backfill),
-//! shared by `fringe monitor` (gaps) and `fringe pull` (everything new).
+//! shared by `fringe monitor` (at start, and gaps in the stream) and
+//! `fringe pull` (everything the database lacks, before, between and after
+//! what it holds: [`crate::session::plan_backfill`]).
 
 use std::time::Instant;
 
@@ -98,6 +100,39 @@ pub fn backfill(
         at = next;
     }
     Ok(out)
+}
+
+/// Reads every part of the device log the store lacks for `serial` (before,
+/// between and after the runs it holds), up to `until` (exclusive; `None`:
+/// the end of the log), through `batcher`. `progress` gets the count
+/// received so far and the last sequence queued.
+///
+/// # Errors
+/// As [`backfill`]; what was queued stays in the batcher.
+pub fn backfill_missing(
+    link: &mut Link,
+    store: &mut Store,
+    batcher: &mut Batcher,
+    serial: &str,
+    until: Option<Seq>,
+    progress: &mut dyn FnMut(u64, Option<Seq>),
+) -> anyhow::Result<Backfill> {
+    // What is still waiting in the batcher counts as stored.
+    batcher.flush(store)?;
+    let runs = store.runs(serial)?;
+    let mut total = Backfill::default();
+    for r in crate::session::plan_backfill(&runs, until) {
+        let base = total.received;
+        let last = total.last;
+        let b = backfill(link, store, batcher, r.from, r.until, &mut |n, l| {
+            progress(base + n, l.or(last))
+        })?;
+        total.received += b.received;
+        total.lost += b.lost;
+        total.requests += b.requests;
+        total.last = b.last.or(total.last);
+    }
+    Ok(total)
 }
 
 /// Reads the device's events from number `from` on and stores them.

@@ -12,6 +12,7 @@ pub mod sim;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
+use anyhow::Context as _;
 use fringe_protocol::{Identity, Request, Response, Status};
 
 use crate::cli::PortArgs;
@@ -69,6 +70,64 @@ pub fn connect(args: &PortArgs, cfg: &LineConfig) -> anyhow::Result<Link> {
             Err(e) => return Err(e.into()),
         }
     }
+}
+
+/// The device key from `--key-file`, else the line file's `key_file`, if any.
+///
+/// # Errors
+/// An unreadable key file or one that is not 64 hex digits.
+pub fn optional_key(
+    flag: Option<&Path>,
+    cfg: &LineConfig,
+) -> anyhow::Result<Option<fringe_protocol::auth::Key>> {
+    match flag.map(Path::to_path_buf).or_else(|| cfg.key_file.clone()) {
+        Some(p) => Ok(Some(crate::device_cal::load_key(&p)?)),
+        None => Ok(None),
+    }
+}
+
+/// The device clock on a connection: set when it is unset or off by more
+/// than a second and a key is at hand ([`crate::session::sync_clock`]);
+/// the result said on stderr in one line (nothing when it was right).
+///
+/// # Errors
+/// Link errors; a refused write (wrong key).
+pub fn sync_clock(
+    link: &mut Link,
+    key: Option<&fringe_protocol::auth::Key>,
+    who: &str,
+) -> anyhow::Result<crate::session::ClockSync> {
+    use crate::session::ClockCheck;
+    let s = match crate::session::sync_clock(link, key, &|| crate::store::now_unix_ms()) {
+        Ok(s) => s,
+        // A refused clock write (a wrong key) is said and left: the
+        // command's own write, if any, meets the same refusal with its
+        // own message.
+        Err(e @ LinkError::Refused { .. }) => {
+            eprintln!("fringe {who}: the device clock was not set: {e}");
+            return crate::session::sync_clock(link, None, &|| crate::store::now_unix_ms())
+                .context("checking the device clock");
+        }
+        Err(e) => return Err(anyhow::Error::new(e).context("checking the device clock")),
+    };
+    let was = match s.before {
+        ClockCheck::Unset { since_boot_ms } => format!(
+            "was not set ({} since boot)",
+            crate::out::duration_ms(since_boot_ms)
+        ),
+        ClockCheck::Set { off_ms, .. } => format!("was off by {:+.3} s", off_ms as f64 / 1000.0),
+    };
+    if let Some(t) = s.set_to_ms {
+        eprintln!(
+            "fringe {who}: device clock {was}; set to {} (the device logs the change as a clock_set event)",
+            crate::timefmt::fmt_time(t)
+        );
+    } else if s.needs_key {
+        eprintln!(
+            "fringe {who}: device clock {was}; give --key-file (or key_file in the line file) to set it"
+        );
+    }
+    Ok(s)
 }
 
 /// Opens the database named by `--db` or the line file.

@@ -1,9 +1,13 @@
 //! `fringe monitor`: stream readings, show them live, store every one.
 //!
 //! Readings are committed in batches at most [`crate::store::BATCH_MAX_AGE`]
-//! old. A reading whose sequence does not follow the last one starts a
-//! backfill of the missing ones from the device log; on (re)start the
-//! monitor first backfills from the last stored reading, so a killed monitor
+//! old. On (re)start and after each reconnect the monitor first stores what
+//! the device logged that the database lacks (before, between and after
+//! what it holds, up to where the device is now: as `fringe pull`), sets the
+//! device clock when it is unset or off by more than a second (with the
+//! device key), then subscribes to the readings of the device's own
+//! schedule. A reading whose sequence does not follow the last one starts a
+//! backfill of the missing ones from the device log, so a killed monitor
 //! loses nothing the device still holds. When the port vanishes the monitor
 //! commits what it has and reconnects with backoff.
 //!
@@ -80,7 +84,10 @@ struct Monitor<'a> {
     sum: MonitorSummary,
     style: Style,
     alarm: AlarmLimits,
+    /// The device's measurement interval (or the stream period asked of a
+    /// protocol 1.0 device), ms.
     period_ms: u32,
+    key: Option<fringe_protocol::auth::Key>,
     quiet: bool,
     stop: &'a AtomicBool,
     started: Instant,
@@ -186,6 +193,33 @@ impl Monitor<'_> {
                 b.lost, last
             ))?;
         }
+        Ok(())
+    }
+
+    /// Stores every reading the device log holds that the store lacks, up
+    /// to `until` (see [`super::ingest::backfill_missing`]).
+    fn backfill_missing(&mut self, until: Seq) -> anyhow::Result<()> {
+        let serial = self.serial.clone();
+        let b = super::ingest::backfill_missing(
+            &mut self.link,
+            &mut self.store,
+            &mut self.batcher,
+            &serial,
+            Some(until),
+            &mut |_, _| {},
+        );
+        self.flush()?;
+        let b = b?;
+        self.sum.backfilled += b.received;
+        self.sum.lost += b.lost;
+        if b.received > 0 && !self.quiet {
+            self.notice(&format!(
+                "{} readings from the device log stored (taken while no monitor ran)",
+                b.received
+            ))?;
+        }
+        // Continue after what is stored now (the stream starts at `until`).
+        self.last = self.store.last_seq(&serial)?.max(self.last);
         Ok(())
     }
 
@@ -397,6 +431,8 @@ impl Monitor<'_> {
                 }
                 self.sum.reconnects += 1;
                 self.notice("reconnected")?;
+                let key = self.key;
+                super::sync_clock(&mut self.link, key.as_ref(), "monitor")?;
                 Ok(true)
             }
             Err(LinkError::Stopped) => Ok(false),
@@ -411,12 +447,28 @@ impl Monitor<'_> {
 /// Port, link, database and output errors, each with its exit code.
 pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyhow::Result<()> {
     let (db, mut store) = super::open_db(args.db.as_deref(), cfg)?;
-    let link = super::connect(&args.port, cfg)?;
+    let key = super::optional_key(args.key_file.as_deref(), cfg)?;
+    let mut link = super::connect(&args.port, cfg)?;
     let id = link
         .identity()
         .cloned()
         .context("no identity after the handshake")?;
     let serial = super::register(&mut store, &id)?;
+    super::sync_clock(&mut link, key.as_ref(), "monitor")?;
+    let own_schedule = id
+        .capabilities
+        .contains(fringe_protocol::Capabilities::SETTINGS);
+    let period_ms = if own_schedule {
+        let interval = super::device::read_settings(&mut link)?.interval_ms;
+        if let Some(p) = args.period_ms.filter(|p| *p != interval) {
+            eprintln!(
+                "fringe monitor: --period-ms {p} is not used: {serial} measures every {interval} ms on its own (change it with `fringe device config set --interval-ms`)"
+            );
+        }
+        interval
+    } else {
+        args.period_ms.unwrap_or(1000)
+    };
     let last = store.last_seq(&serial)?;
     let last_event = store.last_event(&serial)?;
     let style = Style::detect();
@@ -429,7 +481,8 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
         sum: MonitorSummary::default(),
         style,
         alarm: cfg.alarm,
-        period_ms: args.period_ms,
+        period_ms,
+        key,
         // With --json, stdout carries only the summary.
         quiet: args.quiet || args.json,
         stop,
@@ -455,8 +508,8 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
             m.link.port_name(),
             db.display(),
             match last {
-                Some(s) => format!(", continuing after {s}"),
-                None => ", new device in this database (older readings: `fringe pull`)".into(),
+                Some(s) => format!(", stored up to {s}"),
+                None => ", new device in this database".into(),
             }
         ))?;
     }
@@ -531,11 +584,12 @@ impl Monitor<'_> {
         deadline: Option<Instant>,
     ) -> anyhow::Result<()> {
         let stop_at = count.unwrap_or(u64::MAX);
-        // Backfill up to where the device is now; what it takes from here on
-        // comes by the stream (a backfill chasing the log's moving end on a
-        // noisy line might never finish).
+        // Store what the device logged that the database lacks, up to where
+        // the device is now; what it takes from here on comes by the stream
+        // (a backfill chasing the log's moving end on a noisy line might
+        // never finish).
         let now_at = super::request_status(&mut self.link)?.next_seq;
-        self.fill_gap(Some(now_at))?;
+        self.backfill_missing(now_at)?;
         self.flush()?;
         self.watch_drift(!self.drift.primed)?;
         self.start_stream()?;

@@ -1,25 +1,32 @@
-//! `fringe pull`: read the device's stored log and events from the last
-//! stored ones on, with a progress bar; idempotent (run it as often as you like).
+//! `fringe pull`: store every reading the device log still holds that the
+//! database lacks (before, between and after what it holds:
+//! [`crate::session::plan_backfill`]) and the events after the last stored
+//! one, with a progress bar; idempotent (run it as often as you like). With
+//! the device key it first sets the device clock when it is unset or off
+//! by more than a second.
 
 use std::time::Instant;
 
 use anyhow::Context;
-use fringe_protocol::Seq;
 use indicatif::{ProgressBar, ProgressStyle};
 
-use super::ingest::{backfill, next_seq, pull_events};
+use super::ingest::{backfill_missing, pull_events};
 use crate::cli::PullArgs;
 use crate::config::LineConfig;
 use crate::out;
 use crate::store::Batcher;
 
 /// What a pull did.
-#[derive(Debug, Clone, Default, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize)]
 pub struct PullSummary {
     /// Device serial.
     pub serial: String,
-    /// First sequence asked for.
-    pub from: String,
+    /// The device log: first sequence held, and readings held.
+    pub log_first: String,
+    /// Readings the device log holds.
+    pub log_len: u32,
+    /// The device clock before, and whether it was set.
+    pub clock: crate::session::ClockSync,
     /// Readings received.
     pub received: u64,
     /// Readings newly stored.
@@ -43,29 +50,19 @@ pub struct PullSummary {
 pub fn pull(args: &PullArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let t0 = Instant::now();
     let (_, mut store) = super::open_db(args.db.as_deref(), cfg)?;
+    let key = super::optional_key(args.key_file.as_deref(), cfg)?;
     let mut link = super::connect(&args.port, cfg)?;
     let id = link
         .identity()
         .cloned()
         .context("no identity after the handshake")?;
     let serial = super::register(&mut store, &id)?;
-    let from = store.last_seq(&serial)?.map_or(
-        Seq {
-            boot: 0,
-            counter: 0,
-        },
-        next_seq,
-    );
+    let clock = super::sync_clock(&mut link, key.as_ref(), "pull")?;
     let status = super::request_status(&mut link)?;
-    // Readings to expect: all of the log if we start before it, else the
-    // part of this boot after `from`.
-    let expected = if from <= status.log_first {
-        u64::from(status.log_len)
-    } else if from.boot == status.next_seq.boot {
-        u64::from(status.next_seq.counter.saturating_sub(from.counter))
-    } else {
-        u64::from(status.log_len)
-    };
+    // Readings to expect: those the log holds that the database lacks (the
+    // device goes on measuring meanwhile; the bar grows if it must).
+    let held = store.count_between(&serial, status.log_first, status.next_seq)?;
+    let expected = u64::from(status.log_len).saturating_sub(held);
     let bar = if args.json {
         ProgressBar::hidden()
     } else {
@@ -80,13 +77,16 @@ pub fn pull(args: &PullArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     );
     bar.set_prefix(format!("pulling {serial}"));
     let mut batcher = Batcher::new(&serial);
-    let b = backfill(
+    let b = backfill_missing(
         &mut link,
         &mut store,
         &mut batcher,
-        from,
+        &serial,
         None,
         &mut |n, _| {
+            if n > bar.length().unwrap_or(0) {
+                bar.set_length(n);
+            }
             bar.set_position(n);
         },
     );
@@ -102,7 +102,9 @@ pub fn pull(args: &PullArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let total = batcher.total();
     let summary = PullSummary {
         serial,
-        from: from.to_string(),
+        log_first: status.log_first.to_string(),
+        log_len: status.log_len,
+        clock,
         received: b.received,
         stored: total.inserted,
         duplicates: total.duplicates + total.conflicts,
@@ -115,10 +117,11 @@ pub fn pull(args: &PullArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         out::json(&serde_json::to_value(&summary)?)?;
     } else {
         out::line(&format!(
-            "{}: {} readings from {} received, {} stored, {} already stored, {} lost; {} events stored ({})",
+            "{}: device log {} readings from {}; {} received, {} stored, {} already stored, {} lost; {} events stored ({})",
             summary.serial,
+            summary.log_len,
+            summary.log_first,
             summary.received,
-            summary.from,
             summary.stored,
             summary.duplicates,
             summary.lost,

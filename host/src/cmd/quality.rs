@@ -52,6 +52,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             let key = device_cal::load_key(&c.key.key_file)?;
             let mut store = Store::open(&c.db)?;
             let mut link = super::connect(&c.port, cfg)?;
+            super::sync_clock(&mut link, Some(&key), "cal cell")?;
             let now_s = (crate::store::now_unix_ms() / 1000).max(0) as u64;
             let o = device_cal::cell_calibration(
                 &mut link,
@@ -73,6 +74,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         }
         CalCommand::Capture(c) => {
             let mut link = super::connect(&c.port, cfg)?;
+            super::sync_clock(&mut link, None, "cal capture")?;
             let n = device_cal::capture(&mut link, c, &mut Terminal)?;
             crate::outln!("{n} sample(s) written to {}", c.out.display());
             Ok(())
@@ -82,6 +84,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             let key = device_cal::load_key(&p.key.key_file)?;
             let mut store = Store::open(&p.db)?;
             let mut link = super::connect(&p.port, cfg)?;
+            super::sync_clock(&mut link, Some(&key), "cal push")?;
             let o = device_cal::push(
                 &mut link,
                 &key,
@@ -107,6 +110,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         }
         CalCommand::List(l) => {
             let mut link = super::connect(&l.port, cfg)?;
+            super::sync_clock(&mut link, None, "cal list")?;
             let (slots, active) = device_cal::list_slots(&mut link)?;
             device_cal::print_slots(&slots, active, l.json)?;
             Ok(())
@@ -115,6 +119,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             let key = device_cal::load_key(&s.key.key_file)?;
             let mut store = Store::open(&s.db)?;
             let mut link = super::connect(&s.port, cfg)?;
+            super::sync_clock(&mut link, Some(&key), "cal select")?;
             let (slot, id) = device_cal::select(
                 &mut link,
                 &key,

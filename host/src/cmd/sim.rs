@@ -11,7 +11,7 @@ use fringe_firmware::{Device, DeviceConfig, RamFlash, SimFrontend};
 use fringe_protocol::ResetCause;
 
 use crate::cli::SimArgs;
-use crate::sim::scenario::{Conditions, Scenario};
+use crate::sim::scenario::{ClockStart, Conditions, Scenario};
 use crate::sim::{Bench, SimDevice, SimOptions};
 
 /// Flash of the simulated device: 1 MiB holds some 20,000 readings.
@@ -26,6 +26,9 @@ pub struct FirmwareSim {
     product: SynthProduct<f32>,
     last_ms: u64,
     bench: Option<Bench>,
+    /// Unix ms of device time 0 when the clock starts set (a battery-backed
+    /// clock that runs on across reboots).
+    clock_origin_ms: Option<u64>,
 }
 
 impl FirmwareSim {
@@ -37,6 +40,12 @@ impl FirmwareSim {
         let key = scenario.key().context("scenario device.key")?;
         let mut config = DeviceConfig::new(&scenario.device.serial, key);
         config.simulated = true;
+        config.settings.interval_ms = scenario.device.interval_ms;
+        // The default stale timeout, or twice the interval if that is longer.
+        config.settings.stale_timeout_ms = config
+            .settings
+            .stale_timeout_ms
+            .max(scenario.device.interval_ms.saturating_mul(2));
         let mut product = SynthProduct::<f32>::grain();
         product.mixture.eps_dry = scenario.product.dry_permittivity as f32;
         let flash: Flash = Box::leak(Box::new(RamFlash::new()));
@@ -50,15 +59,39 @@ impl FirmwareSim {
             0,
         )
         .map_err(|e| anyhow::anyhow!("the simulated device did not boot: {e:?}"))?;
+        let clock_origin_ms = (scenario.device.clock == ClockStart::Set)
+            .then(|| crate::store::now_unix_ms().max(0) as u64);
         let mut s = Self {
             device: Some(device),
             config,
             product,
             last_ms: 0,
             bench: None,
+            clock_origin_ms,
         };
+        s.start_clock(0);
         s.set_conditions(&scenario.at(0.0));
         Ok(s)
+    }
+
+    /// Sets the clock from the simulated battery-backed clock, if it has one.
+    fn start_clock(&mut self, now_ms: u64) {
+        if let (Some(d), Some(origin)) = (self.device.as_mut(), self.clock_origin_ms) {
+            // The boot's ClockSet event goes to the log (nobody listens yet).
+            let _ = d.set_clock_from_board(now_ms, origin + now_ms, &mut |_| {});
+        }
+    }
+
+    /// Boot counter, readings since boot, loop current (mA), subscribed.
+    pub fn summary(&self) -> Option<(u32, u32, f32, bool)> {
+        self.device.as_ref().map(|d| {
+            (
+                d.boot_count(),
+                d.readings_since_boot(),
+                d.output_ma(),
+                d.subscribed(),
+            )
+        })
     }
 }
 
@@ -106,6 +139,24 @@ impl SimDevice for FirmwareSim {
         self.bench = bench;
     }
 
+    fn report(&self) -> Option<String> {
+        self.summary().map(|(boot, n, ma, sub)| {
+            format!(
+                "boot {boot}: {n} readings taken and logged, loop {ma:.2} mA{}, {}",
+                if ma <= 3.6 || ma >= 21.0 {
+                    " (NE 43 failure level)"
+                } else {
+                    ""
+                },
+                if sub {
+                    "a host is subscribed"
+                } else {
+                    "no host subscribed"
+                }
+            )
+        })
+    }
+
     fn reboot_if_requested(&mut self, now_ms: u64) {
         if !self.device.as_ref().is_some_and(|d| d.reboot_requested()) {
             return;
@@ -122,6 +173,7 @@ impl SimDevice for FirmwareSim {
                 now_ms,
             )
             .ok();
+            self.start_clock(now_ms);
         }
     }
 }

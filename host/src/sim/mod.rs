@@ -35,6 +35,11 @@ pub trait SimDevice {
     /// Puts a bench material in front of the window instead of the line
     /// (`None`: the line again). Applied with the next conditions.
     fn set_bench(&mut self, bench: Option<Bench>);
+    /// One line on what the device is doing (readings, loop current), for
+    /// the simulator's periodic report; `None` if it has nothing to say.
+    fn report(&self) -> Option<String> {
+        None
+    }
 }
 
 /// What is in front of the window at the bench.
@@ -142,6 +147,9 @@ fn record_line(out: &mut impl Write, r: &Reading) -> io::Result<()> {
     )
 }
 
+/// How often the simulator reports what the device does (wall time).
+pub const REPORT_EVERY: Duration = Duration::from_secs(10);
+
 /// Runs the simulator until `stop` is set (or the duration passes).
 /// `announce` is called with the port path each time a pty is opened.
 ///
@@ -183,6 +191,8 @@ pub fn run(
     let mut bench_text = String::new();
     let mut baud_ok = true;
     let mut tx_blocked_until: Option<Instant> = None;
+    // The device runs alone: say what it does now and then.
+    let mut last_report = Instant::now();
     let mut buf = [0u8; 2048];
     let mut rx = Vec::with_capacity(2048);
     let mut tx = Vec::with_capacity(4096);
@@ -272,6 +282,12 @@ pub fn run(
         tx.clear();
         device.poll(now_ms, &rx, &mut |b| tx.extend_from_slice(b));
         stats.polls += 1;
+        if last_report.elapsed() >= REPORT_EVERY {
+            last_report = Instant::now();
+            if let Some(r) = device.report() {
+                eprintln!("fringe sim: {r}");
+            }
+        }
         device.reboot_if_requested(now_ms);
 
         if tx.is_empty() {

@@ -20,6 +20,10 @@
 //! seed = 7                          # noise and fault seed
 //! time_scale = 1.0                  # device seconds per wall second (tests run faster)
 //! baud = 115200                     # the device's baud rate; a host at another rate gets garbage
+//! interval_ms = 1000                # measurement interval on a blank flash (device ms; 100..=3600000)
+//! clock = "set"                     # "set": the device clock starts at the wall clock (a battery-backed
+//!                                   # clock) and runs at time_scale; "unset": it counts from boot until a
+//!                                   # host sets it, as a device without one does
 //!
 //! [product]
 //! name = "wheat"
@@ -68,6 +72,29 @@ pub struct DeviceSection {
     /// The device's baud rate.
     #[serde(default = "default_baud")]
     pub baud: u32,
+    /// Measurement interval the device starts with (its setting on a blank
+    /// flash), device ms.
+    #[serde(default = "default_interval")]
+    pub interval_ms: u32,
+    /// Whether the device clock starts set (`set`, the default) or counts
+    /// from boot until a host sets it (`unset`).
+    #[serde(default)]
+    pub clock: ClockStart,
+}
+
+/// How the simulated device's clock starts.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ClockStart {
+    /// At the wall-clock time the simulator starts (then at `time_scale`).
+    #[default]
+    Set,
+    /// Unset: times count from boot until a host sets the clock.
+    Unset,
+}
+
+fn default_interval() -> u32 {
+    fringe_firmware::settings::DEFAULT_INTERVAL_MS
 }
 
 fn one() -> f64 {
@@ -274,6 +301,17 @@ impl Scenario {
                 "device.time_scale",
                 d.time_scale.to_string(),
                 "must be > 0 and <= 1000",
+            ));
+        }
+        let (lo, hi) = (
+            fringe_firmware::settings::MIN_INTERVAL_MS,
+            fringe_firmware::settings::MAX_INTERVAL_MS,
+        );
+        if !(lo..=hi).contains(&d.interval_ms) {
+            return Err(bad(
+                "device.interval_ms",
+                d.interval_ms.to_string(),
+                &format!("must be {lo}..={hi} ms"),
             ));
         }
         if self.product.name.is_empty() || self.product.name.len() > fringe_protocol::NAME_LEN {

@@ -241,7 +241,44 @@ pub struct StoredReading {
     pub reading: Reading,
     /// How it arrived.
     pub source: Source,
+    /// When it was taken, ms since the Unix epoch: the device time when its
+    /// clock was set; for a reading taken before (flag `clock_unset`, time
+    /// since boot) the boot's wall-clock origin plus that time, once the
+    /// store holds the boot's `ClockSet` event ([`BootClock`]); `None` while
+    /// it does not.
+    pub wall_ms: Option<i64>,
+    /// `wall_ms` was re-based from a time since boot (computed, not what
+    /// the device sent; the stored row keeps the device time).
+    pub rebased: bool,
 }
+
+/// When a boot's clock was first set, from its `ClockSet` event: what
+/// re-bases the readings and events of that boot taken before.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct BootClock {
+    /// Wall-clock time of the boot's time 0: `new_ms - old_ms` of the event
+    /// (where `old_ms` was the time since boot).
+    pub origin_ms: i64,
+    /// Number of the `ClockSet` event: the boot's events numbered below it
+    /// carry times since boot.
+    pub event_number: u32,
+}
+
+impl BootClock {
+    /// Wall-clock time of a reading of this boot: `(time, re-based)`.
+    pub fn reading_time(clock: Option<&BootClock>, r: &Reading) -> (Option<i64>, bool) {
+        if !r.flags.contains(fringe_protocol::Flags::CLOCK_UNSET) {
+            return (Some(r.time_ms as i64), false);
+        }
+        match clock {
+            Some(c) => (Some(c.origin_ms + r.time_ms as i64), true),
+            None => (None, false),
+        }
+    }
+}
+
+/// Device times below this (2000-01-01) count from boot.
+const SINCE_BOOT_BELOW_MS: u64 = 946_684_800_000;
 
 /// A stored event.
 #[derive(Debug, Clone, PartialEq)]
@@ -260,6 +297,9 @@ pub enum CalKind {
     Cell,
     /// Product calibration.
     Product,
+    /// Device settings (tag, interval, 4-20 mA span, failure level,
+    /// stale-output timeout), written with `fringe device config set`.
+    Settings,
 }
 
 impl CalKind {
@@ -268,13 +308,14 @@ impl CalKind {
         match self {
             CalKind::Cell => "cell",
             CalKind::Product => "product",
+            CalKind::Settings => "settings",
         }
     }
     fn parse(s: &str) -> Self {
-        if s == "cell" {
-            CalKind::Cell
-        } else {
-            CalKind::Product
+        match s {
+            "cell" => CalKind::Cell,
+            "settings" => CalKind::Settings,
+            _ => CalKind::Product,
         }
     }
 }
@@ -593,6 +634,7 @@ fn event_kind_name(k: &fringe_protocol::EventKind) -> &'static str {
         K::Fault { .. } => "fault",
         K::ReferenceDrift { .. } => "reference_drift",
         K::StorageRepaired => "storage_repaired",
+        K::SettingsChanged { .. } => "settings_changed",
     }
 }
 
@@ -1307,16 +1349,66 @@ impl Store {
                 i64::from(to.counter)
             ])
             .map_err(|e| self.err(e))?;
+        let clocks = self.boot_clocks(serial)?;
         while let Some(row) = rows.next().map_err(|e| self.err(e))? {
             let rec = record_from_row(row, Table::Readings).map_err(|e| self.err(e))?;
             let (reading, source) = reading_from_values(&rec.values);
+            let (wall_ms, rebased) =
+                BootClock::reading_time(clocks.get(&reading.seq.boot), &reading);
             f(StoredReading {
                 position: rec.position,
                 reading,
                 source,
+                wall_ms,
+                rebased,
             })?;
         }
         Ok(())
+    }
+
+    /// For each boot of `serial` whose clock was set while the store holds
+    /// its `ClockSet` event with a time since boot, when: the first such
+    /// event of the boot (a later one corrects a clock already set).
+    ///
+    /// # Errors
+    /// [`StoreError`] on a database failure.
+    pub fn boot_clocks(
+        &self,
+        serial: &str,
+    ) -> Result<std::collections::BTreeMap<u32, BootClock>, StoreError> {
+        let mut out = std::collections::BTreeMap::new();
+        let Some(dev) = self.device_key(serial)? else {
+            return Ok(out);
+        };
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT number, boot, detail FROM events WHERE device = ?1 AND kind = 'clock_set' ORDER BY number",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map([dev], |r| {
+                Ok((
+                    r.get::<_, i64>(0)? as u32,
+                    r.get::<_, i64>(1)? as u32,
+                    r.get::<_, String>(2)?,
+                ))
+            })
+            .map_err(|e| self.err(e))?;
+        for row in rows {
+            let (number, boot, detail) = row.map_err(|e| self.err(e))?;
+            if let Ok(fringe_protocol::EventKind::ClockSet { old_ms, new_ms }) =
+                serde_json::from_str(&detail)
+            {
+                if old_ms < SINCE_BOOT_BELOW_MS {
+                    out.entry(boot).or_insert(BootClock {
+                        origin_ms: new_ms as i64 - old_ms as i64,
+                        event_number: number,
+                    });
+                }
+            }
+        }
+        Ok(out)
     }
 
     /// The records of `serial` in `table` at chain positions after `after`
@@ -1516,6 +1608,69 @@ impl Store {
                 },
             })
             .collect())
+    }
+
+    /// The runs of consecutive stored readings of `serial`: `(first, last)`
+    /// within one boot, in sequence order (what a backfill plans around,
+    /// [`crate::session::plan_backfill`]).
+    ///
+    /// # Errors
+    /// [`StoreError`] on a database failure.
+    pub fn runs(&self, serial: &str) -> Result<Vec<(Seq, Seq)>, StoreError> {
+        let Some(dev) = self.device_key(serial)? else {
+            return Ok(Vec::new());
+        };
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT boot, min(counter), max(counter) FROM (
+                   SELECT boot, counter,
+                          counter - row_number() OVER (PARTITION BY boot ORDER BY counter) AS grp
+                   FROM readings WHERE device = ?1)
+                 GROUP BY boot, grp ORDER BY boot, min(counter)",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map([dev], |r| {
+                let boot = r.get::<_, i64>(0)? as u32;
+                Ok((
+                    Seq {
+                        boot,
+                        counter: r.get::<_, i64>(1)? as u32,
+                    },
+                    Seq {
+                        boot,
+                        counter: r.get::<_, i64>(2)? as u32,
+                    },
+                ))
+            })
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
+    /// Number of stored readings of `serial` with `from <= seq < until`.
+    ///
+    /// # Errors
+    /// [`StoreError`] on a database failure.
+    pub fn count_between(&self, serial: &str, from: Seq, until: Seq) -> Result<u64, StoreError> {
+        let Some(dev) = self.device_key(serial)? else {
+            return Ok(0);
+        };
+        self.conn
+            .query_row(
+                "SELECT count(*) FROM readings WHERE device = ?1 \
+                 AND (boot, counter) >= (?2, ?3) AND (boot, counter) < (?4, ?5)",
+                params![
+                    dev,
+                    i64::from(from.boot),
+                    i64::from(from.counter),
+                    i64::from(until.boot),
+                    i64::from(until.counter)
+                ],
+                |r| r.get::<_, i64>(0),
+            )
+            .map(|n| n as u64)
+            .map_err(|e| self.err(e))
     }
 
     /// Missing reading counters within each boot of `serial` (a boot's

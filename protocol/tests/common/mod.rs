@@ -338,7 +338,8 @@ pub fn fault_code() -> impl Strategy<Value = FaultCode> {
         Just(FaultCode::Saturation),
         Just(FaultCode::TemperatureSensor),
         Just(FaultCode::Storage),
-        Just(FaultCode::CurrentLoop)
+        Just(FaultCode::CurrentLoop),
+        Just(FaultCode::StaleOutput)
     ]
 }
 
@@ -363,6 +364,7 @@ pub fn event_kind() -> impl Strategy<Value = EventKind> {
         (any_f32(), any_f32())
             .prop_map(|(ratio, baseline)| EventKind::ReferenceDrift { ratio, baseline }),
         Just(EventKind::StorageRepaired),
+        (cal_id(), cal_id()).prop_map(|(old, new)| EventKind::SettingsChanged { old, new }),
     ]
 }
 
@@ -378,6 +380,7 @@ pub fn event_kind_index(k: &EventKind) -> usize {
         EventKind::Fault { .. } => 6,
         EventKind::ReferenceDrift { .. } => 7,
         EventKind::StorageRepaired => 8,
+        EventKind::SettingsChanged { .. } => 9,
     }
 }
 
@@ -402,6 +405,21 @@ pub fn output_config() -> impl Strategy<Value = OutputConfig> {
     })
 }
 
+pub fn settings() -> impl Strategy<Value = Settings> {
+    (
+        string::<TAG_LEN>(),
+        any::<u32>(),
+        output_config(),
+        any::<u32>(),
+    )
+        .prop_map(|(tag, interval_ms, output, stale_timeout_ms)| Settings {
+            tag,
+            interval_ms,
+            output,
+            stale_timeout_ms,
+        })
+}
+
 pub fn request() -> impl Strategy<Value = Request> {
     prop_oneof![
         version().prop_map(|host| Request::Identify { host }),
@@ -422,6 +440,8 @@ pub fn request() -> impl Strategy<Value = Request> {
         Just(Request::SelfTest),
         Just(Request::Reboot),
         output_config().prop_map(Request::SetOutput),
+        Just(Request::ReadSettings),
+        settings().prop_map(Request::WriteSettings),
     ]
 }
 
@@ -446,6 +466,8 @@ pub fn request_index(r: &Request) -> usize {
         Request::SelfTest => 15,
         Request::Reboot => 16,
         Request::SetOutput(_) => 17,
+        Request::ReadSettings => 18,
+        Request::WriteSettings(_) => 19,
     }
 }
 
@@ -487,6 +509,7 @@ pub fn response() -> impl Strategy<Value = Response> {
         )
             .prop_map(|(events, next, end)| Response::Events { events, next, end }),
         self_test().prop_map(Response::SelfTest),
+        settings().prop_map(Response::Settings),
     ]
 }
 
@@ -504,6 +527,7 @@ pub fn response_index(r: &Response) -> usize {
         Response::Log { .. } => 8,
         Response::Events { .. } => 9,
         Response::SelfTest(_) => 10,
+        Response::Settings(_) => 11,
     }
 }
 

@@ -1,0 +1,581 @@
+//! A sensor that runs a line by itself, against `fringe sim` over a
+//! pseudo-terminal: the device measures and logs with no host attached;
+//! `pull` stores all it holds (before, between and after what a database
+//! has, never twice); a monitor sets an unset clock, and the readings taken
+//! before are re-based onto wall-clock time and found by a report, the
+//! drift data and an audit export over a wall-clock range; the device clock
+//! and settings commands; times typed with and without an offset.
+
+use std::path::Path;
+use std::time::{Duration, Instant};
+
+use fringe_host::store::{CalKind, Source, Store};
+use fringe_protocol::{EventKind, Flags};
+use fringe_tests::*;
+
+const LIMIT: Duration = Duration::from_secs(120);
+
+fn status_json(sim: &Sim) -> serde_json::Value {
+    let o = run(
+        &mut fringe(&["status", "--port", sim.port_str(), "--json"]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "status: {}", o.stderr);
+    serde_json::from_str(&o.stdout).expect("status --json")
+}
+
+/// Polls the device's status until its log holds at least `n` readings.
+fn wait_for_log(sim: &Sim, n: u64) -> serde_json::Value {
+    let deadline = Instant::now() + Duration::from_secs(90);
+    loop {
+        let s = status_json(sim);
+        if s["log_len"].as_u64().unwrap_or(0) >= n {
+            return s;
+        }
+        assert!(
+            Instant::now() < deadline,
+            "the device logged only {} readings in 90 s; sim log:\n{}",
+            s["log_len"],
+            sim.log()
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
+}
+
+fn key_file(sim: &Sim) -> String {
+    let p = sim.path("device.key");
+    std::fs::write(&p, format!("{TEST_KEY_HEX}\n")).expect("key file");
+    p.to_str().expect("utf-8 path").to_string()
+}
+
+fn pull_json(sim: &Sim, db: &Path, extra: &[&str]) -> serde_json::Value {
+    let mut args = vec!["--json"];
+    args.extend_from_slice(extra);
+    let o = run(&mut sim.pull(db, &args), LIMIT);
+    assert_eq!(o.code, 0, "pull: {}", o.stderr);
+    serde_json::from_str(&o.stdout).expect("pull --json")
+}
+
+#[test]
+fn left_alone_the_device_logs_every_interval_and_pull_gets_the_whole_log() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0301", 41));
+    // Nobody speaks to it but for its status: 100 ms intervals at 10x.
+    let s = wait_for_log(&sim, 300);
+    assert!(s["stream_period_ms"].is_null(), "nobody subscribed: {s}");
+    assert!(
+        sim.recorded().is_empty(),
+        "nothing was sent: the readings are only in the device log"
+    );
+    let db = sim.path("empty.db");
+    let p = pull_json(&sim, &db, &[]);
+    assert_eq!(p["duplicates"], 0, "{p}");
+    let stored = stored_readings(&db, "HGM-L2-0301");
+    let n = assert_gapless(&stored, &sim.recorded(), "pull into an empty database");
+    assert!(n as u64 >= 300, "{n}");
+    assert_eq!(
+        (stored[0].seq.boot, stored[0].seq.counter),
+        (1, 0),
+        "the whole log, from the first reading of the boot"
+    );
+    // A reading every 100 ms of device time, started on the interval and
+    // timed when done. Every tenth reading carries the reference check,
+    // whose acquisition (about 160 ms on the simulated board) outlasts a
+    // 100 ms interval: the slot it overruns is skipped, not caught up. (The
+    // simulator runs on this machine's wall clock at 10x, so a busy machine
+    // stretches single gaps; the exact schedule is `firmware/tests/schedule.rs`.)
+    for w in stored.windows(2) {
+        let dt = w[1].time_ms as i64 - w[0].time_ms as i64;
+        assert!(
+            (30..=1000).contains(&dt),
+            "{} -> {}: {dt} ms",
+            w[0].seq,
+            w[1].seq
+        );
+    }
+    let slots = (stored[n - 1].time_ms - stored[0].time_ms) as f64 / 100.0 + 1.0;
+    assert!(
+        n as f64 >= 0.85 * slots && n as f64 <= slots + 1.0,
+        "{n} readings in {slots:.0} intervals"
+    );
+}
+
+#[test]
+fn pull_into_a_database_with_the_middle_gets_both_ends_and_never_a_duplicate() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0302", 42));
+    wait_for_log(&sim, 300);
+    let full = sim.path("full.db");
+    pull_json(&sim, &full, &[]);
+    let all = stored_readings(&full, "HGM-L2-0302");
+    assert!(all.len() >= 300);
+    // A database that holds only the middle third, and a hole in it.
+    let middle = sim.path("middle.db");
+    {
+        let mut st = Store::open(&middle).expect("db");
+        let third = all.len() / 3;
+        let mut part: Vec<_> = all[third..2 * third].to_vec();
+        part.drain(10..20);
+        st.insert_readings("HGM-L2-0302", &part, Source::Log)
+            .expect("insert");
+    }
+    let before = stored_readings(&middle, "HGM-L2-0302").len();
+    let p = pull_json(&sim, &middle, &[]);
+    assert_eq!(
+        p["duplicates"], 0,
+        "the pull asked only for what was missing: {p}"
+    );
+    let after = stored_readings(&middle, "HGM-L2-0302");
+    assert_eq!(
+        after.len() - before,
+        p["stored"].as_u64().unwrap() as usize,
+        "{p}"
+    );
+    let n = assert_gapless(&after, &sim.recorded(), "pull into the middle");
+    assert!(
+        after[0].seq == all[0].seq && n >= all.len(),
+        "both ends: first {} (log starts at {}), {n} readings against {}",
+        after[0].seq,
+        all[0].seq,
+        all.len()
+    );
+    // Again: only what came since, still never a duplicate.
+    let p = pull_json(&sim, &middle, &[]);
+    assert_eq!(p["duplicates"], 0, "{p}");
+    let store = Store::open_read_only(&middle).unwrap();
+    assert!(store.verify_chain().unwrap().ok());
+    assert_eq!(store.gaps("HGM-L2-0302").unwrap(), vec![]);
+}
+
+#[test]
+fn monitor_sets_an_unset_clock_and_earlier_readings_are_rebased_and_found_by_wall_clock() {
+    let t_start = fringe_host::store::now_unix_ms();
+    let mut spec = ScenarioSpec::clean("HGM-L2-0303", 43);
+    // Real time, so that device time since boot and wall-clock time agree.
+    spec.time_scale = 1.0;
+    spec.clock_unset = true;
+    let sim = Sim::start(&spec);
+    let s = wait_for_log(&sim, 20);
+    assert_eq!(s["clock_set"], false, "{s}");
+    let key = key_file(&sim);
+    let db = sim.path("line2.db");
+    let o = run(
+        &mut sim.monitor(&db, &["--count", "20", "--json", "--key-file", &key]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        o.stderr.contains("device clock was not set"),
+        "{}",
+        o.stderr
+    );
+    let t_end = fringe_host::store::now_unix_ms();
+    let store = Store::open_read_only(&db).unwrap();
+    // The correction is in the record: the device's ClockSet event.
+    let sets: Vec<_> = store
+        .events("HGM-L2-0303")
+        .unwrap()
+        .into_iter()
+        .filter_map(|e| match e.event.kind {
+            EventKind::ClockSet { old_ms, new_ms } => Some((old_ms, new_ms)),
+            _ => None,
+        })
+        .collect();
+    assert_eq!(sets.len(), 1, "{sets:?}");
+    let (old_ms, new_ms) = sets[0];
+    assert!(old_ms < 120_000, "set {old_ms} ms after boot");
+    assert!((t_start..=t_end).contains(&(new_ms as i64)));
+    let readings = store.readings("HGM-L2-0303").unwrap();
+    let early: Vec<_> = readings
+        .iter()
+        .filter(|r| r.reading.flags.contains(Flags::CLOCK_UNSET))
+        .collect();
+    assert!(
+        early.len() >= 20,
+        "{} readings from before the clock was set",
+        early.len()
+    );
+    for r in &early {
+        assert!(r.rebased, "{} is marked re-based", r.reading.seq);
+        let wall = r.wall_ms.expect("re-based time");
+        // Taken between the simulator's start and the clock being set
+        // (1 s of slack for the simulator's own start-up).
+        assert!(
+            wall >= t_start - 1000 && wall <= new_ms as i64,
+            "{}: {wall} not in {t_start}..={new_ms}",
+            r.reading.seq
+        );
+    }
+    let late = readings
+        .iter()
+        .filter(|r| !r.reading.flags.contains(Flags::CLOCK_UNSET));
+    for r in late {
+        assert!(!r.rebased && r.wall_ms == Some(r.reading.time_ms as i64));
+    }
+    // The drift monitors' data places them by wall-clock time.
+    let data = fringe_host::analysis::load(&store, Some("HGM-L2-0303")).unwrap();
+    let placed = data
+        .rows
+        .iter()
+        .filter(|r| r.rebased && r.clock_known && r.time_ms >= t_start - 1000)
+        .count();
+    assert_eq!(placed, early.len());
+    // A report says how many were re-based.
+    let out = sim.path("report");
+    let o = run(
+        &mut fringe(&[
+            "report",
+            "--db",
+            db.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let html = std::fs::read_to_string(out.join("index.html")).unwrap();
+    assert!(html.contains("re-based onto wall-clock time"), "report");
+    // An audit export over the wall-clock range of the early readings
+    // holds them: typed as local times without an offset, in Berlin.
+    let first = early[0].wall_ms.unwrap();
+    let last = early[early.len() - 1].wall_ms.unwrap();
+    let berlin = jiff::tz::TimeZone::get("Europe/Berlin").unwrap();
+    let local = |ms: i64| {
+        jiff::Timestamp::from_millisecond(ms)
+            .unwrap()
+            .to_zoned_datetime(berlin.clone())
+            .strftime("%Y-%m-%d %H:%M:%S%.3f")
+            .to_string()
+    };
+    let bundle = sim.path("audit");
+    let o = run(
+        fringe(&[
+            "audit",
+            "export",
+            "--db",
+            db.to_str().unwrap(),
+            "--from",
+            &local(first - 1),
+            "--to",
+            &local(last + 1),
+            "--out",
+            bundle.to_str().unwrap(),
+            "--json",
+        ])
+        .env("TZ", "Europe/Berlin"),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let m: serde_json::Value = serde_json::from_str(&o.stdout).expect("manifest json");
+    let n = m["records"]["readings"].as_u64().unwrap_or(0);
+    assert!(
+        n >= early.len() as u64,
+        "the export over {}..{} holds {n} readings, {} were taken then: {m}",
+        local(first),
+        local(last),
+        early.len()
+    );
+}
+
+#[test]
+fn device_clock_shows_and_sets_the_clock() {
+    let mut spec = ScenarioSpec::clean("HGM-L2-0304", 44);
+    spec.time_scale = 1.0;
+    spec.clock_unset = true;
+    let sim = Sim::start(&spec);
+    let o = run(
+        &mut fringe(&["device", "clock", "--port", sim.port_str(), "--json"]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let v: serde_json::Value = serde_json::from_str(&o.stdout).unwrap();
+    assert_eq!(v["clock_set"], false, "{v}");
+    // Setting needs the key.
+    let o = run(
+        &mut fringe(&["device", "clock", "--port", sim.port_str(), "--set"]),
+        LIMIT,
+    );
+    assert_fails(&o, 1, &["--key-file"]);
+    let key = key_file(&sim);
+    let o = run(
+        &mut fringe(&[
+            "device",
+            "clock",
+            "--port",
+            sim.port_str(),
+            "--set",
+            "--key-file",
+            &key,
+            "--json",
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let v: serde_json::Value = serde_json::from_str(&o.stdout).unwrap();
+    assert_eq!(v["clock_set"], true, "{v}");
+    assert!(v["off_ms"].as_i64().unwrap().abs() < 1000, "{v}");
+    // A given time, with an offset; shown in local time with its offset.
+    let o = run(
+        fringe(&[
+            "device",
+            "clock",
+            "--port",
+            sim.port_str(),
+            "--key-file",
+            &key,
+            "--set-to",
+            "2026-12-01T07:30:00+01:00",
+        ])
+        .env("TZ", "Europe/Berlin"),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        o.stdout.contains("set to     2026-12-01T07:30:00+01:00"),
+        "{}",
+        o.stdout
+    );
+    let o = run(
+        &mut fringe(&["device", "clock", "--port", sim.port_str(), "--json"]),
+        LIMIT,
+    );
+    let v: serde_json::Value = serde_json::from_str(&o.stdout).unwrap();
+    let dev = v["device_unix_ms"].as_i64().unwrap();
+    assert!(
+        (1_796_106_600_000..1_796_106_660_000).contains(&dev),
+        "the device runs on from 06:30Z: {v}"
+    );
+    // A bad time names the flag.
+    let o = run(
+        &mut fringe(&[
+            "device",
+            "clock",
+            "--port",
+            sim.port_str(),
+            "--key-file",
+            &key,
+            "--set-to",
+            "2026-13-01 07:30",
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 2, &["--set-to", "2026-13-01 07:30", "RFC 3339"]);
+}
+
+fn config_show(sim: &Sim) -> serde_json::Value {
+    let o = run(
+        &mut fringe(&[
+            "device",
+            "config",
+            "show",
+            "--port",
+            sim.port_str(),
+            "--json",
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    serde_json::from_str(&o.stdout).unwrap()
+}
+
+#[test]
+fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_nothing() {
+    let mut spec = ScenarioSpec::clean("HGM-L2-0305", 45);
+    // Real time: the device clock (set at start) stays within a second of
+    // this computer's, so no command needs to correct it (a correction
+    // with the wrong key would be refused before the settings write).
+    spec.time_scale = 1.0;
+    let sim = Sim::start(&spec);
+    let key = key_file(&sim);
+    let db = sim.path("line2.db");
+    let d = config_show(&sim);
+    assert_eq!(d["interval_ms"], 100, "the scenario's interval: {d}");
+    assert_eq!(
+        (
+            &d["span_low_pct"],
+            &d["span_high_pct"],
+            &d["fail"],
+            &d["tag"]
+        ),
+        (
+            &serde_json::json!(0.0),
+            &serde_json::json!(30.0),
+            &serde_json::json!("low"),
+            &serde_json::json!("")
+        ),
+        "defaults: {d}"
+    );
+    let wrong = sim.path("wrong.key");
+    std::fs::write(&wrong, "55".repeat(32)).unwrap();
+    let cases: [(&[&str], &str, serde_json::Value); 6] = [
+        (
+            &["--tag", "L2-DRYER-MT-201"],
+            "tag",
+            serde_json::json!("L2-DRYER-MT-201"),
+        ),
+        (
+            &["--interval-ms", "200"],
+            "interval_ms",
+            serde_json::json!(200),
+        ),
+        (
+            &["--span-low-pct", "8"],
+            "span_low_pct",
+            serde_json::json!(8.0),
+        ),
+        (
+            &["--span-high-pct", "22"],
+            "span_high_pct",
+            serde_json::json!(22.0),
+        ),
+        (&["--fail", "high"], "fail", serde_json::json!("high")),
+        (
+            &["--stale-timeout-ms", "60000"],
+            "stale_timeout_ms",
+            serde_json::json!(60000),
+        ),
+    ];
+    for (i, (flags, field, want)) in cases.iter().enumerate() {
+        let base = |k: &str| {
+            let mut a = vec![
+                "device".to_string(),
+                "config".into(),
+                "set".into(),
+                "--port".into(),
+                sim.port_str().into(),
+                "--db".into(),
+                db.to_str().unwrap().into(),
+                "--key-file".into(),
+                k.into(),
+                "--operator".into(),
+                "R. Okafor".into(),
+                "--reason".into(),
+                format!("change {i}"),
+                "--yes".into(),
+            ];
+            a.extend(flags.iter().map(|s| s.to_string()));
+            a
+        };
+        let before = config_show(&sim);
+        let args = base(wrong.to_str().unwrap());
+        let o = run(
+            &mut fringe(&args.iter().map(String::as_str).collect::<Vec<_>>()),
+            LIMIT,
+        );
+        assert_fails(&o, 16, &["auth"]);
+        assert_eq!(
+            config_show(&sim),
+            before,
+            "{field}: a wrong key changes nothing"
+        );
+        let mut args = base(&key);
+        args.push("--json".into());
+        let o = run(
+            &mut fringe(&args.iter().map(String::as_str).collect::<Vec<_>>()),
+            LIMIT,
+        );
+        assert_eq!(o.code, 0, "{field}: {}", o.stderr);
+        let now = config_show(&sim);
+        assert_eq!(&now[*field], want, "{field} read back: {now}");
+    }
+    // The audit chain holds each change with who and why.
+    let store = Store::open_read_only(&db).unwrap();
+    let recs: Vec<_> = store
+        .calibrations("HGM-L2-0305")
+        .unwrap()
+        .into_iter()
+        .filter(|c| c.cal.kind == CalKind::Settings)
+        .collect();
+    assert_eq!(recs.len(), cases.len());
+    for (i, r) in recs.iter().enumerate() {
+        assert_eq!(r.cal.body["operator"], "R. Okafor");
+        assert_eq!(r.cal.body["reason"], format!("change {i}"));
+        assert_eq!(r.cal.body["action"], "settings");
+        assert!(r.cal.body["previous"].is_object());
+    }
+    assert!(store.verify_chain().unwrap().ok());
+    // The device logged each accepted write (and each refusal).
+    pull_json(&sim, &db, &[]);
+    let store = Store::open_read_only(&db).unwrap();
+    let events = store.events("HGM-L2-0305").unwrap();
+    let changed = events
+        .iter()
+        .filter(|e| matches!(e.event.kind, EventKind::SettingsChanged { .. }))
+        .count();
+    let refused = events
+        .iter()
+        .filter(|e| matches!(e.event.kind, EventKind::AuthFailed { .. }))
+        .count();
+    assert_eq!((changed, refused), (cases.len(), cases.len()));
+    // A bad value is refused before anything is written, naming the flag.
+    let o = run(
+        &mut fringe(&[
+            "device",
+            "config",
+            "set",
+            "--port",
+            sim.port_str(),
+            "--db",
+            db.to_str().unwrap(),
+            "--key-file",
+            &key,
+            "--operator",
+            "R. Okafor",
+            "--reason",
+            "test",
+            "--yes",
+            "--stale-timeout-ms",
+            "300",
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 1, &["--stale-timeout-ms 300", "twice the interval"]);
+}
+
+#[test]
+fn lab_times_with_offsets_and_local_times_and_bad_times_naming_the_field() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("lab.db");
+    {
+        let mut st = Store::open(&db).unwrap();
+        st.ensure_device(&fringe_host::store::DeviceInfo {
+            serial: "HGM-L2-0306".into(),
+            ..Default::default()
+        })
+        .unwrap();
+    }
+    let add = |time: &str, id: &str| {
+        let mut c = fringe(&[
+            "lab",
+            "add",
+            "--db",
+            db.to_str().unwrap(),
+            "--time",
+            time,
+            "--moisture",
+            "14.2",
+            "--method",
+            "oven 130 C 2 h",
+            "--operator",
+            "J. Lindqvist",
+            "--sample-id",
+            id,
+            "--json",
+        ]);
+        c.env("TZ", "Europe/Berlin");
+        run(&mut c, LIMIT)
+    };
+    for (time, id) in [
+        ("2026-12-01 09:40", "G-1"),
+        ("2026-12-01T09:40:00+01:00", "G-2"),
+        ("2026-12-01T08:40Z", "G-3"),
+        ("2026-12-01T03:40-05:00", "G-4"),
+    ] {
+        let o = add(time, id);
+        assert_eq!(o.code, 0, "{time}: {}", o.stderr);
+        let v: serde_json::Value = serde_json::from_str(&o.stdout).unwrap();
+        assert_eq!(v["time_utc"], "2026-12-01T08:40:00Z", "{time}");
+    }
+    for bad in ["2026-12-01 25:40", "1 Dec 2026", "2026-12-01T09:40+1"] {
+        let o = add(bad, "G-9");
+        assert_fails(&o, 2, &["--time", bad, "RFC 3339", "local time"]);
+    }
+}
