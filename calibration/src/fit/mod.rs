@@ -18,6 +18,7 @@ pub mod linear;
 pub mod nonlinear;
 pub mod product;
 pub mod rng;
+pub mod zoo;
 
 pub use linear::{fit_linear, polynomial_design, LinearFit};
 pub use nonlinear::{
