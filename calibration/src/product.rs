@@ -29,7 +29,7 @@
 //!  [2] fr_ref_hz (> 0)         [3] sigma_ref_s_m (> 0)
 //!  [4] fr_exponent p           [5] fr_temp_coeff_per_c
 //!  [6] mixing exponent a (0..=1; 0 logarithmic, 0.5 CRIM)
-//!  [7] eps_dry (>= 1)          [8] particle_density_kg_m3 (> 0)
+//!  [7] eps_dry (>= 1)          [8] particle_density_kg_m3 (0 < rho <= 5000)
 //!  [9] bulk_density_kg_m3 (> 0, below the particle density and 1000)
 //!  [10] t_ref_c (of the c_t term and of the law's c_T)
 //!  [11] p0 [12] p1 [13] p2 [14] p3  (% per m^k)
@@ -410,11 +410,11 @@ impl<T: Real> ProductModel<T> {
                 if !(p[8] > 0.0) {
                     return bad(8, "particle density must be > 0 kg/m^3");
                 }
-                if !(p[9] > 0.0 && p[9] < p[8] && p[9] < 1000.0) {
-                    return bad(
-                        9,
-                        "bulk density must be > 0 and below the particle density and 1000 kg/m^3",
-                    );
+                if !(p[8] <= 5000.0) {
+                    return bad(8, "particle density must be at most 5000 kg/m^3");
+                }
+                if !(p[9] > 0.0 && p[9] < p[8]) {
+                    return bad(9, "bulk density must be > 0 and below the particle density");
                 }
                 Ok(ProductModel::Relaxation(RelaxationModel {
                     law: RelaxationLaw {

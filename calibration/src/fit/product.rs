@@ -163,6 +163,22 @@ pub enum ProductFitError {
         /// The solver's error.
         error: FitError,
     },
+    /// Too few samples remain once those a model cannot use are left out.
+    TooManyExcluded {
+        /// Which model.
+        model: &'static str,
+        /// Samples left.
+        kept: usize,
+        /// Samples the model needs.
+        needed: usize,
+        /// The samples left out, with why.
+        excluded: Vec<Excluded>,
+    },
+    /// The spectra do not determine the product's relaxation law.
+    LawNotDetermined {
+        /// Why (the solver's words).
+        reason: &'static str,
+    },
     /// The fitted model does not pass the device's parameter validation.
     Params(ParamsError),
     /// A statistic could not be computed.
@@ -214,6 +230,30 @@ impl core::fmt::Display for ProductFitError {
                 write!(f, "sample {id:?}: the device estimate gives no moisture: {failure}")
             }
             E::LeastSquares { stage, error } => write!(f, "{stage}: {error}"),
+            E::TooManyExcluded {
+                model,
+                kept,
+                needed,
+                excluded,
+            } => {
+                write!(
+                    f,
+                    "the {model} model cannot use {} sample(s), leaving {kept} where it needs {needed}:",
+                    excluded.len()
+                )?;
+                for x in excluded.iter().take(8) {
+                    write!(f, " {:?} ({});", x.id, x.reason)?;
+                }
+                if excluded.len() > 8 {
+                    write!(f, " and {} more;", excluded.len() - 8)?;
+                }
+                f.write_str(" check those samples, or use another model")
+            }
+            E::LawNotDetermined { reason } => write!(
+                f,
+                "the two frequencies' spectra do not determine a relaxation law for this product ({reason}); \
+                 the relaxation model cannot be fitted: use another model"
+            ),
             E::Params(e) => write!(f, "fitted model rejected: {e}"),
             E::Stats(e) => write!(f, "statistics: {e}"),
         }
@@ -322,6 +362,15 @@ pub struct SampleResult {
     pub high_leverage: bool,
 }
 
+/// A sample a model left out, and why.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Excluded {
+    /// Sample id.
+    pub id: String,
+    /// Why, in words.
+    pub reason: String,
+}
+
 /// Statistics of a fitted calibration (% moisture).
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct FitStatistics {
@@ -373,6 +422,12 @@ pub struct ProductFit {
     pub freqs_hz: [f64; 2],
     /// Noise SD of eps' and eps'' the fit assumed.
     pub eps_sd: f64,
+    /// Samples this model left out (not in `samples`, not in the
+    /// statistics), with why.
+    pub excluded: Vec<Excluded>,
+    /// What else a person should know about this fit (e.g. samples whose
+    /// cross-validation prediction failed).
+    pub notes: Vec<String>,
 }
 
 /// A new reading evaluated against a fitted calibration
@@ -680,12 +735,15 @@ fn downdated(fitted: &Fitted, test: &[usize]) -> Option<Vec<f64>> {
 }
 
 /// Shared second half: device calibration, SEC, cross-validation, flags.
+#[allow(clippy::too_many_arguments)]
 fn finish<F>(
     samples: &[Sample],
     checked: &Checked,
     eps_sd: f64,
     folds: Folds,
     fitted: Fitted,
+    excluded: Vec<Excluded>,
+    mut notes: Vec<String>,
     mut refit: F,
 ) -> Result<ProductFit, ProductFitError>
 where
@@ -732,6 +790,7 @@ where
 
     let split = folds.split(n).map_err(ProductFitError::Stats)?;
     let mut cv = vec![f64::NAN; n];
+    let mut cv_failed: Vec<String> = Vec::new();
     for test in &split {
         let train: Vec<usize> = all.iter().copied().filter(|i| !test.contains(i)).collect();
         let loo = if folds == Folds::LeaveOneOut {
@@ -742,10 +801,50 @@ where
         let model = refit(&fitted, &train, loo)?;
         // Ranges are irrelevant to the moisture value; use the full set's.
         let (cal, _) = device_cal(&model, moisture, temperature, &fitted.inputs, sec_pct)?;
-        for (i, p) in test.iter().zip(predict_all(&cal, test)?) {
-            cv[*i] = p;
+        for i in test {
+            match device_predict(
+                &cal,
+                checked.freqs_hz,
+                &checked.eps[*i],
+                &samples[*i],
+                eps_sd,
+            ) {
+                Ok(p) => cv[*i] = p,
+                Err(e) => cv_failed.push(e.to_string()),
+            }
         }
     }
+    if !cv_failed.is_empty() {
+        notes.push(format!(
+            "{} cross-validation prediction(s) gave no moisture and are left out of the cross-validated statistics: {}",
+            cv_failed.len(),
+            cv_failed.join("; ")
+        ));
+    }
+    // A model whose cross-validation cannot predict a tenth of its samples
+    // is not validated.
+    if cv_failed.len() * 10 > n {
+        return Err(ProductFitError::TooManyExcluded {
+            model: model_name(fitted.model.kind()),
+            kept: n - cv_failed.len(),
+            needed: n - n / 10,
+            excluded: samples
+                .iter()
+                .zip(&cv)
+                .filter(|(_, p)| !p.is_finite())
+                .map(|(s, _)| Excluded {
+                    id: s.id.clone(),
+                    reason: "no moisture from the cross-validation fold without it".into(),
+                })
+                .collect(),
+        });
+    }
+    let (y_cv, p_cv): (Vec<f64>, Vec<f64>) = y
+        .iter()
+        .zip(&cv)
+        .filter(|(_, p)| p.is_finite())
+        .map(|(a, b)| (*a, *b))
+        .unzip();
 
     let design = design_from(&fitted.features, &all);
     let diag = diagnostics(&design, &fitted.lin, None, &OutlierRule::default())
@@ -769,7 +868,7 @@ where
         n_coef,
         sec_pct,
         calibration: PredictionStats::new(&y, &fitted_pct).map_err(ProductFitError::Stats)?,
-        cross_validation: PredictionStats::new(&y, &cv).map_err(ProductFitError::Stats)?,
+        cross_validation: PredictionStats::new(&y_cv, &p_cv).map_err(ProductFitError::Stats)?,
         folds,
     };
     Ok(ProductFit {
@@ -785,7 +884,16 @@ where
         max_leverage: diag.max_leverage,
         freqs_hz: checked.freqs_hz,
         eps_sd,
+        excluded,
+        notes,
     })
+}
+
+fn model_name(k: ModelKind) -> &'static str {
+    match k {
+        ModelKind::SingleFrequency => "single-frequency",
+        ModelKind::Relaxation => "relaxation",
+    }
 }
 
 impl ProductFit {
@@ -925,6 +1033,8 @@ pub fn fit_single(samples: &[Sample], opts: &SingleOptions) -> Result<ProductFit
         opts.eps_sd,
         opts.folds,
         fitted,
+        Vec::new(),
+        Vec::new(),
         |f, train, loo| {
             let coef = match loo {
                 Some(c) => c,
@@ -984,6 +1094,7 @@ fn golden<F: FnMut(f64) -> f64>(mut f: F, mut lo: f64, mut hi: f64, tol: f64) ->
 struct RelaxationCore {
     law: RelaxationLaw<f64>,
     law_std_err: [f64; 4],
+    law_converged: bool,
     mixture: ProductMixture<f64>,
     params: Vec<MaterialParams<f64>>,
 }
@@ -1097,21 +1208,15 @@ fn relaxation_core(
         theta0,
         opts.fit_fr_temperature,
     )
-    .map_err(|e| match e {
-        law::LawError::Singular => ProductFitError::LeastSquares {
-            stage: "relaxation law (stage 1)",
-            error: FitError::RankDeficient { rank: 0, params: 4 },
-        },
-        law::LawError::NotConverged => ProductFitError::LeastSquares {
-            stage: "relaxation law (stage 1)",
-            error: FitError::NotConverged {
-                iterations: 200,
-                rss: f64::NAN,
-            },
+    .map_err(|e| ProductFitError::LawNotDetermined {
+        reason: match e {
+            law::LawError::Singular => "no step of the joint least squares reduces its cost",
+            law::LawError::NotConverged => "the joint least squares found no finite solution",
         },
     })?;
     let law = law::law_of(&law_fit.theta, sigma_ref_s_m, t_ref_c);
     let law_std_err = law_fit.std_err;
+    let law_converged = law_fit.converged;
     // Each sample's parameters at the fitted law (the least-squares solution
     // the device's inversion also converges to; a sample the device cannot
     // invert is reported by the estimate pass, by id).
@@ -1128,6 +1233,7 @@ fn relaxation_core(
     let mut core = RelaxationCore {
         law,
         law_std_err,
+        law_converged,
         mixture: ProductMixture {
             exponent: 0.5,
             eps_dry: 3.0,
@@ -1153,13 +1259,23 @@ fn relaxation_core(
         }
         mx
     };
+    // Samples whose mixing-model moisture is not finite at a trial value
+    // (eps_hf outside what the mixture can reach) are left out of that
+    // trial and penalised by the variance of the lab values each, so the
+    // search prefers values that use every sample.
+    let y_mean = y.iter().sum::<f64>() / y.len() as f64;
+    let y_var = y.iter().map(|v| (v - y_mean).powi(2)).sum::<f64>() / y.len() as f64;
     let rss = |x: f64| -> f64 {
         let feats = relax_features(&core, mix_at(x), opts.degree, &sub_samples);
-        if feats.iter().flatten().any(|v| !v.is_finite()) {
-            return f64::INFINITY;
-        }
-        match fit_linear(&design_from(&feats, &local), &y, None) {
-            Ok(l) => l.rss,
+        let ok: Vec<usize> = local
+            .iter()
+            .copied()
+            .filter(|i| feats[*i].iter().all(|v| v.is_finite()))
+            .collect();
+        let dropped = (local.len() - ok.len()) as f64;
+        let yk: Vec<f64> = ok.iter().map(|i| y[*i]).collect();
+        match fit_linear(&design_from(&feats, &ok), &yk, None) {
+            Ok(l) => l.rss + dropped * y_var,
             Err(_) => f64::INFINITY,
         }
     };
@@ -1172,6 +1288,9 @@ fn relaxation_core(
     Ok(core)
 }
 
+/// Highest particle density accepted, kg/m^3.
+pub const MAX_DENSITY_KG_M3: f64 = 5000.0;
+
 fn check_relaxation_options(opts: &RelaxationOptions) -> Result<(), ProductFitError> {
     check_degree(opts.degree)?;
     check_sd(opts.eps_sd)?;
@@ -1182,13 +1301,16 @@ fn check_relaxation_options(opts: &RelaxationOptions) -> Result<(), ProductFitEr
             "must be a positive density, kg/m^3",
         );
     }
-    if !(opts.bulk_density_kg_m3 > 0.0
-        && opts.bulk_density_kg_m3 < opts.particle_density_kg_m3
-        && opts.bulk_density_kg_m3 < 1000.0)
-    {
+    if !(opts.particle_density_kg_m3 <= MAX_DENSITY_KG_M3) {
+        return bad(
+            "particle_density_kg_m3",
+            "must be at most 5000 kg/m^3 (the densest mineral products)",
+        );
+    }
+    if !(opts.bulk_density_kg_m3 > 0.0 && opts.bulk_density_kg_m3 < opts.particle_density_kg_m3) {
         return bad(
             "bulk_density_kg_m3",
-            "must be positive and below the particle density and 1000 kg/m^3",
+            "must be positive and below the particle density",
         );
     }
     match opts.mixing {
@@ -1205,27 +1327,144 @@ fn check_relaxation_options(opts: &RelaxationOptions) -> Result<(), ProductFitEr
 /// Fits the relaxation model (see the module docs).
 ///
 /// Needs at least `degree + 3 + 3` samples (polynomial, temperature and
-/// conductivity terms, plus three).
+/// conductivity terms, plus three) that the model can use. A sample the
+/// model cannot use (its parameters at the fitted law outside the
+/// inversion's bounds, no mixing-model moisture, or no moisture from the
+/// device's own estimate) is left out, named with the reason in
+/// [`ProductFit::excluded`], and the fit repeated without it (at most four
+/// rounds, at most a fifth of the samples).
 ///
 /// # Errors
 /// [`ProductFitError`]: refused samples (named by id and field), bad
-/// options, a failed fitting stage, or a sample the device estimate cannot
-/// evaluate (its inversion failing at the fitted law included).
+/// options, a relaxation law the spectra do not determine, or too few
+/// usable samples ([`ProductFitError::TooManyExcluded`], naming them).
 pub fn fit_relaxation(
     samples: &[Sample],
     opts: &RelaxationOptions,
 ) -> Result<ProductFit, ProductFitError> {
     check_relaxation_options(opts)?;
     let cols = columns(opts.degree, &RELAX_EXTRA);
-    let checked = check_samples(samples, cols.len() + 3)?;
-    let all: Vec<usize> = (0..samples.len()).collect();
-    let core = relaxation_core(samples, &checked, &all, opts)?;
-    let features = relax_features(&core, core.mixture, opts.degree, samples);
-    let y: Vec<f64> = samples.iter().map(|s| s.moisture_pct).collect();
-    let lin = lin_fit(&features, &y, &all, "relaxation regression (stage 2)")?;
-    let model = relax_model(&core, opts.degree, &lin.coef);
-    let ProductModel::Relaxation(rm) = &model else {
-        unreachable!("relax_model builds a relaxation model")
+    let needed = cols.len() + 3;
+    let checked = check_samples(samples, needed)?;
+    let bounds = crate::invert::Bounds::<f64>::default();
+    let mut keep: Vec<usize> = (0..samples.len()).collect();
+    let mut excluded: Vec<Excluded> = Vec::new();
+    // A model that cannot use a fifth of the samples does not describe the
+    // product: refuse rather than fit the rest.
+    let max_excluded = samples.len() / 5;
+    for _round in 0..4 {
+        if keep.len() < needed || excluded.len() > max_excluded {
+            break;
+        }
+        let sub: Vec<Sample> = keep.iter().map(|i| samples[*i].clone()).collect();
+        let sub_checked = Checked {
+            freqs_hz: checked.freqs_hz,
+            eps: keep.iter().map(|i| checked.eps[*i]).collect(),
+        };
+        let local: Vec<usize> = (0..sub.len()).collect();
+        let core = relaxation_core(&sub, &sub_checked, &local, opts)?;
+        // 1. Each sample's parameters at the law must lie where the device's
+        //    inversion can find them.
+        let mut bad: Vec<(usize, String)> = Vec::new();
+        for (k, p) in core.params.iter().enumerate() {
+            let ok = p.eps_hf.is_finite()
+                && p.eps_hf > bounds.eps_hf.0
+                && p.eps_hf < bounds.eps_hf.1
+                && p.d_eps.is_finite()
+                && p.d_eps < bounds.d_eps.1
+                && p.sigma_s_m.is_finite()
+                && p.sigma_s_m > bounds.sigma_s_m.0
+                && p.sigma_s_m < bounds.sigma_s_m.1;
+            if !ok {
+                bad.push((
+                    k,
+                    format!(
+                        "at the fitted relaxation law its parameters (eps_hf {:.3}, d_eps {:.3}, sigma {:.3e} S/m) lie outside the inversion's bounds",
+                        p.eps_hf, p.d_eps, p.sigma_s_m
+                    ),
+                ));
+            }
+        }
+        // 2. Its features (mixing-model moisture) must be finite.
+        let features = relax_features(&core, core.mixture, opts.degree, &sub);
+        for (k, f) in features.iter().enumerate() {
+            if !f.iter().all(|v| v.is_finite()) && !bad.iter().any(|b| b.0 == k) {
+                bad.push((
+                    k,
+                    format!(
+                        "the mixing model gives no moisture for its eps_hf {:.3}",
+                        core.params[k].eps_hf
+                    ),
+                ));
+            }
+        }
+        if bad.is_empty() {
+            let y: Vec<f64> = sub.iter().map(|s| s.moisture_pct).collect();
+            let lin = lin_fit(&features, &y, &local, "relaxation regression (stage 2)")?;
+            let model = relax_model(&core, opts.degree, &lin.coef);
+            // 3. The device's own estimate must give each a moisture.
+            let probe = device_cal(
+                &model,
+                range_of(y.iter().copied()),
+                range_of(sub.iter().map(|s| s.temperature_c)),
+                &relax_inputs(&core, &model, &sub),
+                lin.residual_sd.max(1e-6),
+            )?
+            .0;
+            for k in 0..sub.len() {
+                if let Err(e) = device_predict(
+                    &probe,
+                    checked.freqs_hz,
+                    &sub_checked.eps[k],
+                    &sub[k],
+                    opts.eps_sd,
+                ) {
+                    let reason = match e {
+                        ProductFitError::Estimate { failure, .. } => {
+                            format!("the device's estimate gives no moisture: {failure}")
+                        }
+                        other => other.to_string(),
+                    };
+                    bad.push((k, reason));
+                }
+            }
+            if bad.is_empty() {
+                return finish_relaxation(
+                    &sub,
+                    &sub_checked,
+                    opts,
+                    core,
+                    features,
+                    lin,
+                    model,
+                    excluded,
+                );
+            }
+        }
+        let drop: Vec<usize> = bad.iter().map(|b| keep[b.0]).collect();
+        for (k, reason) in bad {
+            excluded.push(Excluded {
+                id: sub[k].id.clone(),
+                reason,
+            });
+        }
+        keep.retain(|i| !drop.contains(i));
+    }
+    Err(ProductFitError::TooManyExcluded {
+        model: "relaxation",
+        kept: keep.len(),
+        needed: needed.max(samples.len() - max_excluded),
+        excluded,
+    })
+}
+
+fn relax_inputs(
+    core: &RelaxationCore,
+    model: &ProductModel<f64>,
+    samples: &[Sample],
+) -> Vec<Range<f32>> {
+    let ProductModel::Relaxation(rm) = model else {
+        return Vec::new();
     };
     let mix: Vec<f64> = core
         .params
@@ -1233,58 +1472,109 @@ pub fn fit_relaxation(
         .zip(samples)
         .map(|(p, s)| rm.mixing_moisture_pct(p.eps_hf, s.temperature_c))
         .collect();
-    let inputs = vec![
+    vec![
         range_of(core.params.iter().map(|p| p.eps_hf)),
         range_of(core.params.iter().map(|p| p.d_eps)),
         range_of(core.params.iter().map(|p| p.sigma_s_m)),
         range_of(mix.iter().copied()),
-    ];
+    ]
+}
+
+/// The relaxation fit on the samples it can use: statistics and
+/// cross-validation through [`finish`].
+#[allow(clippy::too_many_arguments)]
+fn finish_relaxation(
+    samples: &[Sample],
+    checked: &Checked,
+    opts: &RelaxationOptions,
+    core: RelaxationCore,
+    features: Vec<Vec<f64>>,
+    lin: LinearFit,
+    model: ProductModel<f64>,
+    excluded: Vec<Excluded>,
+) -> Result<ProductFit, ProductFitError> {
+    let y: Vec<f64> = samples.iter().map(|s| s.moisture_pct).collect();
+    let inputs = relax_inputs(&core, &model, samples);
+    let mut notes = Vec::new();
+    if !core.law_converged {
+        notes.push(
+            "the relaxation law used its whole iteration budget; the best law found is used (the spectra determine it poorly)"
+                .to_string(),
+        );
+    }
     let fitted = Fitted {
         model,
         features,
         lin,
         inputs,
         law_std_err: Some(core.law_std_err),
-        columns: cols,
+        columns: columns(opts.degree, &RELAX_EXTRA),
     };
-    finish(
+    let fallback = std::cell::Cell::new(0usize);
+    let mut fit = finish(
         samples,
-        &checked,
+        checked,
         opts.eps_sd,
         opts.folds,
         fitted,
+        excluded,
+        notes,
         |f, train, loo| {
             if opts.refit_nonlinear_in_cv {
-                let c = relaxation_core(samples, &checked, train, opts)?;
-                // c.params follow `train`: features and lab values of those rows.
-                let ts: Vec<Sample> = train.iter().map(|i| samples[*i].clone()).collect();
-                let yt: Vec<f64> = ts.iter().map(|s| s.moisture_pct).collect();
-                let feats = relax_features(&c, c.mixture, opts.degree, &ts);
-                let rows: Vec<usize> = (0..ts.len()).collect();
-                let lin = lin_fit(
-                    &feats,
-                    &yt,
-                    &rows,
-                    "relaxation regression (cross-validation)",
-                )?;
-                Ok(relax_model(&c, opts.degree, &lin.coef))
-            } else {
-                let coef = match loo {
-                    Some(c) => c,
-                    None => {
-                        lin_fit(
-                            &f.features,
-                            &y,
-                            train,
-                            "relaxation regression (cross-validation)",
-                        )?
-                        .coef
-                    }
-                };
-                Ok(relax_model(&core, opts.degree, &coef))
+                if let Some(m) = refit_relaxation_fold(samples, checked, train, opts) {
+                    return Ok(m);
+                }
+                // The fold's own law or regression failed: refit only the
+                // regression on the full fit's law (counted in a note).
+                fallback.set(fallback.get() + 1);
             }
+            let coef = match loo {
+                Some(c) => c,
+                None => {
+                    lin_fit(
+                        &f.features,
+                        &y,
+                        train,
+                        "relaxation regression (cross-validation)",
+                    )?
+                    .coef
+                }
+            };
+            Ok(relax_model(&core, opts.degree, &coef))
         },
+    )?;
+    if fallback.get() > 0 {
+        fit.notes.push(format!(
+            "in {} cross-validation fold(s) the relaxation law could not be refitted; only the regression was refitted there",
+            fallback.get()
+        ));
+    }
+    Ok(fit)
+}
+
+/// The whole two-stage fit on one fold's training rows; `None` when it fails.
+fn refit_relaxation_fold(
+    samples: &[Sample],
+    checked: &Checked,
+    train: &[usize],
+    opts: &RelaxationOptions,
+) -> Option<ProductModel<f64>> {
+    let c = relaxation_core(samples, checked, train, opts).ok()?;
+    // c.params follow `train`: features and lab values of those rows.
+    let ts: Vec<Sample> = train.iter().map(|i| samples[*i].clone()).collect();
+    let feats = relax_features(&c, c.mixture, opts.degree, &ts);
+    let rows: Vec<usize> = (0..ts.len())
+        .filter(|k| feats[*k].iter().all(|v| v.is_finite()))
+        .collect();
+    let yt: Vec<f64> = ts.iter().map(|s| s.moisture_pct).collect();
+    let lin = lin_fit(
+        &feats,
+        &yt,
+        &rows,
+        "relaxation regression (cross-validation)",
     )
+    .ok()?;
+    Some(relax_model(&c, opts.degree, &lin.coef))
 }
 
 /// Fits both models on the same samples with the same cross-validation
