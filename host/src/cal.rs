@@ -14,8 +14,9 @@ use anyhow::{bail, Context as _};
 use clap::{Args, ValueEnum};
 use fringe_calibration::estimate::{estimate, Channel, EstimateInput};
 use fringe_calibration::fit::product::{
-    compare, fit_relaxation, fit_single, ChannelReading, MixingFit, ProductFit, RelaxationOptions,
-    Sample, SingleOptions,
+    compare_models, fit_multivariate, fit_relaxation, fit_single, ChannelReading, CompareOptions,
+    MixingFit, MultivariateOptions, MvMethod, ProductFit, RelaxationOptions, Sample, SingleOptions,
+    MV_MIN_SAMPLES,
 };
 use fringe_calibration::stats::{Folds, PredictionStats};
 use fringe_protocol::{short_string, Basis, Flags, ModelKind, ProductCal, Range};
@@ -33,7 +34,11 @@ pub enum FitModel {
     Single,
     /// Two-frequency relaxation inversion, mixing model, temperature and conductivity terms.
     Relaxation,
-    /// Both, side by side; `--out` gets the one with the smaller cross-validated SEP.
+    /// Ridge regression on physically chosen features of both frequencies (penalty by cross-validation).
+    Multivariate,
+    /// PLS regression on the same features (components by cross-validation).
+    Pls,
+    /// Every model under the same cross-validation; `--out` gets the one chosen by SEP with the parsimony rule.
     Compare,
 }
 
@@ -122,11 +127,22 @@ fn to_fit_samples(set: &SampleSet) -> Vec<Sample> {
 /// Coefficients each model fits (for the "+3" rule, stated before fitting).
 fn n_coef(model: FitModel, degree: usize) -> usize {
     match model {
-        // c0..c_degree + temperature term
-        FitModel::Single => degree + 2,
+        // c0..c_degree + temperature term (also the least any model of a
+        // comparison needs; each refuses on its own below its minimum)
+        FitModel::Single | FitModel::Compare => degree + 2,
         // p0..p_degree + temperature + conductivity terms
-        FitModel::Relaxation | FitModel::Compare => degree + 3,
+        FitModel::Relaxation => degree + 3,
+        FitModel::Multivariate | FitModel::Pls => MV_MIN_SAMPLES - 3,
     }
+}
+
+/// One model of a comparison, for printing.
+#[derive(Debug, Clone)]
+pub struct Compared {
+    /// Model name in words.
+    pub model: &'static str,
+    /// Its fit, or why it has none.
+    pub fit: Result<ProductFit, String>,
 }
 
 /// Result of a fit, for printing and files.
@@ -134,9 +150,11 @@ fn n_coef(model: FitModel, degree: usize) -> usize {
 pub struct FitOutcome {
     /// The fit written to the file.
     pub chosen: ProductFit,
-    /// The other fit (compare only).
-    pub other: Option<ProductFit>,
-    /// Cross-validated SEP single / relaxation (compare only).
+    /// Every model of a comparison, chosen included (compare only).
+    pub compared: Vec<Compared>,
+    /// The parsimony rule's figures (compare only): best SEP, threshold.
+    pub rule: Option<(f64, f64)>,
+    /// Cross-validated SEP single-frequency / chosen (compare only).
     pub sep_ratio: Option<f64>,
     /// The file written.
     pub file: ProductFile,
@@ -160,7 +178,8 @@ fn statistics_of(f: &ProductFit) -> Statistics {
                 Folds::KFold(k) => format!("{k}-fold venetian blinds"),
             };
             match f.model.kind() {
-                fringe_calibration::product::ModelKind::Relaxation => {
+                fringe_calibration::product::ModelKind::Relaxation
+                | fringe_calibration::product::ModelKind::Multivariate => {
                     format!("{split}, whole fit repeated per fold")
                 }
                 fringe_calibration::product::ModelKind::SingleFrequency => split,
@@ -173,6 +192,7 @@ fn model_words(k: fringe_calibration::product::ModelKind) -> &'static str {
     match k {
         fringe_calibration::product::ModelKind::SingleFrequency => "single-frequency",
         fringe_calibration::product::ModelKind::Relaxation => "relaxation",
+        fringe_calibration::product::ModelKind::Multivariate => "multivariate",
     }
 }
 
@@ -187,6 +207,7 @@ pub fn wire_of(
     let model = match c.model.kind() {
         fringe_calibration::product::ModelKind::SingleFrequency => ModelKind::SingleFrequency,
         fringe_calibration::product::ModelKind::Relaxation => ModelKind::Relaxation,
+        fringe_calibration::product::ModelKind::Multivariate => ModelKind::Multivariate,
     };
     let inputs: Vec<Range> = c
         .input_ranges()
@@ -228,7 +249,9 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
     let words = match args.model {
         FitModel::Single => "single-frequency",
         FitModel::Relaxation => "relaxation",
-        FitModel::Compare => "relaxation (and single-frequency)",
+        FitModel::Multivariate => "multivariate (ridge)",
+        FitModel::Pls => "multivariate (PLS)",
+        FitModel::Compare => "every",
     };
     set.require(n_coef(args.model, degree), words)?;
     let samples = to_fit_samples(&set);
@@ -260,20 +283,71 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
         })
     };
     let ctx = || format!("{}: fitting the {words} model", args.samples.display());
-    let (chosen, other, sep_ratio) = match args.model {
-        FitModel::Single => (fit_single(&samples, &single).with_context(ctx)?, None, None),
+    let mv = |method| MultivariateOptions {
+        method,
+        eps_sd: args.eps_sd,
+        folds,
+        density_independent: false,
+    };
+    let (chosen, compared, rule, sep_ratio) = match args.model {
+        FitModel::Single => (
+            fit_single(&samples, &single).with_context(ctx)?,
+            Vec::new(),
+            None,
+            None,
+        ),
         FitModel::Relaxation => (
             fit_relaxation(&samples, &relax()?).with_context(ctx)?,
+            Vec::new(),
+            None,
+            None,
+        ),
+        FitModel::Multivariate | FitModel::Pls => (
+            fit_multivariate(
+                &samples,
+                &mv(if args.model == FitModel::Pls {
+                    MvMethod::Pls
+                } else {
+                    MvMethod::Ridge
+                }),
+            )
+            .with_context(ctx)?,
+            Vec::new(),
             None,
             None,
         ),
         FitModel::Compare => {
-            let c = compare(&samples, &single, &relax()?).with_context(ctx)?;
-            if c.better == fringe_calibration::product::ModelKind::Relaxation {
-                (c.relaxation, Some(c.single), Some(c.sep_ratio))
-            } else {
-                (c.single, Some(c.relaxation), Some(c.sep_ratio))
-            }
+            // The relaxation model joins when the densities are given.
+            let relaxation = match (args.bulk_density_kg_m3, args.particle_density_kg_m3) {
+                (Some(_), Some(_)) => Some(relax()?),
+                _ => None,
+            };
+            let c = compare_models(
+                &samples,
+                &CompareOptions {
+                    single,
+                    relaxation,
+                    eps_sd: args.eps_sd,
+                    folds,
+                },
+            )
+            .with_context(ctx)?;
+            let chosen = c.chosen_fit().clone();
+            let single_sep = c.results.iter().find_map(|(k, r)| {
+                (*k == fringe_calibration::fit::product::Candidate::SingleFrequency)
+                    .then(|| r.as_ref().ok().map(|f| f.stats.cross_validation.sep))
+                    .flatten()
+            });
+            let compared = c
+                .results
+                .iter()
+                .map(|(k, r)| Compared {
+                    model: k.name(),
+                    fit: r.clone().map_err(|e| e.to_string()),
+                })
+                .collect();
+            let ratio = single_sep.map(|s| s / chosen.stats.cross_validation.sep);
+            (chosen, compared, Some((c.best_sep, c.threshold)), ratio)
         }
     };
     let name = args
@@ -321,7 +395,8 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
     );
     Ok(FitOutcome {
         chosen,
-        other,
+        compared,
+        rule,
         sep_ratio,
         file,
         wire,
@@ -337,6 +412,9 @@ fn stats_json(f: &ProductFit) -> serde_json::Value {
         "cross_validation": s.cross_validation,
         "outliers": f.samples.iter().filter(|x| x.outlier).map(|x| x.id.clone()).collect::<Vec<_>>(),
         "high_leverage": f.samples.iter().filter(|x| x.high_leverage).map(|x| x.id.clone()).collect::<Vec<_>>(),
+        "excluded": f.excluded.iter().map(|x| json!({"id": x.id, "reason": x.reason})).collect::<Vec<_>>(),
+        "notes": f.notes,
+        "detail": f.detail,
     })
 }
 
@@ -351,11 +429,22 @@ pub fn outcome_json(o: &FitOutcome, out: &Path) -> serde_json::Value {
         "temperature_c": [c.temperature_c.min, c.temperature_c.max],
         "inputs": o.file.inputs.iter().map(|r| json!({"name": r.name, "min": r.min, "max": r.max})).collect::<Vec<_>>(),
     });
-    if let (Some(other), Some(ratio)) = (&o.other, o.sep_ratio) {
+    if !o.compared.is_empty() {
         v["comparison"] = json!({
-            "sep_ratio_single_over_relaxation": ratio,
-            "chosen": stats_json(&o.chosen),
-            "other": stats_json(other),
+            "models": o.compared.iter().map(|c| match &c.fit {
+                Ok(f) => {
+                    let mut j = stats_json(f);
+                    j["model"] = json!(c.model);
+                    j["excluded"] = json!(f.excluded.iter().map(|x| json!({"id": x.id, "reason": x.reason})).collect::<Vec<_>>());
+                    j["notes"] = json!(f.notes);
+                    j["detail"] = json!(f.detail);
+                    j
+                }
+                Err(e) => json!({"model": c.model, "refused": e}),
+            }).collect::<Vec<_>>(),
+            "best_sep": o.rule.map(|r| r.0),
+            "parsimony_threshold": o.rule.map(|r| r.1),
+            "sep_ratio_single_over_chosen": o.sep_ratio,
         });
     }
     v
@@ -400,6 +489,15 @@ fn print_fit(f: &ProductFit, w: &mut dyn std::io::Write) -> std::io::Result<()> 
     if !lev.is_empty() {
         writeln!(w, "  high leverage: {}", lev.join(", "))?;
     }
+    if !f.detail.is_empty() {
+        writeln!(w, "  {}", f.detail)?;
+    }
+    for x in &f.excluded {
+        writeln!(w, "  left out {}: {}", x.id, x.reason)?;
+    }
+    for n in &f.notes {
+        writeln!(w, "  note: {n}")?;
+    }
     Ok(())
 }
 
@@ -423,35 +521,38 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
         writeln!(w, "{}", outcome_json(&o, &args.out))?;
         return Ok(());
     }
-    if let (Some(other), Some(ratio)) = (&o.other, o.sep_ratio) {
-        let (s, r) = if o.chosen.calibration.model.kind()
-            == fringe_calibration::product::ModelKind::Relaxation
-        {
-            (other, &o.chosen)
-        } else {
-            (&o.chosen, other)
-        };
+    if let Some((best, threshold)) = o.rule {
         writeln!(w, "model comparison (same samples, same cross-validation):")?;
         writeln!(
             w,
-            "  {:<18} {:>8} {:>8} {:>8} {:>7}",
+            "  {:<22} {:>8} {:>8} {:>8} {:>7}",
             "model", "SEC %", "SEP %", "bias %", "RPD"
         )?;
-        for f in [s, r] {
-            let st = statistics_of(f);
-            writeln!(
-                w,
-                "  {:<18} {:>8.3} {:>8.3} {:>+8.3} {:>7.2}",
-                model_words(f.calibration.model.kind()),
-                st.sec,
-                st.sep,
-                st.bias,
-                st.rpd
-            )?;
+        for c in &o.compared {
+            match &c.fit {
+                Ok(f) => {
+                    let st = statistics_of(f);
+                    write!(
+                        w,
+                        "  {:<22} {:>8.3} {:>8.3} {:>+8.3} {:>7.2}",
+                        c.model, st.sec, st.sep, st.bias, st.rpd
+                    )?;
+                    if f.excluded.is_empty() {
+                        writeln!(w)?;
+                    } else {
+                        writeln!(
+                            w,
+                            "  (left out {} sample(s): not eligible)",
+                            f.excluded.len()
+                        )?;
+                    }
+                }
+                Err(e) => writeln!(w, "  {:<22} refused: {e}", c.model)?,
+            }
         }
         writeln!(
             w,
-            "  SEP single / SEP relaxation = {ratio:.2}; writing the {} model",
+            "  smallest SEP {best:.3} %; a physical model within one standard error ({threshold:.3} %) is preferred; writing the {} model",
             model_words(o.chosen.calibration.model.kind())
         )?;
         writeln!(w)?;
@@ -737,7 +838,7 @@ mod tests {
         let csv = synth_csv(dir.path(), "lab.csv", 40, seed);
         let o = fit(&args(csv, dir.path().join("p.toml"), FitModel::Compare)).expect("fit");
         let ratio = o.sep_ratio.expect("compare gives a ratio");
-        eprintln!("seed {seed}: SEP single / SEP relaxation = {ratio:.2}");
+        eprintln!("seed {seed}: SEP single / SEP chosen = {ratio:.2}");
         assert!(ratio > 3.0, "seed {seed}: ratio {ratio}");
         assert_eq!(o.wire.model, ModelKind::Relaxation);
         let j = outcome_json(&o, Path::new("p.toml"));

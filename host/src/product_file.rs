@@ -11,7 +11,7 @@
 //! ```toml
 //! format = "fringe-product/1"
 //! name = "HM wheat L2"          # at most 16 bytes, as the plant calls it
-//! model = "relaxation"          # or "single_frequency"
+//! model = "relaxation"          # or "single_frequency", "multivariate"
 //! basis = "wet"                 # or "dry"
 //! id = "1a2b3c4d"               # content id (first 4 bytes of SHA-256 of the wire form)
 //! made_unix_s = 1796000000
@@ -109,7 +109,7 @@ pub struct ProductFile {
     pub format: String,
     /// Product name (at most 16 bytes).
     pub name: String,
-    /// `single_frequency` or `relaxation`.
+    /// `single_frequency`, `relaxation` or `multivariate`.
     pub model: String,
     /// `wet` or `dry`.
     pub basis: String,
@@ -195,6 +195,7 @@ fn model_name(m: ModelKind) -> &'static str {
     match m {
         ModelKind::SingleFrequency => "single_frequency",
         ModelKind::Relaxation => "relaxation",
+        ModelKind::Multivariate => "multivariate",
     }
 }
 
@@ -263,10 +264,11 @@ impl ProductFile {
         let model = match self.model.as_str() {
             "single_frequency" => ModelKind::SingleFrequency,
             "relaxation" => ModelKind::Relaxation,
+            "multivariate" => ModelKind::Multivariate,
             m => {
                 return Err(bad(
                     "model",
-                    format!("`{m}` is not single_frequency or relaxation"),
+                    format!("`{m}` is not single_frequency, relaxation or multivariate"),
                 ))
             }
         };

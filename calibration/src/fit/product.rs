@@ -43,8 +43,8 @@ use crate::invert::{invert, InvertOptions, MaterialParams, Observation, Relaxati
 use crate::mixing::ProductMixture;
 use crate::moisture::Basis;
 use crate::product::{
-    ModelKind, ParamsError, ProductCalibration, ProductModel, Range, RelaxationModel,
-    SingleFrequencyModel,
+    ModelKind, MultivariateModel, ParamsError, ProductCalibration, ProductModel, Range,
+    RelaxationModel, SingleFrequencyModel, MV_FEATURES,
 };
 use crate::stats::{diagnostics, Folds, OutlierRule, PredictionStats, StatsError};
 use crate::Cx;
@@ -179,6 +179,11 @@ pub enum ProductFitError {
         /// Why (the solver's words).
         reason: &'static str,
     },
+    /// No model of a comparison could be fitted; each one's reason.
+    NoModel {
+        /// (model, why) for every candidate.
+        reasons: Vec<(&'static str, String)>,
+    },
     /// The fitted model does not pass the device's parameter validation.
     Params(ParamsError),
     /// A statistic could not be computed.
@@ -254,6 +259,13 @@ impl core::fmt::Display for ProductFitError {
                 "the two frequencies' spectra do not determine a relaxation law for this product ({reason}); \
                  the relaxation model cannot be fitted: use another model"
             ),
+            E::NoModel { reasons } => {
+                f.write_str("no model could be fitted:")?;
+                for (m, why) in reasons {
+                    write!(f, " {m}: {why};")?;
+                }
+                Ok(())
+            }
             E::Params(e) => write!(f, "fitted model rejected: {e}"),
             E::Stats(e) => write!(f, "statistics: {e}"),
         }
@@ -428,6 +440,15 @@ pub struct ProductFit {
     /// What else a person should know about this fit (e.g. samples whose
     /// cross-validation prediction failed).
     pub notes: Vec<String>,
+    /// How the model was chosen within its kind, in words (e.g. the ridge
+    /// penalty and feature set); empty when there was nothing to choose.
+    pub detail: String,
+    /// Residual standard deviation `s` of the prediction intervals, %: the
+    /// regression's, except for PLS, where it is the larger of that and the
+    /// cross-validated RMSEP (PLS chooses its directions with the lab
+    /// values, so k components use more than k degrees of freedom; Kramer
+    /// and Sugiyama, J. Am. Stat. Assoc. 106:697-705, 2011, from memory).
+    pub interval_sd: f64,
 }
 
 /// A new reading evaluated against a fitted calibration
@@ -439,7 +460,7 @@ pub struct ReadingPrediction {
     /// Prediction interval for the lab value of this reading,
     /// `moisture +/- t(1 - a/2, n - k) s sqrt(1 + h0)` (Draper and Smith,
     /// Applied Regression Analysis, 3rd ed., 1998, section 3.2), %; `None`
-    /// without a moisture.
+    /// without a moisture; `s` is [`ProductFit::interval_sd`].
     pub interval_pct: Option<(f64, f64)>,
     /// Leverage `h0` of the reading in the regression (NaN when its
     /// features cannot be formed, e.g. a failed inversion).
@@ -702,6 +723,8 @@ struct Fitted {
     inputs: Vec<Range<f32>>,
     law_std_err: Option<[f64; 4]>,
     columns: Vec<usize>,
+    /// Parameters fitted (effective ones for a penalised fit; constant included).
+    n_coef: usize,
 }
 
 /// Leave-one-out coefficients without refitting: for least squares,
@@ -778,7 +801,7 @@ where
         fitted.lin.residual_sd,
     )?;
     let fitted_pct = predict_all(&cal0, &all)?;
-    let n_coef = fitted.lin.coef.len();
+    let n_coef = fitted.n_coef;
     let sec_pct = crate::stats::sec(&y, &fitted_pct, n_coef).map_err(ProductFitError::Stats)?;
     let (calibration, params) = device_cal(
         &fitted.model,
@@ -871,6 +894,7 @@ where
         cross_validation: PredictionStats::new(&y_cv, &p_cv).map_err(ProductFitError::Stats)?,
         folds,
     };
+    let interval_sd = fitted.lin.residual_sd;
     Ok(ProductFit {
         calibration,
         params,
@@ -886,6 +910,8 @@ where
         eps_sd,
         excluded,
         notes,
+        detail: String::new(),
+        interval_sd,
     })
 }
 
@@ -893,6 +919,7 @@ fn model_name(k: ModelKind) -> &'static str {
     match k {
         ModelKind::SingleFrequency => "single-frequency",
         ModelKind::Relaxation => "relaxation",
+        ModelKind::Multivariate => "multivariate",
     }
 }
 
@@ -949,13 +976,18 @@ impl ProductFit {
                     .ok()
                     .map(|inv| m.features(&inv.params, temperature_c).to_vec())
             }
+            ProductModel::Multivariate(m) => {
+                let (x, _) = m.features([eps[0].0, eps[0].1, eps[1].0, eps[1].1], temperature_c);
+                Some(core::iter::once(1.0).chain(x).collect())
+            }
         };
         let leverage = features.map_or(f64::NAN, |f| {
             let row: Vec<f64> = self.feature_columns.iter().map(|j| f[*j]).collect();
             self.regression.leverage(&row)
         });
+        let s = self.interval_sd;
         let interval_pct = estimate.moisture_pct.map(|m| {
-            let half = t * self.regression.residual_sd * (1.0 + leverage).sqrt();
+            let half = t * s * (1.0 + leverage).sqrt();
             (f64::from(m) - half, f64::from(m) + half)
         });
         Ok(ReadingPrediction {
@@ -1025,6 +1057,7 @@ pub fn fit_single(samples: &[Sample], opts: &SingleOptions) -> Result<ProductFit
         lin,
         inputs,
         law_std_err: None,
+        n_coef: cols.len(),
         columns: cols,
     };
     finish(
@@ -1508,6 +1541,7 @@ fn finish_relaxation(
         lin,
         inputs,
         law_std_err: Some(core.law_std_err),
+        n_coef: columns(opts.degree, &RELAX_EXTRA).len(),
         columns: columns(opts.degree, &RELAX_EXTRA),
     };
     let fallback = std::cell::Cell::new(0usize);
@@ -1575,6 +1609,554 @@ fn refit_relaxation_fold(
     )
     .ok()?;
     Some(relax_model(&c, opts.degree, &lin.coef))
+}
+
+// ---------------------------------------------------------------------------
+// Multivariate model
+
+/// How the multivariate model's coefficients are fitted.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum MvMethod {
+    /// Ridge regression on standardised features; penalty and feature set
+    /// chosen by leave-one-out on the calibration samples.
+    Ridge,
+    /// PLS1 on standardised features; number of components and feature set
+    /// chosen by 5-fold venetian-blinds cross-validation.
+    Pls,
+}
+
+/// Options of [`fit_multivariate`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct MultivariateOptions {
+    /// Ridge or PLS (default ridge).
+    pub method: MvMethod,
+    /// Noise standard deviation of eps' and eps'' (the device's
+    /// uncertainty), default 0.02.
+    pub eps_sd: f64,
+    /// Cross-validation split of the statistics (default leave-one-out).
+    /// The whole fit, with its choice of penalty or components, is repeated
+    /// in every fold.
+    pub folds: Folds,
+    /// Use Trabelsi, Kraszewski and Nelson's density-independent psi at the
+    /// higher frequency as a feature (default false: at these frequencies
+    /// eps'' is mostly ionic conduction, and on the zoo psi made
+    /// predictions at twice the calibrated conductivity worse; see
+    /// BENCHMARKS.md).
+    pub density_independent: bool,
+}
+
+impl Default for MultivariateOptions {
+    fn default() -> Self {
+        MultivariateOptions {
+            method: MvMethod::Ridge,
+            eps_sd: 0.02,
+            folds: Folds::LeaveOneOut,
+            density_independent: false,
+        }
+    }
+}
+
+/// Fewest samples the multivariate fit takes (its 23 features, the
+/// constant, and two for the residual diagnostics).
+pub const MV_MIN_SAMPLES: usize = MV_FEATURES + 3;
+
+/// The linear, physical features (0-6: logs, temperature, water indices).
+const MV_LINEAR: [usize; 7] = [0, 1, 2, 3, 4, 5, 6];
+/// Trabelsi-Kraszewski-Nelson's psi (feature 7).
+const MV_TKN: usize = 7;
+
+/// Feature sets the fit chooses between: the linear physical features, or
+/// those with the squares and products (8-22); psi added to both when
+/// [`MultivariateOptions::density_independent`] is set.
+fn mv_sets(tkn: bool) -> [Vec<usize>; 2] {
+    let lin: Vec<usize> = MV_LINEAR
+        .iter()
+        .copied()
+        .chain(tkn.then_some(MV_TKN))
+        .collect();
+    let full = lin.iter().copied().chain(8..MV_FEATURES).collect();
+    [lin, full]
+}
+
+struct MvCore {
+    model: MultivariateModel<f64>,
+    /// Leverage matrix in the augmented space [1, x_0..x_22].
+    lev: DMatrix<f64>,
+    /// Effective parameters besides the constant.
+    edf: f64,
+    detail: String,
+}
+
+/// t_ref and a_f from the calibration rows: t_ref the mean temperature
+/// (0.1 C), a_f the slope of eps''_2 on eps'_2 (Trabelsi, Kraszewski and
+/// Nelson 1998 take it from the slope of eps''/rho on eps'/rho), raised
+/// where needed so every row lies in psi's domain with a factor 10 to
+/// spare: at these frequencies eps'' is mostly ionic conduction, and a
+/// reading with more salt than the calibration's must not reach the edge
+/// of the domain, where psi grows without bound.
+fn mv_prototype(samples: &[Sample], checked: &Checked, rows: &[usize]) -> MultivariateModel<f64> {
+    let n = rows.len() as f64;
+    let t_ref =
+        (rows.iter().map(|i| samples[*i].temperature_c).sum::<f64>() / n * 10.0).round() / 10.0;
+    let fl = crate::product::LOSS_FLOOR;
+    let e: Vec<(f64, f64)> = rows
+        .iter()
+        .map(|i| (checked.eps[*i][1].0, checked.eps[*i][1].1 + fl))
+        .collect();
+    let (me, ml) = (
+        e.iter().map(|v| v.0).sum::<f64>() / n,
+        e.iter().map(|v| v.1).sum::<f64>() / n,
+    );
+    let (sxy, sxx) = e.iter().fold((0.0, 0.0), |(a, b), (x, y)| {
+        (a + (x - me) * (y - ml), b + (x - me) * (x - me))
+    });
+    let slope = if sxx > 0.0 { sxy / sxx } else { 0.0 };
+    let max_ratio = e.iter().map(|(x, y)| y / x).fold(0.0f64, f64::max);
+    MultivariateModel {
+        t_ref_c: t_ref,
+        a_f: slope.max(10.0 * max_ratio).max(1e-3),
+        intercept: 0.0,
+        coeffs: [0.0; MV_FEATURES],
+    }
+}
+
+fn mv_row(m: &MultivariateModel<f64>, e: &[(f64, f64); 2], t_c: f64) -> [f64; MV_FEATURES] {
+    m.features([e[0].0, e[0].1, e[1].0, e[1].1], t_c).0
+}
+
+/// Fits the multivariate coefficients on `rows` (the choice of penalty or
+/// components and of the feature set included).
+fn mv_core(
+    samples: &[Sample],
+    checked: &Checked,
+    rows: &[usize],
+    method: MvMethod,
+    tkn: bool,
+) -> Result<MvCore, ProductFitError> {
+    use super::chemo::{alpha_grid, pls1, RidgePath};
+    let stage = "multivariate regression";
+    let ls = |error| ProductFitError::LeastSquares { stage, error };
+    let proto = mv_prototype(samples, checked, rows);
+    let full: Vec<[f64; MV_FEATURES]> = rows
+        .iter()
+        .map(|i| mv_row(&proto, &checked.eps[*i], samples[*i].temperature_c))
+        .collect();
+    if let Some(k) = full.iter().position(|r| !r.iter().all(|v| v.is_finite())) {
+        return Err(ProductFitError::NonFinite {
+            id: samples[rows[k]].id.clone(),
+            field: "multivariate features (eps' must be > 0)",
+        });
+    }
+    let y: Vec<f64> = rows.iter().map(|i| samples[*i].moisture_pct).collect();
+    let n = rows.len();
+    let mut best: Option<(f64, MvCore)> = None;
+    for set in mv_sets(tkn) {
+        let p = set.len();
+        let x = DMatrix::from_fn(n, p, |i, j| full[i][set[j]]);
+        let (crit, lin, lev, edf, detail) = match method {
+            MvMethod::Ridge => {
+                let path = RidgePath::new(&x, &y).map_err(ls)?;
+                let mut pick: Option<(f64, f64, f64)> = None;
+                for a in alpha_grid(n) {
+                    let at = path.at(a, &y);
+                    let press = at.loo_residuals.iter().map(|e| e * e).sum::<f64>();
+                    if press.is_finite() && pick.is_none_or(|(b, _, _)| press < b) {
+                        pick = Some((press, a, at.edf));
+                    }
+                }
+                let (press, a, edf) =
+                    pick.ok_or(ls(FitError::RankDeficient { rank: 0, params: p }))?;
+                let (lin, lev) = path.model(a);
+                (
+                    press,
+                    lin,
+                    lev,
+                    edf,
+                    format!(
+                        "ridge on {p} features, penalty {a:.3e} on standardised features (leave-one-out), {edf:.1} effective parameters"
+                    ),
+                )
+            }
+            MvMethod::Pls => {
+                let kmax = p.min(12).min(n.saturating_sub(6)).max(1);
+                let folds = Folds::KFold(5.min(n))
+                    .split(n)
+                    .map_err(ProductFitError::Stats)?;
+                let mut pick: Option<(f64, usize)> = None;
+                for k in 1..=kmax {
+                    let mut press = 0.0;
+                    for test in &folds {
+                        let train: Vec<usize> = (0..n).filter(|i| !test.contains(i)).collect();
+                        let xt = DMatrix::from_fn(train.len(), p, |i, j| x[(train[i], j)]);
+                        let yt: Vec<f64> = train.iter().map(|i| y[*i]).collect();
+                        let Ok(f) = pls1(&xt, &yt, k) else {
+                            press = f64::INFINITY;
+                            break;
+                        };
+                        for i in test {
+                            let row: Vec<f64> = (0..p).map(|j| x[(*i, j)]).collect();
+                            press += (y[*i] - f.model.predict(&row)).powi(2);
+                        }
+                    }
+                    if press.is_finite() && pick.is_none_or(|(b, _)| press < b) {
+                        pick = Some((press, k));
+                    }
+                }
+                let (press, k) = pick.ok_or(ls(FitError::RankDeficient { rank: 0, params: p }))?;
+                let f = pls1(&x, &y, k).map_err(ls)?;
+                let lev = f.leverage_matrix(n);
+                (
+                    press,
+                    f.model,
+                    lev,
+                    k as f64,
+                    format!("PLS on {p} features, {k} components (5-fold cross-validation)"),
+                )
+            }
+        };
+        if best.as_ref().is_some_and(|(b, _)| *b <= crit) {
+            continue;
+        }
+        let mut model = proto;
+        model.intercept = lin.intercept;
+        for (j, c) in set.iter().zip(&lin.coef) {
+            model.coeffs[*j] = *c;
+        }
+        // Leverage matrix of [1, x_set] placed in the space [1, x_0..x_22].
+        let mut big = DMatrix::zeros(MV_FEATURES + 1, MV_FEATURES + 1);
+        let at = |k: usize| if k == 0 { 0 } else { set[k - 1] + 1 };
+        for r in 0..=p {
+            for c in 0..=p {
+                big[(at(r), at(c))] = lev[(r, c)];
+            }
+        }
+        best = Some((
+            crit,
+            MvCore {
+                model,
+                lev: big,
+                edf,
+                detail,
+            },
+        ));
+    }
+    best.map(|b| b.1).ok_or(ls(FitError::RankDeficient {
+        rank: 0,
+        params: MV_FEATURES,
+    }))
+}
+
+/// Fits the multivariate model: ridge or PLS on the physically chosen
+/// features of [`MultivariateModel::features`], the penalty or number of
+/// components and the feature set (the 7 linear ones, or with the 15
+/// squares and products; psi only on request) chosen by
+/// cross-validation on the calibration samples; the statistics'
+/// cross-validation repeats that whole choice in every fold.
+///
+/// # Errors
+/// [`ProductFitError`]: refused samples (named by id and field), fewer than
+/// [`MV_MIN_SAMPLES`], or a failed least-squares stage.
+pub fn fit_multivariate(
+    samples: &[Sample],
+    opts: &MultivariateOptions,
+) -> Result<ProductFit, ProductFitError> {
+    check_sd(opts.eps_sd)?;
+    let checked = check_samples(samples, MV_MIN_SAMPLES)?;
+    let n = samples.len();
+    let all: Vec<usize> = (0..n).collect();
+    let core = mv_core(
+        samples,
+        &checked,
+        &all,
+        opts.method,
+        opts.density_independent,
+    )?;
+    let features: Vec<Vec<f64>> = samples
+        .iter()
+        .zip(&checked.eps)
+        .map(|(s, e)| {
+            core::iter::once(1.0)
+                .chain(mv_row(&core.model, e, s.temperature_c))
+                .collect()
+        })
+        .collect();
+    let y: Vec<f64> = samples.iter().map(|s| s.moisture_pct).collect();
+    let coef: Vec<f64> = core::iter::once(core.model.intercept)
+        .chain(core.model.coeffs)
+        .collect();
+    let residuals: Vec<f64> = features
+        .iter()
+        .zip(&y)
+        .map(|(f, y)| y - f.iter().zip(&coef).map(|(a, b)| a * b).sum::<f64>())
+        .collect();
+    let rss: f64 = residuals.iter().map(|e| e * e).sum();
+    let dof = (n as f64 - 1.0 - core.edf).floor().max(1.0) as usize;
+    let s2 = rss / dof as f64;
+    let my = y.iter().sum::<f64>() / n as f64;
+    let tss: f64 = y.iter().map(|v| (v - my).powi(2)).sum();
+    let lin = LinearFit {
+        std_err: vec![f64::NAN; coef.len()],
+        coef,
+        covariance: &core.lev * s2,
+        unscaled_covariance: core.lev.clone(),
+        residuals,
+        rss,
+        residual_sd: s2.sqrt(),
+        dof,
+        r_squared: if tss > 0.0 { 1.0 - rss / tss } else { f64::NAN },
+        condition: f64::NAN,
+    };
+    let inputs: Vec<Range<f32>> = (0..4)
+        .map(|c| {
+            range_of(checked.eps.iter().map(|e| match c {
+                0 => e[0].0,
+                1 => e[0].1,
+                2 => e[1].0,
+                _ => e[1].1,
+            }))
+        })
+        .collect();
+    let fitted = Fitted {
+        model: ProductModel::Multivariate(core.model),
+        features,
+        lin,
+        inputs,
+        law_std_err: None,
+        columns: (0..=MV_FEATURES).collect(),
+        n_coef: 1 + core.edf.ceil() as usize,
+    };
+    let (method, tkn) = (opts.method, opts.density_independent);
+    let mut fit = finish(
+        samples,
+        &checked,
+        opts.eps_sd,
+        opts.folds,
+        fitted,
+        Vec::new(),
+        Vec::new(),
+        |_, train, _| {
+            Ok(ProductModel::Multivariate(
+                mv_core(samples, &checked, train, method, tkn)?.model,
+            ))
+        },
+    )?;
+    fit.detail = core.detail;
+    if opts.method == MvMethod::Pls {
+        fit.interval_sd = fit.interval_sd.max(fit.stats.cross_validation.rmsep);
+    }
+    Ok(fit)
+}
+
+/// The models [`compare_models`] fits, in its order of parsimony (physics
+/// first: a simpler or physical model extrapolates better, so it is
+/// preferred when it predicts about as well).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Candidate {
+    /// [`fit_single`].
+    SingleFrequency,
+    /// [`fit_relaxation`].
+    Relaxation,
+    /// [`fit_multivariate`] with PLS.
+    MultivariatePls,
+    /// [`fit_multivariate`] with ridge.
+    MultivariateRidge,
+}
+
+impl Candidate {
+    /// All candidates, in the order of parsimony.
+    pub const ALL: [Candidate; 4] = [
+        Candidate::SingleFrequency,
+        Candidate::Relaxation,
+        Candidate::MultivariatePls,
+        Candidate::MultivariateRidge,
+    ];
+
+    /// Whether the model is physical (single-frequency or relaxation),
+    /// preferred by the parsimony rule.
+    pub fn is_physical(self) -> bool {
+        matches!(self, Candidate::SingleFrequency | Candidate::Relaxation)
+    }
+
+    /// Name in words.
+    pub fn name(self) -> &'static str {
+        match self {
+            Candidate::SingleFrequency => "single-frequency",
+            Candidate::Relaxation => "relaxation",
+            Candidate::MultivariatePls => "multivariate (PLS)",
+            Candidate::MultivariateRidge => "multivariate (ridge)",
+        }
+    }
+}
+
+/// Options of [`compare_models`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct CompareOptions {
+    /// The single-frequency model's options (its `folds` are replaced).
+    pub single: SingleOptions,
+    /// The relaxation model's options; `None` leaves it out (no densities).
+    pub relaxation: Option<RelaxationOptions>,
+    /// Noise SD of eps' and eps'' for the multivariate models.
+    pub eps_sd: f64,
+    /// One cross-validation split for every model.
+    pub folds: Folds,
+}
+
+/// Every model fitted on the same samples with the same split, and the one
+/// chosen (see [`compare_models`]).
+#[derive(Debug, Clone, PartialEq)]
+pub struct ModelComparison {
+    /// Each candidate's fit or why it has none, in [`Candidate::ALL`] order.
+    pub results: Vec<(Candidate, Result<ProductFit, ProductFitError>)>,
+    /// The chosen model.
+    pub chosen: Candidate,
+    /// The smallest cross-validated SEP among the eligible models, %.
+    pub best_sep: f64,
+    /// The parsimony threshold: best SEP plus one standard error, %.
+    pub threshold: f64,
+}
+
+impl ModelComparison {
+    /// The chosen fit.
+    pub fn chosen_fit(&self) -> &ProductFit {
+        self.results
+            .iter()
+            .find_map(|(c, r)| {
+                if *c == self.chosen {
+                    r.as_ref().ok()
+                } else {
+                    None
+                }
+            })
+            .expect("the chosen model has a fit")
+    }
+
+    /// Whether a candidate's fit can be chosen: finished, and on every
+    /// sample (a model that left samples out is scored on fewer and is
+    /// listed, not chosen).
+    pub fn eligible(fit: &ProductFit) -> bool {
+        fit.excluded.is_empty() && fit.stats.cross_validation.sep.is_finite()
+    }
+}
+
+/// Fits every model on the same samples under the same cross-validation
+/// split and chooses one by its cross-validated SEP with a parsimony rule:
+/// among the eligible fits ([`ModelComparison::eligible`]) the smallest SEP
+/// sets a threshold of that SEP plus one standard error, SE ~ SEP /
+/// sqrt(2 (n - 1)) (the large-sample standard error of a standard
+/// deviation; from memory). The first physical model (single-frequency,
+/// then relaxation) within the threshold is chosen; failing that, the
+/// multivariate fit (PLS or ridge) with the smaller SEP.
+///
+/// # Errors
+/// [`ProductFitError::NoModel`] when no eligible model finished, with each
+/// candidate's reason; an invalid table's refusal (the same for every model)
+/// as itself.
+pub fn compare_models(
+    samples: &[Sample],
+    opts: &CompareOptions,
+) -> Result<ModelComparison, ProductFitError> {
+    let mut results = Vec::new();
+    for c in Candidate::ALL {
+        let r = match c {
+            Candidate::SingleFrequency => fit_single(
+                samples,
+                &SingleOptions {
+                    folds: opts.folds,
+                    ..opts.single
+                },
+            ),
+            Candidate::Relaxation => match &opts.relaxation {
+                Some(r) => fit_relaxation(
+                    samples,
+                    &RelaxationOptions {
+                        folds: opts.folds,
+                        ..*r
+                    },
+                ),
+                None => Err(ProductFitError::BadOption {
+                    name: "bulk and particle density",
+                    reason: "not given, so the relaxation model was not fitted",
+                }),
+            },
+            Candidate::MultivariatePls | Candidate::MultivariateRidge => fit_multivariate(
+                samples,
+                &MultivariateOptions {
+                    method: if c == Candidate::MultivariatePls {
+                        MvMethod::Pls
+                    } else {
+                        MvMethod::Ridge
+                    },
+                    eps_sd: opts.eps_sd,
+                    folds: opts.folds,
+                    density_independent: false,
+                },
+            ),
+        };
+        // A table every model refuses alike is the table's fault: say so.
+        if let Err(
+            e @ (ProductFitError::EmptyId { .. }
+            | ProductFitError::DuplicateId { .. }
+            | ProductFitError::NonFinite { .. }
+            | ProductFitError::MoistureOutOfRange { .. }
+            | ProductFitError::NegativeLoss { .. }
+            | ProductFitError::BadFrequency { .. }
+            | ProductFitError::WrongChannelCount { .. }
+            | ProductFitError::MixedFrequencies { .. }),
+        ) = &r
+        {
+            if c == Candidate::SingleFrequency {
+                return Err(e.clone());
+            }
+        }
+        results.push((c, r));
+    }
+    let eligible: Vec<(Candidate, f64, usize)> = results
+        .iter()
+        .filter_map(|(c, r)| {
+            let f = r.as_ref().ok()?;
+            ModelComparison::eligible(f).then_some((
+                *c,
+                f.stats.cross_validation.sep,
+                f.stats.cross_validation.n,
+            ))
+        })
+        .collect();
+    let Some(best) = eligible.iter().map(|e| e.1).min_by(f64::total_cmp) else {
+        return Err(ProductFitError::NoModel {
+            reasons: results
+                .iter()
+                .map(|(c, r)| {
+                    (
+                        c.name(),
+                        match r {
+                            Ok(f) => format!("left out {} sample(s)", f.excluded.len()),
+                            Err(e) => e.to_string(),
+                        },
+                    )
+                })
+                .collect(),
+        });
+    };
+    let n = eligible.iter().map(|e| e.2).max().unwrap_or(2).max(2);
+    let threshold = best * (1.0 + 1.0 / (2.0 * (n as f64 - 1.0)).sqrt());
+    // Physical models first (in ALL order), then the better multivariate.
+    let chosen = eligible
+        .iter()
+        .filter(|e| e.0.is_physical())
+        .find(|e| e.1 <= threshold)
+        .or_else(|| {
+            eligible
+                .iter()
+                .filter(|e| !e.0.is_physical())
+                .min_by(|a, b| a.1.total_cmp(&b.1))
+        })
+        .map_or(Candidate::SingleFrequency, |e| e.0);
+    Ok(ModelComparison {
+        results,
+        chosen,
+        best_sep: best,
+        threshold,
+    })
 }
 
 /// Fits both models on the same samples with the same cross-validation
