@@ -552,7 +552,7 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
         }
         writeln!(
             w,
-            "  smallest SEP {best:.3} %; a physical model within one standard error ({threshold:.3} %) is preferred; writing the {} model",
+            "  smallest SEP {best:.3} %; the relaxation model is preferred within one standard error ({threshold:.3} %); writing the {} model",
             model_words(o.chosen.calibration.model.kind())
         )?;
         writeln!(w)?;
