@@ -84,6 +84,94 @@ pub struct FitArgs {
     /// Draw predicted vs lab and residuals vs each input to this SVG file.
     #[arg(long, value_name = "FILE.svg")]
     pub plot: Option<PathBuf>,
+    /// Write the calibration even if it fails the quality gate (RPD < 2, R^2 < 0.8,
+    /// fewer than 5 samples per parameter, a range set by one sample); the
+    /// overridden refusals are kept in the file and in `cal push`'s audit record.
+    #[arg(long)]
+    pub force: bool,
+}
+
+/// The quality gate refused a calibration; nothing was written.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GateRefused {
+    /// What was refused (the file or calibration).
+    pub what: String,
+    /// Each refusal, in words.
+    pub refusals: Vec<String>,
+}
+
+impl std::fmt::Display for GateRefused {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        writeln!(
+            f,
+            "{}: refused by the quality gate; nothing written:",
+            self.what
+        )?;
+        for r in &self.refusals {
+            writeln!(f, "  - {r}")?;
+        }
+        write!(
+            f,
+            "--force writes it anyway and records the override (in the file and the audit record)"
+        )
+    }
+}
+
+impl std::error::Error for GateRefused {}
+
+/// The quality gate (`fringe_calibration::fit::gate`) on a fit and its
+/// samples: the refusals in words.
+pub fn gate_of_fit(f: &ProductFit, samples: &[Sample]) -> Vec<String> {
+    use fringe_calibration::fit::gate::{check, GateInput, Limits};
+    let cv = &f.stats.cross_validation;
+    // The samples the model used (a model may have left some out).
+    let used: Vec<&Sample> = samples
+        .iter()
+        .filter(|s| !f.excluded.iter().any(|x| x.id == s.id))
+        .collect();
+    let input = GateInput {
+        n: f.stats.n,
+        n_params: f.stats.n_coef,
+        rpd: cv.rpd,
+        r2: cv.r_squared,
+        ranges: vec![
+            (
+                "moisture_pct",
+                used.iter()
+                    .map(|s| (s.id.as_str(), s.moisture_pct))
+                    .collect(),
+            ),
+            (
+                "temperature_c",
+                used.iter()
+                    .map(|s| (s.id.as_str(), s.temperature_c))
+                    .collect(),
+            ),
+        ],
+    };
+    check(&input, &Limits::default())
+        .iter()
+        .map(ToString::to_string)
+        .collect()
+}
+
+/// The quality gate on a calibration file's statistics (what `cal push`
+/// can check: RPD, R^2, samples per parameter): the refusals in words.
+pub fn gate_of_file(s: &Statistics) -> Vec<String> {
+    use fringe_calibration::fit::gate::{check, GateInput, Limits};
+    let input = GateInput {
+        n: s.n,
+        // Files from before the gate do not say; the relaxation model's
+        // five coefficients are the fewest a two-frequency model fits.
+        n_params: s.n_params.unwrap_or(5),
+        rpd: s.rpd,
+        r2: s.r2,
+        ranges: Vec::new(),
+    };
+    check(&input, &Limits::default())
+        .iter()
+        .map(ToString::to_string)
+        .collect()
 }
 
 /// `fringe cal predict`.
@@ -172,6 +260,8 @@ fn statistics_of(f: &ProductFit) -> Statistics {
         slope: cv.slope,
         r2: cv.r_squared,
         rpd: cv.rpd,
+        n_params: Some(f.stats.n_coef),
+        gate_overridden: Vec::new(),
         cross_validation: {
             let split = match f.stats.folds {
                 Folds::LeaveOneOut => "leave-one-out".to_string(),
@@ -350,6 +440,18 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
             (chosen, compared, Some((c.best_sep, c.threshold)), ratio)
         }
     };
+    let refusals = gate_of_fit(&chosen, &samples);
+    if !refusals.is_empty() && !args.force {
+        return Err(GateRefused {
+            what: format!(
+                "{}: the {} calibration",
+                args.samples.display(),
+                model_words(chosen.calibration.model.kind())
+            ),
+            refusals,
+        }
+        .into());
+    }
     let name = args
         .name
         .clone()
@@ -374,10 +476,15 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
         .with_context(|| format!("reading {}", args.samples.display()))?;
     let made_s = (crate::store::now_unix_ms() / 1000).max(0) as u64;
     let wire = wire_of(&chosen, &name, basis, made_s)?;
+    let mut statistics = statistics_of(&chosen);
+    statistics.gate_overridden = refusals
+        .iter()
+        .map(|r| format!("at fit (--force): {r}"))
+        .collect();
     let file = ProductFile::from_wire(
         &wire,
         chosen.calibration.model.input_names(),
-        statistics_of(&chosen),
+        statistics,
         Source {
             samples: args.samples.display().to_string(),
             samples_sha256: Sha256::digest(&bytes)
@@ -828,6 +935,7 @@ mod tests {
             basis: "wet".into(),
             json: true,
             plot: None,
+            force: false,
         }
     }
 

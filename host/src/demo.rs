@@ -278,7 +278,8 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
     );
 
     // 2. Reference samples.
-    let n_samples = if a.short { 18 } else { 36 };
+    // Five samples per parameter of the relaxation model (the quality gate).
+    let n_samples = if a.short { 26 } else { 36 };
     stage(2, total, &format!("capturing {n_samples} reference samples of {PRODUCT} (lab: oven 130 C, ground; invented values)"));
     let mut rows = Vec::new();
     for i in 0..n_samples {
@@ -325,6 +326,7 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         basis: "wet".into(),
         json: false,
         plot: Some(outs.fit_plot.clone()),
+        force: false,
     };
     cal::run_fit(&fit_args)?;
 

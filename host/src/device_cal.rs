@@ -146,6 +146,30 @@ pub struct PushArgs {
     /// Do not ask for confirmation.
     #[arg(long)]
     pub yes: bool,
+    /// Push even if the calibration fails the quality gate (RPD < 2, R^2 < 0.8,
+    /// fewer than 5 samples per parameter); the override is kept in the audit record.
+    #[arg(long)]
+    pub force: bool,
+}
+
+/// `cal push`'s quality gate on a calibration file: the refusals to record
+/// when `force` overrides them.
+///
+/// # Errors
+/// [`crate::cal::GateRefused`] when the file fails the gate and `force` is off.
+pub fn push_gate(path: &Path, file: &ProductFile, force: bool) -> anyhow::Result<Vec<String>> {
+    let refusals = crate::cal::gate_of_file(&file.statistics);
+    if !refusals.is_empty() && !force {
+        return Err(crate::cal::GateRefused {
+            what: path.display().to_string(),
+            refusals,
+        }
+        .into());
+    }
+    Ok(refusals
+        .into_iter()
+        .map(|r| format!("at push (--force): {r}"))
+        .collect())
 }
 
 /// `fringe cal list`.

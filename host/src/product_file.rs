@@ -65,6 +65,14 @@ pub struct Statistics {
     pub rpd: f64,
     /// Cross-validation split, in words.
     pub cross_validation: String,
+    /// Parameters fitted (effective ones for ridge and PLS; constant
+    /// included), for the quality gate. Absent in older files.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub n_params: Option<usize>,
+    /// Quality-gate refusals overridden with `--force` (at fit or push), in
+    /// words; empty when the calibration passed the gate.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub gate_overridden: Vec<String>,
 }
 
 /// Where the calibration came from.

@@ -16,6 +16,7 @@
 //! cross-validation live in [`crate::stats`].
 
 pub mod chemo;
+pub mod gate;
 mod law;
 pub mod linear;
 pub mod nonlinear;

@@ -78,7 +78,9 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             Ok(())
         }
         CalCommand::Push(p) => {
-            let (file, wire) = ProductFile::load(&p.cal)?;
+            let (mut file, wire) = ProductFile::load(&p.cal)?;
+            let overridden = device_cal::push_gate(&p.cal, &file, p.force)?;
+            file.statistics.gate_overridden.extend(overridden);
             let key = device_cal::load_key(&p.key.key_file)?;
             let mut store = Store::open(&p.db)?;
             let mut link = super::connect(&p.port, cfg)?;
