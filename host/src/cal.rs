@@ -15,8 +15,8 @@ use clap::{Args, ValueEnum};
 use fringe_calibration::estimate::{estimate, Channel, EstimateInput};
 use fringe_calibration::fit::product::{
     compare_models, fit_multivariate, fit_relaxation, fit_single, ChannelReading, CompareOptions,
-    MixingFit, MultivariateOptions, MvMethod, ProductFit, RelaxationOptions, Sample, SingleOptions,
-    MV_MIN_SAMPLES,
+    IntervalModel, MixingFit, MultivariateOptions, MvMethod, ProductFit, RelaxationOptions, Sample,
+    SingleOptions, MV_MIN_SAMPLES,
 };
 use fringe_calibration::stats::{Folds, PredictionStats};
 use fringe_protocol::{short_string, Basis, Flags, ModelKind, ProductCal, Range};
@@ -192,6 +192,26 @@ pub struct PredictArgs {
     /// Noise standard deviation of eps' and eps'' used for the uncertainty.
     #[arg(long, default_value_t = 0.02)]
     pub eps_sd: f32,
+    /// Confidence level of the prediction interval.
+    #[arg(long, default_value_t = 0.95, value_parser = confidence_level)]
+    pub confidence: f64,
+    /// Print the rows and the statistics as one JSON object on stdout (no CSV).
+    #[arg(long)]
+    pub json: bool,
+}
+
+fn confidence_level(s: &str) -> Result<f64, String> {
+    let v: f64 = s
+        .trim()
+        .parse()
+        .map_err(|_| format!("`{s}` is not a number"))?;
+    if v > 0.5 && v < 1.0 {
+        Ok(v)
+    } else {
+        Err(format!(
+            "{s} is not a confidence level between 0.5 and 1 (e.g. 0.95)"
+        ))
+    }
 }
 
 fn to_fit_samples(set: &SampleSet) -> Vec<Sample> {
@@ -500,6 +520,18 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
             freqs_hz: Some(chosen.freqs_hz),
         },
     );
+    let im = fringe_calibration::fit::product::IntervalModel::of(&chosen);
+    let mut file = file;
+    file.prediction = Some(crate::product_file::Prediction {
+        columns: im.columns,
+        leverage_matrix: im.leverage_matrix,
+        residual_sd: im.residual_sd,
+        interval_sd: im.interval_sd,
+        mean_leverage: im.mean_leverage,
+        max_leverage: im.max_leverage,
+        dof: im.dof,
+        eps_sd: im.eps_sd,
+    });
     Ok(FitOutcome {
         chosen,
         compared,
@@ -751,21 +783,35 @@ pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> anyhow::Result<String> {
 pub struct Predicted {
     /// Sample id.
     pub sample_id: String,
-    /// Moisture, % (None when the estimate failed; flags say why).
+    /// Predicted moisture, % (None when the estimate failed; flags say why).
     pub moisture_pct: Option<f32>,
-    /// Standard uncertainty, %.
+    /// Standard uncertainty the device reports, %.
     pub uncertainty_pct: f32,
+    /// Prediction interval for a lab value, % (None without a moisture or
+    /// for a file without its interval model).
+    pub interval_pct: Option<(f64, f64)>,
+    /// Leverage of the reading in the calibration (NaN when unknown).
+    pub leverage: f64,
+    /// The leverage exceeds every calibration sample's.
+    pub beyond_calibration: bool,
     /// Flags.
     pub flags: Flags,
     /// Lab moisture if the input had one.
     pub lab_pct: Option<f64>,
 }
 
-/// Evaluates every sample of `input` with the calibration, as the device does.
+/// Evaluates every sample of `input` with the calibration, as the device
+/// does, with the prediction interval at `confidence` and the leverage
+/// where the file keeps its interval model.
 ///
 /// # Errors
 /// A bad calibration file or table.
-pub fn predict(cal_path: &Path, input: &Path, eps_sd: f32) -> anyhow::Result<Vec<Predicted>> {
+pub fn predict(
+    cal_path: &Path,
+    input: &Path,
+    eps_sd: f32,
+    confidence: f64,
+) -> anyhow::Result<Vec<Predicted>> {
     let (file, wire) = ProductFile::load(cal_path)?;
     let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| {
         anyhow::anyhow!(
@@ -792,8 +838,19 @@ pub fn predict(cal_path: &Path, input: &Path, eps_sd: f32) -> anyhow::Result<Vec
             );
         }
     }
-    Ok(set
-        .samples
+    let model = cal.model.cast::<f64>();
+    let interval = file.prediction.as_ref().map(|p| IntervalModel {
+        columns: p.columns.clone(),
+        leverage_matrix: p.leverage_matrix.clone(),
+        residual_sd: p.residual_sd,
+        interval_sd: p.interval_sd,
+        mean_leverage: p.mean_leverage,
+        max_leverage: p.max_leverage,
+        dof: p.dof,
+        freqs_hz: set.freqs_hz,
+        eps_sd: f64::from(eps_sd),
+    });
+    set.samples
         .iter()
         .map(|s| {
             let ch = |k: usize| Channel {
@@ -809,40 +866,113 @@ pub fn predict(cal_path: &Path, input: &Path, eps_sd: f32) -> anyhow::Result<Vec
                 },
                 Some(&cal),
             );
-            Predicted {
+            let (interval_pct, leverage, beyond) = match &interval {
+                Some(im) => {
+                    let eps = [(s.eps_re[0], s.eps_im[0]), (s.eps_re[1], s.eps_im[1])];
+                    let p = im.predict(&model, &cal, eps, s.temperature_c, confidence)?;
+                    (p.interval_pct, p.leverage, p.extrapolation)
+                }
+                None => (None, f64::NAN, false),
+            };
+            Ok(Predicted {
                 sample_id: s.sample_id.clone(),
                 moisture_pct: e.moisture_pct,
                 uncertainty_pct: e.uncertainty_pct,
+                interval_pct,
+                leverage,
+                beyond_calibration: beyond,
                 flags: Flags::from_bits_truncate(e.flags.bits()),
                 lab_pct: s.moisture_pct,
-            }
+            })
         })
-        .collect())
+        .collect()
 }
 
-/// Writes predictions as CSV `sample_id, moisture_pct, uncertainty_pct, flags`.
+/// Columns of `cal predict`'s CSV.
+pub const PREDICT_COLUMNS: [&str; 8] = [
+    "sample_id",
+    "moisture_pct",
+    "predicted_moisture_pct",
+    "uncertainty_pct",
+    "interval_low_pct",
+    "interval_high_pct",
+    "leverage",
+    "flags",
+];
+
+fn fmt_opt(v: Option<f64>, digits: usize) -> String {
+    v.filter(|x| x.is_finite())
+        .map(|x| format!("{x:.digits$}"))
+        .unwrap_or_default()
+}
+
+/// Flag names of a row: the device's, plus `beyond_calibration` when the
+/// leverage exceeds every calibration sample's.
+fn flag_names(r: &Predicted) -> Vec<String> {
+    let mut f: Vec<String> = r.flags.names().map(str::to_string).collect();
+    if r.beyond_calibration {
+        f.push("beyond_calibration".into());
+    }
+    f
+}
+
+/// Writes predictions as CSV with [`PREDICT_COLUMNS`]: the lab value
+/// (`moisture_pct`, empty when the input had none) beside the predicted one,
+/// the device's uncertainty, the prediction interval, the leverage and the
+/// flags (`|`-separated).
 ///
 /// # Errors
 /// I/O errors.
 pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> anyhow::Result<()> {
     let mut c = csv::Writer::from_writer(w);
-    c.write_record(["sample_id", "moisture_pct", "uncertainty_pct", "flags"])?;
+    c.write_record(PREDICT_COLUMNS)?;
     for r in rows {
         c.write_record([
             r.sample_id.clone(),
-            r.moisture_pct
-                .map(|m| format!("{m:.3}"))
-                .unwrap_or_default(),
-            if r.uncertainty_pct.is_finite() {
-                format!("{:.3}", r.uncertainty_pct)
-            } else {
-                String::new()
-            },
-            r.flags.names().collect::<Vec<_>>().join("|"),
+            fmt_opt(r.lab_pct, 3),
+            fmt_opt(r.moisture_pct.map(f64::from), 3),
+            fmt_opt(Some(f64::from(r.uncertainty_pct)), 3),
+            fmt_opt(r.interval_pct.map(|i| i.0), 3),
+            fmt_opt(r.interval_pct.map(|i| i.1), 3),
+            fmt_opt(Some(r.leverage), 4),
+            flag_names(r).join("|"),
         ])?;
     }
     c.flush()?;
     Ok(())
+}
+
+/// The JSON object `cal predict --json` prints.
+pub fn predictions_json(rows: &[Predicted], confidence: f64) -> serde_json::Value {
+    let num = |v: Option<f64>| {
+        v.filter(|x| x.is_finite())
+            .map_or(json!(null), |x| json!(x))
+    };
+    let pairs: Vec<(f64, f64)> = rows
+        .iter()
+        .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
+        .collect();
+    let stats = if pairs.len() >= 3 {
+        let (lab, pred): (Vec<f64>, Vec<f64>) = pairs.into_iter().unzip();
+        PredictionStats::new(&lab, &pred).ok().map(|s| {
+            json!({"n": s.n, "sep": s.sep, "bias": s.bias, "rmsep": s.rmsep, "slope": s.slope, "r2": s.r_squared})
+        })
+    } else {
+        None
+    };
+    json!({
+        "confidence": confidence,
+        "rows": rows.iter().map(|r| json!({
+            "sample_id": r.sample_id,
+            "moisture_pct": num(r.lab_pct),
+            "predicted_moisture_pct": num(r.moisture_pct.map(f64::from)),
+            "uncertainty_pct": num(Some(f64::from(r.uncertainty_pct))),
+            "interval_pct": r.interval_pct.map_or(json!(null), |(a, b)| json!([a, b])),
+            "leverage": num(Some(r.leverage)),
+            "flags": flag_names(r),
+        })).collect::<Vec<_>>(),
+        "against_lab": stats,
+    })
 }
 
 /// `fringe cal predict`.
@@ -850,7 +980,16 @@ pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> anyhow:
 /// # Errors
 /// As [`predict`], or a failed write.
 pub fn run_predict(args: &PredictArgs) -> anyhow::Result<()> {
-    let rows = predict(&args.cal, &args.input, args.eps_sd)?;
+    let rows = predict(&args.cal, &args.input, args.eps_sd, args.confidence)?;
+    if args.json {
+        let v = predictions_json(&rows, args.confidence);
+        match &args.out {
+            Some(p) => std::fs::write(p, format!("{v}\n"))
+                .with_context(|| format!("writing {}", p.display()))?,
+            None => writeln!(std::io::stdout().lock(), "{v}")?,
+        }
+        return Ok(());
+    }
     match &args.out {
         Some(p) => {
             let tmp = p.with_extension("csv.part");
@@ -967,7 +1106,7 @@ mod tests {
         // Fresh samples of the same product: the prediction error is of the
         // size of the cross-validated SEP (within a factor of 2).
         let check = synth_csv(dir.path(), "check.csv", 30, seed + 1);
-        let rows = predict(&toml, &check, 0.02).expect("predict");
+        let rows = predict(&toml, &check, 0.02, 0.95).expect("predict");
         let (lab, pred): (Vec<f64>, Vec<f64>) = rows
             .iter()
             .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
@@ -992,9 +1131,22 @@ mod tests {
         write_predictions(&mut buf, &rows).expect("csv");
         let text = String::from_utf8(buf).expect("utf8");
         assert!(
-            text.starts_with("sample_id,moisture_pct,uncertainty_pct,flags\n"),
+            text.starts_with(
+                "sample_id,moisture_pct,predicted_moisture_pct,uncertainty_pct,interval_low_pct,interval_high_pct,leverage,flags\n"
+            ),
             "{text}"
         );
+        // The lab value is kept beside the prediction, and the interval
+        // brackets the prediction.
+        for r in rows.iter().filter(|r| r.moisture_pct.is_some()) {
+            let (lo, hi) = r.interval_pct.expect("interval");
+            let m = f64::from(r.moisture_pct.expect("m"));
+            assert!(lo < m && m < hi && r.leverage.is_finite(), "{r:?}");
+        }
+        let j = predictions_json(&rows, 0.95);
+        assert_eq!(j["rows"].as_array().map(Vec::len), Some(30));
+        assert!(j["rows"][0]["moisture_pct"].is_number());
+        assert!(j["rows"][0]["predicted_moisture_pct"].is_number());
     }
 
     #[test]

@@ -99,6 +99,29 @@ pub fn same_freqs(a: [f64; 2], b: [f64; 2]) -> bool {
         .all(|(x, y)| (x / y - 1.0).abs() <= 0.005)
 }
 
+/// What `cal predict` needs for a reading's prediction interval and
+/// leverage (`fringe_calibration::fit::product::IntervalModel`); not part of
+/// the device's calibration nor of its id.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Prediction {
+    /// Feature columns of the leverage.
+    pub columns: Vec<usize>,
+    /// Leverage matrix over them, row-major.
+    pub leverage_matrix: Vec<f64>,
+    /// Residual SD of the fit, %.
+    pub residual_sd: f64,
+    /// SD of a new reading's error at average leverage (cross-validated RMSEP), %.
+    pub interval_sd: f64,
+    /// Mean leverage of the calibration samples.
+    pub mean_leverage: f64,
+    /// Largest leverage of the calibration samples.
+    pub max_leverage: f64,
+    /// Degrees of freedom of the t quantile.
+    pub dof: usize,
+    /// Noise SD of eps' and eps'' assumed by the fit.
+    pub eps_sd: f64,
+}
+
 /// One input range.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct InputRange {
@@ -139,6 +162,10 @@ pub struct ProductFile {
     pub statistics: Statistics,
     /// Provenance.
     pub source: Source,
+    /// Prediction intervals and leverage for `cal predict` (absent in files
+    /// written before it was kept).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub prediction: Option<Prediction>,
 }
 
 /// A product file could not be used.
@@ -243,6 +270,7 @@ impl ProductFile {
                 .collect(),
             statistics,
             source,
+            prediction: None,
         }
     }
 

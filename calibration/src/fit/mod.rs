@@ -31,9 +31,9 @@ pub use nonlinear::{
 };
 pub use product::{
     compare, compare_models, fit_multivariate, fit_relaxation, fit_single, synthetic_samples,
-    Candidate, ChannelReading, CompareOptions, Comparison, Excluded, FitStatistics, MixingFit,
-    ModelComparison, MultivariateOptions, MvMethod, ProductFit, ProductFitError, RelaxationOptions,
-    Sample, SampleResult, SingleOptions, SynthSpec,
+    Candidate, ChannelReading, CompareOptions, Comparison, Excluded, FitStatistics, IntervalModel,
+    MixingFit, ModelComparison, MultivariateOptions, MvMethod, ProductFit, ProductFitError,
+    RelaxationOptions, Sample, SampleResult, SingleOptions, SynthSpec,
 };
 pub use rng::SeededRng;
 

@@ -966,14 +966,73 @@ impl ProductFit {
                 });
             }
         }
-        let t = crate::stats::t_quantile(0.5 + confidence / 2.0, self.regression.dof as f64)
-            .map_err(ProductFitError::Stats)?;
-        let eps = checked.eps[0];
-        let input = device_input(self.freqs_hz, &eps, temperature_c, self.eps_sd);
-        let estimate = estimate(&input, Some(&self.calibration));
-        let features: Option<Vec<f64>> = match &self.model {
+        IntervalModel::of(self).predict(
+            &self.model,
+            &self.calibration,
+            checked.eps[0],
+            temperature_c,
+            confidence,
+        )
+    }
+}
+
+/// What a reading's prediction interval and leverage need besides the
+/// calibration itself; kept with a calibration file, so `cal predict` gives
+/// the same interval as the fit (see [`ProductFit::predict`]).
+#[derive(Debug, Clone, PartialEq)]
+pub struct IntervalModel {
+    /// Which of the model's features the leverage uses (indices into its
+    /// `features` array; a constant 1 is feature 0 of the multivariate model).
+    pub columns: Vec<usize>,
+    /// The leverage matrix `(A'A)^-1` (or its penalised or PLS equivalent)
+    /// over those columns, row-major.
+    pub leverage_matrix: Vec<f64>,
+    /// Residual SD of the fit, %.
+    pub residual_sd: f64,
+    /// [`ProductFit::interval_sd`], %.
+    pub interval_sd: f64,
+    /// [`ProductFit::mean_leverage`].
+    pub mean_leverage: f64,
+    /// Largest leverage of the calibration samples.
+    pub max_leverage: f64,
+    /// Degrees of freedom of the t quantile.
+    pub dof: usize,
+    /// The two excitation frequencies, Hz, lower first.
+    pub freqs_hz: [f64; 2],
+    /// Noise SD of eps' and eps'' for the device's uncertainty.
+    pub eps_sd: f64,
+}
+
+impl IntervalModel {
+    /// The interval model of a fit.
+    pub fn of(fit: &ProductFit) -> Self {
+        let m = &fit.regression.unscaled_covariance;
+        IntervalModel {
+            columns: fit.feature_columns.clone(),
+            leverage_matrix: (0..m.nrows())
+                .flat_map(|i| (0..m.ncols()).map(move |j| m[(i, j)]))
+                .collect(),
+            residual_sd: fit.regression.residual_sd,
+            interval_sd: fit.interval_sd,
+            mean_leverage: fit.mean_leverage,
+            max_leverage: fit.max_leverage,
+            dof: fit.regression.dof,
+            freqs_hz: fit.freqs_hz,
+            eps_sd: fit.eps_sd,
+        }
+    }
+
+    /// The model's features of a reading for the leverage (`None` when they
+    /// cannot be formed, e.g. a failed inversion).
+    fn features(
+        &self,
+        model: &ProductModel<f64>,
+        eps: [(f64, f64); 2],
+        temperature_c: f64,
+    ) -> Option<Vec<f64>> {
+        let f: Vec<f64> = match model {
             ProductModel::SingleFrequency(m) => {
-                Some(m.features(eps[m.freq_index].0, temperature_c).to_vec())
+                m.features(eps[m.freq_index].0, temperature_c).to_vec()
             }
             ProductModel::Relaxation(m) => {
                 let obs = [0, 1].map(|k| Observation {
@@ -981,20 +1040,57 @@ impl ProductFit {
                     eps: Cx::new(eps[k].0, -eps[k].1),
                     sd: self.eps_sd,
                 });
-                invert(&obs, &m.law, temperature_c, &InvertOptions::default())
-                    .ok()
-                    .map(|inv| m.features(&inv.params, temperature_c).to_vec())
+                let inv = invert(&obs, &m.law, temperature_c, &InvertOptions::default()).ok()?;
+                m.features(&inv.params, temperature_c).to_vec()
             }
             ProductModel::Multivariate(m) => {
                 let (x, _) = m.features([eps[0].0, eps[0].1, eps[1].0, eps[1].1], temperature_c);
-                Some(core::iter::once(1.0).chain(x).collect())
+                core::iter::once(1.0).chain(x).collect()
             }
         };
-        let leverage = features.map_or(f64::NAN, |f| {
-            let row: Vec<f64> = self.feature_columns.iter().map(|j| f[*j]).collect();
-            self.regression.leverage(&row)
-        });
-        let r = self.regression.residual_sd;
+        let row: Option<Vec<f64>> = self.columns.iter().map(|j| f.get(*j).copied()).collect();
+        row.filter(|r| r.iter().all(|v| v.is_finite()))
+    }
+
+    /// Leverage of a feature row: `x' M x`.
+    fn leverage(&self, row: &[f64]) -> f64 {
+        let p = row.len();
+        if self.leverage_matrix.len() != p * p {
+            return f64::NAN;
+        }
+        let mut h = 0.0;
+        for i in 0..p {
+            for j in 0..p {
+                h += row[i] * self.leverage_matrix[i * p + j] * row[j];
+            }
+        }
+        h
+    }
+
+    /// Evaluates a reading (eps' and eps'' at the two frequencies, lower
+    /// first, and the temperature) on `cal` (the device's calibration) and
+    /// `model` (the same model in f64): the device's estimate, the
+    /// prediction interval at `confidence`, the leverage and whether it
+    /// lies beyond the calibration set's.
+    ///
+    /// # Errors
+    /// [`ProductFitError::Stats`] for a confidence level outside (0, 1).
+    pub fn predict(
+        &self,
+        model: &ProductModel<f64>,
+        cal: &ProductCalibration<f32>,
+        eps: [(f64, f64); 2],
+        temperature_c: f64,
+        confidence: f64,
+    ) -> Result<ReadingPrediction, ProductFitError> {
+        let t = crate::stats::t_quantile(0.5 + confidence / 2.0, self.dof.max(1) as f64)
+            .map_err(ProductFitError::Stats)?;
+        let input = device_input(self.freqs_hz, &eps, temperature_c, self.eps_sd);
+        let estimate = estimate(&input, Some(cal));
+        let leverage = self
+            .features(model, eps, temperature_c)
+            .map_or(f64::NAN, |row| self.leverage(&row));
+        let r = self.residual_sd;
         // The cross-validated RMSEP is the error of a new reading of average
         // leverage, lack of fit included; one further out adds the leverage
         // beyond the average.
@@ -1008,7 +1104,9 @@ impl ProductFit {
             estimate,
             interval_pct,
             leverage,
-            extrapolation: !(leverage <= self.max_leverage),
+            // (A relative 1e-9 for rounding: a calibration sample's own
+            // leverage is not beyond the set's.)
+            extrapolation: !(leverage <= self.max_leverage * (1.0 + 1e-9)),
         })
     }
 }
