@@ -647,6 +647,31 @@ impl<T: Real> ProductModel<T> {
         }
     }
 
+    /// The model whose moisture is `a + b m` where this one gives `m` (a
+    /// bias and slope correction): every model is linear in its
+    /// coefficients, so the correction is exact.
+    pub fn rescaled(&self, a: T, b: T) -> Self {
+        let mut m = *self;
+        match &mut m {
+            ProductModel::SingleFrequency(s) => {
+                s.coeffs = s.coeffs.map(|c| c * b);
+                s.coeffs[0] += a;
+                s.c_t *= b;
+            }
+            ProductModel::Relaxation(r) => {
+                r.coeffs = r.coeffs.map(|c| c * b);
+                r.coeffs[0] += a;
+                r.c_t *= b;
+                r.c_sigma *= b;
+            }
+            ProductModel::Multivariate(v) => {
+                v.coeffs = v.coeffs.map(|c| c * b);
+                v.intercept = a + b * v.intercept;
+            }
+        }
+        m
+    }
+
     /// The same model in another scalar type.
     pub fn cast<U: Real>(&self) -> ProductModel<U> {
         match self {

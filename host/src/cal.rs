@@ -518,6 +518,8 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
                 .map(|s| s.id.clone())
                 .collect(),
             freqs_hz: Some(chosen.freqs_hz),
+            parent_id: None,
+            derivation: None,
         },
     );
     let im = fringe_calibration::fit::product::IntervalModel::of(&chosen);
@@ -1168,4 +1170,363 @@ mod tests {
         assert!(e.contains("--bulk-density-kg-m3"), "{e}");
         assert!(!dir.path().join("p.toml").exists(), "nothing written");
     }
+}
+
+/// Which correction `cal adjust` writes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum AdjustCorrection {
+    /// What the tests call for: slope and bias if the slope differs significantly from 1, else the bias if significant, else nothing.
+    Auto,
+    /// The bias alone, significant or not.
+    Bias,
+    /// Slope and bias (lab regressed on predicted), significant or not.
+    BiasSlope,
+}
+
+/// `fringe cal adjust`.
+#[derive(Debug, Clone, Args)]
+#[command(
+    after_help = "Examples:\n  fringe cal adjust --cal wheat-l2.toml --db line2.db --out wheat-l2-adj.toml\n  fringe cal predict --cal wheat-l2.toml --input grabs.csv --out pairs.csv\n  fringe cal adjust --cal wheat-l2.toml --pairs pairs.csv --out wheat-l2-adj.toml\nThen push the new file with `fringe cal push` like any other."
+)]
+pub struct AdjustArgs {
+    /// The calibration in force (TOML from `fringe cal fit` or an earlier adjust).
+    #[arg(long, value_name = "PRODUCT.toml")]
+    pub cal: PathBuf,
+    /// Lab pairs: a CSV with `moisture_pct` (lab) and `predicted_moisture_pct`
+    /// (as `cal predict` writes), or a reference-sample table (evaluated with --cal).
+    #[arg(
+        long,
+        value_name = "FILE.csv",
+        conflicts_with = "db",
+        required_unless_present = "db"
+    )]
+    pub pairs: Option<PathBuf>,
+    /// Take the lab grab samples and their inline readings from this database
+    /// (those since the calibration was pushed, when the records say).
+    #[arg(long, value_name = "FILE")]
+    pub db: Option<PathBuf>,
+    /// Device serial in the database [default: its first device].
+    #[arg(long)]
+    pub serial: Option<String>,
+    /// Where to write the adjusted calibration.
+    #[arg(long, value_name = "PRODUCT.toml")]
+    pub out: PathBuf,
+    /// Which correction to write.
+    #[arg(long, value_enum, default_value_t = AdjustCorrection::Auto)]
+    pub correct: AdjustCorrection,
+    /// Significance level of the bias and slope tests.
+    #[arg(long, default_value_t = 0.05)]
+    pub alpha: f64,
+    /// Print the result as one JSON object.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// Lab and predicted values of `cal adjust`'s pairs, with where they came from.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Pairs {
+    /// Lab moisture, %.
+    pub lab: Vec<f64>,
+    /// Predicted (inline) moisture, %.
+    pub predicted: Vec<f64>,
+    /// Where they came from, in words.
+    pub source: String,
+}
+
+fn pairs_from_csv(path: &Path, cal: &Path) -> anyhow::Result<Pairs> {
+    let text = std::fs::read(path).with_context(|| format!("reading {}", path.display()))?;
+    let mut rdr = csv::ReaderBuilder::new()
+        .trim(csv::Trim::All)
+        .from_reader(text.as_slice());
+    let header = rdr.headers()?.clone();
+    let col = |n: &str| header.iter().position(|h| h.eq_ignore_ascii_case(n));
+    let (lab_c, pred_c) = match (col("moisture_pct"), col("predicted_moisture_pct")) {
+        (Some(l), Some(p)) => (l, p),
+        _ => {
+            // A reference-sample table: evaluate it with the calibration.
+            let rows = predict(cal, path, 0.02, 0.95)?;
+            let (lab, predicted) = rows
+                .iter()
+                .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
+                .unzip();
+            return Ok(Pairs {
+                lab,
+                predicted,
+                source: format!("{} (evaluated with {})", path.display(), cal.display()),
+            });
+        }
+    };
+    let (mut lab, mut predicted) = (Vec::new(), Vec::new());
+    for rec in rdr.records() {
+        let rec = rec?;
+        let line = rec.position().map_or(0, |p| p.line());
+        let get = |c: usize, name: &str| -> anyhow::Result<Option<f64>> {
+            let t = rec.get(c).unwrap_or("");
+            if t.is_empty() {
+                return Ok(None);
+            }
+            let v: f64 = t
+                .parse()
+                .ok()
+                .filter(|v: &f64| v.is_finite())
+                .ok_or_else(|| crate::samples::SampleError::BadValue {
+                    file: path.to_path_buf(),
+                    line,
+                    column: c + 1,
+                    field: if name == "moisture_pct" {
+                        "moisture_pct"
+                    } else {
+                        "predicted_moisture_pct"
+                    },
+                    value: t.to_string(),
+                    expected: "a finite number",
+                })?;
+            Ok(Some(v))
+        };
+        if let (Some(l), Some(p)) = (get(lab_c, "moisture_pct")?, get(pred_c, "predicted")?) {
+            lab.push(l);
+            predicted.push(p);
+        }
+    }
+    Ok(Pairs {
+        lab,
+        predicted,
+        source: path.display().to_string(),
+    })
+}
+
+fn pairs_from_db(db: &Path, serial: Option<&str>, cal_id: &str) -> anyhow::Result<Pairs> {
+    let store = crate::store::Store::open(db)?;
+    let data = crate::analysis::load(&store, serial)?;
+    Ok(pairs_from_line(&data, cal_id, db))
+}
+
+/// Result of `cal adjust`.
+#[derive(Debug, Clone)]
+pub struct AdjustOutcome {
+    /// The tests.
+    pub tests: fringe_calibration::fit::adjust::BiasSlope,
+    /// The correction written (`None` when nothing was written).
+    pub applied: fringe_calibration::fit::adjust::Correction,
+    /// The new file, when one was written.
+    pub file: Option<ProductFile>,
+    /// Where the pairs came from.
+    pub source: String,
+}
+
+/// `fringe cal adjust` without printing.
+///
+/// # Errors
+/// Bad files, too few pairs, a database failure, or a write failure.
+pub fn adjust(args: &AdjustArgs) -> anyhow::Result<AdjustOutcome> {
+    let (file, _) = ProductFile::load(&args.cal)?;
+    let pairs = match (&args.pairs, &args.db) {
+        (Some(p), _) => pairs_from_csv(p, &args.cal)?,
+        (None, Some(db)) => pairs_from_db(db, args.serial.as_deref(), &file.id)?,
+        (None, None) => bail!("give the lab pairs with --pairs FILE.csv or --db FILE"),
+    };
+    adjust_with(args, pairs)
+}
+
+/// The lab pairs of a line's data (`fringe_host::analysis`): those since
+/// the calibration `cal_id` was pushed, when the records say.
+pub fn pairs_from_line(data: &crate::analysis::LineData, cal_id: &str, db: &Path) -> Pairs {
+    let since = data
+        .cals
+        .iter()
+        .filter(|c| c.3.new_id == cal_id)
+        .map(|c| c.1)
+        .max();
+    let (lab, predicted) = data
+        .lab
+        .iter()
+        .filter(|l| since.is_none_or(|t| l.time_ms >= t))
+        .filter_map(|l| Some((l.lab_pct, l.inline_pct?)))
+        .unzip();
+    Pairs {
+        lab,
+        predicted,
+        source: match since {
+            Some(_) => format!(
+                "lab grab samples of {} in {} since {cal_id} was pushed",
+                data.serial,
+                db.display()
+            ),
+            None => format!(
+                "every lab grab sample of {} in {} (no push of {cal_id} recorded there)",
+                data.serial,
+                db.display()
+            ),
+        },
+    }
+}
+
+/// `cal adjust` on pairs already gathered.
+///
+/// # Errors
+/// As [`adjust`].
+pub fn adjust_with(args: &AdjustArgs, pairs: Pairs) -> anyhow::Result<AdjustOutcome> {
+    use fringe_calibration::fit::adjust::{bias_slope, Correction};
+    let (file, wire) = ProductFile::load(&args.cal)?;
+    if pairs.lab.len() < 3 {
+        bail!(
+            "{}: {} lab pair(s) with both values; the bias and slope tests need at least 3 (take more grab samples)",
+            pairs.source,
+            pairs.lab.len()
+        );
+    }
+    let tests = bias_slope(&pairs.lab, &pairs.predicted, args.alpha)
+        .map_err(|e| anyhow::anyhow!("{}: {e}", pairs.source))?;
+    let applied = match args.correct {
+        AdjustCorrection::Auto => tests.recommended(),
+        AdjustCorrection::Bias => Correction::Bias,
+        AdjustCorrection::BiasSlope => Correction::BiasAndSlope,
+    };
+    if applied == Correction::None {
+        return Ok(AdjustOutcome {
+            tests,
+            applied,
+            file: None,
+            source: pairs.source,
+        });
+    }
+    let (a, b) = tests.map(applied);
+    let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| {
+        anyhow::anyhow!(
+            "{}: the device would refuse this calibration ({e:?})",
+            args.cal.display()
+        )
+    })?;
+    let model = cal.model.cast::<f64>().rescaled(a, b);
+    let (params, n) = model.to_params();
+    let map = |x: f32| (a + b * f64::from(x)) as f32;
+    let (lo, hi) = (map(wire.moisture_pct.min), map(wire.moisture_pct.max));
+    let made_s = (crate::store::now_unix_ms() / 1000).max(0) as u64;
+    let new_wire = ProductCal {
+        params: heapless::Vec::from_slice(&params[..n])
+            .map_err(|_| anyhow::anyhow!("adjusted model has too many parameters"))?,
+        moisture_pct: Range {
+            min: lo.min(hi),
+            max: lo.max(hi),
+        },
+        made_s,
+        ..wire.clone()
+    };
+    let words = match applied {
+        Correction::Bias => format!(
+            "bias {:+.3} % removed (t {:.2} vs {:.2}, {} pairs, alpha {})",
+            tests.bias, tests.bias_t, tests.bias_t_crit, tests.n, args.alpha
+        ),
+        _ => format!(
+            "lab = {a:.4} + {b:.4} x predicted (slope t {:.2} vs {:.2}, bias {:+.3} %, {} pairs, alpha {})",
+            tests.slope_t, tests.slope_t_crit, tests.bias, tests.n, args.alpha
+        ),
+    };
+    let mut source = file.source.clone();
+    source.parent_id = Some(file.id.clone());
+    source.derivation = Some(format!("{words}; pairs: {}", pairs.source));
+    let input_names: Vec<&str> = file.inputs.iter().map(|r| r.name.as_str()).collect();
+    let mut new_file =
+        ProductFile::from_wire(&new_wire, &input_names, file.statistics.clone(), source);
+    new_file.prediction = file.prediction.clone();
+    if let Some(p) = &mut new_file.prediction {
+        // Intervals scale with the slope.
+        p.residual_sd *= b.abs();
+        p.interval_sd *= b.abs();
+    }
+    new_file.save(&args.out)?;
+    Ok(AdjustOutcome {
+        tests,
+        applied,
+        file: Some(new_file),
+        source: pairs.source,
+    })
+}
+
+/// `fringe cal adjust`: tests, prints, and writes the corrected calibration
+/// when a correction applies.
+///
+/// # Errors
+/// As [`adjust`].
+pub fn run_adjust(args: &AdjustArgs) -> anyhow::Result<()> {
+    let o = adjust(args)?;
+    print_adjust(args, &o, &mut std::io::stdout().lock())
+}
+
+/// Prints a `cal adjust` outcome (text, or one JSON object with `--json`).
+///
+/// # Errors
+/// A failed write.
+pub fn print_adjust(
+    args: &AdjustArgs,
+    o: &AdjustOutcome,
+    w: &mut dyn std::io::Write,
+) -> anyhow::Result<()> {
+    use fringe_calibration::fit::adjust::Correction;
+    let t = &o.tests;
+    if args.json {
+        let v = json!({
+            "pairs": t.n,
+            "source": o.source,
+            "alpha": t.alpha,
+            "bias": {"value": t.bias, "ci": [t.bias_ci.0, t.bias_ci.1], "t": t.bias_t, "t_crit": t.bias_t_crit, "significant": t.bias_significant},
+            "slope": {"value": t.slope, "intercept": t.intercept, "se": t.slope_se, "ci": [t.slope_ci.0, t.slope_ci.1], "t": t.slope_t, "t_crit": t.slope_t_crit, "significant": t.slope_significant},
+            "sep": {"value": t.sep, "ci": [t.sep_ci.0, t.sep_ci.1]},
+            "applied": format!("{:?}", o.applied),
+            "written": o.file.as_ref().map(|f| json!({"file": args.out.display().to_string(), "id": f.id, "parent_id": f.source.parent_id})),
+        });
+        writeln!(w, "{v}")?;
+        return Ok(());
+    }
+    let conf = 100.0 * (1.0 - t.alpha);
+    writeln!(w, "{} lab pairs ({})", t.n, o.source)?;
+    writeln!(
+        w,
+        "  bias  {:+.3} % (predicted - lab), {conf:.0} % CI {:+.3}..{:+.3}; t {:.2} vs {:.2}: {}",
+        t.bias,
+        t.bias_ci.0,
+        t.bias_ci.1,
+        t.bias_t,
+        t.bias_t_crit,
+        if t.bias_significant {
+            "significant"
+        } else {
+            "not significant"
+        }
+    )?;
+    writeln!(
+        w,
+        "  slope {:.4} (lab on predicted), {conf:.0} % CI {:.4}..{:.4}; t {:.2} vs {:.2}: {}",
+        t.slope,
+        t.slope_ci.0,
+        t.slope_ci.1,
+        t.slope_t,
+        t.slope_t_crit,
+        if t.slope_significant {
+            "differs from 1"
+        } else {
+            "not different from 1"
+        }
+    )?;
+    writeln!(
+        w,
+        "  SEP   {:.3} %, {conf:.0} % CI {:.3}..{:.3}",
+        t.sep, t.sep_ci.0, t.sep_ci.1
+    )?;
+    match (&o.file, o.applied) {
+        (Some(f), _) => writeln!(
+            w,
+            "wrote {} (calibration id {}, parent {}): {}\npush it with `fringe cal push` like any other",
+            args.out.display(),
+            f.id,
+            f.source.parent_id.as_deref().unwrap_or("-"),
+            f.source.derivation.as_deref().unwrap_or("")
+        )?,
+        (None, Correction::None) => writeln!(
+            w,
+            "neither bias nor slope is significant: no correction, nothing written"
+        )?,
+        (None, _) => {}
+    }
+    Ok(())
 }

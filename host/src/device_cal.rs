@@ -511,6 +511,8 @@ pub fn cell_calibration(
             action: "cell".into(),
             statistics: None,
             verification: Some(words),
+            parent_id: None,
+            derivation: None,
         },
     )?;
     Ok(CellOutcome {
@@ -788,6 +790,8 @@ pub fn push(
             action: "push".into(),
             statistics: Some(file.statistics.clone()),
             verification: Some(format!("read back from slot {slot}: id {new}")),
+            parent_id: file.source.parent_id.clone(),
+            derivation: file.source.derivation.clone(),
         },
     )?;
     Ok(PushOutcome {
@@ -857,6 +861,8 @@ pub fn select(
             action: "select".into(),
             statistics: None,
             verification: Some(format!("device reports slot {} active", s.slot)),
+            parent_id: None,
+            derivation: None,
         },
     )?;
     Ok((s.slot, s.id))

@@ -89,6 +89,13 @@ pub struct Source {
     /// predict` check them). Absent in files written before it was kept.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub freqs_hz: Option<[f64; 2]>,
+    /// The calibration this one was derived from (`cal adjust`), 8 hex
+    /// digits; `cal push` names it in the audit record.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub parent_id: Option<String>,
+    /// How it was derived from its parent, in words.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub derivation: Option<String>,
 }
 
 /// Whether two frequency pairs agree to 0.5 % (the device's own tolerance

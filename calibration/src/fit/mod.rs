@@ -15,6 +15,7 @@
 //! (`calibration/tests/nist_strd.rs`). Calibration statistics and
 //! cross-validation live in [`crate::stats`].
 
+pub mod adjust;
 pub mod chemo;
 pub mod gate;
 mod law;
