@@ -7,12 +7,14 @@
 //! cross-validation) for 60 and 200 samples.
 //!
 //! `cargo run --release -p fringe-calibration --example zoo_bench [-- --quick]`
-//! (`--quick`: 60 samples only). Seed: FRINGE_SEED (default 1).
+//! (`--quick`: 60 samples only; `--density`: the density table only). Seed:
+//! FRINGE_SEED (default 1).
 #[path = "../tests/common/baseline.rs"]
 mod baseline;
 
 use fringe_calibration::fit::product::{
-    compare_models, Candidate, CompareOptions, ProductFit, RelaxationOptions, Sample, SingleOptions,
+    compare_models, fit_multivariate, Candidate, CompareOptions, MultivariateOptions, ProductFit,
+    RelaxationOptions, Sample, SingleOptions,
 };
 use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS};
 use fringe_calibration::stats::Folds;
@@ -45,6 +47,75 @@ fn errors(f: &ProductFit, val: &[Sample]) -> (Vec<f64>, usize, usize) {
     (e, missing, inside)
 }
 
+/// The effect of density variation: for each product whose bulk density
+/// varies, at 1/20 MHz, the chosen model's validation SEP with the density
+/// varying as the product says and with it held at its nominal value, and
+/// the ridge model with and without Trabelsi-Kraszewski-Nelson's
+/// density-independent psi (on fresh samples and at twice the calibrated
+/// salt).
+fn density_table(seed: u64) {
+    println!();
+    println!("| product | density varies | chosen, density varying | chosen, density fixed | ridge without psi | ridge with psi | ridge 2x salt without / with psi |");
+    println!("| --- | --- | --- | --- | --- | --- | --- |");
+    for f in Family::all().into_iter().filter(|f| f.density_variation > 0.0) {
+        let pair = FREQ_PAIRS[0];
+        let fixed = Family {
+            density_variation: 0.0,
+            ..f
+        };
+        let mut cells = Vec::new();
+        for g in [f, fixed] {
+            let opts = CompareOptions {
+                single: SingleOptions::default(),
+                relaxation: Some(RelaxationOptions {
+                    refit_nonlinear_in_cv: true,
+                    ..RelaxationOptions::new(g.bulk_density_kg_m3, g.particle_density_kg_m3)
+                }),
+                eps_sd: g.eps_noise_sd.max(1e-3),
+                folds: Folds::LeaveOneOut,
+            };
+            let train = g.samples(&Draw::new(60, pair), seed);
+            let val = g.samples(&Draw::new(200, pair), seed + 1000);
+            cells.push(match compare_models(&train, &opts) {
+                Ok(c) => format!("{} {:.3}", c.chosen.name(), sep(&errors(c.chosen_fit(), &val).0)),
+                Err(e) => format!("none: {e}"),
+            });
+        }
+        let train = f.samples(&Draw::new(60, pair), seed);
+        let val = f.samples(&Draw::new(200, pair), seed + 1000);
+        let salty = f.samples(
+            &Draw {
+                water_sigma25_s_m: Some((f.water_sigma25_s_m.1, 2.0 * f.water_sigma25_s_m.1)),
+                ..Draw::new(200, pair)
+            },
+            seed + 3000,
+        );
+        let mut ridge = Vec::new();
+        for psi in [false, true] {
+            let o = MultivariateOptions {
+                eps_sd: f.eps_noise_sd.max(1e-3),
+                density_independent: psi,
+                ..MultivariateOptions::default()
+            };
+            ridge.push(match fit_multivariate(&train, &o) {
+                Ok(fit) => (sep(&errors(&fit, &val).0), sep(&errors(&fit, &salty).0)),
+                Err(_) => (f64::NAN, f64::NAN),
+            });
+        }
+        println!(
+            "| {} | +/-{:.0} % | {} | {} | {:.3} | {:.3} | {:.3} / {:.3} |",
+            f.name,
+            100.0 * f.density_variation,
+            cells[0],
+            cells[1],
+            ridge[0].0,
+            ridge[1].0,
+            ridge[0].1,
+            ridge[1].1
+        );
+    }
+}
+
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
     let seed: u64 = std::env::var("FRINGE_SEED")
@@ -52,6 +123,10 @@ fn main() {
         .and_then(|s| s.parse().ok())
         .unwrap_or(1);
     println!("seed {seed}");
+    if std::env::args().any(|a| a == "--density") {
+        density_table(seed);
+        return;
+    }
     println!("| product | f1/f2 MHz | single | relaxation | PLS | ridge | baseline | chosen | bias | coverage 95 % | T+10 C chosen / baseline | 2x sigma chosen / baseline | fit 60 | fit 200 |");
     println!(
         "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"
