@@ -7,14 +7,14 @@
 //! cross-validation) for 60 and 200 samples.
 //!
 //! `cargo run --release -p fringe-calibration --example zoo_bench [-- --quick]`
-//! (`--quick`: 60 samples only; `--density`: the density table only). Seed:
-//! FRINGE_SEED (default 1).
+//! (`--quick`: 60 samples only; `--density`: the density table only;
+//! `--timing`: each model's fit time). Seed: FRINGE_SEED (default 1).
 #[path = "../tests/common/baseline.rs"]
 mod baseline;
 
 use fringe_calibration::fit::product::{
-    compare_models, fit_multivariate, Candidate, CompareOptions, MultivariateOptions, ProductFit,
-    RelaxationOptions, Sample, SingleOptions,
+    compare_models, fit_multivariate, fit_relaxation, fit_single, Candidate, CompareOptions,
+    MultivariateOptions, MvMethod, ProductFit, RelaxationOptions, Sample, SingleOptions,
 };
 use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS};
 use fringe_calibration::stats::Folds;
@@ -57,7 +57,10 @@ fn density_table(seed: u64) {
     println!();
     println!("| product | density varies | chosen, density varying | chosen, density fixed | ridge without psi | ridge with psi | ridge 2x salt without / with psi |");
     println!("| --- | --- | --- | --- | --- | --- | --- |");
-    for f in Family::all().into_iter().filter(|f| f.density_variation > 0.0) {
+    for f in Family::all()
+        .into_iter()
+        .filter(|f| f.density_variation > 0.0)
+    {
         let pair = FREQ_PAIRS[0];
         let fixed = Family {
             density_variation: 0.0,
@@ -77,7 +80,11 @@ fn density_table(seed: u64) {
             let train = g.samples(&Draw::new(60, pair), seed);
             let val = g.samples(&Draw::new(200, pair), seed + 1000);
             cells.push(match compare_models(&train, &opts) {
-                Ok(c) => format!("{} {:.3}", c.chosen.name(), sep(&errors(c.chosen_fit(), &val).0)),
+                Ok(c) => format!(
+                    "{} {:.3}",
+                    c.chosen.name(),
+                    sep(&errors(c.chosen_fit(), &val).0)
+                ),
                 Err(e) => format!("none: {e}"),
             });
         }
@@ -116,6 +123,83 @@ fn density_table(seed: u64) {
     }
 }
 
+/// Time of each model's fit with its cross-validation, 200 samples, leave-
+/// one-out and 10-fold (the median of 3 runs).
+fn timing_table(seed: u64) {
+    println!();
+    println!("| product, 200 samples, 1/20 MHz | folds | single | relaxation | PLS | ridge |");
+    println!("| --- | --- | --- | --- | --- | --- |");
+    for f in [Family::grain(), Family::sand(), Family::food_powder()] {
+        let train = f.samples(&Draw::new(200, FREQ_PAIRS[0]), seed);
+        for folds in [Folds::LeaveOneOut, Folds::KFold(10)] {
+            let time = |run: &dyn Fn() -> bool| -> String {
+                let mut t: Vec<f64> = (0..3)
+                    .map(|_| {
+                        let t0 = Instant::now();
+                        let ok = run();
+                        let dt = t0.elapsed().as_secs_f64() * 1e3;
+                        if ok {
+                            dt
+                        } else {
+                            f64::NAN
+                        }
+                    })
+                    .collect();
+                t.sort_by(f64::total_cmp);
+                if t[1].is_nan() {
+                    "refused".into()
+                } else {
+                    format!("{:.0} ms", t[1])
+                }
+            };
+            let single = time(&|| {
+                fit_single(
+                    &train,
+                    &SingleOptions {
+                        folds,
+                        ..SingleOptions::default()
+                    },
+                )
+                .is_ok()
+            });
+            let relax = time(&|| {
+                fit_relaxation(
+                    &train,
+                    &RelaxationOptions {
+                        refit_nonlinear_in_cv: true,
+                        folds,
+                        ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+                    },
+                )
+                .is_ok()
+            });
+            let mv = |method| {
+                time(&|| {
+                    fit_multivariate(
+                        &train,
+                        &MultivariateOptions {
+                            method,
+                            folds,
+                            ..MultivariateOptions::default()
+                        },
+                    )
+                    .is_ok()
+                })
+            };
+            println!(
+                "| {} | {} | {single} | {relax} | {} | {} |",
+                f.name,
+                match folds {
+                    Folds::LeaveOneOut => "leave-one-out".to_string(),
+                    Folds::KFold(k) => format!("{k}-fold"),
+                },
+                mv(MvMethod::Pls),
+                mv(MvMethod::Ridge)
+            );
+        }
+    }
+}
+
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
     let seed: u64 = std::env::var("FRINGE_SEED")
@@ -127,9 +211,13 @@ fn main() {
         density_table(seed);
         return;
     }
-    println!("| product | f1/f2 MHz | single | relaxation | PLS | ridge | baseline | chosen | bias | coverage 95 % | T+10 C chosen / baseline | 2x sigma chosen / baseline | fit 60 | fit 200 |");
+    if std::env::args().any(|a| a == "--timing") {
+        timing_table(seed);
+        return;
+    }
+    println!("| product | f1/f2 MHz | single | relaxation | PLS | ridge | baseline | chosen | bias | coverage 95 % | T+10 C chosen / baseline | 2x sigma chosen / baseline | fit 60 | fit 200 | fit 200, 10-fold |");
     println!(
-        "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"
+        "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"
     );
     for f in Family::all() {
         for pair in FREQ_PAIRS {
@@ -146,13 +234,22 @@ fn main() {
             let t0 = Instant::now();
             let cmp = compare_models(&train, &opts);
             let t60 = t0.elapsed().as_secs_f64();
-            let t200 = if quick {
-                f64::NAN
+            let (t200, t200k) = if quick {
+                (f64::NAN, f64::NAN)
             } else {
                 let big = f.samples(&Draw::new(200, pair), seed + 7);
                 let t0 = Instant::now();
                 let _ = compare_models(&big, &opts);
-                t0.elapsed().as_secs_f64()
+                let a = t0.elapsed().as_secs_f64();
+                let t0 = Instant::now();
+                let _ = compare_models(
+                    &big,
+                    &CompareOptions {
+                        folds: Folds::KFold(10),
+                        ..opts
+                    },
+                );
+                (a, t0.elapsed().as_secs_f64())
             };
             let val = f.samples(&Draw::new(200, pair), seed + 1000);
             let hot = f.samples(
@@ -220,7 +317,7 @@ fn main() {
                 ),
             };
             println!(
-                "| {} | {}/{} | {} | {} | {} | {} | {:.3} | {} | {} | {} | {} | {} | {:.2} s | {:.2} s |",
+                "| {} | {}/{} | {} | {} | {} | {} | {:.3} | {} | {} | {} | {} | {} | {:.2} s | {:.2} s | {:.0} ms |",
                 f.name,
                 pair[0] / 1e6,
                 pair[1] / 1e6,
@@ -235,7 +332,8 @@ fn main() {
                 hot_s,
                 salty_s,
                 t60,
-                t200
+                t200,
+                1e3 * t200k
             );
         }
     }

@@ -4,7 +4,8 @@
 //! Random tests take `FRINGE_SEED` (default 1) and print it on failure.
 
 use fringe_calibration::fit::product::{
-    fit_relaxation, fit_single, ProductFitError, RelaxationOptions, SingleOptions,
+    fit_multivariate, fit_relaxation, fit_single, MultivariateOptions, MvMethod, ProductFitError,
+    RelaxationOptions, SingleOptions,
 };
 use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS};
 
@@ -33,7 +34,9 @@ fn is_named_refusal(e: &ProductFitError) -> bool {
 }
 
 /// Property over products x frequency pairs x two seeds (60 samples each):
-/// every fit finishes or refuses with a reason naming what is at fault;
+/// every fit (single-frequency, relaxation, ridge, PLS) finishes or refuses
+/// with a reason naming what is at fault (only the relaxation model may
+/// refuse, naming the samples it cannot use or its undetermined law);
 /// never a NaN in a design matrix, never a failed least-squares stage
 /// passed through to the user (issue 11, item 2).
 #[test]
@@ -46,6 +49,17 @@ fn every_fit_finishes_or_names_its_refusal() {
                 let samples = f.samples(&Draw::new(60, pair), seed);
                 let single = fit_single(&samples, &SingleOptions::default());
                 let relax = fit_relaxation(&samples, &relax_opts(&f));
+                let mv = |method| {
+                    fit_multivariate(
+                        &samples,
+                        &MultivariateOptions {
+                            method,
+                            ..MultivariateOptions::default()
+                        },
+                    )
+                    .err()
+                };
+                let (ridge, pls) = (mv(MvMethod::Ridge), mv(MvMethod::Pls));
                 if let Ok(r) = &relax {
                     println!(
                         "FRINGE_SEED={seed} {} {:?}: relaxation SEP {:.3} with {} excluded{}",
@@ -56,7 +70,12 @@ fn every_fit_finishes_or_names_its_refusal() {
                         if r.notes.is_empty() { "" } else { " (notes)" }
                     );
                 }
-                for (what, r) in [("single", single.err()), ("relaxation", relax.err())] {
+                for (what, r) in [
+                    ("single", single.err()),
+                    ("relaxation", relax.err()),
+                    ("ridge", ridge),
+                    ("PLS", pls),
+                ] {
                     if let Some(e) = r {
                         if !is_named_refusal(&e) {
                             failures.push(format!(

@@ -210,6 +210,25 @@ impl PlsFit {
 /// values, `n_components` of 0 or above the number of columns, or a
 /// component with no variance left to explain.
 pub fn pls1(x: &DMatrix<f64>, y: &[f64], n_components: usize) -> Result<PlsFit, FitError> {
+    pls1_path(x, y, n_components)?
+        .pop()
+        .ok_or(FitError::RankDeficient {
+            rank: 0,
+            params: n_components,
+        })
+}
+
+/// PLS1 fits with 1, 2, ..., `n_components` components from one NIPALS run
+/// (the k-component model uses the first k weights and loadings), so
+/// choosing the number of components costs one fit.
+///
+/// # Errors
+/// As [`pls1`].
+pub fn pls1_path(
+    x: &DMatrix<f64>,
+    y: &[f64],
+    n_components: usize,
+) -> Result<Vec<PlsFit>, FitError> {
     check(x, y, 3)?;
     let (n, p) = x.shape();
     if n_components == 0 || n_components > p {
@@ -255,21 +274,25 @@ pub fn pls1(x: &DMatrix<f64>, y: &[f64], n_components: usize) -> Result<PlsFit, 
         q[k] = qk;
         score_ss.push(tt);
     }
-    // R = W (P'W)^-1.
-    let ptw = pl.transpose() * &w;
-    let inv = ptw.try_inverse().ok_or(FitError::RankDeficient {
-        rank: 0,
-        params: n_components,
-    })?;
-    let rotations = &w * inv;
-    let coef_z: Vec<f64> = (&rotations * &q).iter().map(|c| c * sy).collect();
-    let model = scaling.unscale(my, &coef_z);
-    Ok(PlsFit {
-        model,
-        scaling,
-        rotations,
-        score_ss,
-    })
+    let mut out = Vec::with_capacity(n_components);
+    for k in 1..=n_components {
+        // R = W (P'W)^-1 over the first k components.
+        let wk = w.columns(0, k).into_owned();
+        let ptw = pl.columns(0, k).transpose() * &wk;
+        let inv = ptw.try_inverse().ok_or(FitError::RankDeficient {
+            rank: k - 1,
+            params: n_components,
+        })?;
+        let rotations = wk * inv;
+        let coef_z: Vec<f64> = (&rotations * q.rows(0, k)).iter().map(|c| c * sy).collect();
+        out.push(PlsFit {
+            model: scaling.unscale(my, &coef_z),
+            scaling: scaling.clone(),
+            rotations,
+            score_ss: score_ss[..k].to_vec(),
+        });
+    }
+    Ok(out)
 }
 
 /// Ridge solutions on standardised columns for many penalties from one SVD.
@@ -407,6 +430,25 @@ mod tests {
             assert!((m.intercept - 1.5).abs() < 1e-9, "{m:?}");
             for (c, want) in m.coef.iter().zip([2.0, -0.5, 0.25]) {
                 assert!((c - want).abs() < 1e-9, "{m:?}");
+            }
+        }
+    }
+
+    /// Each member of the PLS path equals a separate fit with that many
+    /// components.
+    #[test]
+    fn pls_path_equals_separate_fits() {
+        let x = DMatrix::from_fn(20, 4, |i, j| {
+            ((i * 5 + j * 7) % 9) as f64 + 0.3 * (i * j) as f64
+        });
+        let y: Vec<f64> = (0..20)
+            .map(|i| x[(i, 0)] - 0.5 * x[(i, 3)] + (i % 3) as f64)
+            .collect();
+        let path = pls1_path(&x, &y, 4).unwrap();
+        for (k, f) in path.iter().enumerate() {
+            let one = pls1(&x, &y, k + 1).unwrap();
+            for (a, b) in f.model.coef.iter().zip(&one.model.coef) {
+                assert!((a - b).abs() < 1e-12, "k {}: {a} {b}", k + 1);
             }
         }
     }

@@ -1864,7 +1864,7 @@ fn mv_core(
     method: MvMethod,
     tkn: bool,
 ) -> Result<MvCore, ProductFitError> {
-    use super::chemo::{alpha_grid, pls1, RidgePath};
+    use super::chemo::{alpha_grid, pls1, pls1_path, RidgePath};
     let stage = "multivariate regression";
     let ls = |error| ProductFitError::LeastSquares { stage, error };
     let proto = mv_prototype(samples, checked, rows);
@@ -1913,26 +1913,30 @@ fn mv_core(
                 let folds = Folds::KFold(5.min(n))
                     .split(n)
                     .map_err(ProductFitError::Stats)?;
-                let mut pick: Option<(f64, usize)> = None;
-                for k in 1..=kmax {
-                    let mut press = 0.0;
-                    for test in &folds {
-                        let train: Vec<usize> = (0..n).filter(|i| !test.contains(i)).collect();
-                        let xt = DMatrix::from_fn(train.len(), p, |i, j| x[(train[i], j)]);
-                        let yt: Vec<f64> = train.iter().map(|i| y[*i]).collect();
-                        let Ok(f) = pls1(&xt, &yt, k) else {
-                            press = f64::INFINITY;
-                            break;
+                // PRESS of every number of components from one PLS path per fold.
+                let mut press = vec![0.0f64; kmax];
+                for test in &folds {
+                    let train: Vec<usize> = (0..n).filter(|i| !test.contains(i)).collect();
+                    let xt = DMatrix::from_fn(train.len(), p, |i, j| x[(train[i], j)]);
+                    let yt: Vec<f64> = train.iter().map(|i| y[*i]).collect();
+                    let path = pls1_path(&xt, &yt, kmax).unwrap_or_default();
+                    for (k, pr) in press.iter_mut().enumerate() {
+                        let Some(f) = path.get(k) else {
+                            *pr = f64::INFINITY;
+                            continue;
                         };
                         for i in test {
                             let row: Vec<f64> = (0..p).map(|j| x[(*i, j)]).collect();
-                            press += (y[*i] - f.model.predict(&row)).powi(2);
+                            *pr += (y[*i] - f.model.predict(&row)).powi(2);
                         }
                     }
-                    if press.is_finite() && pick.is_none_or(|(b, _)| press < b) {
-                        pick = Some((press, k));
-                    }
                 }
+                let pick = press
+                    .iter()
+                    .enumerate()
+                    .filter(|(_, v)| v.is_finite())
+                    .min_by(|a, b| a.1.total_cmp(b.1))
+                    .map(|(k, v)| (*v, k + 1));
                 let (press, k) = pick.ok_or(ls(FitError::RankDeficient { rank: 0, params: p }))?;
                 let f = pls1(&x, &y, k).map_err(ls)?;
                 let lev = f.leverage_matrix(n);
