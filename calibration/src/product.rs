@@ -330,7 +330,7 @@ const QUAD: [(usize, usize); 15] = [
 
 /// Trabelsi, Kraszewski and Nelson's density-independent calibration
 /// function psi = sqrt(eps'' / (eps' (a_f eps' - eps''))) (IEEE Trans.
-/// Instrum. Meas. 47(3):613-622, 1998; REFERENCES.md 11, from memory),
+/// Instrum. Meas. 47(3):613-622, 1998; docs/REFERENCES.md §11, from memory),
 /// with its derivatives w.r.t. (eps', eps''). NaN where
 /// a_f eps' <= eps'' (outside the function's domain).
 pub fn tkn_psi<T: Real>(a_f: T, eps_re: T, eps_loss: T) -> (T, T, T) {

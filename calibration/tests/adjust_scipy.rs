@@ -1,4 +1,5 @@
-//! ISO 12099-style bias and slope tests (`fit::adjust`) on a worked example
+//! ISO 12099-style bias and slope tests (`fit::adjust`, docs/REFERENCES.md §11.4)
+//! on a worked example
 //! against SciPy 1.17.1: `tests/data/scipy/bias_slope_reference.json`, made
 //! once by `tests/data/scipy/make_bias_slope_reference.py` (versions in the
 //! file; pinned in tests/python/requirements.txt). An outside check: SciPy's

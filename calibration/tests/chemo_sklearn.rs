@@ -1,4 +1,5 @@
-//! Ridge and PLS1 against scikit-learn 1.9.1 on a small committed table:
+//! Ridge and PLS1 against scikit-learn 1.9.1 (docs/REFERENCES.md §11.1-11.3)
+//! on a small committed table:
 //! `tests/data/sklearn/chemo_reference.json`, made once by
 //! `tests/data/sklearn/make_chemo_reference.py` (versions recorded in the
 //! file; pinned in tests/python/requirements.txt). An outside check: the

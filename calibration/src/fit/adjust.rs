@@ -1,6 +1,6 @@
 //! Keeping a calibration right over time (feature `fit`): bias and slope of
 //! a calibration against new lab pairs, with the significance tests of ISO
-//! 12099 (its statistics apply to any secondary method; REFERENCES.md 11,
+//! 12099 (its statistics apply to any secondary method; docs/REFERENCES.md §11,
 //! from memory: check the standard's worked example before relying on the
 //! exact wording), and the corrected calibration.
 //!

@@ -29,7 +29,7 @@
 //!    their own there (Wagner 1914), no separate term is added.
 //! 5. **Conductivity of the free water** at 25 C, sigma_w25 (its salt), with
 //!    temperature either linear, 1.92 %/K (KCl standards, Wu, Koch and Pratt
-//!    1991, REFERENCES.md 3), or Arrhenius, exp(-E_a/R (1/T - 1/298.15 K))
+//!    1991, docs/REFERENCES.md §3), or Arrhenius, exp(-E_a/R (1/T - 1/298.15 K))
 //!    (ionic mobility in water; activation energies invented, of the order
 //!    of water's viscous flow, about 15-20 kJ/mol, from memory).
 //! 6. **Bulk conductivity** (not for Maxwell Garnett): Archie's law
