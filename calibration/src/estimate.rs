@@ -7,6 +7,9 @@
 //! - Relaxation model: [`invert`] -> (eps_hf, d_eps, sigma) with covariance
 //!   C; u^2 = g^T C g + SEC^2 with g the moisture gradient
 //!   ([`RelaxationModel::gradient`]).
+//! - Multivariate model: moisture from the features of both channels;
+//!   u^2 = sum_k (d moisture/d e_k sd_k)^2 + SEC^2 over eps' and eps'' of
+//!   both frequencies ([`MultivariateModel::moisture_and_gradient`]).
 //!
 //! No calibration, non-finite permittivity (an uncalibrated cell reports
 //! NaN) or a failed inversion give `moisture_pct: None` and say why in
@@ -15,6 +18,7 @@
 //! still gives the moisture, flagged.
 //!
 //! [`RelaxationModel::gradient`]: crate::product::RelaxationModel::gradient
+//! [`MultivariateModel::moisture_and_gradient`]: crate::product::MultivariateModel::moisture_and_gradient
 
 use crate::cell::{admittance_to_permittivity, CellConstants, CellError};
 use crate::invert::{invert, Inversion, InvertError, InvertOptions, Observation};
@@ -189,6 +193,38 @@ pub fn estimate<T: Real>(
                 }
             }
             (rm.moisture_pct(&p, t), var, Some(inv))
+        }
+        ProductModel::Multivariate(mv) => {
+            for ch in input.channels.iter() {
+                if !(ch.eps_re.is_finite() && ch.eps_loss.is_finite() && ch.freq_hz.is_finite()) {
+                    return Estimate::none(
+                        EstimateFlags::NOT_CALIBRATED,
+                        Failure::InvalidInput,
+                        None,
+                    );
+                }
+            }
+            let [c0, c1] = input.channels;
+            let e = [c0.eps_re, c0.eps_loss, c1.eps_re, c1.eps_loss];
+            for (r, x) in ranges.iter().zip(e) {
+                if !r.contains(x) {
+                    flags |= EstimateFlags::OUT_OF_RANGE;
+                }
+            }
+            let (m, g) = mv.moisture_and_gradient(e, t);
+            let mut var = T::zero();
+            for (k, gk) in g.iter().enumerate() {
+                let d = *gk * input.channels[k / 2].sd;
+                var += d * d;
+            }
+            if !var.is_finite() {
+                return Estimate::none(
+                    flags | EstimateFlags::OUT_OF_RANGE,
+                    Failure::NonFinite,
+                    None,
+                );
+            }
+            (m, var, None)
         }
     };
     if !m.is_finite() {

@@ -12,9 +12,19 @@
 //!   Maryott 1956); then
 //!   `moisture = p0 + p1 m + p2 m^2 + p3 m^3 + c_t (t - t_ref) + c_s ln(sigma / sigma_ref)`.
 //!
-//! Both are linear in their coefficients over the features returned by
-//! [`SingleFrequencyModel::features`] and [`RelaxationModel::features`]; the
-//! host fit regresses on exactly those features, so device and host agree.
+//! - **Multivariate** (chemometrics on physically chosen features of both
+//!   frequencies, [`MultivariateModel`]): `moisture = b0 + sum_k b_k x_k`
+//!   over the 23 features of [`MultivariateModel::features`] (log eps' and
+//!   log eps'' at each frequency, temperature, a water index per frequency
+//!   compensated by water's permittivity at the product temperature,
+//!   Trabelsi, Kraszewski and Nelson's density-independent function at the
+//!   higher frequency, and the squares and products of the first five); the
+//!   host fits the coefficients by ridge or PLS.
+//!
+//! All three are linear in their coefficients over the features returned by
+//! [`SingleFrequencyModel::features`], [`RelaxationModel::features`] and
+//! [`MultivariateModel::features`]; the host fit regresses on exactly those
+//! features, so device and host agree.
 //!
 //! # Flat parameter layout (`fringe_protocol::ProductCal::params`, f32)
 //!
@@ -29,11 +39,16 @@
 //!  [2] fr_ref_hz (> 0)         [3] sigma_ref_s_m (> 0)
 //!  [4] fr_exponent p           [5] fr_temp_coeff_per_c
 //!  [6] mixing exponent a (0..=1; 0 logarithmic, 0.5 CRIM)
-//!  [7] eps_dry (>= 1)          [8] particle_density_kg_m3 (> 0)
+//!  [7] eps_dry (>= 1)          [8] particle_density_kg_m3 (0 < rho <= 5000)
 //!  [9] bulk_density_kg_m3 (> 0, below the particle density and 1000)
 //!  [10] t_ref_c (of the c_t term and of the law's c_T)
 //!  [11] p0 [12] p1 [13] p2 [14] p3  (% per m^k)
 //!  [15] c_t (% per K)          [16] c_s (% per unit ln(sigma/sigma_ref))
+//!
+//! Multivariate, 27 values:
+//!  [0] layout version (1)      [1] t_ref_c
+//!  [2] a_f (> 0; Trabelsi-Kraszewski-Nelson constant at the higher frequency)
+//!  [3] b0 (%)                  [4..27] b_0..b_22 (% per feature unit)
 //! ```
 //!
 //! Valid ranges and the SEC travel beside the params (as in
@@ -48,7 +63,7 @@ use crate::water::static_permittivity_mm;
 use core::fmt;
 
 /// Most parameters in the flat layout (`fringe_protocol::MAX_CAL_PARAMS`).
-pub const MAX_PARAMS: usize = 24;
+pub const MAX_PARAMS: usize = 32;
 /// Most model inputs with a valid range (`fringe_protocol::MAX_CAL_INPUTS`).
 pub const MAX_INPUTS: usize = 6;
 /// Current layout version (`params[0]`).
@@ -57,6 +72,10 @@ pub const LAYOUT_VERSION: f32 = 1.0;
 pub const SINGLE_LEN: usize = 8;
 /// Length of the relaxation layout.
 pub const RELAXATION_LEN: usize = 17;
+/// Number of features of the multivariate model.
+pub const MV_FEATURES: usize = 23;
+/// Length of the multivariate layout.
+pub const MULTIVARIATE_LEN: usize = 4 + MV_FEATURES;
 
 /// Which model (mirrors `fringe_protocol::ModelKind`).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -65,6 +84,8 @@ pub enum ModelKind {
     SingleFrequency,
     /// [`RelaxationModel`].
     Relaxation,
+    /// [`MultivariateModel`].
+    Multivariate,
 }
 
 /// Valid range of one quantity (inclusive).
@@ -282,13 +303,172 @@ impl<T: Real> RelaxationModel<T> {
     }
 }
 
-/// A product model of either kind.
+/// Floor added to eps'' before its logarithm (and in the density-independent
+/// function), so a nearly lossless product gives finite features whose
+/// noise stays bounded.
+pub const LOSS_FLOOR: f64 = 0.01;
+
+/// The base features whose squares and products the multivariate model
+/// uses, as index pairs into the first five features.
+const QUAD: [(usize, usize); 15] = [
+    (0, 0),
+    (0, 1),
+    (0, 2),
+    (0, 3),
+    (0, 4),
+    (1, 1),
+    (1, 2),
+    (1, 3),
+    (1, 4),
+    (2, 2),
+    (2, 3),
+    (2, 4),
+    (3, 3),
+    (3, 4),
+    (4, 4),
+];
+
+/// Trabelsi, Kraszewski and Nelson's density-independent calibration
+/// function psi = sqrt(eps'' / (eps' (a_f eps' - eps''))) (IEEE Trans.
+/// Instrum. Meas. 47(3):613-622, 1998; docs/REFERENCES.md §11, from memory),
+/// with its derivatives w.r.t. (eps', eps''). NaN where
+/// a_f eps' <= eps'' (outside the function's domain).
+pub fn tkn_psi<T: Real>(a_f: T, eps_re: T, eps_loss: T) -> (T, T, T) {
+    let d = eps_re * (a_f * eps_re - eps_loss);
+    if !(d > T::zero() && eps_loss >= T::zero()) {
+        let nan = T::c(f64::NAN);
+        return (nan, nan, nan);
+    }
+    let g = eps_loss / d;
+    let psi = T::sqrt(g);
+    if !(psi > T::zero()) {
+        return (psi, T::zero(), T::zero());
+    }
+    // dg/de' = -l (2 a e' - l) / D^2, dg/dl = a e'^2 / D^2.
+    let d2 = d * d;
+    let dg_de = -eps_loss * (T::c(2.0) * a_f * eps_re - eps_loss) / d2;
+    let dg_dl = a_f * eps_re * eps_re / d2;
+    let h = T::c(0.5) / psi;
+    (psi, dg_de * h, dg_dl * h)
+}
+
+/// Multivariate (chemometric) model on physically chosen features.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct MultivariateModel<T> {
+    /// Reference temperature of the temperature feature, C.
+    pub t_ref_c: T,
+    /// Trabelsi-Kraszewski-Nelson constant a_f at the higher frequency (> 0).
+    pub a_f: T,
+    /// Intercept b0, %.
+    pub intercept: T,
+    /// Coefficients of the features, in [`MultivariateModel::FEATURE_NAMES`] order.
+    pub coeffs: [T; MV_FEATURES],
+}
+
+impl<T: Real> MultivariateModel<T> {
+    /// Feature names, in order (1 lower frequency, 2 higher; dt =
+    /// (t - t_ref)/10 K; w = water index; psi2 = density-independent
+    /// function at the higher frequency).
+    pub const FEATURE_NAMES: [&'static str; MV_FEATURES] = [
+        "ln_e1",
+        "ln_e2",
+        "ln_l1",
+        "ln_l2",
+        "dt",
+        "w2",
+        "w1",
+        "psi2",
+        "ln_e1^2",
+        "ln_e1*ln_e2",
+        "ln_e1*ln_l1",
+        "ln_e1*ln_l2",
+        "ln_e1*dt",
+        "ln_e2^2",
+        "ln_e2*ln_l1",
+        "ln_e2*ln_l2",
+        "ln_e2*dt",
+        "ln_l1^2",
+        "ln_l1*ln_l2",
+        "ln_l1*dt",
+        "ln_l2^2",
+        "ln_l2*dt",
+        "dt^2",
+    ];
+
+    /// The features of a reading and their derivatives w.r.t.
+    /// `(eps'_1, eps''_1, eps'_2, eps''_2)` (`e` in that order):
+    ///
+    /// - 0-3: ln eps'_1, ln eps'_2, ln(eps''_1 + f), ln(eps''_2 + f), f = [`LOSS_FLOOR`];
+    /// - 4: dt = (t - t_ref) / 10 K;
+    /// - 5, 6: water index w_k = (sqrt(eps'_k) - 1) / (sqrt(eps_w(t)) - 1), the
+    ///   CRIM water fraction of a product without solid (Birchak et al.
+    ///   1974), with water's permittivity at t (Malmberg and Maryott 1956):
+    ///   the temperature correction physics gives, so it extrapolates;
+    /// - 7: psi_2 = [`tkn_psi`] at the higher frequency on eps''_2 + f;
+    /// - 8-22: squares and products of features 0-4.
+    ///
+    /// A feature is NaN where it is not defined (eps' <= 0, eps'' < -f,
+    /// psi outside its domain).
+    pub fn features(&self, e: [T; 4], t_c: T) -> ([T; MV_FEATURES], [[T; 4]; MV_FEATURES]) {
+        let fl = T::c(LOSS_FLOOR);
+        let mut x = [T::zero(); MV_FEATURES];
+        let mut d = [[T::zero(); 4]; MV_FEATURES];
+        x[0] = T::ln(e[0]);
+        d[0][0] = T::one() / e[0];
+        x[1] = T::ln(e[2]);
+        d[1][2] = T::one() / e[2];
+        x[2] = T::ln(e[1] + fl);
+        d[2][1] = T::one() / (e[1] + fl);
+        x[3] = T::ln(e[3] + fl);
+        d[3][3] = T::one() / (e[3] + fl);
+        x[4] = (t_c - self.t_ref_c) / T::c(10.0);
+        let sw = T::sqrt(static_permittivity_mm(t_c)) - T::one();
+        x[5] = (T::sqrt(e[2]) - T::one()) / sw;
+        d[5][2] = T::c(0.5) / (T::sqrt(e[2]) * sw);
+        x[6] = (T::sqrt(e[0]) - T::one()) / sw;
+        d[6][0] = T::c(0.5) / (T::sqrt(e[0]) * sw);
+        let (psi, dpe, dpl) = tkn_psi(self.a_f, e[2], e[3] + fl);
+        x[7] = psi;
+        d[7][2] = dpe;
+        d[7][3] = dpl;
+        for (k, (i, j)) in QUAD.iter().enumerate() {
+            x[8 + k] = x[*i] * x[*j];
+            for c in 0..4 {
+                d[8 + k][c] = x[*i] * d[*j][c] + x[*j] * d[*i][c];
+            }
+        }
+        (x, d)
+    }
+
+    /// Moisture, %, and its gradient w.r.t. `(eps'_1, eps''_1, eps'_2, eps''_2)`.
+    pub fn moisture_and_gradient(&self, e: [T; 4], t_c: T) -> (T, [T; 4]) {
+        let (x, d) = self.features(e, t_c);
+        let mut m = self.intercept;
+        let mut g = [T::zero(); 4];
+        for k in 0..MV_FEATURES {
+            m += self.coeffs[k] * x[k];
+            for c in 0..4 {
+                g[c] += self.coeffs[k] * d[k][c];
+            }
+        }
+        (m, g)
+    }
+
+    /// Moisture, %.
+    pub fn moisture_pct(&self, e: [T; 4], t_c: T) -> T {
+        self.moisture_and_gradient(e, t_c).0
+    }
+}
+
+/// A product model of any kind.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum ProductModel<T> {
     /// Single-frequency baseline.
     SingleFrequency(SingleFrequencyModel<T>),
     /// Relaxation model.
     Relaxation(RelaxationModel<T>),
+    /// Multivariate model.
+    Multivariate(MultivariateModel<T>),
 }
 
 impl<T: Real> ProductModel<T> {
@@ -297,6 +477,7 @@ impl<T: Real> ProductModel<T> {
         match self {
             ProductModel::SingleFrequency(_) => ModelKind::SingleFrequency,
             ProductModel::Relaxation(_) => ModelKind::Relaxation,
+            ProductModel::Multivariate(_) => ModelKind::Multivariate,
         }
     }
 
@@ -305,6 +486,7 @@ impl<T: Real> ProductModel<T> {
         match self {
             ProductModel::SingleFrequency(_) => &["eps_re"],
             ProductModel::Relaxation(_) => &["eps_hf", "d_eps", "sigma_s_m", "mixing_moisture_pct"],
+            ProductModel::Multivariate(_) => &["eps1_re", "eps1_loss", "eps2_re", "eps2_loss"],
         }
     }
 
@@ -348,6 +530,15 @@ impl<T: Real> ProductModel<T> {
                 }
                 (out, RELAXATION_LEN)
             }
+            ProductModel::Multivariate(m) => {
+                out[1] = f(m.t_ref_c);
+                out[2] = f(m.a_f);
+                out[3] = f(m.intercept);
+                for k in 0..MV_FEATURES {
+                    out[4 + k] = f(m.coeffs[k]);
+                }
+                (out, MULTIVARIATE_LEN)
+            }
         }
     }
 
@@ -359,6 +550,7 @@ impl<T: Real> ProductModel<T> {
         let expected = match kind {
             ModelKind::SingleFrequency => SINGLE_LEN,
             ModelKind::Relaxation => RELAXATION_LEN,
+            ModelKind::Multivariate => MULTIVARIATE_LEN,
         };
         if params.len() != expected {
             return Err(ParamsError::WrongLength {
@@ -410,11 +602,11 @@ impl<T: Real> ProductModel<T> {
                 if !(p[8] > 0.0) {
                     return bad(8, "particle density must be > 0 kg/m^3");
                 }
-                if !(p[9] > 0.0 && p[9] < p[8] && p[9] < 1000.0) {
-                    return bad(
-                        9,
-                        "bulk density must be > 0 and below the particle density and 1000 kg/m^3",
-                    );
+                if !(p[8] <= 5000.0) {
+                    return bad(8, "particle density must be at most 5000 kg/m^3");
+                }
+                if !(p[9] > 0.0 && p[9] < p[8]) {
+                    return bad(9, "bulk density must be > 0 and below the particle density");
                 }
                 Ok(ProductModel::Relaxation(RelaxationModel {
                     law: RelaxationLaw {
@@ -437,7 +629,47 @@ impl<T: Real> ProductModel<T> {
                     c_sigma: g(16),
                 }))
             }
+            ModelKind::Multivariate => {
+                if !(params[2] > 0.0) {
+                    return bad(2, "a_f must be > 0");
+                }
+                let mut coeffs = [T::zero(); MV_FEATURES];
+                for (k, c) in coeffs.iter_mut().enumerate() {
+                    *c = g(4 + k);
+                }
+                Ok(ProductModel::Multivariate(MultivariateModel {
+                    t_ref_c: g(1),
+                    a_f: g(2),
+                    intercept: g(3),
+                    coeffs,
+                }))
+            }
         }
+    }
+
+    /// The model whose moisture is `a + b m` where this one gives `m` (a
+    /// bias and slope correction): every model is linear in its
+    /// coefficients, so the correction is exact.
+    pub fn rescaled(&self, a: T, b: T) -> Self {
+        let mut m = *self;
+        match &mut m {
+            ProductModel::SingleFrequency(s) => {
+                s.coeffs = s.coeffs.map(|c| c * b);
+                s.coeffs[0] += a;
+                s.c_t *= b;
+            }
+            ProductModel::Relaxation(r) => {
+                r.coeffs = r.coeffs.map(|c| c * b);
+                r.coeffs[0] += a;
+                r.c_t *= b;
+                r.c_sigma *= b;
+            }
+            ProductModel::Multivariate(v) => {
+                v.coeffs = v.coeffs.map(|c| c * b);
+                v.intercept = a + b * v.intercept;
+            }
+        }
+        m
     }
 
     /// The same model in another scalar type.
@@ -470,6 +702,12 @@ impl<T: Real> ProductModel<T> {
                 coeffs: m.coeffs.map(U::cast),
                 c_t: U::cast(m.c_t),
                 c_sigma: U::cast(m.c_sigma),
+            }),
+            ProductModel::Multivariate(m) => ProductModel::Multivariate(MultivariateModel {
+                t_ref_c: U::cast(m.t_ref_c),
+                a_f: U::cast(m.a_f),
+                intercept: U::cast(m.intercept),
+                coeffs: m.coeffs.map(U::cast),
             }),
         }
     }

@@ -265,6 +265,7 @@ pub fn parse_product(cal: &ProductCal) -> Result<ProductCalibration<f32>, ErrorC
     let kind = match cal.model {
         ModelKind::SingleFrequency => cal_product::ModelKind::SingleFrequency,
         ModelKind::Relaxation => cal_product::ModelKind::Relaxation,
+        ModelKind::Multivariate => cal_product::ModelKind::Multivariate,
     };
     let basis = match cal.basis {
         Basis::Wet => fringe_calibration::moisture::Basis::Wet,

@@ -40,6 +40,12 @@ pub struct CalRecordBody {
     pub statistics: Option<crate::product_file::Statistics>,
     /// Verification result (cell calibrations): words.
     pub verification: Option<String>,
+    /// The calibration this one was derived from (`cal adjust`), 8 hex digits.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub parent_id: Option<String>,
+    /// How it was derived from its parent, in words.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub derivation: Option<String>,
 }
 
 /// A reading reduced to what the monitors and the report need.

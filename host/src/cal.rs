@@ -14,8 +14,9 @@ use anyhow::{bail, Context as _};
 use clap::{Args, ValueEnum};
 use fringe_calibration::estimate::{estimate, Channel, EstimateInput};
 use fringe_calibration::fit::product::{
-    compare, fit_relaxation, fit_single, ChannelReading, MixingFit, ProductFit, RelaxationOptions,
-    Sample, SingleOptions,
+    compare_models, fit_multivariate, fit_relaxation, fit_single, ChannelReading, CompareOptions,
+    IntervalModel, MixingFit, MultivariateOptions, MvMethod, ProductFit, RelaxationOptions, Sample,
+    SingleOptions, MV_MIN_SAMPLES,
 };
 use fringe_calibration::stats::{Folds, PredictionStats};
 use fringe_protocol::{short_string, Basis, Flags, ModelKind, ProductCal, Range};
@@ -33,7 +34,11 @@ pub enum FitModel {
     Single,
     /// Two-frequency relaxation inversion, mixing model, temperature and conductivity terms.
     Relaxation,
-    /// Both, side by side; `--out` gets the one with the smaller cross-validated SEP.
+    /// Ridge regression on physically chosen features of both frequencies (penalty by cross-validation).
+    Multivariate,
+    /// PLS regression on the same features (components by cross-validation).
+    Pls,
+    /// Every model under the same cross-validation; `--out` gets the one chosen by SEP with the parsimony rule.
     Compare,
 }
 
@@ -64,7 +69,8 @@ pub struct FitArgs {
     /// Polynomial degree of the regression, 1-3.
     #[arg(long, default_value_t = 2, value_parser = clap::value_parser!(u8).range(1..=3))]
     pub degree: u8,
-    /// Cross-validation: 0 for leave-one-out, else the number of folds (venetian blinds).
+    /// Cross-validation: 0 for leave-one-out below 100 samples and 10 folds from 100 on,
+    /// else the number of folds (venetian blinds; the number of samples is leave-one-out).
     #[arg(long, default_value_t = 0)]
     pub folds: usize,
     /// Noise standard deviation of eps' and eps'' (for the uncertainty the device reports).
@@ -79,6 +85,94 @@ pub struct FitArgs {
     /// Draw predicted vs lab and residuals vs each input to this SVG file.
     #[arg(long, value_name = "FILE.svg")]
     pub plot: Option<PathBuf>,
+    /// Write the calibration even if it fails the quality gate (RPD < 2, R^2 < 0.8,
+    /// fewer than 5 samples per parameter, a range set by one sample); the
+    /// overridden refusals are kept in the file and in `cal push`'s audit record.
+    #[arg(long)]
+    pub force: bool,
+}
+
+/// The quality gate refused a calibration; nothing was written.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GateRefused {
+    /// What was refused (the file or calibration).
+    pub what: String,
+    /// Each refusal, in words.
+    pub refusals: Vec<String>,
+}
+
+impl std::fmt::Display for GateRefused {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        writeln!(
+            f,
+            "{}: refused by the quality gate; nothing written:",
+            self.what
+        )?;
+        for r in &self.refusals {
+            writeln!(f, "  - {r}")?;
+        }
+        write!(
+            f,
+            "--force writes it anyway and records the override (in the file and the audit record)"
+        )
+    }
+}
+
+impl std::error::Error for GateRefused {}
+
+/// The quality gate (`fringe_calibration::fit::gate`) on a fit and its
+/// samples: the refusals in words.
+pub fn gate_of_fit(f: &ProductFit, samples: &[Sample]) -> Vec<String> {
+    use fringe_calibration::fit::gate::{check, GateInput, Limits};
+    let cv = &f.stats.cross_validation;
+    // The samples the model used (a model may have left some out).
+    let used: Vec<&Sample> = samples
+        .iter()
+        .filter(|s| !f.excluded.iter().any(|x| x.id == s.id))
+        .collect();
+    let input = GateInput {
+        n: f.stats.n,
+        n_params: f.stats.n_coef,
+        rpd: cv.rpd,
+        r2: cv.r_squared,
+        ranges: vec![
+            (
+                "moisture_pct",
+                used.iter()
+                    .map(|s| (s.id.as_str(), s.moisture_pct))
+                    .collect(),
+            ),
+            (
+                "temperature_c",
+                used.iter()
+                    .map(|s| (s.id.as_str(), s.temperature_c))
+                    .collect(),
+            ),
+        ],
+    };
+    check(&input, &Limits::default())
+        .iter()
+        .map(ToString::to_string)
+        .collect()
+}
+
+/// The quality gate on a calibration file's statistics (what `cal push`
+/// can check: RPD, R^2, samples per parameter): the refusals in words.
+pub fn gate_of_file(s: &Statistics) -> Vec<String> {
+    use fringe_calibration::fit::gate::{check, GateInput, Limits};
+    let input = GateInput {
+        n: s.n,
+        // Files from before the gate do not say; the relaxation model's
+        // five coefficients are the fewest a two-frequency model fits.
+        n_params: s.n_params.unwrap_or(5),
+        rpd: s.rpd,
+        r2: s.r2,
+        ranges: Vec::new(),
+    };
+    check(&input, &Limits::default())
+        .iter()
+        .map(ToString::to_string)
+        .collect()
 }
 
 /// `fringe cal predict`.
@@ -99,6 +193,26 @@ pub struct PredictArgs {
     /// Noise standard deviation of eps' and eps'' used for the uncertainty.
     #[arg(long, default_value_t = 0.02)]
     pub eps_sd: f32,
+    /// Confidence level of the prediction interval.
+    #[arg(long, default_value_t = 0.95, value_parser = confidence_level)]
+    pub confidence: f64,
+    /// Print the rows and the statistics as one JSON object on stdout (no CSV).
+    #[arg(long)]
+    pub json: bool,
+}
+
+fn confidence_level(s: &str) -> Result<f64, String> {
+    let v: f64 = s
+        .trim()
+        .parse()
+        .map_err(|_| format!("`{s}` is not a number"))?;
+    if v > 0.5 && v < 1.0 {
+        Ok(v)
+    } else {
+        Err(format!(
+            "{s} is not a confidence level between 0.5 and 1 (e.g. 0.95)"
+        ))
+    }
 }
 
 fn to_fit_samples(set: &SampleSet) -> Vec<Sample> {
@@ -122,11 +236,22 @@ fn to_fit_samples(set: &SampleSet) -> Vec<Sample> {
 /// Coefficients each model fits (for the "+3" rule, stated before fitting).
 fn n_coef(model: FitModel, degree: usize) -> usize {
     match model {
-        // c0..c_degree + temperature term
-        FitModel::Single => degree + 2,
+        // c0..c_degree + temperature term (also the least any model of a
+        // comparison needs; each refuses on its own below its minimum)
+        FitModel::Single | FitModel::Compare => degree + 2,
         // p0..p_degree + temperature + conductivity terms
-        FitModel::Relaxation | FitModel::Compare => degree + 3,
+        FitModel::Relaxation => degree + 3,
+        FitModel::Multivariate | FitModel::Pls => MV_MIN_SAMPLES - 3,
     }
+}
+
+/// One model of a comparison, for printing.
+#[derive(Debug, Clone)]
+pub struct Compared {
+    /// Model name in words.
+    pub model: &'static str,
+    /// Its fit, or why it has none.
+    pub fit: Result<ProductFit, String>,
 }
 
 /// Result of a fit, for printing and files.
@@ -134,9 +259,11 @@ fn n_coef(model: FitModel, degree: usize) -> usize {
 pub struct FitOutcome {
     /// The fit written to the file.
     pub chosen: ProductFit,
-    /// The other fit (compare only).
-    pub other: Option<ProductFit>,
-    /// Cross-validated SEP single / relaxation (compare only).
+    /// Every model of a comparison, chosen included (compare only).
+    pub compared: Vec<Compared>,
+    /// The parsimony rule's figures (compare only): best SEP, threshold.
+    pub rule: Option<(f64, f64)>,
+    /// Cross-validated SEP single-frequency / chosen (compare only).
     pub sep_ratio: Option<f64>,
     /// The file written.
     pub file: ProductFile,
@@ -154,13 +281,16 @@ fn statistics_of(f: &ProductFit) -> Statistics {
         slope: cv.slope,
         r2: cv.r_squared,
         rpd: cv.rpd,
+        n_params: Some(f.stats.n_coef),
+        gate_overridden: Vec::new(),
         cross_validation: {
             let split = match f.stats.folds {
                 Folds::LeaveOneOut => "leave-one-out".to_string(),
                 Folds::KFold(k) => format!("{k}-fold venetian blinds"),
             };
             match f.model.kind() {
-                fringe_calibration::product::ModelKind::Relaxation => {
+                fringe_calibration::product::ModelKind::Relaxation
+                | fringe_calibration::product::ModelKind::Multivariate => {
                     format!("{split}, whole fit repeated per fold")
                 }
                 fringe_calibration::product::ModelKind::SingleFrequency => split,
@@ -173,6 +303,7 @@ fn model_words(k: fringe_calibration::product::ModelKind) -> &'static str {
     match k {
         fringe_calibration::product::ModelKind::SingleFrequency => "single-frequency",
         fringe_calibration::product::ModelKind::Relaxation => "relaxation",
+        fringe_calibration::product::ModelKind::Multivariate => "multivariate",
     }
 }
 
@@ -187,6 +318,7 @@ pub fn wire_of(
     let model = match c.model.kind() {
         fringe_calibration::product::ModelKind::SingleFrequency => ModelKind::SingleFrequency,
         fringe_calibration::product::ModelKind::Relaxation => ModelKind::Relaxation,
+        fringe_calibration::product::ModelKind::Multivariate => ModelKind::Multivariate,
     };
     let inputs: Vec<Range> = c
         .input_ranges()
@@ -228,11 +360,19 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
     let words = match args.model {
         FitModel::Single => "single-frequency",
         FitModel::Relaxation => "relaxation",
-        FitModel::Compare => "relaxation (and single-frequency)",
+        FitModel::Multivariate => "multivariate (ridge)",
+        FitModel::Pls => "multivariate (PLS)",
+        FitModel::Compare => "every",
     };
     set.require(n_coef(args.model, degree), words)?;
     let samples = to_fit_samples(&set);
-    let folds = if args.folds == 0 {
+    // Leave-one-out repeats the whole fit per sample; from 100 samples on,
+    // 10 folds keep `compare` under 0.1 s for 200 samples (BENCHMARKS.md).
+    let folds = if args.folds == 0 && samples.len() < 100 {
+        Folds::LeaveOneOut
+    } else if args.folds == 0 {
+        Folds::KFold(10)
+    } else if args.folds >= samples.len() {
         Folds::LeaveOneOut
     } else {
         Folds::KFold(args.folds)
@@ -260,22 +400,85 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
         })
     };
     let ctx = || format!("{}: fitting the {words} model", args.samples.display());
-    let (chosen, other, sep_ratio) = match args.model {
-        FitModel::Single => (fit_single(&samples, &single).with_context(ctx)?, None, None),
+    let mv = |method| MultivariateOptions {
+        method,
+        eps_sd: args.eps_sd,
+        folds,
+        density_independent: false,
+    };
+    let (chosen, compared, rule, sep_ratio) = match args.model {
+        FitModel::Single => (
+            fit_single(&samples, &single).with_context(ctx)?,
+            Vec::new(),
+            None,
+            None,
+        ),
         FitModel::Relaxation => (
             fit_relaxation(&samples, &relax()?).with_context(ctx)?,
+            Vec::new(),
+            None,
+            None,
+        ),
+        FitModel::Multivariate | FitModel::Pls => (
+            fit_multivariate(
+                &samples,
+                &mv(if args.model == FitModel::Pls {
+                    MvMethod::Pls
+                } else {
+                    MvMethod::Ridge
+                }),
+            )
+            .with_context(ctx)?,
+            Vec::new(),
             None,
             None,
         ),
         FitModel::Compare => {
-            let c = compare(&samples, &single, &relax()?).with_context(ctx)?;
-            if c.better == fringe_calibration::product::ModelKind::Relaxation {
-                (c.relaxation, Some(c.single), Some(c.sep_ratio))
-            } else {
-                (c.single, Some(c.relaxation), Some(c.sep_ratio))
-            }
+            // The relaxation model joins when the densities are given.
+            let relaxation = match (args.bulk_density_kg_m3, args.particle_density_kg_m3) {
+                (Some(_), Some(_)) => Some(relax()?),
+                _ => None,
+            };
+            let c = compare_models(
+                &samples,
+                &CompareOptions {
+                    single,
+                    relaxation,
+                    eps_sd: args.eps_sd,
+                    folds,
+                },
+            )
+            .with_context(ctx)?;
+            let chosen = c.chosen_fit().clone();
+            let single_sep = c.results.iter().find_map(|(k, r)| {
+                (*k == fringe_calibration::fit::product::Candidate::SingleFrequency)
+                    .then(|| r.as_ref().ok().map(|f| f.stats.cross_validation.sep))
+                    .flatten()
+            });
+            let compared = c
+                .results
+                .iter()
+                .map(|(k, r)| Compared {
+                    model: k.name(),
+                    fit: r.clone().map_err(|e| e.to_string()),
+                })
+                .collect();
+            let ratio = single_sep.map(|s| s / chosen.stats.cross_validation.sep);
+            (chosen, compared, Some((c.best_sep, c.threshold)), ratio)
         }
     };
+    let refusals = gate_of_fit(&chosen, &samples);
+    if !refusals.is_empty() && !args.force {
+        return Err(GateRefused {
+            what: format!(
+                "{}: the {} calibration",
+                args.samples.display(),
+                model_words(chosen.calibration.model.kind())
+            ),
+            refusals,
+        }
+        .into());
+    }
     let name = args
         .name
         .clone()
@@ -300,10 +503,15 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
         .with_context(|| format!("reading {}", args.samples.display()))?;
     let made_s = (crate::store::now_unix_ms() / 1000).max(0) as u64;
     let wire = wire_of(&chosen, &name, basis, made_s)?;
+    let mut statistics = statistics_of(&chosen);
+    statistics.gate_overridden = refusals
+        .iter()
+        .map(|r| format!("at fit (--force): {r}"))
+        .collect();
     let file = ProductFile::from_wire(
         &wire,
         chosen.calibration.model.input_names(),
-        statistics_of(&chosen),
+        statistics,
         Source {
             samples: args.samples.display().to_string(),
             samples_sha256: Sha256::digest(&bytes)
@@ -317,11 +525,26 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
                 .map(|s| s.id.clone())
                 .collect(),
             freqs_hz: Some(chosen.freqs_hz),
+            parent_id: None,
+            derivation: None,
         },
     );
+    let im = fringe_calibration::fit::product::IntervalModel::of(&chosen);
+    let mut file = file;
+    file.prediction = Some(crate::product_file::Prediction {
+        columns: im.columns,
+        leverage_matrix: im.leverage_matrix,
+        residual_sd: im.residual_sd,
+        interval_sd: im.interval_sd,
+        mean_leverage: im.mean_leverage,
+        max_leverage: im.max_leverage,
+        dof: im.dof,
+        eps_sd: im.eps_sd,
+    });
     Ok(FitOutcome {
         chosen,
-        other,
+        compared,
+        rule,
         sep_ratio,
         file,
         wire,
@@ -337,6 +560,9 @@ fn stats_json(f: &ProductFit) -> serde_json::Value {
         "cross_validation": s.cross_validation,
         "outliers": f.samples.iter().filter(|x| x.outlier).map(|x| x.id.clone()).collect::<Vec<_>>(),
         "high_leverage": f.samples.iter().filter(|x| x.high_leverage).map(|x| x.id.clone()).collect::<Vec<_>>(),
+        "excluded": f.excluded.iter().map(|x| json!({"id": x.id, "reason": x.reason})).collect::<Vec<_>>(),
+        "notes": f.notes,
+        "detail": f.detail,
     })
 }
 
@@ -351,11 +577,22 @@ pub fn outcome_json(o: &FitOutcome, out: &Path) -> serde_json::Value {
         "temperature_c": [c.temperature_c.min, c.temperature_c.max],
         "inputs": o.file.inputs.iter().map(|r| json!({"name": r.name, "min": r.min, "max": r.max})).collect::<Vec<_>>(),
     });
-    if let (Some(other), Some(ratio)) = (&o.other, o.sep_ratio) {
+    if !o.compared.is_empty() {
         v["comparison"] = json!({
-            "sep_ratio_single_over_relaxation": ratio,
-            "chosen": stats_json(&o.chosen),
-            "other": stats_json(other),
+            "models": o.compared.iter().map(|c| match &c.fit {
+                Ok(f) => {
+                    let mut j = stats_json(f);
+                    j["model"] = json!(c.model);
+                    j["excluded"] = json!(f.excluded.iter().map(|x| json!({"id": x.id, "reason": x.reason})).collect::<Vec<_>>());
+                    j["notes"] = json!(f.notes);
+                    j["detail"] = json!(f.detail);
+                    j
+                }
+                Err(e) => json!({"model": c.model, "refused": e}),
+            }).collect::<Vec<_>>(),
+            "best_sep": o.rule.map(|r| r.0),
+            "parsimony_threshold": o.rule.map(|r| r.1),
+            "sep_ratio_single_over_chosen": o.sep_ratio,
         });
     }
     v
@@ -400,6 +637,15 @@ fn print_fit(f: &ProductFit, w: &mut dyn std::io::Write) -> std::io::Result<()> 
     if !lev.is_empty() {
         writeln!(w, "  high leverage: {}", lev.join(", "))?;
     }
+    if !f.detail.is_empty() {
+        writeln!(w, "  {}", f.detail)?;
+    }
+    for x in &f.excluded {
+        writeln!(w, "  left out {}: {}", x.id, x.reason)?;
+    }
+    for n in &f.notes {
+        writeln!(w, "  note: {n}")?;
+    }
     Ok(())
 }
 
@@ -423,35 +669,38 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
         writeln!(w, "{}", outcome_json(&o, &args.out))?;
         return Ok(());
     }
-    if let (Some(other), Some(ratio)) = (&o.other, o.sep_ratio) {
-        let (s, r) = if o.chosen.calibration.model.kind()
-            == fringe_calibration::product::ModelKind::Relaxation
-        {
-            (other, &o.chosen)
-        } else {
-            (&o.chosen, other)
-        };
+    if let Some((best, threshold)) = o.rule {
         writeln!(w, "model comparison (same samples, same cross-validation):")?;
         writeln!(
             w,
-            "  {:<18} {:>8} {:>8} {:>8} {:>7}",
+            "  {:<22} {:>8} {:>8} {:>8} {:>7}",
             "model", "SEC %", "SEP %", "bias %", "RPD"
         )?;
-        for f in [s, r] {
-            let st = statistics_of(f);
-            writeln!(
-                w,
-                "  {:<18} {:>8.3} {:>8.3} {:>+8.3} {:>7.2}",
-                model_words(f.calibration.model.kind()),
-                st.sec,
-                st.sep,
-                st.bias,
-                st.rpd
-            )?;
+        for c in &o.compared {
+            match &c.fit {
+                Ok(f) => {
+                    let st = statistics_of(f);
+                    write!(
+                        w,
+                        "  {:<22} {:>8.3} {:>8.3} {:>+8.3} {:>7.2}",
+                        c.model, st.sec, st.sep, st.bias, st.rpd
+                    )?;
+                    if f.excluded.is_empty() {
+                        writeln!(w)?;
+                    } else {
+                        writeln!(
+                            w,
+                            "  (left out {} sample(s): not eligible)",
+                            f.excluded.len()
+                        )?;
+                    }
+                }
+                Err(e) => writeln!(w, "  {:<22} refused: {e}", c.model)?,
+            }
         }
         writeln!(
             w,
-            "  SEP single / SEP relaxation = {ratio:.2}; writing the {} model",
+            "  smallest SEP {best:.3} %; the relaxation model is preferred within one standard error ({threshold:.3} %); writing the {} model",
             model_words(o.chosen.calibration.model.kind())
         )?;
         writeln!(w)?;
@@ -543,21 +792,35 @@ pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> anyhow::Result<String> {
 pub struct Predicted {
     /// Sample id.
     pub sample_id: String,
-    /// Moisture, % (None when the estimate failed; flags say why).
+    /// Predicted moisture, % (None when the estimate failed; flags say why).
     pub moisture_pct: Option<f32>,
-    /// Standard uncertainty, %.
+    /// Standard uncertainty the device reports, %.
     pub uncertainty_pct: f32,
+    /// Prediction interval for a lab value, % (None without a moisture or
+    /// for a file without its interval model).
+    pub interval_pct: Option<(f64, f64)>,
+    /// Leverage of the reading in the calibration (NaN when unknown).
+    pub leverage: f64,
+    /// The leverage exceeds every calibration sample's.
+    pub beyond_calibration: bool,
     /// Flags.
     pub flags: Flags,
     /// Lab moisture if the input had one.
     pub lab_pct: Option<f64>,
 }
 
-/// Evaluates every sample of `input` with the calibration, as the device does.
+/// Evaluates every sample of `input` with the calibration, as the device
+/// does, with the prediction interval at `confidence` and the leverage
+/// where the file keeps its interval model.
 ///
 /// # Errors
 /// A bad calibration file or table.
-pub fn predict(cal_path: &Path, input: &Path, eps_sd: f32) -> anyhow::Result<Vec<Predicted>> {
+pub fn predict(
+    cal_path: &Path,
+    input: &Path,
+    eps_sd: f32,
+    confidence: f64,
+) -> anyhow::Result<Vec<Predicted>> {
     let (file, wire) = ProductFile::load(cal_path)?;
     let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| {
         anyhow::anyhow!(
@@ -584,8 +847,19 @@ pub fn predict(cal_path: &Path, input: &Path, eps_sd: f32) -> anyhow::Result<Vec
             );
         }
     }
-    Ok(set
-        .samples
+    let model = cal.model.cast::<f64>();
+    let interval = file.prediction.as_ref().map(|p| IntervalModel {
+        columns: p.columns.clone(),
+        leverage_matrix: p.leverage_matrix.clone(),
+        residual_sd: p.residual_sd,
+        interval_sd: p.interval_sd,
+        mean_leverage: p.mean_leverage,
+        max_leverage: p.max_leverage,
+        dof: p.dof,
+        freqs_hz: set.freqs_hz,
+        eps_sd: f64::from(eps_sd),
+    });
+    set.samples
         .iter()
         .map(|s| {
             let ch = |k: usize| Channel {
@@ -601,40 +875,113 @@ pub fn predict(cal_path: &Path, input: &Path, eps_sd: f32) -> anyhow::Result<Vec
                 },
                 Some(&cal),
             );
-            Predicted {
+            let (interval_pct, leverage, beyond) = match &interval {
+                Some(im) => {
+                    let eps = [(s.eps_re[0], s.eps_im[0]), (s.eps_re[1], s.eps_im[1])];
+                    let p = im.predict(&model, &cal, eps, s.temperature_c, confidence)?;
+                    (p.interval_pct, p.leverage, p.extrapolation)
+                }
+                None => (None, f64::NAN, false),
+            };
+            Ok(Predicted {
                 sample_id: s.sample_id.clone(),
                 moisture_pct: e.moisture_pct,
                 uncertainty_pct: e.uncertainty_pct,
+                interval_pct,
+                leverage,
+                beyond_calibration: beyond,
                 flags: Flags::from_bits_truncate(e.flags.bits()),
                 lab_pct: s.moisture_pct,
-            }
+            })
         })
-        .collect())
+        .collect()
 }
 
-/// Writes predictions as CSV `sample_id, moisture_pct, uncertainty_pct, flags`.
+/// Columns of `cal predict`'s CSV.
+pub const PREDICT_COLUMNS: [&str; 8] = [
+    "sample_id",
+    "moisture_pct",
+    "predicted_moisture_pct",
+    "uncertainty_pct",
+    "interval_low_pct",
+    "interval_high_pct",
+    "leverage",
+    "flags",
+];
+
+fn fmt_opt(v: Option<f64>, digits: usize) -> String {
+    v.filter(|x| x.is_finite())
+        .map(|x| format!("{x:.digits$}"))
+        .unwrap_or_default()
+}
+
+/// Flag names of a row: the device's, plus `beyond_calibration` when the
+/// leverage exceeds every calibration sample's.
+fn flag_names(r: &Predicted) -> Vec<String> {
+    let mut f: Vec<String> = r.flags.names().map(str::to_string).collect();
+    if r.beyond_calibration {
+        f.push("beyond_calibration".into());
+    }
+    f
+}
+
+/// Writes predictions as CSV with [`PREDICT_COLUMNS`]: the lab value
+/// (`moisture_pct`, empty when the input had none) beside the predicted one,
+/// the device's uncertainty, the prediction interval, the leverage and the
+/// flags (`|`-separated).
 ///
 /// # Errors
 /// I/O errors.
 pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> anyhow::Result<()> {
     let mut c = csv::Writer::from_writer(w);
-    c.write_record(["sample_id", "moisture_pct", "uncertainty_pct", "flags"])?;
+    c.write_record(PREDICT_COLUMNS)?;
     for r in rows {
         c.write_record([
             r.sample_id.clone(),
-            r.moisture_pct
-                .map(|m| format!("{m:.3}"))
-                .unwrap_or_default(),
-            if r.uncertainty_pct.is_finite() {
-                format!("{:.3}", r.uncertainty_pct)
-            } else {
-                String::new()
-            },
-            r.flags.names().collect::<Vec<_>>().join("|"),
+            fmt_opt(r.lab_pct, 3),
+            fmt_opt(r.moisture_pct.map(f64::from), 3),
+            fmt_opt(Some(f64::from(r.uncertainty_pct)), 3),
+            fmt_opt(r.interval_pct.map(|i| i.0), 3),
+            fmt_opt(r.interval_pct.map(|i| i.1), 3),
+            fmt_opt(Some(r.leverage), 4),
+            flag_names(r).join("|"),
         ])?;
     }
     c.flush()?;
     Ok(())
+}
+
+/// The JSON object `cal predict --json` prints.
+pub fn predictions_json(rows: &[Predicted], confidence: f64) -> serde_json::Value {
+    let num = |v: Option<f64>| {
+        v.filter(|x| x.is_finite())
+            .map_or(json!(null), |x| json!(x))
+    };
+    let pairs: Vec<(f64, f64)> = rows
+        .iter()
+        .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
+        .collect();
+    let stats = if pairs.len() >= 3 {
+        let (lab, pred): (Vec<f64>, Vec<f64>) = pairs.into_iter().unzip();
+        PredictionStats::new(&lab, &pred).ok().map(|s| {
+            json!({"n": s.n, "sep": s.sep, "bias": s.bias, "rmsep": s.rmsep, "slope": s.slope, "r2": s.r_squared})
+        })
+    } else {
+        None
+    };
+    json!({
+        "confidence": confidence,
+        "rows": rows.iter().map(|r| json!({
+            "sample_id": r.sample_id,
+            "moisture_pct": num(r.lab_pct),
+            "predicted_moisture_pct": num(r.moisture_pct.map(f64::from)),
+            "uncertainty_pct": num(Some(f64::from(r.uncertainty_pct))),
+            "interval_pct": r.interval_pct.map_or(json!(null), |(a, b)| json!([a, b])),
+            "leverage": num(Some(r.leverage)),
+            "flags": flag_names(r),
+        })).collect::<Vec<_>>(),
+        "against_lab": stats,
+    })
 }
 
 /// `fringe cal predict`.
@@ -642,7 +989,16 @@ pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> anyhow:
 /// # Errors
 /// As [`predict`], or a failed write.
 pub fn run_predict(args: &PredictArgs) -> anyhow::Result<()> {
-    let rows = predict(&args.cal, &args.input, args.eps_sd)?;
+    let rows = predict(&args.cal, &args.input, args.eps_sd, args.confidence)?;
+    if args.json {
+        let v = predictions_json(&rows, args.confidence);
+        match &args.out {
+            Some(p) => std::fs::write(p, format!("{v}\n"))
+                .with_context(|| format!("writing {}", p.display()))?,
+            None => writeln!(std::io::stdout().lock(), "{v}")?,
+        }
+        return Ok(());
+    }
     match &args.out {
         Some(p) => {
             let tmp = p.with_extension("csv.part");
@@ -727,6 +1083,7 @@ mod tests {
             basis: "wet".into(),
             json: true,
             plot: None,
+            force: false,
         }
     }
 
@@ -737,7 +1094,7 @@ mod tests {
         let csv = synth_csv(dir.path(), "lab.csv", 40, seed);
         let o = fit(&args(csv, dir.path().join("p.toml"), FitModel::Compare)).expect("fit");
         let ratio = o.sep_ratio.expect("compare gives a ratio");
-        eprintln!("seed {seed}: SEP single / SEP relaxation = {ratio:.2}");
+        eprintln!("seed {seed}: SEP single / SEP chosen = {ratio:.2}");
         assert!(ratio > 3.0, "seed {seed}: ratio {ratio}");
         assert_eq!(o.wire.model, ModelKind::Relaxation);
         let j = outcome_json(&o, Path::new("p.toml"));
@@ -758,7 +1115,7 @@ mod tests {
         // Fresh samples of the same product: the prediction error is of the
         // size of the cross-validated SEP (within a factor of 2).
         let check = synth_csv(dir.path(), "check.csv", 30, seed + 1);
-        let rows = predict(&toml, &check, 0.02).expect("predict");
+        let rows = predict(&toml, &check, 0.02, 0.95).expect("predict");
         let (lab, pred): (Vec<f64>, Vec<f64>) = rows
             .iter()
             .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
@@ -783,9 +1140,22 @@ mod tests {
         write_predictions(&mut buf, &rows).expect("csv");
         let text = String::from_utf8(buf).expect("utf8");
         assert!(
-            text.starts_with("sample_id,moisture_pct,uncertainty_pct,flags\n"),
+            text.starts_with(
+                "sample_id,moisture_pct,predicted_moisture_pct,uncertainty_pct,interval_low_pct,interval_high_pct,leverage,flags\n"
+            ),
             "{text}"
         );
+        // The lab value is kept beside the prediction, and the interval
+        // brackets the prediction.
+        for r in rows.iter().filter(|r| r.moisture_pct.is_some()) {
+            let (lo, hi) = r.interval_pct.expect("interval");
+            let m = f64::from(r.moisture_pct.expect("m"));
+            assert!(lo < m && m < hi && r.leverage.is_finite(), "{r:?}");
+        }
+        let j = predictions_json(&rows, 0.95);
+        assert_eq!(j["rows"].as_array().map(Vec::len), Some(30));
+        assert!(j["rows"][0]["moisture_pct"].is_number());
+        assert!(j["rows"][0]["predicted_moisture_pct"].is_number());
     }
 
     #[test]
@@ -807,4 +1177,363 @@ mod tests {
         assert!(e.contains("--bulk-density-kg-m3"), "{e}");
         assert!(!dir.path().join("p.toml").exists(), "nothing written");
     }
+}
+
+/// Which correction `cal adjust` writes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum AdjustCorrection {
+    /// What the tests call for: slope and bias if the slope differs significantly from 1, else the bias if significant, else nothing.
+    Auto,
+    /// The bias alone, significant or not.
+    Bias,
+    /// Slope and bias (lab regressed on predicted), significant or not.
+    BiasSlope,
+}
+
+/// `fringe cal adjust`.
+#[derive(Debug, Clone, Args)]
+#[command(
+    after_help = "Examples:\n  fringe cal adjust --cal wheat-l2.toml --db line2.db --out wheat-l2-adj.toml\n  fringe cal predict --cal wheat-l2.toml --input grabs.csv --out pairs.csv\n  fringe cal adjust --cal wheat-l2.toml --pairs pairs.csv --out wheat-l2-adj.toml\nThen push the new file with `fringe cal push` like any other."
+)]
+pub struct AdjustArgs {
+    /// The calibration in force (TOML from `fringe cal fit` or an earlier adjust).
+    #[arg(long, value_name = "PRODUCT.toml")]
+    pub cal: PathBuf,
+    /// Lab pairs: a CSV with `moisture_pct` (lab) and `predicted_moisture_pct`
+    /// (as `cal predict` writes), or a reference-sample table (evaluated with --cal).
+    #[arg(
+        long,
+        value_name = "FILE.csv",
+        conflicts_with = "db",
+        required_unless_present = "db"
+    )]
+    pub pairs: Option<PathBuf>,
+    /// Take the lab grab samples and their inline readings from this database
+    /// (those since the calibration was pushed, when the records say).
+    #[arg(long, value_name = "FILE")]
+    pub db: Option<PathBuf>,
+    /// Device serial in the database [default: its first device].
+    #[arg(long)]
+    pub serial: Option<String>,
+    /// Where to write the adjusted calibration.
+    #[arg(long, value_name = "PRODUCT.toml")]
+    pub out: PathBuf,
+    /// Which correction to write.
+    #[arg(long, value_enum, default_value_t = AdjustCorrection::Auto)]
+    pub correct: AdjustCorrection,
+    /// Significance level of the bias and slope tests.
+    #[arg(long, default_value_t = 0.05)]
+    pub alpha: f64,
+    /// Print the result as one JSON object.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// Lab and predicted values of `cal adjust`'s pairs, with where they came from.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Pairs {
+    /// Lab moisture, %.
+    pub lab: Vec<f64>,
+    /// Predicted (inline) moisture, %.
+    pub predicted: Vec<f64>,
+    /// Where they came from, in words.
+    pub source: String,
+}
+
+fn pairs_from_csv(path: &Path, cal: &Path) -> anyhow::Result<Pairs> {
+    let text = std::fs::read(path).with_context(|| format!("reading {}", path.display()))?;
+    let mut rdr = csv::ReaderBuilder::new()
+        .trim(csv::Trim::All)
+        .from_reader(text.as_slice());
+    let header = rdr.headers()?.clone();
+    let col = |n: &str| header.iter().position(|h| h.eq_ignore_ascii_case(n));
+    let (lab_c, pred_c) = match (col("moisture_pct"), col("predicted_moisture_pct")) {
+        (Some(l), Some(p)) => (l, p),
+        _ => {
+            // A reference-sample table: evaluate it with the calibration.
+            let rows = predict(cal, path, 0.02, 0.95)?;
+            let (lab, predicted) = rows
+                .iter()
+                .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
+                .unzip();
+            return Ok(Pairs {
+                lab,
+                predicted,
+                source: format!("{} (evaluated with {})", path.display(), cal.display()),
+            });
+        }
+    };
+    let (mut lab, mut predicted) = (Vec::new(), Vec::new());
+    for rec in rdr.records() {
+        let rec = rec?;
+        let line = rec.position().map_or(0, |p| p.line());
+        let get = |c: usize, name: &str| -> anyhow::Result<Option<f64>> {
+            let t = rec.get(c).unwrap_or("");
+            if t.is_empty() {
+                return Ok(None);
+            }
+            let v: f64 = t
+                .parse()
+                .ok()
+                .filter(|v: &f64| v.is_finite())
+                .ok_or_else(|| crate::samples::SampleError::BadValue {
+                    file: path.to_path_buf(),
+                    line,
+                    column: c + 1,
+                    field: if name == "moisture_pct" {
+                        "moisture_pct"
+                    } else {
+                        "predicted_moisture_pct"
+                    },
+                    value: t.to_string(),
+                    expected: "a finite number",
+                })?;
+            Ok(Some(v))
+        };
+        if let (Some(l), Some(p)) = (get(lab_c, "moisture_pct")?, get(pred_c, "predicted")?) {
+            lab.push(l);
+            predicted.push(p);
+        }
+    }
+    Ok(Pairs {
+        lab,
+        predicted,
+        source: path.display().to_string(),
+    })
+}
+
+fn pairs_from_db(db: &Path, serial: Option<&str>, cal_id: &str) -> anyhow::Result<Pairs> {
+    let store = crate::store::Store::open(db)?;
+    let data = crate::analysis::load(&store, serial)?;
+    Ok(pairs_from_line(&data, cal_id, db))
+}
+
+/// Result of `cal adjust`.
+#[derive(Debug, Clone)]
+pub struct AdjustOutcome {
+    /// The tests.
+    pub tests: fringe_calibration::fit::adjust::BiasSlope,
+    /// The correction written (`None` when nothing was written).
+    pub applied: fringe_calibration::fit::adjust::Correction,
+    /// The new file, when one was written.
+    pub file: Option<ProductFile>,
+    /// Where the pairs came from.
+    pub source: String,
+}
+
+/// `fringe cal adjust` without printing.
+///
+/// # Errors
+/// Bad files, too few pairs, a database failure, or a write failure.
+pub fn adjust(args: &AdjustArgs) -> anyhow::Result<AdjustOutcome> {
+    let (file, _) = ProductFile::load(&args.cal)?;
+    let pairs = match (&args.pairs, &args.db) {
+        (Some(p), _) => pairs_from_csv(p, &args.cal)?,
+        (None, Some(db)) => pairs_from_db(db, args.serial.as_deref(), &file.id)?,
+        (None, None) => bail!("give the lab pairs with --pairs FILE.csv or --db FILE"),
+    };
+    adjust_with(args, pairs)
+}
+
+/// The lab pairs of a line's data (`fringe_host::analysis`): those since
+/// the calibration `cal_id` was pushed, when the records say.
+pub fn pairs_from_line(data: &crate::analysis::LineData, cal_id: &str, db: &Path) -> Pairs {
+    let since = data
+        .cals
+        .iter()
+        .filter(|c| c.3.new_id == cal_id)
+        .map(|c| c.1)
+        .max();
+    let (lab, predicted) = data
+        .lab
+        .iter()
+        .filter(|l| since.is_none_or(|t| l.time_ms >= t))
+        .filter_map(|l| Some((l.lab_pct, l.inline_pct?)))
+        .unzip();
+    Pairs {
+        lab,
+        predicted,
+        source: match since {
+            Some(_) => format!(
+                "lab grab samples of {} in {} since {cal_id} was pushed",
+                data.serial,
+                db.display()
+            ),
+            None => format!(
+                "every lab grab sample of {} in {} (no push of {cal_id} recorded there)",
+                data.serial,
+                db.display()
+            ),
+        },
+    }
+}
+
+/// `cal adjust` on pairs already gathered.
+///
+/// # Errors
+/// As [`adjust`].
+pub fn adjust_with(args: &AdjustArgs, pairs: Pairs) -> anyhow::Result<AdjustOutcome> {
+    use fringe_calibration::fit::adjust::{bias_slope, Correction};
+    let (file, wire) = ProductFile::load(&args.cal)?;
+    if pairs.lab.len() < 3 {
+        bail!(
+            "{}: {} lab pair(s) with both values; the bias and slope tests need at least 3 (take more grab samples)",
+            pairs.source,
+            pairs.lab.len()
+        );
+    }
+    let tests = bias_slope(&pairs.lab, &pairs.predicted, args.alpha)
+        .map_err(|e| anyhow::anyhow!("{}: {e}", pairs.source))?;
+    let applied = match args.correct {
+        AdjustCorrection::Auto => tests.recommended(),
+        AdjustCorrection::Bias => Correction::Bias,
+        AdjustCorrection::BiasSlope => Correction::BiasAndSlope,
+    };
+    if applied == Correction::None {
+        return Ok(AdjustOutcome {
+            tests,
+            applied,
+            file: None,
+            source: pairs.source,
+        });
+    }
+    let (a, b) = tests.map(applied);
+    let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| {
+        anyhow::anyhow!(
+            "{}: the device would refuse this calibration ({e:?})",
+            args.cal.display()
+        )
+    })?;
+    let model = cal.model.cast::<f64>().rescaled(a, b);
+    let (params, n) = model.to_params();
+    let map = |x: f32| (a + b * f64::from(x)) as f32;
+    let (lo, hi) = (map(wire.moisture_pct.min), map(wire.moisture_pct.max));
+    let made_s = (crate::store::now_unix_ms() / 1000).max(0) as u64;
+    let new_wire = ProductCal {
+        params: heapless::Vec::from_slice(&params[..n])
+            .map_err(|_| anyhow::anyhow!("adjusted model has too many parameters"))?,
+        moisture_pct: Range {
+            min: lo.min(hi),
+            max: lo.max(hi),
+        },
+        made_s,
+        ..wire.clone()
+    };
+    let words = match applied {
+        Correction::Bias => format!(
+            "bias {:+.3} % removed (t {:.2} vs {:.2}, {} pairs, alpha {})",
+            tests.bias, tests.bias_t, tests.bias_t_crit, tests.n, args.alpha
+        ),
+        _ => format!(
+            "lab = {a:.4} + {b:.4} x predicted (slope t {:.2} vs {:.2}, bias {:+.3} %, {} pairs, alpha {})",
+            tests.slope_t, tests.slope_t_crit, tests.bias, tests.n, args.alpha
+        ),
+    };
+    let mut source = file.source.clone();
+    source.parent_id = Some(file.id.clone());
+    source.derivation = Some(format!("{words}; pairs: {}", pairs.source));
+    let input_names: Vec<&str> = file.inputs.iter().map(|r| r.name.as_str()).collect();
+    let mut new_file =
+        ProductFile::from_wire(&new_wire, &input_names, file.statistics.clone(), source);
+    new_file.prediction = file.prediction.clone();
+    if let Some(p) = &mut new_file.prediction {
+        // Intervals scale with the slope.
+        p.residual_sd *= b.abs();
+        p.interval_sd *= b.abs();
+    }
+    new_file.save(&args.out)?;
+    Ok(AdjustOutcome {
+        tests,
+        applied,
+        file: Some(new_file),
+        source: pairs.source,
+    })
+}
+
+/// `fringe cal adjust`: tests, prints, and writes the corrected calibration
+/// when a correction applies.
+///
+/// # Errors
+/// As [`adjust`].
+pub fn run_adjust(args: &AdjustArgs) -> anyhow::Result<()> {
+    let o = adjust(args)?;
+    print_adjust(args, &o, &mut std::io::stdout().lock())
+}
+
+/// Prints a `cal adjust` outcome (text, or one JSON object with `--json`).
+///
+/// # Errors
+/// A failed write.
+pub fn print_adjust(
+    args: &AdjustArgs,
+    o: &AdjustOutcome,
+    w: &mut dyn std::io::Write,
+) -> anyhow::Result<()> {
+    use fringe_calibration::fit::adjust::Correction;
+    let t = &o.tests;
+    if args.json {
+        let v = json!({
+            "pairs": t.n,
+            "source": o.source,
+            "alpha": t.alpha,
+            "bias": {"value": t.bias, "ci": [t.bias_ci.0, t.bias_ci.1], "t": t.bias_t, "t_crit": t.bias_t_crit, "significant": t.bias_significant},
+            "slope": {"value": t.slope, "intercept": t.intercept, "se": t.slope_se, "ci": [t.slope_ci.0, t.slope_ci.1], "t": t.slope_t, "t_crit": t.slope_t_crit, "significant": t.slope_significant},
+            "sep": {"value": t.sep, "ci": [t.sep_ci.0, t.sep_ci.1]},
+            "applied": format!("{:?}", o.applied),
+            "written": o.file.as_ref().map(|f| json!({"file": args.out.display().to_string(), "id": f.id, "parent_id": f.source.parent_id})),
+        });
+        writeln!(w, "{v}")?;
+        return Ok(());
+    }
+    let conf = 100.0 * (1.0 - t.alpha);
+    writeln!(w, "{} lab pairs ({})", t.n, o.source)?;
+    writeln!(
+        w,
+        "  bias  {:+.3} % (predicted - lab), {conf:.0} % CI {:+.3}..{:+.3}; t {:.2} vs {:.2}: {}",
+        t.bias,
+        t.bias_ci.0,
+        t.bias_ci.1,
+        t.bias_t,
+        t.bias_t_crit,
+        if t.bias_significant {
+            "significant"
+        } else {
+            "not significant"
+        }
+    )?;
+    writeln!(
+        w,
+        "  slope {:.4} (lab on predicted), {conf:.0} % CI {:.4}..{:.4}; t {:.2} vs {:.2}: {}",
+        t.slope,
+        t.slope_ci.0,
+        t.slope_ci.1,
+        t.slope_t,
+        t.slope_t_crit,
+        if t.slope_significant {
+            "differs from 1"
+        } else {
+            "not different from 1"
+        }
+    )?;
+    writeln!(
+        w,
+        "  SEP   {:.3} %, {conf:.0} % CI {:.3}..{:.3}",
+        t.sep, t.sep_ci.0, t.sep_ci.1
+    )?;
+    match (&o.file, o.applied) {
+        (Some(f), _) => writeln!(
+            w,
+            "wrote {} (calibration id {}, parent {}): {}\npush it with `fringe cal push` like any other",
+            args.out.display(),
+            f.id,
+            f.source.parent_id.as_deref().unwrap_or("-"),
+            f.source.derivation.as_deref().unwrap_or("")
+        )?,
+        (None, Correction::None) => writeln!(
+            w,
+            "neither bias nor slope is significant: no correction, nothing written"
+        )?,
+        (None, _) => {}
+    }
+    Ok(())
 }

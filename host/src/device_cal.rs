@@ -146,6 +146,30 @@ pub struct PushArgs {
     /// Do not ask for confirmation.
     #[arg(long)]
     pub yes: bool,
+    /// Push even if the calibration fails the quality gate (RPD < 2, R^2 < 0.8,
+    /// fewer than 5 samples per parameter); the override is kept in the audit record.
+    #[arg(long)]
+    pub force: bool,
+}
+
+/// `cal push`'s quality gate on a calibration file: the refusals to record
+/// when `force` overrides them.
+///
+/// # Errors
+/// [`crate::cal::GateRefused`] when the file fails the gate and `force` is off.
+pub fn push_gate(path: &Path, file: &ProductFile, force: bool) -> anyhow::Result<Vec<String>> {
+    let refusals = crate::cal::gate_of_file(&file.statistics);
+    if !refusals.is_empty() && !force {
+        return Err(crate::cal::GateRefused {
+            what: path.display().to_string(),
+            refusals,
+        }
+        .into());
+    }
+    Ok(refusals
+        .into_iter()
+        .map(|r| format!("at push (--force): {r}"))
+        .collect())
 }
 
 /// `fringe cal list`.
@@ -487,6 +511,8 @@ pub fn cell_calibration(
             action: "cell".into(),
             statistics: None,
             verification: Some(words),
+            parent_id: None,
+            derivation: None,
         },
     )?;
     Ok(CellOutcome {
@@ -764,6 +790,8 @@ pub fn push(
             action: "push".into(),
             statistics: Some(file.statistics.clone()),
             verification: Some(format!("read back from slot {slot}: id {new}")),
+            parent_id: file.source.parent_id.clone(),
+            derivation: file.source.derivation.clone(),
         },
     )?;
     Ok(PushOutcome {
@@ -833,6 +861,8 @@ pub fn select(
             action: "select".into(),
             statistics: None,
             verification: Some(format!("device reports slot {} active", s.slot)),
+            parent_id: None,
+            derivation: None,
         },
     )?;
     Ok((s.slot, s.id))

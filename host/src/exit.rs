@@ -23,6 +23,8 @@ pub enum ExitCode {
     BadFile = 3,
     /// 4: the requested work finished but found problems (e.g. a broken audit chain).
     Problems = 4,
+    /// 5: a product calibration failed the quality gate; nothing was written (`--force` overrides, recorded).
+    GateRefused = 5,
     /// 10: the serial port does not exist (adapter unplugged, wrong name).
     PortMissing = 10,
     /// 11: the serial port is in use by another program.
@@ -90,6 +92,9 @@ impl ExitCode {
             {
                 return ExitCode::Problems;
             }
+            if cause.downcast_ref::<crate::cal::GateRefused>().is_some() {
+                return ExitCode::GateRefused;
+            }
             if let Some(e) = cause.downcast_ref::<io::Error>() {
                 if e.kind() == io::ErrorKind::StorageFull {
                     return ExitCode::DiskFull;
@@ -128,6 +133,7 @@ mod tests {
             ExitCode::Usage,
             ExitCode::BadFile,
             ExitCode::Problems,
+            ExitCode::GateRefused,
             ExitCode::PortMissing,
             ExitCode::PortBusy,
             ExitCode::PortPermission,

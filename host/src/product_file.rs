@@ -11,7 +11,7 @@
 //! ```toml
 //! format = "fringe-product/1"
 //! name = "HM wheat L2"          # at most 16 bytes, as the plant calls it
-//! model = "relaxation"          # or "single_frequency"
+//! model = "relaxation"          # or "single_frequency", "multivariate"
 //! basis = "wet"                 # or "dry"
 //! id = "1a2b3c4d"               # content id (first 4 bytes of SHA-256 of the wire form)
 //! made_unix_s = 1796000000
@@ -65,6 +65,14 @@ pub struct Statistics {
     pub rpd: f64,
     /// Cross-validation split, in words.
     pub cross_validation: String,
+    /// Parameters fitted (effective ones for ridge and PLS; constant
+    /// included), for the quality gate. Absent in older files.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub n_params: Option<usize>,
+    /// Quality-gate refusals overridden with `--force` (at fit or push), in
+    /// words; empty when the calibration passed the gate.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub gate_overridden: Vec<String>,
 }
 
 /// Where the calibration came from.
@@ -81,6 +89,13 @@ pub struct Source {
     /// predict` check them). Absent in files written before it was kept.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub freqs_hz: Option<[f64; 2]>,
+    /// The calibration this one was derived from (`cal adjust`), 8 hex
+    /// digits; `cal push` names it in the audit record.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub parent_id: Option<String>,
+    /// How it was derived from its parent, in words.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub derivation: Option<String>,
 }
 
 /// Whether two frequency pairs agree to 0.5 % (the device's own tolerance
@@ -89,6 +104,29 @@ pub fn same_freqs(a: [f64; 2], b: [f64; 2]) -> bool {
     a.iter()
         .zip(b.iter())
         .all(|(x, y)| (x / y - 1.0).abs() <= 0.005)
+}
+
+/// What `cal predict` needs for a reading's prediction interval and
+/// leverage (`fringe_calibration::fit::product::IntervalModel`); not part of
+/// the device's calibration nor of its id.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Prediction {
+    /// Feature columns of the leverage.
+    pub columns: Vec<usize>,
+    /// Leverage matrix over them, row-major.
+    pub leverage_matrix: Vec<f64>,
+    /// Residual SD of the fit, %.
+    pub residual_sd: f64,
+    /// SD of a new reading's error at average leverage (cross-validated RMSEP), %.
+    pub interval_sd: f64,
+    /// Mean leverage of the calibration samples.
+    pub mean_leverage: f64,
+    /// Largest leverage of the calibration samples.
+    pub max_leverage: f64,
+    /// Degrees of freedom of the t quantile.
+    pub dof: usize,
+    /// Noise SD of eps' and eps'' assumed by the fit.
+    pub eps_sd: f64,
 }
 
 /// One input range.
@@ -109,7 +147,7 @@ pub struct ProductFile {
     pub format: String,
     /// Product name (at most 16 bytes).
     pub name: String,
-    /// `single_frequency` or `relaxation`.
+    /// `single_frequency`, `relaxation` or `multivariate`.
     pub model: String,
     /// `wet` or `dry`.
     pub basis: String,
@@ -131,6 +169,10 @@ pub struct ProductFile {
     pub statistics: Statistics,
     /// Provenance.
     pub source: Source,
+    /// Prediction intervals and leverage for `cal predict` (absent in files
+    /// written before it was kept).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub prediction: Option<Prediction>,
 }
 
 /// A product file could not be used.
@@ -195,6 +237,7 @@ fn model_name(m: ModelKind) -> &'static str {
     match m {
         ModelKind::SingleFrequency => "single_frequency",
         ModelKind::Relaxation => "relaxation",
+        ModelKind::Multivariate => "multivariate",
     }
 }
 
@@ -234,6 +277,7 @@ impl ProductFile {
                 .collect(),
             statistics,
             source,
+            prediction: None,
         }
     }
 
@@ -263,10 +307,11 @@ impl ProductFile {
         let model = match self.model.as_str() {
             "single_frequency" => ModelKind::SingleFrequency,
             "relaxation" => ModelKind::Relaxation,
+            "multivariate" => ModelKind::Multivariate,
             m => {
                 return Err(bad(
                     "model",
-                    format!("`{m}` is not single_frequency or relaxation"),
+                    format!("`{m}` is not single_frequency, relaxation or multivariate"),
                 ))
             }
         };

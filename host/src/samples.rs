@@ -325,8 +325,10 @@ pub fn parse_samples(
             }
         };
         let temperature_c = num(2)?;
-        if !(-60.0..=250.0).contains(&temperature_c) {
-            return Err(bad(2, field(2).1, "a temperature in C between -60 and 250"));
+        // Physical limits of a product at a sensor (issue 11): an input
+        // error, not a sample to fit.
+        if !(-40.0..=150.0).contains(&temperature_c) {
+            return Err(bad(2, field(2).1, "a temperature in C between -40 and 150"));
         }
         let mut freqs_hz = [0.0; 2];
         let mut eps_re = [0.0; 2];

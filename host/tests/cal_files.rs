@@ -166,7 +166,9 @@ fn predict_refuses_samples_at_other_frequencies() {
     let dir = tempfile::tempdir().expect("dir");
     let lab = dir.path().join("lab.csv");
     // Moisture and temperature varied independently (made-up values).
-    let rows: Vec<String> = (0..14)
+    // 24 samples: five per parameter of the single-frequency model (the
+    // quality gate of `cal fit`).
+    let rows: Vec<String> = (0..24)
         .map(|i| {
             let m = 10.0 + 0.6 * f64::from(i);
             format!(

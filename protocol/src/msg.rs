@@ -31,7 +31,7 @@ pub const NAME_LEN: usize = 16;
 /// Longest error reason, in bytes.
 pub const REASON_LEN: usize = 32;
 /// Most parameters a product calibration carries (layout owned by `fringe-calibration`).
-pub const MAX_CAL_PARAMS: usize = 24;
+pub const MAX_CAL_PARAMS: usize = 32;
 /// Most input ranges a product calibration carries.
 pub const MAX_CAL_INPUTS: usize = 6;
 /// Most readings in one [`Response::Log`] chunk.
@@ -248,6 +248,9 @@ pub enum ModelKind {
     /// Relaxation inversion, water fraction through a mixing model, plus
     /// temperature and conductivity terms.
     Relaxation,
+    /// Linear combination of physically chosen features of both
+    /// frequencies (chemometrics: ridge or PLS on the host). Appended: tag 2.
+    Multivariate,
 }
 
 /// Cell calibration at one frequency: Y = jw Cp + jw C0 eps* + G0.
@@ -599,6 +602,8 @@ impl Settings {
 }
 
 /// Requests from the host.
+// No heap to box into: variants stay inline (`WriteProductCal` is the largest).
+#[allow(clippy::large_enum_variant)]
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub enum Request {
     /// Handshake: the host's protocol version.

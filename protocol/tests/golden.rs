@@ -285,6 +285,23 @@ fn golden_stale_output_event() {
     check_golden("DeviceFrame Event Fault StaleOutput", &msg, STALE_OUTPUT);
 }
 
+/// `ModelKind` is a postcard enum: its tag is the variant's position, so
+/// variants are only appended (issue 11 appended `Multivariate`, tag 2).
+#[test]
+fn golden_model_kind_tags() {
+    for (kind, tag) in [
+        (ModelKind::SingleFrequency, 0x00u8),
+        (ModelKind::Relaxation, 0x01),
+        (ModelKind::Multivariate, 0x02),
+    ] {
+        let mut buf = [0u8; 4];
+        let out = postcard::to_slice(&kind, &mut buf).unwrap();
+        assert_eq!(out, &[tag], "{kind:?}");
+        assert_eq!(postcard::from_bytes::<ModelKind>(&[tag]).unwrap(), kind);
+    }
+    assert!(postcard::from_bytes::<ModelKind>(&[0x03]).is_err());
+}
+
 /// The fuzz seed corpus holds these same frames (after the chunk-size byte
 /// the decoder target reads first; payload-only for the payload target), so
 /// it cannot drift from the wire format.

@@ -339,3 +339,27 @@ fn streamed_reading_frame_at_most_61_bytes() {
         Ok(())
     });
 }
+
+/// The largest product calibration (32 params, 6 input ranges, a full
+/// name, the largest time) as the device stores it (`Option<ProductCal>`,
+/// postcard) fits the firmware storage's 320-byte item buffer
+/// (`fringe_firmware::storage::ITEM_BUF`, mirrored here: the protocol crate
+/// does not depend on the firmware).
+#[test]
+fn largest_product_cal_fits_the_storage_item() {
+    let cal = ProductCal {
+        name: short_string::<NAME_LEN>("Harrowgate Mill!"),
+        model: ModelKind::Multivariate,
+        basis: Basis::Dry,
+        params: core::iter::repeat_n(1.0f32, MAX_CAL_PARAMS).collect(),
+        moisture_pct: Range::default(),
+        temperature_c: Range::default(),
+        inputs: core::iter::repeat_n(Range::default(), MAX_CAL_INPUTS).collect(),
+        sec_pct: 0.3,
+        made_s: u64::MAX,
+    };
+    let mut buf = [0u8; 512];
+    let n = postcard::to_slice(&Some(cal), &mut buf).unwrap().len();
+    eprintln!("largest stored product calibration: {n} bytes");
+    assert!(n <= 320, "{n} bytes");
+}

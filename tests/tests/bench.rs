@@ -243,12 +243,13 @@ fn capture_push_list_select_and_history() {
     }
 
     // Two product calibrations fitted from a reference table (values made
-    // up for the test; only their ids and names matter here).
+    // up for the test; only their ids and names matter here). 24 samples:
+    // five per parameter (the quality gate of `cal fit` and `cal push`).
     let table = sim.path("ref.csv");
     let mut t = String::from(
         "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im\n",
     );
-    for i in 0..14 {
+    for i in 0..24 {
         let m = 10.0 + 0.6 * f64::from(i);
         t.push_str(&format!(
             "R{i},{m},{},1000000,{},{},20000000,{},{}\n",

@@ -103,6 +103,8 @@ pub(crate) struct LawFit {
     pub params: Vec<[f64; 3]>,
     /// Standard errors of theta (0 for a parameter held fixed).
     pub std_err: Theta,
+    /// Whether the fit met its convergence test within its budget.
+    pub converged: bool,
 }
 
 struct Data<'a> {
@@ -340,7 +342,10 @@ pub(crate) fn fit_law(
             }
         }
     }
-    if !converged {
+    // At the end of the budget a finite cost is still the best law found
+    // (a law that hardly shows in the band converges slowly: the spectra
+    // barely determine it); it is kept and said so (`converged`).
+    if !converged && !cost.is_finite() {
         return Err(LawError::NotConverged);
     }
     // Covariance of theta: s^2 S^-1 (undamped reduced system) at the solution.
@@ -373,13 +378,16 @@ pub(crate) fn fit_law(
             }
         }
     } else {
-        return Err(LawError::Singular);
+        // The spectra do not determine the law (e.g. a relaxation far
+        // outside the band): its standard errors are unbounded.
+        std_err = [f64::INFINITY; 4];
     }
     Ok(LawFit {
         theta,
         cost,
         params: ps,
         std_err,
+        converged,
     })
 }
 

@@ -6,18 +6,24 @@
 //!   errors from the Jacobian at the solution.
 //!
 //! - [`product`]: product-model fitting from lab samples (`fit_single`,
-//!   `fit_relaxation`, `compare`), statistics through the device's own
-//!   estimate.
+//!   `fit_relaxation`, `fit_multivariate`, `compare_models`), statistics
+//!   through the device's own estimate.
+//! - [`chemo`]: ridge regression and PLS1 (scikit-learn's conventions).
+//! - [`zoo`]: synthetic products for tests and benchmarks.
 //!
 //! The solvers are checked against the NIST Statistical Reference Datasets
 //! (`calibration/tests/nist_strd.rs`). Calibration statistics and
 //! cross-validation live in [`crate::stats`].
 
+pub mod adjust;
+pub mod chemo;
+pub mod gate;
 mod law;
 pub mod linear;
 pub mod nonlinear;
 pub mod product;
 pub mod rng;
+pub mod zoo;
 
 pub use linear::{fit_linear, polynomial_design, LinearFit};
 pub use nonlinear::{
@@ -25,9 +31,10 @@ pub use nonlinear::{
     NoGradient, NonlinearFit, Problem, Termination,
 };
 pub use product::{
-    compare, fit_relaxation, fit_single, synthetic_samples, ChannelReading, Comparison,
-    FitStatistics, MixingFit, ProductFit, ProductFitError, RelaxationOptions, Sample, SampleResult,
-    SingleOptions, SynthSpec,
+    compare, compare_models, fit_multivariate, fit_relaxation, fit_single, synthetic_samples,
+    Candidate, ChannelReading, CompareOptions, Comparison, Excluded, FitStatistics, IntervalModel,
+    MixingFit, ModelComparison, MultivariateOptions, MvMethod, ProductFit, ProductFitError,
+    RelaxationOptions, Sample, SampleResult, SingleOptions, SynthSpec,
 };
 pub use rng::SeededRng;
 

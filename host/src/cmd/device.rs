@@ -519,6 +519,8 @@ pub fn write_settings(
         action: "settings".into(),
         statistics: None,
         verification: None,
+        parent_id: None,
+        derivation: None,
     };
     let mut body = serde_json::to_value(body)?;
     body["previous"] = serde_json::to_value(old)?;

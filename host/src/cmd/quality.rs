@@ -3,7 +3,7 @@
 
 use clap::{Args, Subcommand};
 
-use crate::cal::{self, FitArgs, PredictArgs};
+use crate::cal::{self, AdjustArgs, FitArgs, PredictArgs};
 use crate::config::LineConfig;
 use crate::device_cal::{self, CaptureArgs, CellArgs, ListArgs, PushArgs, SelectArgs, Terminal};
 use crate::product_file::ProductFile;
@@ -25,6 +25,8 @@ pub enum CalCommand {
     Fit(FitArgs),
     /// Evaluate a product calibration on a sample table exactly as the device does.
     Predict(PredictArgs),
+    /// Bias/slope check of a calibration against lab pairs (ISO 12099 tests); write the corrected one.
+    Adjust(AdjustArgs),
     /// Bench cell calibration: air, a reference liquid, verification with a further liquid.
     Cell(CellArgs),
     /// Record reference samples from a connected device.
@@ -47,6 +49,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     match &a.command {
         CalCommand::Fit(f) => cal::run_fit(f),
         CalCommand::Predict(p) => cal::run_predict(p),
+        CalCommand::Adjust(a) => cal::run_adjust(a),
         CalCommand::History(h) => quality::history(h),
         CalCommand::Cell(c) => {
             let key = device_cal::load_key(&c.key.key_file)?;
@@ -80,7 +83,9 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             Ok(())
         }
         CalCommand::Push(p) => {
-            let (file, wire) = ProductFile::load(&p.cal)?;
+            let (mut file, wire) = ProductFile::load(&p.cal)?;
+            let overridden = device_cal::push_gate(&p.cal, &file, p.force)?;
+            file.statistics.gate_overridden.extend(overridden);
             let key = device_cal::load_key(&p.key.key_file)?;
             let mut store = Store::open(&p.db)?;
             let mut link = super::connect(&p.port, cfg)?;

@@ -1,0 +1,340 @@
+//! The zoo benchmark (not a test): every product of `fit::zoo` at every
+//! frequency pair, every model of `compare_models` and the generic
+//! quadratic ridge baseline; validation SEP on fresh samples, on samples
+//! 10 C beyond the calibrated temperatures and at up to twice the
+//! calibrated water conductivity; bias and 95 % interval coverage of the
+//! chosen model; the time of the whole comparison (every model with its
+//! cross-validation) for 60 and 200 samples.
+//!
+//! `cargo run --release -p fringe-calibration --example zoo_bench [-- --quick]`
+//! (`--quick`: 60 samples only; `--density`: the density table only;
+//! `--timing`: each model's fit time). Seed: FRINGE_SEED (default 1).
+#[path = "../tests/common/baseline.rs"]
+mod baseline;
+
+use fringe_calibration::fit::product::{
+    compare_models, fit_multivariate, fit_relaxation, fit_single, Candidate, CompareOptions,
+    MultivariateOptions, MvMethod, ProductFit, RelaxationOptions, Sample, SingleOptions,
+};
+use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS};
+use fringe_calibration::stats::Folds;
+use std::time::Instant;
+
+fn sep(e: &[f64]) -> f64 {
+    let n = e.len() as f64;
+    let m = e.iter().sum::<f64>() / n;
+    (e.iter().map(|v| (v - m).powi(2)).sum::<f64>() / (n - 1.0)).sqrt()
+}
+
+/// Errors of a fit on `val` through the device path (readings without a
+/// moisture are counted apart).
+fn errors(f: &ProductFit, val: &[Sample]) -> (Vec<f64>, usize, usize) {
+    let (mut e, mut missing, mut inside) = (Vec::new(), 0, 0);
+    for s in val {
+        match f.predict(&s.channels, s.temperature_c, 0.95) {
+            Ok(p) => match (p.estimate.moisture_pct, p.interval_pct) {
+                (Some(m), Some((lo, hi))) => {
+                    e.push(f64::from(m) - s.moisture_pct);
+                    if (lo..=hi).contains(&s.moisture_pct) {
+                        inside += 1;
+                    }
+                }
+                _ => missing += 1,
+            },
+            Err(_) => missing += 1,
+        }
+    }
+    (e, missing, inside)
+}
+
+/// The effect of density variation: for each product whose bulk density
+/// varies, at 1/20 MHz, the chosen model's validation SEP with the density
+/// varying as the product says and with it held at its nominal value, and
+/// the ridge model with and without Trabelsi-Kraszewski-Nelson's
+/// density-independent psi (on fresh samples and at twice the calibrated
+/// salt).
+fn density_table(seed: u64) {
+    println!();
+    println!("| product | density varies | chosen, density varying | chosen, density fixed | ridge without psi | ridge with psi | ridge 2x salt without / with psi |");
+    println!("| --- | --- | --- | --- | --- | --- | --- |");
+    for f in Family::all()
+        .into_iter()
+        .filter(|f| f.density_variation > 0.0)
+    {
+        let pair = FREQ_PAIRS[0];
+        let fixed = Family {
+            density_variation: 0.0,
+            ..f
+        };
+        let mut cells = Vec::new();
+        for g in [f, fixed] {
+            let opts = CompareOptions {
+                single: SingleOptions::default(),
+                relaxation: Some(RelaxationOptions {
+                    refit_nonlinear_in_cv: true,
+                    ..RelaxationOptions::new(g.bulk_density_kg_m3, g.particle_density_kg_m3)
+                }),
+                eps_sd: g.eps_noise_sd.max(1e-3),
+                folds: Folds::LeaveOneOut,
+            };
+            let train = g.samples(&Draw::new(60, pair), seed);
+            let val = g.samples(&Draw::new(200, pair), seed + 1000);
+            cells.push(match compare_models(&train, &opts) {
+                Ok(c) => format!(
+                    "{} {:.3}",
+                    c.chosen.name(),
+                    sep(&errors(c.chosen_fit(), &val).0)
+                ),
+                Err(e) => format!("none: {e}"),
+            });
+        }
+        let train = f.samples(&Draw::new(60, pair), seed);
+        let val = f.samples(&Draw::new(200, pair), seed + 1000);
+        let salty = f.samples(
+            &Draw {
+                water_sigma25_s_m: Some((f.water_sigma25_s_m.1, 2.0 * f.water_sigma25_s_m.1)),
+                ..Draw::new(200, pair)
+            },
+            seed + 3000,
+        );
+        let mut ridge = Vec::new();
+        for psi in [false, true] {
+            let o = MultivariateOptions {
+                eps_sd: f.eps_noise_sd.max(1e-3),
+                density_independent: psi,
+                ..MultivariateOptions::default()
+            };
+            ridge.push(match fit_multivariate(&train, &o) {
+                Ok(fit) => (sep(&errors(&fit, &val).0), sep(&errors(&fit, &salty).0)),
+                Err(_) => (f64::NAN, f64::NAN),
+            });
+        }
+        println!(
+            "| {} | +/-{:.0} % | {} | {} | {:.3} | {:.3} | {:.3} / {:.3} |",
+            f.name,
+            100.0 * f.density_variation,
+            cells[0],
+            cells[1],
+            ridge[0].0,
+            ridge[1].0,
+            ridge[0].1,
+            ridge[1].1
+        );
+    }
+}
+
+/// Time of each model's fit with its cross-validation, 200 samples, leave-
+/// one-out and 10-fold (the median of 3 runs).
+fn timing_table(seed: u64) {
+    println!();
+    println!("| product, 200 samples, 1/20 MHz | folds | single | relaxation | PLS | ridge |");
+    println!("| --- | --- | --- | --- | --- | --- |");
+    for f in [Family::grain(), Family::sand(), Family::food_powder()] {
+        let train = f.samples(&Draw::new(200, FREQ_PAIRS[0]), seed);
+        for folds in [Folds::LeaveOneOut, Folds::KFold(10)] {
+            let time = |run: &dyn Fn() -> bool| -> String {
+                let mut t: Vec<f64> = (0..3)
+                    .map(|_| {
+                        let t0 = Instant::now();
+                        let ok = run();
+                        let dt = t0.elapsed().as_secs_f64() * 1e3;
+                        if ok {
+                            dt
+                        } else {
+                            f64::NAN
+                        }
+                    })
+                    .collect();
+                t.sort_by(f64::total_cmp);
+                if t[1].is_nan() {
+                    "refused".into()
+                } else {
+                    format!("{:.0} ms", t[1])
+                }
+            };
+            let single = time(&|| {
+                fit_single(
+                    &train,
+                    &SingleOptions {
+                        folds,
+                        ..SingleOptions::default()
+                    },
+                )
+                .is_ok()
+            });
+            let relax = time(&|| {
+                fit_relaxation(
+                    &train,
+                    &RelaxationOptions {
+                        refit_nonlinear_in_cv: true,
+                        folds,
+                        ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+                    },
+                )
+                .is_ok()
+            });
+            let mv = |method| {
+                time(&|| {
+                    fit_multivariate(
+                        &train,
+                        &MultivariateOptions {
+                            method,
+                            folds,
+                            ..MultivariateOptions::default()
+                        },
+                    )
+                    .is_ok()
+                })
+            };
+            println!(
+                "| {} | {} | {single} | {relax} | {} | {} |",
+                f.name,
+                match folds {
+                    Folds::LeaveOneOut => "leave-one-out".to_string(),
+                    Folds::KFold(k) => format!("{k}-fold"),
+                },
+                mv(MvMethod::Pls),
+                mv(MvMethod::Ridge)
+            );
+        }
+    }
+}
+
+fn main() {
+    let quick = std::env::args().any(|a| a == "--quick");
+    let seed: u64 = std::env::var("FRINGE_SEED")
+        .ok()
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(1);
+    println!("seed {seed}");
+    if std::env::args().any(|a| a == "--density") {
+        density_table(seed);
+        return;
+    }
+    if std::env::args().any(|a| a == "--timing") {
+        timing_table(seed);
+        return;
+    }
+    println!("| product | f1/f2 MHz | single | relaxation | PLS | ridge | baseline | chosen | bias | coverage 95 % | T+10 C chosen / baseline | 2x sigma chosen / baseline | fit 60 | fit 200 | fit 200, 10-fold |");
+    println!(
+        "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"
+    );
+    for f in Family::all() {
+        for pair in FREQ_PAIRS {
+            let opts = CompareOptions {
+                single: SingleOptions::default(),
+                relaxation: Some(RelaxationOptions {
+                    refit_nonlinear_in_cv: true,
+                    ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+                }),
+                eps_sd: f.eps_noise_sd.max(1e-3),
+                folds: Folds::LeaveOneOut,
+            };
+            let train = f.samples(&Draw::new(60, pair), seed);
+            let t0 = Instant::now();
+            let cmp = compare_models(&train, &opts);
+            let t60 = t0.elapsed().as_secs_f64();
+            let (t200, t200k) = if quick {
+                (f64::NAN, f64::NAN)
+            } else {
+                let big = f.samples(&Draw::new(200, pair), seed + 7);
+                let t0 = Instant::now();
+                let _ = compare_models(&big, &opts);
+                let a = t0.elapsed().as_secs_f64();
+                let t0 = Instant::now();
+                let _ = compare_models(
+                    &big,
+                    &CompareOptions {
+                        folds: Folds::KFold(10),
+                        ..opts
+                    },
+                );
+                (a, t0.elapsed().as_secs_f64())
+            };
+            let val = f.samples(&Draw::new(200, pair), seed + 1000);
+            let hot = f.samples(
+                &Draw {
+                    temperature_c: Some((f.temperature_c.1, f.temperature_c.1 + 10.0)),
+                    ..Draw::new(200, pair)
+                },
+                seed + 2000,
+            );
+            let salty = f.samples(
+                &Draw {
+                    water_sigma25_s_m: Some((f.water_sigma25_s_m.1, 2.0 * f.water_sigma25_s_m.1)),
+                    ..Draw::new(200, pair)
+                },
+                seed + 3000,
+            );
+            let base = baseline::Baseline::fit(&train);
+            let base_sep = |v: &[Sample]| {
+                sep(&v
+                    .iter()
+                    .map(|s| base.predict(&s.channels, s.temperature_c) - s.moisture_pct)
+                    .collect::<Vec<_>>())
+            };
+            let cell = |c: Candidate| -> String {
+                match &cmp {
+                    Ok(m) => match m.results.iter().find(|r| r.0 == c).map(|r| &r.1) {
+                        Some(Ok(fit)) => {
+                            let (e, miss, _) = errors(fit, &val);
+                            let mark = if fit.excluded.is_empty() { "" } else { "*" };
+                            if e.len() < 3 {
+                                "no values".into()
+                            } else if miss > 0 {
+                                format!("{:.3}{mark} ({miss} none)", sep(&e))
+                            } else {
+                                format!("{:.3}{mark}", sep(&e))
+                            }
+                        }
+                        Some(Err(_)) => "refused".into(),
+                        None => "-".into(),
+                    },
+                    Err(_) => "-".into(),
+                }
+            };
+            let (chosen, bias, cov, hot_s, salty_s) = match &cmp {
+                Ok(m) => {
+                    let fit = m.chosen_fit();
+                    let (e, _, inside) = errors(fit, &val);
+                    let bias = e.iter().sum::<f64>() / e.len() as f64;
+                    let (eh, _, _) = errors(fit, &hot);
+                    let (es, _, _) = errors(fit, &salty);
+                    (
+                        format!("{} {:.3}", m.chosen.name(), sep(&e)),
+                        format!("{bias:+.3}"),
+                        format!("{:.1} %", 100.0 * inside as f64 / val.len() as f64),
+                        format!("{:.3} / {:.3}", sep(&eh), base_sep(&hot)),
+                        format!("{:.3} / {:.3}", sep(&es), base_sep(&salty)),
+                    )
+                }
+                Err(e) => (
+                    format!("none: {e}"),
+                    "-".into(),
+                    "-".into(),
+                    "-".into(),
+                    "-".into(),
+                ),
+            };
+            println!(
+                "| {} | {}/{} | {} | {} | {} | {} | {:.3} | {} | {} | {} | {} | {} | {:.2} s | {:.2} s | {:.0} ms |",
+                f.name,
+                pair[0] / 1e6,
+                pair[1] / 1e6,
+                cell(Candidate::SingleFrequency),
+                cell(Candidate::Relaxation),
+                cell(Candidate::MultivariatePls),
+                cell(Candidate::MultivariateRidge),
+                base_sep(&val),
+                chosen,
+                bias,
+                cov,
+                hot_s,
+                salty_s,
+                t60,
+                t200,
+                1e3 * t200k
+            );
+        }
+    }
+}

@@ -1,0 +1,178 @@
+//! Keeping a calibration right over time (feature `fit`): bias and slope of
+//! a calibration against new lab pairs, with the significance tests of ISO
+//! 12099 (its statistics apply to any secondary method; docs/REFERENCES.md §11,
+//! from memory: check the standard's worked example before relying on the
+//! exact wording), and the corrected calibration.
+//!
+//! With `e_i = predicted_i - lab_i` over n pairs:
+//!
+//! - **Bias** `mean(e)`, SEP the bias-corrected SD of `e` (n - 1). The bias
+//!   is significant at level alpha when `|bias| sqrt(n) / SEP > t(1 -
+//!   alpha/2, n - 1)`; its confidence limits are `bias +/- t SEP / sqrt(n)`.
+//! - **Slope** of the lab values regressed on the predicted ones (the
+//!   direction ISO 12099 uses for a slope correction): `lab = a + b pred`,
+//!   `SE(b) = s_res / sqrt(sum (pred - mean)^2)` with `s_res` the residual SD
+//!   (n - 2). The slope differs significantly from 1 when `|b - 1| / SE(b)
+//!   > t(1 - alpha/2, n - 2)`.
+//! - **SEP confidence limits** from the chi-square distribution:
+//!   `SEP sqrt((n - 1) / chi2(1 - alpha/2, n - 1))` to
+//!   `SEP sqrt((n - 1) / chi2(alpha/2, n - 1))`.
+//!
+//! The tests check these figures against SciPy 1.17.1 on a worked example
+//! (`tests/adjust_scipy.rs`).
+
+use statrs::distribution::{ChiSquared, ContinuousCDF};
+
+use crate::stats::{t_quantile, StatsError};
+
+/// Bias and slope of a calibration against lab pairs (see the module docs).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct BiasSlope {
+    /// Pairs.
+    pub n: usize,
+    /// Significance level of the tests (e.g. 0.05).
+    pub alpha: f64,
+    /// Mean of predicted - lab, %.
+    pub bias: f64,
+    /// Bias-corrected SD of predicted - lab, %.
+    pub sep: f64,
+    /// Confidence limits of the bias, %.
+    pub bias_ci: (f64, f64),
+    /// `|bias| sqrt(n) / SEP`.
+    pub bias_t: f64,
+    /// `t(1 - alpha/2, n - 1)`.
+    pub bias_t_crit: f64,
+    /// Whether the bias is significant.
+    pub bias_significant: bool,
+    /// Slope b of lab on predicted.
+    pub slope: f64,
+    /// Intercept a of lab on predicted, %.
+    pub intercept: f64,
+    /// Standard error of the slope.
+    pub slope_se: f64,
+    /// Confidence limits of the slope.
+    pub slope_ci: (f64, f64),
+    /// `|b - 1| / SE(b)`.
+    pub slope_t: f64,
+    /// `t(1 - alpha/2, n - 2)`.
+    pub slope_t_crit: f64,
+    /// Whether the slope differs significantly from 1.
+    pub slope_significant: bool,
+    /// Confidence limits of the SEP, %.
+    pub sep_ci: (f64, f64),
+}
+
+/// Bias and slope tests of `predicted` against `lab` at level `alpha`.
+///
+/// # Errors
+/// [`StatsError`] for fewer than 3 pairs, mismatched lengths, non-finite
+/// values, an `alpha` outside (0, 1), or predicted values that do not vary.
+pub fn bias_slope(lab: &[f64], predicted: &[f64], alpha: f64) -> Result<BiasSlope, StatsError> {
+    if lab.len() != predicted.len() {
+        return Err(StatsError::LengthMismatch {
+            what: "predicted",
+            expected: lab.len(),
+            got: predicted.len(),
+        });
+    }
+    let n = lab.len();
+    if n < 3 {
+        return Err(StatsError::TooFew { needed: 3, got: n });
+    }
+    for (what, v) in [("lab", lab), ("predicted", predicted)] {
+        if let Some(index) = v.iter().position(|x| !x.is_finite()) {
+            return Err(StatsError::NonFinite { what, index });
+        }
+    }
+    if !(alpha > 0.0 && alpha < 1.0) {
+        return Err(StatsError::BadConfidence(alpha));
+    }
+    let nf = n as f64;
+    let e: Vec<f64> = predicted.iter().zip(lab).map(|(p, r)| p - r).collect();
+    let bias = e.iter().sum::<f64>() / nf;
+    let sep = (e.iter().map(|x| (x - bias).powi(2)).sum::<f64>() / (nf - 1.0)).sqrt();
+    let tb = t_quantile(1.0 - alpha / 2.0, nf - 1.0)?;
+    let half_b = tb * sep / nf.sqrt();
+    let bias_t = bias.abs() * nf.sqrt() / sep;
+    let (mp, ml) = (
+        predicted.iter().sum::<f64>() / nf,
+        lab.iter().sum::<f64>() / nf,
+    );
+    let (mut sxy, mut sxx) = (0.0, 0.0);
+    for (p, r) in predicted.iter().zip(lab) {
+        sxy += (p - mp) * (r - ml);
+        sxx += (p - mp) * (p - mp);
+    }
+    if !(sxx > 0.0) {
+        return Err(StatsError::TooFew { needed: 2, got: 1 });
+    }
+    let slope = sxy / sxx;
+    let intercept = ml - slope * mp;
+    let rss: f64 = predicted
+        .iter()
+        .zip(lab)
+        .map(|(p, r)| (r - intercept - slope * p).powi(2))
+        .sum();
+    let s_res = (rss / (nf - 2.0)).sqrt();
+    let slope_se = s_res / sxx.sqrt();
+    let ts = t_quantile(1.0 - alpha / 2.0, nf - 2.0)?;
+    let slope_t = (slope - 1.0).abs() / slope_se;
+    let chi = ChiSquared::new(nf - 1.0).map_err(|_| StatsError::TooFew { needed: 2, got: n })?;
+    let sep_ci = (
+        sep * ((nf - 1.0) / chi.inverse_cdf(1.0 - alpha / 2.0)).sqrt(),
+        sep * ((nf - 1.0) / chi.inverse_cdf(alpha / 2.0)).sqrt(),
+    );
+    Ok(BiasSlope {
+        n,
+        alpha,
+        bias,
+        sep,
+        bias_ci: (bias - half_b, bias + half_b),
+        bias_t,
+        bias_t_crit: tb,
+        bias_significant: bias_t > tb,
+        slope,
+        intercept,
+        slope_se,
+        slope_ci: (slope - ts * slope_se, slope + ts * slope_se),
+        slope_t,
+        slope_t_crit: ts,
+        slope_significant: slope_t > ts,
+        sep_ci,
+    })
+}
+
+/// Which correction to apply.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Correction {
+    /// None.
+    None,
+    /// Subtract the bias: `new = old - bias`.
+    Bias,
+    /// Lab on predicted: `new = a + b old`.
+    BiasAndSlope,
+}
+
+impl BiasSlope {
+    /// The correction the tests call for: slope and bias when the slope
+    /// differs significantly from 1, the bias alone when only it is
+    /// significant, else none.
+    pub fn recommended(&self) -> Correction {
+        if self.slope_significant {
+            Correction::BiasAndSlope
+        } else if self.bias_significant {
+            Correction::Bias
+        } else {
+            Correction::None
+        }
+    }
+
+    /// `(a, b)` of `new = a + b old` for a correction.
+    pub fn map(&self, c: Correction) -> (f64, f64) {
+        match c {
+            Correction::None => (0.0, 1.0),
+            Correction::Bias => (-self.bias, 1.0),
+            Correction::BiasAndSlope => (self.intercept, self.slope),
+        }
+    }
+}

@@ -1,0 +1,93 @@
+//! ISO 12099-style bias and slope tests (`fit::adjust`, docs/REFERENCES.md §11.4)
+//! on a worked example
+//! against SciPy 1.17.1: `tests/data/scipy/bias_slope_reference.json`, made
+//! once by `tests/data/scipy/make_bias_slope_reference.py` (versions in the
+//! file; pinned in tests/python/requirements.txt). An outside check: SciPy's
+//! t-test, linear regression and t and chi-square quantiles.
+
+use fringe_calibration::fit::adjust::{bias_slope, Correction};
+use fringe_calibration::product::{ModelKind, ProductModel, SingleFrequencyModel};
+use serde_json::Value;
+
+fn reference() -> Value {
+    let path = concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/data/scipy/bias_slope_reference.json"
+    );
+    serde_json::from_str(&std::fs::read_to_string(path).expect("file")).expect("json")
+}
+
+fn v(x: &Value) -> Vec<f64> {
+    x.as_array()
+        .expect("array")
+        .iter()
+        .map(|a| a.as_f64().expect("number"))
+        .collect()
+}
+
+fn close(a: f64, b: &Value, what: &str) {
+    let b = b.as_f64().expect("number");
+    assert!(
+        (a - b).abs() <= 1e-9 * (1.0 + b.abs()),
+        "{what}: {a} vs SciPy {b}"
+    );
+}
+
+#[test]
+fn bias_and_slope_tests_match_scipy() {
+    let r = reference();
+    assert_eq!(r["versions"]["scipy"], "1.17.1");
+    let b = bias_slope(
+        &v(&r["lab"]),
+        &v(&r["predicted"]),
+        r["alpha"].as_f64().unwrap(),
+    )
+    .unwrap();
+    close(b.bias, &r["bias"], "bias");
+    close(b.sep, &r["sep"], "SEP");
+    close(b.bias_t, &r["bias_t"], "bias t");
+    close(b.bias_t_crit, &r["bias_t_crit"], "t(0.975, n-1)");
+    close(b.bias_ci.0, &r["bias_ci"][0], "bias low");
+    close(b.bias_ci.1, &r["bias_ci"][1], "bias high");
+    close(b.slope, &r["slope"], "slope");
+    close(b.intercept, &r["intercept"], "intercept");
+    close(b.slope_se, &r["slope_se"], "SE(slope)");
+    close(b.slope_t, &r["slope_t"], "slope t");
+    close(b.slope_t_crit, &r["slope_t_crit"], "t(0.975, n-2)");
+    close(b.sep_ci.0, &r["sep_ci"][0], "SEP low");
+    close(b.sep_ci.1, &r["sep_ci"][1], "SEP high");
+    // The example's inline reads high with a slope: both significant.
+    assert!(b.bias_significant && b.slope_significant);
+    assert_eq!(b.recommended(), Correction::BiasAndSlope);
+}
+
+/// The corrected model gives `a + b m` exactly (consistency test), and after
+/// the recommended correction the example's pairs have no bias and unit
+/// slope left.
+#[test]
+fn the_correction_removes_bias_and_slope() {
+    let r = reference();
+    let (lab, pred) = (v(&r["lab"]), v(&r["predicted"]));
+    let b = bias_slope(&lab, &pred, 0.05).unwrap();
+    let (a, s) = b.map(Correction::BiasAndSlope);
+    let corrected: Vec<f64> = pred.iter().map(|p| a + s * p).collect();
+    let after = bias_slope(&lab, &corrected, 0.05).unwrap();
+    assert!(after.bias.abs() < 1e-12 && (after.slope - 1.0).abs() < 1e-12);
+    assert_eq!(after.recommended(), Correction::None);
+    let m = ProductModel::SingleFrequency(SingleFrequencyModel {
+        freq_index: 1,
+        t_ref_c: 20.0f64,
+        coeffs: [1.0, 2.0, 0.1, 0.0],
+        c_t: 0.05,
+    });
+    let ProductModel::SingleFrequency(old) = m else {
+        unreachable!()
+    };
+    let ProductModel::SingleFrequency(new) = m.rescaled(a, s) else {
+        unreachable!()
+    };
+    for (e, t) in [(5.0, 10.0), (9.0, 30.0)] {
+        assert!((new.moisture_pct(e, t) - (a + s * old.moisture_pct(e, t))).abs() < 1e-12);
+    }
+    assert_eq!(m.rescaled(0.0, 1.0).kind(), ModelKind::SingleFrequency);
+}

@@ -1,0 +1,120 @@
+//! `fringe cal adjust` (issue 11, item 6) from a CSV of lab pairs: the
+//! bias and slope with their tests, a new calibration file with a new
+//! content id naming its parent, and no file when nothing is significant.
+//! Made-up tables (plumbing tests; the statistics are checked against SciPy
+//! in fringe-calibration's tests/adjust_scipy.rs).
+
+use std::process::{Command, Output};
+
+const HEADER: &str =
+    "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im";
+
+fn table(n: usize, lab_shift: f64) -> String {
+    let rows: Vec<String> = (0..n)
+        .map(|i| {
+            let m = 10.0 + 0.5 * i as f64;
+            let d = ((i * 7919 + 13) % 17) as f64 / 8.0 - 1.0;
+            format!(
+                "S{i},{},{},1000000,{},{},20000000,{},0.3",
+                m + lab_shift,
+                18.0 + (i % 7) as f64,
+                2.0 + 0.25 * m,
+                0.5 + 0.02 * i as f64,
+                1.8 + 0.2 * m + 0.01 * d
+            )
+        })
+        .collect();
+    format!("{HEADER}\n{}\n", rows.join("\n"))
+}
+
+fn ok(o: &Output) -> String {
+    assert!(
+        o.status.success(),
+        "{}{}",
+        String::from_utf8_lossy(&o.stdout),
+        String::from_utf8_lossy(&o.stderr)
+    );
+    String::from_utf8_lossy(&o.stdout).into_owned()
+}
+
+#[test]
+fn adjust_writes_a_child_calibration_that_removes_a_significant_bias() {
+    let dir = tempfile::tempdir().expect("dir");
+    let d = dir.path();
+    std::fs::write(d.join("lab.csv"), table(24, 0.0)).expect("write");
+    let cal = d.join("p.toml");
+    ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "fit", "--model", "single", "--samples"])
+        .arg(d.join("lab.csv"))
+        .arg("--out")
+        .arg(&cal)
+        .output()
+        .expect("run"));
+    // Grab samples whose lab values run 0.5 % above the inline readings.
+    std::fs::write(d.join("grabs.csv"), table(10, 0.5)).expect("write");
+    ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "predict", "--cal"])
+        .arg(&cal)
+        .arg("--input")
+        .arg(d.join("grabs.csv"))
+        .arg("--out")
+        .arg(d.join("pairs.csv"))
+        .output()
+        .expect("run"));
+    let adj = d.join("adj.toml");
+    let text = ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "adjust", "--json", "--cal"])
+        .arg(&cal)
+        .arg("--pairs")
+        .arg(d.join("pairs.csv"))
+        .arg("--out")
+        .arg(&adj)
+        .output()
+        .expect("run"));
+    let v: serde_json::Value = serde_json::from_str(text.trim()).expect("json");
+    assert_eq!(v["pairs"], 10);
+    let bias = v["bias"]["value"].as_f64().expect("bias");
+    assert!((bias + 0.5).abs() < 0.05, "{v}");
+    assert_eq!(v["bias"]["significant"], true, "{v}");
+    assert_eq!(v["applied"], "Bias", "{v}");
+    let parent = std::fs::read_to_string(&cal).expect("cal");
+    let child = std::fs::read_to_string(&adj).expect("adjusted file written");
+    let id = |t: &str| {
+        t.lines()
+            .find(|l| l.starts_with("id = "))
+            .map(|l| l.trim_start_matches("id = ").trim_matches('"').to_string())
+            .expect("id line")
+    };
+    assert_ne!(id(&parent), id(&child), "a new content id");
+    assert!(
+        child.contains(&format!("parent_id = \"{}\"", id(&parent))),
+        "{child}"
+    );
+    // The child predicts the grab samples without the bias.
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "predict", "--json", "--cal"])
+        .arg(&adj)
+        .arg("--input")
+        .arg(d.join("grabs.csv"))
+        .output()
+        .expect("run");
+    let v: serde_json::Value = serde_json::from_str(ok(&o).trim()).expect("json");
+    let b = v["against_lab"]["bias"].as_f64().expect("bias");
+    assert!(b.abs() < 0.01, "bias after adjustment {b}");
+
+    // Unbiased pairs: nothing significant, nothing written.
+    std::fs::write(d.join("grabs2.csv"), table(10, 0.0)).expect("write");
+    let out2 = d.join("adj2.toml");
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "adjust", "--cal"])
+        .arg(&cal)
+        .arg("--pairs")
+        .arg(d.join("grabs2.csv"))
+        .arg("--out")
+        .arg(&out2)
+        .output()
+        .expect("run");
+    let text = ok(&o);
+    assert!(text.contains("no correction, nothing written"), "{text}");
+    assert!(!out2.exists());
+}

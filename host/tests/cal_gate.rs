@@ -1,0 +1,169 @@
+//! The quality gate of `fringe cal fit` and `fringe cal push` (issue 11,
+//! item 5): each refusal with its message and exit status 5, nothing
+//! written; `--force` writes and keeps the overridden refusals; values
+//! outside physical limits are input errors (status 3) naming file, line
+//! and column. Tables of made-up numbers (plumbing tests of the gate's
+//! wiring; the gate's rules are unit-tested in fringe_calibration::fit::gate).
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+const HEADER: &str =
+    "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im";
+
+/// `n` rows whose eps'_2 follows the moisture, plus `scatter` times a
+/// fixed pseudo-random disturbance (made up).
+fn rows(n: usize, scatter: f64) -> Vec<String> {
+    (0..n)
+        .map(|i| {
+            let m = 10.0 + 0.5 * i as f64;
+            let d = ((i * 7919 + 13) % 17) as f64 / 8.0 - 1.0;
+            format!(
+                "S{i},{m},{},1000000,{},{},20000000,{},0.3",
+                18.0 + (i % 7) as f64,
+                2.0 + 0.25 * m,
+                0.5 + 0.02 * i as f64,
+                1.8 + 0.2 * m + scatter * d
+            )
+        })
+        .collect()
+}
+
+fn write_table(dir: &Path, rows: &[String]) -> PathBuf {
+    let p = dir.join("lab.csv");
+    std::fs::write(&p, format!("{HEADER}\n{}\n", rows.join("\n"))).expect("write csv");
+    p
+}
+
+fn fit(dir: &Path, rows: &[String], extra: &[&str]) -> (Output, PathBuf) {
+    let csv = write_table(dir, rows);
+    let out = dir.join("p.toml");
+    let _ = std::fs::remove_file(&out);
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "fit", "--model", "single", "--samples"])
+        .arg(&csv)
+        .arg("--out")
+        .arg(&out)
+        .args(extra)
+        .output()
+        .expect("run fringe");
+    (o, out)
+}
+
+fn stderr(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stderr).into_owned()
+}
+
+#[test]
+fn each_refusal_has_its_message_and_status_and_writes_nothing() {
+    let dir = tempfile::tempdir().expect("dir");
+    let mut far = rows(24, 0.0);
+    far.push("FAR,15,120,1000000,5.75,0.9,20000000,4.8,0.3".into());
+    let cases: Vec<(&str, Vec<String>, &[&str])> = vec![
+        (
+            "low RPD and R^2",
+            rows(30, 2.0),
+            &[
+                "cross-validated RPD",
+                "is below 2",
+                "cross-validated R^2",
+                "is below 0.8",
+            ],
+        ),
+        (
+            "too few samples",
+            rows(12, 0.0),
+            &["12 samples for 4 fitted parameters; 20 needed"],
+        ),
+        (
+            "a range from one sample",
+            far,
+            &["temperature_c reaches 120 only through sample \"FAR\""],
+        ),
+    ];
+    for (what, table, expect) in cases {
+        let (o, out) = fit(dir.path(), &table, &[]);
+        let err = stderr(&o);
+        assert_eq!(o.status.code(), Some(5), "{what}: status 5; {err}");
+        assert!(
+            err.contains("refused by the quality gate; nothing written"),
+            "{what}: {err}"
+        );
+        for e in expect {
+            assert!(err.contains(e), "{what}: expected `{e}` in {err}");
+        }
+        assert!(!out.exists(), "{what}: nothing written");
+    }
+}
+
+#[test]
+fn force_writes_and_keeps_the_override_and_push_refuses_it() {
+    let dir = tempfile::tempdir().expect("dir");
+    let (o, out) = fit(dir.path(), &rows(12, 0.0), &["--force"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let text = std::fs::read_to_string(&out).expect("written with --force");
+    assert!(
+        text.contains("gate_overridden") && text.contains("at fit (--force): 12 samples"),
+        "{text}"
+    );
+    // The same gate in `cal push`: refused before the port, key or
+    // database are touched.
+    let db = dir.path().join("line.db");
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "push", "--port", "/nonexistent/port", "--key-file"])
+        .arg(dir.path().join("no.key"))
+        .arg("--db")
+        .arg(&db)
+        .arg("--cal")
+        .arg(&out)
+        .args(["--operator", "T. Tester", "--reason", "gate test", "--yes"])
+        .output()
+        .expect("run fringe");
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(5), "{err}");
+    assert!(err.contains("12 samples for 4 fitted parameters"), "{err}");
+    assert!(!db.exists(), "no database created");
+}
+
+#[test]
+fn physically_impossible_values_are_input_errors() {
+    let dir = tempfile::tempdir().expect("dir");
+    let base = rows(24, 0.0);
+    for (what, from, to, expect) in [
+        (
+            "temperature",
+            ",18,",
+            ",200,",
+            "line 2, column 3 (temperature_c): `200` is not a temperature in C between -40 and 150",
+        ),
+        (
+            "cold",
+            ",18,",
+            ",-45,",
+            "line 2, column 3 (temperature_c): `-45`",
+        ),
+        (
+            "eps' below 1",
+            ",1000000,4.5,",
+            ",1000000,0.9,",
+            "line 2, column 5 (eps1_re): `0.9` is not a real permittivity >= 1",
+        ),
+        (
+            "negative loss",
+            ",0.3",
+            ",-0.3",
+            "line 2, column 9 (eps2_im): `-0.3` is not a loss factor",
+        ),
+    ] {
+        let mut t = base.clone();
+        t[0] = t[0].replacen(from, to, 1);
+        let (o, out) = fit(dir.path(), &t, &["--force"]);
+        let err = stderr(&o);
+        assert_eq!(o.status.code(), Some(3), "{what}: {err}");
+        assert!(
+            err.contains("lab.csv") && err.contains(expect),
+            "{what}: {err}"
+        );
+        assert!(!out.exists());
+    }
+}
