@@ -34,7 +34,7 @@ use std::fmt;
 use std::io::{BufRead, Write};
 use std::path::{Path, PathBuf};
 
-use rusqlite::types::Value;
+use crate::store::Value;
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
 
@@ -455,7 +455,7 @@ pub fn export(
     let mut clocks = Clocks::new();
     for d in store.devices()? {
         let c = store.boot_clocks(&d.serial)?;
-        clocks.insert(d.serial, c);
+        clocks.insert(d.record.serial, c);
     }
     // Pass 1: the slice, its anchor, the calibrations the readings used.
     let mut first: Option<(u64, Hash)> = None;

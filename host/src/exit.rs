@@ -74,7 +74,7 @@ impl ExitCode {
                 };
             }
             if let Some(e) = cause.downcast_ref::<LinkError>() {
-                return e.exit_code();
+                return ExitCode::for_link(e);
             }
             if cause.downcast_ref::<ConfigError>().is_some()
                 || cause
@@ -102,6 +102,23 @@ impl ExitCode {
             }
         }
         ExitCode::Failure
+    }
+}
+
+impl ExitCode {
+    /// The documented exit code of a link failure.
+    pub fn for_link(e: &LinkError) -> ExitCode {
+        match e {
+            LinkError::PortMissing { .. } => ExitCode::PortMissing,
+            LinkError::PortBusy { .. } => ExitCode::PortBusy,
+            LinkError::PortPermission { .. } => ExitCode::PortPermission,
+            LinkError::NoAnswer { .. } => ExitCode::NoAnswer,
+            LinkError::Garbled { .. } => ExitCode::Garbled,
+            LinkError::Incompatible { .. } => ExitCode::Incompatible,
+            LinkError::Refused { .. } => ExitCode::DeviceRefused,
+            LinkError::Stopped => ExitCode::Success,
+            _ => ExitCode::Failure,
+        }
     }
 }
 
@@ -151,6 +168,48 @@ mod tests {
         codes.sort_unstable();
         codes.dedup();
         assert_eq!(codes.len(), all.len());
+    }
+
+    #[test]
+    fn link_failures_have_their_codes() {
+        let port = || "/dev/ttyUSB0".to_string();
+        for (e, code) in [
+            (
+                LinkError::PortMissing {
+                    port: port(),
+                    available: vec![],
+                },
+                ExitCode::PortMissing,
+            ),
+            (LinkError::PortBusy { port: port() }, ExitCode::PortBusy),
+            (
+                LinkError::PortPermission {
+                    port: port(),
+                    group: Some("dialout".into()),
+                },
+                ExitCode::PortPermission,
+            ),
+            (
+                LinkError::Garbled {
+                    port: port(),
+                    baud: 9600,
+                    errors: 3,
+                },
+                ExitCode::Garbled,
+            ),
+            (
+                LinkError::Incompatible {
+                    port: port(),
+                    ours: fringe_protocol::PROTOCOL_VERSION,
+                    theirs: fringe_protocol::Version { major: 9, minor: 0 },
+                },
+                ExitCode::Incompatible,
+            ),
+            (LinkError::Stopped, ExitCode::Success),
+        ] {
+            assert_eq!(ExitCode::for_link(&e), code, "{e}");
+            assert_eq!(ExitCode::for_error(&anyhow::Error::new(e)), code);
+        }
     }
 
     #[test]

@@ -39,7 +39,7 @@ pub mod demo;
 pub mod device_cal;
 pub mod drift;
 pub mod exit;
-pub mod link;
+pub use fringe_link as link;
 pub mod out;
 pub mod plots;
 pub mod product_file;

@@ -617,7 +617,11 @@ pub fn history(a: &HistoryArgs) -> anyhow::Result<()> {
     let store = Store::open_read_only(&a.db)?;
     let serials: Vec<String> = match &a.serial {
         Some(s) => vec![s.clone()],
-        None => store.devices()?.into_iter().map(|d| d.serial).collect(),
+        None => store
+            .devices()?
+            .into_iter()
+            .map(|d| d.record.serial)
+            .collect(),
     };
     let mut all = Vec::new();
     for s in &serials {

@@ -54,7 +54,7 @@ fn a_thousand_readings_stored_exactly_as_sent() {
     assert!(
         events
             .iter()
-            .any(|e| matches!(e.event.kind, fringe_protocol::EventKind::Boot { .. })),
+            .any(|e| matches!(e.kind, fringe_protocol::EventKind::Boot { .. })),
         "{events:?}"
     );
 }

@@ -174,7 +174,7 @@ fn monitor_sets_an_unset_clock_and_earlier_readings_are_rebased_and_found_by_wal
         .events("HGM-L2-0303")
         .unwrap()
         .into_iter()
-        .filter_map(|e| match e.event.kind {
+        .filter_map(|e| match e.kind {
             EventKind::ClockSet { old_ms, new_ms } => Some((old_ms, new_ms)),
             _ => None,
         })
@@ -498,11 +498,11 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
     let events = store.events("HGM-L2-0305").unwrap();
     let changed = events
         .iter()
-        .filter(|e| matches!(e.event.kind, EventKind::SettingsChanged { .. }))
+        .filter(|e| matches!(e.kind, EventKind::SettingsChanged { .. }))
         .count();
     let refused = events
         .iter()
-        .filter(|e| matches!(e.event.kind, EventKind::AuthFailed { .. }))
+        .filter(|e| matches!(e.kind, EventKind::AuthFailed { .. }))
         .count();
     assert_eq!((changed, refused), (cases.len(), cases.len()));
     // A bad value is refused before anything is written, naming the flag.

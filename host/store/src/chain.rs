@@ -10,9 +10,9 @@
 //! ```
 //!
 //! The canonical row is the device serial (as text) followed by the row's
-//! columns in the order documented in `host/SCHEMA.md` (all but `position`,
-//! `device` and `hash`), each as SQLite stores it, written by
-//! [`Canon::value`]:
+//! columns in the order documented in `host/SCHEMA.md` and listed by
+//! [`Table::columns`] (all but `position`, `device` and `hash`), each as a
+//! [`Value`] of the store's own type, written by [`Canon::value`]:
 //!
 //! ```text
 //! NULL     0x00
@@ -22,13 +22,15 @@
 //! BLOB     0x04 u32 LE length, bytes
 //! ```
 //!
-//! Encoding by storage class means a change of any value, or of its type, in
-//! the database changes the hash. Devices appear by serial (never by the
-//! store's internal device number), so a hash depends only on what a person
-//! can read in the row.
+//! Encoding by kind means a change of any value, or of its kind, in the
+//! database changes the hash. Devices appear by serial (never by a back
+//! end's internal device number), so a hash depends only on what a person
+//! can read in the row, and every back end (SQLite, PostgreSQL) that keeps
+//! the same values yields the same chain.
 
-use rusqlite::types::{Value, ValueRef};
 use sha2::{Digest, Sha256};
+
+use crate::value::Value;
 
 /// Domain-separation prefix of every chain hash.
 pub const DOMAIN: &[u8] = b"fringe-chain/1";
@@ -80,6 +82,135 @@ impl Table {
     }
 }
 
+impl Table {
+    /// The hashed columns of the table's records, serial first, in hash
+    /// order (`host/SCHEMA.md`).
+    pub const fn columns(self) -> &'static [&'static str] {
+        match self {
+            Table::Devices => DEVICE_COLS,
+            Table::Readings => READING_COLS,
+            Table::Events => EVENT_COLS,
+            Table::Calibrations => CAL_COLS,
+            Table::LabSamples => LAB_COLS,
+            Table::ReferenceChecks => REFCHECK_COLS,
+        }
+    }
+
+    /// The table of a name ([`Table::name`]).
+    pub fn named(name: &str) -> Option<Table> {
+        Table::ALL.into_iter().find(|t| t.name() == name)
+    }
+}
+
+const DEVICE_COLS: &[&str] = &[
+    "serial",
+    "first_seen_unix_ms",
+    "firmware",
+    "protocol",
+    "freq_low_hz",
+    "freq_high_hz",
+];
+const READING_COLS: &[&str] = &[
+    "serial",
+    "boot",
+    "counter",
+    "time_ms",
+    "channels",
+    "temperature_c",
+    "moisture_pct",
+    "uncertainty_pct",
+    "flags",
+    "cell_cal",
+    "product_cal",
+    "source",
+];
+const EVENT_COLS: &[&str] = &["serial", "number", "boot", "time_ms", "kind", "detail"];
+const CAL_COLS: &[&str] = &[
+    "serial",
+    "seq",
+    "kind",
+    "cal_id",
+    "slot",
+    "name",
+    "body",
+    "note",
+    "supersedes",
+    "created_unix_ms",
+];
+const LAB_COLS: &[&str] = &[
+    "serial",
+    "seq",
+    "sample_id",
+    "taken_unix_ms",
+    "product",
+    "lab_moisture_pct",
+    "basis",
+    "method",
+    "reading_boot",
+    "reading_counter",
+    "note",
+    "supersedes",
+    "created_unix_ms",
+];
+const REFCHECK_COLS: &[&str] = &[
+    "serial",
+    "seq",
+    "time_ms",
+    "ratio_low",
+    "ratio_high",
+    "baseline",
+    "ok",
+    "created_unix_ms",
+];
+
+/// One chained record as a back end hands it out, in position order (see
+/// [`crate::RecordRead::for_each_record`]).
+#[derive(Debug, Clone, PartialEq)]
+pub struct ChainedRecord {
+    /// Chain position.
+    pub position: u64,
+    /// Table.
+    pub table: Table,
+    /// Stored hash.
+    pub hash: Hash,
+    /// Column names of `values` (serial first), as in SCHEMA.md.
+    pub columns: &'static [&'static str],
+    /// The hashed values, serial first.
+    pub values: Vec<Value>,
+}
+
+impl ChainedRecord {
+    /// The canonical encoding the hash covers.
+    pub fn canonical(&self) -> Vec<u8> {
+        canonical(&self.values)
+    }
+
+    /// The value of column `col`, if the table has it.
+    pub fn value_of(&self, col: &str) -> Option<&Value> {
+        self.columns
+            .iter()
+            .position(|c| *c == col)
+            .and_then(|i| self.values.get(i))
+    }
+
+    /// A short key for a person (`SERIAL reading 3.17`, `SERIAL event 4`, ...).
+    pub fn key(&self) -> String {
+        let serial = self.values.first().and_then(Value::as_text).unwrap_or("?");
+        let int = |i: usize| match self.values.get(i) {
+            Some(Value::Integer(v)) => v.to_string(),
+            _ => "?".into(),
+        };
+        match self.table {
+            Table::Devices => format!("device {serial}"),
+            Table::Readings => format!("{serial} reading {}.{}", int(1), int(2)),
+            Table::Events => format!("{serial} event {}", int(1)),
+            Table::Calibrations => format!("{serial} calibration #{}", int(1)),
+            Table::LabSamples => format!("{serial} lab sample #{}", int(1)),
+            Table::ReferenceChecks => format!("{serial} reference check #{}", int(1)),
+        }
+    }
+}
+
 impl std::fmt::Display for Table {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         f.write_str(self.name())
@@ -96,23 +227,23 @@ impl Canon {
         Self(Vec::with_capacity(128))
     }
 
-    /// Appends one SQLite value by its storage class.
-    pub fn value(&mut self, v: ValueRef<'_>) -> &mut Self {
+    /// Appends one value by its kind.
+    pub fn value(&mut self, v: &Value) -> &mut Self {
         match v {
-            ValueRef::Null => self.0.push(0),
-            ValueRef::Integer(i) => {
+            Value::Null => self.0.push(0),
+            Value::Integer(i) => {
                 self.0.push(1);
                 self.0.extend_from_slice(&i.to_le_bytes());
             }
-            ValueRef::Real(x) => {
+            Value::Real(x) => {
                 self.0.push(2);
                 self.0.extend_from_slice(&x.to_bits().to_le_bytes());
             }
-            ValueRef::Text(t) => {
+            Value::Text(t) => {
                 self.0.push(3);
-                self.len_bytes(t);
+                self.len_bytes(t.as_bytes());
             }
-            ValueRef::Blob(b) => {
+            Value::Blob(b) => {
                 self.0.push(4);
                 self.len_bytes(b);
             }
@@ -142,7 +273,7 @@ impl Canon {
 pub fn canonical(values: &[Value]) -> Vec<u8> {
     let mut c = Canon::new();
     for v in values {
-        c.value(ValueRef::from(v));
+        c.value(v);
     }
     c.into_bytes()
 }
@@ -171,7 +302,7 @@ pub fn hex(hash: &Hash) -> String {
     s
 }
 
-/// One problem found by [`crate::store::Store::verify_chain`].
+/// One problem found by [`crate::verify_chain`].
 #[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
 #[serde(tag = "problem", rename_all = "snake_case")]
 pub enum ChainProblem {
@@ -257,7 +388,7 @@ impl std::fmt::Display for ChainProblem {
     }
 }
 
-/// What [`crate::store::Store::verify_chain`] found.
+/// What [`crate::verify_chain`] found.
 #[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
 pub struct ChainReport {
     /// Records checked.

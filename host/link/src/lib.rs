@@ -1,4 +1,7 @@
-//! The host's `link` stage: a connection to one device over a serial port.
+//! # fringe-link: a connection to one device
+//!
+//! The host's `link` stage (docs/DESIGN.md, docs/ARCHITECTURE.md): frames in
+//! and out over a serial port, nothing of the store.
 //!
 //! [`Link`] opens a port, runs the handshake (Identify, protocol major
 //! version check), sends requests with ids and waits for the matching
@@ -8,8 +11,12 @@
 //! garbage and its counters are the link-error figures shown to the user.
 //!
 //! The port is behind the small [`Port`] trait so the logic can be driven by
-//! an in-memory device in tests; [`SerialOpener`] opens real (or pseudo)
-//! serial ports with `serialport`.
+//! an in-memory device (`fringe-sim`'s simulated port, the tests here);
+//! [`SerialOpener`] opens real (or pseudo) serial ports with `serialport`.
+//! Errors are typed ([`LinkError`], each naming the port); what a program
+//! does with them (an exit code, a retry) is its own business.
+#![forbid(unsafe_code)]
+#![warn(missing_docs)]
 
 use std::collections::VecDeque;
 use std::io;
@@ -20,11 +27,9 @@ use std::time::{Duration, Instant};
 use fringe_protocol::auth::Key;
 use fringe_protocol::frame::{self, DecoderStats, FrameError};
 use fringe_protocol::{
-    DeviceFrame, ErrorCode, FrameDecoder, HostFrame, Identity, Request, Response, Version,
-    MAX_FRAME_LEN, PROTOCOL_VERSION,
+    Capabilities, DeviceFrame, ErrorCode, FrameDecoder, HostFrame, Identity, Request, Response,
+    Settings, Status, Version, MAX_FRAME_LEN, PROTOCOL_VERSION,
 };
-
-use crate::exit::ExitCode;
 
 /// A link failure a user can act on. Each names the port.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -129,6 +134,18 @@ pub enum LinkError {
     /// Stopped by the user while waiting (Ctrl-C).
     #[error("stopped")]
     Stopped,
+    /// The device's protocol lacks what was asked (an older firmware).
+    #[error("{serial} speaks protocol {protocol} and has no {what} (it needs firmware with protocol {needs} or later)")]
+    NotSupported {
+        /// Device serial.
+        serial: String,
+        /// Its protocol version.
+        protocol: Version,
+        /// What it lacks.
+        what: &'static str,
+        /// The protocol version that has it.
+        needs: &'static str,
+    },
 }
 
 fn available_hint(ports: &[String]) -> String {
@@ -149,24 +166,6 @@ fn group_hint(group: &Option<String>) -> String {
 }
 
 impl LinkError {
-    /// The documented exit code for this error.
-    pub fn exit_code(&self) -> ExitCode {
-        match self {
-            LinkError::PortMissing { .. } => ExitCode::PortMissing,
-            LinkError::PortBusy { .. } => ExitCode::PortBusy,
-            LinkError::PortPermission { .. } => ExitCode::PortPermission,
-            LinkError::NoAnswer { .. } => ExitCode::NoAnswer,
-            LinkError::Garbled { .. } => ExitCode::Garbled,
-            LinkError::Incompatible { .. } => ExitCode::Incompatible,
-            LinkError::Refused { .. } => ExitCode::DeviceRefused,
-            LinkError::Stopped => ExitCode::Success,
-            LinkError::NotASerialPort { .. }
-            | LinkError::Disconnected { .. }
-            | LinkError::Unexpected { .. }
-            | LinkError::Io { .. } => ExitCode::Failure,
-        }
-    }
-
     /// Whether a reconnect may cure it (the port vanished or is not back yet).
     pub fn is_transient(&self) -> bool {
         matches!(
@@ -335,6 +334,10 @@ pub struct LinkOptions {
     pub backoff_min: Duration,
     /// Longest reconnect delay.
     pub backoff_max: Duration,
+    /// Handshakes tried on [`Link::connect`] before a garbled or silent
+    /// line is reported (a noisy line can spoil one; a wrong baud rate or
+    /// a silent device spoils every one).
+    pub handshakes: u32,
 }
 
 impl Default for LinkOptions {
@@ -344,6 +347,7 @@ impl Default for LinkOptions {
             tries: 3,
             backoff_min: Duration::from_millis(100),
             backoff_max: Duration::from_secs(5),
+            handshakes: 1,
         }
     }
 }
@@ -429,8 +433,19 @@ impl Link {
             stats: LinkStats::default(),
             base: DecoderStats::default(),
         };
-        link.open_and_handshake()?;
-        Ok(link)
+        let mut tries = 0;
+        loop {
+            tries += 1;
+            match link.open_and_handshake() {
+                Ok(_) => return Ok(link),
+                Err(LinkError::Garbled { .. } | LinkError::NoAnswer { .. })
+                    if tries < link.opts.handshakes =>
+                {
+                    link.port = None;
+                }
+                Err(e) => return Err(e),
+            }
+        }
     }
 
     /// Opens a serial port at `baud` and runs the handshake.
@@ -739,6 +754,45 @@ impl Link {
         })
     }
 
+    /// The device's status.
+    ///
+    /// # Errors
+    /// As [`Link::request`]; [`LinkError::Unexpected`] for another answer.
+    pub fn status(&mut self) -> Result<Status, LinkError> {
+        match self.request(Request::Status)? {
+            Response::Status(s) => Ok(s),
+            other => Err(LinkError::Unexpected {
+                request: "Status",
+                got: format!("{other:?}"),
+            }),
+        }
+    }
+
+    /// The device's settings (protocol 1.1 on).
+    ///
+    /// # Errors
+    /// [`LinkError::NotSupported`] for a device without settings; as
+    /// [`Link::request`].
+    pub fn settings(&mut self) -> Result<Settings, LinkError> {
+        if let Some(id) = self.identity() {
+            if !id.capabilities.contains(Capabilities::SETTINGS) {
+                return Err(LinkError::NotSupported {
+                    serial: id.serial.to_string(),
+                    protocol: id.protocol,
+                    what: "settings to read or write",
+                    needs: "1.1",
+                });
+            }
+        }
+        match self.request(Request::ReadSettings)? {
+            Response::Settings(s) => Ok(s),
+            other => Err(LinkError::Unexpected {
+                request: "ReadSettings",
+                got: format!("{other:?}"),
+            }),
+        }
+    }
+
     /// The next streamed reading or event, waiting at most `timeout`
     /// (`Ok(None)` when nothing came). Stale answers are dropped.
     ///
@@ -861,6 +915,7 @@ mod tests {
             tries: 3,
             backoff_min: Duration::from_millis(5),
             backoff_max: Duration::from_millis(20),
+            handshakes: 1,
         }
     }
 
@@ -911,7 +966,6 @@ mod tests {
         .unwrap_err();
         assert!(matches!(e, LinkError::Incompatible { .. }), "{e:?}");
         assert!(e.to_string().contains("2.1") && e.to_string().contains("update fringe"));
-        assert_eq!(e.exit_code(), ExitCode::Incompatible);
     }
 
     #[test]
@@ -949,9 +1003,42 @@ mod tests {
     fn only_garbage_means_wrong_baud_and_silence_means_no_answer() {
         let e = Link::connect(fake(|_| vec![0x55, 0x13, 0x99, 0x00]), quick()).unwrap_err();
         assert!(matches!(e, LinkError::Garbled { errors: 3, .. }), "{e:?}");
-        assert_eq!(e.exit_code(), ExitCode::Garbled);
         let e = Link::connect(fake(|_| Vec::new()), quick()).unwrap_err();
         assert!(matches!(e, LinkError::NoAnswer { tries: 3, .. }), "{e:?}");
+    }
+
+    #[test]
+    fn a_spoilt_handshake_is_tried_again_when_asked() {
+        let answer = || {
+            let mut identifies = 0;
+            move |f: &HostFrame| match &f.request {
+                Request::Identify { .. } => {
+                    identifies += 1;
+                    // The first handshake is lost on a noisy line.
+                    if identifies == 1 {
+                        vec![0x55, 0x13, 0x99, 0x00]
+                    } else {
+                        enc(&DeviceFrame::Response {
+                            id: f.id,
+                            response: Response::Identity(identity(PROTOCOL_VERSION)),
+                        })
+                    }
+                }
+                _ => Vec::new(),
+            }
+        };
+        let once = LinkOptions {
+            tries: 1,
+            ..quick()
+        };
+        let e = Link::connect(fake(answer()), once).unwrap_err();
+        assert!(matches!(e, LinkError::Garbled { .. }), "{e:?}");
+        let twice = LinkOptions {
+            handshakes: 2,
+            ..once
+        };
+        let link = Link::connect(fake(answer()), twice).unwrap();
+        assert_eq!(link.serial_number(), "HGM-L2-0001");
     }
 
     #[test]
@@ -988,7 +1075,6 @@ mod tests {
             port: "/dev/ttyUSB0".into(),
             group: Some("dialout".into()),
         };
-        assert_eq!(e.exit_code(), ExitCode::PortPermission);
         assert!(e.to_string().contains("group `dialout`"));
         assert!(e.to_string().contains("usermod -aG dialout"));
         assert!(owning_group(Path::new("/")).is_some());
@@ -998,7 +1084,6 @@ mod tests {
     fn missing_port_lists_what_exists() {
         let e = open_serial("/dev/fringe-no-such-port", 115_200).unwrap_err();
         assert!(matches!(e, LinkError::PortMissing { .. }));
-        assert_eq!(e.exit_code(), ExitCode::PortMissing);
         let e = open_serial("/etc/hostname", 115_200).unwrap_err();
         assert!(matches!(e, LinkError::NotASerialPort { .. }), "{e:?}");
     }

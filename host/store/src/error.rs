@@ -1,0 +1,140 @@
+//! Why a store operation failed.
+//!
+//! One error type for every back end, so that a caller (the binary's exit
+//! codes, a gateway's retry policy) tells an I/O failure (locked,
+//! read-only, disk full), a database it must not use (not ours, newer,
+//! damaged) and a refused record apart without knowing the back end.
+
+use std::path::PathBuf;
+
+use crate::chain::Table;
+
+/// Why a store operation failed. Each names the database.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum StoreError {
+    /// Another process holds the database's write lock.
+    #[error("database {path} is locked by another process (another `fringe monitor` or `fringe pull` on the same file?); stop it or use another --db")]
+    Locked {
+        /// Database.
+        path: PathBuf,
+    },
+    /// The database or its folder is read-only.
+    #[error("database {path} is read-only: check the file's and its folder's permissions (WAL mode needs to create {path}-wal and {path}-shm beside it)")]
+    ReadOnly {
+        /// Database.
+        path: PathBuf,
+    },
+    /// The disk (or the database's size limit) is full.
+    #[error("disk full while writing database {path}: free space on that disk; readings not committed are still on the device and are pulled on the next run")]
+    DiskFull {
+        /// Database.
+        path: PathBuf,
+    },
+    /// The database could not be opened or created.
+    #[error("cannot open database {path}: {reason}")]
+    CannotOpen {
+        /// Database.
+        path: PathBuf,
+        /// What the system said.
+        reason: String,
+    },
+    /// The file is not a database of this back end.
+    #[error("{path} is not a fringe database (not SQLite, or encrypted)")]
+    NotADatabase {
+        /// Database.
+        path: PathBuf,
+    },
+    /// The database is damaged (the back end's own check, or a read, found it).
+    #[error("database {path} is damaged ({detail}); keep a copy of the file and {repair}")]
+    Corrupt {
+        /// Database.
+        path: PathBuf,
+        /// What was found.
+        detail: String,
+        /// What to do, for this back end.
+        repair: String,
+    },
+    /// The database was written by a newer fringe.
+    #[error("database {path} has schema version {found}; this fringe knows up to {known}: use a newer fringe")]
+    NewerSchema {
+        /// Database.
+        path: PathBuf,
+        /// Version found.
+        found: u32,
+        /// Highest version this build knows.
+        known: u32,
+    },
+    /// The database holds tables but no fringe schema version.
+    #[error("database {path} already holds tables that are not a fringe store")]
+    Foreign {
+        /// Database.
+        path: PathBuf,
+    },
+    /// A lab sample id was recorded before with other values.
+    #[error("lab sample {sample_id:?} of {serial} is already recorded (position {position}) with other values; to correct it, record it again with supersedes = {position}")]
+    SampleConflict {
+        /// Device serial.
+        serial: String,
+        /// The lab's sample id.
+        sample_id: String,
+        /// Position of the earlier record.
+        position: u64,
+    },
+    /// `supersedes` names no record of that table and device.
+    #[error("supersedes = {position}: no {table} record of {serial} at that position")]
+    BadSupersedes {
+        /// Device serial.
+        serial: String,
+        /// Table.
+        table: Table,
+        /// Position given.
+        position: u64,
+    },
+    /// A stored record cannot be read back as its type (written by
+    /// something else than fringe, or changed).
+    #[error("database {path}: the {table} record at position {position} cannot be read: {reason}")]
+    BadRecord {
+        /// Database.
+        path: PathBuf,
+        /// Table.
+        table: Table,
+        /// Chain position.
+        position: u64,
+        /// Why.
+        reason: String,
+    },
+    /// Any other failure of the back end.
+    #[error("database {path}: {source}")]
+    Backend {
+        /// Database.
+        path: PathBuf,
+        /// The back end's error.
+        source: Box<dyn std::error::Error + Send + Sync>,
+    },
+}
+
+impl StoreError {
+    /// Whether the failure is of the disk or of another process (locked,
+    /// read-only, full), so that the same operation may succeed later.
+    pub fn is_transient(&self) -> bool {
+        matches!(
+            self,
+            StoreError::Locked { .. } | StoreError::ReadOnly { .. } | StoreError::DiskFull { .. }
+        )
+    }
+
+    /// Whether the database must not be used (not ours, newer, damaged,
+    /// cannot be opened).
+    pub fn is_unusable(&self) -> bool {
+        matches!(
+            self,
+            StoreError::CannotOpen { .. }
+                | StoreError::NotADatabase { .. }
+                | StoreError::Corrupt { .. }
+                | StoreError::NewerSchema { .. }
+                | StoreError::Foreign { .. }
+                | StoreError::BadRecord { .. }
+        )
+    }
+}
