@@ -27,14 +27,15 @@ use rand_distr::StandardNormal;
 
 use crate::analysis;
 use crate::audit;
-use crate::cal::{self, FitArgs, FitModel};
+use crate::cmd::cal::{FitArgs, FitModelArg};
 use crate::device_cal::{self, CellArgs, Guide};
 use crate::link::{Link, LinkOptions};
 use crate::product_file::ProductFile;
-use crate::quality;
 use crate::simport::SimHandle;
 use crate::store::{DeviceInfo, NewLabSample, Source, Store};
 use crate::timefmt::fmt_time;
+use fringe_quality::cal;
+use fringe_quality::views;
 
 /// `fringe demo`.
 #[derive(Debug, Clone, Args)]
@@ -322,7 +323,7 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
     );
     let fit_args = FitArgs {
         samples: outs.samples.clone(),
-        model: FitModel::Compare,
+        model: FitModelArg::Compare,
         out: outs.product.clone(),
         name: Some(PRODUCT.into()),
         bulk_density_kg_m3: Some(f64::from(grain.mixture.bulk_density_kg_m3)),
@@ -335,7 +336,7 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         plot: Some(outs.fit_plot.clone()),
         force: false,
     };
-    cal::run_fit(&fit_args)?;
+    crate::cmd::cal::run_fit(&fit_args)?;
 
     // 4. Push.
     stage(
@@ -485,27 +486,23 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
     let data = analysis::load(&store, Some(SERIAL))?;
     let traces = data.traces();
     let mut out = std::io::stdout().lock();
-    let alarms = quality::print_drift(&data, &traces, &mut out)?;
+    let alarms = views::write_drift(&data, &traces, &mut out)?;
     drop(out);
-    std::fs::write(dir.join("drift.svg"), quality::drift_svg(&traces)?)?;
+    std::fs::write(dir.join("drift.svg"), views::drift_svg(&traces)?)?;
     // The lab residual alarm asks for a bias adjustment: the bias and slope
     // tests on the shift's grab samples, and the corrected calibration
     // (written beside the first, not pushed: the engineer decides).
     println!("  bias and slope of {PRODUCT} against the shift's lab grab samples (`fringe cal adjust --db`):");
-    let adj_args = cal::AdjustArgs {
+    let adj = cal::AdjustOptions {
         cal: outs.product.clone(),
-        pairs: None,
-        db: Some(outs.db.clone()),
-        serial: Some(SERIAL.into()),
         out: outs.adjusted.clone(),
         correct: cal::AdjustCorrection::Auto,
         alpha: 0.05,
-        json: false,
     };
     let (pfile, _) = ProductFile::load(&outs.product)?;
     let pairs = cal::pairs_from_line(&data, &pfile.id, &outs.db);
-    match cal::adjust_with(&adj_args, pairs) {
-        Ok(o) => cal::print_adjust(&adj_args, &o, &mut std::io::stdout().lock())?,
+    match cal::adjust(&adj, pairs, (SHIFT_MS / 1000) as u64 + hours as u64 * 3600) {
+        Ok(o) => cal::write_adjust(&adj, &o, false, &mut std::io::stdout().lock())?,
         Err(e) => println!("  no bias check: {e:#}"),
     }
 
@@ -521,17 +518,22 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
     let s = audit::export(
         &ro,
         &outs.db.display().to_string(),
-        SHIFT_MS,
+        Some(SHIFT_MS),
         end,
         &outs.bundle,
     )?;
-    quality::print_export(&s)?;
+    views::write_export(&s, &mut std::io::stdout().lock())?;
     let rep = audit::verify(Some(&outs.bundle), Some(&ro))?;
-    quality::print_verify(&rep, Some(&outs.bundle), Some(&outs.db))?;
+    views::write_verify(
+        &rep,
+        Some(&outs.bundle),
+        Some(&outs.db),
+        &mut std::io::stdout().lock(),
+    )?;
 
     // 8. Report.
     stage(8, total, "writing the report");
-    let page = quality::write_report(
+    let page = views::write_report(
         &ro,
         Some(SERIAL),
         Some(&format!("{PLANT}, {LINE}: {SERIAL}")),

@@ -156,11 +156,11 @@ pub struct PushArgs {
 /// when `force` overrides them.
 ///
 /// # Errors
-/// [`crate::cal::GateRefused`] when the file fails the gate and `force` is off.
+/// [`fringe_quality::cal::GateRefused`] when the file fails the gate and `force` is off.
 pub fn push_gate(path: &Path, file: &ProductFile, force: bool) -> anyhow::Result<Vec<String>> {
-    let refusals = crate::cal::gate_of_file(&file.statistics);
+    let refusals = fringe_quality::cal::gate_of_file(&file.statistics);
     if !refusals.is_empty() && !force {
-        return Err(crate::cal::GateRefused {
+        return Err(fringe_quality::cal::GateRefused {
             what: path.display().to_string(),
             refusals,
         }

@@ -92,7 +92,10 @@ impl ExitCode {
             {
                 return ExitCode::Problems;
             }
-            if cause.downcast_ref::<crate::cal::GateRefused>().is_some() {
+            if cause
+                .downcast_ref::<fringe_quality::cal::GateRefused>()
+                .is_some()
+            {
                 return ExitCode::GateRefused;
             }
             if let Some(e) = cause.downcast_ref::<io::Error>() {

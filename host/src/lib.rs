@@ -29,28 +29,20 @@ macro_rules! outln {
     }};
 }
 
-pub mod analysis;
-pub mod audit;
-pub mod cal;
+pub use fringe_quality::{analysis, audit, drift, plots, product_file, report, samples, timefmt};
 pub mod cli;
 pub mod cmd;
 pub mod config;
 pub mod demo;
 pub mod device_cal;
-pub mod drift;
 pub mod exit;
 pub use fringe_link as link;
 pub mod out;
-pub mod plots;
-pub mod product_file;
 pub mod quality;
-pub mod report;
-pub mod samples;
 pub mod session;
 pub mod sim;
 pub mod simport;
 pub mod store;
-pub mod timefmt;
 
 use cli::{Cli, Command};
 use config::LineConfig;

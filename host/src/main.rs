@@ -30,9 +30,16 @@ fn main() -> std::process::ExitCode {
         Ok(Ok(())) => ExitCode::Success.into(),
         Ok(Err(e)) if is_broken_pipe(&e) => ExitCode::Success.into(),
         Ok(Err(e)) => {
-            eprintln!("fringe: error: {e}");
+            // A library error that wraps another with the same words
+            // (`#[error("{0}")]`) is said once.
+            let mut last = e.to_string();
+            eprintln!("fringe: error: {last}");
             for cause in e.chain().skip(1) {
-                eprintln!("  caused by: {cause}");
+                let text = cause.to_string();
+                if text != last {
+                    eprintln!("  caused by: {text}");
+                }
+                last = text;
             }
             ExitCode::for_error(&e).into()
         }

@@ -2,6 +2,7 @@
 //! the line configuration, and returns `anyhow::Result` (the error chain is
 //! printed and mapped to an exit code by `main`).
 
+pub mod cal;
 pub mod device;
 pub mod ingest;
 pub mod monitor;

@@ -260,7 +260,10 @@ impl Monitor<'_> {
                 Ok(d) => self.drift.data.insert(d),
                 // Nothing stored for the device yet: nothing to watch.
                 Err(_) if self.store.last_seq(&self.serial)?.is_none() => return Ok(()),
-                Err(e) => return Err(e.context("reading the stored data for the drift monitors")),
+                Err(e) => {
+                    return Err(anyhow::Error::new(e)
+                        .context("reading the stored data for the drift monitors"))
+                }
             },
         };
         let mut fresh = Vec::new();
@@ -294,7 +297,7 @@ impl Monitor<'_> {
                 text
             };
             self.notice(&text)?;
-            let mut v = crate::quality::alarm_json(&a);
+            let mut v = fringe_quality::views::alarm_json(&a);
             v["announced_after_streamed"] = self.sum.streamed.into();
             self.sum.drift_alarms.push(v);
         }

@@ -3,7 +3,7 @@
 
 use clap::{Args, Subcommand};
 
-use crate::cal::{self, AdjustArgs, FitArgs, PredictArgs};
+use super::cal::{self, AdjustArgs, FitArgs, PredictArgs};
 use crate::config::LineConfig;
 use crate::device_cal::{self, CaptureArgs, CellArgs, ListArgs, PushArgs, SelectArgs, Terminal};
 use crate::product_file::ProductFile;

@@ -1,5 +1,7 @@
-//! `fringe cal fit` and `fringe cal predict`: product calibration from
-//! reference samples, and the device's own evaluation applied to a table.
+//! Product calibration from reference samples (`fringe cal fit`), the
+//! device's own evaluation applied to a table (`cal predict`), and the bias
+//! and slope check against lab pairs (`cal adjust`). Nothing here prints:
+//! the summaries are written to a writer the caller gives.
 //!
 //! The fitting and statistics are `fringe_calibration::fit` (`fit_single`,
 //! `fit_relaxation`, `compare`); the evaluation is
@@ -7,28 +9,164 @@
 //! firmware's own `parse_product`, so a prediction here is the number the
 //! device would report for the same permittivities and temperature.
 
-use std::io::Write as _;
 use std::path::{Path, PathBuf};
 
-use anyhow::{bail, Context as _};
-use clap::{Args, ValueEnum};
 use fringe_calibration::estimate::{estimate, Channel, EstimateInput};
 use fringe_calibration::fit::product::{
     compare_models, fit_multivariate, fit_relaxation, fit_single, ChannelReading, CompareOptions,
     IntervalModel, MixingFit, MultivariateOptions, MvMethod, ProductFit, RelaxationOptions, Sample,
     SingleOptions, MV_MIN_SAMPLES,
 };
-use fringe_calibration::stats::{Folds, PredictionStats};
+use fringe_calibration::stats::{Folds, PredictionStats, StatsError};
 use fringe_protocol::{short_string, Basis, Flags, ModelKind, ProductCal, Range};
 use serde_json::json;
 use sha2::{Digest, Sha256};
 
 use crate::plots;
-use crate::product_file::{ProductFile, Source, Statistics};
-use crate::samples::{read_samples, MoistureColumn, RefSample, SampleSet};
+use crate::product_file::{ProductFile, ProductFileError, Source, Statistics};
+use crate::samples::{read_samples, MoistureColumn, RefSample, SampleError, SampleSet};
+
+/// Why a fit failed (nothing is written then).
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum FitError {
+    /// The sample table is missing or invalid (file, line, column, field).
+    #[error("{0}")]
+    Samples(#[from] SampleError),
+    /// The quality gate refused the calibration.
+    #[error("{0}")]
+    Gate(#[from] GateRefused),
+    /// The relaxation model was asked for without the densities.
+    #[error("the relaxation model needs --bulk-density-kg-m3 and --particle-density-kg-m3 (measured for this product)")]
+    NoDensities,
+    /// The model could not be fitted.
+    #[error("{what}")]
+    Model {
+        /// What was fitted, from which file.
+        what: String,
+        /// Why not.
+        #[source]
+        source: fringe_calibration::fit::product::ProductFitError,
+    },
+    /// The product name does not fit the device.
+    #[error("product name `{name}` must be 1 to {max} bytes (use --name)")]
+    BadName {
+        /// The name.
+        name: String,
+        /// Most bytes allowed.
+        max: usize,
+    },
+    /// The fit does not fit the wire form.
+    #[error("the fit gave too many {what} for the device")]
+    TooMany {
+        /// Parameters or input ranges.
+        what: &'static str,
+    },
+    /// A file could not be read.
+    #[error("reading {path}: {source}")]
+    Read {
+        /// File.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+    /// The plot could not be drawn.
+    #[error("drawing the fit plot: {0}")]
+    Plot(String),
+}
+
+/// Why a prediction failed (nothing is written then).
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum PredictError {
+    /// The calibration file is missing or invalid.
+    #[error("{0}")]
+    File(#[from] ProductFileError),
+    /// The sample table is missing or invalid.
+    #[error("{0}")]
+    Samples(#[from] SampleError),
+    /// The device's own check refuses the calibration.
+    #[error("{path}: the device would refuse this calibration ({reason})")]
+    Refused {
+        /// Calibration file.
+        path: PathBuf,
+        /// The device's reason.
+        reason: String,
+    },
+    /// The table was measured at other frequencies than the calibration's.
+    #[error("{input}: sample {sample} was measured at {got_hz:?} Hz, but {cal} holds only at {want_hz:?} Hz (its reference samples' frequencies); nothing written")]
+    OtherFrequencies {
+        /// The table.
+        input: PathBuf,
+        /// The sample.
+        sample: String,
+        /// Its frequencies.
+        got_hz: [f64; 2],
+        /// The calibration file.
+        cal: PathBuf,
+        /// The calibration's frequencies.
+        want_hz: [f64; 2],
+    },
+    /// The interval model failed (a bad confidence level).
+    #[error("{0}")]
+    Interval(#[from] fringe_calibration::fit::product::ProductFitError),
+    /// The CSV could not be written.
+    #[error("writing the predictions: {0}")]
+    Write(#[from] csv::Error),
+}
+
+/// Why `cal adjust` failed (nothing is written then).
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum AdjustError {
+    /// The calibration file is missing or invalid.
+    #[error("{0}")]
+    File(#[from] ProductFileError),
+    /// A reference-sample table of pairs could not be evaluated.
+    #[error("{0}")]
+    Predict(#[from] PredictError),
+    /// A value of the pairs table is not a number.
+    #[error("{0}")]
+    Samples(#[from] SampleError),
+    /// The pairs table is not a readable CSV.
+    #[error("{path}: {source}")]
+    Csv {
+        /// File.
+        path: PathBuf,
+        /// The reader's error.
+        source: csv::Error,
+    },
+    /// Too few pairs for the tests.
+    #[error("{source_words}: {n} lab pair(s) with both values; the bias and slope tests need at least 3 (take more grab samples)")]
+    TooFewPairs {
+        /// Where the pairs came from.
+        source_words: String,
+        /// Pairs with both values.
+        n: usize,
+    },
+    /// The tests could not be computed.
+    #[error("{source_words}: {source}")]
+    Tests {
+        /// Where the pairs came from.
+        source_words: String,
+        /// Why not.
+        source: StatsError,
+    },
+    /// The device's own check refuses the calibration.
+    #[error("{path}: the device would refuse this calibration ({reason})")]
+    Refused {
+        /// Calibration file.
+        path: PathBuf,
+        /// The device's reason.
+        reason: String,
+    },
+    /// The adjusted model does not fit the wire form.
+    #[error("the adjusted model has too many parameters for the device")]
+    TooMany,
+}
 
 /// Which model `cal fit` fits.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum FitModel {
     /// Polynomial in eps' at one frequency plus a temperature term.
     Single,
@@ -42,53 +180,34 @@ pub enum FitModel {
     Compare,
 }
 
-/// `fringe cal fit`.
-#[derive(Debug, Clone, Args)]
-#[command(
-    after_help = "Example:\n  fringe cal fit --samples lab-2026-11.csv --model compare --bulk-density-kg-m3 760 \\\n      --particle-density-kg-m3 1400 --out wheat-l2.toml --plot wheat-l2.svg"
-)]
-pub struct FitArgs {
-    /// Reference-sample table (CSV: sample_id, moisture_pct, temperature_c, freq1_hz, eps1_re, eps1_im, freq2_hz, eps2_re, eps2_im).
-    #[arg(long, value_name = "FILE.csv")]
+/// What `cal fit` fits, from what.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FitOptions {
+    /// Reference-sample table (CSV: sample_id, moisture_pct, temperature_c,
+    /// freq1_hz, eps1_re, eps1_im, freq2_hz, eps2_re, eps2_im).
     pub samples: PathBuf,
     /// Model to fit.
-    #[arg(long, value_enum, default_value_t = FitModel::Compare)]
     pub model: FitModel,
-    /// Where to write the product calibration (TOML).
-    #[arg(long, value_name = "PRODUCT.toml")]
+    /// Where the product calibration will be written (its stem is the
+    /// default product name).
     pub out: PathBuf,
-    /// Product name as the plant calls it (at most 16 bytes) [default: the output file's stem].
-    #[arg(long)]
+    /// Product name as the plant calls it (at most 16 bytes).
     pub name: Option<String>,
-    /// Wet bulk density of the product at the sensor, kg/m^3 (relaxation model; measure it).
-    #[arg(long, value_name = "KG_M3")]
+    /// Wet bulk density of the product at the sensor, kg/m^3 (relaxation model).
     pub bulk_density_kg_m3: Option<f64>,
-    /// Particle density of the dry matter, kg/m^3 (relaxation model; measured or handbook).
-    #[arg(long, value_name = "KG_M3")]
+    /// Particle density of the dry matter, kg/m^3 (relaxation model).
     pub particle_density_kg_m3: Option<f64>,
     /// Polynomial degree of the regression, 1-3.
-    #[arg(long, default_value_t = 2, value_parser = clap::value_parser!(u8).range(1..=3))]
     pub degree: u8,
-    /// Cross-validation: 0 for leave-one-out below 100 samples and 10 folds from 100 on,
-    /// else the number of folds (venetian blinds; the number of samples is leave-one-out).
-    #[arg(long, default_value_t = 0)]
+    /// Cross-validation: 0 for leave-one-out below 100 samples and 10
+    /// folds from 100 on, else the number of folds.
     pub folds: usize,
-    /// Noise standard deviation of eps' and eps'' (for the uncertainty the device reports).
-    #[arg(long, default_value_t = 0.02)]
+    /// Noise standard deviation of eps' and eps'' (for the uncertainty).
     pub eps_sd: f64,
-    /// Moisture basis of the lab values.
-    #[arg(long, value_parser = ["wet", "dry"], default_value = "wet")]
+    /// Moisture basis of the lab values, `wet` or `dry`.
     pub basis: String,
-    /// Print the result as one JSON object.
-    #[arg(long)]
-    pub json: bool,
-    /// Draw predicted vs lab and residuals vs each input to this SVG file.
-    #[arg(long, value_name = "FILE.svg")]
-    pub plot: Option<PathBuf>,
-    /// Write the calibration even if it fails the quality gate (RPD < 2, R^2 < 0.8,
-    /// fewer than 5 samples per parameter, a range set by one sample); the
-    /// overridden refusals are kept in the file and in `cal push`'s audit record.
-    #[arg(long)]
+    /// Keep a calibration the quality gate refuses (the refusals are kept
+    /// in the file).
     pub force: bool,
 }
 
@@ -173,46 +292,6 @@ pub fn gate_of_file(s: &Statistics) -> Vec<String> {
         .iter()
         .map(ToString::to_string)
         .collect()
-}
-
-/// `fringe cal predict`.
-#[derive(Debug, Clone, Args)]
-#[command(
-    after_help = "Example:\n  fringe cal predict --cal wheat-l2.toml --input check-samples.csv --out predicted.csv"
-)]
-pub struct PredictArgs {
-    /// Product calibration (TOML written by `fringe cal fit`).
-    #[arg(long, value_name = "PRODUCT.toml")]
-    pub cal: PathBuf,
-    /// Table of samples (reference-sample columns; moisture_pct optional).
-    #[arg(long, value_name = "FILE.csv")]
-    pub input: PathBuf,
-    /// Output CSV [default: stdout].
-    #[arg(long, value_name = "FILE.csv")]
-    pub out: Option<PathBuf>,
-    /// Noise standard deviation of eps' and eps'' used for the uncertainty.
-    #[arg(long, default_value_t = 0.02)]
-    pub eps_sd: f32,
-    /// Confidence level of the prediction interval.
-    #[arg(long, default_value_t = 0.95, value_parser = confidence_level)]
-    pub confidence: f64,
-    /// Print the rows and the statistics as one JSON object on stdout (no CSV).
-    #[arg(long)]
-    pub json: bool,
-}
-
-fn confidence_level(s: &str) -> Result<f64, String> {
-    let v: f64 = s
-        .trim()
-        .parse()
-        .map_err(|_| format!("`{s}` is not a number"))?;
-    if v > 0.5 && v < 1.0 {
-        Ok(v)
-    } else {
-        Err(format!(
-            "{s} is not a confidence level between 0.5 and 1 (e.g. 0.95)"
-        ))
-    }
 }
 
 fn to_fit_samples(set: &SampleSet) -> Vec<Sample> {
@@ -308,12 +387,15 @@ fn model_words(k: fringe_calibration::product::ModelKind) -> &'static str {
 }
 
 /// Wire form of a fit.
+///
+/// # Errors
+/// [`FitError::TooMany`] when the fit does not fit the wire form.
 pub fn wire_of(
     f: &ProductFit,
     name: &str,
     basis: Basis,
     made_s: u64,
-) -> anyhow::Result<ProductCal> {
+) -> Result<ProductCal, FitError> {
     let c = &f.calibration;
     let model = match c.model.kind() {
         fringe_calibration::product::ModelKind::SingleFrequency => ModelKind::SingleFrequency,
@@ -333,7 +415,7 @@ pub fn wire_of(
         model,
         basis,
         params: heapless::Vec::from_slice(&f.params)
-            .map_err(|_| anyhow::anyhow!("fit gave too many parameters"))?,
+            .map_err(|_| FitError::TooMany { what: "parameters" })?,
         moisture_pct: Range {
             min: c.moisture_pct.min,
             max: c.moisture_pct.max,
@@ -342,19 +424,22 @@ pub fn wire_of(
             min: c.temperature_c.min,
             max: c.temperature_c.max,
         },
-        inputs: heapless::Vec::from_slice(&inputs)
-            .map_err(|_| anyhow::anyhow!("fit gave too many input ranges"))?,
+        inputs: heapless::Vec::from_slice(&inputs).map_err(|_| FitError::TooMany {
+            what: "input ranges",
+        })?,
         sec_pct: c.sec_pct,
         made_s,
     })
 }
 
-/// Fits as `args` says, without writing anything.
+/// Fits as `args` says, without writing anything. `made_s` is the time
+/// the calibration is made, s since the Unix epoch (kept on the device).
 ///
 /// # Errors
-/// A bad sample table ([`crate::samples::SampleError`], naming file, line,
-/// column and field), too few samples, missing densities, or a failed fit.
-pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
+/// A bad sample table ([`SampleError`], naming file, line, column and
+/// field), too few samples, missing densities, a failed fit, or the
+/// quality gate ([`GateRefused`]) unless `force`.
+pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
     let set = read_samples(&args.samples, MoistureColumn::Required)?;
     let degree = usize::from(args.degree);
     let words = match args.model {
@@ -383,9 +468,9 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
         folds,
         ..SingleOptions::default()
     };
-    let relax = || -> anyhow::Result<RelaxationOptions> {
+    let relax = || -> Result<RelaxationOptions, FitError> {
         let (Some(b), Some(p)) = (args.bulk_density_kg_m3, args.particle_density_kg_m3) else {
-            bail!("the relaxation model needs --bulk-density-kg-m3 and --particle-density-kg-m3 (measured for this product)");
+            return Err(FitError::NoDensities);
         };
         Ok(RelaxationOptions {
             degree,
@@ -399,7 +484,10 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
             ..RelaxationOptions::new(b, p)
         })
     };
-    let ctx = || format!("{}: fitting the {words} model", args.samples.display());
+    let ctx = |source| FitError::Model {
+        what: format!("{}: fitting the {words} model", args.samples.display()),
+        source,
+    };
     let mv = |method| MultivariateOptions {
         method,
         eps_sd: args.eps_sd,
@@ -408,13 +496,13 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
     };
     let (chosen, compared, rule, sep_ratio) = match args.model {
         FitModel::Single => (
-            fit_single(&samples, &single).with_context(ctx)?,
+            fit_single(&samples, &single).map_err(ctx)?,
             Vec::new(),
             None,
             None,
         ),
         FitModel::Relaxation => (
-            fit_relaxation(&samples, &relax()?).with_context(ctx)?,
+            fit_relaxation(&samples, &relax()?).map_err(ctx)?,
             Vec::new(),
             None,
             None,
@@ -428,7 +516,7 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
                     MvMethod::Ridge
                 }),
             )
-            .with_context(ctx)?,
+            .map_err(ctx)?,
             Vec::new(),
             None,
             None,
@@ -448,7 +536,7 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
                     folds,
                 },
             )
-            .with_context(ctx)?;
+            .map_err(ctx)?;
             let chosen = c.chosen_fit().clone();
             let single_sep = c.results.iter().find_map(|(k, r)| {
                 (*k == fringe_calibration::fit::product::Candidate::SingleFrequency)
@@ -489,19 +577,20 @@ pub fn fit(args: &FitArgs) -> anyhow::Result<FitOutcome> {
         })
         .unwrap_or_else(|| "product".into());
     if name.is_empty() || name.len() > fringe_protocol::NAME_LEN {
-        bail!(
-            "product name `{name}` must be 1 to {} bytes (use --name)",
-            fringe_protocol::NAME_LEN
-        );
+        return Err(FitError::BadName {
+            name,
+            max: fringe_protocol::NAME_LEN,
+        });
     }
     let basis = if args.basis == "dry" {
         Basis::Dry
     } else {
         Basis::Wet
     };
-    let bytes = std::fs::read(&args.samples)
-        .with_context(|| format!("reading {}", args.samples.display()))?;
-    let made_s = (crate::store::now_unix_ms() / 1000).max(0) as u64;
+    let bytes = std::fs::read(&args.samples).map_err(|source| FitError::Read {
+        path: args.samples.clone(),
+        source,
+    })?;
     let wire = wire_of(&chosen, &name, basis, made_s)?;
     let mut statistics = statistics_of(&chosen);
     statistics.gate_overridden = refusals
@@ -598,7 +687,11 @@ pub fn outcome_json(o: &FitOutcome, out: &Path) -> serde_json::Value {
     v
 }
 
-fn print_fit(f: &ProductFit, w: &mut dyn std::io::Write) -> std::io::Result<()> {
+/// Writes a fit's statistics for a person.
+///
+/// # Errors
+/// A failed write.
+pub fn write_fit(f: &ProductFit, w: &mut dyn std::io::Write) -> std::io::Result<()> {
     let s = statistics_of(f);
     writeln!(
         w,
@@ -649,26 +742,17 @@ fn print_fit(f: &ProductFit, w: &mut dyn std::io::Write) -> std::io::Result<()> 
     Ok(())
 }
 
-/// `fringe cal fit`: fit, then write the file (and plot) only when all went well.
+/// Writes what `cal fit` did for a person: the comparison (if any), the
+/// chosen model's statistics, the valid ranges and the files written.
 ///
 /// # Errors
-/// As [`fit`], or a failed write.
-pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
-    let o = fit(args)?;
-    let plot = match &args.plot {
-        Some(_) => Some(fit_plot(&o, &args.samples)?),
-        None => None,
-    };
-    o.file.save(&args.out)?;
-    if let (Some(p), Some(svg)) = (&args.plot, plot) {
-        std::fs::write(p, svg).with_context(|| format!("writing {}", p.display()))?;
-    }
-    let stdout = std::io::stdout();
-    let mut w = stdout.lock();
-    if args.json {
-        writeln!(w, "{}", outcome_json(&o, &args.out))?;
-        return Ok(());
-    }
+/// A failed write.
+pub fn write_fit_summary(
+    o: &FitOutcome,
+    out: &Path,
+    plot: Option<&Path>,
+    w: &mut dyn std::io::Write,
+) -> std::io::Result<()> {
     if let Some((best, threshold)) = o.rule {
         writeln!(w, "model comparison (same samples, same cross-validation):")?;
         writeln!(
@@ -705,7 +789,7 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
         )?;
         writeln!(w)?;
     }
-    print_fit(&o.chosen, &mut w)?;
+    write_fit(&o.chosen, w)?;
     let c = &o.wire;
     writeln!(
         w,
@@ -715,13 +799,8 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
     for r in &o.file.inputs {
         writeln!(w, "  {} {:.4}..{:.4}", r.name, r.min, r.max)?;
     }
-    writeln!(
-        w,
-        "wrote {} (calibration id {})",
-        args.out.display(),
-        o.file.id
-    )?;
-    if let Some(p) = &args.plot {
+    writeln!(w, "wrote {} (calibration id {})", out.display(), o.file.id)?;
+    if let Some(p) = plot {
         writeln!(w, "plot  {}", p.display())?;
     }
     Ok(())
@@ -732,7 +811,7 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
 ///
 /// # Errors
 /// A plotting failure.
-pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> anyhow::Result<String> {
+pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> Result<String, FitError> {
     let set = read_samples(samples_path, MoistureColumn::Required)?;
     let f = &o.chosen;
     let pv: Vec<(f64, f64)> = f
@@ -756,7 +835,7 @@ pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> anyhow::Result<String> {
         true,
         false,
     )
-    .map_err(anyhow::Error::msg)?];
+    .map_err(FitError::Plot)?];
     type Get = fn(&RefSample) -> f64;
     let inputs: [(&str, Get); 5] = [
         ("temperature, C", |s| s.temperature_c),
@@ -781,7 +860,7 @@ pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> anyhow::Result<String> {
                 false,
                 true,
             )
-            .map_err(anyhow::Error::msg)?,
+            .map_err(FitError::Plot)?,
         );
     }
     Ok(plots::combine_svgs(&parts, 3, (480, 380)))
@@ -820,13 +899,11 @@ pub fn predict(
     input: &Path,
     eps_sd: f32,
     confidence: f64,
-) -> anyhow::Result<Vec<Predicted>> {
+) -> Result<Vec<Predicted>, PredictError> {
     let (file, wire) = ProductFile::load(cal_path)?;
-    let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| {
-        anyhow::anyhow!(
-            "{}: the device would refuse this calibration ({e:?})",
-            cal_path.display()
-        )
+    let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| PredictError::Refused {
+        path: cal_path.to_path_buf(),
+        reason: format!("{e:?}"),
     })?;
     let set = read_samples(input, MoistureColumn::Optional)?;
     if let Some(want) = file.source.freqs_hz {
@@ -835,16 +912,13 @@ pub fn predict(
             .iter()
             .find(|s| !crate::product_file::same_freqs(s.freqs_hz, want))
         {
-            anyhow::bail!(
-                "{}: sample {} was measured at {} and {} Hz, but {} holds only at {} and {} Hz (its reference samples' frequencies); nothing written",
-                input.display(),
-                s.sample_id,
-                s.freqs_hz[0],
-                s.freqs_hz[1],
-                cal_path.display(),
-                want[0],
-                want[1]
-            );
+            return Err(PredictError::OtherFrequencies {
+                input: input.to_path_buf(),
+                sample: s.sample_id.clone(),
+                got_hz: s.freqs_hz,
+                cal: cal_path.to_path_buf(),
+                want_hz: want,
+            });
         }
     }
     let model = cal.model.cast::<f64>();
@@ -932,7 +1006,7 @@ fn flag_names(r: &Predicted) -> Vec<String> {
 ///
 /// # Errors
 /// I/O errors.
-pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> anyhow::Result<()> {
+pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> Result<(), csv::Error> {
     let mut c = csv::Writer::from_writer(w);
     c.write_record(PREDICT_COLUMNS)?;
     for r in rows {
@@ -949,6 +1023,20 @@ pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> anyhow:
     }
     c.flush()?;
     Ok(())
+}
+
+/// The statistics of the predictions against the lab values the table
+/// had (`None` without any pair).
+pub fn against_lab(rows: &[Predicted]) -> Option<Result<PredictionStats, StatsError>> {
+    let pairs: Vec<(f64, f64)> = rows
+        .iter()
+        .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
+        .collect();
+    if pairs.is_empty() {
+        return None;
+    }
+    let (lab, pred): (Vec<f64>, Vec<f64>) = pairs.into_iter().unzip();
+    Some(PredictionStats::new(&lab, &pred))
 }
 
 /// The JSON object `cal predict --json` prints.
@@ -982,52 +1070,6 @@ pub fn predictions_json(rows: &[Predicted], confidence: f64) -> serde_json::Valu
         })).collect::<Vec<_>>(),
         "against_lab": stats,
     })
-}
-
-/// `fringe cal predict`.
-///
-/// # Errors
-/// As [`predict`], or a failed write.
-pub fn run_predict(args: &PredictArgs) -> anyhow::Result<()> {
-    let rows = predict(&args.cal, &args.input, args.eps_sd, args.confidence)?;
-    if args.json {
-        let v = predictions_json(&rows, args.confidence);
-        match &args.out {
-            Some(p) => std::fs::write(p, format!("{v}\n"))
-                .with_context(|| format!("writing {}", p.display()))?,
-            None => writeln!(std::io::stdout().lock(), "{v}")?,
-        }
-        return Ok(());
-    }
-    match &args.out {
-        Some(p) => {
-            let tmp = p.with_extension("csv.part");
-            let f = std::fs::File::create(&tmp)
-                .with_context(|| format!("creating {}", tmp.display()))?;
-            write_predictions(f, &rows)?;
-            std::fs::rename(&tmp, p).with_context(|| format!("writing {}", p.display()))?;
-        }
-        None => write_predictions(std::io::stdout().lock(), &rows)?,
-    }
-    let pairs: Vec<(f64, f64)> = rows
-        .iter()
-        .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
-        .collect();
-    if !pairs.is_empty() {
-        let (lab, pred): (Vec<f64>, Vec<f64>) = pairs.into_iter().unzip();
-        match PredictionStats::new(&lab, &pred) {
-            Ok(s) => eprintln!(
-                "against moisture_pct of {} samples: SEP {:.3} %, bias {:+.3} % (predicted - lab)",
-                s.n, s.sep, s.bias
-            ),
-            Err(e) => eprintln!("against moisture_pct: no statistics ({e})"),
-        }
-    }
-    let failed = rows.iter().filter(|r| r.moisture_pct.is_none()).count();
-    if failed > 0 {
-        eprintln!("{failed} sample(s) gave no moisture (see their flags)");
-    }
-    Ok(())
 }
 
 #[cfg(test)]
@@ -1068,9 +1110,9 @@ mod tests {
         p
     }
 
-    fn args(samples: PathBuf, out: PathBuf, model: FitModel) -> FitArgs {
+    fn args(samples: PathBuf, out: PathBuf, model: FitModel) -> FitOptions {
         let g = SynthProduct::<f64>::grain();
-        FitArgs {
+        FitOptions {
             samples,
             model,
             out,
@@ -1081,8 +1123,6 @@ mod tests {
             folds: 0,
             eps_sd: 0.02,
             basis: "wet".into(),
-            json: true,
-            plot: None,
             force: false,
         }
     }
@@ -1092,7 +1132,7 @@ mod tests {
         let seed = 77;
         let dir = tempfile::tempdir().expect("dir");
         let csv = synth_csv(dir.path(), "lab.csv", 40, seed);
-        let o = fit(&args(csv, dir.path().join("p.toml"), FitModel::Compare)).expect("fit");
+        let o = fit(&args(csv, dir.path().join("p.toml"), FitModel::Compare), 0).expect("fit");
         let ratio = o.sep_ratio.expect("compare gives a ratio");
         eprintln!("seed {seed}: SEP single / SEP chosen = {ratio:.2}");
         assert!(ratio > 3.0, "seed {seed}: ratio {ratio}");
@@ -1110,7 +1150,7 @@ mod tests {
         let dir = tempfile::tempdir().expect("dir");
         let csv = synth_csv(dir.path(), "lab.csv", 40, seed);
         let toml = dir.path().join("p.toml");
-        let o = fit(&args(csv, toml.clone(), FitModel::Relaxation)).expect("fit");
+        let o = fit(&args(csv, toml.clone(), FitModel::Relaxation), 0).expect("fit");
         o.file.save(&toml).expect("save");
         // Fresh samples of the same product: the prediction error is of the
         // size of the cross-validated SEP (within a factor of 2).
@@ -1162,25 +1202,24 @@ mod tests {
     fn too_few_samples_and_missing_densities_are_refused() {
         let dir = tempfile::tempdir().expect("dir");
         let csv = synth_csv(dir.path(), "few.csv", 5, 1);
-        let e = fit(&args(
-            csv.clone(),
-            dir.path().join("p.toml"),
-            FitModel::Single,
-        ))
+        let e = fit(
+            &args(csv.clone(), dir.path().join("p.toml"), FitModel::Single),
+            0,
+        )
         .expect_err("5 < 4 + 3")
         .to_string();
         assert!(e.contains("needs at least 7"), "{e}");
         let csv = synth_csv(dir.path(), "ok.csv", 20, 2);
         let mut a = args(csv, dir.path().join("p.toml"), FitModel::Relaxation);
         a.bulk_density_kg_m3 = None;
-        let e = fit(&a).expect_err("no density").to_string();
+        let e = fit(&a, 0).expect_err("no density").to_string();
         assert!(e.contains("--bulk-density-kg-m3"), "{e}");
         assert!(!dir.path().join("p.toml").exists(), "nothing written");
     }
 }
 
 /// Which correction `cal adjust` writes.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum AdjustCorrection {
     /// What the tests call for: slope and bias if the slope differs significantly from 1, else the bias if significant, else nothing.
     Auto,
@@ -1190,43 +1229,17 @@ pub enum AdjustCorrection {
     BiasSlope,
 }
 
-/// `fringe cal adjust`.
-#[derive(Debug, Clone, Args)]
-#[command(
-    after_help = "Examples:\n  fringe cal adjust --cal wheat-l2.toml --db line2.db --out wheat-l2-adj.toml\n  fringe cal predict --cal wheat-l2.toml --input grabs.csv --out pairs.csv\n  fringe cal adjust --cal wheat-l2.toml --pairs pairs.csv --out wheat-l2-adj.toml\nThen push the new file with `fringe cal push` like any other."
-)]
-pub struct AdjustArgs {
+/// What `cal adjust` checks and writes.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AdjustOptions {
     /// The calibration in force (TOML from `fringe cal fit` or an earlier adjust).
-    #[arg(long, value_name = "PRODUCT.toml")]
     pub cal: PathBuf,
-    /// Lab pairs: a CSV with `moisture_pct` (lab) and `predicted_moisture_pct`
-    /// (as `cal predict` writes), or a reference-sample table (evaluated with --cal).
-    #[arg(
-        long,
-        value_name = "FILE.csv",
-        conflicts_with = "db",
-        required_unless_present = "db"
-    )]
-    pub pairs: Option<PathBuf>,
-    /// Take the lab grab samples and their inline readings from this database
-    /// (those since the calibration was pushed, when the records say).
-    #[arg(long, value_name = "FILE")]
-    pub db: Option<PathBuf>,
-    /// Device serial in the database [default: its first device].
-    #[arg(long)]
-    pub serial: Option<String>,
     /// Where to write the adjusted calibration.
-    #[arg(long, value_name = "PRODUCT.toml")]
     pub out: PathBuf,
     /// Which correction to write.
-    #[arg(long, value_enum, default_value_t = AdjustCorrection::Auto)]
     pub correct: AdjustCorrection,
     /// Significance level of the bias and slope tests.
-    #[arg(long, default_value_t = 0.05)]
     pub alpha: f64,
-    /// Print the result as one JSON object.
-    #[arg(long)]
-    pub json: bool,
 }
 
 /// Lab and predicted values of `cal adjust`'s pairs, with where they came from.
@@ -1240,12 +1253,23 @@ pub struct Pairs {
     pub source: String,
 }
 
-fn pairs_from_csv(path: &Path, cal: &Path) -> anyhow::Result<Pairs> {
-    let text = std::fs::read(path).with_context(|| format!("reading {}", path.display()))?;
+/// The lab pairs of a CSV: `moisture_pct` (lab) beside
+/// `predicted_moisture_pct` (as `cal predict` writes them), or a
+/// reference-sample table, evaluated with the calibration `cal`.
+///
+/// # Errors
+/// An unreadable file, a value that is not a number (file, line, column
+/// and field named), or a table the calibration cannot evaluate.
+pub fn pairs_from_csv(path: &Path, cal: &Path) -> Result<Pairs, AdjustError> {
+    let csv_err = |source| AdjustError::Csv {
+        path: path.to_path_buf(),
+        source,
+    };
+    let text = std::fs::read(path).map_err(|e| csv_err(e.into()))?;
     let mut rdr = csv::ReaderBuilder::new()
         .trim(csv::Trim::All)
         .from_reader(text.as_slice());
-    let header = rdr.headers()?.clone();
+    let header = rdr.headers().map_err(csv_err)?.clone();
     let col = |n: &str| header.iter().position(|h| h.eq_ignore_ascii_case(n));
     let (lab_c, pred_c) = match (col("moisture_pct"), col("predicted_moisture_pct")) {
         (Some(l), Some(p)) => (l, p),
@@ -1265,9 +1289,9 @@ fn pairs_from_csv(path: &Path, cal: &Path) -> anyhow::Result<Pairs> {
     };
     let (mut lab, mut predicted) = (Vec::new(), Vec::new());
     for rec in rdr.records() {
-        let rec = rec?;
+        let rec = rec.map_err(csv_err)?;
         let line = rec.position().map_or(0, |p| p.line());
-        let get = |c: usize, name: &str| -> anyhow::Result<Option<f64>> {
+        let get = |c: usize, name: &str| -> Result<Option<f64>, SampleError> {
             let t = rec.get(c).unwrap_or("");
             if t.is_empty() {
                 return Ok(None);
@@ -1276,7 +1300,7 @@ fn pairs_from_csv(path: &Path, cal: &Path) -> anyhow::Result<Pairs> {
                 .parse()
                 .ok()
                 .filter(|v: &f64| v.is_finite())
-                .ok_or_else(|| crate::samples::SampleError::BadValue {
+                .ok_or_else(|| SampleError::BadValue {
                     file: path.to_path_buf(),
                     line,
                     column: c + 1,
@@ -1302,12 +1326,6 @@ fn pairs_from_csv(path: &Path, cal: &Path) -> anyhow::Result<Pairs> {
     })
 }
 
-fn pairs_from_db(db: &Path, serial: Option<&str>, cal_id: &str) -> anyhow::Result<Pairs> {
-    let store = crate::store::Store::open(db)?;
-    let data = crate::analysis::load(&store, serial)?;
-    Ok(pairs_from_line(&data, cal_id, db))
-}
-
 /// Result of `cal adjust`.
 #[derive(Debug, Clone)]
 pub struct AdjustOutcome {
@@ -1321,22 +1339,8 @@ pub struct AdjustOutcome {
     pub source: String,
 }
 
-/// `fringe cal adjust` without printing.
-///
-/// # Errors
-/// Bad files, too few pairs, a database failure, or a write failure.
-pub fn adjust(args: &AdjustArgs) -> anyhow::Result<AdjustOutcome> {
-    let (file, _) = ProductFile::load(&args.cal)?;
-    let pairs = match (&args.pairs, &args.db) {
-        (Some(p), _) => pairs_from_csv(p, &args.cal)?,
-        (None, Some(db)) => pairs_from_db(db, args.serial.as_deref(), &file.id)?,
-        (None, None) => bail!("give the lab pairs with --pairs FILE.csv or --db FILE"),
-    };
-    adjust_with(args, pairs)
-}
-
-/// The lab pairs of a line's data (`fringe_host::analysis`): those since
-/// the calibration `cal_id` was pushed, when the records say.
+/// The lab pairs of a line's data ([`crate::analysis`]): those since the
+/// calibration `cal_id` was pushed, when the records say.
 pub fn pairs_from_line(data: &crate::analysis::LineData, cal_id: &str, db: &Path) -> Pairs {
     let since = data
         .cals
@@ -1368,22 +1372,31 @@ pub fn pairs_from_line(data: &crate::analysis::LineData, cal_id: &str, db: &Path
     }
 }
 
-/// `cal adjust` on pairs already gathered.
+/// `cal adjust` on pairs already gathered: the bias and slope tests, and
+/// the corrected calibration written to `args.out` when a correction
+/// applies (`made_s`: its time, s since the Unix epoch).
 ///
 /// # Errors
-/// As [`adjust`].
-pub fn adjust_with(args: &AdjustArgs, pairs: Pairs) -> anyhow::Result<AdjustOutcome> {
+/// A bad calibration file, too few pairs, or a failed write.
+pub fn adjust(
+    args: &AdjustOptions,
+    pairs: Pairs,
+    made_s: u64,
+) -> Result<AdjustOutcome, AdjustError> {
     use fringe_calibration::fit::adjust::{bias_slope, Correction};
     let (file, wire) = ProductFile::load(&args.cal)?;
     if pairs.lab.len() < 3 {
-        bail!(
-            "{}: {} lab pair(s) with both values; the bias and slope tests need at least 3 (take more grab samples)",
-            pairs.source,
-            pairs.lab.len()
-        );
+        return Err(AdjustError::TooFewPairs {
+            source_words: pairs.source,
+            n: pairs.lab.len(),
+        });
     }
-    let tests = bias_slope(&pairs.lab, &pairs.predicted, args.alpha)
-        .map_err(|e| anyhow::anyhow!("{}: {e}", pairs.source))?;
+    let tests = bias_slope(&pairs.lab, &pairs.predicted, args.alpha).map_err(|source| {
+        AdjustError::Tests {
+            source_words: pairs.source.clone(),
+            source,
+        }
+    })?;
     let applied = match args.correct {
         AdjustCorrection::Auto => tests.recommended(),
         AdjustCorrection::Bias => Correction::Bias,
@@ -1398,20 +1411,16 @@ pub fn adjust_with(args: &AdjustArgs, pairs: Pairs) -> anyhow::Result<AdjustOutc
         });
     }
     let (a, b) = tests.map(applied);
-    let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| {
-        anyhow::anyhow!(
-            "{}: the device would refuse this calibration ({e:?})",
-            args.cal.display()
-        )
+    let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| AdjustError::Refused {
+        path: args.cal.clone(),
+        reason: format!("{e:?}"),
     })?;
     let model = cal.model.cast::<f64>().rescaled(a, b);
     let (params, n) = model.to_params();
     let map = |x: f32| (a + b * f64::from(x)) as f32;
     let (lo, hi) = (map(wire.moisture_pct.min), map(wire.moisture_pct.max));
-    let made_s = (crate::store::now_unix_ms() / 1000).max(0) as u64;
     let new_wire = ProductCal {
-        params: heapless::Vec::from_slice(&params[..n])
-            .map_err(|_| anyhow::anyhow!("adjusted model has too many parameters"))?,
+        params: heapless::Vec::from_slice(&params[..n]).map_err(|_| AdjustError::TooMany)?,
         moisture_pct: Range {
             min: lo.min(hi),
             max: lo.max(hi),
@@ -1450,28 +1459,19 @@ pub fn adjust_with(args: &AdjustArgs, pairs: Pairs) -> anyhow::Result<AdjustOutc
     })
 }
 
-/// `fringe cal adjust`: tests, prints, and writes the corrected calibration
-/// when a correction applies.
-///
-/// # Errors
-/// As [`adjust`].
-pub fn run_adjust(args: &AdjustArgs) -> anyhow::Result<()> {
-    let o = adjust(args)?;
-    print_adjust(args, &o, &mut std::io::stdout().lock())
-}
-
-/// Prints a `cal adjust` outcome (text, or one JSON object with `--json`).
+/// Writes a `cal adjust` outcome for a person (or one JSON object).
 ///
 /// # Errors
 /// A failed write.
-pub fn print_adjust(
-    args: &AdjustArgs,
+pub fn write_adjust(
+    args: &AdjustOptions,
     o: &AdjustOutcome,
+    json: bool,
     w: &mut dyn std::io::Write,
-) -> anyhow::Result<()> {
+) -> std::io::Result<()> {
     use fringe_calibration::fit::adjust::Correction;
     let t = &o.tests;
-    if args.json {
+    if json {
         let v = json!({
             "pairs": t.n,
             "source": o.source,

@@ -17,8 +17,9 @@
 use fringe_protocol::{Flags, Reading, Seq};
 use serde::{Deserialize, Serialize};
 
+use fringe_store::{CalKind, RecordRead, StoreError};
+
 use crate::drift::{sigma_moving_range, Monitor, Obs, Quantity, Trace};
-use crate::store::{CalKind, Store};
 
 /// What `fringe cal push` / `cal cell` keep in a calibration record's body
 /// (beside the wire calibration), and the audit fields of a change.
@@ -53,7 +54,7 @@ pub struct CalRecordBody {
 pub struct Row {
     /// Wall-clock time, ms since the Unix epoch: re-based for a reading
     /// taken before the device clock was set (see
-    /// [`crate::store::StoredReading::wall_ms`]); the device's time since
+    /// `fringe_store::LoggedReading::wall_ms`); the device's time since
     /// boot when that is not known (`clock_known` false).
     pub time_ms: i64,
     /// The time was re-based from a time since boot.
@@ -105,25 +106,52 @@ pub struct LineData {
     refs_position: Option<u64>,
 }
 
+/// Why a device's data could not be read.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum LoadError {
+    /// The store failed.
+    #[error("{0}")]
+    Store(#[from] StoreError),
+    /// No device of that serial is recorded.
+    #[error("no device `{serial}` in {db}")]
+    NoSuchDevice {
+        /// The serial asked for.
+        serial: String,
+        /// The database.
+        db: String,
+    },
+    /// The store holds no device yet.
+    #[error("{db}: the database holds no device yet")]
+    NoDevice {
+        /// The database.
+        db: String,
+    },
+}
+
 /// Reads a device's data (the first device if `serial` is `None`).
 ///
 /// # Errors
 /// A store failure, or no such device.
-pub fn load(store: &Store, serial: Option<&str>) -> anyhow::Result<LineData> {
+pub fn load(
+    store: &(impl RecordRead + ?Sized),
+    serial: Option<&str>,
+) -> Result<LineData, LoadError> {
     let devices = store.devices()?;
+    let db = || store.path().display().to_string();
     let serial = match serial {
         Some(s) => {
             if !devices.iter().any(|d| d.serial == s) {
-                anyhow::bail!("no device `{s}` in {}", store.path().display());
+                return Err(LoadError::NoSuchDevice {
+                    serial: s.into(),
+                    db: db(),
+                });
             }
             s.to_string()
         }
         None => match devices.first() {
             Some(d) => d.serial.clone(),
-            None => anyhow::bail!(
-                "{}: the database holds no device yet",
-                store.path().display()
-            ),
+            None => return Err(LoadError::NoDevice { db: db() }),
         },
     };
     let mut data = LineData {
@@ -142,11 +170,11 @@ impl LineData {
     ///
     /// # Errors
     /// A store failure.
-    pub fn refresh(&mut self, store: &Store) -> anyhow::Result<()> {
+    pub fn refresh(&mut self, store: &(impl RecordRead + ?Sized)) -> Result<(), StoreError> {
         let from = self.rows.last().map_or(Seq::from_u64(0), |r| {
             Seq::from_u64(r.reading.seq.as_u64().saturating_add(1))
         });
-        store.for_each_reading(&self.serial, from, Seq::from_u64(u64::MAX), |r| {
+        store.for_each_reading(&self.serial, from, Seq::from_u64(u64::MAX), &mut |r| {
             self.rows.push(Row {
                 time_ms: r.wall_ms.unwrap_or(r.reading.time_ms as i64),
                 rebased: r.rebased,
@@ -303,8 +331,9 @@ impl LineData {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::store::{DeviceInfo, NewLabSample, Source};
     use fringe_protocol::RefCheck;
+    use fringe_sqlite::Store;
+    use fringe_store::{DeviceInfo, NewLabSample, Source};
 
     fn reading(i: u32) -> Reading {
         let mut r = Reading {

@@ -34,13 +34,14 @@ use std::fmt;
 use std::io::{BufRead, Write};
 use std::path::{Path, PathBuf};
 
-use crate::store::Value;
+use fringe_store::Value;
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
 
-use crate::drift::fmt_time;
-use crate::store::chain::{self, ChainProblem, Hash, Table, GENESIS};
-use crate::store::{ChainedRecord, Store, StoreError};
+use fringe_store::chain::{self, ChainProblem, Hash, Table, GENESIS};
+use fringe_store::{BootClock, ChainedRecord, RecordRead, StoreError};
+
+use crate::timefmt::fmt_time;
 
 /// Bundle format name in the manifest.
 pub const FORMAT: &str = "fringe-audit-bundle/1";
@@ -72,8 +73,8 @@ pub enum AuditError {
     },
     /// No record lies in the requested time range.
     NothingInRange {
-        /// From, ms.
-        from_ms: i64,
+        /// From, ms (`None`: from the first record).
+        from_ms: Option<i64>,
         /// To, ms.
         to_ms: i64,
     },
@@ -96,12 +97,19 @@ impl fmt::Display for AuditError {
                 "{}: folder exists and is not empty; choose a new folder (bundles are never overwritten)",
                 path.display()
             ),
-            AuditError::NothingInRange { from_ms, to_ms } => write!(
+            AuditError::NothingInRange {
+                from_ms: Some(from_ms),
+                to_ms,
+            } => write!(
                 f,
                 "no stored record lies between {} and {}",
                 fmt_time(*from_ms),
                 fmt_time(*to_ms)
             ),
+            AuditError::NothingInRange {
+                from_ms: None,
+                to_ms,
+            } => write!(f, "no stored record lies before {}", fmt_time(*to_ms)),
             AuditError::BadManifest { path, reason } => {
                 write!(f, "{}: not a usable bundle manifest: {reason}", path.display())
             }
@@ -201,6 +209,9 @@ struct InForce {
 pub struct ExportSummary {
     /// Folder written.
     pub out: PathBuf,
+    /// No start was given: the bundle starts at the first record the
+    /// database holds, and `manifest.from_ms` is that record's time.
+    pub from_first_record: bool,
     /// The manifest written.
     pub manifest: Manifest,
     /// Calibration records in force (positions).
@@ -261,10 +272,6 @@ fn from_json(v: &serde_json::Value) -> Option<Value> {
     })
 }
 
-fn table_named(s: &str) -> Option<Table> {
-    Table::ALL.into_iter().find(|t| t.name() == s)
-}
-
 fn json_record(r: &ChainedRecord) -> JsonRecord {
     let values = r
         .columns
@@ -281,8 +288,8 @@ fn json_record(r: &ChainedRecord) -> JsonRecord {
 }
 
 /// When each device's boots had their clock first set (see
-/// [`crate::store::BootClock`]), by serial.
-type Clocks = std::collections::HashMap<String, BTreeMap<u32, crate::store::BootClock>>;
+/// [`BootClock`]), by serial.
+type Clocks = std::collections::HashMap<String, BTreeMap<u32, BootClock>>;
 
 /// The time a record is filed under for the range (see the module doc): a
 /// reading taken before its device's clock was set, and an event logged
@@ -319,7 +326,7 @@ fn record_time_ms(r: &ChainedRecord, clocks: &Clocks) -> Option<i64> {
                 clock().map(|c| c.origin_ms + t)
             }
         }
-        Table::Events if (t as u64) < crate::session::CLOCK_SET_AFTER_MS => {
+        Table::Events if (t as u64) < fringe_store::record::SINCE_BOOT_BELOW_MS => {
             let number = int("number")?;
             clock()
                 .filter(|c| number <= i64::from(c.event_number))
@@ -330,10 +337,7 @@ fn record_time_ms(r: &ChainedRecord, clocks: &Clocks) -> Option<i64> {
 }
 
 fn value_of<'a>(r: &'a ChainedRecord, col: &str) -> Option<&'a Value> {
-    r.columns
-        .iter()
-        .position(|c| *c == col)
-        .and_then(|i| r.values.get(i))
+    r.value_of(col)
 }
 
 // ---------------------------------------------------------------- CSV view
@@ -432,15 +436,18 @@ fn sha256_file(path: &Path) -> Result<(String, u64), AuditError> {
 }
 
 /// Writes a bundle of every record in `[from_ms, to_ms]` into `out` (created;
-/// refused if it exists and is not empty).
+/// refused if it exists and is not empty). Without `from_ms` the bundle
+/// starts at the first record the database holds, and its manifest's
+/// `from_ms` is that record's time (never a date before the records).
 ///
 /// # Errors
 /// [`AuditError`] on a store or file failure, an occupied folder, or an
-/// empty range. On error a partly written folder is removed.
+/// empty range. On error the files it wrote are removed, and the folder if
+/// it created it; nothing else.
 pub fn export(
-    store: &Store,
+    store: &(impl RecordRead + ?Sized),
     db_label: &str,
-    from_ms: i64,
+    from_ms: Option<i64>,
     to_ms: i64,
     out: &Path,
 ) -> Result<ExportSummary, AuditError> {
@@ -452,6 +459,9 @@ pub fn export(
             });
         }
     }
+    // The back end's own full check first: a damaged page is not exported
+    // as if the chain were whole.
+    store.check_integrity(true)?;
     let mut clocks = Clocks::new();
     for d in store.devices()? {
         let c = store.boot_clocks(&d.serial)?;
@@ -465,15 +475,19 @@ pub fn export(
     // Latest calibration record per (kind, cal id), with the hash before it.
     let mut cal_records: Vec<(Hash, ChainedRecord)> = Vec::new();
     let mut columns: BTreeMap<String, Vec<String>> = BTreeMap::new();
-    store.for_each_record(|r| {
+    // The earliest time of a record in range (None sorts first: start high).
+    let mut first_time: Option<i64> = Some(i64::MAX);
+    store.for_each_record(&mut |r| {
         columns
             .entry(r.table.name().to_string())
             .or_insert_with(|| r.columns.iter().map(|c| c.to_string()).collect());
-        let in_range = record_time_ms(&r, &clocks).is_some_and(|t| t >= from_ms && t <= to_ms);
+        let time = record_time_ms(&r, &clocks);
+        let in_range = time.is_some_and(|t| from_ms.is_none_or(|f| t >= f) && t <= to_ms);
         if in_range {
             if first.is_none() {
                 first = Some((r.position, prev));
             }
+            first_time = first_time.min(time);
             last = Some(r.position);
             if r.table == Table::Readings {
                 for c in ["cell_cal", "product_cal"] {
@@ -494,6 +508,8 @@ pub fn export(
     let (Some((first_position, anchor)), Some(last_position)) = (first, last) else {
         return Err(AuditError::NothingInRange { from_ms, to_ms });
     };
+    let from_first_record = from_ms.is_none();
+    let from_ms = from_ms.or(first_time).unwrap_or(to_ms);
     // Calibrations in force: for each id the readings carry, the latest
     // record of it; and for each device and kind the latest record stored
     // before the slice ends (by chain position: a record's own time is when
@@ -524,6 +540,7 @@ pub fn export(
     }
     in_force.sort_by_key(|r| r.1.position);
 
+    let created = !out.exists();
     std::fs::create_dir_all(out).map_err(io(out))?;
     let result = write_bundle(
         store,
@@ -534,14 +551,39 @@ pub fn export(
         &columns,
         &in_force,
     );
-    if result.is_err() {
-        let _ = std::fs::remove_dir_all(out);
+    match result {
+        Ok(mut s) => {
+            s.from_first_record = from_first_record;
+            Ok(s)
+        }
+        Err(e) => {
+            // Only what this export wrote goes: its files, and the folder
+            // if it made it (empty then).
+            for name in bundle_files() {
+                let _ = std::fs::remove_file(out.join(name));
+            }
+            if created {
+                let _ = std::fs::remove_dir(out);
+            }
+            Err(e)
+        }
     }
-    result
+}
+
+/// Every file a bundle holds.
+fn bundle_files() -> Vec<String> {
+    let mut names: Vec<String> = vec![
+        MANIFEST.into(),
+        RECORDS.into(),
+        CALS_IN_FORCE.into(),
+        "README.txt".into(),
+    ];
+    names.extend(Table::ALL.iter().map(|t| format!("{}.csv", t.name())));
+    names
 }
 
 fn write_bundle(
-    store: &Store,
+    store: &(impl RecordRead + ?Sized),
     db_label: &str,
     out: &Path,
     (from_ms, to_ms): (i64, i64),
@@ -570,7 +612,7 @@ fn write_bundle(
     let mut counts: BTreeMap<String, u64> = BTreeMap::new();
     let mut last_hash = anchor;
     let mut write_err: Option<AuditError> = None;
-    store.for_each_record(|r| {
+    store.for_each_record(&mut |r| {
         if r.position < first_position || r.position > last_position || write_err.is_some() {
             return Ok(());
         }
@@ -636,7 +678,7 @@ fn write_bundle(
     let manifest = Manifest {
         format: FORMAT.into(),
         tool: format!("fringe {}", env!("CARGO_PKG_VERSION")),
-        created_utc: fmt_time(crate::store::now_unix_ms()),
+        created_utc: fmt_time(fringe_store::now_unix_ms()),
         database: db_label.into(),
         from_ms,
         to_ms,
@@ -658,6 +700,7 @@ fn write_bundle(
     .map_err(io(&mp))?;
     Ok(ExportSummary {
         out: out.to_path_buf(),
+        from_first_record: false,
         manifest,
         calibrations_in_force: in_force.iter().map(|r| r.1.position).collect(),
     })
@@ -844,7 +887,7 @@ fn parse_record(
     j: &JsonRecord,
     columns: &BTreeMap<String, Vec<String>>,
 ) -> Result<(Table, Hash, Vec<Value>), String> {
-    let table = table_named(&j.table).ok_or_else(|| format!("unknown table `{}`", j.table))?;
+    let table = Table::named(&j.table).ok_or_else(|| format!("unknown table `{}`", j.table))?;
     let hash = hash_from_hex(&j.hash).ok_or("hash is not 64 hex digits")?;
     let cols = columns
         .get(&j.table)
@@ -866,12 +909,14 @@ fn parse_record(
     Ok((table, hash, values))
 }
 
-/// Checks a bundle folder, and with `db` also against that database.
+/// Checks a bundle folder, and with `db` also that database (its integrity
+/// check, its own chain, and the bundle against it).
 ///
 /// # Errors
-/// [`AuditError`] when the manifest cannot be read or the database fails;
+/// [`AuditError`] when the manifest cannot be read, the database fails or
+/// its integrity check finds it damaged ([`StoreError::Corrupt`]);
 /// everything found wrong inside the bundle is in the report.
-pub fn verify(dir: Option<&Path>, db: Option<&Store>) -> Result<VerifyReport, AuditError> {
+pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyReport, AuditError> {
     let mut report = VerifyReport {
         records_checked: 0,
         bundle_last: None,
@@ -882,7 +927,10 @@ pub fn verify(dir: Option<&Path>, db: Option<&Store>) -> Result<VerifyReport, Au
         bundle_records = verify_bundle(dir, &mut report)?;
     }
     if let Some(store) = db {
-        let chain = store.verify_chain()?;
+        // The back end's own full check first: a damaged index page (which
+        // a walk of the tables by position never reads) is found too.
+        store.check_integrity(true)?;
+        let chain = fringe_store::verify_chain(store)?;
         report.records_checked += chain.records;
         report
             .problems
@@ -895,7 +943,7 @@ pub fn verify(dir: Option<&Path>, db: Option<&Store>) -> Result<VerifyReport, Au
                 bundle_records.iter().map(|p| p.position).max().unwrap_or(0),
             );
             let mut seen = 0usize;
-            store.for_each_record(|r| {
+            store.for_each_record(&mut |r| {
                 if r.position < lo || r.position > hi {
                     return Ok(());
                 }
@@ -1236,8 +1284,9 @@ fn check_csv(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::store::{CalKind, DeviceInfo, NewCalibration, NewLabSample, Source};
     use fringe_protocol::{CalId, ChannelValue, Flags, Reading, Seq};
+    use fringe_sqlite::Store;
+    use fringe_store::{CalKind, DeviceInfo, NewCalibration, NewLabSample, Source};
 
     const T0: i64 = 1_796_104_800_000;
 
@@ -1325,7 +1374,7 @@ mod tests {
 
     fn export_to(db: &Path, out: &Path) -> ExportSummary {
         let s = Store::open_read_only(db).expect("ro");
-        export(&s, "test.db", T0, T0 + 3_600_000, out).expect("export")
+        export(&s, "test.db", Some(T0), T0 + 3_600_000, out).expect("export")
     }
 
     fn check(dir: &Path) -> VerifyReport {
@@ -1362,13 +1411,45 @@ mod tests {
         assert!(r.ok(), "{:?}", r.problems);
         // Refuses to overwrite.
         assert!(matches!(
-            export(&store, "x", T0, T0 + 1, &out),
+            export(&store, "x", Some(T0), T0 + 1, &out),
             Err(AuditError::OutNotEmpty { .. })
         ));
         assert!(matches!(
-            export(&store, "x", 0, 1, &dir.path().join("e")),
+            export(&store, "x", Some(0), 1, &dir.path().join("e")),
             Err(AuditError::NothingInRange { .. })
         ));
+    }
+
+    /// The bundle of the issue said "from -292275055-05-16T16:47:04Z".
+    #[test]
+    fn a_bundle_without_a_start_starts_at_the_first_record_and_says_so() {
+        let (dir, db) = fixture("f");
+        let store = Store::open_read_only(&db).expect("ro");
+        let out = dir.path().join("all");
+        let to = fringe_store::now_unix_ms() + 86_400_000;
+        let s = export(&store, "x", None, to, &out).expect("export");
+        assert!(s.from_first_record);
+        assert_eq!(s.manifest.first_position, 1, "from the first record");
+        // The earliest time among its records: the first reading's.
+        assert_eq!(s.manifest.from_ms, T0);
+        let readme = std::fs::read_to_string(out.join("README.txt")).expect("readme");
+        assert!(readme.contains(&fmt_time(T0)), "{readme}");
+        assert!(!readme.contains("-292275055"), "{readme}");
+        assert!(check(&out).ok());
+    }
+
+    #[test]
+    fn a_failed_export_removes_only_what_it_wrote() {
+        let (dir, db) = fixture("g");
+        let store = Store::open_read_only(&db).expect("ro");
+        // An empty folder of the user's, and a range with nothing in it.
+        let out = dir.path().join("mine");
+        std::fs::create_dir(&out).expect("dir");
+        assert!(matches!(
+            export(&store, "x", Some(0), 1, &out),
+            Err(AuditError::NothingInRange { .. })
+        ));
+        assert!(out.is_dir(), "the user's folder stays");
     }
 
     #[test]

@@ -1,0 +1,635 @@
+//! What the quality commands show, built from a store: drift summaries
+//! (text, JSON, charts), the report's input and page, the calibration
+//! history, lab grab samples matched to readings, and the summaries of an
+//! audit export and verification. Nothing here prints: text goes to a
+//! writer the caller gives.
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use fringe_protocol::Flags;
+use fringe_store::{chain, CalKind, NewLabSample, RecordRead, RecordStore, Recorded, StoreError};
+use serde_json::json;
+
+use crate::analysis::{self, CalRecordBody, LineData, LoadError};
+use crate::audit;
+use crate::drift::{ChartKind, CusumParams, EwmaParams, Trace};
+use crate::plots::{self, LabPoint, TrendPoint};
+use crate::report::{self, ReportInput};
+use crate::timefmt::{fmt_person, fmt_time};
+
+/// Why a view could not be made.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum ViewError {
+    /// The store failed.
+    #[error("{0}")]
+    Store(#[from] StoreError),
+    /// The device's data could not be read.
+    #[error("{0}")]
+    Load(#[from] LoadError),
+    /// Which device is meant is not clear.
+    #[error("{db}: {what}")]
+    Device {
+        /// The database.
+        db: String,
+        /// What is unclear.
+        what: String,
+    },
+    /// A value given is out of its range (the flag named).
+    #[error("{0}")]
+    BadValue(String),
+    /// A chart or page could not be drawn.
+    #[error("drawing {what}: {reason}")]
+    Draw {
+        /// What.
+        what: &'static str,
+        /// Why not.
+        reason: String,
+    },
+    /// A file could not be written.
+    #[error("writing {path}: {source}")]
+    Write {
+        /// File.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+}
+
+/// The device `serial`, or the store's only device.
+///
+/// # Errors
+/// [`ViewError::Device`] when the store holds none, or several and none was named.
+pub fn only_device(
+    store: &(impl RecordRead + ?Sized),
+    serial: Option<&str>,
+) -> Result<String, ViewError> {
+    if let Some(s) = serial {
+        return Ok(s.to_string());
+    }
+    let d = store.devices()?;
+    let db = store.path().display().to_string();
+    match d.as_slice() {
+        [one] => Ok(one.serial.clone()),
+        [] => Err(ViewError::Device {
+            db,
+            what: "no device recorded yet; connect the device once (fringe monitor) first".into(),
+        }),
+        _ => Err(ViewError::Device {
+            db,
+            what: format!(
+                "several devices ({}); choose one with --serial",
+                d.iter()
+                    .map(|x| x.serial.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ),
+        }),
+    }
+}
+
+/// A lab grab sample to record against the inline reading at its time.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GrabSample {
+    /// When it was taken, ms since the Unix epoch.
+    pub time_ms: i64,
+    /// Lab moisture, % (on `basis`).
+    pub moisture_pct: f64,
+    /// `wet` or `dry`.
+    pub basis: String,
+    /// Reference method.
+    pub method: String,
+    /// Who took and measured it.
+    pub operator: String,
+    /// The lab's sample id (`LAB-<time>` when none).
+    pub sample_id: Option<String>,
+    /// Furthest a matched reading may lie from `time_ms`, s.
+    pub match_within_s: i64,
+}
+
+/// What recording a grab sample did.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GrabRecorded {
+    /// The sample id stored.
+    pub sample_id: String,
+    /// The device.
+    pub serial: String,
+    /// The reading it was matched to, with its wall-clock time and whether
+    /// that was re-based.
+    pub matched: Option<(fringe_protocol::Reading, i64, bool)>,
+    /// The store's answer.
+    pub recorded: Recorded,
+}
+
+impl GrabSample {
+    /// Checks the values before anything is opened or written.
+    ///
+    /// # Errors
+    /// [`ViewError::BadValue`] naming the flag.
+    pub fn validate(&self) -> Result<(), ViewError> {
+        let limit = if self.basis == "dry" { 1000.0 } else { 100.0 };
+        if !(self.moisture_pct.is_finite() && self.moisture_pct >= 0.0 && self.moisture_pct < limit)
+        {
+            return Err(ViewError::BadValue(format!(
+                "--moisture {}: must be a moisture in % {} basis, 0 <= m < {limit}",
+                self.moisture_pct, self.basis
+            )));
+        }
+        if self.operator.trim().is_empty() || self.method.trim().is_empty() {
+            return Err(ViewError::BadValue(
+                "--operator and --method must not be empty (the audit trail needs who and how)"
+                    .into(),
+            ));
+        }
+        Ok(())
+    }
+
+    /// Records the sample for device `serial` (the store's only device
+    /// when `None`), matched by wall-clock time (re-based for readings
+    /// taken before the clock was set) to the nearest reading with a
+    /// moisture within `match_within_s`.
+    ///
+    /// # Errors
+    /// [`ViewError`]: a bad value, an unclear device, a store failure.
+    pub fn record(
+        &self,
+        store: &mut (impl RecordStore + ?Sized),
+        serial: Option<&str>,
+    ) -> Result<GrabRecorded, ViewError> {
+        self.validate()?;
+        let serial = only_device(store, serial)?;
+        let readings = store.readings(&serial)?;
+        let nearest = readings
+            .iter()
+            .filter(|r| r.reading.moisture_pct.is_some())
+            .filter_map(|r| r.wall_ms.map(|t| (r, t)))
+            .min_by_key(|(_, t)| (t - self.time_ms).abs());
+        let matched =
+            nearest.filter(|(_, t)| (t - self.time_ms).abs() <= self.match_within_s * 1000);
+        let sample_id = self
+            .sample_id
+            .clone()
+            .unwrap_or_else(|| format!("LAB-{}", fmt_time(self.time_ms)));
+        let recorded = store.insert_lab_sample(
+            &serial,
+            &NewLabSample {
+                sample_id: sample_id.clone(),
+                taken_unix_ms: self.time_ms,
+                product: None,
+                lab_moisture_pct: self.moisture_pct,
+                basis: self.basis.clone(),
+                method: Some(self.method.clone()),
+                reading: matched.map(|(r, _)| r.reading.seq),
+                note: Some(format!("operator: {}", self.operator)),
+                supersedes: None,
+            },
+        )?;
+        Ok(GrabRecorded {
+            sample_id,
+            serial,
+            matched: matched.map(|(r, t)| (r.reading, t, r.rebased)),
+            recorded,
+        })
+    }
+}
+
+/// One monitor as `fringe drift --json` prints it.
+pub fn trace_json(t: &Trace) -> serde_json::Value {
+    let m = &t.monitor;
+    json!({
+        "quantity": m.quantity,
+        "unit": m.quantity.unit(),
+        "observations": t.obs.len(),
+        "target": m.target,
+        "sigma": m.sigma,
+        "range": m.range,
+        "cusum": { "k": m.cusum.k, "h": m.cusum.h, "arl0": m.cusum.arl(0.0, 64), "arl_1sigma": m.cusum.arl(1.0, 64) },
+        "ewma": if m.range.is_none() {
+            json!({ "lambda": m.ewma.lambda, "l": m.ewma.l, "arl0": m.ewma.arl(0.0, 120), "arl_1sigma": m.ewma.arl(1.0, 120) })
+        } else { serde_json::Value::Null },
+        "alarms": t.episodes().iter().map(alarm_json).collect::<Vec<_>>(),
+    })
+}
+
+/// One alarm as `fringe drift --json` and `fringe monitor --json` print it:
+/// its fields, the message for a person and both times in UTC.
+pub fn alarm_json(a: &crate::drift::Alarm) -> serde_json::Value {
+    let mut v = serde_json::to_value(a).unwrap_or_default();
+    v["message"] = json!(a.message());
+    v["since_utc"] = json!(fmt_time(a.since_ms));
+    v["time_utc"] = json!(fmt_time(a.time_ms));
+    v
+}
+
+/// Writes a drift summary of `data` for a person; returns the alarm count.
+///
+/// # Errors
+/// I/O.
+pub fn write_drift(
+    data: &LineData,
+    traces: &[Trace],
+    w: &mut dyn std::io::Write,
+) -> std::io::Result<usize> {
+    let c = CusumParams::default();
+    let e = EwmaParams::default();
+    writeln!(
+        w,
+        "drift monitors of {} (CUSUM k {} h {}: in-control ARL {:.0}; EWMA lambda {} L {}: {:.0}):",
+        data.serial,
+        c.k,
+        c.h,
+        c.arl(0.0, 64),
+        e.lambda,
+        e.l,
+        e.arl(0.0, 120)
+    )?;
+    let mut n = 0;
+    for t in traces {
+        let m = &t.monitor;
+        let alarms = t.episodes();
+        let what = match m.range {
+            Some((lo, hi)) => format!("calibrated range {lo:.1}..{hi:.1} {}", m.quantity.unit()),
+            None => format!("target {:.4} {}", m.target, m.quantity.unit()),
+        };
+        writeln!(
+            w,
+            "  {:<28} {:>5} obs, {what}, sigma {:.4}: {}",
+            m.quantity.describe(),
+            t.obs.len(),
+            m.sigma,
+            if alarms.is_empty() {
+                "in control".to_string()
+            } else {
+                format!("{} alarm(s)", alarms.len())
+            }
+        )?;
+        for a in alarms {
+            n += 1;
+            writeln!(w, "    ALARM {}", a.message())?;
+        }
+    }
+    Ok(n)
+}
+
+/// What `fringe drift --json` prints.
+pub fn drift_json(data: &LineData, traces: &[Trace]) -> serde_json::Value {
+    json!({ "serial": data.serial, "monitors": traces.iter().map(trace_json).collect::<Vec<_>>() })
+}
+
+/// All control charts of `traces` stacked in one SVG.
+///
+/// # Errors
+/// A plotting failure.
+pub fn drift_svg(traces: &[Trace]) -> Result<String, ViewError> {
+    let mut parts = Vec::new();
+    for t in traces.iter().filter(|t| !t.obs.is_empty()) {
+        parts.push(
+            plots::control_chart_svg(t, ChartKind::Cusum).map_err(|reason| ViewError::Draw {
+                what: "the control charts",
+                reason,
+            })?,
+        );
+        if !t.ewma.is_empty() {
+            parts.push(
+                plots::control_chart_svg(t, ChartKind::Ewma).map_err(|reason| ViewError::Draw {
+                    what: "the control charts",
+                    reason,
+                })?,
+            );
+        }
+    }
+    Ok(plots::combine_svgs(&parts, 1, (900, 280)))
+}
+
+/// Builds the report's input from a store.
+///
+/// # Errors
+/// Store failure.
+pub fn report_input(
+    store: &(impl RecordRead + ?Sized),
+    serial: Option<&str>,
+    title: Option<&str>,
+) -> Result<ReportInput, ViewError> {
+    let data = analysis::load(store, serial)?;
+    let t0 = data.rows.first().map_or(0, |r| r.time_ms);
+    let hours = |t: i64| (t - t0) as f64 / 3.6e6;
+    let trend: Vec<TrendPoint> = data
+        .rows
+        .iter()
+        .map(|r| TrendPoint {
+            t_h: hours(r.time_ms),
+            moisture_pct: r.reading.moisture_pct.map(f64::from),
+            uncertainty_pct: f64::from(r.reading.uncertainty_pct),
+            flagged: !(r.reading.flags - Flags::CLOCK_UNSET).is_empty(),
+        })
+        .collect();
+    let lab: Vec<LabPoint> = data
+        .lab
+        .iter()
+        .map(|l| LabPoint {
+            t_h: hours(l.time_ms),
+            moisture_pct: l.lab_pct,
+        })
+        .collect();
+    let mut flag_counts: Vec<(String, u64)> = Vec::new();
+    for (f, name) in Flags::NAMES {
+        let n = data
+            .rows
+            .iter()
+            .filter(|r| r.reading.flags.contains(f))
+            .count() as u64;
+        if n > 0 {
+            flag_counts.push((name.to_string(), n));
+        }
+    }
+    // Times: readings taken before the device clock was set are placed at
+    // their re-based wall-clock time; those of a boot whose clock was never
+    // set keep their time since boot.
+    let rebased = data.rows.iter().filter(|r| r.rebased).count() as u64;
+    if rebased > 0 {
+        flag_counts.push((
+            "clock_unset, re-based onto wall-clock time".to_string(),
+            rebased,
+        ));
+    }
+    let unknown = data.rows.iter().filter(|r| !r.clock_known).count() as u64;
+    if unknown > 0 {
+        flag_counts.push((
+            "clock_unset, wall-clock time unknown (time since boot)".to_string(),
+            unknown,
+        ));
+    }
+    let mut calibrations = Vec::new();
+    for kind in [CalKind::Cell, CalKind::Product, CalKind::Settings] {
+        if let Some((pos, created, _, body, name)) = data.cals.iter().rev().find(|c| c.2 == kind) {
+            let mut rows = vec![
+                ("calibration id".to_string(), body.new_id.clone()),
+                ("recorded (UTC)".to_string(), fmt_time(*created)),
+                ("chain position".to_string(), pos.to_string()),
+                ("operator".to_string(), body.operator.clone()),
+                ("reason".to_string(), body.reason.clone()),
+                ("replaced".to_string(), body.old_id.clone()),
+            ];
+            if let Some(s) = &body.statistics {
+                rows.push((
+                    "n / SEC / SEP (%)".into(),
+                    format!("{} / {:.3} / {:.3}", s.n, s.sec, s.sep),
+                ));
+                rows.push((
+                    "bias / slope / R^2 / RPD".into(),
+                    format!(
+                        "{:+.3} / {:.4} / {:.4} / {:.2}",
+                        s.bias, s.slope, s.r2, s.rpd
+                    ),
+                ));
+                rows.push(("cross-validation".into(), s.cross_validation.clone()));
+            }
+            if let Ok(cal) =
+                serde_json::from_value::<fringe_protocol::ProductCal>(body.calibration.clone())
+            {
+                rows.push(("model".into(), format!("{:?}", cal.model)));
+                rows.push((
+                    "valid moisture (%)".into(),
+                    format!("{:.2} .. {:.2}", cal.moisture_pct.min, cal.moisture_pct.max),
+                ));
+                rows.push((
+                    "valid temperature (C)".into(),
+                    format!(
+                        "{:.1} .. {:.1}",
+                        cal.temperature_c.min, cal.temperature_c.max
+                    ),
+                ));
+            }
+            if let Some(v) = &body.verification {
+                rows.push(("verification".into(), v.clone()));
+            }
+            let head = match kind {
+                CalKind::Cell => "Cell calibration".to_string(),
+                CalKind::Product => {
+                    format!("Product calibration {}", name.clone().unwrap_or_default())
+                }
+                CalKind::Settings => {
+                    format!("Device settings {}", name.clone().unwrap_or_default())
+                }
+            };
+            calibrations.push((head, rows));
+        }
+    }
+    let (p, h) = store.chain_head()?;
+    Ok(ReportInput {
+        title: title.map_or_else(
+            || format!("Fringe line report: {}", data.serial),
+            str::to_string,
+        ),
+        database: store.path().display().to_string(),
+        span_ms: data
+            .rows
+            .first()
+            .zip(data.rows.last())
+            .map(|(a, b)| (a.time_ms, b.time_ms)),
+        readings: data.rows.len() as u64,
+        trend,
+        lab,
+        flag_counts,
+        traces: data.traces(),
+        calibrations,
+        chain_head: Some((p, chain::hex(&h))),
+    })
+}
+
+/// Writes the report of `store` into `out`.
+///
+/// # Errors
+/// Store failure or a failed write.
+pub fn write_report(
+    store: &(impl RecordRead + ?Sized),
+    serial: Option<&str>,
+    title: Option<&str>,
+    out: &Path,
+) -> Result<PathBuf, ViewError> {
+    // Everything is drawn before anything is written.
+    let input = report_input(store, serial, title)?;
+    let html = report::render(&input).map_err(|reason| ViewError::Draw {
+        what: "the report page",
+        reason,
+    })?;
+    let trend = if input.trend.is_empty() {
+        None
+    } else {
+        Some(
+            plots::trend_svg("inline moisture", &input.trend, &input.lab).map_err(|reason| {
+                ViewError::Draw {
+                    what: "the trend",
+                    reason,
+                }
+            })?,
+        )
+    };
+    let drift = drift_svg(&input.traces)?;
+    let write = |path: PathBuf, body: String| {
+        std::fs::write(&path, body).map_err(|source| ViewError::Write { path, source })
+    };
+    std::fs::create_dir_all(out).map_err(|source| ViewError::Write {
+        path: out.to_path_buf(),
+        source,
+    })?;
+    let page = out.join("index.html");
+    write(page.clone(), html)?;
+    if let Some(svg) = trend {
+        write(out.join("trend.svg"), svg)?;
+    }
+    write(out.join("drift.svg"), drift)?;
+    Ok(page)
+}
+
+/// One calibration change of the history: the device, the record and its body.
+pub type HistoryEntry = (String, fringe_store::StoredCalibration, CalRecordBody);
+
+/// Every calibration change recorded for `serial` (every device when `None`).
+///
+/// # Errors
+/// A store failure.
+pub fn history(
+    store: &(impl RecordRead + ?Sized),
+    serial: Option<&str>,
+) -> Result<Vec<HistoryEntry>, ViewError> {
+    let serials: Vec<String> = match serial {
+        Some(s) => vec![s.to_string()],
+        None => store
+            .devices()?
+            .into_iter()
+            .map(|d| d.record.serial)
+            .collect(),
+    };
+    let mut all = Vec::new();
+    for s in &serials {
+        for c in store.calibrations(s)? {
+            let body: CalRecordBody =
+                serde_json::from_value(c.cal.body.clone()).unwrap_or_default();
+            all.push((s.clone(), c, body));
+        }
+    }
+    Ok(all)
+}
+
+/// The history as `fringe cal history --json` prints it.
+pub fn history_json(all: &[HistoryEntry]) -> serde_json::Value {
+    serde_json::Value::Array(
+        all.iter()
+            .map(|(s, c, b)| {
+                json!({
+                    "serial": s, "position": c.position, "time_utc": fmt_time(c.created_unix_ms), "kind": c.cal.kind,
+                    "slot": c.cal.slot, "name": c.cal.name, "action": b.action, "old_id": b.old_id, "new_id": b.new_id,
+                    "operator": b.operator, "reason": b.reason, "statistics": b.statistics, "verification": b.verification,
+                })
+            })
+            .collect(),
+    )
+}
+
+/// Writes the history for a person, one line per change.
+///
+/// # Errors
+/// A failed write.
+pub fn write_history(all: &[HistoryEntry], db: &Path, w: &mut dyn Write) -> std::io::Result<()> {
+    if all.is_empty() {
+        writeln!(w, "no calibration change recorded in {}", db.display())?;
+    }
+    for (s, c, b) in all {
+        writeln!(
+            w,
+            "{} {s} #{:<3} {:<8} {:<8} {} -> {} slot {} {:<16} by {}: {}",
+            fmt_person(c.created_unix_ms),
+            c.seq,
+            c.cal.kind.as_str(),
+            b.action,
+            b.old_id,
+            b.new_id,
+            c.cal.slot.map_or("-".into(), |x| x.to_string()),
+            c.cal.name.clone().unwrap_or_default(),
+            b.operator,
+            b.reason
+        )?;
+    }
+    Ok(())
+}
+
+/// Writes an export summary for a person.
+///
+/// # Errors
+/// A failed write.
+pub fn write_export(s: &audit::ExportSummary, w: &mut dyn Write) -> std::io::Result<()> {
+    let m = &s.manifest;
+    writeln!(w, "wrote audit bundle {}", s.out.display())?;
+    writeln!(
+        w,
+        "  range {}{} .. {}",
+        fmt_person(m.from_ms),
+        if s.from_first_record {
+            " (the first record: no --from given)"
+        } else {
+            ""
+        },
+        fmt_person(m.to_ms)
+    )?;
+    writeln!(
+        w,
+        "  chain positions {}..={}, last hash {}",
+        m.first_position, m.last_position, m.last_hash
+    )?;
+    for (t, n) in &m.records {
+        writeln!(w, "  {t}: {n} records")?;
+    }
+    writeln!(
+        w,
+        "  calibrations in force: {} record(s), positions {:?}",
+        s.calibrations_in_force.len(),
+        s.calibrations_in_force
+    )?;
+    writeln!(
+        w,
+        "  database chain head at export: position {}, {}",
+        m.db_head_position, m.db_head_hash
+    )?;
+    Ok(())
+}
+
+/// Writes a verification report for a person.
+///
+/// # Errors
+/// A failed write.
+pub fn write_verify(
+    r: &audit::VerifyReport,
+    dir: Option<&Path>,
+    db: Option<&Path>,
+    w: &mut dyn Write,
+) -> std::io::Result<()> {
+    let what = match (dir, db) {
+        (Some(d), Some(b)) => format!("bundle {} against {}", d.display(), b.display()),
+        (Some(d), None) => format!("bundle {}", d.display()),
+        (None, Some(b)) => format!("database {}", b.display()),
+        (None, None) => "nothing".into(),
+    };
+    if r.ok() {
+        writeln!(
+            w,
+            "verified {what}: {} records, no change, removal or reordering found",
+            r.records_checked
+        )?;
+        if let Some((p, h)) = &r.bundle_last {
+            writeln!(w, "  bundle ends at position {p}, hash {h}")?;
+        }
+    } else {
+        writeln!(
+            w,
+            "{what}: {} problem(s) in {} records checked:",
+            r.problems.len(),
+            r.records_checked
+        )?;
+        for p in &r.problems {
+            writeln!(w, "  {p}")?;
+        }
+    }
+    Ok(())
+}
