@@ -113,7 +113,7 @@ pub struct StatusArgs {
 /// `fringe sim`.
 #[derive(Debug, Clone, Args)]
 pub struct SimArgs {
-    /// Scenario file (TOML; see host/src/sim/scenario.rs and scenarios/).
+    /// Scenario file (TOML; see host/sim/src/scenario.rs and host/scenarios/).
     #[arg(long, short = 's', value_name = "FILE")]
     pub scenario: PathBuf,
     /// Keep a symlink to the current pseudo-terminal here (it follows reconnects).

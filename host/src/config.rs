@@ -19,48 +19,20 @@
 
 use std::path::{Path, PathBuf};
 
-use serde::de::DeserializeOwned;
 use serde::Deserialize;
 
 /// Default baud rate.
-pub const DEFAULT_BAUD: u32 = 115_200;
+pub const DEFAULT_BAUD: u32 = fringe_sim::scenario::DEFAULT_BAUD;
 
-/// A configuration or scenario file could not be used.
+pub use fringe_sim::toml_file::{line_column, load_toml, parse_toml, FileError};
+
+/// A line file could not be used, or a value is given nowhere.
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
 pub enum ConfigError {
-    /// The file could not be read.
-    #[error("cannot read {path}: {source}")]
-    Read {
-        /// File.
-        path: PathBuf,
-        /// What the system said.
-        source: std::io::Error,
-    },
-    /// The file is not valid TOML for its schema.
-    #[error("{path}:{line}:{column}: {message}")]
-    Parse {
-        /// File.
-        path: PathBuf,
-        /// 1-based line.
-        line: usize,
-        /// 1-based column.
-        column: usize,
-        /// What is wrong (names the key).
-        message: String,
-    },
-    /// A value is out of its allowed range.
-    #[error("{path}: {field} = {value}: {rule}")]
-    Invalid {
-        /// File.
-        path: PathBuf,
-        /// Key, dotted (`alarm.moisture_high_pct`).
-        field: String,
-        /// The value given.
-        value: String,
-        /// What is allowed.
-        rule: String,
-    },
+    /// The file cannot be read, or a value in it is wrong (named).
+    #[error("{0}")]
+    File(#[from] FileError),
     /// A required value is given neither by flag nor by the line file.
     #[error("no {what} given: pass {flag} or set `{key}` in a line file given with --config")]
     Missing {
@@ -71,43 +43,6 @@ pub enum ConfigError {
         /// The line-file key.
         key: &'static str,
     },
-}
-
-/// 1-based line and column of byte offset `at` in `text`.
-pub fn line_column(text: &str, at: usize) -> (usize, usize) {
-    let before = text.get(..at.min(text.len())).unwrap_or(text);
-    let line = before.matches('\n').count() + 1;
-    let column = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
-    (line, column)
-}
-
-/// Reads and parses a TOML file into `T`, with errors that name the file,
-/// line, column and key.
-///
-/// # Errors
-/// [`ConfigError::Read`] or [`ConfigError::Parse`].
-pub fn load_toml<T: DeserializeOwned>(path: &Path) -> Result<T, ConfigError> {
-    let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
-        path: path.to_path_buf(),
-        source,
-    })?;
-    parse_toml(path, &text)
-}
-
-/// Parses TOML `text` (read from `path`) into `T`.
-///
-/// # Errors
-/// [`ConfigError::Parse`].
-pub fn parse_toml<T: DeserializeOwned>(path: &Path, text: &str) -> Result<T, ConfigError> {
-    toml::from_str(text).map_err(|e| {
-        let (line, column) = e.span().map_or((1, 1), |s| line_column(text, s.start));
-        ConfigError::Parse {
-            path: path.to_path_buf(),
-            line,
-            column,
-            message: e.message().trim().to_string(),
-        }
-    })
 }
 
 /// Alarm limits shown by `fringe monitor` (a reading outside is marked).
@@ -169,11 +104,13 @@ impl LineConfig {
     /// [`ConfigError`] naming the file, position or field.
     pub fn load(path: &Path) -> Result<Self, ConfigError> {
         let mut c: LineConfig = load_toml(path)?;
-        let invalid = |field: &str, value: String, rule: &str| ConfigError::Invalid {
-            path: path.to_path_buf(),
-            field: field.into(),
-            value,
-            rule: rule.into(),
+        let invalid = |field: &str, value: String, rule: &str| {
+            ConfigError::File(FileError::Invalid {
+                path: path.to_path_buf(),
+                field: field.into(),
+                value,
+                rule: rule.into(),
+            })
         };
         if let Some(b) = c.baud {
             if !(300..=4_000_000).contains(&b) {
@@ -216,12 +153,6 @@ impl LineConfig {
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn line_column_counts_from_one() {
-        assert_eq!(line_column("ab\ncd", 0), (1, 1));
-        assert_eq!(line_column("ab\ncd", 4), (2, 2));
-    }
 
     #[test]
     fn line_file_errors_name_the_place() {

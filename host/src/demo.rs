@@ -8,7 +8,7 @@
 //! varies and the window slowly fouls, checks the line with lab grab
 //! samples, runs the drift monitors, exports and verifies an audit bundle
 //! and writes the report. Everything runs in this process on a virtual
-//! clock (see [`crate::simport`]); the outputs are ordinary files that the
+//! clock (see `fringe_sim::port`); the outputs are ordinary files that the
 //! other commands read.
 
 use std::io::IsTerminal as _;
@@ -31,11 +31,11 @@ use crate::cmd::cal::{FitArgs, FitModelArg};
 use crate::device_cal::{self, CellArgs, Guide};
 use crate::link::{Link, LinkOptions};
 use crate::product_file::ProductFile;
-use crate::simport::SimHandle;
 use crate::store::{DeviceInfo, NewLabSample, Source, Store};
 use crate::timefmt::fmt_time;
 use fringe_quality::cal;
 use fringe_quality::views;
+use fringe_sim::port::SimHandle;
 
 /// `fringe demo`.
 #[derive(Debug, Clone, Args)]

@@ -78,6 +78,9 @@ impl ExitCode {
             }
             if cause.downcast_ref::<ConfigError>().is_some()
                 || cause
+                    .downcast_ref::<fringe_sim::toml_file::FileError>()
+                    .is_some()
+                || cause
                     .downcast_ref::<crate::samples::SampleError>()
                     .is_some()
                 || cause

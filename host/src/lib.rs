@@ -40,8 +40,6 @@ pub use fringe_link as link;
 pub mod out;
 pub mod quality;
 pub mod session;
-pub mod sim;
-pub mod simport;
 pub mod store;
 
 use cli::{Cli, Command};

@@ -4,7 +4,7 @@
 use rand::rngs::StdRng;
 use rand::{RngExt, SeedableRng};
 
-use super::scenario::LinkFaults;
+use crate::scenario::LinkFaults;
 
 /// Applies dropped bytes, flipped bits and inserted garbage to a byte stream.
 #[derive(Debug)]

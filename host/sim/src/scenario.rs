@@ -50,7 +50,10 @@ use std::path::{Path, PathBuf};
 
 use serde::Deserialize;
 
-use crate::config::{load_toml, ConfigError};
+use crate::toml_file::{load_toml, parse_toml, FileError};
+
+/// The default baud rate of a simulated device (and of a host).
+pub const DEFAULT_BAUD: u32 = 115_200;
 
 /// A `[t_s, value]` curve point.
 pub type Point = [f64; 2];
@@ -102,7 +105,7 @@ fn one() -> f64 {
 }
 
 fn default_baud() -> u32 {
-    crate::config::DEFAULT_BAUD
+    DEFAULT_BAUD
 }
 
 /// The `[product]` table.
@@ -253,8 +256,8 @@ impl Scenario {
     /// Loads and checks a scenario file.
     ///
     /// # Errors
-    /// [`ConfigError`] naming the file and the line/column or the field.
-    pub fn load(path: &Path) -> Result<Self, ConfigError> {
+    /// [`FileError`] naming the file and the line/column or the field.
+    pub fn load(path: &Path) -> Result<Self, FileError> {
         let s: Scenario = load_toml(path)?;
         s.check(path)?;
         Ok(s)
@@ -264,14 +267,14 @@ impl Scenario {
     ///
     /// # Errors
     /// As [`Scenario::load`].
-    pub fn parse(path: &Path, text: &str) -> Result<Self, ConfigError> {
-        let s: Scenario = crate::config::parse_toml(path, text)?;
+    pub fn parse(path: &Path, text: &str) -> Result<Self, FileError> {
+        let s: Scenario = parse_toml(path, text)?;
         s.check(path)?;
         Ok(s)
     }
 
-    fn check(&self, path: &Path) -> Result<(), ConfigError> {
-        let bad = |field: &str, value: String, rule: &str| ConfigError::Invalid {
+    fn check(&self, path: &Path) -> Result<(), FileError> {
+        let bad = |field: &str, value: String, rule: &str| FileError::Invalid {
             path: PathBuf::from(path),
             field: field.into(),
             value,
@@ -451,7 +454,7 @@ mod tests {
 
     #[test]
     fn shipped_scenarios_load() {
-        let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("scenarios");
+        let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("../scenarios");
         let mut n = 0;
         for entry in std::fs::read_dir(&dir).unwrap() {
             let p = entry.unwrap().path();

@@ -1,5 +1,5 @@
-//! `fringe sim`: the real firmware core with the simulated front end, on a
-//! pseudo-terminal.
+//! The simulator on a pseudo-terminal (`fringe sim`): the real firmware
+//! core with the simulated front end behind the [`SimDevice`] seam.
 //!
 //! The simulator owns a pty pair. The host opens the slave side (its path is
 //! printed, and kept in a symlink with `--link`); the simulator reads and
@@ -8,9 +8,6 @@
 //! closes the pty and opens a new one after the pause (the symlink follows).
 //! When the host sets another baud rate on the port than the scenario's
 //! device baud, every byte is garbled both ways, as on a real UART.
-
-pub mod faults;
-pub mod scenario;
 
 use std::collections::HashSet;
 use std::io::{self, Read, Write};
@@ -21,61 +18,9 @@ use std::time::{Duration, Instant};
 use fringe_protocol::{DeviceFrame, FrameDecoder, Reading, Response};
 use serialport::{SerialPort, TTYPort};
 
-use faults::Injector;
-use scenario::{Conditions, Scenario};
-
-/// The device the simulator runs (the firmware core behind a small seam).
-pub trait SimDevice {
-    /// One step of the device: received bytes in, frames out through `tx`.
-    fn poll(&mut self, now_ms: u64, rx: &[u8], tx: &mut dyn FnMut(&[u8]));
-    /// What the sensor sees now.
-    fn set_conditions(&mut self, c: &Conditions);
-    /// Reboots the device (same flash) if it asked for it.
-    fn reboot_if_requested(&mut self, now_ms: u64);
-    /// Puts a bench material in front of the window instead of the line
-    /// (`None`: the line again). Applied with the next conditions.
-    fn set_bench(&mut self, bench: Option<Bench>);
-    /// One line on what the device is doing (readings, loop current), for
-    /// the simulator's periodic report; `None` if it has nothing to say.
-    fn report(&self) -> Option<String> {
-        None
-    }
-}
-
-/// What is in front of the window at the bench.
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub enum Bench {
-    /// Dry air.
-    Air,
-    /// A reference liquid of the calibration crate's table.
-    Liquid(&'static fringe_calibration::water::ReferenceLiquid),
-}
-
-impl Bench {
-    /// Parses a bench fixture file's text: its first word, `None` for
-    /// `line` or nothing.
-    ///
-    /// # Errors
-    /// A word that names neither air, a table liquid nor the line.
-    pub fn parse(text: &str) -> Result<Option<Bench>, String> {
-        match text.split_whitespace().next() {
-            None | Some("line") => Ok(None),
-            Some("air") => Ok(Some(Bench::Air)),
-            Some(w) => fringe_calibration::water::ReferenceLiquid::by_name(w)
-                .map(|l| Some(Bench::Liquid(l)))
-                .ok_or_else(|| {
-                    format!(
-                        "bench fixture `{w}`: not `line`, `air` or a table liquid ({})",
-                        fringe_calibration::water::REFERENCE_LIQUIDS
-                            .iter()
-                            .map(|l| l.name)
-                            .collect::<Vec<_>>()
-                            .join(", ")
-                    )
-                }),
-        }
-    }
-}
+use crate::device::{Bench, SimDevice};
+use crate::faults::Injector;
+use crate::scenario::Scenario;
 
 /// Where the simulator is reachable and what it did.
 #[derive(Debug, Default, Clone, Copy, PartialEq, Eq)]
@@ -150,17 +95,33 @@ fn record_line(out: &mut impl Write, r: &Reading) -> io::Result<()> {
 /// How often the simulator reports what the device does (wall time).
 pub const REPORT_EVERY: Duration = Duration::from_secs(10);
 
-/// Runs the simulator until `stop` is set (or the duration passes).
-/// `announce` is called with the port path each time a pty is opened.
+/// What the simulator tells its owner while it runs.
+#[derive(Debug, Clone, PartialEq)]
+#[non_exhaustive]
+pub enum SimNote {
+    /// A pty was opened: the path a host opens.
+    Port(String),
+    /// The bench fixture file now says this material (`line` for the line).
+    Bench(String),
+    /// The bench fixture file could not be used (the old material stays).
+    BadBench(String),
+    /// What the device does (every [`REPORT_EVERY`]).
+    Device(String),
+}
+
+/// Runs the simulator until `stop` is set (or the duration passes), on
+/// this machine's clock scaled by the scenario's time scale. `tell` hears
+/// what happens ([`SimNote`]); an error it returns stops the run.
 ///
 /// # Errors
-/// Failure to create the pty, the symlink or the record file.
+/// Failure to create the pty, the symlink or the record file; what `tell`
+/// returns.
 pub fn run(
     device: &mut dyn SimDevice,
     scenario: &Scenario,
     opts: &SimOptions,
     stop: &AtomicBool,
-    announce: &mut dyn FnMut(&str) -> io::Result<()>,
+    tell: &mut dyn FnMut(SimNote) -> io::Result<()>,
 ) -> io::Result<SimStats> {
     let mut stats = SimStats::default();
     let mut injector = Injector::new(scenario.link.clone(), scenario.device.seed ^ 0x9e37_79b9);
@@ -181,7 +142,7 @@ pub fn run(
 
     let mut pty = Some(open_pty(opts.link.as_deref())?);
     if let Some(p) = &pty {
-        announce(&p.path)?;
+        tell(SimNote::Port(p.path.clone()))?;
     }
     let start = Instant::now();
     let scale = scenario.device.time_scale;
@@ -217,7 +178,7 @@ pub fn run(
         }
         if pty.is_none() && reopen_at.is_some_and(|t| Instant::now() >= t) {
             let p = open_pty(opts.link.as_deref())?;
-            announce(&p.path)?;
+            tell(SimNote::Port(p.path.clone()))?;
             pty = Some(p);
             reopen_at = None;
         }
@@ -234,13 +195,12 @@ pub fn run(
                             // answered after the announcement sees it.
                             device.set_conditions(&scenario.at(t_s));
                             last_conditions = Instant::now();
-                            eprintln!(
-                                "fringe sim: bench fixture: {}",
-                                text.split_whitespace().next().unwrap_or("line")
-                            );
+                            tell(SimNote::Bench(
+                                text.split_whitespace().next().unwrap_or("line").into(),
+                            ))?;
                         }
                         // Keep what was there; say why once per change.
-                        Err(e) => eprintln!("fringe sim: {}: {e}", path.display()),
+                        Err(e) => tell(SimNote::BadBench(format!("{}: {e}", path.display())))?,
                     }
                     bench_text = text;
                 }
@@ -285,7 +245,7 @@ pub fn run(
         if last_report.elapsed() >= REPORT_EVERY {
             last_report = Instant::now();
             if let Some(r) = device.report() {
-                eprintln!("fringe sim: {r}");
+                tell(SimNote::Device(r))?;
             }
         }
         device.reboot_if_requested(now_ms);

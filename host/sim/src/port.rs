@@ -17,7 +17,7 @@ use fringe_firmware::hal::NullOutput;
 use fringe_firmware::{Device, DeviceConfig, RamFlash, Scenario, SimFrontend};
 use fringe_protocol::ResetCause;
 
-use crate::link::{LinkError, Opener, Port};
+use fringe_link::{LinkError, Opener, Port};
 
 /// Flash of a simulated device, bytes.
 pub const SIM_FLASH_BYTES: usize = 64 * 1024;
@@ -110,7 +110,7 @@ impl SimHandle {
         self.0.lock().unwrap_or_else(|p| p.into_inner())
     }
 
-    /// An opener for [`crate::link::Link::connect`].
+    /// An opener for [`fringe_link::Link::connect`].
     pub fn opener(&self, name: &str) -> Box<dyn Opener> {
         Box::new(SimOpener {
             sim: self.clone(),
@@ -171,8 +171,8 @@ impl Port for SimPort {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::link::{Link, LinkOptions};
     use fringe_firmware::sim::Material;
+    use fringe_link::{Link, LinkOptions};
     use fringe_protocol::{Request, Response};
 
     #[test]

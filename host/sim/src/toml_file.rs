@@ -1,0 +1,91 @@
+//! TOML files with errors that name the file, line, column and key:
+//! scenario files here, and the binary's line files.
+
+use std::path::{Path, PathBuf};
+
+use serde::de::DeserializeOwned;
+
+/// A TOML file could not be used.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum FileError {
+    /// The file could not be read.
+    #[error("cannot read {path}: {source}")]
+    Read {
+        /// File.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+    /// The file is not valid TOML for its schema.
+    #[error("{path}:{line}:{column}: {message}")]
+    Parse {
+        /// File.
+        path: PathBuf,
+        /// 1-based line.
+        line: usize,
+        /// 1-based column.
+        column: usize,
+        /// What is wrong (names the key).
+        message: String,
+    },
+    /// A value is out of its allowed range.
+    #[error("{path}: {field} = {value}: {rule}")]
+    Invalid {
+        /// File.
+        path: PathBuf,
+        /// Key, dotted (`link.drop_per_byte`).
+        field: String,
+        /// The value given.
+        value: String,
+        /// What is allowed.
+        rule: String,
+    },
+}
+
+/// 1-based line and column of byte offset `at` in `text`.
+pub fn line_column(text: &str, at: usize) -> (usize, usize) {
+    let before = text.get(..at.min(text.len())).unwrap_or(text);
+    let line = before.matches('\n').count() + 1;
+    let column = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
+    (line, column)
+}
+
+/// Reads and parses a TOML file into `T`.
+///
+/// # Errors
+/// [`FileError::Read`] or [`FileError::Parse`].
+pub fn load_toml<T: DeserializeOwned>(path: &Path) -> Result<T, FileError> {
+    let text = std::fs::read_to_string(path).map_err(|source| FileError::Read {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    parse_toml(path, &text)
+}
+
+/// Parses TOML `text` (read from `path`) into `T`.
+///
+/// # Errors
+/// [`FileError::Parse`].
+pub fn parse_toml<T: DeserializeOwned>(path: &Path, text: &str) -> Result<T, FileError> {
+    toml::from_str(text).map_err(|e| {
+        let (line, column) = e.span().map_or((1, 1), |s| line_column(text, s.start));
+        FileError::Parse {
+            path: path.to_path_buf(),
+            line,
+            column,
+            message: e.message().trim().to_string(),
+        }
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn line_column_counts_from_one() {
+        assert_eq!(line_column("ab\ncd", 0), (1, 1));
+        assert_eq!(line_column("ab\ncd", 4), (2, 2));
+    }
+}
