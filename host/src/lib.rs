@@ -39,7 +39,6 @@ pub mod exit;
 pub use fringe_link as link;
 pub mod out;
 pub mod quality;
-pub mod session;
 pub mod store;
 
 use cli::{Cli, Command};

@@ -112,7 +112,7 @@ pub fn status_json(id: &Identity, s: &Status, host_link_errors: u32) -> serde_js
 /// Port, link or output errors.
 pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let mut link = super::connect(&args.port, cfg)?;
-    let s = super::request_status(&mut link)?;
+    let s = link.status()?;
     let id = link.identity().context("no identity after the handshake")?;
     let host_errors = link.stats().damaged;
     if args.json {
@@ -207,10 +207,10 @@ pub fn device(a: &crate::cli::DeviceArgs, cfg: &LineConfig) -> anyhow::Result<()
 fn clock_json(
     port: &str,
     serial: &str,
-    c: &crate::session::ClockCheck,
+    c: &fringe_line::ClockCheck,
     host_ms: i64,
 ) -> serde_json::Value {
-    use crate::session::ClockCheck;
+    use fringe_line::ClockCheck;
     let mut v = json!({
         "port": port,
         "serial": serial,
@@ -232,8 +232,8 @@ fn clock_json(
     v
 }
 
-fn clock_lines(c: &crate::session::ClockCheck, host_ms: i64) -> Vec<String> {
-    use crate::session::ClockCheck;
+fn clock_lines(c: &fringe_line::ClockCheck, host_ms: i64) -> Vec<String> {
+    use fringe_line::ClockCheck;
     let p = crate::timefmt::fmt_person;
     let mut out = Vec::new();
     match *c {
@@ -267,7 +267,7 @@ pub fn clock(a: &crate::cli::ClockArgs, cfg: &LineConfig) -> anyhow::Result<()> 
     let mut link = super::connect(&a.port, cfg)?;
     let serial = link.serial_number().to_string();
     let host = now_unix_ms();
-    let before = crate::session::check_clock(&super::request_status(&mut link)?, host);
+    let before = fringe_line::check_clock(&link.status()?, host);
     let target = if a.set { Some(now_unix_ms()) } else { a.set_to };
     let Some(target) = target else {
         if a.json {
@@ -286,9 +286,9 @@ pub fn clock(a: &crate::cli::ClockArgs, cfg: &LineConfig) -> anyhow::Result<()> 
     // Given a time, keep its distance to now (the write takes a moment).
     let offset = target - host;
     let t = now_unix_ms() + if a.set { 0 } else { offset };
-    crate::session::set_clock(&mut link, &key, t)?;
+    fringe_line::set_clock(&mut link, &key, t)?;
     let host = now_unix_ms();
-    let after = crate::session::check_clock(&super::request_status(&mut link)?, host);
+    let after = fringe_line::check_clock(&link.status()?, host);
     if a.json {
         let mut v = clock_json(link.port_name(), &serial, &after, host);
         v["before"] = clock_json(link.port_name(), &serial, &before, host);
@@ -315,19 +315,7 @@ pub fn clock(a: &crate::cli::ClockArgs, cfg: &LineConfig) -> anyhow::Result<()> 
 /// # Errors
 /// Link errors; a device without settings (protocol 1.0).
 pub fn read_settings(link: &mut crate::link::Link) -> anyhow::Result<fringe_protocol::Settings> {
-    if let Some(id) = link.identity() {
-        if !id.capabilities.contains(Capabilities::SETTINGS) {
-            anyhow::bail!(
-                "{} speaks protocol {} and has no settings to read or write (it needs firmware with protocol 1.1 or later)",
-                id.serial,
-                id.protocol
-            );
-        }
-    }
-    match link.request(fringe_protocol::Request::ReadSettings)? {
-        fringe_protocol::Response::Settings(s) => Ok(s),
-        other => anyhow::bail!("ReadSettings answered {other:?}"),
-    }
+    Ok(link.settings()?)
 }
 
 /// The settings as JSON (stable keys, units in names).
@@ -559,7 +547,7 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
         .identity()
         .cloned()
         .context("no identity after the handshake")?;
-    super::register(&mut store, &id)?;
+    fringe_line::register(&mut store, &id)?;
     super::sync_clock(&mut link, Some(&key), "device config")?;
     let old = read_settings(&mut link)?;
     let new = apply_settings(&old, a)?;

@@ -4,7 +4,6 @@
 
 pub mod cal;
 pub mod device;
-pub mod ingest;
 pub mod monitor;
 pub mod pull;
 pub mod quality;
@@ -14,12 +13,12 @@ use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use anyhow::Context as _;
-use fringe_protocol::{Identity, Request, Response, Status};
+use fringe_line::{ClockCheck, ClockSync, Note};
 
 use crate::cli::PortArgs;
 use crate::config::{ConfigError, LineConfig, DEFAULT_BAUD};
 use crate::link::{Link, LinkError, LinkOptions};
-use crate::store::{DeviceInfo, Store};
+use crate::store::Store;
 
 /// Port and baud from the flags, else the line file, else the default baud.
 ///
@@ -38,39 +37,27 @@ pub fn resolve_port(args: &PortArgs, cfg: &LineConfig) -> Result<(String, u32), 
     Ok((port, args.baud.or(cfg.baud).unwrap_or(DEFAULT_BAUD)))
 }
 
-/// Link options from the flags.
+/// Link options from the flags (handshakes tried before a garbled or
+/// silent line is reported: [`HANDSHAKES`]).
 pub fn link_options(args: &PortArgs) -> LinkOptions {
     LinkOptions {
         timeout: Duration::from_millis(args.timeout_ms),
+        handshakes: HANDSHAKES,
         ..LinkOptions::default()
     }
 }
 
-/// Handshakes tried before a garbled or silent line is reported.
+/// Handshakes tried before a garbled or silent line is reported: a noisy
+/// line can spoil one; a wrong baud rate or a silent device spoils every one.
 pub const HANDSHAKES: u32 = 3;
 
-/// Opens the port named by flags or line file and runs the handshake
-/// (up to [`HANDSHAKES`] times on a garbled or silent line).
+/// Opens the port named by flags or line file and runs the handshake.
 ///
 /// # Errors
 /// [`ConfigError`] or [`LinkError`].
 pub fn connect(args: &PortArgs, cfg: &LineConfig) -> anyhow::Result<Link> {
     let (port, baud) = resolve_port(args, cfg)?;
-    // A noisy line can spoil one handshake; a wrong baud rate or a silent
-    // device spoils every one.
-    let mut tries = 0;
-    loop {
-        tries += 1;
-        match Link::serial(&port, baud, link_options(args)) {
-            Ok(link) => return Ok(link),
-            Err(e @ (LinkError::Garbled { .. } | LinkError::NoAnswer { .. }))
-                if tries < HANDSHAKES =>
-            {
-                let _ = e;
-            }
-            Err(e) => return Err(e.into()),
-        }
-    }
+    Ok(Link::serial(&port, baud, link_options(args))?)
 }
 
 /// The device key from `--key-file`, else the line file's `key_file`, if any.
@@ -87,30 +74,9 @@ pub fn optional_key(
     }
 }
 
-/// The device clock on a connection: set when it is unset or off by more
-/// than a second and a key is at hand ([`crate::session::sync_clock`]);
-/// the result said on stderr in one line (nothing when it was right).
-///
-/// # Errors
-/// Link errors; a refused write (wrong key).
-pub fn sync_clock(
-    link: &mut Link,
-    key: Option<&fringe_protocol::auth::Key>,
-    who: &str,
-) -> anyhow::Result<crate::session::ClockSync> {
-    use crate::session::ClockCheck;
-    let s = match crate::session::sync_clock(link, key, &|| crate::store::now_unix_ms()) {
-        Ok(s) => s,
-        // A refused clock write (a wrong key) is said and left: the
-        // command's own write, if any, meets the same refusal with its
-        // own message.
-        Err(e @ LinkError::Refused { .. }) => {
-            eprintln!("fringe {who}: the device clock was not set: {e}");
-            return crate::session::sync_clock(link, None, &|| crate::store::now_unix_ms())
-                .context("checking the device clock");
-        }
-        Err(e) => return Err(anyhow::Error::new(e).context("checking the device clock")),
-    };
+/// Says in one line on stderr what the clock check of a connection did
+/// (nothing when the clock was right).
+pub fn say_clock(who: &str, s: &ClockSync) {
     let was = match s.before {
         ClockCheck::Unset { since_boot_ms } => format!(
             "was not set ({} since boot)",
@@ -128,14 +94,56 @@ pub fn sync_clock(
             "fringe {who}: device clock {was}; give --key-file (or key_file in the line file) to set it"
         );
     }
-    Ok(s)
 }
 
-/// Opens the database named by `--db` or the line file.
+/// Says on stderr what a line session or pull told, for the notes a
+/// command without a view of its own shows.
+pub fn say_note(who: &str, n: Note<'_>) {
+    match n {
+        Note::Clock(s) => say_clock(who, &s),
+        Note::ClockRefused(e) => eprintln!("fringe {who}: the device clock was not set: {e}"),
+        Note::Lost { count, after } => eprintln!(
+            "fringe {who}: {count} readings after {after} were no longer in the device log (lost)"
+        ),
+        _ => {}
+    }
+}
+
+/// The device clock on a connection: set when it is unset or off by more
+/// than a second and a key is at hand ([`fringe_line::sync_clock`]); the
+/// result said on stderr in one line (nothing when it was right).
 ///
 /// # Errors
-/// [`ConfigError::Missing`] when neither names one; [`crate::store::StoreError`].
-pub fn open_db(db: Option<&Path>, cfg: &LineConfig) -> anyhow::Result<(PathBuf, Store)> {
+/// Link errors.
+pub fn sync_clock(
+    link: &mut Link,
+    key: Option<&fringe_protocol::auth::Key>,
+    who: &str,
+) -> anyhow::Result<ClockSync> {
+    let wall = crate::store::now_unix_ms;
+    match fringe_line::sync_clock(link, key, &wall) {
+        Ok(s) => {
+            say_clock(who, &s);
+            Ok(s)
+        }
+        // A refused clock write (a wrong key) is said and left: the
+        // command's own write, if any, meets the same refusal with its
+        // own message.
+        Err(e @ LinkError::Refused { .. }) => {
+            eprintln!("fringe {who}: the device clock was not set: {e}");
+            fringe_line::sync_clock(link, None, &wall).context("checking the device clock")
+        }
+        Err(e) => Err(anyhow::Error::new(e).context("checking the device clock")),
+    }
+}
+
+/// The database named by `--db` or the line file, checked before anything
+/// is opened: an existing file must be a file; a new one's folder must exist.
+///
+/// # Errors
+/// [`ConfigError::Missing`] when neither names one; a path that cannot be
+/// a database file ([`crate::store::StoreError::CannotOpen`]).
+pub fn db_path(db: Option<&Path>, cfg: &LineConfig) -> anyhow::Result<PathBuf> {
     let db = db
         .map(Path::to_path_buf)
         .or_else(|| cfg.db.clone())
@@ -144,38 +152,30 @@ pub fn open_db(db: Option<&Path>, cfg: &LineConfig) -> anyhow::Result<(PathBuf, 
             flag: "--db",
             key: "db",
         })?;
+    let cannot = |reason: String| crate::store::StoreError::CannotOpen {
+        path: db.clone(),
+        reason,
+    };
+    if db.is_dir() {
+        return Err(cannot("it is a folder".into()).into());
+    }
+    if !db.exists() {
+        match db.parent().filter(|p| !p.as_os_str().is_empty()) {
+            Some(dir) if !dir.is_dir() => {
+                return Err(cannot(format!("folder {} does not exist", dir.display())).into())
+            }
+            _ => {}
+        }
+    }
+    Ok(db)
+}
+
+/// Opens the database named by `--db` or the line file.
+///
+/// # Errors
+/// As [`db_path`]; [`crate::store::StoreError`].
+pub fn open_db(db: Option<&Path>, cfg: &LineConfig) -> anyhow::Result<(PathBuf, Store)> {
+    let db = db_path(db, cfg)?;
     let store = Store::open(&db)?;
     Ok((db, store))
-}
-
-/// Records the device of a handshake in the store; returns its serial.
-///
-/// # Errors
-/// [`crate::store::StoreError`].
-pub fn register(store: &mut Store, id: &Identity) -> anyhow::Result<String> {
-    let serial = id.serial.to_string();
-    store.ensure_device(&DeviceInfo {
-        serial: serial.clone(),
-        firmware: Some(format!(
-            "{}.{}.{}",
-            id.firmware[0], id.firmware[1], id.firmware[2]
-        )),
-        protocol: Some(id.protocol.to_string()),
-        freqs_hz: Some(id.freqs_hz),
-    })?;
-    Ok(serial)
-}
-
-/// Asks the device for its status.
-///
-/// # Errors
-/// [`LinkError`].
-pub fn request_status(link: &mut Link) -> Result<Status, LinkError> {
-    match link.request(Request::Status)? {
-        Response::Status(s) => Ok(s),
-        other => Err(LinkError::Unexpected {
-            request: "Status",
-            got: format!("{other:?}"),
-        }),
-    }
 }

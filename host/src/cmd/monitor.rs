@@ -1,57 +1,34 @@
-//! `fringe monitor`: stream readings, show them live, store every one.
-//!
-//! Readings are committed in batches at most [`crate::store::BATCH_MAX_AGE`]
-//! old. On (re)start and after each reconnect the monitor first stores what
-//! the device logged that the database lacks (before, between and after
-//! what it holds, up to where the device is now: as `fringe pull`), sets the
-//! device clock when it is unset or off by more than a second (with the
-//! device key), then subscribes to the readings of the device's own
-//! schedule. A reading whose sequence does not follow the last one starts a
-//! backfill of the missing ones from the device log, so a killed monitor
-//! loses nothing the device still holds. When the port vanishes the monitor
-//! commits what it has and reconnects with backoff.
+//! `fringe monitor`: a line session (`fringe_line::Session`) with a live
+//! view on a terminal (plain lines otherwise), and the drift monitors of
+//! `fringe drift` run on what is stored as it streams.
 //!
 //! Drift: every `--drift-every-s` seconds (after a commit) the monitor runs
-//! the same four monitors as `fringe drift` ([`crate::analysis`]) over all
-//! that is stored for the device, and announces each alarm episode it has
-//! not announced before; those already in the record when it started are
-//! counted in one line. The episodes are those `fringe drift` prints, as
-//! both read the same store with the same code.
+//! the same four monitors as `fringe drift` (`fringe_quality::analysis`)
+//! over all that is stored for the device, and announces each alarm
+//! episode it has not announced before; those already in the record when
+//! it started are counted in one line. The episodes are those `fringe
+//! drift` prints, as both read the same store with the same code.
 
 use std::io::Write;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
 use anyhow::Context;
-use fringe_protocol::{DeviceFrame, Flags, Reading, Request, Seq};
+use fringe_line::{Ctx, Note, Session, SessionOptions, Summary};
+use fringe_protocol::{Flags, Reading};
+use fringe_quality::drift::{Direction, Quantity};
 
-use super::ingest::{backfill, next_seq, pull_events};
 use crate::cli::MonitorArgs;
 use crate::config::{AlarmLimits, LineConfig};
-use crate::drift::{Direction, Quantity};
-use crate::link::{Link, LinkError};
 use crate::out::{self, Style};
-use crate::store::{Batcher, Source, Store};
+use crate::store::Store;
 
 /// What a monitor run did (printed at the end, `--json` for scripts).
 #[derive(Debug, Clone, Default, serde::Serialize)]
 pub struct MonitorSummary {
-    /// Streamed readings received.
-    pub streamed: u64,
-    /// Readings received from the device log (backfill).
-    pub backfilled: u64,
-    /// Readings newly stored.
-    pub stored: u64,
-    /// Readings received that were already stored.
-    pub duplicates: u64,
-    /// Readings the device log no longer held.
-    pub lost: u64,
-    /// Gaps detected in the stream.
-    pub gaps: u64,
-    /// Reconnects after the port vanished.
-    pub reconnects: u32,
-    /// Damaged frames seen by the host.
-    pub link_errors: u32,
+    /// What the line session did.
+    #[serde(flatten)]
+    pub line: Summary,
     /// Drift alarm episodes already in the record when the monitor started.
     pub drift_alarms_before: usize,
     /// Drift checks that failed (the readings were stored regardless).
@@ -72,34 +49,110 @@ struct DriftWatch {
     /// The check at the start of the run has been made.
     primed: bool,
     /// What was read from the store so far.
-    data: Option<crate::analysis::LineData>,
+    data: Option<fringe_quality::analysis::LineData>,
+    alarms_before: usize,
+    failures: u32,
+    alarms: Vec<serde_json::Value>,
 }
 
-struct Monitor<'a> {
-    link: Link,
-    store: Store,
-    batcher: Batcher,
-    serial: String,
-    last: Option<Seq>,
-    sum: MonitorSummary,
+impl DriftWatch {
+    /// The drift check, never fatal: the readings keep being stored if it
+    /// fails (the failure is said, and counted in the summary).
+    fn watch(&mut self, store: &Store, serial: &str, streamed: u64, view: &mut View, force: bool) {
+        if let Err(e) = self.check(store, serial, streamed, view, force) {
+            self.failures += 1;
+            view.notice(&format!(
+                "drift check failed ({e:#}); readings are still being stored, `fringe drift` can be run on the database"
+            ));
+        }
+    }
+
+    /// Runs the drift monitors if due (or `force`d) and announces new alarms.
+    fn check(
+        &mut self,
+        store: &Store,
+        serial: &str,
+        streamed: u64,
+        view: &mut View,
+        force: bool,
+    ) -> anyhow::Result<()> {
+        let Some(every) = self.every else {
+            return Ok(());
+        };
+        if !force && self.last.is_some_and(|t| t.elapsed() < every) {
+            return Ok(());
+        }
+        self.last = Some(Instant::now());
+        // The first check is the one at the start of the run (before the
+        // stream), even when nothing is stored yet: what it finds was there
+        // before.
+        let at_start = !self.primed;
+        self.primed = true;
+        // Read once, then only what was added since (see `LineData::refresh`).
+        let data = match self.data.as_mut() {
+            Some(d) => {
+                d.refresh(store)
+                    .context("reading the stored data for the drift monitors")?;
+                d
+            }
+            None => match fringe_quality::analysis::load(store, Some(serial)) {
+                Ok(d) => self.data.insert(d),
+                // Nothing stored for the device yet: nothing to watch.
+                Err(_) if store.last_seq(serial)?.is_none() => return Ok(()),
+                Err(e) => {
+                    return Err(anyhow::Error::new(e)
+                        .context("reading the stored data for the drift monitors"))
+                }
+            },
+        };
+        let mut fresh = Vec::new();
+        for t in data.traces() {
+            for a in t.episodes() {
+                if self.known.insert((a.quantity, a.direction, a.time_ms)) {
+                    fresh.push(a);
+                }
+            }
+        }
+        if at_start {
+            self.alarms_before = fresh.len();
+            if !fresh.is_empty() {
+                view.notice(&format!(
+                    "{} drift alarm(s) already in the record for {serial} (details: `fringe drift`)",
+                    fresh.len(),
+                ));
+            }
+            return Ok(());
+        }
+        for a in fresh {
+            let text = format!("DRIFT ALARM: {}", a.message());
+            let text = if view.style.tty {
+                view.style.paint("1;31", &text)
+            } else {
+                text
+            };
+            view.notice(&text);
+            let mut v = fringe_quality::views::alarm_json(&a);
+            v["announced_after_streamed"] = streamed.into();
+            self.alarms.push(v);
+        }
+        Ok(())
+    }
+}
+
+/// The terminal side: the live status line, plain lines, notices.
+struct View {
     style: Style,
     alarm: AlarmLimits,
-    /// The device's measurement interval (or the stream period asked of a
-    /// protocol 1.0 device), ms.
-    period_ms: u32,
-    key: Option<fringe_protocol::auth::Key>,
     quiet: bool,
-    stop: &'a AtomicBool,
-    started: Instant,
+    serial: String,
     last_draw: Instant,
-    last_reading: Instant,
     rate: RateMeter,
-    latest: Option<Reading>,
-    drift: DriftWatch,
+    /// A write to stdout failed (a closed pipe): the run ends.
+    broken: Option<std::io::Error>,
 }
 
 /// Readings per second over a sliding window.
-#[derive(Debug)]
+#[derive(Debug, Default)]
 struct RateMeter {
     times: std::collections::VecDeque<Instant>,
 }
@@ -139,200 +192,47 @@ fn flag_words(f: Flags) -> String {
     }
 }
 
-fn is_disconnect(e: &anyhow::Error) -> bool {
-    e.chain().any(|c| {
-        c.downcast_ref::<LinkError>().is_some_and(|l| {
-            matches!(
-                l,
-                LinkError::Disconnected { .. }
-                    | LinkError::NoAnswer { .. }
-                    | LinkError::Garbled { .. }
-            )
-        })
-    })
-}
-
-impl Monitor<'_> {
-    fn flush(&mut self) -> anyhow::Result<()> {
-        let st = self
-            .batcher
-            .flush(&mut self.store)
-            .context("committing readings (those not committed are still in the device log; the next run pulls them)")?;
-        self.sum.stored += st.inserted;
-        self.sum.duplicates += st.duplicates + st.conflicts;
-        Ok(())
-    }
-
-    fn fill_gap(&mut self, until: Option<Seq>) -> anyhow::Result<()> {
-        let Some(last) = self.last else {
-            return Ok(());
-        };
-        let from = next_seq(last);
-        if until.is_some_and(|u| u <= from) {
-            return Ok(());
-        }
-        let mut reached: Option<Seq> = None;
-        let b = backfill(
-            &mut self.link,
-            &mut self.store,
-            &mut self.batcher,
-            from,
-            until,
-            &mut |_, last| reached = last,
-        );
-        // Keep what a cut-short backfill got: the next one starts after it.
-        if let Some(l) = reached {
-            self.last = Some(self.last.map_or(l, |x| x.max(l)));
-        }
-        let b = b?;
-        self.sum.backfilled += b.received;
-        self.sum.lost += b.lost;
-        if b.lost > 0 {
-            self.notice(&format!(
-                "{} readings after {} were no longer in the device log (lost)",
-                b.lost, last
-            ))?;
-        }
-        Ok(())
-    }
-
-    /// Stores every reading the device log holds that the store lacks, up
-    /// to `until` (see [`super::ingest::backfill_missing`]).
-    fn backfill_missing(&mut self, until: Seq) -> anyhow::Result<()> {
-        let serial = self.serial.clone();
-        let b = super::ingest::backfill_missing(
-            &mut self.link,
-            &mut self.store,
-            &mut self.batcher,
-            &serial,
-            Some(until),
-            &mut |_, _| {},
-        );
-        self.flush()?;
-        let b = b?;
-        self.sum.backfilled += b.received;
-        self.sum.lost += b.lost;
-        if b.received > 0 && !self.quiet {
-            self.notice(&format!(
-                "{} readings from the device log stored (taken while no monitor ran)",
-                b.received
-            ))?;
-        }
-        // Continue after what is stored now (the stream starts at `until`).
-        self.last = self.store.last_seq(&serial)?.max(self.last);
-        Ok(())
-    }
-
-    /// The drift check, never fatal: the readings keep being stored if it
-    /// fails (the failure is said, and counted in the summary).
-    fn watch_drift(&mut self, force: bool) -> anyhow::Result<()> {
-        if let Err(e) = self.check_drift(force) {
-            self.sum.drift_check_failures += 1;
-            self.notice(&format!(
-                "drift check failed ({e:#}); readings are still being stored, `fringe drift` can be run on the database"
-            ))?;
-        }
-        Ok(())
-    }
-
-    /// Runs the drift monitors if due (or `force`d) and announces new alarms.
-    fn check_drift(&mut self, force: bool) -> anyhow::Result<()> {
-        let Some(every) = self.drift.every else {
-            return Ok(());
-        };
-        if !force && self.drift.last.is_some_and(|t| t.elapsed() < every) {
-            return Ok(());
-        }
-        self.drift.last = Some(Instant::now());
-        // The first check is the one at the start of the run (before the
-        // stream), even when nothing is stored yet: what it finds was there
-        // before.
-        let at_start = !self.drift.primed;
-        self.drift.primed = true;
-        // Read once, then only what was added since (see `LineData::refresh`).
-        let data = match self.drift.data.as_mut() {
-            Some(d) => {
-                d.refresh(&self.store)
-                    .context("reading the stored data for the drift monitors")?;
-                d
-            }
-            None => match crate::analysis::load(&self.store, Some(&self.serial)) {
-                Ok(d) => self.drift.data.insert(d),
-                // Nothing stored for the device yet: nothing to watch.
-                Err(_) if self.store.last_seq(&self.serial)?.is_none() => return Ok(()),
-                Err(e) => {
-                    return Err(anyhow::Error::new(e)
-                        .context("reading the stored data for the drift monitors"))
-                }
-            },
-        };
-        let mut fresh = Vec::new();
-        for t in data.traces() {
-            for a in t.episodes() {
-                if self
-                    .drift
-                    .known
-                    .insert((a.quantity, a.direction, a.time_ms))
-                {
-                    fresh.push(a);
-                }
-            }
-        }
-        if at_start {
-            self.sum.drift_alarms_before = fresh.len();
-            if !fresh.is_empty() {
-                self.notice(&format!(
-                    "{} drift alarm(s) already in the record for {} (details: `fringe drift`)",
-                    fresh.len(),
-                    self.serial
-                ))?;
-            }
-            return Ok(());
-        }
-        for a in fresh {
-            let text = format!("DRIFT ALARM: {}", a.message());
-            let text = if self.style.tty {
-                self.style.paint("1;31", &text)
-            } else {
-                text
-            };
-            self.notice(&text)?;
-            let mut v = fringe_quality::views::alarm_json(&a);
-            v["announced_after_streamed"] = self.sum.streamed.into();
-            self.sum.drift_alarms.push(v);
-        }
-        Ok(())
-    }
-
-    fn notice(&mut self, text: &str) -> anyhow::Result<()> {
+impl View {
+    fn notice(&mut self, text: &str) {
         if self.style.tty && !self.quiet {
             let mut o = std::io::stdout().lock();
             let _ = write!(o, "\r\x1b[2K").and_then(|()| o.flush());
         }
         eprintln!("fringe monitor: {text}");
-        Ok(())
     }
 
-    fn on_reading(&mut self, r: Reading) -> anyhow::Result<()> {
-        let now = Instant::now();
-        self.last_reading = now;
-        self.sum.streamed += 1;
-        self.rate.tick(now);
-        match self.last {
-            Some(last) if r.seq <= last => return Ok(()),
-            Some(last) if r.seq != next_seq(last) => {
-                self.sum.gaps += 1;
-                self.fill_gap(Some(r.seq))?;
+    /// What the session told.
+    fn note(&mut self, n: Note<'_>) {
+        match n {
+            Note::Clock(s) => super::say_clock("monitor", &s),
+            Note::ClockRefused(e) => {
+                eprintln!("fringe monitor: the device clock was not set: {e}");
             }
+            Note::PeriodIgnored {
+                asked_ms,
+                interval_ms,
+            } => eprintln!(
+                "fringe monitor: --period-ms {asked_ms} is not used: {} measures every {interval_ms} ms on its own (change it with `fringe device config set --interval-ms`)",
+                self.serial
+            ),
+            Note::CaughtUp { received, .. } if received > 0 && !self.quiet => self.notice(
+                &format!("{received} readings from the device log stored (taken while no monitor ran)"),
+            ),
+            Note::Lost { count, after } => self.notice(&format!(
+                "{count} readings after {after} were no longer in the device log (lost)"
+            )),
+            Note::Reading(r) => {
+                self.rate.tick(Instant::now());
+                if !self.style.tty && !self.quiet && self.broken.is_none() {
+                    if let Err(e) = out::line(&self.plain_line(r)) {
+                        self.broken = Some(e);
+                    }
+                }
+            }
+            Note::Reconnecting(why) => self.notice(&format!("{why}: reconnecting")),
+            Note::Reconnected => self.notice("reconnected"),
             _ => {}
         }
-        self.batcher.push(r, Source::Stream, now);
-        self.last = Some(self.last.map_or(r.seq, |x| x.max(r.seq)));
-        self.latest = Some(r);
-        if !self.style.tty && !self.quiet {
-            out::line(&self.plain_line(&r))?;
-        }
-        Ok(())
     }
 
     fn plain_line(&self, r: &Reading) -> String {
@@ -357,14 +257,13 @@ impl Monitor<'_> {
         )
     }
 
-    fn draw(&mut self) {
+    fn draw(&mut self, latest: Option<&Reading>, sum: &Summary) {
         if !self.style.tty || self.quiet || self.last_draw.elapsed() < Duration::from_millis(200) {
             return;
         }
         self.last_draw = Instant::now();
         let s = self.style;
-        let stats = self.link.stats();
-        let body = match &self.latest {
+        let body = match latest {
             Some(r) => {
                 let alarms = self.alarm.check(r.moisture_pct, r.uncertainty_pct);
                 let m = r
@@ -405,42 +304,10 @@ impl Monitor<'_> {
             "\r\x1b[2K{}  {body}  {:.1}/s  stored {}  link errs {}",
             self.serial,
             self.rate.per_s(),
-            self.sum.stored,
-            stats.damaged
+            sum.stored,
+            sum.link_errors
         )
         .and_then(|()| o.flush());
-    }
-
-    fn start_stream(&mut self) -> anyhow::Result<()> {
-        self.link.request(Request::StartStream {
-            period_ms: self.period_ms,
-        })?;
-        self.last_reading = Instant::now();
-        Ok(())
-    }
-
-    fn reconnect(&mut self, why: &anyhow::Error) -> anyhow::Result<bool> {
-        self.flush()?;
-        self.notice(&format!("{why}: reconnecting"))?;
-        match self.link.reconnect(self.stop) {
-            Ok(id) => {
-                if id.serial.as_str() != self.serial {
-                    anyhow::bail!(
-                        "the device on {} is now {}, not {}: stopping so their readings are not mixed",
-                        self.link.port_name(),
-                        id.serial,
-                        self.serial
-                    );
-                }
-                self.sum.reconnects += 1;
-                self.notice("reconnected")?;
-                let key = self.key;
-                super::sync_clock(&mut self.link, key.as_ref(), "monitor")?;
-                Ok(true)
-            }
-            Err(LinkError::Stopped) => Ok(false),
-            Err(e) => Err(e.into()),
-        }
     }
 }
 
@@ -449,185 +316,162 @@ impl Monitor<'_> {
 /// # Errors
 /// Port, link, database and output errors, each with its exit code.
 pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyhow::Result<()> {
-    let (db, mut store) = super::open_db(args.db.as_deref(), cfg)?;
+    // Inputs first, then the device, then the database (nothing is
+    // created or changed before the device has answered).
+    let db = super::db_path(args.db.as_deref(), cfg)?;
     let key = super::optional_key(args.key_file.as_deref(), cfg)?;
-    let mut link = super::connect(&args.port, cfg)?;
-    let id = link
-        .identity()
-        .cloned()
-        .context("no identity after the handshake")?;
-    let serial = super::register(&mut store, &id)?;
-    super::sync_clock(&mut link, key.as_ref(), "monitor")?;
-    let own_schedule = id
-        .capabilities
-        .contains(fringe_protocol::Capabilities::SETTINGS);
-    let period_ms = if own_schedule {
-        let interval = super::device::read_settings(&mut link)?.interval_ms;
-        if let Some(p) = args.period_ms.filter(|p| *p != interval) {
-            eprintln!(
-                "fringe monitor: --period-ms {p} is not used: {serial} measures every {interval} ms on its own (change it with `fringe device config set --interval-ms`)"
-            );
-        }
-        interval
-    } else {
-        args.period_ms.unwrap_or(1000)
-    };
-    let last = store.last_seq(&serial)?;
-    let last_event = store.last_event(&serial)?;
+    let link = super::connect(&args.port, cfg)?;
+    let mut store = Store::open(&db)?;
     let style = Style::detect();
-    let mut m = Monitor {
-        link,
-        batcher: Batcher::new(&serial),
-        store,
-        serial,
-        last,
-        sum: MonitorSummary::default(),
+    let mut view = View {
         style,
         alarm: cfg.alarm,
-        period_ms,
-        key,
         // With --json, stdout carries only the summary.
         quiet: args.quiet || args.json,
-        stop,
-        started: Instant::now(),
+        serial: link.serial_number().to_string(),
         last_draw: Instant::now() - Duration::from_secs(1),
-        last_reading: Instant::now(),
-        rate: RateMeter {
-            times: Default::default(),
-        },
-        latest: None,
-        drift: DriftWatch {
-            every: (args.drift_every_s > 0.0).then(|| Duration::from_secs_f64(args.drift_every_s)),
-            last: None,
-            known: Default::default(),
-            primed: false,
-            data: None,
-        },
+        rate: RateMeter::default(),
+        broken: None,
     };
+    let mut drift = DriftWatch {
+        every: (args.drift_every_s > 0.0).then(|| Duration::from_secs_f64(args.drift_every_s)),
+        last: None,
+        known: Default::default(),
+        primed: false,
+        data: None,
+        alarms_before: 0,
+        failures: 0,
+        alarms: Vec::new(),
+    };
+    let started = Instant::now();
+    let wall = crate::store::now_unix_ms;
+    let now = Instant::now;
+    let mut session = {
+        let mut tell = |n: Note<'_>| view.note(n);
+        let mut ctx = Ctx {
+            stop,
+            wall_ms: &wall,
+            now: &now,
+            tell: &mut tell,
+        };
+        Session::open(
+            link,
+            &mut store,
+            SessionOptions {
+                key,
+                period_ms: args.period_ms,
+            },
+            &mut ctx,
+        )?
+    };
+    let serial = session.serial().to_string();
     if !args.quiet {
-        m.notice(&format!(
-            "{} on {}, database {}{}",
-            m.serial,
-            m.link.port_name(),
+        let last = store.last_seq(&serial)?;
+        view.notice(&format!(
+            "{serial} on {}, database {}{}",
+            session.link().port_name(),
             db.display(),
             match last {
                 Some(s) => format!(", stored up to {s}"),
                 None => ", new device in this database".into(),
             }
-        ))?;
+        ));
     }
-    let events_from = last_event.map_or(0, |n| n.saturating_add(1));
-    let mut events_done = false;
     let deadline = args
         .duration_s
         .map(|s| Instant::now() + Duration::from_secs_f64(s));
-    let result = loop {
-        let run = (|| -> anyhow::Result<()> {
-            if !events_done {
-                pull_events(&mut m.link, &mut m.store, &m.serial.clone(), events_from)?;
-                events_done = true;
-            }
-            m.session_until(args.count, deadline)
-        })();
-        match run {
-            Ok(()) => break Ok(()),
-            Err(e) if is_disconnect(&e) && !stop.load(Ordering::Relaxed) => match m.reconnect(&e) {
-                Ok(true) => continue,
-                Ok(false) => break Ok(()),
-                Err(e) => break Err(e),
-            },
-            Err(e) => break Err(e),
+    let stop_at = args.count.unwrap_or(u64::MAX);
+    let result = (|| -> anyhow::Result<()> {
+        {
+            let mut tell = |n: Note<'_>| view.note(n);
+            let mut ctx = Ctx {
+                stop,
+                wall_ms: &wall,
+                now: &now,
+                tell: &mut tell,
+            };
+            session.catch_up(&mut store, &mut ctx)?;
         }
-    };
-    // Commit whatever arrived, whatever happened.
-    let flushed = m.flush();
-    // The last batch's alarms.
-    let drift_checked = if flushed.is_ok() && result.is_ok() {
-        m.watch_drift(true)
-    } else {
-        Ok(())
-    };
-    if m.link.is_connected() {
-        let _ = m.link.request(Request::StopStream);
-    }
-    if m.style.tty && !args.quiet {
-        let mut o = std::io::stdout().lock();
-        let _ = writeln!(o, "\r\x1b[2K").and_then(|()| o.flush());
-    }
-    m.sum.link_errors = m.link.stats().damaged;
-    result?;
-    flushed?;
-    drift_checked?;
-    let s = m.sum;
-    if args.json {
-        out::json(&serde_json::to_value(s)?)?;
-    } else if !args.quiet {
-        eprintln!(
-            "fringe monitor: {} readings streamed, {} backfilled, {} stored, {} already stored, {} lost, {} gaps, {} reconnects, {} damaged frames in {}",
-            s.streamed,
-            s.backfilled,
-            s.stored,
-            s.duplicates,
-            s.lost,
-            s.gaps,
-            s.reconnects,
-            s.link_errors,
-            out::duration_ms(m.started.elapsed().as_millis() as u64)
-        );
-    }
-    Ok(())
-}
-
-impl Monitor<'_> {
-    /// Backfill from the last stored reading, then stream until stopped,
-    /// `count` readings streamed, or the deadline.
-    fn session_until(
-        &mut self,
-        count: Option<u64>,
-        deadline: Option<Instant>,
-    ) -> anyhow::Result<()> {
-        let stop_at = count.unwrap_or(u64::MAX);
-        // Store what the device logged that the database lacks, up to where
-        // the device is now; what it takes from here on comes by the stream
-        // (a backfill chasing the log's moving end on a noisy line might
-        // never finish).
-        let now_at = super::request_status(&mut self.link)?.next_seq;
-        self.backfill_missing(now_at)?;
-        self.flush()?;
-        self.watch_drift(!self.drift.primed)?;
-        self.start_stream()?;
-        let silence = Duration::from_millis(u64::from(self.period_ms) * 5 + 2000);
+        drift.watch(&store, &serial, 0, &mut view, true);
+        {
+            let mut tell = |n: Note<'_>| view.note(n);
+            let mut ctx = Ctx {
+                stop,
+                wall_ms: &wall,
+                now: &now,
+                tell: &mut tell,
+            };
+            session.subscribe(&mut ctx)?;
+        }
         loop {
-            if self.stop.load(Ordering::Relaxed)
-                || self.sum.streamed >= stop_at
+            if stop.load(Ordering::Relaxed)
+                || session.summary().streamed >= stop_at
                 || deadline.is_some_and(|d| Instant::now() >= d)
             {
                 return Ok(());
             }
-            let wait = self
-                .batcher
-                .deadline()
-                .map_or(Duration::from_millis(50), |d| {
-                    d.saturating_duration_since(Instant::now())
-                })
-                .min(Duration::from_millis(50));
-            match self.link.next_frame(wait)? {
-                Some(DeviceFrame::Reading(r)) => self.on_reading(r)?,
-                Some(DeviceFrame::Event(e)) => {
-                    self.store.insert_events(&self.serial, &[e])?;
-                }
-                _ => {}
+            let polled = {
+                let mut tell = |n: Note<'_>| view.note(n);
+                let mut ctx = Ctx {
+                    stop,
+                    wall_ms: &wall,
+                    now: &now,
+                    tell: &mut tell,
+                };
+                session.poll(&mut store, &mut ctx)?
+            };
+            if let Some(e) = view.broken.take() {
+                return Err(e.into());
             }
-            if self.batcher.due(Instant::now()) {
-                self.flush()?;
-                self.watch_drift(false)?;
+            if polled.stopped {
+                return Ok(());
             }
-            if self.last_reading.elapsed() > silence {
-                // The stream went quiet: ask the device; no answer means reconnect.
-                self.link.request(Request::Status)?;
-                self.start_stream()?;
+            if polled.committed.is_some() {
+                drift.watch(
+                    &store,
+                    &serial,
+                    session.summary().streamed,
+                    &mut view,
+                    false,
+                );
             }
-            self.draw();
+            view.draw(session.latest(), &session.summary());
         }
+    })();
+    // Commit whatever arrived, whatever happened.
+    let (line, flushed) = session.finish(&mut store);
+    // The last batch's alarms.
+    if flushed.is_ok() && result.is_ok() {
+        drift.watch(&store, &serial, line.streamed, &mut view, true);
     }
+    if view.style.tty && !args.quiet {
+        let mut o = std::io::stdout().lock();
+        let _ = writeln!(o, "\r\x1b[2K").and_then(|()| o.flush());
+    }
+    result?;
+    flushed?;
+    let s = MonitorSummary {
+        line,
+        drift_alarms_before: drift.alarms_before,
+        drift_check_failures: drift.failures,
+        drift_alarms: drift.alarms,
+    };
+    if args.json {
+        out::json(&serde_json::to_value(&s)?)?;
+    } else if !args.quiet {
+        let l = &s.line;
+        eprintln!(
+            "fringe monitor: {} readings streamed, {} backfilled, {} stored, {} already stored, {} lost, {} gaps, {} reconnects, {} damaged frames in {}",
+            l.streamed,
+            l.backfilled,
+            l.stored,
+            l.duplicates,
+            l.lost,
+            l.gaps,
+            l.reconnects,
+            l.link_errors,
+            out::duration_ms(started.elapsed().as_millis() as u64)
+        );
+    }
+    Ok(())
 }

@@ -1,13 +1,10 @@
-//! Line-session logic with no terminal: checking and correcting the device
-//! clock on a connection, and planning which stored readings of the device
-//! log a database still lacks. The commands (`monitor`, `pull`, the
-//! calibration and device commands) call these and say what happened;
-//! time comes in as an argument.
+//! The device clock on a connection: checked against the host's, set when
+//! it is unset or off by more than [`CLOCK_TOLERANCE_MS`] and the device
+//! key is at hand. Time comes in as an argument.
 
+use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
-use fringe_protocol::{Request, Response, Seq, Status};
-
-use crate::link::{Link, LinkError};
+use fringe_protocol::{Request, Status};
 
 /// A device clock further off than this is set again, ms.
 pub const CLOCK_TOLERANCE_MS: i64 = 1000;
@@ -72,16 +69,6 @@ pub struct ClockSync {
     pub needs_key: bool,
 }
 
-fn status(link: &mut Link) -> Result<Status, LinkError> {
-    match link.request(Request::Status)? {
-        Response::Status(s) => Ok(s),
-        other => Err(LinkError::Unexpected {
-            request: "Status",
-            got: format!("{other:?}"),
-        }),
-    }
-}
-
 /// Checks the device clock and, when it is unset or off by more than a
 /// second, sets it to `now()` with `key` (an authenticated `SetClock`).
 /// Without a key it only reports ([`ClockSync::needs_key`]). `now` gives
@@ -95,7 +82,7 @@ pub fn sync_clock(
     key: Option<&Key>,
     now: &dyn Fn() -> i64,
 ) -> Result<ClockSync, LinkError> {
-    let s = status(link)?;
+    let s = link.status()?;
     let before = check_clock(&s, now());
     if !before.needs_setting() {
         return Ok(ClockSync {
@@ -134,67 +121,17 @@ pub fn set_clock(link: &mut Link, key: &Key, unix_ms: i64) -> Result<(), LinkErr
     Ok(())
 }
 
-/// A range of the device log to read: from `from` (inclusive) to `until`
-/// (exclusive; `None`: to the end of the log).
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub struct LogRange {
-    /// First sequence wanted.
-    pub from: Seq,
-    /// First sequence not wanted.
-    pub until: Option<Seq>,
-}
-
-fn after(s: Seq) -> Seq {
-    Seq {
-        boot: s.boot,
-        counter: s.counter.saturating_add(1),
-    }
-}
-
-/// The parts of the device log a database lacks, given the runs of
-/// consecutive readings it holds (`(first, last)` within one boot, in
-/// order, from [`crate::store::Store::runs`]): before the first run, between
-/// runs and after the last, limited to `until` (exclusive; `None`: the end
-/// of the log). The device answers a `ReadLog` from the first reading it
-/// still holds at or after `from`, so a range that starts before the log
-/// does costs nothing extra; readings it no longer holds are reported lost
-/// by the backfill.
-pub fn plan_backfill(runs: &[(Seq, Seq)], until: Option<Seq>) -> Vec<LogRange> {
-    let mut out = Vec::new();
-    let mut at = Seq::default();
-    for &(first, last) in runs {
-        if first > at {
-            let end = until.map_or(first, |u| u.min(first));
-            if end > at {
-                out.push(LogRange {
-                    from: at,
-                    until: Some(end),
-                });
-            }
-        }
-        at = at.max(after(last));
-    }
-    if until.is_none_or(|u| u > at) {
-        out.push(LogRange { from: at, until });
-    }
-    out
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    fn seq(boot: u32, counter: u32) -> Seq {
-        Seq { boot, counter }
-    }
 
     fn status_at(time_ms: u64) -> Status {
         Status {
             time_ms,
             uptime_ms: 0,
             boot: 1,
-            next_seq: Seq::default(),
-            log_first: Seq::default(),
+            next_seq: fringe_protocol::Seq::default(),
+            log_first: fringe_protocol::Seq::default(),
             log_len: 0,
             next_event: 0,
             stream_period_ms: None,
@@ -233,82 +170,5 @@ mod tests {
             }
         );
         assert!(c.needs_setting());
-    }
-
-    #[test]
-    fn an_empty_database_reads_the_whole_log() {
-        assert_eq!(
-            plan_backfill(&[], None),
-            vec![LogRange {
-                from: seq(0, 0),
-                until: None
-            }]
-        );
-    }
-
-    #[test]
-    fn a_database_with_the_middle_reads_both_ends_and_the_holes() {
-        let runs = [
-            (seq(2, 10), seq(2, 19)),
-            (seq(2, 25), seq(2, 30)),
-            (seq(4, 0), seq(4, 7)),
-        ];
-        assert_eq!(
-            plan_backfill(&runs, None),
-            vec![
-                LogRange {
-                    from: seq(0, 0),
-                    until: Some(seq(2, 10))
-                },
-                LogRange {
-                    from: seq(2, 20),
-                    until: Some(seq(2, 25))
-                },
-                // Boot 3, whole, lies between.
-                LogRange {
-                    from: seq(2, 31),
-                    until: Some(seq(4, 0))
-                },
-                LogRange {
-                    from: seq(4, 8),
-                    until: None
-                },
-            ]
-        );
-        // Up to where the device is now: nothing after it.
-        assert_eq!(
-            plan_backfill(&runs, Some(seq(2, 27))),
-            vec![
-                LogRange {
-                    from: seq(0, 0),
-                    until: Some(seq(2, 10))
-                },
-                LogRange {
-                    from: seq(2, 20),
-                    until: Some(seq(2, 25))
-                },
-            ]
-        );
-        // Everything of boot 1 stored up to where the device is: only what
-        // an earlier boot may still hold (a boot counter before 1 is never
-        // used, so the device answers that request with nothing).
-        assert_eq!(
-            plan_backfill(&[(seq(1, 0), seq(1, 99))], Some(seq(1, 100))),
-            vec![LogRange {
-                from: seq(0, 0),
-                until: Some(seq(1, 0))
-            }]
-        );
-        assert_eq!(
-            plan_backfill(&[(seq(0, 0), seq(1, 99))], Some(seq(1, 100))),
-            vec![]
-        );
-        assert_eq!(
-            plan_backfill(&[(seq(0, 0), seq(1, 5))], None),
-            vec![LogRange {
-                from: seq(1, 6),
-                until: None
-            }]
-        );
     }
 }

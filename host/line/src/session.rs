@@ -1,0 +1,588 @@
+//! The streaming line session ([`Session`]) and the pull of a whole device
+//! log ([`pull`]).
+//!
+//! A session subscribes to the readings the device takes on its own
+//! schedule and commits them in batches (`fringe_store::Batcher`). A
+//! reading whose sequence does not follow the last one starts a backfill
+//! of the missing ones from the device log; when the port vanishes (or the
+//! device stops answering) the session commits what it has, reopens the
+//! port with backoff, checks it is the same device, sets its clock, reads
+//! back what it logged meanwhile and subscribes again. So a session stopped
+//! or killed loses nothing the device still holds: the next one reads it
+//! back.
+
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::{Duration, Instant};
+
+use fringe_link::{Link, LinkError};
+use fringe_protocol::auth::Key;
+use fringe_protocol::{Capabilities, DeviceFrame, Identity, Reading, Request, Seq};
+use fringe_store::{Batcher, DeviceInfo, InsertStats, RecordStore, StoreError};
+
+use crate::backfill::{backfill, backfill_missing, next_seq, pull_events};
+use crate::clock::{sync_clock, ClockSync};
+use crate::error::LineError;
+
+/// What a session needs from its caller on every call: time, the stop
+/// flag, and an ear for what happens.
+pub struct Ctx<'a> {
+    /// Set to stop (Ctrl-C): a reconnect stops waiting, a poll returns.
+    pub stop: &'a AtomicBool,
+    /// The host's wall clock, ms since the Unix epoch (for the device clock).
+    pub wall_ms: &'a dyn Fn() -> i64,
+    /// The host's monotonic clock (for batching and silence).
+    pub now: &'a dyn Fn() -> Instant,
+    /// Hears what happens.
+    pub tell: &'a mut dyn FnMut(Note<'_>),
+}
+
+impl std::fmt::Debug for Ctx<'_> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Ctx")
+            .field("stop", &self.stop.load(Ordering::Relaxed))
+            .finish()
+    }
+}
+
+/// What a session or a pull tells its caller.
+#[derive(Debug)]
+#[non_exhaustive]
+pub enum Note<'a> {
+    /// The device clock was checked, and set when it needed it and the
+    /// key was at hand.
+    Clock(ClockSync),
+    /// Setting the device clock was refused (a wrong key): it was left.
+    ClockRefused(&'a LinkError),
+    /// A stream period was asked of a device that measures on its own
+    /// interval: not used.
+    PeriodIgnored {
+        /// What was asked, ms.
+        asked_ms: u32,
+        /// The device's interval, ms.
+        interval_ms: u32,
+    },
+    /// What the device logged that the store lacked was read back (at the
+    /// start of a session and after each reconnect).
+    CaughtUp {
+        /// Readings received from the device log.
+        received: u64,
+        /// Readings the log no longer held.
+        lost: u64,
+    },
+    /// Readings after `after` were no longer in the device log.
+    Lost {
+        /// How many.
+        count: u64,
+        /// The last reading before them.
+        after: Seq,
+    },
+    /// A streamed reading was queued for the store (not told for one
+    /// already stored).
+    Reading(&'a Reading),
+    /// The link failed: committing and reconnecting.
+    Reconnecting(&'a LineError),
+    /// The device answers again.
+    Reconnected,
+}
+
+/// What a session did so far.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize)]
+pub struct Summary {
+    /// Streamed readings received.
+    pub streamed: u64,
+    /// Readings received from the device log (backfill).
+    pub backfilled: u64,
+    /// Readings newly stored.
+    pub stored: u64,
+    /// Readings received that were already stored.
+    pub duplicates: u64,
+    /// Readings the device log no longer held.
+    pub lost: u64,
+    /// Gaps detected in the stream.
+    pub gaps: u64,
+    /// Reconnects after the port vanished.
+    pub reconnects: u32,
+    /// Damaged frames seen by the host.
+    pub link_errors: u32,
+}
+
+/// What one [`Session::poll`] did.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Polled {
+    /// A batch was committed (what it stored).
+    pub committed: Option<InsertStats>,
+    /// The stop flag was set while reconnecting: the session is over.
+    pub stopped: bool,
+}
+
+/// How a session talks to its device.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct SessionOptions {
+    /// The device key: lets the session set the device clock.
+    pub key: Option<Key>,
+    /// The stream period asked of a device without settings of its own
+    /// (protocol 1.0), ms [default: 1000]; a newer device measures on its
+    /// own interval and this is not used.
+    pub period_ms: Option<u32>,
+}
+
+/// Records the device of a handshake in the store; returns its serial.
+///
+/// # Errors
+/// [`StoreError`].
+pub fn register(
+    store: &mut (impl RecordStore + ?Sized),
+    id: &Identity,
+) -> Result<String, StoreError> {
+    let serial = id.serial.to_string();
+    store.ensure_device(&DeviceInfo {
+        serial: serial.clone(),
+        firmware: Some(format!(
+            "{}.{}.{}",
+            id.firmware[0], id.firmware[1], id.firmware[2]
+        )),
+        protocol: Some(id.protocol.to_string()),
+        freqs_hz: Some(id.freqs_hz),
+    })?;
+    Ok(serial)
+}
+
+/// The device clock: checked, and set when it needs it and `key` is at
+/// hand; a refused write (a wrong key) is told and left (the caller's own
+/// write, if any, meets the same refusal with its own message).
+fn clock(link: &mut Link, key: Option<&Key>, ctx: &mut Ctx<'_>) -> Result<ClockSync, LinkError> {
+    match sync_clock(link, key, ctx.wall_ms) {
+        Ok(s) => {
+            (ctx.tell)(Note::Clock(s));
+            Ok(s)
+        }
+        Err(e @ LinkError::Refused { .. }) => {
+            (ctx.tell)(Note::ClockRefused(&e));
+            sync_clock(link, None, ctx.wall_ms)
+        }
+        Err(e) => Err(e),
+    }
+}
+
+fn identity(link: &Link) -> Result<Identity, LinkError> {
+    link.identity().cloned().ok_or(LinkError::Unexpected {
+        request: "Identify",
+        got: "no identity after the handshake".into(),
+    })
+}
+
+/// One line session: one device, streaming into a store the caller holds.
+#[derive(Debug)]
+pub struct Session {
+    link: Link,
+    serial: String,
+    batcher: Batcher,
+    /// The last sequence stored or queued.
+    last: Option<Seq>,
+    key: Option<Key>,
+    /// The device's measurement interval (or the stream period asked of a
+    /// protocol 1.0 device), ms.
+    period_ms: u32,
+    last_reading: Instant,
+    latest: Option<Reading>,
+    summary: Summary,
+    /// A reconnect left it to be caught up and subscribed again.
+    resume: bool,
+}
+
+impl Session {
+    /// Starts a session on a connected link: the device is registered in
+    /// the store and its clock checked (and set with the key); its interval
+    /// is read. Call [`Session::catch_up`] and [`Session::subscribe`]
+    /// next, then [`Session::poll`] until done, then [`Session::finish`].
+    ///
+    /// # Errors
+    /// [`LineError`].
+    pub fn open(
+        mut link: Link,
+        store: &mut (impl RecordStore + ?Sized),
+        opts: SessionOptions,
+        ctx: &mut Ctx<'_>,
+    ) -> Result<Self, LineError> {
+        let id = identity(&link)?;
+        let serial = register(store, &id)?;
+        clock(&mut link, opts.key.as_ref(), ctx)?;
+        let period_ms = if id.capabilities.contains(Capabilities::SETTINGS) {
+            let interval = link.settings()?.interval_ms;
+            if let Some(p) = opts.period_ms.filter(|p| *p != interval) {
+                (ctx.tell)(Note::PeriodIgnored {
+                    asked_ms: p,
+                    interval_ms: interval,
+                });
+            }
+            interval
+        } else {
+            opts.period_ms.unwrap_or(1000)
+        };
+        let last = store.last_seq(&serial)?;
+        Ok(Session {
+            link,
+            batcher: Batcher::new(&serial),
+            serial,
+            last,
+            key: opts.key,
+            period_ms,
+            last_reading: (ctx.now)(),
+            latest: None,
+            summary: Summary::default(),
+            resume: false,
+        })
+    }
+
+    /// The device serial.
+    pub fn serial(&self) -> &str {
+        &self.serial
+    }
+
+    /// The link (its port name and counters).
+    pub fn link(&self) -> &Link {
+        &self.link
+    }
+
+    /// The latest reading queued.
+    pub fn latest(&self) -> Option<&Reading> {
+        self.latest.as_ref()
+    }
+
+    /// What the session did so far.
+    pub fn summary(&self) -> Summary {
+        Summary {
+            link_errors: self.link.stats().damaged,
+            ..self.summary
+        }
+    }
+
+    fn flush(&mut self, store: &mut (impl RecordStore + ?Sized)) -> Result<InsertStats, LineError> {
+        let st = self.batcher.flush(store).map_err(LineError::Commit)?;
+        self.summary.stored += st.inserted;
+        self.summary.duplicates += st.duplicates + st.conflicts;
+        Ok(st)
+    }
+
+    /// Reads back what the device logged that the store lacks (before,
+    /// between and after what it holds, up to where the device is now:
+    /// what it takes from here on comes by the stream) and the events
+    /// after the last stored one, and commits it.
+    ///
+    /// # Errors
+    /// [`LineError`]; what was received is committed first.
+    pub fn catch_up(
+        &mut self,
+        store: &mut (impl RecordStore + ?Sized),
+        ctx: &mut Ctx<'_>,
+    ) -> Result<(), LineError> {
+        let events_from = store
+            .last_event(&self.serial)?
+            .map_or(0, |n| n.saturating_add(1));
+        pull_events(&mut self.link, store, &self.serial, events_from)?;
+        let now_at = self.link.status()?.next_seq;
+        let serial = self.serial.clone();
+        let b = backfill_missing(
+            &mut self.link,
+            store,
+            &mut self.batcher,
+            &serial,
+            Some(now_at),
+            &mut |_, _| {},
+        );
+        self.flush(store)?;
+        let b = b?;
+        self.summary.backfilled += b.received;
+        self.summary.lost += b.lost;
+        (ctx.tell)(Note::CaughtUp {
+            received: b.received,
+            lost: b.lost,
+        });
+        // Continue after what is stored now (the stream starts at `now_at`).
+        self.last = store.last_seq(&serial)?.max(self.last);
+        Ok(())
+    }
+
+    /// Subscribes to the device's readings.
+    ///
+    /// # Errors
+    /// [`LineError::Link`].
+    pub fn subscribe(&mut self, ctx: &mut Ctx<'_>) -> Result<(), LineError> {
+        self.link.request(Request::StartStream {
+            period_ms: self.period_ms,
+        })?;
+        self.last_reading = (ctx.now)();
+        Ok(())
+    }
+
+    /// One step: waits at most 50 ms (less when a batch falls due) for a
+    /// frame, queues a reading (filling a gap before it from the device
+    /// log), stores an event, commits a batch that is due, and asks the
+    /// device when the stream has gone quiet. A link failure that a
+    /// reconnect may cure is cured here (told as [`Note::Reconnecting`]).
+    ///
+    /// # Errors
+    /// [`LineError`] that a reconnect cannot cure.
+    pub fn poll(
+        &mut self,
+        store: &mut (impl RecordStore + ?Sized),
+        ctx: &mut Ctx<'_>,
+    ) -> Result<Polled, LineError> {
+        let mut result = if self.resume {
+            self.resume(store, ctx).map(|()| Polled::default())
+        } else {
+            self.step(store, ctx)
+        };
+        loop {
+            match result {
+                Err(e) if e.is_disconnect() && !ctx.stop.load(Ordering::Relaxed) => {
+                    match self.reconnect(store, &e, ctx) {
+                        Ok(true) => result = self.resume(store, ctx).map(|()| Polled::default()),
+                        Ok(false) => {
+                            return Ok(Polled {
+                                committed: None,
+                                stopped: true,
+                            })
+                        }
+                        Err(e) => return Err(e),
+                    }
+                }
+                other => return other,
+            }
+        }
+    }
+
+    fn resume(
+        &mut self,
+        store: &mut (impl RecordStore + ?Sized),
+        ctx: &mut Ctx<'_>,
+    ) -> Result<(), LineError> {
+        self.resume = true;
+        self.catch_up(store, ctx)?;
+        self.subscribe(ctx)?;
+        self.resume = false;
+        Ok(())
+    }
+
+    fn step(
+        &mut self,
+        store: &mut (impl RecordStore + ?Sized),
+        ctx: &mut Ctx<'_>,
+    ) -> Result<Polled, LineError> {
+        let now = (ctx.now)();
+        let wait = self
+            .batcher
+            .deadline()
+            .map_or(Duration::from_millis(50), |d| {
+                d.saturating_duration_since(now)
+            })
+            .min(Duration::from_millis(50));
+        match self.link.next_frame(wait)? {
+            Some(DeviceFrame::Reading(r)) => self.on_reading(r, store, ctx)?,
+            Some(DeviceFrame::Event(e)) => {
+                store.insert_events(&self.serial, &[e])?;
+            }
+            _ => {}
+        }
+        let mut polled = Polled::default();
+        if self.batcher.due((ctx.now)()) {
+            polled.committed = Some(self.flush(store)?);
+        }
+        let silence = Duration::from_millis(u64::from(self.period_ms) * 5 + 2000);
+        if (ctx.now)().saturating_duration_since(self.last_reading) > silence {
+            // The stream went quiet: ask the device; no answer means reconnect.
+            self.link.request(Request::Status)?;
+            self.subscribe(ctx)?;
+        }
+        Ok(polled)
+    }
+
+    fn on_reading(
+        &mut self,
+        r: Reading,
+        store: &mut (impl RecordStore + ?Sized),
+        ctx: &mut Ctx<'_>,
+    ) -> Result<(), LineError> {
+        let now = (ctx.now)();
+        self.last_reading = now;
+        self.summary.streamed += 1;
+        match self.last {
+            Some(last) if r.seq <= last => return Ok(()),
+            Some(last) if r.seq != next_seq(last) => {
+                self.summary.gaps += 1;
+                self.fill_gap(Some(r.seq), store, ctx)?;
+            }
+            _ => {}
+        }
+        self.batcher.push(r, fringe_store::Source::Stream, now);
+        self.last = Some(self.last.map_or(r.seq, |x| x.max(r.seq)));
+        self.latest = Some(r);
+        (ctx.tell)(Note::Reading(&r));
+        Ok(())
+    }
+
+    /// Reads the readings after the last one up to `until` from the log.
+    fn fill_gap(
+        &mut self,
+        until: Option<Seq>,
+        store: &mut (impl RecordStore + ?Sized),
+        ctx: &mut Ctx<'_>,
+    ) -> Result<(), LineError> {
+        let Some(last) = self.last else {
+            return Ok(());
+        };
+        let from = next_seq(last);
+        if until.is_some_and(|u| u <= from) {
+            return Ok(());
+        }
+        let mut reached: Option<Seq> = None;
+        let b = backfill(
+            &mut self.link,
+            store,
+            &mut self.batcher,
+            from,
+            until,
+            &mut |_, last| reached = last,
+        );
+        // Keep what a cut-short backfill got: the next one starts after it.
+        if let Some(l) = reached {
+            self.last = Some(self.last.map_or(l, |x| x.max(l)));
+        }
+        let b = b?;
+        self.summary.backfilled += b.received;
+        self.summary.lost += b.lost;
+        if b.lost > 0 {
+            (ctx.tell)(Note::Lost {
+                count: b.lost,
+                after: last,
+            });
+        }
+        Ok(())
+    }
+
+    /// Commits, reopens the port until the same device answers (or the
+    /// stop flag is set: `Ok(false)`), and sets its clock.
+    fn reconnect(
+        &mut self,
+        store: &mut (impl RecordStore + ?Sized),
+        why: &LineError,
+        ctx: &mut Ctx<'_>,
+    ) -> Result<bool, LineError> {
+        self.flush(store)?;
+        (ctx.tell)(Note::Reconnecting(why));
+        match self.link.reconnect(ctx.stop) {
+            Ok(id) => {
+                if id.serial.as_str() != self.serial {
+                    return Err(LineError::OtherDevice {
+                        port: self.link.port_name().into(),
+                        was: self.serial.clone(),
+                        now: id.serial.to_string(),
+                    });
+                }
+                self.summary.reconnects += 1;
+                (ctx.tell)(Note::Reconnected);
+                let key = self.key;
+                clock(&mut self.link, key.as_ref(), ctx)?;
+                self.resume = true;
+                Ok(true)
+            }
+            Err(LinkError::Stopped) => Ok(false),
+            Err(e) => Err(e.into()),
+        }
+    }
+
+    /// Ends the session: commits what arrived (whatever happened before)
+    /// and unsubscribes if the device is still there.
+    ///
+    /// # Errors
+    /// [`LineError::Commit`] when the last commit fails; the summary is
+    /// returned either way.
+    pub fn finish(
+        mut self,
+        store: &mut (impl RecordStore + ?Sized),
+    ) -> (Summary, Result<(), LineError>) {
+        let flushed = self.flush(store).map(|_| ());
+        if self.link.is_connected() {
+            let _ = self.link.request(Request::StopStream);
+        }
+        (self.summary(), flushed)
+    }
+}
+
+/// What a pull did.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct PullSummary {
+    /// Device serial.
+    pub serial: String,
+    /// The device log: first sequence held.
+    pub log_first: String,
+    /// Readings the device log holds.
+    pub log_len: u32,
+    /// The device clock before, and whether it was set.
+    pub clock: ClockSync,
+    /// Readings received.
+    pub received: u64,
+    /// Readings newly stored.
+    pub stored: u64,
+    /// Readings already stored.
+    pub duplicates: u64,
+    /// Readings the device log no longer held.
+    pub lost: u64,
+    /// Events newly stored.
+    pub events_stored: u64,
+    /// Damaged frames on the link.
+    pub link_errors: u32,
+    /// Wall time, ms.
+    pub elapsed_ms: u64,
+}
+
+/// Stores every reading the device log holds that the store lacks (before,
+/// between and after what it holds), and the events after the last stored
+/// one; idempotent. With the key the device clock is set first when it
+/// needs it. `progress` gets the readings received so far and how many
+/// were expected when the pull began (the device goes on measuring).
+///
+/// # Errors
+/// [`LineError`]; what was received before a failure is committed.
+pub fn pull(
+    link: &mut Link,
+    store: &mut (impl RecordStore + ?Sized),
+    key: Option<&Key>,
+    ctx: &mut Ctx<'_>,
+    progress: &mut dyn FnMut(u64, u64),
+) -> Result<PullSummary, LineError> {
+    let t0 = (ctx.now)();
+    let id = identity(link)?;
+    let serial = register(store, &id)?;
+    let clock = clock(link, key, ctx)?;
+    let status = link.status()?;
+    // Readings to expect: those the log holds that the store lacks.
+    let held = store.count_between(&serial, status.log_first, status.next_seq)?;
+    let expected = u64::from(status.log_len).saturating_sub(held);
+    let mut batcher = Batcher::new(&serial);
+    let b = backfill_missing(link, store, &mut batcher, &serial, None, &mut |n, _| {
+        progress(n, expected)
+    });
+    // Commit what came even if the link failed half way.
+    let flushed = batcher.flush(store).map_err(LineError::Commit);
+    let b = b?;
+    flushed?;
+    let events_from = store
+        .last_event(&serial)?
+        .map_or(0, |n| n.saturating_add(1));
+    let ev = pull_events(link, store, &serial, events_from)?;
+    let total = batcher.total();
+    Ok(PullSummary {
+        serial,
+        log_first: status.log_first.to_string(),
+        log_len: status.log_len,
+        clock,
+        received: b.received,
+        stored: total.inserted,
+        duplicates: total.duplicates + total.conflicts,
+        lost: b.lost,
+        events_stored: ev.inserted,
+        link_errors: link.stats().damaged,
+        elapsed_ms: (ctx.now)().saturating_duration_since(t0).as_millis() as u64,
+    })
+}

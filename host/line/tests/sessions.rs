@@ -1,0 +1,154 @@
+//! Line sessions against simulated devices in this process (the firmware
+//! core on its simulated front end, `fringe_sim::port`, on a virtual
+//! clock): several devices in one thread into one store, and what a device
+//! logged before a session began.
+
+use std::sync::atomic::AtomicBool;
+use std::time::Instant;
+
+use fringe_firmware::{DeviceConfig, Scenario};
+use fringe_line::{Ctx, Note, Session, SessionOptions};
+use fringe_link::{Link, LinkOptions};
+use fringe_sim::port::SimHandle;
+use fringe_sqlite::Store;
+use fringe_store::Source;
+
+fn device(serial: &str, seed: u64) -> SimHandle {
+    let mut cfg = DeviceConfig::new(serial, [7; 32]);
+    cfg.settings.interval_ms = 1000;
+    SimHandle::boot(seed, Scenario::default(), cfg).expect("boot")
+}
+
+fn link(sim: &SimHandle, name: &str) -> Link {
+    Link::connect(sim.opener(name), LinkOptions::default()).expect("handshake")
+}
+
+/// Every stored reading of `serial` follows the one before it.
+fn assert_gapless(store: &Store, serial: &str) -> usize {
+    let rs = store.readings(serial).expect("readings");
+    for w in rs.windows(2) {
+        assert_eq!(
+            w[1].reading.seq.as_u64(),
+            w[0].reading.seq.as_u64() + 1,
+            "{serial}: {} then {}",
+            w[0].reading.seq,
+            w[1].reading.seq
+        );
+    }
+    rs.len()
+}
+
+#[test]
+fn two_devices_stream_into_one_store_in_one_thread() {
+    let a = device("HGM-L2-0101", 1);
+    let b = device("HGM-L3-0102", 2);
+    let mut store = Store::open_in_memory().expect("store");
+    let stop = AtomicBool::new(false);
+    let wall = || 1_796_104_800_000i64;
+    let now = Instant::now;
+    let mut notes = Vec::new();
+    let mut tell = |n: Note<'_>| notes.push(format!("{n:?}"));
+    let mut ctx = Ctx {
+        stop: &stop,
+        wall_ms: &wall,
+        now: &now,
+        tell: &mut tell,
+    };
+    let mut sessions = Vec::new();
+    for (sim, name) in [(&a, "sim:a"), (&b, "sim:b")] {
+        let mut s = Session::open(
+            link(sim, name),
+            &mut store,
+            SessionOptions::default(),
+            &mut ctx,
+        )
+        .expect("open");
+        s.catch_up(&mut store, &mut ctx).expect("catch up");
+        s.subscribe(&mut ctx).expect("subscribe");
+        sessions.push(s);
+    }
+    // Round robin until each has streamed 20 readings.
+    let t0 = Instant::now();
+    while sessions.iter().any(|s| s.summary().streamed < 20) {
+        assert!(
+            t0.elapsed().as_secs() < 120,
+            "too slow: {:?}",
+            sessions.iter().map(Session::summary).collect::<Vec<_>>()
+        );
+        for s in &mut sessions {
+            s.poll(&mut store, &mut ctx).expect("poll");
+        }
+    }
+    for s in sessions {
+        let (sum, done) = s.finish(&mut store);
+        done.expect("last commit");
+        assert!(sum.stored >= 20, "{sum:?}");
+    }
+    for serial in ["HGM-L2-0101", "HGM-L3-0102"] {
+        let n = assert_gapless(&store, serial);
+        assert!(n >= 20, "{serial}: {n}");
+    }
+    assert_eq!(store.devices().expect("devices").len(), 2);
+    assert!(store.verify_chain().expect("chain").ok());
+    // The clock of a simulated device starts unset; with no key it is left.
+    assert!(
+        notes.iter().any(|n| n.contains("needs_key: true")),
+        "{notes:?}"
+    );
+}
+
+#[test]
+fn a_session_stores_what_the_device_logged_before_it_began_and_nothing_twice() {
+    let sim = device("HGM-L2-0103", 3);
+    // The device measures alone for a while: 30 readings in its log.
+    sim.lock().run_for(30_500);
+    let mut store = Store::open_in_memory().expect("store");
+    // Some of them are stored already (an earlier session).
+    let early: Vec<_> = {
+        let mut l = link(&sim, "sim");
+        match l.request(fringe_protocol::Request::ReadLog {
+            from: fringe_protocol::Seq::default(),
+            max: 4,
+        }) {
+            Ok(fringe_protocol::Response::Log { readings, .. }) => readings.to_vec(),
+            other => panic!("{other:?}"),
+        }
+    };
+    store
+        .insert_readings("HGM-L2-0103", &early, Source::Log)
+        .expect("early");
+    let stop = AtomicBool::new(false);
+    let wall = || 1_796_104_800_000i64;
+    let now = Instant::now;
+    let mut caught = None;
+    let mut tell = |n: Note<'_>| {
+        if let Note::CaughtUp { received, .. } = n {
+            caught = Some(received);
+        }
+    };
+    let mut ctx = Ctx {
+        stop: &stop,
+        wall_ms: &wall,
+        now: &now,
+        tell: &mut tell,
+    };
+    let mut s = Session::open(
+        link(&sim, "sim"),
+        &mut store,
+        SessionOptions::default(),
+        &mut ctx,
+    )
+    .expect("open");
+    s.catch_up(&mut store, &mut ctx).expect("catch up");
+    s.subscribe(&mut ctx).expect("subscribe");
+    while s.summary().streamed < 5 {
+        s.poll(&mut store, &mut ctx).expect("poll");
+    }
+    let (sum, done) = s.finish(&mut store);
+    done.expect("commit");
+    let received = caught.expect("caught up");
+    assert!(received >= 25, "read back {received}");
+    let n = assert_gapless(&store, "HGM-L2-0103");
+    assert!(n >= 35, "{n} stored, {sum:?}");
+    assert_eq!(sum.duplicates, 0, "{sum:?}");
+}
