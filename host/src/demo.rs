@@ -28,11 +28,11 @@ use rand_distr::StandardNormal;
 use crate::analysis;
 use crate::audit;
 use crate::cmd::cal::{FitArgs, FitModelArg};
-use crate::device_cal::{self, CellArgs, Guide};
 use crate::link::{Link, LinkOptions};
 use crate::product_file::ProductFile;
 use crate::store::{DeviceInfo, NewLabSample, Source, Store};
 use crate::timefmt::fmt_time;
+use fringe_device::guide::{Cancelled, Guide};
 use fringe_quality::cal;
 use fringe_quality::views;
 use fringe_sim::port::SimHandle;
@@ -118,7 +118,7 @@ struct DemoGuide {
 }
 
 impl Guide for DemoGuide {
-    fn step(&mut self, instruction: &str) -> anyhow::Result<()> {
+    fn step(&mut self, instruction: &str) -> Result<(), Cancelled> {
         println!("    > {instruction}");
         if !self.plan.is_empty() {
             let s = self.plan.remove(0);
@@ -126,12 +126,20 @@ impl Guide for DemoGuide {
         }
         Ok(())
     }
-    fn ask(&mut self, _question: &str) -> anyhow::Result<Option<String>> {
+    fn ask(&mut self, _question: &str) -> Result<Option<String>, Cancelled> {
         Ok(None)
     }
-    fn confirm(&mut self, question: &str) -> anyhow::Result<bool> {
+    fn confirm(&mut self, question: &str) -> Result<bool, Cancelled> {
         println!("    > {question} yes (the demo confirms by itself; a person types y)");
         Ok(true)
+    }
+    fn show(&mut self, text: &str) {
+        for line in text.lines() {
+            println!("    {line}");
+        }
+    }
+    fn caution(&mut self, text: &str) {
+        eprintln!("{text}");
     }
 }
 
@@ -249,35 +257,20 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
             air_bench,
         ],
     };
-    let cell_args = CellArgs {
-        port: crate::cli::PortArgs {
-            port: None,
-            baud: None,
-            timeout_ms: 2000,
-        },
-        key: device_cal::KeyArgs {
-            key_file: outs.key.clone(),
-        },
-        db: outs.db.clone(),
+    let cell_opts = fringe_device::cell::CellOptions {
         liquid: "methanol".into(),
         verify_liquid: "ethanol".into(),
         temperature_c: None,
         readings: 6,
         operator: "R. Okafor (QC)".into(),
         yes: true,
+        made_s: (BENCH_MS / 1000) as u64,
     };
-    let mut say = |s: &str| println!("    {s}");
     // Records carry the demo's own time (the bench day, the shift), not
     // the wall clock of the machine running it.
     store.set_record_clock(Some(BENCH_MS + 20 * 60_000));
-    let cell = device_cal::cell_calibration(
-        &mut link,
-        &DEMO_KEY,
-        &mut store,
-        &mut guide,
-        &cell_args,
-        (BENCH_MS / 1000) as u64,
-        &mut say,
+    let cell = fringe_device::cell::cell_calibration(
+        &mut link, &DEMO_KEY, &mut store, &mut guide, &cell_opts,
     )?;
     println!(
         "    written to the device (authenticated), read back: cell calibration {} (was {})",
@@ -305,14 +298,14 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         // The lab's oven method repeats to about 0.1 % moisture (invented for the demo).
         let lab = f64::from(s.moisture_pct) + 0.1 * rng.sample::<f64, _>(StandardNormal);
         let id = format!("HGM-{:03}", i + 1);
-        rows.push(device_cal::capture_sample(
+        rows.push(fringe_device::capture::capture_sample(
             &mut link,
             &id,
             Some((lab * 100.0).round() / 100.0),
             3,
         )?);
     }
-    device_cal::save_rows(&outs.samples, &rows)?;
+    fringe_device::capture::save_rows(&outs.samples, &rows)?;
     println!("    wrote {}", outs.samples.display());
 
     // 3. Fit both models.
@@ -346,18 +339,20 @@ pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
     );
     let (file, wire) = ProductFile::load(&outs.product)?;
     store.set_record_clock(Some(BENCH_MS + 4 * 3_600_000));
-    let pushed = device_cal::push(
+    let pushed = fringe_device::product::push(
         &mut link,
         &DEMO_KEY,
         &mut store,
         &mut guide,
-        &file,
-        &wire,
-        None,
-        true,
-        "R. Okafor (QC)",
-        "new wheat crop 2026: calibration from reference samples",
-        false,
+        &fringe_device::product::Push {
+            file: &file,
+            wire: &wire,
+            slot: None,
+            activate: true,
+            operator: "R. Okafor (QC)",
+            reason: "new wheat crop 2026: calibration from reference samples",
+            yes: false,
+        },
     )?;
     println!(
         "    slot {}: {} -> {} (read back and verified; audit record at chain position {})",

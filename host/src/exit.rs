@@ -51,6 +51,19 @@ pub enum ExitCode {
     Internal = 101,
 }
 
+/// A bad combination of arguments clap cannot check (exit status 2),
+/// naming the flags.
+#[derive(Debug)]
+pub struct UsageError(pub String);
+
+impl std::fmt::Display for UsageError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(&self.0)
+    }
+}
+
+impl std::error::Error for UsageError {}
+
 impl ExitCode {
     /// The numeric status.
     pub const fn code(self) -> u8 {
@@ -94,6 +107,9 @@ impl ExitCode {
                 .is_some()
             {
                 return ExitCode::Problems;
+            }
+            if cause.downcast_ref::<UsageError>().is_some() {
+                return ExitCode::Usage;
             }
             if cause
                 .downcast_ref::<fringe_quality::cal::GateRefused>()

@@ -34,12 +34,12 @@ pub mod cli;
 pub mod cmd;
 pub mod config;
 pub mod demo;
-pub mod device_cal;
 pub mod exit;
 pub use fringe_link as link;
 pub mod out;
 pub mod quality;
 pub mod store;
+pub mod terminal;
 
 use cli::{Cli, Command};
 use config::LineConfig;
@@ -76,14 +76,14 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Pull(a) => cmd::pull::pull(a, &cfg),
         Command::Device(a) => cmd::device::device(a, &cfg),
         Command::Cal(a) => cmd::quality::cal(a, &cfg),
-        Command::Lab(a) => cmd::quality::lab(a),
-        Command::Drift(a) => quality::drift(a),
+        Command::Lab(a) => cmd::quality::lab(a, &cfg),
+        Command::Drift(a) => quality::drift(a, &cfg),
         Command::Report(a) => {
-            let page = quality::report(a)?;
+            let page = quality::report(a, &cfg)?;
             outln!("wrote {} (open it in a browser)", page.display());
             Ok(())
         }
-        Command::Audit(a) => quality::audit_cmd(a),
+        Command::Audit(a) => quality::audit_cmd(a, &cfg),
         Command::Demo(a) => demo::run(a).map(|_| ()),
     }
 }

@@ -10,8 +10,35 @@ use fringe_quality::views::{self, GrabSample};
 use fringe_quality::{analysis, audit};
 use serde_json::json;
 
+use crate::config::{ConfigError, LineConfig};
 use crate::store::Store;
 use crate::timefmt::{fmt_person, fmt_time, parse_time};
+
+/// The database of a command that reads one: `--db`, else the line file's.
+///
+/// # Errors
+/// [`ConfigError::Missing`].
+fn db_of(flag: Option<&PathBuf>, cfg: &LineConfig) -> Result<PathBuf, ConfigError> {
+    flag.cloned()
+        .or_else(|| cfg.db.clone())
+        .ok_or(ConfigError::Missing {
+            what: "database",
+            flag: "--db",
+            key: "db",
+        })
+}
+
+/// Opens a database to read: read-only, after SQLite's quick check (a
+/// damaged page stops the command with exit status 23 before anything is
+/// read from it; costs in BENCHMARKS.md).
+///
+/// # Errors
+/// [`crate::store::StoreError`].
+pub fn open_to_read(db: &std::path::Path) -> anyhow::Result<Store> {
+    let store = Store::open_read_only(db)?;
+    store.check_integrity(false)?;
+    Ok(store)
+}
 
 /// `fringe lab`.
 #[derive(Debug, Clone, Args)]
@@ -34,9 +61,9 @@ pub enum LabCommand {
 /// `fringe lab add`.
 #[derive(Debug, Clone, Args)]
 pub struct LabAddArgs {
-    /// Database file.
+    /// Database file [default: `db` in the line file].
     #[arg(long, value_name = "FILE")]
-    pub db: PathBuf,
+    pub db: Option<PathBuf>,
     /// When the sample was taken: RFC 3339 with an offset
     /// (2026-12-01T09:40+01:00, 2026-12-01T08:40Z); without an offset
     /// (2026-12-01 09:40) it is local time.
@@ -74,9 +101,9 @@ pub struct LabAddArgs {
     after_help = "Example:\n  fringe drift --db line2.db\n  fringe drift --db line2.db --plot drift.svg --json"
 )]
 pub struct DriftArgs {
-    /// Database file.
+    /// Database file [default: `db` in the line file].
     #[arg(long, value_name = "FILE")]
-    pub db: PathBuf,
+    pub db: Option<PathBuf>,
     /// Device serial [default: the first device].
     #[arg(long)]
     pub serial: Option<String>,
@@ -94,9 +121,9 @@ pub struct DriftArgs {
     after_help = "Example:\n  fringe report --db line2.db --out report/   # then open report/index.html"
 )]
 pub struct ReportArgs {
-    /// Database file.
+    /// Database file [default: `db` in the line file].
     #[arg(long, value_name = "FILE")]
-    pub db: PathBuf,
+    pub db: Option<PathBuf>,
     /// Output folder (index.html and the plots as SVG files).
     #[arg(long, value_name = "DIR")]
     pub out: PathBuf,
@@ -111,9 +138,9 @@ pub struct ReportArgs {
 /// `fringe cal history`.
 #[derive(Debug, Clone, Args)]
 pub struct HistoryArgs {
-    /// Database file.
+    /// Database file [default: `db` in the line file].
     #[arg(long, value_name = "FILE")]
-    pub db: PathBuf,
+    pub db: Option<PathBuf>,
     /// Device serial [default: every device].
     #[arg(long)]
     pub serial: Option<String>,
@@ -148,9 +175,9 @@ pub enum AuditCommand {
 /// `fringe audit export`.
 #[derive(Debug, Clone, Args)]
 pub struct AuditExportArgs {
-    /// Database file.
+    /// Database file [default: `db` in the line file].
     #[arg(long, value_name = "FILE")]
-    pub db: PathBuf,
+    pub db: Option<PathBuf>,
     /// Start of the range [default: the beginning]: RFC 3339 with an
     /// offset (2026-12-01T06:00+01:00, ...Z); without an offset it is local
     /// time. Readings taken before the device clock was set count at their
@@ -172,9 +199,10 @@ pub struct AuditExportArgs {
 #[derive(Debug, Clone, Args)]
 pub struct AuditVerifyArgs {
     /// Bundle folder.
-    #[arg(value_name = "DIR", required_unless_present = "db")]
+    #[arg(value_name = "DIR")]
     pub dir: Option<PathBuf>,
-    /// Database to check (its own chain, and the bundle against it).
+    /// Database to check (its integrity, its own chain, and the bundle
+    /// against it) [default without a bundle: `db` in the line file].
     #[arg(long, value_name = "FILE")]
     pub db: Option<PathBuf>,
     /// Print JSON.
@@ -198,7 +226,7 @@ impl std::error::Error for ProblemsFound {}
 ///
 /// # Errors
 /// A bad value, store failure or unknown device.
-pub fn lab_add(a: &LabAddArgs) -> anyhow::Result<()> {
+pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let grab = GrabSample {
         time_ms: a.time,
         moisture_pct: a.moisture,
@@ -209,7 +237,10 @@ pub fn lab_add(a: &LabAddArgs) -> anyhow::Result<()> {
         match_within_s: a.match_within_s,
     };
     grab.validate()?;
-    let mut store = Store::open(&a.db)?;
+    let db = db_of(a.db.as_ref(), cfg)?;
+    // A lab sample belongs to a device a database already holds: never a new file.
+    let mut store = Store::open_existing(&db)?;
+    store.check_integrity(false)?;
     let g = grab.record(&mut store, a.serial.as_deref())?;
     let inline = g.matched.and_then(|(r, _, _)| r.moisture_pct);
     if a.json {
@@ -261,8 +292,8 @@ pub fn lab_add(a: &LabAddArgs) -> anyhow::Result<()> {
 ///
 /// # Errors
 /// Store failure or a failed plot write.
-pub fn drift(a: &DriftArgs) -> anyhow::Result<()> {
-    let store = Store::open_read_only(&a.db)?;
+pub fn drift(a: &DriftArgs, cfg: &LineConfig) -> anyhow::Result<()> {
+    let store = open_to_read(&db_of(a.db.as_ref(), cfg)?)?;
     let data = analysis::load(&store, a.serial.as_deref())?;
     let traces = data.traces();
     if let Some(p) = &a.plot {
@@ -285,8 +316,8 @@ pub fn drift(a: &DriftArgs) -> anyhow::Result<()> {
 ///
 /// # Errors
 /// Store failure or a failed write.
-pub fn report(a: &ReportArgs) -> anyhow::Result<PathBuf> {
-    let store = Store::open_read_only(&a.db)?;
+pub fn report(a: &ReportArgs, cfg: &LineConfig) -> anyhow::Result<PathBuf> {
+    let store = open_to_read(&db_of(a.db.as_ref(), cfg)?)?;
     Ok(views::write_report(
         &store,
         a.serial.as_deref(),
@@ -299,14 +330,15 @@ pub fn report(a: &ReportArgs) -> anyhow::Result<PathBuf> {
 ///
 /// # Errors
 /// Store failure.
-pub fn history(a: &HistoryArgs) -> anyhow::Result<()> {
-    let store = Store::open_read_only(&a.db)?;
+pub fn history(a: &HistoryArgs, cfg: &LineConfig) -> anyhow::Result<()> {
+    let db = db_of(a.db.as_ref(), cfg)?;
+    let store = open_to_read(&db)?;
     let all = views::history(&store, a.serial.as_deref())?;
     if a.json {
         crate::outln!("{}", views::history_json(&all));
         return Ok(());
     }
-    views::write_history(&all, &a.db, &mut std::io::stdout().lock())?;
+    views::write_history(&all, &db, &mut std::io::stdout().lock())?;
     Ok(())
 }
 
@@ -314,12 +346,31 @@ pub fn history(a: &HistoryArgs) -> anyhow::Result<()> {
 ///
 /// # Errors
 /// A store or file failure; [`ProblemsFound`] when verification finds a problem.
-pub fn audit_cmd(a: &AuditArgs) -> anyhow::Result<()> {
+pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     match &a.command {
         AuditCommand::Export(e) => {
-            let store = Store::open_read_only(&e.db)?;
+            if let (Some(from), Some(to)) = (e.from, e.to) {
+                if from > to {
+                    return Err(crate::exit::UsageError(format!(
+                        "--from {} is later than --to {}: swap them",
+                        fmt_person(from),
+                        fmt_person(to)
+                    ))
+                    .into());
+                }
+            }
+            let db = db_of(e.db.as_ref(), cfg)?;
+            let store = Store::open_read_only(&db)?;
             let to = e.to.unwrap_or_else(crate::store::now_unix_ms);
-            let s = audit::export(&store, &e.db.display().to_string(), e.from, to, &e.out)?;
+            if let Some(from) = e.from.filter(|f| *f > to) {
+                return Err(crate::exit::UsageError(format!(
+                    "--from {} is later than --to (default: now, {}): swap them or give --to",
+                    fmt_person(from),
+                    fmt_person(to)
+                ))
+                .into());
+            }
+            let s = audit::export(&store, &db.display().to_string(), e.from, to, &e.out)?;
             if e.json {
                 crate::outln!("{}", serde_json::to_string(&s.manifest)?);
             } else {
@@ -328,7 +379,12 @@ pub fn audit_cmd(a: &AuditArgs) -> anyhow::Result<()> {
             Ok(())
         }
         AuditCommand::Verify(v) => {
-            let store = v.db.as_ref().map(Store::open_read_only).transpose()?;
+            let db = match (&v.dir, &v.db) {
+                (_, Some(db)) => Some(db.clone()),
+                (Some(_), None) => None,
+                (None, None) => Some(db_of(None, cfg)?),
+            };
+            let store = db.as_ref().map(Store::open_read_only).transpose()?;
             let r = audit::verify(
                 v.dir.as_deref(),
                 store.as_ref().map(|s| s as &dyn fringe_store::RecordRead),
@@ -342,7 +398,7 @@ pub fn audit_cmd(a: &AuditArgs) -> anyhow::Result<()> {
                 views::write_verify(
                     &r,
                     v.dir.as_deref(),
-                    v.db.as_deref(),
+                    db.as_deref(),
                     &mut std::io::stdout().lock(),
                 )?;
             }

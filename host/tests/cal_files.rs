@@ -214,7 +214,7 @@ fn predict_refuses_samples_at_other_frequencies() {
     let (code, err, out) = predict(&shifted);
     assert_ne!(code, Some(0), "{err}");
     assert!(
-        err.contains("sample S0") && err.contains("10000000"),
+        err.contains("sample S0") && err.contains("1 MHz and 10 MHz"),
         "{err}"
     );
     assert!(out.is_none(), "nothing may be written");

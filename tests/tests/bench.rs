@@ -348,7 +348,7 @@ fn capture_push_list_select_and_history() {
     assert_eq!(o.code, 0, "{}", o.stderr);
     let records = history(&db).len();
     let o = push(&other_cal, "true");
-    assert_fails(&o, 1, &["500000 and 10000000 Hz", "nothing written"]);
+    assert_fails(&o, 1, &["500 kHz and 10 MHz", "nothing written"]);
     assert_eq!(history(&db).len(), records);
 
     let list = || -> serde_json::Value {

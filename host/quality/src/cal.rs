@@ -94,7 +94,7 @@ pub enum PredictError {
         reason: String,
     },
     /// The table was measured at other frequencies than the calibration's.
-    #[error("{input}: sample {sample} was measured at {got_hz:?} Hz, but {cal} holds only at {want_hz:?} Hz (its reference samples' frequencies); nothing written")]
+    #[error("{input}: sample {sample} was measured at {}, but {cal} holds only at {} (its reference samples' frequencies); nothing written", crate::product_file::freq_pair_label(*.got_hz), crate::product_file::freq_pair_label(*.want_hz))]
     OtherFrequencies {
         /// The table.
         input: PathBuf,

@@ -106,6 +106,28 @@ pub fn same_freqs(a: [f64; 2], b: [f64; 2]) -> bool {
         .all(|(x, y)| (x / y - 1.0).abs() <= 0.005)
 }
 
+/// A frequency for people: `500 kHz`, `1 MHz`, `2.45 GHz`, `150 Hz`.
+pub fn hz_label(f: f64) -> String {
+    let (v, unit) = if f >= 1e9 {
+        (f / 1e9, "GHz")
+    } else if f >= 1e6 {
+        (f / 1e6, "MHz")
+    } else if f >= 1e3 {
+        (f / 1e3, "kHz")
+    } else {
+        (f, "Hz")
+    };
+    // At most four significant digits, no trailing zeros.
+    let s = format!("{v:.3}");
+    let s = s.trim_end_matches('0').trim_end_matches('.');
+    format!("{s} {unit}")
+}
+
+/// A pair of frequencies for people: `1 MHz and 20 MHz`.
+pub fn freq_pair_label(f: [f64; 2]) -> String {
+    format!("{} and {}", hz_label(f[0]), hz_label(f[1]))
+}
+
 /// What `cal predict` needs for a reading's prediction interval and
 /// leverage (`fringe_calibration::fit::product::IntervalModel`); not part of
 /// the device's calibration nor of its id.
@@ -432,6 +454,17 @@ pub fn parse_cal_id(s: &str) -> Option<CalId> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn frequencies_read_as_people_write_them() {
+        assert_eq!(hz_label(1e6), "1 MHz");
+        assert_eq!(hz_label(20e6), "20 MHz");
+        assert_eq!(hz_label(100e3), "100 kHz");
+        assert_eq!(hz_label(2.45e9), "2.45 GHz");
+        assert_eq!(hz_label(433.92e6), "433.92 MHz");
+        assert_eq!(hz_label(50.0), "50 Hz");
+        assert_eq!(freq_pair_label([5e5, 1e7]), "500 kHz and 10 MHz");
+    }
 
     fn wire() -> ProductCal {
         ProductCal {

@@ -390,74 +390,6 @@ pub fn config_show(a: &crate::cli::ConfigShowArgs, cfg: &LineConfig) -> anyhow::
     Ok(())
 }
 
-/// The caution shown before settings are written.
-pub const SETTINGS_CAUTION: &str = "CAUTION: new settings change the 4-20 mA output at once (a new span moves the current \
-for the same moisture; a new failure level changes what a fault looks like to the control system). If the sensor \
-is on a running line, tell the control room first and put dependent loops (dryer control, diversion) in manual; \
-check the receiving side's scaling matches the new span. Local codes and site rules come first.";
-
-/// Applies the flags of `config set` to `old`; checks the result as the
-/// device will, naming the flag of a refused value.
-///
-/// # Errors
-/// The flag and value refused, and why.
-pub fn apply_settings(
-    old: &fringe_protocol::Settings,
-    a: &crate::cli::ConfigSetArgs,
-) -> anyhow::Result<fringe_protocol::Settings> {
-    use fringe_firmware::settings::{validate, SettingsError};
-    let mut s = old.clone();
-    if let Some(t) = &a.tag {
-        if t.len() > fringe_protocol::TAG_LEN {
-            anyhow::bail!(
-                "--tag {t:?}: {} bytes, at most {} fit",
-                t.len(),
-                fringe_protocol::TAG_LEN
-            );
-        }
-        s.tag = fringe_protocol::short_string(t);
-    }
-    if let Some(v) = a.interval_ms {
-        s.interval_ms = v;
-    }
-    if let Some(v) = a.span_low_pct {
-        s.output.span_low_pct = v;
-    }
-    if let Some(v) = a.span_high_pct {
-        s.output.span_high_pct = v;
-    }
-    if let Some(f) = a.fail {
-        s.output.fail_high = f == crate::cli::FailLevel::High;
-    }
-    if let Some(v) = a.stale_timeout_ms {
-        s.stale_timeout_ms = v;
-    }
-    match validate(&s) {
-        Ok(()) => Ok(s),
-        Err(SettingsError::Tag) => {
-            anyhow::bail!("--tag {:?}: no control characters allowed", s.tag.as_str())
-        }
-        Err(SettingsError::Interval) => anyhow::bail!(
-            "--interval-ms {}: must be {}..={} ms",
-            s.interval_ms,
-            fringe_firmware::settings::MIN_INTERVAL_MS,
-            fringe_firmware::settings::MAX_INTERVAL_MS
-        ),
-        Err(SettingsError::StaleTimeout) => anyhow::bail!(
-            "--stale-timeout-ms {}: must be at least twice the interval ({} ms) and at most {} ms",
-            s.stale_timeout_ms,
-            s.interval_ms.saturating_mul(2),
-            fringe_firmware::settings::MAX_STALE_TIMEOUT_MS
-        ),
-        Err(SettingsError::Span(_)) => anyhow::bail!(
-            "--span-low-pct {} / --span-high-pct {}: need 0 <= low < high <= 100 %",
-            s.output.span_low_pct,
-            s.output.span_high_pct
-        ),
-        Err(e) => anyhow::bail!("{e}"),
-    }
-}
-
 /// What `config set` did.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct ConfigSetOutcome {
@@ -471,86 +403,33 @@ pub struct ConfigSetOutcome {
     pub position: u64,
 }
 
-/// Writes `new` (authenticated), reads it back and records the change in
-/// `store` with who and why (a `settings` record in the calibrations
-/// table). Prints nothing.
-///
-/// # Errors
-/// Link errors (a wrong key: refused), a read-back that differs, store errors.
-pub fn write_settings(
-    link: &mut crate::link::Link,
-    key: &fringe_protocol::auth::Key,
-    store: &mut crate::store::Store,
-    old: &fringe_protocol::Settings,
-    new: &fringe_protocol::Settings,
-    operator: &str,
-    reason: &str,
-) -> anyhow::Result<ConfigSetOutcome> {
-    use crate::store::{CalKind, NewCalibration};
-    link.request_signed(fringe_protocol::Request::WriteSettings(new.clone()), key)
-        .context("writing the settings")?;
-    let back = read_settings(link)?;
-    if &back != new {
-        anyhow::bail!(
-            "the device holds other settings than were written (read back {}, wrote {}): nothing recorded",
-            back.content_id(),
-            new.content_id()
-        );
-    }
-    let serial = link.serial_number().to_string();
-    let body = crate::analysis::CalRecordBody {
-        calibration: serde_json::to_value(&back)?,
-        operator: operator.into(),
-        reason: reason.into(),
-        old_id: old.content_id().to_string(),
-        new_id: back.content_id().to_string(),
-        action: "settings".into(),
-        statistics: None,
-        verification: None,
-        parent_id: None,
-        derivation: None,
-    };
-    let mut body = serde_json::to_value(body)?;
-    body["previous"] = serde_json::to_value(old)?;
-    let rec = store.insert_calibration(
-        &serial,
-        &NewCalibration {
-            kind: CalKind::Settings,
-            cal_id: back.content_id(),
-            slot: None,
-            name: Some(back.tag.to_string()),
-            body,
-            note: None,
-            supersedes: None,
-        },
-    )?;
-    Ok(ConfigSetOutcome {
-        serial,
-        old: settings_json(old),
-        new: settings_json(&back),
-        position: rec.position,
-    })
-}
-
 /// `fringe device config set`.
 ///
 /// # Errors
-/// Port, link, key, database or output errors; a declined confirmation.
+/// Port, link, key, database or output errors; a refused value; a
+/// declined confirmation.
 pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Result<()> {
-    use crate::device_cal::Guide as _;
+    use fringe_device::guide::Guide as _;
     let key = super::optional_key(a.key_file.as_deref(), cfg)?.ok_or_else(|| {
         anyhow::anyhow!("changing the settings needs the device key: pass --key-file or set key_file in the line file")
     })?;
-    let (db, mut store) = super::open_db(a.db.as_deref(), cfg)?;
+    let db = super::db_path(a.db.as_deref(), cfg)?;
+    let change = fringe_device::settings::SettingsChange {
+        tag: a.tag.clone(),
+        interval_ms: a.interval_ms,
+        span_low_pct: a.span_low_pct,
+        span_high_pct: a.span_high_pct,
+        fail_high: a.fail.map(|f| f == crate::cli::FailLevel::High),
+        stale_timeout_ms: a.stale_timeout_ms,
+    };
     let mut link = super::connect(&a.port, cfg)?;
     let id = link
         .identity()
         .cloned()
         .context("no identity after the handshake")?;
-    fringe_line::register(&mut store, &id)?;
     super::sync_clock(&mut link, Some(&key), "device config")?;
     let old = read_settings(&mut link)?;
-    let new = apply_settings(&old, a)?;
+    let new = change.apply(&old)?;
     if new == old {
         out::line("nothing to change: the device holds these settings already")?;
         return Ok(());
@@ -562,34 +441,43 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
                 eprintln!("  {k:<15}{o}\n  {:<15}-> {n}", "");
             }
         }
-        eprintln!("\n{SETTINGS_CAUTION}\n");
+        eprintln!("\n{}\n", fringe_device::SETTINGS_CAUTION);
     }
-    if !a.yes && !crate::device_cal::Terminal.confirm("write these settings to the device?")? {
+    if !a.yes && !crate::terminal::Terminal.confirm("write these settings to the device?")? {
         anyhow::bail!(
             "not written: declined (nothing changed on the device or in {})",
             db.display()
         );
     }
-    let o = write_settings(
-        &mut link,
-        &key,
-        &mut store,
-        &old,
-        &new,
-        &a.operator,
-        &a.reason,
-    )?;
-    if a.json {
-        out::json(&serde_json::to_value(&o)?)?;
-    } else {
-        out::line(&format!(
-            "settings {} -> {} written to {}, read back and verified; audit record at chain position {} of {}",
-            old.content_id(),
-            new.content_id(),
-            o.serial,
-            o.position,
-            db.display()
-        ))?;
-    }
-    Ok(())
+    super::with_db(&db, |store| {
+        fringe_line::register(store, &id)?;
+        let position = fringe_device::settings::write_settings(
+            &mut link,
+            &key,
+            store,
+            &old,
+            &new,
+            &a.operator,
+            &a.reason,
+        )?;
+        let o = ConfigSetOutcome {
+            serial: id.serial.to_string(),
+            old: settings_json(&old),
+            new: settings_json(&new),
+            position,
+        };
+        if a.json {
+            out::json(&serde_json::to_value(&o)?)?;
+        } else {
+            out::line(&format!(
+                "settings {} -> {} written to {}, read back and verified; audit record at chain position {} of {}",
+                old.content_id(),
+                new.content_id(),
+                o.serial,
+                o.position,
+                db.display()
+            ))?;
+        }
+        Ok(())
+    })
 }

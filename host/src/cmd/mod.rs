@@ -69,7 +69,7 @@ pub fn optional_key(
     cfg: &LineConfig,
 ) -> anyhow::Result<Option<fringe_protocol::auth::Key>> {
     match flag.map(Path::to_path_buf).or_else(|| cfg.key_file.clone()) {
-        Some(p) => Ok(Some(crate::device_cal::load_key(&p)?)),
+        Some(p) => Ok(Some(fringe_device::key::load_key(&p)?)),
         None => Ok(None),
     }
 }
@@ -170,12 +170,46 @@ pub fn db_path(db: Option<&Path>, cfg: &LineConfig) -> anyhow::Result<PathBuf> {
     Ok(db)
 }
 
-/// Opens the database named by `--db` or the line file.
+/// Opens (or creates) the database at `db` and runs `work` on it. When
+/// `work` fails and this call created the file, the file is removed again
+/// if it holds nothing but the device's registration (a failed command
+/// leaves the disk as it was; a reading or any other record is never
+/// removed).
 ///
 /// # Errors
-/// As [`db_path`]; [`crate::store::StoreError`].
-pub fn open_db(db: Option<&Path>, cfg: &LineConfig) -> anyhow::Result<(PathBuf, Store)> {
-    let db = db_path(db, cfg)?;
-    let store = Store::open(&db)?;
-    Ok((db, store))
+/// The store's error opening it, or what `work` returns.
+pub fn with_db<T>(
+    db: &Path,
+    work: impl FnOnce(&mut Store) -> anyhow::Result<T>,
+) -> anyhow::Result<T> {
+    let existed = db.exists();
+    let mut store = Store::open(db)?;
+    let result = work(&mut store);
+    drop(store);
+    if result.is_err() && !existed {
+        remove_if_unused(db);
+    }
+    result
+}
+
+/// Removes a database this command created if it holds no record but
+/// device registrations (and its WAL and shared-memory files).
+fn remove_if_unused(db: &Path) {
+    let unused = Store::open_read_only(db).is_ok_and(|s| {
+        let mut other = false;
+        let walked = s.for_each_record(|r| {
+            other |= r.table != fringe_store::Table::Devices;
+            Ok(())
+        });
+        walked.is_ok() && !other
+    });
+    if unused {
+        for p in [
+            db.to_path_buf(),
+            fringe_sqlite::wal_path(db),
+            fringe_sqlite::shm_path(db),
+        ] {
+            let _ = std::fs::remove_file(p);
+        }
+    }
 }

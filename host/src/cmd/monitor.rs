@@ -321,7 +321,18 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
     let db = super::db_path(args.db.as_deref(), cfg)?;
     let key = super::optional_key(args.key_file.as_deref(), cfg)?;
     let link = super::connect(&args.port, cfg)?;
-    let mut store = Store::open(&db)?;
+    super::with_db(&db, |store| run(args, cfg, stop, link, key, store, &db))
+}
+
+fn run(
+    args: &MonitorArgs,
+    cfg: &LineConfig,
+    stop: &AtomicBool,
+    link: fringe_link::Link,
+    key: Option<fringe_protocol::auth::Key>,
+    store: &mut Store,
+    db: &std::path::Path,
+) -> anyhow::Result<()> {
     let style = Style::detect();
     let mut view = View {
         style,
@@ -356,7 +367,7 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
         };
         Session::open(
             link,
-            &mut store,
+            store,
             SessionOptions {
                 key,
                 period_ms: args.period_ms,
@@ -390,9 +401,9 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
                 now: &now,
                 tell: &mut tell,
             };
-            session.catch_up(&mut store, &mut ctx)?;
+            session.catch_up(store, &mut ctx)?;
         }
-        drift.watch(&store, &serial, 0, &mut view, true);
+        drift.watch(store, &serial, 0, &mut view, true);
         {
             let mut tell = |n: Note<'_>| view.note(n);
             let mut ctx = Ctx {
@@ -418,7 +429,7 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
                     now: &now,
                     tell: &mut tell,
                 };
-                session.poll(&mut store, &mut ctx)?
+                session.poll(store, &mut ctx)?
             };
             if let Some(e) = view.broken.take() {
                 return Err(e.into());
@@ -427,22 +438,16 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
                 return Ok(());
             }
             if polled.committed.is_some() {
-                drift.watch(
-                    &store,
-                    &serial,
-                    session.summary().streamed,
-                    &mut view,
-                    false,
-                );
+                drift.watch(store, &serial, session.summary().streamed, &mut view, false);
             }
             view.draw(session.latest(), &session.summary());
         }
     })();
     // Commit whatever arrived, whatever happened.
-    let (line, flushed) = session.finish(&mut store);
+    let (line, flushed) = session.finish(store);
     // The last batch's alarms.
     if flushed.is_ok() && result.is_ok() {
-        drift.watch(&store, &serial, line.streamed, &mut view, true);
+        drift.watch(store, &serial, line.streamed, &mut view, true);
     }
     if view.style.tty && !args.quiet {
         let mut o = std::io::stdout().lock();

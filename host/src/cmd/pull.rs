@@ -22,7 +22,15 @@ pub fn pull(args: &PullArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let db = super::db_path(args.db.as_deref(), cfg)?;
     let key = super::optional_key(args.key_file.as_deref(), cfg)?;
     let mut link = super::connect(&args.port, cfg)?;
-    let mut store = Store::open(&db)?;
+    super::with_db(&db, |store| run(args, &mut link, store, key.as_ref()))
+}
+
+fn run(
+    args: &PullArgs,
+    link: &mut fringe_link::Link,
+    store: &mut Store,
+    key: Option<&fringe_protocol::auth::Key>,
+) -> anyhow::Result<()> {
     let bar = if args.json {
         ProgressBar::hidden()
     } else {
@@ -46,20 +54,14 @@ pub fn pull(args: &PullArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         now: &now,
         tell: &mut tell,
     };
-    let summary = fringe_line::pull(
-        &mut link,
-        &mut store,
-        key.as_ref(),
-        &mut ctx,
-        &mut |n, expected| {
-            // The device goes on measuring meanwhile: the bar grows if it must.
-            let len = expected.max(n);
-            if len > bar.length().unwrap_or(0) {
-                bar.set_length(len);
-            }
-            bar.set_position(n);
-        },
-    );
+    let summary = fringe_line::pull(link, store, key, &mut ctx, &mut |n, expected| {
+        // The device goes on measuring meanwhile: the bar grows if it must.
+        let len = expected.max(n);
+        if len > bar.length().unwrap_or(0) {
+            bar.set_length(len);
+        }
+        bar.set_position(n);
+    });
     bar.finish_and_clear();
     let summary = summary?;
     if args.json {

@@ -1,0 +1,137 @@
+//! Reference samples captured from a connected device (`fringe cal
+//! capture`): each sample's permittivities at both frequencies and its
+//! temperature, with the id and lab moisture the person types.
+
+use std::path::{Path, PathBuf};
+
+use fringe_link::{Link, LinkError};
+use fringe_quality::samples::{
+    read_samples, write_samples, MoistureColumn, RefSample, SampleError,
+};
+
+use crate::guide::{Cancelled, Guide};
+use crate::measure::averaged_reading;
+
+/// Why a capture stopped (the samples captured before are in the file).
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum CaptureError {
+    /// The link failed.
+    #[error("{0}")]
+    Link(#[from] LinkError),
+    /// The person stopped.
+    #[error("{0}")]
+    Cancelled(#[from] Cancelled),
+    /// The device reports no permittivity (its cell is not calibrated).
+    #[error("the device reports no permittivity: calibrate the cell first (fringe cal cell)")]
+    NoPermittivity,
+    /// The existing table is not a sample table.
+    #[error("{0}")]
+    Samples(#[from] SampleError),
+    /// The table could not be written.
+    #[error("writing {path}: {source}")]
+    Write {
+        /// File.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+}
+
+/// One captured sample: `n` averaged readings' permittivities and temperature.
+///
+/// # Errors
+/// [`CaptureError`]: link errors, or an uncalibrated cell (NaN permittivity).
+pub fn capture_sample(
+    link: &mut Link,
+    id: &str,
+    moisture_pct: Option<f64>,
+    n: u32,
+) -> Result<RefSample, CaptureError> {
+    let ident = link.identity().cloned().ok_or(LinkError::Unexpected {
+        request: "Identify",
+        got: "no identity".into(),
+    })?;
+    let (_, eps, t, _) = averaged_reading(link, n)?;
+    if eps.iter().any(|e| !e.re.is_finite() || !e.im.is_finite()) {
+        return Err(CaptureError::NoPermittivity);
+    }
+    Ok(RefSample {
+        sample_id: id.to_string(),
+        moisture_pct,
+        temperature_c: t,
+        freqs_hz: [f64::from(ident.freqs_hz[0]), f64::from(ident.freqs_hz[1])],
+        eps_re: [eps[0].re, eps[1].re],
+        eps_im: [eps[0].im.max(0.0), eps[1].im.max(0.0)],
+        line: 0,
+    })
+}
+
+/// Asks for each sample's id and lab moisture and captures it, until an
+/// empty id; every sample is saved to `out` as it is taken.
+///
+/// # Errors
+/// [`CaptureError`].
+pub fn capture(
+    link: &mut Link,
+    out: &Path,
+    readings: u32,
+    guide: &mut dyn Guide,
+) -> Result<usize, CaptureError> {
+    let mut rows: Vec<RefSample> = Vec::new();
+    while let Some(id) = guide.ask("sample id (empty to finish):")? {
+        if rows.iter().any(|r| r.sample_id == id) {
+            guide.show(&format!("sample id {id} already captured; use another"));
+            continue;
+        }
+        let m = guide.ask("lab moisture, % wet basis (empty to fill in later):")?;
+        let m = match m.map(|s| s.parse::<f64>()) {
+            Some(Ok(v)) if (0.0..100.0).contains(&v) => Some(v),
+            Some(_) => {
+                guide.show("not a moisture in % (0-100); left empty, fill it in the CSV later");
+                None
+            }
+            None => None,
+        };
+        guide.step(&format!("place sample {id} in front of the window (fill the sample cup level, same packing as on the line)"))?;
+        let s = capture_sample(link, &id, m, readings)?;
+        guide.show(&format!(
+            "  {id}: {:.1} C, eps1 {:.3} - j{:.3}, eps2 {:.3} - j{:.3}",
+            s.temperature_c, s.eps_re[0], s.eps_im[0], s.eps_re[1], s.eps_im[1]
+        ));
+        rows.push(s);
+        save_rows(out, &rows)?;
+    }
+    Ok(rows.len())
+}
+
+/// Writes the captured rows after those already in `path` (rewritten whole
+/// through a temporary file so an interruption loses nothing).
+///
+/// # Errors
+/// [`CaptureError`]: a failed write, or an existing file that is not a
+/// sample table.
+pub fn save_rows(path: &Path, rows: &[RefSample]) -> Result<(), CaptureError> {
+    let mut all = Vec::new();
+    if path.exists() {
+        all = read_samples(path, MoistureColumn::Optional)?.samples;
+        all.retain(|s| !rows.iter().any(|r| r.sample_id == s.sample_id));
+    }
+    all.extend(rows.iter().cloned());
+    let tmp = path.with_extension("csv.part");
+    let f = std::fs::File::create(&tmp).map_err(|source| CaptureError::Write {
+        path: tmp.clone(),
+        source,
+    })?;
+    if let Err(source) = write_samples(f, &all) {
+        let _ = std::fs::remove_file(&tmp);
+        return Err(CaptureError::Write { path: tmp, source });
+    }
+    std::fs::rename(&tmp, path).map_err(|source| {
+        let _ = std::fs::remove_file(&tmp);
+        CaptureError::Write {
+            path: path.to_path_buf(),
+            source,
+        }
+    })
+}

@@ -1,0 +1,76 @@
+//! Device key files: 64 hex digits (whitespace ignored), kept like a password.
+
+use std::path::{Path, PathBuf};
+
+use fringe_protocol::auth::Key;
+
+/// A key file could not be used.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum KeyError {
+    /// The file could not be read.
+    #[error("reading key file {path}: {source}")]
+    Read {
+        /// File.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+    /// It is not 64 hex digits (the key itself is never shown).
+    #[error("{path}: a device key is 64 hex digits, found {found}")]
+    NotAKey {
+        /// File.
+        path: PathBuf,
+        /// What was found instead, in words.
+        found: String,
+    },
+}
+
+/// Reads a key file.
+///
+/// # Errors
+/// [`KeyError`].
+pub fn load_key(path: &Path) -> Result<Key, KeyError> {
+    let text = std::fs::read_to_string(path).map_err(|source| KeyError::Read {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    let hex: String = text.split_whitespace().collect();
+    if hex.len() != 64 {
+        return Err(KeyError::NotAKey {
+            path: path.to_path_buf(),
+            found: format!("{} characters", hex.len()),
+        });
+    }
+    let mut key = [0u8; 32];
+    for (i, k) in key.iter_mut().enumerate() {
+        *k = hex
+            .get(2 * i..2 * i + 2)
+            .and_then(|d| u8::from_str_radix(d, 16).ok())
+            .ok_or_else(|| KeyError::NotAKey {
+                path: path.to_path_buf(),
+                found: format!("no hex digit at digit {}", 2 * i + 1),
+            })?;
+    }
+    Ok(key)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn key_files_are_64_hex_digits() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("k.key");
+        std::fs::write(&p, format!("{}\n", "0a".repeat(32))).unwrap();
+        assert_eq!(load_key(&p).unwrap(), [0x0a; 32]);
+        std::fs::write(&p, "0a0b").unwrap();
+        assert!(load_key(&p)
+            .unwrap_err()
+            .to_string()
+            .contains("4 characters"));
+        std::fs::write(&p, "zz".repeat(32)).unwrap();
+        assert!(load_key(&p).unwrap_err().to_string().contains("digit 1"));
+    }
+}

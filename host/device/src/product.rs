@@ -1,0 +1,359 @@
+//! Product calibrations on the device: list the slots, push a calibration
+//! file (`fringe cal push`), switch the active product (`fringe cal
+//! select`). Each change is shown through the guide with the caution,
+//! confirmed, written with the device key, read back, and recorded.
+
+use fringe_quality::product_file::freq_pair_label;
+use std::path::Path;
+
+use fringe_link::{Link, LinkError};
+use fringe_protocol::auth::Key;
+use fringe_protocol::{CalId, ProductCal, Request, Response, SlotInfo};
+use fringe_quality::analysis::CalRecordBody;
+use fringe_quality::cal::{gate_of_file, GateRefused};
+use fringe_quality::product_file::{same_freqs, ProductFile};
+use fringe_store::{CalKind, RecordStore, StoreError};
+
+use crate::guide::{Cancelled, Guide};
+use crate::record::record;
+use crate::LINE_CAUTION;
+
+/// Why a push or select stopped.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum ProductError {
+    /// The link failed (a wrong key: the device refused).
+    #[error("{0}")]
+    Link(#[from] LinkError),
+    /// The record could not be stored (the device holds the change).
+    #[error("the device holds the change, but its record could not be stored: {0}")]
+    Store(#[from] StoreError),
+    /// The person stopped.
+    #[error("{0}")]
+    Cancelled(#[from] Cancelled),
+    /// The quality gate refused the calibration file.
+    #[error("{0}")]
+    Gate(#[from] GateRefused),
+    /// Who or why is missing.
+    #[error("--operator and --reason must not be empty (the audit record needs who and why)")]
+    NoAuditFields,
+    /// The file holds only at other frequencies than the device's.
+    #[error("{name} holds only at {} (its reference samples' frequencies), but {serial} measures at {}: capture reference samples on this sensor and fit again; nothing written", freq_pair_label(*.want_hz), freq_pair_label(*.device_hz))]
+    OtherFrequencies {
+        /// Product name.
+        name: String,
+        /// The file's frequencies.
+        want_hz: [f64; 2],
+        /// The device serial.
+        serial: String,
+        /// The device's frequencies.
+        device_hz: [f64; 2],
+    },
+    /// No free slot and none named.
+    #[error("all {n} product slots are in use; choose one with --slot")]
+    SlotsFull {
+        /// Slots on the device.
+        n: usize,
+    },
+    /// No such product on the device.
+    #[error("no product `{product}` on {serial}; `fringe cal list` shows the slots")]
+    UnknownProduct {
+        /// Name or slot given.
+        product: String,
+        /// The device serial.
+        serial: String,
+    },
+    /// The person did not confirm.
+    #[error("not {what} (not confirmed)")]
+    NotConfirmed {
+        /// What was not done.
+        what: &'static str,
+    },
+    /// The device does not hold what was written.
+    #[error("read-back of slot {slot} gives {read}, not the written {written}: the device did not store it")]
+    ReadBack {
+        /// Slot.
+        slot: u8,
+        /// What it holds.
+        read: String,
+        /// What was written.
+        written: CalId,
+    },
+    /// The device did not switch.
+    #[error("the device still reports slot {active:?} active")]
+    NotSwitched {
+        /// The active slot it reports.
+        active: Option<u8>,
+    },
+}
+
+/// `cal push`'s quality gate on a calibration file: the refusals to record
+/// when `force` overrides them.
+///
+/// # Errors
+/// [`GateRefused`] when the file fails the gate and `force` is off.
+pub fn push_gate(path: &Path, file: &ProductFile, force: bool) -> Result<Vec<String>, GateRefused> {
+    let refusals = gate_of_file(&file.statistics);
+    if !refusals.is_empty() && !force {
+        return Err(GateRefused {
+            what: path.display().to_string(),
+            refusals,
+        });
+    }
+    Ok(refusals
+        .into_iter()
+        .map(|r| format!("at push (--force): {r}"))
+        .collect())
+}
+
+/// The product slots of the device and the active one.
+///
+/// # Errors
+/// [`LinkError`].
+pub fn list_slots(link: &mut Link) -> Result<(Vec<SlotInfo>, Option<u8>), LinkError> {
+    match link.request(Request::ListProducts)? {
+        Response::Products { slots, active } => Ok((slots.to_vec(), active)),
+        other => Err(LinkError::Unexpected {
+            request: "ListProducts",
+            got: format!("{other:?}"),
+        }),
+    }
+}
+
+/// A push: which calibration, where, by whom, why.
+#[derive(Debug, Clone, Copy)]
+pub struct Push<'a> {
+    /// The calibration file.
+    pub file: &'a ProductFile,
+    /// Its wire form.
+    pub wire: &'a ProductCal,
+    /// Product slot (default: the slot holding this product name, else the first free one).
+    pub slot: Option<u8>,
+    /// Make it the active product too.
+    pub activate: bool,
+    /// Who makes the change.
+    pub operator: &'a str,
+    /// Why.
+    pub reason: &'a str,
+    /// Write without asking.
+    pub yes: bool,
+}
+
+/// Result of a push.
+#[derive(Debug, Clone)]
+pub struct PushOutcome {
+    /// Slot written.
+    pub slot: u8,
+    /// Id before (in that slot).
+    pub old: CalId,
+    /// Id written and read back.
+    pub new: CalId,
+    /// Chain position of the audit record.
+    pub position: u64,
+}
+
+/// Writes a product calibration to the device (see the module doc).
+///
+/// # Errors
+/// [`ProductError`].
+pub fn push(
+    link: &mut Link,
+    key: &Key,
+    store: &mut (impl RecordStore + ?Sized),
+    guide: &mut dyn Guide,
+    p: &Push<'_>,
+) -> Result<PushOutcome, ProductError> {
+    let (file, wire) = (p.file, p.wire);
+    if p.operator.trim().is_empty() || p.reason.trim().is_empty() {
+        return Err(ProductError::NoAuditFields);
+    }
+    let serial = link.serial_number().to_string();
+    if let (Some(want), Some(id)) = (file.source.freqs_hz, link.identity()) {
+        let dev = id.freqs_hz.map(f64::from);
+        if !same_freqs(dev, want) {
+            return Err(ProductError::OtherFrequencies {
+                name: file.name.clone(),
+                want_hz: want,
+                serial,
+                device_hz: dev,
+            });
+        }
+    }
+    let (slots, active) = list_slots(link)?;
+    let slot = p
+        .slot
+        .or_else(|| {
+            slots
+                .iter()
+                .find(|s| s.name.as_str() == wire.name.as_str())
+                .map(|s| s.slot)
+        })
+        .or_else(|| {
+            (0..fringe_protocol::N_PRODUCT_SLOTS as u8)
+                .find(|i| !slots.iter().any(|s| s.slot == *i))
+        })
+        .ok_or(ProductError::SlotsFull {
+            n: fringe_protocol::N_PRODUCT_SLOTS,
+        })?;
+    let old_cal = match link.request(Request::ReadProductCal { slot })? {
+        Response::ProductCal { cal, .. } => cal,
+        _ => None,
+    };
+    let old = old_cal.as_ref().map_or(CalId::NONE, ProductCal::content_id);
+    let new = wire.content_id();
+    let mut shown = format!(
+        "device {serial}, slot {slot}{}:\n",
+        if active == Some(slot) {
+            " (active)"
+        } else {
+            ""
+        }
+    );
+    match &old_cal {
+        Some(o) => {
+            shown += &format!(
+                "  old: {} {:?} id {old}, moisture {:.2}..{:.2} %, temperature {:.1}..{:.1} C\n",
+                o.name,
+                o.model,
+                o.moisture_pct.min,
+                o.moisture_pct.max,
+                o.temperature_c.min,
+                o.temperature_c.max
+            )
+        }
+        None => shown += "  old: (empty)\n",
+    }
+    shown += &format!(
+        "  new: {} {:?} id {new}, moisture {:.2}..{:.2} %, temperature {:.1}..{:.1} C, SEC {:.3} %, SEP {:.3} % (n {})",
+        wire.name, wire.model, wire.moisture_pct.min, wire.moisture_pct.max, wire.temperature_c.min, wire.temperature_c.max,
+        wire.sec_pct, file.statistics.sep, file.statistics.n
+    );
+    guide.show(&shown);
+    guide.caution(LINE_CAUTION);
+    if !p.yes && !guide.confirm("write this calibration?")? {
+        return Err(ProductError::NotConfirmed { what: "written" });
+    }
+    link.request_signed(
+        Request::WriteProductCal {
+            slot,
+            cal: wire.clone(),
+        },
+        key,
+    )?;
+    let back = match link.request(Request::ReadProductCal { slot })? {
+        Response::ProductCal { cal: Some(c), .. } => c,
+        other => {
+            return Err(ProductError::ReadBack {
+                slot,
+                read: format!("{other:?}"),
+                written: new,
+            })
+        }
+    };
+    if back.content_id() != new {
+        return Err(ProductError::ReadBack {
+            slot,
+            read: back.content_id().to_string(),
+            written: new,
+        });
+    }
+    if p.activate && active != Some(slot) {
+        link.request_signed(Request::SelectProduct { slot }, key)?;
+    }
+    let position = record(
+        store,
+        &serial,
+        CalKind::Product,
+        new,
+        Some(slot),
+        Some(wire.name.to_string()),
+        &CalRecordBody {
+            calibration: serde_json::to_value(wire).unwrap_or(serde_json::Value::Null),
+            operator: p.operator.into(),
+            reason: p.reason.into(),
+            old_id: old.to_string(),
+            new_id: new.to_string(),
+            action: "push".into(),
+            statistics: Some(file.statistics.clone()),
+            verification: Some(format!("read back from slot {slot}: id {new}")),
+            parent_id: file.source.parent_id.clone(),
+            derivation: file.source.derivation.clone(),
+        },
+    )?;
+    Ok(PushOutcome {
+        slot,
+        old,
+        new,
+        position,
+    })
+}
+
+/// Makes `product` (a name or a slot number) the active product.
+///
+/// # Errors
+/// [`ProductError`].
+#[allow(clippy::too_many_arguments)]
+pub fn select(
+    link: &mut Link,
+    key: &Key,
+    store: &mut (impl RecordStore + ?Sized),
+    guide: &mut dyn Guide,
+    product: &str,
+    operator: &str,
+    reason: &str,
+    yes: bool,
+) -> Result<(u8, CalId), ProductError> {
+    let serial = link.serial_number().to_string();
+    let (slots, active) = list_slots(link)?;
+    let s = slots
+        .iter()
+        .find(|s| s.name.as_str() == product || product.parse::<u8>().ok() == Some(s.slot))
+        .ok_or_else(|| ProductError::UnknownProduct {
+            product: product.into(),
+            serial: serial.clone(),
+        })?
+        .clone();
+    let old = active
+        .and_then(|a| slots.iter().find(|x| x.slot == a))
+        .map_or(CalId::NONE, |x| x.id);
+    guide.show(&format!(
+        "switch {serial} from {old} to {} ({} in slot {})",
+        s.id, s.name, s.slot
+    ));
+    guide.caution(LINE_CAUTION);
+    if !yes && !guide.confirm("switch the active product?")? {
+        return Err(ProductError::NotConfirmed { what: "switched" });
+    }
+    link.request_signed(Request::SelectProduct { slot: s.slot }, key)?;
+    let (_, now_active) = list_slots(link)?;
+    if now_active != Some(s.slot) {
+        return Err(ProductError::NotSwitched { active: now_active });
+    }
+    let calibration = match link.request(Request::ReadProductCal { slot: s.slot })? {
+        Response::ProductCal { cal: Some(c), .. } => {
+            serde_json::to_value(c).unwrap_or(serde_json::Value::Null)
+        }
+        _ => serde_json::Value::Null,
+    };
+    record(
+        store,
+        &serial,
+        CalKind::Product,
+        s.id,
+        Some(s.slot),
+        Some(s.name.to_string()),
+        &CalRecordBody {
+            calibration,
+            operator: operator.into(),
+            reason: reason.into(),
+            old_id: old.to_string(),
+            new_id: s.id.to_string(),
+            action: "select".into(),
+            statistics: None,
+            verification: Some(format!("device reports slot {} active", s.slot)),
+            parent_id: None,
+            derivation: None,
+        },
+    )?;
+    Ok((s.slot, s.id))
+}

@@ -1,0 +1,164 @@
+//! Device settings (tag, interval, 4-20 mA span, failure level, stale
+//! timeout): a change checked as the device checks it, written with the
+//! device key, read back, and recorded with who and why.
+
+use fringe_link::{Link, LinkError};
+use fringe_protocol::auth::Key;
+use fringe_protocol::{Request, Settings};
+use fringe_quality::analysis::CalRecordBody;
+use fringe_store::{CalKind, NewCalibration, RecordStore, StoreError};
+
+/// Why a settings change stopped.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum SettingsError {
+    /// A value is refused (the flag named), before anything is written.
+    #[error("{0}")]
+    Refused(String),
+    /// The link failed (a wrong key: the device refused).
+    #[error("{0}")]
+    Link(#[from] LinkError),
+    /// The record could not be stored (the device holds the new settings).
+    #[error("the device holds the new settings, but their record could not be stored: {0}")]
+    Store(#[from] StoreError),
+    /// The device holds other settings than were written.
+    #[error("the device holds other settings than were written (read back {read}, wrote {written}): nothing recorded")]
+    ReadBack {
+        /// Id of what it holds.
+        read: String,
+        /// Id of what was written.
+        written: String,
+    },
+}
+
+/// A settings change: the values to set (the others keep theirs).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct SettingsChange {
+    /// Measuring-point tag ("" clears it).
+    pub tag: Option<String>,
+    /// Measurement interval, ms.
+    pub interval_ms: Option<u32>,
+    /// Moisture at 4 mA, %.
+    pub span_low_pct: Option<f32>,
+    /// Moisture at 20 mA, %.
+    pub span_high_pct: Option<f32>,
+    /// Failure level high (NAMUR NE 43 >= 21 mA) rather than low.
+    pub fail_high: Option<bool>,
+    /// Stale-output timeout, ms.
+    pub stale_timeout_ms: Option<u32>,
+}
+
+impl SettingsChange {
+    /// `old` with this change, checked as the device will check it.
+    ///
+    /// # Errors
+    /// [`SettingsError::Refused`] naming the flag of a refused value.
+    pub fn apply(&self, old: &Settings) -> Result<Settings, SettingsError> {
+        use fringe_firmware::settings::{self as fw, validate, SettingsError as E};
+        let refused = |m: String| Err(SettingsError::Refused(m));
+        let mut s = old.clone();
+        if let Some(t) = &self.tag {
+            if t.len() > fringe_protocol::TAG_LEN {
+                return refused(format!(
+                    "--tag {t:?}: {} bytes, at most {} fit",
+                    t.len(),
+                    fringe_protocol::TAG_LEN
+                ));
+            }
+            s.tag = fringe_protocol::short_string(t);
+        }
+        if let Some(v) = self.interval_ms {
+            s.interval_ms = v;
+        }
+        if let Some(v) = self.span_low_pct {
+            s.output.span_low_pct = v;
+        }
+        if let Some(v) = self.span_high_pct {
+            s.output.span_high_pct = v;
+        }
+        if let Some(f) = self.fail_high {
+            s.output.fail_high = f;
+        }
+        if let Some(v) = self.stale_timeout_ms {
+            s.stale_timeout_ms = v;
+        }
+        match validate(&s) {
+            Ok(()) => Ok(s),
+            Err(E::Tag) => refused(format!(
+                "--tag {:?}: no control characters allowed",
+                s.tag.as_str()
+            )),
+            Err(E::Interval) => refused(format!(
+                "--interval-ms {}: must be {}..={} ms",
+                s.interval_ms,
+                fw::MIN_INTERVAL_MS,
+                fw::MAX_INTERVAL_MS
+            )),
+            Err(E::StaleTimeout) => refused(format!(
+                "--stale-timeout-ms {}: must be at least twice the interval ({} ms) and at most {} ms",
+                s.stale_timeout_ms,
+                s.interval_ms.saturating_mul(2),
+                fw::MAX_STALE_TIMEOUT_MS
+            )),
+            Err(E::Span(_)) => refused(format!(
+                "--span-low-pct {} / --span-high-pct {}: need 0 <= low < high <= 100 %",
+                s.output.span_low_pct, s.output.span_high_pct
+            )),
+            Err(e) => refused(e.to_string()),
+        }
+    }
+}
+
+/// Writes `new` (authenticated), reads it back and records the change in
+/// `store` with who and why (a `settings` record in the calibrations
+/// table, with the settings before); returns the record's chain position.
+///
+/// # Errors
+/// [`SettingsError`]: link errors (a wrong key: refused), a read-back that
+/// differs, store errors.
+pub fn write_settings(
+    link: &mut Link,
+    key: &Key,
+    store: &mut (impl RecordStore + ?Sized),
+    old: &Settings,
+    new: &Settings,
+    operator: &str,
+    reason: &str,
+) -> Result<u64, SettingsError> {
+    link.request_signed(Request::WriteSettings(new.clone()), key)?;
+    let back = link.settings()?;
+    if &back != new {
+        return Err(SettingsError::ReadBack {
+            read: back.content_id().to_string(),
+            written: new.content_id().to_string(),
+        });
+    }
+    let serial = link.serial_number().to_string();
+    let body = CalRecordBody {
+        calibration: serde_json::to_value(&back).unwrap_or(serde_json::Value::Null),
+        operator: operator.into(),
+        reason: reason.into(),
+        old_id: old.content_id().to_string(),
+        new_id: back.content_id().to_string(),
+        action: "settings".into(),
+        statistics: None,
+        verification: None,
+        parent_id: None,
+        derivation: None,
+    };
+    let mut body = serde_json::to_value(body).unwrap_or(serde_json::Value::Null);
+    body["previous"] = serde_json::to_value(old).unwrap_or(serde_json::Value::Null);
+    let rec = store.insert_calibration(
+        &serial,
+        &NewCalibration {
+            kind: CalKind::Settings,
+            cal_id: back.content_id(),
+            slot: None,
+            name: Some(back.tag.to_string()),
+            body,
+            note: None,
+            supersedes: None,
+        },
+    )?;
+    Ok(rec.position)
+}
