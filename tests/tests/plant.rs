@@ -394,3 +394,75 @@ fn a_throwaway_postgres_starts_and_answers() {
         .expect("psql");
     assert_eq!(String::from_utf8_lossy(&out.stdout).trim(), "fringe");
 }
+
+/// The live page in headless Chromium through Selenium: it shows the
+/// devices' values, a new reading appears without a reload, and the
+/// screenshot is not blank.
+#[test]
+#[ignore = "needs FRINGE_PYTHON (the venv) and chromium: `cargo xtask test` runs it"]
+fn the_live_page_shows_values_and_updates_without_a_reload() {
+    use fringe_gateway::web::WebServer;
+    use std::io::BufRead;
+
+    let table = Arc::new(LiveTable::new(Duration::from_secs(60)));
+    table.register(1, "PLT-A-0001");
+    table.set_tag(1, "Line 1 dryer outlet");
+    table.register(2, "PLT-A-0002");
+    table.register(3, "PLT-A-0003");
+    table.update(
+        1,
+        &reading(1, 1, Some(14.37), Flags::empty()),
+        Instant::now(),
+    );
+    table.update(
+        2,
+        &reading(1, 1, Some(9.5), Flags::OUT_OF_RANGE),
+        Instant::now(),
+    );
+    table.set_calibration(1, Some("wheat 2026 (relaxation), id 1a2b3c4d".into()));
+    let web = WebServer::start(
+        "127.0.0.1:0".parse().unwrap(),
+        "Plant A (test)",
+        Arc::clone(&table),
+    )
+    .expect("bind");
+    let dir = tempfile::tempdir().unwrap();
+    let shot = dir.path().join("live-page.png");
+    let mut child = Command::new(python())
+        .arg(workspace_root().join("tests/python/live_page.py"))
+        .arg(format!("http://{}/", web.local_addr()))
+        .args(["PLT-A-0001", "14.37 %", "15.02 %"])
+        .arg(&shot)
+        .stdout(std::process::Stdio::piped())
+        .spawn()
+        .expect("start live_page.py");
+    let mut lines = std::io::BufReader::new(child.stdout.take().unwrap()).lines();
+    let first: Value = serde_json::from_str(&lines.next().expect("first line").unwrap()).unwrap();
+    assert_eq!(first["event"], "first");
+    table.update(
+        1,
+        &reading(1, 2, Some(15.02), Flags::empty()),
+        Instant::now(),
+    );
+    let second: Value = serde_json::from_str(&lines.next().expect("second line").unwrap()).unwrap();
+    assert!(child.wait().unwrap().success());
+    assert_eq!(
+        second["marker"], "same page",
+        "the page was reloaded: {second}"
+    );
+    assert_eq!(second["cards"], 3, "{second}");
+    assert_eq!(second["title"], "Plant A (test): live moisture");
+    assert!(
+        second["flags"].to_string().contains("out_of_range"),
+        "{second}"
+    );
+    assert!(
+        second["colours"].as_u64().unwrap_or(0) > 20,
+        "a blank screenshot: {second}"
+    );
+    // Keep the picture for the README when asked.
+    if let Some(out) = std::env::var_os("FRINGE_SCREENSHOT") {
+        std::fs::copy(&shot, out).expect("copy screenshot");
+    }
+    web.stop();
+}

@@ -68,7 +68,7 @@ fn ensure_target() -> Result<()> {
 const OPTIONAL_PARTS: [(&str, &str); 3] = [
     (
         "python",
-        "outside checks against Python reference libraries, and plant clients against real servers (tests/tests/outside.rs, plant.rs; mosquitto)",
+        "outside checks against Python reference libraries, and plant clients against real servers (tests/tests/outside.rs, plant.rs; mosquitto, PostgreSQL, headless Chromium)",
     ),
     ("fuzz", "fuzz crate build and smoke run (protocol/fuzz)"),
     (
@@ -311,7 +311,11 @@ fn test(args: &[String]) -> Result<()> {
     let plant_servers = || -> Result<()> {
         ensure_venv()?;
         // Real servers the plant tests start on localhost.
-        apt_install(&[("mosquitto", "mosquitto")])?;
+        apt_install(&[
+            ("mosquitto", "mosquitto"),
+            ("chromium", "chromium"),
+            ("chromedriver", "chromium-driver"),
+        ])?;
         let has_postgres = std::fs::read_dir("/usr/lib/postgresql")
             .map(|d| {
                 d.filter_map(Result::ok)
