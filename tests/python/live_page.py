@@ -53,7 +53,7 @@ def main(url, serial, first, second, shot):
         flags = [e.text for e in driver.find_elements(By.CSS_SELECTOR, ".flags li")]
         driver.save_screenshot(shot)
         img = Image.open(shot).convert("RGB")
-        colours = len(set(img.resize((192, 108)).getdata()))
+        colours = len(img.resize((192, 108)).getcolors(maxcolors=1 << 16) or [])
         print(json.dumps({"event": "second", "text": got, "marker": marker, "title": title, "cards": cards,
                           "flags": flags, "width": img.width, "height": img.height, "colours": colours}), flush=True)
     finally:
