@@ -385,6 +385,11 @@ pub struct ModbusFigures {
     pub answered: u32,
     /// Exception answers.
     pub exceptions: u32,
+    /// Instructions since the service before the last answer, less the
+    /// simulated front end's.
+    pub own_wait: u32,
+    /// The largest such figure.
+    pub max_own_wait: u32,
 }
 
 impl Qemu {
@@ -394,7 +399,7 @@ impl Qemu {
     /// As [`symbol_address`] and [`Qemu::read_words`].
     pub fn modbus_figures(&self, elf: &Path) -> Result<ModbusFigures> {
         let addr = symbol_address(elf, "FRINGE_MODBUS")?;
-        let w = self.read_words(addr, 11)?;
+        let w = self.read_words(addr, 13)?;
         Ok(ModbusFigures {
             sent: w[0],
             cost: w[1],
@@ -407,6 +412,8 @@ impl Qemu {
             broadcast: w[8],
             answered: w[9],
             exceptions: w[10],
+            own_wait: w[11],
+            max_own_wait: w[12],
         })
     }
 }
