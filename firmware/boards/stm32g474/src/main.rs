@@ -317,7 +317,9 @@ fn start(
     output: Loop,
     reset_cause: ResetCause,
 ) -> &'static mut BoardDevice {
-    let config = DeviceConfig::new(serial, key);
+    let mut config = DeviceConfig::new(serial, key);
+    // One record per poll: the Modbus slave is served between records.
+    config.steps_per_poll = 1;
     let booted = match Booted::mount(storage, config, reset_cause) {
         Ok(b) => b,
         Err(e) => panic!("boot failed: {e}"),
