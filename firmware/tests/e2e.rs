@@ -124,3 +124,74 @@ fn a_calibrated_device_flags_an_empty_line_and_reports_no_moisture() {
         );
     });
 }
+
+/// The registers the Modbus RTU slave serves are `fringe_registers::map` of
+/// the reading the device sent over its own protocol, with its age on the
+/// device clock, and stale once that age passes the stale-output timeout.
+/// A consistency test (docs/REFERENCES.md App. C): both sides use the map
+/// of `fringe-registers`; what it checks is the device's snapshot (which
+/// reading, rounded as the wire carries it, its age, the staleness) and the
+/// slave's framing of the words.
+#[test]
+fn modbus_registers_are_the_map_of_the_reading_sent() {
+    use fringe_firmware::modbus::{RtuSlave, SerialLine};
+    use fringe_registers::{map, Snapshot, STATUS, STATUS_NO_VALUE, STATUS_STALE};
+    big_stack(|| {
+        let mut b = calibrated(11);
+        b.dev
+            .frontend_mut()
+            .set_scenario(product_scenario(14.0, 22.0, 0.2));
+        let r = b.measure();
+        assert!(r.moisture_pct.is_some(), "{:?}", r.flags);
+        let crc = crc::Crc::<u16>::new(&crc::CRC_16_MODBUS);
+        let body = [0x01, 0x04, 0x00, 0x00, 0x00, 25];
+        let mut request = body.to_vec();
+        request.extend_from_slice(&crc.checksum(&body).to_le_bytes());
+        // Reads the whole map at `at_ms` through the slave.
+        let read = |b: &Bench, at_ms: u64| -> Vec<u16> {
+            let mut s = RtuSlave::new(&SerialLine::DEFAULT).unwrap();
+            let t0 = at_ms * 1000;
+            for (i, &byte) in request.iter().enumerate() {
+                s.receive(t0 + 573 * (i as u64 + 1), byte);
+            }
+            let answer = s
+                .poll(t0 + 573 * 8 + 2006, || b.dev.modbus_registers(at_ms))
+                .expect("answered")
+                .to_vec();
+            assert_eq!(&answer[..3], &[0x01, 0x04, 50]);
+            answer[3..53]
+                .chunks(2)
+                .map(|w| u16::from_be_bytes([w[0], w[1]]))
+                .collect()
+        };
+        // No clock set: time_ms counts from boot, which was at 0.
+        assert!(r.flags.contains(Flags::CLOCK_UNSET));
+        let taken = r.time_ms;
+        let now = b.now;
+        let want = map(&Snapshot {
+            reading: Some(r),
+            age_s: ((now - taken) / 1000) as u32,
+            stale: false,
+            connected: true,
+        });
+        let words = read(&b, now);
+        assert_eq!(words, want);
+        assert_eq!(words[STATUS as usize] & STATUS_NO_VALUE, 0, "a valid value");
+        // Past the stale-output timeout the same reading shows stale, with
+        // no valid value, and its age in seconds.
+        let late = taken + u64::from(b.dev.settings().stale_timeout_ms) + 1;
+        let words = read(&b, late);
+        let want = map(&Snapshot {
+            reading: Some(r),
+            age_s: ((late - taken) / 1000) as u32,
+            stale: true,
+            connected: true,
+        });
+        assert_eq!(words, want);
+        assert_eq!(
+            words[STATUS as usize] & (STATUS_STALE | STATUS_NO_VALUE),
+            STATUS_STALE | STATUS_NO_VALUE
+        );
+        assert_eq!(words[9], 10, "age 10 s");
+    });
+}
