@@ -220,6 +220,10 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     last_moisture: Option<f32>,
     /// When the last valid reading was taken (boot time before the first).
     last_valid_ms: u64,
+    /// The latest reading, valid or not, as the protocol carries it
+    /// ([`Reading::on_wire`]), and when it was taken (for the Modbus
+    /// registers: the same numbers a host, and so the gateway, receives).
+    latest: Option<(Reading, u64)>,
     /// The loop was sent to its failure level by the stale-output timeout.
     stale: bool,
     chain: ChainState,
@@ -420,6 +424,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             output_fault,
             last_moisture: None,
             last_valid_ms: now_ms,
+            latest: None,
             stale: false,
             chain: ChainState::default(),
             chain_valid: false,
@@ -544,6 +549,29 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                 tx,
             );
         }
+    }
+
+    /// What the Modbus registers show at `now_ms`: the latest reading (valid
+    /// or not, rounded as the protocol carries it, so the registers equal
+    /// the gateway's for the same reading), its age on the device clock, and stale once that age
+    /// exceeds the stale-output timeout ([`Settings::stale_timeout_ms`]).
+    pub fn register_snapshot(&self, now_ms: u64) -> fringe_registers::Snapshot {
+        let (reading, age_ms) = match self.latest {
+            Some((r, at)) => (Some(r), now_ms.saturating_sub(at)),
+            None => (None, 0),
+        };
+        fringe_registers::Snapshot {
+            reading,
+            age_s: u32::try_from(age_ms / 1000).unwrap_or(u32::MAX),
+            stale: reading.is_some() && age_ms > u64::from(self.settings.stale_timeout_ms),
+            connected: true,
+        }
+    }
+
+    /// The Modbus input registers at `now_ms` (`fringe_registers::map` of
+    /// [`Device::register_snapshot`]), for [`crate::modbus::RtuSlave::poll`].
+    pub fn modbus_registers(&self, now_ms: u64) -> [u16; fringe_registers::MAP_LEN] {
+        fringe_registers::map(&self.register_snapshot(now_ms))
     }
 
     /// The front end (the simulator's scenario is changed through it).
@@ -1126,6 +1154,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             );
         }
         let was_fault = self.output_fault;
+        self.latest = Some((reading.on_wire(), now_ms));
         self.last_moisture = reading.moisture_pct.filter(|m| m.is_finite());
         if self.last_moisture.is_some() {
             self.last_valid_ms = now_ms;

@@ -15,10 +15,13 @@
 //!   failure level, stale-output timeout), their defaults and checks;
 //! - [`device`]: the [`Device`] that owns all of it, measures on its own
 //!   schedule from `poll`, answers the protocol;
+//! - [`modbus`]: the Modbus RTU slave serving the device's input registers
+//!   (`fringe-registers`) on RS-485, and the half-duplex transmitter;
 //! - `sim` (feature `sim`): a simulated front end, physically honest.
 //!
-//! No heap, no globals, no panics reachable from input; the only clock is the
-//! `now_ms` argument of [`Device::poll`].
+//! No heap, no globals, no panics reachable from input; the only clocks are
+//! the `now_ms` argument of [`Device::poll`] and the `now_us`/`at_us`
+//! arguments of the Modbus slave.
 #![cfg_attr(not(any(test, feature = "std")), no_std)]
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
@@ -37,6 +40,7 @@ pub mod device;
 pub mod flash;
 pub mod hal;
 pub mod measure;
+pub mod modbus;
 pub mod output;
 pub mod settings;
 #[cfg(feature = "sim")]

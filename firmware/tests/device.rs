@@ -330,3 +330,25 @@ fn every_request_is_answered() {
         other => panic!("{other:?}"),
     }
 }
+
+/// Before its first reading the device's Modbus registers say so: no
+/// reading (status bit 15), no valid value (bit 0, NaN, 0x8000), age 65535;
+/// after it, the reading's counter and no "no reading" bit.
+#[test]
+fn modbus_registers_before_and_after_the_first_reading() {
+    use fringe_registers::{
+        AGE, COUNTER, SCALED_MOISTURE, STATUS, STATUS_NO_READING, STATUS_NO_VALUE,
+    };
+    let mut b = Bench::new(3, Scenario::default());
+    let m = b.dev.modbus_registers(b.now);
+    assert_eq!(m[STATUS as usize], STATUS_NO_READING | STATUS_NO_VALUE);
+    assert_eq!(m[AGE as usize], u16::MAX);
+    assert_eq!(m[SCALED_MOISTURE as usize], 0x8000);
+    assert!(f32::from_bits(u32::from(m[0]) << 16 | u32::from(m[1])).is_nan());
+    b.settle();
+    let m = b.dev.modbus_registers(b.now);
+    assert_eq!(m[STATUS as usize] & STATUS_NO_READING, 0);
+    assert_ne!(m[STATUS as usize] & STATUS_NO_VALUE, 0, "not calibrated");
+    assert_eq!((m[COUNTER as usize], m[COUNTER as usize + 1]), (0, 0));
+    assert_eq!(m[AGE as usize], 0);
+}

@@ -12,70 +12,11 @@
 mod common;
 
 use common::*;
-use fringe_calibration::cell::two_point_calibration;
-use fringe_calibration::real::Cx;
 use fringe_calibration::synth::SynthProduct;
 use fringe_firmware::protocol::*;
 use fringe_firmware::sim::{exact_calibration, Material};
 use fringe_firmware::Scenario;
 use rand::{RngExt, SeedableRng};
-
-/// Air at 20 C, ITU-R P.453 refractivity (docs/REFERENCES.md section 2), as the simulator uses.
-const EPS_AIR: f32 = 1.000_54;
-/// Ethanol at 20 C, Gregory and Clarke, NPL Report MAT 23 (2012): 25.16.
-const EPS_ETHANOL_20C: f32 = 25.16;
-
-fn mean_admittance(b: &mut Bench, n: usize) -> [Cx<f32>; 2] {
-    let mut acc = [Cx::new(0.0f64, 0.0); 2];
-    for _ in 0..n {
-        let r = b.measure();
-        for (a, c) in acc.iter_mut().zip(r.channels.iter()) {
-            a.re += f64::from(c.g_s);
-            a.im += f64::from(c.b_s);
-        }
-    }
-    acc.map(|a| Cx::new((a.re / n as f64) as f32, (a.im / n as f64) as f32))
-}
-
-/// Calibrates the cell on the bench (air, then ethanol) and writes it.
-pub fn bench_calibrate(b: &mut Bench) -> CellCal {
-    let freqs = [1.0e6f32, 20.0e6];
-    b.dev.frontend_mut().set_scenario(Scenario {
-        material: Material::Air,
-        ..Scenario::default()
-    });
-    let y_air = mean_admittance(b, 64);
-    b.dev.frontend_mut().set_scenario(Scenario {
-        material: Material::Liquid {
-            eps_re: EPS_ETHANOL_20C,
-            eps_im: 0.4,
-        },
-        ..Scenario::default()
-    });
-    let y_liq = mean_admittance(b, 64);
-    let baseline = match b.ok(Request::ReferenceCheck) {
-        Response::RefCheck(r) => r.ratio.iter().sum::<f32>() / 2.0,
-        other => panic!("{other:?}"),
-    };
-    let mut points = [CellPoint::default(); 2];
-    for (k, p) in points.iter_mut().enumerate() {
-        let c = two_point_calibration(freqs[k], y_air[k], EPS_AIR, y_liq[k], EPS_ETHANOL_20C)
-            .expect("cell calibration");
-        *p = CellPoint {
-            freq_hz: freqs[k],
-            stray_pf: c.stray_pf,
-            cell_pf: c.cell_pf,
-            g_offset_s: c.g_offset_s,
-        };
-    }
-    let cal = CellCal {
-        points,
-        reference_ratio: baseline,
-        made_s: 1_764_000_000,
-    };
-    assert_eq!(b.ok(Request::WriteCellCal(cal)), Response::Ack);
-    cal
-}
 
 /// The synthetic grain's exact calibration (moisture = mixing-model moisture).
 pub fn grain_calibration() -> ProductCal {
@@ -85,7 +26,7 @@ pub fn grain_calibration() -> ProductCal {
 /// A device with its cell calibrated on the bench and the grain selected.
 fn calibrated(seed: u64) -> Bench {
     let mut b = Bench::new(seed, Scenario::default());
-    bench_calibrate(&mut b);
+    bench_calibrate(&mut b, 64);
     let cal = grain_calibration();
     assert_eq!(
         b.ok(Request::WriteProductCal { slot: 0, cal }),
@@ -181,5 +122,76 @@ fn a_calibrated_device_flags_an_empty_line_and_reports_no_moisture() {
             (ma - (4.0 + 16.0 * m / 30.0)).abs() < 3e-3,
             "{ma} mA for {m} %"
         );
+    });
+}
+
+/// The registers the Modbus RTU slave serves are `fringe_registers::map` of
+/// the reading the device sent over its own protocol, with its age on the
+/// device clock, and stale once that age passes the stale-output timeout.
+/// A consistency test (docs/REFERENCES.md App. C): both sides use the map
+/// of `fringe-registers`; what it checks is the device's snapshot (which
+/// reading, rounded as the wire carries it, its age, the staleness) and the
+/// slave's framing of the words.
+#[test]
+fn modbus_registers_are_the_map_of_the_reading_sent() {
+    use fringe_firmware::modbus::{RtuSlave, SerialLine};
+    use fringe_registers::{map, Snapshot, STATUS, STATUS_NO_VALUE, STATUS_STALE};
+    big_stack(|| {
+        let mut b = calibrated(11);
+        b.dev
+            .frontend_mut()
+            .set_scenario(product_scenario(14.0, 22.0, 0.2));
+        let r = b.measure();
+        assert!(r.moisture_pct.is_some(), "{:?}", r.flags);
+        let crc = crc::Crc::<u16>::new(&crc::CRC_16_MODBUS);
+        let body = [0x01, 0x04, 0x00, 0x00, 0x00, 25];
+        let mut request = body.to_vec();
+        request.extend_from_slice(&crc.checksum(&body).to_le_bytes());
+        // Reads the whole map at `at_ms` through the slave.
+        let read = |b: &Bench, at_ms: u64| -> Vec<u16> {
+            let mut s = RtuSlave::new(&SerialLine::DEFAULT).unwrap();
+            let t0 = at_ms * 1000;
+            for (i, &byte) in request.iter().enumerate() {
+                s.receive(t0 + 573 * (i as u64 + 1), byte);
+            }
+            let answer = s
+                .poll(t0 + 573 * 8 + 2006, || b.dev.modbus_registers(at_ms))
+                .expect("answered")
+                .to_vec();
+            assert_eq!(&answer[..3], &[0x01, 0x04, 50]);
+            answer[3..53]
+                .chunks(2)
+                .map(|w| u16::from_be_bytes([w[0], w[1]]))
+                .collect()
+        };
+        // No clock set: time_ms counts from boot, which was at 0.
+        assert!(r.flags.contains(Flags::CLOCK_UNSET));
+        let taken = r.time_ms;
+        let now = b.now;
+        let want = map(&Snapshot {
+            reading: Some(r),
+            age_s: ((now - taken) / 1000) as u32,
+            stale: false,
+            connected: true,
+        });
+        let words = read(&b, now);
+        assert_eq!(words, want);
+        assert_eq!(words[STATUS as usize] & STATUS_NO_VALUE, 0, "a valid value");
+        // Past the stale-output timeout the same reading shows stale, with
+        // no valid value, and its age in seconds.
+        let late = taken + u64::from(b.dev.settings().stale_timeout_ms) + 1;
+        let words = read(&b, late);
+        let want = map(&Snapshot {
+            reading: Some(r),
+            age_s: ((late - taken) / 1000) as u32,
+            stale: true,
+            connected: true,
+        });
+        assert_eq!(words, want);
+        assert_eq!(
+            words[STATUS as usize] & (STATUS_STALE | STATUS_NO_VALUE),
+            STATUS_STALE | STATUS_NO_VALUE
+        );
+        assert_eq!(words[9], 10, "age 10 s");
     });
 }

@@ -6,30 +6,11 @@
 mod common;
 
 use common::*;
-use fringe_calibration::cell::two_point_calibration;
-use fringe_calibration::real::Cx;
 use fringe_calibration::synth::SynthProduct;
 use fringe_firmware::output::current_ma;
 use fringe_firmware::protocol::*;
 use fringe_firmware::sim::{exact_calibration, Material};
 use fringe_firmware::Scenario;
-
-/// Air at 20 C, ITU-R P.453 refractivity (docs/REFERENCES.md section 2), as the simulator uses.
-const EPS_AIR: f32 = 1.000_54;
-/// Ethanol at 20 C, Gregory and Clarke, NPL Report MAT 23 (2012): 25.16.
-const EPS_ETHANOL_20C: f32 = 25.16;
-
-fn mean_admittance(b: &mut Bench, n: usize) -> [Cx<f32>; 2] {
-    let mut acc = [Cx::new(0.0f64, 0.0); 2];
-    for _ in 0..n {
-        let r = b.measure();
-        for (a, c) in acc.iter_mut().zip(r.channels.iter()) {
-            a.re += f64::from(c.g_s);
-            a.im += f64::from(c.b_s);
-        }
-    }
-    acc.map(|a| Cx::new((a.re / n as f64) as f32, (a.im / n as f64) as f32))
-}
 
 /// A device whose cell is calibrated on the bench (air, then ethanol) and
 /// whose active product is the synthetic grain's exact calibration.
@@ -37,41 +18,7 @@ fn calibrated(seed: u64, settings: Settings) -> Bench {
     let mut cfg = config();
     cfg.settings = settings;
     let mut b = Bench::with_config(seed, Scenario::default(), Flash::new(), cfg);
-    let freqs = [1.0e6f32, 20.0e6];
-    b.dev.frontend_mut().set_scenario(Scenario {
-        material: Material::Air,
-        ..Scenario::default()
-    });
-    let y_air = mean_admittance(&mut b, 16);
-    b.dev.frontend_mut().set_scenario(Scenario {
-        material: Material::Liquid {
-            eps_re: EPS_ETHANOL_20C,
-            eps_im: 0.4,
-        },
-        ..Scenario::default()
-    });
-    let y_liq = mean_admittance(&mut b, 16);
-    let baseline = match b.ok(Request::ReferenceCheck) {
-        Response::RefCheck(r) => r.ratio.iter().sum::<f32>() / 2.0,
-        other => panic!("{other:?}"),
-    };
-    let mut points = [CellPoint::default(); 2];
-    for (k, p) in points.iter_mut().enumerate() {
-        let c = two_point_calibration(freqs[k], y_air[k], EPS_AIR, y_liq[k], EPS_ETHANOL_20C)
-            .expect("cell calibration");
-        *p = CellPoint {
-            freq_hz: freqs[k],
-            stray_pf: c.stray_pf,
-            cell_pf: c.cell_pf,
-            g_offset_s: c.g_offset_s,
-        };
-    }
-    let cell = CellCal {
-        points,
-        reference_ratio: baseline,
-        made_s: 1_764_000_000,
-    };
-    assert_eq!(b.ok(Request::WriteCellCal(cell)), Response::Ack);
+    bench_calibrate(&mut b, 16);
     let cal = exact_calibration(&SynthProduct::grain(), "Harrowgate wheat");
     assert_eq!(
         b.ok(Request::WriteProductCal { slot: 0, cal }),

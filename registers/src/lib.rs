@@ -163,7 +163,10 @@ pub fn status_word(s: &Snapshot) -> u16 {
     if !s.connected {
         w |= STATUS_DISCONNECTED;
     }
-    let valid = r.moisture_pct.is_some_and(f32::is_finite);
+    // A failure (F) or function check (C) makes any number the reading
+    // carries unusable for control, as does a stale or lost source.
+    let valid = r.moisture_pct.is_some_and(f32::is_finite)
+        && w & (STATUS_NE107_FAILURE | STATUS_NE107_CHECK) == 0;
     if !valid || s.stale || !s.connected {
         w |= STATUS_NO_VALUE;
     }
@@ -379,6 +382,11 @@ mod tests {
         );
         // A flag of another category sets none of the others.
         assert_eq!(w(Flags::REFERENCE_DRIFT) & STATUS_NE107_FAILURE, 0);
+        // F and C make a carried number unusable; S and M do not.
+        assert_ne!(w(Flags::ELECTRODE_FAULT) & STATUS_NO_VALUE, 0);
+        assert_ne!(w(Flags::NOT_CALIBRATED) & STATUS_NO_VALUE, 0);
+        assert_eq!(w(Flags::OUT_OF_RANGE) & STATUS_NO_VALUE, 0);
+        assert_eq!(w(Flags::REFERENCE_DRIFT) & STATUS_NO_VALUE, 0);
     }
 
     #[test]

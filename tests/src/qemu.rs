@@ -49,8 +49,10 @@ pub fn qemu_available() -> bool {
 /// A running QEMU with the board; killed when dropped.
 pub struct Qemu {
     child: Child,
-    /// The board's UART0.
+    /// The board's UART0 (Fringe protocol).
     pub pty: PathBuf,
+    /// The board's UART1 (Modbus RTU).
+    pub modbus_pty: PathBuf,
     monitor: PathBuf,
 }
 
@@ -58,11 +60,11 @@ pub struct Qemu {
 pub type Result<T> = std::result::Result<T, String>;
 
 impl Qemu {
-    /// Boots `elf` (mps2-an386, UART0 on a pty, monitor on a Unix socket,
-    /// `-icount shift=0,sleep=off`).
+    /// Boots `elf` (mps2-an386, UART0 and UART1 each on its own pty, monitor
+    /// on a Unix socket, `-icount shift=0,sleep=off`).
     ///
     /// # Errors
-    /// When QEMU does not start or does not print the pty's path within 10 s.
+    /// When QEMU does not start or does not print both ptys' paths within 10 s.
     pub fn boot(elf: &Path) -> Result<Self> {
         let monitor = std::env::temp_dir().join(format!(
             "fringe-qemu-{}-{}.sock",
@@ -81,7 +83,8 @@ impl Qemu {
             ])
             .args(["-icount", "shift=0,sleep=off"])
             .args(["-semihosting-config", "enable=on,target=native"])
-            .args(["-serial", "pty"])
+            // `-serial` number n is UARTn: the protocol, then Modbus RTU.
+            .args(["-serial", "pty", "-serial", "pty"])
             .arg("-monitor")
             .arg(format!("unix:{},server=on,wait=off", monitor.display()))
             .arg("-kernel")
@@ -95,26 +98,39 @@ impl Qemu {
         let (tx, rx) = std::sync::mpsc::channel();
         std::thread::spawn(move || {
             for line in BufReader::new(stdout).lines().map_while(|l| l.ok()) {
+                // "char device redirected to /dev/pts/N (label serial0)"
                 if let Some(i) = line.find("/dev/pts/") {
                     let path: String = line[i..]
                         .chars()
                         .take_while(|c| !c.is_whitespace())
                         .collect();
-                    let _ = tx.send(path);
+                    let uart = usize::from(line.contains("label serial1"));
+                    let _ = tx.send((uart, path));
                 }
             }
         });
-        let pty = match rx.recv_timeout(Duration::from_secs(10)) {
-            Ok(p) => PathBuf::from(p),
-            Err(_) => {
-                let _ = child.kill();
-                let _ = child.wait();
-                return Err("QEMU did not print its pty within 10 s".into());
+        let mut ptys: [Option<PathBuf>; 2] = [None, None];
+        let deadline = Instant::now() + Duration::from_secs(10);
+        while ptys.iter().any(Option::is_none) {
+            let left = deadline.saturating_duration_since(Instant::now());
+            match rx.recv_timeout(left) {
+                Ok((uart, p)) => ptys[uart] = Some(PathBuf::from(p)),
+                Err(_) => {
+                    let _ = child.kill();
+                    let _ = child.wait();
+                    return Err(format!(
+                        "QEMU did not print both ptys within 10 s (got {ptys:?})"
+                    ));
+                }
             }
+        }
+        let [Some(pty), Some(modbus_pty)] = ptys else {
+            unreachable!("both set above")
         };
         Ok(Self {
             child,
             pty,
+            modbus_pty,
             monitor,
         })
     }
@@ -145,6 +161,29 @@ impl Qemu {
             out.extend_from_slice(&buf[..n]);
         }
         Ok(String::from_utf8_lossy(&out).into_owned())
+    }
+
+    /// `n` 32-bit words of guest memory at `addr` (the monitor's `xp`).
+    ///
+    /// # Errors
+    /// When the monitor cannot be reached or prints fewer words.
+    pub fn read_words(&self, addr: u64, n: usize) -> Result<Vec<u32>> {
+        let out = self.monitor(&format!("xp /{n}wx {addr:#x}"))?;
+        // Lines "0000000020000000: 0x00000001 0x00000000 ...".
+        let words: Vec<u32> = out
+            .lines()
+            .filter_map(|l| l.trim().split_once(": "))
+            .filter(|(a, _)| a.len() == 16 && a.chars().all(|c| c.is_ascii_hexdigit()))
+            .flat_map(|(_, w)| w.split_whitespace())
+            .filter_map(|w| u32::from_str_radix(w.trim_start_matches("0x"), 16).ok())
+            .collect();
+        if words.len() < n {
+            return Err(format!(
+                "xp at {addr:#x}: {} of {n} words in {out:?}",
+                words.len()
+            ));
+        }
+        Ok(words[..n].to_vec())
     }
 
     /// Whether QEMU is still running.
@@ -291,6 +330,91 @@ impl Link {
                 return Ok(out);
             }
         }
+    }
+}
+
+/// The address of the symbol `name` in `elf` (`llvm-nm`, else GNU `nm`).
+///
+/// # Errors
+/// When neither tool runs or the symbol is not there.
+pub fn symbol_address(elf: &Path, name: &str) -> Result<u64> {
+    let mut last = String::new();
+    for tool in ["llvm-nm", "nm"] {
+        match Command::new(tool).arg(elf).output() {
+            Ok(out) if out.status.success() => {
+                let text = String::from_utf8_lossy(&out.stdout).into_owned();
+                return text
+                    .lines()
+                    .find_map(|l| {
+                        let mut w = l.split_whitespace();
+                        let addr = w.next()?;
+                        let _kind = w.next()?;
+                        (w.next()? == name).then(|| u64::from_str_radix(addr, 16).ok())?
+                    })
+                    .ok_or_else(|| format!("no symbol {name} in {}", elf.display()));
+            }
+            Ok(out) => last = format!("{tool}: {}", String::from_utf8_lossy(&out.stderr)),
+            Err(e) => last = format!("{tool}: {e}"),
+        }
+    }
+    Err(format!("cannot list symbols of {} ({last})", elf.display()))
+}
+
+/// The board's Modbus figures (`FRINGE_MODBUS` in the board's `main.rs`).
+#[derive(Debug, Clone, Copy, Default)]
+pub struct ModbusFigures {
+    /// Answers sent.
+    pub sent: u32,
+    /// Instructions the last answer cost.
+    pub cost: u32,
+    /// Instructions from the last answered frame's gap to its answer.
+    pub latency: u32,
+    /// The largest such delay.
+    pub max_latency: u32,
+    /// Frames delimited.
+    pub frames: u32,
+    /// Frames dropped for a bad CRC.
+    pub bad_crc: u32,
+    /// Frames dropped as damaged.
+    pub damaged: u32,
+    /// Frames for another unit.
+    pub other_unit: u32,
+    /// Broadcast frames.
+    pub broadcast: u32,
+    /// Answers with data.
+    pub answered: u32,
+    /// Exception answers.
+    pub exceptions: u32,
+    /// Instructions since the service before the last answer, less the
+    /// simulated front end's.
+    pub own_wait: u32,
+    /// The largest such figure.
+    pub max_own_wait: u32,
+}
+
+impl Qemu {
+    /// The board's Modbus figures, read from its memory.
+    ///
+    /// # Errors
+    /// As [`symbol_address`] and [`Qemu::read_words`].
+    pub fn modbus_figures(&self, elf: &Path) -> Result<ModbusFigures> {
+        let addr = symbol_address(elf, "FRINGE_MODBUS")?;
+        let w = self.read_words(addr, 13)?;
+        Ok(ModbusFigures {
+            sent: w[0],
+            cost: w[1],
+            latency: w[2],
+            max_latency: w[3],
+            frames: w[4],
+            bad_crc: w[5],
+            damaged: w[6],
+            other_unit: w[7],
+            broadcast: w[8],
+            answered: w[9],
+            exceptions: w[10],
+            own_wait: w[11],
+            max_own_wait: w[12],
+        })
     }
 }
 

@@ -7,7 +7,7 @@
 //!   `tests/python/requirements.txt`. Then: fmt, clippy, workspace tests,
 //!   `no_std` cross-builds, the outside checks against those libraries, the
 //!   fuzz crate's build and smoke run, the board build and the QEMU
-//!   end-to-end test.
+//!   end-to-end tests (the protocol, and Modbus RTU read by pymodbus).
 //!
 //! Nothing is skipped in silence. A part that cannot run (a tool missing and
 //! not installable here) fails the run, and the closing line names it. To
@@ -68,12 +68,12 @@ fn ensure_target() -> Result<()> {
 const OPTIONAL_PARTS: [(&str, &str); 3] = [
     (
         "python",
-        "outside checks against Python reference libraries, and plant clients against real servers (tests/tests/outside.rs, plant.rs; mosquitto)",
+        "outside checks against Python reference libraries, and plant clients against real servers (tests/tests/outside.rs, plant.rs; mosquitto, PostgreSQL, headless Chromium)",
     ),
     ("fuzz", "fuzz crate build and smoke run (protocol/fuzz)"),
     (
         "qemu",
-        "QEMU end-to-end test of the firmware (tests/tests/qemu.rs)",
+        "QEMU end-to-end tests of the firmware (tests/tests/qemu.rs; modbus_rtu.rs with pymodbus from the Python venv)",
     ),
 ];
 
@@ -311,7 +311,11 @@ fn test(args: &[String]) -> Result<()> {
     let plant_servers = || -> Result<()> {
         ensure_venv()?;
         // Real servers the plant tests start on localhost.
-        apt_install(&[("mosquitto", "mosquitto")])?;
+        apt_install(&[
+            ("mosquitto", "mosquitto"),
+            ("chromium", "chromium"),
+            ("chromedriver", "chromium-driver"),
+        ])?;
         let has_postgres = std::fs::read_dir("/usr/lib/postgresql")
             .map(|d| {
                 d.filter_map(Result::ok)
@@ -347,23 +351,29 @@ fn test(args: &[String]) -> Result<()> {
         "qemu",
         || {
             apt_install(&[("qemu-system-arm", "qemu-system-arm")])?;
-            if qemu::qemu_available() {
-                Ok(())
-            } else {
+            if !qemu::qemu_available() {
                 bail!("qemu-system-arm does not run")
             }
+            // pymodbus reads the board's Modbus RTU side.
+            ensure_venv()
         },
         || {
-            run(cargo().args([
-                "test",
-                "-p",
-                "fringe-tests",
-                "--test",
-                "qemu",
-                "--",
-                "--ignored",
-                "--nocapture",
-            ]))
+            run(cargo()
+                .args([
+                    "test",
+                    "-p",
+                    "fringe-tests",
+                    "--test",
+                    "qemu",
+                    "--test",
+                    "modbus_rtu",
+                    "--",
+                    "--ignored",
+                    "--nocapture",
+                    "--test-threads",
+                    "1",
+                ])
+                .env("FRINGE_PYTHON", venv_python()))
         },
     )?;
     let line = verdict(&ledger).map_err(anyhow::Error::msg)?;
@@ -526,19 +536,22 @@ fn firmware() -> Result<PathBuf> {
     Ok(elf)
 }
 
-/// `cargo xtask qemu`: boots the firmware with UART0 on a pty and waits
-/// until QEMU ends (Ctrl-C).
+/// `cargo xtask qemu`: boots the firmware with UART0 and UART1 on ptys and
+/// waits until QEMU ends (Ctrl-C).
 fn qemu_run() -> Result<()> {
     let elf = firmware()?;
     let mut q = qemu::Qemu::boot(&elf).map_err(anyhow::Error::msg)?;
     println!("{}", q.pty.display());
+    println!("{}", q.modbus_pty.display());
     eprintln!(
         "xtask: firmware running under QEMU (mps2-an386, -icount shift=0); UART0 is {}\n\
          xtask: talk to it with:  fringe monitor --port {}\n\
+         xtask: UART1 (Modbus RTU, unit 1) is {}\n\
          xtask: Ctrl-C stops QEMU. The emulated flash lives in RAM: it keeps its\n\
          xtask: contents across a reset of the board, not across quitting QEMU.",
         q.pty.display(),
-        q.pty.display()
+        q.pty.display(),
+        q.modbus_pty.display()
     );
     while q.running() {
         std::thread::sleep(std::time::Duration::from_millis(200));
@@ -629,7 +642,93 @@ fn size() -> Result<()> {
             "  cost   {c:>7} instructions for the first reading, which includes the reference check"
         );
     }
+    let m = modbus_report(&elf)?;
+    println!(
+        "  modbus {:>7} instructions to answer a 25-register read (end of frame to the answer's CRC; {} reads)",
+        m.cost, m.reads
+    );
+    println!(
+        "  modbus frame gap to answer: {} / {} / {} instructions (min / median / max over the reads); \
+         one character at 19200 baud is 573 us: {} instructions of QEMU's virtual time, \
+         14 323 cycles of a 25 MHz core, 97 396 of a 170 MHz core",
+        m.latency[0], m.latency[1], m.latency[2], 573_000
+    );
+    println!(
+        "  modbus of that, the firmware's own work (the simulated front end's sample computation \
+         left out; a bound): {} / {} / {} instructions",
+        m.own[0], m.own[1], m.own[2]
+    );
     Ok(())
+}
+
+/// What the board's Modbus side measured.
+struct ModbusReport {
+    reads: usize,
+    /// Instructions the last answer cost.
+    cost: u32,
+    /// Frame gap to answer, instructions: min, median, max.
+    latency: [u32; 3],
+    /// Firmware work an answer waited for (front end excluded), bound:
+    /// min, median, max.
+    own: [u32; 3],
+}
+
+/// Sends 25-register reads to the board's UART1 and reads what each cost
+/// from its `FRINGE_MODBUS` figures (QEMU's monitor).
+fn modbus_report(elf: &Path) -> Result<ModbusReport> {
+    use std::io::{Read, Write};
+    use std::time::{Duration, Instant};
+    let q = qemu::Qemu::boot(elf).map_err(anyhow::Error::msg)?;
+    let path = q.modbus_pty.to_str().context("pty path not UTF-8")?;
+    let mut port = serialport::new(path, 19_200)
+        .timeout(Duration::from_millis(50))
+        .open_native()
+        .with_context(|| format!("open {path}"))?;
+    let body = [0x01u8, 0x04, 0x00, 0x00, 0x00, 25];
+    let crc = crc::Crc::<u16>::new(&crc::CRC_16_MODBUS).checksum(&body);
+    let mut frame = body.to_vec();
+    frame.extend_from_slice(&crc.to_le_bytes());
+    let mut latencies = Vec::new();
+    let mut own = Vec::new();
+    let mut cost = 0;
+    let mut answered = 0;
+    let deadline = Instant::now() + Duration::from_secs(120);
+    while answered < 15 {
+        if Instant::now() > deadline {
+            bail!("only {answered} Modbus answers from the board in 120 s");
+        }
+        let before = q.modbus_figures(elf).map_err(anyhow::Error::msg)?.sent;
+        port.write_all(&frame)?;
+        let mut got = Vec::new();
+        let until = Instant::now() + Duration::from_secs(1);
+        let mut buf = [0u8; 64];
+        while got.len() < 55 && Instant::now() < until {
+            match port.read(&mut buf) {
+                Ok(n) => got.extend_from_slice(&buf[..n]),
+                Err(e) if e.kind() == std::io::ErrorKind::TimedOut => {}
+                Err(e) => return Err(e.into()),
+            }
+        }
+        let f = q.modbus_figures(elf).map_err(anyhow::Error::msg)?;
+        // An unanswered request (QEMU notices a new pty client only about
+        // once a second, or split it) is sent again.
+        if got.len() == 55 && f.sent == before + 1 {
+            answered += 1;
+            cost = f.cost;
+            latencies.push(f.latency);
+            own.push(f.own_wait);
+        }
+    }
+    let spread = |mut v: Vec<u32>| {
+        v.sort_unstable();
+        [v[0], v[v.len() / 2], v[v.len() - 1]]
+    };
+    Ok(ModbusReport {
+        reads: latencies.len(),
+        cost,
+        latency: spread(latencies),
+        own: spread(own),
+    })
 }
 
 fn main() -> Result<()> {
@@ -643,7 +742,7 @@ fn main() -> Result<()> {
             eprintln!("usage: cargo xtask <test | firmware | qemu | size>");
             eprintln!("  test      every test (installs what it needs; --skip qemu,fuzz,python leaves parts out)");
             eprintln!("  firmware  build the QEMU board binary (firmware/boards/qemu-mps2)");
-            eprintln!("  qemu      boot it under QEMU with UART0 on a pty and print the path");
+            eprintln!("  qemu      boot it under QEMU with UART0 and UART1 (Modbus) on ptys and print both");
             eprintln!("  size      flash/RAM of both boards' ELFs; stack high-water and cost per reading (QEMU)");
             bail!("unknown or missing xtask command")
         }

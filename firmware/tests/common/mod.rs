@@ -1,10 +1,13 @@
 //! Shared test bench: a simulated device on a RAM flash, driven tick by tick.
 #![allow(dead_code)]
 
+use fringe_calibration::cell::two_point_calibration;
+use fringe_calibration::real::Cx;
 use fringe_firmware::hal::NullOutput;
 use fringe_firmware::protocol::auth::sign;
 use fringe_firmware::protocol::frame::encode_vec;
 use fringe_firmware::protocol::*;
+use fringe_firmware::sim::Material;
 use fringe_firmware::{Device, DeviceConfig, RamFlash, Scenario, SimFrontend};
 
 pub const FLASH: usize = 64 * 1024;
@@ -207,4 +210,62 @@ pub fn stored_cell(b: &mut Bench) -> Option<CellCal> {
         Response::CellCal(c) => c,
         other => panic!("{other:?}"),
     }
+}
+
+/// Air at 20 C, ITU-R P.453 refractivity (docs/REFERENCES.md section 2), as the simulator uses.
+pub const EPS_AIR: f32 = 1.000_54;
+/// Ethanol at 20 C, Gregory and Clarke, NPL Report MAT 23 (2012): 25.16.
+pub const EPS_ETHANOL_20C: f32 = 25.16;
+
+pub fn mean_admittance(b: &mut Bench, n: usize) -> [Cx<f32>; 2] {
+    let mut acc = [Cx::new(0.0f64, 0.0); 2];
+    for _ in 0..n {
+        let r = b.measure();
+        for (a, c) in acc.iter_mut().zip(r.channels.iter()) {
+            a.re += f64::from(c.g_s);
+            a.im += f64::from(c.b_s);
+        }
+    }
+    acc.map(|a| Cx::new((a.re / n as f64) as f32, (a.im / n as f64) as f32))
+}
+
+/// Calibrates the cell on the bench (air, then ethanol; `readings` averaged
+/// for each) and writes it.
+pub fn bench_calibrate(b: &mut Bench, readings: usize) -> CellCal {
+    let freqs = [1.0e6f32, 20.0e6];
+    b.dev.frontend_mut().set_scenario(Scenario {
+        material: Material::Air,
+        ..Scenario::default()
+    });
+    let y_air = mean_admittance(b, readings);
+    b.dev.frontend_mut().set_scenario(Scenario {
+        material: Material::Liquid {
+            eps_re: EPS_ETHANOL_20C,
+            eps_im: 0.4,
+        },
+        ..Scenario::default()
+    });
+    let y_liq = mean_admittance(b, readings);
+    let baseline = match b.ok(Request::ReferenceCheck) {
+        Response::RefCheck(r) => r.ratio.iter().sum::<f32>() / 2.0,
+        other => panic!("{other:?}"),
+    };
+    let mut points = [CellPoint::default(); 2];
+    for (k, p) in points.iter_mut().enumerate() {
+        let c = two_point_calibration(freqs[k], y_air[k], EPS_AIR, y_liq[k], EPS_ETHANOL_20C)
+            .expect("cell calibration");
+        *p = CellPoint {
+            freq_hz: freqs[k],
+            stray_pf: c.stray_pf,
+            cell_pf: c.cell_pf,
+            g_offset_s: c.g_offset_s,
+        };
+    }
+    let cal = CellCal {
+        points,
+        reference_ratio: baseline,
+        made_s: 1_764_000_000,
+    };
+    assert_eq!(b.ok(Request::WriteCellCal(cal)), Response::Ack);
+    cal
 }

@@ -8,6 +8,7 @@
 //! - [`sparkplug`], [`outbox`], [`mqtt`]: readings and alarms to the plant's
 //!   MQTT broker as Sparkplug B (or plain JSON), QoS 1, with a
 //!   store-and-forward buffer on disk.
+//! - [`web`]: the read-only live page for the control room.
 //!
 //! Time comes in as [`std::time::Instant`] arguments where ages matter, so
 //! tests drive it; nothing here prints.
@@ -19,3 +20,4 @@ pub mod modbus;
 pub mod mqtt;
 pub mod outbox;
 pub mod sparkplug;
+pub mod web;

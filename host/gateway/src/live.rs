@@ -1,11 +1,44 @@
 //! The latest reading of every device, keyed by its Modbus unit id.
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, VecDeque};
 use std::sync::RwLock;
 use std::time::{Duration, Instant};
 
 use fringe_protocol::Reading;
 use fringe_registers::Snapshot;
+
+/// Points of trend history kept per device (at one point per
+/// [`LiveTable::history_step_ms`]: 1440 points cover 4 h at 10 s).
+pub const HISTORY_POINTS: usize = 1440;
+/// Drift alarms kept per device (the newest).
+pub const ALARMS_KEPT: usize = 20;
+
+/// One point of a device's trend.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct Point {
+    /// Time of the reading, ms since the Unix epoch (the device's, re-based
+    /// when its clock was unset; else the gateway's receive time).
+    pub time_ms: u64,
+    /// Moisture, % (None: no valid value).
+    pub moisture_pct: Option<f32>,
+    /// Its standard uncertainty, %.
+    pub uncertainty_pct: f32,
+    /// Product temperature, C.
+    pub temperature_c: f32,
+    /// Quality flag bits.
+    pub flags: u16,
+}
+
+/// A drift alarm as the page shows it.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct AlarmNote {
+    /// When it was raised, ms since the Unix epoch.
+    pub time_ms: u64,
+    /// What drifted, since when, by how much.
+    pub text: String,
+    /// What to do.
+    pub advice: String,
+}
 
 /// What is known of one device.
 #[derive(Debug, Clone)]
@@ -13,6 +46,29 @@ struct Entry {
     serial: String,
     reading: Option<(Reading, Instant)>,
     connected: bool,
+    tag: String,
+    history: VecDeque<Point>,
+    alarms: VecDeque<AlarmNote>,
+    calibration: Option<String>,
+}
+
+/// Everything known of one device, for the live page.
+#[derive(Debug, Clone)]
+pub struct UnitView {
+    /// Modbus unit id.
+    pub unit: u8,
+    /// Device serial.
+    pub serial: String,
+    /// The device's tag (plant name), if set.
+    pub tag: String,
+    /// The register-map view (latest reading, age, stale, connected).
+    pub snapshot: Snapshot,
+    /// Trend, oldest first.
+    pub history: Vec<Point>,
+    /// Drift alarms, oldest first.
+    pub alarms: Vec<AlarmNote>,
+    /// The product calibration in force, in words.
+    pub calibration: Option<String>,
 }
 
 /// The latest values of the gateway's devices.
@@ -22,6 +78,8 @@ struct Entry {
 #[derive(Debug)]
 pub struct LiveTable {
     stale_after: Duration,
+    /// Least time between two history points of a device, ms.
+    pub history_step_ms: u64,
     units: RwLock<BTreeMap<u8, Entry>>,
 }
 
@@ -30,6 +88,7 @@ impl LiveTable {
     pub fn new(stale_after: Duration) -> Self {
         Self {
             stale_after,
+            history_step_ms: 10_000,
             units: RwLock::new(BTreeMap::new()),
         }
     }
@@ -45,19 +104,98 @@ impl LiveTable {
                 serial: serial.to_string(),
                 reading: None,
                 connected: false,
+                tag: String::new(),
+                history: VecDeque::new(),
+                alarms: VecDeque::new(),
+                calibration: None,
             });
     }
 
     /// A new reading of unit `unit`, received at `at`. Ignored for a unit
     /// not registered, and when it is older (by sequence) than the one held.
     pub fn update(&self, unit: u8, reading: &Reading, at: Instant) {
+        self.update_at(unit, reading, at, reading.time_ms);
+    }
+
+    /// As [`LiveTable::update`], with the reading's wall-clock time
+    /// `time_ms` for the trend (a re-based time for a device whose clock
+    /// was unset).
+    pub fn update_at(&self, unit: u8, reading: &Reading, at: Instant, time_ms: u64) {
         let mut units = self.units.write().unwrap_or_else(|e| e.into_inner());
         if let Some(e) = units.get_mut(&unit) {
             if e.reading.as_ref().is_none_or(|(r, _)| r.seq <= reading.seq) {
                 e.reading = Some((*reading, at));
+                let due = e
+                    .history
+                    .back()
+                    .is_none_or(|p| time_ms >= p.time_ms + self.history_step_ms);
+                if due {
+                    if e.history.len() == HISTORY_POINTS {
+                        e.history.pop_front();
+                    }
+                    e.history.push_back(Point {
+                        time_ms,
+                        moisture_pct: reading.moisture_pct,
+                        uncertainty_pct: reading.uncertainty_pct,
+                        temperature_c: reading.temperature_c,
+                        flags: reading.flags.bits(),
+                    });
+                }
             }
             e.connected = true;
         }
+    }
+
+    /// Sets the device's tag (its plant name) as shown on the page.
+    pub fn set_tag(&self, unit: u8, tag: &str) {
+        let mut units = self.units.write().unwrap_or_else(|e| e.into_inner());
+        if let Some(e) = units.get_mut(&unit) {
+            e.tag = tag.to_string();
+        }
+    }
+
+    /// A new drift alarm of unit `unit`.
+    pub fn alarm(&self, unit: u8, note: AlarmNote) {
+        let mut units = self.units.write().unwrap_or_else(|e| e.into_inner());
+        if let Some(e) = units.get_mut(&unit) {
+            if e.alarms.len() == ALARMS_KEPT {
+                e.alarms.pop_front();
+            }
+            e.alarms.push_back(note);
+        }
+    }
+
+    /// The product calibration in force on unit `unit`, in words.
+    pub fn set_calibration(&self, unit: u8, text: Option<String>) {
+        let mut units = self.units.write().unwrap_or_else(|e| e.into_inner());
+        if let Some(e) = units.get_mut(&unit) {
+            e.calibration = text;
+        }
+    }
+
+    /// Everything about every unit at `now`, for the live page.
+    pub fn views(&self, now: Instant) -> Vec<UnitView> {
+        let units: Vec<u8> = {
+            let u = self.units.read().unwrap_or_else(|e| e.into_inner());
+            u.keys().copied().collect()
+        };
+        units
+            .into_iter()
+            .filter_map(|unit| {
+                let snapshot = self.snapshot(unit, now)?;
+                let u = self.units.read().unwrap_or_else(|e| e.into_inner());
+                let e = u.get(&unit)?;
+                Some(UnitView {
+                    unit,
+                    serial: e.serial.clone(),
+                    tag: e.tag.clone(),
+                    snapshot,
+                    history: e.history.iter().copied().collect(),
+                    alarms: e.alarms.iter().cloned().collect(),
+                    calibration: e.calibration.clone(),
+                })
+            })
+            .collect()
     }
 
     /// Whether the link to unit `unit` is up.

@@ -1,10 +1,12 @@
 //! Fringe firmware on QEMU's mps2-an386 (Cortex-M4F): the firmware core's
-//! [`Device`] with the simulated front end, on the board's UART0, SysTick
-//! clock and emulated NOR flash. Registers are touched only in this crate,
+//! [`Device`] with the simulated front end, on the board's UART0 (Fringe
+//! protocol), UART1 (Modbus RTU slave, [`RtuSlave`]), SysTick clock and
+//! emulated NOR flash. Registers are touched only in this crate,
 //! and only in its driver modules; `main` wires them to the core.
 //!
-//! Boot with `cargo xtask qemu` (UART0 on a pseudo-terminal) and talk to it
-//! with `fringe monitor --port <pty>`.
+//! Boot with `cargo xtask qemu` (UART0 and UART1 on pseudo-terminals) and
+//! talk to it with `fringe monitor --port <pty>`, or read its registers
+//! with a Modbus RTU master on the second pty (unit 1).
 #![no_std]
 #![no_main]
 
@@ -13,12 +15,15 @@ mod diag;
 mod norflash;
 mod panic;
 mod retained;
+mod rs485;
 mod uart;
 
 use core::mem::MaybeUninit;
+use core::sync::atomic::{AtomicU32, Ordering};
 
 use cortex_m_rt::{entry, exception};
 use fringe_firmware::hal::NullOutput;
+use fringe_firmware::modbus::{HalfDuplex, RtuSlave, SerialLine};
 use fringe_firmware::protocol::ResetCause;
 use fringe_firmware::sim::{Material, Scenario};
 use fringe_firmware::{Booted, Device, DeviceConfig, Diagnostics, SimFrontend};
@@ -32,6 +37,33 @@ pub const KEY: [u8; 32] = *b"fringe-qemu-mps2-demo-write-key!";
 const SIM_SEED: u64 = 0x00F1_A6E5;
 /// UART0 baud divisor: 25 MHz / 115200.
 const BAUDDIV: u32 = clock::CORE_HZ / 115_200;
+/// The Modbus line: the defaults (unit 1, 19200 baud, 8E1). QEMU's UART
+/// models neither baud rate nor parity; the timing follows the baud rate.
+const MODBUS: SerialLine = SerialLine::DEFAULT;
+/// Core cycles per microsecond.
+const CYCLES_PER_US: u64 = clock::CORE_HZ as u64 / 1_000_000;
+
+/// What the Modbus side did, read by `cargo xtask size` and the Modbus end
+/// to end test through QEMU's monitor at this symbol's address (u32 words):
+///
+/// ```text
+/// 0 answers sent          1 instructions the last answer cost (end of
+/// 2 instructions from the last answered frame's gap     frame, CRC, map,
+///   (t3.5 after its last byte) to its first byte sent   answer, its CRC)
+/// 3 the largest such delay
+/// 4.. the slave's counters: frames, bad CRC, damaged, other unit,
+///     broadcast, answered with data, exceptions
+/// 11 instructions since the service before the last answer, less the
+///    simulated front end's own (what computing ADC samples costs here and
+///    the ADC does on a real board): a bound on the firmware's work an
+///    answer waits for, its own cost included
+/// 12 the largest such bound
+/// ```
+///
+/// Instructions under `-icount shift=0` (40 per core cycle).
+#[no_mangle]
+#[used]
+pub static FRINGE_MODBUS: [AtomicU32; 13] = [const { AtomicU32::new(0) }; 13];
 
 /// The world in front of the simulated window: a product of fixed
 /// permittivity at 22 C (invented; "Harrowgate Mill line 2 dryer outlet").
@@ -55,13 +87,27 @@ fn main() -> ! {
         cortex_m::Peripherals::take().unwrap_or_else(|| panic!("core peripherals taken twice"));
     clock::init(cp.SYST);
     let mut uart = uart::Uart::init(BAUDDIV);
+    rs485::init(clock::CORE_HZ / MODBUS.baud);
     cortex_m::peripheral::NVIC::unpend(Irq::Uart0Rx);
-    // SAFETY: the handler (`DefaultHandler` below) only touches the RX ring.
-    unsafe { cortex_m::peripheral::NVIC::unmask(Irq::Uart0Rx) };
+    cortex_m::peripheral::NVIC::unpend(Irq::Uart1Rx);
+    // SAFETY: the handler (`DefaultHandler` below) only touches the RX rings.
+    unsafe {
+        cortex_m::peripheral::NVIC::unmask(Irq::Uart0Rx);
+        cortex_m::peripheral::NVIC::unmask(Irq::Uart1Rx);
+    }
 
     let mut watchdog = clock::SoftWatchdog;
     fringe_firmware::Watchdog::kick(&mut watchdog);
     let dev = start(cold, reset_cause);
+    let slave = SLAVE.take().write(match RtuSlave::new(&MODBUS) {
+        Ok(s) => s,
+        Err(e) => panic!("{e}"),
+    });
+    // Neither the UART nor the stand-in pin can fail on this board.
+    let mut port = match HalfDuplex::new(rs485::Tx, rs485::NoDriverEnable::default()) {
+        Ok(p) => p,
+        Err(e) => panic!("{e}"),
+    };
     dev.set_diagnostics(Diagnostics {
         stack_free_bytes: Some(diag::stack_free_bytes()),
         reading_cost: None,
@@ -71,7 +117,9 @@ fn main() -> ! {
     let mut work: u64 = 0;
     let mut last_cost: Option<u32> = None;
     let mut rx = [0u8; 64];
+    let mut mark = (clock::cycles(), 0);
     loop {
+        serve_modbus(slave, &mut port, dev, &mut mark);
         let n = uart.read_nonblocking(&mut rx);
         let readings = dev.readings_since_boot();
         let (fe_cycles, fe_calls) = {
@@ -106,11 +154,77 @@ fn main() -> ! {
         if dev.reboot_requested() {
             retained::reset(retained::Cause::Requested);
         }
-        if n == 0 && !uart.rx_waiting() {
-            // Nothing to do until the next tick or byte.
+        serve_modbus(slave, &mut port, dev, &mut mark);
+        // Nothing to do until the next tick or byte. Not while a Modbus
+        // frame is in progress: sleeping would let virtual time jump ahead
+        // (`-icount sleep=off`) between two bytes of one frame.
+        if n == 0
+            && !uart.rx_waiting()
+            && !rs485::rx_waiting()
+            && slave.frame_deadline_us().is_none()
+        {
             cortex_m::asm::wfi();
         }
     }
+}
+
+/// Hands the Modbus bytes received to the slave and sends its answer, if
+/// any, with the registers of the device at this moment.
+/// `mark` is the core cycles and the front end's cycles at the end of the
+/// previous call.
+fn serve_modbus(
+    slave: &mut RtuSlave,
+    port: &mut HalfDuplex<rs485::Tx, rs485::NoDriverEnable>,
+    dev: &mut BoardDevice,
+    mark: &mut (u64, u64),
+) {
+    let fe_now = dev.frontend_mut().cycles;
+    let (mark_cycles, mark_fe) = core::mem::replace(mark, (clock::cycles(), fe_now));
+    let now_us = clock::cycles() / CYCLES_PER_US;
+    while let Some(rx) = rs485::take(now_us) {
+        match rx {
+            rs485::Rx::Byte(at_us, b) => slave.receive(at_us, b),
+            rs485::Rx::Lost => slave.line_error(now_us),
+        }
+    }
+    let c = slave.counters();
+    let b = &FRINGE_MODBUS;
+    for (i, v) in [
+        c.frames,
+        c.bad_crc,
+        c.damaged,
+        c.other_unit,
+        c.broadcast,
+        c.answered,
+        c.exceptions,
+    ]
+    .into_iter()
+    .enumerate()
+    {
+        b[4 + i].store(v, Ordering::Relaxed);
+    }
+    let t0 = clock::cycles();
+    let gap_ends_us = slave.frame_deadline_us();
+    let now_us = t0 / CYCLES_PER_US;
+    let Some(answer) = slave.poll(now_us, || dev.modbus_registers(now_us / 1000)) else {
+        return;
+    };
+    let t1 = clock::cycles();
+    let instructions =
+        |cycles: u64| u32::try_from(clock::cycles_to_instructions(cycles)).unwrap_or(u32::MAX);
+    b[0].fetch_add(1, Ordering::Relaxed);
+    b[1].store(instructions(t1 - t0), Ordering::Relaxed);
+    if let Some(gap) = gap_ends_us {
+        let late = instructions(t1.saturating_sub(gap * CYCLES_PER_US));
+        b[2].store(late, Ordering::Relaxed);
+        b[3].fetch_max(late, Ordering::Relaxed);
+    }
+    let own = (t1 - mark_cycles).saturating_sub(fe_now - mark_fe);
+    b[11].store(instructions(own), Ordering::Relaxed);
+    b[12].fetch_max(instructions(own), Ordering::Relaxed);
+    // Infallible here (see `rs485`); a real board counts a failure.
+    let _ = port.send(answer);
+    *mark = (clock::cycles(), fe_now);
 }
 
 /// Boots the device into its static. Out of line, so that what boot holds
@@ -125,6 +239,9 @@ fn main() -> ! {
 fn start(cold: bool, reset_cause: ResetCause) -> &'static mut BoardDevice {
     let mut config = DeviceConfig::new(SERIAL, KEY);
     config.simulated = true;
+    // One record per poll: the Modbus slave is served between records, so
+    // an answer waits for one record's work, not four.
+    config.steps_per_poll = 1;
     let frontend = diag::Timed::new(SimFrontend::new(SIM_SEED, scenario()));
     let flash = norflash::RetainedFlash::take(cold);
     let booted = match Booted::mount(flash, config, reset_cause) {
@@ -152,6 +269,8 @@ fn build(
 type BoardDevice = Device<diag::Timed<SimFrontend>, norflash::RetainedFlash, NullOutput>;
 
 static DEVICE: Once<BoardDevice> = Once::new();
+/// The Modbus slave (about 800 bytes, kept off the stack).
+static SLAVE: Once<RtuSlave> = Once::new();
 
 /// A static slot taken once at boot (for the device), handed out `&'static mut`.
 struct Once<T> {
@@ -187,6 +306,7 @@ impl<T> Once<T> {
 #[derive(Clone, Copy)]
 enum Irq {
     Uart0Rx = uart::UART0_RX_IRQ as isize,
+    Uart1Rx = rs485::UART1_RX_IRQ as isize,
 }
 
 // SAFETY: the numbers are the board's interrupt lines (README.md of this crate).
@@ -207,5 +327,7 @@ fn SysTick() {
 unsafe fn DefaultHandler(irqn: i16) {
     if irqn == uart::UART0_RX_IRQ as i16 {
         uart::on_rx_interrupt();
+    } else if irqn == rs485::UART1_RX_IRQ as i16 {
+        rs485::on_rx_interrupt();
     }
 }

@@ -1,9 +1,9 @@
 //! Fringe firmware on an STM32G474RE with the real front end: the
 //! firmware core's [`Device`] on the drivers of `fringe-drivers`
 //! (AD9959, ADS131M02, MAX31865, DAC161S997), USART1 for the Fringe
-//! protocol, USART2 on RS-485 (reserved for Modbus RTU, driver enable
-//! low: receiving), bank 2 of the internal flash as the device's NOR
-//! flash, the independent watchdog, and the RTC.
+//! protocol, USART2 on RS-485 for the Modbus RTU slave (driver enable on
+//! PA1), bank 2 of the internal flash as the device's NOR flash, the
+//! independent watchdog, and the RTC.
 //!
 //! **Not run on hardware.** It builds and passes clippy; nothing here has
 //! been on a board (README.md: pin table, bring-up checklist). Registers
@@ -14,6 +14,7 @@
 
 mod provision;
 mod retained;
+mod rs485;
 
 use core::cell::RefCell;
 use core::mem::MaybeUninit;
@@ -38,17 +39,20 @@ use fringe_drivers::ads131m02::Ads131m02;
 use fringe_drivers::dac161s997::Dac161s997;
 use fringe_drivers::frontend::{AnalogFrontend, LoopOutput, DESIGN};
 use fringe_drivers::max31865::Max31865;
+use fringe_firmware::modbus::{HalfDuplex, Parity, RtuSlave, SerialLine};
 use fringe_firmware::protocol::ResetCause;
 use fringe_firmware::{Booted, CurrentOutput, Device, DeviceConfig};
 
 bind_interrupts!(struct Irqs {
     USART1 => usart::BufferedInterruptHandler<peripherals::USART1>;
+    USART2 => rs485::RxInterrupt;
 });
 
 /// Fringe protocol baud rate (as the host's default).
 const PROTOCOL_BAUD: u32 = 115_200;
-/// Modbus RTU default (Modbus over Serial Line V1.02: 19200 baud, even parity).
-const MODBUS_BAUD: u32 = 19_200;
+/// The Modbus line: the defaults (unit 1, 19200 baud, even parity; Modbus
+/// over Serial Line V1.02).
+const MODBUS: SerialLine = SerialLine::DEFAULT;
 /// Watchdog timeout, microseconds: a poll runs at most 4 records of 8 ms
 /// each plus a flash page erase (about 20 ms on this part, from memory).
 const WATCHDOG_US: u32 = 2_000_000;
@@ -86,13 +90,9 @@ impl fringe_firmware::Watchdog for Iwdg {
     }
 }
 
-/// The RS-485 port kept for Modbus RTU (issue 15, part 1): USART2 and
-/// its driver-enable pin, held low (receiver on, driver off) until used.
-#[allow(dead_code)] // wired, not used yet: Modbus RTU comes with part 1
-struct Rs485 {
-    uart: Uart<'static, BlockingMode>,
-    de: Output<'static>,
-}
+/// The RS-485 transmitter: USART2's transmit side and the transceiver's
+/// driver enable (PA1, high = driving the bus).
+type Rs485 = HalfDuplex<usart::UartTx<'static, BlockingMode>, Output<'static>>;
 
 fn spi_config(mode: spi::Mode, hz: u32) -> spi::Config {
     let mut c = spi::Config::default();
@@ -148,18 +148,41 @@ fn main() -> ! {
         Err(_) => panic!("USART1 configuration refused"),
     };
 
-    // RS-485 on USART2, reserved: 19200 8E1, driver enable low.
+    // RS-485 on USART2: the Modbus line (8 data bits and parity are 9
+    // bits in the USART's word; without parity, two stop bits).
     let mut mcfg = usart::Config::default();
-    mcfg.baudrate = MODBUS_BAUD;
-    mcfg.parity = usart::Parity::ParityEven;
-    mcfg.data_bits = usart::DataBits::DataBits9; // 8 data bits + parity
-    let _rs485 = match Uart::new_blocking(p.USART2, p.PA3, p.PA2, mcfg) {
-        Ok(u) => Rs485 {
-            uart: u,
-            de: Output::new(p.PA1, Level::Low, Speed::Low),
-        },
+    mcfg.baudrate = MODBUS.baud;
+    match MODBUS.parity {
+        Parity::Even | Parity::Odd => {
+            mcfg.parity = if MODBUS.parity == Parity::Even {
+                usart::Parity::ParityEven
+            } else {
+                usart::Parity::ParityOdd
+            };
+            mcfg.data_bits = usart::DataBits::DataBits9;
+        }
+        Parity::None => {
+            mcfg.parity = usart::Parity::ParityNone;
+            mcfg.data_bits = usart::DataBits::DataBits8;
+            mcfg.stop_bits = usart::StopBits::STOP2;
+        }
+    }
+    let (modbus_tx, _modbus_rx) = match Uart::new_blocking(p.USART2, p.PA3, p.PA2, mcfg) {
+        Ok(u) => u.split(),
         Err(_) => panic!("USART2 configuration refused"),
     };
+    let mut rs485: Rs485 =
+        match HalfDuplex::new(modbus_tx, Output::new(p.PA1, Level::Low, Speed::Low)) {
+            Ok(h) => h,
+            Err(_) => panic!("RS-485 driver enable"),
+        };
+    let slave = singleton!(
+        RtuSlave = match RtuSlave::new(&MODBUS) {
+            Ok(s) => s,
+            Err(e) => panic!("{e}"),
+        }
+    );
+    rs485::enable_rx_interrupt();
 
     // Flash: bank 2 as the device's NOR flash; its last page holds the
     // provisioning record (serial and write key, written at production).
@@ -220,6 +243,7 @@ fn main() -> ! {
     let dev = start(serial.as_str(), key, storage, frontend, output, reset_cause);
     let mut rx = [0u8; 64];
     loop {
+        serve_modbus(slave, &mut rs485, dev);
         let n = read_available(&mut uart, &mut rx);
         dev.poll_watched(
             Instant::now().as_millis(),
@@ -232,6 +256,24 @@ fn main() -> ! {
         if dev.reboot_requested() {
             retained::reset(&rtc, retained::Cause::Requested);
         }
+        serve_modbus(slave, &mut rs485, dev);
+    }
+}
+
+/// Hands the Modbus bytes received to the slave and sends its answer, if
+/// any, with the device's registers at this moment. A failed send is
+/// dropped: the master repeats its request.
+fn serve_modbus(slave: &mut RtuSlave, port: &mut Rs485, dev: &BoardDevice) {
+    let now_us = Instant::now().as_micros();
+    while let Some(rx) = rs485::take(now_us) {
+        match rx {
+            rs485::Rx::Byte(at_us, b) => slave.receive(at_us, b),
+            rs485::Rx::Error(at_us) => slave.line_error(at_us),
+        }
+    }
+    let now_us = Instant::now().as_micros();
+    if let Some(answer) = slave.poll(now_us, || dev.modbus_registers(now_us / 1000)) {
+        let _ = port.send(answer);
     }
 }
 
@@ -275,7 +317,9 @@ fn start(
     output: Loop,
     reset_cause: ResetCause,
 ) -> &'static mut BoardDevice {
-    let config = DeviceConfig::new(serial, key);
+    let mut config = DeviceConfig::new(serial, key);
+    // One record per poll: the Modbus slave is served between records.
+    config.steps_per_poll = 1;
     let booted = match Booted::mount(storage, config, reset_cause) {
         Ok(b) => b,
         Err(e) => panic!("boot failed: {e}"),

@@ -1,0 +1,140 @@
+// Fringe live page: polls /api/site every 2 s and redraws the cards.
+"use strict";
+const NS = "http://www.w3.org/2000/svg";
+const fmt2 = (x) => (x === null || x === undefined ? "" : Number(x).toFixed(2));
+const localTime = (ms) => new Date(ms).toLocaleTimeString([], { hour: "2-digit", minute: "2-digit" });
+const localDateTime = (ms) => new Date(ms).toLocaleString([], { dateStyle: "short", timeStyle: "medium" });
+
+function el(tag, cls, text) {
+  const e = document.createElement(tag);
+  if (cls) e.className = cls;
+  if (text !== undefined) e.textContent = text;
+  return e;
+}
+
+function svg(tag, attrs) {
+  const e = document.createElementNS(NS, tag);
+  for (const [k, v] of Object.entries(attrs)) e.setAttribute(k, v);
+  return e;
+}
+
+// Trend of the last hours: moisture with its +/-2u band, flagged points,
+// gaps where there is no valid value; x on the local clock.
+function trend(history) {
+  const W = 400, H = 120, L = 34, B = 16;
+  const s = svg("svg", { class: "trend", viewBox: `0 0 ${W} ${H}`, role: "img" });
+  const pts = history.filter((p) => p[1] !== null);
+  if (pts.length < 2) {
+    const t = svg("text", { x: L, y: H / 2 });
+    t.textContent = history.length === 0
+      ? "no trend yet"
+      : pts.length === 0 ? "no valid value in the trend so far" : "the trend starts with the next readings";
+    s.appendChild(t);
+    return s;
+  }
+  const t0 = history[0][0], t1 = history[history.length - 1][0];
+  let lo = Infinity, hi = -Infinity;
+  for (const p of pts) { lo = Math.min(lo, p[1] - 2 * p[2]); hi = Math.max(hi, p[1] + 2 * p[2]); }
+  if (hi - lo < 0.5) { const m = (hi + lo) / 2; lo = m - 0.25; hi = m + 0.25; }
+  const x = (t) => L + ((t - t0) / Math.max(1, t1 - t0)) * (W - L - 4);
+  const y = (v) => H - B - ((v - lo) / (hi - lo)) * (H - B - 6);
+  s.appendChild(svg("line", { class: "axis", x1: L, y1: H - B, x2: W, y2: H - B }));
+  for (const v of [lo, hi]) {
+    const t = svg("text", { x: 0, y: y(v) + 3 });
+    t.textContent = v.toFixed(1) + " %";
+    s.appendChild(t);
+  }
+  for (const tt of [t0, t1]) {
+    const t = svg("text", { x: Math.min(x(tt), W - 40), y: H - 3 });
+    t.textContent = localTime(tt);
+    s.appendChild(t);
+  }
+  // Runs of valid points (a missing value breaks the line).
+  let run = [];
+  const flush = () => {
+    if (run.length > 1) {
+      const up = run.map((p) => `${x(p[0])},${y(p[1] + 2 * p[2])}`);
+      const dn = run.slice().reverse().map((p) => `${x(p[0])},${y(p[1] - 2 * p[2])}`);
+      s.appendChild(svg("polygon", { class: "band", points: up.concat(dn).join(" ") }));
+      s.appendChild(svg("polyline", { class: "line", points: run.map((p) => `${x(p[0])},${y(p[1])}`).join(" ") }));
+    }
+    run = [];
+  };
+  for (const p of history) { if (p[1] === null) flush(); else run.push(p); }
+  flush();
+  for (const p of pts) if (p[3] !== 0) s.appendChild(svg("circle", { class: "flagged", cx: x(p[0]), cy: y(p[1]), r: 2.2 }));
+  return s;
+}
+
+function card(u) {
+  const noValue = (u.status & 1) !== 0;
+  const failure = (u.status & (4 | 256)) !== 0;
+  const attention = (u.status & (8 | 16 | 32 | 2)) !== 0;
+  const c = el("section", "card" + (noValue ? " none" : failure ? " bad" : attention ? " warn" : ""));
+  c.dataset.serial = u.serial;
+  const h = el("h2", null, u.tag || u.serial);
+  h.appendChild(el("span", "serial", "  " + u.serial + " (unit " + u.unit + ")"));
+  c.appendChild(h);
+  const v = el("p", "value");
+  v.dataset.role = "moisture";
+  if (noValue) {
+    v.textContent = "no value";
+  } else {
+    v.textContent = fmt2(u.moisture_pct) + " %";
+    v.appendChild(el("span", "unc", " \u00b1 " + fmt2(2 * u.uncertainty_pct) + " (95 %)"));
+  }
+  c.appendChild(v);
+  const meta = [];
+  if (u.temperature_c !== null) meta.push(fmt2(u.temperature_c) + " \u00b0C");
+  if (u.time_ms !== null) meta.push("reading " + u.boot + "." + u.counter + " at " + localDateTime(u.time_ms));
+  if (u.age_s !== null) meta.push(u.age_s + " s ago");
+  c.appendChild(el("p", "meta", meta.join(" \u00b7 ")));
+  const st = el("ul", "status");
+  for (const w of u.status_words) {
+    const li = el("li", /failure|connected/.test(w) ? "bad" : /NE 107|stale/.test(w) ? "warn" : null, w);
+    st.appendChild(li);
+  }
+  if (!u.status_words.length) st.appendChild(el("li", null, "in order"));
+  c.appendChild(st);
+  if (u.flags.length) {
+    const fl = el("ul", "flags");
+    for (const f of u.flags) {
+      const li = el("li");
+      li.appendChild(el("b", null, f.name + ": "));
+      li.appendChild(document.createTextNode(f.meaning + ". " + f.action + "."));
+      fl.appendChild(li);
+    }
+    c.appendChild(fl);
+  }
+  c.appendChild(trend(u.history));
+  if (u.alarms.length) {
+    const al = el("ul", "alarms");
+    for (const a of u.alarms.slice(-3).reverse()) {
+      const li = el("li");
+      li.appendChild(el("b", null, "Drift alarm " + localDateTime(a.time_ms) + ": "));
+      li.appendChild(document.createTextNode(a.text + " " + a.advice));
+      al.appendChild(li);
+    }
+    c.appendChild(al);
+  }
+  c.appendChild(el("p", "cal", "Calibration in force: " + (u.calibration || "none reported")));
+  return c;
+}
+
+async function refresh() {
+  try {
+    const r = await fetch("/api/site", { cache: "no-store" });
+    const site = await r.json();
+    document.getElementById("site").textContent = site.site;
+    document.title = site.site + ": live moisture";
+    const main = document.getElementById("units");
+    main.replaceChildren(...(site.units.length ? site.units.map(card) : [el("p", "note", "No devices in this site.")]));
+    document.getElementById("updated").textContent = "Updated " + new Date().toLocaleTimeString() + ".";
+  } catch (e) {
+    document.getElementById("updated").textContent = "The gateway does not answer (" + e + "); retrying.";
+  }
+}
+
+setInterval(() => { document.getElementById("clock").textContent = new Date().toLocaleString(); }, 1000);
+refresh();
+setInterval(refresh, 2000);

@@ -1,0 +1,64 @@
+"""Opens the gateway's live page in headless Chromium (Debian packages
+chromium and chromium-driver) through Selenium, as a control-room screen
+would, and checks it.
+
+Usage: python live_page.py URL SERIAL FIRST SECOND SCREENSHOT.png
+Waits until the card of device SERIAL shows moisture FIRST (e.g. "14.37 %"),
+prints {"event": "first"} and waits (up to 60 s) for SECOND without the
+page being reloaded (a marker set in the page must survive), saves a
+screenshot and prints one JSON line with what it saw.
+"""
+
+import json
+import sys
+import time
+
+from PIL import Image
+from selenium import webdriver
+from selenium.webdriver.chrome.service import Service
+from selenium.webdriver.common.by import By
+
+
+def moisture_text(driver, serial):
+    cards = driver.find_elements(By.CSS_SELECTOR, f'section.card[data-serial="{serial}"] [data-role="moisture"]')
+    return cards[0].text if cards else None
+
+
+def wait_for(driver, serial, text, limit):
+    t0 = time.time()
+    while time.time() - t0 < limit:
+        got = moisture_text(driver, serial)
+        if got is not None and got.startswith(text):
+            return got
+        time.sleep(0.1)
+    raise SystemExit(f"after {limit} s the card of {serial} shows {moisture_text(driver, serial)!r}, not {text!r}")
+
+
+def main(url, serial, first, second, shot):
+    opts = webdriver.ChromeOptions()
+    opts.binary_location = "/usr/bin/chromium"
+    for a in ("--headless=new", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+              "--disable-component-update", "--disable-sync", "--no-first-run", "--window-size=1920,1080"):
+        opts.add_argument(a)
+    driver = webdriver.Chrome(service=Service("/usr/bin/chromedriver"), options=opts)
+    try:
+        driver.get(url)
+        wait_for(driver, serial, first, 60)
+        driver.execute_script("window.__fringeMarker = 'same page';")
+        print(json.dumps({"event": "first"}), flush=True)
+        got = wait_for(driver, serial, second, 60)
+        marker = driver.execute_script("return window.__fringeMarker || null;")
+        title = driver.title
+        cards = len(driver.find_elements(By.CSS_SELECTOR, "section.card"))
+        flags = [e.text for e in driver.find_elements(By.CSS_SELECTOR, ".flags li")]
+        driver.save_screenshot(shot)
+        img = Image.open(shot).convert("RGB")
+        colours = len(img.resize((192, 108)).getcolors(maxcolors=1 << 16) or [])
+        print(json.dumps({"event": "second", "text": got, "marker": marker, "title": title, "cards": cards,
+                          "flags": flags, "width": img.width, "height": img.height, "colours": colours}), flush=True)
+    finally:
+        driver.quit()
+
+
+if __name__ == "__main__":
+    main(*sys.argv[1:6])
