@@ -387,3 +387,113 @@ fn one_line_file_serves_every_command_and_the_help_names_it() {
     assert!(o.stdout.contains(&line_s), "{}", o.stdout);
     assert!(!t.path().join("missing.db").exists());
 }
+
+/// Regression: `audit verify --db` reported "no change" and exit 0 on a
+/// database with a damaged index page, where `drift` and `report` rightly
+/// exited 23. Every command that reads the database now stops with 23 and
+/// the same advice, and writes nothing.
+#[test]
+fn a_damaged_index_page_stops_every_reading_command_with_23() {
+    use fringe_host::store::{Source, Store};
+    use fringe_protocol::{CalId, ChannelValue, Flags, Reading, Seq};
+    let t = users_folder();
+    let db = t.path().join("line2.db");
+    let mut s = Store::open(&db).unwrap();
+    let ch = ChannelValue {
+        g_s: 1e-6,
+        b_s: 2e-4,
+        eps_re: 6.5,
+        eps_im: 0.8,
+    };
+    let batch: Vec<Reading> = (0..2000u32)
+        .map(|c| Reading {
+            seq: Seq {
+                boot: 1,
+                counter: c,
+            },
+            time_ms: 1_780_000_000_000 + u64::from(c) * 1000,
+            channels: [ch, ch],
+            temperature_c: 21.0,
+            moisture_pct: Some(14.0),
+            uncertainty_pct: 0.3,
+            flags: Flags::empty(),
+            cell_cal: CalId([1, 2, 3, 4]),
+            product_cal: CalId([5, 6, 7, 8]),
+        })
+        .collect();
+    s.insert_readings("HGM-L2-0302", &batch, Source::Stream)
+        .unwrap();
+    let (root, page): (i64, i64) = s
+        .connection()
+        .query_row(
+            "SELECT (SELECT rootpage FROM sqlite_master WHERE name = 'readings_key'), \
+             (SELECT page_size FROM pragma_page_size)",
+            [],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .unwrap();
+    drop(s); // the last connection checkpoints the WAL into the file
+    let mut bytes = std::fs::read(&db).unwrap();
+    let at = ((root - 1) * page) as usize;
+    // Keep the page's type byte; garble its cell pointers and cells.
+    for b in &mut bytes[at + 8..at + page as usize] {
+        *b = 0x5a;
+    }
+    std::fs::write(&db, &bytes).unwrap();
+    let d = t.path().display().to_string();
+    let dbs = db.display().to_string();
+    let cases: &[(&str, Vec<String>)] = &[
+        (
+            "audit verify",
+            vec!["audit".into(), "verify".into(), "--db".into(), dbs.clone()],
+        ),
+        (
+            "audit export",
+            vec![
+                "audit".into(),
+                "export".into(),
+                "--db".into(),
+                dbs.clone(),
+                "--out".into(),
+                format!("{d}/bundle"),
+            ],
+        ),
+        ("drift", vec!["drift".into(), "--db".into(), dbs.clone()]),
+        (
+            "report",
+            vec![
+                "report".into(),
+                "--db".into(),
+                dbs.clone(),
+                "--out".into(),
+                format!("{d}/report"),
+            ],
+        ),
+        (
+            "cal history",
+            vec!["cal".into(), "history".into(), "--db".into(), dbs.clone()],
+        ),
+    ];
+    for (name, args) in cases {
+        let before = snapshot(t.path());
+        let argv: Vec<&str> = args.iter().map(String::as_str).collect();
+        let o = run(&mut fringe(&argv), LIMIT);
+        assert_eq!(o.code, 23, "{name}: exit {}; stderr:\n{}", o.code, o.stderr);
+        assert!(
+            o.stderr.contains(".recover"),
+            "{name}: advice missing:\n{}",
+            o.stderr
+        );
+        let after = snapshot(t.path());
+        let changed: Vec<&String> = after
+            .iter()
+            .filter(|(k, v)| before.get(*k) != Some(*v))
+            .map(|(k, _)| k)
+            .chain(before.keys().filter(|k| !after.contains_key(*k)))
+            // SQLite's own housekeeping beside a WAL database it opened
+            // read-only: the shared-memory index, and an empty log.
+            .filter(|k| !(k.ends_with("-shm") || (k.ends_with("-wal") && after[*k].is_empty())))
+            .collect();
+        assert!(changed.is_empty(), "{name}: changed {changed:?}");
+    }
+}
