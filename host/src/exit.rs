@@ -108,7 +108,9 @@ impl ExitCode {
             {
                 return ExitCode::Problems;
             }
-            if cause.downcast_ref::<UsageError>().is_some() {
+            if cause.downcast_ref::<UsageError>().is_some()
+                || cause.downcast_ref::<crate::store::SqliteOnly>().is_some()
+            {
                 return ExitCode::Usage;
             }
             if cause

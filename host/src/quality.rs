@@ -11,7 +11,7 @@ use fringe_quality::{analysis, audit};
 use serde_json::json;
 
 use crate::config::{ConfigError, LineConfig};
-use crate::store::Store;
+use crate::store::{db_label, AnyStore};
 use crate::timefmt::{fmt_person, fmt_time, parse_time};
 
 /// The database of a command that reads one: `--db`, else the line file's.
@@ -28,15 +28,16 @@ fn db_of(flag: Option<&PathBuf>, cfg: &LineConfig) -> Result<PathBuf, ConfigErro
         })
 }
 
-/// Opens a database to read: read-only, after SQLite's quick check (a
-/// damaged page stops the command with exit status 23 before anything is
-/// read from it; costs in BENCHMARKS.md).
+/// Opens a database to read (a SQLite file or a `postgres://` URL):
+/// read-only, after SQLite's quick check (a damaged page stops the command
+/// with exit status 23 before anything is read from it; costs in
+/// BENCHMARKS.md; see [`AnyStore::check_on_open`] for PostgreSQL).
 ///
 /// # Errors
 /// [`crate::store::StoreError`].
-pub fn open_to_read(db: &std::path::Path) -> anyhow::Result<Store> {
-    let store = Store::open_read_only(db)?;
-    store.check_integrity(false)?;
+pub fn open_to_read(db: &std::path::Path) -> anyhow::Result<AnyStore> {
+    let store = AnyStore::open_read_only(db)?;
+    store.check_on_open()?;
     Ok(store)
 }
 
@@ -61,8 +62,9 @@ pub enum LabCommand {
 /// `fringe lab add`.
 #[derive(Debug, Clone, Args)]
 pub struct LabAddArgs {
-    /// Database file [default: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// When the sample was taken: RFC 3339 with an offset
     /// (2026-12-01T09:40+01:00, 2026-12-01T08:40Z); without an offset
@@ -101,8 +103,9 @@ pub struct LabAddArgs {
     after_help = "Example:\n  fringe drift --db line2.db\n  fringe drift --db line2.db --plot drift.svg --json"
 )]
 pub struct DriftArgs {
-    /// Database file [default: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Device serial [default: the first device].
     #[arg(long)]
@@ -121,8 +124,9 @@ pub struct DriftArgs {
     after_help = "Example:\n  fringe report --db line2.db --out report/   # then open report/index.html"
 )]
 pub struct ReportArgs {
-    /// Database file [default: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Output folder (index.html and the plots as SVG files).
     #[arg(long, value_name = "DIR")]
@@ -138,8 +142,9 @@ pub struct ReportArgs {
 /// `fringe cal history`.
 #[derive(Debug, Clone, Args)]
 pub struct HistoryArgs {
-    /// Database file [default: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Device serial [default: every device].
     #[arg(long)]
@@ -175,8 +180,9 @@ pub enum AuditCommand {
 /// `fringe audit export`.
 #[derive(Debug, Clone, Args)]
 pub struct AuditExportArgs {
-    /// Database file [default: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Start of the range [default: the beginning]: RFC 3339 with an
     /// offset (2026-12-01T06:00+01:00, ...Z); without an offset it is local
@@ -202,8 +208,9 @@ pub struct AuditVerifyArgs {
     #[arg(value_name = "DIR")]
     pub dir: Option<PathBuf>,
     /// Database to check (its integrity, its own chain, and the bundle
-    /// against it) [default without a bundle: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// against it): a file or a postgres:// URL [default without a bundle:
+    /// `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Print JSON.
     #[arg(long)]
@@ -239,9 +246,9 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     grab.validate()?;
     let db = db_of(a.db.as_ref(), cfg)?;
     // A lab sample belongs to a device a database already holds: never a new file.
-    let mut store = Store::open_existing(&db)?;
-    store.check_integrity(false)?;
-    let g = grab.record(&mut store, a.serial.as_deref())?;
+    let mut store = AnyStore::open_existing(&db)?;
+    store.check_on_open()?;
+    let g = grab.record(store.get_mut(), a.serial.as_deref())?;
     let inline = g.matched.and_then(|(r, _, _)| r.moisture_pct);
     if a.json {
         crate::outln!(
@@ -294,7 +301,7 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
 /// Store failure or a failed plot write.
 pub fn drift(a: &DriftArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let store = open_to_read(&db_of(a.db.as_ref(), cfg)?)?;
-    let data = analysis::load(&store, a.serial.as_deref())?;
+    let data = analysis::load(store.get(), a.serial.as_deref())?;
     let traces = data.traces();
     if let Some(p) = &a.plot {
         std::fs::write(p, views::drift_svg(&traces)?)
@@ -319,7 +326,7 @@ pub fn drift(a: &DriftArgs, cfg: &LineConfig) -> anyhow::Result<()> {
 pub fn report(a: &ReportArgs, cfg: &LineConfig) -> anyhow::Result<PathBuf> {
     let store = open_to_read(&db_of(a.db.as_ref(), cfg)?)?;
     Ok(views::write_report(
-        &store,
+        store.get(),
         a.serial.as_deref(),
         a.title.as_deref(),
         &a.out,
@@ -333,12 +340,12 @@ pub fn report(a: &ReportArgs, cfg: &LineConfig) -> anyhow::Result<PathBuf> {
 pub fn history(a: &HistoryArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let db = db_of(a.db.as_ref(), cfg)?;
     let store = open_to_read(&db)?;
-    let all = views::history(&store, a.serial.as_deref())?;
+    let all = views::history(store.get(), a.serial.as_deref())?;
     if a.json {
         crate::outln!("{}", views::history_json(&all));
         return Ok(());
     }
-    views::write_history(&all, &db, &mut std::io::stdout().lock())?;
+    views::write_history(&all, store.get().path(), &mut std::io::stdout().lock())?;
     Ok(())
 }
 
@@ -360,7 +367,7 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 }
             }
             let db = db_of(e.db.as_ref(), cfg)?;
-            let store = Store::open_read_only(&db)?;
+            let store = AnyStore::open_read_only(&db)?;
             let to = e.to.unwrap_or_else(crate::store::now_unix_ms);
             if let Some(from) = e.from.filter(|f| *f > to) {
                 return Err(crate::exit::UsageError(format!(
@@ -370,7 +377,10 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 ))
                 .into());
             }
-            let s = audit::export(&store, &db.display().to_string(), e.from, to, &e.out)?;
+            // One consistent view of a database gateways may be writing;
+            // the label never holds a password.
+            let label = db_label(&db);
+            let s = store.consistent(|s| audit::export(s, &label, e.from, to, &e.out))??;
             if e.json {
                 crate::outln!("{}", serde_json::to_string(&s.manifest)?);
             } else {
@@ -384,11 +394,11 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 (Some(_), None) => None,
                 (None, None) => Some(db_of(None, cfg)?),
             };
-            let store = db.as_ref().map(Store::open_read_only).transpose()?;
-            let r = audit::verify(
-                v.dir.as_deref(),
-                store.as_ref().map(|s| s as &dyn fringe_store::RecordRead),
-            )?;
+            let store = db.as_deref().map(AnyStore::open_read_only).transpose()?;
+            let r = match &store {
+                Some(st) => st.consistent(|s| audit::verify(v.dir.as_deref(), Some(s)))??,
+                None => audit::verify(v.dir.as_deref(), None)?,
+            };
             if v.json {
                 crate::outln!(
                     "{}",
@@ -398,7 +408,7 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 views::write_verify(
                     &r,
                     v.dir.as_deref(),
-                    db.as_deref(),
+                    store.as_ref().map(|s| s.get().path()),
                     &mut std::io::stdout().lock(),
                 )?;
             }

@@ -30,7 +30,7 @@ use fringe_store::{
     verify_chain, CalKind, NewCalibration, NewLabSample, RecordRead, Source, StoreError,
 };
 use fringe_tests::servers::Postgres;
-use fringe_tests::{poll_until, seed, DEADLINE};
+use fringe_tests::{fringe, poll_until, seed, DEADLINE};
 use rand::rngs::StdRng;
 use rand::{RngExt as _, SeedableRng};
 
@@ -943,4 +943,96 @@ fn the_integrity_check_finds_a_damaged_index_page() {
         }
         other => panic!("{other:?}"),
     }
+}
+
+// ------------------------------------------------------- fringe --db postgres://
+
+/// The same records in a SQLite file and in PostgreSQL: the reading
+/// commands print the same through either `--db`; an audit bundle exported
+/// from the URL verifies against the file; a writing command refuses the
+/// URL with usage status 2, naming it without its password.
+#[test]
+#[ignore = "needs PostgreSQL: cargo xtask test runs it"]
+fn fringe_reads_a_postgres_url_as_it_reads_a_file() {
+    let seed = seed(15);
+    let mut rng = StdRng::seed_from_u64(seed);
+    let mut s = Server::start();
+    let url = s.fresh();
+    let dir = tempfile::tempdir().unwrap();
+    let file = dir.path().join("line.db");
+    {
+        let mut lite = fringe_sqlite::Store::open(&file).unwrap();
+        let mut pg = Store::connect(&url).unwrap();
+        for st in [&mut lite as &mut dyn RecordStoreExt, &mut pg] {
+            st.clock(Some(1_796_025_600_000));
+            conformance_records(st.log());
+        }
+        // And some random ones on top (a second device).
+        same_random_records(&mut rng, &mut [&mut lite, &mut pg]);
+    }
+    let file_s = file.to_str().unwrap();
+    let limit = Duration::from_secs(120);
+    for args in [
+        vec!["cal", "history", "--json"],
+        vec!["drift", "--json", "--serial", SERIAL],
+    ] {
+        let a = fringe_tests::run(fringe(&args).args(["--db", file_s]), limit);
+        let b = fringe_tests::run(fringe(&args).args(["--db", &url]), limit);
+        assert_eq!(a.code, 0, "seed {seed}: {args:?} on the file: {}", a.stderr);
+        assert_eq!(b.code, 0, "seed {seed}: {args:?} on the URL: {}", b.stderr);
+        assert_eq!(a.stdout, b.stdout, "seed {seed}: {args:?}");
+        assert!(a.stdout.len() > 20, "{args:?}: {}", a.stdout);
+    }
+    let bundle = dir.path().join("bundle");
+    let out = fringe_tests::run(
+        fringe(&["audit", "export", "--db", &url, "--out"]).arg(&bundle),
+        limit,
+    );
+    assert_eq!(out.code, 0, "export: {}{}", out.stdout, out.stderr);
+    let manifest = std::fs::read_to_string(bundle.join("manifest.json")).unwrap();
+    assert!(
+        manifest.contains(&format!("127.0.0.1:{}", s.pg.port)),
+        "{manifest}"
+    );
+    let out = fringe_tests::run(
+        fringe(&["audit", "verify", "--db", file_s]).arg(&bundle),
+        limit,
+    );
+    assert_eq!(
+        out.code, 0,
+        "verify against the file: {}{}",
+        out.stdout, out.stderr
+    );
+    let out = fringe_tests::run(&mut fringe(&["audit", "verify", "--db", &url]), limit);
+    assert_eq!(out.code, 0, "verify the URL: {}{}", out.stdout, out.stderr);
+    // A writing command refuses the URL before it touches a port.
+    let secret = url.replace("fringe@", "fringe:hunter2@");
+    let out = fringe_tests::run(
+        &mut fringe(&[
+            "pull",
+            "--port",
+            "/dev/fringe-no-such-port",
+            "--db",
+            &secret,
+        ]),
+        limit,
+    );
+    assert_eq!(out.code, 2, "{}{}", out.stdout, out.stderr);
+    assert!(out.stderr.contains("SQLite file only"), "{}", out.stderr);
+    assert!(
+        out.stderr.contains(&format!("127.0.0.1:{}", s.pg.port)),
+        "{}",
+        out.stderr
+    );
+    assert!(!out.stderr.contains("hunter2"), "{}", out.stderr);
+    assert!(
+        !out.stderr.contains("fringe-no-such-port"),
+        "{}",
+        out.stderr
+    );
+}
+
+/// The conformance check's fixed records (every table).
+fn conformance_records(s: &mut dyn fringe_store::RecordStore) {
+    conformance::golden_chain(s);
 }

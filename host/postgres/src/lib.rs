@@ -241,6 +241,22 @@ fn parse_config(url: &str) -> Result<postgres::Config, StoreError> {
     })
 }
 
+/// Whether `db` (a `--db` value or a line file's `db`) names a PostgreSQL
+/// database (`postgres://...` or `postgresql://...`) rather than a file.
+pub fn is_url(db: &str) -> bool {
+    db.starts_with("postgres://") || db.starts_with("postgresql://")
+}
+
+/// A connection string as it may be shown to a person or written into a
+/// file: `postgres://USER@HOST:PORT/DATABASE`, never the password (a
+/// string that does not parse shows as `(PostgreSQL connection string)`).
+pub fn display_name(url: &str) -> String {
+    parse_config(url).map_or_else(
+        |_| "(PostgreSQL connection string)".into(),
+        |c| connection_name(&c).display().to_string(),
+    )
+}
+
 fn open_client(config: &postgres::Config, name: &Path) -> Result<Client, StoreError> {
     let mut config = config.clone();
     if config.get_connect_timeout().is_none() {
@@ -271,6 +287,30 @@ impl Store {
     /// [`StoreError::NewerSchema`].
     pub fn connect(url: &str) -> Result<Self, StoreError> {
         Self::connect_as(url, Mode::Write)
+    }
+
+    /// Connects to a database that already holds a fringe store (of this
+    /// build's schema version or an older one, migrated then), for a
+    /// command that adds to an existing store and must not create one.
+    ///
+    /// # Errors
+    /// As [`Store::connect`]; [`StoreError::CannotOpen`] when the database
+    /// holds no fringe store.
+    pub fn connect_existing(url: &str) -> Result<Self, StoreError> {
+        let config = parse_config(url)?;
+        let name = connection_name(&config);
+        let mut client = open_client(&config, &name)?;
+        if schema_version(&mut client)
+            .map_err(|e| from_pg(&name, e))?
+            .is_none()
+        {
+            return Err(StoreError::CannotOpen {
+                path: name,
+                reason: "it holds no fringe store (a writing command such as `fringe gateway` creates one)".into(),
+            });
+        }
+        drop(client);
+        Self::connect(url)
     }
 
     /// Connects for reading only: never migrates, and the session refuses
@@ -362,7 +402,19 @@ impl Store {
             ));
         }
         match self.mode {
-            Mode::Write => self.migrate(),
+            Mode::Write => {
+                self.migrate()?;
+                // The integrity check's extension, when this role may
+                // create it (a superuser; otherwise the database's
+                // administrator runs `CREATE EXTENSION amcheck` once, and
+                // `audit` says so until then).
+                let _ = self
+                    .conn
+                    .borrow_mut()
+                    .client
+                    .batch_execute("CREATE EXTENSION IF NOT EXISTS amcheck");
+                Ok(())
+            }
             Mode::ReadOnly => {
                 let v = self.schema_version()?;
                 match v {
