@@ -1,5 +1,5 @@
 //! The schema, its migrations and the column types of every hashed column
-//! (documented in `host/postgres/README.md`).
+//! (summarised in the crate docs).
 //!
 //! `fringe_schema` holds one row per migration applied (its number, when,
 //! and what it did). Each migration runs in its own transaction under an
