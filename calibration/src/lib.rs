@@ -91,4 +91,6 @@ pub const EPS0: f64 = 8.854_187_812_8e-12;
 #[cfg(feature = "fit")]
 pub mod fit;
 #[cfg(feature = "fit")]
+pub mod regression;
+#[cfg(feature = "fit")]
 pub mod stats;

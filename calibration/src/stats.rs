@@ -17,12 +17,12 @@
 //! Cross-validation ([`cross_validate`]) takes any fit-and-predict closure;
 //! leverage, studentized residuals and prediction intervals
 //! ([`diagnostics`], [`prediction_interval`]) are for linear models
-//! ([`crate::fit::LinearFit`]).
+//! ([`crate::regression::LinearFit`]).
 
 use nalgebra::DMatrix;
 use statrs::distribution::{ContinuousCDF, StudentsT};
 
-use crate::fit::LinearFit;
+use crate::regression::LinearFit;
 
 /// Why a statistic could not be computed.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -369,7 +369,7 @@ pub struct Diagnostics {
 }
 
 /// Leverage, studentized residuals and flags of a linear fit made by
-/// [`crate::fit::fit_linear`] from `design` (and the same `sigma`).
+/// [`crate::regression::fit_linear`] from `design` (and the same `sigma`).
 ///
 /// # Errors
 /// [`StatsError::LengthMismatch`] when `design` or `sigma` does not match

@@ -16,7 +16,6 @@ use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use anyhow::{bail, Context as _};
-use clap::Args;
 use fringe_calibration::synth::{SynthProduct, SynthSample};
 use fringe_firmware::sim::Material;
 use fringe_firmware::{DeviceConfig, Scenario};
@@ -27,6 +26,7 @@ use rand_distr::StandardNormal;
 
 use crate::analysis;
 use crate::audit;
+pub use crate::cli::demo::DemoArgs;
 use crate::cmd::cal::{FitArgs, FitModelArg};
 use crate::link::{Link, LinkOptions};
 use crate::product_file::ProductFile;
@@ -36,23 +36,6 @@ use fringe_device::guide::{Cancelled, Guide};
 use fringe_quality::cal;
 use fringe_quality::views;
 use fringe_sim::port::SimHandle;
-
-/// `fringe demo`.
-#[derive(Debug, Clone, Args)]
-#[command(
-    after_help = "Example:\n  cargo run --release -p fringe-host -- demo\n  fringe demo --out /tmp/hgm --short"
-)]
-pub struct DemoArgs {
-    /// Output folder (created; an existing demo folder is replaced).
-    #[arg(long, value_name = "DIR", default_value = "fringe-demo")]
-    pub out: PathBuf,
-    /// A shorter run (2 h shift, fewer reference samples) for tests.
-    #[arg(long)]
-    pub short: bool,
-    /// Seed of the simulated world (the same seed gives the same run).
-    #[arg(long, default_value_t = 2026)]
-    pub seed: u64,
-}
 
 /// Where the demo put its outputs.
 #[derive(Debug, Clone)]

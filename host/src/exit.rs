@@ -102,10 +102,7 @@ impl ExitCode {
             {
                 return ExitCode::BadFile;
             }
-            if cause
-                .downcast_ref::<crate::quality::ProblemsFound>()
-                .is_some()
-            {
+            if cause.downcast_ref::<ProblemsFound>().is_some() {
                 return ExitCode::Problems;
             }
             if cause.downcast_ref::<UsageError>().is_some()
@@ -160,6 +157,18 @@ pub fn is_broken_pipe(err: &anyhow::Error) -> bool {
             .is_some_and(|e| e.kind() == io::ErrorKind::BrokenPipe)
     })
 }
+
+/// A finished command that found problems (exit status 4, "problems").
+#[derive(Debug)]
+pub struct ProblemsFound(pub String);
+
+impl std::fmt::Display for ProblemsFound {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(&self.0)
+    }
+}
+
+impl std::error::Error for ProblemsFound {}
 
 #[cfg(test)]
 mod tests {

@@ -4,7 +4,8 @@
 //!   what the tests need (see [`setup`]): Debian packages when run as root,
 //!   the Cortex-M target, a nightly toolchain and cargo-fuzz, and a Python
 //!   virtual environment with the pinned reference libraries of
-//!   `tests/python/requirements.txt`. Then: fmt, clippy, workspace tests,
+//!   `tests/python/requirements.txt`. Then: fmt, clippy, the architecture
+//!   check of `docs/ARCHITECTURE.md` ([`arch`]), workspace tests,
 //!   `no_std` cross-builds, the outside checks against those libraries, the
 //!   fuzz crate's build and smoke run, the board build and the QEMU
 //!   end-to-end tests (the protocol, and Modbus RTU read by pymodbus).
@@ -25,6 +26,8 @@ use std::process::Command;
 #[allow(dead_code)]
 #[path = "../../tests/src/qemu.rs"]
 mod qemu;
+
+mod arch;
 
 const TARGET: &str = "thumbv7em-none-eabihf";
 
@@ -280,6 +283,7 @@ fn test(args: &[String]) -> Result<()> {
         "-D",
         "warnings",
     ]))?;
+    arch::check(&root())?;
     run(cargo().args(["test", "--workspace"]))?;
     for krate in [
         "fringe-protocol",
@@ -740,9 +744,11 @@ fn main() -> Result<()> {
         Some("firmware") => firmware().map(|_| ()),
         Some("qemu") => qemu_run(),
         Some("size") => size(),
+        Some("arch") => arch::check(&root()),
         _ => {
-            eprintln!("usage: cargo xtask <test | firmware | qemu | size>");
+            eprintln!("usage: cargo xtask <test | arch | firmware | qemu | size>");
             eprintln!("  test      every test (installs what it needs; --skip qemu,fuzz,python leaves parts out)");
+            eprintln!("  arch      the architecture check of docs/ARCHITECTURE.md (crates, module cycles, quiet libraries)");
             eprintln!("  firmware  build the QEMU board binary (firmware/boards/qemu-mps2)");
             eprintln!("  qemu      boot it under QEMU with UART0 and UART1 (Modbus) on ptys and print both");
             eprintln!("  size      flash/RAM of both boards' ELFs; stack high-water and cost per reading (QEMU)");

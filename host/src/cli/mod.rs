@@ -3,6 +3,11 @@
 //! Every command's arguments are a struct; commands of other modules add a
 //! variant to [`Command`] with their own argument struct.
 
+pub mod cal;
+pub mod calcmd;
+pub mod demo;
+pub mod quality;
+
 use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand};
@@ -61,17 +66,17 @@ pub enum Command {
     /// The device itself: its clock, its settings (tag, interval, 4-20 mA span, failure level, stale timeout).
     Device(DeviceArgs),
     /// Product and cell calibration: fit, predict, cell, capture, push, list, select, history.
-    Cal(crate::cmd::quality::CalArgs),
+    Cal(calcmd::CalArgs),
     /// Lab grab samples.
-    Lab(crate::quality::LabArgs),
+    Lab(quality::LabArgs),
     /// Drift monitors (EWMA, CUSUM) over a database.
-    Drift(crate::quality::DriftArgs),
+    Drift(quality::DriftArgs),
     /// Write an HTML report (trend, flags, drift charts, calibrations) that opens without a server.
-    Report(crate::quality::ReportArgs),
+    Report(quality::ReportArgs),
     /// Tamper-evident audit bundles: export and verify.
-    Audit(crate::quality::AuditArgs),
+    Audit(quality::AuditArgs),
     /// Run the whole job on a simulated device of an invented plant (the main demonstration).
-    Demo(crate::demo::DemoArgs),
+    Demo(demo::DemoArgs),
 }
 
 /// Which port, at which speed.

@@ -1,0 +1,20 @@
+//! The command line of `fringe demo`.
+use clap::Args;
+use std::path::PathBuf;
+
+/// `fringe demo`.
+#[derive(Debug, Clone, Args)]
+#[command(
+    after_help = "Example:\n  cargo run --release -p fringe-host -- demo\n  fringe demo --out /tmp/hgm --short"
+)]
+pub struct DemoArgs {
+    /// Output folder (created; an existing demo folder is replaced).
+    #[arg(long, value_name = "DIR", default_value = "fringe-demo")]
+    pub out: PathBuf,
+    /// A shorter run (2 h shift, fewer reference samples) for tests.
+    #[arg(long)]
+    pub short: bool,
+    /// Seed of the simulated world (the same seed gives the same run).
+    #[arg(long, default_value_t = 2026)]
+    pub seed: u64,
+}
