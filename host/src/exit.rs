@@ -105,7 +105,9 @@ impl ExitCode {
             if cause.downcast_ref::<ProblemsFound>().is_some() {
                 return ExitCode::Problems;
             }
-            if cause.downcast_ref::<UsageError>().is_some() {
+            if cause.downcast_ref::<UsageError>().is_some()
+                || cause.downcast_ref::<crate::store::SqliteOnly>().is_some()
+            {
                 return ExitCode::Usage;
             }
             if cause

@@ -14,7 +14,7 @@ pub use crate::cli::quality::{
     LabArgs, LabCommand, ReportArgs,
 };
 use crate::config::{ConfigError, LineConfig};
-use crate::store::Store;
+use crate::store::{db_label, AnyStore};
 use crate::timefmt::{fmt_person, fmt_time};
 
 /// The database of a command that reads one: `--db`, else the line file's.
@@ -31,15 +31,16 @@ fn db_of(flag: Option<&PathBuf>, cfg: &LineConfig) -> Result<PathBuf, ConfigErro
         })
 }
 
-/// Opens a database to read: read-only, after SQLite's quick check (a
-/// damaged page stops the command with exit status 23 before anything is
-/// read from it; costs in BENCHMARKS.md).
+/// Opens a database to read (a SQLite file or a `postgres://` URL):
+/// read-only, after SQLite's quick check (a damaged page stops the command
+/// with exit status 23 before anything is read from it; costs in
+/// BENCHMARKS.md; see [`AnyStore::check_on_open`] for PostgreSQL).
 ///
 /// # Errors
 /// [`crate::store::StoreError`].
-pub fn open_to_read(db: &std::path::Path) -> anyhow::Result<Store> {
-    let store = Store::open_read_only(db)?;
-    store.check_integrity(false)?;
+pub fn open_to_read(db: &std::path::Path) -> anyhow::Result<AnyStore> {
+    let store = AnyStore::open_read_only(db)?;
+    store.check_on_open()?;
     Ok(store)
 }
 
@@ -60,9 +61,9 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     grab.validate()?;
     let db = db_of(a.db.as_ref(), cfg)?;
     // A lab sample belongs to a device a database already holds: never a new file.
-    let mut store = Store::open_existing(&db)?;
-    store.check_integrity(false)?;
-    let g = grab.record(&mut store, a.serial.as_deref())?;
+    let mut store = AnyStore::open_existing(&db)?;
+    store.check_on_open()?;
+    let g = grab.record(store.get_mut(), a.serial.as_deref())?;
     let inline = g.matched.and_then(|(r, _, _)| r.moisture_pct);
     if a.json {
         crate::outln!(
@@ -115,7 +116,7 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
 /// Store failure or a failed plot write.
 pub fn drift(a: &DriftArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let store = open_to_read(&db_of(a.db.as_ref(), cfg)?)?;
-    let data = analysis::load(&store, a.serial.as_deref())?;
+    let data = analysis::load(store.get(), a.serial.as_deref())?;
     let traces = data.traces();
     if let Some(p) = &a.plot {
         std::fs::write(p, views::drift_svg(&traces)?)
@@ -140,7 +141,7 @@ pub fn drift(a: &DriftArgs, cfg: &LineConfig) -> anyhow::Result<()> {
 pub fn report(a: &ReportArgs, cfg: &LineConfig) -> anyhow::Result<PathBuf> {
     let store = open_to_read(&db_of(a.db.as_ref(), cfg)?)?;
     Ok(views::write_report(
-        &store,
+        store.get(),
         a.serial.as_deref(),
         a.title.as_deref(),
         &a.out,
@@ -154,12 +155,12 @@ pub fn report(a: &ReportArgs, cfg: &LineConfig) -> anyhow::Result<PathBuf> {
 pub fn history(a: &HistoryArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let db = db_of(a.db.as_ref(), cfg)?;
     let store = open_to_read(&db)?;
-    let all = views::history(&store, a.serial.as_deref())?;
+    let all = views::history(store.get(), a.serial.as_deref())?;
     if a.json {
         crate::outln!("{}", views::history_json(&all));
         return Ok(());
     }
-    views::write_history(&all, &db, &mut std::io::stdout().lock())?;
+    views::write_history(&all, store.get().path(), &mut std::io::stdout().lock())?;
     Ok(())
 }
 
@@ -181,7 +182,7 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 }
             }
             let db = db_of(e.db.as_ref(), cfg)?;
-            let store = Store::open_read_only(&db)?;
+            let store = AnyStore::open_read_only(&db)?;
             let to = e.to.unwrap_or_else(crate::store::now_unix_ms);
             if let Some(from) = e.from.filter(|f| *f > to) {
                 return Err(crate::exit::UsageError(format!(
@@ -191,7 +192,10 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 ))
                 .into());
             }
-            let s = audit::export(&store, &db.display().to_string(), e.from, to, &e.out)?;
+            // One consistent view of a database gateways may be writing;
+            // the label never holds a password.
+            let label = db_label(&db);
+            let s = store.consistent(|s| audit::export(s, &label, e.from, to, &e.out))??;
             if e.json {
                 crate::outln!("{}", serde_json::to_string(&s.manifest)?);
             } else {
@@ -205,11 +209,11 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 (Some(_), None) => None,
                 (None, None) => Some(db_of(None, cfg)?),
             };
-            let store = db.as_ref().map(Store::open_read_only).transpose()?;
-            let r = audit::verify(
-                v.dir.as_deref(),
-                store.as_ref().map(|s| s as &dyn fringe_store::RecordRead),
-            )?;
+            let store = db.as_deref().map(AnyStore::open_read_only).transpose()?;
+            let r = match &store {
+                Some(st) => st.consistent(|s| audit::verify(v.dir.as_deref(), Some(s)))??,
+                None => audit::verify(v.dir.as_deref(), None)?,
+            };
             if v.json {
                 crate::outln!(
                     "{}",
@@ -219,7 +223,7 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 views::write_verify(
                     &r,
                     v.dir.as_deref(),
-                    db.as_deref(),
+                    store.as_ref().map(|s| s.get().path()),
                     &mut std::io::stdout().lock(),
                 )?;
             }

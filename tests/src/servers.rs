@@ -148,6 +148,9 @@ pub struct Postgres {
     /// Its port.
     pub port: u16,
     running: bool,
+    /// Whether the server flushes its WAL to disk (off for tests, which
+    /// do not survive a power cut anyway; on for benchmarks).
+    fsync: bool,
 }
 
 fn as_postgres(cmd: &Path) -> Command {
@@ -166,11 +169,24 @@ fn as_postgres(cmd: &Path) -> Command {
 }
 
 impl Postgres {
-    /// Creates and starts the cluster.
+    /// Creates and starts the cluster (`fsync = off`: for tests).
     ///
     /// # Panics
     /// If PostgreSQL is missing or does not start within a minute.
     pub fn start() -> Self {
+        Self::start_with(false)
+    }
+
+    /// Creates and starts the cluster with PostgreSQL's default durability
+    /// (`fsync = on`, `synchronous_commit = on`): for benchmarks.
+    ///
+    /// # Panics
+    /// As [`Postgres::start`].
+    pub fn start_durable() -> Self {
+        Self::start_with(true)
+    }
+
+    fn start_with(fsync: bool) -> Self {
         let dir = tempfile::Builder::new()
             .prefix("fringe-pg")
             .tempdir()
@@ -195,6 +211,7 @@ impl Postgres {
             dir,
             port: free_port(),
             running: false,
+            fsync,
         };
         pg.restart();
         let out = Command::new(bin.join("createdb"))
@@ -235,9 +252,10 @@ impl Postgres {
     pub fn restart(&mut self) {
         self.stop();
         let opts = format!(
-            "-p {} -k {} -c listen_addresses=127.0.0.1 -c fsync=off",
+            "-p {} -k {} -c listen_addresses=127.0.0.1 -c fsync={}",
             self.port,
-            self.dir.path().display()
+            self.dir.path().display(),
+            if self.fsync { "on" } else { "off" }
         );
         let log = self.dir.path().join("server.log");
         let out = self.pg_ctl(&[

@@ -246,13 +246,19 @@ fn hash_from_hex(s: &str) -> Option<Hash> {
 
 /// SQLite value -> JSON, keeping the storage class: INTEGER a JSON integer,
 /// REAL a JSON number with a point or exponent (shortest round-trip form),
-/// TEXT a string, BLOB `{"hex": ...}`, NULL null.
+/// TEXT a string, BLOB `{"hex": ...}`, NULL null. JSON has no infinity:
+/// an infinite REAL is `{"real": "inf"}` or `{"real": "-inf"}` (NaN is never
+/// stored: the store keeps it as NULL).
 fn to_json(v: &Value) -> serde_json::Value {
     match v {
         Value::Null => serde_json::Value::Null,
         Value::Integer(i) => serde_json::Value::from(*i),
-        Value::Real(x) => serde_json::Number::from_f64(*x)
-            .map_or(serde_json::Value::Null, serde_json::Value::Number),
+        Value::Real(x) => match serde_json::Number::from_f64(*x) {
+            Some(n) => serde_json::Value::Number(n),
+            None if *x == f64::INFINITY => serde_json::json!({ "real": "inf" }),
+            None if *x == f64::NEG_INFINITY => serde_json::json!({ "real": "-inf" }),
+            None => serde_json::Value::Null,
+        },
         Value::Text(s) => serde_json::Value::String(s.clone()),
         Value::Blob(b) => serde_json::json!({ "hex": hex_of(b) }),
     }
@@ -265,9 +271,14 @@ fn from_json(v: &serde_json::Value) -> Option<Value> {
         serde_json::Value::Number(n) if n.is_f64() => Value::Real(n.as_f64()?),
         serde_json::Value::Number(n) => Value::Integer(n.as_i64()?),
         serde_json::Value::String(s) => Value::Text(s.clone()),
-        serde_json::Value::Object(m) if m.len() == 1 => {
-            Value::Blob(unhex(m.get("hex")?.as_str()?)?)
-        }
+        serde_json::Value::Object(m) if m.len() == 1 => match m.get("real") {
+            Some(r) => match r.as_str()? {
+                "inf" => Value::Real(f64::INFINITY),
+                "-inf" => Value::Real(f64::NEG_INFINITY),
+                _ => return None,
+            },
+            None => Value::Blob(unhex(m.get("hex")?.as_str()?)?),
+        },
         _ => return None,
     })
 }
@@ -1289,6 +1300,21 @@ mod tests {
     use fringe_store::{CalKind, DeviceInfo, NewCalibration, NewLabSample, Source};
 
     const T0: i64 = 1_796_104_800_000;
+
+    #[test]
+    fn infinite_reals_survive_the_bundle_json() {
+        // Regression: an infinite REAL was written as JSON null, so a bundle
+        // holding one failed its own verification.
+        for v in [
+            Value::Real(f64::INFINITY),
+            Value::Real(f64::NEG_INFINITY),
+            Value::Real(-1.5e300),
+            Value::Null,
+        ] {
+            assert_eq!(from_json(&to_json(&v)), Some(v.clone()), "{v:?}");
+        }
+        assert_eq!(from_json(&serde_json::json!({ "real": "nan" })), None);
+    }
 
     fn reading(i: u32) -> Reading {
         Reading {

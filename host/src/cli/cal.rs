@@ -123,8 +123,9 @@ pub struct AdjustArgs {
     )]
     pub pairs: Option<PathBuf>,
     /// Take the lab grab samples and their inline readings from this database
-    /// (those since the calibration was pushed, when the records say).
-    #[arg(long, value_name = "FILE")]
+    /// (those since the calibration was pushed, when the records say): a
+    /// file or a postgres:// URL.
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Device serial in the database [default: its first device].
     #[arg(long)]

@@ -24,8 +24,9 @@ pub enum LabCommand {
 /// `fringe lab add`.
 #[derive(Debug, Clone, Args)]
 pub struct LabAddArgs {
-    /// Database file [default: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// When the sample was taken: RFC 3339 with an offset
     /// (2026-12-01T09:40+01:00, 2026-12-01T08:40Z); without an offset
@@ -64,8 +65,9 @@ pub struct LabAddArgs {
     after_help = "Example:\n  fringe drift --db line2.db\n  fringe drift --db line2.db --plot drift.svg --json"
 )]
 pub struct DriftArgs {
-    /// Database file [default: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Device serial [default: the first device].
     #[arg(long)]
@@ -84,8 +86,9 @@ pub struct DriftArgs {
     after_help = "Example:\n  fringe report --db line2.db --out report/   # then open report/index.html"
 )]
 pub struct ReportArgs {
-    /// Database file [default: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Output folder (index.html and the plots as SVG files).
     #[arg(long, value_name = "DIR")]
@@ -101,8 +104,9 @@ pub struct ReportArgs {
 /// `fringe cal history`.
 #[derive(Debug, Clone, Args)]
 pub struct HistoryArgs {
-    /// Database file [default: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Device serial [default: every device].
     #[arg(long)]
@@ -138,8 +142,9 @@ pub enum AuditCommand {
 /// `fringe audit export`.
 #[derive(Debug, Clone, Args)]
 pub struct AuditExportArgs {
-    /// Database file [default: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Start of the range [default: the beginning]: RFC 3339 with an
     /// offset (2026-12-01T06:00+01:00, ...Z); without an offset it is local
@@ -165,8 +170,9 @@ pub struct AuditVerifyArgs {
     #[arg(value_name = "DIR")]
     pub dir: Option<PathBuf>,
     /// Database to check (its integrity, its own chain, and the bundle
-    /// against it) [default without a bundle: `db` in the line file].
-    #[arg(long, value_name = "FILE")]
+    /// against it): a file or a postgres:// URL [default without a bundle:
+    /// `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Print JSON.
     #[arg(long)]

@@ -138,9 +138,9 @@ pub fn run_adjust(args: &AdjustArgs) -> anyhow::Result<()> {
     let pairs = match (&args.pairs, &args.db) {
         (Some(p), _) => cal::pairs_from_csv(p, &args.cal)?,
         (None, Some(db)) => {
-            let store = crate::store::Store::open_read_only(db)?;
-            let data = fringe_quality::analysis::load(&store, args.serial.as_deref())?;
-            cal::pairs_from_line(&data, &file.id, db)
+            let store = crate::store::AnyStore::open_read_only(db)?;
+            let data = fringe_quality::analysis::load(store.get(), args.serial.as_deref())?;
+            cal::pairs_from_line(&data, &file.id, store.get().path())
         }
         (None, None) => anyhow::bail!("give the lab pairs with --pairs FILE.csv or --db FILE"),
     };

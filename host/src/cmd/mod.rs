@@ -152,6 +152,8 @@ pub fn db_path(db: Option<&Path>, cfg: &LineConfig) -> anyhow::Result<PathBuf> {
             flag: "--db",
             key: "db",
         })?;
+    // Refused before any device is connected or file touched.
+    crate::store::sqlite_only(&db)?;
     let cannot = |reason: String| crate::store::StoreError::CannotOpen {
         path: db.clone(),
         reason,
@@ -182,6 +184,7 @@ pub fn with_db<T>(
     db: &Path,
     work: impl FnOnce(&mut Store) -> anyhow::Result<T>,
 ) -> anyhow::Result<T> {
+    crate::store::sqlite_only(db)?;
     let existed = db.exists();
     let mut store = Store::open(db)?;
     let result = work(&mut store);

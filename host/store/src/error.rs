@@ -104,6 +104,28 @@ pub enum StoreError {
         /// Why.
         reason: String,
     },
+    /// The database server cannot be reached, or the connection to it was
+    /// lost (a server back end only; the operation may succeed after a
+    /// reconnect).
+    #[error("database {path} is unreachable: {reason}; nothing of this operation was stored: reconnect and retry")]
+    Unreachable {
+        /// Database (its connection, without the password).
+        path: PathBuf,
+        /// What the client or the server said.
+        reason: String,
+    },
+    /// The device is leased to another writer (or to none), and this
+    /// writer only writes devices it holds (a back end shared by several
+    /// gateways).
+    #[error("database {path}: device {serial} is not leased to this writer ({holder}); nothing was stored")]
+    NotOwner {
+        /// Database.
+        path: PathBuf,
+        /// Device serial.
+        serial: String,
+        /// Who holds it, or why it is not held (for a person).
+        holder: String,
+    },
     /// Any other failure of the back end.
     #[error("database {path}: {source}")]
     Backend {
@@ -115,12 +137,16 @@ pub enum StoreError {
 }
 
 impl StoreError {
-    /// Whether the failure is of the disk or of another process (locked,
-    /// read-only, full), so that the same operation may succeed later.
+    /// Whether the failure is of the disk, of another process or of the
+    /// connection (locked, read-only, full, unreachable), so that the same
+    /// operation may succeed later.
     pub fn is_transient(&self) -> bool {
         matches!(
             self,
-            StoreError::Locked { .. } | StoreError::ReadOnly { .. } | StoreError::DiskFull { .. }
+            StoreError::Locked { .. }
+                | StoreError::ReadOnly { .. }
+                | StoreError::DiskFull { .. }
+                | StoreError::Unreachable { .. }
         )
     }
 
