@@ -341,6 +341,8 @@ fn test(args: &[String]) -> Result<()> {
                 "outside",
                 "--test",
                 "plant",
+                "--test",
+                "gateway",
                 "--",
                 "--ignored",
             ])
