@@ -97,6 +97,9 @@ impl ExitCode {
                     .downcast_ref::<crate::samples::SampleError>()
                     .is_some()
                 || cause
+                    .downcast_ref::<fringe_gateway::site::SiteError>()
+                    .is_some()
+                || cause
                     .downcast_ref::<crate::product_file::ProductFileError>()
                     .is_some()
             {

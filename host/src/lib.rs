@@ -64,9 +64,10 @@ pub fn stop_flag() -> anyhow::Result<std::sync::Arc<std::sync::atomic::AtomicBoo
 /// # Errors
 /// The command's error; [`exit::ExitCode::for_error`] maps it to an exit code.
 pub fn run(cli: Cli) -> anyhow::Result<()> {
-    let cfg = match &cli.config {
-        Some(p) => LineConfig::load(p)?,
-        None => LineConfig::default(),
+    // For the gateway, --config names the site file, not a line file.
+    let cfg = match (&cli.config, &cli.command) {
+        (_, Command::Gateway(_)) | (None, _) => LineConfig::default(),
+        (Some(p), _) => LineConfig::load(p)?,
     };
     timefmt::set_utc(cli.utc);
     match &cli.command {
@@ -86,5 +87,6 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         }
         Command::Audit(a) => quality::audit_cmd(a, &cfg),
         Command::Demo(a) => demo::run(a).map(|_| ()),
+        Command::Gateway(a) => cmd::gateway::gateway(a, cli.config.as_deref(), stop_flag()?),
     }
 }

@@ -343,6 +343,8 @@ fn test(args: &[String]) -> Result<()> {
                 "plant",
                 "--test",
                 "postgres",
+                "--test",
+                "gateway",
                 "--",
                 "--ignored",
             ])

@@ -9,6 +9,8 @@
 //!   MQTT broker as Sparkplug B (or plain JSON), QoS 1, with a
 //!   store-and-forward buffer on disk.
 //! - [`web`]: the read-only live page for the control room.
+//! - [`site`]: site files; [`run`]: the gateway itself, a line session per
+//!   device into one store ([`shared`]) feeding the outputs above.
 //!
 //! Time comes in as [`std::time::Instant`] arguments where ages matter, so
 //! tests drive it; nothing here prints.
@@ -19,5 +21,8 @@ pub mod live;
 pub mod modbus;
 pub mod mqtt;
 pub mod outbox;
+pub mod run;
+pub mod shared;
+pub mod site;
 pub mod sparkplug;
 pub mod web;

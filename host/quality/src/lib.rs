@@ -13,7 +13,8 @@
 //! - [`plots`], [`report`]: SVG charts and the HTML report;
 //! - [`views`]: what the commands show (drift, report, history, lab
 //!   samples, audit summaries), written to a writer the caller gives;
-//! - [`timefmt`]: times as people read and type them.
+//! - [`timefmt`]: times as people read and type them;
+//! - [`watch`]: the live drift check of a streaming device (monitor, gateway).
 //!
 //! Nothing here prints to a terminal, parses a command line or exits.
 #![forbid(unsafe_code)]
@@ -29,3 +30,4 @@ pub mod report;
 pub mod samples;
 pub mod timefmt;
 pub mod views;
+pub mod watch;

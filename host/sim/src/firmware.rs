@@ -7,8 +7,37 @@ use fringe_firmware::sim::{Material, Scenario as FwScenario};
 use fringe_firmware::{Device, DeviceConfig, RamFlash, SimFrontend};
 use fringe_protocol::ResetCause;
 
+use fringe_firmware::sim::{exact_calibration, SIM_CELL};
+use fringe_protocol::auth::sign;
+use fringe_protocol::frame::encode_vec;
+use fringe_protocol::{CellCal, CellPoint, DeviceFrame, FrameDecoder, HostFrame, Request};
+
 use crate::device::{Bench, SimDevice};
-use crate::scenario::{ClockStart, Conditions, Scenario};
+use crate::scenario::{
+    CalibrationSection, CellCalSource, ClockStart, Conditions, ProductCalSource, Scenario,
+};
+
+/// The simulated cell at the device's two frequencies `freqs_hz` as
+/// a bench calibration finds it: its stray and cell capacitances seen
+/// through the lead resonance, and the board's sensor/reference channel
+/// gain ratio (consistency values of the simulator, not a measurement).
+pub fn simulator_cell(freqs_hz: [f32; 2]) -> CellCal {
+    let g = 1.012 / 0.994;
+    let p = |f: f32| {
+        let h = 1.0 - (f / SIM_CELL.f_res_hz) * (f / SIM_CELL.f_res_hz);
+        CellPoint {
+            freq_hz: f,
+            stray_pf: SIM_CELL.stray_pf * g / h,
+            cell_pf: SIM_CELL.cell_pf * g / h,
+            g_offset_s: SIM_CELL.g_offset_s * g,
+        }
+    };
+    CellCal {
+        points: [p(freqs_hz[0]), p(freqs_hz[1])],
+        reference_ratio: 0.0,
+        made_s: 0,
+    }
+}
 
 /// Why the simulated device could not start.
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
@@ -80,7 +109,68 @@ impl FirmwareSim {
         };
         s.start_clock(0);
         s.set_conditions(&scenario.at(0.0));
+        if let Some(c) = &scenario.calibration {
+            let name = c.product_name.as_deref().unwrap_or(&scenario.product.name);
+            // Calibrated at the line's bulk density at the start (a
+            // density change later reads as a moisture change, as it does
+            // on a real line).
+            let mut product = s.product;
+            product.mixture.bulk_density_kg_m3 = scenario.at(0.0).bulk_density_kg_m3 as f32;
+            s.commission(&key, c, &product, name)?;
+        }
         Ok(s)
+    }
+
+    /// Writes the scenario's calibrations into the device as a host would
+    /// (signed requests through its own protocol handler): the cell
+    /// calibration, the product calibration of `product` in slot 0, and
+    /// selects it.
+    fn commission(
+        &mut self,
+        key: &[u8; 32],
+        c: &CalibrationSection,
+        product: &SynthProduct<f32>,
+        name: &str,
+    ) -> Result<(), BootError> {
+        let cell = match c.cell {
+            CellCalSource::Simulator => simulator_cell(self.config.measure.freqs_hz),
+        };
+        let product = match c.product {
+            ProductCalSource::Exact => exact_calibration(product, name),
+        };
+        let writes = [
+            Request::WriteCellCal(cell),
+            Request::WriteProductCal {
+                slot: 0,
+                cal: product,
+            },
+            Request::SelectProduct { slot: 0 },
+        ];
+        let serial = self.config.serial.clone();
+        let Some(d) = self.device.as_mut() else {
+            return Err(BootError::Boot("no device".into()));
+        };
+        for (i, request) in writes.into_iter().enumerate() {
+            let what = format!("{request:?}");
+            let id = i as u16 + 1;
+            let auth = sign(key, serial.as_str(), u32::from(id), &request);
+            let frame = encode_vec(&HostFrame { id, auth, request })
+                .map_err(|e| BootError::Boot(format!("commissioning frame: {e}")))?;
+            let mut out = Vec::new();
+            d.poll(0, &frame, &mut |b: &[u8]| out.extend_from_slice(b));
+            let mut dec = FrameDecoder::<DeviceFrame>::new();
+            let answered = dec
+                .push(&out)
+                .flatten()
+                .any(|f| matches!(f, DeviceFrame::Response { id: got, .. } if got == id));
+            if !answered {
+                return Err(BootError::Boot(format!(
+                    "commissioning: the device did not accept {}",
+                    what.split(['(', ' ', '{']).next().unwrap_or("a request")
+                )));
+            }
+        }
+        Ok(())
     }
 
     /// Sets the clock from the simulated battery-backed clock, if it has one.

@@ -10,9 +10,10 @@
 //!   [`device::SimDevice`] seam;
 //! - [`pty`]: the simulator on a pseudo-terminal, with line faults
 //!   ([`faults`]) and disconnects (`fringe sim`);
+//! - [`live`]: a scenario's device inside this process on the wall clock
+//!   (a gateway's `sim:` devices);
 //! - [`port`]: a simulated device inside this process behind the link's
-//!   `Port` seam, on a virtual clock (the demo, tests, a gateway's
-//!   simulated devices).
+//!   `Port` seam, on a virtual clock (the demo and tests).
 //!
 //! It prints nothing: what happens is told to a callback.
 #![forbid(unsafe_code)]
@@ -21,6 +22,7 @@
 pub mod device;
 pub mod faults;
 pub mod firmware;
+pub mod live;
 pub mod port;
 pub mod pty;
 pub mod scenario;

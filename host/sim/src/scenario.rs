@@ -29,6 +29,11 @@
 //! name = "wheat"
 //! dry_permittivity = 3.0            # permittivity of the dry solids (eps')
 //!
+//! [calibration]                    # optional: the device comes commissioned (else it starts uncalibrated)
+//! cell = "simulator"                # the simulated cell's own constants, as a bench calibration finds them
+//! product = "exact"                 # the synthetic product's own mixing law (SEC 0): a perfect lab's fit
+//! product_name = "HM wheat L2"      # the calibration's name on the device (default: product.name)
+//!
 //! [[empty]]                         # no product in front of the window
 //! from_s = 120
 //! to_s = 150
@@ -123,6 +128,40 @@ fn dry_eps() -> f64 {
     3.0
 }
 
+/// Which cell calibration a commissioned simulated device holds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum CellCalSource {
+    /// The simulated cell's own constants (`fringe_firmware::sim::SIM_CELL`)
+    /// at both frequencies, as a bench calibration of it finds them.
+    Simulator,
+}
+
+/// Which product calibration a commissioned simulated device holds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ProductCalSource {
+    /// The synthetic product's own relaxation law and mixture
+    /// (`fringe_firmware::sim::exact_calibration`): what a perfect lab would
+    /// fit, standard error of calibration 0 (a demo device, not a claim
+    /// about real products).
+    Exact,
+}
+
+/// The `[calibration]` table: the device starts commissioned, with a cell
+/// and a product calibration in force, so its readings carry moisture.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CalibrationSection {
+    /// The cell calibration.
+    pub cell: CellCalSource,
+    /// The product calibration (in slot 0, selected).
+    pub product: ProductCalSource,
+    /// Its name on the device (default: the `[product]` name).
+    #[serde(default)]
+    pub product_name: Option<String>,
+}
+
 /// One empty-line period.
 #[derive(Debug, Clone, Copy, PartialEq, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -199,6 +238,9 @@ pub struct Scenario {
     /// Line faults.
     #[serde(default)]
     pub link: LinkFaults,
+    /// The calibrations the device starts with (none: uncalibrated).
+    #[serde(default)]
+    pub calibration: Option<CalibrationSection>,
 }
 
 fn temp_default() -> Vec<Point> {
@@ -323,6 +365,19 @@ impl Scenario {
                 format!("{:?}", self.product.name),
                 "must be 1..=16 bytes",
             ));
+        }
+        if let Some(name) = self
+            .calibration
+            .as_ref()
+            .and_then(|c| c.product_name.as_ref())
+        {
+            if name.is_empty() || name.len() > fringe_protocol::NAME_LEN {
+                return Err(bad(
+                    "calibration.product_name",
+                    format!("{name:?}"),
+                    "must be 1..=16 bytes",
+                ));
+            }
         }
         let curves: [(&str, &Vec<Point>, f64, f64); 5] = [
             ("moisture_pct", &self.moisture_pct, 0.0, 100.0),

@@ -6,6 +6,7 @@
 pub mod cal;
 pub mod calcmd;
 pub mod demo;
+pub mod gateway;
 pub mod quality;
 
 use std::path::PathBuf;
@@ -78,6 +79,11 @@ pub enum Command {
     Audit(quality::AuditArgs),
     /// Run the whole job on a simulated device of an invented plant (the main demonstration).
     Demo(demo::DemoArgs),
+    /// Run every device of a site file into one store, serving the readings over Modbus TCP, MQTT and a live page.
+    #[command(
+        after_help = "Example:\n  fringe gateway --config host/sites/demo-site.toml\n  fringe gateway --config /etc/fringe/site.toml --json\nHere --config names the site file (devices, store, Modbus TCP, MQTT, live page; see docs/GATEWAY.md).\nCtrl-C or SIGTERM commits every device's readings and stops."
+    )]
+    Gateway(gateway::GatewayArgs),
 }
 
 /// Which port, at which speed.

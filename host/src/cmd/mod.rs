@@ -4,6 +4,7 @@
 
 pub mod cal;
 pub mod device;
+pub mod gateway;
 pub mod monitor;
 pub mod pull;
 pub mod quality;

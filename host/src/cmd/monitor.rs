@@ -13,10 +13,8 @@ use std::io::Write;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
-use anyhow::Context;
 use fringe_line::{Ctx, Note, Session, SessionOptions, Summary};
 use fringe_protocol::{Flags, Reading};
-use fringe_quality::drift::{Direction, Quantity};
 
 use crate::cli::MonitorArgs;
 use crate::config::{AlarmLimits, LineConfig};
@@ -39,17 +37,10 @@ pub struct MonitorSummary {
     pub drift_alarms: Vec<serde_json::Value>,
 }
 
-/// The live drift check (see the module doc).
+/// The live drift check (see the module doc): `fringe_quality::watch`,
+/// with what the monitor says and counts.
 struct DriftWatch {
-    every: Option<Duration>,
-    last: Option<Instant>,
-    /// Episodes announced (or found at start): quantity, direction, time
-    /// of the episode's first alarm.
-    known: std::collections::HashSet<(Quantity, Direction, i64)>,
-    /// The check at the start of the run has been made.
-    primed: bool,
-    /// What was read from the store so far.
-    data: Option<fringe_quality::analysis::LineData>,
+    watch: fringe_quality::watch::DriftWatch,
     alarms_before: usize,
     failures: u32,
     alarms: Vec<serde_json::Value>,
@@ -59,71 +50,25 @@ impl DriftWatch {
     /// The drift check, never fatal: the readings keep being stored if it
     /// fails (the failure is said, and counted in the summary).
     fn watch(&mut self, store: &Store, serial: &str, streamed: u64, view: &mut View, force: bool) {
-        if let Err(e) = self.check(store, serial, streamed, view, force) {
-            self.failures += 1;
-            view.notice(&format!(
-                "drift check failed ({e:#}); readings are still being stored, `fringe drift` can be run on the database"
-            ));
-        }
-    }
-
-    /// Runs the drift monitors if due (or `force`d) and announces new alarms.
-    fn check(
-        &mut self,
-        store: &Store,
-        serial: &str,
-        streamed: u64,
-        view: &mut View,
-        force: bool,
-    ) -> anyhow::Result<()> {
-        let Some(every) = self.every else {
-            return Ok(());
-        };
-        if !force && self.last.is_some_and(|t| t.elapsed() < every) {
-            return Ok(());
-        }
-        self.last = Some(Instant::now());
-        // The first check is the one at the start of the run (before the
-        // stream), even when nothing is stored yet: what it finds was there
-        // before.
-        let at_start = !self.primed;
-        self.primed = true;
-        // Read once, then only what was added since (see `LineData::refresh`).
-        let data = match self.data.as_mut() {
-            Some(d) => {
-                d.refresh(store)
-                    .context("reading the stored data for the drift monitors")?;
-                d
-            }
-            None => match fringe_quality::analysis::load(store, Some(serial)) {
-                Ok(d) => self.data.insert(d),
-                // Nothing stored for the device yet: nothing to watch.
-                Err(_) if store.last_seq(serial)?.is_none() => return Ok(()),
-                Err(e) => {
-                    return Err(anyhow::Error::new(e)
-                        .context("reading the stored data for the drift monitors"))
-                }
-            },
-        };
-        let mut fresh = Vec::new();
-        for t in data.traces() {
-            for a in t.episodes() {
-                if self.known.insert((a.quantity, a.direction, a.time_ms)) {
-                    fresh.push(a);
-                }
-            }
-        }
-        if at_start {
-            self.alarms_before = fresh.len();
-            if !fresh.is_empty() {
+        let checked = match self.watch.check(store, serial, Instant::now(), force) {
+            Ok(c) => c,
+            Err(e) => {
+                self.failures += 1;
                 view.notice(&format!(
-                    "{} drift alarm(s) already in the record for {serial} (details: `fringe drift`)",
-                    fresh.len(),
+                    "drift check failed (reading the stored data for the drift monitors: {e}); readings are still being stored, `fringe drift` can be run on the database"
+                ));
+                return;
+            }
+        };
+        if let Some(before) = checked.before {
+            self.alarms_before = before;
+            if before > 0 {
+                view.notice(&format!(
+                    "{before} drift alarm(s) already in the record for {serial} (details: `fringe drift`)",
                 ));
             }
-            return Ok(());
         }
-        for a in fresh {
+        for a in checked.fresh {
             let text = format!("DRIFT ALARM: {}", a.message());
             let text = if view.style.tty {
                 view.style.paint("1;31", &text)
@@ -135,7 +80,6 @@ impl DriftWatch {
             v["announced_after_streamed"] = streamed.into();
             self.alarms.push(v);
         }
-        Ok(())
     }
 }
 
@@ -345,11 +289,9 @@ fn run(
         broken: None,
     };
     let mut drift = DriftWatch {
-        every: (args.drift_every_s > 0.0).then(|| Duration::from_secs_f64(args.drift_every_s)),
-        last: None,
-        known: Default::default(),
-        primed: false,
-        data: None,
+        watch: fringe_quality::watch::DriftWatch::new(
+            (args.drift_every_s > 0.0).then(|| Duration::from_secs_f64(args.drift_every_s)),
+        ),
         alarms_before: 0,
         failures: 0,
         alarms: Vec::new(),

@@ -1,0 +1,620 @@
+//! The gateway: a line session per device of a site, all into one store,
+//! feeding the live table that the Modbus TCP server, the MQTT publisher
+//! and the live page serve.
+//!
+//! Each device runs on its own thread (a port that vanishes makes only its
+//! own session wait and reconnect) with a [`SharedStore`] handle, so the
+//! sessions of all devices write through one store, one transaction per
+//! batch. Each session has what `fringe monitor` has (`fringe_line`):
+//! gapless streaming with gap backfill, catch-up from the device log at
+//! the start and after each reconnect, batching (so a kill loses at most
+//! the batch in hand, which the next start reads back from the device
+//! log), the device clock checked and set with the device key, and the
+//! live drift check of `fringe drift` (`fringe_quality::watch`) with its
+//! alarms on the live page and MQTT.
+//!
+//! Setting the stop flag commits every session's batch and ends the run
+//! ([`Gateway::wait`]). Nothing here prints: what happens is told to a
+//! callback ([`Notice`]) and the state of each device is read with
+//! [`Gateway::status`].
+
+use std::net::SocketAddr;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+
+use fringe_line::{ClockCheck, Ctx, LineError, Note, Session, SessionOptions, Summary};
+use fringe_link::{Link, LinkOptions, Opener};
+use fringe_protocol::auth::Key;
+use fringe_quality::watch::DriftWatch;
+use fringe_store::RecordStore;
+
+use crate::live::{AlarmNote, LiveTable};
+use crate::modbus::ModbusServer;
+use crate::mqtt::Publisher;
+use crate::shared::SharedStore;
+use crate::site::{DeviceSpec, Site};
+use crate::web::WebServer;
+
+/// Wait before a device whose session failed is tried again.
+pub const RETRY_AFTER: Duration = Duration::from_secs(5);
+
+/// One device to run: its place in the site file, how to open its port
+/// (again on every retry), and its key.
+pub struct DeviceRun {
+    /// The device as the site file gives it.
+    pub spec: DeviceSpec,
+    /// Makes an opener of its port (a serial port, or a simulated device).
+    pub open: Box<dyn Fn() -> Box<dyn Opener> + Send + Sync>,
+    /// The device key: lets the session set the device clock.
+    pub key: Option<Key>,
+    /// Link options (answer timeout, handshakes, reconnect backoff).
+    pub link: LinkOptions,
+}
+
+impl std::fmt::Debug for DeviceRun {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("DeviceRun")
+            .field("spec", &self.spec)
+            .field("key", &self.key.map(|_| "<key>"))
+            .finish()
+    }
+}
+
+/// What a device is doing.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum DeviceState {
+    /// Opening the port, handshake, catching up from the device log.
+    Connecting,
+    /// Streaming readings.
+    Streaming,
+    /// The port vanished or the device went quiet: reopening it.
+    Reconnecting,
+    /// The session failed (the error says why); tried again after a while.
+    Failed,
+    /// Stopped (committed).
+    Stopped,
+}
+
+/// The state of one device, for status lines.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct DeviceStatus {
+    /// Modbus unit id.
+    pub unit: u8,
+    /// The port as the site file gives it.
+    pub port: String,
+    /// The device's tag in the site file.
+    pub tag: String,
+    /// Device serial (once it has answered).
+    pub serial: Option<String>,
+    /// What it is doing.
+    pub state: DeviceState,
+    /// The latest reading: sequence (`boot:counter`).
+    pub seq: Option<String>,
+    /// Its moisture, % (none: no valid value).
+    pub moisture_pct: Option<f32>,
+    /// Its standard uncertainty, %.
+    pub uncertainty_pct: Option<f32>,
+    /// Its product temperature, C.
+    pub temperature_c: Option<f32>,
+    /// Its quality flags, by name.
+    pub flags: Vec<String>,
+    /// What the line sessions of this run did (summed over reconnects).
+    #[serde(flatten)]
+    pub line: Summary,
+    /// Drift alarm episodes raised during this run.
+    pub drift_alarms: u64,
+    /// The last error, in words.
+    pub error: Option<String>,
+}
+
+/// How weighty a notice is.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Level {
+    /// Something that happened (clock set, caught up, reconnected).
+    Info,
+    /// A drift alarm.
+    Alarm,
+    /// A failure (the device is tried again).
+    Error,
+}
+
+/// Something that happened to one device.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct Notice {
+    /// Modbus unit id.
+    pub unit: u8,
+    /// Device serial, once known.
+    pub serial: Option<String>,
+    /// How weighty.
+    pub level: Level,
+    /// What happened, in words.
+    pub text: String,
+}
+
+/// Why the gateway could not start.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum GatewayError {
+    /// The Modbus TCP server could not listen.
+    #[error("Modbus TCP server on {addr}: {source}")]
+    Modbus {
+        /// Address.
+        addr: SocketAddr,
+        /// Why.
+        source: std::io::Error,
+    },
+    /// The live page could not listen.
+    #[error("live page on {addr}: {source}")]
+    Web {
+        /// Address.
+        addr: SocketAddr,
+        /// Why.
+        source: std::io::Error,
+    },
+    /// A device thread could not start.
+    #[error("starting the thread of unit {unit}: {source}")]
+    Thread {
+        /// Unit.
+        unit: u8,
+        /// Why.
+        source: std::io::Error,
+    },
+}
+
+/// What a gateway run did.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct GatewaySummary {
+    /// Readings newly committed to the store, all devices.
+    pub committed: u64,
+    /// Per device.
+    pub devices: Vec<DeviceStatus>,
+}
+
+/// A running gateway.
+pub struct Gateway {
+    status: Arc<Vec<Mutex<DeviceStatus>>>,
+    threads: Vec<std::thread::JoinHandle<()>>,
+    modbus: Option<ModbusServer>,
+    web: Option<WebServer>,
+    publisher: Option<Arc<Publisher>>,
+    table: Arc<LiveTable>,
+}
+
+impl std::fmt::Debug for Gateway {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Gateway")
+            .field("devices", &self.status.len())
+            .finish()
+    }
+}
+
+fn wall_ms() -> i64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map_or(0, |d| d.as_millis() as i64)
+}
+
+fn add(total: &mut Summary, s: Summary) {
+    total.streamed += s.streamed;
+    total.backfilled += s.backfilled;
+    total.stored += s.stored;
+    total.duplicates += s.duplicates;
+    total.lost += s.lost;
+    total.gaps += s.gaps;
+    total.reconnects += s.reconnects;
+    total.link_errors += s.link_errors;
+}
+
+impl Gateway {
+    /// Starts the servers the site asks for and one line session per
+    /// device, all into `store`; runs until `stop` is set. `publisher`:
+    /// the MQTT publisher, if the site has one (the caller starts it).
+    ///
+    /// # Errors
+    /// [`GatewayError`] when a server cannot listen (nothing was written).
+    pub fn start<S: RecordStore + Send + 'static>(
+        site: &Site,
+        store: S,
+        devices: Vec<DeviceRun>,
+        publisher: Option<Publisher>,
+        tell: Arc<dyn Fn(Notice) + Send + Sync>,
+        stop: Arc<AtomicBool>,
+    ) -> Result<Self, GatewayError> {
+        let table = Arc::new(LiveTable::new(site.stale_after));
+        for d in &devices {
+            table.register(d.spec.unit, "");
+            table.set_tag(d.spec.unit, &d.spec.tag);
+        }
+        let modbus = match site.modbus {
+            Some(addr) => Some(
+                ModbusServer::start(addr, Arc::clone(&table))
+                    .map_err(|source| GatewayError::Modbus { addr, source })?,
+            ),
+            None => None,
+        };
+        let web = match site.web {
+            Some(addr) => Some(
+                WebServer::start(addr, &site.name, Arc::clone(&table))
+                    .map_err(|source| GatewayError::Web { addr, source })?,
+            ),
+            None => None,
+        };
+        let publisher = publisher.map(Arc::new);
+        let status: Arc<Vec<Mutex<DeviceStatus>>> = Arc::new(
+            devices
+                .iter()
+                .map(|d| {
+                    Mutex::new(DeviceStatus {
+                        unit: d.spec.unit,
+                        port: d.spec.port_text.clone(),
+                        tag: d.spec.tag.clone(),
+                        serial: None,
+                        state: DeviceState::Connecting,
+                        seq: None,
+                        moisture_pct: None,
+                        uncertainty_pct: None,
+                        temperature_c: None,
+                        flags: Vec::new(),
+                        line: Summary::default(),
+                        drift_alarms: 0,
+                        error: None,
+                    })
+                })
+                .collect(),
+        );
+        let store = SharedStore::new(store);
+        let mut threads = Vec::new();
+        for (i, d) in devices.into_iter().enumerate() {
+            let unit = d.spec.unit;
+            let worker = Worker {
+                index: i,
+                run: d,
+                store: store.clone(),
+                table: Arc::clone(&table),
+                publisher: publisher.clone(),
+                status: Arc::clone(&status),
+                tell: Arc::clone(&tell),
+                stop: Arc::clone(&stop),
+                drift_every: site.drift_every,
+            };
+            let t = std::thread::Builder::new()
+                .name(format!("unit-{unit}"))
+                // A simulated device in process runs its firmware core on
+                // the thread that reads its port.
+                .stack_size(1 << 20)
+                .spawn(move || worker.run())
+                .map_err(|source| {
+                    // Stop the threads already started.
+                    stop.store(true, Ordering::Relaxed);
+                    GatewayError::Thread { unit, source }
+                })?;
+            threads.push(t);
+        }
+        Ok(Self {
+            status,
+            threads,
+            modbus,
+            web,
+            publisher,
+            table,
+        })
+    }
+
+    /// The state of every device, in site-file order.
+    pub fn status(&self) -> Vec<DeviceStatus> {
+        self.status
+            .iter()
+            .map(|s| s.lock().unwrap_or_else(|e| e.into_inner()).clone())
+            .collect()
+    }
+
+    /// Where the Modbus TCP server listens.
+    pub fn modbus_addr(&self) -> Option<SocketAddr> {
+        self.modbus.as_ref().map(ModbusServer::local_addr)
+    }
+
+    /// Where the live page is served.
+    pub fn web_addr(&self) -> Option<SocketAddr> {
+        self.web.as_ref().map(WebServer::local_addr)
+    }
+
+    /// The live table the servers serve.
+    pub fn table(&self) -> &Arc<LiveTable> {
+        &self.table
+    }
+
+    /// Whether every device thread has ended (after the stop flag).
+    pub fn finished(&self) -> bool {
+        self.threads
+            .iter()
+            .all(std::thread::JoinHandle::is_finished)
+    }
+
+    /// Waits for every device to commit and stop (set the stop flag
+    /// first), then stops the servers.
+    pub fn wait(mut self) -> GatewaySummary {
+        for t in self.threads.drain(..) {
+            // A device thread that panicked has committed what it could;
+            // its status says what it did.
+            let _ = t.join();
+        }
+        if let Some(m) = self.modbus.take() {
+            m.stop();
+        }
+        if let Some(w) = self.web.take() {
+            w.stop();
+        }
+        if let Some(p) = self.publisher.take() {
+            if let Ok(p) = Arc::try_unwrap(p) {
+                p.stop();
+            }
+        }
+        let devices = self.status();
+        GatewaySummary {
+            committed: devices.iter().map(|d| d.line.stored).sum(),
+            devices,
+        }
+    }
+}
+
+/// One device's thread.
+struct Worker<S> {
+    index: usize,
+    run: DeviceRun,
+    store: SharedStore<S>,
+    table: Arc<LiveTable>,
+    publisher: Option<Arc<Publisher>>,
+    status: Arc<Vec<Mutex<DeviceStatus>>>,
+    tell: Arc<dyn Fn(Notice) + Send + Sync>,
+    stop: Arc<AtomicBool>,
+    drift_every: Option<Duration>,
+}
+
+impl<S: RecordStore> Worker<S> {
+    fn unit(&self) -> u8 {
+        self.run.spec.unit
+    }
+
+    fn update(&self, f: impl FnOnce(&mut DeviceStatus)) {
+        if let Some(s) = self.status.get(self.index) {
+            f(&mut s.lock().unwrap_or_else(|e| e.into_inner()));
+        }
+    }
+
+    fn say(&self, serial: Option<&str>, level: Level, text: String) {
+        (self.tell)(Notice {
+            unit: self.unit(),
+            serial: serial.map(str::to_string),
+            level,
+            text,
+        });
+    }
+
+    fn stopped(&self) -> bool {
+        self.stop.load(Ordering::Relaxed)
+    }
+
+    fn run(self) {
+        let mut total = Summary::default();
+        let mut drift = DriftWatch::new(self.drift_every);
+        let mut serial: Option<String> = None;
+        while !self.stopped() {
+            let result = self.session(&mut total, &mut drift, &mut serial);
+            self.table.set_connected(self.unit(), false);
+            match result {
+                Ok(()) => break,
+                Err(e) => {
+                    let text = e.to_string();
+                    self.update(|s| {
+                        s.state = DeviceState::Failed;
+                        s.error = Some(text.clone());
+                    });
+                    self.say(
+                        serial.as_deref(),
+                        Level::Error,
+                        format!("{text}; trying again in {} s", RETRY_AFTER.as_secs()),
+                    );
+                    if let (Some(p), Some(s)) = (&self.publisher, serial.as_deref()) {
+                        let _ = p.device_lost(s);
+                    }
+                    let until = Instant::now() + RETRY_AFTER;
+                    while Instant::now() < until && !self.stopped() {
+                        std::thread::sleep(Duration::from_millis(50));
+                    }
+                }
+            }
+        }
+        self.update(|s| {
+            s.state = DeviceState::Stopped;
+            s.line = total;
+        });
+    }
+
+    /// One session: connect, catch up, stream until stopped. `Ok` when
+    /// stopped; an error that a reconnect could not cure otherwise.
+    fn session(
+        &self,
+        total: &mut Summary,
+        drift: &mut DriftWatch,
+        serial_out: &mut Option<String>,
+    ) -> Result<(), LineError> {
+        self.update(|s| s.state = DeviceState::Connecting);
+        let link = Link::connect((self.run.open)(), self.run.link)?;
+        let mut store = self.store.clone();
+        let unit = self.unit();
+        let now = Instant::now;
+        let wall = wall_ms;
+        let serial_cell: Mutex<Option<String>> = Mutex::new(None);
+        let mut tell = |n: Note<'_>| self.on_note(unit, &serial_cell, n);
+        let mut ctx = Ctx {
+            stop: &self.stop,
+            wall_ms: &wall,
+            now: &now,
+            tell: &mut tell,
+        };
+        let mut session = Session::open(
+            link,
+            &mut store,
+            SessionOptions {
+                key: self.run.key,
+                period_ms: None,
+            },
+            &mut ctx,
+        )?;
+        let serial = session.serial().to_string();
+        *serial_cell.lock().unwrap_or_else(|e| e.into_inner()) = Some(serial.clone());
+        *serial_out = Some(serial.clone());
+        self.table.register(unit, &serial);
+        self.update(|s| s.serial = Some(serial.clone()));
+        let result = (|| -> Result<(), LineError> {
+            session.catch_up(&mut store, &mut ctx)?;
+            self.drift(drift, &serial, true);
+            session.subscribe(&mut ctx)?;
+            self.table.set_connected(unit, true);
+            self.update(|s| {
+                s.state = DeviceState::Streaming;
+                s.error = None;
+            });
+            while !self.stopped() {
+                let polled = session.poll(&mut store, &mut ctx)?;
+                if polled.stopped {
+                    break;
+                }
+                let sum = session.summary();
+                let mut t = *total;
+                add(&mut t, sum);
+                self.update(|s| s.line = t);
+                if polled.committed.is_some() {
+                    self.drift(drift, &serial, false);
+                }
+            }
+            Ok(())
+        })();
+        let (sum, flushed) = session.finish(&mut store);
+        add(total, sum);
+        let t = *total;
+        self.update(|s| s.line = t);
+        result?;
+        flushed
+    }
+
+    /// The live drift check (never fatal: the readings are stored anyway).
+    fn drift(&self, drift: &mut DriftWatch, serial: &str, force: bool) {
+        let checked = match drift.check(&self.store, serial, Instant::now(), force) {
+            Ok(c) => c,
+            Err(e) => {
+                self.say(
+                    Some(serial),
+                    Level::Error,
+                    format!("drift check failed ({e}); readings are still being stored"),
+                );
+                return;
+            }
+        };
+        if let Some(n) = checked.before.filter(|n| *n > 0) {
+            self.say(
+                Some(serial),
+                Level::Info,
+                format!("{n} drift alarm(s) already in the record (details: `fringe drift`)"),
+            );
+        }
+        for a in checked.fresh {
+            let text = a.message();
+            self.table.alarm(
+                self.unit(),
+                AlarmNote {
+                    time_ms: u64::try_from(a.time_ms).unwrap_or(0),
+                    text: text.clone(),
+                    advice: a.action.advice().to_string(),
+                },
+            );
+            if let Some(p) = &self.publisher {
+                if let Err(e) = p.alarm(serial, &text, u64::try_from(a.time_ms).unwrap_or(0)) {
+                    self.say(Some(serial), Level::Error, format!("MQTT buffer: {e}"));
+                }
+            }
+            self.update(|s| s.drift_alarms += 1);
+            self.say(Some(serial), Level::Alarm, format!("DRIFT ALARM: {text}"));
+        }
+    }
+
+    fn on_note(&self, unit: u8, serial: &Mutex<Option<String>>, n: Note<'_>) {
+        let serial = serial.lock().unwrap_or_else(|e| e.into_inner()).clone();
+        let serial = serial.as_deref();
+        match n {
+            Note::Reading(r) => {
+                self.table.update(unit, r, Instant::now());
+                if let (Some(p), Some(s)) = (&self.publisher, serial) {
+                    if let Err(e) = p.reading(s, r) {
+                        self.say(Some(s), Level::Error, format!("MQTT buffer: {e}"));
+                    }
+                }
+                self.update(|s| {
+                    s.seq = Some(r.seq.to_string());
+                    s.moisture_pct = r.moisture_pct;
+                    s.uncertainty_pct = r.moisture_pct.map(|_| r.uncertainty_pct);
+                    s.temperature_c = Some(r.temperature_c);
+                    s.flags = r.flags.names().map(str::to_string).collect();
+                });
+            }
+            Note::Clock(c) => {
+                let was = match c.before {
+                    ClockCheck::Unset { .. } => "was not set".to_string(),
+                    ClockCheck::Set { off_ms, .. } => {
+                        format!("was off by {:+.3} s", off_ms as f64 / 1000.0)
+                    }
+                };
+                if c.set_to_ms.is_some() {
+                    self.say(serial, Level::Info, format!("device clock {was}; set"));
+                } else if c.needs_key {
+                    self.say(
+                        serial,
+                        Level::Info,
+                        format!("device clock {was}; give key_file in the site file to set it"),
+                    );
+                }
+            }
+            Note::ClockRefused(e) => {
+                self.say(
+                    serial,
+                    Level::Error,
+                    format!("the device clock was not set: {e}"),
+                );
+            }
+            Note::CaughtUp { received, lost } if received > 0 || lost > 0 => self.say(
+                serial,
+                Level::Info,
+                format!(
+                    "{received} readings from the device log stored{}",
+                    if lost > 0 {
+                        format!(", {lost} no longer in it (lost)")
+                    } else {
+                        String::new()
+                    }
+                ),
+            ),
+            Note::Lost { count, after } => self.say(
+                serial,
+                Level::Error,
+                format!("{count} readings after {after} were no longer in the device log (lost)"),
+            ),
+            Note::Reconnecting(why) => {
+                self.table.set_connected(unit, false);
+                self.update(|s| s.state = DeviceState::Reconnecting);
+                if let (Some(p), Some(s)) = (&self.publisher, serial) {
+                    let _ = p.device_lost(s);
+                }
+                self.say(serial, Level::Error, format!("{why}: reconnecting"));
+            }
+            Note::Reconnected => {
+                self.update(|s| s.state = DeviceState::Streaming);
+                self.table.set_connected(unit, true);
+                self.say(serial, Level::Info, "reconnected".into());
+            }
+            _ => {}
+        }
+    }
+}

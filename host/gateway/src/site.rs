@@ -1,0 +1,584 @@
+//! Site files: what one gateway runs (TOML, our own schema).
+//!
+//! ```toml
+//! name = "Fenwick Feed Mill"          # for people and the live page
+//! store = "fenwick.db"                # SQLite file (relative paths: to this file's folder)
+//! stale_after_s = 10                  # a reading older than this is served as stale [10]
+//! drift_every_s = 60                  # drift monitors per device every S seconds; 0 = off [60]
+//! status_every_s = 10                 # plain/JSON status lines every S seconds [10]
+//!
+//! [modbus]                            # optional; absent: no Modbus TCP server
+//! listen = "127.0.0.1:1502"           # localhost unless said otherwise (Modbus has no authentication)
+//!
+//! [web]                               # optional: the live page
+//! listen = "127.0.0.1:8150"
+//!
+//! [mqtt]                              # optional: Sparkplug B (or JSON) to the plant's broker
+//! broker = "broker.plant.example:8883"
+//! client_id = "fringe-fenwick-1"
+//! tls_ca = "plant-ca.pem"             # PEM of the CA that signed the broker's certificate: TLS
+//! username = "fringe"                 # with password_file
+//! password_file = "/etc/fringe/mqtt-password"
+//! group = "fenwick"                   # Sparkplug group id
+//! node = "gateway-1"                  # Sparkplug edge node id
+//! json = false                        # true: plain JSON on {json_prefix}/{device}/reading instead
+//! json_prefix = "fringe"
+//!
+//! [[device]]
+//! unit = 1                            # Modbus unit id 1..=247, one per device
+//! port = "/dev/ttyUSB0"               # a serial port, or "sim:SCENARIO.toml" (a simulated device in process)
+//! baud = 115200
+//! key_file = "fnw-pc-0001.key"        # optional: lets the gateway set the device clock
+//! tag = "pellet cooler outlet"        # optional, for people
+//! ```
+//!
+//! Every error names the file, the line and the field.
+
+use std::collections::BTreeMap;
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use serde::Deserialize;
+use toml::Spanned;
+
+/// The baud rate of a device when the site file gives none.
+pub const DEFAULT_BAUD: u32 = 115_200;
+
+/// A site file that cannot be used.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum SiteError {
+    /// The file could not be read.
+    #[error("cannot read site file {path}: {source}")]
+    Read {
+        /// File.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+    /// Not valid TOML for the schema (the message names the key).
+    #[error("{path}:{line}:{column}: {message}")]
+    Parse {
+        /// File.
+        path: PathBuf,
+        /// 1-based line.
+        line: usize,
+        /// 1-based column.
+        column: usize,
+        /// What is wrong.
+        message: String,
+    },
+    /// A value is not allowed.
+    #[error("{path}:{line}: {field} = {value}: {rule}")]
+    Invalid {
+        /// File.
+        path: PathBuf,
+        /// 1-based line.
+        line: usize,
+        /// The field, dotted (`device[2].unit`).
+        field: String,
+        /// The value given.
+        value: String,
+        /// What is allowed.
+        rule: String,
+    },
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawSite {
+    #[serde(default)]
+    name: String,
+    store: Spanned<String>,
+    #[serde(default)]
+    stale_after_s: Option<Spanned<f64>>,
+    #[serde(default)]
+    drift_every_s: Option<Spanned<f64>>,
+    #[serde(default)]
+    status_every_s: Option<Spanned<f64>>,
+    #[serde(default)]
+    modbus: Option<RawListen>,
+    #[serde(default)]
+    web: Option<RawListen>,
+    #[serde(default)]
+    mqtt: Option<RawMqtt>,
+    #[serde(default)]
+    device: Vec<RawDevice>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawListen {
+    listen: Spanned<String>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawMqtt {
+    broker: Spanned<String>,
+    client_id: Spanned<String>,
+    #[serde(default)]
+    tls_ca: Option<String>,
+    #[serde(default)]
+    username: Option<Spanned<String>>,
+    #[serde(default)]
+    password_file: Option<String>,
+    #[serde(default)]
+    group: Option<String>,
+    #[serde(default)]
+    node: Option<String>,
+    #[serde(default)]
+    json: bool,
+    #[serde(default)]
+    json_prefix: Option<String>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawDevice {
+    unit: Spanned<i64>,
+    port: Spanned<String>,
+    #[serde(default)]
+    baud: Option<Spanned<i64>>,
+    #[serde(default)]
+    key_file: Option<String>,
+    #[serde(default)]
+    tag: Option<String>,
+}
+
+/// Where a device is.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum DevicePort {
+    /// A serial port at a baud rate.
+    Serial {
+        /// Path (`/dev/ttyUSB0`, a pseudo-terminal, a symlink to one).
+        path: String,
+        /// Baud rate.
+        baud: u32,
+    },
+    /// A simulated device of a scenario file, run in this process.
+    Sim {
+        /// The scenario file.
+        scenario: PathBuf,
+    },
+}
+
+/// One device of the site.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct DeviceSpec {
+    /// Modbus unit id, 1..=247.
+    pub unit: u8,
+    /// Where it is.
+    pub port: DevicePort,
+    /// The port as written in the site file (for messages).
+    pub port_text: String,
+    /// Its key file, if given.
+    pub key_file: Option<PathBuf>,
+    /// Its tag for people.
+    pub tag: String,
+    /// The line of its `port` in the site file.
+    pub line: usize,
+}
+
+/// MQTT settings.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct MqttSite {
+    /// Broker host.
+    pub host: String,
+    /// Broker port.
+    pub port: u16,
+    /// Client id.
+    pub client_id: String,
+    /// The CA's PEM file: TLS when set.
+    pub tls_ca: Option<PathBuf>,
+    /// User name and the file holding the password.
+    pub credentials: Option<(String, PathBuf)>,
+    /// Sparkplug group id.
+    pub group: String,
+    /// Sparkplug edge node id.
+    pub node: String,
+    /// Plain JSON topics under this prefix instead of Sparkplug B.
+    pub json_prefix: Option<String>,
+}
+
+/// A checked site file.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Site {
+    /// The file it came from.
+    pub path: PathBuf,
+    /// Site name.
+    pub name: String,
+    /// The SQLite store file.
+    pub store: PathBuf,
+    /// Readings older than this are served as stale.
+    pub stale_after: Duration,
+    /// Drift monitors per device this often (`None`: off).
+    pub drift_every: Option<Duration>,
+    /// Status lines this often (plain and JSON output).
+    pub status_every: Duration,
+    /// Modbus TCP address.
+    pub modbus: Option<SocketAddr>,
+    /// Live page address.
+    pub web: Option<SocketAddr>,
+    /// MQTT publishing.
+    pub mqtt: Option<MqttSite>,
+    /// The devices, in file order.
+    pub devices: Vec<DeviceSpec>,
+}
+
+/// 1-based line and column of byte offset `at` in `text`.
+fn line_column(text: &str, at: usize) -> (usize, usize) {
+    let before = text.get(..at.min(text.len())).unwrap_or(text);
+    let line = before.matches('\n').count() + 1;
+    let column = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
+    (line, column)
+}
+
+impl Site {
+    /// Reads and checks a site file.
+    ///
+    /// # Errors
+    /// [`SiteError`] naming the file, the line and the field.
+    pub fn load(path: &Path) -> Result<Self, SiteError> {
+        let text = std::fs::read_to_string(path).map_err(|source| SiteError::Read {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        Self::parse(path, &text)
+    }
+
+    /// Parses site-file `text` read from `path` (relative paths in it are
+    /// taken from `path`'s folder).
+    ///
+    /// # Errors
+    /// As [`Site::load`].
+    pub fn parse(path: &Path, text: &str) -> Result<Self, SiteError> {
+        let raw: RawSite = toml::from_str(text).map_err(|e| {
+            let (line, column) = e.span().map_or((1, 1), |s| line_column(text, s.start));
+            SiteError::Parse {
+                path: path.to_path_buf(),
+                line,
+                column,
+                message: e.message().trim().to_string(),
+            }
+        })?;
+        let dir = path
+            .parent()
+            .filter(|p| !p.as_os_str().is_empty())
+            .unwrap_or(Path::new("."));
+        let resolve = |p: &str| {
+            let p = PathBuf::from(p);
+            if p.is_absolute() {
+                p
+            } else {
+                dir.join(p)
+            }
+        };
+        let line_of = |span: std::ops::Range<usize>| line_column(text, span.start).0;
+        let bad = |span: std::ops::Range<usize>, field: &str, value: String, rule: &str| {
+            SiteError::Invalid {
+                path: path.to_path_buf(),
+                line: line_of(span),
+                field: field.into(),
+                value,
+                rule: rule.into(),
+            }
+        };
+        if raw.store.get_ref().trim().is_empty() {
+            return Err(bad(
+                raw.store.span(),
+                "store",
+                "\"\"".into(),
+                "names the SQLite file the readings go to",
+            ));
+        }
+        let seconds = |v: &Option<Spanned<f64>>,
+                       field: &str,
+                       default: f64,
+                       min: f64|
+         -> Result<f64, SiteError> {
+            match v {
+                None => Ok(default),
+                Some(s) => {
+                    let x = *s.get_ref();
+                    if x.is_finite()
+                        && (x == 0.0 && min == 0.0 || x >= min.max(0.1))
+                        && x <= 86_400.0
+                    {
+                        Ok(x)
+                    } else {
+                        Err(bad(
+                            s.span(),
+                            field,
+                            x.to_string(),
+                            &if min == 0.0 {
+                                "seconds, 0 (off) or 0.1 to 86400".to_string()
+                            } else {
+                                format!("seconds, {min} to 86400")
+                            },
+                        ))
+                    }
+                }
+            }
+        };
+        let stale = seconds(&raw.stale_after_s, "stale_after_s", 10.0, 1.0)?;
+        let drift = seconds(&raw.drift_every_s, "drift_every_s", 60.0, 0.0)?;
+        let status = seconds(&raw.status_every_s, "status_every_s", 10.0, 0.1)?;
+        let listen =
+            |l: &Option<RawListen>, field: &str| -> Result<Option<SocketAddr>, SiteError> {
+                match l {
+                    None => Ok(None),
+                    Some(l) => l.listen.get_ref().parse().map(Some).map_err(|_| {
+                        bad(
+                            l.listen.span(),
+                            field,
+                            format!("{:?}", l.listen.get_ref()),
+                            "an IP address and port, e.g. \"127.0.0.1:1502\"",
+                        )
+                    }),
+                }
+            };
+        let modbus = listen(&raw.modbus, "modbus.listen")?;
+        let web = listen(&raw.web, "web.listen")?;
+        let mqtt = match raw.mqtt {
+            None => None,
+            Some(m) => {
+                let (host, port) = m
+                    .broker
+                    .get_ref()
+                    .rsplit_once(':')
+                    .and_then(|(h, p)| Some((h.to_string(), p.parse::<u16>().ok()?)))
+                    .filter(|(h, p)| !h.is_empty() && *p > 0)
+                    .ok_or_else(|| {
+                        bad(
+                            m.broker.span(),
+                            "mqtt.broker",
+                            format!("{:?}", m.broker.get_ref()),
+                            "host:port, e.g. \"broker.plant.example:8883\"",
+                        )
+                    })?;
+                if m.client_id.get_ref().is_empty() {
+                    return Err(bad(
+                        m.client_id.span(),
+                        "mqtt.client_id",
+                        "\"\"".into(),
+                        "a client id unique on the broker",
+                    ));
+                }
+                let credentials = match (m.username, m.password_file) {
+                    (Some(u), Some(p)) => Some((u.into_inner(), resolve(&p))),
+                    (None, None) => None,
+                    (Some(u), None) => {
+                        return Err(bad(
+                            u.span(),
+                            "mqtt.username",
+                            format!("{:?}", u.get_ref()),
+                            "needs password_file too",
+                        ))
+                    }
+                    (None, Some(p)) => {
+                        return Err(bad(
+                            m.client_id.span(),
+                            "mqtt.password_file",
+                            format!("{p:?}"),
+                            "needs username too",
+                        ))
+                    }
+                };
+                Some(MqttSite {
+                    host,
+                    port,
+                    client_id: m.client_id.into_inner(),
+                    tls_ca: m.tls_ca.as_deref().map(resolve),
+                    credentials,
+                    group: m.group.unwrap_or_else(|| "fringe".into()),
+                    node: m.node.unwrap_or_else(|| "gateway".into()),
+                    json_prefix: m
+                        .json
+                        .then(|| m.json_prefix.unwrap_or_else(|| "fringe".into())),
+                })
+            }
+        };
+        if raw.device.is_empty() {
+            return Err(SiteError::Invalid {
+                path: path.to_path_buf(),
+                line: line_column(text, text.len()).0,
+                field: "device".into(),
+                value: "(none)".into(),
+                rule: "a site needs at least one [[device]]".into(),
+            });
+        }
+        let mut units: BTreeMap<u8, usize> = BTreeMap::new();
+        let mut ports: BTreeMap<String, usize> = BTreeMap::new();
+        let mut devices = Vec::new();
+        for (i, d) in raw.device.into_iter().enumerate() {
+            let u = *d.unit.get_ref();
+            let unit = u8::try_from(u)
+                .ok()
+                .filter(|u| (1..=247).contains(u))
+                .ok_or_else(|| {
+                    bad(
+                        d.unit.span(),
+                        &format!("device[{i}].unit"),
+                        u.to_string(),
+                        "a Modbus unit id, 1..=247",
+                    )
+                })?;
+            if let Some(other) = units.insert(unit, i) {
+                return Err(bad(
+                    d.unit.span(),
+                    &format!("device[{i}].unit"),
+                    u.to_string(),
+                    &format!("already the unit of device[{other}]; one unit id per device"),
+                ));
+            }
+            let text_port = d.port.get_ref().trim().to_string();
+            let baud = match &d.baud {
+                None => DEFAULT_BAUD,
+                Some(b) => u32::try_from(*b.get_ref())
+                    .ok()
+                    .filter(|b| (300..=4_000_000).contains(b))
+                    .ok_or_else(|| {
+                        bad(
+                            b.span(),
+                            &format!("device[{i}].baud"),
+                            b.get_ref().to_string(),
+                            "a baud rate, 300..=4000000",
+                        )
+                    })?,
+            };
+            let port = match text_port.strip_prefix("sim:") {
+                Some(s) if !s.trim().is_empty() => DevicePort::Sim {
+                    scenario: resolve(s.trim()),
+                },
+                Some(_) => {
+                    return Err(bad(
+                        d.port.span(),
+                        &format!("device[{i}].port"),
+                        format!("{text_port:?}"),
+                        "\"sim:\" needs a scenario file, e.g. \"sim:../scenarios/x.toml\"",
+                    ))
+                }
+                None if text_port.is_empty() => {
+                    return Err(bad(
+                        d.port.span(),
+                        &format!("device[{i}].port"),
+                        "\"\"".into(),
+                        "a serial port (/dev/ttyUSB0) or \"sim:SCENARIO.toml\"",
+                    ))
+                }
+                None => DevicePort::Serial {
+                    path: text_port.clone(),
+                    baud,
+                },
+            };
+            let key = match &port {
+                DevicePort::Serial { path, .. } => path.clone(),
+                DevicePort::Sim { scenario } => scenario.display().to_string(),
+            };
+            if let Some(other) = ports.insert(key, i) {
+                return Err(bad(
+                    d.port.span(),
+                    &format!("device[{i}].port"),
+                    format!("{text_port:?}"),
+                    &format!("already the port of device[{other}]; one device per port"),
+                ));
+            }
+            devices.push(DeviceSpec {
+                unit,
+                port,
+                port_text: text_port,
+                key_file: d.key_file.as_deref().map(resolve),
+                tag: d.tag.unwrap_or_default(),
+                line: line_of(d.port.span()),
+            });
+        }
+        Ok(Site {
+            path: path.to_path_buf(),
+            name: raw.name,
+            store: resolve(raw.store.get_ref()),
+            stale_after: Duration::from_secs_f64(stale),
+            drift_every: (drift > 0.0).then(|| Duration::from_secs_f64(drift)),
+            status_every: Duration::from_secs_f64(status),
+            modbus,
+            web,
+            mqtt,
+            devices,
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const GOOD: &str = r#"name = "Test mill"
+store = "t.db"
+
+[modbus]
+listen = "127.0.0.1:1502"
+
+[[device]]
+unit = 1
+port = "sim:a.toml"
+
+[[device]]
+unit = 2
+port = "/dev/ttyUSB0"
+baud = 9600
+"#;
+
+    fn parse(text: &str) -> Result<Site, SiteError> {
+        Site::parse(Path::new("/plant/site.toml"), text)
+    }
+
+    #[test]
+    fn a_good_file_resolves_paths_from_its_folder() {
+        let s = parse(GOOD).unwrap();
+        assert_eq!(s.store, PathBuf::from("/plant/t.db"));
+        assert_eq!(s.modbus, Some("127.0.0.1:1502".parse().unwrap()));
+        assert_eq!(
+            s.devices[0].port,
+            DevicePort::Sim {
+                scenario: PathBuf::from("/plant/a.toml")
+            }
+        );
+        assert_eq!(
+            s.devices[1].port,
+            DevicePort::Serial {
+                path: "/dev/ttyUSB0".into(),
+                baud: 9600
+            }
+        );
+        assert_eq!(s.drift_every, Some(Duration::from_secs(60)));
+        assert!(s.web.is_none() && s.mqtt.is_none());
+    }
+
+    #[test]
+    fn errors_name_file_line_and_field() {
+        let e = parse(&GOOD.replace("unit = 2", "unit = 1"))
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.starts_with("/plant/site.toml:12: device[1].unit = 1: already the unit of device[0]"),
+            "{e}"
+        );
+        let e = parse(&GOOD.replace("unit = 2", "unit = 300"))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains(":12: device[1].unit = 300"), "{e}");
+        let e = parse(&GOOD.replace("127.0.0.1:1502", "localhost"))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains(":5: modbus.listen"), "{e}");
+        let e = parse(&GOOD.replace("baud = 9600", "bauds = 9600"))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("site.toml:14:") && e.contains("bauds"), "{e}");
+        let e = parse(&GOOD.replace("port = \"sim:a.toml\"", "port = \"sim:\""))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains(":9: device[0].port"), "{e}");
+    }
+}

@@ -1,0 +1,364 @@
+//! `fringe gateway --config SITE.toml`: the site file read and checked,
+//! its simulated devices booted, the store opened, then
+//! `fringe_gateway::run::Gateway` until Ctrl-C or SIGTERM; this file only
+//! draws (one status line per device on a terminal, plain or JSON lines
+//! otherwise).
+
+use std::io::Write as _;
+use std::path::Path;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use anyhow::Context as _;
+use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+use fringe_gateway::run::{DeviceRun, DeviceState, DeviceStatus, Gateway, Level, Notice};
+use fringe_gateway::site::{DevicePort, Site};
+use fringe_link::{LinkOptions, Opener, SerialOpener};
+use fringe_sim::live::LiveSim;
+use fringe_sim::scenario::Scenario;
+
+use crate::cli::gateway::GatewayArgs;
+use crate::config::LineConfig;
+use crate::exit::UsageError;
+use crate::out::{self, Style};
+use crate::store::Store;
+
+/// `fringe gateway`.
+///
+/// # Errors
+/// A missing or bad site file (nothing is written then), a scenario or key
+/// file that cannot be used, a store that cannot be opened, a server
+/// address that cannot be bound.
+pub fn gateway(
+    args: &GatewayArgs,
+    site_path: Option<&Path>,
+    stop: Arc<AtomicBool>,
+) -> anyhow::Result<()> {
+    let site_path = site_path.ok_or_else(|| {
+        UsageError("fringe gateway needs the site file: fringe gateway --config SITE.toml".into())
+    })?;
+    // Everything is read and checked before the store is opened.
+    let site = Site::load(site_path)?;
+    let link = LinkOptions {
+        timeout: Duration::from_millis(args.timeout_ms),
+        handshakes: super::HANDSHAKES,
+        ..LinkOptions::default()
+    };
+    let mut runs = Vec::new();
+    let started_ms = crate::store::now_unix_ms().max(0) as u64;
+    for d in &site.devices {
+        let file_key = match &d.key_file {
+            Some(p) => Some(fringe_device::key::load_key(p).with_context(|| {
+                format!(
+                    "{}:{}: key_file of unit {}",
+                    site.path.display(),
+                    d.line,
+                    d.unit
+                )
+            })?),
+            None => None,
+        };
+        let (open, key): (Box<dyn Fn() -> Box<dyn Opener> + Send + Sync>, _) = match &d.port {
+            DevicePort::Serial { path, baud } => {
+                let o = SerialOpener {
+                    path: path.clone(),
+                    baud: *baud,
+                };
+                (
+                    Box::new(move || Box::new(o.clone()) as Box<dyn Opener>),
+                    file_key,
+                )
+            }
+            DevicePort::Sim { scenario } => {
+                let sc = Scenario::load(scenario).with_context(|| {
+                    format!(
+                        "{}:{}: the scenario of unit {}",
+                        site.path.display(),
+                        d.line,
+                        d.unit
+                    )
+                })?;
+                // Booting writes nothing to disk (the flash is in memory).
+                let sim = LiveSim::start(&sc, started_ms)
+                    .with_context(|| format!("starting the simulated device of unit {}", d.unit))?;
+                let name = d.port_text.clone();
+                (
+                    Box::new(move || sim.opener(&name)),
+                    // The scenario's key is the simulated device's own.
+                    file_key.or_else(|| sc.key()),
+                )
+            }
+        };
+        runs.push(DeviceRun {
+            spec: d.clone(),
+            open,
+            key,
+            link,
+        });
+    }
+    let db = super::db_path(Some(&site.store), &LineConfig::default())?;
+    let publisher = match &site.mqtt {
+        Some(m) => Some(start_mqtt(m, &site.store)?),
+        None => None,
+    };
+    let store = Store::open(&db)?;
+    let style = Style::detect();
+    let view = Arc::new(Mutex::new(View {
+        style,
+        json: args.json,
+        drawn: 0,
+        pending: Vec::new(),
+    }));
+    let v = Arc::clone(&view);
+    let tell: Arc<dyn Fn(Notice) + Send + Sync> = Arc::new(move |n: Notice| {
+        v.lock().unwrap_or_else(|e| e.into_inner()).notice(n);
+    });
+    let gw = Gateway::start(&site, store, runs, publisher, tell, Arc::clone(&stop))?;
+    eprintln!(
+        "fringe gateway: {}{} devices into {}{}{}",
+        if site.name.is_empty() {
+            String::new()
+        } else {
+            format!("{}: ", site.name)
+        },
+        site.devices.len(),
+        db.display(),
+        gw.modbus_addr().map_or(String::new(), |a| format!(
+            "; Modbus TCP on {a} (units {})",
+            site.devices
+                .iter()
+                .map(|d| d.unit.to_string())
+                .collect::<Vec<_>>()
+                .join(", ")
+        )),
+        gw.web_addr()
+            .map_or(String::new(), |a| format!("; live page http://{a}/")),
+    );
+    if site.mqtt.is_some() {
+        eprintln!("fringe gateway: publishing to MQTT (buffered on disk while the broker is away)");
+    }
+    let deadline = args
+        .duration_s
+        .map(|s| Instant::now() + Duration::from_secs_f64(s));
+    let mut last_status = Instant::now();
+    let tick = if style.tty && !args.json {
+        Duration::from_millis(500)
+    } else {
+        Duration::from_millis(100)
+    };
+    let mut broken = None;
+    while !stop.load(Ordering::Relaxed) {
+        if deadline.is_some_and(|d| Instant::now() >= d) {
+            stop.store(true, Ordering::Relaxed);
+            break;
+        }
+        std::thread::sleep(tick);
+        let mut v = view.lock().unwrap_or_else(|e| e.into_inner());
+        v.flush_notices();
+        let due = last_status.elapsed() >= site.status_every;
+        if v.style.tty && !v.json {
+            v.draw(&gw.status());
+        } else if due {
+            last_status = Instant::now();
+            if let Err(e) = v.lines(&gw.status()) {
+                broken = Some(e);
+                stop.store(true, Ordering::Relaxed);
+            }
+        }
+    }
+    eprintln!("fringe gateway: stopping: committing every device's readings");
+    let summary = gw.wait();
+    let mut v = view.lock().unwrap_or_else(|e| e.into_inner());
+    v.flush_notices();
+    v.clear();
+    if let Some(e) = broken {
+        if e.kind() != std::io::ErrorKind::BrokenPipe {
+            return Err(e.into());
+        }
+    }
+    if args.json {
+        let mut j = serde_json::to_value(&summary)?;
+        j["type"] = "summary".into();
+        out::line(&serde_json::to_string(&j)?)?;
+    } else {
+        for d in &summary.devices {
+            let _ = out::line(&plain(d));
+        }
+    }
+    eprintln!(
+        "fringe gateway: stopped; {} readings committed in this run into {}",
+        summary.committed,
+        db.display()
+    );
+    Ok(())
+}
+
+fn start_mqtt(m: &fringe_gateway::site::MqttSite, store: &Path) -> anyhow::Result<Publisher> {
+    let tls_ca_pem = match &m.tls_ca {
+        Some(p) => Some(
+            std::fs::read(p)
+                .with_context(|| format!("reading the MQTT CA file {}", p.display()))?,
+        ),
+        None => None,
+    };
+    let credentials = match &m.credentials {
+        Some((user, file)) => {
+            let pw = std::fs::read_to_string(file)
+                .with_context(|| format!("reading the MQTT password file {}", file.display()))?;
+            Some((user.clone(), pw.trim_end_matches(['\n', '\r']).to_string()))
+        }
+        None => None,
+    };
+    let format = match &m.json_prefix {
+        Some(prefix) => Format::Json {
+            prefix: prefix.clone(),
+        },
+        None => Format::Sparkplug {
+            group: m.group.clone(),
+            edge_node: m.node.clone(),
+        },
+    };
+    let config = MqttConfig {
+        host: m.host.clone(),
+        port: m.port,
+        client_id: m.client_id.clone(),
+        credentials,
+        tls_ca_pem,
+        format,
+        keep_alive: Duration::from_secs(30),
+    };
+    let outbox = fringe_gateway::mqtt::outbox_path_beside(store);
+    Ok(Publisher::start(config, &outbox, Vec::new())?)
+}
+
+/// What the person or the script sees.
+struct View {
+    style: Style,
+    json: bool,
+    /// Status lines drawn on the terminal last time.
+    drawn: usize,
+    pending: Vec<Notice>,
+}
+
+fn state_word(s: DeviceState) -> &'static str {
+    match s {
+        DeviceState::Connecting => "connecting",
+        DeviceState::Streaming => "streaming",
+        DeviceState::Reconnecting => "reconnecting",
+        DeviceState::Failed => "failed",
+        DeviceState::Stopped => "stopped",
+    }
+}
+
+/// One device as a plain line (`key=value`, for logs and grep).
+fn plain(d: &DeviceStatus) -> String {
+    format!(
+        "unit={} serial={} state={} seq={} moisture_pct={} uncertainty_pct={} temperature_c={} flags={} streamed={} backfilled={} stored={} lost={} reconnects={} drift_alarms={}",
+        d.unit,
+        d.serial.as_deref().unwrap_or("-"),
+        state_word(d.state),
+        d.seq.as_deref().unwrap_or("-"),
+        d.moisture_pct.map_or("none".into(), |m| format!("{m:.3}")),
+        d.uncertainty_pct.map_or("none".into(), |u| format!("{u:.3}")),
+        d.temperature_c.map_or("none".into(), |t| format!("{t:.2}")),
+        if d.flags.is_empty() { "ok".into() } else { d.flags.join(",") },
+        d.line.streamed,
+        d.line.backfilled,
+        d.line.stored,
+        d.line.lost,
+        d.line.reconnects,
+        d.drift_alarms,
+    )
+}
+
+impl View {
+    fn notice(&mut self, n: Notice) {
+        self.pending.push(n);
+    }
+
+    /// Says the notices that came in (stderr), above the status block.
+    fn flush_notices(&mut self) {
+        if self.pending.is_empty() {
+            return;
+        }
+        self.clear();
+        for n in self.pending.drain(..) {
+            let who = match &n.serial {
+                Some(s) => format!("unit {} {s}", n.unit),
+                None => format!("unit {}", n.unit),
+            };
+            let text = match n.level {
+                Level::Alarm if self.style.tty => self.style.paint("1;31", &n.text),
+                _ => n.text,
+            };
+            eprintln!("fringe gateway: {who}: {text}");
+        }
+    }
+
+    /// Removes the status block from the terminal.
+    fn clear(&mut self) {
+        if self.drawn > 0 {
+            let mut o = std::io::stdout().lock();
+            let _ = write!(o, "\x1b[{}F\x1b[J", self.drawn).and_then(|()| o.flush());
+            self.drawn = 0;
+        }
+    }
+
+    /// One status line per device on the terminal, redrawn in place.
+    fn draw(&mut self, devices: &[DeviceStatus]) {
+        self.clear();
+        let s = self.style;
+        let mut o = std::io::stdout().lock();
+        for d in devices {
+            let m = d
+                .moisture_pct
+                .map_or("  --.--".to_string(), |m| format!("{m:7.2}"));
+            let u = d
+                .uncertainty_pct
+                .map_or("--".to_string(), |u| format!("{u:.2}"));
+            let t = d
+                .temperature_c
+                .map_or("  --.-".to_string(), |t| format!("{t:6.1}"));
+            let state = match d.state {
+                DeviceState::Streaming => s.paint("32", "streaming"),
+                DeviceState::Failed => s.paint("1;31", "failed"),
+                other => s.paint("33", state_word(other)),
+            };
+            let flags = if d.flags.is_empty() {
+                String::new()
+            } else {
+                format!("  {}", s.paint("33", &d.flags.join(",")))
+            };
+            let _ = writeln!(
+                o,
+                "unit {:>3} {:<16} {}  {} % ±{u} {t} °C  seq {}  stored {}  alarms {}{flags}",
+                d.unit,
+                d.serial.as_deref().unwrap_or(&d.port),
+                state,
+                s.paint("1", &m),
+                d.seq.as_deref().unwrap_or("-"),
+                d.line.stored,
+                d.drift_alarms,
+            );
+        }
+        let _ = o.flush();
+        self.drawn = devices.len();
+    }
+
+    /// Plain or JSON status lines, one per device.
+    fn lines(&mut self, devices: &[DeviceStatus]) -> std::io::Result<()> {
+        let now = crate::store::now_unix_ms();
+        for d in devices {
+            if self.json {
+                let mut j = serde_json::to_value(d).map_err(std::io::Error::other)?;
+                j["type"] = "status".into();
+                j["time_ms"] = now.into();
+                out::line(&serde_json::to_string(&j).map_err(std::io::Error::other)?)?;
+            } else {
+                out::line(&plain(d))?;
+            }
+        }
+        Ok(())
+    }
+}
