@@ -416,7 +416,7 @@ impl SampleSet {
 }
 
 /// Writes samples as CSV with the columns in [`COLUMNS`] order (an empty
-/// `moisture_pct` where unknown).
+/// `moisture_pct` where unknown; numbers by [`crate::numbers`]' column rules).
 ///
 /// # Errors
 /// I/O errors from `out`.
@@ -424,18 +424,24 @@ pub fn write_samples<W: std::io::Write>(out: W, samples: &[RefSample]) -> std::i
     let mut w = csv::Writer::from_writer(out);
     w.write_record(COLUMNS)?;
     for s in samples {
-        let m = s.moisture_pct.map(|m| format!("{m}")).unwrap_or_default();
-        w.write_record([
-            s.sample_id.clone(),
-            m,
-            format!("{}", s.temperature_c),
-            format!("{}", s.freqs_hz[0]),
-            format!("{}", s.eps_re[0]),
-            format!("{}", s.eps_im[0]),
-            format!("{}", s.freqs_hz[1]),
-            format!("{}", s.eps_re[1]),
-            format!("{}", s.eps_im[1]),
-        ])?;
+        let values = [
+            s.moisture_pct,
+            Some(s.temperature_c),
+            Some(s.freqs_hz[0]),
+            Some(s.eps_re[0]),
+            Some(s.eps_im[0]),
+            Some(s.freqs_hz[1]),
+            Some(s.eps_re[1]),
+            Some(s.eps_im[1]),
+        ];
+        let mut row = vec![s.sample_id.clone()];
+        row.extend(
+            COLUMNS[1..]
+                .iter()
+                .zip(values)
+                .map(|(c, v)| crate::numbers::cell(c, v)),
+        );
+        w.write_record(row)?;
     }
     w.flush()
 }
