@@ -43,13 +43,15 @@ pub fn line(text: &str) -> io::Result<()> {
     o.flush()
 }
 
-/// Writes `value` as pretty JSON and a newline to stdout.
+/// Writes `value` as one line of JSON (JSON Lines: one object per line,
+/// no line breaks inside) to stdout. Every `--json` output goes through
+/// here; the schema of each command is in docs/JSON.md.
 ///
 /// # Errors
 /// The write error.
 pub fn json(value: &serde_json::Value) -> io::Result<()> {
     let mut o = io::stdout().lock();
-    serde_json::to_writer_pretty(&mut o, value)?;
+    serde_json::to_writer(&mut o, value)?;
     writeln!(o)?;
     o.flush()
 }

@@ -65,15 +65,12 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let g = grab.record(&mut store, a.serial.as_deref())?;
     let inline = g.matched.and_then(|(r, _, _)| r.moisture_pct);
     if a.json {
-        crate::outln!(
-            "{}",
-            json!({
-                "sample_id": g.sample_id, "serial": g.serial, "time_utc": fmt_time(a.time), "lab_moisture_pct": a.moisture,
-                "matched_reading": g.matched.map(|(r, _, _)| r.seq.to_string()),
-                "inline_moisture_pct": inline, "residual_pct": inline.map(|i| a.moisture - f64::from(i)),
-                "position": g.recorded.position, "duplicate": g.recorded.duplicate,
-            })
-        );
+        crate::out::json(&json!({
+            "sample_id": g.sample_id, "serial": g.serial, "time_utc": fmt_time(a.time), "lab_moisture_pct": a.moisture,
+            "matched_reading": g.matched.map(|(r, _, _)| json!({"boot": r.seq.boot, "counter": r.seq.counter})),
+            "inline_moisture_pct": inline, "residual_pct": inline.map(|i| a.moisture - f64::from(i)),
+            "position": g.recorded.position, "duplicate": g.recorded.duplicate,
+        }))?;
         return Ok(());
     }
     crate::outln!(
@@ -122,7 +119,7 @@ pub fn drift(a: &DriftArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             .with_context(|| format!("writing {}", p.display()))?;
     }
     if a.json {
-        crate::outln!("{}", views::drift_json(&data, &traces));
+        crate::out::json(&views::drift_json(&data, &traces))?;
     } else {
         views::write_drift(&data, &traces, &mut std::io::stdout().lock())?;
         if let Some(p) = &a.plot {
@@ -156,7 +153,7 @@ pub fn history(a: &HistoryArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let store = open_to_read(&db)?;
     let all = views::history(&store, a.serial.as_deref())?;
     if a.json {
-        crate::outln!("{}", views::history_json(&all));
+        crate::out::json(&views::history_json(&all))?;
         return Ok(());
     }
     views::write_history(&all, &db, &mut std::io::stdout().lock())?;
@@ -193,7 +190,7 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             }
             let s = audit::export(&store, &db.display().to_string(), e.from, to, &e.out)?;
             if e.json {
-                crate::outln!("{}", serde_json::to_string(&s.manifest)?);
+                crate::out::json(&serde_json::to_value(&s.manifest)?)?;
             } else {
                 views::write_export(&s, &mut std::io::stdout().lock())?;
             }
@@ -211,10 +208,9 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 store.as_ref().map(|s| s as &dyn fringe_store::RecordRead),
             )?;
             if v.json {
-                crate::outln!(
-                    "{}",
-                    json!({ "ok": r.ok(), "records_checked": r.records_checked, "problems": r.problems.iter().map(|p| json!({"detail": p, "message": p.to_string()})).collect::<Vec<_>>() })
-                );
+                crate::out::json(
+                    &json!({ "ok": r.ok(), "records_checked": r.records_checked, "problems": r.problems.iter().map(|p| json!({"detail": p, "message": p.to_string()})).collect::<Vec<_>>() }),
+                )?;
             } else {
                 views::write_verify(
                     &r,

@@ -513,9 +513,10 @@ pub fn history(
     Ok(all)
 }
 
-/// The history as `fringe cal history --json` prints it.
+/// The history as `fringe cal history --json` prints it: one object,
+/// `records` the changes in chain order.
 pub fn history_json(all: &[HistoryEntry]) -> serde_json::Value {
-    serde_json::Value::Array(
+    let records = serde_json::Value::Array(
         all.iter()
             .map(|(s, c, b)| {
                 json!({
@@ -525,7 +526,8 @@ pub fn history_json(all: &[HistoryEntry]) -> serde_json::Value {
                 })
             })
             .collect(),
-    )
+    );
+    json!({ "records": records })
 }
 
 /// Writes the history for a person, one line per change.

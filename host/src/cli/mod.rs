@@ -137,6 +137,10 @@ pub struct SimArgs {
     /// the scenario's line. Read about every 100 ms of wall time.
     #[arg(long, value_name = "FILE")]
     pub bench: Option<PathBuf>,
+    /// Say where the device is (and, at the end, what it sent) as JSON
+    /// lines on stdout (docs/JSON.md) instead of text.
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// `fringe monitor`.

@@ -96,6 +96,9 @@ pub struct ReportArgs {
     /// Page title.
     #[arg(long)]
     pub title: Option<String>,
+    /// Print what was written as one JSON object (docs/JSON.md).
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// `fringe cal history`.
