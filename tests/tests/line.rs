@@ -527,7 +527,8 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
         ]),
         LIMIT,
     );
-    assert_fails(&o, 1, &["--stale-timeout-ms 300", "twice the interval"]);
+    // A value out of its range is a usage error (exit 2, issue 16).
+    assert_fails(&o, 2, &["--stale-timeout-ms 300", "twice the interval"]);
 }
 
 #[test]

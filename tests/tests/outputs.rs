@@ -1,5 +1,6 @@
 //! What a plant engineer reads (issue 16): clean numbers in every file the
-//! demo and `cal predict` write.
+//! demo and `cal predict` write; messages and lines, each fixed one with a
+//! regression test named after what broke.
 
 use std::path::{Path, PathBuf};
 use std::sync::OnceLock;
@@ -9,12 +10,13 @@ use fringe_quality::numbers::{rule_for, Rule};
 use fringe_tests::*;
 
 const LIMIT: Duration = Duration::from_secs(120);
+const PROMPT: Duration = Duration::from_secs(30);
 
 /// One short demo run shared by the tests of this file (its folder lives
-/// as long as the test process).
-fn demo() -> &'static Path {
-    static DIR: OnceLock<(tempfile::TempDir, PathBuf)> = OnceLock::new();
-    &DIR.get_or_init(|| {
+/// as long as the test process), and what it printed.
+fn demo_run() -> &'static (tempfile::TempDir, PathBuf, Outcome) {
+    static DIR: OnceLock<(tempfile::TempDir, PathBuf, Outcome)> = OnceLock::new();
+    DIR.get_or_init(|| {
         let dir = tempfile::tempdir().expect("temp dir");
         let out = dir.path().join("demo");
         let o = run(
@@ -22,9 +24,12 @@ fn demo() -> &'static Path {
             LIMIT,
         );
         assert_eq!(o.code, 0, "demo: {}", o.stderr);
-        (dir, out)
+        (dir, out, o)
     })
-    .1
+}
+
+fn demo() -> &'static Path {
+    &demo_run().1
 }
 
 /// Every CSV file under `dir`.
@@ -183,4 +188,226 @@ fn cal_predict_csv_carries_clean_numbers() {
         .find(|l| l.starts_with("NO-LAB,"))
         .expect("row");
     assert!(no_lab.starts_with("NO-LAB,,"), "empty lab cell: {no_lab}");
+}
+
+// ------------------------------------------------------------ messages
+
+fn key_file(sim: &Sim, hex: &str) -> PathBuf {
+    let p = sim.path(&format!("{}.key", &hex[..8]));
+    std::fs::write(&p, format!("{hex}\n")).expect("key file");
+    p
+}
+
+#[test]
+fn plain_monitor_line_labels_every_field_regression_seq_read_as_a_decimal() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0701", seed(71)));
+    let db = sim.path("line.db");
+    // stdout is a file here, not a terminal: the plain lines.
+    let o = run(&mut sim.monitor(&db, &["--count", "12"]), LIMIT);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let lines: Vec<&str> = o.stdout.lines().collect();
+    assert!(lines.len() >= 12, "{}", o.stdout);
+    for l in &lines {
+        let fields: Vec<(&str, &str)> = l
+            .split(' ')
+            .map(|kv| {
+                kv.split_once('=')
+                    .unwrap_or_else(|| panic!("unlabelled `{kv}` in `{l}`"))
+            })
+            .collect();
+        let keys: Vec<&str> = fields.iter().map(|f| f.0).collect();
+        assert_eq!(
+            &keys[..7],
+            ["boot", "n", "t", "moisture", "u", "temperature", "flags"],
+            "{l}"
+        );
+        let value = |k: &str| fields.iter().find(|f| f.0 == k).expect("field").1;
+        value("boot").parse::<u32>().expect("boot is a number");
+        value("n").parse::<u32>().expect("n is a number");
+        let t = value("t");
+        assert!(t.starts_with("20") || t.starts_with("boot+"), "{l}");
+        let m = value("moisture");
+        assert!(
+            m == "none" || (m.ends_with('%') && m.trim_end_matches('%').parse::<f64>().is_ok()),
+            "{l}"
+        );
+        assert!(value("temperature").ends_with('C'), "{l}");
+    }
+}
+
+#[test]
+fn wrong_key_file_is_named_regression_auth_tag_does_not_verify() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0702", seed(72)));
+    let wrong = key_file(&sim, &"ab".repeat(32));
+    let o = run(
+        &mut fringe(&[
+            "device",
+            "clock",
+            "--port",
+            sim.port_str(),
+            "--key-file",
+            wrong.to_str().unwrap(),
+            "--set",
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 16, &["auth tag does not verify", "wrong key file?"]);
+}
+
+#[test]
+fn degenerate_cell_calibration_is_said_in_words_regression_degenerate_calibration() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0703", seed(73)));
+    let key = key_file(&sim, TEST_KEY_HEX);
+    let db = sim.path("bench.db");
+    // Methanol where the air should be, and air where the methanol should
+    // be: the liquid point reads no higher than the air point.
+    sim.set_bench("methanol");
+    let mut c = Interactive::spawn(&mut fringe(&[
+        "cal",
+        "cell",
+        "--port",
+        sim.port_str(),
+        "--key-file",
+        key.to_str().unwrap(),
+        "--db",
+        db.to_str().unwrap(),
+        "--operator",
+        "T. Words (test)",
+        "--readings",
+        "3",
+        "--yes",
+    ]));
+    c.expect("press Enter when done", 1, PROMPT);
+    c.send("");
+    c.expect("press Enter when done", 2, PROMPT);
+    sim.set_bench("air");
+    c.send("");
+    let o = c.finish(LIMIT);
+    assert_fails(
+        &o,
+        1,
+        &[
+            "cell calibration at 1 MHz failed",
+            "too close to the air reading",
+            "filled with methanol",
+            "nothing was written",
+        ],
+    );
+    assert!(!o.stderr.contains("DegenerateCalibration"), "{}", o.stderr);
+}
+
+#[test]
+fn negative_lab_moisture_is_a_range_error_regression_unexpected_argument_minus_1() {
+    let db = demo().join("line2.db");
+    let work = tempfile::tempdir().expect("temp dir");
+    let copy = work.path().join("line2.db");
+    std::fs::copy(&db, &copy).expect("copy db");
+    let o = run(
+        &mut fringe(&[
+            "lab",
+            "add",
+            "--db",
+            copy.to_str().unwrap(),
+            "--time",
+            "2026-12-01T06:30Z",
+            "--moisture",
+            "-1",
+            "--method",
+            "oven",
+            "--operator",
+            "T. Range (test)",
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 2, &["--moisture -1", "0 <= m < 100"]);
+    assert!(!o.stderr.contains("unexpected argument"), "{}", o.stderr);
+}
+
+#[test]
+fn semicolon_separated_table_says_so_regression_missing_column_sample_id() {
+    let work = tempfile::tempdir().expect("temp dir");
+    let text = std::fs::read_to_string(demo().join("reference-samples.csv")).expect("samples");
+    // As a spreadsheet in a decimal-comma locale exports it.
+    let semi: String = text.replace(',', ";").replace('.', ",");
+    let p = work.path().join("lab-semicolon.csv");
+    std::fs::write(&p, semi).expect("write");
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "fit",
+            "--samples",
+            p.to_str().unwrap(),
+            "--out",
+            work.path().join("x.toml").to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 3, &["lab-semicolon.csv", "line 1", "separated by `;`"]);
+}
+
+/// Whether `s` holds a negative zero such as `-0.000` (a `-0.` followed
+/// by zeros only).
+fn has_negative_zero(s: &str) -> bool {
+    s.match_indices("-0.").any(|(i, _)| {
+        let digits: String = s[i + 3..]
+            .chars()
+            .take_while(char::is_ascii_digit)
+            .collect();
+        !digits.is_empty() && digits.chars().all(|c| c == '0')
+    })
+}
+
+#[test]
+fn negative_zero_is_found() {
+    assert!(has_negative_zero("error -0.000 (-0.00 %)"));
+    assert!(!has_negative_zero("error -0.001 (0.00 %)"));
+}
+
+#[test]
+fn demo_says_things_once_and_in_words_regression_caution_twice_a_8_h_minus_zero() {
+    let o = &demo_run().2;
+    let all = format!("{}{}", o.stdout, o.stderr);
+    assert_eq!(
+        all.matches("CAUTION: a new calibration").count(),
+        1,
+        "{all}"
+    );
+    assert!(
+        !all.contains("a 8 h") && all.contains("a shift of 2 h"),
+        "{all}"
+    );
+    assert!(!has_negative_zero(&all), "{all}");
+    assert!(!all.contains("Cusum") && !all.contains("Ewma"), "{all}");
+}
+
+#[test]
+fn drift_alarm_says_the_direction_once_regression_drifted_down_by_minus() {
+    let o = run(
+        &mut fringe(&["drift", "--db", demo().join("line2.db").to_str().unwrap()]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        o.stdout.contains("drifted down by 0.") || o.stdout.contains("drifted up by 0."),
+        "{}",
+        o.stdout
+    );
+    assert!(
+        !o.stdout.contains("by -") && !o.stdout.contains("by +"),
+        "{}",
+        o.stdout
+    );
+}
+
+#[test]
+fn sim_help_points_at_what_a_user_has_regression_source_file_in_help() {
+    let o = run(&mut fringe(&["sim", "--help"]), LIMIT);
+    assert_eq!(o.code, 0);
+    assert!(!o.stdout.contains(".rs"), "{}", o.stdout);
+    assert!(
+        o.stdout
+            .contains("host/scenarios/harrowgate-line2-wheat.toml"),
+        "{}",
+        o.stdout
+    );
 }

@@ -355,19 +355,22 @@ impl Alarm {
             )
         } else {
             format!(
-                "{} drifted {} by {:+.3} {} ({:+.1} sigma)",
+                "{} drifted {} by {:.3} {} ({:.1} sigma)",
                 self.quantity.describe(),
                 dir,
-                self.shift,
+                self.shift.abs(),
                 self.quantity.unit(),
-                self.shift_sigma
+                self.shift_sigma.abs()
             )
         };
         format!(
-            "{what} since {} (observation {}), flagged by {:?} at {} (observation {}): {}",
+            "{what} since {} (observation {}), flagged by the {} chart at {} (observation {}): {}",
             crate::timefmt::fmt_person(self.since_ms),
             self.since_index,
-            self.chart,
+            match self.chart {
+                ChartKind::Cusum => "CUSUM",
+                ChartKind::Ewma => "EWMA",
+            },
             crate::timefmt::fmt_person(self.time_ms),
             self.index,
             self.action.advice()

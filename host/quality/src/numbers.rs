@@ -97,6 +97,17 @@ fn significant(x: f64, n: u8) -> String {
     }
 }
 
+/// `x` with `decimals` decimals and its sign (`+0.152`, `-0.278`), but no
+/// sign on a value that rounds to zero (`0.000`, never `-0.000`), for
+/// messages.
+pub fn signed(x: f64, decimals: usize) -> String {
+    let s = format!("{x:+.decimals$}");
+    match s.strip_prefix(['-', '+']) {
+        Some(rest) if rest.chars().all(|c| matches!(c, '0' | '.')) => rest.to_string(),
+        _ => s,
+    }
+}
+
 /// A cell of column `column`: `v` by the column's rule, empty for `None`
 /// or a value that is not finite.
 pub fn cell(column: &str, v: Option<f64>) -> String {
@@ -161,5 +172,14 @@ mod tests {
         assert_eq!(cell("moisture_pct", Some(-0.01)), "-0.01");
         assert_eq!(fmt(-0.0, Rule::Shortest), "0");
         assert_eq!(cell("freq1_hz", Some(1e6)), "1000000");
+    }
+
+    #[test]
+    fn signed_zero_has_no_sign_regression_minus_zero_in_cell_verification() {
+        assert_eq!(signed(-0.0004, 3), "0.000");
+        assert_eq!(signed(-0.00004, 2), "0.00");
+        assert_eq!(signed(0.0, 2), "0.00");
+        assert_eq!(signed(-0.001, 3), "-0.001");
+        assert_eq!(signed(0.152, 3), "+0.152");
     }
 }

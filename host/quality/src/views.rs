@@ -530,6 +530,17 @@ pub fn history_json(all: &[HistoryEntry]) -> serde_json::Value {
     json!({ "records": records })
 }
 
+/// What a change was, in words: `cell calibration`, `settings change`,
+/// `product push`, `product select` (the kind alone is not said twice).
+fn history_what(kind: &str, action: &str) -> String {
+    match (kind, action) {
+        ("cell", "cell") => "cell calibration".into(),
+        ("settings", "settings") => "settings change".into(),
+        (k, a) if k == a => k.into(),
+        (k, a) => format!("{k} {a}"),
+    }
+}
+
 /// Writes the history for a person, one line per change.
 ///
 /// # Errors
@@ -541,15 +552,18 @@ pub fn write_history(all: &[HistoryEntry], db: &Path, w: &mut dyn Write) -> std:
     for (s, c, b) in all {
         writeln!(
             w,
-            "{} {s} #{:<3} {:<8} {:<8} {} -> {} slot {} {:<16} by {}: {}",
+            "{} {s} #{:<3} {:<17} {} -> {}{}{} by {}: {}",
             fmt_person(c.created_unix_ms),
             c.seq,
-            c.cal.kind.as_str(),
-            b.action,
+            history_what(c.cal.kind.as_str(), &b.action),
             b.old_id,
             b.new_id,
-            c.cal.slot.map_or("-".into(), |x| x.to_string()),
-            c.cal.name.clone().unwrap_or_default(),
+            c.cal.slot.map_or(String::new(), |x| format!(" slot {x}")),
+            c.cal
+                .name
+                .as_deref()
+                .filter(|n| !n.is_empty())
+                .map_or(String::new(), |n| format!(" \"{n}\"")),
             b.operator,
             b.reason
         )?;
@@ -634,4 +648,17 @@ pub fn write_verify(
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn history_says_the_kind_once_regression_cell_cell() {
+        assert_eq!(super::history_what("cell", "cell"), "cell calibration");
+        assert_eq!(
+            super::history_what("settings", "settings"),
+            "settings change"
+        );
+        assert_eq!(super::history_what("product", "push"), "product push");
+    }
 }
