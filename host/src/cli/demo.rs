@@ -4,9 +4,7 @@ use std::path::PathBuf;
 
 /// `fringe demo`.
 #[derive(Debug, Clone, Args)]
-#[command(
-    after_help = "Example:\n  cargo run --release -p fringe-host -- demo\n  fringe demo --out /tmp/hgm --short"
-)]
+#[command(after_help = "Example:\n  fringe demo\n  fringe demo --out /tmp/hgm --short")]
 pub struct DemoArgs {
     /// Output folder (created; an existing demo folder is replaced).
     #[arg(long, value_name = "DIR", default_value = "fringe-demo")]
