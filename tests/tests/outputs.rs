@@ -411,3 +411,98 @@ fn sim_help_points_at_what_a_user_has_regression_source_file_in_help() {
         o.stdout
     );
 }
+
+// ------------------------------------------------------------ plots
+
+/// Renders `svg` (resvg, without text: shapes and lines only) and gives
+/// the share of pixels that are not white and the number of distinct
+/// colours.
+fn render(svg: &str, what: &str) -> (f64, usize) {
+    let tree = resvg::usvg::Tree::from_str(svg, &resvg::usvg::Options::default())
+        .unwrap_or_else(|e| panic!("{what}: not an SVG resvg reads: {e}"));
+    let size = tree.size().to_int_size();
+    assert!(
+        size.width() >= 300 && size.height() >= 200,
+        "{what}: {size:?}"
+    );
+    let mut pixmap = resvg::tiny_skia::Pixmap::new(size.width(), size.height()).expect("pixmap");
+    pixmap.fill(resvg::tiny_skia::Color::WHITE);
+    resvg::render(
+        &tree,
+        resvg::tiny_skia::Transform::default(),
+        &mut pixmap.as_mut(),
+    );
+    let px = pixmap.pixels();
+    let inked = px
+        .iter()
+        .filter(|p| (p.red(), p.green(), p.blue()) != (255, 255, 255))
+        .count();
+    let colours: std::collections::BTreeSet<(u8, u8, u8)> =
+        px.iter().map(|p| (p.red(), p.green(), p.blue())).collect();
+    (inked as f64 / px.len() as f64, colours.len())
+}
+
+#[test]
+fn every_demo_plot_renders_to_a_non_blank_image() {
+    let d = demo();
+    let plots = [
+        d.join("fit.svg"),
+        d.join("drift.svg"),
+        d.join("report/trend.svg"),
+        d.join("report/drift.svg"),
+    ];
+    for p in &plots {
+        let svg = std::fs::read_to_string(p).unwrap_or_else(|e| panic!("{}: {e}", p.display()));
+        let (inked, colours) = render(&svg, &p.display().to_string());
+        assert!(
+            inked > 0.01 && colours >= 4,
+            "{}: blank or nearly ({:.3} % inked, {colours} colours)",
+            p.display(),
+            100.0 * inked
+        );
+    }
+    // The blank check itself: an empty white page fails it.
+    let (inked, _) = render(
+        "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"400\" height=\"300\"><rect width=\"400\" height=\"300\" fill=\"white\"/></svg>",
+        "white page",
+    );
+    assert!(inked <= 0.01);
+}
+
+#[test]
+fn demo_plots_read_at_a_glance() {
+    let d = demo();
+    let trend = std::fs::read_to_string(d.join("report/trend.svg")).expect("trend");
+    for want in [
+        "local time",
+        "2026-12-01",
+        "inline moisture",
+        "expanded uncertainty",
+        "lab grab sample",
+        "line empty",
+        "product temperature, C",
+    ] {
+        assert!(trend.contains(want), "trend.svg lacks `{want}`");
+    }
+    assert!(!trend.contains("time, h"), "no hours-from-start axis");
+    let drift = std::fs::read_to_string(d.join("drift.svg")).expect("drift");
+    for want in [
+        "C+ (upward shift)",
+        "-C- (downward shift)",
+        "decision limits",
+        "alarm",
+        "local time",
+    ] {
+        assert!(drift.contains(want), "drift.svg lacks `{want}`");
+    }
+    assert!(
+        !drift.contains("observation<") && !drift.contains(">observation"),
+        "drift charts against time"
+    );
+    let fit = std::fs::read_to_string(d.join("fit.svg")).expect("fit");
+    assert!(
+        fit.contains("eps&apos; at 1 MHz") || fit.contains("eps' at 1 MHz"),
+        "frequencies named in the fit plots"
+    );
+    assert!(!fit.contains("freq1") && !fit.contains("freq2"));
+}

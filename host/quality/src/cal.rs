@@ -837,14 +837,19 @@ pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> Result<String, FitError>
     )
     .map_err(FitError::Plot)?];
     type Get = fn(&RefSample) -> f64;
-    let inputs: [(&str, Get); 5] = [
-        ("temperature, C", |s| s.temperature_c),
-        ("eps' at freq1", |s| s.eps_re[0]),
-        ("eps'' at freq1", |s| s.eps_im[0]),
-        ("eps' at freq2", |s| s.eps_re[1]),
-        ("eps'' at freq2", |s| s.eps_im[1]),
+    let (f1, f2) = (
+        crate::product_file::hz_label(set.freqs_hz[0]),
+        crate::product_file::hz_label(set.freqs_hz[1]),
+    );
+    let inputs: [(String, Get); 5] = [
+        ("temperature, C".into(), |s| s.temperature_c),
+        (format!("eps' at {f1}"), |s| s.eps_re[0]),
+        (format!("eps'' at {f1}"), |s| s.eps_im[0]),
+        (format!("eps' at {f2}"), |s| s.eps_re[1]),
+        (format!("eps'' at {f2}"), |s| s.eps_im[1]),
     ];
     for (label, get) in inputs {
+        let label = label.as_str();
         let pts: Vec<(f64, f64)> = set
             .samples
             .iter()

@@ -312,23 +312,26 @@ pub fn report_input(
     title: Option<&str>,
 ) -> Result<ReportInput, ViewError> {
     let data = analysis::load(store, serial)?;
-    let t0 = data.rows.first().map_or(0, |r| r.time_ms);
-    let hours = |t: i64| (t - t0) as f64 / 3.6e6;
     let trend: Vec<TrendPoint> = data
         .rows
         .iter()
         .map(|r| TrendPoint {
-            t_h: hours(r.time_ms),
-            moisture_pct: r.reading.moisture_pct.map(f64::from),
+            time_ms: r.time_ms,
+            moisture_pct: r
+                .reading
+                .moisture_pct
+                .map(f64::from)
+                .filter(|m| m.is_finite()),
             uncertainty_pct: f64::from(r.reading.uncertainty_pct),
-            flagged: !(r.reading.flags - Flags::CLOCK_UNSET).is_empty(),
+            temperature_c: Some(f64::from(r.reading.temperature_c)).filter(|t| t.is_finite()),
+            flags: r.reading.flags - Flags::CLOCK_UNSET,
         })
         .collect();
     let lab: Vec<LabPoint> = data
         .lab
         .iter()
         .map(|l| LabPoint {
-            t_h: hours(l.time_ms),
+            time_ms: l.time_ms,
             moisture_pct: l.lab_pct,
         })
         .collect();
