@@ -68,7 +68,11 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         crate::out::json(&json!({
             "sample_id": g.sample_id, "serial": g.serial, "time_utc": fmt_time(a.time), "lab_moisture_pct": a.moisture,
             "matched_reading": g.matched.map(|(r, _, _)| json!({"boot": r.seq.boot, "counter": r.seq.counter})),
-            "inline_moisture_pct": inline, "residual_pct": inline.map(|i| a.moisture - f64::from(i)),
+            "inline_moisture_pct": inline, "residual_pct": inline.map(|i| {
+                // To 0.001 %: the difference of a lab value and an f32 reading.
+                let r = a.moisture - f64::from(i);
+                (r * 1000.0).round() / 1000.0
+            }),
             "position": g.recorded.position, "duplicate": g.recorded.duplicate,
         }))?;
         return Ok(());

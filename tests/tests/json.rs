@@ -209,6 +209,12 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
         ),
     );
     assert!(lab[0]["matched_reading"]["counter"].is_u64(), "{}", lab[0]);
+    // No float noise from a device value widened to f64 (issue 16).
+    for k in ["inline_moisture_pct", "residual_pct"] {
+        let text = lab[0][k].to_string();
+        let decimals = text.split_once('.').map_or(0, |(_, d)| d.len());
+        assert!(decimals <= 4, "{k}: {text}");
+    }
 
     // The simulator itself, for a second.
     let spec = ScenarioSpec::clean("HGM-L2-0601", seed(61));

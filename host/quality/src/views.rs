@@ -216,6 +216,10 @@ pub fn trace_json(t: &Trace) -> serde_json::Value {
 /// its fields, the message for a person and both times in UTC.
 pub fn alarm_json(a: &crate::drift::Alarm) -> serde_json::Value {
     let mut v = serde_json::to_value(a).unwrap_or_default();
+    // The shift to 4 decimals of its unit and 2 of sigma, as the message
+    // gives them to 3 and 1 (a mean of f32 readings carries no more).
+    v["shift"] = json!((a.shift * 1e4).round() / 1e4);
+    v["shift_sigma"] = json!((a.shift_sigma * 100.0).round() / 100.0);
     v["message"] = json!(a.message());
     v["since_utc"] = json!(fmt_time(a.since_ms));
     v["time_utc"] = json!(fmt_time(a.time_ms));
