@@ -152,14 +152,16 @@ fn set_clock(link: &mut Link, unix_ms: i64) -> anyhow::Result<()> {
 /// # Errors
 /// Any failure of a stage (the message names it).
 pub fn run(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
+    crate::demo_folder::prepare(&a.out).map_err(|e| crate::exit::UsageError(e.to_string()))?;
+    let result = run_in(a);
+    crate::demo_folder::finish(&a.out)?;
+    result
+}
+
+fn run_in(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
     let started = Instant::now();
     let total = 9;
     let dir = a.out.clone();
-    if dir.join("line2.db").exists() || dir.join("manifest.json").exists() {
-        std::fs::remove_dir_all(&dir)
-            .with_context(|| format!("clearing the previous demo in {}", dir.display()))?;
-    }
-    std::fs::create_dir_all(&dir).with_context(|| format!("creating {}", dir.display()))?;
     let outs = DemoOutputs {
         db: dir.join("line2.db"),
         samples: dir.join("reference-samples.csv"),

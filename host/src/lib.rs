@@ -34,6 +34,7 @@ pub mod cli;
 pub mod cmd;
 pub mod config;
 pub mod demo;
+pub mod demo_folder;
 pub mod exit;
 pub use fringe_link as link;
 pub mod out;

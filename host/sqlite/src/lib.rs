@@ -290,6 +290,25 @@ impl Store {
         &self.conn
     }
 
+    /// Installs (or with `None` removes) a hook SQLite calls every `every`
+    /// virtual-machine steps of any statement; returning `true` interrupts
+    /// the statement (its transaction rolls back). For fault-injection tests
+    /// and tools: an interrupted write must lose no committed record and
+    /// store none twice.
+    ///
+    /// # Errors
+    /// [`StoreError`] if SQLite refuses the hook.
+    pub fn set_step_hook(
+        &mut self,
+        every: i32,
+        hook: Option<Box<dyn FnMut() -> bool + Send>>,
+    ) -> Result<(), StoreError> {
+        let path = self.path.clone();
+        self.conn
+            .progress_handler(every, hook)
+            .map_err(|e| from_sqlite(&path, e))
+    }
+
     fn err(&self, e: rusqlite::Error) -> StoreError {
         from_sqlite(&self.path, e)
     }

@@ -6,7 +6,8 @@ use std::path::PathBuf;
 #[derive(Debug, Clone, Args)]
 #[command(after_help = "Example:\n  fringe demo\n  fringe demo --out /tmp/hgm --short")]
 pub struct DemoArgs {
-    /// Output folder (created; an existing demo folder is replaced).
+    /// Output folder: a new or empty folder, or one a previous demo wrote (its
+    /// files are replaced); a folder holding anything else is refused, nothing deleted.
     #[arg(long, value_name = "DIR", default_value = "fringe-demo")]
     pub out: PathBuf,
     /// A shorter run (2 h shift, fewer reference samples) for tests.

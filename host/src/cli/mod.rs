@@ -23,7 +23,8 @@ use clap::{Args, Parser, Subcommand};
 )]
 pub struct Cli {
     /// Line configuration file (TOML: port, baud, db, key_file, alarm limits); flags override it.
-    #[arg(long, global = true, value_name = "FILE")]
+    /// Every command reads the same file; the help shows the one set in FRINGE_CONFIG.
+    #[arg(long, global = true, value_name = "FILE", env = "FRINGE_CONFIG")]
     pub config: Option<PathBuf>,
 
     /// Show times in UTC instead of local time with its offset.
