@@ -378,6 +378,12 @@ fn demo_says_things_once_and_in_words_regression_caution_twice_a_8_h_minus_zero(
     );
     assert!(!has_negative_zero(&all), "{all}");
     assert!(!all.contains("Cusum") && !all.contains("Ewma"), "{all}");
+    let page = std::fs::read_to_string(demo().join("report/index.html")).expect("report");
+    assert!(
+        !page.contains("Cusum") && !page.contains("Ewma"),
+        "chart names in words"
+    );
+    assert!(!has_negative_zero(&page));
 }
 
 #[test]

@@ -270,6 +270,16 @@ pub enum ChartKind {
     Ewma,
 }
 
+impl ChartKind {
+    /// The chart's name for people: `CUSUM`, `EWMA`.
+    pub fn name(self) -> &'static str {
+        match self {
+            ChartKind::Cusum => "CUSUM",
+            ChartKind::Ewma => "EWMA",
+        }
+    }
+}
+
 /// Direction of a shift.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
 #[serde(rename_all = "snake_case")]
@@ -367,10 +377,7 @@ impl Alarm {
             "{what} since {} (observation {}), flagged by the {} chart at {} (observation {}): {}",
             crate::timefmt::fmt_person(self.since_ms),
             self.since_index,
-            match self.chart {
-                ChartKind::Cusum => "CUSUM",
-                ChartKind::Ewma => "EWMA",
-            },
+            self.chart.name(),
             crate::timefmt::fmt_person(self.time_ms),
             self.index,
             self.action.advice()

@@ -80,14 +80,14 @@ pub fn render(r: &ReportInput) -> Result<String, String> {
         for a in &alarms {
             let _ = writeln!(
                 h,
-                "<tr class=\"alarm\"><td>{}</td><td>{}</td><td>{} ({:?})</td><td>{:+.3} {} ({:+.1} sigma)</td><td>{}</td></tr>",
+                "<tr class=\"alarm\"><td>{}</td><td>{}</td><td>{} ({})</td><td>{} {} ({} sigma)</td><td>{}</td></tr>",
                 esc(a.quantity.describe()),
                 fmt_time(a.since_ms),
                 fmt_time(a.time_ms),
-                a.chart,
-                a.shift,
+                a.chart.name(),
+                crate::numbers::signed(a.shift, 3),
                 esc(a.quantity.unit()),
-                a.shift_sigma,
+                crate::numbers::signed(a.shift_sigma, 1),
                 esc(a.action.advice())
             );
         }
