@@ -58,6 +58,17 @@ pub fn json(value: &serde_json::Value) -> io::Result<()> {
     o.flush()
 }
 
+/// `v` (an object) with `"type": kind` first: a line of a JSON Lines
+/// stream (docs/JSON.md).
+pub fn typed(kind: &str, v: serde_json::Value) -> serde_json::Value {
+    let mut o = serde_json::Map::new();
+    o.insert("type".into(), kind.into());
+    if let serde_json::Value::Object(m) = v {
+        o.extend(m);
+    }
+    serde_json::Value::Object(o)
+}
+
 /// Every number of `v` that is exactly an `f32` (a device value widened
 /// to `f64`, which prints as `15.850000381469727`) replaced by the shortest
 /// decimal that reads back as that `f32` (`15.85`): the same `f32`, without

@@ -528,7 +528,7 @@ fn run(
         drift_alarms: drift.alarms,
     };
     if args.json {
-        out::json(&typed("summary", serde_json::to_value(&s)?))?;
+        out::json(&out::typed("summary", serde_json::to_value(&s)?))?;
     } else if !args.quiet {
         let l = &s.line;
         eprintln!(
@@ -545,14 +545,4 @@ fn run(
         );
     }
     Ok(())
-}
-
-/// `v` (an object) with `"type": kind` first.
-pub fn typed(kind: &str, v: serde_json::Value) -> serde_json::Value {
-    let mut o = serde_json::Map::new();
-    o.insert("type".into(), kind.into());
-    if let serde_json::Value::Object(m) = v {
-        o.extend(m);
-    }
-    serde_json::Value::Object(o)
 }

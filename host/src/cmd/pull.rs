@@ -73,10 +73,7 @@ fn run(
     bar.finish_and_clear();
     let summary = summary?;
     if args.json {
-        out::json(&super::monitor::typed(
-            "summary",
-            serde_json::to_value(&summary)?,
-        ))?;
+        out::json(&out::typed("summary", serde_json::to_value(&summary)?))?;
     } else {
         out::line(&format!(
             "{}: device log {} readings from {}; {} received, {} stored, {} already stored, {} lost; {} events stored ({})",
