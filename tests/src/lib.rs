@@ -625,3 +625,16 @@ impl Drop for Interactive {
         let _ = self.child.wait();
     }
 }
+
+/// The `summary` line that ends the JSON Lines of `fringe monitor --json`
+/// or `fringe pull --json` (docs/JSON.md).
+///
+/// # Panics
+/// When the last line is not a JSON object with `"type": "summary"`.
+pub fn summary_line(stdout: &str) -> serde_json::Value {
+    let last = stdout.lines().last().unwrap_or_default();
+    let v: serde_json::Value = serde_json::from_str(last)
+        .unwrap_or_else(|e| panic!("last line is not JSON ({e}): {last}"));
+    assert_eq!(v["type"], "summary", "{last}");
+    v
+}
