@@ -340,6 +340,18 @@ impl Sim {
         );
     }
 
+    /// Sends signal `sig` (`-STOP`, `-CONT`, ...) to the simulator.
+    ///
+    /// # Panics
+    /// If `kill` fails.
+    pub fn signal(&self, sig: &str) {
+        let ok = Command::new("kill")
+            .args([sig, &self.child.id().to_string()])
+            .status()
+            .expect("kill");
+        assert!(ok.success(), "kill {sig} failed");
+    }
+
     /// What the simulator printed.
     pub fn log(&self) -> String {
         std::fs::read_to_string(self.dir.path().join("sim.log")).unwrap_or_default()
