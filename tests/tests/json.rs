@@ -388,6 +388,55 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
         Some(&Value::from("summary"))
     );
 
+    // The gateway on a copy of the demo site (its own ports, its own
+    // store), for a few seconds with a status line every half second.
+    let site_dir = t("site");
+    std::fs::create_dir_all(site_dir.join("scenarios")).expect("site dir");
+    let root = workspace_root().join("host");
+    for e in std::fs::read_dir(root.join("sites/scenarios")).expect("scenarios") {
+        let p = e.expect("entry").path();
+        std::fs::copy(
+            &p,
+            site_dir
+                .join("scenarios")
+                .join(p.file_name().expect("name")),
+        )
+        .expect("copy scenario");
+    }
+    let site = std::fs::read_to_string(root.join("sites/demo-site.toml"))
+        .expect("demo site")
+        .replace(
+            "127.0.0.1:1502",
+            &format!("127.0.0.1:{}", fringe_tests::servers::free_port()),
+        )
+        .replace(
+            "127.0.0.1:8150",
+            &format!("127.0.0.1:{}", fringe_tests::servers::free_port()),
+        )
+        .replace("status_every_s = 10", "status_every_s = 0.5");
+    std::fs::write(site_dir.join("site.toml"), site).expect("site file");
+    let lines = c.check(
+        "gateway",
+        &run(
+            &mut fringe(&[
+                "gateway",
+                "--config",
+                s(&site_dir.join("site.toml")),
+                "--json",
+                "--duration-s",
+                "4",
+            ]),
+            LIMIT,
+        ),
+    );
+    assert!(
+        lines.iter().filter(|v| v["type"] == "status").count() >= 3,
+        "status lines"
+    );
+    let last = lines.last().expect("a summary");
+    assert_eq!(last["type"], "summary");
+    assert!(last["devices"][0]["counter"].is_u64(), "{last}");
+
     // Every schema of the document was met by some output (those of
     // alarms and progress lines only appear when there is one to report:
     // listed here).

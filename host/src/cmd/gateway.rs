@@ -224,8 +224,10 @@ pub fn gateway(
     }
     if args.json {
         let mut j = serde_json::to_value(&summary)?;
-        j["type"] = "summary".into();
-        out::line(&serde_json::to_string(&j)?)?;
+        if let Some(devices) = j.get_mut("devices").and_then(|d| d.as_array_mut()) {
+            devices.iter_mut().for_each(split_seq);
+        }
+        out::json(&out::typed("summary", j))?;
     } else {
         for d in &summary.devices {
             let _ = out::line(&plain(d));
@@ -489,13 +491,34 @@ impl View {
         for d in devices {
             if self.json {
                 let mut j = serde_json::to_value(d).map_err(std::io::Error::other)?;
-                j["type"] = "status".into();
+                split_seq(&mut j);
                 j["time_ms"] = now.into();
-                out::line(&serde_json::to_string(&j).map_err(std::io::Error::other)?)?;
+                out::json(&out::typed("status", j))?;
             } else {
                 out::line(&plain(d))?;
             }
         }
         Ok(())
     }
+}
+
+/// A device's `seq` (`"1.7"`) as the numbers `boot` and `counter`
+/// (docs/JSON.md: counters are numbers), `null` both before a reading.
+fn split_seq(j: &mut serde_json::Value) {
+    let Some(o) = j.as_object_mut() else {
+        return;
+    };
+    let parsed = o
+        .remove("seq")
+        .and_then(|v| v.as_str().map(str::to_string))
+        .and_then(|s| {
+            let (b, c) = s.split_once(['.', ':'])?;
+            Some((b.parse::<u64>().ok()?, c.parse::<u64>().ok()?))
+        });
+    let (boot, counter) = match parsed {
+        Some((b, c)) => (b.into(), c.into()),
+        None => (serde_json::Value::Null, serde_json::Value::Null),
+    };
+    o.insert("boot".into(), boot);
+    o.insert("counter".into(), counter);
 }
