@@ -766,6 +766,17 @@ impl<S: RecordStore> Worker<S> {
         match n {
             Note::Reading(r) => {
                 self.table.update(unit, r, Instant::now());
+                // The calibrations the reading was computed with, by their
+                // content ids (`fringe cal list` names them).
+                let text = if r.product_cal == fringe_protocol::CalId::NONE {
+                    None
+                } else {
+                    Some(format!(
+                        "product calibration {}, cell calibration {}",
+                        r.product_cal, r.cell_cal
+                    ))
+                };
+                self.table.set_calibration(unit, text);
                 if let (Some(p), Some(s)) = (&self.publisher, serial) {
                     if let Err(e) = p.reading(s, r) {
                         self.say(Some(s), Level::Error, format!("MQTT buffer: {e}"));
