@@ -571,6 +571,12 @@ impl<W: embedded_io::Write, P: OutputPin> HalfDuplex<W, P> {
     pub fn into_parts(self) -> (W, P) {
         (self.tx, self.de)
     }
+
+    /// The UART, to reconfigure it (a board applying new Modbus
+    /// settings between frames; the bus is released then).
+    pub fn tx_mut(&mut self) -> &mut W {
+        &mut self.tx
+    }
 }
 
 #[cfg(test)]
