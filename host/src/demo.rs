@@ -98,6 +98,8 @@ fn product_scenario(base: Scenario, s: SynthSample<f32>) -> Scenario {
 struct DemoGuide {
     sim: SimHandle,
     plan: Vec<Scenario>,
+    /// Cautions already printed: the demo shows each once.
+    cautioned: Vec<String>,
 }
 
 impl Guide for DemoGuide {
@@ -122,7 +124,12 @@ impl Guide for DemoGuide {
         }
     }
     fn caution(&mut self, text: &str) {
-        eprintln!("{text}");
+        if self.cautioned.iter().any(|c| c == text) {
+            eprintln!("    (the CAUTION above applies here too)");
+        } else {
+            eprintln!("{text}");
+            self.cautioned.push(text.to_string());
+        }
     }
 }
 
@@ -241,6 +248,7 @@ fn run_in(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
             liquid(ethanol.permittivity(f64::from(t_bench))),
             air_bench,
         ],
+        cautioned: Vec::new(),
     };
     let cell_opts = fringe_device::cell::CellOptions {
         liquid: "methanol".into(),
@@ -350,7 +358,7 @@ fn run_in(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         5,
         total,
         &format!(
-            "monitoring a {hours} h shift from {} (salt varies, the window slowly fouls)",
+            "monitoring a shift of {hours} h from {} (salt varies, the window slowly fouls)",
             fmt_time(SHIFT_MS)
         ),
     );

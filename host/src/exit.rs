@@ -17,7 +17,7 @@ pub enum ExitCode {
     Success = 0,
     /// 1: an error not listed below (the message says what).
     Failure = 1,
-    /// 2: bad command-line arguments (clap's usage error).
+    /// 2: bad command-line arguments (clap's usage error, or a value out of its range, named with its flag).
     Usage = 2,
     /// 3: a configuration, scenario, reference-sample or product calibration file is missing or invalid (file, line, column and field named).
     BadFile = 3,
@@ -108,8 +108,18 @@ impl ExitCode {
             if cause.downcast_ref::<ProblemsFound>().is_some() {
                 return ExitCode::Problems;
             }
+            // A value out of its range, named with its flag, is a usage
+            // error like clap's own (exit 2), wherever it is checked.
             if cause.downcast_ref::<UsageError>().is_some()
                 || cause.downcast_ref::<crate::store::SqliteOnly>().is_some()
+                || matches!(
+                    cause.downcast_ref::<fringe_quality::views::ViewError>(),
+                    Some(fringe_quality::views::ViewError::BadValue(_))
+                )
+                || matches!(
+                    cause.downcast_ref::<fringe_device::settings::SettingsError>(),
+                    Some(fringe_device::settings::SettingsError::Refused(_))
+                )
             {
                 return ExitCode::Usage;
             }

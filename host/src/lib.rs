@@ -82,7 +82,21 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Drift(a) => quality::drift(a, &cfg),
         Command::Report(a) => {
             let page = quality::report(a, &cfg)?;
-            outln!("wrote {} (open it in a browser)", page.display());
+            if a.json {
+                let dir = page.parent().unwrap_or(&a.out);
+                let files: Vec<String> = ["index.html", "trend.svg", "drift.svg"]
+                    .iter()
+                    .map(|f| dir.join(f))
+                    .filter(|p| p.exists())
+                    .map(|p| p.display().to_string())
+                    .collect();
+                out::json(&serde_json::json!({
+                    "page": page.display().to_string(),
+                    "files": files,
+                }))?;
+            } else {
+                outln!("wrote {} (open it in a browser)", page.display());
+            }
             Ok(())
         }
         Command::Audit(a) => quality::audit_cmd(a, &cfg),

@@ -43,15 +43,56 @@ pub fn line(text: &str) -> io::Result<()> {
     o.flush()
 }
 
-/// Writes `value` as pretty JSON and a newline to stdout.
+/// Writes `value` as one line of JSON (JSON Lines: one object per line,
+/// no line breaks inside) to stdout. Every `--json` output goes through
+/// here; the schema of each command is in docs/JSON.md.
 ///
 /// # Errors
 /// The write error.
 pub fn json(value: &serde_json::Value) -> io::Result<()> {
+    let mut value = value.clone();
+    unwiden(&mut value);
     let mut o = io::stdout().lock();
-    serde_json::to_writer_pretty(&mut o, value)?;
+    serde_json::to_writer(&mut o, &value)?;
     writeln!(o)?;
     o.flush()
+}
+
+/// `v` (an object) with `"type": kind` first: a line of a JSON Lines
+/// stream (docs/JSON.md).
+pub fn typed(kind: &str, v: serde_json::Value) -> serde_json::Value {
+    let mut o = serde_json::Map::new();
+    o.insert("type".into(), kind.into());
+    if let serde_json::Value::Object(m) = v {
+        o.extend(m);
+    }
+    serde_json::Value::Object(o)
+}
+
+/// Every number of `v` that is exactly an `f32` (a device value widened
+/// to `f64`, which prints as `15.850000381469727`) replaced by the shortest
+/// decimal that reads back as that `f32` (`15.85`): the same `f32`, without
+/// the noise of widening. Integers and other numbers are left alone.
+pub fn unwiden(v: &mut serde_json::Value) {
+    match v {
+        serde_json::Value::Number(n) if n.is_f64() => {
+            if let Some(x) = n.as_f64() {
+                let f = x as f32;
+                if f64::from(f) == x && x.is_finite() {
+                    if let Some(clean) = format!("{f}")
+                        .parse::<f64>()
+                        .ok()
+                        .and_then(serde_json::Number::from_f64)
+                    {
+                        *n = clean;
+                    }
+                }
+            }
+        }
+        serde_json::Value::Array(a) => a.iter_mut().for_each(unwiden),
+        serde_json::Value::Object(o) => o.values_mut().for_each(unwiden),
+        _ => {}
+    }
 }
 
 /// A duration in ms for people (`3 d 04:05:06`, `12.3 s`).
@@ -77,6 +118,19 @@ mod tests {
         assert_eq!(duration_ms(12_345), "12.3 s");
         assert_eq!(duration_ms(3_723_000), "01:02:03");
         assert_eq!(duration_ms(90_061_000), "1 d 01:01:01");
+    }
+
+    #[test]
+    fn widened_f32_prints_without_noise() {
+        let mut v =
+            serde_json::json!({"m": f64::from(15.85_f32), "n": 3, "x": [0.1, f64::from(0.25_f32)]});
+        assert_eq!(
+            v["m"].to_string(),
+            "15.850000381469727",
+            "the noise it removes"
+        );
+        unwiden(&mut v);
+        assert_eq!(v.to_string(), r#"{"m":15.85,"n":3,"x":[0.1,0.25]}"#);
     }
 
     #[test]

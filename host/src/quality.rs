@@ -66,15 +66,16 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let g = grab.record(store.get_mut(), a.serial.as_deref())?;
     let inline = g.matched.and_then(|(r, _, _)| r.moisture_pct);
     if a.json {
-        crate::outln!(
-            "{}",
-            json!({
-                "sample_id": g.sample_id, "serial": g.serial, "time_utc": fmt_time(a.time), "lab_moisture_pct": a.moisture,
-                "matched_reading": g.matched.map(|(r, _, _)| r.seq.to_string()),
-                "inline_moisture_pct": inline, "residual_pct": inline.map(|i| a.moisture - f64::from(i)),
-                "position": g.recorded.position, "duplicate": g.recorded.duplicate,
-            })
-        );
+        crate::out::json(&json!({
+            "sample_id": g.sample_id, "serial": g.serial, "time_utc": fmt_time(a.time), "lab_moisture_pct": a.moisture,
+            "matched_reading": g.matched.map(|(r, _, _)| json!({"boot": r.seq.boot, "counter": r.seq.counter})),
+            "inline_moisture_pct": inline, "residual_pct": inline.map(|i| {
+                // To 0.001 %: the difference of a lab value and an f32 reading.
+                let r = a.moisture - f64::from(i);
+                (r * 1000.0).round() / 1000.0
+            }),
+            "position": g.recorded.position, "duplicate": g.recorded.duplicate,
+        }))?;
         return Ok(());
     }
     crate::outln!(
@@ -123,7 +124,7 @@ pub fn drift(a: &DriftArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             .with_context(|| format!("writing {}", p.display()))?;
     }
     if a.json {
-        crate::outln!("{}", views::drift_json(&data, &traces));
+        crate::out::json(&views::drift_json(&data, &traces))?;
     } else {
         views::write_drift(&data, &traces, &mut std::io::stdout().lock())?;
         if let Some(p) = &a.plot {
@@ -157,7 +158,7 @@ pub fn history(a: &HistoryArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let store = open_to_read(&db)?;
     let all = views::history(store.get(), a.serial.as_deref())?;
     if a.json {
-        crate::outln!("{}", views::history_json(&all));
+        crate::out::json(&views::history_json(&all))?;
         return Ok(());
     }
     views::write_history(&all, store.get().path(), &mut std::io::stdout().lock())?;
@@ -197,7 +198,7 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             let label = db_label(&db);
             let s = store.consistent(|s| audit::export(s, &label, e.from, to, &e.out))??;
             if e.json {
-                crate::outln!("{}", serde_json::to_string(&s.manifest)?);
+                crate::out::json(&serde_json::to_value(&s.manifest)?)?;
             } else {
                 views::write_export(&s, &mut std::io::stdout().lock())?;
             }
@@ -215,10 +216,9 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 None => audit::verify(v.dir.as_deref(), None)?,
             };
             if v.json {
-                crate::outln!(
-                    "{}",
-                    json!({ "ok": r.ok(), "records_checked": r.records_checked, "problems": r.problems.iter().map(|p| json!({"detail": p, "message": p.to_string()})).collect::<Vec<_>>() })
-                );
+                crate::out::json(
+                    &json!({ "ok": r.ok(), "records_checked": r.records_checked, "problems": r.problems.iter().map(|p| json!({"detail": p, "message": p.to_string()})).collect::<Vec<_>>() }),
+                )?;
             } else {
                 views::write_verify(
                     &r,

@@ -340,6 +340,18 @@ impl Sim {
         );
     }
 
+    /// Sends signal `sig` (`-STOP`, `-CONT`, ...) to the simulator.
+    ///
+    /// # Panics
+    /// If `kill` fails.
+    pub fn signal(&self, sig: &str) {
+        let ok = Command::new("kill")
+            .args([sig, &self.child.id().to_string()])
+            .status()
+            .expect("kill");
+        assert!(ok.success(), "kill {sig} failed");
+    }
+
     /// What the simulator printed.
     pub fn log(&self) -> String {
         std::fs::read_to_string(self.dir.path().join("sim.log")).unwrap_or_default()
@@ -624,4 +636,17 @@ impl Drop for Interactive {
         let _ = self.child.kill();
         let _ = self.child.wait();
     }
+}
+
+/// The `summary` line that ends the JSON Lines of `fringe monitor --json`
+/// or `fringe pull --json` (docs/JSON.md).
+///
+/// # Panics
+/// When the last line is not a JSON object with `"type": "summary"`.
+pub fn summary_line(stdout: &str) -> serde_json::Value {
+    let last = stdout.lines().last().unwrap_or_default();
+    let v: serde_json::Value = serde_json::from_str(last)
+        .unwrap_or_else(|e| panic!("last line is not JSON ({e}): {last}"));
+    assert_eq!(v["type"], "summary", "{last}");
+    v
 }

@@ -449,7 +449,7 @@ fn monitor_raises_the_drift_alarms_of_fringe_drift_live() {
         LIMIT,
     );
     assert_eq!(o.code, 0, "{}", o.stderr);
-    let summary: serde_json::Value = serde_json::from_str(&o.stdout).expect("summary json");
+    let summary = summary_line(&o.stdout);
     let streamed = summary["streamed"].as_u64().unwrap();
     let live = summary["drift_alarms"].as_array().unwrap();
     let alarm = live

@@ -158,3 +158,28 @@ fn every_test_listed_in_the_references_exists() {
         bad.join("\n")
     );
 }
+
+/// The README gives the QEMU board's key as the 64 hex digits a key file
+/// holds, and they are the board's key (issue 16: it gave 32 ASCII
+/// characters, which `--key-file` refuses).
+#[test]
+fn readme_gives_the_qemu_key_as_a_key_file_holds_it() {
+    let readme = std::fs::read_to_string(workspace_root().join("README.md")).expect("README");
+    let hex: String = fringe_tests::qemu::BOARD_KEY
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect();
+    assert_eq!(hex.len(), 64);
+    assert!(
+        readme.contains(&format!("echo {hex} > qemu-mps2.key")),
+        "README lacks the key file line for {hex}"
+    );
+    // After the install step the README calls the binary by its name.
+    let install = readme
+        .find("cargo install --path host")
+        .expect("install step");
+    assert!(
+        !readme[install..].contains("cargo run --release -p fringe-host -- demo"),
+        "bare `fringe` after the install step"
+    );
+}

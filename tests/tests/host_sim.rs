@@ -42,7 +42,7 @@ fn a_thousand_readings_stored_exactly_as_sent() {
     let db = sim.path("line2.db");
     let o = run(&mut sim.monitor(&db, &["--count", "1000", "--json"]), LIMIT);
     assert_eq!(o.code, 0, "{}", o.stderr);
-    let summary: serde_json::Value = serde_json::from_str(&o.stdout).expect("summary json");
+    let summary = summary_line(&o.stdout);
     assert_eq!(summary["streamed"], 1000);
     let stored = stored_readings(&db, "HGM-L2-0102");
     let n = assert_gapless(&stored, &sim.recorded(), "clean line");
@@ -87,7 +87,7 @@ fn ctrl_c_commits_and_exits_zero() {
         "{}",
         String::from_utf8_lossy(&out.stderr)
     );
-    let summary: serde_json::Value = serde_json::from_slice(&out.stdout).expect("summary");
+    let summary = summary_line(&String::from_utf8_lossy(&out.stdout));
     let streamed = summary["streamed"].as_u64().unwrap();
     assert!(streamed > 0, "{summary}");
     // Everything that arrived before the interrupt is committed.

@@ -71,7 +71,7 @@ fn ensure_target() -> Result<()> {
 const OPTIONAL_PARTS: [(&str, &str); 3] = [
     (
         "python",
-        "outside checks against Python reference libraries, and plant clients against real servers (tests/tests/outside.rs, plant.rs, postgres.rs; mosquitto, PostgreSQL, headless Chromium)",
+        "outside checks against Python reference libraries, and plant clients against real servers (tests/tests/outside.rs, plant.rs, postgres.rs, gateway.rs, fleet.rs; mosquitto, PostgreSQL, headless Chromium)",
     ),
     ("fuzz", "fuzz crate build and smoke run (protocol/fuzz)"),
     (
@@ -345,6 +345,8 @@ fn test(args: &[String]) -> Result<()> {
                 "postgres",
                 "--test",
                 "gateway",
+                "--test",
+                "fleet",
                 "--",
                 "--ignored",
             ])

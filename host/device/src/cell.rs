@@ -8,6 +8,8 @@ use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
 use fringe_protocol::{CalId, CellCal, CellPoint, Request, Response, N_FREQ};
 use fringe_quality::analysis::CalRecordBody;
+use fringe_quality::numbers::signed;
+use fringe_quality::product_file::hz_label;
 use fringe_store::{CalKind, RecordStore, StoreError};
 
 use crate::guide::{Cancelled, Guide};
@@ -71,10 +73,10 @@ pub enum CellError {
         hi: f64,
     },
     /// The two-point calibration failed at a frequency.
-    #[error("cell calibration at {freq_hz} Hz failed: {reason}")]
+    #[error("cell calibration at {freq} failed: {reason} (nothing was written)")]
     Calibration {
-        /// Frequency, Hz.
-        freq_hz: f64,
+        /// Frequency, for people (`1 MHz`).
+        freq: String,
         /// Why.
         reason: String,
     },
@@ -203,8 +205,15 @@ pub fn cell_calibration(
         let f = f64::from(id.freqs_hz[k]);
         let c = two_point_calibration(f, y_air[k], air.permittivity(t_air), y_liq[k], eps_liq)
             .map_err(|e| CellError::Calibration {
-                freq_hz: f,
-                reason: format!("{e:?}"),
+                freq: hz_label(f),
+                reason: match e {
+                    fringe_calibration::cell::CellError::DegenerateCalibration => format!(
+                        "the {} reading is too close to the air reading to tell the cell's constant ({e}); \
+                         was the cell filled with {} at step 2, window covered, no air bubbles? Repeat the procedure",
+                        liq.name, liq.name
+                    ),
+                    other => other.to_string(),
+                },
             })?;
         points[k] = CellPoint {
             freq_hz: f as f32,
@@ -214,8 +223,8 @@ pub fn cell_calibration(
         };
         consts.push(c);
         guide.show(&format!(
-            "{:>6.1} MHz: stray {:.4} pF, cell {:.4} pF, G0 {:.3e} S",
-            f / 1e6,
+            "{:>8}: stray {:.4} pF, cell {:.4} pF, G0 {:.3e} S",
+            hz_label(f),
             c.stray_pf,
             c.cell_pf,
             c.g_offset_s
@@ -240,7 +249,7 @@ pub fn cell_calibration(
         )
         .map_err(|e| CellError::Verification {
             liquid: ver.name,
-            what: format!("at {f} Hz failed ({e:?})"),
+            what: format!("at {} failed ({e})", hz_label(f)),
         })?;
         verification.push((
             f,
@@ -250,14 +259,18 @@ pub fn cell_calibration(
             v.within_tolerance,
         ));
         guide.show(&format!(
-            "verify {} at {:.1} MHz: measured eps' {:.3}, expected {:.3}, error {:+.3} ({:+.2} %): {}",
+            "verify {} at {}: measured eps' {:.3}, expected {:.3}, error {} ({} %): {}",
             ver.name,
-            f / 1e6,
+            hz_label(f),
             v.measured.re,
             v.expected_re,
-            v.error_re,
-            v.relative_error * 100.0,
-            if v.within_tolerance { "within tolerance" } else { "OUT OF TOLERANCE" }
+            signed(v.error_re, 3),
+            signed(v.relative_error * 100.0, 2),
+            if v.within_tolerance {
+                "within tolerance"
+            } else {
+                "OUT OF TOLERANCE"
+            }
         ));
     }
     if verification.iter().any(|v| !v.4) {

@@ -10,13 +10,15 @@
 //!   store-and-forward buffer on disk.
 //! - [`web`]: the read-only live page for the control room.
 //! - [`site`]: site files; [`run`]: the gateway itself, a line session per
-//!   device into one store ([`shared`]) feeding the outputs above.
+//!   device into one store ([`shared`]) feeding the outputs above;
+//!   [`lease`]: which gateway runs which device when several share a store.
 //!
 //! Time comes in as [`std::time::Instant`] arguments where ages matter, so
 //! tests drive it; nothing here prints.
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
 
+pub mod lease;
 pub mod live;
 pub mod modbus;
 pub mod mqtt;

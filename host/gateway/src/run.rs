@@ -13,11 +13,22 @@
 //! live drift check of `fringe drift` (`fringe_quality::watch`) with its
 //! alarms on the live page and MQTT.
 //!
+//! When several gateways write one store (PostgreSQL), each device is run
+//! under a lease ([`crate::lease`]): taken after the device answers and
+//! before anything of it is written, renewed by one keeper thread while
+//! the session runs, released on a clean stop. A device another live
+//! gateway holds is reported ([`DeviceState::LeasedElsewhere`]) and tried
+//! again when that lease would run out. After a store failure (the server
+//! restarted) the store is reopened ([`RecordLog::reopen`]) before the
+//! device is tried again; the new session reads back from the device log
+//! what the failed batch and the outage left out.
+//!
 //! Setting the stop flag commits every session's batch and ends the run
 //! ([`Gateway::wait`]). Nothing here prints: what happens is told to a
 //! callback ([`Notice`]) and the state of each device is read with
 //! [`Gateway::status`].
 
+use std::collections::BTreeMap;
 use std::net::SocketAddr;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
@@ -27,8 +38,9 @@ use fringe_line::{ClockCheck, Ctx, LineError, Note, Session, SessionOptions, Sum
 use fringe_link::{Link, LinkOptions, Opener};
 use fringe_protocol::auth::Key;
 use fringe_quality::watch::DriftWatch;
-use fringe_store::RecordStore;
+use fringe_store::{RecordLog, RecordStore};
 
+use crate::lease::{LeaseRefused, Leases};
 use crate::live::{AlarmNote, LiveTable};
 use crate::modbus::ModbusServer;
 use crate::mqtt::Publisher;
@@ -73,6 +85,9 @@ pub enum DeviceState {
     Reconnecting,
     /// The session failed (the error says why); tried again after a while.
     Failed,
+    /// Another live gateway holds the device's lease: left to it, tried
+    /// again when that lease would run out.
+    LeasedElsewhere,
     /// Stopped (committed).
     Stopped,
 }
@@ -181,6 +196,80 @@ pub struct Gateway {
     web: Option<WebServer>,
     publisher: Option<Arc<Publisher>>,
     table: Arc<LiveTable>,
+    keeper: Option<std::thread::JoinHandle<()>>,
+}
+
+/// A lease this gateway holds, as the keeper sees it.
+struct Slot {
+    unit: u8,
+    /// Set by the keeper when a renewal found the lease taken over.
+    lost: Mutex<Option<LeaseRefused>>,
+    /// Whether the last renewal failed (said once, not at every renewal).
+    failing: AtomicBool,
+}
+
+type Held = Arc<Mutex<BTreeMap<String, Arc<Slot>>>>;
+
+fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
+    m.lock().unwrap_or_else(|e| e.into_inner())
+}
+
+/// The keeper: renews every lease held, every `leases.renew_every()`,
+/// until `stop`.
+fn keep(
+    leases: &dyn Leases,
+    held: &Held,
+    tell: &(dyn Fn(Notice) + Send + Sync),
+    stop: &AtomicBool,
+) {
+    loop {
+        let until = Instant::now() + leases.renew_every();
+        while Instant::now() < until {
+            if stop.load(Ordering::Relaxed) {
+                return;
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        let slots: Vec<(String, Arc<Slot>)> = lock(held)
+            .iter()
+            .map(|(k, v)| (k.clone(), Arc::clone(v)))
+            .collect();
+        for (serial, slot) in slots {
+            if stop.load(Ordering::Relaxed) {
+                return;
+            }
+            let say = |level, text: String| {
+                tell(Notice {
+                    unit: slot.unit,
+                    serial: Some(serial.clone()),
+                    level,
+                    text,
+                });
+            };
+            match leases.renew(&serial) {
+                Ok(()) => {
+                    if slot.failing.swap(false, Ordering::Relaxed) {
+                        say(Level::Info, "lease renewed again".into());
+                    }
+                }
+                Err(e @ LeaseRefused::Failed(_)) => {
+                    if !slot.failing.swap(true, Ordering::Relaxed) {
+                        say(
+                            Level::Error,
+                            format!(
+                                "{e}; renewing again in {:.1} s",
+                                leases.renew_every().as_secs_f64()
+                            ),
+                        );
+                    }
+                }
+                Err(e) => {
+                    *lock(&slot.lost) = Some(e);
+                    lock(held).remove(&serial);
+                }
+            }
+        }
+    }
 }
 
 impl std::fmt::Debug for Gateway {
@@ -220,6 +309,23 @@ impl Gateway {
         store: S,
         devices: Vec<DeviceRun>,
         publisher: Option<Publisher>,
+        tell: Arc<dyn Fn(Notice) + Send + Sync>,
+        stop: Arc<AtomicBool>,
+    ) -> Result<Self, GatewayError> {
+        Self::start_leased(site, store, devices, publisher, None, tell, stop)
+    }
+
+    /// As [`Gateway::start`], with each device run under a lease of
+    /// `leases` when given (several gateways on one store: [`crate::lease`]).
+    ///
+    /// # Errors
+    /// [`GatewayError`] when a server cannot listen (nothing was written).
+    pub fn start_leased<S: RecordStore + Send + 'static>(
+        site: &Site,
+        store: S,
+        devices: Vec<DeviceRun>,
+        publisher: Option<Publisher>,
+        leases: Option<Arc<dyn Leases>>,
         tell: Arc<dyn Fn(Notice) + Send + Sync>,
         stop: Arc<AtomicBool>,
     ) -> Result<Self, GatewayError> {
@@ -266,6 +372,7 @@ impl Gateway {
                 .collect(),
         );
         let store = SharedStore::new(store);
+        let held: Held = Arc::default();
         let mut threads = Vec::new();
         for (i, d) in devices.into_iter().enumerate() {
             let unit = d.spec.unit;
@@ -279,6 +386,8 @@ impl Gateway {
                 tell: Arc::clone(&tell),
                 stop: Arc::clone(&stop),
                 drift_every: site.drift_every,
+                leases: leases.clone(),
+                held: Arc::clone(&held),
             };
             let t = std::thread::Builder::new()
                 .name(format!("unit-{unit}"))
@@ -293,6 +402,21 @@ impl Gateway {
                 })?;
             threads.push(t);
         }
+        let keeper = match leases {
+            Some(leases) => {
+                let (held, tell, stop2) = (held, Arc::clone(&tell), Arc::clone(&stop));
+                Some(
+                    std::thread::Builder::new()
+                        .name("leases".into())
+                        .spawn(move || keep(&*leases, &held, &*tell, &stop2))
+                        .map_err(|source| {
+                            stop.store(true, Ordering::Relaxed);
+                            GatewayError::Thread { unit: 0, source }
+                        })?,
+                )
+            }
+            None => None,
+        };
         Ok(Self {
             status,
             threads,
@@ -300,6 +424,7 @@ impl Gateway {
             web,
             publisher,
             table,
+            keeper,
         })
     }
 
@@ -341,6 +466,9 @@ impl Gateway {
             // its status says what it did.
             let _ = t.join();
         }
+        if let Some(k) = self.keeper.take() {
+            let _ = k.join();
+        }
         if let Some(m) = self.modbus.take() {
             m.stop();
         }
@@ -371,6 +499,20 @@ struct Worker<S> {
     tell: Arc<dyn Fn(Notice) + Send + Sync>,
     stop: Arc<AtomicBool>,
     drift_every: Option<Duration>,
+    leases: Option<Arc<dyn Leases>>,
+    held: Held,
+}
+
+/// Why a device's session ended other than by the stop flag.
+enum Ended {
+    Line(LineError),
+    Lease(LeaseRefused),
+}
+
+impl From<LineError> for Ended {
+    fn from(e: LineError) -> Self {
+        Ended::Line(e)
+    }
 }
 
 impl<S: RecordStore> Worker<S> {
@@ -404,10 +546,27 @@ impl<S: RecordStore> Worker<S> {
         while !self.stopped() {
             let result = self.session(&mut total, &mut drift, &mut serial);
             self.table.set_connected(self.unit(), false);
-            match result {
+            let (wait, store_failed) = match result {
                 Ok(()) => break,
+                Err(Ended::Lease(LeaseRefused::Held { holder, remaining })) => {
+                    // Tried again just after the holder's lease would run
+                    // out (or once it releases it, at the latest then).
+                    let wait = (remaining + Duration::from_millis(250)).max(Duration::from_secs(1));
+                    let text = LeaseRefused::Held { holder, remaining }.to_string();
+                    self.update(|s| {
+                        s.state = DeviceState::LeasedElsewhere;
+                        s.error = Some(text.clone());
+                    });
+                    self.say(serial.as_deref(), Level::Info, text);
+                    (wait, false)
+                }
                 Err(e) => {
-                    let text = e.to_string();
+                    let store_failed =
+                        matches!(&e, Ended::Line(LineError::Store(_) | LineError::Commit(_)));
+                    let text = match e {
+                        Ended::Line(e) => e.to_string(),
+                        Ended::Lease(e) => e.to_string(),
+                    };
                     self.update(|s| {
                         s.state = DeviceState::Failed;
                         s.error = Some(text.clone());
@@ -420,10 +579,20 @@ impl<S: RecordStore> Worker<S> {
                     if let (Some(p), Some(s)) = (&self.publisher, serial.as_deref()) {
                         let _ = p.device_lost(s);
                     }
-                    let until = Instant::now() + RETRY_AFTER;
-                    while Instant::now() < until && !self.stopped() {
-                        std::thread::sleep(Duration::from_millis(50));
-                    }
+                    (RETRY_AFTER, store_failed)
+                }
+            };
+            let until = Instant::now() + wait;
+            while Instant::now() < until && !self.stopped() {
+                std::thread::sleep(Duration::from_millis(50));
+            }
+            if store_failed && !self.stopped() {
+                // A server that went away: a new connection (shared by
+                // every device; one that answers is kept). If the server
+                // is still away, the next session fails the same way.
+                let mut store = self.store.clone();
+                if let Err(e) = store.reopen() {
+                    self.update(|s| s.error = Some(e.to_string()));
                 }
             }
         }
@@ -440,9 +609,56 @@ impl<S: RecordStore> Worker<S> {
         total: &mut Summary,
         drift: &mut DriftWatch,
         serial_out: &mut Option<String>,
-    ) -> Result<(), LineError> {
+    ) -> Result<(), Ended> {
         self.update(|s| s.state = DeviceState::Connecting);
-        let link = Link::connect((self.run.open)(), self.run.link)?;
+        let link = Link::connect((self.run.open)(), self.run.link).map_err(LineError::from)?;
+        // The lease is keyed by the serial the device answered with, and
+        // taken before the session writes anything of the device.
+        let slot = match &self.leases {
+            Some(leases) => {
+                let serial = link.serial_number().to_string();
+                *serial_out = Some(serial.clone());
+                leases.acquire(&serial).map_err(Ended::Lease)?;
+                let slot = Arc::new(Slot {
+                    unit: self.unit(),
+                    lost: Mutex::new(None),
+                    failing: AtomicBool::new(false),
+                });
+                lock(&self.held).insert(serial.clone(), Arc::clone(&slot));
+                Some((serial, slot))
+            }
+            None => None,
+        };
+        let result =
+            self.leased_session(link, total, drift, serial_out, slot.as_ref().map(|s| &*s.1));
+        if let (Some(leases), Some((serial, _))) = (&self.leases, &slot) {
+            lock(&self.held).remove(serial);
+            // Released on a clean stop only: after a failure the device is
+            // tried again soon under the same lease (renewed then), and a
+            // lost lease is another gateway's now.
+            if result.is_ok() {
+                if let Err(e) = leases.release(serial) {
+                    self.say(
+                        Some(serial),
+                        Level::Error,
+                        format!("{e}; it runs out on its own"),
+                    );
+                }
+            }
+        }
+        result
+    }
+
+    /// The session of a device whose lease (if any) is held.
+    fn leased_session(
+        &self,
+        link: Link,
+        total: &mut Summary,
+        drift: &mut DriftWatch,
+        serial_out: &mut Option<String>,
+        slot: Option<&Slot>,
+    ) -> Result<(), Ended> {
+        let lost = || slot.and_then(|s| lock(&s.lost).take());
         let mut store = self.store.clone();
         let unit = self.unit();
         let now = Instant::now;
@@ -469,7 +685,7 @@ impl<S: RecordStore> Worker<S> {
         *serial_out = Some(serial.clone());
         self.table.register(unit, &serial);
         self.update(|s| s.serial = Some(serial.clone()));
-        let result = (|| -> Result<(), LineError> {
+        let result = (|| -> Result<(), Ended> {
             session.catch_up(&mut store, &mut ctx)?;
             self.drift(drift, &serial, true);
             session.subscribe(&mut ctx)?;
@@ -479,6 +695,9 @@ impl<S: RecordStore> Worker<S> {
                 s.error = None;
             });
             while !self.stopped() {
+                if let Some(e) = lost() {
+                    return Err(Ended::Lease(e));
+                }
                 let polled = session.poll(&mut store, &mut ctx)?;
                 if polled.stopped {
                     break;
@@ -498,7 +717,7 @@ impl<S: RecordStore> Worker<S> {
         let t = *total;
         self.update(|s| s.line = t);
         result?;
-        flushed
+        Ok(flushed?)
     }
 
     /// The live drift check (never fatal: the readings are stored anyway).

@@ -1,8 +1,7 @@
 //! One store shared by the gateway's device threads.
 //!
 //! [`SharedStore`] is a handle on one store back end (any
-//! [`RecordStore`]: the SQLite file today, a PostgreSQL one when it
-//! exists) that implements the store traits itself by locking the back end
+//! [`RecordStore`]: a SQLite file or a PostgreSQL database) that implements the store traits itself by locking the back end
 //! for each call only. So every device's line session holds its own handle
 //! and waits on its own port without holding the store; the writes of all
 //! devices go through one connection, one transaction per batch, in one
@@ -92,6 +91,9 @@ impl<S: RecordStore> RecordLog for SharedStore<S> {
     }
     fn set_record_clock(&mut self, unix_ms: Option<i64>) {
         self.lock().set_record_clock(unix_ms);
+    }
+    fn reopen(&mut self) -> Result<(), StoreError> {
+        self.lock().reopen()
     }
 }
 

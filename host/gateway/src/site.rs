@@ -2,7 +2,10 @@
 //!
 //! ```toml
 //! name = "Fenwick Feed Mill"          # for people and the live page
-//! store = "fenwick.db"                # SQLite file (relative paths: to this file's folder)
+//! store = "fenwick.db"                # SQLite file (relative paths: to this file's folder),
+//!                                     # or postgres://USER@HOST:PORT/DATABASE (kept as written)
+//! gateway = "fenwick-gw-1"            # this gateway's name; required with a postgres:// store
+//! lease_s = 30                        # device lease time to live with a postgres:// store [30]
 //! stale_after_s = 10                  # a reading older than this is served as stale [10]
 //! drift_every_s = 60                  # drift monitors per device every S seconds; 0 = off [60]
 //! status_every_s = 10                 # plain/JSON status lines every S seconds [10]
@@ -91,6 +94,10 @@ struct RawSite {
     #[serde(default)]
     name: String,
     store: Spanned<String>,
+    #[serde(default)]
+    gateway: Option<Spanned<String>>,
+    #[serde(default)]
+    lease_s: Option<Spanned<f64>>,
     #[serde(default)]
     stale_after_s: Option<Spanned<f64>>,
     #[serde(default)]
@@ -209,8 +216,15 @@ pub struct Site {
     pub path: PathBuf,
     /// Site name.
     pub name: String,
-    /// The SQLite store file.
+    /// The store: a SQLite file, or a PostgreSQL URL as written
+    /// (`postgres://...`; it may hold a password: show it only through
+    /// the PostgreSQL back end's display name).
     pub store: PathBuf,
+    /// This gateway's name among the gateways writing one PostgreSQL store
+    /// (the owner of its device leases).
+    pub gateway: Option<String>,
+    /// The time to live of a device lease (renewed every third of it).
+    pub lease: Duration,
     /// Readings older than this are served as stale.
     pub stale_after: Duration,
     /// Drift monitors per device this often (`None`: off).
@@ -235,7 +249,17 @@ fn line_column(text: &str, at: usize) -> (usize, usize) {
     (line, column)
 }
 
+/// Whether a site file's `store` names a PostgreSQL database.
+pub fn is_store_url(store: &str) -> bool {
+    store.starts_with("postgres://") || store.starts_with("postgresql://")
+}
+
 impl Site {
+    /// Whether the store is a PostgreSQL database (`postgres://...`).
+    pub fn store_is_url(&self) -> bool {
+        self.store.to_str().is_some_and(is_store_url)
+    }
+
     /// Reads and checks a site file.
     ///
     /// # Errors
@@ -290,9 +314,33 @@ impl Site {
                 raw.store.span(),
                 "store",
                 "\"\"".into(),
-                "names the SQLite file the readings go to",
+                "names the SQLite file (or postgres:// database) the readings go to",
             ));
         }
+        let url = is_store_url(raw.store.get_ref());
+        let gateway = match &raw.gateway {
+            Some(g) => {
+                let name = g.get_ref().trim();
+                if name.is_empty() || name.len() > 200 || name.contains('\0') {
+                    return Err(bad(
+                        g.span(),
+                        "gateway",
+                        format!("{:?}", g.get_ref()),
+                        "a name of 1 to 200 characters, unique among the gateways of one store",
+                    ));
+                }
+                Some(name.to_string())
+            }
+            None if url => {
+                return Err(bad(
+                    raw.store.span(),
+                    "gateway",
+                    "(missing)".into(),
+                    "a postgres:// store needs `gateway = \"NAME\"`, a name of this gateway unique among those writing the database (it owns the device leases)",
+                ));
+            }
+            None => None,
+        };
         let seconds = |v: &Option<Spanned<f64>>,
                        field: &str,
                        default: f64,
@@ -325,6 +373,7 @@ impl Site {
         let stale = seconds(&raw.stale_after_s, "stale_after_s", 10.0, 1.0)?;
         let drift = seconds(&raw.drift_every_s, "drift_every_s", 60.0, 0.0)?;
         let status = seconds(&raw.status_every_s, "status_every_s", 10.0, 0.1)?;
+        let lease = seconds(&raw.lease_s, "lease_s", 30.0, 1.0)?;
         let listen =
             |l: &Option<RawListen>, field: &str| -> Result<Option<SocketAddr>, SiteError> {
                 match l {
@@ -497,7 +546,13 @@ impl Site {
         Ok(Site {
             path: path.to_path_buf(),
             name: raw.name,
-            store: resolve(raw.store.get_ref()),
+            store: if url {
+                PathBuf::from(raw.store.get_ref())
+            } else {
+                resolve(raw.store.get_ref())
+            },
+            gateway,
+            lease: Duration::from_secs_f64(lease),
             stale_after: Duration::from_secs_f64(stale),
             drift_every: (drift > 0.0).then(|| Duration::from_secs_f64(drift)),
             status_every: Duration::from_secs_f64(status),
@@ -580,5 +635,30 @@ baud = 9600
             .unwrap_err()
             .to_string();
         assert!(e.contains(":9: device[0].port"), "{e}");
+    }
+
+    #[test]
+    fn a_postgres_store_is_kept_as_written_and_needs_a_gateway_name() {
+        let url = "postgres://fringe_gw@db.plant.example:5432/fringe";
+        let text = GOOD.replace(
+            "store = \"t.db\"",
+            &format!("store = \"{url}\"\ngateway = \"gw-1\"\nlease_s = 12"),
+        );
+        let s = parse(&text).unwrap();
+        assert!(s.store_is_url());
+        assert_eq!(s.store, PathBuf::from(url));
+        assert_eq!(s.gateway.as_deref(), Some("gw-1"));
+        assert_eq!(s.lease, Duration::from_secs(12));
+        let e = parse(&GOOD.replace("store = \"t.db\"", &format!("store = \"{url}\"")))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("site.toml:2: gateway = (missing)"), "{e}");
+        let e = parse(&text.replace("lease_s = 12", "lease_s = 0.5"))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains(":4: lease_s = 0.5"), "{e}");
+        // A file store: no lease, paths resolved.
+        let s = parse(GOOD).unwrap();
+        assert!(!s.store_is_url() && s.gateway.is_none());
     }
 }

@@ -515,7 +515,7 @@ pub struct PullSummary {
     /// Device serial.
     pub serial: String,
     /// The device log: first sequence held.
-    pub log_first: String,
+    pub log_first: fringe_protocol::Seq,
     /// Readings the device log holds.
     pub log_len: u32,
     /// The device clock before, and whether it was set.
@@ -574,7 +574,7 @@ pub fn pull(
     let total = batcher.total();
     Ok(PullSummary {
         serial,
-        log_first: status.log_first.to_string(),
+        log_first: status.log_first,
         log_len: status.log_len,
         clock,
         received: b.received,

@@ -31,6 +31,21 @@ use fringe_protocol::{
     Settings, Status, Version, MAX_FRAME_LEN, PROTOCOL_VERSION,
 };
 
+/// What to do about a refusal, for the message (empty when the device's
+/// reason says it all).
+fn refusal_hint(code: u16, reason: &str) -> &'static str {
+    if code != fringe_protocol::ErrorCode::AuthFailed.code() {
+        return "";
+    }
+    if reason.contains("does not verify") {
+        "; wrong key file? The key file must hold this device's write key (64 hex digits)"
+    } else if reason.contains("needs an auth tag") {
+        "; give the device's key file with --key-file (or key_file in the line file)"
+    } else {
+        ""
+    }
+}
+
 /// A link failure a user can act on. Each names the port.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 #[non_exhaustive]
@@ -106,10 +121,13 @@ pub enum LinkError {
         theirs: Version,
     },
     /// The device refused a request.
-    #[error("the device refused {request}: {reason} (error code {code})")]
+    #[error("the device refused {request}: {reason} (error code {code}){hint}")]
     Refused {
         /// Request name.
         request: &'static str,
+        /// What to do about it, for the message (`; wrong key file? ...`),
+        /// empty when the device's reason says it all.
+        hint: &'static str,
         /// Numeric error code.
         code: u16,
         /// The device's reason.
@@ -717,6 +735,7 @@ impl Link {
                         }
                         return Err(LinkError::Refused {
                             request: name,
+                            hint: refusal_hint(code, &reason),
                             code,
                             reason,
                         });

@@ -1862,6 +1862,13 @@ impl RecordLog for Store {
     fn set_record_clock(&mut self, unix_ms: Option<i64>) {
         Store::set_record_clock(self, unix_ms);
     }
+    fn reopen(&mut self) -> Result<(), StoreError> {
+        // A connection that still answers is kept (its caches with it).
+        if !self.is_closed() && self.rows("SELECT 1", &[]).is_ok() {
+            return Ok(());
+        }
+        self.reconnect()
+    }
 }
 
 impl RecordRead for Store {

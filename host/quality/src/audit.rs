@@ -380,11 +380,12 @@ const READING_EXTRAS: [&str; 11] = [
     "product_cal_id",
 ];
 
-fn csv_cell(v: &Value) -> String {
+/// A cell of column `column` (reals by [`crate::numbers`]' rule of the column).
+fn csv_cell(column: &str, v: &Value) -> String {
     match v {
         Value::Null => String::new(),
         Value::Integer(i) => i.to_string(),
-        Value::Real(x) => format!("{x:?}"),
+        Value::Real(x) => crate::numbers::cell(column, Some(*x)),
         Value::Text(s) => s.clone(),
         Value::Blob(b) => hex_of(b),
     }
@@ -399,7 +400,12 @@ fn csv_row(
     values: &[Value],
 ) -> Vec<String> {
     let mut row = vec![position.to_string(), hash.to_string()];
-    row.extend(values.iter().map(csv_cell));
+    row.extend(
+        values
+            .iter()
+            .enumerate()
+            .map(|(i, v)| csv_cell(columns.get(i).map_or("", String::as_str), v)),
+    );
     if table == Table::Readings {
         let get = |c: &str| {
             columns
@@ -425,7 +431,11 @@ fn csv_row(
         let ch: Vec<String> = match get("channels") {
             Some(Value::Blob(b)) if b.len() == 32 => b
                 .chunks(4)
-                .map(|c| format!("{:?}", f32::from_le_bytes([c[0], c[1], c[2], c[3]])))
+                .zip(&READING_EXTRAS[2..10])
+                .map(|(c, name)| {
+                    let x = f32::from_le_bytes([c[0], c[1], c[2], c[3]]);
+                    crate::numbers::cell(name, Some(f64::from(x)))
+                })
                 .collect(),
             _ => vec![String::new(); 8],
         };

@@ -837,14 +837,19 @@ pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> Result<String, FitError>
     )
     .map_err(FitError::Plot)?];
     type Get = fn(&RefSample) -> f64;
-    let inputs: [(&str, Get); 5] = [
-        ("temperature, C", |s| s.temperature_c),
-        ("eps' at freq1", |s| s.eps_re[0]),
-        ("eps'' at freq1", |s| s.eps_im[0]),
-        ("eps' at freq2", |s| s.eps_re[1]),
-        ("eps'' at freq2", |s| s.eps_im[1]),
+    let (f1, f2) = (
+        crate::product_file::hz_label(set.freqs_hz[0]),
+        crate::product_file::hz_label(set.freqs_hz[1]),
+    );
+    let inputs: [(String, Get); 5] = [
+        ("temperature, C".into(), |s| s.temperature_c),
+        (format!("eps' at {f1}"), |s| s.eps_re[0]),
+        (format!("eps'' at {f1}"), |s| s.eps_im[0]),
+        (format!("eps' at {f2}"), |s| s.eps_re[1]),
+        (format!("eps'' at {f2}"), |s| s.eps_im[1]),
     ];
     for (label, get) in inputs {
+        let label = label.as_str();
         let pts: Vec<(f64, f64)> = set
             .samples
             .iter()
@@ -983,12 +988,6 @@ pub const PREDICT_COLUMNS: [&str; 8] = [
     "flags",
 ];
 
-fn fmt_opt(v: Option<f64>, digits: usize) -> String {
-    v.filter(|x| x.is_finite())
-        .map(|x| format!("{x:.digits$}"))
-        .unwrap_or_default()
-}
-
 /// Flag names of a row: the device's, plus `beyond_calibration` when the
 /// leverage exceeds every calibration sample's.
 fn flag_names(r: &Predicted) -> Vec<String> {
@@ -1002,22 +1001,23 @@ fn flag_names(r: &Predicted) -> Vec<String> {
 /// Writes predictions as CSV with [`PREDICT_COLUMNS`]: the lab value
 /// (`moisture_pct`, empty when the input had none) beside the predicted one,
 /// the device's uncertainty, the prediction interval, the leverage and the
-/// flags (`|`-separated).
+/// flags (`|`-separated); numbers by [`crate::numbers`]' column rules.
 ///
 /// # Errors
 /// I/O errors.
 pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> Result<(), csv::Error> {
+    use crate::numbers::cell;
     let mut c = csv::Writer::from_writer(w);
     c.write_record(PREDICT_COLUMNS)?;
     for r in rows {
         c.write_record([
             r.sample_id.clone(),
-            fmt_opt(r.lab_pct, 3),
-            fmt_opt(r.moisture_pct.map(f64::from), 3),
-            fmt_opt(Some(f64::from(r.uncertainty_pct)), 3),
-            fmt_opt(r.interval_pct.map(|i| i.0), 3),
-            fmt_opt(r.interval_pct.map(|i| i.1), 3),
-            fmt_opt(Some(r.leverage), 4),
+            cell(PREDICT_COLUMNS[1], r.lab_pct),
+            cell(PREDICT_COLUMNS[2], r.moisture_pct.map(f64::from)),
+            cell(PREDICT_COLUMNS[3], Some(f64::from(r.uncertainty_pct))),
+            cell(PREDICT_COLUMNS[4], r.interval_pct.map(|i| i.0)),
+            cell(PREDICT_COLUMNS[5], r.interval_pct.map(|i| i.1)),
+            cell(PREDICT_COLUMNS[6], Some(r.leverage)),
             flag_names(r).join("|"),
         ])?;
     }

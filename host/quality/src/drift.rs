@@ -270,6 +270,16 @@ pub enum ChartKind {
     Ewma,
 }
 
+impl ChartKind {
+    /// The chart's name for people: `CUSUM`, `EWMA`.
+    pub fn name(self) -> &'static str {
+        match self {
+            ChartKind::Cusum => "CUSUM",
+            ChartKind::Ewma => "EWMA",
+        }
+    }
+}
+
 /// Direction of a shift.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
 #[serde(rename_all = "snake_case")]
@@ -355,19 +365,19 @@ impl Alarm {
             )
         } else {
             format!(
-                "{} drifted {} by {:+.3} {} ({:+.1} sigma)",
+                "{} drifted {} by {:.3} {} ({:.1} sigma)",
                 self.quantity.describe(),
                 dir,
-                self.shift,
+                self.shift.abs(),
                 self.quantity.unit(),
-                self.shift_sigma
+                self.shift_sigma.abs()
             )
         };
         format!(
-            "{what} since {} (observation {}), flagged by {:?} at {} (observation {}): {}",
+            "{what} since {} (observation {}), flagged by the {} chart at {} (observation {}): {}",
             crate::timefmt::fmt_person(self.since_ms),
             self.since_index,
-            self.chart,
+            self.chart.name(),
             crate::timefmt::fmt_person(self.time_ms),
             self.index,
             self.action.advice()

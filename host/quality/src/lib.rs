@@ -13,7 +13,8 @@
 //! - [`plots`], [`report`]: SVG charts and the HTML report;
 //! - [`views`]: what the commands show (drift, report, history, lab
 //!   samples, audit summaries), written to a writer the caller gives;
-//! - [`timefmt`]: times as people read and type them;
+//! - [`timefmt`]: times as people read and type them; [`numbers`]: the
+//!   precision rule of every CSV column;
 //! - [`watch`]: the live drift check of a streaming device (monitor, gateway).
 //!
 //! Nothing here prints to a terminal, parses a command line or exits.
@@ -24,6 +25,7 @@ pub mod analysis;
 pub mod audit;
 pub mod cal;
 pub mod drift;
+pub mod numbers;
 pub mod plots;
 pub mod product_file;
 pub mod report;

@@ -80,21 +80,21 @@ pub fn render(r: &ReportInput) -> Result<String, String> {
         for a in &alarms {
             let _ = writeln!(
                 h,
-                "<tr class=\"alarm\"><td>{}</td><td>{}</td><td>{} ({:?})</td><td>{:+.3} {} ({:+.1} sigma)</td><td>{}</td></tr>",
+                "<tr class=\"alarm\"><td>{}</td><td>{}</td><td>{} ({})</td><td>{} {} ({} sigma)</td><td>{}</td></tr>",
                 esc(a.quantity.describe()),
                 fmt_time(a.since_ms),
                 fmt_time(a.time_ms),
-                a.chart,
-                a.shift,
+                a.chart.name(),
+                crate::numbers::signed(a.shift, 3),
                 esc(a.quantity.unit()),
-                a.shift_sigma,
+                crate::numbers::signed(a.shift_sigma, 1),
                 esc(a.action.advice())
             );
         }
         let _ = writeln!(h, "</table>");
     }
 
-    let _ = writeln!(h, "<h2>Moisture trend</h2>\n<p>Line: inline moisture; band: expanded uncertainty (k = 2, about 95 %); orange dots: readings with a quality flag; black diamonds: lab grab samples.</p>");
+    let _ = writeln!(h, "<h2>Moisture trend</h2>\n<p>Line: inline moisture; band: expanded uncertainty (k = 2, about 95 %); orange dots (when there are any): readings with a value and a quality flag; black diamonds: lab grab samples; grey, labelled: periods without a value (line empty, not calibrated, ...) or without readings. Below: the product temperature. Times on the axes: local time with its offset (UTC with --utc).</p>");
     if r.trend.is_empty() {
         let _ = writeln!(h, "<p>No readings.</p>");
     } else {
@@ -113,7 +113,7 @@ pub fn render(r: &ReportInput) -> Result<String, String> {
         let _ = writeln!(h, "</table>");
     }
 
-    let _ = writeln!(h, "<h2>Drift charts</h2>\n<p>Red lines: decision limits; red crosses: alarms. In-control average run lengths: CUSUM k 0.5, h 5: 465 observations; EWMA lambda 0.1, L 2.814: about 500 (Montgomery; Lucas and Saccucci 1990).</p>");
+    let _ = writeln!(h, "<h2>Drift charts</h2>\n<p>Against time: blue, the upper CUSUM C+ (an upward shift); green, the lower one drawn as -C- (a downward shift); red lines: decision limits; red crosses: alarms, on the curve that crossed. In-control average run lengths: CUSUM k 0.5, h 5: 465 observations; EWMA lambda 0.1, L 2.814: about 500 (Montgomery; Lucas and Saccucci 1990).</p>");
     for t in &r.traces {
         if t.obs.is_empty() {
             let _ = writeln!(
@@ -184,10 +184,11 @@ mod tests {
             span_ms: Some((1_790_000_000_000, 1_790_000_600_000)),
             trend: (0..10)
                 .map(|i| TrendPoint {
-                    t_h: i as f64,
+                    time_ms: 1_790_000_000_000 + i * 60_000,
                     moisture_pct: Some(14.0),
                     uncertainty_pct: 0.2,
-                    flagged: false,
+                    temperature_c: Some(30.0),
+                    flags: fringe_protocol::Flags::empty(),
                 })
                 .collect(),
             traces: vec![Monitor::new(Quantity::EmptyBaseline, 0.0, 1.0).run(&obs)],

@@ -112,6 +112,28 @@ pub enum SampleError {
         /// The parser's reason.
         reason: String,
     },
+    /// The header is one field holding another separator (`;`, tab): a
+    /// spreadsheet's export in a locale with a decimal comma, most often.
+    Separator {
+        /// File.
+        file: PathBuf,
+        /// The separator the header seems to use.
+        found: char,
+    },
+    /// A row has fewer or more fields than the header.
+    RowLength {
+        /// File.
+        file: PathBuf,
+        /// Line.
+        line: u64,
+        /// Fields on the row.
+        fields: usize,
+        /// Fields of the header.
+        header: usize,
+        /// Name of the first column with no value on a short row (or of the
+        /// last column, on a long one).
+        column: String,
+    },
     /// A field is not a number, not finite or outside its allowed range.
     BadValue {
         /// File.
@@ -184,6 +206,28 @@ impl fmt::Display for SampleError {
                 write!(f, "{}: line 1: column `{column}` appears twice", file.display())
             }
             Malformed { file, line, reason } => write!(f, "{}: line {line}: {reason}", file.display()),
+            Separator { file, found } => write!(
+                f,
+                "{}: line 1: the columns look separated by `{}`, not `,`; save the table as CSV with `,` between columns and `.` as the decimal point (a spreadsheet's text export lets you choose both)",
+                file.display(),
+                if *found == '\t' { "tab".to_string() } else { found.to_string() }
+            ),
+            RowLength { file, line, fields, header, column } if fields < header => write!(
+                f,
+                "{}: line {line}: {fields} fields but the header has {header}: no value for column {} ({column}) onward; a missing value needs its comma (an empty cell)",
+                file.display(),
+                fields + 1
+            ),
+            RowLength { file, line, fields, header, column } => write!(
+                f,
+                "{}: line {line}: {fields} fields but the header has {header} (the last is `{column}`): a comma too many, or a decimal comma? Use `.` as the decimal point",
+                file.display()
+            ),
+            BadValue { file, line, column, field, value, expected } if value.is_empty() => write!(
+                f,
+                "{}: line {line}, column {column} ({field}): empty; expected {expected}",
+                file.display()
+            ),
             BadValue { file, line, column, field, value, expected } => write!(
                 f,
                 "{}: line {line}, column {column} ({field}): `{value}` is not {expected}",
@@ -240,7 +284,8 @@ pub fn parse_samples(
     let file = file.to_path_buf();
     let mut rdr = csv::ReaderBuilder::new()
         .trim(csv::Trim::All)
-        .flexible(false)
+        // Rows of another length are refused below, naming the column.
+        .flexible(true)
         .from_reader(text);
     let malformed = |e: csv::Error, file: &PathBuf| {
         let line = e.position().map(|p| p.line()).unwrap_or(1);
@@ -253,6 +298,12 @@ pub fn parse_samples(
     let header = rdr.headers().map_err(|e| malformed(e, &file))?.clone();
     if header.is_empty() || header.iter().all(|h| h.is_empty()) {
         return Err(SampleError::Empty { file });
+    }
+    if header.len() == 1 {
+        let h = &header[0];
+        if let Some(found) = [';', '\t', '|'].into_iter().find(|c| h.contains(*c)) {
+            return Err(SampleError::Separator { file, found });
+        }
     }
     let mut cols = Cols { idx: [None; 9] };
     for (i, h) in header.iter().enumerate() {
@@ -278,6 +329,16 @@ pub fn parse_samples(
         let line = rec.position().map(|p| p.line()).unwrap_or(0);
         if rec.iter().all(|f| f.is_empty()) {
             continue; // a blank line
+        }
+        if rec.len() != header.len() {
+            let i = rec.len().min(header.len() - 1);
+            return Err(SampleError::RowLength {
+                file,
+                line,
+                fields: rec.len(),
+                header: header.len(),
+                column: header.get(i).unwrap_or("").to_string(),
+            });
         }
         let field = |c: usize| -> (usize, &str) {
             // Columns 0 and 2.. are present (checked above); 1 may be absent.
@@ -314,7 +375,11 @@ pub fn parse_samples(
         let moisture_pct = match (field(1).1, moisture) {
             ("", MoistureColumn::Optional) => None,
             ("", MoistureColumn::Required) => {
-                return Err(bad(1, "", "a lab moisture (empty)"));
+                return Err(bad(
+                    1,
+                    "",
+                    "the lab moisture, % wet basis, to fit with (fill in the lab's value, or leave the row out until the lab is done)",
+                ));
             }
             (s, _) => {
                 let v = num(1)?;
@@ -416,7 +481,7 @@ impl SampleSet {
 }
 
 /// Writes samples as CSV with the columns in [`COLUMNS`] order (an empty
-/// `moisture_pct` where unknown).
+/// `moisture_pct` where unknown; numbers by [`crate::numbers`]' column rules).
 ///
 /// # Errors
 /// I/O errors from `out`.
@@ -424,18 +489,24 @@ pub fn write_samples<W: std::io::Write>(out: W, samples: &[RefSample]) -> std::i
     let mut w = csv::Writer::from_writer(out);
     w.write_record(COLUMNS)?;
     for s in samples {
-        let m = s.moisture_pct.map(|m| format!("{m}")).unwrap_or_default();
-        w.write_record([
-            s.sample_id.clone(),
-            m,
-            format!("{}", s.temperature_c),
-            format!("{}", s.freqs_hz[0]),
-            format!("{}", s.eps_re[0]),
-            format!("{}", s.eps_im[0]),
-            format!("{}", s.freqs_hz[1]),
-            format!("{}", s.eps_re[1]),
-            format!("{}", s.eps_im[1]),
-        ])?;
+        let values = [
+            s.moisture_pct,
+            Some(s.temperature_c),
+            Some(s.freqs_hz[0]),
+            Some(s.eps_re[0]),
+            Some(s.eps_im[0]),
+            Some(s.freqs_hz[1]),
+            Some(s.eps_re[1]),
+            Some(s.eps_im[1]),
+        ];
+        let mut row = vec![s.sample_id.clone()];
+        row.extend(
+            COLUMNS[1..]
+                .iter()
+                .zip(values)
+                .map(|(c, v)| crate::numbers::cell(c, v)),
+        );
+        w.write_record(row)?;
     }
     w.flush()
 }
@@ -507,11 +578,33 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
         let e = err(&GOOD.replace("6.4,13.0", "6.4,13,0x"));
         // Row now has 11 fields: malformed.
         assert!(e.starts_with("lab.csv: line 3"), "{e}");
+        assert!(e.contains("11 fields but the header has 10"), "{e}");
         let e = err(&GOOD.replace("6.4,13.0", "6.4,thirteen"));
         assert_eq!(
             e,
             "lab.csv: line 3, column 6 (eps1_im): `thirteen` is not a number"
         );
+    }
+
+    #[test]
+    fn short_row_names_the_column() {
+        let e = err(&GOOD.replace(",0.9,S2,1e6,6.4,13.0,2e7,5.0,22.0,13.1", ",0.9,S2,1e6,6.4"));
+        assert_eq!(
+            e,
+            "lab.csv: line 3: 5 fields but the header has 10: no value for column 6 (eps1_im) onward; a missing value needs its comma (an empty cell)"
+        );
+    }
+
+    #[test]
+    fn semicolon_separated_csv_says_so() {
+        let t = GOOD.replace(',', ";");
+        let e = err(&t);
+        assert!(
+            e.starts_with("lab.csv: line 1: the columns look separated by `;`, not `,`"),
+            "{e}"
+        );
+        let e = err(&GOOD.replace(',', "\t"));
+        assert!(e.contains("separated by `tab`"), "{e}");
     }
 
     #[test]
@@ -560,7 +653,11 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
     #[test]
     fn moisture_optional_for_prediction_but_not_for_fitting() {
         let t = GOOD.replace(",12.3\n", ",\n");
-        assert!(err(&t).contains("column 10 (moisture_pct): `` is not a lab moisture (empty)"));
+        assert!(
+            err(&t).contains("line 2, column 10 (moisture_pct): empty; expected the lab moisture"),
+            "{}",
+            err(&t)
+        );
         let s =
             parse_samples(Path::new("in.csv"), t.as_bytes(), MoistureColumn::Optional).expect("ok");
         assert!(!s.all_have_moisture);

@@ -63,6 +63,51 @@ pub fn fmt_in(ms: i64, tz: &TimeZone) -> String {
     }
 }
 
+/// The zone times are shown in: UTC after [`set_utc`], else the system's.
+fn display_zone() -> TimeZone {
+    if utc() {
+        TimeZone::UTC
+    } else {
+        TimeZone::system()
+    }
+}
+
+/// ms since the Unix epoch formatted with `strftime` pattern `pattern` in
+/// the zone times are shown in (local, or UTC after [`set_utc`]); for plot
+/// axes (`%H:%M`, `%m-%d %H:%M`).
+pub fn fmt_clock(ms: i64, pattern: &str) -> String {
+    match Timestamp::from_millisecond(ms) {
+        Ok(t) => t
+            .to_zoned_datetime(display_zone())
+            .strftime(pattern)
+            .to_string(),
+        Err(_) => format!("{ms} ms"),
+    }
+}
+
+/// The offset from UTC, ms, of the zone times are shown in at `ms`.
+pub fn offset_ms(ms: i64) -> i64 {
+    match Timestamp::from_millisecond(ms) {
+        Ok(t) => i64::from(display_zone().to_offset(t).seconds()) * 1000,
+        Err(_) => 0,
+    }
+}
+
+/// The zone times are shown in, for an axis title: `UTC`, or `local time
+/// (UTC+01:00)` with the offset at `ms`.
+pub fn zone_label(ms: i64) -> String {
+    if utc() {
+        return "UTC".into();
+    }
+    match Timestamp::from_millisecond(ms) {
+        Ok(t) => format!(
+            "local time (UTC{})",
+            t.to_zoned_datetime(TimeZone::system()).strftime("%:z")
+        ),
+        Err(_) => "local time".into(),
+    }
+}
+
 /// Parses a time a person typed (see the module doc) in the system's time
 /// zone; returns ms since the Unix epoch.
 ///

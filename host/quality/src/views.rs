@@ -216,6 +216,10 @@ pub fn trace_json(t: &Trace) -> serde_json::Value {
 /// its fields, the message for a person and both times in UTC.
 pub fn alarm_json(a: &crate::drift::Alarm) -> serde_json::Value {
     let mut v = serde_json::to_value(a).unwrap_or_default();
+    // The shift to 4 decimals of its unit and 2 of sigma, as the message
+    // gives them to 3 and 1 (a mean of f32 readings carries no more).
+    v["shift"] = json!((a.shift * 1e4).round() / 1e4);
+    v["shift_sigma"] = json!((a.shift_sigma * 100.0).round() / 100.0);
     v["message"] = json!(a.message());
     v["since_utc"] = json!(fmt_time(a.since_ms));
     v["time_utc"] = json!(fmt_time(a.time_ms));
@@ -312,23 +316,26 @@ pub fn report_input(
     title: Option<&str>,
 ) -> Result<ReportInput, ViewError> {
     let data = analysis::load(store, serial)?;
-    let t0 = data.rows.first().map_or(0, |r| r.time_ms);
-    let hours = |t: i64| (t - t0) as f64 / 3.6e6;
     let trend: Vec<TrendPoint> = data
         .rows
         .iter()
         .map(|r| TrendPoint {
-            t_h: hours(r.time_ms),
-            moisture_pct: r.reading.moisture_pct.map(f64::from),
+            time_ms: r.time_ms,
+            moisture_pct: r
+                .reading
+                .moisture_pct
+                .map(f64::from)
+                .filter(|m| m.is_finite()),
             uncertainty_pct: f64::from(r.reading.uncertainty_pct),
-            flagged: !(r.reading.flags - Flags::CLOCK_UNSET).is_empty(),
+            temperature_c: Some(f64::from(r.reading.temperature_c)).filter(|t| t.is_finite()),
+            flags: r.reading.flags - Flags::CLOCK_UNSET,
         })
         .collect();
     let lab: Vec<LabPoint> = data
         .lab
         .iter()
         .map(|l| LabPoint {
-            t_h: hours(l.time_ms),
+            time_ms: l.time_ms,
             moisture_pct: l.lab_pct,
         })
         .collect();
@@ -513,9 +520,10 @@ pub fn history(
     Ok(all)
 }
 
-/// The history as `fringe cal history --json` prints it.
+/// The history as `fringe cal history --json` prints it: one object,
+/// `records` the changes in chain order.
 pub fn history_json(all: &[HistoryEntry]) -> serde_json::Value {
-    serde_json::Value::Array(
+    let records = serde_json::Value::Array(
         all.iter()
             .map(|(s, c, b)| {
                 json!({
@@ -525,7 +533,19 @@ pub fn history_json(all: &[HistoryEntry]) -> serde_json::Value {
                 })
             })
             .collect(),
-    )
+    );
+    json!({ "records": records })
+}
+
+/// What a change was, in words: `cell calibration`, `settings change`,
+/// `product push`, `product select` (the kind alone is not said twice).
+fn history_what(kind: &str, action: &str) -> String {
+    match (kind, action) {
+        ("cell", "cell") => "cell calibration".into(),
+        ("settings", "settings") => "settings change".into(),
+        (k, a) if k == a => k.into(),
+        (k, a) => format!("{k} {a}"),
+    }
 }
 
 /// Writes the history for a person, one line per change.
@@ -539,15 +559,18 @@ pub fn write_history(all: &[HistoryEntry], db: &Path, w: &mut dyn Write) -> std:
     for (s, c, b) in all {
         writeln!(
             w,
-            "{} {s} #{:<3} {:<8} {:<8} {} -> {} slot {} {:<16} by {}: {}",
+            "{} {s} #{:<3} {:<17} {} -> {}{}{} by {}: {}",
             fmt_person(c.created_unix_ms),
             c.seq,
-            c.cal.kind.as_str(),
-            b.action,
+            history_what(c.cal.kind.as_str(), &b.action),
             b.old_id,
             b.new_id,
-            c.cal.slot.map_or("-".into(), |x| x.to_string()),
-            c.cal.name.clone().unwrap_or_default(),
+            c.cal.slot.map_or(String::new(), |x| format!(" slot {x}")),
+            c.cal
+                .name
+                .as_deref()
+                .filter(|n| !n.is_empty())
+                .map_or(String::new(), |n| format!(" \"{n}\"")),
             b.operator,
             b.reason
         )?;
@@ -632,4 +655,17 @@ pub fn write_verify(
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn history_says_the_kind_once_regression_cell_cell() {
+        assert_eq!(super::history_what("cell", "cell"), "cell calibration");
+        assert_eq!(
+            super::history_what("settings", "settings"),
+            "settings change"
+        );
+        assert_eq!(super::history_what("product", "push"), "product push");
+    }
 }

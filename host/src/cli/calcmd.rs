@@ -78,6 +78,9 @@ pub struct CellArgs {
     /// Do not ask before writing.
     #[arg(long)]
     pub yes: bool,
+    /// Print the result as one JSON object (docs/JSON.md); the guide's steps stay on stderr.
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// `fringe cal capture`.
@@ -93,6 +96,9 @@ pub struct CaptureArgs {
     /// Readings averaged per sample.
     #[arg(long, default_value_t = 5, value_parser = clap::value_parser!(u32).range(1..=200))]
     pub readings: u32,
+    /// Print the result as one JSON object (docs/JSON.md); the guide's steps stay on stderr.
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// `fringe cal push`.
@@ -132,6 +138,9 @@ pub struct PushArgs {
     /// fewer than 5 samples per parameter); the override is kept in the audit record.
     #[arg(long)]
     pub force: bool,
+    /// Print the result as one JSON object (docs/JSON.md); the guide's steps stay on stderr.
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// `fringe cal list`.
@@ -171,4 +180,7 @@ pub struct SelectArgs {
     /// Do not ask for confirmation.
     #[arg(long)]
     pub yes: bool,
+    /// Print the result as one JSON object (docs/JSON.md); the guide's steps stay on stderr.
+    #[arg(long)]
+    pub json: bool,
 }

@@ -4,9 +4,7 @@ use std::path::PathBuf;
 
 /// `fringe demo`.
 #[derive(Debug, Clone, Args)]
-#[command(
-    after_help = "Example:\n  cargo run --release -p fringe-host -- demo\n  fringe demo --out /tmp/hgm --short"
-)]
+#[command(after_help = "Example:\n  fringe demo\n  fringe demo --out /tmp/hgm --short")]
 pub struct DemoArgs {
     /// Output folder: a new or empty folder, or one a previous demo wrote (its
     /// files are replaced); a folder holding anything else is refused, nothing deleted.

@@ -52,7 +52,7 @@ pub enum Command {
     Status(StatusArgs),
     /// Run a simulated device (firmware core, simulated front end) on a pseudo-terminal until stopped.
     #[command(
-        after_help = "Example:\n  fringe sim --scenario scenarios/harrowgate-line2-wheat.toml --link /tmp/fringe-line2\n  (then, in another terminal: fringe monitor --port /tmp/fringe-line2 --db line2.db)"
+        after_help = "Example (from the repository's top folder):\n  fringe sim --scenario host/scenarios/harrowgate-line2-wheat.toml --link /tmp/fringe-line2\n  (then, in another terminal: fringe monitor --port /tmp/fringe-line2 --db line2.db)\nScenario files: README, \"Watching a line\"; the commented examples in host/scenarios/."
     )]
     Sim(SimArgs),
     /// Store what the device logged that the database lacks, then show the readings live and store every one.
@@ -125,7 +125,8 @@ pub struct StatusArgs {
 /// `fringe sim`.
 #[derive(Debug, Clone, Args)]
 pub struct SimArgs {
-    /// Scenario file (TOML; see host/sim/src/scenario.rs and host/scenarios/).
+    /// Scenario file (TOML): what the simulated sensor sees over time,
+    /// empty-line periods, line faults, the device's serial and key.
     #[arg(long, short = 's', value_name = "FILE")]
     pub scenario: PathBuf,
     /// Keep a symlink to the current pseudo-terminal here (it follows reconnects).
@@ -144,6 +145,10 @@ pub struct SimArgs {
     /// the scenario's line. Read about every 100 ms of wall time.
     #[arg(long, value_name = "FILE")]
     pub bench: Option<PathBuf>,
+    /// Say where the device is (and, at the end, what it sent) as JSON
+    /// lines on stdout (docs/JSON.md) instead of text.
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// `fringe monitor`.

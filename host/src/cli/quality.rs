@@ -33,8 +33,9 @@ pub struct LabAddArgs {
     /// (2026-12-01 09:40) it is local time.
     #[arg(long, value_name = "T", value_parser = parse_time)]
     pub time: i64,
-    /// Lab moisture, % (basis as --basis).
-    #[arg(long, value_name = "PCT")]
+    /// Lab moisture, % (basis as --basis; 0 to 100 wet, 0 to 1000 dry).
+    /// A negative value is read as a number (and refused with its range).
+    #[arg(long, value_name = "PCT", allow_negative_numbers = true)]
     pub moisture: f64,
     /// Reference method (e.g. "oven 130 C 2 h, ground").
     #[arg(long)]
@@ -99,6 +100,9 @@ pub struct ReportArgs {
     /// Page title.
     #[arg(long)]
     pub title: Option<String>,
+    /// Print what was written as one JSON object (docs/JSON.md).
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// `fringe cal history`.

@@ -1,8 +1,6 @@
 //! `fringe cal fit`, `cal predict`, `cal adjust`: the command lines, and
 //! the files and output around `fringe_quality::cal`.
 
-use std::io::Write as _;
-
 pub use crate::cli::cal::{AdjustArgs, AdjustCorrectionArg, FitArgs, FitModelArg, PredictArgs};
 use anyhow::Context as _;
 use fringe_quality::cal::{self, AdjustCorrection, AdjustOptions, FitModel, FitOptions};
@@ -56,11 +54,11 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
     if let (Some(p), Some(svg)) = (&args.plot, plot) {
         std::fs::write(p, svg).with_context(|| format!("writing {}", p.display()))?;
     }
-    let mut w = std::io::stdout().lock();
     if args.json {
-        writeln!(w, "{}", cal::outcome_json(&o, &args.out))?;
+        crate::out::json(&cal::outcome_json(&o, &args.out))?;
         return Ok(());
     }
+    let mut w = std::io::stdout().lock();
     cal::write_fit_summary(&o, &args.out, args.plot.as_deref(), &mut w)?;
     Ok(())
 }
@@ -76,7 +74,7 @@ pub fn run_predict(args: &PredictArgs) -> anyhow::Result<()> {
         match &args.out {
             Some(p) => std::fs::write(p, format!("{v}\n"))
                 .with_context(|| format!("writing {}", p.display()))?,
-            None => writeln!(std::io::stdout().lock(), "{v}")?,
+            None => crate::out::json(&v)?,
         }
         return Ok(());
     }

@@ -11,6 +11,7 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use anyhow::Context as _;
+use fringe_gateway::lease::{LeaseRefused, Leases};
 use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
 use fringe_gateway::run::{DeviceRun, DeviceState, DeviceStatus, Gateway, Level, Notice};
 use fringe_gateway::site::{DevicePort, Site};
@@ -97,12 +98,21 @@ pub fn gateway(
             link,
         });
     }
-    let db = super::db_path(Some(&site.store), &LineConfig::default())?;
+    let url = site.store_is_url();
+    let db = if url {
+        site.store.clone()
+    } else {
+        super::db_path(Some(&site.store), &LineConfig::default())?
+    };
+    // Never the password: `postgres://USER@HOST:PORT/DATABASE`.
+    let label = crate::store::db_label(&db);
+    // The MQTT buffer lies beside the store file, or beside the site file
+    // when the store is a database server.
+    let outbox_beside = if url { &site.path } else { &site.store };
     let publisher = match &site.mqtt {
-        Some(m) => Some(start_mqtt(m, &site.store)?),
+        Some(m) => Some(start_mqtt(m, outbox_beside)?),
         None => None,
     };
-    let store = Store::open(&db)?;
     let style = Style::detect();
     let view = Arc::new(Mutex::new(View {
         style,
@@ -114,16 +124,51 @@ pub fn gateway(
     let tell: Arc<dyn Fn(Notice) + Send + Sync> = Arc::new(move |n: Notice| {
         v.lock().unwrap_or_else(|e| e.into_inner()).notice(n);
     });
-    let gw = Gateway::start(&site, store, runs, publisher, tell, Arc::clone(&stop))?;
+    let gw = match db.to_str().filter(|_| url) {
+        Some(u) => {
+            let owner = site.gateway.clone().unwrap_or_default();
+            let mut store = fringe_postgres::Store::connect(u)?;
+            // Every write checks that this gateway holds the device's
+            // lease: one that stalled past it cannot write behind the new
+            // owner's back.
+            store.set_fence(Some(&owner));
+            let leases = PgLeases {
+                store: Mutex::new(fringe_postgres::Store::connect(u)?),
+                held: Mutex::new(std::collections::HashMap::new()),
+                owner,
+                ttl: site.lease,
+            };
+            Gateway::start_leased(
+                &site,
+                store,
+                runs,
+                publisher,
+                Some(Arc::new(leases)),
+                tell,
+                Arc::clone(&stop),
+            )?
+        }
+        None => {
+            let store = Store::open(&db)?;
+            Gateway::start(&site, store, runs, publisher, tell, Arc::clone(&stop))?
+        }
+    };
     eprintln!(
-        "fringe gateway: {}{} devices into {}{}{}",
+        "fringe gateway: {}{} devices into {}{}{}{}",
         if site.name.is_empty() {
             String::new()
         } else {
             format!("{}: ", site.name)
         },
         site.devices.len(),
-        db.display(),
+        label,
+        site.gateway
+            .as_deref()
+            .filter(|_| url)
+            .map_or(String::new(), |g| format!(
+                " as gateway {g:?} (device leases of {:.0} s)",
+                site.lease.as_secs_f64()
+            )),
         gw.modbus_addr().map_or(String::new(), |a| format!(
             "; Modbus TCP on {a} (units {})",
             site.devices
@@ -179,19 +224,112 @@ pub fn gateway(
     }
     if args.json {
         let mut j = serde_json::to_value(&summary)?;
-        j["type"] = "summary".into();
-        out::line(&serde_json::to_string(&j)?)?;
+        if let Some(devices) = j.get_mut("devices").and_then(|d| d.as_array_mut()) {
+            devices.iter_mut().for_each(split_seq);
+        }
+        out::json(&out::typed("summary", j))?;
     } else {
         for d in &summary.devices {
             let _ = out::line(&plain(d));
         }
     }
     eprintln!(
-        "fringe gateway: stopped; {} readings committed in this run into {}",
+        "fringe gateway: stopped; {} readings committed in this run into {label}",
         summary.committed,
-        db.display()
     );
     Ok(())
+}
+
+/// Device leases in the PostgreSQL store (`fringe_postgres::lease`), on a
+/// connection of their own so a renewal never waits behind a batch.
+struct PgLeases {
+    store: Mutex<fringe_postgres::Store>,
+    /// The leases held, by serial (their tokens).
+    held: Mutex<std::collections::HashMap<String, fringe_postgres::lease::Lease>>,
+    owner: String,
+    ttl: Duration,
+}
+
+impl PgLeases {
+    /// Runs `f` on the lease connection, reopening it first when the
+    /// server went away.
+    fn with<R>(
+        &self,
+        f: impl FnOnce(&mut fringe_postgres::Store) -> Result<R, fringe_postgres::lease::LeaseError>,
+    ) -> Result<R, LeaseRefused> {
+        use fringe_postgres::lease::LeaseError;
+        let mut s = self.store.lock().unwrap_or_else(|e| e.into_inner());
+        if s.is_closed() {
+            s.reconnect()
+                .map_err(|e| LeaseRefused::Failed(e.to_string()))?;
+        }
+        match f(&mut s) {
+            Ok(r) => Ok(r),
+            Err(LeaseError::Held {
+                holder, remaining, ..
+            }) => Err(LeaseRefused::Held { holder, remaining }),
+            Err(LeaseError::Lost { why, .. }) => Err(LeaseRefused::Lost { why }),
+            Err(LeaseError::Store(e)) => {
+                if matches!(e, crate::store::StoreError::Unreachable { .. }) {
+                    // Tried once more on a new connection next time.
+                    let _ = s.reconnect();
+                }
+                Err(LeaseRefused::Failed(e.to_string()))
+            }
+            Err(e) => Err(LeaseRefused::Failed(e.to_string())),
+        }
+    }
+}
+
+impl Leases for PgLeases {
+    fn owner(&self) -> &str {
+        &self.owner
+    }
+
+    fn acquire(&self, serial: &str) -> Result<(), LeaseRefused> {
+        let lease = self.with(|s| s.acquire(serial, &self.owner, self.ttl))?;
+        self.held
+            .lock()
+            .unwrap_or_else(|e| e.into_inner())
+            .insert(serial.to_string(), lease);
+        Ok(())
+    }
+
+    fn renew(&self, serial: &str) -> Result<(), LeaseRefused> {
+        let Some(lease) = self
+            .held
+            .lock()
+            .unwrap_or_else(|e| e.into_inner())
+            .get(serial)
+            .cloned()
+        else {
+            return Err(LeaseRefused::Lost {
+                why: "not held by this gateway".into(),
+            });
+        };
+        let renewed = self.with(|s| s.renew(&lease))?;
+        self.held
+            .lock()
+            .unwrap_or_else(|e| e.into_inner())
+            .insert(serial.to_string(), renewed);
+        Ok(())
+    }
+
+    fn release(&self, serial: &str) -> Result<(), LeaseRefused> {
+        let lease = self
+            .held
+            .lock()
+            .unwrap_or_else(|e| e.into_inner())
+            .remove(serial);
+        match lease {
+            Some(l) => self.with(|s| s.release(&l)).map(|_| ()),
+            None => Ok(()),
+        }
+    }
+
+    fn renew_every(&self) -> Duration {
+        self.ttl / 3
+    }
 }
 
 fn start_mqtt(m: &fringe_gateway::site::MqttSite, store: &Path) -> anyhow::Result<Publisher> {
@@ -247,6 +385,7 @@ fn state_word(s: DeviceState) -> &'static str {
         DeviceState::Streaming => "streaming",
         DeviceState::Reconnecting => "reconnecting",
         DeviceState::Failed => "failed",
+        DeviceState::LeasedElsewhere => "leased_elsewhere",
         DeviceState::Stopped => "stopped",
     }
 }
@@ -352,13 +491,34 @@ impl View {
         for d in devices {
             if self.json {
                 let mut j = serde_json::to_value(d).map_err(std::io::Error::other)?;
-                j["type"] = "status".into();
+                split_seq(&mut j);
                 j["time_ms"] = now.into();
-                out::line(&serde_json::to_string(&j).map_err(std::io::Error::other)?)?;
+                out::json(&out::typed("status", j))?;
             } else {
                 out::line(&plain(d))?;
             }
         }
         Ok(())
     }
+}
+
+/// A device's `seq` (`"1.7"`) as the numbers `boot` and `counter`
+/// (docs/JSON.md: counters are numbers), `null` both before a reading.
+fn split_seq(j: &mut serde_json::Value) {
+    let Some(o) = j.as_object_mut() else {
+        return;
+    };
+    let parsed = o
+        .remove("seq")
+        .and_then(|v| v.as_str().map(str::to_string))
+        .and_then(|s| {
+            let (b, c) = s.split_once(['.', ':'])?;
+            Some((b.parse::<u64>().ok()?, c.parse::<u64>().ok()?))
+        });
+    let (boot, counter) = match parsed {
+        Some((b, c)) => (b.into(), c.into()),
+        None => (serde_json::Value::Null, serde_json::Value::Null),
+    };
+    o.insert("boot".into(), boot);
+    o.insert("counter".into(), counter);
 }

@@ -78,6 +78,15 @@ impl DriftWatch {
             view.notice(&text);
             let mut v = fringe_quality::views::alarm_json(&a);
             v["announced_after_streamed"] = streamed.into();
+            if view.json_lines && view.broken.is_none() {
+                let mut line = serde_json::json!({"type": "drift_alarm"});
+                if let (Some(o), Some(a)) = (line.as_object_mut(), v.as_object()) {
+                    o.extend(a.clone());
+                }
+                if let Err(e) = out::json(&line) {
+                    view.broken = Some(e);
+                }
+            }
             self.alarms.push(v);
         }
     }
@@ -88,6 +97,8 @@ struct View {
     style: Style,
     alarm: AlarmLimits,
     quiet: bool,
+    /// `--json` without `--quiet`: each reading and drift alarm as a JSON line.
+    json_lines: bool,
     serial: String,
     last_draw: Instant,
     rate: RateMeter,
@@ -124,6 +135,21 @@ impl RateMeter {
             }
             _ => 0.0,
         }
+    }
+}
+
+/// Whether a reading's time is wall-clock time (else time since boot).
+fn clock_set(r: &Reading) -> bool {
+    !r.flags.contains(Flags::CLOCK_UNSET) && r.time_ms >= 946_684_800_000
+}
+
+/// A reading's time for the plain line: local (or `--utc`) time with its
+/// offset, or `boot+S.SSSs` while the device clock is not set.
+fn reading_time(r: &Reading) -> String {
+    if clock_set(r) {
+        crate::timefmt::fmt_person(r.time_ms as i64)
+    } else {
+        format!("boot+{:.3}s", r.time_ms as f64 / 1000.0)
     }
 }
 
@@ -167,10 +193,17 @@ impl View {
             )),
             Note::Reading(r) => {
                 self.rate.tick(Instant::now());
-                if !self.style.tty && !self.quiet && self.broken.is_none() {
-                    if let Err(e) = out::line(&self.plain_line(r)) {
-                        self.broken = Some(e);
-                    }
+                let written = if self.broken.is_some() {
+                    Ok(())
+                } else if self.json_lines {
+                    out::json(&self.reading_json(r))
+                } else if !self.style.tty && !self.quiet {
+                    out::line(&self.plain_line(r))
+                } else {
+                    Ok(())
+                };
+                if let Err(e) = written {
+                    self.broken = Some(e);
                 }
             }
             Note::Reconnecting(why) => self.notice(&format!("{why}: reconnecting")),
@@ -179,18 +212,30 @@ impl View {
         }
     }
 
+    /// The plain line of a reading (stdout not a terminal), every field
+    /// labelled (README "The plain monitor line"):
+    /// `boot=1 n=10 t=2026-12-01T07:29:00+01:00 moisture=14.27% u=0.10% temperature=21.50C flags=ok`,
+    /// `t=boot+12.345s` while the device clock is not set, `moisture=none`
+    /// without a valid value, ` alarm=HIGH,...` at the end when a limit of
+    /// the line file is crossed.
     fn plain_line(&self, r: &Reading) -> String {
         let alarms = self.alarm.check(r.moisture_pct, r.uncertainty_pct);
+        let (m, u) = match r.moisture_pct {
+            Some(m) if m.is_finite() => (
+                format!("{m:.2}%"),
+                if r.uncertainty_pct.is_finite() {
+                    format!("{:.2}%", r.uncertainty_pct)
+                } else {
+                    "none".into()
+                },
+            ),
+            _ => ("none".into(), "none".into()),
+        };
         format!(
-            "{} {} moisture_pct={} uncertainty_pct={} temperature_c={:.2} flags={}{}",
-            r.seq,
-            r.time_ms,
-            r.moisture_pct.map_or("none".into(), |m| format!("{m:.3}")),
-            if r.moisture_pct.is_some() && r.uncertainty_pct.is_finite() {
-                format!("{:.3}", r.uncertainty_pct)
-            } else {
-                "none".into()
-            },
+            "boot={} n={} t={} moisture={m} u={u} temperature={:.2}C flags={}{}",
+            r.seq.boot,
+            r.seq.counter,
+            reading_time(r),
             r.temperature_c,
             flag_words(r.flags),
             if alarms.is_empty() {
@@ -199,6 +244,26 @@ impl View {
                 format!(" alarm={}", alarms.join(","))
             }
         )
+    }
+
+    /// A reading as one JSON line (docs/JSON.md, `fringe monitor --json`).
+    fn reading_json(&self, r: &Reading) -> serde_json::Value {
+        let clock_set = clock_set(r);
+        let valid = r.moisture_pct.filter(|m| m.is_finite());
+        serde_json::json!({
+            "type": "reading",
+            "serial": self.serial,
+            "boot": r.seq.boot,
+            "counter": r.seq.counter,
+            "clock_set": clock_set,
+            "time_ms": r.time_ms,
+            "time_utc": clock_set.then(|| crate::timefmt::fmt_time(r.time_ms as i64)),
+            "moisture_pct": valid,
+            "uncertainty_pct": valid.and(Some(r.uncertainty_pct).filter(|u| u.is_finite())),
+            "temperature_c": Some(r.temperature_c).filter(|t| t.is_finite()),
+            "flags": r.flags.names().collect::<Vec<_>>(),
+            "alarms": self.alarm.check(r.moisture_pct, r.uncertainty_pct),
+        })
     }
 
     fn draw(&mut self, latest: Option<&Reading>, sum: &Summary) {
@@ -281,8 +346,9 @@ fn run(
     let mut view = View {
         style,
         alarm: cfg.alarm,
-        // With --json, stdout carries only the summary.
+        // With --json, stdout carries only JSON lines.
         quiet: args.quiet || args.json,
+        json_lines: args.json && !args.quiet,
         serial: link.serial_number().to_string(),
         last_draw: Instant::now() - Duration::from_secs(1),
         rate: RateMeter::default(),
@@ -404,7 +470,7 @@ fn run(
         drift_alarms: drift.alarms,
     };
     if args.json {
-        out::json(&serde_json::to_value(&s)?)?;
+        out::json(&out::typed("summary", serde_json::to_value(&s)?))?;
     } else if !args.quiet {
         let l = &s.line;
         eprintln!(

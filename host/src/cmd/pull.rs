@@ -54,9 +54,17 @@ fn run(
         now: &now,
         tell: &mut tell,
     };
+    let json = args.json;
+    let mut last_line: Option<Instant> = None;
     let summary = fringe_line::pull(link, store, key, &mut ctx, &mut |n, expected| {
         // The device goes on measuring meanwhile: the bar grows if it must.
         let len = expected.max(n);
+        // With --json: a progress line at most every half second.
+        if json && last_line.is_none_or(|t| t.elapsed().as_millis() >= 500) {
+            last_line = Some(Instant::now());
+            let _ =
+                out::json(&serde_json::json!({"type": "progress", "received": n, "expected": len}));
+        }
         if len > bar.length().unwrap_or(0) {
             bar.set_length(len);
         }
@@ -65,7 +73,7 @@ fn run(
     bar.finish_and_clear();
     let summary = summary?;
     if args.json {
-        out::json(&serde_json::to_value(&summary)?)?;
+        out::json(&out::typed("summary", serde_json::to_value(&summary)?))?;
     } else {
         out::line(&format!(
             "{}: device log {} readings from {}; {} received, {} stored, {} already stored, {} lost; {} events stored ({})",

@@ -61,6 +61,29 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                     &mut Terminal,
                     &opts,
                 )?;
+                if c.json {
+                    crate::out::json(&json!({
+                        "serial": link.serial_number(),
+                        "cal_id": o.cal.content_id().to_string(),
+                        "replaced": o.old.to_string(),
+                        "database": db.display().to_string(),
+                        "position": o.position,
+                        "points": o.cal.points.iter().map(|p| json!({
+                            "freq_hz": p.freq_hz,
+                            "stray_pf": p.stray_pf,
+                            "cell_pf": p.cell_pf,
+                            "g_offset_s": p.g_offset_s,
+                        })).collect::<Vec<_>>(),
+                        "verification": o.verification.iter().map(|v| json!({
+                            "freq_hz": v.0,
+                            "measured_eps_re": v.1,
+                            "expected_eps_re": v.2,
+                            "error": v.3,
+                            "within_tolerance": v.4,
+                        })).collect::<Vec<_>>(),
+                    }))?;
+                    return Ok(());
+                }
                 crate::outln!(
                     "cell calibration {} written to {} (was {}), recorded in {}",
                     o.cal.content_id(),
@@ -75,7 +98,15 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             let mut link = super::connect(&c.port, cfg)?;
             super::sync_clock(&mut link, None, "cal capture")?;
             let n = fringe_device::capture::capture(&mut link, &c.out, c.readings, &mut Terminal)?;
-            crate::outln!("{n} sample(s) written to {}", c.out.display());
+            if c.json {
+                crate::out::json(&json!({
+                    "serial": link.serial_number(),
+                    "samples": n,
+                    "file": c.out.display().to_string(),
+                }))?;
+            } else {
+                crate::outln!("{n} sample(s) written to {}", c.out.display());
+            }
             Ok(())
         }
         CalCommand::Push(p) => {
@@ -102,6 +133,18 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                         yes: p.yes,
                     },
                 )?;
+                if p.json {
+                    crate::out::json(&json!({
+                        "serial": link.serial_number(),
+                        "slot": o.slot,
+                        "replaced": o.old.to_string(),
+                        "cal_id": o.new.to_string(),
+                        "active": p.activate,
+                        "position": o.position,
+                        "database": db.display().to_string(),
+                    }))?;
+                    return Ok(());
+                }
                 crate::outln!(
                     "slot {}: {} -> {} written, read back and verified; audit record at chain position {} of {}",
                     o.slot,
@@ -135,6 +178,15 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                     &s.reason,
                     s.yes,
                 )?;
+                if s.json {
+                    crate::out::json(&json!({
+                        "serial": link.serial_number(),
+                        "slot": slot,
+                        "cal_id": id.to_string(),
+                        "database": db.display().to_string(),
+                    }))?;
+                    return Ok(());
+                }
                 crate::outln!(
                     "slot {slot} ({id}) is now active on {}; recorded in {}",
                     link.serial_number(),
@@ -157,7 +209,7 @@ fn print_slots(
             .iter()
             .map(|s| json!({"slot": s.slot, "name": s.name.as_str(), "id": s.id.to_string(), "model": format!("{:?}", s.model), "active": active == Some(s.slot)}))
             .collect();
-        crate::outln!("{}", json!({ "slots": v, "active": active }));
+        crate::out::json(&json!({ "slots": v, "active": active }))?;
         return Ok(());
     }
     if slots.is_empty() {

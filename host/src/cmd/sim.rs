@@ -26,6 +26,13 @@ pub fn sim(args: &SimArgs, stop: &AtomicBool) -> anyhow::Result<()> {
     let serial = scenario.device.serial.clone();
     let title = scenario.name.clone();
     let stats = fringe_sim::pty::run(&mut dev, &scenario, &opts, stop, &mut |note| match note {
+        SimNote::Port(path) if args.json => crate::out::json(&serde_json::json!({
+            "type": "port",
+            "serial": serial,
+            "scenario": title,
+            "port": path.to_string(),
+            "link": opts.link.as_ref().map(|l| l.display().to_string()),
+        })),
         SimNote::Port(path) => {
             let mut o = std::io::stdout().lock();
             match &opts.link {
@@ -48,6 +55,17 @@ pub fn sim(args: &SimArgs, stop: &AtomicBool) -> anyhow::Result<()> {
         }
         _ => Ok(()),
     })?;
+    if args.json {
+        crate::out::json(&serde_json::json!({
+            "type": "stopped",
+            "serial": serial,
+            "rx_bytes": stats.rx_bytes,
+            "tx_bytes": stats.tx_bytes,
+            "tx_lost_bytes": stats.tx_lost,
+            "disconnects": stats.disconnects,
+        }))?;
+        return Ok(());
+    }
     eprintln!(
         "fringe sim: stopped; {} bytes in, {} bytes out, {} lost while no host read, {} disconnects",
         stats.rx_bytes, stats.tx_bytes, stats.tx_lost, stats.disconnects

@@ -82,6 +82,19 @@ pub trait RecordLog {
     /// now on with `unix_ms` instead of the system clock (`None` restores
     /// it): for a replay or simulation on its own clock (`fringe demo`).
     fn set_record_clock(&mut self, unix_ms: Option<i64>);
+
+    /// After a call failed as [`StoreError::Unreachable`]: makes the store
+    /// usable again if it can (a database server's store opens a new
+    /// connection when the old one is gone; a file store has nothing to
+    /// do). A long-running writer (the gateway) calls it before it tries
+    /// again.
+    ///
+    /// # Errors
+    /// [`StoreError::Unreachable`] while the server is still away;
+    /// [`StoreError`].
+    fn reopen(&mut self) -> Result<(), StoreError> {
+        Ok(())
+    }
 }
 
 /// Reading records back.
