@@ -37,10 +37,10 @@ use fringe_protocol::auth::{verify, Key};
 use fringe_protocol::frame::{encode, encode_with_version};
 use fringe_protocol::{
     short_string, AuthFailure, Basis, CalId, Capabilities, CellCal, DeviceFrame, ErrorCode, Event,
-    EventKind, FaultCode, Flags, FrameDecoder, FrameError, HostFrame, Identity, ModelKind,
-    OutputConfig, ProductCal, Reading, RefCheck, Request, ResetCause, Response, SelfTest, Seq,
-    Serial, Settings, SlotInfo, Status, EVENT_CHUNK, LOG_CHUNK, MAX_FRAME_LEN, N_FREQ,
-    N_PRODUCT_SLOTS, PROTOCOL_VERSION,
+    EventKind, FaultCode, Flags, FrameDecoder, FrameError, HostFrame, Identity, ModbusSettings,
+    ModelKind, OutputConfig, ProductCal, Reading, RefCheck, Request, ResetCause, Response,
+    SelfTest, Seq, Serial, Settings, SlotInfo, Status, Version, EVENT_CHUNK, LOG_CHUNK,
+    MAX_FRAME_LEN, N_FREQ, N_PRODUCT_SLOTS, PROTOCOL_VERSION,
 };
 use heapless::Vec;
 
@@ -48,6 +48,7 @@ use embedded_storage::nor_flash::NorFlash;
 
 use crate::hal::{CurrentOutput, Frontend, NoWatchdog, Watchdog};
 use crate::measure::{self, ChainState, Job, MeasureConfig, Runner, DEFAULT_MEASURE};
+use crate::modbus::SerialLine;
 use crate::output::{self};
 use crate::settings::{self as device_settings, default_settings};
 use crate::storage::{key, Storage, StorageError, StoredIdentity};
@@ -213,6 +214,11 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     active: Option<Active>,
     active_slot: Option<u8>,
     settings: Settings,
+    /// The Modbus RTU slave's settings (protocol 1.2; the board applies them).
+    modbus: ModbusSettings,
+    /// The protocol version the host announced in `Identify` (`None`
+    /// before one): events it cannot decode are sent in an older form.
+    host_version: Option<Version>,
     output_ma: f32,
     output_fault: bool,
     /// Moisture of the last reading and when it was taken (for a span
@@ -420,6 +426,8 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             active: st.active,
             active_slot: st.active_slot,
             settings: st.settings,
+            modbus: st.modbus,
+            host_version: None,
             output_ma,
             output_fault,
             last_moisture: None,
@@ -522,6 +530,13 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
     /// The settings in force.
     pub fn settings(&self) -> &Settings {
         &self.settings
+    }
+
+    /// The Modbus RTU settings in force (checked: a board hands them to
+    /// [`crate::modbus::RtuSlave::reconfigure`] and its UART when they
+    /// change, which only an accepted [`Request::WriteModbus`] does).
+    pub fn modbus_line(&self) -> SerialLine {
+        SerialLine::from(self.modbus)
     }
 
     /// Whether a host is subscribed to the readings.
@@ -676,7 +691,27 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
 
     fn event(&mut self, now_ms: u64, kind: EventKind, tx: &mut dyn FnMut(&[u8])) {
         let ev = self.log_event(now_ms, kind);
+        let ev = self.for_host(ev);
         self.send(tx, &DeviceFrame::Event(ev));
+    }
+
+    /// `ev` as the host can decode it: a host below protocol 1.2 (or one
+    /// that has not identified itself) gets a `ModbusChanged` as a
+    /// `SettingsChanged` with the two settings' content ids.
+    fn for_host(&self, ev: Event) -> Event {
+        let old_host = self
+            .host_version
+            .is_none_or(|v| v < Version { major: 1, minor: 2 });
+        match ev.kind {
+            EventKind::ModbusChanged { old, new } if old_host => Event {
+                kind: EventKind::SettingsChanged {
+                    old: old.content_id(),
+                    new: new.content_id(),
+                },
+                ..ev
+            },
+            _ => ev,
+        }
     }
 
     fn on_frame(
@@ -787,6 +822,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                         "protocol major version differs",
                     ));
                 }
+                self.host_version = Some(host);
                 Response::Identity(self.identity())
             }
             Request::Status => Response::Status(self.status(now_ms)),
@@ -912,7 +948,16 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                     .storage
                     .read_events(from, usize::from(max))
                     .map_err(st)?;
-                Response::Events { events, next, end }
+                let mut out: Vec<Event, EVENT_CHUNK> = Vec::new();
+                for ev in events {
+                    // Never full: as many as were read.
+                    let _ = out.push(self.for_host(ev));
+                }
+                Response::Events {
+                    events: out,
+                    next,
+                    end,
+                }
             }
             Request::SetClock { unix_ms } => {
                 self.set_clock(now_ms, unix_ms, tx)?;
@@ -937,6 +982,11 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             Request::ReadSettings => Response::Settings(self.settings.clone()),
             Request::WriteSettings(new) => {
                 self.write_settings(now_ms, new, tx)?;
+                Response::Ack
+            }
+            Request::ReadModbus => Response::Modbus(self.modbus),
+            Request::WriteModbus(new) => {
+                self.write_modbus(now_ms, new, tx)?;
                 Response::Ack
             }
         }))
@@ -977,11 +1027,33 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         Ok(())
     }
 
+    /// Checks, stores (atomically) and puts in force new Modbus RTU
+    /// settings, logs [`EventKind::ModbusChanged`]. The board applies them
+    /// ([`Device::modbus_line`]) before the next Modbus request. Refused
+    /// settings change nothing.
+    fn write_modbus(
+        &mut self,
+        now_ms: u64,
+        new: ModbusSettings,
+        tx: &mut dyn FnMut(&[u8]),
+    ) -> Result<(), Refusal> {
+        SerialLine::from(new)
+            .validate()
+            .map_err(|e| (ErrorCode::OutOfRange, e.reason()))?;
+        self.storage
+            .put(key::MODBUS, &new)
+            .map_err(Self::storage_refusal)?;
+        let old = core::mem::replace(&mut self.modbus, new);
+        self.event(now_ms, EventKind::ModbusChanged { old, new }, tx);
+        Ok(())
+    }
+
     fn identity(&self) -> Identity {
         let mut caps = Capabilities::RELAXATION
             | Capabilities::CURRENT_OUTPUT
             | Capabilities::LOG
-            | Capabilities::SETTINGS;
+            | Capabilities::SETTINGS
+            | Capabilities::MODBUS_RTU;
         if self.cfg.simulated {
             caps |= Capabilities::SIMULATED;
         }
@@ -1302,6 +1374,7 @@ struct Stored {
     active: Option<Active>,
     active_slot: Option<u8>,
     settings: Settings,
+    modbus: ModbusSettings,
 }
 
 impl Stored {
@@ -1346,6 +1419,13 @@ impl Stored {
                 s
             }
         };
+        // The Modbus settings: absent on a new device or flash written by
+        // firmware before protocol 1.2, and a stored value that no longer
+        // passes the check, read as the defaults.
+        let modbus = storage
+            .get::<ModbusSettings>(key::MODBUS)?
+            .filter(|m| SerialLine::from(*m).validate().is_ok())
+            .unwrap_or(SerialLine::DEFAULT.into());
         let active_slot = storage.get::<Option<u8>>(key::ACTIVE_SLOT)?.flatten();
         let active = load_active(storage, active_slot)?;
         // Boot events, numbered on from the log; their time is 0 (ms since
@@ -1375,6 +1455,7 @@ impl Stored {
             active,
             active_slot,
             settings,
+            modbus,
         })
     }
 }

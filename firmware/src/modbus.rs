@@ -49,6 +49,7 @@
 
 use crc::{Crc, CRC_16_MODBUS};
 use embedded_hal::digital::OutputPin;
+use fringe_protocol::{ModbusParity, ModbusSettings};
 use fringe_registers::{read_input_registers, Exception, MAP_LEN};
 use heapless::Vec;
 use rmodbus::server::{ModbusFrame, Read};
@@ -116,6 +117,55 @@ impl SerialLine {
     /// The frame timing at this baud rate.
     pub fn timing(&self) -> Timing {
         Timing::for_baud(self.baud)
+    }
+}
+
+impl SerialLine {
+    /// Stop bits on the line: two without parity, else one (V1.02
+    /// section 2.5.1: a character is always 11 bits).
+    pub const fn stop_bits(&self) -> u8 {
+        match self.parity {
+            Parity::None => 2,
+            Parity::Even | Parity::Odd => 1,
+        }
+    }
+}
+
+impl From<ModbusSettings> for SerialLine {
+    fn from(m: ModbusSettings) -> Self {
+        Self {
+            unit_id: m.unit_id,
+            baud: m.baud,
+            parity: match m.parity {
+                ModbusParity::Even => Parity::Even,
+                ModbusParity::Odd => Parity::Odd,
+                ModbusParity::None => Parity::None,
+            },
+        }
+    }
+}
+
+impl From<SerialLine> for ModbusSettings {
+    fn from(l: SerialLine) -> Self {
+        Self {
+            unit_id: l.unit_id,
+            baud: l.baud,
+            parity: match l.parity {
+                Parity::Even => ModbusParity::Even,
+                Parity::Odd => ModbusParity::Odd,
+                Parity::None => ModbusParity::None,
+            },
+        }
+    }
+}
+
+impl SerialLineError {
+    /// A short reason for the protocol's error frame (at most 32 bytes).
+    pub fn reason(self) -> &'static str {
+        match self {
+            SerialLineError::UnitId(_) => "modbus unit id not 1..=247",
+            SerialLineError::Baud(_) => "modbus baud not 1200..115200 std",
+        }
     }
 }
 
@@ -253,6 +303,24 @@ impl RtuSlave {
             resp: Vec::new(),
             counters: Counters::default(),
         })
+    }
+
+    /// Moves the slave to `line`'s unit id and timing (a device settings
+    /// change): a frame in progress and a request not yet answered are
+    /// dropped (they were read under the old settings); the counters stay.
+    /// Refused settings change nothing.
+    ///
+    /// # Errors
+    /// The settings' [`SerialLineError`].
+    pub fn reconfigure(&mut self, line: &SerialLine) -> Result<(), SerialLineError> {
+        line.validate()?;
+        self.unit_id = line.unit_id;
+        self.timing = line.timing();
+        self.rx_len = 0;
+        self.last_us = None;
+        self.damaged = false;
+        self.req_len = 0;
+        Ok(())
     }
 
     /// The unit id answered.
@@ -502,6 +570,12 @@ impl<W: embedded_io::Write, P: OutputPin> HalfDuplex<W, P> {
     /// The UART and the pin back.
     pub fn into_parts(self) -> (W, P) {
         (self.tx, self.de)
+    }
+
+    /// The UART, to reconfigure it (a board applying new Modbus
+    /// settings between frames; the bus is released then).
+    pub fn tx_mut(&mut self) -> &mut W {
+        &mut self.tx
     }
 }
 
@@ -820,6 +894,74 @@ mod tests {
             .validate(),
             Ok(())
         );
+    }
+
+    #[test]
+    fn the_frame_gap_for_every_accepted_baud_rate() {
+        // t3.5 = 3.5 x 11 bits / baud, rounded up to whole microseconds
+        // (worked by hand: 38.5 / 1200 s = 32 083.3 us, ...); above 19200
+        // baud fixed at 1750 us (V1.02 section 2.5.1.1).
+        let want = [
+            (1200, 32_084),
+            (2400, 16_042),
+            (4800, 8021),
+            (9600, 4011),
+            (19_200, 2006),
+            (38_400, 1750),
+            (57_600, 1750),
+            (115_200, 1750),
+        ];
+        assert_eq!(want.map(|(b, _)| b), BAUD_RATES);
+        for (baud, t35) in want {
+            let line = SerialLine {
+                baud,
+                ..SerialLine::DEFAULT
+            };
+            assert_eq!(line.timing().t35_us, t35, "{baud} baud");
+            let s = RtuSlave::new(&line).unwrap();
+            assert_eq!(s.timing().t35_us, t35, "{baud} baud: the slave's gap");
+        }
+        // Two stop bits only without parity: 11 bits either way.
+        for (p, stop) in [(Parity::Even, 1), (Parity::Odd, 1), (Parity::None, 2)] {
+            let line = SerialLine {
+                parity: p,
+                ..SerialLine::DEFAULT
+            };
+            assert_eq!(line.stop_bits(), stop, "{p:?}");
+        }
+    }
+
+    #[test]
+    fn reconfigured_the_slave_answers_the_new_unit_at_the_new_gap_only() {
+        let mut s = slave();
+        let old = rtu(&[0x01, 0x04, 0x00, 0x08, 0x00, 0x01]);
+        let new = rtu(&[0x0C, 0x04, 0x00, 0x08, 0x00, 0x01]);
+        assert!(ask(&mut s, 0, &old).is_some());
+        // Half a frame arrives, then the settings change: it is dropped.
+        let t = feed(&mut s, 100_000, &old[..4]);
+        let line = SerialLine {
+            unit_id: 12,
+            baud: 38_400,
+            parity: Parity::None,
+        };
+        s.reconfigure(&line).unwrap();
+        assert_eq!(s.frame_deadline_us(), None, "the partial frame is dropped");
+        assert_eq!((s.unit_id(), s.timing()), (12, Timing::for_baud(38_400)));
+        assert_eq!(
+            ask(&mut s, t + 10_000, &old),
+            None,
+            "the old unit is silent"
+        );
+        let got = ask(&mut s, t + 20_000, &new).expect("the new unit answers");
+        assert_eq!(got, rtu(&[0x0C, 0x04, 0x02, 0x01, 0x08]));
+        // Refused settings change nothing.
+        let bad = SerialLine { unit_id: 0, ..line };
+        assert_eq!(s.reconfigure(&bad), Err(SerialLineError::UnitId(0)));
+        assert_eq!(s.unit_id(), 12);
+        // The protocol's form converts both ways.
+        let m: ModbusSettings = line.into();
+        assert_eq!(m.parity, ModbusParity::None);
+        assert_eq!(SerialLine::from(m), line);
     }
 
     /// A UART transmit side that logs what it is asked to do, and fails

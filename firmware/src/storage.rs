@@ -19,6 +19,7 @@
 //! | 5 | 4-20 mA configuration [`fringe_protocol::OutputConfig`] (protocol 1.0; read at boot when 7 is absent) |
 //! | 6 | self-test scratch value |
 //! | 7 | device settings [`fringe_protocol::Settings`] (tag, interval, span, failure level, stale timeout) |
+//! | 8 | Modbus RTU settings [`fringe_protocol::ModbusSettings`] (unit id, baud rate, parity; protocol 1.2: absent on flash written by older firmware, which reads as the defaults) |
 //! | 16..=23 | product calibration slot 0..=7, `Option<ProductCal>` |
 //!
 //! One map item is written atomically (a power cut leaves the old value or
@@ -63,6 +64,8 @@ pub mod key {
     pub const OUTPUT: u8 = 5;
     /// Device settings.
     pub const SETTINGS: u8 = 7;
+    /// Modbus RTU settings (protocol 1.2).
+    pub const MODBUS: u8 = 8;
     /// First product slot.
     pub const PRODUCT_BASE: u8 = 16;
 }

@@ -355,6 +355,10 @@ bitflags! {
         /// answers [`Request::ReadSettings`] / [`Request::WriteSettings`]
         /// (protocol 1.1).
         const SETTINGS = 1 << 5;
+        /// Has a Modbus RTU slave whose unit id, baud rate and parity are
+        /// device settings: answers [`Request::ReadModbus`] /
+        /// [`Request::WriteModbus`] (protocol 1.2).
+        const MODBUS_RTU = 1 << 6;
     }
 }
 
@@ -518,6 +522,16 @@ pub enum EventKind {
         /// Content id of the settings now in force.
         new: CalId,
     },
+    /// The Modbus RTU settings were written (protocol 1.2). A device sends
+    /// a host that announced 1.1 or older a [`EventKind::SettingsChanged`]
+    /// with the two settings' content ids instead (an older host cannot
+    /// decode this variant).
+    ModbusChanged {
+        /// The settings before.
+        old: ModbusSettings,
+        /// The settings now in force.
+        new: ModbusSettings,
+    },
 }
 
 /// Why the device last reset.
@@ -591,6 +605,41 @@ pub struct Settings {
     /// With no valid reading for this long, the loop goes to its failure
     /// level instead of holding the last value, ms.
     pub stale_timeout_ms: u32,
+}
+
+/// Parity of the Modbus RTU line (Modbus over Serial Line V1.02, section
+/// 2.5.1: a character is 11 bits, so no parity means two stop bits).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+pub enum ModbusParity {
+    /// Even parity, one stop bit (8E1; the specification's default).
+    Even,
+    /// Odd parity, one stop bit (8O1).
+    Odd,
+    /// No parity, two stop bits (8N2).
+    None,
+}
+
+/// The Modbus RTU slave's serial-line settings (protocol 1.2): kept in
+/// power-cut-safe flash beside [`Settings`], written only with an [`Auth`]
+/// tag ([`Request::WriteModbus`]). The device checks them: unit id
+/// 1..=247, baud rate one of 1200, 2400, 4800, 9600, 19200, 38400, 57600,
+/// 115200. Defaults: unit 1, 19200 baud, even parity.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+pub struct ModbusSettings {
+    /// Unit id (slave address) the device answers, 1..=247.
+    pub unit_id: u8,
+    /// Baud rate.
+    pub baud: u32,
+    /// Parity (and with it the stop bits).
+    pub parity: ModbusParity,
+}
+
+impl ModbusSettings {
+    /// Content id: first four bytes of SHA-256 of the postcard encoding
+    /// (what a 1.1 host sees in [`EventKind::SettingsChanged`]).
+    pub fn content_id(&self) -> CalId {
+        content_id(self)
+    }
 }
 
 impl Settings {
@@ -682,6 +731,12 @@ pub enum Request {
     ReadSettings,
     /// Write the device settings, all at once (authenticated; protocol 1.1).
     WriteSettings(Settings),
+    /// Read the Modbus RTU settings (protocol 1.2).
+    ReadModbus,
+    /// Write the Modbus RTU settings, all at once (authenticated; protocol
+    /// 1.2). The device answers on the new unit id, baud rate and parity
+    /// from the next request on its RS-485 line.
+    WriteModbus(ModbusSettings),
 }
 
 impl Request {
@@ -696,6 +751,7 @@ impl Request {
                 | Request::Reboot
                 | Request::SetOutput(_)
                 | Request::WriteSettings(_)
+                | Request::WriteModbus(_)
         )
     }
 }
@@ -771,6 +827,8 @@ pub enum Response {
     SelfTest(SelfTest),
     /// Answer to [`Request::ReadSettings`] (protocol 1.1).
     Settings(Settings),
+    /// Answer to [`Request::ReadModbus`] (protocol 1.2).
+    Modbus(ModbusSettings),
 }
 
 /// Error codes a device answers with. Numeric values are stable.

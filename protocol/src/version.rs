@@ -24,7 +24,12 @@ pub struct Version {
 /// 1.1 added [`crate::Settings`] with `ReadSettings`/`WriteSettings`, the
 /// `SettingsChanged` event, the `StaleOutput` fault and the `SETTINGS`
 /// capability (a device that measures on its own schedule).
-pub const PROTOCOL_VERSION: Version = Version { major: 1, minor: 1 };
+///
+/// 1.2 added [`crate::ModbusSettings`] with `ReadModbus`/`WriteModbus`,
+/// the `Modbus` response, the `ModbusChanged` event and the `MODBUS_RTU`
+/// capability (the Modbus RTU unit id, baud rate and parity as device
+/// settings).
+pub const PROTOCOL_VERSION: Version = Version { major: 1, minor: 2 };
 
 /// Why two versions cannot talk.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

@@ -3,8 +3,12 @@
 //! COBS, the quantisation of a reading, the auth tag input) fails here first.
 //! The same bytes are shown in `protocol/WIRE.md`; if a change is intended,
 //! raise the protocol version and update both.
+//!
+//! The frames of protocol 1.0 and 1.1 are kept as a 1.1 peer writes them
+//! (header `0x11`): a 1.2 peer encodes them byte for byte the same under
+//! that header and decodes them. The frames new in 1.2 carry `0x12`.
 
-use fringe_protocol::frame::encode_vec;
+use fringe_protocol::frame::encode_with_version;
 use fringe_protocol::*;
 
 /// `HostFrame { id: 1, auth: None, request: Identify { host: 1.1 } }`.
@@ -50,6 +54,23 @@ pub const SETTINGS: &[u8] = &[
     0x54, 0x2d, 0x32, 0x30, 0x31, 0xe8, 0x07, 0x01, 0x01, 0x01, 0x01, 0x01, 0x03, 0xf0, 0x41, 0x07,
     0x90, 0x4e, 0xa7, 0x16, 0xf7, 0x9f, 0x00,
 ];
+/// `HostFrame { id: 4, auth: None, request: ReadModbus }` (protocol 1.2).
+pub const READ_MODBUS: &[u8] = &[0x03, 0x12, 0x04, 0x06, 0x14, 0xa9, 0x3c, 0x87, 0xc6, 0x00];
+/// A signed `WriteModbus` (see the test; protocol 1.2).
+pub const WRITE_MODBUS: &[u8] = &[
+    0x2f, 0x12, 0x0b, 0x01, 0x13, 0x40, 0x0d, 0x6f, 0x5f, 0xf4, 0xf5, 0xec, 0xf9, 0xf5, 0x8f, 0x51,
+    0x48, 0x13, 0xa5, 0xd1, 0x43, 0x4d, 0x0f, 0x6f, 0x3a, 0x29, 0x65, 0x1e, 0xff, 0x6a, 0x9f, 0xd9,
+    0xec, 0xae, 0x26, 0x7a, 0x4d, 0x15, 0x0c, 0x80, 0xac, 0x02, 0x02, 0xde, 0x55, 0xb1, 0xcc, 0x00,
+];
+/// `DeviceFrame::Response { id: 4, response: Modbus(line2_modbus()) }` (protocol 1.2).
+pub const MODBUS: &[u8] = &[
+    0x02, 0x12, 0x0c, 0x04, 0x0c, 0x0c, 0x80, 0xac, 0x02, 0x02, 0xa1, 0x66, 0x41, 0xc3, 0x00,
+];
+/// `DeviceFrame::Event` of a `ModbusChanged` (see the test; protocol 1.2).
+pub const MODBUS_CHANGED: &[u8] = &[
+    0x10, 0x12, 0x03, 0x3b, 0x03, 0xc0, 0x89, 0xa2, 0xf7, 0xa2, 0x34, 0x0a, 0x01, 0x80, 0x96, 0x01,
+    0x0a, 0x0c, 0x80, 0xac, 0x02, 0x02, 0x10, 0xfb, 0x57, 0x54, 0x00,
+];
 /// `DeviceFrame::Event` of a `SettingsChanged` (see the test).
 pub const SETTINGS_CHANGED: &[u8] = &[
     0x18, 0x11, 0x03, 0x39, 0x03, 0xe0, 0xb4, 0x9e, 0xf7, 0xa2, 0x34, 0x09, 0x5b, 0xf8, 0xf2, 0xc0,
@@ -68,16 +89,30 @@ fn hex(b: &[u8]) -> String {
         .join(" ")
 }
 
+/// A 1.1 peer's header.
+const V1_1: Version = Version { major: 1, minor: 1 };
+
+/// A frame of protocol 1.0 or 1.1, as a 1.1 peer writes it.
 fn check_golden<T>(what: &str, msg: &T, golden: &[u8])
 where
     T: serde::Serialize + serde::de::DeserializeOwned + PartialEq + Clone + std::fmt::Debug,
 {
-    let wire = encode_vec(msg).unwrap();
+    check_golden_as(V1_1, what, msg, golden);
+}
+
+/// A frame written with `version` in its header.
+fn check_golden_as<T>(version: Version, what: &str, msg: &T, golden: &[u8])
+where
+    T: serde::Serialize + serde::de::DeserializeOwned + PartialEq + Clone + std::fmt::Debug,
+{
+    let mut buf = [0u8; frame::MAX_FRAME_LEN];
+    let n = encode_with_version(msg, version, &mut buf).unwrap();
+    let wire = &buf[..n];
     assert_eq!(
-        wire.as_slice(),
+        wire,
         golden,
         "{what}: wire format changed.\n  now:    {}\n  golden: {}",
-        hex(&wire),
+        hex(wire),
         hex(golden)
     );
     let mut dec = FrameDecoder::<T>::new();
@@ -126,9 +161,7 @@ fn golden_identify() {
     let msg = HostFrame {
         id: 1,
         auth: None,
-        request: Request::Identify {
-            host: PROTOCOL_VERSION,
-        },
+        request: Request::Identify { host: V1_1 },
     };
     check_golden("HostFrame Identify", &msg, IDENTIFY);
 }
@@ -285,6 +318,110 @@ fn golden_stale_output_event() {
     check_golden("DeviceFrame Event Fault StaleOutput", &msg, STALE_OUTPUT);
 }
 
+/// The Modbus settings of the examples: line 2's device moved to unit 12
+/// at 38400 baud without parity (8N2) on a shared RS-485 segment
+/// (invented).
+fn line2_modbus() -> ModbusSettings {
+    ModbusSettings {
+        unit_id: 12,
+        baud: 38_400,
+        parity: ModbusParity::None,
+    }
+}
+
+/// The defaults: unit 1, 19200 baud, even parity.
+const DEFAULT_MODBUS: ModbusSettings = ModbusSettings {
+    unit_id: 1,
+    baud: 19_200,
+    parity: ModbusParity::Even,
+};
+
+const V1_2: Version = Version { major: 1, minor: 2 };
+
+#[test]
+fn golden_read_modbus() {
+    let msg = HostFrame {
+        id: 4,
+        auth: None,
+        request: Request::ReadModbus,
+    };
+    check_golden_as(V1_2, "HostFrame ReadModbus", &msg, READ_MODBUS);
+}
+
+#[test]
+fn golden_signed_write_modbus() {
+    let request = Request::WriteModbus(line2_modbus());
+    assert!(request.needs_auth());
+    let auth = auth::sign(&KEY, SERIAL, 19, &request).unwrap();
+    assert_eq!(auth::verify(&KEY, SERIAL, Some(&auth), &request), Ok(19));
+    let msg = HostFrame {
+        id: 11,
+        auth: Some(auth),
+        request,
+    };
+    check_golden_as(V1_2, "HostFrame WriteModbus (signed)", &msg, WRITE_MODBUS);
+}
+
+#[test]
+fn golden_modbus_response() {
+    let msg = DeviceFrame::Response {
+        id: 4,
+        response: Response::Modbus(line2_modbus()),
+    };
+    check_golden_as(V1_2, "DeviceFrame Modbus", &msg, MODBUS);
+}
+
+#[test]
+fn golden_modbus_changed_event() {
+    // The content ids a 1.1 host is sent instead (SettingsChanged; SHA-256
+    // computed outside Rust too).
+    assert_eq!(DEFAULT_MODBUS.content_id(), CalId([0x09, 0xc5, 0x30, 0x0a]));
+    assert_eq!(line2_modbus().content_id(), CalId([0xae, 0xf5, 0x37, 0x80]));
+    let msg = DeviceFrame::Event(Event {
+        number: 59,
+        boot: 3,
+        time_ms: 1_796_083_320_000, // 2026-12-01T00:02:00Z
+        kind: EventKind::ModbusChanged {
+            old: DEFAULT_MODBUS,
+            new: line2_modbus(),
+        },
+    });
+    check_golden_as(
+        V1_2,
+        "DeviceFrame Event ModbusChanged",
+        &msg,
+        MODBUS_CHANGED,
+    );
+}
+
+/// `ModbusParity` tags: the variant's position, appended only.
+#[test]
+fn golden_modbus_parity_tags() {
+    for (p, tag) in [
+        (ModbusParity::Even, 0x00u8),
+        (ModbusParity::Odd, 0x01),
+        (ModbusParity::None, 0x02),
+    ] {
+        let mut buf = [0u8; 4];
+        assert_eq!(postcard::to_slice(&p, &mut buf).unwrap(), &[tag], "{p:?}");
+    }
+    assert!(postcard::from_bytes::<ModbusParity>(&[0x03]).is_err());
+}
+
+/// A 1.1 peer's decoder reads a 1.2 header (equal majors) and the
+/// library's own encoder now writes 1.2.
+#[test]
+fn version_1_2_header() {
+    assert_eq!(PROTOCOL_VERSION, V1_2);
+    let wire = frame::encode_vec(&HostFrame {
+        id: 4,
+        auth: None,
+        request: Request::ReadModbus,
+    })
+    .unwrap();
+    assert_eq!(wire.as_slice(), READ_MODBUS);
+}
+
 /// `ModelKind` is a postcard enum: its tag is the variant's position, so
 /// variants are only appended (issue 11 appended `Multivariate`, tag 2).
 #[test]
@@ -318,6 +455,10 @@ fn fuzz_seeds_are_the_golden_frames() {
         ("settings", SETTINGS),
         ("settings-changed", SETTINGS_CHANGED),
         ("stale-output", STALE_OUTPUT),
+        ("read-modbus", READ_MODBUS),
+        ("write-modbus", WRITE_MODBUS),
+        ("modbus", MODBUS),
+        ("modbus-changed", MODBUS_CHANGED),
     ] {
         let seed = std::fs::read(dir.join("decoder").join(name)).unwrap();
         assert_eq!(&seed[1..], golden, "fuzz/seeds/decoder/{name}");

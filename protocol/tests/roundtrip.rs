@@ -294,7 +294,7 @@ fn strategies_cover_every_variant() {
     };
     seen(
         sample(&request(), 600).iter().map(request_index).collect(),
-        20,
+        22,
         "Request",
     );
     seen(
@@ -302,7 +302,7 @@ fn strategies_cover_every_variant() {
             .iter()
             .map(response_index)
             .collect(),
-        12,
+        13,
         "Response",
     );
     seen(
@@ -318,7 +318,7 @@ fn strategies_cover_every_variant() {
             .iter()
             .map(event_kind_index)
             .collect(),
-        10,
+        11,
         "EventKind",
     );
 }

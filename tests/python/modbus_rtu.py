@@ -2,14 +2,15 @@
 serial client (a master written by others, as a plant's scripts would use),
 on the pseudo-terminal of the QEMU board's UART1.
 
-Usage: python modbus_rtu.py PTY UNIT READINGS
+Usage: python modbus_rtu.py PTY UNIT READINGS [WRONG_UNIT]
 
 Prints one JSON object:
 - "reads": whole-map reads (25 registers in one request) until READINGS
   different readings (by counter) were seen, each with its registers and
   the float32, uint32 and int16 values decoded by pymodbus's own converter;
 - "round_trip_s": the slowest of those reads, seconds;
-- "wrong_unit": what a read addressed to unit UNIT + 1 got (null: nothing);
+- "wrong_unit": what a read addressed to unit WRONG_UNIT (default UNIT + 1)
+  got (null: nothing);
 - "past_end_exception", "holding_exception": the exception codes of a read
   past the map's end and of a read of holding registers (function 03);
 - "bad_crc_answer": the bytes that came back within "silence_s" seconds of
@@ -74,7 +75,7 @@ def read(client, address, count, unit):
     return rr
 
 
-def main(pty, unit, readings):
+def main(pty, unit, readings, wrong_unit):
     out = {}
     # The device's line is 19200 8E1, but a pseudo-terminal carries bytes,
     # not characters: Linux refuses even parity on a pty (EINVAL) and QEMU's
@@ -109,7 +110,7 @@ def main(pty, unit, readings):
     out["round_trip_s"] = slowest
 
     client.transaction.retries = 0
-    wrong = read(client, 0, 1, unit + 1)
+    wrong = read(client, 0, 1, wrong_unit)
     client.transaction.retries = RETRIES
     out["wrong_unit"] = None if wrong is None else str(wrong)
     bad = read(client, 20, 10, unit)
@@ -145,4 +146,6 @@ def main(pty, unit, readings):
 
 
 if __name__ == "__main__":
-    main(sys.argv[1], int(sys.argv[2]), int(sys.argv[3]))
+    unit = int(sys.argv[2])
+    wrong_unit = int(sys.argv[4]) if len(sys.argv) > 4 else unit + 1
+    main(sys.argv[1], unit, int(sys.argv[3]), wrong_unit)

@@ -538,6 +538,132 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
 }
 
 #[test]
+fn modbus_settings_are_set_on_the_simulator_read_back_and_audited() {
+    let mut spec = ScenarioSpec::clean("HGM-L2-0306", 46);
+    spec.time_scale = 1.0;
+    let sim = Sim::start(&spec);
+    let key = key_file(&sim);
+    let db = sim.path("line2.db");
+    let d = config_show(&sim);
+    assert_eq!(
+        (&d["modbus_unit"], &d["modbus_baud"], &d["modbus_parity"]),
+        (
+            &serde_json::json!(1),
+            &serde_json::json!(19200),
+            &serde_json::json!("even")
+        ),
+        "defaults: {d}"
+    );
+    let set = |k: &str, extra: &[&str], json: bool| {
+        let mut a = vec![
+            "device",
+            "config",
+            "set",
+            "--port",
+            sim.port_str(),
+            "--db",
+            db.to_str().unwrap(),
+            "--key-file",
+            k,
+            "--operator",
+            "R. Okafor",
+            "--reason",
+            "second dryer on the segment",
+            "--yes",
+        ];
+        a.extend_from_slice(extra);
+        if json {
+            a.push("--json");
+        }
+        run(&mut fringe(&a), LIMIT)
+    };
+    let change = [
+        "--modbus-unit",
+        "12",
+        "--modbus-baud",
+        "38400",
+        "--modbus-parity",
+        "none",
+    ];
+    // A wrong key: refused by the device, nothing changed.
+    let wrong = sim.path("wrong.key");
+    std::fs::write(&wrong, "55".repeat(32)).unwrap();
+    let o = set(wrong.to_str().unwrap(), &change, false);
+    assert_fails(&o, 16, &["auth"]);
+    assert_eq!(config_show(&sim), d, "a wrong key changes nothing");
+    // Bad values: refused before anything is sent, naming flag and range.
+    for (bad, needles) in [
+        (
+            &["--modbus-unit", "0"][..],
+            &["--modbus-unit", "1..=247"][..],
+        ),
+        (&["--modbus-unit", "300"], &["--modbus-unit", "1..=247"]),
+        (&["--modbus-baud", "14400"], &["--modbus-baud", "115200"]),
+        (&["--modbus-parity", "mark"], &["--modbus-parity", "none"]),
+    ] {
+        let o = set(&key, bad, false);
+        assert_fails(&o, 2, needles);
+    }
+    assert_eq!(config_show(&sim), d, "bad values change nothing");
+    // The change, shown with the caution, then read back.
+    let o = set(&key, &change, false);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(o.stderr.contains("PLC"), "the caution: {}", o.stderr);
+    assert!(
+        o.stdout.contains("unit 12 at 38400 baud 8N2"),
+        "{}",
+        o.stdout
+    );
+    let now = config_show(&sim);
+    assert_eq!(
+        (
+            &now["modbus_unit"],
+            &now["modbus_baud"],
+            &now["modbus_parity"]
+        ),
+        (
+            &serde_json::json!(12),
+            &serde_json::json!(38400),
+            &serde_json::json!("none")
+        ),
+        "read back: {now}"
+    );
+    // The other settings kept theirs.
+    assert_eq!(now["settings_id"], d["settings_id"]);
+    // One field alone keeps the others.
+    let o = set(&key, &["--modbus-parity", "odd"], true);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let out: serde_json::Value = serde_json::from_str(&o.stdout).unwrap();
+    assert_eq!(out["new"]["modbus_unit"], 12);
+    assert_eq!(out["new"]["modbus_parity"], "odd");
+    assert_eq!(out["old"]["modbus_parity"], "none");
+    // The audit chain holds both changes with who, why and the before.
+    let store = Store::open_read_only(&db).unwrap();
+    let recs: Vec<_> = store
+        .calibrations("HGM-L2-0306")
+        .unwrap()
+        .into_iter()
+        .filter(|c| c.cal.kind == CalKind::Settings && c.cal.body["action"] == "modbus")
+        .collect();
+    assert_eq!(recs.len(), 2);
+    assert_eq!(recs[0].cal.body["operator"], "R. Okafor");
+    assert_eq!(recs[0].cal.body["reason"], "second dryer on the segment");
+    assert_eq!(recs[0].cal.body["previous"]["unit_id"], 1);
+    assert_eq!(recs[0].cal.body["calibration"]["unit_id"], 12);
+    assert!(store.verify_chain().unwrap().ok());
+    // The device logged each accepted write as ModbusChanged.
+    pull_json(&sim, &db, &[]);
+    let store = Store::open_read_only(&db).unwrap();
+    let changed = store
+        .events("HGM-L2-0306")
+        .unwrap()
+        .into_iter()
+        .filter(|e| matches!(e.kind, EventKind::ModbusChanged { .. }))
+        .count();
+    assert_eq!(changed, 2);
+}
+
+#[test]
 fn lab_times_with_offsets_and_local_times_and_bad_times_naming_the_field() {
     let dir = tempfile::tempdir().unwrap();
     let db = dir.path().join("lab.db");

@@ -15,6 +15,13 @@
 //! tested on the core (`firmware/src/modbus.rs`), where time is an
 //! argument.
 //!
+//! A second test sets the device's Modbus settings over its own protocol
+//! (unit 12, 38400 baud, odd parity) and reads through unit 12 while unit
+//! 1, the old one, gets no answer. QEMU's UART ignores baud rate and
+//! parity (the board only changes its baud divisor, and the pty carries
+//! bytes, not characters), so here only the unit id and the frame gap
+//! change; the parity and stop bits are applied on the STM32 board alone.
+//!
 //! Needs `qemu-system-arm`, the board ELF and the Python venv, so it is
 //! ignored in a plain `cargo test`; `cargo xtask test` runs it with
 //! `--ignored` and `FRINGE_PYTHON` set.
@@ -254,4 +261,118 @@ fn pymodbus_reads_the_device_over_modbus_rtu_on_qemu() {
         "requests split by QEMU's pty timing: {} frames dropped beyond the one bad CRC sent on purpose",
         f.bad_crc - 1 + f.damaged
     );
+}
+
+/// Runs `tests/python/modbus_rtu.py` against the board's Modbus pty for
+/// `unit` (`wrong` is the unit that must stay silent) while the link
+/// keeps taking the streamed readings; its JSON.
+fn pymodbus(qemu: &Qemu, link: &mut Link, unit: u8, readings: u32, wrong: u8) -> serde_json::Value {
+    let script = root().join("tests/python/modbus_rtu.py");
+    let mut child = Command::new(python())
+        .arg(&script)
+        .arg(&qemu.modbus_pty)
+        .args([unit.to_string(), readings.to_string(), wrong.to_string()])
+        .stdout(Stdio::piped())
+        .stderr(Stdio::inherit())
+        .spawn()
+        .expect("python starts");
+    let status = loop {
+        link.receive(Duration::from_millis(200)).expect("stream");
+        if let Some(s) = child.try_wait().expect("python") {
+            break s;
+        }
+    };
+    let mut out = String::new();
+    std::io::Read::read_to_string(&mut child.stdout.take().expect("stdout"), &mut out)
+        .expect("python output");
+    assert!(status.success(), "modbus_rtu.py failed: {out}");
+    serde_json::from_str(&out).expect("JSON from modbus_rtu.py")
+}
+
+#[test]
+#[ignore = "needs qemu-system-arm, the board ELF and FRINGE_PYTHON: `cargo xtask test` runs it"]
+fn after_a_settings_change_the_device_answers_its_new_unit_id_only() {
+    let elf = board_elf(&root());
+    assert!(
+        elf.exists(),
+        "{} missing: run `cargo xtask firmware`",
+        elf.display()
+    );
+    let qemu = Qemu::boot(&elf).expect("QEMU boots");
+    let (mut link, id) = Link::connect(&qemu.pty, Duration::from_secs(30)).expect("handshake");
+    assert!(
+        id.capabilities.contains(Capabilities::MODBUS_RTU),
+        "{:?}",
+        id.capabilities
+    );
+    let read_modbus =
+        |link: &mut Link| match link.request(Request::ReadModbus, None, Duration::from_secs(10)) {
+            Ok(Ok(Response::Modbus(m))) => m,
+            other => panic!("ReadModbus answered {other:?}"),
+        };
+    assert_eq!(
+        read_modbus(&mut link),
+        ModbusSettings {
+            unit_id: 1,
+            baud: 19_200,
+            parity: ModbusParity::Even
+        },
+        "the defaults"
+    );
+    // Unit 1 answers before the change (and unit 12 does not).
+    match link.request(
+        Request::StartStream { period_ms: 1000 },
+        None,
+        Duration::from_secs(10),
+    ) {
+        Ok(Ok(Response::Ack)) => {}
+        other => panic!("StartStream answered {other:?}"),
+    }
+    let before = pymodbus(&qemu, &mut link, 1, 1, 12);
+    assert_eq!(
+        before["wrong_unit"],
+        serde_json::Value::Null,
+        "unit 12 answered"
+    );
+    let f0 = qemu.modbus_figures(&elf).expect("board's Modbus figures");
+
+    let new = ModbusSettings {
+        unit_id: 12,
+        baud: 38_400,
+        parity: ModbusParity::Odd,
+    };
+    ack(
+        &mut link,
+        Request::WriteModbus(new),
+        2_000 + id.boot * 10 + 1,
+    );
+    assert_eq!(read_modbus(&mut link), new, "read back");
+
+    // Unit 12 answers now, with the map of readings the device streamed;
+    // unit 1 is silent.
+    let after = pymodbus(&qemu, &mut link, 12, 2, 1);
+    assert_eq!(
+        after["wrong_unit"],
+        serde_json::Value::Null,
+        "unit 1 answered"
+    );
+    let reads = after["reads"].as_array().expect("reads");
+    assert!(reads.len() >= 2, "{after}");
+    for read in reads {
+        let counter = read["counter"].as_u64().expect("counter") as u32;
+        assert!(
+            link.readings.iter().any(|r| r.seq.counter == counter),
+            "register reading {counter} was never streamed"
+        );
+        assert_eq!(f32_of(&read["known_value"]), Some(1234.5));
+    }
+    assert_eq!(after["past_end_exception"], 2);
+    assert_eq!(after["after_bad_crc_ok"], true);
+    let f1 = qemu.modbus_figures(&elf).expect("board's Modbus figures");
+    eprintln!("board before the change: {f0:?}\nafter: {f1:?}");
+    assert!(
+        f1.other_unit > f0.other_unit,
+        "the unit-1 request after the change was not seen as another unit's: {f0:?} -> {f1:?}"
+    );
+    assert!(f1.answered > f0.answered, "{f0:?} -> {f1:?}");
 }

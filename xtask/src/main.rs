@@ -556,7 +556,7 @@ fn qemu_run() -> Result<()> {
     eprintln!(
         "xtask: firmware running under QEMU (mps2-an386, -icount shift=0); UART0 is {}\n\
          xtask: talk to it with:  fringe monitor --port {}\n\
-         xtask: UART1 (Modbus RTU, unit 1) is {}\n\
+         xtask: UART1 (Modbus RTU, unit 1 unless the device's settings say otherwise) is {}\n\
          xtask: Ctrl-C stops QEMU. The emulated flash lives in RAM: it keeps its\n\
          xtask: contents across a reset of the board, not across quitting QEMU.",
         q.pty.display(),

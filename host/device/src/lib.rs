@@ -39,3 +39,11 @@ pub const SETTINGS_CAUTION: &str = "CAUTION: new settings change the 4-20 mA out
 for the same moisture; a new failure level changes what a fault looks like to the control system). If the sensor \
 is on a running line, tell the control room first and put dependent loops (dryer control, diversion) in manual; \
 check the receiving side's scaling matches the new span. Local codes and site rules come first.";
+
+/// The caution shown before the Modbus RTU settings are written.
+pub const MODBUS_CAUTION: &str = "CAUTION: new Modbus settings take effect on the RS-485 line at once: the PLC or \
+SCADA master polling this device at its old unit id, baud rate or parity gets no answer from then on and will \
+treat the moisture as lost (its own failure handling, alarms, loops in automatic) until the master is changed \
+to the new settings too. Tell the control room first, put dependent loops in manual, and change the master \
+right after; on a shared bus make sure no other device already has the new unit id. Local codes and site rules \
+come first.";

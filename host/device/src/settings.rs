@@ -1,10 +1,11 @@
 //! Device settings (tag, interval, 4-20 mA span, failure level, stale
-//! timeout): a change checked as the device checks it, written with the
+//! timeout; since protocol 1.2 the Modbus RTU unit id, baud rate and
+//! parity): a change checked as the device checks it, written with the
 //! device key, read back, and recorded with who and why.
 
 use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
-use fringe_protocol::{Request, Settings};
+use fringe_protocol::{ModbusParity, ModbusSettings, Request, Settings};
 use fringe_quality::analysis::CalRecordBody;
 use fringe_store::{CalKind, NewCalibration, RecordStore, StoreError};
 
@@ -161,4 +162,145 @@ pub fn write_settings(
         },
     )?;
     Ok(rec.position)
+}
+
+/// A change of the Modbus RTU settings: the values to set (the others keep
+/// theirs).
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct ModbusChange {
+    /// Unit id, 1..=247.
+    pub unit_id: Option<u8>,
+    /// Baud rate.
+    pub baud: Option<u32>,
+    /// Parity (none means two stop bits).
+    pub parity: Option<ModbusParity>,
+}
+
+impl ModbusChange {
+    /// Whether nothing is to change.
+    pub fn is_empty(&self) -> bool {
+        *self == Self::default()
+    }
+
+    /// `old` with this change, checked as the device will check it.
+    ///
+    /// # Errors
+    /// [`SettingsError::Refused`] naming the flag of a refused value.
+    pub fn apply(&self, old: &ModbusSettings) -> Result<ModbusSettings, SettingsError> {
+        use fringe_firmware::modbus::{SerialLine, SerialLineError, BAUD_RATES};
+        let new = ModbusSettings {
+            unit_id: self.unit_id.unwrap_or(old.unit_id),
+            baud: self.baud.unwrap_or(old.baud),
+            parity: self.parity.unwrap_or(old.parity),
+        };
+        match SerialLine::from(new).validate() {
+            Ok(()) => Ok(new),
+            Err(SerialLineError::UnitId(u)) => Err(SettingsError::Refused(format!(
+                "--modbus-unit {u}: must be 1..=247"
+            ))),
+            Err(SerialLineError::Baud(b)) => Err(SettingsError::Refused(format!(
+                "--modbus-baud {b}: must be one of {}",
+                BAUD_RATES.map(|r| r.to_string()).join(", ")
+            ))),
+            Err(e) => Err(SettingsError::Refused(e.to_string())),
+        }
+    }
+}
+
+/// Writes the Modbus settings `new` (authenticated), reads them back and
+/// records the change in `store` with who and why (a `settings` record
+/// with action `modbus`, the settings before under `previous`); returns
+/// the record's chain position.
+///
+/// # Errors
+/// As [`write_settings`]; a device without Modbus settings (before
+/// protocol 1.2) is refused by the link before anything is written.
+pub fn write_modbus(
+    link: &mut Link,
+    key: &Key,
+    store: &mut (impl RecordStore + ?Sized),
+    old: &ModbusSettings,
+    new: &ModbusSettings,
+    operator: &str,
+    reason: &str,
+) -> Result<u64, SettingsError> {
+    // Refuses a device before 1.2 with a message naming its version.
+    link.modbus()?;
+    link.request_signed(Request::WriteModbus(*new), key)?;
+    let back = link.modbus()?;
+    if &back != new {
+        return Err(SettingsError::ReadBack {
+            read: back.content_id().to_string(),
+            written: new.content_id().to_string(),
+        });
+    }
+    let serial = link.serial_number().to_string();
+    let body = CalRecordBody {
+        calibration: serde_json::to_value(back).unwrap_or(serde_json::Value::Null),
+        operator: operator.into(),
+        reason: reason.into(),
+        old_id: old.content_id().to_string(),
+        new_id: back.content_id().to_string(),
+        action: "modbus".into(),
+        statistics: None,
+        verification: None,
+        parent_id: None,
+        derivation: None,
+    };
+    let mut body = serde_json::to_value(body).unwrap_or(serde_json::Value::Null);
+    body["previous"] = serde_json::to_value(old).unwrap_or(serde_json::Value::Null);
+    let rec = store.insert_calibration(
+        &serial,
+        &NewCalibration {
+            kind: CalKind::Settings,
+            cal_id: back.content_id(),
+            slot: None,
+            name: Some(format!("modbus unit {}", back.unit_id)),
+            body,
+            note: None,
+            supersedes: None,
+        },
+    )?;
+    Ok(rec.position)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const D: ModbusSettings = ModbusSettings {
+        unit_id: 1,
+        baud: 19_200,
+        parity: ModbusParity::Even,
+    };
+
+    #[test]
+    fn a_modbus_change_keeps_what_it_does_not_name_and_refuses_by_flag() {
+        let c = ModbusChange {
+            unit_id: Some(12),
+            ..Default::default()
+        };
+        assert_eq!(c.apply(&D).unwrap(), ModbusSettings { unit_id: 12, ..D });
+        assert!(ModbusChange::default().is_empty());
+        let refused = |c: ModbusChange| match c.apply(&D) {
+            Err(SettingsError::Refused(m)) => m,
+            other => panic!("{other:?}"),
+        };
+        let m = refused(ModbusChange {
+            unit_id: Some(0),
+            ..Default::default()
+        });
+        assert!(
+            m.contains("--modbus-unit 0") && m.contains("1..=247"),
+            "{m}"
+        );
+        let m = refused(ModbusChange {
+            baud: Some(14_400),
+            ..Default::default()
+        });
+        assert!(
+            m.contains("--modbus-baud 14400") && m.contains("115200"),
+            "{m}"
+        );
+    }
 }

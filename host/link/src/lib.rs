@@ -406,6 +406,8 @@ pub fn request_name(r: &Request) -> &'static str {
         Request::SetOutput(_) => "SetOutput",
         Request::ReadSettings => "ReadSettings",
         Request::WriteSettings(_) => "WriteSettings",
+        Request::ReadModbus => "ReadModbus",
+        Request::WriteModbus(_) => "WriteModbus",
     }
 }
 
@@ -807,6 +809,38 @@ impl Link {
             Response::Settings(s) => Ok(s),
             other => Err(LinkError::Unexpected {
                 request: "ReadSettings",
+                got: format!("{other:?}"),
+            }),
+        }
+    }
+
+    /// Whether the device keeps Modbus RTU settings (protocol 1.2 on;
+    /// `false` before the handshake).
+    pub fn has_modbus_settings(&self) -> bool {
+        self.identity()
+            .is_some_and(|id| id.capabilities.contains(Capabilities::MODBUS_RTU))
+    }
+
+    /// The device's Modbus RTU settings (protocol 1.2 on).
+    ///
+    /// # Errors
+    /// [`LinkError::NotSupported`] for a device without them (firmware
+    /// before protocol 1.2); as [`Link::request`].
+    pub fn modbus(&mut self) -> Result<fringe_protocol::ModbusSettings, LinkError> {
+        if let Some(id) = self.identity() {
+            if !id.capabilities.contains(Capabilities::MODBUS_RTU) {
+                return Err(LinkError::NotSupported {
+                    serial: id.serial.to_string(),
+                    protocol: id.protocol,
+                    what: "Modbus RTU settings to read or write",
+                    needs: "1.2",
+                });
+            }
+        }
+        match self.request(Request::ReadModbus)? {
+            Response::Modbus(m) => Ok(m),
+            other => Err(LinkError::Unexpected {
+                request: "ReadModbus",
                 got: format!("{other:?}"),
             }),
         }

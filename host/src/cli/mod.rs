@@ -277,7 +277,7 @@ pub enum ConfigCommand {
     Show(ConfigShowArgs),
     /// Change settings (authenticated with the device key, read back, recorded in the database with who and why).
     #[command(
-        after_help = "Example:\n  fringe device config set --port /dev/ttyUSB0 --key-file hgm-l2-0007.key --db line2.db \\\n      --span-low-pct 8 --span-high-pct 22 --fail high --operator \"R. Okafor\" --reason \"dryer PLC rescaled\"\nSettings not given keep their value. The 4-20 mA output changes at once: tell the control room first\nand put dependent loops in manual."
+        after_help = "Example:\n  fringe device config set --port /dev/ttyUSB0 --key-file hgm-l2-0007.key --db line2.db \\\n      --span-low-pct 8 --span-high-pct 22 --fail high --operator \"R. Okafor\" --reason \"dryer PLC rescaled\"\n  fringe device config set --port /dev/ttyUSB0 --key-file hgm-l2-0007.key --db line2.db \\\n      --modbus-unit 12 --modbus-baud 38400 --modbus-parity even --operator \"R. Okafor\" --reason \"second dryer on the segment\"\nSettings not given keep their value. The 4-20 mA output changes at once: tell the control room first\nand put dependent loops in manual. New Modbus settings cut off the PLC polling the old ones until it is changed too."
     )]
     Set(ConfigSetArgs),
 }
@@ -300,6 +300,37 @@ pub enum FailLevel {
     Low,
     /// 21.5 mA (NE 43: at least 21 mA).
     High,
+}
+
+/// Parity of the Modbus RTU line.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum ModbusParityArg {
+    /// Even parity, one stop bit (8E1, the default).
+    Even,
+    /// Odd parity, one stop bit (8O1).
+    Odd,
+    /// No parity, two stop bits (8N2).
+    None,
+}
+
+impl From<ModbusParityArg> for fringe_protocol::ModbusParity {
+    fn from(p: ModbusParityArg) -> Self {
+        match p {
+            ModbusParityArg::Even => Self::Even,
+            ModbusParityArg::Odd => Self::Odd,
+            ModbusParityArg::None => Self::None,
+        }
+    }
+}
+
+/// A Modbus RTU baud rate the device accepts.
+fn parse_modbus_baud(s: &str) -> Result<u32, String> {
+    let rates = fringe_firmware::modbus::BAUD_RATES;
+    let list = || rates.map(|r| r.to_string()).join(", ");
+    match s.trim().parse::<u32>() {
+        Ok(b) if rates.contains(&b) => Ok(b),
+        _ => Err(format!("must be one of {}", list())),
+    }
 }
 
 /// `fringe device config set`.
@@ -333,6 +364,16 @@ pub struct ConfigSetArgs {
     /// (at least twice the interval, at most a day).
     #[arg(long, value_name = "MS")]
     pub stale_timeout_ms: Option<u32>,
+    /// Modbus RTU unit id (slave address) the device answers on RS-485, 1 to 247
+    /// (protocol 1.2 devices).
+    #[arg(long, value_name = "ID", value_parser = clap::value_parser!(u8).range(1..=247))]
+    pub modbus_unit: Option<u8>,
+    /// Modbus RTU baud rate: 1200, 2400, 4800, 9600, 19200, 38400, 57600 or 115200.
+    #[arg(long, value_name = "BAUD", value_parser = parse_modbus_baud)]
+    pub modbus_baud: Option<u32>,
+    /// Modbus RTU parity: even or odd (one stop bit), or none (two stop bits).
+    #[arg(long, value_enum, value_name = "PARITY")]
+    pub modbus_parity: Option<ModbusParityArg>,
     /// Who makes the change.
     #[arg(long)]
     pub operator: String,
@@ -355,6 +396,49 @@ mod tests {
     #[test]
     fn verify_cli() {
         Cli::command().debug_assert();
+    }
+
+    #[test]
+    fn modbus_values_are_checked_by_flag() {
+        let base = [
+            "fringe",
+            "device",
+            "config",
+            "set",
+            "--port",
+            "p",
+            "--operator",
+            "o",
+            "--reason",
+            "r",
+        ];
+        let parse = |extra: &[&str]| {
+            let mut a = base.to_vec();
+            a.extend_from_slice(extra);
+            Cli::try_parse_from(a)
+        };
+        for bad in [
+            &["--modbus-unit", "0"][..],
+            &["--modbus-unit", "248"],
+            &["--modbus-baud", "14400"],
+            &["--modbus-parity", "mark"],
+        ] {
+            let e = parse(bad).unwrap_err();
+            // Both kinds are usage errors (exit status 2).
+            assert!(
+                matches!(
+                    e.kind(),
+                    clap::error::ErrorKind::ValueValidation | clap::error::ErrorKind::InvalidValue
+                ),
+                "{bad:?}: {:?}",
+                e.kind()
+            );
+            assert_eq!(e.exit_code(), 2, "{bad:?}");
+            let text = e.to_string();
+            assert!(text.contains(bad[0]), "{bad:?}: {text}");
+        }
+        assert!(parse(&["--modbus-unit", "247", "--modbus-baud", "115200"]).is_ok());
+        assert!(parse(&["--modbus-baud", "9600", "--modbus-parity", "none"]).is_ok());
     }
 
     #[test]

@@ -16,6 +16,7 @@ fn capability_names(c: Capabilities) -> Vec<&'static str> {
         (Capabilities::LOG, "log"),
         (Capabilities::DIAGNOSTICS, "diagnostics"),
         (Capabilities::SETTINGS, "settings"),
+        (Capabilities::MODBUS_RTU, "modbus_rtu"),
     ]
     .into_iter()
     .filter(|(f, _)| c.contains(*f))
@@ -331,6 +332,88 @@ pub fn settings_json(s: &fringe_protocol::Settings) -> serde_json::Value {
     })
 }
 
+/// The Modbus RTU settings as JSON keys (merged into the settings' JSON).
+pub fn modbus_json(m: &fringe_protocol::ModbusSettings) -> serde_json::Value {
+    json!({
+        "modbus_unit": m.unit_id,
+        "modbus_baud": m.baud,
+        "modbus_parity": parity_name(m.parity),
+        "modbus_frame": frame_name(m),
+    })
+}
+
+fn parity_name(p: fringe_protocol::ModbusParity) -> &'static str {
+    match p {
+        fringe_protocol::ModbusParity::Even => "even",
+        fringe_protocol::ModbusParity::Odd => "odd",
+        fringe_protocol::ModbusParity::None => "none",
+    }
+}
+
+/// `8E1`, `8O1` or `8N2`.
+fn frame_name(m: &fringe_protocol::ModbusSettings) -> &'static str {
+    match m.parity {
+        fringe_protocol::ModbusParity::Even => "8E1",
+        fringe_protocol::ModbusParity::Odd => "8O1",
+        fringe_protocol::ModbusParity::None => "8N2",
+    }
+}
+
+/// The Modbus RTU settings as lines for a person.
+pub fn modbus_lines(m: &fringe_protocol::ModbusSettings) -> Vec<(String, String)> {
+    let t = fringe_firmware::modbus::SerialLine::from(*m).timing();
+    vec![
+        ("modbus unit".into(), m.unit_id.to_string()),
+        (
+            "modbus line".into(),
+            format!(
+                "{} baud, {} ({} parity), frame gap {:.2} ms",
+                m.baud,
+                frame_name(m),
+                parity_name(m.parity),
+                f64::from(t.t35_us) / 1000.0
+            ),
+        ),
+    ]
+}
+
+/// The settings and, when the device has them, the Modbus settings as JSON.
+fn config_json(
+    s: &fringe_protocol::Settings,
+    m: Option<&fringe_protocol::ModbusSettings>,
+) -> serde_json::Value {
+    let mut v = settings_json(s);
+    if let (Some(m), Some(o)) = (m, v.as_object_mut()) {
+        if let Some(mo) = modbus_json(m).as_object() {
+            o.extend(mo.clone());
+        }
+    }
+    v
+}
+
+/// The settings and the Modbus settings as lines for a person.
+fn config_lines(
+    s: &fringe_protocol::Settings,
+    m: Option<&fringe_protocol::ModbusSettings>,
+) -> Vec<(String, String)> {
+    let mut l = settings_lines(s);
+    if let Some(m) = m {
+        l.extend(modbus_lines(m));
+    }
+    l
+}
+
+/// The Modbus settings when the device keeps them (protocol 1.2 on).
+fn read_modbus(
+    link: &mut crate::link::Link,
+) -> anyhow::Result<Option<fringe_protocol::ModbusSettings>> {
+    if link.has_modbus_settings() {
+        Ok(Some(link.modbus()?))
+    } else {
+        Ok(None)
+    }
+}
+
 /// The settings as lines for a person.
 pub fn settings_lines(s: &fringe_protocol::Settings) -> Vec<(String, String)> {
     use fringe_firmware::output::{MA_FAIL_HIGH, MA_FAIL_LOW};
@@ -377,15 +460,24 @@ pub fn settings_lines(s: &fringe_protocol::Settings) -> Vec<(String, String)> {
 pub fn config_show(a: &crate::cli::ConfigShowArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let mut link = super::connect(&a.port, cfg)?;
     let s = read_settings(&mut link)?;
+    let m = read_modbus(&mut link)?;
     if a.json {
-        let mut v = settings_json(&s);
+        let mut v = config_json(&s, m.as_ref());
         v["serial"] = json!(link.serial_number());
         out::json(&v)?;
         return Ok(());
     }
     out::line(&format!("{:<15}{}", "device", link.serial_number()))?;
-    for (k, v) in settings_lines(&s) {
+    for (k, v) in config_lines(&s, m.as_ref()) {
         out::line(&format!("{k:<15}{v}"))?;
+    }
+    if m.is_none() {
+        out::line(&format!(
+            "{:<15}not settable: the device speaks protocol {} (Modbus settings need 1.2)",
+            "modbus",
+            link.identity()
+                .map_or("?".into(), |i| i.protocol.to_string())
+        ))?;
     }
     Ok(())
 }
@@ -399,8 +491,11 @@ pub struct ConfigSetOutcome {
     pub old: serde_json::Value,
     /// Settings now (read back).
     pub new: serde_json::Value,
-    /// Chain position of the audit record.
+    /// Chain position of the (last) audit record.
     pub position: u64,
+    /// Chain positions of every audit record written (one for the
+    /// settings, one for the Modbus settings, in that order).
+    pub positions: Vec<u64>,
 }
 
 /// `fringe device config set`.
@@ -422,6 +517,11 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
         fail_high: a.fail.map(|f| f == crate::cli::FailLevel::High),
         stale_timeout_ms: a.stale_timeout_ms,
     };
+    let mchange = fringe_device::settings::ModbusChange {
+        unit_id: a.modbus_unit,
+        baud: a.modbus_baud,
+        parity: a.modbus_parity.map(Into::into),
+    };
     let mut link = super::connect(&a.port, cfg)?;
     let id = link
         .identity()
@@ -430,18 +530,39 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
     super::sync_clock(&mut link, Some(&key), "device config")?;
     let old = read_settings(&mut link)?;
     let new = change.apply(&old)?;
-    if new == old {
+    // Asked for Modbus settings, a device before protocol 1.2 is refused
+    // here, by name and version, before anything is written.
+    let old_m = if mchange.is_empty() {
+        read_modbus(&mut link)?
+    } else {
+        Some(link.modbus()?)
+    };
+    let new_m = match &old_m {
+        Some(o) => Some(mchange.apply(o)?),
+        None => None,
+    };
+    let settings_changed = new != old;
+    let modbus_changed = new_m != old_m;
+    if !settings_changed && !modbus_changed {
         out::line("nothing to change: the device holds these settings already")?;
         return Ok(());
     }
     if !a.json {
         eprintln!("{} on {}:", id.serial, link.port_name());
-        for ((k, o), (_, n)) in settings_lines(&old).into_iter().zip(settings_lines(&new)) {
+        let before = config_lines(&old, old_m.as_ref());
+        let after = config_lines(&new, new_m.as_ref());
+        for ((k, o), (_, n)) in before.into_iter().zip(after) {
             if o != n {
                 eprintln!("  {k:<15}{o}\n  {:<15}-> {n}", "");
             }
         }
-        eprintln!("\n{}\n", fringe_device::SETTINGS_CAUTION);
+        if settings_changed {
+            eprintln!("\n{}", fringe_device::SETTINGS_CAUTION);
+        }
+        if modbus_changed {
+            eprintln!("\n{}", fringe_device::MODBUS_CAUTION);
+        }
+        eprintln!();
     }
     if !a.yes && !crate::terminal::Terminal.confirm("write these settings to the device?")? {
         anyhow::bail!(
@@ -451,32 +572,61 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
     }
     super::with_db(&db, |store| {
         fringe_line::register(store, &id)?;
-        let position = fringe_device::settings::write_settings(
-            &mut link,
-            &key,
-            store,
-            &old,
-            &new,
-            &a.operator,
-            &a.reason,
-        )?;
+        let mut positions = Vec::new();
+        if settings_changed {
+            let position = fringe_device::settings::write_settings(
+                &mut link,
+                &key,
+                store,
+                &old,
+                &new,
+                &a.operator,
+                &a.reason,
+            )?;
+            if !a.json {
+                out::line(&format!(
+                    "settings {} -> {} written to {}, read back and verified; audit record at chain position {} of {}",
+                    old.content_id(),
+                    new.content_id(),
+                    id.serial,
+                    position,
+                    db.display()
+                ))?;
+            }
+            positions.push(position);
+        }
+        if let (Some(om), Some(nm), true) = (&old_m, &new_m, modbus_changed) {
+            let position = fringe_device::settings::write_modbus(
+                &mut link,
+                &key,
+                store,
+                om,
+                nm,
+                &a.operator,
+                &a.reason,
+            )?;
+            if !a.json {
+                out::line(&format!(
+                    "Modbus RTU unit {} at {} baud {} written to {}, read back and verified (in force on its RS-485 line now); audit record at chain position {} of {}",
+                    nm.unit_id,
+                    nm.baud,
+                    frame_name(nm),
+                    id.serial,
+                    position,
+                    db.display()
+                ))?;
+            }
+            positions.push(position);
+        }
         let o = ConfigSetOutcome {
             serial: id.serial.to_string(),
-            old: settings_json(&old),
-            new: settings_json(&new),
-            position,
+            old: config_json(&old, old_m.as_ref()),
+            new: config_json(&new, new_m.as_ref()),
+            position: positions.last().copied().unwrap_or(0),
+            positions,
         };
         if a.json {
             out::json(&serde_json::to_value(&o)?)?;
-        } else {
-            out::line(&format!(
-                "settings {} -> {} written to {}, read back and verified; audit record at chain position {} of {}",
-                old.content_id(),
-                new.content_id(),
-                o.serial,
-                o.position,
-                db.display()
-            ))?;
         }
         Ok(())
     })

@@ -492,6 +492,7 @@ pub fn event_kind_name(k: &fringe_protocol::EventKind) -> &'static str {
         K::ReferenceDrift { .. } => "reference_drift",
         K::StorageRepaired => "storage_repaired",
         K::SettingsChanged { .. } => "settings_changed",
+        K::ModbusChanged { .. } => "modbus_changed",
     }
 }
 

@@ -365,6 +365,8 @@ pub fn event_kind() -> impl Strategy<Value = EventKind> {
             .prop_map(|(ratio, baseline)| EventKind::ReferenceDrift { ratio, baseline }),
         Just(EventKind::StorageRepaired),
         (cal_id(), cal_id()).prop_map(|(old, new)| EventKind::SettingsChanged { old, new }),
+        (modbus_settings(), modbus_settings())
+            .prop_map(|(old, new)| EventKind::ModbusChanged { old, new }),
     ]
 }
 
@@ -381,6 +383,7 @@ pub fn event_kind_index(k: &EventKind) -> usize {
         EventKind::ReferenceDrift { .. } => 7,
         EventKind::StorageRepaired => 8,
         EventKind::SettingsChanged { .. } => 9,
+        EventKind::ModbusChanged { .. } => 10,
     }
 }
 
@@ -420,6 +423,23 @@ pub fn settings() -> impl Strategy<Value = Settings> {
         })
 }
 
+pub fn modbus_settings() -> impl Strategy<Value = ModbusSettings> {
+    (
+        any::<u8>(),
+        any::<u32>(),
+        prop_oneof![
+            Just(ModbusParity::Even),
+            Just(ModbusParity::Odd),
+            Just(ModbusParity::None)
+        ],
+    )
+        .prop_map(|(unit_id, baud, parity)| ModbusSettings {
+            unit_id,
+            baud,
+            parity,
+        })
+}
+
 pub fn request() -> impl Strategy<Value = Request> {
     prop_oneof![
         version().prop_map(|host| Request::Identify { host }),
@@ -442,6 +462,8 @@ pub fn request() -> impl Strategy<Value = Request> {
         output_config().prop_map(Request::SetOutput),
         Just(Request::ReadSettings),
         settings().prop_map(Request::WriteSettings),
+        Just(Request::ReadModbus),
+        modbus_settings().prop_map(Request::WriteModbus),
     ]
 }
 
@@ -468,6 +490,8 @@ pub fn request_index(r: &Request) -> usize {
         Request::SetOutput(_) => 17,
         Request::ReadSettings => 18,
         Request::WriteSettings(_) => 19,
+        Request::ReadModbus => 20,
+        Request::WriteModbus(_) => 21,
     }
 }
 
@@ -510,6 +534,7 @@ pub fn response() -> impl Strategy<Value = Response> {
             .prop_map(|(events, next, end)| Response::Events { events, next, end }),
         self_test().prop_map(Response::SelfTest),
         settings().prop_map(Response::Settings),
+        modbus_settings().prop_map(Response::Modbus),
     ]
 }
 
@@ -528,6 +553,7 @@ pub fn response_index(r: &Response) -> usize {
         Response::Events { .. } => 9,
         Response::SelfTest(_) => 10,
         Response::Settings(_) => 11,
+        Response::Modbus(_) => 12,
     }
 }
 

@@ -6,7 +6,8 @@
 //!
 //! Boot with `cargo xtask qemu` (UART0 and UART1 on pseudo-terminals) and
 //! talk to it with `fringe monitor --port <pty>`, or read its registers
-//! with a Modbus RTU master on the second pty (unit 1).
+//! with a Modbus RTU master on the second pty (unit 1 until the device's
+//! Modbus settings say otherwise: `fringe device config set --modbus-unit`).
 #![no_std]
 #![no_main]
 
@@ -23,7 +24,7 @@ use core::sync::atomic::{AtomicU32, Ordering};
 
 use cortex_m_rt::{entry, exception};
 use fringe_firmware::hal::NullOutput;
-use fringe_firmware::modbus::{HalfDuplex, RtuSlave, SerialLine};
+use fringe_firmware::modbus::{HalfDuplex, RtuSlave};
 use fringe_firmware::protocol::ResetCause;
 use fringe_firmware::sim::{Material, Scenario};
 use fringe_firmware::{Booted, Device, DeviceConfig, Diagnostics, SimFrontend};
@@ -37,9 +38,6 @@ pub const KEY: [u8; 32] = *b"fringe-qemu-mps2-demo-write-key!";
 const SIM_SEED: u64 = 0x00F1_A6E5;
 /// UART0 baud divisor: 25 MHz / 115200.
 const BAUDDIV: u32 = clock::CORE_HZ / 115_200;
-/// The Modbus line: the defaults (unit 1, 19200 baud, 8E1). QEMU's UART
-/// models neither baud rate nor parity; the timing follows the baud rate.
-const MODBUS: SerialLine = SerialLine::DEFAULT;
 /// Core cycles per microsecond.
 const CYCLES_PER_US: u64 = clock::CORE_HZ as u64 / 1_000_000;
 
@@ -87,7 +85,6 @@ fn main() -> ! {
         cortex_m::Peripherals::take().unwrap_or_else(|| panic!("core peripherals taken twice"));
     clock::init(cp.SYST);
     let mut uart = uart::Uart::init(BAUDDIV);
-    rs485::init(clock::CORE_HZ / MODBUS.baud);
     cortex_m::peripheral::NVIC::unpend(Irq::Uart0Rx);
     cortex_m::peripheral::NVIC::unpend(Irq::Uart1Rx);
     // SAFETY: the handler (`DefaultHandler` below) only touches the RX rings.
@@ -99,7 +96,11 @@ fn main() -> ! {
     let mut watchdog = clock::SoftWatchdog;
     fringe_firmware::Watchdog::kick(&mut watchdog);
     let dev = start(cold, reset_cause);
-    let slave = SLAVE.take().write(match RtuSlave::new(&MODBUS) {
+    // The Modbus line as the device's settings say (checked when stored
+    // and at boot; the defaults are unit 1, 19200 baud, 8E1).
+    let mut line = dev.modbus_line();
+    rs485::init(&line);
+    let slave = SLAVE.take().write(match RtuSlave::new(&line) {
         Ok(s) => s,
         Err(e) => panic!("{e}"),
     });
@@ -153,6 +154,13 @@ fn main() -> ! {
         });
         if dev.reboot_requested() {
             retained::reset(retained::Cause::Requested);
+        }
+        // A host changed the Modbus settings: the slave answers the new
+        // unit id with the new frame gap from the next request on.
+        let now_line = dev.modbus_line();
+        if now_line != line && slave.reconfigure(&now_line).is_ok() {
+            rs485::init(&now_line);
+            line = now_line;
         }
         serve_modbus(slave, &mut port, dev, &mut mark);
         // Nothing to do until the next tick or byte. Not while a Modbus

@@ -25,6 +25,7 @@ use core::ptr::{read_volatile, write_volatile};
 use core::sync::atomic::{AtomicU32, Ordering};
 
 use critical_section::Mutex;
+use fringe_firmware::modbus::SerialLine;
 use heapless::Deque;
 
 /// UART1 base address.
@@ -68,8 +69,15 @@ fn write(off: usize, v: u32) {
     unsafe { write_volatile(reg(off), v) }
 }
 
-/// Enables UART1's transmitter, receiver and receive interrupt.
-pub fn init(bauddiv: u32) {
+/// Sets UART1 up for `line` and enables its transmitter, receiver and
+/// receive interrupt; called again when the device's Modbus settings
+/// change. The baud divisor follows the baud rate (core clock / baud, as
+/// on the real part); the CMSDK UART has no parity or stop-bit setting at
+/// all (8N1 only in the hardware, and QEMU models no line timing), so on
+/// this board parity and stop bits are not applied: only the slave's unit
+/// id and frame gap change.
+pub fn init(line: &SerialLine) {
+    let bauddiv = crate::clock::CORE_HZ / line.baud.max(1);
     write(CTRL, 0);
     write(BAUDDIV, bauddiv.max(16));
     write(INTCLEAR, 0xF);

@@ -50,9 +50,6 @@ bind_interrupts!(struct Irqs {
 
 /// Fringe protocol baud rate (as the host's default).
 const PROTOCOL_BAUD: u32 = 115_200;
-/// The Modbus line: the defaults (unit 1, 19200 baud, even parity; Modbus
-/// over Serial Line V1.02).
-const MODBUS: SerialLine = SerialLine::DEFAULT;
 /// Watchdog timeout, microseconds: a poll runs at most 4 records of 8 ms
 /// each plus a flash page erase (about 20 ms on this part, from memory).
 const WATCHDOG_US: u32 = 2_000_000;
@@ -148,36 +145,22 @@ fn main() -> ! {
         Err(_) => panic!("USART1 configuration refused"),
     };
 
-    // RS-485 on USART2: the Modbus line (8 data bits and parity are 9
-    // bits in the USART's word; without parity, two stop bits).
-    let mut mcfg = usart::Config::default();
-    mcfg.baudrate = MODBUS.baud;
-    match MODBUS.parity {
-        Parity::Even | Parity::Odd => {
-            mcfg.parity = if MODBUS.parity == Parity::Even {
-                usart::Parity::ParityEven
-            } else {
-                usart::Parity::ParityOdd
-            };
-            mcfg.data_bits = usart::DataBits::DataBits9;
-        }
-        Parity::None => {
-            mcfg.parity = usart::Parity::ParityNone;
-            mcfg.data_bits = usart::DataBits::DataBits8;
-            mcfg.stop_bits = usart::StopBits::STOP2;
-        }
-    }
-    let (modbus_tx, _modbus_rx) = match Uart::new_blocking(p.USART2, p.PA3, p.PA2, mcfg) {
-        Ok(u) => u.split(),
-        Err(_) => panic!("USART2 configuration refused"),
-    };
+    // RS-485 on USART2: the Modbus line, first at the defaults (unit 1,
+    // 19200 baud, 8E1); once the device has read its settings from flash,
+    // `apply_line` moves it to them, as after a host's change.
+    let mut line = SerialLine::DEFAULT;
+    let (modbus_tx, _modbus_rx) =
+        match Uart::new_blocking(p.USART2, p.PA3, p.PA2, modbus_config(&line)) {
+            Ok(u) => u.split(),
+            Err(_) => panic!("USART2 configuration refused"),
+        };
     let mut rs485: Rs485 =
         match HalfDuplex::new(modbus_tx, Output::new(p.PA1, Level::Low, Speed::Low)) {
             Ok(h) => h,
             Err(_) => panic!("RS-485 driver enable"),
         };
     let slave = singleton!(
-        RtuSlave = match RtuSlave::new(&MODBUS) {
+        RtuSlave = match RtuSlave::new(&line) {
             Ok(s) => s,
             Err(e) => panic!("{e}"),
         }
@@ -243,6 +226,16 @@ fn main() -> ! {
     let dev = start(serial.as_str(), key, storage, frontend, output, reset_cause);
     let mut rx = [0u8; 64];
     loop {
+        // The device's Modbus settings (stored ones at boot, a host's
+        // change later): the UART and the slave follow between frames.
+        let want = dev.modbus_line();
+        if want != line {
+            // A configuration the USART refuses (a baud rate its clock
+            // cannot make) leaves the old one; not retried until the
+            // settings change again.
+            let _ = apply_line(&mut rs485, slave, &want);
+            line = want;
+        }
         serve_modbus(slave, &mut rs485, dev);
         let n = read_available(&mut uart, &mut rx);
         dev.poll_watched(
@@ -258,6 +251,44 @@ fn main() -> ! {
         }
         serve_modbus(slave, &mut rs485, dev);
     }
+}
+
+/// USART2's configuration for `line`: 8 data bits and the parity bit make
+/// a 9-bit word in the USART (RM0440, from memory); without parity, 8
+/// bits and two stop bits, so that a character stays 11 bits (Modbus over
+/// Serial Line V1.02, section 2.5.1).
+fn modbus_config(line: &SerialLine) -> usart::Config {
+    let mut c = usart::Config::default();
+    c.baudrate = line.baud;
+    match line.parity {
+        Parity::Even | Parity::Odd => {
+            c.parity = if line.parity == Parity::Even {
+                usart::Parity::ParityEven
+            } else {
+                usart::Parity::ParityOdd
+            };
+            c.data_bits = usart::DataBits::DataBits9;
+            c.stop_bits = usart::StopBits::STOP1;
+        }
+        Parity::None => {
+            c.parity = usart::Parity::ParityNone;
+            c.data_bits = usart::DataBits::DataBits8;
+            c.stop_bits = usart::StopBits::STOP2;
+        }
+    }
+    c
+}
+
+/// Moves USART2 and the slave to `line`. `embassy-stm32`'s `set_config`
+/// rewrites CR1 (clearing the receive and parity-error interrupt enables
+/// `rs485` set), so they are enabled again after it. The slave drops a
+/// frame in progress (read at the old settings).
+fn apply_line(port: &mut Rs485, slave: &mut RtuSlave, line: &SerialLine) -> Result<(), ()> {
+    port.tx_mut()
+        .set_config(&modbus_config(line))
+        .map_err(|_| ())?;
+    rs485::enable_rx_interrupt();
+    slave.reconfigure(line).map_err(|_| ())
 }
 
 /// Hands the Modbus bytes received to the slave and sends its answer, if

@@ -1,0 +1,265 @@
+//! The Modbus RTU settings (unit id, baud rate, parity; protocol 1.2):
+//! defaults on a blank flash and on flash written before 1.2, each write
+//! authenticated, read back, logged, kept across a reboot and old-or-new
+//! after a power cut at any step; bad values refused by name with nothing
+//! changed; the event in the form the host announced it can decode; and
+//! the slave following the settings the device holds.
+
+mod common;
+
+use common::*;
+use fringe_firmware::modbus::{Parity, RtuSlave, SerialLine};
+use fringe_firmware::protocol::auth::sign;
+use fringe_firmware::protocol::*;
+use fringe_firmware::settings::default_settings;
+use fringe_firmware::storage::key;
+use fringe_firmware::Scenario;
+
+const DEFAULTS: ModbusSettings = ModbusSettings {
+    unit_id: 1,
+    baud: 19_200,
+    parity: ModbusParity::Even,
+};
+
+/// Line 2's device moved onto a shared segment (invented).
+const SHARED: ModbusSettings = ModbusSettings {
+    unit_id: 12,
+    baud: 38_400,
+    parity: ModbusParity::None,
+};
+
+fn read(b: &mut Bench) -> ModbusSettings {
+    match b.ok(Request::ReadModbus) {
+        Response::Modbus(m) => m,
+        other => panic!("ReadModbus answered {other:?}"),
+    }
+}
+
+fn identify(b: &mut Bench, minor: u8) -> Identity {
+    match b.ok(Request::Identify {
+        host: Version { major: 1, minor },
+    }) {
+        Response::Identity(id) => id,
+        other => panic!("{other:?}"),
+    }
+}
+
+#[test]
+fn defaults_on_a_blank_flash_and_the_capability() {
+    let mut b = Bench::new(1, Scenario::default());
+    assert_eq!(read(&mut b), DEFAULTS);
+    assert_eq!(b.dev.modbus_line(), SerialLine::DEFAULT);
+    let id = identify(&mut b, 2);
+    assert!(id.capabilities.contains(Capabilities::MODBUS_RTU));
+    assert_eq!(id.protocol, Version { major: 1, minor: 2 });
+}
+
+#[test]
+fn flash_written_before_1_2_reads_as_the_defaults_and_keeps_the_other_settings() {
+    // A 1.1 device's flash: settings under key 7, nothing under key 8.
+    let mut b = Bench::new(2, Scenario::default());
+    let tagged = Settings {
+        tag: short_string("L2-DRYER-MT-201"),
+        interval_ms: 2000,
+        ..default_settings()
+    };
+    b.dev.storage_mut().put(key::SETTINGS, &tagged).unwrap();
+    assert_eq!(
+        b.dev
+            .storage_mut()
+            .get::<ModbusSettings>(key::MODBUS)
+            .unwrap(),
+        None
+    );
+    let mut b = b.reboot(3);
+    assert_eq!(read(&mut b), DEFAULTS);
+    assert_eq!(b.dev.settings(), &tagged);
+    // A stored value that no longer passes the check reads as the
+    // defaults too (written by other firmware).
+    let bad = ModbusSettings {
+        unit_id: 0,
+        ..SHARED
+    };
+    b.dev.storage_mut().put(key::MODBUS, &bad).unwrap();
+    let mut b = b.reboot(4);
+    assert_eq!(read(&mut b), DEFAULTS);
+}
+
+#[test]
+fn each_value_is_written_read_back_logged_and_kept_across_a_reboot() {
+    let cases = [
+        ModbusSettings {
+            unit_id: 247,
+            ..DEFAULTS
+        },
+        ModbusSettings {
+            baud: 9600,
+            ..DEFAULTS
+        },
+        ModbusSettings {
+            parity: ModbusParity::Odd,
+            ..DEFAULTS
+        },
+        SHARED,
+    ];
+    for (i, m) in cases.into_iter().enumerate() {
+        let mut b = Bench::new(10 + i as u64, Scenario::default());
+        identify(&mut b, 2);
+        assert_eq!(b.ok(Request::WriteModbus(m)), Response::Ack, "{m:?}");
+        assert_eq!(read(&mut b), m, "read back");
+        assert_eq!(b.dev.modbus_line(), SerialLine::from(m), "in force");
+        let changed: Vec<_> = b
+            .events()
+            .into_iter()
+            .filter_map(|e| match e.kind {
+                EventKind::ModbusChanged { old, new } => Some((old, new)),
+                _ => None,
+            })
+            .collect();
+        assert_eq!(changed, vec![(DEFAULTS, m)], "{m:?}: the event");
+        let mut b = b.reboot(20 + i as u64);
+        assert_eq!(read(&mut b), m, "{m:?}: after a reboot");
+        assert_eq!(b.dev.modbus_line(), SerialLine::from(m));
+    }
+}
+
+#[test]
+fn a_1_1_host_gets_the_change_as_settings_changed_with_content_ids() {
+    let mut b = Bench::new(30, Scenario::default());
+    identify(&mut b, 1);
+    assert_eq!(b.ok(Request::WriteModbus(SHARED)), Response::Ack);
+    let want = EventKind::SettingsChanged {
+        old: DEFAULTS.content_id(),
+        new: SHARED.content_id(),
+    };
+    // The unsolicited event and the event log alike.
+    assert!(
+        b.seen
+            .iter()
+            .any(|f| matches!(f, DeviceFrame::Event(e) if e.kind == want)),
+        "unsolicited: {:?}",
+        b.seen
+    );
+    let evs = b.events();
+    assert!(evs.iter().any(|e| e.kind == want), "{evs:?}");
+    assert!(!evs
+        .iter()
+        .any(|e| matches!(e.kind, EventKind::ModbusChanged { .. })));
+    // The same log, read by a 1.2 host, holds the change itself.
+    identify(&mut b, 2);
+    assert!(b.events().iter().any(|e| e.kind
+        == EventKind::ModbusChanged {
+            old: DEFAULTS,
+            new: SHARED
+        }));
+}
+
+#[test]
+fn bad_values_and_a_wrong_key_are_refused_and_change_nothing() {
+    let mut b = Bench::new(40, Scenario::default());
+    identify(&mut b, 2);
+    for (m, word) in [
+        (
+            ModbusSettings {
+                unit_id: 0,
+                ..DEFAULTS
+            },
+            "unit id",
+        ),
+        (
+            ModbusSettings {
+                unit_id: 248,
+                ..DEFAULTS
+            },
+            "unit id",
+        ),
+        (
+            ModbusSettings {
+                baud: 14_400,
+                ..DEFAULTS
+            },
+            "baud",
+        ),
+        (
+            ModbusSettings {
+                baud: 0,
+                ..DEFAULTS
+            },
+            "baud",
+        ),
+    ] {
+        match b.ask(Request::WriteModbus(m)) {
+            DeviceFrame::Error { code, reason, .. } => {
+                assert_eq!(code, ErrorCode::OutOfRange, "{reason}");
+                assert!(reason.contains(word), "{reason:?} names {word}");
+            }
+            other => panic!("{m:?}: {other:?}"),
+        }
+        assert_eq!(read(&mut b), DEFAULTS);
+    }
+    let request = Request::WriteModbus(SHARED);
+    b.counter += 1;
+    let auth = sign(&[0x55; 32], SERIAL, b.counter, &request);
+    let f = b.ask_with(request, auth);
+    assert_eq!(Bench::error_code(&f), Some(ErrorCode::AuthFailed));
+    let f = b.ask_with(Request::WriteModbus(SHARED), None);
+    assert_eq!(Bench::error_code(&f), Some(ErrorCode::AuthFailed));
+    assert_eq!(read(&mut b), DEFAULTS);
+    assert!(!b
+        .events()
+        .iter()
+        .any(|e| matches!(e.kind, EventKind::ModbusChanged { .. })));
+}
+
+#[test]
+fn a_modbus_write_is_old_or_new_after_a_cut_at_any_step() {
+    big_stack(|| {
+        let boot = |flash: Flash, seed: u64| {
+            let mut b = Bench::with_config(seed, Scenario::default(), flash, quiet_config());
+            b.settle();
+            b
+        };
+        let first = boot(Flash::new(), 50);
+        let counter = first.counter;
+        let (_, flash, _) = first.dev.into_parts();
+        let mut b = boot(flash.clone(), 50);
+        let (w0, e0) = b.dev.flash_mut().op_counts();
+        assert_eq!(b.ok(Request::WriteModbus(SHARED)), Response::Ack);
+        let (w1, e1) = b.dev.flash_mut().op_counts();
+        let steps = (w1 + e1) - (w0 + e0);
+        assert!(steps >= 2, "{steps} flash operations");
+        for k in 0..steps {
+            let mut b = boot(flash.clone(), 50);
+            b.counter = counter;
+            b.dev.flash_mut().cut_power_after(k);
+            let _ = b.ask(Request::WriteModbus(SHARED));
+            assert!(b.dev.flash_mut().power_cut_happened(), "step {k}: no cut");
+            let (_, mut fl, _) = b.dev.into_parts();
+            fl.restart();
+            let mut b = boot(fl, 51);
+            b.counter = counter + 1;
+            let now = read(&mut b);
+            assert!(
+                now == DEFAULTS || now == SHARED,
+                "step {k}: Modbus settings after the cut are {now:?}"
+            );
+            assert_eq!(b.dev.modbus_line(), SerialLine::from(now));
+        }
+    });
+}
+
+/// What a board does with the settings: hands them to the slave, which
+/// then answers the new unit id only, with the new frame gap.
+#[test]
+fn the_slave_follows_the_device_settings() {
+    let mut b = Bench::new(60, Scenario::default());
+    let mut slave = RtuSlave::new(&b.dev.modbus_line()).unwrap();
+    assert_eq!(slave.unit_id(), 1);
+    assert_eq!(b.ok(Request::WriteModbus(SHARED)), Response::Ack);
+    let line = b.dev.modbus_line();
+    assert_eq!(line.parity, Parity::None);
+    assert_eq!(line.stop_bits(), 2);
+    slave.reconfigure(&line).unwrap();
+    assert_eq!(slave.unit_id(), 12);
+    assert_eq!(slave.timing().t35_us, 1750);
+}
