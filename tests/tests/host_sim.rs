@@ -24,7 +24,8 @@ fn identify_and_status_in_text_and_json() {
     );
     let v: serde_json::Value = serde_json::from_str(&o.stdout).expect("identify --json");
     assert_eq!(v["serial"], "HGM-L2-0101");
-    assert_eq!(v["protocol"], "1.1");
+    let p = fringe_protocol::PROTOCOL_VERSION;
+    assert_eq!(v["protocol"], format!("{}.{}", p.major, p.minor));
     let o = run(
         &mut fringe(&["status", "--port", sim.port_str(), "--json"]),
         LIMIT,
