@@ -162,28 +162,8 @@ fn pymodbus_reads_the_device_over_modbus_rtu_on_qemu() {
         first.flags
     );
 
-    let script = root().join("tests/python/modbus_rtu.py");
-    let mut child = Command::new(python())
-        .arg(&script)
-        .arg(&qemu.modbus_pty)
-        .args(["1", "4"])
-        .stdout(Stdio::piped())
-        .stderr(Stdio::inherit())
-        .spawn()
-        .expect("python starts");
-    // Keep taking the streamed readings while pymodbus reads.
-    let status = loop {
-        link.receive(Duration::from_millis(200)).expect("stream");
-        if let Some(s) = child.try_wait().expect("python") {
-            break s;
-        }
-    };
+    let v = pymodbus(&qemu, &mut link, 1, 4, 2);
     link.receive(Duration::from_millis(500)).expect("stream");
-    let mut out = String::new();
-    std::io::Read::read_to_string(&mut child.stdout.take().expect("stdout"), &mut out)
-        .expect("python output");
-    assert!(status.success(), "modbus_rtu.py failed: {out}");
-    let v: serde_json::Value = serde_json::from_str(&out).expect("JSON from modbus_rtu.py");
     eprintln!(
         "pymodbus: {} whole-map reads, slowest round trip {:.3} s; {} readings streamed",
         v["reads"].as_array().map_or(0, Vec::len),
@@ -276,14 +256,33 @@ fn pymodbus(qemu: &Qemu, link: &mut Link, unit: u8, readings: u32, wrong: u8) ->
         .stderr(Stdio::inherit())
         .spawn()
         .expect("python starts");
+    // Its JSON is read while it runs: a run of fast reads prints more than
+    // a pipe holds, and a script blocked on a full pipe never exits.
+    let mut stdout = child.stdout.take().expect("stdout");
+    let reader = std::thread::spawn(move || {
+        let mut out = String::new();
+        std::io::Read::read_to_string(&mut stdout, &mut out).map(|_| out)
+    });
+    // The script bounds its own waits (and dumps its stacks after 150 s);
+    // this bound is the last resort, so that a stuck run fails, not hangs.
+    let deadline = std::time::Instant::now() + Duration::from_secs(180);
     let status = loop {
         link.receive(Duration::from_millis(200)).expect("stream");
         if let Some(s) = child.try_wait().expect("python") {
             break s;
         }
+        if std::time::Instant::now() > deadline {
+            let _ = child.kill();
+            let _ = child.wait();
+            panic!(
+                "modbus_rtu.py still running after 180 s on {} (unit {unit}); killed",
+                qemu.modbus_pty.display()
+            );
+        }
     };
-    let mut out = String::new();
-    std::io::Read::read_to_string(&mut child.stdout.take().expect("stdout"), &mut out)
+    let out = reader
+        .join()
+        .expect("reader thread")
         .expect("python output");
     assert!(status.success(), "modbus_rtu.py failed: {out}");
     serde_json::from_str(&out).expect("JSON from modbus_rtu.py")
