@@ -45,7 +45,10 @@ function trend(history) {
     s.appendChild(t);
   }
   for (const tt of [t0, t1]) {
-    const t = svg("text", { x: Math.min(x(tt), W - 40), y: H - 3 });
+    // The last label ends at the right edge, whatever its length (12:36 PM, 12:36).
+    const t = svg("text", tt === t1
+      ? { x: W - 2, y: H - 3, "text-anchor": "end" }
+      : { x: x(tt), y: H - 3 });
     t.textContent = localTime(tt);
     s.appendChild(t);
   }
