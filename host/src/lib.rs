@@ -100,6 +100,7 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
             Ok(())
         }
         Command::Audit(a) => quality::audit_cmd(a, &cfg),
+        Command::Export(a) => quality::export_cmd(a, &cfg),
         Command::Demo(a) => demo::run(a).map(|_| ()),
         Command::Gateway(a) => cmd::gateway::gateway(a, cli.config.as_deref(), stop_flag()?),
     }

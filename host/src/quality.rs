@@ -10,8 +10,8 @@ use fringe_quality::{analysis, audit};
 use serde_json::json;
 
 pub use crate::cli::quality::{
-    AuditArgs, AuditCommand, AuditExportArgs, AuditVerifyArgs, DriftArgs, HistoryArgs, LabAddArgs,
-    LabArgs, LabCommand, ReportArgs,
+    AuditArgs, AuditCommand, AuditExportArgs, AuditVerifyArgs, DriftArgs, ExportArgs, HistoryArgs,
+    LabAddArgs, LabArgs, LabCommand, ReportArgs,
 };
 use crate::config::{ConfigError, LineConfig};
 use crate::store::{db_label, AnyStore};
@@ -237,4 +237,172 @@ pub fn audit_cmd(a: &AuditArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             }
         }
     }
+}
+
+/// `fringe export`: the rows go to a new file (written beside it as
+/// `NAME.partial-PID`, then linked to its name only if that is still free,
+/// so that an existing file is never overwritten and a failed export leaves
+/// no half file under the name) or to stdout.
+///
+/// # Errors
+/// A bad flag combination or an existing `--out` ([`crate::exit::UsageError`]),
+/// an unknown device, the store, the writer.
+pub fn export_cmd(a: &ExportArgs, cfg: &LineConfig) -> anyhow::Result<()> {
+    use fringe_quality::export::{self, Format, Kind, Selection};
+    use std::io::{IsTerminal as _, Write as _};
+    let usage = |m: String| anyhow::Error::new(crate::exit::UsageError(m));
+    if a.json && a.out.is_none() {
+        return Err(usage(
+            "--json prints the summary on stdout, which carries the export without --out: give --out FILE".into(),
+        ));
+    }
+    if let (Some(from), Some(to)) = (a.from, a.to) {
+        if from > to {
+            return Err(usage(format!(
+                "--from {} is later than --to {}: swap them",
+                fmt_person(from),
+                fmt_person(to)
+            )));
+        }
+    }
+    let ext = a
+        .out
+        .as_deref()
+        .and_then(|p| p.extension())
+        .and_then(|e| e.to_str())
+        .map(str::to_ascii_lowercase);
+    let format = match (a.format.as_deref(), ext.as_deref()) {
+        (Some("jsonl"), _) | (None, Some("jsonl" | "ndjson")) => Format::Jsonl,
+        _ => Format::Csv,
+    };
+    let kind = match a.what.as_str() {
+        "events" => Kind::Events,
+        "lab" => Kind::Lab,
+        _ => Kind::Readings,
+    };
+    if let Some(out) = &a.out {
+        if out.exists() || out.is_symlink() {
+            return Err(usage(format!(
+                "--out {}: the file exists and is never overwritten; choose another name or move it away",
+                out.display()
+            )));
+        }
+        let dir = match out.parent() {
+            Some(d) if !d.as_os_str().is_empty() => d,
+            _ => std::path::Path::new("."),
+        };
+        if !dir.is_dir() {
+            return Err(usage(format!(
+                "--out {}: the folder {} does not exist",
+                out.display(),
+                dir.display()
+            )));
+        }
+    }
+    let db = db_of(a.db.as_ref(), cfg)?;
+    let store = open_to_read(&db)?;
+    let label = db_label(&db);
+    let sel = Selection {
+        serials: a.devices.clone(),
+        from_ms: a.from,
+        to_ms: a.to,
+    };
+
+    let bar = if std::io::stderr().is_terminal() {
+        indicatif::ProgressBar::new_spinner()
+    } else {
+        indicatif::ProgressBar::hidden()
+    };
+    bar.set_style(
+        indicatif::ProgressStyle::with_template("{spinner} exporting {msg}: {pos} rows {per_sec}")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_spinner()),
+    );
+    bar.set_message(kind.as_str());
+    let mut progress = |n: u64| bar.set_position(n);
+
+    let summary = match &a.out {
+        None => {
+            let mut w = std::io::BufWriter::new(std::io::stdout().lock());
+            let s = store.consistent(|s| {
+                export::export(s, &label, kind, &sel, format, &mut w, &mut progress)
+            })??;
+            w.flush()?;
+            s
+        }
+        Some(out) => {
+            let mut name = out.file_name().unwrap_or_default().to_os_string();
+            name.push(format!(".partial-{}", std::process::id()));
+            let partial = out.with_file_name(name);
+            let file = std::fs::OpenOptions::new()
+                .write(true)
+                .create_new(true)
+                .open(&partial)
+                .with_context(|| format!("cannot create {}", partial.display()))?;
+            let mut w = std::io::BufWriter::new(file);
+            let done = store
+                .consistent(|s| {
+                    export::export(s, &label, kind, &sel, format, &mut w, &mut progress)
+                })
+                .map_err(anyhow::Error::from)
+                .and_then(|r| r.map_err(anyhow::Error::from))
+                .and_then(|s| {
+                    let f = w.into_inner().map_err(|e| e.into_error())?;
+                    f.sync_all()?;
+                    Ok(s)
+                })
+                .and_then(|s| {
+                    // A hard link fails if the name was taken meanwhile: never a clobber.
+                    std::fs::hard_link(&partial, out)
+                        .with_context(|| format!("cannot put the export at {}", out.display()))?;
+                    Ok(s)
+                });
+            let _ = std::fs::remove_file(&partial);
+            done?
+        }
+    };
+    bar.finish_and_clear();
+
+    let range = match (summary.first_unix_ms, summary.last_unix_ms) {
+        (Some(f), Some(l)) => format!(" taken {} to {}", fmt_person(f), fmt_person(l)),
+        _ => String::new(),
+    };
+    let devices: Vec<String> = summary
+        .per_device
+        .iter()
+        .map(|(d, n)| format!("{d} {n}"))
+        .collect();
+    let dest = a
+        .out
+        .as_ref()
+        .map_or_else(|| "stdout".to_string(), |p| p.display().to_string());
+    let mut text = format!(
+        "exported {} {}{range} ({}) from {label} to {dest}",
+        summary.rows,
+        kind.as_str(),
+        devices.join(", ")
+    );
+    if summary.untimed_left_out > 0 {
+        text.push_str(&format!(
+            "\n  {} {} without a wall-clock time (device clock never set, no clock event stored) left out of the range",
+            summary.untimed_left_out,
+            kind.as_str()
+        ));
+    }
+    if a.out.is_none() {
+        eprintln!("{text}");
+    } else if a.json {
+        crate::out::json(&json!({
+            "file": dest,
+            "format": match format { Format::Csv => "csv", Format::Jsonl => "jsonl" },
+            "what": a.what,
+            "rows": summary.rows,
+            "per_device": summary.per_device,
+            "untimed_left_out": summary.untimed_left_out,
+            "first_utc": summary.first_unix_ms.map(crate::timefmt::fmt_time),
+            "last_utc": summary.last_unix_ms.map(crate::timefmt::fmt_time),
+        }))?;
+    } else {
+        crate::outln!("{text}");
+    }
+    Ok(())
 }

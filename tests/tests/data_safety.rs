@@ -301,6 +301,21 @@ fn a_bad_file_or_argument_writes_nothing() {
             2,
         ),
         (
+            "export, no database",
+            &["export", "--db", "{d}/line.db", "--out", "{d}/readings.csv"],
+            23,
+        ),
+        (
+            "export over an existing file",
+            &["export", "--db", "{d}/line.db", "--out", "{d}/notes.txt"],
+            2,
+        ),
+        (
+            "export, --json without --out",
+            &["export", "--db", "{d}/line.db", "--json"],
+            2,
+        ),
+        (
             "audit verify, no database",
             &["audit", "verify", "--db", "{d}/line.db"],
             23,
@@ -472,6 +487,16 @@ fn a_damaged_index_page_stops_every_reading_command_with_23() {
         (
             "cal history",
             vec!["cal".into(), "history".into(), "--db".into(), dbs.clone()],
+        ),
+        (
+            "export",
+            vec![
+                "export".into(),
+                "--db".into(),
+                dbs.clone(),
+                "--out".into(),
+                format!("{d}/readings.csv"),
+            ],
         ),
     ];
     for (name, args) in cases {

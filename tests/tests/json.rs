@@ -388,6 +388,38 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
         Some(&Value::from("summary"))
     );
 
+    // The bulk export of the demo's database: the summary, and the rows of
+    // each kind as JSON Lines (each row against its schema).
+    let o = run(
+        &mut fringe(&[
+            "export",
+            "--db",
+            s(&db),
+            "--out",
+            s(&t("readings.csv")),
+            "--json",
+        ]),
+        LIMIT,
+    );
+    let summary = c.check("export", &o);
+    assert!(
+        summary[0]["rows"].as_u64().unwrap_or(0) >= 20,
+        "{}",
+        o.stdout
+    );
+    // The demo's database holds no device events; the monitored
+    // simulator's (above) does.
+    for (what, db) in [("readings", &db), ("events", &dev_db), ("lab", &db)] {
+        let rows = c.check(
+            &format!("export jsonl {what}"),
+            &run(
+                &mut fringe(&["export", "--db", s(db), "--what", what, "--format", "jsonl"]),
+                LIMIT,
+            ),
+        );
+        assert!(!rows.is_empty(), "{what}");
+    }
+
     // The gateway on a copy of the demo site (its own ports, its own
     // store), for a few seconds with a status line every half second.
     let site_dir = t("site");

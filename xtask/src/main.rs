@@ -28,6 +28,7 @@ use std::process::Command;
 mod qemu;
 
 mod arch;
+mod bench_gateway;
 
 const TARGET: &str = "thumbv7em-none-eabihf";
 
@@ -749,13 +750,15 @@ fn main() -> Result<()> {
         Some("qemu") => qemu_run(),
         Some("size") => size(),
         Some("arch") => arch::check(&root()),
+        Some("bench-gateway") => bench_gateway::run(&root(), &args[1..]),
         _ => {
-            eprintln!("usage: cargo xtask <test | arch | firmware | qemu | size>");
+            eprintln!("usage: cargo xtask <test | arch | firmware | qemu | size | bench-gateway>");
             eprintln!("  test      every test (installs what it needs; --skip qemu,fuzz,python leaves parts out)");
             eprintln!("  arch      the architecture check of docs/ARCHITECTURE.md (crates, module cycles, quiet libraries)");
             eprintln!("  firmware  build the QEMU board binary (firmware/boards/qemu-mps2)");
             eprintln!("  qemu      boot it under QEMU with UART0 and UART1 (Modbus) on ptys and print both");
             eprintln!("  size      flash/RAM of both boards' ELFs; stack high-water and cost per reading (QEMU)");
+            eprintln!("  bench-gateway [N ...] [--seconds S]  fringe gateway's CPU and memory per simulated device (Linux)");
             bail!("unknown or missing xtask command")
         }
     }

@@ -9,7 +9,8 @@
 //!   [`analysis`]: what the monitors and reports read from a store;
 //! - [`samples`]: reference-sample tables (CSV); [`product_file`]: product
 //!   calibration files (TOML); [`cal`]: fit, predict, bias/slope adjust;
-//! - [`audit`]: tamper-evident bundles (export, verify);
+//! - [`audit`]: tamper-evident bundles (export, verify); [`export`]: bulk
+//!   CSV / JSON Lines exports of readings, events and lab samples;
 //! - [`plots`], [`report`]: SVG charts and the HTML report;
 //! - [`views`]: what the commands show (drift, report, history, lab
 //!   samples, audit summaries), written to a writer the caller gives;
@@ -25,6 +26,7 @@ pub mod analysis;
 pub mod audit;
 pub mod cal;
 pub mod drift;
+pub mod export;
 pub mod numbers;
 pub mod plots;
 pub mod product_file;

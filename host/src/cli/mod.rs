@@ -77,6 +77,11 @@ pub enum Command {
     Report(quality::ReportArgs),
     /// Tamper-evident audit bundles: export and verify.
     Audit(quality::AuditArgs),
+    /// Readings, events or lab samples of a time range as CSV or JSON Lines, for spreadsheets and data tools.
+    #[command(
+        after_help = "Examples:\n  fringe export --db line2.db --from 2026-12-01 --to 2026-12-02 --out readings.csv\n  fringe export --db line2.db --device FR-00412 --what events --format jsonl --out events.jsonl\n  fringe export --db postgres://fringe@historian/fringe --format jsonl | jq .moisture_pct"
+    )]
+    Export(quality::ExportArgs),
     /// Run the whole job on a simulated device of an invented plant (the main demonstration).
     Demo(demo::DemoArgs),
     /// Run every device of a site file into one store, serving the readings over Modbus TCP, MQTT and a live page.

@@ -182,3 +182,39 @@ pub struct AuditVerifyArgs {
     #[arg(long)]
     pub json: bool,
 }
+
+/// `fringe export`.
+#[derive(Debug, Clone, Args)]
+pub struct ExportArgs {
+    /// Database: a file, or a PostgreSQL URL postgres://USER@HOST:PORT/DB
+    /// [default: `db` in the line file].
+    #[arg(long, value_name = "FILE|URL")]
+    pub db: Option<PathBuf>,
+    /// First time exported (included) [default: the first record]: RFC 3339
+    /// with an offset (2026-12-01T06:00+01:00, ...Z); without an offset it
+    /// is local time; a date alone is its local midnight. Records taken
+    /// before the device clock was set count at their re-based time; those
+    /// with no wall-clock time at all are left out of a range and counted.
+    #[arg(long, value_name = "T", value_parser = parse_time)]
+    pub from: Option<i64>,
+    /// Last time exported (included) [default: the last record]; as --from.
+    #[arg(long, value_name = "T", value_parser = parse_time)]
+    pub to: Option<i64>,
+    /// Device serial; repeat for several [default: every device of the database].
+    #[arg(long = "device", value_name = "SERIAL")]
+    pub devices: Vec<String>,
+    /// What to export.
+    #[arg(long, value_parser = ["readings", "events", "lab"], default_value = "readings")]
+    pub what: String,
+    /// File format [default: from the --out file's extension (.csv, .jsonl), else csv].
+    #[arg(long, value_parser = ["csv", "jsonl"])]
+    pub format: Option<String>,
+    /// Output file (a new one: an existing file is never overwritten)
+    /// [default: stdout].
+    #[arg(long, value_name = "FILE")]
+    pub out: Option<PathBuf>,
+    /// Print the summary as JSON on stdout (needs --out: without it stdout
+    /// carries the export).
+    #[arg(long)]
+    pub json: bool,
+}

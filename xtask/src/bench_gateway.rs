@@ -1,0 +1,225 @@
+//! `cargo xtask bench-gateway [N ...] [--seconds S]`: what `fringe gateway`
+//! costs per device at one reading a second (a benchmark, not a test; Linux,
+//! figures in BENCHMARKS.md).
+//!
+//! For each device count N (default 10, 100, 247: a site serves at most 247
+//! devices, the Modbus unit ids): a site of N in-process simulated devices
+//! (the demo's meal-bin scenario with numbered serials), a SQLite store,
+//! Modbus TCP and the live page on free localhost ports, drift checks every
+//! 60 s as in the demo; the release `fringe gateway` runs for a warm-up of
+//! 20 s (handshakes, the first batches) and then S seconds (default 60)
+//! over which its CPU time (user + system, /proc/PID/stat) and resident
+//! memory (VmRSS, VmHWM) are read. Then the same N simulated devices alone
+//! (`fringe-sim`'s `sims_alone` example, pumped once a second) give what
+//! the simulation itself costs, and the difference is the gateway's.
+
+use anyhow::{bail, Context, Result};
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::{Duration, Instant};
+
+const WARMUP: Duration = Duration::from_secs(20);
+
+fn target_dir(root: &Path) -> PathBuf {
+    std::env::var_os("CARGO_TARGET_DIR")
+        .map(PathBuf::from)
+        .unwrap_or_else(|| root.join("target"))
+}
+
+/// User + system CPU seconds of process `pid`.
+fn cpu_s(pid: u32) -> Result<f64> {
+    let stat = std::fs::read_to_string(format!("/proc/{pid}/stat"))?;
+    let rest = &stat[stat.rfind(')').context("stat format")? + 2..];
+    let f: Vec<&str> = rest.split_whitespace().collect();
+    let ticks: f64 = f[11].parse::<f64>()? + f[12].parse::<f64>()?;
+    Ok(ticks / 100.0) // USER_HZ
+}
+
+fn status_kb(pid: u32, field: &str) -> u64 {
+    std::fs::read_to_string(format!("/proc/{pid}/status"))
+        .unwrap_or_default()
+        .lines()
+        .find_map(|l| l.strip_prefix(field))
+        .and_then(|v| v.trim().trim_end_matches("kB").trim().parse().ok())
+        .unwrap_or(0)
+}
+
+fn free_port() -> Result<u16> {
+    Ok(std::net::TcpListener::bind("127.0.0.1:0")?
+        .local_addr()?
+        .port())
+}
+
+struct Figures {
+    n: usize,
+    cpu_share: f64,
+    rss_mb: f64,
+    hwm_mb: f64,
+    committed: u64,
+    sims_share: f64,
+    sims_rss_mb: f64,
+}
+
+fn one(root: &Path, fringe: &Path, sims_alone: &Path, n: usize, seconds: u64) -> Result<Figures> {
+    let dir = std::env::temp_dir().join(format!("fringe-bench-gateway-{}-{n}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(dir.join("scenarios"))?;
+    let base = std::fs::read_to_string(root.join("host/sites/scenarios/bfm-meal-bin.toml"))?;
+    let mut site = format!(
+        "name = \"gateway benchmark, {n} devices\"\nstore = \"bench.db\"\nstale_after_s = 10\n\
+         drift_every_s = 60\nstatus_every_s = 60\n\n[modbus]\nlisten = \"127.0.0.1:{}\"\n\n\
+         [web]\nlisten = \"127.0.0.1:{}\"\n",
+        free_port()?,
+        free_port()?
+    );
+    for i in 0..n {
+        let sc = base
+            .replace(
+                "serial = \"BFM-MB-0103\"",
+                &format!("serial = \"BENCH-{i:04}\""),
+            )
+            .replace("seed = 103", &format!("seed = {}", 1000 + i));
+        std::fs::write(dir.join(format!("scenarios/d{i:04}.toml")), sc)?;
+        site.push_str(&format!(
+            "\n[[device]]\nunit = {}\nport = \"sim:scenarios/d{i:04}.toml\"\ntag = \"bench {i}\"\n",
+            i + 1
+        ));
+    }
+    std::fs::write(dir.join("site.toml"), site)?;
+
+    let total = WARMUP + Duration::from_secs(seconds) + Duration::from_secs(2);
+    let mut child = Command::new(fringe)
+        .arg("gateway")
+        .arg("--config")
+        .arg(dir.join("site.toml"))
+        .arg("--json")
+        .arg("--duration-s")
+        .arg(total.as_secs().to_string())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .context("starting fringe gateway")?;
+    let pid = child.id();
+    let stdout = child.stdout.take().context("stdout")?;
+    let reader = std::thread::spawn(move || {
+        let mut s = String::new();
+        let _ = std::io::Read::read_to_string(&mut std::io::BufReader::new(stdout), &mut s);
+        s
+    });
+    let t0 = Instant::now();
+    std::thread::sleep(WARMUP);
+    let c0 = cpu_s(pid)?;
+    let w0 = Instant::now();
+    std::thread::sleep(Duration::from_secs(seconds));
+    let c1 = cpu_s(pid)?;
+    let elapsed = w0.elapsed().as_secs_f64();
+    let rss = status_kb(pid, "VmRSS:");
+    let hwm = status_kb(pid, "VmHWM:");
+    let status = child.wait()?;
+    let out = reader.join().unwrap_or_default();
+    if !status.success() {
+        bail!(
+            "fringe gateway with {n} devices failed ({status}) after {:?}",
+            t0.elapsed()
+        );
+    }
+    let committed = out
+        .lines()
+        .filter_map(|l| serde_json::from_str::<serde_json::Value>(l).ok())
+        .find(|v| v["type"] == "summary")
+        .and_then(|v| v["committed"].as_u64())
+        .unwrap_or(0);
+
+    let o = Command::new(sims_alone)
+        .arg(dir.join("scenarios/d0000.toml"))
+        .arg(n.to_string())
+        .arg(seconds.to_string())
+        .output()
+        .context("starting sims_alone")?;
+    if !o.status.success() {
+        bail!("sims_alone: {}", String::from_utf8_lossy(&o.stderr));
+    }
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).context("sims_alone JSON")?;
+    let _ = std::fs::remove_dir_all(&dir);
+    Ok(Figures {
+        n,
+        cpu_share: (c1 - c0) / elapsed,
+        rss_mb: rss as f64 / 1024.0,
+        hwm_mb: hwm as f64 / 1024.0,
+        committed,
+        sims_share: v["cpu_share"].as_f64().unwrap_or(f64::NAN),
+        sims_rss_mb: v["rss_end_kb"].as_f64().unwrap_or(f64::NAN) / 1024.0,
+    })
+}
+
+/// Runs the benchmark; `args` are device counts and `--seconds S`.
+pub fn run(root: &Path, args: &[String]) -> Result<()> {
+    let mut counts = Vec::new();
+    let mut seconds = 60;
+    let mut it = args.iter();
+    while let Some(a) = it.next() {
+        if a == "--seconds" {
+            seconds = it
+                .next()
+                .and_then(|s| s.parse().ok())
+                .context("--seconds needs a number")?;
+        } else {
+            let n: usize = a
+                .parse()
+                .with_context(|| format!("not a device count: {a}"))?;
+            if !(1..=247).contains(&n) {
+                bail!("{n} devices: a site serves 1 to 247 (one Modbus unit id each)");
+            }
+            counts.push(n);
+        }
+    }
+    if counts.is_empty() {
+        counts = vec![10, 100, 247];
+    }
+    crate::run(crate::cargo().args([
+        "build",
+        "--release",
+        "-p",
+        "fringe-host",
+        "--bin",
+        "fringe",
+    ]))?;
+    crate::run(crate::cargo().args([
+        "build",
+        "--release",
+        "-p",
+        "fringe-sim",
+        "--example",
+        "sims_alone",
+    ]))?;
+    let t = target_dir(root).join("release");
+    let mut rows = Vec::new();
+    for n in counts {
+        eprintln!("xtask: gateway with {n} simulated devices, {WARMUP:?} warm-up + {seconds} s");
+        rows.push(one(
+            root,
+            &t.join("fringe"),
+            &t.join("examples/sims_alone"),
+            n,
+            seconds,
+        )?);
+    }
+    println!("| devices | gateway process CPU (cores) | of which the simulated devices | gateway alone per device | RSS / peak (MB) | simulated devices' RSS (MB) | readings committed |");
+    println!("|---:|---:|---:|---:|---:|---:|---:|");
+    for f in rows {
+        let own = f.cpu_share - f.sims_share;
+        println!(
+            "| {} | {:.3} | {:.3} | {:.2} ms/s ({:.4} cores) | {:.1} / {:.1} | {:.1} | {} |",
+            f.n,
+            f.cpu_share,
+            f.sims_share,
+            own / f.n as f64 * 1000.0,
+            own / f.n as f64,
+            f.rss_mb,
+            f.hwm_mb,
+            f.sims_rss_mb,
+            f.committed
+        );
+    }
+    Ok(())
+}
