@@ -483,3 +483,184 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
     }
     web.stop();
 }
+
+/// Sparkplug B from `fringe gateway` itself: a site file with an `[mqtt]`
+/// section (a real mosquitto, the paho-mqtt subscriber decoding with the
+/// Tahu schema), two `fringe sim` devices on pseudo-terminals (they go on
+/// measuring while no gateway runs). The gateway runs, stops on SIGTERM
+/// (NDEATH), the devices log meanwhile, a second gateway backfills and
+/// stops again. Then, per device: every reading the store holds was
+/// published or is still in the MQTT buffer beside the store (kept for the
+/// next start), every reading published is in the store, the same reading
+/// is published twice at most when it was in flight at a stop (QoS 1:
+/// at least once), and each session's DBIRTH comes before its readings.
+#[test]
+#[ignore = "needs FRINGE_PYTHON (the venv) and mosquitto: `cargo xtask test` runs it"]
+fn the_gateway_publishes_every_stored_reading_over_sparkplug_across_a_restart() {
+    use fringe_tests::servers::Mosquitto;
+    use fringe_tests::{committed_readings, fringe, poll_until, ScenarioSpec, Sim, DEADLINE};
+    use std::collections::{BTreeMap, BTreeSet};
+
+    let seed = fringe_tests::seed(41);
+    let broker = Mosquitto::start();
+    let collector = Collector::start(broker.port, "spBv1.0/#");
+    let serials = ["PLT-M-0001", "PLT-M-0002"];
+    let sims: Vec<Sim> = serials
+        .iter()
+        .enumerate()
+        .map(|(i, s)| Sim::start(&ScenarioSpec::clean(s, seed + i as u64)))
+        .collect();
+    let dir = tempfile::tempdir().expect("dir");
+    let db = dir.path().join("site.db");
+    let mut site = format!(
+        "name = \"MQTT test site\"\nstore = \"site.db\"\n\n[mqtt]\nbroker = \"127.0.0.1:{}\"\n\
+         client_id = \"fringe-gw-test\"\ngroup = \"plant-a\"\nnode = \"gw-1\"\n\n",
+        broker.port
+    );
+    for (i, s) in sims.iter().enumerate() {
+        site.push_str(&format!(
+            "[[device]]\nunit = {}\nport = \"{}\"\n\n",
+            i + 1,
+            s.port_str()
+        ));
+    }
+    let site_file = dir.path().join("site.toml");
+    std::fs::write(&site_file, site).expect("site");
+    let start = |name: &str| {
+        fringe(&["gateway", "--config", site_file.to_str().expect("utf-8")])
+            .stdout(std::fs::File::create(dir.path().join(format!("{name}.out"))).expect("out"))
+            .stderr(std::fs::File::create(dir.path().join(format!("{name}.err"))).expect("err"))
+            .spawn()
+            .expect("start fringe gateway")
+    };
+    let stop = |mut child: std::process::Child, name: &str| {
+        let ok = Command::new("kill")
+            .args(["-TERM", &child.id().to_string()])
+            .status()
+            .expect("kill");
+        assert!(ok.success());
+        let mut status = None;
+        poll_until(
+            DEADLINE,
+            || format!("seed {seed}: gateway {name} did not stop"),
+            || {
+                status = child.try_wait().expect("wait");
+                status.is_some()
+            },
+        );
+        let err =
+            std::fs::read_to_string(dir.path().join(format!("{name}.err"))).unwrap_or_default();
+        assert_eq!(
+            status.and_then(|s| s.code()),
+            Some(0),
+            "seed {seed}: {name}: {err}"
+        );
+    };
+    let published = |msgs: &[Value], d: &str| -> Vec<(u64, u64)> {
+        msgs.iter()
+            .filter(|m| m["topic"] == format!("spBv1.0/plant-a/DDATA/gw-1/{d}"))
+            .filter_map(|m| {
+                Some((
+                    m["metrics"]["boot"]["value"].as_u64()?,
+                    m["metrics"]["counter"]["value"].as_u64()?,
+                ))
+            })
+            .collect()
+    };
+    let deaths = |m: &[Value]| {
+        m.iter()
+            .filter(|m| m["topic"] == "spBv1.0/plant-a/NDEATH/gw-1")
+            .count()
+    };
+
+    let first = start("first");
+    collector.wait("20 readings of each device", |m| {
+        serials.iter().all(|d| published(m, d).len() >= 20)
+    });
+    stop(first, "first");
+    collector.wait("the first NDEATH", |m| deaths(m) >= 1);
+    let before: Vec<usize> = serials.iter().map(|s| committed_readings(&db, s)).collect();
+    // The devices log on their own meanwhile (100 readings a second).
+    std::thread::sleep(Duration::from_millis(500));
+    let second = start("second");
+    poll_until(
+        DEADLINE,
+        || format!("seed {seed}: the second gateway did not catch up"),
+        || {
+            serials
+                .iter()
+                .zip(&before)
+                .all(|(s, n)| committed_readings(&db, s) >= n + 100)
+        },
+    );
+    stop(second, "second");
+    collector.wait("the second NDEATH", |m| deaths(m) >= 2);
+    // What the broker had not acknowledged at the stop stays buffered.
+    let outbox =
+        fringe_gateway::outbox::Outbox::open(&fringe_gateway::mqtt::outbox_path_beside(&db))
+            .expect("the MQTT buffer beside the store");
+    let mut buffered: BTreeMap<String, BTreeSet<(u64, u64)>> = BTreeMap::new();
+    for row in outbox.next(0, 100_000).expect("buffer rows") {
+        if let fringe_gateway::outbox::Item::Reading { device, json } = row.item {
+            let r: Reading = serde_json::from_str(&json).expect("buffered reading");
+            buffered
+                .entry(device)
+                .or_default()
+                .insert((u64::from(r.seq.boot), u64::from(r.seq.counter)));
+        }
+    }
+
+    let msgs = collector.messages();
+    for (d, b) in serials.iter().zip(&before) {
+        let d: &str = d;
+        let stored: BTreeSet<(u64, u64)> = fringe_tests::stored_readings(&db, d)
+            .iter()
+            .map(|r| (u64::from(r.seq.boot), u64::from(r.seq.counter)))
+            .collect();
+        let sent = published(&msgs, d);
+        let sent_set: BTreeSet<(u64, u64)> = sent.iter().copied().collect();
+        let held = buffered.get(d).cloned().unwrap_or_default();
+        let missing: Vec<_> = stored
+            .iter()
+            .filter(|k| !sent_set.contains(*k) && !held.contains(*k))
+            .collect();
+        assert!(
+            missing.is_empty(),
+            "seed {seed}, {d}: stored, never published nor buffered: {missing:?}"
+        );
+        let invented: Vec<_> = sent_set.difference(&stored).collect();
+        assert!(
+            invented.is_empty(),
+            "seed {seed}, {d}: published, not stored: {invented:?}"
+        );
+        let twice = sent.len() - sent_set.len();
+        assert!(
+            twice <= 32,
+            "seed {seed}, {d}: {twice} readings published twice"
+        );
+        assert!(
+            stored.len() >= b + 100,
+            "seed {seed}, {d}: {} stored",
+            stored.len()
+        );
+        // A DBIRTH before the first reading of each session.
+        let topic_birth = format!("spBv1.0/plant-a/DBIRTH/gw-1/{d}");
+        let topic_data = format!("spBv1.0/plant-a/DDATA/gw-1/{d}");
+        let mut born = false;
+        for m in &msgs {
+            if m["topic"] == "spBv1.0/plant-a/NDEATH/gw-1" {
+                born = false;
+            } else if m["topic"] == topic_birth.as_str() {
+                born = true;
+            } else if m["topic"] == topic_data.as_str() {
+                assert!(born, "seed {seed}, {d}: DDATA before its DBIRTH: {m}");
+            }
+        }
+        eprintln!(
+            "{d}: {} stored, {} published ({twice} twice), {} still buffered",
+            stored.len(),
+            sent.len(),
+            held.len()
+        );
+    }
+}

@@ -1,6 +1,6 @@
-//! `cargo xtask bench-gateway [N ...] [--seconds S]`: what `fringe gateway`
-//! costs per device at one reading a second (a benchmark, not a test; Linux,
-//! figures in BENCHMARKS.md).
+//! `cargo xtask bench-gateway [N ...] [--seconds S] [--pty]`: what
+//! `fringe gateway` costs per device at one reading a second (a benchmark,
+//! not a test; Linux, figures in BENCHMARKS.md).
 //!
 //! For each device count N (default 10, 100, 247: a site serves at most 247
 //! devices, the Modbus unit ids): a site of N in-process simulated devices
@@ -10,8 +10,13 @@
 //! 20 s (handshakes, the first batches) and then S seconds (default 60)
 //! over which its CPU time (user + system, /proc/PID/stat) and resident
 //! memory (VmRSS, VmHWM) are read. Then the same N simulated devices alone
-//! (`fringe-sim`'s `sims_alone` example, pumped once a second) give what
-//! the simulation itself costs, and the difference is the gateway's.
+//! (`fringe-sim`'s `sims_alone` example, pumped every 10 ms as the
+//! in-process port pumps them) give what the simulation itself costs, and
+//! the difference is the gateway's.
+//!
+//! With `--pty` the devices are N `fringe sim` processes on
+//! pseudo-terminals instead, as serial ports are on a plant: the gateway's
+//! process then holds no simulation, and its CPU and memory are its own.
 
 use anyhow::{bail, Context, Result};
 use std::path::{Path, PathBuf};
@@ -60,7 +65,26 @@ struct Figures {
     sims_rss_mb: f64,
 }
 
-fn one(root: &Path, fringe: &Path, sims_alone: &Path, n: usize, seconds: u64) -> Result<Figures> {
+/// `fringe sim` processes, killed when dropped.
+struct Sims(Vec<std::process::Child>);
+
+impl Drop for Sims {
+    fn drop(&mut self) {
+        for c in &mut self.0 {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
+}
+
+fn one(
+    root: &Path,
+    fringe: &Path,
+    sims_alone: &Path,
+    n: usize,
+    seconds: u64,
+    pty: bool,
+) -> Result<Figures> {
     let dir = std::env::temp_dir().join(format!("fringe-bench-gateway-{}-{n}", std::process::id()));
     let _ = std::fs::remove_dir_all(&dir);
     std::fs::create_dir_all(dir.join("scenarios"))?;
@@ -72,6 +96,7 @@ fn one(root: &Path, fringe: &Path, sims_alone: &Path, n: usize, seconds: u64) ->
         free_port()?,
         free_port()?
     );
+    let mut sims = Sims(Vec::new());
     for i in 0..n {
         let sc = base
             .replace(
@@ -79,11 +104,39 @@ fn one(root: &Path, fringe: &Path, sims_alone: &Path, n: usize, seconds: u64) ->
                 &format!("serial = \"BENCH-{i:04}\""),
             )
             .replace("seed = 103", &format!("seed = {}", 1000 + i));
-        std::fs::write(dir.join(format!("scenarios/d{i:04}.toml")), sc)?;
+        let file = dir.join(format!("scenarios/d{i:04}.toml"));
+        std::fs::write(&file, sc)?;
+        let port = if pty {
+            let link = dir.join(format!("d{i:04}.pty"));
+            sims.0.push(
+                Command::new(fringe)
+                    .arg("sim")
+                    .arg("--scenario")
+                    .arg(&file)
+                    .arg("--link")
+                    .arg(&link)
+                    .stdout(Stdio::null())
+                    .stderr(Stdio::null())
+                    .spawn()
+                    .context("starting fringe sim")?,
+            );
+            link.display().to_string()
+        } else {
+            format!("sim:scenarios/d{i:04}.toml")
+        };
         site.push_str(&format!(
-            "\n[[device]]\nunit = {}\nport = \"sim:scenarios/d{i:04}.toml\"\ntag = \"bench {i}\"\n",
+            "\n[[device]]\nunit = {}\nport = \"{port}\"\ntag = \"bench {i}\"\n",
             i + 1
         ));
+    }
+    if pty {
+        let t = Instant::now();
+        while (0..n).any(|i| !dir.join(format!("d{i:04}.pty")).exists()) {
+            if t.elapsed() > Duration::from_secs(60) {
+                bail!("the simulated devices did not all start within 60 s");
+            }
+            std::thread::sleep(Duration::from_millis(100));
+        }
     }
     std::fs::write(dir.join("site.toml"), site)?;
 
@@ -130,6 +183,19 @@ fn one(root: &Path, fringe: &Path, sims_alone: &Path, n: usize, seconds: u64) ->
         .and_then(|v| v["committed"].as_u64())
         .unwrap_or(0);
 
+    drop(sims);
+    if pty {
+        let _ = std::fs::remove_dir_all(&dir);
+        return Ok(Figures {
+            n,
+            cpu_share: (c1 - c0) / elapsed,
+            rss_mb: rss as f64 / 1024.0,
+            hwm_mb: hwm as f64 / 1024.0,
+            committed,
+            sims_share: 0.0,
+            sims_rss_mb: 0.0,
+        });
+    }
     let o = Command::new(sims_alone)
         .arg(dir.join("scenarios/d0000.toml"))
         .arg(n.to_string())
@@ -156,9 +222,12 @@ fn one(root: &Path, fringe: &Path, sims_alone: &Path, n: usize, seconds: u64) ->
 pub fn run(root: &Path, args: &[String]) -> Result<()> {
     let mut counts = Vec::new();
     let mut seconds = 60;
+    let mut pty = false;
     let mut it = args.iter();
     while let Some(a) = it.next() {
-        if a == "--seconds" {
+        if a == "--pty" {
+            pty = true;
+        } else if a == "--seconds" {
             seconds = it
                 .next()
                 .and_then(|s| s.parse().ok())
@@ -195,13 +264,19 @@ pub fn run(root: &Path, args: &[String]) -> Result<()> {
     let t = target_dir(root).join("release");
     let mut rows = Vec::new();
     for n in counts {
-        eprintln!("xtask: gateway with {n} simulated devices, {WARMUP:?} warm-up + {seconds} s");
+        let how = if pty {
+            "fringe sim processes on ptys"
+        } else {
+            "in-process simulated devices"
+        };
+        eprintln!("xtask: gateway with {n} {how}, {WARMUP:?} warm-up + {seconds} s");
         rows.push(one(
             root,
             &t.join("fringe"),
             &t.join("examples/sims_alone"),
             n,
             seconds,
+            pty,
         )?);
     }
     println!("| devices | gateway process CPU (cores) | of which the simulated devices | gateway alone per device | RSS / peak (MB) | simulated devices' RSS (MB) | readings committed |");

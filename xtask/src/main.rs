@@ -758,7 +758,7 @@ fn main() -> Result<()> {
             eprintln!("  firmware  build the QEMU board binary (firmware/boards/qemu-mps2)");
             eprintln!("  qemu      boot it under QEMU with UART0 and UART1 (Modbus) on ptys and print both");
             eprintln!("  size      flash/RAM of both boards' ELFs; stack high-water and cost per reading (QEMU)");
-            eprintln!("  bench-gateway [N ...] [--seconds S]  fringe gateway's CPU and memory per simulated device (Linux)");
+            eprintln!("  bench-gateway [N ...] [--seconds S] [--pty]  fringe gateway's CPU and memory per simulated device (Linux)");
             bail!("unknown or missing xtask command")
         }
     }

@@ -3,9 +3,10 @@
 //! without them: `cargo run --release -p fringe-sim --example sims_alone --
 //! SCENARIO N SECONDS`.
 //!
-//! Boots N devices of SCENARIO (serials numbered), lets each run to now
-//! once a second, as a gateway's session would pump it, for SECONDS, and
-//! prints one JSON line: the process's CPU seconds (user + system, from
+//! Boots N devices of SCENARIO (serials numbered) and pumps each every
+//! [`fringe_sim::live::POLL_EVERY`] (10 ms), as the in-process port does
+//! while a gateway's session waits for bytes, for SECONDS; prints one JSON
+//! line: the process's CPU seconds (user + system, from
 //! /proc/self/stat) and resident memory (VmRSS, VmHWM from
 //! /proc/self/status) before and after. Linux only.
 
@@ -61,7 +62,7 @@ fn main() {
         for s in &sims {
             s.run_alone();
         }
-        next += Duration::from_secs(1);
+        next += fringe_sim::live::POLL_EVERY;
         if let Some(d) = next.checked_duration_since(Instant::now()) {
             std::thread::sleep(d);
         }
