@@ -602,7 +602,7 @@ fn the_gateway_publishes_every_stored_reading_over_sparkplug_across_a_restart() 
     let mut buffered: BTreeMap<String, BTreeSet<(u64, u64)>> = BTreeMap::new();
     for row in outbox.next(0, 100_000).expect("buffer rows") {
         if let fringe_gateway::outbox::Item::Reading { device, json } = row.item {
-            let r: Reading = serde_json::from_str(&json).expect("buffered reading");
+            let r = fringe_gateway::mqtt::reading_from_body(&json).expect("buffered reading");
             buffered
                 .entry(device)
                 .or_default()

@@ -72,8 +72,10 @@ pub struct MqttStats {
     pub sessions: u64,
     /// Messages acknowledged by the broker.
     pub acknowledged: u64,
-    /// The last connection error, in words.
+    /// The last connection error (or dropped row), in words.
     pub last_error: Option<String>,
+    /// Buffered rows this version could not read, dropped (none expected).
+    pub dropped: u64,
 }
 
 /// The running publisher.
@@ -138,7 +140,7 @@ impl Publisher {
     /// # Errors
     /// When the buffer cannot be written (the reading is then only in the store).
     pub fn reading(&self, device: &str, r: &Reading) -> Result<(), OutboxError> {
-        let json = serde_json::to_string(r).unwrap_or_default();
+        let json = reading_body(r);
         self.push(&Item::Reading {
             device: device.to_string(),
             json,
@@ -459,10 +461,19 @@ impl Worker {
                 }
                 let seq = s.next_seq();
                 let payload = match &row.item {
-                    Item::Reading { json, .. } => match serde_json::from_str::<Reading>(json) {
+                    Item::Reading { json, .. } => match reading_from_body(json) {
                         Ok(r) => sparkplug::device_data(&r, r.time_ms, historical, seq, now_ms()),
-                        Err(_) => {
-                            // A row this version cannot read: drop it rather than block the buffer.
+                        Err(e) => {
+                            // A row this version cannot read: dropped rather
+                            // than block the buffer, counted and said.
+                            let why = format!(
+                                "dropped buffered reading {} of {device}, unreadable: {e}",
+                                row.id
+                            );
+                            self.stat(|s| {
+                                s.dropped += 1;
+                                s.last_error = Some(why);
+                            });
                             return self.outbox.done(row.id).map_err(|e| e.to_string());
                         }
                     },
@@ -557,4 +568,147 @@ pub fn outbox_path_beside(store: &Path) -> PathBuf {
         .unwrap_or_else(|| "fringe".into());
     name.push_str(".mqtt-outbox");
     store.with_file_name(name)
+}
+
+/// A reading as the MQTT buffer keeps it (and as the plain JSON topic
+/// carries it): the reading's own JSON, except that every float is an
+/// `Option` (a value that is not a number, such as the permittivity of an
+/// uncalibrated device or the temperature of a failed sensor, is `null`
+/// and reads back as NaN). `serde_json` writes NaN as `null`, which an
+/// `f32` field cannot read back: the reading's own `Deserialize` refused
+/// such rows, and the publisher dropped them.
+#[derive(serde::Serialize, serde::Deserialize)]
+struct BufferedReading {
+    seq: fringe_protocol::Seq,
+    time_ms: u64,
+    channels: [BufferedChannel; fringe_protocol::N_FREQ],
+    temperature_c: Option<f32>,
+    moisture_pct: Option<f32>,
+    uncertainty_pct: Option<f32>,
+    flags: fringe_protocol::Flags,
+    cell_cal: fringe_protocol::CalId,
+    product_cal: fringe_protocol::CalId,
+}
+
+#[derive(serde::Serialize, serde::Deserialize)]
+struct BufferedChannel {
+    g_s: Option<f32>,
+    b_s: Option<f32>,
+    eps_re: Option<f32>,
+    eps_im: Option<f32>,
+}
+
+fn finite(x: f32) -> Option<f32> {
+    x.is_finite().then_some(x)
+}
+
+/// The buffer's text of `r` ([`BufferedReading`]).
+pub fn reading_body(r: &Reading) -> String {
+    let ch = |c: &fringe_protocol::ChannelValue| BufferedChannel {
+        g_s: finite(c.g_s),
+        b_s: finite(c.b_s),
+        eps_re: finite(c.eps_re),
+        eps_im: finite(c.eps_im),
+    };
+    let b = BufferedReading {
+        seq: r.seq,
+        time_ms: r.time_ms,
+        channels: [ch(&r.channels[0]), ch(&r.channels[1])],
+        temperature_c: finite(r.temperature_c),
+        moisture_pct: r.moisture_pct.and_then(finite),
+        uncertainty_pct: finite(r.uncertainty_pct),
+        flags: r.flags,
+        cell_cal: r.cell_cal,
+        product_cal: r.product_cal,
+    };
+    serde_json::to_string(&b).unwrap_or_default()
+}
+
+/// The reading of a buffer text written by [`reading_body`] (or by an
+/// earlier version, which wrote the reading's own JSON).
+///
+/// # Errors
+/// Text that is not such a reading.
+pub fn reading_from_body(text: &str) -> Result<Reading, serde_json::Error> {
+    let b: BufferedReading = serde_json::from_str(text)?;
+    let nan = |x: Option<f32>| x.unwrap_or(f32::NAN);
+    let ch = |c: &BufferedChannel| fringe_protocol::ChannelValue {
+        g_s: nan(c.g_s),
+        b_s: nan(c.b_s),
+        eps_re: nan(c.eps_re),
+        eps_im: nan(c.eps_im),
+    };
+    Ok(Reading {
+        seq: b.seq,
+        time_ms: b.time_ms,
+        channels: [ch(&b.channels[0]), ch(&b.channels[1])],
+        temperature_c: nan(b.temperature_c),
+        moisture_pct: b.moisture_pct,
+        uncertainty_pct: nan(b.uncertainty_pct),
+        flags: b.flags,
+        cell_cal: b.cell_cal,
+        product_cal: b.product_cal,
+    })
+}
+
+#[cfg(test)]
+mod body_tests {
+    use super::*;
+    use fringe_protocol::{CalId, ChannelValue, Flags, Seq};
+
+    /// Regression: a reading with a float that is not a number (an
+    /// uncalibrated device's permittivity, a failed temperature sensor's
+    /// temperature) was buffered as JSON with `null` there, could not be
+    /// read back, and was dropped instead of published (found by the
+    /// gateway's MQTT test with uncalibrated simulated devices).
+    #[test]
+    fn a_reading_with_nan_values_survives_the_buffer() {
+        let r = Reading {
+            seq: Seq {
+                boot: 3,
+                counter: 77,
+            },
+            time_ms: 1_796_000_000_123,
+            channels: [
+                ChannelValue {
+                    g_s: 1.5e-6,
+                    b_s: 2.5e-4,
+                    eps_re: f32::NAN,
+                    eps_im: f32::NAN,
+                },
+                ChannelValue {
+                    g_s: f32::NAN,
+                    b_s: 3.25e-4,
+                    eps_re: 6.5,
+                    eps_im: 0.8125,
+                },
+            ],
+            temperature_c: f32::NAN,
+            moisture_pct: None,
+            uncertainty_pct: f32::NAN,
+            flags: Flags::NOT_CALIBRATED | Flags::TEMP_SENSOR_FAULT,
+            cell_cal: CalId::NONE,
+            product_cal: CalId([1, 2, 3, 4]),
+        };
+        // The reading's own JSON does not come back (the defect).
+        let own = serde_json::to_string(&r).unwrap();
+        assert!(serde_json::from_str::<Reading>(&own).is_err());
+        let back = reading_from_body(&reading_body(&r)).expect("read back");
+        // Same bits where a value exists, NaN where none does.
+        assert_eq!(format!("{back:?}"), format!("{r:?}"));
+        // And a reading with every value, as earlier versions buffered it,
+        // still reads (rows left in a buffer by an older gateway).
+        let full = Reading {
+            temperature_c: 21.5,
+            uncertainty_pct: 0.25,
+            moisture_pct: Some(14.25),
+            channels: [ChannelValue {
+                g_s: 1.25e-6,
+                ..r.channels[1]
+            }; 2],
+            ..r
+        };
+        let old = serde_json::to_string(&full).unwrap();
+        assert_eq!(reading_from_body(&old).unwrap(), full);
+    }
 }

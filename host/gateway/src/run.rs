@@ -790,6 +790,17 @@ impl<S: RecordStore> Worker<S> {
                     s.flags = r.flags.names().map(str::to_string).collect();
                 });
             }
+            Note::Logged(r) => {
+                // Read back from the device log: published (in the log's
+                // order, before the stream resumes) so that the plant's
+                // MQTT consumers get every reading the store gets; not put
+                // on the live table and Modbus, which show the newest.
+                if let (Some(p), Some(s)) = (&self.publisher, serial) {
+                    if let Err(e) = p.reading(s, r) {
+                        self.say(Some(s), Level::Error, format!("MQTT buffer: {e}"));
+                    }
+                }
+            }
             Note::Clock(c) => {
                 let was = match c.before {
                     ClockCheck::Unset { .. } => "was not set".to_string(),

@@ -6,7 +6,7 @@
 use std::time::Instant;
 
 use fringe_link::{Link, LinkError};
-use fringe_protocol::{Request, Response, Seq, EVENT_CHUNK, LOG_CHUNK};
+use fringe_protocol::{Reading, Request, Response, Seq, EVENT_CHUNK, LOG_CHUNK};
 use fringe_store::{Batcher, InsertStats, RecordStore, Source};
 
 use crate::error::LineError;
@@ -74,9 +74,9 @@ pub struct Backfill {
 
 /// Reads the device log from `from` (inclusive) up to `until` (exclusive;
 /// `None` = to its end) into `batcher`, committing whenever a batch falls
-/// due. `progress` gets the count received so far and the last sequence
-/// queued, after every chunk (so a caller keeps the progress of a backfill
-/// that a link error cut short).
+/// due. `each` gets every reading as it is queued; `progress` the count
+/// received so far and the last sequence queued, after every chunk (so a
+/// caller keeps the progress of a backfill that a link error cut short).
 ///
 /// # Errors
 /// Link errors (the readings already queued stay in the batcher) and store errors.
@@ -86,6 +86,7 @@ pub fn backfill(
     batcher: &mut Batcher,
     from: Seq,
     until: Option<Seq>,
+    each: &mut dyn FnMut(&Reading),
     progress: &mut dyn FnMut(u64, Option<Seq>),
 ) -> Result<Backfill, LineError> {
     let mut out = Backfill::default();
@@ -127,6 +128,7 @@ pub fn backfill(
                 continue;
             }
             batcher.push(*r, Source::Log, now);
+            each(r);
             out.received += 1;
             out.last = Some(r.seq);
         }
@@ -144,8 +146,9 @@ pub fn backfill(
 
 /// Reads every part of the device log the store lacks for `serial` (before,
 /// between and after the runs it holds), up to `until` (exclusive; `None`:
-/// the end of the log), through `batcher`. `progress` gets the count
-/// received so far and the last sequence queued.
+/// the end of the log), through `batcher`. `each` gets every reading as
+/// it is queued; `progress` the count received so far and the last
+/// sequence queued.
 ///
 /// # Errors
 /// As [`backfill`]; what was queued stays in the batcher.
@@ -155,6 +158,7 @@ pub fn backfill_missing(
     batcher: &mut Batcher,
     serial: &str,
     until: Option<Seq>,
+    each: &mut dyn FnMut(&Reading),
     progress: &mut dyn FnMut(u64, Option<Seq>),
 ) -> Result<Backfill, LineError> {
     // What is still waiting in the batcher counts as stored.
@@ -164,7 +168,7 @@ pub fn backfill_missing(
     for r in plan_backfill(&runs, until) {
         let base = total.received;
         let last = total.last;
-        let b = backfill(link, store, batcher, r.from, r.until, &mut |n, l| {
+        let b = backfill(link, store, batcher, r.from, r.until, each, &mut |n, l| {
             progress(base + n, l.or(last))
         })?;
         total.received += b.received;

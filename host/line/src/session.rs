@@ -79,6 +79,10 @@ pub enum Note<'a> {
     /// A streamed reading was queued for the store (not told for one
     /// already stored).
     Reading(&'a Reading),
+    /// A reading read back from the device log (one the store lacked) was
+    /// queued for the store: taken while no host listened or the link was
+    /// down. Told in the log's order, before the stream resumes.
+    Logged(&'a Reading),
     /// The link failed: committing and reconnecting.
     Reconnecting(&'a LineError),
     /// The device answers again.
@@ -288,6 +292,7 @@ impl Session {
             &mut self.batcher,
             &serial,
             Some(now_at),
+            &mut |r| (ctx.tell)(Note::Logged(r)),
             &mut |_, _| {},
         );
         self.flush(store)?;
@@ -442,6 +447,7 @@ impl Session {
             &mut self.batcher,
             from,
             until,
+            &mut |r| (ctx.tell)(Note::Logged(r)),
             &mut |_, last| reached = last,
         );
         // Keep what a cut-short backfill got: the next one starts after it.
@@ -560,9 +566,15 @@ pub fn pull(
     let held = store.count_between(&serial, status.log_first, status.next_seq)?;
     let expected = u64::from(status.log_len).saturating_sub(held);
     let mut batcher = Batcher::new(&serial);
-    let b = backfill_missing(link, store, &mut batcher, &serial, None, &mut |n, _| {
-        progress(n, expected)
-    });
+    let b = backfill_missing(
+        link,
+        store,
+        &mut batcher,
+        &serial,
+        None,
+        &mut |r| (ctx.tell)(Note::Logged(r)),
+        &mut |n, _| progress(n, expected),
+    );
     // Commit what came even if the link failed half way.
     let flushed = batcher.flush(store).map_err(LineError::Commit);
     let b = b?;
