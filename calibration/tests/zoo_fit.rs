@@ -61,6 +61,26 @@ fn every_fit_finishes_or_names_its_refusal() {
                 };
                 let (ridge, pls) = (mv(MvMethod::Ridge), mv(MvMethod::Pls));
                 if let Ok(r) = &relax {
+                    // The model written is the one cross-validated: on its own
+                    // samples it fits at least about as well as the folds
+                    // predict them (a law fitted on all samples stuck in a
+                    // worse local minimum than every fold's broke this:
+                    // relaxation_law_fit_leaves_the_local_minimum_of_its_first_start).
+                    // Where the spectra determine the law so poorly that the
+                    // fit on all samples still lands elsewhere, it says so
+                    // and cannot be chosen.
+                    let (cal, cv) = (r.stats.calibration.sep, r.stats.cross_validation.sep);
+                    let flagged = r
+                        .notes
+                        .iter()
+                        .any(|n| n.contains("exceeds its cross-validated SEP"))
+                        && !ModelComparison::eligible(r);
+                    if cal > 1.1 * cv && !flagged {
+                        failures.push(format!(
+                            "FRINGE_SEED={seed} {} {:?} relaxation: SEP on its own samples {cal:.3} above its cross-validated {cv:.3}, unflagged",
+                            f.name, pair
+                        ));
+                    }
                     println!(
                         "FRINGE_SEED={seed} {} {:?}: relaxation SEP {:.3} with {} excluded{}",
                         f.name,
@@ -96,12 +116,44 @@ fn every_fit_finishes_or_names_its_refusal() {
     );
 }
 
+/// Regression: on the grain at 5/50 MHz (60 samples, seed 6) the joint law
+/// fit on all samples, started from the best law of an 8-sample probe,
+/// stopped in a local minimum (alpha 0.26, f_r exponent 1.18, cost 130)
+/// while every leave-one-out fold found the product's own law (alpha 0.20,
+/// exponent 0.99, cost about 38). The model written then had an SEP of
+/// 2.0 % on its own samples, the cross-validation (which refits the law in
+/// every fold) said 0.24 %, and the comparison chose it: 2.6 % SEP and 31 %
+/// interval coverage on fresh samples. The joint fit now starts from the
+/// three best distinct probe laws. (Fixed data: the case is one seed of the
+/// zoo; the property test above checks the same invariant on FRINGE_SEED.)
+#[test]
+fn relaxation_law_fit_leaves_the_local_minimum_of_its_first_start() {
+    let f = Family::grain();
+    let train = f.samples(&Draw::new(60, FREQ_PAIRS[2]), 6);
+    let fit = fit_relaxation(&train, &relax_opts(&f)).expect("grain is the model's own form");
+    let (cal, cv) = (fit.stats.calibration.sep, fit.stats.cross_validation.sep);
+    assert!(
+        cal < 0.4 && cal <= cv,
+        "SEP on its own samples {cal:.3}, cross-validated {cv:.3}"
+    );
+    let fringe_calibration::product::ProductModel::Relaxation(m) = &fit.model else {
+        panic!("not a relaxation model");
+    };
+    // The synthetic grain's own Cole-Cole alpha (fit::zoo, invented constant).
+    let alpha = f.interfacial.expect("grain has one").alpha;
+    assert!(
+        (m.law.alpha - alpha).abs() < 0.03,
+        "law alpha {} where the grain's is {alpha}",
+        m.law.alpha
+    );
+}
+
 #[path = "common/baseline.rs"]
 mod baseline;
 
 use baseline::Baseline;
 use fringe_calibration::fit::product::{
-    compare_models, Candidate, CompareOptions, ProductFit, Sample,
+    compare_models, Candidate, CompareOptions, ModelComparison, ProductFit, Sample,
 };
 use fringe_calibration::stats::Folds;
 

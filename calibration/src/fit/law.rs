@@ -39,6 +39,14 @@ pub(crate) fn law_of(theta: &Theta, sigma_ref_s_m: f64, t_ref_c: f64) -> Relaxat
     }
 }
 
+/// Whether two laws are so close that a fit started from either ends in
+/// the same local minimum (alpha within 0.03, f_r_ref within 20 %, the
+/// exponent within 0.1; c_T is not compared): used to start the joint fit
+/// from distinct laws only.
+pub(crate) fn same_basin(a: &Theta, b: &Theta) -> bool {
+    (a[0] - b[0]).abs() < 0.03 && (a[1] - b[1]).abs() < 0.2 && (a[2] - b[2]).abs() < 0.1
+}
+
 /// The values [`crate::product::ProductModel::from_params`] accepts.
 pub(crate) fn theta_is_valid(theta: &Theta) -> bool {
     theta.iter().all(|v| v.is_finite())

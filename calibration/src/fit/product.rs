@@ -1283,6 +1283,9 @@ fn relax_features(
         .collect()
 }
 
+/// How many distinct probe laws start the joint law fit on all samples.
+const LAW_STARTS: usize = 3;
+
 /// Both stages on the samples `rows`.
 fn relaxation_core(
     samples: &[Sample],
@@ -1319,42 +1322,65 @@ fn relaxation_core(
     let sigma_ref_s_m = ln_sigma.exp();
     // Start: a small grid of laws (alpha; f_r from a decade below the lower
     // to a decade above the higher frequency), each fitted on about 8
-    // evenly spread samples; the best of those starts the fit on all.
+    // evenly spread samples. The joint fit on all samples has local minima
+    // (e.g. a wider Cole-Cole alpha traded against a steeper f_r(sigma)
+    // law), and the best law on 8 samples need not start it in the best
+    // one on all: the joint fit is run from each of the best
+    // `LAW_STARTS` distinct probe laws and the lowest cost kept.
     let stride = (obs.len() / 8).max(1);
     let probe_obs: Vec<[Observation<f64>; 2]> = obs.iter().step_by(stride).copied().collect();
     let probe_t: Vec<f64> = temps.iter().step_by(stride).copied().collect();
     let (lf0, lf1) = (f[0].ln(), f[1].ln());
-    let mut best: Option<(f64, law::Theta)> = None;
+    let mut probes: Vec<(f64, law::Theta)> = Vec::new();
     for alpha in [0.05, 0.2, 0.4] {
         for k in 0..5 {
             let lfr = lf0 - 2.3 + (lf1 - lf0 + 4.6) * k as f64 / 4.0;
             let start = [alpha, lfr, 1.0, 0.0];
-            let Ok(fit) = law::fit_law(
+            if let Ok(fit) = law::fit_law(
                 &probe_obs,
                 &probe_t,
                 sigma_ref_s_m,
                 t_ref_c,
                 start,
                 opts.fit_fr_temperature,
-            ) else {
-                continue;
-            };
-            if best.as_ref().is_none_or(|(c, _)| fit.cost < *c) {
-                best = Some((fit.cost, fit.theta));
+            ) {
+                if fit.cost.is_finite() {
+                    probes.push((fit.cost, fit.theta));
+                }
             }
         }
     }
-    let theta0 = best.map_or([0.2, (lf0 + lf1) / 2.0, 1.0, 0.0], |b| b.1);
-    let law_fit = law::fit_law(
-        &obs,
-        &temps,
-        sigma_ref_s_m,
-        t_ref_c,
-        theta0,
-        opts.fit_fr_temperature,
-    )
-    .map_err(|e| ProductFitError::LawNotDetermined {
-        reason: match e {
+    probes.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let mut starts: Vec<law::Theta> = Vec::new();
+    for (_, th) in &probes {
+        if starts.len() < LAW_STARTS && !starts.iter().any(|s| law::same_basin(s, th)) {
+            starts.push(*th);
+        }
+    }
+    if starts.is_empty() {
+        starts.push([0.2, (lf0 + lf1) / 2.0, 1.0, 0.0]);
+    }
+    let mut law_fit: Option<law::LawFit> = None;
+    let mut last_err = law::LawError::Singular;
+    for theta0 in starts {
+        match law::fit_law(
+            &obs,
+            &temps,
+            sigma_ref_s_m,
+            t_ref_c,
+            theta0,
+            opts.fit_fr_temperature,
+        ) {
+            Ok(fit) => {
+                if law_fit.as_ref().is_none_or(|b| fit.cost < b.cost) {
+                    law_fit = Some(fit);
+                }
+            }
+            Err(e) => last_err = e,
+        }
+    }
+    let law_fit = law_fit.ok_or(ProductFitError::LawNotDetermined {
+        reason: match last_err {
             law::LawError::Singular => "no step of the joint least squares reduces its cost",
             law::LawError::NotConverged => "the joint least squares found no finite solution",
         },
@@ -1712,6 +1738,12 @@ fn finish_relaxation(
         fit.notes.push(format!(
             "in {} cross-validation fold(s) the relaxation law could not be refitted; only the regression was refitted there",
             fallback.get()
+        ));
+    }
+    if !ModelComparison::validated(&fit) {
+        fit.notes.push(format!(
+            "on its own samples this calibration's SEP ({:.3} %) exceeds its cross-validated SEP ({:.3} %): the law fitted on all samples is another (worse) solution than the folds found, so the cross-validation does not describe it; the spectra determine the law poorly",
+            fit.stats.calibration.sep, fit.stats.cross_validation.sep
         ));
     }
     Ok(fit)
@@ -2155,11 +2187,26 @@ impl ModelComparison {
             .expect("the chosen model has a fit")
     }
 
-    /// Whether a candidate's fit can be chosen: finished, and on every
-    /// sample (a model that left samples out is scored on fewer and is
-    /// listed, not chosen).
+    /// Whether a candidate's fit can be chosen: finished, on every sample
+    /// (a model that left samples out is scored on fewer and is listed, not
+    /// chosen), and [`ModelComparison::validated`].
     pub fn eligible(fit: &ProductFit) -> bool {
-        fit.excluded.is_empty() && fit.stats.cross_validation.sep.is_finite()
+        fit.excluded.is_empty()
+            && fit.stats.cross_validation.sep.is_finite()
+            && Self::validated(fit)
+    }
+
+    /// Whether the cross-validation describes the model written: its SEP on
+    /// its own samples is at most 1.1 times the cross-validated SEP. A
+    /// model refitted in every fold fits its own samples better than the
+    /// folds predict them (least squares: the leave-one-out residual is
+    /// `e_i / (1 - h_ii)`); more than that (10 % allows for a fold's
+    /// nonlinear refit landing a little better than the whole) means the
+    /// fit on all samples found another solution than the folds did (a
+    /// relaxation law in a worse local minimum: its cross-validated SEP
+    /// then says nothing about it).
+    pub fn validated(fit: &ProductFit) -> bool {
+        fit.stats.calibration.sep <= 1.1 * fit.stats.cross_validation.sep
     }
 }
 
