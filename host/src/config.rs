@@ -46,38 +46,7 @@ pub enum ConfigError {
 }
 
 /// Alarm limits shown by `fringe monitor` (a reading outside is marked).
-#[derive(Debug, Clone, Copy, PartialEq, Default, Deserialize, serde::Serialize)]
-#[serde(deny_unknown_fields)]
-pub struct AlarmLimits {
-    /// Low moisture limit, %.
-    pub moisture_low_pct: Option<f32>,
-    /// High moisture limit, %.
-    pub moisture_high_pct: Option<f32>,
-    /// Largest acceptable uncertainty, %.
-    pub uncertainty_max_pct: Option<f32>,
-}
-
-impl AlarmLimits {
-    /// Which limits `moisture_pct` +- `uncertainty_pct` breaks, as words.
-    pub fn check(&self, moisture_pct: Option<f32>, uncertainty_pct: f32) -> Vec<&'static str> {
-        let mut out = Vec::new();
-        if let Some(m) = moisture_pct {
-            if self.moisture_low_pct.is_some_and(|l| m < l) {
-                out.push("LOW");
-            }
-            if self.moisture_high_pct.is_some_and(|h| m > h) {
-                out.push("HIGH");
-            }
-        }
-        if self
-            .uncertainty_max_pct
-            .is_some_and(|u| uncertainty_pct.is_nan() || uncertainty_pct > u)
-        {
-            out.push("UNCERTAIN");
-        }
-        out
-    }
-}
+pub use fringe_quality::limits::AlarmLimits;
 
 /// The line configuration file.
 #[derive(Debug, Clone, PartialEq, Default, Deserialize)]
@@ -117,26 +86,11 @@ impl LineConfig {
                 return Err(invalid("baud", b.to_string(), "must be 300..=4000000"));
             }
         }
-        let a = c.alarm;
-        for (field, v) in [
-            ("alarm.moisture_low_pct", a.moisture_low_pct),
-            ("alarm.moisture_high_pct", a.moisture_high_pct),
-            ("alarm.uncertainty_max_pct", a.uncertainty_max_pct),
-        ] {
-            if let Some(x) = v {
-                if !(0.0..=100.0).contains(&x) {
-                    return Err(invalid(field, x.to_string(), "must be 0..=100 %"));
-                }
-            }
-        }
-        if let (Some(l), Some(h)) = (a.moisture_low_pct, a.moisture_high_pct) {
-            if l >= h {
-                return Err(invalid(
-                    "alarm.moisture_low_pct",
-                    l.to_string(),
-                    "must be below alarm.moisture_high_pct",
-                ));
-            }
+        if let Err(b) = c.alarm.validate() {
+            let rule = b
+                .rule
+                .replace("moisture_high_pct", "alarm.moisture_high_pct");
+            return Err(invalid(&format!("alarm.{}", b.key), b.value, &rule));
         }
         let dir = path.parent();
         for p in [&mut c.db, &mut c.key_file] {

@@ -8,6 +8,7 @@
 //! makes, its `python` part) and fails loudly without it; it is ignored in
 //! a plain `cargo test`.
 
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::Duration;
@@ -171,6 +172,17 @@ fn a_bad_site_file_names_file_line_and_field_and_writes_nothing() {
         (
             text.replace("tag = \"test 0\"", "colour = \"red\""),
             vec!["site.toml:11:", "colour"],
+        ),
+        (
+            text.replace(
+                "tag = \"test 1\"\n",
+                "tag = \"test 1\"\n[device.alarm]\nmoisture_low_pct = 14.0\nmoisture_high_pct = 12.0\n",
+            ),
+            vec![
+                "site.toml:",
+                "device[1].alarm.moisture_low_pct = 14",
+                "must be below device[1].alarm.moisture_high_pct",
+            ],
         ),
     ] {
         std::fs::write(&site, &bad).expect("write");
@@ -396,4 +408,67 @@ fn pymodbus_reads_every_unit_of_a_running_gateway_as_stored() {
     gw.signal("-TERM");
     let (code, err) = gw.wait();
     assert_eq!(code, 0, "{err}");
+}
+
+/// Alarm limits of the site file: the site's `[alarm]` for every device,
+/// a device's own `[device.alarm]` instead; a limit newly broken is said
+/// (stderr), the status lines carry the limits each device's latest reading
+/// breaks. The three devices read 11.0, 12.5 and 14.0 % (their scenarios).
+#[test]
+fn alarm_limits_of_the_site_file_mark_each_device() {
+    let (dir, site, _db) = sim_site();
+    let text = std::fs::read_to_string(&site).expect("site");
+    let text = text
+        .replacen(
+            "[[device]]",
+            "[alarm]\nmoisture_high_pct = 13.0\n\n[[device]]",
+            1,
+        )
+        .replace(
+            "tag = \"test 0\"\n",
+            "tag = \"test 0\"\n[device.alarm]\nmoisture_low_pct = 11.5\n",
+        );
+    std::fs::write(&site, text).expect("site");
+    let gw = Running::start(&site, dir.path(), "gw");
+    let out = dir.path().join("gw.out");
+    let latest = || -> Vec<Value> {
+        let text = std::fs::read_to_string(&out).unwrap_or_default();
+        let mut by_unit: BTreeMap<u64, Value> = BTreeMap::new();
+        for v in text
+            .lines()
+            .filter_map(|l| serde_json::from_str::<Value>(l).ok())
+            .filter(|v| v["type"] == "status" && v["moisture_pct"].is_number())
+        {
+            by_unit.insert(v["unit"].as_u64().unwrap_or(0), v);
+        }
+        by_unit.into_values().collect()
+    };
+    poll_until(
+        DEADLINE,
+        || {
+            format!(
+                "no status line with a reading for each device:\n{}",
+                gw.stderr()
+            )
+        },
+        || latest().len() == 3,
+    );
+    gw.signal("-TERM");
+    let (code, err) = gw.wait();
+    assert_eq!(code, 0, "{err}");
+    let alarms: Vec<Value> = latest().iter().map(|v| v["alarms"].clone()).collect();
+    assert_eq!(
+        alarms,
+        [
+            serde_json::json!(["LOW"]),
+            serde_json::json!([]),
+            serde_json::json!(["HIGH"])
+        ],
+        "{err}"
+    );
+    assert!(err.contains("LOW ALARM: moisture "), "{err}");
+    assert!(err.contains("% below the low limit 11.50 %"), "{err}");
+    assert!(err.contains("% above the high limit 13.00 %"), "{err}");
+    // Each said once, when first broken (the readings stay outside).
+    assert_eq!(err.matches("HIGH ALARM").count(), 1, "{err}");
 }

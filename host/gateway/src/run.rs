@@ -115,6 +115,9 @@ pub struct DeviceStatus {
     pub temperature_c: Option<f32>,
     /// Its quality flags, by name.
     pub flags: Vec<String>,
+    /// The alarm limits of the site file its latest reading breaks
+    /// (`LOW`, `HIGH`, `UNCERTAIN`).
+    pub alarms: Vec<String>,
     /// What the line sessions of this run did (summed over reconnects).
     #[serde(flatten)]
     pub line: Summary,
@@ -130,7 +133,7 @@ pub struct DeviceStatus {
 pub enum Level {
     /// Something that happened (clock set, caught up, reconnected).
     Info,
-    /// A drift alarm.
+    /// A drift alarm, or an alarm limit of the site file newly broken.
     Alarm,
     /// A failure (the device is tried again).
     Error,
@@ -364,6 +367,7 @@ impl Gateway {
                         uncertainty_pct: None,
                         temperature_c: None,
                         flags: Vec::new(),
+                        alarms: Vec::new(),
                         line: Summary::default(),
                         drift_alarms: 0,
                         error: None,
@@ -782,7 +786,52 @@ impl<S: RecordStore> Worker<S> {
                         self.say(Some(s), Level::Error, format!("MQTT buffer: {e}"));
                     }
                 }
+                // The site's alarm limits: a limit newly broken is said,
+                // shown on the live page and published; one no longer
+                // broken is said once.
+                let limits = self.run.spec.alarm;
+                let now: Vec<String> = limits
+                    .check(r.moisture_pct, r.uncertainty_pct)
+                    .into_iter()
+                    .map(str::to_string)
+                    .collect();
+                let before = self
+                    .status
+                    .get(self.index)
+                    .map(|s| s.lock().unwrap_or_else(|e| e.into_inner()).alarms.clone())
+                    .unwrap_or_default();
+                for word in now.iter().filter(|w| !before.contains(w)) {
+                    let text = format!(
+                        "{word} ALARM: {}",
+                        limits.describe(word, r.moisture_pct, r.uncertainty_pct)
+                    );
+                    self.table.alarm(
+                        unit,
+                        AlarmNote {
+                            time_ms: r.time_ms,
+                            text: text.clone(),
+                            advice: "check the line and the product; the limits are the site file's [alarm]".into(),
+                        },
+                    );
+                    if let (Some(p), Some(s)) = (&self.publisher, serial) {
+                        if let Err(e) = p.alarm(s, &text, r.time_ms) {
+                            self.say(Some(s), Level::Error, format!("MQTT buffer: {e}"));
+                        }
+                    }
+                    self.say(serial, Level::Alarm, text);
+                }
+                for word in before.iter().filter(|w| !now.contains(w)) {
+                    let m = r
+                        .moisture_pct
+                        .map_or("--".to_string(), |m| format!("{m:.2}"));
+                    self.say(
+                        serial,
+                        Level::Info,
+                        format!("{word} alarm cleared: moisture {m} %"),
+                    );
+                }
                 self.update(|s| {
+                    s.alarms = now;
                     s.seq = Some(r.seq.to_string());
                     s.moisture_pct = r.moisture_pct;
                     s.uncertainty_pct = r.moisture_pct.map(|_| r.uncertainty_pct);

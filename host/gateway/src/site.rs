@@ -27,12 +27,19 @@
 //! json = false                        # true: plain JSON on {json_prefix}/{device}/reading instead
 //! json_prefix = "fringe"
 //!
+//! [alarm]                             # optional: limits for every device (as a line file's)
+//! moisture_low_pct = 11.0
+//! moisture_high_pct = 14.5
+//! uncertainty_max_pct = 1.0
+//!
 //! [[device]]
 //! unit = 1                            # Modbus unit id 1..=247, one per device
 //! port = "/dev/ttyUSB0"               # a serial port, or "sim:SCENARIO.toml" (a simulated device in process)
 //! baud = 115200
 //! key_file = "fnw-pc-0001.key"        # optional: lets the gateway set the device clock
 //! tag = "pellet cooler outlet"        # optional, for people
+//! [device.alarm]                      # optional: this device's own limits instead of [alarm]
+//! moisture_high_pct = 13.0
 //! ```
 //!
 //! Every error names the file, the line and the field.
@@ -42,6 +49,7 @@ use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
+use fringe_quality::limits::AlarmLimits;
 use serde::Deserialize;
 use toml::Spanned;
 
@@ -111,6 +119,8 @@ struct RawSite {
     #[serde(default)]
     mqtt: Option<RawMqtt>,
     #[serde(default)]
+    alarm: Option<Spanned<AlarmLimits>>,
+    #[serde(default)]
     device: Vec<RawDevice>,
 }
 
@@ -152,6 +162,8 @@ struct RawDevice {
     key_file: Option<String>,
     #[serde(default)]
     tag: Option<String>,
+    #[serde(default)]
+    alarm: Option<Spanned<AlarmLimits>>,
 }
 
 /// Where a device is.
@@ -172,7 +184,7 @@ pub enum DevicePort {
 }
 
 /// One device of the site.
-#[derive(Debug, Clone, PartialEq, Eq)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct DeviceSpec {
     /// Modbus unit id, 1..=247.
     pub unit: u8,
@@ -186,6 +198,8 @@ pub struct DeviceSpec {
     pub tag: String,
     /// The line of its `port` in the site file.
     pub line: usize,
+    /// Its alarm limits: its own `[device.alarm]`, else the site's `[alarm]`.
+    pub alarm: AlarmLimits,
 }
 
 /// MQTT settings.
@@ -458,6 +472,24 @@ impl Site {
                 rule: "a site needs at least one [[device]]".into(),
             });
         }
+        let check_limits = |a: &Spanned<AlarmLimits>, table: &str| {
+            a.get_ref().validate().map_err(|b| {
+                bad(
+                    a.span(),
+                    &format!("{table}.{}", b.key),
+                    b.value,
+                    &b.rule
+                        .replace("moisture_high_pct", &format!("{table}.moisture_high_pct")),
+                )
+            })
+        };
+        let site_alarm = match &raw.alarm {
+            Some(a) => {
+                check_limits(a, "alarm")?;
+                *a.get_ref()
+            }
+            None => AlarmLimits::default(),
+        };
         let mut units: BTreeMap<u8, usize> = BTreeMap::new();
         let mut ports: BTreeMap<String, usize> = BTreeMap::new();
         let mut devices = Vec::new();
@@ -541,6 +573,13 @@ impl Site {
                 key_file: d.key_file.as_deref().map(resolve),
                 tag: d.tag.unwrap_or_default(),
                 line: line_of(d.port.span()),
+                alarm: match &d.alarm {
+                    Some(a) => {
+                        check_limits(a, &format!("device[{i}].alarm"))?;
+                        *a.get_ref()
+                    }
+                    None => site_alarm,
+                },
             });
         }
         Ok(Site {

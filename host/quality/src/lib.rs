@@ -16,6 +16,7 @@
 //!   samples, audit summaries), written to a writer the caller gives;
 //! - [`timefmt`]: times as people read and type them; [`numbers`]: the
 //!   precision rule of every CSV column;
+//! - [`limits`]: alarm limits of a line (moisture band, largest uncertainty);
 //! - [`watch`]: the live drift check of a streaming device (monitor, gateway).
 //!
 //! Nothing here prints to a terminal, parses a command line or exits.
@@ -27,6 +28,7 @@ pub mod audit;
 pub mod cal;
 pub mod drift;
 pub mod export;
+pub mod limits;
 pub mod numbers;
 pub mod plots;
 pub mod product_file;

@@ -393,7 +393,7 @@ fn state_word(s: DeviceState) -> &'static str {
 /// One device as a plain line (`key=value`, for logs and grep).
 fn plain(d: &DeviceStatus) -> String {
     format!(
-        "unit={} serial={} state={} seq={} moisture_pct={} uncertainty_pct={} temperature_c={} flags={} streamed={} backfilled={} stored={} lost={} reconnects={} drift_alarms={}",
+        "unit={} serial={} state={} seq={} moisture_pct={} uncertainty_pct={} temperature_c={} flags={} alarms={} streamed={} backfilled={} stored={} lost={} reconnects={} drift_alarms={}",
         d.unit,
         d.serial.as_deref().unwrap_or("-"),
         state_word(d.state),
@@ -402,6 +402,7 @@ fn plain(d: &DeviceStatus) -> String {
         d.uncertainty_pct.map_or("none".into(), |u| format!("{u:.3}")),
         d.temperature_c.map_or("none".into(), |t| format!("{t:.2}")),
         if d.flags.is_empty() { "ok".into() } else { d.flags.join(",") },
+        if d.alarms.is_empty() { "none".into() } else { d.alarms.join(",") },
         d.line.streamed,
         d.line.backfilled,
         d.line.stored,

@@ -1,0 +1,144 @@
+//! Alarm limits of a line: the moisture band and the largest uncertainty
+//! the plant accepts (`[alarm]` of a line file for `fringe monitor`,
+//! `[alarm]` and `[device.alarm]` of a site file for `fringe gateway`).
+//! A reading outside is marked with the limit's word; the limits are the
+//! plant's own (common practice, no source).
+
+use serde::{Deserialize, Serialize};
+
+/// Alarm limits (every one optional).
+#[derive(Debug, Clone, Copy, PartialEq, Default, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct AlarmLimits {
+    /// Low moisture limit, %.
+    pub moisture_low_pct: Option<f32>,
+    /// High moisture limit, %.
+    pub moisture_high_pct: Option<f32>,
+    /// Largest acceptable uncertainty, %.
+    pub uncertainty_max_pct: Option<f32>,
+}
+
+/// A limit that cannot be used: its key, its value, the rule.
+#[derive(Debug, Clone, PartialEq)]
+pub struct BadLimit {
+    /// The key (`moisture_low_pct`, ...).
+    pub key: &'static str,
+    /// The value as written.
+    pub value: String,
+    /// What it must be.
+    pub rule: &'static str,
+}
+
+impl AlarmLimits {
+    /// Which limits `moisture_pct` +- `uncertainty_pct` breaks, as words
+    /// (`LOW`, `HIGH`, `UNCERTAIN`).
+    pub fn check(&self, moisture_pct: Option<f32>, uncertainty_pct: f32) -> Vec<&'static str> {
+        let mut out = Vec::new();
+        if let Some(m) = moisture_pct {
+            if self.moisture_low_pct.is_some_and(|l| m < l) {
+                out.push("LOW");
+            }
+            if self.moisture_high_pct.is_some_and(|h| m > h) {
+                out.push("HIGH");
+            }
+        }
+        if self
+            .uncertainty_max_pct
+            .is_some_and(|u| uncertainty_pct.is_nan() || uncertainty_pct > u)
+        {
+            out.push("UNCERTAIN");
+        }
+        out
+    }
+
+    /// The limits are percentages, 0 to 100, and the low one is below the high one.
+    ///
+    /// # Errors
+    /// The first [`BadLimit`].
+    pub fn validate(&self) -> Result<(), BadLimit> {
+        for (key, v) in [
+            ("moisture_low_pct", self.moisture_low_pct),
+            ("moisture_high_pct", self.moisture_high_pct),
+            ("uncertainty_max_pct", self.uncertainty_max_pct),
+        ] {
+            if let Some(x) = v {
+                if !(0.0..=100.0).contains(&x) {
+                    return Err(BadLimit {
+                        key,
+                        value: x.to_string(),
+                        rule: "must be 0..=100 %",
+                    });
+                }
+            }
+        }
+        if let (Some(l), Some(h)) = (self.moisture_low_pct, self.moisture_high_pct) {
+            if l >= h {
+                return Err(BadLimit {
+                    key: "moisture_low_pct",
+                    value: l.to_string(),
+                    rule: "must be below moisture_high_pct",
+                });
+            }
+        }
+        Ok(())
+    }
+
+    /// What a broken limit means, for a person: `moisture 16.20 % above
+    /// the high limit 15.50 %`.
+    pub fn describe(&self, word: &str, moisture_pct: Option<f32>, uncertainty_pct: f32) -> String {
+        let m = moisture_pct.map_or("--".to_string(), |m| format!("{m:.2}"));
+        match word {
+            "LOW" => format!(
+                "moisture {m} % below the low limit {:.2} %",
+                self.moisture_low_pct.unwrap_or(f32::NAN)
+            ),
+            "HIGH" => format!(
+                "moisture {m} % above the high limit {:.2} %",
+                self.moisture_high_pct.unwrap_or(f32::NAN)
+            ),
+            _ => format!(
+                "uncertainty {} above the largest accepted {:.2} %",
+                if uncertainty_pct.is_nan() {
+                    "unknown".to_string()
+                } else {
+                    format!("{uncertainty_pct:.2} %")
+                },
+                self.uncertainty_max_pct.unwrap_or(f32::NAN)
+            ),
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn limits_mark_readings_outside_and_refuse_a_swapped_band() {
+        let a = AlarmLimits {
+            moisture_low_pct: Some(12.0),
+            moisture_high_pct: Some(15.5),
+            uncertainty_max_pct: Some(1.0),
+        };
+        assert_eq!(a.check(Some(16.0), 0.5), ["HIGH"]);
+        assert_eq!(a.check(Some(11.0), 1.5), ["LOW", "UNCERTAIN"]);
+        assert!(a.check(Some(13.0), 0.5).is_empty());
+        assert_eq!(a.check(None, f32::NAN), ["UNCERTAIN"]);
+        assert_eq!(
+            a.describe("HIGH", Some(16.2), 0.5),
+            "moisture 16.20 % above the high limit 15.50 %"
+        );
+        assert!(a.validate().is_ok());
+        let swapped = AlarmLimits {
+            moisture_low_pct: Some(15.0),
+            moisture_high_pct: Some(12.0),
+            ..a
+        };
+        assert_eq!(swapped.validate().unwrap_err().key, "moisture_low_pct");
+        let over = AlarmLimits {
+            uncertainty_max_pct: Some(120.0),
+            ..a
+        };
+        assert_eq!(over.validate().unwrap_err().value, "120");
+    }
+}
