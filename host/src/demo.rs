@@ -180,14 +180,23 @@ fn run_in(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         dir.display()
     );
     println!("All names, data and the plant are invented for this demo.");
-    std::fs::write(
-        &outs.key,
-        DEMO_KEY
-            .iter()
-            .map(|b| format!("{b:02x}"))
-            .collect::<String>()
-            + "\n",
-    )?;
+    // Readable by its owner alone, as a real key file should be.
+    {
+        use std::io::Write as _;
+        let mut o = std::fs::OpenOptions::new();
+        o.write(true).create(true).truncate(true);
+        #[cfg(unix)]
+        std::os::unix::fs::OpenOptionsExt::mode(&mut o, 0o600);
+        let mut f = o.open(&outs.key)?;
+        f.write_all(
+            (DEMO_KEY
+                .iter()
+                .map(|b| format!("{b:02x}"))
+                .collect::<String>()
+                + "\n")
+                .as_bytes(),
+        )?;
+    }
 
     let mut rng = StdRng::seed_from_u64(a.seed);
     let grain = SynthProduct::<f32>::grain();

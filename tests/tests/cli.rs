@@ -88,6 +88,39 @@ fn missing_port_is_code_10() {
     assert_fails(&o, 10, &["/dev/fringe-nowhere", "does not exist"]);
 }
 
+/// A device key file that other users can read draws a warning naming it,
+/// its mode and the fix (the command goes on: here to the missing port);
+/// one readable by its owner alone draws none.
+#[cfg(unix)]
+#[test]
+fn a_key_file_others_can_read_is_warned_about() {
+    use std::os::unix::fs::PermissionsExt as _;
+    let t = tempfile::tempdir().expect("dir");
+    let key = t.path().join("line2.key");
+    std::fs::write(&key, "0a".repeat(32)).expect("key");
+    let db = t.path().join("line2.db");
+    let pull = |mode: u32| {
+        std::fs::set_permissions(&key, std::fs::Permissions::from_mode(mode)).expect("chmod");
+        run(
+            &mut fringe(&[
+                "pull",
+                "--port",
+                "/dev/fringe-nowhere",
+                "--db",
+                db.to_str().expect("utf-8"),
+                "--key-file",
+                key.to_str().expect("utf-8"),
+            ]),
+            LIMIT,
+        )
+    };
+    let o = pull(0o644);
+    assert_fails(&o, 10, &["warning", "line2.key", "mode 0644", "chmod 600"]);
+    let o = pull(0o600);
+    assert_fails(&o, 10, &["/dev/fringe-nowhere"]);
+    assert!(!o.stderr.contains("warning"), "{}", o.stderr);
+}
+
 #[test]
 fn busy_port_is_code_11_and_wrong_baud_is_code_14() {
     let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0202", 2));

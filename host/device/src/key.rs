@@ -55,9 +55,49 @@ pub fn load_key(path: &Path) -> Result<Key, KeyError> {
     Ok(key)
 }
 
+/// Whether other users can read or write the key file: a warning naming
+/// the file, its mode and the fix, or `None` (also where the system has no
+/// Unix permissions). A key that others can read lets them make
+/// authenticated writes to the device.
+pub fn exposure(path: &Path) -> Option<String> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt as _;
+        let mode = std::fs::metadata(path).ok()?.permissions().mode() & 0o777;
+        (mode & 0o077 != 0).then(|| {
+            format!(
+                "key file {} can be read or written by other users (mode {mode:04o}); anyone who reads it can change the device: chmod 600 {}",
+                path.display(),
+                path.display()
+            )
+        })
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = path;
+        None
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[cfg(unix)]
+    #[test]
+    fn a_key_file_others_can_read_is_named_with_its_mode() {
+        use std::os::unix::fs::PermissionsExt as _;
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("dev.key");
+        std::fs::write(&p, "0a".repeat(32)).unwrap();
+        std::fs::set_permissions(&p, std::fs::Permissions::from_mode(0o644)).unwrap();
+        let w = exposure(&p).expect("a warning for mode 0644");
+        assert!(w.contains("mode 0644") && w.contains("chmod 600"), "{w}");
+        std::fs::set_permissions(&p, std::fs::Permissions::from_mode(0o600)).unwrap();
+        assert_eq!(exposure(&p), None);
+        std::fs::set_permissions(&p, std::fs::Permissions::from_mode(0o640)).unwrap();
+        assert!(exposure(&p).is_some(), "group-readable");
+    }
 
     #[test]
     fn key_files_are_64_hex_digits() {

@@ -60,6 +60,9 @@ pub fn gateway(
             })?),
             None => None,
         };
+        if let Some(w) = d.key_file.as_deref().and_then(fringe_device::key::exposure) {
+            eprintln!("fringe gateway: warning: unit {}: {w}", d.unit);
+        }
         let (open, key): (Box<dyn Fn() -> Box<dyn Opener> + Send + Sync>, _) = match &d.port {
             DevicePort::Serial { path, baud } => {
                 let o = SerialOpener {

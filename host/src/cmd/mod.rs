@@ -70,7 +70,13 @@ pub fn optional_key(
     cfg: &LineConfig,
 ) -> anyhow::Result<Option<fringe_protocol::auth::Key>> {
     match flag.map(Path::to_path_buf).or_else(|| cfg.key_file.clone()) {
-        Some(p) => Ok(Some(fringe_device::key::load_key(&p)?)),
+        Some(p) => {
+            let key = fringe_device::key::load_key(&p)?;
+            if let Some(w) = fringe_device::key::exposure(&p) {
+                eprintln!("fringe: warning: {w}");
+            }
+            Ok(Some(key))
+        }
         None => Ok(None),
     }
 }
