@@ -114,6 +114,134 @@ impl Mosquitto {
     }
 }
 
+/// A mosquitto broker with two listeners on localhost: the plain one of
+/// [`Mosquitto`] (anonymous, for the test's subscriber) and a TLS one that
+/// takes only `user` with `password` (a password file made with
+/// `mosquitto_passwd`), with a server certificate for 127.0.0.1 signed by a
+/// throwaway CA made here with the `openssl` command (Debian package
+/// `openssl`).
+pub struct SecureMosquitto {
+    /// The broker (its `port` is the plain listener).
+    pub broker: Mosquitto,
+    /// The TLS listener's port.
+    pub tls_port: u16,
+    /// The CA certificate (PEM) the gateway is given as `tls_ca`.
+    pub ca_pem: PathBuf,
+}
+
+fn run_ok(cmd: &mut Command) {
+    let o = cmd.output().unwrap_or_else(|e| panic!("{cmd:?}: {e}"));
+    assert!(
+        o.status.success(),
+        "{cmd:?}: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+}
+
+impl SecureMosquitto {
+    /// Starts the broker with both listeners.
+    ///
+    /// # Panics
+    /// If mosquitto, mosquitto_passwd or openssl is missing, or the broker
+    /// does not come up within a minute.
+    pub fn start(user: &str, password: &str) -> Self {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let d = dir.path();
+        let openssl = |args: &[&str]| run_ok(Command::new("openssl").args(args).current_dir(d));
+        openssl(&[
+            "req",
+            "-x509",
+            "-newkey",
+            "rsa:2048",
+            "-nodes",
+            "-keyout",
+            "ca.key",
+            "-out",
+            "ca.pem",
+            "-days",
+            "2",
+            "-subj",
+            "/CN=Fringe test CA",
+        ]);
+        openssl(&[
+            "req",
+            "-newkey",
+            "rsa:2048",
+            "-nodes",
+            "-keyout",
+            "server.key",
+            "-out",
+            "server.csr",
+            "-subj",
+            "/CN=localhost",
+        ]);
+        std::fs::write(
+            d.join("ext.cnf"),
+            "subjectAltName=IP:127.0.0.1,DNS:localhost\nbasicConstraints=CA:FALSE\n\
+             keyUsage=digitalSignature,keyEncipherment\nextendedKeyUsage=serverAuth\n",
+        )
+        .expect("ext");
+        openssl(&[
+            "x509",
+            "-req",
+            "-in",
+            "server.csr",
+            "-CA",
+            "ca.pem",
+            "-CAkey",
+            "ca.key",
+            "-CAcreateserial",
+            "-out",
+            "server.pem",
+            "-days",
+            "2",
+            "-extfile",
+            "ext.cnf",
+        ]);
+        run_ok(
+            Command::new(sbin_or_bin("mosquitto_passwd"))
+                .args(["-b", "-c", "passwd", user, password])
+                .current_dir(d),
+        );
+        let port = free_port();
+        let tls_port = free_port();
+        let conf = format!(
+            "per_listener_settings true\n\
+             listener {port} 127.0.0.1\nallow_anonymous true\n\
+             listener {tls_port} 127.0.0.1\nallow_anonymous false\npassword_file {d}/passwd\n\
+             cafile {d}/ca.pem\ncertfile {d}/server.pem\nkeyfile {d}/server.key\n\
+             persistence true\npersistence_location {d}/\nuser root\n\
+             log_dest file {d}/broker.log\nlog_type error\nlog_type warning\nlog_type notice\n",
+            d = d.display()
+        );
+        std::fs::write(d.join("mosquitto.conf"), conf).expect("broker config");
+        let ca_pem = d.join("ca.pem");
+        let mut broker = Mosquitto {
+            dir,
+            port,
+            child: None,
+        };
+        broker.restart();
+        wait_for_port(tls_port, Duration::from_secs(60), &broker.log());
+        Self {
+            broker,
+            tls_port,
+            ca_pem,
+        }
+    }
+}
+
+/// A program of a Debian package, in /usr/sbin or /usr/bin.
+fn sbin_or_bin(name: &str) -> PathBuf {
+    ["/usr/bin", "/usr/sbin"]
+        .iter()
+        .map(|d| Path::new(d).join(name))
+        .find(|p| p.exists())
+        .unwrap_or_else(|| {
+            panic!("{name} is not installed: `cargo xtask test` installs it (Debian package)")
+        })
+}
+
 impl Drop for Mosquitto {
     fn drop(&mut self) {
         if let Some(mut c) = self.child.take() {

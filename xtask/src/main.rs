@@ -318,6 +318,8 @@ fn test(args: &[String]) -> Result<()> {
         // Real servers the plant tests start on localhost.
         apt_install(&[
             ("mosquitto", "mosquitto"),
+            // Certificates of the MQTT-over-TLS test's throwaway CA.
+            ("openssl", "openssl"),
             ("chromium", "chromium"),
             ("chromedriver", "chromium-driver"),
         ])?;
