@@ -269,6 +269,34 @@ pub fn read_input_registers(
     Ok(&map[usize::from(addr)..end])
 }
 
+/// Word order of the 32-bit values (float32 and uint32) in the map.
+/// The Modbus application protocol specification leaves it open; high word
+/// first is the map's own order, low word first is what many PLCs expect
+/// (the two are often called ABCD and CDAB; common practice, no source).
+/// 16-bit registers are the same either way.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum WordOrder {
+    /// High word at the lower address (the map as [`map`] gives it).
+    #[default]
+    HighFirst,
+    /// Low word at the lower address.
+    LowFirst,
+}
+
+/// First addresses of the map's 32-bit values.
+pub const WIDE: [u16; 5] = [MOISTURE, UNCERTAINTY, TEMPERATURE, COUNTER, KNOWN_VALUE];
+
+/// `m` in word order `order`: with [`WordOrder::LowFirst`] the two
+/// registers of every 32-bit value swapped, the rest unchanged.
+pub fn with_word_order(mut m: [u16; MAP_LEN], order: WordOrder) -> [u16; MAP_LEN] {
+    if order == WordOrder::LowFirst {
+        for a in WIDE {
+            m.swap(usize::from(a), usize::from(a) + 1);
+        }
+    }
+    m
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -452,5 +480,45 @@ mod tests {
             prop_assert_eq!(map[SCALED_STATUS as usize], map[STATUS as usize]);
             prop_assert_eq!(map[AGE as usize] as u32, age.min(65535));
         }
+    }
+
+    #[test]
+    fn low_word_first_swaps_every_32_bit_value_and_nothing_else() {
+        let r = Reading {
+            seq: fringe_protocol::Seq {
+                boot: 2,
+                counter: 0x0001_0002,
+            },
+            time_ms: 0,
+            channels: [fringe_protocol::ChannelValue::default(); 2],
+            temperature_c: 20.0,
+            moisture_pct: Some(14.25),
+            uncertainty_pct: 0.5,
+            flags: Flags::empty(),
+            cell_cal: fringe_protocol::CalId::NONE,
+            product_cal: fringe_protocol::CalId::NONE,
+        };
+        let hi = map(&Snapshot {
+            reading: Some(r),
+            age_s: 3,
+            stale: false,
+            connected: true,
+        });
+        let lo = with_word_order(hi, WordOrder::LowFirst);
+        // The known value 1234.5 = 0x449A5000 (IEEE 754 binary32,
+        // computed by hand: 1234.5 = 1.2055664 x 2^10) as CDAB.
+        assert_eq!(&hi[12..14], &[0x449A, 0x5000]);
+        assert_eq!(&lo[12..14], &[0x5000, 0x449A]);
+        // The counter, and a float, read back from the swapped words.
+        assert_eq!(u32::from(lo[8]) << 16 | u32::from(lo[7]), 0x0001_0002);
+        let m = f32::from_bits(u32::from(lo[1]) << 16 | u32::from(lo[0]));
+        assert_eq!(m, 14.25);
+        for a in 0..MAP_LEN as u16 {
+            let wide = WIDE.iter().any(|w| a == *w || a == *w + 1);
+            if !wide {
+                assert_eq!(lo[usize::from(a)], hi[usize::from(a)], "register {a}");
+            }
+        }
+        assert_eq!(with_word_order(hi, WordOrder::HighFirst), hi);
     }
 }

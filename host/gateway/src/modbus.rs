@@ -18,7 +18,7 @@ use std::net::SocketAddr;
 use std::sync::Arc;
 use std::time::Instant;
 
-use fringe_registers::{map, read_input_registers, Exception};
+use fringe_registers::{map, read_input_registers, with_word_order, Exception, WordOrder};
 use tokio::net::TcpListener;
 use tokio_modbus::server::tcp::{accept_tcp_connection, Server};
 use tokio_modbus::{ExceptionCode, Request, Response, SlaveRequest};
@@ -36,13 +36,27 @@ pub fn answer(
     req: &Request<'_>,
     now: Instant,
 ) -> Result<Response, ExceptionCode> {
+    answer_in(table, unit, req, now, WordOrder::HighFirst)
+}
+
+/// As [`answer`], with the 32-bit values in word order `order`.
+///
+/// # Errors
+/// The Modbus exception the request earns.
+pub fn answer_in(
+    table: &LiveTable,
+    unit: u8,
+    req: &Request<'_>,
+    now: Instant,
+    order: WordOrder,
+) -> Result<Response, ExceptionCode> {
     let Request::ReadInputRegisters(addr, count) = *req else {
         return Err(ExceptionCode::IllegalFunction);
     };
     let snapshot = table
         .snapshot(unit, now)
         .ok_or(ExceptionCode::GatewayTargetDevice)?;
-    let m = map(&snapshot);
+    let m = with_word_order(map(&snapshot), order);
     read_input_registers(&m, addr, count)
         .map(|words| Response::ReadInputRegisters(words.to_vec()))
         .map_err(|e| match e {
@@ -54,6 +68,7 @@ pub fn answer(
 
 struct Service {
     table: Arc<LiveTable>,
+    order: WordOrder,
 }
 
 impl tokio_modbus::server::Service for Service {
@@ -63,7 +78,13 @@ impl tokio_modbus::server::Service for Service {
     type Future = future::Ready<Result<Response, ExceptionCode>>;
 
     fn call(&self, req: Self::Request) -> Self::Future {
-        future::ready(answer(&self.table, req.slave, &req.request, Instant::now()))
+        future::ready(answer_in(
+            &self.table,
+            req.slave,
+            &req.request,
+            Instant::now(),
+            self.order,
+        ))
     }
 }
 
@@ -83,6 +104,15 @@ impl ModbusServer {
     /// When the address cannot be bound (in use, no permission for a port
     /// below 1024) or the runtime cannot start.
     pub fn start(addr: SocketAddr, table: Arc<LiveTable>) -> io::Result<Self> {
+        Self::start_in(addr, table, WordOrder::HighFirst)
+    }
+
+    /// As [`ModbusServer::start`], serving the 32-bit values in word order
+    /// `order` (the site file's `[modbus] word_order`).
+    ///
+    /// # Errors
+    /// As [`ModbusServer::start`].
+    pub fn start_in(addr: SocketAddr, table: Arc<LiveTable>, order: WordOrder) -> io::Result<Self> {
         let rt = tokio::runtime::Builder::new_current_thread()
             .enable_all()
             .build()?;
@@ -100,6 +130,7 @@ impl ModbusServer {
                             accept_tcp_connection(stream, socket_addr, move |_| {
                                 Ok(Some(Service {
                                     table: Arc::clone(&table),
+                                    order,
                                 }))
                             })
                         }
@@ -165,6 +196,32 @@ mod tests {
             cell_cal: CalId::NONE,
             product_cal: CalId::NONE,
         }
+    }
+
+    #[test]
+    fn low_word_first_serves_the_floats_swapped() {
+        let t = LiveTable::new(Duration::from_secs(10));
+        t.register(1, "HGM-L2-0001");
+        let now = Instant::now();
+        t.update(1, &reading(5, 14.5), now);
+        let ok = answer_in(
+            &t,
+            1,
+            &Request::ReadInputRegisters(0, 14),
+            now,
+            WordOrder::LowFirst,
+        )
+        .unwrap();
+        let Response::ReadInputRegisters(w) = ok else {
+            panic!("{ok:?}")
+        };
+        // Low word first: the moisture and the known value 1234.5
+        // (0x449A5000) with their words swapped.
+        assert_eq!(
+            f32::from_bits(u32::from(w[1]) << 16 | u32::from(w[0])),
+            14.5
+        );
+        assert_eq!(&w[12..14], &[0x5000, 0x449A]);
     }
 
     #[test]

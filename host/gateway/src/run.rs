@@ -339,7 +339,7 @@ impl Gateway {
         }
         let modbus = match site.modbus {
             Some(addr) => Some(
-                ModbusServer::start(addr, Arc::clone(&table))
+                ModbusServer::start_in(addr, Arc::clone(&table), site.modbus_word_order)
                     .map_err(|source| GatewayError::Modbus { addr, source })?,
             ),
             None => None,

@@ -12,6 +12,7 @@
 //!
 //! [modbus]                            # optional; absent: no Modbus TCP server
 //! listen = "127.0.0.1:1502"           # localhost unless said otherwise (Modbus has no authentication)
+//! word_order = "high_first"           # 32-bit values: "high_first" (default) or "low_first"
 //!
 //! [web]                               # optional: the live page
 //! listen = "127.0.0.1:8150"
@@ -50,6 +51,7 @@ use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use fringe_quality::limits::AlarmLimits;
+use fringe_registers::WordOrder;
 use serde::Deserialize;
 use toml::Spanned;
 
@@ -113,7 +115,7 @@ struct RawSite {
     #[serde(default)]
     status_every_s: Option<Spanned<f64>>,
     #[serde(default)]
-    modbus: Option<RawListen>,
+    modbus: Option<RawModbus>,
     #[serde(default)]
     web: Option<RawListen>,
     #[serde(default)]
@@ -128,6 +130,14 @@ struct RawSite {
 #[serde(deny_unknown_fields)]
 struct RawListen {
     listen: Spanned<String>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawModbus {
+    listen: Spanned<String>,
+    #[serde(default)]
+    word_order: Option<Spanned<String>>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -247,6 +257,8 @@ pub struct Site {
     pub status_every: Duration,
     /// Modbus TCP address.
     pub modbus: Option<SocketAddr>,
+    /// Word order of the 32-bit values served over Modbus TCP.
+    pub modbus_word_order: WordOrder,
     /// Live page address.
     pub web: Option<SocketAddr>,
     /// MQTT publishing.
@@ -389,21 +401,36 @@ impl Site {
         let status = seconds(&raw.status_every_s, "status_every_s", 10.0, 0.1)?;
         let lease = seconds(&raw.lease_s, "lease_s", 30.0, 1.0)?;
         let listen =
-            |l: &Option<RawListen>, field: &str| -> Result<Option<SocketAddr>, SiteError> {
+            |l: Option<&Spanned<String>>, field: &str| -> Result<Option<SocketAddr>, SiteError> {
                 match l {
                     None => Ok(None),
-                    Some(l) => l.listen.get_ref().parse().map(Some).map_err(|_| {
+                    Some(l) => l.get_ref().parse().map(Some).map_err(|_| {
                         bad(
-                            l.listen.span(),
+                            l.span(),
                             field,
-                            format!("{:?}", l.listen.get_ref()),
+                            format!("{:?}", l.get_ref()),
                             "an IP address and port, e.g. \"127.0.0.1:1502\"",
                         )
                     }),
                 }
             };
-        let modbus = listen(&raw.modbus, "modbus.listen")?;
-        let web = listen(&raw.web, "web.listen")?;
+        let modbus = listen(raw.modbus.as_ref().map(|m| &m.listen), "modbus.listen")?;
+        let web = listen(raw.web.as_ref().map(|w| &w.listen), "web.listen")?;
+        let modbus_word_order = match raw.modbus.as_ref().and_then(|m| m.word_order.as_ref()) {
+            None => WordOrder::HighFirst,
+            Some(w) => match w.get_ref().as_str() {
+                "high_first" => WordOrder::HighFirst,
+                "low_first" => WordOrder::LowFirst,
+                other => {
+                    return Err(bad(
+                        w.span(),
+                        "modbus.word_order",
+                        format!("{other:?}"),
+                        "\"high_first\" (the default) or \"low_first\"",
+                    ))
+                }
+            },
+        };
         let mqtt = match raw.mqtt {
             None => None,
             Some(m) => {
@@ -596,6 +623,7 @@ impl Site {
             drift_every: (drift > 0.0).then(|| Duration::from_secs_f64(drift)),
             status_every: Duration::from_secs_f64(status),
             modbus,
+            modbus_word_order,
             web,
             mqtt,
             devices,
@@ -666,6 +694,22 @@ baud = 9600
             .unwrap_err()
             .to_string();
         assert!(e.contains(":5: modbus.listen"), "{e}");
+        let e = parse(&GOOD.replace(
+            "listen = \"127.0.0.1:1502\"",
+            "listen = \"127.0.0.1:1502\"\nword_order = \"middle\"",
+        ))
+        .unwrap_err()
+        .to_string();
+        assert!(
+            e.contains(":6: modbus.word_order = \"middle\"") && e.contains("low_first"),
+            "{e}"
+        );
+        let s = parse(&GOOD.replace(
+            "listen = \"127.0.0.1:1502\"",
+            "listen = \"127.0.0.1:1502\"\nword_order = \"low_first\"",
+        ))
+        .unwrap();
+        assert_eq!(s.modbus_word_order, WordOrder::LowFirst);
         let e = parse(&GOOD.replace("baud = 9600", "bauds = 9600"))
             .unwrap_err()
             .to_string();
