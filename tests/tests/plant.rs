@@ -755,6 +755,9 @@ fn mqtt_over_tls_with_credentials_and_a_wrong_password_loses_nothing() {
     let held = outbox.len().expect("buffer rows");
     drop(outbox);
     assert!(held >= 30, "{held} readings buffered");
+    // And the person is told why.
+    let err = std::fs::read_to_string(dir.path().join("wrong.err")).unwrap_or_default();
+    assert!(err.contains("MQTT: not connected"), "{err}");
 
     // The right password: what the first run buffered and what the second
     // takes all arrive, over TLS.
@@ -781,6 +784,8 @@ fn mqtt_over_tls_with_credentials_and_a_wrong_password_loses_nothing() {
         "{missing:?}"
     );
     assert!(sent.is_subset(&stored), "published, not stored");
+    let err = std::fs::read_to_string(dir.path().join("right.err")).unwrap_or_default();
+    assert!(err.contains("MQTT: connected to the broker"), "{err}");
     eprintln!(
         "TLS: {} stored, {} published, {} buffered at the wrong password",
         stored.len(),

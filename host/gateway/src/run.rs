@@ -450,6 +450,12 @@ impl Gateway {
         self.web.as_ref().map(WebServer::local_addr)
     }
 
+    /// What the MQTT publisher has done (connected, acknowledged, its last
+    /// error), if the site has one.
+    pub fn mqtt(&self) -> Option<crate::mqtt::MqttStats> {
+        self.publisher.as_ref().map(|p| p.stats())
+    }
+
     /// The live table the servers serve.
     pub fn table(&self) -> &Arc<LiveTable> {
         &self.table

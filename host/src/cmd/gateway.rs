@@ -196,6 +196,9 @@ pub fn gateway(
         Duration::from_millis(100)
     };
     let mut broken = None;
+    // The MQTT connection's state as last said (a refused password, an
+    // unreachable broker, a bad certificate: said once each time it changes).
+    let mut said_mqtt: (bool, Option<String>) = (false, None);
     while !stop.load(Ordering::Relaxed) {
         if deadline.is_some_and(|d| Instant::now() >= d) {
             stop.store(true, Ordering::Relaxed);
@@ -204,6 +207,22 @@ pub fn gateway(
         std::thread::sleep(tick);
         let mut v = view.lock().unwrap_or_else(|e| e.into_inner());
         v.flush_notices();
+        if let Some(m) = gw.mqtt() {
+            let now = (m.connected, m.last_error.clone());
+            if now != said_mqtt {
+                v.clear();
+                match (&now.1, now.0) {
+                    (_, true) if !said_mqtt.0 => {
+                        eprintln!("fringe gateway: MQTT: connected to the broker");
+                    }
+                    (Some(e), false) => eprintln!(
+                        "fringe gateway: MQTT: not connected ({e}); readings wait in the buffer, trying again"
+                    ),
+                    _ => {}
+                }
+                said_mqtt = now;
+            }
+        }
         let due = last_status.elapsed() >= site.status_every;
         if v.style.tty && !v.json {
             v.draw(&gw.status());
