@@ -51,7 +51,10 @@ def on_subscribe(client, userdata, mid, reason_codes, properties):
 
 
 def on_message(client, userdata, msg):
-    emit({"topic": msg.topic, **decode(msg.topic, msg.payload)})
+    # "dup": the broker sends this message again to this subscriber (its
+    # PUBACK was not seen before the broker stopped): MQTT QoS 1 on the
+    # broker-to-subscriber leg, not a repeat by the publisher.
+    emit({"topic": msg.topic, "dup": bool(msg.dup), **decode(msg.topic, msg.payload)})
 
 
 def main(host, port, topic):

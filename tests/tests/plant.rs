@@ -159,10 +159,21 @@ impl Drop for Collector {
     }
 }
 
+/// The counters of `device`'s DDATA messages in arrival order, without
+/// the broker's own redeliveries to the subscriber (flagged `dup` by the
+/// broker, after a restart that caught the subscriber's acknowledgement in
+/// flight): those are MQTT's "at least once" on the broker-to-subscriber
+/// leg, not repeats by the gateway's publisher, which these tests check.
 fn ddata_counters(msgs: &[Value], device: &str) -> Vec<u64> {
+    let mut seen = std::collections::BTreeSet::new();
     msgs.iter()
         .filter(|m| m["topic"] == format!("spBv1.0/plant-a/DDATA/gw-1/{device}"))
-        .filter_map(|m| m["metrics"]["counter"]["value"].as_u64())
+        .filter_map(|m| {
+            let c = m["metrics"]["counter"]["value"].as_u64()?;
+            let redelivered = m["dup"] == true && seen.contains(&c);
+            seen.insert(c);
+            (!redelivered).then_some(c)
+        })
         .collect()
 }
 
