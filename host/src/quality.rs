@@ -352,8 +352,20 @@ pub fn export_cmd(a: &ExportArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 })
                 .and_then(|s| {
                     // A hard link fails if the name was taken meanwhile: never a clobber.
-                    std::fs::hard_link(&partial, out)
-                        .with_context(|| format!("cannot put the export at {}", out.display()))?;
+                    // A file system without hard links (a FAT-formatted USB
+                    // stick) gets a rename after one more check of the name.
+                    match std::fs::hard_link(&partial, out) {
+                        Ok(()) => {}
+                        Err(e) if e.kind() == std::io::ErrorKind::AlreadyExists || out.exists() => {
+                            return Err(anyhow::Error::new(e).context(format!(
+                                "cannot put the export at {}: the name was taken meanwhile",
+                                out.display()
+                            )))
+                        }
+                        Err(_) => std::fs::rename(&partial, out).with_context(|| {
+                            format!("cannot put the export at {}", out.display())
+                        })?,
+                    }
                     Ok(s)
                 });
             let _ = std::fs::remove_file(&partial);
