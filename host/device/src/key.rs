@@ -31,26 +31,41 @@ pub enum KeyError {
 /// # Errors
 /// [`KeyError`].
 pub fn load_key(path: &Path) -> Result<Key, KeyError> {
-    let text = std::fs::read_to_string(path).map_err(|source| KeyError::Read {
+    let bytes = std::fs::read(path).map_err(|source| KeyError::Read {
         path: path.to_path_buf(),
         source,
     })?;
+    parse_key(path, &bytes)
+}
+
+/// Parses the contents of a key file read from `path` (named in errors):
+/// 64 hex digits, whitespace anywhere ignored.
+///
+/// # Errors
+/// [`KeyError::NotAKey`], which never shows the key.
+pub fn parse_key(path: &Path, bytes: &[u8]) -> Result<Key, KeyError> {
+    let not_a_key = |found: String| KeyError::NotAKey {
+        path: path.to_path_buf(),
+        found,
+    };
+    let text = std::str::from_utf8(bytes).map_err(|e| {
+        not_a_key(format!(
+            "bytes that are not UTF-8 text (at byte {})",
+            e.valid_up_to()
+        ))
+    })?;
     let hex: String = text.split_whitespace().collect();
     if hex.len() != 64 {
-        return Err(KeyError::NotAKey {
-            path: path.to_path_buf(),
-            found: format!("{} characters", hex.len()),
-        });
+        return Err(not_a_key(format!("{} characters", hex.len())));
     }
     let mut key = [0u8; 32];
     for (i, k) in key.iter_mut().enumerate() {
+        // `from_str_radix` alone would also take a sign ("+e").
         *k = hex
             .get(2 * i..2 * i + 2)
+            .filter(|d| d.bytes().all(|b| b.is_ascii_hexdigit()))
             .and_then(|d| u8::from_str_radix(d, 16).ok())
-            .ok_or_else(|| KeyError::NotAKey {
-                path: path.to_path_buf(),
-                found: format!("no hex digit at digit {}", 2 * i + 1),
-            })?;
+            .ok_or_else(|| not_a_key(format!("no hex digit at digit {}", 2 * i + 1)))?;
     }
     Ok(key)
 }
@@ -97,6 +112,25 @@ mod tests {
         assert_eq!(exposure(&p), None);
         std::fs::set_permissions(&p, std::fs::Permissions::from_mode(0o640)).unwrap();
         assert!(exposure(&p).is_some(), "group-readable");
+    }
+
+    #[test]
+    fn a_plus_sign_is_not_a_hex_digit() {
+        // Found by fuzzing (host/fuzz, target `key`): "+e" was read as the
+        // byte 0x0e, so a file of 63 digits and a plus sign was a key.
+        let text = format!("0d+e{}", "0f".repeat(30));
+        let e = parse_key(Path::new("k.key"), text.as_bytes()).unwrap_err();
+        assert!(e.to_string().contains("no hex digit at digit 3"), "{e}");
+        assert!(parse_key(Path::new("k.key"), "+0".repeat(32).as_bytes()).is_err());
+    }
+
+    #[test]
+    fn a_key_file_that_is_not_text_is_named() {
+        let e = parse_key(Path::new("k.key"), b"0a\xff").unwrap_err();
+        assert!(
+            e.to_string().contains("k.key") && e.to_string().contains("not UTF-8 text (at byte 2)"),
+            "{e}"
+        );
     }
 
     #[test]
