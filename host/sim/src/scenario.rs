@@ -475,7 +475,12 @@ pub fn parse_key(hex: &str) -> Option<[u8; 32]> {
     }
     let mut key = [0u8; 32];
     for (i, k) in key.iter_mut().enumerate() {
-        *k = u8::from_str_radix(hex.get(2 * i..2 * i + 2)?, 16).ok()?;
+        let d = hex.get(2 * i..2 * i + 2)?;
+        // `from_str_radix` alone would also take a sign ("+e").
+        if !d.bytes().all(|b| b.is_ascii_hexdigit()) {
+            return None;
+        }
+        *k = u8::from_str_radix(d, 16).ok()?;
     }
     Some(key)
 }
@@ -520,6 +525,14 @@ mod tests {
             }
         }
         assert!(n >= 3);
+    }
+
+    #[test]
+    fn a_plus_sign_is_not_a_hex_digit_of_the_key() {
+        // The defect fuzzing found in fringe_device::key::parse_key (target
+        // `key`) was here too: "+1" read as the byte 0x01.
+        assert_eq!(parse_key(&KEY.replacen("01", "+1", 1)), None);
+        assert!(parse_key(KEY).is_some());
     }
 
     #[test]
