@@ -72,7 +72,20 @@ impl LineConfig {
     /// # Errors
     /// [`ConfigError`] naming the file, position or field.
     pub fn load(path: &Path) -> Result<Self, ConfigError> {
-        let mut c: LineConfig = load_toml(path)?;
+        let text = std::fs::read_to_string(path).map_err(|source| FileError::Read {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        Self::parse(path, &text)
+    }
+
+    /// Parses and checks the text of a line file read from `path` (named
+    /// in errors; relative paths in it are taken from its folder).
+    ///
+    /// # Errors
+    /// As [`LineConfig::load`].
+    pub fn parse(path: &Path, text: &str) -> Result<Self, ConfigError> {
+        let mut c: LineConfig = parse_toml(path, text)?;
         let invalid = |field: &str, value: String, rule: &str| {
             ConfigError::File(FileError::Invalid {
                 path: path.to_path_buf(),

@@ -398,8 +398,17 @@ impl ProductFile {
             path: path.to_path_buf(),
             reason: e.to_string(),
         })?;
-        let f: ProductFile = toml::from_str(&text).map_err(|e| {
-            let (line, column) = e.span().map_or((1, 1), |s| line_col(&text, s.start));
+        Self::parse(path, &text)
+    }
+
+    /// Parses and checks the text of a file read from `path` (named in
+    /// errors), as [`ProductFile::load`] does.
+    ///
+    /// # Errors
+    /// [`ProductFileError::Parse`] or [`ProductFileError::Invalid`].
+    pub fn parse(path: &Path, text: &str) -> Result<(ProductFile, ProductCal), ProductFileError> {
+        let f: ProductFile = toml::from_str(text).map_err(|e| {
+            let (line, column) = e.span().map_or((1, 1), |s| line_col(text, s.start));
             ProductFileError::Parse {
                 path: path.to_path_buf(),
                 line,
@@ -409,6 +418,18 @@ impl ProductFile {
         })?;
         let wire = f.to_wire(path)?;
         Ok((f, wire))
+    }
+
+    /// The text [`ProductFile::save`] writes.
+    ///
+    /// # Errors
+    /// The TOML writer's, should a value have no TOML form.
+    pub fn to_text(&self) -> Result<String, toml::ser::Error> {
+        let body = toml::to_string(self)?;
+        Ok(format!(
+            "# Fringe product calibration ({FORMAT}). The device evaluates exactly the fields above\n\
+             # [statistics]; `id` is their content id. Parameter layout: fringe_calibration::product.\n{body}"
+        ))
     }
 
     /// Writes the file (to a temporary name first, then renamed, so a failed
@@ -421,14 +442,10 @@ impl ProductFile {
             path: path.to_path_buf(),
             reason: e.to_string(),
         };
-        let body = toml::to_string(self).map_err(|e| ProductFileError::Io {
+        let text = self.to_text().map_err(|e| ProductFileError::Io {
             path: path.to_path_buf(),
             reason: e.to_string(),
         })?;
-        let text = format!(
-            "# Fringe product calibration ({FORMAT}). The device evaluates exactly the fields above\n\
-             # [statistics]; `id` is their content id. Parameter layout: fringe_calibration::product.\n{body}"
-        );
         let tmp = path.with_extension("toml.part");
         std::fs::write(&tmp, text).map_err(io)?;
         std::fs::rename(&tmp, path).map_err(io)
