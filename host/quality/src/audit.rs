@@ -31,7 +31,7 @@
 
 use std::collections::{BTreeMap, HashMap};
 use std::fmt;
-use std::io::{BufRead, Write};
+use std::io::Write;
 use std::path::{Path, PathBuf};
 
 use fringe_store::Value;
@@ -930,6 +930,63 @@ fn parse_record(
     Ok((table, hash, values))
 }
 
+/// Where a bundle's files are read from: its folder ([`Folder`]), or memory
+/// (tests and fuzzing).
+pub trait BundleFiles {
+    /// The file's bytes, `Ok(None)` when there is no such file.
+    ///
+    /// # Errors
+    /// The system's error when the file exists but cannot be read.
+    fn read(&self, name: &str) -> std::io::Result<Option<Vec<u8>>>;
+    /// The file's name for messages.
+    fn path(&self, name: &str) -> PathBuf;
+}
+
+/// A bundle folder on disk.
+#[derive(Debug, Clone, Copy)]
+pub struct Folder<'a>(pub &'a Path);
+
+impl BundleFiles for Folder<'_> {
+    fn read(&self, name: &str) -> std::io::Result<Option<Vec<u8>>> {
+        match std::fs::read(self.0.join(name)) {
+            Ok(b) => Ok(Some(b)),
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(None),
+            Err(e) => Err(e),
+        }
+    }
+
+    fn path(&self, name: &str) -> PathBuf {
+        self.0.join(name)
+    }
+}
+
+/// A bundle in memory: file name to contents.
+impl BundleFiles for BTreeMap<String, Vec<u8>> {
+    fn read(&self, name: &str) -> std::io::Result<Option<Vec<u8>>> {
+        Ok(self.get(name).cloned())
+    }
+
+    fn path(&self, name: &str) -> PathBuf {
+        PathBuf::from(name)
+    }
+}
+
+/// Checks a bundle on its own (as [`verify`] with no database), wherever
+/// its files come from.
+///
+/// # Errors
+/// [`AuditError`] when the manifest cannot be read or a file listed cannot
+/// be read; everything found wrong inside the bundle is in the report.
+pub fn verify_files(files: &dyn BundleFiles) -> Result<VerifyReport, AuditError> {
+    let mut report = VerifyReport {
+        records_checked: 0,
+        bundle_last: None,
+        problems: Vec::new(),
+    };
+    verify_bundle(files, &mut report)?;
+    Ok(report)
+}
+
 /// Checks a bundle folder, and with `db` also that database (its integrity
 /// check, its own chain, and the bundle against it).
 ///
@@ -945,7 +1002,7 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
     };
     let mut bundle_records: Vec<Parsed> = Vec::new();
     if let Some(dir) = dir {
-        bundle_records = verify_bundle(dir, &mut report)?;
+        bundle_records = verify_bundle(&Folder(dir), &mut report)?;
     }
     if let Some(store) = db {
         // The back end's own full check first: a damaged index page (which
@@ -1012,33 +1069,35 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
     Ok(report)
 }
 
-fn verify_bundle(dir: &Path, report: &mut VerifyReport) -> Result<Vec<Parsed>, AuditError> {
-    let mp = dir.join(MANIFEST);
-    let text = std::fs::read_to_string(&mp).map_err(|e| AuditError::BadManifest {
+fn verify_bundle(
+    files: &dyn BundleFiles,
+    report: &mut VerifyReport,
+) -> Result<Vec<Parsed>, AuditError> {
+    let mp = files.path(MANIFEST);
+    let bad_manifest = |reason: String| AuditError::BadManifest {
         path: mp.clone(),
-        reason: e.to_string(),
-    })?;
-    let m: Manifest = serde_json::from_str(&text).map_err(|e| AuditError::BadManifest {
-        path: mp.clone(),
-        reason: e.to_string(),
-    })?;
+        reason,
+    };
+    let bytes = files
+        .read(MANIFEST)
+        .map_err(|e| bad_manifest(e.to_string()))?
+        .ok_or_else(|| bad_manifest("no such file".into()))?;
+    let m: Manifest = serde_json::from_slice(&bytes).map_err(|e| bad_manifest(e.to_string()))?;
     if m.format != FORMAT {
-        return Err(AuditError::BadManifest {
-            path: mp,
-            reason: format!("format `{}`, this tool reads `{FORMAT}`", m.format),
-        });
+        return Err(bad_manifest(format!(
+            "format `{}`, this tool reads `{FORMAT}`",
+            m.format
+        )));
     }
     // 1. Files against the manifest.
     for f in &m.files {
-        let p = dir.join(&f.name);
-        if !p.exists() {
+        let Some(bytes) = files.read(&f.name).map_err(io(&files.path(&f.name)))? else {
             report.problems.push(Problem::FileMissing {
                 file: f.name.clone(),
             });
             continue;
-        }
-        let (sha, _) = sha256_file(&p)?;
-        if sha != f.sha256 {
+        };
+        if hex_of(&Sha256::digest(&bytes)) != f.sha256 {
             report.problems.push(Problem::FileChanged {
                 file: f.name.clone(),
             });
@@ -1046,31 +1105,30 @@ fn verify_bundle(dir: &Path, report: &mut VerifyReport) -> Result<Vec<Parsed>, A
     }
     // 2. The chain slice in records.jsonl.
     let mut recs: Vec<Parsed> = Vec::new();
-    let rp = dir.join(RECORDS);
-    if let Ok(file) = std::fs::File::open(&rp) {
-        for (i, line) in std::io::BufReader::new(file).lines().enumerate() {
-            let line_no = i as u64 + 1;
-            let line = line.map_err(io(&rp))?;
-            if line.trim().is_empty() {
-                continue;
-            }
-            let parsed = serde_json::from_str::<JsonRecord>(&line)
-                .map_err(|e| e.to_string())
-                .and_then(|j| parse_record(&j, &m.columns).map(|r| (j.position, r)));
-            match parsed {
-                Ok((position, (table, hash, values))) => recs.push(Parsed {
-                    line: line_no,
-                    position,
-                    table,
-                    hash,
-                    values,
-                }),
-                Err(reason) => report.problems.push(Problem::Unreadable {
-                    file: RECORDS.into(),
-                    line: line_no,
-                    reason,
-                }),
-            }
+    let rp = files.path(RECORDS);
+    let records = files.read(RECORDS).map_err(io(&rp))?.unwrap_or_default();
+    for (i, line) in records.split(|b| *b == b'\n').enumerate() {
+        let line_no = i as u64 + 1;
+        let line = line.strip_suffix(b"\r").unwrap_or(line);
+        if line.trim_ascii().is_empty() {
+            continue;
+        }
+        let parsed = serde_json::from_slice::<JsonRecord>(line)
+            .map_err(|e| e.to_string())
+            .and_then(|j| parse_record(&j, &m.columns).map(|r| (j.position, r)));
+        match parsed {
+            Ok((position, (table, hash, values))) => recs.push(Parsed {
+                line: line_no,
+                position,
+                table,
+                hash,
+                values,
+            }),
+            Err(reason) => report.problems.push(Problem::Unreadable {
+                file: RECORDS.into(),
+                line: line_no,
+                reason,
+            }),
         }
     }
     report.records_checked += recs.len() as u64;
@@ -1143,9 +1201,9 @@ fn verify_bundle(dir: &Path, report: &mut VerifyReport) -> Result<Vec<Parsed>, A
         });
     }
     // 3. Calibrations in force: each links from its anchor.
-    let cp = dir.join(CALS_IN_FORCE);
-    if let Ok(text) = std::fs::read_to_string(&cp) {
-        match serde_json::from_str::<Vec<InForce>>(&text) {
+    let cp = files.path(CALS_IN_FORCE);
+    if let Some(text) = files.read(CALS_IN_FORCE).map_err(io(&cp))? {
+        match serde_json::from_slice::<Vec<InForce>>(&text) {
             Ok(list) => {
                 for (i, c) in list.iter().enumerate() {
                     let ok = parse_record(&c.record, &m.columns)
@@ -1183,10 +1241,9 @@ fn verify_bundle(dir: &Path, report: &mut VerifyReport) -> Result<Vec<Parsed>, A
     // 4. Every CSV row against the record it copies.
     for t in Table::ALL {
         let name = format!("{}.csv", t.name());
-        let path = dir.join(&name);
-        if !path.exists() {
+        let Some(bytes) = files.read(&name).map_err(io(&files.path(&name)))? else {
             continue;
-        }
+        };
         let cols = m.columns.get(t.name()).cloned().unwrap_or_default();
         let header = csv_header(t, &cols);
         let expected_rows: BTreeMap<u64, Vec<String>> = recs
@@ -1199,29 +1256,19 @@ fn verify_bundle(dir: &Path, report: &mut VerifyReport) -> Result<Vec<Parsed>, A
                 )
             })
             .collect();
-        check_csv(&path, &name, &header, &expected_rows, report);
+        check_csv(&bytes, &name, &header, &expected_rows, report);
     }
     Ok(recs)
 }
 
 fn check_csv(
-    path: &Path,
+    bytes: &[u8],
     name: &str,
     header: &[String],
     expected: &BTreeMap<u64, Vec<String>>,
     report: &mut VerifyReport,
 ) {
-    let mut rdr = match csv::ReaderBuilder::new().flexible(true).from_path(path) {
-        Ok(r) => r,
-        Err(e) => {
-            report.problems.push(Problem::Unreadable {
-                file: name.into(),
-                line: 1,
-                reason: e.to_string(),
-            });
-            return;
-        }
-    };
+    let mut rdr = csv::ReaderBuilder::new().flexible(true).from_reader(bytes);
     match rdr.headers() {
         Ok(h) if h.iter().eq(header.iter().map(String::as_str)) => {}
         Ok(_) => report.problems.push(Problem::Unreadable {
@@ -1310,6 +1357,65 @@ mod tests {
     use fringe_store::{CalKind, DeviceInfo, NewCalibration, NewLabSample, Source};
 
     const T0: i64 = 1_796_104_800_000;
+
+    /// A bundle in memory with an empty range's manifest and `records`.
+    fn memory_bundle(records: &[u8], cals: Option<&[u8]>) -> BTreeMap<String, Vec<u8>> {
+        let m = Manifest {
+            format: FORMAT.into(),
+            tool: "test".into(),
+            created_utc: String::new(),
+            database: "t.db".into(),
+            from_ms: 0,
+            to_ms: 0,
+            first_position: 1,
+            last_position: 1,
+            anchor_hash: chain::hex(&GENESIS),
+            last_hash: chain::hex(&GENESIS),
+            db_head_position: 1,
+            db_head_hash: chain::hex(&GENESIS),
+            records: BTreeMap::new(),
+            columns: BTreeMap::new(),
+            files: Vec::new(),
+        };
+        let mut files = BTreeMap::new();
+        files.insert(MANIFEST.to_string(), serde_json::to_vec(&m).unwrap());
+        files.insert(RECORDS.to_string(), records.to_vec());
+        if let Some(c) = cals {
+            files.insert(CALS_IN_FORCE.to_string(), c.to_vec());
+        }
+        files
+    }
+
+    #[test]
+    fn bundle_files_that_are_not_utf8_are_reported_with_their_line() {
+        // Before: a records.jsonl line that is not UTF-8 ended the check
+        // with an I/O error, and a calibrations_in_force.json that is not
+        // UTF-8 was passed over in silence.
+        let r = verify_files(&memory_bundle(
+            b"\n{\"position\": 1}\n\xff\xfe\n",
+            Some(b"[\xff]"),
+        ))
+        .unwrap();
+        let unreadable: Vec<(String, u64)> = r
+            .problems
+            .iter()
+            .filter_map(|p| match p {
+                Problem::Unreadable { file, line, .. } => Some((file.clone(), *line)),
+                _ => None,
+            })
+            .collect();
+        assert_eq!(
+            unreadable,
+            vec![
+                (RECORDS.to_string(), 2),
+                (RECORDS.to_string(), 3),
+                (CALS_IN_FORCE.to_string(), 1)
+            ],
+            "{:?}",
+            r.problems
+        );
+        assert!(!r.ok());
+    }
 
     #[test]
     fn infinite_reals_survive_the_bundle_json() {
