@@ -1,0 +1,61 @@
+//! Fuzz target for the reference-sample CSV reader
+//! (`fringe_quality::samples::parse_samples`).
+//!
+//! Beyond "never panics": a table it accepts holds what its documentation
+//! promises (ids unique and non-empty, finite numbers within the stated
+//! limits, one frequency pair), and what `write_samples` writes from it
+//! reads back with the same ids in the same order.
+#![no_main]
+
+use std::path::Path;
+
+use fringe_quality::samples::{parse_samples, write_samples, MoistureColumn, SampleSet};
+use libfuzzer_sys::fuzz_target;
+
+fn check(set: &SampleSet, moisture: MoistureColumn) {
+    assert!(!set.samples.is_empty(), "an accepted table has a sample");
+    let [f1, f2] = set.freqs_hz;
+    assert!(f1 > 0.0 && f1 < f2 && f2.is_finite(), "{:?}", set.freqs_hz);
+    for (i, s) in set.samples.iter().enumerate() {
+        assert!(!s.sample_id.is_empty());
+        assert!(
+            set.samples[..i].iter().all(|p| p.sample_id != s.sample_id),
+            "duplicate id {:?} accepted",
+            s.sample_id
+        );
+        match s.moisture_pct {
+            Some(m) => assert!((0.0..100.0).contains(&m), "moisture {m}"),
+            None => assert_eq!(moisture, MoistureColumn::Optional),
+        }
+        assert!((-40.0..=150.0).contains(&s.temperature_c));
+        for k in 0..2 {
+            assert!(s.eps_re[k].is_finite() && s.eps_re[k] >= 1.0);
+            assert!(s.eps_im[k].is_finite() && s.eps_im[k] >= 0.0);
+            assert!((s.freqs_hz[k] - set.freqs_hz[k]).abs() <= 1e-6 * set.freqs_hz[k]);
+        }
+    }
+    assert_eq!(
+        set.all_have_moisture,
+        set.samples.iter().all(|s| s.moisture_pct.is_some())
+    );
+    // Written back (values rounded to the columns' digits), the ids survive.
+    let mut out = Vec::new();
+    write_samples(&mut out, &set.samples).expect("writes to memory");
+    if let Ok(again) = parse_samples(Path::new("again.csv"), &out, MoistureColumn::Optional) {
+        let ids = |s: &SampleSet| {
+            s.samples
+                .iter()
+                .map(|r| r.sample_id.clone())
+                .collect::<Vec<_>>()
+        };
+        assert_eq!(ids(set), ids(&again), "ids written back");
+    }
+}
+
+fuzz_target!(|data: &[u8]| {
+    for moisture in [MoistureColumn::Required, MoistureColumn::Optional] {
+        if let Ok(set) = parse_samples(Path::new("fuzz/lab.csv"), data, moisture) {
+            check(&set, moisture);
+        }
+    }
+});
