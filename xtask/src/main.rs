@@ -7,7 +7,7 @@
 //!   `tests/python/requirements.txt`. Then: fmt, clippy, the architecture
 //!   check of `docs/ARCHITECTURE.md` ([`arch`]), workspace tests,
 //!   `no_std` cross-builds, the outside checks against those libraries, the
-//!   fuzz crate's build and smoke run, the board build and the QEMU
+//!   fuzz crates' build and smoke run ([`fuzz`]), the board build and the QEMU
 //!   end-to-end tests (the protocol, and Modbus RTU read by pymodbus).
 //!
 //! Nothing is skipped in silence. A part that cannot run (a tool missing and
@@ -29,6 +29,7 @@ mod qemu;
 
 mod arch;
 mod bench_gateway;
+mod fuzz;
 
 const TARGET: &str = "thumbv7em-none-eabihf";
 
@@ -74,7 +75,7 @@ const OPTIONAL_PARTS: [(&str, &str); 3] = [
         "python",
         "outside checks against Python reference libraries, and plant clients against real servers (tests/tests/outside.rs, plant.rs, postgres.rs, gateway.rs, fleet.rs; mosquitto, PostgreSQL, headless Chromium)",
     ),
-    ("fuzz", "fuzz crate build and smoke run (protocol/fuzz)"),
+    ("fuzz", "fuzz crates' build and smoke run (protocol/fuzz, firmware/fuzz, host/fuzz)"),
     (
         "qemu",
         "QEMU end-to-end tests of the firmware (tests/tests/qemu.rs; modbus_rtu.rs with pymodbus from the Python venv)",
@@ -355,7 +356,7 @@ fn test(args: &[String]) -> Result<()> {
             ])
             .env("FRINGE_PYTHON", venv_python()))
     })?;
-    optional(&mut ledger, &skip, "fuzz", ensure_fuzz_tools, fuzz_smoke)?;
+    optional(&mut ledger, &skip, "fuzz", ensure_fuzz_tools, fuzz::smoke)?;
     // The board crate is built in every run; only its QEMU test is optional.
     board()?;
     optional(
@@ -431,9 +432,6 @@ fn verdict(ledger: &Ledger) -> Result<String, String> {
     }
 }
 
-/// Fuzz targets of `protocol/fuzz` and their smoke-run length, seconds.
-const FUZZ_SMOKE: [(&str, u32); 2] = [("decoder", 20), ("payload", 10)];
-
 /// A command that runs outside the stable toolchain `cargo xtask` runs in.
 fn nightly_cargo() -> Command {
     let mut c = Command::new("cargo");
@@ -456,32 +454,6 @@ fn succeeds(cmd: &mut Command) -> bool {
         .status()
         .map(|s| s.success())
         .unwrap_or(false)
-}
-
-/// Builds every fuzz target (`cargo +nightly fuzz build`), then short
-/// libFuzzer runs of each from the committed seed corpus; new inputs go to a
-/// scratch folder, not into the tree.
-fn fuzz_smoke() -> Result<()> {
-    let dir = root().join("protocol");
-    run(nightly_cargo().current_dir(&dir).args(["fuzz", "build"]))?;
-    for (target, secs) in FUZZ_SMOKE {
-        let scratch =
-            std::env::temp_dir().join(format!("fringe-fuzz-{target}-{}", std::process::id()));
-        std::fs::create_dir_all(&scratch)
-            .with_context(|| format!("could not create {}", scratch.display()))?;
-        let seeds = dir.join("fuzz/seeds").join(target);
-        let result = run(nightly_cargo()
-            .current_dir(&dir)
-            .args(["fuzz", "run", target])
-            .arg(&scratch)
-            .arg(&seeds)
-            .args(["--", &format!("-max_total_time={secs}")]));
-        let _ = std::fs::remove_dir_all(&scratch);
-        result.with_context(|| {
-            format!("fuzz target {target} failed: the crashing input is in protocol/fuzz/artifacts/{target}/")
-        })?;
-    }
-    Ok(())
 }
 
 /// The board crates: fmt, clippy, release build of each (the QEMU board
@@ -753,13 +725,18 @@ fn main() -> Result<()> {
         Some("size") => size(),
         Some("arch") => arch::check(&root()),
         Some("bench-gateway") => bench_gateway::run(&root(), &args[1..]),
+        Some("fuzz") => ensure_fuzz_tools().and_then(|()| fuzz::campaign(&args[1..])),
         _ => {
-            eprintln!("usage: cargo xtask <test | arch | firmware | qemu | size | bench-gateway>");
+            eprintln!(
+                "usage: cargo xtask <test | arch | firmware | qemu | size | bench-gateway | fuzz>"
+            );
             eprintln!("  test      every test (installs what it needs; --skip qemu,fuzz,python leaves parts out)");
             eprintln!("  arch      the architecture check of docs/ARCHITECTURE.md (crates, module cycles, quiet libraries)");
             eprintln!("  firmware  build the QEMU board binary (firmware/boards/qemu-mps2)");
             eprintln!("  qemu      boot it under QEMU with UART0 and UART1 (Modbus) on ptys and print both");
             eprintln!("  size      flash/RAM of both boards' ELFs; stack high-water and cost per reading (QEMU)");
+            eprintln!("  fuzz --minutes N [--merge] [TARGET...]  fuzz campaigns of N minutes per target; executions and crashes per target; --merge adds new coverage to the seeds");
+            eprintln!("  fuzz --smoke  the fuzz part of `test` alone (build every target, run each briefly from its seeds)");
             eprintln!("  bench-gateway [N ...] [--seconds S] [--pty]  fringe gateway's CPU and memory per simulated device (Linux)");
             bail!("unknown or missing xtask command")
         }
