@@ -1168,7 +1168,8 @@ fn verify_bundle(
             });
         }
         prev = p.hash;
-        expected = p.position + 1;
+        // A position is any u64 the file says: no overflow at the last one.
+        expected = p.position.saturating_add(1);
     }
     let last = sorted.last().map(|p| (p.position, p.hash));
     match last {
@@ -1415,6 +1416,31 @@ mod tests {
             r.problems
         );
         assert!(!r.ok());
+    }
+
+    #[test]
+    fn a_record_at_the_last_possible_position_is_checked_without_overflow() {
+        // Found on review after fuzzing (the fuzzer did not reach it):
+        // the next expected position overflowed, a panic in a debug build.
+        let mut columns = BTreeMap::new();
+        columns.insert("devices".to_string(), vec!["serial".to_string()]);
+        let mut files = memory_bundle(
+            format!(
+                "{{\"position\": {}, \"table\": \"devices\", \"hash\": \"{}\", \"values\": {{\"serial\": \"X\"}}}}\n",
+                u64::MAX,
+                chain::hex(&GENESIS)
+            )
+            .as_bytes(),
+            None,
+        );
+        let mut m: Manifest = serde_json::from_slice(&files[MANIFEST]).unwrap();
+        m.columns = columns;
+        m.first_position = u64::MAX;
+        m.last_position = u64::MAX;
+        files.insert(MANIFEST.to_string(), serde_json::to_vec(&m).unwrap());
+        let r = verify_files(&files).unwrap();
+        assert_eq!(r.records_checked, 1);
+        assert!(!r.ok(), "the hash does not link: {:?}", r.problems);
     }
 
     #[test]
