@@ -230,7 +230,8 @@ fn hex_of(b: &[u8]) -> String {
 }
 
 fn unhex(s: &str) -> Option<Vec<u8>> {
-    if !s.len().is_multiple_of(2) {
+    // `from_str_radix` alone would also take a sign ("+e").
+    if !s.len().is_multiple_of(2) || !s.bytes().all(|b| b.is_ascii_hexdigit()) {
         return None;
     }
     (0..s.len())
@@ -1441,6 +1442,16 @@ mod tests {
         let r = verify_files(&files).unwrap();
         assert_eq!(r.records_checked, 1);
         assert!(!r.ok(), "the hash does not link: {:?}", r.problems);
+    }
+
+    #[test]
+    fn a_plus_sign_is_not_a_hex_digit_of_a_hash_or_blob() {
+        // The defect fuzzing found in the key file reader (target `key`)
+        // was here too: "+e" read as 0x0e, so a record's hash could be
+        // written two ways.
+        assert_eq!(unhex("0e0f"), Some(vec![0x0e, 0x0f]));
+        assert_eq!(unhex("+e0f"), None);
+        assert_eq!(hash_from_hex(&format!("+e{}", "0".repeat(62))), None);
     }
 
     #[test]

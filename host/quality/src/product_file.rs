@@ -464,7 +464,7 @@ fn line_col(text: &str, at: usize) -> (usize, usize) {
 pub fn parse_cal_id(s: &str) -> Option<CalId> {
     u32::from_str_radix(s, 16)
         .ok()
-        .filter(|_| s.len() == 8)
+        .filter(|_| s.len() == 8 && s.bytes().all(|b| b.is_ascii_hexdigit()))
         .map(|v| CalId(v.to_be_bytes()))
 }
 
@@ -542,5 +542,7 @@ mod tests {
     fn cal_id_parsing() {
         assert_eq!(parse_cal_id("0000002a"), Some(CalId([0, 0, 0, 42])));
         assert_eq!(parse_cal_id("2a"), None);
+        // No sign (the defect fuzzing found in the key file reader).
+        assert_eq!(parse_cal_id("+000002a"), None);
     }
 }
