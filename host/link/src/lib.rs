@@ -41,6 +41,8 @@ fn refusal_hint(code: u16, reason: &str) -> &'static str {
         "; wrong key file? The key file must hold this device's write key (64 hex digits)"
     } else if reason.contains("needs an auth tag") {
         "; give the device's key file with --key-file (or key_file in the line file)"
+    } else if reason.contains("held off") {
+        "; the device holds writes off after failed ones (1 s after the fourth in a row, doubling to 64 s): check the key file before trying again"
     } else {
         ""
     }
