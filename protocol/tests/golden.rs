@@ -510,6 +510,7 @@ fn fuzz_seeds_are_the_golden_frames() {
         ("write-modbus", WRITE_MODBUS),
         ("modbus", MODBUS),
         ("modbus-changed", MODBUS_CHANGED),
+        ("writes-held", WRITES_HELD),
     ] {
         let seed = std::fs::read(dir.join("decoder").join(name)).unwrap();
         assert_eq!(&seed[1..], golden, "fuzz/seeds/decoder/{name}");

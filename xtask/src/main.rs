@@ -753,6 +753,7 @@ fn main() -> Result<()> {
         Some("size") => size(),
         Some("arch") => arch::check(&root()),
         Some("bench-gateway") => bench_gateway::run(&root(), &args[1..]),
+        Some("soak") => soak(&args[1..]),
         _ => {
             eprintln!("usage: cargo xtask <test | arch | firmware | qemu | size | bench-gateway>");
             eprintln!("  test      every test (installs what it needs; --skip qemu,fuzz,python leaves parts out)");
@@ -761,9 +762,41 @@ fn main() -> Result<()> {
             eprintln!("  qemu      boot it under QEMU with UART0 and UART1 (Modbus) on ptys and print both");
             eprintln!("  size      flash/RAM of both boards' ELFs; stack high-water and cost per reading (QEMU)");
             eprintln!("  bench-gateway [N ...] [--seconds S] [--pty]  fringe gateway's CPU and memory per simulated device (Linux)");
+            eprintln!("  soak [--readings N] [--kills K] [--devices D] [--error-rate E] [--scale S]  the long soak of the line (release build)");
             bail!("unknown or missing xtask command")
         }
     }
+}
+
+/// The long soak (tests/examples/soak.rs) against a release `fringe`.
+fn soak(args: &[String]) -> Result<()> {
+    let cargo = || Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
+    run(cargo().current_dir(root()).args([
+        "build",
+        "--release",
+        "-p",
+        "fringe-host",
+        "--bin",
+        "fringe",
+    ]))?;
+    run(cargo()
+        .current_dir(root())
+        .env(
+            "FRINGE_BIN",
+            std::env::var_os("CARGO_TARGET_DIR")
+                .map_or_else(|| root().join("target"), PathBuf::from)
+                .join("release/fringe"),
+        )
+        .args([
+            "run",
+            "--release",
+            "-p",
+            "fringe-tests",
+            "--example",
+            "soak",
+            "--",
+        ])
+        .args(args))
 }
 
 #[cfg(test)]
