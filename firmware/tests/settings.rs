@@ -281,6 +281,7 @@ fn a_settings_write_is_old_or_new_after_a_cut_at_any_step() {
         let (w1, e1) = b.dev.flash_mut().op_counts();
         let steps = (w1 + e1) - (w0 + e0);
         assert!(steps >= 2, "{steps} flash operations");
+        println!("power cuts tried (settings write): {steps}");
         for k in 0..steps {
             let mut b = boot(flash.clone(), 10);
             b.counter = counter;
