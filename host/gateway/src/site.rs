@@ -327,10 +327,19 @@ impl Site {
     /// # Errors
     /// [`SiteError`] naming the file, the line and the field.
     pub fn load(path: &Path) -> Result<Self, SiteError> {
-        let text = std::fs::read_to_string(path).map_err(|source| SiteError::Read {
+        let bytes = std::fs::read(path).map_err(|source| SiteError::Read {
             path: path.to_path_buf(),
             source,
         })?;
+        let text =
+            fringe_quality::product_file::utf8_text(bytes).map_err(|(line, column, message)| {
+                SiteError::Parse {
+                    path: path.to_path_buf(),
+                    line,
+                    column,
+                    message,
+                }
+            })?;
         Self::parse(path, &text)
     }
 

@@ -457,9 +457,15 @@ impl ProductFile {
     /// # Errors
     /// [`ProductFileError`].
     pub fn load(path: &Path) -> Result<(ProductFile, ProductCal), ProductFileError> {
-        let text = std::fs::read_to_string(path).map_err(|e| ProductFileError::Io {
+        let bytes = std::fs::read(path).map_err(|e| ProductFileError::Io {
             path: path.to_path_buf(),
             reason: e.to_string(),
+        })?;
+        let text = utf8_text(bytes).map_err(|(line, column, reason)| ProductFileError::Parse {
+            path: path.to_path_buf(),
+            line,
+            column,
+            reason,
         })?;
         let f: ProductFile = toml::from_str(&text).map_err(|e| {
             let (line, column) = e.span().map_or((1, 1), |s| line_col(&text, s.start));
@@ -496,6 +502,29 @@ impl ProductFile {
         std::fs::write(&tmp, text).map_err(io)?;
         std::fs::rename(&tmp, path).map_err(io)
     }
+}
+
+/// The bytes of a text file as a string, or the line and column (1-based)
+/// of the first byte that is not UTF-8 and a reason in words (a file saved
+/// as Latin-1 or UTF-16 by an editor).
+///
+/// # Errors
+/// `(line, column, reason)`.
+pub fn utf8_text(bytes: Vec<u8>) -> Result<String, (usize, usize, String)> {
+    String::from_utf8(bytes).map_err(|e| {
+        let at = e.utf8_error().valid_up_to();
+        let bytes = e.into_bytes();
+        let text = String::from_utf8_lossy(&bytes[..at]);
+        let (line, column) = line_col(&text, at);
+        (
+            line,
+            column,
+            format!(
+                "byte 0x{:02X} is not UTF-8 text: save the file as UTF-8",
+                bytes[at]
+            ),
+        )
+    })
 }
 
 fn line_col(text: &str, at: usize) -> (usize, usize) {
@@ -632,6 +661,22 @@ mod tests {
             .to_string()
             .contains("`sec_pct`"));
         let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    /// Regression: a file saved as Latin-1 or UTF-16 was refused as
+    /// "stream did not contain valid UTF-8", without saying where.
+    #[test]
+    fn a_file_that_is_not_utf8_is_named_with_line_and_column() {
+        assert_eq!(utf8_text(b"a = 1\n".to_vec()).as_deref(), Ok("a = 1\n"));
+        let (line, column, reason) =
+            utf8_text(b"format = \"x\"\nname = \"Gr\xfcn\"\n".to_vec()).expect_err("Latin-1");
+        assert_eq!((line, column), (2, 11), "{reason}");
+        assert!(
+            reason.contains("0xFC") && reason.contains("UTF-8"),
+            "{reason}"
+        );
+        let (line, column, _) = utf8_text(vec![0xFF, 0xFE, b'a', 0]).expect_err("UTF-16");
+        assert_eq!((line, column), (1, 1));
     }
 
     #[test]

@@ -56,9 +56,25 @@ pub fn line_column(text: &str, at: usize) -> (usize, usize) {
 /// # Errors
 /// [`FileError::Read`] or [`FileError::Parse`].
 pub fn load_toml<T: DeserializeOwned>(path: &Path) -> Result<T, FileError> {
-    let text = std::fs::read_to_string(path).map_err(|source| FileError::Read {
+    let bytes = std::fs::read(path).map_err(|source| FileError::Read {
         path: path.to_path_buf(),
         source,
+    })?;
+    // A file saved as Latin-1 or UTF-16: the place of its first byte that
+    // is not UTF-8.
+    let text = String::from_utf8(bytes).map_err(|e| {
+        let at = e.utf8_error().valid_up_to();
+        let bytes = e.into_bytes();
+        let (line, column) = line_column(&String::from_utf8_lossy(&bytes[..at]), at);
+        FileError::Parse {
+            path: path.to_path_buf(),
+            line,
+            column,
+            message: format!(
+                "byte 0x{:02X} is not UTF-8 text: save the file as UTF-8",
+                bytes[at]
+            ),
+        }
     })?;
     parse_toml(path, &text)
 }
@@ -82,6 +98,22 @@ pub fn parse_toml<T: DeserializeOwned>(path: &Path, text: &str) -> Result<T, Fil
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Regression: a scenario or line file saved as Latin-1 or UTF-16 was
+    /// refused as "stream did not contain valid UTF-8", without saying where.
+    #[test]
+    fn a_file_that_is_not_utf8_is_named_with_line_and_column() {
+        #[derive(Debug, serde::Deserialize)]
+        struct T {
+            #[allow(dead_code)]
+            name: String,
+        }
+        let dir = tempfile::tempdir().expect("dir");
+        let p = dir.path().join("s.toml");
+        std::fs::write(&p, b"# M\xfchle\nname = \"x\"\n").expect("write");
+        let e = load_toml::<T>(&p).expect_err("Latin-1").to_string();
+        assert!(e.contains("s.toml:1:4") && e.contains("0xFC"), "{e}");
+    }
 
     #[test]
     fn line_column_counts_from_one() {
