@@ -1207,10 +1207,10 @@ fn other_kinds(rng: &mut StdRng) -> Vec<Kind> {
             ),
             case("UTF-16", Setup::Bytes(utf16(&good)), BAD_FILE, &[path]),
             case(
-                "byte-order mark",
-                Setup::Bytes(bom(&good)),
+                "byte-order mark, then 63 digits",
+                Setup::Bytes(bom(&hex.as_bytes()[..63])),
                 BAD_FILE,
-                &[path, "64 hex digits"],
+                &[path, "found 63 characters"],
             ),
             case(
                 "a 1 MiB line",
