@@ -255,6 +255,13 @@ fn check_kind(kind: &Kind, seed: u64) -> Count {
         } else {
             o.stderr.clone()
         };
+        // A message a person can read: a 1 MiB value is not echoed whole.
+        assert!(
+            o.stderr.len() < 4096,
+            "{ctx}: a message of {} bytes:\n{}",
+            o.stderr.len(),
+            o.stderr.chars().take(2000).collect::<String>()
+        );
         for n in &c.needles {
             assert!(
                 message.contains(n.as_str()),

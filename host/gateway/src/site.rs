@@ -71,7 +71,7 @@ pub enum SiteError {
         source: std::io::Error,
     },
     /// Not valid TOML for the schema (the message names the key).
-    #[error("{path}:{line}:{column}: {message}")]
+    #[error("{path}:{line}:{column}: {}", fringe_quality::samples::shorten(.message, 300))]
     Parse {
         /// File.
         path: PathBuf,
@@ -83,7 +83,7 @@ pub enum SiteError {
         message: String,
     },
     /// A value is not allowed.
-    #[error("{path}:{line}: {field} = {value}: {rule}")]
+    #[error("{path}:{line}: {field} = {}: {rule}", fringe_quality::samples::shorten(.value, 80))]
     Invalid {
         /// File.
         path: PathBuf,
