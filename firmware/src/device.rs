@@ -27,6 +27,11 @@
 //! with [`ErrorCode::AuthFailed`] and an [`EventKind::AuthFailed`] event is
 //! stored. An accepted counter is stored before the write is carried out,
 //! so a request can never be replayed, even after a power cut. Values are
+//! After [`FREE_WRITE_FAILURES`] failed writes in a row, writes are held
+//! off for a time that doubles with each further failure
+//! ([`write_hold_ms`]); a write during a hold is refused unchecked with
+//! [`AuthFailure::Throttled`] (logged once per hold). Reads are never held
+//! off. Values are
 //! then checked (finite, in range) and refused with
 //! [`ErrorCode::NotFinite`], [`ErrorCode::OutOfRange`],
 //! [`ErrorCode::NoSuchSlot`] or [`ErrorCode::BadCalibration`] without
@@ -55,6 +60,31 @@ use crate::storage::{key, Storage, StorageError, StoredIdentity};
 
 /// Firmware version, `[major, minor, patch]`.
 pub const FIRMWARE_VERSION: [u8; 3] = [0, 1, 0];
+/// Failed writes in a row the device takes without holding writes off.
+pub const FREE_WRITE_FAILURES: u32 = 3;
+/// Longest hold after failed writes, ms.
+pub const MAX_WRITE_HOLD_MS: u64 = 64_000;
+
+/// How long writes are held off after the `failures`-th failed write in a
+/// row, ms: none for the first [`FREE_WRITE_FAILURES`], then 1 s,
+/// doubling with each further failure up to [`MAX_WRITE_HOLD_MS`]. During a
+/// hold every write is refused unchecked ([`AuthFailure::Throttled`]) and
+/// does not count as a failure, so an online guess costs the whole hold: at
+/// most about 1,350 guesses a day against a 256-bit key. An accepted write
+/// ends the count; so does a restart (the count is not kept in flash, which
+/// a stream of guesses would wear, and a restart needs the key or the power).
+pub const fn write_hold_ms(failures: u32) -> u64 {
+    if failures <= FREE_WRITE_FAILURES {
+        return 0;
+    }
+    let doublings = failures - FREE_WRITE_FAILURES - 1;
+    if doublings >= 6 {
+        MAX_WRITE_HOLD_MS
+    } else {
+        1000 << doublings
+    }
+}
+
 /// Shortest `StartStream` period accepted, ms (since protocol 1.1 the
 /// period is only checked; the device measures at its own interval).
 pub const MIN_PERIOD_MS: u32 = 100;
@@ -206,6 +236,13 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     boot: u32,
     counter: u32,
     write_counter: u32,
+    /// Failed writes in a row since the last accepted one (RAM only).
+    auth_failures: u32,
+    /// Writes are held off, unchecked, until this time (ms since the board
+    /// started); see [`write_hold_ms`].
+    auth_hold_until_ms: u64,
+    /// A refusal during the current hold has been logged.
+    auth_hold_logged: bool,
     next_event: u32,
     boot_ms: u64,
     clock_offset_ms: Option<i64>,
@@ -418,6 +455,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             boot: st.boot,
             counter: 0,
             write_counter: st.write_counter,
+            auth_failures: 0,
+            auth_hold_until_ms: 0,
+            auth_hold_logged: false,
             next_event: st.next_event,
             boot_ms: now_ms,
             clock_offset_ms: None,
@@ -697,12 +737,26 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
 
     /// `ev` as the host can decode it: a host below protocol 1.2 (or one
     /// that has not identified itself) gets a `ModbusChanged` as a
-    /// `SettingsChanged` with the two settings' content ids.
+    /// `SettingsChanged` with the two settings' content ids; a host below
+    /// 1.3 gets a `Throttled` refusal as `BadTag` (the nearest reason it
+    /// knows; the refusal's text says what happened).
     fn for_host(&self, ev: Event) -> Event {
-        let old_host = self
-            .host_version
-            .is_none_or(|v| v < Version { major: 1, minor: 2 });
+        let below = |minor| {
+            self.host_version
+                .is_none_or(|v| v < Version { major: 1, minor })
+        };
+        let old_host = below(2);
         match ev.kind {
+            EventKind::AuthFailed {
+                reason: AuthFailure::Throttled,
+                counter,
+            } if below(3) => Event {
+                kind: EventKind::AuthFailed {
+                    reason: AuthFailure::BadTag,
+                    counter,
+                },
+                ..ev
+            },
             EventKind::ModbusChanged { old, new } if old_host => Event {
                 kind: EventKind::SettingsChanged {
                     old: old.content_id(),
@@ -750,6 +804,38 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
 
     fn authorize(&mut self, now_ms: u64, frame: &HostFrame, tx: &mut dyn FnMut(&[u8])) -> bool {
         let carried = frame.auth.map_or(0, |a| a.counter);
+        if now_ms < self.auth_hold_until_ms {
+            // Held off: refused without checking the tag, so a guess costs
+            // the whole hold. The first refusal of a hold is logged, the
+            // rest only answered (the event log is flash).
+            if !self.auth_hold_logged {
+                self.auth_hold_logged = true;
+                self.event(
+                    now_ms,
+                    EventKind::AuthFailed {
+                        reason: AuthFailure::Throttled,
+                        counter: carried,
+                    },
+                    tx,
+                );
+            }
+            let left_s = (self.auth_hold_until_ms - now_ms).div_ceil(1000);
+            let mut why: heapless::String<32> = heapless::String::new();
+            // Fits: at most "writes held off for 64 s more" (29 characters).
+            let _ = core::fmt::Write::write_fmt(
+                &mut why,
+                format_args!("writes held off for {left_s} s more"),
+            );
+            self.send(
+                tx,
+                &DeviceFrame::Error {
+                    id: frame.id,
+                    code: ErrorCode::AuthFailed,
+                    reason: short_string(&why),
+                },
+            );
+            return false;
+        }
         let reason = match verify(&self.key, &self.serial, frame.auth.as_ref(), &frame.request) {
             Err(reason) => Some(reason),
             Ok(c) if c <= self.write_counter => Some(AuthFailure::Replay),
@@ -767,8 +853,17 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             }
         };
         match reason {
-            None => true,
+            None => {
+                self.auth_failures = 0;
+                true
+            }
             Some(reason) => {
+                self.auth_failures = self.auth_failures.saturating_add(1);
+                let hold = write_hold_ms(self.auth_failures);
+                if hold > 0 {
+                    self.auth_hold_until_ms = now_ms.saturating_add(hold);
+                    self.auth_hold_logged = false;
+                }
                 self.event(
                     now_ms,
                     EventKind::AuthFailed {
@@ -781,6 +876,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                     AuthFailure::Missing => "write needs an auth tag",
                     AuthFailure::BadTag => "auth tag does not verify",
                     AuthFailure::Replay => "auth counter not above stored",
+                    AuthFailure::Throttled => "writes held off",
                 };
                 self.refuse(tx, frame.id, (ErrorCode::AuthFailed, why));
                 false

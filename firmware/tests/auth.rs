@@ -4,7 +4,9 @@
 mod common;
 
 use common::*;
+use fringe_firmware::device::{write_hold_ms, FREE_WRITE_FAILURES, MAX_WRITE_HOLD_MS};
 use fringe_firmware::protocol::auth::sign;
+use fringe_firmware::protocol::frame::encode_with_version;
 use fringe_firmware::protocol::*;
 use fringe_firmware::Scenario;
 
@@ -46,6 +48,9 @@ fn every_bad_write_is_refused_logged_and_changes_nothing() {
     let f = b.ask_with(evil.clone(), Some(a));
     assert_eq!(Bench::error_code(&f), Some(ErrorCode::AuthFailed));
 
+    // The fourth failure in a row starts a hold; wait it out so the next
+    // ones are checked (the hold itself is tested below).
+    b.tick(MAX_WRITE_HOLD_MS);
     // One bit flipped in the payload (after signing).
     let a = sign(&KEY, SERIAL, 503, &evil).unwrap();
     let mut flipped = cell(9.9);
@@ -53,10 +58,12 @@ fn every_bad_write_is_refused_logged_and_changes_nothing() {
     let f = b.ask_with(Request::WriteCellCal(flipped), Some(a));
     assert_eq!(Bench::error_code(&f), Some(ErrorCode::AuthFailed));
 
+    b.tick(MAX_WRITE_HOLD_MS);
     // Missing tag.
     let f = b.ask_with(evil.clone(), None);
     assert_eq!(Bench::error_code(&f), Some(ErrorCode::AuthFailed));
 
+    b.tick(MAX_WRITE_HOLD_MS);
     // Replay of the counter the good write used (101), correctly signed.
     let a = sign(&KEY, SERIAL, 101, &evil).unwrap();
     let f = b.ask_with(evil.clone(), Some(a));
@@ -76,6 +83,7 @@ fn every_bad_write_is_refused_logged_and_changes_nothing() {
         ]
     );
     // Survives a reboot: still the good calibration, and the replay stays refused.
+    b.tick(MAX_WRITE_HOLD_MS);
     let mut b = b.reboot(11);
     assert_eq!(stored_cell(&mut b), Some(cell(2.1)));
     let a = sign(&KEY, SERIAL, 101, &evil).unwrap();
@@ -107,4 +115,323 @@ fn a_valid_write_with_a_higher_counter_is_accepted_and_logged() {
             (cell(2.1).content_id(), cell(2.2).content_id())
         ]
     );
+}
+
+/// Announces this protocol version (a host below 1.3 is sent a hold's
+/// event as `BadTag`, tested below).
+fn identify(b: &mut Bench) {
+    assert!(matches!(
+        b.ok(Request::Identify {
+            host: PROTOCOL_VERSION
+        }),
+        Response::Identity(_)
+    ));
+}
+
+fn refusal(f: &DeviceFrame) -> (ErrorCode, String) {
+    match f {
+        DeviceFrame::Error { code, reason, .. } => (*code, reason.as_str().to_string()),
+        other => panic!("expected a refusal, got {other:?}"),
+    }
+}
+
+/// A correctly signed write of `request` with the bench's next counter.
+fn signed(b: &mut Bench, request: &Request) -> Auth {
+    b.counter += 1;
+    sign(&KEY, SERIAL, b.counter, request).unwrap()
+}
+
+/// The hold after failed writes (firmware/src/device.rs, `write_hold_ms`;
+/// a design value, so this is a consistency test of the device against
+/// its documented schedule): three failures in a row are free, the fourth
+/// holds writes off for 1 s, then 2, 4, ... up to 64 s. During a hold even
+/// a correctly signed write is refused unchecked, logged once per hold;
+/// reads go on; after the hold the next write is checked again, and an
+/// accepted write ends the count.
+#[test]
+fn repeated_failures_hold_writes_off_and_the_hold_doubles() {
+    let mut b = Bench::new(13, Scenario::default());
+    identify(&mut b);
+    assert_eq!(b.ok(Request::WriteCellCal(cell(2.1))), Response::Ack);
+    let evil = Request::WriteCellCal(cell(9.9));
+    let wrong = |c: u32| sign(&[0x43; 32], SERIAL, c, &evil).unwrap();
+
+    // The schedule as documented (README and WIRE.md), seconds.
+    let expected_s = [0, 0, 0, 1, 2, 4, 8, 16, 32, 64, 64, 64];
+    for (i, s) in expected_s.iter().enumerate() {
+        assert_eq!(write_hold_ms(i as u32 + 1), s * 1000, "failure {}", i + 1);
+    }
+    assert_eq!(FREE_WRITE_FAILURES, 3);
+
+    for (i, hold_s) in expected_s.iter().enumerate() {
+        let n = i as u32 + 1;
+        let f = b.ask_with(evil.clone(), Some(wrong(1000 + n)));
+        let (code, why) = refusal(&f);
+        assert_eq!(code, ErrorCode::AuthFailed, "failure {n}");
+        assert!(why.contains("does not verify"), "failure {n}: {why}");
+        if *hold_s == 0 {
+            continue;
+        }
+        // Just inside the hold: a good write is refused unchecked, twice.
+        b.tick(hold_s * 1000 - 50);
+        for _ in 0..2 {
+            let good = Request::WriteCellCal(cell(3.0));
+            let a = signed(&mut b, &good);
+            let (code, why) = refusal(&b.ask_with(good, Some(a)));
+            assert_eq!(code, ErrorCode::AuthFailed);
+            assert_eq!(why, "writes held off for 1 s more", "failure {n}");
+        }
+        // Reads are not held off.
+        assert!(matches!(b.ok(Request::Status), Response::Status(_)));
+        b.tick(100);
+    }
+    assert_eq!(stored_cell(&mut b), Some(cell(2.1)));
+
+    // Logged: every checked failure, and one Throttled per hold (9 holds).
+    let fails = auth_failures(&mut b);
+    let bad = fails
+        .iter()
+        .filter(|(r, _)| *r == AuthFailure::BadTag)
+        .count();
+    let held = fails
+        .iter()
+        .filter(|(r, _)| *r == AuthFailure::Throttled)
+        .count();
+    assert_eq!((bad, held), (expected_s.len(), 9), "{fails:?}");
+
+    // After the hold a good write is accepted, and the count starts over:
+    // three more failures are free again.
+    b.tick(MAX_WRITE_HOLD_MS);
+    assert_eq!(b.ok(Request::WriteCellCal(cell(2.2))), Response::Ack);
+    for n in 0..FREE_WRITE_FAILURES {
+        let f = b.ask_with(evil.clone(), Some(wrong(2000 + n)));
+        assert!(refusal(&f).1.contains("does not verify"));
+    }
+    assert_eq!(b.ok(Request::WriteCellCal(cell(2.3))), Response::Ack);
+    assert_eq!(stored_cell(&mut b), Some(cell(2.3)));
+}
+
+/// The hold's refusal text counts down in whole seconds.
+#[test]
+fn the_hold_refusal_says_how_long_is_left() {
+    let mut b = Bench::new(14, Scenario::default());
+    let evil = Request::SelectProduct { slot: 0 };
+    for n in 0..10u32 {
+        let a = sign(&[0x43; 32], SERIAL, 10 + n, &evil).unwrap();
+        b.ask_with(evil.clone(), Some(a));
+        b.tick(write_hold_ms(n + 1));
+    }
+    // Ten failures: the tenth's hold is 64 s; the tick above waited it
+    // out. One more failure starts another 64 s hold.
+    let a = sign(&[0x43; 32], SERIAL, 99, &evil).unwrap();
+    b.ask_with(evil.clone(), Some(a));
+    let a = signed(&mut b, &evil);
+    let (_, why) = refusal(&b.ask_with(evil.clone(), Some(a)));
+    assert_eq!(why, "writes held off for 64 s more");
+    b.tick(30_000);
+    let a = signed(&mut b, &evil);
+    let (_, why) = refusal(&b.ask_with(evil, Some(a)));
+    assert_eq!(why, "writes held off for 34 s more");
+}
+
+/// A frame whose payload bytes are given whole (to cut a tag short).
+struct Raw<'a>(&'a [u8]);
+
+impl serde::Serialize for Raw<'_> {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeTuple;
+        let mut t = s.serialize_tuple(self.0.len())?;
+        for b in self.0 {
+            t.serialize_element(b)?;
+        }
+        t.end()
+    }
+}
+
+/// Every forged write of issue 17's list, each on its own: refused, the
+/// reason logged as a device event (where the device can tell the frame
+/// was a write), the stored calibration and the write counter unchanged.
+/// The hold after failures is waited out between attempts so that each is
+/// checked.
+#[test]
+fn every_forged_write_is_refused_and_logged_with_its_reason() {
+    let mut b = Bench::new(15, Scenario::default());
+    let good = Request::WriteCellCal(cell(2.1));
+    let captured = HostFrame {
+        id: 77,
+        auth: Some(signed(&mut b, &good)),
+        request: good.clone(),
+    };
+    b.send_frame(&captured);
+    b.tick(50);
+    assert!(
+        b.seen.drain(..).any(|f| matches!(
+            f,
+            DeviceFrame::Response {
+                id: 77,
+                response: Response::Ack
+            }
+        )),
+        "the captured write was accepted"
+    );
+    assert_eq!(stored_cell(&mut b), Some(cell(2.1)));
+    let counter = match b.ok(Request::Status) {
+        Response::Status(s) => s.write_counter,
+        other => panic!("{other:?}"),
+    };
+    let before = auth_failures(&mut b).len();
+    let evil = Request::WriteCellCal(cell(9.9));
+    let mut tried = 0usize;
+    let mut expect = Vec::new();
+    let mut check = |b: &mut Bench, what: &str, f: DeviceFrame, reason: AuthFailure, c: u32| {
+        let (code, why) = refusal(&f);
+        assert_eq!(code, ErrorCode::AuthFailed, "{what}: {why}");
+        assert!(!why.contains("held off"), "{what}: {why}");
+        expect.push((reason, c));
+        b.tick(MAX_WRITE_HOLD_MS);
+        tried += 1;
+    };
+
+    // The captured write, replayed byte for byte.
+    let f = b.ask_with(good.clone(), captured.auth);
+    check(&mut b, "replay", f, AuthFailure::Replay, counter);
+    // A counter rolled back below the stored one, correctly signed.
+    let a = sign(&KEY, SERIAL, counter - 1, &evil).unwrap();
+    let f = b.ask_with(evil.clone(), Some(a));
+    check(&mut b, "rolled back", f, AuthFailure::Replay, counter - 1);
+    // The same counter as stored, correctly signed.
+    let a = sign(&KEY, SERIAL, counter, &evil).unwrap();
+    let f = b.ask_with(evil.clone(), Some(a));
+    check(&mut b, "same counter", f, AuthFailure::Replay, counter);
+    // A wrong key.
+    let a = sign(&[0x41; 32], SERIAL, counter + 1, &evil).unwrap();
+    let f = b.ask_with(evil.clone(), Some(a));
+    check(&mut b, "wrong key", f, AuthFailure::BadTag, counter + 1);
+    // Signed for another device's serial with this device's key (and with
+    // the key the other device would have, here a different one).
+    for (key, other) in [(KEY, "HGM-L2-0008"), ([0x44; 32], "HGM-L2-0008")] {
+        let a = sign(&key, other, counter + 2, &evil).unwrap();
+        let f = b.ask_with(evil.clone(), Some(a));
+        check(&mut b, "other serial", f, AuthFailure::BadTag, counter + 2);
+    }
+    // Each of the tag's 32 bytes altered (three different changes each).
+    for i in 0..32 {
+        for x in [0x01u8, 0x80, 0xff] {
+            let mut a = sign(&KEY, SERIAL, counter + 3, &evil).unwrap();
+            a.tag[i] ^= x;
+            let f = b.ask_with(evil.clone(), Some(a));
+            check(
+                &mut b,
+                &format!("tag byte {i} ^ {x:#04x}"),
+                f,
+                AuthFailure::BadTag,
+                counter + 3,
+            );
+        }
+    }
+    // The counter altered after signing.
+    let mut a = sign(&KEY, SERIAL, counter + 4, &evil).unwrap();
+    a.counter += 1;
+    let f = b.ask_with(evil.clone(), Some(a));
+    check(
+        &mut b,
+        "counter altered",
+        f,
+        AuthFailure::BadTag,
+        counter + 5,
+    );
+    // An all-zero tag.
+    let mut a = sign(&KEY, SERIAL, counter + 6, &evil).unwrap();
+    a.tag = [0; 32];
+    let f = b.ask_with(evil.clone(), Some(a));
+    check(&mut b, "zero tag", f, AuthFailure::BadTag, counter + 6);
+    // No tag.
+    let f = b.ask_with(evil.clone(), None);
+    check(&mut b, "no tag", f, AuthFailure::Missing, 0);
+    assert_eq!(
+        auth_failures(&mut b).get(before..),
+        Some(expect.as_slice()),
+        "one AuthFailed event per forged write, with its reason and counter"
+    );
+
+    // A tag cut short by 1-32 bytes (the frame's CRC made good again): the
+    // bytes that follow shift into the tag, so the frame no longer decodes
+    // as that write. Refused either as undecodable (no event: the device
+    // cannot tell it was a write) or, if the shifted bytes happen to
+    // decode, by the tag check (an event).
+    let full = postcard::to_allocvec(&HostFrame {
+        id: 90,
+        auth: Some(sign(&KEY, SERIAL, counter + 7, &evil).unwrap()),
+        request: evil.clone(),
+    })
+    .unwrap();
+    let tag = sign(&KEY, SERIAL, counter + 7, &evil).unwrap().tag;
+    let at = full
+        .windows(32)
+        .position(|w| w == tag)
+        .expect("the tag is in the payload");
+    let mut undecodable = 0;
+    for cut in 1..=32 {
+        let mut payload = full.clone();
+        payload.drain(at + 32 - cut..at + 32);
+        let mut out = [0u8; MAX_FRAME_LEN];
+        let n = encode_with_version(&Raw(&payload), PROTOCOL_VERSION, &mut out).unwrap();
+        let events = auth_failures(&mut b).len();
+        b.poll_bytes(&out[..n]);
+        b.tick(20);
+        let (code, why) = b
+            .seen
+            .drain(..)
+            .find_map(|f| match f {
+                DeviceFrame::Error { code, reason, .. } => Some((code, reason)),
+                _ => None,
+            })
+            .unwrap_or_else(|| panic!("tag cut by {cut}: no refusal"));
+        match code {
+            ErrorCode::UnknownRequest => {
+                undecodable += 1;
+                assert_eq!(auth_failures(&mut b).len(), events, "cut {cut}");
+            }
+            ErrorCode::AuthFailed => assert_eq!(auth_failures(&mut b).len(), events + 1),
+            other => panic!("tag cut by {cut}: {other:?} {why}"),
+        }
+        b.tick(MAX_WRITE_HOLD_MS);
+        tried += 1;
+    }
+    println!("forged writes tried: {tried}; tag cut short: {undecodable} of 32 undecodable");
+
+    assert_eq!(stored_cell(&mut b), Some(cell(2.1)));
+    match b.ok(Request::Status) {
+        Response::Status(s) => assert_eq!(s.write_counter, counter),
+        other => panic!("{other:?}"),
+    }
+}
+
+/// A host below protocol 1.3 cannot decode `Throttled`: it is sent the
+/// hold's event as `BadTag` (the refusal's text says what happened); a 1.3
+/// host reads the same stored event as `Throttled`.
+#[test]
+fn a_host_below_1_3_reads_a_hold_as_a_bad_tag() {
+    let mut b = Bench::new(16, Scenario::default());
+    let evil = Request::SelectProduct { slot: 0 };
+    for n in 0..=FREE_WRITE_FAILURES {
+        let a = sign(&[0x43; 32], SERIAL, 10 + n, &evil).unwrap();
+        b.ask_with(evil.clone(), Some(a));
+    }
+    let a = signed(&mut b, &evil);
+    let (_, why) = refusal(&b.ask_with(evil, Some(a)));
+    assert!(why.starts_with("writes held off"), "{why}");
+    let reasons = |b: &mut Bench| -> Vec<AuthFailure> {
+        auth_failures(b).into_iter().map(|(r, _)| r).collect()
+    };
+    let v1_2 = Version { major: 1, minor: 2 };
+    assert!(matches!(
+        b.ok(Request::Identify { host: v1_2 }),
+        Response::Identity(_)
+    ));
+    assert_eq!(reasons(&mut b), vec![AuthFailure::BadTag; 5]);
+    identify(&mut b);
+    let mut want = vec![AuthFailure::BadTag; 4];
+    want.push(AuthFailure::Throttled);
+    assert_eq!(reasons(&mut b), want);
 }

@@ -145,6 +145,7 @@ fn calibration_update_body() {
         }
     }
     assert!(steps_total >= 9);
+    println!("power cuts tried (calibration update): {steps_total}");
 }
 
 /// A device whose reading log ring is full (appends now erase the oldest page).
@@ -205,6 +206,7 @@ fn log_append_body() {
     }
     assert!(erased, "no page erase among the appends");
     let steps = ops(&mut b) - before;
+    println!("power cuts tried (log appends over a full ring): {steps}");
     for k in 0..steps {
         let mut b = fast(flash.clone(), 31);
         b.settle();

@@ -8,6 +8,7 @@
 mod common;
 
 use common::*;
+use fringe_firmware::device::MAX_WRITE_HOLD_MS;
 use fringe_firmware::protocol::auth::sign;
 use fringe_firmware::protocol::*;
 use fringe_firmware::settings::default_settings;
@@ -128,9 +129,13 @@ fn a_wrong_key_is_refused_and_changes_nothing() {
         let auth = sign(&[0x55; 32], SERIAL, b.counter, &request);
         let f = b.ask_with(request, auth);
         assert_eq!(Bench::error_code(&f), Some(ErrorCode::AuthFailed), "{what}");
+        // Past any hold after repeated failures (tests/auth.rs), so that
+        // each wrong write is checked and logged with its reason.
+        b.tick(MAX_WRITE_HOLD_MS);
         // No tag at all.
         let f = b.ask_with(Request::WriteSettings(changes()[0].1.clone()), None);
         assert_eq!(Bench::error_code(&f), Some(ErrorCode::AuthFailed), "{what}");
+        b.tick(MAX_WRITE_HOLD_MS);
         assert_eq!(read(&mut b), before, "{what}: nothing changed");
     }
     assert!(settings_events(&mut b).is_empty());
@@ -281,6 +286,7 @@ fn a_settings_write_is_old_or_new_after_a_cut_at_any_step() {
         let (w1, e1) = b.dev.flash_mut().op_counts();
         let steps = (w1 + e1) - (w0 + e0);
         assert!(steps >= 2, "{steps} flash operations");
+        println!("power cuts tried (settings write): {steps}");
         for k in 0..steps {
             let mut b = boot(flash.clone(), 10);
             b.counter = counter;

@@ -19,7 +19,7 @@ pub enum ExitCode {
     Failure = 1,
     /// 2: bad command-line arguments (clap's usage error, or a value out of its range, named with its flag).
     Usage = 2,
-    /// 3: a configuration, scenario, reference-sample or product calibration file is missing or invalid (file, line, column and field named).
+    /// 3: a configuration, scenario, site, key, reference-sample, lab-pairs or product calibration file is missing or invalid (file, line, column and field named).
     BadFile = 3,
     /// 4: the requested work finished but found problems (e.g. a broken audit chain).
     Problems = 4,
@@ -101,6 +101,9 @@ impl ExitCode {
                     .is_some()
                 || cause
                     .downcast_ref::<crate::product_file::ProductFileError>()
+                    .is_some()
+                || cause
+                    .downcast_ref::<fringe_device::key::KeyError>()
                     .is_some()
             {
                 return ExitCode::BadFile;
@@ -255,6 +258,23 @@ mod tests {
         ] {
             assert_eq!(ExitCode::for_link(&e), code, "{e}");
             assert_eq!(ExitCode::for_error(&anyhow::Error::new(e)), code);
+        }
+    }
+
+    /// Regression: an unreadable key file, or one that is not 64 hex
+    /// digits, exited with status 1 ("another error") where every other
+    /// bad input file exits with 3.
+    #[test]
+    fn a_bad_key_file_is_a_bad_file() {
+        let dir = tempfile::tempdir().expect("dir");
+        let p = dir.path().join("dev.key");
+        std::fs::write(&p, "0a0b").expect("write");
+        for e in [
+            fringe_device::key::load_key(&p).expect_err("short"),
+            fringe_device::key::load_key(dir.path()).expect_err("a folder"),
+        ] {
+            let e = anyhow::Error::new(e).context("unit 1");
+            assert_eq!(ExitCode::for_error(&e), ExitCode::BadFile, "{e:#}");
         }
     }
 

@@ -452,6 +452,9 @@ pub enum AuthFailure {
     BadTag,
     /// The counter was not above the stored one (replay).
     Replay,
+    /// Not checked: writes are held off after repeated failures (protocol
+    /// 1.3; see `protocol/WIRE.md`, "Back-off after failed writes").
+    Throttled,
 }
 
 /// What happened on the device.

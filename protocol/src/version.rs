@@ -29,7 +29,10 @@ pub struct Version {
 /// the `Modbus` response, the `ModbusChanged` event and the `MODBUS_RTU`
 /// capability (the Modbus RTU unit id, baud rate and parity as device
 /// settings).
-pub const PROTOCOL_VERSION: Version = Version { major: 1, minor: 2 };
+///
+/// 1.3 added [`crate::AuthFailure::Throttled`]: a write refused unchecked
+/// because the device holds writes off after repeated failed ones.
+pub const PROTOCOL_VERSION: Version = Version { major: 1, minor: 3 };
 
 /// Why two versions cannot talk.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

@@ -82,6 +82,15 @@ pub const STALE_OUTPUT: &[u8] = &[
     0x39, 0x00,
 ];
 
+/// `DeviceFrame::Event` number 59: a write refused during a hold
+/// (`AuthFailed { Throttled, counter 1042 }`), protocol 1.3. Computed
+/// outside Rust first (Python: LEB128 varints, `zlib.crc32`, a ten-line
+/// COBS encoder; the same script reproduces `STALE_OUTPUT` byte for byte).
+pub const WRITES_HELD: &[u8] = &[
+    0x13, 0x13, 0x03, 0x3b, 0x03, 0x90, 0x9f, 0xa0, 0xf7, 0xa2, 0x34, 0x04, 0x03, 0x92, 0x08, 0x6f,
+    0xf9, 0x15, 0x95, 0x00,
+];
+
 fn hex(b: &[u8]) -> String {
     b.iter()
         .map(|x| format!("{x:02x}"))
@@ -337,6 +346,7 @@ const DEFAULT_MODBUS: ModbusSettings = ModbusSettings {
 };
 
 const V1_2: Version = Version { major: 1, minor: 2 };
+const V1_3: Version = Version { major: 1, minor: 3 };
 
 #[test]
 fn golden_read_modbus() {
@@ -408,18 +418,59 @@ fn golden_modbus_parity_tags() {
     assert!(postcard::from_bytes::<ModbusParity>(&[0x03]).is_err());
 }
 
-/// A 1.1 peer's decoder reads a 1.2 header (equal majors) and the
-/// library's own encoder now writes 1.2.
+/// The library's own encoder now writes 1.3; a 1.2 frame (header `0x12`)
+/// still decodes (equal majors).
 #[test]
-fn version_1_2_header() {
-    assert_eq!(PROTOCOL_VERSION, V1_2);
-    let wire = frame::encode_vec(&HostFrame {
+fn version_1_3_header() {
+    assert_eq!(PROTOCOL_VERSION, V1_3);
+    let msg = HostFrame {
         id: 4,
         auth: None,
         request: Request::ReadModbus,
-    })
-    .unwrap();
-    assert_eq!(wire.as_slice(), READ_MODBUS);
+    };
+    let wire = frame::encode_vec(&msg).unwrap();
+    assert_eq!(wire[1], 0x13);
+    // The payload is the same; the header and so the CRC-32 differ.
+    assert_eq!(wire.get(2..5), READ_MODBUS.get(2..5), "payload");
+    assert_ne!(wire.get(5..), READ_MODBUS.get(5..), "CRC over the header");
+    let mut dec = FrameDecoder::<HostFrame>::new();
+    assert_eq!(dec.push(READ_MODBUS).collect::<Vec<_>>(), vec![Ok(msg)]);
+}
+
+/// A write refused during a hold after failed writes (protocol 1.3).
+#[test]
+fn golden_writes_held_event() {
+    let msg = DeviceFrame::Event(Event {
+        number: 59,
+        boot: 3,
+        time_ms: 1_796_083_290_000, // 30 s after the settings change
+        kind: EventKind::AuthFailed {
+            reason: AuthFailure::Throttled,
+            counter: 1042,
+        },
+    });
+    check_golden_as(
+        V1_3,
+        "DeviceFrame Event AuthFailed Throttled",
+        &msg,
+        WRITES_HELD,
+    );
+}
+
+/// `AuthFailure` tags: the variant's position, appended only (1.3 appended
+/// `Throttled`, tag 3).
+#[test]
+fn golden_auth_failure_tags() {
+    for (r, tag) in [
+        (AuthFailure::Missing, 0x00u8),
+        (AuthFailure::BadTag, 0x01),
+        (AuthFailure::Replay, 0x02),
+        (AuthFailure::Throttled, 0x03),
+    ] {
+        let mut buf = [0u8; 4];
+        assert_eq!(postcard::to_slice(&r, &mut buf).unwrap(), &[tag], "{r:?}");
+    }
+    assert!(postcard::from_bytes::<AuthFailure>(&[0x04]).is_err());
 }
 
 /// `ModelKind` is a postcard enum: its tag is the variant's position, so
@@ -459,6 +510,7 @@ fn fuzz_seeds_are_the_golden_frames() {
         ("write-modbus", WRITE_MODBUS),
         ("modbus", MODBUS),
         ("modbus-changed", MODBUS_CHANGED),
+        ("writes-held", WRITES_HELD),
     ] {
         let seed = std::fs::read(dir.join("decoder").join(name)).unwrap();
         assert_eq!(&seed[1..], golden, "fuzz/seeds/decoder/{name}");

@@ -14,6 +14,7 @@
 
 pub mod qemu;
 pub mod servers;
+pub mod soak;
 
 use std::collections::BTreeMap;
 use std::io::{BufRead, BufReader};
@@ -36,13 +37,20 @@ pub fn workspace_root() -> PathBuf {
         .map_or_else(|| PathBuf::from("."), Path::to_path_buf)
 }
 
-/// Path of the `fringe` binary, built (debug profile) the first time it is asked for.
+/// Path of the `fringe` binary, built (debug profile) the first time it is
+/// asked for; `FRINGE_BIN` names another one.
 ///
 /// # Panics
 /// If the build fails (the test cannot run without the binary).
 pub fn fringe_bin() -> PathBuf {
     static BIN: OnceLock<PathBuf> = OnceLock::new();
     BIN.get_or_init(|| {
+        // A binary built elsewhere (the soak runs a release build).
+        if let Some(bin) = std::env::var_os("FRINGE_BIN") {
+            let bin = PathBuf::from(bin);
+            assert!(bin.exists(), "FRINGE_BIN={} does not exist", bin.display());
+            return bin;
+        }
         let cargo = std::env::var("CARGO").unwrap_or_else(|_| "cargo".into());
         let status = Command::new(cargo)
             .current_dir(workspace_root())

@@ -10,7 +10,7 @@ use std::path::Path;
 use std::time::{Duration, Instant};
 
 use fringe_host::store::{CalKind, Source, Store};
-use fringe_protocol::{EventKind, Flags};
+use fringe_protocol::{AuthFailure, EventKind, Flags};
 use fringe_tests::*;
 
 const LIMIT: Duration = Duration::from_secs(120);
@@ -535,6 +535,119 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
     );
     // A value out of its range is a usage error (exit 2, issue 16).
     assert_fails(&o, 2, &["--stale-timeout-ms 300", "twice the interval"]);
+}
+
+/// Guessing the key online is held off (protocol/WIRE.md, "Back-off after
+/// failed writes"): wrong keys through `fringe device config set` until the
+/// device holds writes off for at least 4 s; then even the right key is
+/// refused, with the device's reason and what to do, and nothing changes;
+/// once the hold is over the right key works. The stored events name each
+/// failure and the hold.
+#[test]
+fn a_guessed_key_is_held_off_and_the_engineer_is_told_why() {
+    let mut spec = ScenarioSpec::clean("HGM-L2-0307", 47);
+    spec.time_scale = 1.0;
+    let sim = Sim::start(&spec);
+    let key = key_file(&sim);
+    let db = sim.path("line2.db");
+    let wrong = sim.path("wrong.key");
+    std::fs::write(&wrong, "55".repeat(32)).unwrap();
+    let set = |k: &str, tag: &str| {
+        run(
+            &mut fringe(&[
+                "device",
+                "config",
+                "set",
+                "--port",
+                sim.port_str(),
+                "--db",
+                db.to_str().unwrap(),
+                "--key-file",
+                k,
+                "--operator",
+                "R. Okafor",
+                "--reason",
+                "test",
+                "--yes",
+                "--tag",
+                tag,
+            ]),
+            LIMIT,
+        )
+    };
+    let held_s = |stderr: &str| -> Option<u64> {
+        let at = stderr.find("writes held off for ")? + "writes held off for ".len();
+        stderr[at..].split(' ').next()?.parse().ok()
+    };
+    // Wrong keys as fast as the tool goes; during a hold, wait a little.
+    let (mut checked, mut refused_held) = (0, 0);
+    let deadline = Instant::now() + Duration::from_secs(120);
+    loop {
+        let o = set(wrong.to_str().unwrap(), "GUESS");
+        assert_fails(&o, 16, &["the device refused"]);
+        match held_s(&o.stderr) {
+            Some(s) if checked >= 6 => {
+                assert!((1..=4).contains(&s), "{}", o.stderr);
+                assert!(o.stderr.contains("check the key file"), "{}", o.stderr);
+                break;
+            }
+            Some(_) => {
+                refused_held += 1;
+                std::thread::sleep(Duration::from_millis(100));
+            }
+            None => {
+                assert!(o.stderr.contains("does not verify"), "{}", o.stderr);
+                checked += 1;
+            }
+        }
+        assert!(checked <= 6, "a wrong key was checked during a hold");
+        assert!(
+            Instant::now() < deadline,
+            "no 4 s hold after {checked} wrong keys"
+        );
+    }
+    // Six checked failures: holds of 1, 2 and 4 s after the 4th, 5th and
+    // 6th; a hold is seen after the 4th and 5th.
+    assert!(
+        refused_held >= 2,
+        "refusals during the 1 s and 2 s holds: {refused_held}"
+    );
+    let o = set(&key, "L2-DRYER-MT-201");
+    assert_fails(&o, 16, &["held off", "check the key file"]);
+    assert_eq!(config_show(&sim)["tag"], "", "nothing changed");
+    let deadline = Instant::now() + Duration::from_secs(120);
+    loop {
+        let o = set(&key, "L2-DRYER-MT-201");
+        if o.code == 0 {
+            break;
+        }
+        assert_fails(&o, 16, &["held off"]);
+        assert!(Instant::now() < deadline, "still held off: {}", o.stderr);
+        std::thread::sleep(Duration::from_millis(250));
+    }
+    assert_eq!(config_show(&sim)["tag"], "L2-DRYER-MT-201");
+    pull_json(&sim, &db, &[]);
+    let events = Store::open_read_only(&db)
+        .unwrap()
+        .events("HGM-L2-0307")
+        .unwrap();
+    let reasons: Vec<_> = events
+        .iter()
+        .filter_map(|e| match &e.kind {
+            EventKind::AuthFailed { reason, .. } => Some(*reason),
+            _ => None,
+        })
+        .collect();
+    let bad = reasons
+        .iter()
+        .filter(|r| **r == AuthFailure::BadTag)
+        .count();
+    let held = reasons
+        .iter()
+        .filter(|r| **r == AuthFailure::Throttled)
+        .count();
+    assert!(bad >= 4 && held >= 1, "{reasons:?}");
+    assert_eq!(bad + held, reasons.len(), "{reasons:?}");
 }
 
 #[test]

@@ -726,9 +726,10 @@ fn main() -> Result<()> {
         Some("arch") => arch::check(&root()),
         Some("bench-gateway") => bench_gateway::run(&root(), &args[1..]),
         Some("fuzz") => ensure_fuzz_tools().and_then(|()| fuzz::campaign(&args[1..])),
+        Some("soak") => soak(&args[1..]),
         _ => {
             eprintln!(
-                "usage: cargo xtask <test | arch | firmware | qemu | size | bench-gateway | fuzz>"
+                "usage: cargo xtask <test | arch | firmware | qemu | size | bench-gateway | fuzz | soak>"
             );
             eprintln!("  test      every test (installs what it needs; --skip qemu,fuzz,python leaves parts out)");
             eprintln!("  arch      the architecture check of docs/ARCHITECTURE.md (crates, module cycles, quiet libraries)");
@@ -738,9 +739,41 @@ fn main() -> Result<()> {
             eprintln!("  fuzz --minutes N [--merge] [TARGET...]  fuzz campaigns of N minutes per target; executions and crashes per target; --merge adds new coverage to the seeds");
             eprintln!("  fuzz --smoke  the fuzz part of `test` alone (build every target, run each briefly from its seeds)");
             eprintln!("  bench-gateway [N ...] [--seconds S] [--pty]  fringe gateway's CPU and memory per simulated device (Linux)");
+            eprintln!("  soak [--readings N] [--kills K] [--devices D] [--error-rate E] [--scale S]  the long soak of the line (release build)");
             bail!("unknown or missing xtask command")
         }
     }
+}
+
+/// The long soak (tests/examples/soak.rs) against a release `fringe`.
+fn soak(args: &[String]) -> Result<()> {
+    let cargo = || Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
+    run(cargo().current_dir(root()).args([
+        "build",
+        "--release",
+        "-p",
+        "fringe-host",
+        "--bin",
+        "fringe",
+    ]))?;
+    run(cargo()
+        .current_dir(root())
+        .env(
+            "FRINGE_BIN",
+            std::env::var_os("CARGO_TARGET_DIR")
+                .map_or_else(|| root().join("target"), PathBuf::from)
+                .join("release/fringe"),
+        )
+        .args([
+            "run",
+            "--release",
+            "-p",
+            "fringe-tests",
+            "--example",
+            "soak",
+            "--",
+        ])
+        .args(args))
 }
 
 #[cfg(test)]

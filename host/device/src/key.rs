@@ -54,9 +54,12 @@ pub fn parse_key(path: &Path, bytes: &[u8]) -> Result<Key, KeyError> {
             e.valid_up_to()
         ))
     })?;
+    // A byte-order mark (Notepad's "UTF-8 with BOM") is no part of the key.
+    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
     let hex: String = text.split_whitespace().collect();
-    if hex.len() != 64 {
-        return Err(not_a_key(format!("{} characters", hex.len())));
+    let chars = hex.chars().count();
+    if chars != 64 {
+        return Err(not_a_key(format!("{chars} characters")));
     }
     let mut key = [0u8; 32];
     for (i, k) in key.iter_mut().enumerate() {
@@ -112,6 +115,19 @@ mod tests {
         assert_eq!(exposure(&p), None);
         std::fs::set_permissions(&p, std::fs::Permissions::from_mode(0o640)).unwrap();
         assert!(exposure(&p).is_some(), "group-readable");
+    }
+
+    /// Regression: a key file saved with a byte-order mark was refused as
+    /// "found 67 characters" (the mark counted as three).
+    #[test]
+    fn a_byte_order_mark_is_no_part_of_the_key() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("k.key");
+        std::fs::write(&p, format!("\u{feff}{}\r\n", "0a".repeat(32))).unwrap();
+        assert_eq!(load_key(&p).unwrap(), [0x0a; 32]);
+        std::fs::write(&p, format!("\u{feff}{}\u{e9}", "0a".repeat(31))).unwrap();
+        let e = load_key(&p).unwrap_err().to_string();
+        assert!(e.contains("found 63 characters"), "{e}");
     }
 
     #[test]

@@ -71,7 +71,7 @@ pub enum SiteError {
         source: std::io::Error,
     },
     /// Not valid TOML for the schema (the message names the key).
-    #[error("{path}:{line}:{column}: {message}")]
+    #[error("{path}:{line}:{column}: {}", fringe_quality::samples::shorten(.message, 300))]
     Parse {
         /// File.
         path: PathBuf,
@@ -83,7 +83,7 @@ pub enum SiteError {
         message: String,
     },
     /// A value is not allowed.
-    #[error("{path}:{line}: {field} = {value}: {rule}")]
+    #[error("{path}:{line}: {field} = {}: {rule}", fringe_quality::samples::shorten(.value, 80))]
     Invalid {
         /// File.
         path: PathBuf,
@@ -327,10 +327,19 @@ impl Site {
     /// # Errors
     /// [`SiteError`] naming the file, the line and the field.
     pub fn load(path: &Path) -> Result<Self, SiteError> {
-        let text = std::fs::read_to_string(path).map_err(|source| SiteError::Read {
+        let bytes = std::fs::read(path).map_err(|source| SiteError::Read {
             path: path.to_path_buf(),
             source,
         })?;
+        let text =
+            fringe_quality::product_file::utf8_text(bytes).map_err(|(line, column, message)| {
+                SiteError::Parse {
+                    path: path.to_path_buf(),
+                    line,
+                    column,
+                    message,
+                }
+            })?;
         Self::parse(path, &text)
     }
 

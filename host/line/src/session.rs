@@ -255,17 +255,19 @@ impl Session {
 
     /// What the session did so far.
     pub fn summary(&self) -> Summary {
+        // Every commit goes through the batcher, also those a backfill
+        // makes while it fills a gap; count them all there.
+        let t = self.batcher.total();
         Summary {
             link_errors: self.link.stats().damaged,
+            stored: t.inserted,
+            duplicates: t.duplicates + t.conflicts,
             ..self.summary
         }
     }
 
     fn flush(&mut self, store: &mut (impl RecordStore + ?Sized)) -> Result<InsertStats, LineError> {
-        let st = self.batcher.flush(store).map_err(LineError::Commit)?;
-        self.summary.stored += st.inserted;
-        self.summary.duplicates += st.duplicates + st.conflicts;
-        Ok(st)
+        self.batcher.flush(store).map_err(LineError::Commit)
     }
 
     /// Reads back what the device logged that the store lacks (before,
@@ -273,9 +275,32 @@ impl Session {
     /// what it takes from here on comes by the stream) and the events
     /// after the last stored one, and commits it.
     ///
+    /// A link failure that a reconnect may cure (a port that went away,
+    /// no answer, only damaged frames on a noisy line) is cured here as in
+    /// [`Session::poll`], and the catch-up goes on from what is committed;
+    /// when the stop flag is set meanwhile it returns `Ok`.
+    ///
     /// # Errors
-    /// [`LineError`]; what was received is committed first.
+    /// [`LineError`] that a reconnect cannot cure; what was received is
+    /// committed first.
     pub fn catch_up(
+        &mut self,
+        store: &mut (impl RecordStore + ?Sized),
+        ctx: &mut Ctx<'_>,
+    ) -> Result<(), LineError> {
+        loop {
+            match self.catch_up_once(store, ctx) {
+                Err(e) if e.is_disconnect() && !ctx.stop.load(Ordering::Relaxed) => {
+                    if !self.reconnect(store, &e, ctx)? {
+                        return Ok(());
+                    }
+                }
+                other => return other,
+            }
+        }
+    }
+
+    fn catch_up_once(
         &mut self,
         store: &mut (impl RecordStore + ?Sized),
         ctx: &mut Ctx<'_>,
@@ -308,11 +333,23 @@ impl Session {
         Ok(())
     }
 
-    /// Subscribes to the device's readings.
+    /// Subscribes to the device's readings. A failure that a reconnect
+    /// may cure is left to the next [`Session::poll`], which reconnects,
+    /// catches up and subscribes.
     ///
     /// # Errors
-    /// [`LineError::Link`].
+    /// [`LineError::Link`] that a reconnect cannot cure.
     pub fn subscribe(&mut self, ctx: &mut Ctx<'_>) -> Result<(), LineError> {
+        match self.request_stream(ctx) {
+            Err(e) if e.is_disconnect() => {
+                self.resume = true;
+                Ok(())
+            }
+            other => other,
+        }
+    }
+
+    fn request_stream(&mut self, ctx: &mut Ctx<'_>) -> Result<(), LineError> {
         self.link.request(Request::StartStream {
             period_ms: self.period_ms,
         })?;
@@ -363,8 +400,8 @@ impl Session {
         ctx: &mut Ctx<'_>,
     ) -> Result<(), LineError> {
         self.resume = true;
-        self.catch_up(store, ctx)?;
-        self.subscribe(ctx)?;
+        self.catch_up_once(store, ctx)?;
+        self.request_stream(ctx)?;
         self.resume = false;
         Ok(())
     }
@@ -397,7 +434,7 @@ impl Session {
         if (ctx.now)().saturating_duration_since(self.last_reading) > silence {
             // The stream went quiet: ask the device; no answer means reconnect.
             self.link.request(Request::Status)?;
-            self.subscribe(ctx)?;
+            self.request_stream(ctx)?;
         }
         Ok(polled)
     }
@@ -543,7 +580,8 @@ pub struct PullSummary {
 }
 
 /// Stores every reading the device log holds that the store lacks (before,
-/// between and after what it holds), and the events after the last stored
+/// between and after what it holds, up to the reading the device was about
+/// to take when the pull began), and the events after the last stored
 /// one; idempotent. With the key the device clock is set first when it
 /// needs it. `progress` gets the readings received so far and how many
 /// were expected when the pull began (the device goes on measuring).
@@ -571,7 +609,10 @@ pub fn pull(
         store,
         &mut batcher,
         &serial,
-        None,
+        // Up to where the device was when the pull began: on a device that
+        // logs faster than the line carries (or a slow line) a pull to the
+        // moving end would never finish; the next pull or monitor gets the rest.
+        Some(status.next_seq),
         &mut |r| (ctx.tell)(Note::Logged(r)),
         &mut |n, _| progress(n, expected),
     );

@@ -41,6 +41,8 @@ fn refusal_hint(code: u16, reason: &str) -> &'static str {
         "; wrong key file? The key file must hold this device's write key (64 hex digits)"
     } else if reason.contains("needs an auth tag") {
         "; give the device's key file with --key-file (or key_file in the line file)"
+    } else if reason.contains("held off") {
+        "; the device holds writes off after failed ones (1 s after the fourth in a row, doubling to 64 s): check the key file before trying again"
     } else {
         ""
     }
@@ -712,10 +714,21 @@ impl Link {
     ) -> Result<Response, LinkError> {
         let name = request_name(&request);
         let tries = self.opts.tries.max(1);
+        // A try answered only by damaged frames shows the device is there
+        // on a noisy line: a read gets up to twice as many more of those
+        // (a long log chunk is damaged far more often than a short frame).
+        // A write is not repeated beyond `tries` (its counter is spent),
+        // nor the handshake (only damaged answers to it diagnose a wrong
+        // baud rate; `LinkOptions::handshakes` repeats it on a noisy line).
+        let once = request.needs_auth() || matches!(request, Request::Identify { .. });
+        let most = if once { tries } else { tries * 3 };
         let errors_before = self.stats().damaged;
         let frames_before = self.stats().frames;
-        let mut ids = Vec::with_capacity(tries as usize);
-        for attempt in 0..tries {
+        let mut ids = Vec::with_capacity(most as usize);
+        let (mut attempt, mut plain) = (0u32, 0u32);
+        loop {
+            attempt += 1;
+            let damaged_before = self.stats().damaged;
             let id = self.next_id;
             self.next_id = self.next_id.wrapping_add(1).max(1);
             ids.push(id);
@@ -729,7 +742,7 @@ impl Link {
                 match self.take_answer(&ids) {
                     Some(Ok(r)) => return Ok(r),
                     Some(Err((code, reason))) => {
-                        if code == ErrorCode::Busy.code() && attempt + 1 < tries {
+                        if code == ErrorCode::Busy.code() && attempt < most {
                             std::thread::sleep(Duration::from_millis(20));
                             break;
                         }
@@ -748,9 +761,13 @@ impl Link {
                 }
                 self.fill((deadline - now).min(Duration::from_millis(50)))?;
             }
-            if attempt + 1 < tries {
-                self.stats.retries += 1;
+            if self.stats().damaged == damaged_before {
+                plain += 1;
             }
+            if plain >= tries || attempt >= most {
+                break;
+            }
+            self.stats.retries += 1;
         }
         let s = self.stats();
         if let Some(theirs) = self.bad_version {
@@ -1058,6 +1075,45 @@ mod tests {
         assert!(matches!(e, LinkError::Garbled { errors: 3, .. }), "{e:?}");
         let e = Link::connect(fake(|_| Vec::new()), quick()).unwrap_err();
         assert!(matches!(e, LinkError::NoAnswer { tries: 3, .. }), "{e:?}");
+    }
+
+    /// After the handshake, a read answered only by damaged frames is
+    /// tried up to three times `tries` (a noisy line spoils long answers
+    /// often); a write is not, and a silent device is given up after
+    /// `tries`.
+    #[test]
+    fn a_read_outlasts_damaged_answers_a_write_does_not() {
+        let answer = |spoilt: u32| {
+            let mut asked = 0;
+            move |f: &HostFrame| match &f.request {
+                Request::Identify { .. } => enc(&DeviceFrame::Response {
+                    id: f.id,
+                    response: Response::Identity(identity(PROTOCOL_VERSION)),
+                }),
+                _ => {
+                    asked += 1;
+                    if asked <= spoilt {
+                        vec![0x55, 0x13, 0x99, 0x00]
+                    } else {
+                        enc(&DeviceFrame::Response {
+                            id: f.id,
+                            response: Response::Ack,
+                        })
+                    }
+                }
+            }
+        };
+        let mut link = Link::connect(fake(answer(8)), quick()).unwrap();
+        assert_eq!(link.request(Request::StopStream), Ok(Response::Ack));
+        assert_eq!(link.stats().retries, 8);
+        let mut link = Link::connect(fake(answer(9)), quick()).unwrap();
+        let e = link.request(Request::StopStream).unwrap_err();
+        assert!(matches!(e, LinkError::Garbled { errors: 9, .. }), "{e:?}");
+        let mut link = Link::connect(fake(answer(3)), quick()).unwrap();
+        let e = link
+            .request(Request::SelectProduct { slot: 0 })
+            .unwrap_err();
+        assert!(matches!(e, LinkError::Garbled { errors: 3, .. }), "{e:?}");
     }
 
     #[test]

@@ -128,14 +128,6 @@ pub enum AdjustError {
     /// A value of the pairs table is not a number.
     #[error("{0}")]
     Samples(#[from] SampleError),
-    /// The pairs table is not a readable CSV.
-    #[error("{path}: {source}")]
-    Csv {
-        /// File.
-        path: PathBuf,
-        /// The reader's error.
-        source: csv::Error,
-    },
     /// Too few pairs for the tests.
     #[error("{source_words}: {n} lab pair(s) with both values; the bias and slope tests need at least 3 (take more grab samples)")]
     TooFewPairs {
@@ -1216,6 +1208,38 @@ mod tests {
         assert!(e.contains("--bulk-density-kg-m3"), "{e}");
         assert!(!dir.path().join("p.toml").exists(), "nothing written");
     }
+
+    /// Regression: a lab-pairs table that was not valid CSV (cut short, not
+    /// UTF-8) was a plain CSV error (exit status 1, the line only inside
+    /// the parser's words), and a sample listed twice was counted twice.
+    /// Each is now an input error naming file and line.
+    #[test]
+    fn malformed_or_repeated_lab_pairs_are_input_errors() {
+        let dir = tempfile::tempdir().expect("dir");
+        let p = dir.path().join("pairs.csv");
+        let cal = dir.path().join("unused.toml");
+        let head = "sample_id,moisture_pct,predicted_moisture_pct\n";
+        let cases: [(&[u8], &str); 3] = [
+            (b"G1,12.1,12.0\nG2,13.4\nG3,11.0,11.2\n", "line 3"),
+            (b"G1,12.1,12.0\nG\xfc,13.4,13.3\n", "line 3"),
+            (b"G1,12.1,12.0\nG2,13.4,13.3\nG1,12.1,12.0\n", "line 4"),
+        ];
+        for (rows, want) in cases {
+            std::fs::write(&p, [head.as_bytes(), rows].concat()).expect("write");
+            let e = pairs_from_csv(&p, &cal).expect_err("malformed");
+            assert!(
+                matches!(e, AdjustError::Samples(_)),
+                "an input error (exit 3): {e:?}"
+            );
+            let e = e.to_string();
+            assert!(e.contains("pairs.csv") && e.contains(want), "{want}: {e}");
+        }
+        std::fs::write(&p, format!("{head}G1,12.1,12.0\nG2,13.4,13.3\n")).expect("write");
+        assert_eq!(
+            pairs_from_csv(&p, &cal).expect("good").lab,
+            vec![12.1, 13.4]
+        );
+    }
 }
 
 /// Which correction `cal adjust` writes.
@@ -1261,16 +1285,24 @@ pub struct Pairs {
 /// An unreadable file, a value that is not a number (file, line, column
 /// and field named), or a table the calibration cannot evaluate.
 pub fn pairs_from_csv(path: &Path, cal: &Path) -> Result<Pairs, AdjustError> {
-    let csv_err = |source| AdjustError::Csv {
-        path: path.to_path_buf(),
-        source,
+    // A malformed table is an input error naming the file and line (exit
+    // status 3), as the reference-sample reader says it.
+    let csv_err = |e: csv::Error| SampleError::Malformed {
+        file: path.to_path_buf(),
+        line: e.position().map_or(1, csv::Position::line),
+        reason: e.to_string(),
     };
-    let text = std::fs::read(path).map_err(|e| csv_err(e.into()))?;
+    let text = std::fs::read(path).map_err(|e| SampleError::Io {
+        file: path.to_path_buf(),
+        reason: e.to_string(),
+    })?;
     let mut rdr = csv::ReaderBuilder::new()
         .trim(csv::Trim::All)
         .from_reader(text.as_slice());
     let header = rdr.headers().map_err(csv_err)?.clone();
     let col = |n: &str| header.iter().position(|h| h.eq_ignore_ascii_case(n));
+    let id_c = col("sample_id");
+    let mut seen: Vec<(String, u64)> = Vec::new();
     let (lab_c, pred_c) = match (col("moisture_pct"), col("predicted_moisture_pct")) {
         (Some(l), Some(p)) => (l, p),
         _ => {
@@ -1291,6 +1323,19 @@ pub fn pairs_from_csv(path: &Path, cal: &Path) -> Result<Pairs, AdjustError> {
     for rec in rdr.records() {
         let rec = rec.map_err(csv_err)?;
         let line = rec.position().map_or(0, |p| p.line());
+        // A sample counted twice would weigh twice in the bias test.
+        if let Some(id) = id_c.and_then(|c| rec.get(c)).filter(|id| !id.is_empty()) {
+            if let Some((_, first_line)) = seen.iter().find(|(s, _)| s == id) {
+                return Err(SampleError::DuplicateId {
+                    file: path.to_path_buf(),
+                    line,
+                    first_line: *first_line,
+                    id: id.to_string(),
+                }
+                .into());
+            }
+            seen.push((id.to_string(), line));
+        }
         let get = |c: usize, name: &str| -> Result<Option<f64>, SampleError> {
             let t = rec.get(c).unwrap_or("");
             if t.is_empty() {

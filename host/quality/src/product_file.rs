@@ -342,6 +342,7 @@ impl ProductFile {
             "dry" => Basis::Dry,
             b => return Err(bad("basis", format!("`{b}` is not wet or dry"))),
         };
+        self.check_numbers(path)?;
         let params = heapless::Vec::<f32, MAX_CAL_PARAMS>::from_slice(&self.params)
             .map_err(|_| bad("params", format!("at most {MAX_CAL_PARAMS} values")))?;
         let ranges: Vec<Range> = self
@@ -384,6 +385,68 @@ impl ProductFile {
         Ok(cal)
     }
 
+    /// Every number the device evaluates is finite, each range runs from
+    /// its lower bound up, and the temperature range lies within the
+    /// -40..150 C a reference sample may have: a hand edit (NaN, a huge
+    /// value that overflows f32, kelvin for Celsius) is named by its field
+    /// before the content id is compared, which would only say "edited".
+    fn check_numbers(&self, path: &Path) -> Result<(), ProductFileError> {
+        let bad = |field: &'static str, reason: String| ProductFileError::Invalid {
+            path: path.to_path_buf(),
+            field,
+            reason,
+        };
+        if !self.sec_pct.is_finite() || self.sec_pct < 0.0 {
+            return Err(bad(
+                "sec_pct",
+                format!("{} is not a finite number >= 0", self.sec_pct),
+            ));
+        }
+        if let Some((i, v)) = self.params.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+            return Err(bad(
+                "params",
+                format!("value {} of the list is {v}, not a finite number", i + 1),
+            ));
+        }
+        let range = |field: &'static str, [lo, hi]: [f32; 2]| {
+            if lo.is_finite() && hi.is_finite() && lo <= hi {
+                Ok(())
+            } else {
+                Err(bad(
+                    field,
+                    format!("[{lo}, {hi}] is not a range of finite numbers, lower first"),
+                ))
+            }
+        };
+        range("moisture_pct", self.moisture_pct)?;
+        range("temperature_c", self.temperature_c)?;
+        if self
+            .temperature_c
+            .iter()
+            .any(|t| !(-40.0..=150.0).contains(t))
+        {
+            return Err(bad(
+                "temperature_c",
+                format!(
+                    "[{}, {}] is not within -40..150 C (kelvin given for Celsius?)",
+                    self.temperature_c[0], self.temperature_c[1]
+                ),
+            ));
+        }
+        for r in &self.inputs {
+            range("inputs", [r.min, r.max]).map_err(|_| {
+                bad(
+                    "inputs",
+                    format!(
+                        "input `{}`: [{}, {}] is not a range of finite numbers, lower first",
+                        r.name, r.min, r.max
+                    ),
+                )
+            })?;
+        }
+        Ok(())
+    }
+
     /// The calibration's content id.
     pub fn cal_id(&self) -> String {
         self.id.clone()
@@ -394,9 +457,15 @@ impl ProductFile {
     /// # Errors
     /// [`ProductFileError`].
     pub fn load(path: &Path) -> Result<(ProductFile, ProductCal), ProductFileError> {
-        let text = std::fs::read_to_string(path).map_err(|e| ProductFileError::Io {
+        let bytes = std::fs::read(path).map_err(|e| ProductFileError::Io {
             path: path.to_path_buf(),
             reason: e.to_string(),
+        })?;
+        let text = utf8_text(bytes).map_err(|(line, column, reason)| ProductFileError::Parse {
+            path: path.to_path_buf(),
+            line,
+            column,
+            reason,
         })?;
         Self::parse(path, &text)
     }
@@ -450,6 +519,29 @@ impl ProductFile {
         std::fs::write(&tmp, text).map_err(io)?;
         std::fs::rename(&tmp, path).map_err(io)
     }
+}
+
+/// The bytes of a text file as a string, or the line and column (1-based)
+/// of the first byte that is not UTF-8 and a reason in words (a file saved
+/// as Latin-1 or UTF-16 by an editor).
+///
+/// # Errors
+/// `(line, column, reason)`.
+pub fn utf8_text(bytes: Vec<u8>) -> Result<String, (usize, usize, String)> {
+    String::from_utf8(bytes).map_err(|e| {
+        let at = e.utf8_error().valid_up_to();
+        let bytes = e.into_bytes();
+        let text = String::from_utf8_lossy(&bytes[..at]);
+        let (line, column) = line_col(&text, at);
+        (
+            line,
+            column,
+            format!(
+                "byte 0x{:02X} is not UTF-8 text: save the file as UTF-8",
+                bytes[at]
+            ),
+        )
+    })
 }
 
 fn line_col(text: &str, at: usize) -> (usize, usize) {
@@ -536,6 +628,72 @@ mod tests {
         let e = ProductFile::load(&p).expect_err("bad").to_string();
         assert!(e.contains("p.toml:1:"), "{e}");
         let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    /// Regression: a file with NaN, an f32 overflow (1e39, read as inf) or
+    /// kelvin in a number the device evaluates was refused only for its
+    /// content id ("edited by hand"), or accepted with a matching id; each
+    /// is now named by its field.
+    #[test]
+    fn non_finite_and_kelvin_values_are_named_by_field() {
+        let dir = std::env::temp_dir().join(format!("fringe-pf-nan-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).expect("dir");
+        let p = dir.join("p.toml");
+        let good = ProductFile::from_wire(
+            &wire(),
+            &["eps_re"],
+            Statistics::default(),
+            Source::default(),
+        );
+        good.save(&p).expect("save");
+        let text = std::fs::read_to_string(&p).expect("read");
+        for (from, to, field) in [
+            ("sec_pct = 0.3", "sec_pct = nan", "`sec_pct`"),
+            ("sec_pct = 0.3", "sec_pct = 1e39", "`sec_pct`"),
+            ("params = [1.0, 1.0", "params = [1.0, inf", "`params`"),
+            (
+                "temperature_c = [5.0, 40.0]",
+                "temperature_c = [278.15, 313.15]",
+                "`temperature_c`",
+            ),
+            (
+                "moisture_pct = [8.0, 22.0]",
+                "moisture_pct = [22.0, 8.0]",
+                "`moisture_pct`",
+            ),
+            ("min = 2.0", "min = -inf", "`inputs`"),
+        ] {
+            assert!(text.contains(from), "{from} not in\n{text}");
+            std::fs::write(&p, text.replace(from, to)).expect("write");
+            let e = ProductFile::load(&p).expect_err(to).to_string();
+            assert!(e.contains(field) && e.contains("p.toml"), "{to}: {e}");
+        }
+        // `to_wire` (what `cal push` builds the device's form with)
+        // refuses it too.
+        let mut f = good.clone();
+        f.sec_pct = f32::NAN;
+        assert!(f
+            .to_wire(&p)
+            .expect_err("nan")
+            .to_string()
+            .contains("`sec_pct`"));
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    /// Regression: a file saved as Latin-1 or UTF-16 was refused as
+    /// "stream did not contain valid UTF-8", without saying where.
+    #[test]
+    fn a_file_that_is_not_utf8_is_named_with_line_and_column() {
+        assert_eq!(utf8_text(b"a = 1\n".to_vec()).as_deref(), Ok("a = 1\n"));
+        let (line, column, reason) =
+            utf8_text(b"format = \"x\"\nname = \"Gr\xfcn\"\n".to_vec()).expect_err("Latin-1");
+        assert_eq!((line, column), (2, 11), "{reason}");
+        assert!(
+            reason.contains("0xFC") && reason.contains("UTF-8"),
+            "{reason}"
+        );
+        let (line, column, _) = utf8_text(vec![0xFF, 0xFE, b'a', 0]).expect_err("UTF-16");
+        assert_eq!((line, column), (1, 1));
     }
 
     #[test]

@@ -190,6 +190,20 @@ pub enum SampleError {
     },
 }
 
+/// `text` as it goes into a message: whole up to `max_chars` characters,
+/// else its start and its length (a 1 MiB cell or value is not echoed
+/// whole to a terminal or a log).
+pub fn shorten(text: &str, max_chars: usize) -> std::borrow::Cow<'_, str> {
+    match text.char_indices().nth(max_chars) {
+        None => text.into(),
+        Some(_) => {
+            let keep = max_chars.saturating_sub(20).max(1);
+            let end = text.char_indices().nth(keep).map_or(text.len(), |(i, _)| i);
+            format!("{}... ({} bytes in all)", &text[..end], text.len()).into()
+        }
+    }
+}
+
 impl fmt::Display for SampleError {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         use SampleError::*;
@@ -230,8 +244,9 @@ impl fmt::Display for SampleError {
             ),
             BadValue { file, line, column, field, value, expected } => write!(
                 f,
-                "{}: line {line}, column {column} ({field}): `{value}` is not {expected}",
-                file.display()
+                "{}: line {line}, column {column} ({field}): `{}` is not {expected}",
+                file.display(),
+                shorten(value, 80)
             ),
             MixedFrequency { file, line, column, field, value_hz, first_hz, first_line } => write!(
                 f,
@@ -682,6 +697,28 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
         assert!(
             e.to_string()
                 .starts_with("/nonexistent/lab.csv: cannot read"),
+            "{e}"
+        );
+    }
+
+    /// Regression: a 1 MiB cell was echoed whole in the message.
+    #[test]
+    fn a_huge_cell_is_not_echoed_whole() {
+        let text = format!(
+            "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im\nS1,12.0,20.0,1000000,{},3.0,20000000,4.0,1.0\n",
+            "x".repeat(1 << 20)
+        );
+        let e = parse_samples(
+            Path::new("s.csv"),
+            text.as_bytes(),
+            MoistureColumn::Required,
+        )
+        .expect_err("not a number")
+        .to_string();
+        assert!(
+            e.len() < 300
+                && e.contains("line 2, column 5 (eps1_re)")
+                && e.contains("1048576 bytes in all"),
             "{e}"
         );
     }

@@ -35,6 +35,12 @@ pub struct SimStats {
     pub tx_lost: u64,
     /// Disconnects performed.
     pub disconnects: u32,
+    /// Bytes the line's faults dropped (both directions).
+    pub dropped: u64,
+    /// Bytes with a bit flipped by the line's faults (both directions).
+    pub flipped: u64,
+    /// Garbage bytes the line's faults inserted (both directions).
+    pub inserted: u64,
 }
 
 /// Options of one simulator run.
@@ -305,5 +311,8 @@ pub fn run(
     if let Some(link) = &opts.link {
         let _ = std::fs::remove_file(link);
     }
+    stats.dropped = injector.dropped;
+    stats.flipped = injector.flipped;
+    stats.inserted = injector.inserted;
     Ok(stats)
 }

@@ -18,7 +18,7 @@ pub enum FileError {
         source: std::io::Error,
     },
     /// The file is not valid TOML for its schema.
-    #[error("{path}:{line}:{column}: {message}")]
+    #[error("{path}:{line}:{column}: {}", shorten(.message, 300))]
     Parse {
         /// File.
         path: PathBuf,
@@ -30,7 +30,7 @@ pub enum FileError {
         message: String,
     },
     /// A value is out of its allowed range.
-    #[error("{path}: {field} = {value}: {rule}")]
+    #[error("{path}: {field} = {}: {rule}", shorten(.value, 80))]
     Invalid {
         /// File.
         path: PathBuf,
@@ -41,6 +41,20 @@ pub enum FileError {
         /// What is allowed.
         rule: String,
     },
+}
+
+/// `text` as it goes into a message: whole up to `max_chars` characters,
+/// else its start and its length (a 1 MiB value pasted into a file is not
+/// echoed whole to a terminal or a log).
+pub fn shorten(text: &str, max_chars: usize) -> std::borrow::Cow<'_, str> {
+    match text.char_indices().nth(max_chars) {
+        None => text.into(),
+        Some(_) => {
+            let keep = max_chars.saturating_sub(20).max(1);
+            let end = text.char_indices().nth(keep).map_or(text.len(), |(i, _)| i);
+            format!("{}... ({} bytes in all)", &text[..end], text.len()).into()
+        }
+    }
 }
 
 /// 1-based line and column of byte offset `at` in `text`.
@@ -56,9 +70,25 @@ pub fn line_column(text: &str, at: usize) -> (usize, usize) {
 /// # Errors
 /// [`FileError::Read`] or [`FileError::Parse`].
 pub fn load_toml<T: DeserializeOwned>(path: &Path) -> Result<T, FileError> {
-    let text = std::fs::read_to_string(path).map_err(|source| FileError::Read {
+    let bytes = std::fs::read(path).map_err(|source| FileError::Read {
         path: path.to_path_buf(),
         source,
+    })?;
+    // A file saved as Latin-1 or UTF-16: the place of its first byte that
+    // is not UTF-8.
+    let text = String::from_utf8(bytes).map_err(|e| {
+        let at = e.utf8_error().valid_up_to();
+        let bytes = e.into_bytes();
+        let (line, column) = line_column(&String::from_utf8_lossy(&bytes[..at]), at);
+        FileError::Parse {
+            path: path.to_path_buf(),
+            line,
+            column,
+            message: format!(
+                "byte 0x{:02X} is not UTF-8 text: save the file as UTF-8",
+                bytes[at]
+            ),
+        }
     })?;
     parse_toml(path, &text)
 }
@@ -82,6 +112,49 @@ pub fn parse_toml<T: DeserializeOwned>(path: &Path, text: &str) -> Result<T, Fil
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Regression: a scenario or line file saved as Latin-1 or UTF-16 was
+    /// refused as "stream did not contain valid UTF-8", without saying where.
+    #[test]
+    fn a_file_that_is_not_utf8_is_named_with_line_and_column() {
+        #[derive(Debug, serde::Deserialize)]
+        struct T {
+            #[allow(dead_code)]
+            name: String,
+        }
+        let dir = tempfile::tempdir().expect("dir");
+        let p = dir.path().join("s.toml");
+        std::fs::write(&p, b"# M\xfchle\nname = \"x\"\n").expect("write");
+        let e = load_toml::<T>(&p).expect_err("Latin-1").to_string();
+        assert!(e.contains("s.toml:1:4") && e.contains("0xFC"), "{e}");
+    }
+
+    /// Regression: a 1 MiB value pasted into a scenario or line file was
+    /// echoed whole in the message.
+    #[test]
+    fn a_huge_value_is_not_echoed_whole() {
+        assert_eq!(shorten("14.5", 80), "14.5");
+        let long = "W".repeat(1 << 20);
+        let e = FileError::Invalid {
+            path: "s.toml".into(),
+            field: "device.serial".into(),
+            value: long.clone(),
+            rule: "1..=16 ASCII characters".into(),
+        }
+        .to_string();
+        assert!(e.len() < 200 && e.contains("1048576 bytes in all"), "{e}");
+        let e = FileError::Parse {
+            path: "s.toml".into(),
+            line: 3,
+            column: 1,
+            message: format!("unknown field `{long}`"),
+        }
+        .to_string();
+        assert!(
+            e.len() < 400 && e.starts_with("s.toml:3:1: unknown field `WW"),
+            "{e}"
+        );
+    }
 
     #[test]
     fn line_column_counts_from_one() {

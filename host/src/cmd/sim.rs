@@ -63,12 +63,21 @@ pub fn sim(args: &SimArgs, stop: &AtomicBool) -> anyhow::Result<()> {
             "tx_bytes": stats.tx_bytes,
             "tx_lost_bytes": stats.tx_lost,
             "disconnects": stats.disconnects,
+            "dropped_bytes": stats.dropped,
+            "flipped_bytes": stats.flipped,
+            "garbage_bytes": stats.inserted,
         }))?;
         return Ok(());
     }
     eprintln!(
-        "fringe sim: stopped; {} bytes in, {} bytes out, {} lost while no host read, {} disconnects",
-        stats.rx_bytes, stats.tx_bytes, stats.tx_lost, stats.disconnects
+        "fringe sim: stopped; {} bytes in, {} bytes out, {} lost while no host read, {} disconnects; line faults: {} bytes dropped, {} with a bit flipped, {} garbage bytes inserted",
+        stats.rx_bytes,
+        stats.tx_bytes,
+        stats.tx_lost,
+        stats.disconnects,
+        stats.dropped,
+        stats.flipped,
+        stats.inserted
     );
     Ok(())
 }

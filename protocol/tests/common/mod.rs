@@ -319,7 +319,8 @@ pub fn auth_failure() -> impl Strategy<Value = AuthFailure> {
     prop_oneof![
         Just(AuthFailure::Missing),
         Just(AuthFailure::BadTag),
-        Just(AuthFailure::Replay)
+        Just(AuthFailure::Replay),
+        Just(AuthFailure::Throttled)
     ]
 }
 

@@ -1,0 +1,243 @@
+//! The soak of the line (issue 17): simulated devices on an accelerated
+//! clock, each behind a faulty serial line, streamed into a database by
+//! `fringe monitor`, which is killed with SIGKILL at random moments and
+//! started again; at the end a `fringe pull` and the checks: every reading
+//! the device logged, from its first to the last one before the pull, is
+//! in the store exactly once and equal to what the device sent, and the
+//! hash chain verifies.
+//!
+//! Run long outside CI with `cargo xtask soak` (see DEVELOPERS.md); a short
+//! version runs in `tests/tests/soak.rs`.
+
+use std::path::Path;
+use std::process::Child;
+use std::time::{Duration, Instant};
+
+use rand::{RngExt, SeedableRng};
+
+use crate::{
+    assert_gapless, fringe, poll_until, run, stored_readings, ScenarioSpec, Sim, DEADLINE,
+};
+
+/// What to soak.
+#[derive(Debug, Clone)]
+pub struct SoakOptions {
+    /// Readings each device must have stored before the run ends.
+    pub readings: u64,
+    /// SIGKILLs of each device's monitor, spread over the run.
+    pub kills: u32,
+    /// Devices, each with its own simulator, line and monitor, run at once.
+    pub devices: u32,
+    /// Byte error rate of the line, both directions: half as lost bytes,
+    /// half as flipped bits; garbage bursts at the same rate per frame.
+    pub byte_error_rate: f64,
+    /// Device seconds per wall second.
+    pub time_scale: f64,
+    /// A 1 s disconnect of the port every this many device seconds (0: none).
+    pub disconnect_every_s: f64,
+    /// Seed of the faults, the noise and the kill moments.
+    pub seed: u64,
+}
+
+/// What one device's soak did.
+#[derive(Debug, Clone)]
+pub struct DeviceSoak {
+    /// Serial.
+    pub serial: String,
+    /// Readings in the store at the end (each checked against what the
+    /// device sent, none missing, none twice).
+    pub readings: u64,
+    /// SIGKILLs of the monitor.
+    pub kills: u32,
+    /// Of those, kills before the monitor had committed anything in its run.
+    pub early_kills: u32,
+    /// Monitor runs.
+    pub monitor_runs: u32,
+    /// The simulator's closing line (bytes, faults, disconnects).
+    pub line: String,
+    /// Wall time, s.
+    pub seconds: f64,
+}
+
+/// Runs the soak; panics (naming the device and the seed) on the first
+/// reading lost, duplicated or changed, or a chain that does not verify.
+pub fn soak(opts: &SoakOptions) -> Vec<DeviceSoak> {
+    let handles: Vec<_> = (0..opts.devices)
+        .map(|i| {
+            let o = opts.clone();
+            std::thread::spawn(move || soak_device(&o, i))
+        })
+        .collect();
+    handles
+        .into_iter()
+        .map(|h| h.join().unwrap_or_else(|e| std::panic::resume_unwind(e)))
+        .collect()
+}
+
+fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
+    let start = Instant::now();
+    let serial = format!("HGM-SOAK-{:04}", index + 1);
+    let seed = opts.seed.wrapping_add(u64::from(index) * 7919);
+    let ctx = format!("soak {serial}, FRINGE_SEED={}", opts.seed);
+    let mut spec = ScenarioSpec::clean(&serial, seed);
+    spec.time_scale = opts.time_scale;
+    spec.drop_per_byte = opts.byte_error_rate / 2.0;
+    spec.flip_per_byte = opts.byte_error_rate / 2.0;
+    spec.garbage_per_frame = opts.byte_error_rate;
+    if opts.disconnect_every_s > 0.0 {
+        // Device time the run will take, with room to spare.
+        let run_s = opts.readings as f64 * f64::from(spec.interval_ms) / 1000.0 * 2.0;
+        let mut at = opts.disconnect_every_s;
+        while at < run_s {
+            spec.disconnects.push((at, 1.0));
+            at += opts.disconnect_every_s;
+        }
+    }
+    let sim = Sim::start(&spec);
+    let db = sim.path("soak.db");
+    let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
+    let per_kill = opts.readings / u64::from(opts.kills.max(1) + 1);
+    let (mut kills, mut early_kills, mut runs) = (0u32, 0u32, 0u32);
+    let count = |db: &Path| reading_count(db, &serial);
+    while kills < opts.kills || count(&db) < opts.readings {
+        let before = count(&db);
+        let log = std::fs::OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(sim.path("monitor.log"))
+            .expect("monitor log");
+        let mut child = sim
+            .monitor(&db, &[])
+            .stdout(std::process::Stdio::null())
+            .stderr(log)
+            .spawn()
+            .expect("start fringe monitor");
+        runs += 1;
+        if kills < opts.kills && rng.random_bool(0.25) {
+            // Early: anywhere in its start (identify, clock, backfill).
+            std::thread::sleep(Duration::from_millis(rng.random_range(0..400)));
+            kill(&mut child);
+            kills += 1;
+            if count(&db) == before {
+                early_kills += 1;
+            }
+            continue;
+        }
+        // Late: after it has stored its share, at a random moment.
+        let share = if kills < opts.kills {
+            (per_kill as f64 * rng.random_range(0.5..1.5)) as u64
+        } else {
+            opts.readings.saturating_sub(before)
+        };
+        let target = before + share.max(1);
+        let limit = Duration::from_secs(60) + Duration::from_secs_f64(share as f64 / 20.0);
+        poll_until(
+            limit,
+            || {
+                format!(
+                    "{ctx}: the monitor did not reach {target} readings (has {}); sim log:\n{}\nmonitor log (end):\n{}",
+                    count(&db),
+                    sim.log(),
+                    tail(&sim.path("monitor.log"), 40)
+                )
+            },
+            || {
+                std::thread::sleep(Duration::from_millis(50));
+                count(&db) >= target
+            },
+        );
+        if kills < opts.kills {
+            std::thread::sleep(Duration::from_millis(rng.random_range(0..300)));
+            kill(&mut child);
+            kills += 1;
+        } else {
+            kill(&mut child);
+        }
+    }
+    // What the device holds now, then everything it logged up to then.
+    let o = run(
+        &mut fringe(&["status", "--port", sim.port_str(), "--json"]),
+        DEADLINE,
+    );
+    assert_eq!(o.code, 0, "{ctx}: status: {}", o.stderr);
+    let status: serde_json::Value = serde_json::from_str(&o.stdout).expect("status --json");
+    let last_logged = status["next_seq"]["counter"]
+        .as_u64()
+        .and_then(|c| c.checked_sub(1))
+        .unwrap_or_else(|| panic!("{ctx}: the device has logged nothing: {status}"));
+    let o = run(&mut sim.pull(&db, &[]), Duration::from_secs(600));
+    assert_eq!(o.code, 0, "{ctx}: pull: {}", o.stderr);
+    sim.signal("-TERM");
+    poll_until(
+        DEADLINE,
+        || format!("{ctx}: the simulator did not stop; its log:\n{}", sim.log()),
+        || sim.log().contains("fringe sim: stopped"),
+    );
+    let line = sim
+        .log()
+        .lines()
+        .find(|l| l.starts_with("fringe sim: stopped"))
+        .unwrap_or_default()
+        .to_string();
+
+    let stored = stored_readings(&db, &serial);
+    let n = assert_gapless(&stored, &sim.recorded(), &ctx) as u64;
+    let (first, last) = (stored[0].seq, stored[stored.len() - 1].seq);
+    assert!(
+        stored.iter().all(|r| r.seq.boot == first.boot),
+        "{ctx}: the device restarted"
+    );
+    assert_eq!(
+        first.counter, 0,
+        "{ctx}: the first logged reading is missing"
+    );
+    assert!(
+        u64::from(last.counter) >= last_logged,
+        "{ctx}: the device had logged up to {last_logged}, the store ends at {last}"
+    );
+    let store = fringe_host::store::Store::open_read_only(&db).expect("open the store");
+    assert!(store.verify_chain().expect("verify").ok(), "{ctx}: chain");
+    DeviceSoak {
+        serial,
+        readings: n,
+        kills,
+        early_kills,
+        monitor_runs: runs,
+        line,
+        seconds: start.elapsed().as_secs_f64(),
+    }
+}
+
+impl DeviceSoak {
+    /// As JSON, for the soak's report.
+    pub fn to_json(&self) -> serde_json::Value {
+        serde_json::json!({
+            "serial": self.serial,
+            "readings": self.readings,
+            "kills": self.kills,
+            "early_kills": self.early_kills,
+            "monitor_runs": self.monitor_runs,
+            "line": self.line,
+            "seconds": self.seconds,
+        })
+    }
+}
+
+fn tail(path: &Path, n: usize) -> String {
+    let text = std::fs::read_to_string(path).unwrap_or_default();
+    let lines: Vec<&str> = text.lines().collect();
+    lines[lines.len().saturating_sub(n)..].join("\n")
+}
+
+fn kill(child: &mut Child) {
+    // SIGKILL: no chance to commit or clean up.
+    let _ = child.kill();
+    let _ = child.wait();
+}
+
+/// Readings of `serial` committed in `db` (0 before the file exists).
+fn reading_count(db: &Path, serial: &str) -> u64 {
+    fringe_host::store::Store::open_read_only(db)
+        .and_then(|s| s.reading_count(serial))
+        .unwrap_or(0)
+}

@@ -1,0 +1,28 @@
+//! The short version of the soak (`fringe_tests::soak`; the long one is
+//! `cargo xtask soak`, figures in docs/RELIABILITY.md): one simulated
+//! device behind a line with a byte error rate of 1e-3 in both directions
+//! (lost bytes, flipped bits, garbage bursts) and a 1 s disconnect every
+//! 300 device seconds (device time 10x wall time), streamed by `fringe monitor`, which is killed with
+//! SIGKILL 10 times at random moments; every reading the device logged is
+//! stored exactly once, as sent, and the chain verifies.
+
+use fringe_tests::soak::{soak, SoakOptions};
+
+#[test]
+fn a_faulty_line_and_ten_kills_lose_and_duplicate_nothing() {
+    let seed = fringe_tests::seed(71);
+    let report = soak(&SoakOptions {
+        readings: 1_500,
+        kills: 10,
+        devices: 1,
+        byte_error_rate: 1e-3,
+        time_scale: 10.0,
+        disconnect_every_s: 300.0,
+        seed,
+    });
+    for d in &report {
+        println!("FRINGE_SEED={seed}: {}", d.to_json());
+        assert!(d.readings >= 1_500, "{d:?}");
+        assert_eq!(d.kills, 10, "{d:?}");
+    }
+}
