@@ -24,7 +24,7 @@ use serde::Deserialize;
 /// Default baud rate.
 pub const DEFAULT_BAUD: u32 = fringe_sim::scenario::DEFAULT_BAUD;
 
-pub use fringe_sim::toml_file::{line_column, load_toml, parse_toml, FileError};
+pub use fringe_sim::toml_file::{line_column, load_toml, parse_toml, read_text, FileError};
 
 /// A line file could not be used, or a value is given nowhere.
 #[derive(Debug, thiserror::Error)]
@@ -72,10 +72,7 @@ impl LineConfig {
     /// # Errors
     /// [`ConfigError`] naming the file, position or field.
     pub fn load(path: &Path) -> Result<Self, ConfigError> {
-        let text = std::fs::read_to_string(path).map_err(|source| FileError::Read {
-            path: path.to_path_buf(),
-            source,
-        })?;
+        let text = read_text(path)?;
         Self::parse(path, &text)
     }
 

@@ -65,18 +65,17 @@ pub fn line_column(text: &str, at: usize) -> (usize, usize) {
     (line, column)
 }
 
-/// Reads and parses a TOML file into `T`.
+/// Reads a text file: a file saved as Latin-1 or UTF-16 is refused with
+/// the place of its first byte that is not UTF-8.
 ///
 /// # Errors
 /// [`FileError::Read`] or [`FileError::Parse`].
-pub fn load_toml<T: DeserializeOwned>(path: &Path) -> Result<T, FileError> {
+pub fn read_text(path: &Path) -> Result<String, FileError> {
     let bytes = std::fs::read(path).map_err(|source| FileError::Read {
         path: path.to_path_buf(),
         source,
     })?;
-    // A file saved as Latin-1 or UTF-16: the place of its first byte that
-    // is not UTF-8.
-    let text = String::from_utf8(bytes).map_err(|e| {
+    String::from_utf8(bytes).map_err(|e| {
         let at = e.utf8_error().valid_up_to();
         let bytes = e.into_bytes();
         let (line, column) = line_column(&String::from_utf8_lossy(&bytes[..at]), at);
@@ -89,8 +88,15 @@ pub fn load_toml<T: DeserializeOwned>(path: &Path) -> Result<T, FileError> {
                 bytes[at]
             ),
         }
-    })?;
-    parse_toml(path, &text)
+    })
+}
+
+/// Reads and parses a TOML file into `T`.
+///
+/// # Errors
+/// [`FileError::Read`] or [`FileError::Parse`].
+pub fn load_toml<T: DeserializeOwned>(path: &Path) -> Result<T, FileError> {
+    parse_toml(path, &read_text(path)?)
 }
 
 /// Parses TOML `text` (read from `path`) into `T`.
