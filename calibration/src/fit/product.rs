@@ -2620,3 +2620,52 @@ pub fn synthetic_samples(
         })
         .collect()
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The paired test's arithmetic on a case worked by hand (consistency
+    /// test): lab values 0, the other model exact, the default's errors
+    /// 1, sqrt 2, sqrt 3, 2, so the differences are 1, 2, 3, 4: mean 2.5,
+    /// SD sqrt(5/3), t = 2.5 / (sqrt(5/3) / 2) = 3.873; against t(0.95, 3)
+    /// = 2.353 (Student's t table; from memory), significant.
+    #[test]
+    fn paired_test_worked_by_hand() {
+        let y = [0.0; 4];
+        let default = [1.0, 2f64.sqrt(), 3f64.sqrt(), 2.0];
+        let other = [0.0; 4];
+        let p = PairedTest::of(Candidate::Relaxation, &y, &default, &other).expect("4 samples");
+        assert_eq!(p.n, 4);
+        assert!((p.mean_advantage - 2.5).abs() < 1e-12, "{p:?}");
+        assert!((p.t - 3.872_983).abs() < 1e-5, "{p:?}");
+        assert!((p.critical - 2.353).abs() < 1e-3, "{p:?}");
+        assert!(p.significant());
+        // The other way round the advantage is negative: never significant.
+        let q = PairedTest::of(Candidate::Relaxation, &y, &other, &default).expect("4 samples");
+        assert!(q.mean_advantage < 0.0 && !q.significant(), "{q:?}");
+        // A sample without a prediction in either is left out; fewer than
+        // three left: no test.
+        let gap = [f64::NAN, 1.0, f64::NAN, 2.0];
+        assert!(PairedTest::of(Candidate::Relaxation, &y, &gap, &other).is_none());
+    }
+
+    /// The intervals' error SD counts a sample above the leverage cap as at
+    /// the cap (consistency test, worked by hand): errors 1, 1, 10 at
+    /// leverages 0.1, 0.2, 0.9; the last weighs (1 - 0.9) / 0.5 = 0.2, so
+    /// sqrt((1 + 1 + 0.2 * 100) / 3) = 2.708; a missing prediction is
+    /// skipped.
+    #[test]
+    fn interval_sd_counts_a_high_leverage_sample_as_at_the_cap() {
+        let y = [0.0; 4];
+        let cv = [1.0, 1.0, 10.0, f64::NAN];
+        let h = [0.1, 0.2, 0.9, 0.3];
+        let (sd, far) = interval_sd_of(&y, &cv, &h);
+        assert!((sd - (22.0f64 / 3.0).sqrt()).abs() < 1e-12, "{sd}");
+        assert_eq!(far, vec![2]);
+        // Below the cap every error counts as it is: the RMSEP.
+        let (sd, far) = interval_sd_of(&y, &cv, &[0.1, 0.2, 0.5, 0.3]);
+        assert!((sd - 34f64.sqrt()).abs() < 1e-12, "{sd}");
+        assert!(far.is_empty());
+    }
+}
