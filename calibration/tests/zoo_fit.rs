@@ -350,3 +350,129 @@ fn physics_wins_extrapolation_on_the_grain() {
         );
     }
 }
+
+/// Regression (cause of the winner's curse): on sand at 5/50 MHz (seed 11
+/// of the zoo, 60 samples) the single-frequency model had the smallest
+/// cross-validated SEP of the four and was chosen by it; on 200 fresh
+/// samples it did 1.84 times worse than the generic baseline. Its paired
+/// advantage over ridge's cross-validated errors is not significant, so
+/// the comparison now keeps ridge (`compare_models`' paired rule). (Fixed
+/// data: one seed of the zoo.)
+#[test]
+fn a_lucky_cross_validated_sep_does_not_choose_the_model() {
+    let f = Family::sand();
+    let pair = FREQ_PAIRS[2];
+    let train = f.samples(&Draw::new(60, pair), 11);
+    let val = f.samples(&Draw::new(200, pair), 11 + 1000);
+    let cmp = compare_models(&train, &compare_opts(&f)).expect("sand fits");
+    let cv_sep = |c: Candidate| {
+        cmp.results
+            .iter()
+            .find(|r| r.0 == c)
+            .and_then(|r| r.1.as_ref().ok())
+            .map(|f| f.stats.cross_validation.sep)
+            .expect("fitted")
+    };
+    // The case as it was: the single-frequency model's SEP is below ridge's.
+    assert!(cv_sep(Candidate::SingleFrequency) < cv_sep(Candidate::MultivariateRidge));
+    let single = cmp
+        .paired
+        .iter()
+        .find(|p| p.candidate == Candidate::SingleFrequency)
+        .expect("single-frequency compared with the default");
+    assert!(
+        !single.significant(),
+        "single-frequency advantage t {:.2} against {:.2}",
+        single.t,
+        single.critical
+    );
+    assert_ne!(cmp.chosen, Candidate::SingleFrequency);
+    let (e, _) = validate(cmp.chosen_fit(), &val);
+    let (s, b) = (sep(&e), baseline_sep(&Baseline::fit(&train), &val));
+    assert!(
+        s <= 1.4 * b,
+        "chosen {} SEP {s:.3} against the baseline's {b:.3}",
+        cmp.chosen.name()
+    );
+}
+
+/// Regression (a single high-leverage sample): on the cereal with bound
+/// water at 5/50 MHz (seed 15 of the zoo) one calibration sample has a
+/// leverage of about 0.999 in the ridge model; its leave-one-out error
+/// carried most of the cross-validated sum of squares, the prediction
+/// intervals built from it covered all 200 fresh samples (the product's
+/// three pairs 99.8 %, above the 99.5 % the zoo test allows). The
+/// intervals now count it as at leverage 0.5 (`LEVERAGE_CAP`) and the fit
+/// names it in a note; the cross-validated statistics keep it as it is.
+#[test]
+fn one_high_leverage_sample_does_not_set_the_intervals() {
+    let f = Family::cereal_bound_water();
+    let pair = FREQ_PAIRS[2];
+    let train = f.samples(&Draw::new(60, pair), 15);
+    let val = f.samples(&Draw::new(200, pair), 15 + 1000);
+    let fit = fit_multivariate(
+        &train,
+        &MultivariateOptions {
+            eps_sd: f.eps_noise_sd.max(1e-3),
+            ..MultivariateOptions::default()
+        },
+    )
+    .expect("ridge fits");
+    let far: Vec<&str> = fit
+        .samples
+        .iter()
+        .filter(|s| s.leverage > fringe_calibration::fit::product::LEVERAGE_CAP)
+        .map(|s| s.id.as_str())
+        .collect();
+    assert!(
+        fit.samples.iter().any(|s| s.leverage > 0.99),
+        "the case has a sample of leverage above 0.99"
+    );
+    let note = fit
+        .notes
+        .iter()
+        .find(|n| n.contains("leverage above"))
+        .expect("a note names the high-leverage samples");
+    for id in &far {
+        assert!(note.contains(id), "note {note:?} does not name {id}");
+    }
+    assert!(
+        fit.interval_sd < 0.9 * fit.stats.cross_validation.rmsep,
+        "interval SD {:.3} against the cross-validated RMSEP {:.3}",
+        fit.interval_sd,
+        fit.stats.cross_validation.rmsep
+    );
+    let (_, cov) = validate(&fit, &val);
+    assert!((0.85..=0.995).contains(&cov), "coverage {cov:.3}");
+}
+
+/// Regression (a model without moisture for fresh readings): on wood chips
+/// at 0.1/20 MHz (seed 3 of the zoo) the relaxation model's device estimate
+/// gave no moisture for 2 of its 60 left-out samples and for 5 of 200
+/// fresh readings (2.5 %, above the 2 % the zoo test allows); it was
+/// chosen. A model missing more than 2 % of its cross-validation
+/// predictions is now not eligible (`ModelComparison::eligible`).
+#[test]
+fn a_model_without_moisture_for_its_left_out_samples_is_not_chosen() {
+    let f = Family::wood_chips();
+    let pair = FREQ_PAIRS[1];
+    let train = f.samples(&Draw::new(60, pair), 3);
+    let val = f.samples(&Draw::new(200, pair), 3 + 1000);
+    let cmp = compare_models(&train, &compare_opts(&f)).expect("wood chips fit");
+    let relax = cmp
+        .results
+        .iter()
+        .find(|r| r.0 == Candidate::Relaxation)
+        .and_then(|r| r.1.as_ref().ok())
+        .expect("the relaxation model fits (the case)");
+    let missing = relax
+        .samples
+        .iter()
+        .filter(|s| !s.cv_predicted_pct.is_finite())
+        .count();
+    assert!(missing * 50 > relax.samples.len(), "{missing} missing");
+    assert!(!ModelComparison::eligible(relax));
+    assert_ne!(cmp.chosen, Candidate::Relaxation);
+    let (e, _) = validate(cmp.chosen_fit(), &val);
+    assert!(e.len() * 50 >= val.len() * 49, "{} of 200", e.len());
+}

@@ -35,7 +35,7 @@ pub use nonlinear::{
 pub use product::{
     compare, compare_models, fit_multivariate, fit_relaxation, fit_single, synthetic_samples,
     Candidate, ChannelReading, CompareOptions, Comparison, Excluded, FitStatistics, IntervalModel,
-    MixingFit, ModelComparison, MultivariateOptions, MvMethod, ProductFit, ProductFitError,
-    RelaxationOptions, Sample, SampleResult, SingleOptions, SynthSpec,
+    MixingFit, ModelComparison, MultivariateOptions, MvMethod, PairedTest, ProductFit,
+    ProductFitError, RelaxationOptions, Sample, SampleResult, SingleOptions, SynthSpec,
 };
 pub use rng::SeededRng;
