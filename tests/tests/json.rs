@@ -115,6 +115,27 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
         ),
     );
     c.check(
+        "cal fit",
+        &run(
+            &mut fringe(&[
+                "cal",
+                "fit",
+                "--samples",
+                s(&samples),
+                "--model",
+                "compare",
+                "--bulk-density-kg-m3",
+                "760",
+                "--particle-density-kg-m3",
+                "1400",
+                "--out",
+                s(&t("compare.toml")),
+                "--json",
+            ]),
+            LIMIT,
+        ),
+    );
+    c.check(
         "cal predict",
         &run(
             &mut fringe(&[

@@ -2312,7 +2312,11 @@ impl ModelComparison {
             .expect("the chosen model has a fit")
     }
 
-    /// Whether a candidate's fit can be chosen: finished, on every sample
+    /// Whether a candidate's fit can be chosen: within the quality gate's
+    /// parameter count (at least five samples per fitted parameter,
+    /// `gate::Limits`; a model the gate refuses for it is not one to
+    /// write: at 60 samples ridge's 13-19 effective parameters are over it
+    /// on most of the zoo), finished, on every sample
     /// (a model that left samples out is scored on fewer and is listed, not
     /// chosen), [`ModelComparison::validated`], and with a moisture from at
     /// most 2 % of its cross-validation predictions missing (at most one
@@ -2327,6 +2331,7 @@ impl ModelComparison {
             .filter(|s| !s.cv_predicted_pct.is_finite())
             .count();
         fit.excluded.is_empty()
+            && fit.stats.n >= fit.stats.n_coef * super::gate::Limits::default().samples_per_param
             && fit.stats.cross_validation.sep.is_finite()
             && missing * 50 <= fit.samples.len()
             && Self::validated(fit)

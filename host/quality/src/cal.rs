@@ -14,8 +14,8 @@ use std::path::{Path, PathBuf};
 use fringe_calibration::estimate::{estimate, Channel, EstimateInput};
 use fringe_calibration::fit::product::{
     compare_models, fit_multivariate, fit_relaxation, fit_single, ChannelReading, CompareOptions,
-    IntervalModel, MixingFit, MultivariateOptions, MvMethod, ProductFit, RelaxationOptions, Sample,
-    SingleOptions, MV_MIN_SAMPLES,
+    IntervalModel, MixingFit, ModelComparison, MultivariateOptions, MvMethod, PairedTest,
+    ProductFit, RelaxationOptions, Sample, SingleOptions, MV_MIN_SAMPLES,
 };
 use fringe_calibration::stats::{Folds, PredictionStats, StatsError};
 use fringe_protocol::{short_string, Basis, Flags, ModelKind, ProductCal, Range};
@@ -168,7 +168,7 @@ pub enum FitModel {
     Multivariate,
     /// PLS regression on the same features (components by cross-validation).
     Pls,
-    /// Every model under the same cross-validation; `--out` gets the one chosen by SEP with the parsimony rule.
+    /// Every model under the same cross-validation; `--out` gets ridge unless another is significantly better (paired t test).
     Compare,
 }
 
@@ -325,6 +325,21 @@ pub struct Compared {
     pub fit: Result<ProductFit, String>,
 }
 
+/// How `--model compare` chose: the model kept unless another is
+/// significantly better, and each other eligible model's paired test
+/// against it (`fringe_calibration::fit::compare_models`).
+#[derive(Debug, Clone)]
+pub struct Choice {
+    /// The smallest cross-validated SEP of the eligible models, %.
+    pub best_sep: f64,
+    /// The model kept unless another is significantly better.
+    pub kept: &'static str,
+    /// Its cross-validated SEP, %.
+    pub kept_sep: f64,
+    /// Each other eligible model's paired test against the kept one.
+    pub paired: Vec<(&'static str, PairedTest)>,
+}
+
 /// Result of a fit, for printing and files.
 #[derive(Debug, Clone)]
 pub struct FitOutcome {
@@ -332,8 +347,8 @@ pub struct FitOutcome {
     pub chosen: ProductFit,
     /// Every model of a comparison, chosen included (compare only).
     pub compared: Vec<Compared>,
-    /// The parsimony rule's figures (compare only): best SEP, threshold.
-    pub rule: Option<(f64, f64)>,
+    /// How the comparison chose (compare only).
+    pub rule: Option<Choice>,
     /// Cross-validated SEP single-frequency / chosen (compare only).
     pub sep_ratio: Option<f64>,
     /// The file written.
@@ -544,7 +559,13 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
                 })
                 .collect();
             let ratio = single_sep.map(|s| s / chosen.stats.cross_validation.sep);
-            (chosen, compared, Some((c.best_sep, c.threshold)), ratio)
+            let choice = Choice {
+                best_sep: c.best_sep,
+                kept: c.default_model.name(),
+                kept_sep: c.threshold,
+                paired: c.paired.iter().map(|p| (p.candidate.name(), *p)).collect(),
+            };
+            (chosen, compared, Some(choice), ratio)
         }
     };
     let refusals = gate_of_fit(&chosen, &samples);
@@ -671,8 +692,16 @@ pub fn outcome_json(o: &FitOutcome, out: &Path) -> serde_json::Value {
                 }
                 Err(e) => json!({"model": c.model, "refused": e}),
             }).collect::<Vec<_>>(),
-            "best_sep": o.rule.map(|r| r.0),
-            "parsimony_threshold": o.rule.map(|r| r.1),
+            "best_sep": o.rule.as_ref().map(|r| r.best_sep),
+            "kept_unless_beaten": o.rule.as_ref().map(|r| json!({"model": r.kept, "sep": r.kept_sep})),
+            "paired_tests": o.rule.as_ref().map(|r| r.paired.iter().map(|(m, p)| json!({
+                "model": m,
+                "n": p.n,
+                "mean_advantage_pct2": p.mean_advantage,
+                "t": p.t,
+                "critical_t": p.critical,
+                "significant": p.significant(),
+            })).collect::<Vec<_>>()),
             "sep_ratio_single_over_chosen": o.sep_ratio,
         });
     }
@@ -745,7 +774,7 @@ pub fn write_fit_summary(
     plot: Option<&Path>,
     w: &mut dyn std::io::Write,
 ) -> std::io::Result<()> {
-    if let Some((best, threshold)) = o.rule {
+    if let Some(rule) = &o.rule {
         writeln!(w, "model comparison (same samples, same cross-validation):")?;
         writeln!(
             w,
@@ -761,14 +790,25 @@ pub fn write_fit_summary(
                         "  {:<22} {:>8.3} {:>8.3} {:>+8.3} {:>7.2}",
                         c.model, st.sec, st.sep, st.bias, st.rpd
                     )?;
-                    if f.excluded.is_empty() {
-                        writeln!(w)?;
-                    } else {
+                    if !f.excluded.is_empty() {
                         writeln!(
                             w,
                             "  (left out {} sample(s): not eligible)",
                             f.excluded.len()
                         )?;
+                    } else if f.stats.n < 5 * f.stats.n_coef {
+                        writeln!(
+                            w,
+                            "  ({} parameters for {} samples, under five samples each: not eligible)",
+                            f.stats.n_coef, f.stats.n
+                        )?;
+                    } else if !ModelComparison::eligible(f) {
+                        writeln!(
+                            w,
+                            "  (no moisture for some left-out samples or its cross-validation does not describe it: not eligible)"
+                        )?;
+                    } else {
+                        writeln!(w)?;
                     }
                 }
                 Err(e) => writeln!(w, "  {:<22} refused: {e}", c.model)?,
@@ -776,7 +816,26 @@ pub fn write_fit_summary(
         }
         writeln!(
             w,
-            "  smallest SEP {best:.3} %; the relaxation model is preferred within one standard error ({threshold:.3} %); writing the {} model",
+            "  kept unless another model is significantly better (paired t test on the same samples, 5 %): {} (SEP {:.3} %)",
+            rule.kept, rule.kept_sep
+        )?;
+        for (m, p) in &rule.paired {
+            writeln!(
+                w,
+                "    {m:<20} t = {:>6.2} against {:.2} over {} samples: {}",
+                p.t,
+                p.critical,
+                p.n,
+                if p.significant() {
+                    "significantly better"
+                } else {
+                    "not significantly better"
+                }
+            )?;
+        }
+        writeln!(
+            w,
+            "  writing the {} model",
             model_words(o.chosen.calibration.model.kind())
         )?;
         writeln!(w)?;
@@ -1120,7 +1179,7 @@ mod tests {
     }
 
     #[test]
-    fn relaxation_beats_single_frequency_through_the_csv_path() {
+    fn compare_through_the_csv_path_beats_single_frequency_and_keeps_ridge_unless_beaten() {
         let seed = 77;
         let dir = tempfile::tempdir().expect("dir");
         let csv = synth_csv(dir.path(), "lab.csv", 40, seed);
@@ -1128,12 +1187,59 @@ mod tests {
         let ratio = o.sep_ratio.expect("compare gives a ratio");
         eprintln!("seed {seed}: SEP single / SEP chosen = {ratio:.2}");
         assert!(ratio > 3.0, "seed {seed}: ratio {ratio}");
-        assert_eq!(o.wire.model, ModelKind::Relaxation);
+        // Both two-frequency models separate water from salt: each beats
+        // the single-frequency model by more than 3 times on the grain.
+        let sep = |m: &str| {
+            o.compared
+                .iter()
+                .find(|c| c.model == m)
+                .and_then(|c| c.fit.as_ref().ok())
+                .map(|f| f.stats.cross_validation.sep)
+                .unwrap_or_else(|| panic!("{m} fitted"))
+        };
+        let single = sep("single-frequency");
+        for m in ["relaxation", "multivariate (ridge)"] {
+            assert!(single > 3.0 * sep(m), "{m}: {} vs single {single}", sep(m));
+        }
+        // The rule: ridge unless a paired test says another is better.
+        let rule = o.rule.as_ref().expect("compare says how it chose");
+        // At 40 samples the gate's five samples per parameter leave ridge's
+        // 15-19 effective parameters out; the kept model is then the
+        // eligible one with the smallest SEP.
+        let winner = rule
+            .paired
+            .iter()
+            .filter(|(_, p)| p.significant())
+            .max_by(|a, b| a.1.mean_advantage.total_cmp(&b.1.mean_advantage))
+            .map(|(m, _)| *m);
+        let kind = |m: &str| match m {
+            "multivariate (ridge)" | "multivariate (PLS)" => ModelKind::Multivariate,
+            "relaxation" => ModelKind::Relaxation,
+            _ => ModelKind::SingleFrequency,
+        };
+        let expected = kind(winner.unwrap_or(rule.kept));
+        assert!(
+            o.chosen.stats.n >= 5 * o.chosen.stats.n_coef,
+            "the chosen model passes the gate's parameter count"
+        );
+        assert_eq!(o.wire.model, expected, "winner {winner:?}");
         let j = outcome_json(&o, Path::new("p.toml"));
         for k in ["n", "sec", "sep", "bias", "slope", "r2", "rpd"] {
             assert!(j.get(k).is_some_and(|v| v.is_number()), "key {k} in {j}");
         }
         assert_eq!(j["n"], 40);
+        let tests = j["comparison"]["paired_tests"]
+            .as_array()
+            .expect("paired tests");
+        assert_eq!(tests.len(), rule.paired.len());
+        assert_eq!(j["comparison"]["kept_unless_beaten"]["model"], rule.kept);
+        let mut text = Vec::new();
+        write_fit_summary(&o, Path::new("p.toml"), None, &mut text).expect("summary");
+        let text = String::from_utf8(text).expect("utf8");
+        assert!(
+            text.contains("kept unless another model is significantly better"),
+            "{text}"
+        );
     }
 
     #[test]
