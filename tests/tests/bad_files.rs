@@ -724,6 +724,12 @@ fn other_kinds(rng: &mut StdRng) -> Vec<Kind> {
                 &[path, "`temperature_c`", "kelvin"],
             ),
             case(
+                "frequencies in MHz",
+                Setup::Bytes(set_line(good, "freqs_hz = ", "freqs_hz = [1.0, 20.0]")),
+                BAD_FILE,
+                &[path, "`source.freqs_hz`", "MHz"],
+            ),
+            case(
                 "a number as text",
                 Setup::Bytes(set_line(good, "sec_pct = ", "sec_pct = \"0.1 %\"")),
                 BAD_FILE,

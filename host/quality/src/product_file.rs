@@ -433,6 +433,20 @@ impl ProductFile {
                 ),
             ));
         }
+        // The device excites between about 100 kHz and 50 MHz; a pair
+        // outside 1 kHz..1 GHz is a unit slip (MHz written for Hz), caught
+        // here rather than as a mismatch with every reading at `cal predict`.
+        if let Some(f) = self.source.freqs_hz {
+            if !f.iter().all(|v| (1e3..=1e9).contains(v)) || f[0] >= f[1] {
+                return Err(bad(
+                    "source.freqs_hz",
+                    format!(
+                        "[{}, {}] is not two frequencies in Hz between 1 kHz and 1 GHz, lower first (MHz given for Hz?)",
+                        f[0], f[1]
+                    ),
+                ));
+            }
+        }
         for r in &self.inputs {
             range("inputs", [r.min, r.max]).map_err(|_| {
                 bad(
@@ -677,6 +691,44 @@ mod tests {
             .expect_err("nan")
             .to_string()
             .contains("`sec_pct`"));
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    /// Regression (found by the bad-file tests): a file whose frequency
+    /// pair was written in MHz loaded, and `cal predict` then refused every
+    /// reading as taken at other frequencies, exit 1; the pair is now
+    /// checked on load and named by its field.
+    #[test]
+    fn frequencies_written_in_mhz_are_named_on_load() {
+        let dir = std::env::temp_dir().join(format!("fringe-pf-mhz-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).expect("dir");
+        let p = dir.join("p.toml");
+        let good = ProductFile::from_wire(
+            &wire(),
+            &["eps_re"],
+            Statistics::default(),
+            Source {
+                freqs_hz: Some([1e6, 2e7]),
+                ..Source::default()
+            },
+        );
+        good.save(&p).expect("save");
+        ProductFile::load(&p).expect("Hz load");
+        let text = std::fs::read_to_string(&p).expect("read");
+        let from = "freqs_hz = [1000000.0, 20000000.0]";
+        assert!(text.contains(from), "{text}");
+        for to in [
+            "freqs_hz = [1.0, 20.0]",
+            "freqs_hz = [20000000.0, 1000000.0]",
+            "freqs_hz = [1000000.0, nan]",
+        ] {
+            std::fs::write(&p, text.replace(from, to)).expect("write");
+            let e = ProductFile::load(&p).expect_err(to).to_string();
+            assert!(
+                e.contains("`source.freqs_hz`") && e.contains("p.toml"),
+                "{to}: {e}"
+            );
+        }
         let _ = std::fs::remove_dir_all(&dir);
     }
 
