@@ -1392,15 +1392,36 @@ fn other_kinds(rng: &mut StdRng) -> Vec<Kind> {
             c.member = Some(m);
             c
         };
-        let mut cases = vec![member(
-            case(
-                "empty records",
-                Setup::Bytes(Vec::new()),
-                PROBLEMS,
-                &["records.jsonl", "records removed"],
+        let mut cases = vec![
+            member(
+                case(
+                    "empty records",
+                    Setup::Bytes(Vec::new()),
+                    PROBLEMS,
+                    &["records.jsonl", "records removed"],
+                ),
+                "records.jsonl",
             ),
-            "records.jsonl",
-        )];
+            // The manifest emptied or overwritten is a finding too.
+            member(
+                case(
+                    "empty manifest",
+                    Setup::Bytes(Vec::new()),
+                    PROBLEMS,
+                    &["manifest.json", "empty"],
+                ),
+                "manifest.json",
+            ),
+            member(
+                case(
+                    "binary garbage for the manifest",
+                    Setup::Bytes((0..=255u8).rev().cycle().take(700).collect()),
+                    PROBLEMS,
+                    &["manifest.json", "line 1"],
+                ),
+                "manifest.json",
+            ),
+        ];
         for k in 0..3 {
             // A cut inside a line (never just before its newline, where the
             // line would still be whole).

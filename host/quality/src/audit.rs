@@ -1083,7 +1083,24 @@ fn verify_bundle(
         .read(MANIFEST)
         .map_err(|e| bad_manifest(e.to_string()))?
         .ok_or_else(|| bad_manifest("no such file".into()))?;
-    let m: Manifest = serde_json::from_slice(&bytes).map_err(|e| bad_manifest(e.to_string()))?;
+    // A manifest that is there but does not read (emptied, overwritten,
+    // cut short) is a finding about the bundle, like a changed member: the
+    // rest cannot be checked without it.
+    let m: Manifest = match serde_json::from_slice(&bytes) {
+        Ok(m) => m,
+        Err(e) => {
+            report.problems.push(Problem::Unreadable {
+                file: MANIFEST.to_string(),
+                line: e.line().max(1) as u64,
+                reason: if bytes.trim_ascii().is_empty() {
+                    "empty: nothing else in the bundle can be checked".into()
+                } else {
+                    format!("{e}: nothing else in the bundle can be checked")
+                },
+            });
+            return Ok(Vec::new());
+        }
+    };
     if m.format != FORMAT {
         return Err(bad_manifest(format!(
             "format `{}`, this tool reads `{FORMAT}`",
