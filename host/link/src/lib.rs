@@ -688,7 +688,9 @@ impl Link {
 
     /// Sends a request that changes the device, signed with the device key
     /// (HMAC, `fringe_protocol::auth`); the counter is one above the
-    /// device's stored one (read with a Status request first).
+    /// device's stored one (read with a Status request first). A repeated
+    /// try refused as a replay is checked against the device's stored
+    /// counter: the write landed if it is this write's (its Ack was lost).
     ///
     /// # Errors
     /// As [`Link::request`].
@@ -704,7 +706,26 @@ impl Link {
         };
         let serial = self.serial_number().to_string();
         let auth = fringe_protocol::auth::sign(key, &serial, counter, &request);
-        self.request_inner(request, auth)
+        let retries_before = self.stats.retries;
+        match self.request_inner(request, auth) {
+            // A repeated try refused as a replay: the first try may have
+            // landed and only its Ack been lost. The device stores the
+            // counter of the last write it accepted, so it says which: if
+            // that is this write's counter, the write took effect (every
+            // write is answered with a plain Ack).
+            Err(e)
+                if self.stats.retries > retries_before
+                    && matches!(&e, LinkError::Refused { code, reason, .. }
+                        if *code == fringe_protocol::ErrorCode::AuthFailed.code()
+                            && reason.contains("not above stored")) =>
+            {
+                match self.request(Request::Status)? {
+                    Response::Status(s) if s.write_counter == counter => Ok(Response::Ack),
+                    _ => Err(e),
+                }
+            }
+            other => other,
+        }
     }
 
     fn request_inner(
@@ -987,6 +1008,118 @@ mod tests {
             backoff_max: Duration::from_millis(20),
             handshakes: 1,
         }
+    }
+
+    /// A device for the signed-write tests: stores the counter of the last
+    /// write it accepted, refuses a counter not above it as the firmware
+    /// does ("auth counter not above stored"), and loses the Ack of its
+    /// first `lose` accepted writes. Returns the answer closure and the
+    /// number of writes it applied.
+    fn counting_device(
+        lose: u32,
+        stored_by_other: Option<u32>,
+    ) -> (
+        impl FnMut(&HostFrame) -> Vec<u8> + Send + 'static,
+        std::sync::Arc<std::sync::atomic::AtomicU32>,
+    ) {
+        let applied = std::sync::Arc::new(std::sync::atomic::AtomicU32::new(0));
+        let count = applied.clone();
+        let mut stored = 0u32;
+        let mut lost = 0u32;
+        let answer = move |f: &HostFrame| match &f.request {
+            Request::Identify { .. } => enc(&DeviceFrame::Response {
+                id: f.id,
+                response: Response::Identity(identity(PROTOCOL_VERSION)),
+            }),
+            Request::Status => enc(&DeviceFrame::Response {
+                id: f.id,
+                response: Response::Status(Status {
+                    time_ms: 0,
+                    uptime_ms: 0,
+                    boot: 1,
+                    next_seq: fringe_protocol::Seq::default(),
+                    log_first: fringe_protocol::Seq::default(),
+                    log_len: 0,
+                    next_event: 0,
+                    stream_period_ms: None,
+                    active_slot: None,
+                    cell_cal: fringe_protocol::CalId::NONE,
+                    product_cal: fringe_protocol::CalId::NONE,
+                    last_flags: fringe_protocol::Flags::empty(),
+                    write_counter: stored,
+                    link_errors: 0,
+                    reference_ratio: 1.0,
+                    output_ma: 4.0,
+                    stack_free_bytes: None,
+                    reading_cost: None,
+                }),
+            }),
+            _ => {
+                let counter = f.auth.map_or(0, |a| a.counter);
+                if counter <= stored {
+                    return enc(&DeviceFrame::Error {
+                        id: f.id,
+                        code: ErrorCode::AuthFailed,
+                        reason: fringe_protocol::short_string("auth counter not above stored"),
+                    });
+                }
+                stored = counter;
+                count.fetch_add(1, std::sync::atomic::Ordering::SeqCst);
+                if let Some(other) = stored_by_other {
+                    // Another host's write lands between our tries.
+                    stored = other;
+                }
+                if lost < lose {
+                    lost += 1;
+                    return Vec::new();
+                }
+                enc(&DeviceFrame::Response {
+                    id: f.id,
+                    response: Response::Ack,
+                })
+            }
+        };
+        (answer, applied)
+    }
+
+    /// Regression: a signed write whose Ack was lost was tried again with
+    /// the same counter, refused as a replay, and reported as refused
+    /// ("auth counter not above stored") although it had taken effect. The
+    /// link now asks the device for its stored counter: its own counter
+    /// there means the write landed.
+    #[test]
+    fn a_signed_write_whose_ack_was_lost_is_reported_as_done() {
+        let key = [7u8; fringe_protocol::auth::KEY_LEN];
+        let (answer, applied) = counting_device(1, None);
+        let mut link = Link::connect(fake(answer), quick()).expect("connect");
+        let r = link
+            .request_signed(Request::Reboot, &key)
+            .expect("the write landed on the first try");
+        assert_eq!(r, Response::Ack);
+        assert_eq!(applied.load(std::sync::atomic::Ordering::SeqCst), 1);
+        assert!(link.stats().retries >= 1, "{:?}", link.stats());
+        // The next write signs above it and goes through as usual.
+        let (answer, applied) = counting_device(0, None);
+        let mut link = Link::connect(fake(answer), quick()).expect("connect");
+        link.request_signed(Request::Reboot, &key)
+            .expect("plain write");
+        assert_eq!(applied.load(std::sync::atomic::Ordering::SeqCst), 1);
+    }
+
+    /// The same refusal when the stored counter is not this write's (another
+    /// host wrote in between) stays a refusal.
+    #[test]
+    fn a_replay_refusal_with_another_stored_counter_stays_refused() {
+        let key = [7u8; fringe_protocol::auth::KEY_LEN];
+        let (answer, _) = counting_device(1, Some(99));
+        let mut link = Link::connect(fake(answer), quick()).expect("connect");
+        let e = link
+            .request_signed(Request::Reboot, &key)
+            .expect_err("refused");
+        assert!(
+            matches!(&e, LinkError::Refused { reason, .. } if reason.contains("not above stored")),
+            "{e:?}"
+        );
     }
 
     #[test]
