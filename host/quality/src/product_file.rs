@@ -644,22 +644,24 @@ mod tests {
         let _ = std::fs::remove_dir_all(&dir);
     }
 
+    /// A product file from [`wire`] with `source`, saved as `p.toml` in a
+    /// fresh folder named after `tag`: (folder, file, the file's contents).
+    fn saved(tag: &str, source: Source) -> (PathBuf, PathBuf, ProductFile) {
+        let dir = std::env::temp_dir().join(format!("fringe-pf-{tag}-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).expect("dir");
+        let p = dir.join("p.toml");
+        let good = ProductFile::from_wire(&wire(), &["eps_re"], Statistics::default(), source);
+        good.save(&p).expect("save");
+        (dir, p, good)
+    }
+
     /// Regression: a file with NaN, an f32 overflow (1e39, read as inf) or
     /// kelvin in a number the device evaluates was refused only for its
     /// content id ("edited by hand"), or accepted with a matching id; each
     /// is now named by its field.
     #[test]
     fn non_finite_and_kelvin_values_are_named_by_field() {
-        let dir = std::env::temp_dir().join(format!("fringe-pf-nan-{}", std::process::id()));
-        std::fs::create_dir_all(&dir).expect("dir");
-        let p = dir.join("p.toml");
-        let good = ProductFile::from_wire(
-            &wire(),
-            &["eps_re"],
-            Statistics::default(),
-            Source::default(),
-        );
-        good.save(&p).expect("save");
+        let (dir, p, good) = saved("nan", Source::default());
         let text = std::fs::read_to_string(&p).expect("read");
         for (from, to, field) in [
             ("sec_pct = 0.3", "sec_pct = nan", "`sec_pct`"),
@@ -700,19 +702,13 @@ mod tests {
     /// checked on load and named by its field.
     #[test]
     fn frequencies_written_in_mhz_are_named_on_load() {
-        let dir = std::env::temp_dir().join(format!("fringe-pf-mhz-{}", std::process::id()));
-        std::fs::create_dir_all(&dir).expect("dir");
-        let p = dir.join("p.toml");
-        let good = ProductFile::from_wire(
-            &wire(),
-            &["eps_re"],
-            Statistics::default(),
+        let (dir, p, _) = saved(
+            "mhz",
             Source {
                 freqs_hz: Some([1e6, 2e7]),
                 ..Source::default()
             },
         );
-        good.save(&p).expect("save");
         ProductFile::load(&p).expect("Hz load");
         let text = std::fs::read_to_string(&p).expect("read");
         let from = "freqs_hz = [1000000.0, 20000000.0]";
