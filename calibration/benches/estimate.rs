@@ -56,6 +56,7 @@ fn bench(c: &mut Criterion) {
                 y_sd,
                 &cells,
                 black_box(22.0f32),
+                None,
                 Some(&cal),
             )
         })

@@ -31,7 +31,7 @@ fn sep(e: &[f64]) -> f64 {
 fn errors(f: &ProductFit, val: &[Sample]) -> (Vec<f64>, usize, usize) {
     let (mut e, mut missing, mut inside) = (Vec::new(), 0, 0);
     for s in val {
-        match f.predict(&s.channels, s.temperature_c, 0.95) {
+        match f.predict(&s.channels, s.temperature_c, s.bulk_density_kg_m3, 0.95) {
             Ok(p) => match (p.estimate.moisture_pct, p.interval_pct) {
                 (Some(m), Some((lo, hi))) => {
                     e.push(f64::from(m) - s.moisture_pct);
@@ -52,11 +52,14 @@ fn errors(f: &ProductFit, val: &[Sample]) -> (Vec<f64>, usize, usize) {
 /// varying as the product says and with it held at its nominal value, and
 /// the ridge model with and without Trabelsi-Kraszewski-Nelson's
 /// density-independent psi (on fresh samples and at twice the calibrated
-/// salt).
+/// salt), and the ridge model with the plant's density as an input
+/// (`density_input`, the gauge reading with 1 % noise), on fresh samples
+/// with the density and without it (the device's fallback to the
+/// reference density, flagged).
 fn density_table(seed: u64) {
     println!();
-    println!("| product | density varies | chosen, density varying | chosen, density fixed | ridge without psi | ridge with psi | ridge 2x salt without / with psi |");
-    println!("| --- | --- | --- | --- | --- | --- | --- |");
+    println!("| product | density varies | chosen, density varying | chosen, density fixed | ridge without psi | ridge with psi | ridge 2x salt without / with psi | ridge with density input | same, no density given |");
+    println!("| --- | --- | --- | --- | --- | --- | --- | --- | --- |");
     for f in Family::all()
         .into_iter()
         .filter(|f| f.density_variation > 0.0)
@@ -76,6 +79,7 @@ fn density_table(seed: u64) {
                 }),
                 eps_sd: g.eps_noise_sd.max(1e-3),
                 folds: Folds::LeaveOneOut,
+                density_input: false,
             };
             let train = g.samples(&Draw::new(60, pair), seed);
             let val = g.samples(&Draw::new(200, pair), seed + 1000);
@@ -109,8 +113,27 @@ fn density_table(seed: u64) {
                 Err(_) => (f64::NAN, f64::NAN),
             });
         }
+        let o = MultivariateOptions {
+            eps_sd: f.eps_noise_sd.max(1e-3),
+            density_input: true,
+            ..MultivariateOptions::default()
+        };
+        let no_density: Vec<Sample> = val
+            .iter()
+            .map(|s| Sample {
+                bulk_density_kg_m3: None,
+                ..s.clone()
+            })
+            .collect();
+        let (with, without) = match fit_multivariate(&train, &o) {
+            Ok(fit) => (
+                sep(&errors(&fit, &val).0),
+                sep(&errors(&fit, &no_density).0),
+            ),
+            Err(_) => (f64::NAN, f64::NAN),
+        };
         println!(
-            "| {} | +/-{:.0} % | {} | {} | {:.3} | {:.3} | {:.3} / {:.3} |",
+            "| {} | +/-{:.0} % | {} | {} | {:.3} | {:.3} | {:.3} / {:.3} | {:.3} | {:.3} |",
             f.name,
             100.0 * f.density_variation,
             cells[0],
@@ -118,7 +141,9 @@ fn density_table(seed: u64) {
             ridge[0].0,
             ridge[1].0,
             ridge[0].1,
-            ridge[1].1
+            ridge[1].1,
+            with,
+            without
         );
     }
 }
@@ -229,6 +254,7 @@ fn main() {
                 }),
                 eps_sd: f.eps_noise_sd.max(1e-3),
                 folds: Folds::LeaveOneOut,
+                density_input: false,
             };
             let train = f.samples(&Draw::new(60, pair), seed);
             let t0 = Instant::now();

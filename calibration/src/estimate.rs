@@ -39,6 +39,10 @@ bitflags! {
         const FIT_NOT_CONVERGED = 1 << 4;
         /// No product calibration, or the permittivity is not available.
         const NOT_CALIBRATED = 1 << 7;
+        /// The calibration takes a bulk density input and none (or no
+        /// usable one) came with the reading: the moisture assumes the
+        /// calibration's reference density, with the uncertainty widened.
+        const DENSITY_MISSING = 1 << 11;
     }
 }
 
@@ -62,6 +66,10 @@ pub struct EstimateInput<T> {
     pub channels: [Channel<T>; 2],
     /// Product temperature, C.
     pub temperature_c: T,
+    /// Bulk density of the product at the sensor, kg/m^3, where the plant
+    /// measures it (a weigh belt, a radiometric gauge); used only by a
+    /// calibration with a density input.
+    pub bulk_density_kg_m3: Option<T>,
 }
 
 /// Why an estimate carries no moisture.
@@ -211,8 +219,32 @@ pub fn estimate<T: Real>(
                     flags |= EstimateFlags::OUT_OF_RANGE;
                 }
             }
-            let (m, g) = mv.moisture_and_gradient(e, t);
+            let rho = input
+                .bulk_density_kg_m3
+                .filter(|r| r.is_finite() && *r > T::zero());
             let mut var = T::zero();
+            if mv.uses_density() {
+                let rho_range = ranges.get(4).copied();
+                match rho {
+                    Some(r) => {
+                        if rho_range.is_some_and(|rg| !rg.contains(r)) {
+                            flags |= EstimateFlags::OUT_OF_RANGE;
+                        }
+                    }
+                    None => {
+                        // The density is taken as the reference, anywhere in
+                        // the calibrated range with equal chance: the
+                        // standard deviation of a uniform distribution,
+                        // width / sqrt(12) (GUM, JCGM 100:2008, 4.3.7; from memory).
+                        flags |= EstimateFlags::DENSITY_MISSING;
+                        let width = rho_range.map_or(T::zero(), |rg| rg.max - rg.min);
+                        let d = mv.d_moisture_d_density(e) * width
+                            / (mv.rho_ref_kg_m3 * T::sqrt(T::c(12.0)));
+                        var += d * d;
+                    }
+                }
+            }
+            let (m, g) = mv.moisture_and_gradient(e, t, rho);
             for (k, gk) in g.iter().enumerate() {
                 let d = *gk * input.channels[k / 2].sd;
                 var += d * d;
@@ -266,6 +298,7 @@ pub fn estimate_from_admittance<T: Real>(
     y_sd_s: [T; 2],
     cells: &[CellConstants<T>; 2],
     temperature_c: T,
+    bulk_density_kg_m3: Option<T>,
     cal: Option<&ProductCalibration<T>>,
 ) -> Result<Estimate<T>, CellError> {
     let mut ch = [Channel {
@@ -287,6 +320,7 @@ pub fn estimate_from_admittance<T: Real>(
         &EstimateInput {
             channels: ch,
             temperature_c,
+            bulk_density_kg_m3,
         },
         cal,
     ))
@@ -341,6 +375,7 @@ mod tests {
         EstimateInput {
             channels: ch,
             temperature_c: T::c(s.temperature_c),
+            bulk_density_kg_m3: None,
         }
     }
 
@@ -360,7 +395,7 @@ mod tests {
             sd in proptest::num::f32::ANY, t in proptest::num::f32::ANY,
         ) {
             let ch = |f: f32, e, l| Channel { freq_hz: f, eps_re: e, eps_loss: l, sd };
-            let i = EstimateInput { channels: [ch(1e6, e0, l0), ch(20e6, e1, l1)], temperature_c: t };
+            let i = EstimateInput { channels: [ch(1e6, e0, l0), ch(20e6, e1, l1)], temperature_c: t, bulk_density_kg_m3: None };
             let e = estimate(&i, Some(&identity_cal::<f32>()));
             match e.moisture_pct {
                 Some(m) => proptest::prop_assert!(m.is_finite() && e.failure.is_none()),
@@ -438,6 +473,7 @@ mod tests {
                     sd: c.sd as f64,
                 }),
                 temperature_c: i32_.temperature_c as f64,
+                bulk_density_kg_m3: None,
             };
             let a = estimate(&i32_, Some(&c32));
             let a = a
@@ -589,7 +625,8 @@ mod tests {
         let f = [1e6f32, 20e6];
         let y =
             f.map(|fk| permittivity_to_admittance(fk, sp.permittivity(fk, &s), &cells[0]).unwrap());
-        let e = estimate_from_admittance(f, y, [2e-10, 4e-9], &cells, 18.0, Some(&cal)).unwrap();
+        let e =
+            estimate_from_admittance(f, y, [2e-10, 4e-9], &cells, 18.0, None, Some(&cal)).unwrap();
         let m = e.moisture_pct.unwrap();
         assert!((m - 14.0).abs() < 0.01, "{m}");
         assert!(

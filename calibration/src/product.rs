@@ -14,12 +14,14 @@
 //!
 //! - **Multivariate** (chemometrics on physically chosen features of both
 //!   frequencies, [`MultivariateModel`]): `moisture = b0 + sum_k b_k x_k`
-//!   over the 23 features of [`MultivariateModel::features`] (log eps' and
+//!   over the 26 features of [`MultivariateModel::features`] (log eps' and
 //!   log eps'' at each frequency, temperature, a water index per frequency
 //!   compensated by water's permittivity at the product temperature,
 //!   Trabelsi, Kraszewski and Nelson's density-independent function at the
-//!   higher frequency, and the squares and products of the first five); the
-//!   host fits the coefficients by ridge or PLS.
+//!   higher frequency, the squares and products of the first five, and,
+//!   where the plant measures the bulk density at the sensor, its relative
+//!   deviation from the calibration's and that times log eps' at each
+//!   frequency); the host fits the coefficients by ridge or PLS.
 //!
 //! All three are linear in their coefficients over the features returned by
 //! [`SingleFrequencyModel::features`], [`RelaxationModel::features`] and
@@ -45,10 +47,15 @@
 //!  [11] p0 [12] p1 [13] p2 [14] p3  (% per m^k)
 //!  [15] c_t (% per K)          [16] c_s (% per unit ln(sigma/sigma_ref))
 //!
-//! Multivariate, 27 values:
+//! Multivariate without a density input, 27 values:
 //!  [0] layout version (1)      [1] t_ref_c
 //!  [2] a_f (> 0; Trabelsi-Kraszewski-Nelson constant at the higher frequency)
 //!  [3] b0 (%)                  [4..27] b_0..b_22 (% per feature unit)
+//!
+//! Multivariate with a density input, 31 values:
+//!  [0] layout version (2)      [1]-[3] as above
+//!  [4..30] b_0..b_25 (% per feature unit)
+//!  [30] rho_ref_kg_m3 (> 0; the bulk density the density features are relative to)
 //! ```
 //!
 //! Valid ranges and the SEC travel beside the params (as in
@@ -72,10 +79,23 @@ pub const LAYOUT_VERSION: f32 = 1.0;
 pub const SINGLE_LEN: usize = 8;
 /// Length of the relaxation layout.
 pub const RELAXATION_LEN: usize = 17;
-/// Number of features of the multivariate model.
-pub const MV_FEATURES: usize = 23;
-/// Length of the multivariate layout.
-pub const MULTIVARIATE_LEN: usize = 4 + MV_FEATURES;
+/// Number of features of the multivariate model (the last
+/// [`MV_DENSITY_FEATURES`] used only with a density input).
+pub const MV_FEATURES: usize = 26;
+/// Features of the multivariate model without a density input.
+pub const MV_BASE_FEATURES: usize = 23;
+/// Density features of the multivariate model (23-25).
+pub const MV_DENSITY_FEATURES: usize = MV_FEATURES - MV_BASE_FEATURES;
+/// Length of the multivariate layout without a density input (version 1).
+pub const MULTIVARIATE_LEN: usize = 4 + MV_BASE_FEATURES;
+/// Length of the multivariate layout with a density input (version 2).
+pub const MULTIVARIATE_DENSITY_LEN: usize = 4 + MV_FEATURES + 1;
+/// Layout version of the multivariate model with a density input.
+pub const LAYOUT_VERSION_DENSITY: f32 = 2.0;
+/// Lowest and highest bulk density a density input may carry, kg/m^3
+/// (loose flakes to wet aggregates with room to spare; common practice,
+/// no source).
+pub const DENSITY_LIMITS_KG_M3: (f64, f64) = (10.0, 5000.0);
 
 /// Which model (mirrors `fringe_protocol::ModelKind`).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -169,7 +189,7 @@ impl fmt::Display for ParamsError {
                 )
             }
             ParamsError::UnknownVersion => {
-                f.write_str("calibration params[0]: unknown layout version (expected 1)")
+                f.write_str("calibration params[0]: unknown layout version (expected 1, or 2 for a multivariate model with a density input)")
             }
             ParamsError::NonFinite { index } => {
                 write!(f, "calibration params[{index}] is not finite")
@@ -363,6 +383,9 @@ pub struct MultivariateModel<T> {
     pub intercept: T,
     /// Coefficients of the features, in [`MultivariateModel::FEATURE_NAMES`] order.
     pub coeffs: [T; MV_FEATURES],
+    /// Bulk density the density features are relative to, kg/m^3; 0 for a
+    /// model without a density input (its density coefficients are 0).
+    pub rho_ref_kg_m3: T,
 }
 
 impl<T: Real> MultivariateModel<T> {
@@ -393,7 +416,29 @@ impl<T: Real> MultivariateModel<T> {
         "ln_l2^2",
         "ln_l2*dt",
         "dt^2",
+        "dr",
+        "dr*ln_e1",
+        "dr*ln_e2",
     ];
+
+    /// Whether the model takes a bulk density input.
+    pub fn uses_density(&self) -> bool {
+        self.rho_ref_kg_m3 > T::zero()
+    }
+
+    /// The density feature dr = rho / rho_ref - 1 of a density input: 0 for
+    /// a model without one, or when the input is missing (`None`), not
+    /// finite or not positive (then the model assumes its reference
+    /// density; [`crate::estimate::estimate`] flags that and widens the
+    /// uncertainty).
+    pub fn density_deviation(&self, rho_kg_m3: Option<T>) -> T {
+        match rho_kg_m3 {
+            Some(r) if self.uses_density() && r.is_finite() && r > T::zero() => {
+                r / self.rho_ref_kg_m3 - T::one()
+            }
+            _ => T::zero(),
+        }
+    }
 
     /// The features of a reading and their derivatives w.r.t.
     /// `(eps'_1, eps''_1, eps'_2, eps''_2)` (`e` in that order):
@@ -405,11 +450,22 @@ impl<T: Real> MultivariateModel<T> {
     ///   1974), with water's permittivity at t (Malmberg and Maryott 1956):
     ///   the temperature correction physics gives, so it extrapolates;
     /// - 7: psi_2 = [`tkn_psi`] at the higher frequency on eps''_2 + f;
-    /// - 8-22: squares and products of features 0-4.
+    /// - 8-22: squares and products of features 0-4;
+    /// - 23-25: dr = rho / rho_ref - 1 (the bulk density's relative
+    ///   deviation, [`MultivariateModel::density_deviation`]), dr ln eps'_1,
+    ///   dr ln eps'_2: at a given moisture, eps' grows with the amount of
+    ///   matter in the field (Nelson's review of density effects, from
+    ///   memory), and its logarithm shifts in proportion to itself for a
+    ///   power-law mixture. All 0 without a density input.
     ///
     /// A feature is NaN where it is not defined (eps' <= 0, eps'' < -f,
     /// psi outside its domain).
-    pub fn features(&self, e: [T; 4], t_c: T) -> ([T; MV_FEATURES], [[T; 4]; MV_FEATURES]) {
+    pub fn features(
+        &self,
+        e: [T; 4],
+        t_c: T,
+        rho_kg_m3: Option<T>,
+    ) -> ([T; MV_FEATURES], [[T; 4]; MV_FEATURES]) {
         let fl = T::c(LOSS_FLOOR);
         let mut x = [T::zero(); MV_FEATURES];
         let mut d = [[T::zero(); 4]; MV_FEATURES];
@@ -437,12 +493,19 @@ impl<T: Real> MultivariateModel<T> {
                 d[8 + k][c] = x[*i] * d[*j][c] + x[*j] * d[*i][c];
             }
         }
+        let dr = self.density_deviation(rho_kg_m3);
+        x[23] = dr;
+        x[24] = dr * x[0];
+        d[24][0] = dr * d[0][0];
+        x[25] = dr * x[1];
+        d[25][2] = dr * d[1][2];
         (x, d)
     }
 
-    /// Moisture, %, and its gradient w.r.t. `(eps'_1, eps''_1, eps'_2, eps''_2)`.
-    pub fn moisture_and_gradient(&self, e: [T; 4], t_c: T) -> (T, [T; 4]) {
-        let (x, d) = self.features(e, t_c);
+    /// Moisture, %, and its gradient w.r.t. `(eps'_1, eps''_1, eps'_2, eps''_2)`,
+    /// at bulk density `rho_kg_m3` (used only by a model with a density input).
+    pub fn moisture_and_gradient(&self, e: [T; 4], t_c: T, rho_kg_m3: Option<T>) -> (T, [T; 4]) {
+        let (x, d) = self.features(e, t_c, rho_kg_m3);
         let mut m = self.intercept;
         let mut g = [T::zero(); 4];
         for k in 0..MV_FEATURES {
@@ -455,8 +518,14 @@ impl<T: Real> MultivariateModel<T> {
     }
 
     /// Moisture, %.
-    pub fn moisture_pct(&self, e: [T; 4], t_c: T) -> T {
-        self.moisture_and_gradient(e, t_c).0
+    pub fn moisture_pct(&self, e: [T; 4], t_c: T, rho_kg_m3: Option<T>) -> T {
+        self.moisture_and_gradient(e, t_c, rho_kg_m3).0
+    }
+
+    /// d moisture / d dr at a reading (dr = rho / rho_ref - 1): how much a
+    /// unit relative density error moves the moisture.
+    pub fn d_moisture_d_density(&self, e: [T; 4]) -> T {
+        self.coeffs[23] + self.coeffs[24] * T::ln(e[0]) + self.coeffs[25] * T::ln(e[2])
     }
 }
 
@@ -486,6 +555,13 @@ impl<T: Real> ProductModel<T> {
         match self {
             ProductModel::SingleFrequency(_) => &["eps_re"],
             ProductModel::Relaxation(_) => &["eps_hf", "d_eps", "sigma_s_m", "mixing_moisture_pct"],
+            ProductModel::Multivariate(m) if m.uses_density() => &[
+                "eps1_re",
+                "eps1_loss",
+                "eps2_re",
+                "eps2_loss",
+                "bulk_density_kg_m3",
+            ],
             ProductModel::Multivariate(_) => &["eps1_re", "eps1_loss", "eps2_re", "eps2_loss"],
         }
     }
@@ -534,10 +610,18 @@ impl<T: Real> ProductModel<T> {
                 out[1] = f(m.t_ref_c);
                 out[2] = f(m.a_f);
                 out[3] = f(m.intercept);
+                if !m.uses_density() {
+                    for k in 0..MV_BASE_FEATURES {
+                        out[4 + k] = f(m.coeffs[k]);
+                    }
+                    return (out, MULTIVARIATE_LEN);
+                }
+                out[0] = LAYOUT_VERSION_DENSITY;
                 for k in 0..MV_FEATURES {
                     out[4 + k] = f(m.coeffs[k]);
                 }
-                (out, MULTIVARIATE_LEN)
+                out[4 + MV_FEATURES] = f(m.rho_ref_kg_m3);
+                (out, MULTIVARIATE_DENSITY_LEN)
             }
         }
     }
@@ -547,9 +631,14 @@ impl<T: Real> ProductModel<T> {
     /// # Errors
     /// [`ParamsError`] naming the offending index.
     pub fn from_params(kind: ModelKind, params: &[f32]) -> Result<Self, ParamsError> {
+        // The multivariate model's layout version 2 (with a density input)
+        // is longer; every other layout is version 1.
+        let density =
+            kind == ModelKind::Multivariate && params.first() == Some(&LAYOUT_VERSION_DENSITY);
         let expected = match kind {
             ModelKind::SingleFrequency => SINGLE_LEN,
             ModelKind::Relaxation => RELAXATION_LEN,
+            ModelKind::Multivariate if density => MULTIVARIATE_DENSITY_LEN,
             ModelKind::Multivariate => MULTIVARIATE_LEN,
         };
         if params.len() != expected {
@@ -561,7 +650,7 @@ impl<T: Real> ProductModel<T> {
         if let Some(index) = params.iter().position(|x| !x.is_finite()) {
             return Err(ParamsError::NonFinite { index });
         }
-        if params[0] != LAYOUT_VERSION {
+        if params[0] != LAYOUT_VERSION && !density {
             return Err(ParamsError::UnknownVersion);
         }
         let g = |i: usize| T::c(params[i] as f64);
@@ -633,15 +722,31 @@ impl<T: Real> ProductModel<T> {
                 if !(params[2] > 0.0) {
                     return bad(2, "a_f must be > 0");
                 }
+                let n = if density {
+                    MV_FEATURES
+                } else {
+                    MV_BASE_FEATURES
+                };
                 let mut coeffs = [T::zero(); MV_FEATURES];
-                for (k, c) in coeffs.iter_mut().enumerate() {
+                for (k, c) in coeffs.iter_mut().take(n).enumerate() {
                     *c = g(4 + k);
                 }
+                let rho_ref = if density {
+                    let i = 4 + MV_FEATURES;
+                    let (lo, hi) = DENSITY_LIMITS_KG_M3;
+                    if !(params[i] >= lo as f32 && params[i] <= hi as f32) {
+                        return bad(i, "rho_ref_kg_m3 must be 10-5000 kg/m^3");
+                    }
+                    g(i)
+                } else {
+                    T::zero()
+                };
                 Ok(ProductModel::Multivariate(MultivariateModel {
                     t_ref_c: g(1),
                     a_f: g(2),
                     intercept: g(3),
                     coeffs,
+                    rho_ref_kg_m3: rho_ref,
                 }))
             }
         }
@@ -708,6 +813,7 @@ impl<T: Real> ProductModel<T> {
                 a_f: U::cast(m.a_f),
                 intercept: U::cast(m.intercept),
                 coeffs: m.coeffs.map(U::cast),
+                rho_ref_kg_m3: U::cast(m.rho_ref_kg_m3),
             }),
         }
     }

@@ -373,6 +373,7 @@ fn worst_moisture_error<T: Real>() -> (f64, usize) {
         let i64_ = EstimateInput {
             channels: ch.map(mk),
             temperature_c: t,
+            bulk_density_kg_m3: None,
         };
         let it = EstimateInput {
             channels: ch.map(|c| Channel {
@@ -382,6 +383,7 @@ fn worst_moisture_error<T: Real>() -> (f64, usize) {
                 sd: T::from_f64(1e-3),
             }),
             temperature_c: T::from_f64(t),
+            bulk_density_kg_m3: None,
         };
         let b = estimate(&i64_, Some(&c_64))
             .moisture_pct

@@ -161,6 +161,7 @@ fn statistics_use_the_device_evaluation() {
             let input = EstimateInput {
                 channels: [ch(0), ch(1)],
                 temperature_c: s.temperature_c,
+                bulk_density_kg_m3: None,
             };
             let host = estimate(&input, Some(&cal64)).moisture_pct.unwrap();
             assert!(
@@ -338,7 +339,9 @@ fn predict_reproduces_samples_and_flags_extrapolation() {
         fit_relaxation(&samples, &relax_opts()).unwrap(),
     ] {
         for (s, r) in samples.iter().zip(&fit.samples).take(10) {
-            let p = fit.predict(&s.channels, s.temperature_c, 0.95).unwrap();
+            let p = fit
+                .predict(&s.channels, s.temperature_c, None, 0.95)
+                .unwrap();
             let m = f64::from(p.estimate.moisture_pct.unwrap());
             assert!((m - r.fitted_pct).abs() < 1e-9, "seed {seed} {}", s.id);
             assert!(
@@ -365,7 +368,7 @@ fn predict_reproduces_samples_and_flags_extrapolation() {
             seed,
         );
         let p = fit
-            .predict(&far[0].channels, far[0].temperature_c, 0.95)
+            .predict(&far[0].channels, far[0].temperature_c, None, 0.95)
             .unwrap();
         assert!(
             p.extrapolation,
@@ -376,7 +379,7 @@ fn predict_reproduces_samples_and_flags_extrapolation() {
         let mut bad = far[0].channels.clone();
         bad[1].freq_hz = 30.0e6;
         assert!(matches!(
-            fit.predict(&bad, 20.0, 0.95),
+            fit.predict(&bad, 20.0, None, 0.95),
             Err(ProductFitError::MixedFrequencies { .. })
         ));
     }
@@ -406,7 +409,9 @@ fn relaxation_prediction_interval_coverage() {
     );
     let mut inside = 0;
     for s in &fresh {
-        let p = fit.predict(&s.channels, s.temperature_c, 0.95).unwrap();
+        let p = fit
+            .predict(&s.channels, s.temperature_c, None, 0.95)
+            .unwrap();
         let (lo, hi) = p.interval_pct.unwrap();
         if s.moisture_pct >= lo && s.moisture_pct <= hi {
             inside += 1;
@@ -485,7 +490,7 @@ fn cross_validated_sep_predicts_the_sep_on_fresh_samples() {
         let e: Vec<f64> = fresh
             .iter()
             .filter_map(|x| {
-                let p = f.predict(&x.channels, x.temperature_c, 0.95).ok()?;
+                let p = f.predict(&x.channels, x.temperature_c, None, 0.95).ok()?;
                 Some(f64::from(p.estimate.moisture_pct?) - x.moisture_pct)
             })
             .collect();

@@ -532,6 +532,7 @@ pub fn evaluate<F: Frontend>(
             &EstimateInput {
                 channels: est_ch,
                 temperature_c: t.unwrap_or(f32::NAN),
+                bulk_density_kg_m3: None,
             },
             product,
         );

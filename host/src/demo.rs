@@ -330,6 +330,7 @@ fn run_in(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         json: false,
         plot: Some(outs.fit_plot.clone()),
         force: false,
+        density_input: false,
     };
     crate::cmd::cal::run_fit(&fit_args)?;
 

@@ -127,12 +127,16 @@ bitflags! {
         const LOW_SNR = 1 << 9;
         /// Temperature sensor open, shorted or out of its range.
         const TEMP_SENSOR_FAULT = 1 << 10;
+        /// The product calibration takes a bulk density input and no fresh
+        /// one was there: the moisture assumes the calibration's reference
+        /// density, with its uncertainty widened.
+        const DENSITY_MISSING = 1 << 11;
     }
 }
 
 impl Flags {
     /// Short lower-case words for each flag, in bit order (used in CSV and logs).
-    pub const NAMES: [(Flags, &'static str); 11] = [
+    pub const NAMES: [(Flags, &'static str); 12] = [
         (Flags::SATURATED, "saturated"),
         (Flags::NO_PRODUCT, "no_product"),
         (Flags::OUT_OF_RANGE, "out_of_range"),
@@ -144,6 +148,7 @@ impl Flags {
         (Flags::CLOCK_UNSET, "clock_unset"),
         (Flags::LOW_SNR, "low_snr"),
         (Flags::TEMP_SENSOR_FAULT, "temp_sensor_fault"),
+        (Flags::DENSITY_MISSING, "density_missing"),
     ];
 
     /// Iterator over the names of the set flags.

@@ -90,7 +90,8 @@ pub const STATUS_NE107_FAILURE: u16 = 1 << 2;
 /// Status bit: NE 107 category C, function check (not calibrated).
 pub const STATUS_NE107_CHECK: u16 = 1 << 3;
 /// Status bit: NE 107 category S, out of specification (moisture or
-/// temperature outside the calibration, fit not converged, weak signal).
+/// temperature outside the calibration, fit not converged, weak signal, a
+/// density input missing).
 pub const STATUS_NE107_OUT_OF_SPEC: u16 = 1 << 4;
 /// Status bit: NE 107 category M, maintenance required (internal
 /// reference drifted).
@@ -112,7 +113,8 @@ const FAILURE: Flags = Flags::ELECTRODE_FAULT
 const OUT_OF_SPEC: Flags = Flags::OUT_OF_RANGE
     .union(Flags::TEMP_OUT_OF_RANGE)
     .union(Flags::FIT_NOT_CONVERGED)
-    .union(Flags::LOW_SNR);
+    .union(Flags::LOW_SNR)
+    .union(Flags::DENSITY_MISSING);
 
 /// What the map shows: the latest reading, how old it is, and whether its
 /// source is considered stale or lost.
@@ -399,6 +401,11 @@ mod tests {
             w(Flags::OUT_OF_RANGE) & STATUS_NE107_OUT_OF_SPEC,
             STATUS_NE107_OUT_OF_SPEC
         );
+        assert_eq!(
+            w(Flags::DENSITY_MISSING) & STATUS_NE107_OUT_OF_SPEC,
+            STATUS_NE107_OUT_OF_SPEC
+        );
+        assert_eq!(w(Flags::DENSITY_MISSING) & STATUS_NO_VALUE, 0);
         assert_eq!(
             w(Flags::REFERENCE_DRIFT) & STATUS_NE107_MAINTENANCE,
             STATUS_NE107_MAINTENANCE

@@ -38,13 +38,13 @@ use nalgebra::DMatrix;
 use super::law;
 use super::linear::{fit_linear, LinearFit};
 use super::FitError;
-use crate::estimate::{estimate, Channel, EstimateInput, Failure};
+use crate::estimate::{estimate, Channel, EstimateFlags, EstimateInput, Failure};
 use crate::invert::{invert, InvertOptions, MaterialParams, Observation, RelaxationLaw};
 use crate::mixing::ProductMixture;
 use crate::moisture::Basis;
 use crate::product::{
     ModelKind, MultivariateModel, ParamsError, ProductCalibration, ProductModel, Range,
-    RelaxationModel, SingleFrequencyModel, MV_FEATURES,
+    RelaxationModel, SingleFrequencyModel, MV_BASE_FEATURES, MV_DENSITY_FEATURES, MV_FEATURES,
 };
 use crate::stats::{diagnostics, Folds, OutlierRule, PredictionStats, StatsError};
 use crate::Cx;
@@ -72,6 +72,10 @@ pub struct Sample {
     /// The sensor's reading at each excitation frequency (two, the same two
     /// for every sample).
     pub channels: Vec<ChannelReading>,
+    /// Bulk density at the sensor when the sample was taken, kg/m^3, where
+    /// the plant measures it (a weigh belt, a gauge); used by a
+    /// multivariate fit with [`MultivariateOptions::density_input`].
+    pub bulk_density_kg_m3: Option<f64>,
 }
 
 /// Why a product fit was refused or failed. Every variant names the sample
@@ -109,6 +113,18 @@ pub enum ProductFitError {
         id: String,
         /// The value, %.
         moisture_pct: f64,
+    },
+    /// A bulk density outside [`crate::product::DENSITY_LIMITS_KG_M3`].
+    DensityOutOfRange {
+        /// Sample id.
+        id: String,
+        /// The value, kg/m^3.
+        bulk_density_kg_m3: f64,
+    },
+    /// A fit with a density input was asked for and a sample has no density.
+    MissingDensity {
+        /// Sample id.
+        id: String,
     },
     /// eps'' is negative (a loss factor is >= 0 with eps* = eps' - j eps'').
     NegativeLoss {
@@ -206,6 +222,20 @@ impl core::fmt::Display for ProductFitError {
             E::MoistureOutOfRange { id, moisture_pct } => write!(
                 f,
                 "sample {id:?}: lab moisture {moisture_pct} % is outside 0-100 % (wet basis)"
+            ),
+            E::DensityOutOfRange {
+                id,
+                bulk_density_kg_m3,
+            } => {
+                let (lo, hi) = crate::product::DENSITY_LIMITS_KG_M3;
+                write!(
+                    f,
+                    "sample {id:?}: bulk density {bulk_density_kg_m3} kg/m^3 is outside {lo}-{hi} kg/m^3"
+                )
+            }
+            E::MissingDensity { id } => write!(
+                f,
+                "sample {id:?}: no bulk density, and the fit takes a density input (every sample needs one)"
             ),
             E::NegativeLoss {
                 id,
@@ -499,6 +529,8 @@ struct Checked {
     freqs_hz: [f64; 2],
     /// Per sample: (eps_re, eps_loss) at freqs_hz order.
     eps: Vec<[(f64, f64); 2]>,
+    /// Per sample: the bulk density, kg/m^3, where given.
+    rho: Vec<Option<f64>>,
 }
 
 fn check_samples(samples: &[Sample], needed: usize) -> Result<Checked, ProductFitError> {
@@ -534,6 +566,18 @@ fn check_samples(samples: &[Sample], needed: usize) -> Result<Checked, ProductFi
         }
         if !s.temperature_c.is_finite() {
             return Err(nf("temperature_c"));
+        }
+        if let Some(r) = s.bulk_density_kg_m3 {
+            if !r.is_finite() {
+                return Err(nf("bulk_density_kg_m3"));
+            }
+            let (lo, hi) = crate::product::DENSITY_LIMITS_KG_M3;
+            if !(lo..=hi).contains(&r) {
+                return Err(E::DensityOutOfRange {
+                    id: s.id.clone(),
+                    bulk_density_kg_m3: r,
+                });
+            }
         }
         if s.channels.len() != 2 {
             return Err(E::WrongChannelCount {
@@ -601,6 +645,7 @@ fn check_samples(samples: &[Sample], needed: usize) -> Result<Checked, ProductFi
     Ok(Checked {
         freqs_hz: freqs.unwrap_or([0.0; 2]),
         eps,
+        rho: samples.iter().map(|s| s.bulk_density_kg_m3).collect(),
     })
 }
 
@@ -691,6 +736,7 @@ fn device_input(
     freqs_hz: [f64; 2],
     eps: &[(f64, f64); 2],
     temperature_c: f64,
+    rho_kg_m3: Option<f64>,
     eps_sd: f64,
 ) -> EstimateInput<f32> {
     let ch = |k: usize| Channel {
@@ -702,6 +748,7 @@ fn device_input(
     EstimateInput {
         channels: [ch(0), ch(1)],
         temperature_c: temperature_c as f32,
+        bulk_density_kg_m3: rho_kg_m3.map(|r| r as f32),
     }
 }
 
@@ -713,7 +760,7 @@ fn device_predict(
     s: &Sample,
     eps_sd: f64,
 ) -> Result<f64, ProductFitError> {
-    let input = device_input(freqs_hz, eps, s.temperature_c, eps_sd);
+    let input = device_input(freqs_hz, eps, s.temperature_c, s.bulk_density_kg_m3, eps_sd);
     let e = estimate(&input, Some(cal));
     match e.moisture_pct {
         Some(m) => Ok(f64::from(m)),
@@ -994,9 +1041,10 @@ fn model_name(k: ModelKind) -> &'static str {
 
 impl ProductFit {
     /// Evaluates a new reading (two channels at the calibration's
-    /// frequencies, in either order, and the temperature): the device's
-    /// estimate, a prediction interval at `confidence` (e.g. 0.95), its
-    /// leverage and an extrapolation flag.
+    /// frequencies, in either order, the temperature and, for a model with a
+    /// density input, the bulk density): the device's estimate, a prediction
+    /// interval at `confidence` (e.g. 0.95), its leverage and an
+    /// extrapolation flag.
     ///
     /// # Errors
     /// [`ProductFitError`] naming the field for a reading that does not fit
@@ -1007,6 +1055,7 @@ impl ProductFit {
         &self,
         channels: &[ChannelReading],
         temperature_c: f64,
+        bulk_density_kg_m3: Option<f64>,
         confidence: f64,
     ) -> Result<ReadingPrediction, ProductFitError> {
         let reading = Sample {
@@ -1014,6 +1063,7 @@ impl ProductFit {
             moisture_pct: 0.0,
             temperature_c,
             channels: channels.to_vec(),
+            bulk_density_kg_m3,
         };
         let checked = check_samples(std::slice::from_ref(&reading), 1)?;
         for k in 0..2 {
@@ -1031,6 +1081,7 @@ impl ProductFit {
             &self.calibration,
             checked.eps[0],
             temperature_c,
+            bulk_density_kg_m3,
             confidence,
         )
     }
@@ -1089,6 +1140,7 @@ impl IntervalModel {
         model: &ProductModel<f64>,
         eps: [(f64, f64); 2],
         temperature_c: f64,
+        rho_kg_m3: Option<f64>,
     ) -> Option<Vec<f64>> {
         let f: Vec<f64> = match model {
             ProductModel::SingleFrequency(m) => {
@@ -1104,7 +1156,11 @@ impl IntervalModel {
                 m.features(&inv.params, temperature_c).to_vec()
             }
             ProductModel::Multivariate(m) => {
-                let (x, _) = m.features([eps[0].0, eps[0].1, eps[1].0, eps[1].1], temperature_c);
+                let (x, _) = m.features(
+                    [eps[0].0, eps[0].1, eps[1].0, eps[1].1],
+                    temperature_c,
+                    rho_kg_m3,
+                );
                 core::iter::once(1.0).chain(x).collect()
             }
         };
@@ -1128,7 +1184,8 @@ impl IntervalModel {
     }
 
     /// Evaluates a reading (eps' and eps'' at the two frequencies, lower
-    /// first, and the temperature) on `cal` (the device's calibration) and
+    /// first, the temperature and the bulk density where the model takes
+    /// one) on `cal` (the device's calibration) and
     /// `model` (the same model in f64): the device's estimate, the
     /// prediction interval at `confidence`, the leverage and whether it
     /// lies beyond the calibration set's.
@@ -1141,21 +1198,42 @@ impl IntervalModel {
         cal: &ProductCalibration<f32>,
         eps: [(f64, f64); 2],
         temperature_c: f64,
+        bulk_density_kg_m3: Option<f64>,
         confidence: f64,
     ) -> Result<ReadingPrediction, ProductFitError> {
         let t = crate::stats::t_quantile(0.5 + confidence / 2.0, self.dof.max(1) as f64)
             .map_err(ProductFitError::Stats)?;
-        let input = device_input(self.freqs_hz, &eps, temperature_c, self.eps_sd);
+        let input = device_input(
+            self.freqs_hz,
+            &eps,
+            temperature_c,
+            bulk_density_kg_m3,
+            self.eps_sd,
+        );
         let estimate = estimate(&input, Some(cal));
         let leverage = self
-            .features(model, eps, temperature_c)
+            .features(model, eps, temperature_c, bulk_density_kg_m3)
             .map_or(f64::NAN, |row| self.leverage(&row));
         let r = self.residual_sd;
         // The cross-validated RMSEP is the error of a new reading of average
         // leverage, lack of fit included; one further out adds the leverage
         // beyond the average.
-        let var =
+        let mut var =
             self.interval_sd * self.interval_sd + r * r * (leverage - self.mean_leverage).max(0.0);
+        // A model with a density input, read without a density: the device
+        // assumes the reference density and widens its uncertainty by the
+        // calibrated density range's spread; the interval widens alike.
+        if let (ProductModel::Multivariate(m), true) = (
+            model,
+            estimate.flags.contains(EstimateFlags::DENSITY_MISSING),
+        ) {
+            if let Some(rg) = cal.input_ranges().get(4) {
+                let e = [eps[0].0, eps[0].1, eps[1].0, eps[1].1];
+                let d = m.d_moisture_d_density(e) * f64::from(rg.max - rg.min)
+                    / (m.rho_ref_kg_m3 * 12f64.sqrt());
+                var += d * d;
+            }
+        }
         let interval_pct = estimate.moisture_pct.map(|m| {
             let half = t * var.sqrt();
             (f64::from(m) - half, f64::from(m) + half)
@@ -1591,6 +1669,7 @@ pub fn fit_relaxation(
         let sub_checked = Checked {
             freqs_hz: checked.freqs_hz,
             eps: keep.iter().map(|i| checked.eps[*i]).collect(),
+            rho: keep.iter().map(|i| checked.rho[*i]).collect(),
         };
         let local: Vec<usize> = (0..sub.len()).collect();
         let core = relaxation_core(&sub, &sub_checked, &local, opts)?;
@@ -1866,6 +1945,12 @@ pub struct MultivariateOptions {
     /// predictions at twice the calibrated conductivity worse; see
     /// BENCHMARKS.md).
     pub density_independent: bool,
+    /// Use each sample's measured bulk density
+    /// ([`Sample::bulk_density_kg_m3`]; every sample needs one) as an input
+    /// of the model (features 23-25 of [`MultivariateModel::features`]); the
+    /// device then takes the plant's density with each reading (default
+    /// false).
+    pub density_input: bool,
 }
 
 impl Default for MultivariateOptions {
@@ -1875,13 +1960,14 @@ impl Default for MultivariateOptions {
             eps_sd: 0.02,
             folds: Folds::LeaveOneOut,
             density_independent: false,
+            density_input: false,
         }
     }
 }
 
-/// Fewest samples the multivariate fit takes (its 23 features, the
-/// constant, and two for the residual diagnostics).
-pub const MV_MIN_SAMPLES: usize = MV_FEATURES + 3;
+/// Fewest samples the multivariate fit takes (its 23 features without a
+/// density input, the constant, and two for the residual diagnostics).
+pub const MV_MIN_SAMPLES: usize = MV_BASE_FEATURES + 3;
 
 /// The linear, physical features (0-6: logs, temperature, water indices).
 const MV_LINEAR: [usize; 7] = [0, 1, 2, 3, 4, 5, 6];
@@ -1890,14 +1976,16 @@ const MV_TKN: usize = 7;
 
 /// Feature sets the fit chooses between: the linear physical features, or
 /// those with the squares and products (8-22); psi added to both when
-/// [`MultivariateOptions::density_independent`] is set.
-fn mv_sets(tkn: bool) -> [Vec<usize>; 2] {
+/// [`MultivariateOptions::density_independent`] is set, the density
+/// features (23-25) when [`MultivariateOptions::density_input`] is.
+fn mv_sets(tkn: bool, density: bool) -> [Vec<usize>; 2] {
     let lin: Vec<usize> = MV_LINEAR
         .iter()
         .copied()
         .chain(tkn.then_some(MV_TKN))
+        .chain((MV_BASE_FEATURES..MV_FEATURES).filter(|_| density))
         .collect();
-    let full = lin.iter().copied().chain(8..MV_FEATURES).collect();
+    let full = lin.iter().copied().chain(8..MV_BASE_FEATURES).collect();
     [lin, full]
 }
 
@@ -1916,8 +2004,14 @@ struct MvCore {
 /// where needed so every row lies in psi's domain with a factor 10 to
 /// spare: at these frequencies eps'' is mostly ionic conduction, and a
 /// reading with more salt than the calibration's must not reach the edge
-/// of the domain, where psi grows without bound.
-fn mv_prototype(samples: &[Sample], checked: &Checked, rows: &[usize]) -> MultivariateModel<f64> {
+/// of the domain, where psi grows without bound. With a density input,
+/// rho_ref is the rows' mean density (1 kg/m^3).
+fn mv_prototype(
+    samples: &[Sample],
+    checked: &Checked,
+    rows: &[usize],
+    density: bool,
+) -> MultivariateModel<f64> {
     let n = rows.len() as f64;
     let t_ref =
         (rows.iter().map(|i| samples[*i].temperature_c).sum::<f64>() / n * 10.0).round() / 10.0;
@@ -1935,16 +2029,30 @@ fn mv_prototype(samples: &[Sample], checked: &Checked, rows: &[usize]) -> Multiv
     });
     let slope = if sxx > 0.0 { sxy / sxx } else { 0.0 };
     let max_ratio = e.iter().map(|(x, y)| y / x).fold(0.0f64, f64::max);
+    let rho_ref = if density {
+        let sum: f64 = rows.iter().filter_map(|i| checked.rho[*i]).sum();
+        (sum / n)
+            .round()
+            .max(crate::product::DENSITY_LIMITS_KG_M3.0)
+    } else {
+        0.0
+    };
     MultivariateModel {
         t_ref_c: t_ref,
         a_f: slope.max(10.0 * max_ratio).max(1e-3),
         intercept: 0.0,
         coeffs: [0.0; MV_FEATURES],
+        rho_ref_kg_m3: rho_ref,
     }
 }
 
-fn mv_row(m: &MultivariateModel<f64>, e: &[(f64, f64); 2], t_c: f64) -> [f64; MV_FEATURES] {
-    m.features([e[0].0, e[0].1, e[1].0, e[1].1], t_c).0
+fn mv_row(
+    m: &MultivariateModel<f64>,
+    e: &[(f64, f64); 2],
+    t_c: f64,
+    rho: Option<f64>,
+) -> [f64; MV_FEATURES] {
+    m.features([e[0].0, e[0].1, e[1].0, e[1].1], t_c, rho).0
 }
 
 /// Fits the multivariate coefficients on `rows` (the choice of penalty or
@@ -1955,14 +2063,22 @@ fn mv_core(
     rows: &[usize],
     method: MvMethod,
     tkn: bool,
+    density: bool,
 ) -> Result<MvCore, ProductFitError> {
     use super::chemo::{alpha_grid, pls1, pls1_path, RidgePath};
     let stage = "multivariate regression";
     let ls = |error| ProductFitError::LeastSquares { stage, error };
-    let proto = mv_prototype(samples, checked, rows);
+    let proto = mv_prototype(samples, checked, rows, density);
     let full: Vec<[f64; MV_FEATURES]> = rows
         .iter()
-        .map(|i| mv_row(&proto, &checked.eps[*i], samples[*i].temperature_c))
+        .map(|i| {
+            mv_row(
+                &proto,
+                &checked.eps[*i],
+                samples[*i].temperature_c,
+                checked.rho[*i],
+            )
+        })
         .collect();
     if let Some(k) = full.iter().position(|r| !r.iter().all(|v| v.is_finite())) {
         return Err(ProductFitError::NonFinite {
@@ -1973,7 +2089,7 @@ fn mv_core(
     let y: Vec<f64> = rows.iter().map(|i| samples[*i].moisture_pct).collect();
     let n = rows.len();
     let mut best: Option<(f64, MvCore)> = None;
-    for set in mv_sets(tkn) {
+    for set in mv_sets(tkn, density) {
         let p = set.len();
         let x = DMatrix::from_fn(n, p, |i, j| full[i][set[j]]);
         let (crit, lin, lev, edf, detail) = match method {
@@ -2088,7 +2204,20 @@ pub fn fit_multivariate(
     opts: &MultivariateOptions,
 ) -> Result<ProductFit, ProductFitError> {
     check_sd(opts.eps_sd)?;
-    let checked = check_samples(samples, MV_MIN_SAMPLES)?;
+    let checked = check_samples(
+        samples,
+        MV_MIN_SAMPLES
+            + if opts.density_input {
+                MV_DENSITY_FEATURES
+            } else {
+                0
+            },
+    )?;
+    if opts.density_input {
+        if let Some(s) = samples.iter().find(|s| s.bulk_density_kg_m3.is_none()) {
+            return Err(ProductFitError::MissingDensity { id: s.id.clone() });
+        }
+    }
     let n = samples.len();
     let all: Vec<usize> = (0..n).collect();
     let core = mv_core(
@@ -2097,13 +2226,15 @@ pub fn fit_multivariate(
         &all,
         opts.method,
         opts.density_independent,
+        opts.density_input,
     )?;
     let features: Vec<Vec<f64>> = samples
         .iter()
         .zip(&checked.eps)
-        .map(|(s, e)| {
+        .zip(&checked.rho)
+        .map(|((s, e), rho)| {
             core::iter::once(1.0)
-                .chain(mv_row(&core.model, e, s.temperature_c))
+                .chain(mv_row(&core.model, e, s.temperature_c, *rho))
                 .collect()
         })
         .collect();
@@ -2133,7 +2264,7 @@ pub fn fit_multivariate(
         r_squared: if tss > 0.0 { 1.0 - rss / tss } else { f64::NAN },
         condition: f64::NAN,
     };
-    let inputs: Vec<Range<f32>> = (0..4)
+    let mut inputs: Vec<Range<f32>> = (0..4)
         .map(|c| {
             range_of(checked.eps.iter().map(|e| match c {
                 0 => e[0].0,
@@ -2143,6 +2274,9 @@ pub fn fit_multivariate(
             }))
         })
         .collect();
+    if opts.density_input {
+        inputs.push(range_of(checked.rho.iter().flatten().copied()));
+    }
     let fitted = Fitted {
         model: ProductModel::Multivariate(core.model),
         features,
@@ -2152,7 +2286,7 @@ pub fn fit_multivariate(
         columns: (0..=MV_FEATURES).collect(),
         n_coef: 1 + core.edf.ceil() as usize,
     };
-    let (method, tkn) = (opts.method, opts.density_independent);
+    let (method, tkn, density) = (opts.method, opts.density_independent, opts.density_input);
     let mut fit = finish(
         samples,
         &checked,
@@ -2163,7 +2297,7 @@ pub fn fit_multivariate(
         Vec::new(),
         |_, train, _| {
             Ok(ProductModel::Multivariate(
-                mv_core(samples, &checked, train, method, tkn)?.model,
+                mv_core(samples, &checked, train, method, tkn, density)?.model,
             ))
         },
     )?;
@@ -2216,6 +2350,9 @@ pub struct CompareOptions {
     pub eps_sd: f64,
     /// One cross-validation split for every model.
     pub folds: Folds,
+    /// The multivariate models take each sample's bulk density as an input
+    /// ([`MultivariateOptions::density_input`]).
+    pub density_input: bool,
 }
 
 /// Every model fitted on the same samples with the same split, and the one
@@ -2431,6 +2568,7 @@ pub fn compare_models(
                     eps_sd: opts.eps_sd,
                     folds: opts.folds,
                     density_independent: false,
+                    density_input: opts.density_input,
                 },
             ),
         };
@@ -2440,6 +2578,8 @@ pub fn compare_models(
             | ProductFitError::DuplicateId { .. }
             | ProductFitError::NonFinite { .. }
             | ProductFitError::MoistureOutOfRange { .. }
+            | ProductFitError::DensityOutOfRange { .. }
+            | ProductFitError::MissingDensity { .. }
             | ProductFitError::NegativeLoss { .. }
             | ProductFitError::BadFrequency { .. }
             | ProductFitError::WrongChannelCount { .. }
@@ -2621,6 +2761,7 @@ pub fn synthetic_samples(
                 moisture_pct: state.moisture_pct,
                 temperature_c: state.temperature_c,
                 channels,
+                bulk_density_kg_m3: None,
             }
         })
         .collect()

@@ -137,6 +137,10 @@ pub struct Interfacial {
     pub alpha: f64,
 }
 
+/// Relative standard deviation of a plant's bulk density gauge (a weigh
+/// belt or radiometric gauge) in the zoo's samples: 1 % (invented).
+pub const GAUGE_SD: f64 = 0.01;
+
 /// One synthetic product.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Family {
@@ -667,7 +671,10 @@ impl Family {
     /// Reference samples: states drawn uniformly (the salt log-uniformly,
     /// the bulk density uniformly within the product's variation), the lab
     /// value with lab noise, eps' and eps'' with sensor noise (eps'' kept
-    /// >= 0, eps' >= 1). Ids `"<name>-001"`, ... Invented data.
+    /// at or above 0, eps' at or above 1), and the bulk density as a plant's
+    /// gauge would read it ([`GAUGE_SD`], drawn from a generator of its own
+    /// so the other values do not depend on it). Ids `"<name>-001"`, ...
+    /// Invented data.
     pub fn samples(&self, draw: &Draw, seed: u64) -> Vec<Sample> {
         self.samples_with_states(draw, seed)
             .into_iter()
@@ -678,6 +685,7 @@ impl Family {
     /// As [`Family::samples`], with each sample's true state.
     pub fn samples_with_states(&self, draw: &Draw, seed: u64) -> Vec<(Sample, State)> {
         let mut rng = SeededRng::new(seed);
+        let mut gauge = SeededRng::new(seed ^ 0x6a09_e667_f3bc_c908);
         let m = draw.moisture_pct.unwrap_or(self.moisture_pct);
         let t = draw.temperature_c.unwrap_or(self.temperature_c);
         let sg = draw.water_sigma25_s_m.unwrap_or(self.water_sigma25_s_m);
@@ -709,6 +717,9 @@ impl Family {
                         moisture_pct: lab,
                         temperature_c: state.temperature_c,
                         channels,
+                        bulk_density_kg_m3: Some(
+                            state.bulk_density_kg_m3 * (1.0 + GAUGE_SD * gauge.normal()),
+                        ),
                     },
                     state,
                 )

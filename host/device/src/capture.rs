@@ -63,6 +63,7 @@ pub fn capture_sample(
         freqs_hz: [f64::from(ident.freqs_hz[0]), f64::from(ident.freqs_hz[1])],
         eps_re: [eps[0].re, eps[1].re],
         eps_im: [eps[0].im.max(0.0), eps[1].im.max(0.0)],
+        bulk_density_kg_m3: None,
         line: 0,
     })
 }

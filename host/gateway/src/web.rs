@@ -33,7 +33,7 @@ const STYLE: &str = include_str!("../web/style.css");
 
 /// Each quality flag: its name, what it means on the line, what to do
 /// (the table of the README's "Signal chain and quality flags").
-pub const FLAG_WORDS: [(Flags, &str, &str, &str); 11] = [
+pub const FLAG_WORDS: [(Flags, &str, &str, &str); 12] = [
     (
         Flags::SATURATED,
         "saturated",
@@ -99,6 +99,12 @@ pub const FLAG_WORDS: [(Flags, &str, &str, &str); 11] = [
         "temp_sensor_fault",
         "temperature sensor open, shorted or out of range",
         "no moisture without a temperature; check the sensor",
+    ),
+    (
+        Flags::DENSITY_MISSING,
+        "density_missing",
+        "the calibration takes the plant's bulk density and none came with the reading",
+        "check the density gauge or weigh belt and its connection",
     ),
 ];
 

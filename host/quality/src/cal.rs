@@ -39,6 +39,16 @@ pub enum FitError {
     /// The relaxation model was asked for without the densities.
     #[error("the relaxation model needs --bulk-density-kg-m3 and --particle-density-kg-m3 (measured for this product)")]
     NoDensities,
+    /// `--density-input` on a table where a sample has no bulk density.
+    #[error("{}: {}: --density-input needs the `bulk_density_kg_m3` column with a value on every row (the density at the sensor when the sample was taken)", file.display(), match (line, id) { (Some(l), Some(i)) => format!("line {l} (sample `{i}`) has no bulk density"), _ => "no row has a bulk density".to_string() })]
+    NoDensity {
+        /// The sample table.
+        file: PathBuf,
+        /// Line of the first row without one (None: no row has one).
+        line: Option<u64>,
+        /// Its sample id.
+        id: Option<String>,
+    },
     /// The model could not be fitted.
     #[error("{what}")]
     Model {
@@ -189,6 +199,10 @@ pub struct FitOptions {
     pub bulk_density_kg_m3: Option<f64>,
     /// Particle density of the dry matter, kg/m^3 (relaxation model).
     pub particle_density_kg_m3: Option<f64>,
+    /// The multivariate models take the table's `bulk_density_kg_m3`
+    /// column (a plant's weigh belt or gauge) as an input; every sample
+    /// needs a value.
+    pub density_input: bool,
     /// Polynomial degree of the regression, 1-3.
     pub degree: u8,
     /// Cross-validation: 0 for leave-one-out below 100 samples and 10
@@ -300,6 +314,7 @@ fn to_fit_samples(set: &SampleSet) -> Vec<Sample> {
                     eps_loss: s.eps_im[k],
                 })
                 .collect(),
+            bulk_density_kg_m3: s.bulk_density_kg_m3,
         })
         .collect()
 }
@@ -457,6 +472,16 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
         FitModel::Compare => "every",
     };
     set.require(n_coef(args.model, degree), words)?;
+    if args.density_input {
+        let any = set.samples.iter().any(|s| s.bulk_density_kg_m3.is_some());
+        if let Some(s) = set.samples.iter().find(|s| s.bulk_density_kg_m3.is_none()) {
+            return Err(FitError::NoDensity {
+                file: args.samples.clone(),
+                line: any.then_some(s.line),
+                id: any.then(|| s.sample_id.clone()),
+            });
+        }
+    }
     let samples = to_fit_samples(&set);
     // Leave-one-out repeats the whole fit per sample; from 100 samples on,
     // 10 folds keep `compare` under 0.1 s for 200 samples (BENCHMARKS.md).
@@ -500,6 +525,7 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
         eps_sd: args.eps_sd,
         folds,
         density_independent: false,
+        density_input: args.density_input,
     };
     let (chosen, compared, rule, sep_ratio) = match args.model {
         FitModel::Single => (
@@ -541,6 +567,7 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
                     relaxation,
                     eps_sd: args.eps_sd,
                     folds,
+                    density_input: args.density_input,
                 },
             )
             .map_err(ctx)?;
@@ -1002,13 +1029,21 @@ pub fn predict(
                 &EstimateInput {
                     channels: [ch(0), ch(1)],
                     temperature_c: s.temperature_c as f32,
+                    bulk_density_kg_m3: s.bulk_density_kg_m3.map(|r| r as f32),
                 },
                 Some(&cal),
             );
             let (interval_pct, leverage, beyond) = match &interval {
                 Some(im) => {
                     let eps = [(s.eps_re[0], s.eps_im[0]), (s.eps_re[1], s.eps_im[1])];
-                    let p = im.predict(&model, &cal, eps, s.temperature_c, confidence)?;
+                    let p = im.predict(
+                        &model,
+                        &cal,
+                        eps,
+                        s.temperature_c,
+                        s.bulk_density_kg_m3,
+                        confidence,
+                    )?;
                     (p.interval_pct, p.leverage, p.extrapolation)
                 }
                 None => (None, f64::NAN, false),
@@ -1152,6 +1187,7 @@ mod tests {
                 freqs_hz: [x.channels[0].freq_hz, x.channels[1].freq_hz],
                 eps_re: [x.channels[0].eps_re, x.channels[1].eps_re],
                 eps_im: [x.channels[0].eps_loss, x.channels[1].eps_loss],
+                bulk_density_kg_m3: x.bulk_density_kg_m3,
                 line: 0,
             })
             .collect();
@@ -1175,6 +1211,7 @@ mod tests {
             eps_sd: 0.02,
             basis: "wet".into(),
             force: false,
+            density_input: false,
         }
     }
 
@@ -1240,6 +1277,101 @@ mod tests {
             text.contains("kept unless another model is significantly better"),
             "{text}"
         );
+    }
+
+    /// `cal fit --density-input` and `cal predict` through the CSV path, on
+    /// the zoo's wood chips (bulk density varying 10 % between samples, a
+    /// gauge reading it with 1 % noise; invented data): the calibration
+    /// takes the density as an input and cross-validates better than
+    /// without it; `cal predict` uses the table's density, and flags every
+    /// row without one `density_missing` with a wider uncertainty; a table
+    /// with a row without a density is refused naming its line and id.
+    #[test]
+    fn a_density_input_through_the_csv_path() {
+        use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS};
+        let dir = tempfile::tempdir().expect("dir");
+        let chips = Family::wood_chips();
+        let table = |name: &str, n: usize, seed: u64, density: bool| -> PathBuf {
+            let rows: Vec<RefSample> = chips
+                .samples(&Draw::new(n, FREQ_PAIRS[0]), seed)
+                .iter()
+                .map(|x| RefSample {
+                    sample_id: x.id.clone(),
+                    moisture_pct: Some(x.moisture_pct),
+                    temperature_c: x.temperature_c,
+                    freqs_hz: [x.channels[0].freq_hz, x.channels[1].freq_hz],
+                    eps_re: [x.channels[0].eps_re, x.channels[1].eps_re],
+                    eps_im: [x.channels[0].eps_loss, x.channels[1].eps_loss],
+                    bulk_density_kg_m3: x.bulk_density_kg_m3.filter(|_| density),
+                    line: 0,
+                })
+                .collect();
+            let p = dir.path().join(name);
+            crate::samples::write_samples(std::fs::File::create(&p).expect("create"), &rows)
+                .expect("write");
+            p
+        };
+        let csv = table("lab.csv", 100, 5, true);
+        let toml = dir.path().join("chips.toml");
+        let a = FitOptions {
+            density_input: true,
+            bulk_density_kg_m3: None,
+            particle_density_kg_m3: None,
+            ..args(csv.clone(), toml.clone(), FitModel::Multivariate)
+        };
+        let o = fit(&a, 0).expect("fit with the density");
+        let plain = fit(
+            &FitOptions {
+                density_input: false,
+                ..a.clone()
+            },
+            0,
+        )
+        .expect("fit without");
+        let (sep_d, sep_p) = (
+            o.chosen.stats.cross_validation.sep,
+            plain.chosen.stats.cross_validation.sep,
+        );
+        eprintln!("cross-validated SEP with the density {sep_d:.3}, without {sep_p:.3}");
+        assert!(sep_d < 0.6 * sep_p, "{sep_d} vs {sep_p}");
+        assert_eq!(o.chosen.calibration.input_ranges().len(), 5);
+        o.file.save(&toml).expect("save");
+
+        let with = predict(&toml, &table("check.csv", 30, 6, true), 0.02, 0.95).expect("predict");
+        let without =
+            predict(&toml, &table("check-nd.csv", 30, 6, false), 0.02, 0.95).expect("predict");
+        for (w, n) in with.iter().zip(&without) {
+            assert!(!w.flags.contains(Flags::DENSITY_MISSING), "{w:?}");
+            assert!(n.flags.contains(Flags::DENSITY_MISSING), "{n:?}");
+            assert!(n.moisture_pct.is_some() && n.uncertainty_pct > w.uncertainty_pct);
+            let (wi, ni) = (w.interval_pct.unwrap(), n.interval_pct.unwrap());
+            assert!(ni.1 - ni.0 > wi.1 - wi.0, "{wi:?} {ni:?}");
+        }
+        let mut buf = Vec::new();
+        write_predictions(&mut buf, &without).expect("csv");
+        assert!(String::from_utf8(buf).unwrap().contains("density_missing"));
+
+        // One row without a density: refused, naming the row.
+        let text = std::fs::read_to_string(&csv).unwrap();
+        let mut lines: Vec<String> = text.lines().map(str::to_string).collect();
+        let cut = lines[4].rfind(',').unwrap();
+        lines[4].truncate(cut + 1);
+        std::fs::write(&csv, lines.join("\n") + "\n").unwrap();
+        let e = fit(&a, 0).expect_err("a row without density").to_string();
+        assert!(
+            e.contains("lab.csv") && e.contains("line 5") && e.contains("wood-chips-004"),
+            "{e}"
+        );
+        let e = fit(
+            &FitOptions {
+                samples: table("none.csv", 100, 5, false),
+                ..a.clone()
+            },
+            0,
+        )
+        .expect_err("no densities")
+        .to_string();
+        assert!(e.contains("no row has a bulk density"), "{e}");
     }
 
     #[test]

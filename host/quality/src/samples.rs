@@ -12,6 +12,7 @@
 //! | `temperature_c` | C | product temperature at the sensor |
 //! | `freq1_hz`, `freq2_hz` | Hz | the two excitation frequencies, the same on every row, `freq1_hz < freq2_hz` |
 //! | `eps1_re`, `eps1_im`, `eps2_re`, `eps2_im` | - | permittivity eps* = eps' - j eps'' at each frequency, `eps*_im` = eps'' >= 0 |
+//! | `bulk_density_kg_m3` (optional) | kg/m^3 | the bulk density at the sensor where the plant measures it (a weigh belt, a gauge), 10-5000; cells may be empty |
 //!
 //! Every error names the file and, where it has one, the line (1-based,
 //! counting the header as line 1), the column (1-based) and the field.
@@ -32,6 +33,9 @@ pub const COLUMNS: [&str; 9] = [
     "eps2_im",
 ];
 
+/// The optional column of the bulk density at the sensor, kg/m^3.
+pub const DENSITY_COLUMN: &str = "bulk_density_kg_m3";
+
 /// One reference sample.
 #[derive(Debug, Clone, PartialEq)]
 pub struct RefSample {
@@ -47,6 +51,8 @@ pub struct RefSample {
     pub eps_re: [f64; 2],
     /// eps'' (>= 0) at each frequency.
     pub eps_im: [f64; 2],
+    /// Bulk density at the sensor, kg/m^3, where the table gives one.
+    pub bulk_density_kg_m3: Option<f64>,
     /// Line in the file (header is line 1).
     pub line: u64,
 }
@@ -321,6 +327,9 @@ pub fn parse_samples(
         }
     }
     let mut cols = Cols { idx: [None; 9] };
+    let density_col = header
+        .iter()
+        .position(|h| h.eq_ignore_ascii_case(DENSITY_COLUMN));
     for (i, h) in header.iter().enumerate() {
         if header.iter().take(i).any(|p| p == h) && !h.is_empty() {
             return Err(SampleError::DuplicateColumn {
@@ -435,6 +444,25 @@ pub fn parse_samples(
         if freqs_hz[0] >= freqs_hz[1] {
             return Err(bad(6, field(6).1, "a frequency above freq1_hz"));
         }
+        let bulk_density_kg_m3 =
+            match density_col.map(|i| (i, rec.get(i).unwrap_or(""))) {
+                None | Some((_, "")) => None,
+                Some((i, text)) => {
+                    let (lo, hi) = fringe_calibration::product::DENSITY_LIMITS_KG_M3;
+                    match text.parse::<f64>() {
+                        Ok(v) if (lo..=hi).contains(&v) => Some(v),
+                        _ => return Err(SampleError::BadValue {
+                            file: file.clone(),
+                            line,
+                            column: i + 1,
+                            field: DENSITY_COLUMN,
+                            value: text.to_string(),
+                            expected:
+                                "a bulk density in kg/m^3 between 10 and 5000 (or an empty cell)",
+                        }),
+                    }
+                }
+            };
         match first_freq {
             None => first_freq = Some((freqs_hz, line)),
             Some((f0, first_line)) => {
@@ -461,6 +489,7 @@ pub fn parse_samples(
             freqs_hz,
             eps_re,
             eps_im,
+            bulk_density_kg_m3,
             line,
         });
     }
@@ -496,13 +525,19 @@ impl SampleSet {
 }
 
 /// Writes samples as CSV with the columns in [`COLUMNS`] order (an empty
-/// `moisture_pct` where unknown; numbers by [`crate::numbers`]' column rules).
+/// `moisture_pct` where unknown; numbers by [`crate::numbers`]' column
+/// rules), and [`DENSITY_COLUMN`] last when any sample has a density.
 ///
 /// # Errors
 /// I/O errors from `out`.
 pub fn write_samples<W: std::io::Write>(out: W, samples: &[RefSample]) -> std::io::Result<()> {
     let mut w = csv::Writer::from_writer(out);
-    w.write_record(COLUMNS)?;
+    let density = samples.iter().any(|s| s.bulk_density_kg_m3.is_some());
+    let mut header = COLUMNS.to_vec();
+    if density {
+        header.push(DENSITY_COLUMN);
+    }
+    w.write_record(&header)?;
     for s in samples {
         let values = [
             s.moisture_pct,
@@ -521,6 +556,12 @@ pub fn write_samples<W: std::io::Write>(out: W, samples: &[RefSample]) -> std::i
                 .zip(values)
                 .map(|(c, v)| crate::numbers::cell(c, v)),
         );
+        if density {
+            row.push(
+                s.bulk_density_kg_m3
+                    .map_or(String::new(), |v| v.to_string()),
+            );
+        }
         w.write_record(row)?;
     }
     w.flush()
@@ -721,5 +762,40 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
                 && e.contains("1048576 bytes in all"),
             "{e}"
         );
+    }
+
+    /// The optional density column: read where given, empty cells are no
+    /// density, a value outside 10-5000 kg/m^3 or not a number is refused
+    /// naming line, column and field, and the writer keeps it.
+    #[test]
+    fn the_optional_density_column() {
+        let head = "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im,bulk_density_kg_m3";
+        let row = "1000000,6.1,12.5,20000000,4.9,0.8";
+        let s = parse(&format!(
+            "{head}\nS1,12.3,21.5,{row},742.5\nS2,13.1,22.0,{row},\n"
+        ))
+        .expect("valid table");
+        assert_eq!(s.samples[0].bulk_density_kg_m3, Some(742.5));
+        assert_eq!(s.samples[1].bulk_density_kg_m3, None);
+        assert_eq!(parse(GOOD).unwrap().samples[0].bulk_density_kg_m3, None);
+        let mut buf = Vec::new();
+        write_samples(&mut buf, &s.samples).expect("write");
+        let back = parse(std::str::from_utf8(&buf).unwrap()).unwrap();
+        assert_eq!(
+            back.samples
+                .iter()
+                .map(|s| s.bulk_density_kg_m3)
+                .collect::<Vec<_>>(),
+            [Some(742.5), None]
+        );
+        for bad in ["5", "6000", "abc", "NaN", "inf", "-700"] {
+            let e = parse(&format!("{head}\nS1,12.3,21.5,{row},{bad}\n"))
+                .expect_err(bad)
+                .to_string();
+            assert!(
+                e.contains("line 2, column 10 (bulk_density_kg_m3)") && e.contains("10 and 5000"),
+                "{bad}: {e}"
+            );
+        }
     }
 }

@@ -23,7 +23,8 @@ pub enum FitModelArg {
     after_help = "Example:\n  fringe cal fit --samples lab-2026-11.csv --model compare --bulk-density-kg-m3 760 \\\n      --particle-density-kg-m3 1400 --out wheat-l2.toml --plot wheat-l2.svg"
 )]
 pub struct FitArgs {
-    /// Reference-sample table (CSV: sample_id, moisture_pct, temperature_c, freq1_hz, eps1_re, eps1_im, freq2_hz, eps2_re, eps2_im).
+    /// Reference-sample table (CSV: sample_id, moisture_pct, temperature_c, freq1_hz, eps1_re, eps1_im, freq2_hz, eps2_re, eps2_im;
+    /// optional bulk_density_kg_m3).
     #[arg(long, value_name = "FILE.csv")]
     pub samples: PathBuf,
     /// Model to fit.
@@ -41,6 +42,11 @@ pub struct FitArgs {
     /// Particle density of the dry matter, kg/m^3 (relaxation model; measured or handbook).
     #[arg(long, value_name = "KG_M3")]
     pub particle_density_kg_m3: Option<f64>,
+    /// Use the table's bulk_density_kg_m3 column (the density at the sensor from a weigh
+    /// belt or gauge, every row) as an input of the multivariate models; the device then
+    /// needs the plant's density with each reading (without one it flags density_missing).
+    #[arg(long)]
+    pub density_input: bool,
     /// Polynomial degree of the regression, 1-3.
     #[arg(long, default_value_t = 2, value_parser = clap::value_parser!(u8).range(1..=3))]
     pub degree: u8,

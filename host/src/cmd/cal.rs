@@ -27,6 +27,7 @@ impl FitArgs {
             name: self.name.clone(),
             bulk_density_kg_m3: self.bulk_density_kg_m3,
             particle_density_kg_m3: self.particle_density_kg_m3,
+            density_input: self.density_input,
             degree: self.degree,
             folds: self.folds,
             eps_sd: self.eps_sd,
