@@ -364,6 +364,10 @@ bitflags! {
         /// device settings: answers [`Request::ReadModbus`] /
         /// [`Request::WriteModbus`] (protocol 1.2).
         const MODBUS_RTU = 1 << 6;
+        /// Takes the plant's bulk density with each reading, for a product
+        /// calibration with a density input (no firmware has it yet: the
+        /// host refuses to push such a calibration to a device without it).
+        const DENSITY_INPUT = 1 << 7;
     }
 }
 

@@ -351,6 +351,51 @@ fn capture_push_list_select_and_history() {
     assert_fails(&o, 1, &["500 kHz and 10 MHz", "nothing written"]);
     assert_eq!(history(&db).len(), records);
 
+    // A calibration that takes the plant's bulk density is refused by a
+    // device without a density input (values made up for the test).
+    let dense = sim.path("dense.csv");
+    let mut t = String::from(
+        "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im,bulk_density_kg_m3\n",
+    );
+    for i in 0..40 {
+        let m = 10.0 + 0.3 * f64::from(i);
+        let rho = 700.0 + 10.0 * f64::from(i % 7);
+        t.push_str(&format!(
+            "D{i},{m},{},1000000,{},{},20000000,{},{},{rho}\n",
+            18.0 + f64::from(i % 5),
+            2.0 + 0.25 * m + 0.002 * rho + 0.01 * f64::from(i % 3),
+            0.5 + 0.02 * f64::from(i),
+            1.8 + 0.2 * m + 0.001 * rho,
+            0.3 + 0.01 * f64::from(i % 4)
+        ));
+    }
+    std::fs::write(&dense, t).unwrap();
+    let dense_cal = sim.path("dense.toml");
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "fit",
+            "--samples",
+            dense.to_str().unwrap(),
+            "--model",
+            "multivariate",
+            "--density-input",
+            "--force",
+            "--name",
+            "HM chips L2",
+            "--out",
+            dense_cal.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let o = run(
+        &mut push_args(&dense_cal, &["--activate", "true", "--yes", "--force"]),
+        LIMIT,
+    );
+    assert_fails(&o, 1, &["no density input", "nothing written"]);
+    assert_eq!(history(&db).len(), records);
+
     let list = || -> serde_json::Value {
         let o = run(
             &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),

@@ -8,7 +8,7 @@ use std::path::Path;
 
 use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
-use fringe_protocol::{CalId, ProductCal, Request, Response, SlotInfo};
+use fringe_protocol::{CalId, Capabilities, ProductCal, Request, Response, SlotInfo};
 use fringe_quality::analysis::CalRecordBody;
 use fringe_quality::cal::{gate_of_file, GateRefused};
 use fringe_quality::product_file::{same_freqs, ProductFile};
@@ -48,6 +48,15 @@ pub enum ProductError {
         serial: String,
         /// The device's frequencies.
         device_hz: [f64; 2],
+    },
+    /// The calibration takes the plant's bulk density, which the device
+    /// cannot receive.
+    #[error("{name} takes the plant's bulk density with every reading (fitted with --density-input), but {serial} has no density input: on it every reading would be flagged density_missing and assume the calibration's mean density. Fit without --density-input for this device; nothing written")]
+    NoDensityInput {
+        /// Product name.
+        name: String,
+        /// The device serial.
+        serial: String,
     },
     /// No free slot and none named.
     #[error("all {n} product slots are in use; choose one with --slot")]
@@ -178,6 +187,19 @@ pub fn push(
                 device_hz: dev,
             });
         }
+    }
+    let takes_density = fringe_firmware::device::parse_product(wire).is_ok_and(|c| {
+        matches!(c.model, fringe_calibration::product::ProductModel::Multivariate(m) if m.uses_density())
+    });
+    if takes_density
+        && !link
+            .identity()
+            .is_some_and(|id| id.capabilities.contains(Capabilities::DENSITY_INPUT))
+    {
+        return Err(ProductError::NoDensityInput {
+            name: file.name.clone(),
+            serial,
+        });
     }
     let (slots, active) = list_slots(link)?;
     let slot = p

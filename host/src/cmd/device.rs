@@ -17,6 +17,7 @@ fn capability_names(c: Capabilities) -> Vec<&'static str> {
         (Capabilities::DIAGNOSTICS, "diagnostics"),
         (Capabilities::SETTINGS, "settings"),
         (Capabilities::MODBUS_RTU, "modbus_rtu"),
+        (Capabilities::DENSITY_INPUT, "density_input"),
     ]
     .into_iter()
     .filter(|(f, _)| c.contains(*f))
