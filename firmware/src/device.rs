@@ -872,13 +872,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                     },
                     tx,
                 );
-                let why = match reason {
-                    AuthFailure::Missing => "write needs an auth tag",
-                    AuthFailure::BadTag => "auth tag does not verify",
-                    AuthFailure::Replay => "auth counter not above stored",
-                    AuthFailure::Throttled => "writes held off",
-                };
-                self.refuse(tx, frame.id, (ErrorCode::AuthFailed, why));
+                self.refuse(tx, frame.id, (ErrorCode::AuthFailed, reason.reason()));
                 false
             }
         }

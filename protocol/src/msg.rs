@@ -466,6 +466,19 @@ pub enum AuthFailure {
     Throttled,
 }
 
+impl AuthFailure {
+    /// The reason text of the device's `AuthFailed` error frame (at most
+    /// [`REASON_LEN`] bytes); a host matches a refusal on exactly this.
+    pub const fn reason(self) -> &'static str {
+        match self {
+            AuthFailure::Missing => "write needs an auth tag",
+            AuthFailure::BadTag => "auth tag does not verify",
+            AuthFailure::Replay => "auth counter not above stored",
+            AuthFailure::Throttled => "writes held off",
+        }
+    }
+}
+
 /// What happened on the device.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub enum EventKind {

@@ -363,3 +363,23 @@ fn largest_product_cal_fits_the_storage_item() {
     eprintln!("largest stored product calibration: {n} bytes");
     assert!(n <= 320, "{n} bytes");
 }
+
+/// Each authentication refusal's reason fits the error frame and is its
+/// own, so a host can tell a replay from a wrong key by the text.
+#[test]
+fn auth_failure_reasons_fit_and_differ() {
+    let all = [
+        AuthFailure::Missing,
+        AuthFailure::BadTag,
+        AuthFailure::Replay,
+        AuthFailure::Throttled,
+    ];
+    for (i, a) in all.iter().enumerate() {
+        assert!(a.reason().len() <= REASON_LEN, "{a:?}");
+        let s: heapless::String<REASON_LEN> = short_string(a.reason());
+        assert_eq!(s.as_str(), a.reason(), "{a:?}");
+        for b in &all[i + 1..] {
+            assert_ne!(a.reason(), b.reason());
+        }
+    }
+}

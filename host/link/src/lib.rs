@@ -717,7 +717,7 @@ impl Link {
                 if self.stats.retries > retries_before
                     && matches!(&e, LinkError::Refused { code, reason, .. }
                         if *code == fringe_protocol::ErrorCode::AuthFailed.code()
-                            && reason.contains("not above stored")) =>
+                            && reason.as_str() == fringe_protocol::AuthFailure::Replay.reason()) =>
             {
                 match self.request(Request::Status)? {
                     Response::Status(s) if s.write_counter == counter => Ok(Response::Ack),
@@ -1060,7 +1060,9 @@ mod tests {
                     return enc(&DeviceFrame::Error {
                         id: f.id,
                         code: ErrorCode::AuthFailed,
-                        reason: fringe_protocol::short_string("auth counter not above stored"),
+                        reason: fringe_protocol::short_string(
+                            fringe_protocol::AuthFailure::Replay.reason(),
+                        ),
                     });
                 }
                 stored = counter;
@@ -1117,7 +1119,8 @@ mod tests {
             .request_signed(Request::Reboot, &key)
             .expect_err("refused");
         assert!(
-            matches!(&e, LinkError::Refused { reason, .. } if reason.contains("not above stored")),
+            matches!(&e, LinkError::Refused { reason, .. }
+                if reason.as_str() == fringe_protocol::AuthFailure::Replay.reason()),
             "{e:?}"
         );
     }
