@@ -368,7 +368,9 @@ fn physics_wins_extrapolation_on_the_grain() {
 /// the gate's five samples per parameter, so ridge is not eligible here
 /// and the model written, PLS, does 1.5 times worse than the unconstrained
 /// baseline on fresh samples: BENCHMARKS.md; the zoo test above uses 100
-/// samples.) (Fixed data: one seed of the zoo.)
+/// samples.) What is chosen must do at least 10 % better on the fresh
+/// samples than the lucky model (measured: 0.410 % against 0.505 %).
+/// (Fixed data: one seed of the zoo.)
 #[test]
 fn a_lucky_cross_validated_sep_does_not_choose_the_model() {
     let f = Family::sand();
@@ -387,17 +389,24 @@ fn a_lucky_cross_validated_sep_does_not_choose_the_model() {
     // The case as it was: the single-frequency model's SEP is below ridge's.
     assert!(cv_sep(Candidate::SingleFrequency) < cv_sep(Candidate::MultivariateRidge));
     assert_ne!(cmp.chosen, Candidate::SingleFrequency);
-    if let Some(single) = cmp
+    match cmp
         .paired
         .iter()
         .find(|p| p.candidate == Candidate::SingleFrequency)
     {
-        assert!(
+        // Compared with the default: its advantage is not significant.
+        Some(single) => assert!(
             !single.significant(),
             "single-frequency advantage t {:.2} against {:.2}",
             single.t,
             single.critical
-        );
+        ),
+        // It was the default (the smallest SEP with ridge not eligible):
+        // another model was significantly better than it.
+        None => {
+            assert_eq!(cmp.default_model, Candidate::SingleFrequency);
+            assert!(cmp.paired.iter().any(|p| p.significant()));
+        }
     }
     let fit = cmp.chosen_fit();
     assert!(
@@ -407,7 +416,19 @@ fn a_lucky_cross_validated_sep_does_not_choose_the_model() {
     );
     let (e, _) = validate(fit, &val);
     let (s, b) = (sep(&e), baseline_sep(&Baseline::fit(&train), &val));
-    println!("chosen {} SEP {s:.3}, baseline {b:.3}", cmp.chosen.name());
+    let single = cmp
+        .results
+        .iter()
+        .find(|r| r.0 == Candidate::SingleFrequency)
+        .and_then(|r| r.1.as_ref().ok())
+        .expect("fitted");
+    let s1 = sep(&validate(single, &val).0);
+    println!(
+        "chosen {} SEP {s:.3}, the lucky single-frequency model {s1:.3}, baseline {b:.3}",
+        cmp.chosen.name()
+    );
+    // What was chosen holds better on fresh samples than the lucky model.
+    assert!(s < 0.9 * s1, "chosen {s:.3} vs single-frequency {s1:.3}");
 }
 
 /// Regression (a single high-leverage sample): on the cereal with bound
