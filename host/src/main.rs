@@ -30,16 +30,17 @@ fn main() -> std::process::ExitCode {
         Ok(Ok(())) => ExitCode::Success.into(),
         Ok(Err(e)) if is_broken_pipe(&e) => ExitCode::Success.into(),
         Ok(Err(e)) => {
-            // A library error that wraps another with the same words
-            // (`#[error("{0}")]`) is said once.
-            let mut last = e.to_string();
-            eprintln!("fringe: error: {last}");
+            // A cause whose words the message already holds (an error
+            // that wraps another with `#[error("{0}")]`, or names its
+            // source in its own text) is said once.
+            let mut said = vec![e.to_string()];
+            eprintln!("fringe: error: {}", said[0]);
             for cause in e.chain().skip(1) {
                 let text = cause.to_string();
-                if text != last {
+                if !said.iter().any(|s| s.contains(&text)) {
                     eprintln!("  caused by: {text}");
+                    said.push(text);
                 }
-                last = text;
             }
             ExitCode::for_error(&e).into()
         }

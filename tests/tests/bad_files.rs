@@ -268,6 +268,18 @@ fn check_kind(kind: &Kind, seed: u64) -> Count {
                 "{ctx}: the message lacks {n:?}:\n{message}"
             );
         }
+        // Each cause is said once: no "caused by" line repeats words an
+        // earlier line of the message already holds.
+        let lines: Vec<&str> = o.stderr.lines().collect();
+        for (i, l) in lines.iter().enumerate() {
+            if let Some(cause) = l.strip_prefix("  caused by: ") {
+                assert!(
+                    !lines[..i].iter().any(|p| p.contains(cause)),
+                    "{ctx}: the cause {cause:?} is said twice:\n{}",
+                    o.stderr
+                );
+            }
+        }
         assert!(
             !o.stderr.contains("panicked") && !o.stderr.contains("RUST_BACKTRACE"),
             "{ctx}: a panic reached the user:\n{}",

@@ -28,6 +28,9 @@ fn check(set: &SampleSet, moisture: MoistureColumn) {
             None => assert_eq!(moisture, MoistureColumn::Optional),
         }
         assert!((-40.0..=150.0).contains(&s.temperature_c));
+        if let Some(r) = s.bulk_density_kg_m3 {
+            assert!((10.0..=5000.0).contains(&r), "bulk density {r}");
+        }
         for k in 0..2 {
             assert!(s.eps_re[k].is_finite() && s.eps_re[k] >= 1.0);
             assert!(s.eps_im[k].is_finite() && s.eps_im[k] >= 0.0);

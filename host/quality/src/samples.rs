@@ -223,7 +223,7 @@ impl fmt::Display for SampleError {
                 COLUMNS.join(", ")
             ),
             DuplicateColumn { file, column } => {
-                write!(f, "{}: line 1: column `{column}` appears twice", file.display())
+                write!(f, "{}: line 1: column `{}` appears twice", file.display(), shorten(column, 80))
             }
             Malformed { file, line, reason } => write!(f, "{}: line {line}: {reason}", file.display()),
             Separator { file, found } => write!(
@@ -261,8 +261,9 @@ impl fmt::Display for SampleError {
             ),
             DuplicateId { file, line, first_line, id } => write!(
                 f,
-                "{}: line {line}, column sample_id: sample id `{id}` already used on line {first_line}",
-                file.display()
+                "{}: line {line}, column sample_id: sample id `{}` already used on line {first_line}",
+                file.display(),
+                shorten(id, 80)
             ),
             TooFew { file, n, needed, model } => write!(
                 f,
@@ -797,5 +798,30 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
                 "{bad}: {e}"
             );
         }
+    }
+
+    /// Regression: a repeated sample id or column name of 10,000
+    /// characters was printed whole.
+    #[test]
+    fn a_long_repeated_id_or_column_is_not_echoed_whole() {
+        let long = "y".repeat(10_000);
+        let head = "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im";
+        let row = |id: &str| format!("{id},12.0,20.0,1000000,5.0,3.0,20000000,4.0,1.0");
+        let e = parse(&format!("{head}\n{}\n{}\n", row(&long), row(&long)))
+            .expect_err("repeated id")
+            .to_string();
+        assert!(
+            e.len() < 300
+                && e.contains("already used on line 2")
+                && e.contains("10000 bytes in all"),
+            "{e}"
+        );
+        let e = parse(&format!("{head},{long},{long}\n{},a,b\n", row("S1")))
+            .expect_err("repeated column")
+            .to_string();
+        assert!(
+            e.len() < 300 && e.contains("appears twice") && e.contains("10000 bytes in all"),
+            "{e}"
+        );
     }
 }
