@@ -1178,6 +1178,11 @@ mod tests {
             },
             seed,
         );
+        write_table(dir, name, &s)
+    }
+
+    /// Writes fit samples as a reference-sample table.
+    fn write_table(dir: &Path, name: &str, s: &[Sample]) -> PathBuf {
         let rows: Vec<RefSample> = s
             .iter()
             .map(|x| RefSample {
@@ -1292,24 +1297,11 @@ mod tests {
         let dir = tempfile::tempdir().expect("dir");
         let chips = Family::wood_chips();
         let table = |name: &str, n: usize, seed: u64, density: bool| -> PathBuf {
-            let rows: Vec<RefSample> = chips
-                .samples(&Draw::new(n, FREQ_PAIRS[0]), seed)
-                .iter()
-                .map(|x| RefSample {
-                    sample_id: x.id.clone(),
-                    moisture_pct: Some(x.moisture_pct),
-                    temperature_c: x.temperature_c,
-                    freqs_hz: [x.channels[0].freq_hz, x.channels[1].freq_hz],
-                    eps_re: [x.channels[0].eps_re, x.channels[1].eps_re],
-                    eps_im: [x.channels[0].eps_loss, x.channels[1].eps_loss],
-                    bulk_density_kg_m3: x.bulk_density_kg_m3.filter(|_| density),
-                    line: 0,
-                })
-                .collect();
-            let p = dir.path().join(name);
-            crate::samples::write_samples(std::fs::File::create(&p).expect("create"), &rows)
-                .expect("write");
-            p
+            let mut s = chips.samples(&Draw::new(n, FREQ_PAIRS[0]), seed);
+            if !density {
+                s.iter_mut().for_each(|x| x.bulk_density_kg_m3 = None);
+            }
+            write_table(dir.path(), name, &s)
         };
         let csv = table("lab.csv", 100, 5, true);
         let toml = dir.path().join("chips.toml");
