@@ -105,6 +105,10 @@ impl ExitCode {
                 || cause
                     .downcast_ref::<fringe_device::key::KeyError>()
                     .is_some()
+                || matches!(
+                    cause.downcast_ref::<fringe_quality::cal::FitError>(),
+                    Some(fringe_quality::cal::FitError::NoDensity { .. })
+                )
             {
                 return ExitCode::BadFile;
             }

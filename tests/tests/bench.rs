@@ -371,6 +371,23 @@ fn capture_push_list_select_and_history() {
     }
     std::fs::write(&dense, t).unwrap();
     let dense_cal = sim.path("dense.toml");
+    // --density-input on a table without densities: a bad file, exit 3.
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "fit",
+            "--samples",
+            table.to_str().unwrap(),
+            "--model",
+            "multivariate",
+            "--density-input",
+            "--out",
+            dense_cal.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 3, &["ref.csv", "no row has a bulk density"]);
+    assert!(!dense_cal.exists());
     let o = run(
         &mut fringe(&[
             "cal",

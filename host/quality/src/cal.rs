@@ -40,7 +40,7 @@ pub enum FitError {
     #[error("the relaxation model needs --bulk-density-kg-m3 and --particle-density-kg-m3 (measured for this product)")]
     NoDensities,
     /// `--density-input` on a table where a sample has no bulk density.
-    #[error("{}: {}: --density-input needs the `bulk_density_kg_m3` column with a value on every row (the density at the sensor when the sample was taken)", file.display(), match (line, id) { (Some(l), Some(i)) => format!("line {l} (sample `{i}`) has no bulk density"), _ => "no row has a bulk density".to_string() })]
+    #[error("{}: {}: --density-input needs the `bulk_density_kg_m3` column with a value on every row (the density at the sensor when the sample was taken)", file.display(), match (line, id) { (Some(l), Some(i)) => format!("line {l} (sample `{}`) has no bulk density", crate::samples::shorten(i, 80)), _ => "no row has a bulk density".to_string() })]
     NoDensity {
         /// The sample table.
         file: PathBuf,
@@ -471,7 +471,6 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
         FitModel::Pls => "multivariate (PLS)",
         FitModel::Compare => "every",
     };
-    set.require(n_coef(args.model, degree), words)?;
     if args.density_input {
         let any = set.samples.iter().any(|s| s.bulk_density_kg_m3.is_some());
         if let Some(s) = set.samples.iter().find(|s| s.bulk_density_kg_m3.is_none()) {
@@ -482,6 +481,7 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
             });
         }
     }
+    set.require(n_coef(args.model, degree), words)?;
     let samples = to_fit_samples(&set);
     // Leave-one-out repeats the whole fit per sample; from 100 samples on,
     // 10 folds keep `compare` under 0.1 s for 200 samples (BENCHMARKS.md).
