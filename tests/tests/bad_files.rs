@@ -535,6 +535,26 @@ fn csv_cases(good: &[u8], path: &str, rng: &mut StdRng, dup_id: bool) -> Vec<Cas
             BAD_FILE,
             &[path, "line 1", "`;`"],
         ),
+        case(
+            "bulk density in g/cm3 (0.76)",
+            Setup::Bytes(
+                String::from_utf8(good.to_vec())
+                    .expect("utf-8")
+                    .lines()
+                    .enumerate()
+                    .map(|(i, l)| {
+                        if i == 0 {
+                            format!("{l},bulk_density_kg_m3\n")
+                        } else {
+                            format!("{l},0.76\n")
+                        }
+                    })
+                    .collect::<String>()
+                    .into_bytes(),
+            ),
+            BAD_FILE,
+            &[path, "line 2, column 10 (bulk_density_kg_m3)", "kg/m^3"],
+        ),
         case("a folder", Setup::Dir, BAD_FILE, &[path, "directory"]),
         case(
             "no read permission",
