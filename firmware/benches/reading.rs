@@ -191,6 +191,7 @@ fn bench(c: &mut Criterion) {
             &chain,
             Some(&cell),
             Some(&product),
+            None,
         )
     };
     // One check that the figure is for a real estimate.

@@ -20,19 +20,27 @@
 //! `old_ms` is then the time since boot, which is what a host needs to
 //! re-base the earlier readings of the boot (see `protocol/WIRE.md`).
 //!
+//! ## The plant's bulk density
+//! A product calibration with a density input takes the density the host
+//! last sent ([`Request::SetDensity`]) while it holds; without one its
+//! readings carry [`Flags::DENSITY_MISSING`] (see `protocol/WIRE.md`).
+//!
 //! ## Writes
 //! A request that changes the device ([`Request::needs_auth`]) is carried
 //! out only if its HMAC tag verifies ([`fringe_protocol::auth::verify`]) and
 //! its counter exceeds the stored write counter; otherwise it is answered
 //! with [`ErrorCode::AuthFailed`] and an [`EventKind::AuthFailed`] event is
 //! stored. An accepted counter is stored before the write is carried out,
-//! so a request can never be replayed, even after a power cut. Values are
+//! so a request can never be replayed, even after a power cut. The one
+//! exception is [`Request::SetDensity`], which may come every second: its
+//! counter is kept in RAM (storing it would wear the flash) and the request
+//! names the boot it is for, so a captured one is refused after a restart
+//! too; the counter a write must exceed is the higher of the two.
 //! After [`FREE_WRITE_FAILURES`] failed writes in a row, writes are held
 //! off for a time that doubles with each further failure
 //! ([`write_hold_ms`]); a write during a hold is refused unchecked with
 //! [`AuthFailure::Throttled`] (logged once per hold). Reads are never held
-//! off. Values are
-//! then checked (finite, in range) and refused with
+//! off. Values are then checked (finite, in range) and refused with
 //! [`ErrorCode::NotFinite`], [`ErrorCode::OutOfRange`],
 //! [`ErrorCode::NoSuchSlot`] or [`ErrorCode::BadCalibration`] without
 //! touching the stored state.
@@ -44,8 +52,9 @@ use fringe_protocol::{
     short_string, AuthFailure, Basis, CalId, Capabilities, CellCal, DeviceFrame, ErrorCode, Event,
     EventKind, FaultCode, Flags, FrameDecoder, FrameError, HostFrame, Identity, ModbusSettings,
     ModelKind, OutputConfig, ProductCal, Reading, RefCheck, Request, ResetCause, Response,
-    SelfTest, Seq, Serial, Settings, SlotInfo, Status, Version, EVENT_CHUNK, LOG_CHUNK,
-    MAX_FRAME_LEN, N_FREQ, N_PRODUCT_SLOTS, PROTOCOL_VERSION,
+    SelfTest, Seq, Serial, Settings, SlotInfo, Status, Version, DENSITY_HOLD_MAX_MS,
+    DENSITY_HOLD_MIN_MS, DENSITY_RANGE_KG_M3, EVENT_CHUNK, LOG_CHUNK, MAX_FRAME_LEN, N_FREQ,
+    N_PRODUCT_SLOTS, PROTOCOL_VERSION,
 };
 use heapless::Vec;
 
@@ -116,6 +125,11 @@ pub struct DeviceConfig {
     pub settings: Settings,
     /// Announce [`Capabilities::SIMULATED`].
     pub simulated: bool,
+    /// Take the plant's bulk density ([`Request::SetDensity`], protocol
+    /// 1.4) and announce [`Capabilities::DENSITY_INPUT`]; off, the device
+    /// answers it as a 1.3 device would, with `UnknownRequest` (for tests
+    /// of a host meeting older firmware).
+    pub density_input: bool,
 }
 
 impl DeviceConfig {
@@ -130,6 +144,7 @@ impl DeviceConfig {
             log_readings: true,
             settings: default_settings(),
             simulated: false,
+            density_input: true,
         }
     }
 
@@ -236,6 +251,13 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     boot: u32,
     counter: u32,
     write_counter: u32,
+    /// The highest counter of an accepted [`Request::SetDensity`] this
+    /// boot (RAM only: a density may come every second, and storing its
+    /// counter would wear the flash; the request names the boot instead).
+    volatile_counter: u32,
+    /// The plant's bulk density, kg/m^3, and until when it holds (ms since
+    /// the board started); RAM only.
+    density: Option<(f32, u64)>,
     /// Failed writes in a row since the last accepted one (RAM only).
     auth_failures: u32,
     /// Writes are held off, unchecked, until this time (ms since the board
@@ -455,6 +477,8 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             boot: st.boot,
             counter: 0,
             write_counter: st.write_counter,
+            volatile_counter: 0,
+            density: None,
             auth_failures: 0,
             auth_hold_until_ms: 0,
             auth_hold_logged: false,
@@ -802,6 +826,18 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         }
     }
 
+    /// The counter the next authenticated write must exceed: the stored one
+    /// or, if higher, that of a density accepted this boot.
+    fn accepted_counter(&self) -> u32 {
+        self.write_counter.max(self.volatile_counter)
+    }
+
+    /// The plant's bulk density at `now_ms`, while it holds.
+    fn density_at(&self, now_ms: u64) -> Option<f32> {
+        self.density
+            .and_then(|(kg_m3, until)| (now_ms < until).then_some(kg_m3))
+    }
+
     fn authorize(&mut self, now_ms: u64, frame: &HostFrame, tx: &mut dyn FnMut(&[u8])) -> bool {
         let carried = frame.auth.map_or(0, |a| a.counter);
         if now_ms < self.auth_hold_until_ms {
@@ -838,7 +874,16 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         }
         let reason = match verify(&self.key, &self.serial, frame.auth.as_ref(), &frame.request) {
             Err(reason) => Some(reason),
-            Ok(c) if c <= self.write_counter => Some(AuthFailure::Replay),
+            Ok(c) if c <= self.accepted_counter() => Some(AuthFailure::Replay),
+            // A density for another boot: captured before a restart (its
+            // counter was never stored, so only the boot tells).
+            Ok(_) if matches!(frame.request, Request::SetDensity { boot, .. } if boot != self.boot) => {
+                Some(AuthFailure::Replay)
+            }
+            Ok(c) if matches!(frame.request, Request::SetDensity { .. }) => {
+                self.volatile_counter = c;
+                None
+            }
             Ok(c) => {
                 if self.storage.put(key::WRITE_COUNTER, &c).is_err() {
                     self.refuse(
@@ -1079,6 +1124,22 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                 self.write_modbus(now_ms, new, tx)?;
                 Response::Ack
             }
+            Request::SetDensity { kg_m3, hold_ms, .. } => {
+                if !self.cfg.density_input {
+                    return Err((ErrorCode::UnknownRequest, "no density input"));
+                }
+                if !kg_m3.is_finite() {
+                    return Err((ErrorCode::NotFinite, "kg_m3 not finite"));
+                }
+                let (lo, hi) = DENSITY_RANGE_KG_M3;
+                in_range((lo..=hi).contains(&kg_m3), "kg_m3 not 10..5000")?;
+                in_range(
+                    (DENSITY_HOLD_MIN_MS..=DENSITY_HOLD_MAX_MS).contains(&hold_ms),
+                    "hold_ms not 1000..3600000",
+                )?;
+                self.density = Some((kg_m3, now_ms.saturating_add(u64::from(hold_ms))));
+                Response::Ack
+            }
         }))
     }
 
@@ -1147,6 +1208,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         if self.cfg.simulated {
             caps |= Capabilities::SIMULATED;
         }
+        if self.cfg.density_input {
+            caps |= Capabilities::DENSITY_INPUT;
+        }
         if self.diag != Diagnostics::default() {
             caps |= Capabilities::DIAGNOSTICS;
         }
@@ -1184,7 +1248,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             cell_cal: self.cell_id,
             product_cal: self.active.map_or(CalId::NONE, |a| a.id),
             last_flags: self.last_flags,
-            write_counter: self.write_counter,
+            write_counter: self.accepted_counter(),
             link_errors: self.decoder.stats().errors(),
             reference_ratio: mean(&self.last_ref),
             output_ma: self.output_ma,
@@ -1277,6 +1341,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             &self.chain,
             self.cell.as_ref(),
             self.active.as_ref().map(|a| &a.cal),
+            self.density_at(now_ms),
         );
         let (time_ms, clock_set) = self.time_ms(now_ms);
         let mut flags = o.flags;

@@ -420,7 +420,9 @@ pub fn temperature_c(raw: Option<u32>, info: &FrontendInfo, sensor: TempSensor) 
     (-50.0..=250.0).contains(&t).then_some(t)
 }
 
-/// Estimation of one reading (see the module doc).
+/// Estimation of one reading (see the module doc); `bulk_density_kg_m3`
+/// is the plant's bulk density while one holds (protocol 1.4), for a
+/// calibration with a density input.
 #[allow(clippy::too_many_arguments)]
 pub fn evaluate<F: Frontend>(
     fe: &F,
@@ -429,6 +431,7 @@ pub fn evaluate<F: Frontend>(
     chain: &ChainState,
     cell: Option<&CellCal>,
     product: Option<&ProductCalibration<f32>>,
+    bulk_density_kg_m3: Option<f32>,
 ) -> Outcome {
     let info = fe.info();
     let mut flags = Flags::empty();
@@ -532,7 +535,7 @@ pub fn evaluate<F: Frontend>(
             &EstimateInput {
                 channels: est_ch,
                 temperature_c: t.unwrap_or(f32::NAN),
-                bulk_density_kg_m3: None,
+                bulk_density_kg_m3,
             },
             product,
         );

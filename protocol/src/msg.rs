@@ -364,9 +364,9 @@ bitflags! {
         /// device settings: answers [`Request::ReadModbus`] /
         /// [`Request::WriteModbus`] (protocol 1.2).
         const MODBUS_RTU = 1 << 6;
-        /// Takes the plant's bulk density with each reading, for a product
-        /// calibration with a density input (no firmware has it yet: the
-        /// host refuses to push such a calibration to a device without it).
+        /// Takes the plant's bulk density for a product calibration with a
+        /// density input: answers [`Request::SetDensity`] (protocol 1.4).
+        /// The host refuses to push such a calibration to a device without it.
         const DENSITY_INPUT = 1 << 7;
     }
 }
@@ -762,7 +762,36 @@ pub enum Request {
     /// 1.2). The device answers on the new unit id, baud rate and parity
     /// from the next request on its RS-485 line.
     WriteModbus(ModbusSettings),
+    /// The plant's bulk density of the product at the sensor, from a
+    /// weigh belt or a density gauge, for a product calibration with a
+    /// density input (authenticated; protocol 1.4). The device uses it for
+    /// the readings of the next `hold_ms` and flags the readings after that
+    /// `DENSITY_MISSING` until a new one comes. Held in RAM only: a reboot
+    /// forgets it. The device checks `kg_m3` (finite, 10 to 5,000 kg/m^3)
+    /// and `hold_ms` (1 s to 1 h).
+    ///
+    /// Since it may come every second, an accepted one does not store its
+    /// write counter in flash (that would wear the settings' pages out):
+    /// the device keeps it in RAM, and `boot` (the device's boot number,
+    /// [`Identity::boot`]) ties the signed request to this boot, so that a
+    /// request captured before a restart is refused as a replay after it.
+    SetDensity {
+        /// The boot of the device it is meant for.
+        boot: u32,
+        /// Bulk density, kg/m^3 (wet basis, as the product lies at the sensor).
+        kg_m3: f32,
+        /// How long the value holds, ms.
+        hold_ms: u32,
+    },
 }
+
+/// Shortest time a [`Request::SetDensity`] value may hold, ms (1 s).
+pub const DENSITY_HOLD_MIN_MS: u32 = 1_000;
+/// Longest time a [`Request::SetDensity`] value may hold, ms (1 h).
+pub const DENSITY_HOLD_MAX_MS: u32 = 3_600_000;
+/// The bulk densities a [`Request::SetDensity`] may carry, kg/m^3: the same
+/// limits as a reference sample's density in a calibration table.
+pub const DENSITY_RANGE_KG_M3: (f32, f32) = (10.0, 5_000.0);
 
 impl Request {
     /// Whether this request changes the device and so must carry an [`Auth`] tag.
@@ -777,6 +806,7 @@ impl Request {
                 | Request::SetOutput(_)
                 | Request::WriteSettings(_)
                 | Request::WriteModbus(_)
+                | Request::SetDensity { .. }
         )
     }
 }

@@ -32,7 +32,11 @@ pub struct Version {
 ///
 /// 1.3 added [`crate::AuthFailure::Throttled`]: a write refused unchecked
 /// because the device holds writes off after repeated failed ones.
-pub const PROTOCOL_VERSION: Version = Version { major: 1, minor: 3 };
+///
+/// 1.4 added [`crate::Request::SetDensity`] and the `DENSITY_INPUT`
+/// capability: the plant's bulk density for a product calibration that
+/// takes one.
+pub const PROTOCOL_VERSION: Version = Version { major: 1, minor: 4 };
 
 /// Why two versions cannot talk.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

@@ -71,6 +71,13 @@ pub const MODBUS_CHANGED: &[u8] = &[
     0x10, 0x12, 0x03, 0x3b, 0x03, 0xc0, 0x89, 0xa2, 0xf7, 0xa2, 0x34, 0x0a, 0x01, 0x80, 0x96, 0x01,
     0x0a, 0x0c, 0x80, 0xac, 0x02, 0x02, 0x10, 0xfb, 0x57, 0x54, 0x00,
 ];
+/// A signed `SetDensity` (see the test; protocol 1.4).
+pub const SET_DENSITY: &[u8] = &[
+    0x27, 0x14, 0x0c, 0x01, 0x14, 0x09, 0x05, 0xa8, 0x47, 0xc3, 0xdb, 0x0c, 0xff, 0x85, 0x40, 0xca,
+    0x1b, 0xbd, 0xc4, 0x6b, 0xc5, 0x6b, 0x46, 0xb5, 0x2e, 0x69, 0x9d, 0x80, 0xa7, 0xf6, 0x46, 0x31,
+    0x40, 0x07, 0x19, 0xcf, 0xac, 0x16, 0x03, 0x0b, 0x40, 0xce, 0x44, 0xe0, 0xd4, 0x03, 0x3e, 0x4a,
+    0xf7, 0x76, 0x00,
+];
 /// `DeviceFrame::Event` of a `SettingsChanged` (see the test).
 pub const SETTINGS_CHANGED: &[u8] = &[
     0x18, 0x11, 0x03, 0x39, 0x03, 0xe0, 0xb4, 0x9e, 0xf7, 0xa2, 0x34, 0x09, 0x5b, 0xf8, 0xf2, 0xc0,
@@ -347,6 +354,46 @@ const DEFAULT_MODBUS: ModbusSettings = ModbusSettings {
 
 const V1_2: Version = Version { major: 1, minor: 2 };
 const V1_3: Version = Version { major: 1, minor: 3 };
+const V1_4: Version = Version { major: 1, minor: 4 };
+
+/// A signed `SetDensity` of 1,650 kg/m^3 held 60 s for boot 3 (protocol 1.4): wet sand
+/// from the weigh belt ahead of the sensor (values invented for the example).
+#[test]
+fn golden_signed_set_density() {
+    let request = Request::SetDensity {
+        boot: 3,
+        kg_m3: 1650.0,
+        hold_ms: 60_000,
+    };
+    assert!(request.needs_auth());
+    let auth = auth::sign(&KEY, SERIAL, 20, &request).unwrap();
+    assert_eq!(auth::verify(&KEY, SERIAL, Some(&auth), &request), Ok(20));
+    // The tag covers the value: another density does not verify.
+    for other in [
+        Request::SetDensity {
+            boot: 3,
+            kg_m3: 1651.0,
+            hold_ms: 60_000,
+        },
+        Request::SetDensity {
+            boot: 4,
+            kg_m3: 1650.0,
+            hold_ms: 60_000,
+        },
+    ] {
+        assert_eq!(
+            auth::verify(&KEY, SERIAL, Some(&auth), &other),
+            Err(AuthFailure::BadTag),
+            "{other:?}"
+        );
+    }
+    let msg = HostFrame {
+        id: 12,
+        auth: Some(auth),
+        request,
+    };
+    check_golden_as(V1_4, "HostFrame SetDensity (signed)", &msg, SET_DENSITY);
+}
 
 #[test]
 fn golden_read_modbus() {
@@ -418,18 +465,18 @@ fn golden_modbus_parity_tags() {
     assert!(postcard::from_bytes::<ModbusParity>(&[0x03]).is_err());
 }
 
-/// The library's own encoder now writes 1.3; a 1.2 frame (header `0x12`)
+/// The library's own encoder now writes 1.4; a 1.2 frame (header `0x12`)
 /// still decodes (equal majors).
 #[test]
-fn version_1_3_header() {
-    assert_eq!(PROTOCOL_VERSION, V1_3);
+fn version_1_4_header() {
+    assert_eq!(PROTOCOL_VERSION, V1_4);
     let msg = HostFrame {
         id: 4,
         auth: None,
         request: Request::ReadModbus,
     };
     let wire = frame::encode_vec(&msg).unwrap();
-    assert_eq!(wire[1], 0x13);
+    assert_eq!(wire[1], 0x14);
     // The payload is the same; the header and so the CRC-32 differ.
     assert_eq!(wire.get(2..5), READ_MODBUS.get(2..5), "payload");
     assert_ne!(wire.get(5..), READ_MODBUS.get(5..), "CRC over the header");

@@ -294,7 +294,7 @@ fn strategies_cover_every_variant() {
     };
     seen(
         sample(&request(), 600).iter().map(request_index).collect(),
-        22,
+        23,
         "Request",
     );
     seen(

@@ -179,9 +179,151 @@ fn a_liquid_outside_its_temperature_range_is_refused() {
     assert!(!db.exists() || history(&db).is_empty());
 }
 
+/// A reference table whose eps' grows with the bulk density (values made
+/// up for the test).
+fn write_density_table(path: &Path) {
+    let mut t = String::from(
+        "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im,bulk_density_kg_m3\n",
+    );
+    for i in 0..40 {
+        let m = 10.0 + 0.3 * f64::from(i);
+        let rho = 700.0 + 10.0 * f64::from(i % 7);
+        t.push_str(&format!(
+            "D{i},{m},{},1000000,{},{},20000000,{},{},{rho}\n",
+            18.0 + f64::from(i % 5),
+            2.0 + 0.25 * m + 0.002 * rho + 0.01 * f64::from(i % 3),
+            0.5 + 0.02 * f64::from(i),
+            1.8 + 0.2 * m + 0.001 * rho,
+            0.3 + 0.01 * f64::from(i % 4)
+        ));
+    }
+    std::fs::write(path, t).unwrap();
+}
+
+/// `fringe cal fit --density-input` of that table into `out`.
+fn fit_density_calibration(table: &Path, out: &Path) {
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "fit",
+            "--samples",
+            table.to_str().unwrap(),
+            "--model",
+            "multivariate",
+            "--density-input",
+            "--force",
+            "--name",
+            "HM chips L2",
+            "--out",
+            out.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+}
+
+/// Polls `fringe status` until the last reading's flags do (`want`) or do
+/// not carry `density_missing`; the flags seen, for the message.
+fn wait_density_flag(sim: &Sim, want: bool) -> Result<(), String> {
+    let mut seen = String::new();
+    for _ in 0..40 {
+        let s = status_json(sim);
+        let flags = s["last_flags"].to_string();
+        if flags.contains("\"density_missing\"") == want {
+            return Ok(());
+        }
+        seen = flags;
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    Err(seen)
+}
+
+/// The plant's bulk density through `fringe device density` (protocol
+/// 1.4): a calibration with a density input flags its readings
+/// density_missing until a density comes, not while it holds, and again
+/// once it has run out; a wrong value or no key sends nothing.
+#[test]
+fn a_density_calibration_takes_the_plants_density() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0205", seed(25)));
+    let db = sim.path("bench.db");
+    let key = key_file(&sim);
+    let o = cell_calibration(&sim, &db, &key, ["air", "methanol", "ethanol", "air"]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    sim.set_bench("line");
+    let table = sim.path("dense.csv");
+    write_density_table(&table);
+    let cal = sim.path("dense.toml");
+    fit_density_calibration(&table, &cal);
+    let o = run(
+        &mut cal_write(
+            &sim,
+            &key,
+            &db,
+            "push",
+            &[
+                "--cal",
+                cal.to_str().unwrap(),
+                "--reason",
+                "density test",
+                "--activate",
+                "true",
+                "--yes",
+                "--force",
+            ],
+        ),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    wait_density_flag(&sim, true).unwrap_or_else(|f| panic!("no density yet, but flags {f}"));
+
+    let density = |extra: &[&str]| {
+        let mut a = vec!["device", "density", "--port", sim.port_str()];
+        a.extend_from_slice(extra);
+        run(&mut fringe(&a), LIMIT)
+    };
+    let counter = || status_json(&sim)["write_counter"].as_u64().unwrap();
+    let before = counter();
+    let k = key.to_str().unwrap();
+    // g/cm3 by mistake, a hold too long, no key: usage errors, nothing sent.
+    let o = density(&["--key-file", k, "--kg-m3", "1.65"]);
+    assert_fails(&o, 2, &["--kg-m3 1.65", "g/cm3", "nothing sent"]);
+    let o = density(&["--key-file", k, "--kg-m3", "730", "--hold-s", "7200"]);
+    assert_fails(&o, 2, &["--hold-s 7200", "nothing sent"]);
+    let o = density(&["--kg-m3", "730"]);
+    assert_fails(&o, 2, &["needs the device key", "nothing sent"]);
+    assert_eq!(counter(), before, "nothing was sent");
+
+    let o = density(&[
+        "--key-file",
+        k,
+        "--kg-m3",
+        "730",
+        "--hold-s",
+        "600",
+        "--json",
+    ]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let v: serde_json::Value = serde_json::from_str(&o.stdout).expect("density json");
+    assert_eq!(v["serial"], "HGM-L2-0205", "{v}");
+    assert_eq!(v["bulk_density_kg_m3"], 730.0, "{v}");
+    assert!(counter() > before);
+    wait_density_flag(&sim, false).unwrap_or_else(|f| panic!("a density holds, but flags {f}"));
+
+    // A hold of one device second (a tenth of a wall second here) runs out.
+    let o = density(&["--key-file", k, "--kg-m3", "730", "--hold-s", "1"]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(o.stdout.contains("730 kg/m3, held until"), "{}", o.stdout);
+    wait_density_flag(&sim, true).unwrap_or_else(|f| panic!("the hold ran out, but flags {f}"));
+}
+
 #[test]
 fn capture_push_list_select_and_history() {
-    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0202", seed(22)));
+    // Firmware before protocol 1.4: no density input (the push of a
+    // calibration that takes one is refused below).
+    let sim = Sim::start(&ScenarioSpec {
+        density_input: false,
+        ..ScenarioSpec::clean("HGM-L2-0202", seed(22))
+    });
     let db = sim.path("bench.db");
     let key = key_file(&sim);
     let o = cell_calibration(&sim, &db, &key, ["air", "methanol", "ethanol", "air"]);
@@ -354,22 +496,7 @@ fn capture_push_list_select_and_history() {
     // A calibration that takes the plant's bulk density is refused by a
     // device without a density input (values made up for the test).
     let dense = sim.path("dense.csv");
-    let mut t = String::from(
-        "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im,bulk_density_kg_m3\n",
-    );
-    for i in 0..40 {
-        let m = 10.0 + 0.3 * f64::from(i);
-        let rho = 700.0 + 10.0 * f64::from(i % 7);
-        t.push_str(&format!(
-            "D{i},{m},{},1000000,{},{},20000000,{},{},{rho}\n",
-            18.0 + f64::from(i % 5),
-            2.0 + 0.25 * m + 0.002 * rho + 0.01 * f64::from(i % 3),
-            0.5 + 0.02 * f64::from(i),
-            1.8 + 0.2 * m + 0.001 * rho,
-            0.3 + 0.01 * f64::from(i % 4)
-        ));
-    }
-    std::fs::write(&dense, t).unwrap();
+    write_density_table(&dense);
     let dense_cal = sim.path("dense.toml");
     // --density-input on a table without densities: a bad file, exit 3.
     let o = run(
@@ -388,30 +515,28 @@ fn capture_push_list_select_and_history() {
     );
     assert_fails(&o, 3, &["ref.csv", "no row has a bulk density"]);
     assert!(!dense_cal.exists());
-    let o = run(
-        &mut fringe(&[
-            "cal",
-            "fit",
-            "--samples",
-            dense.to_str().unwrap(),
-            "--model",
-            "multivariate",
-            "--density-input",
-            "--force",
-            "--name",
-            "HM chips L2",
-            "--out",
-            dense_cal.to_str().unwrap(),
-        ]),
-        LIMIT,
-    );
-    assert_eq!(o.code, 0, "{}", o.stderr);
+    fit_density_calibration(&dense, &dense_cal);
     let o = run(
         &mut push_args(&dense_cal, &["--activate", "true", "--yes", "--force"]),
         LIMIT,
     );
     assert_fails(&o, 1, &["no density input", "nothing written"]);
     assert_eq!(history(&db).len(), records);
+    // Nor does the device take a density.
+    let o = run(
+        &mut fringe(&[
+            "device",
+            "density",
+            "--port",
+            sim.port_str(),
+            "--key-file",
+            key.to_str().unwrap(),
+            "--kg-m3",
+            "730",
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 1, &["HGM-L2-0202 has no density input", "nothing sent"]);
 
     let list = || -> serde_json::Value {
         let o = run(

@@ -284,6 +284,10 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
         "device clock",
         &dev(&["device", "clock", "--set", "--key-file", s(&key)]),
     );
+    c.check(
+        "device density",
+        &dev(&["device", "density", "--key-file", s(&key), "--kg-m3", "730"]),
+    );
     c.check("device config show", &dev(&["device", "config", "show"]));
     c.check(
         "device config set",

@@ -410,6 +410,7 @@ pub fn request_name(r: &Request) -> &'static str {
         Request::WriteSettings(_) => "WriteSettings",
         Request::ReadModbus => "ReadModbus",
         Request::WriteModbus(_) => "WriteModbus",
+        Request::SetDensity { .. } => "SetDensity",
     }
 }
 

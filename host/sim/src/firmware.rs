@@ -79,6 +79,7 @@ impl FirmwareSim {
         let key = scenario.key().ok_or(BootError::Key)?;
         let mut config = DeviceConfig::new(&scenario.device.serial, key);
         config.simulated = true;
+        config.density_input = scenario.device.density_input;
         config.settings.interval_ms = scenario.device.interval_ms;
         // The default stale timeout, or twice the interval if that is longer.
         config.settings.stale_timeout_ms = config

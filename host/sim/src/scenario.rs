@@ -88,6 +88,14 @@ pub struct DeviceSection {
     /// from boot until a host sets it (`unset`).
     #[serde(default)]
     pub clock: ClockStart,
+    /// Whether the device takes the plant's bulk density (protocol 1.4,
+    /// the default); `false` answers as firmware before it did.
+    #[serde(default = "yes")]
+    pub density_input: bool,
+}
+
+fn yes() -> bool {
+    true
 }
 
 /// How the simulated device's clock starts.

@@ -240,6 +240,31 @@ pub enum DeviceCommand {
     Clock(ClockArgs),
     /// Show or change the device settings.
     Config(ConfigArgs),
+    /// Send the plant's bulk density for a calibration with a density input (authenticated).
+    #[command(
+        after_help = "Example (wet sand from the weigh belt ahead of the sensor, 1650 kg/m3, good for 60 s):\n  fringe device density --port /dev/ttyUSB0 --key-file hgm-l2-0007.key --kg-m3 1650 --hold-s 60\n\nA calibration fitted with --density-input uses the value for the readings of the next --hold-s seconds;\nafter that its readings are flagged density_missing and computed at the calibration's mean density with a\nwider uncertainty. The device holds it in RAM only (a restart forgets it); send it again, from a script or\nthe plant's system, well within the hold. A calibration without a density input ignores it.\nThe 4-20 mA output follows the new moisture at once: a wrong density moves the moisture a control loop may\nuse. Check the units (kg/m3, not g/cm3) and the source before feeding it on a running line."
+    )]
+    Density(DensityArgs),
+}
+
+/// `fringe device density`.
+#[derive(Debug, Clone, Args)]
+pub struct DensityArgs {
+    /// The device.
+    #[command(flatten)]
+    pub port: PortArgs,
+    /// Bulk density of the product at the sensor, kg/m^3 (10 to 5000).
+    #[arg(long, value_name = "KG_M3")]
+    pub kg_m3: f32,
+    /// How long the value holds on the device, s (1 to 3600).
+    #[arg(long, value_name = "S", default_value_t = 60)]
+    pub hold_s: u32,
+    /// Device key file (64 hex digits) [default: `key_file` in the line file].
+    #[arg(long, value_name = "FILE")]
+    pub key_file: Option<PathBuf>,
+    /// Print JSON instead of text.
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// `fringe device clock`.

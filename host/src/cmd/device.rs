@@ -199,6 +199,7 @@ pub fn device(a: &crate::cli::DeviceArgs, cfg: &LineConfig) -> anyhow::Result<()
     use crate::cli::{ConfigCommand, DeviceCommand};
     match &a.command {
         DeviceCommand::Clock(c) => clock(c, cfg),
+        DeviceCommand::Density(d) => density(d, cfg),
         DeviceCommand::Config(c) => match &c.command {
             ConfigCommand::Show(s) => config_show(s, cfg),
             ConfigCommand::Set(s) => config_set(s, cfg),
@@ -308,6 +309,71 @@ pub fn clock(a: &crate::cli::ClockArgs, cfg: &LineConfig) -> anyhow::Result<()> 
         for l in clock_lines(&after, host) {
             out::line(&l)?;
         }
+    }
+    Ok(())
+}
+
+/// `fringe device density`.
+///
+/// # Errors
+/// Values out of range (a usage error, nothing sent), port, link, key
+/// errors, a device without a density input, the device's refusal.
+pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<()> {
+    use fringe_protocol::{DENSITY_HOLD_MAX_MS, DENSITY_HOLD_MIN_MS, DENSITY_RANGE_KG_M3};
+    let (lo, hi) = DENSITY_RANGE_KG_M3;
+    if !a.kg_m3.is_finite() || !(lo..=hi).contains(&a.kg_m3) {
+        return Err(crate::exit::UsageError(format!(
+            "--kg-m3 {}: a bulk density must lie in {lo}..{hi} kg/m3{}; nothing sent",
+            a.kg_m3,
+            if a.kg_m3 > 0.0 && a.kg_m3 < lo {
+                " (a value in g/cm3? multiply by 1000)"
+            } else {
+                ""
+            }
+        ))
+        .into());
+    }
+    let hold_ms = a.hold_s.saturating_mul(1000);
+    if !(DENSITY_HOLD_MIN_MS..=DENSITY_HOLD_MAX_MS).contains(&hold_ms) {
+        return Err(crate::exit::UsageError(format!(
+            "--hold-s {}: must lie in {}..{} s; nothing sent",
+            a.hold_s,
+            DENSITY_HOLD_MIN_MS / 1000,
+            DENSITY_HOLD_MAX_MS / 1000
+        ))
+        .into());
+    }
+    let key = super::optional_key(a.key_file.as_deref(), cfg)?.ok_or_else(|| {
+        crate::exit::UsageError("sending a density needs the device key: pass --key-file or set key_file in the line file; nothing sent".to_string())
+    })?;
+    let mut link = super::connect(&a.port, cfg)?;
+    let serial = link.serial_number().to_string();
+    match fringe_line::set_density(&mut link, &key, a.kg_m3, hold_ms) {
+        Ok(()) => {}
+        Err(fringe_line::DensityError::Link(e)) => {
+            return Err(anyhow::Error::from(e).context(format!(
+                "{serial} did not take the density {} kg/m3",
+                a.kg_m3
+            )))
+        }
+        Err(e) => return Err(e.into()),
+    }
+    let until = crate::store::now_unix_ms() + i64::from(hold_ms);
+    if a.json {
+        out::json(&json!({
+            "port": link.port_name(),
+            "serial": serial,
+            "bulk_density_kg_m3": a.kg_m3,
+            "hold_s": a.hold_s,
+            "holds_until": crate::timefmt::fmt_time(until),
+        }))?;
+    } else {
+        out::line(&format!("{:<11}{serial}", "serial"))?;
+        out::line(&format!(
+            "density    {} kg/m3, held until {} (then readings of a calibration with a density input are flagged density_missing)",
+            a.kg_m3,
+            crate::timefmt::fmt_person(until)
+        ))?;
     }
     Ok(())
 }

@@ -465,6 +465,13 @@ pub fn request() -> impl Strategy<Value = Request> {
         settings().prop_map(Request::WriteSettings),
         Just(Request::ReadModbus),
         modbus_settings().prop_map(Request::WriteModbus),
+        (any::<u32>(), any_f32(), any::<u32>()).prop_map(|(boot, kg_m3, hold_ms)| {
+            Request::SetDensity {
+                boot,
+                kg_m3,
+                hold_ms,
+            }
+        }),
     ]
 }
 
@@ -493,6 +500,7 @@ pub fn request_index(r: &Request) -> usize {
         Request::WriteSettings(_) => 19,
         Request::ReadModbus => 20,
         Request::WriteModbus(_) => 21,
+        Request::SetDensity { .. } => 22,
     }
 }
 

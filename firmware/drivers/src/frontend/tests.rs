@@ -422,8 +422,8 @@ fn frontend_from_mocked_drivers_gives_the_permittivity_of_the_simulated_one() {
     let chain_real =
         chain_from_reference(&fe, &fe.info(), &cfg, &raw_real.reference.unwrap()).unwrap();
     assert_eq!(chain_sim, chain_real, "seed {seed}");
-    let o_sim = evaluate(&rec, &cfg, &raw_sim, &chain_sim, Some(&cell), None);
-    let o_real = evaluate(&fe, &cfg, &raw_real, &chain_real, Some(&cell), None);
+    let o_sim = evaluate(&rec, &cfg, &raw_sim, &chain_sim, Some(&cell), None, None);
+    let o_real = evaluate(&fe, &cfg, &raw_real, &chain_real, Some(&cell), None, None);
     for (i, (a, b)) in o_sim
         .channels
         .iter()
