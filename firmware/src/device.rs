@@ -33,9 +33,10 @@
 //! stored. An accepted counter is stored before the write is carried out,
 //! so a request can never be replayed, even after a power cut. The one
 //! exception is [`Request::SetDensity`], which may come every second: its
-//! counter is kept in RAM (storing it would wear the flash) and the request
-//! names the boot it is for, so a captured one is refused after a restart
-//! too; the counter a write must exceed is the higher of the two.
+//! counter is a sequence of its own, kept in RAM (storing it would wear the
+//! flash), and the request names the boot it is for, so a captured one is
+//! refused after a restart too. The same signed density received again
+//! (its answer was lost) is answered and not applied again.
 //! After [`FREE_WRITE_FAILURES`] failed writes in a row, writes are held
 //! off for a time that doubles with each further failure
 //! ([`write_hold_ms`]); a write during a hold is refused unchecked with
@@ -251,10 +252,16 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     boot: u32,
     counter: u32,
     write_counter: u32,
-    /// The highest counter of an accepted [`Request::SetDensity`] this
-    /// boot (RAM only: a density may come every second, and storing its
-    /// counter would wear the flash; the request names the boot instead).
-    volatile_counter: u32,
+    /// The counter of the last [`Request::SetDensity`] accepted this boot,
+    /// and what it carried (kg/m^3 as bits, hold) (RAM only: a density may come every second, and storing
+    /// its counter would wear the flash; the request names the boot
+    /// instead). A sequence of its own, apart from [`Self::write_counter`],
+    /// so that it never raises the counter the stored writes must exceed.
+    density_last: Option<(u32, u32, u32)>,
+    /// The counter of the density being carried out (authorized, its
+    /// values not yet checked): it becomes [`Self::density_last`] only if
+    /// they are accepted.
+    density_pending: Option<u32>,
     /// The plant's bulk density, kg/m^3, and until when it holds (ms since
     /// the board started); RAM only.
     density: Option<(f32, u64)>,
@@ -368,6 +375,17 @@ fn finite(ok: bool, what: &'static str) -> Result<(), Refusal> {
     }
 }
 
+/// What the authentication of a write decided.
+enum Authorized {
+    /// Carry it out.
+    Go,
+    /// Refused (answered and, where it is a failure, logged).
+    Refused,
+    /// The very write accepted last (a density tried again): answer it
+    /// again, change nothing.
+    Duplicate,
+}
+
 fn in_range(ok: bool, what: &'static str) -> Result<(), Refusal> {
     if ok {
         Ok(())
@@ -477,7 +495,8 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             boot: st.boot,
             counter: 0,
             write_counter: st.write_counter,
-            volatile_counter: 0,
+            density_last: None,
+            density_pending: None,
             density: None,
             auth_failures: 0,
             auth_hold_until_ms: 0,
@@ -826,19 +845,18 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         }
     }
 
-    /// The counter the next authenticated write must exceed: the stored one
-    /// or, if higher, that of a density accepted this boot.
-    fn accepted_counter(&self) -> u32 {
-        self.write_counter.max(self.volatile_counter)
-    }
-
     /// The plant's bulk density at `now_ms`, while it holds.
     fn density_at(&self, now_ms: u64) -> Option<f32> {
         self.density
             .and_then(|(kg_m3, until)| (now_ms < until).then_some(kg_m3))
     }
 
-    fn authorize(&mut self, now_ms: u64, frame: &HostFrame, tx: &mut dyn FnMut(&[u8])) -> bool {
+    fn authorize(
+        &mut self,
+        now_ms: u64,
+        frame: &HostFrame,
+        tx: &mut dyn FnMut(&[u8]),
+    ) -> Authorized {
         let carried = frame.auth.map_or(0, |a| a.counter);
         if now_ms < self.auth_hold_until_ms {
             // Held off: refused without checking the tag, so a guess costs
@@ -870,20 +888,42 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                     reason: short_string(&why),
                 },
             );
-            return false;
+            return Authorized::Refused;
         }
+        let density = match frame.request {
+            Request::SetDensity {
+                boot,
+                kg_m3,
+                hold_ms,
+            } => Some((boot, kg_m3.to_bits(), hold_ms)),
+            _ => None,
+        };
+        let density_boot = density.map(|d| d.0);
         let reason = match verify(&self.key, &self.serial, frame.auth.as_ref(), &frame.request) {
             Err(reason) => Some(reason),
-            Ok(c) if c <= self.accepted_counter() => Some(AuthFailure::Replay),
             // A density for another boot: captured before a restart (its
             // counter was never stored, so only the boot tells).
-            Ok(_) if matches!(frame.request, Request::SetDensity { boot, .. } if boot != self.boot) => {
-                Some(AuthFailure::Replay)
+            Ok(_) if density_boot.is_some_and(|b| b != self.boot) => Some(AuthFailure::Replay),
+            // The same signed density again (its answer was lost and the
+            // host tried again): answered, not applied again (a replay
+            // cannot extend its hold), not counted as a failure.
+            // (The tag has been verified: the counter and the values are
+            // the ones signed.)
+            Ok(c)
+                if density
+                    .is_some_and(|(_, kg, hold)| self.density_last == Some((c, kg, hold))) =>
+            {
+                return Authorized::Duplicate;
             }
-            Ok(c) if matches!(frame.request, Request::SetDensity { .. }) => {
-                self.volatile_counter = c;
-                None
+            Ok(c) if density.is_some() => {
+                if self.density_last.is_some_and(|(last, _, _)| c <= last) {
+                    Some(AuthFailure::Replay)
+                } else {
+                    self.density_pending = Some(c);
+                    None
+                }
             }
+            Ok(c) if c <= self.write_counter => Some(AuthFailure::Replay),
             Ok(c) => {
                 if self.storage.put(key::WRITE_COUNTER, &c).is_err() {
                     self.refuse(
@@ -891,7 +931,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                         frame.id,
                         (ErrorCode::Storage, "write counter not stored"),
                     );
-                    return false;
+                    return Authorized::Refused;
                 }
                 self.write_counter = c;
                 None
@@ -900,7 +940,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         match reason {
             None => {
                 self.auth_failures = 0;
-                true
+                Authorized::Go
             }
             Some(reason) => {
                 self.auth_failures = self.auth_failures.saturating_add(1);
@@ -918,15 +958,28 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                     tx,
                 );
                 self.refuse(tx, frame.id, (ErrorCode::AuthFailed, reason.reason()));
-                false
+                Authorized::Refused
             }
         }
     }
 
     fn handle(&mut self, now_ms: u64, frame: HostFrame, tx: &mut dyn FnMut(&[u8])) {
         let id = frame.id;
-        if frame.request.needs_auth() && !self.authorize(now_ms, &frame, tx) {
+        if matches!(frame.request, Request::SetDensity { .. }) && !self.cfg.density_input {
+            // As firmware before protocol 1.4: not a request it knows, so
+            // no write (and no counter) is spent on it.
+            self.refuse(tx, id, (ErrorCode::UnknownRequest, "no density input"));
             return;
+        }
+        if frame.request.needs_auth() {
+            match self.authorize(now_ms, &frame, tx) {
+                Authorized::Go => {}
+                Authorized::Refused => return,
+                Authorized::Duplicate => {
+                    self.respond(tx, id, Response::Ack);
+                    return;
+                }
+            }
         }
         let result = self.handle_request(now_ms, id, frame.request, tx);
         match result {
@@ -1029,6 +1082,10 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                     .put(key::ACTIVE_SLOT, &Some(slot))
                     .map_err(st)?;
                 let old_slot = self.active_slot;
+                if old_slot != Some(slot) {
+                    // Another product: the last one's density is not its.
+                    self.density = None;
+                }
                 let idc = pc.content_id();
                 self.active_slot = Some(slot);
                 self.active = Some(Active { slot, id: idc, cal });
@@ -1125,9 +1182,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                 Response::Ack
             }
             Request::SetDensity { kg_m3, hold_ms, .. } => {
-                if !self.cfg.density_input {
-                    return Err((ErrorCode::UnknownRequest, "no density input"));
-                }
+                let counter = self.density_pending.take();
                 if !kg_m3.is_finite() {
                     return Err((ErrorCode::NotFinite, "kg_m3 not finite"));
                 }
@@ -1138,6 +1193,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                     "hold_ms not 1000..3600000",
                 )?;
                 self.density = Some((kg_m3, now_ms.saturating_add(u64::from(hold_ms))));
+                if let Some(c) = counter {
+                    self.density_last = Some((c, kg_m3.to_bits(), hold_ms));
+                }
                 Response::Ack
             }
         }))
@@ -1248,7 +1306,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             cell_cal: self.cell_id,
             product_cal: self.active.map_or(CalId::NONE, |a| a.id),
             last_flags: self.last_flags,
-            write_counter: self.accepted_counter(),
+            write_counter: self.write_counter,
             link_errors: self.decoder.stats().errors(),
             reference_ratio: mean(&self.last_ref),
             output_ma: self.output_ma,

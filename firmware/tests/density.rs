@@ -230,9 +230,19 @@ fn forged_replayed_and_other_boot_densities_are_refused_and_logged() {
             DeviceFrame::Response { response, .. } => assert_eq!(response, Response::Ack),
             other => panic!("{other:?}"),
         }
-        // The counter is held in RAM and shown: the next write must exceed it.
-        assert_eq!(write_counter(&mut b), b.counter);
-        assert!(b.counter > stored_before);
+        // A sequence of its own, in RAM: the stored counter, which the
+        // other writes must exceed, is not raised.
+        assert_eq!(write_counter(&mut b), stored_before);
+
+        // The same signed density again (its answer lost on the line): it
+        // is answered, not applied again (a replay cannot extend its hold)
+        // and not counted as a failed write.
+        let events_before = b.events().len();
+        match b.ask_with(good.clone(), Some(captured)) {
+            DeviceFrame::Response { response, .. } => assert_eq!(response, Response::Ack),
+            other => panic!("{other:?}"),
+        }
+        assert_eq!(b.events().len(), events_before, "nothing logged");
 
         let evil = density(boot, 2000.0, 60_000);
         // Unsigned.
@@ -244,7 +254,8 @@ fn forged_replayed_and_other_boot_densities_are_refused_and_logged() {
             reason(&b.ask_with(evil.clone(), Some(a))),
             AuthFailure::BadTag.reason()
         );
-        // The captured one replayed.
+        // A newer density, then the captured one replayed.
+        assert_eq!(b.ok(density(boot, 1100.0, 60_000)), Response::Ack);
         assert_eq!(
             reason(&b.ask_with(good.clone(), Some(captured))),
             AuthFailure::Replay.reason()
@@ -285,6 +296,61 @@ fn forged_replayed_and_other_boot_densities_are_refused_and_logged() {
     });
 }
 
+/// Densities with counters far above the stored write counter (a density
+/// every tenth of a second for days) do not raise the counter the other
+/// writes must exceed: a write signed with the stored counter plus one,
+/// as the host signs it, is taken; one at or below it is a replay.
+#[test]
+fn densities_do_not_move_the_stored_writes_counter() {
+    big_stack(|| {
+        let mut b = device(47);
+        let boot = boot_of(&mut b);
+        let stored = write_counter(&mut b);
+        for c in [5_000_000u32, 5_000_001] {
+            let req = density(boot, 1200.0, 60_000);
+            let a = sign(&KEY, SERIAL, c, &req).unwrap();
+            match b.ask_with(req, Some(a)) {
+                DeviceFrame::Response { response, .. } => assert_eq!(response, Response::Ack),
+                other => panic!("{other:?}"),
+            }
+        }
+        assert_eq!(write_counter(&mut b), stored);
+        let select = Request::SelectProduct { slot: 0 };
+        let a = sign(&KEY, SERIAL, stored, &select).unwrap();
+        assert_eq!(
+            reason(&b.ask_with(select.clone(), Some(a))),
+            AuthFailure::Replay.reason()
+        );
+        b.counter = stored;
+        assert_eq!(b.ok(select), Response::Ack);
+        assert_eq!(write_counter(&mut b), stored + 1);
+    });
+}
+
+/// Another product selected: the density sent for the last one is
+/// dropped (its readings are flagged until one comes for the new one).
+#[test]
+fn selecting_another_product_drops_the_density() {
+    big_stack(|| {
+        let mut b = device(48);
+        assert_eq!(
+            b.ok(Request::WriteProductCal {
+                slot: 1,
+                cal: density_calibration(),
+            }),
+            Response::Ack
+        );
+        let boot = boot_of(&mut b);
+        assert_eq!(b.ok(density(boot, 1100.0, 600_000)), Response::Ack);
+        // The same product selected again keeps it.
+        assert_eq!(b.ok(Request::SelectProduct { slot: 0 }), Response::Ack);
+        assert!(!b.measure().flags.contains(Flags::DENSITY_MISSING));
+        assert_eq!(b.ok(Request::SelectProduct { slot: 1 }), Response::Ack);
+        let r = b.measure();
+        assert!(r.flags.contains(Flags::DENSITY_MISSING), "{:?}", r.flags);
+    });
+}
+
 #[test]
 fn a_device_without_the_input_answers_as_older_firmware() {
     big_stack(|| {
@@ -298,8 +364,10 @@ fn a_device_without_the_input_answers_as_older_firmware() {
             other => panic!("{other:?}"),
         };
         assert!(!id.capabilities.contains(Capabilities::DENSITY_INPUT));
+        let before = write_counter(&mut b);
         let f = b.ask(density(id.boot, 1100.0, 60_000));
         assert_eq!(Bench::error_code(&f), Some(ErrorCode::UnknownRequest));
+        assert_eq!(write_counter(&mut b), before, "no write spent on it");
     });
 }
 

@@ -770,11 +770,14 @@ pub enum Request {
     /// forgets it. The device checks `kg_m3` (finite, 10 to 5,000 kg/m^3)
     /// and `hold_ms` (1 s to 1 h).
     ///
-    /// Since it may come every second, an accepted one does not store its
-    /// write counter in flash (that would wear the settings' pages out):
-    /// the device keeps it in RAM, and `boot` (the device's boot number,
+    /// Since it may come every second, its write counter is a sequence of
+    /// its own, kept in RAM and not in flash (that would wear the settings'
+    /// pages out), apart from the stored counter of the other writes
+    /// ([`Status::write_counter`]); `boot` (the device's boot number,
     /// [`Identity::boot`]) ties the signed request to this boot, so that a
     /// request captured before a restart is refused as a replay after it.
+    /// The density accepted last, received again, is answered again and
+    /// not applied again. See `protocol/WIRE.md`.
     SetDensity {
         /// The boot of the device it is meant for.
         boot: u32,

@@ -23,9 +23,19 @@ pub enum DensityError {
     Link(#[from] LinkError),
 }
 
+/// The counter a density sent at device uptime `uptime_ms` carries: the
+/// uptime in tenths of a second (at least 1), so that densities sent one
+/// after another, from this process or another, rise without the host
+/// keeping a count; a `u32` of them lasts 13 years of uptime. Two sent
+/// within the same tenth of a second: the second is refused as a replay.
+pub fn density_counter(uptime_ms: u64) -> u32 {
+    u32::try_from(uptime_ms / 100).unwrap_or(u32::MAX).max(1)
+}
+
 /// Sends the plant's bulk density `kg_m3`, to hold `hold_ms` (authenticated;
 /// the device checks both, see `protocol/WIRE.md`). The request names the
-/// device's current boot, read from its status just before.
+/// device's current boot and carries [`density_counter`] of its uptime,
+/// both read from its status just before.
 ///
 /// # Errors
 /// [`DensityError::NoInput`] for a device without the input; the device's
@@ -47,14 +57,15 @@ pub fn set_density(
                 .map_or_else(|| "?".to_string(), |id| id.protocol.to_string()),
         });
     }
-    let boot = link.status()?.boot;
-    match link.request_signed(
+    let status = link.status()?;
+    match link.request_signed_with(
         Request::SetDensity {
-            boot,
+            boot: status.boot,
             kg_m3,
             hold_ms,
         },
         key,
+        density_counter(status.uptime_ms),
     )? {
         Response::Ack => Ok(()),
         other => Err(LinkError::Unexpected {
@@ -62,5 +73,21 @@ pub fn set_density(
             got: format!("{other:?}"),
         }
         .into()),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_counter_rises_with_the_uptime_and_is_never_zero() {
+        assert_eq!(density_counter(0), 1);
+        assert_eq!(density_counter(99), 1);
+        assert_eq!(density_counter(250), 2);
+        assert_eq!(density_counter(3_600_000), 36_000);
+        // 13 years of uptime still fit; beyond, it stays at the top.
+        assert_eq!(density_counter(13 * 365 * 86_400_000), 4_099_680_000);
+        assert_eq!(density_counter(u64::MAX), u32::MAX);
     }
 }

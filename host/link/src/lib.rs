@@ -729,6 +729,24 @@ impl Link {
         }
     }
 
+    /// Sends a request that changes the device, signed with `key` and this
+    /// `counter` as it stands (for [`Request::SetDensity`], whose counter is
+    /// a sequence of its own; see `protocol/WIRE.md`). No check of a
+    /// refused repeat: the device answers the same signed density again.
+    ///
+    /// # Errors
+    /// As [`Link::request`].
+    pub fn request_signed_with(
+        &mut self,
+        request: Request,
+        key: &Key,
+        counter: u32,
+    ) -> Result<Response, LinkError> {
+        let serial = self.serial_number().to_string();
+        let auth = fringe_protocol::auth::sign(key, &serial, counter, &request);
+        self.request_inner(request, auth)
+    }
+
     fn request_inner(
         &mut self,
         request: Request,

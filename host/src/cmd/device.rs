@@ -363,7 +363,9 @@ pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<
         out::json(&json!({
             "port": link.port_name(),
             "serial": serial,
-            "bulk_density_kg_m3": a.kg_m3,
+            // The value as typed (an f32 widened to f64 would show digits
+            // nobody typed: 1650.3 as 1650.300048828125).
+            "bulk_density_kg_m3": a.kg_m3.to_string().parse::<f64>().unwrap_or(f64::NAN),
             "hold_s": a.hold_s,
             "holds_until": crate::timefmt::fmt_time(until),
         }))?;
