@@ -306,6 +306,9 @@ fn a_density_calibration_takes_the_plants_density() {
     let v: serde_json::Value = serde_json::from_str(&o.stdout).expect("density json");
     assert_eq!(v["serial"], "HGM-L2-0205", "{v}");
     assert_eq!(v["bulk_density_kg_m3"], 730.0, "{v}");
+    assert_eq!(v["active_calibration"], "HM chips L2", "{v}");
+    assert_eq!(v["used_by_active_calibration"], true, "{v}");
+    assert!(!o.stderr.contains("note:"), "{}", o.stderr);
     // Its counter is a sequence of its own: the stored one stays.
     assert_eq!(counter(), before);
     wait_density_flag(&sim, false).unwrap_or_else(|f| panic!("a density holds, but flags {f}"));

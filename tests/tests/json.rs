@@ -288,6 +288,15 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
         "device density",
         &dev(&["device", "density", "--key-file", s(&key), "--kg-m3", "730"]),
     );
+    // No calibration there yet: the density is held and said to be unused.
+    let o = dev(&["device", "density", "--key-file", s(&key), "--kg-m3", "731"]);
+    let v = c.check("device density", &o);
+    assert_eq!(v[0]["used_by_active_calibration"], false, "{}", v[0]);
+    assert!(
+        o.stderr.contains("no product calibration is active"),
+        "{}",
+        o.stderr
+    );
     c.check("device config show", &dev(&["device", "config", "show"]));
     c.check(
         "device config set",

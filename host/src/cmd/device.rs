@@ -359,6 +359,9 @@ pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<
         Err(e) => return Err(e.into()),
     }
     let until = crate::store::now_unix_ms() + i64::from(hold_ms);
+    // Whether the calibration in use takes it (the device holds it either way).
+    let active = active_calibration(&mut link)?;
+    let used = active.as_ref().is_some_and(|(_, takes)| *takes);
     if a.json {
         out::json(&json!({
             "port": link.port_name(),
@@ -368,6 +371,8 @@ pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<
             "bulk_density_kg_m3": a.kg_m3.to_string().parse::<f64>().unwrap_or(f64::NAN),
             "hold_s": a.hold_s,
             "holds_until": crate::timefmt::fmt_time(until),
+            "active_calibration": active.as_ref().map(|(name, _)| name.as_str()),
+            "used_by_active_calibration": used,
         }))?;
     } else {
         out::line(&format!("{:<11}{serial}", "serial"))?;
@@ -377,7 +382,34 @@ pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<
             crate::timefmt::fmt_person(until)
         ))?;
     }
+    if !used {
+        eprintln!(
+            "note: {}: the device holds the density, but its readings do not change until a calibration fitted with --density-input is active",
+            match &active {
+                Some((name, _)) => format!("the active calibration `{name}` does not take one"),
+                None => "no product calibration is active".to_string(),
+            }
+        );
+    }
     Ok(())
+}
+
+/// The active product calibration's name and whether it takes the plant's
+/// bulk density; `None` when none is active.
+fn active_calibration(link: &mut crate::link::Link) -> anyhow::Result<Option<(String, bool)>> {
+    use fringe_protocol::{Request, Response};
+    let Some(slot) = link.status()?.active_slot else {
+        return Ok(None);
+    };
+    match link.request(Request::ReadProductCal { slot })? {
+        Response::ProductCal { cal: Some(pc), .. } => {
+            let takes = fringe_firmware::device::parse_product(&pc).is_ok_and(|c| {
+                matches!(c.model, fringe_calibration::product::ProductModel::Multivariate(m) if m.uses_density())
+            });
+            Ok(Some((pc.name.to_string(), takes)))
+        }
+        _ => Ok(None),
+    }
 }
 
 /// The device settings, read.
