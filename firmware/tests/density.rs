@@ -139,24 +139,7 @@ fn a_density_holds_for_its_time_and_then_readings_are_flagged() {
         // The schedule's own readings (logged) use it too.
         assert_eq!(b.ok(density(boot, 1200.0, 60_000)), Response::Ack);
         b.tick(3_000);
-        let mut all = Vec::new();
-        let mut from = Seq { boot, counter: 0 };
-        loop {
-            match b.ok(Request::ReadLog { from, max: 4 }) {
-                Response::Log {
-                    readings,
-                    next,
-                    end,
-                } => {
-                    all.extend(readings);
-                    from = next;
-                    if end {
-                        break;
-                    }
-                }
-                other => panic!("{other:?}"),
-            }
-        }
+        let all = b.read_log_from(Seq { boot, counter: 0 });
         let last = all.last().expect("logged readings");
         assert!(!last.flags.contains(Flags::DENSITY_MISSING), "{last:?}");
         assert!((last.moisture_pct.unwrap() - 14.0).abs() < 0.01, "{last:?}");

@@ -18,24 +18,7 @@ fn cell(stray: f32) -> CellCal {
 }
 
 fn read_log(b: &mut Bench) -> Vec<Reading> {
-    let mut out = Vec::new();
-    let mut from = Seq::default();
-    loop {
-        match b.ok(Request::ReadLog { from, max: 4 }) {
-            Response::Log {
-                readings,
-                next,
-                end,
-            } => {
-                out.extend(readings);
-                from = next;
-                if end {
-                    return out;
-                }
-            }
-            other => panic!("{other:?}"),
-        }
-    }
+    b.read_log_from(Seq::default())
 }
 
 /// Readings as their stored bytes (a reading may hold NaN, which `==` never matches).

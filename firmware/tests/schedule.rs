@@ -49,27 +49,6 @@ fn settings(interval_ms: u32, stale_timeout_ms: u32, fail_high: bool) -> Setting
     s
 }
 
-fn read_log_from(b: &mut Bench, from: Seq) -> Vec<Reading> {
-    let mut out = Vec::new();
-    let mut at = from;
-    loop {
-        match b.ok(Request::ReadLog { from: at, max: 4 }) {
-            Response::Log {
-                readings,
-                next,
-                end,
-            } => {
-                out.extend(readings);
-                at = next;
-                if end {
-                    return out;
-                }
-            }
-            other => panic!("{other:?}"),
-        }
-    }
-}
-
 /// The scenario's moisture at device time `t_ms` of the test: a ramp from
 /// 12 % to 18 % over the run (invented; a dryer being trimmed).
 fn moisture_at(t_ms: u64, t0: u64, span_ms: u64) -> f32 {
@@ -110,7 +89,7 @@ fn left_alone_it_logs_one_reading_per_interval_and_its_loop_follows_the_moisture
             "{n} intervals of {interval} ms gave {} readings",
             seen_ma.len()
         );
-        let log = read_log_from(&mut b, start);
+        let log = b.read_log_from(start);
         assert_eq!(log.len() as u64, n, "readings logged");
         for (w, r) in log.windows(2).zip(log.iter().skip(1)) {
             assert_eq!(w[1].seq.counter, w[0].seq.counter + 1);

@@ -170,6 +170,28 @@ impl Bench {
         }
     }
 
+    /// Every stored reading from `from` on, read chunk by chunk.
+    pub fn read_log_from(&mut self, from: Seq) -> Vec<Reading> {
+        let mut out = Vec::new();
+        let mut at = from;
+        loop {
+            match self.ok(Request::ReadLog { from: at, max: 4 }) {
+                Response::Log {
+                    readings,
+                    next,
+                    end,
+                } => {
+                    out.extend(readings);
+                    at = next;
+                    if end {
+                        return out;
+                    }
+                }
+                other => panic!("{other:?}"),
+            }
+        }
+    }
+
     pub fn error_code(frame: &DeviceFrame) -> Option<ErrorCode> {
         match frame {
             DeviceFrame::Error { code, .. } => Some(*code),
