@@ -253,9 +253,9 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     counter: u32,
     write_counter: u32,
     /// The counter of the last [`Request::SetDensity`] accepted this boot,
-    /// and what it carried (kg/m^3 as bits, hold) (RAM only: a density may come every second, and storing
-    /// its counter would wear the flash; the request names the boot
-    /// instead). A sequence of its own, apart from [`Self::write_counter`],
+    /// and what it carried (kg/m^3 as bits, hold); RAM only: a density may
+    /// come every second, and storing its counter would wear the flash
+    /// (the request names the boot instead). A sequence of its own, apart from [`Self::write_counter`],
     /// so that it never raises the counter the stored writes must exceed.
     density_last: Option<(u32, u32, u32)>,
     /// The counter of the density being carried out (authorized, its

@@ -115,6 +115,14 @@ pub fn push_gate(path: &Path, file: &ProductFile, force: bool) -> Result<Vec<Str
         .collect())
 }
 
+/// Whether a calibration (as the device holds it) takes the plant's bulk
+/// density with its readings (fitted with `--density-input`).
+pub fn takes_density(wire: &ProductCal) -> bool {
+    fringe_firmware::device::parse_product(wire).is_ok_and(|c| {
+        matches!(c.model, fringe_calibration::product::ProductModel::Multivariate(m) if m.uses_density())
+    })
+}
+
 /// The product slots of the device and the active one.
 ///
 /// # Errors
@@ -188,10 +196,7 @@ pub fn push(
             });
         }
     }
-    let takes_density = fringe_firmware::device::parse_product(wire).is_ok_and(|c| {
-        matches!(c.model, fringe_calibration::product::ProductModel::Multivariate(m) if m.uses_density())
-    });
-    if takes_density
+    if takes_density(wire)
         && !link
             .identity()
             .is_some_and(|id| id.capabilities.contains(Capabilities::DENSITY_INPUT))

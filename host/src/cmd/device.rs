@@ -402,12 +402,10 @@ fn active_calibration(link: &mut crate::link::Link) -> anyhow::Result<Option<(St
         return Ok(None);
     };
     match link.request(Request::ReadProductCal { slot })? {
-        Response::ProductCal { cal: Some(pc), .. } => {
-            let takes = fringe_firmware::device::parse_product(&pc).is_ok_and(|c| {
-                matches!(c.model, fringe_calibration::product::ProductModel::Multivariate(m) if m.uses_density())
-            });
-            Ok(Some((pc.name.to_string(), takes)))
-        }
+        Response::ProductCal { cal: Some(pc), .. } => Ok(Some((
+            pc.name.to_string(),
+            fringe_device::product::takes_density(&pc),
+        ))),
         _ => Ok(None),
     }
 }
