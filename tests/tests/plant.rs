@@ -204,6 +204,7 @@ fn sparkplug_births_readings_in_order_and_nothing_lost_across_a_broker_restart()
             group: "plant-a".into(),
             edge_node: "gw-1".into(),
         },
+        density: None,
         keep_alive: Duration::from_secs(5),
     };
     let publisher = Publisher::start(
@@ -343,6 +344,7 @@ fn a_broker_lost_mid_stream_loses_nothing_and_repeats_only_what_was_in_flight() 
                 group: "plant-a".into(),
                 edge_node: "gw-1".into(),
             },
+            density: None,
             keep_alive: Duration::from_secs(5),
         },
         &dir.path().join("outbox.db"),
@@ -802,5 +804,189 @@ fn mqtt_over_tls_with_credentials_and_a_wrong_password_loses_nothing() {
         stored.len(),
         sent.len(),
         held
+    );
+}
+
+/// Publishes one command with paho-mqtt (`tests/python/mqtt_command.py`):
+/// `kind` "sparkplug" (a DCMD with the Float metric `bulk_density_kg_m3`)
+/// or "json" (the text as it stands).
+fn mqtt_command(port: u16, topic: &str, kind: &str, value: &str, retain: bool) {
+    let mut cmd = Command::new(python());
+    cmd.arg(workspace_root().join("tests/python/mqtt_command.py"))
+        .args(["127.0.0.1", &port.to_string(), topic, kind, value]);
+    if retain {
+        cmd.arg("retain");
+    }
+    let o = cmd.output().expect("run mqtt_command.py");
+    assert!(
+        o.status.success(),
+        "mqtt_command.py {topic}: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+}
+
+/// The plant's bulk density through the gateway: a device commissioned
+/// with a calibration that takes a density, a site file feeding it from
+/// the broker (`[device.density]`), and a plant application publishing
+/// DCMDs with paho-mqtt (Tahu schema) to a real mosquitto. Its DBIRTH
+/// declares the metric; a value in g/cm3, one for a device the gateway
+/// does not feed, and one retained on the broker from before are refused, each said with what
+/// came and where from, and nothing is sent; a good one reaches the
+/// device (its readings carry moisture without `density_missing`), and is
+/// sent again when the device has lost it (here: the simulator's clock
+/// runs 10 times faster, so its hold runs out first); the status lines
+/// show it.
+#[test]
+#[ignore = "needs FRINGE_PYTHON (the venv) and mosquitto: `cargo xtask test` runs it"]
+fn the_gateway_feeds_the_plants_density_from_mqtt_to_the_device() {
+    use fringe_tests::bench::{commission_with_density, key_file};
+    use fringe_tests::servers::Mosquitto;
+    use fringe_tests::{fringe, poll_until, ScenarioSpec, Sim, DEADLINE};
+
+    const MISSING: u64 = 1 << 11; // Flags::DENSITY_MISSING
+    let seed = fringe_tests::seed(43);
+    let serial = "PLT-D-0001";
+    let sim = Sim::start(&ScenarioSpec::clean(serial, seed));
+    let key = key_file(&sim);
+    commission_with_density(&sim, &key, &sim.path("bench.db"));
+    let broker = Mosquitto::start();
+    let collector = Collector::start(broker.port, "spBv1.0/#");
+    let dir = tempfile::tempdir().expect("dir");
+    let site_file = dir.path().join("site.toml");
+    std::fs::write(
+        &site_file,
+        format!(
+            "name = \"density test\"\nstore = \"site.db\"\nstatus_every_s = 0.5\n\n\
+             [mqtt]\nbroker = \"127.0.0.1:{}\"\nclient_id = \"fringe-gw-dens\"\n\
+             group = \"plant-a\"\nnode = \"gw-1\"\n\n\
+             [[device]]\nunit = 1\nport = \"{}\"\nkey_file = \"{}\"\n\
+             [device.density]\nfrom = \"mqtt\"\nhold_s = 60\n",
+            broker.port,
+            sim.port_str(),
+            key.display()
+        ),
+    )
+    .expect("site");
+    let dcmd = format!("spBv1.0/plant-a/DCMD/gw-1/{serial}");
+    // A retained command left on the broker from before: delivered to the
+    // gateway when it subscribes, its age unknown.
+    mqtt_command(broker.port, &dcmd, "sparkplug", "731", true);
+    let err_path = dir.path().join("gw.err");
+    let out_path = dir.path().join("gw.out");
+    let mut gw = fringe(&["gateway", "--config", site_file.to_str().unwrap(), "--json"])
+        .stdout(std::fs::File::create(&out_path).expect("out"))
+        .stderr(std::fs::File::create(&err_path).expect("err"))
+        .spawn()
+        .expect("start fringe gateway");
+    let stderr = || std::fs::read_to_string(&err_path).unwrap_or_default();
+    let wait_err = |what: &str, needles: &[&str]| {
+        poll_until(
+            DEADLINE,
+            || {
+                format!(
+                    "seed {seed}: waiting for {what}; gateway stderr:\n{}",
+                    stderr()
+                )
+            },
+            || {
+                stderr()
+                    .lines()
+                    .any(|l| needles.iter().all(|n| l.contains(n)))
+            },
+        );
+    };
+    let ddata = format!("spBv1.0/plant-a/DDATA/gw-1/{serial}");
+    // Live readings with moisture: (flags, arrival index).
+    let live = |m: &[Value]| -> Vec<(u64, usize)> {
+        m.iter()
+            .enumerate()
+            .filter(|(_, m)| m["topic"] == ddata.as_str())
+            .filter(|(_, m)| m["metrics"]["moisture_pct"]["value"].is_number())
+            .filter(|(_, m)| m["metrics"]["moisture_pct"]["historical"] != true)
+            .filter_map(|(i, m)| Some((m["metrics"]["flags"]["value"].as_u64()?, i)))
+            .collect()
+    };
+    collector.wait("readings flagged density_missing", |_| {
+        live(&collector.messages())
+            .iter()
+            .any(|(f, _)| f & MISSING != 0)
+    });
+    let births = collector.messages();
+    let birth = births
+        .iter()
+        .find(|m| m["topic"] == format!("spBv1.0/plant-a/DBIRTH/gw-1/{serial}"))
+        .unwrap_or_else(|| panic!("seed {seed}: no DBIRTH"));
+    assert_eq!(
+        birth["metrics"]["bulk_density_kg_m3"]["datatype"], 9,
+        "seed {seed}: the DBIRTH declares the density metric as Float: {birth}"
+    );
+
+    // Refused: g/cm3, a device the gateway does not feed, a retained one.
+    mqtt_command(broker.port, &dcmd, "sparkplug", "1.65", false);
+    wait_err(
+        "the g/cm3 refusal",
+        &[&dcmd, "1.65", "looks like g/cm3", "nothing sent"],
+    );
+    let other = "spBv1.0/plant-a/DCMD/gw-1/PLT-X-9999";
+    mqtt_command(broker.port, other, "sparkplug", "730", false);
+    wait_err(
+        "the other device's refusal",
+        &[other, "no device PLT-X-9999"],
+    );
+    wait_err("the retained refusal", &[&dcmd, "retained", "nothing sent"]);
+    assert!(
+        !stderr().contains("kg/m3 from"),
+        "seed {seed}: {}",
+        stderr()
+    );
+    let before = collector.messages().len();
+    assert!(
+        live(&collector.messages())
+            .iter()
+            .all(|(f, _)| f & MISSING != 0),
+        "seed {seed}: a reading without density_missing before any density"
+    );
+
+    mqtt_command(broker.port, &dcmd, "sparkplug", "730", false);
+    wait_err(
+        "the density sent",
+        &["bulk density 730 kg/m3 from", &dcmd, "sent, held"],
+    );
+    collector.wait("a reading with the density", |_| {
+        live(&collector.messages())
+            .iter()
+            .any(|(f, i)| *i >= before && f & MISSING == 0)
+    });
+    // The simulator's hold (device time, 10 times faster) runs out first:
+    // its readings flag density_missing again, and the gateway sends it
+    // again for what is left of the site file's minute.
+    wait_err(
+        "the density sent again",
+        &["730 kg/m3", "sent again (the device had lost it)"],
+    );
+
+    let ok = Command::new("kill")
+        .args(["-TERM", &gw.id().to_string()])
+        .status()
+        .expect("kill");
+    assert!(ok.success());
+    let status = gw.wait().expect("wait");
+    assert_eq!(status.code(), Some(0), "seed {seed}: {}", stderr());
+    let out = std::fs::read_to_string(&out_path).expect("stdout");
+    let lines: Vec<Value> = out
+        .lines()
+        .filter_map(|l| serde_json::from_str(l).ok())
+        .collect();
+    assert!(
+        lines
+            .iter()
+            .any(|l| l["type"] == "status" && l["density_kg_m3"] == 730.0),
+        "seed {seed}: no status line shows the density: {out}"
+    );
+    assert_eq!(
+        stderr().matches("refused, nothing sent").count(),
+        3,
+        "seed {seed}: {}",
+        stderr()
     );
 }

@@ -9,6 +9,8 @@
 //!   MQTT broker as Sparkplug B (or plain JSON), QoS 1, with a
 //!   store-and-forward buffer on disk.
 //! - [`web`]: the read-only live page for the control room.
+//! - [`density`]: the plant's bulk density from the broker to the devices
+//!   that take one.
 //! - [`site`]: site files; [`run`]: the gateway itself, a line session per
 //!   device into one store ([`shared`]) feeding the outputs above;
 //!   [`lease`]: which gateway runs which device when several share a store.
@@ -18,6 +20,7 @@
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
 
+pub mod density;
 pub mod lease;
 pub mod live;
 pub mod modbus;

@@ -11,6 +11,13 @@
 //! session (after a back-off of 0.5 s doubling to 10 s) sends them first,
 //! marked historical when they were buffered before it began. A Sparkplug
 //! rebirth request (NCMD `Node Control/Rebirth`) is answered with births.
+//!
+//! With a [`DensityInbox`] (devices with `[device.density]`), each session
+//! also subscribes to the devices' commands, DCMD (or
+//! `{prefix}/+/density` in JSON), and posts each bulk density that comes
+//! to the inbox (`crate::density`); a fed device's DBIRTH declares the
+//! metric it takes. A retained message, which the broker hands over when
+//! the gateway subscribes, is refused: its age is unknown.
 
 use std::collections::{BTreeSet, HashMap, VecDeque};
 use std::path::{Path, PathBuf};
@@ -21,6 +28,7 @@ use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 use fringe_protocol::Reading;
 use rumqttc::{Client, Event, Incoming, LastWill, MqttOptions, Outgoing, QoS, RecvTimeoutError};
 
+use crate::density::{self, DensityInbox};
 use crate::outbox::{Item, Outbox, OutboxError, Row};
 use crate::sparkplug::{self, Payload};
 
@@ -61,6 +69,8 @@ pub struct MqttConfig {
     pub format: Format,
     /// MQTT keep-alive.
     pub keep_alive: Duration,
+    /// Where the bulk densities the plant sends go (none: no subscription).
+    pub density: Option<Arc<DensityInbox>>,
 }
 
 /// What the publisher has done, for status lines.
@@ -315,6 +325,9 @@ impl Worker {
             let ncmd = sparkplug::topic(group, "NCMD", edge_node, None);
             let _ = s.client.subscribe(ncmd, QoS::AtLeastOnce);
         }
+        if self.config.density.is_some() {
+            let _ = s.client.subscribe(self.density_filter(), QoS::AtLeastOnce);
+        }
         if let Err(e) = self.births(&mut s, bd_seq) {
             return End::Lost(e);
         }
@@ -353,7 +366,9 @@ impl Worker {
                     }
                 }
                 Ok(Ok(Event::Incoming(Incoming::Publish(p)))) => {
-                    if self.is_rebirth(&p.payload) {
+                    if let Some(serial) = self.density_device(&p.topic) {
+                        self.on_density(&serial, &p);
+                    } else if self.is_rebirth(&p.payload) {
                         if let Err(e) = self.births(&mut s, bd_seq) {
                             return End::Lost(e);
                         }
@@ -364,6 +379,36 @@ impl Worker {
                 Err(RecvTimeoutError::Disconnected) => return End::Lost("client closed".into()),
             }
         }
+    }
+
+    /// The topic filter of the devices' density commands.
+    fn density_filter(&self) -> String {
+        density_filter(&self.config.format)
+    }
+
+    /// The device a density command on `topic` is for.
+    fn density_device(&self, topic: &str) -> Option<String> {
+        self.config.density.as_ref()?;
+        density_device(&self.config.format, topic)
+    }
+
+    fn on_density(&self, serial: &str, p: &rumqttc::Publish) {
+        let Some(inbox) = &self.config.density else {
+            return;
+        };
+        let value = if p.retain {
+            Err("a retained message (its age is unknown); publish it not retained".to_string())
+        } else {
+            match &self.config.format {
+                Format::Sparkplug { .. } => match density::from_sparkplug(&p.payload) {
+                    Some(v) => v,
+                    // A command of another metric: not Fringe's.
+                    None => return,
+                },
+                Format::Json { .. } => density::from_json(&p.payload),
+            }
+        };
+        let _ = inbox.post(serial, value, &p.topic, Instant::now());
     }
 
     fn is_rebirth(&self, payload: &[u8]) -> bool {
@@ -402,7 +447,15 @@ impl Worker {
         device: &str,
     ) -> Result<(), String> {
         let seq = s.next_seq();
-        let p = sparkplug::empty_device_birth(seq, now_ms());
+        let mut p = sparkplug::empty_device_birth(seq, now_ms());
+        if self
+            .config
+            .density
+            .as_ref()
+            .is_some_and(|i| i.is_fed(device))
+        {
+            p.metrics.push(sparkplug::density_metric(now_ms()));
+        }
         s.publish(
             sparkplug::topic(group, "DBIRTH", node, Some(device)),
             p.to_bytes(),
@@ -560,6 +613,29 @@ impl Session {
     }
 }
 
+/// The topic filter of the devices' density commands in `format`:
+/// `spBv1.0/{group}/DCMD/{node}/+`, or `{prefix}/+/density`.
+pub fn density_filter(format: &Format) -> String {
+    match format {
+        Format::Sparkplug { group, edge_node } => {
+            sparkplug::topic(group, "DCMD", edge_node, Some("+"))
+        }
+        Format::Json { prefix } => format!("{prefix}/+/density"),
+    }
+}
+
+/// The device (serial) a density command on `topic` is for, if the topic
+/// is one of [`density_filter`]'s.
+pub fn density_device(format: &Format, topic: &str) -> Option<String> {
+    let filter = density_filter(format);
+    let (head, tail) = filter.split_once('+')?;
+    topic
+        .strip_prefix(head)?
+        .strip_suffix(tail)
+        .filter(|d| !d.is_empty() && !d.contains('/'))
+        .map(str::to_string)
+}
+
 /// Where the buffer file of a gateway's publisher lives beside its store.
 pub fn outbox_path_beside(store: &Path) -> PathBuf {
     let mut name = store
@@ -655,6 +731,40 @@ pub fn reading_from_body(text: &str) -> Result<Reading, serde_json::Error> {
 mod body_tests {
     use super::*;
     use fringe_protocol::{CalId, ChannelValue, Flags, Seq};
+
+    #[test]
+    fn density_commands_are_told_apart_by_their_topic() {
+        let sp = Format::Sparkplug {
+            group: "plant-a".into(),
+            edge_node: "gw-1".into(),
+        };
+        let js = Format::Json {
+            prefix: "fringe".into(),
+        };
+        assert_eq!(density_filter(&sp), "spBv1.0/plant-a/DCMD/gw-1/+");
+        assert_eq!(density_filter(&js), "fringe/+/density");
+        let dev = |f: &Format, t: &str| density_device(f, t);
+        assert_eq!(
+            dev(&sp, "spBv1.0/plant-a/DCMD/gw-1/HGM-1").as_deref(),
+            Some("HGM-1")
+        );
+        assert_eq!(dev(&js, "fringe/HGM-1/density").as_deref(), Some("HGM-1"));
+        for t in [
+            "spBv1.0/plant-a/NCMD/gw-1",
+            "spBv1.0/plant-a/DCMD/gw-2/HGM-1",
+            "spBv1.0/plant-a/DCMD/gw-1/",
+            "spBv1.0/plant-a/DCMD/gw-1/a/b",
+        ] {
+            assert_eq!(dev(&sp, t), None, "{t}");
+        }
+        for t in [
+            "fringe/HGM-1/reading",
+            "fringe//density",
+            "other/HGM-1/density",
+        ] {
+            assert_eq!(dev(&js, t), None, "{t}");
+        }
+    }
 
     /// Regression: a reading with a float that is not a number (an
     /// uncalibrated device's permittivity, a failed temperature sensor's

@@ -37,9 +37,11 @@ use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 use fringe_line::{ClockCheck, Ctx, LineError, Note, Session, SessionOptions, Summary};
 use fringe_link::{Link, LinkOptions, Opener};
 use fringe_protocol::auth::Key;
+use fringe_protocol::Flags;
 use fringe_quality::watch::DriftWatch;
 use fringe_store::{RecordLog, RecordStore};
 
+use crate::density::DensityInbox;
 use crate::lease::{LeaseRefused, Leases};
 use crate::live::{AlarmNote, LiveTable};
 use crate::modbus::ModbusServer;
@@ -50,6 +52,22 @@ use crate::web::WebServer;
 
 /// Wait before a device whose session failed is tried again.
 pub const RETRY_AFTER: Duration = Duration::from_secs(5);
+
+/// Wait before a density is sent again after a try (the link failed, or
+/// the device's readings show it has lost the density).
+pub const DENSITY_RETRY: Duration = Duration::from_secs(5);
+
+/// A device's density feed during one session.
+struct Feeder {
+    inbox: Arc<DensityInbox>,
+    hold: Duration,
+    key: Key,
+    /// The order last sent (or given up), by its number.
+    sent: u64,
+    last_try: Option<Instant>,
+    /// The latest reading at the last try: only a later one shows a loss.
+    latest_at_try: Option<fringe_protocol::Seq>,
+}
 
 /// One device to run: its place in the site file, how to open its port
 /// (again on every retry), and its key.
@@ -62,6 +80,9 @@ pub struct DeviceRun {
     pub key: Option<Key>,
     /// Link options (answer timeout, handshakes, reconnect backoff).
     pub link: LinkOptions,
+    /// Where its bulk densities come from, when its site entry has
+    /// `[device.density]` (the hold is the site file's).
+    pub density: Option<Arc<DensityInbox>>,
 }
 
 impl std::fmt::Debug for DeviceRun {
@@ -123,6 +144,9 @@ pub struct DeviceStatus {
     pub line: Summary,
     /// Drift alarm episodes raised during this run.
     pub drift_alarms: u64,
+    /// The plant's bulk density last sent to it and acknowledged, kg/m3
+    /// (`[device.density]`).
+    pub density_kg_m3: Option<f32>,
     /// The last error, in words.
     pub error: Option<String>,
 }
@@ -370,6 +394,7 @@ impl Gateway {
                         alarms: Vec::new(),
                         line: Summary::default(),
                         drift_alarms: 0,
+                        density_kg_m3: None,
                         error: None,
                     })
                 })
@@ -695,6 +720,20 @@ impl<S: RecordStore> Worker<S> {
         *serial_out = Some(serial.clone());
         self.table.register(unit, &serial);
         self.update(|s| s.serial = Some(serial.clone()));
+        let mut feeder = match (&self.run.density, self.run.spec.density, self.run.key) {
+            (Some(inbox), Some(feed), Some(key)) => {
+                inbox.feed(&serial, unit);
+                Some(Feeder {
+                    inbox: Arc::clone(inbox),
+                    hold: feed.hold,
+                    key,
+                    sent: 0,
+                    last_try: None,
+                    latest_at_try: None,
+                })
+            }
+            _ => None,
+        };
         let result = (|| -> Result<(), Ended> {
             session.catch_up(&mut store, &mut ctx)?;
             self.drift(drift, &serial, true);
@@ -719,6 +758,9 @@ impl<S: RecordStore> Worker<S> {
                 if polled.committed.is_some() {
                     self.drift(drift, &serial, false);
                 }
+                if let Some(f) = feeder.as_mut() {
+                    self.feed_density(f, &mut session, &serial);
+                }
             }
             Ok(())
         })();
@@ -728,6 +770,95 @@ impl<S: RecordStore> Worker<S> {
         self.update(|s| s.line = t);
         result?;
         Ok(flushed?)
+    }
+
+    /// Sends the plant's latest bulk density when a new one has come, or
+    /// again when the device's readings show it has lost it (a reboot, a
+    /// reconnect, another product), for what is left of its hold. Never
+    /// fatal: a density that cannot be sent is said (and tried again after
+    /// [`DENSITY_RETRY`] when the link failed).
+    fn feed_density(&self, f: &mut Feeder, session: &mut Session, serial: &str) {
+        let Some(order) = f.inbox.latest(serial) else {
+            return;
+        };
+        let now = Instant::now();
+        let fresh = order.seq != f.sent;
+        let lost = !fresh
+            && session.latest().is_some_and(|r| {
+                r.flags.contains(Flags::DENSITY_MISSING) && Some(r.seq) != f.latest_at_try
+            });
+        let waited = f
+            .last_try
+            .is_none_or(|t| now.saturating_duration_since(t) >= DENSITY_RETRY);
+        if !(fresh || lost) || (lost && !waited) {
+            return;
+        }
+        let left = f
+            .hold
+            .saturating_sub(now.saturating_duration_since(order.received));
+        let hold_ms = u32::try_from(left.as_millis()).unwrap_or(u32::MAX);
+        if hold_ms < fringe_protocol::DENSITY_HOLD_MIN_MS {
+            if fresh {
+                f.sent = order.seq;
+                self.say(
+                    Some(serial),
+                    Level::Error,
+                    format!(
+                        "density {} kg/m3 from {} not sent: its hold of {:.0} s ran out before the device could take it",
+                        order.kg_m3,
+                        order.source,
+                        f.hold.as_secs_f64()
+                    ),
+                );
+            }
+            return;
+        }
+        f.last_try = Some(now);
+        f.latest_at_try = session.latest().map(|r| r.seq);
+        match session.set_density(&f.key, order.kg_m3, hold_ms) {
+            Ok(()) => {
+                f.sent = order.seq;
+                self.update(|s| s.density_kg_m3 = Some(order.kg_m3));
+                self.say(
+                    Some(serial),
+                    Level::Info,
+                    format!(
+                        "bulk density {} kg/m3 from {} {}, held {:.0} s",
+                        order.kg_m3,
+                        order.source,
+                        if fresh {
+                            "sent"
+                        } else {
+                            "sent again (the device had lost it)"
+                        },
+                        f64::from(hold_ms) / 1000.0
+                    ),
+                );
+            }
+            Err(fringe_line::DensityError::Link(e)) if e.is_transient() => {
+                self.say(
+                    Some(serial),
+                    Level::Error,
+                    format!(
+                        "density {} kg/m3 from {} not sent ({e}); tried again",
+                        order.kg_m3, order.source
+                    ),
+                );
+            }
+            Err(e) => {
+                // The device refused it (or cannot take one): not repeated.
+                f.sent = order.seq;
+                self.update(|s| s.density_kg_m3 = None);
+                self.say(
+                    Some(serial),
+                    Level::Error,
+                    format!(
+                        "density {} kg/m3 from {} not taken: {e}",
+                        order.kg_m3, order.source
+                    ),
+                );
+            }
+        }
     }
 
     /// The live drift check (never fatal: the readings are stored anyway).

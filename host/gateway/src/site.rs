@@ -41,7 +41,16 @@
 //! tag = "pellet cooler outlet"        # optional, for people
 //! [device.alarm]                      # optional: this device's own limits instead of [alarm]
 //! moisture_high_pct = 13.0
+//! [device.density]                    # optional: the plant's bulk density fed to the device
+//! from = "mqtt"                       # from the broker of [mqtt] (the only source so far)
+//! hold_s = 60                         # each value holds this long after it arrives, 1..=3600 [60]
 //! ```
+//!
+//! A device with `[device.density]` needs `key_file` (a density is a
+//! signed write) and the site needs `[mqtt]`: the gateway takes each
+//! device's density from the Sparkplug DCMD metric `bulk_density_kg_m3`
+//! (or, with `json = true`, from `{json_prefix}/{serial}/density`) and
+//! sends it to the device (`crate::density`).
 //!
 //! Every error names the file, the line and the field.
 
@@ -174,7 +183,36 @@ struct RawDevice {
     tag: Option<String>,
     #[serde(default)]
     alarm: Option<Spanned<AlarmLimits>>,
+    #[serde(default)]
+    density: Option<Spanned<RawDensity>>,
 }
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawDensity {
+    from: Spanned<String>,
+    #[serde(default)]
+    hold_s: Option<Spanned<f64>>,
+}
+
+/// Where a device's bulk density comes from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum DensitySource {
+    /// The broker of the site's `[mqtt]`: Sparkplug DCMD, or a JSON topic.
+    Mqtt,
+}
+
+/// A device fed the plant's bulk density (`[device.density]`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct DensityFeed {
+    /// Where the values come from.
+    pub from: DensitySource,
+    /// How long each value holds after it arrives.
+    pub hold: Duration,
+}
+
+/// The hold of a density when the site file gives none.
+pub const DEFAULT_DENSITY_HOLD: Duration = Duration::from_secs(60);
 
 /// Where a device is.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -210,6 +248,8 @@ pub struct DeviceSpec {
     pub line: usize,
     /// Its alarm limits: its own `[device.alarm]`, else the site's `[alarm]`.
     pub alarm: AlarmLimits,
+    /// The plant's bulk density fed to it (`[device.density]`).
+    pub density: Option<DensityFeed>,
 }
 
 /// MQTT settings.
@@ -638,6 +678,56 @@ impl Site {
                     &format!("already the port of device[{other}]; one device per port"),
                 ));
             }
+            let density = match &d.density {
+                None => None,
+                Some(spec) => {
+                    let field = |k: &str| format!("device[{i}].density.{k}");
+                    let r = spec.get_ref();
+                    let from = match r.from.get_ref().as_str() {
+                        "mqtt" => DensitySource::Mqtt,
+                        other => {
+                            return Err(bad(
+                                r.from.span(),
+                                &field("from"),
+                                format!("{other:?}"),
+                                "\"mqtt\" (the broker of [mqtt]; the only source so far)",
+                            ))
+                        }
+                    };
+                    if mqtt.is_none() {
+                        return Err(bad(
+                            r.from.span(),
+                            &field("from"),
+                            "\"mqtt\"".into(),
+                            "needs the site's [mqtt] broker",
+                        ));
+                    }
+                    if d.key_file.is_none() && matches!(port, DevicePort::Serial { .. }) {
+                        return Err(bad(
+                            spec.span(),
+                            &format!("device[{i}].key_file"),
+                            "(missing)".into(),
+                            "[device.density] needs the device key: a density is a signed write",
+                        ));
+                    }
+                    let hold = match &r.hold_s {
+                        None => DEFAULT_DENSITY_HOLD,
+                        Some(h) => {
+                            let x = *h.get_ref();
+                            if !(x.is_finite() && (1.0..=3600.0).contains(&x)) {
+                                return Err(bad(
+                                    h.span(),
+                                    &field("hold_s"),
+                                    x.to_string(),
+                                    "seconds, 1 to 3600 (the device holds a density at most an hour)",
+                                ));
+                            }
+                            Duration::from_secs_f64(x)
+                        }
+                    };
+                    Some(DensityFeed { from, hold })
+                }
+            };
             devices.push(DeviceSpec {
                 unit,
                 port,
@@ -652,6 +742,7 @@ impl Site {
                     }
                     None => site_alarm,
                 },
+                density,
             });
         }
         Ok(Site {
@@ -763,6 +854,60 @@ baud = 9600
             .unwrap_err()
             .to_string();
         assert!(e.contains(":9: device[0].port"), "{e}");
+    }
+
+    #[test]
+    fn a_density_feed_needs_the_broker_and_the_key_and_a_hold_in_range() {
+        let mqtt = "[mqtt]\nbroker = \"127.0.0.1:1883\"\nclient_id = \"gw\"\n\n";
+        let with = |extra: &str, density: &str| {
+            GOOD.replace(
+                "[[device]]\nunit = 1",
+                &format!("{extra}[[device]]\nunit = 1"),
+            )
+            .replace("baud = 9600\n", &format!("baud = 9600\n{density}"))
+        };
+        let keyed = "key_file = \"u2.key\"\n[device.density]\nfrom = \"mqtt\"\n";
+        let s = parse(&with(mqtt, keyed)).unwrap();
+        assert_eq!(s.devices[0].density, None);
+        assert_eq!(
+            s.devices[1].density,
+            Some(DensityFeed {
+                from: DensitySource::Mqtt,
+                hold: DEFAULT_DENSITY_HOLD
+            })
+        );
+        let s = parse(&with(mqtt, &format!("{keyed}hold_s = 600\n"))).unwrap();
+        assert_eq!(s.devices[1].density.unwrap().hold, Duration::from_secs(600));
+        for (extra, density, needle) in [
+            (
+                "",
+                keyed,
+                "device[1].density.from = \"mqtt\": needs the site's [mqtt]",
+            ),
+            (
+                mqtt,
+                "[device.density]\nfrom = \"mqtt\"\n",
+                "device[1].key_file = (missing)",
+            ),
+            (
+                mqtt,
+                &format!("{keyed}hold_s = 7200\n"),
+                "device[1].density.hold_s = 7200: seconds, 1 to 3600",
+            ),
+            (mqtt, &format!("{keyed}hold_s = 0.5\n"), "hold_s = 0.5"),
+            (
+                mqtt,
+                &keyed.replace("\"mqtt\"", "\"modbus\""),
+                "device[1].density.from = \"modbus\"",
+            ),
+            (mqtt, &format!("{keyed}every_s = 5\n"), "every_s"),
+        ] {
+            let e = parse(&with(extra, density)).unwrap_err().to_string();
+            assert!(
+                e.contains(needle) && e.starts_with("/plant/site.toml:"),
+                "{needle}: {e}"
+            );
+        }
     }
 
     #[test]

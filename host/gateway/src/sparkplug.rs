@@ -277,6 +277,12 @@ pub fn empty_device_birth(seq: u8, now_ms: u64) -> Payload {
     }
 }
 
+/// The bulk density a fed device takes by DCMD, declared (null) in its
+/// DBIRTH ([`crate::density::BULK_DENSITY`]).
+pub fn density_metric(now_ms: u64) -> Metric {
+    m(crate::density::BULK_DENSITY, datatype::FLOAT, now_ms, None)
+}
+
 /// A DDATA of one reading.
 pub fn device_data(r: &Reading, time_ms: u64, historical: bool, seq: u8, now_ms: u64) -> Payload {
     Payload {

@@ -534,6 +534,22 @@ impl Session {
         }
     }
 
+    /// Sends the plant's bulk density to the device between readings of
+    /// the stream ([`crate::set_density`]; the readings that arrive
+    /// meanwhile are kept for the next [`Session::poll`]).
+    ///
+    /// # Errors
+    /// As [`crate::set_density`]; a link that failed is found and cured by
+    /// the next [`Session::poll`].
+    pub fn set_density(
+        &mut self,
+        key: &Key,
+        kg_m3: f32,
+        hold_ms: u32,
+    ) -> Result<(), crate::DensityError> {
+        crate::density::set_density(&mut self.link, key, kg_m3, hold_ms)
+    }
+
     /// Ends the session: commits what arrived (whatever happened before)
     /// and unsubscribes if the device is still there.
     ///

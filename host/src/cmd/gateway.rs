@@ -11,6 +11,7 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use anyhow::Context as _;
+use fringe_gateway::density::DensityInbox;
 use fringe_gateway::lease::{LeaseRefused, Leases};
 use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
 use fringe_gateway::run::{DeviceRun, DeviceState, DeviceStatus, Gateway, Level, Notice};
@@ -46,6 +47,23 @@ pub fn gateway(
         handshakes: super::HANDSHAKES,
         ..LinkOptions::default()
     };
+    let style = Style::detect();
+    let view = Arc::new(Mutex::new(View {
+        style,
+        json: args.json,
+        drawn: 0,
+        pending: Vec::new(),
+    }));
+    let v = Arc::clone(&view);
+    let tell: Arc<dyn Fn(Notice) + Send + Sync> = Arc::new(move |n: Notice| {
+        v.lock().unwrap_or_else(|e| e.into_inner()).notice(n);
+    });
+    // The plant's densities, from the broker to the devices that take them.
+    let density = site
+        .devices
+        .iter()
+        .any(|d| d.density.is_some())
+        .then(|| Arc::new(DensityInbox::new(Arc::clone(&tell))));
     let mut runs = Vec::new();
     let started_ms = crate::store::now_unix_ms().max(0) as u64;
     for d in &site.devices {
@@ -94,11 +112,21 @@ pub fn gateway(
                 )
             }
         };
+        if d.density.is_some() && key.is_none() {
+            return Err(UsageError(format!(
+                "{}:{}: unit {} has [device.density] but no key_file (a density is a signed write)",
+                site.path.display(),
+                d.line,
+                d.unit
+            ))
+            .into());
+        }
         runs.push(DeviceRun {
             spec: d.clone(),
             open,
             key,
             link,
+            density: d.density.and(density.clone()),
         });
     }
     let url = site.store_is_url();
@@ -113,20 +141,9 @@ pub fn gateway(
     // when the store is a database server.
     let outbox_beside = if url { &site.path } else { &site.store };
     let publisher = match &site.mqtt {
-        Some(m) => Some(start_mqtt(m, outbox_beside)?),
+        Some(m) => Some(start_mqtt(m, outbox_beside, density.clone())?),
         None => None,
     };
-    let style = Style::detect();
-    let view = Arc::new(Mutex::new(View {
-        style,
-        json: args.json,
-        drawn: 0,
-        pending: Vec::new(),
-    }));
-    let v = Arc::clone(&view);
-    let tell: Arc<dyn Fn(Notice) + Send + Sync> = Arc::new(move |n: Notice| {
-        v.lock().unwrap_or_else(|e| e.into_inner()).notice(n);
-    });
     let gw = match db.to_str().filter(|_| url) {
         Some(u) => {
             let owner = site.gateway.clone().unwrap_or_default();
@@ -354,7 +371,11 @@ impl Leases for PgLeases {
     }
 }
 
-fn start_mqtt(m: &fringe_gateway::site::MqttSite, store: &Path) -> anyhow::Result<Publisher> {
+fn start_mqtt(
+    m: &fringe_gateway::site::MqttSite,
+    store: &Path,
+    density: Option<Arc<DensityInbox>>,
+) -> anyhow::Result<Publisher> {
     let tls_ca_pem = match &m.tls_ca {
         Some(p) => Some(
             std::fs::read(p)
@@ -387,6 +408,7 @@ fn start_mqtt(m: &fringe_gateway::site::MqttSite, store: &Path) -> anyhow::Resul
         tls_ca_pem,
         format,
         keep_alive: Duration::from_secs(30),
+        density,
     };
     let outbox = fringe_gateway::mqtt::outbox_path_beside(store);
     Ok(Publisher::start(config, &outbox, Vec::new())?)
@@ -415,7 +437,7 @@ fn state_word(s: DeviceState) -> &'static str {
 /// One device as a plain line (`key=value`, for logs and grep).
 fn plain(d: &DeviceStatus) -> String {
     format!(
-        "unit={} serial={} state={} seq={} moisture_pct={} uncertainty_pct={} temperature_c={} flags={} alarms={} streamed={} backfilled={} stored={} lost={} reconnects={} drift_alarms={}",
+        "unit={} serial={} state={} seq={} moisture_pct={} uncertainty_pct={} temperature_c={} flags={} alarms={} streamed={} backfilled={} stored={} lost={} reconnects={} drift_alarms={} density_kg_m3={}",
         d.unit,
         d.serial.as_deref().unwrap_or("-"),
         state_word(d.state),
@@ -431,6 +453,7 @@ fn plain(d: &DeviceStatus) -> String {
         d.line.lost,
         d.line.reconnects,
         d.drift_alarms,
+        d.density_kg_m3.map_or("none".into(), |k| format!("{k}")),
     )
 }
 

@@ -1,0 +1,334 @@
+//! The plant's bulk density, from the plant's MQTT broker to the devices
+//! whose site entry has `[device.density]` (protocol 1.4's signed
+//! `SetDensity`).
+//!
+//! The MQTT worker takes each value from the broker (a Sparkplug DCMD
+//! metric [`BULK_DENSITY`], or a JSON message on
+//! `{json_prefix}/{serial}/density`), checks it and posts it here with the
+//! time it arrived; the device's line session sends it between readings,
+//! to hold for the site file's `hold_s` counted from its arrival. A device
+//! that has lost it (a reboot, a reconnect, another product selected: its
+//! readings flag `density_missing` again) gets it again for what is left
+//! of the hold. A value that is refused is said, with what came and where
+//! from, and nothing is sent.
+//!
+//! A density changes the moisture a device reports, which a control loop
+//! may use: only the plant's own density measurement should write here
+//! (a broker ACL, see `docs/GATEWAY.md`).
+
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex};
+use std::time::Instant;
+
+use fringe_protocol::DENSITY_RANGE_KG_M3;
+
+use crate::run::{Level, Notice};
+use crate::sparkplug::{Payload, Value};
+
+/// The Sparkplug DCMD metric (and JSON key) of a bulk density, kg/m3.
+pub const BULK_DENSITY: &str = "bulk_density_kg_m3";
+
+/// A density the plant sent for one device.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Order {
+    /// Its number among all orders of this run (rises).
+    pub seq: u64,
+    /// Bulk density, kg/m3.
+    pub kg_m3: f32,
+    /// When it arrived.
+    pub received: Instant,
+    /// Where it came from (the topic).
+    pub source: String,
+}
+
+#[derive(Default)]
+struct State {
+    next: u64,
+    /// Serial -> unit of the devices fed from here (known once they answer).
+    fed: HashMap<String, u8>,
+    orders: HashMap<String, Order>,
+}
+
+/// The densities waiting for the devices, shared by the MQTT worker (which
+/// posts) and the line sessions (which send).
+pub struct DensityInbox {
+    state: Mutex<State>,
+    tell: Arc<dyn Fn(Notice) + Send + Sync>,
+}
+
+impl std::fmt::Debug for DensityInbox {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        let s = self.lock();
+        f.debug_struct("DensityInbox")
+            .field("fed", &s.fed)
+            .field("orders", &s.orders)
+            .finish_non_exhaustive()
+    }
+}
+
+impl DensityInbox {
+    /// An empty inbox; refusals are told to `tell`.
+    pub fn new(tell: Arc<dyn Fn(Notice) + Send + Sync>) -> Self {
+        Self {
+            state: Mutex::new(State::default()),
+            tell,
+        }
+    }
+
+    fn lock(&self) -> std::sync::MutexGuard<'_, State> {
+        self.state.lock().unwrap_or_else(|e| e.into_inner())
+    }
+
+    /// The device of `unit` answered as `serial` and takes densities from here.
+    pub fn feed(&self, serial: &str, unit: u8) {
+        self.lock().fed.insert(serial.to_string(), unit);
+    }
+
+    /// Whether the device `serial` takes densities from here.
+    pub fn is_fed(&self, serial: &str) -> bool {
+        self.lock().fed.contains_key(serial)
+    }
+
+    /// The latest density for `serial`.
+    pub fn latest(&self, serial: &str) -> Option<Order> {
+        self.lock().orders.get(serial).cloned()
+    }
+
+    /// A value that arrived at `received` from `source` for `serial`:
+    /// kept for the device when it is a bulk density it can take; said and
+    /// dropped otherwise.
+    ///
+    /// # Errors
+    /// What is wrong with it, in words (also told).
+    pub fn post(
+        &self,
+        serial: &str,
+        value: Result<f64, String>,
+        source: &str,
+        received: Instant,
+    ) -> Result<u64, String> {
+        let mut s = self.lock();
+        let unit = s.fed.get(serial).copied();
+        let checked = value.and_then(|v| {
+            if unit.is_none() {
+                Err(format!(
+                    "no device {serial} of this gateway takes a density (it has no \
+                     [device.density] in the site file, or has not answered yet)"
+                ))
+            } else {
+                check_kg_m3(v)
+            }
+        });
+        match checked {
+            Ok(kg_m3) => {
+                s.next += 1;
+                let seq = s.next;
+                s.orders.insert(
+                    serial.to_string(),
+                    Order {
+                        seq,
+                        kg_m3,
+                        received,
+                        source: source.to_string(),
+                    },
+                );
+                Ok(seq)
+            }
+            Err(why) => {
+                drop(s);
+                (self.tell)(Notice {
+                    unit: unit.unwrap_or(0),
+                    serial: Some(serial.to_string()),
+                    level: Level::Error,
+                    text: format!("density from {source} refused, nothing sent: {why}"),
+                });
+                Err(why)
+            }
+        }
+    }
+}
+
+/// `v` as a bulk density the device takes, kg/m3 (its range, protocol 1.4).
+///
+/// # Errors
+/// A value outside it, in words (a value in g/cm3 is named as such).
+pub fn check_kg_m3(v: f64) -> Result<f32, String> {
+    let (lo, hi) = DENSITY_RANGE_KG_M3;
+    if !v.is_finite() {
+        return Err(format!("{v} is not a number"));
+    }
+    if v > 0.0 && v < f64::from(lo) {
+        return Err(format!(
+            "{v} kg/m3 is below {lo}: it looks like g/cm3 (send kg/m3, 1.65 g/cm3 = 1650 kg/m3)"
+        ));
+    }
+    if !(f64::from(lo)..=f64::from(hi)).contains(&v) {
+        return Err(format!("{v} kg/m3 is outside {lo}..={hi} kg/m3"));
+    }
+    Ok(v as f32)
+}
+
+/// The density of a Sparkplug DCMD payload: its [`BULK_DENSITY`] metric
+/// (float, double or integer). `None`: the payload has no such metric.
+pub fn from_sparkplug(payload: &[u8]) -> Option<Result<f64, String>> {
+    let p = match <Payload as prost::Message>::decode(payload) {
+        Ok(p) => p,
+        Err(e) => return Some(Err(format!("not a Sparkplug B payload ({e})"))),
+    };
+    let m = p
+        .metrics
+        .iter()
+        .find(|m| m.name.as_deref() == Some(BULK_DENSITY))?;
+    Some(match &m.value {
+        // Its shortest decimal form (1.65, not 1.649999976...).
+        Some(Value::FloatValue(v)) => Ok(v.to_string().parse().unwrap_or(f64::from(*v))),
+        Some(Value::DoubleValue(v)) => Ok(*v),
+        Some(Value::IntValue(v)) => Ok(f64::from(*v)),
+        Some(Value::LongValue(v)) => Ok(*v as f64),
+        None => Err(format!("metric {BULK_DENSITY} has no value")),
+        Some(other) => Err(format!(
+            "metric {BULK_DENSITY} is {other:?}, not a number (Float or Double)"
+        )),
+    })
+}
+
+/// The density of a JSON message: `{"bulk_density_kg_m3": 1650}`.
+///
+/// # Errors
+/// Another shape, in words.
+pub fn from_json(payload: &[u8]) -> Result<f64, String> {
+    let shape = format!("expected {{\"{BULK_DENSITY}\": NUMBER}}");
+    let v: serde_json::Value = serde_json::from_slice(payload).map_err(|e| {
+        format!(
+            "not JSON ({e}): {}; {shape}",
+            String::from_utf8_lossy(&payload[..payload.len().min(60)])
+        )
+    })?;
+    v.get(BULK_DENSITY)
+        .and_then(serde_json::Value::as_f64)
+        .ok_or_else(|| {
+            let mut s = v.to_string();
+            s.truncate(60);
+            format!("{s}: {shape}")
+        })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::sparkplug::Metric;
+
+    fn inbox() -> (DensityInbox, Arc<Mutex<Vec<Notice>>>) {
+        let told = Arc::new(Mutex::new(Vec::new()));
+        let t = Arc::clone(&told);
+        (
+            DensityInbox::new(Arc::new(move |n| t.lock().unwrap().push(n))),
+            told,
+        )
+    }
+
+    #[test]
+    fn a_density_for_a_fed_device_is_kept_and_the_latest_wins() {
+        let (inbox, told) = inbox();
+        inbox.feed("HGM-1", 3);
+        let t = Instant::now();
+        let a = inbox.post("HGM-1", Ok(730.0), "topic/a", t).unwrap();
+        let b = inbox.post("HGM-1", Ok(745.5), "topic/b", t).unwrap();
+        assert!(b > a);
+        let o = inbox.latest("HGM-1").unwrap();
+        assert_eq!((o.seq, o.kg_m3, o.source.as_str()), (b, 745.5, "topic/b"));
+        assert!(told.lock().unwrap().is_empty());
+    }
+
+    #[test]
+    fn refusals_name_the_value_and_the_source_and_keep_the_last_good_one() {
+        let (inbox, told) = inbox();
+        inbox.feed("HGM-1", 3);
+        let t = Instant::now();
+        inbox.post("HGM-1", Ok(730.0), "good", t).unwrap();
+        for (v, needle) in [
+            (1.65, "looks like g/cm3"),
+            (0.0, "outside 10..=5000"),
+            (-700.0, "outside"),
+            (6000.0, "outside"),
+            (f64::NAN, "not a number"),
+            (f64::INFINITY, "not a number"),
+        ] {
+            let e = inbox.post("HGM-1", Ok(v), "spBv1.0/g/DCMD/n/HGM-1", t);
+            assert!(e.as_ref().is_err_and(|e| e.contains(needle)), "{v}: {e:?}");
+        }
+        let e = inbox.post("OTHER-2", Ok(730.0), "x/OTHER-2/density", t);
+        assert!(e.is_err_and(|e| e.contains("no device OTHER-2")));
+        assert_eq!(inbox.latest("HGM-1").unwrap().kg_m3, 730.0);
+        assert!(inbox.latest("OTHER-2").is_none());
+        let told = told.lock().unwrap();
+        assert_eq!(told.len(), 7);
+        assert_eq!(told[0].unit, 3);
+        assert_eq!(told[6].unit, 0);
+        assert!(told[0].text.contains("spBv1.0/g/DCMD/n/HGM-1") && told[0].text.contains("1.65"));
+        assert!(told.iter().all(|n| n.text.contains("nothing sent")));
+    }
+
+    fn dcmd(name: &str, value: Option<Value>) -> Vec<u8> {
+        Payload {
+            timestamp: Some(1),
+            metrics: vec![Metric {
+                name: Some(name.into()),
+                value,
+                ..Metric::default()
+            }],
+            seq: Some(0),
+        }
+        .to_bytes()
+    }
+
+    #[test]
+    fn a_dcmd_gives_its_density_metric_in_any_numeric_type() {
+        for v in [
+            Value::FloatValue(730.0),
+            Value::DoubleValue(730.0),
+            Value::IntValue(730),
+            Value::LongValue(730),
+        ] {
+            assert_eq!(
+                from_sparkplug(&dcmd(BULK_DENSITY, Some(v))),
+                Some(Ok(730.0))
+            );
+        }
+        // A Float is taken at its shortest decimal form.
+        assert_eq!(
+            from_sparkplug(&dcmd(BULK_DENSITY, Some(Value::FloatValue(1.65)))),
+            Some(Ok(1.65))
+        );
+        assert!(from_sparkplug(&dcmd(
+            "Node Control/Rebirth",
+            Some(Value::BooleanValue(true))
+        ))
+        .is_none());
+        let text = dcmd(BULK_DENSITY, Some(Value::StringValue("730".into())));
+        assert!(from_sparkplug(&text).is_some_and(|r| r.is_err_and(|e| e.contains("not a number"))));
+        assert!(from_sparkplug(&dcmd(BULK_DENSITY, None)).is_some_and(|r| r.is_err()));
+        assert!(from_sparkplug(&[0xff, 0xff, 0xff]).is_some_and(|r| r.is_err()));
+    }
+
+    #[test]
+    fn a_json_message_gives_its_density_or_says_the_shape_expected() {
+        assert_eq!(from_json(br#"{"bulk_density_kg_m3": 1650}"#), Ok(1650.0));
+        assert_eq!(
+            from_json(br#"{"bulk_density_kg_m3": 742.5, "by": "belt 3"}"#),
+            Ok(742.5)
+        );
+        for bad in [
+            &b"1650"[..],
+            br#"{"kg_m3": 1650}"#,
+            b"dense",
+            br#"{"bulk_density_kg_m3": "1650"}"#,
+        ] {
+            let e = from_json(bad).unwrap_err();
+            assert!(
+                e.contains("expected {\"bulk_density_kg_m3\": NUMBER}"),
+                "{e}"
+            );
+        }
+    }
+}
