@@ -834,8 +834,9 @@ fn mqtt_command(port: u16, topic: &str, kind: &str, value: &str, retain: bool) {
 /// came and where from, and nothing is sent; a good one reaches the
 /// device (its readings carry moisture without `density_missing`), and is
 /// sent again when the device has lost it (here: the simulator's clock
-/// runs 10 times faster, so its hold runs out first); the status lines
-/// show it.
+/// runs 10 times faster, so its hold runs out first) for what is left of
+/// its hold; the status lines show it. Then the same over plain JSON
+/// topics.
 #[test]
 #[ignore = "needs FRINGE_PYTHON (the venv) and mosquitto: `cargo xtask test` runs it"]
 fn the_gateway_feeds_the_plants_density_from_mqtt_to_the_device() {
@@ -873,7 +874,7 @@ fn the_gateway_feeds_the_plants_density_from_mqtt_to_the_device() {
     mqtt_command(broker.port, &dcmd, "sparkplug", "731", true);
     let err_path = dir.path().join("gw.err");
     let out_path = dir.path().join("gw.out");
-    let mut gw = fringe(&["gateway", "--config", site_file.to_str().unwrap(), "--json"])
+    let gw = fringe(&["gateway", "--config", site_file.to_str().unwrap(), "--json"])
         .stdout(std::fs::File::create(&out_path).expect("out"))
         .stderr(std::fs::File::create(&err_path).expect("err"))
         .spawn()
@@ -964,14 +965,26 @@ fn the_gateway_feeds_the_plants_density_from_mqtt_to_the_device() {
         "the density sent again",
         &["730 kg/m3", "sent again (the device had lost it)"],
     );
+    // Sent again for what is left of the minute, not for a whole one.
+    let again = stderr();
+    let held: f64 = again
+        .lines()
+        .find(|l| l.contains("sent again (the device had lost it), held "))
+        .and_then(|l| l.rsplit("held ").next())
+        .and_then(|t| t.trim_end_matches(" s").parse().ok())
+        .unwrap_or_else(|| panic!("seed {seed}: no hold in {again}"));
+    assert!(held < 59.0, "seed {seed}: sent again to hold {held} s");
 
-    let ok = Command::new("kill")
-        .args(["-TERM", &gw.id().to_string()])
-        .status()
-        .expect("kill");
-    assert!(ok.success());
-    let status = gw.wait().expect("wait");
-    assert_eq!(status.code(), Some(0), "seed {seed}: {}", stderr());
+    let stop = |mut gw: std::process::Child, err: &dyn Fn() -> String| {
+        let ok = Command::new("kill")
+            .args(["-TERM", &gw.id().to_string()])
+            .status()
+            .expect("kill");
+        assert!(ok.success());
+        let status = gw.wait().expect("wait");
+        assert_eq!(status.code(), Some(0), "seed {seed}: {}", err());
+    };
+    stop(gw, &stderr);
     let out = std::fs::read_to_string(&out_path).expect("stdout");
     let lines: Vec<Value> = out
         .lines()
@@ -989,4 +1002,50 @@ fn the_gateway_feeds_the_plants_density_from_mqtt_to_the_device() {
         "seed {seed}: {}",
         stderr()
     );
+
+    // The same over plain JSON topics: a message of another shape is
+    // refused naming the shape expected; a good one is sent.
+    let text = std::fs::read_to_string(&site_file).expect("site");
+    std::fs::write(
+        &site_file,
+        text.replace(
+            "node = \"gw-1\"\n",
+            "node = \"gw-1\"\njson = true\njson_prefix = \"plant-b\"\n",
+        ),
+    )
+    .expect("site");
+    let err2 = dir.path().join("gw2.err");
+    let gw = fringe(&["gateway", "--config", site_file.to_str().unwrap()])
+        .stdout(std::process::Stdio::null())
+        .stderr(std::fs::File::create(&err2).expect("err"))
+        .spawn()
+        .expect("start fringe gateway");
+    let stderr2 = || std::fs::read_to_string(&err2).unwrap_or_default();
+    let topic = format!("plant-b/{serial}/density");
+    poll_until(
+        DEADLINE,
+        || format!("seed {seed}: the JSON density was not sent:\n{}", stderr2()),
+        || {
+            // Sent again until the device has answered the gateway (before,
+            // it is refused as not yet fed), as a plant sends it anyway.
+            mqtt_command(broker.port, &topic, "json", r#"{"kg_m3": 745}"#, false);
+            mqtt_command(
+                broker.port,
+                &topic,
+                "json",
+                r#"{"bulk_density_kg_m3": 745}"#,
+                false,
+            );
+            std::thread::sleep(Duration::from_millis(300));
+            stderr2().contains(&format!("bulk density 745 kg/m3 from {topic} sent, held"))
+        },
+    );
+    let e = stderr2();
+    assert!(
+        e.lines().any(|l| l.contains(&topic)
+            && l.contains("refused, nothing sent")
+            && l.contains("expected {\"bulk_density_kg_m3\": NUMBER}")),
+        "seed {seed}: {e}"
+    );
+    stop(gw, &stderr2);
 }

@@ -79,6 +79,16 @@ impl DensityInbox {
         self.state.lock().unwrap_or_else(|e| e.into_inner())
     }
 
+    /// Says `text` as an error of the density feed (no device in particular).
+    pub fn say(&self, text: &str) {
+        (self.tell)(Notice {
+            unit: 0,
+            serial: None,
+            level: Level::Error,
+            text: text.to_string(),
+        });
+    }
+
     /// The device of `unit` answered as `serial` and takes densities from here.
     pub fn feed(&self, serial: &str, unit: u8) {
         self.lock().fed.insert(serial.to_string(), unit);
@@ -207,8 +217,9 @@ pub fn from_json(payload: &[u8]) -> Result<f64, String> {
     v.get(BULK_DENSITY)
         .and_then(serde_json::Value::as_f64)
         .ok_or_else(|| {
-            let mut s = v.to_string();
-            s.truncate(60);
+            let s = v.to_string();
+            // Cut at a character, not a byte: the text may be any UTF-8.
+            let s: String = s.chars().take(60).collect();
             format!("{s}: {shape}")
         })
 }

@@ -321,12 +321,20 @@ impl Worker {
             last_sent: 0,
             started_ms,
         };
+        // One SUBSCRIBE, so that its SUBACK says which filter was refused.
+        let mut filters = Vec::new();
         if let Format::Sparkplug { group, edge_node } = &self.config.format {
-            let ncmd = sparkplug::topic(group, "NCMD", edge_node, None);
-            let _ = s.client.subscribe(ncmd, QoS::AtLeastOnce);
+            filters.push(sparkplug::topic(group, "NCMD", edge_node, None));
         }
         if self.config.density.is_some() {
-            let _ = s.client.subscribe(self.density_filter(), QoS::AtLeastOnce);
+            filters.push(self.density_filter());
+        }
+        if !filters.is_empty() {
+            let _ = s.client.subscribe_many(
+                filters
+                    .iter()
+                    .map(|f| rumqttc::SubscribeFilter::new(f.clone(), QoS::AtLeastOnce)),
+            );
         }
         if let Err(e) = self.births(&mut s, bd_seq) {
             return End::Lost(e);
@@ -363,6 +371,21 @@ impl Worker {
                             }
                         }
                         self.stat(|st| st.acknowledged += 1);
+                    }
+                }
+                Ok(Ok(Event::Incoming(Incoming::SubAck(ack)))) => {
+                    for (code, filter) in ack.return_codes.iter().zip(&filters) {
+                        if *code == rumqttc::SubscribeReasonCode::Failure {
+                            let text = format!(
+                                "the broker refused the subscription to {filter} (its ACL?)"
+                            );
+                            match (&self.config.density, filter == &self.density_filter()) {
+                                (Some(inbox), true) => inbox.say(&format!(
+                                    "{text}: no density can arrive; the devices flag density_missing"
+                                )),
+                                _ => self.stat(|st| st.last_error = Some(text)),
+                            }
+                        }
                     }
                 }
                 Ok(Ok(Event::Incoming(Incoming::Publish(p)))) => {

@@ -62,11 +62,38 @@ struct Feeder {
     inbox: Arc<DensityInbox>,
     hold: Duration,
     key: Key,
-    /// The order last sent (or given up), by its number.
+    /// The order last dealt with (acknowledged or given up), by its number.
     sent: u64,
-    last_try: Option<Instant>,
-    /// The latest reading at the last try: only a later one shows a loss.
-    latest_at_try: Option<fringe_protocol::Seq>,
+    /// The order the device acknowledged last.
+    acked: Option<u64>,
+    /// The last failed try that is worth another: (order, when).
+    failed: Option<(u64, Instant)>,
+    /// The last send (or try) again of an order the device had lost.
+    resent: Option<Instant>,
+    /// The latest reading at the last send: only a later one shows a loss.
+    latest_at_send: Option<fringe_protocol::Seq>,
+    /// The boot and counter of the last density sent.
+    counter: Option<(u32, u32)>,
+}
+
+/// Whether a density that was not taken may be taken on another try: the
+/// link failed, the device was busy or holding writes off, or another
+/// sender's density used the counter.
+fn worth_retrying(e: &fringe_line::DensityError) -> bool {
+    use fringe_link::LinkError;
+    use fringe_protocol::{AuthFailure, ErrorCode};
+    match e {
+        fringe_line::DensityError::NoInput { .. } => false,
+        fringe_line::DensityError::Link(l) => {
+            l.is_transient()
+                || matches!(l, LinkError::Garbled { .. })
+                || matches!(l, LinkError::Refused { code, reason, .. }
+                    if *code == ErrorCode::Busy.code()
+                        || (*code == ErrorCode::AuthFailed.code()
+                            && (reason.as_str() == AuthFailure::Replay.reason()
+                                || reason.as_str() == AuthFailure::Throttled.reason())))
+        }
+    }
 }
 
 /// One device to run: its place in the site file, how to open its port
@@ -144,8 +171,9 @@ pub struct DeviceStatus {
     pub line: Summary,
     /// Drift alarm episodes raised during this run.
     pub drift_alarms: u64,
-    /// The plant's bulk density last sent to it and acknowledged, kg/m3
-    /// (`[device.density]`).
+    /// The plant's bulk density it holds, kg/m3: the last one sent to it
+    /// and acknowledged (`[device.density]`), until a reading flags
+    /// `density_missing`.
     pub density_kg_m3: Option<f32>,
     /// The last error, in words.
     pub error: Option<String>,
@@ -728,8 +756,11 @@ impl<S: RecordStore> Worker<S> {
                     hold: feed.hold,
                     key,
                     sent: 0,
-                    last_try: None,
-                    latest_at_try: None,
+                    acked: None,
+                    failed: None,
+                    resent: None,
+                    latest_at_send: None,
+                    counter: None,
                 })
             }
             _ => None,
@@ -773,24 +804,34 @@ impl<S: RecordStore> Worker<S> {
     }
 
     /// Sends the plant's latest bulk density when a new one has come, or
-    /// again when the device's readings show it has lost it (a reboot, a
-    /// reconnect, another product), for what is left of its hold. Never
-    /// fatal: a density that cannot be sent is said (and tried again after
-    /// [`DENSITY_RETRY`] when the link failed).
+    /// again when the device's readings show it has lost one it had
+    /// acknowledged (a reboot, a reconnect, another product), for what is
+    /// left of its hold. Never fatal: a density that cannot be sent is
+    /// said; a try that failed for a reason that may pass (the link, a busy
+    /// device, writes held off) is made again after [`DENSITY_RETRY`], and
+    /// so is a send again of a lost one; a value the device refuses is not.
     fn feed_density(&self, f: &mut Feeder, session: &mut Session, serial: &str) {
         let Some(order) = f.inbox.latest(serial) else {
             return;
         };
         let now = Instant::now();
+        let since = |t: Option<Instant>| {
+            t.is_none_or(|t| now.saturating_duration_since(t) >= DENSITY_RETRY)
+        };
         let fresh = order.seq != f.sent;
         let lost = !fresh
+            && f.acked == Some(order.seq)
             && session.latest().is_some_and(|r| {
-                r.flags.contains(Flags::DENSITY_MISSING) && Some(r.seq) != f.latest_at_try
+                r.flags.contains(Flags::DENSITY_MISSING) && Some(r.seq) != f.latest_at_send
             });
-        let waited = f
-            .last_try
-            .is_none_or(|t| now.saturating_duration_since(t) >= DENSITY_RETRY);
-        if !(fresh || lost) || (lost && !waited) {
+        let due = if fresh {
+            // A try of this order that failed waits; a new order goes now.
+            f.failed
+                .is_none_or(|(seq, t)| seq != order.seq || since(Some(t)))
+        } else {
+            lost && since(f.resent)
+        };
+        if !due {
             return;
         }
         let left = f
@@ -813,11 +854,16 @@ impl<S: RecordStore> Worker<S> {
             }
             return;
         }
-        f.last_try = Some(now);
-        f.latest_at_try = session.latest().map(|r| r.seq);
-        match session.set_density(&f.key, order.kg_m3, hold_ms) {
-            Ok(()) => {
+        if lost {
+            f.resent = Some(now);
+        }
+        f.latest_at_send = session.latest().map(|r| r.seq);
+        match session.set_density(&f.key, order.kg_m3, hold_ms, f.counter) {
+            Ok(used) => {
                 f.sent = order.seq;
+                f.acked = Some(order.seq);
+                f.failed = None;
+                f.counter = Some(used);
                 self.update(|s| s.density_kg_m3 = Some(order.kg_m3));
                 self.say(
                     Some(serial),
@@ -835,20 +881,26 @@ impl<S: RecordStore> Worker<S> {
                     ),
                 );
             }
-            Err(fringe_line::DensityError::Link(e)) if e.is_transient() => {
+            Err(e) if worth_retrying(&e) => {
+                if fresh {
+                    f.failed = Some((order.seq, now));
+                }
                 self.say(
                     Some(serial),
                     Level::Error,
                     format!(
-                        "density {} kg/m3 from {} not sent ({e}); tried again",
-                        order.kg_m3, order.source
+                        "density {} kg/m3 from {} not sent ({e}); tried again in {} s",
+                        order.kg_m3,
+                        order.source,
+                        DENSITY_RETRY.as_secs()
                     ),
                 );
             }
             Err(e) => {
-                // The device refused it (or cannot take one): not repeated.
+                // The device refused the value (or cannot take one): not
+                // sent again, and not sent again when "lost" either.
                 f.sent = order.seq;
-                self.update(|s| s.density_kg_m3 = None);
+                f.failed = None;
                 self.say(
                     Some(serial),
                     Level::Error,
@@ -974,6 +1026,9 @@ impl<S: RecordStore> Worker<S> {
                     s.uncertainty_pct = r.moisture_pct.map(|_| r.uncertainty_pct);
                     s.temperature_c = Some(r.temperature_c);
                     s.flags = r.flags.names().map(str::to_string).collect();
+                    if r.flags.contains(Flags::DENSITY_MISSING) {
+                        s.density_kg_m3 = None;
+                    }
                 });
             }
             Note::Logged(r) => {

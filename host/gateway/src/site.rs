@@ -43,7 +43,7 @@
 //! moisture_high_pct = 13.0
 //! [device.density]                    # optional: the plant's bulk density fed to the device
 //! from = "mqtt"                       # from the broker of [mqtt] (the only source so far)
-//! hold_s = 60                         # each value holds this long after it arrives, 1..=3600 [60]
+//! hold_s = 60                         # each value holds this long after it arrives, 5..=3600 [60]
 //! ```
 //!
 //! A device with `[device.density]` needs `key_file` (a density is a
@@ -714,12 +714,12 @@ impl Site {
                         None => DEFAULT_DENSITY_HOLD,
                         Some(h) => {
                             let x = *h.get_ref();
-                            if !(x.is_finite() && (1.0..=3600.0).contains(&x)) {
+                            if !(x.is_finite() && (5.0..=3600.0).contains(&x)) {
                                 return Err(bad(
                                     h.span(),
                                     &field("hold_s"),
                                     x.to_string(),
-                                    "seconds, 1 to 3600 (the device holds a density at most an hour)",
+                                    "seconds, 5 to 3600 (the device holds a density at least a second and at most an hour, counted from when it reaches the device; the plant sends it again well within the hold)",
                                 ));
                             }
                             Duration::from_secs_f64(x)
@@ -892,9 +892,13 @@ baud = 9600
             (
                 mqtt,
                 &format!("{keyed}hold_s = 7200\n"),
-                "device[1].density.hold_s = 7200: seconds, 1 to 3600",
+                "device[1].density.hold_s = 7200: seconds, 5 to 3600",
             ),
-            (mqtt, &format!("{keyed}hold_s = 0.5\n"), "hold_s = 0.5"),
+            (
+                mqtt,
+                &format!("{keyed}hold_s = 2\n"),
+                "hold_s = 2: seconds, 5 to 3600",
+            ),
             (
                 mqtt,
                 &keyed.replace("\"mqtt\"", "\"modbus\""),

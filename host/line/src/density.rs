@@ -46,6 +46,24 @@ pub fn set_density(
     kg_m3: f32,
     hold_ms: u32,
 ) -> Result<(), DensityError> {
+    set_density_after(link, key, kg_m3, hold_ms, None).map(|_| ())
+}
+
+/// As [`set_density`], for a sender that sends again and again: the
+/// counter is above `after` (the boot and counter this sender used last,
+/// as returned) when the boot is the same, so that two densities within
+/// one tenth of a second of uptime are not taken for a replay. Returns the
+/// boot and counter used.
+///
+/// # Errors
+/// As [`set_density`].
+pub fn set_density_after(
+    link: &mut Link,
+    key: &Key,
+    kg_m3: f32,
+    hold_ms: u32,
+    after: Option<(u32, u32)>,
+) -> Result<(u32, u32), DensityError> {
     if !link
         .identity()
         .is_some_and(|id| id.capabilities.contains(Capabilities::DENSITY_INPUT))
@@ -58,6 +76,12 @@ pub fn set_density(
         });
     }
     let status = link.status()?;
+    let mut counter = density_counter(status.uptime_ms);
+    if let Some((boot, last)) = after {
+        if boot == status.boot && counter <= last {
+            counter = last.saturating_add(1);
+        }
+    }
     match link.request_signed_with(
         Request::SetDensity {
             boot: status.boot,
@@ -65,9 +89,9 @@ pub fn set_density(
             hold_ms,
         },
         key,
-        density_counter(status.uptime_ms),
+        counter,
     )? {
-        Response::Ack => Ok(()),
+        Response::Ack => Ok((status.boot, counter)),
         other => Err(LinkError::Unexpected {
             request: "SetDensity",
             got: format!("{other:?}"),

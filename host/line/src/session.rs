@@ -535,8 +535,10 @@ impl Session {
     }
 
     /// Sends the plant's bulk density to the device between readings of
-    /// the stream ([`crate::set_density`]; the readings that arrive
-    /// meanwhile are kept for the next [`Session::poll`]).
+    /// the stream ([`crate::set_density_after`]: `after` is the boot and
+    /// counter of this sender's last density, the result those of this
+    /// one; the readings that arrive meanwhile are kept for the next
+    /// [`Session::poll`]).
     ///
     /// # Errors
     /// As [`crate::set_density`]; a link that failed is found and cured by
@@ -546,8 +548,9 @@ impl Session {
         key: &Key,
         kg_m3: f32,
         hold_ms: u32,
-    ) -> Result<(), crate::DensityError> {
-        crate::density::set_density(&mut self.link, key, kg_m3, hold_ms)
+        after: Option<(u32, u32)>,
+    ) -> Result<(u32, u32), crate::DensityError> {
+        crate::density::set_density_after(&mut self.link, key, kg_m3, hold_ms, after)
     }
 
     /// Ends the session: commits what arrived (whatever happened before)
