@@ -152,3 +152,32 @@ fn a_session_stores_what_the_device_logged_before_it_began_and_nothing_twice() {
     assert!(n >= 35, "{n} stored, {sum:?}");
     assert_eq!(sum.duplicates, 0, "{sum:?}");
 }
+
+/// Densities sent one right after another (a plant flushing its queue)
+/// all land: each counter is above the last one sent, even within one
+/// tenth of a second of the device's uptime, where the uptime alone gives
+/// the same counter and the device would take the second for a replay.
+#[test]
+fn densities_sent_back_to_back_all_land() {
+    use fringe_line::{density_counter, set_density_after};
+    let sim = device("HGM-L2-0103", 3);
+    let mut link = link(&sim, "sim:d");
+    let key = [7u8; 32];
+    let mut last = None;
+    let mut same_tenth = 0;
+    for i in 0..6 {
+        let before = link.status().expect("status");
+        let used = set_density_after(&mut link, &key, 700.0 + i as f32, 60_000, last)
+            .unwrap_or_else(|e| panic!("density {i}: {e}"));
+        if let Some((boot, c)) = last {
+            assert_eq!(used.0, boot);
+            assert!(used.1 > c, "density {i}: counter {} after {c}", used.1);
+            if density_counter(before.uptime_ms) <= c {
+                same_tenth += 1;
+            }
+        }
+        last = Some(used);
+    }
+    // The virtual clock moves in small steps: most sends share a tenth.
+    assert!(same_tenth > 0, "no two sends within one tenth of a second");
+}
