@@ -807,6 +807,18 @@ fn mqtt_over_tls_with_credentials_and_a_wrong_password_loses_nothing() {
     );
 }
 
+/// A child process killed when the test ends early (a failed assertion).
+struct Running(Option<std::process::Child>);
+
+impl Drop for Running {
+    fn drop(&mut self) {
+        if let Some(c) = self.0.as_mut() {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
+}
+
 /// Publishes one command with paho-mqtt (`tests/python/mqtt_command.py`):
 /// `kind` "sparkplug" (a DCMD with the Float metric `bulk_density_kg_m3`)
 /// or "json" (the text as it stands).
@@ -874,11 +886,13 @@ fn the_gateway_feeds_the_plants_density_from_mqtt_to_the_device() {
     mqtt_command(broker.port, &dcmd, "sparkplug", "731", true);
     let err_path = dir.path().join("gw.err");
     let out_path = dir.path().join("gw.out");
-    let gw = fringe(&["gateway", "--config", site_file.to_str().unwrap(), "--json"])
-        .stdout(std::fs::File::create(&out_path).expect("out"))
-        .stderr(std::fs::File::create(&err_path).expect("err"))
-        .spawn()
-        .expect("start fringe gateway");
+    let mut gw = Running(Some(
+        fringe(&["gateway", "--config", site_file.to_str().unwrap(), "--json"])
+            .stdout(std::fs::File::create(&out_path).expect("out"))
+            .stderr(std::fs::File::create(&err_path).expect("err"))
+            .spawn()
+            .expect("start fringe gateway"),
+    ));
     let stderr = || std::fs::read_to_string(&err_path).unwrap_or_default();
     let wait_err = |what: &str, needles: &[&str]| {
         poll_until(
@@ -984,7 +998,7 @@ fn the_gateway_feeds_the_plants_density_from_mqtt_to_the_device() {
         let status = gw.wait().expect("wait");
         assert_eq!(status.code(), Some(0), "seed {seed}: {}", err());
     };
-    stop(gw, &stderr);
+    stop(gw.0.take().expect("running"), &stderr);
     let out = std::fs::read_to_string(&out_path).expect("stdout");
     let lines: Vec<Value> = out
         .lines()
@@ -1015,11 +1029,13 @@ fn the_gateway_feeds_the_plants_density_from_mqtt_to_the_device() {
     )
     .expect("site");
     let err2 = dir.path().join("gw2.err");
-    let gw = fringe(&["gateway", "--config", site_file.to_str().unwrap()])
-        .stdout(std::process::Stdio::null())
-        .stderr(std::fs::File::create(&err2).expect("err"))
-        .spawn()
-        .expect("start fringe gateway");
+    let mut gw = Running(Some(
+        fringe(&["gateway", "--config", site_file.to_str().unwrap()])
+            .stdout(std::process::Stdio::null())
+            .stderr(std::fs::File::create(&err2).expect("err"))
+            .spawn()
+            .expect("start fringe gateway"),
+    ));
     let stderr2 = || std::fs::read_to_string(&err2).unwrap_or_default();
     let topic = format!("plant-b/{serial}/density");
     poll_until(
@@ -1047,5 +1063,5 @@ fn the_gateway_feeds_the_plants_density_from_mqtt_to_the_device() {
             && l.contains("expected {\"bulk_density_kg_m3\": NUMBER}")),
         "seed {seed}: {e}"
     );
-    stop(gw, &stderr2);
+    stop(gw.0.take().expect("running"), &stderr2);
 }
