@@ -22,11 +22,14 @@ use std::time::Instant;
 
 use fringe_protocol::DENSITY_RANGE_KG_M3;
 
-use crate::run::{Level, Notice};
 use crate::sparkplug::{Payload, Value};
 
 /// The Sparkplug DCMD metric (and JSON key) of a bulk density, kg/m3.
-pub const BULK_DENSITY: &str = "bulk_density_kg_m3";
+pub use crate::sparkplug::metric::BULK_DENSITY;
+
+/// Told what went wrong: the unit of the device (0: none in particular),
+/// its serial when known, and the text.
+pub type Tell = Arc<dyn Fn(u8, Option<String>, String) + Send + Sync>;
 
 /// A density the plant sent for one device.
 #[derive(Debug, Clone, PartialEq)]
@@ -53,7 +56,7 @@ struct State {
 /// posts) and the line sessions (which send).
 pub struct DensityInbox {
     state: Mutex<State>,
-    tell: Arc<dyn Fn(Notice) + Send + Sync>,
+    tell: Tell,
 }
 
 impl std::fmt::Debug for DensityInbox {
@@ -68,7 +71,7 @@ impl std::fmt::Debug for DensityInbox {
 
 impl DensityInbox {
     /// An empty inbox; refusals are told to `tell`.
-    pub fn new(tell: Arc<dyn Fn(Notice) + Send + Sync>) -> Self {
+    pub fn new(tell: Tell) -> Self {
         Self {
             state: Mutex::new(State::default()),
             tell,
@@ -81,12 +84,7 @@ impl DensityInbox {
 
     /// Says `text` as an error of the density feed (no device in particular).
     pub fn say(&self, text: &str) {
-        (self.tell)(Notice {
-            unit: 0,
-            serial: None,
-            level: Level::Error,
-            text: text.to_string(),
-        });
+        (self.tell)(0, None, text.to_string());
     }
 
     /// The device of `unit` answered as `serial` and takes densities from here.
@@ -146,12 +144,11 @@ impl DensityInbox {
             }
             Err(why) => {
                 drop(s);
-                (self.tell)(Notice {
-                    unit: unit.unwrap_or(0),
-                    serial: Some(serial.to_string()),
-                    level: Level::Error,
-                    text: format!("density from {source} refused, nothing sent: {why}"),
-                });
+                (self.tell)(
+                    unit.unwrap_or(0),
+                    Some(serial.to_string()),
+                    format!("density from {source} refused, nothing sent: {why}"),
+                );
                 Err(why)
             }
         }
@@ -229,11 +226,18 @@ mod tests {
     use super::*;
     use crate::sparkplug::Metric;
 
-    fn inbox() -> (DensityInbox, Arc<Mutex<Vec<Notice>>>) {
+    struct Told {
+        unit: u8,
+        text: String,
+    }
+
+    fn inbox() -> (DensityInbox, Arc<Mutex<Vec<Told>>>) {
         let told = Arc::new(Mutex::new(Vec::new()));
         let t = Arc::clone(&told);
         (
-            DensityInbox::new(Arc::new(move |n| t.lock().unwrap().push(n))),
+            DensityInbox::new(Arc::new(move |unit, _, text| {
+                t.lock().unwrap().push(Told { unit, text });
+            })),
             told,
         )
     }

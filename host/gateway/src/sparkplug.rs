@@ -62,6 +62,8 @@ pub mod metric {
     pub const DEVICE_TIME: &str = "device_time";
     /// A drift alarm: what drifted, since when, by how much, what to do.
     pub const ALARM: &str = "drift_alarm";
+    /// The plant's bulk density, kg/m3: taken by DCMD (`crate::density`).
+    pub const BULK_DENSITY: &str = "bulk_density_kg_m3";
 }
 
 /// `Payload.Metric` (sparkplug_b.proto), the scalar part.
@@ -278,9 +280,9 @@ pub fn empty_device_birth(seq: u8, now_ms: u64) -> Payload {
 }
 
 /// The bulk density a fed device takes by DCMD, declared (null) in its
-/// DBIRTH ([`crate::density::BULK_DENSITY`]).
+/// DBIRTH ([`metric::BULK_DENSITY`]).
 pub fn density_metric(now_ms: u64) -> Metric {
-    m(crate::density::BULK_DENSITY, datatype::FLOAT, now_ms, None)
+    m(metric::BULK_DENSITY, datatype::FLOAT, now_ms, None)
 }
 
 /// A DDATA of one reading.

@@ -59,11 +59,17 @@ pub fn gateway(
         v.lock().unwrap_or_else(|e| e.into_inner()).notice(n);
     });
     // The plant's densities, from the broker to the devices that take them.
-    let density = site
-        .devices
-        .iter()
-        .any(|d| d.density.is_some())
-        .then(|| Arc::new(DensityInbox::new(Arc::clone(&tell))));
+    let density = site.devices.iter().any(|d| d.density.is_some()).then(|| {
+        let tell = Arc::clone(&tell);
+        Arc::new(DensityInbox::new(Arc::new(move |unit, serial, text| {
+            tell(Notice {
+                unit,
+                serial,
+                level: Level::Error,
+                text,
+            });
+        })))
+    });
     let mut runs = Vec::new();
     let started_ms = crate::store::now_unix_ms().max(0) as u64;
     for d in &site.devices {
