@@ -385,6 +385,24 @@ pub struct LinkStats {
     pub reconnects: u32,
 }
 
+/// Whether `request` is asked again soon after a damaged frame came
+/// ([`after_damage`]) rather than after the whole answer timeout: a read
+/// the device answers at once. Not a write (its counter is spent), nor the
+/// handshake (only damaged answers to it show a wrong baud rate), nor a
+/// request answered after a measurement job (53-316 ms: a damaged frame
+/// meanwhile is not its answer, and asking again would queue a second job,
+/// logging an extra reading or repeating a flash test).
+pub fn asked_again_after_damage(request: &Request) -> bool {
+    !request.needs_auth()
+        && !matches!(
+            request,
+            Request::Identify { .. }
+                | Request::Measure
+                | Request::SelfTest
+                | Request::ReferenceCheck
+        )
+}
+
 /// How long a read waits for an undamaged answer after a damaged frame
 /// before it asks again: the time of a largest frame
 /// ([`fringe_protocol::frame::MAX_FRAME_LEN`] bytes, 10 bits each) at
@@ -771,6 +789,7 @@ impl Link {
         // nor the handshake (only damaged answers to it diagnose a wrong
         // baud rate; `LinkOptions::handshakes` repeats it on a noisy line).
         let once = request.needs_auth() || matches!(request, Request::Identify { .. });
+        let soon = asked_again_after_damage(&request);
         let most = if once { tries } else { tries * 3 };
         let errors_before = self.stats().damaged;
         let frames_before = self.stats().frames;
@@ -812,12 +831,13 @@ impl Link {
                 }
                 self.fill((deadline - now).min(Duration::from_millis(50)))?;
                 // A damaged frame came: most likely the answer, which will
-                // not come again by itself. A read is asked again after a
-                // short wait for an undamaged answer (the damaged frame may
-                // have been a streamed reading) instead of the whole
-                // timeout; an answer to any earlier try still counts. A
-                // write is not (its counter is spent).
-                if !once && !shortened && self.stats().damaged > damaged_before {
+                // not come again by itself. A read answered at once is
+                // asked again after a short wait for an undamaged answer
+                // (the damaged frame may have been a streamed reading)
+                // instead of the whole timeout; an answer to any earlier
+                // try still counts. Not a write (its counter is spent), the
+                // handshake, nor a request answered after a measurement job.
+                if soon && !shortened && self.stats().damaged > damaged_before {
                     shortened = true;
                     deadline = deadline.min(Instant::now() + after_damage(self.opener.baud()));
                 }
@@ -1330,6 +1350,35 @@ mod tests {
             after_damage(115_200),
             Duration::from_micros(34_027 + 20_000)
         );
+    }
+
+    /// Which requests are asked again soon after a damaged frame: reads
+    /// answered at once, not writes (their counter is spent), the
+    /// handshake, or requests answered after a measurement job (a second
+    /// one would queue a second job: a reading logged, a flash test run).
+    #[test]
+    fn only_reads_answered_at_once_are_asked_again_after_damage() {
+        for r in [
+            Request::Status,
+            Request::StopStream,
+            Request::StartStream { period_ms: 0 },
+            Request::ReadSettings,
+            Request::ListProducts,
+        ] {
+            assert!(asked_again_after_damage(&r), "{r:?}");
+        }
+        for r in [
+            Request::Measure,
+            Request::SelfTest,
+            Request::ReferenceCheck,
+            Request::Identify {
+                host: PROTOCOL_VERSION,
+            },
+            Request::SelectProduct { slot: 0 },
+            Request::Reboot,
+        ] {
+            assert!(!asked_again_after_damage(&r), "{r:?}");
+        }
     }
 
     #[test]
