@@ -20,7 +20,7 @@ use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
 use std::time::Instant;
 
-use fringe_protocol::DENSITY_RANGE_KG_M3;
+use fringe_line::check_density;
 
 use crate::sparkplug::{Payload, Value};
 
@@ -124,7 +124,7 @@ impl DensityInbox {
                      [device.density] in the site file, or has not answered yet)"
                 ))
             } else {
-                check_kg_m3(v)
+                check_density(v)
             }
         });
         match checked {
@@ -153,26 +153,6 @@ impl DensityInbox {
             }
         }
     }
-}
-
-/// `v` as a bulk density the device takes, kg/m3 (its range, protocol 1.4).
-///
-/// # Errors
-/// A value outside it, in words (a value in g/cm3 is named as such).
-pub fn check_kg_m3(v: f64) -> Result<f32, String> {
-    let (lo, hi) = DENSITY_RANGE_KG_M3;
-    if !v.is_finite() {
-        return Err(format!("{v} is not a number"));
-    }
-    if v > 0.0 && v < f64::from(lo) {
-        return Err(format!(
-            "{v} kg/m3 is below {lo}: it looks like g/cm3 (send kg/m3, 1.65 g/cm3 = 1650 kg/m3)"
-        ));
-    }
-    if !(f64::from(lo)..=f64::from(hi)).contains(&v) {
-        return Err(format!("{v} kg/m3 is outside {lo}..={hi} kg/m3"));
-    }
-    Ok(v as f32)
 }
 
 /// The density of a Sparkplug DCMD payload: its [`BULK_DENSITY`] metric

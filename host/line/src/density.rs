@@ -3,7 +3,7 @@
 
 use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
-use fringe_protocol::{Capabilities, Request, Response};
+use fringe_protocol::{Capabilities, Request, Response, DENSITY_RANGE_KG_M3};
 
 /// Why a density could not be sent.
 #[derive(Debug, thiserror::Error)]
@@ -21,6 +21,27 @@ pub enum DensityError {
     /// The link or the device refused.
     #[error(transparent)]
     Link(#[from] LinkError),
+}
+
+/// `v` as a bulk density the device takes, kg/m3 (its range, protocol
+/// 1.4): the one check of `fringe device density` and the gateway's feed.
+///
+/// # Errors
+/// A value outside it, in words (a value in g/cm3 is named as such).
+pub fn check_density(v: f64) -> Result<f32, String> {
+    let (lo, hi) = DENSITY_RANGE_KG_M3;
+    if !v.is_finite() {
+        return Err(format!("{v} is not a number"));
+    }
+    if v > 0.0 && v < f64::from(lo) {
+        return Err(format!(
+            "{v} kg/m3 is below {lo}: it looks like g/cm3 (send kg/m3, 1.65 g/cm3 = 1650 kg/m3)"
+        ));
+    }
+    if !(f64::from(lo)..=f64::from(hi)).contains(&v) {
+        return Err(format!("{v} kg/m3 is outside {lo}..={hi} kg/m3"));
+    }
+    Ok(v as f32)
 }
 
 /// The counter a density sent at device uptime `uptime_ms` carries: the

@@ -23,7 +23,7 @@ mod session;
 
 pub use backfill::{next_seq, plan_backfill, Backfill, LogRange};
 pub use clock::{check_clock, set_clock, sync_clock, ClockCheck, ClockSync};
-pub use density::{density_counter, set_density, set_density_after, DensityError};
+pub use density::{check_density, density_counter, set_density, set_density_after, DensityError};
 pub use error::LineError;
 pub use session::{
     pull, register, Ctx, Note, Polled, PullSummary, Session, SessionOptions, Summary,

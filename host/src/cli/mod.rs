@@ -255,7 +255,7 @@ pub struct DensityArgs {
     pub port: PortArgs,
     /// Bulk density of the product at the sensor, kg/m^3 (10 to 5000).
     #[arg(long, value_name = "KG_M3")]
-    pub kg_m3: f32,
+    pub kg_m3: f64,
     /// How long the value holds on the device, s (1 to 3600).
     #[arg(long, value_name = "S", default_value_t = 60)]
     pub hold_s: u32,

@@ -319,20 +319,10 @@ pub fn clock(a: &crate::cli::ClockArgs, cfg: &LineConfig) -> anyhow::Result<()> 
 /// Values out of range (a usage error, nothing sent), port, link, key
 /// errors, a device without a density input, the device's refusal.
 pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<()> {
-    use fringe_protocol::{DENSITY_HOLD_MAX_MS, DENSITY_HOLD_MIN_MS, DENSITY_RANGE_KG_M3};
-    let (lo, hi) = DENSITY_RANGE_KG_M3;
-    if !a.kg_m3.is_finite() || !(lo..=hi).contains(&a.kg_m3) {
-        return Err(crate::exit::UsageError(format!(
-            "--kg-m3 {}: a bulk density must lie in {lo}..{hi} kg/m3{}; nothing sent",
-            a.kg_m3,
-            if a.kg_m3 > 0.0 && a.kg_m3 < lo {
-                " (a value in g/cm3? multiply by 1000)"
-            } else {
-                ""
-            }
-        ))
-        .into());
-    }
+    use fringe_protocol::{DENSITY_HOLD_MAX_MS, DENSITY_HOLD_MIN_MS};
+    let kg_m3 = fringe_line::check_density(a.kg_m3).map_err(|why| {
+        crate::exit::UsageError(format!("--kg-m3 {}: {why}; nothing sent", a.kg_m3))
+    })?;
     let hold_ms = a.hold_s.saturating_mul(1000);
     if !(DENSITY_HOLD_MIN_MS..=DENSITY_HOLD_MAX_MS).contains(&hold_ms) {
         return Err(crate::exit::UsageError(format!(
@@ -348,7 +338,7 @@ pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<
     })?;
     let mut link = super::connect(&a.port, cfg)?;
     let serial = link.serial_number().to_string();
-    match fringe_line::set_density(&mut link, &key, a.kg_m3, hold_ms) {
+    match fringe_line::set_density(&mut link, &key, kg_m3, hold_ms) {
         Ok(()) => {}
         Err(fringe_line::DensityError::Link(e)) => {
             return Err(anyhow::Error::from(e).context(format!(
@@ -366,9 +356,9 @@ pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<
         out::json(&json!({
             "port": link.port_name(),
             "serial": serial,
-            // The value as typed (an f32 widened to f64 would show digits
-            // nobody typed: 1650.3 as 1650.300048828125).
-            "bulk_density_kg_m3": a.kg_m3.to_string().parse::<f64>().unwrap_or(f64::NAN),
+            // The value as typed (the f32 sent, widened to f64, would show
+            // digits nobody typed: 1650.3 as 1650.300048828125).
+            "bulk_density_kg_m3": a.kg_m3,
             "hold_s": a.hold_s,
             "holds_until": crate::timefmt::fmt_time(until),
             "active_calibration": active.as_ref().map(|(name, _)| name.as_str()),
