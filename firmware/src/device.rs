@@ -718,6 +718,13 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         self.output_ma
     }
 
+    /// Whether a measurement job is under way (a board that sleeps between
+    /// polls should poll again at once while it is: each poll runs only
+    /// [`DeviceConfig::steps_per_poll`] steps of it).
+    pub fn job_running(&self) -> bool {
+        self.runner.busy()
+    }
+
     /// Readings taken since this boot (the counter of the next sequence number).
     pub fn readings_since_boot(&self) -> u32 {
         self.counter

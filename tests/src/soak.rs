@@ -53,6 +53,10 @@ pub struct DeviceSoak {
     pub early_kills: u32,
     /// Monitor runs.
     pub monitor_runs: u32,
+    /// Of those, runs that ended by themselves because the port did not
+    /// exist when they started (a disconnect of the line: `fringe monitor`
+    /// exits 10 then, and a service manager starts it again, as here).
+    pub port_missing_exits: u32,
     /// The simulator's closing line (bytes, faults, disconnects).
     pub line: String,
     /// Wall time, s.
@@ -97,7 +101,7 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
     let db = sim.path("soak.db");
     let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
     let per_kill = opts.readings / u64::from(opts.kills.max(1) + 1);
-    let (mut kills, mut early_kills, mut runs) = (0u32, 0u32, 0u32);
+    let (mut kills, mut early_kills, mut runs, mut missing) = (0u32, 0u32, 0u32, 0u32);
     let count = |db: &Path| reading_count(db, &serial);
     while kills < opts.kills || count(&db) < opts.readings {
         let before = count(&db);
@@ -116,6 +120,10 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
         if kills < opts.kills && rng.random_bool(0.25) {
             // Early: anywhere in its start (identify, clock, backfill).
             std::thread::sleep(Duration::from_millis(rng.random_range(0..400)));
+            if exited(&mut child, &ctx, &sim) {
+                missing += 1;
+                continue;
+            }
             kill(&mut child);
             kills += 1;
             if count(&db) == before {
@@ -131,6 +139,7 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
         };
         let target = before + share.max(1);
         let limit = Duration::from_secs(60) + Duration::from_secs_f64(share as f64 / 20.0);
+        let mut ended = false;
         poll_until(
             limit,
             || {
@@ -143,9 +152,14 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
             },
             || {
                 std::thread::sleep(Duration::from_millis(50));
-                count(&db) >= target
+                ended = exited(&mut child, &ctx, &sim);
+                ended || count(&db) >= target
             },
         );
+        if ended {
+            missing += 1;
+            continue;
+        }
         if kills < opts.kills {
             std::thread::sleep(Duration::from_millis(rng.random_range(0..300)));
             kill(&mut child);
@@ -203,6 +217,7 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
         kills,
         early_kills,
         monitor_runs: runs,
+        port_missing_exits: missing,
         line,
         seconds: start.elapsed().as_secs_f64(),
     }
@@ -217,6 +232,7 @@ impl DeviceSoak {
             "kills": self.kills,
             "early_kills": self.early_kills,
             "monitor_runs": self.monitor_runs,
+            "port_missing_exits": self.port_missing_exits,
             "line": self.line,
             "seconds": self.seconds,
         })
@@ -227,6 +243,20 @@ fn tail(path: &Path, n: usize) -> String {
     let text = std::fs::read_to_string(path).unwrap_or_default();
     let lines: Vec<&str> = text.lines().collect();
     lines[lines.len().saturating_sub(n)..].join("\n")
+}
+
+/// Whether the monitor has ended by itself because its port did not exist
+/// (exit 10: it was started during a disconnect of the line); panics on
+/// any other end, which the soak does not expect.
+fn exited(child: &mut Child, ctx: &str, sim: &Sim) -> bool {
+    match child.try_wait().expect("wait for the monitor") {
+        None => false,
+        Some(st) if st.code() == Some(10) => true,
+        Some(st) => panic!(
+            "{ctx}: the monitor ended by itself ({st}); its log (end):\n{}",
+            tail(&sim.path("monitor.log"), 40)
+        ),
+    }
 }
 
 fn kill(child: &mut Child) {

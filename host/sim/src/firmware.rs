@@ -257,6 +257,10 @@ impl SimDevice for FirmwareSim {
         })
     }
 
+    fn busy(&self) -> bool {
+        self.device.as_ref().is_some_and(|d| d.job_running())
+    }
+
     fn reboot_if_requested(&mut self, now_ms: u64) {
         if !self.device.as_ref().is_some_and(|d| d.reboot_requested()) {
             return;
