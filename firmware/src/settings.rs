@@ -18,8 +18,9 @@
 //!
 //! A reading starts on the interval; one that takes longer than the
 //! interval (on the simulated board a plain reading acquires for about
-//! 53 ms, one with the reference check, every tenth, about 158 ms) makes
-//! the device skip the slot it overran rather than catch up.
+//! 53 ms, one with the reference check, every tenth, about 158 ms) delays
+//! the next one, which starts as soon as it is done, and the slots it
+//! overran by a whole interval or more are skipped rather than caught up.
 
 use fringe_protocol::{short_string, OutputConfig, Settings};
 

@@ -80,7 +80,9 @@ fn left_alone_the_device_logs_every_interval_and_pull_gets_the_whole_log() {
     // A reading every 100 ms of device time, started on the interval and
     // timed when done. Every tenth reading carries the reference check,
     // whose acquisition (about 160 ms on the simulated board) outlasts a
-    // 100 ms interval: the slot it overruns is skipped, not caught up. (The
+    // 100 ms interval: the next reading starts late, when it is done (about
+    // 53 ms of acquisition), and a slot overrun by a whole interval is
+    // skipped, not caught up. (The
     // simulator runs on this machine's wall clock at 10x, so a busy machine
     // stretches single gaps; the exact schedule is `firmware/tests/schedule.rs`.)
     for w in stored.windows(2) {

@@ -14,11 +14,12 @@ pub trait SimDevice {
     /// Puts a bench material in front of the window instead of the line
     /// (`None`: the line again). Applied with the next conditions.
     fn set_bench(&mut self, bench: Option<Bench>);
-    /// Whether the device is in the middle of work that its next poll
-    /// continues (a measurement job): the simulator then polls again at
-    /// once instead of waiting for the host's bytes.
-    fn busy(&self) -> bool {
-        false
+    /// In the middle of a measurement job: the device time at which the
+    /// front end has finished the steps run so far (its settling and
+    /// records), when the simulator polls again rather than waiting for
+    /// the host's bytes; `None` while no job runs.
+    fn busy_until_ms(&self) -> Option<u64> {
+        None
     }
     /// One line on what the device is doing (readings, loop current), for
     /// the simulator's periodic report; `None` if it has nothing to say.

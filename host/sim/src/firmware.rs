@@ -62,6 +62,9 @@ pub struct FirmwareSim {
     config: DeviceConfig,
     product: SynthProduct<f32>,
     last_ms: u64,
+    /// Device time at which the front end is done with the job steps of
+    /// the last poll.
+    ready_ms: u64,
     bench: Option<Bench>,
     /// Unix ms of device time 0 when the clock starts set (a battery-backed
     /// clock that runs on across reboots).
@@ -105,6 +108,7 @@ impl FirmwareSim {
             config,
             product,
             last_ms: 0,
+            ready_ms: 0,
             bench: None,
             clock_origin_ms,
         };
@@ -200,7 +204,12 @@ impl SimDevice for FirmwareSim {
         if let Some(d) = self.device.as_mut() {
             d.frontend_mut()
                 .advance_ms(now_ms.saturating_sub(self.last_ms));
+            let before = d.frontend_mut().time_s();
             d.poll(now_ms, rx, tx);
+            // The simulated front end counts the time its settling and
+            // records take; the job goes on when that time has passed.
+            let spent_s = d.frontend_mut().time_s() - before;
+            self.ready_ms = now_ms + (spent_s * 1000.0).round() as u64;
         }
         self.last_ms = now_ms;
     }
@@ -257,8 +266,11 @@ impl SimDevice for FirmwareSim {
         })
     }
 
-    fn busy(&self) -> bool {
-        self.device.as_ref().is_some_and(|d| d.job_running())
+    fn busy_until_ms(&self) -> Option<u64> {
+        self.device
+            .as_ref()
+            .is_some_and(|d| d.job_running())
+            .then_some(self.ready_ms)
     }
 
     fn reboot_if_requested(&mut self, now_ms: u64) {

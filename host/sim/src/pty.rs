@@ -60,6 +60,11 @@ pub struct SimOptions {
 /// (and how long a write may wait for room in the pseudo-terminal).
 const WAIT: Duration = Duration::from_millis(1);
 
+/// Wall time for `device_ms` of device time at `scale`.
+fn wall_wait(device_ms: u64, scale: f64) -> Duration {
+    Duration::from_secs_f64(device_ms as f64 / 1000.0 / scale.max(1e-3))
+}
+
 struct Pty {
     master: TTYPort,
     // Held open so the master never sees a hang-up while no host is
@@ -223,17 +228,18 @@ pub fn run(
         rx.clear();
         match pty.as_mut() {
             Some(p) => {
-                // Mid-job the device is polled again at once: each poll
-                // runs only a few steps of a job, and waiting 1 ms of wall
-                // time between them stretched a job to about 5 ms of wall
-                // time, 200 ms of device time at 40x, past the interval
-                // (the device then skipped slots: 139 readings a second
-                // instead of 400 at a 100 ms interval).
-                let busy = device.busy();
-                let read = if busy {
-                    p.master
-                        .set_timeout(Duration::ZERO)
-                        .map_err(io::Error::from)?;
+                // Mid-job the device is polled again as soon as the front
+                // end has done the steps of the last poll (their device
+                // time, scaled to wall time): each poll runs only a few
+                // steps, and waiting 1 ms of wall time between them
+                // stretched a 53 ms job to about 200 ms of device time at
+                // 40x, past the interval (the device then skipped slots:
+                // 139 readings a second instead of about 360).
+                let busy = device
+                    .busy_until_ms()
+                    .map(|t| wall_wait(t.saturating_sub(now_ms), scale).min(WAIT));
+                let read = if let Some(wait) = busy {
+                    p.master.set_timeout(wait).map_err(io::Error::from)?;
                     let r = p.master.read(&mut buf);
                     p.master.set_timeout(WAIT).map_err(io::Error::from)?;
                     r
