@@ -70,10 +70,17 @@ struct Feeder {
     failed: Option<(u64, Instant)>,
     /// The last send (or try) again of an order the device had lost.
     resent: Option<Instant>,
-    /// The latest reading at the last send: only a later one shows a loss.
+    /// The last reading received before the device acknowledged the last
+    /// send (before it, at a try): only a later one shows a loss.
     latest_at_send: Option<fringe_protocol::Seq>,
     /// The boot and counter of the last density sent.
     counter: Option<(u32, u32)>,
+}
+
+/// Whether the reading `seq` was taken after the reading `at` (another
+/// boot counts as after: a reboot loses a density).
+fn taken_after(seq: fringe_protocol::Seq, at: Option<fringe_protocol::Seq>) -> bool {
+    at.is_none_or(|at| seq.boot != at.boot || seq.counter > at.counter)
 }
 
 /// Whether a density that was not taken may be taken on another try: the
@@ -822,7 +829,7 @@ impl<S: RecordStore> Worker<S> {
         let lost = !fresh
             && f.acked == Some(order.seq)
             && session.latest().is_some_and(|r| {
-                r.flags.contains(Flags::DENSITY_MISSING) && Some(r.seq) != f.latest_at_send
+                r.flags.contains(Flags::DENSITY_MISSING) && taken_after(r.seq, f.latest_at_send)
             });
         let due = if fresh {
             // A try of this order that failed waits; a new order goes now.
@@ -860,6 +867,10 @@ impl<S: RecordStore> Worker<S> {
         f.latest_at_send = session.latest().map(|r| r.seq);
         match session.set_density(&f.key, order.kg_m3, hold_ms, f.counter) {
             Ok(used) => {
+                // Readings taken before the device applied the density
+                // (flagged missing) may still be handed out after this:
+                // only a later one shows it lost.
+                f.latest_at_send = session.last_received();
                 f.sent = order.seq;
                 f.acked = Some(order.seq);
                 f.failed = None;
@@ -1098,5 +1109,28 @@ impl<S: RecordStore> Worker<S> {
             }
             _ => {}
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use fringe_protocol::Seq;
+
+    #[test]
+    fn only_a_reading_after_the_acknowledgement_shows_a_lost_density() {
+        let at = Some(Seq {
+            boot: 3,
+            counter: 40,
+        });
+        let seq = |boot, counter| Seq { boot, counter };
+        // Taken before the device applied it, handed out after the answer.
+        assert!(!taken_after(seq(3, 39), at));
+        assert!(!taken_after(seq(3, 40), at));
+        assert!(taken_after(seq(3, 41), at));
+        // A reboot loses it.
+        assert!(taken_after(seq(4, 0), at));
+        // Nothing received before the send: any reading counts.
+        assert!(taken_after(seq(3, 0), None));
     }
 }

@@ -253,6 +253,17 @@ impl Session {
         self.latest.as_ref()
     }
 
+    /// The sequence number of the last reading received from the device:
+    /// one the link holds for the next [`Session::poll`] (streamed while a
+    /// request was answered), or else [`Session::latest`]'s. A device
+    /// sends its frames in order, so every reading it took before it
+    /// answered a request has been received once the answer has.
+    pub fn last_received(&self) -> Option<fringe_protocol::Seq> {
+        self.link
+            .last_queued_reading()
+            .or(self.latest.as_ref().map(|r| r.seq))
+    }
+
     /// What the session did so far.
     pub fn summary(&self) -> Summary {
         // Every commit goes through the batcher, also those a backfill

@@ -944,6 +944,15 @@ impl Link {
         }
     }
 
+    /// The sequence number of the last reading received and not yet handed
+    /// out by [`Link::next_frame`] (streamed while a request was answered).
+    pub fn last_queued_reading(&self) -> Option<fringe_protocol::Seq> {
+        self.frames.iter().rev().find_map(|f| match f {
+            DeviceFrame::Reading(r) => Some(r.seq),
+            _ => None,
+        })
+    }
+
     /// The next streamed reading or event, waiting at most `timeout`
     /// (`Ok(None)` when nothing came). Stale answers are dropped.
     ///
