@@ -180,10 +180,17 @@ pub fn run(
         let now_ms = (wall.as_secs_f64() * 1000.0 * scale) as u64;
         let t_s = now_ms as f64 / 1000.0;
 
-        // Disconnects: close the pty; open a new one after the pause.
+        // Disconnects: close the pty and take its symlink away, as an
+        // unplugged adapter's device node goes (left in place, it named a
+        // closed pseudo-terminal whose number another program could get,
+        // and a host reconnecting found a different device there); open a
+        // new one after the pause.
         if let Some(d) = disconnects.get(next_disconnect) {
             if t_s >= d.at_s && pty.is_some() {
                 pty = None;
+                if let Some(link) = &opts.link {
+                    let _ = std::fs::remove_file(link);
+                }
                 stats.disconnects += 1;
                 reopen_at = Some(Instant::now() + Duration::from_secs_f64(d.for_s));
                 next_disconnect += 1;
