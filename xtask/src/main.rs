@@ -482,7 +482,11 @@ fn stm32_dir() -> PathBuf {
 fn stm32_firmware() -> Result<PathBuf> {
     ensure_target()?;
     let mut c = Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
-    c.current_dir(stm32_dir()).args(["build", "--release"]);
+    // Its own target folder, where the ELF is looked for, also when the
+    // caller has set CARGO_TARGET_DIR for the workspace.
+    c.current_dir(stm32_dir())
+        .env("CARGO_TARGET_DIR", stm32_dir().join("target"))
+        .args(["build", "--release"]);
     run(&mut c)?;
     Ok(stm32_dir().join(format!("target/{TARGET}/release/fringe-stm32g474")))
 }
@@ -514,7 +518,11 @@ fn board_dir() -> PathBuf {
 fn firmware() -> Result<PathBuf> {
     ensure_target()?;
     let mut c = Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
-    c.current_dir(board_dir()).args(["build", "--release"]);
+    // Its own target folder, where the tests look for the ELF, also when
+    // the caller has set CARGO_TARGET_DIR for the workspace.
+    c.current_dir(board_dir())
+        .env("CARGO_TARGET_DIR", board_dir().join("target"))
+        .args(["build", "--release"]);
     run(&mut c)?;
     let elf = qemu::board_elf(&root());
     eprintln!("xtask: firmware at {}", elf.display());
