@@ -204,6 +204,9 @@ impl Data<'_> {
     }
 }
 
+/// Iteration budget of one joint fit.
+pub(crate) const MAX_ITER: usize = 200;
+
 /// Fits the law from `theta0`; `fit_temperature` false keeps c_T fixed.
 pub(crate) fn fit_law(
     obs: &[[Observation<f64>; 2]],
@@ -213,6 +216,32 @@ pub(crate) fn fit_law(
     theta0: Theta,
     fit_temperature: bool,
 ) -> Result<LawFit, LawError> {
+    fit_law_budget(
+        obs,
+        temps,
+        sigma_ref_s_m,
+        t_ref_c,
+        (theta0, None),
+        fit_temperature,
+        MAX_ITER,
+    )
+}
+
+/// [`fit_law`] with at most `max_iter` iterations, from `start`: a law
+/// and, to go on with an earlier fit of the same samples, their
+/// parameters (`LawFit::params`; `None` starts each sample from its
+/// readings). A fit that ends with its budget says so
+/// (`LawFit::converged` false) and can be continued from its result.
+pub(crate) fn fit_law_budget(
+    obs: &[[Observation<f64>; 2]],
+    temps: &[f64],
+    sigma_ref_s_m: f64,
+    t_ref_c: f64,
+    start: (Theta, Option<&[[f64; 3]]>),
+    fit_temperature: bool,
+    max_iter: usize,
+) -> Result<LawFit, LawError> {
+    let (theta0, ps0) = start;
     let data = Data {
         obs,
         temps,
@@ -225,23 +254,29 @@ pub(crate) fn fit_law(
     // Per-sample start, from the readings alone: sigma from the loss at the
     // lower frequency (where conduction dominates eps''), eps_hf from eps'
     // at the higher one, d_eps from the drop of eps' between the two.
-    let mut ps: Vec<[f64; 3]> = obs
-        .iter()
-        .map(|o| {
-            let (lo, hi) = (o[0], o[1]);
-            let omega_eps0 = 2.0 * std::f64::consts::PI * lo.freq_hz * crate::EPS0;
-            let sigma = (omega_eps0 * (-lo.eps.im)).max(1e-7);
-            let d_eps = (lo.eps.re - hi.eps.re).max(0.1);
-            [hi.eps.re, d_eps, sigma.ln()]
-        })
-        .collect();
-    let mut theta = theta0;
-    for (i, p) in ps.iter_mut().enumerate() {
-        data.refine_sample(i, p, &theta);
-    }
+    let theta = theta0;
+    let mut ps: Vec<[f64; 3]> = match ps0 {
+        Some(p) if p.len() == n => p.to_vec(),
+        _ => {
+            let mut ps: Vec<[f64; 3]> = obs
+                .iter()
+                .map(|o| {
+                    let (lo, hi) = (o[0], o[1]);
+                    let omega_eps0 = 2.0 * std::f64::consts::PI * lo.freq_hz * crate::EPS0;
+                    let sigma = (omega_eps0 * (-lo.eps.im)).max(1e-7);
+                    let d_eps = (lo.eps.re - hi.eps.re).max(0.1);
+                    [hi.eps.re, d_eps, sigma.ln()]
+                })
+                .collect();
+            for (i, p) in ps.iter_mut().enumerate() {
+                data.refine_sample(i, p, &theta);
+            }
+            ps
+        }
+    };
+    let mut theta = theta;
     let mut cost = data.cost(&ps, &theta);
     let mut damping = Damping::new(1e-3);
-    let max_iter = 200;
     let mut converged = false;
     let mut trial_ps = ps.clone();
     let mut cache: Vec<(Vector4<f64>, J4x3, Matrix4<f64>)> = Vec::with_capacity(n);

@@ -1464,6 +1464,9 @@ fn relax_features(
 /// How many distinct probe laws start the joint law fit on all samples.
 const LAW_STARTS: usize = 3;
 
+/// Iterations each start of the joint law fit gets before the best goes on.
+const LAW_RACE: usize = 25;
+
 /// Both stages on the samples `rows`.
 fn relaxation_core(
     samples: &[Sample],
@@ -1538,16 +1541,22 @@ fn relaxation_core(
     if starts.is_empty() {
         starts.push([0.2, (lf0 + lf1) / 2.0, 1.0, 0.0]);
     }
+    // Each start runs a short race of `LAW_RACE` iterations; only the
+    // lowest cost goes on, with the rest of the budget. (On a product whose
+    // spectra determine the law poorly every start crawls along a flat
+    // valley to the end of its budget, and three whole runs were most of
+    // the fit's time: wood chips at 1/20 MHz.)
     let mut law_fit: Option<law::LawFit> = None;
     let mut last_err = law::LawError::Singular;
     for theta0 in starts {
-        match law::fit_law(
+        match law::fit_law_budget(
             &obs,
             &temps,
             sigma_ref_s_m,
             t_ref_c,
-            theta0,
+            (theta0, None),
             opts.fit_fr_temperature,
+            LAW_RACE,
         ) {
             Ok(fit) => {
                 if law_fit.as_ref().is_none_or(|b| fit.cost < b.cost) {
@@ -1555,6 +1564,20 @@ fn relaxation_core(
                 }
             }
             Err(e) => last_err = e,
+        }
+    }
+    if let Some(lead) = law_fit.as_ref().filter(|f| !f.converged) {
+        match law::fit_law_budget(
+            &obs,
+            &temps,
+            sigma_ref_s_m,
+            t_ref_c,
+            (lead.theta, Some(&lead.params)),
+            opts.fit_fr_temperature,
+            law::MAX_ITER - LAW_RACE,
+        ) {
+            Ok(fit) if fit.cost <= lead.cost => law_fit = Some(fit),
+            _ => {}
         }
     }
     let law_fit = law_fit.ok_or(ProductFitError::LawNotDetermined {
