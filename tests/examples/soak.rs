@@ -10,7 +10,9 @@
 //! `--kills K` SIGKILLs of each device's monitor [100], `--devices D` [1],
 //! `--error-rate E` byte error rate of the line [0.001], `--scale S`
 //! device seconds per wall second [50], `--disconnect-every S` device
-//! seconds between 1 s disconnects [600], `--seed N` [FRINGE_SEED or 1].
+//! seconds between 1 s disconnects [600], `--seed N` [FRINGE_SEED or 1],
+//! `--gateway`: all devices through one `fringe gateway`, which is killed,
+//! rather than a `fringe monitor` per device.
 //! Prints one JSON line per device and a closing line; exits non-zero (a
 //! panic naming the device and seed) on the first reading lost,
 //! duplicated or changed.
@@ -26,10 +28,15 @@ fn main() {
         time_scale: 50.0,
         disconnect_every_s: 600.0,
         seed: fringe_tests::seed(1),
+        gateway: false,
     };
     let args: Vec<String> = std::env::args().skip(1).collect();
     let mut it = args.iter();
     while let Some(flag) = it.next() {
+        if flag == "--gateway" {
+            o.gateway = true;
+            continue;
+        }
         let value = it
             .next()
             .unwrap_or_else(|| panic!("{flag} needs a value (see the example's doc)"));
@@ -66,6 +73,7 @@ fn main() {
             "byte_error_rate": o.byte_error_rate,
             "time_scale": o.time_scale,
             "seed": o.seed,
+            "through": if o.gateway { "one gateway" } else { "a monitor per device" },
             "seconds": started.elapsed().as_secs_f64(),
             "verdict": "every reading each device logged is stored exactly once, as sent; chain verified",
         })

@@ -37,6 +37,9 @@ pub struct SoakOptions {
     pub disconnect_every_s: f64,
     /// Seed of the faults, the noise and the kill moments.
     pub seed: u64,
+    /// All devices through one `fringe gateway` (killed instead of the
+    /// monitors) rather than a monitor per device.
+    pub gateway: bool,
 }
 
 /// What one device's soak did.
@@ -47,15 +50,17 @@ pub struct DeviceSoak {
     /// Readings in the store at the end (each checked against what the
     /// device sent, none missing, none twice).
     pub readings: u64,
-    /// SIGKILLs of the monitor.
+    /// SIGKILLs of the monitor (of the gateway, shared by its devices).
     pub kills: u32,
-    /// Of those, kills before the monitor had committed anything in its run.
+    /// Of those, kills before the monitor had committed anything in its run
+    /// (the gateway: anything of any device).
     pub early_kills: u32,
-    /// Monitor runs.
+    /// Monitor runs (gateway runs).
     pub monitor_runs: u32,
     /// Of those, runs that ended by themselves because the port did not
     /// exist when they started (a disconnect of the line: `fringe monitor`
     /// exits 10 then, and a service manager starts it again, as here).
+    /// Always 0 through the gateway, which waits for the port.
     pub port_missing_exits: u32,
     /// The simulator's closing line (bytes, faults, disconnects).
     pub line: String,
@@ -66,6 +71,9 @@ pub struct DeviceSoak {
 /// Runs the soak; panics (naming the device and the seed) on the first
 /// reading lost, duplicated or changed, or a chain that does not verify.
 pub fn soak(opts: &SoakOptions) -> Vec<DeviceSoak> {
+    if opts.gateway {
+        return soak_gateway(opts);
+    }
     let handles: Vec<_> = (0..opts.devices)
         .map(|i| {
             let o = opts.clone();
@@ -78,11 +86,10 @@ pub fn soak(opts: &SoakOptions) -> Vec<DeviceSoak> {
         .collect()
 }
 
-fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
-    let start = Instant::now();
+/// Device `index`'s serial, seed and simulated line.
+fn device_spec(opts: &SoakOptions, index: u32) -> (String, u64, ScenarioSpec) {
     let serial = format!("HGM-SOAK-{:04}", index + 1);
     let seed = opts.seed.wrapping_add(u64::from(index) * 7919);
-    let ctx = format!("soak {serial}, FRINGE_SEED={}", opts.seed);
     let mut spec = ScenarioSpec::clean(&serial, seed);
     spec.time_scale = opts.time_scale;
     spec.drop_per_byte = opts.byte_error_rate / 2.0;
@@ -97,6 +104,13 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
             at += opts.disconnect_every_s;
         }
     }
+    (serial, seed, spec)
+}
+
+fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
+    let start = Instant::now();
+    let (serial, seed, spec) = device_spec(opts, index);
+    let ctx = format!("soak {serial}, FRINGE_SEED={}", opts.seed);
     let sim = Sim::start(&spec);
     let db = sim.path("soak.db");
     let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
@@ -168,6 +182,24 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
             kill(&mut child);
         }
     }
+    let (n, line) = check_device(&sim, &serial, &db, &ctx);
+    DeviceSoak {
+        serial,
+        readings: n,
+        kills,
+        early_kills,
+        monitor_runs: runs,
+        port_missing_exits: missing,
+        line,
+        seconds: start.elapsed().as_secs_f64(),
+    }
+}
+
+/// With nothing else reading the device: a `fringe pull` of everything it
+/// logged up to now into `db`, the simulator stopped, and the checks
+/// (panics on the first failure). The readings stored and the
+/// simulator's closing line.
+fn check_device(sim: &Sim, serial: &str, db: &Path, ctx: &str) -> (u64, String) {
     // What the device holds now, then everything it logged up to then.
     let o = run(
         &mut fringe(&["status", "--port", sim.port_str(), "--json"]),
@@ -179,7 +211,7 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
         .as_u64()
         .and_then(|c| c.checked_sub(1))
         .unwrap_or_else(|| panic!("{ctx}: the device has logged nothing: {status}"));
-    let o = run(&mut sim.pull(&db, &[]), Duration::from_secs(600));
+    let o = run(&mut sim.pull(db, &[]), Duration::from_secs(600));
     assert_eq!(o.code, 0, "{ctx}: pull: {}", o.stderr);
     sim.signal("-TERM");
     poll_until(
@@ -194,8 +226,8 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
         .unwrap_or_default()
         .to_string();
 
-    let stored = stored_readings(&db, &serial);
-    let n = assert_gapless(&stored, &sim.recorded(), &ctx) as u64;
+    let stored = stored_readings(db, serial);
+    let n = assert_gapless(&stored, &sim.recorded(), ctx) as u64;
     let (first, last) = (stored[0].seq, stored[stored.len() - 1].seq);
     assert!(
         stored.iter().all(|r| r.seq.boot == first.boot),
@@ -209,18 +241,149 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
         u64::from(last.counter) >= last_logged,
         "{ctx}: the device had logged up to {last_logged}, the store ends at {last}"
     );
-    let store = fringe_host::store::Store::open_read_only(&db).expect("open the store");
+    let store = fringe_host::store::Store::open_read_only(db).expect("open the store");
     assert!(store.verify_chain().expect("verify").ok(), "{ctx}: chain");
-    DeviceSoak {
-        serial,
-        readings: n,
-        kills,
-        early_kills,
-        monitor_runs: runs,
-        port_missing_exits: missing,
-        line,
-        seconds: start.elapsed().as_secs_f64(),
+    (n, line)
+}
+
+/// The soak through one gateway: every device on its own faulty line,
+/// all of them read by one `fringe gateway` into one SQLite store; the
+/// gateway is killed with SIGKILL at random moments (a quarter of them
+/// anywhere in its start, the rest after the devices have stored a share
+/// together) and started again, as a service manager would; then each
+/// device is pulled and checked as in the monitor's soak.
+fn soak_gateway(opts: &SoakOptions) -> Vec<DeviceSoak> {
+    let start = Instant::now();
+    let devices: Vec<(String, Sim)> = (0..opts.devices)
+        .map(|i| {
+            let (serial, _, spec) = device_spec(opts, i);
+            (serial, Sim::start(&spec))
+        })
+        .collect();
+    let ctx = format!(
+        "gateway soak of {} devices, FRINGE_SEED={}",
+        opts.devices, opts.seed
+    );
+    let dir = tempfile::tempdir().expect("a folder for the gateway");
+    let db = dir.path().join("soak.db");
+    let glog = dir.path().join("gateway.log");
+    let mut site = String::from("store = \"soak.db\"\ndrift_every_s = 0\n\n");
+    for (i, (_, sim)) in devices.iter().enumerate() {
+        site.push_str(&format!(
+            "[[device]]\nunit = {}\nport = \"{}\"\n\n",
+            i + 1,
+            sim.port_str()
+        ));
     }
+    let site_path = dir.path().join("site.toml");
+    std::fs::write(&site_path, site).expect("write the site file");
+    let mut rng = rand::rngs::StdRng::seed_from_u64(opts.seed);
+    let all = opts.readings * u64::from(opts.devices);
+    let per_kill = all / u64::from(opts.kills.max(1) + 1);
+    let (mut kills, mut early_kills, mut runs) = (0u32, 0u32, 0u32);
+    let counts = |db: &Path| -> Vec<u64> {
+        devices
+            .iter()
+            .map(|(serial, _)| reading_count(db, serial))
+            .collect()
+    };
+    let total = |db: &Path| counts(db).iter().sum::<u64>();
+    let ended = |child: &mut Child| -> bool {
+        match child.try_wait().expect("wait for the gateway") {
+            None => false,
+            Some(st) => panic!(
+                "{ctx}: the gateway ended by itself ({st}); its log (end):\n{}",
+                tail(&glog, 40)
+            ),
+        }
+    };
+    loop {
+        let before = total(&db);
+        let log = std::fs::OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(&glog)
+            .expect("gateway log");
+        let mut child = crate::fringe(&["gateway", "--config", site_path.to_str().unwrap()])
+            .stdout(std::process::Stdio::null())
+            .stderr(log)
+            .spawn()
+            .expect("start fringe gateway");
+        runs += 1;
+        if kills < opts.kills && rng.random_bool(0.25) {
+            std::thread::sleep(Duration::from_millis(rng.random_range(0..400)));
+            ended(&mut child);
+            kill(&mut child);
+            kills += 1;
+            if total(&db) == before {
+                early_kills += 1;
+            }
+            continue;
+        }
+        let last = kills >= opts.kills;
+        let share = if last {
+            // The last run: until every device has its readings.
+            opts.readings * u64::from(opts.devices)
+        } else {
+            (per_kill as f64 * rng.random_range(0.5..1.5)) as u64
+        };
+        let target = before + share.max(1);
+        let limit = Duration::from_secs(60) + Duration::from_secs_f64(share as f64 / 20.0);
+        poll_until(
+            limit,
+            || {
+                format!(
+                    "{ctx}: the gateway did not reach {} (has {:?}); gateway log (end):\n{}",
+                    if last {
+                        format!("{} readings of each device", opts.readings)
+                    } else {
+                        format!("{target} readings in all")
+                    },
+                    counts(&db),
+                    tail(&glog, 40)
+                )
+            },
+            || {
+                std::thread::sleep(Duration::from_millis(50));
+                ended(&mut child);
+                if last {
+                    counts(&db).iter().all(|n| *n >= opts.readings)
+                } else {
+                    total(&db) >= target
+                }
+            },
+        );
+        if last {
+            kill(&mut child);
+            break;
+        }
+        std::thread::sleep(Duration::from_millis(rng.random_range(0..300)));
+        kill(&mut child);
+        kills += 1;
+    }
+    let per_device_s = start.elapsed().as_secs_f64();
+    devices
+        .iter()
+        .map(|(serial, sim)| {
+            let ctx = format!("{ctx}, {serial}");
+            let (n, line) = check_device(sim, serial, &db, &ctx);
+            assert!(
+                n >= opts.readings,
+                "{ctx}: {n} readings stored, fewer than {}",
+                opts.readings
+            );
+            DeviceSoak {
+                serial: serial.clone(),
+                readings: n,
+                kills,
+                early_kills,
+                monitor_runs: runs,
+                port_missing_exits: 0,
+                line,
+                seconds: per_device_s,
+            }
+        })
+        .collect()
 }
 
 impl DeviceSoak {
