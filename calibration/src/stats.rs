@@ -498,6 +498,81 @@ pub fn prediction_interval(
     })
 }
 
+/// Wilcoxon's signed-rank test of paired differences `d` (Wilcoxon,
+/// Biometrics Bulletin 1:80-83, 1945; the large-sample normal form as in
+/// Hollander and Wolfe, Nonparametric Statistical Methods, ch. 3; from
+/// memory): zero differences are dropped, the others ranked by size (ties
+/// at their mean rank), and `W+` is the sum of the ranks of the positive
+/// ones. Under the null hypothesis (differences symmetric about zero) `W+`
+/// has mean `m (m + 1) / 4` and variance `m (m + 1) (2m + 1) / 24` less
+/// `sum (t^3 - t) / 48` over groups of `t` tied sizes; `z` is the
+/// standardised `W+` without a continuity correction. Checked against
+/// `scipy.stats.wilcoxon(d, zero_method="wilcox", correction=False,
+/// method="approx")` in `tests/signed_rank_scipy.rs`. `None` with fewer
+/// than three non-zero differences or a non-finite one.
+pub fn signed_rank(d: &[f64]) -> Option<SignedRank> {
+    if !d.iter().all(|v| v.is_finite()) {
+        return None;
+    }
+    let mut abs: Vec<(f64, bool)> = d
+        .iter()
+        .filter(|v| **v != 0.0)
+        .map(|v| (v.abs(), *v > 0.0))
+        .collect();
+    let m = abs.len();
+    if m < 3 {
+        return None;
+    }
+    abs.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let (mut w_plus, mut ties) = (0.0, 0.0);
+    let mut k = 0;
+    while k < m {
+        let mut e = k;
+        while e + 1 < m && abs[e + 1].0 == abs[k].0 {
+            e += 1;
+        }
+        // Ranks k+1 ..= e+1 share their mean.
+        let rank = (k + e) as f64 / 2.0 + 1.0;
+        w_plus += rank * abs[k..=e].iter().filter(|a| a.1).count() as f64;
+        let t = (e - k + 1) as f64;
+        ties += t * t * t - t;
+        k = e + 1;
+    }
+    let mf = m as f64;
+    let mean = mf * (mf + 1.0) / 4.0;
+    let var = mf * (mf + 1.0) * (2.0 * mf + 1.0) / 24.0 - ties / 48.0;
+    let z = if var > 0.0 {
+        (w_plus - mean) / var.sqrt()
+    } else {
+        0.0
+    };
+    Some(SignedRank { m, w_plus, z })
+}
+
+/// The result of [`signed_rank`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SignedRank {
+    /// Non-zero differences ranked.
+    pub m: usize,
+    /// Sum of the ranks of the positive differences.
+    pub w_plus: f64,
+    /// `W+` standardised under the null hypothesis (normal approximation).
+    pub z: f64,
+}
+
+/// Quantile of the standard normal distribution (`p` in (0, 1)).
+///
+/// # Errors
+/// [`StatsError::BadConfidence`] for `p` outside (0, 1).
+pub fn normal_quantile(p: f64) -> Result<f64, StatsError> {
+    if !(p > 0.0 && p < 1.0) {
+        return Err(StatsError::BadConfidence(p));
+    }
+    let n =
+        statrs::distribution::Normal::new(0.0, 1.0).map_err(|_| StatsError::BadConfidence(p))?;
+    Ok(n.inverse_cdf(p))
+}
+
 /// Quantile of Student's t distribution with `dof` degrees of freedom.
 ///
 /// # Errors
