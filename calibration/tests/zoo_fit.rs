@@ -204,9 +204,10 @@ fn baseline_sep(b: &Baseline, val: &[Sample]) -> f64 {
 }
 
 /// Every product at every frequency pair ([`TRAIN`] = 100 calibration
-/// samples, so that ridge's effective parameters fit the quality gate's five
-/// samples per parameter, which `compare_models` now keeps; 200 fresh
-/// validation samples): the comparison finishes and every reading of
+/// samples: at 60 the quality gate's five samples per parameter hold
+/// ridge to 11 effective parameters, and the chosen model did up to 1.95
+/// times worse than the baseline over FRINGE_SEED 1-16, BENCHMARKS.md; 200
+/// fresh validation samples): the comparison finishes and every reading of
 /// the validation set gets a moisture. The chosen model's validation SEP
 /// over the generic quadratic ridge baseline's (tests/common/baseline.rs)
 /// averages at most 1.05 over the 24 cases and is at most 1.4 in each; the
@@ -364,12 +365,12 @@ fn physics_wins_extrapolation_on_the_grain() {
 /// cross-validated SEP of the four and was chosen by it; on 200 fresh
 /// samples it did 1.84 times worse than the generic baseline. It is no
 /// longer chosen: its paired advantage over the kept model is not
-/// significant. (At 60 samples ridge's 13-19 effective parameters are over
-/// the gate's five samples per parameter, so ridge is not eligible here
-/// and the model written, PLS, does 1.5 times worse than the unconstrained
-/// baseline on fresh samples: BENCHMARKS.md; the zoo test above uses 100
-/// samples.) What is chosen must do at least 10 % better on the fresh
-/// samples than the lucky model (measured: 0.410 % against 0.505 %).
+/// significant. (At 60 samples ridge's penalty is held to the gate's five
+/// samples per parameter; the model written, ridge with 7 effective
+/// parameters, does 1.5 times worse than the unconstrained baseline on
+/// fresh samples: BENCHMARKS.md; the zoo test above uses 100 samples.)
+/// What is chosen must do at least 10 % better on the fresh samples than
+/// the lucky model (measured: 0.410 % against 0.505 %).
 /// (Fixed data: one seed of the zoo.)
 #[test]
 fn a_lucky_cross_validated_sep_does_not_choose_the_model() {
@@ -386,8 +387,16 @@ fn a_lucky_cross_validated_sep_does_not_choose_the_model() {
             .map(|f| f.stats.cross_validation.sep)
             .expect("fitted")
     };
-    // The case as it was: the single-frequency model's SEP is below ridge's.
-    assert!(cv_sep(Candidate::SingleFrequency) < cv_sep(Candidate::MultivariateRidge));
+    // The case: the single-frequency model's cross-validated SEP is within
+    // 2 % of the smallest of the eligible models'. (It was the smallest,
+    // below ridge's, until ridge's penalty was held within the gate's
+    // budget: now 0.363 % against ridge's 0.357 %.)
+    assert!(
+        cv_sep(Candidate::SingleFrequency) < 1.02 * cmp.best_sep,
+        "single-frequency {:.3} against the best {:.3}",
+        cv_sep(Candidate::SingleFrequency),
+        cmp.best_sep
+    );
     assert_ne!(cmp.chosen, Candidate::SingleFrequency);
     match cmp
         .paired
@@ -397,9 +406,9 @@ fn a_lucky_cross_validated_sep_does_not_choose_the_model() {
         // Compared with the default: its advantage is not significant.
         Some(single) => assert!(
             !single.significant(),
-            "single-frequency advantage t {:.2} against {:.2}",
-            single.t,
-            single.critical
+            "single-frequency advantage z {:.2} against {:.2}",
+            single.z,
+            single.critical_z
         ),
         // It was the default (the smallest SEP with ridge not eligible):
         // another model was significantly better than it.
@@ -432,18 +441,22 @@ fn a_lucky_cross_validated_sep_does_not_choose_the_model() {
 }
 
 /// Regression (a single high-leverage sample): on the cereal with bound
-/// water at 5/50 MHz (seed 15 of the zoo) one calibration sample has a
-/// leverage of about 0.999 in the ridge model; its leave-one-out error
-/// carried most of the cross-validated sum of squares, the prediction
-/// intervals built from it covered all 200 fresh samples (the product's
-/// three pairs 99.8 %, above the 99.5 % the zoo test allows). The
-/// intervals now count it as at leverage 0.5 (`LEVERAGE_CAP`) and the fit
-/// names it in a note; the cross-validated statistics keep it as it is.
+/// water at 5/50 MHz (seed 15 of the zoo, 60 samples) one calibration
+/// sample had a leverage of about 0.999 in the ridge model; its
+/// leave-one-out error carried most of the cross-validated sum of squares,
+/// the prediction intervals built from it covered all 200 fresh samples
+/// (the product's three pairs 99.8 %, above the 99.5 % the zoo test
+/// allows). The intervals now count it as at leverage 0.5 (`LEVERAGE_CAP`)
+/// and the fit names it in a note; the cross-validated statistics keep it
+/// as it is. (With ridge's penalty held within the gate's budget, 60
+/// samples no longer give such a sample; the case is now 100 samples of
+/// the same product at 1/20 MHz, seed 15, a sample of leverage 0.990,
+/// found by a sweep of seeds 1-30.)
 #[test]
 fn one_high_leverage_sample_does_not_set_the_intervals() {
     let f = Family::cereal_bound_water();
-    let pair = FREQ_PAIRS[2];
-    let train = f.samples(&Draw::new(60, pair), 15);
+    let pair = FREQ_PAIRS[0];
+    let train = f.samples(&Draw::new(100, pair), 15);
     let val = f.samples(&Draw::new(200, pair), 15 + 1000);
     let fit = fit_multivariate(
         &train,

@@ -178,7 +178,7 @@ pub enum FitModel {
     Multivariate,
     /// PLS regression on the same features (components by cross-validation).
     Pls,
-    /// Every model under the same cross-validation; `--out` gets ridge unless another is significantly better (paired t test).
+    /// Every model under the same cross-validation; `--out` gets ridge unless another is significantly better (paired signed-rank test).
     Compare,
 }
 
@@ -726,7 +726,9 @@ pub fn outcome_json(o: &FitOutcome, out: &Path) -> serde_json::Value {
                 "n": p.n,
                 "mean_advantage_pct2": p.mean_advantage,
                 "t": p.t,
-                "critical_t": p.critical,
+                "critical_t": p.critical_t,
+                "z": p.z,
+                "critical_z": p.critical_z,
                 "significant": p.significant(),
             })).collect::<Vec<_>>()),
             "sep_ratio_single_over_chosen": o.sep_ratio,
@@ -843,15 +845,15 @@ pub fn write_fit_summary(
         }
         writeln!(
             w,
-            "  kept unless another model is significantly better (paired t test on the same samples, 5 %): {} (SEP {:.3} %)",
+            "  kept unless another model is significantly better (signed-rank test on the same samples, 5 %): {} (SEP {:.3} %)",
             rule.kept, rule.kept_sep
         )?;
         for (m, p) in &rule.paired {
             writeln!(
                 w,
-                "    {m:<20} t = {:>6.2} against {:.2} over {} samples: {}",
-                p.t,
-                p.critical,
+                "    {m:<20} z = {:>6.2} against {:.2} over {} samples: {}",
+                p.z,
+                p.critical_z,
                 p.n,
                 if p.significant() {
                     "significantly better"

@@ -13,7 +13,7 @@ pub enum FitModelArg {
     Multivariate,
     /// PLS regression on the same features (components by cross-validation).
     Pls,
-    /// Every model under the same cross-validation; `--out` gets ridge unless another is significantly better (paired t test); only models within five samples per parameter are chosen.
+    /// Every model under the same cross-validation; `--out` gets ridge unless another is significantly better (paired signed-rank test); only models within five samples per parameter are chosen.
     Compare,
 }
 
