@@ -63,6 +63,10 @@ fn main() {
         total.0 += d.readings;
         total.1 += d.kills;
     }
+    if o.gateway {
+        // One gateway for all: its kills once, not once per device.
+        total.1 = report.first().map_or(0, |d| d.kills);
+    }
     println!(
         "{}",
         serde_json::json!({

@@ -50,6 +50,12 @@ pub struct DeviceSoak {
     /// Readings in the store at the end (each checked against what the
     /// device sent, none missing, none twice).
     pub readings: u64,
+    /// Of those, the readings the monitor (the gateway) had stored, with no
+    /// gap from the device's first, before the closing `fringe pull` took
+    /// the rest (those the device logged after the last run was killed).
+    pub stored_by_host: u64,
+    /// Whether the readings came through one gateway for all devices.
+    pub through_gateway: bool,
     /// SIGKILLs of the monitor (of the gateway, shared by its devices).
     pub kills: u32,
     /// Of those, kills before the monitor had committed anything in its run
@@ -60,7 +66,8 @@ pub struct DeviceSoak {
     /// Of those, runs that ended by themselves because the port did not
     /// exist when they started (a disconnect of the line: `fringe monitor`
     /// exits 10 then, and a service manager starts it again, as here).
-    /// Always 0 through the gateway, which waits for the port.
+    /// Not counted through the gateway (which waits for the port): null
+    /// in the JSON.
     pub port_missing_exits: u32,
     /// The simulator's closing line (bytes, faults, disconnects).
     pub line: String,
@@ -71,6 +78,7 @@ pub struct DeviceSoak {
 /// Runs the soak; panics (naming the device and the seed) on the first
 /// reading lost, duplicated or changed, or a chain that does not verify.
 pub fn soak(opts: &SoakOptions) -> Vec<DeviceSoak> {
+    assert!(opts.devices >= 1, "the soak needs at least one device");
     if opts.gateway {
         return soak_gateway(opts);
     }
@@ -96,8 +104,11 @@ fn device_spec(opts: &SoakOptions, index: u32) -> (String, u64, ScenarioSpec) {
     spec.flip_per_byte = opts.byte_error_rate / 2.0;
     spec.garbage_per_frame = opts.byte_error_rate;
     if opts.disconnect_every_s > 0.0 {
-        // Device time the run will take, with room to spare.
-        let run_s = opts.readings as f64 * f64::from(spec.interval_ms) / 1000.0 * 2.0;
+        // Device time the run can take, with room to spare: the device logs
+        // ahead of the host (its own pace, while the host restarts and
+        // catches up), so twice the time of the readings asked for fell
+        // short and the disconnects stopped partway through a run.
+        let run_s = opts.readings as f64 * f64::from(spec.interval_ms) / 1000.0 * 20.0 + 3600.0;
         let mut at = opts.disconnect_every_s;
         while at < run_s {
             spec.disconnects.push((at, 1.0));
@@ -167,7 +178,8 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
             || {
                 std::thread::sleep(Duration::from_millis(50));
                 ended = exited(&mut child, &ctx, &sim);
-                ended || count(&db) >= target
+                // The last run: until the monitor has filled every gap too.
+                ended || (count(&db) >= target && (kills < opts.kills || gapless(&db, &serial)))
             },
         );
         if ended {
@@ -182,10 +194,13 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
             kill(&mut child);
         }
     }
-    let (n, line) = check_device(&sim, &serial, &db, &ctx);
+    let (n, by_host, line) = check_device(&sim, &serial, &db, &ctx);
+    assert_chain(&db, &ctx);
     DeviceSoak {
         serial,
         readings: n,
+        stored_by_host: by_host,
+        through_gateway: false,
         kills,
         early_kills,
         monitor_runs: runs,
@@ -195,24 +210,54 @@ fn soak_device(opts: &SoakOptions, index: u32) -> DeviceSoak {
     }
 }
 
-/// With nothing else reading the device: a `fringe pull` of everything it
-/// logged up to now into `db`, the simulator stopped, and the checks
-/// (panics on the first failure). The readings stored and the
+/// With nothing else reading the device: the host's own work checked
+/// (what it stored has no gap from the device's first reading: a reading
+/// it lost would otherwise be filled by the pull), then a `fringe pull` of
+/// everything the device logged up to now into `db`, the simulator
+/// stopped, and the checks (panics on the first failure). The readings
+/// stored in all, those the host had stored before the pull, and the
 /// simulator's closing line.
-fn check_device(sim: &Sim, serial: &str, db: &Path, ctx: &str) -> (u64, String) {
+fn check_device(sim: &Sim, serial: &str, db: &Path, ctx: &str) -> (u64, u64, String) {
+    assert!(
+        gapless(db, serial),
+        "{ctx}: what the host stored has gaps before the closing pull: {:?}",
+        fringe_host::store::Store::open_read_only(db).and_then(|s| s.gaps(serial))
+    );
+    let by_host = reading_count(db, serial);
     // What the device holds now, then everything it logged up to then.
-    let o = run(
-        &mut fringe(&["status", "--port", sim.port_str(), "--json"]),
+    // The line keeps its disconnects meanwhile: a status or pull that loses
+    // its port is run again, as a person would (a pull commits what it has
+    // read and stores only what is missing), while it makes progress: up
+    // to five tries in a row that store nothing.
+    let retried = |what: &str, cmd: &dyn Fn() -> std::process::Command, limit: Duration| {
+        let (mut last, mut idle) = (String::new(), 0);
+        while idle < 5 {
+            let before = reading_count(db, serial);
+            let o = run(&mut cmd(), limit);
+            if o.code == 0 {
+                return o;
+            }
+            last = o.stderr;
+            idle = if reading_count(db, serial) > before {
+                0
+            } else {
+                idle + 1
+            };
+            std::thread::sleep(Duration::from_millis(200));
+        }
+        panic!("{ctx}: {what} failed five times in a row with no progress; the last: {last}")
+    };
+    let o = retried(
+        "status",
+        &|| fringe(&["status", "--port", sim.port_str(), "--json"]),
         DEADLINE,
     );
-    assert_eq!(o.code, 0, "{ctx}: status: {}", o.stderr);
     let status: serde_json::Value = serde_json::from_str(&o.stdout).expect("status --json");
     let last_logged = status["next_seq"]["counter"]
         .as_u64()
         .and_then(|c| c.checked_sub(1))
         .unwrap_or_else(|| panic!("{ctx}: the device has logged nothing: {status}"));
-    let o = run(&mut sim.pull(db, &[]), Duration::from_secs(600));
-    assert_eq!(o.code, 0, "{ctx}: pull: {}", o.stderr);
+    retried("pull", &|| sim.pull(db, &[]), Duration::from_secs(600));
     sim.signal("-TERM");
     poll_until(
         DEADLINE,
@@ -241,9 +286,14 @@ fn check_device(sim: &Sim, serial: &str, db: &Path, ctx: &str) -> (u64, String) 
         u64::from(last.counter) >= last_logged,
         "{ctx}: the device had logged up to {last_logged}, the store ends at {last}"
     );
+    (n, by_host, line)
+}
+
+/// The hash chain of the whole store verifies (once nothing writes to it).
+fn assert_chain(db: &Path, ctx: &str) {
     let store = fringe_host::store::Store::open_read_only(db).expect("open the store");
-    assert!(store.verify_chain().expect("verify").ok(), "{ctx}: chain");
-    (n, line)
+    let v = store.verify_chain().expect("verify");
+    assert!(v.ok(), "{ctx}: the chain does not verify: {v:?}");
 }
 
 /// The soak through one gateway: every device on its own faulty line,
@@ -335,7 +385,7 @@ fn soak_gateway(opts: &SoakOptions) -> Vec<DeviceSoak> {
                 format!(
                     "{ctx}: the gateway did not reach {} (has {:?}); gateway log (end):\n{}",
                     if last {
-                        format!("{} readings of each device", opts.readings)
+                        format!("{} readings of each device, with no gap", opts.readings)
                     } else {
                         format!("{target} readings in all")
                     },
@@ -347,7 +397,9 @@ fn soak_gateway(opts: &SoakOptions) -> Vec<DeviceSoak> {
                 std::thread::sleep(Duration::from_millis(50));
                 ended(&mut child);
                 if last {
+                    // Every device's readings, and every gap filled.
                     counts(&db).iter().all(|n| *n >= opts.readings)
+                        && devices.iter().all(|(serial, _)| gapless(&db, serial))
                 } else {
                     total(&db) >= target
                 }
@@ -362,26 +414,38 @@ fn soak_gateway(opts: &SoakOptions) -> Vec<DeviceSoak> {
         kills += 1;
     }
     let per_device_s = start.elapsed().as_secs_f64();
+    // Each device checked on its own thread at once: the devices keep
+    // logging, and one after another the last would have the longest
+    // backlog to pull.
+    let checks: Vec<_> = std::thread::scope(|scope| {
+        let handles: Vec<_> = devices
+            .iter()
+            .map(|(serial, sim)| {
+                let ctx = format!("{ctx}, {serial}");
+                let db = &db;
+                scope.spawn(move || check_device(sim, serial, db, &ctx))
+            })
+            .collect();
+        handles
+            .into_iter()
+            .map(|h| h.join().unwrap_or_else(|e| std::panic::resume_unwind(e)))
+            .collect()
+    });
+    assert_chain(&db, &ctx);
     devices
         .iter()
-        .map(|(serial, sim)| {
-            let ctx = format!("{ctx}, {serial}");
-            let (n, line) = check_device(sim, serial, &db, &ctx);
-            assert!(
-                n >= opts.readings,
-                "{ctx}: {n} readings stored, fewer than {}",
-                opts.readings
-            );
-            DeviceSoak {
-                serial: serial.clone(),
-                readings: n,
-                kills,
-                early_kills,
-                monitor_runs: runs,
-                port_missing_exits: 0,
-                line,
-                seconds: per_device_s,
-            }
+        .zip(checks)
+        .map(|((serial, _), (n, by_host, line))| DeviceSoak {
+            serial: serial.clone(),
+            readings: n,
+            stored_by_host: by_host,
+            through_gateway: true,
+            kills,
+            early_kills,
+            monitor_runs: runs,
+            port_missing_exits: 0,
+            line,
+            seconds: per_device_s,
         })
         .collect()
 }
@@ -392,10 +456,12 @@ impl DeviceSoak {
         serde_json::json!({
             "serial": self.serial,
             "readings": self.readings,
+            "stored_by_host": self.stored_by_host,
+            "through": if self.through_gateway { "gateway" } else { "monitor" },
             "kills": self.kills,
             "early_kills": self.early_kills,
             "monitor_runs": self.monitor_runs,
-            "port_missing_exits": self.port_missing_exits,
+            "port_missing_exits": (!self.through_gateway).then_some(self.port_missing_exits),
             "line": self.line,
             "seconds": self.seconds,
         })
@@ -428,9 +494,39 @@ fn kill(child: &mut Child) {
     let _ = child.wait();
 }
 
+/// Whether `db` holds `serial`'s readings with no gap from its first
+/// (counter 0 of its boot); false before the file exists.
+fn gapless(db: &Path, serial: &str) -> bool {
+    fringe_host::store::Store::open_read_only(db)
+        .and_then(|s| s.gaps(serial))
+        .is_ok_and(|g| g.is_empty())
+        && reading_count(db, serial) > 0
+}
+
+/// The number of disconnects in the simulator's closing line.
+pub fn disconnects(line: &str) -> Option<u32> {
+    let head = &line[..line.find(" disconnect")?];
+    head.rsplit(|c: char| !c.is_ascii_digit())
+        .next()?
+        .parse()
+        .ok()
+}
+
 /// Readings of `serial` committed in `db` (0 before the file exists).
 fn reading_count(db: &Path, serial: &str) -> u64 {
     fringe_host::store::Store::open_read_only(db)
         .and_then(|s| s.reading_count(serial))
         .unwrap_or(0)
+}
+
+#[cfg(test)]
+mod tests {
+    /// The count is read from the simulator's closing line as `fringe sim`
+    /// prints it (`host/src/cmd/sim.rs`).
+    #[test]
+    fn disconnects_are_read_from_the_closing_line() {
+        let line = "fringe sim: stopped; 8207 bytes in, 200117 bytes out, 28529 lost while no host read, 5 disconnects; line faults: 110 bytes dropped, 139 with a bit flipped, 18 garbage bytes inserted";
+        assert_eq!(super::disconnects(line), Some(5));
+        assert_eq!(super::disconnects("fringe sim: stopped"), None);
+    }
 }
