@@ -1578,6 +1578,35 @@ mod tests {
         ));
     }
 
+    /// A record put beyond the head behind the chain's back (the head not
+    /// moved) is reported, though the walk leaves records beyond the head
+    /// it read first to the next verification (a writer's, meanwhile).
+    #[test]
+    fn a_record_added_beyond_the_head_is_seen() {
+        let (_d, mut s) = file_store();
+        let batch: Vec<Reading> = (0..5).map(|c| reading(1, c)).collect();
+        s.insert_readings(SERIAL, &batch, Source::Stream).unwrap();
+        let (head, _) = s.chain_head().unwrap();
+        tamper(
+            &s,
+            &format!(
+                "INSERT INTO readings SELECT {}, device, boot, counter + 100, time_ms, channels, \
+                 temperature_c, moisture_pct, uncertainty_pct, flags, cell_cal, product_cal, \
+                 source, hash FROM readings WHERE position = {head}",
+                head + 1
+            ),
+        );
+        let p = s.verify_chain().unwrap().problems;
+        assert!(
+            p.iter().any(|x| matches!(
+                x,
+                ChainProblem::HeadMismatch { head_position, last_position }
+                    if *head_position == head && *last_position == head + 1
+            )),
+            "{p:?}"
+        );
+    }
+
     #[test]
     fn disk_full_is_reported_as_such() {
         let (_d, mut s) = file_store();
