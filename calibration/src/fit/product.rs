@@ -2181,6 +2181,7 @@ fn mv_core(
                         pick = Some((press, a, at.edf));
                     }
                 }
+                let within = pick.is_some();
                 let (press, a, edf) = pick
                     .or(any)
                     .ok_or(ls(FitError::RankDeficient { rank: 0, params: p }))?;
@@ -2191,7 +2192,12 @@ fn mv_core(
                     lev,
                     edf,
                     format!(
-                        "ridge on {p} features, penalty {a:.3e} on standardised features (leave-one-out), {edf:.1} effective parameters"
+                        "ridge on {p} features, penalty {a:.3e} on standardised features (leave-one-out{}), {edf:.1} effective parameters",
+                        if within {
+                            ", within five samples per parameter"
+                        } else {
+                            "; no penalty keeps five samples per parameter, the best of all taken"
+                        }
                     ),
                 )
             }
@@ -2468,12 +2474,16 @@ pub struct PairedTest {
     /// this model's), %^2: > 0 where this model predicted better.
     pub mean_advantage: f64,
     /// The signed-rank statistic of the per-sample differences (default's
-    /// absolute error minus this model's), standardised: > 0 where this
-    /// model's errors are smaller on most samples.
+    /// absolute error minus this model's), standardised: > 0 where the
+    /// differences favouring this model outweigh the others in rank.
     pub z: f64,
     /// The one-sided 5 % critical value (the standard normal's 95 %
-    /// quantile) `z` had to exceed.
+    /// quantile) of `z`.
     pub critical_z: f64,
+    /// One-sided p value of the signed-rank test: exact with at most
+    /// [`crate::stats::EXACT_MAX`] differing samples, else from `z`. The
+    /// choice takes the model as better below 0.05.
+    pub p: f64,
     /// The paired t statistic of the squared-error differences, `mean /
     /// (sd / sqrt(n))`: the test until 2026-12-03, still reported, not
     /// used in the choice.
@@ -2484,10 +2494,10 @@ pub struct PairedTest {
 
 impl PairedTest {
     /// Whether this model's advantage over the default is significant: a
-    /// positive mean advantage in squared error, and the signed-rank test
-    /// one-sided at 5 %.
+    /// positive mean advantage in squared error, and the signed-rank test's
+    /// one-sided p below 5 %.
     pub fn significant(&self) -> bool {
-        self.mean_advantage > 0.0 && self.z > self.critical_z
+        self.mean_advantage > 0.0 && self.p < 0.05
     }
 
     /// The paired test of `candidate`'s cross-validated predictions against
@@ -2526,6 +2536,7 @@ impl PairedTest {
             mean_advantage: mean,
             z: ranks.z,
             critical_z: crate::stats::normal_quantile(0.95).ok()?,
+            p: ranks.p_greater(),
             t,
             critical_t: crate::stats::t_quantile(0.95, (n - 1) as f64).ok()?,
         })
@@ -2595,9 +2606,9 @@ impl ModelComparison {
 /// ([`ModelComparison::eligible`]) replaces it only when its per-sample
 /// advantage over the same samples is significant ([`PairedTest`]: a
 /// positive mean advantage in squared cross-validated error, and smaller
-/// absolute errors on most samples by Wilcoxon's signed-rank test,
-/// one-sided at 5 %); among several, the one with the largest mean
-/// advantage. Without an
+/// absolute errors by Wilcoxon's signed-rank test of the per-sample
+/// differences, one-sided at 5 %, exact up to 25 differing samples);
+/// among several, the one with the largest mean advantage. Without an
 /// eligible ridge fit the eligible model with the smallest cross-validated
 /// SEP is the default.
 ///
@@ -2902,29 +2913,38 @@ mod tests {
 
     /// The paired test's arithmetic on a case worked by hand (consistency
     /// test): lab values 0, the other model exact, the default's errors
-    /// 1, sqrt 2, sqrt 3, 2, so the squared-error differences are 1, 2, 3,
-    /// 4 (mean 2.5); the absolute-error differences are all positive, so
-    /// W+ = 1 + 2 + 3 + 4 = 10 against a mean of 4 * 5 / 4 = 5 and a
-    /// variance of 4 * 5 * 9 / 24 = 7.5: z = 5 / sqrt 7.5 = 1.826, above
-    /// the normal's 95 % quantile 1.645 (from memory): significant.
+    /// sqrt 1 .. sqrt 6, so the squared-error differences are 1 .. 6 (mean
+    /// 3.5); the absolute-error differences are all positive, so W+ = 21
+    /// against a mean of 6 * 7 / 4 = 10.5 and a variance of 6 * 7 * 13 /
+    /// 24 = 22.75: z = 10.5 / sqrt 22.75 = 2.201; exactly, one sign pattern
+    /// of 2^6 gives W+ = 21: p = 1/64, significant. With four samples the
+    /// same pattern has p = 1/16 (z 1.83 notwithstanding): not significant.
     #[test]
     fn paired_test_worked_by_hand() {
-        let y = [0.0; 4];
-        let default = [1.0, 2f64.sqrt(), 3f64.sqrt(), 2.0];
-        let other = [0.0; 4];
-        let p = PairedTest::of(Candidate::Relaxation, &y, &default, &other).expect("4 samples");
-        assert_eq!(p.n, 4);
-        assert!((p.mean_advantage - 2.5).abs() < 1e-12, "{p:?}");
-        assert!((p.z - 5.0 / 7.5f64.sqrt()).abs() < 1e-12, "{p:?}");
+        let y = [0.0; 6];
+        let default: Vec<f64> = (1..=6).map(|k| f64::from(k).sqrt()).collect();
+        let other = [0.0; 6];
+        let p = PairedTest::of(Candidate::Relaxation, &y, &default, &other).expect("6 samples");
+        assert_eq!(p.n, 6);
+        assert!((p.mean_advantage - 3.5).abs() < 1e-12, "{p:?}");
+        assert!((p.z - 10.5 / 22.75f64.sqrt()).abs() < 1e-12, "{p:?}");
+        assert!((p.p - 1.0 / 64.0).abs() < 1e-12, "{p:?}");
         assert!((p.critical_z - 1.645).abs() < 1e-3, "{p:?}");
-        // The t test still reported: SD sqrt(5/3), t = 2.5 / (sqrt(5/3) /
-        // 2) = 3.873 against t(0.95, 3) = 2.353 (Student's t table; from
-        // memory).
-        assert!((p.t - 3.872_983).abs() < 1e-5, "{p:?}");
-        assert!((p.critical_t - 2.353).abs() < 1e-3, "{p:?}");
         assert!(p.significant());
+        // The t test still reported: SD sqrt 3.5, t = 3.5 / (sqrt 3.5 /
+        // sqrt 6) = 4.583 against t(0.95, 5) = 2.015 (Student's t table;
+        // from memory).
+        assert!((p.t - 4.582_576).abs() < 1e-5, "{p:?}");
+        assert!((p.critical_t - 2.015).abs() < 1e-3, "{p:?}");
+        let four = PairedTest::of(Candidate::Relaxation, &y[..4], &default[..4], &other[..4])
+            .expect("4 samples");
+        assert!(
+            four.z > four.critical_z && (four.p - 0.0625).abs() < 1e-12,
+            "{four:?}"
+        );
+        assert!(!four.significant());
         // The other way round the advantage is negative: never significant.
-        let q = PairedTest::of(Candidate::Relaxation, &y, &other, &default).expect("4 samples");
+        let q = PairedTest::of(Candidate::Relaxation, &y, &other, &default).expect("6 samples");
         assert!(q.mean_advantage < 0.0 && !q.significant(), "{q:?}");
         // A sample without a prediction in either is left out; fewer than
         // three left: no test.

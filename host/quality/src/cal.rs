@@ -729,6 +729,7 @@ pub fn outcome_json(o: &FitOutcome, out: &Path) -> serde_json::Value {
                 "critical_t": p.critical_t,
                 "z": p.z,
                 "critical_z": p.critical_z,
+                "p": p.p,
                 "significant": p.significant(),
             })).collect::<Vec<_>>()),
             "sep_ratio_single_over_chosen": o.sep_ratio,
@@ -851,9 +852,13 @@ pub fn write_fit_summary(
         for (m, p) in &rule.paired {
             writeln!(
                 w,
-                "    {m:<20} z = {:>6.2} against {:.2} over {} samples: {}",
+                "    {m:<20} z = {:>6.2}, p {} over {} samples: {}",
                 p.z,
-                p.critical_z,
+                if p.p < 0.001 {
+                    "< 0.001".to_string()
+                } else {
+                    format!("= {:.3}", p.p)
+                },
                 p.n,
                 if p.significant() {
                     "significantly better"
