@@ -18,7 +18,9 @@ use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
 
-use fringe_protocol::{CalId, ChannelValue, Flags, Reading, Seq};
+mod common;
+
+use fringe_protocol::Reading;
 use fringe_sqlite::Store;
 use fringe_store::{Source, StoreError};
 use rand::{rngs::StdRng, RngExt as _, SeedableRng};
@@ -26,24 +28,7 @@ use rand::{rngs::StdRng, RngExt as _, SeedableRng};
 const SERIAL: &str = "HGM-L2-0400";
 
 fn reading(counter: u32) -> Reading {
-    let x = counter as f32;
-    let ch = ChannelValue {
-        g_s: 1.2e-6 + x * 1e-12,
-        b_s: 2.1e-4,
-        eps_re: 6.5 + (x * 0.01).sin(),
-        eps_im: 0.8,
-    };
-    Reading {
-        seq: Seq { boot: 3, counter },
-        time_ms: 1_780_000_000_000 + u64::from(counter) * 1000,
-        channels: [ch, ch],
-        temperature_c: 21.0 + (x * 0.002).sin(),
-        moisture_pct: Some(14.0 + (x * 0.003).sin()),
-        uncertainty_pct: 0.3,
-        flags: Flags::empty(),
-        cell_cal: CalId([1, 2, 3, 4]),
-        product_cal: CalId([5, 6, 7, 8]),
-    }
+    common::reading(3, counter)
 }
 
 fn batch(range: std::ops::Range<u32>) -> Vec<Reading> {

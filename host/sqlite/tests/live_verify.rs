@@ -9,30 +9,12 @@
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 
-use fringe_protocol::{CalId, ChannelValue, Flags, Reading, Seq};
+mod common;
+
+use common::reading;
+use fringe_protocol::Reading;
 use fringe_sqlite::Store;
 use fringe_store::Source;
-
-fn reading(serial_no: u32, counter: u32) -> Reading {
-    let x = counter as f32 + serial_no as f32;
-    let ch = ChannelValue {
-        g_s: 1.2e-6,
-        b_s: 2.1e-4,
-        eps_re: 6.5 + (x * 0.01).sin(),
-        eps_im: 0.8,
-    };
-    Reading {
-        seq: Seq { boot: 1, counter },
-        time_ms: 1_780_000_000_000 + u64::from(counter) * 100,
-        channels: [ch, ch],
-        temperature_c: 21.0,
-        moisture_pct: Some(14.0),
-        uncertainty_pct: 0.3,
-        flags: Flags::empty(),
-        cell_cal: CalId([1, 2, 3, 4]),
-        product_cal: CalId([5, 6, 7, 8]),
-    }
-}
 
 #[test]
 fn a_verification_beside_writers_sees_one_consistent_chain() {
@@ -49,7 +31,7 @@ fn a_verification_beside_writers_sees_one_consistent_chain() {
                 let serial = format!("HGM-LV-000{w}");
                 let mut c = 0u32;
                 while !stop.load(Ordering::Relaxed) && c < 40_000 {
-                    let batch: Vec<Reading> = (c..c + 5).map(|k| reading(w, k)).collect();
+                    let batch: Vec<Reading> = (c..c + 5).map(|k| reading(1, k)).collect();
                     let t = std::time::Instant::now();
                     s.insert_readings(&serial, &batch, Source::Stream)
                         .unwrap_or_else(|e| panic!("insert at {c} after {:?}: {e:?}", t.elapsed()));
