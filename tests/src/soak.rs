@@ -498,9 +498,8 @@ fn kill(child: &mut Child) {
 /// (counter 0 of its boot); false before the file exists.
 fn gapless(db: &Path, serial: &str) -> bool {
     fringe_host::store::Store::open_read_only(db)
-        .and_then(|s| s.gaps(serial))
-        .is_ok_and(|g| g.is_empty())
-        && reading_count(db, serial) > 0
+        .and_then(|s| Ok(s.gaps(serial)?.is_empty() && s.reading_count(serial)? > 0))
+        .unwrap_or(false)
 }
 
 /// The number of disconnects in the simulator's closing line.

@@ -254,7 +254,6 @@ pub(crate) fn fit_law_budget(
     // Per-sample start, from the readings alone: sigma from the loss at the
     // lower frequency (where conduction dominates eps''), eps_hf from eps'
     // at the higher one, d_eps from the drop of eps' between the two.
-    let theta = theta0;
     let mut ps: Vec<[f64; 3]> = match ps0 {
         Some(p) if p.len() == n => p.to_vec(),
         _ => {
@@ -269,12 +268,12 @@ pub(crate) fn fit_law_budget(
                 })
                 .collect();
             for (i, p) in ps.iter_mut().enumerate() {
-                data.refine_sample(i, p, &theta);
+                data.refine_sample(i, p, &theta0);
             }
             ps
         }
     };
-    let mut theta = theta;
+    let mut theta = theta0;
     let mut cost = data.cost(&ps, &theta);
     let mut damping = Damping::new(1e-3);
     let mut converged = false;
