@@ -1078,3 +1078,183 @@ fn the_gateway_feeds_the_plants_density_from_mqtt_to_the_device() {
     );
     stop(gw.0.take().expect("running"), &stderr2);
 }
+
+/// Runs `tests/python/modbus_density.py`: pymodbus writes `kg_m3` to
+/// `unit`'s density registers (from `source_ip` when given) and reads them
+/// back; its JSON answer.
+fn modbus_density(addr: &str, unit: u8, kg_m3: &str, source_ip: Option<&str>) -> Value {
+    let (host, port) = addr.rsplit_once(':').expect("HOST:PORT");
+    let mut cmd = Command::new(python());
+    cmd.arg(workspace_root().join("tests/python/modbus_density.py"))
+        .args([host, port, &unit.to_string(), kg_m3]);
+    if let Some(ip) = source_ip {
+        cmd.arg(ip);
+    }
+    let o = cmd.output().expect("run modbus_density.py");
+    assert!(
+        o.status.success(),
+        "modbus_density.py: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    serde_json::from_slice(&o.stdout).expect("JSON")
+}
+
+/// The plant's bulk density from a PLC over Modbus TCP: a device
+/// commissioned with a calibration that takes a density, a site file
+/// feeding it from Modbus (`[device.density] from = "modbus"`, the PLC's
+/// address in `[modbus] density_writers`), and pymodbus writing the float32
+/// as a PLC would (function 16). A value in g/cm3 earns exception 03 and a
+/// writer not listed (another loopback address) exception 01, each said
+/// with the value or the address, nothing sent, the registers unchanged; a
+/// good one is read back (function 03), said as sent, and the device's
+/// readings then carry moisture without `density_missing`, read through
+/// the input registers by pymodbus.
+#[test]
+#[ignore = "needs FRINGE_PYTHON (the venv): `cargo xtask test` runs it"]
+fn the_gateway_takes_a_plcs_density_over_modbus_to_the_device() {
+    use fringe_tests::bench::{commission_with_density, key_file};
+    use fringe_tests::{fringe, poll_until, ScenarioSpec, Sim, DEADLINE};
+
+    const MISSING: u64 = 1 << 11; // Flags::DENSITY_MISSING
+    let seed = fringe_tests::seed(47);
+    let sim = Sim::start(&ScenarioSpec::clean("PLT-M-0001", seed));
+    let key = key_file(&sim);
+    commission_with_density(&sim, &key, &sim.path("bench.db"));
+    let dir = tempfile::tempdir().expect("dir");
+    let site_file = dir.path().join("site.toml");
+    std::fs::write(
+        &site_file,
+        format!(
+            "name = \"modbus density test\"\nstore = \"site.db\"\nstatus_every_s = 0.5\n\n\
+             [modbus]\nlisten = \"127.0.0.1:0\"\ndensity_writers = [\"127.0.0.1\"]\n\n\
+             [[device]]\nunit = 1\nport = \"{}\"\nkey_file = \"{}\"\n\
+             [device.density]\nfrom = \"modbus\"\nhold_s = 60\n",
+            sim.port_str(),
+            key.display()
+        ),
+    )
+    .expect("site");
+    let err_path = dir.path().join("gw.err");
+    let mut gw = Running(Some(
+        fringe(&["gateway", "--config", site_file.to_str().unwrap(), "--json"])
+            .stdout(std::process::Stdio::null())
+            .stderr(std::fs::File::create(&err_path).expect("err"))
+            .spawn()
+            .expect("start fringe gateway"),
+    ));
+    let stderr = || std::fs::read_to_string(&err_path).unwrap_or_default();
+    let mut addr = String::new();
+    poll_until(
+        DEADLINE,
+        || format!("seed {seed}: no Modbus address said:\n{}", stderr()),
+        || {
+            addr = stderr()
+                .split("Modbus TCP on ")
+                .nth(1)
+                .and_then(|r| r.split_whitespace().next().map(str::to_string))
+                .unwrap_or_default();
+            !addr.is_empty()
+        },
+    );
+    assert!(
+        stderr().contains("takes the bulk density of unit(s) 1 from 127.0.0.1 only")
+            && stderr().contains("no authentication"),
+        "seed {seed}: the caution at start: {}",
+        stderr()
+    );
+    let (host, port) = addr.rsplit_once(':').expect("addr");
+    let flags = || -> Option<u64> {
+        let o = Command::new(python())
+            .arg(workspace_root().join("tests/python/modbus_read.py"))
+            .args([host, port, "1"])
+            .output()
+            .expect("run modbus_read.py");
+        let v: Value = serde_json::from_slice(&o.stdout).ok()?;
+        let u = &v["units"]["1"];
+        // Flags (register 11) of a reading with a moisture.
+        u["moisture_pct"].as_f64()?;
+        u["registers"][11].as_u64()
+    };
+    poll_until(
+        DEADLINE,
+        || {
+            format!(
+                "seed {seed}: no reading flagged density_missing:\n{}",
+                stderr()
+            )
+        },
+        || flags().is_some_and(|f| f & MISSING != 0),
+    );
+
+    // Until the device has answered the gateway, a write earns 0B; then
+    // the g/cm3 value is refused with 03.
+    let mut refused = Value::Null;
+    poll_until(
+        DEADLINE,
+        || {
+            format!(
+                "seed {seed}: the g/cm3 write went on earning 0B:\n{}",
+                stderr()
+            )
+        },
+        || {
+            refused = modbus_density(&addr, 1, "1.65", None);
+            refused["write_exception"] != 11
+        },
+    );
+    assert_eq!(refused["write_exception"], 3, "seed {seed}: {refused}");
+    assert!(refused["read_back"].is_null(), "seed {seed}: {refused}");
+    let other = modbus_density(&addr, 1, "1650", Some("127.0.0.2"));
+    assert_eq!(other["write_exception"], 1, "seed {seed}: {other}");
+    assert!(other["read_back"].is_null(), "seed {seed}: {other}");
+    // Said (the gateway writes its notices a tick later).
+    poll_until(
+        DEADLINE,
+        || format!("seed {seed}: both refusals not said:\n{}", stderr()),
+        || {
+            let e = stderr();
+            e.lines().any(|l| {
+                l.contains("Modbus TCP unit 1 from 127.0.0.1")
+                    && l.contains("1.65")
+                    && l.contains("looks like g/cm3")
+                    && l.contains("nothing sent")
+            }) && e.lines().any(|l| {
+                l.contains("127.0.0.2 is not in the site file's [modbus] density_writers")
+                    && l.contains("nothing sent")
+            })
+        },
+    );
+    assert!(
+        !stderr().contains("kg/m3 from Modbus"),
+        "seed {seed}: {}",
+        stderr()
+    );
+
+    let good = modbus_density(&addr, 1, "1650.5", None);
+    assert!(good["write_exception"].is_null(), "seed {seed}: {good}");
+    assert_eq!(good["read_back"], 1650.5, "seed {seed}: {good}");
+    // 1650.5 as pymodbus puts it: 0x44CE 0x5000.
+    assert_eq!(good["registers"], serde_json::json!([0x44CE, 0x5000]));
+    poll_until(
+        DEADLINE,
+        || format!("seed {seed}: the density was not sent:\n{}", stderr()),
+        || {
+            stderr().lines().any(|l| {
+                l.contains("bulk density 1650.5 kg/m3 from Modbus TCP unit 1 from 127.0.0.1")
+                    && l.contains("sent, held")
+            })
+        },
+    );
+    poll_until(
+        DEADLINE,
+        || format!("seed {seed}: no reading with the density:\n{}", stderr()),
+        || flags().is_some_and(|f| f & MISSING == 0),
+    );
+    let ok = Command::new("kill")
+        .args(["-TERM", &gw.0.as_ref().expect("running").id().to_string()])
+        .status()
+        .expect("kill");
+    assert!(ok.success());
+    let status = gw.0.take().expect("running").wait().expect("wait");
+    assert_eq!(status.code(), Some(0), "seed {seed}: {}", stderr());
+}

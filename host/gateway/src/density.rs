@@ -1,11 +1,13 @@
-//! The plant's bulk density, from the plant's MQTT broker to the devices
-//! whose site entry has `[device.density]` (protocol 1.4's signed
-//! `SetDensity`).
+//! The plant's bulk density, from the plant's MQTT broker or a PLC over
+//! Modbus TCP to the devices whose site entry has `[device.density]`
+//! (protocol 1.4's signed `SetDensity`).
 //!
 //! The MQTT worker takes each value from the broker (a Sparkplug DCMD
 //! metric [`BULK_DENSITY`], or a JSON message on
-//! `{json_prefix}/{serial}/density`), checks it and posts it here with the
-//! time it arrived; the device's line session sends it between readings,
+//! `{json_prefix}/{serial}/density`), the Modbus server from a write of a
+//! unit's holding registers (`crate::modbus`); each checks it and posts it
+//! here with the time it arrived, and a device takes values only from the
+//! source its site entry names. The device's line session sends it between readings,
 //! to hold for the site file's `hold_s` counted from its arrival. A device
 //! that has lost it (a reboot, a reconnect, another product selected: its
 //! readings flag `density_missing` again) gets it again for what is left
@@ -22,6 +24,7 @@ use std::time::Instant;
 
 use fringe_line::check_density;
 
+use crate::site::DensitySource;
 use crate::sparkplug::{Payload, Value};
 
 /// The Sparkplug DCMD metric (and JSON key) of a bulk density, kg/m3.
@@ -47,8 +50,9 @@ pub struct Order {
 #[derive(Default)]
 struct State {
     next: u64,
-    /// Serial -> unit of the devices fed from here (known once they answer).
-    fed: HashMap<String, u8>,
+    /// Serial -> unit and source of the devices fed from here (known once
+    /// they answer).
+    fed: HashMap<String, (u8, DensitySource)>,
     orders: HashMap<String, Order>,
 }
 
@@ -87,9 +91,29 @@ impl DensityInbox {
         (self.tell)(0, None, text.to_string());
     }
 
-    /// The device of `unit` answered as `serial` and takes densities from here.
-    pub fn feed(&self, serial: &str, unit: u8) {
-        self.lock().fed.insert(serial.to_string(), unit);
+    /// Says `text` as an error of the density feed of the device of `unit`.
+    pub fn say_for(&self, unit: u8, text: &str) {
+        (self.tell)(unit, None, text.to_string());
+    }
+
+    /// The device of `unit` answered as `serial` and takes densities from
+    /// here, from `from` only.
+    pub fn feed(&self, serial: &str, unit: u8, from: DensitySource) {
+        let mut s = self.lock();
+        // One serial per unit: a device replaced on the same port answers
+        // with its own serial, and the old one no longer takes values.
+        s.fed.retain(|_, (u, _)| *u != unit);
+        s.fed.insert(serial.to_string(), (unit, from));
+    }
+
+    /// The serial of the device of `unit` that takes densities from `from`
+    /// (`None`: none has answered yet, or it takes them from elsewhere).
+    pub fn serial_of(&self, unit: u8, from: DensitySource) -> Option<String> {
+        self.lock()
+            .fed
+            .iter()
+            .find(|(_, (u, f))| *u == unit && *f == from)
+            .map(|(s, _)| s.clone())
     }
 
     /// Whether the device `serial` takes densities from here.
@@ -97,14 +121,19 @@ impl DensityInbox {
         self.lock().fed.contains_key(serial)
     }
 
+    /// Whether the device `serial` takes densities from `from`.
+    pub fn is_fed_from(&self, serial: &str, from: DensitySource) -> bool {
+        self.lock().fed.get(serial).is_some_and(|f| f.1 == from)
+    }
+
     /// The latest density for `serial`.
     pub fn latest(&self, serial: &str) -> Option<Order> {
         self.lock().orders.get(serial).cloned()
     }
 
-    /// A value that arrived at `received` from `source` for `serial`:
-    /// kept for the device when it is a bulk density it can take; said and
-    /// dropped otherwise.
+    /// A value that arrived at `received` by `from` (in words: `source`)
+    /// for `serial`: kept for the device when it is a bulk density it can
+    /// take from there; said and dropped otherwise.
     ///
     /// # Errors
     /// What is wrong with it, in words (also told).
@@ -112,20 +141,24 @@ impl DensityInbox {
         &self,
         serial: &str,
         value: Result<f64, String>,
+        from: DensitySource,
         source: &str,
         received: Instant,
     ) -> Result<u64, String> {
         let mut s = self.lock();
-        let unit = s.fed.get(serial).copied();
-        let checked = value.and_then(|v| {
-            if unit.is_none() {
-                Err(format!(
-                    "no device {serial} of this gateway takes a density (it has no \
-                     [device.density] in the site file, or has not answered yet)"
-                ))
-            } else {
-                check_density(v)
-            }
+        let fed = s.fed.get(serial).copied();
+        let unit = fed.map(|f| f.0);
+        let checked = value.and_then(|v| match fed {
+            None => Err(format!(
+                "no device {serial} of this gateway takes a density (it has no \
+                 [device.density] in the site file, or has not answered yet)"
+            )),
+            Some((_, takes)) if takes != from => Err(format!(
+                "device {serial} takes its density from {} (its [device.density] from), not from {}",
+                takes.name(),
+                from.name()
+            )),
+            Some(_) => check_density(v),
         });
         match checked {
             Ok(kg_m3) => {
@@ -225,10 +258,14 @@ mod tests {
     #[test]
     fn a_density_for_a_fed_device_is_kept_and_the_latest_wins() {
         let (inbox, told) = inbox();
-        inbox.feed("HGM-1", 3);
+        inbox.feed("HGM-1", 3, DensitySource::Mqtt);
         let t = Instant::now();
-        let a = inbox.post("HGM-1", Ok(730.0), "topic/a", t).unwrap();
-        let b = inbox.post("HGM-1", Ok(745.5), "topic/b", t).unwrap();
+        let a = inbox
+            .post("HGM-1", Ok(730.0), DensitySource::Mqtt, "topic/a", t)
+            .unwrap();
+        let b = inbox
+            .post("HGM-1", Ok(745.5), DensitySource::Mqtt, "topic/b", t)
+            .unwrap();
         assert!(b > a);
         let o = inbox.latest("HGM-1").unwrap();
         assert_eq!((o.seq, o.kg_m3, o.source.as_str()), (b, 745.5, "topic/b"));
@@ -238,9 +275,11 @@ mod tests {
     #[test]
     fn refusals_name_the_value_and_the_source_and_keep_the_last_good_one() {
         let (inbox, told) = inbox();
-        inbox.feed("HGM-1", 3);
+        inbox.feed("HGM-1", 3, DensitySource::Mqtt);
         let t = Instant::now();
-        inbox.post("HGM-1", Ok(730.0), "good", t).unwrap();
+        inbox
+            .post("HGM-1", Ok(730.0), DensitySource::Mqtt, "good", t)
+            .unwrap();
         for (v, needle) in [
             (1.65, "looks like g/cm3"),
             (0.0, "outside 10..=5000"),
@@ -249,10 +288,22 @@ mod tests {
             (f64::NAN, "not a number"),
             (f64::INFINITY, "not a number"),
         ] {
-            let e = inbox.post("HGM-1", Ok(v), "spBv1.0/g/DCMD/n/HGM-1", t);
+            let e = inbox.post(
+                "HGM-1",
+                Ok(v),
+                DensitySource::Mqtt,
+                "spBv1.0/g/DCMD/n/HGM-1",
+                t,
+            );
             assert!(e.as_ref().is_err_and(|e| e.contains(needle)), "{v}: {e:?}");
         }
-        let e = inbox.post("OTHER-2", Ok(730.0), "x/OTHER-2/density", t);
+        let e = inbox.post(
+            "OTHER-2",
+            Ok(730.0),
+            DensitySource::Mqtt,
+            "x/OTHER-2/density",
+            t,
+        );
         assert!(e.is_err_and(|e| e.contains("no device OTHER-2")));
         assert_eq!(inbox.latest("HGM-1").unwrap().kg_m3, 730.0);
         assert!(inbox.latest("OTHER-2").is_none());
@@ -262,6 +313,54 @@ mod tests {
         assert_eq!(told[6].unit, 0);
         assert!(told[0].text.contains("spBv1.0/g/DCMD/n/HGM-1") && told[0].text.contains("1.65"));
         assert!(told.iter().all(|n| n.text.contains("nothing sent")));
+    }
+
+    #[test]
+    fn a_device_takes_its_density_only_from_the_source_its_site_entry_names() {
+        let (inbox, told) = inbox();
+        inbox.feed("HGM-1", 3, DensitySource::Modbus);
+        inbox.feed("HGM-2", 4, DensitySource::Mqtt);
+        let t = Instant::now();
+        let e = inbox.post(
+            "HGM-1",
+            Ok(730.0),
+            DensitySource::Mqtt,
+            "spBv1.0/g/DCMD/n/HGM-1",
+            t,
+        );
+        assert!(
+            e.as_ref()
+                .is_err_and(|e| e.contains("takes its density from modbus")),
+            "{e:?}"
+        );
+        assert!(inbox.latest("HGM-1").is_none());
+        assert_eq!(
+            inbox.serial_of(3, DensitySource::Modbus).as_deref(),
+            Some("HGM-1")
+        );
+        assert_eq!(inbox.serial_of(4, DensitySource::Modbus), None);
+        assert_eq!(
+            inbox.serial_of(4, DensitySource::Mqtt).as_deref(),
+            Some("HGM-2")
+        );
+        inbox
+            .post(
+                "HGM-1",
+                Ok(1650.0),
+                DensitySource::Modbus,
+                "Modbus TCP unit 3 from 10.20.0.5",
+                t,
+            )
+            .unwrap();
+        assert_eq!(inbox.latest("HGM-1").unwrap().kg_m3, 1650.0);
+        // Another device answering on unit 3 replaces the first.
+        inbox.feed("HGM-9", 3, DensitySource::Modbus);
+        assert_eq!(
+            inbox.serial_of(3, DensitySource::Modbus).as_deref(),
+            Some("HGM-9")
+        );
+        assert!(!inbox.is_fed("HGM-1"));
+        assert_eq!(told.lock().unwrap().len(), 1);
     }
 
     fn dcmd(name: &str, value: Option<Value>) -> Vec<u8> {

@@ -1,20 +1,26 @@
-//! A read-only Modbus TCP server of the [`LiveTable`] (tokio-modbus).
+//! A Modbus TCP server of the [`LiveTable`] (tokio-modbus).
 //!
 //! Each device is one unit id. Function 04 (read input registers) answers
-//! from the register map of `fringe-registers`; every other function, the
-//! writes included, is refused with exception 01 (illegal function): no
-//! Modbus request changes a device. A unit the gateway does not serve is
+//! from the register map of `fringe-registers`. A unit gets one thing
+//! written only when its site entry says `[device.density] from =
+//! "modbus"`: the plant's bulk density, a float32 in holding registers
+//! 0-1, written with function 16 from an address of `[modbus]
+//! density_writers` ([`DensityWrites`]; function 03 reads back the last one
+//! taken). Every other function and every other write is refused with
+//! exception 01 (illegal function). A unit the gateway does not serve is
 //! answered with exception 0B (gateway target device failed to respond),
 //! the answer the Modbus application protocol specification V1.1b3 gives a
 //! gateway for a target it cannot reach.
 //!
 //! Modbus has no authentication: the server listens on localhost unless the
 //! site file says otherwise, and a plant network puts it inside its control
-//! zone behind the OT firewall (see `docs/MODBUS.md`).
+//! zone behind the OT firewall (see `docs/MODBUS.md`). A density changes
+//! the moisture a device reports; the list of writers is the only guard
+//! here, and an address can be borrowed on a network that lets it.
 
 use std::future;
 use std::io;
-use std::net::SocketAddr;
+use std::net::{IpAddr, SocketAddr};
 use std::sync::Arc;
 use std::time::Instant;
 
@@ -23,7 +29,123 @@ use tokio::net::TcpListener;
 use tokio_modbus::server::tcp::{accept_tcp_connection, Server};
 use tokio_modbus::{ExceptionCode, Request, Response, SlaveRequest};
 
+use crate::density::DensityInbox;
 use crate::live::LiveTable;
+use crate::site::DensitySource;
+
+/// Holding registers of a unit fed its density over Modbus: 0-1, the bulk
+/// density in kg/m3 as a float32.
+pub const DENSITY_REGISTERS: u16 = 2;
+
+/// What a Modbus server may write: the densities of the units whose site
+/// entry takes them from Modbus, from the addresses listed.
+#[derive(Clone)]
+pub struct DensityWrites {
+    /// Where the values go (and refusals are said).
+    pub inbox: Arc<DensityInbox>,
+    /// The units that take their density from Modbus.
+    pub units: Vec<u8>,
+    /// The addresses that may write (`[modbus] density_writers`).
+    pub writers: Vec<IpAddr>,
+}
+
+impl std::fmt::Debug for DensityWrites {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("DensityWrites")
+            .field("units", &self.units)
+            .field("writers", &self.writers)
+            .finish_non_exhaustive()
+    }
+}
+
+fn words_of(v: f32, order: WordOrder) -> [u16; 2] {
+    let b = v.to_bits();
+    let (hi, lo) = ((b >> 16) as u16, b as u16);
+    match order {
+        WordOrder::HighFirst => [hi, lo],
+        WordOrder::LowFirst => [lo, hi],
+    }
+}
+
+fn value_of(w: &[u16], order: WordOrder) -> f32 {
+    let (hi, lo) = match order {
+        WordOrder::HighFirst => (w[0], w[1]),
+        WordOrder::LowFirst => (w[1], w[0]),
+    };
+    f32::from_bits(u32::from(hi) << 16 | u32::from(lo))
+}
+
+/// Answers a request about a unit's density registers (functions 03, 06
+/// and 16) from `peer` at `now`.
+///
+/// # Errors
+/// The Modbus exception the request earns; a write refused for its value
+/// or its sender is also said through the inbox.
+pub fn answer_density(
+    writes: Option<&DensityWrites>,
+    unit: u8,
+    req: &Request<'_>,
+    peer: IpAddr,
+    now: Instant,
+    order: WordOrder,
+) -> Result<Response, ExceptionCode> {
+    let Some(w) = writes.filter(|w| w.units.contains(&unit)) else {
+        return Err(ExceptionCode::IllegalFunction);
+    };
+    match req {
+        Request::ReadHoldingRegisters(addr, count) => {
+            if *count == 0 || *count > 125 {
+                return Err(ExceptionCode::IllegalDataValue);
+            }
+            if u32::from(*addr) + u32::from(*count) > u32::from(DENSITY_REGISTERS) {
+                return Err(ExceptionCode::IllegalDataAddress);
+            }
+            let last = w
+                .inbox
+                .serial_of(unit, DensitySource::Modbus)
+                .and_then(|s| w.inbox.latest(&s))
+                .map_or(f32::NAN, |o| o.kg_m3);
+            let words = words_of(last, order);
+            Ok(Response::ReadHoldingRegisters(
+                words[usize::from(*addr)..usize::from(*addr + *count)].to_vec(),
+            ))
+        }
+        Request::WriteMultipleRegisters(addr, words) => {
+            if !w.writers.contains(&peer) {
+                w.inbox.say_for(
+                    unit,
+                    &format!(
+                        "density write from {peer} to Modbus unit {unit} refused, nothing sent: {peer} is not in the site file's [modbus] density_writers"
+                    ),
+                );
+                return Err(ExceptionCode::IllegalFunction);
+            }
+            if words.is_empty() || words.len() > 123 {
+                return Err(ExceptionCode::IllegalDataValue);
+            }
+            if *addr != 0 || words.len() != usize::from(DENSITY_REGISTERS) {
+                return Err(ExceptionCode::IllegalDataAddress);
+            }
+            let Some(serial) = w.inbox.serial_of(unit, DensitySource::Modbus) else {
+                // The device has not answered the gateway yet.
+                return Err(ExceptionCode::GatewayTargetDevice);
+            };
+            let v = value_of(words, order);
+            // Its shortest decimal form (1650.5, not 1650.5000000...).
+            let v64 = v.to_string().parse().unwrap_or(f64::from(v));
+            let source = format!("Modbus TCP unit {unit} from {peer}");
+            match w
+                .inbox
+                .post(&serial, Ok(v64), DensitySource::Modbus, &source, now)
+            {
+                Ok(_) => Ok(Response::WriteMultipleRegisters(*addr, DENSITY_REGISTERS)),
+                Err(_) => Err(ExceptionCode::IllegalDataValue),
+            }
+        }
+        // Half a float cannot be written: both registers, function 16.
+        _ => Err(ExceptionCode::IllegalFunction),
+    }
+}
 
 /// Answers one request from `table` at `now` (the whole logic of the
 /// server, callable without a socket).
@@ -69,6 +191,8 @@ pub fn answer_in(
 struct Service {
     table: Arc<LiveTable>,
     order: WordOrder,
+    density: Option<DensityWrites>,
+    peer: IpAddr,
 }
 
 impl tokio_modbus::server::Service for Service {
@@ -78,13 +202,24 @@ impl tokio_modbus::server::Service for Service {
     type Future = future::Ready<Result<Response, ExceptionCode>>;
 
     fn call(&self, req: Self::Request) -> Self::Future {
-        future::ready(answer_in(
-            &self.table,
-            req.slave,
-            &req.request,
-            Instant::now(),
-            self.order,
-        ))
+        let now = Instant::now();
+        future::ready(match req.request {
+            Request::ReadHoldingRegisters(..)
+            | Request::WriteSingleRegister(..)
+            | Request::WriteMultipleRegisters(..)
+                if self.table.snapshot(req.slave, now).is_some() =>
+            {
+                answer_density(
+                    self.density.as_ref(),
+                    req.slave,
+                    &req.request,
+                    self.peer,
+                    now,
+                    self.order,
+                )
+            }
+            _ => answer_in(&self.table, req.slave, &req.request, now, self.order),
+        })
     }
 }
 
@@ -113,6 +248,19 @@ impl ModbusServer {
     /// # Errors
     /// As [`ModbusServer::start`].
     pub fn start_in(addr: SocketAddr, table: Arc<LiveTable>, order: WordOrder) -> io::Result<Self> {
+        Self::start_with(addr, table, order, None)
+    }
+
+    /// As [`ModbusServer::start_in`], taking the densities of `density`.
+    ///
+    /// # Errors
+    /// As [`ModbusServer::start`].
+    pub fn start_with(
+        addr: SocketAddr,
+        table: Arc<LiveTable>,
+        order: WordOrder,
+        density: Option<DensityWrites>,
+    ) -> io::Result<Self> {
         let rt = tokio::runtime::Builder::new_current_thread()
             .enable_all()
             .build()?;
@@ -126,11 +274,16 @@ impl ModbusServer {
                     let server = Server::new(listener);
                     let on_connected = |stream, socket_addr| {
                         let table = Arc::clone(&table);
+                        let density = density.clone();
                         async move {
-                            accept_tcp_connection(stream, socket_addr, move |_| {
+                            accept_tcp_connection(stream, socket_addr, move |peer: SocketAddr| {
                                 Ok(Some(Service {
                                     table: Arc::clone(&table),
                                     order,
+                                    density: density.clone(),
+                                    // An IPv4 client on a dual-stack socket
+                                    // is seen as ::ffff:a.b.c.d.
+                                    peer: peer.ip().to_canonical(),
                                 }))
                             })
                         }
@@ -253,6 +406,173 @@ mod tests {
         assert_eq!(
             answer(&t, 3, &Request::ReadInputRegisters(24, 2), now),
             Err(ExceptionCode::IllegalDataAddress)
+        );
+    }
+
+    /// A table serving units 1 and 2, unit 2's density from Modbus from
+    /// 10.20.0.5, its device answered as HGM-2; what was told.
+    fn fed() -> (DensityWrites, Arc<std::sync::Mutex<Vec<String>>>) {
+        let told = Arc::new(std::sync::Mutex::new(Vec::new()));
+        let t = Arc::clone(&told);
+        let inbox = Arc::new(DensityInbox::new(Arc::new(move |unit, _, text| {
+            t.lock().unwrap().push(format!("{unit}: {text}"));
+        })));
+        inbox.feed("HGM-2", 2, DensitySource::Modbus);
+        (
+            DensityWrites {
+                inbox,
+                units: vec![2],
+                writers: vec!["10.20.0.5".parse().unwrap()],
+            },
+            told,
+        )
+    }
+
+    #[test]
+    fn a_listed_plc_writes_a_density_as_a_float32_and_reads_it_back() {
+        let (w, told) = fed();
+        let plc: IpAddr = "10.20.0.5".parse().unwrap();
+        let now = Instant::now();
+        let ask = |req: Request<'_>, order| answer_density(Some(&w), 2, &req, plc, now, order);
+        // Nothing yet: NaN (0x7FC0 0x0000).
+        assert_eq!(
+            ask(Request::ReadHoldingRegisters(0, 2), WordOrder::HighFirst),
+            Ok(Response::ReadHoldingRegisters(vec![0x7FC0, 0]))
+        );
+        // 1650.5 = 0x44CE5000 (IEEE 754; Python: struct.pack(">f", 1650.5)).
+        let words = [0x44CE, 0x5000];
+        assert_eq!(
+            ask(
+                Request::WriteMultipleRegisters(0, words[..].into()),
+                WordOrder::HighFirst
+            ),
+            Ok(Response::WriteMultipleRegisters(0, 2))
+        );
+        let o = w.inbox.latest("HGM-2").unwrap();
+        assert_eq!(o.kg_m3, 1650.5);
+        assert_eq!(o.source, "Modbus TCP unit 2 from 10.20.0.5");
+        assert_eq!(
+            ask(Request::ReadHoldingRegisters(0, 2), WordOrder::HighFirst),
+            Ok(Response::ReadHoldingRegisters(words.to_vec()))
+        );
+        assert_eq!(
+            ask(Request::ReadHoldingRegisters(1, 1), WordOrder::LowFirst),
+            Ok(Response::ReadHoldingRegisters(vec![0x44CE]))
+        );
+        // Low word first: the same value with its words swapped.
+        assert_eq!(
+            ask(
+                Request::WriteMultipleRegisters(0, [0x8000, 0x44CE][..].into()),
+                WordOrder::LowFirst
+            ),
+            Ok(Response::WriteMultipleRegisters(0, 2))
+        );
+        assert_eq!(w.inbox.latest("HGM-2").unwrap().kg_m3, 1652.0);
+        assert!(told.lock().unwrap().is_empty());
+    }
+
+    #[test]
+    fn density_writes_are_refused_with_the_exception_they_earn_and_change_nothing() {
+        let (w, told) = fed();
+        let plc: IpAddr = "10.20.0.5".parse().unwrap();
+        let now = Instant::now();
+        let good = [0x44CE, 0x5000];
+        let write = |unit, addr, words: &[u16], from: IpAddr| {
+            answer_density(
+                Some(&w),
+                unit,
+                &Request::WriteMultipleRegisters(addr, words.into()),
+                from,
+                now,
+                WordOrder::HighFirst,
+            )
+        };
+        // 1.65 (g/cm3 for kg/m3) = 0x3FD33333; NaN; 6000 = 0x45BB8000.
+        assert_eq!(
+            write(2, 0, &[0x3FD3, 0x3333], plc),
+            Err(ExceptionCode::IllegalDataValue)
+        );
+        assert_eq!(
+            write(2, 0, &[0x7FC0, 0], plc),
+            Err(ExceptionCode::IllegalDataValue)
+        );
+        assert_eq!(
+            write(2, 0, &[0x45BB, 0x8000], plc),
+            Err(ExceptionCode::IllegalDataValue)
+        );
+        // Another address, one register, three, past the end.
+        assert_eq!(
+            write(2, 1, &good, plc),
+            Err(ExceptionCode::IllegalDataAddress)
+        );
+        assert_eq!(
+            write(2, 0, &good[..1], plc),
+            Err(ExceptionCode::IllegalDataAddress)
+        );
+        assert_eq!(
+            write(2, 0, &[0x44CE, 0x5000, 0], plc),
+            Err(ExceptionCode::IllegalDataAddress)
+        );
+        // A sender not listed, a unit fed from elsewhere (1), no writes configured.
+        let other: IpAddr = "10.20.0.6".parse().unwrap();
+        assert_eq!(
+            write(2, 0, &good, other),
+            Err(ExceptionCode::IllegalFunction)
+        );
+        assert_eq!(write(1, 0, &good, plc), Err(ExceptionCode::IllegalFunction));
+        assert_eq!(
+            answer_density(
+                None,
+                2,
+                &Request::WriteMultipleRegisters(0, good[..].into()),
+                plc,
+                now,
+                WordOrder::HighFirst
+            ),
+            Err(ExceptionCode::IllegalFunction)
+        );
+        // Half a float (function 06); a read past the two registers.
+        let ask =
+            |req: Request<'_>| answer_density(Some(&w), 2, &req, plc, now, WordOrder::HighFirst);
+        assert_eq!(
+            ask(Request::WriteSingleRegister(0, 0x44CE)),
+            Err(ExceptionCode::IllegalFunction)
+        );
+        assert_eq!(
+            ask(Request::ReadHoldingRegisters(1, 2)),
+            Err(ExceptionCode::IllegalDataAddress)
+        );
+        assert_eq!(
+            ask(Request::ReadHoldingRegisters(0, 0)),
+            Err(ExceptionCode::IllegalDataValue)
+        );
+        assert!(w.inbox.latest("HGM-2").is_none(), "nothing taken");
+        let told = told.lock().unwrap();
+        // The three bad values (each with the value and the sender) and the
+        // sender not listed.
+        assert_eq!(told.len(), 4, "{told:?}");
+        assert!(
+            told[0].contains("1.65") && told[0].contains("from 10.20.0.5"),
+            "{told:?}"
+        );
+        assert!(
+            told[3].starts_with("2: ")
+                && told[3].contains("10.20.0.6 is not in the site file's [modbus] density_writers"),
+            "{told:?}"
+        );
+        // A device not yet answered: the gateway cannot reach it.
+        let (w2, _) = fed();
+        w2.inbox.feed("HGM-2", 7, DensitySource::Modbus);
+        assert_eq!(
+            answer_density(
+                Some(&w2),
+                2,
+                &Request::WriteMultipleRegisters(0, good[..].into()),
+                plc,
+                now,
+                WordOrder::HighFirst
+            ),
+            Err(ExceptionCode::GatewayTargetDevice)
         );
     }
 

@@ -431,7 +431,13 @@ impl Worker {
                 Format::Json { .. } => density::from_json(&p.payload),
             }
         };
-        let _ = inbox.post(serial, value, &p.topic, Instant::now());
+        let _ = inbox.post(
+            serial,
+            value,
+            crate::site::DensitySource::Mqtt,
+            &p.topic,
+            Instant::now(),
+        );
     }
 
     fn is_rebirth(&self, payload: &[u8]) -> bool {
@@ -475,7 +481,7 @@ impl Worker {
             .config
             .density
             .as_ref()
-            .is_some_and(|i| i.is_fed(device))
+            .is_some_and(|i| i.is_fed_from(device, crate::site::DensitySource::Mqtt))
         {
             p.metrics.push(sparkplug::density_metric(now_ms()));
         }

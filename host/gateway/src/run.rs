@@ -44,7 +44,7 @@ use fringe_store::{RecordLog, RecordStore};
 use crate::density::DensityInbox;
 use crate::lease::{LeaseRefused, Leases};
 use crate::live::{AlarmNote, LiveTable};
-use crate::modbus::ModbusServer;
+use crate::modbus::{DensityWrites, ModbusServer};
 use crate::mqtt::Publisher;
 use crate::shared::SharedStore;
 use crate::site::{DeviceSpec, Site};
@@ -396,10 +396,33 @@ impl Gateway {
             table.register(d.spec.unit, "");
             table.set_tag(d.spec.unit, &d.spec.tag);
         }
+        // The units a PLC feeds their density over Modbus.
+        let modbus_fed: Vec<u8> = devices
+            .iter()
+            .filter(|d| {
+                d.density.is_some()
+                    && d.spec.density.map(|f| f.from) == Some(crate::site::DensitySource::Modbus)
+            })
+            .map(|d| d.spec.unit)
+            .collect();
+        let density_writes = devices
+            .iter()
+            .find_map(|d| d.density.clone())
+            .filter(|_| !modbus_fed.is_empty())
+            .map(|inbox| DensityWrites {
+                inbox,
+                units: modbus_fed,
+                writers: site.density_writers.clone(),
+            });
         let modbus = match site.modbus {
             Some(addr) => Some(
-                ModbusServer::start_in(addr, Arc::clone(&table), site.modbus_word_order)
-                    .map_err(|source| GatewayError::Modbus { addr, source })?,
+                ModbusServer::start_with(
+                    addr,
+                    Arc::clone(&table),
+                    site.modbus_word_order,
+                    density_writes,
+                )
+                .map_err(|source| GatewayError::Modbus { addr, source })?,
             ),
             None => None,
         };
@@ -757,7 +780,7 @@ impl<S: RecordStore> Worker<S> {
         self.update(|s| s.serial = Some(serial.clone()));
         let mut feeder = match (&self.run.density, self.run.spec.density, self.run.key) {
             (Some(inbox), Some(feed), Some(key)) => {
-                inbox.feed(&serial, unit);
+                inbox.feed(&serial, unit, feed.from);
                 Some(Feeder {
                     inbox: Arc::clone(inbox),
                     hold: feed.hold,

@@ -13,6 +13,8 @@
 //! [modbus]                            # optional; absent: no Modbus TCP server
 //! listen = "127.0.0.1:1502"           # localhost unless said otherwise (Modbus has no authentication)
 //! word_order = "high_first"           # 32-bit values: "high_first" (default) or "low_first"
+//! density_writers = ["10.20.0.5"]     # PLC addresses that may write a device's density
+//!                                     # (only for devices with [device.density] from = "modbus")
 //!
 //! [web]                               # optional: the live page
 //! listen = "127.0.0.1:8150"
@@ -42,20 +44,23 @@
 //! [device.alarm]                      # optional: this device's own limits instead of [alarm]
 //! moisture_high_pct = 13.0
 //! [device.density]                    # optional: the plant's bulk density fed to the device
-//! from = "mqtt"                       # from the broker of [mqtt] (the only source so far)
+//! from = "mqtt"                       # "mqtt": the broker of [mqtt]; "modbus": a PLC writes it
+//!                                     # to this unit's holding registers 0-1 (docs/MODBUS.md)
 //! hold_s = 60                         # each value holds this long after it arrives, 5..=3600 [60]
 //! ```
 //!
 //! A device with `[device.density]` needs `key_file` (a density is a
-//! signed write) and the site needs `[mqtt]`: the gateway takes each
-//! device's density from the Sparkplug DCMD metric `bulk_density_kg_m3`
-//! (or, with `json = true`, from `{json_prefix}/{serial}/density`) and
-//! sends it to the device (`crate::density`).
+//! signed write). From `"mqtt"` the site needs `[mqtt]`: the gateway takes
+//! the device's density from the Sparkplug DCMD metric `bulk_density_kg_m3`
+//! (or, with `json = true`, from `{json_prefix}/{serial}/density`). From
+//! `"modbus"` the site needs `[modbus]` with `density_writers`: a PLC at
+//! one of those addresses writes it as a float32 to the device's unit.
+//! Either way the gateway sends it to the device (`crate::density`).
 //!
 //! Every error names the file, the line and the field.
 
 use std::collections::BTreeMap;
-use std::net::SocketAddr;
+use std::net::{IpAddr, SocketAddr};
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
@@ -147,6 +152,8 @@ struct RawModbus {
     listen: Spanned<String>,
     #[serde(default)]
     word_order: Option<Spanned<String>>,
+    #[serde(default)]
+    density_writers: Option<Spanned<Vec<Spanned<String>>>>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -200,6 +207,19 @@ struct RawDensity {
 pub enum DensitySource {
     /// The broker of the site's `[mqtt]`: Sparkplug DCMD, or a JSON topic.
     Mqtt,
+    /// A PLC writing the device's holding registers over the site's
+    /// Modbus TCP server (from an address of `[modbus] density_writers`).
+    Modbus,
+}
+
+impl DensitySource {
+    /// As written in the site file.
+    pub fn name(self) -> &'static str {
+        match self {
+            DensitySource::Mqtt => "mqtt",
+            DensitySource::Modbus => "modbus",
+        }
+    }
 }
 
 /// A device fed the plant's bulk density (`[device.density]`).
@@ -300,6 +320,9 @@ pub struct Site {
     pub modbus: Option<SocketAddr>,
     /// Word order of the 32-bit values served over Modbus TCP.
     pub modbus_word_order: WordOrder,
+    /// The addresses that may write a density over Modbus TCP
+    /// (`[modbus] density_writers`; empty: none).
+    pub density_writers: Vec<IpAddr>,
     /// Live page address.
     pub web: Option<SocketAddr>,
     /// MQTT publishing.
@@ -321,6 +344,7 @@ impl std::fmt::Debug for Site {
             .field("status_every", &self.status_every)
             .field("modbus", &self.modbus)
             .field("modbus_word_order", &self.modbus_word_order)
+            .field("density_writers", &self.density_writers)
             .field("web", &self.web)
             .field("mqtt", &self.mqtt)
             .field("devices", &self.devices)
@@ -516,6 +540,41 @@ impl Site {
                 }
             },
         };
+        let density_writers: Vec<IpAddr> =
+            match raw.modbus.as_ref().and_then(|m| m.density_writers.as_ref()) {
+                None => Vec::new(),
+                Some(list) => {
+                    let mut out = Vec::new();
+                    for (k, w) in list.get_ref().iter().enumerate() {
+                        let ip: IpAddr = w.get_ref().trim().parse().map_err(|_| {
+                            bad(
+                            w.span(),
+                            &format!("modbus.density_writers[{k}]"),
+                            format!("{:?}", w.get_ref()),
+                            "the IP address of a PLC, e.g. \"10.20.0.5\" (no port, no host name)",
+                        )
+                        })?;
+                        if ip.is_unspecified() {
+                            return Err(bad(
+                                w.span(),
+                                &format!("modbus.density_writers[{k}]"),
+                                format!("{:?}", w.get_ref()),
+                                "the address of one PLC; 0.0.0.0 and :: would let anyone write",
+                            ));
+                        }
+                        out.push(ip);
+                    }
+                    if out.is_empty() {
+                        return Err(bad(
+                            list.span(),
+                            "modbus.density_writers",
+                            "[]".into(),
+                            "at least one PLC address, or leave the key out",
+                        ));
+                    }
+                    out
+                }
+            };
         let mqtt = match raw.mqtt {
             None => None,
             Some(m) => {
@@ -685,21 +744,32 @@ impl Site {
                     let r = spec.get_ref();
                     let from = match r.from.get_ref().as_str() {
                         "mqtt" => DensitySource::Mqtt,
+                        "modbus" => DensitySource::Modbus,
                         other => {
                             return Err(bad(
                                 r.from.span(),
                                 &field("from"),
                                 format!("{other:?}"),
-                                "\"mqtt\" (the broker of [mqtt]; the only source so far)",
+                                "\"mqtt\" (the broker of [mqtt]) or \"modbus\" (a PLC writing over [modbus])",
                             ))
                         }
                     };
-                    if mqtt.is_none() {
+                    if from == DensitySource::Mqtt && mqtt.is_none() {
                         return Err(bad(
                             r.from.span(),
                             &field("from"),
                             "\"mqtt\"".into(),
                             "needs the site's [mqtt] broker",
+                        ));
+                    }
+                    if from == DensitySource::Modbus
+                        && (modbus.is_none() || density_writers.is_empty())
+                    {
+                        return Err(bad(
+                            r.from.span(),
+                            &field("from"),
+                            "\"modbus\"".into(),
+                            "needs the site's [modbus] with density_writers, the addresses of the PLCs that may write it (Modbus has no authentication)",
                         ));
                     }
                     if d.key_file.is_none() && matches!(port, DevicePort::Serial { .. }) {
@@ -760,6 +830,7 @@ impl Site {
             status_every: Duration::from_secs_f64(status),
             modbus,
             modbus_word_order,
+            density_writers,
             web,
             mqtt,
             devices,
@@ -912,6 +983,54 @@ baud = 9600
                 "{needle}: {e}"
             );
         }
+    }
+
+    #[test]
+    fn a_density_from_modbus_needs_the_plc_addresses_and_no_one_else_can_be_named() {
+        let keyed = "key_file = \"u2.key\"\n[device.density]\nfrom = \"modbus\"\n";
+        let with = |writers: &str| {
+            GOOD.replace(
+                "listen = \"127.0.0.1:1502\"\n",
+                &format!("listen = \"127.0.0.1:1502\"\n{writers}"),
+            )
+            .replace("baud = 9600\n", &format!("baud = 9600\n{keyed}"))
+        };
+        let s = parse(&with("density_writers = [\"10.20.0.5\", \"fd00::5\"]\n")).unwrap();
+        assert_eq!(
+            s.devices[1].density.map(|d| d.from),
+            Some(DensitySource::Modbus)
+        );
+        assert_eq!(
+            s.density_writers,
+            vec![
+                "10.20.0.5".parse::<IpAddr>().unwrap(),
+                "fd00::5".parse::<IpAddr>().unwrap()
+            ]
+        );
+        for (writers, needle) in [
+            ("", ":17: device[1].density.from = \"modbus\": needs the site's [modbus] with density_writers"),
+            ("density_writers = []\n", ":6: modbus.density_writers = []: at least one PLC address"),
+            (
+                "density_writers = [\"10.20.0.5:502\"]\n",
+                ":6: modbus.density_writers[0] = \"10.20.0.5:502\": the IP address of a PLC",
+            ),
+            (
+                "density_writers = [\"plc-7.plant\"]\n",
+                "modbus.density_writers[0] = \"plc-7.plant\"",
+            ),
+            (
+                "density_writers = [\"10.20.0.5\", \"0.0.0.0\"]\n",
+                "modbus.density_writers[1] = \"0.0.0.0\": the address of one PLC; 0.0.0.0 and :: would let anyone write",
+            ),
+        ] {
+            let e = parse(&with(writers)).unwrap_err().to_string();
+            assert!(e.contains(needle) && e.starts_with("/plant/site.toml:"), "{needle}: {e}");
+        }
+        // Without [modbus] at all.
+        let e = parse(&with("").replace("[modbus]\nlisten = \"127.0.0.1:1502\"\n", ""))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("needs the site's [modbus]"), "{e}");
     }
 
     #[test]

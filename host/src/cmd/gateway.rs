@@ -15,7 +15,7 @@ use fringe_gateway::density::DensityInbox;
 use fringe_gateway::lease::{LeaseRefused, Leases};
 use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
 use fringe_gateway::run::{DeviceRun, DeviceState, DeviceStatus, Gateway, Level, Notice};
-use fringe_gateway::site::{DevicePort, Site};
+use fringe_gateway::site::{DensitySource, DevicePort, Site};
 use fringe_link::{LinkOptions, Opener, SerialOpener};
 use fringe_sim::live::LiveSim;
 use fringe_sim::scenario::Scenario;
@@ -58,7 +58,7 @@ pub fn gateway(
     let tell: Arc<dyn Fn(Notice) + Send + Sync> = Arc::new(move |n: Notice| {
         v.lock().unwrap_or_else(|e| e.into_inner()).notice(n);
     });
-    // The plant's densities, from the broker to the devices that take them.
+    // The plant's densities, from the broker or a PLC to the devices that take them.
     let density = site.devices.iter().any(|d| d.density.is_some()).then(|| {
         let tell = Arc::clone(&tell);
         Arc::new(DensityInbox::new(Arc::new(move |unit, serial, text| {
@@ -208,6 +208,25 @@ pub fn gateway(
     );
     if site.mqtt.is_some() {
         eprintln!("fringe gateway: publishing to MQTT (buffered on disk while the broker is away)");
+    }
+    let modbus_fed: Vec<String> = site
+        .devices
+        .iter()
+        .filter(|d| d.density.map(|f| f.from) == Some(DensitySource::Modbus))
+        .map(|d| d.unit.to_string())
+        .collect();
+    if !modbus_fed.is_empty() {
+        eprintln!(
+            "fringe gateway: Modbus TCP takes the bulk density of unit(s) {} from {} only; \
+             a density changes the moisture these devices report, and Modbus has no \
+             authentication: keep the port inside the control zone (docs/MODBUS.md)",
+            modbus_fed.join(", "),
+            site.density_writers
+                .iter()
+                .map(ToString::to_string)
+                .collect::<Vec<_>>()
+                .join(", ")
+        );
     }
     let deadline = args
         .duration_s
