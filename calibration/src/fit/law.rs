@@ -207,8 +207,27 @@ impl Data<'_> {
 /// Iteration budget of one joint fit.
 pub(crate) const MAX_ITER: usize = 200;
 
-/// Fits the law with at most `max_iter` iterations (`fit_temperature`
-/// false keeps c_T fixed), from `start`: a law
+/// Fits the law from `theta0`; `fit_temperature` false keeps c_T fixed.
+pub(crate) fn fit_law(
+    obs: &[[Observation<f64>; 2]],
+    temps: &[f64],
+    sigma_ref_s_m: f64,
+    t_ref_c: f64,
+    theta0: Theta,
+    fit_temperature: bool,
+) -> Result<LawFit, LawError> {
+    fit_law_budget(
+        obs,
+        temps,
+        sigma_ref_s_m,
+        t_ref_c,
+        (theta0, None),
+        fit_temperature,
+        MAX_ITER,
+    )
+}
+
+/// [`fit_law`] with at most `max_iter` iterations, from `start`: a law
 /// and, to go on with an earlier fit of the same samples, their
 /// parameters (`LawFit::params`; `None` starts each sample from its
 /// readings). A fit that ends with its budget says so

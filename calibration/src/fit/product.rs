@@ -1461,15 +1461,6 @@ fn relax_features(
         .collect()
 }
 
-/// Iterations of each probe law's fit on its 8 or so samples. The probes
-/// only rank the starts of the joint fit; with the joint fit's budget (200)
-/// they took a third of the relaxation fit's time on wood chips (most
-/// never converge on so few samples). Measured with 200, 100 and 50 on the
-/// zoo test (16 seeds, 356 cases): 100 and 50 chose the same model in all
-/// cases but one, validation SEPs moved by at most 3.8 % (mean 0.01 %),
-/// and the same tests passed and failed (BENCHMARKS.md).
-const PROBE_BUDGET: usize = 50;
-
 /// How many distinct probe laws start the joint law fit on all samples.
 const LAW_STARTS: usize = 3;
 
@@ -1526,14 +1517,13 @@ fn relaxation_core(
         for k in 0..5 {
             let lfr = lf0 - 2.3 + (lf1 - lf0 + 4.6) * k as f64 / 4.0;
             let start = [alpha, lfr, 1.0, 0.0];
-            if let Ok(fit) = law::fit_law_budget(
+            if let Ok(fit) = law::fit_law(
                 &probe_obs,
                 &probe_t,
                 sigma_ref_s_m,
                 t_ref_c,
-                (start, None),
+                start,
                 opts.fit_fr_temperature,
-                PROBE_BUDGET,
             ) {
                 if fit.cost.is_finite() {
                     probes.push((fit.cost, fit.theta));
