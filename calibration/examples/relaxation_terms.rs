@@ -1,0 +1,186 @@
+//! An experiment outside the product (BENCHMARKS.md, the grain's
+//! extrapolation): the relaxation model's law and mixing as `fit_relaxation`
+//! fits them, its regression refitted by least squares with extra terms
+//! built from the inversion's d_eps, on the synthetic grain (60 samples,
+//! the three frequency pairs), validated in range, 10 C above the
+//! calibrated temperatures and at 1-2 times the highest calibrated water
+//! conductivity, against the generic quadratic ridge baseline.
+//!
+//! `cargo run --release -p fringe-calibration --features fit --example relaxation_terms [-- FIRST LAST]`
+//! (seeds, default 1 16). Terms: v0 the model's own (1, m, m^2, t, ln
+//! sigma); v1 + d_eps; v2 + ln d_eps; v3 + the mixing-model moisture m_s of
+//! eps_hf + d_eps; v4 + m_s and m_s^2. The test's checks: SEP 10 C beyond
+//! below 1.15 times the baseline's, at twice the salt below it.
+
+use fringe_calibration::fit::product::{fit_relaxation, RelaxationOptions, Sample};
+use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS};
+use fringe_calibration::invert::{invert, InvertOptions, Observation, RelaxationLaw};
+use fringe_calibration::mixing::ProductMixture;
+use fringe_calibration::product::{ProductModel, RelaxationModel};
+use fringe_calibration::real::Cx;
+use fringe_calibration::regression::linear::fit_linear;
+use nalgebra::DMatrix;
+
+#[path = "../tests/common/baseline.rs"]
+mod baseline;
+
+const VARIANTS: usize = 5;
+
+fn sep(e: &[f64]) -> f64 {
+    let n = e.len() as f64;
+    let m = e.iter().sum::<f64>() / n;
+    (e.iter().map(|v| (v - m).powi(2)).sum::<f64>() / (n - 1.0)).sqrt()
+}
+
+/// The terms of variant `which` for sample `s` (`None`: no inversion).
+fn terms(m: &RelaxationModel<f64>, s: &Sample, which: usize) -> Option<Vec<f64>> {
+    let obs = [0, 1].map(|k| Observation {
+        freq_hz: s.channels[k].freq_hz,
+        eps: Cx {
+            re: s.channels[k].eps_re,
+            im: -s.channels[k].eps_loss,
+        },
+        sd: 0.02,
+    });
+    let p = invert(&obs, &m.law, s.temperature_c, &InvertOptions::default())
+        .ok()?
+        .params;
+    let f = m.features(&p, s.temperature_c);
+    let mut v = vec![f[0], f[1], f[2], f[4], f[5]];
+    let ms = m.mixing_moisture_pct(p.eps_hf + p.d_eps, s.temperature_c);
+    match which {
+        1 => v.push(p.d_eps),
+        2 => v.push(p.d_eps.max(1e-3).ln()),
+        3 => v.push(ms),
+        4 => v.extend([ms, ms * ms]),
+        _ => {}
+    }
+    v.iter().all(|x| x.is_finite()).then_some(v)
+}
+
+fn as_f64(m: &RelaxationModel<f32>) -> RelaxationModel<f64> {
+    let l = &m.law;
+    let x = &m.mixture;
+    RelaxationModel {
+        law: RelaxationLaw {
+            alpha: f64::from(l.alpha),
+            fr_ref_hz: f64::from(l.fr_ref_hz),
+            sigma_ref_s_m: f64::from(l.sigma_ref_s_m),
+            fr_exponent: f64::from(l.fr_exponent),
+            fr_temp_coeff_per_c: f64::from(l.fr_temp_coeff_per_c),
+            t_ref_c: f64::from(l.t_ref_c),
+        },
+        mixture: ProductMixture {
+            exponent: f64::from(x.exponent),
+            eps_dry: f64::from(x.eps_dry),
+            particle_density_kg_m3: f64::from(x.particle_density_kg_m3),
+            bulk_density_kg_m3: f64::from(x.bulk_density_kg_m3),
+        },
+        t_ref_c: f64::from(m.t_ref_c),
+        coeffs: [0.0; 4],
+        c_t: 0.0,
+        c_sigma: 0.0,
+    }
+}
+
+fn main() {
+    let arg = |i: usize, d: u64| {
+        std::env::args()
+            .nth(i)
+            .and_then(|s| s.parse().ok())
+            .unwrap_or(d)
+    };
+    let (first, last) = (arg(1, 1), arg(2, 16));
+    let f = Family::grain();
+    // Per variant: SEPs in range, hot, salty; cases passing both checks.
+    let mut sums = [[0.0f64; 3]; VARIANTS];
+    let mut pass = [0usize; VARIANTS];
+    let mut cases = 0usize;
+    for seed in first..=last {
+        for pair in FREQ_PAIRS {
+            let train = f.samples(&Draw::new(60, pair), seed);
+            let opts = RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3);
+            let fit = match fit_relaxation(&train, &opts) {
+                Ok(fit) => fit,
+                Err(e) => {
+                    println!("seed {seed} {pair:?}: no relaxation fit ({e})");
+                    continue;
+                }
+            };
+            let ProductModel::Relaxation(m) = fit.calibration.model else {
+                continue;
+            };
+            let m = as_f64(&m);
+            let inr = f.samples(&Draw::new(200, pair), seed + 1000);
+            let hot = f.samples(
+                &Draw {
+                    temperature_c: Some((f.temperature_c.1, f.temperature_c.1 + 10.0)),
+                    ..Draw::new(200, pair)
+                },
+                seed + 2000,
+            );
+            let salty = f.samples(
+                &Draw {
+                    water_sigma25_s_m: Some((f.water_sigma25_s_m.1, 2.0 * f.water_sigma25_s_m.1)),
+                    ..Draw::new(200, pair)
+                },
+                seed + 3000,
+            );
+            let b = baseline::Baseline::fit(&train);
+            let bsep = |set: &[Sample]| {
+                sep(&set
+                    .iter()
+                    .map(|s| b.predict(&s.channels, s.temperature_c) - s.moisture_pct)
+                    .collect::<Vec<_>>())
+            };
+            let base = [bsep(&inr), bsep(&hot), bsep(&salty)];
+            let mut line = format!(
+                "seed {seed} {pair:?}: baseline {:.3} {:.3} {:.3}",
+                base[0], base[1], base[2]
+            );
+            cases += 1;
+            for which in 0..VARIANTS {
+                let rows: Vec<(Vec<f64>, f64)> = train
+                    .iter()
+                    .filter_map(|s| terms(&m, s, which).map(|v| (v, s.moisture_pct)))
+                    .collect();
+                let p = rows[0].0.len();
+                let a = DMatrix::from_fn(rows.len(), p, |i, j| rows[i].0[j]);
+                let y: Vec<f64> = rows.iter().map(|r| r.1).collect();
+                let Ok(lin) = fit_linear(&a, &y, None) else {
+                    continue;
+                };
+                let val = |set: &[Sample]| {
+                    sep(&set
+                        .iter()
+                        .filter_map(|s| {
+                            let v = terms(&m, s, which)?;
+                            let pred: f64 = v.iter().zip(&lin.coef).map(|(a, b)| a * b).sum();
+                            Some(pred - s.moisture_pct)
+                        })
+                        .collect::<Vec<_>>())
+                };
+                let got = [val(&inr), val(&hot), val(&salty)];
+                for k in 0..3 {
+                    sums[which][k] += got[k];
+                }
+                if got[1] < 1.15 * base[1] && got[2] < base[2] {
+                    pass[which] += 1;
+                }
+                line += &format!(" | v{which} {:.3} {:.3} {:.3}", got[0], got[1], got[2]);
+            }
+            println!("{line}");
+        }
+    }
+    println!("\nSEP in range, 10 C beyond, twice the salt (means over {cases} cases); cases passing both checks:");
+    for which in 0..VARIANTS {
+        let n = cases.max(1) as f64;
+        println!(
+            "v{which}: {:.3} {:.3} {:.3}; {} of {cases}",
+            sums[which][0] / n,
+            sums[which][1] / n,
+            sums[which][2] / n,
+            pass[which]
+        );
+    }
+}
