@@ -1193,6 +1193,34 @@ fn other_kinds(rng: &mut StdRng) -> Vec<Kind> {
                 BAD_FILE,
                 &[&format!("{path}:3"), "stale_after_s"],
             ),
+            case(
+                "a density writer with its port",
+                Setup::Bytes(set_line(
+                    &good,
+                    "stale_after_s = ",
+                    "stale_after_s = 10\n[modbus]\nlisten = \"127.0.0.1:0\"\ndensity_writers = [\"10.20.0.5:502\"]",
+                )),
+                BAD_FILE,
+                &[&format!("{path}:6"), "modbus.density_writers[0]", "10.20.0.5:502"],
+            ),
+            case(
+                "any address may write a density",
+                Setup::Bytes(set_line(
+                    &good,
+                    "stale_after_s = ",
+                    "stale_after_s = 10\n[modbus]\nlisten = \"127.0.0.1:0\"\ndensity_writers = [\"0.0.0.0\"]",
+                )),
+                BAD_FILE,
+                &[&format!("{path}:6"), "would let anyone write"],
+            ),
+            case(
+                "a density from Modbus with no PLC named",
+                Setup::Bytes(
+                    [&good[..], b"[device.density]\nfrom = \"modbus\"\n"].concat(),
+                ),
+                BAD_FILE,
+                &[&format!("{path}:10"), "device[0].density.from", "density_writers"],
+            ),
             case("a folder", Setup::Dir, BAD_FILE, &[path, "directory"]),
             case(
                 "no read permission",
