@@ -29,8 +29,10 @@
 //! ```
 //!
 //! Nothing here writes: the map is read-only by design (a control system
-//! reads the value; a change to the device goes through Fringe's
-//! authenticated protocol, never through Modbus).
+//! reads the value; a change to the device's calibration, settings or clock
+//! goes through Fringe's authenticated protocol, never through Modbus). The
+//! one value a PLC may write, the plant's bulk density, is taken by the
+//! gateway outside this map (`fringe_gateway::modbus`) and sent signed.
 #![cfg_attr(not(test), no_std)]
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]

@@ -1204,14 +1204,14 @@ fn other_kinds(rng: &mut StdRng) -> Vec<Kind> {
                 &[&format!("{path}:6"), "modbus.density_writers[0]", "10.20.0.5:502"],
             ),
             case(
-                "any address may write a density",
+                "a wildcard address as a density writer",
                 Setup::Bytes(set_line(
                     &good,
                     "stale_after_s = ",
                     "stale_after_s = 10\n[modbus]\nlisten = \"127.0.0.1:0\"\ndensity_writers = [\"0.0.0.0\"]",
                 )),
                 BAD_FILE,
-                &[&format!("{path}:6"), "would let anyone write"],
+                &[&format!("{path}:6"), "there is no wildcard"],
             ),
             case(
                 "a density from Modbus with no PLC named",

@@ -16,7 +16,8 @@
 //!
 //! A density changes the moisture a device reports, which a control loop
 //! may use: only the plant's own density measurement should write here
-//! (a broker ACL, see `docs/GATEWAY.md`).
+//! (a broker ACL; over Modbus, which has no authentication, the PLC's
+//! address alone and a firewall: see `docs/GATEWAY.md`).
 
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
@@ -43,7 +44,8 @@ pub struct Order {
     pub kg_m3: f32,
     /// When it arrived.
     pub received: Instant,
-    /// Where it came from (the topic).
+    /// Where it came from (the topic, or the Modbus unit and the PLC's
+    /// address).
     pub source: String,
 }
 
@@ -56,8 +58,8 @@ struct State {
     orders: HashMap<String, Order>,
 }
 
-/// The densities waiting for the devices, shared by the MQTT worker (which
-/// posts) and the line sessions (which send).
+/// The densities waiting for the devices, shared by the MQTT worker and the
+/// Modbus server (which post) and the line sessions (which send).
 pub struct DensityInbox {
     state: Mutex<State>,
     tell: Tell,
@@ -100,9 +102,24 @@ impl DensityInbox {
     /// here, from `from` only.
     pub fn feed(&self, serial: &str, unit: u8, from: DensitySource) {
         let mut s = self.lock();
+        // A density belongs to a place on the line (a unit and its
+        // source): one for a device that now answers elsewhere, or fed
+        // from elsewhere, is dropped, not carried along.
+        if s.fed.get(serial).is_some_and(|f| *f != (unit, from)) {
+            s.orders.remove(serial);
+        }
         // One serial per unit: a device replaced on the same port answers
         // with its own serial, and the old one no longer takes values.
-        s.fed.retain(|_, (u, _)| *u != unit);
+        let gone: Vec<String> = s
+            .fed
+            .iter()
+            .filter(|(k, (u, _))| *u == unit && k.as_str() != serial)
+            .map(|(k, _)| k.clone())
+            .collect();
+        for k in gone {
+            s.fed.remove(&k);
+            s.orders.remove(&k);
+        }
         s.fed.insert(serial.to_string(), (unit, from));
     }
 
@@ -353,13 +370,24 @@ mod tests {
             )
             .unwrap();
         assert_eq!(inbox.latest("HGM-1").unwrap().kg_m3, 1650.0);
-        // Another device answering on unit 3 replaces the first.
+        // Another device answering on unit 3 replaces the first, and does
+        // not get its density.
         inbox.feed("HGM-9", 3, DensitySource::Modbus);
         assert_eq!(
             inbox.serial_of(3, DensitySource::Modbus).as_deref(),
             Some("HGM-9")
         );
         assert!(!inbox.is_fed("HGM-1"));
+        assert!(inbox.latest("HGM-1").is_none() && inbox.latest("HGM-9").is_none());
+        // A device that moves to another unit (or source) leaves its
+        // density behind; one that answers again where it was keeps it.
+        inbox
+            .post("HGM-2", Ok(720.0), DensitySource::Mqtt, "topic", t)
+            .unwrap();
+        inbox.feed("HGM-2", 4, DensitySource::Mqtt);
+        assert_eq!(inbox.latest("HGM-2").unwrap().kg_m3, 720.0);
+        inbox.feed("HGM-2", 5, DensitySource::Mqtt);
+        assert!(inbox.latest("HGM-2").is_none());
         assert_eq!(told.lock().unwrap().len(), 1);
     }
 

@@ -3,14 +3,15 @@
 //!
 //! - [`live`]: the latest reading of every device, shared between the line
 //!   sessions that fill it and the servers that read it.
-//! - [`modbus`]: a read-only Modbus TCP server of [`live`] with the register
-//!   map of `fringe-registers` (one unit id per device).
+//! - [`modbus`]: a Modbus TCP server of [`live`] with the register map of
+//!   `fringe-registers` (one unit id per device), read-only but for the
+//!   bulk density a listed PLC may write to a unit whose site entry takes it.
 //! - [`sparkplug`], [`outbox`], [`mqtt`]: readings and alarms to the plant's
 //!   MQTT broker as Sparkplug B (or plain JSON), QoS 1, with a
 //!   store-and-forward buffer on disk.
 //! - [`web`]: the read-only live page for the control room.
-//! - [`density`]: the plant's bulk density from the broker to the devices
-//!   that take one.
+//! - [`density`]: the plant's bulk density from the broker or a PLC to the
+//!   devices that take one.
 //! - [`site`]: site files; [`run`]: the gateway itself, a line session per
 //!   device into one store ([`shared`]) feeding the outputs above;
 //!   [`lease`]: which gateway runs which device when several share a store.

@@ -37,6 +37,14 @@ use crate::site::DensitySource;
 /// density in kg/m3 as a float32.
 pub const DENSITY_REGISTERS: u16 = 2;
 
+/// How often one sender's refused requests of one kind are said: a client
+/// that repeats a wrong request (or probes the port) must not bury the
+/// gateway's other messages.
+pub const SAY_EVERY: std::time::Duration = std::time::Duration::from_secs(60);
+
+/// (sender, kind of refusal) -> when last said, how many not said since.
+type Said = std::collections::HashMap<(IpAddr, &'static str), (Instant, u64)>;
+
 /// What a Modbus server may write: the densities of the units whose site
 /// entry takes them from Modbus, from the addresses listed.
 #[derive(Clone)]
@@ -47,6 +55,46 @@ pub struct DensityWrites {
     pub units: Vec<u8>,
     /// The addresses that may write (`[modbus] density_writers`).
     pub writers: Vec<IpAddr>,
+    /// (sender, kind of refusal) -> when last said, how many since.
+    said: Arc<std::sync::Mutex<Said>>,
+}
+
+impl DensityWrites {
+    /// Writes to `units` from `writers`, into `inbox`.
+    pub fn new(inbox: Arc<DensityInbox>, units: Vec<u8>, writers: Vec<IpAddr>) -> Self {
+        Self {
+            inbox,
+            units,
+            writers: writers.iter().map(IpAddr::to_canonical).collect(),
+            said: Arc::default(),
+        }
+    }
+
+    /// Says `text` about a request of `kind` from `peer` to `unit`, at most
+    /// once per [`SAY_EVERY`] for the same sender and kind (with how many
+    /// were not said since).
+    fn say(&self, unit: u8, peer: IpAddr, kind: &'static str, text: &str, now: Instant) {
+        let mut said = self.said.lock().unwrap_or_else(|e| e.into_inner());
+        let e = said.entry((peer, kind)).or_insert((now, u64::MAX));
+        if e.1 == u64::MAX || now.saturating_duration_since(e.0) >= SAY_EVERY {
+            let more = if e.1 == u64::MAX || e.1 == 0 {
+                String::new()
+            } else {
+                format!(" ({} more like it since it was last said)", e.1)
+            };
+            *e = (now, 0);
+            drop(said);
+            self.inbox.say_for(unit, &format!("{text}{more}"));
+        } else {
+            e.1 += 1;
+        }
+    }
+}
+
+/// The address a client is known by: an IPv4 client on a dual-stack
+/// socket arrives as `::ffff:a.b.c.d` and is the IPv4 address.
+pub fn peer_ip(addr: SocketAddr) -> IpAddr {
+    addr.ip().to_canonical()
 }
 
 impl std::fmt::Debug for DensityWrites {
@@ -76,11 +124,13 @@ fn value_of(w: &[u16], order: WordOrder) -> f32 {
 }
 
 /// Answers a request about a unit's density registers (functions 03, 06
-/// and 16) from `peer` at `now`.
+/// and 16) from `peer` at `now`; `connected`: whether the gateway has the
+/// unit's device on its line now.
 ///
 /// # Errors
-/// The Modbus exception the request earns; a write refused for its value
-/// or its sender is also said through the inbox.
+/// The Modbus exception the request earns; a write refused is also said
+/// through the inbox (its value every time, as from the broker; a wrong
+/// sender, address or length at most once a minute per sender).
 pub fn answer_density(
     writes: Option<&DensityWrites>,
     unit: u8,
@@ -88,6 +138,7 @@ pub fn answer_density(
     peer: IpAddr,
     now: Instant,
     order: WordOrder,
+    connected: bool,
 ) -> Result<Response, ExceptionCode> {
     let Some(w) = writes.filter(|w| w.units.contains(&unit)) else {
         return Err(ExceptionCode::IllegalFunction);
@@ -112,22 +163,46 @@ pub fn answer_density(
         }
         Request::WriteMultipleRegisters(addr, words) => {
             if !w.writers.contains(&peer) {
-                w.inbox.say_for(
+                w.say(
                     unit,
+                    peer,
+                    "sender",
                     &format!(
                         "density write from {peer} to Modbus unit {unit} refused, nothing sent: {peer} is not in the site file's [modbus] density_writers"
                     ),
+                    now,
                 );
                 return Err(ExceptionCode::IllegalFunction);
             }
-            if words.is_empty() || words.len() > 123 {
-                return Err(ExceptionCode::IllegalDataValue);
+            if words.is_empty()
+                || words.len() > 123
+                || *addr != 0
+                || words.len() != usize::from(DENSITY_REGISTERS)
+            {
+                w.say(
+                    unit,
+                    peer,
+                    "shape",
+                    &format!(
+                        "density write from {peer} to Modbus unit {unit} refused, nothing sent: {} register(s) at address {addr} (4{:04} in 4xxxx numbering); the density is a float32 in the two holding registers at address 0 (40001-40002), written in one request",
+                        words.len(),
+                        u32::from(*addr) + 1
+                    ),
+                    now,
+                );
+                return Err(if words.is_empty() || words.len() > 123 {
+                    ExceptionCode::IllegalDataValue
+                } else {
+                    ExceptionCode::IllegalDataAddress
+                });
             }
-            if *addr != 0 || words.len() != usize::from(DENSITY_REGISTERS) {
-                return Err(ExceptionCode::IllegalDataAddress);
-            }
-            let Some(serial) = w.inbox.serial_of(unit, DensitySource::Modbus) else {
-                // The device has not answered the gateway yet.
+            let serial = w
+                .inbox
+                .serial_of(unit, DensitySource::Modbus)
+                .filter(|_| connected);
+            let Some(serial) = serial else {
+                // The device has not answered the gateway yet, or its line
+                // is down: nothing can be sent now.
                 return Err(ExceptionCode::GatewayTargetDevice);
             };
             let v = value_of(words, order);
@@ -203,21 +278,22 @@ impl tokio_modbus::server::Service for Service {
 
     fn call(&self, req: Self::Request) -> Self::Future {
         let now = Instant::now();
+        let Some(snapshot) = self.table.snapshot(req.slave, now) else {
+            // A unit the gateway does not serve, whatever is asked.
+            return future::ready(Err(ExceptionCode::GatewayTargetDevice));
+        };
         future::ready(match req.request {
             Request::ReadHoldingRegisters(..)
             | Request::WriteSingleRegister(..)
-            | Request::WriteMultipleRegisters(..)
-                if self.table.snapshot(req.slave, now).is_some() =>
-            {
-                answer_density(
-                    self.density.as_ref(),
-                    req.slave,
-                    &req.request,
-                    self.peer,
-                    now,
-                    self.order,
-                )
-            }
+            | Request::WriteMultipleRegisters(..) => answer_density(
+                self.density.as_ref(),
+                req.slave,
+                &req.request,
+                self.peer,
+                now,
+                self.order,
+                snapshot.connected,
+            ),
             _ => answer_in(&self.table, req.slave, &req.request, now, self.order),
         })
     }
@@ -281,9 +357,7 @@ impl ModbusServer {
                                     table: Arc::clone(&table),
                                     order,
                                     density: density.clone(),
-                                    // An IPv4 client on a dual-stack socket
-                                    // is seen as ::ffff:a.b.c.d.
-                                    peer: peer.ip().to_canonical(),
+                                    peer: peer_ip(peer),
                                 }))
                             })
                         }
@@ -419,11 +493,7 @@ mod tests {
         })));
         inbox.feed("HGM-2", 2, DensitySource::Modbus);
         (
-            DensityWrites {
-                inbox,
-                units: vec![2],
-                writers: vec!["10.20.0.5".parse().unwrap()],
-            },
+            DensityWrites::new(inbox, vec![2], vec!["10.20.0.5".parse().unwrap()]),
             told,
         )
     }
@@ -433,7 +503,8 @@ mod tests {
         let (w, told) = fed();
         let plc: IpAddr = "10.20.0.5".parse().unwrap();
         let now = Instant::now();
-        let ask = |req: Request<'_>, order| answer_density(Some(&w), 2, &req, plc, now, order);
+        let ask =
+            |req: Request<'_>, order| answer_density(Some(&w), 2, &req, plc, now, order, true);
         // Nothing yet: NaN (0x7FC0 0x0000).
         assert_eq!(
             ask(Request::ReadHoldingRegisters(0, 2), WordOrder::HighFirst),
@@ -485,6 +556,7 @@ mod tests {
                 from,
                 now,
                 WordOrder::HighFirst,
+                true,
             )
         };
         // 1.65 (g/cm3 for kg/m3) = 0x3FD33333; NaN; 6000 = 0x45BB8000.
@@ -527,13 +599,15 @@ mod tests {
                 &Request::WriteMultipleRegisters(0, good[..].into()),
                 plc,
                 now,
-                WordOrder::HighFirst
+                WordOrder::HighFirst,
+                true
             ),
             Err(ExceptionCode::IllegalFunction)
         );
         // Half a float (function 06); a read past the two registers.
-        let ask =
-            |req: Request<'_>| answer_density(Some(&w), 2, &req, plc, now, WordOrder::HighFirst);
+        let ask = |req: Request<'_>| {
+            answer_density(Some(&w), 2, &req, plc, now, WordOrder::HighFirst, true)
+        };
         assert_eq!(
             ask(Request::WriteSingleRegister(0, 0x44CE)),
             Err(ExceptionCode::IllegalFunction)
@@ -547,33 +621,94 @@ mod tests {
             Err(ExceptionCode::IllegalDataValue)
         );
         assert!(w.inbox.latest("HGM-2").is_none(), "nothing taken");
-        let told = told.lock().unwrap();
-        // The three bad values (each with the value and the sender) and the
+        let told = told.lock().unwrap().clone();
+        // The three bad values (each with the value and the sender), one
+        // wrong shape (the other two within the minute: not said), the
         // sender not listed.
-        assert_eq!(told.len(), 4, "{told:?}");
+        assert_eq!(told.len(), 5, "{told:?}");
         assert!(
             told[0].contains("1.65") && told[0].contains("from 10.20.0.5"),
             "{told:?}"
         );
         assert!(
-            told[3].starts_with("2: ")
-                && told[3].contains("10.20.0.6 is not in the site file's [modbus] density_writers"),
+            told[3].contains("1 register(s) at address 1 (40002")
+                || told[3].contains("2 register(s) at address 1 (40002"),
             "{told:?}"
         );
-        // A device not yet answered: the gateway cannot reach it.
+        assert!(
+            told[4].starts_with("2: ")
+                && told[4].contains("10.20.0.6 is not in the site file's [modbus] density_writers"),
+            "{told:?}"
+        );
+        // A device not yet answered, or whose line is down: the gateway
+        // cannot reach it now.
         let (w2, _) = fed();
-        w2.inbox.feed("HGM-2", 7, DensitySource::Modbus);
-        assert_eq!(
+        let to = |w: &DensityWrites, connected| {
             answer_density(
-                Some(&w2),
+                Some(w),
                 2,
                 &Request::WriteMultipleRegisters(0, good[..].into()),
                 plc,
                 now,
-                WordOrder::HighFirst
-            ),
-            Err(ExceptionCode::GatewayTargetDevice)
+                WordOrder::HighFirst,
+                connected,
+            )
+        };
+        assert_eq!(to(&w2, false), Err(ExceptionCode::GatewayTargetDevice));
+        w2.inbox.feed("HGM-2", 7, DensitySource::Modbus);
+        assert_eq!(to(&w2, true), Err(ExceptionCode::GatewayTargetDevice));
+        assert!(w2.inbox.latest("HGM-2").is_none());
+    }
+
+    #[test]
+    fn a_repeated_refusal_is_said_once_a_minute_with_how_many_were_not() {
+        let (w, told) = fed();
+        let stranger: IpAddr = "10.99.0.1".parse().unwrap();
+        let t0 = Instant::now();
+        for k in 0..50u64 {
+            let r = answer_density(
+                Some(&w),
+                2,
+                &Request::WriteMultipleRegisters(0, [0x44CE, 0x5000][..].into()),
+                stranger,
+                t0 + Duration::from_secs(k),
+                WordOrder::HighFirst,
+                true,
+            );
+            assert_eq!(r, Err(ExceptionCode::IllegalFunction));
+        }
+        assert_eq!(told.lock().unwrap().len(), 1);
+        let _ = answer_density(
+            Some(&w),
+            2,
+            &Request::WriteMultipleRegisters(0, [0x44CE, 0x5000][..].into()),
+            stranger,
+            t0 + SAY_EVERY,
+            WordOrder::HighFirst,
+            true,
         );
+        let told = told.lock().unwrap();
+        assert_eq!(told.len(), 2, "{told:?}");
+        assert!(
+            told[1].ends_with("(49 more like it since it was last said)"),
+            "{told:?}"
+        );
+    }
+
+    #[test]
+    fn an_ipv4_client_on_a_dual_stack_socket_is_its_ipv4_address() {
+        let mapped: SocketAddr = "[::ffff:10.20.0.5]:40000".parse().unwrap();
+        assert_eq!(peer_ip(mapped), "10.20.0.5".parse::<IpAddr>().unwrap());
+        let v6: SocketAddr = "[fd00::5]:40000".parse().unwrap();
+        assert_eq!(peer_ip(v6), "fd00::5".parse::<IpAddr>().unwrap());
+        // A writer listed in the mapped form is the same address.
+        let (w, _) = fed();
+        let w = DensityWrites::new(
+            Arc::clone(&w.inbox),
+            vec![2],
+            vec!["::ffff:10.20.0.5".parse().unwrap()],
+        );
+        assert_eq!(w.writers, vec!["10.20.0.5".parse::<IpAddr>().unwrap()]);
     }
 
     #[test]

@@ -396,24 +396,19 @@ impl Gateway {
             table.register(d.spec.unit, "");
             table.set_tag(d.spec.unit, &d.spec.tag);
         }
-        // The units a PLC feeds their density over Modbus.
-        let modbus_fed: Vec<u8> = devices
+        // The units a PLC feeds their density over Modbus, and their inbox.
+        let modbus_fed: Vec<(u8, Arc<DensityInbox>)> = devices
             .iter()
-            .filter(|d| {
-                d.density.is_some()
-                    && d.spec.density.map(|f| f.from) == Some(crate::site::DensitySource::Modbus)
-            })
-            .map(|d| d.spec.unit)
+            .filter(|d| d.spec.density.map(|f| f.from) == Some(crate::site::DensitySource::Modbus))
+            .filter_map(|d| Some((d.spec.unit, d.density.clone()?)))
             .collect();
-        let density_writes = devices
-            .iter()
-            .find_map(|d| d.density.clone())
-            .filter(|_| !modbus_fed.is_empty())
-            .map(|inbox| DensityWrites {
-                inbox,
-                units: modbus_fed,
-                writers: site.density_writers.clone(),
-            });
+        let density_writes = modbus_fed.first().map(|(_, inbox)| {
+            DensityWrites::new(
+                Arc::clone(inbox),
+                modbus_fed.iter().map(|(u, _)| *u).collect(),
+                site.density_writers.clone(),
+            )
+        });
         let modbus = match site.modbus {
             Some(addr) => Some(
                 ModbusServer::start_with(

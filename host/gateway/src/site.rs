@@ -540,13 +540,21 @@ impl Site {
                 }
             },
         };
-        let density_writers: Vec<IpAddr> =
-            match raw.modbus.as_ref().and_then(|m| m.density_writers.as_ref()) {
-                None => Vec::new(),
-                Some(list) => {
-                    let mut out = Vec::new();
-                    for (k, w) in list.get_ref().iter().enumerate() {
-                        let ip: IpAddr = w.get_ref().trim().parse().map_err(|_| {
+        let density_writers: Vec<IpAddr> = match raw
+            .modbus
+            .as_ref()
+            .and_then(|m| m.density_writers.as_ref())
+        {
+            None => Vec::new(),
+            Some(list) => {
+                let mut out = Vec::new();
+                for (k, w) in list.get_ref().iter().enumerate() {
+                    let ip: IpAddr = w
+                        .get_ref()
+                        .trim()
+                        .parse::<IpAddr>()
+                        .map(|ip| ip.to_canonical())
+                        .map_err(|_| {
                             bad(
                             w.span(),
                             &format!("modbus.density_writers[{k}]"),
@@ -554,27 +562,27 @@ impl Site {
                             "the IP address of a PLC, e.g. \"10.20.0.5\" (no port, no host name)",
                         )
                         })?;
-                        if ip.is_unspecified() {
-                            return Err(bad(
+                    if ip.is_unspecified() {
+                        return Err(bad(
                                 w.span(),
                                 &format!("modbus.density_writers[{k}]"),
                                 format!("{:?}", w.get_ref()),
-                                "the address of one PLC; 0.0.0.0 and :: would let anyone write",
+                                "the address of one PLC (0.0.0.0 and :: match no client; there is no wildcard)",
                             ));
-                        }
-                        out.push(ip);
                     }
-                    if out.is_empty() {
-                        return Err(bad(
-                            list.span(),
-                            "modbus.density_writers",
-                            "[]".into(),
-                            "at least one PLC address, or leave the key out",
-                        ));
-                    }
-                    out
+                    out.push(ip);
                 }
-            };
+                if out.is_empty() {
+                    return Err(bad(
+                        list.span(),
+                        "modbus.density_writers",
+                        "[]".into(),
+                        "at least one PLC address, or leave the key out",
+                    ));
+                }
+                out
+            }
+        };
         let mqtt = match raw.mqtt {
             None => None,
             Some(m) => {
@@ -1020,7 +1028,7 @@ baud = 9600
             ),
             (
                 "density_writers = [\"10.20.0.5\", \"0.0.0.0\"]\n",
-                "modbus.density_writers[1] = \"0.0.0.0\": the address of one PLC; 0.0.0.0 and :: would let anyone write",
+                "modbus.density_writers[1] = \"0.0.0.0\": the address of one PLC (0.0.0.0 and :: match no client; there is no wildcard)",
             ),
         ] {
             let e = parse(&with(writers)).unwrap_err().to_string();

@@ -146,8 +146,46 @@ pub fn gateway(
     // The MQTT buffer lies beside the store file, or beside the site file
     // when the store is a database server.
     let outbox_beside = if url { &site.path } else { &site.store };
+    let modbus_fed: Vec<String> = site
+        .devices
+        .iter()
+        .filter(|d| d.density.map(|f| f.from) == Some(DensitySource::Modbus))
+        .map(|d| d.unit.to_string())
+        .collect();
+    if !modbus_fed.is_empty() {
+        eprintln!(
+            "fringe gateway: Modbus TCP takes the bulk density of unit(s) {} from {} only; \
+             a density changes the moisture these devices report, and Modbus has no \
+             authentication: keep the port inside the control zone (docs/MODBUS.md)",
+            modbus_fed.join(", "),
+            site.density_writers
+                .iter()
+                .map(ToString::to_string)
+                .collect::<Vec<_>>()
+                .join(", ")
+        );
+    }
+    // A server on the loopback address hears no PLC elsewhere.
+    if !modbus_fed.is_empty() && site.modbus.is_some_and(|a| a.ip().is_loopback()) {
+        for w in site.density_writers.iter().filter(|w| !w.is_loopback()) {
+            eprintln!(
+                "fringe gateway: warning: no density from {w} can arrive: the Modbus TCP \
+                 server listens on {} (set [modbus] listen to an address of the control network)",
+                site.modbus.map(|a| a.to_string()).unwrap_or_default()
+            );
+        }
+    }
+    // The broker's density commands only where a device takes them from there.
+    let mqtt_fed = site
+        .devices
+        .iter()
+        .any(|d| d.density.map(|f| f.from) == Some(DensitySource::Mqtt));
     let publisher = match &site.mqtt {
-        Some(m) => Some(start_mqtt(m, outbox_beside, density.clone())?),
+        Some(m) => Some(start_mqtt(
+            m,
+            outbox_beside,
+            density.clone().filter(|_| mqtt_fed),
+        )?),
         None => None,
     };
     let gw = match db.to_str().filter(|_| url) {
@@ -208,25 +246,6 @@ pub fn gateway(
     );
     if site.mqtt.is_some() {
         eprintln!("fringe gateway: publishing to MQTT (buffered on disk while the broker is away)");
-    }
-    let modbus_fed: Vec<String> = site
-        .devices
-        .iter()
-        .filter(|d| d.density.map(|f| f.from) == Some(DensitySource::Modbus))
-        .map(|d| d.unit.to_string())
-        .collect();
-    if !modbus_fed.is_empty() {
-        eprintln!(
-            "fringe gateway: Modbus TCP takes the bulk density of unit(s) {} from {} only; \
-             a density changes the moisture these devices report, and Modbus has no \
-             authentication: keep the port inside the control zone (docs/MODBUS.md)",
-            modbus_fed.join(", "),
-            site.density_writers
-                .iter()
-                .map(ToString::to_string)
-                .collect::<Vec<_>>()
-                .join(", ")
-        );
     }
     let deadline = args
         .duration_s
