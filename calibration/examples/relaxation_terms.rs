@@ -112,20 +112,8 @@ fn main() {
             };
             let m = as_f64(&m);
             let inr = f.samples(&Draw::new(200, pair), seed + 1000);
-            let hot = f.samples(
-                &Draw {
-                    temperature_c: Some((f.temperature_c.1, f.temperature_c.1 + 10.0)),
-                    ..Draw::new(200, pair)
-                },
-                seed + 2000,
-            );
-            let salty = f.samples(
-                &Draw {
-                    water_sigma25_s_m: Some((f.water_sigma25_s_m.1, 2.0 * f.water_sigma25_s_m.1)),
-                    ..Draw::new(200, pair)
-                },
-                seed + 3000,
-            );
+            let hot = f.samples(&Draw::hotter(&f, 200, pair), seed + 2000);
+            let salty = f.samples(&Draw::saltier(&f, 200, pair), seed + 3000);
             let b = baseline::Baseline::fit(&train);
             let bsep = |set: &[Sample]| {
                 sep(&set

@@ -94,13 +94,7 @@ fn density_table(seed: u64) {
         }
         let train = f.samples(&Draw::new(60, pair), seed);
         let val = f.samples(&Draw::new(200, pair), seed + 1000);
-        let salty = f.samples(
-            &Draw {
-                water_sigma25_s_m: Some((f.water_sigma25_s_m.1, 2.0 * f.water_sigma25_s_m.1)),
-                ..Draw::new(200, pair)
-            },
-            seed + 3000,
-        );
+        let salty = f.samples(&Draw::saltier(&f, 200, pair), seed + 3000);
         let mut ridge = Vec::new();
         for psi in [false, true] {
             let o = MultivariateOptions {
@@ -278,20 +272,8 @@ fn main() {
                 (a, t0.elapsed().as_secs_f64())
             };
             let val = f.samples(&Draw::new(200, pair), seed + 1000);
-            let hot = f.samples(
-                &Draw {
-                    temperature_c: Some((f.temperature_c.1, f.temperature_c.1 + 10.0)),
-                    ..Draw::new(200, pair)
-                },
-                seed + 2000,
-            );
-            let salty = f.samples(
-                &Draw {
-                    water_sigma25_s_m: Some((f.water_sigma25_s_m.1, 2.0 * f.water_sigma25_s_m.1)),
-                    ..Draw::new(200, pair)
-                },
-                seed + 3000,
-            );
+            let hot = f.samples(&Draw::hotter(&f, 200, pair), seed + 2000);
+            let salty = f.samples(&Draw::saltier(&f, 200, pair), seed + 3000);
             let base = baseline::Baseline::fit(&train);
             let base_sep = |v: &[Sample]| {
                 sep(&v

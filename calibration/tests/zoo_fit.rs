@@ -320,20 +320,8 @@ fn physics_wins_extrapolation_on_the_grain() {
             .and_then(|r| r.1.as_ref().ok())
             .unwrap_or_else(|| panic!("FRINGE_SEED={seed} {pair:?}: no relaxation fit"));
         let base = Baseline::fit(&train);
-        let hot = f.samples(
-            &Draw {
-                temperature_c: Some((f.temperature_c.1, f.temperature_c.1 + 10.0)),
-                ..Draw::new(200, pair)
-            },
-            seed + 2000,
-        );
-        let salty = f.samples(
-            &Draw {
-                water_sigma25_s_m: Some((f.water_sigma25_s_m.1, 2.0 * f.water_sigma25_s_m.1)),
-                ..Draw::new(200, pair)
-            },
-            seed + 3000,
-        );
+        let hot = f.samples(&Draw::hotter(&f, 200, pair), seed + 2000);
+        let salty = f.samples(&Draw::saltier(&f, 200, pair), seed + 3000);
         let (eh, _) = validate(relax, &hot);
         let (es, _) = validate(relax, &salty);
         let (ch, _) = validate(cmp.chosen_fit(), &hot);

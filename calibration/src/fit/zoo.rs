@@ -232,6 +232,26 @@ impl Draw {
             water_sigma25_s_m: None,
         }
     }
+
+    /// `n` samples of `family` 0-10 C above its calibrated temperatures
+    /// (the extrapolation checks).
+    pub fn hotter(family: &Family, n: usize, freqs_hz: [f64; 2]) -> Self {
+        let t = family.temperature_c.1;
+        Draw {
+            temperature_c: Some((t, t + 10.0)),
+            ..Draw::new(n, freqs_hz)
+        }
+    }
+
+    /// `n` samples of `family` at 1-2 times its highest calibrated water
+    /// conductivity (the extrapolation checks).
+    pub fn saltier(family: &Family, n: usize, freqs_hz: [f64; 2]) -> Self {
+        let s = family.water_sigma25_s_m.1;
+        Draw {
+            water_sigma25_s_m: Some((s, 2.0 * s)),
+            ..Draw::new(n, freqs_hz)
+        }
+    }
 }
 
 /// Frequency pairs of the tests and benchmarks, Hz (100 kHz to 50 MHz).
