@@ -1,16 +1,21 @@
 //! An experiment outside the product (BENCHMARKS.md, the grain's
 //! extrapolation): the relaxation model's law and mixing as `fit_relaxation`
 //! fits them, its regression refitted by least squares with extra terms
-//! built from the inversion's d_eps, on the synthetic grain (60 samples,
+//! built from the inversion's d_eps, on a zoo family (60 samples,
 //! the three frequency pairs), validated in range, 10 C above the
 //! calibrated temperatures and at 1-2 times the highest calibrated water
 //! conductivity, against the generic quadratic ridge baseline.
 //!
-//! `cargo run --release -p fringe-calibration --features fit --example relaxation_terms [-- FIRST LAST]`
-//! (seeds, default 1 16). Terms: v0 the model's own (1, m, m^2, t, ln
+//! `cargo run --release -p fringe-calibration --features fit --example relaxation_terms [-- FIRST LAST [FAMILY]]`
+//! (seeds, default 1 16; a zoo family by name, default the grain). Terms: v0 the model's own (1, m, m^2, t, ln
 //! sigma); v1 + d_eps; v2 + ln d_eps; v3 + the mixing-model moisture m_s of
-//! eps_hf + d_eps; v4 + m_s and m_s^2. The test's checks: SEP 10 C beyond
-//! below 1.15 times the baseline's, at twice the salt below it.
+//! eps_hf + d_eps; v4 + m_s and m_s^2; v5 as v4 with d_eps shrunk by its
+//! standard deviation from the inversion, w = 1 / (1 + (sd / d_eps)^2); v6
+//! as v4 with d_eps used only where its relative SD is below 0.3; v7 as v4
+//! with m_s held to 0-60 %; v8 as v4 with m_s held to 0-100 % (the bounds
+//! of a wet-basis moisture). The test's checks: SEP 10 C beyond below 1.15
+//! times the baseline's, at twice the salt below it. Also printed: the
+//! in-range SEP over the baseline's.
 
 use fringe_calibration::fit::product::{fit_relaxation, RelaxationOptions, Sample};
 use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS};
@@ -24,7 +29,7 @@ use nalgebra::DMatrix;
 #[path = "../tests/common/baseline.rs"]
 mod baseline;
 
-const VARIANTS: usize = 5;
+const VARIANTS: usize = 9;
 
 fn sep(e: &[f64]) -> f64 {
     let n = e.len() as f64;
@@ -42,9 +47,9 @@ fn terms(m: &RelaxationModel<f64>, s: &Sample, which: usize) -> Option<Vec<f64>>
         },
         sd: 0.02,
     });
-    let p = invert(&obs, &m.law, s.temperature_c, &InvertOptions::default())
-        .ok()?
-        .params;
+    let inv = invert(&obs, &m.law, s.temperature_c, &InvertOptions::default()).ok()?;
+    let p = inv.params;
+    let sd_d = inv.covariance[1][1].max(0.0).sqrt();
     let f = m.features(&p, s.temperature_c);
     let mut v = vec![f[0], f[1], f[2], f[4], f[5]];
     let ms = m.mixing_moisture_pct(p.eps_hf + p.d_eps, s.temperature_c);
@@ -53,6 +58,28 @@ fn terms(m: &RelaxationModel<f64>, s: &Sample, which: usize) -> Option<Vec<f64>>
         2 => v.push(p.d_eps.max(1e-3).ln()),
         3 => v.push(ms),
         4 => v.extend([ms, ms * ms]),
+        5 => {
+            // d_eps shrunk by how well it is determined.
+            let w = 1.0 / (1.0 + (sd_d / p.d_eps.max(1e-6)).powi(2));
+            let me = m.mixing_moisture_pct(p.eps_hf + w * p.d_eps, s.temperature_c);
+            v.extend([me, me * me]);
+        }
+        6 => {
+            // d_eps only when its relative SD is below 0.3.
+            let d = if sd_d < 0.3 * p.d_eps { p.d_eps } else { 0.0 };
+            let me = m.mixing_moisture_pct(p.eps_hf + d, s.temperature_c);
+            v.extend([me, me * me]);
+        }
+        7 => {
+            // m_s held to 0-60 % (the mixing model's plausible range).
+            let me = ms.clamp(0.0, 60.0);
+            v.extend([me, me * me]);
+        }
+        8 => {
+            // m_s held to 0-100 % (wet basis: physical bounds).
+            let me = ms.clamp(0.0, 100.0);
+            v.extend([me, me * me]);
+        }
         _ => {}
     }
     v.iter().all(|x| x.is_finite()).then_some(v)
@@ -91,10 +118,18 @@ fn main() {
             .unwrap_or(d)
     };
     let (first, last) = (arg(1, 1), arg(2, 16));
-    let f = Family::grain();
+    let f = match std::env::args().nth(3) {
+        None => Family::grain(),
+        Some(name) => Family::by_name(&name).unwrap_or_else(|| {
+            eprintln!("no zoo family {name:?}");
+            std::process::exit(2)
+        }),
+    };
     // Per variant: SEPs in range, hot, salty; cases passing both checks.
     let mut sums = [[0.0f64; 3]; VARIANTS];
     let mut pass = [0usize; VARIANTS];
+    // In-range SEP over the baseline's: sum, worst, cases above 1.
+    let mut ratio = [(0.0f64, 0.0f64, 0usize); VARIANTS];
     let mut cases = 0usize;
     for seed in first..=last {
         for pair in FREQ_PAIRS {
@@ -152,6 +187,10 @@ fn main() {
                 for k in 0..3 {
                     sums[which][k] += got[k];
                 }
+                let r = got[0] / base[0];
+                ratio[which].0 += r;
+                ratio[which].1 = ratio[which].1.max(r);
+                ratio[which].2 += usize::from(r > 1.0);
                 if got[1] < 1.15 * base[1] && got[2] < base[2] {
                     pass[which] += 1;
                 }
@@ -160,15 +199,18 @@ fn main() {
             println!("{line}");
         }
     }
-    println!("\nSEP in range, 10 C beyond, twice the salt (means over {cases} cases); cases passing both checks:");
+    println!("\nSEP in range, 10 C beyond, twice the salt (means over {cases} cases); cases passing both checks; in range over the baseline: mean, worst, cases above 1:");
     for which in 0..VARIANTS {
         let n = cases.max(1) as f64;
         println!(
-            "v{which}: {:.3} {:.3} {:.3}; {} of {cases}",
+            "v{which}: {:.3} {:.3} {:.3}; {} of {cases}; {:.2} {:.2} {}",
             sums[which][0] / n,
             sums[which][1] / n,
             sums[which][2] / n,
-            pass[which]
+            pass[which],
+            ratio[which].0 / n,
+            ratio[which].1,
+            ratio[which].2
         );
     }
 }
