@@ -86,6 +86,21 @@ fn cannot_open_reason(path: &Path) -> String {
     }
 }
 
+/// Whether the SQLite file at `path` holds no table (a file this process
+/// created and nobody has made a store yet). When it cannot be read: whether
+/// no write-ahead log lies beside it (a store open elsewhere has one).
+fn holds_no_tables(path: &Path) -> bool {
+    Connection::open_with_flags(path, OpenFlags::SQLITE_OPEN_READ_ONLY)
+        .and_then(|c| {
+            c.query_row(
+                "SELECT count(*) FROM sqlite_master WHERE type = 'table'",
+                [],
+                |r| r.get::<_, i64>(0),
+            )
+        })
+        .map_or_else(|_| !wal_path(path).is_file(), |n| n == 0)
+}
+
 /// The write-ahead log beside a database file.
 pub fn wal_path(db: &Path) -> PathBuf {
     let mut s = db.as_os_str().to_owned();
@@ -190,8 +205,10 @@ impl Store {
             store.migrate()?;
             Ok(store)
         })();
-        if opened.is_err() && !existed {
-            // Nothing of the user's was there: leave nothing behind.
+        if opened.is_err() && !existed && holds_no_tables(&path) {
+            // Nothing of the user's was there: leave nothing behind. (Not
+            // when another process has made the file a store meanwhile: it
+            // may be writing to it.)
             for p in [path.clone(), wal_path(&path), shm_path(&path)] {
                 let _ = std::fs::remove_file(p);
             }
@@ -318,10 +335,25 @@ impl Store {
             .busy_timeout(BUSY_TIMEOUT)
             .map_err(|e| self.err(e))?;
         if write {
-            let mode: String = self
-                .conn
-                .query_row("PRAGMA journal_mode = WAL", [], |r| r.get(0))
-                .map_err(|e| self.err(e))?;
+            // Switching a new file to WAL needs it to itself for a moment,
+            // and SQLite answers "busy" at once, without the busy handler,
+            // when another connection is opening it too (a gateway and a
+            // pull started together): try again for the busy timeout.
+            let deadline = std::time::Instant::now() + BUSY_TIMEOUT;
+            let mode: String = loop {
+                match self
+                    .conn
+                    .query_row("PRAGMA journal_mode = WAL", [], |r| r.get(0))
+                {
+                    Err(rusqlite::Error::SqliteFailure(e, _))
+                        if e.code == rusqlite::ErrorCode::DatabaseBusy
+                            && std::time::Instant::now() < deadline =>
+                    {
+                        std::thread::sleep(std::time::Duration::from_millis(5));
+                    }
+                    other => break other.map_err(|e| self.err(e))?,
+                }
+            };
             if !mode.eq_ignore_ascii_case("wal") && !mode.eq_ignore_ascii_case("memory") {
                 return Err(StoreError::CannotOpen {
                     path: self.path.clone(),
@@ -351,33 +383,53 @@ impl Store {
                 known: SCHEMA_VERSION,
             });
         }
-        if v == 0 {
-            let tables: i64 = self
-                .conn
-                .query_row(
-                    "SELECT count(*) FROM sqlite_master WHERE type = 'table'",
-                    [],
-                    |r| r.get(0),
-                )
-                .map_err(|e| self.err(e))?;
-            if tables > 0 {
-                return Err(StoreError::Foreign {
-                    path: self.path.clone(),
-                });
-            }
+        if v == SCHEMA_VERSION {
+            return Ok(());
         }
         let path = self.path.clone();
-        for (i, sql) in schema::MIGRATIONS.iter().enumerate().skip(v as usize) {
+        // Each step reads the version inside its own write transaction:
+        // another process opening the same new file at the same moment
+        // (a gateway and a pull) has migrated it, or has not, and what it
+        // did is not done again (before, the second failed with "table ...
+        // already exists").
+        loop {
             let tx = self
                 .conn
                 .transaction_with_behavior(TransactionBehavior::Immediate)
                 .map_err(|e| from_sqlite(&path, e))?;
+            let v: u32 = tx
+                .query_row("PRAGMA user_version", [], |r| r.get::<_, i64>(0))
+                .map(|v| v as u32)
+                .map_err(|e| from_sqlite(&path, e))?;
+            if v >= SCHEMA_VERSION {
+                tx.commit().map_err(|e| from_sqlite(&path, e))?;
+                if v > SCHEMA_VERSION {
+                    return Err(StoreError::NewerSchema {
+                        path,
+                        found: v,
+                        known: SCHEMA_VERSION,
+                    });
+                }
+                return Ok(());
+            }
+            if v == 0 {
+                let tables: i64 = tx
+                    .query_row(
+                        "SELECT count(*) FROM sqlite_master WHERE type = 'table'",
+                        [],
+                        |r| r.get(0),
+                    )
+                    .map_err(|e| from_sqlite(&path, e))?;
+                if tables > 0 {
+                    return Err(StoreError::Foreign { path });
+                }
+            }
+            let sql = schema::MIGRATIONS[v as usize];
             tx.execute_batch(sql)
-                .and_then(|()| tx.pragma_update(None, "user_version", (i + 1) as i64))
+                .and_then(|()| tx.pragma_update(None, "user_version", i64::from(v + 1)))
                 .and_then(|()| tx.commit())
                 .map_err(|e| from_sqlite(&path, e))?;
         }
-        Ok(())
     }
 
     /// Records a device if it is not yet known (its first sighting is kept;
