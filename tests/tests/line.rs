@@ -100,10 +100,15 @@ fn left_alone_the_device_logs_every_interval_and_pull_gets_the_whole_log() {
     // machine's load decides how many slots the simulator's wall clock
     // stretches (0.79 measured with a load average of 6.5 on 2 cores; the
     // exact count is `firmware/tests/schedule.rs`'s, on a virtual clock).
+    // A reading is stamped when done: the first (with the reference check)
+    // up to about an interval later in its slot than the last, so the span
+    // counts up to one slot short; two readings in one slot would show as
+    // about twice as many readings as slots. (Once, beside two fuzzers and
+    // a full test run: 310 readings over a span of 308.5-309 intervals.)
     let slots = (stored[n - 1].time_ms - stored[0].time_ms) as f64 / 100.0 + 1.0;
     assert!(
-        n as f64 >= 0.5 * slots && n as f64 <= slots + 1.0,
-        "{n} readings in {slots:.0} intervals"
+        n as f64 >= 0.5 * slots && n as f64 <= slots + 2.0,
+        "{n} readings in {slots:.1} intervals"
     );
 }
 
