@@ -247,13 +247,25 @@ pub fn answer_in(
     now: Instant,
     order: WordOrder,
 ) -> Result<Response, ExceptionCode> {
-    let Request::ReadInputRegisters(addr, count) = *req else {
+    let Request::ReadInputRegisters(..) = *req else {
         return Err(ExceptionCode::IllegalFunction);
     };
     let snapshot = table
         .snapshot(unit, now)
         .ok_or(ExceptionCode::GatewayTargetDevice)?;
-    let m = with_word_order(map(&snapshot), order);
+    answer_input(&snapshot, req, order)
+}
+
+/// Answers function 04 from a unit's `snapshot`.
+fn answer_input(
+    snapshot: &fringe_registers::Snapshot,
+    req: &Request<'_>,
+    order: WordOrder,
+) -> Result<Response, ExceptionCode> {
+    let Request::ReadInputRegisters(addr, count) = *req else {
+        return Err(ExceptionCode::IllegalFunction);
+    };
+    let m = with_word_order(map(snapshot), order);
     read_input_registers(&m, addr, count)
         .map(|words| Response::ReadInputRegisters(words.to_vec()))
         .map_err(|e| match e {
@@ -294,7 +306,7 @@ impl tokio_modbus::server::Service for Service {
                 self.order,
                 snapshot.connected,
             ),
-            _ => answer_in(&self.table, req.slave, &req.request, now, self.order),
+            _ => answer_input(&snapshot, &req.request, self.order),
         })
     }
 }

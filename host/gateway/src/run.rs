@@ -399,7 +399,10 @@ impl Gateway {
         // The units a PLC feeds their density over Modbus, and their inbox.
         let modbus_fed: Vec<(u8, Arc<DensityInbox>)> = devices
             .iter()
-            .filter(|d| d.spec.density.map(|f| f.from) == Some(crate::site::DensitySource::Modbus))
+            .filter(|d| {
+                d.spec
+                    .takes_density_from(crate::site::DensitySource::Modbus)
+            })
             .filter_map(|d| Some((d.spec.unit, d.density.clone()?)))
             .collect();
         let density_writes = modbus_fed.first().map(|(_, inbox)| {

@@ -272,6 +272,13 @@ pub struct DeviceSpec {
     pub density: Option<DensityFeed>,
 }
 
+impl DeviceSpec {
+    /// Whether it takes the plant's bulk density from `from`.
+    pub fn takes_density_from(&self, from: DensitySource) -> bool {
+        self.density.is_some_and(|f| f.from == from)
+    }
+}
+
 /// MQTT settings.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct MqttSite {

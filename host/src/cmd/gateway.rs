@@ -149,7 +149,7 @@ pub fn gateway(
     let modbus_fed: Vec<String> = site
         .devices
         .iter()
-        .filter(|d| d.density.map(|f| f.from) == Some(DensitySource::Modbus))
+        .filter(|d| d.takes_density_from(DensitySource::Modbus))
         .map(|d| d.unit.to_string())
         .collect();
     if !modbus_fed.is_empty() {
@@ -179,7 +179,7 @@ pub fn gateway(
     let mqtt_fed = site
         .devices
         .iter()
-        .any(|d| d.density.map(|f| f.from) == Some(DensitySource::Mqtt));
+        .any(|d| d.takes_density_from(DensitySource::Mqtt));
     let publisher = match &site.mqtt {
         Some(m) => Some(start_mqtt(
             m,
