@@ -852,6 +852,21 @@ impl<S: RecordStore> Worker<S> {
             && session.latest().is_some_and(|r| {
                 r.flags.contains(Flags::DENSITY_MISSING) && taken_after(r.seq, f.latest_at_send)
             });
+        // The device holds it (its newest reading does not show a loss): a
+        // reading taken before the acknowledgement and received after it,
+        // still flagged, cleared the status's value; show it again.
+        if !fresh
+            && f.acked == Some(order.seq)
+            && session
+                .latest()
+                .is_some_and(|r| !r.flags.contains(Flags::DENSITY_MISSING))
+        {
+            self.update(|s| {
+                if s.density_kg_m3.is_none() {
+                    s.density_kg_m3 = Some(order.kg_m3);
+                }
+            });
+        }
         let due = if fresh {
             // A try of this order that failed waits; a new order goes now.
             f.failed
