@@ -20,6 +20,8 @@ fn bench(c: &mut Criterion) {
         coeffs: [0.0, 1.0, 0.0, 0.0],
         c_t: 0.0,
         c_sigma: 0.0,
+        c_static: [0.0; 2],
+        static_hold: fringe_calibration::product::no_static_hold(),
     });
     let (p, n) = model.to_params();
     let r = Range::new;

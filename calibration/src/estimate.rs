@@ -193,6 +193,11 @@ pub fn estimate<T: Real>(
                     flags |= EstimateFlags::OUT_OF_RANGE;
                 }
             }
+            // The static terms' moisture beyond its hold: the model holds
+            // it and the reading lies outside the calibration.
+            if rm.uses_static() && !rm.held_static_pct(&p, t).1 {
+                flags |= EstimateFlags::OUT_OF_RANGE;
+            }
             let g = rm.gradient(&p, t);
             let mut var = T::zero();
             for i in 0..3 {
@@ -346,6 +351,8 @@ mod tests {
             coeffs: [0.0, 1.0, 0.0, 0.0],
             c_t: 0.0,
             c_sigma: 0.0,
+            c_static: [0.0; 2],
+            static_hold: crate::product::no_static_hold(),
         });
         let (p, n) = m.to_params();
         let r = Range::new;
@@ -436,6 +443,55 @@ mod tests {
         let e = estimate(&i, Some(&identity_cal()));
         assert_eq!(e.moisture_pct, None);
         assert!(e.flags.contains(EstimateFlags::FIT_NOT_CONVERGED));
+    }
+
+    /// The static terms add `q1 h + q2 h^2` with h the mixing-model
+    /// moisture of eps_hf + d_eps; beyond its hold h stands at the hold's
+    /// end and the reading is flagged out of range.
+    #[test]
+    fn static_terms_add_their_moisture_and_flag_a_reading_beyond_their_hold() {
+        let plain = identity_cal::<f64>();
+        let ranges = identity_cal::<f32>();
+        let s = grid().nth(3).unwrap();
+        let e = estimate(&input::<f64>(&s, 1e-3), Some(&plain));
+        let (m0, inv) = (e.moisture_pct.unwrap(), e.inversion.unwrap());
+        let ProductModel::Relaxation(rm) = plain.model else {
+            panic!("kind")
+        };
+        let h = rm.static_moisture_pct(&inv.params, s.temperature_c);
+        assert!(h.is_finite() && h > 0.0, "{h}");
+        let with = |lo: f64, hi: f64| {
+            let m = ProductModel::Relaxation(RelaxationModel {
+                c_static: [0.1, 0.002],
+                static_hold: Range::new(lo, hi),
+                ..rm
+            });
+            let (p, n) = m.to_params();
+            let cal = ProductCalibration::from_parts(
+                ModelKind::Relaxation,
+                &p[..n],
+                Basis::Wet,
+                ranges.moisture_pct,
+                ranges.temperature_c,
+                ranges.input_ranges(),
+                0.25,
+            )
+            .unwrap();
+            estimate(&input::<f64>(&s, 1e-3), Some(&cal))
+        };
+        let q = |x: f64| 0.1 * x + 0.002 * x * x;
+        // Inside the hold: the terms at h, no flag.
+        let e = with(h - 1.0, h + 1.0);
+        assert!((e.moisture_pct.unwrap() - (m0 + q(h))).abs() < 1e-6);
+        assert!(e.flags.is_empty(), "{:?}", e.flags);
+        // Beyond it: at the hold's end, flagged.
+        let e = with(h - 3.0, h - 2.0);
+        assert!((e.moisture_pct.unwrap() - (m0 + q(h - 2.0))).abs() < 1e-6);
+        assert!(
+            e.flags.contains(EstimateFlags::OUT_OF_RANGE),
+            "{:?}",
+            e.flags
+        );
     }
 
     #[test]

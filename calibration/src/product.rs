@@ -10,7 +10,16 @@
 //!   into a mixing-model moisture m (% wet basis, the water mass fraction)
 //!   with water's permittivity at the product temperature (Malmberg and
 //!   Maryott 1956); then
-//!   `moisture = p0 + p1 m + p2 m^2 + p3 m^3 + c_t (t - t_ref) + c_s ln(sigma / sigma_ref)`.
+//!   `moisture = p0 + p1 m + p2 m^2 + p3 m^3 + c_t (t - t_ref) + c_s ln(sigma / sigma_ref)`,
+//!   and, in layout 2, `+ q1 h + q2 h^2` with h the mixing-model moisture
+//!   of the static permittivity eps_hf + d_eps held to the range
+//!   `[h_min, h_max]` the calibration samples span (widened by a tenth):
+//!   where salt or heat move the relaxation above the band, eps_hf alone
+//!   no longer tells the water apart from the relaxation's strength, and
+//!   the static term carries it (`calibration/examples/relaxation_terms.rs`
+//!   and BENCHMARKS.md measure it on the zoo); the hold keeps a d_eps the
+//!   two frequencies cannot determine (a relaxation far below the band)
+//!   from driving the moisture out of the calibration's range.
 //!
 //! - **Multivariate** (chemometrics on physically chosen features of both
 //!   frequencies, [`MultivariateModel`]): `moisture = b0 + sum_k b_k x_k`
@@ -36,8 +45,8 @@
 //!  [2] t_ref_c                 [3] c0  [4] c1  [5] c2  [6] c3   (% per eps'^k)
 //!  [7] c_t (% per K)
 //!
-//! Relaxation, 17 values:
-//!  [0] layout version (1)      [1] alpha (0 <= alpha < 1)
+//! Relaxation, 17 values (layout 1) or 21 (layout 2, with the static terms):
+//!  [0] layout version (1 or 2) [1] alpha (0 <= alpha < 1)
 //!  [2] fr_ref_hz (> 0)         [3] sigma_ref_s_m (> 0)
 //!  [4] fr_exponent p           [5] fr_temp_coeff_per_c
 //!  [6] mixing exponent a (0..=1; 0 logarithmic, 0.5 CRIM)
@@ -46,6 +55,7 @@
 //!  [10] t_ref_c (of the c_t term and of the law's c_T)
 //!  [11] p0 [12] p1 [13] p2 [14] p3  (% per m^k)
 //!  [15] c_t (% per K)          [16] c_s (% per unit ln(sigma/sigma_ref))
+//!  [17] q1 [18] q2 (% per h^k)  [19] h_min [20] h_max (%, 0 <= h_min <= h_max <= 100)
 //!
 //! Multivariate without a density input, 27 values:
 //!  [0] layout version (1)      [1] t_ref_c
@@ -77,8 +87,10 @@ pub const MAX_INPUTS: usize = 6;
 pub const LAYOUT_VERSION: f32 = 1.0;
 /// Length of the single-frequency layout.
 pub const SINGLE_LEN: usize = 8;
-/// Length of the relaxation layout.
+/// Length of the relaxation layout without the static terms (version 1).
 pub const RELAXATION_LEN: usize = 17;
+/// Length of the relaxation layout with the static terms (version 2).
+pub const RELAXATION_STATIC_LEN: usize = 21;
 /// Number of features of the multivariate model (the last
 /// [`MV_DENSITY_FEATURES`] used only with a density input).
 pub const MV_FEATURES: usize = 26;
@@ -92,6 +104,8 @@ pub const MULTIVARIATE_LEN: usize = 4 + MV_BASE_FEATURES;
 pub const MULTIVARIATE_DENSITY_LEN: usize = 4 + MV_FEATURES + 1;
 /// Layout version of the multivariate model with a density input.
 pub const LAYOUT_VERSION_DENSITY: f32 = 2.0;
+/// Layout version of a relaxation model with the static terms.
+pub const LAYOUT_VERSION_STATIC: f32 = 2.0;
 /// Lowest and highest bulk density a density input may carry, kg/m^3
 /// (loose flakes to wet aggregates with room to spare; common practice,
 /// no source).
@@ -189,7 +203,7 @@ impl fmt::Display for ParamsError {
                 )
             }
             ParamsError::UnknownVersion => {
-                f.write_str("calibration params[0]: unknown layout version (expected 1, or 2 for a multivariate model with a density input)")
+                f.write_str("calibration params[0]: unknown layout version (expected 1, or 2 for a multivariate model with a density input or a relaxation model with the static terms)")
             }
             ParamsError::NonFinite { index } => {
                 write!(f, "calibration params[{index}] is not finite")
@@ -277,11 +291,48 @@ pub struct RelaxationModel<T> {
     pub c_t: T,
     /// Conductivity coefficient, % per unit ln(sigma / sigma_ref).
     pub c_sigma: T,
+    /// q1, q2: % moisture per h^k (h: the held static mixing-model
+    /// moisture, [`RelaxationModel::held_static_pct`]); both zero in a
+    /// layout-1 model.
+    pub c_static: [T; 2],
+    /// The range h is held to, %.
+    pub static_hold: Range<T>,
+}
+
+/// The static terms' hold of a model without them.
+pub fn no_static_hold<T: Real>() -> Range<T> {
+    Range::new(T::zero(), T::c(100.0))
 }
 
 impl<T: Real> RelaxationModel<T> {
     /// Number of features (and coefficients).
-    pub const N_FEATURES: usize = 6;
+    pub const N_FEATURES: usize = 8;
+
+    /// Whether the model uses the static terms (layout 2).
+    pub fn uses_static(&self) -> bool {
+        self.c_static[0] != T::zero() || self.c_static[1] != T::zero()
+    }
+
+    /// Mixing-model moisture of the static permittivity eps_hf + d_eps, %
+    /// (not held).
+    pub fn static_moisture_pct(&self, p: &MaterialParams<T>, t_c: T) -> T {
+        self.mixing_moisture_pct(p.eps_hf + p.d_eps, t_c)
+    }
+
+    /// [`RelaxationModel::static_moisture_pct`] held to the model's range,
+    /// and whether it lay inside it.
+    pub fn held_static_pct(&self, p: &MaterialParams<T>, t_c: T) -> (T, bool) {
+        let h = self.static_moisture_pct(p, t_c);
+        let r = self.static_hold;
+        if r.contains(h) {
+            (h, true)
+        } else if h > r.max {
+            (r.max, false)
+        } else {
+            // Below the range, or NaN.
+            (r.min, false)
+        }
+    }
 
     /// Mixing-model moisture m (% wet basis) from eps_hf at `t_c`.
     pub fn mixing_moisture_pct(&self, eps_hf: T, t_c: T) -> T {
@@ -289,9 +340,10 @@ impl<T: Real> RelaxationModel<T> {
             .moisture_wb_pct(eps_hf, static_permittivity_mm(t_c))
     }
 
-    /// Features `[1, m, m^2, m^3, t - t_ref, ln(sigma/sigma_ref)]`.
-    pub fn features(&self, p: &MaterialParams<T>, t_c: T) -> [T; 6] {
+    /// Features `[1, m, m^2, m^3, t - t_ref, ln(sigma/sigma_ref), h, h^2]`.
+    pub fn features(&self, p: &MaterialParams<T>, t_c: T) -> [T; 8] {
         let m = self.mixing_moisture_pct(p.eps_hf, t_c);
+        let (h, _) = self.held_static_pct(p, t_c);
         [
             T::one(),
             m,
@@ -299,15 +351,22 @@ impl<T: Real> RelaxationModel<T> {
             m * m * m,
             t_c - self.t_ref_c,
             T::ln(p.sigma_s_m / self.law.sigma_ref_s_m),
+            h,
+            h * h,
         ]
     }
 
     /// Moisture, %.
     pub fn moisture_pct(&self, p: &MaterialParams<T>, t_c: T) -> T {
         let m = self.mixing_moisture_pct(p.eps_hf, t_c);
-        poly3(&self.coeffs, m)
+        let mut out = poly3(&self.coeffs, m)
             + self.c_t * (t_c - self.t_ref_c)
-            + self.c_sigma * T::ln(p.sigma_s_m / self.law.sigma_ref_s_m)
+            + self.c_sigma * T::ln(p.sigma_s_m / self.law.sigma_ref_s_m);
+        if self.uses_static() {
+            let (h, _) = self.held_static_pct(p, t_c);
+            out += self.c_static[0] * h + self.c_static[1] * h * h;
+        }
+        out
     }
 
     /// Gradient of the moisture w.r.t. (eps_hf, d_eps, sigma_s_m).
@@ -315,9 +374,18 @@ impl<T: Real> RelaxationModel<T> {
         let ew = static_permittivity_mm(t_c);
         let m = self.mixture.moisture_wb_pct(p.eps_hf, ew);
         let dm = self.mixture.d_moisture_d_eps(p.eps_hf, ew);
+        // The static terms: h follows eps_hf + d_eps inside its hold and
+        // stands still outside it.
+        let ds = match self.held_static_pct(p, t_c) {
+            (h, true) if self.uses_static() => {
+                (self.c_static[0] + T::c(2.0) * self.c_static[1] * h)
+                    * self.mixture.d_moisture_d_eps(p.eps_hf + p.d_eps, ew)
+            }
+            _ => T::zero(),
+        };
         [
-            dpoly3(&self.coeffs, m) * dm,
-            T::zero(),
+            dpoly3(&self.coeffs, m) * dm + ds,
+            ds,
             self.c_sigma / p.sigma_s_m,
         ]
     }
@@ -600,11 +668,20 @@ impl<T: Real> ProductModel<T> {
                     m.coeffs[3],
                     m.c_t,
                     m.c_sigma,
+                    m.c_static[0],
+                    m.c_static[1],
+                    m.static_hold.min,
+                    m.static_hold.max,
                 ];
                 for (i, x) in v.iter().enumerate() {
                     out[1 + i] = f(*x);
                 }
-                (out, RELAXATION_LEN)
+                if !m.uses_static() {
+                    out[RELAXATION_LEN..RELAXATION_STATIC_LEN].fill(0.0);
+                    return (out, RELAXATION_LEN);
+                }
+                out[0] = LAYOUT_VERSION_STATIC;
+                (out, RELAXATION_STATIC_LEN)
             }
             ProductModel::Multivariate(m) => {
                 out[1] = f(m.t_ref_c);
@@ -632,11 +709,15 @@ impl<T: Real> ProductModel<T> {
     /// [`ParamsError`] naming the offending index.
     pub fn from_params(kind: ModelKind, params: &[f32]) -> Result<Self, ParamsError> {
         // The multivariate model's layout version 2 (with a density input)
-        // is longer; every other layout is version 1.
+        // and the relaxation model's (with the static terms) are longer;
+        // every other layout is version 1.
         let density =
             kind == ModelKind::Multivariate && params.first() == Some(&LAYOUT_VERSION_DENSITY);
+        let with_static =
+            kind == ModelKind::Relaxation && params.first() == Some(&LAYOUT_VERSION_STATIC);
         let expected = match kind {
             ModelKind::SingleFrequency => SINGLE_LEN,
+            ModelKind::Relaxation if with_static => RELAXATION_STATIC_LEN,
             ModelKind::Relaxation => RELAXATION_LEN,
             ModelKind::Multivariate if density => MULTIVARIATE_DENSITY_LEN,
             ModelKind::Multivariate => MULTIVARIATE_LEN,
@@ -650,7 +731,7 @@ impl<T: Real> ProductModel<T> {
         if let Some(index) = params.iter().position(|x| !x.is_finite()) {
             return Err(ParamsError::NonFinite { index });
         }
-        if params[0] != LAYOUT_VERSION && !density {
+        if params[0] != LAYOUT_VERSION && !density && !with_static {
             return Err(ParamsError::UnknownVersion);
         }
         let g = |i: usize| T::c(params[i] as f64);
@@ -697,6 +778,17 @@ impl<T: Real> ProductModel<T> {
                 if !(p[9] > 0.0 && p[9] < p[8]) {
                     return bad(9, "bulk density must be > 0 and below the particle density");
                 }
+                let (c_static, static_hold) = if with_static {
+                    if !(p[19] >= 0.0 && p[19] <= p[20] && p[20] <= 100.0) {
+                        return bad(
+                            19,
+                            "the static terms' hold must satisfy 0 <= h_min <= h_max <= 100",
+                        );
+                    }
+                    ([g(17), g(18)], Range::new(g(19), g(20)))
+                } else {
+                    ([T::zero(); 2], no_static_hold())
+                };
                 Ok(ProductModel::Relaxation(RelaxationModel {
                     law: RelaxationLaw {
                         alpha: g(1),
@@ -716,6 +808,8 @@ impl<T: Real> ProductModel<T> {
                     coeffs: [g(11), g(12), g(13), g(14)],
                     c_t: g(15),
                     c_sigma: g(16),
+                    c_static,
+                    static_hold,
                 }))
             }
             ModelKind::Multivariate => {
@@ -768,6 +862,7 @@ impl<T: Real> ProductModel<T> {
                 r.coeffs[0] += a;
                 r.c_t *= b;
                 r.c_sigma *= b;
+                r.c_static = r.c_static.map(|c| c * b);
             }
             ProductModel::Multivariate(v) => {
                 v.coeffs = v.coeffs.map(|c| c * b);
@@ -807,6 +902,8 @@ impl<T: Real> ProductModel<T> {
                 coeffs: m.coeffs.map(U::cast),
                 c_t: U::cast(m.c_t),
                 c_sigma: U::cast(m.c_sigma),
+                c_static: m.c_static.map(U::cast),
+                static_hold: m.static_hold.cast(),
             }),
             ProductModel::Multivariate(m) => ProductModel::Multivariate(MultivariateModel {
                 t_ref_c: U::cast(m.t_ref_c),
@@ -929,6 +1026,92 @@ pub(crate) mod tests {
             coeffs: [0.2, 0.98, 0.001, 0.0],
             c_t: 0.01,
             c_sigma: -0.05,
+            c_static: [0.0; 2],
+            static_hold: no_static_hold(),
+        }
+    }
+
+    fn static_model() -> RelaxationModel<f64> {
+        RelaxationModel {
+            c_static: [0.3, -0.004],
+            static_hold: Range::new(5.0, 40.0),
+            ..relaxation_model()
+        }
+    }
+
+    #[test]
+    fn the_static_terms_round_trip_in_layout_2_and_are_validated() {
+        let m = ProductModel::Relaxation(static_model());
+        let (mut p, n) = m.to_params();
+        assert_eq!(n, RELAXATION_STATIC_LEN);
+        assert_eq!(p[0], 2.0);
+        let back = ProductModel::<f64>::from_params(ModelKind::Relaxation, &p[..n]).unwrap();
+        let ProductModel::Relaxation(b) = back else {
+            panic!("kind")
+        };
+        assert!((b.c_static[0] - 0.3).abs() < 1e-6 && (b.c_static[1] + 0.004).abs() < 1e-8);
+        assert_eq!(b.static_hold, Range::new(5.0, 40.0));
+        // Without the static terms the model keeps layout 1.
+        let (p1, n1) = ProductModel::Relaxation(relaxation_model()).to_params();
+        assert_eq!((n1, p1[0]), (RELAXATION_LEN, 1.0));
+        // A hold outside 0-100 % or inverted names index 19.
+        for (lo, hi) in [(-1.0, 40.0), (30.0, 20.0), (5.0, 101.0)] {
+            p[19] = lo;
+            p[20] = hi;
+            assert!(matches!(
+                ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+                Err(ParamsError::Invalid { index: 19, .. })
+            ));
+        }
+        // A scaled model scales the static terms too.
+        let ProductModel::Relaxation(r) = m.rescaled(0.5, 2.0) else {
+            panic!("kind")
+        };
+        assert_eq!(r.c_static, [0.6, -0.008]);
+    }
+
+    #[test]
+    fn the_static_terms_gradient_matches_differences_and_stops_at_the_hold() {
+        let m = static_model();
+        let t = 21.0;
+        let moist = |e: f64, d: f64| {
+            m.moisture_pct(
+                &MaterialParams {
+                    eps_hf: e,
+                    d_eps: d,
+                    sigma_s_m: 2e-3,
+                },
+                t,
+            )
+        };
+        // Inside the hold (h about 17 %) and beyond it (h above 40 %).
+        for (e, d, inside) in [(5.0, 6.0, true), (5.0, 60.0, false)] {
+            let p = MaterialParams {
+                eps_hf: e,
+                d_eps: d,
+                sigma_s_m: 2e-3,
+            };
+            assert_eq!(
+                m.held_static_pct(&p, t).1,
+                inside,
+                "h {}",
+                m.static_moisture_pct(&p, t)
+            );
+            let g = m.gradient(&p, t);
+            let h = 1e-5;
+            let ge = (moist(e + h, d) - moist(e - h, d)) / (2.0 * h);
+            let gd = (moist(e, d + h) - moist(e, d - h)) / (2.0 * h);
+            assert!(
+                (g[0] - ge).abs() < 1e-5 * ge.abs().max(1.0),
+                "{} {ge}",
+                g[0]
+            );
+            assert!(
+                (g[1] - gd).abs() < 1e-5 * gd.abs().max(1.0),
+                "{} {gd}",
+                g[1]
+            );
+            assert_eq!(g[1] == 0.0, !inside);
         }
     }
 
@@ -975,7 +1158,16 @@ pub(crate) mod tests {
             Err(ParamsError::Invalid { index: 9, .. })
         ));
         p[9] = 760.0;
+        // Version 2 is the longer layout with the static terms.
         p[0] = 2.0;
+        assert_eq!(
+            ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+            Err(ParamsError::WrongLength {
+                expected: 21,
+                got: 17
+            })
+        );
+        p[0] = 3.0;
         assert_eq!(
             ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
             Err(ParamsError::UnknownVersion)

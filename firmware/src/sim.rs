@@ -378,6 +378,8 @@ pub fn exact_calibration(product: &SynthProduct<f32>, name: &str) -> ProductCal 
         coeffs: [0.0, 1.0, 0.0, 0.0],
         c_t: 0.0,
         c_sigma: 0.0,
+        c_static: [0.0; 2],
+        static_hold: fringe_calibration::product::no_static_hold(),
     });
     let (params, n) = model.to_params();
     let r = |min, max| Range { min, max };

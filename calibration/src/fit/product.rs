@@ -43,8 +43,9 @@ use crate::invert::{invert, InvertOptions, MaterialParams, Observation, Relaxati
 use crate::mixing::ProductMixture;
 use crate::moisture::Basis;
 use crate::product::{
-    ModelKind, MultivariateModel, ParamsError, ProductCalibration, ProductModel, Range,
-    RelaxationModel, SingleFrequencyModel, MV_BASE_FEATURES, MV_DENSITY_FEATURES, MV_FEATURES,
+    no_static_hold, ModelKind, MultivariateModel, ParamsError, ProductCalibration, ProductModel,
+    Range, RelaxationModel, SingleFrequencyModel, MV_BASE_FEATURES, MV_DENSITY_FEATURES,
+    MV_FEATURES,
 };
 use crate::stats::{diagnostics, Folds, OutlierRule, PredictionStats, StatsError};
 use crate::Cx;
@@ -195,6 +196,17 @@ pub enum ProductFitError {
         /// Why (the solver's words).
         reason: &'static str,
     },
+    /// The relaxation model's static terms did not predict the left-out
+    /// samples better than the model without them (the fit then goes on
+    /// without them; [`fit_relaxation`] does not return this).
+    StaticTermsNoBetter {
+        /// Cross-validated RMSEP with the static terms, %.
+        static_rmsep: f64,
+        /// The same without them, %.
+        plain_rmsep: f64,
+        /// Samples both predicted.
+        samples: usize,
+    },
     /// No model of a comparison could be fitted; each one's reason.
     NoModel {
         /// (model, why) for every candidate.
@@ -284,6 +296,14 @@ impl core::fmt::Display for ProductFitError {
                 }
                 f.write_str(" check those samples, or use another model")
             }
+            E::StaticTermsNoBetter {
+                static_rmsep,
+                plain_rmsep,
+                samples,
+            } => write!(
+                f,
+                "the static terms did not predict the left-out samples better (cross-validated RMSEP {static_rmsep:.3} % with them, {plain_rmsep:.3} % without, over {samples} samples)"
+            ),
             E::LawNotDetermined { reason } => write!(
                 f,
                 "the two frequencies' spectra do not determine a relaxation law for this product ({reason}); \
@@ -365,6 +385,9 @@ pub struct RelaxationOptions {
     /// Repeat the whole fit (relaxation law and mixing too) on every fold
     /// (default false: only the regression coefficients are refitted).
     pub refit_nonlinear_in_cv: bool,
+    /// Add the static terms (the held mixing-model moisture of eps_hf +
+    /// d_eps and its square, [`RelaxationModel::features`]; default true).
+    pub static_terms: bool,
 }
 
 impl RelaxationOptions {
@@ -379,6 +402,7 @@ impl RelaxationOptions {
             fit_fr_temperature: true,
             folds: Folds::LeaveOneOut,
             refit_nonlinear_in_cv: false,
+            static_terms: true,
         }
     }
 }
@@ -1414,6 +1438,7 @@ fn golden<F: FnMut(f64) -> f64>(mut f: F, mut lo: f64, mut hi: f64, tol: f64) ->
 }
 
 /// The nonlinear (product-level) part of a relaxation fit.
+#[derive(Clone)]
 struct RelaxationCore {
     law: RelaxationLaw<f64>,
     law_std_err: [f64; 4],
@@ -1422,10 +1447,30 @@ struct RelaxationCore {
     params: Vec<MaterialParams<f64>>,
 }
 
-const RELAX_EXTRA: [usize; 2] = [4, 5];
+/// The relaxation model's features beyond its polynomial: temperature and
+/// conductivity, and with the static terms h and h^2
+/// ([`RelaxationModel::features`]).
+fn relax_extra(with_static: bool) -> &'static [usize] {
+    if with_static {
+        &[4, 5, 6, 7]
+    } else {
+        &[4, 5]
+    }
+}
 
-fn relax_model(core: &RelaxationCore, degree: usize, coef: &[f64]) -> ProductModel<f64> {
+/// The regression's columns of the relaxation model.
+fn relax_columns(opts: &RelaxationOptions) -> Vec<usize> {
+    columns(opts.degree, relax_extra(opts.static_terms))
+}
+
+fn relax_model(
+    core: &RelaxationCore,
+    hold: Range<f64>,
+    degree: usize,
+    coef: &[f64],
+) -> ProductModel<f64> {
     let (coeffs, extra) = spread(coef, degree);
+    let q = |k: usize| extra.get(k).copied().unwrap_or(0.0);
     ProductModel::Relaxation(RelaxationModel {
         law: core.law,
         mixture: core.mixture,
@@ -1433,32 +1478,66 @@ fn relax_model(core: &RelaxationCore, degree: usize, coef: &[f64]) -> ProductMod
         coeffs,
         c_t: extra[0],
         c_sigma: extra[1],
+        c_static: [q(2), q(3)],
+        static_hold: hold,
     })
 }
 
+/// The range the static terms' moisture is held to: the one the samples
+/// span at the model's law and mixture, widened by a tenth of its width
+/// on each side, within 0-100 % (all of 0-100 % when no sample gives one).
+fn static_hold_of(
+    proto: &RelaxationModel<f64>,
+    params: &[MaterialParams<f64>],
+    samples: &[Sample],
+) -> Range<f64> {
+    let (lo, hi) = samples
+        .iter()
+        .zip(params)
+        .map(|(s, p)| proto.static_moisture_pct(p, s.temperature_c))
+        .filter(|h| h.is_finite())
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), h| {
+            (a.min(h), b.max(h))
+        });
+    if !(lo <= hi) {
+        return no_static_hold();
+    }
+    let w = 0.1 * (hi - lo);
+    Range::new((lo - w).clamp(0.0, 100.0), (hi + w).clamp(0.0, 100.0))
+}
+
+/// The regression's features of `samples` (whose parameters at the law are
+/// `core.params`) at `mixture`, and the static terms' hold they use.
 fn relax_features(
     core: &RelaxationCore,
     mixture: ProductMixture<f64>,
     degree: usize,
     samples: &[Sample],
-) -> Vec<Vec<f64>> {
-    let proto = RelaxationModel {
+    with_static: bool,
+) -> (Vec<Vec<f64>>, Range<f64>) {
+    let mut proto = RelaxationModel {
         law: core.law,
         mixture,
         t_ref_c: core.law.t_ref_c,
         coeffs: [0.0; 4],
         c_t: 0.0,
         c_sigma: 0.0,
+        c_static: [0.0; 2],
+        static_hold: no_static_hold(),
     };
-    let cols = columns(degree, &RELAX_EXTRA);
-    samples
+    if with_static {
+        proto.static_hold = static_hold_of(&proto, &core.params, samples);
+    }
+    let cols = columns(degree, relax_extra(with_static));
+    let features = samples
         .iter()
         .zip(&core.params)
         .map(|(s, p)| {
             let f = proto.features(p, s.temperature_c);
             cols.iter().map(|j| f[*j]).collect()
         })
-        .collect()
+        .collect();
+    (features, proto.static_hold)
 }
 
 /// How many distinct probe laws start the joint law fit on all samples.
@@ -1592,13 +1671,25 @@ fn relaxation_core(
     // Each sample's parameters at the fitted law (the least-squares solution
     // the device's inversion also converges to; a sample the device cannot
     // invert is reported by the estimate pass, by id).
+    //
+    // Where the two frequencies leave a sample two solutions in reach
+    // (d_eps poorly determined: the relaxation far from the band), the
+    // joint fit and the device's own inversion can land on different ones.
+    // The regression is fitted on what the device will compute: each
+    // sample's parameters from the device's inversion at the fitted law (in
+    // f64), the joint fit's where that inversion fails.
     let params: Vec<MaterialParams<f64>> = law_fit
         .params
         .iter()
-        .map(|p| MaterialParams {
-            eps_hf: p[0],
-            d_eps: p[1],
-            sigma_s_m: p[2].exp(),
+        .zip(obs.iter().zip(&temps))
+        .map(|(p, (o, t))| {
+            invert(o, &law, *t, &InvertOptions::default())
+                .map(|inv| inv.params)
+                .unwrap_or(MaterialParams {
+                    eps_hf: p[0],
+                    d_eps: p[1],
+                    sigma_s_m: p[2].exp(),
+                })
         })
         .collect();
     // Stage 2: the mixing parameter by golden section on the regression RSS.
@@ -1638,7 +1729,9 @@ fn relaxation_core(
     let y_mean = y.iter().sum::<f64>() / y.len() as f64;
     let y_var = y.iter().map(|v| (v - y_mean).powi(2)).sum::<f64>() / y.len() as f64;
     let rss = |x: f64| -> f64 {
-        let feats = relax_features(&core, mix_at(x), opts.degree, &sub_samples);
+        // The mixing parameter is chosen on the regression without the
+        // static terms (as measured in BENCHMARKS.md).
+        let (feats, _) = relax_features(&core, mix_at(x), opts.degree, &sub_samples, false);
         let ok: Vec<usize> = local
             .iter()
             .copied()
@@ -1699,7 +1792,11 @@ fn check_relaxation_options(opts: &RelaxationOptions) -> Result<(), ProductFitEr
 /// Fits the relaxation model (see the module docs).
 ///
 /// Needs at least `degree + 3 + 3` samples (polynomial, temperature and
-/// conductivity terms, plus three) that the model can use. A sample the
+/// conductivity terms, plus three) that the model can use, and two more
+/// with the static terms ([`RelaxationOptions::static_terms`]). Where the
+/// fit with the static terms fails for a reason that may be theirs (an
+/// undetermined regression, samples it cannot use), the model is fitted
+/// without them and a note says why. A sample the
 /// model cannot use (its parameters at the fitted law outside the
 /// inversion's bounds, no mixing-model moisture, or no moisture from the
 /// device's own estimate) is left out, named with the reason in
@@ -1714,8 +1811,101 @@ pub fn fit_relaxation(
     samples: &[Sample],
     opts: &RelaxationOptions,
 ) -> Result<ProductFit, ProductFitError> {
+    let cache = CoreCache::default();
+    match fit_relaxation_terms(samples, opts, &cache) {
+        // The static terms can leave the regression undetermined (the
+        // static moisture a linear function of the mixing-model moisture
+        // where d_eps hardly varies, or held at one end for most samples)
+        // or cost samples the plain model can use: fit without them and
+        // say why.
+        Err(e) if opts.static_terms && static_terms_may_cause(&e) => {
+            let plain = RelaxationOptions {
+                static_terms: false,
+                ..*opts
+            };
+            let mut fit = fit_relaxation_terms(samples, &plain, &cache)?;
+            let why = match e {
+                ProductFitError::StaticTermsNoBetter { .. } => e.to_string(),
+                _ => format!("with them, {e}"),
+            };
+            fit.notes.push(format!(
+                "fitted without the static terms (the held mixing-model moisture of eps_hf + d_eps): {why}"
+            ));
+            Ok(fit)
+        }
+        // With the static terms the moisture follows d_eps, which the two
+        // frequencies determine poorly where the relaxation lies far from
+        // the band: the device's inversion can land on another d_eps than
+        // the fit's and the sample is left out. Where the model without
+        // them leaves out fewer samples, it is written.
+        Ok(fit) if opts.static_terms && !fit.excluded.is_empty() => {
+            let plain = RelaxationOptions {
+                static_terms: false,
+                ..*opts
+            };
+            match fit_relaxation_terms(samples, &plain, &cache) {
+                Ok(mut p) if p.excluded.len() < fit.excluded.len() => {
+                    p.notes.push(format!(
+                        "fitted without the static terms (the held mixing-model moisture of eps_hf + d_eps): with them {} sample(s) could not be used, without them {}",
+                        fit.excluded.len(),
+                        p.excluded.len()
+                    ));
+                    Ok(p)
+                }
+                _ => Ok(fit),
+            }
+        }
+        r => r,
+    }
+}
+
+/// Whether a failure of the relaxation fit with the static terms may be
+/// theirs (not the samples' or the options', nor the law's).
+fn static_terms_may_cause(e: &ProductFitError) -> bool {
+    matches!(
+        e,
+        ProductFitError::LeastSquares { .. }
+            | ProductFitError::TooManyExcluded { .. }
+            | ProductFitError::Estimate { .. }
+            | ProductFitError::Params(_)
+            | ProductFitError::Stats(_)
+            | ProductFitError::StaticTermsNoBetter { .. }
+    )
+}
+
+/// The relaxation law and mixture fitted on a set of samples (by their
+/// indices in the table `fit_relaxation` was given), kept so that the fit
+/// with and the fit without the static terms, which share them, compute
+/// each once.
+type CoreCache = std::sync::Mutex<std::collections::HashMap<Vec<usize>, RelaxationCore>>;
+
+/// [`relaxation_core`] on `rows` of `samples`, from `cache` where it holds
+/// the same samples (`key`: their indices in the whole table).
+fn cached_core(
+    cache: &CoreCache,
+    key: Vec<usize>,
+    samples: &[Sample],
+    checked: &Checked,
+    rows: &[usize],
+    opts: &RelaxationOptions,
+) -> Result<RelaxationCore, ProductFitError> {
+    if let Some(c) = cache.lock().ok().and_then(|m| m.get(&key).cloned()) {
+        return Ok(c);
+    }
+    let c = relaxation_core(samples, checked, rows, opts)?;
+    if let Ok(mut m) = cache.lock() {
+        m.insert(key, c.clone());
+    }
+    Ok(c)
+}
+
+fn fit_relaxation_terms(
+    samples: &[Sample],
+    opts: &RelaxationOptions,
+    cache: &CoreCache,
+) -> Result<ProductFit, ProductFitError> {
     check_relaxation_options(opts)?;
-    let cols = columns(opts.degree, &RELAX_EXTRA);
+    let cols = relax_columns(opts);
     let needed = cols.len() + 3;
     let checked = check_samples(samples, needed)?;
     let bounds = crate::invert::Bounds::<f64>::default();
@@ -1735,7 +1925,7 @@ pub fn fit_relaxation(
             rho: keep.iter().map(|i| checked.rho[*i]).collect(),
         };
         let local: Vec<usize> = (0..sub.len()).collect();
-        let core = relaxation_core(&sub, &sub_checked, &local, opts)?;
+        let core = cached_core(cache, keep.clone(), &sub, &sub_checked, &local, opts)?;
         // 1. Each sample's parameters at the law must lie where the device's
         //    inversion can find them.
         let mut bad: Vec<(usize, String)> = Vec::new();
@@ -1759,7 +1949,8 @@ pub fn fit_relaxation(
             }
         }
         // 2. Its features (mixing-model moisture) must be finite.
-        let features = relax_features(&core, core.mixture, opts.degree, &sub);
+        let (features, hold) =
+            relax_features(&core, core.mixture, opts.degree, &sub, opts.static_terms);
         for (k, f) in features.iter().enumerate() {
             if !f.iter().all(|v| v.is_finite()) && !bad.iter().any(|b| b.0 == k) {
                 bad.push((
@@ -1774,7 +1965,7 @@ pub fn fit_relaxation(
         if bad.is_empty() {
             let y: Vec<f64> = sub.iter().map(|s| s.moisture_pct).collect();
             let lin = lin_fit(&features, &y, &local, "relaxation regression (stage 2)")?;
-            let model = relax_model(&core, opts.degree, &lin.coef);
+            let model = relax_model(&core, hold, opts.degree, &lin.coef);
             // 3. The device's own estimate must give each a moisture.
             let probe = device_cal(
                 &model,
@@ -1822,6 +2013,8 @@ pub fn fit_relaxation(
             }
             if bad.is_empty() {
                 return finish_relaxation(
+                    &keep,
+                    cache,
                     &sub,
                     &sub_checked,
                     opts,
@@ -1876,6 +2069,8 @@ fn relax_inputs(
 /// cross-validation through [`finish`].
 #[allow(clippy::too_many_arguments)]
 fn finish_relaxation(
+    keep: &[usize],
+    cache: &CoreCache,
     samples: &[Sample],
     checked: &Checked,
     opts: &RelaxationOptions,
@@ -1900,8 +2095,46 @@ fn finish_relaxation(
         lin,
         inputs,
         law_std_err: Some(core.law_std_err),
-        n_coef: columns(opts.degree, &RELAX_EXTRA).len(),
-        columns: columns(opts.degree, &RELAX_EXTRA),
+        n_coef: relax_columns(opts).len(),
+        columns: relax_columns(opts),
+    };
+    let hold = match &fitted.model {
+        ProductModel::Relaxation(m) => m.static_hold,
+        _ => no_static_hold(),
+    };
+    // With the static terms, each fold also predicts its left-out samples
+    // with the same regression without them (same law, same mixture): the
+    // two are compared on the same folds afterwards.
+    let n_plain = columns(opts.degree, relax_extra(false)).len();
+    let plain_cv = std::sync::Mutex::new(vec![f64::NAN; samples.len()]);
+    let plain_inputs = fitted.inputs.clone();
+    let plain_predict = |m: &ProductModel<f64>, train: &[usize]| {
+        let Ok((cal, _)) = device_cal(
+            m,
+            range_of(y.iter().copied()),
+            range_of(samples.iter().map(|s| s.temperature_c)),
+            &plain_inputs,
+            1.0,
+        ) else {
+            return;
+        };
+        let mut in_train = vec![false; samples.len()];
+        for i in train {
+            in_train[*i] = true;
+        }
+        for i in (0..samples.len()).filter(|i| !in_train[*i]) {
+            if let Ok(p) = device_predict(
+                &cal,
+                checked.freqs_hz,
+                &checked.eps[i],
+                &samples[i],
+                opts.eps_sd,
+            ) {
+                if let Ok(mut v) = plain_cv.lock() {
+                    v[i] = p;
+                }
+            }
+        }
     };
     let fallback = std::sync::atomic::AtomicUsize::new(0);
     let mut fit = finish(
@@ -1914,7 +2147,13 @@ fn finish_relaxation(
         notes,
         |f, train, loo| {
             if opts.refit_nonlinear_in_cv {
-                if let Some(m) = refit_relaxation_fold(samples, checked, train, opts) {
+                let key: Vec<usize> = train.iter().map(|i| keep[*i]).collect();
+                if let Some((m, plain)) =
+                    refit_relaxation_fold(samples, checked, train, opts, (cache, key))
+                {
+                    if let Some(p) = plain {
+                        plain_predict(&p, train);
+                    }
                     return Ok(m);
                 }
                 // The fold's own law or regression failed: refit only the
@@ -1933,9 +2172,49 @@ fn finish_relaxation(
                     .coef
                 }
             };
-            Ok(relax_model(&core, opts.degree, &coef))
+            if opts.static_terms {
+                let fp: Vec<Vec<f64>> = f.features.iter().map(|r| r[..n_plain].to_vec()).collect();
+                if let Ok(l) = lin_fit(&fp, &y, train, "relaxation regression (cross-validation)") {
+                    plain_predict(
+                        &relax_model(&core, no_static_hold(), opts.degree, &l.coef),
+                        train,
+                    );
+                }
+            }
+            Ok(relax_model(&core, hold, opts.degree, &coef))
         },
     )?;
+    // The static terms stay only where they predict the left-out samples
+    // better than the same model without them (smaller mean squared
+    // error over the samples both predict); else the caller refits
+    // without them.
+    if opts.static_terms {
+        let plain = plain_cv.into_inner().unwrap_or_default();
+        let (mut se_static, mut se_plain, mut both) = (0.0, 0.0, 0usize);
+        for (k, r) in fit.samples.iter().enumerate() {
+            let (a, b) = (
+                r.cv_predicted_pct,
+                plain.get(k).copied().unwrap_or(f64::NAN),
+            );
+            if a.is_finite() && b.is_finite() {
+                se_static += (a - y[k]).powi(2);
+                se_plain += (b - y[k]).powi(2);
+                both += 1;
+            }
+        }
+        if both == 0 || se_static >= se_plain {
+            return Err(ProductFitError::StaticTermsNoBetter {
+                static_rmsep: (se_static / both.max(1) as f64).sqrt(),
+                plain_rmsep: (se_plain / both.max(1) as f64).sqrt(),
+                samples: both,
+            });
+        }
+        fit.notes.push(format!(
+            "with the static terms (the held mixing-model moisture of eps_hf + d_eps): cross-validated RMSEP {:.3} % against {:.3} % without them over {both} samples",
+            (se_static / both as f64).sqrt(),
+            (se_plain / both as f64).sqrt()
+        ));
+    }
     let fallback = fallback.into_inner();
     if fallback > 0 {
         fit.notes.push(format!(
@@ -1951,17 +2230,20 @@ fn finish_relaxation(
     Ok(fit)
 }
 
-/// The whole two-stage fit on one fold's training rows; `None` when it fails.
+/// The whole two-stage fit on one fold's training rows; `None` when it
+/// fails. With the static terms, also the same fold's model without them
+/// (`None` where its regression fails).
 fn refit_relaxation_fold(
     samples: &[Sample],
     checked: &Checked,
     train: &[usize],
     opts: &RelaxationOptions,
-) -> Option<ProductModel<f64>> {
-    let c = relaxation_core(samples, checked, train, opts).ok()?;
+    (cache, key): (&CoreCache, Vec<usize>),
+) -> Option<(ProductModel<f64>, Option<ProductModel<f64>>)> {
+    let c = cached_core(cache, key, samples, checked, train, opts).ok()?;
     // c.params follow `train`: features and lab values of those rows.
     let ts: Vec<Sample> = train.iter().map(|i| samples[*i].clone()).collect();
-    let feats = relax_features(&c, c.mixture, opts.degree, &ts);
+    let (feats, hold) = relax_features(&c, c.mixture, opts.degree, &ts, opts.static_terms);
     let rows: Vec<usize> = (0..ts.len())
         .filter(|k| feats[*k].iter().all(|v| v.is_finite()))
         .collect();
@@ -1973,7 +2255,17 @@ fn refit_relaxation_fold(
         "relaxation regression (cross-validation)",
     )
     .ok()?;
-    Some(relax_model(&c, opts.degree, &lin.coef))
+    let plain = opts
+        .static_terms
+        .then(|| {
+            let n_plain = columns(opts.degree, relax_extra(false)).len();
+            let fp: Vec<Vec<f64>> = feats.iter().map(|r| r[..n_plain].to_vec()).collect();
+            lin_fit(&fp, &yt, &rows, "relaxation regression (cross-validation)")
+                .ok()
+                .map(|l| relax_model(&c, no_static_hold(), opts.degree, &l.coef))
+        })
+        .flatten();
+    Some((relax_model(&c, hold, opts.degree, &lin.coef), plain))
 }
 
 // ---------------------------------------------------------------------------
