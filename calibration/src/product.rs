@@ -55,7 +55,7 @@
 //!  [10] t_ref_c (of the c_t term and of the law's c_T)
 //!  [11] p0 [12] p1 [13] p2 [14] p3  (% per m^k)
 //!  [15] c_t (% per K)          [16] c_s (% per unit ln(sigma/sigma_ref))
-//!  [17] q1 [18] q2 (% per h^k)  [19] h_min [20] h_max (%, 0 <= h_min <= h_max <= 100)
+//!  [17] q1 [18] q2 (% per h^k)  [19] h_min [20] h_max (%, h_min <= h_max)
 //!
 //! Multivariate without a density input, 27 values:
 //!  [0] layout version (1)      [1] t_ref_c
@@ -779,11 +779,8 @@ impl<T: Real> ProductModel<T> {
                     return bad(9, "bulk density must be > 0 and below the particle density");
                 }
                 let (c_static, static_hold) = if with_static {
-                    if !(p[19] >= 0.0 && p[19] <= p[20] && p[20] <= 100.0) {
-                        return bad(
-                            19,
-                            "the static terms' hold must satisfy 0 <= h_min <= h_max <= 100",
-                        );
+                    if !(p[19] <= p[20]) {
+                        return bad(19, "the static terms' hold must satisfy h_min <= h_max");
                     }
                     ([g(17), g(18)], Range::new(g(19), g(20)))
                 } else {
@@ -1054,15 +1051,24 @@ pub(crate) mod tests {
         // Without the static terms the model keeps layout 1.
         let (p1, n1) = ProductModel::Relaxation(relaxation_model()).to_params();
         assert_eq!((n1, p1[0]), (RELAXATION_LEN, 1.0));
-        // A hold outside 0-100 % or inverted names index 19.
-        for (lo, hi) in [(-1.0, 40.0), (30.0, 20.0), (5.0, 101.0)] {
-            p[19] = lo;
-            p[20] = hi;
-            assert!(matches!(
-                ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
-                Err(ParamsError::Invalid { index: 19, .. })
-            ));
-        }
+        // The device's f32 model carries the same terms.
+        let ProductModel::Relaxation(b32) =
+            ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]).unwrap()
+        else {
+            panic!("kind")
+        };
+        assert_eq!(b32.c_static, [0.3f32, -0.004]);
+        assert_eq!(b32.static_hold, Range::new(5.0f32, 40.0));
+        // An inverted hold names index 19 (a hold below 0 % is valid: h is
+        // a regression feature).
+        p[19] = 30.0;
+        p[20] = 20.0;
+        assert!(matches!(
+            ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+            Err(ParamsError::Invalid { index: 19, .. })
+        ));
+        p[19] = -3.0;
+        assert!(ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]).is_ok());
         // A scaled model scales the static terms too.
         let ProductModel::Relaxation(r) = m.rescaled(0.5, 2.0) else {
             panic!("kind")

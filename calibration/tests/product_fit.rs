@@ -222,21 +222,10 @@ fn refuses_bad_samples_by_name() {
         fit_single(&few(6), &SingleOptions::default()).unwrap_err(),
         ProductFitError::TooFewSamples { needed: 7, got: 6 }
     );
-    // Relaxation, degree 2: 7 coefficients with the static terms, so 10
-    // samples needed; 5 without them, so 8.
+    // Relaxation, degree 2: 5 coefficients, so 8 samples needed (the static
+    // terms' two more are not tried below five samples per coefficient).
     assert_eq!(
-        fit_relaxation(&few(9), &relax_opts()).unwrap_err(),
-        ProductFitError::TooFewSamples { needed: 10, got: 9 }
-    );
-    assert_eq!(
-        fit_relaxation(
-            &few(7),
-            &RelaxationOptions {
-                static_terms: false,
-                ..relax_opts()
-            }
-        )
-        .unwrap_err(),
+        fit_relaxation(&few(7), &relax_opts()).unwrap_err(),
         ProductFitError::TooFewSamples { needed: 8, got: 7 }
     );
     let base = few(12);

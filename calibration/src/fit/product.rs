@@ -19,7 +19,15 @@
 //!      (or, by option, the mixing exponent) by a bounded golden-section
 //!      search, each trial solving the coefficients of
 //!      `moisture = p0 + p1 m + ... + p_d m^d + c_t (t - t_ref) + c_s ln(sigma/sigma_ref)`
-//!      by linear least squares (m the mixing-model moisture from eps_hf).
+//!      by linear least squares (m the mixing-model moisture from eps_hf),
+//!      each sample's eps_hf, d_eps and sigma from the device's own
+//!      inversion at the fitted law.
+//!   3. **Static terms** (from five samples per coefficient on): the same
+//!      regression plus `q1 h + q2 h^2`, h the mixing-model moisture of
+//!      eps_hf + d_eps held to the calibration samples' range widened by a
+//!      tenth, kept only where in the same cross-validation folds it
+//!      predicts the left-out samples better than the regression without
+//!      them ([`fit_relaxation`] says when it is not).
 //!
 //! Every prediction behind the statistics (fitted values for SEC, the
 //! out-of-fold predictions for SEP) is made by [`crate::estimate::estimate`]
@@ -206,6 +214,11 @@ pub enum ProductFitError {
         plain_rmsep: f64,
         /// Samples both predicted.
         samples: usize,
+        /// Left-out samples the model with the static terms gave no
+        /// moisture for.
+        static_failed: usize,
+        /// The same without them.
+        plain_failed: usize,
     },
     /// No model of a comparison could be fitted; each one's reason.
     NoModel {
@@ -297,13 +310,33 @@ impl core::fmt::Display for ProductFitError {
                 f.write_str(" check those samples, or use another model")
             }
             E::StaticTermsNoBetter {
+                samples: 0,
+                static_failed,
+                plain_failed,
+                ..
+            } => write!(
+                f,
+                "the static terms could not be weighed: no left-out sample was predicted both with them and without them ({static_failed} without a prediction with them, {plain_failed} without)"
+            ),
+            E::StaticTermsNoBetter {
                 static_rmsep,
                 plain_rmsep,
                 samples,
-            } => write!(
-                f,
-                "the static terms did not predict the left-out samples better (cross-validated RMSEP {static_rmsep:.3} % with them, {plain_rmsep:.3} % without, over {samples} samples)"
-            ),
+                static_failed,
+                plain_failed,
+            } => {
+                write!(
+                    f,
+                    "the static terms did not predict the left-out samples better (cross-validated RMSEP {static_rmsep:.3} % with them, {plain_rmsep:.3} % without, over {samples} samples"
+                )?;
+                if static_failed > plain_failed {
+                    write!(
+                        f,
+                        "; {static_failed} left-out sample(s) without a prediction with them, {plain_failed} without"
+                    )?;
+                }
+                f.write_str(")")
+            }
             E::LawNotDetermined { reason } => write!(
                 f,
                 "the two frequencies' spectra do not determine a relaxation law for this product ({reason}); \
@@ -1485,7 +1518,9 @@ fn relax_model(
 
 /// The range the static terms' moisture is held to: the one the samples
 /// span at the model's law and mixture, widened by a tenth of its width
-/// on each side, within 0-100 % (all of 0-100 % when no sample gives one).
+/// on each side (0-100 % when no sample gives one). Not clamped to 0-100 %:
+/// h is a regression feature, and with a high fitted dry-matter
+/// permittivity it lies below 0 for dry samples.
 fn static_hold_of(
     proto: &RelaxationModel<f64>,
     params: &[MaterialParams<f64>],
@@ -1503,7 +1538,7 @@ fn static_hold_of(
         return no_static_hold();
     }
     let w = 0.1 * (hi - lo);
-    Range::new((lo - w).clamp(0.0, 100.0), (hi + w).clamp(0.0, 100.0))
+    Range::new(lo - w, hi + w)
 }
 
 /// The regression's features of `samples` (whose parameters at the law are
@@ -1533,7 +1568,14 @@ fn relax_features(
         .iter()
         .zip(&core.params)
         .map(|(s, p)| {
-            let f = proto.features(p, s.temperature_c);
+            let mut f = proto.features(p, s.temperature_c);
+            // A static moisture that is not a number is held at the hold's
+            // lower end on the device (and flagged); the fit leaves such
+            // a sample out instead.
+            if with_static && !proto.static_moisture_pct(p, s.temperature_c).is_finite() {
+                f[6] = f64::NAN;
+                f[7] = f64::NAN;
+            }
             cols.iter().map(|j| f[*j]).collect()
         })
         .collect();
@@ -1793,10 +1835,14 @@ fn check_relaxation_options(opts: &RelaxationOptions) -> Result<(), ProductFitEr
 ///
 /// Needs at least `degree + 3 + 3` samples (polynomial, temperature and
 /// conductivity terms, plus three) that the model can use, and two more
-/// with the static terms ([`RelaxationOptions::static_terms`]). Where the
-/// fit with the static terms fails for a reason that may be theirs (an
-/// undetermined regression, samples it cannot use), the model is fitted
-/// without them and a note says why. A sample the
+/// with the static terms ([`RelaxationOptions::static_terms`]). The model is
+/// fitted without them, and a note says why, where the table has fewer
+/// than five samples per coefficient with them (the quality gate's rule),
+/// where the fit with them fails for a reason that may be theirs (an
+/// undetermined regression, samples it cannot use), where it leaves out
+/// more samples than the fit without them, or where in the same
+/// cross-validation folds they do not predict the left-out samples with a
+/// smaller mean squared error (or predict fewer of them). A sample the
 /// model cannot use (its parameters at the fitted law outside the
 /// inversion's bounds, no mixing-model moisture, or no moisture from the
 /// device's own estimate) is left out, named with the reason in
@@ -1812,6 +1858,23 @@ pub fn fit_relaxation(
     opts: &RelaxationOptions,
 ) -> Result<ProductFit, ProductFitError> {
     let cache = CoreCache::default();
+    let plain = RelaxationOptions {
+        static_terms: false,
+        ..*opts
+    };
+    // The static terms add two coefficients; the quality gate wants five
+    // samples for each. Below that the model is fitted without them (a
+    // calibration `cal fit` could not write is no use).
+    let per = super::gate::Limits::default().samples_per_param;
+    let with_static = relax_columns(opts).len() * per;
+    if opts.static_terms && samples.len() < with_static && check_relaxation_options(opts).is_ok() {
+        let mut fit = fit_relaxation_terms(samples, &plain, &cache)?;
+        fit.notes.push(format!(
+            "fitted without the static terms (the held mixing-model moisture of eps_hf + d_eps): with them the model needs {with_static} samples, five per coefficient, and the table has {}",
+            samples.len()
+        ));
+        return Ok(fit);
+    }
     match fit_relaxation_terms(samples, opts, &cache) {
         // The static terms can leave the regression undetermined (the
         // static moisture a linear function of the mixing-model moisture
@@ -1819,10 +1882,6 @@ pub fn fit_relaxation(
         // or cost samples the plain model can use: fit without them and
         // say why.
         Err(e) if opts.static_terms && static_terms_may_cause(&e) => {
-            let plain = RelaxationOptions {
-                static_terms: false,
-                ..*opts
-            };
             let mut fit = fit_relaxation_terms(samples, &plain, &cache)?;
             let why = match e {
                 ProductFitError::StaticTermsNoBetter { .. } => e.to_string(),
@@ -1839,10 +1898,6 @@ pub fn fit_relaxation(
         // the fit's and the sample is left out. Where the model without
         // them leaves out fewer samples, it is written.
         Ok(fit) if opts.static_terms && !fit.excluded.is_empty() => {
-            let plain = RelaxationOptions {
-                static_terms: false,
-                ..*opts
-            };
             match fit_relaxation_terms(samples, &plain, &cache) {
                 Ok(mut p) if p.excluded.len() < fit.excluded.len() => {
                     p.notes.push(format!(
@@ -2172,6 +2227,9 @@ fn finish_relaxation(
                     .coef
                 }
             };
+            // (Without the whole fit repeated per fold, the static terms'
+            // hold is the one of all samples, the left-out one included:
+            // `cal fit` repeats the whole fit.)
             if opts.static_terms {
                 let fp: Vec<Vec<f64>> = f.features.iter().map(|r| r[..n_plain].to_vec()).collect();
                 if let Ok(l) = lin_fit(&fp, &y, train, "relaxation regression (cross-validation)") {
@@ -2191,22 +2249,29 @@ fn finish_relaxation(
     if opts.static_terms {
         let plain = plain_cv.into_inner().unwrap_or_default();
         let (mut se_static, mut se_plain, mut both) = (0.0, 0.0, 0usize);
+        let (mut static_failed, mut plain_failed) = (0usize, 0usize);
         for (k, r) in fit.samples.iter().enumerate() {
             let (a, b) = (
                 r.cv_predicted_pct,
                 plain.get(k).copied().unwrap_or(f64::NAN),
             );
+            static_failed += usize::from(!a.is_finite());
+            plain_failed += usize::from(!b.is_finite());
             if a.is_finite() && b.is_finite() {
                 se_static += (a - y[k]).powi(2);
                 se_plain += (b - y[k]).powi(2);
                 both += 1;
             }
         }
-        if both == 0 || se_static >= se_plain {
+        // A left-out sample the static model could not predict counts
+        // against it: it must predict at least as many as the plain one.
+        if both == 0 || static_failed > plain_failed || se_static >= se_plain {
             return Err(ProductFitError::StaticTermsNoBetter {
                 static_rmsep: (se_static / both.max(1) as f64).sqrt(),
                 plain_rmsep: (se_plain / both.max(1) as f64).sqrt(),
                 samples: both,
+                static_failed,
+                plain_failed,
             });
         }
         fit.notes.push(format!(
