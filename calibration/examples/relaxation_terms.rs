@@ -253,34 +253,22 @@ fn main() {
                     .filter_map(|s| terms(&m, s, which, hold, band).map(|v| (v, s.moisture_pct)))
                     .collect()
             };
-            let pick = match (loo(&rows_of(0)), loo(&rows_of(8))) {
-                (Some((e0, _)), Some((e8, _))) if e0.len() == e8.len() => {
+            // `other` where leave-one-out finds it significantly better than v0.
+            let choose = |other: usize| match (loo(&rows_of(0)), loo(&rows_of(other))) {
+                (Some((e0, _)), Some((e1, _))) if e0.len() == e1.len() => {
                     let mse = |e: &[f64]| e.iter().map(|v| v * v).sum::<f64>();
-                    let d: Vec<f64> = e0.iter().zip(&e8).map(|(a, b)| a.abs() - b.abs()).collect();
+                    let d: Vec<f64> = e0.iter().zip(&e1).map(|(a, b)| a.abs() - b.abs()).collect();
                     let sig = fringe_calibration::stats::signed_rank(&d)
                         .is_some_and(|r| r.p_greater() < 0.05);
-                    if mse(&e8) < mse(&e0) && sig {
-                        8
+                    if mse(&e1) < mse(&e0) && sig {
+                        other
                     } else {
                         0
                     }
                 }
                 _ => 0,
             };
-            let pick11 = match (loo(&rows_of(0)), loo(&rows_of(10))) {
-                (Some((e0, _)), Some((e8, _))) if e0.len() == e8.len() => {
-                    let mse = |e: &[f64]| e.iter().map(|v| v * v).sum::<f64>();
-                    let d: Vec<f64> = e0.iter().zip(&e8).map(|(a, b)| a.abs() - b.abs()).collect();
-                    let sig = fringe_calibration::stats::signed_rank(&d)
-                        .is_some_and(|r| r.p_greater() < 0.05);
-                    if mse(&e8) < mse(&e0) && sig {
-                        10
-                    } else {
-                        0
-                    }
-                }
-                _ => 0,
-            };
+            let (pick, pick11) = (choose(8), choose(10));
             line += &format!(" [v9=v{pick} v11=v{pick11}]");
             for which in 0..VARIANTS {
                 let which_terms = match which {
