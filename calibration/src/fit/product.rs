@@ -2160,17 +2160,15 @@ fn finish_relaxation(
     // With the static terms, each fold also predicts its left-out samples
     // with the same regression without them (same law, same mixture): the
     // two are compared on the same folds afterwards.
-    let n_plain = columns(opts.degree, relax_extra(false)).len();
     let plain_cv = std::sync::Mutex::new(vec![f64::NAN; samples.len()]);
     let plain_inputs = fitted.inputs.clone();
+    // Ranges do not change a moisture value; the full set's, once.
+    let (moisture, temperature) = (
+        range_of(y.iter().copied()),
+        range_of(samples.iter().map(|s| s.temperature_c)),
+    );
     let plain_predict = |m: &ProductModel<f64>, train: &[usize]| {
-        let Ok((cal, _)) = device_cal(
-            m,
-            range_of(y.iter().copied()),
-            range_of(samples.iter().map(|s| s.temperature_c)),
-            &plain_inputs,
-            1.0,
-        ) else {
+        let Ok((cal, _)) = device_cal(m, moisture, temperature, &plain_inputs, 1.0) else {
             return;
         };
         let mut in_train = vec![false; samples.len()];
@@ -2231,12 +2229,8 @@ fn finish_relaxation(
             // hold is the one of all samples, the left-out one included:
             // `cal fit` repeats the whole fit.)
             if opts.static_terms {
-                let fp: Vec<Vec<f64>> = f.features.iter().map(|r| r[..n_plain].to_vec()).collect();
-                if let Ok(l) = lin_fit(&fp, &y, train, "relaxation regression (cross-validation)") {
-                    plain_predict(
-                        &relax_model(&core, no_static_hold(), opts.degree, &l.coef),
-                        train,
-                    );
+                if let Some(p) = plain_relax_model(&core, &f.features, &y, train, opts.degree) {
+                    plain_predict(&p, train);
                 }
             }
             Ok(relax_model(&core, hold, opts.degree, &coef))
@@ -2322,15 +2316,25 @@ fn refit_relaxation_fold(
     .ok()?;
     let plain = opts
         .static_terms
-        .then(|| {
-            let n_plain = columns(opts.degree, relax_extra(false)).len();
-            let fp: Vec<Vec<f64>> = feats.iter().map(|r| r[..n_plain].to_vec()).collect();
-            lin_fit(&fp, &yt, &rows, "relaxation regression (cross-validation)")
-                .ok()
-                .map(|l| relax_model(&c, no_static_hold(), opts.degree, &l.coef))
-        })
+        .then(|| plain_relax_model(&c, &feats, &yt, &rows, opts.degree))
         .flatten();
     Some((relax_model(&c, hold, opts.degree, &lin.coef), plain))
+}
+
+/// The regression without the static terms on `rows`, from features built
+/// with them (the plain columns come first); `None` where it fails.
+fn plain_relax_model(
+    core: &RelaxationCore,
+    features: &[Vec<f64>],
+    y: &[f64],
+    rows: &[usize],
+    degree: usize,
+) -> Option<ProductModel<f64>> {
+    let n_plain = columns(degree, relax_extra(false)).len();
+    let fp: Vec<Vec<f64>> = features.iter().map(|r| r[..n_plain].to_vec()).collect();
+    lin_fit(&fp, y, rows, "relaxation regression (cross-validation)")
+        .ok()
+        .map(|l| relax_model(core, no_static_hold(), degree, &l.coef))
 }
 
 // ---------------------------------------------------------------------------
