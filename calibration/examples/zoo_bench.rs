@@ -8,7 +8,9 @@
 //!
 //! `cargo run --release -p fringe-calibration --example zoo_bench [-- --quick]`
 //! (`--quick`: 60 samples only; `--density`: the density table only;
-//! `--timing`: each model's fit time). Seed: FRINGE_SEED (default 1).
+//! `--timing`: each model's fit time; `--kfold-time`: the 10-fold
+//! comparison of 200 samples alone, every row, median of 5, with the
+//! relaxation fit's share; FRINGE_FAMILY=name for one product). Seed: FRINGE_SEED (default 1).
 #[path = "../tests/common/baseline.rs"]
 mod baseline;
 
@@ -219,6 +221,67 @@ fn timing_table(seed: u64) {
     }
 }
 
+/// The 10-fold comparison of 200 samples (what `cal fit` does from 100
+/// samples on) on every row, median of 5 runs, and the relaxation fit
+/// alone with the same options (the comparison runs it on a thread of its
+/// own beside the other three models).
+fn kfold_time_table(seed: u64) {
+    println!("| product | f1/f2 MHz | compare, 10-fold | relaxation alone | chosen | relaxation CV SEP |");
+    println!("| --- | --- | --- | --- | --- | --- |");
+    let median = |run: &dyn Fn()| -> f64 {
+        let mut t: Vec<f64> = (0..5)
+            .map(|_| {
+                let t0 = Instant::now();
+                run();
+                t0.elapsed().as_secs_f64() * 1e3
+            })
+            .collect();
+        t.sort_by(f64::total_cmp);
+        t[2]
+    };
+    let only = std::env::var("FRINGE_FAMILY").ok();
+    for f in Family::all() {
+        if only.as_deref().is_some_and(|o| o != f.name) {
+            continue;
+        }
+        for pair in FREQ_PAIRS {
+            let relax = RelaxationOptions {
+                refit_nonlinear_in_cv: true,
+                folds: Folds::KFold(10),
+                ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+            };
+            let opts = CompareOptions {
+                single: SingleOptions::default(),
+                relaxation: Some(relax),
+                eps_sd: f.eps_noise_sd.max(1e-3),
+                folds: Folds::KFold(10),
+                density_input: false,
+            };
+            let big = f.samples(&Draw::new(200, pair), seed + 7);
+            let chosen = match compare_models(&big, &opts) {
+                Ok(m) => m.chosen.name().to_string(),
+                Err(_) => "none".into(),
+            };
+            let tc = median(&|| {
+                let _ = compare_models(&big, &opts);
+            });
+            let tr = median(&|| {
+                let _ = fit_relaxation(&big, &relax);
+            });
+            let cv = match fit_relaxation(&big, &relax) {
+                Ok(r) => format!("{:.9}", r.stats.cross_validation.sep),
+                Err(e) => format!("refused: {e}"),
+            };
+            println!(
+                "| {} | {}/{} | {tc:.0} ms | {tr:.0} ms | {chosen} | {cv} |",
+                f.name,
+                pair[0] / 1e6,
+                pair[1] / 1e6
+            );
+        }
+    }
+}
+
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
     let seed: u64 = std::env::var("FRINGE_SEED")
@@ -232,6 +295,10 @@ fn main() {
     }
     if std::env::args().any(|a| a == "--timing") {
         timing_table(seed);
+        return;
+    }
+    if std::env::args().any(|a| a == "--kfold-time") {
+        kfold_time_table(seed);
         return;
     }
     println!("| product | f1/f2 MHz | single | relaxation | PLS | ridge | baseline | chosen | bias | coverage 95 % | T+10 C chosen / baseline | 2x sigma chosen / baseline | fit 60 | fit 200 | fit 200, 10-fold |");

@@ -56,24 +56,85 @@ pub(crate) fn theta_is_valid(theta: &Theta) -> bool {
         && theta[2] <= 3.0
 }
 
-/// eps* and its derivatives w.r.t. (eps_hf, d_eps, q = ln sigma) and theta.
-fn model(
-    freq_hz: f64,
+/// What [`model`] needs of one frequency, computed once per fit: ln f and
+/// 2 pi f eps0 (the same expressions as before, so the same values).
+#[derive(Clone, Copy)]
+struct FreqConst {
+    ln_f: f64,
+    w_eps0: f64,
+}
+
+impl FreqConst {
+    fn new(freq_hz: f64) -> Self {
+        FreqConst {
+            ln_f: freq_hz.ln(),
+            w_eps0: 2.0 * std::f64::consts::PI * freq_hz * crate::EPS0,
+        }
+    }
+}
+
+/// What [`model`] needs of the law, computed once per law: beta = 1 -
+/// alpha and the cosine and sine of beta pi / 2.
+#[derive(Clone, Copy)]
+struct LawConst {
+    beta: f64,
+    cos_b: f64,
+    sin_b: f64,
+}
+
+impl LawConst {
+    fn new(theta: &Theta) -> Self {
+        let beta = 1.0 - theta[0];
+        let half_pi = std::f64::consts::FRAC_PI_2;
+        LawConst {
+            beta,
+            cos_b: (beta * half_pi).cos(),
+            sin_b: (beta * half_pi).sin(),
+        }
+    }
+}
+
+/// eps* alone (what [`model`] returns first, by the same operations).
+#[inline]
+fn model_value(
+    fc: &FreqConst,
     p: &[f64; 3],
     theta: &Theta,
+    lc: &LawConst,
+    ln_sigma_ref: f64,
+    dt_c: f64,
+) -> Cx<f64> {
+    let beta = lc.beta;
+    let ln_fr = theta[1] + theta[2] * (p[2] - ln_sigma_ref) + theta[3] * dt_c;
+    let x = fc.ln_f - ln_fr;
+    let mag = (beta * x).clamp(-30.0, 30.0).exp();
+    let u = Cx::new(mag * lc.cos_b, mag * lc.sin_b);
+    let inv_d = Cx::new(1.0, 0.0) / (Cx::new(1.0, 0.0) + u);
+    let relax = inv_d * p[1];
+    let cond = p[2].exp() / fc.w_eps0;
+    Cx::new(p[0] + relax.re, relax.im - cond)
+}
+
+/// eps* and its derivatives w.r.t. (eps_hf, d_eps, q = ln sigma) and theta.
+#[inline]
+fn model(
+    fc: &FreqConst,
+    p: &[f64; 3],
+    theta: &Theta,
+    lc: &LawConst,
     ln_sigma_ref: f64,
     dt_c: f64,
 ) -> (Cx<f64>, [Cx<f64>; 3], [Cx<f64>; 4]) {
-    let beta = 1.0 - theta[0];
+    let beta = lc.beta;
     let ln_fr = theta[1] + theta[2] * (p[2] - ln_sigma_ref) + theta[3] * dt_c;
-    let x = freq_hz.ln() - ln_fr;
+    let x = fc.ln_f - ln_fr;
     let half_pi = std::f64::consts::FRAC_PI_2;
     // u = (j f / f_r)^beta = exp(beta x + j beta pi/2); clamp as the device does.
     let mag = (beta * x).clamp(-30.0, 30.0).exp();
-    let u = Cx::new(mag * (beta * half_pi).cos(), mag * (beta * half_pi).sin());
+    let u = Cx::new(mag * lc.cos_b, mag * lc.sin_b);
     let inv_d = Cx::new(1.0, 0.0) / (Cx::new(1.0, 0.0) + u);
     let relax = inv_d * p[1];
-    let cond = p[2].exp() / (2.0 * std::f64::consts::PI * freq_hz * crate::EPS0);
+    let cond = p[2].exp() / fc.w_eps0;
     let eps = Cx::new(p[0] + relax.re, relax.im - cond);
     // d relax / dz with u = e^z.
     let dz = -(relax * inv_d * u);
@@ -117,6 +178,8 @@ pub(crate) struct LawFit {
 
 struct Data<'a> {
     obs: &'a [[Observation<f64>; 2]],
+    /// Each observation's frequency constants.
+    fc: Vec<[FreqConst; 2]>,
     temps: &'a [f64],
     ln_sigma_ref: f64,
     t_ref_c: f64,
@@ -131,8 +194,9 @@ impl Data<'_> {
         let mut jp = J4x3::zeros();
         let mut jt = Matrix4::zeros();
         let dt = self.temps[i] - self.t_ref_c;
+        let lc = LawConst::new(theta);
         for (k, o) in self.obs[i].iter().enumerate() {
-            let (e, dp, dth) = model(o.freq_hz, p, theta, self.ln_sigma_ref, dt);
+            let (e, dp, dth) = model(&self.fc[i][k], p, theta, &lc, self.ln_sigma_ref, dt);
             let w = 1.0 / o.sd;
             r[2 * k] = (e.re - o.eps.re) * w;
             r[2 * k + 1] = (e.im - o.eps.im) * w;
@@ -187,10 +251,11 @@ impl Data<'_> {
     fn cost(&self, ps: &[[f64; 3]], theta: &Theta) -> f64 {
         let mut c = 0.0;
         let dt0 = self.t_ref_c;
+        let lc = LawConst::new(theta);
         for (i, p) in ps.iter().enumerate() {
             let dt = self.temps[i] - dt0;
-            for o in self.obs[i].iter() {
-                let (e, _, _) = model(o.freq_hz, p, theta, self.ln_sigma_ref, dt);
+            for (k, o) in self.obs[i].iter().enumerate() {
+                let e = model_value(&self.fc[i][k], p, theta, &lc, self.ln_sigma_ref, dt);
                 let w = 1.0 / o.sd;
                 let (a, b) = ((e.re - o.eps.re) * w, (e.im - o.eps.im) * w);
                 c += a * a + b * b;
@@ -244,6 +309,10 @@ pub(crate) fn fit_law_budget(
     let (theta0, ps0) = start;
     let data = Data {
         obs,
+        fc: obs
+            .iter()
+            .map(|o| [FreqConst::new(o[0].freq_hz), FreqConst::new(o[1].freq_hz)])
+            .collect(),
         temps,
         ln_sigma_ref: sigma_ref_s_m.ln(),
         t_ref_c,
@@ -447,7 +516,14 @@ mod tests {
         let p = [5.5, 20.0, (3e-3f64).ln()];
         let (ln_sref, t_ref, t) = ((1e-3f64).ln(), 25.0, 31.0);
         for f in [1e6, 20e6] {
-            let (e, dp, dth) = model(f, &p, &theta, ln_sref, t - t_ref);
+            let fc = FreqConst::new(f);
+            let lc = LawConst::new(&theta);
+            let (e, dp, dth) = model(&fc, &p, &theta, &lc, ln_sref, t - t_ref);
+            assert_eq!(
+                model_value(&fc, &p, &theta, &lc, ln_sref, t - t_ref),
+                e,
+                "model_value is model's value"
+            );
             let law = law_of(&theta, ln_sref.exp(), t_ref);
             let mp = MaterialParams {
                 eps_hf: p[0],
@@ -461,8 +537,8 @@ mod tests {
                 let (mut a, mut b) = (p, p);
                 a[j] += h;
                 b[j] -= h;
-                let fd = (model(f, &a, &theta, ln_sref, t - t_ref).0
-                    - model(f, &b, &theta, ln_sref, t - t_ref).0)
+                let fd = (model(&fc, &a, &theta, &lc, ln_sref, t - t_ref).0
+                    - model(&fc, &b, &theta, &lc, ln_sref, t - t_ref).0)
                     / (2.0 * h);
                 assert!(
                     (fd - dp[j]).norm() < 1e-5 * (1.0 + fd.norm()),
@@ -474,8 +550,8 @@ mod tests {
                 let (mut a, mut b) = (theta, theta);
                 a[j] += h;
                 b[j] -= h;
-                let fd = (model(f, &p, &a, ln_sref, t - t_ref).0
-                    - model(f, &p, &b, ln_sref, t - t_ref).0)
+                let fd = (model(&fc, &p, &a, &LawConst::new(&a), ln_sref, t - t_ref).0
+                    - model(&fc, &p, &b, &LawConst::new(&b), ln_sref, t - t_ref).0)
                     / (2.0 * h);
                 assert!(
                     (fd - dth[j]).norm() < 1e-5 * (1.0 + fd.norm()),
