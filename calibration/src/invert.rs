@@ -112,7 +112,10 @@ pub struct Bounds<T> {
     pub eps_hf: (T, T),
     /// d_eps range; a solution at the lower bound (normally 0) is accepted.
     pub d_eps: (T, T),
-    /// sigma range, S/m.
+    /// sigma range, S/m; a solution at the lower bound is accepted (the
+    /// product conducts less than the two frequencies resolve: a dry,
+    /// low-loss product), with sigma's variance 0 where the data do not
+    /// determine it.
     pub sigma_s_m: (T, T),
 }
 
@@ -472,7 +475,7 @@ fn levenberg_marquardt<T: Real>(
             // value outside it (d_eps >= lower bound is a physical limit).
             return Err(if !free[0] {
                 InvertError::OutOfBounds(Param::EpsHf)
-            } else if !free[2] {
+            } else if !free[2] && x[2] >= p.hi[2] {
                 InvertError::OutOfBounds(Param::Sigma)
             } else if !free[1] && x[1] >= p.hi[1] {
                 InvertError::OutOfBounds(Param::DEps)
@@ -642,7 +645,9 @@ pub fn invert<T: Real>(
     let fit = best.unwrap_or(Err(InvertError::NotConverged))?;
     let (x, chi2, a, it) = (fit.x, fit.chi2, fit.a, fit.iterations);
     // A solution on a bound means the data want a value outside it
-    // (d_eps = lower bound is a physical limit and accepted).
+    // (d_eps and sigma at their lower bounds are physical limits and
+    // accepted: no relaxation strength, or less conduction than the two
+    // frequencies resolve).
     let pinned = |i: usize| x[i] <= p.lo[i] || x[i] >= p.hi[i];
     if pinned(0) {
         return Err(InvertError::OutOfBounds(Param::EpsHf));
@@ -650,10 +655,26 @@ pub fn invert<T: Real>(
     if x[1] >= p.hi[1] {
         return Err(InvertError::OutOfBounds(Param::DEps));
     }
-    if pinned(2) {
+    if x[2] >= p.hi[2] {
         return Err(InvertError::OutOfBounds(Param::Sigma));
     }
-    let cov_q = spd_inverse(&a).ok_or(InvertError::Singular)?;
+    let cov_q = match spd_inverse(&a) {
+        Some(c) => c,
+        None if pinned(2) => {
+            // sigma on its lower bound and not determined by the data: the
+            // covariance of (eps_hf, d_eps) with sigma held there.
+            let mut held = a;
+            for j in 0..3 {
+                held[2][j] = T::zero();
+                held[j][2] = T::zero();
+            }
+            held[2][2] = T::one();
+            let mut c = spd_inverse(&held).ok_or(InvertError::Singular)?;
+            c[2][2] = T::zero();
+            c
+        }
+        None => return Err(InvertError::Singular),
+    };
     let sigma = T::exp(x[2]);
     let scale = [T::one(), T::one(), sigma];
     let mut cov = [[T::zero(); 3]; 3];
@@ -911,20 +932,61 @@ pub(crate) mod tests {
             ..InvertOptions::default()
         };
         assert_eq!(invert(&o, &l, 25.0, &opts), Err(InvertError::NotConverged));
-        // No conductivity and no relaxation in the band: sigma is not determined.
+        // Conductivity beyond the upper bound: refused (the fit presses
+        // against sigma's upper bound and drags eps_hf onto its own).
+        let o = obs(
+            &MaterialParams {
+                sigma_s_m: 1000.0,
+                ..p
+            },
+            &l,
+            0.01,
+        );
+        let r = invert(&o, &l, 25.0, &InvertOptions::default());
+        assert!(matches!(r, Err(InvertError::OutOfBounds(_))), "{r:?}");
+    }
+
+    /// A lossless reading (eps'' = 0 at both frequencies, as of a dry
+    /// plastic; common practice, no source): sigma lands on its lower bound
+    /// and d_eps on 0, both accepted, eps_hf is eps'; sigma's variance is 0
+    /// where the data do not determine it and finite otherwise.
+    #[test]
+    fn a_lossless_reading_sits_on_the_lower_bounds() {
+        let l = law();
         let o = [1e6, 20e6].map(|f| Observation {
             freq_hz: f,
             eps: Cx::new(4.0, 0.0),
             sd: 0.01,
         });
-        let r = invert(&o, &l, 25.0, &InvertOptions::default());
+        let b = Bounds::<f64>::default();
+        let r = invert(&o, &l, 25.0, &InvertOptions::default()).expect("accepted");
+        assert!((r.params.eps_hf - 4.0).abs() < 1e-3, "{r:?}");
+        assert!(r.params.d_eps < 1e-3, "{r:?}");
         assert!(
-            matches!(
-                r,
-                Err(InvertError::Singular) | Err(InvertError::OutOfBounds(Param::Sigma))
-            ),
+            (r.params.sigma_s_m / b.sigma_s_m.0 - 1.0).abs() < 1e-9,
             "{r:?}"
         );
+        assert!(
+            r.sd(Param::EpsHf) > 0.0 && r.sd(Param::EpsHf) < 0.05,
+            "{r:?}"
+        );
+        assert!(r.covariance[2][2].is_finite() && r.covariance[2][2] >= 0.0);
+        // The same in f32, as the device runs it.
+        let o32 = o.map(|x| Observation {
+            freq_hz: x.freq_hz as f32,
+            eps: Cx::new(x.eps.re as f32, x.eps.im as f32),
+            sd: x.sd as f32,
+        });
+        let l32 = RelaxationLaw {
+            alpha: l.alpha as f32,
+            fr_ref_hz: l.fr_ref_hz as f32,
+            sigma_ref_s_m: l.sigma_ref_s_m as f32,
+            fr_exponent: l.fr_exponent as f32,
+            fr_temp_coeff_per_c: l.fr_temp_coeff_per_c as f32,
+            t_ref_c: l.t_ref_c as f32,
+        };
+        let r32 = invert(&o32, &l32, 25.0f32, &InvertOptions::default()).expect("accepted in f32");
+        assert!((r32.params.eps_hf - 4.0).abs() < 1e-2, "{r32:?}");
     }
 
     #[test]

@@ -487,13 +487,15 @@ fn one_high_leverage_sample_does_not_set_the_intervals() {
 /// gave no moisture for 2 of its 60 left-out samples and for 5 of 200
 /// fresh readings (2.5 %, above the 2 % the zoo test allows); it was
 /// chosen. A model missing more than 2 % of its cross-validation
-/// predictions is now not eligible (`ModelComparison::eligible`).
+/// predictions is now not eligible (`ModelComparison::eligible`). (Since
+/// the joint law fit keeps each sample inside the inversion's bounds,
+/// seed 3 misses none; seed 6 misses 2 and is the case now.)
 #[test]
 fn a_model_without_moisture_for_its_left_out_samples_is_not_chosen() {
     let f = Family::wood_chips();
     let pair = FREQ_PAIRS[1];
-    let train = f.samples(&Draw::new(60, pair), 3);
-    let val = f.samples(&Draw::new(200, pair), 3 + 1000);
+    let train = f.samples(&Draw::new(60, pair), 6);
+    let val = f.samples(&Draw::new(200, pair), 6 + 1000);
     let cmp = compare_models(&train, &compare_opts(&f)).expect("wood chips fit");
     let relax = cmp
         .results
@@ -619,6 +621,55 @@ fn the_static_terms_stay_only_where_they_predict_better() {
                 .any(|n| n.contains(note) && n.contains("RMSEP")),
             "seed {seed}: {:?}",
             fit.notes
+        );
+    }
+}
+
+/// Regression (the joint law fit outside the inversion's bounds): the law
+/// fit held each sample's (eps_hf, d_eps, sigma) to no bounds, and on the
+/// salted feed it settled on a law at which most samples had a negative
+/// eps_hf ("eps_hf -4.105, d_eps 14.020 ... lie outside the inversion's
+/// bounds"); on the dry products sigma went to 1e-22 S/m and below. The
+/// relaxation model was refused on 10 of the 24 rows of the zoo table.
+/// The law fit now keeps every sample inside the device's bounds, and the
+/// device accepts sigma on its lower bound (less conduction than the two
+/// frequencies resolve), so these fit. Fixed cases, each refused before
+/// (the salted feed as in the 200-sample rows of the zoo table; it still
+/// leaves out a few samples whose eps_hf the law presses onto 1, and on
+/// other seeds it is still refused for that: BENCHMARKS.md).
+#[test]
+fn the_law_fit_keeps_every_sample_where_the_device_can_find_it() {
+    // (product, pair, seed, samples, whether none may be left out for bounds)
+    for (f, pair, seed, n, none_outside) in [
+        (Family::salted_feed(), FREQ_PAIRS[0], 8, 200, false),
+        (Family::food_powder(), FREQ_PAIRS[0], 1, TRAIN, true),
+        (Family::polymer_pellets(), FREQ_PAIRS[1], 1, TRAIN, true),
+    ] {
+        let train = f.samples(&Draw::new(n, pair), seed);
+        let fit = fit_relaxation(&train, &relax_opts(&f))
+            .unwrap_or_else(|e| panic!("{} {pair:?}: {e}", f.name));
+        let outside: Vec<&str> = fit
+            .excluded
+            .iter()
+            .filter(|x| x.reason.contains("outside the inversion's bounds"))
+            .map(|x| x.id.as_str())
+            .collect();
+        assert!(
+            !none_outside || outside.is_empty(),
+            "{} {pair:?}: {outside:?}",
+            f.name
+        );
+        assert!(
+            fit.excluded.len() * 20 <= train.len(),
+            "{} {pair:?}: {} left out",
+            f.name,
+            fit.excluded.len()
+        );
+        // Every sample the model kept has a moisture from the device.
+        assert!(
+            fit.samples.iter().all(|s| s.fitted_pct.is_finite()),
+            "{} {pair:?}",
+            f.name
         );
     }
 }

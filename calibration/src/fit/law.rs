@@ -12,6 +12,13 @@
 //! "Bundle adjustment - a modern synthesis", LNCS 1883, 2000, section 6.1),
 //! so one iteration costs O(n). Marquardt's diagonal damping.
 //!
+//! Each sample's parameters are held to the device inversion's bounds
+//! ([`crate::invert::Bounds`]): steps are projected onto them and a
+//! parameter on a bound that the data push outward is held there (an active
+//! set per sample). Unbounded, the fit could settle on a law at which the
+//! samples' parameters are unphysical (a negative eps_hf on a salted feed,
+//! sigma of 1e-22 S/m on a dry powder), a law the device cannot use.
+//!
 //! The model is that of [`crate::invert`]:
 //! `eps* = eps_hf + d_eps / (1 + (j f / f_r)^(1 - alpha)) - j sigma / (2 pi f eps0)`,
 //! `ln f_r = ln f_r_ref + p (ln sigma - ln sigma_ref) + c_T (t - t_ref)`;
@@ -176,6 +183,38 @@ pub(crate) struct LawFit {
     pub converged: bool,
 }
 
+/// The per-sample bounds of the device's inversion
+/// ([`crate::invert::Bounds`]'s defaults) on (eps_hf, d_eps, ln sigma): the
+/// joint fit keeps every sample inside them, so the law it finds is one at
+/// which the device can find each sample's parameters.
+fn sample_bounds() -> ([f64; 3], [f64; 3]) {
+    let b = crate::invert::Bounds::<f64>::default();
+    (
+        [b.eps_hf.0, b.d_eps.0, b.sigma_s_m.0.ln()],
+        [b.eps_hf.1, b.d_eps.1, b.sigma_s_m.1.ln()],
+    )
+}
+
+/// `p` held to the bounds.
+fn clamp_sample(p: &mut [f64; 3], lo: &[f64; 3], hi: &[f64; 3]) {
+    for j in 0..3 {
+        p[j] = p[j].clamp(lo[j], hi[j]);
+    }
+}
+
+/// The sample's Jacobian with the columns of the parameters held on a
+/// bound zeroed: a parameter on its bound whose descent direction
+/// (-gradient) points out of the box does not move (an active set, as in
+/// the device's inversion).
+fn hold_active(jp: &mut J4x3, r: &Vector4<f64>, p: &[f64; 3], lo: &[f64; 3], hi: &[f64; 3]) {
+    let g: Vector3<f64> = jp.transpose() * r;
+    for j in 0..3 {
+        if (p[j] <= lo[j] && g[j] > 0.0) || (p[j] >= hi[j] && g[j] < 0.0) {
+            jp.column_mut(j).fill(0.0);
+        }
+    }
+}
+
 struct Data<'a> {
     obs: &'a [[Observation<f64>; 2]],
     /// Each observation's frequency constants.
@@ -183,6 +222,9 @@ struct Data<'a> {
     temps: &'a [f64],
     ln_sigma_ref: f64,
     t_ref_c: f64,
+    /// Per-sample bounds ([`sample_bounds`]).
+    lo: [f64; 3],
+    hi: [f64; 3],
 }
 
 type J4x3 = SMatrix<f64, 4, 3>;
@@ -228,7 +270,8 @@ impl Data<'_> {
             let Some(dp) = v.lu().solve(&(-(jp.transpose() * r))) else {
                 return;
             };
-            let trial = [p[0] + dp[0], p[1] + dp[1], p[2] + dp[2]];
+            let mut trial = [p[0] + dp[0], p[1] + dp[1], p[2] + dp[2]];
+            clamp_sample(&mut trial, &self.lo, &self.hi);
             let (rt, _, _) = self.sample(i, &trial, theta);
             let c = rt.norm_squared();
             if c.is_finite() && c < cost {
@@ -316,7 +359,10 @@ pub(crate) fn fit_law_budget(
         temps,
         ln_sigma_ref: sigma_ref_s_m.ln(),
         t_ref_c,
+        lo: sample_bounds().0,
+        hi: sample_bounds().1,
     };
+    let (lo, hi) = (data.lo, data.hi);
     let n = obs.len();
     let mask = [true, true, true, fit_temperature];
     let k = mask.iter().filter(|m| **m).count();
@@ -333,7 +379,9 @@ pub(crate) fn fit_law_budget(
                     let omega_eps0 = 2.0 * std::f64::consts::PI * lo.freq_hz * crate::EPS0;
                     let sigma = (omega_eps0 * (-lo.eps.im)).max(1e-7);
                     let d_eps = (lo.eps.re - hi.eps.re).max(0.1);
-                    [hi.eps.re, d_eps, sigma.ln()]
+                    let mut p = [hi.eps.re, d_eps, sigma.ln()];
+                    clamp_sample(&mut p, &data.lo, &data.hi);
+                    p
                 })
                 .collect();
             for (i, p) in ps.iter_mut().enumerate() {
@@ -353,7 +401,8 @@ pub(crate) fn fit_law_budget(
         if fresh {
             cache.clear();
             for (i, p) in ps.iter().enumerate() {
-                let (r, jp, mut jt) = data.sample(i, p, &theta);
+                let (r, mut jp, mut jt) = data.sample(i, p, &theta);
+                hold_active(&mut jp, &r, p, &lo, &hi);
                 for (j, m) in mask.iter().enumerate() {
                     if !m {
                         jt.column_mut(j).fill(0.0);
@@ -413,12 +462,16 @@ pub(crate) fn fit_law_budget(
         };
         let mut pred = 0.0;
         for (i, ((vi, w, g_p), (r, jp, jt))) in vinv.iter().zip(&cache).enumerate() {
-            let dp = -(vi * (g_p + w.transpose() * dtheta));
+            let mut dp = -(vi * (g_p + w.transpose() * dtheta));
+            for j in 0..3 {
+                // Projected onto the bounds (a no-op inside them).
+                trial_ps[i][j] = (ps[i][j] + dp[j]).clamp(lo[j], hi[j]);
+                if trial_ps[i][j] != ps[i][j] + dp[j] {
+                    dp[j] = trial_ps[i][j] - ps[i][j];
+                }
+            }
             let lin = r + jp * dp + jt * dtheta;
             pred += lin.norm_squared();
-            for j in 0..3 {
-                trial_ps[i][j] = ps[i][j] + dp[j];
-            }
         }
         let mut trial = theta;
         for j in 0..4 {
@@ -463,9 +516,16 @@ pub(crate) fn fit_law_budget(
     let mut u = Matrix4::zeros();
     let mut s = Matrix4::zeros();
     for (i, p) in ps.iter().enumerate() {
-        let (_, jp, jt) = data.sample(i, p, &theta);
+        let (r, mut jp, jt) = data.sample(i, p, &theta);
+        hold_active(&mut jp, &r, p, &lo, &hi);
         u += jt.transpose() * jt;
-        let v: Matrix3<f64> = jp.transpose() * jp;
+        let mut v: Matrix3<f64> = jp.transpose() * jp;
+        for j in 0..3 {
+            if v[(j, j)] == 0.0 {
+                // Held on its bound: no share in the law's covariance.
+                v[(j, j)] = 1.0;
+            }
+        }
         if let Some(vi) = v.try_inverse() {
             let w = jt.transpose() * jp;
             s -= w * vi * w.transpose();

@@ -296,11 +296,21 @@ impl core::fmt::Display for ProductFitError {
                 needed,
                 excluded,
             } => {
-                write!(
-                    f,
-                    "the {model} model cannot use {} sample(s), leaving {kept} where it needs {needed}:",
-                    excluded.len()
-                )?;
+                if kept >= needed {
+                    // Enough were left, but each round of the fit without
+                    // the excluded samples found more to leave out.
+                    write!(
+                        f,
+                        "the {model} model did not settle: each refit without the samples it could not use found more ({} left out so far, {kept} left):",
+                        excluded.len()
+                    )?;
+                } else {
+                    write!(
+                        f,
+                        "the {model} model cannot use {} sample(s), leaving {kept} where it needs {needed}:",
+                        excluded.len()
+                    )?;
+                }
                 for x in excluded.iter().take(8) {
                     write!(f, " {:?} ({});", x.id, x.reason)?;
                 }
@@ -1991,7 +2001,7 @@ fn fit_relaxation_terms(
                 && p.d_eps.is_finite()
                 && p.d_eps < bounds.d_eps.1
                 && p.sigma_s_m.is_finite()
-                && p.sigma_s_m > bounds.sigma_s_m.0
+                && p.sigma_s_m.ln() >= bounds.sigma_s_m.0.ln()
                 && p.sigma_s_m < bounds.sigma_s_m.1;
             if !ok {
                 bad.push((
