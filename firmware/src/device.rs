@@ -131,6 +131,11 @@ pub struct DeviceConfig {
     /// answers it as a 1.3 device would, with `UnknownRequest` (for tests
     /// of a host meeting older firmware).
     pub density_input: bool,
+    /// Take a relaxation calibration with the static terms (layout 2) and
+    /// announce [`Capabilities::STATIC_TERMS`]; off, the device refuses
+    /// one as firmware before them did, a bad calibration (for tests of a
+    /// host meeting older firmware).
+    pub static_terms: bool,
 }
 
 impl DeviceConfig {
@@ -146,6 +151,7 @@ impl DeviceConfig {
             settings: default_settings(),
             simulated: false,
             density_input: true,
+            static_terms: true,
         }
     }
 
@@ -424,6 +430,12 @@ fn check_cell(c: &CellCal, freqs: &[f32; N_FREQ]) -> Result<(), Refusal> {
         "cell reference_ratio not 0..10",
     )?;
     Ok(())
+}
+
+/// Whether a calibration is a relaxation model with the static terms
+/// (layout 2).
+fn uses_static_terms(c: &ProductCalibration<f32>) -> bool {
+    matches!(c.model, cal_product::ProductModel::Relaxation(m) if m.uses_static())
 }
 
 fn check_product(c: &ProductCal) -> Result<ProductCalibration<f32>, Refusal> {
@@ -1060,6 +1072,14 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             Request::WriteProductCal { slot, cal } => {
                 in_slot(slot)?;
                 let parsed = check_product(&cal)?;
+                if !self.cfg.static_terms && uses_static_terms(&parsed) {
+                    // As firmware before the static terms: layout 2 is not
+                    // a relaxation layout it knows.
+                    return Err((
+                        ErrorCode::BadCalibration,
+                        "product params rejected by model",
+                    ));
+                }
                 let old = self
                     .storage
                     .product(slot)
@@ -1275,6 +1295,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         }
         if self.cfg.density_input {
             caps |= Capabilities::DENSITY_INPUT;
+        }
+        if self.cfg.static_terms {
+            caps |= Capabilities::STATIC_TERMS;
         }
         if self.diag != Diagnostics::default() {
             caps |= Capabilities::DIAGNOSTICS;

@@ -368,6 +368,12 @@ bitflags! {
         /// density input: answers [`Request::SetDensity`] (protocol 1.4).
         /// The host refuses to push such a calibration to a device without it.
         const DENSITY_INPUT = 1 << 7;
+        /// Takes a relaxation calibration with the static terms (the
+        /// relaxation model's parameter layout 2, 21 values; a message
+        /// that existed before, so no new protocol version). Firmware
+        /// without it takes layout 1 only and refuses layout 2 as a bad
+        /// calibration; the host refuses to push one to it.
+        const STATIC_TERMS = 1 << 8;
     }
 }
 

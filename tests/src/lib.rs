@@ -195,6 +195,9 @@ pub struct ScenarioSpec {
     /// The device takes the plant's bulk density (protocol 1.4); `false`
     /// simulates firmware before it.
     pub density_input: bool,
+    /// The device takes a relaxation calibration with the static terms;
+    /// `false` simulates firmware before them.
+    pub static_terms: bool,
     /// Probability a byte is lost.
     pub drop_per_byte: f64,
     /// Probability a bit of a byte flips.
@@ -220,6 +223,7 @@ impl ScenarioSpec {
             interval_ms: 100,
             clock_unset: false,
             density_input: true,
+            static_terms: true,
             drop_per_byte: 0.0,
             flip_per_byte: 0.0,
             garbage_per_frame: 0.0,
@@ -235,7 +239,7 @@ impl ScenarioSpec {
              moisture_pct = [[0, 14.0], [120, 16.0], [240, 13.5]]\n\
              temperature_c = [[0, 30.0], [240, 34.0]]\n\
              water_conductivity_s_m = [[0, 0.1]]\n{}\n\
-             [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\ninterval_ms = {}\nclock = \"{}\"\ndensity_input = {}\n\n\
+             [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\ninterval_ms = {}\nclock = \"{}\"\ndensity_input = {}\nstatic_terms = {}\n\n\
              [product]\nname = \"wheat\"\n\n\
              [link]\ndrop_per_byte = {}\nflip_per_byte = {}\ngarbage_per_frame = {}\n",
             self.extra,
@@ -246,6 +250,7 @@ impl ScenarioSpec {
             self.interval_ms,
             if self.clock_unset { "unset" } else { "set" },
             self.density_input,
+            self.static_terms,
             self.drop_per_byte,
             self.flip_per_byte,
             self.garbage_per_frame

@@ -162,10 +162,12 @@ fn a_density_calibration_takes_the_plants_density() {
 
 #[test]
 fn capture_push_list_select_and_history() {
-    // Firmware before protocol 1.4: no density input (the push of a
-    // calibration that takes one is refused below).
+    // Firmware before protocol 1.4: no density input, and before the
+    // relaxation model's static terms (the push of a calibration that takes
+    // either is refused below).
     let sim = Sim::start(&ScenarioSpec {
         density_input: false,
+        static_terms: false,
         ..ScenarioSpec::clean("HGM-L2-0202", seed(22))
     });
     let db = sim.path("bench.db");
@@ -382,6 +384,52 @@ fn capture_push_list_select_and_history() {
     );
     assert_fails(&o, 1, &["HGM-L2-0202 has no density input", "nothing sent"]);
 
+    // A relaxation calibration with the static terms (layout 2) is refused
+    // by firmware that predates them: 60 samples of the zoo's grain (from
+    // published physics, invented constants), where the fit keeps the
+    // terms.
+    let grain = sim.path("grain.csv");
+    write_zoo_table(&grain, 60, 1);
+    let grain_cal = sim.path("grain.toml");
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "fit",
+            "--samples",
+            grain.to_str().unwrap(),
+            "--model",
+            "relaxation",
+            "--bulk-density-kg-m3",
+            "760",
+            "--particle-density-kg-m3",
+            "1400",
+            "--out",
+            grain_cal.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        o.stdout.contains("with the static terms") || o.stderr.contains("with the static terms"),
+        "the case needs the terms kept: {}{}",
+        o.stdout,
+        o.stderr
+    );
+    let o = run(
+        &mut push_args(&grain_cal, &["--activate", "true", "--yes", "--force"]),
+        LIMIT,
+    );
+    assert_fails(
+        &o,
+        1,
+        &[
+            "static terms",
+            "no static_terms capability",
+            "nothing written",
+        ],
+    );
+    assert_eq!(history(&db).len(), records);
+
     let list = || -> serde_json::Value {
         let o = run(
             &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
@@ -515,4 +563,30 @@ fn monitor_raises_the_drift_alarms_of_fringe_drift_live() {
             "live alarm {a} not among fringe drift's {batch:?}"
         );
     }
+}
+
+/// `n` samples of the zoo's grain at the device's 1 and 20 MHz (synthetic,
+/// `fringe_calibration::fit::zoo`) as a reference table.
+fn write_zoo_table(path: &Path, n: usize, seed: u64) {
+    use fringe_calibration::fit::zoo::{Draw, Family};
+    let s = Family::grain().samples(&Draw::new(n, [1e6, 20e6]), seed);
+    let mut t = String::from(
+        "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im\n",
+    );
+    for x in &s {
+        let c = &x.channels;
+        t.push_str(&format!(
+            "{},{},{},{},{},{},{},{},{}\n",
+            x.id,
+            x.moisture_pct,
+            x.temperature_c,
+            c[0].freq_hz,
+            c[0].eps_re,
+            c[0].eps_loss,
+            c[1].freq_hz,
+            c[1].eps_re,
+            c[1].eps_loss
+        ));
+    }
+    std::fs::write(path, t).unwrap();
 }

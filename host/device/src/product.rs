@@ -58,6 +58,15 @@ pub enum ProductError {
         /// The device serial.
         serial: String,
     },
+    /// The calibration is a relaxation model with the static terms, which
+    /// the device's firmware predates.
+    #[error("{name} is a relaxation calibration with the static terms (parameter layout 2), but {serial}'s firmware does not announce them (no static_terms capability) and would refuse it. Update the device's firmware, or fit this device's calibration with --model multivariate or single; nothing written")]
+    NoStaticTerms {
+        /// Product name.
+        name: String,
+        /// The device serial.
+        serial: String,
+    },
     /// No free slot and none named.
     #[error("all {n} product slots are in use; choose one with --slot")]
     SlotsFull {
@@ -121,6 +130,14 @@ pub fn takes_density(wire: &ProductCal) -> bool {
     fringe_firmware::device::parse_product(wire).is_ok_and(|c| {
         matches!(c.model, fringe_calibration::product::ProductModel::Multivariate(m) if m.uses_density())
     })
+}
+
+/// Whether a calibration is a relaxation model with the static terms
+/// (parameter layout 2), which a device takes only if it announces
+/// [`Capabilities::STATIC_TERMS`].
+pub fn takes_static_terms(wire: &ProductCal) -> bool {
+    wire.model == fringe_protocol::ModelKind::Relaxation
+        && wire.params.len() == fringe_calibration::product::RELAXATION_STATIC_LEN
 }
 
 /// The product slots of the device and the active one.
@@ -202,6 +219,16 @@ pub fn push(
             .is_some_and(|id| id.capabilities.contains(Capabilities::DENSITY_INPUT))
     {
         return Err(ProductError::NoDensityInput {
+            name: file.name.clone(),
+            serial,
+        });
+    }
+    if takes_static_terms(wire)
+        && !link
+            .identity()
+            .is_some_and(|id| id.capabilities.contains(Capabilities::STATIC_TERMS))
+    {
+        return Err(ProductError::NoStaticTerms {
             name: file.name.clone(),
             serial,
         });

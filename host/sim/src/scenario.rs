@@ -92,6 +92,10 @@ pub struct DeviceSection {
     /// the default); `false` answers as firmware before it did.
     #[serde(default = "yes")]
     pub density_input: bool,
+    /// Whether the device takes a relaxation calibration with the static
+    /// terms (the default); `false` refuses one as firmware before them did.
+    #[serde(default = "yes")]
+    pub static_terms: bool,
 }
 
 fn yes() -> bool {

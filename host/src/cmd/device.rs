@@ -18,6 +18,7 @@ fn capability_names(c: Capabilities) -> Vec<&'static str> {
         (Capabilities::SETTINGS, "settings"),
         (Capabilities::MODBUS_RTU, "modbus_rtu"),
         (Capabilities::DENSITY_INPUT, "density_input"),
+        (Capabilities::STATIC_TERMS, "static_terms"),
     ]
     .into_iter()
     .filter(|(f, _)| c.contains(*f))
