@@ -19,7 +19,10 @@
 //! by the measurement noise. Fixed budget, no allocation, no panic. The
 //! covariance is (J^T W J)^-1 at the solution (W = 1/sd^2), i.e. the noise
 //! propagated through the linearised model; it is not rescaled by the
-//! residual. The 3x3 Cholesky is written out here so every float operation
+//! residual. A sigma held on its lower bound (the data push it below:
+//! less conduction than the two frequencies resolve) is a limit, not an
+//! estimate: the covariance is then that of (eps_hf, d_eps) with sigma held
+//! there, and sigma's variance 0. The 3x3 Cholesky is written out here so every float operation
 //! stays explicit on the device.
 
 use crate::dielectric::{eps0, omega};
@@ -178,7 +181,8 @@ pub enum InvertError {
     InvalidInput,
     /// The iteration budget ran out before convergence.
     NotConverged,
-    /// The parameters are not determined by the data (J^T J singular).
+    /// The parameters are not determined by the data (J^T J singular; with
+    /// sigma held on its lower bound, that of eps_hf and d_eps).
     Singular,
     /// The best fit lies on a bound of this parameter.
     OutOfBounds(Param),
@@ -424,6 +428,8 @@ struct Fit<T> {
     x: [T; 3],
     chi2: T,
     a: M3<T>,
+    /// The gradient at `x` (of the sign convention of `Problem::eval`).
+    g: [T; 3],
     iterations: u32,
 }
 
@@ -505,6 +511,7 @@ fn levenberg_marquardt<T: Real>(
         x,
         chi2,
         a,
+        g,
         iterations: it,
     })
 }
@@ -516,7 +523,10 @@ fn levenberg_marquardt<T: Real>(
 /// # Errors
 /// [`InvertError::InvalidInput`], [`InvertError::NotConverged`],
 /// [`InvertError::Singular`], [`InvertError::OutOfBounds`] (never a number
-/// that did not come from a converged, determined fit).
+/// that did not come from a converged, determined fit; a sigma held on its
+/// lower bound is returned as that bound, with variance 0). Out of budget
+/// while sigma is held on its lower bound gives `NotConverged`, as for
+/// d_eps on its own (before, `OutOfBounds(Sigma)`).
 pub fn invert<T: Real>(
     obs: &[Observation<T>; 2],
     law: &RelaxationLaw<T>,
@@ -643,7 +653,7 @@ pub fn invert<T: Real>(
         };
     }
     let fit = best.unwrap_or(Err(InvertError::NotConverged))?;
-    let (x, chi2, a, it) = (fit.x, fit.chi2, fit.a, fit.iterations);
+    let (x, chi2, a, g, it) = (fit.x, fit.chi2, fit.a, fit.g, fit.iterations);
     // A solution on a bound means the data want a value outside it
     // (d_eps and sigma at their lower bounds are physical limits and
     // accepted: no relaxation strength, or less conduction than the two
@@ -658,23 +668,35 @@ pub fn invert<T: Real>(
     if x[2] >= p.hi[2] {
         return Err(InvertError::OutOfBounds(Param::Sigma));
     }
-    let cov_q = match spd_inverse(&a) {
-        Some(c) => c,
-        None if pinned(2) => {
-            // sigma on its lower bound and not determined by the data: the
-            // covariance of (eps_hf, d_eps) with sigma held there.
-            let mut held = a;
-            for j in 0..3 {
-                held[2][j] = T::zero();
-                held[j][2] = T::zero();
-            }
-            held[2][2] = T::one();
-            let mut c = spd_inverse(&held).ok_or(InvertError::Singular)?;
+    // sigma on its lower bound. Pushed below it by the data (the active
+    // set's test of `levenberg_marquardt`), it is held there: the covariance
+    // of (eps_hf, d_eps) with sigma held, sigma's variance 0; where that
+    // does not determine d_eps (the relaxation far below the band at the
+    // bound's relaxation frequency), the full covariance, if any. On the
+    // bound but not pushed (a minimum there), the full covariance, else the
+    // held one.
+    let at_lo = x[2] <= p.lo[2];
+    let pushed = at_lo && g[2] < T::zero();
+    let held_cov = || {
+        let mut held = a;
+        for j in 0..3 {
+            held[2][j] = T::zero();
+            held[j][2] = T::zero();
+        }
+        held[2][2] = T::one();
+        spd_inverse(&held).map(|mut c| {
             c[2][2] = T::zero();
             c
-        }
-        None => return Err(InvertError::Singular),
+        })
     };
+    let cov_q = if pushed {
+        held_cov().or_else(|| spd_inverse(&a))
+    } else if at_lo {
+        spd_inverse(&a).or_else(held_cov)
+    } else {
+        spd_inverse(&a)
+    };
+    let cov_q = cov_q.ok_or(InvertError::Singular)?;
     let sigma = T::exp(x[2]);
     let scale = [T::one(), T::one(), sigma];
     let mut cov = [[T::zero(); 3]; 3];
@@ -948,8 +970,8 @@ pub(crate) mod tests {
 
     /// A lossless reading (eps'' = 0 at both frequencies, as of a dry
     /// plastic; common practice, no source): sigma lands on its lower bound
-    /// and d_eps on 0, both accepted, eps_hf is eps'; sigma's variance is 0
-    /// where the data do not determine it and finite otherwise.
+    /// and d_eps on 0, both accepted, eps_hf is eps'; sigma is held there,
+    /// not estimated (variance 0), in f64 and in the device's f32.
     #[test]
     fn a_lossless_reading_sits_on_the_lower_bounds() {
         let l = law();
@@ -970,7 +992,9 @@ pub(crate) mod tests {
             r.sd(Param::EpsHf) > 0.0 && r.sd(Param::EpsHf) < 0.05,
             "{r:?}"
         );
-        assert!(r.covariance[2][2].is_finite() && r.covariance[2][2] >= 0.0);
+        // Held, not estimated: no variance, no covariance with the others.
+        assert_eq!(r.covariance[2], [0.0; 3], "{r:?}");
+        assert_eq!(r.covariance[0][2], 0.0);
         // The same in f32, as the device runs it.
         let o32 = o.map(|x| Observation {
             freq_hz: x.freq_hz as f32,
@@ -987,6 +1011,9 @@ pub(crate) mod tests {
         };
         let r32 = invert(&o32, &l32, 25.0f32, &InvertOptions::default()).expect("accepted in f32");
         assert!((r32.params.eps_hf - 4.0).abs() < 1e-2, "{r32:?}");
+        assert!((r32.params.sigma_s_m / 1e-7 - 1.0).abs() < 1e-5, "{r32:?}");
+        assert_eq!(r32.covariance[2], [0.0; 3], "{r32:?}");
+        assert!(r32.sd(Param::EpsHf) > 0.0 && r32.sd(Param::EpsHf) < 0.05);
     }
 
     #[test]

@@ -665,10 +665,18 @@ fn the_law_fit_keeps_every_sample_where_the_device_can_find_it() {
             f.name,
             fit.excluded.len()
         );
-        // Every sample the model kept has a moisture from the device.
+        // On the dry products the device gives a moisture for nearly every
+        // left-out sample (the comparison's eligibility rule: at most 2 %
+        // without). (The salted feed's misses 6 of 194: fitted, but not
+        // eligible.)
+        let missing = fit
+            .samples
+            .iter()
+            .filter(|s| !s.cv_predicted_pct.is_finite())
+            .count();
         assert!(
-            fit.samples.iter().all(|s| s.fitted_pct.is_finite()),
-            "{} {pair:?}",
+            !none_outside || missing * 50 <= fit.samples.len(),
+            "{} {pair:?}: {missing} cross-validation predictions without a moisture",
             f.name
         );
     }

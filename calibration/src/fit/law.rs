@@ -370,7 +370,14 @@ pub(crate) fn fit_law_budget(
     // lower frequency (where conduction dominates eps''), eps_hf from eps'
     // at the higher one, d_eps from the drop of eps' between the two.
     let mut ps: Vec<[f64; 3]> = match ps0 {
-        Some(p) if p.len() == n => p.to_vec(),
+        Some(p) if p.len() == n => p
+            .iter()
+            .map(|x| {
+                let mut x = *x;
+                clamp_sample(&mut x, &data.lo, &data.hi);
+                x
+            })
+            .collect(),
         _ => {
             let mut ps: Vec<[f64; 3]> = obs
                 .iter()
