@@ -101,7 +101,47 @@ impl LawConst {
     }
 }
 
-/// eps* alone (what [`model`] returns first, by the same operations).
+/// The model's intermediate values at one frequency: x = ln f - ln f_r,
+/// u = (j f / f_r)^beta, 1 / (1 + u), the relaxation term, the conduction
+/// term's magnitude and eps*.
+struct Terms {
+    x: f64,
+    u: Cx<f64>,
+    inv_d: Cx<f64>,
+    relax: Cx<f64>,
+    cond: f64,
+    eps: Cx<f64>,
+}
+
+#[inline]
+fn terms(
+    fc: &FreqConst,
+    p: &[f64; 3],
+    theta: &Theta,
+    lc: &LawConst,
+    ln_sigma_ref: f64,
+    dt_c: f64,
+) -> Terms {
+    let ln_fr = theta[1] + theta[2] * (p[2] - ln_sigma_ref) + theta[3] * dt_c;
+    let x = fc.ln_f - ln_fr;
+    // u = (j f / f_r)^beta = exp(beta x + j beta pi/2); clamp as the device does.
+    let mag = (lc.beta * x).clamp(-30.0, 30.0).exp();
+    let u = Cx::new(mag * lc.cos_b, mag * lc.sin_b);
+    let inv_d = Cx::new(1.0, 0.0) / (Cx::new(1.0, 0.0) + u);
+    let relax = inv_d * p[1];
+    let cond = p[2].exp() / fc.w_eps0;
+    let eps = Cx::new(p[0] + relax.re, relax.im - cond);
+    Terms {
+        x,
+        u,
+        inv_d,
+        relax,
+        cond,
+        eps,
+    }
+}
+
+/// eps* alone (what [`model`] returns first).
 #[inline]
 fn model_value(
     fc: &FreqConst,
@@ -111,15 +151,7 @@ fn model_value(
     ln_sigma_ref: f64,
     dt_c: f64,
 ) -> Cx<f64> {
-    let beta = lc.beta;
-    let ln_fr = theta[1] + theta[2] * (p[2] - ln_sigma_ref) + theta[3] * dt_c;
-    let x = fc.ln_f - ln_fr;
-    let mag = (beta * x).clamp(-30.0, 30.0).exp();
-    let u = Cx::new(mag * lc.cos_b, mag * lc.sin_b);
-    let inv_d = Cx::new(1.0, 0.0) / (Cx::new(1.0, 0.0) + u);
-    let relax = inv_d * p[1];
-    let cond = p[2].exp() / fc.w_eps0;
-    Cx::new(p[0] + relax.re, relax.im - cond)
+    terms(fc, p, theta, lc, ln_sigma_ref, dt_c).eps
 }
 
 /// eps* and its derivatives w.r.t. (eps_hf, d_eps, q = ln sigma) and theta.
@@ -132,17 +164,16 @@ fn model(
     ln_sigma_ref: f64,
     dt_c: f64,
 ) -> (Cx<f64>, [Cx<f64>; 3], [Cx<f64>; 4]) {
+    let Terms {
+        x,
+        u,
+        inv_d,
+        relax,
+        cond,
+        eps,
+    } = terms(fc, p, theta, lc, ln_sigma_ref, dt_c);
     let beta = lc.beta;
-    let ln_fr = theta[1] + theta[2] * (p[2] - ln_sigma_ref) + theta[3] * dt_c;
-    let x = fc.ln_f - ln_fr;
     let half_pi = std::f64::consts::FRAC_PI_2;
-    // u = (j f / f_r)^beta = exp(beta x + j beta pi/2); clamp as the device does.
-    let mag = (beta * x).clamp(-30.0, 30.0).exp();
-    let u = Cx::new(mag * lc.cos_b, mag * lc.sin_b);
-    let inv_d = Cx::new(1.0, 0.0) / (Cx::new(1.0, 0.0) + u);
-    let relax = inv_d * p[1];
-    let cond = p[2].exp() / fc.w_eps0;
-    let eps = Cx::new(p[0] + relax.re, relax.im - cond);
     // d relax / dz with u = e^z.
     let dz = -(relax * inv_d * u);
     let d_ln_fr = dz * (-beta);
@@ -586,11 +617,6 @@ mod tests {
             let fc = FreqConst::new(f);
             let lc = LawConst::new(&theta);
             let (e, dp, dth) = model(&fc, &p, &theta, &lc, ln_sref, t - t_ref);
-            assert_eq!(
-                model_value(&fc, &p, &theta, &lc, ln_sref, t - t_ref),
-                e,
-                "model_value is model's value"
-            );
             let law = law_of(&theta, ln_sref.exp(), t_ref);
             let mp = MaterialParams {
                 eps_hf: p[0],
