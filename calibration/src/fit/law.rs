@@ -553,6 +553,9 @@ pub(crate) fn fit_law_budget(
     // Covariance of theta: s^2 S^-1 (undamped reduced system) at the solution.
     let mut u = Matrix4::zeros();
     let mut s = Matrix4::zeros();
+    // Per-sample parameters held on a bound at the solution: not fitted, so
+    // not counted against the degrees of freedom.
+    let mut held = 0usize;
     for (i, p) in ps.iter().enumerate() {
         let (r, mut jp, jt) = data.sample(i, p, &theta);
         hold_active(&mut jp, &r, p, &lo, &hi);
@@ -562,6 +565,7 @@ pub(crate) fn fit_law_budget(
             if v[(j, j)] == 0.0 {
                 // Held on its bound: no share in the law's covariance.
                 v[(j, j)] = 1.0;
+                held += 1;
             }
         }
         if let Some(vi) = v.try_inverse() {
@@ -577,7 +581,7 @@ pub(crate) fn fit_law_budget(
             s[(j, j)] = 1.0;
         }
     }
-    let dof = (3 * n + n).saturating_sub(3 * n + k).max(1) as f64;
+    let dof = (3 * n + n).saturating_sub(3 * n - held + k).max(1) as f64;
     let s2 = cost / dof;
     let mut std_err = [0.0; 4];
     if let Some(c) = s.try_inverse() {
