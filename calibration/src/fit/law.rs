@@ -101,7 +101,8 @@ impl LawConst {
     }
 }
 
-/// The model's intermediate values at one frequency: x = ln f - ln f_r,
+/// The model's intermediate values at one frequency (the cost needs only
+/// eps*, [`model`] the rest for the derivatives): x = ln f - ln f_r,
 /// u = (j f / f_r)^beta, 1 / (1 + u), the relaxation term, the conduction
 /// term's magnitude and eps*.
 struct Terms {
@@ -139,19 +140,6 @@ fn terms(
         cond,
         eps,
     }
-}
-
-/// eps* alone (what [`model`] returns first).
-#[inline]
-fn model_value(
-    fc: &FreqConst,
-    p: &[f64; 3],
-    theta: &Theta,
-    lc: &LawConst,
-    ln_sigma_ref: f64,
-    dt_c: f64,
-) -> Cx<f64> {
-    terms(fc, p, theta, lc, ln_sigma_ref, dt_c).eps
 }
 
 /// eps* and its derivatives w.r.t. (eps_hf, d_eps, q = ln sigma) and theta.
@@ -329,7 +317,7 @@ impl Data<'_> {
         for (i, p) in ps.iter().enumerate() {
             let dt = self.temps[i] - dt0;
             for (k, o) in self.obs[i].iter().enumerate() {
-                let e = model_value(&self.fc[i][k], p, theta, &lc, self.ln_sigma_ref, dt);
+                let e = terms(&self.fc[i][k], p, theta, &lc, self.ln_sigma_ref, dt).eps;
                 let w = 1.0 / o.sd;
                 let (a, b) = ((e.re - o.eps.re) * w, (e.im - o.eps.im) * w);
                 c += a * a + b * b;
