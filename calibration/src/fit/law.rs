@@ -17,7 +17,7 @@
 //! parameter on a bound that the data push outward is held there (an active
 //! set per sample). Unbounded, the fit could settle on a law at which the
 //! samples' parameters are unphysical (a negative eps_hf on a salted feed,
-//! sigma of 1e-22 S/m on a dry powder), a law the device cannot use.
+//! sigma of 1e-23 S/m on dry pellets), a law the device cannot use.
 //!
 //! The model is that of [`crate::invert`]:
 //! `eps* = eps_hf + d_eps / (1 + (j f / f_r)^(1 - alpha)) - j sigma / (2 pi f eps0)`,
