@@ -566,27 +566,24 @@ fn monitor_raises_the_drift_alarms_of_fringe_drift_live() {
 }
 
 /// `n` samples of the zoo's grain at the device's 1 and 20 MHz (synthetic,
-/// `fringe_calibration::fit::zoo`) as a reference table.
+/// `fringe_calibration::fit::zoo`) as a reference table, written by the
+/// host's own table writer.
 fn write_zoo_table(path: &Path, n: usize, seed: u64) {
     use fringe_calibration::fit::zoo::{Draw, Family};
-    let s = Family::grain().samples(&Draw::new(n, [1e6, 20e6]), seed);
-    let mut t = String::from(
-        "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im\n",
-    );
-    for x in &s {
-        let c = &x.channels;
-        t.push_str(&format!(
-            "{},{},{},{},{},{},{},{},{}\n",
-            x.id,
-            x.moisture_pct,
-            x.temperature_c,
-            c[0].freq_hz,
-            c[0].eps_re,
-            c[0].eps_loss,
-            c[1].freq_hz,
-            c[1].eps_re,
-            c[1].eps_loss
-        ));
-    }
-    std::fs::write(path, t).unwrap();
+    use fringe_quality::samples::{write_samples, RefSample};
+    let rows: Vec<RefSample> = Family::grain()
+        .samples(&Draw::new(n, [1e6, 20e6]), seed)
+        .into_iter()
+        .map(|x| RefSample {
+            sample_id: x.id,
+            moisture_pct: Some(x.moisture_pct),
+            temperature_c: x.temperature_c,
+            freqs_hz: [x.channels[0].freq_hz, x.channels[1].freq_hz],
+            eps_re: [x.channels[0].eps_re, x.channels[1].eps_re],
+            eps_im: [x.channels[0].eps_loss, x.channels[1].eps_loss],
+            bulk_density_kg_m3: None,
+            line: 0,
+        })
+        .collect();
+    write_samples(std::fs::File::create(path).unwrap(), &rows).unwrap();
 }
