@@ -353,6 +353,7 @@ mod tests {
             c_sigma: 0.0,
             c_static: [0.0; 2],
             static_hold: crate::product::no_static_hold(),
+            sigma_hold: crate::product::no_sigma_hold(),
         });
         let (p, n) = m.to_params();
         let r = Range::new;
@@ -464,6 +465,7 @@ mod tests {
             let m = ProductModel::Relaxation(RelaxationModel {
                 c_static: [0.1, 0.002],
                 static_hold: Range::new(lo, hi),
+                sigma_hold: crate::product::no_sigma_hold(),
                 ..rm
             });
             let (p, n) = m.to_params();

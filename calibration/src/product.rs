@@ -19,7 +19,12 @@
 //!   the static term carries it (`calibration/examples/relaxation_terms.rs`
 //!   and BENCHMARKS.md measure it on the zoo); the hold keeps a d_eps the
 //!   two frequencies cannot determine (a relaxation far below the band)
-//!   from driving the moisture out of the calibration's range.
+//!   from driving the moisture out of the calibration's range. In layout
+//!   3 the conductivity term holds sigma to `[sigma_min, sigma_max]` as
+//!   well (the fit sets only a lower end, below the samples' lowest
+//!   sigma: a product drier or purer than every calibration sample has a
+//!   conductivity the two frequencies barely resolve, and the term is not
+//!   extrapolated to it).
 //!
 //! - **Multivariate** (chemometrics on physically chosen features of both
 //!   frequencies, [`MultivariateModel`]): `moisture = b0 + sum_k b_k x_k`
@@ -45,8 +50,10 @@
 //!  [2] t_ref_c                 [3] c0  [4] c1  [5] c2  [6] c3   (% per eps'^k)
 //!  [7] c_t (% per K)
 //!
-//! Relaxation, 17 values (layout 1) or 21 (layout 2, with the static terms):
-//!  [0] layout version (1 or 2) [1] alpha (0 <= alpha < 1)
+//! Relaxation, 17 values (layout 1), 21 (layout 2, with the static terms)
+//! or 23 (layout 3, with the conductivity hold; the static terms 0 where
+//! the model has none):
+//!  [0] layout version (1-3)    [1] alpha (0 <= alpha < 1)
 //!  [2] fr_ref_hz (> 0)         [3] sigma_ref_s_m (> 0)
 //!  [4] fr_exponent p           [5] fr_temp_coeff_per_c
 //!  [6] mixing exponent a (0..=1; 0 logarithmic, 0.5 CRIM)
@@ -56,6 +63,8 @@
 //!  [11] p0 [12] p1 [13] p2 [14] p3  (% per m^k)
 //!  [15] c_t (% per K)          [16] c_s (% per unit ln(sigma/sigma_ref))
 //!  [17] q1 [18] q2 (% per h^k)  [19] h_min [20] h_max (%, h_min <= h_max)
+//!  [21] sigma_min [22] sigma_max (S/m, 0 < sigma_min <= sigma_max; 1e30
+//!  for no upper end)
 //!
 //! Multivariate without a density input, 27 values:
 //!  [0] layout version (1)      [1] t_ref_c
@@ -106,6 +115,10 @@ pub const MULTIVARIATE_DENSITY_LEN: usize = 4 + MV_FEATURES + 1;
 pub const LAYOUT_VERSION_DENSITY: f32 = 2.0;
 /// Layout version of a relaxation model with the static terms.
 pub const LAYOUT_VERSION_STATIC: f32 = 2.0;
+/// Layout version of a relaxation model whose conductivity term is held.
+pub const LAYOUT_VERSION_SIGMA_HOLD: f32 = 3.0;
+/// Length of the relaxation layout with the conductivity hold (version 3).
+pub const RELAXATION_SIGMA_HOLD_LEN: usize = 23;
 /// Lowest and highest bulk density a density input may carry, kg/m^3
 /// (loose flakes to wet aggregates with room to spare; common practice,
 /// no source).
@@ -297,6 +310,14 @@ pub struct RelaxationModel<T> {
     pub c_static: [T; 2],
     /// The range h is held to, %.
     pub static_hold: Range<T>,
+    /// The range sigma is held to in the conductivity term, S/m
+    /// ([`no_sigma_hold`] in layouts 1 and 2).
+    pub sigma_hold: Range<T>,
+}
+
+/// The conductivity term's hold of a model without one.
+pub fn no_sigma_hold<T: Real>() -> Range<T> {
+    Range::new(T::zero(), T::c(1e30))
 }
 
 /// The static terms' hold of a model without them.
@@ -334,6 +355,18 @@ impl<T: Real> RelaxationModel<T> {
         }
     }
 
+    /// sigma held to the model's range, and whether it lay inside it.
+    pub fn held_sigma(&self, sigma_s_m: T) -> (T, bool) {
+        let r = self.sigma_hold;
+        if r.contains(sigma_s_m) {
+            (sigma_s_m, true)
+        } else if sigma_s_m > r.max {
+            (r.max, false)
+        } else {
+            (r.min, false)
+        }
+    }
+
     /// Mixing-model moisture m (% wet basis) from eps_hf at `t_c`.
     pub fn mixing_moisture_pct(&self, eps_hf: T, t_c: T) -> T {
         self.mixture
@@ -350,7 +383,7 @@ impl<T: Real> RelaxationModel<T> {
             m * m,
             m * m * m,
             t_c - self.t_ref_c,
-            T::ln(p.sigma_s_m / self.law.sigma_ref_s_m),
+            T::ln(self.held_sigma(p.sigma_s_m).0 / self.law.sigma_ref_s_m),
             h,
             h * h,
         ]
@@ -361,7 +394,7 @@ impl<T: Real> RelaxationModel<T> {
         let m = self.mixing_moisture_pct(p.eps_hf, t_c);
         let mut out = poly3(&self.coeffs, m)
             + self.c_t * (t_c - self.t_ref_c)
-            + self.c_sigma * T::ln(p.sigma_s_m / self.law.sigma_ref_s_m);
+            + self.c_sigma * T::ln(self.held_sigma(p.sigma_s_m).0 / self.law.sigma_ref_s_m);
         if self.uses_static() {
             let (h, _) = self.held_static_pct(p, t_c);
             out += self.c_static[0] * h + self.c_static[1] * h * h;
@@ -386,7 +419,10 @@ impl<T: Real> RelaxationModel<T> {
         [
             dpoly3(&self.coeffs, m) * dm + ds,
             ds,
-            self.c_sigma / p.sigma_s_m,
+            match self.held_sigma(p.sigma_s_m) {
+                (_, true) => self.c_sigma / p.sigma_s_m,
+                _ => T::zero(),
+            },
         ]
     }
 }
@@ -676,6 +712,12 @@ impl<T: Real> ProductModel<T> {
                 for (i, x) in v.iter().enumerate() {
                     out[1 + i] = f(*x);
                 }
+                if m.sigma_hold != no_sigma_hold() {
+                    out[0] = LAYOUT_VERSION_SIGMA_HOLD;
+                    out[21] = f(m.sigma_hold.min);
+                    out[22] = f(m.sigma_hold.max);
+                    return (out, RELAXATION_SIGMA_HOLD_LEN);
+                }
                 if !m.uses_static() {
                     out[RELAXATION_LEN..RELAXATION_STATIC_LEN].fill(0.0);
                     return (out, RELAXATION_LEN);
@@ -713,10 +755,13 @@ impl<T: Real> ProductModel<T> {
         // every other layout is version 1.
         let density =
             kind == ModelKind::Multivariate && params.first() == Some(&LAYOUT_VERSION_DENSITY);
-        let with_static =
-            kind == ModelKind::Relaxation && params.first() == Some(&LAYOUT_VERSION_STATIC);
+        let sigma_held =
+            kind == ModelKind::Relaxation && params.first() == Some(&LAYOUT_VERSION_SIGMA_HOLD);
+        let with_static = sigma_held
+            || kind == ModelKind::Relaxation && params.first() == Some(&LAYOUT_VERSION_STATIC);
         let expected = match kind {
             ModelKind::SingleFrequency => SINGLE_LEN,
+            ModelKind::Relaxation if sigma_held => RELAXATION_SIGMA_HOLD_LEN,
             ModelKind::Relaxation if with_static => RELAXATION_STATIC_LEN,
             ModelKind::Relaxation => RELAXATION_LEN,
             ModelKind::Multivariate if density => MULTIVARIATE_DENSITY_LEN,
@@ -786,6 +831,17 @@ impl<T: Real> ProductModel<T> {
                 } else {
                     ([T::zero(); 2], no_static_hold())
                 };
+                let sigma_hold = if sigma_held {
+                    if !(p[21] > 0.0 && p[21] <= p[22]) {
+                        return bad(
+                            21,
+                            "the conductivity hold must satisfy 0 < sigma_min <= sigma_max",
+                        );
+                    }
+                    Range::new(g(21), g(22))
+                } else {
+                    no_sigma_hold()
+                };
                 Ok(ProductModel::Relaxation(RelaxationModel {
                     law: RelaxationLaw {
                         alpha: g(1),
@@ -807,6 +863,7 @@ impl<T: Real> ProductModel<T> {
                     c_sigma: g(16),
                     c_static,
                     static_hold,
+                    sigma_hold,
                 }))
             }
             ModelKind::Multivariate => {
@@ -901,6 +958,7 @@ impl<T: Real> ProductModel<T> {
                 c_sigma: U::cast(m.c_sigma),
                 c_static: m.c_static.map(U::cast),
                 static_hold: m.static_hold.cast(),
+                sigma_hold: m.sigma_hold.cast(),
             }),
             ProductModel::Multivariate(m) => ProductModel::Multivariate(MultivariateModel {
                 t_ref_c: U::cast(m.t_ref_c),
@@ -1025,6 +1083,7 @@ pub(crate) mod tests {
             c_sigma: -0.05,
             c_static: [0.0; 2],
             static_hold: no_static_hold(),
+            sigma_hold: no_sigma_hold(),
         }
     }
 
@@ -1032,6 +1091,7 @@ pub(crate) mod tests {
         RelaxationModel {
             c_static: [0.3, -0.004],
             static_hold: Range::new(5.0, 40.0),
+            sigma_hold: no_sigma_hold(),
             ..relaxation_model()
         }
     }
@@ -1121,6 +1181,57 @@ pub(crate) mod tests {
         }
     }
 
+    /// The conductivity hold (layout 3): sigma below the hold counts as
+    /// the hold's lower end, with no gradient there; inside it, as before.
+    #[test]
+    fn the_conductivity_hold_round_trips_in_layout_3_and_stops_the_term() {
+        for base in [relaxation_model(), static_model()] {
+            let m = RelaxationModel {
+                sigma_hold: Range::new(1e-4, no_sigma_hold::<f64>().max),
+                ..base
+            };
+            let (mut p, n) = ProductModel::Relaxation(m).to_params();
+            assert_eq!((n, p[0]), (RELAXATION_SIGMA_HOLD_LEN, 3.0));
+            let ProductModel::Relaxation(b) =
+                ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]).unwrap()
+            else {
+                panic!("kind")
+            };
+            assert_eq!(b.sigma_hold.min, 1e-4f32);
+            assert_eq!(b.c_static, m.c_static.map(|c| c as f32));
+            assert_eq!(b.uses_static(), base.uses_static());
+            // An inverted or non-positive hold names index 21.
+            for (lo, hi) in [(1e-3, 1e-4), (0.0, 1.0)] {
+                p[21] = lo;
+                p[22] = hi;
+                assert!(
+                    matches!(
+                        ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+                        Err(ParamsError::Invalid { index: 21, .. })
+                    ),
+                    "{lo} {hi}"
+                );
+            }
+            let at = |s: f64| MaterialParams {
+                eps_hf: 5.0,
+                d_eps: 6.0,
+                sigma_s_m: s,
+            };
+            let t = 21.0;
+            // Below the hold the moisture stands still and its gradient
+            // in sigma is 0; inside it matches a difference.
+            assert_eq!(m.moisture_pct(&at(1e-6), t), m.moisture_pct(&at(1e-4), t));
+            assert_eq!(m.gradient(&at(1e-6), t)[2], 0.0);
+            let s = 2e-3;
+            let d = (m.moisture_pct(&at(s * 1.001), t) - m.moisture_pct(&at(s / 1.001), t))
+                / (s * 1.001 - s / 1.001);
+            let g = m.gradient(&at(s), t)[2];
+            assert!((g - d).abs() < 1e-4 * d.abs(), "{g} {d}");
+            // Without a hold the term goes on below 1e-4 S/m.
+            assert!(base.moisture_pct(&at(1e-6), t) != base.moisture_pct(&at(1e-4), t));
+        }
+    }
+
     #[test]
     fn params_round_trip_both_kinds() {
         let s = ProductModel::SingleFrequency(SingleFrequencyModel {
@@ -1173,7 +1284,16 @@ pub(crate) mod tests {
                 got: 17
             })
         );
+        // Version 3 is the longer still with the conductivity hold.
         p[0] = 3.0;
+        assert_eq!(
+            ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+            Err(ParamsError::WrongLength {
+                expected: 23,
+                got: 17
+            })
+        );
+        p[0] = 4.0;
         assert_eq!(
             ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
             Err(ParamsError::UnknownVersion)

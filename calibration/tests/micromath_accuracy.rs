@@ -332,6 +332,7 @@ fn calibration<T: Real>() -> ProductCalibration<T> {
         c_sigma: 0.0,
         c_static: [0.0; 2],
         static_hold: fringe_calibration::product::no_static_hold(),
+        sigma_hold: fringe_calibration::product::no_sigma_hold(),
     });
     let (p, n) = m.to_params();
     let r = Range::new;

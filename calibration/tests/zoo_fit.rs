@@ -592,17 +592,17 @@ fn a_density_input_recovers_what_density_variation_costs() {
 
 /// The relaxation model's static terms (the held mixing-model moisture of
 /// eps_hf + d_eps) stay only where they predict the left-out samples
-/// better than the same model without them, and the fit's notes say which
-/// (BENCHMARKS.md, the static terms). Fixed draws of the grain at 5/50 MHz
-/// with 60 samples, found in the sweep over FRINGE_SEED 1-16: with seed 4
-/// they cut the cross-validated RMSEP from 0.29 to 0.21 %; with seed 14 one
-/// sample whose d_eps the two frequencies cannot pin down (leverage 0.94)
-/// raised it from 0.43 to 0.79 %.
+/// better than the same model without them (a smaller mean absolute
+/// error), and the fit's notes say which (BENCHMARKS.md, the static
+/// terms). Fixed draws of the grain at 5/50 MHz with 60 samples, found in
+/// the sweep over FRINGE_SEED 1-16: with seed 4 they cut the mean absolute
+/// cross-validated error from 0.238 to 0.163 %; with seed 16 they do not
+/// (0.188 % with them, 0.182 % without).
 #[test]
 fn the_static_terms_stay_only_where_they_predict_better() {
     let f = Family::grain();
     let pair = FREQ_PAIRS[2];
-    for (seed, kept) in [(4, true), (14, false)] {
+    for (seed, kept) in [(4, true), (16, false)] {
         let train = f.samples(&Draw::new(60, pair), seed);
         let fit = fit_relaxation(&train, &relax_opts(&f)).expect("relaxation fit");
         let fringe_calibration::product::ProductModel::Relaxation(m) = fit.calibration.model else {
@@ -618,11 +618,53 @@ fn the_static_terms_stay_only_where_they_predict_better() {
         assert!(
             fit.notes
                 .iter()
-                .any(|n| n.contains(note) && n.contains("RMSEP")),
+                .any(|n| n.contains(note) && n.contains("mean absolute")),
             "seed {seed}: {:?}",
             fit.notes
         );
     }
+}
+
+/// Regression (one left-out sample decided the static terms): the grain at
+/// 5/50 MHz, 60 samples, seed 14 of the zoo. Its driest sample has a
+/// conductivity of 8.0e-5 S/m, a seventh of the lowest of the others; in
+/// its fold the conductivity term was extrapolated to it, 5.7 % off with
+/// the static terms (1.3 % without), and that one squared error dropped the
+/// terms although they predicted the other 59 better. The model written
+/// did 0.428 % on 200 fresh samples (0.612 % 10 C beyond the calibrated
+/// temperatures). Now the conductivity term holds sigma below the
+/// samples' lowest (that sample: 3.5 % off), the terms are weighed by the
+/// mean absolute error and kept, and the model does 0.274 % (0.407 %).
+#[test]
+fn one_sample_at_the_end_of_the_conductivity_range_does_not_decide() {
+    let f = Family::grain();
+    let pair = FREQ_PAIRS[2];
+    let train = f.samples(&Draw::new(60, pair), 14);
+    let fit = fit_relaxation(&train, &relax_opts(&f)).expect("relaxation fit");
+    let fringe_calibration::product::ProductModel::Relaxation(m) = fit.calibration.model else {
+        panic!("not a relaxation model");
+    };
+    assert!(m.uses_static(), "{:?}", fit.notes);
+    // The hold lies below every calibration sample's sigma.
+    let lowest = train
+        .iter()
+        .filter_map(|s| {
+            fit.predict(&s.channels, s.temperature_c, s.bulk_density_kg_m3, 0.95)
+                .ok()?
+                .estimate
+                .inversion
+                .map(|i| f64::from(i.params.sigma_s_m))
+        })
+        .fold(f64::INFINITY, f64::min);
+    assert!(
+        m.sigma_hold.min > 0.0 && f64::from(m.sigma_hold.min) < lowest,
+        "{:?} {lowest}",
+        m.sigma_hold
+    );
+    let val = f.samples(&Draw::new(200, pair), 1014);
+    let (e, _) = validate(&fit, &val);
+    assert_eq!(e.len(), 200);
+    assert!(sep(&e) < 0.35, "validation SEP {:.3}", sep(&e));
 }
 
 /// Regression (the joint law fit outside the inversion's bounds): the law

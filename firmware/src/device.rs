@@ -136,6 +136,11 @@ pub struct DeviceConfig {
     /// one as firmware before them did, a bad calibration (for tests of a
     /// host meeting older firmware).
     pub static_terms: bool,
+    /// Take a relaxation calibration with the conductivity hold (layout 3)
+    /// and announce [`Capabilities::SIGMA_HOLD`]; off, the device refuses
+    /// one as firmware before it did (as without `static_terms`, which
+    /// also refuses layout 3).
+    pub sigma_hold: bool,
 }
 
 impl DeviceConfig {
@@ -152,6 +157,7 @@ impl DeviceConfig {
             simulated: false,
             density_input: true,
             static_terms: true,
+            sigma_hold: true,
         }
     }
 
@@ -432,10 +438,13 @@ fn check_cell(c: &CellCal, freqs: &[f32; N_FREQ]) -> Result<(), Refusal> {
     Ok(())
 }
 
-/// Whether a calibration is a relaxation model with the static terms
-/// (layout 2).
-fn uses_static_terms(c: &ProductCalibration<f32>) -> bool {
-    matches!(c.model, cal_product::ProductModel::Relaxation(m) if m.uses_static())
+/// The parameter layout of a relaxation calibration (1 plain, 2 with the
+/// static terms, 3 with the conductivity hold); 0 for other models.
+fn relaxation_layout(c: &ProductCalibration<f32>) -> u8 {
+    match c.model {
+        cal_product::ProductModel::Relaxation(_) => c.model.to_params().0[0] as u8,
+        _ => 0,
+    }
 }
 
 fn check_product(c: &ProductCal) -> Result<ProductCalibration<f32>, Refusal> {
@@ -1072,9 +1081,12 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             Request::WriteProductCal { slot, cal } => {
                 in_slot(slot)?;
                 let parsed = check_product(&cal)?;
-                if !self.cfg.static_terms && uses_static_terms(&parsed) {
-                    // As firmware before the static terms: layout 2 is not
-                    // a relaxation layout it knows.
+                let layout = relaxation_layout(&parsed);
+                if (!self.cfg.static_terms && layout >= 2) || (!self.cfg.sigma_hold && layout >= 3)
+                {
+                    // As firmware before the static terms (or the
+                    // conductivity hold): a relaxation layout it does not
+                    // know.
                     return Err((
                         ErrorCode::BadCalibration,
                         "product params rejected by model",
@@ -1298,6 +1310,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         }
         if self.cfg.static_terms {
             caps |= Capabilities::STATIC_TERMS;
+        }
+        if self.cfg.static_terms && self.cfg.sigma_hold {
+            caps |= Capabilities::SIGMA_HOLD;
         }
         if self.diag != Diagnostics::default() {
             caps |= Capabilities::DIAGNOSTICS;

@@ -380,6 +380,7 @@ pub fn exact_calibration(product: &SynthProduct<f32>, name: &str) -> ProductCal 
         c_sigma: 0.0,
         c_static: [0.0; 2],
         static_hold: fringe_calibration::product::no_static_hold(),
+        sigma_hold: fringe_calibration::product::no_sigma_hold(),
     });
     let (params, n) = model.to_params();
     let r = |min, max| Range { min, max };

@@ -1,18 +1,22 @@
-//! The relaxation model's static terms (parameter layout 2): a device
-//! announces that it takes them (`STATIC_TERMS`) and does; one configured as
-//! firmware before them refuses such a calibration as a bad one, changing
-//! nothing, and still takes layout 1. The calibration is the simulator's
-//! exact one for the synthetic grain with two static-term coefficients
-//! added (values made up for the test).
+//! The relaxation model's static terms (parameter layout 2) and
+//! conductivity hold (layout 3): a device announces that it takes them
+//! (`STATIC_TERMS`, `SIGMA_HOLD`) and does; one configured as firmware
+//! before them refuses such a calibration as a bad one, changing nothing,
+//! and still takes the layouts it knew. The calibration is the simulator's
+//! exact one for the synthetic grain with two static-term coefficients and
+//! a hold added (values made up for the test).
 
 mod common;
 
 use common::*;
-use fringe_calibration::product::{LAYOUT_VERSION_STATIC, RELAXATION_LEN, RELAXATION_STATIC_LEN};
+use fringe_calibration::product::{
+    LAYOUT_VERSION_SIGMA_HOLD, LAYOUT_VERSION_STATIC, RELAXATION_LEN, RELAXATION_SIGMA_HOLD_LEN,
+    RELAXATION_STATIC_LEN,
+};
 use fringe_calibration::synth::SynthProduct;
 use fringe_firmware::protocol::*;
 use fringe_firmware::sim::exact_calibration;
-use fringe_firmware::Scenario;
+use fringe_firmware::{DeviceConfig, Scenario};
 
 /// Layout 1 (the simulator's exact calibration) and the same as layout 2.
 fn calibrations() -> (ProductCal, ProductCal) {
@@ -26,6 +30,67 @@ fn calibrations() -> (ProductCal, ProductCal) {
     }
     assert_eq!(with.params.len(), RELAXATION_STATIC_LEN);
     (plain, with)
+}
+
+/// The layout-2 calibration with a conductivity hold (layout 3).
+fn held() -> ProductCal {
+    let (_, mut c) = calibrations();
+    c.params[0] = LAYOUT_VERSION_SIGMA_HOLD;
+    // sigma_min, sigma_max, S/m.
+    for v in [1e-5, 1e30] {
+        c.params.push(v).expect("room for layout 3");
+    }
+    assert_eq!(c.params.len(), RELAXATION_SIGMA_HOLD_LEN);
+    c
+}
+
+/// Writes `cal` to slot 0 of a device configured by `setup`: whether it
+/// was taken, and the device's capabilities.
+fn write_to(
+    seed: u64,
+    setup: impl FnOnce(&mut DeviceConfig),
+    cal: ProductCal,
+) -> (bool, Capabilities) {
+    let mut cfg = config();
+    setup(&mut cfg);
+    let mut b = Bench::with_config(seed, Scenario::default(), Flash::new(), cfg);
+    let caps = identity(&mut b).capabilities;
+    let f = b.ask(Request::WriteProductCal {
+        slot: 0,
+        cal: cal.clone(),
+    });
+    let taken = match Bench::error_code(&f) {
+        None => true,
+        Some(ErrorCode::BadCalibration) => false,
+        other => panic!("{other:?}"),
+    };
+    match b.ok(Request::ReadProductCal { slot: 0 }) {
+        Response::ProductCal { cal: got, .. } => {
+            assert_eq!(got, taken.then_some(cal), "written only if taken")
+        }
+        other => panic!("{other:?}"),
+    }
+    (taken, caps)
+}
+
+#[test]
+fn the_conductivity_hold_is_taken_only_by_firmware_that_announces_it() {
+    big_stack(|| {
+        let (plain, with) = calibrations();
+        let (taken, caps) = write_to(53, |_| {}, held());
+        assert!(taken && caps.contains(Capabilities::SIGMA_HOLD | Capabilities::STATIC_TERMS));
+        // Firmware with the static terms but before the hold.
+        let older = |c: &mut DeviceConfig| c.sigma_hold = false;
+        let (taken, caps) = write_to(54, older, held());
+        assert!(!taken && !caps.contains(Capabilities::SIGMA_HOLD));
+        assert!(caps.contains(Capabilities::STATIC_TERMS));
+        assert!(write_to(55, older, with).0);
+        // Firmware before the static terms knows neither.
+        let oldest = |c: &mut DeviceConfig| c.static_terms = false;
+        let (taken, caps) = write_to(56, oldest, held());
+        assert!(!taken && !caps.contains(Capabilities::SIGMA_HOLD));
+        assert!(write_to(57, oldest, plain).0);
+    });
 }
 
 fn identity(b: &mut Bench) -> Identity {

@@ -374,6 +374,12 @@ bitflags! {
         /// without it takes layout 1 only and refuses layout 2 as a bad
         /// calibration; the host refuses to push one to it.
         const STATIC_TERMS = 1 << 8;
+        /// Takes a relaxation calibration whose conductivity term holds
+        /// sigma to a range (the relaxation model's parameter layout 3, 23
+        /// values; no new protocol version). Firmware without it refuses
+        /// layout 3 as a bad calibration; the host refuses to push one to
+        /// it.
+        const SIGMA_HOLD = 1 << 9;
     }
 }
 

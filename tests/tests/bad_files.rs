@@ -735,7 +735,7 @@ fn other_kinds(rng: &mut StdRng) -> Vec<Kind> {
             ),
             case(
                 "inf in the parameters",
-                Setup::Bytes(set_line(good, "params = [1.0", "params = [inf, 1.0]")),
+                Setup::Bytes(set_line(good, "params = [", "params = [inf, 1.0]")),
                 BAD_FILE,
                 &[path, "`params`"],
             ),

@@ -168,6 +168,7 @@ fn capture_push_list_select_and_history() {
     let sim = Sim::start(&ScenarioSpec {
         density_input: false,
         static_terms: false,
+        sigma_hold: false,
         ..ScenarioSpec::clean("HGM-L2-0202", seed(22))
     });
     let db = sim.path("bench.db");
@@ -384,10 +385,10 @@ fn capture_push_list_select_and_history() {
     );
     assert_fails(&o, 1, &["HGM-L2-0202 has no density input", "nothing sent"]);
 
-    // A relaxation calibration with the static terms (layout 2) is refused
-    // by firmware that predates them: 60 samples of the zoo's grain (from
-    // published physics, invented constants), where the fit keeps the
-    // terms.
+    // A relaxation calibration with the static terms (layout 2, here 3 with
+    // the conductivity hold) is refused by firmware that predates them: 60
+    // samples of the zoo's grain (from published physics, invented
+    // constants), where the fit keeps the terms.
     let grain = sim.path("grain.csv");
     write_zoo_table(&grain, 60, 1);
     let grain_cal = sim.path("grain.toml");
@@ -498,6 +499,82 @@ fn capture_push_list_select_and_history() {
 /// calibrated device announces the empty-line baseline alarm while it
 /// streams, and it is the alarm `fringe drift` finds afterwards in the same
 /// database.
+/// A relaxation calibration whose conductivity term holds sigma (layout
+/// 3, what `cal fit --model relaxation` writes) is refused by firmware
+/// that takes the static terms but predates the hold; the device is left
+/// as it was.
+#[test]
+fn a_push_of_the_conductivity_hold_needs_firmware_that_takes_it() {
+    let sim = Sim::start(&ScenarioSpec {
+        sigma_hold: false,
+        ..ScenarioSpec::clean("HGM-L2-0203", seed(23))
+    });
+    let db = sim.path("bench.db");
+    let key = key_file(&sim);
+    let table = sim.path("grain.csv");
+    write_zoo_table(&table, 60, 1);
+    let cal = sim.path("grain.toml");
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "fit",
+            "--samples",
+            table.to_str().unwrap(),
+            "--model",
+            "relaxation",
+            "--bulk-density-kg-m3",
+            "760",
+            "--particle-density-kg-m3",
+            "1400",
+            "--out",
+            cal.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let before = run(
+        &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
+        LIMIT,
+    );
+    assert_eq!(before.code, 0, "{}", before.stderr);
+    let o = run(
+        &mut cal_write(
+            &sim,
+            &key,
+            &db,
+            "push",
+            &[
+                "--cal",
+                cal.to_str().unwrap(),
+                "--reason",
+                "test calibration",
+                "--activate",
+                "true",
+                "--yes",
+                "--force",
+            ],
+        ),
+        LIMIT,
+    );
+    assert_fails(
+        &o,
+        1,
+        &[
+            "conductivity term holds sigma",
+            "no sigma_hold capability",
+            "nothing written",
+        ],
+    );
+    let after = run(
+        &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
+        LIMIT,
+    );
+    assert_eq!(
+        after.stdout, before.stdout,
+        "the device's slots as they were"
+    );
+}
+
 #[test]
 fn monitor_raises_the_drift_alarms_of_fringe_drift_live() {
     let mut spec = ScenarioSpec::clean("HGM-L2-0203", seed(23));

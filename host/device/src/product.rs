@@ -58,10 +58,19 @@ pub enum ProductError {
         /// The device serial.
         serial: String,
     },
-    /// The calibration is a relaxation model with the static terms, which
-    /// the device's firmware predates.
-    #[error("{name} is a relaxation calibration with the static terms (parameter layout 2), but {serial}'s firmware does not announce them (no static_terms capability) and would refuse it. Update the device's firmware, or fit this device's calibration with --model multivariate or single; nothing written")]
+    /// The calibration is a relaxation model with the static terms or the
+    /// conductivity hold, which the device's firmware predates.
+    #[error("{name} is a relaxation calibration with the static terms or the conductivity hold (parameter layout 2 or 3), but {serial}'s firmware does not announce them (no static_terms capability) and would refuse it. Update the device's firmware, or fit this device's calibration with --model multivariate or single; nothing written")]
     NoStaticTerms {
+        /// Product name.
+        name: String,
+        /// The device serial.
+        serial: String,
+    },
+    /// The calibration is a relaxation model with the conductivity hold,
+    /// which the device's firmware predates.
+    #[error("{name} is a relaxation calibration whose conductivity term holds sigma to the calibrated range (parameter layout 3), but {serial}'s firmware does not announce it (no sigma_hold capability) and would refuse it. Update the device's firmware, or fit this device's calibration with --model multivariate or single; nothing written")]
+    NoSigmaHold {
         /// Product name.
         name: String,
         /// The device serial.
@@ -132,12 +141,21 @@ pub fn takes_density(wire: &ProductCal) -> bool {
     })
 }
 
-/// Whether a calibration is a relaxation model with the static terms
-/// (parameter layout 2), which a device takes only if it announces
-/// [`Capabilities::STATIC_TERMS`].
+/// Whether a calibration is a relaxation model in a parameter layout after
+/// the first (layout 2, the static terms, or layout 3), which a device
+/// takes only if it announces [`Capabilities::STATIC_TERMS`].
 pub fn takes_static_terms(wire: &ProductCal) -> bool {
+    use fringe_calibration::product::{RELAXATION_SIGMA_HOLD_LEN, RELAXATION_STATIC_LEN};
     wire.model == fringe_protocol::ModelKind::Relaxation
-        && wire.params.len() == fringe_calibration::product::RELAXATION_STATIC_LEN
+        && [RELAXATION_STATIC_LEN, RELAXATION_SIGMA_HOLD_LEN].contains(&wire.params.len())
+}
+
+/// Whether a calibration is a relaxation model whose conductivity term
+/// holds sigma to a range (parameter layout 3), which a device takes only
+/// if it announces [`Capabilities::SIGMA_HOLD`].
+pub fn takes_sigma_hold(wire: &ProductCal) -> bool {
+    wire.model == fringe_protocol::ModelKind::Relaxation
+        && wire.params.len() == fringe_calibration::product::RELAXATION_SIGMA_HOLD_LEN
 }
 
 /// The product slots of the device and the active one.
@@ -229,6 +247,16 @@ pub fn push(
             .is_some_and(|id| id.capabilities.contains(Capabilities::STATIC_TERMS))
     {
         return Err(ProductError::NoStaticTerms {
+            name: file.name.clone(),
+            serial,
+        });
+    }
+    if takes_sigma_hold(wire)
+        && !link
+            .identity()
+            .is_some_and(|id| id.capabilities.contains(Capabilities::SIGMA_HOLD))
+    {
+        return Err(ProductError::NoSigmaHold {
             name: file.name.clone(),
             serial,
         });

@@ -96,6 +96,11 @@ pub struct DeviceSection {
     /// terms (the default); `false` refuses one as firmware before them did.
     #[serde(default = "yes")]
     pub static_terms: bool,
+    /// Whether the device takes a relaxation calibration with the
+    /// conductivity hold (the default); `false` refuses one as firmware
+    /// before it did (so does `static_terms = false`).
+    #[serde(default = "yes")]
+    pub sigma_hold: bool,
 }
 
 fn yes() -> bool {

@@ -19,6 +19,7 @@ fn capability_names(c: Capabilities) -> Vec<&'static str> {
         (Capabilities::MODBUS_RTU, "modbus_rtu"),
         (Capabilities::DENSITY_INPUT, "density_input"),
         (Capabilities::STATIC_TERMS, "static_terms"),
+        (Capabilities::SIGMA_HOLD, "sigma_hold"),
     ]
     .into_iter()
     .filter(|(f, _)| c.contains(*f))
