@@ -11,7 +11,7 @@
 //!   with water's permittivity at the product temperature (Malmberg and
 //!   Maryott 1956); then
 //!   `moisture = p0 + p1 m + p2 m^2 + p3 m^3 + c_t (t - t_ref) + c_s ln(sigma / sigma_ref)`,
-//!   and, in layout 2, `+ q1 h + q2 h^2` with h the mixing-model moisture
+//!   and, in layouts 2 and 3, `+ q1 h + q2 h^2` with h the mixing-model moisture
 //!   of the static permittivity eps_hf + d_eps held to the range
 //!   `[h_min, h_max]` the calibration samples span (widened by a tenth):
 //!   where salt or heat move the relaxation above the band, eps_hf alone
@@ -51,8 +51,8 @@
 //!  [7] c_t (% per K)
 //!
 //! Relaxation, 17 values (layout 1), 21 (layout 2, with the static terms)
-//! or 23 (layout 3, with the conductivity hold; the static terms 0 where
-//! the model has none):
+//! or 23 (layout 3, with the conductivity hold; where the model has no
+//! static terms, q1 = q2 = 0 and the hold of h 0-100):
 //!  [0] layout version (1-3)    [1] alpha (0 <= alpha < 1)
 //!  [2] fr_ref_hz (> 0)         [3] sigma_ref_s_m (> 0)
 //!  [4] fr_exponent p           [5] fr_temp_coeff_per_c
@@ -329,7 +329,7 @@ impl<T: Real> RelaxationModel<T> {
     /// Number of features (and coefficients).
     pub const N_FEATURES: usize = 8;
 
-    /// Whether the model uses the static terms (layout 2).
+    /// Whether the model uses the static terms (layout 2, or 3 with them).
     pub fn uses_static(&self) -> bool {
         self.c_static[0] != T::zero() || self.c_static[1] != T::zero()
     }
@@ -355,6 +355,12 @@ impl<T: Real> RelaxationModel<T> {
         }
     }
 
+    /// Whether the conductivity term holds sigma (layout 3): a lower end
+    /// above 0 ([`no_sigma_hold`] has 0).
+    pub fn has_sigma_hold(&self) -> bool {
+        self.sigma_hold.min > T::zero()
+    }
+
     /// sigma held to the model's range, and whether it lay inside it.
     pub fn held_sigma(&self, sigma_s_m: T) -> (T, bool) {
         let r = self.sigma_hold;
@@ -373,7 +379,8 @@ impl<T: Real> RelaxationModel<T> {
             .moisture_wb_pct(eps_hf, static_permittivity_mm(t_c))
     }
 
-    /// Features `[1, m, m^2, m^3, t - t_ref, ln(sigma/sigma_ref), h, h^2]`.
+    /// Features `[1, m, m^2, m^3, t - t_ref, ln(sigma/sigma_ref), h, h^2]`
+    /// (sigma held, [`RelaxationModel::held_sigma`]).
     pub fn features(&self, p: &MaterialParams<T>, t_c: T) -> [T; 8] {
         let m = self.mixing_moisture_pct(p.eps_hf, t_c);
         let (h, _) = self.held_static_pct(p, t_c);
@@ -712,7 +719,9 @@ impl<T: Real> ProductModel<T> {
                 for (i, x) in v.iter().enumerate() {
                     out[1 + i] = f(*x);
                 }
-                if m.sigma_hold != no_sigma_hold() {
+                // (A hold is a lower end above 0: the upper end of no hold
+                // is not the same number in f32 and f64.)
+                if m.has_sigma_hold() {
                     out[0] = LAYOUT_VERSION_SIGMA_HOLD;
                     out[21] = f(m.sigma_hold.min);
                     out[22] = f(m.sigma_hold.max);
@@ -1178,6 +1187,25 @@ pub(crate) mod tests {
                 g[1]
             );
             assert_eq!(g[1] == 0.0, !inside);
+        }
+    }
+
+    /// A layout-1 or layout-2 calibration as the device parses it (f32),
+    /// cast back to f64 (what `cal adjust` does before rescaling), keeps
+    /// its layout: the f32 sentinel of no hold is not taken for a hold.
+    #[test]
+    fn layouts_1_and_2_keep_their_layout_through_f32_and_back() {
+        for (m, n) in [
+            (relaxation_model(), RELAXATION_LEN),
+            (static_model(), RELAXATION_STATIC_LEN),
+        ] {
+            let (p, k) = ProductModel::Relaxation(m).to_params();
+            assert_eq!(k, n);
+            let dev = ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..k]).unwrap();
+            let back = dev.cast::<f64>().rescaled(0.1, 1.01);
+            let (q, k2) = back.to_params();
+            assert_eq!((k2, q[0]), (n, p[0]));
+            assert!(ProductModel::<f64>::from_params(ModelKind::Relaxation, &q[..k2]).is_ok());
         }
     }
 

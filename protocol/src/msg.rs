@@ -371,8 +371,8 @@ bitflags! {
         /// Takes a relaxation calibration with the static terms (the
         /// relaxation model's parameter layout 2, 21 values; a message
         /// that existed before, so no new protocol version). Firmware
-        /// without it takes layout 1 only and refuses layout 2 as a bad
-        /// calibration; the host refuses to push one to it.
+        /// without it takes layout 1 only and refuses layouts 2 and 3 as a
+        /// bad calibration; the host refuses to push one to it.
         const STATIC_TERMS = 1 << 8;
         /// Takes a relaxation calibration whose conductivity term holds
         /// sigma to a range (the relaxation model's parameter layout 3, 23

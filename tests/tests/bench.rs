@@ -495,10 +495,6 @@ fn capture_push_list_select_and_history() {
     assert_eq!(h[3]["reason"], "product change to barley", "{h:?}");
 }
 
-/// Build-up on the window during an empty spell: `fringe monitor` on the
-/// calibrated device announces the empty-line baseline alarm while it
-/// streams, and it is the alarm `fringe drift` finds afterwards in the same
-/// database.
 /// A relaxation calibration whose conductivity term holds sigma (layout
 /// 3, what `cal fit --model relaxation` writes) is refused by firmware
 /// that takes the static terms but predates the hold; the device is left
@@ -507,7 +503,7 @@ fn capture_push_list_select_and_history() {
 fn a_push_of_the_conductivity_hold_needs_firmware_that_takes_it() {
     let sim = Sim::start(&ScenarioSpec {
         sigma_hold: false,
-        ..ScenarioSpec::clean("HGM-L2-0203", seed(23))
+        ..ScenarioSpec::clean("HGM-L2-0206", seed(26))
     });
     let db = sim.path("bench.db");
     let key = key_file(&sim);
@@ -575,6 +571,10 @@ fn a_push_of_the_conductivity_hold_needs_firmware_that_takes_it() {
     );
 }
 
+/// Build-up on the window during an empty spell: `fringe monitor` on the
+/// calibrated device announces the empty-line baseline alarm while it
+/// streams, and it is the alarm `fringe drift` finds afterwards in the same
+/// database.
 #[test]
 fn monitor_raises_the_drift_alarms_of_fringe_drift_live() {
     let mut spec = ScenarioSpec::clean("HGM-L2-0203", seed(23));

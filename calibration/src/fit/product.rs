@@ -1548,7 +1548,8 @@ fn relax_model(
 /// coefficient fitted on wetter samples extrapolated to its ln sigma
 /// moved the moisture by percents (the grain at 5/50 MHz, zoo seed 14: a
 /// left-out sample at 8.0e-5 S/m, a seventh of the lowest of the others,
-/// 5.7 % off with the static terms, 3.5 % held).
+/// 5.7 % off with the static terms, 3.5 % held). None where it would lie
+/// at or below the inversion's lower bound of sigma (it would never act).
 fn sigma_hold_of(params: &[MaterialParams<f64>]) -> Range<f64> {
     let (lo, hi) = params
         .iter()
@@ -1561,7 +1562,13 @@ fn sigma_hold_of(params: &[MaterialParams<f64>]) -> Range<f64> {
         return no_sigma_hold();
     }
     let w = 0.1 * (hi - lo);
-    Range::new((lo - w).exp(), no_sigma_hold::<f64>().max)
+    let min = (lo - w).exp();
+    // At or below the inversion's own lower bound the hold never acts:
+    // the calibration keeps layout 1 or 2, which older firmware takes.
+    if min <= crate::invert::Bounds::<f64>::default().sigma_s_m.0 {
+        return no_sigma_hold();
+    }
+    Range::new(min, no_sigma_hold::<f64>().max)
 }
 
 /// The range the static terms' moisture is held to: the one the samples
@@ -2291,7 +2298,16 @@ fn finish_relaxation(
             };
             // (Without the whole fit repeated per fold, the static terms'
             // hold is the one of all samples, the left-out one included:
-            // `cal fit` repeats the whole fit.)
+            // `cal fit` repeats the whole fit. The conductivity hold is the
+            // fold's own: it lies below every training sample, so their
+            // features are the same, and the left-out sample meets it as a
+            // new reading would.)
+            let fold_params: Vec<MaterialParams<f64>> =
+                train.iter().map(|i| core.params[*i]).collect();
+            let hold = Holds {
+                sigma_s_m: sigma_hold_of(&fold_params),
+                ..hold
+            };
             if opts.static_terms {
                 if let Some(p) = plain_relax_model(&core, &f.features, &y, train, opts.degree, hold)
                 {
