@@ -389,27 +389,7 @@ fn capture_push_list_select_and_history() {
     // the conductivity hold) is refused by firmware that predates them: 60
     // samples of the zoo's grain (from published physics, invented
     // constants), where the fit keeps the terms.
-    let grain = sim.path("grain.csv");
-    write_zoo_table(&grain, 60, 1);
-    let grain_cal = sim.path("grain.toml");
-    let o = run(
-        &mut fringe(&[
-            "cal",
-            "fit",
-            "--samples",
-            grain.to_str().unwrap(),
-            "--model",
-            "relaxation",
-            "--bulk-density-kg-m3",
-            "760",
-            "--particle-density-kg-m3",
-            "1400",
-            "--out",
-            grain_cal.to_str().unwrap(),
-        ]),
-        LIMIT,
-    );
-    assert_eq!(o.code, 0, "{}", o.stderr);
+    let (grain_cal, o) = fit_zoo_grain(&sim);
     assert!(
         o.stdout.contains("with the static terms") || o.stderr.contains("with the static terms"),
         "the case needs the terms kept: {}{}",
@@ -507,27 +487,7 @@ fn a_push_of_the_conductivity_hold_needs_firmware_that_takes_it() {
     });
     let db = sim.path("bench.db");
     let key = key_file(&sim);
-    let table = sim.path("grain.csv");
-    write_zoo_table(&table, 60, 1);
-    let cal = sim.path("grain.toml");
-    let o = run(
-        &mut fringe(&[
-            "cal",
-            "fit",
-            "--samples",
-            table.to_str().unwrap(),
-            "--model",
-            "relaxation",
-            "--bulk-density-kg-m3",
-            "760",
-            "--particle-density-kg-m3",
-            "1400",
-            "--out",
-            cal.to_str().unwrap(),
-        ]),
-        LIMIT,
-    );
-    assert_eq!(o.code, 0, "{}", o.stderr);
+    let (cal, _) = fit_zoo_grain(&sim);
     let before = run(
         &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
         LIMIT,
@@ -645,6 +605,34 @@ fn monitor_raises_the_drift_alarms_of_fringe_drift_live() {
 /// `n` samples of the zoo's grain at the device's 1 and 20 MHz (synthetic,
 /// `fringe_calibration::fit::zoo`) as a reference table, written by the
 /// host's own table writer.
+/// `fringe cal fit --model relaxation` of 60 samples of the zoo's grain
+/// (seed 1) into the simulator's folder: the calibration file and the
+/// command's outcome (it succeeded).
+fn fit_zoo_grain(sim: &Sim) -> (std::path::PathBuf, Outcome) {
+    let table = sim.path("grain.csv");
+    write_zoo_table(&table, 60, 1);
+    let cal = sim.path("grain.toml");
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "fit",
+            "--samples",
+            table.to_str().unwrap(),
+            "--model",
+            "relaxation",
+            "--bulk-density-kg-m3",
+            "760",
+            "--particle-density-kg-m3",
+            "1400",
+            "--out",
+            cal.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    (cal, o)
+}
+
 fn write_zoo_table(path: &Path, n: usize, seed: u64) {
     use fringe_calibration::fit::zoo::{Draw, Family};
     use fringe_quality::samples::{write_samples, RefSample};
