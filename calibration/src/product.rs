@@ -63,8 +63,8 @@
 //!  [11] p0 [12] p1 [13] p2 [14] p3  (% per m^k)
 //!  [15] c_t (% per K)          [16] c_s (% per unit ln(sigma/sigma_ref))
 //!  [17] q1 [18] q2 (% per h^k)  [19] h_min [20] h_max (%, h_min <= h_max)
-//!  [21] sigma_min [22] sigma_max (S/m, 0 < sigma_min <= sigma_max; 1e30
-//!  for no upper end)
+//!  [21] sigma_min [22] sigma_max (S/m, 0 < sigma_min <= sigma_max; the
+//!  fit writes the inversion's upper bound, 20, for no upper end)
 //!
 //! Multivariate without a density input, 27 values:
 //!  [0] layout version (1)      [1] t_ref_c

@@ -1565,10 +1565,13 @@ fn sigma_hold_of(params: &[MaterialParams<f64>]) -> Range<f64> {
     let min = (lo - w).exp();
     // At or below the inversion's own lower bound the hold never acts:
     // the calibration keeps layout 1 or 2, which older firmware takes.
-    if min <= crate::invert::Bounds::<f64>::default().sigma_s_m.0 {
+    let (lowest, highest) = crate::invert::Bounds::<f64>::default().sigma_s_m;
+    if min <= lowest {
         return no_sigma_hold();
     }
-    Range::new(min, no_sigma_hold::<f64>().max)
+    // No upper end: the inversion's own upper bound, which a reading
+    // never exceeds (and which reads plainly in the calibration file).
+    Range::new(min, highest)
 }
 
 /// The range the static terms' moisture is held to: the one the samples
