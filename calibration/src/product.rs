@@ -153,6 +153,18 @@ impl<T: Real> Range<T> {
     pub fn contains(&self, x: T) -> bool {
         x >= self.min && x <= self.max
     }
+    /// `x` held to the range (NaN to its lower end), and whether it lay
+    /// inside it.
+    pub fn hold(&self, x: T) -> (T, bool) {
+        if self.contains(x) {
+            (x, true)
+        } else if x > self.max {
+            (self.max, false)
+        } else {
+            // Below the range, or NaN.
+            (self.min, false)
+        }
+    }
     fn valid(&self) -> bool {
         !(self.min.to_f64().is_nan() || self.max.to_f64().is_nan()) && self.min <= self.max
     }
@@ -343,16 +355,7 @@ impl<T: Real> RelaxationModel<T> {
     /// [`RelaxationModel::static_moisture_pct`] held to the model's range,
     /// and whether it lay inside it.
     pub fn held_static_pct(&self, p: &MaterialParams<T>, t_c: T) -> (T, bool) {
-        let h = self.static_moisture_pct(p, t_c);
-        let r = self.static_hold;
-        if r.contains(h) {
-            (h, true)
-        } else if h > r.max {
-            (r.max, false)
-        } else {
-            // Below the range, or NaN.
-            (r.min, false)
-        }
+        self.static_hold.hold(self.static_moisture_pct(p, t_c))
     }
 
     /// Whether the conductivity term holds sigma (layout 3): a lower end
@@ -363,14 +366,7 @@ impl<T: Real> RelaxationModel<T> {
 
     /// sigma held to the model's range, and whether it lay inside it.
     pub fn held_sigma(&self, sigma_s_m: T) -> (T, bool) {
-        let r = self.sigma_hold;
-        if r.contains(sigma_s_m) {
-            (sigma_s_m, true)
-        } else if sigma_s_m > r.max {
-            (r.max, false)
-        } else {
-            (r.min, false)
-        }
+        self.sigma_hold.hold(sigma_s_m)
     }
 
     /// Mixing-model moisture m (% wet basis) from eps_hf at `t_c`.

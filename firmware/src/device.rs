@@ -438,11 +438,12 @@ fn check_cell(c: &CellCal, freqs: &[f32; N_FREQ]) -> Result<(), Refusal> {
     Ok(())
 }
 
-/// The parameter layout of a relaxation calibration (1 plain, 2 with the
-/// static terms, 3 with the conductivity hold); 0 for other models.
-fn relaxation_layout(c: &ProductCalibration<f32>) -> u8 {
-    match c.model {
-        cal_product::ProductModel::Relaxation(_) => c.model.to_params().0[0] as u8,
+/// The parameter layout of a relaxation calibration as written (1 plain, 2
+/// with the static terms, 3 with the conductivity hold; checked by
+/// [`check_product`]); 0 for other models.
+fn relaxation_layout(c: &ProductCal) -> u8 {
+    match (c.model, c.params.first()) {
+        (ModelKind::Relaxation, Some(v)) => *v as u8,
         _ => 0,
     }
 }
@@ -1081,7 +1082,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             Request::WriteProductCal { slot, cal } => {
                 in_slot(slot)?;
                 let parsed = check_product(&cal)?;
-                let layout = relaxation_layout(&parsed);
+                let layout = relaxation_layout(&cal);
                 if (!self.cfg.static_terms && layout >= 2) || (!self.cfg.sigma_hold && layout >= 3)
                 {
                     // As firmware before the static terms (or the

@@ -69,7 +69,7 @@ pub enum ProductError {
     },
     /// The calibration is a relaxation model with the conductivity hold,
     /// which the device's firmware predates.
-    #[error("{name} is a relaxation calibration whose conductivity term holds sigma to the calibrated range (parameter layout 3), but {serial}'s firmware does not announce it (no sigma_hold capability) and would refuse it. Update the device's firmware, or fit this device's calibration with --model multivariate or single; nothing written")]
+    #[error("{name} is a relaxation calibration whose conductivity term holds sigma at the calibration samples' lowest (parameter layout 3), but {serial}'s firmware does not announce it (no sigma_hold capability) and would refuse it. Update the device's firmware, or fit this device's calibration with --model multivariate or single; nothing written")]
     NoSigmaHold {
         /// Product name.
         name: String,
@@ -231,31 +231,26 @@ pub fn push(
             });
         }
     }
-    if takes_density(wire)
-        && !link
+    // What the device's firmware announces; a calibration that needs more
+    // is refused here, before anything is sent.
+    let lacks = |c: Capabilities| {
+        !link
             .identity()
-            .is_some_and(|id| id.capabilities.contains(Capabilities::DENSITY_INPUT))
-    {
+            .is_some_and(|id| id.capabilities.contains(c))
+    };
+    if takes_density(wire) && lacks(Capabilities::DENSITY_INPUT) {
         return Err(ProductError::NoDensityInput {
             name: file.name.clone(),
             serial,
         });
     }
-    if takes_static_terms(wire)
-        && !link
-            .identity()
-            .is_some_and(|id| id.capabilities.contains(Capabilities::STATIC_TERMS))
-    {
+    if takes_static_terms(wire) && lacks(Capabilities::STATIC_TERMS) {
         return Err(ProductError::NoStaticTerms {
             name: file.name.clone(),
             serial,
         });
     }
-    if takes_sigma_hold(wire)
-        && !link
-            .identity()
-            .is_some_and(|id| id.capabilities.contains(Capabilities::SIGMA_HOLD))
-    {
+    if takes_sigma_hold(wire) && lacks(Capabilities::SIGMA_HOLD) {
         return Err(ProductError::NoSigmaHold {
             name: file.name.clone(),
             serial,
