@@ -248,16 +248,34 @@ struct Data<'a> {
 
 type J4x3 = SMatrix<f64, 4, 3>;
 
+/// One sample's residuals and Jacobians at the current law and parameters
+/// (held columns zeroed) and the products of the reduced system:
+/// `jtj_p = jp' jp`, `w = jt' jp`, `g_p = jp' r`.
+struct Linearised {
+    r: Vector4<f64>,
+    jp: J4x3,
+    jt: Matrix4<f64>,
+    jtj_p: Matrix3<f64>,
+    w: J4x3,
+    g_p: Vector3<f64>,
+}
+
 impl Data<'_> {
-    /// Weighted residuals (model - measured)/sd of sample i and Jacobians.
-    fn sample(&self, i: usize, p: &[f64; 3], theta: &Theta) -> (Vector4<f64>, J4x3, Matrix4<f64>) {
+    /// Weighted residuals (model - measured)/sd of sample i and Jacobians
+    /// (`lc`: [`LawConst`] of `theta`, computed once per law by the caller).
+    fn sample(
+        &self,
+        i: usize,
+        p: &[f64; 3],
+        theta: &Theta,
+        lc: &LawConst,
+    ) -> (Vector4<f64>, J4x3, Matrix4<f64>) {
         let mut r = Vector4::zeros();
         let mut jp = J4x3::zeros();
         let mut jt = Matrix4::zeros();
         let dt = self.temps[i] - self.t_ref_c;
-        let lc = LawConst::new(theta);
         for (k, o) in self.obs[i].iter().enumerate() {
-            let (e, dp, dth) = model(&self.fc[i][k], p, theta, &lc, self.ln_sigma_ref, dt);
+            let (e, dp, dth) = model(&self.fc[i][k], p, theta, lc, self.ln_sigma_ref, dt);
             let w = 1.0 / o.sd;
             r[2 * k] = (e.re - o.eps.re) * w;
             r[2 * k + 1] = (e.im - o.eps.im) * w;
@@ -277,10 +295,11 @@ impl Data<'_> {
     /// held fixed (a start for the joint fit; at most 30 steps).
     fn refine_sample(&self, i: usize, p: &mut [f64; 3], theta: &Theta) {
         let mut lambda = 1e-3;
-        let (r0, _, _) = self.sample(i, p, theta);
+        let lc = LawConst::new(theta);
+        let (r0, _, _) = self.sample(i, p, theta, &lc);
         let mut cost = r0.norm_squared();
         for _ in 0..30 {
-            let (r, jp, _) = self.sample(i, p, theta);
+            let (r, jp, _) = self.sample(i, p, theta, &lc);
             let mut v: Matrix3<f64> = jp.transpose() * jp;
             for j in 0..3 {
                 v[(j, j)] *= 1.0 + lambda;
@@ -291,7 +310,7 @@ impl Data<'_> {
             };
             let mut trial = [p[0] + dp[0], p[1] + dp[1], p[2] + dp[2]];
             clamp_sample(&mut trial, &self.lo, &self.hi);
-            let (rt, _, _) = self.sample(i, &trial, theta);
+            let (rt, _, _) = self.sample(i, &trial, theta, &lc);
             let c = rt.norm_squared();
             if c.is_finite() && c < cost {
                 let done = cost - c <= 1e-10 * cost;
@@ -421,30 +440,42 @@ pub(crate) fn fit_law_budget(
     let mut damping = Damping::new(1e-3);
     let mut converged = false;
     let mut trial_ps = ps.clone();
-    let mut cache: Vec<(Vector4<f64>, J4x3, Matrix4<f64>)> = Vec::with_capacity(n);
+    // Each sample's linearisation at the current law and parameters, with
+    // the products the reduced system needs, and their sums: computed once
+    // per accepted step, not again for each damping tried.
+    let mut cache: Vec<Linearised> = Vec::with_capacity(n);
+    let mut vinv: Vec<Matrix3<f64>> = Vec::with_capacity(n);
+    let (mut u, mut g_t) = (Matrix4::zeros(), Vector4::zeros());
     let mut fresh = true;
     for _ in 0..max_iter {
         if fresh {
             cache.clear();
+            let lc = LawConst::new(&theta);
             for (i, p) in ps.iter().enumerate() {
-                let (r, mut jp, mut jt) = data.sample(i, p, &theta);
+                let (r, mut jp, mut jt) = data.sample(i, p, &theta, &lc);
                 hold_active(&mut jp, &r, p, &lo, &hi);
                 for (j, m) in mask.iter().enumerate() {
                     if !m {
                         jt.column_mut(j).fill(0.0);
                     }
                 }
-                cache.push((r, jp, jt));
+                cache.push(Linearised {
+                    jtj_p: jp.transpose() * jp,
+                    w: jt.transpose() * jp,
+                    g_p: jp.transpose() * r,
+                    r,
+                    jp,
+                    jt,
+                });
+            }
+            (u, g_t) = (Matrix4::zeros(), Vector4::zeros());
+            for c in &cache {
+                u += c.jt.transpose() * c.jt;
+                g_t += c.jt.transpose() * c.r;
             }
             fresh = false;
         }
         // Reduced system S dtheta = rhs.
-        let mut u = Matrix4::zeros();
-        let mut g_t = Vector4::zeros();
-        for (r, _, jt) in &cache {
-            u += jt.transpose() * jt;
-            g_t += jt.transpose() * r;
-        }
         let mut s = u;
         for j in 0..4 {
             s[(j, j)] += damping.lambda * u[(j, j)].max(1e-12);
@@ -453,10 +484,10 @@ pub(crate) fn fit_law_budget(
             }
         }
         let mut rhs = -g_t;
-        let mut vinv = Vec::with_capacity(n);
+        vinv.clear();
         let mut ok = true;
-        for (r, jp, jt) in &cache {
-            let mut v: Matrix3<f64> = jp.transpose() * jp;
+        for c in &cache {
+            let mut v = c.jtj_p;
             for j in 0..3 {
                 v[(j, j)] += damping.lambda * v[(j, j)].max(1e-12) + 1e-12;
             }
@@ -464,11 +495,9 @@ pub(crate) fn fit_law_budget(
                 ok = false;
                 break;
             };
-            let w = jt.transpose() * jp; // 4x3
-            let g_p: Vector3<f64> = jp.transpose() * r;
-            s -= w * vi * w.transpose();
-            rhs += w * (vi * g_p);
-            vinv.push((vi, w, g_p));
+            s -= c.w * vi * c.w.transpose();
+            rhs += c.w * (vi * c.g_p);
+            vinv.push(vi);
         }
         for j in 0..4 {
             if !mask[j] {
@@ -487,8 +516,9 @@ pub(crate) fn fit_law_budget(
             continue;
         };
         let mut pred = 0.0;
-        for (i, ((vi, w, g_p), (r, jp, jt))) in vinv.iter().zip(&cache).enumerate() {
-            let mut dp = -(vi * (g_p + w.transpose() * dtheta));
+        for (i, (vi, c)) in vinv.iter().zip(&cache).enumerate() {
+            let (r, jp, jt) = (&c.r, &c.jp, &c.jt);
+            let mut dp = -(vi * (c.g_p + c.w.transpose() * dtheta));
             for j in 0..3 {
                 // Projected onto the bounds (a no-op inside them).
                 trial_ps[i][j] = (ps[i][j] + dp[j]).clamp(lo[j], hi[j]);
@@ -544,8 +574,9 @@ pub(crate) fn fit_law_budget(
     // Per-sample parameters held on a bound at the solution: not fitted, so
     // not counted against the degrees of freedom.
     let mut held = 0usize;
+    let law_const = LawConst::new(&theta);
     for (i, p) in ps.iter().enumerate() {
-        let (r, mut jp, jt) = data.sample(i, p, &theta);
+        let (r, mut jp, jt) = data.sample(i, p, &theta, &law_const);
         hold_active(&mut jp, &r, p, &lo, &hi);
         u += jt.transpose() * jt;
         let mut v: Matrix3<f64> = jp.transpose() * jp;
