@@ -1010,30 +1010,36 @@ where
         }
         Ok((got, failed))
     };
-    // The folds are independent: a second thread takes every other one
-    // (two cores give the cross-validation in about half the time). The
-    // results are taken in fold order, so they, the first error and the
-    // notes are the same as with one thread.
+    // The folds are independent: two threads take the next fold not yet
+    // taken, each as it becomes free (two cores give the cross-validation
+    // in about half the time, also where the folds take unequal times or a
+    // thread is held up by other work). The results are taken in fold
+    // order, so they, the first error and the notes are the same as with
+    // one thread.
     let per_fold: Vec<Result<FoldOut, ProductFitError>> = if split.len() > 1 {
-        std::thread::scope(|scope| {
-            let odd = scope.spawn(|| {
-                split
-                    .iter()
-                    .skip(1)
-                    .step_by(2)
-                    .map(&one_fold)
-                    .collect::<Vec<_>>()
-            });
-            let even: Vec<_> = split.iter().step_by(2).map(&one_fold).collect();
-            let odd = odd.join().unwrap_or_else(|p| std::panic::resume_unwind(p));
-            let mut out = Vec::with_capacity(split.len());
-            let mut odd = odd.into_iter();
-            for e in even {
-                out.push(e);
-                out.extend(odd.next());
+        let next = std::sync::atomic::AtomicUsize::new(0);
+        let take = || {
+            let mut done = Vec::new();
+            loop {
+                let k = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                let Some(test) = split.get(k) else {
+                    return done;
+                };
+                done.push((k, one_fold(test)));
             }
-            out
-        })
+        };
+        let mut done = std::thread::scope(|scope| {
+            let other = scope.spawn(take);
+            let mut done = take();
+            done.extend(
+                other
+                    .join()
+                    .unwrap_or_else(|p| std::panic::resume_unwind(p)),
+            );
+            done
+        });
+        done.sort_by_key(|(k, _)| *k);
+        done.into_iter().map(|(_, r)| r).collect()
     } else {
         split.iter().map(&one_fold).collect()
     };
