@@ -23,6 +23,7 @@ fn bench(c: &mut Criterion) {
         c_static: [0.0; 2],
         static_hold: fringe_calibration::product::no_static_hold(),
         sigma_hold: fringe_calibration::product::no_sigma_hold(),
+        density_input: false,
     });
     let (p, n) = model.to_params();
     let r = Range::new;

@@ -156,6 +156,7 @@ fn as_f64(m: &RelaxationModel<f32>) -> RelaxationModel<f64> {
         c_static: [0.0; 2],
         static_hold: fringe_calibration::product::no_static_hold(),
         sigma_hold: fringe_calibration::product::no_sigma_hold(),
+        density_input: false,
     }
 }
 

@@ -60,8 +60,8 @@ fn errors(f: &ProductFit, val: &[Sample]) -> (Vec<f64>, usize, usize) {
 /// reference density, flagged).
 fn density_table(seed: u64) {
     println!();
-    println!("| product | density varies | chosen, density varying | chosen, density fixed | ridge without psi | ridge with psi | ridge 2x salt without / with psi | ridge with density input | same, no density given |");
-    println!("| --- | --- | --- | --- | --- | --- | --- | --- | --- |");
+    println!("| product | density varies | chosen, density varying | chosen, density fixed | ridge without psi | ridge with psi | ridge 2x salt without / with psi | ridge with density input | same, no density given | relaxation without / with density input | chosen with density input |");
+    println!("| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |");
     for f in Family::all()
         .into_iter()
         .filter(|f| f.density_variation > 0.0)
@@ -128,8 +128,41 @@ fn density_table(seed: u64) {
             ),
             Err(_) => (f64::NAN, f64::NAN),
         };
+        // The relaxation model without and with the density input, and the
+        // comparison with it (every model given the density).
+        let relax = |density_input| {
+            let o = RelaxationOptions {
+                refit_nonlinear_in_cv: true,
+                density_input,
+                ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+            };
+            match fit_relaxation(&train, &o) {
+                Ok(fit) => format!("{:.3}", sep(&errors(&fit, &val).0)),
+                Err(_) => "refused".into(),
+            }
+        };
+        let chosen_dens = match compare_models(
+            &train,
+            &CompareOptions {
+                single: SingleOptions::default(),
+                relaxation: Some(RelaxationOptions {
+                    refit_nonlinear_in_cv: true,
+                    ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+                }),
+                eps_sd: f.eps_noise_sd.max(1e-3),
+                folds: Folds::LeaveOneOut,
+                density_input: true,
+            },
+        ) {
+            Ok(c) => format!(
+                "{} {:.3}",
+                c.chosen.name(),
+                sep(&errors(c.chosen_fit(), &val).0)
+            ),
+            Err(e) => format!("none: {e}"),
+        };
         println!(
-            "| {} | +/-{:.0} % | {} | {} | {:.3} | {:.3} | {:.3} / {:.3} | {:.3} | {:.3} |",
+            "| {} | +/-{:.0} % | {} | {} | {:.3} | {:.3} | {:.3} / {:.3} | {:.3} | {:.3} | {} / {} | {chosen_dens} |",
             f.name,
             100.0 * f.density_variation,
             cells[0],
@@ -139,7 +172,9 @@ fn density_table(seed: u64) {
             ridge[0].1,
             ridge[1].1,
             with,
-            without
+            without,
+            relax(false),
+            relax(true)
         );
     }
 }

@@ -187,6 +187,36 @@ pub fn estimate<T: Real>(
                 }
             };
             let p = inv.params;
+            // With the density input the mixing model takes the reading's
+            // bulk density; without one, the calibration's reference
+            // density, flagged, with the moisture's spread over the
+            // calibrated densities (uniform, width / sqrt(12): GUM, JCGM
+            // 100:2008, 4.3.7; from memory) in the uncertainty.
+            let rho = input
+                .bulk_density_kg_m3
+                .filter(|r| r.is_finite() && *r > T::zero());
+            let mut var_density = T::zero();
+            let rm = match (rm.density_input, rho) {
+                (true, Some(r)) => {
+                    if ranges.get(4).is_some_and(|rg| !rg.contains(r)) {
+                        flags |= EstimateFlags::OUT_OF_RANGE;
+                    }
+                    rm.at_density(r)
+                }
+                (true, None) => {
+                    flags |= EstimateFlags::DENSITY_MISSING;
+                    if let Some(rg) = ranges.get(4) {
+                        let d = (rm.at_density(rg.max).moisture_pct(&p, t)
+                            - rm.at_density(rg.min).moisture_pct(&p, t))
+                            / T::sqrt(T::c(12.0));
+                        if d.is_finite() {
+                            var_density = d * d;
+                        }
+                    }
+                    *rm
+                }
+                (false, _) => *rm,
+            };
             let mix = rm.mixing_moisture_pct(p.eps_hf, t);
             for (r, x) in ranges.iter().zip([p.eps_hf, p.d_eps, p.sigma_s_m, mix]) {
                 if !r.contains(x) {
@@ -199,7 +229,7 @@ pub fn estimate<T: Real>(
                 flags |= EstimateFlags::OUT_OF_RANGE;
             }
             let g = rm.gradient(&p, t);
-            let mut var = T::zero();
+            let mut var = var_density;
             for i in 0..3 {
                 for j in 0..3 {
                     var += g[i] * inv.covariance[i][j] * g[j];
@@ -354,6 +384,7 @@ mod tests {
             c_static: [0.0; 2],
             static_hold: crate::product::no_static_hold(),
             sigma_hold: crate::product::no_sigma_hold(),
+            density_input: false,
         });
         let (p, n) = m.to_params();
         let r = Range::new;
@@ -416,6 +447,90 @@ mod tests {
             let kind = if relax { ModelKind::Relaxation } else { ModelKind::SingleFrequency };
             let _ = ProductModel::<f32>::from_params(kind, &v);
         }
+    }
+
+    /// A relaxation calibration with the density input (layout 4): the
+    /// mixing model takes the reading's bulk density; a reading outside
+    /// the calibrated densities is flagged out of range; a reading without
+    /// one takes the calibration's reference density, is flagged
+    /// `DENSITY_MISSING`, and its uncertainty gains the spread of the
+    /// moisture over the calibrated densities, (m(max) - m(min)) /
+    /// sqrt(12) (a uniform distribution: GUM, JCGM 100:2008, 4.3.7; from
+    /// memory).
+    #[test]
+    fn the_relaxation_model_takes_the_readings_density() {
+        let base = identity_cal::<f64>();
+        let ProductModel::Relaxation(rm) = base.model else {
+            panic!("kind")
+        };
+        let rho0 = rm.mixture.bulk_density_kg_m3;
+        let m = ProductModel::Relaxation(RelaxationModel {
+            density_input: true,
+            ..rm
+        });
+        let (p, n) = m.to_params();
+        let r = Range::new;
+        let (lo, hi) = (0.9 * rho0 as f32, 1.1 * rho0 as f32);
+        let cal = ProductCalibration::<f64>::from_parts(
+            ModelKind::Relaxation,
+            &p[..n],
+            Basis::Wet,
+            r(5.0, 30.0),
+            r(0.0, 50.0),
+            &[
+                r(1.5, 40.0),
+                r(0.0, 500.0),
+                r(1e-6, 1.0),
+                r(0.0, 40.0),
+                r(lo, hi),
+            ],
+            0.25,
+        )
+        .unwrap();
+        let s = SynthSample {
+            moisture_pct: 15.0,
+            temperature_c: 20.0,
+            water_sigma25_s_m: 0.05,
+        };
+        let at = |rho: Option<f64>| {
+            let mut i = input::<f64>(&s, 0.01);
+            i.bulk_density_kg_m3 = rho;
+            estimate(&i, Some(&cal))
+        };
+        // At the reference density, as without the density input.
+        let plain = estimate(&input::<f64>(&s, 0.01), Some(&base));
+        let e0 = at(Some(rho0));
+        assert!((e0.moisture_pct.unwrap() - plain.moisture_pct.unwrap()).abs() < 1e-9);
+        assert!(e0.flags.is_empty(), "{:?}", e0.flags);
+        // Denser: the model at that density.
+        let rho = 1.05 * rho0;
+        let e = at(Some(rho));
+        let params = e.inversion.unwrap().params;
+        let want = rm.at_density(rho).moisture_pct(&params, s.temperature_c);
+        assert!((e.moisture_pct.unwrap() - want).abs() < 1e-9);
+        assert!(e.moisture_pct.unwrap() < e0.moisture_pct.unwrap());
+        assert!(e.flags.is_empty());
+        // Outside the calibrated densities: flagged.
+        assert!(at(Some(1.2 * rho0))
+            .flags
+            .contains(EstimateFlags::OUT_OF_RANGE));
+        // None given: the reference density, flagged, the uncertainty widened.
+        let none = at(None);
+        assert_eq!(none.moisture_pct, e0.moisture_pct);
+        assert!(none.flags.contains(EstimateFlags::DENSITY_MISSING));
+        let p0 = e0.inversion.unwrap().params;
+        let spread0 = (rm
+            .at_density(f64::from(hi))
+            .moisture_pct(&p0, s.temperature_c)
+            - rm.at_density(f64::from(lo))
+                .moisture_pct(&p0, s.temperature_c))
+            / 12f64.sqrt();
+        assert!(spread0.abs() > 0.1, "{spread0}");
+        let widened = (none.uncertainty_pct.powi(2) - e0.uncertainty_pct.powi(2)).sqrt();
+        assert!(
+            (widened - spread0.abs()).abs() < 1e-6,
+            "{widened} vs {spread0}"
+        );
     }
 
     #[test]

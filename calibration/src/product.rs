@@ -52,8 +52,12 @@
 //!
 //! Relaxation, 17 values (layout 1), 21 (layout 2, with the static terms)
 //! or 23 (layout 3, with the conductivity hold; where the model has no
-//! static terms, q1 = q2 = 0 and the hold of h 0-100):
-//!  [0] layout version (1-3)    [1] alpha (0 <= alpha < 1)
+//! static terms, q1 = q2 = 0 and the hold of h 0-100; layout 4, the same
+//! 23 values, with the density input: the mixing model takes each
+//! reading's bulk density, [9] is the reference for a reading without
+//! one, the fifth input range is the calibrated densities, and
+//! sigma_min is 0 where the model has no conductivity hold):
+//!  [0] layout version (1-4)    [1] alpha (0 <= alpha < 1)
 //!  [2] fr_ref_hz (> 0)         [3] sigma_ref_s_m (> 0)
 //!  [4] fr_exponent p           [5] fr_temp_coeff_per_c
 //!  [6] mixing exponent a (0..=1; 0 logarithmic, 0.5 CRIM)
@@ -63,8 +67,9 @@
 //!  [11] p0 [12] p1 [13] p2 [14] p3  (% per m^k)
 //!  [15] c_t (% per K)          [16] c_s (% per unit ln(sigma/sigma_ref))
 //!  [17] q1 [18] q2 (% per h^k)  [19] h_min [20] h_max (%, h_min <= h_max)
-//!  [21] sigma_min [22] sigma_max (S/m, 0 < sigma_min <= sigma_max; the
-//!  fit writes the inversion's upper bound, 20, for no upper end)
+//!  [21] sigma_min [22] sigma_max (S/m, 0 < sigma_min <= sigma_max, or
+//!  0 <= in layout 4; the fit writes the inversion's upper bound, 20, for
+//!  no upper end)
 //!
 //! Multivariate without a density input, 27 values:
 //!  [0] layout version (1)      [1] t_ref_c
@@ -119,6 +124,12 @@ pub const LAYOUT_VERSION_STATIC: f32 = 2.0;
 pub const LAYOUT_VERSION_SIGMA_HOLD: f32 = 3.0;
 /// Length of the relaxation layout with the conductivity hold (version 3).
 pub const RELAXATION_SIGMA_HOLD_LEN: usize = 23;
+/// Relaxation layout version with the density input (layout 3's 23
+/// values; `sigma_min` 0 where the model has no conductivity hold).
+pub const LAYOUT_VERSION_DENSITY_INPUT: f32 = 4.0;
+/// `sigma_max` written for a layout-4 model without a conductivity hold
+/// (the inversion's upper bound of sigma, S/m).
+pub const NO_SIGMA_HOLD_MAX: f32 = 20.0;
 /// Lowest and highest bulk density a density input may carry, kg/m^3
 /// (loose flakes to wet aggregates with room to spare; common practice,
 /// no source).
@@ -325,6 +336,10 @@ pub struct RelaxationModel<T> {
     /// The range sigma is held to in the conductivity term, S/m
     /// ([`no_sigma_hold`] in layouts 1 and 2).
     pub sigma_hold: Range<T>,
+    /// The mixing model takes each reading's bulk density (the plant's
+    /// density input, layout 4) instead of `mixture.bulk_density_kg_m3`,
+    /// which is then the reference used where a reading has none.
+    pub density_input: bool,
 }
 
 /// The conductivity term's hold of a model without one.
@@ -367,6 +382,14 @@ impl<T: Real> RelaxationModel<T> {
     /// sigma held to the model's range, and whether it lay inside it.
     pub fn held_sigma(&self, sigma_s_m: T) -> (T, bool) {
         self.sigma_hold.hold(sigma_s_m)
+    }
+
+    /// The same model with the mixing model at bulk density `rho_kg_m3`
+    /// (a reading's, where the model takes the density input).
+    pub fn at_density(&self, rho_kg_m3: T) -> Self {
+        let mut m = *self;
+        m.mixture.bulk_density_kg_m3 = rho_kg_m3;
+        m
     }
 
     /// Mixing-model moisture m (% wet basis) from eps_hf at `t_c`.
@@ -661,6 +684,13 @@ impl<T: Real> ProductModel<T> {
     pub fn input_names(&self) -> &'static [&'static str] {
         match self {
             ProductModel::SingleFrequency(_) => &["eps_re"],
+            ProductModel::Relaxation(m) if m.density_input => &[
+                "eps_hf",
+                "d_eps",
+                "sigma_s_m",
+                "mixing_moisture_pct",
+                "bulk_density_kg_m3",
+            ],
             ProductModel::Relaxation(_) => &["eps_hf", "d_eps", "sigma_s_m", "mixing_moisture_pct"],
             ProductModel::Multivariate(m) if m.uses_density() => &[
                 "eps1_re",
@@ -715,6 +745,19 @@ impl<T: Real> ProductModel<T> {
                 for (i, x) in v.iter().enumerate() {
                     out[1 + i] = f(*x);
                 }
+                // Layout 4: layout 3 with the density input; sigma_min 0
+                // where the model has no conductivity hold.
+                if m.density_input {
+                    out[0] = LAYOUT_VERSION_DENSITY_INPUT;
+                    let (lo, hi) = if m.has_sigma_hold() {
+                        (f(m.sigma_hold.min), f(m.sigma_hold.max))
+                    } else {
+                        (0.0, NO_SIGMA_HOLD_MAX)
+                    };
+                    out[21] = lo;
+                    out[22] = hi;
+                    return (out, RELAXATION_SIGMA_HOLD_LEN);
+                }
                 // (A hold is a lower end above 0: the upper end of no hold
                 // is not the same number in f32 and f64.)
                 if m.has_sigma_hold() {
@@ -760,8 +803,10 @@ impl<T: Real> ProductModel<T> {
         // every other layout is version 1.
         let density =
             kind == ModelKind::Multivariate && params.first() == Some(&LAYOUT_VERSION_DENSITY);
-        let sigma_held =
-            kind == ModelKind::Relaxation && params.first() == Some(&LAYOUT_VERSION_SIGMA_HOLD);
+        let density_input =
+            kind == ModelKind::Relaxation && params.first() == Some(&LAYOUT_VERSION_DENSITY_INPUT);
+        let sigma_held = density_input
+            || kind == ModelKind::Relaxation && params.first() == Some(&LAYOUT_VERSION_SIGMA_HOLD);
         let with_static = sigma_held
             || kind == ModelKind::Relaxation && params.first() == Some(&LAYOUT_VERSION_STATIC);
         let expected = match kind {
@@ -836,7 +881,19 @@ impl<T: Real> ProductModel<T> {
                 } else {
                     ([T::zero(); 2], no_static_hold())
                 };
-                let sigma_hold = if sigma_held {
+                let sigma_hold = if density_input {
+                    if !(p[21] >= 0.0 && p[21] <= p[22]) {
+                        return bad(
+                            21,
+                            "the conductivity hold must satisfy 0 <= sigma_min <= sigma_max",
+                        );
+                    }
+                    if p[21] > 0.0 {
+                        Range::new(g(21), g(22))
+                    } else {
+                        no_sigma_hold()
+                    }
+                } else if sigma_held {
                     if !(p[21] > 0.0 && p[21] <= p[22]) {
                         return bad(
                             21,
@@ -869,6 +926,7 @@ impl<T: Real> ProductModel<T> {
                     c_static,
                     static_hold,
                     sigma_hold,
+                    density_input,
                 }))
             }
             ModelKind::Multivariate => {
@@ -964,6 +1022,7 @@ impl<T: Real> ProductModel<T> {
                 c_static: m.c_static.map(U::cast),
                 static_hold: m.static_hold.cast(),
                 sigma_hold: m.sigma_hold.cast(),
+                density_input: m.density_input,
             }),
             ProductModel::Multivariate(m) => ProductModel::Multivariate(MultivariateModel {
                 t_ref_c: U::cast(m.t_ref_c),
@@ -1089,6 +1148,7 @@ pub(crate) mod tests {
             c_static: [0.0; 2],
             static_hold: no_static_hold(),
             sigma_hold: no_sigma_hold(),
+            density_input: false,
         }
     }
 
@@ -1205,6 +1265,50 @@ pub(crate) mod tests {
         }
     }
 
+    /// The density input (layout 4): it round-trips with and without a
+    /// conductivity hold (sigma_min 0 for none; a negative one names
+    /// index 21), the model gains the density as its fifth input, and
+    /// its mixing model follows the density it is given: the same
+    /// parameters read denser give a lower mixing-model moisture (more
+    /// solid in the same volume), as the mixing model itself says.
+    #[test]
+    fn the_density_input_round_trips_in_layout_4() {
+        for hold in [Range::new(1e-4, 20.0), no_sigma_hold::<f64>()] {
+            let m = RelaxationModel {
+                sigma_hold: hold,
+                density_input: true,
+                ..static_model()
+            };
+            let (mut p, n) = ProductModel::Relaxation(m).to_params();
+            assert_eq!((n, p[0]), (RELAXATION_SIGMA_HOLD_LEN, 4.0));
+            let back = ProductModel::<f64>::from_params(ModelKind::Relaxation, &p[..n]).unwrap();
+            let ProductModel::Relaxation(b) = back else {
+                panic!("kind")
+            };
+            assert!(b.density_input);
+            assert_eq!(b.has_sigma_hold(), hold.min > 0.0);
+            assert_eq!(back.input_names().len(), 5);
+            assert_eq!(back.input_names()[4], "bulk_density_kg_m3");
+            // Through f32 and back (what `cal adjust` does) it stays layout 4.
+            let dev = ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]).unwrap();
+            let (q, k) = dev.cast::<f64>().rescaled(0.1, 1.01).to_params();
+            assert_eq!((k, q[0]), (n, 4.0));
+            p[21] = -1e-4;
+            assert!(matches!(
+                ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+                Err(ParamsError::Invalid { index: 21, .. })
+            ));
+            let t = 21.0;
+            let (lo, hi) = (
+                b.at_density(0.9 * b.mixture.bulk_density_kg_m3)
+                    .mixing_moisture_pct(6.0, t),
+                b.at_density(1.1 * b.mixture.bulk_density_kg_m3)
+                    .mixing_moisture_pct(6.0, t),
+            );
+            assert!(lo > b.mixing_moisture_pct(6.0, t) && b.mixing_moisture_pct(6.0, t) > hi);
+        }
+    }
+
     /// The conductivity hold (layout 3): sigma below the hold counts as
     /// the hold's lower end, with no gradient there; inside it, as before.
     #[test]
@@ -1317,7 +1421,16 @@ pub(crate) mod tests {
                 got: 17
             })
         );
+        // Version 4 (the density input) has layout 3's length.
         p[0] = 4.0;
+        assert_eq!(
+            ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
+            Err(ParamsError::WrongLength {
+                expected: 23,
+                got: 17
+            })
+        );
+        p[0] = 5.0;
         assert_eq!(
             ProductModel::<f32>::from_params(ModelKind::Relaxation, &p[..n]),
             Err(ParamsError::UnknownVersion)

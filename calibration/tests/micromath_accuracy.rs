@@ -333,6 +333,7 @@ fn calibration<T: Real>() -> ProductCalibration<T> {
         c_static: [0.0; 2],
         static_hold: fringe_calibration::product::no_static_hold(),
         sigma_hold: fringe_calibration::product::no_sigma_hold(),
+        density_input: false,
     });
     let (p, n) = m.to_params();
     let r = Range::new;

@@ -141,6 +141,11 @@ pub struct DeviceConfig {
     /// one as firmware before it did (as without `static_terms`, which
     /// also refuses layout 3).
     pub sigma_hold: bool,
+    /// Take a relaxation calibration whose mixing model takes each
+    /// reading's bulk density (layout 4) and announce
+    /// [`Capabilities::RELAXATION_DENSITY`]; off, the device refuses one
+    /// as firmware before it did.
+    pub relaxation_density: bool,
 }
 
 impl DeviceConfig {
@@ -158,6 +163,7 @@ impl DeviceConfig {
             density_input: true,
             static_terms: true,
             sigma_hold: true,
+            relaxation_density: true,
         }
     }
 
@@ -1083,7 +1089,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                 in_slot(slot)?;
                 let parsed = check_product(&cal)?;
                 let layout = relaxation_layout(&cal);
-                if (!self.cfg.static_terms && layout >= 2) || (!self.cfg.sigma_hold && layout >= 3)
+                if (!self.cfg.static_terms && layout >= 2)
+                    || (!self.cfg.sigma_hold && layout >= 3)
+                    || (!self.relaxation_density() && layout >= 4)
                 {
                     // As firmware before the static terms (or the
                     // conductivity hold): a relaxation layout it does not
@@ -1297,6 +1305,16 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         Ok(())
     }
 
+    /// Whether the device takes a relaxation calibration with the density
+    /// input (layout 4): it builds on layouts 2 and 3 and needs the
+    /// density the plant sends ([`Request::SetDensity`]).
+    fn relaxation_density(&self) -> bool {
+        self.cfg.static_terms
+            && self.cfg.sigma_hold
+            && self.cfg.density_input
+            && self.cfg.relaxation_density
+    }
+
     fn identity(&self) -> Identity {
         let mut caps = Capabilities::RELAXATION
             | Capabilities::CURRENT_OUTPUT
@@ -1314,6 +1332,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         }
         if self.cfg.static_terms && self.cfg.sigma_hold {
             caps |= Capabilities::SIGMA_HOLD;
+        }
+        if self.relaxation_density() {
+            caps |= Capabilities::RELAXATION_DENSITY;
         }
         if self.diag != Diagnostics::default() {
             caps |= Capabilities::DIAGNOSTICS;

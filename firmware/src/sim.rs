@@ -381,6 +381,7 @@ pub fn exact_calibration(product: &SynthProduct<f32>, name: &str) -> ProductCal 
         c_static: [0.0; 2],
         static_hold: fringe_calibration::product::no_static_hold(),
         sigma_hold: fringe_calibration::product::no_sigma_hold(),
+        density_input: false,
     });
     let (params, n) = model.to_params();
     let r = |min, max| Range { min, max };

@@ -1,6 +1,7 @@
-//! The relaxation model's static terms (parameter layout 2) and
-//! conductivity hold (layout 3): a device announces that it takes them
-//! (`STATIC_TERMS`, `SIGMA_HOLD`) and does; one configured as firmware
+//! The relaxation model's static terms (parameter layout 2), conductivity
+//! hold (layout 3) and density input (layout 4): a device announces that
+//! it takes them (`STATIC_TERMS`, `SIGMA_HOLD`, `RELAXATION_DENSITY`) and
+//! does; one configured as firmware
 //! before them refuses such a calibration as a bad one, changing nothing,
 //! and still takes the layouts it knew. The calibration is the simulator's
 //! exact one for the synthetic grain with two static-term coefficients and
@@ -10,8 +11,8 @@ mod common;
 
 use common::*;
 use fringe_calibration::product::{
-    LAYOUT_VERSION_SIGMA_HOLD, LAYOUT_VERSION_STATIC, RELAXATION_LEN, RELAXATION_SIGMA_HOLD_LEN,
-    RELAXATION_STATIC_LEN,
+    LAYOUT_VERSION_DENSITY_INPUT, LAYOUT_VERSION_SIGMA_HOLD, LAYOUT_VERSION_STATIC, RELAXATION_LEN,
+    RELAXATION_SIGMA_HOLD_LEN, RELAXATION_STATIC_LEN,
 };
 use fringe_calibration::synth::SynthProduct;
 use fringe_firmware::protocol::*;
@@ -41,6 +42,20 @@ fn held() -> ProductCal {
         c.params.push(v).expect("room for layout 3");
     }
     assert_eq!(c.params.len(), RELAXATION_SIGMA_HOLD_LEN);
+    c
+}
+
+/// The layout-3 calibration with the density input (layout 4): the same
+/// values, and the calibrated bulk densities as its fifth input range.
+fn with_density() -> ProductCal {
+    let mut c = held();
+    c.params[0] = LAYOUT_VERSION_DENSITY_INPUT;
+    c.inputs
+        .push(Range {
+            min: 700.0,
+            max: 820.0,
+        })
+        .expect("room for the density range");
     c
 }
 
@@ -90,6 +105,32 @@ fn the_conductivity_hold_is_taken_only_by_firmware_that_announces_it() {
         let (taken, caps) = write_to(56, oldest, held());
         assert!(!taken && !caps.contains(Capabilities::SIGMA_HOLD));
         assert!(write_to(57, oldest, plain).0);
+    });
+}
+
+#[test]
+fn the_density_input_is_taken_only_by_firmware_that_announces_it() {
+    big_stack(|| {
+        let (taken, caps) = write_to(58, |_| {}, with_density());
+        assert!(taken && caps.contains(Capabilities::RELAXATION_DENSITY));
+        // Firmware before it, and firmware without the density request,
+        // refuse it and still take layout 3.
+        for (seed, older) in [
+            (
+                59,
+                (|c: &mut DeviceConfig| c.relaxation_density = false) as fn(&mut DeviceConfig),
+            ),
+            (60, |c: &mut DeviceConfig| c.density_input = false),
+            (61, |c: &mut DeviceConfig| c.sigma_hold = false),
+        ] {
+            let (taken, caps) = write_to(seed, older, with_density());
+            assert!(!taken && !caps.contains(Capabilities::RELAXATION_DENSITY));
+        }
+        assert!(write_to(62, |c| c.relaxation_density = false, held()).0);
+        // Layout 4 without the density range is a bad calibration anywhere.
+        let mut short = with_density();
+        short.inputs.pop();
+        assert!(!write_to(63, |_| {}, short).0);
     });
 }
 

@@ -380,6 +380,12 @@ bitflags! {
         /// layout 3 as a bad calibration; the host refuses to push one to
         /// it.
         const SIGMA_HOLD = 1 << 9;
+        /// Takes a relaxation calibration whose mixing model takes each
+        /// reading's bulk density (the relaxation model's parameter
+        /// layout 4, 23 values, fitted with the density input; no new
+        /// protocol version). Firmware without it refuses layout 4 as a
+        /// bad calibration; the host refuses to push one to it.
+        const RELAXATION_DENSITY = 1 << 10;
     }
 }
 

@@ -201,6 +201,9 @@ pub struct ScenarioSpec {
     /// The device takes a relaxation calibration with the conductivity
     /// hold; `false` simulates firmware before it.
     pub sigma_hold: bool,
+    /// The device takes a relaxation calibration with the density input;
+    /// `false` simulates firmware before it.
+    pub relaxation_density: bool,
     /// Probability a byte is lost.
     pub drop_per_byte: f64,
     /// Probability a bit of a byte flips.
@@ -228,6 +231,7 @@ impl ScenarioSpec {
             density_input: true,
             static_terms: true,
             sigma_hold: true,
+            relaxation_density: true,
             drop_per_byte: 0.0,
             flip_per_byte: 0.0,
             garbage_per_frame: 0.0,
@@ -243,7 +247,7 @@ impl ScenarioSpec {
              moisture_pct = [[0, 14.0], [120, 16.0], [240, 13.5]]\n\
              temperature_c = [[0, 30.0], [240, 34.0]]\n\
              water_conductivity_s_m = [[0, 0.1]]\n{}\n\
-             [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\ninterval_ms = {}\nclock = \"{}\"\ndensity_input = {}\nstatic_terms = {}\nsigma_hold = {}\n\n\
+             [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\ninterval_ms = {}\nclock = \"{}\"\ndensity_input = {}\nstatic_terms = {}\nsigma_hold = {}\nrelaxation_density = {}\n\n\
              [product]\nname = \"wheat\"\n\n\
              [link]\ndrop_per_byte = {}\nflip_per_byte = {}\ngarbage_per_frame = {}\n",
             self.extra,
@@ -256,6 +260,7 @@ impl ScenarioSpec {
             self.density_input,
             self.static_terms,
             self.sigma_hold,
+            self.relaxation_density,
             self.drop_per_byte,
             self.flip_per_byte,
             self.garbage_per_frame

@@ -389,7 +389,7 @@ fn capture_push_list_select_and_history() {
     // the conductivity hold) is refused by firmware that predates them: 60
     // samples of the zoo's grain (from published physics, invented
     // constants), where the fit keeps the terms.
-    let (grain_cal, o) = fit_zoo_grain(&sim);
+    let (grain_cal, o) = fit_zoo_grain(&sim, false);
     assert!(
         o.stdout.contains("with the static terms") || o.stderr.contains("with the static terms"),
         "the case needs the terms kept: {}{}",
@@ -487,7 +487,7 @@ fn a_push_of_the_conductivity_hold_needs_firmware_that_takes_it() {
     });
     let db = sim.path("bench.db");
     let key = key_file(&sim);
-    let (cal, _) = fit_zoo_grain(&sim);
+    let (cal, _) = fit_zoo_grain(&sim, false);
     let before = run(
         &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
         LIMIT,
@@ -529,6 +529,76 @@ fn a_push_of_the_conductivity_hold_needs_firmware_that_takes_it() {
         after.stdout, before.stdout,
         "the device's slots as they were"
     );
+}
+
+/// A relaxation calibration with the plant's density input (layout 4,
+/// `cal fit --model relaxation --density-input`) is refused by firmware
+/// that takes the conductivity hold but predates the density input; the
+/// device is left as it was. Firmware that announces it takes it.
+#[test]
+fn a_push_of_the_relaxation_density_input_needs_firmware_that_takes_it() {
+    for (serial, seed_n, takes) in [("HGM-L2-0207", 27, false), ("HGM-L2-0208", 28, true)] {
+        let sim = Sim::start(&ScenarioSpec {
+            relaxation_density: takes,
+            ..ScenarioSpec::clean(serial, seed(seed_n))
+        });
+        let db = sim.path("bench.db");
+        let key = key_file(&sim);
+        let (cal, fit) = fit_zoo_grain(&sim, true);
+        assert!(
+            std::fs::read_to_string(&cal)
+                .unwrap()
+                .contains("params = [4.0,"),
+            "layout 4: {}",
+            fit.stdout
+        );
+        let before = run(
+            &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
+            LIMIT,
+        );
+        assert_eq!(before.code, 0, "{}", before.stderr);
+        let o = run(
+            &mut cal_write(
+                &sim,
+                &key,
+                &db,
+                "push",
+                &[
+                    "--cal",
+                    cal.to_str().unwrap(),
+                    "--reason",
+                    "test calibration",
+                    "--activate",
+                    "false",
+                    "--yes",
+                    "--force",
+                ],
+            ),
+            LIMIT,
+        );
+        let after = run(
+            &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
+            LIMIT,
+        );
+        if takes {
+            assert_eq!(o.code, 0, "{}", o.stderr);
+            assert_ne!(after.stdout, before.stdout, "the calibration written");
+        } else {
+            assert_fails(
+                &o,
+                1,
+                &[
+                    "takes the plant's bulk density",
+                    "no relaxation_density capability",
+                    "nothing written",
+                ],
+            );
+            assert_eq!(
+                after.stdout, before.stdout,
+                "the device's slots as they were"
+            );
+        }
+    }
 }
 
 /// Build-up on the window during an empty spell: `fringe monitor` on the
@@ -608,32 +678,35 @@ fn monitor_raises_the_drift_alarms_of_fringe_drift_live() {
 /// `fringe cal fit --model relaxation` of 60 samples of the zoo's grain
 /// (seed 1) into the simulator's folder: the calibration file and the
 /// command's outcome (it succeeded).
-fn fit_zoo_grain(sim: &Sim) -> (std::path::PathBuf, Outcome) {
+/// The relaxation model fitted on 60 samples of the zoo's grain, with the
+/// plant's density input (each sample's density in the table) or without.
+fn fit_zoo_grain(sim: &Sim, density_input: bool) -> (std::path::PathBuf, Outcome) {
     let table = sim.path("grain.csv");
-    write_zoo_table(&table, 60, 1);
+    write_zoo_table(&table, 60, 1, density_input);
     let cal = sim.path("grain.toml");
-    let o = run(
-        &mut fringe(&[
-            "cal",
-            "fit",
-            "--samples",
-            table.to_str().unwrap(),
-            "--model",
-            "relaxation",
-            "--bulk-density-kg-m3",
-            "760",
-            "--particle-density-kg-m3",
-            "1400",
-            "--out",
-            cal.to_str().unwrap(),
-        ]),
-        LIMIT,
-    );
+    let mut args = vec![
+        "cal",
+        "fit",
+        "--samples",
+        table.to_str().unwrap(),
+        "--model",
+        "relaxation",
+        "--bulk-density-kg-m3",
+        "760",
+        "--particle-density-kg-m3",
+        "1400",
+        "--out",
+        cal.to_str().unwrap(),
+    ];
+    if density_input {
+        args.push("--density-input");
+    }
+    let o = run(&mut fringe(&args), LIMIT);
     assert_eq!(o.code, 0, "{}", o.stderr);
     (cal, o)
 }
 
-fn write_zoo_table(path: &Path, n: usize, seed: u64) {
+fn write_zoo_table(path: &Path, n: usize, seed: u64, density: bool) {
     use fringe_calibration::fit::zoo::{Draw, Family};
     use fringe_quality::samples::{write_samples, RefSample};
     let rows: Vec<RefSample> = Family::grain()
@@ -646,7 +719,7 @@ fn write_zoo_table(path: &Path, n: usize, seed: u64) {
             freqs_hz: [x.channels[0].freq_hz, x.channels[1].freq_hz],
             eps_re: [x.channels[0].eps_re, x.channels[1].eps_re],
             eps_im: [x.channels[0].eps_loss, x.channels[1].eps_loss],
-            bulk_density_kg_m3: None,
+            bulk_density_kg_m3: x.bulk_density_kg_m3.filter(|_| density),
             line: 0,
         })
         .collect();

@@ -434,6 +434,11 @@ pub struct RelaxationOptions {
     /// Add the static terms (the held mixing-model moisture of eps_hf +
     /// d_eps and its square, [`RelaxationModel::features`]; default true).
     pub static_terms: bool,
+    /// The mixing model takes each sample's bulk density (the plant's
+    /// density input; every sample needs one) instead of
+    /// `bulk_density_kg_m3`, which stays the reference for a reading
+    /// without one (default false).
+    pub density_input: bool,
 }
 
 impl RelaxationOptions {
@@ -449,6 +454,7 @@ impl RelaxationOptions {
             folds: Folds::LeaveOneOut,
             refit_nonlinear_in_cv: false,
             static_terms: true,
+            density_input: false,
         }
     }
 }
@@ -1269,6 +1275,10 @@ impl IntervalModel {
                     sd: self.eps_sd,
                 });
                 let inv = invert(&obs, &m.law, temperature_c, &InvertOptions::default()).ok()?;
+                let m = match rho_kg_m3 {
+                    Some(rho) if m.density_input => m.at_density(rho),
+                    _ => *m,
+                };
                 m.features(&inv.params, temperature_c).to_vec()
             }
             ProductModel::Multivariate(m) => {
@@ -1339,14 +1349,29 @@ impl IntervalModel {
         // A model with a density input, read without a density: the device
         // assumes the reference density and widens its uncertainty by the
         // calibrated density range's spread; the interval widens alike.
-        if let (ProductModel::Multivariate(m), true) = (
-            model,
+        if let (Some(rg), true) = (
+            cal.input_ranges().get(4),
             estimate.flags.contains(EstimateFlags::DENSITY_MISSING),
         ) {
-            if let Some(rg) = cal.input_ranges().get(4) {
-                let e = [eps[0].0, eps[0].1, eps[1].0, eps[1].1];
-                let d = m.d_moisture_d_density(e) * f64::from(rg.max - rg.min)
-                    / (m.rho_ref_kg_m3 * 12f64.sqrt());
+            let d = match model {
+                ProductModel::Multivariate(m) => {
+                    let e = [eps[0].0, eps[0].1, eps[1].0, eps[1].1];
+                    m.d_moisture_d_density(e) * f64::from(rg.max - rg.min)
+                        / (m.rho_ref_kg_m3 * 12f64.sqrt())
+                }
+                ProductModel::Relaxation(m) => estimate.inversion.map_or(0.0, |inv| {
+                    let p = MaterialParams {
+                        eps_hf: f64::from(inv.params.eps_hf),
+                        d_eps: f64::from(inv.params.d_eps),
+                        sigma_s_m: f64::from(inv.params.sigma_s_m),
+                    };
+                    let at =
+                        |rho: f32| m.at_density(f64::from(rho)).moisture_pct(&p, temperature_c);
+                    (at(rg.max) - at(rg.min)) / 12f64.sqrt()
+                }),
+                ProductModel::SingleFrequency(_) => 0.0,
+            };
+            if d.is_finite() {
                 var += d * d;
             }
         }
@@ -1497,6 +1522,9 @@ struct RelaxationCore {
     law_converged: bool,
     mixture: ProductMixture<f64>,
     params: Vec<MaterialParams<f64>>,
+    /// The mixing model at each sample's bulk density
+    /// ([`RelaxationOptions::density_input`]).
+    density_input: bool,
 }
 
 /// The relaxation model's features beyond its polynomial: temperature and
@@ -1541,6 +1569,7 @@ fn relax_model(
         c_static: [q(2), q(3)],
         static_hold: hold.static_pct,
         sigma_hold: hold.sigma_s_m,
+        density_input: core.density_input,
     })
 }
 
@@ -1593,7 +1622,7 @@ fn static_hold_of(
     let (lo, hi) = samples
         .iter()
         .zip(params)
-        .map(|(s, p)| proto.static_moisture_pct(p, s.temperature_c))
+        .map(|(s, p)| at_sample(proto, s).static_moisture_pct(p, s.temperature_c))
         .filter(|h| h.is_finite())
         .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), h| {
             (a.min(h), b.max(h))
@@ -1603,6 +1632,15 @@ fn static_hold_of(
     }
     let w = 0.1 * (hi - lo);
     Range::new(lo - w, hi + w)
+}
+
+/// `model` at the sample's bulk density where the model takes the density
+/// input (the fit checks every sample has one).
+fn at_sample(model: &RelaxationModel<f64>, s: &Sample) -> RelaxationModel<f64> {
+    match s.bulk_density_kg_m3 {
+        Some(rho) if model.density_input => model.at_density(rho),
+        _ => *model,
+    }
 }
 
 /// The regression's features of `samples` (whose parameters at the law are
@@ -1624,6 +1662,7 @@ fn relax_features(
         c_static: [0.0; 2],
         static_hold: no_static_hold(),
         sigma_hold: sigma_hold_of(&core.params),
+        density_input: core.density_input,
     };
     if with_static {
         proto.static_hold = static_hold_of(&proto, &core.params, samples);
@@ -1633,6 +1672,7 @@ fn relax_features(
         .iter()
         .zip(&core.params)
         .map(|(s, p)| {
+            let proto = at_sample(&proto, s);
             let mut f = proto.features(p, s.temperature_c);
             // A static moisture that is not a number is held at the hold's
             // lower end on the device (and flagged); the fit leaves such
@@ -1817,6 +1857,7 @@ fn relaxation_core(
             bulk_density_kg_m3: opts.bulk_density_kg_m3,
         },
         params,
+        density_input: opts.density_input,
     };
     let y: Vec<f64> = sub.iter().map(|s| s.moisture_pct).collect();
     let sub_samples: Vec<Sample> = sub.iter().map(|s| (*s).clone()).collect();
@@ -2031,6 +2072,11 @@ fn fit_relaxation_terms(
     cache: &CoreCache,
 ) -> Result<ProductFit, ProductFitError> {
     check_relaxation_options(opts)?;
+    if opts.density_input {
+        if let Some(s) = samples.iter().find(|s| s.bulk_density_kg_m3.is_none()) {
+            return Err(ProductFitError::MissingDensity { id: s.id.clone() });
+        }
+    }
     let cols = relax_columns(opts);
     let needed = cols.len() + 3;
     let checked = check_samples(samples, needed)?;
@@ -2184,14 +2230,20 @@ fn relax_inputs(
         .params
         .iter()
         .zip(samples)
-        .map(|(p, s)| rm.mixing_moisture_pct(p.eps_hf, s.temperature_c))
+        .map(|(p, s)| at_sample(rm, s).mixing_moisture_pct(p.eps_hf, s.temperature_c))
         .collect();
-    vec![
+    let mut inputs = vec![
         range_of(core.params.iter().map(|p| p.eps_hf)),
         range_of(core.params.iter().map(|p| p.d_eps)),
         range_of(core.params.iter().map(|p| p.sigma_s_m)),
         range_of(mix.iter().copied()),
-    ]
+    ];
+    if rm.density_input {
+        inputs.push(range_of(
+            samples.iter().filter_map(|s| s.bulk_density_kg_m3),
+        ));
+    }
+    inputs
 }
 
 /// The relaxation fit on the samples it can use: statistics and
@@ -3136,6 +3188,7 @@ pub fn compare_models(
                     samples,
                     &RelaxationOptions {
                         folds: opts.folds,
+                        density_input: opts.density_input || r.density_input,
                         ..*r
                     },
                 ),

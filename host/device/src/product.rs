@@ -76,6 +76,15 @@ pub enum ProductError {
         /// The device serial.
         serial: String,
     },
+    /// The calibration is a relaxation model whose mixing model takes the
+    /// plant's bulk density, which the device's firmware predates.
+    #[error("{name} is a relaxation calibration whose mixing model takes the plant's bulk density with every reading (parameter layout 4, fitted with --density-input), but {serial}'s firmware does not announce it (no relaxation_density capability) and would refuse it. Update the device's firmware, or fit this device's calibration with --density-input and --model multivariate; nothing written")]
+    NoRelaxationDensity {
+        /// Product name.
+        name: String,
+        /// The device serial.
+        serial: String,
+    },
     /// No free slot and none named.
     #[error("all {n} product slots are in use; choose one with --slot")]
     SlotsFull {
@@ -137,8 +146,21 @@ pub fn push_gate(path: &Path, file: &ProductFile, force: bool) -> Result<Vec<Str
 /// density with its readings (fitted with `--density-input`).
 pub fn takes_density(wire: &ProductCal) -> bool {
     fringe_firmware::device::parse_product(wire).is_ok_and(|c| {
-        matches!(c.model, fringe_calibration::product::ProductModel::Multivariate(m) if m.uses_density())
+        use fringe_calibration::product::ProductModel;
+        match c.model {
+            ProductModel::Multivariate(m) => m.uses_density(),
+            ProductModel::Relaxation(m) => m.density_input,
+            ProductModel::SingleFrequency(_) => false,
+        }
     })
+}
+
+/// Whether a calibration is a relaxation model whose mixing model takes
+/// each reading's bulk density (parameter layout 4), which a device takes
+/// only if it announces [`Capabilities::RELAXATION_DENSITY`].
+pub fn takes_relaxation_density(wire: &ProductCal) -> bool {
+    wire.model == fringe_protocol::ModelKind::Relaxation
+        && wire.params.first() == Some(&fringe_calibration::product::LAYOUT_VERSION_DENSITY_INPUT)
 }
 
 /// Whether a calibration is a relaxation model in a parameter layout after
@@ -252,6 +274,12 @@ pub fn push(
     }
     if takes_sigma_hold(wire) && lacks(Capabilities::SIGMA_HOLD) {
         return Err(ProductError::NoSigmaHold {
+            name: file.name.clone(),
+            serial,
+        });
+    }
+    if takes_relaxation_density(wire) && lacks(Capabilities::RELAXATION_DENSITY) {
+        return Err(ProductError::NoRelaxationDensity {
             name: file.name.clone(),
             serial,
         });

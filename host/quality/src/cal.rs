@@ -514,6 +514,9 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
             // parameter were chosen with the lab values too, so each fold
             // refits them (about 0.1 s for 40 samples, release build).
             refit_nonlinear_in_cv: true,
+            // With --density-input the mixing model takes each sample's
+            // (and on the device each reading's) bulk density.
+            density_input: args.density_input,
             ..RelaxationOptions::new(b, p)
         })
     };

@@ -101,6 +101,10 @@ pub struct DeviceSection {
     /// before it did (so does `static_terms = false`).
     #[serde(default = "yes")]
     pub sigma_hold: bool,
+    /// Whether the device takes a relaxation calibration with the density
+    /// input (the default); `false` refuses one as firmware before it did.
+    #[serde(default = "yes")]
+    pub relaxation_density: bool,
 }
 
 fn yes() -> bool {

@@ -20,6 +20,7 @@ fn capability_names(c: Capabilities) -> Vec<&'static str> {
         (Capabilities::DENSITY_INPUT, "density_input"),
         (Capabilities::STATIC_TERMS, "static_terms"),
         (Capabilities::SIGMA_HOLD, "sigma_hold"),
+        (Capabilities::RELAXATION_DENSITY, "relaxation_density"),
     ]
     .into_iter()
     .filter(|(f, _)| c.contains(*f))
