@@ -6,7 +6,10 @@
 //!   u^2 = (d moisture/d eps' * sd)^2 + SEC^2.
 //! - Relaxation model: [`invert`] -> (eps_hf, d_eps, sigma) with covariance
 //!   C; u^2 = g^T C g + SEC^2 with g the moisture gradient
-//!   ([`RelaxationModel::gradient`]).
+//!   ([`RelaxationModel::gradient`]); with the density input (layout 4)
+//!   at the reading's bulk density, and without one at the calibration's
+//!   reference density with the spread of the moisture over the calibrated
+//!   densities added (`DENSITY_MISSING`).
 //! - Multivariate model: moisture from the features of both channels;
 //!   u^2 = sum_k (d moisture/d e_k sd_k)^2 + SEC^2 over eps' and eps'' of
 //!   both frequencies ([`MultivariateModel::moisture_and_gradient`]).
@@ -459,34 +462,41 @@ mod tests {
     /// memory).
     #[test]
     fn the_relaxation_model_takes_the_readings_density() {
-        let base = identity_cal::<f64>();
-        let ProductModel::Relaxation(rm) = base.model else {
+        let ProductModel::Relaxation(base) = identity_cal::<f64>().model else {
             panic!("kind")
         };
+        // With the static terms and the conductivity term too, so that
+        // every part of the moisture and its gradient is at the density.
+        let rm = RelaxationModel {
+            c_sigma: 0.3,
+            c_static: [0.05, -0.001],
+            static_hold: Range::new(0.0, 60.0),
+            ..base
+        };
         let rho0 = rm.mixture.bulk_density_kg_m3;
-        let m = ProductModel::Relaxation(RelaxationModel {
+        let (lo, hi) = (0.9 * rho0 as f32, 1.1 * rho0 as f32);
+        let r = Range::new;
+        let cal_of = |m: RelaxationModel<f64>| {
+            let (p, n) = ProductModel::Relaxation(m).to_params();
+            let mut ins = vec![r(1.5, 40.0), r(0.0, 500.0), r(1e-6, 1.0), r(0.0, 40.0)];
+            if m.density_input {
+                ins.push(r(lo, hi));
+            }
+            ProductCalibration::<f64>::from_parts(
+                ModelKind::Relaxation,
+                &p[..n],
+                Basis::Wet,
+                r(5.0, 30.0),
+                r(0.0, 50.0),
+                &ins,
+                0.25,
+            )
+            .unwrap()
+        };
+        let cal = cal_of(RelaxationModel {
             density_input: true,
             ..rm
         });
-        let (p, n) = m.to_params();
-        let r = Range::new;
-        let (lo, hi) = (0.9 * rho0 as f32, 1.1 * rho0 as f32);
-        let cal = ProductCalibration::<f64>::from_parts(
-            ModelKind::Relaxation,
-            &p[..n],
-            Basis::Wet,
-            r(5.0, 30.0),
-            r(0.0, 50.0),
-            &[
-                r(1.5, 40.0),
-                r(0.0, 500.0),
-                r(1e-6, 1.0),
-                r(0.0, 40.0),
-                r(lo, hi),
-            ],
-            0.25,
-        )
-        .unwrap();
         let s = SynthSample {
             moisture_pct: 15.0,
             temperature_c: 20.0,
@@ -497,19 +507,17 @@ mod tests {
             i.bulk_density_kg_m3 = rho;
             estimate(&i, Some(&cal))
         };
-        // At the reference density, as without the density input.
-        let plain = estimate(&input::<f64>(&s, 0.01), Some(&base));
+        // At a density, as a calibration without the density input made at
+        // that density: the same moisture and the same uncertainty.
+        for rho in [rho0, 0.95 * rho0, 1.05 * rho0] {
+            let e = at(Some(rho));
+            let want = estimate(&input::<f64>(&s, 0.01), Some(&cal_of(rm.at_density(rho))));
+            assert!((e.moisture_pct.unwrap() - want.moisture_pct.unwrap()).abs() < 1e-9);
+            assert!((e.uncertainty_pct - want.uncertainty_pct).abs() < 1e-9);
+            assert!(e.flags.is_empty(), "{:?}", e.flags);
+        }
         let e0 = at(Some(rho0));
-        assert!((e0.moisture_pct.unwrap() - plain.moisture_pct.unwrap()).abs() < 1e-9);
-        assert!(e0.flags.is_empty(), "{:?}", e0.flags);
-        // Denser: the model at that density.
-        let rho = 1.05 * rho0;
-        let e = at(Some(rho));
-        let params = e.inversion.unwrap().params;
-        let want = rm.at_density(rho).moisture_pct(&params, s.temperature_c);
-        assert!((e.moisture_pct.unwrap() - want).abs() < 1e-9);
-        assert!(e.moisture_pct.unwrap() < e0.moisture_pct.unwrap());
-        assert!(e.flags.is_empty());
+        assert!(at(Some(1.05 * rho0)).moisture_pct.unwrap() < e0.moisture_pct.unwrap());
         // Outside the calibrated densities: flagged.
         assert!(at(Some(1.2 * rho0))
             .flags

@@ -1282,6 +1282,9 @@ pub(crate) mod tests {
             let (mut p, n) = ProductModel::Relaxation(m).to_params();
             assert_eq!((n, p[0]), (RELAXATION_SIGMA_HOLD_LEN, 4.0));
             let back = ProductModel::<f64>::from_params(ModelKind::Relaxation, &p[..n]).unwrap();
+            // Every value as written, the hold's included.
+            let (again, k) = back.to_params();
+            assert_eq!(&again[..k], &p[..n]);
             let ProductModel::Relaxation(b) = back else {
                 panic!("kind")
             };

@@ -737,7 +737,7 @@ fn the_law_fit_keeps_every_sample_where_the_device_can_find_it() {
 /// too.) Read without a
 /// density, every reading is flagged, falls back on the calibration's
 /// reference density, and its widened 95 % interval still covers 90-100 %
-/// of the samples (measured 0.93-1.00 on the wood chips). (Synthetic
+/// of the samples (measured 0.90-1.00 on the wood chips). (Synthetic
 /// products of `fit::zoo`; the density gauge reads with 1 % noise,
 /// invented.)
 #[test]

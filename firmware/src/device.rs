@@ -445,7 +445,8 @@ fn check_cell(c: &CellCal, freqs: &[f32; N_FREQ]) -> Result<(), Refusal> {
 }
 
 /// The parameter layout of a relaxation calibration as written (1 plain, 2
-/// with the static terms, 3 with the conductivity hold; checked by
+/// with the static terms, 3 with the conductivity hold, 4 with the density
+/// input; checked by
 /// [`check_product`]); 0 for other models.
 fn relaxation_layout(c: &ProductCal) -> u8 {
     match (c.model, c.params.first()) {

@@ -113,8 +113,9 @@ fn the_density_input_is_taken_only_by_firmware_that_announces_it() {
     big_stack(|| {
         let (taken, caps) = write_to(58, |_| {}, with_density());
         assert!(taken && caps.contains(Capabilities::RELAXATION_DENSITY));
-        // Firmware before it, and firmware without the density request,
-        // refuse it and still take layout 3.
+        // Firmware before it, firmware without the density request and
+        // firmware before the conductivity hold refuse it; firmware just
+        // before it still takes layout 3.
         for (seed, older) in [
             (
                 59,

@@ -672,14 +672,10 @@ fn monitor_raises_the_drift_alarms_of_fringe_drift_live() {
     }
 }
 
-/// `n` samples of the zoo's grain at the device's 1 and 20 MHz (synthetic,
-/// `fringe_calibration::fit::zoo`) as a reference table, written by the
-/// host's own table writer.
 /// `fringe cal fit --model relaxation` of 60 samples of the zoo's grain
-/// (seed 1) into the simulator's folder: the calibration file and the
-/// command's outcome (it succeeded).
-/// The relaxation model fitted on 60 samples of the zoo's grain, with the
-/// plant's density input (each sample's density in the table) or without.
+/// (seed 1) into the simulator's folder, with the plant's density input
+/// (each sample's density in the table) or without: the calibration file
+/// and the command's outcome (it succeeded).
 fn fit_zoo_grain(sim: &Sim, density_input: bool) -> (std::path::PathBuf, Outcome) {
     let table = sim.path("grain.csv");
     write_zoo_table(&table, 60, 1, density_input);
@@ -706,6 +702,9 @@ fn fit_zoo_grain(sim: &Sim, density_input: bool) -> (std::path::PathBuf, Outcome
     (cal, o)
 }
 
+/// `n` samples of the zoo's grain at the device's 1 and 20 MHz (synthetic,
+/// `fringe_calibration::fit::zoo`) as a reference table, written by the
+/// host's own table writer, with each sample's density or without.
 fn write_zoo_table(path: &Path, n: usize, seed: u64, density: bool) {
     use fringe_calibration::fit::zoo::{Draw, Family};
     use fringe_quality::samples::{write_samples, RefSample};

@@ -86,7 +86,8 @@ pub struct Sample {
     pub channels: Vec<ChannelReading>,
     /// Bulk density at the sensor when the sample was taken, kg/m^3, where
     /// the plant measures it (a weigh belt, a gauge); used by a
-    /// multivariate fit with [`MultivariateOptions::density_input`].
+    /// multivariate fit with [`MultivariateOptions::density_input`] and a
+    /// relaxation fit with [`RelaxationOptions::density_input`].
     pub bulk_density_kg_m3: Option<f64>,
 }
 
@@ -436,8 +437,8 @@ pub struct RelaxationOptions {
     pub static_terms: bool,
     /// The mixing model takes each sample's bulk density (the plant's
     /// density input; every sample needs one) instead of
-    /// `bulk_density_kg_m3`, which stays the reference for a reading
-    /// without one (default false).
+    /// `bulk_density_kg_m3`; the samples' mean is then the reference for a
+    /// reading without one (default false).
     pub density_input: bool,
 }
 
@@ -1846,6 +1847,15 @@ fn relaxation_core(
         })
         .collect();
     // Stage 2: the mixing parameter by golden section on the regression RSS.
+    // With the density input the mixing model takes each sample's density;
+    // the mixture's own is the reference for a reading without one: the
+    // samples' mean (as the multivariate model's).
+    let rho: Vec<f64> = sub.iter().filter_map(|s| s.bulk_density_kg_m3).collect();
+    let bulk_density_kg_m3 = if opts.density_input && !rho.is_empty() {
+        rho.iter().sum::<f64>() / rho.len() as f64
+    } else {
+        opts.bulk_density_kg_m3
+    };
     let mut core = RelaxationCore {
         law,
         law_std_err,
@@ -1854,7 +1864,7 @@ fn relaxation_core(
             exponent: 0.5,
             eps_dry: 3.0,
             particle_density_kg_m3: opts.particle_density_kg_m3,
-            bulk_density_kg_m3: opts.bulk_density_kg_m3,
+            bulk_density_kg_m3,
         },
         params,
         density_input: opts.density_input,
@@ -2952,7 +2962,8 @@ pub struct CompareOptions {
     /// One cross-validation split for every model.
     pub folds: Folds,
     /// The multivariate models take each sample's bulk density as an input
-    /// ([`MultivariateOptions::density_input`]).
+    /// ([`MultivariateOptions::density_input`]), and the relaxation model's
+    /// mixing model takes it ([`RelaxationOptions::density_input`]).
     pub density_input: bool,
 }
 

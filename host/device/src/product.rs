@@ -78,7 +78,7 @@ pub enum ProductError {
     },
     /// The calibration is a relaxation model whose mixing model takes the
     /// plant's bulk density, which the device's firmware predates.
-    #[error("{name} is a relaxation calibration whose mixing model takes the plant's bulk density with every reading (parameter layout 4, fitted with --density-input), but {serial}'s firmware does not announce it (no relaxation_density capability) and would refuse it. Update the device's firmware, or fit this device's calibration with --density-input and --model multivariate; nothing written")]
+    #[error("{name} is a relaxation calibration whose mixing model takes the plant's bulk density with every reading (parameter layout 4, fitted with --density-input), but {serial}'s firmware does not announce it (no relaxation_density capability) and would refuse it. Update the device's firmware, or fit this device's calibration with --model multivariate, or without --density-input; nothing written")]
     NoRelaxationDensity {
         /// Product name.
         name: String,
@@ -260,6 +260,14 @@ pub fn push(
             .identity()
             .is_some_and(|id| id.capabilities.contains(c))
     };
+    // (Layout 4 first: it also has layout 3's length and the density, and
+    // its own message says what the device lacks.)
+    if takes_relaxation_density(wire) && lacks(Capabilities::RELAXATION_DENSITY) {
+        return Err(ProductError::NoRelaxationDensity {
+            name: file.name.clone(),
+            serial,
+        });
+    }
     if takes_density(wire) && lacks(Capabilities::DENSITY_INPUT) {
         return Err(ProductError::NoDensityInput {
             name: file.name.clone(),
@@ -274,12 +282,6 @@ pub fn push(
     }
     if takes_sigma_hold(wire) && lacks(Capabilities::SIGMA_HOLD) {
         return Err(ProductError::NoSigmaHold {
-            name: file.name.clone(),
-            serial,
-        });
-    }
-    if takes_relaxation_density(wire) && lacks(Capabilities::RELAXATION_DENSITY) {
-        return Err(ProductError::NoRelaxationDensity {
             name: file.name.clone(),
             serial,
         });

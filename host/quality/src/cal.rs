@@ -200,8 +200,9 @@ pub struct FitOptions {
     /// Particle density of the dry matter, kg/m^3 (relaxation model).
     pub particle_density_kg_m3: Option<f64>,
     /// The multivariate models take the table's `bulk_density_kg_m3`
-    /// column (a plant's weigh belt or gauge) as an input; every sample
-    /// needs a value.
+    /// column (a plant's weigh belt or gauge) as an input, and the
+    /// relaxation model's mixing model takes it; every sample needs a
+    /// value.
     pub density_input: bool,
     /// Polynomial degree of the regression, 1-3.
     pub degree: u8,

@@ -43,8 +43,9 @@ pub struct FitArgs {
     #[arg(long, value_name = "KG_M3")]
     pub particle_density_kg_m3: Option<f64>,
     /// Use the table's bulk_density_kg_m3 column (the density at the sensor from a weigh
-    /// belt or gauge, every row) as an input of the multivariate models; the device then
-    /// needs the plant's density with each reading (without one it flags density_missing).
+    /// belt or gauge, every row) as an input of the multivariate models and in the
+    /// relaxation model's mixing model; the device then needs the plant's density with each
+    /// reading (without one it flags density_missing).
     #[arg(long)]
     pub density_input: bool,
     /// Polynomial degree of the regression, 1-3.
