@@ -73,16 +73,7 @@ fn density_table(seed: u64) {
         };
         let mut cells = Vec::new();
         for g in [f, fixed] {
-            let opts = CompareOptions {
-                single: SingleOptions::default(),
-                relaxation: Some(RelaxationOptions {
-                    refit_nonlinear_in_cv: true,
-                    ..RelaxationOptions::new(g.bulk_density_kg_m3, g.particle_density_kg_m3)
-                }),
-                eps_sd: g.eps_noise_sd.max(1e-3),
-                folds: Folds::LeaveOneOut,
-                density_input: false,
-            };
+            let opts = loo_compare(&g, false);
             let train = g.samples(&Draw::new(60, pair), seed);
             let val = g.samples(&Draw::new(200, pair), seed + 1000);
             cells.push(match compare_models(&train, &opts) {
@@ -141,19 +132,7 @@ fn density_table(seed: u64) {
                 Err(_) => "refused".into(),
             }
         };
-        let chosen_dens = match compare_models(
-            &train,
-            &CompareOptions {
-                single: SingleOptions::default(),
-                relaxation: Some(RelaxationOptions {
-                    refit_nonlinear_in_cv: true,
-                    ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
-                }),
-                eps_sd: f.eps_noise_sd.max(1e-3),
-                folds: Folds::LeaveOneOut,
-                density_input: true,
-            },
-        ) {
+        let chosen_dens = match compare_models(&train, &loo_compare(&f, true)) {
             Ok(c) => format!(
                 "{} {:.3}",
                 c.chosen.name(),
@@ -176,6 +155,22 @@ fn density_table(seed: u64) {
             relax(false),
             relax(true)
         );
+    }
+}
+
+/// The comparison of `cal fit --model compare` below 100 samples (leave-one-
+/// out, the relaxation model refitted in every fold), with the density
+/// input or without.
+fn loo_compare(f: &Family, density_input: bool) -> CompareOptions {
+    CompareOptions {
+        single: SingleOptions::default(),
+        relaxation: Some(RelaxationOptions {
+            refit_nonlinear_in_cv: true,
+            ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+        }),
+        eps_sd: f.eps_noise_sd.max(1e-3),
+        folds: Folds::LeaveOneOut,
+        density_input,
     }
 }
 
@@ -342,16 +337,7 @@ fn main() {
     );
     for f in Family::all() {
         for pair in FREQ_PAIRS {
-            let opts = CompareOptions {
-                single: SingleOptions::default(),
-                relaxation: Some(RelaxationOptions {
-                    refit_nonlinear_in_cv: true,
-                    ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
-                }),
-                eps_sd: f.eps_noise_sd.max(1e-3),
-                folds: Folds::LeaveOneOut,
-                density_input: false,
-            };
+            let opts = loo_compare(&f, false);
             let train = f.samples(&Draw::new(60, pair), seed);
             let t0 = Instant::now();
             let cmp = compare_models(&train, &opts);

@@ -485,33 +485,8 @@ fn a_push_of_the_conductivity_hold_needs_firmware_that_takes_it() {
         sigma_hold: false,
         ..ScenarioSpec::clean("HGM-L2-0206", seed(26))
     });
-    let db = sim.path("bench.db");
-    let key = key_file(&sim);
     let (cal, _) = fit_zoo_grain(&sim, false);
-    let before = run(
-        &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
-        LIMIT,
-    );
-    assert_eq!(before.code, 0, "{}", before.stderr);
-    let o = run(
-        &mut cal_write(
-            &sim,
-            &key,
-            &db,
-            "push",
-            &[
-                "--cal",
-                cal.to_str().unwrap(),
-                "--reason",
-                "test calibration",
-                "--activate",
-                "true",
-                "--yes",
-                "--force",
-            ],
-        ),
-        LIMIT,
-    );
+    let (before, o, after) = push_with_slots(&sim, &cal, "true");
     assert_fails(
         &o,
         1,
@@ -520,10 +495,6 @@ fn a_push_of_the_conductivity_hold_needs_firmware_that_takes_it() {
             "no sigma_hold capability",
             "nothing written",
         ],
-    );
-    let after = run(
-        &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
-        LIMIT,
     );
     assert_eq!(
         after.stdout, before.stdout,
@@ -542,8 +513,6 @@ fn a_push_of_the_relaxation_density_input_needs_firmware_that_takes_it() {
             relaxation_density: takes,
             ..ScenarioSpec::clean(serial, seed(seed_n))
         });
-        let db = sim.path("bench.db");
-        let key = key_file(&sim);
         let (cal, fit) = fit_zoo_grain(&sim, true);
         assert!(
             std::fs::read_to_string(&cal)
@@ -552,34 +521,7 @@ fn a_push_of_the_relaxation_density_input_needs_firmware_that_takes_it() {
             "layout 4: {}",
             fit.stdout
         );
-        let before = run(
-            &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
-            LIMIT,
-        );
-        assert_eq!(before.code, 0, "{}", before.stderr);
-        let o = run(
-            &mut cal_write(
-                &sim,
-                &key,
-                &db,
-                "push",
-                &[
-                    "--cal",
-                    cal.to_str().unwrap(),
-                    "--reason",
-                    "test calibration",
-                    "--activate",
-                    "false",
-                    "--yes",
-                    "--force",
-                ],
-            ),
-            LIMIT,
-        );
-        let after = run(
-            &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
-            LIMIT,
-        );
+        let (before, o, after) = push_with_slots(&sim, &cal, "false");
         if takes {
             assert_eq!(o.code, 0, "{}", o.stderr);
             assert_ne!(after.stdout, before.stdout, "the calibration written");
@@ -599,6 +541,42 @@ fn a_push_of_the_relaxation_density_input_needs_firmware_that_takes_it() {
             );
         }
     }
+}
+
+/// `cal push --force` of `cal` to the simulated device (activated or not),
+/// between two `cal list --json`: the slots before, the push's outcome,
+/// the slots after.
+fn push_with_slots(sim: &Sim, cal: &Path, activate: &str) -> (Outcome, Outcome, Outcome) {
+    let db = sim.path("bench.db");
+    let key = key_file(sim);
+    let list = || {
+        run(
+            &mut fringe(&["cal", "list", "--port", sim.port_str(), "--json"]),
+            LIMIT,
+        )
+    };
+    let before = list();
+    assert_eq!(before.code, 0, "{}", before.stderr);
+    let o = run(
+        &mut cal_write(
+            sim,
+            &key,
+            &db,
+            "push",
+            &[
+                "--cal",
+                cal.to_str().unwrap(),
+                "--reason",
+                "test calibration",
+                "--activate",
+                activate,
+                "--yes",
+                "--force",
+            ],
+        ),
+        LIMIT,
+    );
+    (before, o, list())
 }
 
 /// Build-up on the window during an empty spell: `fringe monitor` on the
