@@ -193,8 +193,7 @@ pub fn estimate<T: Real>(
             // With the density input the mixing model takes the reading's
             // bulk density; without one, the calibration's reference
             // density, flagged, with the moisture's spread over the
-            // calibrated densities (uniform, width / sqrt(12): GUM, JCGM
-            // 100:2008, 4.3.7; from memory) in the uncertainty.
+            // calibrated densities in the uncertainty.
             let rho = input
                 .bulk_density_kg_m3
                 .filter(|r| r.is_finite() && *r > T::zero());
@@ -209,9 +208,7 @@ pub fn estimate<T: Real>(
                 (true, None) => {
                     flags |= EstimateFlags::DENSITY_MISSING;
                     if let Some(rg) = ranges.get(4) {
-                        let d = (rm.at_density(rg.max).moisture_pct(&p, t)
-                            - rm.at_density(rg.min).moisture_pct(&p, t))
-                            / T::sqrt(T::c(12.0));
+                        let d = rm.moisture_sd_over_densities(&p, t, *rg);
                         if d.is_finite() {
                             var_density = d * d;
                         }

@@ -392,6 +392,25 @@ impl<T: Real> RelaxationModel<T> {
         m
     }
 
+    /// The model at a reading's bulk density where it takes the density
+    /// input and the reading has one; otherwise itself.
+    pub fn at_reading_density(&self, rho_kg_m3: Option<T>) -> Self {
+        match rho_kg_m3 {
+            Some(rho) if self.density_input => self.at_density(rho),
+            _ => *self,
+        }
+    }
+
+    /// The standard deviation of the moisture of `p` at `t_c` over the
+    /// bulk densities `rho` with equal chance (a uniform distribution,
+    /// (m(max) - m(min)) / sqrt(12): GUM, JCGM 100:2008, 4.3.7; from
+    /// memory): what a reading without its density adds to the
+    /// uncertainty.
+    pub fn moisture_sd_over_densities(&self, p: &MaterialParams<T>, t_c: T, rho: Range<T>) -> T {
+        let m = |r: T| self.at_density(r).moisture_pct(p, t_c);
+        T::abs(m(rho.max) - m(rho.min)) / T::sqrt(T::c(12.0))
+    }
+
     /// Mixing-model moisture m (% wet basis) from eps_hf at `t_c`.
     pub fn mixing_moisture_pct(&self, eps_hf: T, t_c: T) -> T {
         self.mixture

@@ -1276,11 +1276,9 @@ impl IntervalModel {
                     sd: self.eps_sd,
                 });
                 let inv = invert(&obs, &m.law, temperature_c, &InvertOptions::default()).ok()?;
-                let m = match rho_kg_m3 {
-                    Some(rho) if m.density_input => m.at_density(rho),
-                    _ => *m,
-                };
-                m.features(&inv.params, temperature_c).to_vec()
+                m.at_reading_density(rho_kg_m3)
+                    .features(&inv.params, temperature_c)
+                    .to_vec()
             }
             ProductModel::Multivariate(m) => {
                 let (x, _) = m.features(
@@ -1366,9 +1364,11 @@ impl IntervalModel {
                         d_eps: f64::from(inv.params.d_eps),
                         sigma_s_m: f64::from(inv.params.sigma_s_m),
                     };
-                    let at =
-                        |rho: f32| m.at_density(f64::from(rho)).moisture_pct(&p, temperature_c);
-                    (at(rg.max) - at(rg.min)) / 12f64.sqrt()
+                    m.moisture_sd_over_densities(
+                        &p,
+                        temperature_c,
+                        Range::new(f64::from(rg.min), f64::from(rg.max)),
+                    )
                 }),
                 ProductModel::SingleFrequency(_) => 0.0,
             };
@@ -1638,10 +1638,7 @@ fn static_hold_of(
 /// `model` at the sample's bulk density where the model takes the density
 /// input (the fit checks every sample has one).
 fn at_sample(model: &RelaxationModel<f64>, s: &Sample) -> RelaxationModel<f64> {
-    match s.bulk_density_kg_m3 {
-        Some(rho) if model.density_input => model.at_density(rho),
-        _ => *model,
-    }
+    model.at_reading_density(s.bulk_density_kg_m3)
 }
 
 /// The regression's features of `samples` (whose parameters at the law are
