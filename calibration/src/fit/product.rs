@@ -1697,12 +1697,31 @@ const LAW_STARTS: usize = 3;
 /// Iterations each start of the joint law fit gets before the best goes on.
 const LAW_RACE: usize = 25;
 
-/// Both stages on the samples `rows`.
+/// How many samples' parameters of a law fit lie on a bound of the
+/// device's inversion that the relaxation fit leaves a sample out for
+/// (sigma on its lower bound is accepted).
+fn pinned(params: &[[f64; 3]]) -> usize {
+    let b = crate::invert::Bounds::<f64>::default();
+    params
+        .iter()
+        .filter(|p| {
+            p[0] <= b.eps_hf.0 * (1.0 + 1e-9)
+                || p[0] >= b.eps_hf.1 * (1.0 - 1e-9)
+                || p[1] >= b.d_eps.1 * (1.0 - 1e-9)
+                || p[2].exp() >= b.sigma_s_m.1 * (1.0 - 1e-9)
+        })
+        .count()
+}
+
+/// Both stages on the samples `rows`. The law is the joint fit's of lowest
+/// cost among its starts, or with `fewest_pinned` the one that puts the
+/// fewest samples on the inversion's bounds (then of lowest cost).
 fn relaxation_core(
     samples: &[Sample],
     checked: &Checked,
     rows: &[usize],
     opts: &RelaxationOptions,
+    fewest_pinned: bool,
 ) -> Result<RelaxationCore, ProductFitError> {
     let sub: Vec<&Sample> = rows.iter().map(|i| &samples[*i]).collect();
     let temps: Vec<f64> = sub.iter().map(|s| s.temperature_c).collect();
@@ -1789,7 +1808,14 @@ fn relaxation_core(
             LAW_RACE,
         ) {
             Ok(fit) => {
-                if law_fit.as_ref().is_none_or(|b| fit.cost < b.cost) {
+                let better = match law_fit.as_ref() {
+                    None => true,
+                    Some(b) if fewest_pinned => {
+                        (pinned(&fit.params), fit.cost) < (pinned(&b.params), b.cost)
+                    }
+                    Some(b) => fit.cost < b.cost,
+                };
+                if better {
                     law_fit = Some(fit);
                 }
             }
@@ -1968,6 +1994,17 @@ fn check_relaxation_options(opts: &RelaxationOptions) -> Result<(), ProductFitEr
 /// [`ProductFit::excluded`], and the fit repeated without it (at most four
 /// rounds, at most a fifth of the samples).
 ///
+/// The relaxation law is the joint fit's of lowest cost among its starts.
+/// Where the fit with that law is refused for the samples it cannot use,
+/// the whole fit is repeated with the law, among the same starts, that
+/// puts the fewest samples on the inversion's bounds, and kept with a note
+/// if it succeeds: the law of lowest cost is not always one at which the
+/// device can find every sample's parameters (on a product with a
+/// bound-water relaxation between the frequencies besides the interfacial
+/// one above them, a law with the interfacial relaxation's frequency far
+/// above the band put eps_hf on its lower bound for a tenth of the
+/// samples; BENCHMARKS.md).
+///
 /// # Errors
 /// [`ProductFitError`]: refused samples (named by id and field), bad
 /// options, a relaxation law the spectra do not determine, or too few
@@ -1976,7 +2013,32 @@ pub fn fit_relaxation(
     samples: &[Sample],
     opts: &RelaxationOptions,
 ) -> Result<ProductFit, ProductFitError> {
-    let cache = CoreCache::default();
+    let first = fit_relaxation_law(samples, opts, CoreCache::default());
+    let left_out = match &first {
+        Err(ProductFitError::TooManyExcluded { excluded, .. }) => excluded.len(),
+        _ => return first,
+    };
+    let cache = CoreCache {
+        fewest_pinned: true,
+        ..CoreCache::default()
+    };
+    match fit_relaxation_law(samples, opts, cache) {
+        Ok(mut f) => {
+            f.notes.push(format!(
+                "relaxation law: of the joint fit's starts, the one that puts the fewest samples on the inversion's bounds, not the one of lowest cost (with that one the fit left {left_out} sample(s) out and was refused)"
+            ));
+            Ok(f)
+        }
+        _ => first,
+    }
+}
+
+/// [`fit_relaxation`] with the law chosen as `cache` says.
+fn fit_relaxation_law(
+    samples: &[Sample],
+    opts: &RelaxationOptions,
+    cache: CoreCache,
+) -> Result<ProductFit, ProductFitError> {
     let plain = RelaxationOptions {
         static_terms: false,
         ..*opts
@@ -2050,8 +2112,13 @@ fn static_terms_may_cause(e: &ProductFitError) -> bool {
 /// The relaxation law and mixture fitted on a set of samples (by their
 /// indices in the table `fit_relaxation` was given), kept so that the fit
 /// with and the fit without the static terms, which share them, compute
-/// each once.
-type CoreCache = std::sync::Mutex<std::collections::HashMap<Vec<usize>, RelaxationCore>>;
+/// each once; and how the law is chosen among the joint fit's starts
+/// ([`relaxation_core`]'s `fewest_pinned`).
+#[derive(Default)]
+struct CoreCache {
+    cores: std::sync::Mutex<std::collections::HashMap<Vec<usize>, RelaxationCore>>,
+    fewest_pinned: bool,
+}
 
 /// [`relaxation_core`] on `rows` of `samples`, from `cache` where it holds
 /// the same samples (`key`: their indices in the whole table).
@@ -2063,11 +2130,11 @@ fn cached_core(
     rows: &[usize],
     opts: &RelaxationOptions,
 ) -> Result<RelaxationCore, ProductFitError> {
-    if let Some(c) = cache.lock().ok().and_then(|m| m.get(&key).cloned()) {
+    if let Some(c) = cache.cores.lock().ok().and_then(|m| m.get(&key).cloned()) {
         return Ok(c);
     }
-    let c = relaxation_core(samples, checked, rows, opts)?;
-    if let Ok(mut m) = cache.lock() {
+    let c = relaxation_core(samples, checked, rows, opts, cache.fewest_pinned)?;
+    if let Ok(mut m) = cache.cores.lock() {
         m.insert(key, c.clone());
     }
     Ok(c)
