@@ -24,6 +24,10 @@ pub enum Basis {
     Dry,
 }
 
+/// Highest moisture on a dry basis a calibration takes, % (90.9 % on a wet
+/// basis; green wood and biomass exceed 100 % on a dry basis).
+pub const MAX_DRY_BASIS_PCT: f64 = 1000.0;
+
 /// Dry basis from wet basis: M_db = 100 M_wb / (100 - M_wb), % (M_wb < 100).
 #[inline]
 pub fn wet_to_dry<T: Real>(m_wb_pct: T) -> T {

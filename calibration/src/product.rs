@@ -62,7 +62,7 @@
 //!  [4] fr_exponent p           [5] fr_temp_coeff_per_c
 //!  [6] mixing exponent a (0..=1; 0 logarithmic, 0.5 CRIM)
 //!  [7] eps_dry (>= 1)          [8] particle_density_kg_m3 (0 < rho <= 5000)
-//!  [9] bulk_density_kg_m3 (> 0, below the particle density and 1000)
+//!  [9] bulk_density_kg_m3 (> 0, below the particle density)
 //!  [10] t_ref_c (of the c_t term and of the law's c_T)
 //!  [11] p0 [12] p1 [13] p2 [14] p3  (% per m^k)
 //!  [15] c_t (% per K)          [16] c_s (% per unit ln(sigma/sigma_ref))

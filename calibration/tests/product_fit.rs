@@ -280,12 +280,16 @@ fn refuses_bad_samples_by_name() {
         ProductFitError::WrongChannelCount { got: 3, .. }
     ));
 
-    let mut s = base;
-    s[0].moisture_pct = 120.0;
-    assert!(matches!(
-        fit_single(&s, &SingleOptions::default()).unwrap_err(),
-        ProductFitError::MoistureOutOfRange { .. }
-    ));
+    // Below 0, or at 1000 % (90.9 % wet basis) and above: refused on
+    // either basis (a dry basis exceeds 100 % on wood and biomass).
+    for m in [-0.5, 1000.0] {
+        let mut s = base.clone();
+        s[0].moisture_pct = m;
+        assert!(matches!(
+            fit_single(&s, &SingleOptions::default()).unwrap_err(),
+            ProductFitError::MoistureOutOfRange { .. }
+        ));
+    }
 }
 
 /// Leave-one-out by the exact least-squares downdate gives the same

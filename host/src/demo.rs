@@ -3,7 +3,7 @@
 //! Harrowgate Mill (our own invention) dries wheat; the sensor HGM-L2-0007
 //! sits at the line 2 dryer outlet. The demo calibrates the sensor cell on
 //! the bench, captures reference samples of "HM wheat L2" with lab values,
-//! fits both product models and compares them, pushes the better one with
+//! fits every product model and compares them, pushes the chosen one with
 //! an audit record, monitors a shift in which the salt content of the grain
 //! varies and the window slowly fouls, checks the line with lab grab
 //! samples, runs the drift monitors, exports and verifies an audit bundle
@@ -315,7 +315,7 @@ fn run_in(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
     stage(
         3,
         total,
-        "fitting both product models on the same samples (leave-one-out cross-validation)",
+        "fitting every product model on the same samples (leave-one-out cross-validation)",
     );
     let fit_args = FitArgs {
         samples: outs.samples.clone(),

@@ -125,6 +125,90 @@ fn force_writes_and_keeps_the_override_and_push_refuses_it() {
     assert!(!db.exists(), "no database created");
 }
 
+/// A refusal `cal push` cannot check again on the file (a valid range set
+/// by one sample: the file keeps the ranges, not the samples), overridden
+/// at fit, needs `--force` again at push, and is named there.
+#[test]
+fn a_range_forced_at_fit_needs_force_again_at_push() {
+    let dir = tempfile::tempdir().expect("dir");
+    let mut far = rows(24, 0.0);
+    far.push("FAR,15,120,1000000,5.75,0.9,20000000,4.8,0.3".into());
+    let (o, out) = fit(dir.path(), &far, &["--force"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let db = dir.path().join("line.db");
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "push", "--port", "/nonexistent/port", "--key-file"])
+        .arg(dir.path().join("no.key"))
+        .arg("--db")
+        .arg(&db)
+        .arg("--cal")
+        .arg(&out)
+        .args(["--operator", "T. Tester", "--reason", "gate test", "--yes"])
+        .output()
+        .expect("run fringe");
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(5), "{err}");
+    assert!(
+        err.contains("temperature_c reaches 120 only through sample \"FAR\"")
+            && err.contains("(overridden at fit)"),
+        "{err}"
+    );
+    assert!(!db.exists(), "no database created");
+}
+
+/// Lab values on a dry basis above 100 % (green wood and biomass: water
+/// over dry mass) are an input error on the default wet basis, naming the
+/// cell and `--basis dry`, and fit with it; `cal predict` reads the table
+/// on the calibration's basis and predicts above 100 %.
+#[test]
+fn a_dry_basis_table_above_100_percent_fits_with_basis_dry() {
+    let dir = tempfile::tempdir().expect("dir");
+    // The made-up rows with 100 % added to the moisture: 110-124.5 %.
+    let dry: Vec<String> = rows(30, 0.0)
+        .iter()
+        .map(|r| {
+            let mut f: Vec<String> = r.split(',').map(String::from).collect();
+            f[1] = format!("{}", f[1].parse::<f64>().expect("moisture") + 100.0);
+            f.join(",")
+        })
+        .collect();
+    let (o, out) = fit(dir.path(), &dry, &[]);
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(3), "{err}");
+    assert!(
+        err.contains("line 2, column 2 (moisture_pct): `110` is not a moisture in % wet basis")
+            && err.contains("--basis dry"),
+        "{err}"
+    );
+    assert!(!out.exists());
+    let (o, out) = fit(dir.path(), &dry, &["--basis", "dry"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let text = std::fs::read_to_string(&out).expect("written");
+    assert!(text.contains("basis = \"dry\""), "{text}");
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "predict", "--cal"])
+        .arg(&out)
+        .arg("--input")
+        .arg(dir.path().join("lab.csv"))
+        .output()
+        .expect("run fringe");
+    assert!(o.status.success(), "{}", stderr(&o));
+    let csv = String::from_utf8_lossy(&o.stdout).into_owned();
+    let predicted: Vec<f64> = csv
+        .lines()
+        .skip(1)
+        .map(|l| {
+            l.split(',')
+                .nth(2)
+                .expect("column")
+                .parse()
+                .expect("number")
+        })
+        .collect();
+    assert_eq!(predicted.len(), 30, "{csv}");
+    assert!(predicted.iter().all(|m| *m > 105.0), "{csv}");
+}
+
 #[test]
 fn physically_impossible_values_are_input_errors() {
     let dir = tempfile::tempdir().expect("dir");

@@ -120,7 +120,10 @@ pub enum ProductFitError {
         /// Field name (with unit).
         field: &'static str,
     },
-    /// The lab moisture is outside 0-100 %.
+    /// The lab moisture is below 0 or not below
+    /// [`crate::moisture::MAX_DRY_BASIS_PCT`] (a sample's moisture is on the
+    /// calibration's basis, wet or dry; a table on a wet basis is held
+    /// below 100 % by whoever knows the basis).
     MoistureOutOfRange {
         /// Sample id.
         id: String,
@@ -250,7 +253,7 @@ impl core::fmt::Display for ProductFitError {
             }
             E::MoistureOutOfRange { id, moisture_pct } => write!(
                 f,
-                "sample {id:?}: lab moisture {moisture_pct} % is outside 0-100 % (wet basis)"
+                "sample {id:?}: lab moisture {moisture_pct} % is outside 0-100 % (wet basis) and 0-1000 % (dry basis)"
             ),
             E::DensityOutOfRange {
                 id,
@@ -635,7 +638,7 @@ fn check_samples(samples: &[Sample], needed: usize) -> Result<Checked, ProductFi
         if !s.moisture_pct.is_finite() {
             return Err(nf("moisture_pct"));
         }
-        if !(0.0..=100.0).contains(&s.moisture_pct) {
+        if !(0.0..crate::moisture::MAX_DRY_BASIS_PCT).contains(&s.moisture_pct) {
             return Err(E::MoistureOutOfRange {
                 id: s.id.clone(),
                 moisture_pct: s.moisture_pct,

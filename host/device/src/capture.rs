@@ -6,7 +6,7 @@ use std::path::{Path, PathBuf};
 
 use fringe_link::{Link, LinkError};
 use fringe_quality::samples::{
-    read_samples, write_samples, MoistureColumn, RefSample, SampleError,
+    read_samples, write_samples, Basis, MoistureColumn, RefSample, SampleError,
 };
 
 use crate::guide::{Cancelled, Guide};
@@ -115,7 +115,9 @@ pub fn capture(
 pub fn save_rows(path: &Path, rows: &[RefSample]) -> Result<(), CaptureError> {
     let mut all = Vec::new();
     if path.exists() {
-        all = read_samples(path, MoistureColumn::Optional)?.samples;
+        // The widest basis: the table's is the calibration's, chosen when
+        // it is fitted.
+        all = read_samples(path, MoistureColumn::Optional, Basis::Dry)?.samples;
         all.retain(|s| !rows.iter().any(|r| r.sample_id == s.sample_id));
     }
     all.extend(rows.iter().cloned());

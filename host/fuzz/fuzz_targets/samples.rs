@@ -9,7 +9,7 @@
 
 use std::path::Path;
 
-use fringe_quality::samples::{parse_samples, write_samples, MoistureColumn, SampleSet};
+use fringe_quality::samples::{parse_samples, write_samples, Basis, MoistureColumn, SampleSet};
 use libfuzzer_sys::fuzz_target;
 
 fn check(set: &SampleSet, moisture: MoistureColumn) {
@@ -24,7 +24,10 @@ fn check(set: &SampleSet, moisture: MoistureColumn) {
             s.sample_id
         );
         match s.moisture_pct {
-            Some(m) => assert!((0.0..100.0).contains(&m), "moisture {m}"),
+            Some(m) => assert!(
+                (0.0..fringe_quality::samples::MAX_DRY_BASIS_PCT).contains(&m),
+                "moisture {m}"
+            ),
             None => assert_eq!(moisture, MoistureColumn::Optional),
         }
         assert!((-40.0..=150.0).contains(&s.temperature_c));
@@ -44,7 +47,7 @@ fn check(set: &SampleSet, moisture: MoistureColumn) {
     // Written back (values rounded to the columns' digits), the ids survive.
     let mut out = Vec::new();
     write_samples(&mut out, &set.samples).expect("writes to memory");
-    if let Ok(again) = parse_samples(Path::new("again.csv"), &out, MoistureColumn::Optional) {
+    if let Ok(again) = parse_samples(Path::new("again.csv"), &out, MoistureColumn::Optional, Basis::Dry) {
         let ids = |s: &SampleSet| {
             s.samples
                 .iter()
@@ -57,7 +60,7 @@ fn check(set: &SampleSet, moisture: MoistureColumn) {
 
 fuzz_target!(|data: &[u8]| {
     for moisture in [MoistureColumn::Required, MoistureColumn::Optional] {
-        if let Ok(set) = parse_samples(Path::new("fuzz/lab.csv"), data, moisture) {
+        if let Ok(set) = parse_samples(Path::new("fuzz/lab.csv"), data, moisture, Basis::Dry) {
             check(&set, moisture);
         }
     }

@@ -282,8 +282,16 @@ pub fn gate_of_fit(f: &ProductFit, samples: &[Sample]) -> Vec<String> {
         .collect()
 }
 
+/// How a refusal overridden by `cal fit --force` is recorded in the file's
+/// `gate_overridden`.
+pub const FIT_OVERRIDE_PREFIX: &str = "at fit (--force): ";
+
 /// The quality gate on a calibration file's statistics (what `cal push`
-/// can check: RPD, R^2, samples per parameter): the refusals in words.
+/// can check again: RPD, R^2, samples per parameter), and every refusal
+/// overridden at fit that it cannot check again (a valid range set by one
+/// sample: the file keeps the ranges, not the samples), so that a
+/// calibration written with `--force` needs `--force` again to be pushed:
+/// the refusals in words.
 pub fn gate_of_file(s: &Statistics) -> Vec<String> {
     use fringe_calibration::fit::gate::{check, GateInput, Limits};
     let input = GateInput {
@@ -295,10 +303,20 @@ pub fn gate_of_file(s: &Statistics) -> Vec<String> {
         r2: s.r2,
         ranges: Vec::new(),
     };
-    check(&input, &Limits::default())
+    let mut refusals: Vec<String> = check(&input, &Limits::default())
         .iter()
         .map(ToString::to_string)
-        .collect()
+        .collect();
+    for r in s
+        .gate_overridden
+        .iter()
+        .filter_map(|o| o.strip_prefix(FIT_OVERRIDE_PREFIX))
+    {
+        if !refusals.iter().any(|x| x == r) {
+            refusals.push(format!("{r} (overridden at fit)"));
+        }
+    }
+    refusals
 }
 
 fn to_fit_samples(set: &SampleSet) -> Vec<Sample> {
@@ -464,7 +482,16 @@ pub fn wire_of(
 /// field), too few samples, missing densities, a failed fit, or the
 /// quality gate ([`GateRefused`]) unless `force`.
 pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
-    let set = read_samples(&args.samples, MoistureColumn::Required)?;
+    let basis = if args.basis == "dry" {
+        Basis::Dry
+    } else {
+        Basis::Wet
+    };
+    let lab_basis = match basis {
+        Basis::Wet => crate::samples::Basis::Wet,
+        Basis::Dry => crate::samples::Basis::Dry,
+    };
+    let set = read_samples(&args.samples, MoistureColumn::Required, lab_basis)?;
     let degree = usize::from(args.degree);
     let words = match args.model {
         FitModel::Single => "single-frequency",
@@ -627,11 +654,6 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
             max: fringe_protocol::NAME_LEN,
         });
     }
-    let basis = if args.basis == "dry" {
-        Basis::Dry
-    } else {
-        Basis::Wet
-    };
     let bytes = std::fs::read(&args.samples).map_err(|source| FitError::Read {
         path: args.samples.clone(),
         source,
@@ -640,7 +662,7 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
     let mut statistics = statistics_of(&chosen);
     statistics.gate_overridden = refusals
         .iter()
-        .map(|r| format!("at fit (--force): {r}"))
+        .map(|r| format!("{FIT_OVERRIDE_PREFIX}{r}"))
         .collect();
     let file = ProductFile::from_wire(
         &wire,
@@ -826,10 +848,14 @@ pub fn write_fit_summary(
                         c.model, st.sec, st.sep, st.bias, st.rpd
                     )?;
                     if !f.excluded.is_empty() {
+                        let ids: Vec<&str> =
+                            f.excluded.iter().take(5).map(|x| x.id.as_str()).collect();
                         writeln!(
                             w,
-                            "  (left out {} sample(s): not eligible)",
-                            f.excluded.len()
+                            "  (left out {} sample(s), {}{}: not eligible; --json says why)",
+                            f.excluded.len(),
+                            ids.join(", "),
+                            if f.excluded.len() > 5 { ", ..." } else { "" },
                         )?;
                     } else if f.stats.n < 5 * f.stats.n_coef {
                         writeln!(
@@ -902,7 +928,12 @@ pub fn write_fit_summary(
 /// # Errors
 /// A plotting failure.
 pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> Result<String, FitError> {
-    let set = read_samples(samples_path, MoistureColumn::Required)?;
+    // Read as the fit read it (the widest basis: it was checked there).
+    let set = read_samples(
+        samples_path,
+        MoistureColumn::Required,
+        crate::samples::Basis::Dry,
+    )?;
     let f = &o.chosen;
     let pv: Vec<(f64, f64)> = f
         .samples
@@ -985,22 +1016,26 @@ pub struct Predicted {
 
 /// Evaluates every sample of `input` with the calibration, as the device
 /// does, with the prediction interval at `confidence` and the leverage
-/// where the file keeps its interval model.
+/// where the file keeps its interval model. `eps_sd`: the noise SD of eps'
+/// and eps'' for the uncertainty, `None` for the one the calibration was
+/// fitted with (0.02 for a file that does not say).
 ///
 /// # Errors
 /// A bad calibration file or table.
 pub fn predict(
     cal_path: &Path,
     input: &Path,
-    eps_sd: f32,
+    eps_sd: Option<f32>,
     confidence: f64,
 ) -> Result<Vec<Predicted>, PredictError> {
     let (file, wire) = ProductFile::load(cal_path)?;
+    let eps_sd =
+        eps_sd.unwrap_or_else(|| file.prediction.as_ref().map_or(0.02, |p| p.eps_sd as f32));
     let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| PredictError::Refused {
         path: cal_path.to_path_buf(),
         reason: format!("{e:?}"),
     })?;
-    let set = read_samples(input, MoistureColumn::Optional)?;
+    let set = read_samples(input, MoistureColumn::Optional, cal.basis)?;
     if let Some(want) = file.source.freqs_hz {
         if let Some(s) = set
             .samples
@@ -1341,9 +1376,9 @@ mod tests {
         assert_eq!(o.chosen.calibration.input_ranges().len(), 5);
         o.file.save(&toml).expect("save");
 
-        let with = predict(&toml, &table("check.csv", 30, 6, true), 0.02, 0.95).expect("predict");
+        let with = predict(&toml, &table("check.csv", 30, 6, true), None, 0.95).expect("predict");
         let without =
-            predict(&toml, &table("check-nd.csv", 30, 6, false), 0.02, 0.95).expect("predict");
+            predict(&toml, &table("check-nd.csv", 30, 6, false), None, 0.95).expect("predict");
         for (w, n) in with.iter().zip(&without) {
             assert!(!w.flags.contains(Flags::DENSITY_MISSING), "{w:?}");
             assert!(n.flags.contains(Flags::DENSITY_MISSING), "{n:?}");
@@ -1378,6 +1413,40 @@ mod tests {
         assert!(e.contains("no row has a bulk density"), "{e}");
     }
 
+    /// `cal predict` takes the noise SD the calibration was fitted with
+    /// unless told another: the device's reported uncertainty scales with
+    /// it, so a calibration fitted with `--eps-sd 0.05` and predicted with
+    /// the default 0.02 would report too small an uncertainty.
+    #[test]
+    fn predict_takes_the_calibrations_noise_sd() {
+        let dir = tempfile::tempdir().expect("dir");
+        let csv = synth_csv(dir.path(), "lab.csv", 40, 79);
+        let toml = dir.path().join("p.toml");
+        let o = fit(
+            &FitOptions {
+                eps_sd: 0.05,
+                ..args(csv, toml.clone(), FitModel::Relaxation)
+            },
+            0,
+        )
+        .expect("fit");
+        o.file.save(&toml).expect("save");
+        let check = synth_csv(dir.path(), "check.csv", 10, 80);
+        let u = |sd: Option<f32>| -> Vec<f32> {
+            predict(&toml, &check, sd, 0.95)
+                .expect("predict")
+                .iter()
+                .map(|r| r.uncertainty_pct)
+                .collect()
+        };
+        let (own, given, small) = (u(None), u(Some(0.05)), u(Some(0.02)));
+        assert_eq!(own, given);
+        assert!(
+            own.iter().zip(&small).all(|(a, b)| a > b),
+            "{own:?} against {small:?}"
+        );
+    }
+
     #[test]
     fn predict_reproduces_the_fit_on_new_samples() {
         let seed = 78;
@@ -1389,7 +1458,7 @@ mod tests {
         // Fresh samples of the same product: the prediction error is of the
         // size of the cross-validated SEP (within a factor of 2).
         let check = synth_csv(dir.path(), "check.csv", 30, seed + 1);
-        let rows = predict(&toml, &check, 0.02, 0.95).expect("predict");
+        let rows = predict(&toml, &check, None, 0.95).expect("predict");
         let (lab, pred): (Vec<f64>, Vec<f64>) = rows
             .iter()
             .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))
@@ -1549,7 +1618,7 @@ pub fn pairs_from_csv(path: &Path, cal: &Path) -> Result<Pairs, AdjustError> {
         (Some(l), Some(p)) => (l, p),
         _ => {
             // A reference-sample table: evaluate it with the calibration.
-            let rows = predict(cal, path, 0.02, 0.95)?;
+            let rows = predict(cal, path, None, 0.95)?;
             let (lab, predicted) = rows
                 .iter()
                 .filter_map(|r| Some((r.lab_pct?, f64::from(r.moisture_pct?))))

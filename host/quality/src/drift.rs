@@ -97,7 +97,7 @@ impl Action {
                 "clean the sensor window (stop the line and lock it out first, per site procedure), then check the empty-line reading again"
             }
             Action::BiasAdjust => {
-                "bias-adjust the product calibration by the lab-minus-inline mean (confirm with further grab samples, and rule out window build-up first: see the empty-line baseline)"
+                "bias-adjust the product calibration by the lab-minus-inline mean with `fringe cal adjust` (confirm with further grab samples, and rule out window build-up first: see the empty-line baseline)"
             }
             Action::Recalibrate => {
                 "recalibrate the product against new reference samples (the error is not a steady offset)"

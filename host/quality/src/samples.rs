@@ -8,7 +8,7 @@
 //! | column | unit | meaning |
 //! | --- | --- | --- |
 //! | `sample_id` | text | unique, non-empty |
-//! | `moisture_pct` | % wet basis | lab reference value (may be empty for `cal predict`) |
+//! | `moisture_pct` | % on the calibration's basis (wet unless `--basis dry`) | lab reference value (may be empty for `cal predict`) |
 //! | `temperature_c` | C | product temperature at the sensor |
 //! | `freq1_hz`, `freq2_hz` | Hz | the two excitation frequencies, the same on every row, `freq1_hz < freq2_hz` |
 //! | `eps1_re`, `eps1_im`, `eps2_re`, `eps2_im` | - | permittivity eps* = eps' - j eps'' at each frequency, `eps*_im` = eps'' >= 0 |
@@ -17,6 +17,7 @@
 //! Every error names the file and, where it has one, the line (1-based,
 //! counting the header as line 1), the column (1-based) and the field.
 
+pub use fringe_calibration::moisture::Basis;
 use std::fmt;
 use std::path::{Path, PathBuf};
 
@@ -41,7 +42,7 @@ pub const DENSITY_COLUMN: &str = "bulk_density_kg_m3";
 pub struct RefSample {
     /// Sample id.
     pub sample_id: String,
-    /// Lab moisture, % wet basis (`None` when the cell was empty).
+    /// Lab moisture, % on the calibration's basis (`None` when the cell was empty).
     pub moisture_pct: Option<f64>,
     /// Product temperature, C.
     pub temperature_c: f64,
@@ -285,14 +286,24 @@ struct Cols {
 /// # Errors
 /// Any [`SampleError`] except `TooFew` (see [`SampleSet::require`]): the
 /// first problem found, in file order.
-pub fn read_samples(path: &Path, moisture: MoistureColumn) -> Result<SampleSet, SampleError> {
+///
+/// `basis`: the basis of the lab moisture values, the calibration's: below
+/// 100 % on a wet basis, below [`MAX_DRY_BASIS_PCT`] on a dry one (wood,
+/// biomass exceed 100 % on a dry basis).
+pub fn read_samples(
+    path: &Path,
+    moisture: MoistureColumn,
+    basis: Basis,
+) -> Result<SampleSet, SampleError> {
     let file = path.to_path_buf();
     let text = std::fs::read(path).map_err(|e| SampleError::Io {
         file: file.clone(),
         reason: e.to_string(),
     })?;
-    parse_samples(&file, &text, moisture)
+    parse_samples(&file, &text, moisture, basis)
 }
+
+pub use fringe_calibration::moisture::MAX_DRY_BASIS_PCT;
 
 /// Parses a table already in memory (`file` names it in errors).
 ///
@@ -302,6 +313,7 @@ pub fn parse_samples(
     file: &Path,
     text: &[u8],
     moisture: MoistureColumn,
+    basis: Basis,
 ) -> Result<SampleSet, SampleError> {
     let file = file.to_path_buf();
     let mut rdr = csv::ReaderBuilder::new()
@@ -408,8 +420,14 @@ pub fn parse_samples(
             }
             (s, _) => {
                 let v = num(1)?;
-                if !(0.0..100.0).contains(&v) {
-                    return Err(bad(1, s, "a moisture in % wet basis, 0 <= m < 100"));
+                match basis {
+                    Basis::Wet if !(0.0..100.0).contains(&v) => {
+                        return Err(bad(1, s, "a moisture in % wet basis, 0 <= m < 100 (a table on a dry basis needs --basis dry)"));
+                    }
+                    Basis::Dry if !(0.0..MAX_DRY_BASIS_PCT).contains(&v) => {
+                        return Err(bad(1, s, "a moisture in % dry basis, 0 <= m < 1000"));
+                    }
+                    _ => {}
                 }
                 Some(v)
             }
@@ -583,6 +601,7 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
             Path::new("lab.csv"),
             text.as_bytes(),
             MoistureColumn::Required,
+            Basis::Wet,
         )
     }
 
@@ -604,8 +623,13 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
         let s = parse(GOOD).expect("valid table");
         let mut buf = Vec::new();
         write_samples(&mut buf, &s.samples).expect("write");
-        let back =
-            parse_samples(Path::new("lab.csv"), &buf, MoistureColumn::Required).expect("reparse");
+        let back = parse_samples(
+            Path::new("lab.csv"),
+            &buf,
+            MoistureColumn::Required,
+            Basis::Wet,
+        )
+        .expect("reparse");
         for (a, b) in s.samples.iter().zip(&back.samples) {
             assert_eq!(
                 (a.sample_id.as_str(), a.eps_re, a.eps_im),
@@ -616,6 +640,36 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
 
     fn err(text: &str) -> String {
         parse(text).expect_err("must be refused").to_string()
+    }
+
+    /// A lab moisture of 100 % or more is possible only on a dry basis
+    /// (water / dry mass: green wood chips at 60 % wet basis are 150 % dry
+    /// basis, common practice, no source).
+    #[test]
+    fn a_dry_basis_takes_moisture_above_100() {
+        let text = GOOD.replace(",12.3\n", ",150.0\n");
+        let dry = parse_samples(
+            Path::new("lab.csv"),
+            text.as_bytes(),
+            MoistureColumn::Required,
+            Basis::Dry,
+        )
+        .expect("dry basis");
+        assert_eq!(dry.samples[0].moisture_pct, Some(150.0));
+        let e = err(&text);
+        assert_eq!(
+            e,
+            "lab.csv: line 2, column 10 (moisture_pct): `150.0` is not a moisture in % wet basis, 0 <= m < 100 (a table on a dry basis needs --basis dry)"
+        );
+        let e = parse_samples(
+            Path::new("lab.csv"),
+            GOOD.replace(",12.3\n", ",1000\n").as_bytes(),
+            MoistureColumn::Required,
+            Basis::Dry,
+        )
+        .expect_err("too wet")
+        .to_string();
+        assert!(e.contains("0 <= m < 1000"), "{e}");
     }
 
     #[test]
@@ -715,8 +769,13 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
             "{}",
             err(&t)
         );
-        let s =
-            parse_samples(Path::new("in.csv"), t.as_bytes(), MoistureColumn::Optional).expect("ok");
+        let s = parse_samples(
+            Path::new("in.csv"),
+            t.as_bytes(),
+            MoistureColumn::Optional,
+            Basis::Wet,
+        )
+        .expect("ok");
         assert!(!s.all_have_moisture);
         assert_eq!(s.samples[0].moisture_pct, None);
     }
@@ -734,8 +793,12 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
 
     #[test]
     fn unreadable_file_is_named() {
-        let e = read_samples(Path::new("/nonexistent/lab.csv"), MoistureColumn::Required)
-            .expect_err("missing");
+        let e = read_samples(
+            Path::new("/nonexistent/lab.csv"),
+            MoistureColumn::Required,
+            Basis::Wet,
+        )
+        .expect_err("missing");
         assert!(
             e.to_string()
                 .starts_with("/nonexistent/lab.csv: cannot read"),
@@ -754,6 +817,7 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
             Path::new("s.csv"),
             text.as_bytes(),
             MoistureColumn::Required,
+            Basis::Wet,
         )
         .expect_err("not a number")
         .to_string();

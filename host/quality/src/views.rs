@@ -128,7 +128,11 @@ impl GrabSample {
     /// # Errors
     /// [`ViewError::BadValue`] naming the flag.
     pub fn validate(&self) -> Result<(), ViewError> {
-        let limit = if self.basis == "dry" { 1000.0 } else { 100.0 };
+        let limit = if self.basis == "dry" {
+            fringe_calibration::moisture::MAX_DRY_BASIS_PCT
+        } else {
+            100.0
+        };
         if !(self.moisture_pct.is_finite() && self.moisture_pct >= 0.0 && self.moisture_pct < limit)
         {
             return Err(ViewError::BadValue(format!(

@@ -58,7 +58,9 @@ pub struct FitArgs {
     /// Noise standard deviation of eps' and eps'' (for the uncertainty the device reports).
     #[arg(long, default_value_t = 0.02)]
     pub eps_sd: f64,
-    /// Moisture basis of the lab values.
+    /// Moisture basis of the lab values (water / wet mass, below 100 %; or
+    /// water / dry mass, as timber and biomass are often given, below
+    /// 1000 %); the device reports on the same basis.
     #[arg(long, value_parser = ["wet", "dry"], default_value = "wet")]
     pub basis: String,
     /// Print the result as one JSON object.
@@ -89,9 +91,11 @@ pub struct PredictArgs {
     /// Output CSV [default: stdout].
     #[arg(long, value_name = "FILE.csv")]
     pub out: Option<PathBuf>,
-    /// Noise standard deviation of eps' and eps'' used for the uncertainty.
-    #[arg(long, default_value_t = 0.02)]
-    pub eps_sd: f32,
+    /// Noise standard deviation of eps' and eps'' used for the uncertainty
+    /// [default: the one the calibration was fitted with (`cal fit
+    /// --eps-sd`), 0.02 for a file that does not say].
+    #[arg(long)]
+    pub eps_sd: Option<f32>,
     /// Confidence level of the prediction interval.
     #[arg(long, default_value_t = 0.95, value_parser = confidence_level)]
     pub confidence: f64,
