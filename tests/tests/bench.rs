@@ -543,6 +543,46 @@ fn a_push_of_the_relaxation_density_input_needs_firmware_that_takes_it() {
     }
 }
 
+/// A calibration written past the quality gate with `--force` needs
+/// `--force` again to be pushed, and the device's audit record of the push
+/// keeps both overrides, the fit's and the push's (issue 11, item 5).
+#[test]
+fn a_forced_push_keeps_both_overrides_in_its_audit_record() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0209", seed(29)));
+    let table = sim.path("few.csv");
+    write_zoo_table(&table, 12, 3, false);
+    let cal = sim.path("few.toml");
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "fit",
+            "--samples",
+            table.to_str().unwrap(),
+            "--model",
+            "single",
+            "--force",
+            "--out",
+            cal.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let (_, o, _) = push_with_slots(&sim, &cal, "false");
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let records = history(&sim.path("bench.db"));
+    let push = records
+        .iter()
+        .find(|r| r.to_string().contains("\"push\""))
+        .unwrap_or_else(|| panic!("no push record: {records:?}"));
+    let text = push.to_string();
+    for want in [
+        "at fit (--force): 12 samples for 4 fitted parameters",
+        "at push (--force): 12 samples for 4 fitted parameters",
+    ] {
+        assert!(text.contains(want), "`{want}` not in {text}");
+    }
+}
+
 /// `cal push --force` of `cal` to the simulated device (activated or not),
 /// between two `cal list --json`: the slots before, the push's outcome,
 /// the slots after.
