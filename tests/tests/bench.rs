@@ -231,6 +231,40 @@ fn capture_push_list_select_and_history() {
         assert!(r[col("eps1_im")].parse::<f64>().unwrap() >= 0.0, "{text}");
     }
 
+    // On a dry basis (green chips, water over dry mass) a lab value above
+    // 100 % is taken.
+    let dry = sim.path("dry.csv");
+    let mut c = Interactive::spawn(&mut fringe(&[
+        "cal",
+        "capture",
+        "--port",
+        sim.port_str(),
+        "--out",
+        dry.to_str().unwrap(),
+        "--readings",
+        "1",
+        "--basis",
+        "dry",
+    ]));
+    c.expect("sample id", 1, PROMPT);
+    c.send("HGM-D01");
+    c.expect("% dry basis", 1, PROMPT);
+    c.send("151.5");
+    c.expect(ENTER, 1, PROMPT);
+    c.send("");
+    c.expect("sample id", 2, PROMPT);
+    c.send("");
+    let o = c.finish(LIMIT);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let text = std::fs::read_to_string(&dry).expect("captured table");
+    let row: Vec<&str> = text.lines().nth(1).expect("one row").split(',').collect();
+    assert_eq!(row[col("sample_id")], "HGM-D01", "{text}");
+    assert_eq!(
+        row[col("moisture_pct")].parse::<f64>().ok(),
+        Some(151.5),
+        "{text}"
+    );
+
     // Two product calibrations fitted from a reference table (values made
     // up for the test; only their ids and names matter here). 24 samples:
     // five per parameter (the quality gate of `cal fit` and `cal push`).

@@ -68,8 +68,8 @@ pub fn capture_sample(
     })
 }
 
-/// Asks for each sample's id and lab moisture and captures it, until an
-/// empty id; every sample is saved to `out` as it is taken.
+/// Asks for each sample's id and lab moisture (on `basis`) and captures
+/// it, until an empty id; every sample is saved to `out` as it is taken.
 ///
 /// # Errors
 /// [`CaptureError`].
@@ -77,19 +77,28 @@ pub fn capture(
     link: &mut Link,
     out: &Path,
     readings: u32,
+    basis: Basis,
     guide: &mut dyn Guide,
 ) -> Result<usize, CaptureError> {
+    let (words, max) = match basis {
+        Basis::Wet => ("wet", 100.0),
+        Basis::Dry => ("dry", fringe_quality::samples::MAX_DRY_BASIS_PCT),
+    };
     let mut rows: Vec<RefSample> = Vec::new();
     while let Some(id) = guide.ask("sample id (empty to finish):")? {
         if rows.iter().any(|r| r.sample_id == id) {
             guide.show(&format!("sample id {id} already captured; use another"));
             continue;
         }
-        let m = guide.ask("lab moisture, % wet basis (empty to fill in later):")?;
+        let m = guide.ask(&format!(
+            "lab moisture, % {words} basis (empty to fill in later):"
+        ))?;
         let m = match m.map(|s| s.parse::<f64>()) {
-            Some(Ok(v)) if (0.0..100.0).contains(&v) => Some(v),
+            Some(Ok(v)) if (0.0..max).contains(&v) => Some(v),
             Some(_) => {
-                guide.show("not a moisture in % (0-100); left empty, fill it in the CSV later");
+                guide.show(&format!(
+                    "not a moisture in % {words} basis (0 to below {max}); left empty, fill it in the CSV later"
+                ));
                 None
             }
             None => None,

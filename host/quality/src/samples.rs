@@ -415,7 +415,7 @@ pub fn parse_samples(
                 return Err(bad(
                     1,
                     "",
-                    "the lab moisture, % wet basis, to fit with (fill in the lab's value, or leave the row out until the lab is done)",
+                    "the lab moisture, % on the calibration's basis, to fit with (fill in the lab's value, or leave the row out until the lab is done)",
                 ));
             }
             (s, _) => {

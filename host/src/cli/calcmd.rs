@@ -96,6 +96,11 @@ pub struct CaptureArgs {
     /// Readings averaged per sample.
     #[arg(long, default_value_t = 5, value_parser = clap::value_parser!(u32).range(1..=200))]
     pub readings: u32,
+    /// Basis of the lab moisture values asked for (`cal fit --basis` must
+    /// be the same): wet (water / wet mass, below 100 %) or dry (water /
+    /// dry mass, below 1000 %).
+    #[arg(long, value_parser = ["wet", "dry"], default_value = "wet")]
+    pub basis: String,
     /// Print the result as one JSON object (docs/JSON.md); the guide's steps stay on stderr.
     #[arg(long)]
     pub json: bool,

@@ -4,6 +4,7 @@
 
 use fringe_device::product::{self, Push};
 use fringe_quality::product_file::ProductFile;
+use fringe_quality::samples::Basis;
 use serde_json::json;
 
 use super::cal::{self};
@@ -97,7 +98,17 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         CalCommand::Capture(c) => {
             let mut link = super::connect(&c.port, cfg)?;
             super::sync_clock(&mut link, None, "cal capture")?;
-            let n = fringe_device::capture::capture(&mut link, &c.out, c.readings, &mut Terminal)?;
+            let n = fringe_device::capture::capture(
+                &mut link,
+                &c.out,
+                c.readings,
+                if c.basis == "dry" {
+                    Basis::Dry
+                } else {
+                    Basis::Wet
+                },
+                &mut Terminal,
+            )?;
             if c.json {
                 crate::out::json(&json!({
                     "serial": link.serial_number(),
