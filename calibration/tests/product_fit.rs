@@ -290,6 +290,13 @@ fn refuses_bad_samples_by_name() {
             ProductFitError::MoistureOutOfRange { .. }
         ));
     }
+    // A dry-basis value above 100 % is a moisture.
+    let mut s = base.clone();
+    s[0].moisture_pct = 150.0;
+    assert!(!matches!(
+        fit_single(&s, &SingleOptions::default()),
+        Err(ProductFitError::MoistureOutOfRange { .. })
+    ));
 }
 
 /// Leave-one-out by the exact least-squares downdate gives the same

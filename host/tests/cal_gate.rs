@@ -150,7 +150,9 @@ fn a_range_forced_at_fit_needs_force_again_at_push() {
     assert_eq!(o.status.code(), Some(5), "{err}");
     assert!(
         err.contains("temperature_c reaches 120 only through sample \"FAR\"")
-            && err.contains("(overridden at fit)"),
+            && err.contains("(overridden at fit)")
+            && err
+                .contains("--force pushes it anyway and records the override in the audit record"),
         "{err}"
     );
     assert!(!db.exists(), "no database created");

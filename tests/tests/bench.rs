@@ -578,14 +578,31 @@ fn a_push_of_the_relaxation_density_input_needs_firmware_that_takes_it() {
 }
 
 /// A calibration written past the quality gate with `--force` needs
-/// `--force` again to be pushed, and the device's audit record of the push
+/// `--force` again to be pushed, also for a refusal the push cannot check
+/// again on the file (a valid range set by one sample: the file keeps the
+/// ranges, not the samples), and the device's audit record of the push
 /// keeps both overrides, the fit's and the push's (issue 11, item 5).
 #[test]
 fn a_forced_push_keeps_both_overrides_in_its_audit_record() {
     let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0209", seed(29)));
-    let table = sim.path("few.csv");
-    write_zoo_table(&table, 12, 3, false);
-    let cal = sim.path("few.toml");
+    let table = sim.path("far.csv");
+    write_zoo_table(&table, 60, 3, false);
+    // One more sample, a copy of the first at 120 C: the calibration's
+    // temperature range then reaches 120 C through it alone.
+    let text = std::fs::read_to_string(&table).unwrap();
+    let header: Vec<&str> = text.lines().next().unwrap().split(',').collect();
+    let mut far: Vec<String> = text
+        .lines()
+        .nth(1)
+        .unwrap()
+        .split(',')
+        .map(String::from)
+        .collect();
+    let col = |name: &str| header.iter().position(|h| *h == name).unwrap();
+    far[col("sample_id")] = "FAR".into();
+    far[col("temperature_c")] = "120".into();
+    std::fs::write(&table, format!("{}{}\n", text, far.join(","))).unwrap();
+    let cal = sim.path("far.toml");
     let o = run(
         &mut fringe(&[
             "cal",
@@ -593,7 +610,7 @@ fn a_forced_push_keeps_both_overrides_in_its_audit_record() {
             "--samples",
             table.to_str().unwrap(),
             "--model",
-            "single",
+            "multivariate",
             "--force",
             "--out",
             cal.to_str().unwrap(),
@@ -601,6 +618,11 @@ fn a_forced_push_keeps_both_overrides_in_its_audit_record() {
         LIMIT,
     );
     assert_eq!(o.code, 0, "{}", o.stderr);
+    let range = "the valid range of temperature_c reaches 120 only through sample \"FAR\"";
+    assert!(
+        std::fs::read_to_string(&cal).unwrap().contains(range),
+        "the fit's override in the file"
+    );
     let (_, o, _) = push_with_slots(&sim, &cal, "false");
     assert_eq!(o.code, 0, "{}", o.stderr);
     let records = history(&sim.path("bench.db"));
@@ -610,10 +632,12 @@ fn a_forced_push_keeps_both_overrides_in_its_audit_record() {
         .unwrap_or_else(|| panic!("no push record: {records:?}"));
     let text = push.to_string();
     for want in [
-        "at fit (--force): 12 samples for 4 fitted parameters",
-        "at push (--force): 12 samples for 4 fitted parameters",
+        format!("at fit (--force): {range}"),
+        format!("at push (--force): {range}"),
+        "(overridden at fit)".to_string(),
     ] {
-        assert!(text.contains(want), "`{want}` not in {text}");
+        let want = want.replace('"', "\\\"");
+        assert!(text.contains(&want), "`{want}` not in {text}");
     }
 }
 

@@ -1,7 +1,7 @@
 //! Product-model fitting from lab reference samples (feature `fit`).
 //!
-//! A [`Sample`] is one grab sample: its id, the lab moisture (% wet basis,
-//! e.g. by oven drying), the product temperature and the sensor's eps' and
+//! A [`Sample`] is one grab sample: its id, the lab moisture (% on the
+//! calibration's basis, wet or dry, e.g. by oven drying), the product temperature and the sensor's eps' and
 //! eps'' at each excitation frequency.
 //!
 //! - [`fit_single`]: the single-frequency baseline,
@@ -77,7 +77,8 @@ pub struct ChannelReading {
 pub struct Sample {
     /// Sample id as the lab wrote it (unique within a fit).
     pub id: String,
-    /// Lab moisture, % wet basis (0-100).
+    /// Lab moisture, % on the calibration's basis (wet: 0-100; dry: 0-1000,
+    /// [`crate::moisture::MAX_DRY_BASIS_PCT`]).
     pub moisture_pct: f64,
     /// Product temperature at the sensor, C.
     pub temperature_c: f64,
@@ -253,7 +254,7 @@ impl core::fmt::Display for ProductFitError {
             }
             E::MoistureOutOfRange { id, moisture_pct } => write!(
                 f,
-                "sample {id:?}: lab moisture {moisture_pct} % is outside 0-100 % (wet basis) and 0-1000 % (dry basis)"
+                "sample {id:?}: lab moisture {moisture_pct} % is not a moisture: 0 <= m < 1000 % (dry basis; a table on a wet basis is held below 100 % where it is read)"
             ),
             E::DensityOutOfRange {
                 id,
@@ -1998,10 +1999,11 @@ fn check_relaxation_options(opts: &RelaxationOptions) -> Result<(), ProductFitEr
 /// rounds, at most a fifth of the samples).
 ///
 /// The relaxation law is the joint fit's of lowest cost among its starts.
-/// Where the fit with that law is refused for the samples it cannot use,
-/// the whole fit is repeated with the law, among the same starts, that
-/// puts the fewest samples on the inversion's bounds, and kept with a note
-/// if it succeeds: the law of lowest cost is not always one at which the
+/// Where the fit with that law is refused for the samples it cannot use
+/// (for any reason), the whole fit is repeated with the law, among the
+/// same starts, that puts the fewest samples on the inversion's bounds
+/// (judged on each start's short race of 25 iterations), and kept
+/// with a note if it succeeds: the law of lowest cost is not always one at which the
 /// device can find every sample's parameters (on a product with a
 /// bound-water relaxation between the frequencies besides the interfacial
 /// one above them, a law with the interfacial relaxation's frequency far

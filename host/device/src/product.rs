@@ -134,6 +134,7 @@ pub fn push_gate(path: &Path, file: &ProductFile, force: bool) -> Result<Vec<Str
         return Err(GateRefused {
             what: path.display().to_string(),
             refusals,
+            at_push: true,
         });
     }
     Ok(refusals

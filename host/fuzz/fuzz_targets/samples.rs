@@ -12,7 +12,11 @@ use std::path::Path;
 use fringe_quality::samples::{parse_samples, write_samples, Basis, MoistureColumn, SampleSet};
 use libfuzzer_sys::fuzz_target;
 
-fn check(set: &SampleSet, moisture: MoistureColumn) {
+fn check(set: &SampleSet, moisture: MoistureColumn, basis: Basis) {
+    let max = match basis {
+        Basis::Wet => 100.0,
+        Basis::Dry => fringe_quality::samples::MAX_DRY_BASIS_PCT,
+    };
     assert!(!set.samples.is_empty(), "an accepted table has a sample");
     let [f1, f2] = set.freqs_hz;
     assert!(f1 > 0.0 && f1 < f2 && f2.is_finite(), "{:?}", set.freqs_hz);
@@ -24,10 +28,7 @@ fn check(set: &SampleSet, moisture: MoistureColumn) {
             s.sample_id
         );
         match s.moisture_pct {
-            Some(m) => assert!(
-                (0.0..fringe_quality::samples::MAX_DRY_BASIS_PCT).contains(&m),
-                "moisture {m}"
-            ),
+            Some(m) => assert!((0.0..max).contains(&m), "moisture {m} on {basis:?}"),
             None => assert_eq!(moisture, MoistureColumn::Optional),
         }
         assert!((-40.0..=150.0).contains(&s.temperature_c));
@@ -47,7 +48,12 @@ fn check(set: &SampleSet, moisture: MoistureColumn) {
     // Written back (values rounded to the columns' digits), the ids survive.
     let mut out = Vec::new();
     write_samples(&mut out, &set.samples).expect("writes to memory");
-    if let Ok(again) = parse_samples(Path::new("again.csv"), &out, MoistureColumn::Optional, Basis::Dry) {
+    if let Ok(again) = parse_samples(
+        Path::new("again.csv"),
+        &out,
+        MoistureColumn::Optional,
+        Basis::Dry,
+    ) {
         let ids = |s: &SampleSet| {
             s.samples
                 .iter()
@@ -60,8 +66,10 @@ fn check(set: &SampleSet, moisture: MoistureColumn) {
 
 fuzz_target!(|data: &[u8]| {
     for moisture in [MoistureColumn::Required, MoistureColumn::Optional] {
-        if let Ok(set) = parse_samples(Path::new("fuzz/lab.csv"), data, moisture, Basis::Dry) {
-            check(&set, moisture);
+        for basis in [Basis::Wet, Basis::Dry] {
+            if let Ok(set) = parse_samples(Path::new("fuzz/lab.csv"), data, moisture, basis) {
+                check(&set, moisture, basis);
+            }
         }
     }
 });

@@ -14,6 +14,7 @@
 //! 465) and EWMA lambda 0.1, L 2.814 (about 500); temperature only the
 //! one-sided CUSUMs from the range edges.
 
+use fringe_calibration::moisture::{convert, Basis};
 use fringe_protocol::{Flags, Reading, Seq};
 use serde::{Deserialize, Serialize};
 
@@ -83,7 +84,9 @@ pub struct LabRow {
     pub sample_id: String,
     /// When taken, ms.
     pub time_ms: i64,
-    /// Lab moisture, %.
+    /// Lab moisture, %, on the basis of the product calibration in force
+    /// when the sample was taken (the inline value's), converted from the
+    /// basis it was entered on where they differ.
     pub lab_pct: f64,
     /// Inline moisture of the matched reading, %.
     pub inline_pct: Option<f64>,
@@ -162,6 +165,24 @@ pub fn load(
     Ok(data)
 }
 
+/// The moisture basis of the product calibration in force at `time_ms`
+/// (the latest product record made by then, else the first one), from its
+/// record; `None` without a product record that says.
+fn basis_in_force(
+    cals: &[(u64, i64, CalKind, CalRecordBody, Option<String>)],
+    time_ms: i64,
+) -> Option<Basis> {
+    let products = || cals.iter().filter(|c| c.2 == CalKind::Product);
+    let rec = products()
+        .rfind(|c| c.1 <= time_ms)
+        .or_else(|| products().next())?;
+    match rec.3.calibration.get("basis")?.as_str()? {
+        "Dry" => Some(Basis::Dry),
+        "Wet" => Some(Basis::Wet),
+        _ => None,
+    }
+}
+
 impl LineData {
     /// Brings the data up to what `store` holds now: readings after the
     /// last one held and reference checks after the last one are appended
@@ -191,26 +212,6 @@ impl LineData {
                 baseline: f64::from(c.check.baseline),
             });
         }
-        let rows = &self.rows;
-        self.lab = store
-            .lab_samples(&self.serial)?
-            .into_iter()
-            .map(|l| {
-                let inline_pct = l.sample.reading.and_then(|seq| {
-                    rows.binary_search_by_key(&seq, |r| r.reading.seq)
-                        .ok()
-                        .and_then(|i| rows.get(i))
-                        .and_then(|r| r.reading.moisture_pct)
-                        .map(f64::from)
-                });
-                LabRow {
-                    sample_id: l.sample.sample_id.clone(),
-                    time_ms: l.sample.taken_unix_ms,
-                    lab_pct: l.sample.lab_moisture_pct,
-                    inline_pct,
-                }
-            })
-            .collect();
         self.cals = store
             .calibrations(&self.serial)?
             .into_iter()
@@ -224,6 +225,36 @@ impl LineData {
                     body,
                     c.cal.name.clone(),
                 )
+            })
+            .collect();
+        let rows = &self.rows;
+        let cals = &self.cals;
+        self.lab = store
+            .lab_samples(&self.serial)?
+            .into_iter()
+            .map(|l| {
+                let inline_pct = l.sample.reading.and_then(|seq| {
+                    rows.binary_search_by_key(&seq, |r| r.reading.seq)
+                        .ok()
+                        .and_then(|i| rows.get(i))
+                        .and_then(|r| r.reading.moisture_pct)
+                        .map(f64::from)
+                });
+                let entered = if l.sample.basis == "dry" {
+                    Basis::Dry
+                } else {
+                    Basis::Wet
+                };
+                let lab_pct = match basis_in_force(cals, l.sample.taken_unix_ms) {
+                    Some(b) => convert(l.sample.lab_moisture_pct, entered, b),
+                    None => l.sample.lab_moisture_pct,
+                };
+                LabRow {
+                    sample_id: l.sample.sample_id.clone(),
+                    time_ms: l.sample.taken_unix_ms,
+                    lab_pct,
+                    inline_pct,
+                }
             })
             .collect();
         Ok(())
@@ -420,5 +451,67 @@ mod tests {
         assert_eq!(kept.refs.len(), 40);
         assert_eq!(kept.lab.len(), 4);
         assert!(kept.lab.iter().all(|l| l.inline_pct.is_some()));
+    }
+
+    /// A grab sample entered on a wet basis, on a line whose product
+    /// calibration reports on a dry basis, is compared on the dry basis:
+    /// 20 % wet basis is 25 % dry basis (M_db = 100 M_wb / (100 - M_wb),
+    /// common practice, no source).
+    #[test]
+    fn a_grab_sample_is_compared_on_the_calibrations_basis() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = Store::open(dir.path().join("a.db")).unwrap();
+        store
+            .ensure_device(&DeviceInfo {
+                serial: "L2".into(),
+                ..Default::default()
+            })
+            .unwrap();
+        add(&mut store, 0, 10);
+        assert_eq!(load(&store, Some("L2")).unwrap().lab[0].lab_pct, 14.2);
+        let body = CalRecordBody {
+            calibration: serde_json::json!({"basis": "Dry"}),
+            action: "push".into(),
+            ..CalRecordBody::default()
+        };
+        store
+            .insert_calibration(
+                "L2",
+                &fringe_store::NewCalibration {
+                    kind: CalKind::Product,
+                    cal_id: fringe_protocol::CalId([1, 2, 3, 4]),
+                    slot: Some(0),
+                    name: Some("chips".into()),
+                    body: serde_json::to_value(&body).unwrap(),
+                    note: None,
+                    supersedes: None,
+                },
+            )
+            .unwrap();
+        store
+            .insert_lab_sample(
+                "L2",
+                &NewLabSample {
+                    sample_id: "G-wet".into(),
+                    taken_unix_ms: reading(3).time_ms as i64,
+                    product: None,
+                    lab_moisture_pct: 20.0,
+                    basis: "wet".into(),
+                    method: None,
+                    reading: Some(reading(3).seq),
+                    note: None,
+                    supersedes: None,
+                },
+            )
+            .unwrap();
+        let data = load(&store, Some("L2")).unwrap();
+        let g = data.lab.iter().find(|l| l.sample_id == "G-wet").unwrap();
+        assert!((g.lab_pct - 25.0).abs() < 1e-12, "{}", g.lab_pct);
+        let old = data.lab.iter().find(|l| l.sample_id == "G-9").unwrap();
+        assert!(
+            (old.lab_pct - 1420.0 / 85.8).abs() < 1e-9,
+            "{}",
+            old.lab_pct
+        );
     }
 }

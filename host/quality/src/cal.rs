@@ -225,6 +225,9 @@ pub struct GateRefused {
     pub what: String,
     /// Each refusal, in words.
     pub refusals: Vec<String>,
+    /// Refused at `cal push` (the file is not changed; an override goes
+    /// into the audit record) rather than at `cal fit`.
+    pub at_push: bool,
 }
 
 impl std::fmt::Display for GateRefused {
@@ -237,10 +240,17 @@ impl std::fmt::Display for GateRefused {
         for r in &self.refusals {
             writeln!(f, "  - {r}")?;
         }
-        write!(
-            f,
-            "--force writes it anyway and records the override (in the file and the audit record)"
-        )
+        if self.at_push {
+            write!(
+                f,
+                "--force pushes it anyway and records the override in the audit record"
+            )
+        } else {
+            write!(
+                f,
+                "--force writes it anyway and records the override (in the file and the audit record)"
+            )
+        }
     }
 }
 
@@ -636,6 +646,7 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
                 model_words(chosen.calibration.model.kind())
             ),
             refusals,
+            at_push: false,
         }
         .into());
     }

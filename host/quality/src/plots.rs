@@ -254,7 +254,7 @@ pub fn trend_svg(title: &str, pts: &[TrendPoint], lab: &[LabPoint]) -> Result<St
             .x_desc(x_desc.as_str())
             .x_label_formatter(&label)
             .x_labels(8)
-            .y_desc("moisture, % wet basis")
+            .y_desc("moisture, % (calibration basis)")
             .draw()
             .map_err(draw_err)?;
         if !has_value {
@@ -714,7 +714,7 @@ mod tests {
         .expect("plot");
         assert!(svg.starts_with("<svg") && svg.trim_end().ends_with("</svg>"));
         assert!(svg.contains("<polygon"), "band drawn");
-        assert!(svg.contains("moisture, % wet basis"));
+        assert!(svg.contains("moisture, % (calibration basis)"));
         // Clock time with the date, a legend, the flagged reading, the
         // labelled empty period and the temperature panel.
         assert!(

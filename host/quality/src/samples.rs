@@ -1,7 +1,8 @@
 //! Reference-sample tables (CSV).
 //!
 //! A reference sample is a portion of product measured by the sensor and by
-//! the lab's reference method (oven-dry, wet basis). The table has a header
+//! the lab's reference method (oven-dry; wet basis unless the calibration
+//! is fitted on a dry one). The table has a header
 //! row; columns may come in any order and unknown columns are kept in the
 //! file but ignored here:
 //!
@@ -422,7 +423,7 @@ pub fn parse_samples(
                 let v = num(1)?;
                 match basis {
                     Basis::Wet if !(0.0..100.0).contains(&v) => {
-                        return Err(bad(1, s, "a moisture in % wet basis, 0 <= m < 100 (a table on a dry basis needs --basis dry)"));
+                        return Err(bad(1, s, "a moisture in % wet basis, 0 <= m < 100 (lab values on a dry basis need a calibration fitted with --basis dry)"));
                     }
                     Basis::Dry if !(0.0..MAX_DRY_BASIS_PCT).contains(&v) => {
                         return Err(bad(1, s, "a moisture in % dry basis, 0 <= m < 1000"));
@@ -659,7 +660,7 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
         let e = err(&text);
         assert_eq!(
             e,
-            "lab.csv: line 2, column 10 (moisture_pct): `150.0` is not a moisture in % wet basis, 0 <= m < 100 (a table on a dry basis needs --basis dry)"
+            "lab.csv: line 2, column 10 (moisture_pct): `150.0` is not a moisture in % wet basis, 0 <= m < 100 (lab values on a dry basis need a calibration fitted with --basis dry)"
         );
         let e = parse_samples(
             Path::new("lab.csv"),
