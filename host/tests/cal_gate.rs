@@ -50,6 +50,24 @@ fn fit(dir: &Path, rows: &[String], extra: &[&str]) -> (Output, PathBuf) {
     (o, out)
 }
 
+/// `cal push` of `cal` without `--force` to a port that does not exist
+/// (the gate refuses before the port, key or database are touched): the
+/// outcome and the database path it was given.
+fn push_without_force(dir: &Path, cal: &Path) -> (Output, PathBuf) {
+    let db = dir.join("line.db");
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "push", "--port", "/nonexistent/port", "--key-file"])
+        .arg(dir.join("no.key"))
+        .arg("--db")
+        .arg(&db)
+        .arg("--cal")
+        .arg(cal)
+        .args(["--operator", "T. Tester", "--reason", "gate test", "--yes"])
+        .output()
+        .expect("run fringe");
+    (o, db)
+}
+
 fn stderr(o: &Output) -> String {
     String::from_utf8_lossy(&o.stderr).into_owned()
 }
@@ -108,17 +126,7 @@ fn force_writes_and_keeps_the_override_and_push_refuses_it() {
     );
     // The same gate in `cal push`: refused before the port, key or
     // database are touched.
-    let db = dir.path().join("line.db");
-    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
-        .args(["cal", "push", "--port", "/nonexistent/port", "--key-file"])
-        .arg(dir.path().join("no.key"))
-        .arg("--db")
-        .arg(&db)
-        .arg("--cal")
-        .arg(&out)
-        .args(["--operator", "T. Tester", "--reason", "gate test", "--yes"])
-        .output()
-        .expect("run fringe");
+    let (o, db) = push_without_force(dir.path(), &out);
     let err = stderr(&o);
     assert_eq!(o.status.code(), Some(5), "{err}");
     assert!(err.contains("12 samples for 4 fitted parameters"), "{err}");
@@ -135,17 +143,7 @@ fn a_range_forced_at_fit_needs_force_again_at_push() {
     far.push("FAR,15,120,1000000,5.75,0.9,20000000,4.8,0.3".into());
     let (o, out) = fit(dir.path(), &far, &["--force"]);
     assert!(o.status.success(), "{}", stderr(&o));
-    let db = dir.path().join("line.db");
-    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
-        .args(["cal", "push", "--port", "/nonexistent/port", "--key-file"])
-        .arg(dir.path().join("no.key"))
-        .arg("--db")
-        .arg(&db)
-        .arg("--cal")
-        .arg(&out)
-        .args(["--operator", "T. Tester", "--reason", "gate test", "--yes"])
-        .output()
-        .expect("run fringe");
+    let (o, db) = push_without_force(dir.path(), &out);
     let err = stderr(&o);
     assert_eq!(o.status.code(), Some(5), "{err}");
     assert!(

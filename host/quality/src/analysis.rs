@@ -384,6 +384,18 @@ mod tests {
         r
     }
 
+    /// A store in `dir` that knows device L2.
+    fn store_of_l2(dir: &std::path::Path) -> Store {
+        let mut store = Store::open(dir.join("a.db")).unwrap();
+        store
+            .ensure_device(&DeviceInfo {
+                serial: "L2".into(),
+                ..Default::default()
+            })
+            .unwrap();
+        store
+    }
+
     fn add(store: &mut Store, from: u32, to: u32) {
         let rs: Vec<Reading> = (from..to).map(reading).collect();
         store.insert_readings("L2", &rs, Source::Stream).unwrap();
@@ -429,13 +441,7 @@ mod tests {
     #[test]
     fn refresh_reads_what_a_fresh_load_reads() {
         let dir = tempfile::tempdir().unwrap();
-        let mut store = Store::open(dir.path().join("a.db")).unwrap();
-        store
-            .ensure_device(&DeviceInfo {
-                serial: "L2".into(),
-                ..Default::default()
-            })
-            .unwrap();
+        let mut store = store_of_l2(dir.path());
         add(&mut store, 0, 120);
         let mut kept = load(&store, Some("L2")).unwrap();
         same(&kept, &load(&store, Some("L2")).unwrap());
@@ -460,13 +466,7 @@ mod tests {
     #[test]
     fn a_grab_sample_is_compared_on_the_calibrations_basis() {
         let dir = tempfile::tempdir().unwrap();
-        let mut store = Store::open(dir.path().join("a.db")).unwrap();
-        store
-            .ensure_device(&DeviceInfo {
-                serial: "L2".into(),
-                ..Default::default()
-            })
-            .unwrap();
+        let mut store = store_of_l2(dir.path());
         add(&mut store, 0, 10);
         assert_eq!(load(&store, Some("L2")).unwrap().lab[0].lab_pct, 14.2);
         let body = CalRecordBody {
