@@ -569,7 +569,7 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
         density_independent: false,
         density_input: args.density_input,
     };
-    let (chosen, compared, rule, sep_ratio) = match args.model {
+    let (mut chosen, compared, rule, sep_ratio) = match args.model {
         FitModel::Single => (
             fit_single(&samples, &single).map_err(ctx)?,
             Vec::new(),
@@ -637,6 +637,15 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
             (chosen, compared, Some(choice), ratio)
         }
     };
+    // Above 100 % on a dry basis the scale stretches with moisture, and the
+    // models fitted worse than on the same values converted to a wet basis
+    // (BENCHMARKS.md, "Lab values on a dry basis").
+    let top = samples.iter().map(|s| s.moisture_pct).fold(0.0, f64::max);
+    if basis == Basis::Dry && top > 100.0 {
+        chosen.notes.push(format!(
+            "lab values on a dry basis up to {top:.1} %: on synthetic wood chips of 25-150 % dry basis the models fitted to the same values on a wet basis did 1.1-2.4 times better; unless the plant needs the dry basis at the output, convert them (M_wb = 100 M_db / (100 + M_db)) and fit with --basis wet"
+        ));
+    }
     let refusals = gate_of_fit(&chosen, &samples);
     if !refusals.is_empty() && !args.force {
         return Err(GateRefused {
