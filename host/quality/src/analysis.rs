@@ -240,11 +240,7 @@ impl LineData {
                         .and_then(|r| r.reading.moisture_pct)
                         .map(f64::from)
                 });
-                let entered = if l.sample.basis == "dry" {
-                    Basis::Dry
-                } else {
-                    Basis::Wet
-                };
+                let entered = crate::samples::basis_named(&l.sample.basis);
                 let lab_pct = match basis_in_force(cals, l.sample.taken_unix_ms) {
                     Some(b) => convert(l.sample.lab_moisture_pct, entered, b),
                     None => l.sample.lab_moisture_pct,

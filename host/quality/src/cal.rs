@@ -497,11 +497,11 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
     } else {
         Basis::Wet
     };
-    let lab_basis = match basis {
-        Basis::Wet => crate::samples::Basis::Wet,
-        Basis::Dry => crate::samples::Basis::Dry,
-    };
-    let set = read_samples(&args.samples, MoistureColumn::Required, lab_basis)?;
+    let set = read_samples(
+        &args.samples,
+        MoistureColumn::Required,
+        crate::samples::basis_named(&args.basis),
+    )?;
     let degree = usize::from(args.degree);
     let words = match args.model {
         FitModel::Single => "single-frequency",

@@ -306,6 +306,15 @@ pub fn read_samples(
 
 pub use fringe_calibration::moisture::MAX_DRY_BASIS_PCT;
 
+/// The basis a command line or a record names: `"dry"`, else wet.
+pub fn basis_named(name: &str) -> Basis {
+    if name == "dry" {
+        Basis::Dry
+    } else {
+        Basis::Wet
+    }
+}
+
 /// Parses a table already in memory (`file` names it in errors).
 ///
 /// # Errors

@@ -4,7 +4,6 @@
 
 use fringe_device::product::{self, Push};
 use fringe_quality::product_file::ProductFile;
-use fringe_quality::samples::Basis;
 use serde_json::json;
 
 use super::cal::{self};
@@ -102,11 +101,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 &mut link,
                 &c.out,
                 c.readings,
-                if c.basis == "dry" {
-                    Basis::Dry
-                } else {
-                    Basis::Wet
-                },
+                fringe_quality::samples::basis_named(&c.basis),
                 &mut Terminal,
             )?;
             if c.json {
