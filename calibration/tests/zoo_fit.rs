@@ -515,6 +515,46 @@ fn a_model_without_moisture_for_its_left_out_samples_is_not_chosen() {
     assert!(e.len() * 50 >= val.len() * 49, "{} of 200", e.len());
 }
 
+/// Regression (a model compared only where it gave a moisture): on the
+/// aggregate at 0.1/20 MHz (60 samples, seed 2 of the zoo) the relaxation
+/// model gave no moisture for one of its 60 left-out samples (eligible: at
+/// most 2 % may miss), beat ridge in the paired test on the other 59, was
+/// chosen, and did 1.9 times worse than the generic baseline on 200 fresh
+/// samples (0.853 % against 0.443 %; a few readings 3-5 % off). A missing
+/// prediction now counts in the paired test as the calibration's mean lab
+/// value; the chosen model does 0.451 %.
+#[test]
+fn a_missing_left_out_prediction_counts_against_its_model() {
+    let f = Family::aggregate();
+    let pair = FREQ_PAIRS[1];
+    let train = f.samples(&Draw::new(60, pair), 2);
+    let val = f.samples(&Draw::new(200, pair), 2 + 1000);
+    let cmp = compare_models(&train, &compare_opts(&f)).expect("aggregate fit");
+    let relax = cmp
+        .results
+        .iter()
+        .find(|r| r.0 == Candidate::Relaxation)
+        .and_then(|r| r.1.as_ref().ok())
+        .expect("the relaxation model fits (the case)");
+    let missing = relax
+        .samples
+        .iter()
+        .filter(|s| !s.cv_predicted_pct.is_finite())
+        .count();
+    assert_eq!(missing, 1, "the case: one left-out sample without moisture");
+    assert!(ModelComparison::eligible(relax));
+    let paired = cmp
+        .paired
+        .iter()
+        .find(|p| p.candidate == Candidate::Relaxation)
+        .expect("relaxation compared");
+    assert_eq!(paired.n, 60, "{paired:?}");
+    assert_ne!(cmp.chosen, Candidate::Relaxation, "{paired:?}");
+    let (e, _) = validate(cmp.chosen_fit(), &val);
+    let b = baseline_sep(&Baseline::fit(&train), &val);
+    assert!(sep(&e) <= 1.1 * b, "SEP {:.3}, baseline {b:.3}", sep(&e));
+}
+
 /// The optional density input (issue 11, item 4): on every product whose
 /// bulk density varies 5 % or more between samples (invented variations,
 /// the zoo's gauge reading it with 1 % noise), ridge with the density as an
