@@ -523,15 +523,21 @@ fn a_model_without_moisture_for_its_left_out_samples_is_not_chosen() {
 /// most 2 % may miss), beat ridge in the paired test on the other 59, was
 /// chosen, and did 1.9 times worse than the generic baseline on 200 fresh
 /// samples (0.853 % against 0.443 %; a few readings 3-5 % off). A missing
-/// prediction now counts in the paired test as the calibration's mean lab
-/// value; the chosen model does 0.451 %.
+/// prediction now counts against its model in the paired test (as the mean
+/// of the other samples' lab values, or the other model's error where that
+/// is larger). Since ridge chooses among three feature sets that case no
+/// longer shows it (the relaxation model is not better than ridge on its 59
+/// either); the case is now the sand at 1/20 MHz, seed 14, found by a sweep
+/// of seeds 1-30: the relaxation model misses one of 60, wins on the other
+/// 59 (one-sided p 0.022), and does 0.420 % on the fresh samples, where
+/// ridge, now chosen, does 0.319 % and the baseline 0.392 %.
 #[test]
 fn a_missing_left_out_prediction_counts_against_its_model() {
-    let f = Family::aggregate();
-    let pair = FREQ_PAIRS[1];
-    let train = f.samples(&Draw::new(60, pair), 2);
-    let val = f.samples(&Draw::new(200, pair), 2 + 1000);
-    let cmp = compare_models(&train, &compare_opts(&f)).expect("aggregate fit");
+    let f = Family::sand();
+    let pair = FREQ_PAIRS[0];
+    let train = f.samples(&Draw::new(60, pair), 14);
+    let val = f.samples(&Draw::new(200, pair), 14 + 1000);
+    let cmp = compare_models(&train, &compare_opts(&f)).expect("sand fit");
     let relax = cmp
         .results
         .iter()
@@ -552,9 +558,49 @@ fn a_missing_left_out_prediction_counts_against_its_model() {
         .expect("relaxation compared");
     assert_eq!(paired.n, 60, "{paired:?}");
     assert_ne!(cmp.chosen, Candidate::Relaxation, "{paired:?}");
+    // On the samples both predict, the relaxation model wins (the case):
+    // Wilcoxon's signed-rank test of ridge's absolute error minus the
+    // relaxation model's, one-sided at 5 %.
+    assert_eq!(cmp.default_model, Candidate::MultivariateRidge);
+    let ridge = cmp
+        .results
+        .iter()
+        .find(|r| r.0 == Candidate::MultivariateRidge)
+        .and_then(|r| r.1.as_ref().ok())
+        .expect("ridge fits");
+    let both: Vec<_> = ridge
+        .samples
+        .iter()
+        .zip(&relax.samples)
+        .filter(|(_, r)| r.cv_predicted_pct.is_finite())
+        .collect();
+    let sq: f64 = both
+        .iter()
+        .map(|(g, r)| {
+            (g.cv_predicted_pct - g.reference_pct).powi(2)
+                - (r.cv_predicted_pct - r.reference_pct).powi(2)
+        })
+        .sum();
+    assert!(sq > 0.0, "mean squared advantage on the 59: {sq}");
+    let d: Vec<f64> = both
+        .iter()
+        .map(|(g, r)| {
+            (g.cv_predicted_pct - g.reference_pct).abs()
+                - (r.cv_predicted_pct - r.reference_pct).abs()
+        })
+        .collect();
+    assert_eq!(d.len(), 59);
+    let on_59 = fringe_calibration::stats::signed_rank(&d).expect("differences");
+    assert!(on_59.p_greater() < 0.05, "{on_59:?}");
     let (e, _) = validate(cmp.chosen_fit(), &val);
+    let (er, _) = validate(relax, &val);
     let b = baseline_sep(&Baseline::fit(&train), &val);
-    assert!(sep(&e) <= 1.1 * b, "SEP {:.3}, baseline {b:.3}", sep(&e));
+    assert!(
+        sep(&e) <= 0.9 * sep(&er) && sep(&e) <= b,
+        "chosen SEP {:.3}, relaxation {:.3}, baseline {b:.3}",
+        sep(&e),
+        sep(&er)
+    );
 }
 
 /// The optional density input (issue 11, item 4): on every product whose
