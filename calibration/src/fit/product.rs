@@ -2633,6 +2633,13 @@ const MV_LINEAR: [usize; 7] = [0, 1, 2, 3, 4, 5, 6];
 /// Trabelsi-Kraszewski-Nelson's psi (feature 7).
 const MV_TKN: usize = 7;
 
+/// The feature sets of [`mv_sets`] in words, for the fit's description.
+const MV_SET_WORDS: [&str; 3] = [
+    "linear",
+    "linear, and the logarithms' squares and products",
+    "linear, and all squares and products",
+];
+
 /// The squares and products of the four logarithms (ln eps' and
 /// ln(eps'' + f) at both frequencies) without temperature: features 8-11,
 /// 13-15, 17, 18 and 20 of [`MultivariateModel::features`].
@@ -2767,7 +2774,7 @@ fn mv_core(
     let y: Vec<f64> = rows.iter().map(|i| samples[*i].moisture_pct).collect();
     let n = rows.len();
     let mut best: Option<(f64, MvCore)> = None;
-    for set in mv_sets(tkn, density) {
+    for (set, words) in mv_sets(tkn, density).into_iter().zip(MV_SET_WORDS) {
         let p = set.len();
         let x = DMatrix::from_fn(n, p, |i, j| full[i][set[j]]);
         let (crit, lin, lev, edf, detail) = match method {
@@ -2807,7 +2814,7 @@ fn mv_core(
                     lev,
                     edf,
                     format!(
-                        "ridge on {p} features, penalty {a:.3e} on standardised features (leave-one-out{}), {edf:.1} effective parameters",
+                        "ridge on {p} features ({words}), penalty {a:.3e} on standardised features (leave-one-out{}), {edf:.1} effective parameters",
                         if within {
                             ", within five samples per parameter"
                         } else {
@@ -2858,7 +2865,9 @@ fn mv_core(
                     f.model,
                     lev,
                     k as f64,
-                    format!("PLS on {p} features, {k} components (5-fold cross-validation)"),
+                    format!(
+                        "PLS on {p} features ({words}), {k} components (5-fold cross-validation)"
+                    ),
                 )
             }
         };
