@@ -484,6 +484,33 @@ fn one_high_leverage_sample_does_not_set_the_intervals() {
     assert!((0.85..=0.995).contains(&cov), "coverage {cov:.3}");
 }
 
+/// A zoo case as `cal fit --model compare` fits it (60 calibration samples,
+/// leave-one-out), with 200 fresh samples of the same product.
+fn case60(f: &Family, pair: [f64; 2], seed: u64) -> (Vec<Sample>, Vec<Sample>, ModelComparison) {
+    let train = f.samples(&Draw::new(60, pair), seed);
+    let val = f.samples(&Draw::new(200, pair), seed + 1000);
+    let cmp = compare_models(&train, &compare_opts(f))
+        .unwrap_or_else(|e| panic!("{} {pair:?} seed {seed}: {e}", f.name));
+    (train, val, cmp)
+}
+
+/// One model's fit of a comparison (the case needs it).
+fn fitted(cmp: &ModelComparison, c: Candidate) -> &ProductFit {
+    cmp.results
+        .iter()
+        .find(|r| r.0 == c)
+        .and_then(|r| r.1.as_ref().ok())
+        .unwrap_or_else(|| panic!("the {} model fits (the case)", c.name()))
+}
+
+/// Left-out samples the fit gave no moisture for.
+fn missing_cv(fit: &ProductFit) -> usize {
+    fit.samples
+        .iter()
+        .filter(|s| !s.cv_predicted_pct.is_finite())
+        .count()
+}
+
 /// Regression (a model without moisture for fresh readings): on wood chips
 /// at 0.1/20 MHz (seed 3 of the zoo) the relaxation model's device estimate
 /// gave no moisture for 2 of its 60 left-out samples and for 5 of 200
@@ -494,22 +521,9 @@ fn one_high_leverage_sample_does_not_set_the_intervals() {
 /// seed 3 misses none; seed 6 misses 2 and is the case now.)
 #[test]
 fn a_model_without_moisture_for_its_left_out_samples_is_not_chosen() {
-    let f = Family::wood_chips();
-    let pair = FREQ_PAIRS[1];
-    let train = f.samples(&Draw::new(60, pair), 6);
-    let val = f.samples(&Draw::new(200, pair), 6 + 1000);
-    let cmp = compare_models(&train, &compare_opts(&f)).expect("wood chips fit");
-    let relax = cmp
-        .results
-        .iter()
-        .find(|r| r.0 == Candidate::Relaxation)
-        .and_then(|r| r.1.as_ref().ok())
-        .expect("the relaxation model fits (the case)");
-    let missing = relax
-        .samples
-        .iter()
-        .filter(|s| !s.cv_predicted_pct.is_finite())
-        .count();
+    let (_, val, cmp) = case60(&Family::wood_chips(), FREQ_PAIRS[1], 6);
+    let relax = fitted(&cmp, Candidate::Relaxation);
+    let missing = missing_cv(relax);
     assert!(missing * 50 > relax.samples.len(), "{missing} missing");
     assert!(!ModelComparison::eligible(relax));
     assert_ne!(cmp.chosen, Candidate::Relaxation);
@@ -533,23 +547,13 @@ fn a_model_without_moisture_for_its_left_out_samples_is_not_chosen() {
 /// ridge, now chosen, does 0.319 % and the baseline 0.392 %.
 #[test]
 fn a_missing_left_out_prediction_counts_against_its_model() {
-    let f = Family::sand();
-    let pair = FREQ_PAIRS[0];
-    let train = f.samples(&Draw::new(60, pair), 14);
-    let val = f.samples(&Draw::new(200, pair), 14 + 1000);
-    let cmp = compare_models(&train, &compare_opts(&f)).expect("sand fit");
-    let relax = cmp
-        .results
-        .iter()
-        .find(|r| r.0 == Candidate::Relaxation)
-        .and_then(|r| r.1.as_ref().ok())
-        .expect("the relaxation model fits (the case)");
-    let missing = relax
-        .samples
-        .iter()
-        .filter(|s| !s.cv_predicted_pct.is_finite())
-        .count();
-    assert_eq!(missing, 1, "the case: one left-out sample without moisture");
+    let (train, val, cmp) = case60(&Family::sand(), FREQ_PAIRS[0], 14);
+    let relax = fitted(&cmp, Candidate::Relaxation);
+    assert_eq!(
+        missing_cv(relax),
+        1,
+        "the case: one left-out sample without moisture"
+    );
     assert!(ModelComparison::eligible(relax));
     let paired = cmp
         .paired
@@ -562,12 +566,7 @@ fn a_missing_left_out_prediction_counts_against_its_model() {
     // Wilcoxon's signed-rank test of ridge's absolute error minus the
     // relaxation model's, one-sided at 5 %.
     assert_eq!(cmp.default_model, Candidate::MultivariateRidge);
-    let ridge = cmp
-        .results
-        .iter()
-        .find(|r| r.0 == Candidate::MultivariateRidge)
-        .and_then(|r| r.1.as_ref().ok())
-        .expect("ridge fits");
+    let ridge = fitted(&cmp, Candidate::MultivariateRidge);
     let both: Vec<_> = ridge
         .samples
         .iter()
