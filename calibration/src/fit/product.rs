@@ -3102,6 +3102,8 @@ pub struct PairedTest {
     /// Samples where either has a cross-validated prediction (a missing
     /// one counts against its model, see [`PairedTest::of`]).
     pub n: usize,
+    /// Of those, the samples only one of the two models predicted.
+    pub one_missing: usize,
     /// Mean of the per-sample difference (default's squared error minus
     /// this model's), %^2: > 0 where this model predicted better.
     pub mean_advantage: f64,
@@ -3178,6 +3180,11 @@ impl PairedTest {
         if n < 3 {
             return None;
         }
+        let one_missing = default
+            .iter()
+            .zip(other)
+            .filter(|(a, b)| a.is_finite() != b.is_finite())
+            .count();
         let mean = sq.iter().sum::<f64>() / n as f64;
         let sd = (sq.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (n - 1) as f64).sqrt();
         let t = if sd > 0.0 {
@@ -3191,6 +3198,7 @@ impl PairedTest {
         Some(PairedTest {
             candidate,
             n,
+            one_missing,
             mean_advantage: mean,
             z: ranks.z,
             critical_z: crate::stats::normal_quantile(0.95).ok()?,
@@ -3638,7 +3646,7 @@ mod tests {
         let both_b = [f64::NAN, 0.0, f64::NAN, 0.0, 0.0];
         let three =
             PairedTest::of(Candidate::Relaxation, &y5, &both_a, &both_b).expect("3 samples");
-        assert_eq!(three.n, 3, "{three:?}");
+        assert_eq!((three.n, three.one_missing), (3, 0), "{three:?}");
         assert!(
             PairedTest::of(Candidate::Relaxation, &y5[..4], &both_a[..4], &both_b[..4]).is_none()
         );
@@ -3653,7 +3661,7 @@ mod tests {
         let mut other = y;
         other[5] = f64::NAN;
         let m = PairedTest::of(Candidate::Relaxation, &y, &default, &other).expect("6 samples");
-        assert_eq!(m.n, 6);
+        assert_eq!((m.n, m.one_missing), (6, 1));
         assert!((m.mean_advantage + 5.75).abs() < 1e-12, "{m:?}");
         assert!(!m.significant(), "{m:?}");
         // Where the mean of the others lies nearer the lab value than the

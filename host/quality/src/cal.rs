@@ -771,6 +771,7 @@ pub fn outcome_json(o: &FitOutcome, out: &Path) -> serde_json::Value {
             "paired_tests": o.rule.as_ref().map(|r| r.paired.iter().map(|(m, p)| json!({
                 "model": m,
                 "n": p.n,
+                "one_missing": p.one_missing,
                 "mean_advantage_pct2": p.mean_advantage,
                 "t": p.t,
                 "critical_t": p.critical_t,
@@ -783,6 +784,18 @@ pub fn outcome_json(o: &FitOutcome, out: &Path) -> serde_json::Value {
         });
     }
     v
+}
+
+/// The verdict of a paired test in words, with the reason where the
+/// signed ranks alone would say otherwise.
+fn paired_words(p: &PairedTest) -> &'static str {
+    if p.significant() {
+        "significantly better"
+    } else if p.p < 0.05 {
+        "not significantly better (smaller errors on most samples, but not a smaller mean squared error)"
+    } else {
+        "not significantly better"
+    }
 }
 
 /// Writes a fit's statistics for a person.
@@ -903,7 +916,7 @@ pub fn write_fit_summary(
         for (m, p) in &rule.paired {
             writeln!(
                 w,
-                "    {m:<20} z = {:>6.2}, p {} over {} samples: {}",
+                "    {m:<20} z = {:>6.2}, p {} over {} samples{}: {}",
                 p.z,
                 if p.p < 0.001 {
                     "< 0.001".to_string()
@@ -911,11 +924,11 @@ pub fn write_fit_summary(
                     format!("= {:.3}", p.p)
                 },
                 p.n,
-                if p.significant() {
-                    "significantly better"
-                } else {
-                    "not significantly better"
-                }
+                match p.one_missing {
+                    0 => String::new(),
+                    k => format!(" ({k} with no moisture from one of the two, counted against it)"),
+                },
+                paired_words(p)
             )?;
         }
         writeln!(
@@ -1229,6 +1242,26 @@ pub fn predictions_json(rows: &[Predicted], confidence: f64) -> serde_json::Valu
 mod tests {
     use super::*;
     use fringe_calibration::fit::product::{synthetic_samples, SynthSpec};
+
+    /// A signed-rank p below 5 % with a larger mean squared error is not
+    /// called better, and the text says why; the three verdicts by hand.
+    #[test]
+    fn a_paired_verdict_says_why_it_is_not_better() {
+        let p = |p: f64, mean_advantage: f64| PairedTest {
+            candidate: fringe_calibration::fit::product::Candidate::Relaxation,
+            n: 60,
+            one_missing: 1,
+            mean_advantage,
+            z: 1.7,
+            critical_z: 1.645,
+            p,
+            t: 0.0,
+            critical_t: 1.67,
+        };
+        assert_eq!(paired_words(&p(0.01, 0.02)), "significantly better");
+        assert!(paired_words(&p(0.042, -0.01)).contains("not a smaller mean squared error"));
+        assert_eq!(paired_words(&p(0.2, 0.02)), "not significantly better");
+    }
     use fringe_calibration::synth::SynthProduct;
 
     /// Writes `n` synthetic reference samples (published physics in
