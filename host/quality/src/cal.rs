@@ -1242,6 +1242,7 @@ pub fn predictions_json(rows: &[Predicted], confidence: f64) -> serde_json::Valu
 mod tests {
     use super::*;
     use fringe_calibration::fit::product::{synthetic_samples, SynthSpec};
+    use fringe_calibration::synth::SynthProduct;
 
     /// A signed-rank p below 5 % with a larger mean squared error is not
     /// called better, and the text says why; the three verdicts by hand.
@@ -1262,7 +1263,6 @@ mod tests {
         assert!(paired_words(&p(0.042, -0.01)).contains("not a smaller mean squared error"));
         assert_eq!(paired_words(&p(0.2, 0.02)), "not significantly better");
     }
-    use fringe_calibration::synth::SynthProduct;
 
     /// Writes `n` synthetic reference samples (published physics in
     /// `fringe_calibration::synth`: water permittivity vs temperature, a
