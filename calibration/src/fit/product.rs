@@ -2774,6 +2774,10 @@ fn mv_core(
     let y: Vec<f64> = rows.iter().map(|i| samples[*i].moisture_pct).collect();
     let n = rows.len();
     let mut best: Option<(f64, MvCore)> = None;
+    // The most parameters besides the constant that the quality gate
+    // accepts for these samples (five samples per parameter, the constant
+    // one of them); `None` where not even the constant fits.
+    let budget = (n / super::gate::Limits::default().samples_per_param).checked_sub(1);
     for (set, words) in mv_sets(tkn, density).into_iter().zip(MV_SET_WORDS) {
         let p = set.len();
         let x = DMatrix::from_fn(n, p, |i, j| full[i][set[j]]);
@@ -2786,8 +2790,7 @@ fn mv_core(
                 // parameter); only where none is, among all. Unconstrained,
                 // ridge took 13-19 effective parameters at 60 samples and
                 // was never eligible there.
-                let per = super::gate::Limits::default().samples_per_param;
-                let fits_gate = |edf: f64| (1 + edf.ceil() as usize) * per <= n;
+                let fits_gate = |edf: f64| budget.is_some_and(|b| edf.ceil() as usize <= b);
                 let mut pick: Option<(f64, f64, f64)> = None;
                 let mut any: Option<(f64, f64, f64)> = None;
                 for a in alpha_grid(n) {
@@ -2824,12 +2827,13 @@ fn mv_core(
                 )
             }
             MvMethod::Pls => {
-                // Components within the quality gate's budget (five
-                // samples per parameter, the constant one of them), as
-                // ridge's penalty is.
-                let per = super::gate::Limits::default().samples_per_param;
-                let budget = (n / per).saturating_sub(1);
-                let kmax = p.min(12).min(n.saturating_sub(6)).min(budget).max(1);
+                // Components within the quality gate's budget, as ridge's
+                // penalty is.
+                let kmax = p
+                    .min(12)
+                    .min(n.saturating_sub(6))
+                    .min(budget.unwrap_or(0))
+                    .max(1);
                 let folds = Folds::KFold(5.min(n))
                     .split(n)
                     .map_err(ProductFitError::Stats)?;
