@@ -104,7 +104,8 @@ impl LawConst {
 /// The model's intermediate values at one frequency (the cost needs only
 /// eps*, [`model`] the rest for the derivatives): x = ln f - ln f_r,
 /// u = (j f / f_r)^beta, 1 / (1 + u), the relaxation term, the conduction
-/// term's magnitude and eps*.
+/// term's magnitude and eps*. `sigma` is `p[2].exp()`, computed once per
+/// sample for both frequencies by the caller.
 struct Terms {
     x: f64,
     u: Cx<f64>,
@@ -118,6 +119,7 @@ struct Terms {
 fn terms(
     fc: &FreqConst,
     p: &[f64; 3],
+    sigma: f64,
     theta: &Theta,
     lc: &LawConst,
     ln_sigma_ref: f64,
@@ -130,7 +132,7 @@ fn terms(
     let u = Cx::new(mag * lc.cos_b, mag * lc.sin_b);
     let inv_d = Cx::new(1.0, 0.0) / (Cx::new(1.0, 0.0) + u);
     let relax = inv_d * p[1];
-    let cond = p[2].exp() / fc.w_eps0;
+    let cond = sigma / fc.w_eps0;
     let eps = Cx::new(p[0] + relax.re, relax.im - cond);
     Terms {
         x,
@@ -142,34 +144,37 @@ fn terms(
     }
 }
 
-/// eps* and its derivatives w.r.t. (eps_hf, d_eps, q = ln sigma) and theta.
+/// d eps* / dz (u = e^z), d eps* / d ln f_r and the derivatives w.r.t.
+/// (eps_hf, d_eps, q = ln sigma), from the [`Terms`] `t`.
+#[inline]
+fn d_params(t: &Terms, theta: &Theta, beta: f64) -> (Cx<f64>, Cx<f64>, [Cx<f64>; 3]) {
+    // d relax / dz with u = e^z.
+    let dz = -(t.relax * t.inv_d * t.u);
+    let d_ln_fr = dz * (-beta);
+    let dp = [
+        Cx::new(1.0, 0.0),
+        t.inv_d,
+        d_ln_fr * theta[2] - Cx::new(0.0, t.cond),
+    ];
+    (dz, d_ln_fr, dp)
+}
+
+/// eps* and its derivatives w.r.t. (eps_hf, d_eps, q = ln sigma) and theta
+/// (`sigma`: `p[2].exp()`).
 #[inline]
 fn model(
     fc: &FreqConst,
     p: &[f64; 3],
+    sigma: f64,
     theta: &Theta,
     lc: &LawConst,
     ln_sigma_ref: f64,
     dt_c: f64,
 ) -> (Cx<f64>, [Cx<f64>; 3], [Cx<f64>; 4]) {
-    let Terms {
-        x,
-        u,
-        inv_d,
-        relax,
-        cond,
-        eps,
-    } = terms(fc, p, theta, lc, ln_sigma_ref, dt_c);
-    let beta = lc.beta;
+    let t = terms(fc, p, sigma, theta, lc, ln_sigma_ref, dt_c);
     let half_pi = std::f64::consts::FRAC_PI_2;
-    // d relax / dz with u = e^z.
-    let dz = -(relax * inv_d * u);
-    let d_ln_fr = dz * (-beta);
-    let dp = [
-        Cx::new(1.0, 0.0),
-        inv_d,
-        d_ln_fr * theta[2] - Cx::new(0.0, cond),
-    ];
+    let (dz, d_ln_fr, dp) = d_params(&t, theta, lc.beta);
+    let (x, eps) = (t.x, t.eps);
     let dtheta = [
         dz * Cx::new(-x, -half_pi),
         d_ln_fr,
@@ -274,8 +279,9 @@ impl Data<'_> {
         let mut jp = J4x3::zeros();
         let mut jt = Matrix4::zeros();
         let dt = self.temps[i] - self.t_ref_c;
+        let sigma = p[2].exp();
         for (k, o) in self.obs[i].iter().enumerate() {
-            let (e, dp, dth) = model(&self.fc[i][k], p, theta, lc, self.ln_sigma_ref, dt);
+            let (e, dp, dth) = model(&self.fc[i][k], p, sigma, theta, lc, self.ln_sigma_ref, dt);
             let w = 1.0 / o.sd;
             r[2 * k] = (e.re - o.eps.re) * w;
             r[2 * k + 1] = (e.im - o.eps.im) * w;
@@ -291,15 +297,55 @@ impl Data<'_> {
         (r, jp, jt)
     }
 
+    /// [`Data::sample`]'s residuals and Jacobian w.r.t. the sample's own
+    /// parameters only (the same values).
+    fn sample_p(
+        &self,
+        i: usize,
+        p: &[f64; 3],
+        theta: &Theta,
+        lc: &LawConst,
+    ) -> (Vector4<f64>, J4x3) {
+        let mut r = Vector4::zeros();
+        let mut jp = J4x3::zeros();
+        let dt = self.temps[i] - self.t_ref_c;
+        let sigma = p[2].exp();
+        for (k, o) in self.obs[i].iter().enumerate() {
+            let t = terms(&self.fc[i][k], p, sigma, theta, lc, self.ln_sigma_ref, dt);
+            let (_, _, dp) = d_params(&t, theta, lc.beta);
+            let w = 1.0 / o.sd;
+            r[2 * k] = (t.eps.re - o.eps.re) * w;
+            r[2 * k + 1] = (t.eps.im - o.eps.im) * w;
+            for j in 0..3 {
+                jp[(2 * k, j)] = dp[j].re * w;
+                jp[(2 * k + 1, j)] = dp[j].im * w;
+            }
+        }
+        (r, jp)
+    }
+
+    /// [`Data::sample`]'s residuals alone (the same values).
+    fn residuals(&self, i: usize, p: &[f64; 3], theta: &Theta, lc: &LawConst) -> Vector4<f64> {
+        let mut r = Vector4::zeros();
+        let dt = self.temps[i] - self.t_ref_c;
+        let sigma = p[2].exp();
+        for (k, o) in self.obs[i].iter().enumerate() {
+            let e = terms(&self.fc[i][k], p, sigma, theta, lc, self.ln_sigma_ref, dt).eps;
+            let w = 1.0 / o.sd;
+            r[2 * k] = (e.re - o.eps.re) * w;
+            r[2 * k + 1] = (e.im - o.eps.im) * w;
+        }
+        r
+    }
+
     /// Levenberg-Marquardt on one sample's three parameters with the law
     /// held fixed (a start for the joint fit; at most 30 steps).
     fn refine_sample(&self, i: usize, p: &mut [f64; 3], theta: &Theta) {
         let mut lambda = 1e-3;
         let lc = LawConst::new(theta);
-        let (r0, _, _) = self.sample(i, p, theta, &lc);
-        let mut cost = r0.norm_squared();
+        let mut cost = self.residuals(i, p, theta, &lc).norm_squared();
         for _ in 0..30 {
-            let (r, jp, _) = self.sample(i, p, theta, &lc);
+            let (r, jp) = self.sample_p(i, p, theta, &lc);
             let mut v: Matrix3<f64> = jp.transpose() * jp;
             for j in 0..3 {
                 v[(j, j)] *= 1.0 + lambda;
@@ -310,8 +356,7 @@ impl Data<'_> {
             };
             let mut trial = [p[0] + dp[0], p[1] + dp[1], p[2] + dp[2]];
             clamp_sample(&mut trial, &self.lo, &self.hi);
-            let (rt, _, _) = self.sample(i, &trial, theta, &lc);
-            let c = rt.norm_squared();
+            let c = self.residuals(i, &trial, theta, &lc).norm_squared();
             if c.is_finite() && c < cost {
                 let done = cost - c <= 1e-10 * cost;
                 *p = trial;
@@ -335,8 +380,9 @@ impl Data<'_> {
         let lc = LawConst::new(theta);
         for (i, p) in ps.iter().enumerate() {
             let dt = self.temps[i] - dt0;
+            let sigma = p[2].exp();
             for (k, o) in self.obs[i].iter().enumerate() {
-                let e = terms(&self.fc[i][k], p, theta, &lc, self.ln_sigma_ref, dt).eps;
+                let e = terms(&self.fc[i][k], p, sigma, theta, &lc, self.ln_sigma_ref, dt).eps;
                 let w = 1.0 / o.sd;
                 let (a, b) = ((e.re - o.eps.re) * w, (e.im - o.eps.im) * w);
                 c += a * a + b * b;
@@ -639,7 +685,7 @@ mod tests {
         for f in [1e6, 20e6] {
             let fc = FreqConst::new(f);
             let lc = LawConst::new(&theta);
-            let (e, dp, dth) = model(&fc, &p, &theta, &lc, ln_sref, t - t_ref);
+            let (e, dp, dth) = model(&fc, &p, p[2].exp(), &theta, &lc, ln_sref, t - t_ref);
             let law = law_of(&theta, ln_sref.exp(), t_ref);
             let mp = MaterialParams {
                 eps_hf: p[0],
@@ -653,8 +699,8 @@ mod tests {
                 let (mut a, mut b) = (p, p);
                 a[j] += h;
                 b[j] -= h;
-                let fd = (model(&fc, &a, &theta, &lc, ln_sref, t - t_ref).0
-                    - model(&fc, &b, &theta, &lc, ln_sref, t - t_ref).0)
+                let fd = (model(&fc, &a, a[2].exp(), &theta, &lc, ln_sref, t - t_ref).0
+                    - model(&fc, &b, b[2].exp(), &theta, &lc, ln_sref, t - t_ref).0)
                     / (2.0 * h);
                 assert!(
                     (fd - dp[j]).norm() < 1e-5 * (1.0 + fd.norm()),
@@ -666,8 +712,9 @@ mod tests {
                 let (mut a, mut b) = (theta, theta);
                 a[j] += h;
                 b[j] -= h;
-                let fd = (model(&fc, &p, &a, &LawConst::new(&a), ln_sref, t - t_ref).0
-                    - model(&fc, &p, &b, &LawConst::new(&b), ln_sref, t - t_ref).0)
+                let sigma = p[2].exp();
+                let fd = (model(&fc, &p, sigma, &a, &LawConst::new(&a), ln_sref, t - t_ref).0
+                    - model(&fc, &p, sigma, &b, &LawConst::new(&b), ln_sref, t - t_ref).0)
                     / (2.0 * h);
                 assert!(
                     (fd - dth[j]).norm() < 1e-5 * (1.0 + fd.norm()),
