@@ -2083,15 +2083,22 @@ fn fit_relaxation_law(
         // the band: the device's inversion can land on another d_eps than
         // the fit's and the sample is left out. Where the model without
         // them leaves out fewer samples, it is written.
+        // (The samples a model leaves out are known before its
+        // cross-validation, which runs only for the model written.)
         Ok(fit) if opts.static_terms && !fit.excluded.is_empty() => {
-            match fit_relaxation_terms(samples, &plain, &cache) {
-                Ok(mut p) if p.excluded.len() < fit.excluded.len() => {
-                    p.notes.push(format!(
-                        "fitted without the static terms (the held mixing-model moisture of eps_hf + d_eps): with them {} sample(s) could not be used, without them {}",
-                        fit.excluded.len(),
-                        p.excluded.len()
-                    ));
-                    Ok(p)
+            match prepare_relaxation(samples, &plain, &cache) {
+                Ok(p) if p.excluded.len() < fit.excluded.len() => {
+                    let left_out = p.excluded.len();
+                    match p.finish(&plain, &cache) {
+                        Ok(mut p) => {
+                            p.notes.push(format!(
+                                "fitted without the static terms (the held mixing-model moisture of eps_hf + d_eps): with them {} sample(s) could not be used, without them {left_out}",
+                                fit.excluded.len(),
+                            ));
+                            Ok(p)
+                        }
+                        Err(_) => Ok(fit),
+                    }
                 }
                 _ => Ok(fit),
             }
@@ -2150,6 +2157,52 @@ fn fit_relaxation_terms(
     opts: &RelaxationOptions,
     cache: &CoreCache,
 ) -> Result<ProductFit, ProductFitError> {
+    prepare_relaxation(samples, opts, cache)?.finish(opts, cache)
+}
+
+/// The relaxation fit before its cross-validation: the samples it keeps
+/// (indices in the table) and those it leaves out with the reasons, its
+/// law, mixture, features, regression and model.
+struct PreparedRelaxation {
+    keep: Vec<usize>,
+    sub: Vec<Sample>,
+    sub_checked: Checked,
+    core: RelaxationCore,
+    features: Vec<Vec<f64>>,
+    lin: LinearFit,
+    model: ProductModel<f64>,
+    excluded: Vec<Excluded>,
+}
+
+impl PreparedRelaxation {
+    /// The cross-validation and statistics ([`finish_relaxation`]).
+    fn finish(
+        self,
+        opts: &RelaxationOptions,
+        cache: &CoreCache,
+    ) -> Result<ProductFit, ProductFitError> {
+        finish_relaxation(
+            &self.keep,
+            cache,
+            &self.sub,
+            &self.sub_checked,
+            opts,
+            self.core,
+            self.features,
+            self.lin,
+            self.model,
+            self.excluded,
+        )
+    }
+}
+
+/// [`fit_relaxation_terms`] up to its cross-validation: the rounds that
+/// leave out the samples the model cannot use.
+fn prepare_relaxation(
+    samples: &[Sample],
+    opts: &RelaxationOptions,
+    cache: &CoreCache,
+) -> Result<PreparedRelaxation, ProductFitError> {
     check_relaxation_options(opts)?;
     if opts.density_input {
         if let Some(s) = samples.iter().find(|s| s.bulk_density_kg_m3.is_none()) {
@@ -2266,18 +2319,16 @@ fn fit_relaxation_terms(
                 }
             }
             if bad.is_empty() {
-                return finish_relaxation(
-                    &keep,
-                    cache,
-                    &sub,
-                    &sub_checked,
-                    opts,
+                return Ok(PreparedRelaxation {
+                    keep,
+                    sub,
+                    sub_checked,
                     core,
                     features,
                     lin,
                     model,
                     excluded,
-                );
+                });
             }
         }
         let drop: Vec<usize> = bad.iter().map(|b| keep[b.0]).collect();
