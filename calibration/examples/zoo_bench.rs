@@ -10,7 +10,10 @@
 //! (`--quick`: 60 samples only; `--density`: the density table only;
 //! `--timing`: each model's fit time; `--kfold-time`: the 10-fold
 //! comparison of 200 samples alone, every row, median of 5, with the
-//! relaxation fit's share; FRINGE_FAMILY=name for one product). Seed: FRINGE_SEED (default 1).
+//! relaxation fit's share; FRINGE_FAMILY=name for one product;
+//! `--held-out`: the table at 60 samples on the products and frequency
+//! pairs nothing was designed on, `fit::zoo::Family::held_out` at all six
+//! pairs and the zoo's products at `HELD_OUT_PAIRS`). Seed: FRINGE_SEED (default 1).
 #[path = "../tests/common/baseline.rs"]
 mod baseline;
 
@@ -18,7 +21,7 @@ use fringe_calibration::fit::product::{
     compare_models, fit_multivariate, fit_relaxation, fit_single, Candidate, CompareOptions,
     MultivariateOptions, MvMethod, ProductFit, RelaxationOptions, Sample, SingleOptions,
 };
-use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS};
+use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS, HELD_OUT_PAIRS};
 use fringe_calibration::stats::Folds;
 use std::time::Instant;
 
@@ -335,8 +338,30 @@ fn main() {
     println!(
         "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"
     );
-    for f in Family::all() {
-        for pair in FREQ_PAIRS {
+    // `--held-out`: the products and frequency pairs nothing was designed
+    // on (the held-out products at all six pairs, the zoo's at the held-out
+    // pairs), 60 samples as `--quick`.
+    let held_out = std::env::args().any(|a| a == "--held-out");
+    let quick = quick || held_out;
+    let all_pairs: Vec<[f64; 2]> = FREQ_PAIRS.iter().chain(&HELD_OUT_PAIRS).copied().collect();
+    let cases: Vec<(Family, Vec<[f64; 2]>)> = if held_out {
+        Family::held_out()
+            .into_iter()
+            .map(|f| (f, all_pairs.clone()))
+            .chain(
+                Family::all()
+                    .into_iter()
+                    .map(|f| (f, HELD_OUT_PAIRS.to_vec())),
+            )
+            .collect()
+    } else {
+        Family::all()
+            .into_iter()
+            .map(|f| (f, FREQ_PAIRS.to_vec()))
+            .collect()
+    };
+    for (f, pairs) in cases {
+        for pair in pairs {
             let opts = loo_compare(&f, false);
             let train = f.samples(&Draw::new(60, pair), seed);
             let t0 = Instant::now();

@@ -8,7 +8,7 @@ use fringe_calibration::fit::product::{
     fit_multivariate, fit_relaxation, fit_single, MultivariateOptions, MvMethod, ProductFitError,
     RelaxationOptions, SingleOptions,
 };
-use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS};
+use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS, HELD_OUT_PAIRS};
 
 /// Training samples per fit.
 const TRAIN: usize = 100;
@@ -37,7 +37,9 @@ fn is_named_refusal(e: &ProductFitError) -> bool {
     ) && !e.to_string().contains("NaN or infinite")
 }
 
-/// Property over products x frequency pairs x two seeds (60 samples each):
+/// Property over products x frequency pairs x two seeds (60 samples each;
+/// the zoo's products at its pairs, the held-out products at all six
+/// pairs, the zoo's at the held-out pairs):
 /// every fit (single-frequency, relaxation, ridge, PLS) finishes or refuses
 /// with a reason naming what is at fault (only the relaxation model may
 /// refuse, naming the samples it cannot use or its undetermined law);
@@ -47,8 +49,17 @@ fn is_named_refusal(e: &ProductFitError) -> bool {
 fn every_fit_finishes_or_names_its_refusal() {
     let base = seed();
     let mut failures = Vec::new();
-    for f in Family::all() {
-        for pair in FREQ_PAIRS {
+    let all_pairs: Vec<[f64; 2]> = FREQ_PAIRS.iter().chain(&HELD_OUT_PAIRS).copied().collect();
+    let cases = Family::all()
+        .into_iter()
+        .map(|f| (f, all_pairs.clone()))
+        .chain(
+            Family::held_out()
+                .into_iter()
+                .map(|f| (f, all_pairs.clone())),
+        );
+    for (f, pairs) in cases {
+        for pair in pairs {
             for seed in [base, base + 1] {
                 let samples = f.samples(&Draw::new(60, pair), seed);
                 let single = fit_single(&samples, &SingleOptions::default());
@@ -223,16 +234,57 @@ fn baseline_sep(b: &Baseline, val: &[Sample]) -> f64 {
 /// bounds; the cases above 1.0 are reported in BENCHMARKS.md.
 #[test]
 fn chosen_model_holds_against_the_generic_baseline_on_every_product() {
+    let cases: Vec<(Family, Vec<[f64; 2]>)> = Family::all()
+        .into_iter()
+        .map(|f| (f, FREQ_PAIRS.to_vec()))
+        .collect();
+    holds_against_the_baseline(&cases, "the zoo");
+}
+
+/// The same bounds on products and frequency pairs nothing was designed on
+/// ([`Family::held_out`], [`HELD_OUT_PAIRS`]: added after the models and
+/// rules were fixed): the held-out products at all six pairs, the zoo's
+/// products at the three held-out pairs (42 cases). Over FRINGE_SEED 1-16
+/// at their first measurement (BENCHMARKS.md) the comparison finished in
+/// every case, the chosen model did at most 1.18 times the baseline's SEP,
+/// and a product's coverage over its pairs left 88-99.5 % on two seeds
+/// (99.8 %: the cereal with bound water on seed 4, the coffee on seed 5).
+#[test]
+fn chosen_model_holds_on_products_and_pairs_not_designed_on() {
+    let mut cases: Vec<(Family, Vec<[f64; 2]>)> = Family::held_out()
+        .into_iter()
+        .map(|f| {
+            (
+                f,
+                FREQ_PAIRS.iter().chain(&HELD_OUT_PAIRS).copied().collect(),
+            )
+        })
+        .collect();
+    cases.extend(
+        Family::all()
+            .into_iter()
+            .map(|f| (f, HELD_OUT_PAIRS.to_vec())),
+    );
+    holds_against_the_baseline(&cases, "the held-out cases");
+}
+
+/// The comparison on each product at each of its pairs ([`TRAIN`]
+/// calibration samples, 200 fresh ones): every case finishes, at most 2 %
+/// of the validation readings without a moisture, the chosen model's SEP
+/// at most 1.4 times the baseline's in each case and 1.05 on average,
+/// coverage of the 95 % intervals 85-100 % in each case, 88-99.5 % over a
+/// product's pairs and 90-99 % over all (`what` names the set).
+fn holds_against_the_baseline(cases: &[(Family, Vec<[f64; 2]>)], what: &str) {
     let seed = seed();
     let mut worst: (f64, String) = (0.0, String::new());
     let mut ratios = Vec::new();
     let mut all_cov = Vec::new();
-    for f in Family::all() {
+    for (f, pairs) in cases {
         let mut family_cov = Vec::new();
-        for pair in FREQ_PAIRS {
+        for pair in pairs.iter().copied() {
             let train = f.samples(&Draw::new(TRAIN, pair), seed);
             let val = f.samples(&Draw::new(200, pair), seed + 1000);
-            let cmp = compare_models(&train, &compare_opts(&f))
+            let cmp = compare_models(&train, &compare_opts(f))
                 .unwrap_or_else(|e| panic!("FRINGE_SEED={seed} {} {pair:?}: {e}", f.name));
             let fit = cmp.chosen_fit();
             let (e, cov) = validate(fit, &val);
@@ -273,28 +325,33 @@ fn chosen_model_holds_against_the_generic_baseline_on_every_product() {
         }
         let c = family_cov.iter().sum::<f64>() / family_cov.len() as f64;
         println!(
-            "FRINGE_SEED={seed} {}: coverage over the three pairs {c:.3}",
-            f.name
+            "FRINGE_SEED={seed} {}: coverage over its {} pairs {c:.3}",
+            f.name,
+            pairs.len()
         );
         assert!(
             (0.88..=0.995).contains(&c),
-            "FRINGE_SEED={seed} {}: coverage over the three pairs {c:.3}",
-            f.name
+            "FRINGE_SEED={seed} {}: coverage over its {} pairs {c:.3}",
+            f.name,
+            pairs.len()
         );
         all_cov.push(c);
     }
     let c = all_cov.iter().sum::<f64>() / all_cov.len() as f64;
-    println!("FRINGE_SEED={seed}: coverage over the zoo {c:.3}");
+    println!("FRINGE_SEED={seed}: coverage over {what} {c:.3}");
     assert!(
         (0.90..=0.99).contains(&c),
-        "FRINGE_SEED={seed}: coverage over the zoo {c:.3}"
+        "FRINGE_SEED={seed}: coverage over {what} {c:.3}"
     );
     let mean = ratios.iter().sum::<f64>() / ratios.len() as f64;
     println!(
-        "FRINGE_SEED={seed}: SEP ratio chosen/baseline: mean {mean:.3}, worst {:.2} ({})",
+        "FRINGE_SEED={seed}: SEP ratio chosen/baseline over {what}: mean {mean:.3}, worst {:.2} ({})",
         worst.0, worst.1
     );
-    assert!(mean <= 1.05, "FRINGE_SEED={seed}: mean ratio {mean:.3}");
+    assert!(
+        mean <= 1.05,
+        "FRINGE_SEED={seed}: mean ratio over {what} {mean:.3}"
+    );
 }
 
 /// Where the physics model should win, it does: on the synthetic grain,
