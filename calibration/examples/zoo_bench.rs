@@ -1,5 +1,5 @@
-//! The zoo benchmark (not a test): every product of `fit::zoo` at every
-//! frequency pair, every model of `compare_models` and the generic
+//! The zoo benchmark (not a test): the eight products of `fit::zoo`
+//! (`Family::all`) at its three frequency pairs (`FREQ_PAIRS`), every model of `compare_models` and the generic
 //! quadratic ridge baseline; validation SEP on fresh samples, on samples
 //! 10 C beyond the calibrated temperatures and at up to twice the
 //! calibrated water conductivity; bias and 95 % interval coverage of the
@@ -10,7 +10,7 @@
 //! (`--quick`: 60 samples only; `--density`: the density table only;
 //! `--timing`: each model's fit time; `--kfold-time`: the 10-fold
 //! comparison of 200 samples alone, every row, median of 5, with the
-//! relaxation fit's share; FRINGE_FAMILY=name for one product;
+//! relaxation fit's share; FRINGE_FAMILY=name for one of the eight products;
 //! `--held-out`: the table at 60 samples on the products and frequency
 //! pairs nothing was designed on, `fit::zoo::Family::held_out` at all six
 //! pairs and the zoo's products at `HELD_OUT_PAIRS`). Seed: FRINGE_SEED (default 1).

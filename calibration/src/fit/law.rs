@@ -102,10 +102,9 @@ impl LawConst {
 }
 
 /// The model's intermediate values at one frequency (the cost needs only
-/// eps*, [`model`] the rest for the derivatives): x = ln f - ln f_r,
+/// eps*, [`d_params`] and [`model`] the rest for the derivatives): x = ln f - ln f_r,
 /// u = (j f / f_r)^beta, 1 / (1 + u), the relaxation term, the conduction
-/// term's magnitude and eps*. `sigma` is `p[2].exp()`, computed once per
-/// sample for both frequencies by the caller.
+/// term's magnitude and eps*.
 struct Terms {
     x: f64,
     u: Cx<f64>,
@@ -115,6 +114,8 @@ struct Terms {
     eps: Cx<f64>,
 }
 
+/// [`Terms`] at one frequency; `sigma` is `p[2].exp()`, computed once per
+/// sample for both frequencies by the caller.
 #[inline]
 fn terms(
     fc: &FreqConst,
@@ -673,6 +674,59 @@ pub(crate) fn fit_law_budget(
 mod tests {
     use super::*;
     use crate::invert::{product_permittivity, MaterialParams};
+
+    /// The lighter evaluations of the per-sample refinement
+    /// ([`Data::sample_p`], [`Data::residuals`]) give bit for bit the
+    /// residuals and parameter Jacobian of the full one ([`Data::sample`]),
+    /// so the refinement takes the same steps as with the full one.
+    #[test]
+    fn lighter_evaluations_equal_the_full_one_bit_for_bit() {
+        let obs: Vec<[Observation<f64>; 2]> = [(12.0, 3.0, 8.0, 0.4), (25.0, 40.0, 14.0, 2.5)]
+            .iter()
+            .map(|&(a, b, c, d)| {
+                [
+                    Observation {
+                        freq_hz: 1e6,
+                        eps: Cx::new(a, -b),
+                        sd: 0.02,
+                    },
+                    Observation {
+                        freq_hz: 20e6,
+                        eps: Cx::new(c, -d),
+                        sd: 0.02,
+                    },
+                ]
+            })
+            .collect();
+        let temps = [12.0, 31.0];
+        let (lo, hi) = sample_bounds();
+        let data = Data {
+            obs: &obs,
+            fc: obs
+                .iter()
+                .map(|o| [FreqConst::new(o[0].freq_hz), FreqConst::new(o[1].freq_hz)])
+                .collect(),
+            temps: &temps,
+            ln_sigma_ref: (2e-3f64).ln(),
+            t_ref_c: 22.0,
+            lo,
+            hi,
+        };
+        let theta = [0.2, 15.5, 0.9, 0.01];
+        let lc = LawConst::new(&theta);
+        for (i, p) in [[5.5, 20.0, (3e-3f64).ln()], [7.0, 35.0, (1e-2f64).ln()]]
+            .iter()
+            .enumerate()
+        {
+            let (r, jp, _) = data.sample(i, p, &theta, &lc);
+            let (r2, jp2) = data.sample_p(i, p, &theta, &lc);
+            let r3 = data.residuals(i, p, &theta, &lc);
+            let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(r.as_slice()), bits(r2.as_slice()));
+            assert_eq!(bits(r.as_slice()), bits(r3.as_slice()));
+            assert_eq!(bits(jp.as_slice()), bits(jp2.as_slice()));
+        }
+    }
 
     /// The model written here equals the inversion's own model
     /// (crate::invert::product_permittivity), and its analytic derivatives

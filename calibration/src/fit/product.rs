@@ -2084,7 +2084,8 @@ fn fit_relaxation_law(
         // the fit's and the sample is left out. Where the model without
         // them leaves out fewer samples, it is written.
         // (The samples a model leaves out are known before its
-        // cross-validation, which runs only for the model written.)
+        // cross-validation: the fit without the static terms is
+        // cross-validated only where it leaves out fewer.)
         Ok(fit) if opts.static_terms && !fit.excluded.is_empty() => {
             match prepare_relaxation(samples, &plain, &cache) {
                 Ok(p) if p.excluded.len() < fit.excluded.len() => {
