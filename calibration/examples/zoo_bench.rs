@@ -4,7 +4,10 @@
 //! 10 C beyond the calibrated temperatures and at up to twice the
 //! calibrated water conductivity; bias and 95 % interval coverage of the
 //! chosen model; the time of the whole comparison (every model with its
-//! cross-validation) for 60 and 200 samples.
+//! cross-validation) for 60 and 200 samples; the chosen model's and the
+//! baseline's SEP on the validation readings the chosen model does not
+//! mark (no flag of the device's estimate, leverage within the
+//! calibration set's), and how many it marks.
 //!
 //! `cargo run --release -p fringe-calibration --example zoo_bench [-- --quick]`
 //! (`--quick`: 60 samples only; `--density`: the density table only;
@@ -13,7 +16,9 @@
 //! relaxation fit's share; FRINGE_FAMILY=name for one of the eight products;
 //! `--held-out`: the table at 60 samples on the products and frequency
 //! pairs nothing was designed on, `fit::zoo::Family::held_out` at all six
-//! pairs and the zoo's products at `HELD_OUT_PAIRS`). Seed: FRINGE_SEED (default 1).
+//! pairs and the zoo's products at `HELD_OUT_PAIRS`; `--gross-errors`: the
+//! chosen models' readings off by more than 4 times their cross-validated
+//! SEP on all eleven products at all six pairs, and what marks them). Seed: FRINGE_SEED (default 1).
 #[path = "../tests/common/baseline.rs"]
 mod baseline;
 
@@ -50,6 +55,32 @@ fn errors(f: &ProductFit, val: &[Sample]) -> (Vec<f64>, usize, usize) {
         }
     }
     (e, missing, inside)
+}
+
+/// The chosen model's and the baseline's errors on the validation readings
+/// the chosen model gives a moisture without marking it (no flag of the
+/// device's estimate, leverage within the calibration set's): what a plant
+/// reads as a good value, compared on the same readings.
+fn unmarked_errors(
+    f: &ProductFit,
+    base: &baseline::Baseline,
+    val: &[Sample],
+) -> (Vec<f64>, Vec<f64>) {
+    let (mut ec, mut eb) = (Vec::new(), Vec::new());
+    for s in val {
+        let Ok(p) = f.predict(&s.channels, s.temperature_c, s.bulk_density_kg_m3, 0.95) else {
+            continue;
+        };
+        if let (Some(m), true, false) = (
+            p.estimate.moisture_pct,
+            p.estimate.flags.is_empty(),
+            p.extrapolation,
+        ) {
+            ec.push(f64::from(m) - s.moisture_pct);
+            eb.push(base.predict(&s.channels, s.temperature_c) - s.moisture_pct);
+        }
+    }
+    (ec, eb)
 }
 
 /// The effect of density variation: for each product whose bulk density
@@ -315,6 +346,72 @@ fn kfold_time_table(seed: u64) {
     }
 }
 
+/// Gross errors and whether anything marks them: the chosen model (60
+/// samples) of every product, the held-out ones too, at all six pairs,
+/// on 200 fresh readings each; a reading off by more than 4 times the
+/// cross-validated SEP counts, with whether the device's estimate flagged
+/// it, whether its leverage lay beyond the calibration set's, and whether
+/// its 95 % interval missed the lab value.
+fn gross_errors(seed: u64) {
+    let all_pairs: Vec<[f64; 2]> = FREQ_PAIRS.iter().chain(&HELD_OUT_PAIRS).copied().collect();
+    let (mut readings, mut gross, mut device, mut leverage, mut neither, mut missed) =
+        (0, 0, 0, 0, 0, 0);
+    let mut worst: Vec<(f64, String)> = Vec::new();
+    for f in Family::all().into_iter().chain(Family::held_out()) {
+        for pair in &all_pairs {
+            let train = f.samples(&Draw::new(60, *pair), seed);
+            let val = f.samples(&Draw::new(200, *pair), seed + 1000);
+            let Ok(m) = compare_models(&train, &loo_compare(&f, false)) else {
+                println!("{} {:?}: no comparison", f.name, pair);
+                continue;
+            };
+            let fit = m.chosen_fit();
+            let cv = fit.stats.cross_validation.sep;
+            for s in &val {
+                let Ok(p) = fit.predict(&s.channels, s.temperature_c, s.bulk_density_kg_m3, 0.95)
+                else {
+                    continue;
+                };
+                let Some(v) = p.estimate.moisture_pct else {
+                    continue;
+                };
+                readings += 1;
+                let e = f64::from(v) - s.moisture_pct;
+                if e.abs() <= 4.0 * cv {
+                    continue;
+                }
+                gross += 1;
+                let flagged = !p.estimate.flags.is_empty();
+                device += usize::from(flagged);
+                leverage += usize::from(p.extrapolation);
+                if !flagged && !p.extrapolation {
+                    neither += 1;
+                    if p.interval_pct
+                        .is_some_and(|(lo, hi)| !(lo..=hi).contains(&s.moisture_pct))
+                    {
+                        missed += 1;
+                    }
+                    worst.push((
+                        e.abs() / cv,
+                        format!(
+                            "{} {}/{} MHz, {}: {e:+.2} % (cross-validated SEP {cv:.3})",
+                            f.name,
+                            pair[0] / 1e6,
+                            pair[1] / 1e6,
+                            m.chosen.name()
+                        ),
+                    ));
+                }
+            }
+        }
+    }
+    println!("readings with a moisture {readings}; off by more than 4 x the cross-validated SEP {gross}: flagged by the device {device}, leverage beyond the calibration set's {leverage}, neither {neither} (of these outside their 95 % interval {missed})");
+    worst.sort_by(|a, b| b.0.total_cmp(&a.0));
+    for (k, w) in worst.iter().take(5) {
+        println!("  unmarked, {k:.1} x: {w}");
+    }
+}
+
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
     let seed: u64 = std::env::var("FRINGE_SEED")
@@ -330,13 +427,17 @@ fn main() {
         timing_table(seed);
         return;
     }
+    if std::env::args().any(|a| a == "--gross-errors") {
+        gross_errors(seed);
+        return;
+    }
     if std::env::args().any(|a| a == "--kfold-time") {
         kfold_time_table(seed);
         return;
     }
-    println!("| product | f1/f2 MHz | single | relaxation | PLS | ridge | baseline | chosen | bias | coverage 95 % | T+10 C chosen / baseline | 2x sigma chosen / baseline | fit 60 | fit 200 | fit 200, 10-fold |");
+    println!("| product | f1/f2 MHz | single | relaxation | PLS | ridge | baseline | chosen | bias | coverage 95 % | T+10 C chosen / baseline | 2x sigma chosen / baseline | fit 60 | fit 200 | fit 200, 10-fold | unmarked readings: chosen / baseline |");
     println!(
-        "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"
+        "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"
     );
     // `--held-out`: the products and frequency pairs nothing was designed
     // on (the held-out products at all six pairs, the zoo's at the held-out
@@ -414,19 +515,26 @@ fn main() {
                     Err(_) => "-".into(),
                 }
             };
-            let (chosen, bias, cov, hot_s, salty_s) = match &cmp {
+            let (chosen, bias, cov, hot_s, salty_s, unmarked) = match &cmp {
                 Ok(m) => {
                     let fit = m.chosen_fit();
                     let (e, _, inside) = errors(fit, &val);
                     let bias = e.iter().sum::<f64>() / e.len() as f64;
                     let (eh, _, _) = errors(fit, &hot);
                     let (es, _, _) = errors(fit, &salty);
+                    let (ec, eb) = unmarked_errors(fit, &base, &val);
                     (
                         format!("{} {:.3}", m.chosen.name(), sep(&e)),
                         format!("{bias:+.3}"),
                         format!("{:.1} %", 100.0 * inside as f64 / val.len() as f64),
                         format!("{:.3} / {:.3}", sep(&eh), base_sep(&hot)),
                         format!("{:.3} / {:.3}", sep(&es), base_sep(&salty)),
+                        format!(
+                            "{:.3} / {:.3} ({} marked)",
+                            sep(&ec),
+                            sep(&eb),
+                            val.len() - ec.len()
+                        ),
                     )
                 }
                 Err(e) => (
@@ -435,10 +543,11 @@ fn main() {
                     "-".into(),
                     "-".into(),
                     "-".into(),
+                    "-".into(),
                 ),
             };
             println!(
-                "| {} | {}/{} | {} | {} | {} | {} | {:.3} | {} | {} | {} | {} | {} | {:.2} s | {:.2} s | {:.0} ms |",
+                "| {} | {}/{} | {} | {} | {} | {} | {:.3} | {} | {} | {} | {} | {} | {:.2} s | {:.2} s | {:.0} ms | {} |",
                 f.name,
                 pair[0] / 1e6,
                 pair[1] / 1e6,
@@ -454,7 +563,8 @@ fn main() {
                 salty_s,
                 t60,
                 t200,
-                1e3 * t200k
+                1e3 * t200k,
+                unmarked
             );
         }
     }
