@@ -781,14 +781,67 @@ fn spread(coef: &[f64], degree: usize) -> ([f64; 4], Vec<f64>) {
     (c, coef[degree + 1..].to_vec())
 }
 
-fn range_of(v: impl Iterator<Item = f64>) -> Range<f32> {
-    let (lo, hi) = v.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), x| {
-        (a.min(x), b.max(x))
-    });
+/// How far a calibration's valid range reaches beyond its samples'
+/// extremes, in their average spacing (span / (n - 1)).
+///
+/// A new reading of the product the samples came from lies beyond the
+/// largest of n samples with a chance of 1/(n + 1), and as often below the
+/// smallest: with the exact span, six quantities checked (the inputs, the
+/// temperature and the moisture) flagged 12.4 % of fresh readings from the
+/// zoo's own ranges at 60 samples. Beyond the extreme by more than k
+/// spacings the chance is about e^-k / (n + 1) (the uniform distribution's
+/// order statistics: (1 - d)^(n+1) / (n + 1) for a margin d of the range;
+/// worked here, no source), so three spacings flag about a twentieth as
+/// many good readings, and a reading well outside (10 C beyond a span of
+/// 35 C from 60 samples: 1.8 C of margin) still is (BENCHMARKS.md).
+const RANGE_MARGIN_SPACINGS: f64 = 3.0;
+
+/// How a valid range widens: on the values (with a floor the quantity
+/// cannot go below), or on their logarithms (a quantity spanning decades,
+/// all values positive: a conductivity, a loss factor).
+#[derive(Clone, Copy)]
+enum Widen {
+    Linear { floor: Option<f64> },
+    Log,
+}
+
+/// The valid range of a quantity from its values in the calibration
+/// samples: their span, widened on each side by
+/// [`RANGE_MARGIN_SPACINGS`] times their average spacing.
+fn range_of(v: impl Iterator<Item = f64>, widen: Widen) -> Range<f32> {
+    let (lo, hi, n) = v.fold(
+        (f64::INFINITY, f64::NEG_INFINITY, 0usize),
+        |(a, b, n), x| (a.min(x), b.max(x), n + 1),
+    );
+    let share = if n > 1 {
+        RANGE_MARGIN_SPACINGS / (n - 1) as f64
+    } else {
+        0.0
+    };
+    let (lo, hi) = match widen {
+        Widen::Log if lo > 0.0 => {
+            let m = share * (hi / lo).ln();
+            (lo * (-m).exp(), hi * m.exp())
+        }
+        Widen::Log => {
+            let m = share * (hi - lo);
+            ((lo - m).max(0.0), hi + m)
+        }
+        Widen::Linear { floor } => {
+            let m = share * (hi - lo);
+            let lo = lo - m;
+            (floor.map_or(lo, |f| lo.max(f.min(lo + m))), hi + m)
+        }
+    };
     // Widen by f32 rounding so the calibration samples themselves are inside.
     let pad = |x: f64| 1e-6 * x.abs().max(1e-6);
     Range::new((lo - pad(lo)) as f32, (hi + pad(hi)) as f32)
 }
+
+/// [`Widen::Linear`] for a quantity that cannot be negative.
+const NOT_NEGATIVE: Widen = Widen::Linear { floor: Some(0.0) };
+/// [`Widen::Linear`] without a floor (a temperature).
+const ANY: Widen = Widen::Linear { floor: None };
 
 /// Builds the device's calibration (f32, validated) from a model.
 fn device_cal(
@@ -954,8 +1007,8 @@ where
 {
     let n = samples.len();
     let y: Vec<f64> = samples.iter().map(|s| s.moisture_pct).collect();
-    let moisture = range_of(y.iter().copied());
-    let temperature = range_of(samples.iter().map(|s| s.temperature_c));
+    let moisture = range_of(y.iter().copied(), NOT_NEGATIVE);
+    let temperature = range_of(samples.iter().map(|s| s.temperature_c), ANY);
     let predict_all =
         |cal: &ProductCalibration<f32>, rows: &[usize]| -> Result<Vec<f64>, ProductFitError> {
             rows.iter()
@@ -1446,7 +1499,10 @@ pub fn fit_single(samples: &[Sample], opts: &SingleOptions) -> Result<ProductFit
     let all: Vec<usize> = (0..samples.len()).collect();
     let lin = lin_fit(&features, &y, &all, "single-frequency regression")?;
     let model = single_model(opts.degree, opts.freq_index, t_ref_c, &lin.coef);
-    let inputs = vec![range_of(checked.eps.iter().map(|e| e[opts.freq_index].0))];
+    let inputs = vec![range_of(
+        checked.eps.iter().map(|e| e[opts.freq_index].0),
+        NOT_NEGATIVE,
+    )];
     let fitted = Fitted {
         model,
         features,
@@ -2277,8 +2333,8 @@ fn prepare_relaxation(
             // 3. The device's own estimate must give each a moisture.
             let probe = device_cal(
                 &model,
-                range_of(y.iter().copied()),
-                range_of(sub.iter().map(|s| s.temperature_c)),
+                range_of(y.iter().copied(), NOT_NEGATIVE),
+                range_of(sub.iter().map(|s| s.temperature_c), ANY),
                 &relax_inputs(&core, &model, &sub),
                 lin.residual_sd.max(1e-6),
             )?
@@ -2364,14 +2420,15 @@ fn relax_inputs(
         .map(|(p, s)| at_sample(rm, s).mixing_moisture_pct(p.eps_hf, s.temperature_c))
         .collect();
     let mut inputs = vec![
-        range_of(core.params.iter().map(|p| p.eps_hf)),
-        range_of(core.params.iter().map(|p| p.d_eps)),
-        range_of(core.params.iter().map(|p| p.sigma_s_m)),
-        range_of(mix.iter().copied()),
+        range_of(core.params.iter().map(|p| p.eps_hf), NOT_NEGATIVE),
+        range_of(core.params.iter().map(|p| p.d_eps), NOT_NEGATIVE),
+        range_of(core.params.iter().map(|p| p.sigma_s_m), Widen::Log),
+        range_of(mix.iter().copied(), ANY),
     ];
     if rm.density_input {
         inputs.push(range_of(
             samples.iter().filter_map(|s| s.bulk_density_kg_m3),
+            NOT_NEGATIVE,
         ));
     }
     inputs
@@ -2427,8 +2484,8 @@ fn finish_relaxation(
     let plain_inputs = fitted.inputs.clone();
     // Ranges do not change a moisture value; the full set's, once.
     let (moisture, temperature) = (
-        range_of(y.iter().copied()),
-        range_of(samples.iter().map(|s| s.temperature_c)),
+        range_of(y.iter().copied(), NOT_NEGATIVE),
+        range_of(samples.iter().map(|s| s.temperature_c), ANY),
     );
     let plain_predict = |m: &ProductModel<f64>, train: &[usize]| {
         let Ok((cal, _)) = device_cal(m, moisture, temperature, &plain_inputs, 1.0) else {
@@ -3037,16 +3094,23 @@ pub fn fit_multivariate(
     };
     let mut inputs: Vec<Range<f32>> = (0..4)
         .map(|c| {
-            range_of(checked.eps.iter().map(|e| match c {
-                0 => e[0].0,
-                1 => e[0].1,
-                2 => e[1].0,
-                _ => e[1].1,
-            }))
+            // The model works on their logarithms.
+            range_of(
+                checked.eps.iter().map(|e| match c {
+                    0 => e[0].0,
+                    1 => e[0].1,
+                    2 => e[1].0,
+                    _ => e[1].1,
+                }),
+                Widen::Log,
+            )
         })
         .collect();
     if opts.density_input {
-        inputs.push(range_of(checked.rho.iter().flatten().copied()));
+        inputs.push(range_of(
+            checked.rho.iter().flatten().copied(),
+            NOT_NEGATIVE,
+        ));
     }
     let fitted = Fitted {
         model: ProductModel::Multivariate(core.model),
@@ -3633,6 +3697,27 @@ pub fn synthetic_samples(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A valid range is the samples' span widened on each side by three
+    /// average spacings (worked by hand): 11 values 10..20 (spacing 1)
+    /// give 7..23; with the floor at 0, 0.5..2.5 (spacing 0.2) give
+    /// 0..3.1; on the log scale 1..100 (11 values, a fifth of a decade
+    /// apart) give 10^-0.6..10^2.6; one value gives itself.
+    #[test]
+    fn valid_range_widens_by_three_spacings() {
+        let close = |r: Range<f32>, lo: f64, hi: f64| {
+            (f64::from(r.min) - lo).abs() <= 1e-5 * lo.abs().max(1.0)
+                && (f64::from(r.max) - hi).abs() <= 1e-5 * hi.abs().max(1.0)
+        };
+        let r = range_of((0..11).map(|k| 10.0 + k as f64), ANY);
+        assert!(close(r, 7.0, 23.0), "{r:?}");
+        let r = range_of((0..11).map(|k| 0.5 + 0.2 * k as f64), NOT_NEGATIVE);
+        assert!(close(r, 0.0, 3.1), "{r:?}");
+        let r = range_of((0..11).map(|k| 10f64.powf(0.2 * k as f64)), Widen::Log);
+        assert!(close(r, 10f64.powf(-0.6), 10f64.powf(2.6)), "{r:?}");
+        let r = range_of(std::iter::once(4.2), ANY);
+        assert!(close(r, 4.2, 4.2), "{r:?}");
+    }
 
     /// The middle feature set is the squares and products that do not
     /// change with temperature, and the three sets are nested (consistency
