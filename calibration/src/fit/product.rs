@@ -809,10 +809,21 @@ enum Widen {
 /// samples: their span, widened on each side by
 /// [`RANGE_MARGIN_SPACINGS`] times their average spacing.
 fn range_of(v: impl Iterator<Item = f64>, widen: Widen) -> Range<f32> {
-    let (lo, hi, n) = v.fold(
-        (f64::INFINITY, f64::NEG_INFINITY, 0usize),
-        |(a, b, n), x| (a.min(x), b.max(x), n + 1),
-    );
+    // Comparisons, not f64::min/max: in the test profile (opt-level 2 with
+    // debug assertions, rustc 1.95.0) a loop of f64::max over
+    // `(0..11).map(|k| 10.0 + k as f64)` left out the last value (the
+    // maximum came out 19, not 20; release builds were right). NaN is
+    // left out either way.
+    let (mut lo, mut hi, mut n) = (f64::INFINITY, f64::NEG_INFINITY, 0usize);
+    for x in v {
+        if x < lo {
+            lo = x;
+        }
+        if x > hi {
+            hi = x;
+        }
+        n += 1;
+    }
     let share = if n > 1 {
         RANGE_MARGIN_SPACINGS / (n - 1) as f64
     } else {
