@@ -782,7 +782,7 @@ fn spread(coef: &[f64], degree: usize) -> ([f64; 4], Vec<f64>) {
 }
 
 /// How far a calibration's valid range reaches beyond its samples'
-/// extremes, in their average spacing (span / (n - 1)).
+/// extremes, in their average spacing.
 ///
 /// A new reading of the product the samples came from lies beyond the
 /// largest of n samples with a chance of 1/(n + 1), and as often below the
@@ -796,52 +796,65 @@ fn spread(coef: &[f64], degree: usize) -> ([f64; 4], Vec<f64>) {
 /// 35 C from 60 samples: 1.8 C of margin) still is (BENCHMARKS.md).
 const RANGE_MARGIN_SPACINGS: f64 = 3.0;
 
-/// How a valid range widens: on the values (with a floor the quantity
-/// cannot go below), or on their logarithms (a quantity spanning decades,
-/// all values positive: a conductivity, a loss factor).
+/// How a valid range reaches beyond the samples.
 #[derive(Clone, Copy)]
 enum Widen {
-    Linear { floor: Option<f64> },
-    Log,
+    /// Their span exactly (the density: the width of its range sets the
+    /// uncertainty of a reading without one).
+    Exact,
+    /// On the values, within the limits the quantity has.
+    Linear { floor: f64, ceiling: f64 },
+    /// On ln(value + offset), the scale a model works on (a conductivity,
+    /// the multivariate model's eps' and eps'' + `LOSS_FLOOR`).
+    Log { offset: f64 },
 }
 
 /// The valid range of a quantity from its values in the calibration
 /// samples: their span, widened on each side by
-/// [`RANGE_MARGIN_SPACINGS`] times their average spacing.
+/// [`RANGE_MARGIN_SPACINGS`] times their average spacing. The spacing is
+/// taken from the middle 80 % of the values (from 10 samples on), so that
+/// one far sample (the quality gate's `RangeFromOneSample`, or a
+/// conductivity held at the inversion's bound) does not widen both ends.
+/// Values that are not finite are left out. (Extremes by sorting, not by
+/// f64::min/max: see the test profile's opt-level in Cargo.toml.)
 fn range_of(v: impl Iterator<Item = f64>, widen: Widen) -> Range<f32> {
-    // Comparisons, not f64::min/max: in the test profile (opt-level 2 with
-    // debug assertions, rustc 1.95.0) a loop of f64::max over
-    // `(0..11).map(|k| 10.0 + k as f64)` left out the last value (the
-    // maximum came out 19, not 20; release builds were right). NaN is
-    // left out either way.
-    let (mut lo, mut hi, mut n) = (f64::INFINITY, f64::NEG_INFINITY, 0usize);
-    for x in v {
-        if x < lo {
-            lo = x;
+    let mut x: Vec<f64> = v.filter(|x| x.is_finite()).collect();
+    x.sort_by(f64::total_cmp);
+    let (Some(&lo), Some(&hi)) = (x.first(), x.last()) else {
+        return Range::new(f32::INFINITY, f32::NEG_INFINITY);
+    };
+    // Average spacing of sorted values.
+    let spacing = |t: &[f64]| -> f64 {
+        let n = t.len();
+        if n < 2 {
+            return 0.0;
         }
-        if x > hi {
-            hi = x;
-        }
-        n += 1;
-    }
-    let share = if n > 1 {
-        RANGE_MARGIN_SPACINGS / (n - 1) as f64
-    } else {
-        0.0
+        let q = |p: f64| t[((n - 1) as f64 * p).round() as usize];
+        let (a, b, share) = if n >= 10 {
+            (q(0.1), q(0.9), 0.8)
+        } else {
+            (t[0], t[n - 1], 1.0)
+        };
+        (b - a) / (share * (n - 1) as f64)
     };
     let (lo, hi) = match widen {
-        Widen::Log if lo > 0.0 => {
-            let m = share * (hi / lo).ln();
-            (lo * (-m).exp(), hi * m.exp())
+        Widen::Exact => (lo, hi),
+        Widen::Linear { floor, ceiling } => {
+            let m = RANGE_MARGIN_SPACINGS * spacing(&x);
+            ((lo - m).max(floor.min(lo)), (hi + m).min(ceiling.max(hi)))
         }
-        Widen::Log => {
-            let m = share * (hi - lo);
-            ((lo - m).max(0.0), hi + m)
+        Widen::Log { offset } if lo + offset > 0.0 => {
+            let t: Vec<f64> = x.iter().map(|v| (v + offset).ln()).collect();
+            let m = RANGE_MARGIN_SPACINGS * spacing(&t);
+            let (t0, t1) = (t[0], t[t.len() - 1]);
+            (
+                ((t0 - m).exp() - offset).max(lo.min(0.0)),
+                (t1 + m).exp() - offset,
+            )
         }
-        Widen::Linear { floor } => {
-            let m = share * (hi - lo);
-            let lo = lo - m;
-            (floor.map_or(lo, |f| lo.max(f.min(lo + m))), hi + m)
+        Widen::Log { .. } => {
+            let m = RANGE_MARGIN_SPACINGS * spacing(&x);
+            ((lo - m).max(lo.min(0.0)), hi + m)
         }
     };
     // Widen by f32 rounding so the calibration samples themselves are inside.
@@ -850,9 +863,26 @@ fn range_of(v: impl Iterator<Item = f64>, widen: Widen) -> Range<f32> {
 }
 
 /// [`Widen::Linear`] for a quantity that cannot be negative.
-const NOT_NEGATIVE: Widen = Widen::Linear { floor: Some(0.0) };
-/// [`Widen::Linear`] without a floor (a temperature).
-const ANY: Widen = Widen::Linear { floor: None };
+const NOT_NEGATIVE: Widen = Widen::Linear {
+    floor: 0.0,
+    ceiling: f64::INFINITY,
+};
+/// [`Widen::Linear`] without limits.
+const ANY: Widen = Widen::Linear {
+    floor: f64::NEG_INFINITY,
+    ceiling: f64::INFINITY,
+};
+/// A moisture: 0 to the highest a calibration takes (dry basis).
+const MOISTURE: Widen = Widen::Linear {
+    floor: 0.0,
+    ceiling: crate::moisture::MAX_DRY_BASIS_PCT,
+};
+/// A product temperature: within the limits a table and a calibration file
+/// accept, -40..150 C (`gate`).
+const TEMPERATURE: Widen = Widen::Linear {
+    floor: -40.0,
+    ceiling: 150.0,
+};
 
 /// Builds the device's calibration (f32, validated) from a model.
 fn device_cal(
@@ -1018,8 +1048,8 @@ where
 {
     let n = samples.len();
     let y: Vec<f64> = samples.iter().map(|s| s.moisture_pct).collect();
-    let moisture = range_of(y.iter().copied(), NOT_NEGATIVE);
-    let temperature = range_of(samples.iter().map(|s| s.temperature_c), ANY);
+    let moisture = range_of(y.iter().copied(), MOISTURE);
+    let temperature = range_of(samples.iter().map(|s| s.temperature_c), TEMPERATURE);
     let predict_all =
         |cal: &ProductCalibration<f32>, rows: &[usize]| -> Result<Vec<f64>, ProductFitError> {
             rows.iter()
@@ -2344,8 +2374,8 @@ fn prepare_relaxation(
             // 3. The device's own estimate must give each a moisture.
             let probe = device_cal(
                 &model,
-                range_of(y.iter().copied(), NOT_NEGATIVE),
-                range_of(sub.iter().map(|s| s.temperature_c), ANY),
+                range_of(y.iter().copied(), MOISTURE),
+                range_of(sub.iter().map(|s| s.temperature_c), TEMPERATURE),
                 &relax_inputs(&core, &model, &sub),
                 lin.residual_sd.max(1e-6),
             )?
@@ -2433,13 +2463,16 @@ fn relax_inputs(
     let mut inputs = vec![
         range_of(core.params.iter().map(|p| p.eps_hf), NOT_NEGATIVE),
         range_of(core.params.iter().map(|p| p.d_eps), NOT_NEGATIVE),
-        range_of(core.params.iter().map(|p| p.sigma_s_m), Widen::Log),
+        range_of(
+            core.params.iter().map(|p| p.sigma_s_m),
+            Widen::Log { offset: 0.0 },
+        ),
         range_of(mix.iter().copied(), ANY),
     ];
     if rm.density_input {
         inputs.push(range_of(
             samples.iter().filter_map(|s| s.bulk_density_kg_m3),
-            NOT_NEGATIVE,
+            Widen::Exact,
         ));
     }
     inputs
@@ -2495,8 +2528,8 @@ fn finish_relaxation(
     let plain_inputs = fitted.inputs.clone();
     // Ranges do not change a moisture value; the full set's, once.
     let (moisture, temperature) = (
-        range_of(y.iter().copied(), NOT_NEGATIVE),
-        range_of(samples.iter().map(|s| s.temperature_c), ANY),
+        range_of(y.iter().copied(), MOISTURE),
+        range_of(samples.iter().map(|s| s.temperature_c), TEMPERATURE),
     );
     let plain_predict = |m: &ProductModel<f64>, train: &[usize]| {
         let Ok((cal, _)) = device_cal(m, moisture, temperature, &plain_inputs, 1.0) else {
@@ -3105,7 +3138,7 @@ pub fn fit_multivariate(
     };
     let mut inputs: Vec<Range<f32>> = (0..4)
         .map(|c| {
-            // The model works on their logarithms.
+            // On the scale the model works on: ln eps', ln(eps'' + LOSS_FLOOR).
             range_of(
                 checked.eps.iter().map(|e| match c {
                     0 => e[0].0,
@@ -3113,14 +3146,20 @@ pub fn fit_multivariate(
                     2 => e[1].0,
                     _ => e[1].1,
                 }),
-                Widen::Log,
+                Widen::Log {
+                    offset: if c % 2 == 1 {
+                        crate::product::LOSS_FLOOR
+                    } else {
+                        0.0
+                    },
+                },
             )
         })
         .collect();
     if opts.density_input {
         inputs.push(range_of(
             checked.rho.iter().flatten().copied(),
-            NOT_NEGATIVE,
+            Widen::Exact,
         ));
     }
     let fitted = Fitted {
@@ -3710,24 +3749,51 @@ mod tests {
     use super::*;
 
     /// A valid range is the samples' span widened on each side by three
-    /// average spacings (worked by hand): 11 values 10..20 (spacing 1)
-    /// give 7..23; with the floor at 0, 0.5..2.5 (spacing 0.2) give
-    /// 0..3.1; on the log scale 1..100 (11 values, a fifth of a decade
-    /// apart) give 10^-0.6..10^2.6; one value gives itself.
+    /// average spacings, the spacing from the middle 80 % of the values
+    /// (worked by hand): 11 values 10..20 (spacing 1) give 7..23; with the
+    /// floor at 0, 0.5..2.5 (spacing 0.2) give 0..3.1; on the log scale
+    /// 1..100 (11 values, a fifth of a decade apart) give 10^-0.6..10^2.6;
+    /// 10..19 and one far value 100 give 7..103 (the spacing stays 1); a
+    /// temperature ceiling holds 20..145 C (spacing 12.5) at 150 C; one
+    /// value gives itself; NaN is left out; the density's range is exact.
     #[test]
     fn valid_range_widens_by_three_spacings() {
         let close = |r: Range<f32>, lo: f64, hi: f64| {
             (f64::from(r.min) - lo).abs() <= 1e-5 * lo.abs().max(1.0)
                 && (f64::from(r.max) - hi).abs() <= 1e-5 * hi.abs().max(1.0)
         };
-        let r = range_of((0..11).map(|k| 10.0 + k as f64), ANY);
+        let r = range_of((0..11).map(|k| 10.0 + f64::from(k)), ANY);
         assert!(close(r, 7.0, 23.0), "{r:?}");
-        let r = range_of((0..11).map(|k| 0.5 + 0.2 * k as f64), NOT_NEGATIVE);
+        let r = range_of((0..11).map(|k| 0.5 + 0.2 * f64::from(k)), NOT_NEGATIVE);
         assert!(close(r, 0.0, 3.1), "{r:?}");
-        let r = range_of((0..11).map(|k| 10f64.powf(0.2 * k as f64)), Widen::Log);
+        let r = range_of(
+            (0..11).map(|k| 10f64.powf(0.2 * f64::from(k))),
+            Widen::Log { offset: 0.0 },
+        );
         assert!(close(r, 10f64.powf(-0.6), 10f64.powf(2.6)), "{r:?}");
-        let r = range_of(std::iter::once(4.2), ANY);
+        let r = range_of((0..10).map(|k| 10.0 + f64::from(k)).chain([100.0]), ANY);
+        assert!(close(r, 7.0, 103.0), "{r:?}");
+        let r = range_of((0..11).map(|k| 20.0 + 12.5 * f64::from(k)), TEMPERATURE);
+        assert!(close(r, -17.5, 150.0), "{r:?}");
+        let r = range_of([4.2, f64::NAN].into_iter(), ANY);
         assert!(close(r, 4.2, 4.2), "{r:?}");
+        let r = range_of((0..11).map(|k| 600.0 + f64::from(k)), Widen::Exact);
+        assert!(close(r, 600.0, 610.0), "{r:?}");
+    }
+
+    /// The toolchain fault the test profile's opt-level 3 avoids (rustc
+    /// 1.95.0 at opt-level 2, x86-64: the last value left out of a loop of
+    /// f64::min and f64::max over a mapped integer range; Cargo.toml). A
+    /// guard: this fails if the optimised packages go back to opt-level 2
+    /// on that toolchain.
+    #[test]
+    fn min_and_max_over_a_mapped_range_see_every_value() {
+        let (mut a, mut b) = (f64::INFINITY, f64::NEG_INFINITY);
+        for x in (0..11).map(|k| 10.0 + f64::from(k)) {
+            a = a.min(x);
+            b = b.max(x);
+        }
+        assert_eq!((a, b), (10.0, 20.0));
     }
 
     /// The middle feature set is the squares and products that do not

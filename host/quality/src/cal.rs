@@ -468,9 +468,14 @@ pub fn wire_of(
         basis,
         params: heapless::Vec::from_slice(&f.params)
             .map_err(|_| FitError::TooMany { what: "parameters" })?,
+        // The valid range reaches beyond the samples (a margin of three
+        // sample spacings); on a wet basis not beyond 100 %.
         moisture_pct: Range {
             min: c.moisture_pct.min,
-            max: c.moisture_pct.max,
+            max: match basis {
+                Basis::Wet => c.moisture_pct.max.min(100.0),
+                _ => c.moisture_pct.max,
+            },
         },
         temperature_c: Range {
             min: c.temperature_c.min,
