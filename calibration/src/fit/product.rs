@@ -829,19 +829,23 @@ fn range_of(v: impl Iterator<Item = f64>, widen: Widen) -> Range<f32> {
         if n < 2 {
             return 0.0;
         }
-        let q = |p: f64| t[((n - 1) as f64 * p).round() as usize];
-        let (a, b, share) = if n >= 10 {
-            (q(0.1), q(0.9), 0.8)
+        let at = |p: f64| ((n - 1) as f64 * p).round() as usize;
+        let (i, j) = if n >= 10 {
+            (at(0.1), at(0.9))
         } else {
-            (t[0], t[n - 1], 1.0)
+            (0, n - 1)
         };
-        (b - a) / (share * (n - 1) as f64)
+        (t[j] - t[i]) / (j - i) as f64
     };
+    // The limits hold after the f32 pad below too (a range reaching 150.0002
+    // C would be refused where a calibration file is read).
+    let mut limits = (f64::NEG_INFINITY, f64::INFINITY);
     let (lo, hi) = match widen {
         Widen::Exact => (lo, hi),
         Widen::Linear { floor, ceiling } => {
             let m = RANGE_MARGIN_SPACINGS * spacing(&x);
-            ((lo - m).max(floor.min(lo)), (hi + m).min(ceiling.max(hi)))
+            limits = (floor.min(lo), ceiling.max(hi));
+            ((lo - m).max(limits.0), (hi + m).min(limits.1))
         }
         Widen::Log { offset } if lo + offset > 0.0 => {
             let t: Vec<f64> = x.iter().map(|v| (v + offset).ln()).collect();
@@ -859,7 +863,10 @@ fn range_of(v: impl Iterator<Item = f64>, widen: Widen) -> Range<f32> {
     };
     // Widen by f32 rounding so the calibration samples themselves are inside.
     let pad = |x: f64| 1e-6 * x.abs().max(1e-6);
-    Range::new((lo - pad(lo)) as f32, (hi + pad(hi)) as f32)
+    Range::new(
+        (lo - pad(lo)).max(limits.0) as f32,
+        (hi + pad(hi)).min(limits.1) as f32,
+    )
 }
 
 /// [`Widen::Linear`] for a quantity that cannot be negative.
@@ -3774,7 +3781,9 @@ mod tests {
         let r = range_of((0..10).map(|k| 10.0 + f64::from(k)).chain([100.0]), ANY);
         assert!(close(r, 7.0, 103.0), "{r:?}");
         let r = range_of((0..11).map(|k| 20.0 + 12.5 * f64::from(k)), TEMPERATURE);
-        assert!(close(r, -17.5, 150.0), "{r:?}");
+        assert!(close(r, -17.5, 150.0) && r.max <= 150.0, "{r:?}");
+        let r = range_of([-40.0, -30.0, 150.0].into_iter(), TEMPERATURE);
+        assert!(r.min == -40.0 && r.max == 150.0, "{r:?}");
         let r = range_of([4.2, f64::NAN].into_iter(), ANY);
         assert!(close(r, 4.2, 4.2), "{r:?}");
         let r = range_of((0..11).map(|k| 600.0 + f64::from(k)), Widen::Exact);
