@@ -118,3 +118,87 @@ fn adjust_writes_a_child_calibration_that_removes_a_significant_bias() {
     assert!(text.contains("no correction, nothing written"), "{text}");
     assert!(!out2.exists());
 }
+
+/// A correction keeps the range a moisture on the calibration's basis: a
+/// wet-basis calibration whose valid range reaches 100 % (samples of 95-99.6
+/// %, the margin held at 100 %), moved up by a significant +0.5 % bias,
+/// still ends at 100 %, and the child loads for `cal predict`. (Made-up
+/// table, plumbing test.)
+#[test]
+fn an_adjusted_wet_basis_range_stays_at_or_below_100_pct() {
+    let dir = tempfile::tempdir().expect("dir");
+    let d = dir.path();
+    let near_top = |n: usize, lab_shift: f64| {
+        let rows: Vec<String> = (0..n)
+            .map(|i| {
+                let m = 95.0 + 0.2 * i as f64;
+                let e = ((i * 7919 + 13) % 17) as f64 / 800.0;
+                format!(
+                    "S{i},{},{},1000000,{},0.5,20000000,{},0.3",
+                    m + lab_shift,
+                    18.0 + (i % 7) as f64,
+                    2.0 + 0.25 * m + e,
+                    1.8 + 0.2 * m
+                )
+            })
+            .collect();
+        format!("{HEADER}\n{}\n", rows.join("\n"))
+    };
+    std::fs::write(d.join("lab.csv"), near_top(24, 0.0)).expect("write");
+    let cal = d.join("p.toml");
+    ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "fit", "--model", "single", "--samples"])
+        .arg(d.join("lab.csv"))
+        .arg("--out")
+        .arg(&cal)
+        .output()
+        .expect("run"));
+    let top = |t: &str| -> f64 {
+        let l = t
+            .lines()
+            .find(|l| l.starts_with("moisture_pct = "))
+            .expect("moisture_pct line");
+        let v = l
+            .trim_start_matches("moisture_pct = [")
+            .trim_end_matches(']');
+        v.split(',')
+            .nth(1)
+            .expect("upper end")
+            .trim()
+            .parse()
+            .expect("number")
+    };
+    let parent = std::fs::read_to_string(&cal).expect("cal");
+    assert_eq!(top(&parent), 100.0, "{parent}");
+    std::fs::write(d.join("grabs.csv"), near_top(10, 0.5)).expect("write");
+    ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "predict", "--cal"])
+        .arg(&cal)
+        .arg("--input")
+        .arg(d.join("grabs.csv"))
+        .arg("--out")
+        .arg(d.join("pairs.csv"))
+        .output()
+        .expect("run"));
+    let adj = d.join("adj.toml");
+    let text = ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "adjust", "--json", "--cal"])
+        .arg(&cal)
+        .arg("--pairs")
+        .arg(d.join("pairs.csv"))
+        .arg("--out")
+        .arg(&adj)
+        .output()
+        .expect("run"));
+    let v: serde_json::Value = serde_json::from_str(text.trim()).expect("json");
+    assert_eq!(v["bias"]["significant"], true, "{v}");
+    let child = std::fs::read_to_string(&adj).expect("adjusted file written");
+    assert_eq!(top(&child), 100.0, "{child}");
+    ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "predict", "--cal"])
+        .arg(&adj)
+        .arg("--input")
+        .arg(d.join("grabs.csv"))
+        .output()
+        .expect("run"));
+}

@@ -947,7 +947,7 @@ pub fn write_fit_summary(
     let c = &o.wire;
     writeln!(
         w,
-        "valid ranges: moisture {:.2}..{:.2} %, temperature {:.1}..{:.1} C",
+        "valid ranges (the samples' span and three average spacings beyond it; readings outside are flagged): moisture {:.2}..{:.2} %, temperature {:.1}..{:.1} C",
         c.moisture_pct.min, c.moisture_pct.max, c.temperature_c.min, c.temperature_c.max
     )?;
     for r in &o.file.inputs {
@@ -1833,11 +1833,16 @@ pub fn adjust(
     let (params, n) = model.to_params();
     let map = |x: f32| (a + b * f64::from(x)) as f32;
     let (lo, hi) = (map(wire.moisture_pct.min), map(wire.moisture_pct.max));
+    // The corrected range stays a moisture on the calibration's basis.
+    let top = match wire.basis {
+        Basis::Wet => 100.0,
+        _ => fringe_calibration::moisture::MAX_DRY_BASIS_PCT as f32,
+    };
     let new_wire = ProductCal {
         params: heapless::Vec::from_slice(&params[..n]).map_err(|_| AdjustError::TooMany)?,
         moisture_pct: Range {
-            min: lo.min(hi),
-            max: lo.max(hi),
+            min: lo.min(hi).clamp(0.0, top),
+            max: lo.max(hi).clamp(0.0, top),
         },
         made_s,
         ..wire.clone()
