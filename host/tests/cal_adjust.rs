@@ -37,11 +37,8 @@ fn ok(o: &Output) -> String {
     String::from_utf8_lossy(&o.stdout).into_owned()
 }
 
-#[test]
-fn adjust_writes_a_child_calibration_that_removes_a_significant_bias() {
-    let dir = tempfile::tempdir().expect("dir");
-    let d = dir.path();
-    std::fs::write(d.join("lab.csv"), table(24, 0.0)).expect("write");
+/// `cal fit --model single` on `d/lab.csv`, written to `d/p.toml`.
+fn fit_single(d: &std::path::Path) -> std::path::PathBuf {
     let cal = d.join("p.toml");
     ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
         .args(["cal", "fit", "--model", "single", "--samples"])
@@ -50,11 +47,16 @@ fn adjust_writes_a_child_calibration_that_removes_a_significant_bias() {
         .arg(&cal)
         .output()
         .expect("run"));
-    // Grab samples whose lab values run 0.5 % above the inline readings.
-    std::fs::write(d.join("grabs.csv"), table(10, 0.5)).expect("write");
+    cal
+}
+
+/// `cal predict` of `d/grabs.csv` with `cal` into `d/pairs.csv`, then
+/// `cal adjust --json` on those pairs into `d/adj.toml`: the child's path
+/// and the JSON printed.
+fn predict_and_adjust(d: &std::path::Path, cal: &std::path::Path) -> (std::path::PathBuf, String) {
     ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
         .args(["cal", "predict", "--cal"])
-        .arg(&cal)
+        .arg(cal)
         .arg("--input")
         .arg(d.join("grabs.csv"))
         .arg("--out")
@@ -64,13 +66,25 @@ fn adjust_writes_a_child_calibration_that_removes_a_significant_bias() {
     let adj = d.join("adj.toml");
     let text = ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
         .args(["cal", "adjust", "--json", "--cal"])
-        .arg(&cal)
+        .arg(cal)
         .arg("--pairs")
         .arg(d.join("pairs.csv"))
         .arg("--out")
         .arg(&adj)
         .output()
         .expect("run"));
+    (adj, text)
+}
+
+#[test]
+fn adjust_writes_a_child_calibration_that_removes_a_significant_bias() {
+    let dir = tempfile::tempdir().expect("dir");
+    let d = dir.path();
+    std::fs::write(d.join("lab.csv"), table(24, 0.0)).expect("write");
+    let cal = fit_single(d);
+    // Grab samples whose lab values run 0.5 % above the inline readings.
+    std::fs::write(d.join("grabs.csv"), table(10, 0.5)).expect("write");
+    let (adj, text) = predict_and_adjust(d, &cal);
     let v: serde_json::Value = serde_json::from_str(text.trim()).expect("json");
     assert_eq!(v["pairs"], 10);
     let bias = v["bias"]["value"].as_f64().expect("bias");
@@ -145,14 +159,7 @@ fn an_adjusted_wet_basis_range_stays_at_or_below_100_pct() {
         format!("{HEADER}\n{}\n", rows.join("\n"))
     };
     std::fs::write(d.join("lab.csv"), near_top(24, 0.0)).expect("write");
-    let cal = d.join("p.toml");
-    ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
-        .args(["cal", "fit", "--model", "single", "--samples"])
-        .arg(d.join("lab.csv"))
-        .arg("--out")
-        .arg(&cal)
-        .output()
-        .expect("run"));
+    let cal = fit_single(d);
     let top = |t: &str| -> f64 {
         let l = t
             .lines()
@@ -171,25 +178,7 @@ fn an_adjusted_wet_basis_range_stays_at_or_below_100_pct() {
     let parent = std::fs::read_to_string(&cal).expect("cal");
     assert_eq!(top(&parent), 100.0, "{parent}");
     std::fs::write(d.join("grabs.csv"), near_top(10, 0.5)).expect("write");
-    ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
-        .args(["cal", "predict", "--cal"])
-        .arg(&cal)
-        .arg("--input")
-        .arg(d.join("grabs.csv"))
-        .arg("--out")
-        .arg(d.join("pairs.csv"))
-        .output()
-        .expect("run"));
-    let adj = d.join("adj.toml");
-    let text = ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
-        .args(["cal", "adjust", "--json", "--cal"])
-        .arg(&cal)
-        .arg("--pairs")
-        .arg(d.join("pairs.csv"))
-        .arg("--out")
-        .arg(&adj)
-        .output()
-        .expect("run"));
+    let (adj, text) = predict_and_adjust(d, &cal);
     let v: serde_json::Value = serde_json::from_str(text.trim()).expect("json");
     assert_eq!(v["bias"]["significant"], true, "{v}");
     let child = std::fs::read_to_string(&adj).expect("adjusted file written");
