@@ -26,7 +26,7 @@ use fringe_calibration::fit::product::{
     compare_models, fit_multivariate, fit_relaxation, fit_single, Candidate, CompareOptions,
     MultivariateOptions, MvMethod, ProductFit, RelaxationOptions, Sample, SingleOptions,
 };
-use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS, HELD_OUT_PAIRS};
+use fringe_calibration::fit::zoo::{all_pairs, held_out_cases, Draw, Family, FREQ_PAIRS};
 use fringe_calibration::stats::Folds;
 use std::time::Instant;
 
@@ -71,11 +71,7 @@ fn unmarked_errors(
         let Ok(p) = f.predict(&s.channels, s.temperature_c, s.bulk_density_kg_m3, 0.95) else {
             continue;
         };
-        if let (Some(m), true, false) = (
-            p.estimate.moisture_pct,
-            p.estimate.flags.is_empty(),
-            p.extrapolation,
-        ) {
+        if let (Some(m), false) = (p.estimate.moisture_pct, p.marked()) {
             ec.push(f64::from(m) - s.moisture_pct);
             eb.push(base.predict(&s.channels, s.temperature_c) - s.moisture_pct);
         }
@@ -353,14 +349,13 @@ fn kfold_time_table(seed: u64) {
 /// it, whether its leverage lay beyond the calibration set's, and whether
 /// its 95 % interval missed the lab value.
 fn gross_errors(seed: u64) {
-    let all_pairs: Vec<[f64; 2]> = FREQ_PAIRS.iter().chain(&HELD_OUT_PAIRS).copied().collect();
     let (mut readings, mut gross, mut device, mut leverage, mut neither, mut missed) =
         (0, 0, 0, 0, 0, 0);
     let mut worst: Vec<(f64, String)> = Vec::new();
     for f in Family::all().into_iter().chain(Family::held_out()) {
-        for pair in &all_pairs {
-            let train = f.samples(&Draw::new(60, *pair), seed);
-            let val = f.samples(&Draw::new(200, *pair), seed + 1000);
+        for pair in all_pairs() {
+            let train = f.samples(&Draw::new(60, pair), seed);
+            let val = f.samples(&Draw::new(200, pair), seed + 1000);
             let Ok(m) = compare_models(&train, &loo_compare(&f, false)) else {
                 println!("{} {:?}: no comparison", f.name, pair);
                 continue;
@@ -381,10 +376,9 @@ fn gross_errors(seed: u64) {
                     continue;
                 }
                 gross += 1;
-                let flagged = !p.estimate.flags.is_empty();
-                device += usize::from(flagged);
+                device += usize::from(!p.estimate.flags.is_empty());
                 leverage += usize::from(p.extrapolation);
-                if !flagged && !p.extrapolation {
+                if !p.marked() {
                     neither += 1;
                     if p.interval_pct
                         .is_some_and(|(lo, hi)| !(lo..=hi).contains(&s.moisture_pct))
@@ -444,17 +438,8 @@ fn main() {
     // pairs), 60 samples as `--quick`.
     let held_out = std::env::args().any(|a| a == "--held-out");
     let quick = quick || held_out;
-    let all_pairs: Vec<[f64; 2]> = FREQ_PAIRS.iter().chain(&HELD_OUT_PAIRS).copied().collect();
     let cases: Vec<(Family, Vec<[f64; 2]>)> = if held_out {
-        Family::held_out()
-            .into_iter()
-            .map(|f| (f, all_pairs.clone()))
-            .chain(
-                Family::all()
-                    .into_iter()
-                    .map(|f| (f, HELD_OUT_PAIRS.to_vec())),
-            )
-            .collect()
+        held_out_cases()
     } else {
         Family::all()
             .into_iter()

@@ -8,7 +8,7 @@ use fringe_calibration::fit::product::{
     fit_multivariate, fit_relaxation, fit_single, MultivariateOptions, MvMethod, ProductFitError,
     RelaxationOptions, SingleOptions,
 };
-use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS, HELD_OUT_PAIRS};
+use fringe_calibration::fit::zoo::{all_pairs, held_out_cases, Draw, Family, FREQ_PAIRS};
 
 /// Training samples per fit.
 const TRAIN: usize = 100;
@@ -49,17 +49,8 @@ fn is_named_refusal(e: &ProductFitError) -> bool {
 fn every_fit_finishes_or_names_its_refusal() {
     let base = seed();
     let mut failures = Vec::new();
-    let all_pairs: Vec<[f64; 2]> = FREQ_PAIRS.iter().chain(&HELD_OUT_PAIRS).copied().collect();
-    let cases = Family::all()
-        .into_iter()
-        .map(|f| (f, all_pairs.clone()))
-        .chain(
-            Family::held_out()
-                .into_iter()
-                .map(|f| (f, all_pairs.clone())),
-        );
-    for (f, pairs) in cases {
-        for pair in pairs {
+    for f in Family::all().into_iter().chain(Family::held_out()) {
+        for pair in all_pairs() {
             for seed in [base, base + 1] {
                 let samples = f.samples(&Draw::new(60, pair), seed);
                 let single = fit_single(&samples, &SingleOptions::default());
@@ -242,7 +233,7 @@ fn chosen_model_holds_against_the_generic_baseline_on_every_product() {
 }
 
 /// The same bounds on products and frequency pairs nothing was designed on
-/// ([`Family::held_out`], [`HELD_OUT_PAIRS`]: added after the models and
+/// (`fit::zoo::held_out_cases`: `Family::held_out`, `HELD_OUT_PAIRS`, added after the models and
 /// rules were fixed): the held-out products at all six pairs, the zoo's
 /// products at the three held-out pairs (42 cases). Over FRINGE_SEED 1-16
 /// at their first measurement (BENCHMARKS.md) the comparison finished in
@@ -252,21 +243,7 @@ fn chosen_model_holds_against_the_generic_baseline_on_every_product() {
 /// held-out pairs on seed 4, the coffee on seed 5; 99.5 % allowed).
 #[test]
 fn chosen_model_holds_on_products_and_pairs_not_designed_on() {
-    let mut cases: Vec<(Family, Vec<[f64; 2]>)> = Family::held_out()
-        .into_iter()
-        .map(|f| {
-            (
-                f,
-                FREQ_PAIRS.iter().chain(&HELD_OUT_PAIRS).copied().collect(),
-            )
-        })
-        .collect();
-    cases.extend(
-        Family::all()
-            .into_iter()
-            .map(|f| (f, HELD_OUT_PAIRS.to_vec())),
-    );
-    holds_against_the_baseline(&cases, "the held-out cases");
+    holds_against_the_baseline(&held_out_cases(), "the held-out cases");
 }
 
 /// The comparison on each product at each of its pairs ([`TRAIN`]

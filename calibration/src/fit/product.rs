@@ -591,6 +591,14 @@ pub struct ReadingPrediction {
     pub extrapolation: bool,
 }
 
+impl ReadingPrediction {
+    /// Whether the reading carries a mark: a flag of the device's estimate,
+    /// or a leverage beyond the calibration set's.
+    pub fn marked(&self) -> bool {
+        !self.estimate.flags.is_empty() || self.extrapolation
+    }
+}
+
 /// Both models fitted on the same samples (see [`compare`]).
 #[derive(Debug, Clone, PartialEq)]
 pub struct Comparison {

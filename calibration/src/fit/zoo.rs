@@ -269,6 +269,25 @@ pub const FREQ_PAIRS: [[f64; 2]; 3] = [[1.0e6, 20.0e6], [100.0e3, 20.0e6], [5.0e
 /// designed either, Hz.
 pub const HELD_OUT_PAIRS: [[f64; 2]; 3] = [[0.5e6, 10.0e6], [2.0e6, 30.0e6], [0.2e6, 50.0e6]];
 
+/// Every frequency pair: [`FREQ_PAIRS`], then [`HELD_OUT_PAIRS`].
+pub fn all_pairs() -> Vec<[f64; 2]> {
+    FREQ_PAIRS.iter().chain(&HELD_OUT_PAIRS).copied().collect()
+}
+
+/// The cases nothing was designed on: each of [`Family::held_out`] at
+/// every pair, then each of [`Family::all`] at [`HELD_OUT_PAIRS`] (42).
+pub fn held_out_cases() -> Vec<(Family, Vec<[f64; 2]>)> {
+    Family::held_out()
+        .into_iter()
+        .map(|f| (f, all_pairs()))
+        .chain(
+            Family::all()
+                .into_iter()
+                .map(|f| (f, HELD_OUT_PAIRS.to_vec())),
+        )
+        .collect()
+}
+
 /// Complex power z^a for the mixing rules (principal branch).
 fn cpow(z: Cx<f64>, a: f64) -> Cx<f64> {
     let (r, phi) = (z.norm(), z.im.atan2(z.re));
