@@ -438,6 +438,16 @@ fn model_words(k: fringe_calibration::product::ModelKind) -> &'static str {
     }
 }
 
+/// The highest moisture a calibration's range may reach on `basis`, %:
+/// 100 on a wet basis, [`fringe_calibration::moisture::MAX_DRY_BASIS_PCT`]
+/// on a dry one.
+fn basis_top_pct(basis: Basis) -> f32 {
+    match basis {
+        Basis::Wet => 100.0,
+        _ => fringe_calibration::moisture::MAX_DRY_BASIS_PCT as f32,
+    }
+}
+
 /// Wire form of a fit.
 ///
 /// # Errors
@@ -469,13 +479,10 @@ pub fn wire_of(
         params: heapless::Vec::from_slice(&f.params)
             .map_err(|_| FitError::TooMany { what: "parameters" })?,
         // The valid range reaches beyond the samples (a margin of three
-        // sample spacings); on a wet basis not beyond 100 %.
+        // sample spacings), not beyond what the basis allows.
         moisture_pct: Range {
             min: c.moisture_pct.min,
-            max: match basis {
-                Basis::Wet => c.moisture_pct.max.min(100.0),
-                _ => c.moisture_pct.max,
-            },
+            max: c.moisture_pct.max.min(basis_top_pct(basis)),
         },
         temperature_c: Range {
             min: c.temperature_c.min,
@@ -1834,10 +1841,7 @@ pub fn adjust(
     let map = |x: f32| (a + b * f64::from(x)) as f32;
     let (lo, hi) = (map(wire.moisture_pct.min), map(wire.moisture_pct.max));
     // The corrected range stays a moisture on the calibration's basis.
-    let top = match wire.basis {
-        Basis::Wet => 100.0,
-        _ => fringe_calibration::moisture::MAX_DRY_BASIS_PCT as f32,
-    };
+    let top = basis_top_pct(wire.basis);
     let new_wire = ProductCal {
         params: heapless::Vec::from_slice(&params[..n]).map_err(|_| AdjustError::TooMany)?,
         moisture_pct: Range {
