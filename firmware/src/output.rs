@@ -27,6 +27,13 @@ pub const MA_FAIL_LOW: f32 = 3.5;
 /// High failure current driven, mA (NE 43: >= 21.0).
 pub const MA_FAIL_HIGH: f32 = 21.5;
 
+/// Highest span end accepted, % moisture: the highest moisture a calibration
+/// can report, on a dry basis (green wood and biomass hold more water than
+/// dry matter, so above 100 %; [`fringe_calibration::moisture::MAX_DRY_BASIS_PCT`]).
+/// On a wet basis the moisture stays below 100 %, and a span reaching above
+/// it only compresses the signal.
+pub const MAX_SPAN_PCT: f32 = fringe_calibration::moisture::MAX_DRY_BASIS_PCT as f32;
+
 /// What the loop shows.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum LoopState {
@@ -46,7 +53,8 @@ pub enum LoopState {
 pub enum SpanError {
     /// A span end is NaN or infinite.
     NotFinite,
-    /// The span is empty or reversed (`span_low_pct >= span_high_pct`), or outside 0..=100 %.
+    /// The span is empty or reversed (`span_low_pct >= span_high_pct`), or
+    /// outside 0..=[`MAX_SPAN_PCT`].
     OutOfRange,
 }
 
@@ -57,7 +65,7 @@ impl core::fmt::Display for SpanError {
             SpanError::OutOfRange => {
                 write!(
                     f,
-                    "output span: need 0 <= span_low_pct < span_high_pct <= 100"
+                    "output span: need 0 <= span_low_pct < span_high_pct <= 1000 (above 100 only a dry-basis calibration reaches)"
                 )
             }
         }
@@ -74,8 +82,8 @@ pub fn validate(cfg: &OutputConfig) -> Result<(), SpanError> {
     if !cfg.span_low_pct.is_finite() || !cfg.span_high_pct.is_finite() {
         return Err(SpanError::NotFinite);
     }
-    if !(0.0..=100.0).contains(&cfg.span_low_pct)
-        || !(0.0..=100.0).contains(&cfg.span_high_pct)
+    if !(0.0..=MAX_SPAN_PCT).contains(&cfg.span_low_pct)
+        || !(0.0..=MAX_SPAN_PCT).contains(&cfg.span_high_pct)
         || cfg.span_low_pct >= cfg.span_high_pct
     {
         return Err(SpanError::OutOfRange);
@@ -176,5 +184,41 @@ mod tests {
         c.span_high_pct = f32::INFINITY;
         assert_eq!(validate(&c), Err(SpanError::NotFinite));
         assert_eq!(current_ma(&c, Some(12.0)).1, LoopState::Fault);
+        c.span_high_pct = 1000.5;
+        assert_eq!(validate(&c), Err(SpanError::OutOfRange));
+        c.span_low_pct = -0.5;
+        c.span_high_pct = 20.0;
+        assert_eq!(validate(&c), Err(SpanError::OutOfRange));
+    }
+
+    /// Green wood on a dry basis: 30-180 % moisture (water above the dry
+    /// mass; the range from memory) on 4-20 mA. The loop runs linearly
+    /// across 100 %, which an earlier limit of the span refused.
+    #[test]
+    fn a_dry_basis_span_above_100_pct() {
+        let wood = OutputConfig {
+            span_low_pct: 30.0,
+            span_high_pct: 180.0,
+            fail_high: false,
+        };
+        assert_eq!(validate(&wood), Ok(()));
+        // 4 + (130 - 30) / 150 * 16 = 14.667 mA.
+        let (ma, s) = current_ma(&wood, Some(130.0));
+        assert!(
+            (ma - 14.666_667).abs() < 1e-4 && s == LoopState::Measuring,
+            "{ma}"
+        );
+        let (ma, s) = current_ma(&wood, Some(190.0));
+        assert!(
+            (ma - 20.5).abs() < 1e-5 && s == LoopState::OverRange,
+            "{ma}"
+        );
+        let top = OutputConfig {
+            span_low_pct: 0.0,
+            span_high_pct: MAX_SPAN_PCT,
+            fail_high: true,
+        };
+        assert_eq!(validate(&top), Ok(()));
+        assert_eq!(current_ma(&top, Some(1000.0)), (20.0, LoopState::Measuring));
     }
 }

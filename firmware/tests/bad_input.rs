@@ -241,7 +241,7 @@ fn expect(req: &Request) -> Expect {
                 Expect::Refuse(NOT_FINITE)
             } else if 0.0 <= o.span_low_pct
                 && o.span_low_pct < o.span_high_pct
-                && o.span_high_pct <= 100.0
+                && o.span_high_pct <= 1000.0
             {
                 Expect::Accept
             } else {

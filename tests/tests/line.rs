@@ -424,7 +424,7 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
     );
     let wrong = sim.path("wrong.key");
     std::fs::write(&wrong, "55".repeat(32)).unwrap();
-    let cases: [(&[&str], &str, serde_json::Value); 6] = [
+    let cases: [(&[&str], &str, serde_json::Value); 7] = [
         (
             &["--tag", "L2-DRYER-MT-201"],
             "tag",
@@ -444,6 +444,12 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
             &["--span-high-pct", "22"],
             "span_high_pct",
             serde_json::json!(22.0),
+        ),
+        // A dry-basis span (green wood: water above the dry mass).
+        (
+            &["--span-high-pct", "180"],
+            "span_high_pct",
+            serde_json::json!(180.0),
         ),
         (&["--fail", "high"], "fail", serde_json::json!("high")),
         (
@@ -525,29 +531,36 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
         .count();
     assert_eq!((changed, refused), (cases.len(), cases.len()));
     // A bad value is refused before anything is written, naming the flag.
-    let o = run(
-        &mut fringe(&[
-            "device",
-            "config",
-            "set",
-            "--port",
-            sim.port_str(),
-            "--db",
-            db.to_str().unwrap(),
-            "--key-file",
-            &key,
-            "--operator",
-            "R. Okafor",
-            "--reason",
-            "test",
-            "--yes",
-            "--stale-timeout-ms",
-            "300",
-        ]),
-        LIMIT,
-    );
+    let bad = |flag: &str, value: &str| {
+        run(
+            &mut fringe(&[
+                "device",
+                "config",
+                "set",
+                "--port",
+                sim.port_str(),
+                "--db",
+                db.to_str().unwrap(),
+                "--key-file",
+                &key,
+                "--operator",
+                "R. Okafor",
+                "--reason",
+                "test",
+                "--yes",
+                flag,
+                value,
+            ]),
+            LIMIT,
+        )
+    };
+    let before = config_show(&sim);
     // A value out of its range is a usage error (exit 2, issue 16).
+    let o = bad("--stale-timeout-ms", "300");
     assert_fails(&o, 2, &["--stale-timeout-ms 300", "twice the interval"]);
+    let o = bad("--span-high-pct", "1200");
+    assert_fails(&o, 2, &["--span-high-pct 1200", "<= 1000 %"]);
+    assert_eq!(config_show(&sim), before, "refused values change nothing");
 }
 
 /// Guessing the key online is held off (protocol/WIRE.md, "Back-off after

@@ -102,8 +102,10 @@ impl SettingsChange {
                 fw::MAX_STALE_TIMEOUT_MS
             )),
             Err(E::Span(_)) => refused(format!(
-                "--span-low-pct {} / --span-high-pct {}: need 0 <= low < high <= 100 %",
-                s.output.span_low_pct, s.output.span_high_pct
+                "--span-low-pct {} / --span-high-pct {}: need 0 <= low < high <= {} % (above 100 % for a dry-basis calibration only)",
+                s.output.span_low_pct,
+                s.output.span_high_pct,
+                fringe_firmware::output::MAX_SPAN_PCT
             )),
             Err(e) => refused(e.to_string()),
         }

@@ -51,22 +51,26 @@ impl AlarmLimits {
         out
     }
 
-    /// The limits are percentages, 0 to 100, and the low one is below the high one.
+    /// The limits are percentages, 0 to 1000 (above 100 % on a dry basis:
+    /// green wood and biomass hold more water than dry matter,
+    /// [`fringe_calibration::moisture::MAX_DRY_BASIS_PCT`]), and the low one
+    /// is below the high one.
     ///
     /// # Errors
     /// The first [`BadLimit`].
     pub fn validate(&self) -> Result<(), BadLimit> {
+        let top = fringe_calibration::moisture::MAX_DRY_BASIS_PCT as f32;
         for (key, v) in [
             ("moisture_low_pct", self.moisture_low_pct),
             ("moisture_high_pct", self.moisture_high_pct),
             ("uncertainty_max_pct", self.uncertainty_max_pct),
         ] {
             if let Some(x) = v {
-                if !(0.0..=100.0).contains(&x) {
+                if !(0.0..=top).contains(&x) {
                     return Err(BadLimit {
                         key,
                         value: x.to_string(),
-                        rule: "must be 0..=100 %",
+                        rule: "must be 0..=1000 % (above 100 % on a dry basis only)",
                     });
                 }
             }
@@ -136,9 +140,23 @@ mod tests {
         };
         assert_eq!(swapped.validate().unwrap_err().key, "moisture_low_pct");
         let over = AlarmLimits {
-            uncertainty_max_pct: Some(120.0),
+            uncertainty_max_pct: Some(1200.0),
             ..a
         };
-        assert_eq!(over.validate().unwrap_err().value, "120");
+        assert_eq!(over.validate().unwrap_err().value, "1200");
+        let negative = AlarmLimits {
+            moisture_low_pct: Some(-1.0),
+            ..a
+        };
+        assert_eq!(negative.validate().unwrap_err().key, "moisture_low_pct");
+        // Green wood on a dry basis (water above the dry mass): a band above
+        // 100 %.
+        let green_wood = AlarmLimits {
+            moisture_low_pct: Some(60.0),
+            moisture_high_pct: Some(140.0),
+            uncertainty_max_pct: Some(8.0),
+        };
+        assert!(green_wood.validate().is_ok());
+        assert_eq!(green_wood.check(Some(150.0), 3.0), ["HIGH"]);
     }
 }

@@ -648,6 +648,11 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
                 eprintln!("  {k:<15}{o}\n  {:<15}-> {n}", "");
             }
         }
+        if new.output.span_high_pct > 100.0 && new.output != old.output {
+            eprintln!(
+                "\nthe span reaches above 100 %: only a dry-basis calibration (water over dry mass) reports such values; on a wet basis the moisture stays below 100 % and the 4-20 mA signal uses only part of its range"
+            );
+        }
         if settings_changed {
             eprintln!("\n{}", fringe_device::SETTINGS_CAUTION);
         }
