@@ -448,6 +448,61 @@ fn firmware_under_qemu_end_to_end() {
     );
 }
 
+/// The board's toolchain keeps every value of a loop of `min` and `max`
+/// over a mapped range (`firmware/boards/qemu-mps2/src/bin/codegen_check.rs`:
+/// the shape rustc 1.95.0 miscompiles at opt-level 2 on x86-64), built with
+/// the firmware's release profile and run on the emulated Cortex-M4F.
+#[test]
+#[ignore = "needs qemu-system-arm and the board ELF: `cargo xtask test` runs it"]
+fn the_board_toolchain_keeps_every_value_of_a_min_max_loop() {
+    let elf = board_elf(&root()).with_file_name("codegen_check");
+    assert!(
+        elf.exists(),
+        "{} missing: run `cargo xtask firmware`",
+        elf.display()
+    );
+    let mut child = std::process::Command::new("qemu-system-arm")
+        .args([
+            "-machine",
+            "mps2-an386",
+            "-cpu",
+            "cortex-m4",
+            "-display",
+            "none",
+        ])
+        .args(["-semihosting-config", "enable=on,target=native"])
+        .arg("-kernel")
+        .arg(&elf)
+        .stdin(std::process::Stdio::null())
+        .stdout(std::process::Stdio::piped())
+        .spawn()
+        .expect("qemu-system-arm starts");
+    let deadline = Instant::now() + Duration::from_secs(60);
+    let status = loop {
+        if let Some(s) = child.try_wait().expect("QEMU's status") {
+            break s;
+        }
+        if Instant::now() > deadline {
+            let _ = child.kill();
+            let _ = child.wait();
+            panic!("{} did not exit within 60 s", elf.display());
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    };
+    let mut out = String::new();
+    std::io::Read::read_to_string(&mut child.stdout.take().expect("stdout"), &mut out)
+        .expect("QEMU's output");
+    eprintln!("{out}");
+    assert!(status.success(), "{status}: {out}");
+    // Every case ran and printed its verdict (2 + 2 x 11 cases).
+    assert_eq!(
+        out.lines().filter(|l| l.starts_with("ok ")).count(),
+        26,
+        "{out}"
+    );
+    assert!(!out.contains("FAIL"), "{out}");
+}
+
 /// The footprint refuses an image that is not a board firmware (here the
 /// test's own host executable, which has no `.vector_table`), so a broken
 /// build can never pass the flash budget with a size of 0.
