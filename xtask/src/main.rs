@@ -33,8 +33,13 @@ mod fuzz;
 
 const TARGET: &str = "thumbv7em-none-eabihf";
 
+/// The workspace root: the parent of xtask's folder, as `cargo run` names
+/// it when it starts the tool (so a checkout moved or copied with its
+/// `target/` works on its own files), else as it was at build time.
 fn root() -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR"))
+    let manifest = std::env::var_os("CARGO_MANIFEST_DIR")
+        .map_or_else(|| PathBuf::from(env!("CARGO_MANIFEST_DIR")), PathBuf::from);
+    manifest
         .parent()
         .map(Path::to_path_buf)
         .unwrap_or_else(|| PathBuf::from("."))
