@@ -16,6 +16,23 @@ pub struct AlarmLimits {
     pub moisture_high_pct: Option<f32>,
     /// Largest acceptable uncertainty, %.
     pub uncertainty_max_pct: Option<f32>,
+    /// The moisture basis the limits are written on (`basis = "dry"`):
+    /// on a wet basis (the default) they end at 100 %, on a dry one at
+    /// 1000 %, so that a wet-basis limit written in per mille (155 for
+    /// 15.5 %) is caught, not taken.
+    #[serde(default)]
+    pub basis: LimitBasis,
+}
+
+/// The moisture basis of alarm limits.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Deserialize, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum LimitBasis {
+    /// Water over wet mass: below 100 %.
+    #[default]
+    Wet,
+    /// Water over dry mass: up to 1000 % (green wood, biomass).
+    Dry,
 }
 
 /// A limit that cannot be used: its key, its value, the rule.
@@ -51,15 +68,24 @@ impl AlarmLimits {
         out
     }
 
-    /// The limits are percentages, 0 to 1000 (above 100 % on a dry basis:
-    /// green wood and biomass hold more water than dry matter,
-    /// [`fringe_calibration::moisture::MAX_DRY_BASIS_PCT`]), and the low one
-    /// is below the high one.
+    /// The limits are percentages, 0 to 100 on a wet basis, 0 to 1000 on a
+    /// dry one ([`AlarmLimits::basis`]; green wood and biomass hold more
+    /// water than dry matter, [`fringe_calibration::moisture::MAX_DRY_BASIS_PCT`]),
+    /// and the low one is below the high one.
     ///
     /// # Errors
     /// The first [`BadLimit`].
     pub fn validate(&self) -> Result<(), BadLimit> {
-        let top = fringe_calibration::moisture::MAX_DRY_BASIS_PCT as f32;
+        let (top, rule) = match self.basis {
+            LimitBasis::Wet => (
+                100.0,
+                "must be 0..=100 % (on a dry basis up to 1000 %: basis = \"dry\" in the same table)",
+            ),
+            LimitBasis::Dry => (
+                fringe_calibration::moisture::MAX_DRY_BASIS_PCT as f32,
+                "must be 0..=1000 % (basis = \"dry\")",
+            ),
+        };
         for (key, v) in [
             ("moisture_low_pct", self.moisture_low_pct),
             ("moisture_high_pct", self.moisture_high_pct),
@@ -70,7 +96,7 @@ impl AlarmLimits {
                     return Err(BadLimit {
                         key,
                         value: x.to_string(),
-                        rule: "must be 0..=1000 % (above 100 % on a dry basis only)",
+                        rule,
                     });
                 }
             }
@@ -123,6 +149,7 @@ mod tests {
             moisture_low_pct: Some(12.0),
             moisture_high_pct: Some(15.5),
             uncertainty_max_pct: Some(1.0),
+            basis: LimitBasis::Wet,
         };
         assert_eq!(a.check(Some(16.0), 0.5), ["HIGH"]);
         assert_eq!(a.check(Some(11.0), 1.5), ["LOW", "UNCERTAIN"]);
@@ -149,14 +176,35 @@ mod tests {
             ..a
         };
         assert_eq!(negative.validate().unwrap_err().key, "moisture_low_pct");
+        // A wet-basis limit written in per mille is caught.
+        let per_mille = AlarmLimits {
+            moisture_high_pct: Some(155.0),
+            ..a
+        };
+        let e = per_mille.validate().unwrap_err();
+        assert!(
+            e.key == "moisture_high_pct" && e.rule.contains("0..=100 %"),
+            "{e:?}"
+        );
         // Green wood on a dry basis (water above the dry mass): a band above
-        // 100 %.
+        // 100 %, said so.
         let green_wood = AlarmLimits {
             moisture_low_pct: Some(60.0),
             moisture_high_pct: Some(140.0),
             uncertainty_max_pct: Some(8.0),
+            basis: LimitBasis::Dry,
         };
         assert!(green_wood.validate().is_ok());
         assert_eq!(green_wood.check(Some(150.0), 3.0), ["HIGH"]);
+        let over = AlarmLimits {
+            moisture_high_pct: Some(1200.0),
+            ..green_wood
+        };
+        assert_eq!(over.validate().unwrap_err().value, "1200");
+        // In a line file's table.
+        let parsed: AlarmLimits =
+            toml::from_str("basis = \"dry\"\nmoisture_high_pct = 140.0\n").unwrap();
+        assert_eq!(parsed.basis, LimitBasis::Dry);
+        assert!(toml::from_str::<AlarmLimits>("basis = \"wet basis\"\n").is_err());
     }
 }
