@@ -494,7 +494,7 @@ fn the_board_toolchain_keeps_every_value_of_a_min_max_loop() {
         .expect("QEMU's output");
     eprintln!("{out}");
     assert!(status.success(), "{status}: {out}");
-    // Every case ran and printed its verdict (2 + 2 x 11 cases).
+    // Every case ran and printed its verdict (4 + 2 x 11 cases).
     assert_eq!(
         out.lines().filter(|l| l.starts_with("ok ")).count(),
         26,

@@ -35,10 +35,14 @@ const TARGET: &str = "thumbv7em-none-eabihf";
 
 /// The workspace root: the parent of xtask's folder, as `cargo run` names
 /// it when it starts the tool (so a checkout moved or copied with its
-/// `target/` works on its own files), else as it was at build time.
+/// `target/` works on its own files), else as it was at build time (the
+/// binary started directly, perhaps under another package's cargo, whose
+/// CARGO_MANIFEST_DIR is not xtask's).
 fn root() -> PathBuf {
     let manifest = std::env::var_os("CARGO_MANIFEST_DIR")
-        .map_or_else(|| PathBuf::from(env!("CARGO_MANIFEST_DIR")), PathBuf::from);
+        .map(PathBuf::from)
+        .filter(|m| m.ends_with("xtask") && m.join("src/main.rs").is_file())
+        .unwrap_or_else(|| PathBuf::from(env!("CARGO_MANIFEST_DIR")));
     manifest
         .parent()
         .map(Path::to_path_buf)
