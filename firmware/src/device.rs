@@ -1321,7 +1321,8 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             | Capabilities::CURRENT_OUTPUT
             | Capabilities::LOG
             | Capabilities::SETTINGS
-            | Capabilities::MODBUS_RTU;
+            | Capabilities::MODBUS_RTU
+            | Capabilities::WIDE_SPAN;
         if self.cfg.simulated {
             caps |= Capabilities::SIMULATED;
         }

@@ -91,7 +91,7 @@ impl SettingsError {
             SettingsError::Interval => "interval_ms not 100..3600000",
             SettingsError::StaleTimeout => "stale_timeout_ms not 2x int..1 d",
             SettingsError::Span(SpanError::NotFinite) => "span not finite",
-            SettingsError::Span(_) => "span: need 0<=low<high<=100",
+            SettingsError::Span(_) => "span: need 0<=low<high<=1000",
         }
     }
 }

@@ -119,8 +119,9 @@ fn request_strategy() -> impl Strategy<Value = Request> {
         prop_oneof![any::<u64>(), 946_684_800_000u64..=7_258_118_400_000]
             .prop_map(|unix_ms| Request::SetClock { unix_ms }),
         (
-            prop_oneof![nasty(), 0.0f32..100.0],
-            prop_oneof![nasty(), 0.0f32..100.0],
+            // Within 100 %, up to the dry-basis limit and past it.
+            prop_oneof![nasty(), 0.0f32..100.0, 0.0f32..1100.0],
+            prop_oneof![nasty(), 0.0f32..100.0, 0.0f32..1100.0],
             any::<bool>()
         )
             .prop_map(|(l, h, fail_high)| Request::SetOutput(OutputConfig {

@@ -491,6 +491,13 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
             before,
             "{field}: a wrong key changes nothing"
         );
+        // The span above 100 % is pointed out (before the write is tried).
+        assert_eq!(
+            o.stderr.contains("the span reaches above 100 %"),
+            flags.contains(&"180"),
+            "{field}: {}",
+            o.stderr
+        );
         let mut args = base(&key);
         args.push("--json".into());
         let o = run(

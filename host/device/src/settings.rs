@@ -5,7 +5,7 @@
 
 use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
-use fringe_protocol::{ModbusParity, ModbusSettings, Request, Settings};
+use fringe_protocol::{Capabilities, ModbusParity, ModbusSettings, Request, Settings};
 use fringe_quality::analysis::CalRecordBody;
 use fringe_store::{CalKind, NewCalibration, RecordStore, StoreError};
 
@@ -110,6 +110,26 @@ impl SettingsChange {
             Err(e) => refused(e.to_string()),
         }
     }
+}
+
+/// Whether a device announcing `caps` takes `new`: a span above 100 % needs
+/// [`Capabilities::WIDE_SPAN`] (firmware without it ends the span at 100 %
+/// and would refuse it with a bare `OutOfRange`).
+///
+/// # Errors
+/// [`SettingsError::Refused`] naming the flag, the device and what to do.
+pub fn check_capabilities(
+    new: &Settings,
+    caps: Capabilities,
+    serial: &str,
+) -> Result<(), SettingsError> {
+    if new.output.span_high_pct > 100.0 && !caps.contains(Capabilities::WIDE_SPAN) {
+        return Err(SettingsError::Refused(format!(
+            "--span-high-pct {}: {serial}'s firmware ends the span at 100 % (it lacks the wide_span capability); update the firmware for a dry-basis span above 100 %",
+            new.output.span_high_pct
+        )));
+    }
+    Ok(())
 }
 
 /// Writes `new` (authenticated), reads it back and records the change in
@@ -275,6 +295,27 @@ mod tests {
         baud: 19_200,
         parity: ModbusParity::Even,
     };
+
+    /// A span above 100 % goes only to firmware that announces it takes
+    /// one; a span within 100 % goes to any.
+    #[test]
+    fn a_span_above_100_pct_needs_the_wide_span_capability() {
+        let mut s = fringe_firmware::settings::default_settings();
+        s.output.span_high_pct = 180.0;
+        let old = Capabilities::SETTINGS | Capabilities::MODBUS_RTU;
+        match check_capabilities(&s, old, "HGM-L2-0007") {
+            Err(SettingsError::Refused(m)) => assert!(
+                m.contains("--span-high-pct 180")
+                    && m.contains("HGM-L2-0007")
+                    && m.contains("wide_span"),
+                "{m}"
+            ),
+            other => panic!("{other:?}"),
+        }
+        assert!(check_capabilities(&s, old | Capabilities::WIDE_SPAN, "x").is_ok());
+        s.output.span_high_pct = 100.0;
+        assert!(check_capabilities(&s, old, "x").is_ok());
+    }
 
     #[test]
     fn a_modbus_change_keeps_what_it_does_not_name_and_refuses_by_flag() {

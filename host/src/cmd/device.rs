@@ -21,6 +21,7 @@ fn capability_names(c: Capabilities) -> Vec<&'static str> {
         (Capabilities::STATIC_TERMS, "static_terms"),
         (Capabilities::SIGMA_HOLD, "sigma_hold"),
         (Capabilities::RELAXATION_DENSITY, "relaxation_density"),
+        (Capabilities::WIDE_SPAN, "wide_span"),
     ]
     .into_iter()
     .filter(|(f, _)| c.contains(*f))
@@ -622,6 +623,7 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
     super::sync_clock(&mut link, Some(&key), "device config")?;
     let old = read_settings(&mut link)?;
     let new = change.apply(&old)?;
+    fringe_device::settings::check_capabilities(&new, id.capabilities, id.serial.as_str())?;
     // Asked for Modbus settings, a device before protocol 1.2 is refused
     // here, by name and version, before anything is written.
     let old_m = if mchange.is_empty() {
@@ -648,7 +650,10 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
                 eprintln!("  {k:<15}{o}\n  {:<15}-> {n}", "");
             }
         }
-        if new.output.span_high_pct > 100.0 && new.output != old.output {
+        if new.output.span_high_pct > 100.0
+            && (new.output.span_low_pct, new.output.span_high_pct)
+                != (old.output.span_low_pct, old.output.span_high_pct)
+        {
             eprintln!(
                 "\nthe span reaches above 100 %: only a dry-basis calibration (water over dry mass) reports such values; on a wet basis the moisture stays below 100 % and the 4-20 mA signal uses only part of its range"
             );
