@@ -46,6 +46,24 @@ pub fn qemu_available() -> bool {
         .unwrap_or(false)
 }
 
+/// `qemu-system-arm` for `elf` on the board's machine (mps2-an386, a
+/// Cortex-M4), without a display, with semihosting on the host's console.
+pub fn qemu_command(elf: &Path) -> Command {
+    let mut c = Command::new("qemu-system-arm");
+    c.args([
+        "-machine",
+        "mps2-an386",
+        "-cpu",
+        "cortex-m4",
+        "-display",
+        "none",
+    ])
+    .args(["-semihosting-config", "enable=on,target=native"])
+    .arg("-kernel")
+    .arg(elf);
+    c
+}
+
 /// A running QEMU with the board; killed when dropped.
 pub struct Qemu {
     child: Child,
@@ -72,23 +90,12 @@ impl Qemu {
             COUNTER.fetch_add(1, std::sync::atomic::Ordering::Relaxed)
         ));
         let _ = std::fs::remove_file(&monitor);
-        let mut child = Command::new("qemu-system-arm")
-            .args([
-                "-machine",
-                "mps2-an386",
-                "-cpu",
-                "cortex-m4",
-                "-display",
-                "none",
-            ])
+        let mut child = qemu_command(elf)
             .args(["-icount", "shift=0,sleep=off"])
-            .args(["-semihosting-config", "enable=on,target=native"])
             // `-serial` number n is UARTn: the protocol, then Modbus RTU.
             .args(["-serial", "pty", "-serial", "pty"])
             .arg("-monitor")
             .arg(format!("unix:{},server=on,wait=off", monitor.display()))
-            .arg("-kernel")
-            .arg(elf)
             .stdin(Stdio::null())
             .stdout(Stdio::piped())
             .stderr(Stdio::inherit())

@@ -395,6 +395,29 @@ fn config_show(sim: &Sim) -> serde_json::Value {
     serde_json::from_str(&o.stdout).unwrap()
 }
 
+/// `fringe device config set` on the simulator with key file `key`, the
+/// operator R. Okafor, `reason` and `--yes`, then `extra`.
+fn config_set(sim: &Sim, db: &Path, key: &str, reason: &str, extra: &[&str]) -> Outcome {
+    let mut a = vec![
+        "device",
+        "config",
+        "set",
+        "--port",
+        sim.port_str(),
+        "--db",
+        db.to_str().unwrap(),
+        "--key-file",
+        key,
+        "--operator",
+        "R. Okafor",
+        "--reason",
+        reason,
+        "--yes",
+    ];
+    a.extend_from_slice(extra);
+    run(&mut fringe(&a), LIMIT)
+}
+
 #[test]
 fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_nothing() {
     let mut spec = ScenarioSpec::clean("HGM-L2-0305", 45);
@@ -459,32 +482,9 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
         ),
     ];
     for (i, (flags, field, want)) in cases.iter().enumerate() {
-        let base = |k: &str| {
-            let mut a = vec![
-                "device".to_string(),
-                "config".into(),
-                "set".into(),
-                "--port".into(),
-                sim.port_str().into(),
-                "--db".into(),
-                db.to_str().unwrap().into(),
-                "--key-file".into(),
-                k.into(),
-                "--operator".into(),
-                "R. Okafor".into(),
-                "--reason".into(),
-                format!("change {i}"),
-                "--yes".into(),
-            ];
-            a.extend(flags.iter().map(|s| s.to_string()));
-            a
-        };
+        let reason = format!("change {i}");
         let before = config_show(&sim);
-        let args = base(wrong.to_str().unwrap());
-        let o = run(
-            &mut fringe(&args.iter().map(String::as_str).collect::<Vec<_>>()),
-            LIMIT,
-        );
+        let o = config_set(&sim, &db, wrong.to_str().unwrap(), &reason, flags);
         assert_fails(&o, 16, &["auth"]);
         assert_eq!(
             config_show(&sim),
@@ -498,12 +498,7 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
             "{field}: {}",
             o.stderr
         );
-        let mut args = base(&key);
-        args.push("--json".into());
-        let o = run(
-            &mut fringe(&args.iter().map(String::as_str).collect::<Vec<_>>()),
-            LIMIT,
-        );
+        let o = config_set(&sim, &db, &key, &reason, &[flags, &["--json"][..]].concat());
         assert_eq!(o.code, 0, "{field}: {}", o.stderr);
         let now = config_show(&sim);
         assert_eq!(&now[*field], want, "{field} read back: {now}");
@@ -538,29 +533,7 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
         .count();
     assert_eq!((changed, refused), (cases.len(), cases.len()));
     // A bad value is refused before anything is written, naming the flag.
-    let bad = |flag: &str, value: &str| {
-        run(
-            &mut fringe(&[
-                "device",
-                "config",
-                "set",
-                "--port",
-                sim.port_str(),
-                "--db",
-                db.to_str().unwrap(),
-                "--key-file",
-                &key,
-                "--operator",
-                "R. Okafor",
-                "--reason",
-                "test",
-                "--yes",
-                flag,
-                value,
-            ]),
-            LIMIT,
-        )
-    };
+    let bad = |flag: &str, value: &str| config_set(&sim, &db, &key, "test", &[flag, value]);
     let before = config_show(&sim);
     // A value out of its range is a usage error (exit 2, issue 16).
     let o = bad("--stale-timeout-ms", "300");
@@ -585,29 +558,7 @@ fn a_guessed_key_is_held_off_and_the_engineer_is_told_why() {
     let db = sim.path("line2.db");
     let wrong = sim.path("wrong.key");
     std::fs::write(&wrong, "55".repeat(32)).unwrap();
-    let set = |k: &str, tag: &str| {
-        run(
-            &mut fringe(&[
-                "device",
-                "config",
-                "set",
-                "--port",
-                sim.port_str(),
-                "--db",
-                db.to_str().unwrap(),
-                "--key-file",
-                k,
-                "--operator",
-                "R. Okafor",
-                "--reason",
-                "test",
-                "--yes",
-                "--tag",
-                tag,
-            ]),
-            LIMIT,
-        )
-    };
+    let set = |k: &str, tag: &str| config_set(&sim, &db, k, "test", &["--tag", tag]);
     let held_s = |stderr: &str| -> Option<u64> {
         let at = stderr.find("writes held off for ")? + "writes held off for ".len();
         stderr[at..].split(' ').next()?.parse().ok()
@@ -701,27 +652,14 @@ fn modbus_settings_are_set_on_the_simulator_read_back_and_audited() {
         "defaults: {d}"
     );
     let set = |k: &str, extra: &[&str], json: bool| {
-        let mut a = vec![
-            "device",
-            "config",
-            "set",
-            "--port",
-            sim.port_str(),
-            "--db",
-            db.to_str().unwrap(),
-            "--key-file",
+        let json: &[&str] = if json { &["--json"] } else { &[] };
+        config_set(
+            &sim,
+            &db,
             k,
-            "--operator",
-            "R. Okafor",
-            "--reason",
             "second dryer on the segment",
-            "--yes",
-        ];
-        a.extend_from_slice(extra);
-        if json {
-            a.push("--json");
-        }
-        run(&mut fringe(&a), LIMIT)
+            &[extra, json].concat(),
+        )
     };
     let change = [
         "--modbus-unit",

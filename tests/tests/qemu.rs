@@ -461,18 +461,7 @@ fn the_board_toolchain_keeps_every_value_of_a_min_max_loop() {
         "{} missing: run `cargo xtask firmware`",
         elf.display()
     );
-    let mut child = std::process::Command::new("qemu-system-arm")
-        .args([
-            "-machine",
-            "mps2-an386",
-            "-cpu",
-            "cortex-m4",
-            "-display",
-            "none",
-        ])
-        .args(["-semihosting-config", "enable=on,target=native"])
-        .arg("-kernel")
-        .arg(&elf)
+    let mut child = qemu_command(&elf)
         .stdin(std::process::Stdio::null())
         .stdout(std::process::Stdio::piped())
         .spawn()
