@@ -146,6 +146,10 @@ pub struct DeviceConfig {
     /// [`Capabilities::RELAXATION_DENSITY`]; off, the device refuses one
     /// as firmware before it did.
     pub relaxation_density: bool,
+    /// Take a 4-20 mA span up to 1000 % and announce
+    /// [`Capabilities::WIDE_SPAN`]; off, the device refuses a span above
+    /// 100 % as firmware before it did (`OutOfRange`).
+    pub wide_span: bool,
 }
 
 impl DeviceConfig {
@@ -164,6 +168,7 @@ impl DeviceConfig {
             static_terms: true,
             sigma_hold: true,
             relaxation_density: true,
+            wide_span: true,
         }
     }
 
@@ -1268,6 +1273,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             };
             (code, e.reason())
         })?;
+        if !self.cfg.wide_span && new.output.span_high_pct > 100.0 {
+            return Err((ErrorCode::OutOfRange, "span: need 0<=low<high<=100"));
+        }
         self.storage
             .put(key::SETTINGS, &new)
             .map_err(Self::storage_refusal)?;
@@ -1321,8 +1329,10 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             | Capabilities::CURRENT_OUTPUT
             | Capabilities::LOG
             | Capabilities::SETTINGS
-            | Capabilities::MODBUS_RTU
-            | Capabilities::WIDE_SPAN;
+            | Capabilities::MODBUS_RTU;
+        if self.cfg.wide_span {
+            caps |= Capabilities::WIDE_SPAN;
+        }
         if self.cfg.simulated {
             caps |= Capabilities::SIMULATED;
         }

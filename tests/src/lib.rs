@@ -204,6 +204,9 @@ pub struct ScenarioSpec {
     /// The device takes a relaxation calibration with the density input;
     /// `false` simulates firmware before it.
     pub relaxation_density: bool,
+    /// The device takes a 4-20 mA span above 100 %; `false` simulates
+    /// firmware before it.
+    pub wide_span: bool,
     /// Probability a byte is lost.
     pub drop_per_byte: f64,
     /// Probability a bit of a byte flips.
@@ -232,6 +235,7 @@ impl ScenarioSpec {
             static_terms: true,
             sigma_hold: true,
             relaxation_density: true,
+            wide_span: true,
             drop_per_byte: 0.0,
             flip_per_byte: 0.0,
             garbage_per_frame: 0.0,
@@ -247,7 +251,7 @@ impl ScenarioSpec {
              moisture_pct = [[0, 14.0], [120, 16.0], [240, 13.5]]\n\
              temperature_c = [[0, 30.0], [240, 34.0]]\n\
              water_conductivity_s_m = [[0, 0.1]]\n{}\n\
-             [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\ninterval_ms = {}\nclock = \"{}\"\ndensity_input = {}\nstatic_terms = {}\nsigma_hold = {}\nrelaxation_density = {}\n\n\
+             [device]\nserial = \"{}\"\nkey = \"{TEST_KEY_HEX}\"\nseed = {}\ntime_scale = {}\nbaud = {}\ninterval_ms = {}\nclock = \"{}\"\ndensity_input = {}\nstatic_terms = {}\nsigma_hold = {}\nrelaxation_density = {}\nwide_span = {}\n\n\
              [product]\nname = \"wheat\"\n\n\
              [link]\ndrop_per_byte = {}\nflip_per_byte = {}\ngarbage_per_frame = {}\n",
             self.extra,
@@ -261,6 +265,7 @@ impl ScenarioSpec {
             self.static_terms,
             self.sigma_hold,
             self.relaxation_density,
+            self.wide_span,
             self.drop_per_byte,
             self.flip_per_byte,
             self.garbage_per_frame

@@ -543,6 +543,45 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
     assert_eq!(config_show(&sim), before, "refused values change nothing");
 }
 
+/// A span above 100 % (a dry-basis calibration) goes only to firmware that
+/// announces `WIDE_SPAN`: to firmware before it `config set` refuses by
+/// name, as a usage error, before anything is written (the device, asked
+/// directly, would answer a bare `OutOfRange`); a span within 100 % still
+/// goes to it.
+#[test]
+fn a_span_above_100_pct_is_refused_by_name_to_firmware_without_it() {
+    let sim = Sim::start(&ScenarioSpec {
+        wide_span: false,
+        time_scale: 1.0,
+        ..ScenarioSpec::clean("HGM-L2-0309", 49)
+    });
+    let key = key_file(&sim);
+    let db = sim.path("line2.db");
+    let before = config_show(&sim);
+    let o = config_set(&sim, &db, &key, "wet wood", &["--span-high-pct", "180"]);
+    assert_fails(&o, 2, &["--span-high-pct 180", "HGM-L2-0309", "wide_span"]);
+    assert_eq!(config_show(&sim), before, "nothing written");
+    assert!(
+        !db.exists() || {
+            let store = Store::open_read_only(&db).unwrap();
+            store
+                .calibrations("HGM-L2-0309")
+                .unwrap()
+                .iter()
+                .all(|c| c.cal.kind != CalKind::Settings)
+        }
+    );
+    let o = config_set(
+        &sim,
+        &db,
+        &key,
+        "dryer rescaled",
+        &["--span-high-pct", "60", "--json"],
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert_eq!(config_show(&sim)["span_high_pct"], serde_json::json!(60.0));
+}
+
 /// Guessing the key online is held off (protocol/WIRE.md, "Back-off after
 /// failed writes"): wrong keys through `fringe device config set` until the
 /// device holds writes off for at least 4 s; then even the right key is

@@ -86,6 +86,7 @@ impl FirmwareSim {
         config.static_terms = scenario.device.static_terms;
         config.sigma_hold = scenario.device.sigma_hold;
         config.relaxation_density = scenario.device.relaxation_density;
+        config.wide_span = scenario.device.wide_span;
         config.settings.interval_ms = scenario.device.interval_ms;
         // The default stale timeout, or twice the interval if that is longer.
         config.settings.stale_timeout_ms = config

@@ -105,6 +105,10 @@ pub struct DeviceSection {
     /// input (the default); `false` refuses one as firmware before it did.
     #[serde(default = "yes")]
     pub relaxation_density: bool,
+    /// Whether the device takes a 4-20 mA span above 100 % (the default);
+    /// `false` refuses one as firmware before it did.
+    #[serde(default = "yes")]
+    pub wide_span: bool,
 }
 
 fn yes() -> bool {
