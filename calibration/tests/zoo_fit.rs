@@ -340,6 +340,17 @@ fn holds_against_the_baseline(cases: &[(Family, Vec<[f64; 2]>)], what: &str) {
 /// is within 15 % of it or better. (The comparison's choice is printed: in
 /// range a multivariate fit can be as good, and it is then chosen; the
 /// other products are in BENCHMARKS.md.)
+///
+/// Not on every seed: with FRINGE_SEED 11, 13 and 14 (of 1-16) the
+/// temperature check fails at 5/50 MHz, 1.15, 1.20 and 1.38 times the
+/// baseline (measured 2026-12-04). On 11 and 13 the relaxation model's
+/// errors 10 C hotter scatter more (SEP 0.21 in range, 0.24 and 0.29
+/// hotter) with no bias to speak of (+0.10 and +0.04 %) and with a slope in
+/// moisture of opposite sign on the two seeds: the temperature terms'
+/// estimation error, carried 10 C beyond the samples; at 5/50 MHz the
+/// baseline extrapolates in temperature about as well (0.21 and 0.25). On
+/// 14 the law fit itself is poor (cross-validated SEP 0.55 against 0.28 on
+/// its own samples) and PLS is chosen.
 #[test]
 fn physics_wins_extrapolation_on_the_grain() {
     let seed = seed();
