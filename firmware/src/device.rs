@@ -146,7 +146,7 @@ pub struct DeviceConfig {
     /// [`Capabilities::RELAXATION_DENSITY`]; off, the device refuses one
     /// as firmware before it did.
     pub relaxation_density: bool,
-    /// Take a 4-20 mA span up to 1000 % and announce
+    /// Take a 4-20 mA span up to 327.67 % and announce
     /// [`Capabilities::WIDE_SPAN`]; off, the device refuses a span above
     /// 100 % as firmware before it did (`OutOfRange`).
     pub wide_span: bool,

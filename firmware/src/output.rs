@@ -27,12 +27,12 @@ pub const MA_FAIL_LOW: f32 = 3.5;
 /// High failure current driven, mA (NE 43: >= 21.0).
 pub const MA_FAIL_HIGH: f32 = 21.5;
 
-/// Highest span end accepted, % moisture: the highest moisture a calibration
-/// can report, on a dry basis (green wood and biomass hold more water than
-/// dry matter, so above 100 %; [`fringe_calibration::moisture::MAX_DRY_BASIS_PCT`]).
-/// On a wet basis the moisture stays below 100 %, and a span reaching above
-/// it only compresses the signal.
-pub const MAX_SPAN_PCT: f32 = fringe_calibration::moisture::MAX_DRY_BASIS_PCT as f32;
+/// Highest span end accepted, % moisture: the highest moisture a reading
+/// carries ([`fringe_protocol::quant::MOISTURE_MAX_PCT`], 327.67 %), reached
+/// only on a dry basis (green wood and biomass hold more water than dry
+/// matter). On a wet basis the moisture stays below 100 %, and a span
+/// reaching above it only compresses the signal.
+pub const MAX_SPAN_PCT: f32 = fringe_protocol::quant::MOISTURE_MAX_PCT;
 
 /// What the loop shows.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -65,7 +65,7 @@ impl core::fmt::Display for SpanError {
             SpanError::OutOfRange => {
                 write!(
                     f,
-                    "output span: need 0 <= span_low_pct < span_high_pct <= 1000 (above 100 only a dry-basis calibration reaches)"
+                    "output span: need 0 <= span_low_pct < span_high_pct <= 327.67 (above 100 only a dry-basis calibration reaches)"
                 )
             }
         }
@@ -184,7 +184,7 @@ mod tests {
         c.span_high_pct = f32::INFINITY;
         assert_eq!(validate(&c), Err(SpanError::NotFinite));
         assert_eq!(current_ma(&c, Some(12.0)).1, LoopState::Fault);
-        c.span_high_pct = 1000.5;
+        c.span_high_pct = 327.7;
         assert_eq!(validate(&c), Err(SpanError::OutOfRange));
         c.span_low_pct = -0.5;
         c.span_high_pct = 20.0;
@@ -219,6 +219,6 @@ mod tests {
             fail_high: true,
         };
         assert_eq!(validate(&top), Ok(()));
-        assert_eq!(current_ma(&top, Some(1000.0)), (20.0, LoopState::Measuring));
+        assert_eq!(current_ma(&top, Some(327.67)), (20.0, LoopState::Measuring));
     }
 }

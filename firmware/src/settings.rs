@@ -12,7 +12,7 @@
 //! | --- | --- | --- |
 //! | tag | empty | up to 24 bytes of UTF-8, no control characters |
 //! | interval | 1000 ms | 100 ms .. 1 h |
-//! | span | 0-30 % moisture at 4-20 mA | 0 <= low < high <= 1000 % (above 100 % on a dry basis only) |
+//! | span | 0-30 % moisture at 4-20 mA | 0 <= low < high <= 327.67 % (above 100 % on a dry basis only) |
 //! | failure level | low (3.5 mA; NE 43: <= 3.6 mA) | low or high (21.5 mA; NE 43: >= 21 mA) |
 //! | stale-output timeout | 10 s | twice the interval .. one day |
 //!
@@ -91,7 +91,7 @@ impl SettingsError {
             SettingsError::Interval => "interval_ms not 100..3600000",
             SettingsError::StaleTimeout => "stale_timeout_ms not 2x int..1 d",
             SettingsError::Span(SpanError::NotFinite) => "span not finite",
-            SettingsError::Span(_) => "span: need 0<=low<high<=1000",
+            SettingsError::Span(_) => "span: need 0<=low<high<=327.67",
         }
     }
 }

@@ -242,7 +242,7 @@ fn expect(req: &Request) -> Expect {
                 Expect::Refuse(NOT_FINITE)
             } else if 0.0 <= o.span_low_pct
                 && o.span_low_pct < o.span_high_pct
-                && o.span_high_pct <= 1000.0
+                && o.span_high_pct <= fringe_protocol::quant::MOISTURE_MAX_PCT
             {
                 Expect::Accept
             } else {

@@ -215,6 +215,54 @@ fn a_dry_basis_table_above_100_percent_fits_with_basis_dry() {
     assert!(predicted.iter().all(|m| *m > 105.0), "{csv}");
 }
 
+/// A dry-basis calibration's valid range ends at 327.67 %, the most a
+/// device reading carries (hundredths of a % in 16 bits), so the device
+/// flags a wetter reading instead of sending it clipped as a good one;
+/// `cal fit` says so, and `cal predict` on the file flags the same
+/// readings. (Made-up rows with 305 % added: 315-329.5 % dry basis.)
+#[test]
+fn a_dry_basis_range_ends_where_a_reading_can_carry_it() {
+    let dir = tempfile::tempdir().expect("dir");
+    let wet: Vec<String> = rows(30, 0.0)
+        .iter()
+        .map(|r| {
+            let mut f: Vec<String> = r.split(',').map(String::from).collect();
+            f[1] = format!("{}", f[1].parse::<f64>().expect("moisture") + 305.0);
+            f.join(",")
+        })
+        .collect();
+    let (o, out) = fit(dir.path(), &wet, &["--basis", "dry"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        text.contains("moisture 313.50..327.67 %")
+            && text.contains("the valid moisture range ends at 327.67 %"),
+        "{text}"
+    );
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "predict", "--cal"])
+        .arg(&out)
+        .arg("--input")
+        .arg(dir.path().join("lab.csv"))
+        .output()
+        .expect("run fringe");
+    assert!(o.status.success(), "{}", stderr(&o));
+    let csv = String::from_utf8_lossy(&o.stdout).into_owned();
+    let mut seen = 0;
+    for l in csv.lines().skip(1) {
+        let f: Vec<&str> = l.split(',').collect();
+        let predicted: f64 = f[2].parse().expect("number");
+        let flagged = f[7].contains("out_of_range");
+        // Away from the edge (the prediction's own scatter) the flag
+        // follows the range's end.
+        if (predicted - 327.67).abs() > 0.05 {
+            assert_eq!(flagged, predicted > 327.67, "{l}");
+            seen += usize::from(flagged);
+        }
+    }
+    assert!(seen >= 2, "{csv}");
+}
+
 #[test]
 fn physically_impossible_values_are_input_errors() {
     let dir = tempfile::tempdir().expect("dir");

@@ -386,7 +386,7 @@ bitflags! {
         /// protocol version). Firmware without it refuses layout 4 as a
         /// bad calibration; the host refuses to push one to it.
         const RELAXATION_DENSITY = 1 << 10;
-        /// Takes a 4-20 mA span reaching up to 1000 % moisture (a dry-basis
+        /// Takes a 4-20 mA span reaching up to 327.67 % moisture (a dry-basis
         /// calibration: water over dry mass exceeds 100 % in green wood and
         /// biomass; the same [`OutputConfig`], no new protocol version).
         /// Firmware without it ends the span at 100 % and answers a higher

@@ -67,6 +67,10 @@ fn round(x: f32) -> f32 {
 pub const TEMPERATURE_PER_C: f32 = 100.0;
 /// Wire counts per % of moisture (step 0.01 %).
 pub const MOISTURE_PER_PCT: f32 = 100.0;
+/// The highest moisture a reading carries, %: `i16::MAX` counts (a dry-basis
+/// moisture above it saturates here; the device's range check flags it,
+/// since a calibration's valid range ends here too).
+pub const MOISTURE_MAX_PCT: f32 = i16::MAX as f32 / MOISTURE_PER_PCT;
 /// Wire counts per % of uncertainty (step 0.001 %).
 pub const UNCERTAINTY_PER_PCT: f32 = 1000.0;
 

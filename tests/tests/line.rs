@@ -539,7 +539,7 @@ fn each_device_setting_is_set_read_back_and_audited_and_a_wrong_key_changes_noth
     let o = bad("--stale-timeout-ms", "300");
     assert_fails(&o, 2, &["--stale-timeout-ms 300", "twice the interval"]);
     let o = bad("--span-high-pct", "1200");
-    assert_fails(&o, 2, &["--span-high-pct 1200", "<= 1000 %"]);
+    assert_fails(&o, 2, &["--span-high-pct 1200", "<= 327.67 %"]);
     assert_eq!(config_show(&sim), before, "refused values change nothing");
 }
 

@@ -441,10 +441,14 @@ fn model_words(k: fringe_calibration::product::ModelKind) -> &'static str {
 /// The highest moisture a calibration's range may reach on `basis`, %:
 /// 100 on a wet basis, [`fringe_calibration::moisture::MAX_DRY_BASIS_PCT`]
 /// on a dry one.
+/// The highest moisture a calibration's valid range reaches on `basis`: 100 %
+/// wet; on a dry basis the highest a reading carries
+/// ([`fringe_protocol::quant::MOISTURE_MAX_PCT`], 327.67 %), so that the
+/// device flags a reading above it rather than sending it clipped.
 fn basis_top_pct(basis: Basis) -> f32 {
     match basis {
         Basis::Wet => 100.0,
-        _ => fringe_calibration::moisture::MAX_DRY_BASIS_PCT as f32,
+        _ => fringe_protocol::quant::MOISTURE_MAX_PCT,
     }
 }
 
@@ -479,7 +483,8 @@ pub fn wire_of(
         params: heapless::Vec::from_slice(&f.params)
             .map_err(|_| FitError::TooMany { what: "parameters" })?,
         // The valid range reaches beyond the samples (a margin of three
-        // sample spacings), not beyond what the basis allows.
+        // sample spacings), not beyond what the basis allows or a reading
+        // carries.
         moisture_pct: Range {
             min: c.moisture_pct.min,
             max: c.moisture_pct.max.min(basis_top_pct(basis)),
@@ -656,6 +661,12 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
     if basis == Basis::Dry && top > 100.0 {
         chosen.notes.push(format!(
             "lab values on a dry basis up to {top:.1} %: on synthetic wood chips of 25-150 % dry basis the models fitted to the same values on a wet basis did 1.1-2.4 times better; unless the plant needs the dry basis at the output, convert them (M_wb = 100 M_db / (100 + M_db)) and fit with --basis wet"
+        ));
+    }
+    let carried = fringe_protocol::quant::MOISTURE_MAX_PCT;
+    if basis == Basis::Dry && chosen.calibration.moisture_pct.max > carried {
+        chosen.notes.push(format!(
+            "the valid moisture range ends at {carried} %, the highest moisture the device's readings carry: readings above it are flagged out of range (and sent as {carried} %); on a wet basis the same product stays below 100 %"
         ));
     }
     let refusals = gate_of_fit(&chosen, &samples);

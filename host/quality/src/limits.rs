@@ -18,7 +18,8 @@ pub struct AlarmLimits {
     pub uncertainty_max_pct: Option<f32>,
     /// The moisture basis the limits are written on (`basis = "dry"`):
     /// on a wet basis (the default) they end at 100 %, on a dry one at
-    /// 1000 %, so that a wet-basis limit written in per mille (155 for
+    /// 327.67 % (the highest moisture a reading carries), so that a
+    /// wet-basis limit written in per mille (155 for
     /// 15.5 %) is caught, not taken.
     #[serde(default)]
     pub basis: LimitBasis,
@@ -31,7 +32,7 @@ pub enum LimitBasis {
     /// Water over wet mass: below 100 %.
     #[default]
     Wet,
-    /// Water over dry mass: up to 1000 % (green wood, biomass).
+    /// Water over dry mass: up to 327.67 % (green wood, biomass).
     Dry,
 }
 
@@ -68,10 +69,11 @@ impl AlarmLimits {
         out
     }
 
-    /// The limits are percentages, 0 to 100 on a wet basis, 0 to 1000 on a
-    /// dry one ([`AlarmLimits::basis`]; green wood and biomass hold more
-    /// water than dry matter, [`fringe_calibration::moisture::MAX_DRY_BASIS_PCT`]),
-    /// and the low one is below the high one.
+    /// The limits are percentages, 0 to 100 on a wet basis, 0 to 327.67 on
+    /// a dry one ([`AlarmLimits::basis`]; green wood and biomass hold more
+    /// water than dry matter; a reading carries moisture up to
+    /// [`fringe_protocol::quant::MOISTURE_MAX_PCT`]), and the low one is
+    /// below the high one.
     ///
     /// # Errors
     /// The first [`BadLimit`].
@@ -79,11 +81,11 @@ impl AlarmLimits {
         let (top, rule) = match self.basis {
             LimitBasis::Wet => (
                 100.0,
-                "must be 0..=100 % (on a dry basis up to 1000 %: basis = \"dry\" in the same table)",
+                "must be 0..=100 % (on a dry basis up to 327.67 %: basis = \"dry\" in the same table)",
             ),
             LimitBasis::Dry => (
-                fringe_calibration::moisture::MAX_DRY_BASIS_PCT as f32,
-                "must be 0..=1000 % (basis = \"dry\")",
+                fringe_protocol::quant::MOISTURE_MAX_PCT,
+                "must be 0..=327.67 % (basis = \"dry\": the highest moisture a reading carries)",
             ),
         };
         for (key, v) in [
@@ -197,10 +199,10 @@ mod tests {
         assert!(green_wood.validate().is_ok());
         assert_eq!(green_wood.check(Some(150.0), 3.0), ["HIGH"]);
         let over = AlarmLimits {
-            moisture_high_pct: Some(1200.0),
+            moisture_high_pct: Some(400.0),
             ..green_wood
         };
-        assert_eq!(over.validate().unwrap_err().value, "1200");
+        assert_eq!(over.validate().unwrap_err().value, "400");
         // In a line file's table.
         let parsed: AlarmLimits =
             toml::from_str("basis = \"dry\"\nmoisture_high_pct = 140.0\n").unwrap();

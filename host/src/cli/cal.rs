@@ -60,7 +60,8 @@ pub struct FitArgs {
     pub eps_sd: f64,
     /// Moisture basis of the lab values (water / wet mass, below 100 %; or
     /// water / dry mass, as timber and biomass are often given, below
-    /// 1000 %); the device reports on the same basis.
+    /// 1000 %); the device reports on the same basis (up to 327.67 %, the
+    /// most a reading carries: beyond, flagged out of range).
     #[arg(long, value_parser = ["wet", "dry"], default_value = "wet")]
     pub basis: String,
     /// Print the result as one JSON object.
