@@ -586,7 +586,7 @@ fn a_push_of_the_relaxation_density_input_needs_firmware_that_takes_it() {
 fn a_forced_push_keeps_both_overrides_in_its_audit_record() {
     let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0209", seed(29)));
     let table = sim.path("far.csv");
-    write_zoo_table(&table, 60, 3, false);
+    write_zoo_table(&table, 60, 3, false, false);
     // One more sample, a copy of the first at 120 C: the calibration's
     // temperature range then reaches 120 C through it alone.
     let text = std::fs::read_to_string(&table).unwrap();
@@ -644,6 +644,38 @@ fn a_forced_push_keeps_both_overrides_in_its_audit_record() {
 /// `cal push --force` of `cal` to the simulated device (activated or not),
 /// between two `cal list --json`: the slots before, the push's outcome,
 /// the slots after.
+/// A push that changes the basis the line reports on (a dry-basis
+/// calibration in place of the wet one in force) shows each one's basis
+/// and a caution that the span, the alarm limits and the receivers'
+/// scaling were set for the other; a push on the same basis does not.
+#[test]
+fn a_push_that_changes_the_basis_is_pointed_out() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0209", seed(29)));
+    let (wet, _) = fit_zoo_grain_on(&sim, false, false);
+    let wet_copy = sim.path("grain-wet.toml");
+    std::fs::copy(&wet, &wet_copy).unwrap();
+    let (_, o, _) = push_with_slots(&sim, &wet_copy, "true");
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let (dry, _) = fit_zoo_grain_on(&sim, false, true);
+    let (_, o, _) = push_with_slots(&sim, &dry, "true");
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let shown = format!("{}{}", o.stdout, o.stderr);
+    assert!(
+        shown.contains("% wet basis")
+            && shown.contains("% dry basis")
+            && shown.contains("now reports on a dry basis where it reported on a wet basis"),
+        "{shown}"
+    );
+    // Again on the same (dry) basis: no such caution.
+    let (_, o, _) = push_with_slots(&sim, &dry, "true");
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        !format!("{}{}", o.stdout, o.stderr).contains("now reports on"),
+        "{}",
+        o.stderr
+    );
+}
+
 fn push_with_slots(sim: &Sim, cal: &Path, activate: &str) -> (Outcome, Outcome, Outcome) {
     let db = sim.path("bench.db");
     let key = key_file(sim);
@@ -753,8 +785,14 @@ fn monitor_raises_the_drift_alarms_of_fringe_drift_live() {
 /// (each sample's density in the table) or without: the calibration file
 /// and the command's outcome (it succeeded).
 fn fit_zoo_grain(sim: &Sim, density_input: bool) -> (std::path::PathBuf, Outcome) {
+    fit_zoo_grain_on(sim, density_input, false)
+}
+
+/// [`fit_zoo_grain`] with the lab values on a dry basis (`dry`: M_db =
+/// 100 M_wb / (100 - M_wb), fitted with `--basis dry`).
+fn fit_zoo_grain_on(sim: &Sim, density_input: bool, dry: bool) -> (std::path::PathBuf, Outcome) {
     let table = sim.path("grain.csv");
-    write_zoo_table(&table, 60, 1, density_input);
+    write_zoo_table(&table, 60, 1, density_input, dry);
     let cal = sim.path("grain.toml");
     let mut args = vec![
         "cal",
@@ -773,6 +811,9 @@ fn fit_zoo_grain(sim: &Sim, density_input: bool) -> (std::path::PathBuf, Outcome
     if density_input {
         args.push("--density-input");
     }
+    if dry {
+        args.extend(["--basis", "dry"]);
+    }
     let o = run(&mut fringe(&args), LIMIT);
     assert_eq!(o.code, 0, "{}", o.stderr);
     (cal, o)
@@ -780,8 +821,9 @@ fn fit_zoo_grain(sim: &Sim, density_input: bool) -> (std::path::PathBuf, Outcome
 
 /// `n` samples of the zoo's grain at the device's 1 and 20 MHz (synthetic,
 /// `fringe_calibration::fit::zoo`) as a reference table, written by the
-/// host's own table writer, with each sample's density or without.
-fn write_zoo_table(path: &Path, n: usize, seed: u64, density: bool) {
+/// host's own table writer, with each sample's density or without, the lab
+/// values on a wet basis or (`dry`) converted to a dry one.
+fn write_zoo_table(path: &Path, n: usize, seed: u64, density: bool, dry: bool) {
     use fringe_calibration::fit::zoo::{Draw, Family};
     use fringe_quality::samples::{write_samples, RefSample};
     let rows: Vec<RefSample> = Family::grain()
@@ -789,7 +831,12 @@ fn write_zoo_table(path: &Path, n: usize, seed: u64, density: bool) {
         .into_iter()
         .map(|x| RefSample {
             sample_id: x.id,
-            moisture_pct: Some(x.moisture_pct),
+            // On a dry basis M_db = 100 M_wb / (100 - M_wb).
+            moisture_pct: Some(if dry {
+                100.0 * x.moisture_pct / (100.0 - x.moisture_pct)
+            } else {
+                x.moisture_pct
+            }),
             temperature_c: x.temperature_c,
             freqs_hz: [x.channels[0].freq_hz, x.channels[1].freq_hz],
             eps_re: [x.channels[0].eps_re, x.channels[1].eps_re],

@@ -8,7 +8,7 @@ use std::path::Path;
 
 use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
-use fringe_protocol::{CalId, Capabilities, ProductCal, Request, Response, SlotInfo};
+use fringe_protocol::{Basis, CalId, Capabilities, ProductCal, Request, Response, SlotInfo};
 use fringe_quality::analysis::CalRecordBody;
 use fringe_quality::cal::{gate_of_file, GateRefused};
 use fringe_quality::product_file::{same_freqs, ProductFile};
@@ -181,6 +181,30 @@ pub fn takes_sigma_hold(wire: &ProductCal) -> bool {
         && wire.params.len() == fringe_calibration::product::RELAXATION_SIGMA_HOLD_LEN
 }
 
+/// "wet basis" or "dry basis".
+pub fn basis_words(b: Basis) -> &'static str {
+    match b {
+        Basis::Wet => "wet basis",
+        Basis::Dry => "dry basis",
+    }
+}
+
+/// The caution shown when a push changes the basis the line reports on:
+/// the same product then reads another number (at 20 % wet basis, 25 %
+/// dry), so the 4-20 mA span, the alarm limits and every receiver's scaling
+/// were set for the other one.
+pub fn basis_caution(old: Basis, new: Basis) -> String {
+    format!(
+        "CAUTION: the line now reports on a {} where it reported on a {}: the same product reads another number \
+(M_db = 100 M_wb / (100 - M_wb): 20 % wet basis is 25 % dry). The 4-20 mA span (fringe device config show), \
+the alarm limits (basis in the line or site file's [alarm]) and the scaling in the PLC or SCADA were set for the {}: \
+change them with the calibration, loops in manual.",
+        basis_words(new),
+        basis_words(old),
+        basis_words(old)
+    )
+}
+
 /// The product slots of the device and the active one.
 ///
 /// # Errors
@@ -320,11 +344,12 @@ pub fn push(
     match &old_cal {
         Some(o) => {
             shown += &format!(
-                "  old: {} {:?} id {old}, moisture {:.2}..{:.2} %, temperature {:.1}..{:.1} C\n",
+                "  old: {} {:?} id {old}, moisture {:.2}..{:.2} % {}, temperature {:.1}..{:.1} C\n",
                 o.name,
                 o.model,
                 o.moisture_pct.min,
                 o.moisture_pct.max,
+                basis_words(o.basis),
                 o.temperature_c.min,
                 o.temperature_c.max
             )
@@ -332,12 +357,31 @@ pub fn push(
         None => shown += "  old: (empty)\n",
     }
     shown += &format!(
-        "  new: {} {:?} id {new}, moisture {:.2}..{:.2} %, temperature {:.1}..{:.1} C, SEC {:.3} %, SEP {:.3} % (n {})",
-        wire.name, wire.model, wire.moisture_pct.min, wire.moisture_pct.max, wire.temperature_c.min, wire.temperature_c.max,
+        "  new: {} {:?} id {new}, moisture {:.2}..{:.2} % {}, temperature {:.1}..{:.1} C, SEC {:.3} %, SEP {:.3} % (n {})",
+        wire.name, wire.model, wire.moisture_pct.min, wire.moisture_pct.max, basis_words(wire.basis),
+        wire.temperature_c.min, wire.temperature_c.max,
         wire.sec_pct, file.statistics.sep, file.statistics.n
     );
     guide.show(&shown);
     guide.caution(LINE_CAUTION);
+    // The calibration the line runs on after this push: the old one in the
+    // slot if it is the active one, else the active slot's if this one is
+    // not activated.
+    let replaced = if active == Some(slot) || p.activate {
+        match active {
+            Some(a) if a == slot => old_cal.clone(),
+            Some(a) => match link.request(Request::ReadProductCal { slot: a })? {
+                Response::ProductCal { cal, .. } => cal,
+                _ => None,
+            },
+            None => None,
+        }
+    } else {
+        None
+    };
+    if let Some(r) = replaced.filter(|r| r.basis != wire.basis) {
+        guide.caution(&basis_caution(r.basis, wire.basis));
+    }
     if !p.yes && !guide.confirm("write this calibration?")? {
         return Err(ProductError::NotConfirmed { what: "written" });
     }
