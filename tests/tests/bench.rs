@@ -674,6 +674,30 @@ fn a_push_that_changes_the_basis_is_pointed_out() {
         "{}",
         o.stderr
     );
+    // A line file's alarm band written on a wet basis marks the same
+    // product states on the dry basis the device now reports on: 12 and
+    // 15.5 % wet basis are 13.64 and 18.34 % dry (M_db = 100 M_wb /
+    // (100 - M_wb)), and the monitor says so before it streams.
+    let line = sim.path("line2.toml");
+    std::fs::write(
+        &line,
+        "[alarm]\nmoisture_low_pct = 12.0\nmoisture_high_pct = 15.5\n",
+    )
+    .unwrap();
+    let o = run(
+        sim.monitor(&sim.path("line2.db"), &["--count", "30", "--json"])
+            .env("FRINGE_CONFIG", &line),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        o.stderr
+            .contains("moisture band 12.00..15.50 % taken as 13.64..18.34 %"),
+        "{}",
+        o.stderr
+    );
+    // (The simulator has no cell calibration here, so its readings carry
+    // no moisture; the band's use is unit-tested in fringe-quality.)
 }
 
 fn push_with_slots(sim: &Sim, cal: &Path, activate: &str) -> (Outcome, Outcome, Outcome) {

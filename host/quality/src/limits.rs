@@ -115,6 +115,29 @@ impl AlarmLimits {
         Ok(())
     }
 
+    /// These limits for readings on `basis`: the moisture band as written
+    /// when the bases agree, else converted (wet to dry M_db = 100 M_wb /
+    /// (100 - M_wb), dry to wet M_wb = 100 M_db / (100 + M_db)), so that a
+    /// band written for one basis marks the same product states on the
+    /// other; the uncertainty limit as written. `None` when nothing changed.
+    pub fn on_basis(&self, basis: LimitBasis) -> Option<AlarmLimits> {
+        if basis == self.basis
+            || (self.moisture_low_pct.is_none() && self.moisture_high_pct.is_none())
+        {
+            return None;
+        }
+        let convert = |m: f32| match basis {
+            LimitBasis::Dry => 100.0 * m / (100.0 - m),
+            LimitBasis::Wet => 100.0 * m / (100.0 + m),
+        };
+        Some(AlarmLimits {
+            moisture_low_pct: self.moisture_low_pct.map(convert),
+            moisture_high_pct: self.moisture_high_pct.map(convert),
+            uncertainty_max_pct: self.uncertainty_max_pct,
+            basis,
+        })
+    }
+
     /// What a broken limit means, for a person: `moisture 16.20 % above
     /// the high limit 15.50 %`.
     pub fn describe(&self, word: &str, moisture_pct: Option<f32>, uncertainty_pct: f32) -> String {
@@ -208,5 +231,29 @@ mod tests {
             toml::from_str("basis = \"dry\"\nmoisture_high_pct = 140.0\n").unwrap();
         assert_eq!(parsed.basis, LimitBasis::Dry);
         assert!(toml::from_str::<AlarmLimits>("basis = \"wet basis\"\n").is_err());
+        // A wet-basis band for dry-basis readings, and back: 20 % wet basis
+        // is 25 % dry (water 20 of 100 g, dry matter 80 g).
+        let wet = AlarmLimits {
+            moisture_low_pct: Some(20.0),
+            moisture_high_pct: Some(50.0),
+            uncertainty_max_pct: Some(1.0),
+            basis: LimitBasis::Wet,
+        };
+        let dry = wet.on_basis(LimitBasis::Dry).unwrap();
+        assert_eq!(
+            (
+                dry.moisture_low_pct,
+                dry.moisture_high_pct,
+                dry.uncertainty_max_pct,
+                dry.basis
+            ),
+            (Some(25.0), Some(100.0), Some(1.0), LimitBasis::Dry)
+        );
+        let back = dry.on_basis(LimitBasis::Wet).unwrap();
+        assert_eq!(
+            (back.moisture_low_pct, back.moisture_high_pct),
+            (Some(20.0), Some(50.0))
+        );
+        assert_eq!(wet.on_basis(LimitBasis::Wet), None);
     }
 }

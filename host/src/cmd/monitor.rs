@@ -329,8 +329,55 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
     // created or changed before the device has answered).
     let db = super::db_path(args.db.as_deref(), cfg)?;
     let key = super::optional_key(args.key_file.as_deref(), cfg)?;
-    let link = super::connect(&args.port, cfg)?;
-    super::with_db(&db, |store| run(args, cfg, stop, link, key, store, &db))
+    let mut link = super::connect(&args.port, cfg)?;
+    // The alarm band on the basis the device reports on (the active
+    // calibration's); unknown (no calibration, an older device), as written.
+    let mut cfg = cfg.clone();
+    if let Some(basis) = active_basis(&mut link) {
+        if let Some(converted) = cfg.alarm.on_basis(basis) {
+            if !args.quiet {
+                eprintln!(
+                    "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; uncertainty limit as written)",
+                    limit_basis_word(cfg.alarm.basis),
+                    limit_basis_word(basis),
+                    band(&cfg.alarm),
+                    band(&converted)
+                );
+            }
+            cfg.alarm = converted;
+        }
+    }
+    super::with_db(&db, |store| run(args, &cfg, stop, link, key, store, &db))
+}
+
+/// The basis of the device's active product calibration, if it has one and
+/// says.
+fn active_basis(link: &mut fringe_link::Link) -> Option<fringe_quality::limits::LimitBasis> {
+    use fringe_protocol::{Basis, Request, Response};
+    let (_, active) = fringe_device::product::list_slots(link).ok()?;
+    match link
+        .request(Request::ReadProductCal { slot: active? })
+        .ok()?
+    {
+        Response::ProductCal { cal: Some(c), .. } => Some(match c.basis {
+            Basis::Wet => fringe_quality::limits::LimitBasis::Wet,
+            Basis::Dry => fringe_quality::limits::LimitBasis::Dry,
+        }),
+        _ => None,
+    }
+}
+
+fn limit_basis_word(b: fringe_quality::limits::LimitBasis) -> &'static str {
+    match b {
+        fringe_quality::limits::LimitBasis::Wet => "wet",
+        fringe_quality::limits::LimitBasis::Dry => "dry",
+    }
+}
+
+/// `12.00..15.50` (`--` for a side without a limit).
+fn band(a: &AlarmLimits) -> String {
+    let f = |v: Option<f32>| v.map_or("--".to_string(), |m| format!("{m:.2}"));
+    format!("{}..{}", f(a.moisture_low_pct), f(a.moisture_high_pct))
 }
 
 fn run(
