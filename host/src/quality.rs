@@ -65,15 +65,32 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     store.check_on_open()?;
     let g = grab.record(store.get_mut(), a.serial.as_deref())?;
     let inline = g.matched.and_then(|(r, _, _)| r.moisture_pct);
+    // The lab value on the basis the matched reading was made on (its
+    // product calibration's record), so that lab - inline compares like
+    // with like (as `fringe drift` does); as entered when unknown.
+    let entered = fringe_quality::samples::basis_named(&a.basis);
+    let reading_basis = match g.matched {
+        Some((r, _, _)) => fringe_quality::analysis::basis_of_calibration(
+            store.get_mut(),
+            &g.serial,
+            r.product_cal,
+        )?,
+        None => None,
+    };
+    let lab_on_reading = reading_basis.map_or(a.moisture, |b| {
+        fringe_calibration::moisture::convert(a.moisture, entered, b)
+    });
+    let converted = reading_basis.filter(|b| *b != entered);
     if a.json {
         crate::out::json(&json!({
             "sample_id": g.sample_id, "serial": g.serial, "time_utc": fmt_time(a.time), "lab_moisture_pct": a.moisture,
             "matched_reading": g.matched.map(|(r, _, _)| json!({"boot": r.seq.boot, "counter": r.seq.counter})),
             "inline_moisture_pct": inline, "residual_pct": inline.map(|i| {
                 // To 0.001 %: the difference of a lab value and an f32 reading.
-                let r = a.moisture - f64::from(i);
+                let r = lab_on_reading - f64::from(i);
                 (r * 1000.0).round() / 1000.0
             }),
+            "lab_moisture_pct_on_reading_basis": converted.map(|_| (lab_on_reading * 1000.0).round() / 1000.0),
             "position": g.recorded.position, "duplicate": g.recorded.duplicate,
         }))?;
         return Ok(());
@@ -88,7 +105,7 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     );
     match (g.matched, inline) {
         (Some((r, t, rebased)), Some(i)) => crate::outln!(
-            "  matched reading {} at {}{}: inline {:.2} %, lab - inline {:+.2} %",
+            "  matched reading {} at {}{}: inline {:.2} %, lab - inline {:+.2} %{}",
             r.seq,
             fmt_person(t),
             if rebased {
@@ -97,7 +114,19 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 ""
             },
             i,
-            a.moisture - f64::from(i)
+            lab_on_reading - f64::from(i),
+            match converted {
+                Some(b) => format!(
+                    " (the lab value on the reading's {} basis: {:.2} %)",
+                    if b == fringe_calibration::moisture::Basis::Dry {
+                        "dry"
+                    } else {
+                        "wet"
+                    },
+                    lab_on_reading
+                ),
+                None => String::new(),
+            }
         ),
         _ => crate::outln!(
             "  no inline reading within {} s of {}: stored unmatched",

@@ -236,6 +236,47 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
         let decimals = text.split_once('.').map_or(0, |(_, d)| d.len());
         assert!(decimals <= 4, "{k}: {text}");
     }
+    // The same lab result entered on a dry basis (14.6 % wet basis is
+    // 17.096 % dry: 14.6 / 85.4): it is compared on the wet basis of the
+    // reading's calibration, so lab - inline is the same.
+    let dry = c.check(
+        "lab add",
+        &run(
+            &mut fringe(&[
+                "lab",
+                "add",
+                "--db",
+                s(&db),
+                "--time",
+                "2026-12-01T06:30Z",
+                "--moisture",
+                "17.096",
+                "--basis",
+                "dry",
+                "--sample-id",
+                "LAB-DRY-0630",
+                "--method",
+                "oven 130 C 2 h",
+                "--operator",
+                "T. Json (test)",
+                "--json",
+            ]),
+            LIMIT,
+        ),
+    );
+    let on_wet = dry[0]["lab_moisture_pct_on_reading_basis"]
+        .as_f64()
+        .unwrap_or(f64::NAN);
+    let (r_wet, r_dry) = (
+        lab[0]["residual_pct"].as_f64().unwrap_or(f64::NAN),
+        dry[0]["residual_pct"].as_f64().unwrap_or(f64::NAN),
+    );
+    assert!(
+        (on_wet - 14.6).abs() < 0.001 && (r_dry - r_wet).abs() < 0.002,
+        "{} / {}",
+        lab[0],
+        dry[0]
+    );
 
     // The simulator itself, for a second.
     let spec = ScenarioSpec::clean("HGM-L2-0601", seed(61));

@@ -15,7 +15,7 @@
 //! one-sided CUSUMs from the range edges.
 
 use fringe_calibration::moisture::{convert, Basis};
-use fringe_protocol::{Flags, Reading, Seq};
+use fringe_protocol::{CalId, Flags, Reading, Seq};
 use serde::{Deserialize, Serialize};
 
 use fringe_store::{CalKind, RecordRead, StoreError};
@@ -165,22 +165,54 @@ pub fn load(
     Ok(data)
 }
 
-/// The moisture basis of the product calibration in force at `time_ms`
-/// (the latest product record made by then, else the first one), from its
-/// record; `None` without a product record that says.
+/// The moisture basis of the product calibration a reading was made with:
+/// the product record whose calibration id is the reading's `product_cal`
+/// when there is one, else the one in force at `time_ms` (the latest
+/// product record made by then, else the first one), from its record;
+/// `None` without a product record that says.
 fn basis_in_force(
     cals: &[(u64, i64, CalKind, CalRecordBody, Option<String>)],
+    product_cal: Option<CalId>,
     time_ms: i64,
 ) -> Option<Basis> {
     let products = || cals.iter().filter(|c| c.2 == CalKind::Product);
-    let rec = products()
-        .rfind(|c| c.1 <= time_ms)
+    let by_id = product_cal.and_then(|id| {
+        let hex = id.to_string();
+        products().rfind(|c| c.3.new_id == hex)
+    });
+    let rec = by_id
+        .or_else(|| products().rfind(|c| c.1 <= time_ms))
         .or_else(|| products().next())?;
-    match rec.3.calibration.get("basis")?.as_str()? {
+    record_basis(&rec.3)
+}
+
+/// The basis a product calibration record's calibration names.
+fn record_basis(body: &CalRecordBody) -> Option<Basis> {
+    match body.calibration.get("basis")?.as_str()? {
         "Dry" => Some(Basis::Dry),
         "Wet" => Some(Basis::Wet),
         _ => None,
     }
+}
+
+/// The moisture basis of product calibration `id` of device `serial`, from
+/// its record in `store` (`None`: no such record, or it does not say).
+///
+/// # Errors
+/// A store failure.
+pub fn basis_of_calibration(
+    store: &(impl RecordRead + ?Sized),
+    serial: &str,
+    id: CalId,
+) -> Result<Option<Basis>, StoreError> {
+    let hex = id.to_string();
+    Ok(store
+        .calibrations(serial)?
+        .into_iter()
+        .filter(|c| c.cal.kind == CalKind::Product)
+        .filter_map(|c| serde_json::from_value::<CalRecordBody>(c.cal.body.clone()).ok())
+        .rfind(|b| b.new_id == hex)
+        .and_then(|b| record_basis(&b)))
 }
 
 impl LineData {
@@ -233,15 +265,15 @@ impl LineData {
             .lab_samples(&self.serial)?
             .into_iter()
             .map(|l| {
-                let inline_pct = l.sample.reading.and_then(|seq| {
+                let matched = l.sample.reading.and_then(|seq| {
                     rows.binary_search_by_key(&seq, |r| r.reading.seq)
                         .ok()
                         .and_then(|i| rows.get(i))
-                        .and_then(|r| r.reading.moisture_pct)
-                        .map(f64::from)
                 });
+                let inline_pct = matched.and_then(|r| r.reading.moisture_pct).map(f64::from);
                 let entered = crate::samples::basis_named(&l.sample.basis);
-                let lab_pct = match basis_in_force(cals, l.sample.taken_unix_ms) {
+                let made_with = matched.map(|r| r.reading.product_cal);
+                let lab_pct = match basis_in_force(cals, made_with, l.sample.taken_unix_ms) {
                     Some(b) => convert(l.sample.lab_moisture_pct, entered, b),
                     None => l.sample.lab_moisture_pct,
                 };
