@@ -13,7 +13,7 @@
 use std::collections::BTreeMap;
 use std::path::Path;
 
-use fringe_host::store::{NewLabSample, Source, Store};
+use fringe_host::store::{CalKind, NewCalibration, NewLabSample, Source, Store};
 use fringe_protocol::{CalId, ChannelValue, Event, EventKind, Flags, Reading, ResetCause, Seq};
 use fringe_tests::*;
 use serde_json::Value;
@@ -133,6 +133,26 @@ fn build(db: &Path) -> BTreeMap<String, Vec<Reading>> {
         .collect();
     s.insert_readings("PX-B", &b, Source::Log)
         .expect("readings B");
+    // PX-B's product calibration (the readings' 51525354) on a dry basis,
+    // as `cal push` records it; PX-A has no record of its own.
+    s.insert_calibration(
+        "PX-B",
+        &NewCalibration {
+            kind: CalKind::Product,
+            cal_id: CalId(*b"QRST"),
+            slot: Some(0),
+            name: Some("spruce chips".into()),
+            body: serde_json::json!({
+                "calibration": {"basis": "Dry"},
+                "action": "push",
+                "old_id": "00000000",
+                "new_id": "51525354",
+            }),
+            note: None,
+            supersedes: None,
+        },
+    )
+    .expect("calibration B");
     all.insert("PX-B".to_string(), b);
     all
 }
@@ -256,6 +276,13 @@ fn every_reading_comes_out_once_with_the_values_stored() {
             "{row:?}"
         );
         assert_eq!(row["product_cal_id"], "51525354");
+        // The basis from the record of the reading's calibration, where
+        // the database has one.
+        assert_eq!(
+            row["moisture_basis"],
+            if serial == "PX-B" { "dry" } else { "" },
+            "{row:?}"
+        );
         assert_eq!(row["cell_cal_id"], "0a0b0c0d");
         assert_eq!(
             row["source"],

@@ -77,7 +77,7 @@ impl Kind {
 }
 
 /// Columns of a reading row (`time` is `time_utc` in JSON Lines).
-pub const READING_COLUMNS: [&str; 18] = [
+pub const READING_COLUMNS: [&str; 19] = [
     "serial",
     "boot",
     "counter",
@@ -86,6 +86,7 @@ pub const READING_COLUMNS: [&str; 18] = [
     "rebased",
     "moisture_pct",
     "uncertainty_pct",
+    "moisture_basis",
     "temperature_c",
     "flags",
     "eps1_re",
@@ -430,6 +431,23 @@ pub fn export(
         sum.per_device.entry(serial.clone()).or_default();
         match kind {
             Kind::Readings => {
+                // The basis of each product calibration of the device, by
+                // id, from its records: a reading's moisture is on its
+                // calibration's basis.
+                let bases: BTreeMap<String, &'static str> = store
+                    .calibrations(serial)?
+                    .into_iter()
+                    .filter(|c| c.cal.kind == fringe_store::CalKind::Product)
+                    .filter_map(|c| {
+                        let id = c.cal.body.get("new_id")?.as_str()?.to_owned();
+                        let basis = match c.cal.body.get("calibration")?.get("basis")?.as_str()? {
+                            "Dry" => "dry",
+                            "Wet" => "wet",
+                            _ => return None,
+                        };
+                        Some((id, basis))
+                    })
+                    .collect();
                 let mut failed: Option<ExportError> = None;
                 let r = store.for_each_reading(
                     serial,
@@ -457,6 +475,9 @@ pub fn export(
                             Cell::Bool(s.rebased),
                             opt_num(moisture),
                             opt_num(moisture.and(Some(r.uncertainty_pct))),
+                            bases
+                                .get(&r.product_cal.to_string())
+                                .map_or(Cell::Null, |b| Cell::Text((*b).to_owned())),
                             opt_num(Some(r.temperature_c)),
                             Cell::List(r.flags.names().collect()),
                             opt_num(Some(ch[0].eps_re)),
