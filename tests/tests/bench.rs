@@ -697,7 +697,19 @@ fn a_push_that_changes_the_basis_is_pointed_out() {
         o.stderr
     );
     // (The simulator has no cell calibration here, so its readings carry
-    // no moisture; the band's use is unit-tested in fringe-quality.)
+    // no moisture; the band's use is unit-tested in fringe-quality.) Each
+    // reading says the basis of its calibration.
+    let lines: Vec<serde_json::Value> = o
+        .stdout
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .filter(|v: &serde_json::Value| v["type"] == "reading")
+        .collect();
+    assert!(
+        lines.len() >= 10 && lines.iter().all(|v| v["moisture_basis"] == "dry"),
+        "{}",
+        o.stdout
+    );
 }
 
 fn push_with_slots(sim: &Sim, cal: &Path, activate: &str) -> (Outcome, Outcome, Outcome) {

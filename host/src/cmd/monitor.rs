@@ -96,6 +96,8 @@ impl DriftWatch {
 struct View {
     style: Style,
     alarm: AlarmLimits,
+    /// The basis of each product calibration known, by id (wet, dry).
+    bases: std::collections::BTreeMap<fringe_protocol::CalId, &'static str>,
     quiet: bool,
     /// `--json` without `--quiet`: each reading and drift alarm as a JSON line.
     json_lines: bool,
@@ -259,6 +261,7 @@ impl View {
             "time_ms": r.time_ms,
             "time_utc": clock_set.then(|| crate::timefmt::fmt_time(r.time_ms as i64)),
             "moisture_pct": valid,
+            "moisture_basis": self.bases.get(&r.product_cal),
             "uncertainty_pct": valid.and(Some(r.uncertainty_pct).filter(|u| u.is_finite())),
             "temperature_c": Some(r.temperature_c).filter(|t| t.is_finite()),
             "flags": r.flags.names().collect::<Vec<_>>(),
@@ -333,7 +336,8 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
     // The alarm band on the basis the device reports on (the active
     // calibration's); unknown (no calibration, an older device), as written.
     let mut cfg = cfg.clone();
-    if let Some(basis) = active_basis(&mut link) {
+    let active = active_calibration(&mut link);
+    if let Some((_, basis)) = active {
         if let Some(converted) = cfg.alarm.on_basis(basis) {
             if !args.quiet {
                 eprintln!(
@@ -347,24 +351,62 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
             cfg.alarm = converted;
         }
     }
-    super::with_db(&db, |store| run(args, &cfg, stop, link, key, store, &db))
+    super::with_db(&db, |store| {
+        run(args, &cfg, stop, link, key, store, &db, active)
+    })
 }
 
-/// The basis of the device's active product calibration, if it has one and
-/// says.
-fn active_basis(link: &mut fringe_link::Link) -> Option<fringe_quality::limits::LimitBasis> {
+/// The id and basis of the device's active product calibration, if it has
+/// one and says.
+fn active_calibration(
+    link: &mut fringe_link::Link,
+) -> Option<(fringe_protocol::CalId, fringe_quality::limits::LimitBasis)> {
     use fringe_protocol::{Basis, Request, Response};
     let (_, active) = fringe_device::product::list_slots(link).ok()?;
     match link
         .request(Request::ReadProductCal { slot: active? })
         .ok()?
     {
-        Response::ProductCal { cal: Some(c), .. } => Some(match c.basis {
-            Basis::Wet => fringe_quality::limits::LimitBasis::Wet,
-            Basis::Dry => fringe_quality::limits::LimitBasis::Dry,
-        }),
+        Response::ProductCal { cal: Some(c), .. } => Some((
+            c.content_id(),
+            match c.basis {
+                Basis::Wet => fringe_quality::limits::LimitBasis::Wet,
+                Basis::Dry => fringe_quality::limits::LimitBasis::Dry,
+            },
+        )),
         _ => None,
     }
+}
+
+/// The basis of each product calibration of `serial` the database has a
+/// record of, and of the device's active one, by id: a reading's moisture
+/// is on its calibration's basis.
+fn calibration_bases(
+    store: &Store,
+    serial: &str,
+    active: Option<(fringe_protocol::CalId, fringe_quality::limits::LimitBasis)>,
+) -> std::collections::BTreeMap<fringe_protocol::CalId, &'static str> {
+    let mut bases = std::collections::BTreeMap::new();
+    for c in store.calibrations(serial).unwrap_or_default() {
+        if c.cal.kind != fringe_store::CalKind::Product {
+            continue;
+        }
+        let basis = c
+            .cal
+            .body
+            .get("calibration")
+            .and_then(|b| b.get("basis"))
+            .and_then(|b| b.as_str());
+        match basis {
+            Some("Dry") => bases.insert(c.cal.cal_id, "dry"),
+            Some("Wet") => bases.insert(c.cal.cal_id, "wet"),
+            _ => None,
+        };
+    }
+    if let Some((id, b)) = active {
+        bases.insert(id, limit_basis_word(b));
+    }
+    bases
 }
 
 fn limit_basis_word(b: fringe_quality::limits::LimitBasis) -> &'static str {
@@ -380,6 +422,7 @@ fn band(a: &AlarmLimits) -> String {
     format!("{}..{}", f(a.moisture_low_pct), f(a.moisture_high_pct))
 }
 
+#[allow(clippy::too_many_arguments)]
 fn run(
     args: &MonitorArgs,
     cfg: &LineConfig,
@@ -388,6 +431,7 @@ fn run(
     key: Option<fringe_protocol::auth::Key>,
     store: &mut Store,
     db: &std::path::Path,
+    active: Option<(fringe_protocol::CalId, fringe_quality::limits::LimitBasis)>,
 ) -> anyhow::Result<()> {
     let style = Style::detect();
     let mut view = View {
@@ -400,6 +444,7 @@ fn run(
         last_draw: Instant::now() - Duration::from_secs(1),
         rate: RateMeter::default(),
         broken: None,
+        bases: calibration_bases(store, link.serial_number(), active),
     };
     let mut drift = DriftWatch {
         watch: fringe_quality::watch::DriftWatch::new(
