@@ -468,11 +468,30 @@ pub fn select(
     let old = active
         .and_then(|a| slots.iter().find(|x| x.slot == a))
         .map_or(CalId::NONE, |x| x.id);
+    // The basis of each (read before the switch, so that a change of basis
+    // is said before it is confirmed).
+    let basis_of = |link: &mut Link, slot: Option<u8>| -> Result<Option<Basis>, LinkError> {
+        let Some(slot) = slot else { return Ok(None) };
+        Ok(match link.request(Request::ReadProductCal { slot })? {
+            Response::ProductCal { cal: Some(c), .. } => Some(c.basis),
+            _ => None,
+        })
+    };
+    let old_basis = basis_of(link, active)?;
+    let new_basis = basis_of(link, Some(s.slot))?;
     guide.show(&format!(
-        "switch {serial} from {old} to {} ({} in slot {})",
-        s.id, s.name, s.slot
+        "switch {serial} from {old} to {} ({} in slot {}{})",
+        s.id,
+        s.name,
+        s.slot,
+        new_basis.map_or(String::new(), |b| format!(", {}", basis_words(b)))
     ));
     guide.caution(LINE_CAUTION);
+    if let (Some(o), Some(n)) = (old_basis, new_basis) {
+        if o != n {
+            guide.caution(&basis_caution(o, n));
+        }
+    }
     if !yes && !guide.confirm("switch the active product?")? {
         return Err(ProductError::NotConfirmed { what: "switched" });
     }
