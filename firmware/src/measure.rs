@@ -542,6 +542,12 @@ pub fn evaluate<F: Frontend>(
         flags |= Flags::from_bits_truncate(e.flags.bits());
         moisture = e.moisture_pct;
         u = e.uncertainty_pct;
+        // Beyond what a reading carries (a dry-basis moisture above 327.67
+        // %, sent as 327.67): out of range, whatever the calibration's
+        // range says (one fitted before its range was held there).
+        if moisture.is_some_and(|m| m.abs() > fringe_protocol::quant::MOISTURE_MAX_PCT) {
+            flags |= Flags::OUT_OF_RANGE;
+        }
     } else if product.is_none() {
         flags |= Flags::NOT_CALIBRATED;
     }

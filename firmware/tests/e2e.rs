@@ -195,3 +195,66 @@ fn modbus_registers_are_the_map_of_the_reading_sent() {
         assert_eq!(words[9], 10, "age 10 s");
     });
 }
+
+/// A dry-basis calibration written before its valid range was held to the
+/// 327.67 % a reading carries (range up to 1000 %): a moisture above that
+/// is still flagged out of range, sent as 327.67, and one below it is not.
+/// (The grain's exact calibration scaled by 25 and 20: about 375 and 300 %
+/// at 15 % of the simulator's product; made-up calibrations.)
+#[test]
+fn a_moisture_beyond_what_a_reading_carries_is_flagged() {
+    use fringe_calibration::product::{
+        no_sigma_hold, no_static_hold, ProductModel, RelaxationModel,
+    };
+    big_stack(|| {
+        for (scale, flagged) in [(25.0f32, true), (20.0, false)] {
+            let grain = SynthProduct::grain();
+            let model = ProductModel::Relaxation(RelaxationModel {
+                law: grain.law(),
+                mixture: grain.mixture,
+                t_ref_c: 25.0,
+                coeffs: [0.0, scale, 0.0, 0.0],
+                c_t: 0.0,
+                c_sigma: 0.0,
+                c_static: [0.0; 2],
+                static_hold: no_static_hold(),
+                sigma_hold: no_sigma_hold(),
+                density_input: false,
+            });
+            let (params, n) = model.to_params();
+            let mut cal = grain_calibration();
+            cal.basis = Basis::Dry;
+            cal.moisture_pct = Range {
+                min: 0.0,
+                max: 1000.0,
+            };
+            cal.params.clear();
+            for x in params.iter().take(n) {
+                cal.params.push(*x).unwrap();
+            }
+            let mut b = Bench::new(11, Scenario::default());
+            bench_calibrate(&mut b, 64);
+            assert_eq!(
+                b.ok(Request::WriteProductCal { slot: 0, cal }),
+                Response::Ack
+            );
+            assert_eq!(b.ok(Request::SelectProduct { slot: 0 }), Response::Ack);
+            b.dev
+                .frontend_mut()
+                .set_scenario(product_scenario(15.0, 20.0, 0.2));
+            let r = b.measure();
+            let m = r.moisture_pct.expect("moisture");
+            assert_eq!(
+                r.flags.contains(Flags::OUT_OF_RANGE),
+                flagged,
+                "x{scale}: {m} % {:?}",
+                r.flags
+            );
+            if flagged {
+                assert_eq!(m, 327.67, "{:?}", r.flags);
+            } else {
+                assert!((250.0..327.0).contains(&m), "{m}");
+            }
+        }
+    });
+}
