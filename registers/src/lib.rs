@@ -191,7 +191,11 @@ fn scaled(v: Option<f32>, scale: f32) -> u16 {
             let y = x * scale;
             // Round half away from zero without libm (no_std).
             let r = if y >= 0.0 { y + 0.5 } else { y - 0.5 };
-            if r > -32767.5 && r < 32767.5 {
+            // Within (-32768, 32768) the cast truncates to -32767..=32767
+            // (never the -32768 of no value): a value up to half a step
+            // past 32767 reads 32767, as 327.67 % does, the highest
+            // moisture a reading carries (327.67 * 100 in f32 is 32767.002).
+            if r > -32768.0 && r < 32768.0 {
                 (r as i16) as u16
             } else {
                 NO_VALUE_I16
@@ -456,6 +460,9 @@ mod tests {
     #[test]
     fn out_of_range_scaled_values_are_no_value() {
         assert_eq!(scaled(Some(400.0), 100.0), NO_VALUE_I16);
+        assert_eq!(scaled(Some(327.67), 100.0), 32767);
+        assert_eq!(scaled(Some(-327.67), 100.0), (-32767i16) as u16);
+        assert_eq!(scaled(Some(327.68), 100.0), NO_VALUE_I16);
         assert_eq!(scaled(Some(-327.0), 100.0), (-32700i16) as u16);
         assert_eq!(scaled(Some(f32::INFINITY), 100.0), NO_VALUE_I16);
         assert_eq!(scaled(Some(0.004), 100.0), 0);
@@ -481,7 +488,7 @@ mod tests {
             if f.is_nan() {
                 prop_assert_eq!(i, NO_VALUE_I16);
                 prop_assert_ne!(map[STATUS as usize] & STATUS_NO_VALUE, 0);
-            } else if (f * 100.0).abs() < 32767.0 {
+            } else if (f * 100.0).abs() < 32767.5 {
                 prop_assert!(((i as i16) as f32 - f * 100.0).abs() <= 0.5 + 1e-3);
             } else {
                 prop_assert_eq!(i, NO_VALUE_I16);
