@@ -107,7 +107,10 @@ impl ExitCode {
                     .is_some()
                 || matches!(
                     cause.downcast_ref::<fringe_quality::cal::FitError>(),
-                    Some(fringe_quality::cal::FitError::NoDensity { .. })
+                    Some(
+                        fringe_quality::cal::FitError::NoDensity { .. }
+                            | fringe_quality::cal::FitError::BeyondReading { .. }
+                    )
                 )
             {
                 return ExitCode::BadFile;

@@ -261,6 +261,24 @@ fn a_dry_basis_range_ends_where_a_reading_can_carry_it() {
         }
     }
     assert!(seen >= 2, "{csv}");
+    // A product wholly above it (every value from 330 %) is refused, as a
+    // bad input file, nothing written.
+    let above: Vec<String> = rows(30, 0.0)
+        .iter()
+        .map(|r| {
+            let mut f: Vec<String> = r.split(',').map(String::from).collect();
+            f[1] = format!("{}", f[1].parse::<f64>().expect("moisture") + 320.0);
+            f.join(",")
+        })
+        .collect();
+    let (o, out) = fit(dir.path(), &above, &["--basis", "dry"]);
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(3), "{err}");
+    assert!(
+        err.contains("start at 330.00 %") && err.contains("--basis wet"),
+        "{err}"
+    );
+    assert!(!out.exists());
 }
 
 #[test]

@@ -641,9 +641,6 @@ fn a_forced_push_keeps_both_overrides_in_its_audit_record() {
     }
 }
 
-/// `cal push --force` of `cal` to the simulated device (activated or not),
-/// between two `cal list --json`: the slots before, the push's outcome,
-/// the slots after.
 /// A push that changes the basis the line reports on (a dry-basis
 /// calibration in place of the wet one in force) shows each one's basis
 /// and a caution that the span, the alarm limits and the receivers'
@@ -764,6 +761,9 @@ fn a_push_that_changes_the_basis_is_pointed_out() {
     );
 }
 
+/// `cal push --force` of `cal` to the simulated device (activated or not),
+/// between two `cal list --json`: the slots before, the push's outcome,
+/// the slots after.
 fn push_with_slots(sim: &Sim, cal: &Path, activate: &str) -> (Outcome, Outcome, Outcome) {
     let db = sim.path("bench.db");
     let key = key_file(sim);

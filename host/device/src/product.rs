@@ -196,9 +196,9 @@ pub fn basis_words(b: Basis) -> &'static str {
 pub fn basis_caution(old: Basis, new: Basis) -> String {
     format!(
         "CAUTION: the line now reports on a {} where it reported on a {}: the same product reads another number \
-(M_db = 100 M_wb / (100 - M_wb): 20 % wet basis is 25 % dry). The 4-20 mA span (fringe device config show), \
-the alarm limits (basis in the line or site file's [alarm]) and the scaling in the PLC or SCADA were set for the {}: \
-change them with the calibration, loops in manual.",
+(M_db = 100 M_wb / (100 - M_wb): 20 % wet basis is 25 % dry). The 4-20 mA span (fringe device config show) \
+and the scaling in the PLC or SCADA were set for the {}: change them with the calibration, loops in manual. \
+fringe monitor converts each reading to its alarm band's basis; a gateway's site file bands are taken as written.",
         basis_words(new),
         basis_words(old),
         basis_words(old)

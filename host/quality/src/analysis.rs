@@ -390,6 +390,38 @@ impl LineData {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A lab sample's basis is its matched reading's calibration's, found
+    /// by id, before the one in force by time: a reading made with the wet
+    /// calibration "aaaaaaaa" matched to a sample taken after a dry one
+    /// "bbbbbbbb" was pushed is on a wet basis. (Made-up records.)
+    #[test]
+    fn the_basis_is_the_reading_calibrations_before_the_one_in_force() {
+        let rec = |t: i64, id: &str, basis: &str| {
+            (
+                0u64,
+                t,
+                CalKind::Product,
+                CalRecordBody {
+                    calibration: serde_json::json!({ "basis": basis }),
+                    new_id: id.into(),
+                    action: "push".into(),
+                    ..CalRecordBody::default()
+                },
+                None,
+            )
+        };
+        let cals = [rec(100, "aaaaaaaa", "Wet"), rec(200, "bbbbbbbb", "Dry")];
+        let wet_cal = CalId([0xaa; 4]);
+        assert_eq!(wet_cal.to_string(), "aaaaaaaa");
+        assert_eq!(basis_in_force(&cals, Some(wet_cal), 300), Some(Basis::Wet));
+        assert_eq!(basis_in_force(&cals, None, 300), Some(Basis::Dry));
+        // An id without a record: the one in force by time.
+        assert_eq!(
+            basis_in_force(&cals, Some(CalId([0xcc; 4])), 150),
+            Some(Basis::Wet)
+        );
+    }
     use fringe_protocol::RefCheck;
     use fringe_sqlite::Store;
     use fringe_store::{DeviceInfo, NewLabSample, Source};

@@ -58,6 +58,14 @@ pub enum FitError {
         #[source]
         source: fringe_calibration::fit::product::ProductFitError,
     },
+    /// Every lab value lies above the moisture a device reading carries.
+    #[error("{}: the lab values on a dry basis start at {lowest:.2} %, above the {} % a device reading carries, so every reading would be out of range: fit on a wet basis (M_wb = 100 M_db / (100 + M_db)) with --basis wet", file.display(), fringe_protocol::quant::MOISTURE_MAX_PCT)]
+    BeyondReading {
+        /// The sample table.
+        file: PathBuf,
+        /// The lowest lab value, %.
+        lowest: f64,
+    },
     /// The product name does not fit the device.
     #[error("product name `{name}` must be 1 to {max} bytes (use --name)")]
     BadName {
@@ -438,9 +446,6 @@ fn model_words(k: fringe_calibration::product::ModelKind) -> &'static str {
     }
 }
 
-/// The highest moisture a calibration's range may reach on `basis`, %:
-/// 100 on a wet basis, [`fringe_calibration::moisture::MAX_DRY_BASIS_PCT`]
-/// on a dry one.
 /// The highest moisture a calibration's valid range reaches on `basis`: 100 %
 /// wet; on a dry basis the highest a reading carries
 /// ([`fringe_protocol::quant::MOISTURE_MAX_PCT`], 327.67 %), so that the
@@ -664,6 +669,16 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
         ));
     }
     let carried = fringe_protocol::quant::MOISTURE_MAX_PCT;
+    let lowest = samples
+        .iter()
+        .map(|s| s.moisture_pct)
+        .fold(f64::INFINITY, f64::min);
+    if basis == Basis::Dry && lowest >= f64::from(carried) {
+        return Err(FitError::BeyondReading {
+            file: args.samples.clone(),
+            lowest,
+        });
+    }
     if basis == Basis::Dry && chosen.calibration.moisture_pct.max > carried {
         chosen.notes.push(format!(
             "the valid moisture range ends at {carried} %, the highest moisture the device's readings carry: readings above it are flagged out of range (and sent as {carried} %); on a wet basis the same product stays below 100 %"

@@ -86,7 +86,6 @@ pub const READING_COLUMNS: [&str; 19] = [
     "rebased",
     "moisture_pct",
     "uncertainty_pct",
-    "moisture_basis",
     "temperature_c",
     "flags",
     "eps1_re",
@@ -97,6 +96,9 @@ pub const READING_COLUMNS: [&str; 19] = [
     "cell_cal_id",
     "source",
     "position",
+    // Added after the others (2026-12-04), last so that a reader taking
+    // the columns by position finds the earlier ones where they were.
+    "moisture_basis",
 ];
 
 /// Columns of an event row (`time` is `time_utc` in JSON Lines).
@@ -475,9 +477,6 @@ pub fn export(
                             Cell::Bool(s.rebased),
                             opt_num(moisture),
                             opt_num(moisture.and(Some(r.uncertainty_pct))),
-                            bases
-                                .get(&r.product_cal.to_string())
-                                .map_or(Cell::Null, |b| Cell::Text((*b).to_owned())),
                             opt_num(Some(r.temperature_c)),
                             Cell::List(r.flags.names().collect()),
                             opt_num(Some(ch[0].eps_re)),
@@ -494,6 +493,9 @@ pub fn export(
                                 .to_owned(),
                             ),
                             Cell::Int(s.position as i64),
+                            bases
+                                .get(&r.product_cal.to_string())
+                                .map_or(Cell::Null, |b| Cell::Text((*b).to_owned())),
                         ];
                         if let Err(e) = rows.write(&cells) {
                             failed = Some(e);

@@ -138,6 +138,31 @@ impl AlarmLimits {
         })
     }
 
+    /// Which limits a reading on `reading_basis` breaks: where that is not
+    /// the limits' basis, its moisture and uncertainty are converted to it
+    /// first (wet to dry M_db = 100 M_wb / (100 - M_wb), the uncertainty
+    /// times dM_db/dM_wb = 10^4 / (100 - M_wb)^2; dry to wet M_wb = 100 M_db
+    /// / (100 + M_db), times 10^4 / (100 + M_db)^2), so that the band marks
+    /// the same product states on either basis; as they are when the bases
+    /// agree or the reading's is unknown.
+    pub fn check_reading(
+        &self,
+        moisture_pct: Option<f32>,
+        uncertainty_pct: f32,
+        reading_basis: Option<LimitBasis>,
+    ) -> Vec<&'static str> {
+        match (reading_basis, moisture_pct) {
+            (Some(b), Some(m)) if b != self.basis => {
+                let (m2, slope) = match self.basis {
+                    LimitBasis::Dry => (100.0 * m / (100.0 - m), 1e4 / ((100.0 - m) * (100.0 - m))),
+                    LimitBasis::Wet => (100.0 * m / (100.0 + m), 1e4 / ((100.0 + m) * (100.0 + m))),
+                };
+                self.check(Some(m2), uncertainty_pct * slope)
+            }
+            _ => self.check(moisture_pct, uncertainty_pct),
+        }
+    }
+
     /// What a broken limit means, for a person: `moisture 16.20 % above
     /// the high limit 15.50 %`.
     pub fn describe(&self, word: &str, moisture_pct: Option<f32>, uncertainty_pct: f32) -> String {
@@ -167,6 +192,16 @@ impl AlarmLimits {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A dry-basis band of 20..24.5 %.
+    fn dry_band() -> AlarmLimits {
+        AlarmLimits {
+            moisture_low_pct: Some(20.0),
+            moisture_high_pct: Some(24.5),
+            uncertainty_max_pct: None,
+            basis: LimitBasis::Dry,
+        }
+    }
 
     #[test]
     fn limits_mark_readings_outside_and_refuse_a_swapped_band() {
@@ -255,5 +290,28 @@ mod tests {
             (Some(20.0), Some(50.0))
         );
         assert_eq!(wet.on_basis(LimitBasis::Wet), None);
+        // Readings on the other basis are converted to the band's, the
+        // uncertainty with them: 22 % dry basis is 18.03 % wet (above the
+        // band 12..15.5: HIGH); 16 % dry is 13.79 % wet (inside); an
+        // uncertainty of 1.3 % dry at 16 % is 1.3 x 10^4 / 116^2 = 0.966 %
+        // wet (within 1.0), 1.4 % dry is 1.040 % (UNCERTAIN).
+        let dry = Some(LimitBasis::Dry);
+        assert_eq!(a.check_reading(Some(22.0), 0.5, dry), ["HIGH"]);
+        assert!(a.check_reading(Some(16.0), 1.3, dry).is_empty());
+        assert_eq!(a.check_reading(Some(16.0), 1.4, dry), ["UNCERTAIN"]);
+        // Unconverted, 16 % dry would be HIGH on the wet band.
+        assert_eq!(a.check(Some(16.0), 1.3), ["HIGH", "UNCERTAIN"]);
+        assert_eq!(
+            a.check_reading(Some(16.0), 1.3, None),
+            ["HIGH", "UNCERTAIN"]
+        );
+        // A wet reading against a dry band: 20 % wet is 25 % dry.
+        assert_eq!(
+            dry_band().check_reading(Some(20.0), 0.1, Some(LimitBasis::Wet)),
+            ["HIGH"]
+        );
+        assert!(dry_band()
+            .check_reading(Some(19.0), 0.1, Some(LimitBasis::Wet))
+            .is_empty());
     }
 }

@@ -20,6 +20,7 @@ use crate::cli::MonitorArgs;
 use crate::config::{AlarmLimits, LineConfig};
 use crate::out::{self, Style};
 use crate::store::Store;
+use fringe_quality::limits::LimitBasis;
 
 /// What a monitor run did (printed at the end, `--json` for scripts).
 #[derive(Debug, Clone, Default, serde::Serialize)]
@@ -97,7 +98,7 @@ struct View {
     style: Style,
     alarm: AlarmLimits,
     /// The basis of each product calibration known, by id (wet, dry).
-    bases: std::collections::BTreeMap<fringe_protocol::CalId, &'static str>,
+    bases: std::collections::BTreeMap<fringe_protocol::CalId, LimitBasis>,
     quiet: bool,
     /// `--json` without `--quiet`: each reading and drift alarm as a JSON line.
     json_lines: bool,
@@ -221,7 +222,7 @@ impl View {
     /// without a valid value, ` alarm=HIGH,...` at the end when a limit of
     /// the line file is crossed.
     fn plain_line(&self, r: &Reading) -> String {
-        let alarms = self.alarm.check(r.moisture_pct, r.uncertainty_pct);
+        let alarms = self.alarms_of(r);
         let (m, u) = match r.moisture_pct {
             Some(m) if m.is_finite() => (
                 format!("{m:.2}%"),
@@ -248,6 +249,16 @@ impl View {
         )
     }
 
+    /// The alarm limits a reading breaks, on the limits' basis (the reading
+    /// converted to it where its calibration is on the other one).
+    fn alarms_of(&self, r: &Reading) -> Vec<&'static str> {
+        self.alarm.check_reading(
+            r.moisture_pct,
+            r.uncertainty_pct,
+            self.bases.get(&r.product_cal).copied(),
+        )
+    }
+
     /// A reading as one JSON line (docs/JSON.md, `fringe monitor --json`).
     fn reading_json(&self, r: &Reading) -> serde_json::Value {
         let clock_set = clock_set(r);
@@ -261,11 +272,11 @@ impl View {
             "time_ms": r.time_ms,
             "time_utc": clock_set.then(|| crate::timefmt::fmt_time(r.time_ms as i64)),
             "moisture_pct": valid,
-            "moisture_basis": self.bases.get(&r.product_cal),
+            "moisture_basis": self.bases.get(&r.product_cal).map(|b| limit_basis_word(*b)),
             "uncertainty_pct": valid.and(Some(r.uncertainty_pct).filter(|u| u.is_finite())),
             "temperature_c": Some(r.temperature_c).filter(|t| t.is_finite()),
             "flags": r.flags.names().collect::<Vec<_>>(),
-            "alarms": self.alarm.check(r.moisture_pct, r.uncertainty_pct),
+            "alarms": self.alarms_of(r),
         })
     }
 
@@ -277,7 +288,7 @@ impl View {
         let s = self.style;
         let body = match latest {
             Some(r) => {
-                let alarms = self.alarm.check(r.moisture_pct, r.uncertainty_pct);
+                let alarms = self.alarms_of(r);
                 let m = r
                     .moisture_pct
                     .map_or("  --.--".to_string(), |m| format!("{m:7.2}"));
@@ -333,26 +344,25 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
     let db = super::db_path(args.db.as_deref(), cfg)?;
     let key = super::optional_key(args.key_file.as_deref(), cfg)?;
     let mut link = super::connect(&args.port, cfg)?;
-    // The alarm band on the basis the device reports on (the active
-    // calibration's); unknown (no calibration, an older device), as written.
-    let mut cfg = cfg.clone();
+    // Each reading is checked against the alarm band on the band's basis,
+    // converted where its calibration is on the other one (also after a
+    // calibration selected while this runs, when the database has its
+    // record); said at start when the device's active calibration is.
     let active = active_calibration(&mut link);
     if let Some((_, basis)) = active {
         if let Some(converted) = cfg.alarm.on_basis(basis) {
-            if !args.quiet {
-                eprintln!(
-                    "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; uncertainty limit as written)",
-                    limit_basis_word(cfg.alarm.basis),
-                    limit_basis_word(basis),
-                    band(&cfg.alarm),
-                    band(&converted)
-                );
-            }
-            cfg.alarm = converted;
+            eprintln!(
+                "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; each reading is converted to the {} basis to be checked, its uncertainty with it)",
+                limit_basis_word(cfg.alarm.basis),
+                limit_basis_word(basis),
+                band(&cfg.alarm),
+                band(&converted),
+                limit_basis_word(cfg.alarm.basis),
+            );
         }
     }
     super::with_db(&db, |store| {
-        run(args, &cfg, stop, link, key, store, &db, active)
+        run(args, cfg, stop, link, key, store, &db, active)
     })
 }
 
@@ -360,7 +370,7 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
 /// one and says.
 fn active_calibration(
     link: &mut fringe_link::Link,
-) -> Option<(fringe_protocol::CalId, fringe_quality::limits::LimitBasis)> {
+) -> Option<(fringe_protocol::CalId, LimitBasis)> {
     use fringe_protocol::{Basis, Request, Response};
     let (_, active) = fringe_device::product::list_slots(link).ok()?;
     match link
@@ -370,8 +380,8 @@ fn active_calibration(
         Response::ProductCal { cal: Some(c), .. } => Some((
             c.content_id(),
             match c.basis {
-                Basis::Wet => fringe_quality::limits::LimitBasis::Wet,
-                Basis::Dry => fringe_quality::limits::LimitBasis::Dry,
+                Basis::Wet => LimitBasis::Wet,
+                Basis::Dry => LimitBasis::Dry,
             },
         )),
         _ => None,
@@ -384,9 +394,10 @@ fn active_calibration(
 fn calibration_bases(
     store: &Store,
     serial: &str,
-    active: Option<(fringe_protocol::CalId, fringe_quality::limits::LimitBasis)>,
-) -> std::collections::BTreeMap<fringe_protocol::CalId, &'static str> {
-    let mut bases = std::collections::BTreeMap::new();
+    active: Option<(fringe_protocol::CalId, LimitBasis)>,
+) -> std::collections::BTreeMap<fringe_protocol::CalId, LimitBasis> {
+    let mut bases: std::collections::BTreeMap<fringe_protocol::CalId, LimitBasis> =
+        std::collections::BTreeMap::new();
     for c in store.calibrations(serial).unwrap_or_default() {
         if c.cal.kind != fringe_store::CalKind::Product {
             continue;
@@ -398,21 +409,21 @@ fn calibration_bases(
             .and_then(|b| b.get("basis"))
             .and_then(|b| b.as_str());
         match basis {
-            Some("Dry") => bases.insert(c.cal.cal_id, "dry"),
-            Some("Wet") => bases.insert(c.cal.cal_id, "wet"),
+            Some("Dry") => bases.insert(c.cal.cal_id, LimitBasis::Dry),
+            Some("Wet") => bases.insert(c.cal.cal_id, LimitBasis::Wet),
             _ => None,
         };
     }
     if let Some((id, b)) = active {
-        bases.insert(id, limit_basis_word(b));
+        bases.insert(id, b);
     }
     bases
 }
 
-fn limit_basis_word(b: fringe_quality::limits::LimitBasis) -> &'static str {
+fn limit_basis_word(b: LimitBasis) -> &'static str {
     match b {
-        fringe_quality::limits::LimitBasis::Wet => "wet",
-        fringe_quality::limits::LimitBasis::Dry => "dry",
+        LimitBasis::Wet => "wet",
+        LimitBasis::Dry => "dry",
     }
 }
 
@@ -431,7 +442,7 @@ fn run(
     key: Option<fringe_protocol::auth::Key>,
     store: &mut Store,
     db: &std::path::Path,
-    active: Option<(fringe_protocol::CalId, fringe_quality::limits::LimitBasis)>,
+    active: Option<(fringe_protocol::CalId, LimitBasis)>,
 ) -> anyhow::Result<()> {
     let style = Style::detect();
     let mut view = View {
