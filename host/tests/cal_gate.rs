@@ -50,6 +50,32 @@ fn fit(dir: &Path, rows: &[String], extra: &[&str]) -> (Output, PathBuf) {
     (o, out)
 }
 
+/// The made-up rows of [`rows`] with `add` % added to each lab moisture.
+fn rows_plus(n: usize, add: f64) -> Vec<String> {
+    rows(n, 0.0)
+        .iter()
+        .map(|r| {
+            let mut f: Vec<String> = r.split(',').map(String::from).collect();
+            f[1] = format!("{}", f[1].parse::<f64>().expect("moisture") + add);
+            f.join(",")
+        })
+        .collect()
+}
+
+/// `cal predict` of calibration `cal` on the table `fit` wrote in `dir`:
+/// its CSV output, after checking it succeeded.
+fn predict_csv(dir: &Path, cal: &Path) -> String {
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "predict", "--cal"])
+        .arg(cal)
+        .arg("--input")
+        .arg(dir.join("lab.csv"))
+        .output()
+        .expect("run fringe");
+    assert!(o.status.success(), "{}", stderr(&o));
+    String::from_utf8_lossy(&o.stdout).into_owned()
+}
+
 /// `cal push` of `cal` without `--force` to a port that does not exist
 /// (the gate refuses before the port, key or database are touched): the
 /// outcome and the database path it was given.
@@ -164,14 +190,7 @@ fn a_range_forced_at_fit_needs_force_again_at_push() {
 fn a_dry_basis_table_above_100_percent_fits_with_basis_dry() {
     let dir = tempfile::tempdir().expect("dir");
     // The made-up rows with 100 % added to the moisture: 110-124.5 %.
-    let dry: Vec<String> = rows(30, 0.0)
-        .iter()
-        .map(|r| {
-            let mut f: Vec<String> = r.split(',').map(String::from).collect();
-            f[1] = format!("{}", f[1].parse::<f64>().expect("moisture") + 100.0);
-            f.join(",")
-        })
-        .collect();
+    let dry: Vec<String> = rows_plus(30, 100.0);
     let (o, out) = fit(dir.path(), &dry, &[]);
     let err = stderr(&o);
     assert_eq!(o.status.code(), Some(3), "{err}");
@@ -191,15 +210,7 @@ fn a_dry_basis_table_above_100_percent_fits_with_basis_dry() {
     );
     let text = std::fs::read_to_string(&out).expect("written");
     assert!(text.contains("basis = \"dry\""), "{text}");
-    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
-        .args(["cal", "predict", "--cal"])
-        .arg(&out)
-        .arg("--input")
-        .arg(dir.path().join("lab.csv"))
-        .output()
-        .expect("run fringe");
-    assert!(o.status.success(), "{}", stderr(&o));
-    let csv = String::from_utf8_lossy(&o.stdout).into_owned();
+    let csv = predict_csv(dir.path(), &out);
     let predicted: Vec<f64> = csv
         .lines()
         .skip(1)
@@ -223,15 +234,8 @@ fn a_dry_basis_table_above_100_percent_fits_with_basis_dry() {
 #[test]
 fn a_dry_basis_range_ends_where_a_reading_can_carry_it() {
     let dir = tempfile::tempdir().expect("dir");
-    let wet: Vec<String> = rows(30, 0.0)
-        .iter()
-        .map(|r| {
-            let mut f: Vec<String> = r.split(',').map(String::from).collect();
-            f[1] = format!("{}", f[1].parse::<f64>().expect("moisture") + 305.0);
-            f.join(",")
-        })
-        .collect();
-    let (o, out) = fit(dir.path(), &wet, &["--basis", "dry"]);
+    let wettest: Vec<String> = rows_plus(30, 305.0);
+    let (o, out) = fit(dir.path(), &wettest, &["--basis", "dry"]);
     assert!(o.status.success(), "{}", stderr(&o));
     let text = String::from_utf8_lossy(&o.stdout);
     assert!(
@@ -239,15 +243,7 @@ fn a_dry_basis_range_ends_where_a_reading_can_carry_it() {
             && text.contains("the valid moisture range ends at 327.67 %"),
         "{text}"
     );
-    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
-        .args(["cal", "predict", "--cal"])
-        .arg(&out)
-        .arg("--input")
-        .arg(dir.path().join("lab.csv"))
-        .output()
-        .expect("run fringe");
-    assert!(o.status.success(), "{}", stderr(&o));
-    let csv = String::from_utf8_lossy(&o.stdout).into_owned();
+    let csv = predict_csv(dir.path(), &out);
     let mut seen = 0;
     for l in csv.lines().skip(1) {
         let f: Vec<&str> = l.split(',').collect();
@@ -263,14 +259,7 @@ fn a_dry_basis_range_ends_where_a_reading_can_carry_it() {
     assert!(seen >= 2, "{csv}");
     // A product wholly above it (every value from 330 %) is refused, as a
     // bad input file, nothing written.
-    let above: Vec<String> = rows(30, 0.0)
-        .iter()
-        .map(|r| {
-            let mut f: Vec<String> = r.split(',').map(String::from).collect();
-            f[1] = format!("{}", f[1].parse::<f64>().expect("moisture") + 320.0);
-            f.join(",")
-        })
-        .collect();
+    let above: Vec<String> = rows_plus(30, 320.0);
     let (o, out) = fit(dir.path(), &above, &["--basis", "dry"]);
     let err = stderr(&o);
     assert_eq!(o.status.code(), Some(3), "{err}");

@@ -672,57 +672,39 @@ fn a_push_that_changes_the_basis_is_pointed_out() {
         o.stderr
     );
     // Switching to a wet-basis calibration in another slot says the same.
-    let o = run(
-        &mut cal_write(
-            &sim,
-            &key_file(&sim),
-            &sim.path("bench.db"),
-            "push",
-            &[
-                "--cal",
-                wet_copy.to_str().unwrap(),
-                "--slot",
-                "1",
-                "--activate",
-                "false",
-                "--reason",
-                "the wet-basis one beside it",
-                "--yes",
-                "--force",
-            ],
-        ),
-        LIMIT,
+    let key = key_file(&sim);
+    let db = sim.path("bench.db");
+    let write = |what: &str, extra: &[&str]| {
+        let o = run(&mut cal_write(&sim, &key, &db, what, extra), LIMIT);
+        assert_eq!(o.code, 0, "{what}: {}", o.stderr);
+        o
+    };
+    write(
+        "push",
+        &[
+            "--cal",
+            wet_copy.to_str().unwrap(),
+            "--slot",
+            "1",
+            "--activate",
+            "false",
+            "--reason",
+            "the wet-basis one beside it",
+            "--yes",
+            "--force",
+        ],
     );
-    assert_eq!(o.code, 0, "{}", o.stderr);
-    let other = "1";
-    let o = run(
-        &mut cal_write(
-            &sim,
-            &key_file(&sim),
-            &sim.path("bench.db"),
-            "select",
-            &[other, "--reason", "back to the wet-basis product", "--yes"],
-        ),
-        LIMIT,
+    let o = write(
+        "select",
+        &["1", "--reason", "back to the wet-basis product", "--yes"],
     );
-    assert_eq!(o.code, 0, "{}", o.stderr);
     assert!(
         format!("{}{}", o.stdout, o.stderr)
             .contains("now reports on a wet basis where it reported on a dry basis"),
         "{}",
         o.stderr
     );
-    let o = run(
-        &mut cal_write(
-            &sim,
-            &key_file(&sim),
-            &sim.path("bench.db"),
-            "select",
-            &["0", "--reason", "dry again", "--yes"],
-        ),
-        LIMIT,
-    );
-    assert_eq!(o.code, 0, "{}", o.stderr);
+    write("select", &["0", "--reason", "dry again", "--yes"]);
     // A line file's alarm band written on a wet basis marks the same
     // product states on the dry basis the device now reports on: 12 and
     // 15.5 % wet basis are 13.64 and 18.34 % dry (M_db = 100 M_wb /

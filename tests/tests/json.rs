@@ -208,27 +208,27 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
             LIMIT,
         ),
     );
-    let lab = c.check(
-        "lab add",
-        &run(
-            &mut fringe(&[
-                "lab",
-                "add",
-                "--db",
-                s(&db),
-                "--time",
-                "2026-12-01T06:30Z",
-                "--moisture",
-                "14.6",
-                "--method",
-                "oven 130 C 2 h",
-                "--operator",
-                "T. Json (test)",
-                "--json",
-            ]),
-            LIMIT,
-        ),
-    );
+    // `lab add` of a result at 06:30 on the demo line, with `extra` flags.
+    let lab_add = |moisture: &str, extra: &[&str]| {
+        let mut a = vec![
+            "lab",
+            "add",
+            "--db",
+            s(&db),
+            "--time",
+            "2026-12-01T06:30Z",
+            "--moisture",
+            moisture,
+            "--method",
+            "oven 130 C 2 h",
+            "--operator",
+            "T. Json (test)",
+            "--json",
+        ];
+        a.extend_from_slice(extra);
+        run(&mut fringe(&a), LIMIT)
+    };
+    let lab = c.check("lab add", &lab_add("14.6", &[]));
     assert!(lab[0]["matched_reading"]["counter"].is_u64(), "{}", lab[0]);
     // No float noise from a device value widened to f64 (issue 16).
     for k in ["inline_moisture_pct", "residual_pct"] {
@@ -241,28 +241,7 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
     // reading's calibration, so lab - inline is the same.
     let dry = c.check(
         "lab add",
-        &run(
-            &mut fringe(&[
-                "lab",
-                "add",
-                "--db",
-                s(&db),
-                "--time",
-                "2026-12-01T06:30Z",
-                "--moisture",
-                "17.096",
-                "--basis",
-                "dry",
-                "--sample-id",
-                "LAB-DRY-0630",
-                "--method",
-                "oven 130 C 2 h",
-                "--operator",
-                "T. Json (test)",
-                "--json",
-            ]),
-            LIMIT,
-        ),
+        &lab_add("17.096", &["--basis", "dry", "--sample-id", "LAB-DRY-0630"]),
     );
     let on_wet = dry[0]["lab_moisture_pct_on_reading_basis"]
         .as_f64()
