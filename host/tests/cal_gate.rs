@@ -257,6 +257,28 @@ fn a_dry_basis_range_ends_where_a_reading_can_carry_it() {
         }
     }
     assert!(seen >= 2, "{csv}");
+    // A file written before the range was held there (its range to 400 %,
+    // made here by hand with a valid content id): `cal predict` flags the
+    // same readings, as the device now does.
+    let (mut file, mut wire) = fringe_quality::product_file::ProductFile::load(&out).expect("load");
+    wire.moisture_pct.max = 400.0;
+    file.moisture_pct[1] = 400.0;
+    file.id = wire.content_id().to_string();
+    let old = dir.path().join("old.toml");
+    file.save(&old).expect("save");
+    let csv_old = predict_csv(dir.path(), &old);
+    let flags = |csv: &str| -> Vec<bool> {
+        csv.lines()
+            .skip(1)
+            .map(|l| {
+                l.split(',')
+                    .nth(7)
+                    .unwrap_or_default()
+                    .contains("out_of_range")
+            })
+            .collect()
+    };
+    assert_eq!(flags(&csv_old), flags(&csv), "{csv_old}");
     // A product wholly above it (every value from 330 %) is refused, as a
     // bad input file, nothing written.
     let above: Vec<String> = rows_plus(30, 320.0);

@@ -364,6 +364,13 @@ pub fn push(
     );
     guide.show(&shown);
     guide.caution(LINE_CAUTION);
+    let carried = fringe_protocol::quant::MOISTURE_MAX_PCT;
+    if wire.moisture_pct.max > carried {
+        guide.caution(&format!(
+            "this calibration's valid range reaches {:.2} %, above the {carried} % a reading carries (it was fitted before its range was held there): the device flags readings above {carried} % as out of range; refit it to have its range say so",
+            wire.moisture_pct.max
+        ));
+    }
     // The calibration the line runs on after this push: the old one in the
     // slot if it is the active one, else the active slot's if this one is
     // not activated.

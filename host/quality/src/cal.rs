@@ -1173,7 +1173,17 @@ pub fn predict(
                 interval_pct,
                 leverage,
                 beyond_calibration: beyond,
-                flags: Flags::from_bits_truncate(e.flags.bits()),
+                // As the device flags it: beyond what a reading carries
+                // (a calibration fitted before its range was held there).
+                flags: Flags::from_bits_truncate(e.flags.bits())
+                    | if e
+                        .moisture_pct
+                        .is_some_and(|m| m.abs() > fringe_protocol::quant::MOISTURE_MAX_PCT)
+                    {
+                        Flags::OUT_OF_RANGE
+                    } else {
+                        Flags::empty()
+                    },
                 lab_pct: s.moisture_pct,
             })
         })
