@@ -667,10 +667,30 @@ fn a_push_that_changes_the_basis_is_pointed_out() {
     let (_, o, _) = push_with_slots(&sim, &dry, "true");
     assert_eq!(o.code, 0, "{}", o.stderr);
     assert!(
-        !format!("{}{}", o.stdout, o.stderr).contains("now reports on"),
+        !format!("{}{}", o.stdout, o.stderr).contains("now reports on")
+            && !o.stderr.contains("a reading carries"),
         "{}",
         o.stderr
     );
+    // A dry-basis file written before its range was held to what a reading
+    // carries (its range to 400 %, made here by hand with a valid content
+    // id) is pushed with a caution saying so.
+    let (mut file, mut wire) = fringe_quality::product_file::ProductFile::load(&dry).expect("load");
+    wire.moisture_pct.max = 400.0;
+    file.moisture_pct[1] = 400.0;
+    file.id = wire.content_id().to_string();
+    let old = sim.path("grain-old.toml");
+    file.save(&old).expect("save");
+    let (_, o, _) = push_with_slots(&sim, &old, "true");
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        o.stderr
+            .contains("valid range reaches 400.00 %, above the 327.67 % a reading carries"),
+        "{}",
+        o.stderr
+    );
+    let (_, o, _) = push_with_slots(&sim, &dry, "true");
+    assert_eq!(o.code, 0, "{}", o.stderr);
     // Switching to a wet-basis calibration in another slot says the same.
     let key = key_file(&sim);
     let db = sim.path("bench.db");
