@@ -183,6 +183,8 @@ fn an_adjusted_wet_basis_range_stays_at_or_below_100_pct() {
     assert_eq!(v["bias"]["significant"], true, "{v}");
     let child = std::fs::read_to_string(&adj).expect("adjusted file written");
     assert_eq!(top(&child), 100.0, "{child}");
+    // The file says its range was held there.
+    assert!(child.contains("valid range held at 100 %"), "{child}");
     ok(&Command::new(env!("CARGO_BIN_EXE_fringe"))
         .args(["cal", "predict", "--cal"])
         .arg(&adj)

@@ -1897,9 +1897,20 @@ pub fn adjust(
             tests.slope_t, tests.slope_t_crit, tests.bias, tests.n, args.alpha
         ),
     };
+    // Said where the range was held (a parent written before its range
+    // was held to what a reading carries, or a correction past the basis's
+    // top).
+    let held = if lo.max(hi) > top {
+        format!(
+            "; valid range held at {top} % (corrected {:.2} %: the most a reading carries on this basis)",
+            lo.max(hi)
+        )
+    } else {
+        String::new()
+    };
     let mut source = file.source.clone();
     source.parent_id = Some(file.id.clone());
-    source.derivation = Some(format!("{words}; pairs: {}", pairs.source));
+    source.derivation = Some(format!("{words}{held}; pairs: {}", pairs.source));
     let input_names: Vec<&str> = file.inputs.iter().map(|r| r.name.as_str()).collect();
     let mut new_file =
         ProductFile::from_wire(&new_wire, &input_names, file.statistics.clone(), source);
