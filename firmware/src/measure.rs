@@ -545,7 +545,7 @@ pub fn evaluate<F: Frontend>(
         // Beyond what a reading carries (a dry-basis moisture above 327.67
         // %, sent as 327.67): out of range, whatever the calibration's
         // range says (one fitted before its range was held there).
-        if moisture.is_some_and(|m| m.abs() > fringe_protocol::quant::MOISTURE_MAX_PCT) {
+        if moisture.is_some_and(fringe_protocol::quant::moisture_beyond_reading) {
             flags |= Flags::OUT_OF_RANGE;
         }
     } else if product.is_none() {

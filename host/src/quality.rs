@@ -70,11 +70,9 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     // with like (as `fringe drift` does); as entered when unknown.
     let entered = fringe_quality::samples::basis_named(&a.basis);
     let reading_basis = match g.matched {
-        Some((r, _, _)) => fringe_quality::analysis::basis_of_calibration(
-            store.get_mut(),
-            &g.serial,
-            r.product_cal,
-        )?,
+        Some((r, _, _)) => fringe_quality::analysis::calibration_bases(store.get_mut(), &g.serial)?
+            .get(&r.product_cal)
+            .copied(),
         None => None,
     };
     let lab_on_reading = reading_basis.map_or(a.moisture, |b| {

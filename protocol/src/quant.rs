@@ -71,6 +71,12 @@ pub const MOISTURE_PER_PCT: f32 = 100.0;
 /// moisture above it saturates here; the device's range check flags it,
 /// since a calibration's valid range ends here too).
 pub const MOISTURE_MAX_PCT: f32 = i16::MAX as f32 / MOISTURE_PER_PCT;
+/// Whether moisture `m_pct` lies beyond what a reading carries (it is sent
+/// saturated at +/-[`MOISTURE_MAX_PCT`] and flagged out of range).
+pub fn moisture_beyond_reading(m_pct: f32) -> bool {
+    m_pct.abs() > MOISTURE_MAX_PCT
+}
+
 /// Wire counts per % of uncertainty (step 0.001 %).
 pub const UNCERTAINTY_PER_PCT: f32 = 1000.0;
 

@@ -188,31 +188,42 @@ fn basis_in_force(
 
 /// The basis a product calibration record's calibration names.
 fn record_basis(body: &CalRecordBody) -> Option<Basis> {
-    match body.calibration.get("basis")?.as_str()? {
+    calibration_basis(&body.calibration)
+}
+
+/// The basis a wire calibration as JSON names.
+fn calibration_basis(calibration: &serde_json::Value) -> Option<Basis> {
+    match calibration.get("basis")?.as_str()? {
         "Dry" => Some(Basis::Dry),
         "Wet" => Some(Basis::Wet),
         _ => None,
     }
 }
 
-/// The moisture basis of product calibration `id` of device `serial`, from
-/// its record in `store` (`None`: no such record, or it does not say).
+/// The moisture basis of each product calibration of device `serial` that
+/// `store` has a record of (`cal push`, `cal select`, `cal adjust`), by the
+/// calibration's id (the record's `new_id`; the latest record of an id
+/// wins): a reading's moisture is on the basis of its `product_cal`.
 ///
 /// # Errors
 /// A store failure.
-pub fn basis_of_calibration(
+pub fn calibration_bases(
     store: &(impl RecordRead + ?Sized),
     serial: &str,
-    id: CalId,
-) -> Result<Option<Basis>, StoreError> {
-    let hex = id.to_string();
+) -> Result<std::collections::BTreeMap<CalId, Basis>, StoreError> {
     Ok(store
         .calibrations(serial)?
         .into_iter()
         .filter(|c| c.cal.kind == CalKind::Product)
-        .filter_map(|c| serde_json::from_value::<CalRecordBody>(c.cal.body.clone()).ok())
-        .rfind(|b| b.new_id == hex)
-        .and_then(|b| record_basis(&b)))
+        // Read field by field, not as a whole CalRecordBody, so that a
+        // record missing a field another version added still counts.
+        .filter_map(|c| {
+            Some((
+                crate::product_file::parse_cal_id(c.cal.body.get("new_id")?.as_str()?)?,
+                calibration_basis(c.cal.body.get("calibration")?)?,
+            ))
+        })
+        .collect())
 }
 
 impl LineData {

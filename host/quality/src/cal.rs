@@ -1178,7 +1178,7 @@ pub fn predict(
                 flags: Flags::from_bits_truncate(e.flags.bits())
                     | if e
                         .moisture_pct
-                        .is_some_and(|m| m.abs() > fringe_protocol::quant::MOISTURE_MAX_PCT)
+                        .is_some_and(fringe_protocol::quant::moisture_beyond_reading)
                     {
                         Flags::OUT_OF_RANGE
                     } else {

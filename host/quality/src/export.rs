@@ -436,20 +436,7 @@ pub fn export(
                 // The basis of each product calibration of the device, by
                 // id, from its records: a reading's moisture is on its
                 // calibration's basis.
-                let bases: BTreeMap<String, &'static str> = store
-                    .calibrations(serial)?
-                    .into_iter()
-                    .filter(|c| c.cal.kind == fringe_store::CalKind::Product)
-                    .filter_map(|c| {
-                        let id = c.cal.body.get("new_id")?.as_str()?.to_owned();
-                        let basis = match c.cal.body.get("calibration")?.get("basis")?.as_str()? {
-                            "Dry" => "dry",
-                            "Wet" => "wet",
-                            _ => return None,
-                        };
-                        Some((id, basis))
-                    })
-                    .collect();
+                let bases = crate::analysis::calibration_bases(store, serial)?;
                 let mut failed: Option<ExportError> = None;
                 let r = store.for_each_reading(
                     serial,
@@ -493,9 +480,9 @@ pub fn export(
                                 .to_owned(),
                             ),
                             Cell::Int(s.position as i64),
-                            bases
-                                .get(&r.product_cal.to_string())
-                                .map_or(Cell::Null, |b| Cell::Text((*b).to_owned())),
+                            bases.get(&r.product_cal).map_or(Cell::Null, |b| {
+                                Cell::Text(crate::limits::LimitBasis::from(*b).word().to_owned())
+                            }),
                         ];
                         if let Err(e) = rows.write(&cells) {
                             failed = Some(e);

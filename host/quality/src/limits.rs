@@ -4,6 +4,7 @@
 //! A reading outside is marked with the limit's word; the limits are the
 //! plant's own (common practice, no source).
 
+use fringe_calibration::moisture::{convert, Basis};
 use serde::{Deserialize, Serialize};
 
 /// Alarm limits (every one optional).
@@ -25,7 +26,7 @@ pub struct AlarmLimits {
     pub basis: LimitBasis,
 }
 
-/// The moisture basis of alarm limits.
+/// The moisture basis of alarm limits (and its word in files and JSON).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Deserialize, Serialize)]
 #[serde(rename_all = "lowercase")]
 pub enum LimitBasis {
@@ -34,6 +35,32 @@ pub enum LimitBasis {
     Wet,
     /// Water over dry mass: up to 327.67 % (green wood, biomass).
     Dry,
+}
+
+impl LimitBasis {
+    /// `wet` or `dry`.
+    pub fn word(self) -> &'static str {
+        match self {
+            LimitBasis::Wet => "wet",
+            LimitBasis::Dry => "dry",
+        }
+    }
+
+    fn basis(self) -> Basis {
+        match self {
+            LimitBasis::Wet => Basis::Wet,
+            LimitBasis::Dry => Basis::Dry,
+        }
+    }
+}
+
+impl From<Basis> for LimitBasis {
+    fn from(b: Basis) -> Self {
+        match b {
+            Basis::Wet => LimitBasis::Wet,
+            Basis::Dry => LimitBasis::Dry,
+        }
+    }
 }
 
 /// A limit that cannot be used: its key, its value, the rule.
@@ -126,13 +153,10 @@ impl AlarmLimits {
         {
             return None;
         }
-        let convert = |m: f32| match basis {
-            LimitBasis::Dry => 100.0 * m / (100.0 - m),
-            LimitBasis::Wet => 100.0 * m / (100.0 + m),
-        };
+        let to = |m: f32| convert(m, self.basis.basis(), basis.basis());
         Some(AlarmLimits {
-            moisture_low_pct: self.moisture_low_pct.map(convert),
-            moisture_high_pct: self.moisture_high_pct.map(convert),
+            moisture_low_pct: self.moisture_low_pct.map(to),
+            moisture_high_pct: self.moisture_high_pct.map(to),
             uncertainty_max_pct: self.uncertainty_max_pct,
             basis,
         })
@@ -153,10 +177,12 @@ impl AlarmLimits {
     ) -> Vec<&'static str> {
         match (reading_basis, moisture_pct) {
             (Some(b), Some(m)) if b != self.basis => {
-                let (m2, slope) = match self.basis {
-                    LimitBasis::Dry => (100.0 * m / (100.0 - m), 1e4 / ((100.0 - m) * (100.0 - m))),
-                    LimitBasis::Wet => (100.0 * m / (100.0 + m), 1e4 / ((100.0 + m) * (100.0 + m))),
+                // d(convert)/dm: 10^4 / (100 -+ m)^2.
+                let slope = match self.basis {
+                    LimitBasis::Dry => 1e4 / ((100.0 - m) * (100.0 - m)),
+                    LimitBasis::Wet => 1e4 / ((100.0 + m) * (100.0 + m)),
                 };
+                let m2 = convert(m, b.basis(), self.basis.basis());
                 self.check(Some(m2), uncertainty_pct * slope)
             }
             _ => self.check(moisture_pct, uncertainty_pct),

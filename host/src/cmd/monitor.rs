@@ -272,7 +272,7 @@ impl View {
             "time_ms": r.time_ms,
             "time_utc": clock_set.then(|| crate::timefmt::fmt_time(r.time_ms as i64)),
             "moisture_pct": valid,
-            "moisture_basis": self.bases.get(&r.product_cal).map(|b| limit_basis_word(*b)),
+            "moisture_basis": self.bases.get(&r.product_cal).map(|b| b.word()),
             "uncertainty_pct": valid.and(Some(r.uncertainty_pct).filter(|u| u.is_finite())),
             "temperature_c": Some(r.temperature_c).filter(|t| t.is_finite()),
             "flags": r.flags.names().collect::<Vec<_>>(),
@@ -353,11 +353,11 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
         if let Some(converted) = cfg.alarm.on_basis(basis) {
             eprintln!(
                 "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; each reading is converted to the {} basis to be checked, its uncertainty with it)",
-                limit_basis_word(cfg.alarm.basis),
-                limit_basis_word(basis),
+                cfg.alarm.basis.word(),
+                basis.word(),
                 band(&cfg.alarm),
                 band(&converted),
-                limit_basis_word(cfg.alarm.basis),
+                cfg.alarm.basis.word(),
             );
         }
     }
@@ -396,35 +396,16 @@ fn calibration_bases(
     serial: &str,
     active: Option<(fringe_protocol::CalId, LimitBasis)>,
 ) -> std::collections::BTreeMap<fringe_protocol::CalId, LimitBasis> {
-    let mut bases: std::collections::BTreeMap<fringe_protocol::CalId, LimitBasis> =
-        std::collections::BTreeMap::new();
-    for c in store.calibrations(serial).unwrap_or_default() {
-        if c.cal.kind != fringe_store::CalKind::Product {
-            continue;
-        }
-        let basis = c
-            .cal
-            .body
-            .get("calibration")
-            .and_then(|b| b.get("basis"))
-            .and_then(|b| b.as_str());
-        match basis {
-            Some("Dry") => bases.insert(c.cal.cal_id, LimitBasis::Dry),
-            Some("Wet") => bases.insert(c.cal.cal_id, LimitBasis::Wet),
-            _ => None,
-        };
-    }
+    let mut bases: std::collections::BTreeMap<_, _> =
+        fringe_quality::analysis::calibration_bases(store, serial)
+            .unwrap_or_default()
+            .into_iter()
+            .map(|(id, b)| (id, LimitBasis::from(b)))
+            .collect();
     if let Some((id, b)) = active {
         bases.insert(id, b);
     }
     bases
-}
-
-fn limit_basis_word(b: LimitBasis) -> &'static str {
-    match b {
-        LimitBasis::Wet => "wet",
-        LimitBasis::Dry => "dry",
-    }
 }
 
 /// `12.00..15.50` (`--` for a side without a limit).
