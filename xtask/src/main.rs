@@ -55,9 +55,39 @@ fn run(cmd: &mut Command) -> Result<()> {
         .status()
         .with_context(|| format!("could not start {cmd:?}"))?;
     if !status.success() {
-        bail!("{cmd:?} failed with {status}");
+        bail!("{cmd:?} failed with {status}{}", free_space_note());
     }
     Ok(())
+}
+
+/// The free space where the builds go, for a failed step's message: a
+/// linker killed by a bus error (SIGBUS) has often run out of disk while
+/// writing its output (CI saw one once, on a fuzz target's link; how much
+/// space was left was not known).
+fn free_space_note() -> String {
+    let target = root().join("target");
+    let out = Command::new("df")
+        .args(["-Pk"])
+        .arg(if target.is_dir() {
+            &target
+        } else {
+            Path::new("/")
+        })
+        .output();
+    match out {
+        Ok(o) if o.status.success() => String::from_utf8_lossy(&o.stdout)
+            .lines()
+            .nth(1)
+            .and_then(|l| l.split_whitespace().nth(3)?.parse::<u64>().ok())
+            .map_or(String::new(), |kb| {
+                format!(
+                    " (free disk space where the builds go, {}: {:.1} GB)",
+                    target.display(),
+                    kb as f64 / 1e6
+                )
+            }),
+        _ => String::new(),
+    }
 }
 
 fn cargo() -> Command {
@@ -281,6 +311,11 @@ fn optional(
 
 fn test(args: &[String]) -> Result<()> {
     let skip = skip_list(args)?;
+    // Each crate is built once per run: incremental compilation's caches
+    // would only take disk (3.4 GB of the 15 GB a whole run left in
+    // target/, measured on 2026-12-04; a CI run once ended with a linker
+    // killed by a bus error, which is what a full disk looks like).
+    std::env::set_var("CARGO_INCREMENTAL", "0");
     let mut ledger = Ledger::default();
     ensure_target()?;
     // rustfmt and clippy are part of every run (they are no extra part).
