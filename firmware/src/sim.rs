@@ -371,11 +371,24 @@ impl Frontend for SimFrontend {
 /// moisture 5-30 %, temperature 0-50 C, eps_hf 1-60, d_eps 0-500,
 /// sigma 0-1 S/m, mixing moisture 0-40 %.
 pub fn exact_calibration(product: &SynthProduct<f32>, name: &str) -> ProductCal {
+    exact_calibration_on(product, name, Basis::Wet)
+}
+
+/// [`exact_calibration`] reporting on `basis`. On a dry basis the moisture
+/// is M_db = 100 m / (100 - m) of the mixing-model moisture m to its cubic
+/// term, m + m^2/100 + m^3/10^4 (the layout's polynomial is cubic): low by
+/// the dropped m^4/10^6 + ..., 0.05 % at 14 % wet (16.28 % dry), 0.4 % at
+/// 25 % wet; valid moisture 5-42.86 % (the dry basis of 5-30 % wet).
+pub fn exact_calibration_on(product: &SynthProduct<f32>, name: &str, basis: Basis) -> ProductCal {
+    let (coeffs, top) = match basis {
+        Basis::Wet => ([0.0, 1.0, 0.0, 0.0], 30.0),
+        Basis::Dry => ([0.0, 1.0, 0.01, 1e-4], 100.0 * 30.0 / 70.0),
+    };
     let model = ProductModel::Relaxation(RelaxationModel {
         law: product.law(),
         mixture: product.mixture,
         t_ref_c: 25.0,
-        coeffs: [0.0, 1.0, 0.0, 0.0],
+        coeffs,
         c_t: 0.0,
         c_sigma: 0.0,
         c_static: [0.0; 2],
@@ -396,9 +409,9 @@ pub fn exact_calibration(product: &SynthProduct<f32>, name: &str) -> ProductCal 
     ProductCal {
         name: short_string(name),
         model: ModelKind::Relaxation,
-        basis: Basis::Wet,
+        basis,
         params: p,
-        moisture_pct: r(5.0, 30.0),
+        moisture_pct: r(5.0, top),
         temperature_c: r(0.0, 50.0),
         inputs,
         sec_pct: 0.0,

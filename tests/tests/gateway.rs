@@ -472,3 +472,86 @@ fn alarm_limits_of_the_site_file_mark_each_device() {
     // Each said once, when first broken (the readings stay outside).
     assert_eq!(err.matches("HIGH ALARM").count(), 1, "{err}");
 }
+
+/// A device whose calibration reports on a dry basis, under a site band
+/// written on a wet one: its readings are converted to the band's basis
+/// before they are checked (M_wb = 100 M_db / (100 + M_db)), the gateway
+/// says how it takes the band, and its status lines, like the others',
+/// carry the basis of their moisture. The devices read 11.0, 12.5 and 14.0
+/// % wet; the first reports 12.34 % dry (the simulator's dry-basis
+/// calibration: 11 + 11^2/100 + 11^3/10^4, within 0.02 % of 100 x 11 / 89
+/// = 12.36), which is 10.99 % wet: inside a high limit of 11.8 % wet that
+/// 12.34 taken as written would break.
+#[test]
+fn a_dry_basis_device_is_checked_against_a_wet_band_on_the_bands_basis() {
+    let (dir, site, _db) = sim_site();
+    let dev0 = dir.path().join("dev0.toml");
+    let scenario = std::fs::read_to_string(&dev0).expect("scenario");
+    std::fs::write(
+        &dev0,
+        scenario.replace(
+            "product = \"exact\"\n",
+            "product = \"exact\"\nbasis = \"dry\"\n",
+        ),
+    )
+    .expect("scenario");
+    let text = std::fs::read_to_string(&site).expect("site");
+    std::fs::write(
+        &site,
+        text.replacen(
+            "[[device]]",
+            "[alarm]\nmoisture_high_pct = 11.8\n\n[[device]]",
+            1,
+        ),
+    )
+    .expect("site");
+    let gw = Running::start(&site, dir.path(), "gw");
+    let out = dir.path().join("gw.out");
+    let latest = || -> Vec<Value> {
+        let text = std::fs::read_to_string(&out).unwrap_or_default();
+        let mut by_unit: BTreeMap<u64, Value> = BTreeMap::new();
+        for v in text
+            .lines()
+            .filter_map(|l| serde_json::from_str::<Value>(l).ok())
+            .filter(|v| v["type"] == "status" && v["moisture_pct"].is_number())
+        {
+            by_unit.insert(v["unit"].as_u64().unwrap_or(0), v);
+        }
+        by_unit.into_values().collect()
+    };
+    poll_until(
+        DEADLINE,
+        || {
+            format!(
+                "no status line with a reading for each device:\n{}",
+                gw.stderr()
+            )
+        },
+        || latest().len() == 3,
+    );
+    gw.signal("-TERM");
+    let (code, err) = gw.wait();
+    assert_eq!(code, 0, "{err}");
+    let units = latest();
+    let bases: Vec<&Value> = units.iter().map(|v| &v["moisture_basis"]).collect();
+    assert_eq!(bases, ["dry", "wet", "wet"], "{err}");
+    let m0 = units[0]["moisture_pct"].as_f64().unwrap_or(f64::NAN);
+    assert!((m0 - 12.34).abs() < 0.3, "{m0}: {err}");
+    let alarms: Vec<Value> = units.iter().map(|v| v["alarms"].clone()).collect();
+    assert_eq!(
+        alarms,
+        [
+            serde_json::json!([]),
+            serde_json::json!(["HIGH"]),
+            serde_json::json!(["HIGH"])
+        ],
+        "{err}"
+    );
+    // 11.8 % wet is 100 x 11.8 / 88.2 = 13.38 % dry.
+    assert!(
+        err.contains(
+            "alarm limits written on a wet basis, the device reports on a dry one: moisture band --..11.80 % taken as --..13.38 %"
+        ),
+        "{err}"
+    );
+}

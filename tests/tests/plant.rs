@@ -217,8 +217,10 @@ fn sparkplug_births_readings_in_order_and_nothing_lost_across_a_broker_restart()
         for n in from..=to {
             for (i, d) in devices.iter().enumerate() {
                 let m = 10.0 + i as f32 + n as f32 / 100.0;
+                // The second device's calibration reports on a dry basis.
+                let basis = if i == 1 { "dry" } else { "wet" };
                 publisher
-                    .reading(d, &reading(1, n, Some(m), Flags::empty()))
+                    .reading(d, &reading(1, n, Some(m), Flags::empty()), Some(basis))
                     .unwrap();
             }
         }
@@ -280,12 +282,16 @@ fn sparkplug_births_readings_in_order_and_nothing_lost_across_a_broker_restart()
         Some(f64::from(11.01f32))
     );
     assert_eq!(first["metrics"]["moisture_pct"]["datatype"], 9, "Float");
+    assert_eq!(first["metrics"]["moisture_basis"]["value"], "dry");
+    assert_eq!(first["metrics"]["moisture_basis"]["datatype"], 12, "String");
     // Readings buffered while the broker was down arrive marked historical.
     let late = msgs.iter().find(|m| {
         m["topic"] == "spBv1.0/plant-a/DDATA/gw-1/PLT-A-0001"
             && m["metrics"]["counter"]["value"] == 60
     });
     assert_eq!(late.unwrap()["metrics"]["counter"]["historical"], true);
+    // The basis came through the disk buffer with it.
+    assert_eq!(late.unwrap()["metrics"]["moisture_basis"]["value"], "wet");
     // Sequence numbers: NBIRTH 0, then +1 per message within a session.
     let births: Vec<&Value> = msgs
         .iter()
@@ -366,7 +372,7 @@ fn a_broker_lost_mid_stream_loses_nothing_and_repeats_only_what_was_in_flight() 
     .expect("publisher");
     for n in 1..=300u32 {
         publisher
-            .reading(device, &reading(1, n, Some(12.0), Flags::empty()))
+            .reading(device, &reading(1, n, Some(12.0), Flags::empty()), None)
             .unwrap();
         if n == 150 {
             // Mid-stream: whatever is in flight now is cut off.
@@ -439,8 +445,8 @@ fn a_throwaway_postgres_starts_and_answers() {
 }
 
 /// The live page in headless Chromium through Selenium: it shows the
-/// devices' values, a new reading appears without a reload, and the
-/// screenshot is not blank.
+/// devices' values (with the basis of a moisture whose basis is known), a
+/// new reading appears without a reload, and the screenshot is not blank.
 #[test]
 #[ignore = "needs FRINGE_PYTHON (the venv) and chromium: `cargo xtask test` runs it"]
 fn the_live_page_shows_values_and_updates_without_a_reload() {
@@ -462,7 +468,12 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
         &reading(1, 1, Some(9.5), Flags::OUT_OF_RANGE),
         Instant::now(),
     );
-    table.set_calibration(1, Some("wheat 2026 (relaxation), id 1a2b3c4d".into()));
+    // Its calibration reports on a dry basis: the card says so.
+    table.set_calibration(
+        1,
+        Some("wheat 2026 (relaxation), id 1a2b3c4d".into()),
+        Some("dry"),
+    );
     let web = WebServer::start(
         "127.0.0.1:0".parse().unwrap(),
         "Plant A (test)",
@@ -474,7 +485,7 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
     let mut child = Command::new(python())
         .arg(workspace_root().join("tests/python/live_page.py"))
         .arg(format!("http://{}/", web.local_addr()))
-        .args(["PLT-A-0001", "14.37 %", "15.02 %"])
+        .args(["PLT-A-0001", "14.37 % dry basis", "15.02 % dry basis"])
         .arg(&shot)
         .stdout(std::process::Stdio::piped())
         .spawn()

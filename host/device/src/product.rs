@@ -198,7 +198,7 @@ pub fn basis_caution(old: Basis, new: Basis) -> String {
         "CAUTION: the line now reports on a {} where it reported on a {}: the same product reads another number \
 (M_db = 100 M_wb / (100 - M_wb): 20 % wet basis is 25 % dry). The 4-20 mA span (fringe device config show) \
 and the scaling in the PLC or SCADA were set for the {}: change them with the calibration, loops in manual. \
-fringe monitor converts each reading to its alarm band's basis; a gateway's site file bands are taken as written.",
+fringe monitor and fringe gateway convert each reading to its alarm band's basis.",
         basis_words(new),
         basis_words(old),
         basis_words(old)

@@ -50,6 +50,7 @@ struct Entry {
     history: VecDeque<Point>,
     alarms: VecDeque<AlarmNote>,
     calibration: Option<String>,
+    moisture_basis: Option<&'static str>,
 }
 
 /// Everything known of one device, for the live page.
@@ -69,6 +70,9 @@ pub struct UnitView {
     pub alarms: Vec<AlarmNote>,
     /// The product calibration in force, in words.
     pub calibration: Option<String>,
+    /// The basis of the latest reading's moisture (`wet`, `dry`; none:
+    /// not known).
+    pub moisture_basis: Option<&'static str>,
 }
 
 /// The latest values of the gateway's devices.
@@ -108,6 +112,7 @@ impl LiveTable {
                 history: VecDeque::new(),
                 alarms: VecDeque::new(),
                 calibration: None,
+                moisture_basis: None,
             });
     }
 
@@ -166,10 +171,11 @@ impl LiveTable {
     }
 
     /// The product calibration in force on unit `unit`, in words.
-    pub fn set_calibration(&self, unit: u8, text: Option<String>) {
+    pub fn set_calibration(&self, unit: u8, text: Option<String>, basis: Option<&'static str>) {
         let mut units = self.units.write().unwrap_or_else(|e| e.into_inner());
         if let Some(e) = units.get_mut(&unit) {
             e.calibration = text;
+            e.moisture_basis = basis;
         }
     }
 
@@ -193,6 +199,7 @@ impl LiveTable {
                     history: e.history.iter().copied().collect(),
                     alarms: e.alarms.iter().cloned().collect(),
                     calibration: e.calibration.clone(),
+                    moisture_basis: e.moisture_basis,
                 })
             })
             .collect()

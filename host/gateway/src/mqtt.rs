@@ -145,12 +145,18 @@ impl Publisher {
         o.push(item, now_ms()).map(|_| ())
     }
 
-    /// Buffers a reading of `device` for publishing.
+    /// Buffers a reading of `device` for publishing, its moisture on
+    /// `basis` (`wet`, `dry`; `None`: not known).
     ///
     /// # Errors
     /// When the buffer cannot be written (the reading is then only in the store).
-    pub fn reading(&self, device: &str, r: &Reading) -> Result<(), OutboxError> {
-        let json = reading_body(r);
+    pub fn reading(
+        &self,
+        device: &str,
+        r: &Reading,
+        basis: Option<&str>,
+    ) -> Result<(), OutboxError> {
+        let json = reading_body(r, basis);
         self.push(&Item::Reading {
             device: device.to_string(),
             json,
@@ -543,8 +549,15 @@ impl Worker {
                 }
                 let seq = s.next_seq();
                 let payload = match &row.item {
-                    Item::Reading { json, .. } => match reading_from_body(json) {
-                        Ok(r) => sparkplug::device_data(&r, r.time_ms, historical, seq, now_ms()),
+                    Item::Reading { json, .. } => match buffered_from_body(json) {
+                        Ok((r, basis)) => sparkplug::device_data(
+                            &r,
+                            basis.as_deref(),
+                            r.time_ms,
+                            historical,
+                            seq,
+                            now_ms(),
+                        ),
                         Err(e) => {
                             // A row this version cannot read: dropped rather
                             // than block the buffer, counted and said.
@@ -693,6 +706,10 @@ struct BufferedReading {
     flags: fringe_protocol::Flags,
     cell_cal: fringe_protocol::CalId,
     product_cal: fringe_protocol::CalId,
+    /// The basis of the moisture (absent in rows buffered before it was
+    /// added, and when not known).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    moisture_basis: Option<String>,
 }
 
 #[derive(serde::Serialize, serde::Deserialize)]
@@ -707,8 +724,8 @@ fn finite(x: f32) -> Option<f32> {
     x.is_finite().then_some(x)
 }
 
-/// The buffer's text of `r` ([`BufferedReading`]).
-pub fn reading_body(r: &Reading) -> String {
+/// The buffer's text of `r` ([`BufferedReading`]), its moisture on `basis`.
+pub fn reading_body(r: &Reading, basis: Option<&str>) -> String {
     let ch = |c: &fringe_protocol::ChannelValue| BufferedChannel {
         g_s: finite(c.g_s),
         b_s: finite(c.b_s),
@@ -725,6 +742,7 @@ pub fn reading_body(r: &Reading) -> String {
         flags: r.flags,
         cell_cal: r.cell_cal,
         product_cal: r.product_cal,
+        moisture_basis: basis.map(str::to_string),
     };
     serde_json::to_string(&b).unwrap_or_default()
 }
@@ -735,6 +753,14 @@ pub fn reading_body(r: &Reading) -> String {
 /// # Errors
 /// Text that is not such a reading.
 pub fn reading_from_body(text: &str) -> Result<Reading, serde_json::Error> {
+    buffered_from_body(text).map(|(r, _)| r)
+}
+
+/// [`reading_from_body`] with the basis of its moisture, if the row has it.
+///
+/// # Errors
+/// Text that is not such a reading.
+pub fn buffered_from_body(text: &str) -> Result<(Reading, Option<String>), serde_json::Error> {
     let b: BufferedReading = serde_json::from_str(text)?;
     let nan = |x: Option<f32>| x.unwrap_or(f32::NAN);
     let ch = |c: &BufferedChannel| fringe_protocol::ChannelValue {
@@ -743,17 +769,20 @@ pub fn reading_from_body(text: &str) -> Result<Reading, serde_json::Error> {
         eps_re: nan(c.eps_re),
         eps_im: nan(c.eps_im),
     };
-    Ok(Reading {
-        seq: b.seq,
-        time_ms: b.time_ms,
-        channels: [ch(&b.channels[0]), ch(&b.channels[1])],
-        temperature_c: nan(b.temperature_c),
-        moisture_pct: b.moisture_pct,
-        uncertainty_pct: nan(b.uncertainty_pct),
-        flags: b.flags,
-        cell_cal: b.cell_cal,
-        product_cal: b.product_cal,
-    })
+    Ok((
+        Reading {
+            seq: b.seq,
+            time_ms: b.time_ms,
+            channels: [ch(&b.channels[0]), ch(&b.channels[1])],
+            temperature_c: nan(b.temperature_c),
+            moisture_pct: b.moisture_pct,
+            uncertainty_pct: nan(b.uncertainty_pct),
+            flags: b.flags,
+            cell_cal: b.cell_cal,
+            product_cal: b.product_cal,
+        },
+        b.moisture_basis,
+    ))
 }
 
 #[cfg(test)]
@@ -832,9 +861,14 @@ mod body_tests {
         // The reading's own JSON does not come back (the defect).
         let own = serde_json::to_string(&r).unwrap();
         assert!(serde_json::from_str::<Reading>(&own).is_err());
-        let back = reading_from_body(&reading_body(&r)).expect("read back");
+        let back = reading_from_body(&reading_body(&r, None)).expect("read back");
         // Same bits where a value exists, NaN where none does.
         assert_eq!(format!("{back:?}"), format!("{r:?}"));
+        // The basis of its moisture comes back with it, and a row without
+        // one (buffered before it was added) has none.
+        let (_, basis) = buffered_from_body(&reading_body(&r, Some("dry"))).expect("read back");
+        assert_eq!(basis.as_deref(), Some("dry"));
+        assert_eq!(buffered_from_body(&reading_body(&r, None)).unwrap().1, None);
         // And a reading with every value, as earlier versions buffered it,
         // still reads (rows left in a buffer by an older gateway).
         let full = Reading {
@@ -848,6 +882,6 @@ mod body_tests {
             ..r
         };
         let old = serde_json::to_string(&full).unwrap();
-        assert_eq!(reading_from_body(&old).unwrap(), full);
+        assert_eq!(buffered_from_body(&old).unwrap(), (full, None));
     }
 }

@@ -37,7 +37,8 @@ use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 use fringe_line::{ClockCheck, Ctx, LineError, Note, Session, SessionOptions, Summary};
 use fringe_link::{Link, LinkOptions, Opener};
 use fringe_protocol::auth::Key;
-use fringe_protocol::Flags;
+use fringe_protocol::{CalId, Flags};
+use fringe_quality::limits::LimitBasis;
 use fringe_quality::watch::DriftWatch;
 use fringe_store::{RecordLog, RecordStore};
 
@@ -56,6 +57,34 @@ pub const RETRY_AFTER: Duration = Duration::from_secs(5);
 /// Wait before a density is sent again after a try (the link failed, or
 /// the device's readings show it has lost the density).
 pub const DENSITY_RETRY: Duration = Duration::from_secs(5);
+
+/// What a worker knows of the moisture basis of its device's product
+/// calibrations: a reading's moisture is on the basis of the calibration
+/// whose content id it carries.
+#[derive(Debug, Default)]
+struct Bases {
+    /// Known: from the device's active calibration, or the store's
+    /// calibration records.
+    known: BTreeMap<CalId, LimitBasis>,
+    /// Neither the store nor the device said (alarm limits are checked as
+    /// written for its readings; said once).
+    unknown: std::collections::BTreeSet<CalId>,
+    /// Not in the store: the device is asked after this poll.
+    ask: Option<CalId>,
+}
+
+/// The basis of a reading's calibration, as far as it is known.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum BasisOf {
+    /// Known.
+    Known(LimitBasis),
+    /// Being asked of the device: the reading is not checked against the
+    /// moisture band (its alarms stay as they were).
+    Asking,
+    /// Not known (no calibration, or neither the store nor the device
+    /// said): checked as written.
+    Unknown,
+}
 
 /// A device's density feed during one session.
 struct Feeder {
@@ -170,8 +199,12 @@ pub struct DeviceStatus {
     pub temperature_c: Option<f32>,
     /// Its quality flags, by name.
     pub flags: Vec<String>,
+    /// The basis of its moisture (`wet`, `dry`; none: not known), that of
+    /// the product calibration it was computed with.
+    pub moisture_basis: Option<&'static str>,
     /// The alarm limits of the site file its latest reading breaks
-    /// (`LOW`, `HIGH`, `UNCERTAIN`).
+    /// (`LOW`, `HIGH`, `UNCERTAIN`), checked on the limits' basis: a
+    /// reading on the other one is converted to it.
     pub alarms: Vec<String>,
     /// What the line sessions of this run did (summed over reconnects).
     #[serde(flatten)]
@@ -447,6 +480,7 @@ impl Gateway {
                         uncertainty_pct: None,
                         temperature_c: None,
                         flags: Vec::new(),
+                        moisture_basis: None,
                         alarms: Vec::new(),
                         line: Summary::default(),
                         drift_alarms: 0,
@@ -473,6 +507,7 @@ impl Gateway {
                 drift_every: site.drift_every,
                 leases: leases.clone(),
                 held: Arc::clone(&held),
+                bases: Mutex::default(),
             };
             let t = std::thread::Builder::new()
                 .name(format!("unit-{unit}"))
@@ -592,6 +627,7 @@ struct Worker<S> {
     drift_every: Option<Duration>,
     leases: Option<Arc<dyn Leases>>,
     held: Held,
+    bases: Mutex<Bases>,
 }
 
 /// Why a device's session ended other than by the stop flag.
@@ -793,6 +829,7 @@ impl<S: RecordStore> Worker<S> {
             }
             _ => None,
         };
+        self.learn_bases(&mut session, &serial);
         let result = (|| -> Result<(), Ended> {
             session.catch_up(&mut store, &mut ctx)?;
             self.drift(drift, &serial, true);
@@ -810,6 +847,7 @@ impl<S: RecordStore> Worker<S> {
                 if polled.stopped {
                     break;
                 }
+                self.ask_basis(&mut session, &serial);
                 let sum = session.summary();
                 let mut t = *total;
                 add(&mut t, sum);
@@ -1000,46 +1038,172 @@ impl<S: RecordStore> Worker<S> {
         }
     }
 
+    /// The bases of the device's product calibrations the store has
+    /// records of (`cal push`, `cal select`, `cal adjust` with this store)
+    /// into `bases`; never fatal.
+    fn bases_from_store(&self, serial: &str) {
+        match fringe_quality::analysis::calibration_bases(&self.store, serial) {
+            Ok(found) => {
+                let mut b = lock(&self.bases);
+                for (id, basis) in found {
+                    b.known.insert(id, LimitBasis::from(basis));
+                }
+            }
+            Err(e) => self.say(
+                Some(serial),
+                Level::Error,
+                format!("could not read the calibration records ({e}); the basis of a reading is asked of the device"),
+            ),
+        }
+    }
+
+    /// At the start of a session: the bases the store knows and that of
+    /// the device's active calibration; says when the site's alarm band is
+    /// on the other basis and how it is taken.
+    fn learn_bases(&self, session: &mut Session, serial: &str) {
+        self.bases_from_store(serial);
+        match session.active_product_cal() {
+            Ok(Some(c)) => {
+                let basis = LimitBasis::from(c.basis);
+                lock(&self.bases).known.insert(c.content_id(), basis);
+                let limits = self.run.spec.alarm;
+                if let Some(converted) = limits.on_basis(basis) {
+                    self.say(
+                        Some(serial),
+                        Level::Info,
+                        format!(
+                            "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; each reading is converted to the {} basis to be checked, its uncertainty with it)",
+                            limits.basis.word(),
+                            basis.word(),
+                            limits.band(),
+                            converted.band(),
+                            limits.basis.word(),
+                        ),
+                    );
+                }
+            }
+            Ok(None) => {}
+            // Asked again when a reading needs it.
+            Err(e) => self.say(
+                Some(serial),
+                Level::Error,
+                format!("could not read the active product calibration ({e}); asked again when a reading needs it"),
+            ),
+        }
+    }
+
+    /// The basis of readings computed with calibration `id`: known, or
+    /// looked up in the store, else to be asked of the device after this
+    /// poll ([`Worker::ask_basis`]).
+    fn basis_of(&self, serial: Option<&str>, id: CalId) -> BasisOf {
+        if id == CalId::NONE {
+            return BasisOf::Unknown;
+        }
+        {
+            let b = lock(&self.bases);
+            if let Some(k) = b.known.get(&id) {
+                return BasisOf::Known(*k);
+            }
+            if b.unknown.contains(&id) {
+                return BasisOf::Unknown;
+            }
+        }
+        if let Some(s) = serial {
+            self.bases_from_store(s);
+        }
+        let mut b = lock(&self.bases);
+        if let Some(k) = b.known.get(&id) {
+            return BasisOf::Known(*k);
+        }
+        b.ask = Some(id);
+        BasisOf::Asking
+    }
+
+    /// Asks the device for its active calibration when a reading's basis
+    /// was not known (a calibration selected while the gateway runs, with
+    /// no record in this store). A calibration the device does not have
+    /// active either is checked as written from then on, said once.
+    fn ask_basis(&self, session: &mut Session, serial: &str) {
+        let Some(id) = lock(&self.bases).ask.take() else {
+            return;
+        };
+        let asked = session.active_product_cal();
+        let mut b = lock(&self.bases);
+        if let Ok(Some(c)) = &asked {
+            b.known.insert(c.content_id(), LimitBasis::from(c.basis));
+        }
+        if b.known.contains_key(&id) {
+            return;
+        }
+        b.unknown.insert(id);
+        drop(b);
+        let why = match asked {
+            Err(e) => format!("the device did not say ({e})"),
+            Ok(_) => {
+                "it is not the device's active calibration and the store has no record of it".into()
+            }
+        };
+        self.say(
+            Some(serial),
+            Level::Error,
+            format!("the moisture basis of product calibration {id} is not known: {why}; its readings are checked against the alarm limits as written"),
+        );
+    }
+
     fn on_note(&self, unit: u8, serial: &Mutex<Option<String>>, n: Note<'_>) {
         let serial = serial.lock().unwrap_or_else(|e| e.into_inner()).clone();
         let serial = serial.as_deref();
         match n {
             Note::Reading(r) => {
                 self.table.update(unit, r, Instant::now());
+                let basis = self.basis_of(serial, r.product_cal);
+                let known = match basis {
+                    BasisOf::Known(b) => Some(b),
+                    _ => None,
+                };
                 // The calibrations the reading was computed with, by their
                 // content ids (`fringe cal list` names them).
                 let text = if r.product_cal == fringe_protocol::CalId::NONE {
                     None
                 } else {
                     Some(format!(
-                        "product calibration {}, cell calibration {}",
-                        r.product_cal, r.cell_cal
+                        "product calibration {}{}, cell calibration {}",
+                        r.product_cal,
+                        known.map_or(String::new(), |b| format!(" ({} basis)", b.word())),
+                        r.cell_cal
                     ))
                 };
-                self.table.set_calibration(unit, text);
+                self.table
+                    .set_calibration(unit, text, known.map(LimitBasis::word));
                 if let (Some(p), Some(s)) = (&self.publisher, serial) {
-                    if let Err(e) = p.reading(s, r) {
+                    if let Err(e) = p.reading(s, r, known.map(LimitBasis::word)) {
                         self.say(Some(s), Level::Error, format!("MQTT buffer: {e}"));
                     }
                 }
-                // The site's alarm limits: a limit newly broken is said,
-                // shown on the live page and published; one no longer
-                // broken is said once.
+                // The site's alarm limits, on their basis (a reading on
+                // the other one converted to it): a limit newly broken is
+                // said, shown on the live page and published; one no
+                // longer broken is said once. A reading whose basis is
+                // being asked leaves the alarms as they were.
                 let limits = self.run.spec.alarm;
-                let now: Vec<String> = limits
-                    .check(r.moisture_pct, r.uncertainty_pct)
-                    .into_iter()
-                    .map(str::to_string)
-                    .collect();
                 let before = self
                     .status
                     .get(self.index)
                     .map(|s| s.lock().unwrap_or_else(|e| e.into_inner()).alarms.clone())
                     .unwrap_or_default();
+                let now: Vec<String> = if basis == BasisOf::Asking {
+                    before.clone()
+                } else {
+                    limits
+                        .check_reading(r.moisture_pct, r.uncertainty_pct, known)
+                        .into_iter()
+                        .map(str::to_string)
+                        .collect()
+                };
                 for word in now.iter().filter(|w| !before.contains(w)) {
                     let text = format!(
                         "{word} ALARM: {}",
-                        limits.describe(word, r.moisture_pct, r.uncertainty_pct)
+                        limits.describe_reading(word, r.moisture_pct, r.uncertainty_pct, known)
                     );
                     self.table.alarm(
                         unit,
@@ -1063,13 +1227,17 @@ impl<S: RecordStore> Worker<S> {
                     self.say(
                         serial,
                         Level::Info,
-                        format!("{word} alarm cleared: moisture {m} %"),
+                        format!(
+                            "{word} alarm cleared: moisture {m} %{}",
+                            known.map_or(String::new(), |b| format!(" {} basis", b.word()))
+                        ),
                     );
                 }
                 self.update(|s| {
                     s.alarms = now;
                     s.seq = Some(r.seq.to_string());
                     s.moisture_pct = r.moisture_pct;
+                    s.moisture_basis = known.map(LimitBasis::word);
                     s.uncertainty_pct = r.moisture_pct.map(|_| r.uncertainty_pct);
                     s.temperature_c = Some(r.temperature_c);
                     s.flags = r.flags.names().map(str::to_string).collect();
@@ -1083,8 +1251,14 @@ impl<S: RecordStore> Worker<S> {
                 // order, before the stream resumes) so that the plant's
                 // MQTT consumers get every reading the store gets; not put
                 // on the live table and Modbus, which show the newest.
+                // (The basis as far as known now: not asked of the device
+                // for a logged reading.)
+                let basis = lock(&self.bases)
+                    .known
+                    .get(&r.product_cal)
+                    .map(|b| b.word());
                 if let (Some(p), Some(s)) = (&self.publisher, serial) {
-                    if let Err(e) = p.reading(s, r) {
+                    if let Err(e) = p.reading(s, r, basis) {
                         self.say(Some(s), Level::Error, format!("MQTT buffer: {e}"));
                     }
                 }

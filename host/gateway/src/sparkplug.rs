@@ -48,6 +48,9 @@ pub mod metric {
     pub const MOISTURE: &str = "moisture_pct";
     /// Its standard uncertainty, % moisture.
     pub const UNCERTAINTY: &str = "uncertainty_pct";
+    /// The basis of the moisture, `wet` or `dry` (that of the product
+    /// calibration the reading was computed with; null when not known).
+    pub const MOISTURE_BASIS: &str = "moisture_basis";
     /// Product temperature, C.
     pub const TEMPERATURE: &str = "temperature_c";
     /// The status word of the Modbus map (NE 107 bits; docs/MODBUS.md).
@@ -197,9 +200,15 @@ pub fn node_death(bd_seq: u64, now_ms: u64) -> Payload {
     }
 }
 
-/// The metrics of one reading (the DBIRTH and every DDATA carry them all).
-/// `time_ms` stamps them; `historical` marks data sent late from the buffer.
-pub fn reading_metrics(r: &Reading, time_ms: u64, historical: bool) -> Vec<Metric> {
+/// The metrics of one reading (the DBIRTH and every DDATA carry them all),
+/// its moisture on `basis` (`wet`, `dry`; `None`: not known). `time_ms`
+/// stamps them; `historical` marks data sent late from the buffer.
+pub fn reading_metrics(
+    r: &Reading,
+    basis: Option<&str>,
+    time_ms: u64,
+    historical: bool,
+) -> Vec<Metric> {
     let status = status_word(&Snapshot {
         reading: Some(*r),
         age_s: 0,
@@ -214,6 +223,12 @@ pub fn reading_metrics(r: &Reading, time_ms: u64, historical: bool) -> Vec<Metri
     let mut out = vec![
         m(metric::MOISTURE, datatype::FLOAT, time_ms, moisture),
         m(metric::UNCERTAINTY, datatype::FLOAT, time_ms, uncertainty),
+        m(
+            metric::MOISTURE_BASIS,
+            datatype::STRING,
+            time_ms,
+            basis.map(|b| Value::StringValue(b.to_string())),
+        ),
         m(
             metric::TEMPERATURE,
             datatype::FLOAT,
@@ -267,6 +282,7 @@ pub fn empty_device_birth(seq: u8, now_ms: u64) -> Payload {
         metrics: vec![
             null(metric::MOISTURE, datatype::FLOAT),
             null(metric::UNCERTAINTY, datatype::FLOAT),
+            null(metric::MOISTURE_BASIS, datatype::STRING),
             null(metric::TEMPERATURE, datatype::FLOAT),
             null(metric::STATUS, datatype::UINT32),
             null(metric::FLAGS, datatype::UINT32),
@@ -285,11 +301,18 @@ pub fn density_metric(now_ms: u64) -> Metric {
     m(metric::BULK_DENSITY, datatype::FLOAT, now_ms, None)
 }
 
-/// A DDATA of one reading.
-pub fn device_data(r: &Reading, time_ms: u64, historical: bool, seq: u8, now_ms: u64) -> Payload {
+/// A DDATA of one reading, its moisture on `basis` ([`reading_metrics`]).
+pub fn device_data(
+    r: &Reading,
+    basis: Option<&str>,
+    time_ms: u64,
+    historical: bool,
+    seq: u8,
+    now_ms: u64,
+) -> Payload {
     Payload {
         timestamp: Some(now_ms),
-        metrics: reading_metrics(r, time_ms, historical),
+        metrics: reading_metrics(r, basis, time_ms, historical),
         seq: Some(u64::from(seq)),
     }
 }

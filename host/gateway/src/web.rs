@@ -167,6 +167,7 @@ pub fn unit_json(v: &UnitView) -> Value {
         "history": v.history.iter().map(|p| json!([p.time_ms, p.moisture_pct, p.uncertainty_pct, p.flags])).collect::<Vec<_>>(),
         "alarms": v.alarms,
         "calibration": v.calibration,
+        "moisture_basis": v.moisture_basis,
     })
 }
 

@@ -83,7 +83,7 @@ function card(u) {
   if (noValue) {
     v.textContent = "no value";
   } else {
-    v.textContent = fmt2(u.moisture_pct) + " %";
+    v.textContent = fmt2(u.moisture_pct) + " %" + (u.moisture_basis ? " " + u.moisture_basis + " basis" : "");
     v.appendChild(el("span", "unc", " \u00b1 " + fmt2(2 * u.uncertainty_pct) + " (95 %)"));
   }
   c.appendChild(v);

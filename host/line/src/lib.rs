@@ -26,5 +26,6 @@ pub use clock::{check_clock, set_clock, sync_clock, ClockCheck, ClockSync};
 pub use density::{check_density, density_counter, set_density, set_density_after, DensityError};
 pub use error::LineError;
 pub use session::{
-    pull, register, Ctx, Note, Polled, PullSummary, Session, SessionOptions, Summary,
+    active_product_cal, pull, register, Ctx, Note, Polled, PullSummary, Session, SessionOptions,
+    Summary,
 };

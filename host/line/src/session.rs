@@ -16,7 +16,9 @@ use std::time::{Duration, Instant};
 
 use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
-use fringe_protocol::{Capabilities, DeviceFrame, Identity, Reading, Request, Seq};
+use fringe_protocol::{
+    Capabilities, DeviceFrame, Identity, ProductCal, Reading, Request, Response, Seq,
+};
 use fringe_store::{Batcher, DeviceInfo, InsertStats, RecordStore, StoreError};
 
 use crate::backfill::{backfill, backfill_missing, next_seq, pull_events};
@@ -165,6 +167,34 @@ fn clock(link: &mut Link, key: Option<&Key>, ctx: &mut Ctx<'_>) -> Result<ClockS
             sync_clock(link, None, ctx.wall_ms)
         }
         Err(e) => Err(e),
+    }
+}
+
+/// The device's active product calibration: `None` when it has none
+/// selected (or the selected slot is empty). Its basis is the basis of the
+/// moisture in the readings that carry its content id.
+///
+/// # Errors
+/// [`LinkError`], also for an answer of another kind.
+pub fn active_product_cal(link: &mut Link) -> Result<Option<ProductCal>, LinkError> {
+    let active = match link.request(Request::ListProducts)? {
+        Response::Products { active, .. } => active,
+        other => {
+            return Err(LinkError::Unexpected {
+                request: "ListProducts",
+                got: format!("{other:?}"),
+            })
+        }
+    };
+    let Some(slot) = active else {
+        return Ok(None);
+    };
+    match link.request(Request::ReadProductCal { slot })? {
+        Response::ProductCal { cal, .. } => Ok(cal),
+        other => Err(LinkError::Unexpected {
+            request: "ReadProductCal",
+            got: format!("{other:?}"),
+        }),
     }
 }
 
@@ -562,6 +592,17 @@ impl Session {
         after: Option<(u32, u32)>,
     ) -> Result<(u32, u32), crate::DensityError> {
         crate::density::set_density_after(&mut self.link, key, kg_m3, hold_ms, after)
+    }
+
+    /// The device's active product calibration ([`active_product_cal`]),
+    /// asked while streaming: readings that arrive meanwhile wait for the
+    /// next [`Session::poll`].
+    ///
+    /// # Errors
+    /// [`LinkError`]; a link that failed is found and cured by the next
+    /// [`Session::poll`].
+    pub fn active_product_cal(&mut self) -> Result<Option<ProductCal>, LinkError> {
+        active_product_cal(&mut self.link)
     }
 
     /// Ends the session: commits what arrived (whatever happened before)

@@ -63,6 +63,16 @@ impl From<Basis> for LimitBasis {
     }
 }
 
+impl From<fringe_protocol::Basis> for LimitBasis {
+    /// The basis a device's product calibration reports on.
+    fn from(b: fringe_protocol::Basis) -> Self {
+        match b {
+            fringe_protocol::Basis::Wet => LimitBasis::Wet,
+            fringe_protocol::Basis::Dry => LimitBasis::Dry,
+        }
+    }
+}
+
 /// A limit that cannot be used: its key, its value, the rule.
 #[derive(Debug, Clone, PartialEq)]
 pub struct BadLimit {
@@ -175,6 +185,18 @@ impl AlarmLimits {
         uncertainty_pct: f32,
         reading_basis: Option<LimitBasis>,
     ) -> Vec<&'static str> {
+        let (m, u) = self.on_limits_basis(moisture_pct, uncertainty_pct, reading_basis);
+        self.check(m, u)
+    }
+
+    /// A reading's moisture and uncertainty on the limits' basis (as
+    /// [`AlarmLimits::check_reading`] converts them).
+    fn on_limits_basis(
+        &self,
+        moisture_pct: Option<f32>,
+        uncertainty_pct: f32,
+        reading_basis: Option<LimitBasis>,
+    ) -> (Option<f32>, f32) {
         match (reading_basis, moisture_pct) {
             (Some(b), Some(m)) if b != self.basis => {
                 // d(convert)/dm: 10^4 / (100 -+ m)^2.
@@ -182,11 +204,53 @@ impl AlarmLimits {
                     LimitBasis::Dry => 1e4 / ((100.0 - m) * (100.0 - m)),
                     LimitBasis::Wet => 1e4 / ((100.0 + m) * (100.0 + m)),
                 };
-                let m2 = convert(m, b.basis(), self.basis.basis());
-                self.check(Some(m2), uncertainty_pct * slope)
+                (
+                    Some(convert(m, b.basis(), self.basis.basis())),
+                    uncertainty_pct * slope,
+                )
             }
-            _ => self.check(moisture_pct, uncertainty_pct),
+            _ => (moisture_pct, uncertainty_pct),
         }
+    }
+
+    /// [`AlarmLimits::describe`] of a reading on `reading_basis`: where
+    /// that is not the limits' basis, the values on the limits' basis and
+    /// then the reading as it came (`moisture 18.93 % dry basis above the
+    /// high limit 18.34 % dry basis (the reading: 15.92 % wet basis)`).
+    pub fn describe_reading(
+        &self,
+        word: &str,
+        moisture_pct: Option<f32>,
+        uncertainty_pct: f32,
+        reading_basis: Option<LimitBasis>,
+    ) -> String {
+        match (reading_basis, moisture_pct) {
+            (Some(b), Some(m)) if b != self.basis => {
+                let (m2, u2) = self.on_limits_basis(moisture_pct, uncertainty_pct, reading_basis);
+                let lb = self.basis.word();
+                let said = self
+                    .describe(word, m2, u2)
+                    .replace(" %", &format!(" % {lb} basis"));
+                let u = if uncertainty_pct.is_nan() {
+                    String::new()
+                } else {
+                    format!(" +- {uncertainty_pct:.2} %")
+                };
+                format!("{said} (the reading: {m:.2} %{u} {} basis)", b.word())
+            }
+            _ => self.describe(word, moisture_pct, uncertainty_pct),
+        }
+    }
+
+    /// The moisture band in words: `12.00..15.50` (`--` for a side
+    /// without a limit).
+    pub fn band(&self) -> String {
+        let f = |v: Option<f32>| v.map_or("--".to_string(), |m| format!("{m:.2}"));
+        format!(
+            "{}..{}",
+            f(self.moisture_low_pct),
+            f(self.moisture_high_pct)
+        )
     }
 
     /// What a broken limit means, for a person: `moisture 16.20 % above
@@ -339,5 +403,15 @@ mod tests {
         assert!(dry_band()
             .check_reading(Some(19.0), 0.1, Some(LimitBasis::Wet))
             .is_empty());
+        // Said on the band's basis, with the reading as it came: 22 % dry
+        // is 18.03 % wet (100 x 22 / 122).
+        assert_eq!(
+            a.describe_reading("HIGH", Some(22.0), 0.5, dry),
+            "moisture 18.03 % wet basis above the high limit 15.50 % wet basis (the reading: 22.00 % +- 0.50 % dry basis)"
+        );
+        assert_eq!(
+            a.describe_reading("HIGH", Some(16.0), 0.5, Some(LimitBasis::Wet)),
+            a.describe("HIGH", Some(16.0), 0.5)
+        );
     }
 }

@@ -7,14 +7,14 @@ use fringe_firmware::sim::{Material, Scenario as FwScenario};
 use fringe_firmware::{Device, DeviceConfig, RamFlash, SimFrontend};
 use fringe_protocol::ResetCause;
 
-use fringe_firmware::sim::{exact_calibration, SIM_CELL};
+use fringe_firmware::sim::{exact_calibration_on, SIM_CELL};
 use fringe_protocol::auth::sign;
 use fringe_protocol::frame::encode_vec;
-use fringe_protocol::{CellCal, CellPoint, DeviceFrame, FrameDecoder, HostFrame, Request};
+use fringe_protocol::{Basis, CellCal, CellPoint, DeviceFrame, FrameDecoder, HostFrame, Request};
 
 use crate::device::{Bench, SimDevice};
 use crate::scenario::{
-    CalibrationSection, CellCalSource, ClockStart, Conditions, ProductCalSource, Scenario,
+    CalBasis, CalibrationSection, CellCalSource, ClockStart, Conditions, ProductCalSource, Scenario,
 };
 
 /// The simulated cell at the device's two frequencies `freqs_hz` as
@@ -145,7 +145,14 @@ impl FirmwareSim {
             CellCalSource::Simulator => simulator_cell(self.config.measure.freqs_hz),
         };
         let product = match c.product {
-            ProductCalSource::Exact => exact_calibration(product, name),
+            ProductCalSource::Exact => exact_calibration_on(
+                product,
+                name,
+                match c.basis {
+                    CalBasis::Wet => Basis::Wet,
+                    CalBasis::Dry => Basis::Dry,
+                },
+            ),
         };
         let writes = [
             Request::WriteCellCal(cell),

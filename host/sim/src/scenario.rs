@@ -33,6 +33,7 @@
 //! cell = "simulator"                # the simulated cell's own constants, as a bench calibration finds them
 //! product = "exact"                 # the synthetic product's own mixing law (SEC 0): a perfect lab's fit
 //! product_name = "HM wheat L2"      # the calibration's name on the device (default: product.name)
+//! basis = "wet"                     # "dry": the same calibration reporting water over dry mass
 //!
 //! [[empty]]                         # no product in front of the window
 //! from_s = 120
@@ -185,6 +186,20 @@ pub struct CalibrationSection {
     /// Its name on the device (default: the `[product]` name).
     #[serde(default)]
     pub product_name: Option<String>,
+    /// The basis it reports moisture on (default wet).
+    #[serde(default)]
+    pub basis: CalBasis,
+}
+
+/// The moisture basis of the scenario's product calibration.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum CalBasis {
+    /// Water over wet mass.
+    #[default]
+    Wet,
+    /// Water over dry mass (`fringe_firmware::sim::exact_calibration_on`).
+    Dry,
 }
 
 /// One empty-line period.

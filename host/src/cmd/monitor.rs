@@ -355,8 +355,8 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
                 "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; each reading is converted to the {} basis to be checked, its uncertainty with it)",
                 cfg.alarm.basis.word(),
                 basis.word(),
-                band(&cfg.alarm),
-                band(&converted),
+                cfg.alarm.band(),
+                converted.band(),
                 cfg.alarm.basis.word(),
             );
         }
@@ -371,21 +371,10 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
 fn active_calibration(
     link: &mut fringe_link::Link,
 ) -> Option<(fringe_protocol::CalId, LimitBasis)> {
-    use fringe_protocol::{Basis, Request, Response};
-    let (_, active) = fringe_device::product::list_slots(link).ok()?;
-    match link
-        .request(Request::ReadProductCal { slot: active? })
-        .ok()?
-    {
-        Response::ProductCal { cal: Some(c), .. } => Some((
-            c.content_id(),
-            match c.basis {
-                Basis::Wet => LimitBasis::Wet,
-                Basis::Dry => LimitBasis::Dry,
-            },
-        )),
-        _ => None,
-    }
+    fringe_line::active_product_cal(link)
+        .ok()
+        .flatten()
+        .map(|c| (c.content_id(), LimitBasis::from(c.basis)))
 }
 
 /// The basis of each product calibration of `serial` the database has a
@@ -406,12 +395,6 @@ fn calibration_bases(
         bases.insert(id, b);
     }
     bases
-}
-
-/// `12.00..15.50` (`--` for a side without a limit).
-fn band(a: &AlarmLimits) -> String {
-    let f = |v: Option<f32>| v.map_or("--".to_string(), |m| format!("{m:.2}"));
-    format!("{}..{}", f(a.moisture_low_pct), f(a.moisture_high_pct))
 }
 
 #[allow(clippy::too_many_arguments)]
