@@ -377,8 +377,9 @@ pub fn exact_calibration(product: &SynthProduct<f32>, name: &str) -> ProductCal 
 /// [`exact_calibration`] reporting on `basis`. On a dry basis the moisture
 /// is M_db = 100 m / (100 - m) of the mixing-model moisture m to its cubic
 /// term, m + m^2/100 + m^3/10^4 (the layout's polynomial is cubic): low by
-/// the dropped m^4/10^6 + ..., 0.05 % at 14 % wet (16.28 % dry), 0.4 % at
-/// 25 % wet; valid moisture 5-42.86 % (the dry basis of 5-30 % wet).
+/// the terms dropped, 0.05 % at 14 % wet (16.23 % against 16.28 % dry),
+/// 0.52 % at 25 % wet, 1.2 % at 30 % wet; not counted in its SEC of 0.
+/// Valid moisture 5-42.86 % (the upper end the dry basis of 30 % wet).
 pub fn exact_calibration_on(product: &SynthProduct<f32>, name: &str, basis: Basis) -> ProductCal {
     let (coeffs, top) = match basis {
         Basis::Wet => ([0.0, 1.0, 0.0, 0.0], 30.0),

@@ -481,7 +481,9 @@ fn alarm_limits_of_the_site_file_mark_each_device() {
 /// % wet; the first reports 12.34 % dry (the simulator's dry-basis
 /// calibration: 11 + 11^2/100 + 11^3/10^4, within 0.02 % of 100 x 11 / 89
 /// = 12.36), which is 10.99 % wet: inside a high limit of 11.8 % wet that
-/// 12.34 taken as written would break.
+/// 12.34 taken as written would break. The second device's own band is
+/// on a dry basis (high 14 %): its 12.5 % wet is 14.29 % dry (100 x 12.5 /
+/// 87.5), HIGH, said on the band's basis with the reading as it came.
 #[test]
 fn a_dry_basis_device_is_checked_against_a_wet_band_on_the_bands_basis() {
     let (dir, site, _db) = sim_site();
@@ -502,6 +504,10 @@ fn a_dry_basis_device_is_checked_against_a_wet_band_on_the_bands_basis() {
             "[[device]]",
             "[alarm]\nmoisture_high_pct = 11.8\n\n[[device]]",
             1,
+        )
+        .replace(
+            "tag = \"test 1\"\n",
+            "tag = \"test 1\"\n[device.alarm]\nbasis = \"dry\"\nmoisture_high_pct = 14.0\n",
         ),
     )
     .expect("site");
@@ -552,6 +558,19 @@ fn a_dry_basis_device_is_checked_against_a_wet_band_on_the_bands_basis() {
         err.contains(
             "alarm limits written on a wet basis, the device reports on a dry one: moisture band --..11.80 % taken as --..13.38 %"
         ),
+        "{err}"
+    );
+    // 14 % dry is 100 x 14 / 114 = 12.28 % wet.
+    assert!(
+        err.contains(
+            "alarm limits written on a dry basis, the device reports on a wet one: moisture band --..14.00 % taken as --..12.28 %"
+        ),
+        "{err}"
+    );
+    assert!(
+        err.contains("HIGH ALARM: moisture 14.")
+            && err.contains("% dry basis above the high limit 14.00 % dry basis (the reading: 12.")
+            && err.contains("% wet basis)"),
         "{err}"
     );
 }

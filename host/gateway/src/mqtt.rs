@@ -706,9 +706,9 @@ struct BufferedReading {
     flags: fringe_protocol::Flags,
     cell_cal: fringe_protocol::CalId,
     product_cal: fringe_protocol::CalId,
-    /// The basis of the moisture (absent in rows buffered before it was
-    /// added, and when not known).
-    #[serde(default, skip_serializing_if = "Option::is_none")]
+    /// The basis of the moisture (null when not known; absent in rows
+    /// buffered before it was added).
+    #[serde(default)]
     moisture_basis: Option<String>,
 }
 

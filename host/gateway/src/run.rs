@@ -67,11 +67,17 @@ struct Bases {
     /// calibration records.
     known: BTreeMap<CalId, LimitBasis>,
     /// Neither the store nor the device said (alarm limits are checked as
-    /// written for its readings; said once).
+    /// written for its readings; said once). Asked again in the next
+    /// session.
     unknown: std::collections::BTreeSet<CalId>,
-    /// Not in the store: the device is asked after this poll.
-    ask: Option<CalId>,
+    /// Not in the store: the device is asked after a poll, from when, and
+    /// the tries that failed so far.
+    ask: Option<(CalId, Instant, u32)>,
 }
+
+/// Tries of the device for a calibration's basis before its readings are
+/// checked as written (each [`RETRY_AFTER`] after the one before).
+const BASIS_TRIES: u32 = 3;
 
 /// The basis of a reading's calibration, as far as it is known.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -1061,26 +1067,13 @@ impl<S: RecordStore> Worker<S> {
     /// the device's active calibration; says when the site's alarm band is
     /// on the other basis and how it is taken.
     fn learn_bases(&self, session: &mut Session, serial: &str) {
+        lock(&self.bases).unknown.clear();
         self.bases_from_store(serial);
         match session.active_product_cal() {
             Ok(Some(c)) => {
                 let basis = LimitBasis::from(c.basis);
                 lock(&self.bases).known.insert(c.content_id(), basis);
-                let limits = self.run.spec.alarm;
-                if let Some(converted) = limits.on_basis(basis) {
-                    self.say(
-                        Some(serial),
-                        Level::Info,
-                        format!(
-                            "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; each reading is converted to the {} basis to be checked, its uncertainty with it)",
-                            limits.basis.word(),
-                            basis.word(),
-                            limits.band(),
-                            converted.band(),
-                            limits.basis.word(),
-                        ),
-                    );
-                }
+                self.say_band(serial, basis);
             }
             Ok(None) => {}
             // Asked again when a reading needs it.
@@ -1089,6 +1082,26 @@ impl<S: RecordStore> Worker<S> {
                 Level::Error,
                 format!("could not read the active product calibration ({e}); asked again when a reading needs it"),
             ),
+        }
+    }
+
+    /// Says how the site's alarm band is taken for readings on `basis`,
+    /// where that is not the band's.
+    fn say_band(&self, serial: &str, basis: LimitBasis) {
+        let limits = self.run.spec.alarm;
+        if let Some(converted) = limits.on_basis(basis) {
+            self.say(
+                Some(serial),
+                Level::Info,
+                format!(
+                    "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; each reading is converted to the {} basis to be checked, its uncertainty with it)",
+                    limits.basis.word(),
+                    basis.word(),
+                    limits.band(),
+                    converted.band(),
+                    limits.basis.word(),
+                ),
+            );
         }
     }
 
@@ -1107,6 +1120,9 @@ impl<S: RecordStore> Worker<S> {
             if b.unknown.contains(&id) {
                 return BasisOf::Unknown;
             }
+            if b.ask.is_some_and(|(a, ..)| a == id) {
+                return BasisOf::Asking;
+            }
         }
         if let Some(s) = serial {
             self.bases_from_store(s);
@@ -1115,30 +1131,52 @@ impl<S: RecordStore> Worker<S> {
         if let Some(k) = b.known.get(&id) {
             return BasisOf::Known(*k);
         }
-        b.ask = Some(id);
+        b.ask = Some((id, Instant::now(), 0));
         BasisOf::Asking
     }
 
     /// Asks the device for its active calibration when a reading's basis
     /// was not known (a calibration selected while the gateway runs, with
-    /// no record in this store). A calibration the device does not have
-    /// active either is checked as written from then on, said once.
+    /// no record in this store). A request that fails is made again after
+    /// [`RETRY_AFTER`], [`BASIS_TRIES`] times in all; a calibration the
+    /// device does not have active, or whose basis it never says, is
+    /// checked as written for the rest of the session, said once.
     fn ask_basis(&self, session: &mut Session, serial: &str) {
-        let Some(id) = lock(&self.bases).ask.take() else {
-            return;
+        let (id, tries) = {
+            let mut b = lock(&self.bases);
+            match b.ask {
+                Some((id, at, tries)) if Instant::now() >= at => {
+                    b.ask = None;
+                    if b.known.contains_key(&id) {
+                        return;
+                    }
+                    (id, tries)
+                }
+                _ => return,
+            }
         };
         let asked = session.active_product_cal();
         let mut b = lock(&self.bases);
         if let Ok(Some(c)) = &asked {
-            b.known.insert(c.content_id(), LimitBasis::from(c.basis));
+            let basis = LimitBasis::from(c.basis);
+            b.known.insert(c.content_id(), basis);
+            if c.content_id() == id {
+                drop(b);
+                self.say_band(serial, basis);
+                return;
+            }
         }
         if b.known.contains_key(&id) {
+            return;
+        }
+        if asked.is_err() && tries + 1 < BASIS_TRIES {
+            b.ask = Some((id, Instant::now() + RETRY_AFTER, tries + 1));
             return;
         }
         b.unknown.insert(id);
         drop(b);
         let why = match asked {
-            Err(e) => format!("the device did not say ({e})"),
+            Err(e) => format!("the device did not say ({BASIS_TRIES} tries; the last: {e})"),
             Ok(_) => {
                 "it is not the device's active calibration and the store has no record of it".into()
             }

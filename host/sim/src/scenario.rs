@@ -33,7 +33,8 @@
 //! cell = "simulator"                # the simulated cell's own constants, as a bench calibration finds them
 //! product = "exact"                 # the synthetic product's own mixing law (SEC 0): a perfect lab's fit
 //! product_name = "HM wheat L2"      # the calibration's name on the device (default: product.name)
-//! basis = "wet"                     # "dry": the same calibration reporting water over dry mass
+//! basis = "wet"                     # "dry": water over dry mass, the cubic of 100 m / (100 - m)
+//!                                   # (0.05 % low at 14 % wet, 0.5 % at 25 %)
 //!
 //! [[empty]]                         # no product in front of the window
 //! from_s = 120

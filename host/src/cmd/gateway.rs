@@ -481,12 +481,13 @@ fn state_word(s: DeviceState) -> &'static str {
 /// One device as a plain line (`key=value`, for logs and grep).
 fn plain(d: &DeviceStatus) -> String {
     format!(
-        "unit={} serial={} state={} seq={} moisture_pct={} uncertainty_pct={} temperature_c={} flags={} alarms={} streamed={} backfilled={} stored={} lost={} reconnects={} drift_alarms={} density_kg_m3={}",
+        "unit={} serial={} state={} seq={} moisture_pct={} moisture_basis={} uncertainty_pct={} temperature_c={} flags={} alarms={} streamed={} backfilled={} stored={} lost={} reconnects={} drift_alarms={} density_kg_m3={}",
         d.unit,
         d.serial.as_deref().unwrap_or("-"),
         state_word(d.state),
         d.seq.as_deref().unwrap_or("-"),
         d.moisture_pct.map_or("none".into(), |m| format!("{m:.3}")),
+        d.moisture_basis.unwrap_or("none"),
         d.uncertainty_pct.map_or("none".into(), |u| format!("{u:.3}")),
         d.temperature_c.map_or("none".into(), |t| format!("{t:.2}")),
         if d.flags.is_empty() { "ok".into() } else { d.flags.join(",") },
@@ -559,9 +560,14 @@ impl View {
             } else {
                 format!("  {}", s.paint("33", &d.flags.join(",")))
             };
+            // The basis of a dry-basis moisture is said; wet is the default.
+            let basis = match d.moisture_basis {
+                Some("dry") => " dry",
+                _ => "",
+            };
             let _ = writeln!(
                 o,
-                "unit {:>3} {:<16} {}  {} % ±{u} {t} °C  seq {}  stored {}  alarms {}{flags}",
+                "unit {:>3} {:<16} {}  {} %{basis} ±{u} {t} °C  seq {}  stored {}  alarms {}{flags}",
                 d.unit,
                 d.serial.as_deref().unwrap_or(&d.port),
                 state,
