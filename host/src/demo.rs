@@ -301,14 +301,17 @@ fn run_in(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         // The lab's oven method repeats to about 0.1 % moisture (invented for the demo).
         let lab = f64::from(s.moisture_pct) + 0.1 * rng.sample::<f64, _>(StandardNormal);
         let id = format!("HGM-{:03}", i + 1);
-        rows.push(fringe_device::capture::capture_sample(
-            &mut link,
-            &id,
-            Some((lab * 100.0).round() / 100.0),
-            3,
-        )?);
+        rows.push(fringe_quality::samples::RefSample {
+            moisture_basis: Some(fringe_quality::samples::Basis::Wet),
+            ..fringe_device::capture::capture_sample(
+                &mut link,
+                &id,
+                Some((lab * 100.0).round() / 100.0),
+                3,
+            )?
+        });
     }
-    fringe_device::capture::save_rows(&outs.samples, &rows)?;
+    fringe_device::capture::save_rows(&outs.samples, &rows, fringe_quality::samples::Basis::Wet)?;
     println!("    wrote {}", outs.samples.display());
 
     // 3. Fit both models.

@@ -457,6 +457,14 @@ fn csv_cases(good: &[u8], path: &str, rng: &mut StdRng, dup_id: bool) -> Vec<Cas
             BAD_FILE,
             &[path, "line 4"],
         ),
+        // (The demo's table says each row's basis in its tenth column,
+        // `moisture_basis`: `cal capture` writes it.)
+        case(
+            "a lab value given on a dry basis (moisture_basis) under a wet-basis command",
+            Setup::Bytes(set_field(good, 3, 9, "dry")),
+            BAD_FILE,
+            &[path, "line 3, column 10 (moisture_basis)", "--basis dry"],
+        ),
         case(
             "byte-order mark, then NaN on line 3",
             Setup::Bytes(bom(&set_field(good, 3, 4, "NaN"))),
@@ -553,7 +561,8 @@ fn csv_cases(good: &[u8], path: &str, rng: &mut StdRng, dup_id: bool) -> Vec<Cas
                     .into_bytes(),
             ),
             BAD_FILE,
-            &[path, "line 2, column 10 (bulk_density_kg_m3)", "kg/m^3"],
+            // (The eleventh column: after the demo table's moisture_basis.)
+            &[path, "line 2, column 11 (bulk_density_kg_m3)", "kg/m^3"],
         ),
         case("a folder", Setup::Dir, BAD_FILE, &[path, "directory"]),
         case(

@@ -222,6 +222,15 @@ fn capture_push_list_select_and_history() {
     assert_eq!(rows[0][col("sample_id")], "HGM-T01");
     assert_eq!(rows[0][col("moisture_pct")].parse::<f64>().unwrap(), 14.25);
     assert_eq!(rows[1][col("moisture_pct")], "", "{text}");
+    // Each row says the basis its lab value was asked on.
+    assert_eq!(
+        (
+            rows[0][col("moisture_basis")],
+            rows[1][col("moisture_basis")]
+        ),
+        ("wet", "wet"),
+        "{text}"
+    );
     for r in &rows {
         for c in ["eps1_re", "eps1_im", "eps2_re", "eps2_im", "temperature_c"] {
             let v: f64 = r[col(c)].parse().unwrap_or(f64::NAN);
@@ -264,6 +273,29 @@ fn capture_push_list_select_and_history() {
         Some(151.5),
         "{text}"
     );
+    assert_eq!(row[col("moisture_basis")], "dry", "{text}");
+    // Fitted without --basis dry, the table is refused by its first row's
+    // basis (exit 3, a bad input file), not read as wet-basis values; no
+    // calibration is written.
+    let out = sim.path("dry-fit.toml");
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "fit",
+            "--samples",
+            dry.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 3, "{}", o.stderr);
+    assert!(
+        o.stderr.contains("line 2, column 10 (moisture_basis)") && o.stderr.contains("--basis dry"),
+        "{}",
+        o.stderr
+    );
+    assert!(!out.exists());
 
     // Two product calibrations fitted from a reference table (values made
     // up for the test; only their ids and names matter here). 24 samples:
@@ -932,6 +964,7 @@ fn write_zoo_table(path: &Path, n: usize, seed: u64, density: bool, dry: bool) {
             eps_re: [x.channels[0].eps_re, x.channels[1].eps_re],
             eps_im: [x.channels[0].eps_loss, x.channels[1].eps_loss],
             bulk_density_kg_m3: x.bulk_density_kg_m3.filter(|_| density),
+            moisture_basis: None,
             line: 0,
         })
         .collect();

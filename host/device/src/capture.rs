@@ -64,6 +64,7 @@ pub fn capture_sample(
         eps_re: [eps[0].re, eps[1].re],
         eps_im: [eps[0].im.max(0.0), eps[1].im.max(0.0)],
         bulk_density_kg_m3: None,
+        moisture_basis: None,
         line: 0,
     })
 }
@@ -104,13 +105,18 @@ pub fn capture(
             None => None,
         };
         guide.step(&format!("place sample {id} in front of the window (fill the sample cup level, same packing as on the line)"))?;
-        let s = capture_sample(link, &id, m, readings)?;
+        let s = RefSample {
+            // Written beside the value, so that a fit on another basis is
+            // refused rather than taking it as on its own.
+            moisture_basis: Some(basis),
+            ..capture_sample(link, &id, m, readings)?
+        };
         guide.show(&format!(
             "  {id}: {:.1} C, eps1 {:.3} - j{:.3}, eps2 {:.3} - j{:.3}",
             s.temperature_c, s.eps_re[0], s.eps_im[0], s.eps_re[1], s.eps_im[1]
         ));
         rows.push(s);
-        save_rows(out, &rows)?;
+        save_rows(out, &rows, basis)?;
     }
     Ok(rows.len())
 }
@@ -121,12 +127,12 @@ pub fn capture(
 /// # Errors
 /// [`CaptureError`]: a failed write, or an existing file that is not a
 /// sample table.
-pub fn save_rows(path: &Path, rows: &[RefSample]) -> Result<(), CaptureError> {
+pub fn save_rows(path: &Path, rows: &[RefSample], basis: Basis) -> Result<(), CaptureError> {
     let mut all = Vec::new();
     if path.exists() {
-        // The widest basis: the table's is the calibration's, chosen when
-        // it is fitted.
-        all = read_samples(path, MoistureColumn::Optional, Basis::Dry)?.samples;
+        // On the capture's basis: a table whose rows say another one (or
+        // hold wet-basis values of 100 % and more) is refused, not mixed.
+        all = read_samples(path, MoistureColumn::Optional, basis)?.samples;
         all.retain(|s| !rows.iter().any(|r| r.sample_id == s.sample_id));
     }
     all.extend(rows.iter().cloned());

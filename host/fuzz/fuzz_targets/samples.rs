@@ -52,7 +52,7 @@ fn check(set: &SampleSet, moisture: MoistureColumn, basis: Basis) {
         Path::new("again.csv"),
         &out,
         MoistureColumn::Optional,
-        Basis::Dry,
+        basis,
     ) {
         let ids = |s: &SampleSet| {
             s.samples

@@ -999,11 +999,14 @@ pub fn write_fit_summary(
 /// # Errors
 /// A plotting failure.
 pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> Result<String, FitError> {
-    // Read as the fit read it (the widest basis: it was checked there).
+    // Read as the fit read it, on the calibration's basis.
     let set = read_samples(
         samples_path,
         MoistureColumn::Required,
-        crate::samples::Basis::Dry,
+        match o.wire.basis {
+            Basis::Wet => crate::samples::Basis::Wet,
+            Basis::Dry => crate::samples::Basis::Dry,
+        },
     )?;
     let f = &o.chosen;
     let pv: Vec<(f64, f64)> = f
@@ -1341,6 +1344,7 @@ mod tests {
                 eps_re: [x.channels[0].eps_re, x.channels[1].eps_re],
                 eps_im: [x.channels[0].eps_loss, x.channels[1].eps_loss],
                 bulk_density_kg_m3: x.bulk_density_kg_m3,
+                moisture_basis: None,
                 line: 0,
             })
             .collect();

@@ -14,6 +14,7 @@
 //! | `freq1_hz`, `freq2_hz` | Hz | the two excitation frequencies, the same on every row, `freq1_hz < freq2_hz` |
 //! | `eps1_re`, `eps1_im`, `eps2_re`, `eps2_im` | - | permittivity eps* = eps' - j eps'' at each frequency, `eps*_im` = eps'' >= 0 |
 //! | `bulk_density_kg_m3` (optional) | kg/m^3 | the bulk density at the sensor where the plant measures it (a weigh belt, a gauge), 10-5000; cells may be empty |
+//! | `moisture_basis` (optional) | `wet` or `dry` | the basis the lab value was given on (`cal capture` writes it); a row on another basis than the command's is refused, naming it; cells may be empty |
 //!
 //! Every error names the file and, where it has one, the line (1-based,
 //! counting the header as line 1), the column (1-based) and the field.
@@ -38,6 +39,10 @@ pub const COLUMNS: [&str; 9] = [
 /// The optional column of the bulk density at the sensor, kg/m^3.
 pub const DENSITY_COLUMN: &str = "bulk_density_kg_m3";
 
+/// The optional column of the basis a lab value was given on (`wet`,
+/// `dry`).
+pub const BASIS_COLUMN: &str = "moisture_basis";
+
 /// One reference sample.
 #[derive(Debug, Clone, PartialEq)]
 pub struct RefSample {
@@ -55,6 +60,9 @@ pub struct RefSample {
     pub eps_im: [f64; 2],
     /// Bulk density at the sensor, kg/m^3, where the table gives one.
     pub bulk_density_kg_m3: Option<f64>,
+    /// The basis its lab value was given on, where the table says
+    /// ([`BASIS_COLUMN`]).
+    pub moisture_basis: Option<Basis>,
     /// Line in the file (header is line 1).
     pub line: u64,
 }
@@ -353,6 +361,9 @@ pub fn parse_samples(
     let density_col = header
         .iter()
         .position(|h| h.eq_ignore_ascii_case(DENSITY_COLUMN));
+    let basis_col = header
+        .iter()
+        .position(|h| h.eq_ignore_ascii_case(BASIS_COLUMN));
     for (i, h) in header.iter().enumerate() {
         if header.iter().take(i).any(|p| p == h) && !h.is_empty() {
             return Err(SampleError::DuplicateColumn {
@@ -419,6 +430,42 @@ pub fn parse_samples(
                 id: id.to_string(),
             });
         }
+        // The basis the row's lab value was given on, where the table says:
+        // a value on another basis than the command's would be fitted or
+        // compared as if on it (a dry-basis 16 % taken for 16 % wet).
+        let moisture_basis = match basis_col.map(|i| (i, rec.get(i).unwrap_or(""))) {
+            None | Some((_, "")) => None,
+            Some((i, text)) => {
+                let said = if text.eq_ignore_ascii_case("wet") {
+                    Basis::Wet
+                } else if text.eq_ignore_ascii_case("dry") {
+                    Basis::Dry
+                } else {
+                    return Err(SampleError::BadValue {
+                        file: file.clone(),
+                        line,
+                        column: i + 1,
+                        field: BASIS_COLUMN,
+                        value: text.to_string(),
+                        expected: "wet or dry (or an empty cell)",
+                    });
+                };
+                if said != basis {
+                    return Err(SampleError::BadValue {
+                        file: file.clone(),
+                        line,
+                        column: i + 1,
+                        field: BASIS_COLUMN,
+                        value: text.to_string(),
+                        expected: match basis {
+                            Basis::Wet => "wet: this command takes the lab values on a wet basis; give it --basis dry for a table on a dry basis (or convert the values, M_wb = 100 M_db / (100 + M_db), and the column with them)",
+                            Basis::Dry => "dry: this command takes the lab values on a dry basis (--basis dry); leave that out for a table on a wet basis (or convert the values, M_db = 100 M_wb / (100 - M_wb), and the column with them)",
+                        },
+                    });
+                }
+                Some(said)
+            }
+        };
         let moisture_pct = match (field(1).1, moisture) {
             ("", MoistureColumn::Optional) => None,
             ("", MoistureColumn::Required) => {
@@ -519,6 +566,7 @@ pub fn parse_samples(
             eps_re,
             eps_im,
             bulk_density_kg_m3,
+            moisture_basis,
             line,
         });
     }
@@ -555,16 +603,21 @@ impl SampleSet {
 
 /// Writes samples as CSV with the columns in [`COLUMNS`] order (an empty
 /// `moisture_pct` where unknown; numbers by [`crate::numbers`]' column
-/// rules), and [`DENSITY_COLUMN`] last when any sample has a density.
+/// rules), then [`DENSITY_COLUMN`] when any sample has a density and
+/// [`BASIS_COLUMN`] when any says its basis.
 ///
 /// # Errors
 /// I/O errors from `out`.
 pub fn write_samples<W: std::io::Write>(out: W, samples: &[RefSample]) -> std::io::Result<()> {
     let mut w = csv::Writer::from_writer(out);
     let density = samples.iter().any(|s| s.bulk_density_kg_m3.is_some());
+    let basis = samples.iter().any(|s| s.moisture_basis.is_some());
     let mut header = COLUMNS.to_vec();
     if density {
         header.push(DENSITY_COLUMN);
+    }
+    if basis {
+        header.push(BASIS_COLUMN);
     }
     w.write_record(&header)?;
     for s in samples {
@@ -589,6 +642,16 @@ pub fn write_samples<W: std::io::Write>(out: W, samples: &[RefSample]) -> std::i
             row.push(
                 s.bulk_density_kg_m3
                     .map_or(String::new(), |v| v.to_string()),
+            );
+        }
+        if basis {
+            row.push(
+                s.moisture_basis
+                    .map_or("", |b| match b {
+                        Basis::Wet => "wet",
+                        Basis::Dry => "dry",
+                    })
+                    .to_string(),
             );
         }
         w.write_record(row)?;
@@ -872,6 +935,64 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
                 "{bad}: {e}"
             );
         }
+    }
+
+    /// The optional basis column: read where given (any case; empty cells
+    /// say nothing), a row on another basis than the command's refused
+    /// naming line, column and what to do (a dry-basis table is not fitted
+    /// as a wet one), a word other than wet or dry refused, and the
+    /// writer keeps it.
+    #[test]
+    fn the_optional_basis_column() {
+        let head = "sample_id,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im,moisture_basis";
+        let row = "1000000,6.1,12.5,20000000,4.9,0.8";
+        let wet = format!("{head}\nS1,12.3,21.5,{row},wet\nS2,13.1,22.0,{row},\n");
+        let s = parse(&wet).expect("valid table");
+        assert_eq!(s.samples[0].moisture_basis, Some(Basis::Wet));
+        assert_eq!(s.samples[1].moisture_basis, None);
+        let mut buf = Vec::new();
+        write_samples(&mut buf, &s.samples).expect("write");
+        let back = parse(std::str::from_utf8(&buf).unwrap()).unwrap();
+        assert_eq!(
+            back.samples
+                .iter()
+                .map(|s| s.moisture_basis)
+                .collect::<Vec<_>>(),
+            [Some(Basis::Wet), None]
+        );
+        // 16.2 % dry basis taken for a wet-basis value would be 2.2 % off.
+        let dry = format!("{head}\nS1,12.3,21.5,{row},\nS2,16.2,22.0,{row},DRY\n");
+        let e = parse(&dry)
+            .expect_err("a dry row under a wet command")
+            .to_string();
+        assert!(
+            e.contains("line 3, column 10 (moisture_basis)") && e.contains("give it --basis dry"),
+            "{e}"
+        );
+        let on_dry = parse_samples(
+            Path::new("lab.csv"),
+            dry.as_bytes(),
+            MoistureColumn::Required,
+            Basis::Dry,
+        )
+        .expect("on a dry basis");
+        assert_eq!(on_dry.samples[1].moisture_basis, Some(Basis::Dry));
+        let e = parse_samples(
+            Path::new("lab.csv"),
+            wet.as_bytes(),
+            MoistureColumn::Required,
+            Basis::Dry,
+        )
+        .expect_err("a wet row under a dry command")
+        .to_string();
+        assert!(
+            e.contains("line 2, column 10 (moisture_basis)") && e.contains("leave that out"),
+            "{e}"
+        );
+        let e = parse(&format!("{head}\nS1,12.3,21.5,{row},moist\n"))
+            .expect_err("not a basis")
+            .to_string();
+        assert!(e.contains("wet or dry"), "{e}");
     }
 
     /// Regression: a repeated sample id or column name of 10,000
