@@ -296,6 +296,30 @@ fn capture_push_list_select_and_history() {
         o.stderr
     );
     assert!(!out.exists());
+    // Nor is a wet-basis capture added to it: refused before the first
+    // sample is measured (nothing to lose), the table as it was.
+    let before = std::fs::read(&dry).unwrap();
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "capture",
+            "--port",
+            sim.port_str(),
+            "--out",
+            dry.to_str().unwrap(),
+            "--readings",
+            "1",
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 3, "{}", o.stderr);
+    assert!(
+        o.stderr.contains("line 2, column 10 (moisture_basis)")
+            && o.stderr.contains("nothing was captured"),
+        "{}",
+        o.stderr
+    );
+    assert_eq!(std::fs::read(&dry).unwrap(), before);
 
     // Two product calibrations fitted from a reference table (values made
     // up for the test; only their ids and names matter here). 24 samples:

@@ -28,6 +28,14 @@ pub enum CaptureError {
     /// The existing table is not a sample table.
     #[error("{0}")]
     Samples(#[from] SampleError),
+    /// The table to add to holds rows on another basis (or that are no
+    /// sample table): said before anything is measured.
+    #[error("{source}; nothing was captured: capture on that table's basis (--basis), or into another --out")]
+    Existing {
+        /// Why the table cannot take this capture's rows.
+        #[source]
+        source: SampleError,
+    },
     /// The table could not be written.
     #[error("writing {path}: {source}")]
     Write {
@@ -85,6 +93,14 @@ pub fn capture(
         Basis::Wet => ("wet", 100.0),
         Basis::Dry => ("dry", fringe_quality::samples::MAX_DRY_BASIS_PCT),
     };
+    // The table added to is read on this capture's basis now, not after
+    // the first sample: one it cannot take (rows on the other basis, a
+    // wet-basis value of 100 % or more) is refused before anything is
+    // measured, so no measured sample is lost to it.
+    if out.exists() {
+        read_samples(out, MoistureColumn::Optional, basis)
+            .map_err(|source| CaptureError::Existing { source })?;
+    }
     let mut rows: Vec<RefSample> = Vec::new();
     while let Some(id) = guide.ask("sample id (empty to finish):")? {
         if rows.iter().any(|r| r.sample_id == id) {

@@ -14,7 +14,7 @@
 //! | `freq1_hz`, `freq2_hz` | Hz | the two excitation frequencies, the same on every row, `freq1_hz < freq2_hz` |
 //! | `eps1_re`, `eps1_im`, `eps2_re`, `eps2_im` | - | permittivity eps* = eps' - j eps'' at each frequency, `eps*_im` = eps'' >= 0 |
 //! | `bulk_density_kg_m3` (optional) | kg/m^3 | the bulk density at the sensor where the plant measures it (a weigh belt, a gauge), 10-5000; cells may be empty |
-//! | `moisture_basis` (optional) | `wet` or `dry` | the basis the lab value was given on (`cal capture` writes it); a row on another basis than the command's is refused, naming it; cells may be empty |
+//! | `moisture_basis` (optional) | `wet` or `dry` (also `wb`, `db`, `wet basis`, `dry basis`, any case) | the basis the lab value was given on (`cal capture` writes it); a lab value on another basis than the command's is refused, naming it; cells may be empty |
 //!
 //! Every error names the file and, where it has one, the line (1-based,
 //! counting the header as line 1), the column (1-based) and the field.
@@ -436,9 +436,10 @@ pub fn parse_samples(
         let moisture_basis = match basis_col.map(|i| (i, rec.get(i).unwrap_or(""))) {
             None | Some((_, "")) => None,
             Some((i, text)) => {
-                let said = if text.eq_ignore_ascii_case("wet") {
+                let word = text.to_ascii_lowercase();
+                let said = if ["wet", "wb", "w.b.", "wet basis"].contains(&word.as_str()) {
                     Basis::Wet
-                } else if text.eq_ignore_ascii_case("dry") {
+                } else if ["dry", "db", "d.b.", "dry basis"].contains(&word.as_str()) {
                     Basis::Dry
                 } else {
                     return Err(SampleError::BadValue {
@@ -450,7 +451,9 @@ pub fn parse_samples(
                         expected: "wet or dry (or an empty cell)",
                     });
                 };
-                if said != basis {
+                // Only a lab value has a basis to disagree with (a row
+                // captured before the lab was done has none yet).
+                if said != basis && !field(1).1.is_empty() {
                     return Err(SampleError::BadValue {
                         file: file.clone(),
                         line,
@@ -458,8 +461,8 @@ pub fn parse_samples(
                         field: BASIS_COLUMN,
                         value: text.to_string(),
                         expected: match basis {
-                            Basis::Wet => "wet: this command takes the lab values on a wet basis; give it --basis dry for a table on a dry basis (or convert the values, M_wb = 100 M_db / (100 + M_db), and the column with them)",
-                            Basis::Dry => "dry: this command takes the lab values on a dry basis (--basis dry); leave that out for a table on a wet basis (or convert the values, M_db = 100 M_wb / (100 - M_wb), and the column with them)",
+                            Basis::Wet => "wet: the lab values are read on a wet basis here (cal fit and cal capture without --basis dry; cal predict and cal adjust with a wet-basis calibration). For a table on a dry basis give cal fit or cal capture --basis dry, or compare it with a dry-basis calibration; or convert its values, M_wb = 100 M_db / (100 + M_db), and set moisture_basis to wet",
+                            Basis::Dry => "dry: the lab values are read on a dry basis here (cal fit and cal capture with --basis dry; cal predict and cal adjust with a dry-basis calibration). For a table on a wet basis leave out --basis dry, or compare it with a wet-basis calibration; or convert its values, M_db = 100 M_wb / (100 - M_wb), and set moisture_basis to dry",
                         },
                     });
                 }
@@ -966,7 +969,8 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
             .expect_err("a dry row under a wet command")
             .to_string();
         assert!(
-            e.contains("line 3, column 10 (moisture_basis)") && e.contains("give it --basis dry"),
+            e.contains("line 3, column 10 (moisture_basis)")
+                && e.contains("give cal fit or cal capture --basis dry"),
             "{e}"
         );
         let on_dry = parse_samples(
@@ -986,13 +990,30 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
         .expect_err("a wet row under a dry command")
         .to_string();
         assert!(
-            e.contains("line 2, column 10 (moisture_basis)") && e.contains("leave that out"),
+            e.contains("line 2, column 10 (moisture_basis)") && e.contains("leave out --basis dry"),
             "{e}"
         );
         let e = parse(&format!("{head}\nS1,12.3,21.5,{row},moist\n"))
             .expect_err("not a basis")
             .to_string();
         assert!(e.contains("wet or dry"), "{e}");
+        // The trade's short forms, any case.
+        let words = format!("{head}\nS1,12.3,21.5,{row},WB\nS2,13.1,22.0,{row},Wet Basis\n");
+        assert!(parse(&words)
+            .unwrap()
+            .samples
+            .iter()
+            .all(|s| s.moisture_basis == Some(Basis::Wet)));
+        // A row without a lab value yet (captured before the lab was done)
+        // has nothing on another basis: `cal predict` takes it.
+        let spectra = format!("{head}\nS1,,21.5,{row},dry\n");
+        assert!(parse_samples(
+            Path::new("lab.csv"),
+            spectra.as_bytes(),
+            MoistureColumn::Optional,
+            Basis::Wet,
+        )
+        .is_ok());
     }
 
     /// Regression: a repeated sample id or column name of 10,000

@@ -24,7 +24,7 @@ pub enum FitModelArg {
 )]
 pub struct FitArgs {
     /// Reference-sample table (CSV: sample_id, moisture_pct, temperature_c, freq1_hz, eps1_re, eps1_im, freq2_hz, eps2_re, eps2_im;
-    /// optional bulk_density_kg_m3).
+    /// optional bulk_density_kg_m3, moisture_basis).
     #[arg(long, value_name = "FILE.csv")]
     pub samples: PathBuf,
     /// Model to fit.
