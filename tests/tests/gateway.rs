@@ -429,34 +429,8 @@ fn alarm_limits_of_the_site_file_mark_each_device() {
             "tag = \"test 0\"\n[device.alarm]\nmoisture_low_pct = 11.5\n",
         );
     std::fs::write(&site, text).expect("site");
-    let gw = Running::start(&site, dir.path(), "gw");
-    let out = dir.path().join("gw.out");
-    let latest = || -> Vec<Value> {
-        let text = std::fs::read_to_string(&out).unwrap_or_default();
-        let mut by_unit: BTreeMap<u64, Value> = BTreeMap::new();
-        for v in text
-            .lines()
-            .filter_map(|l| serde_json::from_str::<Value>(l).ok())
-            .filter(|v| v["type"] == "status" && v["moisture_pct"].is_number())
-        {
-            by_unit.insert(v["unit"].as_u64().unwrap_or(0), v);
-        }
-        by_unit.into_values().collect()
-    };
-    poll_until(
-        DEADLINE,
-        || {
-            format!(
-                "no status line with a reading for each device:\n{}",
-                gw.stderr()
-            )
-        },
-        || latest().len() == 3,
-    );
-    gw.signal("-TERM");
-    let (code, err) = gw.wait();
-    assert_eq!(code, 0, "{err}");
-    let alarms: Vec<Value> = latest().iter().map(|v| v["alarms"].clone()).collect();
+    let (units, err) = run_until_each_device_reads(&site, dir.path());
+    let alarms: Vec<Value> = units.iter().map(|v| v["alarms"].clone()).collect();
     assert_eq!(
         alarms,
         [
@@ -511,34 +485,7 @@ fn a_dry_basis_device_is_checked_against_a_wet_band_on_the_bands_basis() {
         ),
     )
     .expect("site");
-    let gw = Running::start(&site, dir.path(), "gw");
-    let out = dir.path().join("gw.out");
-    let latest = || -> Vec<Value> {
-        let text = std::fs::read_to_string(&out).unwrap_or_default();
-        let mut by_unit: BTreeMap<u64, Value> = BTreeMap::new();
-        for v in text
-            .lines()
-            .filter_map(|l| serde_json::from_str::<Value>(l).ok())
-            .filter(|v| v["type"] == "status" && v["moisture_pct"].is_number())
-        {
-            by_unit.insert(v["unit"].as_u64().unwrap_or(0), v);
-        }
-        by_unit.into_values().collect()
-    };
-    poll_until(
-        DEADLINE,
-        || {
-            format!(
-                "no status line with a reading for each device:\n{}",
-                gw.stderr()
-            )
-        },
-        || latest().len() == 3,
-    );
-    gw.signal("-TERM");
-    let (code, err) = gw.wait();
-    assert_eq!(code, 0, "{err}");
-    let units = latest();
+    let (units, err) = run_until_each_device_reads(&site, dir.path());
     let bases: Vec<&Value> = units.iter().map(|v| &v["moisture_basis"]).collect();
     assert_eq!(bases, ["dry", "wet", "wet"], "{err}");
     let m0 = units[0]["moisture_pct"].as_f64().unwrap_or(f64::NAN);
@@ -573,4 +520,39 @@ fn a_dry_basis_device_is_checked_against_a_wet_band_on_the_bands_basis() {
             && err.contains("% wet basis)"),
         "{err}"
     );
+}
+
+/// Runs the gateway of `site` (`--json`, its output in `dir`) until a
+/// status line with a reading has come for each of the three devices,
+/// then stops it with SIGTERM (exit 0): each unit's latest such line, in
+/// unit order, and its stderr.
+fn run_until_each_device_reads(site: &Path, dir: &Path) -> (Vec<Value>, String) {
+    let gw = Running::start(site, dir, "gw");
+    let out = dir.join("gw.out");
+    let latest = || -> Vec<Value> {
+        let text = std::fs::read_to_string(&out).unwrap_or_default();
+        let mut by_unit: BTreeMap<u64, Value> = BTreeMap::new();
+        for v in text
+            .lines()
+            .filter_map(|l| serde_json::from_str::<Value>(l).ok())
+            .filter(|v| v["type"] == "status" && v["moisture_pct"].is_number())
+        {
+            by_unit.insert(v["unit"].as_u64().unwrap_or(0), v);
+        }
+        by_unit.into_values().collect()
+    };
+    poll_until(
+        DEADLINE,
+        || {
+            format!(
+                "no status line with a reading for each device:\n{}",
+                gw.stderr()
+            )
+        },
+        || latest().len() == 3,
+    );
+    gw.signal("-TERM");
+    let (code, err) = gw.wait();
+    assert_eq!(code, 0, "{err}");
+    (latest(), err)
 }
