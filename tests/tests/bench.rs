@@ -180,16 +180,7 @@ fn capture_push_list_select_and_history() {
     // Capture: two samples, one lab value given, one left for later, and a
     // repeated id refused.
     let csv = sim.path("lab.csv");
-    let mut c = Interactive::spawn(&mut fringe(&[
-        "cal",
-        "capture",
-        "--port",
-        sim.port_str(),
-        "--out",
-        csv.to_str().unwrap(),
-        "--readings",
-        "2",
-    ]));
+    let mut c = Interactive::spawn(&mut capture(&sim, &csv, &["--readings", "2"]));
     c.expect("sample id", 1, PROMPT);
     c.send("HGM-T01");
     c.expect("lab moisture", 1, PROMPT);
@@ -243,18 +234,11 @@ fn capture_push_list_select_and_history() {
     // On a dry basis (green chips, water over dry mass) a lab value above
     // 100 % is taken.
     let dry = sim.path("dry.csv");
-    let mut c = Interactive::spawn(&mut fringe(&[
-        "cal",
-        "capture",
-        "--port",
-        sim.port_str(),
-        "--out",
-        dry.to_str().unwrap(),
-        "--readings",
-        "1",
-        "--basis",
-        "dry",
-    ]));
+    let mut c = Interactive::spawn(&mut capture(
+        &sim,
+        &dry,
+        &["--readings", "1", "--basis", "dry"],
+    ));
     c.expect("sample id", 1, PROMPT);
     c.send("HGM-D01");
     c.expect("% dry basis", 1, PROMPT);
@@ -299,19 +283,7 @@ fn capture_push_list_select_and_history() {
     // Nor is a wet-basis capture added to it: refused before the first
     // sample is measured (nothing to lose), the table as it was.
     let before = std::fs::read(&dry).unwrap();
-    let o = run(
-        &mut fringe(&[
-            "cal",
-            "capture",
-            "--port",
-            sim.port_str(),
-            "--out",
-            dry.to_str().unwrap(),
-            "--readings",
-            "1",
-        ]),
-        LIMIT,
-    );
+    let o = run(&mut capture(&sim, &dry, &["--readings", "1"]), LIMIT);
     assert_eq!(o.code, 3, "{}", o.stderr);
     assert!(
         o.stderr.contains("line 2, column 10 (moisture_basis)")
@@ -817,6 +789,14 @@ fn a_push_that_changes_the_basis_is_pointed_out() {
         "{}",
         o.stdout
     );
+}
+
+/// `fringe cal capture` from the simulated device into `out`, with `extra`.
+fn capture(sim: &Sim, out: &Path, extra: &[&str]) -> std::process::Command {
+    let mut args = vec!["cal", "capture", "--port", sim.port_str(), "--out"];
+    args.push(out.to_str().unwrap());
+    args.extend(extra);
+    fringe(&args)
 }
 
 /// `cal push --force` of `cal` to the simulated device (activated or not),
