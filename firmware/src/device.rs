@@ -319,6 +319,9 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     /// ([`Reading::on_wire`]), and when it was taken (for the Modbus
     /// registers: the same numbers a host, and so the gateway, receives).
     latest: Option<(Reading, u64)>,
+    /// The moisture basis of the calibration [`Device::latest`]'s reading
+    /// was computed with (none without one), for the Modbus registers.
+    latest_basis: Option<Basis>,
     /// The loop was sent to its failure level by the stale-output timeout.
     stale: bool,
     chain: ChainState,
@@ -550,6 +553,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             last_moisture: None,
             last_valid_ms: now_ms,
             latest: None,
+            latest_basis: None,
             stale: false,
             chain: ChainState::default(),
             chain_valid: false,
@@ -697,6 +701,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             age_s: u32::try_from(age_ms / 1000).unwrap_or(u32::MAX),
             stale: reading.is_some() && age_ms > u64::from(self.settings.stale_timeout_ms),
             connected: true,
+            basis: self.latest_basis,
         }
     }
 
@@ -1519,6 +1524,10 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         }
         let was_fault = self.output_fault;
         self.latest = Some((reading.on_wire(), now_ms));
+        self.latest_basis = self.active.as_ref().map(|a| match a.cal.basis {
+            fringe_calibration::moisture::Basis::Wet => Basis::Wet,
+            fringe_calibration::moisture::Basis::Dry => Basis::Dry,
+        });
         self.last_moisture = reading.moisture_pct.filter(|m| m.is_finite());
         if self.last_moisture.is_some() {
             self.last_valid_ms = now_ms;

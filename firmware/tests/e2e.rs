@@ -173,9 +173,12 @@ fn modbus_registers_are_the_map_of_the_reading_sent() {
             age_s: ((now - taken) / 1000) as u32,
             stale: false,
             connected: true,
+            basis: Some(fringe_protocol::Basis::Wet),
         });
         let words = read(&b, now);
         assert_eq!(words, want);
+        // The simulator's exact calibration reports on a wet basis: 1.
+        assert_eq!(words[15], 1);
         assert_eq!(words[STATUS as usize] & STATUS_NO_VALUE, 0, "a valid value");
         // Past the stale-output timeout the same reading shows stale, with
         // no valid value, and its age in seconds.
@@ -186,6 +189,7 @@ fn modbus_registers_are_the_map_of_the_reading_sent() {
             age_s: ((late - taken) / 1000) as u32,
             stale: true,
             connected: true,
+            basis: Some(fringe_protocol::Basis::Wet),
         });
         assert_eq!(words, want);
         assert_eq!(

@@ -19,8 +19,11 @@
 //! 10     u16   boot counter of the reading (low 16 bits)
 //! 11     u16   quality flags of the reading (the device's own flag bits)
 //! 12-13  f32   known value 1234.5 (0x449A, 0x5000): checks the word order
-//! 14     u16   map version (1)
-//! 15-19        reserved, read as 0
+//! 14     u16   map version (2)
+//! 15     u16   moisture basis of the reading's calibration: 0 not known
+//!              (or no calibration), 1 wet, 2 dry (map version 2; read as 0
+//!              in version 1)
+//! 16-19        reserved, read as 0
 //! 20     i16   moisture x 100 (0x8000: no valid value)
 //! 21     i16   uncertainty x 100 (0x8000: no valid value)
 //! 22     i16   temperature x 10 (0x8000: no valid value)
@@ -42,7 +45,7 @@ use fringe_protocol::{Flags, Reading};
 /// Registers in the map (addresses `0..MAP_LEN`).
 pub const MAP_LEN: usize = 25;
 /// Version of this map, in register [`VERSION`].
-pub const MAP_VERSION: u16 = 1;
+pub const MAP_VERSION: u16 = 2;
 
 /// Address of the moisture float32.
 pub const MOISTURE: u16 = 0;
@@ -64,6 +67,13 @@ pub const FLAGS: u16 = 11;
 pub const KNOWN_VALUE: u16 = 12;
 /// Address of the map version.
 pub const VERSION: u16 = 14;
+/// Address of the moisture basis ([`BASIS_WET`], [`BASIS_DRY`], 0 not
+/// known).
+pub const MOISTURE_BASIS: u16 = 15;
+/// [`MOISTURE_BASIS`]: water over wet mass.
+pub const BASIS_WET: u16 = 1;
+/// [`MOISTURE_BASIS`]: water over dry mass (can exceed 100 %).
+pub const BASIS_DRY: u16 = 2;
 /// Address of the scaled moisture (x 100).
 pub const SCALED_MOISTURE: u16 = 20;
 /// Address of the scaled uncertainty (x 100).
@@ -130,6 +140,9 @@ pub struct Snapshot {
     pub stale: bool,
     /// Whether the source (for the gateway: the device link) is up.
     pub connected: bool,
+    /// The moisture basis of the reading's product calibration, where
+    /// known.
+    pub basis: Option<fringe_protocol::Basis>,
 }
 
 /// The status word of a snapshot.
@@ -233,6 +246,11 @@ pub fn map(s: &Snapshot) -> [u16; MAP_LEN] {
     m[FLAGS as usize] = r.map_or(0, |r| r.flags.bits());
     put_f32(&mut m, KNOWN_VALUE, KNOWN);
     m[VERSION as usize] = MAP_VERSION;
+    m[MOISTURE_BASIS as usize] = match s.basis.filter(|_| r.is_some()) {
+        None => 0,
+        Some(fringe_protocol::Basis::Wet) => BASIS_WET,
+        Some(fringe_protocol::Basis::Dry) => BASIS_DRY,
+    };
     m[SCALED_MOISTURE as usize] = scaled(moisture, 100.0);
     m[SCALED_UNCERTAINTY as usize] = scaled(uncertainty, 100.0);
     m[SCALED_TEMPERATURE as usize] = scaled(temperature, 10.0);
@@ -334,6 +352,7 @@ mod tests {
             age_s: 4,
             stale: false,
             connected: true,
+            basis: None,
         }
     }
 
@@ -354,11 +373,34 @@ mod tests {
         );
         assert_eq!(m[AGE as usize], 4);
         assert_eq!(m[BOOT as usize], 3);
-        assert_eq!(m[VERSION as usize], 1);
+        assert_eq!(m[VERSION as usize], 2);
         assert_eq!(m[SCALED_MOISTURE as usize], 1437);
         assert_eq!(m[SCALED_UNCERTAINTY as usize], 12);
         assert_eq!(m[SCALED_TEMPERATURE as usize], 215);
         assert_eq!(m[SCALED_AGE as usize], 4);
+        // Basis not known: 0, as register 15 read in map version 1.
+        assert_eq!(m[MOISTURE_BASIS as usize], 0);
+    }
+
+    /// Register 15 says the basis of the reading's calibration (1 wet, 2
+    /// dry); with no reading it is 0, whatever the snapshot says.
+    #[test]
+    fn the_basis_register() {
+        let with = |basis| Snapshot {
+            basis,
+            ..snap(Some(reading(Some(140.0), Flags::empty())))
+        };
+        assert_eq!(map(&with(Some(fringe_protocol::Basis::Wet)))[15], 1);
+        assert_eq!(map(&with(Some(fringe_protocol::Basis::Dry)))[15], 2);
+        assert_eq!(map(&with(None))[15], 0);
+        let none = Snapshot {
+            basis: Some(fringe_protocol::Basis::Dry),
+            ..snap(None)
+        };
+        assert_eq!(map(&none)[15], 0);
+        for r in 16..20 {
+            assert_eq!(map(&with(Some(fringe_protocol::Basis::Dry)))[r], 0, "{r}");
+        }
     }
 
     #[test]
@@ -481,6 +523,7 @@ mod tests {
                 age_s: age,
                 stale,
                 connected,
+                basis: None,
             };
             let map = map(&s);
             let f = f32_at(&map, MOISTURE);
@@ -519,6 +562,7 @@ mod tests {
             age_s: 3,
             stale: false,
             connected: true,
+            basis: None,
         });
         let lo = with_word_order(hi, WordOrder::LowFirst);
         // The known value 1234.5 = 0x449A5000 (IEEE 754 binary32,

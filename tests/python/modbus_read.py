@@ -34,6 +34,7 @@ def decode(client, regs):
         "boot": regs[10],
         "known_value": f32(regs[12:14], dt),
         "version": regs[14],
+        "basis": regs[15],
         "scaled_moisture": client.convert_from_registers([regs[20]], client.DATATYPE.INT16),
     }
 

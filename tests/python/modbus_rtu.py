@@ -63,6 +63,7 @@ def decode(client, regs):
         "flags": regs[11],
         "known_value": f32(regs[12:14]),
         "version": regs[14],
+        "basis": regs[15],
         "scaled_moisture": client.convert_from_registers([regs[20]], dt.INT16),
         "scaled_uncertainty": client.convert_from_registers([regs[21]], dt.INT16),
         "scaled_temperature": client.convert_from_registers([regs[22]], dt.INT16),

@@ -197,6 +197,8 @@ fn pymodbus_reads_the_device_over_modbus_rtu_on_qemu() {
             age_s,
             stale: false,
             connected: true,
+            // The simulator's exact calibration: a wet basis.
+            basis: Some(fringe_protocol::Basis::Wet),
         });
         assert_eq!(regs, want, "registers of reading {}", r.seq);
         assert_eq!(regs[6] & STATUS_NO_VALUE, 0, "a valid value");
@@ -206,7 +208,8 @@ fn pymodbus_reads_the_device_over_modbus_rtu_on_qemu() {
         assert_eq!(f32_of(&read["uncertainty_pct"]), Some(r.uncertainty_pct));
         assert_eq!(f32_of(&read["temperature_c"]), Some(r.temperature_c));
         assert_eq!(f32_of(&read["known_value"]), Some(1234.5));
-        assert_eq!(read["version"], 1);
+        assert_eq!(read["version"], 2);
+        assert_eq!(read["basis"], 1, "wet");
         assert_eq!(read["flags"].as_u64(), Some(u64::from(r.flags.bits())));
         assert_eq!(
             read["scaled_moisture"].as_i64(),

@@ -47,6 +47,7 @@ fn pymodbus_reads_the_register_map_of_every_unit() {
     table.register(3, "PLT-A-0003");
     let now = Instant::now();
     table.update(1, &reading(2, 70_001, Some(14.37), Flags::empty()), now);
+    table.set_calibration(1, Some("wood chips, dry basis".into()), Some("dry"));
     table.update(2, &reading(1, 12, None, Flags::NOT_CALIBRATED), now);
     // Unit 3: registered, no reading yet.
     let server = ModbusServer::start("127.0.0.1:0".parse().unwrap(), Arc::clone(&table))
@@ -74,7 +75,11 @@ fn pymodbus_reads_the_register_map_of_every_unit() {
     assert_eq!(u1["status"].as_u64(), Some(0), "{v}");
     assert_eq!(u1["scaled_moisture"].as_i64(), Some(1437), "{v}");
     assert_eq!(u1["known_value"].as_f64(), Some(1234.5), "{v}");
-    assert_eq!(u1["version"].as_u64(), Some(1), "{v}");
+    assert_eq!(u1["version"].as_u64(), Some(2), "{v}");
+    // Unit 1's calibration reports on a dry basis: register 15 is 2; unit
+    // 2's basis is not known: 0.
+    assert_eq!(u1["basis"].as_u64(), Some(2), "{v}");
+    assert_eq!(v["units"]["2"]["basis"].as_u64(), Some(0), "{v}");
     assert!(u1["age_s"].as_u64().unwrap_or(99) < 30, "{v}");
     // Unit 2: not calibrated: no value (NaN, 0x8000 as -32768), bits 0 and 3.
     let u2 = &v["units"]["2"];

@@ -227,6 +227,11 @@ impl LiveTable {
             age_s: u32::try_from(age.as_secs()).unwrap_or(u32::MAX),
             stale: age > self.stale_after,
             connected: e.connected,
+            basis: match e.moisture_basis {
+                Some("wet") => Some(fringe_protocol::Basis::Wet),
+                Some("dry") => Some(fringe_protocol::Basis::Dry),
+                _ => None,
+            },
         })
     }
 

@@ -214,6 +214,7 @@ pub fn reading_metrics(
         age_s: 0,
         stale: false,
         connected: true,
+        basis: None,
     });
     let valid = status & fringe_registers::STATUS_NO_VALUE == 0;
     let moisture = r.moisture_pct.filter(|_| valid).map(Value::FloatValue);
