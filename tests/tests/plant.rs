@@ -47,7 +47,11 @@ fn pymodbus_reads_the_register_map_of_every_unit() {
     table.register(3, "PLT-A-0003");
     let now = Instant::now();
     table.update(1, &reading(2, 70_001, Some(14.37), Flags::empty()), now);
-    table.set_calibration(1, Some("wood chips, dry basis".into()), Some("dry"));
+    table.set_calibration(
+        1,
+        Some("wood chips, dry basis".into()),
+        Some(fringe_protocol::Basis::Dry),
+    );
     table.update(2, &reading(1, 12, None, Flags::NOT_CALIBRATED), now);
     // Unit 3: registered, no reading yet.
     let server = ModbusServer::start("127.0.0.1:0".parse().unwrap(), Arc::clone(&table))
@@ -477,7 +481,7 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
     table.set_calibration(
         1,
         Some("wheat 2026 (relaxation), id 1a2b3c4d".into()),
-        Some("dry"),
+        Some(fringe_protocol::Basis::Dry),
     );
     let web = WebServer::start(
         "127.0.0.1:0".parse().unwrap(),

@@ -4,7 +4,7 @@ use std::collections::{BTreeMap, VecDeque};
 use std::sync::RwLock;
 use std::time::{Duration, Instant};
 
-use fringe_protocol::Reading;
+use fringe_protocol::{Basis, Reading};
 use fringe_registers::Snapshot;
 
 /// Points of trend history kept per device (at one point per
@@ -50,7 +50,7 @@ struct Entry {
     history: VecDeque<Point>,
     alarms: VecDeque<AlarmNote>,
     calibration: Option<String>,
-    moisture_basis: Option<&'static str>,
+    moisture_basis: Option<Basis>,
 }
 
 /// Everything known of one device, for the live page.
@@ -126,10 +126,46 @@ impl LiveTable {
     /// `time_ms` for the trend (a re-based time for a device whose clock
     /// was unset).
     pub fn update_at(&self, unit: u8, reading: &Reading, at: Instant, time_ms: u64) {
+        self.put(unit, reading, at, time_ms, None);
+    }
+
+    /// As [`LiveTable::update`], with the product calibration the reading
+    /// was computed with, in words, and the basis of its moisture, set
+    /// with it (under one lock, so that no read sees the reading with the
+    /// basis of another) and only where the reading is taken.
+    pub fn update_calibrated(
+        &self,
+        unit: u8,
+        reading: &Reading,
+        at: Instant,
+        calibration: Option<String>,
+        basis: Option<Basis>,
+    ) {
+        self.put(
+            unit,
+            reading,
+            at,
+            reading.time_ms,
+            Some((calibration, basis)),
+        );
+    }
+
+    fn put(
+        &self,
+        unit: u8,
+        reading: &Reading,
+        at: Instant,
+        time_ms: u64,
+        calibration: Option<(Option<String>, Option<Basis>)>,
+    ) {
         let mut units = self.units.write().unwrap_or_else(|e| e.into_inner());
         if let Some(e) = units.get_mut(&unit) {
             if e.reading.as_ref().is_none_or(|(r, _)| r.seq <= reading.seq) {
                 e.reading = Some((*reading, at));
+                if let Some((text, basis)) = calibration {
+                    e.calibration = text;
+                    e.moisture_basis = basis;
+                }
                 let due = e
                     .history
                     .back()
@@ -170,8 +206,9 @@ impl LiveTable {
         }
     }
 
-    /// The product calibration in force on unit `unit`, in words.
-    pub fn set_calibration(&self, unit: u8, text: Option<String>, basis: Option<&'static str>) {
+    /// The product calibration in force on unit `unit`, in words, and the
+    /// basis of its moisture.
+    pub fn set_calibration(&self, unit: u8, text: Option<String>, basis: Option<Basis>) {
         let mut units = self.units.write().unwrap_or_else(|e| e.into_inner());
         if let Some(e) = units.get_mut(&unit) {
             e.calibration = text;
@@ -199,7 +236,10 @@ impl LiveTable {
                     history: e.history.iter().copied().collect(),
                     alarms: e.alarms.iter().cloned().collect(),
                     calibration: e.calibration.clone(),
-                    moisture_basis: e.moisture_basis,
+                    moisture_basis: e.moisture_basis.map(|b| match b {
+                        Basis::Wet => "wet",
+                        Basis::Dry => "dry",
+                    }),
                 })
             })
             .collect()
@@ -227,11 +267,7 @@ impl LiveTable {
             age_s: u32::try_from(age.as_secs()).unwrap_or(u32::MAX),
             stale: age > self.stale_after,
             connected: e.connected,
-            basis: match e.moisture_basis {
-                Some("wet") => Some(fringe_protocol::Basis::Wet),
-                Some("dry") => Some(fringe_protocol::Basis::Dry),
-                _ => None,
-            },
+            basis: e.moisture_basis,
         })
     }
 

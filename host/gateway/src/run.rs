@@ -1193,7 +1193,6 @@ impl<S: RecordStore> Worker<S> {
         let serial = serial.as_deref();
         match n {
             Note::Reading(r) => {
-                self.table.update(unit, r, Instant::now());
                 let basis = self.basis_of(serial, r.product_cal);
                 let known = match basis {
                     BasisOf::Known(b) => Some(b),
@@ -1211,8 +1210,11 @@ impl<S: RecordStore> Worker<S> {
                         r.cell_cal
                     ))
                 };
+                // The reading with its calibration and basis in one write:
+                // Modbus register 15 never shows a reading with another's
+                // basis.
                 self.table
-                    .set_calibration(unit, text, known.map(LimitBasis::word));
+                    .update_calibrated(unit, r, Instant::now(), text, known.map(Into::into));
                 if let (Some(p), Some(s)) = (&self.publisher, serial) {
                     if let Err(e) = p.reading(s, r, known.map(LimitBasis::word)) {
                         self.say(Some(s), Level::Error, format!("MQTT buffer: {e}"));

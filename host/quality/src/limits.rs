@@ -73,6 +73,15 @@ impl From<fringe_protocol::Basis> for LimitBasis {
     }
 }
 
+impl From<LimitBasis> for fringe_protocol::Basis {
+    fn from(b: LimitBasis) -> Self {
+        match b {
+            LimitBasis::Wet => fringe_protocol::Basis::Wet,
+            LimitBasis::Dry => fringe_protocol::Basis::Dry,
+        }
+    }
+}
+
 /// A limit that cannot be used: its key, its value, the rule.
 #[derive(Debug, Clone, PartialEq)]
 pub struct BadLimit {

@@ -99,6 +99,12 @@ struct View {
     alarm: AlarmLimits,
     /// The basis of each product calibration known, by id (wet, dry).
     bases: std::collections::BTreeMap<fringe_protocol::CalId, LimitBasis>,
+    /// A calibration a reading carried whose basis is not known: looked
+    /// up after this poll (the store's records, then the device).
+    unknown: Option<fringe_protocol::CalId>,
+    /// Calibrations neither the store nor the device said the basis of
+    /// (said once).
+    not_found: std::collections::BTreeSet<fringe_protocol::CalId>,
     quiet: bool,
     /// `--json` without `--quiet`: each reading and drift alarm as a JSON line.
     json_lines: bool,
@@ -196,6 +202,12 @@ impl View {
             )),
             Note::Reading(r) => {
                 self.rate.tick(Instant::now());
+                if r.product_cal != fringe_protocol::CalId::NONE
+                    && !self.bases.contains_key(&r.product_cal)
+                    && !self.not_found.contains(&r.product_cal)
+                {
+                    self.unknown = Some(r.product_cal);
+                }
                 let written = if self.broken.is_some() {
                     Ok(())
                 } else if self.json_lines {
@@ -345,9 +357,10 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
     let key = super::optional_key(args.key_file.as_deref(), cfg)?;
     let mut link = super::connect(&args.port, cfg)?;
     // Each reading is checked against the alarm band on the band's basis,
-    // converted where its calibration is on the other one (also after a
-    // calibration selected while this runs, when the database has its
-    // record); said at start when the device's active calibration is.
+    // converted where its calibration is on the other one; said at start
+    // when the device's active calibration is. A reading of a calibration
+    // not known then (the device did not answer this request) has it
+    // looked up after that poll ([`learn_basis`]).
     let active = active_calibration(&mut link);
     if let Some((_, basis)) = active {
         if let Some(converted) = cfg.alarm.on_basis(basis) {
@@ -375,6 +388,38 @@ fn active_calibration(
         .ok()
         .flatten()
         .map(|c| (c.content_id(), LimitBasis::from(c.basis)))
+}
+
+/// The basis of calibration `id`, which a reading carried and `view` did
+/// not know (a calibration selected while the monitor runs): from the
+/// database's records (`cal select` with this database), else the
+/// device's active calibration; said when it is on the band's other basis,
+/// and once when neither says (its readings are then checked as written).
+/// The reading that brought it was checked before this.
+fn learn_basis(view: &mut View, store: &Store, session: &mut Session, id: fringe_protocol::CalId) {
+    let serial = view.serial.clone();
+    view.bases.extend(calibration_bases(store, &serial, None));
+    if let Ok(Some(c)) = session.active_product_cal() {
+        view.bases.insert(c.content_id(), LimitBasis::from(c.basis));
+    }
+    match view.bases.get(&id).copied() {
+        Some(basis) => {
+            if let Some(converted) = view.alarm.on_basis(basis) {
+                view.notice(&format!(
+                    "product calibration {id} reports on a {} basis: alarm band {} % taken as {} %",
+                    basis.word(),
+                    view.alarm.band(),
+                    converted.band()
+                ));
+            }
+        }
+        None => {
+            view.not_found.insert(id);
+            view.notice(&format!(
+                "the moisture basis of product calibration {id} is not known (no record in the database, not the device's active one); its readings are checked against the alarm band as written"
+            ));
+        }
+    }
 }
 
 /// The basis of each product calibration of `serial` the database has a
@@ -420,6 +465,8 @@ fn run(
         rate: RateMeter::default(),
         broken: None,
         bases: calibration_bases(store, link.serial_number(), active),
+        unknown: None,
+        not_found: std::collections::BTreeSet::new(),
     };
     let mut drift = DriftWatch {
         watch: fringe_quality::watch::DriftWatch::new(
@@ -511,6 +558,9 @@ fn run(
             }
             if polled.stopped {
                 return Ok(());
+            }
+            if let Some(id) = view.unknown.take() {
+                learn_basis(&mut view, store, &mut session, id);
             }
             if polled.committed.is_some() {
                 drift.watch(store, &serial, session.summary().streamed, &mut view, false);
