@@ -437,34 +437,28 @@ pub fn parse_samples(
             None | Some((_, "")) => None,
             Some((i, text)) => {
                 let word = text.to_ascii_lowercase();
+                let bad_basis = |expected: &'static str| SampleError::BadValue {
+                    file: file.clone(),
+                    line,
+                    column: i + 1,
+                    field: BASIS_COLUMN,
+                    value: text.to_string(),
+                    expected,
+                };
                 let said = if ["wet", "wb", "w.b.", "wet basis"].contains(&word.as_str()) {
                     Basis::Wet
                 } else if ["dry", "db", "d.b.", "dry basis"].contains(&word.as_str()) {
                     Basis::Dry
                 } else {
-                    return Err(SampleError::BadValue {
-                        file: file.clone(),
-                        line,
-                        column: i + 1,
-                        field: BASIS_COLUMN,
-                        value: text.to_string(),
-                        expected: "wet or dry (or an empty cell)",
-                    });
+                    return Err(bad_basis("wet or dry (or an empty cell)"));
                 };
                 // Only a lab value has a basis to disagree with (a row
                 // captured before the lab was done has none yet).
                 if said != basis && !field(1).1.is_empty() {
-                    return Err(SampleError::BadValue {
-                        file: file.clone(),
-                        line,
-                        column: i + 1,
-                        field: BASIS_COLUMN,
-                        value: text.to_string(),
-                        expected: match basis {
+                    return Err(bad_basis(match basis {
                             Basis::Wet => "wet: the lab values are read on a wet basis here (cal fit and cal capture without --basis dry; cal predict and cal adjust with a wet-basis calibration). For a table on a dry basis give cal fit or cal capture --basis dry, or compare it with a dry-basis calibration; or convert its values, M_wb = 100 M_db / (100 + M_db), and set moisture_basis to wet",
                             Basis::Dry => "dry: the lab values are read on a dry basis here (cal fit and cal capture with --basis dry; cal predict and cal adjust with a dry-basis calibration). For a table on a wet basis leave out --basis dry, or compare it with a wet-basis calibration; or convert its values, M_db = 100 M_wb / (100 - M_wb), and set moisture_basis to dry",
-                        },
-                    });
+                    }));
                 }
                 Some(said)
             }
@@ -672,6 +666,23 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
 ,0.9,S2,1e6,6.4,13.0,2e7,5.0,22.0,13.1
 ";
 
+    /// `text` read on a dry basis, every lab value required.
+    fn parse_dry(text: &str) -> Result<SampleSet, SampleError> {
+        parse_samples(
+            Path::new("lab.csv"),
+            text.as_bytes(),
+            MoistureColumn::Required,
+            Basis::Dry,
+        )
+    }
+
+    /// `s` written by [`write_samples`] and read back (on a wet basis).
+    fn written_back(s: &SampleSet) -> SampleSet {
+        let mut buf = Vec::new();
+        write_samples(&mut buf, &s.samples).expect("write");
+        parse(std::str::from_utf8(&buf).unwrap()).unwrap()
+    }
+
     fn parse(text: &str) -> Result<SampleSet, SampleError> {
         parse_samples(
             Path::new("lab.csv"),
@@ -724,13 +735,7 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
     #[test]
     fn a_dry_basis_takes_moisture_above_100() {
         let text = GOOD.replace(",12.3\n", ",150.0\n");
-        let dry = parse_samples(
-            Path::new("lab.csv"),
-            text.as_bytes(),
-            MoistureColumn::Required,
-            Basis::Dry,
-        )
-        .expect("dry basis");
+        let dry = parse_dry(&text).expect("dry basis");
         assert_eq!(dry.samples[0].moisture_pct, Some(150.0));
         let e = err(&text);
         assert_eq!(
@@ -919,9 +924,7 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
         assert_eq!(s.samples[0].bulk_density_kg_m3, Some(742.5));
         assert_eq!(s.samples[1].bulk_density_kg_m3, None);
         assert_eq!(parse(GOOD).unwrap().samples[0].bulk_density_kg_m3, None);
-        let mut buf = Vec::new();
-        write_samples(&mut buf, &s.samples).expect("write");
-        let back = parse(std::str::from_utf8(&buf).unwrap()).unwrap();
+        let back = written_back(&s);
         assert_eq!(
             back.samples
                 .iter()
@@ -953,9 +956,7 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
         let s = parse(&wet).expect("valid table");
         assert_eq!(s.samples[0].moisture_basis, Some(Basis::Wet));
         assert_eq!(s.samples[1].moisture_basis, None);
-        let mut buf = Vec::new();
-        write_samples(&mut buf, &s.samples).expect("write");
-        let back = parse(std::str::from_utf8(&buf).unwrap()).unwrap();
+        let back = written_back(&s);
         assert_eq!(
             back.samples
                 .iter()
@@ -973,22 +974,11 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
                 && e.contains("give cal fit or cal capture --basis dry"),
             "{e}"
         );
-        let on_dry = parse_samples(
-            Path::new("lab.csv"),
-            dry.as_bytes(),
-            MoistureColumn::Required,
-            Basis::Dry,
-        )
-        .expect("on a dry basis");
+        let on_dry = parse_dry(&dry).expect("on a dry basis");
         assert_eq!(on_dry.samples[1].moisture_basis, Some(Basis::Dry));
-        let e = parse_samples(
-            Path::new("lab.csv"),
-            wet.as_bytes(),
-            MoistureColumn::Required,
-            Basis::Dry,
-        )
-        .expect_err("a wet row under a dry command")
-        .to_string();
+        let e = parse_dry(&wet)
+            .expect_err("a wet row under a dry command")
+            .to_string();
         assert!(
             e.contains("line 2, column 10 (moisture_basis)") && e.contains("leave out --basis dry"),
             "{e}"
