@@ -40,6 +40,7 @@ TIMEOUT_S = 1.0
 # CRC) and the read unanswered. pymodbus repeats it; the test reports how
 # often that happened (the board's counters).
 RETRIES = 3
+MAX_FAILED = 3
 PROBES = 8
 
 
@@ -100,7 +101,10 @@ def main(pty, unit, readings, wrong_unit):
         if time.monotonic() > deadline:
             raise SystemExit(f"unit {unit} on {pty} did not answer within 30 s")
 
-    reads, counters, slowest = [], set(), 0.0
+    # A read whose request and every repeat were split by the pty timing
+    # (above) is read again, MAX_FAILED times at most in all: once, in a
+    # full run under load, four tries in a row were split.
+    reads, counters, slowest, failed = [], set(), 0.0, 0
     deadline = time.monotonic() + 60
     while len(counters) < readings:
         if time.monotonic() > deadline:
@@ -109,11 +113,15 @@ def main(pty, unit, readings, wrong_unit):
         rr = read(client, 0, 25, unit)
         slowest = max(slowest, time.monotonic() - t0)
         if rr is None or rr.isError():
-            raise SystemExit(f"read of the map failed: {rr}")
+            failed += 1
+            if failed > MAX_FAILED:
+                raise SystemExit(f"read of the map failed {failed} times, the last: {rr}")
+            continue
         d = decode(client, list(rr.registers))
         reads.append(d)
         counters.add((d["boot"], d["counter"]))
     out["reads"] = reads
+    out["failed_reads"] = failed
     out["round_trip_s"] = slowest
 
     # The probes that must stay unanswered are sent PROBES times each: a
