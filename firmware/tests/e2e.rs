@@ -197,6 +197,25 @@ fn modbus_registers_are_the_map_of_the_reading_sent() {
             STATUS_STALE | STATUS_NO_VALUE
         );
         assert_eq!(words[9], 10, "age 10 s");
+        // A calibration on a dry basis selected: register 15 keeps the
+        // basis of the reading it shows (1) until a reading is computed
+        // with the new one, then says 2; 14 % wet is 16.28 % dry (the
+        // simulator's dry calibration, its cubic, 16.23 %).
+        let dry = fringe_firmware::sim::exact_calibration_on(
+            &SynthProduct::grain(),
+            "Harrowgate wheat, dry basis",
+            fringe_protocol::Basis::Dry,
+        );
+        assert_eq!(
+            b.ok(Request::WriteProductCal { slot: 1, cal: dry }),
+            Response::Ack
+        );
+        assert_eq!(b.ok(Request::SelectProduct { slot: 1 }), Response::Ack);
+        assert_eq!(read(&b, late)[15], 1, "the shown reading's basis");
+        let r = b.measure();
+        let m = r.moisture_pct.expect("a moisture on the dry calibration");
+        assert!((m - 16.23).abs() < 0.4, "{m}");
+        assert_eq!(read(&b, b.now)[15], 2);
     });
 }
 
