@@ -292,6 +292,37 @@ fn capture_push_list_select_and_history() {
         o.stderr
     );
     assert_eq!(std::fs::read(&dry).unwrap(), before);
+    // A sample id already in the table is asked again (capturing it would
+    // replace its row and lab value); the table stays as it was.
+    let before = std::fs::read(&csv).unwrap();
+    let mut c = Interactive::spawn(&mut capture(&sim, &csv, &["--readings", "1"]));
+    c.expect("sample id", 1, PROMPT);
+    c.send("HGM-T01");
+    c.expect("is already in", 1, PROMPT);
+    c.expect("sample id", 2, PROMPT);
+    c.send("");
+    let o = c.finish(LIMIT);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert_eq!(std::fs::read(&csv).unwrap(), before);
+    // A table with a column of the plant's own (notes) is refused before
+    // anything is measured: rewritten from its samples, it would lose it.
+    let noted = sim.path("noted.csv");
+    let text: String = String::from_utf8(before)
+        .unwrap()
+        .lines()
+        .enumerate()
+        .map(|(i, l)| format!("{l},{}\n", if i == 0 { "note" } else { "oven 2" }))
+        .collect();
+    std::fs::write(&noted, &text).unwrap();
+    let o = run(&mut capture(&sim, &noted, &["--readings", "1"]), LIMIT);
+    assert_eq!(o.code, 3, "{}", o.stderr);
+    assert!(
+        o.stderr.contains("column(s) note would be lost")
+            && o.stderr.contains("nothing was captured"),
+        "{}",
+        o.stderr
+    );
+    assert_eq!(std::fs::read_to_string(&noted).unwrap(), text);
 
     // Two product calibrations fitted from a reference table (values made
     // up for the test; only their ids and names matter here). 24 samples:

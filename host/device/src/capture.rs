@@ -30,7 +30,7 @@ pub enum CaptureError {
     Samples(#[from] SampleError),
     /// The table to add to holds rows on another basis (or that are no
     /// sample table): said before anything is measured.
-    #[error("{source}; nothing was captured: capture on that table's basis (--basis), or into another --out")]
+    #[error("{source}; nothing was captured: capture into another --out (or, for rows on another basis, on that table's basis with --basis)")]
     Existing {
         /// Why the table cannot take this capture's rows.
         #[source]
@@ -97,14 +97,46 @@ pub fn capture(
     // the first sample: one it cannot take (rows on the other basis, a
     // wet-basis value of 100 % or more) is refused before anything is
     // measured, so no measured sample is lost to it.
+    //
+    // The table is rewritten from its samples as each one is added, so a
+    // column it does not read (a plant's notes) would be dropped: such a
+    // table is refused too. And a sample id already in it is asked again,
+    // as one captured in this run is: a new capture would replace the
+    // row, and its lab value with it.
+    let mut existing: Vec<String> = Vec::new();
     if out.exists() {
-        read_samples(out, MoistureColumn::Optional, basis)
+        existing = read_samples(out, MoistureColumn::Optional, basis)
+            .map_err(|source| CaptureError::Existing { source })?
+            .samples
+            .into_iter()
+            .map(|s| s.sample_id)
+            .collect();
+        let extra = fringe_quality::samples::extra_columns(out)
             .map_err(|source| CaptureError::Existing { source })?;
+        if !extra.is_empty() {
+            return Err(CaptureError::Existing {
+                source: SampleError::Malformed {
+                    file: out.to_path_buf(),
+                    line: 1,
+                    reason: format!(
+                        "column(s) {} would be lost: the table is written again from its samples as each one is added, and they are not sample columns",
+                        extra.join(", ")
+                    ),
+                },
+            });
+        }
     }
     let mut rows: Vec<RefSample> = Vec::new();
     while let Some(id) = guide.ask("sample id (empty to finish):")? {
         if rows.iter().any(|r| r.sample_id == id) {
             guide.show(&format!("sample id {id} already captured; use another"));
+            continue;
+        }
+        if existing.contains(&id) {
+            guide.show(&format!(
+                "sample id {id} is already in {}; use another (capturing it again would replace its row and lab value)",
+                out.display()
+            ));
             continue;
         }
         let m = guide.ask(&format!(

@@ -323,6 +323,39 @@ pub fn basis_named(name: &str) -> Basis {
     }
 }
 
+/// The columns of the table at `path` that this module does not read (a
+/// plant's own notes, say): kept in the file, but not by a writer that
+/// rewrites the table from its samples.
+///
+/// # Errors
+/// The file cannot be read, or its header is not CSV.
+pub fn extra_columns(path: &Path) -> Result<Vec<String>, SampleError> {
+    let file = path.to_path_buf();
+    let text = std::fs::read(path).map_err(|e| SampleError::Io {
+        file: file.clone(),
+        reason: e.to_string(),
+    })?;
+    let mut rdr = csv::ReaderBuilder::new()
+        .trim(csv::Trim::All)
+        .flexible(true)
+        .from_reader(text.as_slice());
+    let header = rdr.headers().map_err(|e| SampleError::Malformed {
+        file,
+        line: 1,
+        reason: e.to_string(),
+    })?;
+    Ok(header
+        .iter()
+        .filter(|h| {
+            !COLUMNS
+                .iter()
+                .chain(&[DENSITY_COLUMN, BASIS_COLUMN])
+                .any(|c| c.eq_ignore_ascii_case(h))
+        })
+        .map(str::to_string)
+        .collect())
+}
+
 /// Parses a table already in memory (`file` names it in errors).
 ///
 /// # Errors
