@@ -236,10 +236,9 @@ impl LiveTable {
                     history: e.history.iter().copied().collect(),
                     alarms: e.alarms.iter().cloned().collect(),
                     calibration: e.calibration.clone(),
-                    moisture_basis: e.moisture_basis.map(|b| match b {
-                        Basis::Wet => "wet",
-                        Basis::Dry => "dry",
-                    }),
+                    moisture_basis: e
+                        .moisture_basis
+                        .map(|b| fringe_quality::limits::LimitBasis::from(b).word()),
                 })
             })
             .collect()

@@ -1088,20 +1088,8 @@ impl<S: RecordStore> Worker<S> {
     /// Says how the site's alarm band is taken for readings on `basis`,
     /// where that is not the band's.
     fn say_band(&self, serial: &str, basis: LimitBasis) {
-        let limits = self.run.spec.alarm;
-        if let Some(converted) = limits.on_basis(basis) {
-            self.say(
-                Some(serial),
-                Level::Info,
-                format!(
-                    "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; each reading is converted to the {} basis to be checked, its uncertainty with it)",
-                    limits.basis.word(),
-                    basis.word(),
-                    limits.band(),
-                    converted.band(),
-                    limits.basis.word(),
-                ),
-            );
+        if let Some(text) = self.run.spec.alarm.taken_as(basis) {
+            self.say(Some(serial), Level::Info, text);
         }
     }
 

@@ -251,6 +251,21 @@ impl AlarmLimits {
         }
     }
 
+    /// How these limits are taken for readings on `basis`, in words, where
+    /// that is not their basis (`None` where they are taken as written):
+    /// what `fringe monitor` and `fringe gateway` say before they check.
+    pub fn taken_as(&self, basis: LimitBasis) -> Option<String> {
+        let converted = self.on_basis(basis)?;
+        Some(format!(
+            "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; each reading is converted to the {} basis to be checked, its uncertainty with it)",
+            self.basis.word(),
+            basis.word(),
+            self.band(),
+            converted.band(),
+            self.basis.word(),
+        ))
+    }
+
     /// The moisture band in words: `12.00..15.50` (`--` for a side
     /// without a limit).
     pub fn band(&self) -> String {

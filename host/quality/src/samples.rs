@@ -677,10 +677,7 @@ pub fn write_samples<W: std::io::Write>(out: W, samples: &[RefSample]) -> std::i
         if basis {
             row.push(
                 s.moisture_basis
-                    .map_or("", |b| match b {
-                        Basis::Wet => "wet",
-                        Basis::Dry => "dry",
-                    })
+                    .map_or("", |b| crate::limits::LimitBasis::from(b).word())
                     .to_string(),
             );
         }

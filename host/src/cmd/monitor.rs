@@ -362,17 +362,8 @@ pub fn monitor(args: &MonitorArgs, cfg: &LineConfig, stop: &AtomicBool) -> anyho
     // not known then (the device did not answer this request) has it
     // looked up after that poll ([`learn_basis`]).
     let active = active_calibration(&mut link);
-    if let Some((_, basis)) = active {
-        if let Some(converted) = cfg.alarm.on_basis(basis) {
-            eprintln!(
-                "alarm limits written on a {} basis, the device reports on a {} one: moisture band {} % taken as {} % (the same product states; each reading is converted to the {} basis to be checked, its uncertainty with it)",
-                cfg.alarm.basis.word(),
-                basis.word(),
-                cfg.alarm.band(),
-                converted.band(),
-                cfg.alarm.basis.word(),
-            );
-        }
+    if let Some(text) = active.and_then(|(_, basis)| cfg.alarm.taken_as(basis)) {
+        eprintln!("{text}");
     }
     super::with_db(&db, |store| {
         run(args, cfg, stop, link, key, store, &db, active)
@@ -404,13 +395,8 @@ fn learn_basis(view: &mut View, store: &Store, session: &mut Session, id: fringe
     }
     match view.bases.get(&id).copied() {
         Some(basis) => {
-            if let Some(converted) = view.alarm.on_basis(basis) {
-                view.notice(&format!(
-                    "product calibration {id} reports on a {} basis: alarm band {} % taken as {} %",
-                    basis.word(),
-                    view.alarm.band(),
-                    converted.band()
-                ));
+            if let Some(text) = view.alarm.taken_as(basis) {
+                view.notice(&format!("product calibration {id}: {text}"));
             }
         }
         None => {
