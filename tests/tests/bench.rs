@@ -304,25 +304,54 @@ fn capture_push_list_select_and_history() {
     let o = c.finish(LIMIT);
     assert_eq!(o.code, 0, "{}", o.stderr);
     assert_eq!(std::fs::read(&csv).unwrap(), before);
-    // A table with a column of the plant's own (notes) is refused before
-    // anything is measured: rewritten from its samples, it would lose it.
+    // A table with a column of the plant's own (notes) and a lab value
+    // typed in by hand with more digits than the tool writes takes a new
+    // sample: its rows stay as they were typed, the note column with them
+    // (the table was once rewritten from its samples as each was added:
+    // the column was dropped and the value rounded), and the new row comes
+    // after them with its note left empty.
     let noted = sim.path("noted.csv");
     let text: String = String::from_utf8(before)
         .unwrap()
         .lines()
         .enumerate()
-        .map(|(i, l)| format!("{l},{}\n", if i == 0 { "note" } else { "oven 2" }))
+        .map(|(i, l)| {
+            let l = if i == 1 {
+                l.replacen(",14.25,", ",14.2537,", 1)
+            } else {
+                l.to_string()
+            };
+            format!("{l},{}\n", if i == 0 { "note" } else { "oven 2" })
+        })
         .collect();
+    assert!(text.contains(",14.2537,"), "{text}");
     std::fs::write(&noted, &text).unwrap();
-    let o = run(&mut capture(&sim, &noted, &["--readings", "1"]), LIMIT);
-    assert_eq!(o.code, 3, "{}", o.stderr);
-    assert!(
-        o.stderr.contains("column(s) note would be lost")
-            && o.stderr.contains("nothing was captured"),
-        "{}",
-        o.stderr
+    let mut c = Interactive::spawn(&mut capture(&sim, &noted, &["--readings", "1"]));
+    c.expect("sample id", 1, PROMPT);
+    c.send("HGM-T03");
+    c.expect("lab moisture", 1, PROMPT);
+    c.send("13.5");
+    c.expect(ENTER, 1, PROMPT);
+    c.send("");
+    c.expect("sample id", 2, PROMPT);
+    c.send("");
+    let o = c.finish(LIMIT);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let after = std::fs::read_to_string(&noted).unwrap();
+    assert!(after.starts_with(&text), "{text}\n---\n{after}");
+    let added: Vec<&str> = after[text.len()..].lines().collect();
+    assert_eq!(added.len(), 1, "{after}");
+    let added: Vec<&str> = added[0].split(',').collect();
+    let note = header.len();
+    assert_eq!(
+        (
+            added[col("sample_id")],
+            added[col("moisture_pct")],
+            added[note]
+        ),
+        ("HGM-T03", "13.50", ""),
+        "{after}"
     );
-    assert_eq!(std::fs::read_to_string(&noted).unwrap(), text);
 
     // Two product calibrations fitted from a reference table (values made
     // up for the test; only their ids and names matter here). 24 samples:

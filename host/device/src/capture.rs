@@ -6,8 +6,10 @@ use std::path::{Path, PathBuf};
 
 use fringe_link::{Link, LinkError};
 use fringe_quality::samples::{
-    read_samples, write_samples, Basis, MoistureColumn, RefSample, SampleError,
+    merge_samples, parse_samples, read_samples, write_samples, Basis, MoistureColumn, RefSample,
+    SampleError,
 };
+use std::io::Write as _;
 
 use crate::guide::{Cancelled, Guide};
 use crate::measure::averaged_reading;
@@ -96,13 +98,9 @@ pub fn capture(
     // The table added to is read on this capture's basis now, not after
     // the first sample: one it cannot take (rows on the other basis, a
     // wet-basis value of 100 % or more) is refused before anything is
-    // measured, so no measured sample is lost to it.
-    //
-    // The table is rewritten from its samples as each one is added, so a
-    // column it does not read (a plant's notes) would be dropped: such a
-    // table is refused too. And a sample id already in it is asked again,
-    // as one captured in this run is: a new capture would replace the
-    // row, and its lab value with it.
+    // measured, so no measured sample is lost to it. A sample id already
+    // in it is asked again, as one captured in this run is: a new capture
+    // would replace the row, and its lab value with it.
     let mut existing: Vec<String> = Vec::new();
     if out.exists() {
         existing = read_samples(out, MoistureColumn::Optional, basis)
@@ -111,20 +109,6 @@ pub fn capture(
             .into_iter()
             .map(|s| s.sample_id)
             .collect();
-        let extra = fringe_quality::samples::extra_columns(out)
-            .map_err(|source| CaptureError::Existing { source })?;
-        if !extra.is_empty() {
-            return Err(CaptureError::Existing {
-                source: SampleError::Malformed {
-                    file: out.to_path_buf(),
-                    line: 1,
-                    reason: format!(
-                        "column(s) {} would be lost: the table is written again from its samples as each one is added, and they are not sample columns",
-                        extra.join(", ")
-                    ),
-                },
-            });
-        }
     }
     let mut rows: Vec<RefSample> = Vec::new();
     while let Some(id) = guide.ask("sample id (empty to finish):")? {
@@ -169,27 +153,40 @@ pub fn capture(
     Ok(rows.len())
 }
 
-/// Writes the captured rows after those already in `path` (rewritten whole
-/// through a temporary file so an interruption loses nothing).
+/// Writes the captured rows into the table at `path` (a new one where
+/// there is none): after the rows it has, which are kept as they were
+/// written, with the columns of the plant's own (samples::merge_samples; a
+/// row of the same sample id is replaced). The file is written whole
+/// through a temporary file, so an interruption loses nothing.
 ///
 /// # Errors
 /// [`CaptureError`]: a failed write, or an existing file that is not a
 /// sample table.
 pub fn save_rows(path: &Path, rows: &[RefSample], basis: Basis) -> Result<(), CaptureError> {
-    let mut all = Vec::new();
-    if path.exists() {
+    let text = if path.exists() {
+        let old = std::fs::read(path).map_err(|e| SampleError::Io {
+            file: path.to_path_buf(),
+            reason: e.to_string(),
+        })?;
         // On the capture's basis: a table whose rows say another one (or
         // hold wet-basis values of 100 % and more) is refused, not mixed.
-        all = read_samples(path, MoistureColumn::Optional, basis)?.samples;
-        all.retain(|s| !rows.iter().any(|r| r.sample_id == s.sample_id));
-    }
-    all.extend(rows.iter().cloned());
+        parse_samples(path, &old, MoistureColumn::Optional, basis)?;
+        merge_samples(path, &old, rows)?
+    } else {
+        let mut new = Vec::new();
+        write_samples(&mut new, rows).map_err(|source| CaptureError::Write {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        new
+    };
     let tmp = path.with_extension("csv.part");
-    let f = std::fs::File::create(&tmp).map_err(|source| CaptureError::Write {
+    let mut f = std::fs::File::create(&tmp).map_err(|source| CaptureError::Write {
         path: tmp.clone(),
         source,
     })?;
-    if let Err(source) = write_samples(f, &all) {
+    // On the disk before it takes the table's name.
+    if let Err(source) = f.write_all(&text).and_then(|()| f.sync_all()) {
         let _ = std::fs::remove_file(&tmp);
         return Err(CaptureError::Write { path: tmp, source });
     }

@@ -323,39 +323,6 @@ pub fn basis_named(name: &str) -> Basis {
     }
 }
 
-/// The columns of the table at `path` that this module does not read (a
-/// plant's own notes, say): kept in the file, but not by a writer that
-/// rewrites the table from its samples.
-///
-/// # Errors
-/// The file cannot be read, or its header is not CSV.
-pub fn extra_columns(path: &Path) -> Result<Vec<String>, SampleError> {
-    let file = path.to_path_buf();
-    let text = std::fs::read(path).map_err(|e| SampleError::Io {
-        file: file.clone(),
-        reason: e.to_string(),
-    })?;
-    let mut rdr = csv::ReaderBuilder::new()
-        .trim(csv::Trim::All)
-        .flexible(true)
-        .from_reader(text.as_slice());
-    let header = rdr.headers().map_err(|e| SampleError::Malformed {
-        file,
-        line: 1,
-        reason: e.to_string(),
-    })?;
-    Ok(header
-        .iter()
-        .filter(|h| {
-            !COLUMNS
-                .iter()
-                .chain(&[DENSITY_COLUMN, BASIS_COLUMN])
-                .any(|c| c.eq_ignore_ascii_case(h))
-        })
-        .map(str::to_string)
-        .collect())
-}
-
 /// Parses a table already in memory (`file` names it in errors).
 ///
 /// # Errors
@@ -631,6 +598,39 @@ impl SampleSet {
     }
 }
 
+/// A sample's cells by column: [`COLUMNS`] (an empty `moisture_pct` where
+/// unknown; numbers by [`crate::numbers`]' column rules), then
+/// [`DENSITY_COLUMN`] and [`BASIS_COLUMN`] where the sample has them.
+fn sample_cells(s: &RefSample) -> Vec<(&'static str, String)> {
+    let values = [
+        s.moisture_pct,
+        Some(s.temperature_c),
+        Some(s.freqs_hz[0]),
+        Some(s.eps_re[0]),
+        Some(s.eps_im[0]),
+        Some(s.freqs_hz[1]),
+        Some(s.eps_re[1]),
+        Some(s.eps_im[1]),
+    ];
+    let mut cells = vec![(COLUMNS[0], s.sample_id.clone())];
+    cells.extend(
+        COLUMNS[1..]
+            .iter()
+            .zip(values)
+            .map(|(c, v)| (*c, crate::numbers::cell(c, v))),
+    );
+    if let Some(v) = s.bulk_density_kg_m3 {
+        cells.push((DENSITY_COLUMN, v.to_string()));
+    }
+    if let Some(b) = s.moisture_basis {
+        cells.push((
+            BASIS_COLUMN,
+            crate::limits::LimitBasis::from(b).word().to_string(),
+        ));
+    }
+    cells
+}
+
 /// Writes samples as CSV with the columns in [`COLUMNS`] order (an empty
 /// `moisture_pct` where unknown; numbers by [`crate::numbers`]' column
 /// rules), then [`DENSITY_COLUMN`] when any sample has a density and
@@ -651,39 +651,114 @@ pub fn write_samples<W: std::io::Write>(out: W, samples: &[RefSample]) -> std::i
     }
     w.write_record(&header)?;
     for s in samples {
-        let values = [
-            s.moisture_pct,
-            Some(s.temperature_c),
-            Some(s.freqs_hz[0]),
-            Some(s.eps_re[0]),
-            Some(s.eps_im[0]),
-            Some(s.freqs_hz[1]),
-            Some(s.eps_re[1]),
-            Some(s.eps_im[1]),
-        ];
-        let mut row = vec![s.sample_id.clone()];
-        row.extend(
-            COLUMNS[1..]
-                .iter()
-                .zip(values)
-                .map(|(c, v)| crate::numbers::cell(c, v)),
-        );
-        if density {
-            row.push(
-                s.bulk_density_kg_m3
-                    .map_or(String::new(), |v| v.to_string()),
-            );
-        }
-        if basis {
-            row.push(
-                s.moisture_basis
-                    .map_or("", |b| crate::limits::LimitBasis::from(b).word())
-                    .to_string(),
-            );
-        }
+        let cells = sample_cells(s);
+        let row: Vec<&str> = header
+            .iter()
+            .map(|h| {
+                cells
+                    .iter()
+                    .find(|(c, _)| c == h)
+                    .map_or("", |(_, v)| v.as_str())
+            })
+            .collect();
         w.write_record(row)?;
     }
     w.flush()
+}
+
+/// The table `text` with `rows` in it, everything it had kept as it was
+/// written: its columns in their order, columns of the plant's own (notes)
+/// and every field as typed (a value typed with more digits than
+/// [`write_samples`] writes is not rounded). A row whose sample id the
+/// table has takes that row's place (its sample columns; its other columns
+/// kept), the others are added at the end. A density or basis column the
+/// rows fill and the table lacks is added, empty in the rows it had.
+///
+/// `text` is a table [`parse_samples`] reads (the caller checks it first:
+/// a row of another length is written as it is).
+///
+/// # Errors
+/// `text` is not CSV ([`SampleError::Malformed`], with `file` and the line).
+pub fn merge_samples(file: &Path, text: &[u8], rows: &[RefSample]) -> Result<Vec<u8>, SampleError> {
+    let malformed = |e: csv::Error| SampleError::Malformed {
+        file: file.to_path_buf(),
+        line: e.position().map(|p| p.line()).unwrap_or(1),
+        reason: e.to_string(),
+    };
+    let mut rdr = csv::ReaderBuilder::new().flexible(true).from_reader(text);
+    let mut header = rdr.headers().map_err(malformed)?.clone();
+    let col = |header: &csv::StringRecord, name: &str| {
+        header
+            .iter()
+            .position(|h| h.trim().eq_ignore_ascii_case(name))
+    };
+    let had = header.len();
+    for (name, used) in [
+        (
+            DENSITY_COLUMN,
+            rows.iter().any(|r| r.bulk_density_kg_m3.is_some()),
+        ),
+        (
+            BASIS_COLUMN,
+            rows.iter().any(|r| r.moisture_basis.is_some()),
+        ),
+    ] {
+        if used && col(&header, name).is_none() {
+            header.push_field(name);
+        }
+    }
+    // A row's cells in the header's columns, over `base` (its columns not
+    // of a sample kept, an added one empty).
+    let place = |base: &csv::StringRecord, r: &RefSample| -> csv::StringRecord {
+        let mut fields: Vec<String> = (0..header.len())
+            .map(|i| base.get(i).unwrap_or("").to_string())
+            .collect();
+        for name in COLUMNS.iter().chain(&[DENSITY_COLUMN, BASIS_COLUMN]) {
+            if let Some(i) = col(&header, name) {
+                fields[i] = sample_cells(r)
+                    .into_iter()
+                    .find(|(c, _)| c == name)
+                    .map_or(String::new(), |(_, v)| v);
+            }
+        }
+        fields.into_iter().collect()
+    };
+    let id_col = col(&header, COLUMNS[0]);
+    let mut placed = vec![false; rows.len()];
+    let mut w = csv::Writer::from_writer(Vec::new());
+    let io = |e: csv::Error| SampleError::Io {
+        file: file.to_path_buf(),
+        reason: e.to_string(),
+    };
+    w.write_record(&header).map_err(io)?;
+    for rec in rdr.records() {
+        let mut rec = rec.map_err(malformed)?;
+        let id = id_col.and_then(|i| rec.get(i)).map(str::trim);
+        match rows.iter().position(|r| Some(r.sample_id.as_str()) == id) {
+            Some(k) => {
+                placed[k] = true;
+                w.write_record(&place(&rec, &rows[k])).map_err(io)?;
+            }
+            None => {
+                if rec.len() == had {
+                    for _ in had..header.len() {
+                        rec.push_field("");
+                    }
+                }
+                w.write_record(&rec).map_err(io)?;
+            }
+        }
+    }
+    for (r, done) in rows.iter().zip(placed) {
+        if !done {
+            w.write_record(&place(&csv::StringRecord::new(), r))
+                .map_err(io)?;
+        }
+    }
+    w.into_inner().map_err(|e| SampleError::Io {
+        file: file.to_path_buf(),
+        reason: e.to_string(),
+    })
 }
 
 #[cfg(test)]
@@ -753,6 +828,41 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
                 (b.sample_id.as_str(), b.eps_re, b.eps_im)
             );
         }
+    }
+
+    /// A table with a column of the plant's own and a value typed with
+    /// more digits than the writer gives keeps both when rows are merged
+    /// in (a rewrite from the samples dropped the one and rounded the
+    /// other), takes a new row at the end and a row of the same id in
+    /// that row's place (its note kept), and gains the basis column the
+    /// new rows fill, empty in the rows it had.
+    #[test]
+    fn merged_rows_keep_the_table_as_typed() {
+        let typed = GOOD.replace(",12.3\n", ",12.34567\n");
+        let s = parse(&typed).expect("valid table");
+        let s2 = RefSample {
+            moisture_pct: Some(14.0),
+            moisture_basis: Some(Basis::Wet),
+            ..s.samples[1].clone()
+        };
+        let s3 = RefSample {
+            sample_id: "S3".into(),
+            ..s2.clone()
+        };
+        let out = merge_samples(Path::new("lab.csv"), typed.as_bytes(), &[s2, s3]).expect("merge");
+        let out = String::from_utf8(out).unwrap();
+        assert_eq!(
+            out,
+            "\
+note,eps2_im,sample_id,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,temperature_c,moisture_pct,moisture_basis
+first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.34567,
+,0.9000,S2,1000000,6.400,13.00,20000000,5.000,22.00,14.00,wet
+,0.9000,S3,1000000,6.400,13.00,20000000,5.000,22.00,14.00,wet
+"
+        );
+        let back = parse(&out).expect("merged table reads");
+        assert_eq!(back.samples[0].moisture_pct, Some(12.34567));
+        assert_eq!(back.samples.len(), 3);
     }
 
     fn err(text: &str) -> String {
