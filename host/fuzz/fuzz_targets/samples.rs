@@ -4,12 +4,15 @@
 //! Beyond "never panics": a table it accepts holds what its documentation
 //! promises (ids unique and non-empty, finite numbers within the stated
 //! limits, one frequency pair), and what `write_samples` writes from it
-//! reads back with the same ids in the same order.
+//! reads back with the same ids in the same order; a sample merged into it
+//! (`merge_samples`) leaves its rows the same samples.
 #![no_main]
 
 use std::path::Path;
 
-use fringe_quality::samples::{parse_samples, write_samples, Basis, MoistureColumn, SampleSet};
+use fringe_quality::samples::{
+    merge_samples, parse_samples, write_samples, Basis, MoistureColumn, RefSample, SampleSet,
+};
 use libfuzzer_sys::fuzz_target;
 
 fn check(set: &SampleSet, moisture: MoistureColumn, basis: Basis) {
@@ -64,11 +67,49 @@ fn check(set: &SampleSet, moisture: MoistureColumn, basis: Basis) {
     }
 }
 
+/// `data`, accepted as `set` on `basis`, with a new sample merged in (as
+/// `cal capture` adds one): where it reads back, the rows it had are the
+/// same samples (their fields kept as typed) and the new one is last.
+fn check_merge(data: &[u8], set: &SampleSet, basis: Basis) {
+    let mut id = String::from("new");
+    while set.samples.iter().any(|s| s.sample_id == id) {
+        id.push('x');
+    }
+    let new = RefSample {
+        sample_id: id.clone(),
+        moisture_basis: Some(basis),
+        ..set.samples[0].clone()
+    };
+    let merged = merge_samples(Path::new("fuzz/lab.csv"), data, std::slice::from_ref(&new))
+        .expect("an accepted table merges");
+    // The new row's numbers are rounded to the columns' digits, which can
+    // take a value over a limit (99.996 % to 100.00 %): then it is refused.
+    if let Ok(again) = parse_samples(
+        Path::new("merged.csv"),
+        &merged,
+        MoistureColumn::Optional,
+        basis,
+    ) {
+        assert_eq!(again.samples.len(), set.samples.len() + 1);
+        for (a, b) in set.samples.iter().zip(&again.samples) {
+            let b = RefSample {
+                line: a.line,
+                ..b.clone()
+            };
+            assert_eq!(a, &b, "a row kept as it was");
+        }
+        assert_eq!(again.samples.last().map(|s| &s.sample_id), Some(&id));
+    }
+}
+
 fuzz_target!(|data: &[u8]| {
     for moisture in [MoistureColumn::Required, MoistureColumn::Optional] {
         for basis in [Basis::Wet, Basis::Dry] {
             if let Ok(set) = parse_samples(Path::new("fuzz/lab.csv"), data, moisture, basis) {
                 check(&set, moisture, basis);
+                if moisture == MoistureColumn::Optional {
+                    check_merge(data, &set, basis);
+                }
             }
         }
     }
