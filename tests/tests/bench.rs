@@ -292,8 +292,8 @@ fn capture_push_list_select_and_history() {
         o.stderr
     );
     assert_eq!(std::fs::read(&dry).unwrap(), before);
-    // A sample id already in the table is asked again (capturing it would
-    // replace its row and lab value); the table stays as it was.
+    // A sample id already in the table is asked again (its row and lab
+    // value are not written over); the table stays as it was.
     let before = std::fs::read(&csv).unwrap();
     let mut c = Interactive::spawn(&mut capture(&sim, &csv, &["--readings", "1"]));
     c.expect("sample id", 1, PROMPT);

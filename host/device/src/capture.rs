@@ -6,8 +6,7 @@ use std::path::{Path, PathBuf};
 
 use fringe_link::{Link, LinkError};
 use fringe_quality::samples::{
-    merge_samples, parse_samples, read_samples, write_samples, Basis, MoistureColumn, RefSample,
-    SampleError,
+    merge_samples, parse_samples, write_samples, Basis, MoistureColumn, RefSample, SampleError,
 };
 use std::io::Write as _;
 
@@ -99,26 +98,20 @@ pub fn capture(
     // the first sample: one it cannot take (rows on the other basis, a
     // wet-basis value of 100 % or more) is refused before anything is
     // measured, so no measured sample is lost to it. A sample id already
-    // in it is asked again, as one captured in this run is: a new capture
-    // would replace the row, and its lab value with it.
-    let mut existing: Vec<String> = Vec::new();
-    if out.exists() {
-        existing = read_samples(out, MoistureColumn::Optional, basis)
-            .map_err(|source| CaptureError::Existing { source })?
-            .samples
-            .into_iter()
-            .map(|s| s.sample_id)
-            .collect();
-    }
+    // in it is asked again, as one captured in this run is (its row and
+    // lab value are not written over).
+    ids_in(out, basis).map_err(|source| CaptureError::Existing { source })?;
     let mut rows: Vec<RefSample> = Vec::new();
     while let Some(id) = guide.ask("sample id (empty to finish):")? {
         if rows.iter().any(|r| r.sample_id == id) {
             guide.show(&format!("sample id {id} already captured; use another"));
             continue;
         }
-        if existing.contains(&id) {
+        // Read again before each sample: the table may have had rows
+        // added by hand since (nothing in it is written over).
+        if ids_in(out, basis)?.contains(&id) {
             guide.show(&format!(
-                "sample id {id} is already in {}; use another (capturing it again would replace its row and lab value)",
+                "sample id {id} is already in {}; use another (the table keeps one row per sample, and its row and lab value stay as they are)",
                 out.display()
             ));
             continue;
@@ -147,38 +140,68 @@ pub fn capture(
             "  {id}: {:.1} C, eps1 {:.3} - j{:.3}, eps2 {:.3} - j{:.3}",
             s.temperature_c, s.eps_re[0], s.eps_im[0], s.eps_re[1], s.eps_im[1]
         ));
+        save_rows(out, std::slice::from_ref(&s), basis)?;
         rows.push(s);
-        save_rows(out, &rows, basis)?;
     }
     Ok(rows.len())
 }
 
-/// Writes the captured rows into the table at `path` (a new one where
-/// there is none): after the rows it has, which are kept as they were
-/// written, with the columns of the plant's own (samples::merge_samples; a
-/// row of the same sample id is replaced). The file is written whole
-/// through a temporary file, so an interruption loses nothing.
+/// The text of the table at `path`, or `None` where there is none yet
+/// (no file, or one with nothing but white space in it).
+fn table_text(path: &Path) -> Result<Option<Vec<u8>>, SampleError> {
+    if !path.exists() {
+        return Ok(None);
+    }
+    let text = std::fs::read(path).map_err(|e| SampleError::Io {
+        file: path.to_path_buf(),
+        reason: e.to_string(),
+    })?;
+    Ok((!text.iter().all(u8::is_ascii_whitespace)).then_some(text))
+}
+
+/// The sample ids of the table at `path` a capture adds to, read on the
+/// capture's basis (a table whose rows say another one, or hold wet-basis
+/// values of 100 % and more, is refused, not mixed). None for a table not
+/// there yet, or a header alone (a template with the plant's own columns).
+fn ids_in(path: &Path, basis: Basis) -> Result<Vec<String>, SampleError> {
+    let Some(text) = table_text(path)? else {
+        return Ok(Vec::new());
+    };
+    match parse_samples(path, &text, MoistureColumn::Optional, basis) {
+        Ok(set) => Ok(set.samples.into_iter().map(|s| s.sample_id).collect()),
+        // The header is complete (a column missing is said before this).
+        Err(SampleError::Empty { .. }) => Ok(Vec::new()),
+        Err(e) => Err(e),
+    }
+}
+
+/// Adds the captured rows to the table at `path` (a new one where there is
+/// none): at its end, the rows it has kept as they were written, with the
+/// columns of the plant's own (`samples::merge_samples`); a row whose
+/// sample id the table has is refused, nothing written over. The file is
+/// written whole through a temporary file, on the disk before it takes the
+/// table's name, so an interruption loses nothing.
 ///
 /// # Errors
-/// [`CaptureError`]: a failed write, or an existing file that is not a
-/// sample table.
+/// [`CaptureError`]: a failed write, an existing file that is not a sample
+/// table (or not on `basis`), a sample id already in it.
 pub fn save_rows(path: &Path, rows: &[RefSample], basis: Basis) -> Result<(), CaptureError> {
-    let text = if path.exists() {
-        let old = std::fs::read(path).map_err(|e| SampleError::Io {
-            file: path.to_path_buf(),
-            reason: e.to_string(),
-        })?;
-        // On the capture's basis: a table whose rows say another one (or
-        // hold wet-basis values of 100 % and more) is refused, not mixed.
-        parse_samples(path, &old, MoistureColumn::Optional, basis)?;
-        merge_samples(path, &old, rows)?
-    } else {
-        let mut new = Vec::new();
-        write_samples(&mut new, rows).map_err(|source| CaptureError::Write {
-            path: path.to_path_buf(),
-            source,
-        })?;
-        new
+    let text = match table_text(path)? {
+        Some(old) => {
+            ids_in(path, basis)?;
+            let merged = merge_samples(path, &old, rows)?;
+            // What is written reads back whole, the new rows with it.
+            parse_samples(path, &merged, MoistureColumn::Optional, basis)?;
+            merged
+        }
+        None => {
+            let mut new = Vec::new();
+            write_samples(&mut new, rows).map_err(|source| CaptureError::Write {
+                path: path.to_path_buf(),
+                source,
+            })?;
+            new
+        }
     };
     let tmp = path.with_extension("csv.part");
     let mut f = std::fs::File::create(&tmp).map_err(|source| CaptureError::Write {
@@ -197,4 +220,56 @@ pub fn save_rows(path: &Path, rows: &[RefSample], basis: Basis) -> Result<(), Ca
             source,
         }
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn sample(id: &str) -> RefSample {
+        RefSample {
+            sample_id: id.into(),
+            moisture_pct: Some(13.5),
+            temperature_c: 21.0,
+            freqs_hz: [1e6, 2e7],
+            eps_re: [6.5, 5.0],
+            eps_im: [12.0, 0.9],
+            bulk_density_kg_m3: None,
+            moisture_basis: Some(Basis::Wet),
+            line: 0,
+        }
+    }
+
+    /// A template of the plant's own (its header alone, with a column of
+    /// its own) takes the first sample; a second keeps the first as it
+    /// was; a sample id already in the table is refused, the table as it
+    /// was; a table on the other basis is refused before anything is
+    /// written.
+    #[test]
+    fn samples_go_into_a_template_and_nothing_is_written_over() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("lab.csv");
+        let header = "sample_id,operator,moisture_pct,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im\n";
+        std::fs::write(&path, header).unwrap();
+        assert_eq!(ids_in(&path, Basis::Wet).unwrap(), Vec::<String>::new());
+        save_rows(&path, &[sample("A1")], Basis::Wet).unwrap();
+        let one = std::fs::read_to_string(&path).unwrap();
+        assert!(
+            one.starts_with(&header.replace('\n', ",moisture_basis\n")),
+            "{one}"
+        );
+        let typed = one.replacen(",,13.50,", ",J. Hale,13.5012,", 1);
+        assert_ne!(typed, one, "{one}");
+        std::fs::write(&path, &typed).unwrap();
+        save_rows(&path, &[sample("A2")], Basis::Wet).unwrap();
+        let two = std::fs::read_to_string(&path).unwrap();
+        assert!(two.starts_with(&typed), "{typed}\n---\n{two}");
+        assert_eq!(ids_in(&path, Basis::Wet).unwrap(), ["A1", "A2"]);
+        let e = save_rows(&path, &[sample("A1")], Basis::Wet).unwrap_err();
+        assert!(e.to_string().contains("sample id `A1` already used"), "{e}");
+        assert_eq!(std::fs::read_to_string(&path).unwrap(), two);
+        let e = save_rows(&path, &[sample("A3")], Basis::Dry).unwrap_err();
+        assert!(e.to_string().contains("moisture_basis"), "{e}");
+        assert_eq!(std::fs::read_to_string(&path).unwrap(), two);
+    }
 }

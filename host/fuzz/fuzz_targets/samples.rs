@@ -69,7 +69,8 @@ fn check(set: &SampleSet, moisture: MoistureColumn, basis: Basis) {
 
 /// `data`, accepted as `set` on `basis`, with a new sample merged in (as
 /// `cal capture` adds one): where it reads back, the rows it had are the
-/// same samples (their fields kept as typed) and the new one is last.
+/// same samples (their fields kept as typed) and the new one is last, with
+/// its lab value (a table without the column gains it).
 fn check_merge(data: &[u8], set: &SampleSet, basis: Basis) {
     let mut id = String::from("new");
     while set.samples.iter().any(|s| s.sample_id == id) {
@@ -77,6 +78,7 @@ fn check_merge(data: &[u8], set: &SampleSet, basis: Basis) {
     }
     let new = RefSample {
         sample_id: id.clone(),
+        moisture_pct: Some(12.5),
         moisture_basis: Some(basis),
         ..set.samples[0].clone()
     };
@@ -98,7 +100,12 @@ fn check_merge(data: &[u8], set: &SampleSet, basis: Basis) {
             };
             assert_eq!(a, &b, "a row kept as it was");
         }
-        assert_eq!(again.samples.last().map(|s| &s.sample_id), Some(&id));
+        let last = again.samples.last().expect("rows");
+        assert_eq!(
+            (&last.sample_id, last.moisture_pct, last.moisture_basis),
+            (&id, Some(12.5), Some(basis)),
+            "the new row with its lab value"
+        );
     }
 }
 

@@ -365,7 +365,15 @@ pub fn parse_samples(
         .iter()
         .position(|h| h.eq_ignore_ascii_case(BASIS_COLUMN));
     for (i, h) in header.iter().enumerate() {
-        if header.iter().take(i).any(|p| p == h) && !h.is_empty() {
+        // A column of this module's named twice, also in letters of
+        // another case (`sample_id` and `Sample_ID`: which one holds the
+        // ids?), is refused like any column named twice.
+        let known = COLUMNS
+            .iter()
+            .chain(&[DENSITY_COLUMN, BASIS_COLUMN])
+            .any(|c| c.eq_ignore_ascii_case(h));
+        let same = |p: &str| p == h || (known && p.eq_ignore_ascii_case(h));
+        if header.iter().take(i).any(same) && !h.is_empty() {
             return Err(SampleError::DuplicateColumn {
                 file,
                 column: h.to_string(),
@@ -666,25 +674,33 @@ pub fn write_samples<W: std::io::Write>(out: W, samples: &[RefSample]) -> std::i
     w.flush()
 }
 
-/// The table `text` with `rows` in it, everything it had kept as it was
-/// written: its columns in their order, columns of the plant's own (notes)
-/// and every field as typed (a value typed with more digits than
-/// [`write_samples`] writes is not rounded). A row whose sample id the
-/// table has takes that row's place (its sample columns; its other columns
-/// kept), the others are added at the end. A density or basis column the
-/// rows fill and the table lacks is added, empty in the rows it had.
+/// The table `text` with `rows` added at its end, everything it had kept
+/// as it was written: its columns in their order, columns of the plant's
+/// own (notes), every field as typed (a value typed with more digits than
+/// [`write_samples`] writes is not rounded), a byte order mark and CRLF
+/// line ends. A sample column the rows fill and the table lacks
+/// (`moisture_pct` of a table read without lab values, the density, the
+/// basis) is added, empty in the rows it had. Blank lines are left out and
+/// fields are quoted only where CSV needs it.
 ///
-/// `text` is a table [`parse_samples`] reads (the caller checks it first:
-/// a row of another length is written as it is). Blank lines are left out.
+/// `text` is a table [`parse_samples`] reads, or its header alone (the
+/// caller checks it first; a row of another length is written as it is).
 ///
 /// # Errors
-/// `text` is not CSV ([`SampleError::Malformed`], with `file` and the line).
+/// `text` is not CSV ([`SampleError::Malformed`], with `file` and the
+/// line); a row's sample id is already in the table
+/// ([`SampleError::DuplicateId`]: nothing in a table is written over).
 pub fn merge_samples(file: &Path, text: &[u8], rows: &[RefSample]) -> Result<Vec<u8>, SampleError> {
     let malformed = |e: csv::Error| SampleError::Malformed {
         file: file.to_path_buf(),
         line: e.position().map(|p| p.line()).unwrap_or(1),
         reason: e.to_string(),
     };
+    const BOM: &[u8] = b"\xEF\xBB\xBF";
+    let crlf = text
+        .iter()
+        .position(|b| *b == b'\n')
+        .is_some_and(|i| i > 0 && text[i - 1] == b'\r');
     let mut rdr = csv::ReaderBuilder::new().flexible(true).from_reader(text);
     let mut header = rdr.headers().map_err(malformed)?.clone();
     let col = |header: &csv::StringRecord, name: &str| {
@@ -692,45 +708,28 @@ pub fn merge_samples(file: &Path, text: &[u8], rows: &[RefSample]) -> Result<Vec
             .iter()
             .position(|h| h.trim().eq_ignore_ascii_case(name))
     };
+    let cells: Vec<Vec<(&'static str, String)>> = rows.iter().map(sample_cells).collect();
     let had = header.len();
-    for (name, used) in [
-        (
-            DENSITY_COLUMN,
-            rows.iter().any(|r| r.bulk_density_kg_m3.is_some()),
-        ),
-        (
-            BASIS_COLUMN,
-            rows.iter().any(|r| r.moisture_basis.is_some()),
-        ),
-    ] {
+    for name in COLUMNS.iter().chain(&[DENSITY_COLUMN, BASIS_COLUMN]) {
+        let used = cells
+            .iter()
+            .any(|c| c.iter().any(|(n, v)| n == name && !v.is_empty()));
         if used && col(&header, name).is_none() {
             header.push_field(name);
         }
     }
-    // A row's cells in the header's columns, over `base` (its columns not
-    // of a sample kept, an added one empty).
-    let place = |base: &csv::StringRecord, r: &RefSample| -> csv::StringRecord {
-        let mut fields: Vec<String> = (0..header.len())
-            .map(|i| base.get(i).unwrap_or("").to_string())
-            .collect();
-        for name in COLUMNS.iter().chain(&[DENSITY_COLUMN, BASIS_COLUMN]) {
-            if let Some(i) = col(&header, name) {
-                fields[i] = sample_cells(r)
-                    .into_iter()
-                    .find(|(c, _)| c == name)
-                    .map_or(String::new(), |(_, v)| v);
-            }
-        }
-        fields.into_iter().collect()
-    };
     let id_col = col(&header, COLUMNS[0]);
-    let mut placed = vec![false; rows.len()];
     let mut w = csv::WriterBuilder::new()
         .flexible(true)
+        .terminator(if crlf {
+            csv::Terminator::CRLF
+        } else {
+            csv::Terminator::Any(b'\n')
+        })
         .from_writer(Vec::new());
     let io = |e: csv::Error| SampleError::Io {
         file: file.to_path_buf(),
-        reason: e.to_string(),
+        reason: format!("writing the table in memory: {e}"),
     };
     w.write_record(&header).map_err(io)?;
     for rec in rdr.records() {
@@ -738,31 +737,42 @@ pub fn merge_samples(file: &Path, text: &[u8], rows: &[RefSample]) -> Result<Vec
         if rec.iter().all(|f| f.trim().is_empty()) {
             continue; // a blank line, as the reader takes it
         }
+        let line = rec.position().map_or(0, |p| p.line());
         let id = id_col.and_then(|i| rec.get(i)).map(str::trim);
-        match rows.iter().position(|r| Some(r.sample_id.as_str()) == id) {
-            Some(k) => {
-                placed[k] = true;
-                w.write_record(&place(&rec, &rows[k])).map_err(io)?;
-            }
-            None => {
-                if rec.len() == had {
-                    for _ in had..header.len() {
-                        rec.push_field("");
-                    }
-                }
-                w.write_record(&rec).map_err(io)?;
+        if let Some(r) = rows.iter().find(|r| Some(r.sample_id.as_str()) == id) {
+            return Err(SampleError::DuplicateId {
+                file: file.to_path_buf(),
+                line,
+                first_line: line,
+                id: r.sample_id.clone(),
+            });
+        }
+        if rec.len() == had {
+            for _ in had..header.len() {
+                rec.push_field("");
             }
         }
+        w.write_record(&rec).map_err(io)?;
     }
-    for (r, done) in rows.iter().zip(placed) {
-        if !done {
-            w.write_record(&place(&csv::StringRecord::new(), r))
-                .map_err(io)?;
-        }
+    for c in &cells {
+        let row: Vec<&str> = header
+            .iter()
+            .map(|h| {
+                c.iter()
+                    .find(|(n, _)| h.trim().eq_ignore_ascii_case(n))
+                    .map_or("", |(_, v)| v.as_str())
+            })
+            .collect();
+        w.write_record(row).map_err(io)?;
     }
-    w.into_inner().map_err(|e| SampleError::Io {
+    let body = w.into_inner().map_err(|e| SampleError::Io {
         file: file.to_path_buf(),
-        reason: e.to_string(),
+        reason: format!("writing the table in memory: {e}"),
+    })?;
+    Ok(if text.starts_with(BOM) {
+        [BOM, &body].concat()
+    } else {
+        body
     })
 }
 
@@ -836,40 +846,71 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
     }
 
     /// A table with a column of the plant's own and a value typed with
-    /// more digits than the writer gives keeps both when rows are merged
+    /// more digits than the writer gives keeps both when a row is merged
     /// in (a rewrite from the samples dropped the one and rounded the
-    /// other), takes a new row at the end and a row of the same id in
-    /// that row's place (its note kept), and gains the basis column the
-    /// new rows fill, empty in the rows it had.
+    /// other), takes the new row at the end, and gains the basis column it
+    /// fills, empty in the rows it had. A row of a sample id the table has
+    /// is refused: nothing in the table is written over.
     #[test]
     fn merged_rows_keep_the_table_as_typed() {
         // A blank line (a tab) between the rows is left out, as the reader
         // takes it (found by fuzzing: written back, a row of one field).
         let typed = GOOD.replace(",12.3\n", ",12.34567\n\t\n");
         let s = parse(&typed).expect("valid table");
-        let s2 = RefSample {
+        let s3 = RefSample {
+            sample_id: "S3".into(),
             moisture_pct: Some(14.0),
             moisture_basis: Some(Basis::Wet),
             ..s.samples[1].clone()
         };
-        let s3 = RefSample {
-            sample_id: "S3".into(),
-            ..s2.clone()
+        let merge = |text: &str, r: &RefSample| {
+            merge_samples(
+                Path::new("lab.csv"),
+                text.as_bytes(),
+                std::slice::from_ref(r),
+            )
+            .map(|b| String::from_utf8(b).unwrap())
         };
-        let out = merge_samples(Path::new("lab.csv"), typed.as_bytes(), &[s2, s3]).expect("merge");
-        let out = String::from_utf8(out).unwrap();
+        let out = merge(&typed, &s3).expect("merge");
         assert_eq!(
             out,
             "\
 note,eps2_im,sample_id,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,temperature_c,moisture_pct,moisture_basis
 first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.34567,
-,0.9000,S2,1000000,6.400,13.00,20000000,5.000,22.00,14.00,wet
+,0.9,S2,1e6,6.4,13.0,2e7,5.0,22.0,13.1,
 ,0.9000,S3,1000000,6.400,13.00,20000000,5.000,22.00,14.00,wet
 "
         );
         let back = parse(&out).expect("merged table reads");
         assert_eq!(back.samples[0].moisture_pct, Some(12.34567));
         assert_eq!(back.samples.len(), 3);
+        let again = RefSample {
+            sample_id: "S2".into(),
+            ..s3.clone()
+        };
+        assert_eq!(
+            merge(&typed, &again).unwrap_err().to_string(),
+            "lab.csv: line 4, column sample_id: sample id `S2` already used on line 4"
+        );
+        // A table read without lab values gains the column its new row
+        // fills (the value typed at the capture is not lost); a byte order
+        // mark and CRLF line ends (a spreadsheet's CSV) stay.
+        let bare = "\u{feff}sample_id,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im\r\nS1,21.5,1e6,6.1,12.5,2e7,4.9,0.8\r\n";
+        let out = merge(bare, &s3).expect("merge");
+        assert_eq!(
+            out,
+            "\u{feff}sample_id,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im,moisture_pct,moisture_basis\r\n\
+             S1,21.5,1e6,6.1,12.5,2e7,4.9,0.8,,\r\n\
+             S3,22.00,1000000,6.400,13.00,20000000,5.000,0.9000,14.00,wet\r\n"
+        );
+    }
+
+    /// A column named twice in letters of another case is refused: the
+    /// reader took the ids from one, a writer could match the other.
+    #[test]
+    fn a_column_named_twice_in_another_case_is_refused() {
+        let e = err(&GOOD.replacen("note,", "Sample_ID,", 1));
+        assert_eq!(e, "lab.csv: line 1: column `sample_id` appears twice");
     }
 
     fn err(text: &str) -> String {
