@@ -522,6 +522,93 @@ fn a_dry_basis_device_is_checked_against_a_wet_band_on_the_bands_basis() {
     );
 }
 
+/// A product calibration selected on a device while the gateway runs,
+/// one the store has no record of (written by a tool on another link: the
+/// simulator's `[calibration.switch]`), on a dry basis: its first readings
+/// are held from the alarm check while the gateway asks the device for the
+/// calibration, then checked on the site band's basis. The first device
+/// reads 11.0 % wet, 12.34 % dry on the simulator's dry calibration (see
+/// the test above): above the band's high limit of 11.8 % taken as
+/// written, inside it taken on the band's basis (13.38 % dry). Status
+/// lines say wet before the change and dry after it.
+#[test]
+fn a_calibration_selected_while_the_gateway_runs_is_asked_for_its_basis() {
+    let (dir, site, _db) = sim_site();
+    let dev0 = dir.path().join("dev0.toml");
+    let scenario = std::fs::read_to_string(&dev0).expect("scenario");
+    std::fs::write(
+        &dev0,
+        format!("{scenario}[calibration.switch]\nat_s = 4.0\nbasis = \"dry\"\n"),
+    )
+    .expect("scenario");
+    let text = std::fs::read_to_string(&site).expect("site");
+    std::fs::write(
+        &site,
+        text.replacen(
+            "[[device]]",
+            "[alarm]\nmoisture_high_pct = 11.8\n\n[[device]]",
+            1,
+        ),
+    )
+    .expect("site");
+    let gw = Running::start(&site, dir.path(), "gw");
+    let out = dir.path().join("gw.out");
+    // Unit 1's status lines with a reading: (basis, moisture, alarms).
+    let unit1 = || -> Vec<(Value, f64, Value)> {
+        std::fs::read_to_string(&out)
+            .unwrap_or_default()
+            .lines()
+            .filter_map(|l| serde_json::from_str::<Value>(l).ok())
+            .filter(|v| v["type"] == "status" && v["unit"] == 1 && v["moisture_pct"].is_number())
+            .map(|v| {
+                (
+                    v["moisture_basis"].clone(),
+                    v["moisture_pct"].as_f64().unwrap_or(f64::NAN),
+                    v["alarms"].clone(),
+                )
+            })
+            .collect()
+    };
+    poll_until(
+        DEADLINE,
+        || format!("unit 1 never reported on a dry basis:\n{}", gw.stderr()),
+        || unit1().iter().filter(|l| l.0 == "dry").count() >= 3,
+    );
+    gw.signal("-TERM");
+    let (code, err) = gw.wait();
+    assert_eq!(code, 0, "{err}");
+    let lines = unit1();
+    let first_dry = lines.iter().position(|l| l.0 == "dry").expect("dry");
+    assert!(
+        lines[..first_dry]
+            .iter()
+            .all(|l| l.0 == "wet" || l.0.is_null()),
+        "{lines:?}"
+    );
+    assert_eq!(lines[0].0, "wet", "{lines:?}");
+    for (basis, m, alarms) in &lines[first_dry..] {
+        assert_eq!(basis, "dry", "{lines:?}");
+        assert!((m - 12.34).abs() < 0.3, "{m}: {lines:?}");
+        assert_eq!(alarms, &serde_json::json!([]), "{lines:?}\n{err}");
+    }
+    // Units 2 and 3 (12.5 and 14.0 % wet) are above the band; unit 1
+    // never is.
+    assert!(
+        !err.lines()
+            .any(|l| l.contains("unit 1 ") && l.contains("ALARM")),
+        "{err}"
+    );
+    assert!(err.contains("unit 3 GWT-C-0003: HIGH ALARM"), "{err}");
+    // Said when the basis was learned, as at connect for a device on the
+    // other basis.
+    assert!(
+        err.contains(
+            "alarm limits written on a wet basis, the device reports on a dry one: moisture band --..11.80 % taken as --..13.38 %"
+        ),
+        "{err}"
+    );
+}
+
 /// Runs the gateway of `site` (`--json`, its output in `dir`) until a
 /// status line with a reading has come for each of the three devices,
 /// then stops it with SIGTERM (exit 0): each unit's latest such line, in

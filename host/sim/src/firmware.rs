@@ -10,7 +10,9 @@ use fringe_protocol::ResetCause;
 use fringe_firmware::sim::{exact_calibration_on, SIM_CELL};
 use fringe_protocol::auth::sign;
 use fringe_protocol::frame::encode_vec;
-use fringe_protocol::{Basis, CellCal, CellPoint, DeviceFrame, FrameDecoder, HostFrame, Request};
+use fringe_protocol::{
+    Basis, CellCal, CellPoint, DeviceFrame, FrameDecoder, HostFrame, ProductCal, Request, Response,
+};
 
 use crate::device::{Bench, SimDevice};
 use crate::scenario::{
@@ -69,6 +71,15 @@ pub struct FirmwareSim {
     /// Unix ms of device time 0 when the clock starts set (a battery-backed
     /// clock that runs on across reboots).
     clock_origin_ms: Option<u64>,
+    /// The device's key (for the scenario's own signed writes).
+    key: [u8; 32],
+    /// The scenario's later calibration, until it is written: when (device
+    /// ms) and what.
+    switch: Option<(u64, ProductCal)>,
+    /// Whether the last byte from the host ended a frame (or none came
+    /// yet): the device's decoder holds no part of a host's frame, so a
+    /// frame of the scenario's own can go in between.
+    host_idle: bool,
 }
 
 impl FirmwareSim {
@@ -115,6 +126,9 @@ impl FirmwareSim {
             ready_ms: 0,
             bench: None,
             clock_origin_ms,
+            key,
+            switch: None,
+            host_idle: true,
         };
         s.start_clock(0);
         s.set_conditions(&scenario.at(0.0));
@@ -126,6 +140,16 @@ impl FirmwareSim {
             let mut product = s.product;
             product.mixture.bulk_density_kg_m3 = scenario.at(0.0).bulk_density_kg_m3 as f32;
             s.commission(&key, c, &product, name)?;
+            if let Some(w) = &c.switch {
+                let later = w
+                    .product_name
+                    .clone()
+                    .unwrap_or_else(|| format!("{} B", name.chars().take(14).collect::<String>()));
+                s.switch = Some((
+                    (w.at_s * 1000.0).round() as u64,
+                    exact_calibration_on(&product, &later, basis_of(w.basis)),
+                ));
+            }
         }
         Ok(s)
     }
@@ -145,14 +169,7 @@ impl FirmwareSim {
             CellCalSource::Simulator => simulator_cell(self.config.measure.freqs_hz),
         };
         let product = match c.product {
-            ProductCalSource::Exact => exact_calibration_on(
-                product,
-                name,
-                match c.basis {
-                    CalBasis::Wet => Basis::Wet,
-                    CalBasis::Dry => Basis::Dry,
-                },
-            ),
+            ProductCalSource::Exact => exact_calibration_on(product, name, basis_of(c.basis)),
         };
         let writes = [
             Request::WriteCellCal(cell),
@@ -189,6 +206,53 @@ impl FirmwareSim {
         Ok(())
     }
 
+    /// Writes the scenario's later calibration `cal` into slot 1 and
+    /// selects it, through the device's own signed requests (the counter
+    /// one above the one the device stored, as a host would sign them).
+    /// The answers are not sent to the host (it did not ask); anything else
+    /// the device sends meanwhile (a reading, the selection's event) is.
+    fn switch_calibration(&mut self, now_ms: u64, cal: ProductCal, tx: &mut dyn FnMut(&[u8])) {
+        let (key, serial) = (self.key, self.config.serial.clone());
+        let Some(d) = self.device.as_mut() else {
+            return;
+        };
+        // One request through the device's own handler: its answer (None
+        // for an error), everything else passed on to the host.
+        let mut ask = |id: u16, auth, request| -> Option<Response> {
+            let Ok(bytes) = encode_vec(&HostFrame { id, auth, request }) else {
+                return None;
+            };
+            let mut out = Vec::new();
+            d.poll(now_ms, &bytes, &mut |b: &[u8]| out.extend_from_slice(b));
+            let mut answer = None;
+            for chunk in out.split_inclusive(|b| *b == 0) {
+                let mut dec = FrameDecoder::<DeviceFrame>::new();
+                match dec.push(chunk).flatten().next() {
+                    Some(DeviceFrame::Response { id: got, response }) if got == id => {
+                        answer = Some(response);
+                    }
+                    Some(DeviceFrame::Error { id: got, .. }) if got == id => {}
+                    _ => tx(chunk),
+                }
+            }
+            answer
+        };
+        let Some(Response::Status(st)) = ask(0xFFF0, None, Request::Status) else {
+            return;
+        };
+        let writes = [
+            Request::WriteProductCal { slot: 1, cal },
+            Request::SelectProduct { slot: 1 },
+        ];
+        for (k, request) in writes.into_iter().enumerate() {
+            let counter = st.write_counter.wrapping_add(1 + k as u32);
+            let auth = sign(&key, serial.as_str(), counter, &request);
+            if ask(0xFFF1 + k as u16, auth, request).is_none() {
+                return;
+            }
+        }
+    }
+
     /// Sets the clock from the simulated battery-backed clock, if it has one.
     fn start_clock(&mut self, now_ms: u64) {
         if let (Some(d), Some(origin)) = (self.device.as_mut(), self.clock_origin_ms) {
@@ -223,6 +287,14 @@ impl SimDevice for FirmwareSim {
             self.ready_ms = now_ms + (spent_s * 1000.0).round() as u64;
         }
         self.last_ms = now_ms;
+        if let Some(&last) = rx.last() {
+            self.host_idle = last == 0;
+        }
+        if self.host_idle && self.switch.as_ref().is_some_and(|(at, _)| now_ms >= *at) {
+            if let Some((_, cal)) = self.switch.take() {
+                self.switch_calibration(now_ms, cal, tx);
+            }
+        }
     }
 
     fn set_conditions(&mut self, c: &Conditions) {
@@ -302,5 +374,13 @@ impl SimDevice for FirmwareSim {
             .ok();
             self.start_clock(now_ms);
         }
+    }
+}
+
+/// The firmware's basis of a scenario's calibration.
+fn basis_of(b: CalBasis) -> Basis {
+    match b {
+        CalBasis::Wet => Basis::Wet,
+        CalBasis::Dry => Basis::Dry,
     }
 }

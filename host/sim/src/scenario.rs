@@ -190,6 +190,26 @@ pub struct CalibrationSection {
     /// The basis it reports moisture on (default wet).
     #[serde(default)]
     pub basis: CalBasis,
+    /// Another product calibration written and selected later, as a tool
+    /// on another link would: a host that is running sees readings carry a
+    /// calibration it did not push (`[calibration.switch]`).
+    #[serde(default)]
+    pub switch: Option<CalSwitch>,
+}
+
+/// The `[calibration.switch]` table: at `at_s` (scenario time) the exact
+/// calibration on `basis` is written into slot 1 and selected, through the
+/// device's own signed requests.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CalSwitch {
+    /// When, s of scenario time.
+    pub at_s: f64,
+    /// The basis the new calibration reports on.
+    pub basis: CalBasis,
+    /// Its name on the device (default: the first one's with " B").
+    #[serde(default)]
+    pub product_name: Option<String>,
 }
 
 /// The moisture basis of the scenario's product calibration.
@@ -420,6 +440,24 @@ impl Scenario {
                 ));
             }
         }
+        if let Some(w) = self.calibration.as_ref().and_then(|c| c.switch.as_ref()) {
+            if !(w.at_s.is_finite() && w.at_s >= 0.0) {
+                return Err(bad(
+                    "calibration.switch.at_s",
+                    w.at_s.to_string(),
+                    "must be finite and >= 0",
+                ));
+            }
+            if let Some(name) = &w.product_name {
+                if name.is_empty() || name.len() > fringe_protocol::NAME_LEN {
+                    return Err(bad(
+                        "calibration.switch.product_name",
+                        format!("{name:?}"),
+                        "must be 1..=16 bytes",
+                    ));
+                }
+            }
+        }
         let curves: [(&str, &Vec<Point>, f64, f64); 5] = [
             ("moisture_pct", &self.moisture_pct, 0.0, 100.0),
             ("temperature_c", &self.temperature_c, -40.0, 150.0),
@@ -580,6 +618,33 @@ mod tests {
         .unwrap_err()
         .to_string();
         assert!(e.contains("temperature_c[1]"), "{e}");
+    }
+
+    #[test]
+    fn a_later_calibration_needs_a_time_and_a_name_that_fits() {
+        let with = |switch: &str| {
+            Scenario::parse(
+                Path::new("t.toml"),
+                &format!(
+                    "{}\n[calibration]\ncell = \"simulator\"\nproduct = \"exact\"\n[calibration.switch]\n{switch}",
+                    text("")
+                ),
+            )
+        };
+        let s = with("at_s = 30\nbasis = \"dry\"\n").unwrap();
+        let w = s.calibration.and_then(|c| c.switch).unwrap();
+        assert_eq!((w.at_s, w.basis), (30.0, CalBasis::Dry));
+        let e = with("at_s = -1\nbasis = \"dry\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("calibration.switch.at_s") && e.contains(">= 0"),
+            "{e}"
+        );
+        let e = with("at_s = 1\nbasis = \"dry\"\nproduct_name = \"a name of seventeen\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("calibration.switch.product_name"), "{e}");
     }
 
     #[test]
