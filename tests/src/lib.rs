@@ -218,6 +218,8 @@ pub struct ScenarioSpec {
     /// More scenario text (top-level keys, then `[[empty]]` tables),
     /// placed before the `[device]` table.
     pub extra: String,
+    /// Tables placed at the end (`[calibration]`, say).
+    pub tail: String,
 }
 
 impl ScenarioSpec {
@@ -241,6 +243,7 @@ impl ScenarioSpec {
             garbage_per_frame: 0.0,
             disconnects: Vec::new(),
             extra: String::new(),
+            tail: String::new(),
         }
     }
 
@@ -275,6 +278,7 @@ impl ScenarioSpec {
                 "[[link.disconnect]]\nat_s = {at}\nfor_s = {len}\n"
             ));
         }
+        s.push_str(&self.tail);
         s
     }
 }

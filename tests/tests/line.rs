@@ -4,7 +4,8 @@
 //! has, never twice); a monitor sets an unset clock, and the readings taken
 //! before are re-based onto wall-clock time and found by a report, the
 //! drift data and an audit export over a wall-clock range; the device clock
-//! and settings commands; times typed with and without an offset.
+//! and settings commands; times typed with and without an offset; a
+//! calibration selected while the monitor runs.
 
 use std::path::Path;
 use std::time::{Duration, Instant};
@@ -834,4 +835,66 @@ fn lab_times_with_offsets_and_local_times_and_bad_times_naming_the_field() {
         let o = add(bad, "G-9");
         assert_fails(&o, 2, &["--time", bad, "RFC 3339", "local time"]);
     }
+}
+
+/// A product calibration selected on the device while `fringe monitor`
+/// runs, one its database has no record of (written by a tool on another
+/// link: the simulator's `[calibration.switch]`, at 30 s of device time),
+/// on a dry basis: the monitor asks the device for it, says how it takes
+/// the line's alarm band (12 and 15.5 % wet are 13.64 and 18.34 % dry,
+/// M_db = 100 M_wb / (100 - M_wb)) and checks its readings on the band's
+/// basis. The line reads 14 % rising to 15.1 % wet over the run (17.8 %
+/// dry): above the band's 15.5 % taken as written, inside it on its basis.
+#[test]
+fn a_calibration_selected_while_the_monitor_runs_is_asked_for_its_basis() {
+    let sim = Sim::start(&ScenarioSpec {
+        tail: "[calibration]\ncell = \"simulator\"\nproduct = \"exact\"\n\
+               [calibration.switch]\nat_s = 30.0\nbasis = \"dry\"\n"
+            .into(),
+        ..ScenarioSpec::clean("HGM-L2-0230", seed(30))
+    });
+    let line = sim.path("line2.toml");
+    std::fs::write(
+        &line,
+        "[alarm]\nmoisture_low_pct = 12.0\nmoisture_high_pct = 15.5\n",
+    )
+    .unwrap();
+    let o = run(
+        sim.monitor(&sim.path("line2.db"), &["--count", "600", "--json"])
+            .env("FRINGE_CONFIG", &line),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let readings: Vec<serde_json::Value> = o
+        .stdout
+        .lines()
+        .filter_map(|l| serde_json::from_str(l).ok())
+        .filter(|v: &serde_json::Value| v["type"] == "reading" && v["moisture_pct"].is_number())
+        .collect();
+    let first_dry = readings
+        .iter()
+        .position(|v| v["moisture_basis"] == "dry")
+        .unwrap_or_else(|| panic!("no reading on a dry basis:\n{}\n{}", o.stdout, o.stderr));
+    assert!(
+        first_dry > 0,
+        "the switch came before the monitor: {}",
+        o.stderr
+    );
+    assert_eq!(readings[0]["moisture_basis"], "wet", "{}", o.stdout);
+    for v in &readings[first_dry..] {
+        assert_eq!(v["moisture_basis"], "dry", "{v}");
+        assert_eq!(v["alarms"], serde_json::json!([]), "{v}\n{}", o.stderr);
+    }
+    let m = readings
+        .last()
+        .and_then(|v| v["moisture_pct"].as_f64())
+        .unwrap_or(f64::NAN);
+    assert!(m > 15.5 && m < 18.34, "{m}: {}", o.stdout);
+    assert!(
+        o.stderr.contains(
+            "alarm limits written on a wet basis, the device reports on a dry one: moisture band 12.00..15.50 % taken as 13.64..18.34 %"
+        ),
+        "{}",
+        o.stderr
+    );
 }
