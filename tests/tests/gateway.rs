@@ -538,7 +538,7 @@ fn a_calibration_selected_while_the_gateway_runs_is_asked_for_its_basis() {
     let scenario = std::fs::read_to_string(&dev0).expect("scenario");
     std::fs::write(
         &dev0,
-        format!("{scenario}[calibration.switch]\nat_s = 4.0\nbasis = \"dry\"\n"),
+        format!("{scenario}[calibration.switch]\nat_s = 15.0\nbasis = \"dry\"\n"),
     )
     .expect("scenario");
     let text = std::fs::read_to_string(&site).expect("site");

@@ -839,28 +839,30 @@ fn lab_times_with_offsets_and_local_times_and_bad_times_naming_the_field() {
 
 /// A product calibration selected on the device while `fringe monitor`
 /// runs, one its database has no record of (written by a tool on another
-/// link: the simulator's `[calibration.switch]`, at 30 s of device time),
-/// on a dry basis: the monitor asks the device for it, says how it takes
-/// the line's alarm band (12 and 15.5 % wet are 13.64 and 18.34 % dry,
-/// M_db = 100 M_wb / (100 - M_wb)) and checks its readings on the band's
-/// basis. The line reads 14 % rising to 15.1 % wet over the run (17.8 %
-/// dry): above the band's 15.5 % taken as written, inside it on its basis.
+/// link: the simulator's `[calibration.switch]`, at 60 s of device time,
+/// 6 s of wall time), on a dry basis: the monitor asks the device for it,
+/// says how it takes the line's alarm band (12 and 16.2 % wet are 13.64
+/// and 19.33 % dry, M_db = 100 M_wb / (100 - M_wb)) and checks its
+/// readings on the band's basis, the first of them too (held until the
+/// basis is known: shown before, it was checked as written). The line
+/// reads 14-16 % wet, 16.3-19.0 % dry on the simulator's dry calibration:
+/// above the band's 16.2 % taken as written, inside it on its basis.
 #[test]
 fn a_calibration_selected_while_the_monitor_runs_is_asked_for_its_basis() {
     let sim = Sim::start(&ScenarioSpec {
         tail: "[calibration]\ncell = \"simulator\"\nproduct = \"exact\"\n\
-               [calibration.switch]\nat_s = 30.0\nbasis = \"dry\"\n"
+               [calibration.switch]\nat_s = 60.0\nbasis = \"dry\"\n"
             .into(),
         ..ScenarioSpec::clean("HGM-L2-0230", seed(30))
     });
     let line = sim.path("line2.toml");
     std::fs::write(
         &line,
-        "[alarm]\nmoisture_low_pct = 12.0\nmoisture_high_pct = 15.5\n",
+        "[alarm]\nmoisture_low_pct = 12.0\nmoisture_high_pct = 16.2\n",
     )
     .unwrap();
     let o = run(
-        sim.monitor(&sim.path("line2.db"), &["--count", "600", "--json"])
+        sim.monitor(&sim.path("line2.db"), &["--count", "1200", "--json"])
             .env("FRINGE_CONFIG", &line),
         LIMIT,
     );
@@ -875,24 +877,25 @@ fn a_calibration_selected_while_the_monitor_runs_is_asked_for_its_basis() {
         .iter()
         .position(|v| v["moisture_basis"] == "dry")
         .unwrap_or_else(|| panic!("no reading on a dry basis:\n{}\n{}", o.stdout, o.stderr));
+    // Wet up to the switch (so the monitor ran before it), dry after it,
+    // every reading on a known basis.
     assert!(
         first_dry > 0,
         "the switch came before the monitor: {}",
         o.stderr
     );
-    assert_eq!(readings[0]["moisture_basis"], "wet", "{}", o.stdout);
+    for v in &readings[..first_dry] {
+        assert_eq!(v["moisture_basis"], "wet", "{v}");
+    }
     for v in &readings[first_dry..] {
         assert_eq!(v["moisture_basis"], "dry", "{v}");
+        let m = v["moisture_pct"].as_f64().unwrap_or(f64::NAN);
+        assert!(m > 16.2 && m < 19.33, "{v}");
         assert_eq!(v["alarms"], serde_json::json!([]), "{v}\n{}", o.stderr);
     }
-    let m = readings
-        .last()
-        .and_then(|v| v["moisture_pct"].as_f64())
-        .unwrap_or(f64::NAN);
-    assert!(m > 15.5 && m < 18.34, "{m}: {}", o.stdout);
     assert!(
         o.stderr.contains(
-            "alarm limits written on a wet basis, the device reports on a dry one: moisture band 12.00..15.50 % taken as 13.64..18.34 %"
+            "alarm limits written on a wet basis, the device reports on a dry one: moisture band 12.00..16.20 % taken as 13.64..19.33 %"
         ),
         "{}",
         o.stderr

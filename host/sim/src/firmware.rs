@@ -16,7 +16,8 @@ use fringe_protocol::{
 
 use crate::device::{Bench, SimDevice};
 use crate::scenario::{
-    CalBasis, CalibrationSection, CellCalSource, ClockStart, Conditions, ProductCalSource, Scenario,
+    switch_name, CalBasis, CalibrationSection, CellCalSource, ClockStart, Conditions,
+    ProductCalSource, Scenario,
 };
 
 /// The simulated cell at the device's two frequencies `freqs_hz` as
@@ -74,8 +75,8 @@ pub struct FirmwareSim {
     /// The device's key (for the scenario's own signed writes).
     key: [u8; 32],
     /// The scenario's later calibration, until it is written: when (device
-    /// ms) and what.
-    switch: Option<(u64, ProductCal)>,
+    /// ms), what, and the tries the device refused so far.
+    switch: Option<(u64, ProductCal, u32)>,
     /// Whether the last byte from the host ended a frame (or none came
     /// yet): the device's decoder holds no part of a host's frame, so a
     /// frame of the scenario's own can go in between.
@@ -141,13 +142,10 @@ impl FirmwareSim {
             product.mixture.bulk_density_kg_m3 = scenario.at(0.0).bulk_density_kg_m3 as f32;
             s.commission(&key, c, &product, name)?;
             if let Some(w) = &c.switch {
-                let later = w
-                    .product_name
-                    .clone()
-                    .unwrap_or_else(|| format!("{} B", name.chars().take(14).collect::<String>()));
                 s.switch = Some((
                     (w.at_s * 1000.0).round() as u64,
-                    exact_calibration_on(&product, &later, basis_of(w.basis)),
+                    exact_calibration_on(&product, &switch_name(name, w), basis_of(w.basis)),
+                    0,
                 ));
             }
         }
@@ -211,14 +209,22 @@ impl FirmwareSim {
     /// one above the one the device stored, as a host would sign them).
     /// The answers are not sent to the host (it did not ask); anything else
     /// the device sends meanwhile (a reading, the selection's event) is.
-    fn switch_calibration(&mut self, now_ms: u64, cal: ProductCal, tx: &mut dyn FnMut(&[u8])) {
+    fn switch_calibration(
+        &mut self,
+        now_ms: u64,
+        cal: ProductCal,
+        tx: &mut dyn FnMut(&[u8]),
+    ) -> bool {
         let (key, serial) = (self.key, self.config.serial.clone());
         let Some(d) = self.device.as_mut() else {
-            return;
+            return false;
         };
         // One request through the device's own handler: its answer (None
-        // for an error), everything else passed on to the host.
-        let mut ask = |id: u16, auth, request| -> Option<Response> {
+        // for an error), everything else passed on to the host. Id 0 is
+        // one a host never sends (fringe_link counts from 1), so no answer
+        // of the host's is taken for one of these.
+        let mut ask = |auth, request| -> Option<Response> {
+            let id = 0;
             let Ok(bytes) = encode_vec(&HostFrame { id, auth, request }) else {
                 return None;
             };
@@ -237,8 +243,8 @@ impl FirmwareSim {
             }
             answer
         };
-        let Some(Response::Status(st)) = ask(0xFFF0, None, Request::Status) else {
-            return;
+        let Some(Response::Status(st)) = ask(None, Request::Status) else {
+            return false;
         };
         let writes = [
             Request::WriteProductCal { slot: 1, cal },
@@ -247,10 +253,11 @@ impl FirmwareSim {
         for (k, request) in writes.into_iter().enumerate() {
             let counter = st.write_counter.wrapping_add(1 + k as u32);
             let auth = sign(&key, serial.as_str(), counter, &request);
-            if ask(0xFFF1 + k as u16, auth, request).is_none() {
-                return;
+            if ask(auth, request).is_none() {
+                return false;
             }
         }
+        true
     }
 
     /// Sets the clock from the simulated battery-backed clock, if it has one.
@@ -290,9 +297,21 @@ impl SimDevice for FirmwareSim {
         if let Some(&last) = rx.last() {
             self.host_idle = last == 0;
         }
-        if self.host_idle && self.switch.as_ref().is_some_and(|(at, _)| now_ms >= *at) {
-            if let Some((_, cal)) = self.switch.take() {
-                self.switch_calibration(now_ms, cal, tx);
+        if self.host_idle && self.switch.as_ref().is_some_and(|(at, ..)| now_ms >= *at) {
+            if let Some((_, cal, tries)) = self.switch.take() {
+                // A refusal (writes held off after failed authentications,
+                // a host's write signed with the same counter just before)
+                // is tried again a second later, five times in all.
+                if !self.switch_calibration(now_ms, cal.clone(), tx) {
+                    if tries + 1 < 5 {
+                        self.switch = Some((now_ms + 1000, cal, tries + 1));
+                    } else {
+                        eprintln!(
+                            "fringe sim: {}: the scenario's [calibration.switch] was refused by the device 5 times; given up",
+                            self.config.serial
+                        );
+                    }
+                }
             }
         }
     }

@@ -35,6 +35,12 @@
 //! product_name = "HM wheat L2"      # the calibration's name on the device (default: product.name)
 //! basis = "wet"                     # "dry": water over dry mass, the cubic of 100 m / (100 - m)
 //!                                   # (0.05 % low at 14 % wet, 0.5 % at 25 %)
+//! [calibration.switch]             # optional: a second calibration written into slot 1 and selected
+//! at_s = 600.0                      # at this device time (s), between host frames, through the device's
+//!                                   # own signed requests (a tool on another link; a host write signed at
+//!                                   # that moment is refused once as a replay)
+//! basis = "dry"                     # the second one's basis
+//! product_name = "HM wheat L2 dry"  # its name (default: the first one's, cut to 14 bytes, with " B")
 //!
 //! [[empty]]                         # no product in front of the window
 //! from_s = 120
@@ -195,6 +201,19 @@ pub struct CalibrationSection {
     /// calibration it did not push (`[calibration.switch]`).
     #[serde(default)]
     pub switch: Option<CalSwitch>,
+}
+
+/// The name of the switch's calibration on the device, the first one's
+/// being `first`: its own, else `first` cut to 14 bytes (at a character
+/// boundary) with " B".
+pub fn switch_name(first: &str, w: &CalSwitch) -> String {
+    w.product_name.clone().unwrap_or_else(|| {
+        let mut end = first.len().min(fringe_protocol::NAME_LEN - 2);
+        while !first.is_char_boundary(end) {
+            end -= 1;
+        }
+        format!("{} B", &first[..end])
+    })
 }
 
 /// The `[calibration.switch]` table: at `at_s` (scenario time) the exact
@@ -457,6 +476,16 @@ impl Scenario {
                     ));
                 }
             }
+            if let Some(c) = &self.calibration {
+                let first = c.product_name.as_deref().unwrap_or(&self.product.name);
+                if w.basis == c.basis && switch_name(first, w) == first {
+                    return Err(bad(
+                        "calibration.switch",
+                        format!("basis {:?}, product_name {first:?}", w.basis),
+                        "is the first calibration again (the same content id): give it another basis or product_name",
+                    ));
+                }
+            }
         }
         let curves: [(&str, &Vec<Point>, f64, f64); 5] = [
             ("moisture_pct", &self.moisture_pct, 0.0, 100.0),
@@ -645,6 +674,22 @@ mod tests {
             .unwrap_err()
             .to_string();
         assert!(e.contains("calibration.switch.product_name"), "{e}");
+        // The first calibration again (same basis, same name) is refused:
+        // hosts could not tell it happened.
+        let e = with("at_s = 1\nbasis = \"wet\"\nproduct_name = \"wheat\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("is the first calibration again"), "{e}");
+        // The default name: the first one's, cut to 14 bytes at a character
+        // boundary, with " B" (16 bytes at most).
+        let w = CalSwitch {
+            at_s: 0.0,
+            basis: CalBasis::Wet,
+            product_name: None,
+        };
+        assert_eq!(switch_name("wheat", &w), "wheat B");
+        assert_eq!(switch_name("Weizen grün 1234", &w), "Weizen grün 1 B");
+        assert!(switch_name("ääääääää", &w).len() <= 16);
     }
 
     #[test]

@@ -102,6 +102,11 @@ struct View {
     /// A calibration a reading carried whose basis is not known: looked
     /// up after this poll (the store's records, then the device).
     unknown: Option<fringe_protocol::CalId>,
+    /// The readings of this poll from the first of such a calibration on,
+    /// shown once its basis is looked up (shown before, they were checked
+    /// against the band as written: a false alarm where the basis is the
+    /// band's other one), in the order they came.
+    held: Vec<Reading>,
     /// Calibrations neither the store nor the device said the basis of
     /// (said once).
     not_found: std::collections::BTreeSet<fringe_protocol::CalId>,
@@ -208,22 +213,39 @@ impl View {
                 {
                     self.unknown = Some(r.product_cal);
                 }
-                let written = if self.broken.is_some() {
-                    Ok(())
-                } else if self.json_lines {
-                    out::json(&self.reading_json(r))
-                } else if !self.style.tty && !self.quiet {
-                    out::line(&self.plain_line(r))
+                if self.unknown.is_some() {
+                    self.held.push(*r);
                 } else {
-                    Ok(())
-                };
-                if let Err(e) = written {
-                    self.broken = Some(e);
+                    self.show(r);
                 }
             }
             Note::Reconnecting(why) => self.notice(&format!("{why}: reconnecting")),
             Note::Reconnected => self.notice("reconnected"),
             _ => {}
+        }
+    }
+
+    /// Writes reading `r` to stdout (a JSON line, or a plain one where
+    /// stdout is not a terminal).
+    fn show(&mut self, r: &Reading) {
+        let written = if self.broken.is_some() {
+            Ok(())
+        } else if self.json_lines {
+            out::json(&self.reading_json(r))
+        } else if !self.style.tty && !self.quiet {
+            out::line(&self.plain_line(r))
+        } else {
+            Ok(())
+        };
+        if let Err(e) = written {
+            self.broken = Some(e);
+        }
+    }
+
+    /// Shows the readings held for a calibration's basis ([`View::held`]).
+    fn show_held(&mut self) {
+        for r in std::mem::take(&mut self.held) {
+            self.show(&r);
         }
     }
 
@@ -386,7 +408,8 @@ fn active_calibration(
 /// database's records (`cal select` with this database), else the
 /// device's active calibration; said when it is on the band's other basis,
 /// and once when neither says (its readings are then checked as written).
-/// The reading that brought it was checked before this.
+/// The readings of the poll that brought it are shown after this
+/// ([`View::held`]).
 fn learn_basis(view: &mut View, store: &Store, session: &mut Session, id: fringe_protocol::CalId) {
     let serial = view.serial.clone();
     view.bases.extend(calibration_bases(store, &serial, None));
@@ -453,6 +476,7 @@ fn run(
         bases: calibration_bases(store, link.serial_number(), active),
         unknown: None,
         not_found: std::collections::BTreeSet::new(),
+        held: Vec::new(),
     };
     let mut drift = DriftWatch {
         watch: fringe_quality::watch::DriftWatch::new(
@@ -539,14 +563,15 @@ fn run(
                 };
                 session.poll(store, &mut ctx)?
             };
+            if let Some(id) = view.unknown.take() {
+                learn_basis(&mut view, store, &mut session, id);
+            }
+            view.show_held();
             if let Some(e) = view.broken.take() {
                 return Err(e.into());
             }
             if polled.stopped {
                 return Ok(());
-            }
-            if let Some(id) = view.unknown.take() {
-                learn_basis(&mut view, store, &mut session, id);
             }
             if polled.committed.is_some() {
                 drift.watch(store, &serial, session.summary().streamed, &mut view, false);
