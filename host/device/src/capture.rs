@@ -37,6 +37,22 @@ pub enum CaptureError {
         #[source]
         source: SampleError,
     },
+    /// A sample was measured but the table could not take it (changed
+    /// meanwhile so that it no longer reads, say, or the disk full): the
+    /// sample is kept in a file of its own beside it, or where that failed
+    /// too, its values are in the message.
+    #[error("sample {id} was measured, but {} could not take it: {source}; {kept}", table.display())]
+    Unsaved {
+        /// The sample's id.
+        id: String,
+        /// The table.
+        table: PathBuf,
+        /// Where the sample is kept instead, in words.
+        kept: String,
+        /// Why the table could not take it.
+        #[source]
+        source: Box<CaptureError>,
+    },
     /// The table could not be written.
     #[error("writing {path}: {source}")]
     Write {
@@ -140,10 +156,43 @@ pub fn capture(
             "  {id}: {:.1} C, eps1 {:.3} - j{:.3}, eps2 {:.3} - j{:.3}",
             s.temperature_c, s.eps_re[0], s.eps_im[0], s.eps_re[1], s.eps_im[1]
         ));
-        save_rows(out, std::slice::from_ref(&s), basis)?;
+        if let Err(e) = save_rows(out, std::slice::from_ref(&s), basis) {
+            return Err(keep_aside(out, &s, basis, e));
+        }
         rows.push(s);
     }
     Ok(rows.len())
+}
+
+/// A sample measured that the table `out` could not take (`why`), kept in
+/// `<out>.unsaved.csv` beside it (added to what that holds), so that the
+/// measurement is not lost with the table's fault.
+fn keep_aside(out: &Path, s: &RefSample, basis: Basis, why: CaptureError) -> CaptureError {
+    let aside = out.with_extension("unsaved.csv");
+    let kept = match save_rows(&aside, std::slice::from_ref(s), basis) {
+        Ok(()) => format!(
+            "it is kept in {}: copy its row into the table once the table reads again",
+            aside.display()
+        ),
+        Err(e) => format!(
+            "nor could {} ({e}); note its values: lab moisture {}, {:.2} C, {:.0} Hz eps {} - j{}, {:.0} Hz eps {} - j{}",
+            aside.display(),
+            s.moisture_pct.map_or("none".into(), |m| format!("{m} %")),
+            s.temperature_c,
+            s.freqs_hz[0],
+            s.eps_re[0],
+            s.eps_im[0],
+            s.freqs_hz[1],
+            s.eps_re[1],
+            s.eps_im[1]
+        ),
+    };
+    CaptureError::Unsaved {
+        id: s.sample_id.clone(),
+        table: out.to_path_buf(),
+        kept,
+        source: Box::new(why),
+    }
 }
 
 /// The text of the table at `path`, or `None` where there is none yet
@@ -271,5 +320,34 @@ mod tests {
         let e = save_rows(&path, &[sample("A3")], Basis::Dry).unwrap_err();
         assert!(e.to_string().contains("moisture_basis"), "{e}");
         assert_eq!(std::fs::read_to_string(&path).unwrap(), two);
+    }
+
+    /// A sample measured when the table no longer reads (saved again by a
+    /// spreadsheet with semicolons while the capture ran) is kept in a file
+    /// of its own beside it, and the error says where; the table is left
+    /// as it is.
+    #[test]
+    fn a_sample_the_table_cannot_take_is_kept_beside_it() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("lab.csv");
+        let broken = "sample_id;moisture_pct\nA1;13.5\n";
+        std::fs::write(&path, broken).unwrap();
+        let s = sample("A2");
+        let why = save_rows(&path, std::slice::from_ref(&s), Basis::Wet).unwrap_err();
+        let e = keep_aside(&path, &s, Basis::Wet, why).to_string();
+        let aside = dir.path().join("lab.unsaved.csv");
+        assert!(
+            e.starts_with("sample A2 was measured, but ")
+                && e.contains(&format!("it is kept in {}", aside.display())),
+            "{e}"
+        );
+        assert_eq!(std::fs::read_to_string(&path).unwrap(), broken);
+        let kept = std::fs::read_to_string(&aside).unwrap();
+        assert!(
+            kept.lines()
+                .nth(1)
+                .is_some_and(|l| l.starts_with("A2,13.50,")),
+            "{kept}"
+        );
     }
 }
