@@ -77,6 +77,9 @@ pub struct FirmwareSim {
     /// The scenario's later calibration, until it is written: when (device
     /// ms), what, and the tries the device refused so far.
     switch: Option<(u64, ProductCal, u32)>,
+    /// The device refused the scenario's later calibration five times (said
+    /// in [`SimDevice::report`]).
+    switch_given_up: bool,
     /// Whether the last byte from the host ended a frame (or none came
     /// yet): the device's decoder holds no part of a host's frame, so a
     /// frame of the scenario's own can go in between.
@@ -129,6 +132,7 @@ impl FirmwareSim {
             clock_origin_ms,
             key,
             switch: None,
+            switch_given_up: false,
             host_idle: true,
         };
         s.start_clock(0);
@@ -306,10 +310,7 @@ impl SimDevice for FirmwareSim {
                     if tries + 1 < 5 {
                         self.switch = Some((now_ms + 1000, cal, tries + 1));
                     } else {
-                        eprintln!(
-                            "fringe sim: {}: the scenario's [calibration.switch] was refused by the device 5 times; given up",
-                            self.config.serial
-                        );
+                        self.switch_given_up = true;
                     }
                 }
             }
@@ -364,7 +365,11 @@ impl SimDevice for FirmwareSim {
                 } else {
                     "no host subscribed"
                 }
-            )
+            ) + if self.switch_given_up {
+                "; the scenario's [calibration.switch] was refused by the device 5 times and given up"
+            } else {
+                ""
+            }
         })
     }
 
