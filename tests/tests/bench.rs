@@ -234,20 +234,13 @@ fn capture_push_list_select_and_history() {
     // On a dry basis (green chips, water over dry mass) a lab value above
     // 100 % is taken.
     let dry = sim.path("dry.csv");
-    let mut c = Interactive::spawn(&mut capture(
+    let o = capture_one(
         &sim,
         &dry,
-        &["--readings", "1", "--basis", "dry"],
-    ));
-    c.expect("sample id", 1, PROMPT);
-    c.send("HGM-D01");
-    c.expect("% dry basis", 1, PROMPT);
-    c.send("151.5");
-    c.expect(ENTER, 1, PROMPT);
-    c.send("");
-    c.expect("sample id", 2, PROMPT);
-    c.send("");
-    let o = c.finish(LIMIT);
+        &["--basis", "dry"],
+        "HGM-D01",
+        ("% dry basis", "151.5"),
+    );
     assert_eq!(o.code, 0, "{}", o.stderr);
     let text = std::fs::read_to_string(&dry).expect("captured table");
     let row: Vec<&str> = text.lines().nth(1).expect("one row").split(',').collect();
@@ -326,16 +319,7 @@ fn capture_push_list_select_and_history() {
         .collect();
     assert!(text.contains(",14.2537,"), "{text}");
     std::fs::write(&noted, &text).unwrap();
-    let mut c = Interactive::spawn(&mut capture(&sim, &noted, &["--readings", "1"]));
-    c.expect("sample id", 1, PROMPT);
-    c.send("HGM-T03");
-    c.expect("lab moisture", 1, PROMPT);
-    c.send("13.5");
-    c.expect(ENTER, 1, PROMPT);
-    c.send("");
-    c.expect("sample id", 2, PROMPT);
-    c.send("");
-    let o = c.finish(LIMIT);
+    let o = capture_one(&sim, &noted, &[], "HGM-T03", ("lab moisture", "13.5"));
     assert_eq!(o.code, 0, "{}", o.stderr);
     let after = std::fs::read_to_string(&noted).unwrap();
     assert!(after.starts_with(&text), "{text}\n---\n{after}");
@@ -849,6 +833,24 @@ fn a_push_that_changes_the_basis_is_pointed_out() {
         "{}",
         o.stdout
     );
+}
+
+/// One sample `id` captured into `out` (one reading, and `extra`),
+/// answering the lab value's prompt (which must say `prompt.0`) with
+/// `prompt.1`.
+fn capture_one(sim: &Sim, out: &Path, extra: &[&str], id: &str, prompt: (&str, &str)) -> Outcome {
+    let mut args = vec!["--readings", "1"];
+    args.extend(extra);
+    let mut c = Interactive::spawn(&mut capture(sim, out, &args));
+    c.expect("sample id", 1, PROMPT);
+    c.send(id);
+    c.expect(prompt.0, 1, PROMPT);
+    c.send(prompt.1);
+    c.expect(ENTER, 1, PROMPT);
+    c.send("");
+    c.expect("sample id", 2, PROMPT);
+    c.send("");
+    c.finish(LIMIT)
 }
 
 /// `fringe cal capture` from the simulated device into `out`, with `extra`.

@@ -36,6 +36,12 @@ fn sim_scenario(serial: &str, seed: u64, moisture: f64) -> String {
     )
 }
 
+/// The file at `path` rewritten by `f`.
+fn edit(path: &Path, f: impl FnOnce(&str) -> String) {
+    let text = std::fs::read_to_string(path).expect("read");
+    std::fs::write(path, f(&text)).expect("write");
+}
+
 /// A site folder with three `sim:` devices (units 1, 2, 3), Modbus TCP on
 /// a free port of 127.0.0.1 (port 0: the gateway says which).
 fn sim_site() -> (tempfile::TempDir, PathBuf, PathBuf) {
@@ -461,20 +467,14 @@ fn alarm_limits_of_the_site_file_mark_each_device() {
 #[test]
 fn a_dry_basis_device_is_checked_against_a_wet_band_on_the_bands_basis() {
     let (dir, site, _db) = sim_site();
-    let dev0 = dir.path().join("dev0.toml");
-    let scenario = std::fs::read_to_string(&dev0).expect("scenario");
-    std::fs::write(
-        &dev0,
-        scenario.replace(
+    edit(&dir.path().join("dev0.toml"), |s| {
+        s.replace(
             "product = \"exact\"\n",
             "product = \"exact\"\nbasis = \"dry\"\n",
-        ),
-    )
-    .expect("scenario");
-    let text = std::fs::read_to_string(&site).expect("site");
-    std::fs::write(
-        &site,
-        text.replacen(
+        )
+    });
+    edit(&site, |s| {
+        s.replacen(
             "[[device]]",
             "[alarm]\nmoisture_high_pct = 11.8\n\n[[device]]",
             1,
@@ -482,9 +482,8 @@ fn a_dry_basis_device_is_checked_against_a_wet_band_on_the_bands_basis() {
         .replace(
             "tag = \"test 1\"\n",
             "tag = \"test 1\"\n[device.alarm]\nbasis = \"dry\"\nmoisture_high_pct = 14.0\n",
-        ),
-    )
-    .expect("site");
+        )
+    });
     let (units, err) = run_until_each_device_reads(&site, dir.path());
     let bases: Vec<&Value> = units.iter().map(|v| &v["moisture_basis"]).collect();
     assert_eq!(bases, ["dry", "wet", "wet"], "{err}");
@@ -534,23 +533,16 @@ fn a_dry_basis_device_is_checked_against_a_wet_band_on_the_bands_basis() {
 #[test]
 fn a_calibration_selected_while_the_gateway_runs_is_asked_for_its_basis() {
     let (dir, site, _db) = sim_site();
-    let dev0 = dir.path().join("dev0.toml");
-    let scenario = std::fs::read_to_string(&dev0).expect("scenario");
-    std::fs::write(
-        &dev0,
-        format!("{scenario}[calibration.switch]\nat_s = 15.0\nbasis = \"dry\"\n"),
-    )
-    .expect("scenario");
-    let text = std::fs::read_to_string(&site).expect("site");
-    std::fs::write(
-        &site,
-        text.replacen(
+    edit(&dir.path().join("dev0.toml"), |s| {
+        format!("{s}[calibration.switch]\nat_s = 15.0\nbasis = \"dry\"\n")
+    });
+    edit(&site, |s| {
+        s.replacen(
             "[[device]]",
             "[alarm]\nmoisture_high_pct = 11.8\n\n[[device]]",
             1,
-        ),
-    )
-    .expect("site");
+        )
+    });
     let gw = Running::start(&site, dir.path(), "gw");
     let out = dir.path().join("gw.out");
     // Unit 1's status lines with a reading: (basis, moisture, alarms).
