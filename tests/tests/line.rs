@@ -900,4 +900,30 @@ fn a_calibration_selected_while_the_monitor_runs_is_asked_for_its_basis() {
         "{}",
         o.stderr
     );
+    // The database has no record of any of the device's calibrations (the
+    // scenario commissioned it, and selected the second): an audit bundle
+    // of its readings names them, whose content it cannot show.
+    let bundle = sim.path("bundle");
+    let o = run(
+        &mut fringe(&[
+            "audit",
+            "export",
+            "--db",
+            sim.path("line2.db").to_str().unwrap(),
+            "--out",
+            bundle.to_str().unwrap(),
+            // The simulated clock runs ten times as fast as the wall's.
+            "--to",
+            "2099-01-01T00:00Z",
+            "--json",
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let m: serde_json::Value = serde_json::from_str(o.stdout.trim()).unwrap();
+    let ids = m["calibrations_without_record"]
+        .as_array()
+        .cloned()
+        .unwrap_or_default();
+    assert_eq!(ids.len(), 3, "the cell and both product calibrations: {m}");
 }

@@ -184,6 +184,12 @@ pub struct Manifest {
     pub columns: BTreeMap<String, Vec<String>>,
     /// Every other file with its SHA-256.
     pub files: Vec<FileEntry>,
+    /// Calibration ids the exported readings carry that the database has
+    /// no record of (written to the device from another database or tool,
+    /// or selected there): the bundle cannot show their content. Absent
+    /// when there is none (and in bundles written before it was kept).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub calibrations_without_record: Vec<String>,
 }
 
 /// A record as written to `records.jsonl`.
@@ -538,15 +544,19 @@ pub fn export(
     // it was recorded, which may differ from the device clock).
     cal_records.retain(|(_, r)| r.position <= last_position);
     let mut in_force: Vec<&(Hash, ChainedRecord)> = Vec::new();
+    let mut without_record: Vec<String> = Vec::new();
     for id in &used_cals {
-        if let Some(rec) = cal_records
+        match cal_records
             .iter()
             .rev()
             .find(|(_, r)| value_of(r, "cal_id") == Some(&Value::Integer(*id)))
         {
-            in_force.push(rec);
+            Some(rec) => in_force.push(rec),
+            // Stored as the id's four bytes, big-endian (CalId::as_u32).
+            None => without_record.push(format!("{:08x}", *id as u32)),
         }
     }
+    without_record.sort();
     let mut seen_kind: Vec<(Value, Value)> = Vec::new();
     for rec in cal_records.iter().rev() {
         let key = (
@@ -571,7 +581,7 @@ pub fn export(
         (from_ms, to_ms),
         (first_position, anchor, last_position),
         &columns,
-        &in_force,
+        (&in_force, without_record),
     );
     match result {
         Ok(mut s) => {
@@ -611,7 +621,7 @@ fn write_bundle(
     (from_ms, to_ms): (i64, i64),
     (first_position, anchor, last_position): (u64, Hash, u64),
     columns: &BTreeMap<String, Vec<String>>,
-    in_force: &[&(Hash, ChainedRecord)],
+    (in_force, without_record): (&[&(Hash, ChainedRecord)], Vec<String>),
 ) -> Result<ExportSummary, AuditError> {
     let rec_path = out.join(RECORDS);
     let mut rec_out =
@@ -713,6 +723,7 @@ fn write_bundle(
         records: counts,
         columns: columns.clone(),
         files,
+        calibrations_without_record: without_record,
     };
     let mp = out.join(MANIFEST);
     std::fs::write(
@@ -1395,6 +1406,7 @@ mod tests {
             records: BTreeMap::new(),
             columns: BTreeMap::new(),
             files: Vec::new(),
+            calibrations_without_record: Vec::new(),
         };
         let mut files = BTreeMap::new();
         files.insert(MANIFEST.to_string(), serde_json::to_vec(&m).unwrap());
@@ -1600,6 +1612,12 @@ mod tests {
             1,
             "the product calibration before the range is in force"
         );
+        // The readings' cell calibration has no record in this database:
+        // named in the manifest, whose content the bundle cannot show.
+        assert_eq!(s.manifest.calibrations_without_record, ["00000001"]);
+        let m: Manifest =
+            serde_json::from_slice(&std::fs::read(out.join(MANIFEST)).unwrap()).unwrap();
+        assert_eq!(m.calibrations_without_record, ["00000001"]);
         let r = check(&out);
         assert!(r.ok(), "{:?}", r.problems);
         let store = Store::open_read_only(&db).expect("ro");

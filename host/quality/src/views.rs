@@ -614,6 +614,13 @@ pub fn write_export(s: &audit::ExportSummary, w: &mut dyn Write) -> std::io::Res
         s.calibrations_in_force.len(),
         s.calibrations_in_force
     )?;
+    if !m.calibrations_without_record.is_empty() {
+        writeln!(
+            w,
+            "  caution: the readings carry calibration(s) {} of which this database has no record (written to the device from another database or tool): the bundle cannot show their content; the manifest names them",
+            m.calibrations_without_record.join(", ")
+        )?;
+    }
     writeln!(
         w,
         "  database chain head at export: position {}, {}",
