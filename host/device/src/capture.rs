@@ -168,16 +168,28 @@ pub fn capture(
 /// `<out>.unsaved.csv` beside it (added to what that holds), so that the
 /// measurement is not lost with the table's fault.
 fn keep_aside(out: &Path, s: &RefSample, basis: Basis, why: CaptureError) -> CaptureError {
-    let aside = out.with_extension("unsaved.csv");
+    // `lab.csv` -> `lab.unsaved.csv`; any other name gets the suffix whole
+    // (`lab.tsv.unsaved.csv`), so two tables never share one.
+    let name = out
+        .file_name()
+        .map_or_else(String::new, |n| n.to_string_lossy().into_owned());
+    let stem = name.strip_suffix(".csv").unwrap_or(&name);
+    let aside = out.with_file_name(format!("{stem}.unsaved.csv"));
     let kept = match save_rows(&aside, std::slice::from_ref(s), basis) {
         Ok(()) => format!(
-            "it is kept in {}: copy its row into the table once the table reads again",
+            "it is kept in {}: copy its row into the table once the table can take it",
             aside.display()
         ),
         Err(e) => format!(
             "nor could {} ({e}); note its values: lab moisture {}, {:.2} C, {:.0} Hz eps {} - j{}, {:.0} Hz eps {} - j{}",
             aside.display(),
-            s.moisture_pct.map_or("none".into(), |m| format!("{m} %")),
+            s.moisture_pct.map_or("none".into(), |m| format!(
+                "{m} % {} basis",
+                match basis {
+                    Basis::Wet => "wet",
+                    Basis::Dry => "dry",
+                }
+            )),
             s.temperature_c,
             s.freqs_hz[0],
             s.eps_re[0],

@@ -542,6 +542,11 @@ pub fn export(
     // record of it; and for each device and kind the latest record stored
     // before the slice ends (by chain position: a record's own time is when
     // it was recorded, which may differ from the device clock).
+    // Every calibration id the database has a record of, at any position.
+    let recorded: Vec<Value> = cal_records
+        .iter()
+        .filter_map(|(_, r)| value_of(r, "cal_id").cloned())
+        .collect();
     cal_records.retain(|(_, r)| r.position <= last_position);
     let mut in_force: Vec<&(Hash, ChainedRecord)> = Vec::new();
     let mut without_record: Vec<String> = Vec::new();
@@ -553,7 +558,11 @@ pub fn export(
         {
             Some(rec) => in_force.push(rec),
             // Stored as the id's four bytes, big-endian (CalId::as_u32).
-            None => without_record.push(format!("{:08x}", *id as u32)),
+            None if !recorded.contains(&Value::Integer(*id)) => {
+                without_record.push(format!("{:08x}", *id as u32));
+            }
+            // Recorded after the slice: not in force in it, but known.
+            None => {}
         }
     }
     without_record.sort();
@@ -1599,6 +1608,36 @@ mod tests {
 
     fn write_lines(p: &Path, l: &[String]) {
         std::fs::write(p, l.join("\n") + "\n").expect("write");
+    }
+
+    /// A calibration the readings carry whose record the database holds
+    /// only after the slice (recorded later, from this database) is not in
+    /// force in the slice, and not named as without a record either.
+    #[test]
+    fn a_calibration_recorded_after_the_slice_is_not_named_without_record() {
+        let (dir, db) = fixture("late");
+        {
+            let mut s = Store::open(&db).expect("open");
+            s.insert_calibration(
+                "HGM-L2-0007",
+                &NewCalibration {
+                    kind: CalKind::Cell,
+                    cal_id: CalId([0, 0, 0, 1]),
+                    slot: None,
+                    name: None,
+                    body: serde_json::json!({"operator": "R. Okafor", "reason": "late"}),
+                    note: None,
+                    supersedes: None,
+                },
+            )
+            .expect("cal");
+        }
+        let s = export_to(&db, &dir.path().join("bundle"));
+        assert!(
+            s.manifest.calibrations_without_record.is_empty(),
+            "{:?}",
+            s.manifest
+        );
     }
 
     #[test]

@@ -110,6 +110,8 @@ struct View {
     /// Calibrations neither the store nor the device said the basis of
     /// (said once).
     not_found: std::collections::BTreeSet<fringe_protocol::CalId>,
+    /// Requests for a calibration's basis the device did not answer, by id.
+    failed_asks: std::collections::BTreeMap<fringe_protocol::CalId, u32>,
     quiet: bool,
     /// `--json` without `--quiet`: each reading and drift alarm as a JSON line.
     json_lines: bool,
@@ -413,8 +415,26 @@ fn active_calibration(
 fn learn_basis(view: &mut View, store: &Store, session: &mut Session, id: fringe_protocol::CalId) {
     let serial = view.serial.clone();
     view.bases.extend(calibration_bases(store, &serial, None));
-    if let Ok(Some(c)) = session.active_product_cal() {
-        view.bases.insert(c.content_id(), LimitBasis::from(c.basis));
+    if !view.bases.contains_key(&id) {
+        match session.active_product_cal() {
+            Ok(Some(c)) => {
+                view.bases.insert(c.content_id(), LimitBasis::from(c.basis));
+            }
+            Ok(None) => {}
+            // The device did not answer: asked again with a later reading
+            // of it, three times in all (its readings meanwhile are
+            // checked as written, and said to be).
+            Err(e) => {
+                let tries = view.failed_asks.entry(id).or_insert(0);
+                *tries += 1;
+                if *tries < 3 {
+                    view.notice(&format!(
+                        "could not ask the device for product calibration {id} ({e}); its readings are checked against the alarm band as written until it answers"
+                    ));
+                    return;
+                }
+            }
+        }
     }
     match view.bases.get(&id).copied() {
         Some(basis) => {
@@ -477,6 +497,7 @@ fn run(
         unknown: None,
         not_found: std::collections::BTreeSet::new(),
         held: Vec::new(),
+        failed_asks: std::collections::BTreeMap::new(),
     };
     let mut drift = DriftWatch {
         watch: fringe_quality::watch::DriftWatch::new(
