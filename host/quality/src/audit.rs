@@ -847,7 +847,9 @@ pub enum Problem {
         /// The position it claims.
         position: String,
     },
-    /// The slice's ends differ from the manifest's.
+    /// The slice's ends differ from the manifest's, or another statement
+    /// of the manifest (its calibrations without a record) from what the
+    /// bundle holds.
     EndsDiffer {
         /// What differs.
         what: String,
@@ -1241,6 +1243,12 @@ fn verify_bundle(
     }
     // 3. Calibrations in force: each links from its anchor.
     let cp = files.path(CALS_IN_FORCE);
+    // Their calibration ids, as the manifest writes them.
+    let cal_col = m
+        .columns
+        .get(Table::Calibrations.name())
+        .and_then(|c| c.iter().position(|x| x == "cal_id"));
+    let mut in_force_ids: Vec<String> = Vec::new();
     if let Some(text) = files.read(CALS_IN_FORCE).map_err(io(&cp))? {
         match serde_json::from_slice::<Vec<InForce>>(&text) {
             Ok(list) => {
@@ -1248,6 +1256,9 @@ fn verify_bundle(
                     let ok = parse_record(&c.record, &m.columns)
                         .ok()
                         .and_then(|(t, h, v)| {
+                            if let Some(Value::Integer(id)) = cal_col.and_then(|k| v.get(k)) {
+                                in_force_ids.push(format!("{:08x}", *id as u32));
+                            }
                             let prev = hash_from_hex(&c.prev_hash)?;
                             let inside_prev =
                                 stored.get(&(c.record.position.wrapping_sub(1))).copied();
@@ -1275,6 +1286,44 @@ fn verify_bundle(
                 line: e.line() as u64,
                 reason: e.to_string(),
             }),
+        }
+    }
+    // 3b. The calibrations the manifest names as without a record: each is
+    // carried by a reading of the bundle and has no record in force. (Whether
+    // the database has a record of one is not in the bundle.)
+    if !m.calibrations_without_record.is_empty() {
+        let cols = m
+            .columns
+            .get(Table::Readings.name())
+            .cloned()
+            .unwrap_or_default();
+        let at: Vec<usize> = ["cell_cal", "product_cal"]
+            .iter()
+            .filter_map(|c| cols.iter().position(|x| x == c))
+            .collect();
+        let carried: std::collections::BTreeSet<String> = recs
+            .iter()
+            .filter(|p| p.table == Table::Readings)
+            .flat_map(|p| {
+                at.iter().filter_map(|k| match p.values.get(*k) {
+                    Some(Value::Integer(id)) if *id != 0 => Some(format!("{:08x}", *id as u32)),
+                    _ => None,
+                })
+            })
+            .collect();
+        for id in &m.calibrations_without_record {
+            let why = if !carried.contains(id) {
+                Some("no reading of the bundle carries it")
+            } else if in_force_ids.contains(id) {
+                Some("its record is in calibrations_in_force.json")
+            } else {
+                None
+            };
+            if let Some(why) = why {
+                report.problems.push(Problem::EndsDiffer {
+                    what: format!("names calibration {id} as without a record, but {why}"),
+                });
+            }
         }
     }
     // 4. Every CSV row against the record it copies.
@@ -1657,6 +1706,28 @@ mod tests {
         let m: Manifest =
             serde_json::from_slice(&std::fs::read(out.join(MANIFEST)).unwrap()).unwrap();
         assert_eq!(m.calibrations_without_record, ["00000001"]);
+        // The list is checked against the bundle: an id no reading carries,
+        // or one whose record is in force, is reported (the manifest is not
+        // hashed, its statements are checked).
+        let mut edited = m.clone();
+        edited.calibrations_without_record =
+            vec!["00000001".into(), "abcd0002".into(), "deadbeef".into()];
+        let copy = dir.path().join("edited");
+        std::fs::create_dir(&copy).unwrap();
+        for e in std::fs::read_dir(&out).unwrap() {
+            let e = e.unwrap();
+            std::fs::copy(e.path(), copy.join(e.file_name())).unwrap();
+        }
+        std::fs::write(copy.join(MANIFEST), serde_json::to_vec(&edited).unwrap()).unwrap();
+        let r = check(&copy);
+        let said: Vec<String> = r.problems.iter().map(|p| p.to_string()).collect();
+        assert_eq!(
+            said,
+            [
+                "manifest.json: names calibration abcd0002 as without a record, but its record is in calibrations_in_force.json",
+                "manifest.json: names calibration deadbeef as without a record, but no reading of the bundle carries it"
+            ]
+        );
         let r = check(&out);
         assert!(r.ok(), "{:?}", r.problems);
         let store = Store::open_read_only(&db).expect("ro");
