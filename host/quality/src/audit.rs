@@ -1024,8 +1024,9 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
         problems: Vec::new(),
     };
     let mut bundle_records: Vec<Parsed> = Vec::new();
+    let mut statements = CalStatements::default();
     if let Some(dir) = dir {
-        bundle_records = verify_bundle(&Folder(dir), &mut report)?;
+        (bundle_records, statements) = verify_bundle(&Folder(dir), &mut report)?;
     }
     if let Some(store) = db {
         // The back end's own full check first: a damaged index page (which
@@ -1044,7 +1045,15 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
                 bundle_records.iter().map(|p| p.position).max().unwrap_or(0),
             );
             let mut seen = 0usize;
+            // Every calibration id the database had a record of at the
+            // export (a record added since does not make the list wrong).
+            let mut recorded: std::collections::BTreeSet<String> = Default::default();
             store.for_each_record(&mut |r| {
+                if r.table == Table::Calibrations && r.position <= statements.db_head {
+                    if let Some(Value::Integer(id)) = r.value_of("cal_id") {
+                        recorded.insert(format!("{:08x}", *id as u32));
+                    }
+                }
                 if r.position < lo || r.position > hi {
                     return Ok(());
                 }
@@ -1080,6 +1089,23 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
                 }
                 Ok(())
             })?;
+            // The manifest's calibrations without a record, against the
+            // database: named ones it has a record of, unnamed ones it has
+            // none of.
+            for id in &statements.not_in_force {
+                let what = match (statements.named.contains(id), recorded.contains(id)) {
+                    (true, true) => format!(
+                        "the manifest names calibration {id} as without a record; the database has one"
+                    ),
+                    (false, false) => format!(
+                        "the readings carry calibration {id}, of which the database has no record; the manifest does not name it"
+                    ),
+                    _ => continue,
+                };
+                report
+                    .problems
+                    .push(Problem::DiffersFromDatabase { position: lo, what });
+            }
             if seen < bundle_records.len() {
                 let db_positions_missing = bundle_records.len() - seen;
                 report.problems.push(Problem::DiffersFromDatabase {
@@ -1095,7 +1121,7 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
 fn verify_bundle(
     files: &dyn BundleFiles,
     report: &mut VerifyReport,
-) -> Result<Vec<Parsed>, AuditError> {
+) -> Result<(Vec<Parsed>, CalStatements), AuditError> {
     let mp = files.path(MANIFEST);
     let bad_manifest = |reason: String| AuditError::BadManifest {
         path: mp.clone(),
@@ -1120,7 +1146,7 @@ fn verify_bundle(
                     format!("{e}: nothing else in the bundle can be checked")
                 },
             });
-            return Ok(Vec::new());
+            return Ok((Vec::new(), CalStatements::default()));
         }
     };
     if m.format != FORMAT {
@@ -1290,8 +1316,14 @@ fn verify_bundle(
     }
     // 3b. The calibrations the manifest names as without a record: each is
     // carried by a reading of the bundle and has no record in force. (Whether
-    // the database has a record of one is not in the bundle.)
-    if !m.calibrations_without_record.is_empty() {
+    // the database has a record of one is not in the bundle: [`verify`]
+    // checks that with the database.)
+    let mut statements = CalStatements {
+        named: m.calibrations_without_record.clone(),
+        db_head: m.db_head_position,
+        ..CalStatements::default()
+    };
+    {
         let cols = m
             .columns
             .get(Table::Readings.name())
@@ -1310,6 +1342,11 @@ fn verify_bundle(
                     _ => None,
                 })
             })
+            .collect();
+        statements.not_in_force = carried
+            .iter()
+            .filter(|id| !in_force_ids.contains(id))
+            .cloned()
             .collect();
         for id in &m.calibrations_without_record {
             let why = if !carried.contains(id) {
@@ -1346,7 +1383,18 @@ fn verify_bundle(
             .collect();
         check_csv(&bytes, &name, &header, &expected_rows, report);
     }
-    Ok(recs)
+    Ok((recs, statements))
+}
+
+/// What a bundle says of the calibrations its readings carry with no
+/// record in force: the ids its manifest names as without a record, and
+/// every id a reading carries that has no record in force.
+#[derive(Debug, Default)]
+struct CalStatements {
+    named: Vec<String>,
+    not_in_force: Vec<String>,
+    /// The database's head at export: records after it came later.
+    db_head: u64,
 }
 
 fn check_csv(
@@ -1687,6 +1735,56 @@ mod tests {
             "{:?}",
             s.manifest
         );
+    }
+
+    /// Against the database, the manifest's calibrations without a record
+    /// are checked both ways: an emptied list misses one the database has
+    /// no record of; a record added after the export does not make the
+    /// list wrong.
+    #[test]
+    fn calibrations_without_record_are_checked_against_the_database() {
+        let (dir, db) = fixture("stmt");
+        let out = dir.path().join("bundle");
+        export_to(&db, &out);
+        let against_db = |b: &Path| {
+            let store = Store::open_read_only(&db).expect("ro");
+            let r = verify(Some(b), Some(&store)).expect("verify");
+            r.problems.iter().map(|p| p.to_string()).collect::<Vec<_>>()
+        };
+        assert_eq!(against_db(&out), Vec::<String>::new());
+        let mp = out.join(MANIFEST);
+        let mut m: Manifest = serde_json::from_slice(&std::fs::read(&mp).unwrap()).unwrap();
+        m.calibrations_without_record.clear();
+        let edited = dir.path().join("edited");
+        std::fs::create_dir(&edited).unwrap();
+        for e in std::fs::read_dir(&out).unwrap() {
+            let e = e.unwrap();
+            std::fs::copy(e.path(), edited.join(e.file_name())).unwrap();
+        }
+        std::fs::write(edited.join(MANIFEST), serde_json::to_vec(&m).unwrap()).unwrap();
+        let said = against_db(&edited);
+        assert_eq!(said.len(), 1, "{said:?}");
+        assert!(
+            said[0].ends_with("the readings carry calibration 00000001, of which the database has no record; the manifest does not name it"),
+            "{said:?}"
+        );
+        {
+            let mut s = Store::open(&db).expect("open");
+            s.insert_calibration(
+                "HGM-L2-0007",
+                &NewCalibration {
+                    kind: CalKind::Cell,
+                    cal_id: CalId([0, 0, 0, 1]),
+                    slot: None,
+                    name: None,
+                    body: serde_json::json!({"operator": "R. Okafor", "reason": "later"}),
+                    note: None,
+                    supersedes: None,
+                },
+            )
+            .expect("cal");
+        }
+        assert_eq!(against_db(&out), Vec::<String>::new());
     }
 
     #[test]
