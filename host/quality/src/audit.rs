@@ -186,10 +186,11 @@ pub struct Manifest {
     pub files: Vec<FileEntry>,
     /// Calibration ids the exported readings carry that the database has
     /// no record of (written to the device from another database or tool,
-    /// or selected there): the bundle cannot show their content. Absent
-    /// when there is none (and in bundles written before it was kept).
-    #[serde(default, skip_serializing_if = "Vec::is_empty")]
-    pub calibrations_without_record: Vec<String>,
+    /// or selected there): the bundle cannot show their content. Empty
+    /// when there is none; `None` in bundles written before it was kept
+    /// (absent from their manifest: nothing to check it against).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub calibrations_without_record: Option<Vec<String>>,
 }
 
 /// A record as written to `records.jsonl`.
@@ -732,7 +733,7 @@ fn write_bundle(
         records: counts,
         columns: columns.clone(),
         files,
-        calibrations_without_record: without_record,
+        calibrations_without_record: Some(without_record),
     };
     let mp = out.join(MANIFEST);
     std::fs::write(
@@ -1092,8 +1093,13 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
             // The manifest's calibrations without a record, against the
             // database: named ones it has a record of, unnamed ones it has
             // none of.
-            for id in &statements.not_in_force {
-                let what = match (statements.named.contains(id), recorded.contains(id)) {
+            let named = statements.named.as_deref().unwrap_or_default();
+            for id in statements
+                .not_in_force
+                .iter()
+                .filter(|_| statements.named.is_some())
+            {
+                let what = match (named.contains(id), recorded.contains(id)) {
                     (true, true) => format!(
                         "the manifest names calibration {id} as without a record; the database has one"
                     ),
@@ -1348,7 +1354,7 @@ fn verify_bundle(
             .filter(|id| !in_force_ids.contains(id))
             .cloned()
             .collect();
-        for id in &m.calibrations_without_record {
+        for id in m.calibrations_without_record.iter().flatten() {
             let why = if !carried.contains(id) {
                 Some("no reading of the bundle carries it")
             } else if in_force_ids.contains(id) {
@@ -1391,7 +1397,8 @@ fn verify_bundle(
 /// every id a reading carries that has no record in force.
 #[derive(Debug, Default)]
 struct CalStatements {
-    named: Vec<String>,
+    /// `None`: a bundle written before the manifest named them.
+    named: Option<Vec<String>>,
     not_in_force: Vec<String>,
     /// The database's head at export: records after it came later.
     db_head: u64,
@@ -1512,7 +1519,7 @@ mod tests {
             records: BTreeMap::new(),
             columns: BTreeMap::new(),
             files: Vec::new(),
-            calibrations_without_record: Vec::new(),
+            calibrations_without_record: None,
         };
         let mut files = BTreeMap::new();
         files.insert(MANIFEST.to_string(), serde_json::to_vec(&m).unwrap());
@@ -1731,7 +1738,7 @@ mod tests {
         }
         let s = export_to(&db, &dir.path().join("bundle"));
         assert!(
-            s.manifest.calibrations_without_record.is_empty(),
+            s.manifest.calibrations_without_record == Some(Vec::new()),
             "{:?}",
             s.manifest
         );
@@ -1754,7 +1761,7 @@ mod tests {
         assert_eq!(against_db(&out), Vec::<String>::new());
         let mp = out.join(MANIFEST);
         let mut m: Manifest = serde_json::from_slice(&std::fs::read(&mp).unwrap()).unwrap();
-        m.calibrations_without_record.clear();
+        m.calibrations_without_record = Some(Vec::new());
         let edited = dir.path().join("edited");
         std::fs::create_dir(&edited).unwrap();
         for e in std::fs::read_dir(&out).unwrap() {
@@ -1764,6 +1771,22 @@ mod tests {
         std::fs::write(edited.join(MANIFEST), serde_json::to_vec(&m).unwrap()).unwrap();
         let said = against_db(&edited);
         assert_eq!(said.len(), 1, "{said:?}");
+        // A bundle written before the manifest named them (no such field)
+        // has nothing to check.
+        let old = dir.path().join("older");
+        std::fs::create_dir(&old).unwrap();
+        for e in std::fs::read_dir(&out).unwrap() {
+            let e = e.unwrap();
+            std::fs::copy(e.path(), old.join(e.file_name())).unwrap();
+        }
+        let older = Manifest {
+            calibrations_without_record: None,
+            ..m.clone()
+        };
+        let text = serde_json::to_string(&older).unwrap();
+        assert!(!text.contains("calibrations_without_record"), "{text}");
+        std::fs::write(old.join(MANIFEST), text).unwrap();
+        assert_eq!(against_db(&old), Vec::<String>::new());
         assert!(
             said[0].ends_with("the readings carry calibration 00000001, of which the database has no record; the manifest does not name it"),
             "{said:?}"
@@ -1800,16 +1823,25 @@ mod tests {
         );
         // The readings' cell calibration has no record in this database:
         // named in the manifest, whose content the bundle cannot show.
-        assert_eq!(s.manifest.calibrations_without_record, ["00000001"]);
+        assert_eq!(
+            s.manifest.calibrations_without_record,
+            Some(vec!["00000001".to_string()])
+        );
         let m: Manifest =
             serde_json::from_slice(&std::fs::read(out.join(MANIFEST)).unwrap()).unwrap();
-        assert_eq!(m.calibrations_without_record, ["00000001"]);
+        assert_eq!(
+            m.calibrations_without_record,
+            Some(vec!["00000001".to_string()])
+        );
         // The list is checked against the bundle: an id no reading carries,
         // or one whose record is in force, is reported (the manifest is not
         // hashed, its statements are checked).
         let mut edited = m.clone();
-        edited.calibrations_without_record =
-            vec!["00000001".into(), "abcd0002".into(), "deadbeef".into()];
+        edited.calibrations_without_record = Some(vec![
+            "00000001".into(),
+            "abcd0002".into(),
+            "deadbeef".into(),
+        ]);
         let copy = dir.path().join("edited");
         std::fs::create_dir(&copy).unwrap();
         for e in std::fs::read_dir(&out).unwrap() {

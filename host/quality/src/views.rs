@@ -614,11 +614,15 @@ pub fn write_export(s: &audit::ExportSummary, w: &mut dyn Write) -> std::io::Res
         s.calibrations_in_force.len(),
         s.calibrations_in_force
     )?;
-    if !m.calibrations_without_record.is_empty() {
+    if let Some(ids) = m
+        .calibrations_without_record
+        .as_ref()
+        .filter(|l| !l.is_empty())
+    {
         writeln!(
             w,
             "  caution: the readings carry calibration(s) {} of which this database has no record (written to the device from another database or tool): the bundle cannot show their content; the manifest names them",
-            m.calibrations_without_record.join(", ")
+            ids.join(", ")
         )?;
     }
     writeln!(
