@@ -501,6 +501,8 @@ pub fn export(
     let mut last: Option<u64> = None;
     let mut prev = GENESIS;
     let mut used_cals: Vec<i64> = Vec::new();
+    // Calibrations of readings after the last record in range so far.
+    let mut pending: Vec<i64> = Vec::new();
     // Latest calibration record per (kind, cal id), with the hash before it.
     let mut cal_records: Vec<(Hash, ChainedRecord)> = Vec::new();
     let mut columns: BTreeMap<String, Vec<String>> = BTreeMap::new();
@@ -512,21 +514,35 @@ pub fn export(
             .or_insert_with(|| r.columns.iter().map(|c| c.to_string()).collect());
         let time = record_time_ms(&r, &clocks);
         let in_range = time.is_some_and(|t| from_ms.is_none_or(|f| t >= f) && t <= to_ms);
+        // The calibrations of every reading the slice holds: those in range
+        // and those between them by position with no time in range (taken
+        // before their clock was set), which the bundle holds too.
+        let add = |ids: &mut Vec<i64>, r: &ChainedRecord| {
+            if r.table == Table::Readings {
+                for c in ["cell_cal", "product_cal"] {
+                    if let Some(Value::Integer(id)) = value_of(r, c) {
+                        if *id != 0 && !ids.contains(id) {
+                            ids.push(*id);
+                        }
+                    }
+                }
+            }
+        };
         if in_range {
             if first.is_none() {
                 first = Some((r.position, prev));
             }
             first_time = first_time.min(time);
             last = Some(r.position);
-            if r.table == Table::Readings {
-                for c in ["cell_cal", "product_cal"] {
-                    if let Some(Value::Integer(id)) = value_of(&r, c) {
-                        if *id != 0 && !used_cals.contains(id) {
-                            used_cals.push(*id);
-                        }
-                    }
+            for id in pending.drain(..) {
+                if !used_cals.contains(&id) {
+                    used_cals.push(id);
                 }
             }
+            add(&mut used_cals, &r);
+        } else if first.is_some() {
+            // In the slice only if a record in range comes after it.
+            add(&mut pending, &r);
         }
         if r.table == Table::Calibrations {
             cal_records.push((prev, r.clone()));
