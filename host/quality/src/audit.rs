@@ -1714,6 +1714,18 @@ mod tests {
         export(&s, "test.db", Some(T0), T0 + 3_600_000, out).expect("export")
     }
 
+    /// A copy of bundle `out` in `to` with manifest `m` (the manifest is
+    /// not hashed: its statements are what verify checks).
+    fn with_manifest(out: &Path, to: &Path, m: &Manifest) -> PathBuf {
+        std::fs::create_dir(to).unwrap();
+        for e in std::fs::read_dir(out).unwrap() {
+            let e = e.unwrap();
+            std::fs::copy(e.path(), to.join(e.file_name())).unwrap();
+        }
+        std::fs::write(to.join(MANIFEST), serde_json::to_vec(m).unwrap()).unwrap();
+        to.to_path_buf()
+    }
+
     fn check(dir: &Path) -> VerifyReport {
         verify(Some(dir), None).expect("verify runs")
     }
@@ -1778,30 +1790,18 @@ mod tests {
         let mp = out.join(MANIFEST);
         let mut m: Manifest = serde_json::from_slice(&std::fs::read(&mp).unwrap()).unwrap();
         m.calibrations_without_record = Some(Vec::new());
-        let edited = dir.path().join("edited");
-        std::fs::create_dir(&edited).unwrap();
-        for e in std::fs::read_dir(&out).unwrap() {
-            let e = e.unwrap();
-            std::fs::copy(e.path(), edited.join(e.file_name())).unwrap();
-        }
-        std::fs::write(edited.join(MANIFEST), serde_json::to_vec(&m).unwrap()).unwrap();
+        let edited = with_manifest(&out, &dir.path().join("edited"), &m);
         let said = against_db(&edited);
         assert_eq!(said.len(), 1, "{said:?}");
         // A bundle written before the manifest named them (no such field)
         // has nothing to check.
-        let old = dir.path().join("older");
-        std::fs::create_dir(&old).unwrap();
-        for e in std::fs::read_dir(&out).unwrap() {
-            let e = e.unwrap();
-            std::fs::copy(e.path(), old.join(e.file_name())).unwrap();
-        }
         let older = Manifest {
             calibrations_without_record: None,
             ..m.clone()
         };
         let text = serde_json::to_string(&older).unwrap();
         assert!(!text.contains("calibrations_without_record"), "{text}");
-        std::fs::write(old.join(MANIFEST), text).unwrap();
+        let old = with_manifest(&out, &dir.path().join("older"), &older);
         assert_eq!(against_db(&old), Vec::<String>::new());
         assert!(
             said[0].ends_with("the readings carry calibration 00000001, of which the database has no record; the manifest does not name it"),
@@ -1858,13 +1858,7 @@ mod tests {
             "abcd0002".into(),
             "deadbeef".into(),
         ]);
-        let copy = dir.path().join("edited");
-        std::fs::create_dir(&copy).unwrap();
-        for e in std::fs::read_dir(&out).unwrap() {
-            let e = e.unwrap();
-            std::fs::copy(e.path(), copy.join(e.file_name())).unwrap();
-        }
-        std::fs::write(copy.join(MANIFEST), serde_json::to_vec(&edited).unwrap()).unwrap();
+        let copy = with_manifest(&out, &dir.path().join("edited"), &edited);
         let r = check(&copy);
         let said: Vec<String> = r.problems.iter().map(|p| p.to_string()).collect();
         assert_eq!(
