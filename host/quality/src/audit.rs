@@ -355,6 +355,12 @@ fn record_time_ms(r: &ChainedRecord, clocks: &Clocks) -> Option<i64> {
     }
 }
 
+/// A calibration id as stored (the id's four bytes, big-endian:
+/// `CalId::as_u32`) in the words everything else uses (`CalId`'s own).
+fn cal_id_text(stored: i64) -> String {
+    fringe_protocol::CalId((stored as u32).to_be_bytes()).to_string()
+}
+
 fn value_of<'a>(r: &'a ChainedRecord, col: &str) -> Option<&'a Value> {
     r.value_of(col)
 }
@@ -448,11 +454,7 @@ fn csv_row(
             _ => vec![String::new(); 8],
         };
         row.extend(ch);
-        row.push(
-            int("product_cal")
-                .map(|i| format!("{:08x}", i as u32))
-                .unwrap_or_default(),
-        );
+        row.push(int("product_cal").map(cal_id_text).unwrap_or_default());
     }
     row
 }
@@ -574,9 +576,8 @@ pub fn export(
             .find(|(_, r)| value_of(r, "cal_id") == Some(&Value::Integer(*id)))
         {
             Some(rec) => in_force.push(rec),
-            // Stored as the id's four bytes, big-endian (CalId::as_u32).
             None if !recorded.contains(&Value::Integer(*id)) => {
-                without_record.push(format!("{:08x}", *id as u32));
+                without_record.push(cal_id_text(*id));
             }
             // Recorded after the slice: not in force in it, but known.
             None => {}
@@ -1068,7 +1069,7 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
             store.for_each_record(&mut |r| {
                 if r.table == Table::Calibrations && r.position <= statements.db_head {
                     if let Some(Value::Integer(id)) = r.value_of("cal_id") {
-                        recorded.insert(format!("{:08x}", *id as u32));
+                        recorded.insert(cal_id_text(*id));
                     }
                 }
                 if r.position < lo || r.position > hi {
@@ -1110,11 +1111,13 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
             // database: named ones it has a record of, unnamed ones it has
             // none of.
             let named = statements.named.as_deref().unwrap_or_default();
-            for id in statements
-                .not_in_force
-                .iter()
-                .filter(|_| statements.named.is_some())
-            {
+            // (A bundle written before the manifest named them has nothing
+            // to check.)
+            let not_in_force = match statements.named {
+                Some(_) => statements.not_in_force.as_slice(),
+                None => &[],
+            };
+            for id in not_in_force {
                 let what = match (named.contains(id), recorded.contains(id)) {
                     (true, true) => format!(
                         "the manifest names calibration {id} as without a record; the database has one"
@@ -1305,7 +1308,7 @@ fn verify_bundle(
                         .ok()
                         .and_then(|(t, h, v)| {
                             if let Some(Value::Integer(id)) = cal_col.and_then(|k| v.get(k)) {
-                                in_force_ids.push(format!("{:08x}", *id as u32));
+                                in_force_ids.push(cal_id_text(*id));
                             }
                             let prev = hash_from_hex(&c.prev_hash)?;
                             let inside_prev =
@@ -1360,7 +1363,7 @@ fn verify_bundle(
             .filter(|p| p.table == Table::Readings)
             .flat_map(|p| {
                 at.iter().filter_map(|k| match p.values.get(*k) {
-                    Some(Value::Integer(id)) if *id != 0 => Some(format!("{:08x}", *id as u32)),
+                    Some(Value::Integer(id)) if *id != 0 => Some(cal_id_text(*id)),
                     _ => None,
                 })
             })
