@@ -562,6 +562,20 @@ pub(crate) fn fit_law_budget(
             }
             continue;
         };
+        let mut trial = theta;
+        for j in 0..4 {
+            trial[j] += dtheta[j];
+        }
+        if !theta_is_valid(&trial) {
+            // Not a law the device accepts: the step is rejected (as a
+            // step of infinite cost would be) without the samples' steps.
+            damping.reject();
+            if damping.lambda > 1e16 {
+                converged = true;
+                break;
+            }
+            continue;
+        }
         let mut pred = 0.0;
         for (i, (vi, c)) in vinv.iter().zip(&cache).enumerate() {
             let (r, jp, jt) = (&c.r, &c.jp, &c.jt);
@@ -576,15 +590,7 @@ pub(crate) fn fit_law_budget(
             let lin = r + jp * dp + jt * dtheta;
             pred += lin.norm_squared();
         }
-        let mut trial = theta;
-        for j in 0..4 {
-            trial[j] += dtheta[j];
-        }
-        let new_cost = if theta_is_valid(&trial) {
-            data.cost(&trial_ps, &trial)
-        } else {
-            f64::INFINITY
-        };
+        let new_cost = data.cost(&trial_ps, &trial);
         let predicted = cost - pred;
         let actual = cost - new_cost;
         let rho = Damping::gain(actual, predicted);
