@@ -60,6 +60,15 @@ pub enum StatsError {
     },
     /// A confidence level outside (0, 1).
     BadConfidence(f64),
+    /// A significance level (a test's alpha) outside (0, 0.5].
+    BadSignificance(f64),
+    /// Values that must vary do not (all equal, or equal within rounding).
+    NoSpread {
+        /// Which input.
+        what: &'static str,
+        /// Number of values.
+        n: usize,
+    },
 }
 
 impl core::fmt::Display for StatsError {
@@ -83,6 +92,14 @@ impl core::fmt::Display for StatsError {
             StatsError::BadConfidence(c) => {
                 write!(f, "confidence level {c} must lie strictly between 0 and 1")
             }
+            StatsError::BadSignificance(a) => write!(
+                f,
+                "significance level {a} must lie above 0 and at most 0.5 (e.g. 0.05 for 95 % confidence)"
+            ),
+            StatsError::NoSpread { what, n } => write!(
+                f,
+                "the {n} {what} values do not vary (all equal within rounding): no slope can be estimated from them"
+            ),
         }
     }
 }
@@ -632,6 +649,18 @@ pub fn t_quantile(p: f64, dof: f64) -> Result<f64, StatsError> {
         return Err(StatsError::BadConfidence(p));
     }
     let t = StudentsT::new(0.0, 1.0, dof).map_err(|_| StatsError::TooFew { needed: 1, got: 0 })?;
+    if dof >= 1e4 {
+        // statrs' inverse loses digits past 1e4 degrees of freedom and does
+        // not return at 1e8; there the expansion of t in the normal
+        // quantile (Abramowitz and Stegun 26.7.5, from memory) is exact to
+        // working precision (its next term is of order dof^-4).
+        let z = normal_quantile(p)?;
+        let (z2, g) = (z * z, 1.0 / dof);
+        let t1 = z * (z2 + 1.0) / 4.0;
+        let t2 = z * ((5.0 * z2 + 16.0) * z2 + 3.0) / 96.0;
+        let t3 = z * (((3.0 * z2 + 19.0) * z2 + 17.0) * z2 - 15.0) / 384.0;
+        return Ok(z + g * (t1 + g * (t2 + g * t3)));
+    }
     Ok(t.inverse_cdf(p))
 }
 
@@ -721,6 +750,31 @@ mod tests {
         assert!((t_quantile(0.975, 10.0).unwrap() - 2.228).abs() < 5e-4);
         assert!((t_quantile(0.975, 30.0).unwrap() - 2.042).abs() < 5e-4);
         assert!((t_quantile(0.95, 5.0).unwrap() - 2.015).abs() < 5e-4);
+    }
+
+    /// Past 1e4 degrees of freedom (a lab would not reach them, a long
+    /// line's readings can): values of SciPy 1.17.1's `stats.t.ppf`,
+    /// computed once and written here; before, 1e8 did not return.
+    #[test]
+    fn t_quantiles_at_many_degrees_of_freedom_match_scipy() {
+        for (dof, p975, p995) in [
+            (1e4, 1.960201239890626, 2.5763210466685282),
+            (1e5, 1.9599877075346095, 2.575878469908375),
+            (1e6, 1.959966356814107, 2.5758342201053344),
+            (1e8, 1.9599640082627663, 2.5758293527143774),
+        ] {
+            for (p, want) in [(0.975, p975), (0.995, p995)] {
+                let t = t_quantile(p, dof).unwrap();
+                assert!(
+                    (t - want).abs() < 1e-11,
+                    "t({p}, {dof}) {t} vs SciPy {want}"
+                );
+            }
+        }
+        // Continuous where the expansion takes over.
+        let below = t_quantile(0.975, 9999.0).unwrap();
+        let at = t_quantile(0.975, 1e4).unwrap();
+        assert!(below > at && below - at < 1e-7, "{below} {at}");
     }
 
     #[test]

@@ -5,7 +5,7 @@
 //! file; pinned in tests/python/requirements.txt). An outside check: SciPy's
 //! t-test, linear regression and t and chi-square quantiles.
 
-use fringe_calibration::fit::adjust::{bias_slope, Correction};
+use fringe_calibration::fit::adjust::{bias_slope, unexplained_error_limit, Correction};
 use fringe_calibration::product::{ModelKind, ProductModel, SingleFrequencyModel};
 use serde_json::Value;
 
@@ -56,6 +56,16 @@ fn bias_and_slope_tests_match_scipy() {
     close(b.slope_t_crit, &r["slope_t_crit"], "t(0.975, n-2)");
     close(b.sep_ci.0, &r["sep_ci"][0], "SEP low");
     close(b.sep_ci.1, &r["sep_ci"][1], "SEP high");
+    close(b.s_res, &r["s_res"], "residual SD of lab on predicted");
+    close(b.rmsep, &r["rmsep"], "RMSEP");
+    let t_ue = unexplained_error_limit(
+        r["sec_cal"].as_f64().unwrap(),
+        r["dof_cal"].as_u64().unwrap() as usize,
+        b.n,
+        b.alpha,
+    )
+    .unwrap();
+    close(t_ue, &r["t_ue"], "T_UE = SEC sqrt(F(0.95; n - 1, M))");
     // The example's inline reads high with a slope: both significant.
     assert!(b.bias_significant && b.slope_significant);
     assert_eq!(b.recommended(), Correction::BiasAndSlope);
@@ -90,4 +100,44 @@ fn the_correction_removes_bias_and_slope() {
         assert!((new.moisture_pct(e, t) - (a + s * old.moisture_pct(e, t))).abs() < 1e-12);
     }
     assert_eq!(m.rescaled(0.0, 1.0).kind(), ModelKind::SingleFrequency);
+}
+
+/// Degenerate pairs get a verdict a person can read, not NaN or the ratio
+/// of two rounding errors (consistency tests; invented values).
+#[test]
+fn degenerate_pairs_have_a_clear_verdict() {
+    use fringe_calibration::stats::StatsError;
+    let lab = [12.0, 12.5, 13.1, 13.8, 14.2];
+    // A steady product read to the same digit: no slope, said so.
+    let flat = [12.2; 5];
+    let e = bias_slope(&lab, &flat, 0.05).unwrap_err();
+    assert_eq!(
+        e,
+        StatsError::NoSpread {
+            what: "predicted",
+            n: 5
+        }
+    );
+    assert!(e.to_string().contains("do not vary"), "{e}");
+    let almost = [12.2, 12.2, 12.2000001, 12.2, 12.2];
+    assert!(matches!(
+        bias_slope(&lab, &almost, 0.05),
+        Err(StatsError::NoSpread { .. })
+    ));
+    // An inline that is the lab value plus 0.3 exactly: the bias is
+    // certain, the slope is 1.
+    let offset: Vec<f64> = lab.iter().map(|x| x + 0.3).collect();
+    let b = bias_slope(&lab, &offset, 0.05).unwrap();
+    assert!(b.bias_significant && b.bias_t.is_infinite(), "{b:?}");
+    assert!(!b.slope_significant && b.slope_t == 0.0, "{b:?}");
+    assert_eq!(b.recommended(), Correction::Bias);
+    // Identical values: nothing to correct, no NaN.
+    let b = bias_slope(&lab, &lab, 0.05).unwrap();
+    assert!(b.bias_t == 0.0 && b.slope_t == 0.0, "{b:?}");
+    assert_eq!(b.recommended(), Correction::None);
+    // A confidence level typed for a significance level.
+    assert_eq!(
+        bias_slope(&lab, &offset, 0.95).unwrap_err(),
+        StatsError::BadSignificance(0.95)
+    );
 }

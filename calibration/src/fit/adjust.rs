@@ -17,11 +17,21 @@
 //! - **SEP confidence limits** from the chi-square distribution:
 //!   `SEP sqrt((n - 1) / chi2(1 - alpha/2, n - 1))` to
 //!   `SEP sqrt((n - 1) / chi2(alpha/2, n - 1))`.
+//! - **RMSEP** `sqrt(mean(e^2))`, bias included.
+//! - **Unexplained error** ([`unexplained_error_limit`]): the SEP is
+//!   significantly larger than the calibration's SEC (with `M` degrees of
+//!   freedom) when `SEP > T_UE = SEC sqrt(F(1 - alpha; n - 1, M))`. A bias or
+//!   slope correction does not remove such an excess: the calibration does
+//!   not hold as well on these samples as on its own.
+//!
+//! Where the errors are exact to rounding (an inline that is the lab value
+//! plus a constant, say), a t statistic is infinite when its numerator is
+//! not zero and 0 when it is, not the ratio of two rounding errors.
 //!
 //! The tests check these figures against SciPy 1.17.1 on a worked example
 //! (`tests/adjust_scipy.rs`).
 
-use statrs::distribution::{ChiSquared, ContinuousCDF};
+use statrs::distribution::{ChiSquared, ContinuousCDF, FisherSnedecor};
 
 use crate::stats::{t_quantile, StatsError};
 
@@ -60,6 +70,61 @@ pub struct BiasSlope {
     pub slope_significant: bool,
     /// Confidence limits of the SEP, %.
     pub sep_ci: (f64, f64),
+    /// Residual SD of lab on predicted (n - 2), %: the error left after a
+    /// bias and slope correction.
+    pub s_res: f64,
+    /// Root mean square of predicted - lab, bias included, %.
+    pub rmsep: f64,
+}
+
+/// ISO 12099's limit on the unexplained error (from memory):
+/// `T_UE = SEC sqrt(F(1 - alpha; n - 1, dof_cal))` for a SEP of `n` pairs
+/// against a calibration of standard error `sec` with `dof_cal` degrees of
+/// freedom (samples less parameters). A SEP above it is significantly
+/// larger than the SEC.
+///
+/// # Errors
+/// [`StatsError`] for fewer than 2 pairs, no degrees of freedom, a `sec`
+/// that is not a finite number >= 0, or `alpha` outside (0, 0.5].
+pub fn unexplained_error_limit(
+    sec: f64,
+    dof_cal: usize,
+    n: usize,
+    alpha: f64,
+) -> Result<f64, StatsError> {
+    if n < 2 {
+        return Err(StatsError::TooFew { needed: 2, got: n });
+    }
+    if dof_cal < 1 {
+        return Err(StatsError::TooFew {
+            needed: 1,
+            got: dof_cal,
+        });
+    }
+    if !(sec.is_finite() && sec >= 0.0) {
+        return Err(StatsError::NonFinite {
+            what: "SEC",
+            index: 0,
+        });
+    }
+    if !(alpha > 0.0 && alpha <= 0.5) {
+        return Err(StatsError::BadSignificance(alpha));
+    }
+    let f = FisherSnedecor::new((n - 1) as f64, dof_cal as f64)
+        .map_err(|_| StatsError::TooFew { needed: 2, got: n })?;
+    Ok(sec * f.inverse_cdf(1.0 - alpha).sqrt())
+}
+
+/// `num / den` for a t statistic, where a `den` at rounding level (below
+/// `tiny`) gives infinity for a `num` above it and 0 for one at it.
+fn t_ratio(num: f64, den: f64, tiny: f64) -> f64 {
+    if den > tiny {
+        num / den
+    } else if num > tiny {
+        f64::INFINITY
+    } else {
+        0.0
+    }
 }
 
 /// Bias and slope tests of `predicted` against `lab` at level `alpha`.
@@ -84,27 +149,36 @@ pub fn bias_slope(lab: &[f64], predicted: &[f64], alpha: f64) -> Result<BiasSlop
             return Err(StatsError::NonFinite { what, index });
         }
     }
-    if !(alpha > 0.0 && alpha < 1.0) {
-        return Err(StatsError::BadConfidence(alpha));
+    if !(alpha > 0.0 && alpha <= 0.5) {
+        return Err(StatsError::BadSignificance(alpha));
     }
     let nf = n as f64;
     let e: Vec<f64> = predicted.iter().zip(lab).map(|(p, r)| p - r).collect();
     let bias = e.iter().sum::<f64>() / nf;
     let sep = (e.iter().map(|x| (x - bias).powi(2)).sum::<f64>() / (nf - 1.0)).sqrt();
+    let rmsep = (e.iter().map(|x| x * x).sum::<f64>() / nf).sqrt();
     let tb = t_quantile(1.0 - alpha / 2.0, nf - 1.0)?;
     let half_b = tb * sep / nf.sqrt();
-    let bias_t = bias.abs() * nf.sqrt() / sep;
     let (mp, ml) = (
         predicted.iter().sum::<f64>() / nf,
         lab.iter().sum::<f64>() / nf,
     );
+    // Rounding level of these values: far below any moisture a lab or a
+    // reading resolves.
+    let tiny = 1e-9 * mp.abs().max(ml.abs()).max(1.0);
+    let bias_t = t_ratio(bias.abs() * nf.sqrt(), sep, tiny * nf.sqrt());
     let (mut sxy, mut sxx) = (0.0, 0.0);
     for (p, r) in predicted.iter().zip(lab) {
         sxy += (p - mp) * (r - ml);
         sxx += (p - mp) * (p - mp);
     }
-    if !(sxx > 0.0) {
-        return Err(StatsError::TooFew { needed: 2, got: 1 });
+    // Predictions that do not vary (a steady product read to the same
+    // digit) or vary by rounding only determine no slope.
+    if !((sxx / (nf - 1.0)).sqrt() > 1e3 * tiny) {
+        return Err(StatsError::NoSpread {
+            what: "predicted",
+            n,
+        });
     }
     let slope = sxy / sxx;
     let intercept = ml - slope * mp;
@@ -116,7 +190,7 @@ pub fn bias_slope(lab: &[f64], predicted: &[f64], alpha: f64) -> Result<BiasSlop
     let s_res = (rss / (nf - 2.0)).sqrt();
     let slope_se = s_res / sxx.sqrt();
     let ts = t_quantile(1.0 - alpha / 2.0, nf - 2.0)?;
-    let slope_t = (slope - 1.0).abs() / slope_se;
+    let slope_t = t_ratio((slope - 1.0).abs(), slope_se, tiny / sxx.sqrt());
     let chi = ChiSquared::new(nf - 1.0).map_err(|_| StatsError::TooFew { needed: 2, got: n })?;
     let sep_ci = (
         sep * ((nf - 1.0) / chi.inverse_cdf(1.0 - alpha / 2.0)).sqrt(),
@@ -139,6 +213,8 @@ pub fn bias_slope(lab: &[f64], predicted: &[f64], alpha: f64) -> Result<BiasSlop
         slope_t_crit: ts,
         slope_significant: slope_t > ts,
         sep_ci,
+        s_res,
+        rmsep,
     })
 }
 

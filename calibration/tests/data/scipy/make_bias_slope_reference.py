@@ -9,7 +9,10 @@ inline values, 14 pairs, an inline that reads 0.3 % high with a slope of
 0.94): bias, SEP, the bias t statistic and its critical value, the bias
 confidence limits; slope and intercept of lab on predicted with the slope's
 standard error (scipy.stats.linregress), its t statistic against 1 and
-critical value; SEP confidence limits from chi-square. alpha = 0.05.
+critical value, the residual SD of that regression and the RMSEP; SEP
+confidence limits from chi-square; the unexplained-error limit T_UE = SEC
+sqrt(F(1 - alpha; n - 1, M)) against an invented calibration (SEC 0.15 %,
+M = 31 degrees of freedom). alpha = 0.05.
 """
 import json
 import pathlib
@@ -31,6 +34,9 @@ tt = stats.ttest_1samp(e, 0.0)
 tb = stats.t.ppf(1 - alpha / 2, n - 1)
 lr = stats.linregress(pred, lab)
 ts = stats.t.ppf(1 - alpha / 2, n - 2)
+resid = lab - (lr.intercept + lr.slope * pred)
+sec_cal, dof_cal = 0.15, 31
+f_crit = stats.f.ppf(1 - alpha, n - 1, dof_cal)
 out = {
     "versions": {"numpy": np.__version__, "scipy": scipy.__version__},
     "alpha": alpha,
@@ -47,6 +53,12 @@ out = {
     "slope_se": lr.stderr,
     "slope_t": abs(lr.slope - 1.0) / lr.stderr,
     "slope_t_crit": ts,
+    "s_res": float(np.sqrt((resid**2).sum() / (n - 2))),
+    "rmsep": float(np.sqrt((e**2).mean())),
+    "sec_cal": sec_cal,
+    "dof_cal": dof_cal,
+    "f_crit": f_crit,
+    "t_ue": sec_cal * np.sqrt(f_crit),
     "sep_ci": [
         sep * np.sqrt((n - 1) / stats.chi2.ppf(1 - alpha / 2, n - 1)),
         sep * np.sqrt((n - 1) / stats.chi2.ppf(alpha / 2, n - 1)),
