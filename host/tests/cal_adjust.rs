@@ -193,3 +193,77 @@ fn an_adjusted_wet_basis_range_stays_at_or_below_100_pct() {
         .output()
         .expect("run"));
 }
+
+/// A correction the tests do not call for, written because `--correct`
+/// asks for it, says so in the child's file; the child's uncertainty is
+/// the pairs' error after the correction where that is larger than the
+/// parent's (here the parent's SEC is far below the grab samples' scatter,
+/// which ISO 12099's unexplained-error check reports). A confidence level
+/// typed for `--alpha` is refused (exit 2). (Made-up tables, plumbing
+/// test.)
+#[test]
+fn a_forced_correction_says_so_and_takes_the_lines_error() {
+    let dir = tempfile::tempdir().expect("dir");
+    let d = dir.path();
+    std::fs::write(d.join("lab.csv"), table(24, 0.0)).expect("write");
+    let cal = fit_single(d);
+    // Grab samples scattered +/-0.3 % about the inline values, no bias.
+    let grabs: Vec<String> = table(10, 0.0)
+        .lines()
+        .enumerate()
+        .map(|(i, l)| {
+            if i == 0 {
+                return l.to_string();
+            }
+            let mut f: Vec<String> = l.split(',').map(str::to_string).collect();
+            let m: f64 = f[1].parse().expect("lab");
+            f[1] = format!("{}", m + if i % 2 == 0 { 0.3 } else { -0.3 });
+            f.join(",")
+        })
+        .collect();
+    std::fs::write(d.join("grabs.csv"), grabs.join("\n") + "\n").expect("write");
+    let adjust = |extra: &[&str]| {
+        Command::new(env!("CARGO_BIN_EXE_fringe"))
+            .args(["cal", "adjust", "--json", "--cal"])
+            .arg(&cal)
+            .arg("--pairs")
+            .arg(d.join("grabs.csv"))
+            .arg("--out")
+            .arg(d.join("forced.toml"))
+            .args(extra)
+            .output()
+            .expect("run")
+    };
+    let v: serde_json::Value =
+        serde_json::from_str(ok(&adjust(&["--correct", "bias"])).trim()).expect("json");
+    assert_eq!(v["bias"]["significant"], false, "{v}");
+    assert_eq!(v["forced"], true, "{v}");
+    assert_eq!(v["unexplained_error"]["exceeded"], true, "{v}");
+    let sep = v["sep"]["value"].as_f64().expect("sep");
+    assert!(sep > 0.25, "{v}");
+    let child = std::fs::read_to_string(d.join("forced.toml")).expect("written");
+    assert!(child.contains("forced with --correct"), "{child}");
+    let sec = |t: &str| -> f64 {
+        t.lines()
+            .find_map(|l| l.strip_prefix("sec_pct = "))
+            .expect("sec_pct")
+            .parse()
+            .expect("number")
+    };
+    let parent = std::fs::read_to_string(&cal).expect("parent");
+    assert!(sec(&parent) < 0.5 * sep, "{parent}");
+    assert!(
+        (sec(&child) - sep).abs() < 1e-5,
+        "{} vs SEP {sep}",
+        sec(&child)
+    );
+    assert!(child.contains("uncertainty from the pairs' SEP"), "{child}");
+
+    let o = adjust(&["--alpha", "0.95"]);
+    assert_eq!(o.status.code(), Some(2));
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        e.contains("not a significance level") && e.contains("0.05"),
+        "{e}"
+    );
+}

@@ -90,6 +90,8 @@ pub struct LabRow {
     pub lab_pct: f64,
     /// Inline moisture of the matched reading, %.
     pub inline_pct: Option<f64>,
+    /// The product calibration that made the matched reading.
+    pub made_with: Option<fringe_protocol::CalId>,
 }
 
 /// Everything read for one device.
@@ -293,6 +295,7 @@ impl LineData {
                     time_ms: l.sample.taken_unix_ms,
                     lab_pct,
                     inline_pct,
+                    made_with,
                 }
             })
             .collect();

@@ -581,7 +581,12 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
         })
     };
     let ctx = |source| FitError::Model {
-        what: format!("{}: fitting the {words} model", args.samples.display()),
+        what: match args.model {
+            FitModel::Compare => {
+                format!("{}: fitting the models to compare", args.samples.display())
+            }
+            _ => format!("{}: fitting the {words} model", args.samples.display()),
+        },
         source,
     };
     let mv = |method| MultivariateOptions {
@@ -1656,6 +1661,47 @@ mod tests {
             vec![12.1, 13.4]
         );
     }
+
+    /// The pairs `cal adjust --db` tests a calibration on are the samples
+    /// whose reading that calibration made: not those measured under a
+    /// calibration in force before it, or after it, or while it was pushed
+    /// but not selected (common practice, no source: a bias is a property
+    /// of one calibration).
+    #[test]
+    fn line_pairs_are_those_the_calibration_made() {
+        use crate::analysis::{LabRow, LineData};
+        use fringe_protocol::CalId;
+        let ours = CalId([0x4c, 0x99, 0x14, 0xd5]);
+        let other = CalId([0x12, 0x34, 0x56, 0x78]);
+        let row = |t: i64, lab: f64, inline: Option<f64>, made_with: Option<CalId>| LabRow {
+            sample_id: format!("G{t}"),
+            time_ms: t,
+            lab_pct: lab,
+            inline_pct: inline,
+            made_with,
+        };
+        let mut data = LineData::default();
+        data.serial = "HGM-TEST".into();
+        data.lab = vec![
+            // Before ours was selected, after it, under ours, no reading.
+            row(1, 11.0, Some(12.0), Some(other)),
+            row(2, 13.0, Some(13.3), Some(ours)),
+            row(3, 14.0, Some(14.2), Some(ours)),
+            row(4, 12.5, None, None),
+            row(5, 15.0, Some(17.0), Some(other)),
+            row(6, 12.0, Some(12.4), Some(ours)),
+        ];
+        let p = pairs_from_line(&data, &ours.to_string(), Path::new("line.db"));
+        assert_eq!(p.lab, vec![13.0, 14.0, 12.0]);
+        assert_eq!(p.predicted, vec![13.3, 14.2, 12.4]);
+        assert!(
+            p.source.contains("measured under 4c9914d5")
+                && p.source
+                    .contains("2 samples measured under other calibrations left out"),
+            "{}",
+            p.source
+        );
+    }
 }
 
 /// Which correction `cal adjust` writes.
@@ -1798,38 +1844,59 @@ pub struct AdjustOutcome {
     pub file: Option<ProductFile>,
     /// Where the pairs came from.
     pub source: String,
+    /// ISO 12099's unexplained-error check of the pairs' SEP against the
+    /// calibration's SEC (absent for a file without its parameter count).
+    pub unexplained: Option<Unexplained>,
+    /// The correction was written though the tests do not call for it
+    /// (`--correct` asked for it).
+    pub forced: bool,
 }
 
-/// The lab pairs of a line's data ([`crate::analysis`]): those since the
-/// calibration `cal_id` was pushed, when the records say.
+/// The pairs' SEP against the calibration's SEC:
+/// [`fringe_calibration::fit::adjust::unexplained_error_limit`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Unexplained {
+    /// The calibration's SEC, %.
+    pub sec: f64,
+    /// Its degrees of freedom (samples less parameters).
+    pub dof: usize,
+    /// The limit T_UE, %.
+    pub limit: f64,
+    /// The pairs' SEP is above it.
+    pub exceeded: bool,
+}
+
+/// The lab pairs of a line's data ([`crate::analysis`]) whose inline value
+/// the calibration `cal_id` made (the matched reading carries the id of the
+/// calibration that computed it): a sample measured under another
+/// calibration, one selected before or after, or one that was pushed but
+/// not put in force, tells nothing about this one.
 pub fn pairs_from_line(data: &crate::analysis::LineData, cal_id: &str, db: &Path) -> Pairs {
-    let since = data
-        .cals
-        .iter()
-        .filter(|c| c.3.new_id == cal_id)
-        .map(|c| c.1)
-        .max();
+    let mut other = 0usize;
     let (lab, predicted) = data
         .lab
         .iter()
-        .filter(|l| since.is_none_or(|t| l.time_ms >= t))
-        .filter_map(|l| Some((l.lab_pct, l.inline_pct?)))
+        .filter_map(|l| Some((l.lab_pct, l.inline_pct?, l.made_with?)))
+        .filter(|(_, _, made_with)| {
+            let ours = made_with.to_string() == cal_id;
+            other += usize::from(!ours);
+            ours
+        })
+        .map(|(lab, inline, _)| (lab, inline))
         .unzip();
+    let left = match other {
+        0 => String::new(),
+        1 => "; 1 sample measured under another calibration left out".to_string(),
+        n => format!("; {n} samples measured under other calibrations left out"),
+    };
     Pairs {
         lab,
         predicted,
-        source: match since {
-            Some(_) => format!(
-                "lab grab samples of {} in {} since {cal_id} was pushed",
-                data.serial,
-                db.display()
-            ),
-            None => format!(
-                "every lab grab sample of {} in {} (no push of {cal_id} recorded there)",
-                data.serial,
-                db.display()
-            ),
-        },
+        source: format!(
+            "lab grab samples of {} in {} measured under {cal_id}{left}",
+            data.serial,
+            db.display()
+        ),
     }
 }
 
@@ -1863,15 +1930,52 @@ pub fn adjust(
         AdjustCorrection::Bias => Correction::Bias,
         AdjustCorrection::BiasSlope => Correction::BiasAndSlope,
     };
+    // A forced correction the tests do not call for: a bias correction
+    // where the bias is not significant, a slope one where the slope is not.
+    let forced = match applied {
+        Correction::None => false,
+        Correction::Bias => !tests.bias_significant,
+        Correction::BiasAndSlope => !tests.slope_significant,
+    };
+    let st = &file.statistics;
+    let unexplained = st
+        .n_params
+        .and_then(|p| st.n.checked_sub(p).filter(|d| *d > 0))
+        .and_then(|dof| {
+            let limit = fringe_calibration::fit::adjust::unexplained_error_limit(
+                st.sec, dof, tests.n, args.alpha,
+            )
+            .ok()?;
+            Some(Unexplained {
+                sec: st.sec,
+                dof,
+                limit,
+                exceeded: tests.sep > limit,
+            })
+        });
     if applied == Correction::None {
         return Ok(AdjustOutcome {
             tests,
             applied,
             file: None,
             source: pairs.source,
+            unexplained,
+            forced,
         });
     }
     let (a, b) = tests.map(applied);
+    // The error left on the line after this correction: the bias-corrected
+    // SEP after a bias correction, the residual SD of lab on predicted after
+    // a slope one. The child's uncertainty (the device's SEC term and the
+    // host's intervals) is the parent's scaled by the slope, or this where
+    // it is larger: a calibration does not claim to be better on its line
+    // than its line shows (our rule, no source).
+    let line_sd = match applied {
+        Correction::BiasAndSlope => tests.s_res,
+        _ => tests.sep,
+    };
+    let scaled_sec = f64::from(wire.sec_pct) * b.abs();
+    let raised = line_sd > scaled_sec;
     let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| AdjustError::Refused {
         path: args.cal.clone(),
         reason: format!("{e:?}"),
@@ -1889,6 +1993,7 @@ pub fn adjust(
             max: lo.max(hi).clamp(0.0, top),
         },
         made_s,
+        sec_pct: scaled_sec.max(line_sd) as f32,
         ..wire.clone()
     };
     let words = match applied {
@@ -1912,17 +2017,51 @@ pub fn adjust(
     } else {
         String::new()
     };
+    let forced_words = if forced {
+        match tests.recommended() {
+            Correction::None => {
+                "; forced with --correct: the tests at this alpha call for no correction"
+            }
+            _ => "; forced with --correct: the tests at this alpha call for a bias correction only",
+        }
+    } else {
+        ""
+    };
+    let raised_words = if raised {
+        format!(
+            "; uncertainty from the pairs' {} {line_sd:.3} % (the parent's SEC{} gives {scaled_sec:.3} %)",
+            if applied == Correction::BiasAndSlope {
+                "residual SD"
+            } else {
+                "SEP"
+            },
+            if b == 1.0 { "" } else { " scaled by the slope" }
+        )
+    } else {
+        String::new()
+    };
+    let excess_words = match unexplained {
+        Some(u) if u.exceeded => format!(
+            "; the pairs' SEP {:.3} % is significantly above the calibration's SEC {:.3} % (T_UE {:.3} %, ISO 12099): a correction does not remove that",
+            tests.sep, u.sec, u.limit
+        ),
+        _ => String::new(),
+    };
     let mut source = file.source.clone();
     source.parent_id = Some(file.id.clone());
-    source.derivation = Some(format!("{words}{held}; pairs: {}", pairs.source));
+    source.derivation = Some(format!(
+        "{words}{held}{forced_words}{raised_words}{excess_words}; pairs: {}",
+        pairs.source
+    ));
     let input_names: Vec<&str> = file.inputs.iter().map(|r| r.name.as_str()).collect();
     let mut new_file =
         ProductFile::from_wire(&new_wire, &input_names, file.statistics.clone(), source);
     new_file.prediction = file.prediction.clone();
     if let Some(p) = &mut new_file.prediction {
-        // Intervals scale with the slope.
-        p.residual_sd *= b.abs();
-        p.interval_sd *= b.abs();
+        // Intervals scale with the slope, and are no narrower than the
+        // line's error after the correction.
+        p.residual_sd = (p.residual_sd * b.abs()).max(line_sd);
+        p.interval_sd = (p.interval_sd * b.abs()).max(line_sd);
     }
     new_file.save(&args.out)?;
     Ok(AdjustOutcome {
@@ -1930,6 +2069,8 @@ pub fn adjust(
         applied,
         file: Some(new_file),
         source: pairs.source,
+        unexplained,
+        forced,
     })
 }
 
@@ -1953,6 +2094,10 @@ pub fn write_adjust(
             "bias": {"value": t.bias, "ci": [t.bias_ci.0, t.bias_ci.1], "t": t.bias_t, "t_crit": t.bias_t_crit, "significant": t.bias_significant},
             "slope": {"value": t.slope, "intercept": t.intercept, "se": t.slope_se, "ci": [t.slope_ci.0, t.slope_ci.1], "t": t.slope_t, "t_crit": t.slope_t_crit, "significant": t.slope_significant},
             "sep": {"value": t.sep, "ci": [t.sep_ci.0, t.sep_ci.1]},
+            "rmsep": t.rmsep,
+            "residual_sd": t.s_res,
+            "unexplained_error": o.unexplained.map(|u| json!({"sec": u.sec, "dof": u.dof, "t_ue": u.limit, "exceeded": u.exceeded})),
+            "forced": o.forced,
             "applied": format!("{:?}", o.applied),
             "written": o.file.as_ref().map(|f| json!({"file": args.out.display().to_string(), "id": f.id, "parent_id": f.source.parent_id})),
         });
@@ -1991,9 +2136,23 @@ pub fn write_adjust(
     )?;
     writeln!(
         w,
-        "  SEP   {:.3} %, {conf:.0} % CI {:.3}..{:.3}",
-        t.sep, t.sep_ci.0, t.sep_ci.1
+        "  SEP   {:.3} %, {conf:.0} % CI {:.3}..{:.3}; RMSEP {:.3} % (bias included)",
+        t.sep, t.sep_ci.0, t.sep_ci.1, t.rmsep
     )?;
+    if let Some(u) = o.unexplained {
+        writeln!(
+            w,
+            "  SEP against the calibration's SEC {:.3} % ({} degrees of freedom): T_UE {:.3} %, {}",
+            u.sec,
+            u.dof,
+            u.limit,
+            if u.exceeded {
+                "significantly larger: the calibration does not hold as well on these samples as on its own, and a bias or slope correction does not change that; look for the cause (sampling, the lab, the product) and consider refitting with samples from the line"
+            } else {
+                "within"
+            }
+        )?;
+    }
     match (&o.file, o.applied) {
         (Some(f), _) => writeln!(
             w,
