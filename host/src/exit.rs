@@ -106,6 +106,10 @@ impl ExitCode {
                     .downcast_ref::<fringe_device::key::KeyError>()
                     .is_some()
                 || matches!(
+                    cause.downcast_ref::<fringe_quality::cal::PredictError>(),
+                    Some(fringe_quality::cal::PredictError::OtherFrequencies { .. })
+                )
+                || matches!(
                     cause.downcast_ref::<fringe_quality::cal::FitError>(),
                     Some(
                         fringe_quality::cal::FitError::NoDensity { .. }

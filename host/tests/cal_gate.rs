@@ -334,3 +334,38 @@ fn physically_impossible_values_are_input_errors() {
         assert!(!out.exists());
     }
 }
+
+/// An option out of its range is a usage error (exit 2) that names the
+/// flag as typed, and nothing is written: before, `--folds 1` and
+/// `--eps-sd 0` failed inside the fit (exit 1) with the library's option
+/// names.
+#[test]
+fn options_out_of_range_name_their_flag_and_write_nothing() {
+    let dir = tempfile::tempdir().expect("dir");
+    let good = rows(24, 0.2);
+    for (extra, flag) in [
+        (&["--folds", "1"][..], "--folds"),
+        (&["--eps-sd", "0"][..], "--eps-sd"),
+        (&["--eps-sd", "nan"][..], "--eps-sd"),
+        (&["--bulk-density-kg-m3", "0"][..], "--bulk-density-kg-m3"),
+        (
+            &["--particle-density-kg-m3", "6000"][..],
+            "--particle-density-kg-m3",
+        ),
+        (
+            &[
+                "--bulk-density-kg-m3",
+                "1500",
+                "--particle-density-kg-m3",
+                "1400",
+            ][..],
+            "--bulk-density-kg-m3 1500",
+        ),
+    ] {
+        let (o, out) = fit(dir.path(), &good, extra);
+        let e = stderr(&o);
+        assert_eq!(o.status.code(), Some(2), "{extra:?}: {e}");
+        assert!(e.contains(flag), "{extra:?}: {e}");
+        assert!(!out.exists(), "{extra:?}: nothing written");
+    }
+}

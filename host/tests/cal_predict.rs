@@ -100,4 +100,30 @@ fn predict_keeps_the_lab_value_and_adds_interval_leverage_and_flags() {
     );
     assert!(v["rows"][1]["moisture_pct"].is_null());
     assert_eq!(v["confidence"], 0.95);
+
+    // A table measured at other frequencies than the calibration's is an
+    // input error (exit 3) that names the sample, and nothing is written.
+    let other = dir.path().join("other.csv");
+    std::fs::write(
+        &other,
+        format!(
+            "{HEADER}\n{}\n",
+            row("HF1", 15.0, 20.0, true).replace(",20000000,", ",30000000,")
+        ),
+    )
+    .expect("write");
+    let out2 = dir.path().join("pred2.csv");
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "predict", "--cal"])
+        .arg(&cal)
+        .arg("--input")
+        .arg(&other)
+        .arg("--out")
+        .arg(&out2)
+        .output()
+        .expect("run");
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(3), "{e}");
+    assert!(e.contains("HF1") && e.contains("30 MHz"), "{e}");
+    assert!(!out2.exists());
 }

@@ -124,13 +124,18 @@ fn a_density_calibration_takes_the_plants_density() {
     let counter = || status_json(&sim)["write_counter"].as_u64().unwrap();
     let before = counter();
     let k = key.to_str().unwrap();
-    // g/cm3 by mistake, a hold too long, no key: usage errors, nothing sent.
+    // g/cm3 by mistake, a hold too long: usage errors; no key: a missing
+    // input (exit 3, as a missing port); nothing sent.
     let o = density(&["--key-file", k, "--kg-m3", "1.65"]);
     assert_fails(&o, 2, &["--kg-m3 1.65", "g/cm3", "nothing sent"]);
     let o = density(&["--key-file", k, "--kg-m3", "730", "--hold-s", "7200"]);
     assert_fails(&o, 2, &["--hold-s 7200", "nothing sent"]);
     let o = density(&["--kg-m3", "730"]);
-    assert_fails(&o, 2, &["needs the device key", "nothing sent"]);
+    assert_fails(
+        &o,
+        3,
+        &["needs the device key", "--key-file", "nothing sent"],
+    );
     assert_eq!(counter(), before, "nothing was sent");
 
     let o = density(&[

@@ -37,10 +37,10 @@ pub struct FitArgs {
     #[arg(long)]
     pub name: Option<String>,
     /// Wet bulk density of the product at the sensor, kg/m^3 (relaxation model; measure it).
-    #[arg(long, value_name = "KG_M3")]
+    #[arg(long, value_name = "KG_M3", value_parser = density)]
     pub bulk_density_kg_m3: Option<f64>,
     /// Particle density of the dry matter, kg/m^3 (relaxation model; measured or handbook).
-    #[arg(long, value_name = "KG_M3")]
+    #[arg(long, value_name = "KG_M3", value_parser = density)]
     pub particle_density_kg_m3: Option<f64>,
     /// Use the table's bulk_density_kg_m3 column (the density at the sensor from a weigh
     /// belt or gauge, every row) as an input of the multivariate models and in the
@@ -53,10 +53,10 @@ pub struct FitArgs {
     pub degree: u8,
     /// Cross-validation: 0 for leave-one-out below 100 samples and 10 folds from 100 on,
     /// else the number of folds (venetian blinds; the number of samples is leave-one-out).
-    #[arg(long, default_value_t = 0)]
+    #[arg(long, default_value_t = 0, value_parser = folds)]
     pub folds: usize,
     /// Noise standard deviation of eps' and eps'' (for the uncertainty the device reports).
-    #[arg(long, default_value_t = 0.02)]
+    #[arg(long, default_value_t = 0.02, value_parser = noise_sd)]
     pub eps_sd: f64,
     /// Moisture basis of the lab values (water / wet mass, below 100 %; or
     /// water / dry mass, as timber and biomass are often given, below
@@ -95,7 +95,7 @@ pub struct PredictArgs {
     /// Noise standard deviation of eps' and eps'' used for the uncertainty
     /// [default: the one the calibration was fitted with (`cal fit
     /// --eps-sd`), 0.02 for a file that does not say].
-    #[arg(long)]
+    #[arg(long, value_parser = noise_sd_f32)]
     pub eps_sd: Option<f32>,
     /// Confidence level of the prediction interval.
     #[arg(long, default_value_t = 0.95, value_parser = confidence_level)]
@@ -135,8 +135,8 @@ pub struct AdjustArgs {
     )]
     pub pairs: Option<PathBuf>,
     /// Take the lab grab samples and their inline readings from this database
-    /// (those since the calibration was pushed, when the records say): a
-    /// file or a postgres:// URL.
+    /// (those whose reading this calibration made): a file or a postgres://
+    /// URL.
     #[arg(long, value_name = "FILE|URL")]
     pub db: Option<PathBuf>,
     /// Device serial in the database [default: its first device].
@@ -148,12 +148,90 @@ pub struct AdjustArgs {
     /// Which correction to write.
     #[arg(long, value_enum, default_value_t = AdjustCorrectionArg::Auto)]
     pub correct: AdjustCorrectionArg,
-    /// Significance level of the bias and slope tests.
-    #[arg(long, default_value_t = 0.05)]
+    /// Significance level of the bias and slope tests (0.05 for 95 %
+    /// confidence; at most 0.5).
+    #[arg(long, default_value_t = 0.05, value_parser = significance_level)]
     pub alpha: f64,
     /// Print the result as one JSON object.
     #[arg(long)]
     pub json: bool,
+}
+
+/// A number, or the reason it is not one.
+fn number(s: &str) -> Result<f64, String> {
+    s.trim()
+        .parse()
+        .map_err(|_| format!("`{s}` is not a number"))
+}
+
+/// A density, kg/m^3: above 0 and at most
+/// `fringe_calibration::fit::product::MAX_DENSITY_KG_M3`.
+fn density(s: &str) -> Result<f64, String> {
+    let v = number(s)?;
+    let max = fringe_calibration::fit::product::MAX_DENSITY_KG_M3;
+    if v.is_finite() && v > 0.0 && v <= max {
+        Ok(v)
+    } else {
+        Err(format!(
+            "{s} is not a density above 0 and at most {max} kg/m^3"
+        ))
+    }
+}
+
+/// A number of cross-validation folds: 0 (automatic) or at least 2.
+fn folds(s: &str) -> Result<usize, String> {
+    match s.trim().parse::<usize>() {
+        Ok(1) => Err("1 fold cannot cross-validate: give 0 (automatic) or at least 2".into()),
+        Ok(v) => Ok(v),
+        Err(_) => Err(format!("`{s}` is not a whole number of folds")),
+    }
+}
+
+/// A noise standard deviation: a positive finite number.
+fn noise_sd(s: &str) -> Result<f64, String> {
+    let v = number(s)?;
+    if v.is_finite() && v > 0.0 {
+        Ok(v)
+    } else {
+        Err(format!(
+            "{s} is not a standard deviation above 0 (e.g. 0.02)"
+        ))
+    }
+}
+
+/// [`noise_sd`] as the device's f32.
+fn noise_sd_f32(s: &str) -> Result<f32, String> {
+    let v = noise_sd(s)? as f32;
+    if v.is_finite() && v > 0.0 {
+        Ok(v)
+    } else {
+        Err(format!(
+            "{s} is not a standard deviation above 0 (e.g. 0.02)"
+        ))
+    }
+}
+
+/// A significance level above 0 and at most 0.5 (a test's alpha): a
+/// confidence level typed in its place (0.95) is refused, not taken as an
+/// alpha that makes every bias significant.
+fn significance_level(s: &str) -> Result<f64, String> {
+    let v: f64 = s
+        .trim()
+        .parse()
+        .map_err(|_| format!("`{s}` is not a number"))?;
+    if v > 0.0 && v <= 0.5 {
+        Ok(v)
+    } else if (0.5..1.0).contains(&v) {
+        Err(format!(
+            "{s} is a confidence level, not a significance level: for {:.0} % confidence give {}",
+            100.0 * v,
+            ((1.0 - v) * 1e6).round() / 1e6
+        ))
+    } else {
+        Err(format!(
+            "{s} is not a significance level above 0 and at most 0.5 (e.g. 0.05)"
+        ))
+    }
 }
 
 /// A confidence level between 0.5 and 1 (the prediction interval's).

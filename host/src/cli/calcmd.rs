@@ -140,7 +140,8 @@ pub struct PushArgs {
     #[arg(long)]
     pub yes: bool,
     /// Push even if the calibration fails the quality gate (RPD < 2, R^2 < 0.8,
-    /// fewer than 5 samples per parameter); the override is kept in the audit record.
+    /// fewer than 5 samples per parameter, a range set by one sample); the
+    /// override is kept in the audit record.
     #[arg(long)]
     pub force: bool,
     /// Print the result as one JSON object (docs/JSON.md); the guide's steps stay on stderr.

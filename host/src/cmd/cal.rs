@@ -46,6 +46,14 @@ fn now_s() -> u64 {
 /// # Errors
 /// As `fringe_quality::cal::fit`, or a failed write.
 pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
+    if let (Some(b), Some(p)) = (args.bulk_density_kg_m3, args.particle_density_kg_m3) {
+        if b >= p {
+            return Err(crate::exit::UsageError(format!(
+                "--bulk-density-kg-m3 {b} must be below --particle-density-kg-m3 {p}: the bulk holds air between the particles (a wet sand, say, about 1650 in bulk, 2650 the quartz grains)"
+            ))
+            .into());
+        }
+    }
     let o = cal::fit(&args.options(), now_s())?;
     let plot = match &args.plot {
         Some(_) => Some(cal::fit_plot(&o, &args.samples)?),

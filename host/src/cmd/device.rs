@@ -287,9 +287,8 @@ pub fn clock(a: &crate::cli::ClockArgs, cfg: &LineConfig) -> anyhow::Result<()> 
         }
         return Ok(());
     };
-    let key = super::optional_key(a.key_file.as_deref(), cfg)?.ok_or_else(|| {
-        anyhow::anyhow!("setting the device clock needs the device key: pass --key-file or set key_file in the line file")
-    })?;
+    let key = super::optional_key(a.key_file.as_deref(), cfg)?
+        .ok_or_else(|| crate::config::missing_key("setting the device clock"))?;
     // Given a time, keep its distance to now (the write takes a moment).
     let offset = target - host;
     let t = now_unix_ms() + if a.set { 0 } else { offset };
@@ -337,9 +336,8 @@ pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<
         ))
         .into());
     }
-    let key = super::optional_key(a.key_file.as_deref(), cfg)?.ok_or_else(|| {
-        crate::exit::UsageError("sending a density needs the device key: pass --key-file or set key_file in the line file; nothing sent".to_string())
-    })?;
+    let key = super::optional_key(a.key_file.as_deref(), cfg)?
+        .ok_or_else(|| crate::config::missing_key("sending a density"))?;
     let mut link = super::connect(&a.port, cfg)?;
     let serial = link.serial_number().to_string();
     match fringe_line::set_density(&mut link, &key, kg_m3, hold_ms) {
