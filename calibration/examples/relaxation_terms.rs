@@ -24,7 +24,7 @@
 //! times the baseline's, at twice the salt below it. Also printed: the
 //! in-range SEP over the baseline's.
 
-use fringe_calibration::fit::product::{fit_relaxation, RelaxationOptions, Sample};
+use fringe_calibration::fit::product::{fit_relaxation, Sample};
 use fringe_calibration::fit::zoo::{Draw, Family, FREQ_PAIRS};
 use fringe_calibration::invert::{invert, InvertOptions, Observation, RelaxationLaw};
 use fringe_calibration::mixing::ProductMixture;
@@ -184,7 +184,7 @@ fn main() {
     for seed in first..=last {
         for pair in FREQ_PAIRS {
             let train = f.samples(&Draw::new(60, pair), seed);
-            let opts = RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3);
+            let opts = f.relaxation_options();
             let fit = match fit_relaxation(&train, &opts) {
                 Ok(fit) => fit,
                 Err(e) => {

@@ -155,7 +155,7 @@ fn density_table(seed: u64) {
             let o = RelaxationOptions {
                 refit_nonlinear_in_cv: true,
                 density_input,
-                ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+                ..f.relaxation_options()
             };
             match fit_relaxation(&train, &o) {
                 Ok(fit) => format!("{:.3}", sep(&errors(&fit, &val).0)),
@@ -196,7 +196,7 @@ fn loo_compare(f: &Family, density_input: bool) -> CompareOptions {
         single: SingleOptions::default(),
         relaxation: Some(RelaxationOptions {
             refit_nonlinear_in_cv: true,
-            ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+            ..f.relaxation_options()
         }),
         eps_sd: f.eps_noise_sd.max(1e-3),
         folds: Folds::LeaveOneOut,
@@ -249,7 +249,7 @@ fn timing_table(seed: u64) {
                     &RelaxationOptions {
                         refit_nonlinear_in_cv: true,
                         folds,
-                        ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+                        ..f.relaxation_options()
                     },
                 )
                 .is_ok()
@@ -308,7 +308,7 @@ fn kfold_time_table(seed: u64) {
             let relax = RelaxationOptions {
                 refit_nonlinear_in_cv: true,
                 folds: Folds::KFold(10),
-                ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+                ..f.relaxation_options()
             };
             let opts = CompareOptions {
                 single: SingleOptions::default(),

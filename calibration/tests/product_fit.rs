@@ -522,3 +522,46 @@ fn cross_validated_sep_predicts_the_sep_on_fresh_samples() {
     println!("mean fresh / cross-validated SEP over 10 sets: {mean:.3}");
     assert!((0.85..=1.15).contains(&mean), "mean ratio {mean}");
 }
+
+/// A table on a dry basis (the same noiseless grain, its lab values
+/// converted, M_db = 100 M_wb / (100 - M_wb)) gives the same dry-matter
+/// permittivity as on a wet basis (3.0, what the grain was built with):
+/// the mixing model's moisture is a wet-basis water fraction, so its
+/// parameter is chosen against the lab values on a wet basis. Before, the
+/// dry values chose a dry-matter permittivity at which every sample's
+/// mixing moisture was negative (a demo table: -23 to -8 %).
+#[test]
+fn a_dry_basis_table_gives_the_wet_basis_mixture() {
+    use fringe_calibration::moisture::{wet_to_dry, Basis};
+    let seed = 101;
+    let spec = SynthSpec {
+        noise_sd: 0.0,
+        ..SynthSpec::default()
+    };
+    let mut samples = synthetic_samples(&grain(), &spec, seed);
+    for s in &mut samples {
+        s.moisture_pct = wet_to_dry(s.moisture_pct);
+    }
+    let opts = RelaxationOptions {
+        lab_basis: Basis::Dry,
+        ..relax_opts()
+    };
+    let fit = fit_relaxation(&samples, &opts).unwrap_or_else(|e| panic!("seed {seed}: {e}"));
+    let ProductModel::Relaxation(m) = fit.model else {
+        panic!("seed {seed}: not a relaxation model")
+    };
+    assert!(
+        (m.mixture.eps_dry - 3.0).abs() < 0.05,
+        "seed {seed}: eps_dry {}",
+        m.mixture.eps_dry
+    );
+    println!(
+        "seed {seed}: eps_dry {}, SEP {} on a dry basis",
+        m.mixture.eps_dry, fit.stats.cross_validation.sep
+    );
+    assert!(
+        fit.stats.cross_validation.sep < 0.05,
+        "seed {seed}: SEP {} on a dry basis",
+        fit.stats.cross_validation.sep
+    );
+}

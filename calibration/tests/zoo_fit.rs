@@ -23,7 +23,7 @@ fn seed() -> u64 {
 fn relax_opts(f: &Family) -> RelaxationOptions {
     RelaxationOptions {
         refit_nonlinear_in_cv: true,
-        ..RelaxationOptions::new(f.bulk_density_kg_m3, f.particle_density_kg_m3)
+        ..f.relaxation_options()
     }
 }
 

@@ -444,6 +444,11 @@ pub struct RelaxationOptions {
     /// `bulk_density_kg_m3`; the samples' mean is then the reference for a
     /// reading without one (default false).
     pub density_input: bool,
+    /// The basis of the samples' lab values (default wet). The mixing
+    /// model's moisture is a wet-basis water fraction, so its parameter is
+    /// chosen against the lab values on a wet basis; the regression that
+    /// follows maps it to the lab's basis.
+    pub lab_basis: Basis,
 }
 
 impl RelaxationOptions {
@@ -460,6 +465,7 @@ impl RelaxationOptions {
             refit_nonlinear_in_cv: false,
             static_terms: true,
             density_input: false,
+            lab_basis: Basis::Wet,
         }
     }
 }
@@ -2008,7 +2014,18 @@ fn relaxation_core(
         params,
         density_input: opts.density_input,
     };
-    let y: Vec<f64> = sub.iter().map(|s| s.moisture_pct).collect();
+    // The lab values the mixing parameter is chosen against: on a wet
+    // basis, as the mixing model's moisture is (a dry-basis table's
+    // values converted; before, a dry-basis fit could choose a dry-matter
+    // permittivity above every sample's eps_hf, whose mixing moisture is
+    // then negative for every sample).
+    let y: Vec<f64> = sub
+        .iter()
+        .map(|s| match opts.lab_basis {
+            Basis::Wet => s.moisture_pct,
+            Basis::Dry => crate::moisture::dry_to_wet(s.moisture_pct),
+        })
+        .collect();
     let sub_samples: Vec<Sample> = sub.iter().map(|s| (*s).clone()).collect();
     let local: Vec<usize> = (0..sub.len()).collect();
     let mix_at = |x: f64| -> ProductMixture<f64> {

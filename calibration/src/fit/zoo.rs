@@ -295,6 +295,18 @@ fn cpow(z: Cx<f64>, a: f64) -> Cx<f64> {
 }
 
 impl Family {
+    /// The relaxation fit's defaults for this product: its densities and
+    /// the basis of its lab values.
+    pub fn relaxation_options(&self) -> super::product::RelaxationOptions {
+        super::product::RelaxationOptions {
+            lab_basis: self.basis,
+            ..super::product::RelaxationOptions::new(
+                self.bulk_density_kg_m3,
+                self.particle_density_kg_m3,
+            )
+        }
+    }
+
     /// Every product of the zoo.
     pub fn all() -> [Family; 8] {
         [

@@ -577,6 +577,10 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
             // With --density-input the mixing model takes each sample's
             // (and on the device each reading's) bulk density.
             density_input: args.density_input,
+            lab_basis: match basis {
+                Basis::Dry => fringe_calibration::moisture::Basis::Dry,
+                _ => fringe_calibration::moisture::Basis::Wet,
+            },
             ..RelaxationOptions::new(b, p)
         })
     };
