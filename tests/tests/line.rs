@@ -308,12 +308,12 @@ fn device_clock_shows_and_sets_the_clock() {
     assert_eq!(o.code, 0, "{}", o.stderr);
     let v: serde_json::Value = serde_json::from_str(&o.stdout).unwrap();
     assert_eq!(v["clock_set"], false, "{v}");
-    // Setting needs the key.
+    // Setting needs the key: a missing input, like a missing port (exit 3).
     let o = run(
         &mut fringe(&["device", "clock", "--port", sim.port_str(), "--set"]),
         LIMIT,
     );
-    assert_fails(&o, 1, &["--key-file"]);
+    assert_fails(&o, 3, &["--key-file", "nothing sent"]);
     let key = key_file(&sim);
     let o = run(
         &mut fringe(&[
