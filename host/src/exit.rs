@@ -19,7 +19,7 @@ pub enum ExitCode {
     Failure = 1,
     /// 2: bad command-line arguments (clap's usage error, or a value out of its range, named with its flag).
     Usage = 2,
-    /// 3: a configuration, scenario, site, key, reference-sample, lab-pairs or product calibration file is missing or invalid (file, line, column and field named).
+    /// 3: a configuration, scenario, site, key, reference-sample, lab-pairs or product calibration file is missing or invalid (file, line, column and field named), or no port, database or device key is given.
     BadFile = 3,
     /// 4: the requested work finished but found problems (e.g. a broken audit chain).
     Problems = 4,

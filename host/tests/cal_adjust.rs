@@ -258,6 +258,12 @@ fn a_forced_correction_says_so_and_takes_the_lines_error() {
         sec(&child)
     );
     assert!(child.contains("uncertainty from the pairs' SEP"), "{child}");
+    // The intervals' t quantile has the SEP's degrees of freedom (10 pairs).
+    assert!(child.lines().any(|l| l == "dof = 9"), "{child}");
+    assert!(
+        child.contains("call for no correction"),
+        "the forced note says what the tests call for: {child}"
+    );
 
     let o = adjust(&["--alpha", "0.95"]);
     assert_eq!(o.status.code(), Some(2));

@@ -115,12 +115,13 @@ pub fn unexplained_error_limit(
     Ok(sec * f.inverse_cdf(1.0 - alpha).sqrt())
 }
 
-/// `num / den` for a t statistic, where a `den` at rounding level (below
-/// `tiny`) gives infinity for a `num` above it and 0 for one at it.
-fn t_ratio(num: f64, den: f64, tiny: f64) -> f64 {
-    if den > tiny {
+/// `num / den` for a t statistic, where a `den` at rounding level (at or
+/// below `tiny.1`) gives infinity for a `num` above its own (`tiny.0`) and
+/// 0 for one at it.
+fn t_ratio(num: f64, den: f64, tiny: (f64, f64)) -> f64 {
+    if den > tiny.1 {
         num / den
-    } else if num > tiny {
+    } else if num > tiny.0 {
         f64::INFINITY
     } else {
         0.0
@@ -163,10 +164,10 @@ pub fn bias_slope(lab: &[f64], predicted: &[f64], alpha: f64) -> Result<BiasSlop
         predicted.iter().sum::<f64>() / nf,
         lab.iter().sum::<f64>() / nf,
     );
-    // Rounding level of these values: far below any moisture a lab or a
-    // reading resolves.
-    let tiny = 1e-9 * mp.abs().max(ml.abs()).max(1.0);
-    let bias_t = t_ratio(bias.abs() * nf.sqrt(), sep, tiny * nf.sqrt());
+    // Rounding level of these values, an inline value being an f32 (about
+    // 6e-8 of it): far below any moisture a lab or a reading resolves.
+    let tiny = 1e-6 * mp.abs().max(ml.abs()).max(1.0);
+    let bias_t = t_ratio(bias.abs() * nf.sqrt(), sep, (tiny * nf.sqrt(), tiny));
     let (mut sxy, mut sxx) = (0.0, 0.0);
     for (p, r) in predicted.iter().zip(lab) {
         sxy += (p - mp) * (r - ml);
@@ -174,7 +175,7 @@ pub fn bias_slope(lab: &[f64], predicted: &[f64], alpha: f64) -> Result<BiasSlop
     }
     // Predictions that do not vary (a steady product read to the same
     // digit) or vary by rounding only determine no slope.
-    if !((sxx / (nf - 1.0)).sqrt() > 1e3 * tiny) {
+    if !((sxx / (nf - 1.0)).sqrt() > 10.0 * tiny) {
         return Err(StatsError::NoSpread {
             what: "predicted",
             n,
@@ -190,7 +191,11 @@ pub fn bias_slope(lab: &[f64], predicted: &[f64], alpha: f64) -> Result<BiasSlop
     let s_res = (rss / (nf - 2.0)).sqrt();
     let slope_se = s_res / sxx.sqrt();
     let ts = t_quantile(1.0 - alpha / 2.0, nf - 2.0)?;
-    let slope_t = t_ratio((slope - 1.0).abs(), slope_se, tiny / sxx.sqrt());
+    let slope_t = t_ratio(
+        (slope - 1.0).abs(),
+        slope_se,
+        (tiny / sxx.sqrt(), tiny / sxx.sqrt()),
+    );
     let chi = ChiSquared::new(nf - 1.0).map_err(|_| StatsError::TooFew { needed: 2, got: n })?;
     let sep_ci = (
         sep * ((nf - 1.0) / chi.inverse_cdf(1.0 - alpha / 2.0)).sqrt(),

@@ -191,8 +191,8 @@ pub fn basis_words(b: Basis) -> &'static str {
 
 /// The caution shown when a push changes the basis the line reports on:
 /// the same product then reads another number (at 20 % wet basis, 25 %
-/// dry), so the 4-20 mA span, the alarm limits and every receiver's scaling
-/// were set for the other one.
+/// dry), so the 4-20 mA span and every receiver's scaling were set for the
+/// other one (the monitor's and the gateway's alarm bands are converted).
 pub fn basis_caution(old: Basis, new: Basis) -> String {
     format!(
         "CAUTION: the line now reports on a {} where it reported on a {}: the same product reads another number \

@@ -2026,7 +2026,8 @@ pub fn adjust(
             Correction::None => {
                 "; forced with --correct: the tests at this alpha call for no correction"
             }
-            _ => "; forced with --correct: the tests at this alpha call for a bias correction only",
+            Correction::Bias => "; forced with --correct: the tests at this alpha call for a bias correction only",
+            Correction::BiasAndSlope => "; forced with --correct: the tests at this alpha call for a bias and slope correction",
         }
     } else {
         ""
@@ -2063,7 +2064,17 @@ pub fn adjust(
     new_file.prediction = file.prediction.clone();
     if let Some(p) = &mut new_file.prediction {
         // Intervals scale with the slope, and are no narrower than the
-        // line's error after the correction.
+        // line's error after the correction; where that sets them, their t
+        // quantile has its degrees of freedom (n - 1 for the SEP, n - 2
+        // for the residual SD after a slope correction).
+        let line_dof = match applied {
+            Correction::BiasAndSlope => tests.n.saturating_sub(2),
+            _ => tests.n.saturating_sub(1),
+        }
+        .max(1);
+        if line_sd > p.interval_sd * b.abs() {
+            p.dof = p.dof.min(line_dof);
+        }
         p.residual_sd = (p.residual_sd * b.abs()).max(line_sd);
         p.interval_sd = (p.interval_sd * b.abs()).max(line_sd);
     }

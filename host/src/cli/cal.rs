@@ -223,8 +223,8 @@ fn significance_level(s: &str) -> Result<f64, String> {
         Ok(v)
     } else if (0.5..1.0).contains(&v) {
         Err(format!(
-            "{s} is a confidence level, not a significance level: for {:.0} % confidence give {}",
-            100.0 * v,
+            "{s} is a confidence level, not a significance level: for {} % confidence give {}",
+            (100.0 * v * 1e4).round() / 1e4,
             ((1.0 - v) * 1e6).round() / 1e6
         ))
     } else {

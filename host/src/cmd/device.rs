@@ -596,9 +596,8 @@ pub struct ConfigSetOutcome {
 /// declined confirmation.
 pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     use fringe_device::guide::Guide as _;
-    let key = super::optional_key(a.key_file.as_deref(), cfg)?.ok_or_else(|| {
-        anyhow::anyhow!("changing the settings needs the device key: pass --key-file or set key_file in the line file")
-    })?;
+    let key = super::optional_key(a.key_file.as_deref(), cfg)?
+        .ok_or_else(|| crate::config::missing_key("changing the settings"))?;
     let db = super::db_path(a.db.as_deref(), cfg)?;
     let change = fringe_device::settings::SettingsChange {
         tag: a.tag.clone(),
