@@ -45,19 +45,6 @@ pub enum ConfigError {
     },
 }
 
-/// The error for a signed write without the device key: [`ConfigError::Missing`]
-/// (exit status 3, as a missing port or database), saying what needed it.
-pub fn missing_key(what: &str) -> anyhow::Error {
-    anyhow::Error::new(ConfigError::Missing {
-        what: "device key",
-        flag: "--key-file",
-        key: "key_file",
-    })
-    .context(format!(
-        "{what} needs the device key (a signed write); nothing sent"
-    ))
-}
-
 /// Alarm limits shown by `fringe monitor` (a reading outside is marked).
 pub use fringe_quality::limits::AlarmLimits;
 

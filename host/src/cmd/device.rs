@@ -288,7 +288,7 @@ pub fn clock(a: &crate::cli::ClockArgs, cfg: &LineConfig) -> anyhow::Result<()> 
         return Ok(());
     };
     let key = super::optional_key(a.key_file.as_deref(), cfg)?
-        .ok_or_else(|| crate::config::missing_key("setting the device clock"))?;
+        .ok_or_else(|| super::missing_key("setting the device clock"))?;
     // Given a time, keep its distance to now (the write takes a moment).
     let offset = target - host;
     let t = now_unix_ms() + if a.set { 0 } else { offset };
@@ -337,7 +337,7 @@ pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<
         .into());
     }
     let key = super::optional_key(a.key_file.as_deref(), cfg)?
-        .ok_or_else(|| crate::config::missing_key("sending a density"))?;
+        .ok_or_else(|| super::missing_key("sending a density"))?;
     let mut link = super::connect(&a.port, cfg)?;
     let serial = link.serial_number().to_string();
     match fringe_line::set_density(&mut link, &key, kg_m3, hold_ms) {
@@ -597,7 +597,7 @@ pub struct ConfigSetOutcome {
 pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     use fringe_device::guide::Guide as _;
     let key = super::optional_key(a.key_file.as_deref(), cfg)?
-        .ok_or_else(|| crate::config::missing_key("changing the settings"))?;
+        .ok_or_else(|| super::missing_key("changing the settings"))?;
     let db = super::db_path(a.db.as_deref(), cfg)?;
     let change = fringe_device::settings::SettingsChange {
         tag: a.tag.clone(),

@@ -61,6 +61,19 @@ pub fn connect(args: &PortArgs, cfg: &LineConfig) -> anyhow::Result<Link> {
     Ok(Link::serial(&port, baud, link_options(args))?)
 }
 
+/// The error for a signed write without the device key: [`crate::config::ConfigError::Missing`]
+/// (exit status 3, as a missing port or database), saying what needed it.
+pub fn missing_key(what: &str) -> anyhow::Error {
+    anyhow::Error::new(crate::config::ConfigError::Missing {
+        what: "device key",
+        flag: "--key-file",
+        key: "key_file",
+    })
+    .context(format!(
+        "{what} needs the device key (a signed write); nothing sent"
+    ))
+}
+
 /// The device key from `--key-file`, else the line file's `key_file`, if any.
 ///
 /// # Errors

@@ -16,7 +16,7 @@ use crate::terminal::Terminal;
 
 /// The device key from `--key-file` or the line file (required).
 fn key(k: &KeyArgs, cfg: &LineConfig, what: &str) -> anyhow::Result<fringe_protocol::auth::Key> {
-    super::optional_key(k.key_file.as_deref(), cfg)?.ok_or_else(|| crate::config::missing_key(what))
+    super::optional_key(k.key_file.as_deref(), cfg)?.ok_or_else(|| super::missing_key(what))
 }
 
 fn now_s() -> u64 {
