@@ -2119,12 +2119,14 @@ pub fn write_adjust(
         writeln!(w, "{v}")?;
         return Ok(());
     }
-    let conf = 100.0 * (1.0 - t.alpha);
+    // 95, or 99.9: as many digits as the level has (not 100 for 99.9).
+    let conf = (100.0 * (1.0 - t.alpha) * 1e4).round() / 1e4;
     writeln!(w, "{} lab pairs ({})", t.n, o.source)?;
     writeln!(
         w,
-        "  bias  {:+.3} % (predicted - lab), {conf:.0} % CI {:+.3}..{:+.3}; t {:.2} vs {:.2}: {}",
+        "  bias  {:+.3} % (predicted - lab; lab - inline {:+.3} % as the drift chart has it), {conf} % CI {:+.3}..{:+.3}; t {:.2} vs {:.2}: {}",
         t.bias,
+        -t.bias,
         t.bias_ci.0,
         t.bias_ci.1,
         t.bias_t,
@@ -2137,7 +2139,7 @@ pub fn write_adjust(
     )?;
     writeln!(
         w,
-        "  slope {:.4} (lab on predicted), {conf:.0} % CI {:.4}..{:.4}; t {:.2} vs {:.2}: {}",
+        "  slope {:.4} (lab on predicted), {conf} % CI {:.4}..{:.4}; t {:.2} vs {:.2}: {}",
         t.slope,
         t.slope_ci.0,
         t.slope_ci.1,
@@ -2151,7 +2153,7 @@ pub fn write_adjust(
     )?;
     writeln!(
         w,
-        "  SEP   {:.3} %, {conf:.0} % CI {:.3}..{:.3}; RMSEP {:.3} % (bias included)",
+        "  SEP   {:.3} %, {conf} % CI {:.3}..{:.3}; RMSEP {:.3} % (bias included)",
         t.sep, t.sep_ci.0, t.sep_ci.1, t.rmsep
     )?;
     if let Some(u) = o.unexplained {
