@@ -29,6 +29,9 @@
 //! node = "gateway-1"                  # Sparkplug edge node id
 //! json = false                        # true: plain JSON on {json_prefix}/{device}/reading instead
 //! json_prefix = "fringe"
+//! buffer_file = "/var/lib/fringe/fenwick.mqtt-outbox"
+//!                                     # the store-and-forward buffer [beside a SQLite store;
+//!                                     # beside this file with a postgres:// store]
 //!
 //! [alarm]                             # optional: limits for every device (as a line file's)
 //! moisture_low_pct = 11.0
@@ -175,6 +178,8 @@ struct RawMqtt {
     json: bool,
     #[serde(default)]
     json_prefix: Option<String>,
+    #[serde(default)]
+    buffer_file: Option<String>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -298,6 +303,10 @@ pub struct MqttSite {
     pub node: String,
     /// Plain JSON topics under this prefix instead of Sparkplug B.
     pub json_prefix: Option<String>,
+    /// The store-and-forward buffer's file, where the site file names one
+    /// (a gateway whose site file lies in a folder it may not write, with
+    /// a PostgreSQL store).
+    pub buffer_file: Option<PathBuf>,
 }
 
 /// A checked site file. Its `Debug` form never shows a password of the
@@ -646,6 +655,7 @@ impl Site {
                     json_prefix: m
                         .json
                         .then(|| m.json_prefix.unwrap_or_else(|| "fringe".into())),
+                    buffer_file: m.buffer_file.as_deref().map(resolve),
                 })
             }
         };
@@ -897,6 +907,24 @@ baud = 9600
         );
         assert_eq!(s.drift_every, Some(Duration::from_secs(60)));
         assert!(s.web.is_none() && s.mqtt.is_none());
+        // The MQTT buffer where the site file names one (from its folder
+        // when relative), else none (the gateway puts it beside the store).
+        let with = |extra: &str| {
+            let text = GOOD.replace(
+                "[[device]]\nunit = 1",
+                &format!("[mqtt]\nbroker = \"127.0.0.1:1883\"\nclient_id = \"gw\"\n{extra}\n[[device]]\nunit = 1"),
+            );
+            parse(&text).unwrap().mqtt.unwrap().buffer_file
+        };
+        assert_eq!(with(""), None);
+        assert_eq!(
+            with("buffer_file = \"/var/lib/fringe/t.mqtt-outbox\"\n"),
+            Some(PathBuf::from("/var/lib/fringe/t.mqtt-outbox"))
+        );
+        assert_eq!(
+            with("buffer_file = \"buf/t.mqtt-outbox\"\n"),
+            Some(PathBuf::from("/plant/buf/t.mqtt-outbox"))
+        );
     }
 
     #[test]

@@ -4,15 +4,16 @@
 //! the calibration in force, updated every 2 s without a reload.
 //!
 //! Served by `tiny_http` from the binary itself (page, script and style are
-//! compiled in: a plant's control-room PC often has no internet), on
-//! localhost unless the site file says otherwise. Only `GET` and `HEAD`
-//! are answered; nothing on the page changes a device.
+//! compiled in: a plant's control-room PC often has no internet), on the
+//! address of the site file's `[web] listen`. Only `GET` and `HEAD` are
+//! answered (405 otherwise); nothing on the page changes a device. The
+//! page asks for `/api/site` every 2 s.
 //!
 //! ```text
 //! GET /            the page
 //! GET /app.js      its script
 //! GET /style.css   its style
-//! GET /api/site    every device as JSON (docs/JSON.md, "live page")
+//! GET /api/site    every device as JSON (the page's own; docs/GATEWAY.md, "The live page")
 //! ```
 
 use std::io;

@@ -454,8 +454,16 @@ fn start_mqtt(
         keep_alive: Duration::from_secs(30),
         density,
     };
-    let outbox = fringe_gateway::mqtt::outbox_path_beside(store);
-    Ok(Publisher::start(config, &outbox, Vec::new())?)
+    let outbox = m
+        .buffer_file
+        .clone()
+        .unwrap_or_else(|| fringe_gateway::mqtt::outbox_path_beside(store));
+    Publisher::start(config, &outbox, Vec::new()).with_context(|| {
+        format!(
+            "opening the MQTT store-and-forward buffer {} (set [mqtt] buffer_file in the site file to a file in a folder the gateway may write)",
+            outbox.display()
+        )
+    })
 }
 
 /// What the person or the script sees.
