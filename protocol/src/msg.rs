@@ -111,9 +111,11 @@ bitflags! {
         const NO_PRODUCT = 1 << 1;
         /// Moisture or an input lies outside the product calibration's valid range.
         const OUT_OF_RANGE = 1 << 2;
-        /// Temperature outside the calibrated range or the sensor's range.
+        /// Temperature outside the product calibration's range (a reading
+        /// outside the sensor's own range is `TEMP_SENSOR_FAULT`).
         const TEMP_OUT_OF_RANGE = 1 << 3;
-        /// The relaxation inversion did not converge within its budget.
+        /// The relaxation inversion did not converge within its budget, was
+        /// singular, or had no valid input.
         const FIT_NOT_CONVERGED = 1 << 4;
         /// Electrode open or short detected.
         const ELECTRODE_FAULT = 1 << 5;
