@@ -72,6 +72,12 @@ use crate::storage::{key, Storage, StorageError, StoredIdentity};
 pub const FIRMWARE_VERSION: [u8; 3] = [0, 1, 0];
 /// Failed writes in a row the device takes without holding writes off.
 pub const FREE_WRITE_FAILURES: u32 = 3;
+/// The write counter a device takes when its settings map was erased as
+/// damaged and the counter with it: far past any it can have accepted
+/// (a host signs each write with the stored counter plus one; 2^24 writes
+/// would be one every 40 s for 20 years), so a write captured before is
+/// still refused as a replay.
+pub const REPAIR_COUNTER_JUMP: u32 = 1 << 24;
 /// Longest hold after failed writes, ms.
 pub const MAX_WRITE_HOLD_MS: u64 = 64_000;
 
@@ -1651,7 +1657,7 @@ impl<S: NorFlash> Booted<S> {
     ) -> Result<Self, BootError> {
         config.check()?;
         let (mut storage, report) = Storage::mount(flash)?;
-        let stored = Stored::load(&mut storage, &config, report.repaired, reset_cause)?;
+        let stored = Stored::load(&mut storage, &config, report, reset_cause)?;
         Ok(Self {
             storage,
             stored,
@@ -1685,7 +1691,7 @@ impl Stored {
     fn load<S: NorFlash>(
         storage: &mut Storage<S>,
         config: &DeviceConfig,
-        repaired: bool,
+        report: crate::storage::MountReport,
         reset_cause: ResetCause,
     ) -> Result<Self, StorageError> {
         let ident = match storage.get::<StoredIdentity>(key::IDENTITY)? {
@@ -1699,9 +1705,33 @@ impl Stored {
                 id
             }
         };
-        let boot = storage.get::<u32>(key::BOOT)?.unwrap_or(0).wrapping_add(1);
+        // The boot number goes on past the newest logged reading's, so a
+        // sequence never repeats even where the stored number was lost (a
+        // settings map erased as damaged, or a value that does not decode).
+        let logged_boot = storage.log_last().map_or(0, |s| s.boot);
+        let boot = storage
+            .get::<u32>(key::BOOT)?
+            .unwrap_or(0)
+            .max(logged_boot)
+            .wrapping_add(1);
         storage.put(key::BOOT, &boot)?;
-        let write_counter = storage.get::<u32>(key::WRITE_COUNTER)?.unwrap_or(0);
+        // A write counter lost with a damaged settings map is moved on past
+        // any this device can have accepted, so a write captured before is
+        // still a replay (a host asks for the counter before it signs). Lost
+        // means absent on a device that has lived: the map was erased, or
+        // the logs hold something (a power cut between the erase and this
+        // store leaves the map empty but not damaged). A new device stores
+        // 0, so that its counter is never absent again.
+        let lived =
+            report.settings_lost || storage.log_last().is_some() || storage.last_event().is_some();
+        let write_counter = match storage.get::<u32>(key::WRITE_COUNTER)? {
+            Some(c) => c,
+            None => {
+                let c = if lived { REPAIR_COUNTER_JUMP } else { 0 };
+                storage.put(key::WRITE_COUNTER, &c)?;
+                c
+            }
+        };
         let cell = storage
             .cell_cal()?
             .filter(|c| check_cell(c, &config.measure.freqs_hz).is_ok());
@@ -1743,7 +1773,7 @@ impl Stored {
             // Not fatal, as in `log_event`.
             let _ = storage.append_event(&ev);
         };
-        if repaired {
+        if report.repaired {
             boot_event(storage, EventKind::StorageRepaired);
         }
         boot_event(storage, EventKind::Boot { reset_cause });

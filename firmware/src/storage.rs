@@ -185,6 +185,10 @@ impl Layout {
 pub struct MountReport {
     /// A region was damaged and erased (its contents are lost).
     pub repaired: bool,
+    /// The region erased was the settings map: the boot and write counters
+    /// it held are lost with the rest (the device then moves them on past
+    /// any value they can have had: `device::REPAIR_COUNTER_JUMP`).
+    pub settings_lost: bool,
 }
 
 /// Bookkeeping of a ring, rebuilt at mount by one scan.
@@ -263,6 +267,7 @@ impl<S: NorFlash> Storage<S> {
         if matches!(s.get::<u32>(key::BOOT), Err(StorageError::Corrupted)) {
             s.erase(s.layout.map.clone())?;
             report.repaired = true;
+            report.settings_lost = true;
         }
         match s.scan(false) {
             Ok(st) => s.events = st,
@@ -472,6 +477,11 @@ impl<S: NorFlash> Storage<S> {
     /// `(first seq, readings)` in the log; `None` when empty.
     pub fn log_span(&self) -> Option<(Seq, u32)> {
         (self.log.len > 0).then(|| (Seq::from_u64(self.log.first), self.log.len))
+    }
+
+    /// Sequence of the newest reading in the log, if any.
+    pub fn log_last(&self) -> Option<Seq> {
+        (self.log.len > 0).then(|| Seq::from_u64(self.log.last))
     }
 
     /// Number of the last stored event, if any.

@@ -435,3 +435,101 @@ fn a_host_below_1_3_reads_a_hold_as_a_bad_tag() {
     want.push(AuthFailure::Throttled);
     assert_eq!(reasons(&mut b), want);
 }
+
+/// A settings map damaged beyond repair is erased at boot, and the write
+/// and boot counters it held with it. The device then moves its write
+/// counter far past any it can have accepted (`REPAIR_COUNTER_JUMP`) and
+/// its boot number past the newest logged reading's: a write captured
+/// before the damage is still refused as a replay, and no reading's
+/// sequence repeats. Before, both restarted from 0, so every captured
+/// write was accepted again. (The damage: every page of the map marked
+/// closed, which sequential-storage reports as corrupted; a consistency
+/// test of the device's own rule.)
+#[test]
+fn a_write_captured_before_a_damaged_settings_map_stays_a_replay() {
+    use embedded_storage::nor_flash::NorFlash;
+    use fringe_firmware::device::REPAIR_COUNTER_JUMP;
+    let mut b = Bench::new(31, Scenario::default());
+    b.settle();
+    let good = Request::WriteCellCal(cell(2.1));
+    let captured = signed(&mut b, &good);
+    let f = b.ask_with(good.clone(), Some(captured));
+    assert!(
+        matches!(
+            f,
+            DeviceFrame::Response {
+                response: Response::Ack,
+                ..
+            }
+        ),
+        "{f:?}"
+    );
+    let last = b.measure().seq;
+    let map = b.dev.storage_mut().layout().map.clone();
+    let (_, mut flash, _) = b.dev.into_parts();
+    let (page, word) = (Flash::ERASE_SIZE as u32, Flash::WRITE_SIZE);
+    for p in (map.start..map.end).step_by(page as usize) {
+        for at in [p, p + page - word as u32] {
+            flash
+                .write(at, &vec![0u8; word])
+                .expect("mark the page closed");
+        }
+    }
+    let mut b = Bench::on_flash(32, Scenario::default(), flash);
+    b.settle();
+    assert!(
+        b.events()
+            .iter()
+            .any(|e| matches!(e.kind, EventKind::StorageRepaired)),
+        "the repair is logged"
+    );
+    let status = match b.ok(Request::Status) {
+        Response::Status(s) => s,
+        other => panic!("{other:?}"),
+    };
+    assert_eq!(status.write_counter, REPAIR_COUNTER_JUMP);
+    let now = b.measure().seq;
+    assert!(
+        now.boot > last.boot,
+        "boot {} after {}",
+        now.boot,
+        last.boot
+    );
+    // The captured write, replayed: refused as a replay, nothing stored.
+    let f = b.ask_with(good, Some(captured));
+    let (code, why) = refusal(&f);
+    assert_eq!(code, ErrorCode::AuthFailed, "{why}");
+    assert!(
+        auth_failures(&mut b)
+            .iter()
+            .any(|(r, c)| *r == AuthFailure::Replay && *c == 101),
+        "logged as a replay"
+    );
+    assert_eq!(stored_cell(&mut b), None, "the erased map stays without it");
+    // A host that asks for the counter signs the next one and is taken.
+    b.counter = status.write_counter;
+    assert_eq!(b.ok(Request::WriteCellCal(cell(2.2))), Response::Ack);
+}
+
+/// The same where the map is found erased, not damaged (a power cut
+/// between the repair's erase and the counter's store): a device whose
+/// logs show it has lived takes the jump too. A new device starts at 0.
+#[test]
+fn an_erased_settings_map_on_a_device_that_has_lived_moves_the_counter_on() {
+    use embedded_storage::nor_flash::NorFlash;
+    use fringe_firmware::device::REPAIR_COUNTER_JUMP;
+    let mut b = Bench::new(33, Scenario::default());
+    b.settle();
+    let counter = |b: &mut Bench| match b.ok(Request::Status) {
+        Response::Status(s) => s.write_counter,
+        other => panic!("{other:?}"),
+    };
+    assert_eq!(counter(&mut b), 0, "a new device");
+    assert_eq!(b.ok(Request::WriteCellCal(cell(2.1))), Response::Ack);
+    let map = b.dev.storage_mut().layout().map.clone();
+    let (_, mut flash, _) = b.dev.into_parts();
+    flash.erase(map.start, map.end).expect("erase the map");
+    let mut b = Bench::on_flash(34, Scenario::default(), flash);
+    b.settle();
+    assert_eq!(counter(&mut b), REPAIR_COUNTER_JUMP);
+}
