@@ -1066,7 +1066,15 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
             // Every calibration id the database had a record of at the
             // export (a record added since does not make the list wrong).
             let mut recorded: std::collections::BTreeSet<String> = Default::default();
+            // The database's last position, and the hash of its record at
+            // the export's head: a database cut back to before that head
+            // (its own chain still whole) is found by these.
+            let (mut db_last, mut head_hash) = (0u64, None::<String>);
             store.for_each_record(&mut |r| {
+                db_last = db_last.max(r.position);
+                if r.position == statements.db_head {
+                    head_hash = Some(chain::hex(&r.hash));
+                }
                 if r.table == Table::Calibrations && r.position <= statements.db_head {
                     if let Some(Value::Integer(id)) = r.value_of("cal_id") {
                         recorded.insert(cal_id_text(*id));
@@ -1130,6 +1138,23 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
                 report
                     .problems
                     .push(Problem::DiffersFromDatabase { position: lo, what });
+            }
+            let head = statements.db_head;
+            if head > 0 && db_last < head {
+                report.problems.push(Problem::DiffersFromDatabase {
+                    position: db_last + 1,
+                    what: format!(
+                        "the database ends at position {db_last}, but it reached {head} when the bundle was exported (manifest db_head_position): records {}..={head} were removed",
+                        db_last + 1
+                    ),
+                });
+            } else if head > 0 && head_hash.as_deref() != Some(statements.db_head_hash.as_str()) {
+                report.problems.push(Problem::DiffersFromDatabase {
+                    position: head,
+                    what: format!(
+                        "the database's record at position {head}, the head when the bundle was exported, is not the one the manifest names (db_head_hash)"
+                    ),
+                });
             }
             if seen < bundle_records.len() {
                 let db_positions_missing = bundle_records.len() - seen;
@@ -1346,6 +1371,7 @@ fn verify_bundle(
     let mut statements = CalStatements {
         named: m.calibrations_without_record.clone(),
         db_head: m.db_head_position,
+        db_head_hash: m.db_head_hash.clone(),
         ..CalStatements::default()
     };
     {
@@ -1421,6 +1447,8 @@ struct CalStatements {
     not_in_force: Vec<String>,
     /// The database's head at export: records after it came later.
     db_head: u64,
+    /// The hash of the record at that head (hex), as the manifest gives it.
+    db_head_hash: String,
 }
 
 fn check_csv(
@@ -1876,6 +1904,32 @@ mod tests {
         let store = Store::open_read_only(&db).expect("ro");
         let r = verify(Some(&out), Some(&store)).expect("verify");
         assert!(r.ok(), "{:?}", r.problems);
+        // The database's head at the export, against the database: one that
+        // ends before it (records after the bundle cut away, its own chain
+        // whole again) or holds another record there is reported. Shown
+        // here by the manifest's statement (not hashed) against the
+        // untouched database.
+        for (pos, hash, want) in [
+            (
+                m.db_head_position + 5,
+                m.db_head_hash.clone(),
+                "were removed",
+            ),
+            (
+                m.db_head_position,
+                "00".repeat(32),
+                "is not the one the manifest names",
+            ),
+        ] {
+            let mut edited = m.clone();
+            edited.db_head_position = pos;
+            edited.db_head_hash = hash;
+            let to = dir.path().join(format!("head-{want}").replace(' ', "-"));
+            let copy = with_manifest(&out, &to, &edited);
+            let r = verify(Some(&copy), Some(&store)).expect("verify");
+            let said: Vec<String> = r.problems.iter().map(|p| p.to_string()).collect();
+            assert!(said.iter().any(|s| s.contains(want)), "{want}: {said:?}");
+        }
         // Refuses to overwrite.
         assert!(matches!(
             export(&store, "x", Some(T0), T0 + 1, &out),
