@@ -835,6 +835,31 @@ fn lab_times_with_offsets_and_local_times_and_bad_times_naming_the_field() {
         let o = add(bad, "G-9");
         assert_fails(&o, 2, &["--time", bad, "RFC 3339", "local time"]);
     }
+    // A mistyped serial is refused, not added to the chain as a device of
+    // its own (after which every lab add without --serial was refused as
+    // ambiguous).
+    let o = run(
+        &mut fringe(&[
+            "lab",
+            "add",
+            "--db",
+            db.to_str().unwrap(),
+            "--serial",
+            "HGM-L2-0360",
+            "--time",
+            "2026-12-01T09:40Z",
+            "--moisture",
+            "14.2",
+            "--method",
+            "oven",
+            "--operator",
+            "J. Lindqvist",
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 2, &["--serial HGM-L2-0360", "HGM-L2-0306"]);
+    let o = add("2026-12-01T09:41Z", "G-10");
+    assert_eq!(o.code, 0, "still one device: {}", o.stderr);
 }
 
 /// A product calibration selected on the device while `fringe monitor`

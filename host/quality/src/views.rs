@@ -65,11 +65,29 @@ pub fn only_device(
     store: &(impl RecordRead + ?Sized),
     serial: Option<&str>,
 ) -> Result<String, ViewError> {
-    if let Some(s) = serial {
-        return Ok(s.to_string());
-    }
     let d = store.devices()?;
     let db = store.path().display().to_string();
+    if let Some(s) = serial {
+        // Only a device the store knows: a mistyped serial would otherwise
+        // add a device to the append-only chain for good.
+        if d.iter().any(|x| x.serial == s) {
+            return Ok(s.to_string());
+        }
+        return Err(ViewError::BadValue(format!(
+            "--serial {s}: no such device in {db} ({}); check the serial",
+            if d.is_empty() {
+                "none yet: connect the device once (fringe monitor) first".to_string()
+            } else {
+                format!(
+                    "its devices: {}",
+                    d.iter()
+                        .map(|x| x.serial.as_str())
+                        .collect::<Vec<_>>()
+                        .join(", ")
+                )
+            }
+        )));
+    }
     match d.as_slice() {
         [one] => Ok(one.serial.clone()),
         [] => Err(ViewError::Device {
