@@ -57,6 +57,7 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         operator: a.operator.clone(),
         sample_id: a.sample_id.clone(),
         match_within_s: a.match_within_s,
+        supersedes: a.supersedes,
     };
     grab.validate()?;
     let db = db_of(a.db.as_ref(), cfg)?;

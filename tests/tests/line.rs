@@ -860,6 +860,40 @@ fn lab_times_with_offsets_and_local_times_and_bad_times_naming_the_field() {
     assert_fails(&o, 2, &["--serial HGM-L2-0360", "HGM-L2-0306"]);
     let o = add("2026-12-01T09:41Z", "G-10");
     assert_eq!(o.code, 0, "still one device: {}", o.stderr);
+    // The same sample id again with another value: refused, naming the
+    // record and the flag that corrects it; corrected with that flag.
+    let again = |extra: &[&str]| {
+        let mut a = vec![
+            "lab",
+            "add",
+            "--db",
+            db.to_str().unwrap(),
+            "--time",
+            "2026-12-01T09:41Z",
+            "--moisture",
+            "14.9",
+            "--method",
+            "oven 130 C 2 h",
+            "--operator",
+            "J. Lindqvist",
+            "--sample-id",
+            "G-10",
+        ];
+        a.extend_from_slice(extra);
+        run(&mut fringe(&a), LIMIT)
+    };
+    let o = again(&[]);
+    assert_ne!(o.code, 0, "{}", o.stdout);
+    let pos: String = o
+        .stderr
+        .split("--supersedes ")
+        .nth(1)
+        .unwrap_or_else(|| panic!("names the flag: {}", o.stderr))
+        .chars()
+        .take_while(char::is_ascii_digit)
+        .collect();
+    let o = again(&["--supersedes", &pos]);
+    assert_eq!(o.code, 0, "corrected: {}", o.stderr);
 }
 
 /// A product calibration selected on the device while `fringe monitor`

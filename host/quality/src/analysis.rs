@@ -274,9 +274,14 @@ impl LineData {
             .collect();
         let rows = &self.rows;
         let cals = &self.cals;
-        self.lab = store
-            .lab_samples(&self.serial)?
+        // A corrected lab sample counts once, with its correction's values:
+        // the record another one supersedes is left out (both stay stored).
+        let samples = store.lab_samples(&self.serial)?;
+        let superseded: std::collections::HashSet<u64> =
+            samples.iter().filter_map(|l| l.sample.supersedes).collect();
+        self.lab = samples
             .into_iter()
+            .filter(|l| !superseded.contains(&l.position))
             .map(|l| {
                 let matched = l.sample.reading.and_then(|seq| {
                     rows.binary_search_by_key(&seq, |r| r.reading.seq)
@@ -587,5 +592,35 @@ mod tests {
             "{}",
             old.lab_pct
         );
+    }
+
+    /// A lab sample corrected by a record that supersedes it counts once,
+    /// with the correction's value (both records stay stored).
+    #[test]
+    fn a_corrected_lab_sample_counts_once_with_its_correction() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = store_of_l2(dir.path());
+        add(&mut store, 0, 10);
+        let old = store.lab_samples("L2").unwrap()[0].position;
+        store
+            .insert_lab_sample(
+                "L2",
+                &NewLabSample {
+                    sample_id: "G-9".into(),
+                    taken_unix_ms: reading(9).time_ms as i64,
+                    product: None,
+                    lab_moisture_pct: 14.8,
+                    basis: "wet".into(),
+                    method: None,
+                    reading: Some(reading(9).seq),
+                    note: None,
+                    supersedes: Some(old),
+                },
+            )
+            .unwrap();
+        assert_eq!(store.lab_samples("L2").unwrap().len(), 2, "both stored");
+        let lab = load(&store, Some("L2")).unwrap().lab;
+        assert_eq!(lab.len(), 1, "{lab:?}");
+        assert_eq!(lab[0].lab_pct, 14.8);
     }
 }

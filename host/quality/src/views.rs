@@ -124,6 +124,9 @@ pub struct GrabSample {
     pub sample_id: Option<String>,
     /// Furthest a matched reading may lie from `time_ms`, s.
     pub match_within_s: i64,
+    /// The chain position of the lab sample this one corrects (the old
+    /// record stays; the store checks that it is a lab sample).
+    pub supersedes: Option<u64>,
 }
 
 /// What recording a grab sample did.
@@ -204,7 +207,7 @@ impl GrabSample {
                 method: Some(self.method.clone()),
                 reading: matched.map(|(r, _)| r.reading.seq),
                 note: Some(format!("operator: {}", self.operator)),
-                supersedes: None,
+                supersedes: self.supersedes,
             },
         )?;
         Ok(GrabRecorded {

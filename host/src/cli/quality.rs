@@ -46,6 +46,11 @@ pub struct LabAddArgs {
     /// The lab's sample id [default: LAB-<time>].
     #[arg(long)]
     pub sample_id: Option<String>,
+    /// Correct the lab sample recorded at this chain position (the refusal
+    /// of a repeated sample id names it): the old record stays, the new
+    /// one says it supersedes it.
+    #[arg(long, value_name = "POSITION")]
+    pub supersedes: Option<u64>,
     /// Device serial [default: the database's only device].
     #[arg(long)]
     pub serial: Option<String>,

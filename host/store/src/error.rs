@@ -72,7 +72,7 @@ pub enum StoreError {
         path: PathBuf,
     },
     /// A lab sample id was recorded before with other values.
-    #[error("lab sample {sample_id:?} of {serial} is already recorded (position {position}) with other values; to correct it, record it again with supersedes = {position}")]
+    #[error("lab sample {sample_id:?} of {serial} is already recorded (position {position}) with other values; to correct it, record it again superseding it (fringe lab add ... --supersedes {position})")]
     SampleConflict {
         /// Device serial.
         serial: String,
