@@ -359,14 +359,21 @@ fn a_range_and_a_device_select_by_wall_clock_time() {
     assert!(!out.with_file_name("a.jsonl.partial").exists());
 
     // The same range of both devices to stdout, as CSV: PX-B's readings at
-    // T0 + 0.5, 2.5, ... s within it are those at 4.5, 6.5 and 8.5 s.
+    // T0 + 0.5, 2.5, ... s within it are those at 4.5, 6.5, 8.5 and 10.5
+    // s: a --to given to the second includes that second, shown as
+    // 06:00:10 in the export (before, the reading at 10.5 s was left out).
     let o = run(
         &mut fringe(&["export", "--db", s(&db), "--from", from, "--to", to]),
         LIMIT,
     );
     assert_eq!(o.code, 0, "{}", o.stderr);
-    assert_eq!(o.stdout.lines().count(), 1 + 8 + 3, "{}", o.stdout);
-    assert!(o.stderr.contains("exported 11 readings"), "{}", o.stderr);
+    assert_eq!(o.stdout.lines().count(), 1 + 8 + 4, "{}", o.stdout);
+    assert!(o.stderr.contains("exported 12 readings"), "{}", o.stderr);
+    assert!(
+        o.stdout.contains("PX-B,4,5,2026-11-30T06:00:10+00:00"),
+        "{}",
+        o.stdout
+    );
     assert!(
         o.stderr.contains("3 readings without a wall-clock time"),
         "{}",

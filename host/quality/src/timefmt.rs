@@ -117,6 +117,53 @@ pub fn parse_time(s: &str) -> Result<i64, String> {
     parse_time_in(s, &TimeZone::system())
 }
 
+/// The end of a range a person typed: the last millisecond of the time as
+/// precise as it was written. A time to the second includes that whole
+/// second (the exports show whole seconds, so the row shown as `06:01:30`
+/// is in a range that ends at `06:01:30`), to the minute that minute, a
+/// date alone that whole local day; milliseconds since the epoch are
+/// taken as they are.
+///
+/// # Errors
+/// As [`parse_time`].
+pub fn parse_time_end(s: &str) -> Result<i64, String> {
+    parse_time_end_in(s, &TimeZone::system())
+}
+
+/// [`parse_time_end`] with times without an offset taken in `tz`.
+///
+/// # Errors
+/// As [`parse_time`].
+pub fn parse_time_end_in(s: &str, tz: &TimeZone) -> Result<i64, String> {
+    let start = parse_time_in(s, tz)?;
+    let t = s.trim().replacen(' ', "T", 1);
+    if t.chars().all(|c| c.is_ascii_digit()) {
+        return Ok(start);
+    }
+    if t.len() == 10 {
+        // A date alone: up to the next local midnight (23 or 25 hours on
+        // the days the clocks change).
+        let next = t
+            .parse::<jiff::civil::Date>()
+            .ok()
+            .and_then(|d| d.tomorrow().ok())
+            .map(|d| parse_time_in(&d.to_string(), tz));
+        return match next {
+            Some(Ok(n)) => Ok(n - 1),
+            _ => Ok(start + 86_399_999),
+        };
+    }
+    let time = t.get(11..).unwrap_or("");
+    let end = time.find(['Z', 'z', '+', '-']).unwrap_or(time.len());
+    let clock = &time[..end];
+    let unit_ms: i64 = match (clock.matches(':').count(), clock.split_once('.')) {
+        (1, _) => 60_000,
+        (_, Some((_, frac))) => 10i64.pow(3u32.saturating_sub(frac.len() as u32)),
+        _ => 1_000,
+    };
+    Ok(start + unit_ms - 1)
+}
+
 /// [`parse_time`] with times without an offset taken in `tz`.
 ///
 /// # Errors
@@ -177,6 +224,24 @@ mod tests {
 
     fn berlin() -> TimeZone {
         TimeZone::get("Europe/Berlin").expect("tz database (Debian tzdata)")
+    }
+
+    /// The end of a range is the last millisecond of what was written
+    /// (worked by hand: 2026-12-01 is 1796083200000 ms; Berlin is UTC+1
+    /// then, and 2026-03-29 has 23 hours there, the clocks going forward).
+    #[test]
+    fn a_range_end_includes_what_was_written() {
+        let b = berlin();
+        let z = |s| parse_time_end_in(s, &b).unwrap();
+        assert_eq!(z("2026-12-01T06:01:30Z"), 1796083200000 + 21_690_000 + 999);
+        assert_eq!(z("2026-12-01T06:01Z"), 1796083200000 + 21_660_000 + 59_999);
+        assert_eq!(z("2026-12-01T06:01:30.5Z"), 1796083200000 + 21_690_500 + 99);
+        assert_eq!(z("2026-12-01T06:01:30.250Z"), 1796083200000 + 21_690_250);
+        assert_eq!(z("1796083200000"), 1796083200000);
+        // A local date: its midnight to the next, less 1 ms.
+        assert_eq!(z("2026-12-01"), 1796083200000 - 3_600_000 + 86_400_000 - 1);
+        let short = z("2026-03-29") - parse_time_in("2026-03-29", &b).unwrap() + 1;
+        assert_eq!(short, 23 * 3_600_000);
     }
 
     #[test]

@@ -1,5 +1,5 @@
 //! The command lines of `fringe lab`, `drift`, `report` and `audit`.
-use crate::timefmt::parse_time;
+use crate::timefmt::{parse_time, parse_time_end};
 use clap::{Args, Subcommand};
 use std::path::PathBuf;
 
@@ -161,8 +161,10 @@ pub struct AuditExportArgs {
     /// re-based wall-clock time.
     #[arg(long, value_name = "T", value_parser = parse_time)]
     pub from: Option<i64>,
-    /// End of the range [default: now]; as --from.
-    #[arg(long, value_name = "T", value_parser = parse_time)]
+    /// End of the range [default: now], included as written: to the second
+    /// the whole second, to the minute the whole minute, a date its whole
+    /// day; otherwise as --from.
+    #[arg(long, value_name = "T", value_parser = parse_time_end)]
     pub to: Option<i64>,
     /// Output folder (created; must not hold files).
     #[arg(long, value_name = "DIR")]
@@ -202,8 +204,10 @@ pub struct ExportArgs {
     /// with no wall-clock time at all are left out of a range and counted.
     #[arg(long, value_name = "T", value_parser = parse_time)]
     pub from: Option<i64>,
-    /// Last time exported (included) [default: the last record]; as --from.
-    #[arg(long, value_name = "T", value_parser = parse_time)]
+    /// Last time exported (included as written: to the second the whole
+    /// second, as the export shows times; to the minute the whole minute; a
+    /// date its whole day) [default: the last record]; as --from.
+    #[arg(long, value_name = "T", value_parser = parse_time_end)]
     pub to: Option<i64>,
     /// Device serial; repeat for several [default: every device of the database].
     #[arg(long = "device", value_name = "SERIAL")]
