@@ -72,12 +72,20 @@ use crate::storage::{key, Storage, StorageError, StoredIdentity};
 pub const FIRMWARE_VERSION: [u8; 3] = [0, 1, 0];
 /// Failed writes in a row the device takes without holding writes off.
 pub const FREE_WRITE_FAILURES: u32 = 3;
-/// The write counter a device takes when its settings map was erased as
-/// damaged and the counter with it: far past any it can have accepted
-/// (a host signs each write with the stored counter plus one; 2^24 writes
-/// would be one every 40 s for 20 years), so a write captured before is
-/// still refused as a replay.
+/// The least write counter a device takes when its settings map was
+/// erased as damaged and the counter with it: far past any it can have
+/// accepted (a host signs each write with the stored counter plus one;
+/// 2^24 writes would be one every 40 s for 20 years), so a write captured
+/// before is still refused as a replay. See [`repair_counter`].
 pub const REPAIR_COUNTER_JUMP: u32 = 1 << 24;
+
+/// The write counter after a repair at boot number `boot`:
+/// [`REPAIR_COUNTER_JUMP`] plus 4,096 per boot. Boot numbers never repeat,
+/// so a second repair moves the counter past the first one's as long as
+/// fewer than 4,096 signed writes a boot were accepted between them.
+pub const fn repair_counter(boot: u32) -> u32 {
+    REPAIR_COUNTER_JUMP.saturating_add(boot.saturating_mul(4096))
+}
 /// Longest hold after failed writes, ms.
 pub const MAX_WRITE_HOLD_MS: u64 = 64_000;
 
@@ -1694,7 +1702,9 @@ impl Stored {
         report: crate::storage::MountReport,
         reset_cause: ResetCause,
     ) -> Result<Self, StorageError> {
-        let ident = match storage.get::<StoredIdentity>(key::IDENTITY)? {
+        let had_identity = storage.get::<StoredIdentity>(key::IDENTITY)?;
+        let lived_before = had_identity.is_some() || storage.get::<u32>(key::BOOT)?.is_some();
+        let ident = match had_identity {
             Some(id) => id,
             None => {
                 let id = StoredIdentity {
@@ -1705,10 +1715,15 @@ impl Stored {
                 id
             }
         };
-        // The boot number goes on past the newest logged reading's, so a
-        // sequence never repeats even where the stored number was lost (a
-        // settings map erased as damaged, or a value that does not decode).
-        let logged_boot = storage.log_last().map_or(0, |s| s.boot);
+        // The boot number goes on past the newest logged reading's and
+        // event's, so a sequence never repeats even where the stored number
+        // was lost (a settings map erased as damaged, or a value that does
+        // not decode; a device may keep no reading log).
+        let event_boot = match storage.last_event() {
+            Some(n) => storage.read_events(n, 1)?.0.first().map_or(0, |e| e.boot),
+            None => 0,
+        };
+        let logged_boot = storage.log_last().map_or(0, |s| s.boot).max(event_boot);
         let boot = storage
             .get::<u32>(key::BOOT)?
             .unwrap_or(0)
@@ -1718,16 +1733,19 @@ impl Stored {
         // A write counter lost with a damaged settings map is moved on past
         // any this device can have accepted, so a write captured before is
         // still a replay (a host asks for the counter before it signs). Lost
-        // means absent on a device that has lived: the map was erased, or
-        // the logs hold something (a power cut between the erase and this
-        // store leaves the map empty but not damaged). A new device stores
-        // 0, so that its counter is never absent again.
-        let lived =
-            report.settings_lost || storage.log_last().is_some() || storage.last_event().is_some();
+        // means absent on a device that has lived: the map was erased, its
+        // identity or boot number was stored, or the logs hold something (a
+        // power cut between the erase and this store leaves the map empty
+        // or half written but not damaged). A new device stores 0, so that
+        // its counter is never absent again.
+        let lived = report.settings_lost
+            || lived_before
+            || storage.log_last().is_some()
+            || storage.last_event().is_some();
         let write_counter = match storage.get::<u32>(key::WRITE_COUNTER)? {
             Some(c) => c,
             None => {
-                let c = if lived { REPAIR_COUNTER_JUMP } else { 0 };
+                let c = if lived { repair_counter(boot) } else { 0 };
                 storage.put(key::WRITE_COUNTER, &c)?;
                 c
             }

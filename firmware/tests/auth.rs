@@ -448,35 +448,41 @@ fn a_host_below_1_3_reads_a_hold_as_a_bad_tag() {
 #[test]
 fn a_write_captured_before_a_damaged_settings_map_stays_a_replay() {
     use embedded_storage::nor_flash::NorFlash;
-    use fringe_firmware::device::REPAIR_COUNTER_JUMP;
-    let mut b = Bench::new(31, Scenario::default());
-    b.settle();
-    let good = Request::WriteCellCal(cell(2.1));
-    let captured = signed(&mut b, &good);
-    let f = b.ask_with(good.clone(), Some(captured));
-    assert!(
+    use fringe_firmware::device::{repair_counter, REPAIR_COUNTER_JUMP};
+    // Every page of the map marked closed, then a boot on that flash.
+    fn damage_and_boot(b: Bench, seed: u64) -> Bench {
+        let mut b = b;
+        let map = b.dev.storage_mut().layout().map.clone();
+        let (_, mut flash, _) = b.dev.into_parts();
+        let (page, word) = (Flash::ERASE_SIZE as u32, Flash::WRITE_SIZE);
+        for p in (map.start..map.end).step_by(page as usize) {
+            for at in [p, p + page - word as u32] {
+                flash
+                    .write(at, &vec![0u8; word])
+                    .expect("mark the page closed");
+            }
+        }
+        let mut b = Bench::on_flash(seed, Scenario::default(), flash);
+        b.settle();
+        b
+    }
+    let acked = |f: &DeviceFrame| {
         matches!(
             f,
             DeviceFrame::Response {
                 response: Response::Ack,
                 ..
             }
-        ),
-        "{f:?}"
-    );
-    let last = b.measure().seq;
-    let map = b.dev.storage_mut().layout().map.clone();
-    let (_, mut flash, _) = b.dev.into_parts();
-    let (page, word) = (Flash::ERASE_SIZE as u32, Flash::WRITE_SIZE);
-    for p in (map.start..map.end).step_by(page as usize) {
-        for at in [p, p + page - word as u32] {
-            flash
-                .write(at, &vec![0u8; word])
-                .expect("mark the page closed");
-        }
-    }
-    let mut b = Bench::on_flash(32, Scenario::default(), flash);
+        )
+    };
+    let mut b = Bench::new(31, Scenario::default());
     b.settle();
+    let good = Request::WriteCellCal(cell(2.1));
+    let captured = signed(&mut b, &good);
+    let f = b.ask_with(good.clone(), Some(captured));
+    assert!(acked(&f), "{f:?}");
+    let last = b.measure().seq;
+    let mut b = damage_and_boot(b, 32);
     assert!(
         b.events()
             .iter()
@@ -487,7 +493,6 @@ fn a_write_captured_before_a_damaged_settings_map_stays_a_replay() {
         Response::Status(s) => s,
         other => panic!("{other:?}"),
     };
-    assert_eq!(status.write_counter, REPAIR_COUNTER_JUMP);
     let now = b.measure().seq;
     assert!(
         now.boot > last.boot,
@@ -495,6 +500,8 @@ fn a_write_captured_before_a_damaged_settings_map_stays_a_replay() {
         now.boot,
         last.boot
     );
+    assert_eq!(status.write_counter, repair_counter(now.boot));
+    assert!(status.write_counter > REPAIR_COUNTER_JUMP);
     // The captured write, replayed: refused as a replay, nothing stored.
     let f = b.ask_with(good, Some(captured));
     let (code, why) = refusal(&f);
@@ -508,7 +515,15 @@ fn a_write_captured_before_a_damaged_settings_map_stays_a_replay() {
     assert_eq!(stored_cell(&mut b), None, "the erased map stays without it");
     // A host that asks for the counter signs the next one and is taken.
     b.counter = status.write_counter;
-    assert_eq!(b.ok(Request::WriteCellCal(cell(2.2))), Response::Ack);
+    let next = Request::WriteCellCal(cell(2.2));
+    let second = signed(&mut b, &next);
+    let f = b.ask_with(next.clone(), Some(second));
+    assert!(acked(&f), "{f:?}");
+    // A second repair: the write taken after the first stays a replay.
+    let mut b = damage_and_boot(b, 35);
+    let f = b.ask_with(next, Some(second));
+    assert_eq!(refusal(&f).0, ErrorCode::AuthFailed);
+    assert_eq!(stored_cell(&mut b), None);
 }
 
 /// The same where the map is found erased, not damaged (a power cut
@@ -517,7 +532,7 @@ fn a_write_captured_before_a_damaged_settings_map_stays_a_replay() {
 #[test]
 fn an_erased_settings_map_on_a_device_that_has_lived_moves_the_counter_on() {
     use embedded_storage::nor_flash::NorFlash;
-    use fringe_firmware::device::REPAIR_COUNTER_JUMP;
+    use fringe_firmware::device::repair_counter;
     let mut b = Bench::new(33, Scenario::default());
     b.settle();
     let counter = |b: &mut Bench| match b.ok(Request::Status) {
@@ -531,5 +546,6 @@ fn an_erased_settings_map_on_a_device_that_has_lived_moves_the_counter_on() {
     flash.erase(map.start, map.end).expect("erase the map");
     let mut b = Bench::on_flash(34, Scenario::default(), flash);
     b.settle();
-    assert_eq!(counter(&mut b), REPAIR_COUNTER_JUMP);
+    let boot = b.measure().seq.boot;
+    assert_eq!(counter(&mut b), repair_counter(boot));
 }

@@ -894,6 +894,42 @@ fn lab_times_with_offsets_and_local_times_and_bad_times_naming_the_field() {
         .collect();
     let o = again(&["--supersedes", &pos]);
     assert_eq!(o.code, 0, "corrected: {}", o.stderr);
+    // Entered a third time: the refusal names the correction, the newest
+    // record of that id (before, the first, so a second correction of the
+    // same first record left two in force).
+    let o = run(
+        &mut fringe(&[
+            "lab",
+            "add",
+            "--db",
+            db.to_str().unwrap(),
+            "--time",
+            "2026-12-01T09:41Z",
+            "--moisture",
+            "15.1",
+            "--method",
+            "oven 130 C 2 h",
+            "--operator",
+            "J. Lindqvist",
+            "--sample-id",
+            "G-10",
+        ]),
+        LIMIT,
+    );
+    assert_ne!(o.code, 0);
+    let named: String = o
+        .stderr
+        .split("--supersedes ")
+        .nth(1)
+        .unwrap_or_default()
+        .chars()
+        .take_while(char::is_ascii_digit)
+        .collect();
+    assert!(
+        named.parse::<u64>().unwrap_or(0) > pos.parse::<u64>().unwrap_or(u64::MAX),
+        "names {named}, the first was {pos}: {}",
+        o.stderr
+    );
 }
 
 /// A product calibration selected on the device while `fringe monitor`

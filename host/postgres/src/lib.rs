@@ -964,8 +964,7 @@ impl Store {
                     });
                 }
             }
-            if let (Some(id), Some((pos, _)), None) = (conflict_id, candidates.first(), supersedes)
-            {
+            if let (Some(id), Some((pos, _)), None) = (conflict_id, candidates.last(), supersedes) {
                 return Err(StoreError::SampleConflict {
                     serial: serial.into(),
                     sample_id: id.into(),

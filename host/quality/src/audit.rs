@@ -1144,7 +1144,7 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
                 report.problems.push(Problem::DiffersFromDatabase {
                     position: db_last + 1,
                     what: format!(
-                        "the database ends at position {db_last}, but it reached {head} when the bundle was exported (manifest db_head_position): records {}..={head} were removed",
+                        "the database ends at position {db_last}, but it reached {head} when the bundle was exported (manifest db_head_position): records {}..={head} are not in this database (removed, or a copy older than the export)",
                         db_last + 1
                     ),
                 });
@@ -1913,7 +1913,7 @@ mod tests {
             (
                 m.db_head_position + 5,
                 m.db_head_hash.clone(),
-                "were removed",
+                "are not in this database",
             ),
             (
                 m.db_head_position,

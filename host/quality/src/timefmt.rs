@@ -155,11 +155,17 @@ pub fn parse_time_end_in(s: &str, tz: &TimeZone) -> Result<i64, String> {
     }
     let time = t.get(11..).unwrap_or("");
     let end = time.find(['Z', 'z', '+', '-']).unwrap_or(time.len());
+    // The last field written, by its digits (with or without colons:
+    // `06`, `06:01` or `0601`, `06:01:30` or `060130`), then the digits of
+    // a fraction of the second (after `.` or `,`).
     let clock = &time[..end];
-    let unit_ms: i64 = match (clock.matches(':').count(), clock.split_once('.')) {
-        (1, _) => 60_000,
-        (_, Some((_, frac))) => 10i64.pow(3u32.saturating_sub(frac.len() as u32)),
-        _ => 1_000,
+    let (whole, frac) = clock.split_once(['.', ',']).unwrap_or((clock, ""));
+    let digits = whole.chars().filter(char::is_ascii_digit).count();
+    let unit_ms: i64 = match digits {
+        0..=2 => 3_600_000,
+        3..=4 => 60_000,
+        _ if frac.is_empty() => 1_000,
+        _ => 10i64.pow(3u32.saturating_sub(frac.len() as u32)),
     };
     Ok(start + unit_ms - 1)
 }
@@ -237,6 +243,11 @@ mod tests {
         assert_eq!(z("2026-12-01T06:01Z"), 1796083200000 + 21_660_000 + 59_999);
         assert_eq!(z("2026-12-01T06:01:30.5Z"), 1796083200000 + 21_690_500 + 99);
         assert_eq!(z("2026-12-01T06:01:30.250Z"), 1796083200000 + 21_690_250);
+        // The other forms jiff reads: a comma, an hour alone, no colons.
+        assert_eq!(z("2026-12-01T06:01:30,5Z"), 1796083200000 + 21_690_500 + 99);
+        assert_eq!(z("2026-12-01T06Z"), 1796083200000 + 21_600_000 + 3_599_999);
+        assert_eq!(z("2026-12-01T0601Z"), 1796083200000 + 21_660_000 + 59_999);
+        assert_eq!(z("2026-12-01T060130Z"), 1796083200000 + 21_690_000 + 999);
         assert_eq!(z("1796083200000"), 1796083200000);
         // A local date: its midnight to the next, less 1 ms.
         assert_eq!(z("2026-12-01"), 1796083200000 - 3_600_000 + 86_400_000 - 1);

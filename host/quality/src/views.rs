@@ -60,7 +60,8 @@ pub enum ViewError {
 /// The device `serial`, or the store's only device.
 ///
 /// # Errors
-/// [`ViewError::Device`] when the store holds none, or several and none was named.
+/// [`ViewError::Device`] when the store holds none, or several and none was
+/// named; [`ViewError::BadValue`] for a serial it does not hold.
 pub fn only_device(
     store: &(impl RecordRead + ?Sized),
     serial: Option<&str>,

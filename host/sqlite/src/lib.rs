@@ -688,7 +688,9 @@ impl Store {
                 });
             }
         }
-        if let (Some(id), Some((pos, _)), None) = (conflict_id, candidates.first(), supersedes) {
+        // The newest record of that id is the one a correction supersedes
+        // (candidates come in chain order; an older one is superseded).
+        if let (Some(id), Some((pos, _)), None) = (conflict_id, candidates.last(), supersedes) {
             return Err(StoreError::SampleConflict {
                 serial: serial.into(),
                 sample_id: id.into(),
