@@ -490,7 +490,10 @@ fn run_in(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
     let mut out = std::io::stdout().lock();
     let alarms = views::write_drift(&data, &traces, &mut out)?;
     drop(out);
-    std::fs::write(dir.join("drift.svg"), views::drift_svg(&traces)?)?;
+    std::fs::write(
+        dir.join("drift.svg"),
+        views::drift_svg(&traces)? + views::SVG_MARK,
+    )?;
     // The lab residual alarm asks for a bias adjustment: the bias and slope
     // tests on the shift's grab samples, and the corrected calibration
     // (written beside the first, not pushed: the engineer decides).

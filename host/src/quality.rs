@@ -148,7 +148,8 @@ pub fn drift(a: &DriftArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let data = analysis::load(store.get(), a.serial.as_deref())?;
     let traces = data.traces();
     if let Some(p) = &a.plot {
-        std::fs::write(p, views::drift_svg(&traces)?)
+        views::may_replace(p, "--plot")?;
+        std::fs::write(p, views::drift_svg(&traces)? + views::SVG_MARK)
             .with_context(|| format!("writing {}", p.display()))?;
     }
     if a.json {

@@ -522,3 +522,105 @@ fn a_damaged_index_page_stops_every_reading_command_with_23() {
         assert!(changed.is_empty(), "{name}: changed {changed:?}");
     }
 }
+
+/// A page or drawing of the user's own with the name a report or a plot
+/// would take is not overwritten (exit 2, the folder as it was); a report
+/// or plot fringe wrote is replaced, so a folder can be regenerated.
+#[test]
+fn a_report_or_plot_never_replaces_a_users_own_file() {
+    use fringe_host::store::{Source, Store};
+    use fringe_protocol::{CalId, ChannelValue, Flags, Reading, Seq};
+    let t = users_folder();
+    let db = t.path().join("line2.db");
+    let mut s = Store::open(&db).unwrap();
+    let ch = ChannelValue {
+        g_s: 1e-6,
+        b_s: 2e-4,
+        eps_re: 6.5,
+        eps_im: 0.8,
+    };
+    let batch: Vec<Reading> = (0..60u32)
+        .map(|c| Reading {
+            seq: Seq {
+                boot: 1,
+                counter: c,
+            },
+            time_ms: 1_780_000_000_000 + u64::from(c) * 1000,
+            channels: [ch, ch],
+            temperature_c: 21.0,
+            moisture_pct: Some(14.0),
+            uncertainty_pct: 0.3,
+            flags: Flags::empty(),
+            cell_cal: CalId([1, 2, 3, 4]),
+            product_cal: CalId([5, 6, 7, 8]),
+        })
+        .collect();
+    s.insert_readings("HGM-L2-0303", &batch, Source::Stream)
+        .unwrap();
+    drop(s);
+    let d = t.path();
+    std::fs::create_dir(d.join("shift")).unwrap();
+    std::fs::write(d.join("shift/index.html"), "<html>our shift page</html>\n").unwrap();
+    std::fs::write(d.join("chart.svg"), "<svg/>\n").unwrap();
+    let dbs = db.to_str().unwrap();
+    let o = run(
+        &mut fringe(&[
+            "report",
+            "--db",
+            dbs,
+            "--out",
+            d.join("shift").to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 2, &["index.html", "not written by fringe"]);
+    let o = run(
+        &mut fringe(&[
+            "drift",
+            "--db",
+            dbs,
+            "--plot",
+            d.join("chart.svg").to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 2, &["chart.svg", "not written by fringe"]);
+    assert_eq!(
+        std::fs::read_to_string(d.join("shift/index.html")).unwrap(),
+        "<html>our shift page</html>\n"
+    );
+    assert_eq!(
+        std::fs::read_to_string(d.join("chart.svg")).unwrap(),
+        "<svg/>\n"
+    );
+    assert_eq!(
+        std::fs::read_dir(d.join("shift")).unwrap().count(),
+        1,
+        "no plot written beside the page"
+    );
+    // Its own report and plot are replaced when run again.
+    for _ in 0..2 {
+        let o = run(
+            &mut fringe(&[
+                "report",
+                "--db",
+                dbs,
+                "--out",
+                d.join("rep").to_str().unwrap(),
+            ]),
+            LIMIT,
+        );
+        assert_eq!(o.code, 0, "{}", o.stderr);
+        let o = run(
+            &mut fringe(&[
+                "drift",
+                "--db",
+                dbs,
+                "--plot",
+                d.join("d.svg").to_str().unwrap(),
+            ]),
+            LIMIT,
+        );
+        assert_eq!(o.code, 0, "{}", o.stderr);
+    }
+}

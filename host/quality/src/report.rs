@@ -53,7 +53,7 @@ pub fn render(r: &ReportInput) -> Result<String, String> {
     let mut h = String::new();
     let _ = write!(
         h,
-        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><title>{t}</title>\n<style>\
+        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><meta name=\"generator\" content=\"fringe\"><title>{t}</title>\n<style>\
          body{{font-family:sans-serif;max-width:960px;margin:1em auto;color:#222}}\
          table{{border-collapse:collapse;margin:.5em 0}}td,th{{border:1px solid #bbb;padding:2px 8px;text-align:left}}\
          .alarm{{background:#fde8e8}}.ok{{background:#e8f6e8}}svg{{max-width:100%;height:auto}}</style></head><body>\n\

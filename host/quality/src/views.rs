@@ -471,10 +471,48 @@ pub fn report_input(
     })
 }
 
-/// Writes the report of `store` into `out`.
+/// What fringe puts in every plot file it writes (after the root element,
+/// where XML allows a comment), so that it knows its own files again.
+pub const SVG_MARK: &str = "\n<!-- written by fringe -->\n";
+
+/// The report page's mark (a `<meta>` in its head).
+const HTML_MARK: &str = "<meta name=\"generator\" content=\"fringe\">";
+
+/// Refuses to replace a file fringe did not write: a plant engineer's own
+/// page or drawing of the same name is not overwritten (a report or a plot
+/// of fringe's is, so a folder can be regenerated every shift). A path
+/// that is not a plain file is refused too.
 ///
 /// # Errors
-/// Store failure or a failed write.
+/// [`ViewError::BadValue`] naming the file and the flag.
+pub fn may_replace(path: &Path, flag: &str) -> Result<(), ViewError> {
+    let meta = match std::fs::symlink_metadata(path) {
+        Err(_) => return Ok(()),
+        Ok(m) => m,
+    };
+    let ours = meta.is_file()
+        && std::fs::read(path)
+            .map(|b| {
+                let text = String::from_utf8_lossy(&b);
+                text.contains(SVG_MARK.trim()) || text.contains(HTML_MARK)
+            })
+            .unwrap_or(false);
+    if ours {
+        Ok(())
+    } else {
+        Err(ViewError::BadValue(format!(
+            "{flag} {}: exists and was not written by fringe; nothing written (choose another name, or move that file)",
+            path.display()
+        )))
+    }
+}
+
+/// Writes the report of `store` into `out` (replacing a report of
+/// fringe's there, never another file).
+///
+/// # Errors
+/// Store failure, a file there that fringe did not write, or a failed
+/// write.
 pub fn write_report(
     store: &(impl RecordRead + ?Sized),
     serial: Option<&str>,
@@ -500,6 +538,9 @@ pub fn write_report(
         )
     };
     let drift = drift_svg(&input.traces)?;
+    for name in ["index.html", "trend.svg", "drift.svg"] {
+        may_replace(&out.join(name), "--out")?;
+    }
     let write = |path: PathBuf, body: String| {
         std::fs::write(&path, body).map_err(|source| ViewError::Write { path, source })
     };
@@ -510,9 +551,9 @@ pub fn write_report(
     let page = out.join("index.html");
     write(page.clone(), html)?;
     if let Some(svg) = trend {
-        write(out.join("trend.svg"), svg)?;
+        write(out.join("trend.svg"), svg + SVG_MARK)?;
     }
-    write(out.join("drift.svg"), drift)?;
+    write(out.join("drift.svg"), drift + SVG_MARK)?;
     Ok(page)
 }
 

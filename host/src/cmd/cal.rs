@@ -54,6 +54,9 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
             .into());
         }
     }
+    if let Some(p) = &args.plot {
+        fringe_quality::views::may_replace(p, "--plot")?;
+    }
     let o = cal::fit(&args.options(), now_s())?;
     let plot = match &args.plot {
         Some(_) => Some(cal::fit_plot(&o, &args.samples)?),
@@ -61,7 +64,8 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
     };
     o.file.save(&args.out)?;
     if let (Some(p), Some(svg)) = (&args.plot, plot) {
-        std::fs::write(p, svg).with_context(|| format!("writing {}", p.display()))?;
+        std::fs::write(p, svg + fringe_quality::views::SVG_MARK)
+            .with_context(|| format!("writing {}", p.display()))?;
     }
     if args.json {
         crate::out::json(&cal::outcome_json(&o, &args.out))?;
