@@ -407,20 +407,18 @@ fn one_line_file_serves_every_command_and_the_help_names_it() {
 /// database with a damaged index page, where `drift` and `report` rightly
 /// exited 23. Every command that reads the database now stops with 23 and
 /// the same advice, and writes nothing.
-#[test]
-fn a_damaged_index_page_stops_every_reading_command_with_23() {
+/// A database at `db` with `n` plain readings of `serial`, one a second.
+fn store_with_readings(db: &Path, serial: &str, n: u32) -> fringe_host::store::Store {
     use fringe_host::store::{Source, Store};
     use fringe_protocol::{CalId, ChannelValue, Flags, Reading, Seq};
-    let t = users_folder();
-    let db = t.path().join("line2.db");
-    let mut s = Store::open(&db).unwrap();
+    let mut s = Store::open(db).unwrap();
     let ch = ChannelValue {
         g_s: 1e-6,
         b_s: 2e-4,
         eps_re: 6.5,
         eps_im: 0.8,
     };
-    let batch: Vec<Reading> = (0..2000u32)
+    let batch: Vec<Reading> = (0..n)
         .map(|c| Reading {
             seq: Seq {
                 boot: 1,
@@ -436,8 +434,15 @@ fn a_damaged_index_page_stops_every_reading_command_with_23() {
             product_cal: CalId([5, 6, 7, 8]),
         })
         .collect();
-    s.insert_readings("HGM-L2-0302", &batch, Source::Stream)
-        .unwrap();
+    s.insert_readings(serial, &batch, Source::Stream).unwrap();
+    s
+}
+
+#[test]
+fn a_damaged_index_page_stops_every_reading_command_with_23() {
+    let t = users_folder();
+    let db = t.path().join("line2.db");
+    let s = store_with_readings(&db, "HGM-L2-0302", 2000);
     let (root, page): (i64, i64) = s
         .connection()
         .query_row(
@@ -528,36 +533,9 @@ fn a_damaged_index_page_stops_every_reading_command_with_23() {
 /// or plot fringe wrote is replaced, so a folder can be regenerated.
 #[test]
 fn a_report_or_plot_never_replaces_a_users_own_file() {
-    use fringe_host::store::{Source, Store};
-    use fringe_protocol::{CalId, ChannelValue, Flags, Reading, Seq};
     let t = users_folder();
     let db = t.path().join("line2.db");
-    let mut s = Store::open(&db).unwrap();
-    let ch = ChannelValue {
-        g_s: 1e-6,
-        b_s: 2e-4,
-        eps_re: 6.5,
-        eps_im: 0.8,
-    };
-    let batch: Vec<Reading> = (0..60u32)
-        .map(|c| Reading {
-            seq: Seq {
-                boot: 1,
-                counter: c,
-            },
-            time_ms: 1_780_000_000_000 + u64::from(c) * 1000,
-            channels: [ch, ch],
-            temperature_c: 21.0,
-            moisture_pct: Some(14.0),
-            uncertainty_pct: 0.3,
-            flags: Flags::empty(),
-            cell_cal: CalId([1, 2, 3, 4]),
-            product_cal: CalId([5, 6, 7, 8]),
-        })
-        .collect();
-    s.insert_readings("HGM-L2-0303", &batch, Source::Stream)
-        .unwrap();
-    drop(s);
+    drop(store_with_readings(&db, "HGM-L2-0303", 60));
     let d = t.path();
     std::fs::create_dir(d.join("shift")).unwrap();
     std::fs::write(d.join("shift/index.html"), "<html>our shift page</html>\n").unwrap();

@@ -835,99 +835,73 @@ fn lab_times_with_offsets_and_local_times_and_bad_times_naming_the_field() {
         let o = add(bad, "G-9");
         assert_fails(&o, 2, &["--time", bad, "RFC 3339", "local time"]);
     }
-    // A mistyped serial is refused, not added to the chain as a device of
-    // its own (after which every lab add without --serial was refused as
-    // ambiguous).
-    let o = run(
-        &mut fringe(&[
-            "lab",
-            "add",
-            "--db",
-            db.to_str().unwrap(),
-            "--serial",
-            "HGM-L2-0360",
-            "--time",
-            "2026-12-01T09:40Z",
-            "--moisture",
-            "14.2",
-            "--method",
-            "oven",
-            "--operator",
-            "J. Lindqvist",
-        ]),
-        LIMIT,
-    );
-    assert_fails(&o, 2, &["--serial HGM-L2-0360", "HGM-L2-0306"]);
-    let o = add("2026-12-01T09:41Z", "G-10");
-    assert_eq!(o.code, 0, "still one device: {}", o.stderr);
-    // The same sample id again with another value: refused, naming the
-    // record and the flag that corrects it; corrected with that flag.
-    let again = |extra: &[&str]| {
+    // A lab add on this database with `args` after the common ones.
+    let lab_add = |args: &[&str]| {
         let mut a = vec![
             "lab",
             "add",
             "--db",
             db.to_str().unwrap(),
-            "--time",
-            "2026-12-01T09:41Z",
-            "--moisture",
-            "14.9",
             "--method",
             "oven 130 C 2 h",
             "--operator",
             "J. Lindqvist",
-            "--sample-id",
-            "G-10",
         ];
-        a.extend_from_slice(extra);
+        a.extend_from_slice(args);
         run(&mut fringe(&a), LIMIT)
     };
-    let o = again(&[]);
+    // The record position a refusal of a repeated sample id names.
+    let named = |stderr: &str| -> String {
+        stderr
+            .split("--supersedes ")
+            .nth(1)
+            .unwrap_or_else(|| panic!("names the flag: {stderr}"))
+            .chars()
+            .take_while(char::is_ascii_digit)
+            .collect()
+    };
+    // A mistyped serial is refused, not added to the chain as a device of
+    // its own (after which every lab add without --serial was refused as
+    // ambiguous).
+    let o = lab_add(&[
+        "--serial",
+        "HGM-L2-0360",
+        "--time",
+        "2026-12-01T09:40Z",
+        "--moisture",
+        "14.2",
+    ]);
+    assert_fails(&o, 2, &["--serial HGM-L2-0360", "HGM-L2-0306"]);
+    let o = add("2026-12-01T09:41Z", "G-10");
+    assert_eq!(o.code, 0, "still one device: {}", o.stderr);
+    // The same sample id again with another value: refused, naming the
+    // record and the flag that corrects it; corrected with that flag.
+    let g10 = |moisture: &str, extra: &[&str]| {
+        let mut a = vec![
+            "--time",
+            "2026-12-01T09:41Z",
+            "--sample-id",
+            "G-10",
+            "--moisture",
+            moisture,
+        ];
+        a.extend_from_slice(extra);
+        lab_add(&a)
+    };
+    let o = g10("14.9", &[]);
     assert_ne!(o.code, 0, "{}", o.stdout);
-    let pos: String = o
-        .stderr
-        .split("--supersedes ")
-        .nth(1)
-        .unwrap_or_else(|| panic!("names the flag: {}", o.stderr))
-        .chars()
-        .take_while(char::is_ascii_digit)
-        .collect();
-    let o = again(&["--supersedes", &pos]);
+    let pos = named(&o.stderr);
+    let o = g10("14.9", &["--supersedes", &pos]);
     assert_eq!(o.code, 0, "corrected: {}", o.stderr);
     // Entered a third time: the refusal names the correction, the newest
     // record of that id (before, the first, so a second correction of the
     // same first record left two in force).
-    let o = run(
-        &mut fringe(&[
-            "lab",
-            "add",
-            "--db",
-            db.to_str().unwrap(),
-            "--time",
-            "2026-12-01T09:41Z",
-            "--moisture",
-            "15.1",
-            "--method",
-            "oven 130 C 2 h",
-            "--operator",
-            "J. Lindqvist",
-            "--sample-id",
-            "G-10",
-        ]),
-        LIMIT,
-    );
+    let o = g10("15.1", &[]);
     assert_ne!(o.code, 0);
-    let named: String = o
-        .stderr
-        .split("--supersedes ")
-        .nth(1)
-        .unwrap_or_default()
-        .chars()
-        .take_while(char::is_ascii_digit)
-        .collect();
+    let newest = named(&o.stderr);
     assert!(
-        named.parse::<u64>().unwrap_or(0) > pos.parse::<u64>().unwrap_or(u64::MAX),
-        "names {named}, the first was {pos}: {}",
+        newest.parse::<u64>().unwrap_or(0) > pos.parse::<u64>().unwrap_or(u64::MAX),
+        "names {newest}, the first was {pos}: {}",
         o.stderr
     );
 }
