@@ -541,27 +541,16 @@ fn a_report_or_plot_never_replaces_a_users_own_file() {
     std::fs::write(d.join("shift/index.html"), "<html>our shift page</html>\n").unwrap();
     std::fs::write(d.join("chart.svg"), "<svg/>\n").unwrap();
     let dbs = db.to_str().unwrap();
-    let o = run(
-        &mut fringe(&[
-            "report",
-            "--db",
-            dbs,
-            "--out",
-            d.join("shift").to_str().unwrap(),
-        ]),
-        LIMIT,
-    );
+    // `fringe CMD --db DB FLAG d/NAME`.
+    let to = |cmd: &str, flag: &str, name: &str| {
+        run(
+            &mut fringe(&[cmd, "--db", dbs, flag, d.join(name).to_str().unwrap()]),
+            LIMIT,
+        )
+    };
+    let o = to("report", "--out", "shift");
     assert_fails(&o, 2, &["index.html", "not written by fringe"]);
-    let o = run(
-        &mut fringe(&[
-            "drift",
-            "--db",
-            dbs,
-            "--plot",
-            d.join("chart.svg").to_str().unwrap(),
-        ]),
-        LIMIT,
-    );
+    let o = to("drift", "--plot", "chart.svg");
     assert_fails(&o, 2, &["chart.svg", "not written by fringe"]);
     assert_eq!(
         std::fs::read_to_string(d.join("shift/index.html")).unwrap(),
@@ -578,27 +567,9 @@ fn a_report_or_plot_never_replaces_a_users_own_file() {
     );
     // Its own report and plot are replaced when run again.
     for _ in 0..2 {
-        let o = run(
-            &mut fringe(&[
-                "report",
-                "--db",
-                dbs,
-                "--out",
-                d.join("rep").to_str().unwrap(),
-            ]),
-            LIMIT,
-        );
+        let o = to("report", "--out", "rep");
         assert_eq!(o.code, 0, "{}", o.stderr);
-        let o = run(
-            &mut fringe(&[
-                "drift",
-                "--db",
-                dbs,
-                "--plot",
-                d.join("d.svg").to_str().unwrap(),
-            ]),
-            LIMIT,
-        );
+        let o = to("drift", "--plot", "d.svg");
         assert_eq!(o.code, 0, "{}", o.stderr);
     }
 }

@@ -1740,6 +1740,25 @@ mod tests {
         (dir, db)
     }
 
+    /// Records the readings' cell calibration (00000001) in `db`, after
+    /// the records the fixture holds.
+    fn record_cell_cal(db: &Path, reason: &str) {
+        let mut s = Store::open(db).expect("open");
+        s.insert_calibration(
+            "HGM-L2-0007",
+            &NewCalibration {
+                kind: CalKind::Cell,
+                cal_id: CalId([0, 0, 0, 1]),
+                slot: None,
+                name: None,
+                body: serde_json::json!({"operator": "R. Okafor", "reason": reason}),
+                note: None,
+                supersedes: None,
+            },
+        )
+        .expect("cal");
+    }
+
     fn export_to(db: &Path, out: &Path) -> ExportSummary {
         let s = Store::open_read_only(db).expect("ro");
         export(&s, "test.db", Some(T0), T0 + 3_600_000, out).expect("export")
@@ -1779,22 +1798,7 @@ mod tests {
     #[test]
     fn a_calibration_recorded_after_the_slice_is_not_named_without_record() {
         let (dir, db) = fixture("late");
-        {
-            let mut s = Store::open(&db).expect("open");
-            s.insert_calibration(
-                "HGM-L2-0007",
-                &NewCalibration {
-                    kind: CalKind::Cell,
-                    cal_id: CalId([0, 0, 0, 1]),
-                    slot: None,
-                    name: None,
-                    body: serde_json::json!({"operator": "R. Okafor", "reason": "late"}),
-                    note: None,
-                    supersedes: None,
-                },
-            )
-            .expect("cal");
-        }
+        record_cell_cal(&db, "late");
         let s = export_to(&db, &dir.path().join("bundle"));
         assert!(
             s.manifest.calibrations_without_record == Some(Vec::new()),
@@ -1838,22 +1842,7 @@ mod tests {
             said[0].ends_with("the readings carry calibration 00000001, of which the database has no record; the manifest does not name it"),
             "{said:?}"
         );
-        {
-            let mut s = Store::open(&db).expect("open");
-            s.insert_calibration(
-                "HGM-L2-0007",
-                &NewCalibration {
-                    kind: CalKind::Cell,
-                    cal_id: CalId([0, 0, 0, 1]),
-                    slot: None,
-                    name: None,
-                    body: serde_json::json!({"operator": "R. Okafor", "reason": "later"}),
-                    note: None,
-                    supersedes: None,
-                },
-            )
-            .expect("cal");
-        }
+        record_cell_cal(&db, "later");
         assert_eq!(against_db(&out), Vec::<String>::new());
     }
 

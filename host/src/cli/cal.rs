@@ -215,10 +215,7 @@ fn noise_sd_f32(s: &str) -> Result<f32, String> {
 /// confidence level typed in its place (0.95) is refused, not taken as an
 /// alpha that makes every bias significant.
 fn significance_level(s: &str) -> Result<f64, String> {
-    let v: f64 = s
-        .trim()
-        .parse()
-        .map_err(|_| format!("`{s}` is not a number"))?;
+    let v = number(s)?;
     if v > 0.0 && v <= 0.5 {
         Ok(v)
     } else if (0.5..1.0).contains(&v) {
@@ -236,10 +233,7 @@ fn significance_level(s: &str) -> Result<f64, String> {
 
 /// A confidence level between 0.5 and 1 (the prediction interval's).
 fn confidence_level(s: &str) -> Result<f64, String> {
-    let v: f64 = s
-        .trim()
-        .parse()
-        .map_err(|_| format!("`{s}` is not a number"))?;
+    let v = number(s)?;
     if v > 0.5 && v < 1.0 {
         Ok(v)
     } else {
