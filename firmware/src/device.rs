@@ -309,6 +309,11 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     auth_hold_until_ms: u64,
     /// A refusal during the current hold has been logged.
     auth_hold_logged: bool,
+    /// The scratch value the self-test wrote and read back this boot
+    /// (RAM only). Later self-tests of the boot read it back without
+    /// writing again: `SelfTest` needs no key, and a client repeating it
+    /// must not wear the flash.
+    scratch_written: Option<u32>,
     next_event: u32,
     boot_ms: u64,
     clock_offset_ms: Option<i64>,
@@ -552,6 +557,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             auth_failures: 0,
             auth_hold_until_ms: 0,
             auth_hold_logged: false,
+            scratch_written: None,
             next_event: st.next_event,
             boot_ms: now_ms,
             clock_offset_ms: None,
@@ -1581,10 +1587,20 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         }
     }
 
+    /// The storage part of a self-test: the first of a boot writes a
+    /// scratch record and reads it back; later ones read back the value
+    /// written (at most one scratch write a boot, unless a write fails).
     fn scratch_test(&mut self) -> bool {
+        if let Some(v) = self.scratch_written {
+            return self.storage.get::<u32>(SCRATCH_KEY).ok().flatten() == Some(v);
+        }
         let v = self.next_event ^ 0xA5A5_5A5A;
-        self.storage.put(SCRATCH_KEY, &v).is_ok()
-            && self.storage.get::<u32>(SCRATCH_KEY).ok().flatten() == Some(v)
+        let ok = self.storage.put(SCRATCH_KEY, &v).is_ok()
+            && self.storage.get::<u32>(SCRATCH_KEY).ok().flatten() == Some(v);
+        if ok {
+            self.scratch_written = Some(v);
+        }
+        ok
     }
 
     fn fault_events(&mut self, now_ms: u64, flags: Flags, tx: &mut dyn FnMut(&[u8])) {

@@ -17,7 +17,7 @@
 //! | 3 | cell calibration [`CellCal`] |
 //! | 4 | active product slot, `Option<u8>` |
 //! | 5 | 4-20 mA configuration [`fringe_protocol::OutputConfig`] (protocol 1.0; read at boot when 7 is absent) |
-//! | 6 | self-test scratch value |
+//! | 6 | self-test scratch value (written at most once a boot) |
 //! | 7 | device settings [`fringe_protocol::Settings`] (tag, interval, span, failure level, stale timeout) |
 //! | 8 | Modbus RTU settings [`fringe_protocol::ModbusSettings`] (unit id, baud rate, parity; protocol 1.2: absent on flash written by older firmware, which reads as the defaults) |
 //! | 16..=23 | product calibration slot 0..=7, `Option<ProductCal>` |

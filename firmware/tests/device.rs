@@ -249,6 +249,53 @@ fn empty_line_and_electrode_faults_are_flagged() {
     );
 }
 
+/// The flash writes and erases one request costs.
+fn flash_ops(b: &mut Bench, req: Request) -> (u32, u32, Response) {
+    let (w0, e0) = b.dev.flash_mut().op_counts();
+    let r = b.ok(req);
+    let (w1, e1) = b.dev.flash_mut().op_counts();
+    (w1 - w0, e1 - e0, r)
+}
+
+fn storage_ok(r: &Response) -> bool {
+    match r {
+        Response::SelfTest(t) => t.storage_ok,
+        other => panic!("SelfTest answered {other:?}"),
+    }
+}
+
+/// `SelfTest` needs no key: the first of a boot writes its scratch record,
+/// later ones only read it back, so a client repeating it costs the flash
+/// no more than a measurement (which logs its reading).
+#[test]
+fn a_repeated_self_test_writes_the_flash_once_a_boot() {
+    let mut b = Bench::with_config(7, Scenario::default(), Flash::new(), quiet_config());
+    b.settle();
+    let (measure_w, _, _) = flash_ops(&mut b, Request::Measure);
+    assert!(measure_w > 0, "a measurement logs its reading");
+    let (first_w, _, r) = flash_ops(&mut b, Request::SelfTest);
+    assert!(storage_ok(&r));
+    assert!(
+        first_w > measure_w,
+        "{first_w} writes, a measurement {measure_w}"
+    );
+    for i in 0..50 {
+        let (w, e, r) = flash_ops(&mut b, Request::SelfTest);
+        assert!(storage_ok(&r), "self-test {i}");
+        assert_eq!((w, e), (measure_w, 0), "self-test {i} after the first");
+    }
+    // A new boot writes (and checks) the record again.
+    let (_, flash, _) = b.dev.into_parts();
+    let mut b = Bench::with_config(8, Scenario::default(), flash, quiet_config());
+    b.settle();
+    let (w, _, r) = flash_ops(&mut b, Request::SelfTest);
+    assert!(storage_ok(&r));
+    assert!(
+        w > measure_w,
+        "{w} writes at the new boot's first self-test"
+    );
+}
+
 #[test]
 fn every_request_is_answered() {
     let mut b = Bench::new(6, Scenario::default());

@@ -466,7 +466,8 @@ pub struct RefCheck {
 /// Result of a self-test.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct SelfTest {
-    /// Flash read/write/verify of a scratch record passed.
+    /// Flash read/write/verify of a scratch record passed (the boot's first
+    /// self-test writes the record, later ones of the boot read it back).
     pub storage_ok: bool,
     /// Front end answered and both channels are within range.
     pub frontend_ok: bool,
