@@ -430,7 +430,8 @@ fn events_and_lab_samples_with_their_times() {
     assert_eq!(rows.len(), 1);
     let r = &rows[0];
     assert_eq!(r["sample_id"], "G-0412");
-    assert_eq!(r["lab_moisture_pct"], "14.20");
+    // As entered (`numbers`: a lab value keeps the digits the lab gave).
+    assert_eq!(r["lab_moisture_pct"], "14.2");
     assert_eq!(r["time_unix_ms"], (T0 + 12_000).to_string());
     assert_eq!(r["matched_counter"], "11");
     assert_eq!(r["note"], "");

@@ -293,6 +293,11 @@ fn monitor_sets_an_unset_clock_and_earlier_readings_are_rebased_and_found_by_wal
         local(last),
         early.len()
     );
+    // Those readings keep their time since boot in the chain: the bundle's
+    // CSV gives them no date rather than one in 1970 (format 2).
+    assert_eq!(m["format"], "fringe-audit-bundle/2");
+    let csv = std::fs::read_to_string(bundle.join("readings.csv")).unwrap();
+    assert!(!csv.contains(",1970-"), "{csv}");
 }
 
 #[test]

@@ -43,8 +43,34 @@ use fringe_store::{BootClock, ChainedRecord, RecordRead, StoreError};
 
 use crate::timefmt::fmt_time;
 
-/// Bundle format name in the manifest.
-pub const FORMAT: &str = "fringe-audit-bundle/1";
+/// Bundle format name in the manifest, as written.
+pub const FORMAT: &str = "fringe-audit-bundle/2";
+/// The format written before 2026-12-05, which `verify` still reads. Its
+/// readings.csv gave a reading taken before its device's clock was set the
+/// `time_utc` of its time since boot (a date in 1970), and its
+/// lab_samples.csv lab values at 2 decimals. Format 2 leaves that
+/// `time_utc` empty (`flag_words` says `clock_unset`) and writes lab values
+/// as entered; the records, hashes and every other cell are the same.
+pub const FORMAT_1: &str = "fringe-audit-bundle/1";
+
+/// The CSV rules of a bundle format.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum CsvRules {
+    /// [`FORMAT_1`].
+    V1,
+    /// [`FORMAT`].
+    V2,
+}
+
+impl CsvRules {
+    fn of(format: &str) -> Option<Self> {
+        match format {
+            FORMAT => Some(Self::V2),
+            FORMAT_1 => Some(Self::V1),
+            _ => None,
+        }
+    }
+}
 /// File names.
 pub const MANIFEST: &str = "manifest.json";
 /// Chained records, JSON Lines.
@@ -77,6 +103,8 @@ pub enum AuditError {
         from_ms: Option<i64>,
         /// To, ms.
         to_ms: i64,
+        /// Records with no wall-clock time (in no range), all tables.
+        untimed: u64,
     },
     /// The manifest is missing or unreadable: nothing can be checked.
     BadManifest {
@@ -98,18 +126,29 @@ impl fmt::Display for AuditError {
                 path.display()
             ),
             AuditError::NothingInRange {
-                from_ms: Some(from_ms),
+                from_ms,
                 to_ms,
-            } => write!(
-                f,
-                "no stored record lies between {} and {}",
-                fmt_time(*from_ms),
-                fmt_time(*to_ms)
-            ),
-            AuditError::NothingInRange {
-                from_ms: None,
-                to_ms,
-            } => write!(f, "no stored record lies before {}", fmt_time(*to_ms)),
+                untimed,
+            } => {
+                match from_ms {
+                    Some(from_ms) => write!(
+                        f,
+                        "no stored record lies between {} and {}",
+                        fmt_time(*from_ms),
+                        fmt_time(*to_ms)
+                    )?,
+                    None => write!(f, "no stored record lies before {}", fmt_time(*to_ms))?,
+                }
+                if *untimed > 0 {
+                    write!(
+                        f,
+                        " ({untimed} record(s) have no wall-clock time: their device's clock \
+                         was never set in that boot, so they lie in no range; \
+                         `fringe export` without --from/--to writes them)"
+                    )?;
+                }
+                Ok(())
+            }
             AuditError::BadManifest { path, reason } => {
                 write!(f, "{}: not a usable bundle manifest: {reason}", path.display())
             }
@@ -191,6 +230,15 @@ pub struct Manifest {
     /// (absent from their manifest: nothing to check it against).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub calibrations_without_record: Option<Vec<String>>,
+    /// Records the database held at export with no wall-clock time (taken
+    /// or logged in a boot whose clock was never set, with no clock event
+    /// stored) outside the exported slice, by table: they lie in no time
+    /// range, so they are not in the bundle (those between records in range
+    /// are, with no `time_utc`). Said for the reader; `verify` does not
+    /// check it (a clock event pulled later gives such records a time).
+    /// `None` in bundles written before 2026-12-05.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub untimed_left_out: Option<BTreeMap<String, u64>>,
 }
 
 /// A record as written to `records.jsonl`.
@@ -394,11 +442,15 @@ const READING_EXTRAS: [&str; 11] = [
     "product_cal_id",
 ];
 
-/// A cell of column `column` (reals by [`crate::numbers`]' rule of the column).
-fn csv_cell(column: &str, v: &Value) -> String {
+/// A cell of column `column` (reals by [`crate::numbers`]' rule of the
+/// column; lab values at 2 decimals in [`FORMAT_1`]).
+fn csv_cell(column: &str, v: &Value, rules: CsvRules) -> String {
     match v {
         Value::Null => String::new(),
         Value::Integer(i) => i.to_string(),
+        Value::Real(x) if rules == CsvRules::V1 && column == "lab_moisture_pct" => {
+            crate::numbers::fmt(*x, crate::numbers::Rule::Decimals(2))
+        }
         Value::Real(x) => crate::numbers::cell(column, Some(*x)),
         Value::Text(s) => s.clone(),
         Value::Blob(b) => hex_of(b),
@@ -412,13 +464,14 @@ fn csv_row(
     hash: &str,
     columns: &[String],
     values: &[Value],
+    rules: CsvRules,
 ) -> Vec<String> {
     let mut row = vec![position.to_string(), hash.to_string()];
     row.extend(
         values
             .iter()
             .enumerate()
-            .map(|(i, v)| csv_cell(columns.get(i).map_or("", String::as_str), v)),
+            .map(|(i, v)| csv_cell(columns.get(i).map_or("", String::as_str), v, rules)),
     );
     if table == Table::Readings {
         let get = |c: &str| {
@@ -431,7 +484,16 @@ fn csv_row(
             Some(Value::Integer(i)) => Some(*i),
             _ => None,
         };
-        row.push(int("time_ms").map(fmt_time).unwrap_or_default());
+        let clock_unset = int("flags")
+            .is_some_and(|f| f & i64::from(fringe_protocol::Flags::CLOCK_UNSET.bits()) != 0);
+        // A reading taken before its device's clock was set has a time
+        // since boot, not a date: no time_utc in format 2 (its flag words
+        // say clock_unset; the database re-bases it where a clock event
+        // came later).
+        let time_utc = int("time_ms")
+            .filter(|_| rules == CsvRules::V1 || !clock_unset)
+            .map(fmt_time);
+        row.push(time_utc.unwrap_or_default());
         row.push(
             int("flags")
                 .map(|f| {
@@ -482,6 +544,18 @@ pub fn export(
     to_ms: i64,
     out: &Path,
 ) -> Result<ExportSummary, AuditError> {
+    export_as(store, db_label, (from_ms, to_ms), out, CsvRules::V2)
+}
+
+/// [`export`] in the format of `rules` (the tests write [`FORMAT_1`]
+/// bundles to check that `verify` still reads them).
+fn export_as(
+    store: &(impl RecordRead + ?Sized),
+    db_label: &str,
+    (from_ms, to_ms): (Option<i64>, i64),
+    out: &Path,
+    rules: CsvRules,
+) -> Result<ExportSummary, AuditError> {
     if out.exists() {
         let empty = std::fs::read_dir(out).map_err(io(out))?.next().is_none();
         if !empty {
@@ -510,6 +584,10 @@ pub fn export(
     let mut columns: BTreeMap<String, Vec<String>> = BTreeMap::new();
     // The earliest time of a record in range (None sorts first: start high).
     let mut first_time: Option<i64> = Some(i64::MAX);
+    // Records with no wall-clock time before the slice, and since its last
+    // record in range so far (in it only if a record in range follows).
+    let mut untimed_before: BTreeMap<String, u64> = BTreeMap::new();
+    let mut untimed_after: BTreeMap<String, u64> = BTreeMap::new();
     store.for_each_record(&mut |r| {
         columns
             .entry(r.table.name().to_string())
@@ -530,12 +608,21 @@ pub fn export(
                 }
             }
         };
+        if time.is_none() {
+            let n = if first.is_none() {
+                &mut untimed_before
+            } else {
+                &mut untimed_after
+            };
+            *n.entry(r.table.name().to_string()).or_default() += 1;
+        }
         if in_range {
             if first.is_none() {
                 first = Some((r.position, prev));
             }
             first_time = first_time.min(time);
             last = Some(r.position);
+            untimed_after.clear();
             for id in pending.drain(..) {
                 if !used_cals.contains(&id) {
                     used_cals.push(id);
@@ -552,8 +639,16 @@ pub fn export(
         prev = r.hash;
         Ok(())
     })?;
+    let mut untimed_left_out = untimed_before;
+    for (t, n) in untimed_after {
+        *untimed_left_out.entry(t).or_default() += n;
+    }
     let (Some((first_position, anchor)), Some(last_position)) = (first, last) else {
-        return Err(AuditError::NothingInRange { from_ms, to_ms });
+        return Err(AuditError::NothingInRange {
+            from_ms,
+            to_ms,
+            untimed: untimed_left_out.values().sum(),
+        });
     };
     let from_first_record = from_ms.is_none();
     let from_ms = from_ms.or(first_time).unwrap_or(to_ms);
@@ -607,8 +702,12 @@ pub fn export(
         out,
         (from_ms, to_ms),
         (first_position, anchor, last_position),
-        &columns,
-        (&in_force, without_record),
+        (&columns, rules),
+        Found {
+            in_force: &in_force,
+            without_record,
+            untimed_left_out,
+        },
     );
     match result {
         Ok(mut s) => {
@@ -641,15 +740,30 @@ fn bundle_files() -> Vec<String> {
     names
 }
 
+/// What the first pass of an export found besides the slice.
+struct Found<'a> {
+    /// The calibration records in force, with the hash before each.
+    in_force: &'a [&'a (Hash, ChainedRecord)],
+    /// Calibration ids the readings carry with no record.
+    without_record: Vec<String>,
+    /// Records with no wall-clock time outside the slice, by table.
+    untimed_left_out: BTreeMap<String, u64>,
+}
+
 fn write_bundle(
     store: &(impl RecordRead + ?Sized),
     db_label: &str,
     out: &Path,
     (from_ms, to_ms): (i64, i64),
     (first_position, anchor, last_position): (u64, Hash, u64),
-    columns: &BTreeMap<String, Vec<String>>,
-    (in_force, without_record): (&[&(Hash, ChainedRecord)], Vec<String>),
+    (columns, rules): (&BTreeMap<String, Vec<String>>, CsvRules),
+    found: Found<'_>,
 ) -> Result<ExportSummary, AuditError> {
+    let Found {
+        in_force,
+        without_record,
+        untimed_left_out,
+    } = found;
     let rec_path = out.join(RECORDS);
     let mut rec_out =
         std::io::BufWriter::new(std::fs::File::create(&rec_path).map_err(io(&rec_path))?);
@@ -685,8 +799,9 @@ fn write_bundle(
         }
         let cols: Vec<String> = r.columns.iter().map(|c| c.to_string()).collect();
         if let Some(w) = csvs.get_mut(&r.table) {
-            if let Err(e) = w.write_record(csv_row(r.position, r.table, &j.hash, &cols, &r.values))
-            {
+            if let Err(e) = w.write_record(csv_row(
+                r.position, r.table, &j.hash, &cols, &r.values, rules,
+            )) {
                 write_err = Some(AuditError::Io {
                     path: out.join(format!("{}.csv", r.table.name())),
                     source: e.into(),
@@ -735,7 +850,11 @@ fn write_bundle(
     }
     let (head_pos, head_hash) = store.chain_head()?;
     let manifest = Manifest {
-        format: FORMAT.into(),
+        format: match rules {
+            CsvRules::V1 => FORMAT_1,
+            CsvRules::V2 => FORMAT,
+        }
+        .into(),
         tool: format!("fringe {}", env!("CARGO_PKG_VERSION")),
         created_utc: fmt_time(fringe_store::now_unix_ms()),
         database: db_label.into(),
@@ -751,6 +870,7 @@ fn write_bundle(
         columns: columns.clone(),
         files,
         calibrations_without_record: Some(without_record),
+        untimed_left_out: Some(untimed_left_out),
     };
     let mp = out.join(MANIFEST);
     std::fs::write(
@@ -773,7 +893,8 @@ fn bundle_readme(db: &str, from_ms: i64, to_ms: i64) -> String {
          Records of {db} from {} to {} (UTC), linked by a SHA-256 hash chain.\n\n\
          records.jsonl               the chained records (the hash input), one per line\n\
          calibrations_in_force.json  the calibration records that produced the readings\n\
-         *.csv                       the same records for a spreadsheet\n\
+         *.csv                       the same records for a spreadsheet (a reading taken before its\n\
+         \x20                           device's clock was set has no time_utc: flag clock_unset)\n\
          manifest.json               SHA-256 of each file, the chain anchor, end and the database's head\n\n\
          To check it:  fringe audit verify THIS_FOLDER            (the bundle on its own)\n\
          \x20             fringe audit verify THIS_FOLDER --db FILE  (and against the database)\n\
@@ -1199,12 +1320,12 @@ fn verify_bundle(
             return Ok((Vec::new(), CalStatements::default()));
         }
     };
-    if m.format != FORMAT {
+    let Some(rules) = CsvRules::of(&m.format) else {
         return Err(bad_manifest(format!(
-            "format `{}`, this tool reads `{FORMAT}`",
+            "format `{}`, this tool reads `{FORMAT}` and `{FORMAT_1}`",
             m.format
         )));
-    }
+    };
     // 1. Files against the manifest.
     for f in &m.files {
         let Some(bytes) = files.read(&f.name).map_err(io(&files.path(&f.name)))? else {
@@ -1428,7 +1549,7 @@ fn verify_bundle(
             .map(|p| {
                 (
                     p.position,
-                    csv_row(p.position, t, &chain::hex(&p.hash), &cols, &p.values),
+                    csv_row(p.position, t, &chain::hex(&p.hash), &cols, &p.values, rules),
                 )
             })
             .collect();
@@ -1567,6 +1688,7 @@ mod tests {
             columns: BTreeMap::new(),
             files: Vec::new(),
             calibrations_without_record: None,
+            untimed_left_out: None,
         };
         let mut files = BTreeMap::new();
         files.insert(MANIFEST.to_string(), serde_json::to_vec(&m).unwrap());
@@ -1844,6 +1966,144 @@ mod tests {
         );
         record_cell_cal(&db, "later");
         assert_eq!(against_db(&out), Vec::<String>::new());
+    }
+
+    /// Readings of `boot` taken before its device's clock was set (time
+    /// since boot, flagged `clock_unset`), counters `0..n`.
+    fn untimed_readings(boot: u32, n: u32) -> Vec<Reading> {
+        (0..n)
+            .map(|i| Reading {
+                seq: Seq { boot, counter: i },
+                time_ms: 5_000 + u64::from(i) * 1_000,
+                flags: Flags::CLOCK_UNSET,
+                ..reading(i)
+            })
+            .collect()
+    }
+
+    /// The fixture, then 2 readings of boot 2 whose clock was never set, a
+    /// timed reading of boot 3 at T0 + 40 min, and 3 readings of boot 4
+    /// whose clock was never set.
+    fn fixture_with_untimed(name: &str) -> (tempfile::TempDir, PathBuf) {
+        let (dir, db) = fixture(name);
+        let mut s = Store::open(&db).expect("open");
+        let dev = "HGM-L2-0007";
+        s.insert_readings(dev, &untimed_readings(2, 2), Source::Log)
+            .expect("boot 2");
+        let timed = Reading {
+            seq: Seq {
+                boot: 3,
+                counter: 0,
+            },
+            time_ms: (T0 + 40 * 60_000) as u64,
+            ..reading(0)
+        };
+        s.insert_readings(dev, &[timed], Source::Log)
+            .expect("boot 3");
+        s.insert_readings(dev, &untimed_readings(4, 3), Source::Log)
+            .expect("boot 4");
+        (dir, db)
+    }
+
+    /// Readings with no wall-clock time: those between records in range are
+    /// in the bundle with no `time_utc` (format 1 gave them a date in
+    /// 1970), those outside the slice are counted as left out; lab values
+    /// as entered. Format 1 bundles still verify by their own rules.
+    #[test]
+    fn untimed_readings_are_counted_or_shown_without_a_date() {
+        let (dir, db) = fixture_with_untimed("u");
+        let store = Store::open_read_only(&db).expect("ro");
+        let out = dir.path().join("v2");
+        let s = export(&store, "u.db", Some(T0), T0 + 3_600_000, &out).expect("export");
+        assert_eq!(s.manifest.format, FORMAT);
+        // 12 + 2 inside the slice + 1; the 3 of boot 4 come after it.
+        assert_eq!(s.manifest.records.get("readings"), Some(&15));
+        let left: BTreeMap<String, u64> = [("readings".to_string(), 3)].into();
+        assert_eq!(s.manifest.untimed_left_out.as_ref(), Some(&left));
+        let mut said = Vec::new();
+        crate::views::write_export(&s, &mut said).unwrap();
+        let said = String::from_utf8(said).unwrap();
+        assert!(
+            said.contains("  3 readings without a wall-clock time"),
+            "{said}"
+        );
+        let csv = std::fs::read_to_string(out.join("readings.csv")).unwrap();
+        assert!(!csv.contains("1970"), "{csv}");
+        let mut rdr = csv::Reader::from_reader(csv.as_bytes());
+        let h = rdr.headers().unwrap().clone();
+        let col = |n: &str| h.iter().position(|c| c == n).unwrap();
+        let rows: Vec<csv::StringRecord> = rdr.records().map(Result::unwrap).collect();
+        let unset: Vec<&csv::StringRecord> = rows
+            .iter()
+            .filter(|r| r[col("flag_words")].contains("clock_unset"))
+            .collect();
+        assert_eq!(unset.len(), 2);
+        assert!(unset.iter().all(|r| r[col("time_utc")].is_empty()));
+        assert!(rows
+            .iter()
+            .filter(|r| !r[col("flag_words")].contains("clock_unset"))
+            .all(|r| r[col("time_utc")].starts_with("2026-")));
+        let lab = std::fs::read_to_string(out.join("lab_samples.csv")).unwrap();
+        assert!(lab.contains(",14.4,"), "{lab}");
+        assert!(check(&out).ok(), "{:?}", check(&out).problems);
+        assert!(verify(Some(&out), Some(&store)).unwrap().ok());
+
+        // Later start: the 2 of boot 2 now lie before the slice too.
+        let late = export(
+            &store,
+            "u.db",
+            Some(T0 + 30 * 60_000),
+            T0 + 3_600_000,
+            &dir.path().join("late"),
+        )
+        .expect("export");
+        let left: BTreeMap<String, u64> = [("readings".to_string(), 5)].into();
+        assert_eq!(late.manifest.untimed_left_out, Some(left));
+        assert_eq!(late.manifest.records.get("readings"), Some(&1));
+        // Nothing in range says how many records are in no range at all.
+        let none = export(&store, "u.db", Some(0), 1, &dir.path().join("none")).unwrap_err();
+        assert!(
+            none.to_string()
+                .contains("(5 record(s) have no wall-clock time"),
+            "{none}"
+        );
+
+        // A format 1 bundle (written before 2026-12-05) verifies by its own
+        // rules: 1970 dates and lab values at 2 decimals.
+        let v1 = dir.path().join("v1");
+        export_as(
+            &store,
+            "u.db",
+            (Some(T0), T0 + 3_600_000),
+            &v1,
+            CsvRules::V1,
+        )
+        .expect("v1");
+        assert!(std::fs::read_to_string(v1.join("readings.csv"))
+            .unwrap()
+            .contains(",1970-01-01T00:00:05"));
+        assert!(std::fs::read_to_string(v1.join("lab_samples.csv"))
+            .unwrap()
+            .contains(",14.40,"));
+        assert!(check(&v1).ok(), "{:?}", check(&v1).problems);
+        assert!(verify(Some(&v1), Some(&store)).unwrap().ok());
+        // The rules follow the manifest's format: the same files said to be
+        // format 2 differ in those cells.
+        let mut m: Manifest =
+            serde_json::from_slice(&std::fs::read(v1.join(MANIFEST)).unwrap()).unwrap();
+        m.format = FORMAT.into();
+        let relabelled = with_manifest(&v1, &dir.path().join("relabelled"), &m);
+        let problems: Vec<String> = check(&relabelled)
+            .problems
+            .iter()
+            .map(|p| p.to_string())
+            .collect();
+        assert_eq!(problems.len(), 3, "{problems:?}");
+        // And a format this tool does not know is refused by name.
+        m.format = "fringe-audit-bundle/3".into();
+        let future = with_manifest(&v1, &dir.path().join("future"), &m);
+        let e = verify(Some(&future), None).unwrap_err().to_string();
+        assert!(e.contains("format `fringe-audit-bundle/3`"), "{e}");
     }
 
     #[test]

@@ -5,6 +5,7 @@
 //!
 //! | column (by name) | written as | why |
 //! |---|---|---|
+//! | `lab_moisture_pct` | as entered (shortest) | a lab value is what the lab's method resolves (Karl Fischer on polymer pellets gives 0.045 %; common practice, no source): rounding it to 0.01 % would lose a digit the lab measured |
 //! | `*moisture_pct`, `uncertainty_pct`, `interval_*_pct` | 2 decimals (0.01 %) | the device's standard uncertainty is 0.1 % or more, and its log keeps moisture as a half float (steps of 0.008 % below 16 %, 0.016 % to 32 %): a third decimal carries nothing |
 //! | `temperature_c` | 2 decimals (0.01 C) | the RTD chain resolves about 0.01 C; its accuracy is coarser |
 //! | `eps*_re`, `eps*_im` | 4 significant digits | the permittivity noise is about 0.02 at eps' of 3 to 30 (1 part in 10^3) |
@@ -39,7 +40,9 @@ pub fn rule_for(column: &str) -> Rule {
         && c.ends_with("_s")
         && c.len() <= 5
         && c[1..c.len() - 2].chars().all(|ch| ch.is_ascii_digit());
-    if c.ends_with("_pct") || c == "temperature_c" {
+    if c == "lab_moisture_pct" {
+        Rule::Shortest
+    } else if c.ends_with("_pct") || c == "temperature_c" {
         Rule::Decimals(2)
     } else if eps || cell_channel {
         Rule::Significant(4)
@@ -137,7 +140,9 @@ mod tests {
     #[test]
     fn columns_have_their_rules() {
         assert_eq!(rule_for("moisture_pct"), Rule::Decimals(2));
-        assert_eq!(rule_for("lab_moisture_pct"), Rule::Decimals(2));
+        assert_eq!(rule_for("lab_moisture_pct"), Rule::Shortest);
+        assert_eq!(cell("lab_moisture_pct", Some(0.045)), "0.045");
+        assert_eq!(cell("lab_moisture_pct", Some(14.6)), "14.6");
         assert_eq!(rule_for("predicted_moisture_pct"), Rule::Decimals(2));
         assert_eq!(rule_for("interval_low_pct"), Rule::Decimals(2));
         assert_eq!(rule_for("eps1_re"), Rule::Significant(4));

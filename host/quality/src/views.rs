@@ -688,6 +688,12 @@ pub fn write_export(s: &audit::ExportSummary, w: &mut dyn Write) -> std::io::Res
             ids.join(", ")
         )?;
     }
+    for (t, n) in m.untimed_left_out.iter().flatten().filter(|(_, n)| **n > 0) {
+        writeln!(
+            w,
+            "  {n} {t} without a wall-clock time (device clock never set in that boot, no clock event stored) left out: they lie in no range (`fringe export` without --from/--to writes them); the manifest counts them"
+        )?;
+    }
     writeln!(
         w,
         "  database chain head at export: position {}, {}",
