@@ -1786,10 +1786,24 @@ impl Stored {
         };
         // The Modbus settings: absent on a new device or flash written by
         // firmware before protocol 1.2, and a stored value that no longer
-        // passes the check, read as the defaults.
-        let modbus = storage
-            .get::<ModbusSettings>(key::MODBUS)?
-            .filter(|m| SerialLine::from(*m).validate().is_ok())
+        // passes the check, read as the defaults. Where they are absent but
+        // were written (lost with a settings map erased as damaged, also
+        // after a power cut in that repair), they are taken back from the
+        // newest change the event ring still holds, and stored again, so that
+        // a device on a shared RS-485 bus keeps its unit id and line rather
+        // than answering as unit 1; without one, the defaults.
+        let valid = |m: &ModbusSettings| SerialLine::from(*m).validate().is_ok();
+        let stored_modbus = storage.get::<ModbusSettings>(key::MODBUS)?.filter(valid);
+        let recovered = match stored_modbus {
+            None => storage.newest_logged_modbus()?.filter(valid),
+            Some(_) => None,
+        };
+        if let Some(m) = recovered {
+            // Not fatal: the settings are in force this boot either way.
+            let _ = storage.put(key::MODBUS, &m);
+        }
+        let modbus = stored_modbus
+            .or(recovered)
             .unwrap_or(SerialLine::DEFAULT.into());
         let active_slot = storage.get::<Option<u8>>(key::ACTIVE_SLOT)?.flatten();
         let active = load_active(storage, active_slot)?;

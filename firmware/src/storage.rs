@@ -543,6 +543,29 @@ impl<S: NorFlash> Storage<S> {
         Ok(())
     }
 
+    /// The settings of the newest [`fringe_protocol::EventKind::ModbusChanged`]
+    /// event the ring still holds (one pass, oldest first): what the Modbus
+    /// settings were last written to, where the settings map that held them
+    /// was lost.
+    ///
+    /// # Errors
+    /// [`StorageError`] on flash failure.
+    pub fn newest_logged_modbus(
+        &mut self,
+    ) -> Result<Option<fringe_protocol::ModbusSettings>, StorageError> {
+        let mut newest = None;
+        let mut q = queue!(self, events);
+        let mut it = run(q.iter())?;
+        while let Some(e) = run(it.next(&mut self.buf))? {
+            if let Ok((ev, _)) = postcard::take_from_bytes::<Event>(&e) {
+                if let fringe_protocol::EventKind::ModbusChanged { new, .. } = ev.kind {
+                    newest = Some(new);
+                }
+            }
+        }
+        Ok(newest)
+    }
+
     /// Events numbered `>= from`, at most `max` (and [`EVENT_CHUNK`]).
     ///
     /// # Errors

@@ -266,3 +266,68 @@ fn the_slave_follows_the_device_settings() {
     assert_eq!(slave.unit_id(), 12);
     assert_eq!(slave.timing().t35_us, 1750);
 }
+
+/// A reboot on the same flash with every page of the settings map marked
+/// closed (damage the storage crate cannot repair: the map is erased).
+fn damage_map_and_boot(b: Bench, seed: u64) -> Bench {
+    use embedded_storage::nor_flash::{NorFlash, ReadNorFlash};
+    let mut b = b;
+    let map = b.dev.storage_mut().layout().map.clone();
+    let (_, mut flash, _) = b.dev.into_parts();
+    let (page, word) = (Flash::ERASE_SIZE as u32, Flash::WRITE_SIZE);
+    assert!(flash.capacity() > map.end as usize);
+    for p in (map.start..map.end).step_by(page as usize) {
+        for at in [p, p + page - word as u32] {
+            flash
+                .write(at, &vec![0u8; word])
+                .expect("mark the page closed");
+        }
+    }
+    Bench::on_flash(seed, Scenario::default(), flash)
+}
+
+/// The settings map lost (erased as damaged, or erased and the power cut
+/// before anything was stored again): the Modbus settings come back from
+/// the newest change the event ring holds, are stored again and stay; on
+/// a device whose ring holds none, the defaults.
+#[test]
+fn modbus_settings_lost_with_the_settings_map_come_back_from_the_event_ring() {
+    let mut b = Bench::new(60, Scenario::default());
+    b.settle();
+    assert_eq!(b.ok(Request::WriteModbus(DEFAULTS)), Response::Ack);
+    assert_eq!(b.ok(Request::WriteModbus(SHARED)), Response::Ack);
+    let mut b = damage_map_and_boot(b, 61);
+    assert!(
+        b.events()
+            .iter()
+            .any(|e| matches!(e.kind, EventKind::StorageRepaired)),
+        "the repair is logged"
+    );
+    assert_eq!(read(&mut b), SHARED, "the newest change, not the first");
+    assert_eq!(b.dev.modbus_line(), SerialLine::from(SHARED));
+    // Stored again: kept by the next boot from the map itself.
+    assert_eq!(
+        b.dev
+            .storage_mut()
+            .get::<ModbusSettings>(key::MODBUS)
+            .unwrap(),
+        Some(SHARED)
+    );
+    let mut b = b.reboot(62);
+    assert_eq!(read(&mut b), SHARED);
+
+    // A power cut after the repair's erase, before anything was stored
+    // again, leaves an empty map that is not damaged: the same.
+    let map = b.dev.storage_mut().layout().map.clone();
+    let (_, mut flash, _) = b.dev.into_parts();
+    embedded_storage::nor_flash::NorFlash::erase(&mut flash, map.start, map.end).unwrap();
+    let mut b = Bench::on_flash(63, Scenario::default(), flash);
+    assert_eq!(read(&mut b), SHARED);
+
+    // A device that never had its Modbus settings written: the defaults.
+    let mut b = Bench::new(64, Scenario::default());
+    b.settle();
+    let mut b = damage_map_and_boot(b, 65);
+    assert_eq!(read(&mut b), DEFAULTS);
+    assert_eq!(b.dev.modbus_line(), SerialLine::DEFAULT);
+}
