@@ -324,6 +324,9 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     settings: Settings,
     /// The Modbus RTU slave's settings (protocol 1.2; the board applies them).
     modbus: ModbusSettings,
+    /// Number of the newest `ModbusChanged` event in the ring: the copy a
+    /// lost settings map takes them back from (see [`modbus_copy_due`]).
+    modbus_copy: Option<u32>,
     /// The protocol version the host announced in `Identify` (`None`
     /// before one): events it cannot decode are sent in an older form.
     host_version: Option<Version>,
@@ -567,6 +570,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             active_slot: st.active_slot,
             settings: st.settings,
             modbus: st.modbus,
+            modbus_copy: st.modbus_copy,
             host_version: None,
             output_ma,
             output_fault,
@@ -835,6 +839,29 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         };
         self.next_event = self.next_event.wrapping_add(1);
         let _ = self.storage.append_event(&ev);
+        if matches!(ev.kind, EventKind::ModbusChanged { .. }) {
+            self.modbus_copy = Some(ev.number);
+        } else if modbus_copy_due(
+            self.modbus_copy.map(|n| (n, self.modbus)),
+            self.modbus,
+            self.next_event,
+            self.storage.event_capacity(),
+        ) {
+            // The copy renewed (old = new), logged, not sent: a host reads
+            // it with the log.
+            let copy = Event {
+                number: self.next_event,
+                boot: self.boot,
+                time_ms: self.time_ms(now_ms).0,
+                kind: EventKind::ModbusChanged {
+                    old: self.modbus,
+                    new: self.modbus,
+                },
+            };
+            self.next_event = self.next_event.wrapping_add(1);
+            let _ = self.storage.append_event(&copy);
+            self.modbus_copy = Some(copy.number);
+        }
         ev
     }
 
@@ -1706,6 +1733,29 @@ struct Stored {
     active_slot: Option<u8>,
     settings: Settings,
     modbus: ModbusSettings,
+    /// Number of the newest `ModbusChanged` event in the ring.
+    modbus_copy: Option<u32>,
+}
+
+/// Whether the Modbus settings `m` in force need a fresh copy in the event
+/// ring, where `newest` is the newest one it holds (number, settings) and
+/// `next` the number the next event takes: settings other than the
+/// defaults whose copy is missing, differs, or is `capacity / 2` events
+/// old or more (so that events the device logs for any client, a wrong
+/// key among them, do not push the only copy out before it is renewed).
+fn modbus_copy_due(
+    newest: Option<(u32, ModbusSettings)>,
+    m: ModbusSettings,
+    next: u32,
+    capacity: u32,
+) -> bool {
+    if m == ModbusSettings::from(SerialLine::DEFAULT) {
+        return false;
+    }
+    match newest {
+        Some((n, copy)) => copy != m || next.wrapping_sub(n) >= (capacity / 2).max(1),
+        None => true,
+    }
 }
 
 impl Stored {
@@ -1794,8 +1844,11 @@ impl Stored {
         // than answering as unit 1; without one, the defaults.
         let valid = |m: &ModbusSettings| SerialLine::from(*m).validate().is_ok();
         let stored_modbus = storage.get::<ModbusSettings>(key::MODBUS)?.filter(valid);
+        // A ring that does not read gives no copy (the defaults), not a
+        // device that cannot boot.
+        let logged_modbus = storage.newest_logged_modbus().unwrap_or(None);
         let recovered = match stored_modbus {
-            None => storage.newest_logged_modbus()?.filter(valid),
+            None => logged_modbus.map(|(_, m)| m).filter(valid),
             Some(_) => None,
         };
         if let Some(m) = recovered {
@@ -1810,21 +1863,40 @@ impl Stored {
         // Boot events, numbered on from the log; their time is 0 (ms since
         // this boot: the host has not set the clock yet).
         let mut next_event = storage.last_event().map_or(0, |n| n.wrapping_add(1));
-        let mut boot_event = |storage: &mut Storage<S>, kind| {
+        let boot_event = |storage: &mut Storage<S>, next_event: &mut u32, kind| {
             let ev = Event {
-                number: next_event,
+                number: *next_event,
                 boot,
                 time_ms: 0,
                 kind,
             };
-            next_event = next_event.wrapping_add(1);
+            *next_event = next_event.wrapping_add(1);
             // Not fatal, as in `log_event`.
             let _ = storage.append_event(&ev);
         };
         if report.repaired {
-            boot_event(storage, EventKind::StorageRepaired);
+            boot_event(storage, &mut next_event, EventKind::StorageRepaired);
         }
-        boot_event(storage, EventKind::Boot { reset_cause });
+        boot_event(storage, &mut next_event, EventKind::Boot { reset_cause });
+        // The ring's copy of the Modbus settings: a recovery is logged (from
+        // the defaults the map's loss left); settings other than the
+        // defaults whose newest copy is missing, differs or has aged into
+        // the older half of the ring are logged again (old = new).
+        let mut modbus_copy = logged_modbus.map(|(n, _)| n);
+        let copy_due = modbus_copy_due(logged_modbus, modbus, next_event, storage.event_capacity());
+        if recovered.is_some() || copy_due {
+            modbus_copy = Some(next_event);
+            let old = if recovered.is_some() {
+                SerialLine::DEFAULT.into()
+            } else {
+                modbus
+            };
+            boot_event(
+                storage,
+                &mut next_event,
+                EventKind::ModbusChanged { old, new: modbus },
+            );
+        }
         Ok(Self {
             ident,
             boot,
@@ -1835,6 +1907,7 @@ impl Stored {
             active_slot,
             settings,
             modbus,
+            modbus_copy,
         })
     }
 }

@@ -19,7 +19,7 @@
 //! | 5 | 4-20 mA configuration [`fringe_protocol::OutputConfig`] (protocol 1.0; read at boot when 7 is absent) |
 //! | 6 | self-test scratch value (written at most once a boot) |
 //! | 7 | device settings [`fringe_protocol::Settings`] (tag, interval, span, failure level, stale timeout) |
-//! | 8 | Modbus RTU settings [`fringe_protocol::ModbusSettings`] (unit id, baud rate, parity; protocol 1.2: absent on flash written by older firmware, which reads as the defaults) |
+//! | 8 | Modbus RTU settings [`fringe_protocol::ModbusSettings`] (unit id, baud rate, parity; protocol 1.2: absent on flash written by older firmware, which reads as the defaults; absent after being written, they are taken back from the newest `ModbusChanged` event: `Storage::newest_logged_modbus`) |
 //! | 16..=23 | product calibration slot 0..=7, `Option<ProductCal>` |
 //!
 //! One map item is written atomically (a power cut leaves the old value or
@@ -552,14 +552,14 @@ impl<S: NorFlash> Storage<S> {
     /// [`StorageError`] on flash failure.
     pub fn newest_logged_modbus(
         &mut self,
-    ) -> Result<Option<fringe_protocol::ModbusSettings>, StorageError> {
+    ) -> Result<Option<(u32, fringe_protocol::ModbusSettings)>, StorageError> {
         let mut newest = None;
         let mut q = queue!(self, events);
         let mut it = run(q.iter())?;
         while let Some(e) = run(it.next(&mut self.buf))? {
             if let Ok((ev, _)) = postcard::take_from_bytes::<Event>(&e) {
                 if let fringe_protocol::EventKind::ModbusChanged { new, .. } = ev.kind {
-                    newest = Some(new);
+                    newest = Some((ev.number, new));
                 }
             }
         }

@@ -284,6 +284,14 @@ fn a_repeated_self_test_writes_the_flash_once_a_boot() {
         assert!(storage_ok(&r), "self-test {i}");
         assert_eq!((w, e), (measure_w, 0), "self-test {i} after the first");
     }
+    // The later ones do read the record back: one changed under them
+    // (key 6, the scratch record) fails the storage check.
+    b.dev.storage_mut().put(6, &0xdead_beef_u32).unwrap();
+    let (_, _, r) = flash_ops(&mut b, Request::SelfTest);
+    assert!(
+        !storage_ok(&r),
+        "a scratch record that reads back otherwise"
+    );
     // A new boot writes (and checks) the record again.
     let (_, flash, _) = b.dev.into_parts();
     let mut b = Bench::with_config(8, Scenario::default(), flash, quiet_config());

@@ -331,3 +331,63 @@ fn modbus_settings_lost_with_the_settings_map_come_back_from_the_event_ring() {
     assert_eq!(read(&mut b), DEFAULTS);
     assert_eq!(b.dev.modbus_line(), SerialLine::DEFAULT);
 }
+
+/// The newest `ModbusChanged` the event ring holds, with its number.
+fn newest_copy(b: &mut Bench) -> Option<(u32, ModbusSettings)> {
+    b.dev.storage_mut().newest_logged_modbus().unwrap()
+}
+
+/// Events that any client or the power can make (wrong-key writes, boots)
+/// fill the ring many times over: the device renews its copy of settings
+/// other than the defaults before it ages out (at half the ring), so a
+/// settings map lost after them still gives the settings back.
+#[test]
+fn the_rings_copy_of_the_modbus_settings_is_renewed_before_it_ages_out() {
+    let mut b = Bench::new(70, Scenario::default());
+    b.settle();
+    let cap = b.dev.storage_mut().event_capacity();
+    assert_eq!(cap, 78, "two 4 KiB pages of events");
+    assert_eq!(b.ok(Request::WriteModbus(SHARED)), Response::Ack);
+    let (written, _) = newest_copy(&mut b).expect("the write's event");
+
+    // Wrong-key writes, each checked (the hold waited out), each logged.
+    let evil = Request::WriteCellCal(cell_cal(9.9, 1.0));
+    for i in 0..3 * cap {
+        let tag = sign(&[0x43; 32], SERIAL, 5_000 + i, &evil).unwrap();
+        let f = b.ask_with(evil.clone(), Some(tag));
+        assert_eq!(Bench::error_code(&f), Some(ErrorCode::AuthFailed));
+        b.tick(fringe_firmware::device::MAX_WRITE_HOLD_MS + 1_000);
+    }
+    let last = b.dev.storage_mut().last_event().unwrap();
+    assert!(last - written > 2 * cap, "{} events logged", last - written);
+    let (n, copy) = newest_copy(&mut b).expect("a copy in the ring");
+    assert_eq!(copy, SHARED);
+    assert!(last - n < cap / 2 + 1, "copy {n}, newest event {last}");
+    identify(&mut b, 2);
+    let renewed = b
+        .events()
+        .into_iter()
+        .filter(|e| {
+            matches!(e.kind, EventKind::ModbusChanged { old, new } if old == SHARED && new == SHARED)
+        })
+        .count();
+    assert!(renewed >= 4, "{renewed} renewals");
+
+    // Boots alone (one event each) do the same.
+    for i in 0..2 * cap {
+        b = b.reboot(100 + u64::from(i));
+    }
+    let last = b.dev.storage_mut().last_event().unwrap();
+    let (n, copy) = newest_copy(&mut b).expect("a copy in the ring");
+    assert_eq!(copy, SHARED);
+    assert!(last - n < cap / 2 + 1, "copy {n}, newest event {last}");
+
+    let mut b = damage_map_and_boot(b, 200);
+    assert_eq!(read(&mut b), SHARED);
+    identify(&mut b, 2);
+    // The recovery is logged: from the defaults the loss left.
+    assert!(b.events().iter().any(|e| matches!(
+        e.kind,
+        EventKind::ModbusChanged { old, new } if old == DEFAULTS && new == SHARED
+    )));
+}
