@@ -2106,6 +2106,51 @@ mod tests {
         assert!(e.contains("format `fringe-audit-bundle/3`"), "{e}");
     }
 
+    /// A bundle as `fringe-fuzz`'s seeds hold it: the files split by NUL
+    /// bytes in the target's order.
+    fn seed_bundle(name: &str) -> BTreeMap<String, Vec<u8>> {
+        let p = Path::new(env!("CARGO_MANIFEST_DIR"))
+            .join("../fuzz/seeds/audit_bundle")
+            .join(name);
+        let data = std::fs::read(&p).unwrap_or_else(|e| panic!("{}: {e}", p.display()));
+        let names = [
+            MANIFEST,
+            RECORDS,
+            CALS_IN_FORCE,
+            "devices.csv",
+            "readings.csv",
+            "events.csv",
+            "calibrations.csv",
+            "lab_samples.csv",
+            "reference_checks.csv",
+        ];
+        names
+            .iter()
+            .zip(data.split(|b| *b == 0))
+            .map(|(n, b)| ((*n).to_string(), b.to_vec()))
+            .collect()
+    }
+
+    /// A format 1 bundle written by the tool of 2026-12-02 (the demo's
+    /// first minutes, kept as a fuzz seed) still verifies: the format 1
+    /// rules are those that tool wrote, not today's rules read back.
+    #[test]
+    fn a_format_1_bundle_written_by_an_older_tool_still_verifies() {
+        let files = seed_bundle("demo-first-minutes-whole");
+        let m: Manifest = serde_json::from_slice(&files[MANIFEST]).unwrap();
+        assert_eq!(m.format, FORMAT_1);
+        assert_eq!(m.untimed_left_out, None);
+        let r = verify_files(&files).unwrap();
+        // The seed holds every file but README.txt.
+        assert_eq!(
+            r.problems,
+            vec![Problem::FileMissing {
+                file: "README.txt".into()
+            }]
+        );
+        assert_eq!(r.records_checked, 6);
+    }
+
     #[test]
     fn untouched_bundle_verifies_alone_and_against_the_database() {
         let (dir, db) = fixture("a");

@@ -1238,7 +1238,8 @@ pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> Result<
     for r in rows {
         c.write_record([
             r.sample_id.clone(),
-            cell(PREDICT_COLUMNS[1], r.lab_pct),
+            // The lab value as the lab gave it.
+            cell("lab_moisture_pct", r.lab_pct),
             cell(PREDICT_COLUMNS[2], r.moisture_pct.map(f64::from)),
             cell(PREDICT_COLUMNS[3], Some(f64::from(r.uncertainty_pct))),
             cell(PREDICT_COLUMNS[4], r.interval_pct.map(|i| i.0)),

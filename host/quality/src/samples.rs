@@ -625,7 +625,16 @@ fn sample_cells(s: &RefSample) -> Vec<(&'static str, String)> {
         COLUMNS[1..]
             .iter()
             .zip(values)
-            .map(|(c, v)| (*c, crate::numbers::cell(c, v))),
+            // The lab value as the lab gave it (`lab_moisture_pct`'s rule),
+            // not rounded as a device reading is.
+            .map(|(c, v)| {
+                let rule = if *c == COLUMNS[1] {
+                    "lab_moisture_pct"
+                } else {
+                    c
+                };
+                (*c, crate::numbers::cell(rule, v))
+            }),
     );
     if let Some(v) = s.bulk_density_kg_m3 {
         cells.push((DENSITY_COLUMN, v.to_string()));
@@ -878,7 +887,7 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.3
 note,eps2_im,sample_id,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,temperature_c,moisture_pct,moisture_basis
 first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.34567,
 ,0.9,S2,1e6,6.4,13.0,2e7,5.0,22.0,13.1,
-,0.9000,S3,1000000,6.400,13.00,20000000,5.000,22.00,14.00,wet
+,0.9000,S3,1000000,6.400,13.00,20000000,5.000,22.00,14,wet
 "
         );
         let back = parse(&out).expect("merged table reads");
@@ -901,7 +910,7 @@ first,0.8,S1,1000000,6.1,12.5,20000000,4.9,21.5,12.34567,
             out,
             "\u{feff}sample_id,temperature_c,freq1_hz,eps1_re,eps1_im,freq2_hz,eps2_re,eps2_im,moisture_pct,moisture_basis\r\n\
              S1,21.5,1e6,6.1,12.5,2e7,4.9,0.8,,\r\n\
-             S3,22.00,1000000,6.400,13.00,20000000,5.000,0.9000,14.00,wet\r\n"
+             S3,22.00,1000000,6.400,13.00,20000000,5.000,0.9000,14,wet\r\n"
         );
     }
 
