@@ -2151,6 +2151,48 @@ mod tests {
         assert_eq!(r.records_checked, 6);
     }
 
+    /// A format 1 bundle written by the tool as it was before format 2
+    /// (commit 3785fc1, from the store of `fixture_with_untimed` but for
+    /// the last boot, plus a Karl Fischer lab value of 0.045 %), kept in
+    /// tests/data: its readings taken before the clock was set carry 1970
+    /// dates and its lab values 2 decimals, and it verifies by format 1's
+    /// rules; read by format 2's, exactly those cells differ.
+    #[test]
+    fn a_format_1_bundle_with_untimed_readings_and_lab_values_still_verifies() {
+        let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data/audit-bundle-v1-untimed");
+        let r = check(&dir);
+        assert!(r.ok(), "{:?}", r.problems);
+        assert_eq!(r.records_checked, 18);
+        let readings = std::fs::read_to_string(dir.join("readings.csv")).unwrap();
+        assert_eq!(readings.matches(",1970-01-01T00:00:0").count(), 2);
+        let lab = std::fs::read_to_string(dir.join("lab_samples.csv")).unwrap();
+        assert!(lab.contains(",14.40,") && lab.contains(",0.04,"), "{lab}");
+        let tmp = tempfile::tempdir().unwrap();
+        let mut m: Manifest =
+            serde_json::from_slice(&std::fs::read(dir.join(MANIFEST)).unwrap()).unwrap();
+        assert_eq!(m.format, FORMAT_1);
+        m.format = FORMAT.into();
+        let relabelled = with_manifest(&dir, &tmp.path().join("as-2"), &m);
+        let mut changed: Vec<String> = check(&relabelled)
+            .problems
+            .iter()
+            .map(|p| match p {
+                Problem::CellChanged { file, column, .. } => format!("{file} {column}"),
+                other => panic!("{other:?}"),
+            })
+            .collect();
+        changed.sort();
+        assert_eq!(
+            changed,
+            [
+                "lab_samples.csv lab_moisture_pct",
+                "lab_samples.csv lab_moisture_pct",
+                "readings.csv time_utc",
+                "readings.csv time_utc"
+            ]
+        );
+    }
+
     #[test]
     fn untouched_bundle_verifies_alone_and_against_the_database() {
         let (dir, db) = fixture("a");
