@@ -319,7 +319,7 @@ mod tests {
             one.starts_with(&header.replace('\n', ",moisture_basis\n")),
             "{one}"
         );
-        let typed = one.replacen(",,13.50,", ",J. Hale,13.5012,", 1);
+        let typed = one.replacen(",,13.5,", ",J. Hale,13.5012,", 1);
         assert_ne!(typed, one, "{one}");
         std::fs::write(&path, &typed).unwrap();
         save_rows(&path, &[sample("A2")], Basis::Wet).unwrap();
@@ -358,7 +358,7 @@ mod tests {
         assert!(
             kept.lines()
                 .nth(1)
-                .is_some_and(|l| l.starts_with("A2,13.50,")),
+                .is_some_and(|l| l.starts_with("A2,13.5,")),
             "{kept}"
         );
     }
