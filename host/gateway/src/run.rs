@@ -1345,6 +1345,7 @@ impl<S: RecordStore> Worker<S> {
                 self.table.set_connected(unit, true);
                 self.say(serial, Level::Info, "reconnected".into());
             }
+            Note::CalibrationObserved(o) => self.say(serial, Level::Info, o.to_string()),
             _ => {}
         }
     }

@@ -19,12 +19,14 @@ pub mod backfill;
 pub mod clock;
 pub mod density;
 mod error;
+pub mod observe;
 mod session;
 
 pub use backfill::{next_seq, plan_backfill, Backfill, LogRange};
 pub use clock::{check_clock, set_clock, sync_clock, ClockCheck, ClockSync};
 pub use density::{check_density, density_counter, set_density, set_density_after, DensityError};
 pub use error::LineError;
+pub use observe::{record_unrecorded, Observed};
 pub use session::{
     active_product_cal, pull, register, Ctx, Note, Polled, PullSummary, Session, SessionOptions,
     Summary,

@@ -17,7 +17,7 @@ use std::time::{Duration, Instant};
 use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
 use fringe_protocol::{
-    Capabilities, DeviceFrame, Identity, ProductCal, Reading, Request, Response, Seq,
+    CalId, Capabilities, DeviceFrame, Identity, ProductCal, Reading, Request, Response, Seq,
 };
 use fringe_store::{Batcher, DeviceInfo, InsertStats, RecordStore, StoreError};
 
@@ -89,6 +89,9 @@ pub enum Note<'a> {
     Reconnecting(&'a LineError),
     /// The device answers again.
     Reconnected,
+    /// A calibration found on the device with no record in the store was
+    /// recorded as found ([`crate::observe`]).
+    CalibrationObserved(crate::Observed),
 }
 
 /// What a session did so far.
@@ -198,6 +201,20 @@ pub fn active_product_cal(link: &mut Link) -> Result<Option<ProductCal>, LinkErr
     }
 }
 
+/// Records the calibrations found on the device with no record in the
+/// store, and tells each.
+fn observe(
+    link: &mut Link,
+    store: &mut (impl RecordStore + ?Sized),
+    serial: &str,
+    ctx: &mut Ctx<'_>,
+) -> Result<(), LineError> {
+    for o in crate::observe::record_unrecorded(link, store, serial)? {
+        (ctx.tell)(Note::CalibrationObserved(o));
+    }
+    Ok(())
+}
+
 fn identity(link: &Link) -> Result<Identity, LinkError> {
     link.identity().cloned().ok_or(LinkError::Unexpected {
         request: "Identify",
@@ -222,6 +239,23 @@ pub struct Session {
     summary: Summary,
     /// A reconnect left it to be caught up and subscribed again.
     resume: bool,
+    /// Calibration ids the store has a record of, or that were looked for
+    /// on the device once: a reading carrying another (a calibration
+    /// written or selected by another tool while the session runs) has the
+    /// device's calibrations read and recorded ([`crate::observe`]).
+    known_cals: Vec<CalId>,
+}
+
+/// The calibration ids `store` has a record of for `serial`.
+fn recorded_ids(
+    store: &(impl RecordStore + ?Sized),
+    serial: &str,
+) -> Result<Vec<CalId>, StoreError> {
+    Ok(store
+        .calibrations(serial)?
+        .into_iter()
+        .map(|c| c.cal.cal_id)
+        .collect())
 }
 
 impl Session {
@@ -241,6 +275,7 @@ impl Session {
         let id = identity(&link)?;
         let serial = register(store, &id)?;
         clock(&mut link, opts.key.as_ref(), ctx)?;
+        observe(&mut link, store, &serial, ctx)?;
         let period_ms = if id.capabilities.contains(Capabilities::SETTINGS) {
             let interval = link.settings()?.interval_ms;
             if let Some(p) = opts.period_ms.filter(|p| *p != interval) {
@@ -254,6 +289,7 @@ impl Session {
             opts.period_ms.unwrap_or(1000)
         };
         let last = store.last_seq(&serial)?;
+        let known_cals = recorded_ids(store, &serial)?;
         Ok(Session {
             link,
             batcher: Batcher::new(&serial),
@@ -265,6 +301,7 @@ impl Session {
             latest: None,
             summary: Summary::default(),
             resume: false,
+            known_cals,
         })
     }
 
@@ -497,6 +534,16 @@ impl Session {
             }
             _ => {}
         }
+        let unknown = [r.cell_cal, r.product_cal]
+            .into_iter()
+            .filter(|id| *id != CalId::NONE && !self.known_cals.contains(id))
+            .collect::<Vec<_>>();
+        if !unknown.is_empty() {
+            observe(&mut self.link, store, &self.serial, ctx)?;
+            self.known_cals = recorded_ids(store, &self.serial)?;
+            // Asked once: an id no slot holds any more stays unknown.
+            self.known_cals.extend(unknown);
+        }
         self.batcher.push(r, fringe_store::Source::Stream, now);
         self.last = Some(self.last.map_or(r.seq, |x| x.max(r.seq)));
         self.latest = Some(r);
@@ -567,6 +614,7 @@ impl Session {
                 (ctx.tell)(Note::Reconnected);
                 let key = self.key;
                 clock(&mut self.link, key.as_ref(), ctx)?;
+                observe(&mut self.link, store, &self.serial, ctx)?;
                 self.resume = true;
                 Ok(true)
             }
@@ -670,6 +718,7 @@ pub fn pull(
     let id = identity(link)?;
     let serial = register(store, &id)?;
     let clock = clock(link, key, ctx)?;
+    observe(link, store, &serial, ctx)?;
     let status = link.status()?;
     // Readings to expect: those the log holds that the store lacks.
     let held = store.count_between(&serial, status.log_first, status.next_seq)?;

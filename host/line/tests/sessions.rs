@@ -181,3 +181,162 @@ fn densities_sent_back_to_back_all_land() {
     // The virtual clock moves in small steps: most sends share a tenth.
     assert!(same_tenth > 0, "no two sends within one tenth of a second");
 }
+
+/// A device calibrated by another tool (signed writes straight to the
+/// device, nothing recorded in this store): a session records its cell
+/// calibration and each product slot's calibration as found, with the
+/// calibration as read, once; a calibration the store has a record of is
+/// left alone.
+#[test]
+fn calibrations_found_on_the_device_without_a_record_are_recorded_once() {
+    use fringe_protocol::{auth::Key, Request, Response};
+    let serial = "HGM-L2-0105";
+    let sim = device(serial, 5);
+    let key: Key = [7; 32];
+    let grain = fringe_calibration::synth::SynthProduct::<f32>::grain();
+    let cell = fringe_sim::firmware::simulator_cell([1.0e6, 20.0e6]);
+    let a = fringe_firmware::sim::exact_calibration(&grain, "Durum, silo 4");
+    let b = fringe_firmware::sim::exact_calibration(&grain, "Durum, silo 5");
+    {
+        let mut l = link(&sim, "other tool");
+        for r in [
+            Request::WriteCellCal(cell),
+            Request::WriteProductCal {
+                slot: 0,
+                cal: a.clone(),
+            },
+            Request::WriteProductCal {
+                slot: 3,
+                cal: b.clone(),
+            },
+            Request::SelectProduct { slot: 3 },
+        ] {
+            assert_eq!(l.request_signed(r, &key).expect("write"), Response::Ack);
+        }
+    }
+    let mut store = Store::open_in_memory().expect("store");
+    // Slot 0's calibration was pushed from this database before.
+    store
+        .ensure_device(&fringe_store::DeviceInfo {
+            serial: serial.into(),
+            ..Default::default()
+        })
+        .unwrap();
+    store
+        .insert_calibration(
+            serial,
+            &fringe_store::NewCalibration {
+                kind: fringe_store::CalKind::Product,
+                cal_id: a.content_id(),
+                slot: Some(0),
+                name: Some("Durum, silo 4".into()),
+                body: serde_json::json!({"action": "push"}),
+                note: None,
+                supersedes: None,
+            },
+        )
+        .unwrap();
+    let stop = AtomicBool::new(false);
+    let wall = || 1_796_104_800_000i64;
+    let now = Instant::now;
+    let told = std::cell::RefCell::new(Vec::new());
+    let mut tell = |n: Note<'_>| {
+        if let Note::CalibrationObserved(o) = n {
+            told.borrow_mut().push(o);
+        }
+    };
+    let mut ctx = Ctx {
+        stop: &stop,
+        wall_ms: &wall,
+        now: &now,
+        tell: &mut tell,
+    };
+    for _ in 0..2 {
+        let s = Session::open(
+            link(&sim, "sim"),
+            &mut store,
+            SessionOptions::default(),
+            &mut ctx,
+        )
+        .expect("open");
+        let (_, done) = s.finish(&mut store);
+        done.expect("commit");
+    }
+    let kinds: Vec<_> = told
+        .borrow()
+        .iter()
+        .map(|o| (o.kind, o.id, o.slot))
+        .collect();
+    assert_eq!(
+        kinds,
+        [
+            (fringe_store::CalKind::Cell, cell.content_id(), None),
+            (fringe_store::CalKind::Product, b.content_id(), Some(3)),
+        ],
+        "recorded once, the pushed one left alone"
+    );
+    told.borrow_mut().clear();
+
+    // While a session streams, the other tool writes and selects another:
+    // the first reading that carries it has it recorded.
+    let mut s = Session::open(
+        link(&sim, "sim"),
+        &mut store,
+        SessionOptions::default(),
+        &mut ctx,
+    )
+    .expect("open");
+    s.catch_up(&mut store, &mut ctx).expect("catch up");
+    s.subscribe(&mut ctx).expect("subscribe");
+    let c = fringe_firmware::sim::exact_calibration(&grain, "Durum, silo 6");
+    {
+        let mut l = link(&sim, "other tool");
+        for r in [
+            Request::WriteProductCal {
+                slot: 5,
+                cal: c.clone(),
+            },
+            Request::SelectProduct { slot: 5 },
+        ] {
+            assert_eq!(l.request_signed(r, &key).expect("write"), Response::Ack);
+        }
+    }
+    let t0 = Instant::now();
+    while s.latest().is_none_or(|r| r.product_cal != c.content_id()) {
+        assert!(
+            t0.elapsed().as_secs() < 60,
+            "no reading with the new calibration"
+        );
+        s.poll(&mut store, &mut ctx).expect("poll");
+    }
+    let (_, done) = s.finish(&mut store);
+    done.expect("commit");
+    let kinds: Vec<_> = told
+        .borrow()
+        .iter()
+        .map(|o| (o.kind, o.id, o.slot))
+        .collect();
+    assert_eq!(
+        kinds,
+        [(fringe_store::CalKind::Product, c.content_id(), Some(5))]
+    );
+    let cals = store.calibrations(serial).expect("cals");
+    assert_eq!(cals.len(), 4);
+    let found = &cals[2].cal;
+    assert_eq!(found.cal_id, b.content_id());
+    assert_eq!(found.body["action"], "observed");
+    assert_eq!(found.body["old_id"], "unknown");
+    assert_eq!(found.body["new_id"], b.content_id().to_string());
+    let read: fringe_protocol::ProductCal =
+        serde_json::from_value(found.body["calibration"].clone()).expect("the calibration");
+    assert_eq!(read, b);
+    assert!(
+        found.body["reason"]
+            .as_str()
+            .unwrap()
+            .contains("product slot 3 of the device (active)"),
+        "{}",
+        found.body
+    );
+    assert!(store.verify_chain().expect("chain").ok());
+}

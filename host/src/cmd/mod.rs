@@ -125,6 +125,7 @@ pub fn say_note(who: &str, n: Note<'_>) {
         Note::Lost { count, after } => eprintln!(
             "fringe {who}: {count} readings after {after} were no longer in the device log (lost)"
         ),
+        Note::CalibrationObserved(o) => eprintln!("fringe {who}: {o}"),
         _ => {}
     }
 }

@@ -223,6 +223,7 @@ impl View {
             }
             Note::Reconnecting(why) => self.notice(&format!("{why}: reconnecting")),
             Note::Reconnected => self.notice("reconnected"),
+            Note::CalibrationObserved(o) => self.notice(&o.to_string()),
             _ => {}
         }
     }
