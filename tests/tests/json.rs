@@ -318,6 +318,8 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
         o.stderr
     );
     c.check("device config show", &dev(&["device", "config", "show"]));
+    let st = c.check("device self-test", &dev(&["device", "self-test"]));
+    assert_eq!(st[0]["ok"], true, "{}", st[0]);
     c.check(
         "device config set",
         &dev(&[

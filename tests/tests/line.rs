@@ -300,6 +300,47 @@ fn monitor_sets_an_unset_clock_and_earlier_readings_are_rebased_and_found_by_wal
     assert!(!csv.contains(",1970-"), "{csv}");
 }
 
+/// `fringe device self-test` on the simulator, commissioned: every check
+/// passes, twice (the second reads the flash record back), said per check;
+/// on one without a cell calibration the reference is not checked and the
+/// test still passes.
+#[test]
+fn device_self_test_says_each_check() {
+    let bare = Sim::start(&ScenarioSpec::clean("HGM-L2-0306", 46));
+    let o = run(
+        &mut fringe(&["device", "self-test", "--port", bare.port_str()]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}\n{}", o.stdout, o.stderr);
+    assert!(
+        o.stdout
+            .lines()
+            .any(|l| l.trim_start().starts_with("reference") && l.contains("n/a")),
+        "{}",
+        o.stdout
+    );
+    let sim = Sim::start(&ScenarioSpec {
+        tail: "[calibration]\ncell = \"simulator\"\nproduct = \"exact\"\n".into(),
+        ..ScenarioSpec::clean("HGM-L2-0305", 45)
+    });
+    for _ in 0..2 {
+        let o = run(
+            &mut fringe(&["device", "self-test", "--port", sim.port_str()]),
+            LIMIT,
+        );
+        assert_eq!(o.code, 0, "{}\n{}", o.stdout, o.stderr);
+        for check in ["storage", "front end", "temperature", "reference"] {
+            assert!(
+                o.stdout
+                    .lines()
+                    .any(|l| l.trim_start().starts_with(check) && l.contains(" pass ")),
+                "{check}: {}",
+                o.stdout
+            );
+        }
+    }
+}
+
 #[test]
 fn device_clock_shows_and_sets_the_clock() {
     let mut spec = ScenarioSpec::clean("HGM-L2-0304", 44);

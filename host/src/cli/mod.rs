@@ -245,6 +245,23 @@ pub enum DeviceCommand {
         after_help = "Example (wet sand from the weigh belt ahead of the sensor, 1650 kg/m3, good for 60 s):\n  fringe device density --port /dev/ttyUSB0 --key-file hgm-l2-0007.key --kg-m3 1650 --hold-s 60\n\nA calibration fitted with --density-input uses the value for the readings of the next --hold-s seconds;\nafter that its readings are flagged density_missing and computed at the calibration's mean density with a\nwider uncertainty. The device holds it in RAM only (a restart forgets it); send it again, from a script or\nthe plant's system, well within the hold. A calibration without a density input ignores it.\nThe 4-20 mA output follows the new moisture at once: a wrong density moves the moisture a control loop may\nuse. Check the units (kg/m3, not g/cm3) and the source before feeding it on a running line."
     )]
     Density(DensityArgs),
+    /// Run the device's self-test: its flash, front end, temperature sensor and internal reference.
+    #[command(
+        name = "self-test",
+        after_help = "Example:\n  fringe device self-test --port /dev/ttyUSB0\n\nThe device takes one measurement and a reference check for it (needs no key); the 4-20 mA output\nfollows that measurement as it follows any other. Exit status 4 when a check fails, with what to do."
+    )]
+    SelfTest(SelfTestArgs),
+}
+
+/// `fringe device self-test`.
+#[derive(Debug, Clone, Args)]
+pub struct SelfTestArgs {
+    /// The device.
+    #[command(flatten)]
+    pub port: PortArgs,
+    /// Print JSON instead of text.
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// `fringe device density`.

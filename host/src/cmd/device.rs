@@ -195,6 +195,114 @@ pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     Ok(())
 }
 
+/// The self-test's checks: name, passed, what it checks, what to do when
+/// it fails.
+fn self_test_checks(
+    t: &fringe_protocol::SelfTest,
+) -> [(&'static str, bool, &'static str, &'static str); 4] {
+    [
+        (
+            "storage",
+            t.storage_ok,
+            "flash: a scratch record written and read back (written at the boot's first self-test, read back at later ones)",
+            "the flash did not give back what was written: the device may lose its reading log, calibrations and settings; pull its log now (`fringe pull`) and have the device serviced",
+        ),
+        (
+            "front end",
+            t.frontend_ok,
+            "the front end answered and both channels' reference amplitudes are within range",
+            "check the electrode cable and the sensor head (flag electrode_fault in the readings); if it persists, have the device serviced",
+        ),
+        (
+            "temperature",
+            t.temperature_ok,
+            "the temperature sensor reads within range",
+            "check the temperature sensor's wiring (flag temp_sensor_fault): readings are not temperature-compensated",
+        ),
+        (
+            "reference",
+            t.reference_ok,
+            "the internal reference lies within its tolerance of the value at cell calibration",
+            "the electronics drifted: verify against a lab sample and recalibrate the cell (`fringe cal cell`)",
+        ),
+    ]
+}
+
+/// The self-test's text lines, JSON and failed checks (the reference is
+/// not checked, so not failed, on a device without a cell calibration).
+fn self_test_report(
+    serial: &str,
+    t: &fringe_protocol::SelfTest,
+    no_cell: bool,
+) -> (Vec<String>, serde_json::Value, Vec<&'static str>) {
+    let checks = self_test_checks(t);
+    let unchecked = |name: &str| name == "reference" && no_cell;
+    let failed: Vec<&'static str> = checks
+        .iter()
+        .filter(|c| !c.1 && !unchecked(c.0))
+        .map(|c| c.0)
+        .collect();
+    let v = json!({
+        "serial": serial,
+        "storage_ok": t.storage_ok,
+        "frontend_ok": t.frontend_ok,
+        "temperature_ok": t.temperature_ok,
+        "reference_ok": t.reference_ok,
+        "reference_checked": !no_cell,
+        "flags": t.flags.names().collect::<Vec<_>>(),
+        "failed": failed,
+        "ok": failed.is_empty(),
+    });
+    let mut lines = vec![format!(
+        "self-test of {serial} (one measurement and a reference check)"
+    )];
+    for (name, ok, what, todo) in &checks {
+        let (state, text) = if unchecked(name) {
+            ("n/a ", "not checked: the device has no cell calibration to compare its reference with (`fringe cal cell`)")
+        } else if *ok {
+            ("pass", *what)
+        } else {
+            ("FAIL", *todo)
+        };
+        lines.push(format!("  {name:<12}{state}  {text}"));
+    }
+    lines.push(format!("  {:<12}{}", "flags", flag_list(t.flags)));
+    (lines, v, failed)
+}
+
+/// `fringe device self-test`.
+///
+/// # Errors
+/// Port or link errors; [`crate::exit::ProblemsFound`] when a check fails.
+fn self_test(a: &crate::cli::SelfTestArgs, cfg: &LineConfig) -> anyhow::Result<()> {
+    let mut link = super::connect(&a.port, cfg)?;
+    let serial = link.serial_number().to_string();
+    // Without a cell calibration the reference has nothing to be compared
+    // with: not checked, not failed.
+    let no_cell = link.status()?.cell_cal == fringe_protocol::CalId::NONE;
+    let t = match link.request(fringe_protocol::Request::SelfTest)? {
+        fringe_protocol::Response::SelfTest(t) => t,
+        other => anyhow::bail!("{serial}: unexpected answer to SelfTest: {other:?}"),
+    };
+    let (lines, v, failed) = self_test_report(&serial, &t, no_cell);
+    if a.json {
+        out::json(&v)?;
+    } else {
+        for l in lines {
+            out::line(&l)?;
+        }
+    }
+    if failed.is_empty() {
+        Ok(())
+    } else {
+        Err(crate::exit::ProblemsFound(format!(
+            "{serial}: self-test failed: {}",
+            failed.join(", ")
+        ))
+        .into())
+    }
+}
+
 /// `fringe device ...`.
 ///
 /// # Errors
@@ -204,6 +312,7 @@ pub fn device(a: &crate::cli::DeviceArgs, cfg: &LineConfig) -> anyhow::Result<()
     match &a.command {
         DeviceCommand::Clock(c) => clock(c, cfg),
         DeviceCommand::Density(d) => density(d, cfg),
+        DeviceCommand::SelfTest(t) => self_test(t, cfg),
         DeviceCommand::Config(c) => match &c.command {
             ConfigCommand::Show(s) => config_show(s, cfg),
             ConfigCommand::Set(s) => config_set(s, cfg),
@@ -729,4 +838,57 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
         }
         Ok(())
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use fringe_protocol::SelfTest;
+
+    fn passing() -> SelfTest {
+        SelfTest {
+            storage_ok: true,
+            frontend_ok: true,
+            temperature_ok: true,
+            reference_ok: true,
+            flags: Flags::empty(),
+        }
+    }
+
+    /// A failed check is named with what to do; every check passing is ok;
+    /// the reference of a device without a cell calibration is not checked
+    /// and does not fail the test (a new device), one with it does.
+    #[test]
+    fn self_test_names_each_failed_check_with_what_to_do() {
+        let (lines, v, failed) = self_test_report("HGM-L2-0007", &passing(), false);
+        assert!(failed.is_empty());
+        assert_eq!(v["ok"], true);
+        assert_eq!(lines.iter().filter(|l| l.contains(" pass ")).count(), 4);
+
+        let t = SelfTest {
+            temperature_ok: false,
+            flags: Flags::TEMP_SENSOR_FAULT,
+            ..passing()
+        };
+        let (lines, v, failed) = self_test_report("HGM-L2-0007", &t, false);
+        assert_eq!(failed, ["temperature"]);
+        assert_eq!(v["ok"], false);
+        assert_eq!(v["failed"], json!(["temperature"]));
+        let line = lines.iter().find(|l| l.contains("temperature")).unwrap();
+        assert!(line.contains("FAIL") && line.contains("wiring"), "{line}");
+        assert!(lines.last().unwrap().contains("temp_sensor_fault"));
+
+        let t = SelfTest {
+            reference_ok: false,
+            ..passing()
+        };
+        let (lines, v, failed) = self_test_report("HGM-L2-0007", &t, true);
+        assert!(failed.is_empty(), "{failed:?}");
+        assert_eq!(v["reference_checked"], false);
+        assert!(lines
+            .iter()
+            .any(|l| l.contains("n/a") && l.contains("no cell calibration")));
+        let (_, _, failed) = self_test_report("HGM-L2-0007", &t, false);
+        assert_eq!(failed, ["reference"]);
+    }
 }
