@@ -1015,9 +1015,11 @@ fn a_calibration_selected_while_the_monitor_runs_is_asked_for_its_basis() {
         "{}",
         o.stderr
     );
-    // The database has no record of any of the device's calibrations (the
-    // scenario commissioned it, and selected the second): an audit bundle
-    // of its readings names them, whose content it cannot show.
+    // The scenario commissioned the device and selected the second product
+    // calibration, none of it through this database: the monitor recorded
+    // each as found (the cell and the first at start, the second with the
+    // first reading that carried it), so an audit bundle of its readings
+    // shows them all and names none as without a record.
     let bundle = sim.path("bundle");
     let o = run(
         &mut fringe(&[
@@ -1040,5 +1042,38 @@ fn a_calibration_selected_while_the_monitor_runs_is_asked_for_its_basis() {
         .as_array()
         .cloned()
         .unwrap_or_default();
-    assert_eq!(ids.len(), 3, "the cell and both product calibrations: {m}");
+    assert_eq!(ids.len(), 0, "every calibration recorded as found: {m}");
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "history",
+            "--db",
+            sim.path("line2.db").to_str().unwrap(),
+            "--json",
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let h: serde_json::Value = serde_json::from_str(o.stdout.trim()).unwrap();
+    let observed: Vec<(String, String)> = h["records"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|r| r["action"] == "observed")
+        .map(|r| {
+            (
+                r["kind"].as_str().unwrap().into(),
+                r["old_id"].as_str().unwrap().into(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        observed,
+        [
+            ("cell".to_string(), "unknown".to_string()),
+            ("product".into(), "unknown".into()),
+            ("product".into(), "unknown".into())
+        ],
+        "{h}"
+    );
 }

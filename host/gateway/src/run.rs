@@ -1116,8 +1116,15 @@ impl<S: RecordStore> Worker<S> {
             self.bases_from_store(s);
         }
         let mut b = lock(&self.bases);
-        if let Some(k) = b.known.get(&id) {
-            return BasisOf::Known(*k);
+        if let Some(k) = b.known.get(&id).copied() {
+            // Newly learned from the store (a calibration recorded since,
+            // one the session found on the device among them): said as
+            // when the device is asked.
+            drop(b);
+            if let Some(s) = serial {
+                self.say_band(s, k);
+            }
+            return BasisOf::Known(k);
         }
         b.ask = Some((id, Instant::now(), 0));
         BasisOf::Asking
@@ -1346,6 +1353,11 @@ impl<S: RecordStore> Worker<S> {
                 self.say(serial, Level::Info, "reconnected".into());
             }
             Note::CalibrationObserved(o) => self.say(serial, Level::Info, o.to_string()),
+            Note::CalibrationsNotRead(e) => self.say(
+                serial,
+                Level::Error,
+                format!("the device's calibrations could not be read or recorded ({e}); going on"),
+            ),
             _ => {}
         }
     }

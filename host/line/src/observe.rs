@@ -6,13 +6,16 @@
 //! carry an id the store knows nothing of, so the basis of their moisture
 //! is unknown to the drift monitors and an audit bundle cannot show the
 //! calibration that made them. When a line session starts (and after each
-//! reconnect) and when a log is pulled, the device's cell calibration and
-//! every occupied product slot are read, and each calibration whose id the
-//! store has no record of is recorded as found: action `observed`, the
-//! calibration as read, `old_id` `unknown` (what it replaced is not known),
-//! operator `fringe` and a reason saying where it was found. A calibration
-//! the store has a record of is left alone, so a session records each one
-//! once.
+//! reconnect, and when a streamed reading carries an unknown id) and when
+//! a log is pulled, the device's cell calibration and its active product
+//! calibration are read, and each whose id the store has no record of is
+//! recorded as found: action `observed`, the calibration as read, `old_id`
+//! `unknown` (what it replaced is not known), operator `fringe` and a
+//! reason saying where it was found. A calibration the store has a record
+//! of is left alone, so a session records each one once. Slots not
+//! selected are not recorded: no reading carries them, and the newest
+//! record of a kind is the one the report and the drift charts take as in
+//! force.
 
 use fringe_link::{Link, LinkError};
 use fringe_protocol::{CalId, Request, Response};
@@ -21,8 +24,10 @@ use fringe_store::{CalKind, NewCalibration, RecordStore};
 use crate::error::LineError;
 
 /// A calibration recorded as found on the device.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Observed {
+    /// The device.
+    pub serial: String,
     /// Cell or product calibration.
     pub kind: CalKind,
     /// Its content id.
@@ -37,7 +42,8 @@ impl std::fmt::Display for Observed {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         write!(
             f,
-            "{} calibration {}{} found on the device with no record in this database: recorded as found (chain position {})",
+            "{}: {} calibration {}{} found on the device with no record in this database: recorded as found (chain position {})",
+            self.serial,
             self.kind.as_str(),
             self.id,
             self.slot.map_or(String::new(), |s| format!(" in slot {s}")),
@@ -80,13 +86,13 @@ fn unexpected(request: &'static str, got: &Response) -> LinkError {
     }
 }
 
-/// Reads the device's cell calibration and product slots and records each
-/// calibration the store has no record of (see the module doc). Returns
-/// those recorded, in the order read (cell first, then slot by slot).
+/// Reads the device's cell calibration and active product calibration and
+/// records each the store has no record of (see the module doc). Returns
+/// those recorded (cell first).
 ///
 /// # Errors
-/// [`LineError`]: a failed link (a device that refuses a read is an
-/// answer of another kind) or store.
+/// [`LineError`]: a failed link (also a device that refuses a read,
+/// [`LinkError::Refused`]) or store; what was recorded before stays.
 pub fn record_unrecorded(
     link: &mut Link,
     store: &mut (impl RecordStore + ?Sized),
@@ -114,7 +120,7 @@ pub fn record_unrecorded(
         Response::Products { slots, active } => (slots, active),
         other => return Err(unexpected("ListProducts", &other).into()),
     };
-    for s in &slots {
+    for s in slots.iter().filter(|s| active == Some(s.slot)) {
         if known.contains(&(CalKind::Product, s.id)) {
             continue;
         }
@@ -123,18 +129,13 @@ pub fn record_unrecorded(
             Response::ProductCal { cal: None, .. } => continue,
             other => return Err(unexpected("ReadProductCal", &other).into()),
         };
-        let state = if active == Some(s.slot) {
-            "active"
-        } else {
-            "not selected"
-        };
         found.push(Found {
             kind: CalKind::Product,
             id: cal.content_id(),
             slot: Some(s.slot),
             name: Some(cal.name.to_string()),
             calibration: serde_json::to_value(&cal).unwrap_or(serde_json::Value::Null),
-            where_found: format!("in product slot {} of the device ({state})", s.slot),
+            where_found: format!("active in product slot {} of the device", s.slot),
         });
     }
     let mut recorded: Vec<Observed> = Vec::new();
@@ -155,6 +156,7 @@ pub fn record_unrecorded(
             },
         )?;
         recorded.push(Observed {
+            serial: serial.to_string(),
             kind: f.kind,
             id: f.id,
             slot: f.slot,

@@ -92,6 +92,10 @@ pub enum Note<'a> {
     /// A calibration found on the device with no record in the store was
     /// recorded as found ([`crate::observe`]).
     CalibrationObserved(crate::Observed),
+    /// The device's calibrations could not be read or recorded (a refused
+    /// read, a store that refused the record): the session goes on
+    /// without ([`crate::observe`]).
+    CalibrationsNotRead(&'a LineError),
 }
 
 /// What a session did so far.
@@ -202,17 +206,28 @@ pub fn active_product_cal(link: &mut Link) -> Result<Option<ProductCal>, LinkErr
 }
 
 /// Records the calibrations found on the device with no record in the
-/// store, and tells each.
+/// store, and tells each. Best effort: a failure is told and the session
+/// goes on; only a link that failed (which the caller reconnects) is
+/// returned.
 fn observe(
     link: &mut Link,
     store: &mut (impl RecordStore + ?Sized),
     serial: &str,
     ctx: &mut Ctx<'_>,
 ) -> Result<(), LineError> {
-    for o in crate::observe::record_unrecorded(link, store, serial)? {
-        (ctx.tell)(Note::CalibrationObserved(o));
+    match crate::observe::record_unrecorded(link, store, serial) {
+        Ok(found) => {
+            for o in found {
+                (ctx.tell)(Note::CalibrationObserved(o));
+            }
+            Ok(())
+        }
+        Err(e) if e.is_disconnect() => Err(e),
+        Err(e) => {
+            (ctx.tell)(Note::CalibrationsNotRead(&e));
+            Ok(())
+        }
     }
-    Ok(())
 }
 
 fn identity(link: &Link) -> Result<Identity, LinkError> {
@@ -534,18 +549,21 @@ impl Session {
             }
             _ => {}
         }
+        self.batcher.push(r, fringe_store::Source::Stream, now);
+        self.last = Some(self.last.map_or(r.seq, |x| x.max(r.seq)));
+        // Queued first: a link that fails while the device is asked loses
+        // nothing.
         let unknown = [r.cell_cal, r.product_cal]
             .into_iter()
             .filter(|id| *id != CalId::NONE && !self.known_cals.contains(id))
             .collect::<Vec<_>>();
         if !unknown.is_empty() {
-            observe(&mut self.link, store, &self.serial, ctx)?;
-            self.known_cals = recorded_ids(store, &self.serial)?;
-            // Asked once: an id no slot holds any more stays unknown.
+            // Asked once: an id the device no longer has active stays
+            // unknown.
             self.known_cals.extend(unknown);
+            observe(&mut self.link, store, &self.serial, ctx)?;
+            self.known_cals.extend(recorded_ids(store, &self.serial)?);
         }
-        self.batcher.push(r, fringe_store::Source::Stream, now);
-        self.last = Some(self.last.map_or(r.seq, |x| x.max(r.seq)));
         self.latest = Some(r);
         (ctx.tell)(Note::Reading(&r));
         Ok(())
@@ -614,8 +632,11 @@ impl Session {
                 (ctx.tell)(Note::Reconnected);
                 let key = self.key;
                 clock(&mut self.link, key.as_ref(), ctx)?;
-                observe(&mut self.link, store, &self.serial, ctx)?;
                 self.resume = true;
+                // A link that fails again here is found by the next poll.
+                if let Err(e) = observe(&mut self.link, store, &self.serial, ctx) {
+                    (ctx.tell)(Note::CalibrationsNotRead(&e));
+                }
                 Ok(true)
             }
             Err(LinkError::Stopped) => Ok(false),

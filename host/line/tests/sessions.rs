@@ -334,7 +334,7 @@ fn calibrations_found_on_the_device_without_a_record_are_recorded_once() {
         found.body["reason"]
             .as_str()
             .unwrap()
-            .contains("product slot 3 of the device (active)"),
+            .contains("active in product slot 3 of the device"),
         "{}",
         found.body
     );

@@ -5,7 +5,7 @@
 //!
 //! | column (by name) | written as | why |
 //! |---|---|---|
-//! | `lab_moisture_pct`, and the lab value of a reference-sample table or `cal predict` file (`moisture_pct` there) | up to 3 decimals (0.001 %), trailing zeros dropped (14.60 entered reads 14.6) | a lab value carries what the lab's method resolves (Karl Fischer on polymer pellets gives 0.045 %; common practice, no source): rounding it to 0.01 % as a device reading would lose a digit the lab measured |
+//! | `lab_moisture_pct`, and the lab value of a reference-sample table or `cal predict` file (`moisture_pct` there) | as entered: the shortest text that reads back as the stored value (14.60 entered reads 14.6; 0.0035 stays 0.0035) | a lab value carries what the lab's method resolves (Karl Fischer on polymer pellets gives 0.045 % or 35 ppm; common practice, no source): rounding it as a device reading would lose digits the lab measured |
 //! | `*moisture_pct`, `uncertainty_pct`, `interval_*_pct` | 2 decimals (0.01 %) | the device's standard uncertainty is 0.1 % or more, and its log keeps moisture as a half float (steps of 0.008 % below 16 %, 0.016 % to 32 %): a third decimal carries nothing |
 //! | `temperature_c` | 2 decimals (0.01 C) | the RTD chain resolves about 0.01 C; its accuracy is coarser |
 //! | `eps*_re`, `eps*_im` | 4 significant digits | the permittivity noise is about 0.02 at eps' of 3 to 30 (1 part in 10^3) |
@@ -30,8 +30,6 @@ pub enum Rule {
     /// The shortest text that reads back as the same value (as `f32` when
     /// the value is exactly an `f32`).
     Shortest,
-    /// At most this many decimals, trailing zeros (and a bare point) dropped.
-    UpTo(u8),
 }
 
 /// The rule of a column, by its name (see the module's table).
@@ -43,7 +41,7 @@ pub fn rule_for(column: &str) -> Rule {
         && c.len() <= 5
         && c[1..c.len() - 2].chars().all(|ch| ch.is_ascii_digit());
     if c == "lab_moisture_pct" {
-        Rule::UpTo(3)
+        Rule::Shortest
     } else if c.ends_with("_pct") || c == "temperature_c" {
         Rule::Decimals(2)
     } else if eps || cell_channel {
@@ -64,14 +62,6 @@ pub fn fmt(x: f64, rule: Rule) -> String {
     }
     let s = match rule {
         Rule::Decimals(d) => format!("{x:.*}", usize::from(d)),
-        Rule::UpTo(d) => {
-            let s = format!("{x:.*}", usize::from(d));
-            if s.contains('.') {
-                s.trim_end_matches('0').trim_end_matches('.').to_string()
-            } else {
-                s
-            }
-        }
         Rule::Significant(n) => significant(x, n.max(1)),
         Rule::Shortest => {
             let f = x as f32;
@@ -150,14 +140,12 @@ mod tests {
     #[test]
     fn columns_have_their_rules() {
         assert_eq!(rule_for("moisture_pct"), Rule::Decimals(2));
-        assert_eq!(rule_for("lab_moisture_pct"), Rule::UpTo(3));
+        assert_eq!(rule_for("lab_moisture_pct"), Rule::Shortest);
         assert_eq!(cell("lab_moisture_pct", Some(0.045)), "0.045");
+        assert_eq!(cell("lab_moisture_pct", Some(0.0035)), "0.0035");
         assert_eq!(cell("lab_moisture_pct", Some(14.6)), "14.6");
         assert_eq!(cell("lab_moisture_pct", Some(14.60)), "14.6");
         assert_eq!(cell("lab_moisture_pct", Some(20.0)), "20");
-        assert_eq!(cell("lab_moisture_pct", Some(1420.0 / 85.8)), "16.55");
-        assert_eq!(cell("lab_moisture_pct", Some(100.0 / 6.0)), "16.667");
-        assert_eq!(cell("lab_moisture_pct", Some(-0.0001)), "0");
         assert_eq!(rule_for("predicted_moisture_pct"), Rule::Decimals(2));
         assert_eq!(rule_for("interval_low_pct"), Rule::Decimals(2));
         assert_eq!(rule_for("eps1_re"), Rule::Significant(4));

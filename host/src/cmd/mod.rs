@@ -126,6 +126,9 @@ pub fn say_note(who: &str, n: Note<'_>) {
             "fringe {who}: {count} readings after {after} were no longer in the device log (lost)"
         ),
         Note::CalibrationObserved(o) => eprintln!("fringe {who}: {o}"),
+        Note::CalibrationsNotRead(e) => eprintln!(
+            "fringe {who}: the device's calibrations could not be read or recorded ({e}); going on"
+        ),
         _ => {}
     }
 }

@@ -224,6 +224,9 @@ impl View {
             Note::Reconnecting(why) => self.notice(&format!("{why}: reconnecting")),
             Note::Reconnected => self.notice("reconnected"),
             Note::CalibrationObserved(o) => self.notice(&o.to_string()),
+            Note::CalibrationsNotRead(e) => self.notice(&format!(
+                "the device's calibrations could not be read or recorded ({e}); monitoring goes on"
+            )),
             _ => {}
         }
     }
