@@ -338,7 +338,8 @@ fn capture_push_list_select_and_history() {
             added[col("moisture_pct")],
             added[note]
         ),
-        ("HGM-T03", "13.50", ""),
+        // The lab value as typed at the prompt.
+        ("HGM-T03", "13.5", ""),
         "{after}"
     );
 
