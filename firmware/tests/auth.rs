@@ -447,22 +447,10 @@ fn a_host_below_1_3_reads_a_hold_as_a_bad_tag() {
 /// test of the device's own rule.)
 #[test]
 fn a_write_captured_before_a_damaged_settings_map_stays_a_replay() {
-    use embedded_storage::nor_flash::NorFlash;
     use fringe_firmware::device::{repair_counter, REPAIR_COUNTER_JUMP};
     // Every page of the map marked closed, then a boot on that flash.
     fn damage_and_boot(b: Bench, seed: u64) -> Bench {
-        let mut b = b;
-        let map = b.dev.storage_mut().layout().map.clone();
-        let (_, mut flash, _) = b.dev.into_parts();
-        let (page, word) = (Flash::ERASE_SIZE as u32, Flash::WRITE_SIZE);
-        for p in (map.start..map.end).step_by(page as usize) {
-            for at in [p, p + page - word as u32] {
-                flash
-                    .write(at, &vec![0u8; word])
-                    .expect("mark the page closed");
-            }
-        }
-        let mut b = Bench::on_flash(seed, Scenario::default(), flash);
+        let mut b = Bench::on_flash(seed, Scenario::default(), damaged_settings_map(b));
         b.settle();
         b
     }

@@ -267,23 +267,10 @@ fn the_slave_follows_the_device_settings() {
     assert_eq!(slave.timing().t35_us, 1750);
 }
 
-/// A reboot on the same flash with every page of the settings map marked
-/// closed (damage the storage crate cannot repair: the map is erased).
+/// A reboot on the same flash with the settings map damaged
+/// ([`damaged_settings_map`]: the map is erased at boot).
 fn damage_map_and_boot(b: Bench, seed: u64) -> Bench {
-    use embedded_storage::nor_flash::{NorFlash, ReadNorFlash};
-    let mut b = b;
-    let map = b.dev.storage_mut().layout().map.clone();
-    let (_, mut flash, _) = b.dev.into_parts();
-    let (page, word) = (Flash::ERASE_SIZE as u32, Flash::WRITE_SIZE);
-    assert!(flash.capacity() > map.end as usize);
-    for p in (map.start..map.end).step_by(page as usize) {
-        for at in [p, p + page - word as u32] {
-            flash
-                .write(at, &vec![0u8; word])
-                .expect("mark the page closed");
-        }
-    }
-    Bench::on_flash(seed, Scenario::default(), flash)
+    Bench::on_flash(seed, Scenario::default(), damaged_settings_map(b))
 }
 
 /// The settings map lost (erased as damaged, or erased and the power cut

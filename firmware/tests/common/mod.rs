@@ -202,6 +202,25 @@ impl Bench {
 
 /// Runs `f` on a thread with a large stack: a `Device` that owns its RAM
 /// flash by value is moved around whole in unoptimised builds.
+/// The device's flash with every page of its settings map marked closed:
+/// damage sequential-storage reports as corrupted and cannot repair, so the
+/// next boot erases the map.
+pub fn damaged_settings_map(b: Bench) -> Flash {
+    use embedded_storage::nor_flash::NorFlash;
+    let mut b = b;
+    let map = b.dev.storage_mut().layout().map.clone();
+    let (_, mut flash, _) = b.dev.into_parts();
+    let (page, word) = (Flash::ERASE_SIZE as u32, Flash::WRITE_SIZE);
+    for p in (map.start..map.end).step_by(page as usize) {
+        for at in [p, p + page - word as u32] {
+            flash
+                .write(at, &vec![0u8; word])
+                .expect("mark the page closed");
+        }
+    }
+    flash
+}
+
 pub fn big_stack(f: impl FnOnce() + Send + 'static) {
     std::thread::Builder::new()
         .stack_size(256 << 20)

@@ -11,20 +11,8 @@
 
 use std::collections::BTreeMap;
 
-use fringe_quality::audit::{verify_files, CALS_IN_FORCE, MANIFEST, RECORDS};
+use fringe_quality::audit::{verify_files, SEED_ORDER as NAMES};
 use libfuzzer_sys::fuzz_target;
-
-const NAMES: [&str; 9] = [
-    MANIFEST,
-    RECORDS,
-    CALS_IN_FORCE,
-    "devices.csv",
-    "readings.csv",
-    "events.csv",
-    "calibrations.csv",
-    "lab_samples.csv",
-    "reference_checks.csv",
-];
 
 fuzz_target!(|data: &[u8]| {
     let files: BTreeMap<String, Vec<u8>> = NAMES

@@ -182,6 +182,28 @@ fn densities_sent_back_to_back_all_land() {
     assert!(same_tenth > 0, "no two sends within one tenth of a second");
 }
 
+/// What the session said it recorded: kind, id, slot.
+fn recorded(
+    told: &[fringe_line::Observed],
+) -> Vec<(fringe_store::CalKind, fringe_protocol::CalId, Option<u8>)> {
+    told.iter().map(|o| (o.kind, o.id, o.slot)).collect()
+}
+
+/// Signed writes straight to the device, as another tool makes them.
+fn write_as_another_tool(
+    sim: &SimHandle,
+    key: &fringe_protocol::auth::Key,
+    writes: Vec<fringe_protocol::Request>,
+) {
+    let mut l = link(sim, "other tool");
+    for r in writes {
+        assert_eq!(
+            l.request_signed(r, key).expect("write"),
+            fringe_protocol::Response::Ack
+        );
+    }
+}
+
 /// A device calibrated by another tool (signed writes straight to the
 /// device, nothing recorded in this store): a session records its cell
 /// calibration and each product slot's calibration as found, with the
@@ -189,7 +211,7 @@ fn densities_sent_back_to_back_all_land() {
 /// left alone.
 #[test]
 fn calibrations_found_on_the_device_without_a_record_are_recorded_once() {
-    use fringe_protocol::{auth::Key, Request, Response};
+    use fringe_protocol::{auth::Key, Request};
     let serial = "HGM-L2-0105";
     let sim = device(serial, 5);
     let key: Key = [7; 32];
@@ -197,9 +219,10 @@ fn calibrations_found_on_the_device_without_a_record_are_recorded_once() {
     let cell = fringe_sim::firmware::simulator_cell([1.0e6, 20.0e6]);
     let a = fringe_firmware::sim::exact_calibration(&grain, "Durum, silo 4");
     let b = fringe_firmware::sim::exact_calibration(&grain, "Durum, silo 5");
-    {
-        let mut l = link(&sim, "other tool");
-        for r in [
+    write_as_another_tool(
+        &sim,
+        &key,
+        vec![
             Request::WriteCellCal(cell),
             Request::WriteProductCal {
                 slot: 0,
@@ -210,10 +233,8 @@ fn calibrations_found_on_the_device_without_a_record_are_recorded_once() {
                 cal: b.clone(),
             },
             Request::SelectProduct { slot: 3 },
-        ] {
-            assert_eq!(l.request_signed(r, &key).expect("write"), Response::Ack);
-        }
-    }
+        ],
+    );
     let mut store = Store::open_in_memory().expect("store");
     // Slot 0's calibration was pushed from this database before.
     store
@@ -262,11 +283,7 @@ fn calibrations_found_on_the_device_without_a_record_are_recorded_once() {
         let (_, done) = s.finish(&mut store);
         done.expect("commit");
     }
-    let kinds: Vec<_> = told
-        .borrow()
-        .iter()
-        .map(|o| (o.kind, o.id, o.slot))
-        .collect();
+    let kinds = recorded(&told.borrow());
     assert_eq!(
         kinds,
         [
@@ -289,18 +306,17 @@ fn calibrations_found_on_the_device_without_a_record_are_recorded_once() {
     s.catch_up(&mut store, &mut ctx).expect("catch up");
     s.subscribe(&mut ctx).expect("subscribe");
     let c = fringe_firmware::sim::exact_calibration(&grain, "Durum, silo 6");
-    {
-        let mut l = link(&sim, "other tool");
-        for r in [
+    write_as_another_tool(
+        &sim,
+        &key,
+        vec![
             Request::WriteProductCal {
                 slot: 5,
                 cal: c.clone(),
             },
             Request::SelectProduct { slot: 5 },
-        ] {
-            assert_eq!(l.request_signed(r, &key).expect("write"), Response::Ack);
-        }
-    }
+        ],
+    );
     let t0 = Instant::now();
     while s.latest().is_none_or(|r| r.product_cal != c.content_id()) {
         assert!(
@@ -311,11 +327,7 @@ fn calibrations_found_on_the_device_without_a_record_are_recorded_once() {
     }
     let (_, done) = s.finish(&mut store);
     done.expect("commit");
-    let kinds: Vec<_> = told
-        .borrow()
-        .iter()
-        .map(|o| (o.kind, o.id, o.slot))
-        .collect();
+    let kinds = recorded(&told.borrow());
     assert_eq!(
         kinds,
         [(fringe_store::CalKind::Product, c.content_id(), Some(5))]

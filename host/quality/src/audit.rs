@@ -71,6 +71,21 @@ impl CsvRules {
         }
     }
 }
+/// The bundle's files as the fuzz target `audit_bundle` takes them (one
+/// input, the files separated by NUL bytes, in this order) and its seeds
+/// hold them: the manifest, the records, the calibrations in force, then
+/// each table's CSV (README.txt is not among them).
+pub const SEED_ORDER: [&str; 9] = [
+    MANIFEST,
+    RECORDS,
+    CALS_IN_FORCE,
+    "devices.csv",
+    "readings.csv",
+    "events.csv",
+    "calibrations.csv",
+    "lab_samples.csv",
+    "reference_checks.csv",
+];
 /// File names.
 pub const MANIFEST: &str = "manifest.json";
 /// Chained records, JSON Lines.
@@ -2113,18 +2128,7 @@ mod tests {
             .join("../fuzz/seeds/audit_bundle")
             .join(name);
         let data = std::fs::read(&p).unwrap_or_else(|e| panic!("{}: {e}", p.display()));
-        let names = [
-            MANIFEST,
-            RECORDS,
-            CALS_IN_FORCE,
-            "devices.csv",
-            "readings.csv",
-            "events.csv",
-            "calibrations.csv",
-            "lab_samples.csv",
-            "reference_checks.csv",
-        ];
-        names
+        SEED_ORDER
             .iter()
             .zip(data.split(|b| *b == 0))
             .map(|(n, b)| ((*n).to_string(), b.to_vec()))
