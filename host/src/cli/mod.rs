@@ -65,7 +65,7 @@ pub enum Command {
         after_help = "Example:\n  fringe pull --port /dev/ttyUSB0 --db line2.db --key-file hgm-l2-0007.key\nReadings before, between and after those stored are fetched; none is stored twice.\nWith the device key it sets the device clock when it is unset or off by more than a second."
     )]
     Pull(PullArgs),
-    /// The device itself: its clock, its settings (tag, interval, 4-20 mA span, failure level, stale timeout).
+    /// The device itself: its clock, its settings (tag, interval, 4-20 mA span, failure level, stale timeout), the plant's bulk density, its self-test.
     Device(DeviceArgs),
     /// Product and cell calibration: fit, predict, cell, capture, push, list, select, history.
     Cal(calcmd::CalArgs),
@@ -248,7 +248,7 @@ pub enum DeviceCommand {
     /// Run the device's self-test: its flash, front end, temperature sensor and internal reference.
     #[command(
         name = "self-test",
-        after_help = "Example:\n  fringe device self-test --port /dev/ttyUSB0\n\nThe device takes one measurement and a reference check for it (needs no key); the 4-20 mA output\nfollows that measurement as it follows any other. Exit status 4 when a check fails, with what to do."
+        after_help = "Example:\n  fringe device self-test --port /dev/ttyUSB0\n\nThe device takes one measurement and a reference check for it (needs no key; about a third of a second).\nThe measurement is an ordinary reading: logged, streamed to a subscriber, and the 4-20 mA output follows it.\nA measurement that fails (a faulty temperature sensor, say) sends the output to its failure level at once:\non a running line tell the control room first. Exit status 4 when a check fails, with what to do."
     )]
     SelfTest(SelfTestArgs),
 }

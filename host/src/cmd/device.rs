@@ -196,10 +196,24 @@ pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
 }
 
 /// The self-test's checks: name, passed, what it checks, what to do when
-/// it fails.
+/// it failed. `baseline`: the device's cell calibration holds a reference
+/// value to compare with (else the firmware only checks that the reference
+/// measurement is usable).
 fn self_test_checks(
     t: &fringe_protocol::SelfTest,
+    baseline: bool,
 ) -> [(&'static str, bool, &'static str, &'static str); 4] {
+    let (reference_what, reference_todo) = if baseline {
+        (
+            "the internal reference lies within its tolerance (2 % by default) of its value at cell calibration",
+            "the internal reference moved beyond its tolerance or its measurement was unusable: if the front end failed too, have the device serviced; otherwise verify against a lab sample and recalibrate the cell (`fringe cal cell`); later readings are flagged reference_drift",
+        )
+    } else {
+        (
+            "the internal reference measurement is usable (the cell calibration holds no reference value to compare with)",
+            "the internal reference measurement was unusable (clipped, or its gain outside 0.5-2): have the device serviced",
+        )
+    };
     [
         (
             "storage",
@@ -208,47 +222,36 @@ fn self_test_checks(
             "the flash did not give back what was written: the device may lose its reading log, calibrations and settings; pull its log now (`fringe pull`) and have the device serviced",
         ),
         (
-            "front end",
+            "frontend",
             t.frontend_ok,
-            "the front end answered and both channels' reference amplitudes are within range",
-            "check the electrode cable and the sensor head (flag electrode_fault in the readings); if it persists, have the device serviced",
+            "no front-end operation failed (the temperature read included) and the reference pass measured at both frequencies with enough excitation",
+            "the electronics did not measure properly: power the device off and on; if it persists, have it serviced (an open electrode cable shows instead as electrode_fault in the readings)",
         ),
         (
             "temperature",
             t.temperature_ok,
             "the temperature sensor reads within range",
-            "check the temperature sensor's wiring (flag temp_sensor_fault): readings are not temperature-compensated",
+            "the temperature sensor reads out of range: no moisture is computed and the 4-20 mA output goes to its failure level; check the sensor's wiring (flag temp_sensor_fault)",
         ),
-        (
-            "reference",
-            t.reference_ok,
-            "the internal reference lies within its tolerance of the value at cell calibration",
-            "the electronics drifted: verify against a lab sample and recalibrate the cell (`fringe cal cell`)",
-        ),
+        ("reference", t.reference_ok, reference_what, reference_todo),
     ]
 }
 
-/// The self-test's text lines, JSON and failed checks (the reference is
-/// not checked, so not failed, on a device without a cell calibration).
+/// The self-test's text lines, JSON and failed checks.
 fn self_test_report(
     serial: &str,
     t: &fringe_protocol::SelfTest,
-    no_cell: bool,
+    baseline: bool,
 ) -> (Vec<String>, serde_json::Value, Vec<&'static str>) {
-    let checks = self_test_checks(t);
-    let unchecked = |name: &str| name == "reference" && no_cell;
-    let failed: Vec<&'static str> = checks
-        .iter()
-        .filter(|c| !c.1 && !unchecked(c.0))
-        .map(|c| c.0)
-        .collect();
+    let checks = self_test_checks(t, baseline);
+    let failed: Vec<&'static str> = checks.iter().filter(|c| !c.1).map(|c| c.0).collect();
     let v = json!({
         "serial": serial,
         "storage_ok": t.storage_ok,
         "frontend_ok": t.frontend_ok,
         "temperature_ok": t.temperature_ok,
         "reference_ok": t.reference_ok,
-        "reference_checked": !no_cell,
+        "reference_baseline": baseline,
         "flags": t.flags.names().collect::<Vec<_>>(),
         "failed": failed,
         "ok": failed.is_empty(),
@@ -257,9 +260,7 @@ fn self_test_report(
         "self-test of {serial} (one measurement and a reference check)"
     )];
     for (name, ok, what, todo) in &checks {
-        let (state, text) = if unchecked(name) {
-            ("n/a ", "not checked: the device has no cell calibration to compare its reference with (`fringe cal cell`)")
-        } else if *ok {
+        let (state, text) = if *ok {
             ("pass", *what)
         } else {
             ("FAIL", *todo)
@@ -277,14 +278,17 @@ fn self_test_report(
 fn self_test(a: &crate::cli::SelfTestArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let mut link = super::connect(&a.port, cfg)?;
     let serial = link.serial_number().to_string();
-    // Without a cell calibration the reference has nothing to be compared
-    // with: not checked, not failed.
-    let no_cell = link.status()?.cell_cal == fringe_protocol::CalId::NONE;
+    // The reference is compared with the cell calibration's value where it
+    // holds one; the firmware checks only that it is usable otherwise.
+    let baseline = match link.request(fringe_protocol::Request::ReadCellCal)? {
+        fringe_protocol::Response::CellCal(c) => c.is_some_and(|c| c.reference_ratio > 0.0),
+        other => anyhow::bail!("{serial}: unexpected answer to ReadCellCal: {other:?}"),
+    };
     let t = match link.request(fringe_protocol::Request::SelfTest)? {
         fringe_protocol::Response::SelfTest(t) => t,
         other => anyhow::bail!("{serial}: unexpected answer to SelfTest: {other:?}"),
     };
-    let (lines, v, failed) = self_test_report(&serial, &t, no_cell);
+    let (lines, v, failed) = self_test_report(&serial, &t, baseline);
     if a.json {
         out::json(&v)?;
     } else {
@@ -856,11 +860,11 @@ mod tests {
     }
 
     /// A failed check is named with what to do; every check passing is ok;
-    /// the reference of a device without a cell calibration is not checked
-    /// and does not fail the test (a new device), one with it does.
+    /// the reference's text follows whether the cell calibration holds a
+    /// value to compare with, and a failed reference fails either way.
     #[test]
     fn self_test_names_each_failed_check_with_what_to_do() {
-        let (lines, v, failed) = self_test_report("HGM-L2-0007", &passing(), false);
+        let (lines, v, failed) = self_test_report("HGM-L2-0007", &passing(), true);
         assert!(failed.is_empty());
         assert_eq!(v["ok"], true);
         assert_eq!(lines.iter().filter(|l| l.contains(" pass ")).count(), 4);
@@ -870,25 +874,36 @@ mod tests {
             flags: Flags::TEMP_SENSOR_FAULT,
             ..passing()
         };
-        let (lines, v, failed) = self_test_report("HGM-L2-0007", &t, false);
+        let (lines, v, failed) = self_test_report("HGM-L2-0007", &t, true);
         assert_eq!(failed, ["temperature"]);
         assert_eq!(v["ok"], false);
         assert_eq!(v["failed"], json!(["temperature"]));
-        let line = lines.iter().find(|l| l.contains("temperature")).unwrap();
-        assert!(line.contains("FAIL") && line.contains("wiring"), "{line}");
+        let line = lines
+            .iter()
+            .find(|l| l.trim_start().starts_with("temperature"))
+            .unwrap();
+        assert!(
+            line.contains("FAIL") && line.contains("failure level") && line.contains("wiring"),
+            "{line}"
+        );
         assert!(lines.last().unwrap().contains("temp_sensor_fault"));
 
         let t = SelfTest {
             reference_ok: false,
             ..passing()
         };
-        let (lines, v, failed) = self_test_report("HGM-L2-0007", &t, true);
-        assert!(failed.is_empty(), "{failed:?}");
-        assert_eq!(v["reference_checked"], false);
-        assert!(lines
-            .iter()
-            .any(|l| l.contains("n/a") && l.contains("no cell calibration")));
-        let (_, _, failed) = self_test_report("HGM-L2-0007", &t, false);
-        assert_eq!(failed, ["reference"]);
+        for baseline in [false, true] {
+            let (lines, v, failed) = self_test_report("HGM-L2-0007", &t, baseline);
+            assert_eq!(failed, ["reference"]);
+            assert_eq!(v["reference_baseline"], baseline);
+            let line = lines
+                .iter()
+                .find(|l| l.trim_start().starts_with("reference"))
+                .unwrap();
+            assert_eq!(line.contains("recalibrate the cell"), baseline, "{line}");
+        }
+        let (lines, _, _) = self_test_report("HGM-L2-0007", &passing(), false);
+        assert!(lines.iter().any(|l| l.trim_start().starts_with("reference")
+            && l.contains("no reference value to compare")));
     }
 }
