@@ -293,11 +293,38 @@ fn monitor_sets_an_unset_clock_and_earlier_readings_are_rebased_and_found_by_wal
         local(last),
         early.len()
     );
-    // Those readings keep their time since boot in the chain: the bundle's
-    // CSV gives them no date rather than one in 1970 (format 2).
+    // Those readings keep their time since boot in the chain: the bundle
+    // carries the boot's clock event and its CSV gives each the re-based
+    // wall-clock time, never a date in 1970 (format 2).
     assert_eq!(m["format"], "fringe-audit-bundle/2");
     let csv = std::fs::read_to_string(bundle.join("readings.csv")).unwrap();
     assert!(!csv.contains(",1970-"), "{csv}");
+    let mut rdr = csv::Reader::from_reader(csv.as_bytes());
+    let h = rdr.headers().unwrap().clone();
+    let col = |n: &str| h.iter().position(|c| c == n).unwrap();
+    let dated = rdr
+        .records()
+        .map(Result::unwrap)
+        .filter(|r| r[col("flag_words")].contains("clock_unset"))
+        .filter(|r| r[col("time_utc")].starts_with("20"))
+        .count();
+    assert!(
+        dated >= early.len(),
+        "{dated} re-based readings dated: {csv}"
+    );
+    let clocks = std::fs::read_to_string(bundle.join("clocks_in_force.json")).unwrap();
+    assert!(clocks.contains("clock_set"), "{clocks}");
+    let o = run(
+        &mut fringe(&[
+            "audit",
+            "verify",
+            bundle.to_str().unwrap(),
+            "--db",
+            db.to_str().unwrap(),
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}{}", o.stdout, o.stderr);
 }
 
 /// `fringe device self-test` on the simulator, commissioned: every check

@@ -4,8 +4,8 @@
 //! The input is a whole bundle: its files separated by NUL bytes, in the
 //! order manifest.json, records.jsonl, calibrations_in_force.json, then the
 //! CSV files (devices, readings, events, calibrations, lab_samples,
-//! reference_checks); a file
-//! left off is missing. The reader must never panic, and its report must
+//! reference_checks), then clocks_in_force.json (`audit::SEED_ORDER`); a
+//! file left off is missing. The reader must never panic, and its report must
 //! serialise for `--json`.
 #![no_main]
 

@@ -10,6 +10,8 @@
 //!                               object a line, typed values (the hash input), in position order
 //!   calibrations_in_force.json  the calibration records that produced the exported readings,
 //!                               each with the hash before it so it verifies on its own
+//!   clocks_in_force.json        the clock_set events that give the readings taken before their
+//!                               device's clock was set their wall-clock time, likewise
 //!   devices.csv readings.csv events.csv calibrations.csv lab_samples.csv
 //!                               the same records as CSV for a spreadsheet (readings with
 //!                               decoded permittivities, UTC times and flag words)
@@ -48,9 +50,11 @@ pub const FORMAT: &str = "fringe-audit-bundle/2";
 /// The format written before 2026-12-05, which `verify` still reads. Its
 /// readings.csv gave a reading taken before its device's clock was set the
 /// `time_utc` of its time since boot (a date in 1970), and its
-/// lab_samples.csv lab values at 2 decimals. Format 2 leaves that
-/// `time_utc` empty (`flag_words` says `clock_unset`) and writes lab values
-/// as entered; the records, hashes and every other cell are the same.
+/// lab_samples.csv lab values at 2 decimals. Format 2 gives such a reading
+/// the wall-clock time its boot's clock event gives (the event in
+/// clocks_in_force.json), or no `time_utc` where the database has none
+/// (`flag_words` says `clock_unset`), and writes lab values as entered; the
+/// records, hashes and every other cell are the same.
 pub const FORMAT_1: &str = "fringe-audit-bundle/1";
 
 /// The CSV rules of a bundle format.
@@ -73,9 +77,10 @@ impl CsvRules {
 }
 /// The bundle's files as the fuzz target `audit_bundle` takes them (one
 /// input, the files separated by NUL bytes, in this order) and its seeds
-/// hold them: the manifest, the records, the calibrations in force, then
-/// each table's CSV (README.txt is not among them).
-pub const SEED_ORDER: [&str; 9] = [
+/// hold them: the manifest, the records, the calibrations in force, each
+/// table's CSV, then the clocks in force (README.txt is not among them;
+/// seeds written before format 2 end before the clocks).
+pub const SEED_ORDER: [&str; 10] = [
     MANIFEST,
     RECORDS,
     CALS_IN_FORCE,
@@ -85,6 +90,7 @@ pub const SEED_ORDER: [&str; 9] = [
     "calibrations.csv",
     "lab_samples.csv",
     "reference_checks.csv",
+    CLOCKS_IN_FORCE,
 ];
 /// File names.
 pub const MANIFEST: &str = "manifest.json";
@@ -92,6 +98,9 @@ pub const MANIFEST: &str = "manifest.json";
 pub const RECORDS: &str = "records.jsonl";
 /// Calibrations in force.
 pub const CALS_IN_FORCE: &str = "calibrations_in_force.json";
+/// The clock events that give the bundle's readings taken before their
+/// device's clock was set their wall-clock time (format 2).
+pub const CLOCKS_IN_FORCE: &str = "clocks_in_force.json";
 
 /// An audit export or verification could not be carried out (a found
 /// problem is not an error: it is in the [`VerifyReport`]).
@@ -418,6 +427,46 @@ fn record_time_ms(r: &ChainedRecord, clocks: &Clocks) -> Option<i64> {
     }
 }
 
+/// The serial and boot of a reading taken before its device's clock was
+/// set (flag `clock_unset`).
+fn clock_unset_boot(r: &ChainedRecord) -> Option<(String, u32)> {
+    let int = |c: &str| match value_of(r, c) {
+        Some(Value::Integer(i)) => Some(*i),
+        _ => None,
+    };
+    let flags = int("flags")?;
+    if flags & i64::from(fringe_protocol::Flags::CLOCK_UNSET.bits()) == 0 {
+        return None;
+    }
+    let serial = match r.values.first() {
+        Some(Value::Text(s)) => s.clone(),
+        _ => return None,
+    };
+    Some((serial, u32::try_from(int("boot")?).ok()?))
+}
+
+/// The boots' clocks the clock_set event records `records` (table, values
+/// in the events table's column order) give, by serial.
+fn clocks_of<'a>(records: impl Iterator<Item = (Table, &'a [Value])>) -> Clocks {
+    let mut events: HashMap<String, Vec<fringe_protocol::Event>> = HashMap::new();
+    for (_, v) in records.filter(|(t, _)| *t == Table::Events) {
+        let serial = match v.first() {
+            Some(Value::Text(s)) => s.clone(),
+            _ => continue,
+        };
+        if let Ok(e) = fringe_store::record::event_from_values(v) {
+            events.entry(serial).or_default().push(e);
+        }
+    }
+    events
+        .into_iter()
+        .map(|(s, mut evs)| {
+            evs.sort_by_key(|e| e.number);
+            (s, BootClock::from_events(&evs))
+        })
+        .collect()
+}
+
 /// A calibration id as stored (the id's four bytes, big-endian:
 /// `CalId::as_u32`) in the words everything else uses (`CalId`'s own).
 fn cal_id_text(stored: i64) -> String {
@@ -479,7 +528,7 @@ fn csv_row(
     hash: &str,
     columns: &[String],
     values: &[Value],
-    rules: CsvRules,
+    (rules, clocks): (CsvRules, &Clocks),
 ) -> Vec<String> {
     let mut row = vec![position.to_string(), hash.to_string()];
     row.extend(
@@ -502,12 +551,25 @@ fn csv_row(
         let clock_unset = int("flags")
             .is_some_and(|f| f & i64::from(fringe_protocol::Flags::CLOCK_UNSET.bits()) != 0);
         // A reading taken before its device's clock was set has a time
-        // since boot, not a date: no time_utc in format 2 (its flag words
-        // say clock_unset; the database re-bases it where a clock event
-        // came later).
-        let time_utc = int("time_ms")
-            .filter(|_| rules == CsvRules::V1 || !clock_unset)
-            .map(fmt_time);
+        // since boot, not a date. Format 2 gives it the wall-clock time of
+        // the boot's clock event the bundle carries (clocks_in_force.json),
+        // else no time_utc (its flag words say clock_unset); format 1 gave
+        // the time since boot as a date in 1970.
+        let time_utc = match (rules, clock_unset) {
+            (CsvRules::V1, _) | (_, false) => int("time_ms").map(fmt_time),
+            (CsvRules::V2, true) => {
+                let serial = match values.first() {
+                    Some(Value::Text(s)) => s.as_str(),
+                    _ => "",
+                };
+                let clock = int("boot")
+                    .and_then(|b| u32::try_from(b).ok())
+                    .and_then(|b| clocks.get(serial)?.get(&b));
+                clock
+                    .zip(int("time_ms"))
+                    .map(|(c, t)| fmt_time(c.origin_ms.saturating_add(t)))
+            }
+        };
         row.push(time_utc.unwrap_or_default());
         row.push(
             int("flags")
@@ -599,6 +661,10 @@ fn export_as(
     let mut columns: BTreeMap<String, Vec<String>> = BTreeMap::new();
     // The earliest time of a record in range (None sorts first: start high).
     let mut first_time: Option<i64> = Some(i64::MAX);
+    // Every clock_set event with the hash before it, and the readings taken
+    // before their device's clock was set (position, serial, boot).
+    let mut clock_records: Vec<(Hash, ChainedRecord)> = Vec::new();
+    let mut unset_readings: Vec<(u64, String, u32)> = Vec::new();
     // Records with no wall-clock time before the slice, and since its last
     // record in range so far (in it only if a record in range follows).
     let mut untimed_before: BTreeMap<String, u64> = BTreeMap::new();
@@ -650,6 +716,14 @@ fn export_as(
         }
         if r.table == Table::Calibrations {
             cal_records.push((prev, r.clone()));
+        }
+        if r.table == Table::Events
+            && value_of(&r, "kind") == Some(&Value::Text("clock_set".into()))
+        {
+            clock_records.push((prev, r.clone()));
+        }
+        if let (Table::Readings, Some((serial, boot))) = (r.table, clock_unset_boot(&r)) {
+            unset_readings.push((r.position, serial, boot));
         }
         prev = r.hash;
         Ok(())
@@ -708,6 +782,30 @@ fn export_as(
         }
     }
     in_force.sort_by_key(|r| r.1.position);
+    // The clock events that re-base the slice's readings taken before
+    // their device's clock was set: the first clock_set of each such boot.
+    let mut clocks_in_force: Vec<&(Hash, ChainedRecord)> = Vec::new();
+    for (_, serial, boot) in unset_readings
+        .iter()
+        .filter(|(p, ..)| (first_position..=last_position).contains(p))
+    {
+        let Some(c) = clocks.get(serial).and_then(|b| b.get(boot)) else {
+            continue;
+        };
+        let found = clock_records.iter().find(|(_, r)| {
+            value_of(r, "serial") == Some(&Value::Text(serial.clone()))
+                && value_of(r, "number") == Some(&Value::Integer(i64::from(c.event_number)))
+        });
+        if let Some(rec) = found {
+            if !clocks_in_force
+                .iter()
+                .any(|x| x.1.position == rec.1.position)
+            {
+                clocks_in_force.push(rec);
+            }
+        }
+    }
+    clocks_in_force.sort_by_key(|r| r.1.position);
 
     let created = !out.exists();
     std::fs::create_dir_all(out).map_err(io(out))?;
@@ -720,6 +818,7 @@ fn export_as(
         (&columns, rules),
         Found {
             in_force: &in_force,
+            clocks_in_force: &clocks_in_force,
             without_record,
             untimed_left_out,
         },
@@ -759,6 +858,8 @@ fn bundle_files() -> Vec<String> {
 struct Found<'a> {
     /// The calibration records in force, with the hash before each.
     in_force: &'a [&'a (Hash, ChainedRecord)],
+    /// The clock events that re-base the slice's readings, likewise.
+    clocks_in_force: &'a [&'a (Hash, ChainedRecord)],
     /// Calibration ids the readings carry with no record.
     without_record: Vec<String>,
     /// Records with no wall-clock time outside the slice, by table.
@@ -776,9 +877,16 @@ fn write_bundle(
 ) -> Result<ExportSummary, AuditError> {
     let Found {
         in_force,
+        clocks_in_force,
         without_record,
         untimed_left_out,
     } = found;
+    // The clocks the bundle can show: those of the events it carries (a
+    // reader of the bundle derives the same from the same records).
+    let bundle_clocks = match rules {
+        CsvRules::V1 => Clocks::new(),
+        CsvRules::V2 => clocks_of(clocks_in_force.iter().map(|r| (r.1.table, &r.1.values[..]))),
+    };
     let rec_path = out.join(RECORDS);
     let mut rec_out =
         std::io::BufWriter::new(std::fs::File::create(&rec_path).map_err(io(&rec_path))?);
@@ -815,7 +923,12 @@ fn write_bundle(
         let cols: Vec<String> = r.columns.iter().map(|c| c.to_string()).collect();
         if let Some(w) = csvs.get_mut(&r.table) {
             if let Err(e) = w.write_record(csv_row(
-                r.position, r.table, &j.hash, &cols, &r.values, rules,
+                r.position,
+                r.table,
+                &j.hash,
+                &cols,
+                &r.values,
+                (rules, &bundle_clocks),
             )) {
                 write_err = Some(AuditError::Io {
                     path: out.join(format!("{}.csv", r.table.name())),
@@ -849,11 +962,29 @@ fn write_bundle(
         serde_json::to_string_pretty(&cals).unwrap_or_default(),
     )
     .map_err(io(&cal_path))?;
+    if rules == CsvRules::V2 {
+        let clock_path = out.join(CLOCKS_IN_FORCE);
+        let clocks: Vec<InForce> = clocks_in_force
+            .iter()
+            .map(|(prev, r)| InForce {
+                prev_hash: chain::hex(prev),
+                record: json_record(r),
+            })
+            .collect();
+        std::fs::write(
+            &clock_path,
+            serde_json::to_string_pretty(&clocks).unwrap_or_default(),
+        )
+        .map_err(io(&clock_path))?;
+    }
     let readme = out.join("README.txt");
     std::fs::write(&readme, bundle_readme(db_label, from_ms, to_ms)).map_err(io(&readme))?;
 
     let mut files = Vec::new();
     let mut names: Vec<String> = vec![RECORDS.into(), CALS_IN_FORCE.into(), "README.txt".into()];
+    if rules == CsvRules::V2 {
+        names.push(CLOCKS_IN_FORCE.into());
+    }
     names.extend(Table::ALL.iter().map(|t| format!("{}.csv", t.name())));
     for name in names {
         let (sha256, bytes) = sha256_file(&out.join(&name))?;
@@ -908,8 +1039,9 @@ fn bundle_readme(db: &str, from_ms: i64, to_ms: i64) -> String {
          Records of {db} from {} to {} (UTC), linked by a SHA-256 hash chain.\n\n\
          records.jsonl               the chained records (the hash input), one per line\n\
          calibrations_in_force.json  the calibration records that produced the readings\n\
+         clocks_in_force.json        the clock events that date readings taken before the clock was set\n\
          *.csv                       the same records for a spreadsheet (a reading taken before its\n\
-         \x20                           device's clock was set has no time_utc: flag clock_unset)\n\
+         \x20                           device's clock was set and never dated has no time_utc)\n\
          manifest.json               SHA-256 of each file, the chain anchor, end and the database's head\n\n\
          To check it:  fringe audit verify THIS_FOLDER            (the bundle on its own)\n\
          \x20             fringe audit verify THIS_FOLDER --db FILE  (and against the database)\n\
@@ -1079,6 +1211,27 @@ struct Parsed {
     table: Table,
     hash: Hash,
     values: Vec<Value>,
+}
+
+/// A record of an in-force file (calibrations, clocks) parsed, and whether
+/// it links from the hash before it, agrees with the slice where the slice
+/// holds its position, and with the slice's record before it.
+fn linked_record(
+    c: &InForce,
+    columns: &BTreeMap<String, Vec<String>>,
+    stored: &HashMap<u64, Hash>,
+) -> (Option<(Table, Vec<Value>)>, bool) {
+    let Ok((t, h, v)) = parse_record(&c.record, columns) else {
+        return (None, false);
+    };
+    let ok = hash_from_hex(&c.prev_hash).is_some_and(|prev| {
+        let inside_prev = stored.get(&(c.record.position.wrapping_sub(1))).copied();
+        let linked = chain::link(&prev, c.record.position, t, &chain::canonical(&v)) == h;
+        let same_as_slice = stored.get(&c.record.position).is_none_or(|s| *s == h);
+        let anchor_agrees = inside_prev.is_none_or(|ip| ip == prev);
+        linked && same_as_slice && anchor_agrees
+    });
+    (Some((t, v)), ok)
 }
 
 fn parse_record(
@@ -1465,25 +1618,15 @@ fn verify_bundle(
         match serde_json::from_slice::<Vec<InForce>>(&text) {
             Ok(list) => {
                 for (i, c) in list.iter().enumerate() {
-                    let ok = parse_record(&c.record, &m.columns)
-                        .ok()
-                        .and_then(|(t, h, v)| {
-                            if let Some(Value::Integer(id)) = cal_col.and_then(|k| v.get(k)) {
-                                in_force_ids.push(cal_id_text(*id));
-                            }
-                            let prev = hash_from_hex(&c.prev_hash)?;
-                            let inside_prev =
-                                stored.get(&(c.record.position.wrapping_sub(1))).copied();
-                            let linked =
-                                chain::link(&prev, c.record.position, t, &chain::canonical(&v))
-                                    == h;
-                            let same_as_slice =
-                                stored.get(&c.record.position).is_none_or(|s| *s == h);
-                            let anchor_agrees = inside_prev.is_none_or(|ip| ip == prev);
-                            Some(linked && same_as_slice && anchor_agrees)
-                        });
+                    let (parsed, ok) = linked_record(c, &m.columns, &stored);
+                    if let Some(Value::Integer(id)) = parsed
+                        .as_ref()
+                        .and_then(|(_, v)| cal_col.and_then(|k| v.get(k)))
+                    {
+                        in_force_ids.push(cal_id_text(*id));
+                    }
                     report.records_checked += 1;
-                    if ok != Some(true) {
+                    if !ok {
                         report.problems.push(Problem::Changed {
                             file: CALS_IN_FORCE.into(),
                             line: i as u64 + 1,
@@ -1500,6 +1643,39 @@ fn verify_bundle(
             }),
         }
     }
+    // 3c. The clock events that give readings taken before their device's
+    // clock was set a wall-clock time (format 2): each links from its
+    // anchor; only those that do give a time.
+    let mut clock_records: Vec<(Table, Vec<Value>)> = Vec::new();
+    let kp = files.path(CLOCKS_IN_FORCE);
+    if let Some(text) = files.read(CLOCKS_IN_FORCE).map_err(io(&kp))? {
+        match serde_json::from_slice::<Vec<InForce>>(&text) {
+            Ok(list) => {
+                for (i, c) in list.iter().enumerate() {
+                    let (parsed, ok) = linked_record(c, &m.columns, &stored);
+                    report.records_checked += 1;
+                    match parsed {
+                        Some(p) if ok => clock_records.push(p),
+                        _ => report.problems.push(Problem::Changed {
+                            file: CLOCKS_IN_FORCE.into(),
+                            line: i as u64 + 1,
+                            position: c.record.position,
+                            table: c.record.table.clone(),
+                        }),
+                    }
+                }
+            }
+            Err(e) => report.problems.push(Problem::Unreadable {
+                file: CLOCKS_IN_FORCE.into(),
+                line: e.line() as u64,
+                reason: e.to_string(),
+            }),
+        }
+    }
+    let clocks = match rules {
+        CsvRules::V1 => Clocks::new(),
+        CsvRules::V2 => clocks_of(clock_records.iter().map(|(t, v)| (*t, &v[..]))),
+    };
     // 3b. The calibrations the manifest names as without a record: each is
     // carried by a reading of the bundle and has no record in force. (Whether
     // the database has a record of one is not in the bundle: [`verify`]
@@ -1564,7 +1740,14 @@ fn verify_bundle(
             .map(|p| {
                 (
                     p.position,
-                    csv_row(p.position, t, &chain::hex(&p.hash), &cols, &p.values, rules),
+                    csv_row(
+                        p.position,
+                        t,
+                        &chain::hex(&p.hash),
+                        &cols,
+                        &p.values,
+                        (rules, &clocks),
+                    ),
                 )
             })
             .collect();
@@ -1997,8 +2180,9 @@ mod tests {
     }
 
     /// The fixture, then 2 readings of boot 2 whose clock was never set, a
-    /// timed reading of boot 3 at T0 + 40 min, and 3 readings of boot 4
-    /// whose clock was never set.
+    /// timed reading of boot 3 at T0 + 40 min, 2 readings of boot 4 taken
+    /// before its clock was set and its clock event, and 3 readings of boot
+    /// 5 whose clock was never set.
     fn fixture_with_untimed(name: &str) -> (tempfile::TempDir, PathBuf) {
         let (dir, db) = fixture(name);
         let mut s = Store::open(&db).expect("open");
@@ -2015,15 +2199,38 @@ mod tests {
         };
         s.insert_readings(dev, &[timed], Source::Log)
             .expect("boot 3");
-        s.insert_readings(dev, &untimed_readings(4, 3), Source::Log)
+        // Boot 4: two readings before the clock was set, then the clock
+        // event (20 s after boot, set to T0 + 50 min): re-based to
+        // T0 + 50 min - 15 s and - 14 s.
+        s.insert_readings(dev, &untimed_readings(4, 2), Source::Log)
             .expect("boot 4");
+        s.insert_events(
+            dev,
+            &[fringe_protocol::Event {
+                number: 0,
+                boot: 4,
+                time_ms: REBASE_SET_MS as u64,
+                kind: fringe_protocol::EventKind::ClockSet {
+                    old_ms: 20_000,
+                    new_ms: REBASE_SET_MS as u64,
+                },
+            }],
+        )
+        .expect("clock event");
+        s.insert_readings(dev, &untimed_readings(5, 3), Source::Log)
+            .expect("boot 5");
         (dir, db)
     }
 
+    /// Where boot 4's clock was set (`fixture_with_untimed`).
+    const REBASE_SET_MS: i64 = T0 + 50 * 60_000;
+
     /// Readings with no wall-clock time: those between records in range are
     /// in the bundle with no `time_utc` (format 1 gave them a date in
-    /// 1970), those outside the slice are counted as left out; lab values
-    /// as entered. Format 1 bundles still verify by their own rules.
+    /// 1970), those outside the slice are counted as left out; readings
+    /// re-based from a clock event have its wall-clock time, the event in
+    /// clocks_in_force.json, checked; lab values as entered. Format 1
+    /// bundles still verify by their own rules.
     #[test]
     fn untimed_readings_are_counted_or_shown_without_a_date() {
         let (dir, db) = fixture_with_untimed("u");
@@ -2031,8 +2238,9 @@ mod tests {
         let out = dir.path().join("v2");
         let s = export(&store, "u.db", Some(T0), T0 + 3_600_000, &out).expect("export");
         assert_eq!(s.manifest.format, FORMAT);
-        // 12 + 2 inside the slice + 1; the 3 of boot 4 come after it.
-        assert_eq!(s.manifest.records.get("readings"), Some(&15));
+        // 12 + 2 inside the slice + 1 + 2 re-based; the 3 of boot 5 come
+        // after it.
+        assert_eq!(s.manifest.records.get("readings"), Some(&17));
         let left: BTreeMap<String, u64> = [("readings".to_string(), 3)].into();
         assert_eq!(s.manifest.untimed_left_out.as_ref(), Some(&left));
         let mut said = Vec::new();
@@ -2052,8 +2260,23 @@ mod tests {
             .iter()
             .filter(|r| r[col("flag_words")].contains("clock_unset"))
             .collect();
-        assert_eq!(unset.len(), 2);
-        assert!(unset.iter().all(|r| r[col("time_utc")].is_empty()));
+        assert_eq!(unset.len(), 4);
+        let times: Vec<(&str, &str)> = unset
+            .iter()
+            .map(|r| (&r[col("boot")], &r[col("time_utc")]))
+            .collect();
+        assert_eq!(
+            times,
+            [
+                ("2", ""),
+                ("2", ""),
+                ("4", fmt_time(REBASE_SET_MS - 15_000).as_str()),
+                ("4", fmt_time(REBASE_SET_MS - 14_000).as_str()),
+            ]
+        );
+        let clocks: Vec<serde_json::Value> =
+            serde_json::from_slice(&std::fs::read(out.join(CLOCKS_IN_FORCE)).unwrap()).unwrap();
+        assert_eq!(clocks.len(), 1, "{clocks:?}");
         assert!(rows
             .iter()
             .filter(|r| !r[col("flag_words")].contains("clock_unset"))
@@ -2062,6 +2285,39 @@ mod tests {
         assert!(lab.contains(",14.4,"), "{lab}");
         assert!(check(&out).ok(), "{:?}", check(&out).problems);
         assert!(verify(Some(&out), Some(&store)).unwrap().ok());
+        // A clock event altered (the origin moved an hour, its hash left):
+        // it no longer links, gives no time, and the times it gave are
+        // reported as changed cells.
+        let tampered = dir.path().join("tampered");
+        std::fs::create_dir(&tampered).unwrap();
+        for e in std::fs::read_dir(&out).unwrap() {
+            let e = e.unwrap();
+            std::fs::copy(e.path(), tampered.join(e.file_name())).unwrap();
+        }
+        let text = std::fs::read_to_string(tampered.join(CLOCKS_IN_FORCE)).unwrap();
+        let later = (REBASE_SET_MS + 3_600_000).to_string();
+        let edited = text.replace(&REBASE_SET_MS.to_string(), &later);
+        assert_ne!(edited, text);
+        std::fs::write(tampered.join(CLOCKS_IN_FORCE), edited).unwrap();
+        let said: Vec<String> = check(&tampered)
+            .problems
+            .iter()
+            .map(|p| match p {
+                Problem::FileChanged { file } => format!("changed {file}"),
+                Problem::Changed { file, .. } => format!("record {file}"),
+                Problem::CellChanged { file, column, .. } => format!("cell {file} {column}"),
+                other => format!("{other:?}"),
+            })
+            .collect();
+        assert_eq!(
+            said,
+            [
+                "changed clocks_in_force.json",
+                "record clocks_in_force.json",
+                "cell readings.csv time_utc",
+                "cell readings.csv time_utc"
+            ]
+        );
 
         // Later start: the 2 of boot 2 now lie before the slice too.
         let late = export(
@@ -2074,7 +2330,7 @@ mod tests {
         .expect("export");
         let left: BTreeMap<String, u64> = [("readings".to_string(), 5)].into();
         assert_eq!(late.manifest.untimed_left_out, Some(left));
-        assert_eq!(late.manifest.records.get("readings"), Some(&1));
+        assert_eq!(late.manifest.records.get("readings"), Some(&3));
         // Nothing in range says how many records are in no range at all.
         let none = export(&store, "u.db", Some(0), 1, &dir.path().join("none")).unwrap_err();
         assert!(
@@ -2113,7 +2369,9 @@ mod tests {
             .iter()
             .map(|p| p.to_string())
             .collect();
-        assert_eq!(problems.len(), 3, "{problems:?}");
+        // The 1970 dates of boots 2 and 4 (a format 1 bundle carries no
+        // clock events) and the lab value.
+        assert_eq!(problems.len(), 5, "{problems:?}");
         // And a format this tool does not know is refused by name.
         m.format = "fringe-audit-bundle/3".into();
         let future = with_manifest(&v1, &dir.path().join("future"), &m);
