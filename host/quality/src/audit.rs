@@ -2393,6 +2393,24 @@ mod tests {
             .collect()
     }
 
+    /// The format 2 fuzz seed (the bundle of `fixture_with_untimed` from
+    /// T0 to T0 + 1 h: readings dated from a clock event, readings never
+    /// dated) verifies: the seed exercises the clocks in force.
+    #[test]
+    fn the_format_2_fuzz_seed_verifies() {
+        let files = seed_bundle("format2-dated-and-undated");
+        let m: Manifest = serde_json::from_slice(&files[MANIFEST]).unwrap();
+        assert_eq!(m.format, FORMAT);
+        assert!(files[CLOCKS_IN_FORCE].len() > 100);
+        let r = verify_files(&files).unwrap();
+        assert_eq!(
+            r.problems,
+            vec![Problem::FileMissing {
+                file: "README.txt".into()
+            }]
+        );
+    }
+
     /// A format 1 bundle written by the tool of 2026-12-02 (the demo's
     /// first minutes, kept as a fuzz seed) still verifies: the format 1
     /// rules are those that tool wrote, not today's rules read back.
