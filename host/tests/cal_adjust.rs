@@ -273,3 +273,35 @@ fn a_forced_correction_says_so_and_takes_the_lines_error() {
         "{e}"
     );
 }
+
+/// `cal adjust --out` naming the calibration it adjusts (or its pairs) is
+/// refused before anything is read or written (exit status 2), the parent
+/// as it was.
+#[test]
+fn the_child_never_replaces_its_parent_or_its_pairs() {
+    let dir = tempfile::tempdir().expect("dir");
+    let d = dir.path();
+    std::fs::write(d.join("lab.csv"), table(30, 0.0)).expect("lab");
+    let cal = fit_single(d);
+    let parent = std::fs::read(&cal).expect("parent");
+    std::fs::write(
+        d.join("pairs.csv"),
+        "sample_id,moisture_pct,predicted_moisture_pct\n",
+    )
+    .expect("pairs");
+    for out in [cal.clone(), d.join("pairs.csv")] {
+        let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+            .args(["cal", "adjust", "--cal"])
+            .arg(&cal)
+            .arg("--pairs")
+            .arg(d.join("pairs.csv"))
+            .arg("--out")
+            .arg(&out)
+            .output()
+            .expect("run");
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{err}");
+        assert!(err.contains("nothing written"), "{err}");
+    }
+    assert_eq!(std::fs::read(&cal).expect("parent"), parent);
+}

@@ -369,3 +369,87 @@ fn options_out_of_range_name_their_flag_and_write_nothing() {
         assert!(!out.exists(), "{extra:?}: nothing written");
     }
 }
+
+/// A forced file whose record of the override is deleted by hand, or whose
+/// RPD is raised, is refused by `cal push` (before the port, key or
+/// database) and `cal predict` for its digest, exit status 3: push cannot
+/// be talked past its gate by editing the statistics it gates on.
+#[test]
+fn a_hand_edited_gate_record_or_statistic_is_refused_at_push_and_predict() {
+    let dir = tempfile::tempdir().expect("dir");
+    let (o, out) = fit(dir.path(), &rows(12, 0.0), &["--force"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let text = std::fs::read_to_string(&out).expect("written with --force");
+    let gate_line = text
+        .lines()
+        .find(|l| l.starts_with("gate_overridden"))
+        .expect("the override is recorded")
+        .to_string();
+    let rpd_line = text
+        .lines()
+        .find(|l| l.starts_with("rpd = "))
+        .expect("rpd")
+        .to_string();
+    for (from, to) in [(gate_line.as_str(), ""), (rpd_line.as_str(), "rpd = 9.0")] {
+        std::fs::write(&out, text.replacen(from, to, 1)).expect("edit");
+        let (o, db) = push_without_force(dir.path(), &out);
+        let err = stderr(&o);
+        assert_eq!(o.status.code(), Some(3), "{from}: {err}");
+        assert!(err.contains("field `digest`"), "{from}: {err}");
+        assert!(!db.exists(), "no database created");
+        let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+            .args(["cal", "predict", "--cal"])
+            .arg(&out)
+            .arg("--input")
+            .arg(dir.path().join("lab.csv"))
+            .output()
+            .expect("run fringe");
+        assert_eq!(o.status.code(), Some(3), "{}", stderr(&o));
+    }
+}
+
+/// `cal fit --out` replaces a product file fringe wrote, never the
+/// reference table it reads or another file of that name (exit status 2,
+/// the file as it was).
+#[test]
+fn cal_fit_out_never_replaces_a_table_or_a_foreign_file() {
+    let dir = tempfile::tempdir().expect("dir");
+    let (o, out) = fit(dir.path(), &rows(30, 0.05), &[]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let csv = dir.path().join("lab.csv");
+    let run = |out: &Path| {
+        Command::new(env!("CARGO_BIN_EXE_fringe"))
+            .args(["cal", "fit", "--model", "single", "--samples"])
+            .arg(&csv)
+            .arg("--out")
+            .arg(out)
+            .output()
+            .expect("run fringe")
+    };
+    // fringe's own file: replaced.
+    let o = run(&out);
+    assert!(o.status.success(), "{}", stderr(&o));
+    // The table itself, and a file of the plant's.
+    let table = std::fs::read(&csv).unwrap();
+    let o = run(&csv);
+    assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
+    assert!(
+        stderr(&o).contains("also the file of --samples"),
+        "{}",
+        stderr(&o)
+    );
+    assert_eq!(std::fs::read(&csv).unwrap(), table);
+    let notes = dir.path().join("wheat.toml");
+    std::fs::write(&notes, "# the lab's own notes\n").unwrap();
+    let o = run(&notes);
+    assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
+    assert!(
+        stderr(&o).contains("not a product calibration file fringe wrote"),
+        "{}",
+        stderr(&o)
+    );
+    assert_eq!(
+        std::fs::read_to_string(&notes).unwrap(),
+        "# the lab's own notes\n"
+    );
+}

@@ -4,9 +4,13 @@
 //! wire form [`fringe_protocol::ProductCal`] built from it (name, model,
 //! basis, the flat `params` layout documented in
 //! `fringe_calibration::product`, valid ranges, SEC); `id` is that wire
-//! form's content id, checked on loading so a hand edit cannot go unnoticed.
-//! `[statistics]` and `[source]` are kept for people and the audit trail
-//! and do not change the id.
+//! form's content id, checked on loading. `[statistics]`, `[source]` and
+//! `[prediction]` are kept for people, the quality gate of `cal push` and
+//! the audit trail, and do not change the id; `digest` (SHA-256 of the
+//! whole file's content, written by fringe since 2026-12-05) covers them
+//! too, so a hand edit of anything in the file (a statistic the gate reads,
+//! a removed `gate_overridden`) is refused on loading. A file written
+//! before has no digest, and its statistics are taken as written.
 //!
 //! ```toml
 //! format = "fringe-product/1"
@@ -195,6 +199,11 @@ pub struct ProductFile {
     /// written before it was kept).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub prediction: Option<Prediction>,
+    /// SHA-256 (hex) of everything else in the file ([`ProductFile::digest_of`]),
+    /// written by [`ProductFile::to_text`]; absent in files written before
+    /// 2026-12-05.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub digest: Option<String>,
 }
 
 /// A product file could not be used.
@@ -300,7 +309,27 @@ impl ProductFile {
             statistics,
             source,
             prediction: None,
+            digest: None,
         }
+    }
+
+    /// The digest of the file's content: SHA-256 of its JSON form without
+    /// the digest (every field, in the struct's order; numbers in their
+    /// shortest round-trip form, which the TOML text keeps).
+    pub fn digest_of(&self) -> String {
+        use sha2::{Digest, Sha256};
+        let bare = ProductFile {
+            digest: None,
+            ..self.clone()
+        };
+        let json = serde_json::to_vec(&bare).unwrap_or_default();
+        Sha256::digest(&json)
+            .iter()
+            .fold(String::with_capacity(64), |mut s, b| {
+                use std::fmt::Write as _;
+                let _ = write!(s, "{b:02x}");
+                s
+            })
     }
 
     /// The wire form the device stores and evaluates.
@@ -377,10 +406,18 @@ impl ProductFile {
             return Err(bad(
                 "id",
                 format!(
-                    "the file says {} but its contents give {id}: the calibration was edited by hand; refit it (or correct `id` only if you mean this change)",
+                    "the file says {} but its calibration does not give that id: it was edited by hand; fit it again (`fringe cal fit`)",
                     self.id
                 ),
             ));
+        }
+        if let Some(d) = &self.digest {
+            if *d != self.digest_of() {
+                return Err(bad(
+                    "digest",
+                    "the file's content (its statistics, gate record, source or calibration) was changed after fringe wrote it; fit it again (`fringe cal fit`, with --force where the gate refuses it)".into(),
+                ));
+            }
         }
         Ok(cal)
     }
@@ -508,10 +545,15 @@ impl ProductFile {
     /// # Errors
     /// The TOML writer's, should a value have no TOML form.
     pub fn to_text(&self) -> Result<String, toml::ser::Error> {
-        let body = toml::to_string(self)?;
+        let sealed = ProductFile {
+            digest: Some(self.digest_of()),
+            ..self.clone()
+        };
+        let body = toml::to_string(&sealed)?;
         Ok(format!(
             "# Fringe product calibration ({FORMAT}). The device evaluates exactly the fields above\n\
-             # [statistics]; `id` is their content id. Parameter layout: fringe_calibration::product.\n{body}"
+             # [statistics]; `id` is their content id, `digest` covers the whole file (an edit is refused).\n\
+             # Parameter layout: fringe_calibration::product.\n{body}"
         ))
     }
 
@@ -530,8 +572,11 @@ impl ProductFile {
             reason: e.to_string(),
         })?;
         let tmp = path.with_extension("toml.part");
-        std::fs::write(&tmp, text).map_err(io)?;
-        std::fs::rename(&tmp, path).map_err(io)
+        let written = std::fs::write(&tmp, text).and_then(|()| std::fs::rename(&tmp, path));
+        if written.is_err() {
+            let _ = std::fs::remove_file(&tmp);
+        }
+        written.map_err(io)
     }
 }
 
@@ -641,6 +686,60 @@ mod tests {
         std::fs::write(&p, "format = 1\n").expect("write");
         let e = ProductFile::load(&p).expect_err("bad").to_string();
         assert!(e.contains("p.toml:1:"), "{e}");
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    /// The digest covers what the content id does not: a statistic the
+    /// quality gate reads, the record of an overridden gate, the source.
+    /// Each hand edit is refused by the field `digest`; a file written
+    /// before digests (none in it) loads, its statistics as written.
+    #[test]
+    fn a_hand_edit_of_the_statistics_or_the_gate_record_is_refused() {
+        let stats = Statistics {
+            n: 40,
+            rpd: 1.7,
+            r2: 0.71,
+            gate_overridden: vec!["cross-validated RPD 1.70 is below 2".into()],
+            ..Default::default()
+        };
+        let dir = std::env::temp_dir().join(format!("fringe-pf-dg-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).expect("dir");
+        let p = dir.join("p.toml");
+        let f = ProductFile::from_wire(&wire(), &["eps_re"], stats, Source::default());
+        f.save(&p).expect("save");
+        let (g, _) = ProductFile::load(&p).expect("load");
+        assert_eq!(g.digest.as_deref(), Some(f.digest_of().as_str()));
+        let text = std::fs::read_to_string(&p).expect("read");
+        let gate_line = text
+            .lines()
+            .find(|l| l.starts_with("gate_overridden"))
+            .expect("the gate record is in the file")
+            .to_string();
+        for (from, to) in [
+            ("rpd = 1.7", "rpd = 2.7"),
+            ("r2 = 0.71", "r2 = 0.91"),
+            ("n = 40", "n = 400"),
+            (gate_line.as_str(), ""),
+        ] {
+            assert!(text.contains(from), "{from}: {text}");
+            std::fs::write(&p, text.replacen(from, to, 1)).expect("write");
+            let e = ProductFile::load(&p).expect_err(from).to_string();
+            assert!(
+                e.contains("field `digest`") && e.contains("changed after fringe wrote it"),
+                "{from}: {e}"
+            );
+        }
+        // Written before digests: no digest line, loads as written.
+        let old: String = text
+            .lines()
+            .filter(|l| !l.starts_with("digest"))
+            .map(|l| format!("{l}\n"))
+            .collect();
+        assert_ne!(old, text);
+        std::fs::write(&p, &old).expect("write");
+        let (g, _) = ProductFile::load(&p).expect("an older file");
+        assert_eq!(g.digest, None);
+        assert_eq!(g.statistics.rpd, 1.7);
         let _ = std::fs::remove_dir_all(&dir);
     }
 

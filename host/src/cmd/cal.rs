@@ -2,6 +2,8 @@
 //! the files and output around `fringe_quality::cal`.
 
 pub use crate::cli::cal::{AdjustArgs, AdjustCorrectionArg, FitArgs, FitModelArg, PredictArgs};
+use std::path::Path;
+
 use anyhow::Context as _;
 use fringe_quality::cal::{self, AdjustCorrection, AdjustOptions, FitModel, FitOptions};
 
@@ -37,6 +39,51 @@ impl FitArgs {
     }
 }
 
+/// `out` (given to `flag`) is none of `inputs` (the files the command
+/// reads or writes besides, with their flags).
+///
+/// # Errors
+/// [`crate::exit::UsageError`]: nothing is written.
+fn not_one_of(out: &Path, flag: &str, inputs: &[(&Path, &str)]) -> anyhow::Result<()> {
+    let same = |a: &Path, b: &Path| match (a.canonicalize(), b.canonicalize()) {
+        (Ok(x), Ok(y)) => x == y,
+        _ => a == b,
+    };
+    match inputs.iter().find(|(input, _)| same(out, input)) {
+        Some((_, input_flag)) => Err(crate::exit::UsageError(format!(
+            "{flag} {} is also the file of {input_flag}: one would replace the other; nothing written (choose another name)",
+            out.display()
+        ))
+        .into()),
+        None => Ok(()),
+    }
+}
+
+/// A product calibration file may be written to `out` (`flag` names it in
+/// the refusal): it does not exist, or it is a product calibration file
+/// fringe wrote (its first line), never a table, a report or a file of the
+/// plant's; and it is none of `inputs`.
+///
+/// # Errors
+/// [`crate::exit::UsageError`]: nothing is written.
+fn may_write_product(out: &Path, flag: &str, inputs: &[(&Path, &str)]) -> anyhow::Result<()> {
+    not_one_of(out, flag, inputs)?;
+    let Ok(meta) = std::fs::symlink_metadata(out) else {
+        return Ok(());
+    };
+    let ours = meta.is_file()
+        && std::fs::read(out).is_ok_and(|b| b.starts_with(b"# Fringe product calibration ("));
+    if ours {
+        Ok(())
+    } else {
+        Err(crate::exit::UsageError(format!(
+            "{flag} {}: exists and is not a product calibration file fringe wrote; nothing written (choose another name, or move that file)",
+            out.display()
+        ))
+        .into())
+    }
+}
+
 fn now_s() -> u64 {
     (fringe_store::now_unix_ms() / 1000).max(0) as u64
 }
@@ -54,18 +101,39 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
             .into());
         }
     }
+    may_write_product(&args.out, "--out", &[(&args.samples, "--samples")])?;
     if let Some(p) = &args.plot {
         fringe_quality::views::may_replace(p, "--plot")?;
+        not_one_of(
+            p,
+            "--plot",
+            &[(&args.samples, "--samples"), (&args.out, "--out")],
+        )?;
     }
     let o = cal::fit(&args.options(), now_s())?;
     let plot = match &args.plot {
         Some(_) => Some(cal::fit_plot(&o, &args.samples)?),
         None => None,
     };
-    o.file.save(&args.out)?;
-    if let (Some(p), Some(svg)) = (&args.plot, plot) {
-        std::fs::write(p, svg + fringe_quality::views::SVG_MARK)
-            .with_context(|| format!("writing {}", p.display()))?;
+    // The plot beside its final name first, so that a failed write leaves
+    // neither file.
+    let plot_part = match (&args.plot, plot) {
+        (Some(p), Some(svg)) => {
+            let part = p.with_extension("svg.part");
+            std::fs::write(&part, svg + fringe_quality::views::SVG_MARK)
+                .with_context(|| format!("writing {}", part.display()))?;
+            Some((part, p))
+        }
+        _ => None,
+    };
+    if let Err(e) = o.file.save(&args.out) {
+        if let Some((part, _)) = &plot_part {
+            let _ = std::fs::remove_file(part);
+        }
+        return Err(e.into());
+    }
+    if let Some((part, p)) = plot_part {
+        std::fs::rename(&part, p).with_context(|| format!("writing {}", p.display()))?;
     }
     if args.json {
         crate::out::json(&cal::outcome_json(&o, &args.out))?;
@@ -144,6 +212,11 @@ impl AdjustArgs {
 /// # Errors
 /// Bad files, too few pairs, a database failure, or a write failure.
 pub fn run_adjust(args: &AdjustArgs) -> anyhow::Result<()> {
+    let mut inputs = vec![(args.cal.as_path(), "--cal")];
+    if let Some(p) = &args.pairs {
+        inputs.push((p.as_path(), "--pairs"));
+    }
+    may_write_product(&args.out, "--out", &inputs)?;
     let opts = args.options();
     let (file, _) = fringe_quality::product_file::ProductFile::load(&args.cal)?;
     let pairs = match (&args.pairs, &args.db) {
