@@ -338,8 +338,10 @@ impl LineData {
         let head: Vec<f64> = ref_obs.iter().take(20).map(|o| o.value).collect();
         let sigma = sigma_moving_range(&head).unwrap_or(0.0).max(0.005);
         out.push(Monitor::new(Quantity::ReferenceCheck, 0.0, sigma).run(&ref_obs));
-        // (b) lab residuals
-        let lab_obs: Vec<Obs> = self
+        // (b) lab residuals, in the order the samples were taken (they are
+        // recorded as the lab reports them: a late result, or a correction
+        // of an earlier one, comes last)
+        let mut lab_obs: Vec<Obs> = self
             .lab
             .iter()
             .filter_map(|l| {
@@ -349,6 +351,7 @@ impl LineData {
                 })
             })
             .collect();
+        lab_obs.sort_by_key(|o| o.time_ms);
         let sep = self
             .product_in_force()
             .and_then(|b| b.statistics.as_ref())
@@ -622,5 +625,33 @@ mod tests {
         let lab = load(&store, Some("L2")).unwrap().lab;
         assert_eq!(lab.len(), 1, "{lab:?}");
         assert_eq!(lab[0].lab_pct, 14.8);
+    }
+
+    /// The lab-residual chart takes the samples in the order they were
+    /// taken, not the order the lab reported them.
+    #[test]
+    fn lab_residuals_are_charted_in_the_order_taken() {
+        let lab = |id: &str, t: i64, pct: f64| LabRow {
+            sample_id: id.into(),
+            time_ms: t,
+            lab_pct: pct,
+            inline_pct: Some(14.0),
+            made_with: None,
+        };
+        let data = LineData {
+            lab: vec![
+                lab("G-2", 2_000, 14.2),
+                lab("G-3", 3_000, 14.3),
+                lab("G-1", 1_000, 14.1),
+            ],
+            ..Default::default()
+        };
+        let t = data
+            .traces()
+            .into_iter()
+            .find(|t| t.monitor.quantity == Quantity::LabResidual)
+            .expect("the lab chart");
+        let times: Vec<i64> = t.obs.iter().map(|o| o.time_ms).collect();
+        assert_eq!(times, [1_000, 2_000, 3_000]);
     }
 }

@@ -562,7 +562,9 @@ impl Trace {
     /// Alarms merged per episode: an alarm that follows another of the same
     /// quantity and direction with no gap between their excursions (its
     /// change point at or before the previous alarm + 1) is folded into it,
-    /// keeping the first alarm's change point and time and the latest size.
+    /// keeping the first alarm's chart, change point and time; its size is
+    /// the mean shift from that change point to the latest alarm (the span
+    /// it names, whichever chart raised the later alarms).
     pub fn episodes(&self) -> Vec<Alarm> {
         // (episode, index of its latest alarm)
         let mut out: Vec<(Alarm, usize)> = Vec::new();
@@ -576,8 +578,15 @@ impl Trace {
             {
                 if a.since_index <= *latest + 1 {
                     *latest = a.index;
-                    first.shift = a.shift;
-                    first.shift_sigma = a.shift_sigma;
+                    let span = self.monitor.alarm(
+                        &self.obs,
+                        first.chart,
+                        first.direction,
+                        first.since_index,
+                        a.index,
+                    );
+                    first.shift = span.shift;
+                    first.shift_sigma = span.shift_sigma;
                     continue;
                 }
             }
@@ -817,6 +826,35 @@ mod tests {
                 && msg.contains("since")
                 && msg.contains("cell calibration"),
             "{msg}"
+        );
+        // An episode's size is the mean shift over the span it names: from
+        // its change point to the last alarm folded into it (it was the
+        // last alarm's own size, over that alarm's span, which may start
+        // elsewhere or come from the other chart).
+        let mut later: Vec<&Alarm> = t
+            .alarms
+            .iter()
+            .filter(|x| x.direction == a.direction && x.index > a.index)
+            .collect();
+        later.sort_by_key(|x| x.index);
+        let mut last = a.index;
+        let mut folded = 0;
+        for x in later {
+            if x.since_index > last + 1 {
+                break;
+            }
+            last = x.index;
+            folded += 1;
+        }
+        assert!(folded >= 1, "the step raises more than one alarm");
+        let span = &v[a.since_index..=last];
+        let mean = span.iter().sum::<f64>() / span.len() as f64;
+        assert!(
+            (a.shift - (mean - m.target)).abs() < 1e-12,
+            "episode size {} against the mean over {}..={last}: {}",
+            a.shift,
+            a.since_index,
+            mean - m.target
         );
     }
 
