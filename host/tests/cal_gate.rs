@@ -321,6 +321,12 @@ fn physically_impossible_values_are_input_errors() {
             ",-0.3",
             "line 2, column 9 (eps2_im): `-0.3` is not a loss factor",
         ),
+        (
+            "MHz for Hz",
+            ",1000000,",
+            ",1,",
+            "line 2, column 4 (freq1_hz): `1` is not a frequency in Hz between 1 kHz and 1 GHz (MHz given for Hz?)",
+        ),
     ] {
         let mut t = base.clone();
         t[0] = t[0].replacen(from, to, 1);

@@ -506,8 +506,15 @@ pub fn parse_samples(
         for k in 0..2 {
             let (cf, cr, ci) = (3 + 3 * k, 4 + 3 * k, 5 + 3 * k);
             freqs_hz[k] = num(cf)?;
-            if freqs_hz[k] <= 0.0 {
-                return Err(bad(cf, field(cf).1, "a positive frequency in Hz"));
+            // The limits a product calibration file holds its pair to
+            // (`product_file`): a table in MHz is named here, at its cell,
+            // not after a fit as a file `cal push` refuses.
+            if !(1e3..=1e9).contains(&freqs_hz[k]) {
+                return Err(bad(
+                    cf,
+                    field(cf).1,
+                    "a frequency in Hz between 1 kHz and 1 GHz (MHz given for Hz?)",
+                ));
             }
             eps_re[k] = num(cr)?;
             if eps_re[k] < 1.0 {
