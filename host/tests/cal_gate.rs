@@ -150,6 +150,21 @@ fn force_writes_and_keeps_the_override_and_push_refuses_it() {
         text.contains("gate_overridden") && text.contains("at fit (--force): 12 samples"),
         "{text}"
     );
+    // Said where it is written, not only inside the file.
+    let said = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        said.contains("caution: written with --force past the quality gate")
+            && said.contains("12 samples"),
+        "{said}"
+    );
+    let (o, _) = fit(dir.path(), &rows(12, 0.0), &["--force", "--json"]);
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
+    assert!(
+        v["gate_overridden"][0]
+            .as_str()
+            .is_some_and(|r| r.contains("12 samples")),
+        "{v}"
+    );
     // The same gate in `cal push`: refused before the port, key or
     // database are touched.
     let (o, db) = push_without_force(dir.path(), &out);

@@ -795,6 +795,7 @@ pub fn outcome_json(o: &FitOutcome, out: &Path) -> serde_json::Value {
     let c = &o.wire;
     v["id"] = json!(c.content_id().to_string());
     v["file"] = json!(out.display().to_string());
+    v["gate_overridden"] = json!(o.file.statistics.gate_overridden);
     v["valid_ranges"] = json!({
         "moisture_pct": [c.moisture_pct.min, c.moisture_pct.max],
         "temperature_c": [c.temperature_c.min, c.temperature_c.max],
@@ -996,6 +997,15 @@ pub fn write_fit_summary(
         writeln!(w, "  {} {:.4}..{:.4}", r.name, r.min, r.max)?;
     }
     writeln!(w, "wrote {} (calibration id {})", out.display(), o.file.id)?;
+    if !o.file.statistics.gate_overridden.is_empty() {
+        writeln!(
+            w,
+            "caution: written with --force past the quality gate (recorded in the file, and in the audit record at push, which needs --force again):"
+        )?;
+        for r in &o.file.statistics.gate_overridden {
+            writeln!(w, "  {r}")?;
+        }
+    }
     if let Some(p) = plot {
         writeln!(w, "plot  {}", p.display())?;
     }

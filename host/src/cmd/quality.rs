@@ -115,6 +115,15 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             let (mut file, wire) = ProductFile::load(&p.cal)?;
             let overridden = product::push_gate(&p.cal, &file, p.force)?;
             file.statistics.gate_overridden.extend(overridden);
+            if !file.statistics.gate_overridden.is_empty() {
+                eprintln!(
+                    "fringe cal push: caution: {} fails the quality gate and is pushed with --force; the audit record keeps:",
+                    p.cal.display()
+                );
+                for r in &file.statistics.gate_overridden {
+                    eprintln!("  {r}");
+                }
+            }
             let key = key(&p.key, cfg, "a push")?;
             let db = super::db_path(p.db.as_deref(), cfg)?;
             let mut link = super::connect(&p.port, cfg)?;
@@ -144,6 +153,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                         "active": p.activate,
                         "position": o.position,
                         "database": db.display().to_string(),
+                        "gate_overridden": file.statistics.gate_overridden,
                     }))?;
                     return Ok(());
                 }
