@@ -519,8 +519,15 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
     } else {
         Basis::Wet
     };
-    let set = read_samples(
+    // Read once: the digest in the file's source is of the bytes fitted
+    // (a table changed meanwhile, by `cal capture` say, is not misnamed).
+    let bytes = std::fs::read(&args.samples).map_err(|e| crate::samples::SampleError::Io {
+        file: args.samples.clone(),
+        reason: e.to_string(),
+    })?;
+    let set = crate::samples::parse_samples(
         &args.samples,
+        &bytes,
         MoistureColumn::Required,
         crate::samples::basis_named(&args.basis),
     )?;
@@ -721,10 +728,6 @@ pub fn fit(args: &FitOptions, made_s: u64) -> Result<FitOutcome, FitError> {
             max: fringe_protocol::NAME_LEN,
         });
     }
-    let bytes = std::fs::read(&args.samples).map_err(|source| FitError::Read {
-        path: args.samples.clone(),
-        source,
-    })?;
     let wire = wire_of(&chosen, &name, basis, made_s)?;
     let mut statistics = statistics_of(&chosen);
     statistics.gate_overridden = refusals
