@@ -27,9 +27,11 @@
 //! CSV cell with the record it copies; every changed, removed, added or
 //! reordered record is reported with its file, line and chain position.
 //! `--db FILE` also walks the database's own chain and checks that the
-//! bundle's records are those the database holds at the same positions: a
-//! bundle rewritten end to end (hashes recomputed) still differs from the
-//! database there.
+//! bundle's records, and the records of its in-force files, are those the
+//! database holds at the same positions: a bundle rewritten end to end
+//! (hashes recomputed) still differs from the database there. Without the
+//! database, an in-force record outside the slice is checked only for
+//! linking on its own.
 
 use std::collections::{BTreeMap, HashMap};
 use std::fmt;
@@ -848,6 +850,7 @@ fn bundle_files() -> Vec<String> {
         MANIFEST.into(),
         RECORDS.into(),
         CALS_IN_FORCE.into(),
+        CLOCKS_IN_FORCE.into(),
         "README.txt".into(),
     ];
     names.extend(Table::ALL.iter().map(|t| format!("{}.csv", t.name())));
@@ -949,22 +952,10 @@ fn write_bundle(
         let p = out.join(format!("{}.csv", t.name()));
         w.flush().map_err(io(&p))?;
     }
-    let cal_path = out.join(CALS_IN_FORCE);
-    let cals: Vec<InForce> = in_force
-        .iter()
-        .map(|(prev, r)| InForce {
-            prev_hash: chain::hex(prev),
-            record: json_record(r),
-        })
-        .collect();
-    std::fs::write(
-        &cal_path,
-        serde_json::to_string_pretty(&cals).unwrap_or_default(),
-    )
-    .map_err(io(&cal_path))?;
-    if rules == CsvRules::V2 {
-        let clock_path = out.join(CLOCKS_IN_FORCE);
-        let clocks: Vec<InForce> = clocks_in_force
+    // Records in force, each with the hash before it, as one JSON file.
+    let write_in_force = |name: &str, records: &[&(Hash, ChainedRecord)]| {
+        let path = out.join(name);
+        let list: Vec<InForce> = records
             .iter()
             .map(|(prev, r)| InForce {
                 prev_hash: chain::hex(prev),
@@ -972,10 +963,14 @@ fn write_bundle(
             })
             .collect();
         std::fs::write(
-            &clock_path,
-            serde_json::to_string_pretty(&clocks).unwrap_or_default(),
+            &path,
+            serde_json::to_string_pretty(&list).unwrap_or_default(),
         )
-        .map_err(io(&clock_path))?;
+        .map_err(io(&path))
+    };
+    write_in_force(CALS_IN_FORCE, in_force)?;
+    if rules == CsvRules::V2 {
+        write_in_force(CLOCKS_IN_FORCE, clocks_in_force)?;
     }
     let readme = out.join("README.txt");
     std::fs::write(&readme, bundle_readme(db_label, from_ms, to_ms)).map_err(io(&readme))?;
@@ -1220,7 +1215,7 @@ fn linked_record(
     c: &InForce,
     columns: &BTreeMap<String, Vec<String>>,
     stored: &HashMap<u64, Hash>,
-) -> (Option<(Table, Vec<Value>)>, bool) {
+) -> (Option<(Table, Vec<Value>, Hash)>, bool) {
     let Ok((t, h, v)) = parse_record(&c.record, columns) else {
         return (None, false);
     };
@@ -1231,7 +1226,7 @@ fn linked_record(
         let anchor_agrees = inside_prev.is_none_or(|ip| ip == prev);
         linked && same_as_slice && anchor_agrees
     });
-    (Some((t, v)), ok)
+    (Some((t, v, h)), ok)
 }
 
 fn parse_record(
@@ -1359,6 +1354,7 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
             // the export's head: a database cut back to before that head
             // (its own chain still whole) is found by these.
             let (mut db_last, mut head_hash) = (0u64, None::<String>);
+            let mut in_force_seen = 0usize;
             store.for_each_record(&mut |r| {
                 db_last = db_last.max(r.position);
                 if r.position == statements.db_head {
@@ -1367,6 +1363,22 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
                 if r.table == Table::Calibrations && r.position <= statements.db_head {
                     if let Some(Value::Integer(id)) = r.value_of("cal_id") {
                         recorded.insert(cal_id_text(*id));
+                    }
+                }
+                // The in-force records (calibrations, clock events) are the
+                // database's at their positions: a record forged whole, hash
+                // and all, links on its own but is not the database's.
+                for (file, position, table, values, hash) in &statements.in_force {
+                    if *position == r.position {
+                        in_force_seen += 1;
+                        if *table != r.table || *values != r.values || *hash != r.hash {
+                            report.problems.push(Problem::DiffersFromDatabase {
+                                position: r.position,
+                                what: format!(
+                                    "{file}: its {table} record at this position is not the database's"
+                                ),
+                            });
+                        }
                     }
                 }
                 if r.position < lo || r.position > hi {
@@ -1404,6 +1416,20 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
                 }
                 Ok(())
             })?;
+            if in_force_seen < statements.in_force.len() {
+                report.problems.push(Problem::DiffersFromDatabase {
+                    position: statements
+                        .in_force
+                        .iter()
+                        .map(|x| x.1)
+                        .max()
+                        .unwrap_or(0),
+                    what: format!(
+                        "{} record(s) in force in the bundle lie at positions the database does not hold",
+                        statements.in_force.len() - in_force_seen
+                    ),
+                });
+            }
             // The manifest's calibrations without a record, against the
             // database: named ones it has a record of, unnamed ones it has
             // none of.
@@ -1614,6 +1640,8 @@ fn verify_bundle(
         .get(Table::Calibrations.name())
         .and_then(|c| c.iter().position(|x| x == "cal_id"));
     let mut in_force_ids: Vec<String> = Vec::new();
+    // The linked records of both in-force files, for the database check.
+    let mut in_force: Vec<(&'static str, u64, Table, Vec<Value>, Hash)> = Vec::new();
     if let Some(text) = files.read(CALS_IN_FORCE).map_err(io(&cp))? {
         match serde_json::from_slice::<Vec<InForce>>(&text) {
             Ok(list) => {
@@ -1621,11 +1649,14 @@ fn verify_bundle(
                     let (parsed, ok) = linked_record(c, &m.columns, &stored);
                     if let Some(Value::Integer(id)) = parsed
                         .as_ref()
-                        .and_then(|(_, v)| cal_col.and_then(|k| v.get(k)))
+                        .and_then(|(_, v, _)| cal_col.and_then(|k| v.get(k)))
                     {
                         in_force_ids.push(cal_id_text(*id));
                     }
                     report.records_checked += 1;
+                    if let (Some((t, v, h)), true) = (parsed, ok) {
+                        in_force.push((CALS_IN_FORCE, c.record.position, t, v, h));
+                    }
                     if !ok {
                         report.problems.push(Problem::Changed {
                             file: CALS_IN_FORCE.into(),
@@ -1655,7 +1686,10 @@ fn verify_bundle(
                     let (parsed, ok) = linked_record(c, &m.columns, &stored);
                     report.records_checked += 1;
                     match parsed {
-                        Some(p) if ok => clock_records.push(p),
+                        Some((t, v, h)) if ok => {
+                            clock_records.push((t, v.clone()));
+                            in_force.push((CLOCKS_IN_FORCE, c.record.position, t, v, h));
+                        }
                         _ => report.problems.push(Problem::Changed {
                             file: CLOCKS_IN_FORCE.into(),
                             line: i as u64 + 1,
@@ -1684,6 +1718,7 @@ fn verify_bundle(
         named: m.calibrations_without_record.clone(),
         db_head: m.db_head_position,
         db_head_hash: m.db_head_hash.clone(),
+        in_force,
         ..CalStatements::default()
     };
     {
@@ -1768,6 +1803,9 @@ struct CalStatements {
     db_head: u64,
     /// The hash of the record at that head (hex), as the manifest gives it.
     db_head_hash: String,
+    /// The records of the in-force files (calibrations, clocks) that link:
+    /// (file, position, table, values, hash), compared with the database.
+    in_force: Vec<(&'static str, u64, Table, Vec<Value>, Hash)>,
 }
 
 fn check_csv(
@@ -2220,6 +2258,69 @@ mod tests {
         s.insert_readings(dev, &untimed_readings(5, 3), Source::Log)
             .expect("boot 5");
         (dir, db)
+    }
+
+    /// A clock event outside the slice forged whole (its time moved an
+    /// hour, its hash recomputed), the times it gives and the manifest's
+    /// file hashes rewritten to match: the bundle alone cannot tell (said
+    /// so: the in-force files link on their own), the database can.
+    #[test]
+    fn a_clock_event_forged_whole_is_found_against_the_database() {
+        let (dir, db) = fixture_with_untimed("forge");
+        let store = Store::open_read_only(&db).expect("ro");
+        let out = dir.path().join("b");
+        // Up to just before the clock event: the re-based readings are in
+        // the slice, the event after it.
+        export(&store, "f.db", Some(T0), REBASE_SET_MS - 1, &out).expect("export");
+        let mut list: Vec<InForce> =
+            serde_json::from_slice(&std::fs::read(out.join(CLOCKS_IN_FORCE)).unwrap()).unwrap();
+        assert_eq!(list.len(), 1);
+        let mut m: Manifest =
+            serde_json::from_slice(&std::fs::read(out.join(MANIFEST)).unwrap()).unwrap();
+        assert!(
+            list[0].record.position > m.last_position,
+            "outside the slice"
+        );
+        let (old, new) = (
+            REBASE_SET_MS.to_string(),
+            (REBASE_SET_MS + 3_600_000).to_string(),
+        );
+        let detail = list[0].record.values["detail"]
+            .as_str()
+            .unwrap()
+            .replace(&old, &new);
+        list[0].record.values["detail"] = serde_json::Value::String(detail);
+        let (t, _, v) = parse_record(&list[0].record, &m.columns).unwrap();
+        let prev = hash_from_hex(&list[0].prev_hash).unwrap();
+        let h = chain::link(&prev, list[0].record.position, t, &chain::canonical(&v));
+        list[0].record.hash = chain::hex(&h);
+        std::fs::write(
+            out.join(CLOCKS_IN_FORCE),
+            serde_json::to_string_pretty(&list).unwrap(),
+        )
+        .unwrap();
+        let csv = std::fs::read_to_string(out.join("readings.csv")).unwrap();
+        let moved = [15_000, 14_000].iter().fold(csv, |c, s| {
+            c.replace(
+                &fmt_time(REBASE_SET_MS - s),
+                &fmt_time(REBASE_SET_MS + 3_600_000 - s),
+            )
+        });
+        std::fs::write(out.join("readings.csv"), moved).unwrap();
+        for f in &mut m.files {
+            (f.sha256, f.bytes) = sha256_file(&out.join(&f.name)).unwrap();
+        }
+        std::fs::write(out.join(MANIFEST), serde_json::to_vec(&m).unwrap()).unwrap();
+        assert!(check(&out).ok(), "{:?}", check(&out).problems);
+        let r = verify(Some(&out), Some(&store)).unwrap();
+        let said: Vec<String> = r.problems.iter().map(|p| p.to_string()).collect();
+        assert_eq!(said.len(), 1, "{said:?}");
+        assert!(
+            said[0].contains(
+                "clocks_in_force.json: its events record at this position is not the database's"
+            ),
+            "{said:?}"
+        );
     }
 
     /// Where boot 4's clock was set (`fixture_with_untimed`).

@@ -9,8 +9,11 @@
 //! the audit trail, and do not change the id; `digest` (SHA-256 of the
 //! whole file's content, written by fringe since 2026-12-05) covers them
 //! too, so a hand edit of anything in the file (a statistic the gate reads,
-//! a removed `gate_overridden`) is refused on loading. A file written
-//! before has no digest, and its statistics are taken as written.
+//! a removed `gate_overridden`) is refused on loading. A file fitted before
+//! has no digest, and its statistics are taken as written; one fitted since
+//! without a digest is refused. The digest is a plain SHA-256: it finds an
+//! edit by hand, not a forger who computes it again (the audit record of
+//! `cal push` and the device's own content id are what hold then).
 //!
 //! ```toml
 //! format = "fringe-product/1"
@@ -49,6 +52,11 @@ use serde::{Deserialize, Serialize};
 
 /// Format name.
 pub const FORMAT: &str = "fringe-product/1";
+
+/// Fitted from this time on (2026-12-05T00:00Z, Unix seconds), a file
+/// carries a digest: one without is refused (its digest line removed). The
+/// fit time is part of the content id, so it cannot be moved back unseen.
+pub const DIGESTS_SINCE_UNIX_S: u64 = 1_796_428_800;
 
 /// Statistics kept with a calibration (% moisture).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
@@ -411,6 +419,12 @@ impl ProductFile {
                 ),
             ));
         }
+        if self.digest.is_none() && self.made_unix_s >= DIGESTS_SINCE_UNIX_S {
+            return Err(bad(
+                "digest",
+                "missing from a calibration fitted after fringe began writing one (2026-12-05): it was removed by hand; fit it again (`fringe cal fit`)".into(),
+            ));
+        }
         if let Some(d) = &self.digest {
             if *d != self.digest_of() {
                 return Err(bad(
@@ -740,6 +754,24 @@ mod tests {
         let (g, _) = ProductFile::load(&p).expect("an older file");
         assert_eq!(g.digest, None);
         assert_eq!(g.statistics.rpd, 1.7);
+        // Fitted since digests began, its digest line removed: refused.
+        let mut late = wire();
+        late.made_s = DIGESTS_SINCE_UNIX_S + 60;
+        let f =
+            ProductFile::from_wire(&late, &["eps_re"], Statistics::default(), Source::default());
+        f.save(&p).expect("save");
+        let text = std::fs::read_to_string(&p).expect("read");
+        let stripped: String = text
+            .lines()
+            .filter(|l| !l.starts_with("digest"))
+            .map(|l| format!("{l}\n"))
+            .collect();
+        std::fs::write(&p, stripped).expect("write");
+        let e = ProductFile::load(&p).expect_err("no digest").to_string();
+        assert!(
+            e.contains("field `digest`") && e.contains("removed by hand"),
+            "{e}"
+        );
         let _ = std::fs::remove_dir_all(&dir);
     }
 
