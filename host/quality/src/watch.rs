@@ -10,7 +10,6 @@
 //! store with the same code. The data are read once, then only what was
 //! added since ([`crate::analysis::LineData::refresh`]).
 
-use std::collections::HashSet;
 use std::time::{Duration, Instant};
 
 use fringe_store::RecordRead;
@@ -30,13 +29,24 @@ pub struct Checked {
     pub fresh: Vec<Alarm>,
 }
 
+/// Whether episode `a` is one of `known`: the same quantity and direction
+/// over a span that overlaps a known one. An episode found again by a later
+/// check is the same one even where data added since (a late lab result
+/// charted at its earlier time, say) moved its change point or first alarm.
+fn seen(known: &[(Quantity, Direction, i64, i64)], a: &Alarm) -> bool {
+    known.iter().any(|(q, d, since, at)| {
+        *q == a.quantity && *d == a.direction && a.since_ms <= *at && *since <= a.time_ms
+    })
+}
+
 /// The live drift check of one device.
 #[derive(Debug)]
 pub struct DriftWatch {
     every: Option<Duration>,
     last: Option<Instant>,
-    /// Episodes seen: quantity, direction, time of the episode's first alarm.
-    known: HashSet<(Quantity, Direction, i64)>,
+    /// Episodes seen: quantity, direction, and the span from the change
+    /// point to the first alarm, ms.
+    known: Vec<(Quantity, Direction, i64, i64)>,
     primed: bool,
     data: Option<LineData>,
 }
@@ -47,7 +57,7 @@ impl DriftWatch {
         Self {
             every,
             last: None,
-            known: HashSet::new(),
+            known: Vec::new(),
             primed: false,
             data: None,
         }
@@ -102,7 +112,9 @@ impl DriftWatch {
         let mut fresh = Vec::new();
         for t in data.traces() {
             for a in t.episodes() {
-                if self.known.insert((a.quantity, a.direction, a.time_ms)) {
+                if !seen(&self.known, &a) {
+                    self.known
+                        .push((a.quantity, a.direction, a.since_ms, a.time_ms));
                     fresh.push(a);
                 }
             }
@@ -120,5 +132,44 @@ impl DriftWatch {
             before: None,
             fresh,
         })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::drift::{Action, ChartKind};
+
+    fn alarm(quantity: Quantity, direction: Direction, since_ms: i64, time_ms: i64) -> Alarm {
+        Alarm {
+            quantity,
+            chart: ChartKind::Cusum,
+            direction,
+            index: 0,
+            time_ms,
+            since_index: 0,
+            since_ms,
+            shift: 0.0,
+            shift_sigma: 0.0,
+            action: Action::BiasAdjust,
+        }
+    }
+
+    /// An episode found again with its first alarm or change point moved
+    /// (a late lab result charted at its earlier time) is not announced
+    /// again; one after it, or of the other direction or quantity, is.
+    #[test]
+    fn an_episode_found_again_with_its_times_moved_is_not_new() {
+        let known = vec![(Quantity::LabResidual, Direction::Down, 1_000, 2_000)];
+        let lab = Quantity::LabResidual;
+        assert!(seen(&known, &alarm(lab, Direction::Down, 1_000, 2_000)));
+        assert!(seen(&known, &alarm(lab, Direction::Down, 500, 1_500)));
+        assert!(seen(&known, &alarm(lab, Direction::Down, 1_500, 2_500)));
+        assert!(!seen(&known, &alarm(lab, Direction::Down, 3_000, 4_000)));
+        assert!(!seen(&known, &alarm(lab, Direction::Up, 1_000, 2_000)));
+        assert!(!seen(
+            &known,
+            &alarm(Quantity::EmptyBaseline, Direction::Down, 1_000, 2_000)
+        ));
     }
 }
