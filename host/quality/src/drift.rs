@@ -6,8 +6,12 @@
 //! | quantity | what is charted | unit | remedy |
 //! | --- | --- | --- | --- |
 //! | internal reference check | reference ratio / its cell-calibration baseline - 1 | % | check the front end, recalibrate the cell |
-//! | lab residual | lab moisture - inline moisture at the same time | % moisture | bias-adjust (steady) or recalibrate |
-//! | empty-line baseline | eps' at the low frequency with no product | eps' | clean the window |
+//! | lab residual | lab moisture - inline moisture at the same time | % moisture | bias-adjust with `cal adjust`, which tests the bias and the slope and writes a correction only where one is significant |
+//! | empty-line baseline | eps' at the low frequency with no product | eps' | clean the window (a rise); recalibrate the cell (a drop) |
+//!
+//! The remedy follows the quantity and the direction, not the chart that
+//! fired ([`Action::Recalibrate`] is not given by any monitor: a product
+//! recalibration is for the engineer to decide from `cal adjust`'s slope).
 //! | temperature | product temperature against the calibrated range | C | recalibrate over the wider range or restore the process temperature |
 //!
 //! ## Charts and their stated run lengths
@@ -402,7 +406,7 @@ pub struct Trace {
     pub alarms: Vec<Alarm>,
 }
 
-/// Action for a shift of `quantity` in `direction` found by `chart`.
+/// Action for a shift of `quantity` in `direction` (whichever chart found it).
 fn action_for(quantity: Quantity, direction: Direction) -> Action {
     match quantity {
         Quantity::ReferenceCheck => Action::RecalibrateCell,

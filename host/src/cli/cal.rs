@@ -30,7 +30,7 @@ pub struct FitArgs {
     /// Model to fit.
     #[arg(long, value_enum, default_value_t = FitModelArg::Compare)]
     pub model: FitModelArg,
-    /// Where to write the product calibration (TOML).
+    /// Where to write the product calibration (TOML); replaces only a product calibration file fringe wrote.
     #[arg(long, value_name = "PRODUCT.toml")]
     pub out: PathBuf,
     /// Product name as the plant calls it (at most 16 bytes) [default: the output file's stem].
@@ -142,7 +142,7 @@ pub struct AdjustArgs {
     /// Device serial in the database [default: its first device].
     #[arg(long)]
     pub serial: Option<String>,
-    /// Where to write the adjusted calibration.
+    /// Where to write the adjusted calibration; replaces only a product calibration file fringe wrote, never --cal.
     #[arg(long, value_name = "PRODUCT.toml")]
     pub out: PathBuf,
     /// Which correction to write.

@@ -71,6 +71,13 @@ fn may_write_product(out: &Path, flag: &str, inputs: &[(&Path, &str)]) -> anyhow
     let Ok(meta) = std::fs::symlink_metadata(out) else {
         return Ok(());
     };
+    if meta.file_type().is_symlink() {
+        return Err(crate::exit::UsageError(format!(
+            "{flag} {}: is a symbolic link; nothing written (give the file it points to, or another name)",
+            out.display()
+        ))
+        .into());
+    }
     let ours = meta.is_file()
         && std::fs::read(out).is_ok_and(|b| b.starts_with(b"# Fringe product calibration ("));
     if ours {
