@@ -449,13 +449,13 @@ fn csv_cases(good: &[u8], path: &str, rng: &mut StdRng, dup_id: bool) -> Vec<Cas
             "UTF-16 (a spreadsheet's \"Unicode text\")",
             Setup::Bytes(utf16(good)),
             BAD_FILE,
-            &[path, "line 1"],
+            &[path, "line 1: column 1", "save as CSV UTF-8"],
         ),
         case(
             "Latin-1 sample id on line 4",
             Setup::Bytes(set_field(good, 4, 0, "M\u{fc}ller-4")).latin1(),
             BAD_FILE,
-            &[path, "line 4"],
+            &[path, "line 4: column 2", "save as CSV UTF-8"],
         ),
         // (The demo's table says each row's basis in its tenth column,
         // `moisture_basis`: `cal capture` writes it.)

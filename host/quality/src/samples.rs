@@ -334,6 +334,18 @@ pub fn parse_samples(
     basis: Basis,
 ) -> Result<SampleSet, SampleError> {
     let file = file.to_path_buf();
+    // A table saved as UTF-16 ("Unicode text") or Latin-1 is named at its
+    // first byte that is not UTF-8, with what to do, rather than by the
+    // CSV reader's words.
+    if std::str::from_utf8(text).is_err() {
+        if let Err((line, column, reason)) = crate::product_file::utf8_text(text.to_vec()) {
+            return Err(SampleError::Malformed {
+                file,
+                line: line as u64,
+                reason: format!("column {column}: {reason} (in a spreadsheet: save as CSV UTF-8)"),
+            });
+        }
+    }
     let mut rdr = csv::ReaderBuilder::new()
         .trim(csv::Trim::All)
         // Rows of another length are refused below, naming the column.
