@@ -412,8 +412,7 @@ fn record_time_ms(r: &ChainedRecord, clocks: &Clocks) -> Option<i64> {
     };
     match r.table {
         Table::Readings => {
-            let flags = int("flags").unwrap_or(0);
-            if flags & i64::from(fringe_protocol::Flags::CLOCK_UNSET.bits()) == 0 {
+            if !clock_unset(int("flags").unwrap_or(0)) {
                 Some(t)
             } else {
                 clock().map(|c| c.origin_ms + t)
@@ -429,6 +428,12 @@ fn record_time_ms(r: &ChainedRecord, clocks: &Clocks) -> Option<i64> {
     }
 }
 
+/// Whether a reading's stored flags say it was taken before its device's
+/// clock was set.
+fn clock_unset(flags: i64) -> bool {
+    flags & i64::from(fringe_protocol::Flags::CLOCK_UNSET.bits()) != 0
+}
+
 /// The serial and boot of a reading taken before its device's clock was
 /// set (flag `clock_unset`).
 fn clock_unset_boot(r: &ChainedRecord) -> Option<(String, u32)> {
@@ -436,8 +441,7 @@ fn clock_unset_boot(r: &ChainedRecord) -> Option<(String, u32)> {
         Some(Value::Integer(i)) => Some(*i),
         _ => None,
     };
-    let flags = int("flags")?;
-    if flags & i64::from(fringe_protocol::Flags::CLOCK_UNSET.bits()) == 0 {
+    if !clock_unset(int("flags")?) {
         return None;
     }
     let serial = match r.values.first() {
@@ -550,8 +554,7 @@ fn csv_row(
             Some(Value::Integer(i)) => Some(*i),
             _ => None,
         };
-        let clock_unset = int("flags")
-            .is_some_and(|f| f & i64::from(fringe_protocol::Flags::CLOCK_UNSET.bits()) != 0);
+        let clock_unset = int("flags").is_some_and(clock_unset);
         // A reading taken before its device's clock was set has a time
         // since boot, not a date. Format 2 gives it the wall-clock time of
         // the boot's clock event the bundle carries (clocks_in_force.json),
@@ -786,27 +789,24 @@ fn export_as(
     in_force.sort_by_key(|r| r.1.position);
     // The clock events that re-base the slice's readings taken before
     // their device's clock was set: the first clock_set of each such boot.
-    let mut clocks_in_force: Vec<&(Hash, ChainedRecord)> = Vec::new();
-    for (_, serial, boot) in unset_readings
+    // (Each boot once: a boot holds many readings, the store few clock
+    // events.)
+    let boots: std::collections::BTreeSet<(&String, &u32)> = unset_readings
         .iter()
         .filter(|(p, ..)| (first_position..=last_position).contains(p))
-    {
-        let Some(c) = clocks.get(serial).and_then(|b| b.get(boot)) else {
-            continue;
-        };
-        let found = clock_records.iter().find(|(_, r)| {
-            value_of(r, "serial") == Some(&Value::Text(serial.clone()))
-                && value_of(r, "number") == Some(&Value::Integer(i64::from(c.event_number)))
-        });
-        if let Some(rec) = found {
-            if !clocks_in_force
-                .iter()
-                .any(|x| x.1.position == rec.1.position)
-            {
-                clocks_in_force.push(rec);
-            }
-        }
-    }
+        .map(|(_, serial, boot)| (serial, boot))
+        .collect();
+    let mut clocks_in_force: Vec<&(Hash, ChainedRecord)> = boots
+        .into_iter()
+        .filter_map(|(serial, boot)| {
+            let c = clocks.get(serial)?.get(boot)?;
+            let serial = Value::Text(serial.clone());
+            let number = Value::Integer(i64::from(c.event_number));
+            clock_records.iter().find(|(_, r)| {
+                value_of(r, "serial") == Some(&serial) && value_of(r, "number") == Some(&number)
+            })
+        })
+        .collect();
     clocks_in_force.sort_by_key(|r| r.1.position);
 
     let created = !out.exists();
