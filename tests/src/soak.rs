@@ -227,25 +227,31 @@ fn check_device(sim: &Sim, serial: &str, db: &Path, ctx: &str) -> (u64, u64, Str
     // What the device holds now, then everything it logged up to then.
     // The line keeps its disconnects meanwhile: a status or pull that loses
     // its port is run again, as a person would (a pull commits what it has
-    // read and stores only what is missing), while it makes progress: up
-    // to five tries in a row that store nothing.
+    // read and stores only what is missing), while it makes progress: it
+    // gives up after five tries in a row that store nothing *and* span more
+    // than ten times a disconnect (1 s of wall time). Five tries alone fit
+    // into one disconnect when each fails fast: a CI run failed so, every
+    // try finding the port gone.
     let retried = |what: &str, cmd: &dyn Fn() -> std::process::Command, limit: Duration| {
-        let (mut last, mut idle) = (String::new(), 0);
-        while idle < 5 {
+        let (mut last, mut idle, mut since) = (String::new(), 0, Instant::now());
+        while idle < 5 || since.elapsed() < Duration::from_secs(10) {
             let before = reading_count(db, serial);
             let o = run(&mut cmd(), limit);
             if o.code == 0 {
                 return o;
             }
             last = o.stderr;
-            idle = if reading_count(db, serial) > before {
-                0
+            if reading_count(db, serial) > before {
+                (idle, since) = (0, Instant::now());
             } else {
-                idle + 1
-            };
+                idle += 1;
+            }
             std::thread::sleep(Duration::from_millis(200));
         }
-        panic!("{ctx}: {what} failed five times in a row with no progress; the last: {last}")
+        panic!(
+            "{ctx}: {what} failed {idle} times in a row over {:.1} s with no progress; the last: {last}",
+            since.elapsed().as_secs_f64()
+        )
     };
     let o = retried(
         "status",
