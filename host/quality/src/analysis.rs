@@ -6,7 +6,7 @@
 //! | quantity | observation | target | sigma |
 //! | --- | --- | --- | --- |
 //! | reference check | `(mean ratio / baseline - 1) x 100`, % | 0 (the cell-calibration baseline) | moving range of the first 20 checks (at least 0.005 %) |
-//! | lab residual | lab - inline moisture at the matched reading, % | 0 | from 5 pairs on, the larger of the calibration's cross-validated SEP and the moving range of the residuals ([`lab_sigma`]); the SEP before; the moving range without a SEP |
+//! | lab residual | lab - inline moisture at the matched reading, %, of the pairs the product calibration in force made (the chart starts again with each calibration) | 0 | from 5 pairs on, the larger of the calibration's cross-validated SEP and the moving range of the residuals ([`lab_sigma`]); the SEP before; the moving range without a SEP |
 //! | empty-line baseline | eps' at the upper frequency of readings flagged `no_product` | mean of the first 5 (one empty spell, clean window) | moving range of those 5 (at least 0.0005) |
 //! | temperature | product temperature of readings with product, C | the calibrated range | moving range of all (at least 0.1 C) |
 //!
@@ -92,6 +92,17 @@ pub struct LabRow {
     pub inline_pct: Option<f64>,
     /// The product calibration that made the matched reading.
     pub made_with: Option<fringe_protocol::CalId>,
+}
+
+/// The lab pairs of the lab chart ([`LineData::lab_chart_pairs`]).
+#[derive(Debug, Clone)]
+pub struct LabChartPairs<'a> {
+    /// The product calibration in force (8 hex digits), if any record is.
+    pub calibration: Option<String>,
+    /// The pairs charted: made with that calibration.
+    pub charted: Vec<&'a LabRow>,
+    /// Pairs with an inline value made with another calibration, not charted.
+    pub other_calibrations: usize,
 }
 
 /// Everything read for one device.
@@ -322,6 +333,29 @@ impl LineData {
             .and_then(|b| serde_json::from_value(b.calibration.clone()).ok())
     }
 
+    /// The lab pairs the lab chart charts: those whose reading the product
+    /// calibration in force made (as `cal adjust` takes them), so that the
+    /// chart starts again with each new calibration and its sigma, the
+    /// calibration's SEP, is of the calibration whose pairs it charts.
+    /// Every pair with an inline value where no product calibration record
+    /// is in force.
+    pub fn lab_chart_pairs(&self) -> LabChartPairs<'_> {
+        let in_force = self.product_in_force().map(|b| b.new_id.clone());
+        let (charted, other): (Vec<&LabRow>, Vec<&LabRow>) = self
+            .lab
+            .iter()
+            .filter(|l| l.inline_pct.is_some())
+            .partition(|l| match &in_force {
+                Some(id) => l.made_with.is_some_and(|m| m.to_string() == *id),
+                None => true,
+            });
+        LabChartPairs {
+            calibration: in_force,
+            charted,
+            other_calibrations: other.len(),
+        }
+    }
+
     /// The four monitors, set up as the module doc states, and their traces.
     pub fn traces(&self) -> Vec<Trace> {
         let mut out = Vec::new();
@@ -338,11 +372,12 @@ impl LineData {
         let head: Vec<f64> = ref_obs.iter().take(20).map(|o| o.value).collect();
         let sigma = sigma_moving_range(&head).unwrap_or(0.0).max(0.005);
         out.push(Monitor::new(Quantity::ReferenceCheck, 0.0, sigma).run(&ref_obs));
-        // (b) lab residuals, in the order the samples were taken (they are
-        // recorded as the lab reports them: a late result, or a correction
-        // of an earlier one, comes last)
+        // (b) lab residuals of the calibration in force, in the order the
+        // samples were taken (they are recorded as the lab reports them: a
+        // late result, or a correction of an earlier one, comes last)
         let mut lab_obs: Vec<Obs> = self
-            .lab
+            .lab_chart_pairs()
+            .charted
             .iter()
             .filter_map(|l| {
                 l.inline_pct.map(|i| Obs {
@@ -743,5 +778,81 @@ mod tests {
             .expect("the lab chart");
         let times: Vec<i64> = t.obs.iter().map(|o| o.time_ms).collect();
         assert_eq!(times, [1_000, 2_000, 3_000]);
+    }
+
+    /// After a new product calibration (a bias adjustment, say), the lab
+    /// chart charts only the pairs it made, against its own SEP: the
+    /// residuals of the calibration it replaced, 0.6 % off, raise no alarm
+    /// against the new one. (Made-up records.)
+    #[test]
+    fn the_lab_chart_starts_again_with_each_product_calibration() {
+        let (old, new) = (CalId([0xaa; 4]), CalId([0xbb; 4]));
+        let cal = |id: CalId, sep: f64| {
+            (
+                1,
+                0,
+                CalKind::Product,
+                CalRecordBody {
+                    new_id: id.to_string(),
+                    statistics: Some(crate::product_file::Statistics {
+                        sep,
+                        ..Default::default()
+                    }),
+                    ..Default::default()
+                },
+                None,
+            )
+        };
+        let lab = |t: i64, residual: f64, made_with: CalId| LabRow {
+            sample_id: format!("G-{t}"),
+            time_ms: t,
+            lab_pct: 14.0 + residual,
+            inline_pct: Some(14.0),
+            made_with: Some(made_with),
+        };
+        // Twelve pairs 0.6 % below the old calibration, then six about the new one.
+        let mut pairs: Vec<LabRow> = (0..12).map(|i| lab(i, -0.6, old)).collect();
+        pairs.extend((12..18).map(|i| lab(i, if i % 2 == 0 { 0.1 } else { -0.1 }, new)));
+        let mut data = LineData {
+            lab: pairs,
+            cals: vec![cal(old, 0.15)],
+            ..Default::default()
+        };
+        let chart = |data: &LineData| {
+            data.traces()
+                .into_iter()
+                .find(|t| t.monitor.quantity == Quantity::LabResidual)
+                .expect("the lab chart")
+        };
+        // Under the old calibration alone its twelve pairs alarm.
+        let t = chart(&data);
+        assert_eq!(t.obs.len(), 12);
+        assert!(!t.alarms.is_empty());
+        data.cals.push(cal(new, 0.2));
+        let t = chart(&data);
+        assert_eq!(t.obs.len(), 6);
+        assert_eq!(t.monitor.sigma, 0.2);
+        assert!(t.alarms.is_empty(), "{:?}", t.alarms);
+        let pairs = data.lab_chart_pairs();
+        assert_eq!(pairs.calibration.as_deref(), Some("bbbbbbbb"));
+        assert_eq!(pairs.other_calibrations, 12);
+        // Said in the summary and in the JSON.
+        let traces = data.traces();
+        let mut text = Vec::new();
+        crate::views::write_drift(&data, &traces, &mut text).unwrap();
+        let text = String::from_utf8(text).unwrap();
+        assert!(
+            text.contains("the pairs measured under bbbbbbbb, the product calibration in force; 12 pair(s) measured under earlier calibrations not charted"),
+            "{text}"
+        );
+        let v = crate::views::drift_json(&data, &traces);
+        let lab_json = v["monitors"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|m| m["quantity"] == "lab_residual")
+            .unwrap();
+        assert_eq!(lab_json["calibration"], "bbbbbbbb");
+        assert_eq!(lab_json["pairs_under_other_calibrations"], 12);
     }
 }

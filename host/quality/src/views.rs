@@ -13,7 +13,7 @@ use serde_json::json;
 
 use crate::analysis::{self, CalRecordBody, LineData, LoadError};
 use crate::audit;
-use crate::drift::{ChartKind, CusumParams, EwmaParams, Trace};
+use crate::drift::{ChartKind, CusumParams, EwmaParams, Quantity, Trace};
 use crate::plots::{self, LabPoint, TrendPoint};
 use crate::report::{self, ReportInput};
 use crate::timefmt::{fmt_person, fmt_time};
@@ -294,6 +294,16 @@ pub fn write_drift(
                 format!("{} alarm(s)", alarms.len())
             }
         )?;
+        if m.quantity == Quantity::LabResidual {
+            let pairs = data.lab_chart_pairs();
+            if let (Some(id), 1..) = (&pairs.calibration, pairs.other_calibrations) {
+                writeln!(
+                    w,
+                    "    (the pairs measured under {id}, the product calibration in force; {} pair(s) measured under earlier calibrations not charted)",
+                    pairs.other_calibrations
+                )?;
+            }
+        }
         for a in alarms {
             n += 1;
             writeln!(w, "    ALARM {}", a.message())?;
@@ -304,7 +314,19 @@ pub fn write_drift(
 
 /// What `fringe drift --json` prints.
 pub fn drift_json(data: &LineData, traces: &[Trace]) -> serde_json::Value {
-    json!({ "serial": data.serial, "monitors": traces.iter().map(trace_json).collect::<Vec<_>>() })
+    let pairs = data.lab_chart_pairs();
+    let monitors: Vec<serde_json::Value> = traces
+        .iter()
+        .map(|t| {
+            let mut v = trace_json(t);
+            if t.monitor.quantity == Quantity::LabResidual {
+                v["calibration"] = json!(pairs.calibration);
+                v["pairs_under_other_calibrations"] = json!(pairs.other_calibrations);
+            }
+            v
+        })
+        .collect();
+    json!({ "serial": data.serial, "monitors": monitors })
 }
 
 /// All control charts of `traces` stacked in one SVG.
