@@ -7,7 +7,7 @@
 //! | --- | --- | --- | --- |
 //! | reference check | `(mean ratio / baseline - 1) x 100`, % | 0 (the cell-calibration baseline) | moving range of the first 20 checks (at least 0.005 %) |
 //! | lab residual | lab - inline moisture at the matched reading, %, of the pairs the product calibration in force made (the chart starts again with each calibration) | 0 | from 5 pairs on, the larger of the calibration's cross-validated SEP and the moving range of the residuals ([`lab_sigma`]); the SEP before; the moving range without a SEP |
-//! | empty-line baseline | eps' at the upper frequency of readings flagged `no_product` | mean of the first 5 (one empty spell, clean window) | moving range of those 5 (at least 0.0005) |
+//! | empty-line baseline | eps' at the upper frequency of readings flagged `no_product` made with the cell calibration in force (the chart starts again with each) | mean of the first 5 (one empty spell, clean window) | moving range of those 5 (at least 0.0005) |
 //! | temperature | product temperature of readings with product, C | the calibrated range | moving range of all (at least 0.1 C) |
 //!
 //! Each uses the default charts: tabular CUSUM k 0.5, h 5 (in-control ARL
@@ -94,14 +94,18 @@ pub struct LabRow {
     pub made_with: Option<fringe_protocol::CalId>,
 }
 
-/// The lab pairs of the lab chart ([`LineData::lab_chart_pairs`]).
+/// What a chart that starts again with each calibration charts: the lab
+/// pairs of the lab chart ([`LineData::lab_chart_pairs`]) or the empty
+/// readings of the empty-line chart ([`LineData::empty_chart_rows`]).
 #[derive(Debug, Clone)]
-pub struct LabChartPairs<'a> {
-    /// The product calibration in force (8 hex digits), if any record is.
+pub struct ChartRows<'a, T> {
+    /// The calibration in force (8 hex digits), if any record is: the
+    /// product calibration for the lab chart, the cell calibration for the
+    /// empty-line chart.
     pub calibration: Option<String>,
-    /// The pairs charted: made with that calibration.
-    pub charted: Vec<&'a LabRow>,
-    /// Pairs with an inline value made with another calibration, not charted.
+    /// What is charted: made with that calibration.
+    pub charted: Vec<&'a T>,
+    /// Made with another calibration, not charted.
     pub other_calibrations: usize,
 }
 
@@ -339,7 +343,7 @@ impl LineData {
     /// calibration's SEP, is of the calibration whose pairs it charts.
     /// Every pair with an inline value where no product calibration record
     /// is in force.
-    pub fn lab_chart_pairs(&self) -> LabChartPairs<'_> {
+    pub fn lab_chart_pairs(&self) -> ChartRows<'_, LabRow> {
         let in_force = self.product_in_force().map(|b| b.new_id.clone());
         let (charted, other): (Vec<&LabRow>, Vec<&LabRow>) = self
             .lab
@@ -349,7 +353,43 @@ impl LineData {
                 Some(id) => l.made_with.is_some_and(|m| m.to_string() == *id),
                 None => true,
             });
-        LabChartPairs {
+        ChartRows {
+            calibration: in_force,
+            charted,
+            other_calibrations: other.len(),
+        }
+    }
+
+    /// The empty-line readings the empty-line chart charts: those made
+    /// with the cell calibration in force (the latest cell calibration
+    /// record's), so that the chart, its target and its sigma start again
+    /// with each cell calibration (a new one moves every eps'); every
+    /// empty reading where no cell calibration record is in force.
+    pub fn empty_chart_rows(&self) -> ChartRows<'_, Row> {
+        let in_force = self
+            .cals
+            .iter()
+            .rev()
+            .find(|c| c.2 == CalKind::Cell)
+            .map(|c| c.3.new_id.clone());
+        let id = in_force
+            .as_deref()
+            .and_then(|h| u32::from_str_radix(h, 16).ok())
+            .map(|v| CalId(v.to_be_bytes()));
+        let (charted, other): (Vec<&Row>, Vec<&Row>) = self
+            .rows
+            .iter()
+            .filter(|r| {
+                r.reading.flags.contains(Flags::NO_PRODUCT)
+                    && r.reading.channels[1].eps_re.is_finite()
+            })
+            .partition(|r| match (&in_force, id) {
+                (Some(_), Some(id)) => r.reading.cell_cal == id,
+                // A record whose id does not parse: nothing matches it.
+                (Some(_), None) => false,
+                (None, _) => true,
+            });
+        ChartRows {
             calibration: in_force,
             charted,
             other_calibrations: other.len(),
@@ -393,14 +433,11 @@ impl LineData {
             .map(|s| s.sep)
             .filter(|s| *s > 0.0);
         out.push(Monitor::new(Quantity::LabResidual, 0.0, lab_sigma(sep, &lab_obs)).run(&lab_obs));
-        // (c) empty-line baseline
+        // (c) empty-line baseline, of the cell calibration in force
         let empty: Vec<Obs> = self
-            .rows
+            .empty_chart_rows()
+            .charted
             .iter()
-            .filter(|r| {
-                r.reading.flags.contains(Flags::NO_PRODUCT)
-                    && r.reading.channels[1].eps_re.is_finite()
-            })
             .map(|r| Obs {
                 time_ms: r.time_ms,
                 value: f64::from(r.reading.channels[1].eps_re),
@@ -842,7 +879,7 @@ mod tests {
         crate::views::write_drift(&data, &traces, &mut text).unwrap();
         let text = String::from_utf8(text).unwrap();
         assert!(
-            text.contains("the pairs measured under bbbbbbbb, the product calibration in force; 12 pair(s) measured under earlier calibrations not charted"),
+            text.contains("(the pairs made under bbbbbbbb, the product calibration in force; 12 pair(s) made under earlier calibrations not charted)"),
             "{text}"
         );
         let v = crate::views::drift_json(&data, &traces);
@@ -853,6 +890,80 @@ mod tests {
             .find(|m| m["quantity"] == "lab_residual")
             .unwrap();
         assert_eq!(lab_json["calibration"], "bbbbbbbb");
-        assert_eq!(lab_json["pairs_under_other_calibrations"], 12);
+        assert_eq!(lab_json["under_other_calibrations"], 12);
+    }
+
+    /// A new cell calibration moves every eps': the empty-line chart
+    /// starts again with the empty readings it made, its target and sigma
+    /// theirs. Charted against the old calibration's target, the same
+    /// readings alarmed. (Made-up readings.)
+    #[test]
+    fn the_empty_line_chart_starts_again_with_each_cell_calibration() {
+        let (old, new) = (CalId([0x11; 4]), CalId([0x22; 4]));
+        let cell = |id: CalId| {
+            (
+                1,
+                0,
+                CalKind::Cell,
+                CalRecordBody {
+                    new_id: id.to_string(),
+                    ..Default::default()
+                },
+                None,
+            )
+        };
+        let empty = |i: i64, eps: f32, cell_cal: CalId| {
+            let mut reading = Reading {
+                flags: Flags::NO_PRODUCT,
+                cell_cal,
+                ..Default::default()
+            };
+            reading.channels[1].eps_re = eps + if i % 2 == 0 { 0.0005 } else { -0.0005 };
+            Row {
+                time_ms: i * 60_000,
+                rebased: false,
+                clock_known: true,
+                reading,
+            }
+        };
+        let mut rows: Vec<Row> = (0..20).map(|i| empty(i, 1.020, old)).collect();
+        rows.extend((20..40).map(|i| empty(i, 1.050, new)));
+        let mut data = LineData {
+            rows,
+            cals: vec![cell(old)],
+            ..Default::default()
+        };
+        let chart = |data: &LineData| {
+            data.traces()
+                .into_iter()
+                .find(|t| t.monitor.quantity == Quantity::EmptyBaseline)
+                .expect("the empty-line chart")
+        };
+        // The readings of the new calibration charted against the old target alarm.
+        let all = LineData {
+            cals: vec![],
+            ..data.clone()
+        };
+        assert!(!chart(&all).alarms.is_empty());
+        data.cals.push(cell(new));
+        let t = chart(&data);
+        assert_eq!(t.obs.len(), 20);
+        assert!(
+            (t.monitor.target - 1.050).abs() < 1e-3,
+            "{}",
+            t.monitor.target
+        );
+        assert!(t.alarms.is_empty(), "{:?}", t.alarms);
+        let rows = data.empty_chart_rows();
+        assert_eq!(rows.calibration.as_deref(), Some("22222222"));
+        assert_eq!(rows.other_calibrations, 20);
+        let traces = data.traces();
+        let mut text = Vec::new();
+        crate::views::write_drift(&data, &traces, &mut text).unwrap();
+        let text = String::from_utf8(text).unwrap();
+        assert!(
+            text.contains("(the empty readings made under 22222222, the cell calibration in force; 20 empty reading(s) made under earlier calibrations not charted)"),
+            "{text}"
+        );
     }
 }

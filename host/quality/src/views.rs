@@ -294,15 +294,32 @@ pub fn write_drift(
                 format!("{} alarm(s)", alarms.len())
             }
         )?;
-        if m.quantity == Quantity::LabResidual {
-            let pairs = data.lab_chart_pairs();
-            if let (Some(id), 1..) = (&pairs.calibration, pairs.other_calibrations) {
-                writeln!(
-                    w,
-                    "    (the pairs measured under {id}, the product calibration in force; {} pair(s) measured under earlier calibrations not charted)",
-                    pairs.other_calibrations
-                )?;
+        let scope = match m.quantity {
+            Quantity::LabResidual => {
+                let p = data.lab_chart_pairs();
+                Some((
+                    p.calibration,
+                    p.other_calibrations,
+                    ["pairs", "pair(s)"],
+                    "product",
+                ))
             }
+            Quantity::EmptyBaseline => {
+                let r = data.empty_chart_rows();
+                Some((
+                    r.calibration,
+                    r.other_calibrations,
+                    ["empty readings", "empty reading(s)"],
+                    "cell",
+                ))
+            }
+            _ => None,
+        };
+        if let Some((Some(id), left_out @ 1.., [these, what], kind)) = scope {
+            writeln!(
+                w,
+                "    (the {these} made under {id}, the {kind} calibration in force; {left_out} {what} made under earlier calibrations not charted)",
+            )?;
         }
         for a in alarms {
             n += 1;
@@ -321,7 +338,12 @@ pub fn drift_json(data: &LineData, traces: &[Trace]) -> serde_json::Value {
             let mut v = trace_json(t);
             if t.monitor.quantity == Quantity::LabResidual {
                 v["calibration"] = json!(pairs.calibration);
-                v["pairs_under_other_calibrations"] = json!(pairs.other_calibrations);
+                v["under_other_calibrations"] = json!(pairs.other_calibrations);
+            }
+            if t.monitor.quantity == Quantity::EmptyBaseline {
+                let rows = data.empty_chart_rows();
+                v["calibration"] = json!(rows.calibration);
+                v["under_other_calibrations"] = json!(rows.other_calibrations);
             }
             v
         })
