@@ -474,3 +474,45 @@ fn cal_fit_out_never_replaces_a_table_or_a_foreign_file() {
         "# the lab's own notes\n"
     );
 }
+
+/// `cal predict --out` never replaces the table it reads or the
+/// calibration (exit status 2, both as they were); a file named as the old
+/// temporary name (`pred.csv.part`) is left alone when it writes.
+#[test]
+fn cal_predict_out_never_replaces_its_input_or_a_bystander() {
+    let dir = tempfile::tempdir().expect("dir");
+    let (o, cal) = fit(dir.path(), &rows(30, 0.05), &[]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let csv = dir.path().join("lab.csv");
+    let run = |out: &Path| {
+        Command::new(env!("CARGO_BIN_EXE_fringe"))
+            .args(["cal", "predict", "--cal"])
+            .arg(&cal)
+            .arg("--input")
+            .arg(&csv)
+            .arg("--out")
+            .arg(out)
+            .output()
+            .expect("run fringe")
+    };
+    let (table, calibration) = (std::fs::read(&csv).unwrap(), std::fs::read(&cal).unwrap());
+    for (out, flag) in [(&csv, "--input"), (&cal, "--cal")] {
+        let o = run(out);
+        assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
+        assert!(
+            stderr(&o).contains(&format!("also the file of {flag}")),
+            "{}",
+            stderr(&o)
+        );
+    }
+    assert_eq!(std::fs::read(&csv).unwrap(), table);
+    assert_eq!(std::fs::read(&cal).unwrap(), calibration);
+    let bystander = dir.path().join("pred.csv.part");
+    std::fs::write(&bystander, "mine\n").unwrap();
+    let o = run(&dir.path().join("pred.csv"));
+    assert!(o.status.success(), "{}", stderr(&o));
+    assert!(std::fs::read_to_string(dir.path().join("pred.csv"))
+        .unwrap()
+        .starts_with("sample_id"));
+    assert_eq!(std::fs::read_to_string(&bystander).unwrap(), "mine\n");
+}

@@ -627,7 +627,7 @@ fn kinds(rng: &mut StdRng) -> Vec<Kind> {
                 p(d, "fit.svg"),
             ]
         }),
-        outputs: vec!["out.toml", "fit.svg", "out.toml.part"],
+        outputs: vec!["out.toml", "fit.svg"],
         report_on_stdout: false,
         cases: Vec::new(),
     });
@@ -1445,7 +1445,7 @@ fn other_kinds(rng: &mut StdRng) -> Vec<Kind> {
                     p(d, "adj.toml"),
                 ]
             }),
-            outputs: vec!["adj.toml", "adj.toml.part"],
+            outputs: vec!["adj.toml"],
             report_on_stdout: false,
             cases,
         });

@@ -264,18 +264,8 @@ pub fn save_rows(path: &Path, rows: &[RefSample], basis: Basis) -> Result<(), Ca
             new
         }
     };
-    let tmp = path.with_extension("csv.part");
-    let mut f = std::fs::File::create(&tmp).map_err(|source| CaptureError::Write {
-        path: tmp.clone(),
-        source,
-    })?;
     // On the disk before it takes the table's name.
-    if let Err(source) = f.write_all(&text).and_then(|()| f.sync_all()) {
-        let _ = std::fs::remove_file(&tmp);
-        return Err(CaptureError::Write { path: tmp, source });
-    }
-    std::fs::rename(&tmp, path).map_err(|source| {
-        let _ = std::fs::remove_file(&tmp);
+    fringe_quality::files::replace_with(path, |f| f.write_all(&text)).map_err(|source| {
         CaptureError::Write {
             path: path.to_path_buf(),
             source,

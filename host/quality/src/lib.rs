@@ -28,6 +28,7 @@ pub mod audit;
 pub mod cal;
 pub mod drift;
 pub mod export;
+pub mod files;
 pub mod limits;
 pub mod numbers;
 pub mod plots;

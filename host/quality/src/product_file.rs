@@ -585,12 +585,9 @@ impl ProductFile {
             path: path.to_path_buf(),
             reason: e.to_string(),
         })?;
-        let tmp = path.with_extension("toml.part");
-        let written = std::fs::write(&tmp, text).and_then(|()| std::fs::rename(&tmp, path));
-        if written.is_err() {
-            let _ = std::fs::remove_file(&tmp);
-        }
-        written.map_err(io)
+        crate::files::stage(path, text.as_bytes())
+            .and_then(crate::files::Staged::commit)
+            .map_err(io)
     }
 }
 

@@ -2,10 +2,12 @@
 //! the files and output around `fringe_quality::cal`.
 
 pub use crate::cli::cal::{AdjustArgs, AdjustCorrectionArg, FitArgs, FitModelArg, PredictArgs};
+use std::io::Write as _;
 use std::path::Path;
 
 use anyhow::Context as _;
 use fringe_quality::cal::{self, AdjustCorrection, AdjustOptions, FitModel, FitOptions};
+use fringe_quality::files;
 
 impl From<FitModelArg> for FitModel {
     fn from(m: FitModelArg) -> Self {
@@ -125,22 +127,19 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
     // The plot beside its final name first, so that a failed write leaves
     // neither file.
     let plot_part = match (&args.plot, plot) {
-        (Some(p), Some(svg)) => {
-            let part = p.with_extension("svg.part");
-            std::fs::write(&part, svg + fringe_quality::views::SVG_MARK)
-                .with_context(|| format!("writing {}", part.display()))?;
-            Some((part, p))
-        }
+        (Some(p), Some(svg)) => Some((
+            files::stage(p, (svg + fringe_quality::views::SVG_MARK).as_bytes())
+                .with_context(|| format!("writing {}", p.display()))?,
+            p,
+        )),
         _ => None,
     };
-    if let Err(e) = o.file.save(&args.out) {
-        if let Some((part, _)) = &plot_part {
-            let _ = std::fs::remove_file(part);
-        }
-        return Err(e.into());
-    }
-    if let Some((part, p)) = plot_part {
-        std::fs::rename(&part, p).with_context(|| format!("writing {}", p.display()))?;
+    // (A failed save drops the staged plot, which removes it.)
+    o.file.save(&args.out)?;
+    if let Some((staged, p)) = plot_part {
+        staged
+            .commit()
+            .with_context(|| format!("writing {}", p.display()))?;
     }
     if args.json {
         crate::out::json(&cal::outcome_json(&o, &args.out))?;
@@ -156,24 +155,28 @@ pub fn run_fit(args: &FitArgs) -> anyhow::Result<()> {
 /// # Errors
 /// As `fringe_quality::cal::predict`, or a failed write.
 pub fn run_predict(args: &PredictArgs) -> anyhow::Result<()> {
+    if let Some(out) = &args.out {
+        not_one_of(
+            out,
+            "--out",
+            &[(&args.input, "--input"), (&args.cal, "--cal")],
+        )?;
+    }
     let rows = cal::predict(&args.cal, &args.input, args.eps_sd, args.confidence)?;
     if args.json {
         let v = cal::predictions_json(&rows, args.confidence);
         match &args.out {
-            Some(p) => std::fs::write(p, format!("{v}\n"))
+            Some(p) => files::replace_with(p, |f| writeln!(f, "{v}"))
                 .with_context(|| format!("writing {}", p.display()))?,
             None => crate::out::json(&v)?,
         }
         return Ok(());
     }
     match &args.out {
-        Some(p) => {
-            let tmp = p.with_extension("csv.part");
-            let f = std::fs::File::create(&tmp)
-                .with_context(|| format!("creating {}", tmp.display()))?;
-            cal::write_predictions(f, &rows)?;
-            std::fs::rename(&tmp, p).with_context(|| format!("writing {}", p.display()))?;
-        }
+        Some(p) => files::replace_with(p, |f| {
+            cal::write_predictions(f, &rows).map_err(std::io::Error::other)
+        })
+        .with_context(|| format!("writing {}", p.display()))?,
         None => cal::write_predictions(std::io::stdout().lock(), &rows)?,
     }
     match cal::against_lab(&rows) {
