@@ -149,7 +149,8 @@ pub fn drift(a: &DriftArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     let traces = data.traces();
     if let Some(p) = &a.plot {
         views::may_replace(p, "--plot")?;
-        std::fs::write(p, views::drift_svg(&traces)? + views::SVG_MARK)
+        let svg = views::drift_svg(&traces)? + views::SVG_MARK;
+        fringe_quality::files::replace(p, svg.as_bytes())
             .with_context(|| format!("writing {}", p.display()))?;
     }
     if a.json {

@@ -55,6 +55,14 @@ impl Staged<'_> {
     }
 }
 
+/// [`stage`] and [`Staged::commit`].
+///
+/// # Errors
+/// As those.
+pub fn replace(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
+    stage(path, bytes)?.commit()
+}
+
 /// [`stage_with`] and [`Staged::commit`].
 ///
 /// # Errors

@@ -585,9 +585,7 @@ impl ProductFile {
             path: path.to_path_buf(),
             reason: e.to_string(),
         })?;
-        crate::files::stage(path, text.as_bytes())
-            .and_then(crate::files::Staged::commit)
-            .map_err(io)
+        crate::files::replace(path, text.as_bytes()).map_err(io)
     }
 }
 

@@ -586,7 +586,8 @@ pub fn write_report(
         may_replace(&out.join(name), "--out")?;
     }
     let write = |path: PathBuf, body: String| {
-        std::fs::write(&path, body).map_err(|source| ViewError::Write { path, source })
+        crate::files::replace(&path, body.as_bytes())
+            .map_err(|source| ViewError::Write { path, source })
     };
     std::fs::create_dir_all(out).map_err(|source| ViewError::Write {
         path: out.to_path_buf(),
