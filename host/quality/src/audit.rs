@@ -1355,8 +1355,27 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
             // (its own chain still whole) is found by these.
             let (mut db_last, mut head_hash) = (0u64, None::<String>);
             let mut in_force_seen = 0usize;
+            // The clock events the database held at the export, and its
+            // records outside the slice then that no clock event may date
+            // (those without a time of their own): with the events, which
+            // of them had no wall-clock time, against the manifest's count.
+            let mut clock_events: Vec<(Table, Vec<Value>)> = Vec::new();
+            let mut undated_outside: Vec<ChainedRecord> = Vec::new();
+            let no_clocks = Clocks::new();
             store.for_each_record(&mut |r| {
                 db_last = db_last.max(r.position);
+                if r.position <= statements.db_head {
+                    if r.table == Table::Events
+                        && value_of(&r, "kind") == Some(&Value::Text("clock_set".into()))
+                    {
+                        clock_events.push((r.table, r.values.clone()));
+                    }
+                    if (r.position < lo || r.position > hi)
+                        && record_time_ms(&r, &no_clocks).is_none()
+                    {
+                        undated_outside.push(r.clone());
+                    }
+                }
                 if r.position == statements.db_head {
                     head_hash = Some(chain::hex(&r.hash));
                 }
@@ -1416,6 +1435,38 @@ pub fn verify(dir: Option<&Path>, db: Option<&dyn RecordRead>) -> Result<VerifyR
                 }
                 Ok(())
             })?;
+            if let Some(said) = &statements.untimed_left_out {
+                let clocks = clocks_of(clock_events.iter().map(|(t, v)| (*t, &v[..])));
+                let mut held: BTreeMap<String, u64> = BTreeMap::new();
+                for r in undated_outside
+                    .iter()
+                    .filter(|r| record_time_ms(r, &clocks).is_none())
+                {
+                    *held.entry(r.table.name().to_string()).or_default() += 1;
+                }
+                if held != *said {
+                    let words = |m: &BTreeMap<String, u64>| {
+                        if m.is_empty() {
+                            "none".to_string()
+                        } else {
+                            m.iter()
+                                .map(|(t, n)| format!("{n} {t}"))
+                                .collect::<Vec<_>>()
+                                .join(", ")
+                        }
+                    };
+                    report.problems.push(Problem::DiffersFromDatabase {
+                        position: lo,
+                        what: format!(
+                            "the manifest counts {} record(s) without a wall-clock time left out of the slice (untimed_left_out: {}); the database held {} at the export ({})",
+                            said.values().sum::<u64>(),
+                            words(said),
+                            held.values().sum::<u64>(),
+                            words(&held)
+                        ),
+                    });
+                }
+            }
             if in_force_seen < statements.in_force.len() {
                 report.problems.push(Problem::DiffersFromDatabase {
                     position: statements
@@ -1719,6 +1770,7 @@ fn verify_bundle(
         db_head: m.db_head_position,
         db_head_hash: m.db_head_hash.clone(),
         in_force,
+        untimed_left_out: m.untimed_left_out.clone(),
         ..CalStatements::default()
     };
     {
@@ -1806,6 +1858,9 @@ struct CalStatements {
     /// The records of the in-force files (calibrations, clocks) that link:
     /// (file, position, table, values, hash), compared with the database.
     in_force: Vec<(&'static str, u64, Table, Vec<Value>, Hash)>,
+    /// The manifest's records without a wall-clock time left out of the
+    /// slice, per table (`None` in bundles written before it said so).
+    untimed_left_out: Option<BTreeMap<String, u64>>,
 }
 
 fn check_csv(
@@ -2386,6 +2441,32 @@ mod tests {
         assert!(lab.contains(",14.4,"), "{lab}");
         assert!(check(&out).ok(), "{:?}", check(&out).problems);
         assert!(verify(Some(&out), Some(&store)).unwrap().ok());
+        // The count of left-out readings understated in the manifest: the
+        // bundle alone cannot tell; against the database it is found.
+        let fewer = dir.path().join("fewer");
+        std::fs::create_dir(&fewer).unwrap();
+        for e in std::fs::read_dir(&out).unwrap() {
+            let e = e.unwrap();
+            std::fs::copy(e.path(), fewer.join(e.file_name())).unwrap();
+        }
+        let mut m: Manifest =
+            serde_json::from_slice(&std::fs::read(fewer.join(MANIFEST)).unwrap()).unwrap();
+        m.untimed_left_out = Some([("readings".to_string(), 1)].into());
+        std::fs::write(fewer.join(MANIFEST), serde_json::to_vec(&m).unwrap()).unwrap();
+        assert!(check(&fewer).ok(), "{:?}", check(&fewer).problems);
+        let said: Vec<String> = verify(Some(&fewer), Some(&store))
+            .unwrap()
+            .problems
+            .iter()
+            .map(|p| p.to_string())
+            .collect();
+        assert_eq!(said.len(), 1, "{said:?}");
+        assert!(
+            said[0].contains(
+                "(untimed_left_out: 1 readings); the database held 3 at the export (3 readings)"
+            ),
+            "{said:?}"
+        );
         // A clock event altered (the origin moved an hour, its hash left):
         // it no longer links, gives no time, and the times it gave are
         // reported as changed cells.
@@ -2432,6 +2513,8 @@ mod tests {
         let left: BTreeMap<String, u64> = [("readings".to_string(), 5)].into();
         assert_eq!(late.manifest.untimed_left_out, Some(left));
         assert_eq!(late.manifest.records.get("readings"), Some(&3));
+        let v = verify(Some(&dir.path().join("late")), Some(&store)).unwrap();
+        assert!(v.ok(), "{:?}", v.problems);
         // Nothing in range says how many records are in no range at all.
         let none = export(&store, "u.db", Some(0), 1, &dir.path().join("none")).unwrap_err();
         assert!(
