@@ -322,12 +322,30 @@ impl LineData {
         Ok(())
     }
 
-    /// The latest product calibration record (the one in force at the end).
+    /// The product calibration record in force at the end: the latest
+    /// record of the calibration the newest calibrated reading was made
+    /// with, else the latest product record (a calibration pushed without
+    /// being activated, say for tomorrow's product, is recorded but not in
+    /// force: the readings do not carry it).
     pub fn product_in_force(&self) -> Option<&CalRecordBody> {
-        self.cals
+        self.in_force(CalKind::Product, |r| r.product_cal)
+    }
+
+    /// The latest record of `kind` whose id the newest reading that
+    /// carries one of that kind (`id_of`) carries; else the latest of
+    /// `kind`.
+    fn in_force(&self, kind: CalKind, id_of: fn(&Reading) -> CalId) -> Option<&CalRecordBody> {
+        let carried = self
+            .rows
             .iter()
             .rev()
-            .find(|c| c.2 == CalKind::Product)
+            .map(|r| id_of(&r.reading))
+            .find(|id| *id != CalId::default())
+            .map(|id| id.to_string());
+        let of_kind = || self.cals.iter().rev().filter(move |c| c.2 == kind);
+        carried
+            .and_then(|id| of_kind().find(|c| c.3.new_id == id))
+            .or_else(|| of_kind().next())
             .map(|c| &c.3)
     }
 
@@ -361,17 +379,14 @@ impl LineData {
     }
 
     /// The empty-line readings the empty-line chart charts: those made
-    /// with the cell calibration in force (the latest cell calibration
-    /// record's), so that the chart, its target and its sigma start again
+    /// with the cell calibration in force (as [`LineData::product_in_force`]
+    /// finds the product calibration's), so that the chart, its target and its sigma start again
     /// with each cell calibration (a new one moves every eps'); every
     /// empty reading where no cell calibration record is in force.
     pub fn empty_chart_rows(&self) -> ChartRows<'_, Row> {
         let in_force = self
-            .cals
-            .iter()
-            .rev()
-            .find(|c| c.2 == CalKind::Cell)
-            .map(|c| c.3.new_id.clone());
+            .in_force(CalKind::Cell, |r| r.cell_cal)
+            .map(|b| b.new_id.clone());
         let id = in_force
             .as_deref()
             .and_then(|h| u32::from_str_radix(h, 16).ok())
@@ -891,6 +906,57 @@ mod tests {
             .unwrap();
         assert_eq!(lab_json["calibration"], "bbbbbbbb");
         assert_eq!(lab_json["under_other_calibrations"], 12);
+    }
+
+    /// A calibration pushed for later (not activated) is recorded after
+    /// the one the line runs on; the one in force is the one the readings
+    /// carry, for the lab chart's pairs and SEP and the temperature range.
+    /// (Made-up records.)
+    #[test]
+    fn the_calibration_in_force_is_the_one_the_readings_carry() {
+        let (wheat, barley) = (CalId([0xaa; 4]), CalId([0xbb; 4]));
+        let record = |id: CalId, sep: f64| {
+            (
+                1,
+                0,
+                CalKind::Product,
+                CalRecordBody {
+                    new_id: id.to_string(),
+                    statistics: Some(crate::product_file::Statistics {
+                        sep,
+                        ..Default::default()
+                    }),
+                    ..Default::default()
+                },
+                None,
+            )
+        };
+        let row = |product_cal: CalId| Row {
+            time_ms: 0,
+            rebased: false,
+            clock_known: true,
+            reading: Reading {
+                product_cal,
+                ..Default::default()
+            },
+        };
+        let mut data = LineData {
+            rows: vec![row(wheat), row(wheat), row(CalId::default())],
+            cals: vec![record(wheat, 0.15), record(barley, 0.3)],
+            ..Default::default()
+        };
+        let sep = |d: &LineData| {
+            d.product_in_force()
+                .and_then(|b| b.statistics.clone())
+                .map(|s| s.sep)
+        };
+        assert_eq!(sep(&data), Some(0.15));
+        // Once the readings carry barley, it is in force.
+        data.rows.push(row(barley));
+        assert_eq!(sep(&data), Some(0.3));
+        // Readings of a calibration with no record: the latest record.
+        data.rows.push(row(CalId([0xcc; 4])));
+        assert_eq!(sep(&data), Some(0.3));
     }
 
     /// A new cell calibration moves every eps': the empty-line chart
