@@ -98,12 +98,26 @@ impl LiveTable {
     }
 
     /// Serves device `serial` as Modbus unit `unit` (no reading yet, not
-    /// connected). Registering a unit again keeps its reading.
+    /// connected). Registering a unit again with the same serial keeps its
+    /// reading; with another (a device replaced on the unit's line) drops
+    /// the old device's reading, trend, alarms and calibration, whose
+    /// sequence numbers would otherwise hold back every reading of the new
+    /// one and serve the old device's frozen values.
     pub fn register(&self, unit: u8, serial: &str) {
         let mut units = self.units.write().unwrap_or_else(|e| e.into_inner());
         units
             .entry(unit)
-            .and_modify(|e| e.serial = serial.to_string())
+            .and_modify(|e| {
+                if !e.serial.is_empty() && e.serial != serial {
+                    e.reading = None;
+                    e.connected = false;
+                    e.history.clear();
+                    e.alarms.clear();
+                    e.calibration = None;
+                    e.moisture_basis = None;
+                }
+                e.serial = serial.to_string();
+            })
             .or_insert_with(|| Entry {
                 serial: serial.to_string(),
                 reading: None,

@@ -738,4 +738,28 @@ mod tests {
         t.set_connected(1, false);
         assert!(!t.snapshot(1, t0).unwrap().connected);
     }
+
+    /// A device replaced on a unit's line (boot 57 there, boot 2 on the
+    /// new one): the unit serves the new device's readings, not the old
+    /// one's frozen value; the same device registered again keeps its own.
+    #[test]
+    fn a_replacement_device_on_a_unit_is_served_from_its_first_reading() {
+        let t = LiveTable::new(Duration::from_secs(10));
+        t.register(3, "A");
+        let t0 = Instant::now();
+        let mut old = reading(9, 12.0);
+        old.seq.boot = 57;
+        t.update(3, &old, t0);
+        t.register(3, "A");
+        assert_eq!(t.snapshot(3, t0).unwrap().reading.unwrap().seq, old.seq);
+        t.register(3, "B");
+        assert!(t.snapshot(3, t0).unwrap().reading.is_none());
+        let mut new = reading(0, 14.0);
+        new.seq.boot = 2;
+        t.update(3, &new, t0 + Duration::from_secs(1));
+        let s = t.snapshot(3, t0 + Duration::from_secs(1)).unwrap();
+        assert_eq!(s.reading.unwrap().seq, new.seq);
+        assert!(!s.stale);
+        assert_eq!(t.units(), [(3, "B".to_string())]);
+    }
 }
