@@ -204,6 +204,13 @@ pub struct RecordResult {
     pub ratio_sd: f32,
 }
 
+impl RecordResult {
+    /// Clipped samples of both channels.
+    pub fn clipped(&self) -> u32 {
+        u32::from(self.sensor.clipped) + u32::from(self.reference.clipped)
+    }
+}
+
 /// Demodulates both channels of a record and forms their ratio.
 pub fn record(
     sensor: &[i16; RECORD_LEN],
@@ -246,7 +253,8 @@ pub struct Averaged {
     pub max_sensor_amplitude: f32,
     /// Smallest reference amplitude seen, ADC codes.
     pub min_reference_amplitude: f32,
-    /// Clipped samples over all records (either channel).
+    /// Clipped samples over the records kept (either channel); over all
+    /// records where none has a finite ratio.
     pub clipped: u32,
 }
 
@@ -347,9 +355,6 @@ impl Averager {
             ..Averaged::default()
         };
         for r in items {
-            out.clipped = out
-                .clipped
-                .saturating_add(u32::from(r.sensor.clipped) + u32::from(r.reference.clipped));
             out.max_sensor_amplitude = out.max_sensor_amplitude.max(r.sensor.amplitude);
             out.min_reference_amplitude = out.min_reference_amplitude.min(r.reference.amplitude);
         }
@@ -367,6 +372,7 @@ impl Averager {
             out.ratio = C32::new(f32::NAN, f32::NAN);
             out.ratio_se = f32::NAN;
             out.rejected = self.len as u8;
+            out.clipped = items.iter().map(RecordResult::clipped).sum();
             return out;
         }
         let (mut sre, mut sim) = (re, im);
@@ -374,19 +380,31 @@ impl Averager {
             median(sre.get_mut(..n).unwrap_or(&mut [])),
             median(sim.get_mut(..n).unwrap_or(&mut [])),
         );
-        let mut dist = [0.0f32; MAX_RECORDS];
-        for ((d, a), b) in dist.iter_mut().zip(re.iter()).zip(im.iter()).take(n) {
+        // Distances from the median: `packed` in the order of the finite
+        // ratios (for the MAD), `dist` by record (infinite for a record
+        // without a finite ratio), so that a record is judged by its own.
+        let mut packed = [0.0f32; MAX_RECORDS];
+        for ((d, a), b) in packed.iter_mut().zip(re.iter()).zip(im.iter()).take(n) {
             *d = libm::hypotf(a - med.re, b - med.im);
         }
-        let mut sd = dist;
-        let mad = median(sd.get_mut(..n).unwrap_or(&mut []));
+        let mut dist = [f32::INFINITY; MAX_RECORDS];
+        for (d, r) in dist.iter_mut().zip(items) {
+            if r.ratio.is_finite() {
+                *d = libm::hypotf(r.ratio.re - med.re, r.ratio.im - med.im);
+            }
+        }
+        let mad = median(packed.get_mut(..n).unwrap_or(&mut []));
         // The per-record noise sets a floor, so that identical records (MAD 0)
         // do not reject a record one noise sigma away.
         let floor = items.iter().map(|r| r.ratio_sd).fold(0.0f32, f32::max);
         let limit = OUTLIER_K * (1.4826 * mad).max(floor) + f32::EPSILON * med.abs();
         let (mut sum, mut kept) = (C32::default(), 0u32);
         let mut var_sum = 0.0f32;
-        for (i, r) in items.iter().enumerate().take(n) {
+        // Clipped samples count only in the records kept: a spark or a
+        // stone that drives one record to the rail is dropped with its
+        // record, as the average drops it; a product past the range clips
+        // them all.
+        for (i, r) in items.iter().enumerate() {
             let d = dist.get(i).copied().unwrap_or(f32::INFINITY);
             if r.ratio.is_finite() && d <= limit {
                 sum.re += r.ratio.re;
@@ -394,6 +412,7 @@ impl Averager {
                 var_sum += r.ratio_sd * r.ratio_sd;
                 kept += 1;
                 out.min_snr = out.min_snr.min(r.sensor.snr());
+                out.clipped = out.clipped.saturating_add(r.clipped());
             }
         }
         let k = kept.max(1) as f32;
@@ -404,7 +423,7 @@ impl Averager {
         // single record: its residual energy is a difference of two large f32
         // sums and overstates the noise of a near-full-scale record.
         let mut ss = 0.0f32;
-        for (i, r) in items.iter().enumerate().take(n) {
+        for (i, r) in items.iter().enumerate() {
             let d = dist.get(i).copied().unwrap_or(f32::INFINITY);
             if r.ratio.is_finite() && d <= limit {
                 let (dr, di) = (r.ratio.re - out.ratio.re, r.ratio.im - out.ratio.im);
@@ -631,6 +650,53 @@ mod tests {
         assert_eq!((out.kept, out.rejected), (7, 1), "seed {seed}: {out:?}");
         assert!((out.ratio.abs() - 0.5).abs() < 1e-3, "seed {seed}: {out:?}");
         assert!(out.ratio_se > 0.0 && out.ratio_se < 1e-3);
+    }
+
+    /// A spark drives one record of eight to the rail: the record is
+    /// dropped, and with it its clipped samples, so the reading is not
+    /// failed as saturated (found by review). Every record clipped (a
+    /// product past the range) still counts. A record without a finite
+    /// ratio among finite ones is judged by its own distance (the distances
+    /// were indexed by the finite ratios' order, so a later record took an
+    /// earlier one's). Synthetic records, common practice, no source.
+    #[test]
+    fn clipping_counts_only_in_the_records_kept() {
+        let mut rng = XorShiftRng::seed_from_u64(11);
+        let mut av = Averager::new();
+        for i in 0..8 {
+            let amp = if i == 5 { 40000.0 } else { 8000.0 };
+            let s = synth_record(amp, 0.3, 32, 10.0, &mut rng);
+            let r = synth_record(16000.0, 0.0, 32, 10.0, &mut rng);
+            av.push(record(&s, &r, 32, i16::MAX));
+        }
+        let out = av.finish();
+        assert_eq!((out.kept, out.rejected), (7, 1), "{out:?}");
+        assert_eq!(out.clipped, 0, "{out:?}");
+        assert!((out.ratio.abs() - 0.5).abs() < 1e-3, "{out:?}");
+
+        let mut all = Averager::new();
+        for _ in 0..8 {
+            let s = synth_record(40000.0, 0.3, 32, 10.0, &mut rng);
+            let r = synth_record(16000.0, 0.0, 32, 10.0, &mut rng);
+            all.push(record(&s, &r, 32, i16::MAX));
+        }
+        assert!(all.finish().clipped > 0);
+
+        // A record without a reference (no finite ratio) first, a spike
+        // last: the spike is the one rejected, the seven others kept.
+        let mut mixed = Averager::new();
+        let zero = [0i16; RECORD_LEN];
+        let s = synth_record(8000.0, 0.3, 32, 10.0, &mut rng);
+        mixed.push(record(&s, &zero, 32, i16::MAX));
+        for i in 0..8 {
+            let amp = if i == 7 { 12000.0 } else { 8000.0 };
+            let s = synth_record(amp, 0.3, 32, 10.0, &mut rng);
+            let r = synth_record(16000.0, 0.0, 32, 10.0, &mut rng);
+            mixed.push(record(&s, &r, 32, i16::MAX));
+        }
+        let out = mixed.finish();
+        assert_eq!((out.kept, out.rejected), (7, 2), "{out:?}");
+        assert!((out.ratio.abs() - 0.5).abs() < 1e-3, "{out:?}");
     }
 
     #[test]
