@@ -320,9 +320,8 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
     c.check("device config show", &dev(&["device", "config", "show"]));
     let st = c.check("device self-test", &dev(&["device", "self-test"]));
     assert_eq!(st[0]["ok"], true, "{}", st[0]);
-    c.check(
-        "device config set",
-        &dev(&[
+    let set = |tag: &str| {
+        dev(&[
             "device",
             "config",
             "set",
@@ -331,14 +330,28 @@ fn every_command_prints_json_lines_that_match_docs_json_md() {
             "--db",
             s(&dev_db),
             "--tag",
-            "L2-JSON",
+            tag,
             "--operator",
             "T. Json (test)",
             "--reason",
             "schema test",
             "--yes",
-        ]),
+        ])
+    };
+    let o = set("L2-JSON");
+    let v = c.check("device config set", &o);
+    assert_eq!(v[0]["changed"], true, "{}", v[0]);
+    // What changes and the caution on stderr with --json too (found by
+    // review: they were printed only without it).
+    assert!(
+        o.stderr.contains("-> ") && o.stderr.contains("L2-JSON") && o.stderr.contains("CAUTION"),
+        "{}",
+        o.stderr
     );
+    // Nothing to change: still JSON on stdout.
+    let v = c.check("device config set", &set("L2-JSON"));
+    assert_eq!(v[0]["changed"], false, "{}", v[0]);
+    assert_eq!(v[0]["position"], 0, "{}", v[0]);
 
     // Bench work, through its prompts (on stderr; stdout is JSON only).
     sim.set_bench("air");

@@ -700,6 +700,9 @@ pub struct ConfigSetOutcome {
     /// Chain positions of every audit record written (one for the
     /// settings, one for the Modbus settings, in that order).
     pub positions: Vec<u64>,
+    /// Whether anything was written (false: the device held these
+    /// settings already; `position` 0, `positions` empty).
+    pub changed: bool,
 }
 
 /// `fringe device config set`.
@@ -730,7 +733,6 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
         .identity()
         .cloned()
         .context("no identity after the handshake")?;
-    super::sync_clock(&mut link, Some(&key), "device config")?;
     let old = read_settings(&mut link)?;
     let new = change.apply(&old)?;
     fringe_device::settings::check_capabilities(&new, id.capabilities, id.serial.as_str())?;
@@ -748,10 +750,24 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
     let settings_changed = new != old;
     let modbus_changed = new_m != old_m;
     if !settings_changed && !modbus_changed {
-        out::line("nothing to change: the device holds these settings already")?;
+        if a.json {
+            let o = ConfigSetOutcome {
+                serial: id.serial.to_string(),
+                old: config_json(&old, old_m.as_ref()),
+                new: config_json(&new, new_m.as_ref()),
+                position: 0,
+                positions: Vec::new(),
+                changed: false,
+            };
+            out::json(&serde_json::to_value(&o)?)?;
+        } else {
+            out::line("nothing to change: the device holds these settings already")?;
+        }
         return Ok(());
     }
-    if !a.json {
+    // What changes and the cautions, on stderr with --json too: the
+    // answer to the question below moves the output a control loop uses.
+    {
         eprintln!("{} on {}:", id.serial, link.port_name());
         let before = config_lines(&old, old_m.as_ref());
         let after = config_lines(&new, new_m.as_ref());
@@ -782,6 +798,9 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
             db.display()
         );
     }
+    // The clock only once the change is confirmed: a refusal or a "no"
+    // leaves the device as it was.
+    super::sync_clock(&mut link, Some(&key), "device config")?;
     super::with_db(&db, |store| {
         fringe_line::register(store, &id)?;
         let mut positions = Vec::new();
@@ -836,6 +855,7 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
             new: config_json(&new, new_m.as_ref()),
             position: positions.last().copied().unwrap_or(0),
             positions,
+            changed: true,
         };
         if a.json {
             out::json(&serde_json::to_value(&o)?)?;
