@@ -205,8 +205,26 @@ pub fn parse_time_in(s: &str, tz: &TimeZone) -> Result<i64, String> {
     let dt: DateTime = civil
         .parse()
         .map_err(|e: jiff::Error| bad(&e.to_string()))?;
-    tz.to_ambiguous_timestamp(dt)
-        .compatible()
+    let at = tz.to_ambiguous_timestamp(dt);
+    // A local time the clocks pass twice (going back) or skip (going
+    // forward) is refused, with both offsets: taking one of them matched a
+    // grab sample an hour off, or left an hour out of a range.
+    let zone = tz.iana_name().unwrap_or("the local time zone");
+    match at.offset() {
+        jiff::tz::AmbiguousOffset::Fold { before, after } => {
+            return Err(format!(
+                "`{s}` occurs twice in {zone} (at {before} and again at {after}, the clocks going back): give the offset, e.g. `{}{before}`",
+                t.replacen(' ', "T", 1)
+            ))
+        }
+        jiff::tz::AmbiguousOffset::Gap { before, after } => {
+            return Err(format!(
+                "`{s}` does not exist in {zone} (the clocks skip it, going from {before} to {after}): give the time with its offset"
+            ))
+        }
+        jiff::tz::AmbiguousOffset::Unambiguous { .. } => {}
+    }
+    at.compatible()
         .map(|ts| ts.as_millisecond())
         .map_err(|e| bad(&e.to_string()))
 }
@@ -230,6 +248,35 @@ mod tests {
 
     fn berlin() -> TimeZone {
         TimeZone::get("Europe/Berlin").expect("tz database (Debian tzdata)")
+    }
+
+    /// Local times the clocks pass twice or skip are refused with both
+    /// offsets; with an offset, or away from a change, they are taken
+    /// (Europe/Berlin's changes of 2026: 29 March 02:00 +01:00 -> 03:00
+    /// +02:00, 25 October 03:00 +02:00 -> 02:00 +01:00; EU summer-time
+    /// rule, from memory, as the tz database gives them).
+    #[test]
+    fn a_local_time_at_a_clock_change_must_carry_its_offset() {
+        let b = berlin();
+        let e = parse_time_in("2026-10-25 02:30", &b).unwrap_err();
+        assert!(
+            e.contains("occurs twice in Europe/Berlin (at +02 and again at +01")
+                && e.contains("`2026-10-25T02:30+02`"),
+            "{e}"
+        );
+        let e = parse_time_in("2026-03-29T02:30", &b).unwrap_err();
+        assert!(e.contains("does not exist in Europe/Berlin"), "{e}");
+        // 2026-10-25T00:30Z = 1792888200000 ms, 01:30Z = 1792891800000 ms
+        // (Python datetime).
+        assert_eq!(
+            parse_time_in("2026-10-25 02:30+01:00", &b),
+            Ok(1_792_891_800_000)
+        );
+        assert_eq!(
+            parse_time_in("2026-10-25 02:30+02:00", &b),
+            Ok(1_792_888_200_000)
+        );
+        assert!(parse_time_in("2026-10-25 04:30", &b).is_ok());
     }
 
     /// The end of a range is the last millisecond of what was written
