@@ -85,12 +85,20 @@ pub fn identify(args: &IdentifyArgs, cfg: &LineConfig) -> anyhow::Result<()> {
 /// 2000-01-01 in Unix ms: a device time below it counts from boot.
 const CLOCK_SET_AFTER_MS: u64 = 946_684_800_000;
 
+/// Whether the device clock is set: before it is, a device counts from
+/// boot, and anything before 2000 is such a count. (Not the last
+/// reading's `clock_unset` flag: between a clock set and the next reading
+/// it still says unset.)
+fn clock_is_set(s: &Status) -> bool {
+    s.time_ms >= CLOCK_SET_AFTER_MS
+}
+
 /// The status as JSON.
 pub fn status_json(id: &Identity, s: &Status, host_link_errors: u32) -> serde_json::Value {
     json!({
         "serial": id.serial.as_str(),
         "time_ms": s.time_ms,
-        "clock_set": !s.last_flags.contains(Flags::CLOCK_UNSET) && s.time_ms >= CLOCK_SET_AFTER_MS,
+        "clock_set": clock_is_set(s),
         "uptime_ms": s.uptime_ms,
         "boot": s.boot,
         "next_seq": {"boot": s.next_seq.boot, "counter": s.next_seq.counter},
@@ -125,9 +133,7 @@ pub fn status(args: &StatusArgs, cfg: &LineConfig) -> anyhow::Result<()> {
         out::json(&status_json(id, &s, host_errors))?;
         return Ok(());
     }
-    // Before its clock is set a device counts from boot (no flag tells
-    // until the first reading): anything before 2000 is such a count.
-    let clock = if s.last_flags.contains(Flags::CLOCK_UNSET) || s.time_ms < CLOCK_SET_AFTER_MS {
+    let clock = if !clock_is_set(&s) {
         format!("{} since boot (clock not set)", out::duration_ms(s.time_ms))
     } else {
         crate::timefmt::fmt_person(s.time_ms as i64)
@@ -868,6 +874,35 @@ pub fn config_set(a: &crate::cli::ConfigSetArgs, cfg: &LineConfig) -> anyhow::Re
 mod tests {
     use super::*;
     use fringe_protocol::SelfTest;
+
+    /// Right after the clock is set, before the next reading, the last
+    /// reading still says `clock_unset`; the clock is set by its time
+    /// (found by review: status said "clock not set" and clock_set false).
+    #[test]
+    fn the_clock_is_set_by_its_time_not_by_the_last_readings_flag() {
+        let status = |time_ms: u64| Status {
+            time_ms,
+            uptime_ms: 6_000,
+            boot: 1,
+            next_seq: fringe_protocol::Seq::default(),
+            log_first: fringe_protocol::Seq::default(),
+            log_len: 0,
+            next_event: 0,
+            stream_period_ms: None,
+            active_slot: None,
+            cell_cal: fringe_protocol::CalId::NONE,
+            product_cal: fringe_protocol::CalId::NONE,
+            last_flags: Flags::CLOCK_UNSET,
+            write_counter: 0,
+            link_errors: 0,
+            reference_ratio: 1.0,
+            output_ma: 3.5,
+            stack_free_bytes: None,
+            reading_cost: None,
+        };
+        assert!(clock_is_set(&status(1_796_083_200_000)));
+        assert!(!clock_is_set(&status(6_000)));
+    }
 
     fn passing() -> SelfTest {
         SelfTest {
