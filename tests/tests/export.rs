@@ -497,3 +497,29 @@ fn refusals_name_the_value_and_leave_nothing_behind() {
     names.sort();
     assert_eq!(names, ["x.csv"]);
 }
+
+/// A device named twice among others (`--device A --device B --device A`)
+/// is exported once: dedup removed only neighbouring names, and A's rows
+/// were written and counted twice (found by review).
+#[test]
+fn a_device_named_twice_is_exported_once() {
+    let t = tempfile::tempdir().expect("temp dir");
+    let db = t.path().join("line3.db");
+    build(&db);
+    let export = |name: &str, devices: &[&str]| {
+        let out = t.path().join(name);
+        let mut args = vec!["export", "--db", s(&db), "--out", s(&out), "--json"];
+        for d in devices {
+            args.extend(["--device", d]);
+        }
+        let o = run(&mut fringe(&args), LIMIT);
+        assert_eq!(o.code, 0, "{}", o.stderr);
+        let sum: Value = serde_json::from_str(o.stdout.trim()).expect("summary");
+        (sum, std::fs::read_to_string(&out).expect("export"))
+    };
+    let (once, rows_once) = export("once.jsonl", &["PX-A", "PX-B"]);
+    let (twice, rows_twice) = export("twice.jsonl", &["PX-A", "PX-B", "PX-A"]);
+    assert_eq!(twice["rows"], once["rows"], "{twice}");
+    assert_eq!(twice["per_device"], once["per_device"], "{twice}");
+    assert_eq!(rows_twice, rows_once);
+}

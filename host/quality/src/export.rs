@@ -404,8 +404,15 @@ pub fn export(
                 });
             }
         }
-        let mut s = sel.serials.clone();
-        s.dedup();
+        // Each device once, in the order first named (`--device A
+        // --device B --device A` wrote A's rows twice: dedup removes only
+        // neighbours).
+        let mut s: Vec<String> = Vec::new();
+        for serial in &sel.serials {
+            if !s.contains(serial) {
+                s.push(serial.clone());
+            }
+        }
         s
     };
     let mut sum = Summary {

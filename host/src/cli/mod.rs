@@ -182,7 +182,8 @@ pub struct MonitorArgs {
     /// No live view and no per-reading lines (errors and notices still go to stderr).
     #[arg(long, short = 'q')]
     pub quiet: bool,
-    /// Print the end-of-run summary as JSON on stdout.
+    /// JSON lines on stdout: one per reading (not with --quiet), one per
+    /// new drift alarm, and the end-of-run summary.
     #[arg(long)]
     pub json: bool,
     /// Re-run the drift monitors of `fringe drift` on the stored data every
