@@ -291,7 +291,14 @@ impl Worker {
             Err(e) => return End::Lost(e.to_string()),
         };
         let started_ms = now_ms();
-        let (client, mut conn) = Client::new(self.options(bd_seq), 2 * WINDOW);
+        // The client's request queue is emptied only by this thread's
+        // polling, and a publish into a full one blocks it for good: room
+        // for the window of readings (twice over), the subscription, the
+        // NBIRTH and a DBIRTH for every device a Rebirth can ask for at
+        // once. With room for the window alone, a site of 63 devices locked
+        // up at its first reconnect (found by review).
+        let births = self.devices.len().max(usize::from(u8::MAX)) * 2;
+        let (client, mut conn) = Client::new(self.options(bd_seq), 2 * WINDOW + births + 8);
         // Wait for the broker's CONNACK.
         let deadline = Instant::now() + Duration::from_secs(10);
         loop {
