@@ -112,6 +112,8 @@ pub const fn write_hold_ms(failures: u32) -> u64 {
 /// Shortest `StartStream` period accepted, ms (since protocol 1.1 the
 /// period is only checked; the device measures at its own interval).
 pub const MIN_PERIOD_MS: u32 = 100;
+/// How often a current the loop did not take is written again, ms.
+pub const OUTPUT_RETRY_MS: u64 = 1000;
 /// Longest `StartStream` period accepted, ms (one day).
 pub const MAX_PERIOD_MS: u32 = 86_400_000;
 /// Earliest clock accepted by `SetClock` (2000-01-01), Unix ms.
@@ -332,6 +334,11 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     host_version: Option<Version>,
     output_ma: f32,
     output_fault: bool,
+    /// When a current the loop did not take is written again (device ms).
+    output_retry_ms: u64,
+    /// The loop fault of this episode is logged (a boot's failed first
+    /// write is logged by the first retry that fails too).
+    output_fault_logged: bool,
     /// Moisture of the last reading and when it was taken (for a span
     /// change between readings); `None` when it had none.
     last_moisture: Option<f32>,
@@ -574,6 +581,8 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             host_version: None,
             output_ma,
             output_fault,
+            output_retry_ms: 0,
+            output_fault_logged: false,
             last_moisture: None,
             last_valid_ms: now_ms,
             latest: None,
@@ -629,6 +638,13 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             }
         }
         self.check_stale(now_ms, tx);
+        // A current the loop did not take (a write that failed, say on a
+        // shared bus) is written again until it is: the failure level of a
+        // stalled front end is otherwise written once, and the loop keeps
+        // the last moisture.
+        if self.output_fault && now_ms >= self.output_retry_ms {
+            self.set_output(now_ms, tx);
+        }
     }
 
     /// Sets the clock from a source on the board (a battery-backed
@@ -699,7 +715,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         }
         self.stale = true;
         let showed_value = self.last_moisture.is_some();
-        self.drive_output(None);
+        self.drive_output(None, now_ms, tx);
         if showed_value {
             self.event(
                 now_ms,
@@ -748,6 +764,11 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
     /// The storage (dumps and tests).
     pub fn storage_mut(&mut self) -> &mut Storage<S> {
         &mut self.storage
+    }
+
+    /// The current output, to change (tests of a failing loop).
+    pub fn output_mut(&mut self) -> &mut O {
+        &mut self.out
     }
 
     /// The current output.
@@ -1336,9 +1357,9 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         self.settings = new;
         self.next_due_ms = self.next_due_ms.min(now_ms.saturating_add(interval));
         if !self.stale {
-            self.drive_output(self.last_moisture);
+            self.drive_output(self.last_moisture, now_ms, tx);
         } else {
-            self.drive_output(None);
+            self.drive_output(None, now_ms, tx);
         }
         let new = self.settings.content_id();
         self.event(now_ms, EventKind::SettingsChanged { old, new }, tx);
@@ -1569,7 +1590,6 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
                 tx,
             );
         }
-        let was_fault = self.output_fault;
         self.latest = Some((reading.on_wire(), now_ms));
         self.latest_basis = self.active.as_ref().map(|a| match a.cal.basis {
             fringe_calibration::moisture::Basis::Wet => Basis::Wet,
@@ -1580,16 +1600,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             self.last_valid_ms = now_ms;
             self.stale = false;
         }
-        self.drive_output(self.last_moisture);
-        if self.output_fault && !was_fault {
-            self.event(
-                now_ms,
-                EventKind::Fault {
-                    code: FaultCode::CurrentLoop,
-                },
-                tx,
-            );
-        }
+        self.drive_output(self.last_moisture, now_ms, tx);
         if self.subscribed {
             self.send(tx, &DeviceFrame::Reading(reading));
         }
@@ -1668,10 +1679,32 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         }
     }
 
-    fn drive_output(&mut self, moisture_pct: Option<f32>) {
+    /// Drives the current for `moisture_pct` (the failure level for none).
+    fn drive_output(&mut self, moisture_pct: Option<f32>, now_ms: u64, tx: &mut dyn FnMut(&[u8])) {
         let (ma, _) = output::current_ma(&self.settings.output, moisture_pct);
         self.output_ma = ma;
-        self.output_fault = self.out.set_ma(ma).is_err();
+        self.set_output(now_ms, tx);
+    }
+
+    /// Writes the current commanded; a loop fault is logged once per
+    /// episode, on whichever path it is met (a reading, the stale timeout,
+    /// a settings write, a retry), and the write is tried again
+    /// [`OUTPUT_RETRY_MS`] later.
+    fn set_output(&mut self, now_ms: u64, tx: &mut dyn FnMut(&[u8])) {
+        self.output_fault = self.out.set_ma(self.output_ma).is_err();
+        self.output_retry_ms = now_ms.saturating_add(OUTPUT_RETRY_MS);
+        if !self.output_fault {
+            self.output_fault_logged = false;
+        } else if !self.output_fault_logged {
+            self.output_fault_logged = true;
+            self.event(
+                now_ms,
+                EventKind::Fault {
+                    code: FaultCode::CurrentLoop,
+                },
+                tx,
+            );
+        }
     }
 }
 

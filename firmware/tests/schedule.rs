@@ -126,10 +126,15 @@ fn left_alone_it_logs_one_reading_per_interval_and_its_loop_follows_the_moisture
     });
 }
 
-fn stalled_body(fail_high: bool) {
+/// `refused`: writes of the failure level the loop refuses (a loop fault,
+/// a failed write on a shared bus): the device writes it again every
+/// `OUTPUT_RETRY_MS` until the loop takes it, and logs one `CurrentLoop`
+/// fault.
+fn stalled_body(fail_high: bool, refused: u32) {
     let interval = 1000u64;
     let timeout = 5000u64;
     let mut b = calibrated(42, settings(interval as u32, timeout as u32, fail_high));
+    b.dev.output_mut().refuse_failure_level = refused;
     b.dev.frontend_mut().set_scenario(grain(15.0));
     // Valid readings for a while.
     for _ in 0..3 * interval {
@@ -166,8 +171,10 @@ fn stalled_body(fail_high: bool) {
     // The timeout counts from the last valid reading, which came at most
     // one interval (plus the reading's own time) before the stall.
     let late = failed_at - stalled_at;
+    let retries = u64::from(refused) * fringe_firmware::device::OUTPUT_RETRY_MS;
+    assert_eq!(b.dev.output().refused, refused);
     assert!(
-        (timeout - interval..=timeout + 100).contains(&late),
+        (timeout - interval + retries..=timeout + 100 + retries).contains(&late),
         "failure level {late} ms after the stall (timeout {timeout} ms, interval {interval} ms)"
     );
     let stale_events = b.events()[events_before..]
@@ -180,6 +187,20 @@ fn stalled_body(fail_high: bool) {
         })
         .count();
     assert_eq!(stale_events, 1, "one StaleOutput event per episode");
+    let loop_events = b.events()[events_before..]
+        .iter()
+        .filter(|e| {
+            e.kind
+                == EventKind::Fault {
+                    code: FaultCode::CurrentLoop,
+                }
+        })
+        .count();
+    assert_eq!(
+        loop_events,
+        usize::from(refused > 0),
+        "one CurrentLoop event where the loop refused the failure level"
+    );
     match b.ok(Request::Status) {
         Response::Status(s) => assert_eq!(s.output_ma, b.dev.output().last_ma),
         other => panic!("{other:?}"),
@@ -195,12 +216,22 @@ fn stalled_body(fail_high: bool) {
 
 #[test]
 fn a_stalled_front_end_sends_the_loop_to_the_low_failure_level_after_the_timeout() {
-    big_stack(|| stalled_body(false));
+    big_stack(|| stalled_body(false, 0));
 }
 
 #[test]
 fn a_stalled_front_end_sends_the_loop_to_the_high_failure_level_after_the_timeout() {
-    big_stack(|| stalled_body(true));
+    big_stack(|| stalled_body(true, 0));
+}
+
+/// The failure level refused by the loop three times (found by review: it
+/// was written once, and the loop kept the last moisture for good while
+/// the status said the failure level): written again each second until
+/// taken, one `CurrentLoop` event.
+#[test]
+fn a_failure_level_the_loop_refuses_is_written_again_until_taken() {
+    big_stack(|| stalled_body(false, 3));
+    big_stack(|| stalled_body(true, 3));
 }
 
 #[test]

@@ -3,7 +3,7 @@
 
 use fringe_calibration::cell::two_point_calibration;
 use fringe_calibration::real::Cx;
-use fringe_firmware::hal::NullOutput;
+use fringe_firmware::hal::{CurrentOutput, OutputError};
 use fringe_firmware::protocol::auth::sign;
 use fringe_firmware::protocol::frame::encode_vec;
 use fringe_firmware::protocol::*;
@@ -12,7 +12,33 @@ use fringe_firmware::{Device, DeviceConfig, RamFlash, Scenario, SimFrontend};
 
 pub const FLASH: usize = 64 * 1024;
 pub type Flash = RamFlash<FLASH>;
-pub type Dev = Device<SimFrontend, Flash, NullOutput>;
+pub type Dev = Device<SimFrontend, Flash, TestOutput>;
+
+/// The loop's current output: keeps the last current it took; refuses
+/// the next `refuse_failure_level` writes of a failure level (at or below
+/// 3.6 mA, at or above 21 mA), as a loop fault or a failed write on a
+/// shared bus would.
+#[derive(Debug, Default, Clone, Copy, PartialEq)]
+pub struct TestOutput {
+    /// Last current taken, mA.
+    pub last_ma: f32,
+    /// Writes of a failure level still to refuse.
+    pub refuse_failure_level: u32,
+    /// Writes refused so far.
+    pub refused: u32,
+}
+
+impl CurrentOutput for TestOutput {
+    fn set_ma(&mut self, ma: f32) -> Result<(), OutputError> {
+        if (ma <= 3.6 || ma >= 21.0) && self.refuse_failure_level > 0 {
+            self.refuse_failure_level -= 1;
+            self.refused += 1;
+            return Err(OutputError::LoopFault);
+        }
+        self.last_ma = ma;
+        Ok(())
+    }
+}
 
 pub const KEY: [u8; 32] = [0x42; 32];
 pub const SERIAL: &str = "HGM-L2-0007";
@@ -55,7 +81,7 @@ impl Bench {
         let dev = Device::new(
             SimFrontend::new(seed, scenario),
             flash,
-            NullOutput::default(),
+            TestOutput::default(),
             cfg,
             ResetCause::PowerOn,
             0,
