@@ -112,6 +112,10 @@ pub const fn write_hold_ms(failures: u32) -> u64 {
 /// Shortest `StartStream` period accepted, ms (since protocol 1.1 the
 /// period is only checked; the device measures at its own interval).
 pub const MIN_PERIOD_MS: u32 = 100;
+/// The longest a reading is taken to last (with the reference check), ms:
+/// about 160 ms on the simulator and 390 ms estimated on the STM32G474
+/// board; a job running longer is stuck.
+pub const LONGEST_READING_MS: u64 = 2000;
 /// How often a current the loop did not take is written again, ms.
 pub const OUTPUT_RETRY_MS: u64 = 1000;
 /// Longest `StartStream` period accepted, ms (one day).
@@ -344,6 +348,8 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     last_moisture: Option<f32>,
     /// When the last valid reading was taken (boot time before the first).
     last_valid_ms: u64,
+    /// When the job running (or the last one) started.
+    job_started_ms: u64,
     /// The latest reading, valid or not, as the protocol carries it
     /// ([`Reading::on_wire`]), and when it was taken (for the Modbus
     /// registers: the same numbers a host, and so the gateway, receives).
@@ -585,6 +591,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             output_fault_logged: false,
             last_moisture: None,
             last_valid_ms: now_ms,
+            job_started_ms: now_ms,
             latest: None,
             latest_basis: None,
             stale: false,
@@ -705,11 +712,24 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         self.subscribed
     }
 
-    /// The stale-output timeout: with no valid reading for that long, the
-    /// loop goes to its failure level (once per episode, with an event).
+    /// The stale-output timeout: with no valid reading started for that
+    /// long, the loop goes to its failure level (once per episode, with an
+    /// event).
     fn check_stale(&mut self, now_ms: u64, tx: &mut dyn FnMut(&[u8])) {
-        let late =
-            now_ms.saturating_sub(self.last_valid_ms) > u64::from(self.settings.stale_timeout_ms);
+        // A reading under way counts from its start, for as long as a
+        // reading can take: one with the reference check ends well after
+        // the next one was due, and at the shortest settings (100 ms, 200
+        // ms) the loop went to its failure level every ten readings
+        // (found by review). A job stuck longer (a stalled front end)
+        // counts no more.
+        let running =
+            self.runner.busy() && now_ms.saturating_sub(self.job_started_ms) <= LONGEST_READING_MS;
+        let since = if running {
+            self.last_valid_ms.max(self.job_started_ms)
+        } else {
+            self.last_valid_ms
+        };
+        let late = now_ms.saturating_sub(since) > u64::from(self.settings.stale_timeout_ms);
         if !late || self.stale {
             return;
         }
@@ -1493,6 +1513,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         // wait for the next job (so a `Measure` after a change of product
         // never gets a reading acquired before it).
         self.in_job = core::mem::take(&mut self.pending);
+        self.job_started_ms = now_ms;
         self.runner.start(Job {
             electrodes: reading,
             reference,
@@ -1597,7 +1618,11 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         });
         self.last_moisture = reading.moisture_pct.filter(|m| m.is_finite());
         if self.last_moisture.is_some() {
-            self.last_valid_ms = now_ms;
+            // From when it was started: readings on time are an interval
+            // apart however long each takes (one with the reference check
+            // ends about 105 ms later on the simulator, and tripped the
+            // stale timeout at the shortest settings).
+            self.last_valid_ms = self.job_started_ms;
             self.stale = false;
         }
         self.drive_output(self.last_moisture, now_ms, tx);
