@@ -1307,6 +1307,15 @@ impl<S: RecordStore> Worker<S> {
                 };
                 if c.set_to_ms.is_some() {
                     self.say(serial, Level::Info, format!("device clock {was}; set"));
+                } else if c.too_far {
+                    self.say(
+                        serial,
+                        Level::Error,
+                        format!(
+                            "device clock {was}, more than {} min: not set automatically (the device's clock or this host's is wrong); check both, then set it with `fringe device clock --set`",
+                            fringe_line::CLOCK_AUTO_LIMIT_MS / 60_000
+                        ),
+                    );
                 } else if c.needs_key {
                     self.say(
                         serial,

@@ -1,6 +1,10 @@
 //! The device clock on a connection: checked against the host's, set when
 //! it is unset or off by more than [`CLOCK_TOLERANCE_MS`] and the device
-//! key is at hand. Time comes in as an argument.
+//! key is at hand; a set clock off by more than [`CLOCK_AUTO_LIMIT_MS`] is
+//! left alone and said (one of the two clocks is wrong, and a host without
+//! time service, a laptop an hour off, would stamp every later reading
+//! wrongly; `fringe device clock --set` sets it on purpose). Time comes in
+//! as an argument.
 
 use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
@@ -8,6 +12,11 @@ use fringe_protocol::{Request, Status};
 
 /// A device clock further off than this is set again, ms.
 pub const CLOCK_TOLERANCE_MS: i64 = 1000;
+/// A set device clock further off than this is not set automatically, ms
+/// (15 min: a battery-backed clock drifting a few seconds a day, left a
+/// few months, stays within it; a time-zone or daylight-saving mistake of
+/// an hour does not).
+pub const CLOCK_AUTO_LIMIT_MS: i64 = 15 * 60_000;
 /// Device times below this (2000-01-01) count from boot: the clock is unset
 /// (a device refuses to set a clock before it).
 pub const CLOCK_SET_AFTER_MS: u64 = 946_684_800_000;
@@ -39,6 +48,12 @@ impl ClockCheck {
             ClockCheck::Set { off_ms, .. } => off_ms.abs() > CLOCK_TOLERANCE_MS,
         }
     }
+
+    /// Whether a set clock is too far off to be set without a person
+    /// (more than [`CLOCK_AUTO_LIMIT_MS`]).
+    pub fn too_far_to_set_automatically(&self) -> bool {
+        matches!(*self, ClockCheck::Set { off_ms, .. } if off_ms.abs() > CLOCK_AUTO_LIMIT_MS)
+    }
 }
 
 /// Reads the device clock from a status taken at host time `host_ms`.
@@ -67,10 +82,14 @@ pub struct ClockSync {
     pub set_to_ms: Option<i64>,
     /// It needed setting but no device key was given.
     pub needs_key: bool,
+    /// It was off by more than [`CLOCK_AUTO_LIMIT_MS`] and was left as it
+    /// was, for a person to check and set.
+    pub too_far: bool,
 }
 
 /// Checks the device clock and, when it is unset or off by more than a
-/// second, sets it to `now()` with `key` (an authenticated `SetClock`).
+/// second (and not by more than [`CLOCK_AUTO_LIMIT_MS`]), sets it to
+/// `now()` with `key` (an authenticated `SetClock`).
 /// Without a key it only reports ([`ClockSync::needs_key`]). `now` gives
 /// the host's time in ms since the Unix epoch; it is read right before each
 /// request that needs it.
@@ -84,19 +103,20 @@ pub fn sync_clock(
 ) -> Result<ClockSync, LinkError> {
     let s = link.status()?;
     let before = check_clock(&s, now());
+    let left = |needs_key: bool, too_far: bool| ClockSync {
+        before,
+        set_to_ms: None,
+        needs_key,
+        too_far,
+    };
     if !before.needs_setting() {
-        return Ok(ClockSync {
-            before,
-            set_to_ms: None,
-            needs_key: false,
-        });
+        return Ok(left(false, false));
+    }
+    if before.too_far_to_set_automatically() {
+        return Ok(left(false, true));
     }
     let Some(key) = key else {
-        return Ok(ClockSync {
-            before,
-            set_to_ms: None,
-            needs_key: true,
-        });
+        return Ok(left(true, false));
     };
     let t = now();
     link.request_signed(Request::SetClock { unix_ms: t as u64 }, key)?;
@@ -104,6 +124,7 @@ pub fn sync_clock(
         before,
         set_to_ms: Some(t),
         needs_key: false,
+        too_far: false,
     })
 }
 
@@ -170,5 +191,12 @@ mod tests {
             }
         );
         assert!(c.needs_setting());
+        assert!(!c.too_far_to_set_automatically());
+        // 15 min off is set; a second more is left for a person.
+        let at = |off: i64| check_clock(&status_at((host + off) as u64), host);
+        assert!(!at(-CLOCK_AUTO_LIMIT_MS).too_far_to_set_automatically());
+        assert!(at(-CLOCK_AUTO_LIMIT_MS - 1000).too_far_to_set_automatically());
+        assert!(at(3_600_000).too_far_to_set_automatically());
+        assert!(!check_clock(&status_at(6_000), host).too_far_to_set_automatically());
     }
 }

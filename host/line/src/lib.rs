@@ -23,7 +23,7 @@ pub mod observe;
 mod session;
 
 pub use backfill::{next_seq, plan_backfill, Backfill, LogRange};
-pub use clock::{check_clock, set_clock, sync_clock, ClockCheck, ClockSync};
+pub use clock::{check_clock, set_clock, sync_clock, ClockCheck, ClockSync, CLOCK_AUTO_LIMIT_MS};
 pub use density::{check_density, density_counter, set_density, set_density_after, DensityError};
 pub use error::LineError;
 pub use observe::{record_unrecorded, Observed};

@@ -352,3 +352,70 @@ fn calibrations_found_on_the_device_without_a_record_are_recorded_once() {
     );
     assert!(store.verify_chain().expect("chain").ok());
 }
+
+/// A host whose clock is an hour behind (a computer without time service)
+/// does not set a device clock that is right: the session says the clock is
+/// too far off to set without a person, and the device keeps its time. An
+/// unset clock, or one a few seconds off, is still set. (Found by review:
+/// every connect set the device to the host's time, whatever it was.)
+#[test]
+fn a_host_clock_an_hour_off_does_not_set_a_device_clock() {
+    let sim = device("HGM-L2-0104", 4);
+    let mut store = Store::open_in_memory().expect("store");
+    let stop = AtomicBool::new(false);
+    let right = 1_796_104_800_000i64;
+    let now = Instant::now;
+    let key = Some([7u8; 32]);
+    let open = |wall_ms: i64, store: &mut Store| {
+        let wall = move || wall_ms;
+        let mut notes = Vec::new();
+        let mut tell = |n: Note<'_>| notes.push(format!("{n:?}"));
+        let mut ctx = Ctx {
+            stop: &stop,
+            wall_ms: &wall,
+            now: &now,
+            tell: &mut tell,
+        };
+        let s = Session::open(
+            link(&sim, "sim"),
+            store,
+            SessionOptions {
+                key,
+                period_ms: None,
+            },
+            &mut ctx,
+        )
+        .expect("open");
+        let (_, done) = s.finish(store);
+        done.expect("finish");
+        notes
+    };
+    let device_time = || match link(&sim, "sim").status() {
+        Ok(s) => s.time_ms as i64,
+        Err(e) => panic!("{e}"),
+    };
+    // Unset: set.
+    let notes = open(right, &mut store);
+    assert!(
+        notes.iter().any(|n| n.contains("set_to_ms: Some")),
+        "{notes:?}"
+    );
+    assert!((device_time() - right).abs() < 60_000);
+    // The host an hour behind: left, and said.
+    let notes = open(right - 3_600_000, &mut store);
+    assert!(
+        notes.iter().any(|n| n.contains("too_far: true")),
+        "{notes:?}"
+    );
+    assert!(
+        (device_time() - right).abs() < 60_000,
+        "the device clock was moved: {}",
+        device_time() - right
+    );
+    // A host a few seconds ahead: set.
+    let notes = open(right + 5_000, &mut store);
+    assert!(
+        notes.iter().any(|n| n.contains("set_to_ms: Some")),
+        "{notes:?}"
+    );
+}

@@ -109,6 +109,11 @@ pub fn say_clock(who: &str, s: &ClockSync) {
             "fringe {who}: device clock {was}; set to {} (the device logs the change as a clock_set event)",
             crate::timefmt::fmt_time(t)
         );
+    } else if s.too_far {
+        eprintln!(
+            "fringe {who}: device clock {was}, more than {} min: not set automatically (the device's clock or this computer's is wrong; readings keep the device's time meanwhile); check both, then set it with `fringe device clock --set`",
+            fringe_line::CLOCK_AUTO_LIMIT_MS / 60_000
+        );
     } else if s.needs_key {
         eprintln!(
             "fringe {who}: device clock {was}; give --key-file (or key_file in the line file) to set it"
