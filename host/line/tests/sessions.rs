@@ -419,3 +419,17 @@ fn a_host_clock_an_hour_off_does_not_set_a_device_clock() {
         "{notes:?}"
     );
 }
+
+/// Two densities within one tenth of a second of the device's uptime, from
+/// two senders that know nothing of each other (two `fringe device
+/// density` runs in a row): both are taken. The second carried the same
+/// counter and was refused as a replay (it failed a CI-like run once).
+#[test]
+fn two_densities_in_the_same_tenth_of_a_second_are_both_taken() {
+    let sim = device("HGM-L2-0105", 5);
+    let key = [7u8; 32];
+    let mut l = link(&sim, "sim");
+    fringe_line::set_density(&mut l, &key, 730.0, 60_000).expect("first density");
+    let mut l = link(&sim, "sim");
+    fringe_line::set_density(&mut l, &key, 731.0, 60_000).expect("second density");
+}
