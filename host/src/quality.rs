@@ -83,7 +83,12 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     if a.json {
         crate::out::json(&json!({
             "sample_id": g.sample_id, "serial": g.serial, "time_utc": fmt_time(a.time), "lab_moisture_pct": a.moisture,
-            "matched_reading": g.matched.map(|(r, _, _)| json!({"boot": r.seq.boot, "counter": r.seq.counter})),
+            "matched_reading": g.matched.map(|(r, t, _)| json!({
+                "boot": r.seq.boot, "counter": r.seq.counter, "time_utc": fmt_time(t),
+                // Reading time minus sample time, s.
+                "offset_s": (t - a.time) as f64 / 1000.0,
+            })),
+            "unmatched_reason": g.unmatched,
             "inline_moisture_pct": inline, "residual_pct": inline.map(|i| {
                 // To 0.001 %: the difference of a lab value and an f32 reading.
                 let r = lab_on_reading - f64::from(i);
@@ -104,9 +109,10 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
     );
     match (g.matched, inline) {
         (Some((r, t, rebased)), Some(i)) => crate::outln!(
-            "  matched reading {} at {}{}: inline {:.2} %, lab - inline {:+.2} %{}",
+            "  matched reading {} at {} ({:+.0} s from the sample){}: inline {:.2} %, lab - inline {:+.2} %{}",
             r.seq,
             fmt_person(t),
+            (t - a.time) as f64 / 1000.0,
             if rebased {
                 " (taken before the device clock was set; re-based)"
             } else {
@@ -128,9 +134,11 @@ pub fn lab_add(a: &LabAddArgs, cfg: &LineConfig) -> anyhow::Result<()> {
             }
         ),
         _ => crate::outln!(
-            "  no inline reading within {} s of {}: stored unmatched",
-            a.match_within_s,
-            fmt_person(a.time)
+            "  stored unmatched (sample at {}): {}",
+            fmt_person(a.time),
+            g.unmatched
+                .as_deref()
+                .unwrap_or("no inline moisture at the matched reading")
         ),
     }
     if g.recorded.duplicate {

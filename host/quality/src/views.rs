@@ -130,6 +130,21 @@ pub struct GrabSample {
     pub supersedes: Option<u64>,
 }
 
+/// Flags that keep a reading out of a lab pair: its moisture is in
+/// question (clipped, outside the calibration's ranges, the fit not
+/// converged, an electrode or temperature-sensor fault, the reference
+/// drifted, a low signal, the density missing), so lab - inline would
+/// charge the calibration with the reading's trouble.
+pub const PAIR_UNUSABLE: Flags = Flags::SATURATED
+    .union(Flags::OUT_OF_RANGE)
+    .union(Flags::TEMP_OUT_OF_RANGE)
+    .union(Flags::FIT_NOT_CONVERGED)
+    .union(Flags::ELECTRODE_FAULT)
+    .union(Flags::REFERENCE_DRIFT)
+    .union(Flags::LOW_SNR)
+    .union(Flags::TEMP_SENSOR_FAULT)
+    .union(Flags::DENSITY_MISSING);
+
 /// What recording a grab sample did.
 #[derive(Debug, Clone, PartialEq)]
 pub struct GrabRecorded {
@@ -140,6 +155,8 @@ pub struct GrabRecorded {
     /// The reading it was matched to, with its wall-clock time and whether
     /// that was re-based.
     pub matched: Option<(fringe_protocol::Reading, i64, bool)>,
+    /// Why it was stored unmatched, in words (`None` when matched).
+    pub unmatched: Option<String>,
     /// The store's answer.
     pub recorded: Recorded,
 }
@@ -174,7 +191,11 @@ impl GrabSample {
     /// Records the sample for device `serial` (the store's only device
     /// when `None`), matched by wall-clock time (re-based for readings
     /// taken before the clock was set) to the nearest reading with a
-    /// moisture within `match_within_s`.
+    /// moisture and no flag that questions it ([`PAIR_UNUSABLE`]) within
+    /// `match_within_s`; stored unmatched, with the reason, where there is
+    /// none or where the reading nearest to the sample's time says the
+    /// line was empty (a pair across an empty spell compares the sample
+    /// with product from before or after it).
     ///
     /// # Errors
     /// [`ViewError`]: a bad value, an unclear device, a store failure.
@@ -186,13 +207,44 @@ impl GrabSample {
         self.validate()?;
         let serial = only_device(store, serial)?;
         let readings = store.readings(&serial)?;
-        let nearest = readings
-            .iter()
-            .filter(|r| r.reading.moisture_pct.is_some())
-            .filter_map(|r| r.wall_ms.map(|t| (r, t)))
-            .min_by_key(|(_, t)| (t - self.time_ms).abs());
-        let matched =
-            nearest.filter(|(_, t)| (t - self.time_ms).abs() <= self.match_within_s * 1000);
+        let within = self.match_within_s * 1000;
+        let nearest_of = |usable: &dyn Fn(&fringe_store::LoggedReading) -> bool| {
+            readings
+                .iter()
+                .filter(|r| usable(r))
+                .filter_map(|r| r.wall_ms.map(|t| (r, t)))
+                .filter(|(_, t)| (t - self.time_ms).abs() <= within)
+                .min_by_key(|(_, t)| (t - self.time_ms).abs())
+        };
+        let any = nearest_of(&|_| true);
+        let usable = nearest_of(&|r| {
+            r.reading.moisture_pct.is_some() && !r.reading.flags.intersects(PAIR_UNUSABLE)
+        });
+        let (matched, unmatched) = match (any, usable) {
+            (Some((r, t)), _) if r.reading.flags.contains(Flags::NO_PRODUCT) => (
+                None,
+                Some(format!(
+                    "the line was empty at that time (the nearest reading, {} at {}, is flagged no_product): a pair would compare the sample with product from before or after the empty spell; check the time entered",
+                    r.reading.seq,
+                    fmt_time(t)
+                )),
+            ),
+            (_, Some(m)) => (Some(m), None),
+            (Some((r, t)), None) => (
+                None,
+                Some(format!(
+                    "no reading without a questioning flag within {} s (the nearest, {} at {}, is flagged {})",
+                    self.match_within_s,
+                    r.reading.seq,
+                    fmt_time(t),
+                    r.reading.flags.names().collect::<Vec<_>>().join("|")
+                )),
+            ),
+            (None, None) => (
+                None,
+                Some(format!("no inline reading within {} s", self.match_within_s)),
+            ),
+        };
         let sample_id = self
             .sample_id
             .clone()
@@ -215,6 +267,7 @@ impl GrabSample {
             sample_id,
             serial,
             matched: matched.map(|(r, t)| (r.reading, t, r.rebased)),
+            unmatched,
             recorded,
         })
     }
@@ -788,6 +841,68 @@ pub fn write_verify(
 
 #[cfg(test)]
 mod tests {
+    /// Grab samples are paired only with readings whose moisture nothing
+    /// questions, and never across an empty spell; the time of the reading
+    /// matched is said. A minute apart: valid 0..=4, empty 5..=9, one
+    /// flagged density_missing at 15, valid 22..=26 (made-up readings;
+    /// found by review: the nearest reading with any moisture was taken).
+    #[test]
+    fn a_grab_sample_is_paired_only_with_a_reading_nothing_questions() {
+        use super::GrabSample;
+        use fringe_protocol::{Flags, Reading, Seq};
+        use fringe_store::{DeviceInfo, Source};
+        let t0 = 1_796_104_800_000i64;
+        let reading = |i: u32, flags: Flags| Reading {
+            seq: Seq {
+                boot: 1,
+                counter: i,
+            },
+            time_ms: (t0 + i64::from(i) * 60_000) as u64,
+            moisture_pct: (!flags.contains(Flags::NO_PRODUCT)).then_some(14.0),
+            flags,
+            ..Reading::default()
+        };
+        let mut rs: Vec<Reading> = (0..=4).map(|i| reading(i, Flags::empty())).collect();
+        rs.extend((5..=9).map(|i| reading(i, Flags::NO_PRODUCT)));
+        rs.push(reading(15, Flags::DENSITY_MISSING));
+        rs.extend((22..=26).map(|i| reading(i, Flags::empty())));
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = fringe_sqlite::Store::open(dir.path().join("l.db")).unwrap();
+        store
+            .ensure_device(&DeviceInfo {
+                serial: "L2".into(),
+                ..Default::default()
+            })
+            .unwrap();
+        store.insert_readings("L2", &rs, Source::Stream).unwrap();
+        let grab = |minute: i64, id: &str| GrabSample {
+            time_ms: t0 + minute * 60_000 + 20_000,
+            moisture_pct: 14.1,
+            basis: "wet".into(),
+            method: "oven".into(),
+            operator: "test".into(),
+            sample_id: Some(id.into()),
+            match_within_s: 300,
+            supersedes: None,
+        };
+        // In the empty spell (4 min 20 s from the last valid reading).
+        let g = grab(7, "G-empty").record(&mut store, None).unwrap();
+        assert!(g.matched.is_none());
+        let why = g.unmatched.unwrap();
+        assert!(why.contains("the line was empty at that time"), "{why}");
+        // At the flagged reading, the valid ones 5 min or more away.
+        let g = grab(15, "G-flag").record(&mut store, None).unwrap();
+        assert!(g.matched.is_none());
+        let why = g.unmatched.unwrap();
+        assert!(why.contains("is flagged density_missing"), "{why}");
+        // Beside valid readings: the nearest, 20 s away.
+        let g = grab(23, "G-ok").record(&mut store, None).unwrap();
+        let (r, t, _) = g.matched.expect("matched");
+        assert_eq!(r.seq.counter, 23);
+        assert_eq!(t - (t0 + 23 * 60_000 + 20_000), -20_000);
+        assert!(g.unmatched.is_none());
+    }
+
     #[test]
     fn history_says_the_kind_once_regression_cell_cell() {
         assert_eq!(super::history_what("cell", "cell"), "cell calibration");
