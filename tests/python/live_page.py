@@ -6,7 +6,10 @@ Usage: python live_page.py URL SERIAL FIRST SECOND SCREENSHOT.png
 Waits until the card of device SERIAL shows moisture FIRST (e.g. "14.37 %"),
 prints {"event": "first"} and waits (up to 60 s) for SECOND without the
 page being reloaded (a marker set in the page must survive), saves a
-screenshot and prints one JSON line with what it saw.
+screenshot and prints one JSON line with what it saw. Then it waits for a
+line on stdin (the test stops the gateway's web server and says so) and
+up to 30 s for the card to show no value, and prints what the card and the
+banner say.
 """
 
 import json
@@ -63,6 +66,12 @@ def main(url, serial, first, second, shot):
         colours = len(img.resize((192, 108)).getcolors(maxcolors=1 << 16) or [])
         print(json.dumps({"event": "second", "text": got, "marker": marker, "title": title, "cards": cards,
                           "flags": flags, "width": img.width, "height": img.height, "colours": colours}), flush=True)
+        sys.stdin.readline()
+        gone = wait_for(driver, serial, "no value", 30)
+        banner = driver.find_element(By.ID, "silent")
+        grey = len(driver.find_elements(By.CSS_SELECTOR, "section.card.none"))
+        print(json.dumps({"event": "gone", "text": gone, "banner": banner.text if banner.is_displayed() else None,
+                          "grey_cards": grey}), flush=True)
     finally:
         driver.quit()
 

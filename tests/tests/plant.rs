@@ -496,6 +496,7 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
         .arg(format!("http://{}/", web.local_addr()))
         .args(["PLT-A-0001", "14.37 % dry basis", "15.02 % dry basis"])
         .arg(&shot)
+        .stdin(std::process::Stdio::piped())
         .stdout(std::process::Stdio::piped())
         .spawn()
         .expect("start live_page.py");
@@ -508,7 +509,31 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
         Instant::now(),
     );
     let second: Value = serde_json::from_str(&lines.next().expect("second line").unwrap()).unwrap();
+    // The gateway goes away: within seconds every card is grey with no
+    // value and a banner says since when (found by review: the last values
+    // stayed on the cards, green and "in order").
+    web.stop();
+    {
+        use std::io::Write;
+        let mut stdin = child.stdin.take().expect("stdin");
+        writeln!(stdin, "stopped").expect("tell the page script");
+    }
+    let gone: Value = serde_json::from_str(&lines.next().expect("third line").unwrap()).unwrap();
     assert!(child.wait().unwrap().success());
+    assert_eq!(gone["event"], "gone", "{gone}");
+    assert!(
+        gone["text"]
+            .as_str()
+            .is_some_and(|t| t.starts_with("no value: the gateway has not answered since")),
+        "{gone}"
+    );
+    assert_eq!(gone["grey_cards"], 3, "{gone}");
+    assert!(
+        gone["banner"]
+            .as_str()
+            .is_some_and(|t| t.contains("no value on this page is current")),
+        "{gone}"
+    );
     assert_eq!(
         second["marker"], "same page",
         "the page was reloaded: {second}"
@@ -527,7 +552,6 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
     if let Some(out) = std::env::var_os("FRINGE_SCREENSHOT") {
         std::fs::copy(&shot, out).expect("copy screenshot");
     }
-    web.stop();
 }
 
 /// Sparkplug B from `fringe gateway` itself: a site file with an `[mqtt]`

@@ -124,17 +124,44 @@ function card(u) {
   return c;
 }
 
+// When the gateway last answered (ms), for what the page says when it
+// stops answering.
+let lastAnswer = null;
+
+// The gateway does not answer: the values on the page are no longer live.
+// Every card turns grey with no value (a control-room screen must not go on
+// showing the last values as current), and a banner says since when.
+function silent(why) {
+  const since = lastAnswer === null ? "the page was opened" : localDateTime(lastAnswer);
+  const text = "The gateway has not answered since " + since + " (" + why + "): no value on this page is current.";
+  const banner = document.getElementById("silent");
+  banner.textContent = text;
+  banner.hidden = false;
+  for (const c of document.querySelectorAll("section.card")) {
+    c.classList.remove("bad", "warn");
+    c.classList.add("none");
+    const v = c.querySelector('[data-role="moisture"]');
+    if (v) v.textContent = "no value: the gateway has not answered since " + since;
+  }
+  document.getElementById("updated").textContent = text + " Retrying.";
+}
+
 async function refresh() {
   try {
-    const r = await fetch("/api/site", { cache: "no-store" });
+    // A gateway that hangs without closing the connection counts as not
+    // answering after 5 s.
+    const r = await fetch("/api/site", { cache: "no-store", signal: AbortSignal.timeout(5000) });
+    if (!r.ok) throw new Error("HTTP " + r.status);
     const site = await r.json();
+    lastAnswer = Date.now();
+    document.getElementById("silent").hidden = true;
     document.getElementById("site").textContent = site.site;
     document.title = site.site + ": live moisture";
     const main = document.getElementById("units");
     main.replaceChildren(...(site.units.length ? site.units.map(card) : [el("p", "note", "No devices in this site.")]));
     document.getElementById("updated").textContent = "Updated " + new Date().toLocaleTimeString() + ".";
   } catch (e) {
-    document.getElementById("updated").textContent = "The gateway does not answer (" + e + "); retrying.";
+    silent(e.name === "TimeoutError" ? "no answer within 5 s" : String(e.message || e));
   }
 }
 
