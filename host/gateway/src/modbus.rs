@@ -22,7 +22,7 @@ use std::future;
 use std::io;
 use std::net::{IpAddr, SocketAddr};
 use std::sync::Arc;
-use std::time::Instant;
+use std::time::{Duration, Instant};
 
 use fringe_registers::{map, read_input_registers, with_word_order, Exception, WordOrder};
 use tokio::net::TcpListener;
@@ -336,10 +336,12 @@ impl ModbusServer {
     /// # Errors
     /// As [`ModbusServer::start`].
     pub fn start_in(addr: SocketAddr, table: Arc<LiveTable>, order: WordOrder) -> io::Result<Self> {
-        Self::start_with(addr, table, order, None)
+        Self::start_with(addr, table, order, None, None)
     }
 
-    /// As [`ModbusServer::start_in`], taking the densities of `density`.
+    /// As [`ModbusServer::start_in`], taking the densities of `density`;
+    /// `said` is told, in words, when accepting a connection fails (the
+    /// server listens again a second later).
     ///
     /// # Errors
     /// As [`ModbusServer::start`].
@@ -348,6 +350,7 @@ impl ModbusServer {
         table: Arc<LiveTable>,
         order: WordOrder,
         density: Option<DensityWrites>,
+        said: Option<Arc<dyn Fn(String) + Send + Sync>>,
     ) -> io::Result<Self> {
         let rt = tokio::runtime::Builder::new_current_thread()
             .enable_all()
@@ -360,9 +363,19 @@ impl ModbusServer {
             .spawn(move || {
                 rt.block_on(async move {
                     let server = Server::new(listener);
-                    let on_connected = |stream, socket_addr| {
+                    let on_connected = |stream: tokio::net::TcpStream, socket_addr| {
                         let table = Arc::clone(&table);
                         let density = density.clone();
+                        // A client that went away without closing (a PLC
+                        // power-cycled, a cable pulled) is found by TCP
+                        // keepalive within about 2 minutes and its
+                        // connection closed: it held a file descriptor and
+                        // a task for good.
+                        let keepalive = socket2::TcpKeepalive::new()
+                            .with_time(Duration::from_secs(60))
+                            .with_interval(Duration::from_secs(10))
+                            .with_retries(6);
+                        let _ = socket2::SockRef::from(&stream).set_tcp_keepalive(&keepalive);
                         async move {
                             accept_tcp_connection(stream, socket_addr, move |peer: SocketAddr| {
                                 Ok(Some(Service {
@@ -376,12 +389,36 @@ impl ModbusServer {
                     };
                     // A broken client connection ends only that connection.
                     let on_process_error = |_err: io::Error| {};
-                    let stop = async move {
+                    let mut stop = std::pin::pin!(async move {
                         let _ = rx.await;
-                    };
-                    let _ = server
-                        .serve_until(&on_connected, on_process_error, stop)
-                        .await;
+                    });
+                    // A failed accept (out of file descriptors, a
+                    // connection aborted before it was taken) ended the
+                    // server for good, silently, and every PLC lost every
+                    // unit (found by review): it is said and listening goes
+                    // on a second later. (The connections open then are
+                    // closed with it; their clients connect again.)
+                    loop {
+                        tokio::select! {
+                            res = server.serve(&on_connected, on_process_error) => {
+                                match res {
+                                    Ok(()) => break,
+                                    Err(e) => {
+                                        if let Some(said) = &said {
+                                            said(format!(
+                                                "Modbus TCP on {addr}: accepting a connection failed ({e}); listening again in 1 s"
+                                            ));
+                                        }
+                                        tokio::select! {
+                                            () = tokio::time::sleep(Duration::from_secs(1)) => {}
+                                            () = &mut stop => break,
+                                        }
+                                    }
+                                }
+                            }
+                            () = &mut stop => break,
+                        }
+                    }
                 });
             })?;
         Ok(Self {

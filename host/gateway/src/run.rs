@@ -458,6 +458,17 @@ impl Gateway {
                     Arc::clone(&table),
                     site.modbus_word_order,
                     density_writes,
+                    Some({
+                        let tell = Arc::clone(&tell);
+                        Arc::new(move |text: String| {
+                            tell(Notice {
+                                unit: 0,
+                                serial: None,
+                                level: Level::Error,
+                                text,
+                            })
+                        })
+                    }),
                 )
                 .map_err(|source| GatewayError::Modbus { addr, source })?,
             ),
