@@ -1337,6 +1337,39 @@ fn a_site_of_300_devices_is_born_at_each_session() {
             .count()
     };
     collector.wait("300 DBIRTHs", |m| dbirths(m) >= 300);
+    // A reading read back from a device's log goes out historical, one
+    // streamed as it was taken does not (found by review: both went out
+    // as current data).
+    publisher
+        .logged_reading(
+            "PLT-B-0001",
+            &reading(1, 7, Some(12.5), Flags::empty()),
+            None,
+        )
+        .unwrap();
+    publisher
+        .reading(
+            "PLT-B-0002",
+            &reading(1, 8, Some(12.6), Flags::empty()),
+            None,
+        )
+        .unwrap();
+    let ddata = |m: &[Value], d: &str| {
+        m.iter()
+            .find(|m| m["topic"] == format!("spBv1.0/plant-b/DDATA/gw-300/{d}"))
+            .cloned()
+    };
+    collector.wait("the two readings", |m| {
+        ddata(m, "PLT-B-0001").is_some() && ddata(m, "PLT-B-0002").is_some()
+    });
+    let msgs = collector.messages();
+    let logged = ddata(&msgs, "PLT-B-0001").unwrap();
+    assert_eq!(logged["metrics"]["counter"]["historical"], true, "{logged}");
+    let streamed = ddata(&msgs, "PLT-B-0002").unwrap();
+    assert_ne!(
+        streamed["metrics"]["counter"]["historical"], true,
+        "{streamed}"
+    );
     broker.stop();
     fringe_tests::poll_until(
         fringe_tests::DEADLINE,

@@ -163,6 +163,24 @@ impl Publisher {
         })
     }
 
+    /// Buffers a reading of `device` read back from its log (a gap filled,
+    /// a catch-up): published as historical (Sparkplug), `"from_log":
+    /// true` (plain JSON).
+    ///
+    /// # Errors
+    /// As [`Publisher::reading`].
+    pub fn logged_reading(
+        &self,
+        device: &str,
+        r: &Reading,
+        basis: Option<&str>,
+    ) -> Result<(), OutboxError> {
+        self.push(&Item::Reading {
+            device: device.to_string(),
+            json: reading_body_of(r, basis, true),
+        })
+    }
+
     /// Buffers a drift alarm of `device`.
     ///
     /// # Errors
@@ -556,12 +574,16 @@ impl Worker {
                 }
                 let seq = s.next_seq();
                 let payload = match &row.item {
-                    Item::Reading { json, .. } => match buffered_from_body(json) {
-                        Ok((r, basis)) => sparkplug::device_data(
+                    // A reading read back from the device's log (a gap, a
+                    // catch-up after a restart) is historical too: it went
+                    // out as current data, and SCADA took 30-minute-old
+                    // moisture for the present (found by review).
+                    Item::Reading { json, .. } => match buffered_parts(json) {
+                        Ok((r, basis, from_log)) => sparkplug::device_data(
                             &r,
                             basis.as_deref(),
                             r.time_ms,
-                            historical,
+                            historical || from_log,
                             seq,
                             now_ms(),
                         ),
@@ -717,6 +739,10 @@ struct BufferedReading {
     /// buffered before it was added).
     #[serde(default)]
     moisture_basis: Option<String>,
+    /// Read back from the device's log (a gap or a catch-up), not streamed
+    /// as it was taken: published as historical. Absent when false.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    from_log: bool,
 }
 
 #[derive(serde::Serialize, serde::Deserialize)]
@@ -733,6 +759,12 @@ fn finite(x: f32) -> Option<f32> {
 
 /// The buffer's text of `r` ([`BufferedReading`]), its moisture on `basis`.
 pub fn reading_body(r: &Reading, basis: Option<&str>) -> String {
+    reading_body_of(r, basis, false)
+}
+
+/// [`reading_body`] of a reading streamed (`from_log` false) or read back
+/// from the device's log (true: `"from_log": true` in the text).
+pub fn reading_body_of(r: &Reading, basis: Option<&str>, from_log: bool) -> String {
     let ch = |c: &fringe_protocol::ChannelValue| BufferedChannel {
         g_s: finite(c.g_s),
         b_s: finite(c.b_s),
@@ -750,6 +782,7 @@ pub fn reading_body(r: &Reading, basis: Option<&str>) -> String {
         cell_cal: r.cell_cal,
         product_cal: r.product_cal,
         moisture_basis: basis.map(str::to_string),
+        from_log,
     };
     serde_json::to_string(&b).unwrap_or_default()
 }
@@ -768,6 +801,15 @@ pub fn reading_from_body(text: &str) -> Result<Reading, serde_json::Error> {
 /// # Errors
 /// Text that is not such a reading.
 pub fn buffered_from_body(text: &str) -> Result<(Reading, Option<String>), serde_json::Error> {
+    buffered_parts(text).map(|(r, basis, _)| (r, basis))
+}
+
+/// [`buffered_from_body`] and whether the reading was read back from the
+/// device's log.
+///
+/// # Errors
+/// Text that is not such a reading.
+pub fn buffered_parts(text: &str) -> Result<(Reading, Option<String>, bool), serde_json::Error> {
     let b: BufferedReading = serde_json::from_str(text)?;
     let nan = |x: Option<f32>| x.unwrap_or(f32::NAN);
     let ch = |c: &BufferedChannel| fringe_protocol::ChannelValue {
@@ -789,6 +831,7 @@ pub fn buffered_from_body(text: &str) -> Result<(Reading, Option<String>), serde
             product_cal: b.product_cal,
         },
         b.moisture_basis,
+        b.from_log,
     ))
 }
 

@@ -1304,7 +1304,7 @@ impl<S: RecordStore> Worker<S> {
                     .get(&r.product_cal)
                     .map(|b| b.word());
                 if let (Some(p), Some(s)) = (&self.publisher, serial) {
-                    if let Err(e) = p.reading(s, r, basis) {
+                    if let Err(e) = p.logged_reading(s, r, basis) {
                         self.say(Some(s), Level::Error, format!("MQTT buffer: {e}"));
                     }
                 }
