@@ -161,3 +161,36 @@ fn killed_monitor_loses_nothing_over_twenty_kills() {
     let store = fringe_host::store::Store::open_read_only(&db).unwrap();
     assert!(store.verify_chain().unwrap().ok(), "{ctx}");
 }
+
+/// `fringe monitor --json` through a disconnect: the readings read back
+/// from the device log for the gap are written too, marked `from_log`, so
+/// that there is one reading line per reading streamed or backfilled
+/// (found by review: the backfilled ones were stored but never written,
+/// nor checked against the alarm band).
+#[test]
+fn monitor_writes_the_readings_it_reads_back_from_the_log() {
+    let seed = seed(33);
+    let mut spec = ScenarioSpec::clean("HGM-L2-0107", seed);
+    spec.disconnects = vec![(15.0, 1.0)];
+    let sim = Sim::start(&spec);
+    let db = sim.path("line2.db");
+    let o = run(&mut sim.monitor(&db, &["--count", "300", "--json"]), LIMIT);
+    assert_eq!(o.code, 0, "{}\nsim log:\n{}", o.stderr, sim.log());
+    let lines: Vec<serde_json::Value> = o
+        .stdout
+        .lines()
+        .map(|l| serde_json::from_str(l).expect("JSON line"))
+        .collect();
+    let summary = lines.last().expect("summary");
+    let readings: Vec<&serde_json::Value> =
+        lines.iter().filter(|v| v["type"] == "reading").collect();
+    let logged = readings.iter().filter(|v| v["from_log"] == true).count() as u64;
+    let backfilled = summary["backfilled"].as_u64().unwrap();
+    assert!(backfilled > 0, "the disconnect left no gap: {summary}");
+    assert_eq!(logged, backfilled, "{summary}");
+    assert_eq!(
+        readings.len() as u64,
+        summary["streamed"].as_u64().unwrap() + backfilled,
+        "{summary}"
+    );
+}

@@ -221,6 +221,22 @@ impl View {
                     self.show(r);
                 }
             }
+            // Read back from the device log (taken while no monitor ran, or
+            // in a gap): written as a streamed one is, marked, and checked
+            // against the alarm band, which it was not (found by review:
+            // a HIGH during an outage was never said).
+            Note::Logged(r) => {
+                let alarms = self.alarms_of(r);
+                if !alarms.is_empty() && self.style.tty && !self.quiet {
+                    self.notice(&format!(
+                        "reading {} read back from the device log (taken {}) crossed {}",
+                        r.seq,
+                        reading_time(r),
+                        alarms.join(", ")
+                    ));
+                }
+                self.show_as(r, true);
+            }
             Note::Reconnecting(why) => self.notice(&format!("{why}: reconnecting")),
             Note::Reconnected => self.notice("reconnected"),
             Note::CalibrationObserved(o) => self.notice(&o.to_string()),
@@ -234,12 +250,27 @@ impl View {
     /// Writes reading `r` to stdout (a JSON line, or a plain one where
     /// stdout is not a terminal).
     fn show(&mut self, r: &Reading) {
+        self.show_as(r, false);
+    }
+
+    /// [`View::show`] of a streamed reading, or one read back from the
+    /// device log (`from_log`: `"from_log": true` in JSON, ` from=log` at
+    /// the end of the plain line).
+    fn show_as(&mut self, r: &Reading, from_log: bool) {
         let written = if self.broken.is_some() {
             Ok(())
         } else if self.json_lines {
-            out::json(&self.reading_json(r))
+            let mut v = self.reading_json(r);
+            if from_log {
+                v["from_log"] = serde_json::json!(true);
+            }
+            out::json(&v)
         } else if !self.style.tty && !self.quiet {
-            out::line(&self.plain_line(r))
+            let mut line = self.plain_line(r);
+            if from_log {
+                line.push_str(" from=log");
+            }
+            out::line(&line)
         } else {
             Ok(())
         };
