@@ -141,6 +141,9 @@ pub struct Runner {
     job: Job,
     step: Step,
     avg: Averager,
+    /// The front end failed (setting up or acquiring) in the frequency
+    /// under way: its result is given no value.
+    failed: bool,
     raw: Raw,
     sensor: [i16; RECORD_LEN],
     reference: [i16; RECORD_LEN],
@@ -165,6 +168,7 @@ impl Runner {
             },
             step: Step::Done,
             avg: Averager::new(),
+            failed: false,
             raw: Raw {
                 electrodes: [ZERO_AVG; N_FREQ],
                 reference: None,
@@ -234,6 +238,7 @@ impl Runner {
                 let ok =
                     fe.select_input(input).is_ok() && fe.set_excitation(f, cfg.amplitude_v).is_ok();
                 self.raw.frontend_error |= !ok;
+                self.failed = !ok;
                 self.avg.clear();
                 self.step = Step::Record { pass, freq, n: 0 };
             }
@@ -253,13 +258,25 @@ impl Runner {
                         FrontendError::Bus | FrontendError::NotLocked | FrontendError::Unsupported,
                     ) => {
                         self.raw.frontend_error = true;
+                        self.failed = true;
                     }
                 }
                 let n = n + 1;
                 if n < records_for(pass) {
                     self.step = Step::Record { pass, freq, n };
                 } else {
-                    let done = self.avg.finish();
+                    let mut done = self.avg.finish();
+                    // A frequency whose set-up or a record failed has no
+                    // value: a failed excitation write leaves the
+                    // synthesiser on the other frequency, whose clean
+                    // records were taken for this one (a wrong moisture, or
+                    // a misleading out-of-range; found by review). The
+                    // reading then has no moisture (low SNR, no valid input).
+                    if self.failed {
+                        done.ratio = C32::new(f32::NAN, f32::NAN);
+                        done.ratio_se = f32::NAN;
+                        done.kept = 0;
+                    }
                     if pass == PASS_ELECTRODES {
                         if let Some(slot) = self.raw.electrodes.get_mut(usize::from(freq)) {
                             *slot = done;

@@ -102,6 +102,9 @@ pub struct Scenario {
     /// The converter never finishes a record ([`FrontendError::NotReady`]):
     /// a stalled front end.
     pub stalled: bool,
+    /// Setting the excitation to this frequency (Hz) fails on the bus and
+    /// leaves the synthesiser where it was (0: never).
+    pub excitation_fault_hz: f32,
 }
 
 impl Default for Scenario {
@@ -116,6 +119,7 @@ impl Default for Scenario {
             chain_drift_pct_per_h: 0.0,
             reference_drift_pct_per_h: 0.0,
             stalled: false,
+            excitation_fault_hz: 0.0,
         }
     }
 }
@@ -312,6 +316,9 @@ impl Frontend for SimFrontend {
             || !(0.0..=SIM_MAX_AMPLITUDE_V).contains(&amplitude_v)
         {
             return Err(FrontendError::Unsupported);
+        }
+        if freq_hz == self.scenario.excitation_fault_hz {
+            return Err(FrontendError::Bus);
         }
         self.freq_hz = freq_hz;
         self.amplitude_v = amplitude_v;
