@@ -29,6 +29,21 @@ pub enum LineError {
         /// The serial that answered.
         now: String,
     },
+    /// The device numbers its readings from below what the store already
+    /// holds of its serial: its log was erased (a new board, a wiped
+    /// flash) or another unit carries the serial. Its new readings would
+    /// be taken for stored ones and dropped.
+    #[error(
+        "{serial} numbers its next reading {device_next}, but this database already holds readings of {serial} up to {stored}: the device's log was erased (a new board, a wiped flash) or another unit carries this serial, and its new readings would be taken for ones already stored and dropped; nothing stored: use another database for it (or check the serial)"
+    )]
+    SequenceBehind {
+        /// The serial.
+        serial: String,
+        /// The highest sequence stored.
+        stored: fringe_protocol::Seq,
+        /// The device's next sequence.
+        device_next: fringe_protocol::Seq,
+    },
 }
 
 impl LineError {

@@ -289,6 +289,7 @@ impl Session {
     ) -> Result<Self, LineError> {
         let id = identity(&link)?;
         let serial = register(store, &id)?;
+        sequence_ahead(&mut link, store, &serial)?;
         clock(&mut link, opts.key.as_ref(), ctx)?;
         observe(&mut link, store, &serial, ctx)?;
         let period_ms = if id.capabilities.contains(Capabilities::SETTINGS) {
@@ -719,6 +720,32 @@ pub struct PullSummary {
     pub elapsed_ms: u64,
 }
 
+/// The device's next reading lies past every reading the store holds of
+/// its serial (found by review: a device whose log was erased numbered its
+/// readings from the start again, and every one the store already had a
+/// number for was dropped as already stored, silently).
+///
+/// # Errors
+/// [`LineError::SequenceBehind`]; link and store errors.
+fn sequence_ahead(
+    link: &mut Link,
+    store: &(impl RecordStore + ?Sized),
+    serial: &str,
+) -> Result<(), LineError> {
+    let Some(stored) = store.last_seq(serial)? else {
+        return Ok(());
+    };
+    let device_next = link.status()?.next_seq;
+    if device_next <= stored {
+        return Err(LineError::SequenceBehind {
+            serial: serial.to_string(),
+            stored,
+            device_next,
+        });
+    }
+    Ok(())
+}
+
 /// Stores every reading the device log holds that the store lacks (before,
 /// between and after what it holds, up to the reading the device was about
 /// to take when the pull began), and the events after the last stored
@@ -738,6 +765,7 @@ pub fn pull(
     let t0 = (ctx.now)();
     let id = identity(link)?;
     let serial = register(store, &id)?;
+    sequence_ahead(link, store, &serial)?;
     let clock = clock(link, key, ctx)?;
     observe(link, store, &serial, ctx)?;
     let status = link.status()?;

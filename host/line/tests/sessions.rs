@@ -433,3 +433,72 @@ fn two_densities_in_the_same_tenth_of_a_second_are_both_taken() {
     let mut l = link(&sim, "sim");
     fringe_line::set_density(&mut l, &key, 731.0, 60_000).expect("second density");
 }
+
+/// A device that numbers its readings from below what the store holds of
+/// its serial (its log erased: a new board, a wiped flash; or another unit
+/// under the serial) is refused by name with both numbers, for a session
+/// and a pull; nothing is stored. (Found by review: every new reading the
+/// store had a number for was dropped as already stored, silently.)
+#[test]
+fn a_device_numbering_below_the_store_is_refused_by_name() {
+    let serial = "HGM-L2-0106";
+    let mut store = Store::open_in_memory().expect("store");
+    // An earlier life of the serial: boots 1 to 3, up to (3, 99).
+    {
+        let old = device(serial, 6);
+        let mut l = link(&old, "sim");
+        let id = l.identity().cloned().expect("identity");
+        fringe_line::register(&mut store, &id).expect("register");
+        let rs: Vec<fringe_protocol::Reading> = (0..100)
+            .map(|counter| fringe_protocol::Reading {
+                seq: fringe_protocol::Seq { boot: 3, counter },
+                time_ms: 1_796_104_800_000 + u64::from(counter) * 1000,
+                ..Default::default()
+            })
+            .collect();
+        store
+            .insert_readings(serial, &rs, Source::Stream)
+            .expect("insert");
+        let _ = l.status();
+    }
+    // The same serial on a blank flash: boot 1.
+    let sim = device(serial, 7);
+    sim.lock().run_for(5_000);
+    let stop = AtomicBool::new(false);
+    let wall = || 1_796_104_800_000i64;
+    let now = Instant::now;
+    let mut tell = |_: Note<'_>| {};
+    let mut ctx = Ctx {
+        stop: &stop,
+        wall_ms: &wall,
+        now: &now,
+        tell: &mut tell,
+    };
+    let before = store.readings(serial).expect("readings").len();
+    let Err(e) = Session::open(
+        link(&sim, "sim"),
+        &mut store,
+        SessionOptions::default(),
+        &mut ctx,
+    ) else {
+        panic!("not refused")
+    };
+    let said = e.to_string();
+    assert!(
+        said.contains("HGM-L2-0106 numbers its next reading 1.")
+            && said.contains("up to 3.99")
+            && said.contains("use another database"),
+        "{said}"
+    );
+    let Err(e) = fringe_line::pull(
+        &mut link(&sim, "sim"),
+        &mut store,
+        None,
+        &mut ctx,
+        &mut |_, _| {},
+    ) else {
+        panic!("not refused")
+    };
+    assert!(e.to_string().contains("numbers its next reading"), "{e}");
+    assert_eq!(store.readings(serial).expect("readings").len(), before);
+}
