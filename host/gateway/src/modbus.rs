@@ -776,6 +776,32 @@ mod tests {
         assert!(!t.snapshot(1, t0).unwrap().connected);
     }
 
+    /// A device measuring every 30 s with the site's 10 s stale limit: its
+    /// readings go stale after twice its interval, not between every two
+    /// readings; a device measuring every second keeps the site's limit.
+    #[test]
+    fn a_slow_device_is_not_stale_between_its_readings() {
+        let t = LiveTable::new(Duration::from_secs(10));
+        t.register(1, "SLOW");
+        t.register(2, "FAST");
+        assert_eq!(
+            t.set_interval(1, Duration::from_secs(30)),
+            Duration::from_secs(60)
+        );
+        assert_eq!(
+            t.set_interval(2, Duration::from_secs(1)),
+            Duration::from_secs(10)
+        );
+        let t0 = Instant::now();
+        t.update(1, &reading(1, 12.0), t0);
+        t.update(2, &reading(1, 12.0), t0);
+        let at = |u: u8, s: u64| t.snapshot(u, t0 + Duration::from_secs(s)).unwrap().stale;
+        assert!(!at(1, 29));
+        assert!(!at(1, 59));
+        assert!(at(1, 61));
+        assert!(at(2, 11));
+    }
+
     /// A device replaced on a unit's line (boot 57 there, boot 2 on the
     /// new one): the unit serves the new device's readings, not the old
     /// one's frozen value; the same device registered again keeps its own.

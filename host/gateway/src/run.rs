@@ -828,6 +828,20 @@ impl<S: RecordStore> Worker<S> {
         *serial_cell.lock().unwrap_or_else(|e| e.into_inner()) = Some(serial.clone());
         *serial_out = Some(serial.clone());
         self.table.register(unit, &serial);
+        let interval = Duration::from_millis(u64::from(session.period_ms()));
+        let limit = self.table.set_interval(unit, interval);
+        if limit > self.table.stale_after() {
+            self.say(
+                Some(&serial),
+                Level::Info,
+                format!(
+                    "measures every {} s: its readings are served stale after {} s (twice its interval), not the site's stale_after_s {}",
+                    interval.as_secs_f64(),
+                    limit.as_secs_f64(),
+                    self.table.stale_after().as_secs_f64()
+                ),
+            );
+        }
         self.update(|s| s.serial = Some(serial.clone()));
         let mut feeder = match (&self.run.density, self.run.spec.density, self.run.key) {
             (Some(inbox), Some(feed), Some(key)) => {

@@ -326,6 +326,12 @@ impl Session {
         &self.serial
     }
 
+    /// The device's measurement interval (its setting; the stream period
+    /// asked of a device without settings), ms.
+    pub fn period_ms(&self) -> u32 {
+        self.period_ms
+    }
+
     /// The link (its port name and counters).
     pub fn link(&self) -> &Link {
         &self.link
