@@ -126,6 +126,7 @@ impl Publisher {
                     config,
                     outbox: worker_box,
                     devices: devices.into_iter().collect(),
+                    lost: BTreeSet::new(),
                     stop: s,
                     stats: st,
                 }
@@ -240,6 +241,9 @@ struct Worker {
     config: MqttConfig,
     outbox: Outbox,
     devices: BTreeSet<String>,
+    /// Devices whose link was lost (a DeviceLost row) and no reading has
+    /// come from since: not born again at a new session or a Rebirth.
+    lost: BTreeSet<String>,
     stop: Arc<AtomicBool>,
     stats: Arc<Mutex<MqttStats>>,
 }
@@ -493,8 +497,13 @@ impl Worker {
             sparkplug::node_birth(bd_seq, t).to_bytes(),
             None,
         )?;
+        // Not the devices whose link is down (they were declared dead; a
+        // birth would show them online until their link came back; found
+        // by review): each is born again with its next reading.
         for d in self.devices.clone() {
-            self.device_birth(s, &group, &edge_node, &d)?;
+            if !self.lost.contains(&d) {
+                self.device_birth(s, &group, &edge_node, &d)?;
+            }
         }
         Ok(())
     }
@@ -557,6 +566,7 @@ impl Worker {
                     | Item::DeviceLost { device } => device.clone(),
                 };
                 if let Item::DeviceLost { .. } = row.item {
+                    self.lost.insert(device.clone());
                     if !s.born.remove(&device) {
                         // Nothing to declare dead in this session.
                         return self.outbox.done(row.id).map_err(|e| e.to_string());
@@ -568,6 +578,9 @@ impl Worker {
                         p.to_bytes(),
                         Some(row.id),
                     );
+                }
+                if matches!(row.item, Item::Reading { .. }) {
+                    self.lost.remove(&device);
                 }
                 if !s.born.contains(&device) {
                     self.device_birth(s, &group, &edge_node, &device)?;
