@@ -522,6 +522,16 @@ impl Session {
         match self.link.next_frame(wait)? {
             Some(DeviceFrame::Reading(r)) => self.on_reading(r, store, ctx)?,
             Some(DeviceFrame::Event(e)) => {
+                // An event after a gap in the numbers (a frame lost on the
+                // line, or one the device logs without sending): those in
+                // between are read from the device's event log first. A
+                // later catch-up reads only after the highest stored, so a
+                // gap left here was never filled (found by review).
+                if let Some(last) = store.last_event(&self.serial)? {
+                    if e.number > last.saturating_add(1) {
+                        pull_events(&mut self.link, store, &self.serial, last + 1)?;
+                    }
+                }
                 store.insert_events(&self.serial, &[e])?;
             }
             _ => {}
