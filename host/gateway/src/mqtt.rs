@@ -86,6 +86,9 @@ pub struct MqttStats {
     pub last_error: Option<String>,
     /// Buffered rows this version could not read, dropped (none expected).
     pub dropped: u64,
+    /// The oldest buffered rows dropped to keep the buffer within its
+    /// limit (a broker away for weeks).
+    pub overflowed: u64,
 }
 
 /// The running publisher.
@@ -143,7 +146,17 @@ impl Publisher {
 
     fn push(&self, item: &Item) -> Result<(), OutboxError> {
         let o = self.outbox.lock().unwrap_or_else(|e| e.into_inner());
-        o.push(item, now_ms()).map(|_| ())
+        let (_, dropped) = o.push_counted(item, now_ms())?;
+        if dropped > 0 {
+            let mut s = self.stats.lock().unwrap_or_else(|e| e.into_inner());
+            s.overflowed += dropped;
+            s.last_error = Some(format!(
+                "the MQTT buffer is full ({} rows): its {dropped} oldest dropped, {} in all (the store keeps every reading)",
+                crate::outbox::DEFAULT_MAX_ROWS,
+                s.overflowed
+            ));
+        }
+        Ok(())
     }
 
     /// Buffers a reading of `device` for publishing, its moisture on

@@ -66,7 +66,15 @@ fn err(what: &'static str) -> impl FnOnce(rusqlite::Error) -> OutboxError {
 #[derive(Debug)]
 pub struct Outbox {
     db: Connection,
+    max_rows: i64,
 }
+
+/// Rows the buffer keeps at most by default: about 23 days of one device
+/// reading every second, about 800 MB at 400 bytes a row. Past it the
+/// oldest rows are dropped (the store keeps every reading): a broker away
+/// for good filled the disk beside the store, and the store's commits,
+/// and with them Modbus, failed (found by review).
+pub const DEFAULT_MAX_ROWS: i64 = 2_000_000;
 
 const SCHEMA: &str = "
 PRAGMA journal_mode = WAL;
@@ -88,9 +96,41 @@ impl Outbox {
     /// # Errors
     /// When the file cannot be opened or is not a buffer of this format.
     pub fn open(path: &Path) -> Result<Self, OutboxError> {
+        Self::open_with_limit(path, DEFAULT_MAX_ROWS)
+    }
+
+    /// [`Outbox::open`] keeping at most about `max_rows` rows.
+    ///
+    /// # Errors
+    /// As [`Outbox::open`].
+    pub fn open_with_limit(path: &Path, max_rows: i64) -> Result<Self, OutboxError> {
         let db = Connection::open(path).map_err(err("open"))?;
         db.execute_batch(SCHEMA).map_err(err("create"))?;
-        Ok(Self { db })
+        Ok(Self {
+            db,
+            max_rows: max_rows.max(1),
+        })
+    }
+
+    /// Appends `item`, buffered at `now_ms`; returns its id and how many
+    /// of the oldest rows were dropped to keep the buffer within its
+    /// limit (checked every 1,000 rows, by id).
+    ///
+    /// # Errors
+    /// When the row cannot be written (disk full, read-only).
+    pub fn push_counted(&self, item: &Item, now_ms: u64) -> Result<(i64, u64), OutboxError> {
+        let id = self.push(item, now_ms)?;
+        let dropped = if id % 1000 == 0 {
+            self.db
+                .execute(
+                    "DELETE FROM outbox WHERE id <= ?1",
+                    params![id - self.max_rows],
+                )
+                .map_err(err("trim"))? as u64
+        } else {
+            0
+        };
+        Ok((id, dropped))
     }
 
     /// Appends `item`, buffered at `now_ms`.
@@ -209,6 +249,27 @@ impl Outbox {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A buffer kept to 2,000 rows while nothing is acknowledged: 10,000
+    /// pushed, at most 2,999 stay (trimmed every 1,000), the newest are
+    /// kept in order, and the dropped are counted.
+    #[test]
+    fn the_buffer_keeps_its_newest_rows_within_its_limit() {
+        let dir = tempfile::tempdir().unwrap();
+        let o = Outbox::open_with_limit(&dir.path().join("b"), 2000).unwrap();
+        let mut dropped = 0;
+        for i in 0..10_000u64 {
+            let item = Item::DeviceLost {
+                device: format!("D{i}"),
+            };
+            dropped += o.push_counted(&item, i).unwrap().1;
+        }
+        let left = o.len().unwrap();
+        assert!((2000..3000).contains(&left), "{left}");
+        assert_eq!(dropped + left, 10_000);
+        let rows = o.next(0, 1).unwrap();
+        assert_eq!(rows[0].id, 10_000 - left as i64 + 1);
+    }
 
     #[test]
     fn rows_come_back_in_order_until_acknowledged_and_survive_a_reopen() {
