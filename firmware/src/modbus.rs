@@ -265,6 +265,20 @@ pub struct Counters {
     pub exceptions: u32,
 }
 
+/// The arrival time, microseconds since boot, of a byte stamped `stamp_us`
+/// by a receive interrupt with a clock of `mask + 1` microseconds (the
+/// stamp holds the time modulo it), read at `now_us`: `now_us` less the
+/// wait. A stamp after `now_us` (the interrupt came while the board was
+/// emptying its ring, after it read the clock) is taken as now: it wrapped
+/// to almost a whole period in the past (8.4 s on the STM32G474, 16.8 s on
+/// QEMU), and the slave took the gap for silence and dropped the request
+/// (found by review).
+pub fn arrival_us(now_us: u64, stamp_us: u64, mask: u64) -> u64 {
+    let waited = now_us.wrapping_sub(stamp_us) & mask;
+    let waited = if waited > mask / 2 { 0 } else { waited };
+    now_us.saturating_sub(waited)
+}
+
 /// The Modbus RTU slave (see the module doc). About 800 bytes: keep it in
 /// a `static` or the main loop's frame, not in a deep call.
 #[derive(Debug)]
@@ -581,6 +595,25 @@ impl<W: embedded_io::Write, P: OutputPin> HalfDuplex<W, P> {
 
 #[cfg(test)]
 mod tests {
+
+    /// Arrival times from a wrapping stamp: a byte stamped 300 us before
+    /// `now` waited 300 us, also across the stamp clock's wrap; one stamped
+    /// 5 us after `now` (its interrupt came after the clock was read)
+    /// arrived now, not a whole period earlier. (Made-up times.)
+    #[test]
+    fn a_byte_stamped_after_now_arrived_now() {
+        let mask = (1u64 << 23) - 1;
+        let now = 50_000_000u64;
+        assert_eq!(arrival_us(now, (now - 300) & mask, mask), now - 300);
+        let near_wrap = (mask + 1) * 7 + 100;
+        assert_eq!(
+            arrival_us(near_wrap, (near_wrap - 300) & mask, mask),
+            near_wrap - 300
+        );
+        assert_eq!(arrival_us(now, (now + 5) & mask, mask), now);
+        assert_eq!(arrival_us(0, 0, mask), 0);
+    }
+
     use super::*;
 
     /// Frames for the tests, their CRC from the `crc` crate (CRC-16/MODBUS,

@@ -118,8 +118,9 @@ pub fn take(now_us: u64) -> Option<Rx> {
         return Some(Rx::Lost);
     }
     let e = critical_section::with(|cs| RX.borrow_ref_mut(cs).pop_front())?;
-    let waited = (now_us.wrapping_sub(u64::from(e >> 8))) & US_MASK;
-    Some(Rx::Byte(now_us.saturating_sub(waited), e as u8))
+    // (A byte stamped after `now_us` was read is taken as arrived now.)
+    let at = fringe_firmware::modbus::arrival_us(now_us, u64::from(e >> 8), US_MASK);
+    Some(Rx::Byte(at, e as u8))
 }
 
 /// Whether received bytes wait in the ring.

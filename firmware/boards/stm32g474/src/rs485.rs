@@ -90,8 +90,8 @@ pub enum Rx {
 /// Takes the oldest entry; `now_us` is the present time.
 pub fn take(now_us: u64) -> Option<Rx> {
     let e = critical_section::with(|cs| RX.borrow_ref_mut(cs).pop_front())?;
-    let waited = now_us.wrapping_sub(u64::from(e >> 9)) & US_MASK;
-    let at = now_us.saturating_sub(waited);
+    // (A byte stamped after `now_us` was read is taken as arrived now.)
+    let at = fringe_firmware::modbus::arrival_us(now_us, u64::from(e >> 9), US_MASK);
     Some(if e & ERROR != 0 {
         Rx::Error(at)
     } else {
