@@ -457,6 +457,13 @@ pub fn density(a: &crate::cli::DensityArgs, cfg: &LineConfig) -> anyhow::Result<
     }
     let key = super::optional_key(a.key_file.as_deref(), cfg)?
         .ok_or_else(|| super::missing_key("sending a density"))?;
+    // Said to a person at a terminal (a script feeding the density every
+    // few seconds would fill its log with it; `--help` says it too).
+    if std::io::IsTerminal::is_terminal(&std::io::stderr()) {
+        eprintln!(
+            "CAUTION: where the active calibration takes the density, the moisture and the 4-20 mA output follow it at once; a wrong value (g/cm3 for kg/m3) moves the value a control loop may use. Local codes and site rules come first."
+        );
+    }
     let mut link = super::connect(&a.port, cfg)?;
     let serial = link.serial_number().to_string();
     match fringe_line::set_density(&mut link, &key, kg_m3, hold_ms) {
