@@ -712,24 +712,24 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         self.subscribed
     }
 
-    /// The stale-output timeout: with no valid reading started for that
-    /// long, the loop goes to its failure level (once per episode, with an
-    /// event).
+    /// The stale-output timeout: with no valid reading for that long, and
+    /// none under way for at most [`LONGEST_READING_MS`], the loop goes to
+    /// its failure level (once per episode, with an event).
     fn check_stale(&mut self, now_ms: u64, tx: &mut dyn FnMut(&[u8])) {
-        // A reading under way counts from its start, for as long as a
-        // reading can take: one with the reference check ends well after
-        // the next one was due, and at the shortest settings (100 ms, 200
-        // ms) the loop went to its failure level every ten readings
-        // (found by review). A job stuck longer (a stalled front end)
-        // counts no more.
+        // Not while a reading is under way, for as long as a reading can
+        // take: one with the reference check ends well after the next was
+        // due (about 160 ms on the simulator, 390 ms estimated on the
+        // STM32G474), and at the shortest settings (100 ms, 200 ms) the
+        // loop went to its failure level every ten readings (found by
+        // review). A job stuck longer (a stalled front end) trips it from
+        // the last valid reading's end, as before.
         let running =
             self.runner.busy() && now_ms.saturating_sub(self.job_started_ms) <= LONGEST_READING_MS;
-        let since = if running {
-            self.last_valid_ms.max(self.job_started_ms)
-        } else {
-            self.last_valid_ms
-        };
-        let late = now_ms.saturating_sub(since) > u64::from(self.settings.stale_timeout_ms);
+        if running {
+            return;
+        }
+        let late =
+            now_ms.saturating_sub(self.last_valid_ms) > u64::from(self.settings.stale_timeout_ms);
         if !late || self.stale {
             return;
         }
@@ -1618,11 +1618,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         });
         self.last_moisture = reading.moisture_pct.filter(|m| m.is_finite());
         if self.last_moisture.is_some() {
-            // From when it was started: readings on time are an interval
-            // apart however long each takes (one with the reference check
-            // ends about 105 ms later on the simulator, and tripped the
-            // stale timeout at the shortest settings).
-            self.last_valid_ms = self.job_started_ms;
+            self.last_valid_ms = now_ms;
             self.stale = false;
         }
         self.drive_output(self.last_moisture, now_ms, tx);
