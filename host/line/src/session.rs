@@ -645,6 +645,11 @@ impl Session {
                         now: id.serial.to_string(),
                     });
                 }
+                // The same serial numbering below what is stored (a board
+                // swapped, a flash wiped while the port was away) is
+                // refused by name here too: its readings would be dropped
+                // as already stored (found by review).
+                sequence_ahead(&mut self.link, store, &self.serial)?;
                 self.summary.reconnects += 1;
                 (ctx.tell)(Note::Reconnected);
                 let key = self.key;
