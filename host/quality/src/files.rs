@@ -36,10 +36,24 @@ pub fn stage_with<'a>(
         _ => Path::new("."),
     };
     let name = path.file_name().map(|n| n.to_string_lossy().into_owned());
+    // The mode of the file it replaces, or for a new file what
+    // `std::fs::write` gives (0666 less the umask): a temporary file is
+    // created 0600, and product files and reports became readable by their
+    // owner only (found by review).
+    let existing = std::fs::metadata(path)
+        .ok()
+        .map(|m| std::os::unix::fs::PermissionsExt::mode(&m.permissions()) & 0o7777);
+    let mode = existing.unwrap_or(0o666);
     let mut tmp = tempfile::Builder::new()
         .prefix(&format!(".{}.", name.as_deref().unwrap_or("fringe")))
         .suffix(".part")
+        .permissions(std::os::unix::fs::PermissionsExt::from_mode(mode))
         .tempfile_in(dir)?;
+    // (Creation applies the umask; a replaced file's own mode is kept as it was.)
+    if existing.is_some() {
+        tmp.as_file()
+            .set_permissions(std::os::unix::fs::PermissionsExt::from_mode(mode))?;
+    }
     write(tmp.as_file_mut())?;
     tmp.as_file().sync_all()?;
     Ok(Staged { tmp, path })
@@ -110,5 +124,24 @@ mod tests {
         drop(stage(&p, b"never").unwrap());
         assert_eq!(std::fs::read_dir(d.path()).unwrap().count(), 2);
         assert_eq!(std::fs::read_to_string(&p).unwrap(), "new");
+    }
+
+    /// A file replaced keeps its mode; a new one gets what `fs::write`
+    /// gives (0666 less the umask), not the temporary file's 0600.
+    #[test]
+    fn replacing_keeps_the_mode() {
+        use std::os::unix::fs::PermissionsExt;
+        let d = tempfile::tempdir().unwrap();
+        let mode = |p: &Path| std::fs::metadata(p).unwrap().permissions().mode() & 0o777;
+        let plain = d.path().join("plain");
+        std::fs::write(&plain, "x").unwrap();
+        let new = d.path().join("new");
+        replace(&new, b"x").unwrap();
+        assert_eq!(mode(&new), mode(&plain));
+        let shared = d.path().join("shared");
+        std::fs::write(&shared, "old").unwrap();
+        std::fs::set_permissions(&shared, std::fs::Permissions::from_mode(0o664)).unwrap();
+        replace(&shared, b"new").unwrap();
+        assert_eq!(mode(&shared), 0o664);
     }
 }
