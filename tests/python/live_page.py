@@ -70,8 +70,10 @@ def main(url, serial, first, second, shot):
         gone = wait_for(driver, serial, "no value", 30)
         banner = driver.find_element(By.ID, "silent")
         grey = len(driver.find_elements(By.CSS_SELECTOR, "section.card.none"))
+        status = [e.text for e in driver.find_elements(By.CSS_SELECTOR, "ul.status li")]
+        meta = len(driver.find_elements(By.CSS_SELECTOR, "section.card .meta"))
         print(json.dumps({"event": "gone", "text": gone, "banner": banner.text if banner.is_displayed() else None,
-                          "grey_cards": grey}), flush=True)
+                          "grey_cards": grey, "status": status, "meta": meta}), flush=True)
     finally:
         driver.quit()
 

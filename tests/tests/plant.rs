@@ -528,6 +528,14 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
         "{gone}"
     );
     assert_eq!(gone["grey_cards"], 3, "{gone}");
+    // Nothing of the last answer is left to read as current.
+    assert!(
+        gone["status"]
+            .as_array()
+            .is_some_and(|s| !s.is_empty() && s.iter().all(|w| w == "gateway not answering")),
+        "{gone}"
+    );
+    assert_eq!(gone["meta"], 0, "{gone}");
     assert!(
         gone["banner"]
             .as_str()

@@ -142,6 +142,11 @@ function silent(why) {
     c.classList.add("none");
     const v = c.querySelector('[data-role="moisture"]');
     if (v) v.textContent = "no value: the gateway has not answered since " + since;
+    // Nothing of the last answer stays to be read as current: the state
+    // words ("in order"), the age, the flags and the trend go too.
+    for (const old of c.querySelectorAll(".meta, .flags, .trend, .alarms")) old.remove();
+    const st = c.querySelector("ul.status");
+    if (st) st.replaceChildren(el("li", "bad", "gateway not answering"));
   }
   document.getElementById("updated").textContent = text + " Retrying.";
 }
@@ -150,7 +155,16 @@ async function refresh() {
   try {
     // A gateway that hangs without closing the connection counts as not
     // answering after 5 s.
-    const r = await fetch("/api/site", { cache: "no-store", signal: AbortSignal.timeout(5000) });
+    // (AbortSignal.timeout where the browser has it; a timer otherwise.)
+    let signal;
+    if (typeof AbortSignal.timeout === "function") {
+      signal = AbortSignal.timeout(5000);
+    } else {
+      const c = new AbortController();
+      setTimeout(() => c.abort(new DOMException("no answer within 5 s", "TimeoutError")), 5000);
+      signal = c.signal;
+    }
+    const r = await fetch("/api/site", { cache: "no-store", signal });
     if (!r.ok) throw new Error("HTTP " + r.status);
     const site = await r.json();
     lastAnswer = Date.now();
