@@ -324,17 +324,25 @@ impl LineData {
 
     /// The product calibration record in force at the end: the latest
     /// record of the calibration the newest calibrated reading was made
-    /// with, else the latest product record (a calibration pushed without
-    /// being activated, say for tomorrow's product, is recorded but not in
-    /// force: the readings do not carry it).
+    /// with (a calibration pushed without being activated, say for
+    /// tomorrow's product, is recorded but not in force: the readings do
+    /// not carry it); none where the readings carry a calibration the
+    /// store has no record of; the latest product record where no reading
+    /// carries one.
     pub fn product_in_force(&self) -> Option<&CalRecordBody> {
-        self.in_force(CalKind::Product, |r| r.product_cal)
+        self.in_force(CalKind::Product, |r| r.product_cal).1
     }
 
-    /// The latest record of `kind` whose id the newest reading that
-    /// carries one of that kind (`id_of`) carries; else the latest of
-    /// `kind`.
-    fn in_force(&self, kind: CalKind, id_of: fn(&Reading) -> CalId) -> Option<&CalRecordBody> {
+    /// The id (8 hex digits) of the calibration of `kind` in force, and
+    /// its latest record: the id the newest reading that carries one of
+    /// that kind (`id_of`) carries, with its record if the store has one
+    /// (another record is not taken for it: found by review); the latest
+    /// record of `kind` where no reading carries one.
+    fn in_force(
+        &self,
+        kind: CalKind,
+        id_of: fn(&Reading) -> CalId,
+    ) -> (Option<String>, Option<&CalRecordBody>) {
         let carried = self
             .rows
             .iter()
@@ -342,11 +350,17 @@ impl LineData {
             .map(|r| id_of(&r.reading))
             .find(|id| *id != CalId::default())
             .map(|id| id.to_string());
-        let of_kind = || self.cals.iter().rev().filter(move |c| c.2 == kind);
-        carried
-            .and_then(|id| of_kind().find(|c| c.3.new_id == id))
-            .or_else(|| of_kind().next())
-            .map(|c| &c.3)
+        let mut of_kind = self.cals.iter().rev().filter(|c| c.2 == kind);
+        match carried {
+            Some(id) => {
+                let record = of_kind.find(|c| c.3.new_id == id).map(|c| &c.3);
+                (Some(id), record)
+            }
+            None => {
+                let record = of_kind.next().map(|c| &c.3);
+                (record.map(|b| b.new_id.clone()), record)
+            }
+        }
     }
 
     /// The wire product calibration in force, if the record carries one.
@@ -362,7 +376,7 @@ impl LineData {
     /// Every pair with an inline value where no product calibration record
     /// is in force.
     pub fn lab_chart_pairs(&self) -> ChartRows<'_, LabRow> {
-        let in_force = self.product_in_force().map(|b| b.new_id.clone());
+        let in_force = self.in_force(CalKind::Product, |r| r.product_cal).0;
         let (charted, other): (Vec<&LabRow>, Vec<&LabRow>) = self
             .lab
             .iter()
@@ -384,9 +398,7 @@ impl LineData {
     /// with each cell calibration (a new one moves every eps'); every
     /// empty reading where no cell calibration record is in force.
     pub fn empty_chart_rows(&self) -> ChartRows<'_, Row> {
-        let in_force = self
-            .in_force(CalKind::Cell, |r| r.cell_cal)
-            .map(|b| b.new_id.clone());
+        let in_force = self.in_force(CalKind::Cell, |r| r.cell_cal).0;
         let id = in_force
             .as_deref()
             .and_then(|h| u32::from_str_radix(h, 16).ok())
@@ -954,9 +966,15 @@ mod tests {
         // Once the readings carry barley, it is in force.
         data.rows.push(row(barley));
         assert_eq!(sep(&data), Some(0.3));
-        // Readings of a calibration with no record: the latest record.
+        // Readings of a calibration with no record: no record is in force
+        // (not the latest of another), and the lab chart charts the pairs
+        // of the calibration the readings carry.
         data.rows.push(row(CalId([0xcc; 4])));
-        assert_eq!(sep(&data), Some(0.3));
+        assert_eq!(sep(&data), None);
+        assert_eq!(
+            data.lab_chart_pairs().calibration.as_deref(),
+            Some("cccccccc")
+        );
     }
 
     /// A new cell calibration moves every eps': the empty-line chart
@@ -1005,12 +1023,14 @@ mod tests {
                 .find(|t| t.monitor.quantity == Quantity::EmptyBaseline)
                 .expect("the empty-line chart")
         };
-        // The readings of the new calibration charted against the old target alarm.
-        let all = LineData {
-            cals: vec![],
-            ..data.clone()
-        };
+        // All empty readings charted together, the new ones against the
+        // old target, alarm (what the chart did before).
+        let mut all = data.clone();
+        all.rows.iter_mut().for_each(|r| r.reading.cell_cal = old);
         assert!(!chart(&all).alarms.is_empty());
+        // Before the new calibration's record is stored, the readings carry
+        // it: its empty readings are charted, not the old record's.
+        assert_eq!(data.empty_chart_rows().charted.len(), 20);
         data.cals.push(cell(new));
         let t = chart(&data);
         assert_eq!(t.obs.len(), 20);
