@@ -828,7 +828,7 @@ impl<S: RecordStore> Worker<S> {
         *serial_cell.lock().unwrap_or_else(|e| e.into_inner()) = Some(serial.clone());
         *serial_out = Some(serial.clone());
         self.table.register(unit, &serial);
-        let interval = Duration::from_millis(u64::from(session.period_ms()));
+        let mut interval = Duration::from_millis(u64::from(session.period_ms()));
         let limit = self.table.set_interval(unit, interval);
         if limit > self.table.stale_after() {
             self.say(
@@ -877,6 +877,13 @@ impl<S: RecordStore> Worker<S> {
                 let polled = session.poll(&mut store, &mut ctx)?;
                 if polled.stopped {
                     break;
+                }
+                // An interval changed while the link was away (read again
+                // at a reconnect): the unit's stale limit follows it.
+                let now_interval = Duration::from_millis(u64::from(session.period_ms()));
+                if now_interval != interval {
+                    interval = now_interval;
+                    self.table.set_interval(unit, interval);
                 }
                 self.ask_basis(&mut session, &serial);
                 let sum = session.summary();

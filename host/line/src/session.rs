@@ -650,6 +650,15 @@ impl Session {
                 // refused by name here too: its readings would be dropped
                 // as already stored (found by review).
                 sequence_ahead(&mut self.link, store, &self.serial)?;
+                // Its interval may have been changed while the port was
+                // away (a laptop on the line): read again.
+                if self
+                    .link
+                    .identity()
+                    .is_some_and(|i| i.capabilities.contains(Capabilities::SETTINGS))
+                {
+                    self.period_ms = self.link.settings()?.interval_ms;
+                }
                 self.summary.reconnects += 1;
                 (ctx.tell)(Note::Reconnected);
                 let key = self.key;
