@@ -282,6 +282,12 @@ fn self_test_report(
 /// # Errors
 /// Port or link errors; [`crate::exit::ProblemsFound`] when a check fails.
 fn self_test(a: &crate::cli::SelfTestArgs, cfg: &LineConfig) -> anyhow::Result<()> {
+    // Said to a person at a terminal (`--help` says it too).
+    if std::io::IsTerminal::is_terminal(&std::io::stderr()) {
+        eprintln!(
+            "CAUTION: the self-test takes an ordinary reading: the 4-20 mA output follows it, and a failing measurement sends it to its failure level at once; on a running line tell the control room first."
+        );
+    }
     let mut link = super::connect(&a.port, cfg)?;
     let serial = link.serial_number().to_string();
     // The reference is compared with the cell calibration's value where it
