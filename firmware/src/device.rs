@@ -1875,7 +1875,15 @@ impl Stored {
             .filter(|c| check_cell(c, &config.measure.freqs_hz).is_ok());
         // The settings; a device that only has the 1.0 output configuration
         // keeps its span and failure level.
-        let settings = match storage.get::<Settings>(key::SETTINGS)? {
+        let stored_settings = storage.get::<Settings>(key::SETTINGS)?;
+        // Stored settings this firmware refuses (a firmware change) are
+        // replaced by the defaults: logged as a settings change at boot,
+        // from the stored ones' content id (found by review: silently).
+        let refused_settings = stored_settings
+            .as_ref()
+            .filter(|s| device_settings::validate(s).is_err())
+            .map(Settings::content_id);
+        let settings = match stored_settings {
             Some(s) if device_settings::validate(&s).is_ok() => s,
             _ => {
                 let mut s = config.settings.clone();
@@ -1932,6 +1940,16 @@ impl Stored {
             boot_event(storage, &mut next_event, EventKind::StorageRepaired);
         }
         boot_event(storage, &mut next_event, EventKind::Boot { reset_cause });
+        if let Some(old) = refused_settings {
+            boot_event(
+                storage,
+                &mut next_event,
+                EventKind::SettingsChanged {
+                    old,
+                    new: settings.content_id(),
+                },
+            );
+        }
         // The ring's copy of the Modbus settings: a recovery is logged (from
         // the defaults the map's loss left); settings other than the
         // defaults whose newest copy is missing, differs or has aged into

@@ -360,3 +360,29 @@ fn readings_before_the_clock_is_set_count_from_boot_and_can_be_re_based() {
     // Taken at the poll that answered (the bench's clock is the device's).
     assert_eq!(r.time_ms, origin + b.now);
 }
+
+/// Stored settings this firmware refuses (here a stale timeout below twice
+/// the interval, as a firmware change could make them) are replaced by the
+/// defaults at boot, and the replacement is logged as a settings change
+/// from their content id (found by review: it was silent, and the loop's
+/// span could change with no trace).
+#[test]
+fn stored_settings_refused_at_boot_are_replaced_and_logged() {
+    big_stack(|| {
+        let b = Bench::new(71, Scenario::default());
+        let mut bad = default_settings();
+        bad.interval_ms = 10_000;
+        bad.stale_timeout_ms = 10_000;
+        assert!(fringe_firmware::settings::validate(&bad).is_err());
+        let mut b = b;
+        b.dev.storage_mut().put(key::SETTINGS, &bad).expect("put");
+        let mut b = b.reboot(72);
+        assert_eq!(read(&mut b), default_settings());
+        let events = settings_events(&mut b);
+        assert_eq!(
+            events.last(),
+            Some(&(bad.content_id(), default_settings().content_id())),
+            "{events:?}"
+        );
+    });
+}
