@@ -1043,3 +1043,28 @@ fn write_zoo_table(path: &Path, n: usize, seed: u64, density: bool, dry: bool) {
         .collect();
     write_samples(std::fs::File::create(path).unwrap(), &rows).unwrap();
 }
+
+/// A sample captured with nothing in front of the window (Enter pressed
+/// before the cup was in place: the bench shows air) is not saved: the
+/// device flags its readings no_product, and the capture says so and asks
+/// for the sample again (found by review: the air was saved against the
+/// lab value typed).
+#[test]
+fn a_capture_of_the_empty_window_is_not_saved() {
+    let sim = Sim::start(&ScenarioSpec::clean("HGM-L2-0210", seed(30)));
+    let db = sim.path("bench.db");
+    let key = key_file(&sim);
+    let o = cell_calibration(&sim, &db, &key, ["air", "methanol", "ethanol", "air"]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    sim.set_bench("air");
+    let csv = sim.path("lab.csv");
+    let o = capture_one(&sim, &csv, &[], "HGM-E01", ("lab moisture", "14.0"));
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let said = format!("{}{}", o.stdout, o.stderr);
+    assert!(
+        said.contains("sample HGM-E01: not saved: the device flags its readings no_product"),
+        "{said}"
+    );
+    let rows = std::fs::read_to_string(&csv).unwrap_or_default();
+    assert!(!rows.contains("HGM-E01"), "{rows}");
+}

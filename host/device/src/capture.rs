@@ -53,6 +53,15 @@ pub enum CaptureError {
         #[source]
         source: Box<CaptureError>,
     },
+    /// A reading of the sample carried a flag that questions it (or no
+    /// temperature): nothing saved.
+    #[error("sample {id}: not saved: the device flags its readings {flags}; check the sample is in place against the window (and the sensor), then capture it again")]
+    Questioned {
+        /// The sample id.
+        id: String,
+        /// The flags, in words.
+        flags: String,
+    },
     /// The table could not be written.
     #[error("writing {path}: {source}")]
     Write {
@@ -62,6 +71,14 @@ pub enum CaptureError {
         source: std::io::Error,
     },
 }
+
+/// Flags that keep a reading out of a reference sample.
+pub const CAPTURE_UNUSABLE: fringe_protocol::Flags = fringe_protocol::Flags::NO_PRODUCT
+    .union(fringe_protocol::Flags::SATURATED)
+    .union(fringe_protocol::Flags::ELECTRODE_FAULT)
+    .union(fringe_protocol::Flags::TEMP_SENSOR_FAULT)
+    .union(fringe_protocol::Flags::LOW_SNR)
+    .union(fringe_protocol::Flags::REFERENCE_DRIFT);
 
 /// One captured sample: `n` averaged readings' permittivities and temperature.
 ///
@@ -77,9 +94,25 @@ pub fn capture_sample(
         request: "Identify",
         got: "no identity".into(),
     })?;
-    let (_, eps, t, _) = averaged_reading(link, n)?;
+    let (_, eps, t, flags) = averaged_reading(link, n)?;
     if eps.iter().any(|e| !e.re.is_finite() || !e.im.is_finite()) {
         return Err(CaptureError::NoPermittivity);
+    }
+    // A reading of the window with no sample in front of it, or one the
+    // device itself questions, is not a reference sample (found by review:
+    // Enter pressed before the cup was in place saved the air against the
+    // lab value typed; a failed temperature sensor wrote an empty cell the
+    // next capture refused its own table for).
+    let questioned = flags & CAPTURE_UNUSABLE;
+    if !questioned.is_empty() || !t.is_finite() {
+        return Err(CaptureError::Questioned {
+            id: id.to_string(),
+            flags: if questioned.is_empty() {
+                "temperature not a number".into()
+            } else {
+                questioned.names().collect::<Vec<_>>().join(", ")
+            },
+        });
     }
     Ok(RefSample {
         sample_id: id.to_string(),
@@ -146,11 +179,19 @@ pub fn capture(
             None => None,
         };
         guide.step(&format!("place sample {id} in front of the window (fill the sample cup level, same packing as on the line)"))?;
+        let captured = match capture_sample(link, &id, m, readings) {
+            // Said, and the sample asked for again (nothing saved).
+            Err(e @ CaptureError::Questioned { .. }) => {
+                guide.show(&e.to_string());
+                continue;
+            }
+            other => other?,
+        };
         let s = RefSample {
             // Written beside the value, so that a fit on another basis is
             // refused rather than taking it as on its own.
             moisture_basis: Some(basis),
-            ..capture_sample(link, &id, m, readings)?
+            ..captured
         };
         guide.show(&format!(
             "  {id}: {:.1} C, eps1 {:.3} - j{:.3}, eps2 {:.3} - j{:.3}",

@@ -2,11 +2,11 @@
 
 use fringe_calibration::Cx;
 use fringe_link::{Link, LinkError};
-use fringe_protocol::{Reading, Request, Response, N_FREQ};
+use fringe_protocol::{Flags, Request, Response, N_FREQ};
 
 /// Mean admittances (S) and permittivities per frequency, mean temperature
-/// (C), and the last reading.
-pub type Averaged = ([Cx<f64>; N_FREQ], [Cx<f64>; N_FREQ], f64, Reading);
+/// (C), and the flags any of the readings carried.
+pub type Averaged = ([Cx<f64>; N_FREQ], [Cx<f64>; N_FREQ], f64, Flags);
 
 /// Averages `n` readings (at least one; Measure requests) into admittances
 /// and permittivities per frequency and the mean temperature.
@@ -18,7 +18,7 @@ pub fn averaged_reading(link: &mut Link, n: u32) -> Result<Averaged, LinkError> 
     let mut y = [Cx::new(0.0, 0.0); N_FREQ];
     let mut eps = [Cx::new(0.0, 0.0); N_FREQ];
     let mut t = 0.0;
-    let mut last = Reading::default();
+    let mut flags = Flags::empty();
     for _ in 0..n {
         let r = match link.request(Request::Measure)? {
             Response::Reading(r) => r,
@@ -37,8 +37,8 @@ pub fn averaged_reading(link: &mut Link, n: u32) -> Result<Averaged, LinkError> 
             );
         }
         t += f64::from(r.temperature_c);
-        last = r;
+        flags |= r.flags;
     }
     let n = f64::from(n);
-    Ok((y.map(|v| v / n), eps.map(|v| v / n), t / n, last))
+    Ok((y.map(|v| v / n), eps.map(|v| v / n), t / n, flags))
 }
