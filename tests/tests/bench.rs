@@ -1067,4 +1067,36 @@ fn a_capture_of_the_empty_window_is_not_saved() {
     );
     let rows = std::fs::read_to_string(&csv).unwrap_or_default();
     assert!(!rows.contains("HGM-E01"), "{rows}");
+    // A select and a cell calibration without who or why are refused
+    // before anything is asked of the device (found by review: a select
+    // with an empty reason switched the product and recorded
+    // "select by : ").
+    let o = run(
+        &mut cal_write(&sim, &key, &db, "select", &["0", "--reason", " ", "--yes"]),
+        LIMIT,
+    );
+    assert_ne!(o.code, 0);
+    assert!(o.stderr.contains("must not be empty"), "{}", o.stderr);
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "cell",
+            "--port",
+            sim.port_str(),
+            "--key-file",
+            key.to_str().unwrap(),
+            "--db",
+            db.to_str().unwrap(),
+            "--operator",
+            "",
+            "--yes",
+        ]),
+        LIMIT,
+    );
+    assert_ne!(o.code, 0);
+    assert!(
+        o.stderr.contains("--operator must not be empty"),
+        "{}",
+        o.stderr
+    );
 }

@@ -44,6 +44,11 @@ pub enum CellError {
     /// The link failed.
     #[error("{0}")]
     Link(#[from] LinkError),
+    /// Who is missing.
+    #[error(
+        "--operator must not be empty (the audit record needs who); nothing measured or written"
+    )]
+    NoOperator,
     /// The record could not be stored (the device holds the new calibration).
     #[error("the device holds the new cell calibration, but its record could not be stored: {0}")]
     Store(#[from] StoreError),
@@ -166,6 +171,11 @@ pub fn cell_calibration(
     guide: &mut dyn Guide,
     a: &CellOptions,
 ) -> Result<CellOutcome, CellError> {
+    // Who, before anything is measured or written (found by review: an
+    // empty operator was recorded).
+    if a.operator.trim().is_empty() {
+        return Err(CellError::NoOperator);
+    }
     let liq = liquid(&a.liquid)?;
     let ver = liquid(&a.verify_liquid)?;
     let id = link.identity().cloned().ok_or(LinkError::Unexpected {

@@ -462,6 +462,12 @@ pub fn select(
     reason: &str,
     yes: bool,
 ) -> Result<(u8, CalId), ProductError> {
+    // Who and why, before anything is asked of the device (found by
+    // review: a select with empty ones switched the product and recorded
+    // "select by : ").
+    if operator.trim().is_empty() || reason.trim().is_empty() {
+        return Err(ProductError::NoAuditFields);
+    }
     let serial = link.serial_number().to_string();
     let (slots, active) = list_slots(link)?;
     let s = slots
