@@ -516,3 +516,29 @@ fn cal_predict_out_never_replaces_its_input_or_a_bystander() {
         .starts_with("sample_id"));
     assert_eq!(std::fs::read_to_string(&bystander).unwrap(), "mine\n");
 }
+
+/// A density in g/cm^3 given for kg/m^3 is refused by its flag (exit 2)
+/// with the likely slip named; before, 0.76 was taken and the water
+/// fraction came out a thousandfold off (found by review).
+#[test]
+fn a_density_in_g_per_cm3_is_refused_by_its_flag() {
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args([
+            "cal",
+            "fit",
+            "--samples",
+            "lab.csv",
+            "--bulk-density-kg-m3",
+            "0.76",
+            "--particle-density-kg-m3",
+            "1400",
+        ])
+        .output()
+        .expect("run fringe");
+    assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
+    assert!(
+        stderr(&o).contains("--bulk-density-kg-m3") && stderr(&o).contains("g/cm^3"),
+        "{}",
+        stderr(&o)
+    );
+}

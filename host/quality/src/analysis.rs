@@ -333,6 +333,18 @@ impl LineData {
         self.in_force(CalKind::Product, |r| r.product_cal).1
     }
 
+    /// The id (8 hex digits) of the product calibration in force (see
+    /// [`LineData::product_in_force`]), with or without a record.
+    pub fn product_in_force_id(&self) -> Option<String> {
+        self.in_force(CalKind::Product, |r| r.product_cal).0
+    }
+
+    /// The id (8 hex digits) of the cell calibration in force (the one the
+    /// newest reading carries; else the latest record's).
+    pub fn cell_in_force_id(&self) -> Option<String> {
+        self.in_force(CalKind::Cell, |r| r.cell_cal).0
+    }
+
     /// The id (8 hex digits) of the calibration of `kind` in force, and
     /// its latest record: the id the newest reading that carries one of
     /// that kind (`id_of`) carries, with its record if the store has one

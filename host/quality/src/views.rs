@@ -492,7 +492,20 @@ pub fn report_input(
     }
     let mut calibrations = Vec::new();
     for kind in [CalKind::Cell, CalKind::Product, CalKind::Settings] {
-        if let Some((pos, created, _, body, name)) = data.cals.iter().rev().find(|c| c.2 == kind) {
+        // The calibrations the readings carry (as the drift charts below
+        // take them: a product pushed for later without activating it is
+        // not in force; found by review), the latest record for settings.
+        let in_force = match kind {
+            CalKind::Cell => data.cell_in_force_id(),
+            CalKind::Product => data.product_in_force_id(),
+            _ => None,
+        };
+        let found = data
+            .cals
+            .iter()
+            .rev()
+            .find(|c| c.2 == kind && in_force.as_ref().is_none_or(|id| c.3.new_id == *id));
+        if let Some((pos, created, _, body, name)) = found {
             let mut rows = vec![
                 ("calibration id".to_string(), body.new_id.clone()),
                 ("recorded (UTC)".to_string(), fmt_time(*created)),
@@ -544,6 +557,21 @@ pub fn report_input(
                 }
             };
             calibrations.push((head, rows));
+        } else if let Some(id) = in_force {
+            let head = match kind {
+                CalKind::Cell => "Cell calibration",
+                _ => "Product calibration",
+            };
+            calibrations.push((
+                head.to_string(),
+                vec![
+                    ("calibration id".to_string(), id),
+                    (
+                        "record".to_string(),
+                        "none in this database: the readings carry it (written by another tool or database)".to_string(),
+                    ),
+                ],
+            ));
         }
     }
     let (p, h) = store.chain_head()?;

@@ -164,17 +164,24 @@ fn number(s: &str) -> Result<f64, String> {
         .map_err(|_| format!("`{s}` is not a number"))
 }
 
-/// A density, kg/m^3: above 0 and at most
+/// A density, kg/m^3: within the limits the reference-sample table's
+/// density column and `device density` take (the lower one at least 10:
+/// a value in g/cm^3 given for kg/m^3, 0.76 for 760, was taken before and
+/// put the water fraction off a thousandfold; found by review), and at most
 /// `fringe_calibration::fit::product::MAX_DENSITY_KG_M3`.
 fn density(s: &str) -> Result<f64, String> {
     let v = number(s)?;
+    let (lo, _) = fringe_calibration::product::DENSITY_LIMITS_KG_M3;
     let max = fringe_calibration::fit::product::MAX_DENSITY_KG_M3;
-    if v.is_finite() && v > 0.0 && v <= max {
+    if v.is_finite() && v >= lo && v <= max {
         Ok(v)
-    } else {
+    } else if v.is_finite() && v > 0.0 && v < lo {
         Err(format!(
-            "{s} is not a density above 0 and at most {max} kg/m^3"
+            "{s} kg/m^3 is below {lo}: a density in g/cm^3 given for kg/m^3? ({s} g/cm^3 is {} kg/m^3)",
+            v * 1000.0
         ))
+    } else {
+        Err(format!("{s} is not a density of {lo} to {max} kg/m^3"))
     }
 }
 
