@@ -1356,6 +1356,9 @@ impl<S: RecordStore> Worker<S> {
                     );
                 }
             }
+            Note::SequenceBehind(e) => {
+                self.say(serial, Level::Error, e.to_string());
+            }
             Note::ClockRefused(e) => {
                 self.say(
                     serial,

@@ -34,7 +34,7 @@ pub enum LineError {
     /// flash) or another unit carries the serial. Its new readings would
     /// be taken for stored ones and dropped.
     #[error(
-        "{serial} numbers its next reading {device_next}, but this database already holds readings of {serial} up to {stored}: the device's log was erased (a new board, a wiped flash) or another unit carries this serial, and its new readings would be taken for ones already stored and dropped; nothing stored: use another database for it (or check the serial)"
+        "{serial} numbers its next reading {device_next}, but this database already holds readings of {serial} up to {stored}: the device's log was erased (a new board, a wiped flash, a simulator started again) or another unit carries this serial, and its readings up to {stored} will be taken for ones already stored and not stored; use another database for it (or check the serial)"
     )]
     SequenceBehind {
         /// The serial.

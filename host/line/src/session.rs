@@ -53,6 +53,10 @@ pub enum Note<'a> {
     /// The device clock was checked, and set when it needed it and the
     /// key was at hand.
     Clock(ClockSync),
+    /// The device numbers its next reading at or below what the store
+    /// holds of its serial ([`LineError::SequenceBehind`]'s words): its
+    /// readings up to the stored one will be taken for stored ones.
+    SequenceBehind(&'a LineError),
     /// Setting the device clock was refused (a wrong key): it was left.
     ClockRefused(&'a LinkError),
     /// A stream period was asked of a device that measures on its own
@@ -289,7 +293,7 @@ impl Session {
     ) -> Result<Self, LineError> {
         let id = identity(&link)?;
         let serial = register(store, &id)?;
-        sequence_ahead(&mut link, store, &serial)?;
+        sequence_ahead(&mut link, store, &serial, ctx)?;
         clock(&mut link, opts.key.as_ref(), ctx)?;
         observe(&mut link, store, &serial, ctx)?;
         let period_ms = if id.capabilities.contains(Capabilities::SETTINGS) {
@@ -649,7 +653,7 @@ impl Session {
                 // swapped, a flash wiped while the port was away) is
                 // refused by name here too: its readings would be dropped
                 // as already stored (found by review).
-                sequence_ahead(&mut self.link, store, &self.serial)?;
+                sequence_ahead(&mut self.link, store, &self.serial, ctx)?;
                 // Its interval may have been changed while the port was
                 // away (a laptop on the line): read again.
                 if self
@@ -750,28 +754,32 @@ pub struct PullSummary {
     pub elapsed_ms: u64,
 }
 
-/// The device's next reading lies past every reading the store holds of
-/// its serial (found by review: a device whose log was erased numbered its
-/// readings from the start again, and every one the store already had a
-/// number for was dropped as already stored, silently).
+/// Says ([`Note::SequenceBehind`]) where the device's next reading does
+/// not lie past every reading the store holds of its serial (found by
+/// review: a device whose log was erased numbered its readings from the
+/// start again, and every one the store already had a number for was
+/// dropped as already stored, silently). Said, not refused: a simulator
+/// started again is such a device, and its readings past the stored ones
+/// are stored as before.
 ///
 /// # Errors
-/// [`LineError::SequenceBehind`]; link and store errors.
+/// Link and store errors.
 fn sequence_ahead(
     link: &mut Link,
     store: &(impl RecordStore + ?Sized),
     serial: &str,
+    ctx: &mut Ctx<'_>,
 ) -> Result<(), LineError> {
     let Some(stored) = store.last_seq(serial)? else {
         return Ok(());
     };
     let device_next = link.status()?.next_seq;
     if device_next <= stored {
-        return Err(LineError::SequenceBehind {
+        (ctx.tell)(Note::SequenceBehind(&LineError::SequenceBehind {
             serial: serial.to_string(),
             stored,
             device_next,
-        });
+        }));
     }
     Ok(())
 }
@@ -795,7 +803,7 @@ pub fn pull(
     let t0 = (ctx.now)();
     let id = identity(link)?;
     let serial = register(store, &id)?;
-    sequence_ahead(link, store, &serial)?;
+    sequence_ahead(link, store, &serial, ctx)?;
     let clock = clock(link, key, ctx)?;
     observe(link, store, &serial, ctx)?;
     let status = link.status()?;

@@ -127,6 +127,7 @@ pub fn say_note(who: &str, n: Note<'_>) {
     match n {
         Note::Clock(s) => say_clock(who, &s),
         Note::ClockRefused(e) => eprintln!("fringe {who}: the device clock was not set: {e}"),
+        Note::SequenceBehind(e) => eprintln!("fringe {who}: WARNING: {e}"),
         Note::Lost { count, after } => eprintln!(
             "fringe {who}: {count} readings after {after} were no longer in the device log (lost)"
         ),

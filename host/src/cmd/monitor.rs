@@ -237,6 +237,7 @@ impl View {
                 }
                 self.show_as(r, true);
             }
+            Note::SequenceBehind(e) => self.notice(&format!("WARNING: {e}")),
             Note::Reconnecting(why) => self.notice(&format!("{why}: reconnecting")),
             Note::Reconnected => self.notice("reconnected"),
             Note::CalibrationObserved(o) => self.notice(&o.to_string()),
