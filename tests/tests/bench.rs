@@ -803,6 +803,54 @@ fn a_push_that_changes_the_basis_is_pointed_out() {
         o.stderr
     );
     write("select", &["0", "--reason", "dry again", "--yes"]);
+    // Pushed into another slot and activated: the line's switch is said
+    // before the question and recorded as a select from the calibration it
+    // ran on (found by review: only the slot's old content was named).
+    let o = write(
+        "push",
+        &[
+            "--cal",
+            wet_copy.to_str().unwrap(),
+            "--slot",
+            "3",
+            "--reason",
+            "the wet one, activated",
+            "--yes",
+            "--force",
+        ],
+    );
+    let shown = format!("{}{}", o.stdout, o.stderr);
+    assert!(
+        shown.contains("and make it the active product: the line switches from"),
+        "{shown}"
+    );
+    let h = run(
+        &mut fringe(&[
+            "cal",
+            "history",
+            "--db",
+            sim.path("bench.db").to_str().unwrap(),
+            "--json",
+        ]),
+        LIMIT,
+    );
+    assert_eq!(h.code, 0, "{}", h.stderr);
+    let v: serde_json::Value = serde_json::from_str(&h.stdout).unwrap();
+    let records = v["records"].as_array().unwrap();
+    let last = records.last().unwrap();
+    let before = &records[records.len() - 2];
+    assert_eq!(last["action"], "select", "{v}");
+    assert!(
+        last["reason"]
+            .as_str()
+            .unwrap()
+            .starts_with("activated by cal push"),
+        "{v}"
+    );
+    assert_eq!(before["action"], "push", "{v}");
+    assert_eq!(last["new_id"], before["new_id"], "{v}");
+    assert_ne!(last["old_id"], before["old_id"], "{v}");
+    write("select", &["0", "--reason", "dry again", "--yes"]);
     // A line file's alarm band written on a wet basis marks the same
     // product states on the dry basis the device now reports on: 12 and
     // 15.5 % wet basis are 13.64 and 18.34 % dry (M_db = 100 M_wb /

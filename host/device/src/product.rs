@@ -362,6 +362,33 @@ pub fn push(
         wire.temperature_c.min, wire.temperature_c.max,
         wire.sec_pct, file.statistics.sep, file.statistics.n
     );
+    // Written to a slot that is not the active one and activated: the line
+    // switches from what it runs on now, which is shown (found by review:
+    // only the slot's old content was, and nothing said the line would
+    // switch).
+    let switched_from = if p.activate && active != Some(slot) {
+        let running = match active {
+            Some(a) => match link.request(Request::ReadProductCal { slot: a })? {
+                Response::ProductCal { cal, .. } => cal.map(|c| (a, c)),
+                _ => None,
+            },
+            None => None,
+        };
+        shown += &match &running {
+            Some((a, c)) => format!(
+                "\n  and make it the active product: the line switches from {} id {} (slot {a}, moisture {:.2}..{:.2} % {}) to it",
+                c.name,
+                c.content_id(),
+                c.moisture_pct.min,
+                c.moisture_pct.max,
+                basis_words(c.basis)
+            ),
+            None => "\n  and make it the active product (none is active now)".to_string(),
+        };
+        Some(running.map_or(CalId::NONE, |(_, c)| c.content_id()))
+    } else {
+        None
+    };
     guide.show(&shown);
     guide.caution(LINE_CAUTION);
     let carried = fringe_protocol::quant::MOISTURE_MAX_PCT;
@@ -439,6 +466,31 @@ pub fn push(
             derivation: file.source.derivation.clone(),
         },
     )?;
+    // The switch of the line, recorded as a select: from the calibration
+    // it ran on to this one (the push record names the slot's old content).
+    let position = match switched_from {
+        Some(from) => record(
+            store,
+            &serial,
+            CalKind::Product,
+            new,
+            Some(slot),
+            Some(wire.name.to_string()),
+            &CalRecordBody {
+                calibration: serde_json::to_value(wire).unwrap_or(serde_json::Value::Null),
+                operator: p.operator.into(),
+                reason: format!("activated by cal push: {}", p.reason),
+                old_id: from.to_string(),
+                new_id: new.to_string(),
+                action: "select".into(),
+                statistics: Some(file.statistics.clone()),
+                verification: Some(format!("slot {slot} selected after the push")),
+                parent_id: None,
+                derivation: None,
+            },
+        )?,
+        None => position,
+    };
     Ok(PushOutcome {
         slot,
         old,
