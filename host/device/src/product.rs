@@ -385,7 +385,9 @@ pub fn push(
             ),
             None => "\n  and make it the active product (none is active now)".to_string(),
         };
-        Some(running.map_or(CalId::NONE, |(_, c)| c.content_id()))
+        // (Recorded as a select only where another calibration ran: from
+        // none, the push's own record says as much.)
+        running.map(|(_, c)| c.content_id())
     } else {
         None
     };
