@@ -330,6 +330,28 @@ impl Store {
         from_sqlite(&self.path, e)
     }
 
+    /// Runs `f` in one read transaction: every read in it sees the file as
+    /// it was at its first read, whatever a writer (a gateway, a monitor)
+    /// commits meanwhile (WAL). Not for writes.
+    ///
+    /// # Errors
+    /// [`StoreError`] starting or ending the transaction; `f`'s own.
+    pub fn read_snapshot<R>(
+        &self,
+        f: impl FnOnce(&Self) -> Result<R, StoreError>,
+    ) -> Result<R, StoreError> {
+        self.conn
+            .execute_batch("BEGIN DEFERRED")
+            .map_err(|e| self.err(e))?;
+        let out = f(self);
+        // A read transaction commits nothing; its end only releases the
+        // snapshot.
+        let end = self.conn.execute_batch("COMMIT").map_err(|e| self.err(e));
+        let out = out?;
+        end?;
+        Ok(out)
+    }
+
     fn configure(&self, write: bool) -> Result<(), StoreError> {
         self.conn
             .busy_timeout(BUSY_TIMEOUT)

@@ -99,13 +99,14 @@ impl AnyStore {
 
     /// Runs `f` on one consistent view of the store: on PostgreSQL a
     /// read-only REPEATABLE READ transaction (gateways may be writing);
-    /// on SQLite the store as is.
+    /// on SQLite one read transaction (found by review: each read was its
+    /// own snapshot, so a device's rows could run later than another's).
     ///
     /// # Errors
     /// [`StoreError`] starting or ending the view.
     pub fn consistent<R>(&self, f: impl FnOnce(&dyn RecordRead) -> R) -> Result<R, StoreError> {
         match self {
-            AnyStore::Sqlite(s) => Ok(f(s)),
+            AnyStore::Sqlite(s) => s.read_snapshot(|s| Ok(f(s))),
             AnyStore::Postgres(s) => s.read_snapshot(|s| Ok(f(s))),
         }
     }
