@@ -439,9 +439,14 @@ pub fn report_input(
     title: Option<&str>,
 ) -> Result<ReportInput, ViewError> {
     let data = analysis::load(store, serial)?;
+    // Readings whose wall-clock time is not known (a boot whose clock was
+    // never set, no clock event stored) are counted in the flag table, not
+    // drawn: their time since boot put them in 1970, and the trend's axis
+    // and the report's span reached over 56 years (found by review).
     let trend: Vec<TrendPoint> = data
         .rows
         .iter()
+        .filter(|r| r.clock_known)
         .map(|r| TrendPoint {
             time_ms: r.time_ms,
             moisture_pct: r
@@ -581,11 +586,14 @@ pub fn report_input(
             str::to_string,
         ),
         database: store.path().display().to_string(),
-        span_ms: data
-            .rows
-            .first()
-            .zip(data.rows.last())
-            .map(|(a, b)| (a.time_ms, b.time_ms)),
+        span_ms: {
+            let times = data
+                .rows
+                .iter()
+                .filter(|r| r.clock_known)
+                .map(|r| r.time_ms);
+            times.clone().min().zip(times.max())
+        },
         readings: data.rows.len() as u64,
         trend,
         lab,
@@ -869,6 +877,52 @@ pub fn write_verify(
 
 #[cfg(test)]
 mod tests {
+    /// Readings of a boot whose clock was never set (no clock event
+    /// stored) are left off the trend and out of the report's span; the
+    /// flag table counts them. Boot 1: three readings 5 s apart from boot;
+    /// boot 2: three on the wall clock (made-up readings).
+    #[test]
+    fn untimed_readings_are_left_off_the_report_span_and_trend() {
+        use fringe_protocol::{Flags, Reading, Seq};
+        use fringe_store::{DeviceInfo, Source};
+        let t0 = 1_796_104_800_000u64;
+        let mut rs: Vec<Reading> = (0..3)
+            .map(|i| Reading {
+                seq: Seq {
+                    boot: 1,
+                    counter: i,
+                },
+                time_ms: 5_000 * u64::from(i + 1),
+                moisture_pct: Some(14.0),
+                flags: Flags::CLOCK_UNSET,
+                ..Reading::default()
+            })
+            .collect();
+        rs.extend((0..3).map(|i| Reading {
+            seq: Seq {
+                boot: 2,
+                counter: i,
+            },
+            time_ms: t0 + 60_000 * u64::from(i),
+            moisture_pct: Some(14.0),
+            ..Reading::default()
+        }));
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = fringe_sqlite::Store::open(dir.path().join("r.db")).unwrap();
+        store
+            .ensure_device(&DeviceInfo {
+                serial: "L2".into(),
+                ..Default::default()
+            })
+            .unwrap();
+        store.insert_readings("L2", &rs, Source::Log).unwrap();
+        let input = super::report_input(&store, None, None).unwrap();
+        assert_eq!(input.span_ms, Some((t0 as i64, t0 as i64 + 120_000)));
+        assert_eq!(input.trend.len(), 3);
+        assert!(input.trend.iter().all(|p| p.time_ms >= t0 as i64));
+        assert_eq!(input.readings, 6);
+    }
+
     /// Grab samples are paired only with readings whose moisture nothing
     /// questions, and never across an empty spell; the time of the reading
     /// matched is said. A minute apart: valid 0..=4, empty 5..=9, one
