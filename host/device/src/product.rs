@@ -366,14 +366,17 @@ pub fn push(
     // switches from what it runs on now, which is shown (found by review:
     // only the slot's old content was, and nothing said the line would
     // switch).
-    let switched_from = if p.activate && active != Some(slot) {
-        let running = match active {
-            Some(a) => match link.request(Request::ReadProductCal { slot: a })? {
+    // The calibration the line runs on now, where this push switches it.
+    let running = match active {
+        Some(a) if p.activate && a != slot => {
+            match link.request(Request::ReadProductCal { slot: a })? {
                 Response::ProductCal { cal, .. } => cal.map(|c| (a, c)),
                 _ => None,
-            },
-            None => None,
-        };
+            }
+        }
+        _ => None,
+    };
+    if p.activate && active != Some(slot) {
         shown += &match &running {
             Some((a, c)) => format!(
                 "\n  and make it the active product: the line switches from {} id {} (slot {a}, moisture {:.2}..{:.2} % {}) to it",
@@ -385,12 +388,7 @@ pub fn push(
             ),
             None => "\n  and make it the active product (none is active now)".to_string(),
         };
-        // (Recorded as a select only where another calibration ran: from
-        // none, the push's own record says as much.)
-        running.map(|(_, c)| c.content_id())
-    } else {
-        None
-    };
+    }
     guide.show(&shown);
     guide.caution(LINE_CAUTION);
     let carried = fringe_protocol::quant::MOISTURE_MAX_PCT;
@@ -403,17 +401,10 @@ pub fn push(
     // The calibration the line runs on after this push: the old one in the
     // slot if it is the active one, else the active slot's if this one is
     // not activated.
-    let replaced = if active == Some(slot) || p.activate {
-        match active {
-            Some(a) if a == slot => old_cal.clone(),
-            Some(a) => match link.request(Request::ReadProductCal { slot: a })? {
-                Response::ProductCal { cal, .. } => cal,
-                _ => None,
-            },
-            None => None,
-        }
+    let replaced = if active == Some(slot) {
+        old_cal.clone()
     } else {
-        None
+        running.as_ref().map(|(_, c)| c.clone())
     };
     if let Some(r) = replaced.filter(|r| r.basis != wire.basis) {
         guide.caution(&basis_caution(r.basis, wire.basis));
@@ -448,49 +439,53 @@ pub fn push(
     if p.activate && active != Some(slot) {
         link.request_signed(Request::SelectProduct { slot }, key)?;
     }
+    let body = CalRecordBody {
+        calibration: serde_json::to_value(wire).unwrap_or(serde_json::Value::Null),
+        operator: p.operator.into(),
+        reason: p.reason.into(),
+        old_id: old.to_string(),
+        new_id: new.to_string(),
+        action: "push".into(),
+        statistics: Some(file.statistics.clone()),
+        verification: Some(format!("read back from slot {slot}: id {new}")),
+        parent_id: file.source.parent_id.clone(),
+        derivation: file.source.derivation.clone(),
+    };
+    let name = Some(wire.name.to_string());
     let position = record(
         store,
         &serial,
         CalKind::Product,
         new,
         Some(slot),
-        Some(wire.name.to_string()),
-        &CalRecordBody {
-            calibration: serde_json::to_value(wire).unwrap_or(serde_json::Value::Null),
-            operator: p.operator.into(),
-            reason: p.reason.into(),
-            old_id: old.to_string(),
-            new_id: new.to_string(),
-            action: "push".into(),
-            statistics: Some(file.statistics.clone()),
-            verification: Some(format!("read back from slot {slot}: id {new}")),
-            parent_id: file.source.parent_id.clone(),
-            derivation: file.source.derivation.clone(),
-        },
+        name.clone(),
+        &body,
     )?;
     // The switch of the line, recorded as a select: from the calibration
-    // it ran on to this one (the push record names the slot's old content).
-    let position = match switched_from {
-        Some(from) => record(
-            store,
-            &serial,
-            CalKind::Product,
-            new,
-            Some(slot),
-            Some(wire.name.to_string()),
-            &CalRecordBody {
-                calibration: serde_json::to_value(wire).unwrap_or(serde_json::Value::Null),
-                operator: p.operator.into(),
+    // it ran on to this one (the push record names the slot's old
+    // content). Only where another calibration ran: from none, the push's
+    // own record says as much.
+    let position = match &running {
+        Some((_, from)) => {
+            let select = CalRecordBody {
                 reason: format!("activated by cal push: {}", p.reason),
-                old_id: from.to_string(),
-                new_id: new.to_string(),
+                old_id: from.content_id().to_string(),
                 action: "select".into(),
-                statistics: Some(file.statistics.clone()),
                 verification: Some(format!("slot {slot} selected after the push")),
                 parent_id: None,
                 derivation: None,
-            },
-        )?,
+                ..body
+            };
+            record(
+                store,
+                &serial,
+                CalKind::Product,
+                new,
+                Some(slot),
+                name,
+                &select,
+            )?
+        }
         None => position,
     };
     Ok(PushOutcome {
