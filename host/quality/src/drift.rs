@@ -404,6 +404,9 @@ pub struct Trace {
     pub ewma: Vec<f64>,
     /// Alarms in time order.
     pub alarms: Vec<Alarm>,
+    /// The alarms merged per episode ([`Trace::episodes`]).
+    #[serde(skip)]
+    pub episodes: Vec<Alarm>,
 }
 
 /// Action for a shift of `quantity` in `direction` (whichever chart found it).
@@ -444,102 +447,28 @@ impl Monitor {
         }
     }
 
-    /// Runs both charts over `obs` (in time order).
+    /// Runs both charts over `obs` (in time order): [`Running`] fed every
+    /// observation, keeping the statistics of each for plots.
     ///
     /// A non-finite observation is skipped (it cannot move a chart). A
     /// `sigma` that is not positive gives no alarms and empty statistics.
     pub fn run(&self, obs: &[Obs]) -> Trace {
-        let mut t = Trace {
-            monitor: *self,
-            obs: Vec::new(),
-            cusum_hi: Vec::new(),
-            cusum_lo: Vec::new(),
-            ewma: Vec::new(),
-            alarms: Vec::new(),
-        };
-        if !(self.sigma > 0.0 && self.sigma.is_finite()) {
-            return t;
+        let mut r = Running::new(*self, true);
+        for o in obs {
+            r.push(*o);
         }
-        let (k, h) = (self.cusum.k, self.cusum.h);
-        let lim = self.ewma.limit();
-        let lam = self.ewma.lambda;
-        let (mut hi, mut lo, mut w) = (0.0f64, 0.0f64, 0.0f64);
-        // Index (into t.obs) of the first observation of the current excursion.
-        let (mut hi_start, mut lo_start, mut w_start) = (0usize, 0usize, 0usize);
-        for o in obs.iter().copied().filter(|o| o.value.is_finite()) {
-            let i = t.obs.len();
-            t.obs.push(o);
-            let (z_hi, z_lo) = match self.range {
-                Some((min, max)) => ((o.value - max) / self.sigma, (min - o.value) / self.sigma),
-                None => {
-                    let z = (o.value - self.target) / self.sigma;
-                    (z, -z)
-                }
-            };
-            if hi == 0.0 {
-                hi_start = i;
-            }
-            if lo == 0.0 {
-                lo_start = i;
-            }
-            hi = (hi + z_hi - k).max(0.0);
-            lo = (lo + z_lo - k).max(0.0);
-            if hi == 0.0 {
-                hi_start = i + 1;
-            }
-            if lo == 0.0 {
-                lo_start = i + 1;
-            }
-            t.cusum_hi.push(hi);
-            t.cusum_lo.push(lo);
-            if hi > h || lo > h {
-                let (dir, start) = if hi > h {
-                    (Direction::Up, hi_start)
-                } else {
-                    (Direction::Down, lo_start)
-                };
-                t.alarms
-                    .push(self.alarm(&t.obs, ChartKind::Cusum, dir, start, i));
-                hi = 0.0;
-                lo = 0.0;
-                hi_start = i + 1;
-                lo_start = i + 1;
-            }
-            if self.range.is_none() {
-                let z = z_hi;
-                let before = w;
-                w = lam * z + (1.0 - lam) * w;
-                if before.signum() != w.signum() || before == 0.0 {
-                    w_start = i;
-                }
-                t.ewma.push(w);
-                if w.abs() > lim {
-                    let dir = if w > 0.0 {
-                        Direction::Up
-                    } else {
-                        Direction::Down
-                    };
-                    t.alarms
-                        .push(self.alarm(&t.obs, ChartKind::Ewma, dir, w_start, i));
-                    w = 0.0;
-                    w_start = i + 1;
-                }
-            }
-        }
-        t
+        r.into_trace()
     }
 
-    fn alarm(
+    fn alarm_over(
         &self,
-        obs: &[Obs],
         chart: ChartKind,
         dir: Direction,
-        start: usize,
-        i: usize,
+        (since_index, since_ms): (usize, i64),
+        (index, time_ms): (usize, i64),
+        sum: f64,
     ) -> Alarm {
-        let start = start.min(i);
-        let seg = &obs[start..=i];
-        let mean = seg.iter().map(|o| o.value).sum::<f64>() / seg.len() as f64;
+        let mean = sum / (index - since_index + 1) as f64;
         let shift = match self.range {
             Some((min, max)) => match dir {
                 Direction::Up => mean - max,
@@ -551,10 +480,10 @@ impl Monitor {
             quantity: self.quantity,
             chart,
             direction: dir,
-            index: i,
-            time_ms: obs[i].time_ms,
-            since_index: start,
-            since_ms: obs[start].time_ms,
+            index,
+            time_ms,
+            since_index,
+            since_ms,
             shift,
             shift_sigma: shift / self.sigma,
             action: action_for(self.quantity, dir),
@@ -562,42 +491,232 @@ impl Monitor {
     }
 }
 
+/// Where an excursion of one chart began: index and time of its first
+/// observation, and the sum of the values from there to the latest one
+/// (in order, as the alarm's mean shift needs them).
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+struct Span {
+    index: usize,
+    time_ms: i64,
+    sum: f64,
+}
+
+impl Span {
+    fn start(index: usize, o: Obs) -> Self {
+        Self {
+            index,
+            time_ms: o.time_ms,
+            sum: o.value,
+        }
+    }
+}
+
+/// The latest episode of one direction, still open to the next alarm:
+/// where it is in [`Running::episodes`], the index of its latest alarm and
+/// its span from the change point to the latest observation.
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct OpenEpisode {
+    at: usize,
+    latest: usize,
+    span: Span,
+}
+
+/// A [`Monitor`] run one observation at a time: the charts' state, their
+/// alarms merged per episode ([`Trace::episodes`]), and, when asked for,
+/// the statistics of every observation (for plots). Without them it holds
+/// a few numbers and the episodes, however many observations it is fed
+/// (the live drift check of a device that runs for years).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Running {
+    monitor: Monitor,
+    keep: bool,
+    n: usize,
+    hi: f64,
+    lo: f64,
+    w: f64,
+    hi_span: Span,
+    lo_span: Span,
+    w_span: Span,
+    trace: Trace,
+    episodes: Vec<Alarm>,
+    open: [Option<OpenEpisode>; 2],
+}
+
+impl Running {
+    /// A monitor before its first observation; `keep`: keep the
+    /// observations and the statistics after each (for [`Running::into_trace`]'s
+    /// plots; without them the trace has only the alarms' episodes).
+    pub fn new(monitor: Monitor, keep: bool) -> Self {
+        Self {
+            monitor,
+            keep,
+            n: 0,
+            hi: 0.0,
+            lo: 0.0,
+            w: 0.0,
+            hi_span: Span::default(),
+            lo_span: Span::default(),
+            w_span: Span::default(),
+            trace: Trace {
+                monitor,
+                obs: Vec::new(),
+                cusum_hi: Vec::new(),
+                cusum_lo: Vec::new(),
+                ewma: Vec::new(),
+                alarms: Vec::new(),
+                episodes: Vec::new(),
+            },
+            episodes: Vec::new(),
+            open: [None, None],
+        }
+    }
+
+    /// The monitor it runs.
+    pub fn monitor(&self) -> &Monitor {
+        &self.monitor
+    }
+
+    /// Observations charted so far.
+    pub fn len(&self) -> usize {
+        self.n
+    }
+
+    /// Whether no observation has been charted.
+    pub fn is_empty(&self) -> bool {
+        self.n == 0
+    }
+
+    /// Alarm episodes so far, oldest first ([`Trace::episodes`]).
+    pub fn episodes(&self) -> &[Alarm] {
+        &self.episodes
+    }
+
+    /// The trace: the statistics if kept, the alarms and the episodes.
+    pub fn into_trace(self) -> Trace {
+        let mut t = self.trace;
+        t.episodes = self.episodes;
+        t
+    }
+
+    /// Charts one observation (a non-finite one is skipped; nothing is
+    /// charted where the monitor's sigma is not positive).
+    pub fn push(&mut self, o: Obs) {
+        let m = self.monitor;
+        if !(m.sigma > 0.0 && m.sigma.is_finite() && o.value.is_finite()) {
+            return;
+        }
+        let (k, h) = (m.cusum.k, m.cusum.h);
+        let i = self.n;
+        self.n += 1;
+        if self.keep {
+            self.trace.obs.push(o);
+        }
+        for e in self.open.iter_mut().flatten() {
+            e.span.sum += o.value;
+        }
+        let (z_hi, z_lo) = match m.range {
+            Some((min, max)) => ((o.value - max) / m.sigma, (min - o.value) / m.sigma),
+            None => {
+                let z = (o.value - m.target) / m.sigma;
+                (z, -z)
+            }
+        };
+        // Each excursion's span starts at the first observation after the
+        // chart was last at zero.
+        for (c, span) in [(self.hi, &mut self.hi_span), (self.lo, &mut self.lo_span)] {
+            if c == 0.0 {
+                *span = Span::start(i, o);
+            } else {
+                span.sum += o.value;
+            }
+        }
+        self.hi = (self.hi + z_hi - k).max(0.0);
+        self.lo = (self.lo + z_lo - k).max(0.0);
+        if self.keep {
+            self.trace.cusum_hi.push(self.hi);
+            self.trace.cusum_lo.push(self.lo);
+        }
+        if self.hi > h || self.lo > h {
+            let (dir, span) = if self.hi > h {
+                (Direction::Up, self.hi_span)
+            } else {
+                (Direction::Down, self.lo_span)
+            };
+            self.raise(ChartKind::Cusum, dir, span, (i, o.time_ms));
+            self.hi = 0.0;
+            self.lo = 0.0;
+        }
+        if m.range.is_none() {
+            let z = z_hi;
+            let before = self.w;
+            self.w = m.ewma.lambda * z + (1.0 - m.ewma.lambda) * self.w;
+            if before.signum() != self.w.signum() || before == 0.0 {
+                self.w_span = Span::start(i, o);
+            } else {
+                self.w_span.sum += o.value;
+            }
+            if self.keep {
+                self.trace.ewma.push(self.w);
+            }
+            if self.w.abs() > m.ewma.limit() {
+                let dir = if self.w > 0.0 {
+                    Direction::Up
+                } else {
+                    Direction::Down
+                };
+                self.raise(ChartKind::Ewma, dir, self.w_span, (i, o.time_ms));
+                self.w = 0.0;
+            }
+        }
+    }
+
+    /// An alarm at observation `at` over `span`, and its episode: an alarm
+    /// that follows another of the same direction with no gap between
+    /// their excursions (its change point at or before the observation
+    /// after the previous alarm) is folded into that one's episode, which keeps its first
+    /// chart, change point and time, and takes the mean shift from its
+    /// change point to this alarm.
+    fn raise(&mut self, chart: ChartKind, dir: Direction, span: Span, at: (usize, i64)) {
+        let m = self.monitor;
+        let a = m.alarm_over(chart, dir, (span.index, span.time_ms), at, span.sum);
+        if self.keep {
+            self.trace.alarms.push(a.clone());
+        }
+        let d = usize::from(dir == Direction::Down);
+        if let Some(open) = self.open[d].as_mut() {
+            if span.index <= open.latest + 1 {
+                open.latest = at.0;
+                let first = &mut self.episodes[open.at];
+                let whole = m.alarm_over(
+                    first.chart,
+                    first.direction,
+                    (open.span.index, open.span.time_ms),
+                    at,
+                    open.span.sum,
+                );
+                first.shift = whole.shift;
+                first.shift_sigma = whole.shift_sigma;
+                return;
+            }
+        }
+        self.open[d] = Some(OpenEpisode {
+            at: self.episodes.len(),
+            latest: at.0,
+            span,
+        });
+        self.episodes.push(a);
+    }
+}
+
 impl Trace {
     /// Alarms merged per episode: an alarm that follows another of the same
     /// quantity and direction with no gap between their excursions (its
-    /// change point at or before the previous alarm + 1) is folded into it,
-    /// keeping the first alarm's chart, change point and time; its size is
-    /// the mean shift from that change point to the latest alarm (the span
-    /// it names, whichever chart raised the later alarms).
+    /// change point at or before the previous alarm + 1) is folded into
+    /// it, keeping the first alarm's chart, change point and time; its size
+    /// is the mean shift from that change point to the latest alarm (the
+    /// span it names, whichever chart raised the later alarms).
     pub fn episodes(&self) -> Vec<Alarm> {
-        // (episode, index of its latest alarm)
-        let mut out: Vec<(Alarm, usize)> = Vec::new();
-        let mut sorted = self.alarms.clone();
-        sorted.sort_by_key(|a| a.index);
-        for a in sorted {
-            if let Some((first, latest)) = out
-                .iter_mut()
-                .rev()
-                .find(|(l, _)| l.quantity == a.quantity && l.direction == a.direction)
-            {
-                if a.since_index <= *latest + 1 {
-                    *latest = a.index;
-                    let span = self.monitor.alarm(
-                        &self.obs,
-                        first.chart,
-                        first.direction,
-                        first.since_index,
-                        a.index,
-                    );
-                    first.shift = span.shift;
-                    first.shift_sigma = span.shift_sigma;
-                    continue;
-                }
-            }
-            let i = a.index;
-            out.push((a, i));
-        }
-        out.into_iter().map(|(a, _)| a).collect()
+        self.episodes.clone()
     }
 }
 
@@ -619,6 +738,218 @@ mod tests {
     use super::*;
     use rand::{rngs::StdRng, RngExt, SeedableRng};
     use rand_distr::StandardNormal;
+
+    /// The monitors as they were first written, over a whole series at
+    /// once: the reference the one-at-a-time [`Running`] must equal.
+    mod batch {
+        use super::super::*;
+
+        pub(super) fn run(m: &Monitor, obs: &[Obs]) -> Trace {
+            let mut t = Trace {
+                monitor: *m,
+                obs: Vec::new(),
+                cusum_hi: Vec::new(),
+                cusum_lo: Vec::new(),
+                ewma: Vec::new(),
+                alarms: Vec::new(),
+                episodes: Vec::new(),
+            };
+            if !(m.sigma > 0.0 && m.sigma.is_finite()) {
+                return t;
+            }
+            let (k, h) = (m.cusum.k, m.cusum.h);
+            let lim = m.ewma.limit();
+            let lam = m.ewma.lambda;
+            let (mut hi, mut lo, mut w) = (0.0f64, 0.0f64, 0.0f64);
+            // Index (into t.obs) of the first observation of the current excursion.
+            let (mut hi_start, mut lo_start, mut w_start) = (0usize, 0usize, 0usize);
+            for o in obs.iter().copied().filter(|o| o.value.is_finite()) {
+                let i = t.obs.len();
+                t.obs.push(o);
+                let (z_hi, z_lo) = match m.range {
+                    Some((min, max)) => ((o.value - max) / m.sigma, (min - o.value) / m.sigma),
+                    None => {
+                        let z = (o.value - m.target) / m.sigma;
+                        (z, -z)
+                    }
+                };
+                if hi == 0.0 {
+                    hi_start = i;
+                }
+                if lo == 0.0 {
+                    lo_start = i;
+                }
+                hi = (hi + z_hi - k).max(0.0);
+                lo = (lo + z_lo - k).max(0.0);
+                if hi == 0.0 {
+                    hi_start = i + 1;
+                }
+                if lo == 0.0 {
+                    lo_start = i + 1;
+                }
+                t.cusum_hi.push(hi);
+                t.cusum_lo.push(lo);
+                if hi > h || lo > h {
+                    let (dir, start) = if hi > h {
+                        (Direction::Up, hi_start)
+                    } else {
+                        (Direction::Down, lo_start)
+                    };
+                    t.alarms
+                        .push(alarm(m, &t.obs, ChartKind::Cusum, dir, start, i));
+                    hi = 0.0;
+                    lo = 0.0;
+                    hi_start = i + 1;
+                    lo_start = i + 1;
+                }
+                if m.range.is_none() {
+                    let z = z_hi;
+                    let before = w;
+                    w = lam * z + (1.0 - lam) * w;
+                    if before.signum() != w.signum() || before == 0.0 {
+                        w_start = i;
+                    }
+                    t.ewma.push(w);
+                    if w.abs() > lim {
+                        let dir = if w > 0.0 {
+                            Direction::Up
+                        } else {
+                            Direction::Down
+                        };
+                        t.alarms
+                            .push(alarm(m, &t.obs, ChartKind::Ewma, dir, w_start, i));
+                        w = 0.0;
+                        w_start = i + 1;
+                    }
+                }
+            }
+            t
+        }
+
+        fn alarm(
+            m: &Monitor,
+            obs: &[Obs],
+            chart: ChartKind,
+            dir: Direction,
+            start: usize,
+            i: usize,
+        ) -> Alarm {
+            let start = start.min(i);
+            let seg = &obs[start..=i];
+            let mean = seg.iter().map(|o| o.value).sum::<f64>() / seg.len() as f64;
+            let shift = match m.range {
+                Some((min, max)) => match dir {
+                    Direction::Up => mean - max,
+                    Direction::Down => mean - min,
+                },
+                None => mean - m.target,
+            };
+            Alarm {
+                quantity: m.quantity,
+                chart,
+                direction: dir,
+                index: i,
+                time_ms: obs[i].time_ms,
+                since_index: start,
+                since_ms: obs[start].time_ms,
+                shift,
+                shift_sigma: shift / m.sigma,
+                action: action_for(m.quantity, dir),
+            }
+        }
+        pub(super) fn episodes(t: &Trace) -> Vec<Alarm> {
+            // (episode, index of its latest alarm)
+            let mut out: Vec<(Alarm, usize)> = Vec::new();
+            let mut sorted = t.alarms.clone();
+            sorted.sort_by_key(|a| a.index);
+            for a in sorted {
+                if let Some((first, latest)) = out
+                    .iter_mut()
+                    .rev()
+                    .find(|(l, _)| l.quantity == a.quantity && l.direction == a.direction)
+                {
+                    if a.since_index <= *latest + 1 {
+                        *latest = a.index;
+                        let span = alarm(
+                            &t.monitor,
+                            &t.obs,
+                            first.chart,
+                            first.direction,
+                            first.since_index,
+                            a.index,
+                        );
+                        first.shift = span.shift;
+                        first.shift_sigma = span.shift_sigma;
+                        continue;
+                    }
+                }
+                let i = a.index;
+                out.push((a, i));
+            }
+            out.into_iter().map(|(a, _)| a).collect()
+        }
+    }
+
+    /// One observation at a time gives what the whole series at once gave:
+    /// every statistic, alarm and episode, bit for bit, on series with
+    /// steps, ramps, gaps (NaN) and spikes, for a centred monitor and a
+    /// range monitor; and without the statistics kept, the same episodes.
+    #[test]
+    fn one_at_a_time_equals_the_whole_series_at_once() {
+        let mut rng = StdRng::seed_from_u64(77);
+        let (mut alarms, mut merged) = (0usize, 0usize);
+        for case in 0..300u64 {
+            let n = 50 + (case as usize * 37) % 900;
+            let mut v = noise(1000 + case, n);
+            for x in v.iter_mut().skip(n / 3) {
+                *x += [0.0, 0.7, 1.5, -2.0, 3.0][case as usize % 5];
+            }
+            for (i, x) in v.iter_mut().enumerate().skip(2 * n / 3) {
+                *x += 0.01 * (i - 2 * n / 3) as f64 * [1.0, -1.0][case as usize % 2];
+            }
+            for _ in 0..3 {
+                let i = rng.random_range(0..n);
+                v[i] = if case % 2 == 0 { f64::NAN } else { 12.0 };
+            }
+            let obs: Vec<Obs> = v
+                .iter()
+                .enumerate()
+                .map(|(i, x)| Obs {
+                    time_ms: 1_000 * i as i64 + 17,
+                    value: *x,
+                })
+                .collect();
+            let sigma = [1.0, 0.8, 1.3][case as usize % 3];
+            for m in [
+                Monitor::new(Quantity::EmptyBaseline, 0.1, sigma),
+                Monitor::temperature(-0.5, 0.8, sigma),
+            ] {
+                let want = batch::run(&m, &obs);
+                let got = m.run(&obs);
+                assert_eq!(got.obs, want.obs, "case {case}");
+                assert_eq!(got.cusum_hi, want.cusum_hi, "case {case}");
+                assert_eq!(got.cusum_lo, want.cusum_lo, "case {case}");
+                assert_eq!(got.ewma, want.ewma, "case {case}");
+                assert_eq!(got.alarms, want.alarms, "case {case}");
+                let episodes = batch::episodes(&want);
+                alarms += want.alarms.len();
+                merged += want.alarms.len() - episodes.len();
+                assert_eq!(got.episodes(), episodes, "case {case}");
+                let mut lean = Running::new(m, false);
+                for o in &obs {
+                    lean.push(*o);
+                }
+                assert_eq!(lean.episodes(), &episodes[..], "case {case}");
+                let t = lean.into_trace();
+                assert!(t.obs.is_empty() && t.alarms.is_empty() && t.cusum_hi.is_empty());
+            }
+        }
+        // The series exercise both: alarms, and alarms merged into episodes.
+        assert!(
+            alarms > 1000 && merged > 300,
+            "{alarms} alarms, {merged} merged"
+        );
+    }
 
     fn noise(seed: u64, n: usize) -> Vec<f64> {
         let mut rng = StdRng::seed_from_u64(seed);
