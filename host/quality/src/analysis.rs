@@ -8,19 +8,26 @@
 //! | reference check | `(mean ratio / baseline - 1) x 100`, % | 0 (the cell-calibration baseline) | moving range of the first 20 checks (at least 0.005 %) |
 //! | lab residual | lab - inline moisture at the matched reading, %, of the pairs the product calibration in force made (the chart starts again with each calibration) | 0 | from 5 pairs on, the larger of the calibration's cross-validated SEP and the moving range of the residuals ([`lab_sigma`]); the SEP before; the moving range without a SEP |
 //! | empty-line baseline | eps' at the upper frequency of readings flagged `no_product` made with the cell calibration in force (the chart starts again with each) | mean of the first 5 (one empty spell, clean window) | moving range of those 5 (at least 0.0005) |
-//! | temperature | product temperature of readings with product, C | the calibrated range | moving range of all (at least 0.1 C) |
+//! | temperature | product temperature of readings with product made with the product calibration in force (the chart starts again with each), C | that calibration's range | moving range of the first 100 (at least 0.1 C) |
 //!
 //! Each uses the default charts: tabular CUSUM k 0.5, h 5 (in-control ARL
 //! 465) and EWMA lambda 0.1, L 2.814 (about 500); temperature only the
 //! one-sided CUSUMs from the range edges.
+//!
+//! Each sigma (and the empty line's target) comes from the chart's first
+//! observations and stays (Montgomery sec. 6.4, Phase I then Phase II), so
+//! that the charts run one observation at a time ([`Charts`]) and the live
+//! check of a device that runs for years holds a few numbers per chart, not
+//! its readings ([`LiveData`]). The temperature chart's sigma was the moving
+//! range of every temperature stored, which moved with each reading.
 
 use fringe_calibration::moisture::{convert, Basis};
 use fringe_protocol::{CalId, Flags, Reading, Seq};
 use serde::{Deserialize, Serialize};
 
-use fringe_store::{CalKind, RecordRead, StoreError};
+use fringe_store::{CalKind, RecordRead, StoreError, StoredLabSample};
 
-use crate::drift::{sigma_moving_range, Monitor, Obs, Quantity, Trace};
+use crate::drift::{sigma_moving_range, Alarm, Monitor, Obs, Quantity, Running, Trace};
 
 /// What `fringe cal push` / `cal cell` keep in a calibration record's body
 /// (beside the wire calibration), and the audit fields of a change.
@@ -121,7 +128,7 @@ pub struct LineData {
     /// Lab results in record order.
     pub lab: Vec<LabRow>,
     /// Calibration records: (position, created ms, kind, body).
-    pub cals: Vec<(u64, i64, CalKind, CalRecordBody, Option<String>)>,
+    pub cals: Vec<CalEntry>,
     /// Chain position of the last reference check read.
     refs_position: Option<u64>,
 }
@@ -187,11 +194,7 @@ pub fn load(
 /// when there is one, else the one in force at `time_ms` (the latest
 /// product record made by then, else the first one), from its record;
 /// `None` without a product record that says.
-fn basis_in_force(
-    cals: &[(u64, i64, CalKind, CalRecordBody, Option<String>)],
-    product_cal: Option<CalId>,
-    time_ms: i64,
-) -> Option<Basis> {
+fn basis_in_force(cals: &[CalEntry], product_cal: Option<CalId>, time_ms: i64) -> Option<Basis> {
     let products = || cals.iter().filter(|c| c.2 == CalKind::Product);
     let by_id = product_cal.and_then(|id| {
         let hex = id.to_string();
@@ -243,6 +246,92 @@ pub fn calibration_bases(
         .collect())
 }
 
+/// A calibration record as the monitors read it: chain position, created
+/// (ms since the Unix epoch), kind, body, name.
+pub type CalEntry = (u64, i64, CalKind, CalRecordBody, Option<String>);
+
+/// The calibration records of `serial` in `store`, as the monitors read
+/// them.
+fn cal_entries(
+    store: &(impl RecordRead + ?Sized),
+    serial: &str,
+) -> Result<Vec<CalEntry>, StoreError> {
+    Ok(store
+        .calibrations(serial)?
+        .into_iter()
+        .map(|c| {
+            let body: CalRecordBody =
+                serde_json::from_value(c.cal.body.clone()).unwrap_or_default();
+            (
+                c.position,
+                c.created_unix_ms,
+                c.cal.kind,
+                body,
+                c.cal.name.clone(),
+            )
+        })
+        .collect())
+}
+
+/// The lab rows of `samples`: each with the inline moisture and product
+/// calibration of its matched reading (`matched`, by sequence number) and
+/// its lab value on that calibration's basis. A corrected lab sample
+/// counts once, with its correction's values: the record another one
+/// supersedes is left out (both stay stored).
+fn lab_rows(
+    samples: Vec<StoredLabSample>,
+    cals: &[CalEntry],
+    mut matched: impl FnMut(Seq) -> Option<(Option<f32>, CalId)>,
+) -> Vec<LabRow> {
+    let superseded: std::collections::HashSet<u64> =
+        samples.iter().filter_map(|l| l.sample.supersedes).collect();
+    samples
+        .into_iter()
+        .filter(|l| !superseded.contains(&l.position))
+        .map(|l| {
+            let matched = l.sample.reading.and_then(&mut matched);
+            let inline_pct = matched.and_then(|m| m.0).map(f64::from);
+            let entered = crate::samples::basis_named(&l.sample.basis);
+            let made_with = matched.map(|m| m.1);
+            let lab_pct = match basis_in_force(cals, made_with, l.sample.taken_unix_ms) {
+                Some(b) => convert(l.sample.lab_moisture_pct, entered, b),
+                None => l.sample.lab_moisture_pct,
+            };
+            LabRow {
+                sample_id: l.sample.sample_id.clone(),
+                time_ms: l.sample.taken_unix_ms,
+                lab_pct,
+                inline_pct,
+                made_with,
+            }
+        })
+        .collect()
+}
+
+/// The id (8 hex digits) of the calibration of `kind` in force, and its
+/// latest record: `carried`, the id the newest reading that carries one of
+/// that kind carries, with its record if `cals` has one (another record is
+/// not taken for it: found by review); the latest record of `kind` where
+/// no reading carries one.
+fn in_force_of(
+    cals: &[CalEntry],
+    kind: CalKind,
+    carried: Option<CalId>,
+) -> (Option<String>, Option<&CalRecordBody>) {
+    let mut of_kind = cals.iter().rev().filter(|c| c.2 == kind);
+    match carried {
+        Some(id) => {
+            let id = id.to_string();
+            let record = of_kind.find(|c| c.3.new_id == id).map(|c| &c.3);
+            (Some(id), record)
+        }
+        None => {
+            let record = of_kind.next().map(|c| &c.3);
+            (record.map(|b| b.new_id.clone()), record)
+        }
+    }
+}
+
 impl LineData {
     /// Brings the data up to what `store` holds now: readings after the
     /// last one held and reference checks after the last one are appended
@@ -272,53 +361,14 @@ impl LineData {
                 baseline: f64::from(c.check.baseline),
             });
         }
-        self.cals = store
-            .calibrations(&self.serial)?
-            .into_iter()
-            .map(|c| {
-                let body: CalRecordBody =
-                    serde_json::from_value(c.cal.body.clone()).unwrap_or_default();
-                (
-                    c.position,
-                    c.created_unix_ms,
-                    c.cal.kind,
-                    body,
-                    c.cal.name.clone(),
-                )
-            })
-            .collect();
+        self.cals = cal_entries(store, &self.serial)?;
         let rows = &self.rows;
-        let cals = &self.cals;
-        // A corrected lab sample counts once, with its correction's values:
-        // the record another one supersedes is left out (both stay stored).
-        let samples = store.lab_samples(&self.serial)?;
-        let superseded: std::collections::HashSet<u64> =
-            samples.iter().filter_map(|l| l.sample.supersedes).collect();
-        self.lab = samples
-            .into_iter()
-            .filter(|l| !superseded.contains(&l.position))
-            .map(|l| {
-                let matched = l.sample.reading.and_then(|seq| {
-                    rows.binary_search_by_key(&seq, |r| r.reading.seq)
-                        .ok()
-                        .and_then(|i| rows.get(i))
-                });
-                let inline_pct = matched.and_then(|r| r.reading.moisture_pct).map(f64::from);
-                let entered = crate::samples::basis_named(&l.sample.basis);
-                let made_with = matched.map(|r| r.reading.product_cal);
-                let lab_pct = match basis_in_force(cals, made_with, l.sample.taken_unix_ms) {
-                    Some(b) => convert(l.sample.lab_moisture_pct, entered, b),
-                    None => l.sample.lab_moisture_pct,
-                };
-                LabRow {
-                    sample_id: l.sample.sample_id.clone(),
-                    time_ms: l.sample.taken_unix_ms,
-                    lab_pct,
-                    inline_pct,
-                    made_with,
-                }
-            })
-            .collect();
+        self.lab = lab_rows(store.lab_samples(&self.serial)?, &self.cals, |seq| {
+            rows.binary_search_by_key(&seq, |r| r.reading.seq)
+                .ok()
+                .and_then(|i| rows.get(i))
+                .map(|r| (r.reading.moisture_pct, r.reading.product_cal))
+        });
         Ok(())
     }
 
@@ -360,19 +410,8 @@ impl LineData {
             .iter()
             .rev()
             .map(|r| id_of(&r.reading))
-            .find(|id| *id != CalId::default())
-            .map(|id| id.to_string());
-        let mut of_kind = self.cals.iter().rev().filter(|c| c.2 == kind);
-        match carried {
-            Some(id) => {
-                let record = of_kind.find(|c| c.3.new_id == id).map(|c| &c.3);
-                (Some(id), record)
-            }
-            None => {
-                let record = of_kind.next().map(|c| &c.3);
-                (record.map(|b| b.new_id.clone()), record)
-            }
-        }
+            .find(|id| *id != CalId::default());
+        in_force_of(&self.cals, kind, carried)
     }
 
     /// The wire product calibration in force, if the record carries one.
@@ -389,18 +428,11 @@ impl LineData {
     /// is in force.
     pub fn lab_chart_pairs(&self) -> ChartRows<'_, LabRow> {
         let in_force = self.in_force(CalKind::Product, |r| r.product_cal).0;
-        let (charted, other): (Vec<&LabRow>, Vec<&LabRow>) = self
-            .lab
-            .iter()
-            .filter(|l| l.inline_pct.is_some())
-            .partition(|l| match &in_force {
-                Some(id) => l.made_with.is_some_and(|m| m.to_string() == *id),
-                None => true,
-            });
+        let (charted, other_calibrations) = lab_pairs(&self.lab, in_force.as_deref());
         ChartRows {
             calibration: in_force,
             charted,
-            other_calibrations: other.len(),
+            other_calibrations,
         }
     }
 
@@ -435,28 +467,351 @@ impl LineData {
         }
     }
 
-    /// The four monitors, set up as the module doc states, and their traces.
-    pub fn traces(&self) -> Vec<Trace> {
-        let mut out = Vec::new();
-        // (a) reference check
-        let ref_obs: Vec<Obs> = self
-            .refs
+    /// The readings the temperature chart charts: those with product made
+    /// with the product calibration in force (the chart starts again with
+    /// each calibration, against its range). None where no calibration is
+    /// in force.
+    pub fn temperature_chart_rows(&self) -> ChartRows<'_, Row> {
+        let in_force = self.product_in_force_id();
+        let id = in_force
+            .as_deref()
+            .and_then(crate::product_file::parse_cal_id);
+        let (charted, other): (Vec<&Row>, Vec<&Row>) = self
+            .rows
             .iter()
-            .filter(|r| r.baseline > 0.0)
-            .map(|r| Obs {
+            .filter(|r| {
+                !r.reading.flags.contains(Flags::NO_PRODUCT) && r.reading.temperature_c.is_finite()
+            })
+            .partition(|r| id == Some(r.reading.product_cal));
+        ChartRows {
+            calibration: in_force,
+            charted,
+            other_calibrations: other.len(),
+        }
+    }
+
+    /// The four monitors, set up as the module doc states, and their
+    /// traces: every reading and reference check fed to [`Charts`], as the
+    /// live check ([`LiveData`]) feeds them as they come.
+    pub fn traces(&self) -> Vec<Trace> {
+        let mut charts = Charts::new(true);
+        charts.set_ranges(&self.cals);
+        for r in &self.rows {
+            charts.push_reading(r.reading.seq, r.time_ms, &r.reading);
+        }
+        for r in &self.refs {
+            charts.push_reference(r);
+        }
+        charts.into_traces(&self.lab, &self.cals)
+    }
+}
+
+/// How many observations fix a chart's target and sigma (its Phase I,
+/// Montgomery sec. 6.4): the first 20 reference checks, the first 5 empty
+/// readings of a cell calibration, the first 100 temperatures of a
+/// product calibration.
+const REFERENCE_HEAD: usize = 20;
+/// See [`REFERENCE_HEAD`].
+const EMPTY_HEAD: usize = 5;
+/// See [`REFERENCE_HEAD`].
+pub const TEMPERATURE_HEAD: usize = 100;
+
+/// Which chart a [`HeadChart`] is, and how its first observations set it up.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum HeadKind {
+    Reference,
+    Empty,
+    Temperature { min_c: f64, max_c: f64 },
+}
+
+impl HeadKind {
+    fn head(self) -> usize {
+        match self {
+            Self::Reference => REFERENCE_HEAD,
+            Self::Empty => EMPTY_HEAD,
+            Self::Temperature { .. } => TEMPERATURE_HEAD,
+        }
+    }
+
+    /// The monitor set up on `head` (the first observations, or all of
+    /// them while there are fewer).
+    fn monitor(self, head: &[Obs]) -> Monitor {
+        let v: Vec<f64> = head.iter().map(|o| o.value).collect();
+        let sigma = sigma_moving_range(&v).unwrap_or(0.0);
+        match self {
+            Self::Reference => Monitor::new(Quantity::ReferenceCheck, 0.0, sigma.max(0.005)),
+            Self::Empty => {
+                let target = if v.is_empty() {
+                    0.0
+                } else {
+                    v.iter().sum::<f64>() / v.len() as f64
+                };
+                Monitor::new(Quantity::EmptyBaseline, target, sigma.max(0.0005))
+            }
+            Self::Temperature { min_c, max_c } => {
+                Monitor::temperature(min_c, max_c, sigma.max(0.1))
+            }
+        }
+    }
+}
+
+/// A chart whose target and sigma come from its first observations: it
+/// holds them until there are enough, then runs on ([`Running`]) holding
+/// a few numbers (and, for plots, every observation if asked to).
+#[derive(Debug, Clone)]
+struct HeadChart {
+    kind: HeadKind,
+    keep: bool,
+    pushed: usize,
+    head: Vec<Obs>,
+    running: Option<Running>,
+}
+
+impl HeadChart {
+    fn new(kind: HeadKind, keep: bool) -> Self {
+        Self {
+            kind,
+            keep,
+            pushed: 0,
+            head: Vec::new(),
+            running: None,
+        }
+    }
+
+    fn push(&mut self, o: Obs) {
+        self.pushed += 1;
+        match self.running.as_mut() {
+            Some(r) => r.push(o),
+            None => {
+                self.head.push(o);
+                if self.head.len() == self.kind.head() {
+                    let mut r = Running::new(self.kind.monitor(&self.head), self.keep);
+                    for o in &self.head {
+                        r.push(*o);
+                    }
+                    self.running = Some(r);
+                }
+            }
+        }
+    }
+
+    /// The chart as it stands (set up on what it has while its head is
+    /// not yet full).
+    fn running(&self) -> std::borrow::Cow<'_, Running> {
+        match &self.running {
+            Some(r) => std::borrow::Cow::Borrowed(r),
+            None => {
+                let mut r = Running::new(self.kind.monitor(&self.head), self.keep);
+                for o in &self.head {
+                    r.push(*o);
+                }
+                std::borrow::Cow::Owned(r)
+            }
+        }
+    }
+
+    fn into_trace(self) -> Trace {
+        match self.running {
+            Some(r) => r.into_trace(),
+            None => self.running().into_owned().into_trace(),
+        }
+    }
+}
+
+/// The monitors of one device fed one reading and one reference check at
+/// a time, each chart kept for every calibration it charts under (the
+/// empty-line chart per cell calibration, the temperature chart per
+/// product calibration), so that whichever is in force at the end is
+/// there. Without the statistics kept for plots, it holds a few numbers
+/// per chart and calibration, and the alarm episodes, however long the
+/// device runs.
+#[derive(Debug, Clone)]
+pub struct Charts {
+    keep: bool,
+    reference: HeadChart,
+    empty: std::collections::BTreeMap<CalId, HeadChart>,
+    temperature: std::collections::BTreeMap<CalId, HeadChart>,
+    /// Readings with product of each product calibration: how many, and
+    /// the first one's sequence number (to chart them again when the
+    /// calibration's record, and so its range, comes later).
+    product_rows: std::collections::BTreeMap<CalId, (usize, Seq)>,
+    ranges: std::collections::BTreeMap<CalId, (f64, f64)>,
+    last_product: Option<CalId>,
+    last_cell: Option<CalId>,
+}
+
+impl Charts {
+    /// No observation yet; `keep`: keep every observation and statistic
+    /// for plots.
+    pub fn new(keep: bool) -> Self {
+        Self {
+            keep,
+            reference: HeadChart::new(HeadKind::Reference, keep),
+            empty: std::collections::BTreeMap::new(),
+            temperature: std::collections::BTreeMap::new(),
+            product_rows: std::collections::BTreeMap::new(),
+            ranges: std::collections::BTreeMap::new(),
+            last_product: None,
+            last_cell: None,
+        }
+    }
+
+    /// Takes the calibrated temperature range of each product calibration
+    /// `cals` has a record of (its latest record). Returns the product
+    /// calibrations whose range is new or changed and that readings
+    /// already carry, with the first such reading's sequence number: their
+    /// temperature chart is to be fed again from there
+    /// ([`Charts::recharted_temperature`]).
+    pub fn set_ranges(&mut self, cals: &[CalEntry]) -> Vec<(CalId, Seq)> {
+        let mut again = Vec::new();
+        for c in cals.iter().filter(|c| c.2 == CalKind::Product) {
+            let Some(id) = crate::product_file::parse_cal_id(&c.3.new_id) else {
+                continue;
+            };
+            let Ok(cal) =
+                serde_json::from_value::<fringe_protocol::ProductCal>(c.3.calibration.clone())
+            else {
+                continue;
+            };
+            let range = (
+                f64::from(cal.temperature_c.min),
+                f64::from(cal.temperature_c.max),
+            );
+            if self.ranges.insert(id, range) != Some(range) {
+                self.temperature.remove(&id);
+                if let Some((_, first)) = self.product_rows.get(&id) {
+                    again.push((id, *first));
+                }
+            }
+        }
+        again.sort();
+        again.dedup();
+        again
+    }
+
+    /// Charts one reading (in sequence order; `time_ms`: its wall-clock
+    /// time).
+    pub fn push_reading(&mut self, seq: Seq, time_ms: i64, r: &Reading) {
+        if r.product_cal != CalId::default() {
+            self.last_product = Some(r.product_cal);
+        }
+        if r.cell_cal != CalId::default() {
+            self.last_cell = Some(r.cell_cal);
+        }
+        if r.flags.contains(Flags::NO_PRODUCT) {
+            let eps = r.channels[1].eps_re;
+            if eps.is_finite() {
+                let keep = self.keep;
+                self.empty
+                    .entry(r.cell_cal)
+                    .or_insert_with(|| HeadChart::new(HeadKind::Empty, keep))
+                    .push(Obs {
+                        time_ms,
+                        value: f64::from(eps),
+                    });
+            }
+        } else if r.temperature_c.is_finite() {
+            self.product_rows
+                .entry(r.product_cal)
+                .and_modify(|e| e.0 += 1)
+                .or_insert((1, seq));
+            self.push_temperature(r.product_cal, time_ms, r.temperature_c);
+        }
+    }
+
+    fn push_temperature(&mut self, id: CalId, time_ms: i64, t: f32) {
+        let Some((min_c, max_c)) = self.ranges.get(&id).copied() else {
+            return;
+        };
+        let keep = self.keep;
+        self.temperature
+            .entry(id)
+            .or_insert_with(|| HeadChart::new(HeadKind::Temperature { min_c, max_c }, keep))
+            .push(Obs {
+                time_ms,
+                value: f64::from(t),
+            });
+    }
+
+    /// Starts the temperature chart of product calibration `id` again,
+    /// to be fed its readings from the first ([`Charts::push_recharted`]).
+    pub fn restart_temperature(&mut self, id: CalId) {
+        self.temperature.remove(&id);
+    }
+
+    /// Feeds reading `r` (at wall-clock `time_ms`) to the temperature chart
+    /// of product calibration `id` being charted again, if it is one of
+    /// that chart's (others' readings are passed over).
+    pub fn push_recharted(&mut self, id: CalId, time_ms: i64, r: &Reading) {
+        if r.product_cal == id
+            && !r.flags.contains(Flags::NO_PRODUCT)
+            && r.temperature_c.is_finite()
+        {
+            self.push_temperature(id, time_ms, r.temperature_c);
+        }
+    }
+
+    /// Charts one reference check.
+    pub fn push_reference(&mut self, r: &RefRow) {
+        if r.baseline > 0.0 {
+            self.reference.push(Obs {
                 time_ms: r.time_ms,
                 value: (r.ratio / r.baseline - 1.0) * 100.0,
-            })
-            .collect();
-        let head: Vec<f64> = ref_obs.iter().take(20).map(|o| o.value).collect();
-        let sigma = sigma_moving_range(&head).unwrap_or(0.0).max(0.005);
-        out.push(Monitor::new(Quantity::ReferenceCheck, 0.0, sigma).run(&ref_obs));
+            });
+        }
+    }
+
+    /// The four traces, as the module doc sets them up: the reference
+    /// check, the lab residuals of `lab` (few: charted whole each time),
+    /// the empty-line baseline of the cell calibration in force, and the
+    /// temperature of the product calibration in force where its record
+    /// gives a range.
+    pub fn into_traces(mut self, lab: &[LabRow], cals: &[CalEntry]) -> Vec<Trace> {
+        let (lab_trace, product, cell) = self.lab_and_in_force(lab, cals);
+        let empty = cell
+            .and_then(|id| self.empty.remove(&id))
+            .unwrap_or_else(|| HeadChart::new(HeadKind::Empty, self.keep));
+        let mut out = vec![self.reference.into_trace(), lab_trace, empty.into_trace()];
+        if let Some(id) = product.filter(|id| self.ranges.contains_key(id)) {
+            out.push(match self.temperature.remove(&id) {
+                Some(c) => c.into_trace(),
+                None => {
+                    let (min_c, max_c) = self.ranges[&id];
+                    HeadChart::new(HeadKind::Temperature { min_c, max_c }, self.keep).into_trace()
+                }
+            });
+        }
+        out
+    }
+
+    /// The alarm episodes of the four traces ([`Charts::into_traces`])
+    /// without taking the charts.
+    pub fn episodes(&self, lab: &[LabRow], cals: &[CalEntry]) -> Vec<Alarm> {
+        let (lab_trace, product, cell) = self.lab_and_in_force(lab, cals);
+        let mut out = self.reference.running().episodes().to_vec();
+        out.extend(lab_trace.episodes());
+        if let Some(c) = cell.and_then(|id| self.empty.get(&id)) {
+            out.extend_from_slice(c.running().episodes());
+        }
+        if let Some(c) = product.and_then(|id| self.temperature.get(&id)) {
+            out.extend_from_slice(c.running().episodes());
+        }
+        out
+    }
+
+    /// The lab chart's trace, and the product and cell calibrations in
+    /// force as chart keys (`None`: nothing of that kind is charted).
+    fn lab_and_in_force(
+        &self,
+        lab: &[LabRow],
+        cals: &[CalEntry],
+    ) -> (Trace, Option<CalId>, Option<CalId>) {
+        let (product_id, product_record) = in_force_of(cals, CalKind::Product, self.last_product);
         // (b) lab residuals of the calibration in force, in the order the
         // samples were taken (they are recorded as the lab reports them: a
         // late result, or a correction of an earlier one, comes last)
-        let mut lab_obs: Vec<Obs> = self
-            .lab_chart_pairs()
-            .charted
+        let mut lab_obs: Vec<Obs> = lab_pairs(lab, product_id.as_deref())
+            .0
             .iter()
             .filter_map(|l| {
                 l.inline_pct.map(|i| Obs {
@@ -466,55 +821,168 @@ impl LineData {
             })
             .collect();
         lab_obs.sort_by_key(|o| o.time_ms);
-        let sep = self
-            .product_in_force()
+        let sep = product_record
             .and_then(|b| b.statistics.as_ref())
             .map(|s| s.sep)
             .filter(|s| *s > 0.0);
-        out.push(Monitor::new(Quantity::LabResidual, 0.0, lab_sigma(sep, &lab_obs)).run(&lab_obs));
-        // (c) empty-line baseline, of the cell calibration in force
-        let empty: Vec<Obs> = self
-            .empty_chart_rows()
-            .charted
-            .iter()
-            .map(|r| Obs {
-                time_ms: r.time_ms,
-                value: f64::from(r.reading.channels[1].eps_re),
-            })
-            .collect();
-        let first: Vec<f64> = empty.iter().take(5).map(|o| o.value).collect();
-        let target = if first.is_empty() {
-            0.0
-        } else {
-            first.iter().sum::<f64>() / first.len() as f64
+        let lab_trace =
+            Monitor::new(Quantity::LabResidual, 0.0, lab_sigma(sep, &lab_obs)).run(&lab_obs);
+        // The chart keys: the id in force where it parses (an id no reading
+        // carries charts nothing); the readings without one where no record
+        // of that kind is in force either.
+        let key = |id: Option<String>| match id {
+            Some(h) => crate::product_file::parse_cal_id(&h),
+            None => Some(CalId::default()),
         };
-        let sigma = sigma_moving_range(&first).unwrap_or(0.0).max(0.0005);
-        out.push(Monitor::new(Quantity::EmptyBaseline, target, sigma).run(&empty));
-        // (d) temperature against the calibrated range
-        if let Some(cal) = self.product_cal() {
-            let temps: Vec<Obs> = self
-                .rows
-                .iter()
-                .filter(|r| {
-                    !r.reading.flags.contains(Flags::NO_PRODUCT)
-                        && r.reading.temperature_c.is_finite()
-                })
-                .map(|r| Obs {
-                    time_ms: r.time_ms,
-                    value: f64::from(r.reading.temperature_c),
-                })
-                .collect();
-            let sigma = sigma_moving_range(&temps.iter().map(|o| o.value).collect::<Vec<_>>())
-                .unwrap_or(0.0)
-                .max(0.1);
-            let (lo, hi) = (
-                f64::from(cal.temperature_c.min),
-                f64::from(cal.temperature_c.max),
-            );
-            out.push(Monitor::temperature(lo, hi, sigma).run(&temps));
-        }
-        out
+        let cell = key(in_force_of(cals, CalKind::Cell, self.last_cell).0);
+        let product = product_id
+            .is_some()
+            .then(|| key(product_id.clone()))
+            .flatten();
+        (lab_trace, product, cell)
     }
+}
+
+/// What the live drift check of a device keeps ([`crate::watch`]): the
+/// monitors' state ([`Charts`], without the statistics for plots), the lab
+/// rows and the calibration records, not the readings. Each refresh reads
+/// only the readings and reference checks added since; its episodes are
+/// those of [`LineData::traces`] on the same store.
+#[derive(Debug, Clone)]
+pub struct LiveData {
+    serial: String,
+    charts: Charts,
+    cals: Vec<CalEntry>,
+    lab: Vec<LabRow>,
+    /// The first sequence number not yet read, and the last one read.
+    next: Seq,
+    last: Option<Seq>,
+    refs_position: Option<u64>,
+    /// The reading each lab sample names, read from the store once.
+    matched: std::collections::HashMap<Seq, (Option<f32>, CalId)>,
+    readings: u64,
+}
+
+impl LiveData {
+    /// Reads device `serial`'s data.
+    ///
+    /// # Errors
+    /// A store failure, or no such device.
+    pub fn load(store: &(impl RecordRead + ?Sized), serial: &str) -> Result<Self, LoadError> {
+        if !store.devices()?.iter().any(|d| d.serial == serial) {
+            return Err(LoadError::NoSuchDevice {
+                serial: serial.into(),
+                db: store.path().display().to_string(),
+            });
+        }
+        let mut d = Self {
+            serial: serial.into(),
+            charts: Charts::new(false),
+            cals: Vec::new(),
+            lab: Vec::new(),
+            next: Seq::from_u64(0),
+            last: None,
+            refs_position: None,
+            matched: std::collections::HashMap::new(),
+            readings: 0,
+        };
+        d.refresh(store)?;
+        Ok(d)
+    }
+
+    /// Readings charted so far.
+    pub fn readings(&self) -> u64 {
+        self.readings
+    }
+
+    /// Brings the charts up to what `store` holds now: the calibration
+    /// records (a temperature chart whose calibration's record came after
+    /// its readings is charted again from them), the readings and reference
+    /// checks added since, the lab samples whole (few, and a result may
+    /// arrive late).
+    ///
+    /// # Errors
+    /// A store failure.
+    pub fn refresh(&mut self, store: &(impl RecordRead + ?Sized)) -> Result<(), StoreError> {
+        self.cals = cal_entries(store, &self.serial)?;
+        if let Some(last) = self.last {
+            for (id, first) in self.charts.set_ranges(&self.cals) {
+                self.charts.restart_temperature(id);
+                let charts = &mut self.charts;
+                let to = Seq::from_u64(last.as_u64().saturating_add(1));
+                store.for_each_reading(&self.serial, first, to, &mut |r| {
+                    charts.push_recharted(
+                        id,
+                        r.wall_ms.unwrap_or(r.reading.time_ms as i64),
+                        &r.reading,
+                    );
+                    Ok(())
+                })?;
+            }
+        } else {
+            self.charts.set_ranges(&self.cals);
+        }
+        let (charts, last, readings) = (&mut self.charts, &mut self.last, &mut self.readings);
+        store.for_each_reading(&self.serial, self.next, Seq::from_u64(u64::MAX), &mut |r| {
+            let time_ms = r.wall_ms.unwrap_or(r.reading.time_ms as i64);
+            charts.push_reading(r.reading.seq, time_ms, &r.reading);
+            *last = Some(r.reading.seq);
+            *readings += 1;
+            Ok(())
+        })?;
+        if let Some(l) = self.last {
+            self.next = Seq::from_u64(l.as_u64().saturating_add(1));
+        }
+        for c in store.reference_checks_after(&self.serial, self.refs_position)? {
+            self.refs_position = Some(c.position);
+            self.charts.push_reference(&RefRow {
+                time_ms: c.time_ms,
+                ratio: (f64::from(c.check.ratio[0]) + f64::from(c.check.ratio[1])) / 2.0,
+                baseline: f64::from(c.check.baseline),
+            });
+        }
+        let samples = store.lab_samples(&self.serial)?;
+        for seq in samples.iter().filter_map(|l| l.sample.reading) {
+            if self.matched.contains_key(&seq) {
+                continue;
+            }
+            let to = Seq::from_u64(seq.as_u64().saturating_add(1));
+            let mut found = None;
+            store.for_each_reading(&self.serial, seq, to, &mut |r| {
+                if r.reading.seq == seq {
+                    found = Some((r.reading.moisture_pct, r.reading.product_cal));
+                }
+                Ok(())
+            })?;
+            // A reading not stored yet is looked for again next time.
+            if let Some(f) = found {
+                self.matched.insert(seq, f);
+            }
+        }
+        let matched = &self.matched;
+        self.lab = lab_rows(samples, &self.cals, |seq| matched.get(&seq).copied());
+        Ok(())
+    }
+
+    /// The alarm episodes of the four monitors, as [`LineData::traces`]
+    /// gives them (reference check, lab residual, empty line, temperature).
+    pub fn episodes(&self) -> Vec<Alarm> {
+        self.charts.episodes(&self.lab, &self.cals)
+    }
+}
+
+/// The lab pairs with an inline value made under product calibration
+/// `in_force` (8 hex digits; all of them for `None`), and how many were
+/// made under others.
+fn lab_pairs<'a>(lab: &'a [LabRow], in_force: Option<&str>) -> (Vec<&'a LabRow>, usize) {
+    let (charted, other): (Vec<&LabRow>, Vec<&LabRow>) = lab
+        .iter()
+        .filter(|l| l.inline_pct.is_some())
+        .partition(|l| match in_force {
+            Some(id) => l.made_with.is_some_and(|m| m.to_string() == *id),
+            None => true,
+        });
+    (charted, other.len())
 }
 
 /// Lab pairs from which their own scatter counts in the lab chart's sigma.
@@ -709,6 +1177,143 @@ mod tests {
                 },
             )
             .unwrap();
+    }
+
+    /// A product calibration record with a calibrated temperature range
+    /// (made-up calibration).
+    fn product_record(store: &mut Store, id: CalId, min_c: f32, max_c: f32) {
+        let cal = fringe_protocol::ProductCal {
+            name: heapless::String::try_from("chips").unwrap(),
+            model: fringe_protocol::ModelKind::SingleFrequency,
+            basis: fringe_protocol::Basis::Wet,
+            params: heapless::Vec::new(),
+            moisture_pct: fringe_protocol::Range {
+                min: 5.0,
+                max: 30.0,
+            },
+            temperature_c: fringe_protocol::Range {
+                min: min_c,
+                max: max_c,
+            },
+            inputs: heapless::Vec::new(),
+            sec_pct: 0.2,
+            made_s: 0,
+        };
+        let body = CalRecordBody {
+            calibration: serde_json::to_value(&cal).unwrap(),
+            new_id: id.to_string(),
+            action: "push".into(),
+            statistics: Some(crate::product_file::Statistics {
+                sep: 0.1,
+                ..Default::default()
+            }),
+            ..CalRecordBody::default()
+        };
+        store
+            .insert_calibration(
+                "L2",
+                &fringe_store::NewCalibration {
+                    kind: CalKind::Product,
+                    cal_id: id,
+                    slot: Some(0),
+                    name: Some("chips".into()),
+                    body: serde_json::to_value(&body).unwrap(),
+                    note: None,
+                    supersedes: None,
+                },
+            )
+            .unwrap();
+    }
+
+    /// The live check keeps the charts' state, not the readings, and finds
+    /// the episodes a fresh read of the whole store finds (`fringe drift`),
+    /// refresh after refresh: across a product calibration change, a cell
+    /// calibration change, a product calibration whose record is stored
+    /// after readings that carry it (its temperature chart charted again
+    /// from them), temperatures beyond the range and build-up on the
+    /// window. (Made-up readings.)
+    #[test]
+    fn the_live_check_finds_what_a_fresh_read_finds_without_the_readings() {
+        let (a, b) = (CalId([0x0a; 4]), CalId([0x0b; 4]));
+        let (c1, c2) = (CalId([0xc1; 4]), CalId([0xc2; 4]));
+        let at = |i: u32| {
+            let mut r = reading(i);
+            r.product_cal = if i < 600 { a } else { b };
+            r.cell_cal = if i < 400 { c1 } else { c2 };
+            // Too warm for a while under each product calibration.
+            if (250..330).contains(&i) || (800..900).contains(&i) {
+                r.temperature_c += 9.0;
+            }
+            // Build-up on the window after a while under each cell
+            // calibration.
+            if r.flags.contains(Flags::NO_PRODUCT) && (i % 400) > 200 {
+                r.channels[1].eps_re += 0.0001 * (i % 400 - 200) as f32;
+            }
+            r
+        };
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = store_of_l2(dir.path());
+        product_record(&mut store, a, 10.0, 28.0);
+        let mut live = LiveData::load(&store, "L2").unwrap();
+        let episodes = |store: &Store| -> Vec<Alarm> {
+            load(store, Some("L2"))
+                .unwrap()
+                .traces()
+                .iter()
+                .flat_map(|t| t.episodes())
+                .collect()
+        };
+        let mut to = 0;
+        for step in [1u32, 99, 150, 200, 50, 100, 300, 100] {
+            let from = to;
+            to += step;
+            let rs: Vec<Reading> = (from..to).map(at).collect();
+            store.insert_readings("L2", &rs, Source::Stream).unwrap();
+            for i in (from..to).filter(|i| i % 10 == 0) {
+                let check = RefCheck {
+                    ratio: [1.0 + i as f32 * 1e-4, 1.0],
+                    baseline: 1.0,
+                    ok: true,
+                };
+                store
+                    .insert_reference_check("L2", at(i).time_ms as i64, &check)
+                    .unwrap();
+            }
+            // Calibration b's record only after readings carry it.
+            if to == 1000 {
+                product_record(&mut store, b, 10.0, 28.0);
+            }
+            live.refresh(&store).unwrap();
+            assert_eq!(live.episodes(), episodes(&store), "after {to} readings");
+        }
+        assert_eq!(live.readings(), 1000);
+        // The temperature chart charts the readings of the calibration in
+        // force, as `fringe drift` counts them.
+        let whole = load(&store, Some("L2")).unwrap();
+        let charted = whole.temperature_chart_rows();
+        assert_eq!(charted.calibration.as_deref(), Some("0b0b0b0b"));
+        assert_eq!(charted.other_calibrations, 480);
+        let traces = whole.traces();
+        assert_eq!(traces[3].monitor.quantity, Quantity::Temperature);
+        assert_eq!(traces[3].obs.len(), charted.charted.len());
+        assert_eq!(charted.charted.len(), 320);
+        let all = live.episodes();
+        for q in [
+            Quantity::Temperature,
+            Quantity::EmptyBaseline,
+            Quantity::ReferenceCheck,
+        ] {
+            assert!(all.iter().any(|e| e.quantity == q), "{q:?}: {all:?}");
+        }
+        // The temperature episode is calibration b's, charted again from
+        // its first reading once its record came: its change point lies
+        // before the record was stored.
+        let t = all
+            .iter()
+            .find(|e| e.quantity == Quantity::Temperature)
+            .unwrap();
+        assert!(t.since_ms < at(900).time_ms as i64, "{t:?}");
+        assert!(t.since_ms >= at(600).time_ms as i64, "{t:?}");
     }
 
     fn same(a: &LineData, b: &LineData) {

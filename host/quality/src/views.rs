@@ -366,6 +366,15 @@ pub fn write_drift(
                     "cell",
                 ))
             }
+            Quantity::Temperature => {
+                let r = data.temperature_chart_rows();
+                Some((
+                    r.calibration,
+                    r.other_calibrations,
+                    ["readings", "reading(s)"],
+                    "product",
+                ))
+            }
             _ => None,
         };
         if let Some((Some(id), left_out @ 1.., [these, what], kind)) = scope {
@@ -395,6 +404,11 @@ pub fn drift_json(data: &LineData, traces: &[Trace]) -> serde_json::Value {
             }
             if t.monitor.quantity == Quantity::EmptyBaseline {
                 let rows = data.empty_chart_rows();
+                v["calibration"] = json!(rows.calibration);
+                v["under_other_calibrations"] = json!(rows.other_calibrations);
+            }
+            if t.monitor.quantity == Quantity::Temperature {
+                let rows = data.temperature_chart_rows();
                 v["calibration"] = json!(rows.calibration);
                 v["under_other_calibrations"] = json!(rows.other_calibrations);
             }

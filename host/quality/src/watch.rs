@@ -8,13 +8,15 @@
 //! the episodes already in the record; they are counted, not announced as
 //! new. The episodes are those `fringe drift` prints, as both read the same
 //! store with the same code. The data are read once, then only what was
-//! added since ([`crate::analysis::LineData::refresh`]).
+//! added since, and only the monitors' state is kept, not the readings
+//! ([`crate::analysis::LiveData`]): its memory does not grow with the
+//! device's history.
 
 use std::time::{Duration, Instant};
 
 use fringe_store::RecordRead;
 
-use crate::analysis::{self, LineData, LoadError};
+use crate::analysis::{LiveData, LoadError};
 use crate::drift::{Alarm, Direction, Quantity};
 
 /// What one [`DriftWatch::check`] found.
@@ -48,7 +50,7 @@ pub struct DriftWatch {
     /// point to the first alarm, ms.
     known: Vec<(Quantity, Direction, i64, i64)>,
     primed: bool,
-    data: Option<LineData>,
+    data: Option<LiveData>,
 }
 
 impl DriftWatch {
@@ -96,7 +98,7 @@ impl DriftWatch {
                 d.refresh(store)?;
                 d
             }
-            None => match analysis::load(store, Some(serial)) {
+            None => match LiveData::load(store, serial) {
                 Ok(d) => self.data.insert(d),
                 // Nothing stored for the device yet: nothing to watch.
                 Err(_) if store.last_seq(serial)?.is_none() => {
@@ -110,13 +112,11 @@ impl DriftWatch {
             },
         };
         let mut fresh = Vec::new();
-        for t in data.traces() {
-            for a in t.episodes() {
-                if !seen(&self.known, &a) {
-                    self.known
-                        .push((a.quantity, a.direction, a.since_ms, a.time_ms));
-                    fresh.push(a);
-                }
+        for a in data.episodes() {
+            if !seen(&self.known, &a) {
+                self.known
+                    .push((a.quantity, a.direction, a.since_ms, a.time_ms));
+                fresh.push(a);
             }
         }
         if at_start {
