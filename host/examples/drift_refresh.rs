@@ -6,7 +6,8 @@
 //!
 //! `cargo run --release -p fringe-host --example drift_refresh -- 200000`
 //!
-//! The readings are invented (one a second, an empty spell every minute).
+//! The readings are invented (one a second, an empty spell every minute, a
+//! grab sample every 1000 readings).
 
 use std::time::Instant;
 
@@ -92,6 +93,23 @@ fn main() -> anyhow::Result<()> {
             supersedes: None,
         },
     )?;
+    // A grab sample every 1000 readings.
+    for i in (500..n).step_by(1000) {
+        st.insert_lab_sample(
+            "HGM-L2-9999",
+            &fringe_host::store::NewLabSample {
+                sample_id: format!("G-{i}"),
+                taken_unix_ms: reading(i).time_ms as i64,
+                product: None,
+                lab_moisture_pct: 14.0 + f64::from(i % 7) * 0.05,
+                basis: "wet".into(),
+                method: None,
+                reading: Some(reading(i).seq),
+                note: None,
+                supersedes: None,
+            },
+        )?;
+    }
     // The live check (`fringe monitor`, each device of `fringe gateway`):
     // the charts' state only.
     let rss0 = rss_kib();

@@ -14,12 +14,15 @@
 //! 465) and EWMA lambda 0.1, L 2.814 (about 500); temperature only the
 //! one-sided CUSUMs from the range edges.
 //!
-//! Each sigma (and the empty line's target) comes from the chart's first
-//! observations and stays (Montgomery sec. 6.4, Phase I then Phase II), so
-//! that the charts run one observation at a time ([`Charts`]) and the live
-//! check of a device that runs for years holds a few numbers per chart, not
-//! its readings ([`LiveData`]). The temperature chart's sigma was the moving
-//! range of every temperature stored, which moved with each reading.
+//! The sigma of the charts of readings and reference checks (and the empty
+//! line's target) comes from the chart's first observations and stays
+//! (Montgomery sec. 6.4, Phase I then Phase II), so that they run one
+//! observation at a time ([`Charts`]) and the live check of a device that
+//! runs for years holds a few numbers per chart, not its readings
+//! ([`LiveData`]). The temperature chart's sigma was the moving range of
+//! every temperature stored, which moved with each reading. The lab chart,
+//! of a few grab samples, is charted whole at each check, its sigma from
+//! all its pairs.
 
 use fringe_calibration::moisture::{convert, Basis};
 use fringe_protocol::{CalId, Flags, Reading, Seq};
@@ -663,14 +666,24 @@ impl Charts {
     /// temperature chart is to be fed again from there
     /// ([`Charts::recharted_temperature`]).
     pub fn set_ranges(&mut self, cals: &[CalEntry]) -> Vec<(CalId, Seq)> {
-        let mut again = Vec::new();
+        // The latest record of each calibration is the one in force for it
+        // (`in_force_of`); a calibration whose latest record gives no range
+        // has none, as `LineData::product_cal` has none for it.
+        let mut latest: std::collections::BTreeMap<CalId, &CalRecordBody> =
+            std::collections::BTreeMap::new();
         for c in cals.iter().filter(|c| c.2 == CalKind::Product) {
-            let Some(id) = crate::product_file::parse_cal_id(&c.3.new_id) else {
-                continue;
-            };
+            if let Some(id) = crate::product_file::parse_cal_id(&c.3.new_id) {
+                latest.insert(id, &c.3);
+            }
+        }
+        let mut again = Vec::new();
+        for (id, body) in latest {
             let Ok(cal) =
-                serde_json::from_value::<fringe_protocol::ProductCal>(c.3.calibration.clone())
+                serde_json::from_value::<fringe_protocol::ProductCal>(body.calibration.clone())
             else {
+                if self.ranges.remove(&id).is_some() {
+                    self.temperature.remove(&id);
+                }
                 continue;
             };
             let range = (
@@ -684,9 +697,15 @@ impl Charts {
                 }
             }
         }
-        again.sort();
-        again.dedup();
         again
+    }
+
+    /// Forgets the range of product calibration `id` and its temperature
+    /// chart (a re-chart that failed: the next [`Charts::set_ranges`]
+    /// asks for it again).
+    pub fn forget_range(&mut self, id: CalId) {
+        self.ranges.remove(&id);
+        self.temperature.remove(&id);
     }
 
     /// Charts one reading (in sequence order; `time_ms`: its wall-clock
@@ -845,21 +864,28 @@ impl Charts {
 
 /// What the live drift check of a device keeps ([`crate::watch`]): the
 /// monitors' state ([`Charts`], without the statistics for plots), the lab
-/// rows and the calibration records, not the readings. Each refresh reads
-/// only the readings and reference checks added since; its episodes are
-/// those of [`LineData::traces`] on the same store.
+/// rows and the calibration records, not the readings. What it holds grows
+/// with the alarm episodes, lab samples and calibrations, not with the
+/// readings. Each refresh reads only the readings and reference checks
+/// added since; its episodes are those of [`LineData::traces`] on the same
+/// store, with two exceptions: readings stored below the last one it read
+/// (`fringe pull` filling a gap from another process while it runs) are
+/// charted by a fresh read, not by it; and a reading it charted before its
+/// boot's clock was known keeps the device's own time, where a fresh read
+/// takes the wall-clock time the clock event gave later.
 #[derive(Debug, Clone)]
 pub struct LiveData {
     serial: String,
     charts: Charts,
     cals: Vec<CalEntry>,
     lab: Vec<LabRow>,
-    /// The first sequence number not yet read, and the last one read.
-    next: Seq,
+    /// The last sequence number read.
     last: Option<Seq>,
     refs_position: Option<u64>,
-    /// The reading each lab sample names, read from the store once.
-    matched: std::collections::HashMap<Seq, (Option<f32>, CalId)>,
+    /// The reading each lab sample names (`None`: not stored), found as
+    /// the readings stream past or, for a sample entered after its reading
+    /// was read, from the store once.
+    matched: std::collections::HashMap<Seq, Option<(Option<f32>, CalId)>>,
     readings: u64,
 }
 
@@ -880,7 +906,6 @@ impl LiveData {
             charts: Charts::new(false),
             cals: Vec::new(),
             lab: Vec::new(),
-            next: Seq::from_u64(0),
             last: None,
             refs_position: None,
             matched: std::collections::HashMap::new(),
@@ -905,33 +930,72 @@ impl LiveData {
     /// A store failure.
     pub fn refresh(&mut self, store: &(impl RecordRead + ?Sized)) -> Result<(), StoreError> {
         self.cals = cal_entries(store, &self.serial)?;
+        let again = self.charts.set_ranges(&self.cals);
         if let Some(last) = self.last {
-            for (id, first) in self.charts.set_ranges(&self.cals) {
-                self.charts.restart_temperature(id);
+            for (k, (id, first)) in again.iter().enumerate() {
                 let charts = &mut self.charts;
-                let to = Seq::from_u64(last.as_u64().saturating_add(1));
-                store.for_each_reading(&self.serial, first, to, &mut |r| {
-                    charts.push_recharted(
-                        id,
-                        r.wall_ms.unwrap_or(r.reading.time_ms as i64),
-                        &r.reading,
-                    );
+                let read = store.for_each_reading(&self.serial, *first, last, &mut |r| {
+                    let time_ms = r.wall_ms.unwrap_or(r.reading.time_ms as i64);
+                    charts.push_recharted(*id, time_ms, &r.reading);
                     Ok(())
-                })?;
+                });
+                if let Err(e) = read {
+                    // Charted again by the next refresh, whole.
+                    for (id, _) in &again[k..] {
+                        self.charts.forget_range(*id);
+                    }
+                    return Err(e);
+                }
             }
-        } else {
-            self.charts.set_ranges(&self.cals);
         }
-        let (charts, last, readings) = (&mut self.charts, &mut self.last, &mut self.readings);
-        store.for_each_reading(&self.serial, self.next, Seq::from_u64(u64::MAX), &mut |r| {
+        // The lab samples' readings are matched as the readings stream past.
+        let samples = store.lab_samples(&self.serial)?;
+        let superseded: std::collections::HashSet<u64> =
+            samples.iter().filter_map(|l| l.sample.supersedes).collect();
+        let wanted: std::collections::HashSet<Seq> = samples
+            .iter()
+            .filter(|l| !superseded.contains(&l.position))
+            .filter_map(|l| l.sample.reading)
+            .filter(|seq| !self.matched.contains_key(seq))
+            .collect();
+        // From the reading after the last one charted (as charted, even
+        // where a read failed part-way: none is charted twice).
+        let from = self.last.map_or(Seq::from_u64(0), |l| {
+            Seq::from_u64(l.as_u64().saturating_add(1))
+        });
+        let before = self.last;
+        let (charts, last, readings, matched) = (
+            &mut self.charts,
+            &mut self.last,
+            &mut self.readings,
+            &mut self.matched,
+        );
+        store.for_each_reading(&self.serial, from, Seq::from_u64(u64::MAX), &mut |r| {
             let time_ms = r.wall_ms.unwrap_or(r.reading.time_ms as i64);
             charts.push_reading(r.reading.seq, time_ms, &r.reading);
+            if wanted.contains(&r.reading.seq) {
+                matched.insert(
+                    r.reading.seq,
+                    Some((r.reading.moisture_pct, r.reading.product_cal)),
+                );
+            }
             *last = Some(r.reading.seq);
             *readings += 1;
             Ok(())
         })?;
-        if let Some(l) = self.last {
-            self.next = Seq::from_u64(l.as_u64().saturating_add(1));
+        // A sample entered after its reading was read: that reading, once.
+        for seq in wanted {
+            if self.matched.contains_key(&seq) || before.is_none_or(|b| seq > b) {
+                continue;
+            }
+            let mut found = None;
+            store.for_each_reading(&self.serial, seq, seq, &mut |r| {
+                if r.reading.seq == seq {
+                    found = Some((r.reading.moisture_pct, r.reading.product_cal));
+                }
+                Ok(())
+            })?;
+            self.matched.insert(seq, found);
         }
         for c in store.reference_checks_after(&self.serial, self.refs_position)? {
             self.refs_position = Some(c.position);
@@ -941,26 +1005,10 @@ impl LiveData {
                 baseline: f64::from(c.check.baseline),
             });
         }
-        let samples = store.lab_samples(&self.serial)?;
-        for seq in samples.iter().filter_map(|l| l.sample.reading) {
-            if self.matched.contains_key(&seq) {
-                continue;
-            }
-            let to = Seq::from_u64(seq.as_u64().saturating_add(1));
-            let mut found = None;
-            store.for_each_reading(&self.serial, seq, to, &mut |r| {
-                if r.reading.seq == seq {
-                    found = Some((r.reading.moisture_pct, r.reading.product_cal));
-                }
-                Ok(())
-            })?;
-            // A reading not stored yet is looked for again next time.
-            if let Some(f) = found {
-                self.matched.insert(seq, f);
-            }
-        }
         let matched = &self.matched;
-        self.lab = lab_rows(samples, &self.cals, |seq| matched.get(&seq).copied());
+        self.lab = lab_rows(samples, &self.cals, |seq| {
+            matched.get(&seq).copied().flatten()
+        });
         Ok(())
     }
 
@@ -1264,7 +1312,12 @@ mod tests {
                 .collect()
         };
         let mut to = 0;
-        for step in [1u32, 99, 150, 200, 50, 100, 300, 100] {
+        // (The record of calibration b comes with the last step, its
+        // readings from 600 charted before: its chart is charted again up
+        // to reading 910, which is not its boot's last, so reading 911 is
+        // charted once only.)
+        let mut lab = 0;
+        for step in [1u32, 99, 150, 200, 50, 100, 300, 11, 89] {
             let from = to;
             to += step;
             let rs: Vec<Reading> = (from..to).map(at).collect();
@@ -1283,10 +1336,41 @@ mod tests {
             if to == 1000 {
                 product_record(&mut store, b, 10.0, 28.0);
             }
+            // Grab samples: one of a reading of this step, one of a reading
+            // read at an earlier refresh (entered late), one of a reading
+            // not stored.
+            for (i, lab_pct) in [(to - 1, 14.9), (from / 2, 13.1), (5000 + to, 14.0)] {
+                lab += 1;
+                store
+                    .insert_lab_sample(
+                        "L2",
+                        &NewLabSample {
+                            sample_id: format!("G-{lab}"),
+                            taken_unix_ms: at(i).time_ms as i64,
+                            product: None,
+                            lab_moisture_pct: lab_pct,
+                            basis: "wet".into(),
+                            method: None,
+                            reading: Some(at(i).seq),
+                            note: None,
+                            supersedes: None,
+                        },
+                    )
+                    .unwrap();
+            }
             live.refresh(&store).unwrap();
             assert_eq!(live.episodes(), episodes(&store), "after {to} readings");
+            assert_eq!(
+                live.lab,
+                load(&store, Some("L2")).unwrap().lab,
+                "after {to} readings"
+            );
         }
         assert_eq!(live.readings(), 1000);
+        assert_eq!(
+            live.lab.iter().filter(|l| l.inline_pct.is_some()).count(),
+            18
+        );
         // The temperature chart charts the readings of the calibration in
         // force, as `fringe drift` counts them.
         let whole = load(&store, Some("L2")).unwrap();
@@ -1297,8 +1381,11 @@ mod tests {
         assert_eq!(traces[3].monitor.quantity, Quantity::Temperature);
         assert_eq!(traces[3].obs.len(), charted.charted.len());
         assert_eq!(charted.charted.len(), 320);
+        // ... and the live check charted each of them once.
+        assert_eq!(live.charts.temperature[&b].pushed, 320);
         let all = live.episodes();
         for q in [
+            Quantity::LabResidual,
             Quantity::Temperature,
             Quantity::EmptyBaseline,
             Quantity::ReferenceCheck,
