@@ -1036,11 +1036,6 @@ pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> Result<String, FitError>
         .iter()
         .map(|s| (s.reference_pct, s.cv_predicted_pct))
         .collect();
-    let res: Vec<f64> = f
-        .samples
-        .iter()
-        .map(|s| s.cv_predicted_pct - s.reference_pct)
-        .collect();
     let mut parts = vec![plots::scatter_svg(
         &format!(
             "{} model: predicted (CV) vs lab",
@@ -1067,12 +1062,7 @@ pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> Result<String, FitError>
     ];
     for (label, get) in inputs {
         let label = label.as_str();
-        let pts: Vec<(f64, f64)> = set
-            .samples
-            .iter()
-            .zip(&res)
-            .map(|(s, r)| (get(s), *r))
-            .collect();
+        let pts = residuals_against(&set.samples, &f.samples, get);
         parts.push(
             plots::scatter_svg(
                 &format!("residual vs {label}"),
@@ -1086,6 +1076,26 @@ pub fn fit_plot(o: &FitOutcome, samples_path: &Path) -> Result<String, FitError>
         );
     }
     Ok(plots::combine_svgs(&parts, 3, (480, 380)))
+}
+
+/// Each fitted sample's cross-validated residual (predicted - lab) against
+/// an input of its row in the table (`get`), paired by sample id: a sample
+/// the model left out has no residual and no point (paired by position, the
+/// rows after it were drawn against the next sample's input).
+fn residuals_against(
+    table: &[RefSample],
+    fitted: &[fringe_calibration::fit::SampleResult],
+    get: fn(&RefSample) -> f64,
+) -> Vec<(f64, f64)> {
+    let by_id: std::collections::HashMap<&str, &RefSample> =
+        table.iter().map(|s| (s.sample_id.as_str(), s)).collect();
+    fitted
+        .iter()
+        .filter_map(|r| {
+            let s = by_id.get(r.id.as_str())?;
+            Some((get(s), r.cv_predicted_pct - r.reference_pct))
+        })
+        .collect()
 }
 
 /// One predicted row.
@@ -1315,6 +1325,42 @@ pub fn predictions_json(rows: &[Predicted], confidence: f64) -> serde_json::Valu
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The residual plots pair each residual with its own sample's input:
+    /// a sample the model left out (the second of three) has no point, and
+    /// the third's residual is drawn at the third's temperature, not the
+    /// second's. (Made-up values.)
+    #[test]
+    fn residual_plots_pair_by_sample_not_by_position() {
+        let row = |id: &str, t: f64| RefSample {
+            sample_id: id.into(),
+            moisture_pct: Some(12.0),
+            temperature_c: t,
+            freqs_hz: [1e6, 2e7],
+            eps_re: [4.0, 3.5],
+            eps_im: [1.0, 0.2],
+            bulk_density_kg_m3: None,
+            moisture_basis: None,
+            line: 2,
+        };
+        let fitted = |id: &str, lab: f64, cv: f64| fringe_calibration::fit::SampleResult {
+            id: id.into(),
+            reference_pct: lab,
+            fitted_pct: cv,
+            cv_predicted_pct: cv,
+            leverage: 0.1,
+            studentized: 0.0,
+            outlier: false,
+            high_leverage: false,
+        };
+        let table = [row("a", 10.0), row("b", 20.0), row("c", 30.0)];
+        let pts = residuals_against(
+            &table,
+            &[fitted("a", 12.0, 12.5), fitted("c", 14.0, 13.0)],
+            |s| s.temperature_c,
+        );
+        assert_eq!(pts, vec![(10.0, 0.5), (30.0, -1.0)]);
+    }
     use fringe_calibration::fit::product::{synthetic_samples, SynthSpec};
     use fringe_calibration::synth::SynthProduct;
 
