@@ -101,7 +101,9 @@ impl ExitCode {
                     .is_some()
                 || cause
                     .downcast_ref::<crate::product_file::ProductFileError>()
-                    .is_some()
+                    .is_some_and(|e| {
+                        !matches!(e, crate::product_file::ProductFileError::Write { .. })
+                    })
                 || cause
                     .downcast_ref::<fringe_device::key::KeyError>()
                     .is_some()
@@ -134,8 +136,24 @@ impl ExitCode {
                     cause.downcast_ref::<fringe_device::settings::SettingsError>(),
                     Some(fringe_device::settings::SettingsError::Refused(_))
                 )
+                || matches!(
+                    cause.downcast_ref::<fringe_device::cell::CellError>(),
+                    Some(fringe_device::cell::CellError::UnknownLiquid { .. })
+                )
+                || matches!(
+                    cause.downcast_ref::<fringe_quality::cal::FitError>(),
+                    Some(
+                        fringe_quality::cal::FitError::NoDensities
+                            | fringe_quality::cal::FitError::BadName { .. }
+                    )
+                )
             {
                 return ExitCode::Usage;
+            }
+            if let Some(crate::product_file::ProductFileError::Write { full: true, .. }) =
+                cause.downcast_ref::<crate::product_file::ProductFileError>()
+            {
+                return ExitCode::DiskFull;
             }
             if cause
                 .downcast_ref::<fringe_quality::cal::GateRefused>()

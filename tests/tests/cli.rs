@@ -182,3 +182,48 @@ fn a_closed_pipe_is_not_an_error() {
     assert_eq!(out.status.code(), Some(0), "{err}");
     assert!(!err.contains("panicked"), "{err}");
 }
+
+/// A bad value of a flag of the bench commands is a usage error (2), named;
+/// a product file that cannot be written is not a bad input file (3) but
+/// another error (1), with the path (README "Exit codes").
+#[test]
+fn bench_flag_values_are_usage_errors_and_a_failed_output_is_not_a_bad_file() {
+    let o = run(
+        &mut fringe(&[
+            "cal",
+            "cell",
+            "--liquid",
+            "unobtainium",
+            "--operator",
+            "R. Okafor",
+            "--port",
+            "/nonexistent/tty",
+        ]),
+        LIMIT,
+    );
+    assert_fails(&o, 2, &["unobtainium", "methanol"]);
+    let dir = tempfile::tempdir().unwrap();
+    let table = dir.path().join("chips.csv");
+    fringe_tests::bench::write_density_table(&table);
+    let table = table.to_str().unwrap();
+    let fit = |extra: &[&str]| {
+        let mut args = vec!["cal", "fit", "--samples", table, "--force"];
+        args.extend_from_slice(extra);
+        run(&mut fringe(&args), LIMIT)
+    };
+    let o = fit(&["--model", "relaxation", "--out", "/tmp/never-written.toml"]);
+    assert_fails(&o, 2, &["--bulk-density-kg-m3"]);
+    let long = "x".repeat(200);
+    let o = fit(&["--model", "multivariate", "--name", &long]);
+    assert_fails(&o, 2, &["--name"]);
+    let out = dir.path().join("no-such-folder").join("chips.toml");
+    let o = fit(&[
+        "--model",
+        "multivariate",
+        "--name",
+        "HM chips L2",
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert_fails(&o, 1, &["no-such-folder"]);
+}

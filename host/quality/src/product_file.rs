@@ -236,6 +236,16 @@ pub enum ProductFileError {
         /// Reason.
         reason: String,
     },
+    /// Cannot be written (an output file, not an input: exit 1, or 22
+    /// where the disk is full).
+    Write {
+        /// File.
+        path: PathBuf,
+        /// Reason.
+        reason: String,
+        /// The disk (or quota) is full.
+        full: bool,
+    },
     /// A field has a value this format does not allow.
     Invalid {
         /// File.
@@ -251,6 +261,9 @@ impl std::fmt::Display for ProductFileError {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
             ProductFileError::Io { path, reason } => write!(f, "{}: {reason}", path.display()),
+            ProductFileError::Write { path, reason, .. } => {
+                write!(f, "writing {}: {reason}", path.display())
+            }
             ProductFileError::Parse {
                 path,
                 line,
@@ -575,11 +588,12 @@ impl ProductFile {
     /// write leaves no half file).
     ///
     /// # Errors
-    /// [`ProductFileError::Io`].
+    /// [`ProductFileError::Write`].
     pub fn save(&self, path: &Path) -> Result<(), ProductFileError> {
-        let io = |e: std::io::Error| ProductFileError::Io {
+        let io = |e: std::io::Error| ProductFileError::Write {
             path: path.to_path_buf(),
             reason: e.to_string(),
+            full: e.kind() == std::io::ErrorKind::StorageFull,
         };
         let text = self.to_text().map_err(|e| ProductFileError::Io {
             path: path.to_path_buf(),
