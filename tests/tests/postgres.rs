@@ -1057,3 +1057,68 @@ fn fringe_reads_a_postgres_url_as_it_reads_a_file() {
 fn conformance_records(s: &mut dyn fringe_store::RecordStore) {
     conformance::golden_chain(s);
 }
+
+/// amcheck grants its functions to superusers only: the integrity check of
+/// a role that is not one says which GRANTs a superuser must run (and runs
+/// once they are); an amcheck without `verify_heapam` (version 1.2, as on
+/// PostgreSQL 13) refuses the full check, saying why, and runs the index
+/// check. (amcheck's grants and versions: PostgreSQL 15 documentation,
+/// "amcheck"; from memory that 1.3 added verify_heapam.)
+#[test]
+#[ignore = "needs PostgreSQL: cargo xtask test runs it"]
+fn the_integrity_check_says_which_grants_and_which_amcheck_it_needs() {
+    let mut s = Server::start();
+    s.admin
+        .batch_execute("CREATE ROLE line_role LOGIN")
+        .unwrap();
+    s.admin
+        .batch_execute("CREATE DATABASE lined OWNER line_role")
+        .unwrap();
+    let admin_url = s.url("lined");
+    s.raw(&admin_url)
+        .batch_execute("CREATE EXTENSION amcheck")
+        .unwrap();
+    let url = format!("postgres://line_role@127.0.0.1:{}/lined", s.pg.port);
+    let mut st = Store::connect(&url).unwrap();
+    let batch: Vec<Reading> = (0..50).map(|c| reading(1, c)).collect();
+    st.insert_readings(SERIAL, &batch, Source::Stream).unwrap();
+    let grants = match st.check_integrity(true) {
+        Err(e) => {
+            let text = e.to_string();
+            assert!(text.contains("line_role"), "{text}");
+            assert!(text.contains("superuser"), "{text}");
+            let at = text.find("GRANT").expect("the GRANTs named");
+            text[at..].to_string()
+        }
+        Ok(()) => panic!("a role that is not a superuser ran amcheck"),
+    };
+    assert_eq!(
+        grants.matches("GRANT EXECUTE ON FUNCTION").count(),
+        2,
+        "{grants}"
+    );
+    // The statements as the message gives them, run by a superuser.
+    s.raw(&admin_url).batch_execute(&grants).unwrap();
+    st.check_integrity(true).unwrap();
+    assert!(audit::verify(None, Some(&st)).unwrap().problems.is_empty());
+    // An amcheck without verify_heapam.
+    let old = s.fresh();
+    s.raw(&old)
+        .batch_execute("CREATE EXTENSION amcheck VERSION '1.2'")
+        .unwrap();
+    let mut st = Store::connect(&old).unwrap();
+    st.insert_readings(SERIAL, &batch, Source::Stream).unwrap();
+    st.check_integrity(false).unwrap();
+    match st.check_integrity(true) {
+        Err(e) => {
+            let text = e.to_string();
+            assert!(
+                text.contains("verify_heapam")
+                    && text.contains("1.2")
+                    && text.contains("ALTER EXTENSION amcheck UPDATE"),
+                "{text}"
+            );
+        }
+        Ok(()) => panic!("the full check ran without verify_heapam"),
+    }
+}

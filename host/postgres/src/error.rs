@@ -37,6 +37,24 @@ pub enum PgError {
     /// and cannot be created by this role).
     #[error("the integrity check needs PostgreSQL's amcheck extension (contrib): run `CREATE EXTENSION amcheck` in this database as a superuser ({0})")]
     NoAmcheck(String),
+    /// The full integrity check needs `verify_heapam` (amcheck 1.3,
+    /// PostgreSQL 14 or later), which this database's amcheck lacks.
+    #[error("the full integrity check reads every table page with amcheck's verify_heapam (amcheck 1.3, PostgreSQL 14 or later), which this database's amcheck {version} does not have: on PostgreSQL 14 or later run `ALTER EXTENSION amcheck UPDATE` in this database as a superuser; an older server cannot check its table pages")]
+    NoHeapCheck {
+        /// The installed amcheck version.
+        version: String,
+    },
+    /// The role may not call amcheck's functions (amcheck grants them to
+    /// superusers only).
+    #[error("the integrity check calls amcheck's functions, which PostgreSQL grants to superusers only, and role {role} may not call {missing}: as a superuser, in this database, run: {grants}")]
+    AmcheckNotGranted {
+        /// The role connected.
+        role: String,
+        /// The functions it may not call.
+        missing: String,
+        /// The GRANT statements that allow it.
+        grants: String,
+    },
 }
 
 /// What to do with a damaged PostgreSQL database.

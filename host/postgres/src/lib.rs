@@ -56,6 +56,12 @@
 //!    `createdb -E UTF8 -O fringe_line2 fringe`. Optionally, as a superuser,
 //!    `CREATE EXTENSION amcheck;` in that database (the integrity check of
 //!    `fringe audit` needs it; a writer that is allowed creates it itself).
+//!    amcheck grants its functions to superusers only: for a role that is
+//!    not one, also (as a superuser, in that database)
+//!    `GRANT EXECUTE ON FUNCTION bt_index_check(regclass, boolean) TO fringe_line2;`
+//!    and `GRANT EXECUTE ON FUNCTION verify_heapam(regclass, boolean, boolean, text, bigint, bigint) TO fringe_line2;`
+//!    (PostgreSQL 14 or later; an older server has no `verify_heapam`, and
+//!    `fringe audit`, which runs the full check, refuses there, saying so).
 //! 2. The first writer creates the tables (migration 1); later versions
 //!    migrate on connect.
 //! 3. Commands that read a store take the URL where they take a file:
@@ -1521,6 +1527,7 @@ impl Store {
     /// (as [`StoreError::Backend`]) when the check cannot run; [`StoreError`].
     pub fn check_integrity(&self, full: bool) -> Result<(), StoreError> {
         let schema = self.amcheck_schema()?;
+        self.amcheck_usable(&schema, full)?;
         let corrupt = |detail: String| StoreError::Corrupt {
             path: self.name.clone(),
             detail,
@@ -1574,6 +1581,70 @@ impl Store {
             }
         }
         Ok(())
+    }
+
+    /// That the functions the check calls exist (`verify_heapam` only from
+    /// amcheck 1.3, PostgreSQL 14) and that this role may call them
+    /// (amcheck revokes them from PUBLIC): else an error that says what to
+    /// run, before any of them is called.
+    fn amcheck_usable(&self, schema: &str, full: bool) -> Result<(), StoreError> {
+        let backend = |e: PgError| StoreError::Backend {
+            path: self.name.clone(),
+            source: Box::new(e),
+        };
+        let mut calls = vec![format!("{schema}.bt_index_check(regclass, boolean)")];
+        if full {
+            calls.push(format!(
+                "{schema}.verify_heapam(regclass, boolean, boolean, text, bigint, bigint)"
+            ));
+        }
+        let mut missing = Vec::new();
+        for f in &calls {
+            let row = self.rows(
+                "SELECT to_regprocedure($1) IS NOT NULL, \
+                        CASE WHEN to_regprocedure($1) IS NULL THEN true \
+                             ELSE has_function_privilege(to_regprocedure($1), 'EXECUTE') END",
+                &[f],
+            )?;
+            let (exists, allowed): (bool, bool) =
+                row.first().map_or((false, false), |r| (r.get(0), r.get(1)));
+            if !exists {
+                let version = self
+                    .rows(
+                        "SELECT extversion FROM pg_catalog.pg_extension WHERE extname = 'amcheck'",
+                        &[],
+                    )?
+                    .first()
+                    .map_or_else(|| "?".to_string(), |r| r.get::<_, String>(0));
+                return Err(backend(if f.contains("verify_heapam") {
+                    PgError::NoHeapCheck { version }
+                } else {
+                    PgError::NoAmcheck(format!(
+                        "amcheck {version} has no {f} (amcheck 1.1, PostgreSQL 11 or later)"
+                    ))
+                }));
+            }
+            if !allowed {
+                missing.push(f.clone());
+            }
+        }
+        if missing.is_empty() {
+            return Ok(());
+        }
+        let role: String = self
+            .rows("SELECT quote_ident(current_user)", &[])?
+            .first()
+            .map_or_else(|| "?".to_string(), |r| r.get(0));
+        let grants = missing
+            .iter()
+            .map(|f| format!("GRANT EXECUTE ON FUNCTION {f} TO {role};"))
+            .collect::<Vec<_>>()
+            .join(" ");
+        Err(backend(PgError::AmcheckNotGranted {
+            role,
+            missing: missing.join(", "),
+            grants,
+        }))
     }
 
     /// The schema of the `amcheck` extension, creating it if missing.

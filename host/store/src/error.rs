@@ -14,7 +14,7 @@ use crate::chain::Table;
 #[non_exhaustive]
 pub enum StoreError {
     /// Another process holds the database's write lock.
-    #[error("database {path} is locked by another process (another `fringe monitor` or `fringe pull` on the same file?); stop it or use another --db")]
+    #[error("{}", locked_words(path))]
     Locked {
         /// Database.
         path: PathBuf,
@@ -136,6 +136,18 @@ pub enum StoreError {
     },
 }
 
+/// What [`StoreError::Locked`] says: for a SQLite file, another process
+/// holds its write lock; for a PostgreSQL database (`postgres://...`), a
+/// lock wait timed out or the server broke a deadlock.
+fn locked_words(path: &std::path::Path) -> String {
+    let shown = path.display();
+    if path.to_string_lossy().starts_with("postgres") {
+        format!("database {shown}: a lock wait timed out or the server broke a deadlock (another writer holds what this operation needs); nothing of this operation was stored: retry, and if it happens again look for a long-running transaction on the server (pg_stat_activity)")
+    } else {
+        format!("database {shown} is locked by another process (another `fringe monitor` or `fringe pull` on the same file?); stop it or use another --db")
+    }
+}
+
 impl StoreError {
     /// Whether the failure is of the disk, of another process or of the
     /// connection (locked, read-only, full, unreachable), so that the same
@@ -162,5 +174,32 @@ impl StoreError {
                 | StoreError::Foreign { .. }
                 | StoreError::BadRecord { .. }
         )
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A lock on a PostgreSQL database is not another process holding a
+    /// file: its words say what happened there.
+    #[test]
+    fn a_lock_is_described_for_the_back_end_it_happened_on() {
+        let pg = StoreError::Locked {
+            path: PathBuf::from("postgres://fringe@db.plant.example:5432/fringe"),
+        }
+        .to_string();
+        assert!(
+            pg.contains("pg_stat_activity") && !pg.contains("fringe monitor"),
+            "{pg}"
+        );
+        let file = StoreError::Locked {
+            path: PathBuf::from("line2.db"),
+        }
+        .to_string();
+        assert!(
+            file.contains("fringe monitor") && file.contains("line2.db"),
+            "{file}"
+        );
     }
 }
