@@ -13,6 +13,7 @@ use fringe_quality::product_file::hz_label;
 use fringe_store::{CalKind, RecordStore, StoreError};
 
 use crate::guide::{Cancelled, Guide};
+use crate::landed::{write_checked, Checked, Unconfirmed, WriteFailed};
 use crate::measure::averaged_reading;
 use crate::record::record;
 use crate::LINE_CAUTION;
@@ -52,6 +53,10 @@ pub enum CellError {
     /// The record could not be stored (the device holds the new calibration).
     #[error("the device holds the new cell calibration, but its record could not be stored: {0}")]
     Store(#[from] StoreError),
+    /// Not known whether the device took the write (it answered neither
+    /// the write nor the read-back); nothing recorded.
+    #[error(transparent)]
+    Unconfirmed(#[from] Unconfirmed),
     /// The person stopped.
     #[error("{0}")]
     Cancelled(#[from] Cancelled),
@@ -315,7 +320,24 @@ pub fn cell_calibration(
     {
         return Err(CellError::NotConfirmed);
     }
-    link.request_signed(Request::WriteCellCal(cal), key)?;
+    let written = write_checked(
+        link,
+        key,
+        Request::WriteCellCal(cal),
+        Checked {
+            what: "cell calibration write",
+            check_with: "`fringe status`",
+            after: "the next `fringe monitor` or `fringe pull` records a cell calibration the database has no record of, as observed",
+        },
+        |l| {
+            Ok(matches!(l.request(Request::ReadCellCal)?,
+                Response::CellCal(Some(c)) if c.content_id() == cal.content_id()))
+        },
+    )
+    .map_err(|e| match e {
+        WriteFailed::Link(e) => CellError::Link(e),
+        WriteFailed::Unconfirmed(u) => CellError::Unconfirmed(u),
+    })?;
     let back = match link.request(Request::ReadCellCal)? {
         Response::CellCal(Some(c)) => c,
         other => return Err(unexpected("ReadCellCal", &other)),
@@ -358,7 +380,7 @@ pub fn cell_calibration(
             new_id: cal.content_id().to_string(),
             action: "cell".into(),
             statistics: None,
-            verification: Some(words),
+            verification: Some(format!("{words}{}", written.words())),
             parent_id: None,
             derivation: None,
         },

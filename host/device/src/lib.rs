@@ -21,6 +21,7 @@ pub mod capture;
 pub mod cell;
 pub mod guide;
 pub mod key;
+pub mod landed;
 pub mod measure;
 pub mod product;
 mod record;

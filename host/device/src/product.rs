@@ -15,6 +15,7 @@ use fringe_quality::product_file::{same_freqs, ProductFile};
 use fringe_store::{CalKind, RecordStore, StoreError};
 
 use crate::guide::{Cancelled, Guide};
+use crate::landed::{write_checked, Checked, Landed, Unconfirmed, WriteFailed};
 use crate::record::record;
 use crate::LINE_CAUTION;
 
@@ -28,6 +29,10 @@ pub enum ProductError {
     /// The record could not be stored (the device holds the change).
     #[error("the device holds the change, but its record could not be stored: {0}")]
     Store(#[from] StoreError),
+    /// Not known whether the device took the write (it answered neither
+    /// the write nor the read-back); nothing recorded.
+    #[error(transparent)]
+    Unconfirmed(#[from] Unconfirmed),
     /// The person stopped.
     #[error("{0}")]
     Cancelled(#[from] Cancelled),
@@ -121,6 +126,36 @@ pub enum ProductError {
         /// The active slot it reports.
         active: Option<u8>,
     },
+}
+
+impl From<WriteFailed> for ProductError {
+    fn from(e: WriteFailed) -> Self {
+        match e {
+            WriteFailed::Link(e) => ProductError::Link(e),
+            WriteFailed::Unconfirmed(u) => ProductError::Unconfirmed(u),
+        }
+    }
+}
+
+/// The words of a product calibration write whose outcome is not known.
+const PRODUCT_WRITE: Checked = Checked {
+    what: "product calibration write",
+    check_with: "`fringe cal list`",
+    after: "the next `fringe monitor` or `fringe pull` records an active calibration the database has no record of, as observed",
+};
+
+/// The words of a product switch whose outcome is not known.
+const SELECT_WRITE: Checked = Checked {
+    what: "switch of the active product",
+    ..PRODUCT_WRITE
+};
+
+/// Whether slot `slot` holds calibration `id`.
+fn slot_holds(link: &mut Link, slot: u8, id: CalId) -> Result<bool, LinkError> {
+    Ok(matches!(
+        link.request(Request::ReadProductCal { slot })?,
+        Response::ProductCal { cal: Some(c), .. } if c.content_id() == id
+    ))
 }
 
 /// `cal push`'s quality gate on a calibration file: the refusals to record
@@ -412,12 +447,15 @@ pub fn push(
     if !p.yes && !guide.confirm("write this calibration?")? {
         return Err(ProductError::NotConfirmed { what: "written" });
     }
-    link.request_signed(
+    let written = write_checked(
+        link,
+        key,
         Request::WriteProductCal {
             slot,
             cal: wire.clone(),
         },
-        key,
+        PRODUCT_WRITE,
+        |l| slot_holds(l, slot, new),
     )?;
     let back = match link.request(Request::ReadProductCal { slot })? {
         Response::ProductCal { cal: Some(c), .. } => c,
@@ -436,9 +474,17 @@ pub fn push(
             written: new,
         });
     }
-    if p.activate && active != Some(slot) {
-        link.request_signed(Request::SelectProduct { slot }, key)?;
-    }
+    let switched = if p.activate && active != Some(slot) {
+        write_checked(
+            link,
+            key,
+            Request::SelectProduct { slot },
+            SELECT_WRITE,
+            |l| Ok(list_slots(l)?.1 == Some(slot)),
+        )?
+    } else {
+        Landed::Answered
+    };
     let body = CalRecordBody {
         calibration: serde_json::to_value(wire).unwrap_or(serde_json::Value::Null),
         operator: p.operator.into(),
@@ -447,7 +493,14 @@ pub fn push(
         new_id: new.to_string(),
         action: "push".into(),
         statistics: Some(file.statistics.clone()),
-        verification: Some(format!("read back from slot {slot}: id {new}")),
+        verification: Some(format!(
+            "read back from slot {slot}: id {new}{}{}",
+            written.words(),
+            match &switched {
+                Landed::Answered => String::new(),
+                lost => format!("; switched to it{}", lost.words()),
+            }
+        )),
         parent_id: file.source.parent_id.clone(),
         derivation: file.source.derivation.clone(),
     };
@@ -557,7 +610,13 @@ pub fn select(
     if !yes && !guide.confirm("switch the active product?")? {
         return Err(ProductError::NotConfirmed { what: "switched" });
     }
-    link.request_signed(Request::SelectProduct { slot: s.slot }, key)?;
+    let switched = write_checked(
+        link,
+        key,
+        Request::SelectProduct { slot: s.slot },
+        SELECT_WRITE,
+        |l| Ok(list_slots(l)?.1 == Some(s.slot)),
+    )?;
     let (_, now_active) = list_slots(link)?;
     if now_active != Some(s.slot) {
         return Err(ProductError::NotSwitched { active: now_active });
@@ -583,10 +642,116 @@ pub fn select(
             new_id: s.id.to_string(),
             action: "select".into(),
             statistics: None,
-            verification: Some(format!("device reports slot {} active", s.slot)),
+            verification: Some(format!(
+                "device reports slot {} active{}",
+                s.slot,
+                switched.words()
+            )),
             parent_id: None,
             derivation: None,
         },
     )?;
     Ok((s.slot, s.id))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::landed::lossy::{lossy_sim, Loses};
+    use fringe_calibration::synth::SynthProduct;
+
+    /// A guide that answers yes and keeps what it is shown.
+    #[derive(Default)]
+    struct Yes(Vec<String>);
+
+    impl Guide for Yes {
+        fn step(&mut self, _: &str) -> Result<(), Cancelled> {
+            Ok(())
+        }
+        fn ask(&mut self, _: &str) -> Result<Option<String>, Cancelled> {
+            Ok(None)
+        }
+        fn confirm(&mut self, _: &str) -> Result<bool, Cancelled> {
+            Ok(true)
+        }
+        fn show(&mut self, text: &str) {
+            self.0.push(text.into());
+        }
+        fn caution(&mut self, text: &str) {
+            self.0.push(text.into());
+        }
+    }
+
+    /// A switch of the active product whose every answer is lost is read
+    /// back and recorded, its record saying so; where the device answers
+    /// nothing after it, the outcome is not known, the error says how to
+    /// find it, and nothing is recorded. (Simulated device, exact
+    /// calibrations of the synthetic grain.)
+    #[test]
+    fn a_switch_whose_answers_are_lost_is_read_back_before_it_is_given_up() {
+        let key: Key = [9; 32];
+        let (mut link, loses) = lossy_sim(key);
+        let grain = SynthProduct::<f32>::grain();
+        for (slot, name) in [(0u8, "HM wheat L2"), (1, "HM barley L2")] {
+            let cal = fringe_firmware::sim::exact_calibration(&grain, name);
+            link.request_signed(Request::WriteProductCal { slot, cal }, &key)
+                .expect("write");
+        }
+        link.request_signed(Request::SelectProduct { slot: 0 }, &key)
+            .expect("select");
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = fringe_sqlite::Store::open(dir.path().join("a.db")).unwrap();
+        store
+            .ensure_device(&fringe_store::DeviceInfo {
+                serial: "HGM-L2-0099".into(),
+                ..Default::default()
+            })
+            .unwrap();
+        *loses.lock().unwrap() = Loses::Writes;
+        let (slot, _) = select(
+            &mut link,
+            &key,
+            &mut store,
+            &mut Yes::default(),
+            "1",
+            "R. Okafor",
+            "barley run",
+            true,
+        )
+        .expect("read back and recorded");
+        assert_eq!(slot, 1);
+        *loses.lock().unwrap() = Loses::Nothing;
+        assert_eq!(list_slots(&mut link).unwrap().1, Some(1));
+        let recs = store.calibrations("HGM-L2-0099").unwrap();
+        assert_eq!(recs.len(), 1);
+        let verification = recs[0].cal.body["verification"]
+            .as_str()
+            .unwrap_or_default();
+        assert!(
+            verification.contains("slot 1 active")
+                && verification.contains("answer to the write was lost"),
+            "{verification}"
+        );
+        *loses.lock().unwrap() = Loses::AfterAWrite;
+        match select(
+            &mut link,
+            &key,
+            &mut store,
+            &mut Yes::default(),
+            "0",
+            "R. Okafor",
+            "wheat again",
+            true,
+        ) {
+            Err(ProductError::Unconfirmed(u)) => {
+                let text = u.to_string();
+                assert!(
+                    text.contains("fringe cal list") && text.contains("observed"),
+                    "{text}"
+                );
+            }
+            other => panic!("{other:?}"),
+        }
+        assert_eq!(store.calibrations("HGM-L2-0099").unwrap().len(), 1);
+    }
 }

@@ -9,6 +9,8 @@ use fringe_protocol::{Capabilities, ModbusParity, ModbusSettings, Request, Setti
 use fringe_quality::analysis::CalRecordBody;
 use fringe_store::{CalKind, NewCalibration, RecordStore, StoreError};
 
+use crate::landed::{write_checked, Checked, Landed, Unconfirmed, WriteFailed};
+
 /// Why a settings change stopped.
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
@@ -19,6 +21,10 @@ pub enum SettingsError {
     /// The link failed (a wrong key: the device refused).
     #[error("{0}")]
     Link(#[from] LinkError),
+    /// Not known whether the device took the write (it answered neither
+    /// the write nor the read-back); nothing recorded.
+    #[error(transparent)]
+    Unconfirmed(#[from] Unconfirmed),
     /// The record could not be stored (the device holds the new settings).
     #[error("the device holds the new settings, but their record could not be stored: {0}")]
     Store(#[from] StoreError),
@@ -148,7 +154,13 @@ pub fn write_settings(
     operator: &str,
     reason: &str,
 ) -> Result<u64, SettingsError> {
-    link.request_signed(Request::WriteSettings(new.clone()), key)?;
+    let landed = write_checked(
+        link,
+        key,
+        Request::WriteSettings(new.clone()),
+        SETTINGS_WRITE,
+        |l| Ok(&l.settings()? == new),
+    )?;
     let back = link.settings()?;
     if &back != new {
         return Err(SettingsError::ReadBack {
@@ -165,7 +177,7 @@ pub fn write_settings(
         new_id: back.content_id().to_string(),
         action: "settings".into(),
         statistics: None,
-        verification: None,
+        verification: (landed != Landed::Answered).then(|| format!("read back{}", landed.words())),
         parent_id: None,
         derivation: None,
     };
@@ -184,6 +196,22 @@ pub fn write_settings(
         },
     )?;
     Ok(rec.position)
+}
+
+/// The words of a settings write whose outcome is not known.
+const SETTINGS_WRITE: Checked = Checked {
+    what: "settings write",
+    check_with: "`fringe device config`",
+    after: "the device logs each settings change as an event, which `fringe monitor` and `fringe pull` store",
+};
+
+impl From<WriteFailed> for SettingsError {
+    fn from(e: WriteFailed) -> Self {
+        match e {
+            WriteFailed::Link(e) => SettingsError::Link(e),
+            WriteFailed::Unconfirmed(u) => SettingsError::Unconfirmed(u),
+        }
+    }
 }
 
 /// A change of the Modbus RTU settings: the values to set (the others keep
@@ -248,7 +276,16 @@ pub fn write_modbus(
 ) -> Result<u64, SettingsError> {
     // Refuses a device before 1.2 with a message naming its version.
     link.modbus()?;
-    link.request_signed(Request::WriteModbus(*new), key)?;
+    let landed = write_checked(
+        link,
+        key,
+        Request::WriteModbus(*new),
+        Checked {
+            what: "Modbus settings write",
+            ..SETTINGS_WRITE
+        },
+        |l| Ok(&l.modbus()? == new),
+    )?;
     let back = link.modbus()?;
     if &back != new {
         return Err(SettingsError::ReadBack {
@@ -265,7 +302,7 @@ pub fn write_modbus(
         new_id: back.content_id().to_string(),
         action: "modbus".into(),
         statistics: None,
-        verification: None,
+        verification: (landed != Landed::Answered).then(|| format!("read back{}", landed.words())),
         parent_id: None,
         derivation: None,
     };
@@ -289,6 +326,78 @@ pub fn write_modbus(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    use crate::landed::lossy::{lossy_sim, Loses};
+
+    /// A write the device takes whose every answer is lost is read back
+    /// and recorded, its record saying so; where the device answers
+    /// nothing after the write, the outcome is not known, the error says
+    /// so, and nothing is recorded (before, both returned the link's error
+    /// and recorded nothing, though the device ran the new settings). The
+    /// simulated device runs the firmware core.
+    #[test]
+    fn a_write_whose_answers_are_lost_is_read_back_before_it_is_given_up() {
+        let key: Key = [7; 32];
+        let (mut link, loses) = lossy_sim(key);
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = fringe_sqlite::Store::open(dir.path().join("a.db")).unwrap();
+        store
+            .ensure_device(&fringe_store::DeviceInfo {
+                serial: "HGM-L2-0099".into(),
+                ..Default::default()
+            })
+            .unwrap();
+        let records = |store: &fringe_sqlite::Store| store.calibrations("HGM-L2-0099").unwrap();
+        let old = link.settings().unwrap();
+        let mut new = old.clone();
+        new.interval_ms = old.interval_ms + 1000;
+        *loses.lock().unwrap() = Loses::Writes;
+        write_settings(
+            &mut link,
+            &key,
+            &mut store,
+            &old,
+            &new,
+            "R. Okafor",
+            "slower line",
+        )
+        .expect("read back and recorded");
+        *loses.lock().unwrap() = Loses::Nothing;
+        assert_eq!(link.settings().unwrap(), new);
+        let recs = records(&store);
+        assert_eq!(recs.len(), 1);
+        let verification = recs[0].cal.body["verification"]
+            .as_str()
+            .unwrap_or_default();
+        assert!(
+            verification.contains("answer to the write was lost"),
+            "{verification}"
+        );
+        assert_eq!(recs[0].cal.body["operator"], "R. Okafor");
+        // The device answers nothing after the write.
+        let mut newer = new.clone();
+        newer.interval_ms += 1000;
+        *loses.lock().unwrap() = Loses::AfterAWrite;
+        match write_settings(
+            &mut link,
+            &key,
+            &mut store,
+            &new,
+            &newer,
+            "R. Okafor",
+            "slower",
+        ) {
+            Err(SettingsError::Unconfirmed(u)) => {
+                let text = u.to_string();
+                assert!(
+                    text.contains("not known") && text.contains("fringe device config"),
+                    "{text}"
+                );
+            }
+            other => panic!("{other:?}"),
+        }
+        assert_eq!(records(&store).len(), 1, "nothing recorded");
+    }
 
     const D: ModbusSettings = ModbusSettings {
         unit_id: 1,

@@ -1,0 +1,207 @@
+//! A change sent to the device whose answer did not come: it may have
+//! landed.
+//!
+//! The link repeats a signed write whose answer is lost and, where the
+//! repeat is refused as a replay, asks the device whether the first try
+//! landed ([`Link::request_signed`]). When every try goes unanswered (the
+//! cable pulled, the device restarting, a long disturbance) the device may
+//! hold the change or not. Returning the link's error there left a change
+//! the device runs with no audit record of who made it and why. So each
+//! write of this crate reads back what it wrote (`check`, with the link's
+//! own retries) before it gives up: where the device holds it, the change
+//! is recorded as usual and its record says the answer was lost; where it
+//! does not, the link's error stands (nothing changed); where the device
+//! still does not answer, [`Unconfirmed`] says that the outcome is not
+//! known and how to find it.
+
+use fringe_link::{Link, LinkError};
+use fringe_protocol::auth::Key;
+use fringe_protocol::Request;
+
+/// How a write landed.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Landed {
+    /// The device answered it.
+    Answered,
+    /// Its answer was lost (the link's error, in words), and the read-back
+    /// shows the device holds it.
+    AnswerLost(String),
+}
+
+impl Landed {
+    /// Words for the audit record's verification, after what was read back
+    /// (empty for an answered write).
+    pub fn words(&self) -> String {
+        match self {
+            Landed::Answered => String::new(),
+            Landed::AnswerLost(e) => {
+                format!(" (the device's answer to the write was lost: {e}; read back after it)")
+            }
+        }
+    }
+}
+
+/// A write whose outcome is not known: the device answered neither the
+/// write nor the read-back after it. Nothing was recorded.
+#[derive(Debug, thiserror::Error)]
+#[error("the device answered neither the {what} nor the read-back after it ({source}): whether it holds the change is not known, and nothing was recorded. When it answers, check with {check_with} and repeat the command if it does not hold it; {after}")]
+pub struct Unconfirmed {
+    /// What was written, in words.
+    pub what: &'static str,
+    /// The command that shows what the device holds.
+    pub check_with: &'static str,
+    /// What records a change that landed all the same.
+    pub after: &'static str,
+    /// The link's error on the write.
+    #[source]
+    pub source: LinkError,
+}
+
+/// Why a checked write failed.
+#[derive(Debug)]
+pub enum WriteFailed {
+    /// The device refused it, or the read-back shows it did not land: the
+    /// link's error on the write.
+    Link(LinkError),
+    /// Not known whether it landed.
+    Unconfirmed(Unconfirmed),
+}
+
+/// Words of a checked write for [`Unconfirmed`].
+#[derive(Debug, Clone, Copy)]
+pub struct Checked {
+    /// What is written, in words ("product calibration write").
+    pub what: &'static str,
+    /// The command that shows what the device holds.
+    pub check_with: &'static str,
+    /// What records a change that landed all the same.
+    pub after: &'static str,
+}
+
+/// Sends `request` signed with `key`; where no answer comes (any failure
+/// but the device's refusal), `check` reads back whether the device holds
+/// the change (`Ok(true)`).
+///
+/// # Errors
+/// [`WriteFailed`].
+pub fn write_checked(
+    link: &mut Link,
+    key: &Key,
+    request: Request,
+    words: Checked,
+    check: impl FnOnce(&mut Link) -> Result<bool, LinkError>,
+) -> Result<Landed, WriteFailed> {
+    match link.request_signed(request, key) {
+        Ok(_) => Ok(Landed::Answered),
+        Err(e @ LinkError::Refused { .. }) => Err(WriteFailed::Link(e)),
+        Err(e) => match check(link) {
+            Ok(true) => Ok(Landed::AnswerLost(e.to_string())),
+            Ok(false) => Err(WriteFailed::Link(e)),
+            Err(_) => Err(WriteFailed::Unconfirmed(Unconfirmed {
+                what: words.what,
+                check_with: words.check_with,
+                after: words.after,
+                source: e,
+            })),
+        },
+    }
+}
+
+/// A lossy line to the in-process simulated device, for the tests of the
+/// writes of this crate.
+#[cfg(test)]
+pub(crate) mod lossy {
+    use std::sync::{Arc, Mutex};
+    use std::time::Duration;
+
+    use fringe_link::{Link, LinkError, LinkOptions, Opener, Port};
+    use fringe_protocol::auth::Key;
+    use fringe_protocol::frame::FrameDecoder;
+    use fringe_protocol::HostFrame;
+
+    /// Which of the device's answers the line loses.
+    #[derive(Debug, Clone, Copy, PartialEq)]
+    pub(crate) enum Loses {
+        Nothing,
+        /// The answers to every signed write (the device takes the write).
+        Writes,
+        /// Everything from the first signed write on (the cable pulled).
+        AfterAWrite,
+    }
+
+    /// A port to the in-process simulated device that loses answers.
+    struct LossyPort {
+        inner: Box<dyn Port>,
+        loses: Arc<Mutex<Loses>>,
+        deaf: bool,
+        frames: FrameDecoder<HostFrame>,
+    }
+
+    impl Port for LossyPort {
+        fn read_some(&mut self, buf: &mut [u8], timeout: Duration) -> std::io::Result<usize> {
+            let n = self.inner.read_some(buf, timeout)?;
+            Ok(if self.deaf { 0 } else { n })
+        }
+        fn write_all(&mut self, bytes: &[u8]) -> std::io::Result<()> {
+            let loses = *self.loses.lock().unwrap_or_else(|p| p.into_inner());
+            for b in bytes {
+                if let Some(Ok(f)) = self.frames.feed(*b) {
+                    let write = f.auth.is_some();
+                    self.deaf = match loses {
+                        Loses::Nothing => false,
+                        Loses::Writes => write,
+                        Loses::AfterAWrite => self.deaf || write,
+                    };
+                }
+            }
+            self.inner.write_all(bytes)
+        }
+        fn discard_input(&mut self) -> std::io::Result<()> {
+            self.inner.discard_input()
+        }
+    }
+
+    struct LossyOpener(Box<dyn Opener>, Arc<Mutex<Loses>>);
+
+    impl Opener for LossyOpener {
+        fn open(&mut self) -> Result<Box<dyn Port>, LinkError> {
+            Ok(Box::new(LossyPort {
+                inner: self.0.open()?,
+                loses: self.1.clone(),
+                deaf: false,
+                frames: FrameDecoder::default(),
+            }))
+        }
+        fn name(&self) -> &str {
+            self.0.name()
+        }
+        fn baud(&self) -> u32 {
+            self.0.baud()
+        }
+    }
+
+    /// A simulated device HGM-L2-0099 with `key` (the firmware core, in
+    /// this process) behind a line whose losses the handle sets.
+    pub(crate) fn lossy_sim(key: Key) -> (Link, Arc<Mutex<Loses>>) {
+        let sim = fringe_sim::port::SimHandle::boot(
+            3,
+            fringe_firmware::Scenario::default(),
+            fringe_firmware::DeviceConfig::new("HGM-L2-0099", key),
+        )
+        .expect("boot");
+        let loses = Arc::new(Mutex::new(Loses::Nothing));
+        let opts = LinkOptions {
+            timeout: Duration::from_millis(300),
+            tries: 2,
+            backoff_min: Duration::from_millis(5),
+            backoff_max: Duration::from_millis(20),
+            handshakes: 1,
+        };
+        let link = Link::connect(
+            Box::new(LossyOpener(sim.opener("sim"), loses.clone())),
+            opts,
+        )
+        .expect("handshake");
+        (link, loses)
+    }
+}
