@@ -180,6 +180,18 @@ pub(crate) mod lossy {
         }
     }
 
+    /// A SQLite store in `dir` that knows HGM-L2-0099.
+    pub(crate) fn store_in(dir: &std::path::Path) -> fringe_sqlite::Store {
+        let mut store = fringe_sqlite::Store::open(dir.join("a.db")).expect("store");
+        store
+            .ensure_device(&fringe_store::DeviceInfo {
+                serial: "HGM-L2-0099".into(),
+                ..Default::default()
+            })
+            .expect("device");
+        store
+    }
+
     /// A simulated device HGM-L2-0099 with `key` (the firmware core, in
     /// this process) behind a line whose losses the handle sets.
     pub(crate) fn lossy_sim(key: Key) -> (Link, Arc<Mutex<Loses>>) {

@@ -657,7 +657,7 @@ pub fn select(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::landed::lossy::{lossy_sim, Loses};
+    use crate::landed::lossy::{lossy_sim, store_in, Loses};
     use fringe_calibration::synth::SynthProduct;
 
     /// A guide that answers yes and keeps what it is shown.
@@ -700,13 +700,7 @@ mod tests {
         link.request_signed(Request::SelectProduct { slot: 0 }, &key)
             .expect("select");
         let dir = tempfile::tempdir().unwrap();
-        let mut store = fringe_sqlite::Store::open(dir.path().join("a.db")).unwrap();
-        store
-            .ensure_device(&fringe_store::DeviceInfo {
-                serial: "HGM-L2-0099".into(),
-                ..Default::default()
-            })
-            .unwrap();
+        let mut store = store_in(dir.path());
         *loses.lock().unwrap() = Loses::Writes;
         let (slot, _) = select(
             &mut link,

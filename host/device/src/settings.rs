@@ -327,7 +327,7 @@ pub fn write_modbus(
 mod tests {
     use super::*;
 
-    use crate::landed::lossy::{lossy_sim, Loses};
+    use crate::landed::lossy::{lossy_sim, store_in, Loses};
 
     /// A write the device takes whose every answer is lost is read back
     /// and recorded, its record saying so; where the device answers
@@ -340,13 +340,7 @@ mod tests {
         let key: Key = [7; 32];
         let (mut link, loses) = lossy_sim(key);
         let dir = tempfile::tempdir().unwrap();
-        let mut store = fringe_sqlite::Store::open(dir.path().join("a.db")).unwrap();
-        store
-            .ensure_device(&fringe_store::DeviceInfo {
-                serial: "HGM-L2-0099".into(),
-                ..Default::default()
-            })
-            .unwrap();
+        let mut store = store_in(dir.path());
         let records = |store: &fringe_sqlite::Store| store.calibrations("HGM-L2-0099").unwrap();
         let old = link.settings().unwrap();
         let mut new = old.clone();

@@ -1195,19 +1195,25 @@ mod tests {
         store
     }
 
-    fn add(store: &mut Store, from: u32, to: u32) {
-        let rs: Vec<Reading> = (from..to).map(reading).collect();
+    /// Readings `from..to` of `at` and a reference check every tenth,
+    /// its ratio rising by `per` a reading.
+    fn add_readings(store: &mut Store, from: u32, to: u32, at: impl Fn(u32) -> Reading, per: f32) {
+        let rs: Vec<Reading> = (from..to).map(&at).collect();
         store.insert_readings("L2", &rs, Source::Stream).unwrap();
         for i in (from..to).filter(|i| i % 10 == 0) {
             let check = RefCheck {
-                ratio: [1.0 + i as f32 * 1e-5, 1.0],
+                ratio: [1.0 + i as f32 * per, 1.0],
                 baseline: 1.0,
                 ok: true,
             };
             store
-                .insert_reference_check("L2", reading(i).time_ms as i64, &check)
+                .insert_reference_check("L2", at(i).time_ms as i64, &check)
                 .unwrap();
         }
+    }
+
+    fn add(store: &mut Store, from: u32, to: u32) {
+        add_readings(store, from, to, reading, 1e-5);
         let i = to - 1;
         store
             .insert_lab_sample(
@@ -1320,18 +1326,7 @@ mod tests {
         for step in [1u32, 99, 150, 200, 50, 100, 300, 11, 89] {
             let from = to;
             to += step;
-            let rs: Vec<Reading> = (from..to).map(at).collect();
-            store.insert_readings("L2", &rs, Source::Stream).unwrap();
-            for i in (from..to).filter(|i| i % 10 == 0) {
-                let check = RefCheck {
-                    ratio: [1.0 + i as f32 * 1e-4, 1.0],
-                    baseline: 1.0,
-                    ok: true,
-                };
-                store
-                    .insert_reference_check("L2", at(i).time_ms as i64, &check)
-                    .unwrap();
-            }
+            add_readings(&mut store, from, to, at, 1e-4);
             // Calibration b's record only after readings carry it.
             if to == 1000 {
                 product_record(&mut store, b, 10.0, 28.0);
