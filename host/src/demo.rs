@@ -263,6 +263,7 @@ fn run_in(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
         liquid: "methanol".into(),
         verify_liquid: "ethanol".into(),
         temperature_c: None,
+        verify_temperature_c: None,
         readings: 6,
         operator: "R. Okafor (QC)".into(),
         yes: true,

@@ -102,6 +102,42 @@ fn a_liquid_outside_its_temperature_range_is_refused() {
     );
     assert_eq!(status_json(&sim)["cell_cal"], before["cell_cal"]);
     assert!(!db.exists() || history(&db).is_empty());
+    // The verification liquid's own temperature (its beaker may be at
+    // another), named by its flag.
+    sim.set_bench("air");
+    let mut c = Interactive::spawn(&mut cal_write(
+        &sim,
+        &key,
+        &db,
+        "cell",
+        &[
+            "--temperature-c",
+            "21",
+            "--verify-temperature-c",
+            "44",
+            "--readings",
+            "2",
+            "--yes",
+        ],
+    ));
+    c.expect(ENTER, 1, PROMPT);
+    c.send("");
+    c.expect(ENTER, 2, PROMPT);
+    sim.set_bench("methanol");
+    c.send("");
+    c.expect(ENTER, 3, PROMPT);
+    sim.set_bench("ethanol");
+    c.send("");
+    let o = c.finish(LIMIT);
+    assert_fails(
+        &o,
+        1,
+        &[
+            "ethanol at 44.0 C (--verify-temperature-c)",
+            "nothing was written",
+        ],
+    );
+    assert_eq!(status_json(&sim)["cell_cal"], before["cell_cal"]);
 }
 
 /// The plant's bulk density through `fringe device density` (protocol

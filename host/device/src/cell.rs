@@ -27,6 +27,9 @@ pub struct CellOptions {
     pub verify_liquid: String,
     /// Liquid temperature from a thermometer, C (else the device's reading).
     pub temperature_c: Option<f64>,
+    /// The verification liquid's temperature from a thermometer, C (else
+    /// `temperature_c`, else the device's reading).
+    pub verify_temperature_c: Option<f64>,
     /// Readings averaged per step.
     pub readings: u32,
     /// Who does the calibration.
@@ -250,7 +253,11 @@ pub fn cell_calibration(
         ver.name
     ))?;
     let (y_ver, _, t_ver_dev, _) = averaged_reading(link, a.readings)?;
-    let t_ver = a.temperature_c.unwrap_or(t_ver_dev);
+    let (t_ver, by) = match (a.verify_temperature_c, a.temperature_c) {
+        (Some(t), _) => (t, "--verify-temperature-c"),
+        (None, Some(t)) => (t, "--temperature-c"),
+        (None, None) => (t_ver_dev, "the device's temperature reading"),
+    };
     check_temperature(ver, t_ver, by)?;
     let mut verification = Vec::new();
     for k in 0..N_FREQ {

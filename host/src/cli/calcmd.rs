@@ -69,6 +69,9 @@ pub struct CellArgs {
     /// Liquid temperature, C, measured with a thermometer [default: the device's temperature reading].
     #[arg(long)]
     pub temperature_c: Option<f64>,
+    /// The verification liquid's temperature, C, measured with a thermometer (its beaker may be warmer or cooler) [default: --temperature-c if given, else the device's temperature reading].
+    #[arg(long)]
+    pub verify_temperature_c: Option<f64>,
     /// Readings averaged per step.
     #[arg(long, default_value_t = 8, value_parser = clap::value_parser!(u32).range(1..=200))]
     pub readings: u32,

@@ -38,6 +38,7 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 liquid: c.liquid.clone(),
                 verify_liquid: c.verify_liquid.clone(),
                 temperature_c: c.temperature_c,
+                verify_temperature_c: c.verify_temperature_c,
                 readings: c.readings,
                 operator: c.operator.clone(),
                 yes: c.yes,
