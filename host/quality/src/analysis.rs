@@ -862,6 +862,64 @@ impl Charts {
     }
 }
 
+/// Readings a read of the live check takes at a time: a store shared with
+/// the gateway's other devices is held for one call, so a first check of
+/// a long history lets their writes in between.
+const READ_CHUNK: usize = 20_000;
+
+/// The signal that ends one call of a chunked read.
+#[derive(Debug)]
+struct ChunkFull;
+
+impl std::fmt::Display for ChunkFull {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("chunk full")
+    }
+}
+
+impl std::error::Error for ChunkFull {}
+
+/// `store.for_each_reading(serial, from..=to)` in calls of at most `chunk`
+/// readings each.
+///
+/// # Errors
+/// A store failure, or `f`'s.
+fn for_each_reading_chunked(
+    store: &(impl RecordRead + ?Sized),
+    serial: &str,
+    (mut from, to): (Seq, Seq),
+    chunk: usize,
+    f: &mut dyn FnMut(fringe_store::StoredReading) -> Result<(), StoreError>,
+) -> Result<(), StoreError> {
+    loop {
+        let (mut n, mut last) = (0usize, None);
+        let read = store.for_each_reading(serial, from, to, &mut |r| {
+            let seq = r.reading.seq;
+            f(r)?;
+            last = Some(seq);
+            n += 1;
+            if n >= chunk {
+                Err(StoreError::Backend {
+                    path: std::path::PathBuf::new(),
+                    source: Box::new(ChunkFull),
+                })
+            } else {
+                Ok(())
+            }
+        });
+        match read {
+            Ok(()) => return Ok(()),
+            Err(StoreError::Backend { source, .. }) if source.is::<ChunkFull>() => match last {
+                Some(l) if l.as_u64() < to.as_u64() => {
+                    from = Seq::from_u64(l.as_u64() + 1);
+                }
+                _ => return Ok(()),
+            },
+            Err(e) => return Err(e),
+        }
+    }
+}
+
 /// What the live drift check of a device keeps ([`crate::watch`]): the
 /// monitors' state ([`Charts`], without the statistics for plots), the lab
 /// rows and the calibration records, not the readings. What it holds grows
@@ -887,6 +945,8 @@ pub struct LiveData {
     /// was read, from the store once.
     matched: std::collections::HashMap<Seq, Option<(Option<f32>, CalId)>>,
     readings: u64,
+    /// Readings read per call ([`READ_CHUNK`]).
+    chunk: usize,
 }
 
 impl LiveData {
@@ -910,6 +970,7 @@ impl LiveData {
             refs_position: None,
             matched: std::collections::HashMap::new(),
             readings: 0,
+            chunk: READ_CHUNK,
         };
         d.refresh(store)?;
         Ok(d)
@@ -934,11 +995,17 @@ impl LiveData {
         if let Some(last) = self.last {
             for (k, (id, first)) in again.iter().enumerate() {
                 let charts = &mut self.charts;
-                let read = store.for_each_reading(&self.serial, *first, last, &mut |r| {
-                    let time_ms = r.wall_ms.unwrap_or(r.reading.time_ms as i64);
-                    charts.push_recharted(*id, time_ms, &r.reading);
-                    Ok(())
-                });
+                let read = for_each_reading_chunked(
+                    store,
+                    &self.serial,
+                    (*first, last),
+                    self.chunk,
+                    &mut |r| {
+                        let time_ms = r.wall_ms.unwrap_or(r.reading.time_ms as i64);
+                        charts.push_recharted(*id, time_ms, &r.reading);
+                        Ok(())
+                    },
+                );
                 if let Err(e) = read {
                     // Charted again by the next refresh, whole.
                     for (id, _) in &again[k..] {
@@ -970,7 +1037,8 @@ impl LiveData {
             &mut self.readings,
             &mut self.matched,
         );
-        store.for_each_reading(&self.serial, from, Seq::from_u64(u64::MAX), &mut |r| {
+        let all = (from, Seq::from_u64(u64::MAX));
+        for_each_reading_chunked(store, &self.serial, all, self.chunk, &mut |r| {
             let time_ms = r.wall_ms.unwrap_or(r.reading.time_ms as i64);
             charts.push_reading(r.reading.seq, time_ms, &r.reading);
             if wanted.contains(&r.reading.seq) {
@@ -1309,6 +1377,8 @@ mod tests {
         let mut store = store_of_l2(dir.path());
         product_record(&mut store, a, 10.0, 28.0);
         let mut live = LiveData::load(&store, "L2").unwrap();
+        // Reads of 7 readings a call: the chunks' ends fall everywhere.
+        live.chunk = 7;
         let episodes = |store: &Store| -> Vec<Alarm> {
             load(store, Some("L2"))
                 .unwrap()
