@@ -115,7 +115,8 @@ fn build(db: &Path) -> BTreeMap<String, Vec<Reading>> {
             product: Some("feed pellets, line 3".into()),
             lab_moisture_pct: 14.2,
             basis: "wet".into(),
-            method: Some("oven 130 C 2 h".into()),
+            // Text a spreadsheet would take for a formula (made up).
+            method: Some("=HYPERLINK(\"http://example.invalid\",\"oven\")".into()),
             reading: Some(Seq {
                 boot: 1,
                 counter: 11,
@@ -436,6 +437,30 @@ fn events_and_lab_samples_with_their_times() {
     assert_eq!(r["matched_counter"], "11");
     assert_eq!(r["note"], "");
     assert_eq!(r["product"], "feed pellets, line 3");
+    // Text a spreadsheet would evaluate is written as text in the CSV, and
+    // as stored in JSON Lines.
+    assert_eq!(
+        r["method"],
+        "'=HYPERLINK(\"http://example.invalid\",\"oven\")"
+    );
+    let o = run(
+        &mut fringe(&[
+            "export",
+            "--db",
+            s(&db),
+            "--what",
+            "lab",
+            "--format",
+            "jsonl",
+        ]),
+        LIMIT,
+    );
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let lab: Value = serde_json::from_str(o.stdout.trim()).expect("JSON");
+    assert_eq!(
+        lab["method"],
+        "=HYPERLINK(\"http://example.invalid\",\"oven\")"
+    );
 }
 
 #[test]

@@ -19,6 +19,10 @@
 //!   counted ([`Summary::untimed_left_out`]). Without a range every record
 //!   is exported.
 //!
+//! - CSV text that starts with `=`, `+`, `-`, `@`, a tab or a carriage
+//!   return gets a leading apostrophe, so that a spreadsheet does not run
+//!   it as a formula ([`spreadsheet_text`]); JSON Lines keep it as stored.
+//!
 //! The readings are streamed from the store ([`RecordRead::for_each_reading`]),
 //! never held in memory all at once; the range is applied while reading
 //! (the store has no index by wall-clock time, so every reading of the
@@ -277,8 +281,8 @@ impl<'w> Rows<'w> {
                         Cell::Int(i) => i.to_string(),
                         Cell::Bool(b) => b.to_string(),
                         Cell::Num(x) => numbers::cell(c, Some(*x)),
-                        Cell::Text(s) => s.clone(),
-                        Cell::List(l) => l.join("|"),
+                        Cell::Text(s) => spreadsheet_text(s),
+                        Cell::List(l) => spreadsheet_text(&l.join("|")),
                     })
                     .collect();
                 self.csv
@@ -313,6 +317,20 @@ impl<'w> Rows<'w> {
             w.flush().map_err(ExportError::Write)?;
         }
         Ok(())
+    }
+}
+
+/// Text for a CSV cell a spreadsheet opens: text that starts with `=`,
+/// `+`, `-`, `@`, a tab or a carriage return gets a leading apostrophe, so
+/// that the spreadsheet shows it as text instead of evaluating it as a
+/// formula (a sample id, lab method or note typed by a person, or a tag;
+/// the OWASP "CSV Injection" advice, from memory). JSON Lines keep the
+/// text as stored.
+fn spreadsheet_text(s: &str) -> String {
+    if s.starts_with(['=', '+', '-', '@', '\t', '\r']) {
+        format!("'{s}")
+    } else {
+        s.to_owned()
     }
 }
 
