@@ -162,7 +162,10 @@ impl ExitCode {
                 return ExitCode::GateRefused;
             }
             if let Some(e) = cause.downcast_ref::<io::Error>() {
-                if e.kind() == io::ErrorKind::StorageFull {
+                if matches!(
+                    e.kind(),
+                    io::ErrorKind::StorageFull | io::ErrorKind::QuotaExceeded
+                ) {
                     return ExitCode::DiskFull;
                 }
             }

@@ -1101,6 +1101,30 @@ fn the_integrity_check_says_which_grants_and_which_amcheck_it_needs() {
     s.raw(&admin_url).batch_execute(&grants).unwrap();
     st.check_integrity(true).unwrap();
     assert!(audit::verify(None, Some(&st)).unwrap().problems.is_empty());
+    // amcheck in a schema of its own, which the role may not use.
+    s.admin
+        .batch_execute("CREATE DATABASE lined2 OWNER line_role")
+        .unwrap();
+    let admin2 = s.url("lined2");
+    s.raw(&admin2)
+        .batch_execute("CREATE SCHEMA checks; CREATE EXTENSION amcheck SCHEMA checks")
+        .unwrap();
+    let url2 = format!("postgres://line_role@127.0.0.1:{}/lined2", s.pg.port);
+    let mut st2 = Store::connect(&url2).unwrap();
+    st2.insert_readings(SERIAL, &batch, Source::Stream).unwrap();
+    let grants = match st2.check_integrity(true) {
+        Err(e) => {
+            let text = e.to_string();
+            assert!(
+                text.contains("GRANT USAGE ON SCHEMA checks TO line_role"),
+                "{text}"
+            );
+            text[text.find("GRANT").expect("GRANTs")..].to_string()
+        }
+        Ok(()) => panic!("a role without the schema ran amcheck"),
+    };
+    s.raw(&admin2).batch_execute(&grants).unwrap();
+    st2.check_integrity(true).unwrap();
     // An amcheck without verify_heapam.
     let old = s.fresh();
     s.raw(&old)

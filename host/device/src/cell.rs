@@ -13,7 +13,7 @@ use fringe_quality::product_file::hz_label;
 use fringe_store::{CalKind, RecordStore, StoreError};
 
 use crate::guide::{Cancelled, Guide};
-use crate::landed::{write_checked, Checked, Unconfirmed, WriteFailed};
+use crate::landed::{write_checked, Checked, NotTaken, Unconfirmed, WriteFailed};
 use crate::measure::averaged_reading;
 use crate::record::record;
 use crate::LINE_CAUTION;
@@ -57,9 +57,12 @@ pub enum CellError {
     #[error("the device holds the new cell calibration, but its record could not be stored: {0}")]
     Store(#[from] StoreError),
     /// Not known whether the device took the write (it answered neither
-    /// the write nor the read-back); nothing recorded.
+    /// the write nor the question after it); nothing recorded.
     #[error(transparent)]
     Unconfirmed(#[from] Unconfirmed),
+    /// No answer came, and the device did not take the write.
+    #[error(transparent)]
+    NotTaken(#[from] NotTaken),
     /// The person stopped.
     #[error("{0}")]
     Cancelled(#[from] Cancelled),
@@ -333,16 +336,12 @@ pub fn cell_calibration(
         Request::WriteCellCal(cal),
         Checked {
             what: "cell calibration write",
-            check_with: "`fringe status`",
-            after: "the next `fringe monitor` or `fringe pull` records a cell calibration the database has no record of, as observed",
-        },
-        |l| {
-            Ok(matches!(l.request(Request::ReadCellCal)?,
-                Response::CellCal(Some(c)) if c.content_id() == cal.content_id()))
+            then: "see its cell calibration id with `fringe status`: if it is the new one, the next `fringe monitor` or `fringe pull` records it as observed (without who and why: note them in the bench log); if not, calibrate again",
         },
     )
     .map_err(|e| match e {
         WriteFailed::Link(e) => CellError::Link(e),
+        WriteFailed::NotTaken(n) => CellError::NotTaken(n),
         WriteFailed::Unconfirmed(u) => CellError::Unconfirmed(u),
     })?;
     let back = match link.request(Request::ReadCellCal)? {
@@ -387,7 +386,16 @@ pub fn cell_calibration(
             new_id: cal.content_id().to_string(),
             action: "cell".into(),
             statistics: None,
-            verification: Some(format!("{words}{}", written.words())),
+            verification: Some(format!(
+                "{words}{}{}",
+                // Where the verification liquid had a temperature of its own.
+                if a.verify_temperature_c.is_some() {
+                    format!(" ({} at {t_ver:.1} C, --verify-temperature-c)", ver.name)
+                } else {
+                    String::new()
+                },
+                written.words()
+            )),
             parent_id: None,
             derivation: None,
         },

@@ -7,12 +7,16 @@
 //! cable pulled, the device restarting, a long disturbance) the device may
 //! hold the change or not. Returning the link's error there left a change
 //! the device runs with no audit record of who made it and why. So each
-//! write of this crate reads back what it wrote (`check`, with the link's
-//! own retries) before it gives up: where the device holds it, the change
-//! is recorded as usual and its record says the answer was lost; where it
-//! does not, the link's error stands (nothing changed); where the device
-//! still does not answer, [`Unconfirmed`] says that the outcome is not
-//! known and how to find it.
+//! write of this crate asks the device, before it gives up, for the
+//! counter of the last signed write it accepted (the device keeps it
+//! against replays; `Status::write_counter`): one above the counter before
+//! the write means this write landed, and the change is recorded as usual
+//! with its record saying the answer was lost; the same counter means it
+//! did not (nothing changed); where the device still does not answer,
+//! [`Unconfirmed`] says that the outcome is not known and what to do.
+//! (What the device holds cannot tell: a switch to the active product, or
+//! a push of the content a slot already holds, reads back the same whether
+//! or not the write ran.)
 
 use fringe_link::{Link, LinkError};
 use fringe_protocol::auth::Key;
@@ -23,8 +27,8 @@ use fringe_protocol::Request;
 pub enum Landed {
     /// The device answered it.
     Answered,
-    /// Its answer was lost (the link's error, in words), and the read-back
-    /// shows the device holds it.
+    /// Its answer was lost (the link's error, in words), and the device's
+    /// write counter shows it took it.
     AnswerLost(String),
 }
 
@@ -34,24 +38,34 @@ impl Landed {
     pub fn words(&self) -> String {
         match self {
             Landed::Answered => String::new(),
-            Landed::AnswerLost(e) => {
-                format!(" (the device's answer to the write was lost: {e}; read back after it)")
-            }
+            Landed::AnswerLost(e) => format!(
+                " (the device's answer to the write was lost: {e}; its write counter shows it took it)"
+            ),
         }
     }
 }
 
 /// A write whose outcome is not known: the device answered neither the
-/// write nor the read-back after it. Nothing was recorded.
+/// write nor the question after it. Nothing was recorded.
 #[derive(Debug, thiserror::Error)]
-#[error("the device answered neither the {what} nor the read-back after it ({source}): whether it holds the change is not known, and nothing was recorded. When it answers, check with {check_with} and repeat the command if it does not hold it; {after}")]
+#[error("the device answered neither the {what} nor the question after it ({source}): whether it took the change is not known, and nothing was recorded. When it answers, {then}")]
 pub struct Unconfirmed {
     /// What was written, in words.
     pub what: &'static str,
-    /// The command that shows what the device holds.
-    pub check_with: &'static str,
-    /// What records a change that landed all the same.
-    pub after: &'static str,
+    /// What to do once the device answers.
+    pub then: &'static str,
+    /// The link's error on the write.
+    #[source]
+    pub source: LinkError,
+}
+
+/// A write the device did not take: no answer came, and its write counter
+/// is unchanged. Nothing changed, nothing was recorded.
+#[derive(Debug, thiserror::Error)]
+#[error("the device did not answer the {what} ({source}) and did not take it (its write counter is unchanged): nothing changed on the device, and nothing was recorded")]
+pub struct NotTaken {
+    /// What was written, in words.
+    pub what: &'static str,
     /// The link's error on the write.
     #[source]
     pub source: LinkError,
@@ -60,27 +74,27 @@ pub struct Unconfirmed {
 /// Why a checked write failed.
 #[derive(Debug)]
 pub enum WriteFailed {
-    /// The device refused it, or the read-back shows it did not land: the
-    /// link's error on the write.
+    /// The device refused it, or nothing was sent: the link's error.
     Link(LinkError),
+    /// No answer came, and the device did not take it.
+    NotTaken(NotTaken),
     /// Not known whether it landed.
     Unconfirmed(Unconfirmed),
 }
 
-/// Words of a checked write for [`Unconfirmed`].
+/// Words of a checked write for its errors.
 #[derive(Debug, Clone, Copy)]
 pub struct Checked {
     /// What is written, in words ("product calibration write").
     pub what: &'static str,
-    /// The command that shows what the device holds.
-    pub check_with: &'static str,
-    /// What records a change that landed all the same.
-    pub after: &'static str,
+    /// What to do once the device answers again, where the outcome is not
+    /// known.
+    pub then: &'static str,
 }
 
 /// Sends `request` signed with `key`; where no answer comes (any failure
-/// but the device's refusal), `check` reads back whether the device holds
-/// the change (`Ok(true)`).
+/// but the device's refusal), asks the device for its write counter to
+/// learn whether it took the write.
 ///
 /// # Errors
 /// [`WriteFailed`].
@@ -89,18 +103,22 @@ pub fn write_checked(
     key: &Key,
     request: Request,
     words: Checked,
-    check: impl FnOnce(&mut Link) -> Result<bool, LinkError>,
 ) -> Result<Landed, WriteFailed> {
+    let before = link.status().map_err(WriteFailed::Link)?.write_counter;
     match link.request_signed(request, key) {
         Ok(_) => Ok(Landed::Answered),
         Err(e @ LinkError::Refused { .. }) => Err(WriteFailed::Link(e)),
-        Err(e) => match check(link) {
-            Ok(true) => Ok(Landed::AnswerLost(e.to_string())),
-            Ok(false) => Err(WriteFailed::Link(e)),
+        Err(e) => match link.status() {
+            Ok(s) if s.write_counter == before.wrapping_add(1) => {
+                Ok(Landed::AnswerLost(e.to_string()))
+            }
+            Ok(_) => Err(WriteFailed::NotTaken(NotTaken {
+                what: words.what,
+                source: e,
+            })),
             Err(_) => Err(WriteFailed::Unconfirmed(Unconfirmed {
                 what: words.what,
-                check_with: words.check_with,
-                after: words.after,
+                then: words.then,
                 source: e,
             })),
         },
@@ -127,6 +145,8 @@ pub(crate) mod lossy {
         Writes,
         /// Everything from the first signed write on (the cable pulled).
         AfterAWrite,
+        /// The signed writes themselves: the device never sees them.
+        WriteFrames,
     }
 
     /// A port to the in-process simulated device that loses answers.
@@ -144,17 +164,23 @@ pub(crate) mod lossy {
         }
         fn write_all(&mut self, bytes: &[u8]) -> std::io::Result<()> {
             let loses = *self.loses.lock().unwrap_or_else(|p| p.into_inner());
+            let mut forward = true;
             for b in bytes {
                 if let Some(Ok(f)) = self.frames.feed(*b) {
                     let write = f.auth.is_some();
                     self.deaf = match loses {
                         Loses::Nothing => false,
-                        Loses::Writes => write,
+                        Loses::Writes | Loses::WriteFrames => write,
                         Loses::AfterAWrite => self.deaf || write,
                     };
+                    forward &= !(write && loses == Loses::WriteFrames);
                 }
             }
-            self.inner.write_all(bytes)
+            if forward {
+                self.inner.write_all(bytes)
+            } else {
+                Ok(())
+            }
         }
         fn discard_input(&mut self) -> std::io::Result<()> {
             self.inner.discard_input()

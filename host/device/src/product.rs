@@ -15,7 +15,7 @@ use fringe_quality::product_file::{same_freqs, ProductFile};
 use fringe_store::{CalKind, RecordStore, StoreError};
 
 use crate::guide::{Cancelled, Guide};
-use crate::landed::{write_checked, Checked, Landed, Unconfirmed, WriteFailed};
+use crate::landed::{write_checked, Checked, Landed, NotTaken, Unconfirmed, WriteFailed};
 use crate::record::record;
 use crate::LINE_CAUTION;
 
@@ -30,9 +30,23 @@ pub enum ProductError {
     #[error("the device holds the change, but its record could not be stored: {0}")]
     Store(#[from] StoreError),
     /// Not known whether the device took the write (it answered neither
-    /// the write nor the read-back); nothing recorded.
+    /// the write nor the question after it); nothing recorded.
     #[error(transparent)]
     Unconfirmed(#[from] Unconfirmed),
+    /// No answer came, and the device did not take the write.
+    #[error(transparent)]
+    NotTaken(#[from] NotTaken),
+    /// The push is recorded, but the switch to it failed.
+    #[error("the calibration is in slot {slot} and its push recorded (chain position {position}), but the line was not switched to it: {cause}")]
+    SwitchAfterPush {
+        /// Slot written.
+        slot: u8,
+        /// Chain position of the push record.
+        position: u64,
+        /// Why the switch failed.
+        #[source]
+        cause: Box<ProductError>,
+    },
     /// The person stopped.
     #[error("{0}")]
     Cancelled(#[from] Cancelled),
@@ -132,6 +146,7 @@ impl From<WriteFailed> for ProductError {
     fn from(e: WriteFailed) -> Self {
         match e {
             WriteFailed::Link(e) => ProductError::Link(e),
+            WriteFailed::NotTaken(n) => ProductError::NotTaken(n),
             WriteFailed::Unconfirmed(u) => ProductError::Unconfirmed(u),
         }
     }
@@ -140,23 +155,14 @@ impl From<WriteFailed> for ProductError {
 /// The words of a product calibration write whose outcome is not known.
 const PRODUCT_WRITE: Checked = Checked {
     what: "product calibration write",
-    check_with: "`fringe cal list`",
-    after: "the next `fringe monitor` or `fringe pull` records an active calibration the database has no record of, as observed",
+    then: "see what it holds with `fringe cal list` and run the push again either way: a push of what a slot already holds writes it again and is recorded with who and why",
 };
 
 /// The words of a product switch whose outcome is not known.
 const SELECT_WRITE: Checked = Checked {
     what: "switch of the active product",
-    ..PRODUCT_WRITE
+    then: "see which product is active with `fringe cal list` and run `fringe cal select` for the one the line should run either way: a switch to the active product is recorded with who and why",
 };
-
-/// Whether slot `slot` holds calibration `id`.
-fn slot_holds(link: &mut Link, slot: u8, id: CalId) -> Result<bool, LinkError> {
-    Ok(matches!(
-        link.request(Request::ReadProductCal { slot })?,
-        Response::ProductCal { cal: Some(c), .. } if c.content_id() == id
-    ))
-}
 
 /// `cal push`'s quality gate on a calibration file: the refusals to record
 /// when `force` overrides them.
@@ -455,7 +461,6 @@ pub fn push(
             cal: wire.clone(),
         },
         PRODUCT_WRITE,
-        |l| slot_holds(l, slot, new),
     )?;
     let back = match link.request(Request::ReadProductCal { slot })? {
         Response::ProductCal { cal: Some(c), .. } => c,
@@ -474,17 +479,8 @@ pub fn push(
             written: new,
         });
     }
-    let switched = if p.activate && active != Some(slot) {
-        write_checked(
-            link,
-            key,
-            Request::SelectProduct { slot },
-            SELECT_WRITE,
-            |l| Ok(list_slots(l)?.1 == Some(slot)),
-        )?
-    } else {
-        Landed::Answered
-    };
+    // The slot's new content is recorded before the line is switched to
+    // it: a switch that fails leaves the push on record.
     let body = CalRecordBody {
         calibration: serde_json::to_value(wire).unwrap_or(serde_json::Value::Null),
         operator: p.operator.into(),
@@ -494,12 +490,8 @@ pub fn push(
         action: "push".into(),
         statistics: Some(file.statistics.clone()),
         verification: Some(format!(
-            "read back from slot {slot}: id {new}{}{}",
-            written.words(),
-            match &switched {
-                Landed::Answered => String::new(),
-                lost => format!("; switched to it{}", lost.words()),
-            }
+            "read back from slot {slot}: id {new}{}",
+            written.words()
         )),
         parent_id: file.source.parent_id.clone(),
         derivation: file.source.derivation.clone(),
@@ -514,6 +506,17 @@ pub fn push(
         name.clone(),
         &body,
     )?;
+    let switched = if p.activate && active != Some(slot) {
+        write_checked(link, key, Request::SelectProduct { slot }, SELECT_WRITE).map_err(|e| {
+            ProductError::SwitchAfterPush {
+                slot,
+                position,
+                cause: Box::new(e.into()),
+            }
+        })?
+    } else {
+        Landed::Answered
+    };
     // The switch of the line, recorded as a select: from the calibration
     // it ran on to this one (the push record names the slot's old
     // content). Only where another calibration ran: from none, the push's
@@ -524,7 +527,10 @@ pub fn push(
                 reason: format!("activated by cal push: {}", p.reason),
                 old_id: from.content_id().to_string(),
                 action: "select".into(),
-                verification: Some(format!("slot {slot} selected after the push")),
+                verification: Some(format!(
+                    "slot {slot} selected after the push{}",
+                    switched.words()
+                )),
                 parent_id: None,
                 derivation: None,
                 ..body
@@ -615,7 +621,6 @@ pub fn select(
         key,
         Request::SelectProduct { slot: s.slot },
         SELECT_WRITE,
-        |l| Ok(list_slots(l)?.1 == Some(s.slot)),
     )?;
     let (_, now_active) = list_slots(link)?;
     if now_active != Some(s.slot) {
@@ -740,7 +745,33 @@ mod tests {
             Err(ProductError::Unconfirmed(u)) => {
                 let text = u.to_string();
                 assert!(
-                    text.contains("fringe cal list") && text.contains("observed"),
+                    text.contains("fringe cal list") && text.contains("fringe cal select"),
+                    "{text}"
+                );
+            }
+            other => panic!("{other:?}"),
+        }
+        assert_eq!(store.calibrations("HGM-L2-0099").unwrap().len(), 1);
+        // A switch to the product already active that never reaches the
+        // device: what the device holds reads the same as if it had run,
+        // but its write counter did not move, so nothing is recorded.
+        *loses.lock().unwrap() = Loses::Nothing;
+        let active = list_slots(&mut link).unwrap().1.expect("a product active");
+        *loses.lock().unwrap() = Loses::WriteFrames;
+        match select(
+            &mut link,
+            &key,
+            &mut store,
+            &mut Yes::default(),
+            &active.to_string(),
+            "R. Okafor",
+            "the same again",
+            true,
+        ) {
+            Err(ProductError::NotTaken(n)) => {
+                let text = n.to_string();
+                assert!(
+                    text.contains("did not take it") && text.contains("nothing was recorded"),
                     "{text}"
                 );
             }

@@ -9,7 +9,7 @@ use fringe_protocol::{Capabilities, ModbusParity, ModbusSettings, Request, Setti
 use fringe_quality::analysis::CalRecordBody;
 use fringe_store::{CalKind, NewCalibration, RecordStore, StoreError};
 
-use crate::landed::{write_checked, Checked, Landed, Unconfirmed, WriteFailed};
+use crate::landed::{write_checked, Checked, Landed, NotTaken, Unconfirmed, WriteFailed};
 
 /// Why a settings change stopped.
 #[derive(Debug, thiserror::Error)]
@@ -22,9 +22,12 @@ pub enum SettingsError {
     #[error("{0}")]
     Link(#[from] LinkError),
     /// Not known whether the device took the write (it answered neither
-    /// the write nor the read-back); nothing recorded.
+    /// the write nor the question after it); nothing recorded.
     #[error(transparent)]
     Unconfirmed(#[from] Unconfirmed),
+    /// No answer came, and the device did not take the write.
+    #[error(transparent)]
+    NotTaken(#[from] NotTaken),
     /// The record could not be stored (the device holds the new settings).
     #[error("the device holds the new settings, but their record could not be stored: {0}")]
     Store(#[from] StoreError),
@@ -159,7 +162,6 @@ pub fn write_settings(
         key,
         Request::WriteSettings(new.clone()),
         SETTINGS_WRITE,
-        |l| Ok(&l.settings()? == new),
     )?;
     let back = link.settings()?;
     if &back != new {
@@ -201,14 +203,14 @@ pub fn write_settings(
 /// The words of a settings write whose outcome is not known.
 const SETTINGS_WRITE: Checked = Checked {
     what: "settings write",
-    check_with: "`fringe device config`",
-    after: "the device logs each settings change as an event, which `fringe monitor` and `fringe pull` store",
+    then: "see its settings with `fringe device config`: if they are the new ones, the device's event log (stored by `fringe monitor` and `fringe pull`) holds the change without who and why, so note them in the shift log; if not, run the command again",
 };
 
 impl From<WriteFailed> for SettingsError {
     fn from(e: WriteFailed) -> Self {
         match e {
             WriteFailed::Link(e) => SettingsError::Link(e),
+            WriteFailed::NotTaken(n) => SettingsError::NotTaken(n),
             WriteFailed::Unconfirmed(u) => SettingsError::Unconfirmed(u),
         }
     }
@@ -284,7 +286,6 @@ pub fn write_modbus(
             what: "Modbus settings write",
             ..SETTINGS_WRITE
         },
-        |l| Ok(&l.modbus()? == new),
     )?;
     let back = link.modbus()?;
     if &back != new {

@@ -44,6 +44,15 @@ pub enum PgError {
         /// The installed amcheck version.
         version: String,
     },
+    /// This database's amcheck is older than the check needs (1.1,
+    /// PostgreSQL 11, for `bt_index_check` with its second argument).
+    #[error("the integrity check needs amcheck's {function} (amcheck 1.1, PostgreSQL 11 or later), which this database's amcheck {version} does not have: run `ALTER EXTENSION amcheck UPDATE` in this database as a superuser")]
+    OldAmcheck {
+        /// The installed amcheck version.
+        version: String,
+        /// The function missing.
+        function: String,
+    },
     /// The role may not call amcheck's functions (amcheck grants them to
     /// superusers only).
     #[error("the integrity check calls amcheck's functions, which PostgreSQL grants to superusers only, and role {role} may not call {missing}: as a superuser, in this database, run: {grants}")]

@@ -62,6 +62,9 @@
 //!    and `GRANT EXECUTE ON FUNCTION verify_heapam(regclass, boolean, boolean, text, bigint, bigint) TO fringe_line2;`
 //!    (PostgreSQL 14 or later; an older server has no `verify_heapam`, and
 //!    `fringe audit`, which runs the full check, refuses there, saying so).
+//!    Where amcheck lives in a schema of its own, prefix the functions with
+//!    it and grant `USAGE` on that schema too; the check's error gives the
+//!    statements in full for the database it runs on.
 //! 2. The first writer creates the tables (migration 1); later versions
 //!    migrate on connect.
 //! 3. Commands that read a store take the URL where they take a file:
@@ -1598,6 +1601,33 @@ impl Store {
                 "{schema}.verify_heapam(regclass, boolean, boolean, text, bigint, bigint)"
             ));
         }
+        let role: String = self
+            .rows("SELECT quote_ident(current_user)", &[])?
+            .first()
+            .map_or_else(|| "?".to_string(), |r| r.get(0));
+        // A schema the role may not use cannot even be searched for the
+        // functions (to_regprocedure fails): all three grants.
+        let usage: bool = self
+            .rows(
+                "SELECT has_schema_privilege(e.extnamespace, 'USAGE') \
+                 FROM pg_catalog.pg_extension e WHERE e.extname = 'amcheck'",
+                &[],
+            )?
+            .first()
+            .is_none_or(|r| r.get(0));
+        if !usage {
+            let mut grants = vec![format!("GRANT USAGE ON SCHEMA {schema} TO {role};")];
+            grants.extend(
+                calls
+                    .iter()
+                    .map(|f| format!("GRANT EXECUTE ON FUNCTION {f} TO {role};")),
+            );
+            return Err(backend(PgError::AmcheckNotGranted {
+                role,
+                missing: format!("schema {schema}, {}", calls.join(", ")),
+                grants: grants.join(" "),
+            }));
+        }
         let mut missing = Vec::new();
         for f in &calls {
             let row = self.rows(
@@ -1619,9 +1649,10 @@ impl Store {
                 return Err(backend(if f.contains("verify_heapam") {
                     PgError::NoHeapCheck { version }
                 } else {
-                    PgError::NoAmcheck(format!(
-                        "amcheck {version} has no {f} (amcheck 1.1, PostgreSQL 11 or later)"
-                    ))
+                    PgError::OldAmcheck {
+                        version,
+                        function: f.clone(),
+                    }
                 }));
             }
             if !allowed {
@@ -1631,10 +1662,6 @@ impl Store {
         if missing.is_empty() {
             return Ok(());
         }
-        let role: String = self
-            .rows("SELECT quote_ident(current_user)", &[])?
-            .first()
-            .map_or_else(|| "?".to_string(), |r| r.get(0));
         let grants = missing
             .iter()
             .map(|f| format!("GRANT EXECUTE ON FUNCTION {f} TO {role};"))

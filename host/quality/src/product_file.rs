@@ -593,7 +593,10 @@ impl ProductFile {
         let io = |e: std::io::Error| ProductFileError::Write {
             path: path.to_path_buf(),
             reason: e.to_string(),
-            full: e.kind() == std::io::ErrorKind::StorageFull,
+            full: matches!(
+                e.kind(),
+                std::io::ErrorKind::StorageFull | std::io::ErrorKind::QuotaExceeded
+            ),
         };
         let text = self.to_text().map_err(|e| ProductFileError::Io {
             path: path.to_path_buf(),

@@ -44,8 +44,13 @@ pub fn cal(a: &CalArgs, cfg: &LineConfig) -> anyhow::Result<()> {
                 yes: c.yes,
                 made_s: now_s(),
             };
-            fringe_device::cell::liquid(&opts.liquid)?;
-            fringe_device::cell::liquid(&opts.verify_liquid)?;
+            for (flag, name) in [
+                ("--liquid", &opts.liquid),
+                ("--verify-liquid", &opts.verify_liquid),
+            ] {
+                fringe_device::cell::liquid(name)
+                    .map_err(|e| anyhow::Error::new(e).context(format!("{flag} {name}")))?;
+            }
             let key = key(&c.key, cfg, "a cell calibration")?;
             let db = super::db_path(c.db.as_deref(), cfg)?;
             let mut link = super::connect(&c.port, cfg)?;

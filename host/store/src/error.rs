@@ -141,7 +141,8 @@ pub enum StoreError {
 /// lock wait timed out or the server broke a deadlock.
 fn locked_words(path: &std::path::Path) -> String {
     let shown = path.display();
-    if path.to_string_lossy().starts_with("postgres") {
+    let name = path.to_string_lossy();
+    if name.starts_with("postgres://") || name.starts_with("postgresql://") {
         format!("database {shown}: a lock wait timed out or the server broke a deadlock (another writer holds what this operation needs); nothing of this operation was stored: retry, and if it happens again look for a long-running transaction on the server (pg_stat_activity)")
     } else {
         format!("database {shown} is locked by another process (another `fringe monitor` or `fringe pull` on the same file?); stop it or use another --db")
@@ -201,5 +202,11 @@ mod tests {
             file.contains("fringe monitor") && file.contains("line2.db"),
             "{file}"
         );
+        // A file whose name starts with the word is a file.
+        let file = StoreError::Locked {
+            path: PathBuf::from("postgres-mirror.db"),
+        }
+        .to_string();
+        assert!(file.contains("fringe monitor"), "{file}");
     }
 }
