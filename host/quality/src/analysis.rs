@@ -928,7 +928,8 @@ fn for_each_reading_chunked(
 /// added since; its episodes are those of [`LineData::traces`] on the same
 /// store, with two exceptions: readings stored below the last one it read
 /// (`fringe pull` filling a gap from another process while it runs) are
-/// charted by a fresh read, not by it; and a reading it charted before its
+/// charted by a fresh read, not by it (nor matched to a grab sample that
+/// names one and was looked up before); and a reading it charted before its
 /// boot's clock was known keeps the device's own time, where a fresh read
 /// takes the wall-clock time the clock event gave later.
 #[derive(Debug, Clone)]
