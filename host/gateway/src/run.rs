@@ -476,8 +476,23 @@ impl Gateway {
         };
         let web = match site.web {
             Some(addr) => Some(
-                WebServer::start(addr, &site.name, Arc::clone(&table))
-                    .map_err(|source| GatewayError::Web { addr, source })?,
+                WebServer::start_with(
+                    addr,
+                    &site.name,
+                    Arc::clone(&table),
+                    Some({
+                        let tell = Arc::clone(&tell);
+                        Arc::new(move |text: String| {
+                            tell(Notice {
+                                unit: 0,
+                                serial: None,
+                                level: Level::Error,
+                                text,
+                            })
+                        })
+                    }),
+                )
+                .map_err(|source| GatewayError::Web { addr, source })?,
             ),
             None => None,
         };

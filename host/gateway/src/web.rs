@@ -3,11 +3,21 @@
 //! words, a trend of the last hours, its drift alarms with their advice and
 //! the calibration in force, updated every 2 s without a reload.
 //!
-//! Served by `tiny_http` from the binary itself (page, script and style are
-//! compiled in: a plant's control-room PC often has no internet), on the
-//! address of the site file's `[web] listen`. Only `GET` and `HEAD` are
-//! answered (405 otherwise); nothing on the page changes a device. The
-//! page asks for `/api/site` every 2 s.
+//! Served by `hyper` (HTTP/1.1) from the binary itself (page, script and
+//! style are compiled in: a plant's control-room PC often has no
+//! internet), on the address of the site file's `[web] listen`. Only `GET`
+//! and `HEAD` without a body are answered (405 or 413 otherwise); nothing
+//! on the page changes a device. The page asks for `/api/site` every 2 s.
+//!
+//! A client on the plant network cannot take the gateway down with it
+//! (found by review: the HTTP library before this one read a request body
+//! it was not asked to into one buffer of the size the client announced,
+//! so one request with a huge `Content-Length` aborted the whole gateway,
+//! Modbus and MQTT with it, and it had no time or size limit): a body is
+//! never read; headers must arrive within [`HEADER_TIMEOUT`] and fit
+//! [`MAX_HEADER_BYTES`]; at most [`MAX_CONNECTIONS`] connections are open
+//! at once (more are closed at once), each for at most
+//! [`CONNECTION_LIFETIME`]; a failed accept is said and listening goes on.
 //!
 //! ```text
 //! GET /            the page
@@ -18,7 +28,6 @@
 
 use std::io;
 use std::net::SocketAddr;
-use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
@@ -184,9 +193,8 @@ pub fn site_json(site: &str, table: &LiveTable, now: Instant) -> Value {
 /// The live page's server, on its own threads.
 pub struct WebServer {
     addr: SocketAddr,
-    server: Arc<tiny_http::Server>,
-    stop: Arc<AtomicBool>,
-    threads: Vec<std::thread::JoinHandle<()>>,
+    stop: Option<tokio::sync::oneshot::Sender<()>>,
+    thread: Option<std::thread::JoinHandle<()>>,
 }
 
 impl std::fmt::Debug for WebServer {
@@ -197,47 +205,53 @@ impl std::fmt::Debug for WebServer {
     }
 }
 
+/// Time a client has to send a request's headers.
+pub const HEADER_TIMEOUT: Duration = Duration::from_secs(10);
+/// Largest request head (line and headers) read, bytes.
+pub const MAX_HEADER_BYTES: usize = 16 * 1024;
+/// Connections served at once; more are closed as they come.
+pub const MAX_CONNECTIONS: usize = 64;
+/// Longest a connection is kept (a client that stops reading cannot hold
+/// one longer; a browser connects again).
+pub const CONNECTION_LIFETIME: Duration = Duration::from_secs(300);
+
 impl WebServer {
     /// Binds `addr` (port 0 picks a free one) and serves the page of site
     /// `site` from `table` until [`WebServer::stop`] or drop.
     ///
     /// # Errors
-    /// When the address cannot be bound.
+    /// When the address cannot be bound or the runtime cannot start.
     pub fn start(addr: SocketAddr, site: &str, table: Arc<LiveTable>) -> io::Result<Self> {
-        let server = tiny_http::Server::http(addr).map_err(|e| io::Error::other(e.to_string()))?;
-        let addr = server
-            .server_addr()
-            .to_ip()
-            .ok_or_else(|| io::Error::other("not an IP listener"))?;
-        let server = Arc::new(server);
-        let stop = Arc::new(AtomicBool::new(false));
-        let mut threads = Vec::new();
-        for i in 0..2 {
-            let (server, stop, table, site) = (
-                Arc::clone(&server),
-                Arc::clone(&stop),
-                Arc::clone(&table),
-                site.to_string(),
-            );
-            threads.push(std::thread::Builder::new().name(format!("web-{i}")).spawn(
-                move || {
-                    while !stop.load(Ordering::Relaxed) {
-                        match server.recv_timeout(Duration::from_millis(200)) {
-                            Ok(Some(req)) => {
-                                let _ = answer(req, &site, &table);
-                            }
-                            Ok(None) => {}
-                            Err(_) => break,
-                        }
-                    }
-                },
-            )?);
-        }
+        Self::start_with(addr, site, table, None)
+    }
+
+    /// As [`WebServer::start`]; `said` is told, in words, when accepting a
+    /// connection fails (listening goes on a second later).
+    ///
+    /// # Errors
+    /// As [`WebServer::start`].
+    pub fn start_with(
+        addr: SocketAddr,
+        site: &str,
+        table: Arc<LiveTable>,
+        said: Option<Arc<dyn Fn(String) + Send + Sync>>,
+    ) -> io::Result<Self> {
+        let rt = tokio::runtime::Builder::new_current_thread()
+            .enable_all()
+            .build()?;
+        let listener = rt.block_on(tokio::net::TcpListener::bind(addr))?;
+        let addr = listener.local_addr()?;
+        let (tx, rx) = tokio::sync::oneshot::channel::<()>();
+        let site: Arc<str> = Arc::from(site);
+        let thread = std::thread::Builder::new()
+            .name("web".into())
+            .spawn(move || {
+                rt.block_on(serve(listener, site, table, said, rx));
+            })?;
         Ok(Self {
             addr,
-            server,
-            stop,
-            threads,
+            stop: Some(tx),
+            thread: Some(thread),
         })
     }
 
@@ -246,15 +260,16 @@ impl WebServer {
         self.addr
     }
 
-    /// Stops serving and waits for its threads.
+    /// Stops serving and waits for its thread.
     pub fn stop(mut self) {
         self.shutdown();
     }
 
     fn shutdown(&mut self) {
-        self.stop.store(true, Ordering::Relaxed);
-        self.server.unblock();
-        for t in self.threads.drain(..) {
+        if let Some(tx) = self.stop.take() {
+            let _ = tx.send(());
+        }
+        if let Some(t) = self.thread.take() {
             let _ = t.join();
         }
     }
@@ -266,21 +281,93 @@ impl Drop for WebServer {
     }
 }
 
-fn header(name: &str, value: &str) -> tiny_http::Header {
-    tiny_http::Header::from_bytes(name.as_bytes(), value.as_bytes()).expect("static header")
+/// The accept loop: each connection on a task of its own, within the
+/// limits of the module doc, until `stop`.
+async fn serve(
+    listener: tokio::net::TcpListener,
+    site: Arc<str>,
+    table: Arc<LiveTable>,
+    said: Option<Arc<dyn Fn(String) + Send + Sync>>,
+    stop: tokio::sync::oneshot::Receiver<()>,
+) {
+    let slots = Arc::new(tokio::sync::Semaphore::new(MAX_CONNECTIONS));
+    let mut stop = std::pin::pin!(stop);
+    let addr = listener.local_addr().ok();
+    loop {
+        let accepted = tokio::select! {
+            a = listener.accept() => a,
+            _ = &mut stop => return,
+        };
+        let stream = match accepted {
+            Ok((stream, _)) => stream,
+            Err(e) => {
+                if let Some(said) = &said {
+                    said(format!(
+                        "live page on {}: accepting a connection failed ({e}); listening again in 1 s",
+                        addr.map_or("?".into(), |a| a.to_string())
+                    ));
+                }
+                tokio::select! {
+                    () = tokio::time::sleep(Duration::from_secs(1)) => continue,
+                    _ = &mut stop => return,
+                }
+            }
+        };
+        // Over the limit: closed at once (dropped).
+        let Ok(slot) = Arc::clone(&slots).try_acquire_owned() else {
+            continue;
+        };
+        let (site, table) = (Arc::clone(&site), Arc::clone(&table));
+        tokio::spawn(async move {
+            let _slot = slot;
+            let service = hyper::service::service_fn(move |req| {
+                let res = answer(&req, &site, &table);
+                async move { Ok::<_, std::convert::Infallible>(res) }
+            });
+            let conn = hyper::server::conn::http1::Builder::new()
+                .timer(hyper_util::rt::TokioTimer::new())
+                .header_read_timeout(HEADER_TIMEOUT)
+                .max_buf_size(MAX_HEADER_BYTES)
+                .serve_connection(hyper_util::rt::TokioIo::new(stream), service);
+            let _ = tokio::time::timeout(CONNECTION_LIFETIME, conn).await;
+        });
+    }
 }
 
-fn answer(req: tiny_http::Request, site: &str, table: &LiveTable) -> io::Result<()> {
-    use tiny_http::{Method, Response};
-    if !matches!(req.method(), Method::Get | Method::Head) {
-        return req.respond(
-            Response::from_string("read-only: only GET\n")
-                .with_status_code(405)
-                .with_header(header("Allow", "GET, HEAD")),
-        );
+type Body = http_body_util::Full<hyper::body::Bytes>;
+
+fn plain(status: u16, text: &'static str) -> hyper::Response<Body> {
+    let mut r = hyper::Response::new(Body::from(text));
+    *r.status_mut() = hyper::StatusCode::from_u16(status).unwrap_or_default();
+    r.headers_mut().insert(
+        hyper::header::CONTENT_TYPE,
+        hyper::header::HeaderValue::from_static("text/plain; charset=utf-8"),
+    );
+    r
+}
+
+/// The answer to one request (its body, if any, is never read).
+fn answer<B>(req: &hyper::Request<B>, site: &str, table: &LiveTable) -> hyper::Response<Body> {
+    use hyper::header::{self, HeaderValue};
+    use hyper::Method;
+    let headers = req.headers();
+    let has_body = headers.contains_key(header::TRANSFER_ENCODING)
+        || headers
+            .get(header::CONTENT_LENGTH)
+            .is_some_and(|v| v.to_str().ok().and_then(|s| s.trim().parse::<u64>().ok()) != Some(0));
+    if has_body {
+        let mut r = plain(413, "read-only: no request body is taken\n");
+        r.headers_mut()
+            .insert(header::CONNECTION, HeaderValue::from_static("close"));
+        return r;
     }
-    let path = req.url().split('?').next().unwrap_or("/").to_string();
-    let (body, kind) = match path.as_str() {
+    if !matches!(*req.method(), Method::GET | Method::HEAD) {
+        let mut r = plain(405, "read-only: only GET\n");
+        r.headers_mut()
+            .insert(header::ALLOW, HeaderValue::from_static("GET, HEAD"));
+        return r;
+    }
+    let (body, kind) = match req.uri().path() {
         "/" | "/index.html" => (PAGE.to_string(), "text/html; charset=utf-8"),
         "/app.js" => (SCRIPT.to_string(), "text/javascript; charset=utf-8"),
         "/style.css" => (STYLE.to_string(), "text/css; charset=utf-8"),
@@ -288,20 +375,21 @@ fn answer(req: tiny_http::Request, site: &str, table: &LiveTable) -> io::Result<
             site_json(site, table, Instant::now()).to_string(),
             "application/json",
         ),
-        _ => {
-            return req.respond(Response::from_string("not found\n").with_status_code(404));
-        }
+        _ => return plain(404, "not found\n"),
     };
-    req.respond(
-        Response::from_string(body)
-            .with_header(header("Content-Type", kind))
-            .with_header(header("Cache-Control", "no-store"))
-            .with_header(header("X-Content-Type-Options", "nosniff"))
-            .with_header(header(
-                "Content-Security-Policy",
-                "default-src 'self'; style-src 'self'; img-src 'self' data:",
-            )),
-    )
+    let mut r = hyper::Response::new(Body::from(body));
+    let h = r.headers_mut();
+    h.insert(header::CONTENT_TYPE, HeaderValue::from_static(kind));
+    h.insert(header::CACHE_CONTROL, HeaderValue::from_static("no-store"));
+    h.insert(
+        header::X_CONTENT_TYPE_OPTIONS,
+        HeaderValue::from_static("nosniff"),
+    );
+    h.insert(
+        header::CONTENT_SECURITY_POLICY,
+        HeaderValue::from_static("default-src 'self'; style-src 'self'; img-src 'self' data:"),
+    );
+    r
 }
 
 #[cfg(test)]
@@ -345,5 +433,90 @@ mod tests {
             "{words}"
         );
         assert_eq!(u["history"].as_array().unwrap().len(), 1);
+    }
+
+    /// One request and its answer on a fresh connection, as text (the
+    /// answer read until the server closes or 3 s pass).
+    fn exchange(addr: SocketAddr, request: &[u8]) -> String {
+        use std::io::{Read, Write};
+        let mut c = std::net::TcpStream::connect(addr).unwrap();
+        c.set_read_timeout(Some(Duration::from_secs(3))).unwrap();
+        c.write_all(request).unwrap();
+        let mut out = Vec::new();
+        let mut buf = [0u8; 4096];
+        while let Ok(n) = c.read(&mut buf) {
+            if n == 0 {
+                break;
+            }
+            out.extend_from_slice(&buf[..n]);
+            if out.windows(4).any(|w| w == b"\r\n\r\n") && !out.starts_with(b"HTTP/1.1 200") {
+                break;
+            }
+        }
+        String::from_utf8_lossy(&out).into_owned()
+    }
+
+    /// A client on the plant network cannot take the gateway down: a
+    /// request announcing a 100 GB body is refused without reading it
+    /// (the HTTP library before this one allocated a buffer of that size
+    /// when the request was dropped, which aborts the process); a head that
+    /// never ends is cut off at its size limit; connections over the limit
+    /// are closed at once; and the page is served all the while.
+    #[test]
+    fn hostile_clients_are_refused_and_the_page_stays_up() {
+        use std::io::{Read, Write};
+        let t = Arc::new(LiveTable::new(Duration::from_secs(30)));
+        t.register(1, "PLT-A-0001");
+        let web = WebServer::start("127.0.0.1:0".parse().unwrap(), "Plant A", t).unwrap();
+        let addr = web.local_addr();
+        let get = b"GET /api/site HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n";
+        let huge = exchange(
+            addr,
+            b"GET / HTTP/1.1\r\nHost: x\r\nContent-Length: 100000000000\r\n\r\n",
+        );
+        assert!(huge.starts_with("HTTP/1.1 413"), "{huge}");
+        let post = exchange(addr, b"POST /api/site HTTP/1.1\r\nHost: x\r\n\r\n");
+        assert!(
+            post.starts_with("HTTP/1.1 405") && post.contains("allow: GET, HEAD"),
+            "{post}"
+        );
+        // A head that never ends: cut off, not read on into memory.
+        let mut c = std::net::TcpStream::connect(addr).unwrap();
+        c.set_write_timeout(Some(Duration::from_secs(3))).unwrap();
+        c.set_read_timeout(Some(Duration::from_secs(5))).unwrap();
+        let chunk = [b'a'; 1024];
+        let mut sent = 0usize;
+        // (A write fails once the server has closed: enough is sent.)
+        while sent < 64 * 1024 && c.write_all(&chunk).is_ok() {
+            sent += chunk.len();
+        }
+        let mut buf = [0u8; 256];
+        let answer = c.read(&mut buf);
+        assert!(
+            !matches!(answer, Err(ref e) if e.kind() == std::io::ErrorKind::WouldBlock || e.kind() == std::io::ErrorKind::TimedOut),
+            "the connection of an endless head stayed open: {answer:?} after {sent} bytes"
+        );
+        // Connections over the limit are closed at once.
+        let idle: Vec<_> = (0..MAX_CONNECTIONS)
+            .map(|_| std::net::TcpStream::connect(addr).unwrap())
+            .collect();
+        std::thread::sleep(Duration::from_millis(200));
+        let mut over = std::net::TcpStream::connect(addr).unwrap();
+        over.set_read_timeout(Some(Duration::from_secs(3))).unwrap();
+        let closed = over.read(&mut buf);
+        assert!(
+            matches!(closed, Ok(0))
+                || matches!(&closed, Err(e) if e.kind() != std::io::ErrorKind::WouldBlock
+                    && e.kind() != std::io::ErrorKind::TimedOut),
+            "a connection over the limit was kept: {closed:?}"
+        );
+        drop(idle);
+        std::thread::sleep(Duration::from_millis(200));
+        let ok = exchange(addr, get);
+        assert!(
+            ok.starts_with("HTTP/1.1 200") && ok.contains("PLT-A-0001"),
+            "{ok}"
+        );
+        web.stop();
     }
 }
