@@ -429,6 +429,89 @@ fn a_broker_lost_mid_stream_loses_nothing_and_repeats_only_what_was_in_flight() 
     publisher.stop();
 }
 
+/// A TCP relay to `to` that holds back everything the server sends for
+/// `delay` at the start of each connection: a broker slow to accept (TLS
+/// across a wide area network, an authentication plugin). Its port.
+fn slow_relay(to: u16, delay: Duration) -> u16 {
+    use std::io::{Read, Write};
+    let listener = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
+    let port = listener.local_addr().unwrap().port();
+    std::thread::spawn(move || {
+        for client in listener.incoming().flatten() {
+            let Ok(server) = std::net::TcpStream::connect(("127.0.0.1", to)) else {
+                continue;
+            };
+            let pump =
+                |mut from: std::net::TcpStream, mut to: std::net::TcpStream, wait: Duration| {
+                    std::thread::spawn(move || {
+                        std::thread::sleep(wait);
+                        let mut buf = [0u8; 4096];
+                        while let Ok(n) = from.read(&mut buf) {
+                            if n == 0 || to.write_all(&buf[..n]).is_err() {
+                                break;
+                            }
+                        }
+                        let _ = to.shutdown(std::net::Shutdown::Both);
+                    });
+                };
+            pump(
+                client.try_clone().unwrap(),
+                server.try_clone().unwrap(),
+                Duration::ZERO,
+            );
+            pump(server, client, delay);
+        }
+    });
+    port
+}
+
+/// A broker that takes 400 ms to answer the connection is reached, and
+/// every reading delivered (the client's event loop was polled 100 ms at a
+/// time, which dropped the connection being made each time: no CONNACK
+/// ever, found by review).
+#[test]
+#[ignore = "needs mosquitto (Debian package): `cargo xtask test` runs it"]
+fn a_broker_slow_to_accept_is_reached() {
+    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_tests::servers::Mosquitto;
+
+    let broker = Mosquitto::start();
+    let collector = Collector::start(broker.port, "spBv1.0/#");
+    let relay = slow_relay(broker.port, Duration::from_millis(400));
+    let dir = tempfile::tempdir().unwrap();
+    let device = "PLT-A-0004";
+    let publisher = Publisher::start(
+        MqttConfig {
+            host: "127.0.0.1".into(),
+            port: relay,
+            client_id: "fringe-gw-slow".into(),
+            credentials: None,
+            tls_ca_pem: None,
+            format: Format::Sparkplug {
+                group: "plant-a".into(),
+                edge_node: "gw-1".into(),
+            },
+            density: None,
+            keep_alive: Duration::from_secs(5),
+        },
+        &dir.path().join("outbox.db"),
+        vec![device.to_string()],
+    )
+    .expect("publisher");
+    for n in 1..=20u32 {
+        publisher
+            .reading(device, &reading(1, n, Some(12.0), Flags::empty()), None)
+            .unwrap();
+    }
+    collector.wait("all 20 readings through the slow broker", |m| {
+        let mut c = ddata_counters(m, device);
+        c.sort_unstable();
+        c.dedup();
+        c.len() >= 20
+    });
+    publisher.stop();
+}
+
 /// The throwaway PostgreSQL of the tests starts, takes a connection and
 /// stops (the harness the store tests build on).
 #[test]

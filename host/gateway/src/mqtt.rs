@@ -26,7 +26,9 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use fringe_protocol::Reading;
-use rumqttc::{Client, Event, Incoming, LastWill, MqttOptions, Outgoing, QoS, RecvTimeoutError};
+use std::sync::mpsc::RecvTimeoutError;
+
+use rumqttc::{Client, Event, Incoming, LastWill, MqttOptions, Outgoing, QoS};
 
 use crate::density::{self, DensityInbox};
 use crate::outbox::{Item, Outbox, OutboxError, Row};
@@ -333,7 +335,8 @@ impl Worker {
         // once. With room for the window alone, a site of 63 devices locked
         // up at its first reconnect (found by review).
         let births = self.devices.len().max(usize::from(u8::MAX)) * 2;
-        let (client, mut conn) = Client::new(self.options(bd_seq), 2 * WINDOW + births + 8);
+        let (client, conn) = Client::new(self.options(bd_seq), 2 * WINDOW + births + 8);
+        let conn = Events::start(conn);
         // Wait for the broker's CONNACK.
         let deadline = Instant::now() + Duration::from_secs(10);
         loop {
@@ -389,7 +392,7 @@ impl Worker {
         }
         loop {
             if self.stop.load(Ordering::Relaxed) {
-                self.goodbye(&mut s, &mut conn, bd_seq);
+                self.goodbye(&mut s, &conn, bd_seq);
                 return End::Stopped;
             }
             if s.in_flight.len() + s.awaiting_pkid.len() < WINDOW {
@@ -642,7 +645,7 @@ impl Worker {
     }
 
     /// A clean stop: NDEATH (Sparkplug), then DISCONNECT, waiting briefly.
-    fn goodbye(&mut self, s: &mut Session, conn: &mut rumqttc::Connection, bd_seq: u64) {
+    fn goodbye(&mut self, s: &mut Session, conn: &Events, bd_seq: u64) {
         if let Format::Sparkplug { group, edge_node } = &self.config.format {
             let p = sparkplug::node_death(bd_seq, now_ms());
             let _ = s.publish(
@@ -680,6 +683,43 @@ impl Worker {
                 _ => {}
             }
         }
+    }
+}
+
+/// The client's event loop on a thread of its own, its events through a
+/// channel the session waits on with a timeout. (The client's own
+/// `recv_timeout` drops the event loop's future when the time is up, and
+/// with it a connection half made (DNS, TCP, TLS, CONNECT and CONNACK all
+/// happen within one poll) or a packet half written to a full socket: a
+/// broker that took over 100 ms to accept, over TLS across a plant's wide
+/// area network or behind a slow authentication, was never reached; found
+/// by review.) The thread ends with the connection's first error, or when
+/// the session lets go of the events and the client.
+struct Events {
+    rx: std::sync::mpsc::Receiver<Result<Event, rumqttc::ConnectionError>>,
+}
+
+impl Events {
+    fn start(mut conn: rumqttc::Connection) -> Self {
+        let (tx, rx) = std::sync::mpsc::sync_channel(1024);
+        let _ = std::thread::Builder::new()
+            .name("mqtt-events".into())
+            .spawn(move || {
+                while let Ok(event) = conn.recv() {
+                    let end = event.is_err();
+                    if tx.send(event).is_err() || end {
+                        break;
+                    }
+                }
+            });
+        Self { rx }
+    }
+
+    fn recv_timeout(
+        &self,
+        timeout: Duration,
+    ) -> Result<Result<Event, rumqttc::ConnectionError>, RecvTimeoutError> {
+        self.rx.recv_timeout(timeout)
     }
 }
 
