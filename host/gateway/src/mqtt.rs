@@ -701,7 +701,10 @@ struct Events {
 
 impl Events {
     fn start(mut conn: rumqttc::Connection) -> Self {
-        let (tx, rx) = std::sync::mpsc::sync_channel(1024);
+        // Unbounded: a full channel would stop the event loop while the
+        // session waits for room in the client's queue, which only the
+        // event loop makes (a burst of Rebirths locked both up).
+        let (tx, rx) = std::sync::mpsc::channel();
         let _ = std::thread::Builder::new()
             .name("mqtt-events".into())
             .spawn(move || {
