@@ -118,6 +118,11 @@ pub const MIN_PERIOD_MS: u32 = 100;
 pub const LONGEST_READING_MS: u64 = 2000;
 /// How often a current the loop did not take is written again, ms.
 pub const OUTPUT_RETRY_MS: u64 = 1000;
+/// Least time between two events of the same fault (10 min): a fault that
+/// comes and goes more often is logged once per this time, its flag on
+/// every reading it marks. At one event per 10 min per fault the event
+/// ring's pages are erased a few times a day at most.
+pub const FAULT_EVENT_HOLDOFF_MS: u64 = 600_000;
 /// Longest `StartStream` period accepted, ms (one day).
 pub const MAX_PERIOD_MS: u32 = 86_400_000;
 /// Earliest clock accepted by `SetClock` (2000-01-01), Unix ms.
@@ -373,6 +378,9 @@ pub struct Device<F: Frontend, S: NorFlash, O: crate::hal::CurrentOutput> {
     in_job: Pending,
     last_flags: Flags,
     saturated_run: u8,
+    /// When each fault (electrode, temperature sensor, saturation) was
+    /// last logged as an event ([`FAULT_EVENT_HOLDOFF_MS`]).
+    fault_logged_ms: [Option<u64>; 3],
     decoder: FrameDecoder<HostFrame>,
     txbuf: [u8; MAX_FRAME_LEN],
     reboot: bool,
@@ -608,6 +616,7 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
             in_job: Pending::default(),
             last_flags: Flags::NOT_CALIBRATED,
             saturated_run: 0,
+            fault_logged_ms: [None; 3],
             decoder: FrameDecoder::new(),
             txbuf: [0; MAX_FRAME_LEN],
             reboot: false,
@@ -1671,33 +1680,24 @@ impl<F: Frontend, S: NorFlash, O: CurrentOutput> Device<F, S, O> {
         } else {
             self.saturated_run = 0;
         }
-        if electrode {
-            self.event(
-                now_ms,
-                EventKind::Fault {
-                    code: FaultCode::Electrode,
-                },
-                tx,
-            );
+        let faults = [
+            (electrode, FaultCode::Electrode),
+            (temp, FaultCode::TemperatureSensor),
+            (self.saturated_run == 3, FaultCode::Saturation),
+        ];
+        let mut logged = self.fault_logged_ms;
+        for ((now, code), last) in faults.into_iter().zip(logged.iter_mut()) {
+            // A fault that comes and goes is logged once per hold-off: the
+            // readings carry its flag each time, and an event on every
+            // edge of a flag flapping at one reading a second wore the
+            // event ring's two pages out within weeks (found by review).
+            let due = last.is_none_or(|t| now_ms.saturating_sub(t) >= FAULT_EVENT_HOLDOFF_MS);
+            if now && due {
+                *last = Some(now_ms);
+                self.event(now_ms, EventKind::Fault { code }, tx);
+            }
         }
-        if temp {
-            self.event(
-                now_ms,
-                EventKind::Fault {
-                    code: FaultCode::TemperatureSensor,
-                },
-                tx,
-            );
-        }
-        if self.saturated_run == 3 {
-            self.event(
-                now_ms,
-                EventKind::Fault {
-                    code: FaultCode::Saturation,
-                },
-                tx,
-            );
-        }
+        self.fault_logged_ms = logged;
     }
 
     /// Drives the current for `moisture_pct` (the failure level for none).

@@ -249,6 +249,49 @@ fn empty_line_and_electrode_faults_are_flagged() {
     );
 }
 
+/// A fault that comes and goes at every reading is logged as an event once
+/// per hold-off (10 min), not at every edge; its readings carry the flag
+/// each time. (An event on every edge wore the event ring's pages out in
+/// weeks; found by review.)
+#[test]
+fn a_flapping_fault_is_logged_once_per_hold_off() {
+    let mut b = Bench::new(5, Scenario::default());
+    let open = Scenario {
+        electrodes: fringe_firmware::sim::Electrodes::Open,
+        ..Scenario::default()
+    };
+    let fine = Scenario::default();
+    let electrode_events = |b: &mut Bench| {
+        b.events()
+            .iter()
+            .filter(|e| {
+                e.kind
+                    == EventKind::Fault {
+                        code: FaultCode::Electrode,
+                    }
+            })
+            .count()
+    };
+    let mut flagged = 0;
+    for _ in 0..20 {
+        b.dev.frontend_mut().set_scenario(open);
+        flagged += usize::from(b.measure().flags.contains(Flags::ELECTRODE_FAULT));
+        b.dev.frontend_mut().set_scenario(fine);
+        b.measure();
+        b.tick(1000);
+    }
+    assert_eq!(
+        flagged, 20,
+        "every reading of the open electrodes is flagged"
+    );
+    assert_eq!(electrode_events(&mut b), 1);
+    // After the hold-off, the next one is logged again.
+    b.tick(fringe_firmware::device::FAULT_EVENT_HOLDOFF_MS);
+    b.dev.frontend_mut().set_scenario(open);
+    b.measure();
+    assert_eq!(electrode_events(&mut b), 2);
+}
+
 /// The flash writes and erases one request costs.
 fn flash_ops(b: &mut Bench, req: Request) -> (u32, u32, Response) {
     let (w0, e0) = b.dev.flash_mut().op_counts();
