@@ -66,6 +66,9 @@ pub mod key {
     pub const SETTINGS: u8 = 7;
     /// Modbus RTU settings (protocol 1.2).
     pub const MODBUS: u8 = 8;
+    /// The first event number of the latest boot (stored at each boot): an
+    /// event ring erased as damaged numbers on past it.
+    pub const EVENT_FLOOR: u8 = 9;
     /// First product slot.
     pub const PRODUCT_BASE: u8 = 16;
 }
@@ -189,6 +192,10 @@ pub struct MountReport {
     /// it held are lost with the rest (the device then moves them on past
     /// any value they can have had: `device::REPAIR_COUNTER_JUMP`).
     pub settings_lost: bool,
+    /// The region erased was the event ring: its numbers are lost with it
+    /// (the device numbers on past any it can have used:
+    /// `device::repair_counter` above the latest boot's first number).
+    pub events_lost: bool,
 }
 
 /// Bookkeeping of a ring, rebuilt at mount by one scan.
@@ -274,6 +281,7 @@ impl<S: NorFlash> Storage<S> {
             Err(StorageError::Corrupted) => {
                 s.erase(s.layout.events.clone())?;
                 report.repaired = true;
+                report.events_lost = true;
             }
             Err(e) => return Err(e),
         }

@@ -232,9 +232,21 @@ impl Bench {
 /// damage sequential-storage reports as corrupted and cannot repair, so the
 /// next boot erases the map.
 pub fn damaged_settings_map(b: Bench) -> Flash {
-    use embedded_storage::nor_flash::NorFlash;
     let mut b = b;
     let map = b.dev.storage_mut().layout().map.clone();
+    damaged_region(b, map)
+}
+
+/// The device's flash with every page of its event ring marked closed
+/// (as [`damaged_settings_map`]): the next boot erases the ring.
+pub fn damaged_event_ring(b: Bench) -> Flash {
+    let mut b = b;
+    let events = b.dev.storage_mut().layout().events.clone();
+    damaged_region(b, events)
+}
+
+fn damaged_region(b: Bench, map: std::ops::Range<u32>) -> Flash {
+    use embedded_storage::nor_flash::NorFlash;
     let (_, mut flash, _) = b.dev.into_parts();
     let (page, word) = (Flash::ERASE_SIZE as u32, Flash::WRITE_SIZE);
     for p in (map.start..map.end).step_by(page as usize) {
