@@ -34,6 +34,7 @@ def decode(topic, data):
             "value": value,
             "datatype": m.datatype,
             "historical": m.is_historical,
+            "timestamp": m.timestamp if m.HasField("timestamp") else None,
         }
     return {"seq": p.seq if p.HasField("seq") else None, "metrics": metrics}
 

@@ -1508,6 +1508,33 @@ fn a_site_of_300_devices_is_born_at_each_session() {
             None,
         )
         .unwrap();
+    // A reading taken before its device's clock was set (time since boot)
+    // is dated when the gateway buffered it, not in 1970.
+    let since_boot = Reading {
+        time_ms: 7_000,
+        ..reading(2, 1, Some(12.8), Flags::CLOCK_UNSET)
+    };
+    let sent_ms = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .as_millis() as u64;
+    publisher.reading("PLT-B-0004", &since_boot, None).unwrap();
+    collector.wait("the reading of an unset clock", |m| {
+        m.iter()
+            .any(|m| m["topic"] == "spBv1.0/plant-b/DDATA/gw-300/PLT-B-0004")
+    });
+    let unset = collector
+        .messages()
+        .into_iter()
+        .find(|m| m["topic"] == "spBv1.0/plant-b/DDATA/gw-300/PLT-B-0004")
+        .unwrap();
+    let stamp = unset["metrics"]["moisture_pct"]["timestamp"]
+        .as_u64()
+        .expect("a timestamp");
+    assert!(
+        stamp + 1_000 >= sent_ms && stamp < sent_ms + 60_000,
+        "dated {stamp}, sent at {sent_ms}: {unset}"
+    );
     collector.wait("a reading after the Rebirths", |m| {
         m.iter().any(|m| {
             m["topic"] == "spBv1.0/plant-b/DDATA/gw-300/PLT-B-0002"

@@ -2,7 +2,7 @@
 
 use std::collections::{BTreeMap, VecDeque};
 use std::sync::RwLock;
-use std::time::{Duration, Instant};
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use fringe_protocol::{Basis, Reading};
 use fringe_registers::Snapshot;
@@ -194,6 +194,17 @@ impl LiveTable {
         time_ms: u64,
         calibration: Option<(Option<String>, Option<Basis>)>,
     ) {
+        // A reading taken before its device's clock was set carries its
+        // time since boot: the trend takes the time it was received (it was
+        // drawn in 1970, and after the device's next boot its trend stopped
+        // until the time since boot passed the old one; found by review).
+        let time_ms = if time_ms < fringe_store::record::SINCE_BOOT_BELOW_MS {
+            SystemTime::now()
+                .duration_since(UNIX_EPOCH)
+                .map_or(0, |d| d.as_millis() as u64)
+        } else {
+            time_ms
+        };
         let mut units = self.units.write().unwrap_or_else(|e| e.into_inner());
         if let Some(e) = units.get_mut(&unit) {
             if e.reading.as_ref().is_none_or(|(r, _)| r.seq <= reading.seq) {

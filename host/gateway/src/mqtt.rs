@@ -611,7 +611,16 @@ impl Worker {
                         Ok((r, basis, from_log)) => sparkplug::device_data(
                             &r,
                             basis.as_deref(),
-                            r.time_ms,
+                            // A reading taken before its device's clock was
+                            // set carries its time since boot: its metrics
+                            // take the time it was buffered (they were
+                            // dated 1970; found by review); `device_time`
+                            // keeps the device's own.
+                            if r.time_ms < fringe_store::record::SINCE_BOOT_BELOW_MS {
+                                row.queued_ms
+                            } else {
+                                r.time_ms
+                            },
                             historical || from_log,
                             seq,
                             now_ms(),

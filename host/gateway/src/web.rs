@@ -435,6 +435,34 @@ mod tests {
         assert_eq!(u["history"].as_array().unwrap().len(), 1);
     }
 
+    /// A reading taken before its device's clock was set (its time since
+    /// boot) is drawn at the time it was received, not in 1970, and the
+    /// device's next boot (its time since boot from 0 again) does not stop
+    /// the trend.
+    #[test]
+    fn a_reading_of_an_unset_clock_is_drawn_when_it_came() {
+        let t = LiveTable::new(Duration::from_secs(30));
+        t.register(1, "PLT-A-0002");
+        let now_ms = SystemTime::now()
+            .duration_since(UNIX_EPOCH)
+            .unwrap()
+            .as_millis() as u64;
+        let at = |boot: u32, counter: u32, time_ms: u64| Reading {
+            seq: Seq { boot, counter },
+            time_ms,
+            moisture_pct: Some(11.0),
+            flags: Flags::CLOCK_UNSET,
+            ..Reading::default()
+        };
+        t.update(1, &at(1, 1, 5_000), Instant::now());
+        t.update(1, &at(2, 1, 4_000), Instant::now());
+        let j = site_json("Plant A", &t, Instant::now());
+        let h = j["units"][0]["history"].as_array().unwrap().clone();
+        let first = h[0][0].as_u64().unwrap();
+        assert!(first >= now_ms && first < now_ms + 60_000, "{h:?}");
+        assert!(!h.is_empty());
+    }
+
     /// One request and its answer on a fresh connection, as text (the
     /// answer read until the server closes or 3 s pass).
     fn exchange(addr: SocketAddr, request: &[u8]) -> String {
