@@ -1535,6 +1535,30 @@ fn a_site_of_300_devices_is_born_at_each_session() {
         stamp + 1_000 >= sent_ms && stamp < sent_ms + 60_000,
         "dated {stamp}, sent at {sent_ms}: {unset}"
     );
+    // One of the same boot read back from the log, taken 4 s earlier by
+    // its time since boot, is dated 4 s before it (not when it was read
+    // back).
+    let earlier = Reading {
+        time_ms: 3_000,
+        ..reading(2, 0, Some(12.9), Flags::CLOCK_UNSET)
+    };
+    publisher
+        .logged_reading("PLT-B-0004", &earlier, None)
+        .unwrap();
+    let logged_stamp = |m: &[Value]| {
+        m.iter()
+            .filter(|m| m["topic"] == "spBv1.0/plant-b/DDATA/gw-300/PLT-B-0004")
+            .find(|m| m["metrics"]["moisture_pct"]["historical"] == true)
+            .and_then(|m| m["metrics"]["moisture_pct"]["timestamp"].as_u64())
+    };
+    collector.wait("the logged reading of an unset clock", |m| {
+        logged_stamp(m).is_some()
+    });
+    assert_eq!(
+        logged_stamp(&collector.messages()),
+        Some(stamp - 4_000),
+        "dated from its boot's origin"
+    );
     collector.wait("a reading after the Rebirths", |m| {
         m.iter().any(|m| {
             m["topic"] == "spBv1.0/plant-b/DDATA/gw-300/PLT-B-0002"

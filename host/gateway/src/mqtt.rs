@@ -132,6 +132,7 @@ impl Publisher {
                     outbox: worker_box,
                     devices: devices.into_iter().collect(),
                     lost: BTreeSet::new(),
+                    boot_origins: HashMap::new(),
                     stop: s,
                     stats: st,
                 }
@@ -259,6 +260,11 @@ struct Worker {
     /// Devices whose link was lost (a DeviceLost row) and no reading has
     /// come from since: not born again at a new session or a Rebirth.
     lost: BTreeSet<String>,
+    /// Per device and boot whose clock was unset: the wall-clock time of
+    /// its time since boot 0, from a reading streamed as it was taken (its
+    /// buffering time less its time since boot), for the readings of that
+    /// boot read back from the log.
+    boot_origins: HashMap<(String, u32), u64>,
     stop: Arc<AtomicBool>,
     stats: Arc<Mutex<MqttStats>>,
 }
@@ -551,6 +557,29 @@ impl Worker {
         Ok(())
     }
 
+    /// The time of a reading's metrics. A reading taken before its device's
+    /// clock was set carries its time since boot (its metrics were dated
+    /// 1970; found by review): streamed as it was taken, it is dated when it
+    /// was buffered, and that gives its boot's origin; read back from the
+    /// log, it is dated from that origin where one is known (the time of a
+    /// catch-up would place a whole backlog at one instant), else it keeps
+    /// the device's own. `device_time` keeps the device's own throughout.
+    fn metric_time(&mut self, device: &str, r: &Reading, queued_ms: u64, from_log: bool) -> u64 {
+        if r.time_ms >= fringe_store::record::SINCE_BOOT_BELOW_MS {
+            return r.time_ms;
+        }
+        let key = (device.to_string(), r.seq.boot);
+        if from_log {
+            return self
+                .boot_origins
+                .get(&key)
+                .map_or(r.time_ms, |o| o.saturating_add(r.time_ms));
+        }
+        self.boot_origins
+            .insert(key, queued_ms.saturating_sub(r.time_ms));
+        queued_ms
+    }
+
     fn send_row(&mut self, s: &mut Session, row: &Row) -> Result<(), String> {
         s.last_sent = row.id;
         let historical = row.queued_ms < s.started_ms;
@@ -611,16 +640,7 @@ impl Worker {
                         Ok((r, basis, from_log)) => sparkplug::device_data(
                             &r,
                             basis.as_deref(),
-                            // A reading taken before its device's clock was
-                            // set carries its time since boot: its metrics
-                            // take the time it was buffered (they were
-                            // dated 1970; found by review); `device_time`
-                            // keeps the device's own.
-                            if r.time_ms < fringe_store::record::SINCE_BOOT_BELOW_MS {
-                                row.queued_ms
-                            } else {
-                                r.time_ms
-                            },
+                            self.metric_time(&device, &r, row.queued_ms, from_log),
                             historical || from_log,
                             seq,
                             now_ms(),
@@ -702,8 +722,10 @@ impl Worker {
 /// happen within one poll) or a packet half written to a full socket: a
 /// broker that took over 100 ms to accept, over TLS across a plant's wide
 /// area network or behind a slow authentication, was never reached; found
-/// by review.) The thread ends with the connection's first error, or when
-/// the session lets go of the events and the client.
+/// by review.) The thread ends with the connection's first error, or at
+/// the first event after the session has let go of the events (a
+/// keep-alive ping at the latest: the event loop keeps a sender of its
+/// own, so dropping the client does not end it).
 struct Events {
     rx: std::sync::mpsc::Receiver<Result<Event, rumqttc::ConnectionError>>,
 }
