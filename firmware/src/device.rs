@@ -1925,17 +1925,21 @@ impl Stored {
         // Boot events, numbered on from the log; their time is 0 (ms since
         // this boot: the host has not set the clock yet).
         let mut next_event = storage.last_event().map_or(0, |n| n.wrapping_add(1));
-        // An event ring erased as damaged (or found empty on a device whose
-        // map says it has logged events) numbers on past any number it can
-        // have held: the latest boot's first number moved on as the write
-        // counter is after a repair. Numbering from 0 again, the host,
-        // which asks for the events after the last it holds, would not see
-        // the repair's own event, and numbers would collide in its store
-        // (found by review).
-        let floor = storage.get::<u32>(key::EVENT_FLOOR)?;
-        if storage.last_event().is_none() && (report.events_lost || floor.is_some_and(|f| f > 0)) {
-            next_event = floor.unwrap_or(0).saturating_add(repair_counter(boot));
-        }
+        // An event ring erased as damaged numbers on past any number it can
+        // have held: the latest boot's first number (kept in the map at each
+        // boot) moved on as the write counter is after a repair. Numbering
+        // from 0 again, the host, which asks for the events after the last
+        // it holds, would not see the repair's own event, and numbers would
+        // collide in its store (found by review). Otherwise that first
+        // number is a floor (a ring that lost its pages some other way).
+        // (A power cut between the ring's erase and the store below loses
+        // the jump: the next boot numbers on from the floor.)
+        let floor = storage.get::<u32>(key::EVENT_FLOOR)?.unwrap_or(0);
+        next_event = if report.events_lost {
+            floor.saturating_add(repair_counter(boot))
+        } else {
+            next_event.max(floor)
+        };
         storage.put(key::EVENT_FLOOR, &next_event)?;
         let boot_event = |storage: &mut Storage<S>, next_event: &mut u32, kind| {
             let ev = Event {

@@ -20,6 +20,7 @@
 //! | 6 | self-test scratch value (written at most once a boot) |
 //! | 7 | device settings [`fringe_protocol::Settings`] (tag, interval, span, failure level, stale timeout) |
 //! | 8 | Modbus RTU settings [`fringe_protocol::ModbusSettings`] (unit id, baud rate, parity; protocol 1.2: absent on flash written by older firmware, which reads as the defaults; absent after being written, they are taken back from the newest `ModbusChanged` event: `Storage::newest_logged_modbus`) |
+//! | 9 | the first event number of the latest boot, `u32` (written at each boot; an event ring erased as damaged numbers on past it) |
 //! | 16..=23 | product calibration slot 0..=7, `Option<ProductCal>` |
 //!
 //! One map item is written atomically (a power cut leaves the old value or

@@ -330,6 +330,25 @@ fn events_after_a_damaged_event_ring_number_on_past_the_old_ones() {
         let next = b.events();
         let first_new = next.iter().map(|e| e.number).filter(|n| *n > last).min();
         assert_eq!(first_new, Some(last + 1), "{next:?}");
+        // More events in a boot than the jump's share of the two boot
+        // numbers since (2 x 4,096), then the ring damaged again: still past
+        // every number (the jump alone, from the boot number, would fall
+        // among them).
+        for i in 0..10_000u64 {
+            b.ok(Request::SetClock {
+                unix_ms: 1_796_083_200_000 + i,
+            });
+        }
+        let highest = b.events().iter().map(|e| e.number).max().unwrap();
+        assert!(highest > last + 10_000, "{highest}");
+        let mut b = Bench::on_flash(11, Scenario::default(), damaged_event_ring(b));
+        b.settle();
+        let after = b.events();
+        assert!(
+            after.iter().all(|e| e.number > highest),
+            "numbers after the second repair {:?} vs {highest} before",
+            after.iter().map(|e| e.number).collect::<Vec<_>>()
+        );
     });
 }
 
