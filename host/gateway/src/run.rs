@@ -451,6 +451,19 @@ impl Gateway {
                 site.density_writers.clone(),
             )
         });
+        // What the Modbus server and the live page say of themselves (a
+        // failed accept), as the site's own error.
+        let said: Arc<dyn Fn(String) + Send + Sync> = {
+            let tell = Arc::clone(&tell);
+            Arc::new(move |text: String| {
+                tell(Notice {
+                    unit: 0,
+                    serial: None,
+                    level: Level::Error,
+                    text,
+                })
+            })
+        };
         let modbus = match site.modbus {
             Some(addr) => Some(
                 ModbusServer::start_with(
@@ -458,17 +471,7 @@ impl Gateway {
                     Arc::clone(&table),
                     site.modbus_word_order,
                     density_writes,
-                    Some({
-                        let tell = Arc::clone(&tell);
-                        Arc::new(move |text: String| {
-                            tell(Notice {
-                                unit: 0,
-                                serial: None,
-                                level: Level::Error,
-                                text,
-                            })
-                        })
-                    }),
+                    Some(Arc::clone(&said)),
                 )
                 .map_err(|source| GatewayError::Modbus { addr, source })?,
             ),
@@ -480,17 +483,7 @@ impl Gateway {
                     addr,
                     &site.name,
                     Arc::clone(&table),
-                    Some({
-                        let tell = Arc::clone(&tell);
-                        Arc::new(move |text: String| {
-                            tell(Notice {
-                                unit: 0,
-                                serial: None,
-                                level: Level::Error,
-                                text,
-                            })
-                        })
-                    }),
+                    Some(Arc::clone(&said)),
                 )
                 .map_err(|source| GatewayError::Web { addr, source })?,
             ),
