@@ -37,6 +37,11 @@ use crate::sparkplug::{self, Payload};
 /// Messages in flight (sent, not yet acknowledged) per session.
 pub const WINDOW: usize = 32;
 
+/// Least time between two answers to Rebirth requests (1 s): a burst of
+/// them is answered at most once a second, the last answer after its last
+/// request.
+pub const REBIRTH_EVERY: Duration = Duration::from_secs(1);
+
 /// How the gateway speaks MQTT.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Format {
@@ -396,7 +401,18 @@ impl Worker {
         if let Err(e) = self.births(&mut s, bd_seq) {
             return End::Lost(e);
         }
+        // Rebirth requests are answered at most once per REBIRTH_EVERY: the
+        // births after the last request of a burst serve every host that
+        // asked (a host that asked in a loop made the gateway publish its
+        // whole site over and over; found by review).
+        let (mut births_at, mut rebirth_due) = (Instant::now(), false);
         loop {
+            if rebirth_due && births_at.elapsed() >= REBIRTH_EVERY {
+                if let Err(e) = self.births(&mut s, bd_seq) {
+                    return End::Lost(e);
+                }
+                (births_at, rebirth_due) = (Instant::now(), false);
+            }
             if self.stop.load(Ordering::Relaxed) {
                 self.goodbye(&mut s, &conn, bd_seq);
                 return End::Stopped;
@@ -449,9 +465,7 @@ impl Worker {
                     if let Some(serial) = self.density_device(&p.topic) {
                         self.on_density(&serial, &p);
                     } else if self.is_rebirth(&p.payload) {
-                        if let Err(e) = self.births(&mut s, bd_seq) {
-                            return End::Lost(e);
-                        }
+                        rebirth_due = true;
                     }
                 }
                 Ok(Ok(_)) | Err(RecvTimeoutError::Timeout) => {}
