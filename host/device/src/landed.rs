@@ -9,8 +9,8 @@
 //! the device runs with no audit record of who made it and why. So each
 //! write of this crate asks the device, before it gives up, for the
 //! counter of the last signed write it accepted (the device keeps it
-//! against replays; `Status::write_counter`): one above the counter before
-//! the write means this write landed, and the change is recorded as usual
+//! against replays; `Status::write_counter`): the counter this write was
+//! signed with means it landed ([`Link::request_signed_counted`]), and the change is recorded as usual
 //! with its record saying the answer was lost; the same counter means it
 //! did not (nothing changed); where the device still does not answer,
 //! [`Unconfirmed`] says that the outcome is not known and what to do.
@@ -104,14 +104,13 @@ pub fn write_checked(
     request: Request,
     words: Checked,
 ) -> Result<Landed, WriteFailed> {
-    let before = link.status().map_err(WriteFailed::Link)?.write_counter;
-    match link.request_signed(request, key) {
-        Ok(_) => Ok(Landed::Answered),
-        Err(e @ LinkError::Refused { .. }) => Err(WriteFailed::Link(e)),
-        Err(e) => match link.status() {
-            Ok(s) if s.write_counter == before.wrapping_add(1) => {
-                Ok(Landed::AnswerLost(e.to_string()))
-            }
+    let (sent, counter) = link.request_signed_counted(request, key);
+    match (sent, counter) {
+        (Ok(_), _) => Ok(Landed::Answered),
+        // Refused, or not sent at all.
+        (Err(e @ LinkError::Refused { .. }), _) | (Err(e), None) => Err(WriteFailed::Link(e)),
+        (Err(e), Some(counter)) => match link.status() {
+            Ok(s) if s.write_counter == counter => Ok(Landed::AnswerLost(e.to_string())),
             Ok(_) => Err(WriteFailed::NotTaken(NotTaken {
                 what: words.what,
                 source: e,

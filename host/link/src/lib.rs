@@ -724,15 +724,40 @@ impl Link {
     /// # Errors
     /// As [`Link::request`].
     pub fn request_signed(&mut self, request: Request, key: &Key) -> Result<Response, LinkError> {
-        let counter = match self.request(Request::Status)? {
-            Response::Status(s) => s.write_counter.wrapping_add(1),
-            other => {
-                return Err(LinkError::Unexpected {
-                    request: "Status",
-                    got: format!("{other:?}"),
-                })
+        self.request_signed_counted(request, key).0
+    }
+
+    /// [`Link::request_signed`], with the counter the write was signed with
+    /// (`None`: it was not sent, the device's counter could not be read
+    /// first). Where no answer came, the device's stored counter equal to
+    /// it says the write landed (`fringe_device::landed`).
+    pub fn request_signed_counted(
+        &mut self,
+        request: Request,
+        key: &Key,
+    ) -> (Result<Response, LinkError>, Option<u32>) {
+        let counter = match self.request(Request::Status) {
+            Ok(Response::Status(s)) => s.write_counter.wrapping_add(1),
+            Ok(other) => {
+                return (
+                    Err(LinkError::Unexpected {
+                        request: "Status",
+                        got: format!("{other:?}"),
+                    }),
+                    None,
+                )
             }
+            Err(e) => return (Err(e), None),
         };
+        (self.send_signed(request, key, counter), Some(counter))
+    }
+
+    fn send_signed(
+        &mut self,
+        request: Request,
+        key: &Key,
+        counter: u32,
+    ) -> Result<Response, LinkError> {
         let serial = self.serial_number().to_string();
         let auth = fringe_protocol::auth::sign(key, &serial, counter, &request);
         let retries_before = self.stats.retries;

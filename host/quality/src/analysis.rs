@@ -565,7 +565,6 @@ impl HeadKind {
 struct HeadChart {
     kind: HeadKind,
     keep: bool,
-    pushed: usize,
     head: Vec<Obs>,
     running: Option<Running>,
 }
@@ -575,14 +574,12 @@ impl HeadChart {
         Self {
             kind,
             keep,
-            pushed: 0,
             head: Vec::new(),
             running: None,
         }
     }
 
     fn push(&mut self, o: Obs) {
-        self.pushed += 1;
         match self.running.as_mut() {
             Some(r) => r.push(o),
             None => {
@@ -1448,7 +1445,7 @@ mod tests {
         assert_eq!(traces[3].obs.len(), charted.charted.len());
         assert_eq!(charted.charted.len(), 320);
         // ... and the live check charted each of them once.
-        assert_eq!(live.charts.temperature[&b].pushed, 320);
+        assert_eq!(live.charts.temperature[&b].running().len(), 320);
         let all = live.episodes();
         for q in [
             Quantity::LabResidual,
