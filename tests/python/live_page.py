@@ -6,7 +6,9 @@ Usage: python live_page.py URL SERIAL FIRST SECOND SCREENSHOT.png
 Waits until the card of device SERIAL shows moisture FIRST (e.g. "14.37 %"),
 prints {"event": "first"} and waits (up to 60 s) for SECOND without the
 page being reloaded (a marker set in the page must survive), saves a
-screenshot and prints one JSON line with what it saw. Then it waits for a
+screenshot, waits 4.5 s (two more polls), compares the trends the page
+holds (built from the points of each answer it had not had) with the
+whole trends of /api/site, and prints one JSON line with what it saw. Then it waits for a
 line on stdin (the test stops the gateway's web server and says so) and
 up to 30 s for the card to show no value, and prints what the card and the
 banner say.
@@ -15,6 +17,7 @@ banner say.
 import json
 import sys
 import time
+import urllib.request
 
 from PIL import Image
 from selenium import webdriver
@@ -61,11 +64,22 @@ def main(url, serial, first, second, shot):
         title = driver.title
         cards = len(driver.find_elements(By.CSS_SELECTOR, "section.card"))
         flags = [e.text for e in driver.find_elements(By.CSS_SELECTOR, ".flags li")]
+        # The page asks only for the trend points it has not had: after two
+        # more polls with nothing new, what it holds is what the gateway has.
+        time.sleep(4.5)
+        held = driver.execute_script("return window.__fringeTrends();")
+        with urllib.request.urlopen(url + "api/site", timeout=10) as r:
+            whole = json.load(r)
+        gateway = {f"{u['unit']} {u['serial']}": u["history"] for u in whole["units"]}
         driver.save_screenshot(shot)
         img = Image.open(shot).convert("RGB")
         colours = len(img.resize((192, 108)).getcolors(maxcolors=1 << 16) or [])
         print(json.dumps({"event": "second", "text": got, "marker": marker, "title": title, "cards": cards,
-                          "flags": flags, "width": img.width, "height": img.height, "colours": colours}), flush=True)
+                          "flags": flags, "width": img.width, "height": img.height, "colours": colours,
+                          "trends_match": held["trends"] == gateway,
+                          "trend_points": {k: len(v) for k, v in held["trends"].items()},
+                          "asks_from_mark": held["since"] is not None,
+                          "partial_answers": held["partialAnswers"]}), flush=True)
         sys.stdin.readline()
         gone = wait_for(driver, serial, "no value", 30)
         banner = driver.find_element(By.ID, "silent")

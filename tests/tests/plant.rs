@@ -560,6 +560,11 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
         &reading(1, 1, Some(9.5), Flags::OUT_OF_RANGE),
         Instant::now(),
     );
+    table.update(
+        3,
+        &reading(1, 1, Some(7.25), Flags::empty()),
+        Instant::now(),
+    );
     // Its calibration reports on a dry basis: the card says so.
     table.set_calibration(
         1,
@@ -586,9 +591,24 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
     let mut lines = std::io::BufReader::new(child.stdout.take().unwrap()).lines();
     let first: Value = serde_json::from_str(&lines.next().expect("first line").unwrap()).unwrap();
     assert_eq!(first["event"], "first");
+    // New trend points (one per 10 s of reading time) on two units, and
+    // another device on unit 3, while the page asks only for what it has
+    // not had.
     table.update(
         1,
-        &reading(1, 2, Some(15.02), Flags::empty()),
+        &reading(1, 12, Some(14.9), Flags::empty()),
+        Instant::now(),
+    );
+    table.update(
+        2,
+        &reading(1, 15, Some(9.75), Flags::OUT_OF_RANGE),
+        Instant::now(),
+    );
+    table.register(3, "PLT-A-0099");
+    table.update(3, &reading(1, 5, Some(7.5), Flags::empty()), Instant::now());
+    table.update(
+        1,
+        &reading(1, 22, Some(15.02), Flags::empty()),
         Instant::now(),
     );
     let second: Value = serde_json::from_str(&lines.next().expect("second line").unwrap()).unwrap();
@@ -628,6 +648,19 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
     assert_eq!(
         second["marker"], "same page",
         "the page was reloaded: {second}"
+    );
+    // The trends the page built from the points it had not had are the
+    // gateway's whole trends.
+    assert_eq!(second["trends_match"], true, "{second}");
+    assert_eq!(
+        second["trend_points"],
+        serde_json::json!({"1 PLT-A-0001": 3, "2 PLT-A-0002": 2, "3 PLT-A-0099": 1}),
+        "{second}"
+    );
+    assert_eq!(second["asks_from_mark"], true, "{second}");
+    assert!(
+        second["partial_answers"].as_u64().unwrap_or(0) >= 2,
+        "{second}"
     );
     assert_eq!(second["cards"], 3, "{second}");
     assert_eq!(second["title"], "Plant A (test): live moisture");

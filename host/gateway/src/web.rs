@@ -24,6 +24,10 @@
 //! GET /app.js      its script
 //! GET /style.css   its style
 //! GET /api/site    every device as JSON (the page's own; docs/GATEWAY.md, "The live page")
+//! GET /api/site?epoch=E&after=M
+//!                  the same, each trend only from point M on where the
+//!                  page has the points before it (E and M from its last
+//!                  answer; [`LiveTable::views_since`])
 //! ```
 
 use std::io;
@@ -35,7 +39,7 @@ use fringe_protocol::Flags;
 use fringe_registers as reg;
 use serde_json::{json, Value};
 
-use crate::live::{LiveTable, UnitView};
+use crate::live::{LiveTable, Since, UnitView};
 
 const PAGE: &str = include_str!("../web/index.html");
 const SCRIPT: &str = include_str!("../web/app.js");
@@ -174,7 +178,9 @@ pub fn unit_json(v: &UnitView) -> Value {
         "boot": r.map(|r| r.seq.boot),
         "counter": r.map(|r| r.seq.counter),
         "flags": flags,
-        "history": v.history.iter().map(|p| json!([p.time_ms, p.moisture_pct, p.uncertainty_pct, p.flags])).collect::<Vec<_>>(),
+        "history": v.history.iter().map(|p| json!([p.time_ms, p.moisture_pct, p.uncertainty_pct, p.flags, p.mark])).collect::<Vec<_>>(),
+        "history_full": v.history_full,
+        "history_len": v.history_len,
         "alarms": v.alarms,
         "calibration": v.calibration,
         "moisture_basis": v.moisture_basis,
@@ -183,11 +189,57 @@ pub fn unit_json(v: &UnitView) -> Value {
 
 /// The whole site as the page's JSON.
 pub fn site_json(site: &str, table: &LiveTable, now: Instant) -> Value {
+    site_json_since(site, table, now, None)
+}
+
+/// As [`site_json`], each trend from `since` on where it can
+/// ([`LiveTable::views_since`]); with the `epoch` and `mark` to ask from
+/// next time.
+pub fn site_json_since(
+    site: &str,
+    table: &LiveTable,
+    now: Instant,
+    since: Option<&Since>,
+) -> Value {
+    let (mark, views) = table.views_since(now, since);
     json!({
         "site": site,
         "now_ms": now_ms(),
-        "units": table.views(now).iter().map(unit_json).collect::<Vec<_>>(),
+        "epoch": table.epoch(),
+        "mark": mark,
+        "units": views.iter().map(unit_json).collect::<Vec<_>>(),
     })
+}
+
+/// The `epoch` and `after` of a query (`None`: neither given).
+///
+/// # Errors
+/// The parameter at fault and why, for a 400 answer: one without the
+/// other, an `after` that is not a whole number, a parameter not known.
+pub fn parse_since(query: Option<&str>) -> Result<Option<Since>, String> {
+    let (mut epoch, mut after) = (None, None);
+    for pair in query.unwrap_or("").split('&').filter(|p| !p.is_empty()) {
+        let (k, v) = pair.split_once('=').unwrap_or((pair, ""));
+        match k {
+            "epoch" => epoch = Some(v.to_string()),
+            "after" => {
+                after = Some(
+                    v.parse::<u64>()
+                        .map_err(|_| format!("after={v:.40}: not a whole number"))?,
+                );
+            }
+            _ => {
+                return Err(format!(
+                    "{k:.40}: not a parameter of /api/site (epoch, after)"
+                ))
+            }
+        }
+    }
+    match (epoch, after) {
+        (None, None) => Ok(None),
+        (Some(epoch), Some(after)) => Ok(Some(Since { epoch, after })),
+        _ => Err("epoch and after go together".into()),
+    }
 }
 
 /// The live page's server, on its own threads.
@@ -347,8 +399,8 @@ async fn serve(
 
 type Body = http_body_util::Full<hyper::body::Bytes>;
 
-fn plain(status: u16, text: &'static str) -> hyper::Response<Body> {
-    let mut r = hyper::Response::new(Body::from(text));
+fn plain(status: u16, text: impl Into<Body>) -> hyper::Response<Body> {
+    let mut r = hyper::Response::new(text.into());
     *r.status_mut() = hyper::StatusCode::from_u16(status).unwrap_or_default();
     r.headers_mut().insert(
         hyper::header::CONTENT_TYPE,
@@ -382,10 +434,13 @@ fn answer<B>(req: &hyper::Request<B>, site: &str, table: &LiveTable) -> hyper::R
         "/" | "/index.html" => (PAGE.to_string(), "text/html; charset=utf-8"),
         "/app.js" => (SCRIPT.to_string(), "text/javascript; charset=utf-8"),
         "/style.css" => (STYLE.to_string(), "text/css; charset=utf-8"),
-        "/api/site" => (
-            site_json(site, table, Instant::now()).to_string(),
-            "application/json",
-        ),
+        "/api/site" => match parse_since(req.uri().query()) {
+            Ok(since) => (
+                site_json_since(site, table, Instant::now(), since.as_ref()).to_string(),
+                "application/json",
+            ),
+            Err(why) => return plain(400, format!("/api/site: {why}\n")),
+        },
         _ => return plain(404, "not found\n"),
     };
     let mut r = hyper::Response::new(Body::from(body));
@@ -470,6 +525,33 @@ mod tests {
         assert!(first >= now_ms && first < now_ms + 60_000, "{h:?}");
     }
 
+    /// The page's query: both parameters or neither; anything else is
+    /// named.
+    #[test]
+    fn the_query_of_api_site_is_read_or_refused_with_its_fault() {
+        assert_eq!(parse_since(None), Ok(None));
+        assert_eq!(parse_since(Some("")), Ok(None));
+        assert_eq!(
+            parse_since(Some("epoch=17&after=42")),
+            Ok(Some(Since {
+                epoch: "17".into(),
+                after: 42
+            }))
+        );
+        assert_eq!(
+            parse_since(Some("after=-1&epoch=1")),
+            Err("after=-1: not a whole number".into())
+        );
+        assert_eq!(
+            parse_since(Some("after=3")),
+            Err("epoch and after go together".into())
+        );
+        assert_eq!(
+            parse_since(Some("units=1")),
+            Err("units: not a parameter of /api/site (epoch, after)".into())
+        );
+    }
+
     /// One request and its answer on a fresh connection, as text (the
     /// answer read until the server closes or 3 s pass).
     fn exchange(addr: SocketAddr, request: &[u8]) -> String {
@@ -510,6 +592,16 @@ mod tests {
             b"GET / HTTP/1.1\r\nHost: x\r\nContent-Length: 100000000000\r\n\r\n",
         );
         assert!(huge.starts_with("HTTP/1.1 413"), "{huge}");
+        // A query the page would not send: 400, naming what is wrong.
+        let bad = exchange(
+            addr,
+            b"GET /api/site?epoch=1&after=x HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n",
+        );
+        assert!(
+            bad.starts_with("HTTP/1.1 400")
+                && bad.contains("/api/site: after=x: not a whole number"),
+            "{bad}"
+        );
         let post = exchange(addr, b"POST /api/site HTTP/1.1\r\nHost: x\r\n\r\n");
         assert!(
             post.starts_with("HTTP/1.1 405") && post.contains("allow: GET, HEAD"),

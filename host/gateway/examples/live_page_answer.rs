@@ -1,0 +1,83 @@
+//! The size and time of the live page's answer on a full site (a
+//! benchmark, not a test):
+//! `cargo run --release -p fringe-gateway --example live_page_answer -- [UNITS]`.
+//!
+//! UNITS devices (default 247, as many as Modbus unit ids allow), each
+//! with a whole trend (`HISTORY_POINTS`, 4 h at one point per 10 s); then
+//! 2 s of readings at one per second per device. Prints the bytes and
+//! the time (median of 21) of `/api/site` whole, as every poll asked
+//! before, and of the answer from the page's last mark, as it asks now.
+
+use std::time::{Duration, Instant};
+
+use fringe_gateway::live::{LiveTable, Since, HISTORY_POINTS};
+use fringe_gateway::web::site_json_since;
+use fringe_protocol::{Flags, Reading, Seq};
+
+fn reading(counter: u32) -> Reading {
+    Reading {
+        seq: Seq { boot: 1, counter },
+        time_ms: 1_796_083_200_000 + u64::from(counter) * 1000,
+        temperature_c: 18.25,
+        moisture_pct: Some(12.0 + (counter % 97) as f32 / 37.0),
+        uncertainty_pct: 0.12 + (counter % 13) as f32 / 1000.0,
+        flags: Flags::empty(),
+        ..Reading::default()
+    }
+}
+
+fn median_ms(f: &mut dyn FnMut() -> usize) -> (f64, usize) {
+    let mut bytes = 0;
+    let mut t: Vec<f64> = (0..21)
+        .map(|_| {
+            let t0 = Instant::now();
+            bytes = f();
+            t0.elapsed().as_secs_f64() * 1e3
+        })
+        .collect();
+    t.sort_by(f64::total_cmp);
+    (t[10], bytes)
+}
+
+fn main() {
+    let units: u8 = std::env::args()
+        .nth(1)
+        .and_then(|a| a.parse().ok())
+        .unwrap_or(247);
+    let table = LiveTable::new(Duration::from_secs(60));
+    for u in 1..=units {
+        table.register(u, &format!("BENCH-{u:04}"));
+    }
+    // One reading per second per device for 4 h: a point every 10 s.
+    let seconds = HISTORY_POINTS as u32 * 10;
+    for c in 1..=seconds {
+        for u in 1..=units {
+            table.update(u, &reading(c), Instant::now());
+        }
+    }
+    let whole = site_json_since("Bench site", &table, Instant::now(), None);
+    let since = Since {
+        epoch: whole["epoch"].as_str().unwrap_or_default().to_string(),
+        after: whole["mark"].as_u64().unwrap_or(0),
+    };
+    // The next 2 s, until the page's next poll.
+    for c in seconds + 1..=seconds + 2 {
+        for u in 1..=units {
+            table.update(u, &reading(c), Instant::now());
+        }
+    }
+    let (t_whole, b_whole) = median_ms(&mut || {
+        site_json_since("Bench site", &table, Instant::now(), None)
+            .to_string()
+            .len()
+    });
+    let (t_delta, b_delta) = median_ms(&mut || {
+        site_json_since("Bench site", &table, Instant::now(), Some(&since))
+            .to_string()
+            .len()
+    });
+    println!("| answer | bytes | time to build, median of 21 |");
+    println!("| --- | --- | --- |");
+    println!("| every trend whole ({units} devices x {HISTORY_POINTS} points) | {b_whole} | {t_whole:.2} ms |");
+    println!("| from the page's last mark (2 s later) | {b_delta} | {t_delta:.3} ms |");
+}
