@@ -429,6 +429,74 @@ fn a_broker_lost_mid_stream_loses_nothing_and_repeats_only_what_was_in_flight() 
     publisher.stop();
 }
 
+/// Acknowledged rows are deleted from the buffer in batches
+/// (`mqtt::ACK_BATCH`, or `ACK_FLUSH_EVERY` after the first): a clean stop
+/// right after the broker acknowledged the last of 1,000 readings leaves
+/// none of them in the buffer, so that the next start does not send them
+/// again.
+#[test]
+#[ignore = "needs mosquitto (Debian package): `cargo xtask test` runs it"]
+fn a_stop_right_after_the_acknowledgements_leaves_none_of_them_buffered() {
+    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_gateway::outbox::Outbox;
+    use fringe_tests::servers::Mosquitto;
+
+    let broker = Mosquitto::start();
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("outbox.db");
+    let device = "PLT-A-0004";
+    {
+        // Buffered before the publisher starts: sent as fast as it can.
+        let p = Publisher::start(
+            MqttConfig {
+                host: "127.0.0.1".into(),
+                port: 1,
+                client_id: "fringe-gw-5".into(),
+                credentials: None,
+                tls_ca_pem: None,
+                format: Format::Json {
+                    prefix: "fringe".into(),
+                },
+                density: None,
+                keep_alive: Duration::from_secs(5),
+            },
+            &path,
+            vec![device.to_string()],
+        )
+        .expect("publisher");
+        for n in 1..=1000u32 {
+            p.reading(device, &reading(1, n, Some(12.0), Flags::empty()), None)
+                .unwrap();
+        }
+        p.stop();
+    }
+    assert_eq!(Outbox::open(&path).unwrap().len().unwrap(), 1000);
+    let p = Publisher::start(
+        MqttConfig {
+            host: "127.0.0.1".into(),
+            port: broker.port,
+            client_id: "fringe-gw-5".into(),
+            credentials: None,
+            tls_ca_pem: None,
+            format: Format::Json {
+                prefix: "fringe".into(),
+            },
+            density: None,
+            keep_alive: Duration::from_secs(5),
+        },
+        &path,
+        vec![device.to_string()],
+    )
+    .expect("publisher");
+    let t0 = Instant::now();
+    while p.stats().acknowledged < 1000 {
+        assert!(t0.elapsed() < Duration::from_secs(60), "{:?}", p.stats());
+        std::thread::sleep(Duration::from_millis(1));
+    }
+    p.stop();
+    assert_eq!(Outbox::open(&path).unwrap().len().unwrap(), 0);
+}
+
 /// A TCP relay to `to` that holds back everything the server sends for
 /// `delay` at the start of each connection: a broker slow to accept (TLS
 /// across a wide area network, an authentication plugin). Its port.

@@ -6,7 +6,8 @@
 //! connects (credentials and TLS from the site file; the will is the
 //! NDEATH of a new `bdSeq`), publishes NBIRTH and a DBIRTH per device, then
 //! sends the buffer in order with up to [`WINDOW`] messages awaiting their
-//! acknowledgement, deleting each row at its PUBACK. When the broker goes
+//! acknowledgement, deleting the rows acknowledged (PUBACK) in batches
+//! ([`ACK_BATCH`]). When the broker goes
 //! away the session ends; rows not acknowledged stay buffered, and the next
 //! session (after a back-off of 0.5 s doubling to 10 s) sends them first,
 //! marked historical when they were buffered before it began. A Sparkplug
@@ -36,6 +37,18 @@ use crate::sparkplug::{self, Payload};
 
 /// Messages in flight (sent, not yet acknowledged) per session.
 pub const WINDOW: usize = 32;
+
+/// Acknowledged rows are deleted from the buffer together, in one
+/// transaction, once this many have come or [`ACK_FLUSH_EVERY`] after the
+/// first of them, and at the end of every session. One transaction per
+/// acknowledgement made a flush to disk per message the limit of how
+/// fast a backlog went out (BENCHMARKS.md, "The MQTT buffer's catch-up").
+/// A gateway killed or a power cut in between sends those rows again:
+/// MQTT's QoS 1 is "at least once" anyway.
+pub const ACK_BATCH: usize = 256;
+
+/// See [`ACK_BATCH`].
+pub const ACK_FLUSH_EVERY: Duration = Duration::from_millis(100);
 
 /// Least time between two answers to Rebirth requests (1 s): a burst of
 /// them is answered at most once a second, the last answer after its last
@@ -140,6 +153,8 @@ impl Publisher {
                     boot_origins: HashMap::new(),
                     stop: s,
                     stats: st,
+                    acked: Vec::new(),
+                    acked_since: None,
                 }
                 .run();
             })
@@ -272,6 +287,10 @@ struct Worker {
     boot_origins: HashMap<(String, u32), u64>,
     stop: Arc<AtomicBool>,
     stats: Arc<Mutex<MqttStats>>,
+    /// Rows acknowledged and not yet deleted ([`ACK_BATCH`]), and when
+    /// the first of them came.
+    acked: Vec<i64>,
+    acked_since: Option<Instant>,
 }
 
 /// Why a session ended.
@@ -287,6 +306,11 @@ impl Worker {
             let t0 = Instant::now();
             let end = self.session();
             self.stat(|s| s.connected = false);
+            // What the broker acknowledged is deleted before the next
+            // session reads the buffer from its start (else sent again).
+            if let Err(e) = self.flush_acks() {
+                self.stat(|s| s.last_error = Some(e));
+            }
             match end {
                 End::Stopped => break,
                 End::Lost(why) => {
@@ -302,6 +326,41 @@ impl Worker {
                 }
             }
         }
+    }
+
+    /// Row `id` was acknowledged: deleted with the next batch.
+    fn ack(&mut self, id: i64) -> Result<(), String> {
+        self.acked.push(id);
+        self.acked_since.get_or_insert_with(Instant::now);
+        if self.acked.len() >= ACK_BATCH {
+            self.flush_acks()?;
+        }
+        Ok(())
+    }
+
+    /// Deletes the acknowledged rows when [`ACK_FLUSH_EVERY`] has passed
+    /// since the first of them.
+    fn flush_acks_due(&mut self) -> Result<(), String> {
+        if self
+            .acked_since
+            .is_some_and(|t| t.elapsed() >= ACK_FLUSH_EVERY)
+        {
+            self.flush_acks()?;
+        }
+        Ok(())
+    }
+
+    /// Deletes the acknowledged rows (kept for another try if that fails).
+    fn flush_acks(&mut self) -> Result<(), String> {
+        if self.acked.is_empty() {
+            return Ok(());
+        }
+        self.outbox
+            .done_many(&self.acked)
+            .map_err(|e| e.to_string())?;
+        self.acked.clear();
+        self.acked_since = None;
+        Ok(())
     }
 
     fn stat(&self, f: impl FnOnce(&mut MqttStats)) {
@@ -439,8 +498,8 @@ impl Worker {
                 Ok(Ok(Event::Incoming(Incoming::PubAck(ack)))) => {
                     if let Some(row) = s.in_flight.remove(&ack.pkid) {
                         if let Some(id) = row {
-                            if let Err(e) = self.outbox.done(id) {
-                                return End::Lost(e.to_string());
+                            if let Err(e) = self.ack(id) {
+                                return End::Lost(e);
                             }
                         }
                         self.stat(|st| st.acknowledged += 1);
@@ -471,6 +530,9 @@ impl Worker {
                 Ok(Ok(_)) | Err(RecvTimeoutError::Timeout) => {}
                 Ok(Err(e)) => return End::Lost(format!("broker connection: {e}")),
                 Err(RecvTimeoutError::Disconnected) => return End::Lost("client closed".into()),
+            }
+            if let Err(e) = self.flush_acks_due() {
+                return End::Lost(e);
             }
         }
     }
@@ -709,7 +771,7 @@ impl Worker {
                 }
                 Ok(Ok(Event::Incoming(Incoming::PubAck(ack)))) => {
                     if let Some(Some(id)) = s.in_flight.remove(&ack.pkid) {
-                        let _ = self.outbox.done(id);
+                        let _ = self.ack(id);
                     }
                 }
                 Ok(Ok(_)) | Err(RecvTimeoutError::Timeout) => {}
