@@ -79,7 +79,8 @@ def main(url, serial, first, second, shot):
                           "trends_match": held["trends"] == gateway,
                           "trend_points": {k: len(v) for k, v in held["trends"].items()},
                           "asks_from_mark": held["since"] is not None,
-                          "partial_answers": held["partialAnswers"]}), flush=True)
+                          "partial_answers": held["partialAnswers"],
+                          "whole_asks": held["wholeAsks"]}), flush=True)
         sys.stdin.readline()
         gone = wait_for(driver, serial, "no value", 30)
         banner = driver.find_element(By.ID, "silent")

@@ -497,6 +497,85 @@ fn a_stop_right_after_the_acknowledgements_leaves_none_of_them_buffered() {
     assert_eq!(Outbox::open(&path).unwrap().len().unwrap(), 0);
 }
 
+/// A buffer that refuses to delete acknowledged rows (a full disk): the
+/// status says so, the session goes on and sends nothing twice (it ended
+/// at each failed delete before, and each new session sent its births and
+/// the start of the buffer again); once deletes work again the rows go.
+#[test]
+#[ignore = "needs mosquitto (Debian package): `cargo xtask test` runs it"]
+fn a_buffer_that_cannot_delete_keeps_its_session_and_sends_nothing_twice() {
+    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_tests::servers::Mosquitto;
+
+    let broker = Mosquitto::start();
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("outbox.db");
+    let device = "PLT-A-0006";
+    let p = Publisher::start(
+        MqttConfig {
+            host: "127.0.0.1".into(),
+            port: broker.port,
+            client_id: "fringe-gw-6".into(),
+            credentials: None,
+            tls_ca_pem: None,
+            format: Format::Sparkplug {
+                group: "plant-a".into(),
+                edge_node: "gw-6".into(),
+            },
+            density: None,
+            keep_alive: Duration::from_secs(5),
+        },
+        &path,
+        vec![device.to_string()],
+    )
+    .expect("publisher");
+    let db = rusqlite::Connection::open(&path).unwrap();
+    db.execute_batch(
+        "CREATE TRIGGER keep BEFORE DELETE ON outbox BEGIN SELECT RAISE(ABORT, 'disk full (test)'); END;",
+    )
+    .unwrap();
+    let wait = |what: &str, done: &dyn Fn() -> bool| {
+        let t0 = Instant::now();
+        while !done() {
+            assert!(
+                t0.elapsed() < Duration::from_secs(60),
+                "{what}: {:?}",
+                p.stats()
+            );
+            std::thread::sleep(Duration::from_millis(10));
+        }
+    };
+    // Births: the NBIRTH and the device's DBIRTH are acknowledged too.
+    let births = 2;
+    for n in 1..=300u32 {
+        p.reading(device, &reading(1, n, Some(12.0), Flags::empty()), None)
+            .unwrap();
+    }
+    wait("300 acknowledged", &|| {
+        p.stats().acknowledged >= 300 + births
+    });
+    wait("the failed delete said", &|| {
+        p.stats()
+            .last_error
+            .is_some_and(|e| e.contains("disk full (test)") && e.contains("stay in the buffer"))
+    });
+    for n in 301..=400u32 {
+        p.reading(device, &reading(1, n, Some(12.0), Flags::empty()), None)
+            .unwrap();
+    }
+    wait("400 acknowledged", &|| {
+        p.stats().acknowledged >= 400 + births
+    });
+    assert_eq!(p.queued().unwrap(), 400, "deleted although refused");
+    db.execute_batch("DROP TRIGGER keep").unwrap();
+    wait("the buffer emptied", &|| p.queued().unwrap() == 0);
+    std::thread::sleep(Duration::from_millis(300));
+    let s = p.stats();
+    assert_eq!(s.sessions, 1, "{s:?}");
+    assert_eq!(s.acknowledged, 400 + births, "sent twice: {s:?}");
+    p.stop();
+}
+
 /// A TCP relay to `to` that holds back everything the server sends for
 /// `delay` at the start of each connection: a broker slow to accept (TLS
 /// across a wide area network, an authentication plugin). Its port.
@@ -623,11 +702,14 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
         &reading(1, 1, Some(14.37), Flags::empty()),
         Instant::now(),
     );
-    table.update(
-        2,
-        &reading(1, 1, Some(9.5), Flags::OUT_OF_RANGE),
-        Instant::now(),
-    );
+    // A whole trend (a point per 10 s of reading time, 1,440 kept).
+    for k in 1..=1450 {
+        table.update(
+            2,
+            &reading(1, 10 * k, Some(9.5), Flags::OUT_OF_RANGE),
+            Instant::now(),
+        );
+    }
     table.update(
         3,
         &reading(1, 1, Some(7.25), Flags::empty()),
@@ -667,11 +749,13 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
         &reading(1, 12, Some(14.9), Flags::empty()),
         Instant::now(),
     );
-    table.update(
-        2,
-        &reading(1, 15, Some(9.75), Flags::OUT_OF_RANGE),
-        Instant::now(),
-    );
+    for k in 1451..=1453 {
+        table.update(
+            2,
+            &reading(1, 10 * k, Some(9.75), Flags::OUT_OF_RANGE),
+            Instant::now(),
+        );
+    }
     table.register(3, "PLT-A-0099");
     table.update(3, &reading(1, 5, Some(7.5), Flags::empty()), Instant::now());
     table.update(
@@ -722,10 +806,12 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
     assert_eq!(second["trends_match"], true, "{second}");
     assert_eq!(
         second["trend_points"],
-        serde_json::json!({"1 PLT-A-0001": 3, "2 PLT-A-0002": 2, "3 PLT-A-0099": 1}),
+        serde_json::json!({"1 PLT-A-0001": 3, "2 PLT-A-0002": 1440, "3 PLT-A-0099": 1}),
         "{second}"
     );
     assert_eq!(second["asks_from_mark"], true, "{second}");
+    // Everything was asked for once, when the page opened.
+    assert_eq!(second["whole_asks"], 1, "{second}");
     assert!(
         second["partial_answers"].as_u64().unwrap_or(0) >= 2,
         "{second}"

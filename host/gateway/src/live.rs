@@ -502,7 +502,7 @@ mod tests {
             x
         };
         let mut whole_points = 0usize;
-        for step in 0..8000u32 {
+        for step in 0..11000u32 {
             let unit = (next() % 4) as u8 + 1;
             let c = &mut counters[usize::from(unit)];
             *c += 1;
@@ -518,6 +518,14 @@ mod tests {
             }
             if step == 3000 {
                 table.register(5, "PLT-T-0005");
+            }
+            if step == 4000 {
+                // Another device on unit 3 and the first back, between two
+                // answers: the same unit and serial, a new trend.
+                table.register(3, "PLT-T-0077");
+                table.update(3, &reading(1, 10.0), Instant::now());
+                table.register(3, "PLT-T-0003");
+                counters[3] = 0;
             }
             match next() % 10 {
                 0 => {
@@ -557,7 +565,7 @@ mod tests {
         for unit in 1..=3 {
             again.register(unit, &format!("PLT-T-{unit:04}"));
         }
-        for c in 1..=3000 {
+        for c in 1..=4500 {
             for unit in 1..=3 {
                 again.update(unit, &reading(c, 12.0 + (c % 7) as f32), Instant::now());
             }

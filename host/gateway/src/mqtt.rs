@@ -115,9 +115,34 @@ pub struct MqttStats {
 #[derive(Debug)]
 pub struct Publisher {
     outbox: Mutex<Outbox>,
+    /// Rows handed in and not yet written ([`Publisher::push`]).
+    group: Mutex<Group>,
+    written: std::sync::Condvar,
     stop: Arc<AtomicBool>,
     stats: Arc<Mutex<MqttStats>>,
     worker: Option<std::thread::JoinHandle<()>>,
+}
+
+/// Rows waiting to be written to the buffer together (a group commit):
+/// each device's session hands in its reading and waits until a
+/// transaction holding it has been written; whoever finds no transaction
+/// under way writes every row waiting, in one, with one flush to disk.
+/// One transaction per reading made a flush to disk per reading, on the
+/// device sessions' path (BENCHMARKS.md, "The MQTT buffer's catch-up").
+#[derive(Debug, Default)]
+struct Group {
+    /// Rows waiting, in the order of their tickets (from `written_below`).
+    waiting: Vec<(Item, u64)>,
+    /// The ticket of the next row handed in.
+    next_ticket: u64,
+    /// Every row of a ticket below this has been written, or its
+    /// transaction failed.
+    written_below: u64,
+    /// A transaction is being written.
+    writing: bool,
+    /// The tickets of the transactions that failed, with the error and
+    /// how many of their rows' sessions have not been told yet.
+    failed: Vec<(std::ops::Range<u64>, OutboxError, usize)>,
 }
 
 fn now_ms() -> u64 {
@@ -153,23 +178,75 @@ impl Publisher {
                     boot_origins: HashMap::new(),
                     stop: s,
                     stats: st,
-                    acked: Vec::new(),
+                    acked: BTreeSet::new(),
                     acked_since: None,
+                    flush_failed: None,
                 }
                 .run();
             })
             .ok();
         Ok(Self {
             outbox: Mutex::new(outbox),
+            group: Mutex::new(Group::default()),
+            written: std::sync::Condvar::new(),
             stop,
             stats,
             worker,
         })
     }
 
+    /// Buffers `item`: returns once it is written (in a transaction with
+    /// the rows handed in meanwhile, [`Group`]), or with the error of that
+    /// transaction.
     fn push(&self, item: &Item) -> Result<(), OutboxError> {
-        let o = self.outbox.lock().unwrap_or_else(|e| e.into_inner());
-        let (_, dropped) = o.push_counted(item, now_ms())?;
+        let lock = || self.group.lock().unwrap_or_else(|e| e.into_inner());
+        let mut g = lock();
+        let ticket = g.next_ticket;
+        g.next_ticket += 1;
+        g.waiting.push((item.clone(), now_ms()));
+        loop {
+            if g.written_below > ticket {
+                let Some(k) = g.failed.iter().position(|(r, ..)| r.contains(&ticket)) else {
+                    return Ok(());
+                };
+                let e = g.failed[k].1.clone();
+                g.failed[k].2 -= 1;
+                if g.failed[k].2 == 0 {
+                    g.failed.swap_remove(k);
+                }
+                return Err(e);
+            }
+            if g.writing {
+                g = self.written.wait(g).unwrap_or_else(|e| e.into_inner());
+                continue;
+            }
+            // Write every row waiting (this one among them).
+            g.writing = true;
+            let rows = std::mem::take(&mut g.waiting);
+            let first = g.written_below;
+            drop(g);
+            let result = self
+                .outbox
+                .lock()
+                .unwrap_or_else(|e| e.into_inner())
+                .push_many(&rows);
+            g = lock();
+            g.writing = false;
+            g.written_below = first + rows.len() as u64;
+            match result {
+                Ok(dropped) => self.overflowed(dropped),
+                Err(e) => {
+                    let end = g.written_below;
+                    g.failed.push((first..end, e, rows.len()));
+                }
+            }
+            self.written.notify_all();
+        }
+    }
+
+    /// `dropped` of the oldest rows were dropped to keep the buffer within
+    /// its limit: counted and said.
+    fn overflowed(&self, dropped: u64) {
         if dropped > 0 {
             let mut s = self.stats.lock().unwrap_or_else(|e| e.into_inner());
             s.overflowed += dropped;
@@ -179,7 +256,6 @@ impl Publisher {
                 s.overflowed
             ));
         }
-        Ok(())
     }
 
     /// Buffers a reading of `device` for publishing, its moisture on
@@ -289,9 +365,15 @@ struct Worker {
     stats: Arc<Mutex<MqttStats>>,
     /// Rows acknowledged and not yet deleted ([`ACK_BATCH`]), and when
     /// the first of them came.
-    acked: Vec<i64>,
+    acked: BTreeSet<i64>,
     acked_since: Option<Instant>,
+    /// When deleting them last failed (the next try waits
+    /// [`FLUSH_RETRY`]); they are not sent again meanwhile.
+    flush_failed: Option<Instant>,
 }
+
+/// How long after a failed delete of acknowledged rows the next is tried.
+const FLUSH_RETRY: Duration = Duration::from_secs(1);
 
 /// Why a session ended.
 enum End {
@@ -307,13 +389,19 @@ impl Worker {
             let end = self.session();
             self.stat(|s| s.connected = false);
             // What the broker acknowledged is deleted before the next
-            // session reads the buffer from its start (else sent again).
-            if let Err(e) = self.flush_acks() {
-                self.stat(|s| s.last_error = Some(e));
+            // session reads the buffer from its start (rows it could not
+            // delete are skipped there, not sent again).
+            let flushed = self.flush_acks();
+            if let Err(e) = &flushed {
+                self.stat(|s| s.last_error = Some(e.clone()));
             }
             match end {
                 End::Stopped => break,
                 End::Lost(why) => {
+                    let why = match flushed {
+                        Ok(()) => why,
+                        Err(e) => format!("{why}; and {e}"),
+                    };
                     self.stat(|s| s.last_error = Some(why));
                     if t0.elapsed() > Duration::from_secs(30) {
                         backoff = Duration::from_millis(500);
@@ -329,25 +417,40 @@ impl Worker {
     }
 
     /// Row `id` was acknowledged: deleted with the next batch.
-    fn ack(&mut self, id: i64) -> Result<(), String> {
-        self.acked.push(id);
+    fn ack(&mut self, id: i64) {
+        self.acked.insert(id);
         self.acked_since.get_or_insert_with(Instant::now);
         if self.acked.len() >= ACK_BATCH {
-            self.flush_acks()?;
+            self.flush_acks_due_now();
         }
-        Ok(())
     }
 
     /// Deletes the acknowledged rows when [`ACK_FLUSH_EVERY`] has passed
-    /// since the first of them.
-    fn flush_acks_due(&mut self) -> Result<(), String> {
+    /// since the first of them. A failure (a full disk) is said in the
+    /// status and tried again after [`FLUSH_RETRY`]; the session goes on
+    /// (it ended at each failure before, and every new session sent its
+    /// births and the start of the buffer again).
+    fn flush_acks_due(&mut self) {
         if self
             .acked_since
             .is_some_and(|t| t.elapsed() >= ACK_FLUSH_EVERY)
         {
-            self.flush_acks()?;
+            self.flush_acks_due_now();
         }
-        Ok(())
+    }
+
+    fn flush_acks_due_now(&mut self) {
+        if self.flush_failed.is_some_and(|t| t.elapsed() < FLUSH_RETRY) {
+            return;
+        }
+        if let Err(e) = self.flush_acks() {
+            let n = self.acked.len();
+            self.stat(|s| {
+                s.last_error = Some(format!(
+                    "{e} ({n} rows acknowledged by the broker stay in the buffer until they can be deleted; a restart of the gateway before then publishes them again)"
+                ));
+            });
+        }
     }
 
     /// Deletes the acknowledged rows (kept for another try if that fails).
@@ -355,11 +458,14 @@ impl Worker {
         if self.acked.is_empty() {
             return Ok(());
         }
-        self.outbox
-            .done_many(&self.acked)
-            .map_err(|e| e.to_string())?;
+        let ids: Vec<i64> = self.acked.iter().copied().collect();
+        if let Err(e) = self.outbox.done_many(&ids) {
+            self.flush_failed = Some(Instant::now());
+            return Err(e.to_string());
+        }
         self.acked.clear();
         self.acked_since = None;
+        self.flush_failed = None;
         Ok(())
     }
 
@@ -481,6 +587,12 @@ impl Worker {
                 match self.outbox.next(s.last_sent, room) {
                     Ok(rows) => {
                         for row in rows {
+                            // Acknowledged in an earlier session, not yet
+                            // deleted (a delete that failed): not again.
+                            if self.acked.contains(&row.id) {
+                                s.last_sent = row.id;
+                                continue;
+                            }
                             if let Err(e) = self.send_row(&mut s, &row) {
                                 return End::Lost(e);
                             }
@@ -498,9 +610,7 @@ impl Worker {
                 Ok(Ok(Event::Incoming(Incoming::PubAck(ack)))) => {
                     if let Some(row) = s.in_flight.remove(&ack.pkid) {
                         if let Some(id) = row {
-                            if let Err(e) = self.ack(id) {
-                                return End::Lost(e);
-                            }
+                            self.ack(id);
                         }
                         self.stat(|st| st.acknowledged += 1);
                     }
@@ -531,9 +641,7 @@ impl Worker {
                 Ok(Err(e)) => return End::Lost(format!("broker connection: {e}")),
                 Err(RecvTimeoutError::Disconnected) => return End::Lost("client closed".into()),
             }
-            if let Err(e) = self.flush_acks_due() {
-                return End::Lost(e);
-            }
+            self.flush_acks_due();
         }
     }
 
@@ -771,7 +879,7 @@ impl Worker {
                 }
                 Ok(Ok(Event::Incoming(Incoming::PubAck(ack)))) => {
                     if let Some(Some(id)) = s.in_flight.remove(&ack.pkid) {
-                        let _ = self.ack(id);
+                        self.ack(id);
                     }
                 }
                 Ok(Ok(_)) | Err(RecvTimeoutError::Timeout) => {}
@@ -1109,5 +1217,102 @@ mod body_tests {
         };
         let old = serde_json::to_string(&full).unwrap();
         assert_eq!(buffered_from_body(&old).unwrap(), (full, None));
+    }
+}
+
+#[cfg(test)]
+mod group_tests {
+    use super::*;
+    use fringe_protocol::Seq;
+
+    /// Readings handed in by many device sessions at once are written in
+    /// shared transactions: every reading whose hand-in returned Ok is in
+    /// the buffer once, each session's in its order, and every one whose
+    /// transaction failed (a row the file refuses fails its whole
+    /// transaction) returned that error and is not in the buffer.
+    #[test]
+    fn readings_handed_in_at_once_are_buffered_exactly_when_said_so() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("outbox.db");
+        let config = MqttConfig {
+            host: "127.0.0.1".into(),
+            // Nothing listens: everything stays buffered.
+            port: 1,
+            client_id: "fringe-test".into(),
+            credentials: None,
+            tls_ca_pem: None,
+            format: Format::Json {
+                prefix: "fringe".into(),
+            },
+            keep_alive: Duration::from_secs(5),
+            density: None,
+        };
+        let p = Publisher::start(config, &path, Vec::new()).unwrap();
+        // The file refuses the readings of one device, as a full disk
+        // would refuse a transaction.
+        rusqlite::Connection::open(&path)
+            .unwrap()
+            .execute_batch(
+                "CREATE TRIGGER refuse BEFORE INSERT ON outbox WHEN NEW.device = 'REFUSED' \
+                 BEGIN SELECT RAISE(ABORT, 'refused for the test'); END;",
+            )
+            .unwrap();
+        let threads = 16u32;
+        let each = 300u32;
+        let said: Vec<Vec<(u32, bool)>> = std::thread::scope(|sc| {
+            let handles: Vec<_> = (0..threads)
+                .map(|t| {
+                    let p = &p;
+                    sc.spawn(move || {
+                        (1..=each)
+                            .map(|n| {
+                                let device = if n % 97 == t {
+                                    "REFUSED".to_string()
+                                } else {
+                                    format!("D{t}")
+                                };
+                                let r = Reading {
+                                    seq: Seq {
+                                        boot: t,
+                                        counter: n,
+                                    },
+                                    ..Reading::default()
+                                };
+                                let res = p.reading(&device, &r, None);
+                                if let Err(e) = &res {
+                                    assert!(e.to_string().contains("refused for the test"), "{e}");
+                                }
+                                (n, res.is_ok())
+                            })
+                            .collect()
+                    })
+                })
+                .collect();
+            handles.into_iter().map(|h| h.join().unwrap()).collect()
+        });
+        p.stop();
+        let rows = Outbox::open(&path).unwrap().next(0, 1_000_000).unwrap();
+        let mut failed = 0;
+        for (t, said) in said.iter().enumerate() {
+            let kept: Vec<u32> = rows
+                .iter()
+                .filter(|r| matches!(&r.item, Item::Reading { device, .. } if *device == format!("D{t}")))
+                .map(|r| match &r.item {
+                    Item::Reading { json, .. } => reading_from_body(json).unwrap().seq.counter,
+                    _ => unreachable!(),
+                })
+                .collect();
+            let ok: Vec<u32> = said.iter().filter(|(_, ok)| *ok).map(|(n, _)| *n).collect();
+            assert_eq!(kept, ok, "session {t}");
+            failed += said.iter().filter(|(_, ok)| !ok).count();
+        }
+        // Some transactions failed, and with them readings of other
+        // devices (shared transactions), not only the refused ones.
+        let refused = (0..threads)
+            .map(|t| (1..=each).filter(|n| n % 97 == t).count())
+            .sum::<usize>();
+        assert!(failed >= refused, "{failed} failed, {refused} refused");
+        println!("{failed} readings failed with the {refused} refused");
+        assert_eq!(rows.len(), (threads * each) as usize - failed);
     }
 }

@@ -49,17 +49,21 @@ pub struct Row {
     pub item: Item,
 }
 
-/// Errors of the buffer (SQLite's, with what was being done).
-#[derive(Debug, thiserror::Error)]
+/// Errors of the buffer (SQLite's, with what was being done; shared by
+/// every reading of a transaction that failed).
+#[derive(Debug, Clone, thiserror::Error)]
 #[error("MQTT buffer {what}: {source}")]
 pub struct OutboxError {
     what: &'static str,
     #[source]
-    source: rusqlite::Error,
+    source: std::sync::Arc<rusqlite::Error>,
 }
 
 fn err(what: &'static str) -> impl FnOnce(rusqlite::Error) -> OutboxError {
-    move |source| OutboxError { what, source }
+    move |source| OutboxError {
+        what,
+        source: std::sync::Arc::new(source),
+    }
 }
 
 /// The buffer file.
@@ -131,6 +135,37 @@ impl Outbox {
             0
         };
         Ok((id, dropped))
+    }
+
+    /// Appends `items` (each with when it was buffered) in one
+    /// transaction, in order; returns how many of the oldest rows were
+    /// dropped to keep the buffer within its limit (checked as
+    /// [`Outbox::push_counted`] does, when an id a multiple of 1,000 is
+    /// among them).
+    ///
+    /// # Errors
+    /// When the rows cannot be written (then none is).
+    pub fn push_many(&self, items: &[(Item, u64)]) -> Result<u64, OutboxError> {
+        let tx = self.db.unchecked_transaction().map_err(err("append"))?;
+        let mut trim_at = None;
+        for (item, now_ms) in items {
+            let id = self.push(item, *now_ms)?;
+            if id % 1000 == 0 {
+                trim_at = Some(id);
+            }
+        }
+        let dropped = match trim_at {
+            Some(id) => self
+                .db
+                .execute(
+                    "DELETE FROM outbox WHERE id <= ?1",
+                    params![id - self.max_rows],
+                )
+                .map_err(err("trim"))? as u64,
+            None => 0,
+        };
+        tx.commit().map_err(err("append"))?;
+        Ok(dropped)
     }
 
     /// Appends `item`, buffered at `now_ms`.

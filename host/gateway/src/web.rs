@@ -215,7 +215,8 @@ pub fn site_json_since(
 ///
 /// # Errors
 /// The parameter at fault and why, for a 400 answer: one without the
-/// other, an `after` that is not a whole number, a parameter not known.
+/// other, an `after` that is not a whole number. Other parameters are
+/// ignored.
 pub fn parse_since(query: Option<&str>) -> Result<Option<Since>, String> {
     let (mut epoch, mut after) = (None, None);
     for pair in query.unwrap_or("").split('&').filter(|p| !p.is_empty()) {
@@ -228,11 +229,9 @@ pub fn parse_since(query: Option<&str>) -> Result<Option<Since>, String> {
                         .map_err(|_| format!("after={v:.40}: not a whole number"))?,
                 );
             }
-            _ => {
-                return Err(format!(
-                    "{k:.40}: not a parameter of /api/site (epoch, after)"
-                ))
-            }
+            // Ignored, as before the page asked from a mark (a proxy's
+            // or a tool's cache-buster).
+            _ => {}
         }
     }
     match (epoch, after) {
@@ -409,6 +408,14 @@ fn plain(status: u16, text: impl Into<Body>) -> hyper::Response<Body> {
     r
 }
 
+/// `bytes` gzipped (fast level: the answer is built every 2 s per page).
+fn gzipped(bytes: &[u8]) -> Option<Vec<u8>> {
+    use std::io::Write;
+    let mut z = flate2::write::GzEncoder::new(Vec::new(), flate2::Compression::fast());
+    z.write_all(bytes).ok()?;
+    z.finish().ok()
+}
+
 /// The answer to one request (its body, if any, is never read).
 fn answer<B>(req: &hyper::Request<B>, site: &str, table: &LiveTable) -> hyper::Response<Body> {
     use hyper::header::{self, HeaderValue};
@@ -443,8 +450,25 @@ fn answer<B>(req: &hyper::Request<B>, site: &str, table: &LiveTable) -> hyper::R
         },
         _ => return plain(404, "not found\n"),
     };
+    // Gzip where the client takes it (every browser does): a whole site
+    // is many MB of trend points (BENCHMARKS.md, "The live page's answer").
+    let gzip = body.len() > 1024
+        && headers
+            .get_all(header::ACCEPT_ENCODING)
+            .iter()
+            .filter_map(|v| v.to_str().ok())
+            .flat_map(|v| v.split(','))
+            .any(|c| c.split(';').next().is_some_and(|c| c.trim() == "gzip"));
+    let (body, gzipped) = match gzip.then(|| gzipped(body.as_bytes())).flatten() {
+        Some(z) => (z, true),
+        None => (body.into_bytes(), false),
+    };
     let mut r = hyper::Response::new(Body::from(body));
     let h = r.headers_mut();
+    if gzipped {
+        h.insert(header::CONTENT_ENCODING, HeaderValue::from_static("gzip"));
+    }
+    h.insert(header::VARY, HeaderValue::from_static("accept-encoding"));
     h.insert(header::CONTENT_TYPE, HeaderValue::from_static(kind));
     h.insert(header::CACHE_CONTROL, HeaderValue::from_static("no-store"));
     h.insert(
@@ -525,8 +549,8 @@ mod tests {
         assert!(first >= now_ms && first < now_ms + 60_000, "{h:?}");
     }
 
-    /// The page's query: both parameters or neither; anything else is
-    /// named.
+    /// The page's query: both parameters or neither; a bad one is named,
+    /// one not known is ignored.
     #[test]
     fn the_query_of_api_site_is_read_or_refused_with_its_fault() {
         assert_eq!(parse_since(None), Ok(None));
@@ -546,10 +570,56 @@ mod tests {
             parse_since(Some("after=3")),
             Err("epoch and after go together".into())
         );
-        assert_eq!(
-            parse_since(Some("units=1")),
-            Err("units: not a parameter of /api/site (epoch, after)".into())
-        );
+        assert_eq!(parse_since(Some("_=1764950400")), Ok(None));
+    }
+
+    /// `/api/site` gzipped to a client that takes gzip, plain to one that
+    /// does not; the same JSON either way.
+    #[test]
+    fn the_site_goes_gzipped_where_the_client_takes_it() {
+        use std::io::{Read, Write};
+        let mut t = LiveTable::new(Duration::from_secs(30));
+        t.history_step_ms = 0;
+        t.register(1, "PLT-A-0001");
+        for counter in 1..=200 {
+            let r = Reading {
+                seq: Seq { boot: 1, counter },
+                time_ms: 1_796_083_200_000 + u64::from(counter) * 1000,
+                moisture_pct: Some(12.5),
+                ..Reading::default()
+            };
+            t.update(1, &r, Instant::now());
+        }
+        let web = WebServer::start("127.0.0.1:0".parse().unwrap(), "Plant A", Arc::new(t)).unwrap();
+        let get = |accept: &str| -> (String, Vec<u8>) {
+            let mut c = std::net::TcpStream::connect(web.local_addr()).unwrap();
+            c.set_read_timeout(Some(Duration::from_secs(5))).unwrap();
+            write!(
+                c,
+                "GET /api/site HTTP/1.1\r\nHost: x\r\n{accept}Connection: close\r\n\r\n"
+            )
+            .unwrap();
+            let mut out = Vec::new();
+            c.read_to_end(&mut out).unwrap();
+            let at = out.windows(4).position(|w| w == b"\r\n\r\n").unwrap();
+            (
+                String::from_utf8_lossy(&out[..at]).to_lowercase(),
+                out[at + 4..].to_vec(),
+            )
+        };
+        let (head, body) = get("Accept-Encoding: br;q=1.0, gzip;q=0.8\r\n");
+        assert!(head.contains("content-encoding: gzip"), "{head}");
+        let mut json = String::new();
+        flate2::read::GzDecoder::new(&body[..])
+            .read_to_string(&mut json)
+            .unwrap();
+        let zipped: Value = serde_json::from_str(&json).unwrap();
+        let (head, body) = get("");
+        assert!(!head.contains("content-encoding"), "{head}");
+        let plain: Value = serde_json::from_slice(&body).unwrap();
+        assert_eq!(zipped["units"], plain["units"]);
+        assert_eq!(plain["units"][0]["history"].as_array().unwrap().len(), 200);
+        web.stop();
     }
 
     /// One request and its answer on a fresh connection, as text (the

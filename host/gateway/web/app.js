@@ -158,6 +158,7 @@ function silent(why) {
 const trends = new Map();
 let since = null;
 let partialAnswers = 0;
+let wholeAsks = 0;
 
 // Adds each unit's new trend points to what the page has (each point's
 // number, p[4], once), keeps as many as the gateway has, and sets the
@@ -171,7 +172,9 @@ function mergeTrends(site) {
   for (const u of site.units) {
     const key = u.unit + " " + u.serial;
     let h;
-    if (u.history_full) {
+    // (A gateway of a version before the marks sends no history_full:
+    // its trends are whole.)
+    if (u.history_full !== false) {
       h = u.history;
     } else {
       partial = true;
@@ -191,30 +194,34 @@ function mergeTrends(site) {
 }
 
 // For the browser test: the trends the page holds, and how it asks.
-window.__fringeTrends = () => ({ trends: Object.fromEntries(trends), since, partialAnswers });
+window.__fringeTrends = () => ({ trends: Object.fromEntries(trends), since, partialAnswers, wholeAsks });
 
 async function refresh() {
   try {
     // A gateway that hangs without closing the connection counts as not
-    // answering after 5 s.
-    // (AbortSignal.timeout where the browser has it; a timer otherwise.)
-    let signal;
-    if (typeof AbortSignal.timeout === "function") {
-      signal = AbortSignal.timeout(5000);
-    } else {
-      const c = new AbortController();
-      setTimeout(() => c.abort(new DOMException("no answer within 5 s", "TimeoutError")), 5000);
-      signal = c.signal;
-    }
+    // answering after 5 s without the head of its answer; the body then
+    // has 60 s (every trend whole is megabytes: over a slow link to the
+    // control room it took longer than 5 s, and the page never got one).
+    const c = new AbortController();
+    const abortAfter = (ms, why) => setTimeout(() => c.abort(new DOMException(why, "TimeoutError")), ms);
+    let timer = abortAfter(5000, "no answer within 5 s");
     const query = since ? "?epoch=" + encodeURIComponent(since.epoch) + "&after=" + since.mark : "";
-    const r = await fetch("/api/site" + query, { cache: "no-store", signal });
-    if (!r.ok) {
-      // A gateway that does not take the query (another version): ask
-      // for everything next time.
-      if (r.status === 400) since = null;
-      throw new Error("HTTP " + r.status);
+    if (!since) wholeAsks += 1;
+    let site;
+    try {
+      const r = await fetch("/api/site" + query, { cache: "no-store", signal: c.signal });
+      clearTimeout(timer);
+      timer = abortAfter(60000, "the answer took over 60 s to arrive");
+      if (!r.ok) {
+        // A gateway that does not take the query (another version): ask
+        // for everything next time.
+        if (r.status === 400) since = null;
+        throw new Error("HTTP " + r.status);
+      }
+      site = await r.json();
+    } finally {
+      clearTimeout(timer);
     }
-    const site = await r.json();
     mergeTrends(site);
     lastAnswer = Date.now();
     document.getElementById("silent").hidden = true;
@@ -224,7 +231,7 @@ async function refresh() {
     main.replaceChildren(...(site.units.length ? site.units.map(card) : [el("p", "note", "No devices in this site.")]));
     document.getElementById("updated").textContent = "Updated " + new Date().toLocaleTimeString() + ".";
   } catch (e) {
-    silent(e.name === "TimeoutError" ? "no answer within 5 s" : String(e.message || e));
+    silent(String(e.message || e));
   }
 }
 
@@ -232,7 +239,10 @@ setInterval(() => { document.getElementById("clock").textContent = new Date().to
 // The next poll 2 s after an answer (or its 5 s timeout), so that slow
 // answers do not pile up.
 async function poll() {
-  await refresh();
-  setTimeout(poll, 2000);
+  try {
+    await refresh();
+  } finally {
+    setTimeout(poll, 2000);
+  }
 }
 poll();
