@@ -500,14 +500,17 @@ fn a_stop_right_after_the_acknowledgements_leaves_none_of_them_buffered() {
 /// A buffer that refuses to delete acknowledged rows (a full disk): the
 /// status says so, the session goes on and sends nothing twice (it ended
 /// at each failed delete before, and each new session sent its births and
-/// the start of the buffer again); once deletes work again the rows go.
+/// the start of the buffer again); a new session (the broker restarted)
+/// does not send them again either; past `ACK_PENDING_MAX` rows waiting
+/// for their delete no more are sent; once deletes work again the rows
+/// go, and the status no longer says so.
 #[test]
 #[ignore = "needs mosquitto (Debian package): `cargo xtask test` runs it"]
 fn a_buffer_that_cannot_delete_keeps_its_session_and_sends_nothing_twice() {
-    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher, ACK_PENDING_MAX, WINDOW};
     use fringe_tests::servers::Mosquitto;
 
-    let broker = Mosquitto::start();
+    let mut broker = Mosquitto::start();
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("outbox.db");
     let device = "PLT-A-0006";
@@ -567,12 +570,43 @@ fn a_buffer_that_cannot_delete_keeps_its_session_and_sends_nothing_twice() {
         p.stats().acknowledged >= 400 + births
     });
     assert_eq!(p.queued().unwrap(), 400, "deleted although refused");
+    assert_eq!(p.stats().sessions, 1, "{:?}", p.stats());
+    // A new session: the 400 are not sent again; 1,000 more are sent
+    // until ACK_PENDING_MAX wait for their delete.
+    broker.stop();
+    broker.restart();
+    wait("a second session", &|| {
+        let s = p.stats();
+        s.sessions == 2 && s.connected
+    });
+    for n in 401..=1400u32 {
+        p.reading(device, &reading(1, n, Some(12.0), Flags::empty()), None)
+            .unwrap();
+    }
+    let rows = ACK_PENDING_MAX as u64;
+    wait("the rows up to the limit acknowledged", &|| {
+        p.stats().acknowledged >= rows + 2 * births
+    });
+    std::thread::sleep(Duration::from_millis(1500));
+    let s = p.stats();
+    assert!(
+        s.acknowledged <= rows + 2 * births + WINDOW as u64,
+        "past the limit: {s:?}"
+    );
+    assert!(
+        s.last_error
+            .as_deref()
+            .is_some_and(|e| e.contains("stay in the buffer")),
+        "{s:?}"
+    );
+    assert_eq!(p.queued().unwrap(), 1400);
     db.execute_batch("DROP TRIGGER keep").unwrap();
     wait("the buffer emptied", &|| p.queued().unwrap() == 0);
     std::thread::sleep(Duration::from_millis(300));
     let s = p.stats();
-    assert_eq!(s.sessions, 1, "{s:?}");
-    assert_eq!(s.acknowledged, 400 + births, "sent twice: {s:?}");
+    assert_eq!(s.sessions, 2, "{s:?}");
+    assert_eq!(s.acknowledged, 1400 + 2 * births, "sent twice: {s:?}");
+    assert_eq!(s.last_error, None, "{s:?}");
     p.stop();
 }
 

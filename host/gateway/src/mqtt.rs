@@ -50,6 +50,12 @@ pub const ACK_BATCH: usize = 256;
 /// See [`ACK_BATCH`].
 pub const ACK_FLUSH_EVERY: Duration = Duration::from_millis(100);
 
+/// Acknowledged rows waiting for their delete at most: while deletes fail
+/// (a full disk), no more rows are sent past this, so that what waits in
+/// memory, the retried transaction and what a restart sends again stay
+/// bounded; the rows not sent wait in the buffer.
+pub const ACK_PENDING_MAX: usize = 4 * ACK_BATCH;
+
 /// Least time between two answers to Rebirth requests (1 s): a burst of
 /// them is answered at most once a second, the last answer after its last
 /// request.
@@ -225,11 +231,15 @@ impl Publisher {
             let rows = std::mem::take(&mut g.waiting);
             let first = g.written_below;
             drop(g);
-            let result = self
-                .outbox
-                .lock()
-                .unwrap_or_else(|e| e.into_inner())
-                .push_many(&rows);
+            // (A panic in the write is that transaction's failure: the
+            // sessions waiting on it must not wait for ever.)
+            let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                self.outbox
+                    .lock()
+                    .unwrap_or_else(|e| e.into_inner())
+                    .push_many(&rows)
+            }))
+            .unwrap_or_else(|_| Err(crate::outbox::OutboxError::internal("write panicked")));
             g = lock();
             g.writing = false;
             g.written_below = first + rows.len() as u64;
@@ -465,7 +475,17 @@ impl Worker {
         }
         self.acked.clear();
         self.acked_since = None;
-        self.flush_failed = None;
+        if self.flush_failed.take().is_some() {
+            // The failure said in the status is over.
+            self.stat(|s| {
+                if s.last_error
+                    .as_deref()
+                    .is_some_and(|e| e.contains("stay in the buffer until they can be deleted"))
+                {
+                    s.last_error = None;
+                }
+            });
+        }
         Ok(())
     }
 
@@ -537,7 +557,10 @@ impl Worker {
         self.stat(|s| {
             s.connected = true;
             s.sessions += 1;
-            s.last_error = None;
+            // (A delete of acknowledged rows that still fails stays said.)
+            if self.flush_failed.is_none() {
+                s.last_error = None;
+            }
         });
         let mut s = Session {
             client,
@@ -582,7 +605,9 @@ impl Worker {
                 self.goodbye(&mut s, &conn, bd_seq);
                 return End::Stopped;
             }
-            if s.in_flight.len() + s.awaiting_pkid.len() < WINDOW {
+            if s.in_flight.len() + s.awaiting_pkid.len() < WINDOW
+                && self.acked.len() < ACK_PENDING_MAX
+            {
                 let room = WINDOW - s.in_flight.len() - s.awaiting_pkid.len();
                 match self.outbox.next(s.last_sent, room) {
                     Ok(rows) => {
@@ -797,8 +822,10 @@ impl Worker {
                 if let Item::DeviceLost { .. } = row.item {
                     self.lost.insert(device.clone());
                     if !s.born.remove(&device) {
-                        // Nothing to declare dead in this session.
-                        return self.outbox.done(row.id).map_err(|e| e.to_string());
+                        // Nothing to declare dead in this session (done
+                        // with it, deleted with the next batch).
+                        self.ack(row.id);
+                        return Ok(());
                     }
                     let seq = s.next_seq();
                     let p = sparkplug::device_death(seq, now_ms());
@@ -840,7 +867,8 @@ impl Worker {
                                 s.dropped += 1;
                                 s.last_error = Some(why);
                             });
-                            return self.outbox.done(row.id).map_err(|e| e.to_string());
+                            self.ack(row.id);
+                            return Ok(());
                         }
                     },
                     Item::Alarm { text, time_ms, .. } => {

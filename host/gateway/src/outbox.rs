@@ -59,6 +59,19 @@ pub struct OutboxError {
     source: std::sync::Arc<rusqlite::Error>,
 }
 
+impl OutboxError {
+    /// A failure of the buffer's own code (not SQLite's), in words.
+    pub fn internal(why: &str) -> Self {
+        OutboxError {
+            what: "write",
+            source: std::sync::Arc::new(rusqlite::Error::SqliteFailure(
+                rusqlite::ffi::Error::new(rusqlite::ffi::SQLITE_INTERNAL),
+                Some(why.to_string()),
+            )),
+        }
+    }
+}
+
 fn err(what: &'static str) -> impl FnOnce(rusqlite::Error) -> OutboxError {
     move |source| OutboxError {
         what,
@@ -116,32 +129,11 @@ impl Outbox {
         })
     }
 
-    /// Appends `item`, buffered at `now_ms`; returns its id and how many
-    /// of the oldest rows were dropped to keep the buffer within its
-    /// limit (checked every 1,000 rows, by id).
-    ///
-    /// # Errors
-    /// When the row cannot be written (disk full, read-only).
-    pub fn push_counted(&self, item: &Item, now_ms: u64) -> Result<(i64, u64), OutboxError> {
-        let id = self.push(item, now_ms)?;
-        let dropped = if id % 1000 == 0 {
-            self.db
-                .execute(
-                    "DELETE FROM outbox WHERE id <= ?1",
-                    params![id - self.max_rows],
-                )
-                .map_err(err("trim"))? as u64
-        } else {
-            0
-        };
-        Ok((id, dropped))
-    }
-
     /// Appends `items` (each with when it was buffered) in one
     /// transaction, in order; returns how many of the oldest rows were
-    /// dropped to keep the buffer within its limit (checked as
-    /// [`Outbox::push_counted`] does, when an id a multiple of 1,000 is
-    /// among them).
+    /// dropped to keep the buffer within its limit (checked when an id
+    /// that is a multiple of 1,000 is among them: the rows from the
+    /// limit below it on are kept).
     ///
     /// # Errors
     /// When the rows cannot be written (then none is).
@@ -306,18 +298,23 @@ mod tests {
     use super::*;
 
     /// A buffer kept to 2,000 rows while nothing is acknowledged: 10,000
-    /// pushed, at most 2,999 stay (trimmed every 1,000), the newest are
-    /// kept in order, and the dropped are counted.
+    /// written in transactions of 37, at most 2,999 stay (trimmed every
+    /// 1,000), the newest are kept in order, and the dropped are counted.
     #[test]
     fn the_buffer_keeps_its_newest_rows_within_its_limit() {
         let dir = tempfile::tempdir().unwrap();
         let o = Outbox::open_with_limit(&dir.path().join("b"), 2000).unwrap();
         let mut dropped = 0;
-        for i in 0..10_000u64 {
-            let item = Item::DeviceLost {
-                device: format!("D{i}"),
-            };
-            dropped += o.push_counted(&item, i).unwrap().1;
+        let items: Vec<(Item, u64)> = (0..10_000u64)
+            .map(|i| {
+                let item = Item::DeviceLost {
+                    device: format!("D{i}"),
+                };
+                (item, i)
+            })
+            .collect();
+        for batch in items.chunks(37) {
+            dropped += o.push_many(batch).unwrap();
         }
         let left = o.len().unwrap();
         assert!((2000..3000).contains(&left), "{left}");
