@@ -610,6 +610,82 @@ fn a_buffer_that_cannot_delete_keeps_its_session_and_sends_nothing_twice() {
     p.stop();
 }
 
+/// Plain JSON: a device whose link is lost is said lost once on its
+/// status topic (the gateway buffers a loss at each failed try to reach
+/// it), and back just before its next reading (nothing said it before: a
+/// consumer keying on the status showed it lost for good).
+#[test]
+#[ignore = "needs FRINGE_PYTHON (the venv) and mosquitto: `cargo xtask test` runs it"]
+fn plain_json_says_a_device_lost_once_and_back_before_its_next_reading() {
+    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_tests::servers::Mosquitto;
+
+    let broker = Mosquitto::start();
+    let collector = Collector::start(broker.port, "fringe/#");
+    let dir = tempfile::tempdir().unwrap();
+    let device = "PLT-A-0007";
+    let p = Publisher::start(
+        MqttConfig {
+            host: "127.0.0.1".into(),
+            port: broker.port,
+            client_id: "fringe-gw-7".into(),
+            credentials: None,
+            tls_ca_pem: None,
+            format: Format::Json {
+                prefix: "fringe".into(),
+            },
+            density: None,
+            keep_alive: Duration::from_secs(5),
+        },
+        &dir.path().join("outbox.db"),
+        vec![device.to_string()],
+    )
+    .expect("publisher");
+    p.reading(device, &reading(1, 1, Some(12.0), Flags::empty()), None)
+        .unwrap();
+    for _ in 0..3 {
+        p.device_lost(device).unwrap();
+    }
+    p.reading(device, &reading(1, 2, Some(12.5), Flags::empty()), None)
+        .unwrap();
+    p.device_lost(device).unwrap();
+    p.reading(device, &reading(1, 3, Some(12.75), Flags::empty()), None)
+        .unwrap();
+    collector.wait("three readings", |m| {
+        m.iter()
+            .filter(|x| x["topic"] == format!("fringe/{device}/reading"))
+            .count()
+            >= 3
+    });
+    std::thread::sleep(Duration::from_millis(300));
+    let said: Vec<String> = collector
+        .messages()
+        .iter()
+        .filter_map(|m| {
+            let topic = m["topic"].as_str()?;
+            Some(match topic.rsplit('/').next()? {
+                "reading" => format!("reading {}", m["json"]["seq"]["counter"]),
+                "status" => format!("connected {}", m["json"]["connected"]),
+                other => other.to_string(),
+            })
+        })
+        .collect();
+    assert_eq!(
+        said,
+        [
+            "reading 1",
+            "connected false",
+            "connected true",
+            "reading 2",
+            "connected false",
+            "connected true",
+            "reading 3"
+        ],
+        "{said:?}"
+    );
+    p.stop();
+}
+
 /// A TCP relay to `to` that holds back everything the server sends for
 /// `delay` at the start of each connection: a broker slow to accept (TLS
 /// across a wide area network, an authentication plugin). Its port.

@@ -796,6 +796,18 @@ impl Worker {
             Format::Json { prefix } => {
                 let (topic, body) = match &row.item {
                     Item::Reading { device, json } => {
+                        // Back after its link was lost: said on its status
+                        // topic before the reading (a consumer that keys
+                        // on the status showed it lost for good).
+                        if self.lost.remove(device) {
+                            s.publish(
+                                format!("{prefix}/{device}/status"),
+                                serde_json::json!({"connected": true})
+                                    .to_string()
+                                    .into_bytes(),
+                                None,
+                            )?;
+                        }
                         (format!("{prefix}/{device}/reading"), json.clone())
                     }
                     Item::Alarm {
@@ -806,10 +818,18 @@ impl Worker {
                         format!("{prefix}/{device}/alarm"),
                         serde_json::json!({"time_ms": time_ms, "alarm": text}).to_string(),
                     ),
-                    Item::DeviceLost { device } => (
-                        format!("{prefix}/{device}/status"),
-                        serde_json::json!({"connected": false}).to_string(),
-                    ),
+                    Item::DeviceLost { device } => {
+                        // Said once: the session buffers one at each
+                        // failed try to reach the device again.
+                        if !self.lost.insert(device.clone()) {
+                            self.ack(row.id);
+                            return Ok(());
+                        }
+                        (
+                            format!("{prefix}/{device}/status"),
+                            serde_json::json!({"connected": false}).to_string(),
+                        )
+                    }
                 };
                 s.publish(topic, body.into_bytes(), Some(row.id))
             }
