@@ -34,6 +34,25 @@ fn reading(boot: u32, counter: u32, moisture: Option<f32>, flags: Flags) -> Read
     }
 }
 
+/// A publisher's settings for the test broker on `port` (no TLS, no
+/// credentials, keep-alive 5 s).
+fn mqtt_config(
+    port: u16,
+    client_id: &str,
+    format: fringe_gateway::mqtt::Format,
+) -> fringe_gateway::mqtt::MqttConfig {
+    fringe_gateway::mqtt::MqttConfig {
+        host: "127.0.0.1".into(),
+        port,
+        client_id: client_id.into(),
+        credentials: None,
+        tls_ca_pem: None,
+        format,
+        density: None,
+        keep_alive: Duration::from_secs(5),
+    }
+}
+
 /// pymodbus reads every register of three units of a running server; the
 /// float32 and scaled values it decodes are the readings put in; a read
 /// past the map gets exception 2, an unknown unit exception 11 (0x0B), a
@@ -437,7 +456,7 @@ fn a_broker_lost_mid_stream_loses_nothing_and_repeats_only_what_was_in_flight() 
 #[test]
 #[ignore = "needs mosquitto (Debian package): `cargo xtask test` runs it"]
 fn a_stop_right_after_the_acknowledgements_leaves_none_of_them_buffered() {
-    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_gateway::mqtt::{Format, Publisher};
     use fringe_gateway::outbox::Outbox;
     use fringe_tests::servers::Mosquitto;
 
@@ -445,25 +464,21 @@ fn a_stop_right_after_the_acknowledgements_leaves_none_of_them_buffered() {
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("outbox.db");
     let device = "PLT-A-0004";
-    {
-        // Buffered before the publisher starts: sent as fast as it can.
-        let p = Publisher::start(
-            MqttConfig {
-                host: "127.0.0.1".into(),
-                port: 1,
-                client_id: "fringe-gw-5".into(),
-                credentials: None,
-                tls_ca_pem: None,
-                format: Format::Json {
-                    prefix: "fringe".into(),
-                },
-                density: None,
-                keep_alive: Duration::from_secs(5),
-            },
+    let start = |port: u16| {
+        let format = Format::Json {
+            prefix: "fringe".into(),
+        };
+        Publisher::start(
+            mqtt_config(port, "fringe-gw-5", format),
             &path,
             vec![device.to_string()],
         )
-        .expect("publisher");
+        .expect("publisher")
+    };
+    {
+        // Buffered before the publisher starts (nothing listens on port
+        // 1): sent as fast as it can.
+        let p = start(1);
         for n in 1..=1000u32 {
             p.reading(device, &reading(1, n, Some(12.0), Flags::empty()), None)
                 .unwrap();
@@ -471,23 +486,7 @@ fn a_stop_right_after_the_acknowledgements_leaves_none_of_them_buffered() {
         p.stop();
     }
     assert_eq!(Outbox::open(&path).unwrap().len().unwrap(), 1000);
-    let p = Publisher::start(
-        MqttConfig {
-            host: "127.0.0.1".into(),
-            port: broker.port,
-            client_id: "fringe-gw-5".into(),
-            credentials: None,
-            tls_ca_pem: None,
-            format: Format::Json {
-                prefix: "fringe".into(),
-            },
-            density: None,
-            keep_alive: Duration::from_secs(5),
-        },
-        &path,
-        vec![device.to_string()],
-    )
-    .expect("publisher");
+    let p = start(broker.port);
     let t0 = Instant::now();
     while p.stats().acknowledged < 1000 {
         assert!(t0.elapsed() < Duration::from_secs(60), "{:?}", p.stats());
@@ -507,7 +506,7 @@ fn a_stop_right_after_the_acknowledgements_leaves_none_of_them_buffered() {
 #[test]
 #[ignore = "needs mosquitto (Debian package): `cargo xtask test` runs it"]
 fn a_buffer_that_cannot_delete_keeps_its_session_and_sends_nothing_twice() {
-    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher, ACK_PENDING_MAX, WINDOW};
+    use fringe_gateway::mqtt::{Format, Publisher, ACK_PENDING_MAX, WINDOW};
     use fringe_tests::servers::Mosquitto;
 
     let mut broker = Mosquitto::start();
@@ -515,19 +514,14 @@ fn a_buffer_that_cannot_delete_keeps_its_session_and_sends_nothing_twice() {
     let path = dir.path().join("outbox.db");
     let device = "PLT-A-0006";
     let p = Publisher::start(
-        MqttConfig {
-            host: "127.0.0.1".into(),
-            port: broker.port,
-            client_id: "fringe-gw-6".into(),
-            credentials: None,
-            tls_ca_pem: None,
-            format: Format::Sparkplug {
+        mqtt_config(
+            broker.port,
+            "fringe-gw-6",
+            Format::Sparkplug {
                 group: "plant-a".into(),
                 edge_node: "gw-6".into(),
             },
-            density: None,
-            keep_alive: Duration::from_secs(5),
-        },
+        ),
         &path,
         vec![device.to_string()],
     )
@@ -617,7 +611,7 @@ fn a_buffer_that_cannot_delete_keeps_its_session_and_sends_nothing_twice() {
 #[test]
 #[ignore = "needs FRINGE_PYTHON (the venv) and mosquitto: `cargo xtask test` runs it"]
 fn plain_json_says_a_device_lost_once_and_back_before_its_next_reading() {
-    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_gateway::mqtt::{Format, Publisher};
     use fringe_tests::servers::Mosquitto;
 
     let broker = Mosquitto::start();
@@ -625,18 +619,13 @@ fn plain_json_says_a_device_lost_once_and_back_before_its_next_reading() {
     let dir = tempfile::tempdir().unwrap();
     let device = "PLT-A-0007";
     let p = Publisher::start(
-        MqttConfig {
-            host: "127.0.0.1".into(),
-            port: broker.port,
-            client_id: "fringe-gw-7".into(),
-            credentials: None,
-            tls_ca_pem: None,
-            format: Format::Json {
+        mqtt_config(
+            broker.port,
+            "fringe-gw-7",
+            Format::Json {
                 prefix: "fringe".into(),
             },
-            density: None,
-            keep_alive: Duration::from_secs(5),
-        },
+        ),
         &dir.path().join("outbox.db"),
         vec![device.to_string()],
     )
@@ -803,28 +792,23 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
     use std::io::BufRead;
 
     let table = Arc::new(LiveTable::new(Duration::from_secs(60)));
+    let put = |unit: u8, counter: u32, moisture: f32, flags: Flags| {
+        table.update(
+            unit,
+            &reading(1, counter, Some(moisture), flags),
+            Instant::now(),
+        );
+    };
     table.register(1, "PLT-A-0001");
     table.set_tag(1, "Line 1 dryer outlet");
     table.register(2, "PLT-A-0002");
     table.register(3, "PLT-A-0003");
-    table.update(
-        1,
-        &reading(1, 1, Some(14.37), Flags::empty()),
-        Instant::now(),
-    );
+    put(1, 1, 14.37, Flags::empty());
     // A whole trend (a point per 10 s of reading time, 1,440 kept).
     for k in 1..=1450 {
-        table.update(
-            2,
-            &reading(1, 10 * k, Some(9.5), Flags::OUT_OF_RANGE),
-            Instant::now(),
-        );
+        put(2, 10 * k, 9.5, Flags::OUT_OF_RANGE);
     }
-    table.update(
-        3,
-        &reading(1, 1, Some(7.25), Flags::empty()),
-        Instant::now(),
-    );
+    put(3, 1, 7.25, Flags::empty());
     // Its calibration reports on a dry basis: the card says so.
     table.set_calibration(
         1,
@@ -854,25 +838,13 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
     // New trend points (one per 10 s of reading time) on two units, and
     // another device on unit 3, while the page asks only for what it has
     // not had.
-    table.update(
-        1,
-        &reading(1, 12, Some(14.9), Flags::empty()),
-        Instant::now(),
-    );
+    put(1, 12, 14.9, Flags::empty());
     for k in 1451..=1453 {
-        table.update(
-            2,
-            &reading(1, 10 * k, Some(9.75), Flags::OUT_OF_RANGE),
-            Instant::now(),
-        );
+        put(2, 10 * k, 9.75, Flags::OUT_OF_RANGE);
     }
     table.register(3, "PLT-A-0099");
-    table.update(3, &reading(1, 5, Some(7.5), Flags::empty()), Instant::now());
-    table.update(
-        1,
-        &reading(1, 22, Some(15.02), Flags::empty()),
-        Instant::now(),
-    );
+    put(3, 5, 7.5, Flags::empty());
+    put(1, 22, 15.02, Flags::empty());
     let second: Value = serde_json::from_str(&lines.next().expect("second line").unwrap()).unwrap();
     // The gateway goes away: within seconds every card is grey with no
     // value and a banner says since when (found by review: the last values
