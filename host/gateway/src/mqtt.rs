@@ -181,6 +181,7 @@ impl Publisher {
                     outbox: worker_box,
                     devices: devices.into_iter().collect(),
                     lost: BTreeSet::new(),
+                    said_connected: HashMap::new(),
                     boot_origins: HashMap::new(),
                     stop: s,
                     stats: st,
@@ -366,6 +367,9 @@ struct Worker {
     /// Devices whose link was lost (a DeviceLost row) and no reading has
     /// come from since: not born again at a new session or a Rebirth.
     lost: BTreeSet<String>,
+    /// Plain JSON: what this run last published on each device's status
+    /// topic (`connected` true or false).
+    said_connected: HashMap<String, bool>,
     /// Per device and boot whose clock was unset: the wall-clock time of
     /// its time since boot 0, from a reading streamed as it was taken (its
     /// buffering time less its time since boot), for the readings of that
@@ -796,10 +800,11 @@ impl Worker {
             Format::Json { prefix } => {
                 let (topic, body) = match &row.item {
                     Item::Reading { device, json } => {
-                        // Back after its link was lost: said on its status
-                        // topic before the reading (a consumer that keys
-                        // on the status showed it lost for good).
-                        if self.lost.remove(device) {
+                        // Connected, said on its status topic before its
+                        // first reading of this run and its first after
+                        // its link was lost (a consumer that keys on the
+                        // status showed it lost for good).
+                        if self.said_connected.insert(device.clone(), true) != Some(true) {
                             s.publish(
                                 format!("{prefix}/{device}/status"),
                                 serde_json::json!({"connected": true})
@@ -821,7 +826,7 @@ impl Worker {
                     Item::DeviceLost { device } => {
                         // Said once: the session buffers one at each
                         // failed try to reach the device again.
-                        if !self.lost.insert(device.clone()) {
+                        if self.said_connected.insert(device.clone(), false) == Some(false) {
                             self.ack(row.id);
                             return Ok(());
                         }
