@@ -605,7 +605,7 @@ fn a_buffer_that_cannot_delete_keeps_its_session_and_sends_nothing_twice() {
 }
 
 /// Plain JSON: a device is said connected on its status topic before its
-/// first reading of the gateway's run, lost once when its link is lost
+/// first reading of the broker session, lost once when its link is lost
 /// (the gateway buffers a loss at each failed try to reach it), and back
 /// just before its next reading (nothing said it before: a consumer
 /// keying on the status showed it lost for good, also across a restart of
@@ -616,7 +616,7 @@ fn plain_json_says_a_device_lost_once_and_back_before_its_next_reading() {
     use fringe_gateway::mqtt::{Format, Publisher};
     use fringe_tests::servers::Mosquitto;
 
-    let broker = Mosquitto::start();
+    let mut broker = Mosquitto::start();
     let collector = Collector::start(broker.port, "fringe/#");
     let dir = tempfile::tempdir().unwrap();
     let device = "PLT-A-0007";
@@ -642,12 +642,33 @@ fn plain_json_says_a_device_lost_once_and_back_before_its_next_reading() {
     p.device_lost(device).unwrap();
     p.reading(device, &reading(1, 3, Some(12.75), Flags::empty()), None)
         .unwrap();
-    collector.wait("three readings", |m| {
+    let readings = |m: &[Value]| {
         m.iter()
             .filter(|x| x["topic"] == format!("fringe/{device}/reading"))
             .count()
-            >= 3
-    });
+    };
+    collector.wait("three readings", |m| readings(m) >= 3);
+    // A new broker session: the device is said connected again before
+    // its next reading (what the last session said may not have reached
+    // the broker).
+    // (Once all eight are acknowledged and deleted: what the broker has
+    // not acknowledged when it stops is sent again, QoS 1.)
+    fringe_tests::poll_until(
+        fringe_tests::DEADLINE,
+        || format!("not all acknowledged: {:?}", p.stats()),
+        || p.stats().acknowledged >= 8 && p.queued().is_ok_and(|n| n == 0),
+    );
+    let sessions = p.stats().sessions;
+    broker.stop();
+    broker.restart();
+    fringe_tests::poll_until(
+        fringe_tests::DEADLINE,
+        || format!("no new session: {:?}", p.stats()),
+        || p.stats().sessions > sessions && p.stats().connected,
+    );
+    p.reading(device, &reading(1, 4, Some(13.0), Flags::empty()), None)
+        .unwrap();
+    collector.wait("four readings", |m| readings(m) >= 4);
     std::thread::sleep(Duration::from_millis(300));
     let said: Vec<String> = collector
         .messages()
@@ -671,7 +692,9 @@ fn plain_json_says_a_device_lost_once_and_back_before_its_next_reading() {
             "reading 2",
             "connected false",
             "connected true",
-            "reading 3"
+            "reading 3",
+            "connected true",
+            "reading 4"
         ],
         "{said:?}"
     );

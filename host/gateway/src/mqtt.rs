@@ -367,8 +367,8 @@ struct Worker {
     /// Devices whose link was lost (a DeviceLost row) and no reading has
     /// come from since: not born again at a new session or a Rebirth.
     lost: BTreeSet<String>,
-    /// Plain JSON: what this run last published on each device's status
-    /// topic (`connected` true or false).
+    /// Plain JSON: what this session last published on each device's
+    /// status topic (`connected` true or false).
     said_connected: HashMap<String, bool>,
     /// Per device and boot whose clock was unset: the wall-clock time of
     /// its time since boot 0, from a reading streamed as it was taken (its
@@ -385,6 +385,10 @@ struct Worker {
     /// [`FLUSH_RETRY`]); they are not sent again meanwhile.
     flush_failed: Option<Instant>,
 }
+
+/// What the status says of acknowledged rows a delete failed for (and is
+/// cleared by once one succeeds).
+const STAY: &str = "stay in the buffer until they can be deleted";
 
 /// How long after a failed delete of acknowledged rows the next is tried.
 const FLUSH_RETRY: Duration = Duration::from_secs(1);
@@ -458,16 +462,13 @@ impl Worker {
             return;
         }
         if let Err(e) = self.flush_acks() {
-            let n = self.acked.len();
-            self.stat(|s| {
-                s.last_error = Some(format!(
-                    "{e} ({n} rows acknowledged by the broker stay in the buffer until they can be deleted; a restart of the gateway before then publishes them again)"
-                ));
-            });
+            self.stat(|s| s.last_error = Some(e));
         }
     }
 
-    /// Deletes the acknowledged rows (kept for another try if that fails).
+    /// Deletes the acknowledged rows (kept for another try if that
+    /// fails; the error then says so, in words the status clears by once
+    /// a delete succeeds).
     fn flush_acks(&mut self) -> Result<(), String> {
         if self.acked.is_empty() {
             return Ok(());
@@ -475,17 +476,17 @@ impl Worker {
         let ids: Vec<i64> = self.acked.iter().copied().collect();
         if let Err(e) = self.outbox.done_many(&ids) {
             self.flush_failed = Some(Instant::now());
-            return Err(e.to_string());
+            return Err(format!(
+                "{e} ({} rows acknowledged by the broker {STAY}; a restart of the gateway before then publishes them again)",
+                ids.len()
+            ));
         }
         self.acked.clear();
         self.acked_since = None;
         if self.flush_failed.take().is_some() {
             // The failure said in the status is over.
             self.stat(|s| {
-                if s.last_error
-                    .as_deref()
-                    .is_some_and(|e| e.contains("stay in the buffer until they can be deleted"))
-                {
+                if s.last_error.as_deref().is_some_and(|e| e.contains(STAY)) {
                     s.last_error = None;
                 }
             });
@@ -566,6 +567,9 @@ impl Worker {
                 s.last_error = None;
             }
         });
+        // Plain JSON: each session says each device's status again (what
+        // the last one said may not have reached the broker).
+        self.said_connected.clear();
         let mut s = Session {
             client,
             seq: 0,
