@@ -68,6 +68,12 @@ def main(url, serial, first, second, shot):
         # more polls with nothing new, what it holds is what the gateway has.
         time.sleep(4.5)
         held = driver.execute_script("return window.__fringeTrends();")
+        # Each card's drawn trend ends at the last point the page holds (a
+        # trend is drawn again only when its points change).
+        drawn = driver.execute_script(
+            "return Array.from(document.querySelectorAll('section.card')).map("
+            "c => [c.dataset.serial, (c.querySelector('svg.trend') || {getAttribute: () => null}).getAttribute('data-last')]);")
+        last = {k.split(" ", 1)[1]: (str(v[-1][4]) if v else "") for k, v in held["trends"].items()}
         with urllib.request.urlopen(url + "api/site", timeout=10) as r:
             whole = json.load(r)
         gateway = {f"{u['unit']} {u['serial']}": u["history"] for u in whole["units"]}
@@ -80,7 +86,8 @@ def main(url, serial, first, second, shot):
                           "trend_points": {k: len(v) for k, v in held["trends"].items()},
                           "asks_from_mark": held["since"] is not None,
                           "partial_answers": held["partialAnswers"],
-                          "whole_asks": held["wholeAsks"]}), flush=True)
+                          "whole_asks": held["wholeAsks"],
+                          "drawn_match": all(last.get(s) == d for s, d in drawn) and len(drawn) == len(last)}), flush=True)
         sys.stdin.readline()
         gone = wait_for(driver, serial, "no value", 30)
         banner = driver.find_element(By.ID, "silent")

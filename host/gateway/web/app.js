@@ -69,6 +69,24 @@ function trend(history) {
   return s;
 }
 
+// Each unit's drawn trend, kept while its points are the same (a trend
+// gains a point every 10 s at most; drawing all 247 of a full site at
+// every answer took most of the page's time; BENCHMARKS.md).
+const drawn = new Map();
+
+function trendOf(u) {
+  const key = u.unit + " " + u.serial;
+  const h = u.history;
+  const same = h.length === 0 ? "0" : h.length + " " + h[0][4] + " " + h[h.length - 1][4];
+  const had = drawn.get(key);
+  if (had && had.same === same) return had.svg;
+  const svg = trend(h);
+  // The last point drawn, for the browser test.
+  svg.setAttribute("data-last", h.length ? String(h[h.length - 1][4]) : "");
+  drawn.set(key, { same, svg });
+  return svg;
+}
+
 function card(u) {
   const noValue = (u.status & 1) !== 0;
   const failure = (u.status & (4 | 256)) !== 0;
@@ -109,7 +127,7 @@ function card(u) {
     }
     c.appendChild(fl);
   }
-  c.appendChild(trend(u.history));
+  c.appendChild(trendOf(u));
   if (u.alarms.length) {
     const al = el("ul", "alarms");
     for (const a of u.alarms.slice(-3).reverse()) {
@@ -159,6 +177,8 @@ const trends = new Map();
 let since = null;
 let partialAnswers = 0;
 let wholeAsks = 0;
+// How long the last answers took to merge and draw, ms (for the benchmark).
+const drawMs = [];
 
 // Adds each unit's new trend points to what the page has (each point's
 // number, p[4], once), keeps as many as the gateway has, and sets the
@@ -189,12 +209,13 @@ function mergeTrends(site) {
   }
   trends.clear();
   for (const [k, v] of now) trends.set(k, v);
+  for (const k of drawn.keys()) if (!now.has(k)) drawn.delete(k);
   since = whole ? { epoch: site.epoch, mark: site.mark } : null;
   if (partial) partialAnswers += 1;
 }
 
 // For the browser test: the trends the page holds, and how it asks.
-window.__fringeTrends = () => ({ trends: Object.fromEntries(trends), since, partialAnswers, wholeAsks });
+window.__fringeTrends = () => ({ trends: Object.fromEntries(trends), since, partialAnswers, wholeAsks, drawMs });
 
 async function refresh() {
   try {
@@ -222,6 +243,7 @@ async function refresh() {
     } finally {
       clearTimeout(timer);
     }
+    const drawStart = performance.now();
     mergeTrends(site);
     lastAnswer = Date.now();
     document.getElementById("silent").hidden = true;
@@ -230,6 +252,8 @@ async function refresh() {
     const main = document.getElementById("units");
     main.replaceChildren(...(site.units.length ? site.units.map(card) : [el("p", "note", "No devices in this site.")]));
     document.getElementById("updated").textContent = "Updated " + new Date().toLocaleTimeString() + ".";
+    drawMs.push(performance.now() - drawStart);
+    if (drawMs.length > 100) drawMs.shift();
   } catch (e) {
     silent(String(e.message || e));
   }
