@@ -47,13 +47,18 @@ def wait_for(driver, serial, text, limit):
     raise SystemExit(f"after {limit} s the card of {serial} shows {moisture_text(driver, serial)!r}, not {text!r}")
 
 
-def main(url, serial, first, second, shot):
+def chromium():
+    """Debian's headless Chromium through its chromedriver."""
     opts = webdriver.ChromeOptions()
     opts.binary_location = "/usr/bin/chromium"
     for a in ("--headless=new", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
               "--disable-component-update", "--disable-sync", "--no-first-run", "--window-size=1920,1080"):
         opts.add_argument(a)
-    driver = webdriver.Chrome(service=Service("/usr/bin/chromedriver"), options=opts)
+    return webdriver.Chrome(service=Service("/usr/bin/chromedriver"), options=opts)
+
+
+def main(url, serial, first, second, shot):
+    driver = chromium()
     try:
         driver.get(url)
         wait_for(driver, serial, first, 60)

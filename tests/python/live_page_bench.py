@@ -1,4 +1,4 @@
-"""Opens the live page of `live_page_serve` (a full site) in headless
+"""Opens the live page of `live_page_answer serve` (a full site) in headless
 Chromium (Debian packages chromium and chromium-driver) through Selenium
 and prints how long the page took to merge and draw each answer, ms (a
 benchmark, not a test).
@@ -10,17 +10,11 @@ import json
 import sys
 import time
 
-from selenium import webdriver
-from selenium.webdriver.chrome.service import Service
+from live_page import chromium
 
 
 def main(url, seconds):
-    opts = webdriver.ChromeOptions()
-    opts.binary_location = "/usr/bin/chromium"
-    for a in ("--headless=new", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-              "--disable-component-update", "--disable-sync", "--no-first-run", "--window-size=1920,1080"):
-        opts.add_argument(a)
-    driver = webdriver.Chrome(service=Service("/usr/bin/chromedriver"), options=opts)
+    driver = chromium()
     try:
         driver.get(url)
         time.sleep(float(seconds))

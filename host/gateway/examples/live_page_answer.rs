@@ -2,6 +2,12 @@
 //! benchmark, not a test):
 //! `cargo run --release -p fringe-gateway --example live_page_answer -- [UNITS]`.
 //!
+//! With `serve [UNITS] [SECONDS]` first: serves the page of that full site
+//! on 127.0.0.1 (the address is printed), each device reading once a
+//! second for SECONDS (default 60), for `tests/python/live_page_bench.py`,
+//! which opens it in headless Chromium and prints how long the page took
+//! to merge and draw each answer.
+//!
 //! UNITS devices (default 247, as many as Modbus unit ids allow), each
 //! with a whole trend (`HISTORY_POINTS`, 4 h at one point per 10 s); then
 //! 2 s of readings at one per second per device. Prints the bytes and
@@ -39,22 +45,60 @@ fn median_ms(f: &mut dyn FnMut() -> usize) -> (f64, usize) {
     (t[10], bytes)
 }
 
-fn main() {
-    let units: u8 = std::env::args()
-        .nth(1)
-        .and_then(|a| a.parse().ok())
-        .unwrap_or(247);
+/// A site of `units` devices with whole trends: one reading per second per
+/// device for 4 h (a point every 10 s). Also returns the last counter.
+fn full_site(units: u8) -> (LiveTable, u32) {
     let table = LiveTable::new(Duration::from_secs(60));
     for u in 1..=units {
         table.register(u, &format!("BENCH-{u:04}"));
     }
-    // One reading per second per device for 4 h: a point every 10 s.
     let seconds = HISTORY_POINTS as u32 * 10;
     for c in 1..=seconds {
         for u in 1..=units {
             table.update(u, &reading(c), Instant::now());
         }
     }
+    (table, seconds)
+}
+
+/// Serves the page of a full site, each device reading once a second.
+fn serve(units: u8, seconds: u64) {
+    let (table, mut c) = full_site(units);
+    let table = std::sync::Arc::new(table);
+    let web = fringe_gateway::web::WebServer::start(
+        "127.0.0.1:0".parse().expect("address"),
+        "Bench site",
+        std::sync::Arc::clone(&table),
+    )
+    .expect("bind");
+    println!("http://{}/", web.local_addr());
+    let t0 = Instant::now();
+    while t0.elapsed() < Duration::from_secs(seconds) {
+        c += 1;
+        // One reading in 101 flagged: drawn as a marked point.
+        let mut r = reading(c);
+        if c.is_multiple_of(101) {
+            r.flags = Flags::OUT_OF_RANGE;
+        }
+        for u in 1..=units {
+            table.update(u, &r, Instant::now());
+        }
+        std::thread::sleep(Duration::from_secs(1));
+    }
+    web.stop();
+}
+
+fn main() {
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    let number = |k: usize, default: u64| -> u64 {
+        args.get(k).and_then(|a| a.parse().ok()).unwrap_or(default)
+    };
+    if args.first().is_some_and(|a| a == "serve") {
+        serve(number(1, 247).clamp(1, 247) as u8, number(2, 60));
+        return;
+    }
+    let units = number(0, 247).clamp(1, 247) as u8;
+    let (table, seconds) = full_site(units);
     let whole = site_json_since("Bench site", &table, Instant::now(), None);
     let since = Since {
         epoch: whole["epoch"].as_str().unwrap_or_default().to_string(),
