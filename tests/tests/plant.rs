@@ -215,26 +215,21 @@ fn ddata_counters(msgs: &[Value], device: &str) -> Vec<u64> {
 #[test]
 #[ignore = "needs FRINGE_PYTHON (the venv) and mosquitto: `cargo xtask test` runs it"]
 fn sparkplug_births_readings_in_order_and_nothing_lost_across_a_broker_restart() {
-    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_gateway::mqtt::{Format, Publisher};
     use fringe_tests::servers::Mosquitto;
 
     let mut broker = Mosquitto::start();
     let collector = Collector::start(broker.port, "spBv1.0/#");
     let dir = tempfile::tempdir().unwrap();
     let devices = ["PLT-A-0001", "PLT-A-0002"];
-    let config = MqttConfig {
-        host: "127.0.0.1".into(),
-        port: broker.port,
-        client_id: "fringe-gw-1".into(),
-        credentials: None,
-        tls_ca_pem: None,
-        format: Format::Sparkplug {
+    let config = mqtt_config(
+        broker.port,
+        "fringe-gw-1",
+        Format::Sparkplug {
             group: "plant-a".into(),
             edge_node: "gw-1".into(),
         },
-        density: None,
-        keep_alive: Duration::from_secs(5),
-    };
+    );
     let publisher = Publisher::start(
         config,
         &dir.path().join("outbox.db"),
@@ -373,7 +368,7 @@ fn sparkplug_births_readings_in_order_and_nothing_lost_across_a_broker_restart()
 #[test]
 #[ignore = "needs FRINGE_PYTHON (the venv) and mosquitto: `cargo xtask test` runs it"]
 fn a_broker_lost_mid_stream_loses_nothing_and_repeats_only_what_was_in_flight() {
-    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher, WINDOW};
+    use fringe_gateway::mqtt::{Format, Publisher, WINDOW};
     use fringe_tests::servers::Mosquitto;
 
     let mut broker = Mosquitto::start();
@@ -381,19 +376,14 @@ fn a_broker_lost_mid_stream_loses_nothing_and_repeats_only_what_was_in_flight() 
     let dir = tempfile::tempdir().unwrap();
     let device = "PLT-A-0003";
     let publisher = Publisher::start(
-        MqttConfig {
-            host: "127.0.0.1".into(),
-            port: broker.port,
-            client_id: "fringe-gw-2".into(),
-            credentials: None,
-            tls_ca_pem: None,
-            format: Format::Sparkplug {
+        mqtt_config(
+            broker.port,
+            "fringe-gw-2",
+            Format::Sparkplug {
                 group: "plant-a".into(),
                 edge_node: "gw-1".into(),
             },
-            density: None,
-            keep_alive: Duration::from_secs(5),
-        },
+        ),
         &dir.path().join("outbox.db"),
         vec![device.to_string()],
     )
@@ -747,7 +737,7 @@ fn slow_relay(to: u16, delay: Duration) -> u16 {
 #[test]
 #[ignore = "needs mosquitto (Debian package): `cargo xtask test` runs it"]
 fn a_broker_slow_to_accept_is_reached() {
-    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_gateway::mqtt::{Format, Publisher};
     use fringe_tests::servers::Mosquitto;
 
     let broker = Mosquitto::start();
@@ -756,19 +746,14 @@ fn a_broker_slow_to_accept_is_reached() {
     let dir = tempfile::tempdir().unwrap();
     let device = "PLT-A-0004";
     let publisher = Publisher::start(
-        MqttConfig {
-            host: "127.0.0.1".into(),
-            port: relay,
-            client_id: "fringe-gw-slow".into(),
-            credentials: None,
-            tls_ca_pem: None,
-            format: Format::Sparkplug {
+        mqtt_config(
+            relay,
+            "fringe-gw-slow",
+            Format::Sparkplug {
                 group: "plant-a".into(),
                 edge_node: "gw-1".into(),
             },
-            density: None,
-            keep_alive: Duration::from_secs(5),
-        },
+        ),
         &dir.path().join("outbox.db"),
         vec![device.to_string()],
     )
@@ -1696,26 +1681,21 @@ fn the_gateway_takes_a_plcs_density_over_modbus_to_the_device() {
 #[test]
 #[ignore = "needs FRINGE_PYTHON (the venv) and mosquitto: `cargo xtask test` runs it"]
 fn a_site_of_300_devices_is_born_at_each_session() {
-    use fringe_gateway::mqtt::{Format, MqttConfig, Publisher};
+    use fringe_gateway::mqtt::{Format, Publisher};
     use fringe_tests::servers::Mosquitto;
 
     let mut broker = Mosquitto::start();
     let collector = Collector::start(broker.port, "spBv1.0/#");
     let dir = tempfile::tempdir().unwrap();
     let devices: Vec<String> = (1..=300).map(|i| format!("PLT-B-{i:04}")).collect();
-    let config = MqttConfig {
-        host: "127.0.0.1".into(),
-        port: broker.port,
-        client_id: "fringe-gw-300".into(),
-        credentials: None,
-        tls_ca_pem: None,
-        format: Format::Sparkplug {
+    let config = mqtt_config(
+        broker.port,
+        "fringe-gw-300",
+        Format::Sparkplug {
             group: "plant-b".into(),
             edge_node: "gw-300".into(),
         },
-        density: None,
-        keep_alive: Duration::from_secs(5),
-    };
+    );
     let publisher = Publisher::start(config, &dir.path().join("outbox.db"), devices.clone())
         .expect("publisher");
     let dbirths = |m: &[Value]| {

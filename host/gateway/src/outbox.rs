@@ -218,17 +218,6 @@ impl Outbox {
         rows.collect::<Result<_, _>>().map_err(err("read"))
     }
 
-    /// Removes row `id` (acknowledged by the broker).
-    ///
-    /// # Errors
-    /// When the file cannot be written.
-    pub fn done(&self, id: i64) -> Result<(), OutboxError> {
-        self.db
-            .execute("DELETE FROM outbox WHERE id = ?1", params![id])
-            .map_err(err("delete"))?;
-        Ok(())
-    }
-
     /// Removes rows `ids` (acknowledged by the broker) in one
     /// transaction: one write to the disk for them all, where one each
     /// made the disk's flush rate the rate at which a backlog could be
@@ -358,8 +347,7 @@ mod tests {
             }
             let rows = o.next(0, 3).unwrap();
             assert_eq!(rows.len(), 3);
-            o.done(rows[0].id).unwrap();
-            o.done(rows[1].id).unwrap();
+            o.done_many(&[rows[0].id, rows[1].id]).unwrap();
             assert_eq!(o.next_bd_seq().unwrap(), 0);
         }
         let o = Outbox::open(&path).unwrap();
