@@ -8,7 +8,9 @@ prints {"event": "first"} and waits (up to 60 s) for SECOND without the
 page being reloaded (a marker set in the page must survive), saves a
 screenshot, waits 4.5 s (two more polls), compares the trends the page
 holds (built from the points of each answer it had not had) with the
-whole trends of /api/site, and prints one JSON line with what it saw. Then it waits for a
+whole trends of /api/site, checks that the page draws a trend anew after
+an answer of another gateway run (numbers from 1 again) and from a
+gateway that numbers no points, and prints one JSON line with what it saw. Then it waits for a
 line on stdin (the test stops the gateway's web server and says so) and
 up to 30 s for the card to show no value, and prints what the card and the
 banner say.
@@ -79,6 +81,19 @@ def main(url, serial, first, second, shot):
             "return Array.from(document.querySelectorAll('section.card')).map("
             "c => [c.dataset.serial, (c.querySelector('svg.trend') || {getAttribute: () => null}).getAttribute('data-last')]);")
         last = {k.split(" ", 1)[1]: (str(v[-1][4]) if v else "") for k, v in held["trends"].items()}
+        # The page's own functions on two answers of two gateway runs whose
+        # points carry the same numbers and other values (a gateway
+        # restarted: numbers start at 1 again), and on a gateway that
+        # numbers no points: each must be drawn anew. (Run in the page, on
+        # a unit of its own; the page's next poll, of another run now, asks
+        # for every trend whole.)
+        redrawn = driver.execute_script(
+            "const u = (v, n) => ({unit: 999, serial: 'restart-check', history_full: true, history_len: 2,"
+            " history: [[1e12, v, 0.1, 0], [1e12 + 1e4, v, 0.1, 0]].map((p, i) => n ? p.concat([i + 1]) : p)});"
+            "const draw = (epoch, v, n) => { const a = u(v, n); mergeTrends({epoch, mark: 3, units: [a]}); return trendOf(a); };"
+            "const a = draw('run-a', 10, true), b = draw('run-b', 20, true);"
+            "const c = draw(undefined, 30, false), d = draw(undefined, 40, false);"
+            "return [a !== b, c !== d];")
         with urllib.request.urlopen(url + "api/site", timeout=10) as r:
             whole = json.load(r)
         gateway = {f"{u['unit']} {u['serial']}": u["history"] for u in whole["units"]}
@@ -92,7 +107,8 @@ def main(url, serial, first, second, shot):
                           "asks_from_mark": held["since"] is not None,
                           "partial_answers": held["partialAnswers"],
                           "whole_asks": held["wholeAsks"],
-                          "drawn_match": all(last.get(s) == d for s, d in drawn) and len(drawn) == len(last)}), flush=True)
+                          "drawn_match": all(last.get(s) == d for s, d in drawn) and len(drawn) == len(last),
+                          "redrawn_after_restart": redrawn[0], "redrawn_unnumbered": redrawn[1]}), flush=True)
         sys.stdin.readline()
         gone = wait_for(driver, serial, "no value", 30)
         banner = driver.find_element(By.ID, "silent")

@@ -910,6 +910,8 @@ fn the_live_page_shows_values_and_updates_without_a_reload() {
     assert_eq!(second["whole_asks"], 1, "{second}");
     // Each drawn trend ends at the page's last point.
     assert_eq!(second["drawn_match"], true, "{second}");
+    assert_eq!(second["redrawn_after_restart"], true, "{second}");
+    assert_eq!(second["redrawn_unnumbered"], true, "{second}");
     assert!(
         second["partial_answers"].as_u64().unwrap_or(0) >= 2,
         "{second}"

@@ -71,15 +71,20 @@ function trend(history) {
 
 // Each unit's drawn trend, kept while its points are the same (a trend
 // gains a point every 10 s at most; drawing all 247 of a full site at
-// every answer took most of the page's time; BENCHMARKS.md).
+// every answer took most of the page's time; BENCHMARKS.md). Points are
+// numbered anew in each gateway run, so the kept trends go with the run
+// (mergeTrends); a gateway that numbers no points has its trends drawn at
+// every answer.
 const drawn = new Map();
+let drawnEpoch = null;
 
 function trendOf(u) {
   const key = u.unit + " " + u.serial;
   const h = u.history;
+  const numbered = h.length === 0 || h[h.length - 1][4] !== undefined;
   const same = h.length === 0 ? "0" : h.length + " " + h[0][4] + " " + h[h.length - 1][4];
   const had = drawn.get(key);
-  if (had && had.same === same) return had.svg;
+  if (numbered && had && had.same === same) return had.svg;
   const svg = trend(h);
   // The last point drawn, for the browser test.
   svg.setAttribute("data-last", h.length ? String(h[h.length - 1][4]) : "");
@@ -209,6 +214,11 @@ function mergeTrends(site) {
   }
   trends.clear();
   for (const [k, v] of now) trends.set(k, v);
+  // Another gateway run numbers its points from 1 again: a trend of the
+  // same length and numbers is another trend (found by review: the last
+  // run's drawing was shown until the next point).
+  if (site.epoch !== drawnEpoch) drawn.clear();
+  drawnEpoch = site.epoch;
   for (const k of drawn.keys()) if (!now.has(k)) drawn.delete(k);
   since = whole ? { epoch: site.epoch, mark: site.mark } : null;
   if (partial) partialAnswers += 1;
