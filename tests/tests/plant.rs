@@ -555,14 +555,30 @@ fn a_buffer_that_cannot_delete_keeps_its_session_and_sends_nothing_twice() {
     });
     assert_eq!(p.queued().unwrap(), 400, "deleted although refused");
     assert_eq!(p.stats().sessions, 1, "{:?}", p.stats());
-    // A new session: the 400 are not sent again; 1,000 more are sent
-    // until ACK_PENDING_MAX wait for their delete.
+    // A new session, on a file that takes no write of the session's
+    // bdSeq either (a full disk: it was written before connecting, and no
+    // session started): it starts with a number after the last. The
+    // 400 are not sent again; 1,000 more are sent until ACK_PENDING_MAX
+    // wait for their delete.
+    db.execute_batch(
+        "CREATE TRIGGER no_bd_seq_update BEFORE UPDATE ON meta BEGIN SELECT RAISE(ABORT, 'disk full (test)'); END;
+         CREATE TRIGGER no_bd_seq_insert BEFORE INSERT ON meta BEGIN SELECT RAISE(ABORT, 'disk full (test)'); END;",
+    )
+    .unwrap();
+    let stored = |db: &rusqlite::Connection| -> i64 {
+        db.query_row("SELECT value FROM meta WHERE key = 'bd_seq'", [], |r| {
+            r.get(0)
+        })
+        .unwrap()
+    };
+    let first_bd_seq = stored(&db);
     broker.stop();
     broker.restart();
     wait("a second session", &|| {
         let s = p.stats();
         s.sessions == 2 && s.connected
     });
+    assert_eq!(stored(&db), first_bd_seq, "the trigger let it write");
     for n in 401..=1400u32 {
         p.reading(device, &reading(1, n, Some(12.0), Flags::empty()), None)
             .unwrap();
@@ -584,7 +600,10 @@ fn a_buffer_that_cannot_delete_keeps_its_session_and_sends_nothing_twice() {
         "{s:?}"
     );
     assert_eq!(p.queued().unwrap(), 1400);
-    db.execute_batch("DROP TRIGGER keep").unwrap();
+    db.execute_batch(
+        "DROP TRIGGER keep; DROP TRIGGER no_bd_seq_update; DROP TRIGGER no_bd_seq_insert;",
+    )
+    .unwrap();
     wait("the buffer emptied", &|| p.queued().unwrap() == 0);
     std::thread::sleep(Duration::from_millis(300));
     let s = p.stats();

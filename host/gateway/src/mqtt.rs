@@ -188,6 +188,7 @@ impl Publisher {
                     acked: BTreeSet::new(),
                     acked_since: None,
                     flush_failed: None,
+                    bd_seq: None,
                 }
                 .run();
             })
@@ -384,6 +385,8 @@ struct Worker {
     /// When deleting them last failed (the next try waits
     /// [`FLUSH_RETRY`]); they are not sent again meanwhile.
     flush_failed: Option<Instant>,
+    /// Sparkplug: the bdSeq of the last session.
+    bd_seq: Option<u64>,
 }
 
 /// What the status says of acknowledged rows a delete failed for (and is
@@ -432,6 +435,36 @@ impl Worker {
                 }
             }
         }
+    }
+
+    /// The bdSeq of a new Sparkplug session (0 in plain JSON, which has
+    /// none), kept in the buffer's file. Where the file takes no write (a
+    /// full disk), the number after the last one is used and the status
+    /// says it is not kept: the session starts all the same, and sending
+    /// the buffer is what frees the space (before, no session started, and
+    /// nothing was sent until the disk was cleared by hand; found by
+    /// review).
+    fn next_bd_seq(&mut self) -> u64 {
+        if !matches!(self.config.format, Format::Sparkplug { .. }) {
+            return 0;
+        }
+        let b = match self.outbox.next_bd_seq() {
+            Ok(b) => b,
+            Err(e) => {
+                let last = self
+                    .bd_seq
+                    .or_else(|| self.outbox.stored_bd_seq().ok().flatten());
+                let b = last.map_or(0, |b| (b + 1) % 256);
+                self.stat(|s| {
+                    s.last_error = Some(format!(
+                        "{e}: this session's bdSeq {b} is not kept in the file (after a restart of the gateway a bdSeq may repeat)"
+                    ));
+                });
+                b
+            }
+        };
+        self.bd_seq = Some(b);
+        b
     }
 
     /// Row `id` was acknowledged: deleted with the next batch.
@@ -524,10 +557,7 @@ impl Worker {
     }
 
     fn session(&mut self) -> End {
-        let bd_seq = match self.outbox.next_bd_seq() {
-            Ok(b) => b,
-            Err(e) => return End::Lost(e.to_string()),
-        };
+        let bd_seq = self.next_bd_seq();
         let started_ms = now_ms();
         // The client's request queue is emptied only by this thread's
         // polling, and a publish into a full one blocks it for good: room

@@ -264,6 +264,22 @@ impl Outbox {
     /// # Errors
     /// When the file cannot be written.
     pub fn next_bd_seq(&self) -> Result<u64, OutboxError> {
+        let cur = self.stored_bd_seq()?;
+        let next = cur.map_or(0, |v| (v + 1) % 256);
+        self.db
+            .execute(
+                "INSERT INTO meta (key, value) VALUES ('bd_seq', ?1) ON CONFLICT(key) DO UPDATE SET value = ?1",
+                params![next as i64],
+            )
+            .map_err(err("write bdSeq"))?;
+        Ok(next)
+    }
+
+    /// The last bdSeq kept in the file (none before the first session).
+    ///
+    /// # Errors
+    /// When the file cannot be read.
+    pub fn stored_bd_seq(&self) -> Result<Option<u64>, OutboxError> {
         let cur: Option<i64> = self
             .db
             .query_row("SELECT value FROM meta WHERE key = 'bd_seq'", [], |r| {
@@ -271,14 +287,7 @@ impl Outbox {
             })
             .optional()
             .map_err(err("read bdSeq"))?;
-        let next = cur.map_or(0, |v| (v + 1) % 256);
-        self.db
-            .execute(
-                "INSERT INTO meta (key, value) VALUES ('bd_seq', ?1) ON CONFLICT(key) DO UPDATE SET value = ?1",
-                params![next],
-            )
-            .map_err(err("write bdSeq"))?;
-        Ok(next as u64)
+        Ok(cur.map(|v| v.rem_euclid(256) as u64))
     }
 }
 
