@@ -98,7 +98,7 @@ pub struct LiveTable {
     /// Least time between two history points of a device, ms.
     pub history_step_ms: u64,
     units: RwLock<BTreeMap<u8, Entry>>,
-    /// The number the next trend point takes (and a dropped trend).
+    /// The number the next trend point takes.
     next_mark: AtomicU64,
     /// Tells this table from one of an earlier run of the gateway, whose
     /// numbers a page may still hold: its creation time, ns.

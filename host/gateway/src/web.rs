@@ -332,6 +332,24 @@ impl Drop for WebServer {
     }
 }
 
+/// Whether one coding of an Accept-Encoding header takes gzip: `gzip` or
+/// `x-gzip`, unless its weight is 0 (RFC 9110, 12.5.3: "q=0" means not
+/// acceptable).
+fn takes_gzip(coding: &str) -> bool {
+    let mut parts = coding.split(';');
+    let name = parts.next().unwrap_or("").trim();
+    if !name.eq_ignore_ascii_case("gzip") && !name.eq_ignore_ascii_case("x-gzip") {
+        return false;
+    }
+    !parts.any(|p| {
+        p.trim()
+            .strip_prefix("q=")
+            .or_else(|| p.trim().strip_prefix("Q="))
+            .and_then(|q| q.trim().parse::<f64>().ok())
+            .is_some_and(|q| q <= 0.0)
+    })
+}
+
 /// The accept loop: each connection on a task of its own, within the
 /// limits of the module doc, until `stop`.
 async fn serve(
@@ -458,7 +476,7 @@ fn answer<B>(req: &hyper::Request<B>, site: &str, table: &LiveTable) -> hyper::R
             .iter()
             .filter_map(|v| v.to_str().ok())
             .flat_map(|v| v.split(','))
-            .any(|c| c.split(';').next().is_some_and(|c| c.trim() == "gzip"));
+            .any(takes_gzip);
     let (body, gzipped) = match gzip.then(|| gzipped(body.as_bytes())).flatten() {
         Some(z) => (z, true),
         None => (body.into_bytes(), false),
@@ -614,6 +632,9 @@ mod tests {
             .read_to_string(&mut json)
             .unwrap();
         let zipped: Value = serde_json::from_str(&json).unwrap();
+        // Refused by its weight (RFC 9110, 12.5.3), and not asked for.
+        let (head, _) = get("Accept-Encoding: gzip;q=0, identity\r\n");
+        assert!(!head.contains("content-encoding"), "{head}");
         let (head, body) = get("");
         assert!(!head.contains("content-encoding"), "{head}");
         let plain: Value = serde_json::from_slice(&body).unwrap();
