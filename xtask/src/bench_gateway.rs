@@ -67,6 +67,28 @@ struct Figures {
     committed: u64,
     sims_share: f64,
     sims_rss_mb: f64,
+    /// Open file descriptors of the gateway processes (summed) and their
+    /// soft limit (the least), at the end of the measurement.
+    fds: usize,
+    fd_limit: u64,
+}
+
+/// Open file descriptors of process `pid` (entries of `/proc/PID/fd`).
+fn open_fds(pid: u32) -> usize {
+    std::fs::read_dir(format!("/proc/{pid}/fd")).map_or(0, |d| d.count())
+}
+
+/// The soft limit on open files of process `pid` (`/proc/PID/limits`).
+fn fd_limit(pid: u32) -> u64 {
+    std::fs::read_to_string(format!("/proc/{pid}/limits"))
+        .ok()
+        .and_then(|s| {
+            s.lines()
+                .find(|l| l.starts_with("Max open files"))
+                .and_then(|l| l.split_whitespace().nth(3))
+                .and_then(|v| v.parse().ok())
+        })
+        .unwrap_or(0)
 }
 
 /// `fringe sim` processes, killed when dropped.
@@ -185,6 +207,8 @@ fn one(
     let elapsed = w0.elapsed().as_secs_f64();
     let rss: u64 = pids.iter().map(|p| status_kb(*p, "VmRSS:")).sum();
     let hwm: u64 = pids.iter().map(|p| status_kb(*p, "VmHWM:")).sum();
+    let fds: usize = pids.iter().map(|p| open_fds(*p)).sum();
+    let limit = pids.iter().map(|p| fd_limit(*p)).min().unwrap_or(0);
     let mut committed = 0;
     for (mut child, reader) in children {
         let status = child.wait()?;
@@ -214,6 +238,8 @@ fn one(
             committed,
             sims_share: 0.0,
             sims_rss_mb: 0.0,
+            fds,
+            fd_limit: limit,
         });
     }
     let o = Command::new(sims_alone)
@@ -235,6 +261,8 @@ fn one(
         committed,
         sims_share: v["cpu_share"].as_f64().unwrap_or(f64::NAN),
         sims_rss_mb: v["rss_end_kb"].as_f64().unwrap_or(f64::NAN) / 1024.0,
+        fds,
+        fd_limit: limit,
     })
 }
 
@@ -299,12 +327,12 @@ pub fn run(root: &Path, args: &[String]) -> Result<()> {
             pty,
         )?);
     }
-    println!("| devices | gateway process CPU (cores) | of which the simulated devices | gateway alone per device | RSS / peak (MB) | simulated devices' RSS (MB) | readings committed |");
-    println!("|---:|---:|---:|---:|---:|---:|---:|");
+    println!("| devices | gateway process CPU (cores) | of which the simulated devices | gateway alone per device | RSS / peak (MB) | simulated devices' RSS (MB) | readings committed | open files / soft limit |");
+    println!("|---:|---:|---:|---:|---:|---:|---:|---:|");
     for f in rows {
         let own = f.cpu_share - f.sims_share;
         println!(
-            "| {} | {:.3} | {:.3} | {:.2} ms/s ({:.4} cores) | {:.1} / {:.1} | {:.1} | {} |",
+            "| {} | {:.3} | {:.3} | {:.2} ms/s ({:.4} cores) | {:.1} / {:.1} | {:.1} | {} | {} / {} |",
             f.n,
             f.cpu_share,
             f.sims_share,
@@ -313,7 +341,9 @@ pub fn run(root: &Path, args: &[String]) -> Result<()> {
             f.rss_mb,
             f.hwm_mb,
             f.sims_rss_mb,
-            f.committed
+            f.committed,
+            f.fds,
+            f.fd_limit
         );
     }
     Ok(())

@@ -21,12 +21,13 @@
 use std::future;
 use std::io;
 use std::net::{IpAddr, SocketAddr};
+use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use fringe_registers::{map, read_input_registers, with_word_order, Exception, WordOrder};
 use tokio::net::TcpListener;
-use tokio_modbus::server::tcp::{accept_tcp_connection, Server};
+use tokio_modbus::server::tcp::Server;
 use tokio_modbus::{ExceptionCode, Request, Response, SlaveRequest};
 
 use crate::density::DensityInbox;
@@ -36,6 +37,39 @@ use crate::site::DensitySource;
 /// Holding registers of a unit fed its density over Modbus: 0-1, the bulk
 /// density in kg/m3 as a float32.
 pub const DENSITY_REGISTERS: u16 = 2;
+
+/// Most Modbus TCP connections open at once. One more is closed as soon as
+/// it is accepted (its client connects again later): without a limit a
+/// client that opens connections and keeps them (a misconfigured HMI, a
+/// scan) took the gateway's file descriptors, and the accept that then
+/// failed closed every connection, the PLC's too (tokio-modbus ends its
+/// connections with a failed accept). A site of 247 devices on serial
+/// ports holds about 263 descriptors (16 + 1 per device, measured with
+/// `cargo xtask bench-gateway --pty`), the live page at most 64
+/// connections: with these, about 455 of the 1,024 a process gets by
+/// default on Linux (systemd's soft limit, from memory).
+pub const MAX_CONNECTIONS: usize = 128;
+
+/// One open connection, counted until the connection ends (its service is
+/// dropped with it).
+struct Slot(Arc<AtomicUsize>);
+
+impl Slot {
+    /// A slot of `open`'s, where fewer than `max` are taken.
+    fn take(open: &Arc<AtomicUsize>, max: usize) -> Option<Slot> {
+        open.fetch_update(Ordering::AcqRel, Ordering::Acquire, |n| {
+            (n < max).then_some(n + 1)
+        })
+        .ok()
+        .map(|_| Slot(Arc::clone(open)))
+    }
+}
+
+impl Drop for Slot {
+    fn drop(&mut self) {
+        self.0.fetch_sub(1, Ordering::AcqRel);
+    }
+}
 
 /// How often one sender's refused requests of one kind are said: a client
 /// that repeats a wrong request (or probes the port) must not bury the
@@ -280,6 +314,8 @@ struct Service {
     order: WordOrder,
     density: Option<DensityWrites>,
     peer: IpAddr,
+    /// This connection's place among [`MAX_CONNECTIONS`].
+    _slot: Slot,
 }
 
 impl tokio_modbus::server::Service for Service {
@@ -363,9 +399,28 @@ impl ModbusServer {
             .spawn(move || {
                 rt.block_on(async move {
                     let server = Server::new(listener);
-                    let on_connected = |stream: tokio::net::TcpStream, socket_addr| {
+                    let open = Arc::new(AtomicUsize::new(0));
+                    // Connections refused at the limit: said at most once
+                    // per SAY_EVERY, with how many since.
+                    let refused = std::sync::Mutex::new((None::<Instant>, 0u64));
+                    let on_connected = |stream: tokio::net::TcpStream, socket_addr: SocketAddr| {
                         let table = Arc::clone(&table);
                         let density = density.clone();
+                        let slot = Slot::take(&open, MAX_CONNECTIONS);
+                        if slot.is_none() {
+                            let mut r = refused.lock().unwrap_or_else(|e| e.into_inner());
+                            r.1 += 1;
+                            if r.0.is_none_or(|t| t.elapsed() >= SAY_EVERY) {
+                                if let Some(said) = &said {
+                                    said(format!(
+                                        "Modbus TCP on {addr}: {MAX_CONNECTIONS} connections are open; {} more refused (the last from {}): a client that keeps opening connections?",
+                                        r.1,
+                                        peer_ip(socket_addr)
+                                    ));
+                                }
+                                *r = (Some(Instant::now()), 0);
+                            }
+                        }
                         // A client that went away without closing (a PLC
                         // power-cycled, a cable pulled) is found by TCP
                         // keepalive within about 2 minutes and its
@@ -377,14 +432,21 @@ impl ModbusServer {
                             .with_retries(6);
                         let _ = socket2::SockRef::from(&stream).set_tcp_keepalive(&keepalive);
                         async move {
-                            accept_tcp_connection(stream, socket_addr, move |peer: SocketAddr| {
-                                Ok(Some(Service {
-                                    table: Arc::clone(&table),
+                            // At the limit: the stream is dropped, which
+                            // closes the connection.
+                            let Some(slot) = slot else {
+                                return Ok(None);
+                            };
+                            Ok(Some((
+                                Service {
+                                    table,
                                     order,
-                                    density: density.clone(),
-                                    peer: peer_ip(peer),
-                                }))
-                            })
+                                    density,
+                                    peer: peer_ip(socket_addr),
+                                    _slot: slot,
+                                },
+                                stream,
+                            )))
                         }
                     };
                     // A broken client connection ends only that connection.

@@ -6,11 +6,12 @@
 
 use std::net::TcpStream;
 use std::sync::Arc;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
-use fringe_gateway::live::LiveTable;
+use common::{read_unit_1, table_with_unit_1};
 use fringe_gateway::modbus::ModbusServer;
-use fringe_protocol::{Flags, Reading, Seq};
+
+mod common;
 
 fn open_files_limit() -> libc::rlimit {
     let mut r = libc::rlimit {
@@ -31,44 +32,9 @@ fn open_fds() -> u64 {
     std::fs::read_dir("/proc/self/fd").map_or(64, |d| d.count() as u64)
 }
 
-/// Unit 1's first input register pair, read by a Modbus TCP client.
-fn read_unit_1(addr: std::net::SocketAddr) -> Result<Vec<u16>, String> {
-    let rt = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .map_err(|e| e.to_string())?;
-    rt.block_on(async {
-        use tokio_modbus::client::Reader;
-        let go = async {
-            let mut ctx = tokio_modbus::client::tcp::connect_slave(addr, tokio_modbus::Slave(1))
-                .await
-                .map_err(|e| e.to_string())?;
-            ctx.read_input_registers(0, 2)
-                .await
-                .map_err(|e| e.to_string())?
-                .map_err(|e| format!("{e:?}"))
-        };
-        tokio::time::timeout(Duration::from_secs(5), go)
-            .await
-            .map_err(|_| "no answer within 5 s".to_string())?
-    })
-}
-
 #[test]
 fn the_server_listens_again_after_running_out_of_file_descriptors() {
-    let table = Arc::new(LiveTable::new(Duration::from_secs(60)));
-    table.register(1, "PLT-FD-0001");
-    let reading = Reading {
-        seq: Seq {
-            boot: 1,
-            counter: 1,
-        },
-        time_ms: 1_796_083_200_000,
-        moisture_pct: Some(14.0),
-        flags: Flags::empty(),
-        ..Reading::default()
-    };
-    table.update(1, &reading, Instant::now());
+    let table = table_with_unit_1("PLT-FD-0001");
     let said: Arc<std::sync::Mutex<Vec<String>>> = Arc::default();
     let tell = Arc::clone(&said);
     let server = ModbusServer::start_with(

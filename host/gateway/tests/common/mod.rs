@@ -1,0 +1,48 @@
+//! What the Modbus TCP tests share.
+
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use fringe_gateway::live::LiveTable;
+use fringe_protocol::{Flags, Reading, Seq};
+
+/// A live table whose unit 1 (device `serial`) has a reading of 14 %.
+pub fn table_with_unit_1(serial: &str) -> Arc<LiveTable> {
+    let table = Arc::new(LiveTable::new(Duration::from_secs(60)));
+    table.register(1, serial);
+    let reading = Reading {
+        seq: Seq {
+            boot: 1,
+            counter: 1,
+        },
+        time_ms: 1_796_083_200_000,
+        moisture_pct: Some(14.0),
+        flags: Flags::empty(),
+        ..Reading::default()
+    };
+    table.update(1, &reading, Instant::now());
+    table
+}
+
+/// Unit 1's first input register pair, read by a Modbus TCP client.
+pub fn read_unit_1(addr: std::net::SocketAddr) -> Result<Vec<u16>, String> {
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .map_err(|e| e.to_string())?;
+    rt.block_on(async {
+        use tokio_modbus::client::Reader;
+        let go = async {
+            let mut ctx = tokio_modbus::client::tcp::connect_slave(addr, tokio_modbus::Slave(1))
+                .await
+                .map_err(|e| e.to_string())?;
+            ctx.read_input_registers(0, 2)
+                .await
+                .map_err(|e| e.to_string())?
+                .map_err(|e| format!("{e:?}"))
+        };
+        tokio::time::timeout(Duration::from_secs(5), go)
+            .await
+            .map_err(|_| "no answer within 5 s".to_string())?
+    })
+}
