@@ -21,7 +21,6 @@
 use std::future;
 use std::io;
 use std::net::{IpAddr, SocketAddr};
-use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
@@ -50,24 +49,57 @@ pub const DENSITY_REGISTERS: u16 = 2;
 /// default on Linux (systemd's soft limit, from memory).
 pub const MAX_CONNECTIONS: usize = 128;
 
+/// Most Modbus TCP connections open at once from one address, so that one
+/// client that keeps opening connections cannot take every place: the
+/// PLC's own connection is still taken.
+pub const MAX_CONNECTIONS_PER_CLIENT: usize = 32;
+
+/// Connections open, in all and per client address.
+#[derive(Default)]
+struct Open {
+    total: usize,
+    per_client: std::collections::HashMap<IpAddr, usize>,
+}
+
 /// One open connection, counted until the connection ends (its service is
 /// dropped with it).
-struct Slot(Arc<AtomicUsize>);
+struct Slot {
+    open: Arc<std::sync::Mutex<Open>>,
+    client: IpAddr,
+}
 
 impl Slot {
-    /// A slot of `open`'s, where fewer than `max` are taken.
-    fn take(open: &Arc<AtomicUsize>, max: usize) -> Option<Slot> {
-        open.fetch_update(Ordering::AcqRel, Ordering::Acquire, |n| {
-            (n < max).then_some(n + 1)
+    /// A place for a connection from `client`, or why there is none.
+    fn take(open: &Arc<std::sync::Mutex<Open>>, client: IpAddr) -> Result<Slot, String> {
+        let mut o = open.lock().unwrap_or_else(|e| e.into_inner());
+        let mine = o.per_client.get(&client).copied().unwrap_or(0);
+        if o.total >= MAX_CONNECTIONS {
+            return Err(format!("{MAX_CONNECTIONS} connections are open"));
+        }
+        if mine >= MAX_CONNECTIONS_PER_CLIENT {
+            return Err(format!(
+                "{client} has {MAX_CONNECTIONS_PER_CLIENT} connections open"
+            ));
+        }
+        o.total += 1;
+        o.per_client.insert(client, mine + 1);
+        Ok(Slot {
+            open: Arc::clone(open),
+            client,
         })
-        .ok()
-        .map(|_| Slot(Arc::clone(open)))
     }
 }
 
 impl Drop for Slot {
     fn drop(&mut self) {
-        self.0.fetch_sub(1, Ordering::AcqRel);
+        let mut o = self.open.lock().unwrap_or_else(|e| e.into_inner());
+        o.total = o.total.saturating_sub(1);
+        if let Some(n) = o.per_client.get_mut(&self.client) {
+            *n = n.saturating_sub(1);
+            if *n == 0 {
+                o.per_client.remove(&self.client);
+            }
+        }
     }
 }
 
@@ -399,28 +431,31 @@ impl ModbusServer {
             .spawn(move || {
                 rt.block_on(async move {
                     let server = Server::new(listener);
-                    let open = Arc::new(AtomicUsize::new(0));
+                    let open = Arc::new(std::sync::Mutex::new(Open::default()));
                     // Connections refused at the limit: said at most once
                     // per SAY_EVERY, with how many since.
                     let refused = std::sync::Mutex::new((None::<Instant>, 0u64));
                     let on_connected = |stream: tokio::net::TcpStream, socket_addr: SocketAddr| {
                         let table = Arc::clone(&table);
                         let density = density.clone();
-                        let slot = Slot::take(&open, MAX_CONNECTIONS);
-                        if slot.is_none() {
-                            let mut r = refused.lock().unwrap_or_else(|e| e.into_inner());
-                            r.1 += 1;
-                            if r.0.is_none_or(|t| t.elapsed() >= SAY_EVERY) {
-                                if let Some(said) = &said {
-                                    said(format!(
-                                        "Modbus TCP on {addr}: {MAX_CONNECTIONS} connections are open; {} more refused (the last from {}): a client that keeps opening connections?",
-                                        r.1,
-                                        peer_ip(socket_addr)
-                                    ));
+                        let slot = match Slot::take(&open, peer_ip(socket_addr)) {
+                            Ok(s) => Some(s),
+                            Err(why) => {
+                                let mut r = refused.lock().unwrap_or_else(|e| e.into_inner());
+                                r.1 += 1;
+                                if r.0.is_none_or(|t| t.elapsed() >= SAY_EVERY) {
+                                    if let Some(said) = &said {
+                                        said(format!(
+                                            "Modbus TCP on {addr}: {} connection(s) refused, the last from {} ({why}): a client that keeps opening connections?",
+                                            r.1,
+                                            peer_ip(socket_addr)
+                                        ));
+                                    }
+                                    *r = (Some(Instant::now()), 0);
                                 }
-                                *r = (Some(Instant::now()), 0);
+                                None
                             }
-                        }
+                        };
                         // A client that went away without closing (a PLC
                         // power-cycled, a cable pulled) is found by TCP
                         // keepalive within about 2 minutes and its

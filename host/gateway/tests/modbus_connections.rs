@@ -1,25 +1,37 @@
-//! The Modbus TCP server's limit on open connections. (A test binary of its
-//! own: `modbus_accept.rs` lowers its process's limit on open files.)
+//! The Modbus TCP server's limits on open connections. (A test binary of
+//! its own: `modbus_accept.rs` lowers its process's limit on open files.)
 
-use std::net::TcpStream;
+use std::io::Read;
+use std::net::{IpAddr, TcpStream};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-use common::{read_unit_1, table_with_unit_1};
-use fringe_gateway::modbus::ModbusServer;
+use common::{connect_from, read_unit_1_from, table_with_unit_1};
+use fringe_gateway::modbus::{ModbusServer, MAX_CONNECTIONS, MAX_CONNECTIONS_PER_CLIENT};
 
 mod common;
 
-/// At most `MAX_CONNECTIONS` connections are open at once: one more is
-/// closed as it is accepted and said (once a minute at most), and a client
-/// is served again once a connection ends. (Without a limit, a client that
-/// kept opening connections took the process's file descriptors, and the
-/// failed accept then closed every connection, the PLC's too.)
-#[test]
-fn connections_past_the_limit_are_closed_and_the_rest_still_served() {
-    use fringe_gateway::modbus::MAX_CONNECTIONS;
-    use std::io::Read;
+/// Whether the server closed `c` without answering (end of stream).
+fn closed_by_the_server(c: &mut TcpStream) -> Result<(), String> {
+    c.set_read_timeout(Some(Duration::from_secs(5)))
+        .map_err(|e| e.to_string())?;
+    let mut buf = [0u8; 8];
+    match c.read(&mut buf) {
+        Ok(0) => Ok(()),
+        Err(e) if e.kind() == std::io::ErrorKind::ConnectionReset => Ok(()),
+        other => Err(format!("not closed: {other:?}")),
+    }
+}
 
+/// At most `MAX_CONNECTIONS_PER_CLIENT` connections from one address and
+/// `MAX_CONNECTIONS` in all are open at once: one more is closed as it is
+/// accepted, said (once a minute at most), and a client is served again
+/// once a connection ends. One client holding its whole share leaves the
+/// others served (a PLC beside an HMI that keeps opening connections).
+/// Without a limit, such a client took the process's file descriptors,
+/// and the failed accept then closed every connection, the PLC's too.
+#[test]
+fn connections_past_the_limits_are_closed_and_the_rest_still_served() {
     let table = table_with_unit_1("PLT-FD-0002");
     let said: Arc<std::sync::Mutex<Vec<String>>> = Arc::default();
     let tell = Arc::clone(&said);
@@ -32,31 +44,33 @@ fn connections_past_the_limit_are_closed_and_the_rest_still_served() {
     )
     .expect("bind");
     let addr = server.local_addr();
-    // Connections held open without a request (the server accepts them in
-    // the order they came).
-    let mut held: Vec<TcpStream> = (0..MAX_CONNECTIONS)
-        .map(|_| TcpStream::connect(addr).expect("connect"))
-        .collect();
-    // One more: closed by the server (end of stream, no answer).
-    let mut extra = TcpStream::connect(addr).expect("connect");
-    extra
-        .set_read_timeout(Some(Duration::from_secs(5)))
-        .unwrap();
-    let mut buf = [0u8; 8];
-    let got = extra.read(&mut buf);
-    assert!(
-        matches!(got, Ok(0))
-            || got
-                .as_ref()
-                .is_err_and(|e| e.kind() == std::io::ErrorKind::ConnectionReset),
-        "the connection past the limit was not closed: {got:?}"
-    );
-    assert!(read_unit_1(addr).is_err(), "served past the limit");
-    // A held connection ends: a new client is served.
-    drop(held.pop());
+    let ip = |n: u8| IpAddr::from([127, 0, 0, n]);
+    let hold = |from: IpAddr, n: usize| -> Vec<TcpStream> {
+        (0..n)
+            .map(|_| connect_from(from, addr).expect("connect"))
+            .collect()
+    };
+    // One client's share, held open without a request (the server
+    // accepts connections in the order they came).
+    let mut first = hold(ip(1), MAX_CONNECTIONS_PER_CLIENT);
+    let mut extra = connect_from(ip(1), addr).unwrap();
+    closed_by_the_server(&mut extra).expect("one more from the same client");
+    assert!(read_unit_1_from(Some(ip(1)), addr).is_err());
+    // Another client is served.
+    let other = read_unit_1_from(Some(ip(2)), addr);
+    assert!(other.is_ok(), "another client not served: {other:?}");
+    // Every place taken, by clients of a whole share each.
+    let mut rest = Vec::new();
+    for n in 2..=(MAX_CONNECTIONS / MAX_CONNECTIONS_PER_CLIENT) as u8 {
+        rest.push(hold(ip(n), MAX_CONNECTIONS_PER_CLIENT));
+    }
+    let mut late = connect_from(ip(200), addr).unwrap();
+    closed_by_the_server(&mut late).expect("one more in all");
+    // A connection ends: a new client is served.
+    drop(first.pop());
     let t0 = Instant::now();
     let served = loop {
-        match read_unit_1(addr) {
+        match read_unit_1_from(Some(ip(200)), addr) {
             Ok(w) => break Ok(w),
             Err(e) if t0.elapsed() > Duration::from_secs(5) => break Err(e),
             Err(_) => std::thread::sleep(Duration::from_millis(50)),
@@ -65,12 +79,14 @@ fn connections_past_the_limit_are_closed_and_the_rest_still_served() {
     assert!(served.is_ok(), "not served after one closed: {served:?}");
     let said = said.lock().unwrap().clone();
     assert_eq!(
-        said.iter()
-            .filter(|t| t.contains("connections are open"))
-            .count(),
+        said.iter().filter(|t| t.contains("refused")).count(),
         1,
         "said once (a minute): {said:?}"
     );
-    drop(held);
+    assert!(
+        said[0].contains("127.0.0.1 has 32 connections open"),
+        "{said:?}"
+    );
+    drop((first, rest));
     server.stop();
 }

@@ -25,7 +25,29 @@ pub fn table_with_unit_1(serial: &str) -> Arc<LiveTable> {
 }
 
 /// Unit 1's first input register pair, read by a Modbus TCP client.
+#[allow(dead_code)] // (not every test binary reads from another address)
 pub fn read_unit_1(addr: std::net::SocketAddr) -> Result<Vec<u16>, String> {
+    read_unit_1_from(None, addr)
+}
+
+/// A TCP connection to `addr` from the address `from` (any address of the
+/// loopback network, 127.0.0.0/8, is this host's).
+#[allow(dead_code)]
+pub fn connect_from(
+    from: std::net::IpAddr,
+    addr: std::net::SocketAddr,
+) -> std::io::Result<std::net::TcpStream> {
+    let s = socket2::Socket::new(socket2::Domain::IPV4, socket2::Type::STREAM, None)?;
+    s.bind(&std::net::SocketAddr::new(from, 0).into())?;
+    s.connect(&addr.into())?;
+    Ok(s.into())
+}
+
+/// [`read_unit_1`] from the address `from` where given.
+pub fn read_unit_1_from(
+    from: Option<std::net::IpAddr>,
+    addr: std::net::SocketAddr,
+) -> Result<Vec<u16>, String> {
     let rt = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
@@ -33,9 +55,17 @@ pub fn read_unit_1(addr: std::net::SocketAddr) -> Result<Vec<u16>, String> {
     rt.block_on(async {
         use tokio_modbus::client::Reader;
         let go = async {
-            let mut ctx = tokio_modbus::client::tcp::connect_slave(addr, tokio_modbus::Slave(1))
-                .await
-                .map_err(|e| e.to_string())?;
+            let mut ctx = match from {
+                None => tokio_modbus::client::tcp::connect_slave(addr, tokio_modbus::Slave(1))
+                    .await
+                    .map_err(|e| e.to_string())?,
+                Some(ip) => {
+                    let s = connect_from(ip, addr).map_err(|e| e.to_string())?;
+                    s.set_nonblocking(true).map_err(|e| e.to_string())?;
+                    let s = tokio::net::TcpStream::from_std(s).map_err(|e| e.to_string())?;
+                    tokio_modbus::client::tcp::attach_slave(s, tokio_modbus::Slave(1))
+                }
+            };
             ctx.read_input_registers(0, 2)
                 .await
                 .map_err(|e| e.to_string())?
