@@ -67,8 +67,9 @@ struct Figures {
     committed: u64,
     sims_share: f64,
     sims_rss_mb: f64,
-    /// Open file descriptors of the gateway processes (summed) and their
-    /// soft limit (the least), at the end of the measurement.
+    /// Open file descriptors of the gateway process that has most, and
+    /// the least soft limit of the processes, at the end of the
+    /// measurement.
     fds: usize,
     fd_limit: u64,
 }
@@ -207,7 +208,7 @@ fn one(
     let elapsed = w0.elapsed().as_secs_f64();
     let rss: u64 = pids.iter().map(|p| status_kb(*p, "VmRSS:")).sum();
     let hwm: u64 = pids.iter().map(|p| status_kb(*p, "VmHWM:")).sum();
-    let fds: usize = pids.iter().map(|p| open_fds(*p)).sum();
+    let fds: usize = pids.iter().map(|p| open_fds(*p)).max().unwrap_or(0);
     let limit = pids.iter().map(|p| fd_limit(*p)).min().unwrap_or(0);
     let mut committed = 0;
     for (mut child, reader) in children {
@@ -327,7 +328,7 @@ pub fn run(root: &Path, args: &[String]) -> Result<()> {
             pty,
         )?);
     }
-    println!("| devices | gateway process CPU (cores) | of which the simulated devices | gateway alone per device | RSS / peak (MB) | simulated devices' RSS (MB) | readings committed | open files / soft limit |");
+    println!("| devices | gateway process CPU (cores) | of which the simulated devices | gateway alone per device | RSS / peak (MB) | simulated devices' RSS (MB) | readings committed | open files (the gateway process with most) / soft limit |");
     println!("|---:|---:|---:|---:|---:|---:|---:|---:|");
     for f in rows {
         let own = f.cpu_share - f.sims_share;

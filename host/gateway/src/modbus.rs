@@ -42,11 +42,12 @@ pub const DENSITY_REGISTERS: u16 = 2;
 /// client that opens connections and keeps them (a misconfigured HMI, a
 /// scan) took the gateway's file descriptors, and the accept that then
 /// failed closed every connection, the PLC's too (tokio-modbus ends its
-/// connections with a failed accept). A site of 247 devices on serial
-/// ports holds about 263 descriptors (16 + 1 per device, measured with
-/// `cargo xtask bench-gateway --pty`), the live page at most 64
-/// connections: with these, about 455 of the 1,024 a process gets by
-/// default on Linux (systemd's soft limit, from memory).
+/// connections with a failed accept). A gateway holds 16 descriptors
+/// plus one per device on a serial port (measured at 10 and 100 devices
+/// with `cargo xtask bench-gateway --pty`, without MQTT), so about 263 at
+/// 247 devices (arithmetic), and the live page at most 64 connections:
+/// with these, about 455 of the 1,024 a process gets by default on Linux
+/// (systemd's soft limit, from memory).
 pub const MAX_CONNECTIONS: usize = 128;
 
 /// Most Modbus TCP connections open at once from one address, so that one

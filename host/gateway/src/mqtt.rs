@@ -189,6 +189,7 @@ impl Publisher {
                     acked_since: None,
                     flush_failed: None,
                     bd_seq: None,
+                    bd_seq_unkept: None,
                 }
                 .run();
             })
@@ -387,6 +388,19 @@ struct Worker {
     flush_failed: Option<Instant>,
     /// Sparkplug: the bdSeq of the last session.
     bd_seq: Option<u64>,
+    /// Why this session's bdSeq is not kept in the file, if it is not
+    /// (said in the status while the session lasts).
+    bd_seq_unkept: Option<String>,
+}
+
+/// The bdSeq of a new Sparkplug session: the one after this run's last
+/// session's, kept in the file or not, else after the one the file keeps
+/// from an earlier run, else 0; 0-255. (Taken from the file alone, a
+/// session after one whose number the file could not take used that
+/// number again, and a Sparkplug host can take the earlier session's
+/// death for the new one's; found by review.)
+fn bd_seq_after(last_in_this_run: Option<u64>, stored: Option<u64>) -> u64 {
+    last_in_this_run.or(stored).map_or(0, |b| (b + 1) % 256)
 }
 
 /// What the status says of acknowledged rows a delete failed for (and is
@@ -438,32 +452,29 @@ impl Worker {
     }
 
     /// The bdSeq of a new Sparkplug session (0 in plain JSON, which has
-    /// none), kept in the buffer's file. Where the file takes no write (a
-    /// full disk), the number after the last one is used and the status
-    /// says it is not kept: the session starts all the same, and sending
-    /// the buffer is what frees the space (before, no session started, and
-    /// nothing was sent until the disk was cleared by hand; found by
-    /// review).
+    /// none; [`bd_seq_after`]), kept in the buffer's file. Where the file
+    /// takes no write (a full disk) the session starts all the same, and
+    /// the status says the number is not kept: sending the buffer is what
+    /// frees the space (before, no session started, and nothing was sent
+    /// until the disk was cleared by hand; found by review).
     fn next_bd_seq(&mut self) -> u64 {
         if !matches!(self.config.format, Format::Sparkplug { .. }) {
             return 0;
         }
-        let b = match self.outbox.next_bd_seq() {
-            Ok(b) => b,
-            Err(e) => {
-                let last = self
-                    .bd_seq
-                    .or_else(|| self.outbox.stored_bd_seq().ok().flatten());
-                let b = last.map_or(0, |b| (b + 1) % 256);
-                self.stat(|s| {
-                    s.last_error = Some(format!(
-                        "{e}: this session's bdSeq {b} is not kept in the file (after a restart of the gateway a bdSeq may repeat)"
-                    ));
-                });
-                b
-            }
+        let stored = match self.bd_seq {
+            Some(_) => None,
+            None => self.outbox.stored_bd_seq().ok().flatten(),
         };
+        let b = bd_seq_after(self.bd_seq, stored);
         self.bd_seq = Some(b);
+        self.bd_seq_unkept = self.outbox.store_bd_seq(b).err().map(|e| {
+            format!(
+                "{e}: this session's bdSeq {b} is not kept in the file (a restart of the gateway before it is may repeat a bdSeq)"
+            )
+        });
+        if let Some(t) = self.bd_seq_unkept.clone() {
+            self.stat(|s| s.last_error = Some(t));
+        }
         b
     }
 
@@ -589,12 +600,14 @@ impl Worker {
                 Err(RecvTimeoutError::Disconnected) => return End::Lost("client closed".into()),
             }
         }
+        let unkept = self.bd_seq_unkept.clone();
         self.stat(|s| {
             s.connected = true;
             s.sessions += 1;
-            // (A delete of acknowledged rows that still fails stays said.)
+            // (A delete of acknowledged rows that still fails stays said,
+            // and so does a bdSeq the file could not take.)
             if self.flush_failed.is_none() {
-                s.last_error = None;
+                s.last_error = unkept;
             }
         });
         // Plain JSON: each session says each device's status again (what
@@ -1210,6 +1223,20 @@ pub fn buffered_parts(text: &str) -> Result<(Reading, Option<String>, bool), ser
 mod body_tests {
     use super::*;
     use fringe_protocol::{CalId, ChannelValue, Flags, Seq};
+
+    /// A session's bdSeq follows this run's last one, also where the file
+    /// could not take that one (it still holds the one before): taken
+    /// from the file, the number was used twice in a row. An earlier
+    /// run's number is followed on; 255 is followed by 0 (Sparkplug B
+    /// 3.0: bdSeq 0-255, one more each connection, from memory).
+    #[test]
+    fn the_bd_seq_follows_the_last_one_used_not_the_last_one_kept() {
+        assert_eq!(bd_seq_after(Some(6), Some(5)), 7);
+        assert_eq!(bd_seq_after(Some(6), None), 7);
+        assert_eq!(bd_seq_after(None, Some(5)), 6);
+        assert_eq!(bd_seq_after(None, None), 0);
+        assert_eq!(bd_seq_after(Some(255), Some(254)), 0);
+    }
 
     #[test]
     fn density_commands_are_told_apart_by_their_topic() {

@@ -266,13 +266,22 @@ impl Outbox {
     pub fn next_bd_seq(&self) -> Result<u64, OutboxError> {
         let cur = self.stored_bd_seq()?;
         let next = cur.map_or(0, |v| (v + 1) % 256);
+        self.store_bd_seq(next)?;
+        Ok(next)
+    }
+
+    /// Keeps `bd_seq` in the file as the last one used.
+    ///
+    /// # Errors
+    /// When the file cannot be written.
+    pub fn store_bd_seq(&self, bd_seq: u64) -> Result<(), OutboxError> {
         self.db
             .execute(
                 "INSERT INTO meta (key, value) VALUES ('bd_seq', ?1) ON CONFLICT(key) DO UPDATE SET value = ?1",
-                params![next as i64],
+                params![(bd_seq % 256) as i64],
             )
             .map_err(err("write bdSeq"))?;
-        Ok(next)
+        Ok(())
     }
 
     /// The last bdSeq kept in the file (none before the first session).
