@@ -159,7 +159,10 @@ pub fn check(input: &GateInput<'_>, limits: &Limits) -> Vec<Refusal> {
         let (lo, lo2, hi2, hi) = (v[0], v[1], v[n - 2], v[n - 1]);
         for (end, next, rest_span) in [(hi, hi2, hi2.1 - lo.1), (lo, lo2, hi.1 - lo2.1)] {
             let gap = (end.1 - next.1).abs();
-            if rest_span > 0.0 && gap > limits.lone_gap * rest_span {
+            // Where every other sample has one value, any gap is the one
+            // sample's alone (found by review: 59 samples at 21.0 C and
+            // one at 45.0 C set a temperature term from that one).
+            if gap > 0.0 && (rest_span <= 0.0 || gap > limits.lone_gap * rest_span) {
                 out.push(Refusal::RangeFromOneSample {
                     what,
                     id: end.0.to_string(),
@@ -222,6 +225,29 @@ mod tests {
             }]
         );
         assert!(r[0].to_string().contains("\"absurd\""));
+        // Every other sample at one temperature (a conditioned lab), one
+        // at 45 C: the range, and a temperature term, are that one's.
+        let mut t: Vec<(&str, f64)> = ["a", "b", "c", "d", "e"]
+            .into_iter()
+            .map(|id| (id, 21.0))
+            .collect();
+        t.push(("warm", 45.0));
+        let r = check(
+            &input(vec![("temperature_c", t.clone())]),
+            &Limits::default(),
+        );
+        assert_eq!(
+            r,
+            vec![Refusal::RangeFromOneSample {
+                what: "temperature_c",
+                id: "warm".into(),
+                value: 45.0,
+                next: 21.0
+            }]
+        );
+        // All at one value: no range to come from one sample.
+        t.pop();
+        assert!(check(&input(vec![("temperature_c", t)]), &Limits::default()).is_empty());
         // NaN statistics refuse (never pass by accident).
         let mut nan = input(vec![]);
         nan.rpd = f64::NAN;
