@@ -218,4 +218,26 @@ fn predict_refuses_samples_at_other_frequencies() {
         "{err}"
     );
     assert!(out.is_none(), "nothing may be written");
+    // --out on a file that predict did not write (the lab's own table
+    // under another name): refused, the file as it was. On predictions
+    // it wrote before: replaced.
+    let input = dir.path().join("in.csv");
+    std::fs::write(&input, table(&rows[..3])).expect("write");
+    let theirs = dir.path().join("lab-copy.csv");
+    std::fs::copy(&lab, &theirs).expect("copy");
+    let o = predict_cmd(&cal, &input, &theirs);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{err}");
+    assert!(
+        err.contains("exists and is not a table of predictions"),
+        "{err}"
+    );
+    assert_eq!(
+        std::fs::read(&theirs).unwrap(),
+        std::fs::read(&lab).unwrap()
+    );
+    let ours = dir.path().join("pred.csv");
+    assert!(predict_cmd(&cal, &input, &ours).status.success());
+    let o = predict_cmd(&cal, &input, &ours);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
 }

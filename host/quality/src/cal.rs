@@ -1702,12 +1702,26 @@ mod tests {
     fn malformed_or_repeated_lab_pairs_are_input_errors() {
         let dir = tempfile::tempdir().expect("dir");
         let p = dir.path().join("pairs.csv");
-        let cal = dir.path().join("unused.toml");
+        // A wet-basis calibration of the synthetic grain.
+        let csv = synth_csv(dir.path(), "lab.csv", 40, 81);
+        let cal = dir.path().join("p.toml");
+        fit(&args(csv, cal.clone(), FitModel::Relaxation), 0)
+            .expect("fit")
+            .file
+            .save(&cal)
+            .expect("save");
         let head = "sample_id,moisture_pct,predicted_moisture_pct\n";
-        let cases: [(&[u8], &str); 3] = [
+        let cases: [(&[u8], &str); 5] = [
             (b"G1,12.1,12.0\nG2,13.4\nG3,11.0,11.2\n", "line 3"),
             (b"G1,12.1,12.0\nG\xfc,13.4,13.3\n", "line 3"),
             (b"G1,12.1,12.0\nG2,13.4,13.3\nG1,12.1,12.0\n", "line 4"),
+            // A decimal point lost (14.5 as 145), and a negative one: a
+            // moisture on the calibration's wet basis is 0-100 %.
+            (
+                b"G1,12.1,12.0\nG2,145,14.4\n",
+                "line 3, column 2 (moisture_pct): `145`",
+            ),
+            (b"G1,-3,12.0\n", "line 2, column 2 (moisture_pct): `-3`"),
         ];
         for (rows, want) in cases {
             std::fs::write(&p, [head.as_bytes(), rows].concat()).expect("write");
@@ -1723,6 +1737,19 @@ mod tests {
         assert_eq!(
             pairs_from_csv(&p, &cal).expect("good").lab,
             vec![12.1, 13.4]
+        );
+        // A basis column that says otherwise than the calibration.
+        std::fs::write(
+            &p,
+            "sample_id,moisture_pct,predicted_moisture_pct,moisture_basis\nG1,12.1,12.0,wet\nG2,15.2,13.3,dry\n",
+        )
+        .expect("write");
+        let e = pairs_from_csv(&p, &cal)
+            .expect_err("dry on wet")
+            .to_string();
+        assert!(
+            e.contains("line 3, column 4 (moisture_basis): `dry`"),
+            "{e}"
         );
     }
 
@@ -1845,6 +1872,11 @@ pub fn pairs_from_csv(path: &Path, cal: &Path) -> Result<Pairs, AdjustError> {
             });
         }
     };
+    // The lab values are on the calibration's basis, within what a
+    // moisture on it can be, as a reference table's are (found by review:
+    // a value of 145 for 14.5 went into the tests and the correction).
+    let basis = ProductFile::load(cal)?.1.basis;
+    let basis_c = col("moisture_basis");
     let (mut lab, mut predicted) = (Vec::new(), Vec::new());
     for rec in rdr.records() {
         let rec = rec.map_err(csv_err)?;
@@ -1885,7 +1917,57 @@ pub fn pairs_from_csv(path: &Path, cal: &Path) -> Result<Pairs, AdjustError> {
                 })?;
             Ok(Some(v))
         };
-        if let (Some(l), Some(p)) = (get(lab_c, "moisture_pct")?, get(pred_c, "predicted")?) {
+        let l = get(lab_c, "moisture_pct")?;
+        if let Some(v) = l {
+            let (ok, expected) = match basis {
+                Basis::Dry => (
+                    (0.0..crate::samples::MAX_DRY_BASIS_PCT).contains(&v),
+                    "a lab moisture in % dry basis, 0 <= m < 1000 (the calibration's basis)",
+                ),
+                _ => (
+                    (0.0..100.0).contains(&v),
+                    "a lab moisture in % wet basis, 0 <= m < 100 (the calibration's basis)",
+                ),
+            };
+            if !ok {
+                return Err(SampleError::BadValue {
+                    file: path.to_path_buf(),
+                    line,
+                    column: lab_c + 1,
+                    field: "moisture_pct",
+                    value: rec.get(lab_c).unwrap_or("").to_string(),
+                    expected,
+                }
+                .into());
+            }
+            if let Some(c) = basis_c {
+                let said = rec.get(c).unwrap_or("").to_ascii_lowercase();
+                let (wet, dry) = (
+                    ["wet", "wb", "w.b.", "wet basis"].contains(&said.as_str()),
+                    ["dry", "db", "d.b.", "dry basis"].contains(&said.as_str()),
+                );
+                let agrees = said.is_empty()
+                    || match basis {
+                        Basis::Dry => dry,
+                        _ => wet,
+                    };
+                if !agrees {
+                    return Err(SampleError::BadValue {
+                        file: path.to_path_buf(),
+                        line,
+                        column: c + 1,
+                        field: "moisture_basis",
+                        value: rec.get(c).unwrap_or("").to_string(),
+                        expected: match basis {
+                            Basis::Dry => "dry (or an empty cell): the calibration is on a dry basis, and so must its lab values be",
+                            _ => "wet (or an empty cell): the calibration is on a wet basis, and so must its lab values be",
+                        },
+                    }
+                    .into());
+                }
+            }
+        }
+        if let (Some(l), Some(p)) = (l, get(pred_c, "predicted")?) {
             lab.push(l);
             predicted.push(p);
         }
@@ -1894,6 +1976,29 @@ pub fn pairs_from_csv(path: &Path, cal: &Path) -> Result<Pairs, AdjustError> {
         lab,
         predicted,
         source: path.display().to_string(),
+    })
+}
+
+/// Why a slope that differs significantly from 1 is not corrected
+/// (`None` where it does not, or can be).
+fn slope_left_words(t: &fringe_calibration::fit::adjust::BiasSlope) -> Option<String> {
+    (t.slope_significant && !t.slope_correctable()).then(|| {
+        format!(
+            "; the slope {:.3} (t {:.2} vs {:.2}) is not corrected: {}",
+            t.slope,
+            t.slope_t,
+            t.slope_t_crit,
+            if t.slope > 0.0 {
+                format!(
+                    "the lab values spread too little (SD {:.3} %, less than {} times the SEP {:.3} %), so it is mostly the readings' own scatter; for a slope take pairs over a wider range of moisture",
+                    t.lab_sd,
+                    fringe_calibration::fit::adjust::SLOPE_SPREAD,
+                    t.sep
+                )
+            } else {
+                "lab and predicted do not rise together; check that the pairs belong together".to_string()
+            }
+        )
     })
 }
 
@@ -1995,11 +2100,12 @@ pub fn adjust(
         AdjustCorrection::BiasSlope => Correction::BiasAndSlope,
     };
     // A forced correction the tests do not call for: a bias correction
-    // where the bias is not significant, a slope one where the slope is not.
+    // where the bias is not significant, a slope one where the slope is
+    // not, or where the pairs cannot correct a slope.
     let forced = match applied {
         Correction::None => false,
         Correction::Bias => !tests.bias_significant,
-        Correction::BiasAndSlope => !tests.slope_significant,
+        Correction::BiasAndSlope => !tests.slope_significant || !tests.slope_correctable(),
     };
     let st = &file.statistics;
     let unexplained = st
@@ -2082,15 +2188,19 @@ pub fn adjust(
         String::new()
     };
     let forced_words = if forced {
+        let lean = slope_left_words(&tests).unwrap_or_default();
         match tests.recommended() {
-            Correction::None => {
-                "; forced with --correct: the tests at this alpha call for no correction"
-            }
-            Correction::Bias => "; forced with --correct: the tests at this alpha call for a bias correction only",
-            Correction::BiasAndSlope => "; forced with --correct: the tests at this alpha call for a bias and slope correction",
+            Correction::None => format!(
+                "; forced with --correct: the tests at this alpha call for no correction{lean}"
+            ),
+            Correction::Bias => format!("; forced with --correct: the tests at this alpha call for a bias correction only{lean}"),
+            Correction::BiasAndSlope => "; forced with --correct: the tests at this alpha call for a bias and slope correction".to_string(),
         }
+    } else if applied != Correction::BiasAndSlope {
+        // A significant slope left as it is: said why.
+        slope_left_words(&tests).unwrap_or_default()
     } else {
-        ""
+        String::new()
     };
     let raised_words = if raised {
         format!(
@@ -2167,7 +2277,7 @@ pub fn write_adjust(
             "source": o.source,
             "alpha": t.alpha,
             "bias": {"value": t.bias, "ci": [t.bias_ci.0, t.bias_ci.1], "t": t.bias_t, "t_crit": t.bias_t_crit, "significant": t.bias_significant},
-            "slope": {"value": t.slope, "intercept": t.intercept, "se": t.slope_se, "ci": [t.slope_ci.0, t.slope_ci.1], "t": t.slope_t, "t_crit": t.slope_t_crit, "significant": t.slope_significant},
+            "slope": {"value": t.slope, "intercept": t.intercept, "se": t.slope_se, "ci": [t.slope_ci.0, t.slope_ci.1], "t": t.slope_t, "t_crit": t.slope_t_crit, "significant": t.slope_significant, "correctable": t.slope_correctable(), "lab_sd": t.lab_sd},
             "sep": {"value": t.sep, "ci": [t.sep_ci.0, t.sep_ci.1]},
             "rmsep": t.rmsep,
             "residual_sd": t.s_res,
@@ -2239,10 +2349,16 @@ pub fn write_adjust(
             f.source.parent_id.as_deref().unwrap_or("-"),
             f.source.derivation.as_deref().unwrap_or("")
         )?,
-        (None, Correction::None) => writeln!(
-            w,
-            "neither bias nor slope is significant: no correction, nothing written"
-        )?,
+        (None, Correction::None) => match slope_left_words(&o.tests) {
+            Some(why) => writeln!(
+                w,
+                "the bias is not significant{why}: no correction, nothing written"
+            )?,
+            None => writeln!(
+                w,
+                "neither bias nor slope is significant: no correction, nothing written"
+            )?,
+        },
         (None, _) => {}
     }
     Ok(())

@@ -93,6 +93,34 @@ fn may_write_product(out: &Path, flag: &str, inputs: &[(&Path, &str)]) -> anyhow
     }
 }
 
+/// `cal predict --out`: a file there is replaced only where it is one
+/// `cal predict` wrote (its CSV header, or its JSON); any other is left as
+/// it is (found by review: a lab's reference table given as --out was
+/// replaced without a word).
+fn may_replace_predictions(out: &Path) -> anyhow::Result<()> {
+    let Ok(meta) = std::fs::symlink_metadata(out) else {
+        return Ok(());
+    };
+    let ours = meta.is_file()
+        && std::fs::read(out).is_ok_and(|b| {
+            let header = cal::PREDICT_COLUMNS.join(",");
+            let first = b.split(|c| *c == b'\n').next().unwrap_or(&[]);
+            let first = first.strip_suffix(b"\r").unwrap_or(first);
+            first == header.as_bytes()
+                || serde_json::from_slice::<serde_json::Value>(&b)
+                    .is_ok_and(|v| v.get("rows").is_some() && v.get("confidence").is_some())
+        });
+    if ours {
+        Ok(())
+    } else {
+        Err(crate::exit::UsageError(format!(
+            "--out {}: exists and is not a table of predictions fringe wrote; nothing written (choose another name, or move that file)",
+            out.display()
+        ))
+        .into())
+    }
+}
+
 fn now_s() -> u64 {
     (fringe_store::now_unix_ms() / 1000).max(0) as u64
 }
@@ -161,6 +189,7 @@ pub fn run_predict(args: &PredictArgs) -> anyhow::Result<()> {
             "--out",
             &[(&args.input, "--input"), (&args.cal, "--cal")],
         )?;
+        may_replace_predictions(out)?;
     }
     let rows = cal::predict(&args.cal, &args.input, args.eps_sd, args.confidence)?;
     if args.json {
