@@ -5,11 +5,9 @@
 //! first failed accept ended the server for good, silently.)
 
 use std::net::TcpStream;
-use std::sync::Arc;
 use std::time::Duration;
 
-use common::{read_unit_1, table_with_unit_1};
-use fringe_gateway::modbus::ModbusServer;
+use common::{read_unit_1, serving_unit_1};
 
 mod common;
 
@@ -34,17 +32,7 @@ fn open_fds() -> u64 {
 
 #[test]
 fn the_server_listens_again_after_running_out_of_file_descriptors() {
-    let table = table_with_unit_1("PLT-FD-0001");
-    let said: Arc<std::sync::Mutex<Vec<String>>> = Arc::default();
-    let tell = Arc::clone(&said);
-    let server = ModbusServer::start_with(
-        "127.0.0.1:0".parse().unwrap(),
-        Arc::clone(&table),
-        fringe_registers::WordOrder::HighFirst,
-        None,
-        Some(Arc::new(move |t: String| tell.lock().unwrap().push(t))),
-    )
-    .expect("bind");
+    let (server, said) = serving_unit_1("PLT-FD-0001");
     let addr = server.local_addr();
     assert!(read_unit_1(addr).is_ok(), "served before");
 

@@ -3,11 +3,10 @@
 
 use std::io::Read;
 use std::net::{IpAddr, TcpStream};
-use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-use common::{connect_from, read_unit_1_from, table_with_unit_1};
-use fringe_gateway::modbus::{ModbusServer, MAX_CONNECTIONS, MAX_CONNECTIONS_PER_CLIENT};
+use common::{connect_from, read_unit_1_from, serving_unit_1};
+use fringe_gateway::modbus::{MAX_CONNECTIONS, MAX_CONNECTIONS_PER_CLIENT};
 
 mod common;
 
@@ -48,17 +47,7 @@ fn ask_unit_1(c: &mut TcpStream) -> std::io::Result<Vec<u8>> {
 /// and the failed accept then closed every connection, the PLC's too.
 #[test]
 fn connections_past_the_limits_are_closed_and_the_rest_still_served() {
-    let table = table_with_unit_1("PLT-FD-0002");
-    let said: Arc<std::sync::Mutex<Vec<String>>> = Arc::default();
-    let tell = Arc::clone(&said);
-    let server = ModbusServer::start_with(
-        "127.0.0.1:0".parse().unwrap(),
-        Arc::clone(&table),
-        fringe_registers::WordOrder::HighFirst,
-        None,
-        Some(Arc::new(move |t: String| tell.lock().unwrap().push(t))),
-    )
-    .expect("bind");
+    let (server, said) = serving_unit_1("PLT-FD-0002");
     let addr = server.local_addr();
     let ip = |n: u8| IpAddr::from([127, 0, 0, n]);
     let hold = |from: IpAddr, n: usize| -> Vec<TcpStream> {

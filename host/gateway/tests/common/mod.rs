@@ -24,6 +24,27 @@ pub fn table_with_unit_1(serial: &str) -> Arc<LiveTable> {
     table
 }
 
+/// A Modbus TCP server on a free localhost port serving
+/// [`table_with_unit_1`], and what it says (kept in order).
+pub fn serving_unit_1(
+    serial: &str,
+) -> (
+    fringe_gateway::modbus::ModbusServer,
+    Arc<std::sync::Mutex<Vec<String>>>,
+) {
+    let said: Arc<std::sync::Mutex<Vec<String>>> = Arc::default();
+    let tell = Arc::clone(&said);
+    let server = fringe_gateway::modbus::ModbusServer::start_with(
+        "127.0.0.1:0".parse().unwrap(),
+        table_with_unit_1(serial),
+        fringe_registers::WordOrder::HighFirst,
+        None,
+        Some(Arc::new(move |t: String| tell.lock().unwrap().push(t))),
+    )
+    .expect("bind");
+    (server, said)
+}
+
 /// Unit 1's first input register pair, read by a Modbus TCP client.
 #[allow(dead_code)] // (not every test binary reads from another address)
 pub fn read_unit_1(addr: std::net::SocketAddr) -> Result<Vec<u16>, String> {
