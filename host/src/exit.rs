@@ -112,6 +112,10 @@ impl ExitCode {
                     Some(fringe_quality::cal::PredictError::OtherFrequencies { .. })
                 )
                 || matches!(
+                    cause.downcast_ref::<fringe_quality::cal::AdjustError>(),
+                    Some(fringe_quality::cal::AdjustError::OtherCalibration { .. })
+                )
+                || matches!(
                     cause.downcast_ref::<fringe_quality::cal::FitError>(),
                     Some(
                         fringe_quality::cal::FitError::NoDensity { .. }

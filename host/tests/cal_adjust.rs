@@ -115,6 +115,26 @@ fn adjust_writes_a_child_calibration_that_removes_a_significant_bias() {
     let v: serde_json::Value = serde_json::from_str(ok(&o).trim()).expect("json");
     let b = v["against_lab"]["bias"].as_f64().expect("bias");
     assert!(b.abs() < 0.01, "bias after adjustment {b}");
+    // The parent's pairs given to adjust the child: refused (its bias
+    // would be removed twice), exit 3, nothing written.
+    let again = d.join("again.toml");
+    let o = Command::new(env!("CARGO_BIN_EXE_fringe"))
+        .args(["cal", "adjust", "--cal"])
+        .arg(&adj)
+        .arg("--pairs")
+        .arg(d.join("pairs.csv"))
+        .arg("--out")
+        .arg(&again)
+        .output()
+        .expect("run");
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(3), "{err}");
+    assert!(
+        err.contains(&format!("predicted with calibration {}", id(&parent)))
+            && err.contains(&id(&child)),
+        "{err}"
+    );
+    assert!(!again.exists(), "nothing written");
 
     // Unbiased pairs: nothing significant, nothing written.
     std::fs::write(d.join("grabs2.csv"), table(10, 0.0)).expect("write");

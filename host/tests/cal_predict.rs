@@ -68,7 +68,7 @@ fn predict_keeps_the_lab_value_and_adds_interval_leverage_and_flags() {
     let mut lines = text.lines();
     assert_eq!(
         lines.next(),
-        Some("sample_id,moisture_pct,predicted_moisture_pct,uncertainty_pct,interval_low_pct,interval_high_pct,leverage,flags")
+        Some("sample_id,moisture_pct,predicted_moisture_pct,uncertainty_pct,interval_low_pct,interval_high_pct,leverage,flags,cal_id")
     );
     let n1: Vec<&str> = lines.next().expect("N1").split(',').collect();
     assert_eq!(n1[0], "N1");

@@ -173,6 +173,18 @@ pub enum AdjustError {
     /// The adjusted model does not fit the wire form.
     #[error("the adjusted model has too many parameters for the device")]
     TooMany,
+    /// Pairs predicted with another calibration than the one adjusted.
+    #[error("{}: line {line}: predicted with calibration {predicted_with} (its cal_id), and the calibration adjusted is {adjusted}: its bias would be judged on another's readings; predict the pairs again with --cal of the one adjusted", file.display())]
+    OtherCalibration {
+        /// The pairs' file.
+        file: PathBuf,
+        /// Line of the first such pair.
+        line: u64,
+        /// The id the pairs name.
+        predicted_with: String,
+        /// The calibration adjusted.
+        adjusted: String,
+    },
 }
 
 /// Which model `cal fit` fits.
@@ -1118,6 +1130,8 @@ pub struct Predicted {
     pub flags: Flags,
     /// Lab moisture if the input had one.
     pub lab_pct: Option<f64>,
+    /// Content id of the calibration that made the prediction.
+    pub cal_id: String,
 }
 
 /// Evaluates every sample of `input` with the calibration, as the device
@@ -1220,13 +1234,15 @@ pub fn predict(
                         Flags::empty()
                     },
                 lab_pct: s.moisture_pct,
+                cal_id: file.id.clone(),
             })
         })
         .collect()
 }
 
-/// Columns of `cal predict`'s CSV.
-pub const PREDICT_COLUMNS: [&str; 8] = [
+/// Columns of `cal predict`'s CSV (`cal_id`, the calibration that
+/// predicted, last: files written before it have the others alone).
+pub const PREDICT_COLUMNS: [&str; 9] = [
     "sample_id",
     "moisture_pct",
     "predicted_moisture_pct",
@@ -1235,6 +1251,7 @@ pub const PREDICT_COLUMNS: [&str; 8] = [
     "interval_high_pct",
     "leverage",
     "flags",
+    "cal_id",
 ];
 
 /// Flag names of a row: the device's, plus `beyond_calibration` when the
@@ -1269,6 +1286,7 @@ pub fn write_predictions<W: std::io::Write>(w: W, rows: &[Predicted]) -> Result<
             cell(PREDICT_COLUMNS[5], r.interval_pct.map(|i| i.1)),
             cell(PREDICT_COLUMNS[6], Some(r.leverage)),
             flag_names(r).join("|"),
+            r.cal_id.clone(),
         ])?;
     }
     c.flush()?;
@@ -1317,6 +1335,7 @@ pub fn predictions_json(rows: &[Predicted], confidence: f64) -> serde_json::Valu
             "interval_pct": r.interval_pct.map_or(json!(null), |(a, b)| json!([a, b])),
             "leverage": num(Some(r.leverage)),
             "flags": flag_names(r),
+            "cal_id": r.cal_id,
         })).collect::<Vec<_>>(),
         "against_lab": stats,
     })
@@ -1658,7 +1677,7 @@ mod tests {
         let text = String::from_utf8(buf).expect("utf8");
         assert!(
             text.starts_with(
-                "sample_id,moisture_pct,predicted_moisture_pct,uncertainty_pct,interval_low_pct,interval_high_pct,leverage,flags\n"
+                "sample_id,moisture_pct,predicted_moisture_pct,uncertainty_pct,interval_low_pct,interval_high_pct,leverage,flags,cal_id\n"
             ),
             "{text}"
         );
@@ -1875,8 +1894,13 @@ pub fn pairs_from_csv(path: &Path, cal: &Path) -> Result<Pairs, AdjustError> {
     // The lab values are on the calibration's basis, within what a
     // moisture on it can be, as a reference table's are (found by review:
     // a value of 145 for 14.5 went into the tests and the correction).
-    let basis = ProductFile::load(cal)?.1.basis;
+    let (cal_file, cal_wire) = ProductFile::load(cal)?;
+    let basis = cal_wire.basis;
     let basis_c = col("moisture_basis");
+    // Pairs `cal predict` made with another calibration (the parent of the
+    // one adjusted, say) tell nothing of this one: its bias would be
+    // removed twice (found by review).
+    let cal_id_c = col("cal_id");
     let (mut lab, mut predicted) = (Vec::new(), Vec::new());
     for rec in rdr.records() {
         let rec = rec.map_err(csv_err)?;
@@ -1917,6 +1941,17 @@ pub fn pairs_from_csv(path: &Path, cal: &Path) -> Result<Pairs, AdjustError> {
                 })?;
             Ok(Some(v))
         };
+        if let Some(c) = cal_id_c {
+            let id = rec.get(c).unwrap_or("");
+            if !id.is_empty() && id != cal_file.id {
+                return Err(AdjustError::OtherCalibration {
+                    file: path.to_path_buf(),
+                    line,
+                    predicted_with: id.to_string(),
+                    adjusted: cal_file.id.clone(),
+                });
+            }
+        }
         let l = get(lab_c, "moisture_pct")?;
         if let Some(v) = l {
             let (ok, expected) = match basis {

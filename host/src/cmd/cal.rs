@@ -103,10 +103,13 @@ fn may_replace_predictions(out: &Path) -> anyhow::Result<()> {
     };
     let ours = meta.is_file()
         && std::fs::read(out).is_ok_and(|b| {
+            // (Also the header before `cal_id` was added, last.)
             let header = cal::PREDICT_COLUMNS.join(",");
+            let before = cal::PREDICT_COLUMNS[..cal::PREDICT_COLUMNS.len() - 1].join(",");
             let first = b.split(|c| *c == b'\n').next().unwrap_or(&[]);
             let first = first.strip_suffix(b"\r").unwrap_or(first);
             first == header.as_bytes()
+                || first == before.as_bytes()
                 || serde_json::from_slice::<serde_json::Value>(&b)
                     .is_ok_and(|v| v.get("rows").is_some() && v.get("confidence").is_some())
         });
