@@ -257,20 +257,10 @@ impl Outbox {
         Ok(self.len()? == 0)
     }
 
-    /// The next birth/death sequence number (`bdSeq`, 0-255), counted up
-    /// and kept in the file so that it never repeats across restarts
-    /// within its 256 steps.
-    ///
-    /// # Errors
-    /// When the file cannot be written.
-    pub fn next_bd_seq(&self) -> Result<u64, OutboxError> {
-        let cur = self.stored_bd_seq()?;
-        let next = cur.map_or(0, |v| (v + 1) % 256);
-        self.store_bd_seq(next)?;
-        Ok(next)
-    }
-
-    /// Keeps `bd_seq` in the file as the last one used.
+    /// Keeps `bd_seq`, the birth/death sequence number (0-255) of the
+    /// session the publisher starts, in the file as the last one used, so
+    /// that the next run counts on from it (the number itself is chosen by
+    /// the publisher: `mqtt::bd_seq_after`).
     ///
     /// # Errors
     /// When the file cannot be written.
@@ -366,7 +356,8 @@ mod tests {
             let rows = o.next(0, 3).unwrap();
             assert_eq!(rows.len(), 3);
             o.done_many(&[rows[0].id, rows[1].id]).unwrap();
-            assert_eq!(o.next_bd_seq().unwrap(), 0);
+            assert_eq!(o.stored_bd_seq().unwrap(), None);
+            o.store_bd_seq(0).unwrap();
         }
         let o = Outbox::open(&path).unwrap();
         assert_eq!(o.len().unwrap(), 3);
@@ -378,6 +369,8 @@ mod tests {
                 json: "{\"n\":2}".into()
             }
         );
-        assert_eq!(o.next_bd_seq().unwrap(), 1);
+        assert_eq!(o.stored_bd_seq().unwrap(), Some(0));
+        o.store_bd_seq(1).unwrap();
+        assert_eq!(o.stored_bd_seq().unwrap(), Some(1));
     }
 }
