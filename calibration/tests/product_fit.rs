@@ -6,8 +6,8 @@
 
 use fringe_calibration::estimate::{estimate, Channel, EstimateInput};
 use fringe_calibration::fit::{
-    compare, fit_relaxation, fit_single, synthetic_samples, ChannelReading, MixingFit,
-    ProductFitError, RelaxationOptions, Sample, SingleOptions, SynthSpec,
+    compare, fit_relaxation, fit_single, synthetic_samples, ChannelReading, IntervalModel,
+    MixingFit, ProductFitError, RelaxationOptions, Sample, SingleOptions, SynthSpec,
 };
 use fringe_calibration::product::{ModelKind, ProductModel};
 use fringe_calibration::stats::Folds;
@@ -222,11 +222,12 @@ fn refuses_bad_samples_by_name() {
         fit_single(&few(6), &SingleOptions::default()).unwrap_err(),
         ProductFitError::TooFewSamples { needed: 7, got: 6 }
     );
-    // Relaxation, degree 2: 5 coefficients, so 8 samples needed (the static
-    // terms' two more are not tried below five samples per coefficient).
+    // Relaxation, degree 2: 5 coefficients and the mixing parameter, so 9
+    // samples needed (the static terms' two more are not tried below five
+    // samples per fitted parameter).
     assert_eq!(
-        fit_relaxation(&few(7), &relax_opts()).unwrap_err(),
-        ProductFitError::TooFewSamples { needed: 8, got: 7 }
+        fit_relaxation(&few(8), &relax_opts()).unwrap_err(),
+        ProductFitError::TooFewSamples { needed: 9, got: 8 }
     );
     let base = few(12);
 
@@ -564,4 +565,53 @@ fn a_dry_basis_table_gives_the_wet_basis_mixture() {
         "seed {seed}: SEP {} on a dry basis",
         fit.stats.cross_validation.sep
     );
+}
+
+/// A reading whose leverage cannot be computed gets no prediction interval
+/// and is marked as an extrapolation (before, it got the interval of a
+/// reading at average leverage, the narrowest there is). The leverage is
+/// made incomputable here by a leverage matrix of the wrong size, as a
+/// model whose features the reading cannot form would give.
+#[test]
+fn a_reading_without_a_leverage_gets_no_interval() {
+    let seed = 4243;
+    let fit = fit_single(
+        &synthetic_samples(&grain(), &SynthSpec::default(), seed),
+        &SingleOptions::default(),
+    )
+    .unwrap();
+    let s = &synthetic_samples(&grain(), &SynthSpec::default(), seed + 1)[0];
+    let mut ch = s.channels.clone();
+    ch.sort_by(|a, b| a.freq_hz.total_cmp(&b.freq_hz));
+    let eps = [0, 1].map(|k| (ch[k].eps_re, ch[k].eps_loss));
+    let mut im = IntervalModel::of(&fit);
+    let whole = im
+        .predict(
+            &fit.model,
+            &fit.calibration,
+            eps,
+            s.temperature_c,
+            None,
+            0.95,
+        )
+        .unwrap();
+    assert!(
+        whole.leverage.is_finite() && whole.interval_pct.is_some(),
+        "seed {seed}: {whole:?}"
+    );
+    im.leverage_matrix.clear();
+    let p = im
+        .predict(
+            &fit.model,
+            &fit.calibration,
+            eps,
+            s.temperature_c,
+            None,
+            0.95,
+        )
+        .unwrap();
+    assert!(p.estimate.moisture_pct.is_some(), "seed {seed}: {p:?}");
+    assert!(p.leverage.is_nan(), "seed {seed}: {p:?}");
+    assert_eq!(p.interval_pct, None, "seed {seed}");
+    assert!(p.extrapolation && p.marked(), "seed {seed}: {p:?}");
 }

@@ -282,9 +282,10 @@ fn run_in(a: &DemoArgs) -> anyhow::Result<DemoOutputs> {
     );
 
     // 2. Reference samples.
-    // Five samples per parameter of the relaxation model (the quality gate;
-    // its two static terms are tried from 35 samples on).
-    let n_samples = if a.short { 26 } else { 36 };
+    // Five samples per parameter of the relaxation model (the quality gate:
+    // five regression coefficients and the mixing parameter, so 30; its two
+    // static terms are tried from 40 samples on).
+    let n_samples = if a.short { 30 } else { 36 };
     stage(2, total, &format!("capturing {n_samples} reference samples of {PRODUCT} (lab: oven 130 C, ground; invented values)"));
     let mut rows = Vec::new();
     for i in 0..n_samples {

@@ -6,7 +6,7 @@
 //! | --- | --- | --- |
 //! | [`Refusal::LowRpd`] | cross-validated RPD < 2 | RPD = SD(lab) / SEP; below 2 the calibration barely ranks samples (common practice in NIR calibration, no source) |
 //! | [`Refusal::LowR2`] | cross-validated R^2 < 0.8 | the same question as a share of variance |
-//! | [`Refusal::TooFewSamples`] | n < 5 x parameters | five samples per fitted parameter (common practice, no source); effective parameters for ridge and PLS |
+//! | [`Refusal::TooFewSamples`] | n < 5 x parameters | five samples per fitted parameter (common practice, no source); effective parameters for ridge and PLS; the relaxation model's regression coefficients and its mixing parameter |
 //! | [`Refusal::RangeFromOneSample`] | one sample sets a valid range alone | its value stands apart from the rest by more than half the rest's span, so the range claims what one (perhaps wrong) sample shows |
 //!
 //! Values outside physical limits (temperature outside -40..150 C, eps'

@@ -24,7 +24,8 @@
 //!      inversion at the fitted law; sigma held in the conductivity term
 //!      at a tenth of the samples' ln sigma span below their lowest
 //!      (parameter layout 3).
-//!   3. **Static terms** (from five samples per coefficient on): the same
+//!   3. **Static terms** (from five samples per fitted parameter on, the
+//!      mixing parameter counted): the same
 //!      regression plus `q1 h + q2 h^2`, h the mixing-model moisture of
 //!      eps_hf + d_eps held to the calibration samples' range widened by a
 //!      tenth, kept only where in the same cross-validation folds it
@@ -505,7 +506,9 @@ pub struct Excluded {
 pub struct FitStatistics {
     /// Number of samples.
     pub n: usize,
-    /// Regression coefficients fitted (including the constant).
+    /// Parameters fitted against the lab values: the regression's
+    /// coefficients (including the constant; effective ones for ridge and
+    /// PLS) and the relaxation model's mixing parameter.
     pub n_coef: usize,
     /// Standard error of calibration, `sqrt(sum e^2 / (n - n_coef))`, from
     /// the device-path fitted values.
@@ -582,7 +585,7 @@ pub struct ReadingPrediction {
     pub estimate: crate::estimate::Estimate<f32>,
     /// Prediction interval for the lab value of this reading,
     /// `moisture +/- t(1 - a/2, n - k) sqrt(RMSEP_cv^2 + s^2 max(h0 - mean h, 0))`,
-    /// %; `None` without a moisture. The textbook interval `t s sqrt(1 +
+    /// %; `None` without a moisture or without a leverage. The textbook interval `t s sqrt(1 +
     /// h0)` (Draper and Smith, Applied Regression Analysis, 3rd ed., 1998,
     /// section 3.2) assumes the model is right; on the zoo's products it
     /// covered 84-89 % where 95 % was asked, so the cross-validated RMSEP
@@ -590,7 +593,8 @@ pub struct ReadingPrediction {
     /// ([`ProductFit::interval_sd`]).
     pub interval_pct: Option<(f64, f64)>,
     /// Leverage `h0` of the reading in the regression (NaN when its
-    /// features cannot be formed, e.g. a failed inversion).
+    /// features cannot be formed, e.g. a failed inversion; the reading then
+    /// has no interval and is marked as an extrapolation).
     pub leverage: f64,
     /// The leverage exceeds the calibration set's largest: the reading lies
     /// outside the calibration data even if every input is within range.
@@ -976,8 +980,13 @@ struct Fitted {
     inputs: Vec<Range<f32>>,
     law_std_err: Option<[f64; 4]>,
     columns: Vec<usize>,
-    /// Parameters fitted (effective ones for a penalised fit; constant included).
+    /// Regression coefficients fitted (effective ones for a penalised fit;
+    /// constant included): the mean leverage is this over the samples.
     n_coef: usize,
+    /// Further parameters fitted against the lab values outside the
+    /// regression (the relaxation model's mixing parameter): counted in
+    /// the SEC's degrees of freedom and the quality gate's parameters.
+    other_params: usize,
 }
 
 /// Leave-one-out coefficients without refitting: for least squares,
@@ -1096,7 +1105,7 @@ where
         fitted.lin.residual_sd,
     )?;
     let fitted_pct = predict_all(&cal0, &all)?;
-    let n_coef = fitted.n_coef;
+    let n_coef = fitted.n_coef + fitted.other_params;
     let sec_pct = crate::stats::sec(&y, &fitted_pct, n_coef).map_err(ProductFitError::Stats)?;
     let (calibration, params) = device_cal(
         &fitted.model,
@@ -1376,13 +1385,15 @@ impl IntervalModel {
     }
 
     /// The model's features of a reading for the leverage (`None` when they
-    /// cannot be formed, e.g. a failed inversion).
+    /// cannot be formed, e.g. a failed inversion); `device`: the
+    /// parameters of the device's own inversion, if it found them.
     fn features(
         &self,
         model: &ProductModel<f64>,
         eps: [(f64, f64); 2],
         temperature_c: f64,
         rho_kg_m3: Option<f64>,
+        device: Option<MaterialParams<f64>>,
     ) -> Option<Vec<f64>> {
         let f: Vec<f64> = match model {
             ProductModel::SingleFrequency(m) => {
@@ -1394,9 +1405,16 @@ impl IntervalModel {
                     eps: Cx::new(eps[k].0, -eps[k].1),
                     sd: self.eps_sd,
                 });
-                let inv = invert(&obs, &m.law, temperature_c, &InvertOptions::default()).ok()?;
+                // The f64 inversion; where it does not converge to its
+                // tighter tolerance, the parameters the device's f32
+                // inversion found (those its moisture comes from: on
+                // green coffee at 0.5/10 MHz, 10 of 200 readings).
+                let params = invert(&obs, &m.law, temperature_c, &InvertOptions::default())
+                    .map(|inv| inv.params)
+                    .ok()
+                    .or(device)?;
                 m.at_reading_density(rho_kg_m3)
-                    .features(&inv.params, temperature_c)
+                    .features(&params, temperature_c)
                     .to_vec()
             }
             ProductModel::Multivariate(m) => {
@@ -1455,8 +1473,13 @@ impl IntervalModel {
             self.eps_sd,
         );
         let estimate = estimate(&input, Some(cal));
+        let device = estimate.inversion.map(|inv| MaterialParams {
+            eps_hf: f64::from(inv.params.eps_hf),
+            d_eps: f64::from(inv.params.d_eps),
+            sigma_s_m: f64::from(inv.params.sigma_s_m),
+        });
         let leverage = self
-            .features(model, eps, temperature_c, bulk_density_kg_m3)
+            .features(model, eps, temperature_c, bulk_density_kg_m3, device)
             .map_or(f64::NAN, |row| self.leverage(&row));
         let r = self.residual_sd;
         // The cross-validated RMSEP is the error of a new reading of average
@@ -1495,10 +1518,16 @@ impl IntervalModel {
                 var += d * d;
             }
         }
-        let interval_pct = estimate.moisture_pct.map(|m| {
-            let half = t * var.sqrt();
-            (f64::from(m) - half, f64::from(m) + half)
-        });
+        // A reading whose leverage cannot be computed gets no interval: its
+        // distance from the calibration data is unknown, and the interval
+        // of a reading at average leverage would claim more than is known.
+        let interval_pct = estimate
+            .moisture_pct
+            .filter(|_| leverage.is_finite())
+            .map(|m| {
+                let half = t * var.sqrt();
+                (f64::from(m) - half, f64::from(m) + half)
+            });
         Ok(ReadingPrediction {
             estimate,
             interval_pct,
@@ -1572,6 +1601,7 @@ pub fn fit_single(samples: &[Sample], opts: &SingleOptions) -> Result<ProductFit
         inputs,
         law_std_err: None,
         n_coef: cols.len(),
+        other_params: 0,
         columns: cols,
     };
     finish(
@@ -1664,6 +1694,20 @@ fn relax_extra(with_static: bool) -> &'static [usize] {
 /// The regression's columns of the relaxation model.
 fn relax_columns(opts: &RelaxationOptions) -> Vec<usize> {
     columns(opts.degree, relax_extra(opts.static_terms))
+}
+
+/// Parameters of the relaxation model fitted against the lab values
+/// besides its regression's coefficients: the mixing parameter (the
+/// dry-matter permittivity or the mixing exponent), chosen on the
+/// regression's residuals. The relaxation law is fitted to the samples'
+/// spectra, not to their lab values, and is not counted (our reading, no
+/// source).
+const MIXING_PARAMS: usize = 1;
+
+/// Parameters the relaxation model with `opts` fits against the lab
+/// values: its regression's coefficients and [`MIXING_PARAMS`].
+fn relax_params(opts: &RelaxationOptions) -> usize {
+    relax_columns(opts).len() + MIXING_PARAMS
 }
 
 /// The ranges a relaxation model holds its static terms' moisture and its
@@ -2111,11 +2155,12 @@ fn check_relaxation_options(opts: &RelaxationOptions) -> Result<(), ProductFitEr
 
 /// Fits the relaxation model (see the module docs).
 ///
-/// Needs at least `degree + 3 + 3` samples (polynomial, temperature and
-/// conductivity terms, plus three) that the model can use, and two more
-/// with the static terms ([`RelaxationOptions::static_terms`]). The model is
-/// fitted without them, and a note says why, where the table has fewer
-/// than five samples per coefficient with them (the quality gate's rule),
+/// Needs at least `degree + 4 + 3` samples (polynomial, temperature and
+/// conductivity terms, the mixing parameter, plus three) that the model can
+/// use, and two more with the static terms
+/// ([`RelaxationOptions::static_terms`]). The model is fitted without them,
+/// and a note says why, where the table has fewer than five samples per
+/// fitted parameter with them (the quality gate's rule),
 /// where the fit with them fails for a reason that may be theirs (an
 /// undetermined regression, samples it cannot use), where it leaves out
 /// more samples than the fit without them, or where in the same
@@ -2181,11 +2226,11 @@ fn fit_relaxation_law(
     // samples for each. Below that the model is fitted without them (a
     // calibration `cal fit` could not write is no use).
     let per = super::gate::Limits::default().samples_per_param;
-    let with_static = relax_columns(opts).len() * per;
+    let with_static = relax_params(opts) * per;
     if opts.static_terms && samples.len() < with_static && check_relaxation_options(opts).is_ok() {
         let mut fit = fit_relaxation_terms(samples, &plain, &cache)?;
         fit.notes.push(format!(
-            "fitted without the static terms (the held mixing-model moisture of eps_hf + d_eps): with them the model needs {with_static} samples, five per coefficient, and the table has {}",
+            "fitted without the static terms (the held mixing-model moisture of eps_hf + d_eps): with them the model needs {with_static} samples, five per fitted parameter, and the table has {}",
             samples.len()
         ));
         return Ok(fit);
@@ -2339,8 +2384,7 @@ fn prepare_relaxation(
             return Err(ProductFitError::MissingDensity { id: s.id.clone() });
         }
     }
-    let cols = relax_columns(opts);
-    let needed = cols.len() + 3;
+    let needed = relax_params(opts) + 3;
     let checked = check_samples(samples, needed)?;
     let bounds = crate::invert::Bounds::<f64>::default();
     let mut keep: Vec<usize> = (0..samples.len()).collect();
@@ -2541,6 +2585,7 @@ fn finish_relaxation(
         inputs,
         law_std_err: Some(core.law_std_err),
         n_coef: relax_columns(opts).len(),
+        other_params: MIXING_PARAMS,
         columns: relax_columns(opts),
     };
     let hold = match &fitted.model {
@@ -3202,6 +3247,7 @@ pub fn fit_multivariate(
         law_std_err: None,
         columns: (0..=MV_FEATURES).collect(),
         n_coef: 1 + core.edf.ceil() as usize,
+        other_params: 0,
     };
     let (method, tkn, density) = (opts.method, opts.density_independent, opts.density_input);
     let mut fit = finish(

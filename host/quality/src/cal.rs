@@ -374,9 +374,10 @@ fn n_coef(model: FitModel, degree: usize) -> usize {
         // c0..c_degree + temperature term (also the least any model of a
         // comparison needs; each refuses on its own below its minimum)
         FitModel::Single | FitModel::Compare => degree + 2,
-        // p0..p_degree + temperature + conductivity terms (the two static
-        // terms are tried only from five samples per coefficient on)
-        FitModel::Relaxation => degree + 3,
+        // p0..p_degree + temperature + conductivity terms + the mixing
+        // parameter (the two static terms are tried only from five samples
+        // per parameter on)
+        FitModel::Relaxation => degree + 4,
         FitModel::Multivariate | FitModel::Pls => MV_MIN_SAMPLES - 3,
     }
 }
