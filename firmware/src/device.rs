@@ -1844,11 +1844,16 @@ impl Stored {
             None => 0,
         };
         let logged_boot = storage.log_last().map_or(0, |s| s.boot).max(event_boot);
-        let boot = storage
-            .get::<u32>(key::BOOT)?
-            .unwrap_or(0)
-            .max(logged_boot)
-            .wrapping_add(1);
+        // A map repair's marker (its event, logged before the erase) holds
+        // the number this boot takes: past every logged one already.
+        let boot = match report.repair_boot {
+            Some(b) => b,
+            None => storage
+                .get::<u32>(key::BOOT)?
+                .unwrap_or(0)
+                .max(logged_boot)
+                .wrapping_add(1),
+        };
         storage.put(key::BOOT, &boot)?;
         // A write counter lost with a damaged settings map is moved on past
         // any this device can have accepted, so a write captured before is
@@ -1952,7 +1957,8 @@ impl Stored {
             // Not fatal, as in `log_event`.
             let _ = storage.append_event(&ev);
         };
-        if report.repaired {
+        // (A map repair's marker is its event already.)
+        if report.repaired && report.repair_boot.is_none() {
             boot_event(storage, &mut next_event, EventKind::StorageRepaired);
         }
         boot_event(storage, &mut next_event, EventKind::Boot { reset_cause });

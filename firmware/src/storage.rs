@@ -197,6 +197,11 @@ pub struct MountReport {
     /// (the device numbers on past any it can have used:
     /// `device::repair_counter` above the latest boot's first number).
     pub events_lost: bool,
+    /// The settings map was erased, or its erase completed, under a
+    /// repair marker: a [`fringe_protocol::EventKind::StorageRepaired`]
+    /// event appended before the erase, whose boot number this boot takes
+    /// (and whose event is this boot's record of the repair).
+    pub repair_boot: Option<u32>,
 }
 
 /// Bookkeeping of a ring, rebuilt at mount by one scan.
@@ -274,12 +279,9 @@ impl<S: NorFlash> Storage<S> {
         };
         let mut report = MountReport::default();
         // Settings: touch every key once; a decode failure of one value is
-        // treated like a missing value by the getters.
-        if matches!(s.get::<u32>(key::BOOT), Err(StorageError::Corrupted)) {
-            s.erase(s.layout.map.clone())?;
-            report.repaired = true;
-            report.settings_lost = true;
-        }
+        // treated like a missing value by the getters. (Erased below, once
+        // the rings are known.)
+        let map_damaged = matches!(s.get::<u32>(key::BOOT), Err(StorageError::Corrupted));
         match s.scan(false) {
             Ok(st) => s.events = st,
             Err(StorageError::Corrupted) => {
@@ -296,6 +298,53 @@ impl<S: NorFlash> Storage<S> {
                 report.repaired = true;
             }
             Err(e) => return Err(e),
+        }
+        // A damaged map is erased under a marker outside it: the repair's
+        // event, appended first, with the boot number this boot takes. A
+        // power cut within the erase can leave the map reading again, with
+        // older values (the write counter among them) from pages the erase
+        // did not reach; the next boot finds the marker newer than the
+        // map's boot number and erases the map again. Where the map already
+        // holds this boot's number, the repair was done (a map left empty
+        // by a cut reads without one, and is erased again, which costs
+        // nothing).
+        let newest = match s.last_event() {
+            Some(n) => s.read_events(n, 1)?.0.first().cloned(),
+            None => None,
+        };
+        let unfinished = newest.as_ref().and_then(|e| {
+            let marker = matches!(e.kind, fringe_protocol::EventKind::StorageRepaired);
+            (marker && !map_damaged).then_some(e.boot).filter(|b| {
+                s.get::<u32>(key::BOOT)
+                    .ok()
+                    .flatten()
+                    .is_none_or(|m| m < *b)
+            })
+        });
+        if map_damaged || unfinished.is_some() {
+            let boot = match unfinished {
+                Some(b) => b,
+                None => {
+                    let logged = s
+                        .log_last()
+                        .map_or(0, |q| q.boot)
+                        .max(newest.as_ref().map_or(0, |e| e.boot));
+                    let b = logged.wrapping_add(1);
+                    let marker = Event {
+                        number: s.last_event().map_or(0, |n| n.wrapping_add(1)),
+                        boot: b,
+                        time_ms: 0,
+                        kind: fringe_protocol::EventKind::StorageRepaired,
+                    };
+                    // Not fatal: without it the repair is as before.
+                    let _ = s.append_event(&marker);
+                    b
+                }
+            };
+            s.erase(s.layout.map.clone())?;
+            report.repaired = true;
+            report.settings_lost = true;
+            report.repair_boot = Some(boot);
         }
         Ok((s, report))
     }

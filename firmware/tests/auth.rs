@@ -537,3 +537,145 @@ fn an_erased_settings_map_on_a_device_that_has_lived_moves_the_counter_on() {
     let boot = b.measure().seq.boot;
     assert_eq!(counter(&mut b), repair_counter(boot));
 }
+
+/// A power cut at any step of the repair of a damaged settings map (the
+/// repair's event, the erase, the stores after it), and in the erase after
+/// each of the map's pages (a chip erases page by page; the test flash
+/// erases a range in one step, and a cut there erases its first half): at
+/// the next boot the write counter is past the repair jump and so past the
+/// newest accepted write's, which is refused as a replay. The map's ring
+/// has come round, its newest page in the half a cut erase takes: a map
+/// erased in part then reads with an older counter from the pages the
+/// erase did not reach (before the repair's event was logged first, the
+/// newest write was taken again: counter 352 where it was 353). A
+/// consistency test of the device's own rule, like the one above.
+#[test]
+fn a_power_cut_in_the_repair_of_a_damaged_map_leaves_no_replay() {
+    big_stack(power_cut_in_repair_body);
+}
+
+fn power_cut_in_repair_body() {
+    use embedded_storage::nor_flash::NorFlash;
+    use fringe_firmware::device::REPAIR_COUNTER_JUMP;
+    let mut b = Bench::new(41, Scenario::default());
+    b.settle();
+    // Accepted writes until the map's ring has come round, with its newest
+    // page in the first half of the map (where a cut erase of the whole
+    // map takes it and leaves older ones), so that older copies of the
+    // counter lie on pages a partial erase can leave.
+    let map = b.dev.storage_mut().layout().map.clone();
+    let page = Flash::ERASE_SIZE as u32;
+    let used = |b: &mut Bench| {
+        let bytes = *b.dev.flash_mut().bytes();
+        (map.start..map.end)
+            .step_by(page as usize)
+            .filter(|p| {
+                bytes[*p as usize..(*p + page) as usize]
+                    .iter()
+                    .any(|x| *x != 0xFF)
+            })
+            .count()
+    };
+    let pages = (map.end - map.start) / page;
+    let mut newest = None;
+    let (mut current, mut wrapped) = (0, false);
+    for k in 0..2000 {
+        if wrapped && current < pages / 2 && used(&mut b) >= 3 {
+            break;
+        }
+        let req = Request::WriteCellCal(cell(2.0 + 0.01 * k as f32));
+        let tag = signed(&mut b, &req);
+        let f = b.ask_with(req.clone(), Some(tag));
+        assert!(
+            matches!(
+                f,
+                DeviceFrame::Response {
+                    response: Response::Ack,
+                    ..
+                }
+            ),
+            "write {k}: {f:?}"
+        );
+        newest = Some((req, tag, b.counter));
+        // The page being written: the one whose start marker is written
+        // and end marker not (sequential-storage's partly open page).
+        let bytes = *b.dev.flash_mut().bytes();
+        let word = Flash::WRITE_SIZE;
+        let open = (0..pages).find(|i| {
+            let s = (map.start + i * page) as usize;
+            let e = s + page as usize;
+            bytes[s..s + word].iter().any(|x| *x != 0xFF)
+                && bytes[e - word..e].iter().all(|x| *x == 0xFF)
+        });
+        if let Some(c) = open {
+            wrapped |= c < current;
+            current = c;
+        }
+    }
+    assert!(
+        wrapped && current < pages / 2 && used(&mut b) >= 3,
+        "the map's ring did not come round"
+    );
+    let (req, tag, last) = newest.expect("writes taken");
+    println!("writes taken: {}; the newest's counter {last}", last - 100);
+    // After a boot on `fl`: the counter is past the newest write's, and
+    // that write is refused as a replay.
+    let check = |fl: Flash, what: &str| {
+        let mut b = Bench::on_flash(42, Scenario::default(), fl);
+        b.settle();
+        let status = match b.ok(Request::Status) {
+            Response::Status(s) => s,
+            other => panic!("{what}: {other:?}"),
+        };
+        assert!(
+            status.write_counter >= last,
+            "{what}: counter {} below {last}",
+            status.write_counter
+        );
+        assert!(status.write_counter >= REPAIR_COUNTER_JUMP, "{what}");
+        let f = b.ask_with(req.clone(), Some(tag));
+        assert_eq!(refusal(&f).0, ErrorCode::AuthFailed, "{what}");
+        assert!(
+            auth_failures(&mut b).contains(&(AuthFailure::Replay, last)),
+            "{what}: not refused as a replay"
+        );
+    };
+    let flash = damaged_settings_map(b);
+    let mut cuts = 0;
+    // The repairing boot's flash as the cut in the map's erase left it.
+    let mut in_erase = None;
+    for k in 0.. {
+        let mut fl = flash.clone();
+        fl.cut_power_after(k);
+        let booted =
+            fringe_firmware::device::Booted::mount(&mut fl, config(), ResetCause::PowerOn).is_ok();
+        if !fl.power_cut_happened() {
+            assert!(booted, "step {k}: boot failed without a cut");
+            break;
+        }
+        cuts += 1;
+        fl.restart();
+        let first = map.start as usize..(map.start + page) as usize;
+        if in_erase.is_none() && fl.bytes()[first.clone()] != flash.bytes()[first] {
+            in_erase = Some(fl.clone());
+        }
+        check(fl, &format!("a cut at step {k} of the repairing boot"));
+    }
+    println!("power cuts tried in the repair: {cuts}");
+    assert!(cuts > 0);
+    // A chip erases page by page: the cut in the erase after each page,
+    // everything before it (the repair's marker) done.
+    let in_erase = in_erase.expect("a cut in the map's erase");
+    for j in 1..pages {
+        let mut fl = in_erase.clone();
+        let rest = map.start + j * page..map.end;
+        fl.erase(rest.start, rest.end).expect("erase");
+        fl.write(
+            rest.start,
+            &flash.bytes()[rest.start as usize..rest.end as usize],
+        )
+        .expect("the pages the erase did not reach");
+        fl.erase(map.start, rest.start).expect("erase");
+        check(fl, &format!("the repair's erase cut after {j} page(s)"));
+    }
+}
