@@ -37,19 +37,23 @@ fn sep(e: &[f64]) -> f64 {
 }
 
 /// Errors of a fit on `val` through the device path (readings without a
-/// moisture are counted apart).
+/// moisture are counted apart), and how many lie inside their 95 %
+/// interval (a reading without an interval, as one without a leverage,
+/// is not inside).
 fn errors(f: &ProductFit, val: &[Sample]) -> (Vec<f64>, usize, usize) {
     let (mut e, mut missing, mut inside) = (Vec::new(), 0, 0);
     for s in val {
         match f.predict(&s.channels, s.temperature_c, s.bulk_density_kg_m3, 0.95) {
-            Ok(p) => match (p.estimate.moisture_pct, p.interval_pct) {
-                (Some(m), Some((lo, hi))) => {
+            Ok(p) => match p.estimate.moisture_pct {
+                Some(m) => {
                     e.push(f64::from(m) - s.moisture_pct);
-                    if (lo..=hi).contains(&s.moisture_pct) {
+                    if p.interval_pct
+                        .is_some_and(|(lo, hi)| (lo..=hi).contains(&s.moisture_pct))
+                    {
                         inside += 1;
                     }
                 }
-                _ => missing += 1,
+                None => missing += 1,
             },
             Err(_) => missing += 1,
         }

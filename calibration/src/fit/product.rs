@@ -98,7 +98,7 @@ pub struct Sample {
 #[derive(Debug, Clone, PartialEq)]
 #[non_exhaustive]
 pub enum ProductFitError {
-    /// Fewer samples than the model's coefficients plus three.
+    /// Fewer samples than the model's fitted parameters plus three.
     TooFewSamples {
         /// Samples needed.
         needed: usize,
@@ -246,7 +246,7 @@ impl core::fmt::Display for ProductFitError {
         match self {
             E::TooFewSamples { needed, got } => write!(
                 f,
-                "{got} samples given; this model needs at least {needed} (its coefficients plus three)"
+                "{got} samples given; this model needs at least {needed} (its fitted parameters plus three)"
             ),
             E::EmptyId { index } => write!(f, "sample {} has an empty id", index + 1),
             E::DuplicateId { id } => write!(f, "sample id {id:?} appears more than once"),
@@ -573,7 +573,9 @@ pub struct ProductFit {
     /// components use more than k degrees of freedom: Kramer and Sugiyama,
     /// J. Am. Stat. Assoc. 106:697-705, 2011, from memory.)
     pub interval_sd: f64,
-    /// Mean leverage of the calibration samples (effective parameters / n).
+    /// Mean leverage of the calibration samples: the regression's
+    /// (effective) coefficients over n; the relaxation model's mixing
+    /// parameter is not among them.
     pub mean_leverage: f64,
 }
 
@@ -585,7 +587,10 @@ pub struct ReadingPrediction {
     pub estimate: crate::estimate::Estimate<f32>,
     /// Prediction interval for the lab value of this reading,
     /// `moisture +/- t(1 - a/2, n - k) sqrt(RMSEP_cv^2 + s^2 max(h0 - mean h, 0))`,
-    /// %; `None` without a moisture or without a leverage. The textbook interval `t s sqrt(1 +
+    /// k the regression's coefficients and s its residual SD (the
+    /// relaxation model's mixing parameter is not counted here: the
+    /// cross-validated RMSEP, which refits it in each fold, carries it), %;
+    /// `None` without a moisture or without a leverage. The textbook interval `t s sqrt(1 +
     /// h0)` (Draper and Smith, Applied Regression Analysis, 3rd ed., 1998,
     /// section 3.2) assumes the model is right; on the zoo's products it
     /// covered 84-89 % where 95 % was asked, so the cross-validated RMSEP
@@ -1408,7 +1413,8 @@ impl IntervalModel {
                 // The f64 inversion; where it does not converge to its
                 // tighter tolerance, the parameters the device's f32
                 // inversion found (those its moisture comes from: on
-                // green coffee at 0.5/10 MHz, 10 of 200 readings).
+                // green coffee at 0.5/10 MHz, 10 of 200 readings;
+                // BENCHMARKS.md).
                 let params = invert(&obs, &m.law, temperature_c, &InvertOptions::default())
                     .map(|inv| inv.params)
                     .ok()

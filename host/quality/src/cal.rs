@@ -326,8 +326,10 @@ pub fn gate_of_file(s: &Statistics) -> Vec<String> {
     use fringe_calibration::fit::gate::{check, GateInput, Limits};
     let input = GateInput {
         n: s.n,
-        // Files from before the gate do not say; the relaxation model's
-        // five coefficients are the fewest a two-frequency model fits.
+        // Files from before the gate do not say; five, the fewest a
+        // two-frequency model fits. (A relaxation file written before its
+        // mixing parameter was counted says one fewer than a refit would:
+        // five coefficients at the default degree, where a refit says six.)
         n_params: s.n_params.unwrap_or(5),
         rpd: s.rpd,
         r2: s.r2,
@@ -368,7 +370,9 @@ fn to_fit_samples(set: &SampleSet) -> Vec<Sample> {
         .collect()
 }
 
-/// Coefficients each model fits (for the "+3" rule, stated before fitting).
+/// Parameters each model fits against the lab values (for the "+3" rule,
+/// stated before fitting): coefficients, and the relaxation model's mixing
+/// parameter.
 fn n_coef(model: FitModel, degree: usize) -> usize {
     match model {
         // c0..c_degree + temperature term (also the least any model of a
@@ -1120,8 +1124,9 @@ pub struct Predicted {
     pub moisture_pct: Option<f32>,
     /// Standard uncertainty the device reports, %.
     pub uncertainty_pct: f32,
-    /// Prediction interval for a lab value, % (None without a moisture or
-    /// for a file without its interval model).
+    /// Prediction interval for a lab value, % (None without a moisture, for
+    /// a file without its interval model, or where the reading's leverage
+    /// cannot be computed).
     pub interval_pct: Option<(f64, f64)>,
     /// Leverage of the reading in the calibration (NaN when unknown).
     pub leverage: f64,
