@@ -72,20 +72,7 @@ use crate::storage::{key, Storage, StorageError, StoredIdentity};
 pub const FIRMWARE_VERSION: [u8; 3] = [0, 1, 0];
 /// Failed writes in a row the device takes without holding writes off.
 pub const FREE_WRITE_FAILURES: u32 = 3;
-/// The least write counter a device takes when its settings map was
-/// erased as damaged and the counter with it: far past any it can have
-/// accepted (a host signs each write with the stored counter plus one;
-/// 2^24 writes would be one every 40 s for 20 years), so a write captured
-/// before is still refused as a replay. See [`repair_counter`].
-pub const REPAIR_COUNTER_JUMP: u32 = 1 << 24;
-
-/// The write counter after a repair at boot number `boot`:
-/// [`REPAIR_COUNTER_JUMP`] plus 4,096 per boot. Boot numbers never repeat,
-/// so a second repair moves the counter past the first one's as long as
-/// fewer than 4,096 signed writes a boot were accepted between them.
-pub const fn repair_counter(boot: u32) -> u32 {
-    REPAIR_COUNTER_JUMP.saturating_add(boot.saturating_mul(4096))
-}
+pub use crate::storage::{repair_counter, REPAIR_COUNTER_JUMP};
 /// Longest hold after failed writes, ms.
 pub const MAX_WRITE_HOLD_MS: u64 = 64_000;
 
@@ -1941,7 +1928,8 @@ impl Stored {
         // the jump: the next boot numbers on from the floor.)
         let floor = storage.get::<u32>(key::EVENT_FLOOR)?.unwrap_or(0);
         next_event = if report.events_lost {
-            floor.saturating_add(repair_counter(boot))
+            // (Past a map repair's marker, numbered so too.)
+            floor.saturating_add(repair_counter(boot)).max(next_event)
         } else {
             next_event.max(floor)
         };
@@ -1958,7 +1946,7 @@ impl Stored {
             let _ = storage.append_event(&ev);
         };
         // (A map repair's marker is its event already.)
-        if report.repaired && report.repair_boot.is_none() {
+        if report.repaired && (report.repair_boot.is_none() || report.rings_repaired) {
             boot_event(storage, &mut next_event, EventKind::StorageRepaired);
         }
         boot_event(storage, &mut next_event, EventKind::Boot { reset_cause });

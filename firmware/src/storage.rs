@@ -202,6 +202,25 @@ pub struct MountReport {
     /// event appended before the erase, whose boot number this boot takes
     /// (and whose event is this boot's record of the repair).
     pub repair_boot: Option<u32>,
+    /// The event ring or the log was erased as damaged in the same mount as
+    /// the map (its repair is logged besides the marker).
+    pub rings_repaired: bool,
+}
+
+/// The least write counter a device takes when its settings map was
+/// erased as damaged and the counter with it: far past any it can have
+/// accepted (a host signs each write with the stored counter plus one;
+/// 2^24 writes would be one every 40 s for 20 years), so a write captured
+/// before is still refused as a replay. See [`repair_counter`].
+pub const REPAIR_COUNTER_JUMP: u32 = 1 << 24;
+
+/// The write counter after a repair at boot number `boot`:
+/// [`REPAIR_COUNTER_JUMP`] plus 4,096 per boot. Boot numbers never repeat,
+/// so a second repair moves the counter past the first one's as long as
+/// fewer than 4,096 signed writes a boot were accepted between them. (Also
+/// the jump of the event numbers after an event ring erased as damaged.)
+pub const fn repair_counter(boot: u32) -> u32 {
+    REPAIR_COUNTER_JUMP.saturating_add(boot.saturating_mul(4096))
 }
 
 /// Bookkeeping of a ring, rebuilt at mount by one scan.
@@ -312,39 +331,56 @@ impl<S: NorFlash> Storage<S> {
             Some(n) => s.read_events(n, 1)?.0.first().cloned(),
             None => None,
         };
-        let unfinished = newest.as_ref().and_then(|e| {
-            let marker = matches!(e.kind, fringe_protocol::EventKind::StorageRepaired);
-            (marker && !map_damaged).then_some(e.boot).filter(|b| {
-                s.get::<u32>(key::BOOT)
-                    .ok()
-                    .flatten()
-                    .is_none_or(|m| m < *b)
+        // (A read error here fails the mount, as it would fail the boot
+        // after it: it must not pass for a map without a boot number.)
+        let map_boot = if map_damaged {
+            None
+        } else {
+            s.get::<u32>(key::BOOT)?
+        };
+        let unfinished = newest
+            .as_ref()
+            .filter(|e| {
+                !map_damaged && matches!(e.kind, fringe_protocol::EventKind::StorageRepaired)
             })
-        });
+            .map(|e| e.boot)
+            .filter(|b| map_boot.is_none_or(|m| m < *b));
         if map_damaged || unfinished.is_some() {
-            let boot = match unfinished {
-                Some(b) => b,
+            report.rings_repaired = report.repaired;
+            report.repair_boot = match unfinished {
+                Some(b) => Some(b),
                 None => {
+                    // Two past the newest logged boot: a boot that stored
+                    // its number in the map and lost its boot event leaves
+                    // that number, one past the newest logged, on pages a
+                    // cut erase may not reach; the marker must be newer.
                     let logged = s
                         .log_last()
                         .map_or(0, |q| q.boot)
                         .max(newest.as_ref().map_or(0, |e| e.boot));
-                    let b = logged.wrapping_add(1);
+                    let b = logged.wrapping_add(2);
+                    // An event ring erased above numbers on past any number
+                    // it can have held, as the boot does
+                    // (`device::Stored::load`; the map's floor is lost).
+                    let number = if report.events_lost {
+                        repair_counter(b)
+                    } else {
+                        s.last_event().map_or(0, |n| n.wrapping_add(1))
+                    };
                     let marker = Event {
-                        number: s.last_event().map_or(0, |n| n.wrapping_add(1)),
+                        number,
                         boot: b,
                         time_ms: 0,
                         kind: fringe_protocol::EventKind::StorageRepaired,
                     };
-                    // Not fatal: without it the repair is as before.
-                    let _ = s.append_event(&marker);
-                    b
+                    // Without it the repair is as before (the boot logs
+                    // its event, with its own number).
+                    s.append_event(&marker).is_ok().then_some(b)
                 }
             };
             s.erase(s.layout.map.clone())?;
             report.repaired = true;
             report.settings_lost = true;
-            report.repair_boot = Some(boot);
         }
         Ok((s, report))
     }

@@ -679,3 +679,51 @@ fn power_cut_in_repair_body() {
         check(fl, &format!("the repair's erase cut after {j} page(s)"));
     }
 }
+
+/// A power cut at any step of a boot that repairs the event ring alone
+/// (its repair event logged after the map holds the boot's number) does not
+/// cost the settings map: at the next boot the calibration written before
+/// is still there, so the repair event, newest in the ring, is not taken
+/// for a map repair's unfinished marker. A consistency test of the
+/// device's own rule.
+#[test]
+fn a_power_cut_in_an_event_ring_repair_keeps_the_map() {
+    big_stack(|| {
+        let mut b = Bench::new(45, Scenario::default());
+        b.settle();
+        let cal = cell(2.3);
+        let req = Request::WriteCellCal(cal);
+        let tag = signed(&mut b, &req);
+        let f = b.ask_with(req, Some(tag));
+        assert!(
+            matches!(
+                f,
+                DeviceFrame::Response {
+                    response: Response::Ack,
+                    ..
+                }
+            ),
+            "{f:?}"
+        );
+        let flash = damaged_event_ring(b);
+        let mut cuts = 0;
+        for k in 0.. {
+            let mut fl = flash.clone();
+            fl.cut_power_after(k);
+            let booted =
+                fringe_firmware::device::Booted::mount(&mut fl, config(), ResetCause::PowerOn)
+                    .is_ok();
+            if !fl.power_cut_happened() {
+                assert!(booted, "step {k}: boot failed without a cut");
+                break;
+            }
+            cuts += 1;
+            fl.restart();
+            let mut b = Bench::on_flash(46, Scenario::default(), fl);
+            b.settle();
+            assert_eq!(stored_cell(&mut b), Some(cal), "a cut at step {k}");
+        }
+        println!("power cuts tried in the event ring's repair: {cuts}");
+        assert!(cuts > 0);
+    });
+}
