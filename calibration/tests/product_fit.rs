@@ -585,8 +585,8 @@ fn a_reading_without_a_leverage_gets_no_interval() {
     ch.sort_by(|a, b| a.freq_hz.total_cmp(&b.freq_hz));
     let eps = [0, 1].map(|k| (ch[k].eps_re, ch[k].eps_loss));
     let mut im = IntervalModel::of(&fit);
-    let whole = im
-        .predict(
+    let predict = |im: &IntervalModel| {
+        im.predict(
             &fit.model,
             &fit.calibration,
             eps,
@@ -594,22 +594,15 @@ fn a_reading_without_a_leverage_gets_no_interval() {
             None,
             0.95,
         )
-        .unwrap();
+        .unwrap()
+    };
+    let whole = predict(&im);
     assert!(
         whole.leverage.is_finite() && whole.interval_pct.is_some(),
         "seed {seed}: {whole:?}"
     );
     im.leverage_matrix.clear();
-    let p = im
-        .predict(
-            &fit.model,
-            &fit.calibration,
-            eps,
-            s.temperature_c,
-            None,
-            0.95,
-        )
-        .unwrap();
+    let p = predict(&im);
     assert!(p.estimate.moisture_pct.is_some(), "seed {seed}: {p:?}");
     assert!(p.leverage.is_nan(), "seed {seed}: {p:?}");
     assert_eq!(p.interval_pct, None, "seed {seed}");

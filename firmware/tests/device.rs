@@ -300,15 +300,7 @@ fn a_flapping_fault_is_logged_once_per_hold_off() {
 #[test]
 fn events_after_a_damaged_event_ring_number_on_past_the_old_ones() {
     big_stack(|| {
-        let mut b = Bench::new(7, Scenario::default());
-        b.settle();
-        for seed in 0..3 {
-            b = b.reboot(20 + seed);
-            b.settle();
-        }
-        let before = b.events();
-        let highest = before.iter().map(|e| e.number).max().expect("events");
-        assert!(highest >= 3, "{before:?}");
+        let (b, highest) = booted_four_times();
         let mut b = Bench::on_flash(9, Scenario::default(), damaged_event_ring(b));
         b.settle();
         let after = b.events();
@@ -361,25 +353,8 @@ fn events_after_a_damaged_event_ring_number_on_past_the_old_ones() {
 #[test]
 fn events_after_a_damaged_ring_and_map_number_on_past_the_old_ones() {
     big_stack(|| {
-        use embedded_storage::nor_flash::NorFlash;
-        let mut b = Bench::new(7, Scenario::default());
-        b.settle();
-        for seed in 0..3 {
-            b = b.reboot(20 + seed);
-            b.settle();
-        }
-        let highest = b.events().iter().map(|e| e.number).max().expect("events");
-        let map = b.dev.storage_mut().layout().map.clone();
-        let mut flash = damaged_event_ring(b);
-        // The map's pages marked closed too (as `damaged_settings_map`).
-        let (page, word) = (Flash::ERASE_SIZE as u32, Flash::WRITE_SIZE);
-        for p in (map.start..map.end).step_by(page as usize) {
-            for at in [p, p + page - word as u32] {
-                flash
-                    .write(at, &vec![0u8; word])
-                    .expect("mark the page closed");
-            }
-        }
+        let (b, highest) = booted_four_times();
+        let flash = damaged_settings_map_and_event_ring(b);
         let mut b = Bench::on_flash(9, Scenario::default(), flash);
         b.settle();
         let after = b.events();
@@ -399,6 +374,20 @@ fn events_after_a_damaged_ring_and_map_number_on_past_the_old_ones() {
             "numbers in order, none twice: {numbers:?}"
         );
     });
+}
+
+/// A device booted four times, and the highest number of its events.
+fn booted_four_times() -> (Bench, u32) {
+    let mut b = Bench::new(7, Scenario::default());
+    b.settle();
+    for seed in 0..3 {
+        b = b.reboot(20 + seed);
+        b.settle();
+    }
+    let before = b.events();
+    let highest = before.iter().map(|e| e.number).max().expect("events");
+    assert!(highest >= 3, "{before:?}");
+    (b, highest)
 }
 
 /// The flash writes and erases one request costs.

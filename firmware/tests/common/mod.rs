@@ -245,18 +245,34 @@ pub fn damaged_event_ring(b: Bench) -> Flash {
     damaged_region(b, events)
 }
 
-fn damaged_region(b: Bench, map: std::ops::Range<u32>) -> Flash {
-    use embedded_storage::nor_flash::NorFlash;
+/// The device's flash with every page of both its settings map and its
+/// event ring marked closed: the next boot erases both.
+pub fn damaged_settings_map_and_event_ring(b: Bench) -> Flash {
+    let mut b = b;
+    let layout = b.dev.storage_mut().layout().clone();
     let (_, mut flash, _) = b.dev.into_parts();
+    mark_closed(&mut flash, layout.map);
+    mark_closed(&mut flash, layout.events);
+    flash
+}
+
+fn damaged_region(b: Bench, region: std::ops::Range<u32>) -> Flash {
+    let (_, mut flash, _) = b.dev.into_parts();
+    mark_closed(&mut flash, region);
+    flash
+}
+
+/// Every page of `region` marked closed (start and end markers written).
+fn mark_closed(flash: &mut Flash, region: std::ops::Range<u32>) {
+    use embedded_storage::nor_flash::NorFlash;
     let (page, word) = (Flash::ERASE_SIZE as u32, Flash::WRITE_SIZE);
-    for p in (map.start..map.end).step_by(page as usize) {
+    for p in (region.start..region.end).step_by(page as usize) {
         for at in [p, p + page - word as u32] {
             flash
                 .write(at, &vec![0u8; word])
                 .expect("mark the page closed");
         }
     }
-    flash
 }
 
 pub fn big_stack(f: impl FnOnce() + Send + 'static) {
