@@ -1506,12 +1506,7 @@ impl IntervalModel {
                     m.d_moisture_d_density(e) * f64::from(rg.max - rg.min)
                         / (m.rho_ref_kg_m3 * 12f64.sqrt())
                 }
-                ProductModel::Relaxation(m) => estimate.inversion.map_or(0.0, |inv| {
-                    let p = MaterialParams {
-                        eps_hf: f64::from(inv.params.eps_hf),
-                        d_eps: f64::from(inv.params.d_eps),
-                        sigma_s_m: f64::from(inv.params.sigma_s_m),
-                    };
+                ProductModel::Relaxation(m) => device.map_or(0.0, |p| {
                     m.moisture_sd_over_densities(
                         &p,
                         temperature_c,
