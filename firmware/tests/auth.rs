@@ -727,3 +727,185 @@ fn a_power_cut_in_an_event_ring_repair_keeps_the_map() {
         assert!(cuts > 0);
     });
 }
+
+/// The newest `count` events of `fl` (read from a copy).
+fn newest_events(fl: &Flash, count: u32) -> Vec<Event> {
+    let mut copy = fl.clone();
+    let (mut s, _) = fringe_firmware::storage::Storage::mount(&mut copy).expect("mount a copy");
+    let Some(last) = s.last_event() else {
+        return Vec::new();
+    };
+    (last.saturating_sub(count - 1)..=last)
+        .filter_map(|n| s.read_events(n, 1).ok()?.0.first().cloned())
+        .filter(|e| e.number >= last.saturating_sub(count - 1))
+        .collect()
+}
+
+/// A boot that stored its number in the settings map and lost power
+/// before its boot event leaves the map a boot number one past the newest
+/// logged. When the map is then found damaged, the repair's marker must be
+/// newer than that number: a cut in the repair's erase can leave the page
+/// holding it, and the next boot erases the map again only where the
+/// marker is newer than the map's number (else an older write counter
+/// from the pages left would reopen a replay). A consistency test of the
+/// device's own rule.
+#[test]
+fn a_map_repair_marker_is_newer_than_a_boot_number_whose_event_was_lost() {
+    big_stack(|| {
+        use fringe_firmware::device::Booted;
+        use fringe_firmware::storage::{key, Storage};
+        let mut b = Bench::new(47, Scenario::default());
+        b.settle();
+        let (_, flash, _) = b.dev.into_parts();
+        // The next boot, cut after it stored its number and before its
+        // boot event.
+        let mut cut = None;
+        for k in 0.. {
+            let mut fl = flash.clone();
+            fl.cut_power_after(k);
+            let booted = Booted::mount(&mut fl, config(), ResetCause::PowerOn).is_ok();
+            if !fl.power_cut_happened() {
+                assert!(booted, "step {k}: boot failed without a cut");
+                break;
+            }
+            fl.restart();
+            let mut copy = fl.clone();
+            let (mut s, _) = Storage::mount(&mut copy).expect("mount a copy");
+            let map_boot = s.get::<u32>(key::BOOT).expect("read").unwrap_or(0);
+            let newest = newest_events(&fl, 1).first().map_or(0, |e| e.boot);
+            let logged = s.log_last().map_or(0, |q| q.boot).max(newest);
+            if map_boot > logged {
+                cut = Some((fl, map_boot, logged));
+                break;
+            }
+        }
+        let (mut fl, map_boot, logged) =
+            cut.expect("a cut between the boot number's store and the boot event");
+        assert_eq!(map_boot, logged + 1);
+        damage_settings_map(&mut fl);
+        let boot = Booted::mount(&mut fl, config(), ResetCause::PowerOn)
+            .expect("the repairing boot")
+            .boot_count();
+        let events = newest_events(&fl, 4);
+        let marker = events
+            .iter()
+            .find(|e| matches!(e.kind, EventKind::StorageRepaired))
+            .unwrap_or_else(|| panic!("no repair event: {events:?}"));
+        assert!(
+            marker.boot > map_boot,
+            "the marker's boot {} is not past the map's {map_boot}",
+            marker.boot
+        );
+        assert_eq!(boot, marker.boot, "the boot takes the marker's number");
+    });
+}
+
+/// Where the repair's marker cannot be written (the event ring refuses
+/// writes until the map is erased), the boot logs the repair itself, with
+/// its own number: a host still learns that the settings were lost. (It
+/// took the marker's number and logged nothing.) A consistency test of the
+/// device's own rule.
+#[test]
+fn a_map_repair_whose_marker_was_not_written_is_logged_by_the_boot() {
+    big_stack(|| {
+        use fringe_firmware::device::Booted;
+        use fringe_firmware::storage::Layout;
+        use std::cell::Cell;
+        let mut b = Bench::new(48, Scenario::default());
+        b.settle();
+        let mut flash = damaged_settings_map(b);
+        let layout = Layout::new(FLASH, fringe_firmware::flash::RAM_ERASE_SIZE).expect("layout");
+        let failed = Cell::new(false);
+        let boot = Booted::mount(
+            Faulty::writes(&mut flash, layout.events, layout.map, &failed),
+            config(),
+            ResetCause::PowerOn,
+        )
+        .expect("the repairing boot")
+        .boot_count();
+        assert!(failed.get(), "the marker's write was not refused");
+        let events = newest_events(&flash, 4);
+        assert!(
+            events
+                .iter()
+                .any(|e| matches!(e.kind, EventKind::StorageRepaired) && e.boot == boot),
+            "no repair event of boot {boot}: {events:?}"
+        );
+    });
+}
+
+/// A read error of the settings map's boot number at mount fails the boot;
+/// it must not pass for a map without one. Here the newest event is an
+/// event ring repair's (a boot cut after logging it), of the boot the map
+/// holds: read as "no boot number", it was taken for an unfinished map
+/// repair and the map erased, the calibration with it. Reads of the map
+/// fail from each of its reads on in turn; the calibration is there after
+/// every one. A consistency test of the device's own rule.
+#[test]
+fn a_read_error_of_the_maps_boot_number_fails_the_boot_and_keeps_the_map() {
+    big_stack(|| {
+        use fringe_firmware::device::Booted;
+        use fringe_firmware::storage::{Layout, Storage};
+        use std::cell::Cell;
+        let mut b = Bench::new(49, Scenario::default());
+        b.settle();
+        let cal = cell(2.4);
+        let req = Request::WriteCellCal(cal);
+        let tag = signed(&mut b, &req);
+        let f = b.ask_with(req, Some(tag));
+        assert!(
+            matches!(
+                f,
+                DeviceFrame::Response {
+                    response: Response::Ack,
+                    ..
+                }
+            ),
+            "{f:?}"
+        );
+        let flash = damaged_event_ring(b);
+        // The event ring's repairing boot, cut after its repair event.
+        let mut found = None;
+        for k in 0.. {
+            let mut fl = flash.clone();
+            fl.cut_power_after(k);
+            let _ = Booted::mount(&mut fl, config(), ResetCause::PowerOn);
+            assert!(fl.power_cut_happened(), "no cut after the repair event");
+            fl.restart();
+            if newest_events(&fl, 1)
+                .first()
+                .is_some_and(|e| matches!(e.kind, EventKind::StorageRepaired))
+            {
+                found = Some(fl);
+                break;
+            }
+        }
+        let found = found.expect("a cut after the repair event");
+        let layout = Layout::new(FLASH, fringe_firmware::flash::RAM_ERASE_SIZE).expect("layout");
+        let mut refused = 0;
+        for n in 0.. {
+            let mut fl = found.clone();
+            let failed = Cell::new(false);
+            let booted = Booted::mount(
+                Faulty::reads(&mut fl, layout.map.clone(), n, &failed),
+                config(),
+                ResetCause::PowerOn,
+            )
+            .map(|b| b.boot_count());
+            if !failed.get() {
+                booted.expect("a boot without a failed read");
+                break;
+            }
+            refused += usize::from(booted.is_err());
+            let mut copy = fl.clone();
+            let (mut s, _) = Storage::mount(&mut copy).expect("mount a copy");
+            assert_eq!(
+                s.cell_cal().expect("read"),
+                Some(cal),
+                "reads of the map failing from the {n}-th on"
+            );
+        }
+        println!("boots failed by a read error: {refused}");
+        assert!(refused > 0);
+    });
+}

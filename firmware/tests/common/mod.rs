@@ -1,6 +1,7 @@
 //! Shared test bench: a simulated device on a RAM flash, driven tick by tick.
 #![allow(dead_code)]
 
+use embedded_storage::nor_flash::ReadNorFlash as _;
 use fringe_calibration::cell::two_point_calibration;
 use fringe_calibration::real::Cx;
 use fringe_firmware::hal::{CurrentOutput, OutputError};
@@ -363,4 +364,131 @@ pub fn bench_calibrate(b: &mut Bench, readings: usize) -> CellCal {
     };
     assert_eq!(b.ok(Request::WriteCellCal(cal)), Response::Ack);
     cal
+}
+
+/// Every page of the settings map of `flash` marked closed, as
+/// [`damaged_settings_map`] does to a running device's.
+pub fn damage_settings_map(flash: &mut Flash) {
+    use embedded_storage::nor_flash::NorFlash;
+    let layout =
+        fringe_firmware::storage::Layout::new(flash.capacity(), Flash::ERASE_SIZE).expect("layout");
+    mark_closed(flash, layout.map);
+}
+
+/// Injected flash failure of [`Faulty`].
+#[derive(Debug)]
+pub enum FaultyError {
+    /// The failure the test asked for.
+    Injected,
+    /// The RAM flash's own.
+    Flash(fringe_firmware::flash::RamFlashError),
+}
+
+impl embedded_storage::nor_flash::NorFlashError for FaultyError {
+    fn kind(&self) -> embedded_storage::nor_flash::NorFlashErrorKind {
+        embedded_storage::nor_flash::NorFlashErrorKind::Other
+    }
+}
+
+/// A RAM flash that fails chosen operations, for the storage's error
+/// paths: every read of `reads_in` from its `fail_read_from`-th on (0 =
+/// the first), and every write to `writes_in` until the first erase that
+/// touches `until_erase_of`. `failed` is set when a failure was injected.
+pub struct Faulty<'a> {
+    pub flash: &'a mut Flash,
+    pub reads_in: std::ops::Range<u32>,
+    pub fail_read_from: Option<u32>,
+    pub writes_in: std::ops::Range<u32>,
+    pub until_erase_of: std::ops::Range<u32>,
+    pub failed: &'a std::cell::Cell<bool>,
+    reads: u32,
+    writes_armed: bool,
+}
+
+impl<'a> Faulty<'a> {
+    /// Reads of `region` fail from the `from`-th on.
+    pub fn reads(
+        flash: &'a mut Flash,
+        region: std::ops::Range<u32>,
+        from: u32,
+        failed: &'a std::cell::Cell<bool>,
+    ) -> Self {
+        Self {
+            flash,
+            reads_in: region,
+            fail_read_from: Some(from),
+            writes_in: 0..0,
+            until_erase_of: 0..0,
+            failed,
+            reads: 0,
+            writes_armed: false,
+        }
+    }
+
+    /// Writes to `region` fail until `until_erase_of` is erased.
+    pub fn writes(
+        flash: &'a mut Flash,
+        region: std::ops::Range<u32>,
+        until_erase_of: std::ops::Range<u32>,
+        failed: &'a std::cell::Cell<bool>,
+    ) -> Self {
+        Self {
+            flash,
+            reads_in: 0..0,
+            fail_read_from: None,
+            writes_in: region,
+            until_erase_of,
+            failed,
+            reads: 0,
+            writes_armed: true,
+        }
+    }
+}
+
+fn overlaps(r: &std::ops::Range<u32>, from: u32, to: u32) -> bool {
+    from < r.end && r.start < to
+}
+
+impl embedded_storage::nor_flash::ErrorType for Faulty<'_> {
+    type Error = FaultyError;
+}
+
+impl embedded_storage::nor_flash::ReadNorFlash for Faulty<'_> {
+    const READ_SIZE: usize = Flash::READ_SIZE;
+
+    fn read(&mut self, offset: u32, bytes: &mut [u8]) -> Result<(), Self::Error> {
+        if overlaps(&self.reads_in, offset, offset + bytes.len() as u32) {
+            let k = self.reads;
+            self.reads += 1;
+            if self.fail_read_from.is_some_and(|from| k >= from) {
+                self.failed.set(true);
+                return Err(FaultyError::Injected);
+            }
+        }
+        self.flash.read(offset, bytes).map_err(FaultyError::Flash)
+    }
+
+    fn capacity(&self) -> usize {
+        self.flash.capacity()
+    }
+}
+
+impl embedded_storage::nor_flash::NorFlash for Faulty<'_> {
+    const WRITE_SIZE: usize = Flash::WRITE_SIZE;
+    const ERASE_SIZE: usize = Flash::ERASE_SIZE;
+
+    fn erase(&mut self, from: u32, to: u32) -> Result<(), Self::Error> {
+        if overlaps(&self.until_erase_of, from, to) {
+            self.writes_armed = false;
+        }
+        self.flash.erase(from, to).map_err(FaultyError::Flash)
+    }
+
+    fn write(&mut self, offset: u32, bytes: &[u8]) -> Result<(), Self::Error> {
+        if self.writes_armed && overlaps(&self.writes_in, offset, offset + bytes.len() as u32) {
+            self.failed.set(true);
+            return Err(FaultyError::Injected);
+        }
+        self.flash.write(offset, bytes).map_err(FaultyError::Flash)
+    }
 }
