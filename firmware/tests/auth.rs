@@ -541,7 +541,8 @@ fn an_erased_settings_map_on_a_device_that_has_lived_moves_the_counter_on() {
 /// A power cut at any step of the repair of a damaged settings map (the
 /// repair's event, the erase, the stores after it), and in the erase after
 /// each of the map's pages (a chip erases page by page; the test flash
-/// erases a range in one step, and a cut there erases its first half): at
+/// erases a range in one step, and a cut there erases its first half), and
+/// inside each page (its first half erased): at
 /// the next boot the write counter is past the repair jump and so past the
 /// newest accepted write's, which is refused as a replay. The map's ring
 /// has come round, its newest page in the half a cut erase takes: a map
@@ -677,6 +678,17 @@ fn power_cut_in_repair_body() {
         .expect("the pages the erase did not reach");
         fl.erase(map.start, rest.start).expect("erase");
         check(fl, &format!("the repair's erase cut after {j} page(s)"));
+    }
+    // And a cut inside page j: the pages before it erased, its first half
+    // erased (as the test flash leaves a page struck by a cut), the rest
+    // as it was.
+    for j in 0..pages {
+        let mut fl = in_erase.clone();
+        let half = map.start + j * page + page / 2;
+        fl.erase(map.start, map.end).expect("erase");
+        fl.write(half, &flash.bytes()[half as usize..map.end as usize])
+            .expect("the pages the erase did not reach");
+        check(fl, &format!("the repair's erase cut inside page {j}"));
     }
 }
 
