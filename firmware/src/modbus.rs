@@ -40,6 +40,14 @@
 //!
 //! Nothing a Modbus request carries can change the device.
 //!
+//! A request waiting for its answer is dropped, unanswered, when a new
+//! frame begins on the line before `poll` has sent the answer (the board
+//! was busy past the master's wait): the master has gone on, after its
+//! timeout or to another unit, and an answer then would go out over that
+//! frame or the other unit's answer ([`Counters::late`]). Only one master
+//! talks on a Modbus serial line (V1.02 section 2.1), and it starts no new
+//! frame while it waits for an answer.
+//!
 //! ## Half duplex
 //! [`HalfDuplex`] drives the transceiver's driver enable through an
 //! embedded-hal [`OutputPin`]: asserted before the first byte, released
@@ -263,6 +271,9 @@ pub struct Counters {
     pub answered: u32,
     /// Exception answers.
     pub exceptions: u32,
+    /// Requests for this unit dropped unanswered: a new frame began
+    /// before the answer was sent (see the module docs).
+    pub late: u32,
 }
 
 /// The arrival time, microseconds since boot, of a byte stamped `stamp_us`
@@ -356,6 +367,7 @@ impl RtuSlave {
     /// come in the order received, with non-decreasing times.
     pub fn receive(&mut self, at_us: u64, byte: u8) {
         self.gap_before(at_us);
+        self.frame_begins();
         match self.rx.get_mut(self.rx_len) {
             Some(slot) => {
                 *slot = byte;
@@ -370,6 +382,7 @@ impl RtuSlave {
     /// or bytes lost to an overrun): the frame it belongs to is dropped.
     pub fn line_error(&mut self, at_us: u64) {
         self.gap_before(at_us);
+        self.frame_begins();
         self.damaged = true;
         // A character arrived, even if unreadable: the frame is not empty.
         if self.rx_len == 0 {
@@ -413,6 +426,16 @@ impl RtuSlave {
             None => return None,
         }
         Some(self.resp.as_slice())
+    }
+
+    /// A character arrives: where it begins a frame, a request still
+    /// waiting for its answer is dropped (the master has gone on; an
+    /// answer now would go out over this frame).
+    fn frame_begins(&mut self) {
+        if self.rx_len == 0 && self.req_len > 0 {
+            self.req_len = 0;
+            self.counters.late = self.counters.late.wrapping_add(1);
+        }
     }
 
     /// Ends the frame in progress if the silence before a character
@@ -880,6 +903,37 @@ mod tests {
         assert_eq!(s.poll(end + 2006, map), None);
         let c = s.counters();
         assert_eq!((c.frames, c.damaged, c.answered), (1, 1, 0));
+    }
+
+    #[test]
+    fn a_request_not_answered_before_the_next_frame_begins_is_dropped() {
+        // The board busy past the master's wait: our request ended, no
+        // poll, and the master has gone on to unit 2. Our answer would go
+        // out over unit 2's request or its answer: dropped, counted.
+        let mut s = slave();
+        let ours = rtu(&[0x01, 0x04, 0x00, 0x09, 0x00, 0x01]);
+        let theirs = rtu(&[0x02, 0x04, 0x00, 0x00, 0x00, 0x01]);
+        let end = feed(&mut s, 0, &ours);
+        let mid = feed(&mut s, end + 300_000, &theirs[..3]);
+        assert_eq!(s.poll(mid + 10, map), None, "inside unit 2's request");
+        let end = feed(&mut s, mid, &theirs[3..]);
+        assert_eq!(s.poll(end + 2006, map), None, "after it");
+        let c = s.counters();
+        assert_eq!((c.late, c.answered, c.other_unit), (1, 0, 1));
+        // The same where the next frame's first byte ends ours (fed
+        // together, before any poll), and with a damaged character.
+        let mut s = slave();
+        let end = feed(&mut s, 0, &ours);
+        // (Its character ends t3.5 of silence and one character later.)
+        s.line_error(end + 2006 + 573);
+        assert_eq!(s.poll(end + 2006 + 5000, map), None);
+        assert_eq!(s.counters().late, 1);
+        // Polled in time, it is answered, and nothing is late.
+        let mut s = slave();
+        let answer = ask(&mut s, 0, &ours).map(|a| a.len());
+        assert_eq!(answer, Some(7));
+        feed(&mut s, 300_000, &theirs);
+        assert_eq!(s.counters().late, 0);
     }
 
     #[test]

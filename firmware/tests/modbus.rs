@@ -121,13 +121,18 @@ fn model_answer(frame: &[u8], damaged: bool) -> Option<Vec<u8>> {
 }
 
 /// The model's state: the frame being received and the answer waiting
-/// for a poll (a newer request for this unit replaces an unanswered one).
+/// for a poll (dropped when the next frame begins: the master has gone on,
+/// and an answer then would go out over that frame; Modbus over Serial
+/// Line V1.02 section 2.1, one master, which starts no frame while it waits
+/// for an answer).
 #[derive(Default)]
 struct Model {
     frame: Vec<u8>,
     damaged: bool,
     last_us: u64,
     pending: Option<Vec<u8>>,
+    /// Answers dropped so.
+    dropped: u32,
 }
 
 impl Model {
@@ -147,6 +152,9 @@ impl Model {
             self.end_frame();
         } else if silence > u64::from(t.t15_us) && !self.frame.is_empty() {
             self.damaged = true;
+        }
+        if self.frame.is_empty() && self.pending.take().is_some() {
+            self.dropped += 1;
         }
         self.frame.push(b);
         self.last_us = at;
@@ -185,8 +193,8 @@ proptest! {
         let mut answers = 0usize;
         for f in &frames {
             // At least t3.5 between frames (exactly t3.5 now and then).
-            // Polls inside this frame or not (while they are on, an answer
-            // waiting from the frame before is taken inside this one).
+            // Polls inside this frame or not (an answer still waiting from
+            // the frame before is dropped as this one begins).
             let mid = draw() % 3 == 0;
             let mut silence = u64::from(t.t35_us) + if draw() % 3 == 0 { 0 } else { draw() % 3000 };
             for (i, &b) in f.bytes.iter().enumerate() {
@@ -208,7 +216,7 @@ proptest! {
             }
             // Mostly a poll after the frame (exactly at its end now and
             // then); sometimes none, so the next frame's first byte ends
-            // it, and a request of this unit may replace an unanswered one.
+            // it, and drops a request of this unit not yet answered.
             if draw() % 4 != 0 {
                 let at = now + u64::from(t.t35_us) + if draw() % 3 == 0 { 0 } else { draw() % 500 };
                 let got = s.poll(at, registers).map(<[u8]>::to_vec);
@@ -222,5 +230,6 @@ proptest! {
         answers += usize::from(got.is_some());
         let counts = s.counters();
         prop_assert_eq!((counts.answered + counts.exceptions) as usize, answers);
+        prop_assert_eq!(counts.late, m.dropped);
     }
 }

@@ -226,9 +226,13 @@ pub fn map(s: &Snapshot) -> [u16; MAP_LEN] {
     let r = s.reading.as_ref();
     let moisture = r.and_then(|r| r.moisture_pct).filter(|_| valid);
     let uncertainty = moisture.and(r.map(|r| r.uncertainty_pct));
+    // The temperature is no value on a sensor fault, and, like the
+    // moisture, when the reading is stale or its device lost: a frozen
+    // number would pass for the present one (found by review).
     let temperature = r
         .map(|r| r.temperature_c)
-        .filter(|_| !r.is_some_and(|r| r.flags.contains(Flags::TEMP_SENSOR_FAULT)));
+        .filter(|_| !r.is_some_and(|r| r.flags.contains(Flags::TEMP_SENSOR_FAULT)))
+        .filter(|_| !s.stale && s.connected);
     put_f32(&mut m, MOISTURE, moisture.unwrap_or(f32::NAN));
     put_f32(&mut m, UNCERTAINTY, uncertainty.unwrap_or(f32::NAN));
     put_f32(&mut m, TEMPERATURE, temperature.unwrap_or(f32::NAN));
@@ -430,6 +434,17 @@ mod tests {
             assert!(f32_at(&m, UNCERTAINTY).is_nan(), "{s:?}");
             assert_eq!(m[SCALED_MOISTURE as usize], NO_VALUE_I16, "{s:?}");
             assert_ne!(m[STATUS as usize] & STATUS_NO_VALUE, 0, "{s:?}");
+            // The temperature of a reading that is stale or whose device
+            // is lost is no value either; an uncalibrated one's is.
+            let fresh = !s.stale && s.connected;
+            let t = f32_at(&m, TEMPERATURE);
+            let has_reading = s.reading.is_some();
+            assert_eq!(t.is_nan(), !(fresh && has_reading), "{s:?}");
+            assert_eq!(
+                m[SCALED_TEMPERATURE as usize] == NO_VALUE_I16,
+                !(fresh && has_reading),
+                "{s:?}"
+            );
         }
         assert_ne!(status_word(&snap(None)) & STATUS_NO_READING, 0);
     }
