@@ -108,22 +108,32 @@ fn the_correction_removes_bias_and_slope() {
 fn degenerate_pairs_have_a_clear_verdict() {
     use fringe_calibration::stats::StatsError;
     let lab = [12.0, 12.5, 13.1, 13.8, 14.2];
-    // A steady product read to the same digit: no slope, said so.
+    // A steady product read to the same digit: no slope (NaN, never
+    // significant nor correctable), the bias test as for any pairs.
     let flat = [12.2; 5];
-    let e = bias_slope(&lab, &flat, 0.05).unwrap_err();
-    assert_eq!(
-        e,
-        StatsError::NoSpread {
-            what: "predicted",
-            n: 5
-        }
+    let b = bias_slope(&lab, &flat, 0.05).unwrap();
+    assert!(
+        !b.slope_determined() && b.slope.is_nan() && b.s_res.is_nan(),
+        "{b:?}"
     );
-    assert!(e.to_string().contains("do not vary"), "{e}");
+    assert!(!b.slope_significant && !b.slope_correctable(), "{b:?}");
+    let want = bias_slope(&lab, &lab.map(|x| x + 0.1), 0.05).unwrap();
+    assert!((b.bias - (12.2 - 13.12)).abs() < 1e-12, "{b:?}");
+    assert!((b.sep - want.lab_sd).abs() < 1e-12, "{b:?}");
+    assert_eq!(b.lab_sd, want.lab_sd);
     let almost = [12.2, 12.2, 12.2000001, 12.2, 12.2];
-    assert!(matches!(
-        bias_slope(&lab, &almost, 0.05),
-        Err(StatsError::NoSpread { .. })
-    ));
+    assert!(!bias_slope(&lab, &almost, 0.05).unwrap().slope_determined());
+    // A steady line whose readings are 0.52 % high (five readings of
+    // 12.6): the bias is significant and corrected, the slope left
+    // (t = 0.52 sqrt(5) / 0.0837 = 13.9 against t(0.975, 4) = 2.776;
+    // arithmetic).
+    let steady = [12.0, 12.1, 12.2, 12.1, 12.0];
+    let b = bias_slope(&steady, &[12.6; 5], 0.05).unwrap();
+    assert!(
+        (b.bias - 0.52).abs() < 1e-12 && (b.bias_t - 13.9).abs() < 0.05,
+        "{b:?}"
+    );
+    assert_eq!(b.recommended(), Correction::Bias);
     // An inline that is the lab value plus 0.3 exactly: the bias is
     // certain, the slope is 1.
     let offset: Vec<f64> = lab.iter().map(|x| x + 0.3).collect();

@@ -173,6 +173,14 @@ pub enum AdjustError {
     /// The adjusted model does not fit the wire form.
     #[error("the adjusted model has too many parameters for the device")]
     TooMany,
+    /// A slope correction asked for where the pairs give no positive slope.
+    #[error("{source_words}: no slope correction: {}", if slope.is_nan() { "the predicted values do not vary, so the pairs determine no slope (take pairs over a range of moisture, or correct the bias alone)".to_string() } else { format!("the slope of lab on predicted is {slope:.3}, and a calibration corrected by it would read moisture flat or backwards; check that the pairs belong together") })]
+    NoSlope {
+        /// Where the pairs came from.
+        source_words: String,
+        /// The pairs' slope (NaN: none).
+        slope: f64,
+    },
     /// Pairs predicted with another calibration than the one adjusted.
     #[error("{}: line {line}: predicted with calibration {predicted_with} (its cal_id), and the calibration adjusted is {adjusted}: its bias would be judged on another's readings; predict the pairs again with --cal of the one adjusted", file.display())]
     OtherCalibration {
@@ -1736,7 +1744,7 @@ mod tests {
             .save(&cal)
             .expect("save");
         let head = "sample_id,moisture_pct,predicted_moisture_pct\n";
-        let cases: [(&[u8], &str); 5] = [
+        let cases: [(&[u8], &str); 6] = [
             (b"G1,12.1,12.0\nG2,13.4\nG3,11.0,11.2\n", "line 3"),
             (b"G1,12.1,12.0\nG\xfc,13.4,13.3\n", "line 3"),
             (b"G1,12.1,12.0\nG2,13.4,13.3\nG1,12.1,12.0\n", "line 4"),
@@ -1747,6 +1755,11 @@ mod tests {
                 "line 3, column 2 (moisture_pct): `145`",
             ),
             (b"G1,-3,12.0\n", "line 2, column 2 (moisture_pct): `-3`"),
+            // The same in the predicted column.
+            (
+                b"G1,12.1,12.0\nG2,14.5,144\n",
+                "line 3, column 3 (predicted_moisture_pct): `144`",
+            ),
         ];
         for (rows, want) in cases {
             std::fs::write(&p, [head.as_bytes(), rows].concat()).expect("write");
@@ -2008,7 +2021,34 @@ pub fn pairs_from_csv(path: &Path, cal: &Path) -> Result<Pairs, AdjustError> {
                 }
             }
         }
-        if let (Some(l), Some(p)) = (l, get(pred_c, "predicted")?) {
+        let p = get(pred_c, "predicted")?;
+        // A predicted value may lie a little below 0 (a model read past
+        // its range), but not past the basis's top either way (a decimal
+        // point lost: found by review).
+        if let Some(v) = p {
+            let (top, expected) = match basis {
+                Basis::Dry => (
+                    crate::samples::MAX_DRY_BASIS_PCT,
+                    "a predicted moisture in % dry basis, -1000 < m < 1000 (the calibration's basis)",
+                ),
+                _ => (
+                    100.0,
+                    "a predicted moisture in % wet basis, -100 < m < 100 (the calibration's basis)",
+                ),
+            };
+            if v.abs() >= top {
+                return Err(SampleError::BadValue {
+                    file: path.to_path_buf(),
+                    line,
+                    column: pred_c + 1,
+                    field: "predicted_moisture_pct",
+                    value: rec.get(pred_c).unwrap_or("").to_string(),
+                    expected,
+                }
+                .into());
+            }
+        }
+        if let (Some(l), Some(p)) = (l, p) {
             lab.push(l);
             predicted.push(p);
         }
@@ -2140,25 +2180,46 @@ pub fn adjust(
         AdjustCorrection::Bias => Correction::Bias,
         AdjustCorrection::BiasSlope => Correction::BiasAndSlope,
     };
+    // A slope correction, even asked for, needs a positive slope: with
+    // none (predicted values that do not vary) or one at or below zero the
+    // corrected calibration would read moisture flat or backwards (found
+    // by review).
+    if applied == Correction::BiasAndSlope && (tests.slope.is_nan() || tests.slope <= 0.0) {
+        return Err(AdjustError::NoSlope {
+            source_words: pairs.source,
+            slope: tests.slope,
+        });
+    }
     // A forced correction the tests do not call for: a bias correction
-    // where the bias is not significant, a slope one where the slope is
-    // not, or where the pairs cannot correct a slope.
+    // where the bias is not significant or the tests call for a slope one
+    // as well, a slope one where the slope is not significant, or where
+    // the pairs cannot correct a slope.
     let forced = match applied {
         Correction::None => false,
-        Correction::Bias => !tests.bias_significant,
+        Correction::Bias => {
+            !tests.bias_significant || tests.recommended() == Correction::BiasAndSlope
+        }
         Correction::BiasAndSlope => !tests.slope_significant || !tests.slope_correctable(),
     };
     let st = &file.statistics;
+    // An adjusted calibration keeps its parent's statistics; its own SEC
+    // is the parent's scaled by the slope, or the line's error where that
+    // was larger (found by review: T_UE came from the parent's).
+    let sec = if file.source.parent_id.is_some() {
+        f64::from(wire.sec_pct)
+    } else {
+        st.sec
+    };
     let unexplained = st
         .n_params
         .and_then(|p| st.n.checked_sub(p).filter(|d| *d > 0))
         .and_then(|dof| {
             let limit = fringe_calibration::fit::adjust::unexplained_error_limit(
-                st.sec, dof, tests.n, args.alpha,
+                sec, dof, tests.n, args.alpha,
             )
             .ok()?;
             Some(Unexplained {
-                sec: st.sec,
+                sec,
                 dof,
                 limit,
                 exceeded: tests.sep > limit,
@@ -2181,10 +2242,31 @@ pub fn adjust(
     // host's intervals) is the parent's scaled by the slope, or this where
     // it is larger: a calibration does not claim to be better on its line
     // than its line shows (our rule, no source).
-    let line_sd = match applied {
+    //
+    // The correction's own error adds to it for a new sample (found by
+    // review): the bias's, SEP^2 / n; after a slope correction that of the
+    // line, s_res^2 (1/n + (x - mean)^2 / Sxx), taken at the pair of
+    // predicted values farthest from their mean, so that it holds over
+    // the pairs' range (general least squares, from memory).
+    let nf = tests.n as f64;
+    let spread = match applied {
+        Correction::BiasAndSlope => {
+            let mean = pairs.predicted.iter().sum::<f64>() / nf;
+            let sxx: f64 = pairs.predicted.iter().map(|x| (x - mean).powi(2)).sum();
+            let far = pairs
+                .predicted
+                .iter()
+                .map(|x| (x - mean).powi(2))
+                .fold(0.0, f64::max);
+            1.0 / nf + far / sxx
+        }
+        _ => 1.0 / nf,
+    };
+    let line_raw = match applied {
         Correction::BiasAndSlope => tests.s_res,
         _ => tests.sep,
     };
+    let line_sd = line_raw * (1.0 + spread).sqrt();
     let scaled_sec = f64::from(wire.sec_pct) * b.abs();
     let raised = line_sd > scaled_sec;
     let cal = fringe_firmware::device::parse_product(&wire).map_err(|e| AdjustError::Refused {
@@ -2245,7 +2327,7 @@ pub fn adjust(
     };
     let raised_words = if raised {
         format!(
-            "; uncertainty from the pairs' {} {line_sd:.3} % (the parent's SEC{} gives {scaled_sec:.3} %)",
+            "; uncertainty from the pairs' {} {line_raw:.3} %, {line_sd:.3} % with the correction's own error (the parent's SEC{} gives {scaled_sec:.3} %)",
             if applied == Correction::BiasAndSlope {
                 "residual SD"
             } else {
@@ -2283,8 +2365,10 @@ pub fn adjust(
             _ => tests.n.saturating_sub(1),
         }
         .max(1);
+        // (The line's, also where a parent's adjust had set fewer: found by
+        // review.)
         if line_sd > p.interval_sd * b.abs() {
-            p.dof = p.dof.min(line_dof);
+            p.dof = line_dof;
         }
         p.residual_sd = (p.residual_sd * b.abs()).max(line_sd);
         p.interval_sd = (p.interval_sd * b.abs()).max(line_sd);
@@ -2348,20 +2432,27 @@ pub fn write_adjust(
             "not significant"
         }
     )?;
-    writeln!(
-        w,
-        "  slope {:.4} (lab on predicted), {conf} % CI {:.4}..{:.4}; t {:.2} vs {:.2}: {}",
-        t.slope,
-        t.slope_ci.0,
-        t.slope_ci.1,
-        t.slope_t,
-        t.slope_t_crit,
-        if t.slope_significant {
-            "differs from 1"
-        } else {
-            "not different from 1"
-        }
-    )?;
+    if !t.slope_determined() {
+        writeln!(
+            w,
+            "  slope none: the predicted values do not vary (a slope needs pairs over a range of moisture)"
+        )?;
+    } else {
+        writeln!(
+            w,
+            "  slope {:.4} (lab on predicted), {conf} % CI {:.4}..{:.4}; t {:.2} vs {:.2}: {}",
+            t.slope,
+            t.slope_ci.0,
+            t.slope_ci.1,
+            t.slope_t,
+            t.slope_t_crit,
+            if t.slope_significant {
+                "differs from 1"
+            } else {
+                "not different from 1"
+            }
+        )?;
+    }
     writeln!(
         w,
         "  SEP   {:.3} %, {conf} % CI {:.3}..{:.3}; RMSEP {:.3} % (bias included)",
