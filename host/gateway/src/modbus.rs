@@ -55,38 +55,131 @@ pub const MAX_CONNECTIONS: usize = 128;
 /// PLC's own connection is still taken.
 pub const MAX_CONNECTIONS_PER_CLIENT: usize = 32;
 
+/// A connection without a request for this long is closed to make room
+/// when a new one would pass a limit ([`MAX_CONNECTIONS`] in all or
+/// [`MAX_CONNECTIONS_PER_CLIENT`] from its address), the one idle longest
+/// first: the places are not held for good by connections a client opened
+/// and forgot (four such clients, or one behind an address translation or
+/// a tunnel that all clients share, locked a PLC out when it connected
+/// again: found by review). Servers that close the connection unused
+/// longest when their table is full are common practice (the Modbus TCP
+/// implementation guide's connection management, from memory). A PLC
+/// polls far more often than once a minute; one that polls less often
+/// connects again.
+pub const EVICT_IDLE: Duration = Duration::from_secs(60);
+
+/// One open connection: its address, its last request, and the flag that
+/// closes it (its stream reads as ended once set).
+struct Conn {
+    client: IpAddr,
+    last: std::sync::Mutex<Instant>,
+    closing: std::sync::atomic::AtomicBool,
+    waker: std::sync::Mutex<Option<std::task::Waker>>,
+}
+
+impl Conn {
+    fn close(&self) {
+        self.closing
+            .store(true, std::sync::atomic::Ordering::SeqCst);
+        let w = self.waker.lock().unwrap_or_else(|e| e.into_inner()).take();
+        if let Some(w) = w {
+            w.wake();
+        }
+    }
+
+    fn closing(&self) -> bool {
+        self.closing.load(std::sync::atomic::Ordering::SeqCst)
+    }
+
+    fn idle(&self, now: Instant) -> Duration {
+        now.saturating_duration_since(*self.last.lock().unwrap_or_else(|e| e.into_inner()))
+    }
+}
+
 /// Connections open, in all and per client address.
 #[derive(Default)]
 struct Open {
     total: usize,
     per_client: std::collections::HashMap<IpAddr, usize>,
+    conns: Vec<Arc<Conn>>,
+}
+
+impl Open {
+    /// Closes the connection idle longest, at least `idle`, of those from
+    /// `from` (any address: `None`), and frees its place: whether there
+    /// was one.
+    fn evict(&mut self, from: Option<IpAddr>, idle: Duration, now: Instant) -> bool {
+        let Some((i, _)) = self
+            .conns
+            .iter()
+            .enumerate()
+            .filter(|(_, c)| from.is_none_or(|a| a == c.client))
+            .map(|(i, c)| (i, c.idle(now)))
+            .filter(|(_, d)| *d >= idle)
+            .max_by_key(|(_, d)| *d)
+        else {
+            return false;
+        };
+        let c = self.conns.swap_remove(i);
+        c.close();
+        self.release(c.client);
+        true
+    }
+
+    fn release(&mut self, client: IpAddr) {
+        self.total = self.total.saturating_sub(1);
+        if let Some(n) = self.per_client.get_mut(&client) {
+            *n = n.saturating_sub(1);
+            if *n == 0 {
+                self.per_client.remove(&client);
+            }
+        }
+    }
 }
 
 /// One open connection, counted until the connection ends (its service is
-/// dropped with it).
+/// dropped with it) or it is closed to make room ([`EVICT_IDLE`]).
 struct Slot {
     open: Arc<std::sync::Mutex<Open>>,
-    client: IpAddr,
+    conn: Arc<Conn>,
 }
 
 impl Slot {
-    /// A place for a connection from `client`, or why there is none.
-    fn take(open: &Arc<std::sync::Mutex<Open>>, client: IpAddr) -> Result<Slot, String> {
+    /// A place for a connection from `client`, or why there is none: at a
+    /// limit, the place of a connection idle at least `idle` is taken.
+    fn take(
+        open: &Arc<std::sync::Mutex<Open>>,
+        client: IpAddr,
+        idle: Duration,
+    ) -> Result<Slot, String> {
         let mut o = open.lock().unwrap_or_else(|e| e.into_inner());
+        let now = Instant::now();
         let mine = o.per_client.get(&client).copied().unwrap_or(0);
-        if o.total >= MAX_CONNECTIONS {
-            return Err(format!("{MAX_CONNECTIONS} connections are open"));
-        }
-        if mine >= MAX_CONNECTIONS_PER_CLIENT {
+        if mine >= MAX_CONNECTIONS_PER_CLIENT && !o.evict(Some(client), idle, now) {
             return Err(format!(
-                "{client} has {MAX_CONNECTIONS_PER_CLIENT} connections open"
+                "{client} has {MAX_CONNECTIONS_PER_CLIENT} connections open, none idle for {} s",
+                idle.as_secs_f64()
             ));
         }
+        if o.total >= MAX_CONNECTIONS && !o.evict(None, idle, now) {
+            return Err(format!(
+                "{MAX_CONNECTIONS} connections are open, none idle for {} s",
+                idle.as_secs_f64()
+            ));
+        }
+        let mine = o.per_client.get(&client).copied().unwrap_or(0);
         o.total += 1;
         o.per_client.insert(client, mine + 1);
+        let conn = Arc::new(Conn {
+            client,
+            last: std::sync::Mutex::new(now),
+            closing: std::sync::atomic::AtomicBool::new(false),
+            waker: std::sync::Mutex::new(None),
+        });
+        o.conns.push(Arc::clone(&conn));
         Ok(Slot {
             open: Arc::clone(open),
-            client,
+            conn,
         })
     }
 }
@@ -94,13 +187,61 @@ impl Slot {
 impl Drop for Slot {
     fn drop(&mut self) {
         let mut o = self.open.lock().unwrap_or_else(|e| e.into_inner());
-        o.total = o.total.saturating_sub(1);
-        if let Some(n) = o.per_client.get_mut(&self.client) {
-            *n = n.saturating_sub(1);
-            if *n == 0 {
-                o.per_client.remove(&self.client);
-            }
+        // (A connection closed to make room was released then.)
+        if let Some(i) = o.conns.iter().position(|c| Arc::ptr_eq(c, &self.conn)) {
+            o.conns.swap_remove(i);
+            o.release(self.conn.client);
         }
+    }
+}
+
+/// A connection's stream that reads as ended once its connection is
+/// closed to make room (tokio-modbus then ends the connection and drops
+/// it); otherwise the socket's.
+struct Closable {
+    inner: tokio::net::TcpStream,
+    conn: Arc<Conn>,
+}
+
+impl tokio::io::AsyncRead for Closable {
+    fn poll_read(
+        mut self: std::pin::Pin<&mut Self>,
+        cx: &mut std::task::Context<'_>,
+        buf: &mut tokio::io::ReadBuf<'_>,
+    ) -> std::task::Poll<io::Result<()>> {
+        if self.conn.closing() {
+            return std::task::Poll::Ready(Ok(()));
+        }
+        *self.conn.waker.lock().unwrap_or_else(|e| e.into_inner()) = Some(cx.waker().clone());
+        // (Closed between the check and the waker's store.)
+        if self.conn.closing() {
+            return std::task::Poll::Ready(Ok(()));
+        }
+        std::pin::Pin::new(&mut self.inner).poll_read(cx, buf)
+    }
+}
+
+impl tokio::io::AsyncWrite for Closable {
+    fn poll_write(
+        mut self: std::pin::Pin<&mut Self>,
+        cx: &mut std::task::Context<'_>,
+        buf: &[u8],
+    ) -> std::task::Poll<io::Result<usize>> {
+        std::pin::Pin::new(&mut self.inner).poll_write(cx, buf)
+    }
+
+    fn poll_flush(
+        mut self: std::pin::Pin<&mut Self>,
+        cx: &mut std::task::Context<'_>,
+    ) -> std::task::Poll<io::Result<()>> {
+        std::pin::Pin::new(&mut self.inner).poll_flush(cx)
+    }
+
+    fn poll_shutdown(
+        mut self: std::pin::Pin<&mut Self>,
+        cx: &mut std::task::Context<'_>,
+    ) -> std::task::Poll<io::Result<()>> {
+        std::pin::Pin::new(&mut self.inner).poll_shutdown(cx)
     }
 }
 
@@ -347,7 +488,8 @@ struct Service {
     order: WordOrder,
     density: Option<DensityWrites>,
     peer: IpAddr,
-    /// This connection's place among [`MAX_CONNECTIONS`].
+    /// This connection's place among [`MAX_CONNECTIONS`] (and its last
+    /// request).
     _slot: Slot,
 }
 
@@ -359,6 +501,12 @@ impl tokio_modbus::server::Service for Service {
 
     fn call(&self, req: Self::Request) -> Self::Future {
         let now = Instant::now();
+        *self
+            ._slot
+            .conn
+            .last
+            .lock()
+            .unwrap_or_else(|e| e.into_inner()) = now;
         let Some(snapshot) = self.table.snapshot(req.slave, now) else {
             // A unit the gateway does not serve, whatever is asked.
             return future::ready(Err(ExceptionCode::GatewayTargetDevice));
@@ -421,6 +569,22 @@ impl ModbusServer {
         density: Option<DensityWrites>,
         said: Option<Arc<dyn Fn(String) + Send + Sync>>,
     ) -> io::Result<Self> {
+        Self::start_evicting(addr, table, order, density, said, EVICT_IDLE)
+    }
+
+    /// As [`ModbusServer::start_with`], a connection idle at least
+    /// `evict_idle` closed to make room at a limit (the gateway: [`EVICT_IDLE`]).
+    ///
+    /// # Errors
+    /// As [`ModbusServer::start`].
+    pub fn start_evicting(
+        addr: SocketAddr,
+        table: Arc<LiveTable>,
+        order: WordOrder,
+        density: Option<DensityWrites>,
+        said: Option<Arc<dyn Fn(String) + Send + Sync>>,
+        evict_idle: Duration,
+    ) -> io::Result<Self> {
         let rt = tokio::runtime::Builder::new_current_thread()
             .enable_all()
             .build()?;
@@ -439,7 +603,7 @@ impl ModbusServer {
                     let on_connected = |stream: tokio::net::TcpStream, socket_addr: SocketAddr| {
                         let table = Arc::clone(&table);
                         let density = density.clone();
-                        let slot = match Slot::take(&open, peer_ip(socket_addr)) {
+                        let slot = match Slot::take(&open, peer_ip(socket_addr), evict_idle) {
                             Ok(s) => Some(s),
                             Err(why) => {
                                 let mut r = refused.lock().unwrap_or_else(|e| e.into_inner());
@@ -472,6 +636,10 @@ impl ModbusServer {
                             // closes the connection.
                             let Some(slot) = slot else {
                                 return Ok(None);
+                            };
+                            let stream = Closable {
+                                inner: stream,
+                                conn: Arc::clone(&slot.conn),
                             };
                             Ok(Some((
                                 Service {
