@@ -40,13 +40,16 @@
 //!
 //! Nothing a Modbus request carries can change the device.
 //!
-//! A request waiting for its answer is dropped, unanswered, when a new
-//! frame begins on the line before `poll` has sent the answer (the board
-//! was busy past the master's wait): the master has gone on, after its
-//! timeout or to another unit, and an answer then would go out over that
-//! frame or the other unit's answer ([`Counters::late`]). Only one master
-//! talks on a Modbus serial line (V1.02 section 2.1), and it starts no new
-//! frame while it waits for an answer.
+//! An answer is not sent while a frame is coming in: it waits for that
+//! frame's end. If that frame is a good one (its CRC right, whatever its
+//! unit), the master has gone on (after its timeout, the board busy past
+//! it, or to another unit) and the request is dropped unanswered
+//! ([`Counters::late`]): an answer then would go out over the next request
+//! or another unit's answer. If it is noise (a damaged or bad-CRC frame:
+//! a glitch as a master's driver lets go of the line, say), the answer
+//! goes out after it. Only one master talks on a Modbus serial line
+//! (V1.02 section 2.1), and it starts no new frame while it waits for an
+//! answer.
 //!
 //! ## Half duplex
 //! [`HalfDuplex`] drives the transceiver's driver enable through an
@@ -271,7 +274,7 @@ pub struct Counters {
     pub answered: u32,
     /// Exception answers.
     pub exceptions: u32,
-    /// Requests for this unit dropped unanswered: a new frame began
+    /// Requests for this unit dropped unanswered: a good frame came
     /// before the answer was sent (see the module docs).
     pub late: u32,
 }
@@ -367,7 +370,6 @@ impl RtuSlave {
     /// come in the order received, with non-decreasing times.
     pub fn receive(&mut self, at_us: u64, byte: u8) {
         self.gap_before(at_us);
-        self.frame_begins();
         match self.rx.get_mut(self.rx_len) {
             Some(slot) => {
                 *slot = byte;
@@ -382,7 +384,6 @@ impl RtuSlave {
     /// or bytes lost to an overrun): the frame it belongs to is dropped.
     pub fn line_error(&mut self, at_us: u64) {
         self.gap_before(at_us);
-        self.frame_begins();
         self.damaged = true;
         // A character arrived, even if unreadable: the frame is not empty.
         if self.rx_len == 0 {
@@ -416,7 +417,8 @@ impl RtuSlave {
                 self.end_frame();
             }
         }
-        if self.req_len == 0 {
+        // Not over a frame coming in (its end decides: see the module docs).
+        if self.req_len == 0 || self.rx_len > 0 {
             return None;
         }
         let n = core::mem::take(&mut self.req_len);
@@ -426,16 +428,6 @@ impl RtuSlave {
             None => return None,
         }
         Some(self.resp.as_slice())
-    }
-
-    /// A character arrives: where it begins a frame, a request still
-    /// waiting for its answer is dropped (the master has gone on; an
-    /// answer now would go out over this frame).
-    fn frame_begins(&mut self) {
-        if self.rx_len == 0 && self.req_len > 0 {
-            self.req_len = 0;
-            self.counters.late = self.counters.late.wrapping_add(1);
-        }
     }
 
     /// Ends the frame in progress if the silence before a character
@@ -478,6 +470,12 @@ impl RtuSlave {
         if CRC16.checksum(body) != sent {
             c.bad_crc = c.bad_crc.wrapping_add(1);
             return;
+        }
+        // A good frame since a request not yet answered: the master has
+        // gone on.
+        if self.req_len > 0 {
+            self.req_len = 0;
+            c.late = c.late.wrapping_add(1);
         }
         match (body.first(), body.get(1)) {
             (Some(0), _) => c.broadcast = c.broadcast.wrapping_add(1),
@@ -906,10 +904,11 @@ mod tests {
     }
 
     #[test]
-    fn a_request_not_answered_before_the_next_frame_begins_is_dropped() {
+    fn an_answer_waits_for_a_frame_coming_in_and_a_good_one_drops_it() {
         // The board busy past the master's wait: our request ended, no
         // poll, and the master has gone on to unit 2. Our answer would go
-        // out over unit 2's request or its answer: dropped, counted.
+        // out over unit 2's request or its answer: held while it comes in,
+        // dropped once it has come whole, counted.
         let mut s = slave();
         let ours = rtu(&[0x01, 0x04, 0x00, 0x09, 0x00, 0x01]);
         let theirs = rtu(&[0x02, 0x04, 0x00, 0x00, 0x00, 0x01]);
@@ -920,14 +919,17 @@ mod tests {
         assert_eq!(s.poll(end + 2006, map), None, "after it");
         let c = s.counters();
         assert_eq!((c.late, c.answered, c.other_unit), (1, 0, 1));
-        // The same where the next frame's first byte ends ours (fed
-        // together, before any poll), and with a damaged character.
+        // Noise after our request (a damaged character, t3.5 of silence
+        // and one character after it, as a master's driver letting go of
+        // the line can make): the answer waits for it to pass, then goes.
         let mut s = slave();
         let end = feed(&mut s, 0, &ours);
-        // (Its character ends t3.5 of silence and one character later.)
         s.line_error(end + 2006 + 573);
-        assert_eq!(s.poll(end + 2006 + 5000, map), None);
-        assert_eq!(s.counters().late, 1);
+        assert_eq!(s.poll(end + 2006 + 600, map), None, "inside the noise");
+        let answer = s.poll(end + 2006 + 573 + 2006, map).map(<[u8]>::to_vec);
+        assert_eq!(answer, Some(rtu(&[0x01, 0x04, 0x02, 0x01, 0x09])));
+        let c = s.counters();
+        assert_eq!((c.late, c.damaged, c.answered), (0, 1, 1));
         // Polled in time, it is answered, and nothing is late.
         let mut s = slave();
         let answer = ask(&mut s, 0, &ours).map(|a| a.len());

@@ -83,6 +83,15 @@ fn sent(t: Timing) -> impl Strategy<Value = Sent> {
         })
 }
 
+/// Whether a delimited frame is a good one: whole, its CRC right.
+fn good(frame: &[u8], damaged: bool) -> bool {
+    let n = frame.len();
+    !damaged && (4..=MAX_ADU).contains(&n) && {
+        let (body, crc) = frame.split_at(n - 2);
+        CRC.checksum(body) == u16::from_le_bytes([crc[0], crc[1]])
+    }
+}
+
 /// The model: the answer to one delimited frame (`damaged`: a silence
 /// above t1.5 inside it).
 fn model_answer(frame: &[u8], damaged: bool) -> Option<Vec<u8>> {
@@ -121,10 +130,11 @@ fn model_answer(frame: &[u8], damaged: bool) -> Option<Vec<u8>> {
 }
 
 /// The model's state: the frame being received and the answer waiting
-/// for a poll (dropped when the next frame begins: the master has gone on,
-/// and an answer then would go out over that frame; Modbus over Serial
-/// Line V1.02 section 2.1, one master, which starts no frame while it waits
-/// for an answer).
+/// for a poll, which is not given while a frame comes in, and is dropped
+/// when a good frame (its CRC right, any unit) has come since its request:
+/// the master has gone on, and an answer then would go out over the next
+/// request or another unit's answer (Modbus over Serial Line V1.02 section
+/// 2.1, one master, which starts no frame while it waits for an answer).
 #[derive(Default)]
 struct Model {
     frame: Vec<u8>,
@@ -138,6 +148,9 @@ struct Model {
 impl Model {
     fn end_frame(&mut self) {
         if !self.frame.is_empty() {
+            if good(&self.frame, self.damaged) && self.pending.take().is_some() {
+                self.dropped += 1;
+            }
             if let Some(a) = model_answer(&self.frame, self.damaged) {
                 self.pending = Some(a);
             }
@@ -153,9 +166,6 @@ impl Model {
         } else if silence > u64::from(t.t15_us) && !self.frame.is_empty() {
             self.damaged = true;
         }
-        if self.frame.is_empty() && self.pending.take().is_some() {
-            self.dropped += 1;
-        }
         self.frame.push(b);
         self.last_us = at;
     }
@@ -163,6 +173,9 @@ impl Model {
     fn poll(&mut self, t: Timing, now: u64) -> Option<Vec<u8>> {
         if !self.frame.is_empty() && now >= self.last_us + u64::from(t.t35_us) {
             self.end_frame();
+        }
+        if !self.frame.is_empty() {
+            return None;
         }
         self.pending.take()
     }
