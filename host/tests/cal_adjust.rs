@@ -514,6 +514,8 @@ fn a_second_adjust_takes_the_childs_sec_and_its_own_pairs_degrees_of_freedom() {
         (used - sec).abs() < 1e-6,
         "T_UE from {used}, the child's SEC is {sec}: {v}"
     );
+    // With the degrees of freedom of the first pairs, which set it.
+    assert_eq!(v["unexplained_error"]["dof"], 9, "{v}");
     let text = std::fs::read_to_string(&grandchild).expect("grandchild");
     assert!(text.lines().any(|l| l == "dof = 29"), "{text}");
 }

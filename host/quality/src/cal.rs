@@ -2210,9 +2210,20 @@ pub fn adjust(
     } else {
         st.sec
     };
+    // Its degrees of freedom: where a line's error set the child's
+    // intervals, the line's (`prediction.dof`, which the adjust set), as
+    // it set the SEC then too; the parent's otherwise (found by review).
+    let child_dof = file
+        .source
+        .parent_id
+        .as_ref()
+        .and(file.prediction.as_ref())
+        .map(|p| p.dof);
     let unexplained = st
         .n_params
         .and_then(|p| st.n.checked_sub(p).filter(|d| *d > 0))
+        .map(|m| child_dof.map_or(m, |d| m.min(d)))
+        .filter(|d| *d > 0)
         .and_then(|dof| {
             let limit = fringe_calibration::fit::adjust::unexplained_error_limit(
                 sec, dof, tests.n, args.alpha,
