@@ -102,6 +102,9 @@ struct Open {
     total: usize,
     per_client: std::collections::HashMap<IpAddr, usize>,
     conns: Vec<Arc<Conn>>,
+    /// The last connection closed to make room (its address and how long
+    /// it had gone without a request), until it is said.
+    evicted: Option<(IpAddr, Duration)>,
 }
 
 impl Open {
@@ -122,6 +125,7 @@ impl Open {
         };
         let c = self.conns.swap_remove(i);
         c.close();
+        self.evicted = Some((c.client, c.idle(now)));
         self.release(c.client);
         true
     }
@@ -222,11 +226,21 @@ impl tokio::io::AsyncRead for Closable {
 }
 
 impl tokio::io::AsyncWrite for Closable {
+    // A connection closed to make room while its answer waits on a client
+    // that does not read ends too (found by review: it held its socket and
+    // task for good, past the limits). `close` wakes the task.
     fn poll_write(
         mut self: std::pin::Pin<&mut Self>,
         cx: &mut std::task::Context<'_>,
         buf: &[u8],
     ) -> std::task::Poll<io::Result<usize>> {
+        if self.conn.closing() {
+            return std::task::Poll::Ready(Err(io::ErrorKind::BrokenPipe.into()));
+        }
+        *self.conn.waker.lock().unwrap_or_else(|e| e.into_inner()) = Some(cx.waker().clone());
+        if self.conn.closing() {
+            return std::task::Poll::Ready(Err(io::ErrorKind::BrokenPipe.into()));
+        }
         std::pin::Pin::new(&mut self.inner).poll_write(cx, buf)
     }
 
@@ -234,6 +248,13 @@ impl tokio::io::AsyncWrite for Closable {
         mut self: std::pin::Pin<&mut Self>,
         cx: &mut std::task::Context<'_>,
     ) -> std::task::Poll<io::Result<()>> {
+        if self.conn.closing() {
+            return std::task::Poll::Ready(Err(io::ErrorKind::BrokenPipe.into()));
+        }
+        *self.conn.waker.lock().unwrap_or_else(|e| e.into_inner()) = Some(cx.waker().clone());
+        if self.conn.closing() {
+            return std::task::Poll::Ready(Err(io::ErrorKind::BrokenPipe.into()));
+        }
         std::pin::Pin::new(&mut self.inner).poll_flush(cx)
     }
 
@@ -600,11 +621,35 @@ impl ModbusServer {
                     // Connections refused at the limit: said at most once
                     // per SAY_EVERY, with how many since.
                     let refused = std::sync::Mutex::new((None::<Instant>, 0u64));
+                    // Connections closed to make room: said likewise.
+                    let evicted = std::sync::Mutex::new((None::<Instant>, 0u64));
                     let on_connected = |stream: tokio::net::TcpStream, socket_addr: SocketAddr| {
                         let table = Arc::clone(&table);
                         let density = density.clone();
                         let slot = match Slot::take(&open, peer_ip(socket_addr), evict_idle) {
-                            Ok(s) => Some(s),
+                            Ok(s) => {
+                                let gone = open
+                                    .lock()
+                                    .unwrap_or_else(|e| e.into_inner())
+                                    .evicted
+                                    .take();
+                                if let Some((from, idle)) = gone {
+                                    let mut r = evicted.lock().unwrap_or_else(|e| e.into_inner());
+                                    r.1 += 1;
+                                    if r.0.is_none_or(|t| t.elapsed() >= SAY_EVERY) {
+                                        if let Some(said) = &said {
+                                            said(format!(
+                                                "Modbus TCP on {addr}: {} connection(s) closed to make room at the limits, the last from {from}, {:.0} s without a request, for one from {}",
+                                                r.1,
+                                                idle.as_secs_f64(),
+                                                peer_ip(socket_addr)
+                                            ));
+                                        }
+                                        *r = (Some(Instant::now()), 0);
+                                    }
+                                }
+                                Some(s)
+                            }
                             Err(why) => {
                                 let mut r = refused.lock().unwrap_or_else(|e| e.into_inner());
                                 r.1 += 1;
