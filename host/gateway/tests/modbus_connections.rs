@@ -10,6 +10,15 @@ use fringe_gateway::modbus::{MAX_CONNECTIONS, MAX_CONNECTIONS_PER_CLIENT};
 
 mod common;
 
+/// The tests of this file one at a time: each fills the limits of its own
+/// server, and one counts this process's descriptors, which another test
+/// running beside it would change.
+static ONE_AT_A_TIME: std::sync::Mutex<()> = std::sync::Mutex::new(());
+
+fn alone() -> std::sync::MutexGuard<'static, ()> {
+    ONE_AT_A_TIME.lock().unwrap_or_else(|e| e.into_inner())
+}
+
 /// Whether the server closed `c` without answering (end of stream).
 fn closed_by_the_server(c: &mut TcpStream) -> Result<(), String> {
     c.set_read_timeout(Some(Duration::from_secs(5)))
@@ -47,6 +56,7 @@ fn ask_unit_1(c: &mut TcpStream) -> std::io::Result<Vec<u8>> {
 /// and the failed accept then closed every connection, the PLC's too.
 #[test]
 fn connections_past_the_limits_are_closed_and_the_rest_still_served() {
+    let _alone = alone();
     let (server, said) = serving_unit_1("PLT-FD-0002");
     let addr = server.local_addr();
     let ip = |n: u8| IpAddr::from([127, 0, 0, n]);
@@ -140,6 +150,7 @@ fn closed_count(mut closed: impl FnMut() -> usize, want: usize) -> usize {
 /// locked the PLC out when it connected again.)
 #[test]
 fn at_a_limit_the_connection_idle_longest_makes_room() {
+    let _alone = alone();
     let said: std::sync::Arc<std::sync::Mutex<Vec<String>>> = Default::default();
     let tell = std::sync::Arc::clone(&said);
     let server = fringe_gateway::modbus::ModbusServer::start_evicting(
@@ -224,6 +235,7 @@ fn open_fds() -> usize {
 #[test]
 fn a_connection_closed_while_its_answers_wait_ends_too() {
     use std::io::Write;
+    let _alone = alone();
     let server = fringe_gateway::modbus::ModbusServer::start_evicting(
         "127.0.0.1:0".parse().unwrap(),
         common::table_with_unit_1("PLT-FD-0004"),
