@@ -41,13 +41,14 @@
 //! Nothing a Modbus request carries can change the device.
 //!
 //! An answer is not sent while a frame is coming in: it waits for that
-//! frame's end. If that frame is a good one (its CRC right, whatever its
-//! unit), the master has gone on (after its timeout, the board busy past
-//! it, or to another unit) and the request is dropped unanswered
-//! ([`Counters::late`]): an answer then would go out over the next request
-//! or another unit's answer. If it is noise (a damaged or bad-CRC frame:
-//! a glitch as a master's driver lets go of the line, say), the answer
-//! goes out after it. Only one master talks on a Modbus serial line
+//! frame's end. If that was a frame of 4 characters or more (the least a
+//! request has), good or garbled here, the master has gone on (after its
+//! timeout, the board busy past it, or to another unit) and the request
+//! is dropped unanswered ([`Counters::late`]): an answer then would go out
+//! over the next request or another unit's answer, or be taken for the
+//! answer to the next request (RTU has no transaction id). If it was
+//! shorter (a glitch as a master's driver lets go of the line, say), the
+//! answer goes out after it. Only one master talks on a Modbus serial line
 //! (V1.02 section 2.1), and it starts no new frame while it waits for an
 //! answer.
 //!
@@ -274,8 +275,8 @@ pub struct Counters {
     pub answered: u32,
     /// Exception answers.
     pub exceptions: u32,
-    /// Requests for this unit dropped unanswered: a good frame came
-    /// before the answer was sent (see the module docs).
+    /// Requests for this unit dropped unanswered: a frame came before the
+    /// answer was sent (see the module docs).
     pub late: u32,
 }
 
@@ -454,6 +455,12 @@ impl RtuSlave {
         }
         let c = &mut self.counters;
         c.frames = c.frames.wrapping_add(1);
+        // A frame since a request not yet answered: the master has gone
+        // on. (Not a glitch shorter than any request.)
+        if n >= 4 && self.req_len > 0 {
+            self.req_len = 0;
+            c.late = c.late.wrapping_add(1);
+        }
         let Some(frame) = self.rx.get(..n) else {
             c.damaged = c.damaged.wrapping_add(1);
             return;
@@ -470,12 +477,6 @@ impl RtuSlave {
         if CRC16.checksum(body) != sent {
             c.bad_crc = c.bad_crc.wrapping_add(1);
             return;
-        }
-        // A good frame since a request not yet answered: the master has
-        // gone on.
-        if self.req_len > 0 {
-            self.req_len = 0;
-            c.late = c.late.wrapping_add(1);
         }
         match (body.first(), body.get(1)) {
             (Some(0), _) => c.broadcast = c.broadcast.wrapping_add(1),
@@ -930,6 +931,16 @@ mod tests {
         assert_eq!(answer, Some(rtu(&[0x01, 0x04, 0x02, 0x01, 0x09])));
         let c = s.counters();
         assert_eq!((c.late, c.damaged, c.answered), (0, 1, 1));
+        // A whole request garbled here (a bad CRC) is the master going on
+        // too: dropped.
+        let mut s = slave();
+        let end = feed(&mut s, 0, &ours);
+        let mut garbled = theirs.clone();
+        garbled[7] ^= 0x01;
+        let end = feed(&mut s, end + 300_000, &garbled);
+        assert_eq!(s.poll(end + 2006, map), None);
+        let c = s.counters();
+        assert_eq!((c.late, c.bad_crc, c.answered), (1, 1, 0));
         // Polled in time, it is answered, and nothing is late.
         let mut s = slave();
         let answer = ask(&mut s, 0, &ours).map(|a| a.len());

@@ -213,7 +213,9 @@ fn serve_modbus(
     }
     let t0 = clock::cycles();
     let gap_ends_us = slave.frame_deadline_us();
-    let now_us = t0 / CYCLES_PER_US;
+    // (The time the bytes were taken to, `now_us` above: a byte that came
+    // since is not fed yet, and an answer must not go out over it as if
+    // the line were quiet.)
     let Some(answer) = slave.poll(now_us, || dev.modbus_registers(now_us / 1000)) else {
         return;
     };

@@ -302,7 +302,9 @@ fn serve_modbus(slave: &mut RtuSlave, port: &mut Rs485, dev: &BoardDevice) {
             rs485::Rx::Error(at_us) => slave.line_error(at_us),
         }
     }
-    let now_us = Instant::now().as_micros();
+    // (The time the bytes were taken to: a byte that came since is not fed
+    // yet, and an answer must not go out over it as if the line were
+    // quiet.)
     if let Some(answer) = slave.poll(now_us, || dev.modbus_registers(now_us / 1000)) {
         let _ = port.send(answer);
     }
