@@ -490,6 +490,8 @@ fn a_second_adjust_takes_the_childs_sec_and_its_own_pairs_degrees_of_freedom() {
     ok(&adjust_cmd(&cal, &first, &child, &[]));
     let text = std::fs::read_to_string(&child).expect("child");
     assert!(text.lines().any(|l| l == "dof = 9"), "{text}");
+    // Its SEC is the pairs' error, with their degrees of freedom.
+    assert!(text.lines().any(|l| l == "sec_dof = 9"), "{text}");
     let sec: f64 = text
         .lines()
         .find_map(|l| l.strip_prefix("sec_pct = "))

@@ -2210,19 +2210,13 @@ pub fn adjust(
     } else {
         st.sec
     };
-    // Its degrees of freedom: where a line's error set the child's
-    // intervals, the line's (`prediction.dof`, which the adjust set), as
-    // it set the SEC then too; the parent's otherwise (found by review).
-    let child_dof = file
-        .source
-        .parent_id
-        .as_ref()
-        .and(file.prediction.as_ref())
-        .map(|p| p.dof);
+    // Its degrees of freedom: where a line's error set it, the lab pairs'
+    // (`sec_dof`, which the adjust wrote), the fit's otherwise (found by
+    // review).
     let unexplained = st
         .n_params
         .and_then(|p| st.n.checked_sub(p).filter(|d| *d > 0))
-        .map(|m| child_dof.map_or(m, |d| m.min(d)))
+        .map(|m| file.sec_dof.unwrap_or(m))
         .filter(|d| *d > 0)
         .and_then(|dof| {
             let limit = fringe_calibration::fit::adjust::unexplained_error_limit(
@@ -2366,16 +2360,19 @@ pub fn adjust(
     let mut new_file =
         ProductFile::from_wire(&new_wire, &input_names, file.statistics.clone(), source);
     new_file.prediction = file.prediction.clone();
+    // The SEC's degrees of freedom: the pairs' where their error set it,
+    // else the parent's.
+    let line_dof = match applied {
+        Correction::BiasAndSlope => tests.n.saturating_sub(2),
+        _ => tests.n.saturating_sub(1),
+    }
+    .max(1);
+    new_file.sec_dof = if raised { Some(line_dof) } else { file.sec_dof };
     if let Some(p) = &mut new_file.prediction {
         // Intervals scale with the slope, and are no narrower than the
         // line's error after the correction; where that sets them, their t
         // quantile has its degrees of freedom (n - 1 for the SEP, n - 2
         // for the residual SD after a slope correction).
-        let line_dof = match applied {
-            Correction::BiasAndSlope => tests.n.saturating_sub(2),
-            _ => tests.n.saturating_sub(1),
-        }
-        .max(1);
         // (The line's, also where a parent's adjust had set fewer: found by
         // review.)
         if line_sd > p.interval_sd * b.abs() {

@@ -191,6 +191,12 @@ pub struct ProductFile {
     pub made_unix_s: u64,
     /// Standard error of calibration, %.
     pub sec_pct: f32,
+    /// Degrees of freedom of `sec_pct` where they are not the fit's (the
+    /// statistics' samples less parameters): an adjusted calibration whose
+    /// uncertainty is a line's error after the correction carries the lab
+    /// pairs' (absent otherwise, and in files written before 2026-12-06).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sec_dof: Option<usize>,
     /// Flat parameters.
     pub params: Vec<f32>,
     /// Valid moisture range, %.
@@ -312,6 +318,7 @@ impl ProductFile {
             id: cal.content_id().to_string(),
             made_unix_s: cal.made_s,
             sec_pct: cal.sec_pct,
+            sec_dof: None,
             params: cal.params.to_vec(),
             moisture_pct: [cal.moisture_pct.min, cal.moisture_pct.max],
             temperature_c: [cal.temperature_c.min, cal.temperature_c.max],
