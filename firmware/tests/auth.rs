@@ -692,6 +692,28 @@ fn power_cut_in_repair_body() {
     }
 }
 
+/// A settled device (seed `seed`) that took a signed write of the cell
+/// calibration of stray capacitance `stray`, and that calibration.
+fn with_signed_cell(seed: u64, stray: f32) -> (Bench, CellCal) {
+    let mut b = Bench::new(seed, Scenario::default());
+    b.settle();
+    let cal = cell(stray);
+    let req = Request::WriteCellCal(cal);
+    let tag = signed(&mut b, &req);
+    let f = b.ask_with(req, Some(tag));
+    assert!(
+        matches!(
+            f,
+            DeviceFrame::Response {
+                response: Response::Ack,
+                ..
+            }
+        ),
+        "{f:?}"
+    );
+    (b, cal)
+}
+
 /// A power cut at any step of a boot that repairs the event ring alone
 /// (its repair event logged after the map holds the boot's number) does not
 /// cost the settings map: at the next boot the calibration written before
@@ -701,22 +723,7 @@ fn power_cut_in_repair_body() {
 #[test]
 fn a_power_cut_in_an_event_ring_repair_keeps_the_map() {
     big_stack(|| {
-        let mut b = Bench::new(45, Scenario::default());
-        b.settle();
-        let cal = cell(2.3);
-        let req = Request::WriteCellCal(cal);
-        let tag = signed(&mut b, &req);
-        let f = b.ask_with(req, Some(tag));
-        assert!(
-            matches!(
-                f,
-                DeviceFrame::Response {
-                    response: Response::Ack,
-                    ..
-                }
-            ),
-            "{f:?}"
-        );
+        let (b, cal) = with_signed_cell(45, 2.3);
         let flash = damaged_event_ring(b);
         let mut cuts = 0;
         for k in 0.. {
@@ -859,22 +866,7 @@ fn a_read_error_of_the_maps_boot_number_fails_the_boot_and_keeps_the_map() {
         use fringe_firmware::device::Booted;
         use fringe_firmware::storage::{Layout, Storage};
         use std::cell::Cell;
-        let mut b = Bench::new(49, Scenario::default());
-        b.settle();
-        let cal = cell(2.4);
-        let req = Request::WriteCellCal(cal);
-        let tag = signed(&mut b, &req);
-        let f = b.ask_with(req, Some(tag));
-        assert!(
-            matches!(
-                f,
-                DeviceFrame::Response {
-                    response: Response::Ack,
-                    ..
-                }
-            ),
-            "{f:?}"
-        );
+        let (b, cal) = with_signed_cell(49, 2.4);
         let flash = damaged_event_ring(b);
         // The event ring's repairing boot, cut after its repair event.
         let mut found = None;

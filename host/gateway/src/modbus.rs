@@ -266,6 +266,23 @@ impl tokio::io::AsyncWrite for Closable {
     }
 }
 
+/// Counts one more event of a kind (`seen`: when last said, how many
+/// since) and says it, with how many, at most once per [`SAY_EVERY`].
+fn say_now_and_then(
+    seen: &std::sync::Mutex<(Option<Instant>, u64)>,
+    said: Option<&(dyn Fn(String) + Send + Sync)>,
+    words: impl FnOnce(u64) -> String,
+) {
+    let mut r = seen.lock().unwrap_or_else(|e| e.into_inner());
+    r.1 += 1;
+    if r.0.is_none_or(|t| t.elapsed() >= SAY_EVERY) {
+        if let Some(said) = said {
+            said(words(r.1));
+        }
+        *r = (Some(Instant::now()), 0);
+    }
+}
+
 /// How often one sender's refused requests of one kind are said: a client
 /// that repeats a wrong request (or probes the port) must not bury the
 /// gateway's other messages.
@@ -634,35 +651,19 @@ impl ModbusServer {
                                     .evicted
                                     .take();
                                 if let Some((from, idle)) = gone {
-                                    let mut r = evicted.lock().unwrap_or_else(|e| e.into_inner());
-                                    r.1 += 1;
-                                    if r.0.is_none_or(|t| t.elapsed() >= SAY_EVERY) {
-                                        if let Some(said) = &said {
-                                            said(format!(
-                                                "Modbus TCP on {addr}: {} connection(s) closed to make room at the limits, the last from {from}, {:.0} s without a request, for one from {}",
-                                                r.1,
-                                                idle.as_secs_f64(),
-                                                peer_ip(socket_addr)
-                                            ));
-                                        }
-                                        *r = (Some(Instant::now()), 0);
-                                    }
+                                    say_now_and_then(&evicted, said.as_deref(), |n| format!(
+                                        "Modbus TCP on {addr}: {n} connection(s) closed to make room at the limits, the last from {from}, {:.0} s without a request, for one from {}",
+                                        idle.as_secs_f64(),
+                                        peer_ip(socket_addr)
+                                    ));
                                 }
                                 Some(s)
                             }
                             Err(why) => {
-                                let mut r = refused.lock().unwrap_or_else(|e| e.into_inner());
-                                r.1 += 1;
-                                if r.0.is_none_or(|t| t.elapsed() >= SAY_EVERY) {
-                                    if let Some(said) = &said {
-                                        said(format!(
-                                            "Modbus TCP on {addr}: {} connection(s) refused, the last from {} ({why}): a client that keeps opening connections?",
-                                            r.1,
-                                            peer_ip(socket_addr)
-                                        ));
-                                    }
-                                    *r = (Some(Instant::now()), 0);
-                                }
+                                say_now_and_then(&refused, said.as_deref(), |n| format!(
+                                    "Modbus TCP on {addr}: {n} connection(s) refused, the last from {} ({why}): a client that keeps opening connections?",
+                                    peer_ip(socket_addr)
+                                ));
                                 None
                             }
                         };
