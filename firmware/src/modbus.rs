@@ -386,10 +386,11 @@ impl RtuSlave {
     pub fn line_error(&mut self, at_us: u64) {
         self.gap_before(at_us);
         self.damaged = true;
-        // A character arrived, even if unreadable: the frame is not empty.
-        if self.rx_len == 0 {
-            self.rx_len = 1;
-        }
+        // A character arrived, even if unreadable: it counts in the frame's
+        // length (which decides whether it was a frame or a glitch: a
+        // request garbled here is the master going on; found by review).
+        // What `rx` holds there does not matter: the frame is dropped.
+        self.rx_len = (self.rx_len + 1).min(MAX_ADU);
         self.last_us = Some(at_us);
     }
 
@@ -941,6 +942,16 @@ mod tests {
         assert_eq!(s.poll(end + 2006, map), None);
         let c = s.counters();
         assert_eq!((c.late, c.bad_crc, c.answered), (1, 1, 0));
+        // The same with most of it lost to line errors (3 bytes read, 2
+        // characters damaged): still a frame, dropped.
+        let mut s = slave();
+        let end = feed(&mut s, 0, &ours);
+        let end = feed(&mut s, end + 300_000, &theirs[..3]);
+        s.line_error(end + 573);
+        s.line_error(end + 2 * 573);
+        assert_eq!(s.poll(end + 2 * 573 + 2006, map), None);
+        let c = s.counters();
+        assert_eq!((c.late, c.damaged, c.answered), (1, 1, 0));
         // Polled in time, it is answered, and nothing is late.
         let mut s = slave();
         let answer = ask(&mut s, 0, &ours).map(|a| a.len());

@@ -520,4 +520,5 @@ fn a_second_adjust_takes_the_childs_sec_and_its_own_pairs_degrees_of_freedom() {
     assert_eq!(v["unexplained_error"]["dof"], 9, "{v}");
     let text = std::fs::read_to_string(&grandchild).expect("grandchild");
     assert!(text.lines().any(|l| l == "dof = 29"), "{text}");
+    assert!(text.lines().any(|l| l == "sec_dof = 29"), "{text}");
 }

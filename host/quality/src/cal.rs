@@ -2216,7 +2216,15 @@ pub fn adjust(
     let unexplained = st
         .n_params
         .and_then(|p| st.n.checked_sub(p).filter(|d| *d > 0))
-        .map(|m| file.sec_dof.unwrap_or(m))
+        .map(|m| match file.sec_dof {
+            Some(d) => d,
+            // A file adjusted before `sec_dof` was written: the intervals'
+            // degrees of freedom where a line's error set them, as then.
+            None if file.source.parent_id.is_some() => {
+                file.prediction.as_ref().map_or(m, |p| m.min(p.dof))
+            }
+            None => m,
+        })
         .filter(|d| *d > 0)
         .and_then(|dof| {
             let limit = fringe_calibration::fit::adjust::unexplained_error_limit(
