@@ -397,6 +397,9 @@ pub struct ModbusFigures {
     pub own_wait: u32,
     /// The largest such figure.
     pub max_own_wait: u32,
+    /// Requests dropped unanswered as late (a frame came before the
+    /// answer was sent).
+    pub late: u32,
 }
 
 impl Qemu {
@@ -406,7 +409,7 @@ impl Qemu {
     /// As [`symbol_address`] and [`Qemu::read_words`].
     pub fn modbus_figures(&self, elf: &Path) -> Result<ModbusFigures> {
         let addr = symbol_address(elf, "FRINGE_MODBUS")?;
-        let w = self.read_words(addr, 13)?;
+        let w = self.read_words(addr, 14)?;
         Ok(ModbusFigures {
             sent: w[0],
             cost: w[1],
@@ -421,6 +424,7 @@ impl Qemu {
             exceptions: w[10],
             own_wait: w[11],
             max_own_wait: w[12],
+            late: w[13],
         })
     }
 }

@@ -56,12 +56,14 @@ const CYCLES_PER_US: u64 = clock::CORE_HZ as u64 / 1_000_000;
 ///    the ADC does on a real board): a bound on the firmware's work an
 ///    answer waits for, its own cost included
 /// 12 the largest such bound
+/// 13 the slave's requests dropped unanswered as late (a frame came
+///    before the answer was sent: the master had gone on)
 /// ```
 ///
 /// Instructions under `-icount shift=0` (40 per core cycle).
 #[no_mangle]
 #[used]
-pub static FRINGE_MODBUS: [AtomicU32; 13] = [const { AtomicU32::new(0) }; 13];
+pub static FRINGE_MODBUS: [AtomicU32; 14] = [const { AtomicU32::new(0) }; 14];
 
 /// The world in front of the simulated window: a product of fixed
 /// permittivity at 22 C (invented; "Harrowgate Mill line 2 dryer outlet").
@@ -211,6 +213,7 @@ fn serve_modbus(
     {
         b[4 + i].store(v, Ordering::Relaxed);
     }
+    b[13].store(c.late, Ordering::Relaxed);
     let t0 = clock::cycles();
     let gap_ends_us = slave.frame_deadline_us();
     // (The time the bytes were taken to, `now_us` above: a byte that came
