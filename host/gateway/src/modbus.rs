@@ -91,16 +91,25 @@ impl Conn {
         self.closing.load(std::sync::atomic::Ordering::SeqCst)
     }
 
+    /// Whether the connection is closed, else the task of `cx` is the one
+    /// `close` wakes (checked again after the store: closed in between).
+    fn closed_for(&self, cx: &std::task::Context<'_>) -> bool {
+        if self.closing() {
+            return true;
+        }
+        *self.waker.lock().unwrap_or_else(|e| e.into_inner()) = Some(cx.waker().clone());
+        self.closing()
+    }
+
     fn idle(&self, now: Instant) -> Duration {
         now.saturating_duration_since(*self.last.lock().unwrap_or_else(|e| e.into_inner()))
     }
 }
 
-/// Connections open, in all and per client address.
+/// The connections open (at most [`MAX_CONNECTIONS`]: their counts, in
+/// all and per address, are read off the list).
 #[derive(Default)]
 struct Open {
-    total: usize,
-    per_client: std::collections::HashMap<IpAddr, usize>,
     conns: Vec<Arc<Conn>>,
     /// The last connection closed to make room (its address and how long
     /// it had gone without a request), until it is said.
@@ -126,18 +135,12 @@ impl Open {
         let c = self.conns.swap_remove(i);
         c.close();
         self.evicted = Some((c.client, c.idle(now)));
-        self.release(c.client);
         true
     }
 
-    fn release(&mut self, client: IpAddr) {
-        self.total = self.total.saturating_sub(1);
-        if let Some(n) = self.per_client.get_mut(&client) {
-            *n = n.saturating_sub(1);
-            if *n == 0 {
-                self.per_client.remove(&client);
-            }
-        }
+    /// Connections open from `client`.
+    fn from(&self, client: IpAddr) -> usize {
+        self.conns.iter().filter(|c| c.client == client).count()
     }
 }
 
@@ -158,22 +161,18 @@ impl Slot {
     ) -> Result<Slot, String> {
         let mut o = open.lock().unwrap_or_else(|e| e.into_inner());
         let now = Instant::now();
-        let mine = o.per_client.get(&client).copied().unwrap_or(0);
-        if mine >= MAX_CONNECTIONS_PER_CLIENT && !o.evict(Some(client), idle, now) {
+        if o.from(client) >= MAX_CONNECTIONS_PER_CLIENT && !o.evict(Some(client), idle, now) {
             return Err(format!(
                 "{client} has {MAX_CONNECTIONS_PER_CLIENT} connections open, none idle for {} s",
                 idle.as_secs_f64()
             ));
         }
-        if o.total >= MAX_CONNECTIONS && !o.evict(None, idle, now) {
+        if o.conns.len() >= MAX_CONNECTIONS && !o.evict(None, idle, now) {
             return Err(format!(
                 "{MAX_CONNECTIONS} connections are open, none idle for {} s",
                 idle.as_secs_f64()
             ));
         }
-        let mine = o.per_client.get(&client).copied().unwrap_or(0);
-        o.total += 1;
-        o.per_client.insert(client, mine + 1);
         let conn = Arc::new(Conn {
             client,
             last: std::sync::Mutex::new(now),
@@ -191,10 +190,9 @@ impl Slot {
 impl Drop for Slot {
     fn drop(&mut self) {
         let mut o = self.open.lock().unwrap_or_else(|e| e.into_inner());
-        // (A connection closed to make room was released then.)
+        // (A connection closed to make room left the list then.)
         if let Some(i) = o.conns.iter().position(|c| Arc::ptr_eq(c, &self.conn)) {
             o.conns.swap_remove(i);
-            o.release(self.conn.client);
         }
     }
 }
@@ -213,12 +211,7 @@ impl tokio::io::AsyncRead for Closable {
         cx: &mut std::task::Context<'_>,
         buf: &mut tokio::io::ReadBuf<'_>,
     ) -> std::task::Poll<io::Result<()>> {
-        if self.conn.closing() {
-            return std::task::Poll::Ready(Ok(()));
-        }
-        *self.conn.waker.lock().unwrap_or_else(|e| e.into_inner()) = Some(cx.waker().clone());
-        // (Closed between the check and the waker's store.)
-        if self.conn.closing() {
+        if self.conn.closed_for(cx) {
             return std::task::Poll::Ready(Ok(()));
         }
         std::pin::Pin::new(&mut self.inner).poll_read(cx, buf)
@@ -234,11 +227,7 @@ impl tokio::io::AsyncWrite for Closable {
         cx: &mut std::task::Context<'_>,
         buf: &[u8],
     ) -> std::task::Poll<io::Result<usize>> {
-        if self.conn.closing() {
-            return std::task::Poll::Ready(Err(io::ErrorKind::BrokenPipe.into()));
-        }
-        *self.conn.waker.lock().unwrap_or_else(|e| e.into_inner()) = Some(cx.waker().clone());
-        if self.conn.closing() {
+        if self.conn.closed_for(cx) {
             return std::task::Poll::Ready(Err(io::ErrorKind::BrokenPipe.into()));
         }
         std::pin::Pin::new(&mut self.inner).poll_write(cx, buf)
@@ -248,11 +237,7 @@ impl tokio::io::AsyncWrite for Closable {
         mut self: std::pin::Pin<&mut Self>,
         cx: &mut std::task::Context<'_>,
     ) -> std::task::Poll<io::Result<()>> {
-        if self.conn.closing() {
-            return std::task::Poll::Ready(Err(io::ErrorKind::BrokenPipe.into()));
-        }
-        *self.conn.waker.lock().unwrap_or_else(|e| e.into_inner()) = Some(cx.waker().clone());
-        if self.conn.closing() {
+        if self.conn.closed_for(cx) {
             return std::task::Poll::Ready(Err(io::ErrorKind::BrokenPipe.into()));
         }
         std::pin::Pin::new(&mut self.inner).poll_flush(cx)
