@@ -2184,7 +2184,7 @@ pub fn adjust(
     // none (predicted values that do not vary) or one at or below zero the
     // corrected calibration would read moisture flat or backwards (found
     // by review).
-    if applied == Correction::BiasAndSlope && (tests.slope.is_nan() || tests.slope <= 0.0) {
+    if applied == Correction::BiasAndSlope && (!tests.slope_determined() || tests.slope <= 0.0) {
         return Err(AdjustError::NoSlope {
             source_words: pairs.source,
             slope: tests.slope,
